@@ -1,0 +1,30 @@
+# Each target builds its own virtual environment in .venv the first time.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test lint bench clean
+
+$(STAMP): pyproject.toml constraints.txt
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -c constraints.txt -e '.[test]'
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/formgate demo demo-output
+
+test: $(STAMP)
+	$(BIN)/python -m pytest -q
+
+lint: $(STAMP)
+	$(BIN)/python -m pip install --quiet ruff mypy
+	$(BIN)/ruff check pipeline tests
+	$(BIN)/mypy
+
+bench: $(STAMP)
+	$(BIN)/python benchmarks/run.py
+
+clean:
+	rm -rf $(VENV) demo-output

@@ -1,0 +1,73 @@
+"""The table of cell-level metrics: JSON key, unit and meaning, the one list rules may name.
+
+metrics.py produces exactly these keys; rulebook.py refuses any other ``metric =``
+value (with a close-match suggestion); the rules documentation and the result
+schema are generated from this table, so the three cannot drift apart.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+
+@dataclass(frozen=True, slots=True)
+class MetricDef:
+    name: str  # JSON key, unit in its proper case (DESIGN.md)
+    unit: str  # as printed on the certificate ("" for a plain number or fraction)
+    meaning: str
+    relative_ok: bool = False  # may a window on it be given relative to nominal capacity?
+
+
+METRICS: tuple[MetricDef, ...] = (
+    MetricDef(
+        "first_cycle_efficiency", "",
+        "coulombic efficiency of cycle 1 (initial coulombic efficiency), a fraction",
+    ),
+    MetricDef(
+        "irreversible_capacity_Ah", "Ah",
+        "charge minus discharge capacity of cycle 1", relative_ok=True,
+    ),
+    MetricDef(
+        "grading_capacity_Ah", "Ah",
+        "discharge capacity of the last complete discharge in the file", relative_ok=True,
+    ),
+    MetricDef(
+        "grading_energy_Wh", "Wh", "discharge energy of the grading discharge",
+    ),
+    MetricDef(
+        "grading_mean_voltage_V", "V",
+        "mean discharge voltage of the grading discharge (energy / capacity)",
+    ),
+    MetricDef(
+        "grading_coulombic_efficiency", "",
+        "coulombic efficiency of the grading cycle, a fraction",
+    ),
+    MetricDef(
+        "grading_cv_duration_s", "s", "time spent in constant-voltage charge in the grading cycle",
+    ),
+    MetricDef(
+        "dcir_mOhm", "mOhm",
+        "(V before the last rest-to-discharge transition - V a pulse time into it) / |I|",
+    ),
+    MetricDef(
+        "rest_voltage_drift_mV_per_h", "mV/h",
+        "least-squares slope of V over the final rest, after its relaxation time; negative = falling",
+    ),
+    MetricDef("max_charge_voltage_V", "V", "highest voltage during any charge step"),
+    MetricDef("min_discharge_voltage_V", "V", "lowest voltage during any discharge step"),
+    MetricDef("max_temperature_C", "°C", "highest cell temperature anywhere in the file"),
+    MetricDef("cycle_count", "", "number of cycles (a charge followed by a discharge) found"),
+    MetricDef("plateau_count", "", "number of plateaus found on the grading discharge"),
+    MetricDef(
+        "main_plateau_voltage_V", "V", "median voltage of the longest plateau",
+    ),
+    MetricDef(
+        "main_plateau_length_pct", "%", "length of the longest plateau, % of grading capacity",
+    ),
+    MetricDef(
+        "total_plateau_length_pct", "%", "summed length of all plateaus, % of grading capacity",
+    ),
+)
+
+METRIC_NAMES: tuple[str, ...] = tuple(m.name for m in METRICS)
+BY_NAME: dict[str, MetricDef] = {m.name: m for m in METRICS}

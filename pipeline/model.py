@@ -1,0 +1,461 @@
+"""The shared frozen records that flow through formgate, from trace to verdict.
+
+Only data lives here: no parsing, no computation beyond trivial derived
+properties. Units are suffixes of field names (``_s``, ``_v``, ``_a``, ``_ah``,
+``_wh``, ``_c``, ``_pct``, ``_mohm``). Numpy arrays are made read-only on
+construction so that a frozen record really cannot change.
+"""
+
+from __future__ import annotations
+
+import datetime
+import enum
+import types
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+import numpy as np
+import numpy.typing as npt
+
+FloatArray = npt.NDArray[np.float64]
+IntArray = npt.NDArray[np.int64]
+
+
+def frozen_array(values: object, dtype: type = np.float64) -> npt.NDArray[np.generic]:
+    """Return a read-only contiguous copy of ``values`` as ``dtype``."""
+    array = np.array(values, dtype=dtype, copy=True)
+    array.setflags(write=False)
+    return array
+
+
+def frozen_mapping(values: Mapping[str, str] | None = None) -> Mapping[str, str]:
+    """Return a read-only mapping that keeps the insertion order of ``values``."""
+    return types.MappingProxyType(dict(values or {}))
+
+
+@dataclass(frozen=True, slots=True)
+class SourceRef:
+    """Where something came from: a file name and, where it applies, a line and column (1-based)."""
+
+    path: str
+    line: int | None = None
+    column: int | None = None
+
+    def __str__(self) -> str:
+        text = self.path
+        if self.line is not None:
+            text += f", line {self.line}"
+            if self.column is not None:
+                text += f", column {self.column}"
+        return text
+
+
+@dataclass(frozen=True, slots=True)
+class Note:
+    """A data-quality observation that did not stop the analysis (shown on the certificate).
+
+    ``code`` is a stable machine name (``nan_rows_dropped``, ``time_duplicates``, ...);
+    ``text`` is the sentence for people; ``blocks`` names the metrics that cannot be
+    trusted because of it (a check on such a metric is "not judged" and leads to hold).
+    """
+
+    code: str
+    text: str
+    where: SourceRef | None = None
+    blocks: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True, slots=True)
+class Trace:
+    """One cell's record as read from a cycle file, in file units of the v1 format.
+
+    ``time_s`` is elapsed seconds, ``voltage_v`` volts, ``current_a`` amperes with
+    positive = charge. ``step``/``cycle`` are the cycler program's numbers when the
+    file has them. ``first_data_line`` is the 1-based line number of row 0 in the
+    source file, so row ``i`` is on line ``first_data_line + i`` (the reader refuses
+    blank lines inside the data, which keeps that true).
+    """
+
+    source: str
+    metadata: Mapping[str, str]
+    time_s: FloatArray
+    voltage_v: FloatArray
+    current_a: FloatArray
+    temperature_c: FloatArray | None = None
+    step: IntArray | None = None
+    cycle: IntArray | None = None
+    first_data_line: int = 2
+    notes: tuple[Note, ...] = ()
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
+        for name in ("time_s", "voltage_v", "current_a", "temperature_c"):
+            value = getattr(self, name)
+            if value is not None:
+                object.__setattr__(self, name, frozen_array(value))
+        for name in ("step", "cycle"):
+            value = getattr(self, name)
+            if value is not None:
+                object.__setattr__(self, name, frozen_array(value, np.int64))
+        n = len(self.time_s)
+        for name in ("voltage_v", "current_a", "temperature_c", "step", "cycle"):
+            value = getattr(self, name)
+            if value is not None and len(value) != n:
+                raise ValueError(f"Trace.{name} has {len(value)} rows, time_s has {n}")
+
+    def __len__(self) -> int:
+        return len(self.time_s)
+
+    def line_of(self, row: int) -> int:
+        """1-based line number in the source file of data row ``row`` (0-based)."""
+        return self.first_data_line + row
+
+    @property
+    def cell_id(self) -> str:
+        return self.metadata.get("cell_id", "")
+
+    @property
+    def lot(self) -> str:
+        return self.metadata.get("lot", "")
+
+    @property
+    def cell_type(self) -> str:
+        return self.metadata.get("cell_type", "")
+
+
+class StepKind(enum.Enum):
+    REST = "rest"
+    CHARGE = "charge"
+    DISCHARGE = "discharge"
+
+
+class StepMode(enum.Enum):
+    """How the step was controlled: constant current, constant voltage, or neither (rest)."""
+
+    CC = "cc"
+    CV = "cv"
+    NONE = "none"
+
+
+@dataclass(frozen=True, slots=True)
+class Step:
+    """A run of consecutive rows with one kind and mode: rows ``start`` to ``stop - 1``.
+
+    ``capacity_ah`` is the trapezoid integral of |I| dt over the step's own rows
+    (0 for rest); ``energy_wh`` likewise of V|I| dt. ``program_step`` is the file's
+    ``step`` number when the file has one.
+    """
+
+    index: int
+    kind: StepKind
+    mode: StepMode
+    start: int
+    stop: int
+    start_s: float
+    end_s: float
+    capacity_ah: float
+    energy_wh: float
+    mean_current_a: float
+    program_step: int | None = None
+
+    @property
+    def duration_s(self) -> float:
+        return self.end_s - self.start_s
+
+    @property
+    def rows(self) -> int:
+        return self.stop - self.start
+
+
+@dataclass(frozen=True, slots=True)
+class Cycle:
+    """One charge followed by one discharge: the indices of its steps, in time order.
+
+    ``index`` is 1-based. A cycle may lack its discharge (a file that ends on a
+    charge, e.g. to storage state of charge); it is then incomplete.
+    """
+
+    index: int
+    charge_steps: tuple[int, ...]
+    discharge_steps: tuple[int, ...]
+    program_cycle: int | None = None
+
+    @property
+    def complete(self) -> bool:
+        return bool(self.charge_steps) and bool(self.discharge_steps)
+
+
+@dataclass(frozen=True, slots=True)
+class Segmentation:
+    """The steps and cycles of one trace, plus notes (e.g. disagreement with the file's step column)."""
+
+    steps: tuple[Step, ...]
+    cycles: tuple[Cycle, ...]
+    notes: tuple[Note, ...] = ()
+
+
+@dataclass(frozen=True, slots=True)
+class Plateau:
+    """A flat run of the grading discharge V(q), q in % of that discharge's capacity."""
+
+    start_pct: float
+    end_pct: float
+    voltage_v: float
+    length_ah: float
+
+    @property
+    def length_pct(self) -> float:
+        return self.end_pct - self.start_pct
+
+
+@dataclass(frozen=True, slots=True)
+class PlateauSettings:
+    """Plateau detection parameters from the rule set (DESIGN.md, "Plateaus").
+
+    ``flatness_mv_per_pct``: |dV/dq| threshold in mV per 1 % of capacity.
+    ``min_length_pct``: shortest run that counts. ``merge_gap_pct``: runs closer
+    than this merge. ``smoothing_pct``: Savitzky-Golay window as % of capacity.
+    ``grid_points``: uniform q grid size. ``ica_bin_mv``: voltage bin for dQ/dV.
+    """
+
+    flatness_mv_per_pct: float = 5.0
+    min_length_pct: float = 5.0
+    merge_gap_pct: float = 1.0
+    smoothing_pct: float = 3.0
+    grid_points: int = 1001
+    ica_bin_mv: float = 5.0
+    ica_min_prominence_ah_per_v: float = 0.0
+
+
+@dataclass(frozen=True, slots=True)
+class Curve:
+    """A sampled curve for plotting: x and y arrays of equal length (read-only)."""
+
+    x: FloatArray
+    y: FloatArray
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "x", frozen_array(self.x))
+        object.__setattr__(self, "y", frozen_array(self.y))
+        if len(self.x) != len(self.y):
+            raise ValueError("Curve x and y differ in length")
+
+
+@dataclass(frozen=True, slots=True)
+class CycleMetrics:
+    """Per-cycle metrics exactly as DESIGN.md defines them (None where not applicable)."""
+
+    index: int
+    charge_capacity_ah: float
+    discharge_capacity_ah: float | None
+    coulombic_efficiency: float | None
+    discharge_energy_wh: float | None
+    mean_discharge_voltage_v: float | None
+    max_charge_voltage_v: float | None
+    min_discharge_voltage_v: float | None
+    cv_duration_s: float
+    max_temperature_c: float | None
+
+
+@dataclass(frozen=True, slots=True)
+class CellMetrics:
+    """Everything measured on one cell.
+
+    ``values`` maps each cell-level metric name (the JSON key, e.g.
+    ``grading_capacity_Ah``) to its value, or None when it could not be measured;
+    rules address metrics by these names. ``grading_curve`` is V (y) against
+    discharged capacity in % (x) of the grading discharge; ``ica_curve`` is dQ/dV
+    in Ah/V (y) against V (x).
+    """
+
+    values: Mapping[str, float | None]
+    cycles: tuple[CycleMetrics, ...]
+    plateaus: tuple[Plateau, ...]
+    ica_peaks_v: tuple[float, ...]
+    grading_curve: Curve | None = None
+    ica_curve: Curve | None = None
+    notes: tuple[Note, ...] = ()
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "values", types.MappingProxyType(dict(self.values)))
+
+
+class Severity(enum.Enum):
+    REJECT = "reject"
+    REVIEW = "review"
+
+
+class Hazard(enum.Enum):
+    INTERNAL_SHORT = "internal_short"
+    OVER_TEMPERATURE = "over_temperature"
+    OVER_VOLTAGE = "over_voltage"
+    LITHIUM_PLATING = "lithium_plating"
+    ABNORMAL_CAPACITY = "abnormal_capacity"
+
+
+class Outcome(enum.Enum):
+    IN_WINDOW = "in_window"
+    OUT_OF_WINDOW = "out_of_window"
+    NOT_JUDGED = "not_judged"  # value missing or untrustworthy: leads to hold
+    SKIPPED = "skipped"  # value missing and the rule says that is acceptable
+
+
+class VerdictKind(enum.Enum):
+    PASS = "pass"
+    FAIL = "fail"
+    HOLD = "hold"
+    ERROR = "error"
+
+
+@dataclass(frozen=True, slots=True)
+class CellType:
+    """A cell type a rule set covers. Voltages bound what is physically plausible for it."""
+
+    name: str
+    nominal_capacity_ah: float
+    min_voltage_v: float
+    max_voltage_v: float
+    description: str = ""
+    where: SourceRef | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Window:
+    """Acceptance window [low, high]; either bound may be open (None).
+
+    When ``relative_to`` is ``"nominal_capacity"`` the bounds are fractions of the
+    cell type's nominal capacity and :meth:`resolve` turns them into absolute values.
+    """
+
+    low: float | None
+    high: float | None
+    relative_to: str | None = None
+
+    def resolve(self, cell_type: CellType) -> Window:
+        if self.relative_to is None:
+            return self
+        if self.relative_to == "nominal_capacity":
+            scale = cell_type.nominal_capacity_ah
+        else:  # pragma: no cover - the rulebook refuses anything else
+            raise ValueError(f"unknown reference {self.relative_to!r}")
+        return Window(
+            None if self.low is None else self.low * scale,
+            None if self.high is None else self.high * scale,
+        )
+
+    def contains(self, value: float) -> bool:
+        if self.low is not None and value < self.low:
+            return False
+        if self.high is not None and value > self.high:
+            return False
+        return True
+
+
+@dataclass(frozen=True, slots=True)
+class Rule:
+    """One acceptance check: a metric, its window, what failing it means."""
+
+    id: str
+    metric: str
+    window: Window
+    severity: Severity
+    hazard: Hazard | None = None
+    message: str = ""
+    if_missing: str = "hold"  # "hold" (not judged) or "skip"
+    cell_types: tuple[str, ...] = ()  # empty = applies to every cell type of the set
+    where: SourceRef | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class RuleSet:
+    """One chemistry family's rules, as loaded from one TOML file."""
+
+    name: str
+    revision: str
+    chemistry: str
+    sha256: str
+    source: str
+    cell_types: tuple[CellType, ...]
+    plateau: PlateauSettings
+    rules: tuple[Rule, ...]
+    dcir_pulse_s: float = 10.0
+    relax_s: float = 600.0
+    rest_current_fraction: float = 0.002  # |I| below this x nominal capacity (A/Ah) is rest
+    description: str = ""
+
+    def cell_type(self, name: str) -> CellType | None:
+        for ct in self.cell_types:
+            if ct.name == name:
+                return ct
+        return None
+
+
+@dataclass(frozen=True, slots=True)
+class CheckResult:
+    """One row of the check table: a rule applied to a measured value."""
+
+    rule_id: str
+    metric: str
+    value: float | None
+    window: Window  # absolute (resolved against the cell type)
+    outcome: Outcome
+    severity: Severity
+    hazard: Hazard | None
+    message: str
+
+
+@dataclass(frozen=True, slots=True)
+class Verdict:
+    """The judgement on one cell: verdict, the check rows and hazards of failed reject checks."""
+
+    kind: VerdictKind
+    checks: tuple[CheckResult, ...]
+    hazards: tuple[Hazard, ...]
+    reasons: tuple[str, ...] = field(default=())
+
+    @property
+    def passed(self) -> bool:
+        return self.kind is VerdictKind.PASS
+
+
+@dataclass(frozen=True, slots=True)
+class RuleSetRef:
+    """Which rule set judged a cell: enough to trace it (name, revision, SHA-256 of the file)."""
+
+    name: str
+    revision: str
+    sha256: str
+    source: str
+
+
+@dataclass(frozen=True, slots=True)
+class CellResult:
+    """Everything known about one judged cell: what the JSON result and the certificate show.
+
+    ``analysed_at`` is timezone-aware UTC and is an input, never read from a clock
+    here, so the same result always renders to the same bytes.
+    """
+
+    source_name: str
+    input_sha256: str
+    metadata: Mapping[str, str]
+    cell_type: CellType
+    rule_set: RuleSetRef
+    metrics: CellMetrics
+    verdict: Verdict
+    notes: tuple[Note, ...]
+    analysed_at: datetime.datetime
+    software_version: str
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
+        if self.analysed_at.tzinfo is None:
+            raise ValueError("CellResult.analysed_at must be timezone-aware")
+
+    @property
+    def cell_id(self) -> str:
+        return self.metadata.get("cell_id", "")
+
+    @property
+    def lot(self) -> str:
+        return self.metadata.get("lot", "")

@@ -1,0 +1,35 @@
+"""Shared test fixtures: state-folder isolation and a guard against leaked threads."""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+
+REPO = Path(__file__).resolve().parent.parent
+RULES_DIR = REPO / "rules"
+TEMPLATES_DIR = REPO / "templates"
+DATA_DIR = Path(__file__).resolve().parent / "data"
+
+
+@pytest.fixture(autouse=True)
+def _no_leaked_threads() -> Iterator[None]:
+    """Fail a test that leaves a thread running (the station must shut down cleanly)."""
+    before = set(threading.enumerate())
+    yield
+    leaked = [
+        t for t in threading.enumerate()
+        if t not in before and t.is_alive() and not t.daemon
+    ]
+    for t in leaked:
+        t.join(timeout=5)
+    still = [t.name for t in leaked if t.is_alive()]
+    assert not still, f"test leaked threads: {still}"
+
+
+@pytest.fixture(autouse=True)
+def _isolated_home(tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Point formgate's state folder at a temporary one so no test touches a real station."""
+    monkeypatch.setenv("FORMGATE_HOME", str(tmp_path_factory.mktemp("formgate-home")))
