@@ -249,7 +249,9 @@ def _check_cycle_column(trace: Trace, cycles: list[Cycle], steps: list[Step]) ->
         return []
     notes = []
     for cycle in cycles:
-        numbers = {int(trace.cycle[steps[s].start]) for s in cycle.discharge_steps}
+        numbers: set[int] = set()
+        for s in cycle.discharge_steps:
+            numbers.update(np.unique(trace.cycle[steps[s].start : steps[s].stop]).tolist())
         if len(numbers) > 1:
             first = steps[cycle.discharge_steps[0]]
             notes.append(

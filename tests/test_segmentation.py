@@ -1,0 +1,105 @@
+"""Segmentation: steps and cycles from current and voltage alone, and from a step column."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from pipeline.model import StepKind, StepMode, Trace
+from pipeline.segmentation import group_cycles, sample_weights, split_steps
+from tests.factories import build_trace, simple_formation
+
+
+def kinds_modes(seg):
+    return [(s.kind.value, s.mode.value) for s in seg.steps]
+
+
+def test_formation_program_is_cut_into_its_steps() -> None:
+    trace = build_trace(simple_formation())
+    seg = split_steps(trace, rest_current_a=0.004)
+    assert kinds_modes(seg) == [
+        ("rest", "none"), ("charge", "cc"), ("charge", "cv"), ("rest", "none"), ("discharge", "cc"),
+        ("rest", "none"), ("charge", "cc"), ("charge", "cv"), ("rest", "none"), ("discharge", "cc"),
+        ("rest", "none"),
+    ]
+    assert [(c.charge_steps, c.discharge_steps) for c in seg.cycles] == [((1, 2), (4,)), ((6, 7), (9,))]
+    assert seg.notes == ()
+
+
+def test_steps_tile_the_trace_without_gaps() -> None:
+    trace = build_trace(simple_formation(), dt_s=7.0)
+    seg = split_steps(trace, 0.004)
+    assert seg.steps[0].start == 0 and seg.steps[-1].stop == len(trace)
+    for a, b in zip(seg.steps, seg.steps[1:]):
+        assert a.stop == b.start and a.end_s == b.start_s
+
+
+def test_capacity_is_additive_over_steps() -> None:
+    # the trapezoid integral of |I| over the whole record equals the sum over steps
+    trace = build_trace(simple_formation(), dt_s=10.0)
+    seg = split_steps(trace, 0.004)
+    total_ah = np.trapezoid(np.abs(trace.current_a), trace.time_s) / 3600.0
+    assert sum(s.capacity_ah for s in seg.steps) == pytest_approx(total_ah)
+
+
+def pytest_approx(x, rel=1e-12):
+    import pytest
+
+    return pytest.approx(x, rel=rel)
+
+
+def test_sample_weights_integrate_like_the_trapezoid_rule() -> None:
+    rng = np.random.default_rng(3)
+    t = np.cumsum(rng.uniform(0.1, 5.0, 200))
+    y = rng.normal(size=200)
+    assert float(np.dot(sample_weights(t), y)) == pytest_approx(float(np.trapezoid(y, t)), rel=1e-9)
+
+
+def test_single_sample_blip_does_not_split_a_rest() -> None:
+    t = np.arange(0, 100.0)
+    i = np.zeros(100)
+    i[50] = 0.5  # one noisy sample above the rest threshold
+    trace = Trace("blip.csv", {}, t, np.full(100, 3.3), i)
+    seg = split_steps(trace, 0.01)
+    assert [s.kind for s in seg.steps] == [StepKind.REST]
+
+
+def test_step_column_boundaries_are_used_and_disagreement_is_noted() -> None:
+    t = np.arange(0, 60.0)
+    i = np.concatenate([np.zeros(20), np.full(20, 1.0), np.full(20, -1.0)])
+    step = np.concatenate([np.full(20, 1), np.full(40, 2)])  # step 2 holds charge and discharge
+    trace = Trace("steps.csv", {}, t, np.full(60, 3.3), i, step=step)
+    seg = split_steps(trace, 0.01)
+    assert [s.program_step for s in seg.steps] == [1, 2]
+    assert [n.code for n in seg.notes] == ["step_column_disagrees"]
+    assert seg.notes[0].where is not None and seg.notes[0].where.line == 2 + 20
+
+
+def test_program_cv_step_alone_is_recognised_as_cv() -> None:
+    t = np.arange(0, 600.0, 10.0)
+    i = 2.0 * np.exp(-t / 100.0)
+    trace = Trace("cv.csv", {}, t, np.full(len(t), 3.65), i, step=np.full(len(t), 4))
+    seg = split_steps(trace, 0.001)
+    assert kinds_modes(seg) == [("charge", "cv")]
+
+
+def test_discharge_before_any_charge_belongs_to_no_cycle_and_trailing_charge_is_incomplete() -> None:
+    kinds = [StepKind.DISCHARGE, StepKind.REST, StepKind.CHARGE, StepKind.DISCHARGE, StepKind.CHARGE]
+    from pipeline.model import Step
+
+    steps = [Step(k, kind, StepMode.CC, k, k + 1, k, k + 1, 1.0, 1.0, 0.0) for k, kind in enumerate(kinds)]
+    cycles = group_cycles(steps)
+    assert [(c.charge_steps, c.discharge_steps, c.complete) for c in cycles] == [
+        ((2,), (3,), True),
+        ((4,), (), False),
+    ]
+
+
+def test_cycle_column_that_splits_a_discharge_is_noted() -> None:
+    trace = build_trace(simple_formation())
+    cycle = np.ones(len(trace), dtype=int)
+    seg0 = split_steps(trace, 0.004)
+    grading = seg0.steps[9]
+    cycle[grading.start + 5 :] = 2
+    noted = Trace(trace.source, trace.metadata, trace.time_s, trace.voltage_v, trace.current_a, cycle=cycle)
+    seg = split_steps(noted, 0.004)
+    assert [n.code for n in seg.notes] == ["cycle_column_disagrees"]
