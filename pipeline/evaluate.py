@@ -1,0 +1,125 @@
+"""Judge one cell: RuleSet x CellType x CellMetrics (+ data-quality notes) -> Verdict.
+
+Pure: no I/O. Each rule that applies to the cell type becomes one CheckResult;
+the verdict is fail if a reject check is out of window, else hold if a review
+check is out of window or a check could not be judged, else pass. Loading rules
+is rulebook.py's job; wording cautions is hazards.py's.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+
+from pipeline.metricdefs import BY_NAME
+from pipeline.model import (
+    CellMetrics, CellType, CheckResult, Hazard, Note, Outcome, Rule, RuleSet, Severity, Verdict,
+    VerdictKind, Window,
+)
+
+
+def format_number(value: float) -> str:
+    """Four significant digits, no exponent, no trailing zeros.
+
+    >>> format_number(19.599999999999998), format_number(3.25), format_number(0.91234)
+    ('19.6', '3.25', '0.9123')
+    """
+    if value == 0 or not math.isfinite(value):
+        return "0" if value == 0 else str(value)
+    digits = math.floor(math.log10(abs(value))) + 1
+    text = f"{value:.{max(0, 4 - digits)}f}"
+    return text.rstrip("0").rstrip(".") if "." in text else text
+
+
+def format_window(window: Window, unit: str = "") -> str:
+    """An absolute window in words.
+
+    >>> format_window(Window(19.6, None), "Ah"), format_window(Window(3.15, 3.38), "V")
+    ('at least 19.6 Ah', '3.15 to 3.38 V')
+    """
+    suffix = f" {unit}" if unit else ""
+    if window.low is not None and window.high is not None:
+        return f"{format_number(window.low)} to {format_number(window.high)}{suffix}"
+    if window.low is not None:
+        return f"at least {format_number(window.low)}{suffix}"
+    if window.high is not None:
+        return f"at most {format_number(window.high)}{suffix}"
+    return "any value"
+
+
+def _clean(window: Window) -> Window:
+    """Drop float noise from a resolved window (0.98 x 20 Ah is 19.6 Ah, not 19.599999999999998)."""
+    low, high = window.low, window.high
+    return Window(None if low is None else float(f"{low:.12g}"),
+                  None if high is None else float(f"{high:.12g}"))
+
+
+def _applies(rule: Rule, cell_type: CellType) -> bool:
+    return not rule.cell_types or cell_type.name in rule.cell_types
+
+
+def _check(rule: Rule, cell_type: CellType, metrics: CellMetrics,
+           blockers: dict[str, str]) -> CheckResult:
+    window = _clean(rule.window.resolve(cell_type)) if rule.window.relative_to else rule.window
+    value = metrics.values.get(rule.metric)
+    if value is not None and math.isnan(value):
+        value = None
+    unit = BY_NAME[rule.metric].unit if rule.metric in BY_NAME else ""
+    blocked = blockers.get(rule.metric)
+    if blocked is not None or value is None:
+        why = f"blocked by a data-quality note ({blocked})" if blocked else "not measured"
+        if rule.if_missing == "hold":
+            outcome, message = Outcome.NOT_JUDGED, f"{rule.metric} not judged: {why}."
+        else:
+            outcome, message = Outcome.SKIPPED, f"{rule.metric} skipped: {why}."
+    elif window.contains(value):
+        outcome, message = Outcome.IN_WINDOW, ""
+    else:
+        outcome = Outcome.OUT_OF_WINDOW
+        measured = f"{rule.metric} = {format_number(value)}{' ' + unit if unit else ''}"
+        window_text = format_window(window, unit)
+        if rule.message:
+            message = f"{rule.message.rstrip('.')} ({measured}; window {window_text})."
+        else:
+            side = "below" if window.low is not None and value < window.low else "above"
+            message = f"{measured} is {side} the window ({window_text})."
+    return CheckResult(rule.id, rule.metric, value, window, outcome, rule.severity, rule.hazard,
+                       message)
+
+
+def _blockers(notes: Iterable[Note]) -> dict[str, str]:
+    """Metric name -> codes of the notes that make it untrustworthy."""
+    found: dict[str, list[str]] = {}
+    for note in notes:
+        for metric in note.blocks:
+            if note.code not in found.setdefault(metric, []):
+                found[metric].append(note.code)
+    return {metric: ", ".join(codes) for metric, codes in found.items()}
+
+
+def evaluate(rule_set: RuleSet, cell_type: CellType, metrics: CellMetrics,
+             notes: tuple[Note, ...] = ()) -> Verdict:
+    """Judge one cell against the rules of ``rule_set`` that apply to ``cell_type``.
+
+    ``notes`` are the data-quality notes of reading and segmenting the file; the
+    notes in ``metrics.notes`` count as well. A check whose metric a note blocks,
+    or whose value is None or NaN, is not judged (hold) or skipped, as its rule's
+    ``if_missing`` says. ``CheckResult.message`` is empty for a value in window;
+    ``Verdict.reasons`` lists the message of every check out of window or not
+    judged, in rule order.
+    """
+    blockers = _blockers((*notes, *metrics.notes))
+    checks = tuple(_check(rule, cell_type, metrics, blockers)
+                   for rule in rule_set.rules if _applies(rule, cell_type))
+    out = [c for c in checks if c.outcome is Outcome.OUT_OF_WINDOW]
+    if any(c.severity is Severity.REJECT for c in out):
+        kind = VerdictKind.FAIL
+    elif out or any(c.outcome is Outcome.NOT_JUDGED for c in checks):
+        kind = VerdictKind.HOLD
+    else:
+        kind = VerdictKind.PASS
+    failed_hazards = {c.hazard for c in out if c.severity is Severity.REJECT}
+    hazards = tuple(h for h in Hazard if h in failed_hazards)
+    reasons = tuple(c.message for c in checks
+                    if c.outcome in (Outcome.OUT_OF_WINDOW, Outcome.NOT_JUDGED))
+    return Verdict(kind, checks, hazards, reasons)

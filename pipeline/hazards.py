@@ -1,0 +1,104 @@
+"""Caution texts for failed cells: one per hazard, a general one, and the data-check notice.
+
+Certificates and mails print these words; this module only holds them. The
+wording follows the trade's usual handling of failed formation cells
+(REFERENCE.md section 6); every instruction defers to the site's own procedures,
+local codes, the authority having jurisdiction and qualified personnel.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from types import MappingProxyType
+
+from pipeline.model import Hazard
+
+
+@dataclass(frozen=True, slots=True)
+class Caution:
+    """A caution as printed: a short title and one paragraph."""
+
+    title: str
+    text: str
+
+
+# Handling words shared by every hazard: treat as possibly unstable, do not reuse, quarantine,
+# label, monitor -- common practice (REFERENCE.md 6.2).
+_QUARANTINE = (
+    "Treat the cell as possibly unstable: do not recharge, reuse, regrade or ship it as good "
+    "product. Move it to the site's designated quarantine area, in a non-combustible container "
+    "and apart from other cells and combustible material, label it with its cell ID, this "
+    "reason and the date, and watch its temperature during the hold period the site procedure "
+    "sets."
+)
+
+CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType({
+    # Micro-shorts show as falling voltage at rest (high K-value), low or falling OCV, heat
+    # during rest or low coulombic efficiency; causes include metal particles, burrs and
+    # separator defects -- from memory, high certainty (REFERENCE.md 6.1). Deep over-discharge
+    # of a graphite cell can dissolve copper that later shorts the cell -- from memory, medium.
+    Hazard.INTERNAL_SHORT: Caution(
+        "Possible internal short circuit",
+        "The data show signs of an internal short circuit, such as a voltage that falls during "
+        "rest or a deep over-discharge. A cell with an internal short can heat up by itself, "
+        "hours or days later, without any charger connected. " + _QUARANTINE,
+    ),
+    # Over-temperature in formation points to an internal short, a high-resistance weld or
+    # tab, or a channel fault -- from memory, low certainty for the usual alarm levels
+    # (REFERENCE.md 6.1).
+    Hazard.OVER_TEMPERATURE: Caution(
+        "Over-temperature during formation",
+        "The cell became hotter during formation than its rule set allows. Heat can come from "
+        "an internal short, a poor weld or tab, or a fault of the channel or fixture. "
+        + _QUARANTINE + " Have the channel and its contacts checked before they are used "
+        "again.",
+    ),
+    # Overcharge destabilises the cathode, oxidises the electrolyte, plates lithium and makes
+    # gas, with a risk of thermal runaway -- from memory, high certainty (REFERENCE.md 6.1).
+    Hazard.OVER_VOLTAGE: Caution(
+        "Charged above its voltage limit",
+        "The cell was charged above the voltage its rule set allows. Overcharge can make the "
+        "cathode unstable, break down the electrolyte, plate lithium and produce gas, and it "
+        "raises the risk of thermal runaway. " + _QUARANTINE + " Have the channel's voltage "
+        "limit and calibration checked.",
+    ),
+    # Plating comes from charging too fast or too cold, low N/P ratio or misaligned
+    # electrodes; plated lithium can grow into dendrites and shorts -- O'Kane et al.,
+    # J. Electrochem. Soc. 167 (2020) 090540, and from memory, medium (REFERENCE.md 6.1).
+    Hazard.LITHIUM_PLATING: Caution(
+        "Possible lithium plating",
+        "The data suggest that metallic lithium may have plated on the anode, for example "
+        "through a low coulombic efficiency. Plated lithium is reactive and can grow into "
+        "dendrites that short the cell later. " + _QUARANTINE,
+    ),
+    # A capacity far from nominal has no single cause (wrong cell type, assembly defect,
+    # lithium loss, short, measurement fault) -- common practice.
+    Hazard.ABNORMAL_CAPACITY: Caution(
+        "Capacity far from its nominal value",
+        "The cell's capacity is far outside what its cell type should deliver. The cause is "
+        "unknown: a wrong cell type, an assembly defect, an internal short or a measurement "
+        "fault are all possible. " + _QUARANTINE,
+    ),
+})
+
+# Defers to the site: REFERENCE.md section 6 (general information only) and 6.2 (do not
+# puncture, crush or open; eye protection and gloves if leaking; fire response per the site
+# plan; special transport rules for damaged or defective cells) -- common practice, and
+# from memory, medium, for the transport rules.
+GENERAL_CAUTION = (
+    "Failed cells can be dangerous. This caution is general information only. Handle, store, "
+    "transport and dispose of this cell as your site's procedures, local codes and regulations "
+    "and the authority having jurisdiction require, and let qualified personnel decide what "
+    "happens to it. Do not puncture, crush or open the cell. If it is hot, swelling, leaking, "
+    "smoking or smells of solvent, keep clear and follow the site's emergency plan; wear eye "
+    "protection and chemical-resistant gloves near a leaking cell and keep the area "
+    "ventilated. Damaged or defective lithium-ion cells fall under special transport rules."
+)
+
+# The tool reads recorded data; it does not inspect the cell (REFERENCE.md section 6).
+DATA_CHECK_NOTICE = (
+    "This certificate records a check of the cycler data against the acceptance windows of "
+    "the named rule set. It is a data check, not a safety assessment of the cell, and it does "
+    "not replace inspection or testing by qualified personnel."
+)
