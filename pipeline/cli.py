@@ -1,7 +1,186 @@
-"""Command line: argument parsing and exit codes only."""
+"""Command line: argument parsing and exit codes only; the work is done by runner, rulebook, demo.
+
+Exit codes: 0 every cell passed, 1 a cell failed or was held, 2 a problem the user
+can fix (bad rules, unreadable or unjudgeable file), 3 a bug in formgate, 130 Ctrl-C.
+"""
 
 from __future__ import annotations
 
+import argparse
+import datetime
+import os
+import platform
+import sys
+import tempfile
+import traceback
+from collections.abc import Sequence
+from pathlib import Path
 
-def main(argv: list[str] | None = None) -> int:
-    return 0
+from pipeline import __version__
+from pipeline.errors import FormgateError
+
+EXIT_OK, EXIT_REJECTED, EXIT_USER, EXIT_BUG, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
+
+
+def _analysis_time(text: str | None, environ: dict[str, str] | os._Environ[str]) -> datetime.datetime:
+    """--analysed-at, else SOURCE_DATE_EPOCH (reproducible output), else now; UTC, whole seconds."""
+    if text:
+        value = datetime.datetime.fromisoformat(text)
+        if value.tzinfo is None:
+            raise FormgateError(
+                f"--analysed-at {text!r} has no time zone", None, "Add one, e.g. 2026-12-01T08:00:00+00:00."
+            )
+        return value.astimezone(datetime.UTC)
+    epoch = environ.get("SOURCE_DATE_EPOCH")
+    if epoch and epoch.isdigit():
+        return datetime.datetime.fromtimestamp(int(epoch), datetime.UTC)
+    return datetime.datetime.now(datetime.UTC).replace(microsecond=0)
+
+
+def _reason(outcome: object) -> str:
+    from pipeline.runner import FileOutcome
+
+    assert isinstance(outcome, FileOutcome)
+    if outcome.error is not None:
+        return str(outcome.error).splitlines()[0]
+    assert outcome.result is not None
+    verdict = outcome.result.verdict
+    text = "; ".join(verdict.reasons) if verdict.reasons else "all checks in window"
+    if verdict.hazards:
+        text += " [hazard: " + ", ".join(h.value for h in verdict.hazards) + "]"
+    return text
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    """Judge cycle files given on the command line."""
+    from pipeline.readers.profile import load_profile
+    from pipeline.rulebook import load_rules_dir
+    from pipeline.runner import check_file
+
+    rulebook = load_rules_dir(Path(args.rules))
+    profile = None
+    if args.profile:
+        path = Path(args.profile)
+        profile = load_profile(path.read_text(encoding="utf-8"), str(path))
+    analysed_at = _analysis_time(args.analysed_at, os.environ)
+    out = Path(args.out) if args.out else None
+    worst = EXIT_OK
+    for name in args.files:
+        outcome = check_file(
+            Path(name), rulebook, out, analysed_at=analysed_at, profile=profile, certificate=not args.no_pdf
+        )
+        if outcome.error is not None:
+            print(f"{name}  error  {_reason(outcome)}")
+            for line in str(outcome.error).splitlines()[1:]:
+                print(f"    {line.strip()}")
+            worst = max(worst, EXIT_USER)
+            continue
+        assert outcome.result is not None
+        kind = outcome.result.verdict.kind.value
+        print(f"{outcome.result.cell_id}  {kind}  {_reason(outcome)}")
+        if kind != "pass":
+            worst = max(worst, EXIT_REJECTED)
+    return worst
+
+
+def cmd_rules_check(args: argparse.Namespace) -> int:
+    """Validate every rule file (and import profile) in a folder."""
+    from pipeline.rulebook import check_rules_dir
+
+    problems = check_rules_dir(Path(args.folder))
+    for problem in problems:
+        print(problem, file=sys.stderr)
+    if problems:
+        print(f"{len(problems)} problem(s) found in {args.folder}", file=sys.stderr)
+        return EXIT_USER
+    print(f"{args.folder}: all rule files are valid")
+    return EXIT_OK
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    """Write the invented demo lot, check it, print the lot summary."""
+    from pipeline.demo import run_demo
+
+    return run_demo(Path(args.folder), analysed_at=_analysis_time(None, os.environ))
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="formgate",
+        description="Judge battery cells after formation and grading, and certify them.",
+    )
+    parser.add_argument("--version", action="version", version=f"formgate {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    check = sub.add_parser(
+        "check",
+        help="judge cycle files and write results and certificates",
+        description="Judge cycle files: one line per file with cell, verdict and reason.",
+        epilog="example: formgate check inbox/*.csv --rules rules/ --out out/",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    check.add_argument("files", nargs="+", metavar="FILE", help="cycle files (.csv or .csv.gz)")
+    check.add_argument("--rules", default="rules", help="folder of rule files (default: rules)")
+    check.add_argument("--out", help="folder for results/ and certificates/ (default: write nothing)")
+    check.add_argument("--profile", help="import profile (TOML) for files not in the cycle file v1 layout")
+    check.add_argument("--no-pdf", action="store_true", help="write JSON results only, no certificates")
+    check.add_argument(
+        "--analysed-at", help="analysis time to record, ISO 8601 with zone (default: now)"
+    )
+    check.set_defaults(func=cmd_check)
+
+    rules = sub.add_parser(
+        "rules", help="work with rule files", epilog="example: formgate rules check rules/"
+    )
+    rules_sub = rules.add_subparsers(dest="rules_command", required=True, metavar="ACTION")
+    rules_check = rules_sub.add_parser(
+        "check",
+        help="validate every rule file and import profile in a folder",
+        description="Validate rule files; each problem names file, line and what to do.",
+        epilog="example: formgate rules check rules/",
+    )
+    rules_check.add_argument("folder", help="folder holding the rule files")
+    rules_check.set_defaults(func=cmd_rules_check)
+
+    demo = sub.add_parser(
+        "demo",
+        help="write an invented demo lot and check it",
+        description="Write an invented lot of cycle files (normal cells and one of each defect) and check it.",
+        epilog="example: formgate demo demo-output",
+    )
+    demo.add_argument("folder", nargs="?", default="demo-output", help="where to write (default: demo-output)")
+    demo.set_defaults(func=cmd_demo)
+    return parser
+
+
+def _report_bug(exc: BaseException) -> int:
+    """One line for the user, the traceback and versions in a log file (exit 3)."""
+    home = Path(os.environ.get("FORMGATE_HOME", tempfile.gettempdir()))
+    log = home / "formgate-crash.log"
+    try:
+        home.mkdir(parents=True, exist_ok=True)
+        with log.open("a", encoding="utf-8") as fh:
+            fh.write(f"formgate {__version__}, Python {platform.python_version()}, {platform.platform()}\n")
+            fh.write("".join(traceback.format_exception(exc)))
+    except OSError:
+        log = Path("(log could not be written)")
+    print(
+        f"formgate: internal error: {type(exc).__name__}: {exc}. This is a bug; details are in {log}.",
+        file=sys.stderr,
+    )
+    return EXIT_BUG
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args))
+    except FormgateError as exc:
+        print(exc, file=sys.stderr)
+        return EXIT_USER
+    except KeyboardInterrupt:
+        print("interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except Exception as exc:  # noqa: BLE001 - the last line of defence prints one line, logs the rest
+        return _report_bug(exc)

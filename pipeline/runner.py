@@ -1,0 +1,150 @@
+"""The one place that strings the steps together: bytes -> CellResult -> JSON and PDF on disk.
+
+``judge`` is pure (bytes, rules and the analysis time in; a CellResult out, or a
+FormgateError raised). ``publish`` writes a judged cell's result and certificate
+atomically. ``check_file`` does both for a path; the CLI and the station call it.
+"""
+
+from __future__ import annotations
+
+import datetime
+import hashlib
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+from pipeline import __version__
+from pipeline.errors import FormgateError, InputError
+from pipeline.evaluate import evaluate
+from pipeline.metrics import measure
+from pipeline.model import CellResult, RuleSetRef, SourceRef, VerdictKind
+from pipeline.names import safe_name
+from pipeline.readers.cyclefile import read_cycle_file
+from pipeline.readers.profile import Profile
+from pipeline.result import to_json
+from pipeline.rulebook import RuleBook
+from pipeline.segmentation import split_steps
+from pipeline.validate import validate_trace
+
+
+def judge(
+    data: bytes,
+    name: str,
+    rulebook: RuleBook,
+    *,
+    analysed_at: datetime.datetime,
+    profile: Profile | None = None,
+) -> CellResult:
+    """Read, validate, segment, measure and judge one cycle file's bytes.
+
+    Raises a FormgateError (InputError) when the file cannot be read, matched to a
+    rule set, or is implausible; that is the ``error`` verdict, with its reason.
+    """
+    trace = read_cycle_file(data, name, profile)
+    rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
+    notes = validate_trace(trace, cell_type)
+    segmentation = split_steps(trace, rule_set.rest_current_fraction * cell_type.nominal_capacity_ah)
+    metrics = measure(
+        trace,
+        segmentation,
+        rule_set.plateau,
+        dcir_pulse_s=rule_set.dcir_pulse_s,
+        relax_s=rule_set.relax_s,
+    )
+    all_notes = trace.notes + notes + segmentation.notes + metrics.notes
+    verdict = evaluate(rule_set, cell_type, metrics, all_notes)
+    return CellResult(
+        source_name=name,
+        input_sha256=hashlib.sha256(data).hexdigest(),
+        metadata=trace.metadata,
+        cell_type=cell_type,
+        rule_set=RuleSetRef(rule_set.name, rule_set.revision, rule_set.sha256, rule_set.source),
+        metrics=metrics,
+        verdict=verdict,
+        notes=all_notes,
+        analysed_at=analysed_at,
+        software_version=__version__,
+    )
+
+
+@dataclass(frozen=True, slots=True)
+class Published:
+    """Where a judged cell's outputs were written (certificate None when not rendered)."""
+
+    result_json: Path
+    certificate: Path | None
+
+
+def output_paths(out: Path, result: CellResult) -> tuple[Path, Path]:
+    """``results/<lot>/<cell_id>.json`` and ``certificates/<lot>/<cell_id>.pdf`` under ``out``."""
+    lot, cell = safe_name(result.lot), safe_name(result.cell_id)
+    return out / "results" / lot / f"{cell}.json", out / "certificates" / lot / f"{cell}.pdf"
+
+
+def write_atomic(data: bytes, path: Path) -> None:
+    """Write ``data`` to ``path`` so that readers see the old file or the whole new one."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    dir_fd = os.open(path.parent, os.O_RDONLY)
+    try:
+        os.fsync(dir_fd)
+    finally:
+        os.close(dir_fd)
+
+
+def publish(result: CellResult, out: Path, *, certificate: bool = True) -> Published:
+    """Write the JSON result and (for pass/fail/hold) the PDF certificate, atomically."""
+    json_path, pdf_path = output_paths(out, result)
+    write_atomic(to_json(result).encode("utf-8"), json_path)
+    if not certificate or result.verdict.kind is VerdictKind.ERROR:
+        return Published(json_path, None)
+    from pipeline.certificate import render_html  # imported here: WeasyPrint is slow to import
+    from pipeline.pdf import render_pdf
+
+    write_atomic(render_pdf(render_html(result)), pdf_path)
+    return Published(json_path, pdf_path)
+
+
+@dataclass(frozen=True, slots=True)
+class FileOutcome:
+    """What happened to one input: a judged result or the error that stopped it."""
+
+    name: str
+    result: CellResult | None
+    error: FormgateError | None
+    published: Published | None = None
+
+
+def check_file(
+    path: Path,
+    rulebook: RuleBook,
+    out: Path | None,
+    *,
+    analysed_at: datetime.datetime,
+    profile: Profile | None = None,
+    certificate: bool = True,
+) -> FileOutcome:
+    """Judge the file at ``path`` and, when ``out`` is given, publish its outputs."""
+    name = str(path)
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        problem = f"cannot read the file ({exc.strerror})"
+        error = InputError(problem, SourceRef(name), "Check the path and its permissions.")
+        return FileOutcome(name, None, error)
+    try:
+        result = judge(data, name, rulebook, analysed_at=analysed_at, profile=profile)
+    except FormgateError as exc:
+        return FileOutcome(name, None, exc)
+    published = publish(result, out, certificate=certificate) if out is not None else None
+    return FileOutcome(name, result, None, published)
