@@ -10,13 +10,14 @@ from __future__ import annotations
 
 import datetime
 import enum
-import types
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
+from typing import TypeVar
 
 import numpy as np
 import numpy.typing as npt
 
+V = TypeVar("V")
 FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.int64]
 
@@ -28,9 +29,37 @@ def frozen_array(values: object, dtype: type = np.float64) -> npt.NDArray[np.gen
     return array
 
 
-def frozen_mapping(values: Mapping[str, str] | None = None) -> Mapping[str, str]:
+class FrozenMap(Mapping[str, V]):
+    """A read-only, ordered, picklable mapping (a MappingProxyType cannot cross a process pipe).
+
+    >>> FrozenMap({"a": 1})["a"]
+    1
+    """
+
+    __slots__ = ("_data",)
+
+    def __init__(self, values: Mapping[str, V] | None = None) -> None:
+        self._data: dict[str, V] = dict(values or {})
+
+    def __getitem__(self, key: str) -> V:
+        return self._data[key]
+
+    def __iter__(self) -> Iterator[str]:
+        return iter(self._data)
+
+    def __len__(self) -> int:
+        return len(self._data)
+
+    def __repr__(self) -> str:
+        return f"FrozenMap({self._data!r})"
+
+    def __reduce__(self) -> tuple[type[FrozenMap[V]], tuple[dict[str, V]]]:
+        return (FrozenMap, (self._data,))
+
+
+def frozen_mapping(values: Mapping[str, V] | None = None) -> FrozenMap[V]:
     """Return a read-only mapping that keeps the insertion order of ``values``."""
-    return types.MappingProxyType(dict(values or {}))
+    return FrozenMap(values)
 
 
 @dataclass(frozen=True, slots=True)
@@ -277,7 +306,7 @@ class CellMetrics:
     notes: tuple[Note, ...] = ()
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "values", types.MappingProxyType(dict(self.values)))
+        object.__setattr__(self, "values", frozen_mapping(self.values))
 
 
 class Severity(enum.Enum):
