@@ -1,0 +1,130 @@
+"""Decide which files in an inbox are finished and may be claimed.
+
+Pure: a listing of the inbox (name -> size, mtime) and what was seen before in,
+a decision out. Three ways a cycler can hand a file over (DESIGN.md, "claim"):
+
+- ``rename``: it writes under a temporary name and renames into place; a file
+  with a final name is finished as soon as it is seen.
+- ``marker``: it writes ``<name>.done`` beside the data file when the data is
+  complete; the data file is finished when its marker exists.
+- ``settle``: it just writes; the file is finished when its size and mtime have
+  not changed for ``settle_s`` seconds and its content looks complete (a final
+  newline, or a whole gzip stream).
+
+Names starting with ``.`` or ending in ``.tmp`` / ``.part`` are never claimed.
+Moving files and reading clocks are the watcher's and station's job.
+"""
+
+from __future__ import annotations
+
+import zlib
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+TEMPORARY_SUFFIXES = (".tmp", ".part")
+MODES = ("rename", "marker", "settle")
+
+
+@dataclass(frozen=True, slots=True)
+class Seen:
+    """A file's size and mtime as last observed, and since when (monotonic s) they held."""
+
+    size: int
+    mtime_ns: int
+    since_s: float
+
+
+@dataclass(frozen=True, slots=True)
+class Decision:
+    """What to do with each name in the listing."""
+
+    ready: tuple[str, ...] = ()  # finished data files to claim now
+    waiting: tuple[str, ...] = ()  # data files not finished yet
+    orphan_markers: tuple[str, ...] = ()  # markers whose data file never came
+    ignored: tuple[str, ...] = ()  # temporary or hidden names
+    seen: Mapping[str, Seen] = field(default_factory=dict)
+
+
+def is_temporary(name: str) -> bool:
+    """True for names a writer is still using: hidden, ``.tmp`` or ``.part``."""
+    return name.startswith(".") or name.endswith(TEMPORARY_SUFFIXES)
+
+
+def observe(previous: Mapping[str, Seen], listing: Mapping[str, tuple[int, int]], now_s: float) -> dict[str, Seen]:
+    """Carry ``since_s`` over for files whose size and mtime did not change; restart it otherwise."""
+    out: dict[str, Seen] = {}
+    for name, (size, mtime_ns) in listing.items():
+        old = previous.get(name)
+        if old is not None and old.size == size and old.mtime_ns == mtime_ns:
+            out[name] = old
+        else:
+            out[name] = Seen(size, mtime_ns, now_s)
+    return out
+
+
+def decide(
+    mode: str,
+    listing: Mapping[str, tuple[int, int]],
+    previous: Mapping[str, Seen],
+    now_s: float,
+    *,
+    settle_s: float = 30.0,
+    marker_suffix: str = ".done",
+    orphan_marker_s: float = 3600.0,
+) -> Decision:
+    """Sort an inbox listing into ready / waiting / orphan markers / ignored.
+
+    ``listing`` maps file names to (size in bytes, mtime in ns). In ``settle``
+    mode a ready file must still pass :func:`looks_complete` on its bytes before
+    it is claimed; that check needs the content, so the caller makes it.
+
+    >>> decide("rename", {"a.csv": (10, 1), "b.csv.part": (5, 1)}, {}, 0.0).ready
+    ('a.csv',)
+    """
+    if mode not in MODES:
+        raise ValueError(f"unknown hand-over mode {mode!r}")
+    seen = observe(previous, listing, now_s)
+    ready: list[str] = []
+    waiting: list[str] = []
+    orphans: list[str] = []
+    ignored: list[str] = []
+    for name in sorted(listing):
+        if is_temporary(name):
+            ignored.append(name)
+            continue
+        if mode == "marker" and name.endswith(marker_suffix):
+            data = name[: -len(marker_suffix)]
+            if data not in listing and now_s - seen[name].since_s >= orphan_marker_s:
+                orphans.append(name)
+            continue
+        if mode == "rename":
+            ready.append(name)
+        elif mode == "marker":
+            (ready if name + marker_suffix in listing else waiting).append(name)
+        elif now_s - seen[name].since_s >= settle_s:
+            ready.append(name)
+        else:
+            waiting.append(name)
+    return Decision(tuple(ready), tuple(waiting), tuple(orphans), tuple(ignored), seen)
+
+
+def looks_complete(data: bytes) -> bool:
+    """True if the bytes look like a whole file: a complete gzip stream, or text ending in a newline.
+
+    A writer that pauses mid-line, or a gzip stream cut short, fails this even
+    when its size has not changed for a while.
+    """
+    if data[:2] == b"\x1f\x8b":
+        d = zlib.decompressobj(wbits=31)
+        pending = data
+        try:
+            while not d.eof:
+                # output is bounded and thrown away: only reaching the end matters
+                out = d.decompress(pending, 1 << 20)
+                pending = d.unconsumed_tail
+                if not out and not pending:
+                    break
+        except zlib.error:
+            return False
+        return d.eof
+    return data.endswith(b"\n")

@@ -1,0 +1,53 @@
+"""Hand-over rules: when is a file in the inbox finished?"""
+
+from __future__ import annotations
+
+import gzip
+
+from hypothesis import given
+from hypothesis import strategies as st
+
+from pipeline.handoff import decide, looks_complete
+
+
+def test_rename_mode_claims_final_names_at_once_and_never_temporary_ones() -> None:
+    listing = {"a.csv": (10, 1), "b.csv.tmp": (5, 1), "c.csv.part": (5, 1), ".d.csv": (5, 1)}
+    d = decide("rename", listing, {}, 0.0)
+    assert d.ready == ("a.csv",)
+    assert d.ignored == (".d.csv", "b.csv.tmp", "c.csv.part")
+
+
+def test_marker_mode_waits_for_the_marker() -> None:
+    d = decide("marker", {"a.csv": (10, 1), "b.csv": (10, 1), "b.csv.done": (0, 1)}, {}, 0.0)
+    assert d.ready == ("b.csv",)
+    assert d.waiting == ("a.csv",)
+
+
+def test_marker_without_data_becomes_an_orphan_after_its_grace_time() -> None:
+    first = decide("marker", {"x.csv.done": (0, 1)}, {}, 0.0, orphan_marker_s=60.0)
+    assert first.orphan_markers == ()
+    later = decide("marker", {"x.csv.done": (0, 1)}, first.seen, 61.0, orphan_marker_s=60.0)
+    assert later.orphan_markers == ("x.csv.done",)
+
+
+def test_settle_mode_needs_size_and_mtime_unchanged_for_settle_time() -> None:
+    d1 = decide("settle", {"a.csv": (100, 1)}, {}, 0.0, settle_s=30.0)
+    assert d1.waiting == ("a.csv",)
+    d2 = decide("settle", {"a.csv": (200, 2)}, d1.seen, 20.0, settle_s=30.0)  # grew: clock restarts
+    assert d2.waiting == ("a.csv",)
+    d3 = decide("settle", {"a.csv": (200, 2)}, d2.seen, 45.0, settle_s=30.0)
+    assert d3.waiting == ("a.csv",)
+    d4 = decide("settle", {"a.csv": (200, 2)}, d3.seen, 50.0, settle_s=30.0)
+    assert d4.ready == ("a.csv",)
+
+
+def test_text_is_complete_only_with_a_final_newline() -> None:
+    assert looks_complete(b"a,b\n1,2\n")
+    assert not looks_complete(b"a,b\n1,")
+
+
+@given(st.binary(min_size=1, max_size=3000))
+def test_gzip_is_complete_only_when_whole(payload: bytes) -> None:
+    packed = gzip.compress(payload, mtime=0)
+    assert looks_complete(packed)
+    assert not looks_complete(packed[: len(packed) - 9])  # cut inside the trailer or data
