@@ -1,0 +1,119 @@
+"""Turns certificate HTML into PDF bytes with WeasyPrint, and writes a PDF file atomically.
+
+The renderer may load only files inside templates/ (the stylesheet and the font):
+anything else a page asks for (file:, http:, data: URLs, paths outside the
+folder) is refused and simply not loaded, so a hostile value in a data file can
+never make the renderer read a file or reach the network. Building the HTML is
+certificate.py's job.
+"""
+
+from __future__ import annotations
+
+import logging
+import mimetypes
+import os
+import pathlib
+import tempfile
+import threading
+import urllib.parse
+import urllib.request
+
+from weasyprint import HTML, URLFetcher
+from weasyprint.urls import URLFetcherResponse
+
+from pipeline.certificate import TEMPLATES_DIR
+
+log = logging.getLogger(__name__)
+
+# fontTools, which WeasyPrint falls back to for font subsetting when HarfBuzz's
+# subsetter is missing, stamps the subset font with the current time unless
+# SOURCE_DATE_EPOCH is set (reproducible-builds.org convention). Rendering holds
+# this lock while it sets the variable, so two renders never race on it.
+_RENDER_LOCK = threading.Lock()
+_FONT_EPOCH = "0"
+
+_TYPES = {".css": "text/css", ".ttf": "font/ttf", ".otf": "font/otf", ".woff2": "font/woff2"}
+
+
+class TemplateFetcher(URLFetcher):  # type: ignore[misc]  # WeasyPrint ships no type hints
+    """Serves files inside ``root`` and refuses every other URL.
+
+    A refusal raises inside WeasyPrint, which logs it and renders on without that
+    resource. ``requested`` lists every URL asked for, in order (tests read it).
+    """
+
+    def __init__(self, root: pathlib.Path = TEMPLATES_DIR) -> None:
+        super().__init__(allowed_protocols=("file",), allow_redirects=False)
+        self.root = root.resolve()
+        self.requested: list[str] = []
+
+    def resolve(self, url: str) -> pathlib.Path | None:
+        """The file inside ``root`` that ``url`` names, or None if it names anything else."""
+        parts = urllib.parse.urlsplit(url)
+        if parts.scheme != "file" or parts.netloc not in ("", "localhost"):
+            return None
+        path = pathlib.Path(urllib.request.url2pathname(parts.path)).resolve()
+        if not path.is_relative_to(self.root) or not path.is_file():
+            return None
+        return path
+
+    def fetch(self, url: str, headers: object = None) -> URLFetcherResponse:
+        self.requested.append(url)
+        path = self.resolve(url)
+        if path is None:
+            log.warning("certificate asked for %r, outside the templates folder: refused", url)
+            raise ValueError(f"refused: {url!r} is not a file inside the templates folder")
+        content_type = _TYPES.get(path.suffix.lower()) or (
+            mimetypes.guess_type(path.name)[0] or "application/octet-stream"
+        )
+        return URLFetcherResponse(
+            path.as_uri(), body=path.read_bytes(), headers={"Content-Type": content_type}
+        )
+
+
+def render_pdf(html: str) -> bytes:
+    """The PDF of a certificate's HTML. Same HTML, same bytes (no clock, no random ID).
+
+    Relative URLs resolve against templates/; the PDF's dates come from the HTML's
+    ``dcterms.created`` / ``dcterms.modified`` meta elements, and no /ID is written.
+    """
+    document = HTML(
+        string=html, base_url=TEMPLATES_DIR.as_uri() + "/", url_fetcher=TemplateFetcher()
+    )
+    with _RENDER_LOCK:
+        before = os.environ.get("SOURCE_DATE_EPOCH")
+        os.environ["SOURCE_DATE_EPOCH"] = before or _FONT_EPOCH
+        try:
+            pdf: bytes = document.write_pdf(pdf_identifier=False)
+        finally:
+            if before is None:
+                del os.environ["SOURCE_DATE_EPOCH"]
+            else:
+                os.environ["SOURCE_DATE_EPOCH"] = before
+    return pdf
+
+
+def write_pdf(pdf: bytes, path: pathlib.Path) -> None:
+    """Write ``pdf`` to ``path`` so nobody ever sees half a file.
+
+    A temporary file in the same folder is written and fsynced, then renamed over
+    ``path`` (os.replace is atomic on one filesystem), then the folder is fsynced
+    so the rename survives a power cut. The folder is created when missing.
+    """
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(pdf)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.chmod(temp_name, 0o644)
+        os.replace(temp_name, path)
+    except BaseException:
+        pathlib.Path(temp_name).unlink(missing_ok=True)
+        raise
+    dir_fd = os.open(path.parent, os.O_RDONLY)
+    try:
+        os.fsync(dir_fd)
+    finally:
+        os.close(dir_fd)
