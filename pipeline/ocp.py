@@ -209,8 +209,8 @@ CHEN_NMC_WINDOW = (0.9084, 0.2661)
 LFP_WINDOW = (0.97, 0.03)
 LFP_GRAPHITE_WINDOW = (0.02, 0.85)
 # Our own illustrative NMC811/LTO balance: NMC over the Chen window, LTO from nearly empty to
-# nearly full so the full cell spans roughly 1.8-2.8 V (REFERENCE.md 1.3: LMO or NMC / LTO).
-LTO_WINDOW = (0.0005, 0.999)
+# nearly full so the full cell spans roughly 1.7-2.8 V (REFERENCE.md 1.3: LMO or NMC / LTO).
+LTO_WINDOW = (0.00001, 0.995)
 
 
 def nmc811_graphite_cell(soc: ArrayLike) -> FloatArray:
@@ -245,7 +245,7 @@ def nmc811_lto_cell(soc: ArrayLike) -> FloatArray:
     """Full-cell OCV (V) of an illustrative NMC811/LTO cell at state of charge ``soc`` (0-1).
 
     Cathode: Chen 2020 NMC811 fit over its Chen window; anode: :func:`lto_plateau`
-    from x = 0.0005 to 0.999. Our own balance, not from a paper.
+    from x = 0.00001 to 0.995. Our own balance, not from a paper.
     """
     return nmc811_chen2020(_soc_map(soc, *CHEN_NMC_WINDOW)) - lto_plateau(
         _soc_map(soc, *LTO_WINDOW)
