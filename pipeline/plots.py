@@ -91,15 +91,18 @@ def nice_ticks(low: float, high: float, max_ticks: int = 6) -> tuple[float, ...]
     """
     if not (math.isfinite(low) and math.isfinite(high)) or high <= low:
         raise ValueError(f"cannot place ticks on [{low}, {high}]")
-    if max_ticks < 2:
-        raise ValueError(f"max_ticks must be at least 2, got {max_ticks}")
-    power = 10.0 ** math.floor(math.log10((high - low) / max_ticks))
-    for step in (m * power for m in (1.0, 2.0, 5.0, 10.0, 20.0, 50.0, 100.0)):
-        first = math.floor(low / step + 1e-9)
-        last = math.ceil(high / step - 1e-9)
-        if last - first + 1 <= max_ticks:
-            break
-    return tuple(round(k * step, 12) + 0.0 for k in range(first, last + 1))
+    if max_ticks < 3:  # a range around zero needs three: -step, 0, step
+        raise ValueError(f"max_ticks must be at least 3, got {max_ticks}")
+    exponent = math.floor(math.log10((high - low) / max_ticks))
+    while True:
+        for mantissa in (1, 2, 5):
+            step = mantissa * 10.0**exponent
+            first = math.floor(low / step + 1e-9)
+            last = math.ceil(high / step - 1e-9)
+            if last - first + 1 <= max_ticks:
+                decimals = max(0, 1 - exponent)
+                return tuple(round(k * step, decimals) + 0.0 for k in range(first, last + 1))
+        exponent += 1
 
 
 def tick_label(value: float, step: float) -> str:
@@ -156,7 +159,10 @@ def _frame(
     if plot_w <= 10 or plot_h <= 10:
         raise ValueError(f"a {width_mm} x {height_mm} mm plot leaves no room for the axes")
     return _Frame(
-        _MARGIN_L, _MARGIN_T, plot_w, plot_h,
+        _MARGIN_L,
+        _MARGIN_T,
+        plot_w,
+        plot_h,
         nice_ticks(*x_range, max_ticks=max(3, int(plot_w // 11))),
         nice_ticks(*y_range, max_ticks=max(3, int(plot_h // 5.5))),
     )
@@ -252,8 +258,13 @@ def _peak_label(
             body = f"{peak_v:.3f} V"
             return [
                 # a white outline first keeps the label readable over the curve
-                _text(lx, ly, body, "end", extra=f' fill="#ffffff" stroke="#ffffff" '
-                      f'stroke-width="0.6"{rotate}'),
+                _text(
+                    lx,
+                    ly,
+                    body,
+                    "end",
+                    extra=f' fill="#ffffff" stroke="#ffffff" stroke-width="0.6"{rotate}',
+                ),
                 _text(lx, ly, body, "end", extra=f' fill="{PEAK}"{rotate}'),
             ]
     return []
@@ -286,8 +297,14 @@ def discharge_svg(
             f'<rect class="plateau" x="{_n(x0)}" y="{_n(frame.top)}" width="{_n(x1 - x0)}" '
             f'height="{_n(frame.height)}" fill="{BAND}"/>'
         )
-        parts.append(_text((x0 + x1) / 2, frame.top + _FONT_MM + 0.8, f"P{number}",
-                           extra=f' fill="{BAND_LINE}"'))
+        parts.append(
+            _text(
+                (x0 + x1) / 2,
+                frame.top + _FONT_MM + 0.8,
+                f"P{number}",
+                extra=f' fill="{BAND_LINE}"',
+            )
+        )
         if math.isfinite(plateau.voltage_v):
             yv = frame.py(plateau.voltage_v)
             parts.append(
