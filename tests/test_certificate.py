@@ -1,0 +1,266 @@
+"""Certificate HTML: values formatted and escaped, cautions where they belong, snapshots held."""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime
+import math
+import types
+from collections.abc import Iterator
+
+import jinja2
+import pytest
+
+from pipeline import certificate
+from pipeline.certificate import (
+    DASH,
+    build_context,
+    format_time,
+    format_value,
+    format_window,
+    render_html,
+    significant,
+)
+from pipeline.model import Hazard, Note, SourceRef, Window
+from tests.golden import cases, regenerate
+
+HOSTILE = "<img src=file:///etc/passwd>"
+
+
+@pytest.fixture(autouse=True)
+def hazards() -> Iterator[types.ModuleType]:
+    """pipeline.hazards when it exists, else the test stand-in with the same API."""
+    module = cases.real_hazards() or cases.stand_in_hazards()
+    with cases.hazards_in_use(module):
+        yield module
+
+
+# --- formatting -----------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("metric", "value", "expected"),
+    [
+        ("grading_capacity_Ah", 20.1349, "20.13 Ah"),
+        ("grading_capacity_Ah", 2.34567, "2.346 Ah"),
+        ("irreversible_capacity_Ah", 0.123456, "0.1235 Ah"),
+        ("grading_energy_Wh", 64.5249, "64.52 Wh"),
+        ("grading_mean_voltage_V", 3.20549, "3.205 V"),
+        ("max_charge_voltage_V", 3.65, "3.650 V"),
+        ("first_cycle_efficiency", 0.91202, "91.20 %"),
+        ("grading_coulombic_efficiency", 0.9961, "99.61 %"),
+        ("rest_voltage_drift_mV_per_h", -6.8412, "\N{MINUS SIGN}6.84 mV/h"),
+        ("rest_voltage_drift_mV_per_h", -0.001, "0.00 mV/h"),
+        ("dcir_mOhm", 1.8234, "1.82 mOhm"),
+        ("dcir_mOhm", 123.4, "123 mOhm"),
+        ("max_temperature_C", 31.44, "31.4 °C"),
+        ("grading_cv_duration_s", 1287.6, "1288 s"),
+        ("plateau_count", 3.0, "3"),
+        ("main_plateau_length_pct", 27.96, "28.0 %"),
+        ("not_a_known_metric", 1234.5678, "1235"),
+        ("grading_capacity_Ah", None, DASH),
+        ("grading_capacity_Ah", math.nan, DASH),
+        ("grading_capacity_Ah", math.inf, DASH),
+    ],
+)
+def test_values_print_with_sensible_digits_and_units(
+    metric: str, value: float | None, expected: str
+) -> None:
+    assert format_value(metric, value) == expected
+
+
+def test_significant_digits_never_use_an_exponent() -> None:
+    assert significant(0.0, 4) == "0.000"
+    assert significant(123456.0, 4) == "123456"
+    assert significant(0.000012345, 3) == "0.000012"
+    assert significant(-20.1349, 4) == "\N{MINUS SIGN}20.13"
+
+
+@pytest.mark.parametrize(
+    ("metric", "window", "expected"),
+    [
+        ("grading_capacity_Ah", Window(19.4, 21.0), "19.40 \N{EN DASH} 21.00 Ah"),
+        ("rest_voltage_drift_mV_per_h", Window(-2.0, None), "≥ \N{MINUS SIGN}2.00 mV/h"),
+        ("max_temperature_C", Window(None, 45.0), "≤ 45.0 °C"),
+        ("first_cycle_efficiency", Window(0.85, 0.96), "85.00 \N{EN DASH} 96.00 %"),
+        ("plateau_count", Window(2, 4), "2 \N{EN DASH} 4"),
+        ("dcir_mOhm", Window(None, None), "any value"),
+    ],
+)
+def test_windows_print_as_ranges_or_one_sided_bounds(
+    metric: str, window: Window, expected: str
+) -> None:
+    assert format_window(metric, window) == expected
+
+
+def test_analysis_time_prints_in_utc_iso_8601() -> None:
+    plus_two = datetime.timezone(datetime.timedelta(hours=2))
+    moment = datetime.datetime(2026, 3, 2, 12, 15, 0, 123456, tzinfo=plus_two)
+    assert format_time(moment) == "2026-03-02T10:15:00Z"
+
+
+# --- context --------------------------------------------------------------------------------
+
+
+def test_context_shows_identity_with_nominal_capacity_and_other_metadata() -> None:
+    context = build_context(cases.pass_result())
+    identity = dict(context["identity"])
+    assert identity["Cell ID"] == "DEMO-C0042"
+    assert identity["Lot"] == "DEMO-LOT-01"
+    assert identity["Cell type"] == "DEMO-LFP-20A (nominal 20.00 Ah)"
+    assert identity["Channel"] == "B-07"
+    assert identity["Station"] == "FORM-STATION-2"
+    assert identity["Program"] == "demo-formation-v3"
+    assert identity["Started at"] == "2026-02-27T08:00:00Z"
+    assert context["other_metadata"] == [("tray", "T-118")]
+
+
+def test_context_leaves_out_a_missing_start_time_and_dashes_missing_fields() -> None:
+    result = cases.pass_result()
+    meta = {k: v for k, v in result.metadata.items() if k not in ("started_at", "channel")}
+    context = build_context(dataclasses.replace(result, metadata=meta))
+    identity = dict(context["identity"])
+    assert "Started at" not in identity
+    assert identity["Channel"] == DASH
+
+
+def test_every_check_becomes_a_row_with_outcome_in_words(hazards: types.ModuleType) -> None:
+    result = cases.hold_result()
+    rows = build_context(result)["checks"]
+    assert [r["id"] for r in rows] == [c.rule_id for c in result.verdict.checks]
+    by_id = {r["id"]: r for r in rows}
+    assert by_id["dcir"]["outcome"] == "not judged"
+    assert by_id["dcir"]["value"] == DASH
+    assert by_id["mean-voltage"]["outcome"] == "OUT OF WINDOW"
+    assert by_id["grading-capacity"]["outcome"] == "in window"
+    assert by_id["grading-capacity"]["severity"] == "reject"
+    assert by_id["grading-capacity"]["hazard"] == "abnormal capacity"
+    assert by_id["dcir"]["hazard"] == ""
+
+
+def test_failed_cell_gets_each_hazard_caution_and_the_general_caution(
+    hazards: types.ModuleType,
+) -> None:
+    result = cases.fail_result()
+    context = build_context(result)
+    assert result.verdict.hazards == (
+        Hazard.ABNORMAL_CAPACITY, Hazard.INTERNAL_SHORT, Hazard.OVER_TEMPERATURE
+    )
+    assert context["cautions"] == [
+        {"title": hazards.CAUTIONS[h].title, "text": hazards.CAUTIONS[h].text}
+        for h in result.verdict.hazards
+    ]
+    assert context["general_caution"] == hazards.GENERAL_CAUTION
+    assert context["verdict"]["word"] == "FAIL"
+    assert context["verdict"]["reasons"] == list(result.verdict.reasons)
+
+
+@pytest.mark.parametrize("make", [cases.pass_result, cases.hold_result])
+def test_cells_that_did_not_fail_carry_no_caution(make, hazards: types.ModuleType) -> None:
+    context = build_context(make())
+    assert context["cautions"] == []
+    assert context["general_caution"] == ""
+    assert context["data_check_notice"] == hazards.DATA_CHECK_NOTICE
+
+
+def test_held_cell_says_it_must_not_be_released_until_reviewed() -> None:
+    context = build_context(cases.hold_result())
+    assert context["verdict"]["word"] == "HOLD"
+    assert "must not be released until it has been reviewed" in context["verdict"]["headline"]
+
+
+def test_tables_are_formatted_strings() -> None:
+    context = build_context(cases.pass_result())
+    assert context["cycles"][0] == {
+        "index": "1", "charge_ah": "22.05", "discharge_ah": "20.11", "ce_pct": "91.20",
+        "energy_wh": "64.27", "mean_v": "3.196", "cv_s": "2710", "max_t_c": "29.8",
+    }
+    assert context["plateaus"][1] == {
+        "label": "P2", "start_pct": "34.0", "end_pct": "62.0", "length_pct": "28.0",
+        "length_ah": "5.636", "voltage_v": "3.279",
+    }
+    assert context["ica_peaks"] == "3.200 V, 3.275 V, 3.320 V"
+    assert dict(context["traceability"]) == {
+        "Input file": cases.SOURCE_NAME,
+        "Input SHA-256": cases.INPUT_SHA256,
+        "Rule set": "demo-lfp, revision 3",
+        "Rule set file": "rules/demo_lfp.toml",
+        "Rule set SHA-256": cases.RULES_SHA256,
+        "Software": "formgate 0.1.0",
+        "Analysed at": "2026-03-02T10:15:00Z",
+    }
+
+
+def test_notes_from_result_and_metrics_show_once_with_where_and_what_they_block() -> None:
+    result = cases.hold_result()
+    extra = Note("nan_rows_dropped", "3 rows had no voltage.", SourceRef("x.csv", 12, 4))
+    metrics = dataclasses.replace(result.metrics, notes=(result.notes[0], extra))
+    notes = build_context(dataclasses.replace(result, metrics=metrics))["notes"]
+    assert notes == [
+        {"text": result.notes[0].text, "where": f"{cases.SOURCE_NAME}, line 5120",
+         "blocks": "dcir_mOhm"},
+        {"text": "3 rows had no voltage.", "where": "x.csv, line 12, column 4", "blocks": ""},
+    ]
+
+
+def test_a_cell_without_curves_or_cycles_still_renders() -> None:
+    result = cases.pass_result()
+    metrics = dataclasses.replace(
+        result.metrics, cycles=(), plateaus=(), ica_peaks_v=(), grading_curve=None,
+        ica_curve=None,
+    )
+    html = render_html(dataclasses.replace(result, metrics=metrics))
+    assert "No complete cycle found." in html
+    assert "No plateau found." in html
+    assert "no grading discharge measured" in html
+
+
+# --- rendering ------------------------------------------------------------------------------
+
+
+def test_environment_is_built_once_with_autoescape_and_strict_undefined() -> None:
+    env = certificate.environment()
+    assert env is certificate.environment()
+    assert env.undefined is jinja2.StrictUndefined
+    assert env.autoescape is True
+
+
+def test_missing_context_value_fails_loudly() -> None:
+    template = certificate.environment().get_template(certificate.TEMPLATE_NAME)
+    context = build_context(cases.pass_result())
+    del context["traceability"]
+    with pytest.raises(jinja2.UndefinedError):
+        template.render(context)
+
+
+def test_values_from_the_data_file_are_escaped() -> None:
+    result = cases.pass_result(cell_id=HOSTILE, lot="<b>lot</b>", station='" onload="x',
+                               **{"<script>": "alert(1)"})
+    html = render_html(result)
+    assert HOSTILE not in html
+    assert "&lt;img src=file:///etc/passwd&gt;" in html
+    assert "<img" not in html and "<b>lot" not in html and "<script" not in html
+    assert '" onload="x' not in html
+
+
+def test_html_is_deterministic_and_has_metadata() -> None:
+    one = render_html(cases.fail_result())
+    assert one == render_html(cases.fail_result())
+    assert "<title>Certificate for cell DEMO-C0042: FAIL</title>" in one
+    assert '<meta name="dcterms.created" content="2026-03-02T10:15:00Z">' in one
+    assert '<meta name="generator" content="formgate 0.1.0">' in one
+
+
+@pytest.mark.parametrize("name", sorted(regenerate.SNAPSHOTS))
+def test_html_matches_its_golden_snapshot(name: str) -> None:
+    path = regenerate.HERE / name
+    actual = regenerate.render_snapshot(name)
+    header, _, expected = path.read_text(encoding="utf-8").partition("\n")
+    assert header + "\n" == regenerate.HEADER
+    if actual != expected:
+        beside = path.with_suffix(".actual.html")
+        beside.write_text(actual, encoding="utf-8")
+        pytest.fail(
+            f"{name} differs from its snapshot; the output is in {beside.name}. If the change "
+            "is intended, run tests/golden/regenerate.py and review the diff."
+        )
