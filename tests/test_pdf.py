@@ -1,0 +1,314 @@
+"""PDF certificates: real WeasyPrint output read back with pypdf; fetching fenced to templates/."""
+
+from __future__ import annotations
+
+import io
+import os
+import re
+import types
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+from pypdf import PdfReader
+from pypdf.generic import DictionaryObject
+
+from pipeline import pdf
+from pipeline.certificate import TEMPLATES_DIR, render_html
+from pipeline.model import CellResult
+from tests.golden import cases
+
+HOSTILE = "<img src=file:///etc/passwd>"
+
+
+class Rendered:
+    """One certificate rendered to PDF, with the URLs its renderer asked for."""
+
+    def __init__(self, result: CellResult, asked: list[str], data: bytes) -> None:
+        self.result = result
+        self.asked = asked
+        self.data = data
+        self.reader = PdfReader(io.BytesIO(data))
+        self.pages = [p.extract_text() for p in self.reader.pages]
+        self.text = "\n".join(self.pages)
+        # Table cells may wrap: compare against the text with line breaks folded too.
+        self.flat = re.sub(r"\s+", " ", self.text)
+
+    def has(self, phrase: str) -> bool:
+        phrase = re.sub(r"\s+", " ", phrase)
+        return phrase in self.flat or phrase.replace(" ", "") in self.flat.replace(" ", "")
+
+
+def render(result: CellResult) -> Rendered:
+    """Render ``result`` while recording every URL the fetcher is asked for."""
+    asked: list[str] = []
+
+    class Recording(pdf.TemplateFetcher):
+        def fetch(self, url: str, headers: object = None):  # type: ignore[no-untyped-def]
+            asked.append(url)
+            return super().fetch(url, headers)
+
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(pdf, "TemplateFetcher", Recording)
+        data = pdf.render_pdf(render_html(result))
+    return Rendered(result, asked, data)
+
+
+@pytest.fixture(scope="module")
+def hazards() -> Iterator[types.ModuleType]:
+    """pipeline.hazards when it exists, else the test stand-in with the same API."""
+    module = cases.real_hazards() or cases.stand_in_hazards()
+    with cases.hazards_in_use(module):
+        yield module
+
+
+@pytest.fixture(scope="module")
+def passed(hazards: types.ModuleType) -> Rendered:
+    return render(cases.pass_result())
+
+
+@pytest.fixture(scope="module")
+def failed(hazards: types.ModuleType) -> Rendered:
+    return render(cases.fail_result())
+
+
+@pytest.fixture(scope="module")
+def held(hazards: types.ModuleType) -> Rendered:
+    return render(cases.hold_result())
+
+
+@pytest.fixture(params=["passed", "failed", "held"])
+def any_cert(request: pytest.FixtureRequest) -> Rendered:
+    return request.getfixturevalue(request.param)
+
+
+# --- what the certificate says --------------------------------------------------------------
+
+
+def test_verdict_word_is_on_the_first_page(passed: Rendered, failed: Rendered,
+                                           held: Rendered) -> None:
+    assert "PASS" in passed.pages[0] and "FAIL" not in passed.text
+    assert "FAIL" in failed.pages[0]
+    assert "HOLD" in held.pages[0]
+
+
+def test_every_check_row_shows_its_id_metric_and_outcome(any_cert: Rendered) -> None:
+    outcomes = {"in_window": "in window", "out_of_window": "OUT OF WINDOW",
+                "not_judged": "not judged", "skipped": "skipped"}
+    for check in any_cert.result.verdict.checks:
+        assert any_cert.has(check.rule_id), check.rule_id
+        assert any_cert.has(check.metric), check.metric
+    shown = [outcomes[c.outcome.value] for c in any_cert.result.verdict.checks]
+    for word in set(shown):
+        assert any_cert.flat.count(word) >= shown.count(word), word
+
+
+def test_traceability_hashes_and_versions_are_printed_whole(any_cert: Rendered) -> None:
+    assert cases.INPUT_SHA256 in any_cert.text
+    assert cases.RULES_SHA256 in any_cert.text
+    assert cases.SOURCE_NAME in any_cert.text
+    assert "demo-lfp, revision 3" in any_cert.text
+    assert "formgate 0.1.0" in any_cert.text
+    assert "2026-03-02T10:15:00Z" in any_cert.text
+
+
+def test_failed_cell_carries_each_hazard_caution_and_the_general_caution(
+    failed: Rendered, hazards: types.ModuleType
+) -> None:
+    assert failed.result.verdict.hazards
+    for hazard in failed.result.verdict.hazards:
+        assert failed.has(hazards.CAUTIONS[hazard].title), hazard
+        assert failed.has(hazards.CAUTIONS[hazard].text), hazard
+    assert failed.has(hazards.GENERAL_CAUTION)
+
+
+@pytest.mark.parametrize("name", ["passed", "held"])
+def test_cells_that_did_not_fail_carry_no_hazard_caution(
+    name: str, request: pytest.FixtureRequest, hazards: types.ModuleType
+) -> None:
+    cert: Rendered = request.getfixturevalue(name)
+    for caution in hazards.CAUTIONS.values():
+        assert not cert.has(caution.title)
+    assert not cert.has(hazards.GENERAL_CAUTION)
+
+
+def test_every_page_carries_the_data_check_notice(
+    any_cert: Rendered, hazards: types.ModuleType
+) -> None:
+    for page in any_cert.pages:
+        assert re.sub(r"\s+", " ", hazards.DATA_CHECK_NOTICE) in re.sub(r"\s+", " ", page)
+
+
+def test_held_cell_says_it_must_not_be_released(held: Rendered) -> None:
+    assert held.has("must not be released until it has been reviewed")
+
+
+def test_certificate_fits_two_a4_pages(any_cert: Rendered) -> None:
+    # about a dozen checks, three cycles, three plateaus and (failed) three cautions
+    assert 1 <= len(any_cert.reader.pages) <= 2
+    for page in any_cert.reader.pages:
+        width, height = float(page.mediabox.width), float(page.mediabox.height)
+        # A4 is 210 x 297 mm (ISO 216) = 595.28 x 841.89 pt
+        assert (width, height) == pytest.approx((595.28, 841.89), abs=0.01)
+
+
+# --- how the PDF is built -------------------------------------------------------------------
+
+
+def test_same_result_gives_byte_identical_pdf(failed: Rendered) -> None:
+    assert render(failed.result).data == failed.data
+
+
+def test_metadata_is_set_and_holds_no_clock_time(failed: Rendered) -> None:
+    info = failed.reader.metadata
+    assert info["/Title"] == "Certificate for cell DEMO-C0042: FAIL"
+    assert info["/Author"] == "formgate"
+    assert info["/Creator"] == "formgate 0.1.0"
+    assert info["/CreationDate"] == info["/ModDate"] == "D:20260302101500Z"
+    assert "/ID" not in failed.reader.trailer
+
+
+def _xobjects(resources: DictionaryObject) -> Iterator[DictionaryObject]:
+    for ref in (resources.get("/XObject") or {}).values():
+        obj = ref.get_object()
+        yield obj
+        if "/Resources" in obj:
+            yield from _xobjects(obj["/Resources"])
+
+
+def test_plots_stay_vector_graphics(failed: Rendered) -> None:
+    drawn = b""
+    for page in failed.reader.pages:
+        assert not [x for x in _xobjects(page["/Resources"]) if x.get("/Subtype") == "/Image"]
+        drawn += page.get_contents().get_data()
+    line_segments = len(re.findall(rb"\sl\n", drawn))
+    assert line_segments > 300  # the two decimated curves alone are several hundred points
+    assert failed.has("Discharged capacity (%)") and failed.has("dQ/dV (Ah/V)")
+
+
+def test_only_the_shipped_font_is_embedded(failed: Rendered) -> None:
+    names = set()
+    for page in failed.reader.pages:
+        fonts = page["/Resources"]["/Font"]
+        names |= {str(f.get_object()["/BaseFont"]).split("+")[-1] for f in fonts.values()}
+    assert names == {"Certificate-Sans"}
+    asked = [u for u in failed.asked if u.endswith(".ttf")]
+    assert asked == [(TEMPLATES_DIR / "fonts" / "DejaVuSans.ttf").as_uri()]
+
+
+def test_renderer_only_asks_for_files_inside_templates(any_cert: Rendered) -> None:
+    assert any_cert.asked
+    for url in any_cert.asked:
+        assert url.startswith(TEMPLATES_DIR.as_uri() + "/"), url
+
+
+def test_hostile_cell_id_prints_as_text_and_reads_no_file(hazards: types.ModuleType) -> None:
+    cert = render(cases.fail_result(cell_id=HOSTILE, station="<link rel=stylesheet "
+                                    "href=http://example.invalid/x.css>"))
+    assert cert.has(HOSTILE)
+    assert cert.has("<link rel=stylesheet href=http://example.invalid/x.css>")
+    assert not [u for u in cert.asked if "passwd" in u or "example.invalid" in u]
+    for url in cert.asked:
+        assert url.startswith(TEMPLATES_DIR.as_uri() + "/"), url
+
+
+def test_markup_that_asks_for_outside_files_renders_without_them(
+    hazards: types.ModuleType, caplog: pytest.LogCaptureFixture
+) -> None:
+    html = render_html(cases.pass_result()).replace(
+        "</body>",
+        '<img src="file:///etc/passwd"><img src="http://example.invalid/a.png">'
+        '<img src="data:image/png;base64,iVBORw0KGgo="><img src="../pyproject.toml">'
+        '<link rel="stylesheet" href="/etc/ssl/openssl.cnf"></body>',
+    )
+    asked: list[str] = []
+
+    class Recording(pdf.TemplateFetcher):
+        def fetch(self, url: str, headers: object = None):  # type: ignore[no-untyped-def]
+            asked.append(url)
+            return super().fetch(url, headers)
+
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(pdf, "TemplateFetcher", Recording)
+        data = pdf.render_pdf(html)
+    assert data.startswith(b"%PDF-")
+    refused = [u for u in asked if not u.startswith(TEMPLATES_DIR.as_uri() + "/")]
+    assert len(refused) >= 4
+    assert "refused" in caplog.text
+
+
+# --- the fetcher on its own -----------------------------------------------------------------
+
+
+def test_fetcher_serves_template_files_with_their_type() -> None:
+    fetcher = pdf.TemplateFetcher()
+    response = fetcher.fetch((TEMPLATES_DIR / "certificate.css").as_uri())
+    assert response.content_type == "text/css"
+    assert b"@font-face" in response.read()
+    font = fetcher.fetch((TEMPLATES_DIR / "fonts" / "DejaVuSans.ttf").as_uri())
+    assert font.content_type == "font/ttf"
+
+
+@pytest.mark.parametrize(
+    "url",
+    [
+        "file:///etc/passwd",
+        "http://example.invalid/certificate.css",
+        "https://example.invalid/certificate.css",
+        "data:text/css,body{}",
+        "ftp://example.invalid/x",
+        (TEMPLATES_DIR / ".." / "pyproject.toml").as_uri(),
+        (TEMPLATES_DIR / "no-such-file.css").as_uri(),
+        (TEMPLATES_DIR / "fonts").as_uri(),
+        "file://otherhost" + (TEMPLATES_DIR / "certificate.css").as_posix(),
+    ],
+)
+def test_fetcher_refuses_everything_outside_templates(url: str) -> None:
+    fetcher = pdf.TemplateFetcher()
+    with pytest.raises(ValueError, match="refused"):
+        fetcher.fetch(url)
+    assert fetcher.requested == [url]
+
+
+def test_fetcher_refuses_a_link_that_leads_out_of_its_folder(tmp_path: Path) -> None:
+    root = tmp_path / "templates"
+    root.mkdir()
+    secret = tmp_path / "secret.css"
+    secret.write_text("body { color: red }")
+    (root / "inside.css").write_text("body { color: blue }")
+    (root / "link.css").symlink_to(secret)
+    fetcher = pdf.TemplateFetcher(root)
+    assert fetcher.fetch((root / "inside.css").as_uri()).read() == b"body { color: blue }"
+    with pytest.raises(ValueError, match="refused"):
+        fetcher.fetch((root / "link.css").as_uri())
+
+
+# --- writing --------------------------------------------------------------------------------
+
+
+def test_write_pdf_creates_folders_replaces_whole_files_and_leaves_no_temp(
+    tmp_path: Path, passed: Rendered, failed: Rendered
+) -> None:
+    target = tmp_path / "certificates" / "DEMO-LOT-01" / "DEMO-C0042.pdf"
+    pdf.write_pdf(passed.data, target)
+    assert target.read_bytes() == passed.data
+    pdf.write_pdf(failed.data, target)
+    assert target.read_bytes() == failed.data
+    assert [p.name for p in target.parent.iterdir()] == ["DEMO-C0042.pdf"]
+    assert os.stat(target).st_mode & 0o777 == 0o644
+
+
+def test_write_pdf_that_fails_keeps_the_old_file_and_cleans_up(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    target = tmp_path / "cert.pdf"
+    target.write_bytes(b"old")
+
+    def broken_replace(src: str, dst: str) -> None:
+        raise OSError("disk full")
+
+    monkeypatch.setattr(pdf.os, "replace", broken_replace)
+    with pytest.raises(OSError, match="disk full"):
+        pdf.write_pdf(b"%PDF-new", target)
+    assert target.read_bytes() == b"old"
+    assert [p.name for p in tmp_path.iterdir()] == ["cert.pdf"]
