@@ -13,8 +13,18 @@ from collections.abc import Iterable
 
 from pipeline.metricdefs import BY_NAME
 from pipeline.model import (
-    CellMetrics, CellType, CheckResult, Hazard, Note, Outcome, Rule, RuleSet, Severity, Verdict,
-    VerdictKind, Window,
+    CellMetrics,
+    CellType,
+    CheckResult,
+    Hazard,
+    Note,
+    Outcome,
+    Rule,
+    RuleSet,
+    Severity,
+    Verdict,
+    VerdictKind,
+    Window,
 )
 
 
@@ -50,16 +60,19 @@ def format_window(window: Window, unit: str = "") -> str:
 def _clean(window: Window) -> Window:
     """Drop float noise from a resolved window (0.98 x 20 Ah is 19.6 Ah, not 19.599999999999998)."""
     low, high = window.low, window.high
-    return Window(None if low is None else float(f"{low:.12g}"),
-                  None if high is None else float(f"{high:.12g}"))
+    return Window(
+        None if low is None else float(f"{low:.12g}"),
+        None if high is None else float(f"{high:.12g}"),
+    )
 
 
 def _applies(rule: Rule, cell_type: CellType) -> bool:
     return not rule.cell_types or cell_type.name in rule.cell_types
 
 
-def _check(rule: Rule, cell_type: CellType, metrics: CellMetrics,
-           blockers: dict[str, str]) -> CheckResult:
+def _check(
+    rule: Rule, cell_type: CellType, metrics: CellMetrics, blockers: dict[str, str]
+) -> CheckResult:
     window = _clean(rule.window.resolve(cell_type)) if rule.window.relative_to else rule.window
     value = metrics.values.get(rule.metric)
     if value is not None and math.isnan(value):
@@ -83,8 +96,9 @@ def _check(rule: Rule, cell_type: CellType, metrics: CellMetrics,
         else:
             side = "below" if window.low is not None and value < window.low else "above"
             message = f"{measured} is {side} the window ({window_text})."
-    return CheckResult(rule.id, rule.metric, value, window, outcome, rule.severity, rule.hazard,
-                       message)
+    return CheckResult(
+        rule.id, rule.metric, value, window, outcome, rule.severity, rule.hazard, message
+    )
 
 
 def _blockers(notes: Iterable[Note]) -> dict[str, str]:
@@ -97,8 +111,9 @@ def _blockers(notes: Iterable[Note]) -> dict[str, str]:
     return {metric: ", ".join(codes) for metric, codes in found.items()}
 
 
-def evaluate(rule_set: RuleSet, cell_type: CellType, metrics: CellMetrics,
-             notes: tuple[Note, ...] = ()) -> Verdict:
+def evaluate(
+    rule_set: RuleSet, cell_type: CellType, metrics: CellMetrics, notes: tuple[Note, ...] = ()
+) -> Verdict:
     """Judge one cell against the rules of ``rule_set`` that apply to ``cell_type``.
 
     ``notes`` are the data-quality notes of reading and segmenting the file; the
@@ -109,8 +124,11 @@ def evaluate(rule_set: RuleSet, cell_type: CellType, metrics: CellMetrics,
     judged, in rule order.
     """
     blockers = _blockers((*notes, *metrics.notes))
-    checks = tuple(_check(rule, cell_type, metrics, blockers)
-                   for rule in rule_set.rules if _applies(rule, cell_type))
+    checks = tuple(
+        _check(rule, cell_type, metrics, blockers)
+        for rule in rule_set.rules
+        if _applies(rule, cell_type)
+    )
     out = [c for c in checks if c.outcome is Outcome.OUT_OF_WINDOW]
     if any(c.severity is Severity.REJECT for c in out):
         kind = VerdictKind.FAIL
@@ -120,6 +138,7 @@ def evaluate(rule_set: RuleSet, cell_type: CellType, metrics: CellMetrics,
         kind = VerdictKind.PASS
     failed_hazards = {c.hazard for c in out if c.severity is Severity.REJECT}
     hazards = tuple(h for h in Hazard if h in failed_hazards)
-    reasons = tuple(c.message for c in checks
-                    if c.outcome in (Outcome.OUT_OF_WINDOW, Outcome.NOT_JUDGED))
+    reasons = tuple(
+        c.message for c in checks if c.outcome in (Outcome.OUT_OF_WINDOW, Outcome.NOT_JUDGED)
+    )
     return Verdict(kind, checks, hazards, reasons)

@@ -33,54 +33,57 @@ _QUARANTINE = (
     "sets."
 )
 
-CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType({
-    # Micro-shorts show as falling voltage at rest (high K-value), low or falling OCV, heat
-    # during rest or low coulombic efficiency; causes include metal particles, burrs and
-    # separator defects -- from memory, high certainty (REFERENCE.md 6.1). Deep over-discharge
-    # of a graphite cell can dissolve copper that later shorts the cell -- from memory, medium.
-    Hazard.INTERNAL_SHORT: Caution(
-        "Possible internal short circuit",
-        "The data show signs of an internal short circuit, such as a voltage that falls during "
-        "rest or a deep over-discharge. A cell with an internal short can heat up by itself, "
-        "hours or days later, without any charger connected. " + _QUARANTINE,
-    ),
-    # Over-temperature in formation points to an internal short, a high-resistance weld or
-    # tab, or a channel fault -- from memory, low certainty for the usual alarm levels
-    # (REFERENCE.md 6.1).
-    Hazard.OVER_TEMPERATURE: Caution(
-        "Over-temperature during formation",
-        "The cell became hotter during formation than its rule set allows. Heat can come from "
-        "an internal short, a poor weld or tab, or a fault of the channel or fixture. "
-        + _QUARANTINE + " Have the channel and its contacts checked before they are used "
-        "again.",
-    ),
-    # Overcharge destabilises the cathode, oxidises the electrolyte, plates lithium and makes
-    # gas, with a risk of thermal runaway -- from memory, high certainty (REFERENCE.md 6.1).
-    Hazard.OVER_VOLTAGE: Caution(
-        "Charged above its voltage limit",
-        "The cell was charged above the voltage its rule set allows. Overcharge can make the "
-        "cathode unstable, break down the electrolyte, plate lithium and produce gas, and it "
-        "raises the risk of thermal runaway. " + _QUARANTINE + " Have the channel's voltage "
-        "limit and calibration checked.",
-    ),
-    # Plating comes from charging too fast or too cold, low N/P ratio or misaligned
-    # electrodes; plated lithium can grow into dendrites and shorts -- O'Kane et al.,
-    # J. Electrochem. Soc. 167 (2020) 090540, and from memory, medium (REFERENCE.md 6.1).
-    Hazard.LITHIUM_PLATING: Caution(
-        "Possible lithium plating",
-        "The data suggest that metallic lithium may have plated on the anode, for example "
-        "through a low coulombic efficiency. Plated lithium is reactive and can grow into "
-        "dendrites that short the cell later. " + _QUARANTINE,
-    ),
-    # A capacity far from nominal has no single cause (wrong cell type, assembly defect,
-    # lithium loss, short, measurement fault) -- common practice.
-    Hazard.ABNORMAL_CAPACITY: Caution(
-        "Capacity far from its nominal value",
-        "The cell's capacity is far outside what its cell type should deliver. The cause is "
-        "unknown: a wrong cell type, an assembly defect, an internal short or a measurement "
-        "fault are all possible. " + _QUARANTINE,
-    ),
-})
+CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
+    {
+        # Micro-shorts show as falling voltage at rest (high K-value), low or falling OCV, heat
+        # during rest or low coulombic efficiency; causes include metal particles, burrs and
+        # separator defects -- from memory, high certainty (REFERENCE.md 6.1). Deep over-discharge
+        # of a graphite cell can dissolve copper that later shorts the cell -- from memory, medium.
+        Hazard.INTERNAL_SHORT: Caution(
+            "Possible internal short circuit",
+            "The data show signs of an internal short circuit, such as a voltage that falls during "
+            "rest or a deep over-discharge. A cell with an internal short can heat up by itself, "
+            "hours or days later, without any charger connected. " + _QUARANTINE,
+        ),
+        # Over-temperature in formation points to an internal short, a high-resistance weld or
+        # tab, or a channel fault -- from memory, low certainty for the usual alarm levels
+        # (REFERENCE.md 6.1).
+        Hazard.OVER_TEMPERATURE: Caution(
+            "Over-temperature during formation",
+            "The cell became hotter during formation than its rule set allows. Heat can come from "
+            "an internal short, a poor weld or tab, or a fault of the channel or fixture. "
+            + _QUARANTINE
+            + " Have the channel and its contacts checked before they are used "
+            "again.",
+        ),
+        # Overcharge destabilises the cathode, oxidises the electrolyte, plates lithium and makes
+        # gas, with a risk of thermal runaway -- from memory, high certainty (REFERENCE.md 6.1).
+        Hazard.OVER_VOLTAGE: Caution(
+            "Charged above its voltage limit",
+            "The cell was charged above the voltage its rule set allows. Overcharge can make the "
+            "cathode unstable, break down the electrolyte, plate lithium and produce gas, and it "
+            "raises the risk of thermal runaway. " + _QUARANTINE + " Have the channel's voltage "
+            "limit and calibration checked.",
+        ),
+        # Plating comes from charging too fast or too cold, low N/P ratio or misaligned
+        # electrodes; plated lithium can grow into dendrites and shorts -- O'Kane et al.,
+        # J. Electrochem. Soc. 167 (2020) 090540, and from memory, medium (REFERENCE.md 6.1).
+        Hazard.LITHIUM_PLATING: Caution(
+            "Possible lithium plating",
+            "The data suggest that metallic lithium may have plated on the anode, for example "
+            "through a low coulombic efficiency. Plated lithium is reactive and can grow into "
+            "dendrites that short the cell later. " + _QUARANTINE,
+        ),
+        # A capacity far from nominal has no single cause (wrong cell type, assembly defect,
+        # lithium loss, short, measurement fault) -- common practice.
+        Hazard.ABNORMAL_CAPACITY: Caution(
+            "Capacity far from its nominal value",
+            "The cell's capacity is far outside what its cell type should deliver. The cause is "
+            "unknown: a wrong cell type, an assembly defect, an internal short or a measurement "
+            "fault are all possible. " + _QUARANTINE,
+        ),
+    }
+)
 
 # Defers to the site: REFERENCE.md section 6 (general information only) and 6.2 (do not
 # puncture, crush or open; eye protection and gloves if leaking; fire response per the site

@@ -1,4 +1,4 @@
-"""Check the tables of one rule file against rules_schema.py, collecting every problem with its line.
+"""Check the tables of one rule file against rules_schema.py, collecting every problem and line.
 
 Types, allowed values, ranges, unknown keys (with a close match, a renamed key
 or the table the key belongs in) and missing required keys. The rules between
@@ -34,7 +34,7 @@ def close_match(word: str, choices: Sequence[str]) -> str | None:
 def describe(value: object) -> str:
     """A found value in words, for "must be X, found Y"."""
     if isinstance(value, bool):
-        return f"{str(value).lower()} (true/false)"
+        return f"the true/false value {str(value).lower()}"
     if isinstance(value, str):
         return f'text "{value}"'
     if isinstance(value, Mapping):
@@ -43,7 +43,7 @@ def describe(value: object) -> str:
         return "a list"
     if isinstance(value, int | float):
         return f"the number {value}"
-    return f"a {type(value).__name__}"  # dates and times
+    return f"the {type(value).__name__} {value}"  # dates and times: "the date 2026-12-01"
 
 
 def number(values: Mapping[str, object], key: str) -> float | None:
@@ -78,33 +78,55 @@ class Collector:
 
 
 def _check_number(out: Collector, path: KeyPath, spec: Key, value: object) -> object:
-    if isinstance(value, bool) or not isinstance(value, int | float) or (
-            spec.kind == INTEGER and isinstance(value, float)):
+    if (
+        isinstance(value, bool)
+        or not isinstance(value, int | float)
+        or (spec.kind == INTEGER and isinstance(value, float))
+    ):
         kind = "a number" if spec.kind == NUMBER else "a whole number"
-        hint = (f"Write a plain number, e.g. {spec.name} = {EXAMPLES[spec.kind]} "
-                "(no quotes, no unit, a dot for decimals).")
+        hint = (
+            f"Write a plain number, e.g. {spec.name} = {EXAMPLES[NUMBER]} "
+            "(no quotes, no unit, a dot for decimals)."
+            if spec.kind == NUMBER
+            else f"Write a whole number, e.g. {spec.name} = {EXAMPLES[INTEGER]} (no quotes, no "
+            "decimals)."
+        )
         if isinstance(value, str):
             try:
-                hint = f"Remove the quotes: {spec.name} = {float(value):g}."
+                float(value)
+                hint = f"Remove the quotes: {spec.name} = {value.strip()}."
             except ValueError:
                 pass
-        out.add(f"{show_table(path)} {spec.name} must be {kind}, found {describe(value)}", path,
-                spec.name, hint)
+        out.add(
+            f"{show_table(path)} {spec.name} must be {kind}, found {describe(value)}",
+            path,
+            spec.name,
+            hint,
+        )
         return None
     if not math.isfinite(value):
-        out.add(f"{show_table(path)} {spec.name} must be a finite number, found {value}", path,
-                spec.name, "Give a real limit, or leave the key out.")
+        out.add(
+            f"{show_table(path)} {spec.name} must be a finite number, found {value}",
+            path,
+            spec.name,
+            "Give a real limit, or leave the key out.",
+        )
         return None
-    if spec.minimum is not None and (value <= spec.minimum if spec.minimum_exclusive
-                                     else value < spec.minimum):
+    if spec.minimum is not None and (
+        value <= spec.minimum if spec.minimum_exclusive else value < spec.minimum
+    ):
         bound = f"{'greater than' if spec.minimum_exclusive else 'at least'} {spec.minimum:g}"
     elif spec.maximum is not None and value > spec.maximum:
         bound = f"at most {spec.maximum:g}"
     else:
         return float(value) if spec.kind == NUMBER else value
     unit = f" {spec.unit}" if spec.unit else ""
-    out.add(f"{show_table(path)} {spec.name} = {out.raw(path, spec.name, value)}{unit} is out of "
-            "range", path, spec.name, f"It must be {bound}{unit}.")
+    out.add(
+        f"{show_table(path)} {spec.name} = {out.raw(path, spec.name, value)}{unit} is out of range",
+        path,
+        spec.name,
+        f"It must be {bound}{unit}.",
+    )
     return None
 
 
@@ -117,24 +139,43 @@ def check_value(out: Collector, path: KeyPath, spec: Key, table: str, value: obj
         if isinstance(value, list) and all(isinstance(v, str) for v in value):
             return tuple(value)
         example = f'["{value}"]' if isinstance(value, str) else EXAMPLES[TEXT_LIST]
-        out.add(f"{where} {spec.name} must be a list of text, found {describe(value)}", path,
-                spec.name, f"Write it in square brackets, e.g. {spec.name} = {example}.")
+        out.add(
+            f"{where} {spec.name} must be a list of text, found {describe(value)}",
+            path,
+            spec.name,
+            f"Write it in square brackets, e.g. {spec.name} = {example}.",
+        )
         return None
     if not isinstance(value, str):
-        shown = value if isinstance(value, int | float) and not isinstance(value, bool) else "..."
-        out.add(f"{where} {spec.name} must be text, found {describe(value)}", path, spec.name,
-                f'Put the value in double quotes, e.g. {spec.name} = "{shown}".')
+        shown = "..." if isinstance(value, bool | list | Mapping) else value
+        out.add(
+            f"{where} {spec.name} must be text, found {describe(value)}",
+            path,
+            spec.name,
+            f'Put the value in double quotes, e.g. {spec.name} = "{shown}".',
+        )
         return None
     if spec.required and not value.strip():
-        out.add(f"{where} {spec.name} is empty", path, spec.name,
-                f"Write the {spec.name} between the quotes ({spec.meaning}).")
+        out.add(
+            f"{where} {spec.name} is empty",
+            path,
+            spec.name,
+            f"Write the {spec.name} between the quotes ({spec.meaning}).",
+        )
         return None
     allowed = spec.allowed or _DYNAMIC_ALLOWED.get((table, spec.name), ())
     if allowed and value not in allowed:
         guess = close_match(value, allowed)
+        listing = f"Allowed: {', '.join(allowed)}."
+        if allowed is METRIC_NAMES:  # long: name the docs instead when there is a good guess
+            listing = "docs/rules.md lists every metric." if guess else listing
         kind = "metric" if allowed is METRIC_NAMES else "value"
-        out.add(f'{where} {spec.name} = "{value}" is not a known {kind}', path, spec.name,
-                (f"Did you mean '{guess}'? " if guess else "") + f"Allowed: {', '.join(allowed)}.")
+        out.add(
+            f'{where} {spec.name} = "{value}" is not a known {kind}',
+            path,
+            spec.name,
+            (f"Did you mean '{guess}'? " if guess else "") + listing,
+        )
         return None
     return value
 
@@ -143,12 +184,22 @@ def _unknown_key(out: Collector, path: KeyPath, table: Table, key: str) -> None:
     where = show_table(path)
     if (table.name, key) in RENAMED:
         new = RENAMED[(table.name, key)]
-        out.add(f"key '{key}' in {where} was renamed to '{new}'", path, key,
-                f"Rename it to '{new}'; its meaning is unchanged.")
+        out.add(
+            f"key '{key}' in {where} was renamed to '{new}'",
+            path,
+            key,
+            f"Rename it to '{new}'; its meaning is unchanged.",
+        )
         return
     homes = [t.header for t in TABLES if t is not table and t.key(key)]
     guess = close_match(key, [k.name for k in table.keys])
-    if homes:
+    own = next((t for t in TABLES if t.name == key), None)
+    if own is not None:
+        hint = (
+            f"{own.header} is a table of its own: start it with its own header line, "
+            f"not as a key inside {where}."
+        )
+    elif homes:
         hint = f"'{key}' belongs in {' or '.join(homes)}, not in {where}."
     elif guess:
         hint = f"Did you mean '{guess}'?"
@@ -160,43 +211,66 @@ def _unknown_key(out: Collector, path: KeyPath, table: Table, key: str) -> None:
 def check_table(out: Collector, path: KeyPath, table: Table, data: object) -> Values:
     """Check one table's keys and values; return the valid values with defaults filled in."""
     if not isinstance(data, Mapping):
-        out.add(f"{show_table(path)} must be a table, found {describe(data)}", path,
-                hint=f"Write it as a table: a line {show_table(path)} with its keys below it.")
+        out.add(
+            f"{show_table(path)} must be a table, found {describe(data)}",
+            path,
+            hint=f"Write it as a table: a line {show_table(path)} with its keys below it.",
+        )
         return {}
     values: Values = {}
+    unknown = False
     for key, value in data.items():
         spec = table.key(key)
         if spec is None:
             _unknown_key(out, path, table, key)
+            unknown = True
             continue
         checked = check_value(out, path, spec, table.name, value)
         if checked is not None:
             values[key] = checked
     for spec in table.keys:
         if spec.required and spec.name not in data:
-            out.add(f"{show_table(path)} has no '{spec.name}'", path,
-                    hint=f"Add a line {spec.name} = {EXAMPLES[spec.kind]} ({spec.meaning}).")
+            if not unknown:  # else the unknown key is most likely this one misspelt
+                out.add(
+                    f"{show_table(path)} has no '{spec.name}'",
+                    path,
+                    hint=f"Add a line such as {spec.name} = {spec.example} ({spec.meaning}).",
+                )
         elif spec.name not in data and spec.default is not None:
             values[spec.name] = spec.default
     return values
 
 
-def check_family(out: Collector, table: Table, data: object) -> dict[str, Values]:
-    """Check a family of named tables such as [check.ID]; return the problem-free ones by ID."""
+def check_family(out: Collector, table: Table, data: object) -> tuple[dict[str, Values], set[str]]:
+    """Check a family of named tables such as [check.ID].
+
+    Returns the valid values of every entry by ID, and the IDs of entries with a problem
+    (their remaining values are still returned, so that later checks can report more).
+    """
     path = (table.name,)
     if not isinstance(data, Mapping):
-        out.add(f"{table.name} must be a set of tables, found {describe(data)}", path,
-                hint=f"Write one table per entry, e.g. {table.header}.")
-        return {}
+        written = f"[[{table.name}]]" if isinstance(data, list) else f"{table.name} = ..."
+        out.add(
+            f"{table.name} must be written as {table.header} tables, found {describe(data)}",
+            path,
+            hint=f"Give each entry its own table with its name in the header, e.g. "
+            f"{table.header}, instead of {written}.",
+        )
+        return {}, set()
     members: dict[str, Values] = {}
+    broken: set[str] = set()
     for ident, body in data.items():
         if not isinstance(body, Mapping):
-            out.add(f"{show_table(path)} has a plain key '{ident}' where a table per entry "
-                    "belongs", path, ident, hint=f"Put the entry's name in the header, e.g. "
-                    f"[{table.name}.NAME], and its keys below it.")
+            out.add(
+                f"{show_table(path)} has a plain key '{ident}' where a table per entry belongs",
+                path,
+                ident,
+                hint=f"Put the entry's name in the header, e.g. "
+                f"[{table.name}.NAME], and its keys below it.",
+            )
             continue
         before = len(out.errors)
-        values = check_table(out, path + (ident,), table, body)
-        if len(out.errors) == before:
-            members[ident] = values
-    return members
+        members[ident] = check_table(out, (*path, ident), table, body)
+        if len(out.errors) > before:
+            broken.add(ident)
+    return members, broken

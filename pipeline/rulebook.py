@@ -22,22 +22,40 @@ from dataclasses import dataclass
 from pipeline.errors import InputError, RulesError
 from pipeline.metricdefs import BY_NAME, METRIC_NAMES
 from pipeline.model import (
-    CellType, Hazard, PlateauSettings, Rule, RuleSet, Severity, SourceRef, Window,
+    CellType,
+    Hazard,
+    PlateauSettings,
+    Rule,
+    RuleSet,
+    Severity,
+    SourceRef,
+    Window,
 )
 from pipeline.rule_tables import (
-    Collector, Values, check_family, check_table, close_match, number,
+    Collector,
+    Values,
+    check_family,
+    check_table,
+    close_match,
+    number,
 )
 from pipeline.rules_schema import BY_TABLE, FRACTION_LIMIT, FRACTION_METRICS, TABLES
 from pipeline.toml_lines import KeyPath, show_table, syntax_position
 
 _UNIT_WORDS = {
-    "V": "volts", "Ah": "ampere-hours", "Wh": "watt-hours", "s": "seconds",
-    "mOhm": "milliohms", "mV/h": "millivolts per hour", "°C": "degrees Celsius", "%": "percent",
+    "V": "volts",
+    "Ah": "ampere-hours",
+    "Wh": "watt-hours",
+    "s": "seconds",
+    "mOhm": "milliohms",
+    "mV/h": "millivolts per hour",
+    "°C": "degrees Celsius",
+    "%": "percent",
 }
 _MISSING_HINTS = {
     "rule_set": "Add a [rule_set] table with name, revision and chemistry at the top of the file.",
     "cell_type": "Add one table per cell type, e.g. [cell_type.DEMO-1] with a line "
-                 "nominal_capacity_Ah = 10.0 below it.",
+    "nominal_capacity_Ah = 10.0 below it.",
     "check": "Add at least one [check.ID] table; without checks every cell would pass.",
 }
 
@@ -45,75 +63,134 @@ _MISSING_HINTS = {
 def _unknown_top(out: Collector, key: str) -> None:
     homes = [t.header for t in TABLES if t.key(key)]
     if homes:
-        out.add(f"key '{key}' is outside any table", (key,),
-                hint=f"It belongs in {' or '.join(homes)}: put that table's header line above it.")
+        out.add(
+            f"key '{key}' is outside any table",
+            (key,),
+            hint=f"It belongs in {' or '.join(homes)}: put that table's header line above it.",
+        )
         return
     guess = close_match(key, list(BY_TABLE))
-    out.add(f"unknown table [{key}]", (key,), hint=f"Did you mean [{guess}]?" if guess
-            else f"Allowed tables: {', '.join(t.header for t in TABLES)}.")
+    out.add(
+        f"unknown table [{key}]",
+        (key,),
+        hint=f"Did you mean [{guess}]?"
+        if guess
+        else f"Allowed tables: {', '.join(t.header for t in TABLES)}.",
+    )
 
 
-def _check_order(out: Collector, path: KeyPath, keys: tuple[str, str], low: float, high: float,
-                 unit: str, hint: str) -> None:
+def _check_order(
+    out: Collector,
+    path: KeyPath,
+    keys: tuple[str, str],
+    low: float,
+    high: float,
+    unit: str,
+    hint: str,
+) -> None:
     """Record a problem when ``low`` (under keys[0]) is above ``high`` (under keys[1])."""
     if low > high:
         raw_low, raw_high = out.raw(path, keys[0], low), out.raw(path, keys[1], high)
-        out.add(f"{show_table(path)} {keys[1]} = {raw_high}{unit} is below {keys[0]} = "
-                f"{raw_low}{unit}", path, keys[1], hint)
+        out.add(
+            f"{show_table(path)} {keys[1]} = {raw_high}{unit} is below {keys[0]} = {raw_low}{unit}",
+            path,
+            keys[1],
+            hint,
+        )
 
 
 def _swap_hint(unit: str, relative: bool) -> str:
     if relative:
         return "Swap the two values, or check that both are fractions of the nominal capacity."
     words = _UNIT_WORDS.get(unit)
-    return f"Swap the two values, or check that both are in {words}." if words else (
-        "Swap the two values.")
+    return (
+        f"Swap the two values, or check that both are in {words}."
+        if words
+        else ("Swap the two values.")
+    )
 
 
-def _build_rule(out: Collector, ident: str, v: Values, declared: Sequence[str]) -> Rule | None:
-    """Cross-key checks of one [check.ID] whose keys are valid; the Rule, or None on a problem."""
+def _build_rule(
+    out: Collector, ident: str, v: Values, declared: Sequence[str], broken: bool
+) -> Rule | None:
+    """Cross-key checks of one [check.ID]; the Rule, or None if it has a problem.
+
+    ``v`` holds only the values that passed the schema; ``broken`` says some did not.
+    """
     path, before = ("check", ident), len(out.errors)
-    metric, relative = str(v["metric"]), str(v.get("relative_to", "")) or None
+    metric, relative = str(v.get("metric", "")), str(v.get("relative_to", "")) or None
     low, high = number(v, "low"), number(v, "high")
+    if metric not in BY_NAME:  # missing or unknown: already reported
+        return None
     unit = BY_NAME[metric].unit
     shown_unit = f" {unit}" if unit and not relative else ""
-    if low is None and high is None:
-        out.add(f"{show_table(path)} has neither low nor high", path,
-                hint="Give low, high or both; a check without a window can never fail.")
+    if low is None and high is None and not broken:  # if broken, a refused bound is likelier
+        out.add(
+            f"{show_table(path)} has neither low nor high",
+            path,
+            hint="Give low, high or both; a check without a window can never fail.",
+        )
     elif low is not None and high is not None:
-        _check_order(out, path, ("low", "high"), low, high, shown_unit,
-                     _swap_hint(unit, relative is not None))
+        _check_order(
+            out,
+            path,
+            ("low", "high"),
+            low,
+            high,
+            shown_unit,
+            _swap_hint(unit, relative is not None),
+        )
     if relative and not BY_NAME[metric].relative_ok:
         allowed = ", ".join(m for m in METRIC_NAMES if BY_NAME[m].relative_ok)
-        out.add(f'{show_table(path)} relative_to = "{relative}" cannot be used with metric '
-                f"'{metric}'", path, "relative_to", f"Give low and high in the metric's own "
-                f"unit and remove relative_to; only {allowed} can be relative.")
+        in_unit = f"in {unit}" if unit else "as plain numbers"
+        out.add(
+            f'{show_table(path)} relative_to = "{relative}" cannot be used with metric '
+            f"'{metric}'",
+            path,
+            "relative_to",
+            f"Give low and high {in_unit} and remove relative_to; only {allowed} can be relative.",
+        )
     elif relative or metric in FRACTION_METRICS:
         for key, bound in (("low", low), ("high", high)):
             if bound is not None and abs(bound) > FRACTION_LIMIT:
                 of = " of the nominal capacity" if relative else ""
-                out.add(f"{show_table(path)} {key} = {out.raw(path, key, bound)} is not a "
-                        "fraction", path, key, f"{metric} is judged as a fraction{of}: write "
-                        f"{bound / 100:g} for {bound:g} %.")
-    if "hazard" in v and v["severity"] == Severity.REVIEW.value:
-        out.add(f'{show_table(path)} names a hazard but its severity is "review"', path,
-                "hazard", 'Hazards are reported for reject checks only: set severity = '
-                '"reject", or remove hazard.')
+                out.add(
+                    f"{show_table(path)} {key} = {out.raw(path, key, bound)} is not a fraction",
+                    path,
+                    key,
+                    f"{metric} is judged as a fraction{of}: write {bound / 100:g} for {bound:g} %.",
+                )
+    if "hazard" in v and v.get("severity") == Severity.REVIEW.value:
+        out.add(
+            f'{show_table(path)} names a hazard but its severity is "review"',
+            path,
+            "hazard",
+            "Hazards are reported for reject checks only: set severity = "
+            '"reject", or remove hazard.',
+        )
     listed = v.get("cell_types", ())
     cell_types = tuple(str(c) for c in listed) if isinstance(listed, tuple) else ()
     for name in cell_types:
         if name not in declared:
             guess = close_match(name, declared)
-            out.add(f"{show_table(path)} cell_types names '{name}', which this file does not "
-                    "declare", path, "cell_types", (f"Did you mean '{guess}'? " if guess else "")
-                    + f"Declared cell types: {', '.join(declared)}.")
-    if len(out.errors) > before:
+            out.add(
+                f"{show_table(path)} cell_types names '{name}', which this file does not declare",
+                path,
+                "cell_types",
+                (f"Did you mean '{guess}'? " if guess else "")
+                + f"Declared cell types: {', '.join(declared)}.",
+            )
+    if broken or len(out.errors) > before:
         return None
     return Rule(
-        id=ident, metric=metric, window=Window(low, high, relative),
+        id=ident,
+        metric=metric,
+        window=Window(low, high, relative),
         severity=Severity(v["severity"]),
         hazard=Hazard(v["hazard"]) if "hazard" in v else None,
-        message=str(v["message"]), if_missing=str(v["if_missing"]), cell_types=cell_types,
+        message=str(v["message"]),
+        if_missing=str(v["if_missing"]),
+        cell_types=cell_types,
         where=out.where(path),
     )
 
@@ -121,15 +198,29 @@ def _build_rule(out: Collector, ident: str, v: Values, declared: Sequence[str]) 
 def _build_cell_type(out: Collector, ident: str, v: Values, plausible: Values) -> CellType | None:
     path = ("cell_type", ident)
     low = number(v, "min_voltage_V") if "min_voltage_V" in v else number(plausible, "min_voltage_V")
-    high = number(v, "max_voltage_V") if "max_voltage_V" in v else number(plausible, "max_voltage_V")
+    high = (
+        number(v, "max_voltage_V") if "max_voltage_V" in v else number(plausible, "max_voltage_V")
+    )
     nominal = number(v, "nominal_capacity_Ah")
     if low is None or high is None or nominal is None:
         return None  # [plausible] had a problem, already recorded
     if low > high and ("min_voltage_V" in v or "max_voltage_V" in v):
-        _check_order(out, path, ("min_voltage_V", "max_voltage_V"), low, high, " V",
-                     "Swap the two values, or check [plausible] and this cell type together.")
+        _check_order(
+            out,
+            path,
+            ("min_voltage_V", "max_voltage_V"),
+            low,
+            high,
+            " V",
+            "Swap the two values, or check [plausible] and this cell type together.",
+        )
         return None
     return CellType(ident, nominal, low, high, str(v["description"]), out.where(path))
+
+
+def _line_order(error: RulesError) -> tuple[bool, int]:
+    line = error.where.line if error.where else None
+    return line is None, line or 0
 
 
 def _parse(text: str, name: str) -> tuple[RuleSet | None, list[RulesError]]:
@@ -139,15 +230,20 @@ def _parse(text: str, name: str) -> tuple[RuleSet | None, list[RulesError]]:
         data = tomllib.loads(text.removeprefix("\ufeff"))
     except tomllib.TOMLDecodeError as exc:
         what, where = syntax_position(exc, name, out.locate.lines)
-        return None, [RulesError(
-            f"invalid TOML ({what})", where, hint="Fix the syntax at that spot; text values "
-            "need double quotes, numbers a dot for decimals, and each table header may appear "
-            "once.")]
+        return None, [
+            RulesError(
+                f"invalid TOML ({what})",
+                where,
+                hint="Fix the syntax at that spot; text values "
+                "need double quotes, numbers a dot for decimals, and each table header may appear "
+                "once.",
+            )
+        ]
     for key in data:
         if key not in BY_TABLE:
             _unknown_top(out, key)
     plain: dict[str, Values] = {}
-    families: dict[str, dict[str, Values]] = {}
+    families: dict[str, tuple[dict[str, Values], set[str]]] = {}
     for table in TABLES:
         present = table.name in data and data[table.name] != {}
         if table.required and not present:
@@ -159,27 +255,52 @@ def _parse(text: str, name: str) -> tuple[RuleSet | None, list[RulesError]]:
     plausible = plain["plausible"]
     low, high = number(plausible, "min_voltage_V"), number(plausible, "max_voltage_V")
     if low is not None and high is not None:
-        _check_order(out, ("plausible",), ("min_voltage_V", "max_voltage_V"), low, high, " V",
-                     "Swap the two values.")
-    cell_types = [ct for ident, v in families["cell_type"].items()
-                  if (ct := _build_cell_type(out, ident, v, plausible)) is not None]
+        _check_order(
+            out,
+            ("plausible",),
+            ("min_voltage_V", "max_voltage_V"),
+            low,
+            high,
+            " V",
+            "Swap the two values.",
+        )
+    type_values, broken_types = families["cell_type"]
+    cell_types = [
+        ct
+        for ident, v in type_values.items()
+        if ident not in broken_types
+        and (ct := _build_cell_type(out, ident, v, plausible)) is not None
+    ]
     raw_types = data.get("cell_type")
     declared = [str(k) for k in raw_types] if isinstance(raw_types, Mapping) else []
-    rules = [r for ident, v in families["check"].items()
-             if (r := _build_rule(out, ident, v, declared)) is not None]
+    check_values, broken_checks = families["check"]
+    rules = [
+        r
+        for ident, v in check_values.items()
+        if (r := _build_rule(out, ident, v, declared, ident in broken_checks)) is not None
+    ]
     if not out.errors:
         for ct in cell_types:
             if not any(not r.cell_types or ct.name in r.cell_types for r in rules):
-                out.add(f"no check applies to cell type '{ct.name}'", ("cell_type", ct.name),
-                        hint="Add a check for it, or name it in a check's cell_types; "
-                        "otherwise its cells would pass unjudged.")
+                out.add(
+                    f"no check applies to cell type '{ct.name}'",
+                    ("cell_type", ct.name),
+                    hint="Add a check for it, or name it in a check's cell_types; "
+                    "otherwise its cells would pass unjudged.",
+                )
     if out.errors:
-        return None, sorted(out.errors, key=lambda e: (e.where.line or 0) if e.where else 0)
+        # Problems with a line first, in line order; whole-file problems (often consequences) last.
+        return None, sorted(out.errors, key=_line_order)
     return _assemble(text, name, plain, tuple(cell_types), tuple(rules)), []
 
 
-def _assemble(text: str, name: str, plain: Mapping[str, Values], cell_types: tuple[CellType, ...],
-              rules: tuple[Rule, ...]) -> RuleSet:
+def _assemble(
+    text: str,
+    name: str,
+    plain: Mapping[str, Values],
+    cell_types: tuple[CellType, ...],
+    rules: tuple[Rule, ...],
+) -> RuleSet:
     meta, plateau, measure = plain["rule_set"], plain["plateau_detection"], plain["measurement"]
 
     def num(values: Values, key: str) -> float:
@@ -188,8 +309,11 @@ def _assemble(text: str, name: str, plain: Mapping[str, Values], cell_types: tup
         return found
 
     return RuleSet(
-        name=str(meta["name"]), revision=str(meta["revision"]), chemistry=str(meta["chemistry"]),
-        sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(), source=name,
+        name=str(meta["name"]),
+        revision=str(meta["revision"]),
+        chemistry=str(meta["chemistry"]),
+        sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
+        source=name,
         cell_types=cell_types,
         plateau=PlateauSettings(
             flatness_mv_per_pct=num(plateau, "flatness_mV_per_pct"),
@@ -229,11 +353,14 @@ def _duplicates(rule_sets: Sequence[RuleSet]) -> list[RulesError]:
         for ct in rule_set.cell_types:
             first = seen.setdefault(ct.name, ct)
             if first is not ct:
-                errors.append(RulesError(
-                    f"cell type '{ct.name}' is also declared in {first.where}",
-                    ct.where or SourceRef(rule_set.source),
-                    hint="Keep each cell type in one rule file only, so that it has one set of "
-                    "acceptance windows."))
+                errors.append(
+                    RulesError(
+                        f"cell type '{ct.name}' is also declared in {first.where}",
+                        ct.where or SourceRef(rule_set.source),
+                        hint="Keep each cell type in one rule file only, so that it has one set of "
+                        "acceptance windows.",
+                    )
+                )
     return errors
 
 
@@ -265,19 +392,28 @@ class RuleBook:
         known = self.cell_types
         guess = close_match(cell_type, known)
         hint = (f"Did you mean '{guess}'? " if guess else "") + (
-            f"Known cell types: {', '.join(known)}. " if known else "No rule file declares any. ")
+            f"Known cell types: {', '.join(known)}. " if known else "No rule file declares any. "
+        )
         raise InputError(
-            f"no rule set covers cell type '{cell_type}'", SourceRef(source) if source else None,
-            hint=hint + "Correct the file's cell_type, or declare the type in a rule file.")
+            f"no rule set covers cell type '{cell_type}'",
+            SourceRef(source) if source else None,
+            hint=hint + "Correct the file's cell_type, or declare the type in a rule file.",
+        )
 
 
 def _rule_files(path: pathlib.Path) -> list[pathlib.Path] | RulesError:
     if not path.is_dir():
-        return RulesError("rule folder not found", SourceRef(str(path)),
-                          hint="Create it, or give the folder that holds the rule files.")
+        return RulesError(
+            "rule folder not found",
+            SourceRef(str(path)),
+            hint="Create it, or give the folder that holds the rule files.",
+        )
     files = sorted(p for p in path.glob("*.toml") if p.is_file())
-    return files or RulesError("no rule files (*.toml) in this folder", SourceRef(str(path)),
-                               hint="Add at least one rule file; docs/rules.md describes them.")
+    return files or RulesError(
+        "no rule files (*.toml) in this folder",
+        SourceRef(str(path)),
+        hint="Add at least one rule file; docs/rules.md describes them.",
+    )
 
 
 def _read(file: pathlib.Path) -> str | RulesError:
@@ -286,9 +422,13 @@ def _read(file: pathlib.Path) -> str | RulesError:
     try:
         return data.decode("utf-8")
     except UnicodeDecodeError as exc:
-        line = data[:exc.start].count(b"\n") + 1
-        return RulesError(f"not UTF-8 text (byte {exc.start})", SourceRef(str(file), line),
-                                hint="Save the file with UTF-8 encoding.")
+        line = data[: exc.start].count(b"\n") + 1
+        column = exc.start - data.rfind(b"\n", 0, exc.start)  # in bytes, 1-based
+        return RulesError(
+            "not UTF-8 text",
+            SourceRef(str(file), line, column),
+            hint="Save the file with UTF-8 encoding.",
+        )
 
 
 def check_rules_dir(path: pathlib.Path) -> list[RulesError]:

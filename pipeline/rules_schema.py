@@ -1,4 +1,4 @@
-"""The schema of rule files, declared as data: every table and key with type, unit, default, meaning.
+"""The schema of rule files, declared as data: each table and key, its type, unit, default, meaning.
 
 The loader (rulebook.py) checks rule files against these tables and nothing else,
 and ``render_docs`` prints docs/rules.md from the same tables, so an accepted key
@@ -45,6 +45,7 @@ class Key:
     minimum: float | None = None
     minimum_exclusive: bool = False
     maximum: float | None = None
+    example: str = ""  # a value as written in TOML, for hints; required keys have one
 
 
 @dataclass(frozen=True, slots=True)
@@ -68,84 +69,256 @@ class Table:
 _PLATEAU = PlateauSettings()
 
 TABLES: tuple[Table, ...] = (
-    Table("rule_set", "Who the file is: shown on every certificate with the file's SHA-256.", (
-        Key("name", TEXT, "short name of the rule set, e.g. \"lfp-graphite\"", required=True),
-        Key("revision", TEXT, "revision of the file; raise it whenever a value changes",
-            required=True),
-        Key("chemistry", TEXT, "cathode/anode chemistry in words, e.g. \"LFP/graphite\"",
-            required=True),
-        Key("description", TEXT, "free text for people", default=""),
-    ), required=True),
-    Table("plausible", "Bounds outside which a voltage sample means the file is wrong (units, "
-          "wiring, channel), not the cell. A cell type may override them.", (
-        Key("min_voltage_V", NUMBER, "lowest plausible terminal voltage", unit="V", default=-0.1),
-        Key("max_voltage_V", NUMBER, "highest plausible terminal voltage", unit="V", default=5.0),
-    )),
-    Table("cell_type", "One table per cell type the rule set covers; ID is the cell type "
-          "exactly as data files name it in their `cell_type` line. At least one is required, "
-          "and a cell type may be declared in one rule file only.", (
-        Key("nominal_capacity_Ah", NUMBER, "rated capacity; windows with relative_to = "
-            "\"nominal_capacity\" are fractions of it", unit="Ah", required=True,
-            minimum=0.0, minimum_exclusive=True),
-        Key("description", TEXT, "free text for people", default=""),
-        Key("min_voltage_V", NUMBER, "overrides [plausible] min_voltage_V for this cell type",
-            unit="V", allowed_note="defaults to [plausible]"),
-        Key("max_voltage_V", NUMBER, "overrides [plausible] max_voltage_V for this cell type",
-            unit="V", allowed_note="defaults to [plausible]"),
-    ), named=True, required=True),
-    Table("plateau_detection", "How plateaus are found on the grading discharge: its voltage "
-          "is resampled against q, the discharged capacity in % of that discharge, smoothed and "
-          "differentiated; a plateau is a run of q where |dV/dq| stays at or below the flatness "
-          "threshold.", (
-        Key("flatness_mV_per_pct", NUMBER, "a plateau is where |dV/dq| stays at or below this",
-            unit="mV/%", default=_PLATEAU.flatness_mv_per_pct, minimum=0.0,
-            minimum_exclusive=True),
-        Key("min_length_pct", NUMBER, "shorter flat runs are not plateaus", unit="%",
-            default=_PLATEAU.min_length_pct, minimum=0.0, minimum_exclusive=True, maximum=100.0),
-        Key("merge_gap_pct", NUMBER, "flat runs closer than this merge into one", unit="%",
-            default=_PLATEAU.merge_gap_pct, minimum=0.0, maximum=100.0),
-        Key("smoothing_pct", NUMBER, "smoothing window before differentiating", unit="%",
-            default=_PLATEAU.smoothing_pct, minimum=0.0, maximum=50.0),
-        Key("grid_points", INTEGER, "points of the uniform capacity grid",
-            default=_PLATEAU.grid_points, minimum=11),
-        Key("ica_bin_mV", NUMBER, "voltage bin width for dQ/dV", unit="mV",
-            default=_PLATEAU.ica_bin_mv, minimum=0.0, minimum_exclusive=True),
-        Key("ica_min_prominence_Ah_per_V", NUMBER, "smallest dQ/dV peak reported",
-            unit="Ah/V", default=_PLATEAU.ica_min_prominence_ah_per_v, minimum=0.0),
-    )),
-    Table("measurement", "How some metrics are measured.", (
-        Key("dcir_pulse_s", NUMBER, "DCIR is read this long into the discharge pulse", unit="s",
-            default=10.0, minimum=0.0, minimum_exclusive=True),
-        Key("relax_s", NUMBER, "the start of the final rest left out of the drift fit",
-            unit="s", default=600.0, minimum=0.0),
-        Key("rest_current_C", NUMBER, "|current| below this many C (nominal capacity per "
-            "hour) counts as rest", unit="C", default=0.002, minimum=0.0,
-            minimum_exclusive=True, maximum=1.0),
-    )),
-    Table("check", "One table per acceptance check; ID names the check on the certificate. "
-          "At least one of low and high; low may not be above high; every cell type must have "
-          "at least one check.", (
-        Key("metric", TEXT, "the metric judged", required=True,
-            allowed_note="a metric name from the table below"),
-        Key("low", NUMBER, "lowest value in window (inclusive)", unit="metric's unit",
-            allowed_note="at least one of low, high"),
-        Key("high", NUMBER, "highest value in window (inclusive)", unit="metric's unit",
-            allowed_note="at least one of low, high"),
-        Key("relative_to", TEXT, "low and high are fractions of this (0.98 = 98 %); only for "
-            "metrics marked relative in the table below", allowed=RELATIVE_REFERENCES),
-        Key("severity", TEXT, "reject: out of window fails the cell; review: it holds the "
-            "cell for a person to decide", required=True,
-            allowed=tuple(s.value for s in Severity)),
-        Key("hazard", TEXT, "caution printed when this reject check fails (reject checks only)",
-            allowed=tuple(h.value for h in Hazard)),
-        Key("message", TEXT, "sentence shown when the value is out of window", default=""),
-        Key("if_missing", TEXT, "hold: a value that is missing or blocked by a data-quality "
-            "note holds the cell; skip: the check is left out", default="hold",
-            allowed=IF_MISSING),
-        Key("cell_types", TEXT_LIST, "restrict the check to these cell types of the file; "
-            "empty: every cell type",
-            allowed_note="cell types declared in this file", default=()),
-    ), named=True, required=True),
+    Table(
+        "rule_set",
+        "Who the file is: shown on every certificate with the file's SHA-256.",
+        (
+            Key(
+                "name",
+                TEXT,
+                'short name of the rule set, e.g. "lfp-graphite"',
+                required=True,
+                example='"lfp-graphite"',
+            ),
+            Key(
+                "revision",
+                TEXT,
+                "revision of the file; raise it whenever a value changes",
+                required=True,
+                example='"2026-12-01.1"',
+            ),
+            Key(
+                "chemistry",
+                TEXT,
+                'cathode/anode chemistry in words, e.g. "LFP/graphite"',
+                required=True,
+                example='"LFP/graphite"',
+            ),
+            Key("description", TEXT, "free text for people", default=""),
+        ),
+        required=True,
+    ),
+    Table(
+        "plausible",
+        "Bounds outside which a voltage sample means the file is wrong (units, "
+        "wiring, channel), not the cell. A cell type may override them.",
+        (
+            Key(
+                "min_voltage_V", NUMBER, "lowest plausible terminal voltage", unit="V", default=-0.1
+            ),
+            Key(
+                "max_voltage_V", NUMBER, "highest plausible terminal voltage", unit="V", default=5.0
+            ),
+        ),
+    ),
+    Table(
+        "cell_type",
+        "One table per cell type the rule set covers; ID is the cell type "
+        "exactly as data files name it in their `cell_type` line. At least one is required, "
+        "and a cell type may be declared in one rule file only.",
+        (
+            Key(
+                "nominal_capacity_Ah",
+                NUMBER,
+                'rated capacity; windows with relative_to = "nominal_capacity" are fractions of it',
+                unit="Ah",
+                required=True,
+                minimum=0.0,
+                minimum_exclusive=True,
+                example="20.0",
+            ),
+            Key("description", TEXT, "free text for people", default=""),
+            Key(
+                "min_voltage_V",
+                NUMBER,
+                "overrides [plausible] min_voltage_V for this cell type",
+                unit="V",
+                allowed_note="defaults to [plausible]",
+            ),
+            Key(
+                "max_voltage_V",
+                NUMBER,
+                "overrides [plausible] max_voltage_V for this cell type",
+                unit="V",
+                allowed_note="defaults to [plausible]",
+            ),
+        ),
+        named=True,
+        required=True,
+    ),
+    Table(
+        "plateau_detection",
+        "How plateaus are found on the grading discharge: its voltage "
+        "is resampled against q, the discharged capacity in % of that discharge, smoothed and "
+        "differentiated; a plateau is a run of q where |dV/dq| stays at or below the flatness "
+        "threshold.",
+        (
+            Key(
+                "flatness_mV_per_pct",
+                NUMBER,
+                "a plateau is where |dV/dq| stays at or below this",
+                unit="mV/%",
+                default=_PLATEAU.flatness_mv_per_pct,
+                minimum=0.0,
+                minimum_exclusive=True,
+            ),
+            Key(
+                "min_length_pct",
+                NUMBER,
+                "shorter flat runs are not plateaus",
+                unit="%",
+                default=_PLATEAU.min_length_pct,
+                minimum=0.0,
+                minimum_exclusive=True,
+                maximum=100.0,
+            ),
+            Key(
+                "merge_gap_pct",
+                NUMBER,
+                "flat runs closer than this merge into one",
+                unit="%",
+                default=_PLATEAU.merge_gap_pct,
+                minimum=0.0,
+                maximum=100.0,
+            ),
+            Key(
+                "smoothing_pct",
+                NUMBER,
+                "smoothing window before differentiating",
+                unit="%",
+                default=_PLATEAU.smoothing_pct,
+                minimum=0.0,
+                maximum=50.0,
+            ),
+            Key(
+                "grid_points",
+                INTEGER,
+                "points of the uniform capacity grid",
+                default=_PLATEAU.grid_points,
+                minimum=11,
+            ),
+            Key(
+                "ica_bin_mV",
+                NUMBER,
+                "voltage bin width for dQ/dV",
+                unit="mV",
+                default=_PLATEAU.ica_bin_mv,
+                minimum=0.0,
+                minimum_exclusive=True,
+            ),
+            Key(
+                "ica_min_prominence_Ah_per_V",
+                NUMBER,
+                "smallest dQ/dV peak reported",
+                unit="Ah/V",
+                default=_PLATEAU.ica_min_prominence_ah_per_v,
+                minimum=0.0,
+            ),
+        ),
+    ),
+    Table(
+        "measurement",
+        "How some metrics are measured.",
+        (
+            Key(
+                "dcir_pulse_s",
+                NUMBER,
+                "DCIR is read this long into the discharge pulse",
+                unit="s",
+                default=10.0,
+                minimum=0.0,
+                minimum_exclusive=True,
+            ),
+            Key(
+                "relax_s",
+                NUMBER,
+                "the start of the final rest left out of the drift fit",
+                unit="s",
+                default=600.0,
+                minimum=0.0,
+            ),
+            Key(
+                "rest_current_C",
+                NUMBER,
+                "|current| below this many C (nominal capacity per hour) counts as rest",
+                unit="C",
+                default=0.002,
+                minimum=0.0,
+                minimum_exclusive=True,
+                maximum=1.0,
+            ),
+        ),
+    ),
+    Table(
+        "check",
+        "One table per acceptance check; ID names the check on the certificate. "
+        "At least one of low and high; low may not be above high; every cell type must have "
+        "at least one check.",
+        (
+            Key(
+                "metric",
+                TEXT,
+                "the metric judged",
+                required=True,
+                allowed_note="a metric name from the table below",
+                example='"grading_capacity_Ah"',
+            ),
+            Key(
+                "low",
+                NUMBER,
+                "lowest value in window (inclusive)",
+                unit="metric's unit",
+                allowed_note="at least one of low, high",
+            ),
+            Key(
+                "high",
+                NUMBER,
+                "highest value in window (inclusive)",
+                unit="metric's unit",
+                allowed_note="at least one of low, high",
+            ),
+            Key(
+                "relative_to",
+                TEXT,
+                "low and high are fractions of this (0.98 = 98 %); only for "
+                "metrics marked relative in the table below",
+                allowed=RELATIVE_REFERENCES,
+            ),
+            Key(
+                "severity",
+                TEXT,
+                "reject: out of window fails the cell; review: it holds the "
+                "cell for a person to decide",
+                required=True,
+                allowed=tuple(s.value for s in Severity),
+                example='"reject"',
+            ),
+            Key(
+                "hazard",
+                TEXT,
+                "caution printed when this reject check fails (reject checks only)",
+                allowed=tuple(h.value for h in Hazard),
+            ),
+            Key("message", TEXT, "sentence shown when the value is out of window", default=""),
+            Key(
+                "if_missing",
+                TEXT,
+                "hold: a value that is missing or blocked by a data-quality "
+                "note holds the cell; skip: the check is left out",
+                default="hold",
+                allowed=IF_MISSING,
+            ),
+            Key(
+                "cell_types",
+                TEXT_LIST,
+                "restrict the check to these cell types of the file; empty: every cell type",
+                allowed_note="cell types declared in this file",
+                default=(),
+            ),
+        ),
+        named=True,
+        required=True,
+    ),
 )
 
 BY_TABLE: dict[str, Table] = {t.name: t for t in TABLES}
@@ -156,7 +329,7 @@ RENAMED: dict[tuple[str, str], str] = {
     ("check", "max"): "high",
 }
 
-EXAMPLE = '''\
+EXAMPLE = """\
 [rule_set]
 name = "demo"
 revision = "2026-01-01.1"
@@ -172,7 +345,7 @@ relative_to = "nominal_capacity"
 severity = "reject"
 hazard = "abnormal_capacity"
 message = "Grading capacity below rated capacity."
-'''
+"""
 
 
 def _cell(text: str) -> str:
@@ -219,7 +392,7 @@ def render_docs() -> str:
         "",
         "Verdict: **fail** if a `reject` check is out of window; otherwise **hold** if a "
         "`review` check is out of window or a check could not be judged (value missing, or "
-        "blocked by a data-quality note, with `if_missing = \"hold\"`); otherwise **pass**. "
+        'blocked by a data-quality note, with `if_missing = "hold"`); otherwise **pass**. '
         "The hazards of failed `reject` checks add their cautions to the certificate.",
         "",
         "Unknown tables and keys are errors (a misspelt key must never skip a check).",
@@ -228,21 +401,30 @@ def render_docs() -> str:
     for table in TABLES:
         title = table.header + (" (required)" if table.required else "")
         out += [f"## {title}", "", table.meaning, ""]
-        out += ["| key | type | unit | allowed values | default | meaning |",
-                "|---|---|---|---|---|---|"]
+        out += [
+            "| key | type | unit | allowed values | default | meaning |",
+            "|---|---|---|---|---|---|",
+        ]
         for key in table.keys:
             out.append(
                 f"| `{key.name}` | {key.kind} | {_cell(key.unit)} | {_cell(_allowed_text(key))} "
                 f"| {_cell(_default_text(key))} | {_cell(key.meaning)} |"
             )
         out.append("")
-    out += ["## Metrics", "",
-            "The names a check's `metric` may take (the JSON keys of the result file). "
-            "Fractions are written as fractions: 0.95, not 95.", "",
-            "| metric | unit | relative to nominal capacity | meaning |", "|---|---|---|---|"]
+    out += [
+        "## Metrics",
+        "",
+        "The names a check's `metric` may take (the JSON keys of the result file). "
+        "Fractions are written as fractions: 0.95, not 95.",
+        "",
+        "| metric | unit | relative to nominal capacity | meaning |",
+        "|---|---|---|---|",
+    ]
     for m in METRICS:
-        out.append(f"| `{m.name}` | {_cell(m.unit)} | {'yes' if m.relative_ok else ''} "
-                   f"| {_cell(m.meaning)} |")
+        out.append(
+            f"| `{m.name}` | {_cell(m.unit)} | {'yes' if m.relative_ok else ''} "
+            f"| {_cell(m.meaning)} |"
+        )
     out += ["", "## Renamed keys", "", "| table | old key | new key |", "|---|---|---|"]
     for (table_name, old), new in sorted(RENAMED.items()):
         out.append(f"| `{BY_TABLE[table_name].header}` | `{old}` | `{new}` |")

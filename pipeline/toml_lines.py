@@ -53,7 +53,7 @@ def read_key(s: str, i: int) -> tuple[KeyPath, int] | None:
             end = _string_end(s, i)
             if end > len(s):
                 return None
-            raw = s[i + 1:end - 1]
+            raw = s[i + 1 : end - 1]
             parts.append(raw.replace('\\"', '"').replace("\\\\", "\\") if s[i] == '"' else raw)
             i = end
         else:
@@ -90,7 +90,7 @@ class Locator:
                     self._found.setdefault(table, number)
                 continue
             key = read_key(stripped, 0)
-            if key is None or not stripped[key[1]:].startswith("="):
+            if key is None or not stripped[key[1] :].startswith("="):
                 continue
             for k in range(1, len(key[0]) + 1):  # a dotted key also opens its tables
                 self._found.setdefault(table + key[0][:k], number)
@@ -105,7 +105,7 @@ class Locator:
                     return
                 self._string, i = "", end + 3
             elif s.startswith(('"""', "'''"), i):
-                self._string, i = s[i:i + 3], i + 3
+                self._string, i = s[i : i + 3], i + 3
             elif s[i] in "\"'":
                 i = _string_end(s, i)
             elif s[i] == "#":
@@ -120,28 +120,33 @@ class Locator:
         >>> Locator('[check.a]\\nlow = 1\\n').line(("check", "a"), "high")
         1
         """
-        if key is not None and path + (key,) in self._found:
-            return self._found[path + (key,)]
+        if key is not None and (*path, key) in self._found:
+            return self._found[(*path, key)]
         while path:
             if path in self._found:
                 return self._found[path]
+            below = [n for p, n in self._found.items() if p[: len(path)] == path]
+            if below:  # only subtables were written, e.g. [checks.x] for path ("checks",)
+                return min(below)
             path = path[:-1]
         return None
 
     def raw_value(self, path: KeyPath, key: str) -> str | None:
         """The value of ``key`` as written, when it is a plain value on the key's own line."""
-        number = self._found.get(path + (key,))
+        number = self._found.get((*path, key))
         if number is None:
             return None
         text = self.lines[number - 1]
         found = read_key(text.lstrip(" \t"), 0)
         if found is None or found[0][-1] != key:
             return None
-        rest = text.lstrip(" \t")[found[1]:]
+        rest = text.lstrip(" \t")[found[1] :]
         return rest[1:].split("#", 1)[0].strip() if rest.startswith("=") else None
 
 
-def syntax_position(exc: tomllib.TOMLDecodeError, name: str, lines: list[str]) -> tuple[str, SourceRef]:
+def syntax_position(
+    exc: tomllib.TOMLDecodeError, name: str, lines: list[str]
+) -> tuple[str, SourceRef]:
     """Split tomllib's message into its text and a SourceRef with line and column.
 
     "at end of document" points at the last line that holds anything.
@@ -150,7 +155,8 @@ def syntax_position(exc: tomllib.TOMLDecodeError, name: str, lines: list[str]) -
     if match is None:  # pragma: no cover - tomllib always adds a position
         return str(exc), SourceRef(name)
     if match.group("line"):
-        return match.group("what"), SourceRef(name, int(match.group("line")),
-                                              int(match.group("col")))
+        return match.group("what"), SourceRef(
+            name, int(match.group("line")), int(match.group("col"))
+        )
     last = max((i for i, line in enumerate(lines, 1) if line.strip()), default=None)
     return match.group("what"), SourceRef(name, last)
