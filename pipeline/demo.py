@@ -113,14 +113,14 @@ def _seed_for(cell: DemoCell, seed: int) -> np.random.Generator:
 def demo_recipe(cell: DemoCell, rng: np.random.Generator) -> CellRecipe:
     """The cell's recipe: the type's baseline, lot spread (capacity +-1 %, R +-5 %), its defect."""
     base = _BASE[cell.cell_type]
-    spread = rng.uniform(-1.0, 1.0, 3)
+    capacity, resistance, loss = (float(v) for v in rng.uniform(-1.0, 1.0, 3))
     recipe = dataclasses.replace(
         base,
-        capacity_factor=base.capacity_factor * (1 + 0.01 * spread[0]),
-        resistance_ohm=base.resistance_ohm * (1 + 0.05 * spread[1]),
-        polarisation_ohm=base.polarisation_ohm * (1 + 0.05 * spread[1]),
-        first_cycle_loss_fraction=base.first_cycle_loss_fraction + 0.005 * spread[2],
-        ambient_swing_c=0.3,
+        capacity_factor=base.capacity_factor * (1 + 0.01 * capacity),
+        resistance_ohm=base.resistance_ohm * (1 + 0.05 * resistance),
+        polarisation_ohm=base.polarisation_ohm * (1 + 0.05 * resistance),
+        first_cycle_loss_fraction=base.first_cycle_loss_fraction + 0.005 * loss,
+        ambient_swing_c=0.3,  # a formation room held within a few tenths of a degree (our own)
     )
     match cell.defect:
         case "":

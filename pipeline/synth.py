@@ -9,15 +9,17 @@ It exists to give the demo and the tests plausible records whose true values
 are known; formgate never uses it to judge a real cell. Writing files is demo.py's job.
 
 Current sign: positive = charge (DESIGN.md, cycle file v1). State of charge ``soc``
-is the fraction of the cell's reversible capacity, 0 at the lower and 1 at the
-upper voltage limit at rest; before the first discharge it starts below 0, by the
-lithium the first charge loses to the solid electrolyte interphase.
+is the fraction of the cell's reversible capacity: 0 where the open-circuit voltage
+meets the discharge cut-off, 1 at the full end of the curve. Before the first
+discharge it starts below 0, by the lithium the first charge loses to the solid
+electrolyte interphase.
 """
 
 from __future__ import annotations
 
 import functools
 import math
+import types
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 
@@ -38,12 +40,16 @@ class Chemistry:
     ocv: OcvFunction  # OCV (V) against the curve's own state of charge 0..1
     min_v: float  # discharge cut-off
     max_v: float  # charge limit (CV level)
-    fresh_v: float  # voltage of the freshly filled cell before its first charge
+    # Voltage of the freshly filled cell before its first charge: our own choice, kept inside
+    # the voltage range a rule set calls plausible (a real fresh cell may read lower).
+    fresh_v: float
     storage_soc: float  # state of charge the program leaves the cell at
-    end_overpotential_v: float  # extra charge overpotential at full charge and 1 C (see _Cell)
+    # Extra charge overpotential at full charge and 1 C (see _Cell); our own values, set so CV
+    # starts at about 97-99 % of the charge at 0.2 C.
+    end_overpotential_v: float
 
 
-CHEMISTRIES: Mapping[str, Chemistry] = {
+CHEMISTRIES: Mapping[str, Chemistry] = types.MappingProxyType({
     # Limits: REFERENCE.md 1.3 (LFP/graphite 3.65 V / 2.5 V: common practice and a
     # datasheet, low authority). LFP storage state of charge is low because LFP
     # self-discharge screening needs the slope below about 35 % (REFERENCE.md 1.5).
@@ -53,7 +59,7 @@ CHEMISTRIES: Mapping[str, Chemistry] = {
     # NMC/LTO: REFERENCE.md 1.3 gives 1.5-1.8 V / 2.7-2.8 V (from memory); our mean-field
     # LTO curve ends more gently than a real one, so our own cut-off sits at 1.85 V.
     "nmc_lto": Chemistry("nmc_lto", ocp.nmc811_lto_cell, 1.85, 2.8, 1.6, 0.5, 0.4),
-}
+})
 
 
 @dataclass(frozen=True, slots=True)
@@ -93,6 +99,10 @@ class CellRecipe:
     is a leakage current flowing at all times (an internal short is a large one).
     ``sloped_fraction`` 0..1 blends the OCV with a straight line (1: no plateau).
     ``fault_heat_w`` is heat released while the cell charges (a local fault).
+
+    Defaults describe an invented 20 Ah LFP/graphite cell: resistances of the order
+    REFERENCE.md 1.6 gives (from memory, low), thermal values our own, 1 mV rms
+    voltage noise (common practice for a cycler channel).
     """
 
     chemistry: str = "lfp_graphite"
