@@ -22,13 +22,17 @@ from pipeline.errors import FormgateError
 EXIT_OK, EXIT_REJECTED, EXIT_USER, EXIT_BUG, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 
 
-def _analysis_time(text: str | None, environ: dict[str, str] | os._Environ[str]) -> datetime.datetime:
+def _analysis_time(
+    text: str | None, environ: dict[str, str] | os._Environ[str]
+) -> datetime.datetime:
     """--analysed-at, else SOURCE_DATE_EPOCH (reproducible output), else now; UTC, whole seconds."""
     if text:
         value = datetime.datetime.fromisoformat(text)
         if value.tzinfo is None:
             raise FormgateError(
-                f"--analysed-at {text!r} has no time zone", None, "Add one, e.g. 2026-12-01T08:00:00+00:00."
+                f"--analysed-at {text!r} has no time zone",
+                None,
+                "Add one, e.g. 2026-12-01T08:00:00+00:00.",
             )
         return value.astimezone(datetime.UTC)
     epoch = environ.get("SOURCE_DATE_EPOCH")
@@ -45,7 +49,7 @@ def _reason(outcome: object) -> str:
         return str(outcome.error).splitlines()[0]
     assert outcome.result is not None
     verdict = outcome.result.verdict
-    text = "; ".join(verdict.reasons) if verdict.reasons else "all checks in window"
+    text = "; ".join(r.rstrip(".") for r in verdict.reasons) if verdict.reasons else "all checks in window"
     if verdict.hazards:
         text += " [hazard: " + ", ".join(h.value for h in verdict.hazards) + "]"
     return text
@@ -67,7 +71,12 @@ def cmd_check(args: argparse.Namespace) -> int:
     worst = EXIT_OK
     for name in args.files:
         outcome = check_file(
-            Path(name), rulebook, out, analysed_at=analysed_at, profile=profile, certificate=not args.no_pdf
+            Path(name),
+            rulebook,
+            out,
+            analysed_at=analysed_at,
+            profile=profile,
+            certificate=not args.no_pdf,
         )
         if outcome.error is not None:
             print(f"{name}  error  {_reason(outcome)}")
@@ -99,7 +108,7 @@ def cmd_rules_check(args: argparse.Namespace) -> int:
 
 def cmd_demo(args: argparse.Namespace) -> int:
     """Write the invented demo lot, check it, print the lot summary."""
-    from pipeline.demo import run_demo
+    from pipeline.demo_check import run_demo
 
     return run_demo(Path(args.folder), analysed_at=_analysis_time(None, os.environ))
 
@@ -121,9 +130,15 @@ def build_parser() -> argparse.ArgumentParser:
     )
     check.add_argument("files", nargs="+", metavar="FILE", help="cycle files (.csv or .csv.gz)")
     check.add_argument("--rules", default="rules", help="folder of rule files (default: rules)")
-    check.add_argument("--out", help="folder for results/ and certificates/ (default: write nothing)")
-    check.add_argument("--profile", help="import profile (TOML) for files not in the cycle file v1 layout")
-    check.add_argument("--no-pdf", action="store_true", help="write JSON results only, no certificates")
+    check.add_argument(
+        "--out", help="folder for results/ and certificates/ (default: write nothing)"
+    )
+    check.add_argument(
+        "--profile", help="import profile (TOML) for files not in the cycle file v1 layout"
+    )
+    check.add_argument(
+        "--no-pdf", action="store_true", help="write JSON results only, no certificates"
+    )
     check.add_argument(
         "--analysed-at", help="analysis time to record, ISO 8601 with zone (default: now)"
     )
@@ -148,7 +163,9 @@ def build_parser() -> argparse.ArgumentParser:
         description="Write an invented lot of cycle files (normal cells and one of each defect) and check it.",
         epilog="example: formgate demo demo-output",
     )
-    demo.add_argument("folder", nargs="?", default="demo-output", help="where to write (default: demo-output)")
+    demo.add_argument(
+        "folder", nargs="?", default="demo-output", help="where to write (default: demo-output)"
+    )
     demo.set_defaults(func=cmd_demo)
     return parser
 
@@ -160,7 +177,9 @@ def _report_bug(exc: BaseException) -> int:
     try:
         home.mkdir(parents=True, exist_ok=True)
         with log.open("a", encoding="utf-8") as fh:
-            fh.write(f"formgate {__version__}, Python {platform.python_version()}, {platform.platform()}\n")
+            fh.write(
+                f"formgate {__version__}, Python {platform.python_version()}, {platform.platform()}\n"
+            )
             fh.write("".join(traceback.format_exception(exc)))
     except OSError:
         log = Path("(log could not be written)")

@@ -55,11 +55,12 @@ def judge(
     all_notes = trace.notes + notes + segmentation.notes + metrics.notes
     verdict = evaluate(rule_set, cell_type, metrics, all_notes)
     return CellResult(
-        source_name=name,
+        # certificates name files, not the folders of the machine that judged them
+        source_name=Path(name).name,
         input_sha256=hashlib.sha256(data).hexdigest(),
         metadata=trace.metadata,
         cell_type=cell_type,
-        rule_set=RuleSetRef(rule_set.name, rule_set.revision, rule_set.sha256, rule_set.source),
+        rule_set=RuleSetRef(rule_set.name, rule_set.revision, rule_set.sha256, Path(rule_set.source).name),
         metrics=metrics,
         verdict=verdict,
         notes=all_notes,

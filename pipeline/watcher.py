@@ -1,0 +1,117 @@
+"""Watch inbox folders: filesystem events wake the station; a scan of the folder is the truth.
+
+Events from watchdog (inotify, or polling for network shares where inotify sees
+nothing) only set a wake-up flag. The station then lists the folder itself
+(:func:`list_folder`), so files whose events were lost, or that arrived while the
+station was down, are found all the same. A supervisor call restarts an observer
+whose thread has died. Deciding what is finished is handoff.py's job.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import threading
+from collections.abc import Sequence
+from pathlib import Path
+
+from watchdog.events import FileSystemEvent, FileSystemEventHandler
+from watchdog.observers import Observer
+from watchdog.observers.api import BaseObserver
+from watchdog.observers.polling import PollingObserver
+
+log = logging.getLogger("formgate.watcher")
+
+
+def list_folder(folder: Path) -> dict[str, tuple[int, int]]:
+    """Regular files directly in ``folder``: name -> (size in bytes, mtime in ns)."""
+    out: dict[str, tuple[int, int]] = {}
+    try:
+        entries = list(os.scandir(folder))
+    except FileNotFoundError:
+        return out
+    for entry in entries:
+        try:
+            if entry.is_file(follow_symlinks=False):
+                st = entry.stat(follow_symlinks=False)
+                out[entry.name] = (st.st_size, st.st_mtime_ns)
+        except FileNotFoundError:  # gone between listing and stat: a writer renamed it
+            continue
+    return out
+
+
+class _Wake(FileSystemEventHandler):
+    def __init__(self, wake: threading.Event) -> None:
+        self._wake = wake
+
+    def on_any_event(self, event: FileSystemEvent) -> None:
+        self._wake.set()
+
+
+class InboxWatcher:
+    """Observers on the inbox folders that set ``wake`` on any change.
+
+    ``polling`` uses watchdog's PollingObserver (for CIFS/NFS shares, where inotify
+    reports nothing: watchdog README). ``supervise()`` restarts a dead observer.
+    """
+
+    def __init__(
+        self,
+        folders: Sequence[Path],
+        wake: threading.Event,
+        *,
+        polling: bool = False,
+        poll_interval_s: float = 2.0,
+    ) -> None:
+        self.folders = tuple(folders)
+        self.wake = wake
+        self.polling = polling
+        self.poll_interval_s = poll_interval_s
+        self._observer: BaseObserver | None = None
+        self.restarts = 0
+
+    def _new_observer(self) -> BaseObserver:
+        observer: BaseObserver
+        if self.polling:
+            observer = PollingObserver(timeout=self.poll_interval_s)
+        else:
+            observer = Observer()
+        handler = _Wake(self.wake)
+        for folder in self.folders:
+            observer.schedule(handler, str(folder), recursive=False)
+        observer.daemon = True
+        return observer
+
+    def start(self) -> None:
+        self._observer = self._new_observer()
+        self._observer.start()
+
+    def alive(self) -> bool:
+        return self._observer is not None and self._observer.is_alive()
+
+    def supervise(self) -> bool:
+        """Restart the observer if its thread has died; True if a restart happened."""
+        if self.alive():
+            return False
+        log.warning("folder observer stopped; restarting it (the periodic scan covered the gap)")
+        self.stop()
+        try:
+            self.start()
+        except OSError as exc:  # e.g. inotify watch limit: the periodic scan still works
+            log.error("cannot restart the folder observer: %s; relying on periodic scans", exc)
+            self._observer = None
+            return False
+        self.restarts += 1
+        self.wake.set()
+        return True
+
+    def stop(self) -> None:
+        observer, self._observer = self._observer, None
+        if observer is None:
+            return
+        try:
+            observer.stop()
+            if observer.is_alive():
+                observer.join(timeout=5)
+        except RuntimeError:  # never started
+            pass
