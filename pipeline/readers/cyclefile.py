@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import csv
 import io
+import math
 import re
 import zlib
 from dataclasses import dataclass, field
@@ -132,8 +133,9 @@ def _decompress(data: bytes, name: str, cap: int) -> bytes:
 
 
 def _too_large(name: str, cap: int) -> InputError:
+    size = f"{cap // 2**20} MiB" if cap % 2**20 == 0 else f"{cap} bytes"
     return InputError(
-        f"the file holds more than {cap / 2**20:g} MiB of text, the most formgate reads",
+        f"the file holds more than {size} of text, the most formgate reads",
         SourceRef(name),
         "Check that the file is one cell's record.",
     )
@@ -268,12 +270,12 @@ def _find_columns(head: _Head, name: str, profile: Profile) -> dict[str, int]:
             raise InputError(
                 f"no column for {quantity} (found: {', '.join(head.fields)})",
                 SourceRef(name, head.header_line),
-                _missing_column_hint(head.fields, header, quantity, profile),
+                _missing_column_hint(head.fields, header, profile),
             )
     return columns
 
 
-def _missing_column_hint(fields: list[str], header: str, quantity: str, profile: Profile) -> str:
+def _missing_column_hint(fields: list[str], header: str, profile: Profile) -> str:
     if len(fields) == 1:
         for mark, word in _DELIMITER_NAMES.items():
             if mark != profile.delimiter and mark in fields[0]:
@@ -281,11 +283,9 @@ def _missing_column_hint(fields: list[str], header: str, quantity: str, profile:
                     f"The header looks {word}-separated: read the file through an import "
                     f'profile with delimiter = "{word}".'
                 )
-    where = (
-        "map it in an import profile"
-        if profile.is_v1
-        else (f"change [columns] {quantity} in the import profile {profile.name}")
-    )
+    where = "map it in an import profile"
+    if not profile.is_v1:
+        where = f"map it under [columns] in the import profile {profile.name}"
     for f in fields:
         if f.lower() == header.lower():
             return f"Rename the column {f} to {header}, or {where}."
@@ -408,7 +408,7 @@ def _diagnose(region: str, head: _Head, name: str, profile: Profile, why: str) -
 
 def _number_pattern(decimal: str) -> re.Pattern[str]:
     d = re.escape(decimal)
-    return re.compile(rf"\s*[+-]?(?:\d+(?:{d}\d*)?|{d}\d+)(?:[eE][+-]?\d+)?\s*")
+    return re.compile(rf"[ \t]*[+-]?(?:[0-9]+(?:{d}[0-9]*)?|{d}[0-9]+)(?:[eE][+-]?[0-9]+)?[ \t]*")
 
 
 def _numbers(
@@ -420,20 +420,23 @@ def _numbers(
         values: FloatArray = series.to_numpy(dtype=np.float64)
     else:  # pandas kept text: some field is not a number under this profile
         number = _number_pattern(profile.decimal)
-        cells = series.tolist()
-        for row, cell in enumerate(cells):
-            if isinstance(cell, str) and cell and not number.fullmatch(cell):
-                raise _not_a_number(cell, row, index, head, name, profile)
-            if isinstance(cell, bool):
-                raise _not_a_number(str(cell), row, index, head, name, profile)
-        # every field looks numeric yet pandas kept text (e.g. a huge integer): convert here
-        values = np.array(
-            [
-                np.nan if c is None or c == "" or c != c else float(str(c).replace(",", "."))
-                for c in cells
-            ],
-            dtype=np.float64,
-        )
+        parsed: list[float] = []
+        for row, cell in enumerate(series.tolist()):
+            if cell is None or cell == "" or (isinstance(cell, float) and math.isnan(cell)):
+                parsed.append(math.nan)
+                continue
+            if isinstance(cell, int | float) and not isinstance(cell, bool):
+                try:  # e.g. a whole number too large for int64
+                    parsed.append(float(cell))
+                except OverflowError:  # too large even for a float: refused as infinite below
+                    parsed.append(math.inf if cell > 0 else -math.inf)
+                continue
+            text = str(cell)
+            if isinstance(cell, bool) or not number.fullmatch(text):
+                raise _not_a_number(text, row, index, head, name, profile)
+            # looks like a number yet pandas kept it as text (e.g. a huge integer)
+            parsed.append(float(text.replace(profile.decimal, ".")))
+        values = np.array(parsed, dtype=np.float64)
     infinite = np.flatnonzero(np.isinf(values))
     if infinite.size:
         row = int(infinite[0])
@@ -453,10 +456,12 @@ def _not_a_number(
     hint = "Fix the value, or leave it empty if it is missing."
     other = "." if profile.decimal == "," else ","
     if _number_pattern(other).fullmatch(cell):
-        word = "comma" if other == "," else "point"
-        hint = (
-            f"The value has a decimal {word}: read the file through an import profile with "
-            f'decimal = "{word}".'
+        word, current = ("comma", "point") if other == "," else ("point", "comma")
+        hint = f'The value has a decimal {word}, but the file is read with decimal = "{current}"'
+        hint += (
+            ": read it through an import profile that says otherwise."
+            if profile.is_v1
+            else f" (import profile {profile.name})."
         )
     return InputError(
         f"{head.fields[index]} is '{shown}', not a number",

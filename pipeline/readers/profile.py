@@ -21,7 +21,6 @@ import re
 import tomllib
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from types import MappingProxyType
 from typing import Any
 
 from pipeline.errors import ProfileError
@@ -42,10 +41,10 @@ REQUIRED_METADATA: tuple[str, ...] = ("cell_id", "lot", "cell_type")
 V1_METADATA: tuple[str, ...] = (*REQUIRED_METADATA, "channel", "station", "program", "started_at")
 
 # Factors that turn file units into the v1 units (s, V, A).
-TIME_UNITS: Mapping[str, float] = MappingProxyType({"s": 1.0, "ms": 1e-3, "min": 60.0, "h": 3600.0})
-VOLTAGE_UNITS: Mapping[str, float] = MappingProxyType({"V": 1.0, "mV": 1e-3})
-CURRENT_UNITS: Mapping[str, float] = MappingProxyType({"A": 1.0, "mA": 1e-3})
-CURRENT_SIGNS: Mapping[str, float] = MappingProxyType(
+TIME_UNITS: Mapping[str, float] = frozen_mapping({"s": 1.0, "ms": 1e-3, "min": 60.0, "h": 3600.0})
+VOLTAGE_UNITS: Mapping[str, float] = frozen_mapping({"V": 1.0, "mV": 1e-3})
+CURRENT_UNITS: Mapping[str, float] = frozen_mapping({"A": 1.0, "mA": 1e-3})
+CURRENT_SIGNS: Mapping[str, float] = frozen_mapping(
     {"charge positive": 1.0, "discharge positive": -1.0}
 )
 DELIMITERS: Mapping[str, str] = frozen_mapping({"comma": ",", "semicolon": ";", "tab": "\t"})
@@ -191,16 +190,22 @@ def _build(doc: dict[str, Any], text: str, name: str) -> Profile:
         return ProfileError(problem, SourceRef(name, _line_of(text, table, key)), hint)
 
     for key, value in doc.items():
-        if isinstance(value, dict):
-            if key not in _TABLES:
-                hint = _suggest(key, _TABLES, "[{}]", known=True)
-                raise fail(f"unknown table [{key}]", key, None, hint)
-        elif key not in _KEYS_BY_TABLE[""]:
-            hint = _suggest(key, _KEYS_BY_TABLE[""] + tuple(f"[{t}]" for t in _TABLES), known=True)
+        if key in _TABLES and not isinstance(value, dict):
+            raise fail(f"'{key}' must be a table, written [{key}]", "", key)
+        if isinstance(value, dict) and key not in _TABLES:
+            hint = _suggest(key, _TABLES, "[{}]", known=True)
+            raise fail(f"unknown table [{key}]", key, None, hint)
+        if not isinstance(value, dict) and key not in _KEYS_BY_TABLE[""]:
+            homes = [t for t in _TABLES if key in _KEYS_BY_TABLE[t]]
+            hint = (
+                "It belongs under " + " or ".join(f"[{t}]" for t in homes) + "."
+                if homes
+                else _suggest(
+                    key, _KEYS_BY_TABLE[""] + tuple(f"[{t}]" for t in _TABLES), known=True
+                )
+            )
             raise fail(f"unknown key '{key}'", "", key, hint)
     for table in _TABLES:
-        if table in doc and not isinstance(doc[table], dict):
-            raise fail(f"'{table}' must be a table, written [{table}]", "", table)
         for key in doc.get(table, {}):
             if "*" not in _KEYS_BY_TABLE[table] and key not in _KEYS_BY_TABLE[table]:
                 hint = _suggest(key, _KEYS_BY_TABLE[table], known=True)
@@ -287,7 +292,8 @@ def _compile_pattern(doc: dict[str, Any], fail: _Fail) -> re.Pattern[str] | None
             f"at character {(exc.pos or 0) + 1}",
             "file",
             "file_name_pattern",
-            "Write it in single quotes ('...') so that backslashes stay as they are.",
+            "Check its brackets; write it in single quotes ('...') so that backslashes stay "
+            "as they are.",
         ) from None
     if not compiled.groupindex:
         raise fail(

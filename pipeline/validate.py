@@ -1,0 +1,306 @@
+"""Data quality of a Trace before it is segmented: refuse what cannot be judged, note the rest.
+
+``validate_trace`` raises InputError for a record nobody should judge (too short, time
+running backwards, long runs of empty fields, no current, currents or voltages that do
+not fit the cell type, which usually means a unit was read wrongly) and returns Notes for
+what can be lived with (a few empty rows, repeated time stamps, gaps, missing
+temperatures). ``drop_invalid_rows`` then removes the few rows with an empty time,
+voltage or current so that later steps see only numbers.
+
+Line numbers: validation runs on the Trace as read, so every line it names is exact.
+After ``drop_invalid_rows`` the Trace keeps its ``first_data_line``; ``line_of(row)`` is
+then exact up to the first dropped row and at most the number of dropped rows (never more
+than ``MAX_EMPTY_FRACTION`` of the file) too low after it.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+import numpy.typing as npt
+
+from pipeline.errors import InputError
+from pipeline.model import CellType, FloatArray, Note, SourceRef, Trace
+
+Mask = npt.NDArray[np.bool_]
+Rows = npt.NDArray[np.intp]  # row numbers (0-based) into a Trace
+
+MIN_ROWS = 10  # common practice: fewer samples cannot show a charge, a rest and a discharge
+MAX_EMPTY_RUN = 5  # rows; common practice: a longer hole hides what the cell did
+MAX_EMPTY_FRACTION = 0.01  # common practice
+# Formation and grading run at 0.02-1 C (REFERENCE.md 1.2 and 1.7, common practice); a
+# current above 20 C or never above 0.001 C is taken as a unit read wrongly or no program.
+MAX_C_RATE = 20.0
+MIN_C_RATE = 0.001
+FLOWING_C_RATE = 0.01  # current counts as flowing across a gap above this (common practice)
+MOST = 0.5  # a unit is suspected when at least this share of the samples is off by 1000
+GAP_FACTOR = 10.0  # a gap is longer than this many median sampling intervals ...
+GAP_MIN_S = 60.0  # ... and longer than this (common practice)
+# Metrics integrated over time: a hole in the record while current flows leaves them guessed.
+CAPACITY_METRICS: tuple[str, ...] = (
+    "first_cycle_efficiency",
+    "irreversible_capacity_Ah",
+    "grading_capacity_Ah",
+    "grading_energy_Wh",
+    "grading_mean_voltage_V",
+    "grading_coulombic_efficiency",
+)
+
+
+def validate_trace(trace: Trace, cell_type: CellType) -> tuple[Note, ...]:
+    """Check that ``trace`` can be judged as a ``cell_type`` cell; return data-quality Notes.
+
+    Raises InputError, naming the line, for anything that prevents judging.
+    """
+    _refuse_short(trace, len(trace))
+    empty = _empty_rows(trace)
+    notes = list(_check_empty_rows(trace, empty))
+    rows = np.flatnonzero(~empty)
+    _refuse_short(trace, len(rows))
+    time_s = trace.time_s[rows]
+    _check_time_order(trace, rows, time_s)
+    _check_voltage(trace, rows, trace.voltage_v[rows], cell_type)
+    _check_current(trace, rows, trace.current_a[rows], cell_type)
+    notes += _note_repeated_times(trace, rows, time_s)
+    notes += _note_gaps(trace, rows, time_s, trace.current_a[rows], cell_type)
+    notes += _note_temperature(trace)
+    return tuple(notes)
+
+
+def drop_invalid_rows(trace: Trace) -> Trace:
+    """The same Trace without rows whose time, voltage or current is empty (NaN).
+
+    Run it after ``validate_trace`` accepted the trace; see the module docstring for
+    what happens to line numbers.
+    """
+    keep = ~_empty_rows(trace)
+    if keep.all():
+        return trace
+    changes = {
+        name: getattr(trace, name)[keep]
+        for name in ("time_s", "voltage_v", "current_a", "temperature_c", "step", "cycle")
+        if getattr(trace, name) is not None
+    }
+    return dataclasses.replace(trace, **changes)
+
+
+def _empty_rows(trace: Trace) -> Mask:
+    return np.isnan(trace.time_s) | np.isnan(trace.voltage_v) | np.isnan(trace.current_a)
+
+
+def _refuse_short(trace: Trace, rows: int) -> None:
+    if rows < MIN_ROWS:
+        raise InputError(
+            f"only {rows} data rows with a time, voltage and current; "
+            f"at least {MIN_ROWS} are needed to judge a cell",
+            SourceRef(trace.source),
+            "Check that the file was copied whole once the channel had finished.",
+        )
+
+
+def _check_empty_rows(trace: Trace, empty: Mask) -> list[Note]:
+    count = int(empty.sum())
+    if not count:
+        return []
+    first = int(np.argmax(empty))
+    what = " or ".join(
+        word
+        for word, values in (
+            ("time", trace.time_s),
+            ("voltage", trace.voltage_v),
+            ("current", trace.current_a),
+        )
+        if np.isnan(values[empty]).any()
+    )
+    start, length = _longest_run(empty)
+    if length > MAX_EMPTY_RUN:
+        raise InputError(
+            f"{length} rows in a row have an empty {what} field "
+            f"(lines {trace.line_of(start)} to {trace.line_of(start + length - 1)})",
+            SourceRef(trace.source, trace.line_of(start)),
+            f"formgate leaves out at most {MAX_EMPTY_RUN} rows in a row; check the channel's "
+            "logging, or cut the damaged part out of the file.",
+        )
+    if count > MAX_EMPTY_FRACTION * len(trace):
+        raise InputError(
+            f"{count} of {len(trace)} rows ({100 * count / len(trace):.1f} %) have an empty "
+            f"{what} field, the first on this line",
+            SourceRef(trace.source, trace.line_of(first)),
+            f"formgate leaves out at most {100 * MAX_EMPTY_FRACTION:g} % of the rows; "
+            "check the channel's logging.",
+        )
+    rows = "row" if count == 1 else "rows"
+    return [
+        Note(
+            "nan_rows",
+            f"{count} {rows} with an empty {what} field left out "
+            f"(first on line {trace.line_of(first)})",
+            SourceRef(trace.source, trace.line_of(first)),
+        )
+    ]
+
+
+def _longest_run(mask: Mask) -> tuple[int, int]:
+    """Start and length of the longest run of True in ``mask`` (first one on a tie)."""
+    edges = np.diff(np.concatenate(([0], mask.astype(np.int8), [0])))
+    starts = np.flatnonzero(edges == 1)
+    lengths = np.flatnonzero(edges == -1) - starts
+    best = int(np.argmax(lengths))
+    return int(starts[best]), int(lengths[best])
+
+
+def _check_time_order(trace: Trace, rows: Rows, time_s: FloatArray) -> None:
+    back = np.flatnonzero(np.diff(time_s) < 0)
+    if back.size:
+        k = int(back[0])
+        before, after = int(rows[k]), int(rows[k + 1])
+        raise InputError(
+            f"time goes backwards, from {_fmt(time_s[k], 3)} s on line {trace.line_of(before)} "
+            f"to {_fmt(time_s[k + 1], 3)} s",
+            SourceRef(trace.source, trace.line_of(after)),
+            "Time must never decrease; check that the file is one run of one channel, "
+            "not two records joined together.",
+        )
+
+
+def _check_voltage(trace: Trace, rows: Rows, volts: FloatArray, ct: CellType) -> None:
+    outside = np.flatnonzero((volts < ct.min_voltage_v) | (volts > ct.max_voltage_v))
+    if not outside.size:
+        return
+    k = int(outside[0])
+    scaled = volts / 1000
+    fits_scaled = (scaled >= ct.min_voltage_v) & (scaled <= ct.max_voltage_v)
+    if outside.size >= MOST * volts.size and fits_scaled.all():
+        hint = (
+            "The voltages look like millivolts: read the file through an import profile "
+            'with [units] voltage = "mV".'
+        )
+    else:
+        hint = (
+            f"Check that the file is from a {ct.name} cell (cell_type in its metadata) "
+            "and that the channel measured the cell's terminals."
+        )
+    raise InputError(
+        f"voltage {_fmt(volts[k], 4)} V is outside what a {ct.name} cell can show "
+        f"({_fmt(ct.min_voltage_v, 3)} to {_fmt(ct.max_voltage_v, 3)} V)",
+        SourceRef(trace.source, trace.line_of(int(rows[k]))),
+        hint,
+    )
+
+
+def _check_current(trace: Trace, rows: Rows, amps: FloatArray, ct: CellType) -> None:
+    one_c_a = ct.nominal_capacity_ah  # 1 C in A is the nominal capacity in Ah (per hour)
+    size = np.abs(amps)
+    largest = float(size.max())
+    rating = f"a {ct.name} cell ({_fmt(one_c_a, 3)} Ah nominal)"
+    if largest > MAX_C_RATE * one_c_a:
+        k = int(np.argmax(size > MAX_C_RATE * one_c_a))
+        flowing = size[size > MIN_C_RATE * one_c_a]
+        most_too_high = np.mean(flowing > MAX_C_RATE * one_c_a) >= MOST
+        if most_too_high and largest / 1000 <= MAX_C_RATE * one_c_a:
+            hint = (
+                "The currents look like milliamperes read as amperes: read the file "
+                'through an import profile with [units] current = "mA".'
+            )
+        else:
+            hint = f"Check that the file is from a {ct.name} cell (cell_type in its metadata)."
+        raise InputError(
+            f"current {_fmt(amps[k], 4, significant=True)} A is "
+            f"{_fmt(size[k] / one_c_a, 3, significant=True)} C for {rating}, "
+            f"above the {MAX_C_RATE:g} C that is plausible",
+            SourceRef(trace.source, trace.line_of(int(rows[k]))),
+            hint,
+        )
+    if largest < MIN_C_RATE * one_c_a:
+        if MIN_C_RATE * one_c_a <= largest * 1000 <= MAX_C_RATE * one_c_a:
+            hint = (
+                "The currents look 1000 times too small: if the file writes amperes, its "
+                'import profile must say [units] current = "A".'
+            )
+        else:
+            hint = (
+                "Check that the channel ran its program; a record of rest alone cannot be judged."
+            )
+        raise InputError(
+            f"no current flows: the largest is {_fmt(largest, 3, significant=True)} A, "
+            f"below {MIN_C_RATE:g} C for {rating}",
+            SourceRef(trace.source),
+            hint,
+        )
+
+
+def _note_repeated_times(trace: Trace, rows: Rows, time_s: FloatArray) -> list[Note]:
+    same = np.flatnonzero(np.diff(time_s) == 0)
+    if not same.size:
+        return []
+    line = trace.line_of(int(rows[same[0] + 1]))
+    rows_word = "row repeats" if same.size == 1 else "rows repeat"
+    return [
+        Note(
+            "time_duplicates",
+            f"{same.size} {rows_word} the time stamp of the row before (first on line {line})",
+            SourceRef(trace.source, line),
+        )
+    ]
+
+
+def _note_gaps(
+    trace: Trace, rows: Rows, time_s: FloatArray, amps: FloatArray, ct: CellType
+) -> list[Note]:
+    steps = np.diff(time_s)
+    forward = steps[steps > 0]
+    if not forward.size:
+        return []
+    limit = max(GAP_FACTOR * float(np.median(forward)), GAP_MIN_S)
+    gaps = np.flatnonzero(steps > limit)
+    if not gaps.size:
+        return []
+    k = int(gaps[np.argmax(steps[gaps])])
+    line = trace.line_of(int(rows[k + 1]))
+    flowing = FLOWING_C_RATE * ct.nominal_capacity_ah
+    during_flow = np.minimum(np.abs(amps[gaps]), np.abs(amps[gaps + 1])) > flowing
+    text = (
+        f"{gaps.size} {'gap' if gaps.size == 1 else 'gaps'} in the record longer than "
+        f"{_fmt(limit, 1)} s; the longest is {_fmt(steps[k], 1)} s, before line {line}"
+    )
+    blocks: tuple[str, ...] = ()
+    if during_flow.any():
+        text += "; current flowed across a gap, so capacities there are interpolated"
+        blocks = CAPACITY_METRICS
+    return [Note("time_gaps", text, SourceRef(trace.source, line), blocks)]
+
+
+def _note_temperature(trace: Trace) -> list[Note]:
+    if trace.temperature_c is None:
+        return []
+    missing = np.isnan(trace.temperature_c)
+    if not missing.any():
+        return []
+    if missing.all():
+        return [
+            Note(
+                "no_temperature",
+                "the temperature column holds no values, so the temperature cannot be judged",
+                SourceRef(trace.source),
+                ("max_temperature_C",),
+            )
+        ]
+    line = trace.line_of(int(np.argmax(missing)))
+    count = int(missing.sum())
+    rows_word = "row has" if count == 1 else "rows have"
+    return [
+        Note(
+            "temperature_gaps",
+            f"{count} {rows_word} no temperature (first on line {line}); "
+            "the highest temperature is taken over the others",
+            SourceRef(trace.source, line),
+        )
+    ]
+
+
+def _fmt(value: float, digits: int, significant: bool = False) -> str:
+    """A number for a message: ``digits`` decimals (or significant digits), no trailing zeros."""
+    return np.format_float_positional(
+        float(value), precision=digits, unique=True, fractional=not significant, trim="-"
+    )

@@ -1,0 +1,580 @@
+"""Reading cycle files and import profiles: good layouts read alike, bad ones give located errors.
+
+One bad file per error lives in data/traces/bad/ beside its .expected message.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import gzip
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from pipeline.errors import InputError, ProfileError
+from pipeline.model import CellType, Trace
+from pipeline.readers.cyclefile import read_cycle_file
+from pipeline.readers.profile import (
+    DEFAULT_PROFILE,
+    PROFILE_KEYS,
+    V1_COLUMNS,
+    Profile,
+    load_profile,
+)
+from pipeline.validate import validate_trace
+
+HERE = Path(__file__).resolve().parent
+TRACES = HERE / "data" / "traces"
+PROFILES = HERE.parent / "rules" / "profiles"
+BAD_PROFILES = HERE / "data" / "profiles" / "bad"
+# Invented cell type of the test files; plausibility bounds as a rule set would give them.
+CELL_TYPES = {"DEMO-LFP-20A": CellType("DEMO-LFP-20A", 20.0, -0.1, 4.5)}
+META = {"cell_id": "CELL-0012", "lot": "LOT-A7", "cell_type": "DEMO-LFP-20A"}
+
+
+def make_csv(
+    rows: list[list[object]],
+    columns: tuple[str, ...] = ("time_s", "voltage_V", "current_A"),
+    metadata: dict[str, str] | None = None,
+    *,
+    delimiter: str = ",",
+    decimal: str = ".",
+    prefix: str = "#",
+    banner: tuple[str, ...] = (),
+    eol: str = "\n",
+) -> str:
+    """A cycle file's text: banner lines, '<prefix> key: value' lines, header, rows."""
+    meta = META if metadata is None else metadata
+
+    def cell(value: object) -> str:
+        if isinstance(value, float):
+            return "" if math.isnan(value) else repr(value).replace(".", decimal)
+        return str(value)
+
+    lines = [*banner, *(f"{prefix} {k}: {v}" for k, v in meta.items()), delimiter.join(columns)]
+    lines += [delimiter.join(cell(v) for v in row) for row in rows]
+    return eol.join(lines) + eol
+
+
+def read_profile(path: Path) -> Profile:
+    return load_profile(path.read_text(encoding="utf-8"), path.name)
+
+
+def basic_rows(n: int = 12) -> list[list[object]]:
+    return [[60.0 * k, 3.2 + 0.01 * k, 10.0 if k < n // 2 else -10.0] for k in range(n)]
+
+
+def same_numbers(a: Trace, b: Trace, atol: float = 1e-9) -> None:
+    for name in ("time_s", "voltage_v", "current_a", "temperature_c"):
+        left, right = getattr(a, name), getattr(b, name)
+        assert (left is None) == (right is None), name
+        if left is not None:
+            np.testing.assert_allclose(left, right, rtol=1e-9, atol=atol, err_msg=name)
+
+
+# ---------------------------------------------------------------- bad files, one per error
+
+
+def _bad_cases() -> list[Path]:
+    return sorted(
+        p for p in (TRACES / "bad").iterdir() if not p.name.endswith((".expected", ".profile.toml"))
+    )
+
+
+@pytest.mark.parametrize("path", _bad_cases(), ids=lambda p: p.name)
+def test_bad_cycle_file_gives_its_located_message(path: Path) -> None:
+    expected = path.with_name(path.name + ".expected").read_text(encoding="utf-8").rstrip("\n")
+    sidecar = path.with_name(path.name + ".profile.toml")
+    profile = read_profile(sidecar) if sidecar.exists() else None
+    with pytest.raises(InputError) as caught:
+        trace = read_cycle_file(path.read_bytes(), "incoming/" + path.name, profile)
+        validate_trace(trace, CELL_TYPES[trace.cell_type])
+    assert str(caught.value) == expected
+
+
+def test_every_bad_file_has_its_expected_message() -> None:
+    for path in _bad_cases():
+        assert path.with_name(path.name + ".expected").exists(), path.name
+
+
+@pytest.mark.parametrize("path", sorted(BAD_PROFILES.glob("*.toml")), ids=lambda p: p.name)
+def test_bad_profile_gives_its_located_message(path: Path) -> None:
+    expected = path.with_name(path.name + ".expected").read_text(encoding="utf-8").rstrip("\n")
+    with pytest.raises(ProfileError) as caught:
+        load_profile(path.read_text(encoding="utf-8"), "profiles/" + path.name)
+    assert str(caught.value) == expected
+
+
+# ---------------------------------------------------------------- good files read alike
+
+GOOD = {
+    "v1_basic.csv": None,
+    "v1_basic.csv.gz": None,
+    "v1_bom_crlf.csv": None,
+    "v1_reordered_extra_columns.csv": None,
+    "LOT-A7_CELL-0012.csv": "semicolon_decimal_comma.toml",
+    "tab_log_cell-0012.tsv": "tab_separated_ms.toml",
+}
+
+
+@pytest.mark.parametrize("file_name", GOOD, ids=str)
+def test_good_layouts_read_to_the_same_trace(file_name: str) -> None:
+    reference = read_cycle_file((TRACES / "good" / "v1_basic.csv").read_bytes(), "v1_basic.csv")
+    profile_file = GOOD[file_name]
+    profile = read_profile(PROFILES / profile_file) if profile_file else None
+    trace = read_cycle_file((TRACES / "good" / file_name).read_bytes(), file_name, profile)
+    same_numbers(trace, reference, atol=1e-6)  # hours written with 10 decimals: 0.4 us
+    assert len(trace) == 24
+    assert (trace.cell_id, trace.lot, trace.cell_type) == ("CELL-0012", "LOT-A7", "DEMO-LFP-20A")
+    if trace.step is not None:
+        np.testing.assert_array_equal(trace.step, reference.step)
+    assert validate_trace(trace, CELL_TYPES[trace.cell_type]) == ()
+
+
+def test_v1_file_gives_units_metadata_and_first_line() -> None:
+    trace = read_cycle_file((TRACES / "good" / "v1_basic.csv").read_bytes(), "v1_basic.csv")
+    assert dict(trace.metadata) == {
+        "cell_id": "CELL-0012",
+        "lot": "LOT-A7",
+        "cell_type": "DEMO-LFP-20A",
+        "channel": "3",
+        "station": "pilot line 1",
+        "started_at": "2026-11-30T08:00:00+00:00",
+        "fixture": "F-2",  # not a v1 key: kept, in order
+    }
+    assert list(trace.metadata) == [
+        "cell_id",
+        "lot",
+        "cell_type",
+        "channel",
+        "station",
+        "started_at",
+        "fixture",
+    ]
+    assert trace.first_data_line == 9  # seven metadata lines and the header
+    assert trace.line_of(2) == 11
+    assert trace.time_s[:3].tolist() == [0.0, 60.0, 120.0]
+    assert trace.current_a[2] == 10.0  # charge is positive
+    assert trace.step is not None and trace.step.dtype == np.int64
+    assert trace.cycle is not None and trace.cycle.tolist() == [1] * 24
+
+
+def test_profile_reads_metadata_from_the_file_name_and_its_defaults() -> None:
+    profile = read_profile(PROFILES / "semicolon_decimal_comma.toml")
+    data = (TRACES / "good" / "LOT-A7_CELL-0012.csv").read_bytes()
+    trace = read_cycle_file(data, "incoming/LOT-A7_CELL-0012.csv", profile)
+    # the file's own lines first, then the file name, then the profile's fixed values
+    assert list(trace.metadata.items()) == [
+        ("channel", "3"),
+        ("started_at", "2026-11-30T08:00:00+00:00"),
+        ("fixture", "F-2"),
+        ("lot", "LOT-A7"),
+        ("cell_id", "CELL-0012"),
+        ("cell_type", "DEMO-LFP-20A"),
+        ("station", "pilot line 1"),
+    ]
+    assert trace.first_data_line == 7  # two banner lines, three metadata lines, header
+
+
+def test_metadata_in_the_file_wins_over_profile_defaults() -> None:
+    profile = load_profile('[metadata]\ncell_type = "OTHER"\nstation = "S9"\n', "p.toml")
+    trace = read_cycle_file(make_csv(basic_rows()).encode(), "c.csv", profile)
+    assert trace.cell_type == "DEMO-LFP-20A"
+    assert trace.metadata["station"] == "S9"
+
+
+def test_gzip_round_trip_gives_the_same_trace() -> None:
+    text = make_csv(basic_rows(), ("time_s", "voltage_V", "current_A"))
+    plain = read_cycle_file(text.encode(), "c.csv")
+    packed = read_cycle_file(gzip.compress(text.encode()), "c.csv")  # found by its magic bytes
+    same_numbers(plain, packed)
+    assert dict(plain.metadata) == dict(packed.metadata)
+    assert plain.first_data_line == packed.first_data_line
+
+
+def test_gzip_with_two_members_reads_as_one_file() -> None:
+    text = make_csv(basic_rows()).encode()
+    half = text.index(b"\n600.0")
+    data = gzip.compress(text[:half]) + gzip.compress(text[half:])
+    assert len(read_cycle_file(data, "c.csv.gz")) == 12
+
+
+def test_gzip_bomb_is_refused_at_the_cap() -> None:
+    data = gzip.compress(make_csv(basic_rows()).encode() + b"0" * 100_000)
+    with pytest.raises(InputError) as caught:
+        read_cycle_file(data, "c.csv.gz", max_uncompressed_bytes=2**16)
+    assert str(caught.value) == (
+        "c.csv.gz: the file holds more than 65536 bytes of text, the most formgate reads.\n"
+        "  Check that the file is one cell's record."
+    )
+
+
+def test_plain_file_above_the_cap_is_refused() -> None:
+    with pytest.raises(InputError, match="more than 100 bytes of text"):
+        read_cycle_file(make_csv(basic_rows()).encode(), "c.csv", max_uncompressed_bytes=100)
+
+
+def test_byte_order_mark_and_windows_line_ends_are_read() -> None:
+    text = "\ufeff" + make_csv(basic_rows(), eol="\r\n")
+    trace = read_cycle_file(text.encode(), "c.csv")
+    assert trace.cell_id == "CELL-0012"
+    assert trace.first_data_line == 5
+
+
+def test_latin1_text_through_a_profile() -> None:
+    profile = load_profile('[file]\nencoding = "latin-1"\n', "p.toml")
+    text = make_csv(basic_rows(), metadata={**META, "operator": "Zoë Müller-Ørsted"})
+    trace = read_cycle_file(text.encode("latin-1"), "c.csv", profile)
+    assert trace.metadata["operator"] == "Zoë Müller-Ørsted"
+
+
+def test_decimal_comma_and_semicolons_through_a_profile() -> None:
+    profile = load_profile('[file]\ndelimiter = "semicolon"\ndecimal = "comma"\n', "p.toml")
+    text = make_csv(basic_rows(), delimiter=";", decimal=",")
+    assert "3,21" in text
+    trace = read_cycle_file(text.encode(), "c.csv", profile)
+    assert trace.voltage_v[1] == pytest.approx(3.21)
+
+
+@pytest.mark.parametrize(
+    ("units", "factor_t", "factor_v", "factor_i"),
+    [
+        ('time = "ms"', 1000.0, 1.0, 1.0),
+        ('time = "min"', 1 / 60, 1.0, 1.0),
+        ('time = "h"', 1 / 3600, 1.0, 1.0),
+        ('voltage = "mV"', 1.0, 1000.0, 1.0),
+        ('current = "mA"', 1.0, 1.0, 1000.0),
+        ('current = "mA"\nvoltage = "mV"\ntime = "h"', 1 / 3600, 1000.0, 1000.0),
+    ],
+)
+def test_units_are_converted_to_seconds_volts_amperes(
+    units: str, factor_t: float, factor_v: float, factor_i: float
+) -> None:
+    rows = basic_rows()
+    scaled = [[t * factor_t, v * factor_v, i * factor_i] for t, v, i in rows]
+    profile = load_profile(f"[units]\n{units}\n", "p.toml")
+    trace = read_cycle_file(make_csv(scaled).encode(), "c.csv", profile)
+    reference = read_cycle_file(make_csv(rows).encode(), "c.csv")
+    same_numbers(trace, reference)
+
+
+def test_discharge_positive_profile_flips_the_sign() -> None:
+    profile = load_profile('[units]\ncurrent_sign = "discharge positive"\n', "p.toml")
+    rows = basic_rows()
+    flipped = [[t, v, -i] for t, v, i in rows]
+    trace = read_cycle_file(make_csv(flipped).encode(), "c.csv", profile)
+    assert trace.current_a.tolist() == [row[2] for row in rows]
+
+
+def test_empty_fields_become_nan_for_validation_to_judge() -> None:
+    rows = basic_rows(20)
+    rows[4][1] = float("nan")
+    trace = read_cycle_file(
+        make_csv(
+            [[*r, 25.0 if k % 2 else float("nan")] for k, r in enumerate(rows)],
+            ("time_s", "voltage_V", "current_A", "temperature_C"),
+        ).encode(),
+        "c.csv",
+    )
+    assert math.isnan(trace.voltage_v[4])
+    assert trace.temperature_c is not None and np.isnan(trace.temperature_c).sum() == 10
+
+
+def test_optional_columns_are_none_when_absent() -> None:
+    trace = read_cycle_file(make_csv(basic_rows()).encode(), "c.csv")
+    assert (trace.temperature_c, trace.step, trace.cycle) == (None, None, None)
+
+
+def test_trailing_blank_lines_and_a_missing_final_newline_are_fine() -> None:
+    text = make_csv(basic_rows())
+    assert len(read_cycle_file((text + "\n\n  \n").encode(), "c.csv")) == 12
+    assert len(read_cycle_file(text.rstrip("\n").encode(), "c.csv")) == 12
+
+
+def test_comment_lines_without_a_colon_are_not_metadata() -> None:
+    text = make_csv(basic_rows(), metadata={**META}).replace(
+        "# lot", "# exported by an invented tool\n# lot"
+    )
+    trace = read_cycle_file(text.encode(), "c.csv")
+    assert list(trace.metadata) == ["cell_id", "lot", "cell_type"]
+    assert trace.first_data_line == 6
+
+
+def test_skip_lines_and_another_metadata_prefix() -> None:
+    profile = load_profile('[file]\nskip_lines = 2\nmetadata_prefix = "//"\n', "p.toml")
+    text = make_csv(basic_rows(), prefix="//", banner=("BANNER A", "time_s,banner"))
+    trace = read_cycle_file(text.encode(), "c.csv", profile)
+    assert trace.first_data_line == 7
+
+
+def test_a_huge_integer_is_still_a_number() -> None:
+    rows: list[list[object]] = [[k, 3.2, 1.0] for k in range(12)]
+    rows[0][0] = "-99999999999999999999999"  # pandas keeps this as text; it is a number
+    trace = read_cycle_file(make_csv(rows).encode(), "c.csv")
+    assert trace.time_s[0] == pytest.approx(-1e23)
+
+
+# ---------------------------------------------------------------- profiles
+
+
+def test_shipped_example_profiles_load() -> None:
+    names = sorted(p.name for p in PROFILES.glob("*.toml"))
+    assert names == ["semicolon_decimal_comma.toml", "tab_separated_ms.toml"]
+    first = read_profile(PROFILES / "semicolon_decimal_comma.toml")
+    assert (first.delimiter, first.decimal, first.encoding) == (";", ",", "latin-1")
+    assert (first.time_unit, first.voltage_unit, first.current_unit) == ("h", "mV", "mA")
+    assert first.current_sign == "discharge positive"
+    assert first.file_name_pattern is not None
+    second = read_profile(PROFILES / "tab_separated_ms.toml")
+    assert (second.delimiter, second.time_unit, second.metadata_prefix) == ("\t", "ms", "//")
+
+
+def test_empty_profile_means_cycle_file_v1() -> None:
+    profile = load_profile("", "empty.toml")
+    assert profile.columns == DEFAULT_PROFILE.columns == V1_COLUMNS
+    assert profile.is_v1 is False and DEFAULT_PROFILE.is_v1 is True
+    fields = (
+        "delimiter",
+        "decimal",
+        "encoding",
+        "time_unit",
+        "voltage_unit",
+        "current_unit",
+        "current_sign",
+        "skip_lines",
+        "metadata_prefix",
+        "file_name_pattern",
+    )
+    for name in fields:
+        assert getattr(profile, name) == getattr(DEFAULT_PROFILE, name), name
+
+
+def test_every_documented_key_is_accepted() -> None:
+    values = {
+        ("", "description"): '"all keys"',
+        ("file", "delimiter"): '"tab"',
+        ("file", "decimal"): '"comma"',
+        ("file", "encoding"): '"latin-1"',
+        ("file", "skip_lines"): "1",
+        ("file", "metadata_prefix"): '"//"',
+        ("file", "file_name_pattern"): "'(?P<lot>.+)'",
+        ("units", "time"): '"h"',
+        ("units", "voltage"): '"mV"',
+        ("units", "current"): '"mA"',
+        ("units", "current_sign"): '"discharge positive"',
+        ("metadata", "*"): '"F-1"',
+    }
+    tables: dict[str, list[str]] = {}
+    for key in PROFILE_KEYS:
+        assert key.meaning and key.allowed and key.default, key
+        tables.setdefault(key.table, []).append(key.key)
+    text = ""
+    for table, keys in tables.items():
+        text += f"[{table}]\n" if table else ""
+        for k in keys:
+            value = values.get((table, k), f'"col {k}"')
+            text += f"{'fixture' if k == '*' else k} = {value}\n"
+    profile = load_profile(text, "all.toml")
+    assert profile.description == "all keys"
+    assert (profile.delimiter, profile.decimal, profile.skip_lines) == ("\t", ",", 1)
+    assert profile.columns["cycle"] == "col cycle"
+    assert profile.metadata["fixture"] == "F-1"
+    assert profile.current_sign == "discharge positive"
+
+
+# ---------------------------------------------------------------- properties
+
+finite = st.floats(allow_nan=False, allow_infinity=False, width=64)
+
+
+@st.composite
+def small_traces(draw: st.DrawFn) -> dict[str, list[float]]:
+    n = draw(st.integers(1, 25))
+    steps = draw(st.lists(st.floats(0.001, 5000), min_size=n, max_size=n))
+    time_s = [float(x) for x in np.cumsum(steps) - steps[0]]
+    volts = draw(st.lists(st.floats(-0.1, 4.5), min_size=n, max_size=n))
+    amps = draw(st.lists(st.floats(-200, 200), min_size=n, max_size=n))
+    temps = draw(st.lists(st.floats(-20, 80), min_size=n, max_size=n))
+    return {"t": time_s, "v": volts, "i": amps, "T": temps}
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    trace=small_traces(),
+    delimiter=st.sampled_from(["comma", "semicolon", "tab"]),
+    decimal=st.sampled_from(["point", "comma"]),
+    encoding=st.sampled_from(["utf-8", "utf-8-sig", "latin-1"]),
+    time_unit=st.sampled_from(["s", "ms", "min", "h"]),
+    voltage_unit=st.sampled_from(["V", "mV"]),
+    current_unit=st.sampled_from(["A", "mA"]),
+    sign=st.sampled_from(["charge positive", "discharge positive"]),
+    from_name=st.booleans(),
+    skip=st.integers(0, 2),
+)
+def test_a_trace_written_in_any_profile_layout_reads_back_as_v1(
+    trace: dict[str, list[float]],
+    delimiter: str,
+    decimal: str,
+    encoding: str,
+    time_unit: str,
+    voltage_unit: str,
+    current_unit: str,
+    sign: str,
+    from_name: bool,
+    skip: int,
+) -> None:
+    if delimiter == "comma" and decimal == "comma":
+        decimal = "point"
+    mark = {"comma": ",", "semicolon": ";", "tab": "\t"}[delimiter]
+    dot = "." if decimal == "point" else ","
+    rows_v1 = [list(r) for r in zip(trace["t"], trace["v"], trace["i"], trace["T"], strict=True)]
+    columns = ("time_s", "voltage_V", "current_A", "temperature_C")
+    v1 = read_cycle_file(make_csv(rows_v1, columns).encode(), "v1.csv")
+
+    per_s = {"s": 1.0, "ms": 1000.0, "min": 1 / 60, "h": 1 / 3600}[time_unit]
+    per_v = {"V": 1.0, "mV": 1000.0}[voltage_unit]
+    per_a = {"A": 1.0, "mA": 1000.0}[current_unit] * (1 if sign == "charge positive" else -1)
+    rows = [[t * per_s, v * per_v, i * per_a, temp] for t, v, i, temp in rows_v1]
+    profile_text = (
+        f'[file]\ndelimiter = "{delimiter}"\ndecimal = "{decimal}"\nencoding = "{encoding}"\n'
+        f"skip_lines = {skip}\n"
+        + ("file_name_pattern = '^(?P<lot>[^_]+)_(?P<cell_id>[^_.]+)'\n" if from_name else "")
+        + '[columns]\ntime = "elapsed"\nvoltage = "U (V)"\ncurrent = "I"\n'
+        + 'temperature = "T (°C)"\n'
+        + f'[units]\ntime = "{time_unit}"\nvoltage = "{voltage_unit}"\n'
+        + f'current = "{current_unit}"\ncurrent_sign = "{sign}"\n'
+        + '[metadata]\ncell_type = "DEMO-LFP-20A"\n'
+    )
+    profile = load_profile(profile_text, "p.toml")
+    meta = {} if from_name else {"lot": "LOT-A7", "cell_id": "CELL-0012"}
+    text = make_csv(
+        rows,
+        ("elapsed", "U (V)", "I", "T (°C)"),
+        meta,
+        delimiter=mark,
+        decimal=dot,
+        banner=("x",) * skip,
+    )
+    data = text.encode("latin-1" if encoding == "latin-1" else "utf-8")
+    if encoding == "utf-8-sig":
+        data = b"\xef\xbb\xbf" + data
+    other = read_cycle_file(data, "LOT-A7_CELL-0012.csv", profile)
+    same_numbers(v1, other)
+    assert {k: other.metadata[k] for k in META} == META
+
+
+@settings(max_examples=300, deadline=None)
+@given(data=st.binary(max_size=600), name=st.sampled_from(["c.csv", "c.csv.gz", "c.tsv"]))
+def test_arbitrary_bytes_give_an_input_error_or_a_trace(data: bytes, name: str) -> None:
+    for profile in (None, read_profile(PROFILES / "tab_separated_ms.toml")):
+        with contextlib.suppress(InputError):
+            read_cycle_file(data, name, profile)
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    body=st.text(alphabet='0123456789.,;-+eE \t\n\r"#:xT\x00\x1c٣', max_size=400),
+    header=st.sampled_from(
+        [
+            "time_s,voltage_V,current_A",
+            "time_s,voltage_V,current_A,step",
+            "step,current_A,time_s,voltage_V,temperature_C,cycle",
+        ]
+    ),
+    tabs=st.booleans(),
+)
+def test_data_of_digits_and_separators_gives_an_input_error_or_a_trace(
+    body: str, header: str, tabs: bool
+) -> None:
+    profile = read_profile(PROFILES / "tab_separated_ms.toml") if tabs else None
+    if tabs:
+        header = header.replace(",", "\t").replace("time_s", "t_ms").replace("voltage_V", "U_V")
+        header = header.replace("current_A", "I_mA").replace("temperature_C", "T_degC")
+    text = make_csv([], (header,), prefix="//" if tabs else "#") + body
+    try:
+        trace = read_cycle_file(text.encode(), "c.csv", profile)
+    except InputError:
+        return
+    assert len(trace) == trace.time_s.size
+    with contextlib.suppress(InputError):
+        validate_trace(trace, CELL_TYPES["DEMO-LFP-20A"])
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    file_name=st.sampled_from(sorted(GOOD)),
+    edits=st.lists(
+        st.tuples(
+            st.integers(0, 10_000),
+            st.sampled_from(["set", "insert", "delete"]),
+            st.binary(min_size=1, max_size=3),
+        ),
+        min_size=1,
+        max_size=4,
+    ),
+    cut=st.none() | st.integers(0, 2000),
+)
+def test_damaged_good_files_give_an_input_error_or_a_trace(
+    file_name: str, edits: list[tuple[int, str, bytes]], cut: int | None
+) -> None:
+    data = bytearray((TRACES / "good" / file_name).read_bytes())
+    if file_name.endswith(".gz"):
+        data = bytearray(gzip.decompress(bytes(data)))
+    for position, kind, payload in edits:
+        at = position % (len(data) + 1)
+        if kind == "set":
+            data[at : at + len(payload)] = payload
+        elif kind == "insert":
+            data[at:at] = payload
+        else:
+            del data[at : at + len(payload)]
+    blob = bytes(data[:cut] if cut is not None else data)
+    if file_name.endswith(".gz"):
+        blob = gzip.compress(blob)[: None if cut is None else cut]
+    profile_file = GOOD[file_name]
+    profile = read_profile(PROFILES / profile_file) if profile_file else None
+    try:
+        trace = read_cycle_file(blob, file_name, profile)
+    except InputError:
+        return
+    with contextlib.suppress(InputError):
+        validate_trace(trace, CELL_TYPES.get(trace.cell_type, CELL_TYPES["DEMO-LFP-20A"]))
+
+
+@settings(max_examples=200, deadline=None)
+@given(text=st.text(max_size=300))
+def test_arbitrary_profile_text_gives_a_profile_error_or_a_profile(text: str) -> None:
+    with contextlib.suppress(ProfileError):
+        load_profile(text, "p.toml")
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    key=st.sampled_from([(k.table, k.key) for k in PROFILE_KEYS]),
+    value=st.one_of(
+        st.integers(-3, 3),
+        st.text(max_size=12),
+        st.booleans(),
+        st.floats(allow_nan=False, allow_infinity=False),
+    ),
+)
+def test_any_value_under_any_key_gives_a_profile_error_or_a_profile(
+    key: tuple[str, str], value: object
+) -> None:
+    table, name = key
+    name = "cell_type" if name == "*" else name
+    if isinstance(value, str):
+        shown = '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    elif isinstance(value, bool):
+        shown = str(value).lower()
+    elif isinstance(value, float):
+        shown = repr(value)
+    else:
+        shown = str(value)
+    text = (f"[{table}]\n" if table else "") + f"{name} = {shown}\n"
+    with contextlib.suppress(ProfileError):
+        load_profile(text, "p.toml")
