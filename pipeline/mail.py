@@ -63,7 +63,7 @@ class Letter:
         if self.kind not in KINDS:
             raise ValueError(f"unknown letter kind {self.kind!r} (expected one of {KINDS})")
         object.__setattr__(self, "recipients", check_addresses(self.recipients))
-        if not re.fullmatch(r"<[^<>@\s]+@[^<>@\s]+>", self.message_id):
+        if not re.fullmatch(r"<[^<>@\s]+@[^<>@\s]+>", self.message_id) or "=?" in self.message_id:
             raise ValueError(f"not a Message-ID: {self.message_id!r}")
         if sanitize_header(self.subject, max_len=len(self.subject) or 1) != self.subject:
             raise ValueError(f"subject is not a clean single line: {self.subject!r}")
@@ -85,7 +85,8 @@ def sanitize_header(value: str, max_len: int = 200) -> str:
     Line breaks, tabs and other control characters become spaces; invisible format
     characters (bidirectional overrides, zero-width spaces) are dropped, as they could
     make a subject read differently from what it says; runs of white space collapse to
-    one space; a value that is too long is cut and ends in an ellipsis.
+    one space; ``=?`` becomes ``= ?`` so that no encoded word can smuggle a line break
+    in; a value that is too long is cut and ends in an ellipsis.
 
     >>> sanitize_header("X\\r\\nBcc: victim@example.com")
     'X Bcc: victim@example.com'
@@ -103,7 +104,9 @@ def sanitize_header(value: str, max_len: int = 200) -> str:
             kept.append("\N{REPLACEMENT CHARACTER}")  # a lone surrogate cannot be encoded
         elif category != "Cf":
             kept.append(char)
-    text = " ".join("".join(kept).split())
+    # "=?" opens an RFC 2047 encoded word, which the email package decodes when the header is
+    # set, so an encoded line break would come back out as a real one.
+    text = " ".join("".join(kept).split()).replace("=?", "= ?")
     if len(text) > max_len:
         text = text[: max_len - 1].rstrip() + "\N{HORIZONTAL ELLIPSIS}"
     return text
@@ -135,7 +138,7 @@ def check_addresses(addresses: Iterable[str]) -> tuple[str, ...]:
     if not result:
         raise ValueError("a letter needs at least one recipient")
     for address in result:
-        if not _ADDRESS.fullmatch(address):
+        if not _ADDRESS.fullmatch(address) or "=?" in address:
             raise ValueError(f"not a plain mail address (local@domain): {address!r}")
     return result
 

@@ -214,6 +214,7 @@ def test_sanitize_header_examples() -> None:
     assert sanitize_header("a\u2028b\x85c") == "a b c"  # Unicode line and next-line breaks
     assert sanitize_header("x" * 300) == "x" * 199 + "\N{HORIZONTAL ELLIPSIS}"
     assert sanitize_header("abc def", max_len=5) == "abc\N{HORIZONTAL ELLIPSIS}"
+    assert sanitize_header("=?utf-8?q?=0A?=") == "= ?utf-8?q?=0A?="
     with pytest.raises(ValueError):
         sanitize_header("x", max_len=0)
 
@@ -226,6 +227,7 @@ def test_sanitize_header_gives_one_clean_line(value: str, max_len: int) -> None:
     assert "  " not in clean
     assert not any(unicodedata.category(c) in ("Cc", "Cf", "Cs", "Zl", "Zp") for c in clean)
     assert len(clean.splitlines()) <= 1
+    assert "=?" not in clean
     assert sanitize_header(clean, max_len) == clean  # idempotent
 
 
@@ -252,6 +254,23 @@ def test_header_injection_from_a_cell_id_stays_inside_the_subject(tmp_path: Path
         "\N{EM DASH}")
     assert back["X-Formgate-Lot"] == "DEMO-LOT-01 Cc: a@example.org"
     assert back["To"] == "quality@example.com, line-lead@example.org"
+
+
+@pytest.mark.parametrize("field", ["cell_id", "lot"])
+def test_an_encoded_word_cannot_smuggle_a_line_break_into_a_header(field: str) -> None:
+    # The email package decodes RFC 2047 encoded words in a header value it is given, so
+    # "=0D=0A" inside one would otherwise come out as a real line break.
+    hostile = "=?utf-8?q?X=0D=0ABcc=3A_victim@example.com?="
+    letter = failure_letter(make_result(**{field: hostile}), "c.pdf", TO, station="s")
+    message = build_message(Letter(letter.kind, letter.message_id, letter.recipients,
+                                   letter.subject, letter.body_text, lot=letter.lot),
+                            sender=SENDER, date=WHEN)
+    back = reparse(message)
+    assert "Bcc" not in back
+    assert sorted(back.keys()) == sorted(message.keys())
+    assert "= ?utf-8?q?X=0D=0ABcc=3A_victim@example.com?=" in back["Subject"]
+    with pytest.raises(ValueError, match="not a plain mail address"):
+        alert_letter("t", "x", ["=?utf-8?q?a=0A?=@example.com"], station="s", key="k")
 
 
 def test_letter_refuses_an_address_that_is_not_plain() -> None:

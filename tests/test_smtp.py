@@ -175,9 +175,16 @@ def test_a_partly_refused_mail_is_sent_and_names_who_did_not_get_it(tmp_path: Pa
     assert mail.rcpt_tos == ("quality@example.com",)
 
 
+@pytest.mark.parametrize(
+    ("cell_id", "shown"),
+    [("X\r\nBcc: victim@example.com", "X Bcc: victim@example.com"),
+     ("=?utf-8?q?X=0D=0ABcc=3A_victim@example.com?=",
+      "= ?utf-8?q?X=0D=0ABcc=3A_victim@example.com?=")],
+    ids=["line-break", "encoded-word"],
+)
 def test_header_injection_from_a_cell_id_reaches_only_the_intended_recipients(
-        tmp_path: Path) -> None:
-    message, _ = failure_mail(tmp_path, cell_id="X\r\nBcc: victim@example.com")
+        tmp_path: Path, cell_id: str, shown: str) -> None:
+    message, _ = failure_mail(tmp_path, cell_id=cell_id)
     with smtp_server() as server:
         result = send(message, settings(server.port))
     assert result.outcome == "sent"
@@ -187,7 +194,7 @@ def test_header_injection_from_a_cell_id_reaches_only_the_intended_recipients(
     assert "Bcc" not in parsed
     assert not any(line.lower().startswith(b"bcc:") for line in mail.content.splitlines())
     subject = str(parsed["Subject"])
-    assert subject.startswith("formgate: FAIL cell X Bcc: victim@example.com, lot DEMO-LOT-01")
+    assert subject.startswith(f"formgate: FAIL cell {shown}, lot DEMO-LOT-01")
     assert "\r" not in subject and "\n" not in subject
 
 
