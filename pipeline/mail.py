@@ -105,7 +105,8 @@ def sanitize_header(value: str, max_len: int = 200) -> str:
         elif category != "Cf":
             kept.append(char)
     # "=?" opens an RFC 2047 encoded word, which the email package decodes when the header is
-    # set, so an encoded line break would come back out as a real one.
+    # set; before Python 3.11.10 an encoded line break then came out as a real one, i.e. a new
+    # header (CPython issue gh-121650). Breaking the "=?" keeps any Python version safe.
     text = " ".join("".join(kept).split()).replace("=?", "= ?")
     if len(text) > max_len:
         text = text[: max_len - 1].rstrip() + "\N{HORIZONTAL ELLIPSIS}"
