@@ -181,8 +181,11 @@ def _line(text: str) -> str:
 def _item(text: str) -> str:
     """A list item: ``- text`` cleaned to one line, then wrapped with a hanging indent."""
     return textwrap.fill(
-        _line(f"- {text}"), WIDTH, subsequent_indent="  ",
-        break_long_words=False, break_on_hyphens=False,
+        _line(f"- {text}"),
+        WIDTH,
+        subsequent_indent="  ",
+        break_long_words=False,
+        break_on_hyphens=False,
     )
 
 

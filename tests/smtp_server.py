@@ -45,14 +45,16 @@ class RecordingHandler:
     ``rcpt_reply`` may map single addresses to a reply; the others are accepted.
     """
 
-    def __init__(self, rcpt_reply: str | Mapping[str, str] | None = None,
-                 data_reply: str | None = None) -> None:
+    def __init__(
+        self, rcpt_reply: str | Mapping[str, str] | None = None, data_reply: str | None = None
+    ) -> None:
         self.rcpt_reply = rcpt_reply
         self.data_reply = data_reply
         self.received: list[Received] = []
 
-    async def handle_RCPT(self, server: Any, session: Any, envelope: Any, address: str,
-                          rcpt_options: list[str]) -> str:
+    async def handle_RCPT(
+        self, server: Any, session: Any, envelope: Any, address: str, rcpt_options: list[str]
+    ) -> str:
         reply = self.rcpt_reply
         if isinstance(reply, Mapping):
             reply = reply.get(address)
@@ -96,9 +98,15 @@ def server_tls_context() -> ssl.SSLContext:
 
 
 @contextmanager
-def smtp_server(*, port: int | None = None, rcpt_reply: str | Mapping[str, str] | None = None,
-                data_reply: str | None = None, starttls: bool = False, implicit_tls: bool = False,
-                login: tuple[str, str] | None = None) -> Iterator[Server]:
+def smtp_server(
+    *,
+    port: int | None = None,
+    rcpt_reply: str | Mapping[str, str] | None = None,
+    data_reply: str | None = None,
+    starttls: bool = False,
+    implicit_tls: bool = False,
+    login: tuple[str, str] | None = None,
+) -> Iterator[Server]:
     """An aiosmtpd server on 127.0.0.1 that records what it accepts.
 
     ``starttls`` offers STARTTLS with the test server certificate and refuses mail
@@ -113,16 +121,21 @@ def smtp_server(*, port: int | None = None, rcpt_reply: str | Mapping[str, str] 
     if implicit_tls:
         options.update(ssl_context=server_tls_context())
     if login is not None:
-        def authenticate(srv: Any, session: Any, envelope: Any, mechanism: str,
-                         auth_data: Any) -> AuthResult:
-            ok = isinstance(auth_data, LoginPassword) and (
-                auth_data.login.decode(), auth_data.password.decode()) == login
+
+        def authenticate(
+            srv: Any, session: Any, envelope: Any, mechanism: str, auth_data: Any
+        ) -> AuthResult:
+            ok = (
+                isinstance(auth_data, LoginPassword)
+                and (auth_data.login.decode(), auth_data.password.decode()) == login
+            )
             server.logins.append((mechanism, ok))
             return AuthResult(success=ok, handled=False)  # aiosmtpd then sends 235 or 535
 
         options.update(authenticator=authenticate, auth_required=True)
-    controller = Controller(handler, hostname=HOST, port=server.port,
-                            server_hostname="localhost", **options)
+    controller = Controller(
+        handler, hostname=HOST, port=server.port, server_hostname="localhost", **options
+    )
     controller.start()
     try:
         yield server

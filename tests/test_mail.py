@@ -52,22 +52,48 @@ WHEN = datetime.datetime(2026, 3, 2, 14, 30, tzinfo=datetime.UTC)
 DEMO_TYPE = CellType("DEMO-LFP-20A", 20.0, 2.0, 3.65)
 
 
-def make_result(kind: VerdictKind = VerdictKind.FAIL,
-                hazards: tuple[Hazard, ...] = (Hazard.INTERNAL_SHORT, Hazard.OVER_TEMPERATURE),
-                *, cell_id: str = "DEMO-0007", lot: str = "DEMO-LOT-01",
-                rules_sha: str = RULES_SHA) -> CellResult:
+def make_result(
+    kind: VerdictKind = VerdictKind.FAIL,
+    hazards: tuple[Hazard, ...] = (Hazard.INTERNAL_SHORT, Hazard.OVER_TEMPERATURE),
+    *,
+    cell_id: str = "DEMO-0007",
+    lot: str = "DEMO-LOT-01",
+    rules_sha: str = RULES_SHA,
+) -> CellResult:
     """An invented judged cell of type DEMO-LFP-20A with check rows matching ``kind``."""
     out = Outcome.OUT_OF_WINDOW
     severity = Severity.REVIEW if kind is VerdictKind.HOLD else Severity.REJECT
     checks = [
-        CheckResult("drift_max", "rest_voltage_drift_mV_per_h", -4.2, Window(-1.0, None), out,
-                    severity, Hazard.INTERNAL_SHORT if Hazard.INTERNAL_SHORT in hazards else None,
-                    "voltage falls during the final rest"),
-        CheckResult("temp_max", "max_temperature_C", 58.5, Window(None, 45.0), out, severity,
-                    Hazard.OVER_TEMPERATURE if Hazard.OVER_TEMPERATURE in hazards else None,
-                    "cell hotter than 45 C during formation"),
-        CheckResult("capacity", "grading_capacity_Ah", 20.31, Window(19.6, 21.0),
-                    Outcome.IN_WINDOW, Severity.REJECT, None, "grading capacity"),
+        CheckResult(
+            "drift_max",
+            "rest_voltage_drift_mV_per_h",
+            -4.2,
+            Window(-1.0, None),
+            out,
+            severity,
+            Hazard.INTERNAL_SHORT if Hazard.INTERNAL_SHORT in hazards else None,
+            "voltage falls during the final rest",
+        ),
+        CheckResult(
+            "temp_max",
+            "max_temperature_C",
+            58.5,
+            Window(None, 45.0),
+            out,
+            severity,
+            Hazard.OVER_TEMPERATURE if Hazard.OVER_TEMPERATURE in hazards else None,
+            "cell hotter than 45 C during formation",
+        ),
+        CheckResult(
+            "capacity",
+            "grading_capacity_Ah",
+            20.31,
+            Window(19.6, 21.0),
+            Outcome.IN_WINDOW,
+            Severity.REJECT,
+            None,
+            "grading capacity",
+        ),
     ]
     if kind is VerdictKind.PASS:
         checks = checks[2:]
@@ -102,8 +128,9 @@ def flat(text: str) -> str:
 
 
 def reparse(message: EmailMessage) -> EmailMessage:
-    return cast(EmailMessage, email.message_from_bytes(message.as_bytes(),
-                                                       policy=email.policy.default))
+    return cast(
+        EmailMessage, email.message_from_bytes(message.as_bytes(), policy=email.policy.default)
+    )
 
 
 def test_failure_subject_names_cell_lot_and_hazards(tmp_path: Path) -> None:
@@ -128,8 +155,10 @@ def test_failure_body_has_every_caution_notice_and_traceability(tmp_path: Path) 
     assert "Verdict: FAIL. Do not release this cell; handle it with care." in body
     assert "- voltage falls during the final rest" in body
     deg = "\N{DEGREE SIGN}C"
-    assert (f"- temp_max: max_temperature_C = 58.5 {deg}, window at most 45 {deg}"
-            " (out of window, reject, hazard: over-temperature during formation)") in body
+    assert (
+        f"- temp_max: max_temperature_C = 58.5 {deg}, window at most 45 {deg}"
+        " (out of window, reject, hazard: over-temperature during formation)"
+    ) in body
     assert f"Input SHA-256: {INPUT_SHA}" in body
     assert "Rule set: demo-lfp, revision 2026-02" in body
     assert f"Rule set SHA-256: {RULES_SHA}" in body
@@ -148,8 +177,11 @@ def test_failure_without_a_hazard_still_carries_the_general_caution(tmp_path: Pa
 
 def test_body_lines_stay_readable_in_plain_text(tmp_path: Path) -> None:
     letter = failure_letter(make_result(), str(tmp_path / "c.pdf"), TO, station="line-1")
-    prose = [line for line in letter.body_text.splitlines()
-             if not line.startswith(("- ", "Input", "Rule set"))]
+    prose = [
+        line
+        for line in letter.body_text.splitlines()
+        if not line.startswith(("- ", "Input", "Rule set"))
+    ]
     assert max(len(line) for line in prose) <= 72
 
 
@@ -190,12 +222,14 @@ def test_message_id_is_deterministic_per_result_and_rule_set() -> None:
     assert first.message_id != other_rules.message_id
     assert len({first.message_id, held.message_id, other_rules.message_id}) == 3
     assert first.message_id == message_id_for(
-        "failure", f"{INPUT_SHA}:{RULES_SHA}", domain="line-1.formgate.invalid")
+        "failure", f"{INPUT_SHA}:{RULES_SHA}", domain="line-1.formgate.invalid"
+    )
 
 
 def test_message_id_shape_and_domain() -> None:
     assert message_id_for("alert", "k", domain="station.example.com") == (
-        message_id_for("alert", "k", domain="station.example.com"))
+        message_id_for("alert", "k", domain="station.example.com")
+    )
     mid = message_id_for("digest", "DEMO-LOT-01\n3", domain="station.example.com")
     assert mid.startswith("<") and mid.endswith("@station.example.com>")
     assert len(mid.split("@")[0]) == 33  # "<" and 32 hex digits
@@ -234,8 +268,11 @@ def test_sanitize_header_gives_one_clean_line(value: str, max_len: int) -> None:
 @given(st.text(min_size=1, max_size=300))
 def test_any_cell_id_gives_a_buildable_single_line_subject(cell_id: str) -> None:
     letter = failure_letter(make_result(cell_id=cell_id), "c.pdf", TO, station="line-1")
-    message = build_message(Letter(letter.kind, letter.message_id, letter.recipients,
-                                   letter.subject, letter.body_text), sender=SENDER, date=WHEN)
+    message = build_message(
+        Letter(letter.kind, letter.message_id, letter.recipients, letter.subject, letter.body_text),
+        sender=SENDER,
+        date=WHEN,
+    )
     back = reparse(message)
     assert sorted(back.keys()) == sorted(message.keys())
     assert back["To"] == ", ".join(TO)
@@ -243,15 +280,17 @@ def test_any_cell_id_gives_a_buildable_single_line_subject(cell_id: str) -> None
 
 
 def test_header_injection_from_a_cell_id_stays_inside_the_subject(tmp_path: Path) -> None:
-    result = make_result(cell_id="X\r\nBcc: victim@example.com",
-                         lot="DEMO-LOT-01\nCc: a@example.org")
+    result = make_result(
+        cell_id="X\r\nBcc: victim@example.com", lot="DEMO-LOT-01\nCc: a@example.org"
+    )
     make_pdf(tmp_path / "c.pdf")
     letter = failure_letter(result, str(tmp_path / "c.pdf"), TO, station="line-1")
     back = reparse(build_message(letter, sender=SENDER, date=WHEN))
     assert "Bcc" not in back and "Cc" not in back
     assert back["Subject"].startswith(
         "formgate: FAIL cell X Bcc: victim@example.com, lot DEMO-LOT-01 Cc: a@example.org "
-        "\N{EM DASH}")
+        "\N{EM DASH}"
+    )
     assert back["X-Formgate-Lot"] == "DEMO-LOT-01 Cc: a@example.org"
     assert back["To"] == "quality@example.com, line-lead@example.org"
 
@@ -262,9 +301,18 @@ def test_an_encoded_word_cannot_smuggle_a_line_break_into_a_header(field: str) -
     # "=0D=0A" inside one would otherwise come out as a real line break.
     hostile = "=?utf-8?q?X=0D=0ABcc=3A_victim@example.com?="
     letter = failure_letter(make_result(**{field: hostile}), "c.pdf", TO, station="s")
-    message = build_message(Letter(letter.kind, letter.message_id, letter.recipients,
-                                   letter.subject, letter.body_text, lot=letter.lot),
-                            sender=SENDER, date=WHEN)
+    message = build_message(
+        Letter(
+            letter.kind,
+            letter.message_id,
+            letter.recipients,
+            letter.subject,
+            letter.body_text,
+            lot=letter.lot,
+        ),
+        sender=SENDER,
+        date=WHEN,
+    )
     back = reparse(message)
     assert "Bcc" not in back
     assert sorted(back.keys()) == sorted(message.keys())
@@ -275,8 +323,9 @@ def test_an_encoded_word_cannot_smuggle_a_line_break_into_a_header(field: str) -
 
 def test_letter_refuses_an_address_that_is_not_plain() -> None:
     with pytest.raises(ValueError, match="not a plain mail address"):
-        alert_letter("t", "x", ["quality@example.com\r\nBcc: victim@example.com"],
-                     station="s", key="k")
+        alert_letter(
+            "t", "x", ["quality@example.com\r\nBcc: victim@example.com"], station="s", key="k"
+        )
     with pytest.raises(ValueError, match="at least one recipient"):
         alert_letter("t", "x", [], station="s", key="k")
     with pytest.raises(ValueError, match="not a clean single line"):
@@ -285,8 +334,12 @@ def test_letter_refuses_an_address_that_is_not_plain() -> None:
 
 def test_build_message_headers_and_attachment(tmp_path: Path) -> None:
     pdf = make_pdf(tmp_path / "certificates" / "DEMO-LOT-01" / "DEMO-0007.pdf")
-    letter = failure_letter(make_result(), str(tmp_path / "certificates/DEMO-LOT-01/DEMO-0007.pdf"),
-                            TO, station="line-1")
+    letter = failure_letter(
+        make_result(),
+        str(tmp_path / "certificates/DEMO-LOT-01/DEMO-0007.pdf"),
+        TO,
+        station="line-1",
+    )
     back = reparse(build_message(letter, sender=SENDER, date=WHEN))
     assert back["From"] == SENDER
     assert back["Date"] == "Mon, 02 Mar 2026 14:30:00 +0000"
@@ -352,8 +405,7 @@ def test_digest_is_one_plain_text_table() -> None:
         "DEMO-0001  pass                    20.312  certificates/DEMO-LOT-01/DEMO-0001.pdf\n"
         "DEMO-0002  pass                    20.100  certificates/DEMO-LOT-01/DEMO-0002.pdf\n"
         "DEMO-0003  pass                       n/a  certificates/DEMO-LOT-01/DEMO-0003.pdf\n"
-        "\n"
-        + textwrap.fill(DATA_CHECK_NOTICE, 72) + "\n"
+        "\n" + textwrap.fill(DATA_CHECK_NOTICE, 72) + "\n"
     )
     again = digest_letter("DEMO-LOT-01", rows[:1], TO, station="line-1", digest_no=3)
     later = digest_letter("DEMO-LOT-01", rows, TO, station="line-1", digest_no=4)
@@ -364,8 +416,13 @@ def test_digest_is_one_plain_text_table() -> None:
 
 def test_alert_letter_keeps_lines_and_indents_but_drops_control_characters() -> None:
     text = "rules/demo_lfp.toml, line 14: high is below low.\r\n  Swap the two values.\x07"
-    letter = alert_letter("rules edit refused\r\nBcc: x@example.org", text, TO,
-                          station="line-1", key="rules:demo_lfp:1")
+    letter = alert_letter(
+        "rules edit refused\r\nBcc: x@example.org",
+        text,
+        TO,
+        station="line-1",
+        key="rules:demo_lfp:1",
+    )
     assert letter.subject == "formgate: ALERT \N{EM DASH} rules edit refused Bcc: x@example.org"
     assert letter.body_text == (
         "rules/demo_lfp.toml, line 14: high is below low.\n"

@@ -20,8 +20,13 @@ from tests.test_mail import SENDER, TO, WHEN, make_pdf, make_result
 
 
 def settings(port: int, **options: Any) -> SmtpSettings:
-    values: dict[str, Any] = {"host": HOST, "port": port, "sender": SENDER, "security": "none",
-                              "timeout_s": 5.0}
+    values: dict[str, Any] = {
+        "host": HOST,
+        "port": port,
+        "sender": SENDER,
+        "security": "none",
+        "timeout_s": 5.0,
+    }
     values.update(options)
     return SmtpSettings(**values)
 
@@ -47,7 +52,10 @@ def test_local_relay_receives_the_failure_mail_and_its_pdf_intact(tmp_path: Path
     with smtp_server() as server:
         result = send(message, settings(server.port))
     assert (result.outcome, result.reply, result.refused) == (
-        "sent", "250 2.0.0 accepted as TEST-QUEUE-1", ())
+        "sent",
+        "250 2.0.0 accepted as TEST-QUEUE-1",
+        (),
+    )
     [mail] = server.received
     assert mail.mail_from == "station@example.com"
     assert mail.rcpt_tos == TO
@@ -76,7 +84,8 @@ def test_implicit_tls_with_the_site_ca_sends(tmp_path: Path) -> None:
 
 @pytest.mark.parametrize("ca_file", [None, str(OTHER_CA_FILE)], ids=["system-CAs", "other-CA"])
 def test_starttls_with_a_certificate_from_an_unknown_ca_is_refused(
-        tmp_path: Path, ca_file: str | None) -> None:
+    tmp_path: Path, ca_file: str | None
+) -> None:
     message, _ = failure_mail(tmp_path)
     with smtp_server(starttls=True) as server:
         result = send(message, settings(server.port, security="starttls", ca_file=ca_file))
@@ -134,21 +143,33 @@ def test_a_server_that_never_answers_is_retried_after_the_timeout(tmp_path: Path
 @pytest.mark.parametrize(
     ("rcpt_reply", "data_reply", "outcome", "reply"),
     [
-        ("451 4.3.0 mailbox busy, try later", None, "retry",
-         "every recipient refused: quality@example.com: 451 4.3.0 mailbox busy, try later; "
-         "line-lead@example.org: 451 4.3.0 mailbox busy, try later"),
-        ("550 5.1.1 no such mailbox", None, "park",
-         "every recipient refused: quality@example.com: 550 5.1.1 no such mailbox; "
-         "line-lead@example.org: 550 5.1.1 no such mailbox"),
+        (
+            "451 4.3.0 mailbox busy, try later",
+            None,
+            "retry",
+            "every recipient refused: quality@example.com: 451 4.3.0 mailbox busy, try later; "
+            "line-lead@example.org: 451 4.3.0 mailbox busy, try later",
+        ),
+        (
+            "550 5.1.1 no such mailbox",
+            None,
+            "park",
+            "every recipient refused: quality@example.com: 550 5.1.1 no such mailbox; "
+            "line-lead@example.org: 550 5.1.1 no such mailbox",
+        ),
         (None, "451 4.3.0 queue full, try later", "retry", "451 4.3.0 queue full, try later"),
-        (None, "554 5.6.0 message refused by policy", "park",
-         "554 5.6.0 message refused by policy"),
+        (
+            None,
+            "554 5.6.0 message refused by policy",
+            "park",
+            "554 5.6.0 message refused by policy",
+        ),
     ],
     ids=["rcpt-451", "rcpt-550", "data-451", "data-554"],
 )
 def test_4xx_is_retried_and_5xx_is_parked_with_the_server_reply(
-        tmp_path: Path, rcpt_reply: str | None, data_reply: str | None, outcome: str,
-        reply: str) -> None:
+    tmp_path: Path, rcpt_reply: str | None, data_reply: str | None, outcome: str, reply: str
+) -> None:
     message, _ = failure_mail(tmp_path)
     with smtp_server(rcpt_reply=rcpt_reply, data_reply=data_reply) as server:
         result = send(message, settings(server.port))
@@ -158,8 +179,10 @@ def test_4xx_is_retried_and_5xx_is_parked_with_the_server_reply(
 
 def test_mixed_4xx_and_5xx_refusals_are_retried(tmp_path: Path) -> None:
     message, _ = failure_mail(tmp_path)
-    replies = {"quality@example.com": "550 5.1.1 no such mailbox",
-               "line-lead@example.org": "452 4.2.2 mailbox full"}
+    replies = {
+        "quality@example.com": "550 5.1.1 no such mailbox",
+        "line-lead@example.org": "452 4.2.2 mailbox full",
+    }
     with smtp_server(rcpt_reply=replies) as server:
         result = send(message, settings(server.port))
     assert result.outcome == "retry"
@@ -177,13 +200,18 @@ def test_a_partly_refused_mail_is_sent_and_names_who_did_not_get_it(tmp_path: Pa
 
 @pytest.mark.parametrize(
     ("cell_id", "shown"),
-    [("X\r\nBcc: victim@example.com", "X Bcc: victim@example.com"),
-     ("=?utf-8?q?X=0D=0ABcc=3A_victim@example.com?=",
-      "= ?utf-8?q?X=0D=0ABcc=3A_victim@example.com?=")],
+    [
+        ("X\r\nBcc: victim@example.com", "X Bcc: victim@example.com"),
+        (
+            "=?utf-8?q?X=0D=0ABcc=3A_victim@example.com?=",
+            "= ?utf-8?q?X=0D=0ABcc=3A_victim@example.com?=",
+        ),
+    ],
     ids=["line-break", "encoded-word"],
 )
 def test_header_injection_from_a_cell_id_reaches_only_the_intended_recipients(
-        tmp_path: Path, cell_id: str, shown: str) -> None:
+    tmp_path: Path, cell_id: str, shown: str
+) -> None:
     message, _ = failure_mail(tmp_path, cell_id=cell_id)
     with smtp_server() as server:
         result = send(message, settings(server.port))
@@ -278,7 +306,16 @@ def test_settings_check_their_values_and_hide_the_password(tmp_path: Path) -> No
 
 def test_backoff_doubles_from_the_base_and_stops_at_the_cap() -> None:
     assert [next_attempt_delay_s(n) for n in range(9)] == [
-        0.0, 30.0, 60.0, 120.0, 240.0, 480.0, 960.0, 1920.0, 3600.0]
+        0.0,
+        30.0,
+        60.0,
+        120.0,
+        240.0,
+        480.0,
+        960.0,
+        1920.0,
+        3600.0,
+    ]
     assert next_attempt_delay_s(10_000) == 3600.0
     assert next_attempt_delay_s(3, base_s=1.0, cap_s=10.0) == 4.0
     with pytest.raises(ValueError):
@@ -286,8 +323,9 @@ def test_backoff_doubles_from_the_base_and_stops_at_the_cap() -> None:
 
 
 @given(st.integers(min_value=0, max_value=10_000), st.floats(0.1, 1e3), st.floats(0.1, 1e5))
-def test_backoff_never_shrinks_and_never_passes_the_cap(attempts: int, base_s: float,
-                                                       cap_s: float) -> None:
+def test_backoff_never_shrinks_and_never_passes_the_cap(
+    attempts: int, base_s: float, cap_s: float
+) -> None:
     now = next_attempt_delay_s(attempts, base_s=base_s, cap_s=cap_s)
     later = next_attempt_delay_s(attempts + 1, base_s=base_s, cap_s=cap_s)
     assert 0.0 <= now <= later <= cap_s
