@@ -110,6 +110,15 @@ def test_notes_carried_by_the_metrics_block_too() -> None:
     assert verdict.checks[0].value == 99.0  # shown, but not trusted
 
 
+def test_a_note_code_is_named_once_however_often_it_blocks() -> None:
+    rule = Rule("d", "dcir_mOhm", Window(None, 8.0), Severity.REJECT)
+    twice = Note("time_duplicates", "Rows repeat.", blocks=("dcir_mOhm", "dcir_mOhm"))
+    verdict = evaluate(_rule_set(rule), CT, _metrics({"dcir_mOhm": 5.0}), (twice, twice))
+    assert verdict.reasons == (
+        "dcir_mOhm not judged: blocked by a data-quality note (time_duplicates).",
+    )
+
+
 def test_a_skipped_check_alone_still_passes() -> None:
     rule = Rule("t", "max_temperature_C", Window(None, 45.0), Severity.REJECT, if_missing="skip")
     verdict = evaluate(_rule_set(rule), CT, _metrics({}))
