@@ -23,6 +23,7 @@ from pipeline.metricdefs import BY_NAME
 from pipeline.model import (
     CellResult,
     CheckResult,
+    Curve,
     CycleMetrics,
     Hazard,
     Note,
@@ -36,7 +37,7 @@ TEMPLATES_DIR = Path(__file__).resolve().parent.parent / "templates"
 TEMPLATE_NAME = "certificate.html.j2"
 DASH = "\N{EM DASH}"  # shown for a value that was not measured
 MINUS = "\N{MINUS SIGN}"
-PLOT_WIDTH_MM, PLOT_HEIGHT_MM = 86.0, 54.0
+PLOT_WIDTH_MM, PLOT_HEIGHT_MM = 86.0, 50.0
 IDENTITY_KEYS = ("cell_id", "lot", "cell_type", "channel", "station", "program", "started_at")
 
 VERDICT_WORDS = {
@@ -231,17 +232,28 @@ def _identity(result: CellResult) -> list[tuple[str, str]]:
     return rows
 
 
-def _traceability(result: CellResult) -> list[tuple[str, str]]:
+def _traceability(result: CellResult) -> list[list[tuple[str, str]]]:
+    """Rows of one or two (label, value) pairs: hashes and the file name get a row each."""
     rs = result.rule_set
     return [
-        ("Input file", result.source_name),
-        ("Input SHA-256", result.input_sha256),
-        ("Rule set", f"{rs.name}, revision {rs.revision}"),
-        ("Rule set file", rs.source),
-        ("Rule set SHA-256", rs.sha256),
-        ("Software", f"formgate {result.software_version}"),
-        ("Analysed at", format_time(result.analysed_at)),
+        [("Input file", result.source_name)],
+        [("Input SHA-256", result.input_sha256)],
+        [("Rule set", f"{rs.name}, revision {rs.revision}"), ("Rule set file", rs.source)],
+        [("Rule set SHA-256", rs.sha256)],
+        [("Software", f"formgate {result.software_version}"),
+         ("Analysed at", format_time(result.analysed_at))],
     ]
+
+
+def _ica_caption(curve: Curve | None, peaks_v: tuple[float, ...]) -> str:
+    shown = len(plots.marked_peaks(curve, peaks_v))
+    found = sum(1 for p in peaks_v if math.isfinite(p))
+    if shown < found:
+        return (
+            f"Incremental capacity dQ/dV; dashed lines mark the {shown} highest of the "
+            f"{found} peaks found."
+        )
+    return "Incremental capacity dQ/dV; dashed lines mark the peaks found."
 
 
 def build_context(result: CellResult) -> dict[str, object]:
@@ -288,6 +300,7 @@ def build_context(result: CellResult) -> dict[str, object]:
         )),
         "cycles": [_cycle_row(c) for c in metrics.cycles],
         "plateaus": [_plateau_row(i, p) for i, p in enumerate(metrics.plateaus, start=1)],
+        "ica_caption": _ica_caption(metrics.ica_curve, metrics.ica_peaks_v),
         "ica_peaks": ", ".join(f"{v:.3f} V" for v in metrics.ica_peaks_v if math.isfinite(v))
         or DASH,
         "notes": _note_rows(result),

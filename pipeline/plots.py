@@ -32,6 +32,7 @@ BAND = "#e3ece4"
 BAND_LINE = "#4f7a57"
 PEAK = "#8c4a1c"
 
+MAX_MARKED_PEAKS = 10
 POINTS_PER_MM = 3  # samples kept per mm of plot width: finer than print resolution needs
 _FONT_MM = 2.5  # about 7 pt
 _MARGIN_L, _MARGIN_R, _MARGIN_T, _MARGIN_B = 13.0, 3.0, 3.0, 9.5
@@ -163,8 +164,8 @@ def _frame(
         _MARGIN_T,
         plot_w,
         plot_h,
-        nice_ticks(*x_range, max_ticks=max(3, int(plot_w // 11))),
-        nice_ticks(*y_range, max_ticks=max(3, int(plot_h // 5.5))),
+        nice_ticks(*x_range, max_ticks=max(3, int(plot_w // 9.5))),
+        nice_ticks(*y_range, max_ticks=max(3, int(plot_h // 5))),
     )
 
 
@@ -321,20 +322,41 @@ def discharge_svg(
     return "\n".join(parts)
 
 
+def marked_peaks(curve: Curve | None, peaks_v: Sequence[float]) -> tuple[float, ...]:
+    """The peaks the dQ/dV plot marks: the MAX_MARKED_PEAKS highest, in their given order.
+
+    A featureless or noisy curve can yield dozens of peaks; marking them all
+    would hide the curve. Height is the curve's dQ/dV at the peak voltage.
+    """
+    peaks = [p for p in peaks_v if math.isfinite(p)]
+    if len(peaks) <= MAX_MARKED_PEAKS:
+        return tuple(peaks)
+    x, y = _finite(curve)
+    if x.size:
+        order = np.argsort(x, kind="stable")
+        heights = np.interp(peaks, x[order], y[order])
+    else:
+        heights = np.zeros(len(peaks))
+    ranked = sorted(range(len(peaks)), key=lambda i: (-float(heights[i]), i))
+    keep = set(ranked[:MAX_MARKED_PEAKS])
+    return tuple(p for i, p in enumerate(peaks) if i in keep)
+
+
 def ica_svg(
     curve: Curve | None, peaks_v: Sequence[float], *, width_mm: float, height_mm: float
 ) -> str:
-    """Incremental capacity dQ/dV (Ah/V, y) against voltage (V, x), each peak marked.
+    """Incremental capacity dQ/dV (Ah/V, y) against voltage (V, x), its peaks marked.
 
     A peak is a dashed vertical line at its voltage with a small triangle on top
-    and its voltage written beside it. ``curve`` may be None (nothing measured).
+    and its voltage written beside it. Only the MAX_MARKED_PEAKS highest peaks are
+    marked (see :func:`marked_peaks`). ``curve`` may be None (nothing measured).
     """
     x, y = _finite(curve)
     if y.size and float(y.max()) > 0:
         # Smoothing leaves small negative wiggles at the ends of the range; they
         # would only push the axis below zero, so they are drawn as zero.
         y = np.where((y < 0) & (y > -0.02 * float(y.max())), 0.0, y)
-    peaks = [p for p in peaks_v if math.isfinite(p)]
+    peaks = marked_peaks(curve, peaks_v)
     x_range = _span(np.concatenate((x, np.asarray(peaks, dtype=np.float64))), (2.0, 4.0), 0.02)
     y_range = _span(y, (0.0, 1.0), 0.0)
     y_range = (y_range[0], y_range[1] + 0.12 * (y_range[1] - y_range[0]))  # room for labels

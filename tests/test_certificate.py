@@ -180,7 +180,7 @@ def test_tables_are_formatted_strings() -> None:
         "length_ah": "5.636", "voltage_v": "3.279",
     }
     assert context["ica_peaks"] == "3.200 V, 3.275 V, 3.320 V"
-    assert dict(context["traceability"]) == {
+    assert dict(pair for row in context["traceability"] for pair in row) == {
         "Input file": cases.SOURCE_NAME,
         "Input SHA-256": cases.INPUT_SHA256,
         "Rule set": "demo-lfp, revision 3",
@@ -264,3 +264,16 @@ def test_html_matches_its_golden_snapshot(name: str) -> None:
             f"{name} differs from its snapshot; the output is in {beside.name}. If the change "
             "is intended, run tests/golden/regenerate.py and review the diff."
         )
+
+
+def test_caption_says_when_only_the_highest_peaks_are_marked() -> None:
+    result = cases.pass_result()
+    many = tuple(3.0 + i * 0.01 for i in range(25))
+    metrics = dataclasses.replace(result.metrics, ica_peaks_v=many)
+    context = build_context(dataclasses.replace(result, metrics=metrics))
+    assert context["ica_caption"] == (
+        "Incremental capacity dQ/dV; dashed lines mark the 10 highest of the 25 peaks found."
+    )
+    assert build_context(result)["ica_caption"] == (
+        "Incremental capacity dQ/dV; dashed lines mark the peaks found."
+    )

@@ -259,3 +259,18 @@ def test_close_peaks_do_not_get_overlapping_labels() -> None:
 def test_ica_plot_without_a_curve_says_so() -> None:
     root = parse(plots.ica_svg(None, (), width_mm=86, height_mm=54))
     assert "no dQ/dV curve measured" in [t.text for t in root.iter(f"{SVG}text")]
+
+
+def test_many_peaks_mark_only_the_highest() -> None:
+    v = np.linspace(2.5, 3.5, 201)
+    dq_dv = 10 + 5 * np.sin(v * 200)
+    peaks = tuple(float(p) for p in np.linspace(2.55, 3.45, 30))
+    marked = plots.marked_peaks(Curve(v, dq_dv), peaks)
+    assert len(marked) == plots.MAX_MARKED_PEAKS
+    heights = np.interp(peaks, v, dq_dv)
+    threshold = sorted(heights, reverse=True)[plots.MAX_MARKED_PEAKS - 1]
+    assert all(np.interp(p, v, dq_dv) >= threshold for p in marked)
+    assert list(marked) == [p for p in peaks if p in marked]  # given order kept
+    root = parse(plots.ica_svg(Curve(v, dq_dv), peaks, width_mm=86, height_mm=54))
+    assert len(root.findall(f".//{SVG}path[@class='peak']")) == plots.MAX_MARKED_PEAKS
+    assert plots.marked_peaks(None, (*peaks[:3], math.nan)) == peaks[:3]
