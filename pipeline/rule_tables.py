@@ -11,7 +11,7 @@ import difflib
 import math
 from collections.abc import Mapping, Sequence
 
-from pipeline.errors import RulesError
+from pipeline.errors import FormgateError, RulesError
 from pipeline.metricdefs import METRIC_NAMES
 from pipeline.model import SourceRef
 from pipeline.rules_schema import INTEGER, NUMBER, RENAMED, TABLES, TEXT, TEXT_LIST, Key, Table
@@ -55,16 +55,19 @@ def number(values: Mapping[str, object], key: str) -> float | None:
 class Collector:
     """Every problem of one rule file, each with its line."""
 
-    def __init__(self, text: str, name: str) -> None:
+    def __init__(
+        self, text: str, name: str, error: type[FormgateError] = RulesError
+    ) -> None:
         self.name = name
         self.locate = Locator(text)
-        self.errors: list[RulesError] = []
+        self.error = error
+        self.errors: list[FormgateError] = []
 
     def where(self, path: KeyPath = (), key: str | None = None) -> SourceRef:
         return SourceRef(self.name, self.locate.line(path, key) if path else None)
 
     def add(self, problem: str, path: KeyPath = (), key: str | None = None, hint: str = "") -> None:
-        self.errors.append(RulesError(problem, self.where(path, key), hint=hint))
+        self.errors.append(self.error(problem, self.where(path, key), hint=hint))
 
     def raw(self, path: KeyPath, key: str, value: float) -> str:
         """The number as the file writes it ("3.10"), or a plain rendering of ``value``."""
@@ -180,10 +183,17 @@ def check_value(out: Collector, path: KeyPath, spec: Key, table: str, value: obj
     return value
 
 
-def _unknown_key(out: Collector, path: KeyPath, table: Table, key: str) -> None:
+def _unknown_key(
+    out: Collector,
+    path: KeyPath,
+    table: Table,
+    key: str,
+    tables: Sequence[Table],
+    renamed: Mapping[tuple[str, str], str],
+) -> None:
     where = show_table(path)
-    if (table.name, key) in RENAMED:
-        new = RENAMED[(table.name, key)]
+    if (table.name, key) in renamed:
+        new = renamed[(table.name, key)]
         out.add(
             f"key '{key}' in {where} was renamed to '{new}'",
             path,
@@ -191,9 +201,9 @@ def _unknown_key(out: Collector, path: KeyPath, table: Table, key: str) -> None:
             f"Rename it to '{new}'; its meaning is unchanged.",
         )
         return
-    homes = [t.header for t in TABLES if t is not table and t.key(key)]
+    homes = [t.header for t in tables if t is not table and t.key(key)]
     guess = close_match(key, [k.name for k in table.keys])
-    own = next((t for t in TABLES if t.name == key), None)
+    own = next((t for t in tables if t.name == key), None)
     if own is not None:
         hint = (
             f"{own.header} is a table of its own: start it with its own header line, "
@@ -208,8 +218,20 @@ def _unknown_key(out: Collector, path: KeyPath, table: Table, key: str) -> None:
     out.add(f"unknown key '{key}' in {where}", path, key, hint)
 
 
-def check_table(out: Collector, path: KeyPath, table: Table, data: object) -> Values:
-    """Check one table's keys and values; return the valid values with defaults filled in."""
+def check_table(
+    out: Collector,
+    path: KeyPath,
+    table: Table,
+    data: object,
+    *,
+    tables: Sequence[Table] = TABLES,
+    renamed: Mapping[tuple[str, str], str] = RENAMED,
+) -> Values:
+    """Check one table's keys and values; return the valid values with defaults filled in.
+
+    ``tables`` and ``renamed`` are the schema the table belongs to (rule files by
+    default; station settings pass their own).
+    """
     if not isinstance(data, Mapping):
         out.add(
             f"{show_table(path)} must be a table, found {describe(data)}",
@@ -222,7 +244,7 @@ def check_table(out: Collector, path: KeyPath, table: Table, data: object) -> Va
     for key, value in data.items():
         spec = table.key(key)
         if spec is None:
-            _unknown_key(out, path, table, key)
+            _unknown_key(out, path, table, key, tables, renamed)
             unknown = True
             continue
         checked = check_value(out, path, spec, table.name, value)
@@ -241,7 +263,14 @@ def check_table(out: Collector, path: KeyPath, table: Table, data: object) -> Va
     return values
 
 
-def check_family(out: Collector, table: Table, data: object) -> tuple[dict[str, Values], set[str]]:
+def check_family(
+    out: Collector,
+    table: Table,
+    data: object,
+    *,
+    tables: Sequence[Table] = TABLES,
+    renamed: Mapping[tuple[str, str], str] = RENAMED,
+) -> tuple[dict[str, Values], set[str]]:
     """Check a family of named tables such as [check.ID].
 
     Returns the valid values of every entry by ID, and the IDs of entries with a problem
@@ -270,7 +299,9 @@ def check_family(out: Collector, table: Table, data: object) -> tuple[dict[str, 
             )
             continue
         before = len(out.errors)
-        members[ident] = check_table(out, (*path, ident), table, body)
+        members[ident] = check_table(
+            out, (*path, ident), table, body, tables=tables, renamed=renamed
+        )
         if len(out.errors) > before:
             broken.add(ident)
     return members, broken
