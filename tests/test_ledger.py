@@ -730,8 +730,8 @@ def test_two_processes_open_and_write_the_same_new_ledger_at_once(tmp_path: Path
 # ---- invariants under random operation sequences ---------------------------------------------
 
 
-CONTENTS = ("bytes-a", "bytes-b", "bytes-c", "bytes-d")
-NAMES = ("x.csv", "y.csv", "z.csv")
+CONTENTS = ("bytes-a", "bytes-b", "bytes-c")  # few, so that bytes and names meet again often
+NAMES = ("x.csv", "y.csv")
 
 
 class LedgerMachine(RuleBasedStateMachine):
@@ -902,8 +902,8 @@ class LedgerMachine(RuleBasedStateMachine):
 
 TestLedgerMachine = LedgerMachine.TestCase
 TestLedgerMachine.settings = settings(
-    max_examples=40,
-    stateful_step_count=25,
+    max_examples=50,
+    stateful_step_count=30,
     deadline=None,
     suppress_health_check=[HealthCheck.too_slow],
 )
