@@ -59,11 +59,13 @@ def validate_trace(trace: Trace, cell_type: CellType) -> tuple[Note, ...]:
     rows = np.flatnonzero(~empty)
     _refuse_short(trace, len(rows))
     time_s = trace.time_s[rows]
-    _check_time_order(trace, rows, time_s)
-    _check_voltage(trace, rows, trace.voltage_v[rows], cell_type)
-    _check_current(trace, rows, trace.current_a[rows], cell_type)
-    notes += _note_repeated_times(trace, rows, time_s)
-    notes += _note_gaps(trace, rows, time_s, trace.current_a[rows], cell_type)
+    # Differences of absurdly large times may overflow to inf, which the checks handle.
+    with np.errstate(over="ignore", invalid="ignore"):
+        _check_time_order(trace, rows, time_s)
+        _check_voltage(trace, rows, trace.voltage_v[rows], cell_type)
+        _check_current(trace, rows, trace.current_a[rows], cell_type)
+        notes += _note_repeated_times(trace, rows, time_s)
+        notes += _note_gaps(trace, rows, time_s, trace.current_a[rows], cell_type)
     notes += _note_temperature(trace)
     return tuple(notes)
 

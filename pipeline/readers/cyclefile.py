@@ -66,17 +66,23 @@ def read_cycle_file(
     region = _data_region(text, head, name, profile)
     frame = _parse(region, head, name, profile)
     first = head.header_line + 1
-    values = {q: _numbers(frame, i, q, head, name, profile) for q, i in columns.items()}
+    factors = {
+        "time": TIME_UNITS[profile.time_unit],
+        "voltage": VOLTAGE_UNITS[profile.voltage_unit],
+        "current": CURRENT_UNITS[profile.current_unit] * CURRENT_SIGNS[profile.current_sign],
+    }
+    values = {
+        q: _numbers(frame, i, head, name, profile, factors.get(q, 1.0)) for q, i in columns.items()
+    }
     for quantity in ("step", "cycle"):
         if quantity in values:
             _refuse_non_integers(values[quantity], columns[quantity], head, name, quantity)
-    sign = CURRENT_SIGNS[profile.current_sign]
     return Trace(
         source=name,
         metadata=metadata,
-        time_s=values["time"] * TIME_UNITS[profile.time_unit],
-        voltage_v=values["voltage"] * VOLTAGE_UNITS[profile.voltage_unit],
-        current_a=values["current"] * (CURRENT_UNITS[profile.current_unit] * sign),
+        time_s=values["time"],
+        voltage_v=values["voltage"],
+        current_a=values["current"],
         temperature_c=values.get("temperature"),
         step=values["step"].astype(np.int64) if "step" in values else None,
         cycle=values["cycle"].astype(np.int64) if "cycle" in values else None,
@@ -412,8 +418,9 @@ def _number_pattern(decimal: str) -> re.Pattern[str]:
 
 
 def _numbers(
-    frame: pd.DataFrame, index: int, quantity: str, head: _Head, name: str, profile: Profile
+    frame: pd.DataFrame, index: int, head: _Head, name: str, profile: Profile, factor: float
 ) -> FloatArray:
+    """Column ``index`` as float64 times ``factor`` (file unit -> v1 unit); empty fields NaN."""
     series = frame[index]
     header = head.fields[index]
     if series.dtype.kind in "iuf":
@@ -437,15 +444,18 @@ def _numbers(
             # looks like a number yet pandas kept it as text (e.g. a huge integer)
             parsed.append(float(text.replace(profile.decimal, ".")))
         values = np.array(parsed, dtype=np.float64)
-    infinite = np.flatnonzero(np.isinf(values))
+    with np.errstate(over="ignore"):
+        scaled: FloatArray = values * factor
+    infinite = np.flatnonzero(np.isinf(scaled))
     if infinite.size:
         row = int(infinite[0])
+        what = "not a finite number" if np.isinf(values[row]) else "too large to convert"
         raise InputError(
-            f"{header} is {values[row]:g}, not a finite number",
+            f"{header} is {values[row]:g}, {what}",
             SourceRef(name, head.header_line + 1 + row, index + 1),
             "Fix the value, or leave it empty if it is missing.",
         )
-    return values
+    return scaled
 
 
 def _not_a_number(
