@@ -24,7 +24,7 @@ IntArray = npt.NDArray[np.int64]
 
 def frozen_array(values: object, dtype: type = np.float64) -> npt.NDArray[np.generic]:
     """Return a read-only contiguous copy of ``values`` as ``dtype``."""
-    array = np.array(values, dtype=dtype, copy=True)
+    array: npt.NDArray[np.generic] = np.array(values, dtype=dtype, copy=True)
     array.setflags(write=False)
     return array
 

@@ -109,8 +109,10 @@ def incremental_capacity(
 
     Binning capacity by voltage, never dividing raw differences, is what keeps a
     flat plateau a finite peak instead of a spike (REFERENCE.md 4.1, common practice).
-    Peaks are those with a prominence of at least 5 % of the highest bin (or the
-    rule set's absolute minimum, whichever is larger), reported high voltage first.
+    Peaks are those with a prominence of at least 5 % of the highest bin, of one
+    total capacity per volt (a peak must hold about 1 % of the capacity in 10 mV,
+    so sensor noise on a sloped curve makes none), and of the rule set's absolute
+    minimum, whichever is largest; reported high voltage first.
     """
     n = len(smooth_v)
     dq_ah = total_ah / (n - 1)
@@ -126,7 +128,7 @@ def incremental_capacity(
     if nbins >= 5:
         dqdv = savgol_filter(dqdv, 5, 2, mode="interp").clip(min=0.0)
     top = float(dqdv.max()) if nbins else 0.0
-    prominence = max(settings.ica_min_prominence_ah_per_v, 0.05 * top)
+    prominence = max(settings.ica_min_prominence_ah_per_v, 0.05 * top, total_ah * 1.0)
     found, _ = find_peaks(np.concatenate(([0.0], dqdv, [0.0])), prominence=prominence)
-    peaks = tuple(sorted((float(centres[i - 1]) for i in found), reverse=True))
+    peaks = tuple(sorted((round(float(centres[i - 1]), 4) for i in found), reverse=True))
     return Curve(centres, dqdv), peaks
