@@ -25,7 +25,7 @@ from pipeline.readers.profile import Profile
 from pipeline.result import to_json
 from pipeline.rulebook import RuleBook
 from pipeline.segmentation import split_steps
-from pipeline.validate import validate_trace
+from pipeline.validate import drop_invalid_rows, validate_trace
 
 
 def judge(
@@ -35,15 +35,17 @@ def judge(
     *,
     analysed_at: datetime.datetime,
     profile: Profile | None = None,
+    max_uncompressed_bytes: int = 512 * 2**20,
 ) -> CellResult:
     """Read, validate, segment, measure and judge one cycle file's bytes.
 
     Raises a FormgateError (InputError) when the file cannot be read, matched to a
     rule set, or is implausible; that is the ``error`` verdict, with its reason.
     """
-    trace = read_cycle_file(data, name, profile)
+    trace = read_cycle_file(data, name, profile, max_uncompressed_bytes=max_uncompressed_bytes)
     rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
     notes = validate_trace(trace, cell_type)
+    trace = drop_invalid_rows(trace)
     segmentation = split_steps(trace, rule_set.rest_current_fraction * cell_type.nominal_capacity_ah)
     metrics = measure(
         trace,
