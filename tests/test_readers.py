@@ -318,6 +318,86 @@ def test_a_huge_integer_is_still_a_number() -> None:
     assert trace.time_s[0] == pytest.approx(-1e23)
 
 
+def test_a_repeated_unknown_metadata_key_keeps_its_first_value() -> None:
+    text = make_csv(basic_rows(), metadata={**META}).replace(
+        "# lot", "# fixture: F-1\n# fixture: F-2\n# lot"
+    )
+    assert read_cycle_file(text.encode(), "c.csv").metadata["fixture"] == "F-1"
+
+
+def test_an_optional_group_of_the_file_name_pattern_may_be_absent() -> None:
+    profile = load_profile(
+        "[file]\nfile_name_pattern = "
+        "'^(?P<lot>[^_]+)_(?P<cell_id>[^_.]+)(?:_ch(?P<channel>[0-9]+))?'",
+        "p.toml",
+    )
+    text = make_csv(basic_rows(), metadata={"cell_type": "DEMO-LFP-20A"})
+    without = read_cycle_file(text.encode(), "LOT-A7_CELL-1.csv", profile)
+    assert "channel" not in without.metadata
+    assert (
+        read_cycle_file(text.encode(), "LOT-A7_CELL-1_ch12.csv", profile).metadata["channel"]
+        == "12"
+    )
+
+
+def test_a_header_field_too_long_for_the_csv_module_is_still_split() -> None:
+    columns = ("time_s", "voltage_V", "current_A", '"' + "x" * 200_000 + '"')
+    rows = [[*row, "1"] for row in basic_rows()]
+    assert len(read_cycle_file(make_csv(rows, columns).encode(), "c.csv")) == 12
+
+
+def test_a_text_column_of_numbers_with_empty_fields_and_huge_integers() -> None:
+    rows: list[list[object]] = [[k, 3.2, 1.0] for k in range(12)]
+    rows[0][0] = "-99999999999999999999999"
+    rows[1][0] = ""
+    trace = read_cycle_file(make_csv(rows).encode(), "c.csv")
+    assert trace.time_s[0] == pytest.approx(-1e23) and math.isnan(trace.time_s[1])
+
+
+def test_an_integer_too_large_for_a_float_is_refused() -> None:
+    rows: list[list[object]] = [[k, 3.2, 1.0] for k in range(12)]
+    rows[3][0] = "9" * 400
+    with pytest.raises(InputError) as caught:
+        read_cycle_file(make_csv(rows).encode(), "c.csv")
+    assert str(caught.value) == (
+        "c.csv, line 8, column 1: time_s is inf, not a finite number.\n"
+        "  Fix the value, or leave it empty if it is missing."
+    )
+
+
+def test_a_number_that_overflows_on_unit_conversion_is_refused() -> None:
+    profile = load_profile('[units]\ntime = "h"\n', "p.toml")
+    rows: list[list[object]] = [[k, 3.2, 1.0] for k in range(12)]
+    rows[2][0] = "1e306"
+    with pytest.raises(InputError) as caught:
+        read_cycle_file(make_csv(rows).encode(), "c.csv", profile)
+    assert str(caught.value) == (
+        "c.csv, line 7, column 1: time_s is 1e+306, too large to convert.\n"
+        "  Fix the value, or leave it empty if it is missing."
+    )
+
+
+@pytest.mark.parametrize(
+    "text",
+    ['file = {delimter = "tab"}\n', 'file.delimter = "tab"\n'],
+    ids=["inline table", "dotted key"],
+)
+def test_profile_errors_find_keys_written_inline_or_dotted(text: str) -> None:
+    with pytest.raises(ProfileError) as caught:
+        load_profile('description = "x"\n' + text, "p.toml")
+    assert str(caught.value) == (
+        "p.toml, line 2: unknown key 'delimter' in [file].\n  Did you mean 'delimiter'?"
+    )
+
+
+def test_a_unit_value_far_from_any_is_not_guessed() -> None:
+    with pytest.raises(ProfileError) as caught:
+        load_profile('[units]\nvoltage = "kV"\n', "p.toml")
+    assert str(caught.value) == (
+        'p.toml, line 2: [units] voltage = "kV" is not one of "V", "mV".\n  Use one of "V", "mV".'
+    )
+
+
 # ---------------------------------------------------------------- profiles
 
 

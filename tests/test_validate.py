@@ -207,6 +207,11 @@ def test_a_gap_shorter_than_a_minute_is_not_noted() -> None:
     assert validate_trace(gapped, CELL) == ()
 
 
+def test_a_record_whose_time_never_moves_has_only_the_duplicates_note() -> None:
+    trace = make_trace(12, dt_s=0.0)
+    assert [n.code for n in validate_trace(trace, CELL)] == ["time_duplicates"]
+
+
 def test_blocked_metrics_are_real_metric_names() -> None:
     assert set(CAPACITY_METRICS) <= set(METRIC_NAMES)
     assert "max_temperature_C" in METRIC_NAMES

@@ -221,7 +221,8 @@ def _build(doc: dict[str, Any], text: str, name: str) -> Profile:
         value = text_value(table, key, default)
         if value not in allowed:
             listed = ", ".join(f'"{a}"' for a in allowed)
-            hint = _suggest(value, allowed) or f"Use one of {listed}."
+            # a stricter match for values, so that "kV" is not taken for "V"
+            hint = _suggest(value, allowed, cutoff=0.75) or f"Use one of {listed}."
             raise fail(f'{_label(table, key)} = "{value}" is not one of {listed}', table, key, hint)
         return value
 
@@ -319,10 +320,16 @@ def _label(table: str, key: str) -> str:
     return f"[{table}] {key}" if table else key
 
 
-def _suggest(word: str, choices: tuple[str, ...], shape: str = "'{}'", known: bool = False) -> str:
+def _suggest(
+    word: str,
+    choices: tuple[str, ...],
+    shape: str = "'{}'",
+    known: bool = False,
+    cutoff: float = 0.6,
+) -> str:
     """'Did you mean ...?' for a close match (case ignored); else, if ``known``, the choices."""
     lowered = {choice.lower(): choice for choice in choices}
-    close = difflib.get_close_matches(word.lower(), list(lowered), n=1, cutoff=0.6)
+    close = difflib.get_close_matches(word.lower(), list(lowered), n=1, cutoff=cutoff)
     if close:
         return f"Did you mean {shape.format(lowered[close[0]])}?"
     if known:
@@ -355,6 +362,4 @@ def _line_of(text: str, table: str, key: str | None) -> int | None:
             return number
         if current == "" and table and written in (table, f"{table}.{key}"):
             return number  # inline table or dotted key at the top level
-        if current == "" and not table and written == key:
-            return number
     return table_line
