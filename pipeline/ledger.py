@@ -842,6 +842,34 @@ class Ledger:
         )
         return [_input(r) for r in rows]
 
+    # ---- texts of the rules results were judged with ------------------------------------------
+
+    def remember_text(
+        self, *, kind: str, sha256: str, name: str, text: str, now: datetime.datetime
+    ) -> None:
+        """Keep a rule set's (or profile's) exact text under its SHA-256; again is a no-op."""
+        with self._write() as conn:
+            conn.execute(
+                "INSERT OR IGNORE INTO rule_texts (sha256, kind, name, text, first_used_at) "
+                "VALUES (?, ?, ?, ?, ?)",
+                (sha256, kind, name, text, _utc(now, "now")),
+            )
+
+    def text_by_sha(self, sha256: str) -> tuple[str, str] | None:
+        """(name, text) of a remembered rule set or profile, or None."""
+        row = self._one("SELECT name, text FROM rule_texts WHERE sha256 = ?", (sha256,))
+        return None if row is None else (row["name"], row["text"])
+
+    def digest_count(self, lot: str) -> int:
+        """How many digest mails were ever queued for ``lot`` (numbers the next one)."""
+        row = self._one("SELECT count(*) AS n FROM outbox WHERE kind = 'digest' AND lot = ?", (lot,))
+        return 0 if row is None else int(row["n"])
+
+    def latest_activity(self, lot: str) -> datetime.datetime | None:
+        """When the latest cell of ``lot`` was judged (for the digest's quiet time)."""
+        row = self._one("SELECT max(analysed_at) AS t FROM results WHERE lot = ?", (lot,))
+        return None if row is None or row["t"] is None else _time(row["t"])
+
     def integrity_ok(self) -> bool:
         """``PRAGMA integrity_check`` says 'ok' and no foreign key points nowhere."""
         rows = self._conn.execute("PRAGMA integrity_check").fetchall()

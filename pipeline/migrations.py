@@ -157,7 +157,23 @@ _INITIAL = sql_migration(
     "CREATE INDEX outbox_by_state ON outbox (state)",
 )
 
-MIGRATIONS: tuple[Migration, ...] = (_INITIAL,)
+# The exact text of every rule set (and import profile) a result was judged with, by
+# SHA-256: a restart that must re-render a committed result judges the same bytes
+# with the same rules again, and auditors can read the rules behind any certificate.
+_RULE_TEXTS = sql_migration(
+    "0002_rule_texts",
+    """
+    CREATE TABLE rule_texts (
+        sha256 TEXT PRIMARY KEY CHECK (length(sha256) = 64 AND sha256 NOT GLOB '*[^0-9a-f]*'),
+        kind TEXT NOT NULL CHECK (kind IN ('rule_set', 'profile')),
+        name TEXT NOT NULL,
+        text TEXT NOT NULL,
+        first_used_at TEXT NOT NULL
+    ) STRICT
+    """,
+)
+
+MIGRATIONS: tuple[Migration, ...] = (_INITIAL, _RULE_TEXTS)
 SCHEMA_VERSION = len(MIGRATIONS)
 
 _BOOTSTRAP = """

@@ -134,11 +134,11 @@ def test_new_ledger_uses_wal_full_sync_foreign_keys_and_records_its_migration(
         assert conn.execute("PRAGMA foreign_keys").fetchone()[0] == 1
         assert conn.execute("PRAGMA busy_timeout").fetchone()[0] == 30_000
         assert conn.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
-        assert applied_migrations(conn) == [("0001_initial", "2026-03-02T06:00:00.000000+00:00")]
+        assert applied_migrations(conn) == [(m.name, "2026-03-02T06:00:00.000000+00:00") for m in MIGRATIONS]
     # opening again applies nothing and keeps the record as it was
     with Ledger(path, now=minutes(60)) as again:
         assert applied_migrations(again._conn) == [
-            ("0001_initial", "2026-03-02T06:00:00.000000+00:00")
+            (m.name, "2026-03-02T06:00:00.000000+00:00") for m in MIGRATIONS
         ]
 
 
@@ -146,7 +146,7 @@ def test_database_at_version_1_upgrades_and_is_then_too_new_for_this_code(tmp_pa
     path = tmp_path / "ledger.sqlite"
     with Ledger(path, now=T0) as ledger:
         claim(ledger, "cell one", "c1.csv")
-    second = sql_migration("0002_inputs_operator_note", "ALTER TABLE inputs ADD COLUMN note TEXT")
+    second = sql_migration("0099_inputs_operator_note", "ALTER TABLE inputs ADD COLUMN note TEXT")
     conn = sqlite3.connect(path, isolation_level=None)
     try:
         done = migrate(
@@ -155,11 +155,11 @@ def test_database_at_version_1_upgrades_and_is_then_too_new_for_this_code(tmp_pa
             applied_at="2026-04-01T00:00:00.000000+00:00",
             where=SourceRef(str(path)),
         )
-        assert done == ["0002_inputs_operator_note"]
-        assert conn.execute("PRAGMA user_version").fetchone()[0] == 2
+        assert done == ["0099_inputs_operator_note"]
+        assert conn.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION + 1
         assert [name for name, _ in applied_migrations(conn)] == [
-            "0001_initial",
-            "0002_inputs_operator_note",
+            *(m.name for m in MIGRATIONS),
+            "0099_inputs_operator_note",
         ]
         assert conn.execute("SELECT name, note FROM inputs").fetchall() == [("c1.csv", None)]
     finally:
@@ -167,8 +167,9 @@ def test_database_at_version_1_upgrades_and_is_then_too_new_for_this_code(tmp_pa
     with pytest.raises(LedgerError) as caught:
         Ledger(path, now=T0)
     assert str(caught.value) == (
-        f"{path}: the ledger was written by a newer formgate (schema version 2, migrations this "
-        "formgate does not know: 0002_inputs_operator_note; this formgate knows up to version 1).\n"
+        f"{path}: the ledger was written by a newer formgate (schema version {SCHEMA_VERSION + 1}, "
+        "migrations this formgate does not know: 0099_inputs_operator_note; this formgate knows up "
+        f"to version {SCHEMA_VERSION}).\n"
         "  Run the newer formgate, or upgrade this installation; a ledger is never downgraded."
     )
 
@@ -177,16 +178,16 @@ def test_a_failing_migration_leaves_the_database_at_the_previous_version(tmp_pat
     path = tmp_path / "ledger.sqlite"
     Ledger(path, now=T0).close()
     broken = sql_migration(
-        "0002_broken", "CREATE TABLE half_done (x TEXT)", "SELECT * FROM no_such_table"
+        "0099_broken", "CREATE TABLE half_done (x TEXT)", "SELECT * FROM no_such_table"
     )
     conn = sqlite3.connect(path, isolation_level=None)
     try:
         with pytest.raises(sqlite3.OperationalError):
             migrate(conn, (*MIGRATIONS, broken), applied_at="x", where=SourceRef(str(path)))
-        assert conn.execute("PRAGMA user_version").fetchone()[0] == 1
+        assert conn.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
         tables = {r[0] for r in conn.execute("SELECT name FROM sqlite_schema WHERE type = 'table'")}
         assert "half_done" not in tables
-        assert [name for name, _ in applied_migrations(conn)] == ["0001_initial"]
+        assert [name for name, _ in applied_migrations(conn)] == [m.name for m in MIGRATIONS]
     finally:
         conn.close()
     Ledger(path, now=T0).close()  # still opens with the code it was made by
@@ -202,7 +203,7 @@ def test_a_ledger_claiming_a_future_version_is_refused(tmp_path: Path) -> None:
         Ledger(path, now=T0)
     assert str(caught.value) == (
         f"{path}: the ledger was written by a newer formgate (schema version 7, migrations this "
-        "formgate does not know: none recorded; this formgate knows up to version 1).\n"
+        "formgate does not know: none recorded; this formgate knows up to version 2).\n"
         "  Run the newer formgate, or upgrade this installation; a ledger is never downgraded."
     )
 
@@ -722,7 +723,7 @@ def test_two_processes_open_and_write_the_same_new_ledger_at_once(tmp_path: Path
         assert len(ledger.inputs_in_state("published")) == 80
         assert ledger.outbox_counts()["pending"] == 80
         assert applied_migrations(ledger._conn) == [
-            ("0001_initial", "2026-03-02T06:00:00.000000+00:00")
+            (m.name, "2026-03-02T06:00:00.000000+00:00") for m in MIGRATIONS
         ]
         assert ledger.integrity_ok()
 
@@ -907,3 +908,21 @@ TestLedgerMachine.settings = settings(
     deadline=None,
     suppress_health_check=[HealthCheck.too_slow],
 )
+
+
+def test_a_version_1_ledger_is_upgraded_in_place_and_keeps_its_rows(tmp_path: Path) -> None:
+    path = tmp_path / "ledger.sqlite"
+    conn = sqlite3.connect(path, isolation_level=None)
+    try:
+        migrate(conn, MIGRATIONS[:1], applied_at="2026-01-01T00:00:00.000000+00:00", where=SourceRef(str(path)))
+        conn.execute("PRAGMA journal_mode = WAL")
+    finally:
+        conn.close()
+    with Ledger(path, now=T0) as ledger:
+        assert [name for name, _ in applied_migrations(ledger._conn)] == [m.name for m in MIGRATIONS]
+        row, _ = claim(ledger, "cell one", "c1.csv")
+        sha = "a" * 64
+        ledger.remember_text(kind="rule_set", sha256=sha, name="x.toml", text="[rule_set]", now=T0)
+        ledger.remember_text(kind="rule_set", sha256=sha, name="x.toml", text="[rule_set]", now=T0)
+        assert ledger.text_by_sha(sha) == ("x.toml", "[rule_set]")
+        assert ledger.integrity_ok()

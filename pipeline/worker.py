@@ -1,0 +1,117 @@
+"""What a station worker process does with one claimed file: judge it and render its outputs.
+
+Runs in long-lived worker processes (the import of the rendering stack is paid
+once per process, not per file). It reads the claimed file, judges it, and
+renders the JSON and PDF *bytes*; it writes nothing. The station's main process
+records the result and only then writes the files (order of effects in
+docs/station.md), so a crash can never leave a certificate without its ledger row.
+"""
+
+from __future__ import annotations
+
+import datetime
+import hashlib
+import logging
+import signal
+import time
+import traceback
+from dataclasses import dataclass
+from pathlib import Path
+
+from pipeline.errors import FormgateError, InputError
+from pipeline.model import CellResult, SourceRef
+from pipeline.rulebook import RuleBook
+
+log = logging.getLogger("formgate.worker")
+
+
+@dataclass(frozen=True, slots=True)
+class Task:
+    """One claimed file to judge. ``profile_text`` is the import profile's TOML, if any."""
+
+    input_id: int
+    work_path: str
+    name: str
+    sha256: str
+    rulebook: RuleBook
+    analysed_at: datetime.datetime
+    profile_name: str | None = None
+    profile_text: str | None = None
+    max_uncompressed_bytes: int = 1024 * 2**20
+    render_pdf: bool = True
+
+
+@dataclass(frozen=True, slots=True)
+class Output:
+    """A judged cell with its rendered bytes, or the reason it could not be judged.
+
+    ``bug`` is True when the reason is an unexpected exception in formgate itself
+    (the file is still quarantined, and the traceback goes to the log).
+    """
+
+    input_id: int
+    result: CellResult | None
+    json_text: str | None
+    pdf: bytes | None
+    error: str | None
+    seconds: float
+    bug: bool = False
+    detail: str = ""
+
+
+def init_worker() -> None:
+    """Worker start-up: leave Ctrl-C to the station, and import the rendering stack once."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    import pipeline.certificate  # noqa: F401 - warm the import before the first file
+    import pipeline.pdf  # noqa: F401
+
+
+def run_task(task: Task) -> Output:
+    """Judge and render one file; never raises (a bug becomes an error Output)."""
+    started = time.perf_counter()
+    try:
+        result, json_text, pdf = _judge_and_render(task)
+    except FormgateError as exc:
+        return Output(task.input_id, None, None, None, str(exc), time.perf_counter() - started)
+    except MemoryError:
+        reason = f"{task.name}: the file needs more memory than a worker may use; it is quarantined"
+        return Output(task.input_id, None, None, None, reason, time.perf_counter() - started)
+    except Exception as exc:  # noqa: BLE001 - a bug must not take the station down
+        reason = (
+            f"{task.name}: formgate could not judge this file because of an internal error "
+            f"({type(exc).__name__}: {exc}).\n  The station log has the details; please report it."
+        )
+        detail = "".join(traceback.format_exception(exc))
+        return Output(task.input_id, None, None, None, reason, time.perf_counter() - started, True, detail)
+    return Output(task.input_id, result, json_text, pdf, None, time.perf_counter() - started)
+
+
+def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None]:
+    from pipeline.readers.profile import load_profile
+    from pipeline.result import to_json
+    from pipeline.runner import judge
+
+    data = Path(task.work_path).read_bytes()
+    if hashlib.sha256(data).hexdigest() != task.sha256:
+        raise InputError(
+            "the file changed after it was claimed", SourceRef(task.name),
+            "A writer still had it open: make the cycler finish writing before hand-over.",
+        )
+    profile = None
+    if task.profile_text is not None:
+        profile = load_profile(task.profile_text, task.profile_name or "import profile")
+    result = judge(
+        data,
+        task.name,
+        task.rulebook,
+        analysed_at=task.analysed_at,
+        profile=profile,
+        max_uncompressed_bytes=task.max_uncompressed_bytes,
+    )
+    pdf = None
+    if task.render_pdf:
+        from pipeline.certificate import render_html
+        from pipeline.pdf import render_pdf
+
+        pdf = render_pdf(render_html(result))
+    return result, to_json(result), pdf
