@@ -251,8 +251,12 @@ def _collect_metadata(head: _Head, name: str, profile: Profile) -> dict[str, str
             raise InputError(
                 f"no {key} in the metadata (found: {found_keys})",
                 SourceRef(name, head.block_line),
-                f"Add a line '{profile.metadata_prefix} {key}: ...' before the header, "
-                "or set it under [metadata] in an import profile.",
+                f"Add a line '{profile.metadata_prefix} {key}: ...' before the header, or "
+                + (
+                    "set it under [metadata] in an import profile."
+                    if key == "cell_type"
+                    else "take it from the file name with an import profile's file_name_pattern."
+                ),
             )
     return metadata
 
@@ -403,7 +407,7 @@ def _diagnose(region: str, head: _Head, name: str, profile: Profile, why: str) -
             return _field_count_error(count, row, len(lines), head, name)
     return InputError(  # pragma: no cover - pandas failed, yet every line looks right
         f"the data cannot be read as {_DELIMITER_NAMES[profile.delimiter]}-separated text "
-        f"({why.strip().splitlines()[-1]})",
+        f"({(why.strip().splitlines() or ['no reason given'])[-1]})",
         SourceRef(name, head.header_line + 1),
         _ROW_HINT,
     )
