@@ -9,8 +9,6 @@ from __future__ import annotations
 
 import datetime
 import hashlib
-import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -26,6 +24,7 @@ from pipeline.result import to_json
 from pipeline.rulebook import RuleBook
 from pipeline.segmentation import split_steps
 from pipeline.validate import drop_invalid_rows, validate_trace
+from pipeline.writing import write_atomic
 
 
 def judge(
@@ -83,26 +82,6 @@ def output_paths(out: Path, result: CellResult) -> tuple[Path, Path]:
     """``results/<lot>/<cell_id>.json`` and ``certificates/<lot>/<cell_id>.pdf`` under ``out``."""
     lot, cell = safe_name(result.lot), safe_name(result.cell_id)
     return out / "results" / lot / f"{cell}.json", out / "certificates" / lot / f"{cell}.pdf"
-
-
-def write_atomic(data: bytes, path: Path) -> None:
-    """Write ``data`` to ``path`` so that readers see the old file or the whole new one."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    dir_fd = os.open(path.parent, os.O_RDONLY)
-    try:
-        os.fsync(dir_fd)
-    finally:
-        os.close(dir_fd)
 
 
 def publish(result: CellResult, out: Path, *, certificate: bool = True) -> Published:
