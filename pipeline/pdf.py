@@ -13,7 +13,6 @@ import logging
 import mimetypes
 import os
 import pathlib
-import tempfile
 import threading
 import urllib.parse
 import urllib.request
@@ -22,6 +21,7 @@ from weasyprint import HTML, URLFetcher
 from weasyprint.urls import URLFetcherResponse
 
 from pipeline.certificate import TEMPLATES_DIR
+from pipeline.writing import write_atomic
 
 log = logging.getLogger(__name__)
 
@@ -94,26 +94,5 @@ def render_pdf(html: str) -> bytes:
 
 
 def write_pdf(pdf: bytes, path: pathlib.Path) -> None:
-    """Write ``pdf`` to ``path`` so nobody ever sees half a file.
-
-    A temporary file in the same folder is written and fsynced, then renamed over
-    ``path`` (os.replace is atomic on one filesystem), then the folder is fsynced
-    so the rename survives a power cut. The folder is created when missing.
-    """
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, temp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(pdf)
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.chmod(temp_name, 0o644)
-        os.replace(temp_name, path)
-    except BaseException:
-        pathlib.Path(temp_name).unlink(missing_ok=True)
-        raise
-    dir_fd = os.open(path.parent, os.O_RDONLY)
-    try:
-        os.fsync(dir_fd)
-    finally:
-        os.close(dir_fd)
+    """Write ``pdf`` to ``path`` so nobody ever sees half a file (see writing.write_atomic)."""
+    write_atomic(pdf, path)
