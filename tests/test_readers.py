@@ -23,6 +23,7 @@ from pipeline.readers.profile import (
     PROFILE_KEYS,
     V1_COLUMNS,
     Profile,
+    describe_profile_keys,
     load_profile,
 )
 from pipeline.validate import validate_trace
@@ -464,6 +465,14 @@ def test_every_documented_key_is_accepted() -> None:
     assert profile.columns["cycle"] == "col cycle"
     assert profile.metadata["fixture"] == "F-1"
     assert profile.current_sign == "discharge positive"
+
+
+def test_profile_key_table_documents_every_key() -> None:
+    table = describe_profile_keys()
+    assert table.count("\n") == len(PROFILE_KEYS) + 2
+    for key in PROFILE_KEYS:
+        assert (f"`{key.key}`" if key.key != "*" else "any metadata name") in table
+    assert "| [units] | `current_sign` | charge positive, discharge positive |" in table
 
 
 # ---------------------------------------------------------------- properties

@@ -88,7 +88,7 @@ PROFILE_KEYS: tuple[ProfileKey, ...] = (
         "regular expression with named groups",
         "none",
         "searched in the file's name; each named group becomes a metadata value "
-        "(e.g. (?P<lot>[^_]+)_(?P<cell_id>[^_.]+)); a file whose name does not match is refused",
+        "(e.g. `(?P<lot>[^_]+)_(?P<cell_id>[^_.]+)`); a file whose name does not match is refused",
     ),
     *(
         ProfileKey(
@@ -115,7 +115,7 @@ PROFILE_KEYS: tuple[ProfileKey, ...] = (
         "*",
         "text",
         "none",
-        'fixed metadata for every file read with the profile, e.g. cell_type = "DEMO-LFP-10"; '
+        'fixed metadata for every file read with the profile, e.g. cell_type = "DEMO-LFP-20A"; '
         "a value in the file or its name wins over it",
     ),
 )
@@ -123,6 +123,21 @@ _KEYS_BY_TABLE: dict[str, tuple[str, ...]] = {}
 for _k in PROFILE_KEYS:
     _KEYS_BY_TABLE[_k.table] = (*_KEYS_BY_TABLE.get(_k.table, ()), _k.key)
 _TABLES = tuple(t for t in _KEYS_BY_TABLE if t)
+
+
+def describe_profile_keys() -> str:
+    """Every profile key as a Markdown table, for the documentation (one row per key)."""
+    rows = ["| table | key | allowed values | default | meaning |", "|---|---|---|---|---|"]
+    for k in PROFILE_KEYS:
+        cells = (
+            f"[{k.table}]" if k.table else "(top level)",
+            "any metadata name" if k.key == "*" else f"`{k.key}`",
+            k.allowed,
+            k.default,
+            k.meaning,
+        )
+        rows.append("| " + " | ".join(c.replace("|", "\\|") for c in cells) + " |")
+    return "\n".join(rows) + "\n"
 
 
 @dataclass(frozen=True, slots=True)
