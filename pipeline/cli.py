@@ -113,6 +113,103 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return run_demo(Path(args.folder), analysed_at=_analysis_time(None, os.environ))
 
 
+def cmd_init(args: argparse.Namespace) -> int:
+    """Write a commented station.toml and the folder layout."""
+    from pipeline.settings import init_station
+
+    folder = Path(args.folder)
+    created = init_station(folder, rules_from=Path(__file__).resolve().parent.parent / "rules")
+    print(f"station created in {folder} ({len(created)} files and folders)")
+    print(f"  edit {folder / 'station.toml'}, then run: formgate watch {folder}")
+    return EXIT_OK
+
+
+def _station_settings(folder: str):  # noqa: ANN202 - Settings, imported late
+    from pipeline.settings import read_settings
+
+    return read_settings(Path(folder))
+
+
+def setup_logging(logs: Path, max_mb: float, keep: int, *, verbose: bool = True) -> None:
+    """One line per event to a rotating log file and to standard error."""
+    import logging
+    import logging.handlers
+
+    logs.mkdir(parents=True, exist_ok=True)
+    fmt = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
+    fmt.converter = __import__("time").gmtime
+    handler = logging.handlers.RotatingFileHandler(
+        logs / "formgate.log", maxBytes=int(max_mb * 2**20), backupCount=keep, encoding="utf-8"
+    )
+    handler.setFormatter(fmt)
+    root = logging.getLogger("formgate")
+    root.setLevel(logging.INFO)
+    root.handlers[:] = [handler]
+    if verbose:
+        console = logging.StreamHandler(sys.stderr)
+        console.setFormatter(fmt)
+        root.addHandler(console)
+
+
+def cmd_watch(args: argparse.Namespace) -> int:
+    """Run the station until SIGTERM or Ctrl-C."""
+    import signal
+    import threading
+
+    from pipeline.settings import check_filesystems, smtp_settings
+    from pipeline.station import Station
+
+    settings = _station_settings(args.folder)
+    check_filesystems(settings)
+    smtp = smtp_settings(settings, os.environ, lambda p: p.read_text(encoding="utf-8"))
+    setup_logging(settings.logs, settings.log_max_MB, settings.log_keep, verbose=not args.quiet)
+    stop = threading.Event()
+    interrupted = []
+
+    def on_signal(signum: int, frame: object) -> None:
+        interrupted.append(signum)
+        stop.set()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    code = Station(settings, smtp).run(stop)
+    return EXIT_INTERRUPTED if signal.SIGINT in interrupted else code
+
+
+def cmd_status(args: argparse.Namespace) -> int:
+    """Print the station's queue, last cells, counts, outbox, errors and health."""
+    from pipeline.status import status_text
+
+    settings = _station_settings(args.folder)
+    now = datetime.datetime.now(datetime.UTC)
+    print(status_text(settings, now), end="")
+    return EXIT_OK
+
+
+def cmd_mail_retry(args: argparse.Namespace) -> int:
+    """Send every pending mail now (and parked ones with --parked)."""
+    from pipeline.ledger import Ledger
+    from pipeline.mailer import deliver_due
+    from pipeline.settings import smtp_settings
+
+    settings = _station_settings(args.folder)
+    smtp = smtp_settings(settings, os.environ, lambda p: p.read_text(encoding="utf-8"))
+    now = datetime.datetime.now(datetime.UTC)
+    with Ledger(settings.ledger, now=now) as ledger:
+        if args.parked:
+            for mail in ledger.mail_in_state("parked"):
+                ledger.requeue_mail(mail.id, now=now)
+        ledger.hurry_pending(now=now)
+        counts = deliver_due(
+            ledger, smtp, station=settings.station_name, alerts_to=settings.routing.alerts_to,
+            domain=settings.routing.domain,
+        )
+        left = ledger.outbox_counts()
+    print(f"sent {counts['sent']}, delayed {counts['retry']}, parked {counts['park']}; "
+          f"outbox now {left.get('pending', 0)} pending, {left.get('parked', 0)} parked")
+    return EXIT_OK if counts["retry"] == 0 and counts["park"] == 0 else EXIT_USER
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="formgate",
@@ -156,6 +253,43 @@ def build_parser() -> argparse.ArgumentParser:
     )
     rules_check.add_argument("folder", help="folder holding the rule files")
     rules_check.set_defaults(func=cmd_rules_check)
+
+    init = sub.add_parser(
+        "init", help="create a station folder with a commented station.toml",
+        description="Create a station: station.toml (commented), the folder layout and a copy of the rules.",
+        epilog="example: formgate init station/",
+    )
+    init.add_argument("folder", help="the station folder to create")
+    init.set_defaults(func=cmd_init)
+
+    watch = sub.add_parser(
+        "watch", help="run the station until stopped (SIGTERM or Ctrl-C)",
+        description="Watch the inboxes, judge every finished file, record, publish and mail.",
+        epilog="example: formgate watch station/",
+    )
+    watch.add_argument("folder", help="the station folder (holding station.toml)")
+    watch.add_argument("--quiet", action="store_true", help="log to the log file only")
+    watch.set_defaults(func=cmd_watch)
+
+    status = sub.add_parser(
+        "status", help="show queue, last cells, counts today, outbox, errors and health",
+        description="Report on a station without disturbing it.",
+        epilog="example: formgate status station/",
+    )
+    status.add_argument("folder", help="the station folder")
+    status.set_defaults(func=cmd_status)
+
+    mail = sub.add_parser("mail", help="work with the station's outbox",
+                          epilog="example: formgate mail retry station/")
+    mail_sub = mail.add_subparsers(dest="mail_command", required=True, metavar="ACTION")
+    retry = mail_sub.add_parser(
+        "retry", help="send pending mail now",
+        description="Send every pending mail now instead of waiting for its next try.",
+        epilog="example: formgate mail retry station/ --parked",
+    )
+    retry.add_argument("folder", help="the station folder")
+    retry.add_argument("--parked", action="store_true", help="also retry mail the server refused for good")
+    retry.set_defaults(func=cmd_mail_retry)
 
     demo = sub.add_parser(
         "demo",

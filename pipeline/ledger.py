@@ -741,6 +741,22 @@ class Ledger:
                 (_utc(now, "now"), mail_id),
             )
 
+    def mail_in_state(self, state: str) -> list[MailRow]:
+        """Every message in ``state`` ('pending', 'sent' or 'parked'), oldest first."""
+        rows = self._conn.execute(
+            "SELECT * FROM outbox WHERE state = ? ORDER BY created_at, id", (state,)
+        )
+        return [_mail(r) for r in rows]
+
+    def hurry_pending(self, *, now: datetime.datetime) -> int:
+        """Make every pending message due at ``now`` (skip its backoff); return how many."""
+        with self._write() as conn:
+            cur = conn.execute(
+                "UPDATE outbox SET next_attempt_at = ? WHERE state = 'pending' AND next_attempt_at > ?",
+                (_utc(now, "now"), _utc(now, "now")),
+            )
+            return cur.rowcount
+
     # ---- lot digests of passed cells ---------------------------------------------------------
 
     _DIGESTIBLE = (
