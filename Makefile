@@ -13,7 +13,7 @@ $(STAMP): pyproject.toml constraints.txt
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/formgate demo demo-output
+	$(BIN)/formgate demo
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q

@@ -107,10 +107,14 @@ def cmd_rules_check(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    """Write the invented demo lot, check it, print the lot summary."""
-    from pipeline.demo_check import run_demo
+    """Run a station on the invented demo lots (or, with --batch, just check them)."""
+    if args.batch:
+        from pipeline.demo_check import run_demo
 
-    return run_demo(Path(args.folder), analysed_at=_analysis_time(None, os.environ))
+        return run_demo(Path(args.folder or "demo-output"), analysed_at=_analysis_time(None, os.environ))
+    from pipeline.demo_station import run_station_demo
+
+    return run_station_demo(Path(args.folder) if args.folder else None)
 
 
 def cmd_init(args: argparse.Namespace) -> int:
@@ -293,12 +297,19 @@ def build_parser() -> argparse.ArgumentParser:
 
     demo = sub.add_parser(
         "demo",
-        help="write an invented demo lot and check it",
-        description="Write an invented lot of cycle files (normal cells and one of each defect) and check it.",
-        epilog="example: formgate demo demo-output",
+        help="run a station on invented demo lots fed by a simulated cycler",
+        description="Start a station on a new folder, let a simulated cycler hand over invented "
+        "lots (normal cells and one of each defect, a bad file, a duplicate), drain it, and show "
+        "where the certificates, results, mails and ledger are.",
+        epilog="example: formgate demo            (a new temporary folder)",
     )
     demo.add_argument(
-        "folder", nargs="?", default="demo-output", help="where to write (default: demo-output)"
+        "folder", nargs="?", help="station folder to create (default: a new temporary folder)"
+    )
+    demo.add_argument(
+        "--batch",
+        action="store_true",
+        help="no station: write the lots into FOLDER/inbox and check them in one go",
     )
     demo.set_defaults(func=cmd_demo)
     return parser
