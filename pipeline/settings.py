@@ -208,8 +208,12 @@ def _unknown_top(out: Collector, key: str) -> None:
     )
 
 
-def _refuse_passwords(out: Collector, data: dict[str, object], path: KeyPath) -> None:
-    """Report and drop every key that looks like a password, wherever it is (value never shown)."""
+def _refuse_passwords(out: Collector, data: dict[str, object], path: KeyPath) -> bool:
+    """Report and drop every key that looks like a password, wherever it is (value never shown).
+
+    True if there was one.
+    """
+    found = False
     for key in list(data):
         value = data[key]
         if _PASSWORD_KEY.search(key) and key not in ("password_env", "password_file"):
@@ -223,12 +227,14 @@ def _refuse_passwords(out: Collector, data: dict[str, object], path: KeyPath) ->
                 "can read (chmod 600).",
             )
             del data[key]
+            found = True
         elif isinstance(value, dict):
-            _refuse_passwords(out, value, (*path, key))
+            found |= _refuse_passwords(out, value, (*path, key))
         elif isinstance(value, list):
             for item in value:
                 if isinstance(item, dict):
-                    _refuse_passwords(out, item, (*path, key))
+                    found |= _refuse_passwords(out, item, (*path, key))
+    return found
 
 
 def _shown(text: object) -> str:
@@ -273,12 +279,16 @@ class _Checker:
             return None
         where = f"{show_table(path)} {key}"
         if not raw.strip():
+            spec = SETTINGS_BY_TABLE[path[0]].key(key)
+            default = spec.default if spec is not None else None
             self.out.add(
                 f"{where} is empty",
                 path,
                 key,
-                f"Give a path, or remove the line to use the default ({path[0]} table in "
-                "docs/station-settings.md).",
+                f"Give a path, e.g. {key} = {_shown(default)}, or remove the line to use that "
+                "default."
+                if isinstance(default, str)
+                else "Give a path, or remove the line.",
             )
             return None
         if any(ord(c) < 32 or ord(c) == 127 for c in raw):
@@ -317,23 +327,25 @@ class _Checker:
     ) -> None:
         """An inbox may not hold station.toml, the ledger or the heartbeat file."""
         root = os.path.normpath(self.root)
-        what = None
+        hint = ""
         if place.norm == root:
             what = f"the station folder itself, which holds {STATION_FILE} and the ledger"
+            hint = 'give the inbox a folder of its own, e.g. folder = "inbox"'
         elif ledger is not None and place.norm == str(ledger.parent):
             what = f"the folder of the ledger ([station] ledger = {_shown(station['ledger'])})"
+            hint = 'keep the ledger elsewhere, e.g. ledger = "ledger.sqlite"'
         elif heartbeat is not None and place.norm == str(heartbeat.parent):
             what = (
                 "the folder of the heartbeat file "
                 f"([station] heartbeat = {_shown(station['heartbeat'])})"
             )
-        if what is not None:
+            hint = 'keep the heartbeat file elsewhere, e.g. heartbeat = "heartbeat.json"'
+        if hint:
             self.out.add(
                 f"{place} is {what}",
                 place.path,
                 place.key,
-                "Everything in an inbox is claimed: give the inbox a folder of its own, e.g. "
-                'folder = "inbox".',
+                f"Everything in an inbox is claimed: {hint}.",
             )
 
     def marker(self, path: KeyPath, suffix: str) -> None:
@@ -387,7 +399,7 @@ def _check_sender(sender: str) -> bool:
     return True
 
 
-def _check_smtp(out: Collector, smtp: Values, routing: Values) -> None:
+def _check_smtp(out: Collector, smtp: Values, routing: Values, password_written: bool) -> None:
     path: KeyPath = ("smtp",)
     host, username = smtp.get("host"), smtp.get("username")
     env, file = smtp.get("password_env"), smtp.get("password_file")
@@ -401,7 +413,7 @@ def _check_smtp(out: Collector, smtp: Values, routing: Values) -> None:
             'Set security = "starttls" (port 587) or "tls" (port 465), or remove username '
             "for a relay that needs no log-in.",
         )
-    if username is not None and env is None and file is None:
+    if username is not None and env is None and file is None and not password_written:
         out.add(
             "[smtp] username is set but neither password_env nor password_file",
             path,
@@ -427,8 +439,8 @@ def _check_smtp(out: Collector, smtp: Values, routing: Values) -> None:
                 "that needs no log-in.",
             )
     if isinstance(env, str) and not _ENV_NAME.fullmatch(env):
-        out.add(
-            f"[smtp] password_env = {_shown(env)} is not an environment variable name",
+        out.add(  # the value is not shown: it may be the password itself
+            "[smtp] password_env is not an environment variable name",
             path,
             "password_env",
             "Give the variable's name (letters, digits and _), not its value, e.g. "
@@ -516,7 +528,7 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
                 "for decimals, and each table header may appear once.",
             )
         ]
-    _refuse_passwords(out, data, ())
+    password_written = _refuse_passwords(out, data, ())
     for key in data:
         if key not in SETTINGS_BY_TABLE:
             _unknown_top(out, key)
@@ -598,7 +610,7 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
                 profiles.append(ProfileRule(str(v["glob"]), file))
     smtp, routing = plain["smtp"], plain["mail"]
     smtp_paths = {k: check.path(("smtp",), k, smtp) for k in ("password_file", "ca_file")}
-    _check_smtp(out, smtp, routing)
+    _check_smtp(out, smtp, routing, password_written)
     _check_routing(out, routing)
     if out.errors:
         # Problems with a line first, in line order; whole-file problems (often consequences) last.
@@ -785,13 +797,16 @@ def _password(
 
 
 def smtp_settings(
-    settings: Settings, environ: Mapping[str, str], read_text: Callable[[Path], str]
+    settings: Settings,
+    environ: Mapping[str, str],
+    read_text: Callable[[Path], str] = read_credential_file,
 ) -> SmtpSettings:
     """The mail server settings for smtp.send, with the password looked up.
 
     The password comes from ``environ[password_env]`` or from the first line of
-    ``password_file``, read with ``read_text`` (pass :func:`read_credential_file`, which
-    refuses a file others may read). No username: no password is looked up.
+    ``password_file``, read with ``read_text``: by default :func:`read_credential_file`,
+    which refuses a file that others may read; pass another only in tests. No
+    username: no password is looked up.
     """
     config = settings.smtp
     password = _password(settings, environ, read_text) if config.username is not None else None
