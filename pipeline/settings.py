@@ -322,15 +322,16 @@ class _Checker:
                 "are in, and moves them from an inbox into work, then archive or quarantine.",
             )
 
-    def inbox_holds(
+    def holds_state(
         self, place: _Place, station: Values, ledger: Path | None, heartbeat: Path | None
     ) -> None:
-        """An inbox may not hold station.toml, the ledger or the heartbeat file."""
+        """An inbox or the work folder may not hold station.toml, the ledger or the heartbeat."""
         root = os.path.normpath(self.root)
         hint = ""
         if place.norm == root:
             what = f"the station folder itself, which holds {STATION_FILE} and the ledger"
-            hint = 'give the inbox a folder of its own, e.g. folder = "inbox"'
+            own = "inbox" if place.key == "folder" else place.key
+            hint = f"give it a folder of its own, e.g. {place.key} = {_shown(own)}"
         elif ledger is not None and place.norm == str(ledger.parent):
             what = f"the folder of the ledger ([station] ledger = {_shown(station['ledger'])})"
             hint = 'keep the ledger elsewhere, e.g. ledger = "ledger.sqlite"'
@@ -345,7 +346,12 @@ class _Checker:
                 f"{place} is {what}",
                 place.path,
                 place.key,
-                f"Everything in an inbox is claimed: {hint}.",
+                (
+                    "Everything in an inbox is claimed"
+                    if place.path[0] == "inbox"
+                    else "Every file in the work folder is taken for a claimed input"
+                )
+                + f": {hint}.",
             )
 
     def marker(self, path: KeyPath, suffix: str) -> None:
@@ -567,11 +573,12 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
     for key in ("rules", *FOLDER_KEYS):
         if (found := paths[key]) is not None:
             written = check.written(("folders",), key)
-            places.append(
-                _Place(
-                    f"[folders] {key}", ("folders",), key, str(folders[key]), written, str(found)
-                )
+            place = _Place(
+                f"[folders] {key}", ("folders",), key, str(folders[key]), written, str(found)
             )
+            if key == "work":  # the station takes every file in work for a claimed input
+                check.holds_state(place, station, ledger, heartbeat)
+            places.append(place)
     inboxes: list[InboxSettings] = []
     for ident, v in families["inbox"].items():
         path = ("inbox", ident)
@@ -584,7 +591,7 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
         place = _Place(
             f"[inbox.{ident}] folder", path, "folder", str(v["folder"]), True, str(folder)
         )
-        check.inbox_holds(place, station, ledger, heartbeat)
+        check.holds_state(place, station, ledger, heartbeat)
         places.append(place)
         if ("inbox", ident) not in broken:
             inboxes.append(

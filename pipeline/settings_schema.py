@@ -338,8 +338,8 @@ SETTINGS_RENAMED: dict[tuple[str, str], str] = {}
 CROSS_RULES: tuple[str, ...] = (
     "No key anywhere may hold a password; use `password_env` or `password_file`.",
     "Every folder (each inbox, and each key of `[folders]`) must be a different folder.",
-    "An inbox folder may not be the station folder itself, nor hold the ledger or the "
-    "heartbeat file: everything in an inbox is claimed.",
+    "An inbox folder or the work folder may not be the station folder itself, nor hold the "
+    "ledger or the heartbeat file: every file in them is taken for an input.",
     "Paths may not be empty or hold control characters.",
     "`marker_suffix` starts with a dot and is not `.tmp` or `.part` (those names are never "
     "claimed).",
