@@ -120,8 +120,8 @@ SETTINGS_TABLES: tuple[Table, ...] = (
     Table(
         "folders",
         "Where the station keeps things. Relative paths are relative to the folder that holds "
-        "station.toml. Every folder must be a different one, and all of them and the inboxes "
-        "must be on one filesystem.",
+        "station.toml. Every folder must be a different one, and the inboxes and these folders "
+        "(rules aside) must all be on one filesystem.",
         (
             _folder("rules", "rule files, and import profiles in rules/profiles"),
             _folder("work", "files claimed from an inbox while they are judged"),
