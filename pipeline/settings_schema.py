@@ -76,7 +76,7 @@ SETTINGS_TABLES: tuple[Table, ...] = (
             ),
             _positive(
                 "max_input_MB",
-                "a larger input file is quarantined unread (1 MB = 1,000,000 bytes)",
+                "a larger input file is quarantined unread (1 MB = 1,048,576 bytes)",
                 "MB",
                 200.0,
             ),
