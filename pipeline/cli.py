@@ -165,7 +165,7 @@ def cmd_watch(args: argparse.Namespace) -> int:
 
     settings = _station_settings(args.folder)
     check_filesystems(settings)
-    smtp = smtp_settings(settings, os.environ, lambda p: p.read_text(encoding="utf-8"))
+    smtp = smtp_settings(settings, os.environ)
     setup_logging(settings.logs, settings.log_max_MB, settings.log_keep, verbose=not args.quiet)
     stop = threading.Event()
     interrupted = []
@@ -197,7 +197,7 @@ def cmd_mail_retry(args: argparse.Namespace) -> int:
     from pipeline.settings import smtp_settings
 
     settings = _station_settings(args.folder)
-    smtp = smtp_settings(settings, os.environ, lambda p: p.read_text(encoding="utf-8"))
+    smtp = smtp_settings(settings, os.environ)
     now = datetime.datetime.now(datetime.UTC)
     with Ledger(settings.ledger, now=now) as ledger:
         if args.parked:

@@ -123,7 +123,7 @@ def run_station_demo(folder: Path | None = None) -> int:
     for extra in ("inbox-rename", "inbox-marker"):
         (root / extra).mkdir(exist_ok=True)
     settings = read_settings(root)
-    smtp = smtp_settings(settings, {}, lambda p: p.read_text(encoding="utf-8"))
+    smtp = smtp_settings(settings, {})
     from pipeline.cli import setup_logging
 
     setup_logging(settings.logs, settings.log_max_MB, settings.log_keep, verbose=True)

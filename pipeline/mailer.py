@@ -155,4 +155,5 @@ class MailThread(threading.Thread):
     def stop(self) -> None:
         self.stop_event.set()
         self.wake.set()
-        self.join(timeout=60)
+        if self.is_alive():
+            self.join(timeout=60)

@@ -98,8 +98,16 @@ def dcir_mohm(trace: Trace, steps: tuple[Step, ...], pulse_s: float) -> tuple[fl
                     SourceRef(trace.source, trace.line_of(dis.start)),
                     ("dcir_mOhm",),
                 )
-            v1 = float(np.interp(t0 + pulse_s, t, trace.voltage_v[dis.start : dis.stop]))
             in_pulse = t <= t0 + pulse_s
+            if not in_pulse.any():
+                return None, Note(
+                    "dcir_sampling_too_coarse",
+                    f"the record is sampled every {t[0] - t0:.0f} s at the last rest-to-discharge "
+                    f"transition, coarser than the {pulse_s:g} s DCIR pulse; DCIR not measured",
+                    SourceRef(trace.source, trace.line_of(dis.start)),
+                    ("dcir_mOhm",),
+                )
+            v1 = float(np.interp(t0 + pulse_s, t, trace.voltage_v[dis.start : dis.stop]))
             current = float(np.mean(np.abs(trace.current_a[dis.start : dis.stop][in_pulse])))
             return (v0 - v1) / current * 1000.0, None
     return None, None

@@ -57,7 +57,7 @@ class Station:
         self.smtp = smtp
         self.clock = clock
         self.wake = threading.Event()
-        self.ledger = Ledger(settings.ledger, now=clock())
+        self.ledger: Ledger = None  # type: ignore[assignment] - opened by run(), in its thread
         self.rulebook: RuleBook | None = None
         self.rules_fingerprint: tuple[tuple[str, int, int], ...] = ()
         self.rules_alerted: str = ""
@@ -119,7 +119,13 @@ class Station:
         """Recover, then watch and work until ``stop`` is set; finish the cells in hand; 0."""
         from pipeline.watcher import InboxWatcher
 
-        self.load_rules(first=True)
+        # SQLite connections belong to the thread that opened them: open it here
+        self.ledger = Ledger(self.settings.ledger, now=self.clock())
+        try:
+            self.load_rules(first=True)
+        except BaseException:
+            self.ledger.close()
+            raise
         for inbox in self.settings.inboxes:
             inbox.folder.mkdir(parents=True, exist_ok=True)
         self.pool = self._new_pool()

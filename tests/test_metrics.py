@@ -85,3 +85,9 @@ def test_capacities_unchanged_by_noise_and_sampling(capacity: float, ice: float,
     noisy = measured(build_trace(phases, dt_s=dt_s, noise_v=1e-3, seed=seed)).values
     assert noisy["grading_capacity_Ah"] == pytest.approx(clean["grading_capacity_Ah"], rel=5e-3)
     assert noisy["first_cycle_efficiency"] == pytest.approx(clean["first_cycle_efficiency"], rel=5e-3)
+
+
+def test_sampling_coarser_than_the_dcir_pulse_gives_no_dcir_and_a_note() -> None:
+    m = measured(build_trace(simple_formation(), dt_s=120.0))
+    assert m.values["dcir_mOhm"] is None
+    assert "dcir_sampling_too_coarse" in [n.code for n in m.notes]

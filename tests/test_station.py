@@ -1,0 +1,199 @@
+"""The station end to end with real folders, watchdog, SQLite and worker processes."""
+
+from __future__ import annotations
+
+import email
+import email.policy
+import threading
+import time
+from pathlib import Path
+
+import pytest
+
+from pipeline.ledger import Ledger
+from tests.station_kit import (
+    check_invariants,
+    cycle_file,
+    drop,
+    make_station,
+    running,
+    settled,
+    start_watch,
+    station_toml,
+    stop_watch,
+    wait_until,
+)
+
+pytestmark = pytest.mark.slow
+
+
+def test_pass_and_fail_cells_are_judged_recorded_published_archived_and_mailed(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    with running(s):
+        drop(s.inboxes[0].folder, "good.csv", cycle_file("C-1"))
+        drop(s.inboxes[0].folder, "low.csv", cycle_file("C-2", capacity_ah=1.5))
+        wait_until(lambda: settled(s, 2), what="two cells judged")
+        wait_until(lambda: len(list(s.mail.glob("*.eml"))) >= 2, what="failure mail and digest")
+    check_invariants(s, {"good.csv", "low.csv"})
+    assert (s.certificates / "LOT-A" / "C-1.pdf").exists()
+    assert (s.results / "LOT-A" / "C-2.json").exists()
+    subjects = sorted(
+        email.message_from_bytes(p.read_bytes(), policy=email.policy.default)["Subject"]
+        for p in s.mail.glob("*.eml")
+    )
+    assert any(x.startswith("formgate: FAIL cell C-2, lot LOT-A") for x in subjects)
+    assert any("lot LOT-A, digest 1" in x for x in subjects)
+
+
+def test_slow_writer_is_judged_once_after_it_is_complete(tmp_path: Path) -> None:
+    toml = station_toml(inboxes='[inbox.main]\nfolder = "inbox"\nhandover = "settle"\nsettle_s = 1.5\n')
+    s = make_station(tmp_path / "st", toml)
+    data = cycle_file("SLOW-1")
+    with running(s):
+        path = s.inboxes[0].folder / "slow.csv"
+        with path.open("wb") as fh:  # four chunks over about three seconds
+            for k in range(4):
+                fh.write(data[k * len(data) // 4 : (k + 1) * len(data) // 4])
+                fh.flush()
+                time.sleep(0.9)
+        wait_until(lambda: settled(s, 1), what="the slow file judged")
+    with Ledger(s.ledger) as ledger:
+        rows = ledger.inputs_in_state("archived", "quarantined", "duplicate")
+        assert [(r.name, r.state, r.size) for r in rows] == [("slow.csv", "archived", len(data))]
+    check_invariants(s, {"slow.csv"})
+
+
+def test_marker_handover_waits_for_the_marker_and_a_lone_marker_is_quarantined(tmp_path: Path) -> None:
+    inbox = '[inbox.main]\nfolder = "inbox"\nhandover = "marker"\norphan_marker_s = 1.0\n'
+    s = make_station(tmp_path / "st", station_toml(inboxes=inbox))
+    folder = s.inboxes[0].folder
+    with running(s):
+        (folder / "waits.csv").write_bytes(cycle_file("M-1"))  # data, no marker yet
+        (folder / "ghost.csv.done").write_bytes(b"")  # marker, no data
+        time.sleep(2.5)
+        assert (folder / "waits.csv").exists(), "data without its marker is never claimed"
+        (folder / "waits.csv.done").write_bytes(b"")
+        wait_until(lambda: not (folder / "waits.csv").exists() and settled(s, 1), what="marker file judged")
+        wait_until(lambda: (s.quarantine / "ghost.csv.done").exists(), what="lone marker quarantined")
+    assert "marker file without its data file" in (s.quarantine / "ghost.csv.done.reason.txt").read_text()
+    archived = sorted(p.name for p in s.archive.rglob("*") if p.is_file())
+    assert archived == ["000001_waits.csv", "000001_waits.csv.done"]
+
+
+def test_temporary_names_are_never_claimed(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    folder = s.inboxes[0].folder
+    with running(s):
+        (folder / "half.csv.part").write_bytes(cycle_file("T-1")[:100])
+        (folder / "other.csv.tmp").write_bytes(b"x")
+        time.sleep(2.0)
+        assert sorted(p.name for p in folder.iterdir()) == ["half.csv.part", "other.csv.tmp"]
+        (folder / "half.csv.part").write_bytes(cycle_file("T-1"))
+        (folder / "half.csv.part").rename(folder / "half.csv")
+        wait_until(lambda: settled(s, 1), what="renamed file judged")
+
+
+def test_bad_file_is_quarantined_with_a_reason_and_the_station_goes_on(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    bad = b"# cell_id: B-1\n# lot: LOT-A\n# cell_type: TEST-CELL\ntime_s,voltage_V,current_A\n0,3.3,0\n10,x,0\n"
+    with running(s):
+        drop(s.inboxes[0].folder, "bad.csv", bad)
+        drop(s.inboxes[0].folder, "good.csv", cycle_file("G-1"))
+        wait_until(lambda: settled(s, 2), what="both files final")
+    reason = (s.quarantine / "000001_bad.csv.reason.txt").read_text()
+    assert "bad.csv, line 6, column 2: voltage_V is 'x', not a number." in reason
+    assert (s.quarantine / "000001_bad.csv").read_bytes() == bad  # kept, never deleted
+    check_invariants(s, {"bad.csv", "good.csv"})
+
+
+def test_same_bytes_again_are_a_duplicate_and_new_bytes_under_an_old_name_a_new_version(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    first = cycle_file("D-1", seed=1)
+    with running(s):
+        drop(s.inboxes[0].folder, "d.csv", first)
+        wait_until(lambda: settled(s, 1), what="first version")
+        drop(s.inboxes[0].folder, "copy.csv", first)
+        wait_until(lambda: settled(s, 2), what="duplicate")
+        drop(s.inboxes[0].folder, "d.csv", cycle_file("D-1", seed=2))
+        wait_until(lambda: settled(s, 3), what="second version")
+    with Ledger(s.ledger) as ledger:
+        rows = sorted(ledger.inputs_in_state("archived", "duplicate"), key=lambda r: r.id)
+        assert [(r.name, r.state, r.version) for r in rows] == [
+            ("d.csv", "archived", 1), ("copy.csv", "duplicate", 1), ("d.csv", "archived", 2),
+        ]
+        results = ledger.recent_results(10)
+        assert len(results) == 2  # the duplicate was not judged
+        old = min(results, key=lambda r: r.id)
+        assert old.superseded_by == max(results, key=lambda r: r.id).id
+
+
+def test_files_dropped_while_the_station_is_stopped_are_judged_after_start(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    for k in range(3):
+        drop(s.inboxes[0].folder, f"early-{k}.csv", cycle_file(f"E-{k}", seed=k))
+    with running(s):
+        wait_until(lambda: settled(s, 3), what="files from before the start")
+    check_invariants(s, {f"early-{k}.csv" for k in range(3)})
+
+
+def test_broken_rules_edit_keeps_the_last_good_rules_and_alerts_with_file_and_line(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    rules = s.rules_dir / "test_cells.toml"
+    with running(s):
+        drop(s.inboxes[0].folder, "before.csv", cycle_file("R-1"))
+        wait_until(lambda: settled(s, 1), what="first cell")
+        rules.write_text(rules.read_text().replace("low = 0.9 ", "lowe = 0.9 "), encoding="utf-8")
+        time.sleep(1.5)
+        drop(s.inboxes[0].folder, "after.csv", cycle_file("R-2", seed=3))
+        wait_until(lambda: settled(s, 2), what="cell judged with the last good rules")
+        wait_until(lambda: any("rules edit refused" in p.read_text(errors="replace") for p in s.mail.glob("*.eml")),
+                   what="alert mail")
+    alert = next(p for p in s.mail.glob("*.eml") if "rules edit refused" in p.read_text(errors="replace"))
+    body = email.message_from_bytes(alert.read_bytes(), policy=email.policy.default).get_body().get_content()
+    assert f"{rules}, line 16: unknown key 'lowe' in [check.capacity].\n  Did you mean 'low'?" in body.replace("\r\n", "\n")
+    with Ledger(s.ledger) as ledger:
+        verdicts = sorted(r.verdict for r in ledger.recent_results(10))
+    assert verdicts == ["pass", "pass"]
+
+
+def test_sigterm_finishes_the_cell_in_hand_and_exits_0(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    proc = start_watch(s.root)
+    try:
+        wait_until(lambda: s.heartbeat.exists(), what="station started")
+        drop(s.inboxes[0].folder, "t.csv", cycle_file("S-1"))
+        wait_until(lambda: any(s.work.iterdir()) or settled(s, 1), what="file claimed")
+    finally:
+        code = stop_watch(proc)
+    assert code == 0
+    assert settled(s, 1)
+    check_invariants(s, {"t.csv"})
+
+
+def test_watch_refuses_folders_on_different_filesystems(tmp_path: Path) -> None:
+    other = Path("/dev/shm")
+    if not other.exists() or other.stat().st_dev == tmp_path.stat().st_dev:
+        pytest.skip("no second filesystem here")
+    work = Path(tmp_pathname := str(other / f"formgate-work-{tmp_path.name}"))
+    work.mkdir()
+    try:
+        toml = station_toml(extra=f'\n[folders]\nwork = "{tmp_pathname}"\n')
+        s = make_station(tmp_path / "st", toml)
+        proc = start_watch(s.root)
+        code = proc.wait(60)
+        err = proc.stderr.read().decode() if proc.stderr else ""
+        stop_watch(proc)
+        assert code == 2
+        assert "different filesystems" in err or "filesystem" in err
+    finally:
+        work.rmdir()
+
+
+def test_threads_and_worker_processes_are_gone_after_stop(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    before = set(threading.enumerate())
+    with running(s):
+        drop(s.inboxes[0].folder, "x.csv", cycle_file("X-1"))
+        wait_until(lambda: settled(s, 1), what="cell")
+    left = [t for t in threading.enumerate() if t not in before and t.is_alive() and not t.daemon]
+    assert left == []
