@@ -164,6 +164,7 @@ class Settings:
     heartbeat_s: float = 10.0
     log_max_MB: float = 10.0
     log_keep: int = 5
+    certify: str = "all"  # or "failed_and_held": which cells get a PDF certificate
 
     def all_folders(self) -> tuple[Path, ...]:
         """Every folder the station writes or claims from: the inboxes, then [folders] but rules."""
@@ -680,6 +681,7 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
             heartbeat_s=cast(float, station["heartbeat_s"]),
             log_max_MB=cast(float, station["log_max_MB"]),
             log_keep=cast(int, station["log_keep"]),
+            certify=cast(str, station["certify"]),
         ),
         [],
     )

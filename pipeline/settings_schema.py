@@ -33,6 +33,7 @@ from pipeline.smtp import SECURITY
 
 STATION_FILE = "station.toml"
 WATCH_MODES: tuple[str, ...] = ("events", "polling")
+CERTIFICATE_MODES: tuple[str, ...] = ("all", "failed_and_held")
 # Port per security mode when none is given: submission (RFC 6409), implicit TLS (RFC 8314),
 # plain SMTP relay (RFC 5321).
 DEFAULT_PORTS: dict[str, int] = {"starttls": 587, "tls": 465, "none": 25}
@@ -114,6 +115,14 @@ SETTINGS_TABLES: tuple[Table, ...] = (
             ),
             _positive("log_max_MB", "a log file is rotated when it reaches this size", "MB", 10.0),
             Key("log_keep", INTEGER, "rotated log files kept", default=5, minimum=1),
+            Key(
+                "certify",
+                TEXT,
+                "which cells get a PDF certificate: all of them, or only failed and held cells "
+                "(passed cells then have their JSON result and the lot digest)",
+                default="all",
+                allowed=CERTIFICATE_MODES,
+            ),
         ),
         required=True,
     ),

@@ -283,6 +283,7 @@ class Station:
                 rulebook=self.rulebook, analysed_at=self.clock().replace(microsecond=0),
                 profile_name=profile_name, profile_text=profile_text,
                 max_uncompressed_bytes=int(self.settings.max_uncompressed_MB * MB),
+                certify=self.settings.certify,
             )
             self.submit_task(row, task)
 
@@ -353,8 +354,9 @@ class Station:
             self.quarantine(row, output.error)
             return
         assert output.result is not None and output.json_text is not None
-        self.record(row, output.result, output.json_text)
-        self.publish(row, output.result, output.json_text, output.pdf)
+        pdf = output.pdf
+        self.record(row, output.result, output.json_text, with_pdf=pdf is not None)
+        self.publish(row, output.result, output.json_text, pdf)
         self.judged += 1
         r = output.result
         hazards = f" hazard: {', '.join(h.value for h in r.verdict.hazards)}" if r.verdict.hazards else ""
@@ -377,7 +379,7 @@ class Station:
                                 domain=routing.domain)]
         return []
 
-    def record(self, row: InputRow, result: CellResult, json_text: str) -> None:
+    def record(self, row: InputRow, result: CellResult, json_text: str, *, with_pdf: bool = True) -> None:
         """ONE transaction: result, check rows, outbox rows (and the rule text, kept before it)."""
         json_path, pdf_path = self.output_paths(result)
         assert self.rulebook is not None
@@ -391,7 +393,7 @@ class Station:
             checks=[CheckRowData.from_check(c) for c in result.verdict.checks],
             rule_set_name=result.rule_set.name, rule_set_revision=result.rule_set.revision,
             rule_set_sha256=result.rule_set.sha256, analysed_at=result.analysed_at,
-            json_path=str(json_path), pdf_path=str(pdf_path),
+            json_path=str(json_path), pdf_path=str(pdf_path) if with_pdf else None,
             mails=[outgoing(letter) for letter in self.letters(result, pdf_path)],
         )
         faults.point("after_commit")
@@ -493,7 +495,8 @@ class Station:
         assert rulebook is not None
         profile_name, profile_text = self.profile_for(row)
         task = Task(row.id, row.work_path, row.name, row.sha256, rulebook, result_row.analysed_at,
-                    profile_name, profile_text, int(self.settings.max_uncompressed_MB * MB))
+                    profile_name, profile_text, int(self.settings.max_uncompressed_MB * MB),
+                    certify="all" if result_row.pdf_path else "none")
         output = run_task(task)
         if output.result is None or output.json_text is None:
             log.error("%s: re-judging a recorded cell failed: %s", row.name, output.error)

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.errors import FormgateError, InputError
-from pipeline.model import CellResult, SourceRef
+from pipeline.model import CellResult, SourceRef, VerdictKind
 from pipeline.rulebook import RuleBook
 
 log = logging.getLogger("formgate.worker")
@@ -38,7 +38,7 @@ class Task:
     profile_name: str | None = None
     profile_text: str | None = None
     max_uncompressed_bytes: int = 1024 * 2**20
-    render_pdf: bool = True
+    certify: str = "all"  # "all", "failed_and_held" (no PDF for a passed cell) or "none"
 
 
 @dataclass(frozen=True, slots=True)
@@ -109,7 +109,10 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None]:
         max_uncompressed_bytes=task.max_uncompressed_bytes,
     )
     pdf = None
-    if task.render_pdf:
+    wanted = task.certify == "all" or (
+        task.certify == "failed_and_held" and result.verdict.kind is not VerdictKind.PASS
+    )
+    if wanted:
         from pipeline.certificate import render_html
         from pipeline.pdf import render_pdf
 

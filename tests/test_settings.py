@@ -150,6 +150,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_settings() -> 
         50.5,
         400.0,
     )
+    assert s.certify == "failed_and_held"
     assert (s.task_timeout_s, s.reconcile_s, s.heartbeat_s, s.log_max_MB, s.log_keep) == (
         120.0,
         20.0,
