@@ -66,6 +66,7 @@ class Station:
         self.in_flight: dict[Future[Output], tuple[InputRow, Task]] = {}
         self.attempts: dict[int, int] = {}
         self.inbox_of: dict[str, str] = {}  # work path -> inbox name, for its import profile
+        self.kill_reasons: dict[int, str] = {}  # input id -> why its worker was stopped
         self.pool: ProcessPoolExecutor | None = None
         self.started_at = clock()
         self.last_heartbeat = 0.0
@@ -301,24 +302,30 @@ class Station:
         if not self.in_flight:
             return
         done, _ = wait(list(self.in_flight), timeout=timeout, return_when=FIRST_COMPLETED)
+        broken = []
         for future in done:
             row, task = self.in_flight.pop(future)
             try:
                 output = future.result()
             except BrokenProcessPool:
-                self.retry_or_quarantine(row, task, "a worker process died while judging it")
+                broken.append((row, task))
                 continue
             self.apply(row, output)
+        if broken:
+            # one dead worker breaks the whole pool: start a new one once, then retry
+            if self.pool is not None:
+                self.pool.shutdown(wait=False, cancel_futures=True)
+            self.pool = self._new_pool()
+            for row, task in broken:
+                self.retry_or_quarantine(row, task, self.kill_reasons.pop(row.id, "a worker process died while judging it"))
         self.kill_hung_workers()
 
     def retry_or_quarantine(self, row: InputRow, task: Task, why: str) -> None:
         self.attempts[row.id] = self.attempts.get(row.id, 0) + 1
-        if self.pool is not None:
-            self.pool.shutdown(wait=False, cancel_futures=False)
-        self.pool = self._new_pool()
         if self.attempts[row.id] >= 2:
-            self.quarantine(row, f"{row.name}: {why}, twice.\n  The file may be hostile or far too "
-                            "large to judge; check it by hand with `formgate check`.")
+            self.quarantine(row, f"{row.name}: {why}; the file was not judged.\n  It may be hostile "
+                            "or far too large to judge; check it by hand with `formgate check`, or "
+                            "raise task_timeout_s in station.toml if such files are expected.")
         else:
             log.warning("%s: %s; trying once more", row.name, why)
             self.submit_task(row, task)
@@ -340,7 +347,8 @@ class Station:
             elif now - t0 > limit and self.pool is not None:
                 row, _ = self.in_flight[future]
                 log.error("%s: judging took longer than %g s; stopping the workers", row.name, limit)
-                self.attempts[row.id] = 1  # one more try, then quarantine
+                self.attempts[row.id] = 1  # so this failure quarantines it at once
+                self.kill_reasons[row.id] = f"judging took longer than task_timeout_s = {limit:g} s"
                 for proc in list(getattr(self.pool, "_processes", {}).values()):
                     proc.kill()
                 del started[future]

@@ -197,3 +197,32 @@ def test_threads_and_worker_processes_are_gone_after_stop(tmp_path: Path) -> Non
         wait_until(lambda: settled(s, 1), what="cell")
     left = [t for t in threading.enumerate() if t not in before and t.is_alive() and not t.daemon]
     assert left == []
+
+
+def test_oversized_and_decompression_bomb_files_are_quarantined_and_the_station_goes_on(tmp_path: Path) -> None:
+    import gzip
+
+    toml = station_toml(extra="max_input_MB = 0.5\nmax_uncompressed_MB = 2.0\n")
+    s = make_station(tmp_path / "st", toml)
+    header = b"# cell_id: Z-1\n# lot: LOT-A\n# cell_type: TEST-CELL\ntime_s,voltage_V,current_A\n"
+    bomb = gzip.compress(header + b"0" * (8 * 2**20), mtime=0)  # 8 MiB of text in a few kB
+    with running(s):
+        drop(s.inboxes[0].folder, "huge.csv", b"#" * (600 * 1024))
+        drop(s.inboxes[0].folder, "bomb.csv.gz", bomb)
+        drop(s.inboxes[0].folder, "good.csv", cycle_file("G-2"))
+        wait_until(lambda: settled(s, 3), what="all three final")
+    reasons = {p.name: p.read_text() for p in s.quarantine.glob("*.reason.txt")}
+    assert len(reasons) == 2
+    huge = next(t for n, t in reasons.items() if "huge.csv" in n)
+    assert "above the station's limit of 0.5 MB" in huge
+    assert any("bomb.csv.gz" in n for n in reasons)
+    check_invariants(s, {"huge.csv", "bomb.csv.gz", "good.csv"})
+
+
+def test_a_cell_that_takes_too_long_is_stopped_and_quarantined(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st", station_toml(extra="task_timeout_s = 0.05\n"))
+    with running(s):
+        drop(s.inboxes[0].folder, "slow.csv", cycle_file("TO-1"))
+        wait_until(lambda: settled(s, 1), what="timed-out file final")
+    reason = next(s.quarantine.glob("*.reason.txt")).read_text()
+    assert "judging took longer than task_timeout_s = 0.05 s; the file was not judged." in reason
