@@ -93,16 +93,48 @@ def cmd_check(args: argparse.Namespace) -> int:
 
 
 def cmd_rules_check(args: argparse.Namespace) -> int:
-    """Validate every rule file (and import profile) in a folder."""
+    """Validate every rule file in a folder and every import profile in its profiles/."""
+    from pipeline.errors import ProfileError
+    from pipeline.model import SourceRef
+    from pipeline.readers.profile import load_profile
     from pipeline.rulebook import check_rules_dir
 
-    problems = check_rules_dir(Path(args.folder))
+    folder = Path(args.folder)
+    problems: list[FormgateError] = list(check_rules_dir(folder))
+    profiles = sorted(p for p in (folder / "profiles").glob("*.toml") if p.is_file())
+    for path in profiles:
+        try:
+            data = path.read_bytes()
+        except OSError as exc:
+            unreadable = f"cannot read the import profile ({exc.strerror})"
+            where = SourceRef(str(path))
+            problems.append(ProfileError(unreadable, where, "Check its permissions."))
+            continue
+        try:
+            # read as the station reads it: UTF-8, nothing else
+            load_profile(data.decode("utf-8"), str(path))
+        except UnicodeDecodeError as exc:
+            line = data[: exc.start].count(b"\n") + 1
+            column = exc.start - data.rfind(b"\n", 0, exc.start)  # in bytes, 1-based
+            where = SourceRef(str(path), line, column)
+            hint = "Save the file with UTF-8 encoding."
+            problems.append(ProfileError("not UTF-8 text", where, hint))
+        except ProfileError as error:
+            problems.append(error)
     for problem in problems:
         print(problem, file=sys.stderr)
     if problems:
         print(f"{len(problems)} problem(s) found in {args.folder}", file=sys.stderr)
         return EXIT_USER
-    print(f"{args.folder}: all rule files are valid")
+
+    def count(n: int, thing: str) -> str:
+        return f"{n} {thing}" + ("" if n == 1 else "s")
+
+    rule_files = sum(1 for p in folder.glob("*.toml") if p.is_file())
+    checked = count(rule_files, "rule file")
+    if profiles:
+        checked += " and " + count(len(profiles), "import profile")
+    print(f"{args.folder}: {checked}, all valid")
     return EXIT_OK
 
 
@@ -252,15 +284,19 @@ def build_parser() -> argparse.ArgumentParser:
     rules_check = rules_sub.add_parser(
         "check",
         help="validate every rule file and import profile in a folder",
-        description="Validate rule files; each problem names file, line and what to do.",
+        description="Validate the rule files (*.toml) in a folder and the import profiles in "
+        "its profiles/ subfolder; each problem names file, line and what to do.",
         epilog="example: formgate rules check rules/",
     )
-    rules_check.add_argument("folder", help="folder holding the rule files")
+    rules_check.add_argument(
+        "folder", help="folder holding the rule files (and a profiles/ folder, if any)"
+    )
     rules_check.set_defaults(func=cmd_rules_check)
 
     init = sub.add_parser(
         "init", help="create a station folder with a commented station.toml",
-        description="Create a station: station.toml (commented), the folder layout and a copy of the rules.",
+        description="Create a station: station.toml (commented), the folder layout and a copy "
+        "of the rules.",
         epilog="example: formgate init station/",
     )
     init.add_argument("folder", help="the station folder to create")
@@ -292,7 +328,9 @@ def build_parser() -> argparse.ArgumentParser:
         epilog="example: formgate mail retry station/ --parked",
     )
     retry.add_argument("folder", help="the station folder")
-    retry.add_argument("--parked", action="store_true", help="also retry mail the server refused for good")
+    retry.add_argument(
+        "--parked", action="store_true", help="also retry mail the server refused for good"
+    )
     retry.set_defaults(func=cmd_mail_retry)
 
     demo = sub.add_parser(
@@ -301,7 +339,8 @@ def build_parser() -> argparse.ArgumentParser:
         description="Start a station on a new folder, let a simulated cycler hand over invented "
         "lots (normal cells and one of each defect, a bad file, a duplicate), drain it, and show "
         "where the certificates, results, mails and ledger are.",
-        epilog="example: formgate demo            (a new temporary folder)",
+        epilog="examples: formgate demo (in a new temporary folder); "
+        "formgate demo --batch demo-output/",
     )
     demo.add_argument(
         "folder", nargs="?", help="station folder to create (default: a new temporary folder)"
