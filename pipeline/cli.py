@@ -15,9 +15,13 @@ import tempfile
 import traceback
 from collections.abc import Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from pipeline import __version__
 from pipeline.errors import FormgateError
+
+if TYPE_CHECKING:
+    from pipeline.settings import Settings
 
 EXIT_OK, EXIT_REJECTED, EXIT_USER, EXIT_BUG, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 
@@ -160,7 +164,7 @@ def cmd_init(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _station_settings(folder: str):  # noqa: ANN202 - Settings, imported late
+def _station_settings(folder: str) -> Settings:
     from pipeline.settings import read_settings
 
     return read_settings(Path(folder))
@@ -385,5 +389,5 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return EXIT_INTERRUPTED
-    except Exception as exc:  # noqa: BLE001 - the last line of defence prints one line, logs the rest
+    except Exception as exc:
         return _report_bug(exc)

@@ -18,7 +18,10 @@ RULES_DIR = Path(__file__).resolve().parent.parent / "rules"
 
 
 def run_demo(folder: Path, *, analysed_at: datetime.datetime, rules_dir: Path = RULES_DIR) -> int:
-    """Write the lot into ``folder/inbox``, check it into ``folder``; 0 if every cell got its expected verdict."""
+    """Write the lots into ``folder/inbox`` and check them into ``folder``.
+
+    Returns 0 if every cell got the verdict its invented defect (or lack of one) calls for.
+    """
     inbox = folder / "inbox"
     cells = DEMO_CELLS + DEMO_NMC_CELLS
     paths = write_demo_lot(inbox, cells=cells)
@@ -34,7 +37,7 @@ def run_demo(folder: Path, *, analysed_at: datetime.datetime, rules_dir: Path = 
     (folder / "summary.txt").write_text(table, encoding="utf-8")
     print(table, end="")
     # every invented defect is one a reject check must catch; normal cells must pass
-    expected = {cell.cell_id: ('fail' if cell.defect else 'pass') for cell in cells}
+    expected = {cell.cell_id: ("fail" if cell.defect else "pass") for cell in cells}
     surprises = [
         f"{r.cell_id}: expected {expected[r.cell_id]}, got {r.verdict.kind.value}"
         for r in results

@@ -142,7 +142,9 @@ def run_station_demo(folder: Path | None = None) -> int:
         stop.set()
 
     feeder = threading.Thread(target=feed_and_watch, name="demo-cycler")
-    print(f"demo station in {root}; the simulated cycler starts handing over {len(cells) + 2} files")
+    print(
+        f"demo station in {root}; the simulated cycler starts handing over {len(cells) + 2} files"
+    )
     feeder.start()
     try:
         Station(settings, smtp).run(stop)
@@ -155,8 +157,14 @@ def run_station_demo(folder: Path | None = None) -> int:
 def _report(root: Path, settings: object, expected: int) -> int:
     from pipeline.summary import summary_table  # noqa: F401 - same table as `check`
 
-    archived = sorted(p.name for p in (root / "archive").rglob("*") if p.is_file() and not p.name.endswith(".done"))
-    quarantined = sorted(p.name for p in (root / "quarantine").iterdir() if not p.name.endswith(".reason.txt"))
+    archived = sorted(
+        p.name
+        for p in (root / "archive").rglob("*")
+        if p.is_file() and not p.name.endswith(".done")
+    )
+    quarantined = sorted(
+        p.name for p in (root / "quarantine").iterdir() if not p.name.endswith(".reason.txt")
+    )
     results = sorted((root / "results").rglob("*.json"))
     pdfs = sorted((root / "certificates").rglob("*.pdf"))
     mails = sorted((root / "mail").glob("*.eml"))
@@ -164,12 +172,18 @@ def _report(root: Path, settings: object, expected: int) -> int:
     print(f"{'cell':<10} {'lot':<12} {'verdict':<8} hazards")
     for path in results:
         doc = json.loads(path.read_text(encoding="utf-8"))
-        print(f"{doc['cell']['cell_id']:<10} {doc['cell']['lot']:<12} {doc['verdict']:<8} "
-              f"{', '.join(doc['hazards'])}")
+        print(
+            f"{doc['cell']['cell_id']:<10} {doc['cell']['lot']:<12} {doc['verdict']:<8} "
+            f"{', '.join(doc['hazards'])}"
+        )
     print()
-    print(f"inputs handed over: {expected}; archived: {len(archived)}; quarantined: {len(quarantined)}")
+    print(
+        f"inputs handed over: {expected}; archived: {len(archived)}; quarantined: {len(quarantined)}"
+    )
     for name in quarantined:
-        reason = (root / "quarantine" / f"{name}.reason.txt").read_text(encoding="utf-8").splitlines()
+        reason = (
+            (root / "quarantine" / f"{name}.reason.txt").read_text(encoding="utf-8").splitlines()
+        )
         print(f"  quarantined {name}: {reason[2] if len(reason) > 2 else ''}")
     print()
     print(f"certificates (PDF): {root / 'certificates'}  ({len(pdfs)} files)")

@@ -50,7 +50,9 @@ def is_temporary(name: str) -> bool:
     return name.startswith(".") or name.endswith(TEMPORARY_SUFFIXES)
 
 
-def observe(previous: Mapping[str, Seen], listing: Mapping[str, tuple[int, int]], now_s: float) -> dict[str, Seen]:
+def observe(
+    previous: Mapping[str, Seen], listing: Mapping[str, tuple[int, int]], now_s: float
+) -> dict[str, Seen]:
     """Carry ``since_s`` over for files whose size and mtime did not change; restart it otherwise."""
     out: dict[str, Seen] = {}
     for name, (size, mtime_ns) in listing.items():

@@ -88,7 +88,10 @@ def deliver_due(
         elif outcome == "retry":
             delay = next_attempt_delay_s(row.attempts + 1)
             ledger.mark_retry(
-                row.id, now=now, next_attempt_at=now + datetime.timedelta(seconds=delay), error=reply
+                row.id,
+                now=now,
+                next_attempt_at=now + datetime.timedelta(seconds=delay),
+                error=reply,
             )
             log.warning("mail delayed (%s); next try in %.0f s: %s", reply, delay, row.subject)
         else:
@@ -142,11 +145,15 @@ class MailThread(threading.Thread):
             while not self.stop_event.is_set():
                 try:
                     deliver_due(
-                        ledger, self.smtp, station=self.station, alerts_to=self.alerts_to,
-                        domain=self.domain, stop=self.stop_event,
+                        ledger,
+                        self.smtp,
+                        station=self.station,
+                        alerts_to=self.alerts_to,
+                        domain=self.domain,
+                        stop=self.stop_event,
                     )
                     self.error = None
-                except Exception as exc:  # noqa: BLE001 - keep delivering; the log has it
+                except Exception as exc:
                     self.error = f"{type(exc).__name__}: {exc}"
                     log.exception("mail delivery failed; trying again shortly")
                 self.wake.wait(self.interval_s)

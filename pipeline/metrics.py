@@ -18,6 +18,7 @@ from pipeline.model import (
     CycleMetrics,
     FloatArray,
     Note,
+    Plateau,
     PlateauSettings,
     Segmentation,
     SourceRef,
@@ -56,8 +57,12 @@ def _min(values: FloatArray) -> float | None:
 def measure_cycle(trace: Trace, steps: tuple[Step, ...], cycle: Cycle) -> CycleMetrics:
     """DESIGN.md per-cycle metrics: capacities (Ah), efficiency, energy (Wh), voltages, CV time."""
     charge_ah = sum(steps[i].capacity_ah for i in cycle.charge_steps)
-    discharge_ah = sum(steps[i].capacity_ah for i in cycle.discharge_steps) if cycle.discharge_steps else None
-    energy_wh = sum(steps[i].energy_wh for i in cycle.discharge_steps) if cycle.discharge_steps else None
+    discharge_ah = (
+        sum(steps[i].capacity_ah for i in cycle.discharge_steps) if cycle.discharge_steps else None
+    )
+    energy_wh = (
+        sum(steps[i].energy_wh for i in cycle.discharge_steps) if cycle.discharge_steps else None
+    )
     first = steps[min(cycle.charge_steps + cycle.discharge_steps)]
     last = steps[max(cycle.charge_steps + cycle.discharge_steps)]
     temperature = None
@@ -67,17 +72,25 @@ def measure_cycle(trace: Trace, steps: tuple[Step, ...], cycle: Cycle) -> CycleM
         index=cycle.index,
         charge_capacity_ah=charge_ah,
         discharge_capacity_ah=discharge_ah,
-        coulombic_efficiency=(discharge_ah / charge_ah) if discharge_ah is not None and charge_ah > 0 else None,
+        coulombic_efficiency=(discharge_ah / charge_ah)
+        if discharge_ah is not None and charge_ah > 0
+        else None,
         discharge_energy_wh=energy_wh,
-        mean_discharge_voltage_v=(energy_wh / discharge_ah) if energy_wh is not None and discharge_ah else None,
+        mean_discharge_voltage_v=(energy_wh / discharge_ah)
+        if energy_wh is not None and discharge_ah
+        else None,
         max_charge_voltage_v=_max(trace.voltage_v[_rows(steps, cycle.charge_steps)]),
         min_discharge_voltage_v=_min(trace.voltage_v[_rows(steps, cycle.discharge_steps)]),
-        cv_duration_s=sum(steps[i].duration_s for i in cycle.charge_steps if steps[i].mode is StepMode.CV),
+        cv_duration_s=sum(
+            steps[i].duration_s for i in cycle.charge_steps if steps[i].mode is StepMode.CV
+        ),
         max_temperature_c=temperature,
     )
 
 
-def dcir_mohm(trace: Trace, steps: tuple[Step, ...], pulse_s: float) -> tuple[float | None, Note | None]:
+def dcir_mohm(
+    trace: Trace, steps: tuple[Step, ...], pulse_s: float
+) -> tuple[float | None, Note | None]:
     """DC resistance at the last rest-to-discharge transition (mOhm).
 
     (V at the last rest row - V ``pulse_s`` later, interpolated in the discharge) / mean |I|
@@ -113,7 +126,9 @@ def dcir_mohm(trace: Trace, steps: tuple[Step, ...], pulse_s: float) -> tuple[fl
     return None, None
 
 
-def rest_drift_mv_per_h(trace: Trace, steps: tuple[Step, ...], relax_s: float) -> tuple[float | None, Note | None]:
+def rest_drift_mv_per_h(
+    trace: Trace, steps: tuple[Step, ...], relax_s: float
+) -> tuple[float | None, Note | None]:
     """Least-squares slope of V over the final rest step after ``relax_s`` (mV/h); negative = falling."""
     rests = [s for s in steps if s.kind is StepKind.REST]
     if not rests:
@@ -134,7 +149,9 @@ def rest_drift_mv_per_h(trace: Trace, steps: tuple[Step, ...], relax_s: float) -
     return float(slope_v_per_s * 3600.0 * 1000.0), None
 
 
-def grading_discharge(trace: Trace, steps: tuple[Step, ...], cycle: Cycle) -> tuple[FloatArray, FloatArray, float]:
+def grading_discharge(
+    trace: Trace, steps: tuple[Step, ...], cycle: Cycle
+) -> tuple[FloatArray, FloatArray, float]:
     """q (% of the discharge, rising) and V of a cycle's discharge steps, and its capacity (Ah).
 
     Capacity accumulates row by row with the trapezoid weights of each step, so
@@ -167,9 +184,13 @@ def measure(
     values["cycle_count"] = float(len(complete))
     if cycles and cycles[0].coulombic_efficiency is not None:
         values["first_cycle_efficiency"] = cycles[0].coulombic_efficiency
-        values["irreversible_capacity_Ah"] = cycles[0].charge_capacity_ah - (cycles[0].discharge_capacity_ah or 0.0)
+        values["irreversible_capacity_Ah"] = cycles[0].charge_capacity_ah - (
+            cycles[0].discharge_capacity_ah or 0.0
+        )
     charge_v = [c.max_charge_voltage_v for c in cycles if c.max_charge_voltage_v is not None]
-    discharge_v = [c.min_discharge_voltage_v for c in cycles if c.min_discharge_voltage_v is not None]
+    discharge_v = [
+        c.min_discharge_voltage_v for c in cycles if c.min_discharge_voltage_v is not None
+    ]
     values["max_charge_voltage_V"] = max(charge_v) if charge_v else None
     values["min_discharge_voltage_V"] = min(discharge_v) if discharge_v else None
     if trace.temperature_c is not None:
@@ -179,7 +200,7 @@ def measure(
     values["rest_voltage_drift_mV_per_h"], note = rest_drift_mv_per_h(trace, steps, relax_s)
     notes += [note] if note else []
 
-    plateaus: tuple = ()
+    plateaus: tuple[Plateau, ...] = ()
     peaks: tuple[float, ...] = ()
     grading_curve = ica_curve = None
     if complete:
@@ -202,8 +223,19 @@ def measure(
                 values["main_plateau_voltage_V"] = main.voltage_v
                 values["main_plateau_length_pct"] = main.length_pct
         else:
-            notes.append(Note("grading_discharge_too_short", "the grading discharge has too few samples to look for plateaus", None,
-                              ("plateau_count", "main_plateau_voltage_V", "main_plateau_length_pct", "total_plateau_length_pct")))
+            notes.append(
+                Note(
+                    "grading_discharge_too_short",
+                    "the grading discharge has too few samples to look for plateaus",
+                    None,
+                    (
+                        "plateau_count",
+                        "main_plateau_voltage_V",
+                        "main_plateau_length_pct",
+                        "total_plateau_length_pct",
+                    ),
+                )
+            )
     else:
         notes.append(
             Note(

@@ -32,7 +32,9 @@ class PlateauAnalysis:
     ica_peaks_v: tuple[float, ...]
 
 
-def resample_uniform(q_pct: FloatArray, voltage_v: FloatArray, points: int) -> tuple[FloatArray, FloatArray]:
+def resample_uniform(
+    q_pct: FloatArray, voltage_v: FloatArray, points: int
+) -> tuple[FloatArray, FloatArray]:
     """Mean voltage in each cell of a uniform q grid over 0..100 %; empty cells interpolated.
 
     Averaging the samples that fall in a cell (rather than picking the nearest one)
@@ -72,11 +74,15 @@ def find_plateaus(
     ``total_ah`` converts lengths in % to Ah. Example: a curve at 3.3 V from 10 %
     to 90 % and steep elsewhere gives one plateau of about 80 % at 3.3 V.
     """
-    grid, v = resample_uniform(np.asarray(q_pct, float), np.asarray(voltage_v, float), settings.grid_points)
+    grid, v = resample_uniform(
+        np.asarray(q_pct, float), np.asarray(voltage_v, float), settings.grid_points
+    )
     step = float(grid[1] - grid[0])
     window = _odd_window(settings.smoothing_pct, step, settings.grid_points)
     smooth = savgol_filter(v, window, SG_ORDER, mode="interp")
-    slope_mv_per_pct = savgol_filter(v, window, SG_ORDER, deriv=1, delta=step, mode="interp") * 1000.0
+    slope_mv_per_pct = (
+        savgol_filter(v, window, SG_ORDER, deriv=1, delta=step, mode="interp") * 1000.0
+    )
     flat = np.abs(slope_mv_per_pct) <= settings.flatness_mv_per_pct
     runs = _flat_runs(flat)
     merged: list[list[int]] = []
@@ -131,4 +137,4 @@ def incremental_capacity(
     prominence = max(settings.ica_min_prominence_ah_per_v, 0.05 * top, total_ah * 1.0)
     found, _ = find_peaks(np.concatenate(([0.0], dqdv, [0.0])), prominence=prominence)
     peaks = tuple(sorted((round(float(centres[i - 1]), 4) for i in found), reverse=True))
-    return Curve(centres, dqdv), peaks
+    return Curve(centres, np.asarray(dqdv, dtype=np.float64)), peaks

@@ -123,9 +123,23 @@ def schema() -> dict[str, Any]:
         "type": "object",
         "additionalProperties": False,
         "required": [
-            "schema_version", "cell", "other_metadata", "input", "rule_set", "cell_type", "software",
-            "analysed_at", "verdict", "hazards", "reasons", "metrics", "cycles", "plateaus",
-            "ica_peaks_V", "checks", "notes",
+            "schema_version",
+            "cell",
+            "other_metadata",
+            "input",
+            "rule_set",
+            "cell_type",
+            "software",
+            "analysed_at",
+            "verdict",
+            "hazards",
+            "reasons",
+            "metrics",
+            "cycles",
+            "plateaus",
+            "ica_peaks_V",
+            "checks",
+            "notes",
         ],
         "properties": {
             "schema_version": {"const": SCHEMA_VERSION},
@@ -177,8 +191,11 @@ def schema() -> dict[str, Any]:
                 "type": "array",
                 "items": {
                     "enum": [
-                        "internal_short", "over_temperature", "over_voltage",
-                        "lithium_plating", "abnormal_capacity",
+                        "internal_short",
+                        "over_temperature",
+                        "over_voltage",
+                        "lithium_plating",
+                        "abnormal_capacity",
                     ]
                 },
             },
@@ -196,7 +213,8 @@ def schema() -> dict[str, Any]:
                     "additionalProperties": False,
                     "required": cycle_keys,
                     "properties": {
-                        k: ({"type": "integer", "minimum": 1} if k == "cycle" else _NUM) for k in cycle_keys
+                        k: ({"type": "integer", "minimum": 1} if k == "cycle" else _NUM)
+                        for k in cycle_keys
                     },
                 },
             },
@@ -221,14 +239,26 @@ def schema() -> dict[str, Any]:
                 "items": {
                     "type": "object",
                     "additionalProperties": False,
-                    "required": ["id", "metric", "value", "low", "high", "outcome", "severity", "hazard", "message"],
+                    "required": [
+                        "id",
+                        "metric",
+                        "value",
+                        "low",
+                        "high",
+                        "outcome",
+                        "severity",
+                        "hazard",
+                        "message",
+                    ],
                     "properties": {
                         "id": {"type": "string"},
                         "metric": {"enum": [m.name for m in METRICS]},
                         "value": _NUM,
                         "low": _NUM,
                         "high": _NUM,
-                        "outcome": {"enum": ["in_window", "out_of_window", "not_judged", "skipped"]},
+                        "outcome": {
+                            "enum": ["in_window", "out_of_window", "not_judged", "skipped"]
+                        },
                         "severity": {"enum": ["reject", "review"]},
                         "hazard": _STR,
                         "message": {"type": "string"},

@@ -290,7 +290,8 @@ def _parse(text: str, name: str) -> tuple[RuleSet | None, list[RulesError]]:
                 )
     if out.errors:
         # Problems with a line first, in line order; whole-file problems (often consequences) last.
-        return None, sorted(out.errors, key=_line_order)
+        problems = [e for e in out.errors if isinstance(e, RulesError)]
+        return None, sorted(problems, key=_line_order)
     return _assemble(text, name, plain, tuple(cell_types), tuple(rules)), []
 
 

@@ -45,7 +45,9 @@ def judge(
     rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
     notes = validate_trace(trace, cell_type)
     trace = drop_invalid_rows(trace)
-    segmentation = split_steps(trace, rule_set.rest_current_fraction * cell_type.nominal_capacity_ah)
+    segmentation = split_steps(
+        trace, rule_set.rest_current_fraction * cell_type.nominal_capacity_ah
+    )
     metrics = measure(
         trace,
         segmentation,
@@ -61,7 +63,9 @@ def judge(
         input_sha256=hashlib.sha256(data).hexdigest(),
         metadata=trace.metadata,
         cell_type=cell_type,
-        rule_set=RuleSetRef(rule_set.name, rule_set.revision, rule_set.sha256, Path(rule_set.source).name),
+        rule_set=RuleSetRef(
+            rule_set.name, rule_set.revision, rule_set.sha256, Path(rule_set.source).name
+        ),
         metrics=metrics,
         verdict=verdict,
         notes=all_notes,

@@ -91,7 +91,12 @@ def _absorb_blips(kinds: IntArray, time_s: FloatArray, min_s: float) -> IntArray
 
 
 def _split_cv(
-    voltage_v: FloatArray, current_a: FloatArray, time_s: FloatArray, start: int, stop: int, sign: int
+    voltage_v: FloatArray,
+    current_a: FloatArray,
+    time_s: FloatArray,
+    start: int,
+    stop: int,
+    sign: int,
 ) -> int | None:
     """Row where a constant-voltage tail begins inside rows [start, stop), or None.
 
@@ -129,7 +134,9 @@ def _make_step(
     t, v, i = trace.time_s, trace.voltage_v, trace.current_a
     a = np.abs(i[start:stop])
     charge_as = float(np.dot(a, w[start:stop])) if kind is not StepKind.REST else 0.0
-    energy_ws = float(np.dot(a * v[start:stop], w[start:stop])) if kind is not StepKind.REST else 0.0
+    energy_ws = (
+        float(np.dot(a * v[start:stop], w[start:stop])) if kind is not StepKind.REST else 0.0
+    )
     program = None
     if trace.step is not None:
         program = int(trace.step[start])

@@ -23,6 +23,7 @@ import os
 import threading
 import time
 from collections import deque
+from collections.abc import Callable
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from pathlib import Path
@@ -31,12 +32,20 @@ from pipeline import faults
 from pipeline.errors import FormgateError
 from pipeline.handoff import Seen, decide, is_temporary, looks_complete
 from pipeline.ledger import CheckRowData, InputRow, Ledger
-from pipeline.mail import alert_letter, digest_letter, failure_letter, hold_letter, DigestRow
+from pipeline.mail import (
+    DigestRow,
+    Letter,
+    alert_letter,
+    digest_letter,
+    failure_letter,
+    hold_letter,
+)
 from pipeline.mailer import MailThread, outgoing
 from pipeline.model import CellResult, VerdictKind
 from pipeline.names import safe_name
-from pipeline.rulebook import RuleBook, load_rule_set, load_rules_dir, check_rules_dir
+from pipeline.rulebook import RuleBook, check_rules_dir, load_rule_set, load_rules_dir
 from pipeline.settings import InboxSettings, Settings, choose_profile
+from pipeline.smtp import SmtpSettings
 from pipeline.worker import Output, Task, init_worker, run_task
 from pipeline.writing import clean_temp_files, move_into, write_atomic
 
@@ -52,12 +61,19 @@ def utc_now() -> datetime.datetime:
 class Station:
     """A running station over one settings file. ``run(stop)`` returns when ``stop`` is set."""
 
-    def __init__(self, settings: Settings, smtp: object, *, clock=utc_now) -> None:  # noqa: ANN001
+    def __init__(
+        self,
+        settings: Settings,
+        smtp: SmtpSettings,
+        *,
+        clock: Callable[[], datetime.datetime] = utc_now,
+    ) -> None:
         self.settings = settings
         self.smtp = smtp
         self.clock = clock
         self.wake = threading.Event()
-        self.ledger: Ledger = None  # type: ignore[assignment] - opened by run(), in its thread
+        # opened by run(), in the thread that runs the station (SQLite's rule)
+        self.ledger: Ledger = None  # type: ignore[assignment]
         self.rulebook: RuleBook | None = None
         self.rules_fingerprint: tuple[tuple[str, int, int], ...] = ()
         self.rules_alerted: str = ""
@@ -108,8 +124,13 @@ class Station:
             return
         self.rulebook = load_rules_dir(folder)
         for rs in self.rulebook.rule_sets:
-            log.info("rules in force: %s revision %s (%s, sha256 %s)", rs.name, rs.revision,
-                     Path(rs.source).name, rs.sha256[:12])
+            log.info(
+                "rules in force: %s revision %s (%s, sha256 %s)",
+                rs.name,
+                rs.revision,
+                Path(rs.source).name,
+                rs.sha256[:12],
+            )
 
     def _new_pool(self) -> ProcessPoolExecutor:
         ctx = multiprocessing.get_context("forkserver")
@@ -131,20 +152,28 @@ class Station:
             inbox.folder.mkdir(parents=True, exist_ok=True)
         self.pool = self._new_pool()
         watchers = [
-            InboxWatcher([i.folder], self.wake, polling=i.polling, poll_interval_s=i.poll_interval_s)
+            InboxWatcher(
+                [i.folder], self.wake, polling=i.polling, poll_interval_s=i.poll_interval_s
+            )
             for i in self.settings.inboxes
         ]
         mail = MailThread(
-            self.settings.ledger, self.smtp, station=self.settings.station_name,  # type: ignore[arg-type]
-            alerts_to=self.settings.routing.alerts_to, domain=self.settings.routing.domain,
+            self.settings.ledger,
+            self.smtp,
+            station=self.settings.station_name,
+            alerts_to=self.settings.routing.alerts_to,
+            domain=self.settings.routing.domain,
         )
         try:
             self.recover()
             for w in watchers:
                 w.start()
             mail.start()
-            log.info("station %s watching %s", self.settings.station_name,
-                     ", ".join(str(i.folder) for i in self.settings.inboxes))
+            log.info(
+                "station %s watching %s",
+                self.settings.station_name,
+                ", ".join(str(i.folder) for i in self.settings.inboxes),
+            )
             while not stop.is_set():
                 self.step()
                 for w in watchers:
@@ -191,15 +220,22 @@ class Station:
         for inbox in self.settings.inboxes:
             listing = list_folder(inbox.folder)
             decision = decide(
-                inbox.handover, listing, self.seen[inbox.name], now_s,
-                settle_s=inbox.settle_s, marker_suffix=inbox.marker_suffix,
+                inbox.handover,
+                listing,
+                self.seen[inbox.name],
+                now_s,
+                settle_s=inbox.settle_s,
+                marker_suffix=inbox.marker_suffix,
                 orphan_marker_s=inbox.orphan_marker_s,
             )
             self.seen[inbox.name] = dict(decision.seen)
             for marker in decision.orphan_markers:
-                self.quarantine_stray(inbox.folder / marker, f"marker file without its data file "
-                                      f"(waited {inbox.orphan_marker_s:g} s for "
-                                      f"{marker[: -len(inbox.marker_suffix)]})")
+                self.quarantine_stray(
+                    inbox.folder / marker,
+                    f"marker file without its data file "
+                    f"(waited {inbox.orphan_marker_s:g} s for "
+                    f"{marker[: -len(inbox.marker_suffix)]})",
+                )
             for name in decision.ready:
                 if self.capacity() <= 0:
                     return
@@ -234,30 +270,46 @@ class Station:
         else:
             sha = hashlib.sha256(path.read_bytes()).hexdigest()
         row, earlier = self.ledger.claim_input(
-            sha256=sha, name=_original_name(path.name), size=size, arrived_at=self.clock(),
+            sha256=sha,
+            name=_original_name(path.name),
+            size=size,
+            arrived_at=self.clock(),
             work_path=str(path),
         )
         faults.point("after_record_claim")
         if row.state == "duplicate":
             assert earlier is not None
-            log.info("%s: same bytes as input %d (%s); archived as a duplicate, not judged again",
-                     row.name, earlier.id, earlier.name)
+            log.info(
+                "%s: same bytes as input %d (%s); archived as a duplicate, not judged again",
+                row.name,
+                earlier.id,
+                earlier.name,
+            )
             self.finish(row, "duplicate")
             return
         if size > self.settings.max_input_MB * MB:
-            self.quarantine(row, f"{row.name}: the file is {size / MB:.1f} MB, above the station's "
-                            f"limit of {self.settings.max_input_MB:g} MB.\n  If such files are "
-                            "expected, raise max_input_MB in station.toml.")
+            self.quarantine(
+                row,
+                f"{row.name}: the file is {size / MB:.1f} MB, above the station's "
+                f"limit of {self.settings.max_input_MB:g} MB.\n  If such files are "
+                "expected, raise max_input_MB in station.toml.",
+            )
             return
         self.queue.append(row)
 
     def reconcile_work(self) -> None:
         """Files in work/ the ledger does not know (a crash right after the claim) are registered."""
-        known = {str(r[1].work_path) for r in self.in_flight.values()} | {r.work_path for r in self.queue}
+        known = {str(r[1].work_path) for r in self.in_flight.values()} | {
+            r.work_path for r in self.queue
+        }
         for path in sorted(self.settings.work.iterdir()):
             if not path.is_file() or is_temporary(path.name) or str(path) in known:
                 continue
-            if any(path.name.endswith(i.marker_suffix) for i in self.settings.inboxes if i.handover == "marker"):
+            if any(
+                path.name.endswith(i.marker_suffix)
+                for i in self.settings.inboxes
+                if i.handover == "marker"
+            ):
                 continue
             row = self.ledger.input_by_work_path(str(path))
             if row is None or row.final_path is not None:
@@ -268,7 +320,9 @@ class Station:
     def profile_for(self, row: InputRow) -> tuple[str | None, str | None]:
         """The import profile (name, text) for an input, by file-name glob or its inbox's default."""
         inbox_name = self.inbox_of.get(row.work_path)
-        inbox = next((i for i in self.settings.inboxes if i.name == inbox_name), self.settings.inboxes[0])
+        inbox = next(
+            (i for i in self.settings.inboxes if i.name == inbox_name), self.settings.inboxes[0]
+        )
         path = choose_profile(self.settings, inbox, row.name)
         if path is None:
             return None, None
@@ -280,9 +334,14 @@ class Station:
             row = self.queue.popleft()
             profile_name, profile_text = self.profile_for(row)
             task = Task(
-                input_id=row.id, work_path=row.work_path, name=row.name, sha256=row.sha256,
-                rulebook=self.rulebook, analysed_at=self.clock().replace(microsecond=0),
-                profile_name=profile_name, profile_text=profile_text,
+                input_id=row.id,
+                work_path=row.work_path,
+                name=row.name,
+                sha256=row.sha256,
+                rulebook=self.rulebook,
+                analysed_at=self.clock().replace(microsecond=0),
+                profile_name=profile_name,
+                profile_text=profile_text,
                 max_uncompressed_bytes=int(self.settings.max_uncompressed_MB * MB),
                 certify=self.settings.certify,
             )
@@ -317,15 +376,22 @@ class Station:
                 self.pool.shutdown(wait=False, cancel_futures=True)
             self.pool = self._new_pool()
             for row, task in broken:
-                self.retry_or_quarantine(row, task, self.kill_reasons.pop(row.id, "a worker process died while judging it"))
+                self.retry_or_quarantine(
+                    row,
+                    task,
+                    self.kill_reasons.pop(row.id, "a worker process died while judging it"),
+                )
         self.kill_hung_workers()
 
     def retry_or_quarantine(self, row: InputRow, task: Task, why: str) -> None:
         self.attempts[row.id] = self.attempts.get(row.id, 0) + 1
         if self.attempts[row.id] >= 2:
-            self.quarantine(row, f"{row.name}: {why}; the file was not judged.\n  It may be hostile "
-                            "or far too large to judge; check it by hand with `formgate check`, or "
-                            "raise task_timeout_s in station.toml if such files are expected.")
+            self.quarantine(
+                row,
+                f"{row.name}: {why}; the file was not judged.\n  It may be hostile "
+                "or far too large to judge; check it by hand with `formgate check`, or "
+                "raise task_timeout_s in station.toml if such files are expected.",
+            )
         else:
             log.warning("%s: %s; trying once more", row.name, why)
             self.submit_task(row, task)
@@ -346,7 +412,9 @@ class Station:
                 del started[future]
             elif now - t0 > limit and self.pool is not None:
                 row, _ = self.in_flight[future]
-                log.error("%s: judging took longer than %g s; stopping the workers", row.name, limit)
+                log.error(
+                    "%s: judging took longer than %g s; stopping the workers", row.name, limit
+                )
                 self.attempts[row.id] = 1  # so this failure quarantines it at once
                 self.kill_reasons[row.id] = f"judging took longer than task_timeout_s = {limit:g} s"
                 for proc in list(getattr(self.pool, "_processes", {}).values()):
@@ -367,41 +435,78 @@ class Station:
         self.publish(row, output.result, output.json_text, pdf)
         self.judged += 1
         r = output.result
-        hazards = f" hazard: {', '.join(h.value for h in r.verdict.hazards)}" if r.verdict.hazards else ""
-        log.info("%s lot %s: %s (%.2f s)%s [%s]", r.cell_id, r.lot, r.verdict.kind.value,
-                 output.seconds, hazards, row.name)
+        hazards = (
+            f" hazard: {', '.join(h.value for h in r.verdict.hazards)}" if r.verdict.hazards else ""
+        )
+        log.info(
+            "%s lot %s: %s (%.2f s)%s [%s]",
+            r.cell_id,
+            r.lot,
+            r.verdict.kind.value,
+            output.seconds,
+            hazards,
+            row.name,
+        )
 
     def output_paths(self, result: CellResult) -> tuple[Path, Path]:
         lot, cell = safe_name(result.lot), safe_name(result.cell_id)
-        return (self.settings.results / lot / f"{cell}.json",
-                self.settings.certificates / lot / f"{cell}.pdf")
+        return (
+            self.settings.results / lot / f"{cell}.json",
+            self.settings.certificates / lot / f"{cell}.pdf",
+        )
 
-    def letters(self, result: CellResult, pdf_path: Path) -> list:  # noqa: ANN401
+    def letters(self, result: CellResult, pdf_path: Path) -> list[Letter]:
         routing, station = self.settings.routing, self.settings.station_name
         kind = result.verdict.kind
         if kind is VerdictKind.FAIL and routing.failures_to:
-            return [failure_letter(result, str(pdf_path), routing.failures_to, station=station,
-                                   domain=routing.domain)]
+            return [
+                failure_letter(
+                    result,
+                    str(pdf_path),
+                    routing.failures_to,
+                    station=station,
+                    domain=routing.domain,
+                )
+            ]
         if kind is VerdictKind.HOLD and routing.holds_to:
-            return [hold_letter(result, str(pdf_path), routing.holds_to, station=station,
-                                domain=routing.domain)]
+            return [
+                hold_letter(
+                    result, str(pdf_path), routing.holds_to, station=station, domain=routing.domain
+                )
+            ]
         return []
 
-    def record(self, row: InputRow, result: CellResult, json_text: str, *, with_pdf: bool = True) -> None:
+    def record(
+        self, row: InputRow, result: CellResult, json_text: str, *, with_pdf: bool = True
+    ) -> None:
         """ONE transaction: result, check rows, outbox rows (and the rule text, kept before it)."""
         json_path, pdf_path = self.output_paths(result)
         assert self.rulebook is not None
-        source = next((rs for rs in self.rulebook.rule_sets if rs.sha256 == result.rule_set.sha256), None)
+        source = next(
+            (rs for rs in self.rulebook.rule_sets if rs.sha256 == result.rule_set.sha256), None
+        )
         if source is not None:
-            self.ledger.remember_text(kind="rule_set", sha256=source.sha256, name=Path(source.source).name,
-                                      text=Path(source.source).read_text(encoding="utf-8"), now=self.clock())
+            self.ledger.remember_text(
+                kind="rule_set",
+                sha256=source.sha256,
+                name=Path(source.source).name,
+                text=Path(source.source).read_text(encoding="utf-8"),
+                now=self.clock(),
+            )
         self.ledger.record_result(
-            row.id, cell_id=result.cell_id, lot=result.lot, verdict=result.verdict.kind.value,
-            hazards=[h.value for h in result.verdict.hazards], result_json=json_text,
+            row.id,
+            cell_id=result.cell_id,
+            lot=result.lot,
+            verdict=result.verdict.kind.value,
+            hazards=[h.value for h in result.verdict.hazards],
+            result_json=json_text,
             checks=[CheckRowData.from_check(c) for c in result.verdict.checks],
-            rule_set_name=result.rule_set.name, rule_set_revision=result.rule_set.revision,
-            rule_set_sha256=result.rule_set.sha256, analysed_at=result.analysed_at,
-            json_path=str(json_path), pdf_path=str(pdf_path) if with_pdf else None,
+            rule_set_name=result.rule_set.name,
+            rule_set_revision=result.rule_set.revision,
+            rule_set_sha256=result.rule_set.sha256,
+            analysed_at=result.analysed_at,
+            json_path=str(json_path),
+            pdf_path=str(pdf_path) if with_pdf else None,
             mails=[outgoing(letter) for letter in self.letters(result, pdf_path)],
         )
         faults.point("after_commit")
@@ -426,15 +531,24 @@ class Station:
         """Record why, move the input to quarantine/ with a .reason.txt beside it, record where."""
         letters = []
         if self.settings.routing.alerts_to:
-            letters.append(outgoing(alert_letter(
-                f"file quarantined: {row.name}", reason, self.settings.routing.alerts_to,
-                station=self.settings.station_name, key=f"quarantine:{row.sha256}:{row.id}",
-                domain=self.settings.routing.domain,
-            )))
+            letters.append(
+                outgoing(
+                    alert_letter(
+                        f"file quarantined: {row.name}",
+                        reason,
+                        self.settings.routing.alerts_to,
+                        station=self.settings.station_name,
+                        key=f"quarantine:{row.sha256}:{row.id}",
+                        domain=self.settings.routing.domain,
+                    )
+                )
+            )
         if not row.reason:
             self.ledger.record_error(row.id, reason, letters, now=self.clock())
         target = self.settings.quarantine / _final_name(row)
-        write_atomic(_reason_text(row, reason).encode("utf-8"), target.with_name(target.name + ".reason.txt"))
+        write_atomic(
+            _reason_text(row, reason).encode("utf-8"), target.with_name(target.name + ".reason.txt")
+        )
         self._move_final(row, target)
         self.ledger.mark_final(row.id, "quarantined", str(target), reason, now=self.clock())
         self.last_error = reason.splitlines()[0]
@@ -463,8 +577,13 @@ class Station:
 
     def recover(self) -> None:
         """Complete whatever a crash interrupted; clean temp files; queue unjudged work."""
-        for folder in (self.settings.results, self.settings.certificates, self.settings.archive,
-                       self.settings.quarantine, self.settings.mail):
+        for folder in (
+            self.settings.results,
+            self.settings.certificates,
+            self.settings.archive,
+            self.settings.quarantine,
+            self.settings.mail,
+        ):
             for path in clean_temp_files(folder):
                 log.info("removed an unfinished temporary file: %s", path)
         for row in self.ledger.inputs_in_state("claimed", "judged", "published", "duplicate"):
@@ -484,11 +603,20 @@ class Station:
             else:
                 quarantined = self.settings.quarantine / _final_name(row)
                 if quarantined.exists():
-                    self.ledger.mark_final(row.id, "quarantined", str(quarantined),
-                                           row.reason or "moved before a crash", now=self.clock())
+                    self.ledger.mark_final(
+                        row.id,
+                        "quarantined",
+                        str(quarantined),
+                        row.reason or "moved before a crash",
+                        now=self.clock(),
+                    )
                 else:
-                    log.error("%s: input %d is recorded as claimed but its file is gone from %s",
-                              row.name, row.id, work)
+                    log.error(
+                        "%s: input %d is recorded as claimed but its file is gone from %s",
+                        row.name,
+                        row.id,
+                        work,
+                    )
         self.reconcile_work()
 
     def republish(self, row: InputRow) -> None:
@@ -502,9 +630,18 @@ class Station:
             rulebook = RuleBook((load_rule_set(stored[1], stored[0]),))
         assert rulebook is not None
         profile_name, profile_text = self.profile_for(row)
-        task = Task(row.id, row.work_path, row.name, row.sha256, rulebook, result_row.analysed_at,
-                    profile_name, profile_text, int(self.settings.max_uncompressed_MB * MB),
-                    certify="all" if result_row.pdf_path else "none")
+        task = Task(
+            row.id,
+            row.work_path,
+            row.name,
+            row.sha256,
+            rulebook,
+            result_row.analysed_at,
+            profile_name,
+            profile_text,
+            int(self.settings.max_uncompressed_MB * MB),
+            certify="all" if result_row.pdf_path else "none",
+        )
         output = run_task(task)
         if output.result is None or output.json_text is None:
             log.error("%s: re-judging a recorded cell failed: %s", row.name, output.error)
@@ -526,12 +663,22 @@ class Station:
             if not cells:
                 continue
             rows = [
-                DigestRow(c.cell_id, c.verdict, json.loads(c.result_json)["metrics"].get("grading_capacity_Ah"),
-                          c.pdf_path or "")
+                DigestRow(
+                    c.cell_id,
+                    c.verdict,
+                    json.loads(c.result_json)["metrics"].get("grading_capacity_Ah"),
+                    c.pdf_path or "",
+                )
                 for c in cells
             ]
-            letter = digest_letter(lot, rows, routing.digests_to, station=self.settings.station_name,
-                                   digest_no=self.ledger.digest_count(lot) + 1, domain=routing.domain)
+            letter = digest_letter(
+                lot,
+                rows,
+                routing.digests_to,
+                station=self.settings.station_name,
+                digest_no=self.ledger.digest_count(lot) + 1,
+                domain=routing.domain,
+            )
             self.ledger.queue_digest(outgoing(letter), [c.id for c in cells], now=now)
             log.info("digest queued for lot %s: %d passed cell(s)", lot, len(cells))
 
@@ -545,10 +692,15 @@ class Station:
             "judged_since_start": self.judged,
             "queued": len(self.queue),
             "in_flight": len(self.in_flight),
-            "rules": [f"{rs.name} {rs.revision}" for rs in (self.rulebook.rule_sets if self.rulebook else ())],
+            "rules": [
+                f"{rs.name} {rs.revision}"
+                for rs in (self.rulebook.rule_sets if self.rulebook else ())
+            ],
             "last_error": self.last_error,
         }
-        write_atomic((json.dumps(beat, indent=2) + "\n").encode(), self.settings.heartbeat, sync=False)
+        write_atomic(
+            (json.dumps(beat, indent=2) + "\n").encode(), self.settings.heartbeat, sync=False
+        )
 
 
 def _sha256_file(path: Path) -> str:

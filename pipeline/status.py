@@ -54,17 +54,23 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
     state, beat = health(settings, now)
     lines = [f"station {settings.station_name}: {state}"]
     if beat:
-        lines.append(f"  last heartbeat {beat.get('updated_at')}, pid {beat.get('pid')}, "
-                     f"judged since start {beat.get('judged_since_start')}")
+        lines.append(
+            f"  last heartbeat {beat.get('updated_at')}, pid {beat.get('pid')}, "
+            f"judged since start {beat.get('judged_since_start')}"
+        )
         if beat.get("rules"):
-            lines.append(f"  rules in force: {', '.join(str(r) for r in beat['rules'])}")  # type: ignore[union-attr]
+            rules = beat["rules"]
+            shown = ", ".join(str(r) for r in rules) if isinstance(rules, list) else str(rules)
+            lines.append(f"  rules in force: {shown}")
         if beat.get("last_error"):
             lines.append(f"  last error: {beat['last_error']}")
     lines.append("")
     lines.append("queue")
     for inbox in settings.inboxes:
         waiting = _files(inbox.folder)
-        lines.append(f"  {inbox.name} ({inbox.folder}, {inbox.handover}): {len(waiting)} file(s) waiting")
+        lines.append(
+            f"  {inbox.name} ({inbox.folder}, {inbox.handover}): {len(waiting)} file(s) waiting"
+        )
         for name in waiting[:5]:
             lines.append(f"    {name}")
     lines.append(f"  work: {len(_files(settings.work))} file(s) being judged")
@@ -75,16 +81,24 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
     with Ledger(settings.ledger, now=now) as ledger:
         counts = ledger.counts_since(midnight)
         lines.append("")
-        lines.append("today (UTC): " + ", ".join(f"{counts.get(k, 0)} {k}" for k in
-                                                 ("pass", "fail", "hold", "error", "duplicate")))
+        lines.append(
+            "today (UTC): "
+            + ", ".join(
+                f"{counts.get(k, 0)} {k}" for k in ("pass", "fail", "hold", "error", "duplicate")
+            )
+        )
         lines.append("")
         lines.append("last cells")
         for r in ledger.recent_results(10):
-            lines.append(f"  {r.analysed_at.isoformat()}  {r.cell_id}  lot {r.lot}  {r.verdict}"
-                         + (f"  hazard: {', '.join(r.hazards)}" if r.hazards else ""))
+            lines.append(
+                f"  {r.analysed_at.isoformat()}  {r.cell_id}  lot {r.lot}  {r.verdict}"
+                + (f"  hazard: {', '.join(r.hazards)}" if r.hazards else "")
+            )
         outbox = ledger.outbox_counts()
         lines.append("")
-        lines.append("outbox: " + ", ".join(f"{outbox.get(k, 0)} {k}" for k in ("pending", "sent", "parked")))
+        lines.append(
+            "outbox: " + ", ".join(f"{outbox.get(k, 0)} {k}" for k in ("pending", "sent", "parked"))
+        )
         errors = ledger.recent_errors(5)
         if errors:
             lines.append("")
@@ -93,5 +107,7 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
                 first = (e.reason or "").splitlines()[0] if e.reason else ""
                 lines.append(f"  {e.name}: {first}")
         lines.append("")
-        lines.append(f"ledger integrity: {'ok' if ledger.integrity_ok() else 'DAMAGED - see docs/station.md'}")
+        lines.append(
+            f"ledger integrity: {'ok' if ledger.integrity_ok() else 'DAMAGED - see docs/station.md'}"
+        )
     return "\n".join(lines) + "\n"

@@ -55,7 +55,10 @@ def summary_table(results: Sequence[CellResult], errors: Sequence[tuple[str, str
         if r.verdict.reasons:
             hazards = ", ".join(h.value for h in r.verdict.hazards)
             extra = f" [hazard: {hazards}]" if hazards else ""
-            lines.append(f"{r.cell_id} ({r.verdict.kind.value}): {'; '.join(x.rstrip('.') for x in r.verdict.reasons)}{extra}")
+            lines.append(
+                f"{r.cell_id} ({r.verdict.kind.value}): "
+                f"{'; '.join(x.rstrip('.') for x in r.verdict.reasons)}{extra}"
+            )
     for name, reason in errors:
         lines.append(f"{name} (error): {reason}")
     counts = Counter(r.verdict.kind.value for r in results)

@@ -62,7 +62,7 @@ class Output:
 def init_worker() -> None:
     """Worker start-up: leave Ctrl-C to the station, and import the rendering stack once."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    import pipeline.certificate  # noqa: F401 - warm the import before the first file
+    import pipeline.certificate
     import pipeline.pdf  # noqa: F401
 
 
@@ -76,13 +76,15 @@ def run_task(task: Task) -> Output:
     except MemoryError:
         reason = f"{task.name}: the file needs more memory than a worker may use; it is quarantined"
         return Output(task.input_id, None, None, None, reason, time.perf_counter() - started)
-    except Exception as exc:  # noqa: BLE001 - a bug must not take the station down
+    except Exception as exc:
         reason = (
             f"{task.name}: formgate could not judge this file because of an internal error "
             f"({type(exc).__name__}: {exc}).\n  The station log has the details; please report it."
         )
         detail = "".join(traceback.format_exception(exc))
-        return Output(task.input_id, None, None, None, reason, time.perf_counter() - started, True, detail)
+        return Output(
+            task.input_id, None, None, None, reason, time.perf_counter() - started, True, detail
+        )
     return Output(task.input_id, result, json_text, pdf, None, time.perf_counter() - started)
 
 
@@ -94,7 +96,8 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None]:
     data = Path(task.work_path).read_bytes()
     if hashlib.sha256(data).hexdigest() != task.sha256:
         raise InputError(
-            "the file changed after it was claimed", SourceRef(task.name),
+            "the file changed after it was claimed",
+            SourceRef(task.name),
             "A writer still had it open: make the cycler finish writing before hand-over.",
         )
     profile = None

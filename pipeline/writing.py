@@ -39,7 +39,9 @@ def write_atomic(
     for files such as the heartbeat whose loss on power failure does not matter.
     """
     path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f"{TEMP_PREFIX}{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent)
+    fd, tmp = tempfile.mkstemp(
+        prefix=f"{TEMP_PREFIX}{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent
+    )
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
@@ -57,7 +59,9 @@ def write_atomic(
         _fsync_dir(path.parent)
 
 
-def move_into(source: Path, folder: Path, *, name: str | None = None, exact: bool = False) -> Path | None:
+def move_into(
+    source: Path, folder: Path, *, name: str | None = None, exact: bool = False
+) -> Path | None:
     """Rename ``source`` into ``folder`` (same filesystem, atomic); return the new path.
 
     Never overwrites: on a clash the new name gets ``~2``, ``~3``... appended, or,

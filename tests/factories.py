@@ -63,7 +63,11 @@ def build_trace(
 
 
 def rest(duration_s: float, v: float | Callable[[np.ndarray], np.ndarray]) -> Phase:
-    volt = (lambda t, q: np.full_like(t, v, dtype=float)) if isinstance(v, float) else (lambda t, q: v(t))
+    volt = (
+        (lambda t, q: np.full_like(t, v, dtype=float))
+        if isinstance(v, float)
+        else (lambda t, q: v(t))
+    )
     return Phase(duration_s, const(0.0), volt)
 
 
@@ -74,7 +78,9 @@ def cc(duration_s: float, current_a: float, v: Callable[[np.ndarray], np.ndarray
 
 def cv(duration_s: float, voltage_v: float, i0_a: float, tau_s: float) -> Phase:
     """Constant voltage with exponentially decaying current (charge if i0_a > 0)."""
-    return Phase(duration_s, lambda t: i0_a * np.exp(-t / tau_s), lambda t, q: np.full_like(t, voltage_v))
+    return Phase(
+        duration_s, lambda t: i0_a * np.exp(-t / tau_s), lambda t, q: np.full_like(t, voltage_v)
+    )
 
 
 def simple_formation(

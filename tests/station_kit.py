@@ -59,7 +59,9 @@ message = "First-cycle efficiency too low."
 """
 
 
-def station_toml(*, inboxes: str = "", extra: str = "", smtp: str = "", certificates: str = "") -> str:
+def station_toml(
+    *, inboxes: str = "", extra: str = "", smtp: str = "", certificates: str = ""
+) -> str:
     inboxes = inboxes or '[inbox.main]\nfolder = "inbox"\nhandover = "rename"\n'
     return (
         '[station]\nname = "test-station"\nworkers = 2\nreconcile_s = 0.5\nheartbeat_s = 0.5\n'
@@ -82,8 +84,14 @@ def make_station(root: Path, toml: str | None = None) -> Settings:
     return settings
 
 
-def cycle_file(cell_id: str, *, lot: str = "LOT-A", capacity_ah: float = 2.0, seed: int = 0,
-               dt_s: float = 120.0) -> bytes:
+def cycle_file(
+    cell_id: str,
+    *,
+    lot: str = "LOT-A",
+    capacity_ah: float = 2.0,
+    seed: int = 0,
+    dt_s: float = 120.0,
+) -> bytes:
     """A small cycle file (a few hundred rows) of an invented TEST-CELL cell.
 
     ``capacity_ah`` below 1.8 makes it fail its capacity check.
@@ -93,7 +101,9 @@ def cycle_file(cell_id: str, *, lot: str = "LOT-A", capacity_ah: float = 2.0, se
     meta = {"cell_id": cell_id, "lot": lot, "cell_type": "TEST-CELL"}
     lines = [f"# {k}: {v}" for k, v in meta.items()]
     lines.append("time_s,voltage_V,current_A,temperature_C")
-    for t, v, i, c in zip(trace.time_s, trace.voltage_v, trace.current_a, trace.temperature_c, strict=True):
+    for t, v, i, c in zip(
+        trace.time_s, trace.voltage_v, trace.current_a, trace.temperature_c, strict=True
+    ):
         lines.append(f"{t:.1f},{v:.5f},{i:.5f},{c:.2f}")
     return ("\n".join(lines) + "\n").encode()
 
@@ -107,7 +117,9 @@ def drop(folder: Path, name: str, data: bytes) -> Path:
     return target
 
 
-def wait_until(predicate: Callable[[], bool], timeout_s: float = 60.0, what: str = "condition") -> None:
+def wait_until(
+    predicate: Callable[[], bool], timeout_s: float = 60.0, what: str = "condition"
+) -> None:
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:
         if predicate():
@@ -147,7 +159,10 @@ def start_watch(root: Path, env: dict[str, str] | None = None) -> subprocess.Pop
     full = {**os.environ, **(env or {})}
     return subprocess.Popen(
         [sys.executable, "-m", "pipeline", "watch", str(root), "--quiet"],
-        cwd=REPO, env=full, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+        cwd=REPO,
+        env=full,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
     )
 
 
@@ -181,8 +196,14 @@ def settled(settings: Settings, expected: int) -> bool:
 
 def check_invariants(settings: Settings, dropped: set[str]) -> None:
     """Each input in exactly one final folder, the ledger agrees, no temp files, mailed PDFs parse."""
-    archived = [p for p in settings.archive.rglob("*") if p.is_file() and not p.name.endswith(".done")]
-    quarantined = [p for p in settings.quarantine.iterdir() if p.is_file() and not p.name.endswith((".reason.txt", ".done"))]
+    archived = [
+        p for p in settings.archive.rglob("*") if p.is_file() and not p.name.endswith(".done")
+    ]
+    quarantined = [
+        p
+        for p in settings.quarantine.iterdir()
+        if p.is_file() and not p.name.endswith((".reason.txt", ".done"))
+    ]
     finals = archived + quarantined
     names = sorted(p.name.split("_", 1)[1] for p in finals)
     assert sorted(set(names)) == sorted(dropped), "every dropped file ends in archive or quarantine"
@@ -192,7 +213,9 @@ def check_invariants(settings: Settings, dropped: set[str]) -> None:
     with Ledger(settings.ledger) as ledger:
         assert ledger.integrity_ok()
         rows = ledger.inputs_in_state("archived", "quarantined", "duplicate")
-        assert sorted(Path(r.final_path).name for r in rows if r.final_path) == sorted(p.name for p in finals)
+        assert sorted(Path(r.final_path).name for r in rows if r.final_path) == sorted(
+            p.name for p in finals
+        )
         assert not ledger.inputs_in_state("claimed", "judged", "published")
         for mail in ledger.mail_in_state("sent"):
             if mail.attachment_path:

@@ -16,7 +16,10 @@ pytestmark = pytest.mark.slow
 def test_station_demo_accounts_for_every_file(tmp_path: Path) -> None:
     out = subprocess.run(
         [sys.executable, "-m", "pipeline", "demo", str(tmp_path / "demo")],
-        cwd=REPO, capture_output=True, text=True, timeout=900,
+        cwd=REPO,
+        capture_output=True,
+        text=True,
+        timeout=900,
     )
     assert out.returncode == 0, out.stdout[-3000:] + out.stderr[-3000:]
     assert "every file accounted for: 23 of 23" in out.stdout
@@ -26,10 +29,15 @@ def test_station_demo_accounts_for_every_file(tmp_path: Path) -> None:
     assert list((root / "mail").glob("*.eml"))
 
 
-def test_batch_demo_gives_every_invented_defect_a_fail_and_every_normal_cell_a_pass(tmp_path: Path) -> None:
+def test_batch_demo_gives_every_invented_defect_a_fail_and_every_normal_cell_a_pass(
+    tmp_path: Path,
+) -> None:
     out = subprocess.run(
         [sys.executable, "-m", "pipeline", "demo", "--batch", str(tmp_path / "batch")],
-        cwd=REPO, capture_output=True, text=True, timeout=900,
+        cwd=REPO,
+        capture_output=True,
+        text=True,
+        timeout=900,
     )
     assert out.returncode == 0, out.stdout[-3000:] + out.stderr[-3000:]
     assert "21 file(s): 13 pass, 8 fail, 0 hold, 0 error" in out.stdout

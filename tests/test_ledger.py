@@ -920,7 +920,7 @@ def test_a_version_1_ledger_is_upgraded_in_place_and_keeps_its_rows(tmp_path: Pa
         conn.close()
     with Ledger(path, now=T0) as ledger:
         assert [name for name, _ in applied_migrations(ledger._conn)] == [m.name for m in MIGRATIONS]
-        row, _ = claim(ledger, "cell one", "c1.csv")
+        claim(ledger, "cell one", "c1.csv")
         sha = "a" * 64
         ledger.remember_text(kind="rule_set", sha256=sha, name="x.toml", text="[rule_set]", now=T0)
         ledger.remember_text(kind="rule_set", sha256=sha, name="x.toml", text="[rule_set]", now=T0)

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -21,7 +20,9 @@ def measured(trace: Trace, **kw):
 def test_constant_current_step_capacity_equals_current_times_time() -> None:
     # Coulomb counting / Faraday's law: Q = I t; 1 Ah = 3600 C (SI definition of the coulomb)
     i_a, duration_s = 2.5, 7200.0
-    trace = build_trace([rest(600.0, 3.3), cc(duration_s, -i_a, lambda q: 3.3 + 0 * q), rest(600.0, 3.2)], dt_s=1.0)
+    trace = build_trace(
+        [rest(600.0, 3.3), cc(duration_s, -i_a, lambda q: 3.3 + 0 * q), rest(600.0, 3.2)], dt_s=1.0
+    )
     seg = split_steps(trace, 0.01)
     discharge = [s for s in seg.steps if s.kind.value == "discharge"]
     assert len(discharge) == 1
@@ -30,7 +31,9 @@ def test_constant_current_step_capacity_equals_current_times_time() -> None:
 
 
 def test_every_metric_is_measured_on_a_complete_formation_record() -> None:
-    m = measured(build_trace(simple_formation(capacity_ah=2.0, ice=0.9, r_ohm=0.05, drift_v_per_h=-0.002)))
+    m = measured(
+        build_trace(simple_formation(capacity_ah=2.0, ice=0.9, r_ohm=0.05, drift_v_per_h=-0.002))
+    )
     assert set(m.values) == set(METRIC_NAMES)
     v = m.values
     assert v["cycle_count"] == 2
@@ -41,7 +44,9 @@ def test_every_metric_is_measured_on_a_complete_formation_record() -> None:
     assert v["rest_voltage_drift_mV_per_h"] == pytest.approx(-2.0, rel=1e-6)
     assert v["max_temperature_C"] == 25.0
     assert v["grading_cv_duration_s"] > 0
-    assert v["grading_mean_voltage_V"] == pytest.approx(3.3 - 0.05, abs=0.01)  # mean of 3.0-3.6 V minus I R
+    assert v["grading_mean_voltage_V"] == pytest.approx(
+        3.3 - 0.05, abs=0.01
+    )  # mean of 3.0-3.6 V minus I R
     assert v["plateau_count"] == 0  # a straight 0.6 V slope has no plateau
     assert m.cycles[0].coulombic_efficiency == pytest.approx(v["first_cycle_efficiency"])
 
@@ -49,7 +54,9 @@ def test_every_metric_is_measured_on_a_complete_formation_record() -> None:
 def test_energy_over_capacity_is_mean_discharge_voltage() -> None:
     m = measured(build_trace(simple_formation()))
     for c in m.cycles:
-        assert c.mean_discharge_voltage_v == pytest.approx(c.discharge_energy_wh / c.discharge_capacity_ah)
+        assert c.mean_discharge_voltage_v == pytest.approx(
+            c.discharge_energy_wh / c.discharge_capacity_ah
+        )
 
 
 def test_missing_final_rest_gives_no_drift_and_a_note() -> None:
@@ -78,13 +85,17 @@ def test_no_temperature_column_leaves_temperature_unmeasured() -> None:
     dt_s=st.sampled_from([1.0, 5.0, 10.0]),
     seed=st.integers(0, 1000),
 )
-def test_capacities_unchanged_by_noise_and_sampling(capacity: float, ice: float, dt_s: float, seed: int) -> None:
+def test_capacities_unchanged_by_noise_and_sampling(
+    capacity: float, ice: float, dt_s: float, seed: int
+) -> None:
     """Grading capacity and ICE within 0.5 % whatever the sampling (1-10 s) and 1 mV noise."""
     phases = simple_formation(capacity_ah=capacity, ice=ice, final_rest_s=3000.0)
     clean = measured(build_trace(phases, dt_s=1.0)).values
     noisy = measured(build_trace(phases, dt_s=dt_s, noise_v=1e-3, seed=seed)).values
     assert noisy["grading_capacity_Ah"] == pytest.approx(clean["grading_capacity_Ah"], rel=5e-3)
-    assert noisy["first_cycle_efficiency"] == pytest.approx(clean["first_cycle_efficiency"], rel=5e-3)
+    assert noisy["first_cycle_efficiency"] == pytest.approx(
+        clean["first_cycle_efficiency"], rel=5e-3
+    )
 
 
 def test_sampling_coarser_than_the_dcir_pulse_gives_no_dcir_and_a_note() -> None:

@@ -16,7 +16,9 @@ from pipeline.plateaus import find_plateaus, resample_uniform
 
 T_K = 298.15
 RT = constants.R * T_K  # J/mol; scipy.constants (CODATA 2018)
-F = constants.physical_constants["Faraday constant"][0]  # C/mol; scipy.constants, exact in the 2019 SI
+F = constants.physical_constants["Faraday constant"][
+    0
+]  # C/mol; scipy.constants, exact in the 2019 SI
 X0, X1 = 0.002, 0.998  # composition range the simulated discharge sweeps
 
 
@@ -81,20 +83,35 @@ def _hull_slopes(omega: float) -> tuple[np.ndarray, np.ndarray]:
     return 0.5 * (hx[1:] + hx[:-1]), slope
 
 
-def discharge_of(v_of_x, *, dt_s: float, capacity_ah: float = 10.0, current_a: float = 2.0,
-                 noise_v: float = 0.0, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
+def discharge_of(
+    v_of_x,
+    *,
+    dt_s: float,
+    capacity_ah: float = 10.0,
+    current_a: float = 2.0,
+    noise_v: float = 0.0,
+    seed: int = 0,
+) -> tuple[np.ndarray, np.ndarray]:
     """A constant-current discharge sweeping x from X0 to X1: q in % and V samples."""
     duration = capacity_ah / current_a * 3600.0
     t = np.arange(0.0, duration + dt_s / 2, dt_s)
     x = X0 + (X1 - X0) * t / duration
-    v = v_of_x(x) + np.random.default_rng(seed).normal(0.0, noise_v, len(t)) if noise_v else v_of_x(x)
+    v = (
+        v_of_x(x) + np.random.default_rng(seed).normal(0.0, noise_v, len(t))
+        if noise_v
+        else v_of_x(x)
+    )
     return 100.0 * t / duration, v
 
 
-SETTINGS = PlateauSettings(flatness_mv_per_pct=5.0, min_length_pct=5.0, merge_gap_pct=1.0, smoothing_pct=3.0)
+SETTINGS = PlateauSettings(
+    flatness_mv_per_pct=5.0, min_length_pct=5.0, merge_gap_pct=1.0, smoothing_pct=3.0
+)
 
 
-def test_regular_solution_plateau_sits_at_the_common_tangent_and_spans_the_miscibility_gap() -> None:
+def test_regular_solution_plateau_sits_at_the_common_tangent_and_spans_the_miscibility_gap() -> (
+    None
+):
     omega = 4 * RT  # REFERENCE.md 4.3: Omega = 4RT gives binodal 0.0212 / 0.9788 [derived]
     a, b, mu = common_tangent(omega)
     assert (a, b) == (pytest.approx(0.0212, abs=2e-4), pytest.approx(0.9788, abs=2e-4))
@@ -111,7 +128,9 @@ def test_regular_solution_plateau_sits_at_the_common_tangent_and_spans_the_misci
     assert p.end_pct == pytest.approx(expected_end, abs=1.5)
     assert p.length_ah == pytest.approx(p.length_pct / 100 * 10.0)
     # the flat plateau is the biggest dQ/dV peak, at the plateau voltage
-    assert min(found.ica_peaks_v, key=lambda pk: abs(pk - expected_v)) == pytest.approx(expected_v, abs=0.005)
+    assert min(found.ica_peaks_v, key=lambda pk: abs(pk - expected_v)) == pytest.approx(
+        expected_v, abs=0.005
+    )
 
 
 def test_ideal_solution_has_no_plateau() -> None:
@@ -123,14 +142,23 @@ def test_ideal_solution_has_no_plateau() -> None:
 # Published fits, transcribed here independently of pipeline.ocp (REFERENCE.md 5.1, 5.3, 5.5).
 def graphite_chen2020(x: np.ndarray) -> np.ndarray:
     # Chen et al., J. Electrochem. Soc. 167 (2020) 080534
-    return (1.9793 * np.exp(-39.3631 * x) + 0.2482 - 0.0909 * np.tanh(29.8538 * (x - 0.1234))
-            - 0.04478 * np.tanh(14.9159 * (x - 0.2769)) - 0.0205 * np.tanh(30.4444 * (x - 0.6103)))
+    return (
+        1.9793 * np.exp(-39.3631 * x)
+        + 0.2482
+        - 0.0909 * np.tanh(29.8538 * (x - 0.1234))
+        - 0.04478 * np.tanh(14.9159 * (x - 0.2769))
+        - 0.0205 * np.tanh(30.4444 * (x - 0.6103))
+    )
 
 
 def lfp_safari2011(y: np.ndarray) -> np.ndarray:
     # Safari & Delacourt, J. Electrochem. Soc. 158 (2011) A562
-    return (3.4323 - 0.8428 * np.exp(-80.2493 * (1 - y) ** 1.3198)
-            - 3.2474e-6 * np.exp(20.2645 * (1 - y) ** 3.8003) + 3.2482e-6 * np.exp(20.2646 * (1 - y) ** 3.7995))
+    return (
+        3.4323
+        - 0.8428 * np.exp(-80.2493 * (1 - y) ** 1.3198)
+        - 3.2474e-6 * np.exp(20.2645 * (1 - y) ** 3.8003)
+        + 3.2482e-6 * np.exp(20.2646 * (1 - y) ** 3.7995)
+    )
 
 
 def lfp_graphite_ocv(soc: np.ndarray) -> np.ndarray:
@@ -139,10 +167,14 @@ def lfp_graphite_ocv(soc: np.ndarray) -> np.ndarray:
 
 
 def test_published_fit_lfp_graphite_plateau_matches_the_flat_region_of_the_fit() -> None:
-    assert float(lfp_graphite_ocv(np.array(0.5))) == pytest.approx(3.2985, abs=1e-3)  # REFERENCE row 16
+    assert float(lfp_graphite_ocv(np.array(0.5))) == pytest.approx(
+        3.2985, abs=1e-3
+    )  # REFERENCE row 16
     # discharge from SOC 1 to 0 at negligible current
     q, v = discharge_of(lambda x: lfp_graphite_ocv(1 - (x - X0) / (X1 - X0)), dt_s=10.0)
-    s = PlateauSettings(flatness_mv_per_pct=3.0, min_length_pct=5.0, merge_gap_pct=1.0, smoothing_pct=3.0)
+    s = PlateauSettings(
+        flatness_mv_per_pct=3.0, min_length_pct=5.0, merge_gap_pct=1.0, smoothing_pct=3.0
+    )
     found = find_plateaus(q, v, 10.0, s)
     main = max(found.plateaus, key=lambda p: p.length_pct)
     # LFP/graphite full-cell mid-SOC OCV 3.30 +- 0.05 V (REFERENCE row 20, from memory + derived)
@@ -165,7 +197,9 @@ def test_plateaus_unchanged_by_sensor_noise_and_sampling_rate(seed: int, dt_s: f
     omega = 3 * RT  # REFERENCE.md row 22: binodal 0.0707 / 0.9293
     clean_q, clean_v = discharge_of(lambda x: equilibrium_potential(x, omega, 3.43), dt_s=1.0)
     reference = find_plateaus(clean_q, clean_v, 10.0, SETTINGS).plateaus
-    q, v = discharge_of(lambda x: equilibrium_potential(x, omega, 3.43), dt_s=dt_s, noise_v=1e-3, seed=seed)
+    q, v = discharge_of(
+        lambda x: equilibrium_potential(x, omega, 3.43), dt_s=dt_s, noise_v=1e-3, seed=seed
+    )
     noisy = find_plateaus(q, v, 10.0, SETTINGS).plateaus
     assert len(noisy) == len(reference) == 1
     for a, b in zip(noisy, reference, strict=True):
@@ -183,7 +217,9 @@ def test_short_flat_runs_are_dropped_and_close_runs_merge() -> None:
     v[(q >= 20) & (q <= 80)] = base
     v[(q > 50) & (q < 50.5)] = base - 0.02 * np.sin(np.pi * (q[(q > 50) & (q < 50.5)] - 50) / 0.5)
     v[q > 80] = base - 0.01 * (q[q > 80] - 80)
-    s = PlateauSettings(flatness_mv_per_pct=2.0, min_length_pct=5.0, merge_gap_pct=3.0, smoothing_pct=1.0)
+    s = PlateauSettings(
+        flatness_mv_per_pct=2.0, min_length_pct=5.0, merge_gap_pct=3.0, smoothing_pct=1.0
+    )
     found = find_plateaus(q, v, 1.0, s).plateaus
     assert len(found) == 1
     assert found[0].start_pct == pytest.approx(20, abs=1.0)
@@ -191,6 +227,8 @@ def test_short_flat_runs_are_dropped_and_close_runs_merge() -> None:
 
 
 def test_resample_uniform_averages_samples_in_each_cell() -> None:
-    grid, v = resample_uniform(np.array([0.0, 0.01, 50.0, 100.0]), np.array([1.0, 3.0, 5.0, 7.0]), 3)
+    grid, v = resample_uniform(
+        np.array([0.0, 0.01, 50.0, 100.0]), np.array([1.0, 3.0, 5.0, 7.0]), 3
+    )
     assert grid.tolist() == [0.0, 50.0, 100.0]
     assert v.tolist() == [2.0, 5.0, 7.0]

@@ -17,11 +17,22 @@ def test_formation_program_is_cut_into_its_steps() -> None:
     trace = build_trace(simple_formation())
     seg = split_steps(trace, rest_current_a=0.004)
     assert kinds_modes(seg) == [
-        ("rest", "none"), ("charge", "cc"), ("charge", "cv"), ("rest", "none"), ("discharge", "cc"),
-        ("rest", "none"), ("charge", "cc"), ("charge", "cv"), ("rest", "none"), ("discharge", "cc"),
+        ("rest", "none"),
+        ("charge", "cc"),
+        ("charge", "cv"),
+        ("rest", "none"),
+        ("discharge", "cc"),
+        ("rest", "none"),
+        ("charge", "cc"),
+        ("charge", "cv"),
+        ("rest", "none"),
+        ("discharge", "cc"),
         ("rest", "none"),
     ]
-    assert [(c.charge_steps, c.discharge_steps) for c in seg.cycles] == [((1, 2), (4,)), ((6, 7), (9,))]
+    assert [(c.charge_steps, c.discharge_steps) for c in seg.cycles] == [
+        ((1, 2), (4,)),
+        ((6, 7), (9,)),
+    ]
     assert seg.notes == ()
 
 
@@ -29,7 +40,7 @@ def test_steps_tile_the_trace_without_gaps() -> None:
     trace = build_trace(simple_formation(), dt_s=7.0)
     seg = split_steps(trace, 0.004)
     assert seg.steps[0].start == 0 and seg.steps[-1].stop == len(trace)
-    for a, b in zip(seg.steps, seg.steps[1:]):
+    for a, b in zip(seg.steps, seg.steps[1:], strict=False):
         assert a.stop == b.start and a.end_s == b.start_s
 
 
@@ -82,11 +93,22 @@ def test_program_cv_step_alone_is_recognised_as_cv() -> None:
     assert kinds_modes(seg) == [("charge", "cv")]
 
 
-def test_discharge_before_any_charge_belongs_to_no_cycle_and_trailing_charge_is_incomplete() -> None:
-    kinds = [StepKind.DISCHARGE, StepKind.REST, StepKind.CHARGE, StepKind.DISCHARGE, StepKind.CHARGE]
+def test_discharge_before_any_charge_belongs_to_no_cycle_and_trailing_charge_is_incomplete() -> (
+    None
+):
+    kinds = [
+        StepKind.DISCHARGE,
+        StepKind.REST,
+        StepKind.CHARGE,
+        StepKind.DISCHARGE,
+        StepKind.CHARGE,
+    ]
     from pipeline.model import Step
 
-    steps = [Step(k, kind, StepMode.CC, k, k + 1, k, k + 1, 1.0, 1.0, 0.0) for k, kind in enumerate(kinds)]
+    steps = [
+        Step(k, kind, StepMode.CC, k, k + 1, k, k + 1, 1.0, 1.0, 0.0)
+        for k, kind in enumerate(kinds)
+    ]
     cycles = group_cycles(steps)
     assert [(c.charge_steps, c.discharge_steps, c.complete) for c in cycles] == [
         ((2,), (3,), True),
@@ -100,6 +122,8 @@ def test_cycle_column_that_splits_a_discharge_is_noted() -> None:
     seg0 = split_steps(trace, 0.004)
     grading = seg0.steps[9]
     cycle[grading.start + 5 :] = 2
-    noted = Trace(trace.source, trace.metadata, trace.time_s, trace.voltage_v, trace.current_a, cycle=cycle)
+    noted = Trace(
+        trace.source, trace.metadata, trace.time_s, trace.voltage_v, trace.current_a, cycle=cycle
+    )
     seg = split_steps(noted, 0.004)
     assert [n.code for n in seg.notes] == ["cycle_column_disagrees"]

@@ -27,7 +27,9 @@ from tests.station_kit import (
 pytestmark = pytest.mark.slow
 
 
-def test_pass_and_fail_cells_are_judged_recorded_published_archived_and_mailed(tmp_path: Path) -> None:
+def test_pass_and_fail_cells_are_judged_recorded_published_archived_and_mailed(
+    tmp_path: Path,
+) -> None:
     s = make_station(tmp_path / "st")
     with running(s):
         drop(s.inboxes[0].folder, "good.csv", cycle_file("C-1"))
@@ -46,7 +48,9 @@ def test_pass_and_fail_cells_are_judged_recorded_published_archived_and_mailed(t
 
 
 def test_slow_writer_is_judged_once_after_it_is_complete(tmp_path: Path) -> None:
-    toml = station_toml(inboxes='[inbox.main]\nfolder = "inbox"\nhandover = "settle"\nsettle_s = 1.5\n')
+    toml = station_toml(
+        inboxes='[inbox.main]\nfolder = "inbox"\nhandover = "settle"\nsettle_s = 1.5\n'
+    )
     s = make_station(tmp_path / "st", toml)
     data = cycle_file("SLOW-1")
     with running(s):
@@ -63,7 +67,9 @@ def test_slow_writer_is_judged_once_after_it_is_complete(tmp_path: Path) -> None
     check_invariants(s, {"slow.csv"})
 
 
-def test_marker_handover_waits_for_the_marker_and_a_lone_marker_is_quarantined(tmp_path: Path) -> None:
+def test_marker_handover_waits_for_the_marker_and_a_lone_marker_is_quarantined(
+    tmp_path: Path,
+) -> None:
     inbox = '[inbox.main]\nfolder = "inbox"\nhandover = "marker"\norphan_marker_s = 1.0\n'
     s = make_station(tmp_path / "st", station_toml(inboxes=inbox))
     folder = s.inboxes[0].folder
@@ -73,9 +79,16 @@ def test_marker_handover_waits_for_the_marker_and_a_lone_marker_is_quarantined(t
         time.sleep(2.5)
         assert (folder / "waits.csv").exists(), "data without its marker is never claimed"
         (folder / "waits.csv.done").write_bytes(b"")
-        wait_until(lambda: not (folder / "waits.csv").exists() and settled(s, 1), what="marker file judged")
-        wait_until(lambda: (s.quarantine / "ghost.csv.done").exists(), what="lone marker quarantined")
-    assert "marker file without its data file" in (s.quarantine / "ghost.csv.done.reason.txt").read_text()
+        wait_until(
+            lambda: not (folder / "waits.csv").exists() and settled(s, 1), what="marker file judged"
+        )
+        wait_until(
+            lambda: (s.quarantine / "ghost.csv.done").exists(), what="lone marker quarantined"
+        )
+    assert (
+        "marker file without its data file"
+        in (s.quarantine / "ghost.csv.done.reason.txt").read_text()
+    )
     archived = sorted(p.name for p in s.archive.rglob("*") if p.is_file())
     assert archived == ["000001_waits.csv", "000001_waits.csv.done"]
 
@@ -106,7 +119,9 @@ def test_bad_file_is_quarantined_with_a_reason_and_the_station_goes_on(tmp_path:
     check_invariants(s, {"bad.csv", "good.csv"})
 
 
-def test_same_bytes_again_are_a_duplicate_and_new_bytes_under_an_old_name_a_new_version(tmp_path: Path) -> None:
+def test_same_bytes_again_are_a_duplicate_and_new_bytes_under_an_old_name_a_new_version(
+    tmp_path: Path,
+) -> None:
     s = make_station(tmp_path / "st")
     first = cycle_file("D-1", seed=1)
     with running(s):
@@ -119,7 +134,9 @@ def test_same_bytes_again_are_a_duplicate_and_new_bytes_under_an_old_name_a_new_
     with Ledger(s.ledger) as ledger:
         rows = sorted(ledger.inputs_in_state("archived", "duplicate"), key=lambda r: r.id)
         assert [(r.name, r.state, r.version) for r in rows] == [
-            ("d.csv", "archived", 1), ("copy.csv", "duplicate", 1), ("d.csv", "archived", 2),
+            ("d.csv", "archived", 1),
+            ("copy.csv", "duplicate", 1),
+            ("d.csv", "archived", 2),
         ]
         results = ledger.recent_results(10)
         assert len(results) == 2  # the duplicate was not judged
@@ -136,7 +153,9 @@ def test_files_dropped_while_the_station_is_stopped_are_judged_after_start(tmp_p
     check_invariants(s, {f"early-{k}.csv" for k in range(3)})
 
 
-def test_broken_rules_edit_keeps_the_last_good_rules_and_alerts_with_file_and_line(tmp_path: Path) -> None:
+def test_broken_rules_edit_keeps_the_last_good_rules_and_alerts_with_file_and_line(
+    tmp_path: Path,
+) -> None:
     s = make_station(tmp_path / "st")
     rules = s.rules_dir / "test_cells.toml"
     with running(s):
@@ -146,11 +165,24 @@ def test_broken_rules_edit_keeps_the_last_good_rules_and_alerts_with_file_and_li
         time.sleep(1.5)
         drop(s.inboxes[0].folder, "after.csv", cycle_file("R-2", seed=3))
         wait_until(lambda: settled(s, 2), what="cell judged with the last good rules")
-        wait_until(lambda: any("rules edit refused" in p.read_text(errors="replace") for p in s.mail.glob("*.eml")),
-                   what="alert mail")
-    alert = next(p for p in s.mail.glob("*.eml") if "rules edit refused" in p.read_text(errors="replace"))
-    body = email.message_from_bytes(alert.read_bytes(), policy=email.policy.default).get_body().get_content()
-    assert f"{rules}, line 16: unknown key 'lowe' in [check.capacity].\n  Did you mean 'low'?" in body.replace("\r\n", "\n")
+        wait_until(
+            lambda: any(
+                "rules edit refused" in p.read_text(errors="replace") for p in s.mail.glob("*.eml")
+            ),
+            what="alert mail",
+        )
+    alert = next(
+        p for p in s.mail.glob("*.eml") if "rules edit refused" in p.read_text(errors="replace")
+    )
+    body = (
+        email.message_from_bytes(alert.read_bytes(), policy=email.policy.default)
+        .get_body()
+        .get_content()
+    )
+    assert (
+        f"{rules}, line 16: unknown key 'lowe' in [check.capacity].\n  Did you mean 'low'?"
+        in body.replace("\r\n", "\n")
+    )
     with Ledger(s.ledger) as ledger:
         verdicts = sorted(r.verdict for r in ledger.recent_results(10))
     assert verdicts == ["pass", "pass"]
@@ -199,7 +231,9 @@ def test_threads_and_worker_processes_are_gone_after_stop(tmp_path: Path) -> Non
     assert left == []
 
 
-def test_oversized_and_decompression_bomb_files_are_quarantined_and_the_station_goes_on(tmp_path: Path) -> None:
+def test_oversized_and_decompression_bomb_files_are_quarantined_and_the_station_goes_on(
+    tmp_path: Path,
+) -> None:
     import gzip
 
     toml = station_toml(extra="max_input_MB = 0.5\nmax_uncompressed_MB = 2.0\n")

@@ -54,7 +54,7 @@ def test_killed_at_a_fault_point_a_restart_completes_the_work(tmp_path: Path, po
         assert len(ids) == len(set(ids))
 
 
-def _outbox_empty(s) -> bool:  # noqa: ANN001
+def _outbox_empty(s) -> bool:
     with Ledger(s.ledger) as ledger:
         return ledger.outbox_counts().get("pending", 0) == 0 and not ledger.pending_digest_lots()
 
@@ -66,8 +66,13 @@ def test_random_kills_never_lose_or_double_judge_a_file(tmp_path: Path) -> None:
     for round_no in range(6):
         for k in range(3):
             name = f"r{round_no}-{k}.csv"
-            drop(s.inboxes[0].folder, name, cycle_file(f"RK-{round_no}-{k}", seed=round_no * 10 + k,
-                                                       capacity_ah=1.5 if k == 2 else 2.0))
+            drop(
+                s.inboxes[0].folder,
+                name,
+                cycle_file(
+                    f"RK-{round_no}-{k}", seed=round_no * 10 + k, capacity_ah=1.5 if k == 2 else 2.0
+                ),
+            )
             dropped.add(name)
         proc = start_watch(s.root)
         time.sleep(rng.uniform(0.5, 4.0))
@@ -75,7 +80,9 @@ def test_random_kills_never_lose_or_double_judge_a_file(tmp_path: Path) -> None:
         stop_watch(proc)
     final = start_watch(s.root)
     try:
-        wait_until(lambda: settled(s, len(dropped)), timeout_s=240, what="all files after the kills")
+        wait_until(
+            lambda: settled(s, len(dropped)), timeout_s=240, what="all files after the kills"
+        )
         wait_until(lambda: _outbox_empty(s), timeout_s=60, what="outbox drained")
     finally:
         assert stop_watch(final) == 0
@@ -98,7 +105,9 @@ def test_outbox_survives_three_restarts_without_duplicates(tmp_path: Path) -> No
     mails = sorted(p.name for p in s.mail.glob("*.eml"))
     with Ledger(s.ledger) as ledger:
         sent = ledger.mail_in_state("sent")
-    assert len(sent) == len({m.message_id for m in sent}) == len(mails) == 3  # three failure letters
+    assert (
+        len(sent) == len({m.message_id for m in sent}) == len(mails) == 3
+    )  # three failure letters
 
 
 def test_a_burst_of_500_files_all_reach_a_final_state_once(tmp_path: Path) -> None:
