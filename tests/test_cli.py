@@ -1,0 +1,468 @@
+"""The command line end to end: main(argv) on real files in temporary folders, whole lines checked."""
+
+from __future__ import annotations
+
+import functools
+import json
+import shutil
+from pathlib import Path
+
+import jsonschema
+import pypdf
+import pytest
+
+from pipeline import __version__
+from pipeline.cli import EXIT_BUG, _report_bug, main
+from pipeline.demo import DEMO_CELLS, demo_file_bytes, demo_metadata, demo_record
+from pipeline.names import safe_name
+from pipeline.result import schema_text
+from pipeline.synth import to_cycle_file
+from tests.conftest import REPO, RULES_DIR
+
+RULES = str(RULES_DIR)
+ANALYSED_AT = "2026-12-01T08:00:00+00:00"
+GOOD, HIGH_DCIR, HOT = DEMO_CELLS[0], DEMO_CELLS[10], DEMO_CELLS[13]
+assert (GOOD.defect, HIGH_DCIR.defect, HOT.defect) == ("", "high_dcir", "over_temperature")
+
+GOOD_LINE = "L01-001  pass  all checks in window"
+HIGH_DCIR_LINE = (
+    "L01-011  fail  DC internal resistance too high: check welds, tabs and contacts "
+    "(dcir_mOhm = 11.92 mOhm; window at most 8 mOhm)"
+)
+HOT_LINE = (
+    "L01-014  fail  Cell warmer than 45 °C during formation (max_temperature_C = 62.74 °C; "
+    "window at most 45 °C); Cell hotter than 60 °C during formation "
+    "(max_temperature_C = 62.74 °C; window at most 60 °C) [hazard: over_temperature]"
+)
+
+
+@functools.cache
+def _cell_text(index: int, **metadata: str) -> str:
+    """The demo cell's cycle file as text, with some metadata replaced (simulated once per cell)."""
+    cell = DEMO_CELLS[index]
+    return to_cycle_file(demo_record(cell), {**demo_metadata(cell), **metadata})
+
+
+@functools.cache
+def _cell_bytes(index: int) -> bytes:
+    return demo_file_bytes(DEMO_CELLS[index])
+
+
+def write_cell(folder: Path, index: int, name: str | None = None) -> Path:
+    """Write demo cell ``index`` of DEMO_CELLS into ``folder``; return its path."""
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / (name or DEMO_CELLS[index].file_name)
+    path.write_bytes(_cell_bytes(index))
+    return path
+
+
+def write_bad_row(folder: Path) -> Path:
+    """A good cell's file with one voltage that is not a number, on line 21, column 2."""
+    lines = _cell_bytes(0).decode("utf-8").split("\n")
+    assert lines[20].startswith("120.0,1.99998,")
+    lines[20] = lines[20].replace(",", ",x", 1)
+    path = folder / "bad-row.csv"
+    path.write_text("\n".join(lines), encoding="utf-8")
+    return path
+
+
+BAD_ROW_LINES = [
+    "{path}  error  {path}, line 21, column 2: voltage_V is 'x1.99998', not a number.",
+    "    Fix the value, or leave it empty if it is missing.",
+]
+
+
+def files_under(folder: Path) -> dict[Path, bytes]:
+    return {p.relative_to(folder): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+# ---- check -----------------------------------------------------------------------------------
+
+
+def test_check_good_cell_passes_with_one_line(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = write_cell(tmp_path, 0)
+    assert main(["check", str(path), "--rules", RULES, "--analysed-at", ANALYSED_AT]) == 0
+    out, err = capsys.readouterr()
+    assert out == GOOD_LINE + "\n"
+    assert err == ""
+
+
+@pytest.mark.parametrize(("index", "line"), [(10, HIGH_DCIR_LINE), (13, HOT_LINE)])
+def test_check_failed_cell_exits_1_with_its_reason(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], index: int, line: str
+) -> None:
+    path = write_cell(tmp_path, index)
+    assert main(["check", str(path), "--rules", RULES, "--analysed-at", ANALYSED_AT]) == 1
+    assert capsys.readouterr() == (line + "\n", "")
+
+
+def test_check_bad_file_exits_2_with_located_error(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    path = write_bad_row(tmp_path)
+    assert main(["check", str(path), "--rules", RULES, "--analysed-at", ANALYSED_AT]) == 2
+    out, err = capsys.readouterr()
+    assert out.splitlines() == [line.format(path=path) for line in BAD_ROW_LINES]
+    assert err == ""
+
+
+def test_check_missing_file_exits_2_naming_it(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = tmp_path / "not-there.csv"
+    assert main(["check", str(path), "--rules", RULES, "--analysed-at", ANALYSED_AT]) == 2
+    assert capsys.readouterr().out.splitlines() == [
+        f"{path}  error  {path}: cannot read the file (No such file or directory).",
+        "    Check the path and its permissions.",
+    ]
+
+
+@pytest.mark.parametrize(
+    ("kinds", "expected"),
+    [
+        (("pass", "fail"), 1),
+        (("fail", "pass"), 1),
+        (("pass", "error"), 2),
+        (("error", "fail", "pass"), 2),
+        (("fail", "error"), 2),
+    ],
+)
+def test_check_worst_outcome_wins(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], kinds: tuple[str, ...], expected: int
+) -> None:
+    # cli.py: 0 every cell passed, 1 a cell failed or was held, 2 a file could not be judged
+    makers = {
+        "pass": lambda: write_cell(tmp_path, 0),
+        "fail": lambda: write_cell(tmp_path, 10),
+        "error": lambda: write_bad_row(tmp_path),
+    }
+    paths = [makers[kind]() for kind in kinds]
+    argv = ["check", *map(str, paths), "--rules", RULES, "--analysed-at", ANALYSED_AT, "--no-pdf"]
+    assert main(argv) == expected
+    lines = capsys.readouterr().out.splitlines()
+    verdicts = [line.split("  ")[1] for line in lines if not line.startswith(" ")]
+    assert verdicts == list(kinds)  # one line per file, in the order given
+
+
+def test_check_with_import_profile(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """A cycle file in the shipped tab-separated layout (ms, mA, '//' metadata) reads as v1 does."""
+    head, _, body = _cell_text(0).rpartition("time_s,")
+    rows = [line.split(",") for line in ("time_s," + body).strip().split("\n")]
+    assert rows[0] == ["time_s", "voltage_V", "current_A", "temperature_C", "step", "cycle"]
+    text = "".join("//" + line[1:] + "\n" for line in head.strip().split("\n"))
+    text += "t_ms\tU_V\tI_mA\tT_degC\n"
+    for t, v, i, temp, *_ in rows[1:]:
+        text += f"{float(t) * 1000:.0f}\t{v}\t{float(i) * 1000:.2f}\t{temp}\n"
+    path = tmp_path / "tab-log.txt"
+    path.write_text(text, encoding="utf-8")
+    profile = RULES_DIR / "profiles" / "tab_separated_ms.toml"
+    argv = ["check", str(path), "--rules", RULES, "--profile", str(profile), "--analysed-at", ANALYSED_AT]
+    assert main(argv) == 0
+    assert capsys.readouterr() == (GOOD_LINE + "\n", "")
+
+
+def test_check_out_twice_gives_identical_files_that_match_the_schema(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    inbox = tmp_path / "inbox"
+    paths = [write_cell(inbox, 0), write_cell(inbox, 13)]
+    for out in ("out1", "out2"):
+        argv = ["check", *map(str, paths), "--rules", RULES, "--out", str(tmp_path / out)]
+        assert main([*argv, "--analysed-at", ANALYSED_AT]) == 1
+    assert capsys.readouterr() == (f"{GOOD_LINE}\n{HOT_LINE}\n" * 2, "")
+    first, second = files_under(tmp_path / "out1"), files_under(tmp_path / "out2")
+    assert sorted(map(str, first)) == [
+        "certificates/DEMO-LOT-01/L01-001.pdf",
+        "certificates/DEMO-LOT-01/L01-014.pdf",
+        "results/DEMO-LOT-01/L01-001.json",
+        "results/DEMO-LOT-01/L01-014.json",
+    ]
+    assert first == second
+
+    schema_file = REPO / "docs" / "result.schema.json"
+    assert schema_file.read_text(encoding="utf-8") == schema_text(), (
+        "run: python -m pipeline.result > docs/result.schema.json"
+    )
+    validator = jsonschema.Draft202012Validator(json.loads(schema_text()))
+    for name in ("L01-001", "L01-014"):
+        document = json.loads(first[Path(f"results/DEMO-LOT-01/{name}.json")])
+        validator.validate(document)
+        assert document["cell"]["cell_id"] == name
+        assert document["analysed_at"] == ANALYSED_AT
+
+
+def test_check_no_pdf_writes_json_only(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = write_cell(tmp_path / "inbox", 0)
+    argv = ["check", str(path), "--rules", RULES, "--out", str(tmp_path / "out"), "--no-pdf"]
+    assert main([*argv, "--analysed-at", ANALYSED_AT]) == 0
+    assert list(files_under(tmp_path / "out")) == [Path("results/DEMO-LOT-01/L01-001.json")]
+
+
+def test_hostile_cell_ids_stay_literal_and_inside_out(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    html_id, climbing_id, climbing_lot = "<img src=file:///etc/passwd>", "../../etc/x", "../../lots"
+    run = tmp_path / "run"
+    inbox = run / "inbox"
+    inbox.mkdir(parents=True)
+    (inbox / "html.csv").write_text(_cell_text(0, cell_id=html_id), encoding="utf-8")
+    (inbox / "climb.csv").write_text(_cell_text(0, cell_id=climbing_id, lot=climbing_lot), encoding="utf-8")
+    before = files_under(tmp_path)
+    out = run / "out"
+    argv = ["check", str(inbox / "html.csv"), str(inbox / "climb.csv"), "--rules", RULES]
+    assert main([*argv, "--out", str(out), "--analysed-at", ANALYSED_AT]) == 0
+    assert capsys.readouterr() == (
+        f"{html_id}  pass  all checks in window\n{climbing_id}  pass  all checks in window\n",
+        "",
+    )
+
+    written = set(files_under(out))
+    assert written == {
+        Path("results/DEMO-LOT-01", f"{safe_name(html_id)}.json"),
+        Path("certificates/DEMO-LOT-01", f"{safe_name(html_id)}.pdf"),
+        Path("results", safe_name(climbing_lot), f"{safe_name(climbing_id)}.json"),
+        Path("certificates", safe_name(climbing_lot), f"{safe_name(climbing_id)}.pdf"),
+    }
+    for relative in written:
+        assert (out / relative).resolve().is_relative_to(out.resolve())
+    # nothing else appeared anywhere in the temporary folder, and nothing outside it
+    outside = {p: data for p, data in files_under(tmp_path).items() if not (tmp_path / p).is_relative_to(out)}
+    assert outside == before
+    assert not Path("/etc/x").exists()
+
+    for cell_id, lot in ((html_id, "DEMO-LOT-01"), (climbing_id, climbing_lot)):
+        pdf = out / "certificates" / safe_name(lot) / f"{safe_name(cell_id)}.pdf"
+        text = pypdf.PdfReader(pdf).pages[0].extract_text()
+        assert f"Cell ID {cell_id}" in text.splitlines()
+        document = json.loads((out / "results" / safe_name(lot) / f"{safe_name(cell_id)}.json").read_text())
+        assert (document["cell"]["cell_id"], document["cell"]["lot"]) == (cell_id, lot)
+
+
+def test_analysed_at_without_time_zone_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = write_cell(tmp_path, 0)
+    assert main(["check", str(path), "--rules", RULES, "--analysed-at", "2026-12-01T08:00:00"]) == 2
+    assert capsys.readouterr() == (
+        "",
+        "--analysed-at '2026-12-01T08:00:00' has no time zone.\n  Add one, e.g. 2026-12-01T08:00:00+00:00.\n",
+    )
+
+
+@pytest.mark.xfail(
+    strict=True,
+    raises=AssertionError,
+    reason="an --analysed-at that is not a time at all reaches the bug handler (exit 3); "
+    "_analysis_time should refuse it as a user error",
+)
+def test_analysed_at_that_is_not_a_time_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = write_cell(tmp_path, 0)
+    assert main(["check", str(path), "--rules", RULES, "--analysed-at", "yesterday"]) == 2
+
+
+@pytest.mark.xfail(
+    strict=True,
+    raises=AssertionError,
+    reason="a missing --profile file reaches the bug handler (exit 3); cmd_check should refuse it "
+    "as a user error naming the file",
+)
+def test_missing_profile_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = write_cell(tmp_path, 0)
+    argv = ["check", str(path), "--rules", RULES, "--profile", str(tmp_path / "none.toml")]
+    assert main([*argv, "--analysed-at", ANALYSED_AT]) == 2
+
+
+@pytest.mark.xfail(
+    strict=True,
+    raises=AssertionError,
+    reason="--out naming a file reaches the bug handler (exit 3); it is a user error",
+)
+def test_out_that_is_a_file_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = write_cell(tmp_path / "inbox", 0)
+    (tmp_path / "out").write_text("not a folder", encoding="utf-8")
+    argv = ["check", str(path), "--rules", RULES, "--out", str(tmp_path / "out")]
+    assert main([*argv, "--analysed-at", ANALYSED_AT]) == 2
+
+
+def test_check_with_broken_rules_exits_2_before_reading_files(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    rules = tmp_path / "rules"
+    rules.mkdir()
+    (rules / "broken.toml").write_text(BROKEN_RULES, encoding="utf-8")
+    path = write_cell(tmp_path, 0)
+    assert main(["check", str(path), "--rules", str(rules), "--analysed-at", ANALYSED_AT]) == 2
+    assert capsys.readouterr() == ("", broken_rules_message(rules / "broken.toml") + "\n")
+
+
+# ---- the bug path ----------------------------------------------------------------------------
+
+
+def test_bug_report_is_one_line_and_a_log(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # No command of formgate reaches this path on purpose, so it is given a real exception.
+    monkeypatch.setenv("FORMGATE_HOME", str(tmp_path / "home"))
+    try:
+        raise KeyError("missing")
+    except KeyError as exc:
+        assert _report_bug(exc) == EXIT_BUG
+    log = tmp_path / "home" / "formgate-crash.log"
+    assert capsys.readouterr() == (
+        "",
+        f"formgate: internal error: KeyError: 'missing'. This is a bug; details are in {log}.\n",
+    )
+    text = log.read_text(encoding="utf-8")
+    assert text.startswith(f"formgate {__version__}, Python ")
+    assert "Traceback (most recent call last):" in text
+    assert text.rstrip().endswith("KeyError: 'missing'")
+
+
+# ---- rules check -----------------------------------------------------------------------------
+
+BROKEN_RULES = """\
+[rule_set]
+name = "test-broken"
+revision = "1"
+chemistry = "LFP/graphite"
+
+[cell_type.TEST-BROKEN-1]
+nominal_capacity_Ah = 10.0
+
+[check.dcir]
+metric = "dcir_mOhm"
+low = 20.0
+high = 8.0
+severity = "reject"
+message = "DC resistance out of window."
+"""
+
+
+def broken_rules_message(path: Path) -> str:
+    return (
+        f"{path}, line 12: [check.dcir] high = 8.0 mOhm is below low = 20.0 mOhm.\n"
+        "  Swap the two values, or check that both are in milliohms."
+    )
+
+
+BROKEN_PROFILE = '[units]\ncurrent = "mA"\ncurrent_sign = "negative"\n'
+
+
+def broken_profile_message(path: Path) -> str:
+    return (
+        f'{path}, line 3: [units] current_sign = "negative" is not one of "charge positive", '
+        '"discharge positive".\n'
+        '  Use one of "charge positive", "discharge positive".'
+    )
+
+
+def test_rules_check_shipped_rules(capsys: pytest.CaptureFixture[str]) -> None:
+    rule_files = len(list(RULES_DIR.glob("*.toml")))
+    profiles = len(list((RULES_DIR / "profiles").glob("*.toml")))
+    assert profiles == 2
+    assert main(["rules", "check", RULES]) == 0
+    assert capsys.readouterr() == (
+        f"{RULES}: {rule_files} rule files and {profiles} import profiles, all valid\n",
+        "",
+    )
+
+
+def test_rules_check_broken_rule_file(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    rules = tmp_path / "rules"
+    shutil.copytree(RULES_DIR, rules)
+    (rules / "broken.toml").write_text(BROKEN_RULES, encoding="utf-8")
+    assert main(["rules", "check", str(rules)]) == 2
+    assert capsys.readouterr() == (
+        "",
+        broken_rules_message(rules / "broken.toml") + f"\n1 problem(s) found in {rules}\n",
+    )
+
+
+def test_rules_check_broken_profile(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    rules = tmp_path / "rules"
+    shutil.copytree(RULES_DIR, rules)
+    (rules / "profiles" / "lab.toml").write_text(BROKEN_PROFILE, encoding="utf-8")
+    assert main(["rules", "check", str(rules)]) == 2
+    assert capsys.readouterr() == (
+        "",
+        broken_profile_message(rules / "profiles" / "lab.toml") + f"\n1 problem(s) found in {rules}\n",
+    )
+
+
+def test_rules_check_reports_every_problem_of_rules_and_profiles(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    rules = tmp_path / "rules"
+    (rules / "profiles").mkdir(parents=True)
+    (rules / "broken.toml").write_text(BROKEN_RULES, encoding="utf-8")
+    (rules / "profiles" / "a.toml").write_text(BROKEN_PROFILE, encoding="utf-8")
+    (rules / "profiles" / "b.toml").write_bytes(b'[file]\nencoding = "caf\xe9"\n')
+    (rules / "profiles" / "notes.txt").write_text("not a profile", encoding="utf-8")
+    assert main(["rules", "check", str(rules)]) == 2
+    assert capsys.readouterr().err.splitlines() == [
+        *broken_rules_message(rules / "broken.toml").splitlines(),
+        *broken_profile_message(rules / "profiles" / "a.toml").splitlines(),
+        f"{rules / 'profiles' / 'b.toml'}, line 2, column 16: not UTF-8 text.",
+        "  Save the file with UTF-8 encoding.",
+        f"3 problem(s) found in {rules}",
+    ]
+
+
+def test_rules_check_without_profiles_folder(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    rules = tmp_path / "rules"
+    rules.mkdir()
+    shutil.copy(RULES_DIR / "lfp_graphite.toml", rules)
+    assert main(["rules", "check", str(rules)]) == 0
+    assert capsys.readouterr() == (f"{rules}: 1 rule file, all valid\n", "")
+
+
+def test_rules_check_missing_folder(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    folder = tmp_path / "nowhere"
+    assert main(["rules", "check", str(folder)]) == 2
+    assert capsys.readouterr() == (
+        "",
+        f"{folder}: rule folder not found.\n"
+        "  Create it, or give the folder that holds the rule files.\n"
+        f"1 problem(s) found in {folder}\n",
+    )
+
+
+# ---- init and --version ----------------------------------------------------------------------
+
+
+def test_init_creates_a_station_once(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    station = tmp_path / "station"
+    assert main(["init", str(station)]) == 0
+    out, err = capsys.readouterr()
+    created = sum(1 for _ in station.rglob("*")) + 1  # the station folder itself
+    assert out.splitlines() == [
+        f"station created in {station} ({created} files and folders)",
+        f"  edit {station / 'station.toml'}, then run: formgate watch {station}",
+    ]
+    assert err == ""
+    assert (station / "station.toml").is_file()
+    for shipped in [*RULES_DIR.glob("*.toml"), *RULES_DIR.glob("profiles/*.toml")]:
+        copy = station / "rules" / shipped.relative_to(RULES_DIR)
+        assert copy.read_bytes() == shipped.read_bytes()
+    # the copied rules and profiles are valid as they stand
+    assert main(["rules", "check", str(station / "rules")]) == 0
+    capsys.readouterr()
+
+    station_toml = (station / "station.toml").read_bytes()
+    assert main(["init", str(station)]) == 2
+    assert capsys.readouterr() == (
+        "",
+        f"{station / 'station.toml'}: a station file is already there.\n"
+        "  formgate init never overwrites a station file: edit it, or give another folder.\n",
+    )
+    assert (station / "station.toml").read_bytes() == station_toml
+
+
+def test_version(capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit) as exit_info:
+        main(["--version"])
+    assert exit_info.value.code == 0
+    assert capsys.readouterr() == (f"formgate {__version__}\n", "")
+
+
+def test_unknown_option_is_a_usage_error(capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit) as exit_info:
+        main(["check", "--colour", "x.csv"])
+    assert exit_info.value.code == 2
+    assert capsys.readouterr().err.splitlines()[-1] == ("formgate: error: unrecognized arguments: --colour")
