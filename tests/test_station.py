@@ -260,3 +260,21 @@ def test_a_cell_that_takes_too_long_is_stopped_and_quarantined(tmp_path: Path) -
         wait_until(lambda: settled(s, 1), what="timed-out file final")
     reason = next(s.quarantine.glob("*.reason.txt")).read_text()
     assert "judging took longer than task_timeout_s = 0.05 s; the file was not judged." in reason
+
+
+def test_polling_inbox_and_status_report(tmp_path: Path) -> None:
+    import datetime
+
+    from pipeline.status import status_text
+
+    inbox = '[inbox.share]\nfolder = "inbox"\nhandover = "rename"\nwatch = "polling"\npoll_interval_s = 0.3\n'
+    s = make_station(tmp_path / "st", station_toml(inboxes=inbox))
+    with running(s):
+        drop(s.inboxes[0].folder, "p.csv", cycle_file("P-9", capacity_ah=1.5))
+        wait_until(lambda: settled(s, 1), what="file in a polled inbox judged")
+        report = status_text(s, datetime.datetime.now(datetime.UTC))
+        assert report.startswith("station test-station: running")
+    assert "today (UTC): 0 pass, 1 fail, 0 hold, 0 error, 0 duplicate" in report
+    assert "P-9  lot LOT-A  fail  hazard: abnormal_capacity" in report
+    assert "ledger integrity: ok" in report
+    assert "share (" in report and "0 file(s) waiting" in report
