@@ -293,7 +293,9 @@ def build_parser() -> argparse.ArgumentParser:
         epilog="example: formgate rules check rules/",
     )
     rules_check.add_argument(
-        "folder", help="folder holding the rule files (and a profiles/ folder, if any)"
+        "folder",
+        metavar="FOLDER",
+        help="folder holding the rule files (and a profiles/ folder, if any)",
     )
     rules_check.set_defaults(func=cmd_rules_check)
 
@@ -303,7 +305,7 @@ def build_parser() -> argparse.ArgumentParser:
         "of the rules.",
         epilog="example: formgate init station/",
     )
-    init.add_argument("folder", help="the station folder to create")
+    init.add_argument("folder", metavar="FOLDER", help="the station folder to create")
     init.set_defaults(func=cmd_init)
 
     watch = sub.add_parser(
@@ -311,7 +313,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Watch the inboxes, judge every finished file, record, publish and mail.",
         epilog="example: formgate watch station/",
     )
-    watch.add_argument("folder", help="the station folder (holding station.toml)")
+    watch.add_argument("folder", metavar="FOLDER", help="the station folder (holding station.toml)")
     watch.add_argument("--quiet", action="store_true", help="log to the log file only")
     watch.set_defaults(func=cmd_watch)
 
@@ -320,7 +322,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Report on a station without disturbing it.",
         epilog="example: formgate status station/",
     )
-    status.add_argument("folder", help="the station folder")
+    status.add_argument("folder", metavar="FOLDER", help="the station folder")
     status.set_defaults(func=cmd_status)
 
     mail = sub.add_parser("mail", help="work with the station's outbox",
@@ -331,7 +333,7 @@ def build_parser() -> argparse.ArgumentParser:
         description="Send every pending mail now instead of waiting for its next try.",
         epilog="example: formgate mail retry station/ --parked",
     )
-    retry.add_argument("folder", help="the station folder")
+    retry.add_argument("folder", metavar="FOLDER", help="the station folder")
     retry.add_argument(
         "--parked", action="store_true", help="also retry mail the server refused for good"
     )
@@ -347,7 +349,11 @@ def build_parser() -> argparse.ArgumentParser:
         "formgate demo --batch demo-output/",
     )
     demo.add_argument(
-        "folder", nargs="?", help="station folder to create (default: a new temporary folder)"
+        "folder",
+        nargs="?",
+        metavar="FOLDER",
+        help="station folder to create (default: a new temporary folder; with --batch, "
+        "demo-output)",
     )
     demo.add_argument(
         "--batch",
