@@ -31,7 +31,14 @@ def _analysis_time(
 ) -> datetime.datetime:
     """--analysed-at, else SOURCE_DATE_EPOCH (reproducible output), else now; UTC, whole seconds."""
     if text:
-        value = datetime.datetime.fromisoformat(text)
+        try:
+            value = datetime.datetime.fromisoformat(text)
+        except ValueError:
+            raise FormgateError(
+                f"--analysed-at {text!r} is not a date and time",
+                None,
+                "Write it in ISO 8601 with a time zone, e.g. 2026-12-01T08:00:00+00:00.",
+            ) from None
         if value.tzinfo is None:
             raise FormgateError(
                 f"--analysed-at {text!r} has no time zone",
@@ -98,33 +105,12 @@ def cmd_check(args: argparse.Namespace) -> int:
 
 def cmd_rules_check(args: argparse.Namespace) -> int:
     """Validate every rule file in a folder and every import profile in its profiles/."""
-    from pipeline.errors import ProfileError
-    from pipeline.model import SourceRef
-    from pipeline.readers.profile import load_profile
-    from pipeline.rulebook import check_rules_dir
+    from pipeline.rulebook import check_profiles_dir, check_rules_dir
 
     folder = Path(args.folder)
     problems: list[FormgateError] = list(check_rules_dir(folder))
     profiles = sorted(p for p in (folder / "profiles").glob("*.toml") if p.is_file())
-    for path in profiles:
-        try:
-            data = path.read_bytes()
-        except OSError as exc:
-            unreadable = f"cannot read the import profile ({exc.strerror})"
-            where = SourceRef(str(path))
-            problems.append(ProfileError(unreadable, where, "Check its permissions."))
-            continue
-        try:
-            # read as the station reads it: UTF-8, nothing else
-            load_profile(data.decode("utf-8"), str(path))
-        except UnicodeDecodeError as exc:
-            line = data[: exc.start].count(b"\n") + 1
-            column = exc.start - data.rfind(b"\n", 0, exc.start)  # in bytes, 1-based
-            where = SourceRef(str(path), line, column)
-            hint = "Save the file with UTF-8 encoding."
-            problems.append(ProfileError("not UTF-8 text", where, hint))
-        except ProfileError as error:
-            problems.append(error)
+    problems += check_profiles_dir(folder / "profiles")
     for problem in problems:
         print(problem, file=sys.stderr)
     if problems:
@@ -391,6 +377,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         return int(args.func(args))
     except FormgateError as exc:
         print(exc, file=sys.stderr)
+        return EXIT_USER
+    except OSError as exc:
+        # a missing file, a folder where a file belongs, no permission: the user's to fix
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"{where}{exc.strerror or exc}.\n  Check the path and its permissions.", file=sys.stderr)
         return EXIT_USER
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)

@@ -19,7 +19,7 @@ import tomllib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
-from pipeline.errors import InputError, RulesError
+from pipeline.errors import FormgateError, InputError, RulesError
 from pipeline.metricdefs import BY_NAME, METRIC_NAMES
 from pipeline.model import (
     CellType,
@@ -467,3 +467,29 @@ def load_rules_dir(path: pathlib.Path) -> RuleBook:
             raise text
         rule_sets.append(load_rule_set(text, str(file)))
     return RuleBook(tuple(rule_sets))
+
+
+def check_profiles_dir(folder: pathlib.Path) -> list[FormgateError]:
+    """Every problem of the import profiles (``*.toml``) in ``folder``, read as UTF-8 as the
+    station reads them; an absent folder has none."""
+    from pipeline.errors import ProfileError
+    from pipeline.readers.profile import load_profile
+
+    problems: list[FormgateError] = []
+    for path in sorted(p for p in folder.glob("*.toml") if p.is_file()):
+        try:
+            data = path.read_bytes()
+        except OSError as exc:
+            unreadable = f"cannot read the import profile ({exc.strerror})"
+            problems.append(ProfileError(unreadable, SourceRef(str(path)), "Check its permissions."))
+            continue
+        try:
+            load_profile(data.decode("utf-8"), str(path))
+        except UnicodeDecodeError as exc:
+            line = data[: exc.start].count(b"\n") + 1
+            column = exc.start - data.rfind(b"\n", 0, exc.start)  # in bytes, 1-based
+            where = SourceRef(str(path), line, column)
+            problems.append(ProfileError("not UTF-8 text", where, "Save the file with UTF-8 encoding."))
+        except ProfileError as error:
+            problems.append(error)
+    return problems

@@ -43,7 +43,13 @@ from pipeline.mail import (
 from pipeline.mailer import MailThread, outgoing
 from pipeline.model import CellResult, VerdictKind
 from pipeline.names import safe_name
-from pipeline.rulebook import RuleBook, check_rules_dir, load_rule_set, load_rules_dir
+from pipeline.rulebook import (
+    RuleBook,
+    check_profiles_dir,
+    check_rules_dir,
+    load_rule_set,
+    load_rules_dir,
+)
 from pipeline.settings import InboxSettings, Settings, choose_profile
 from pipeline.smtp import SmtpSettings
 from pipeline.worker import Output, Task, init_worker, run_task
@@ -96,12 +102,16 @@ class Station:
         """Load the rules folder if it changed; a broken edit keeps the last good rules in force."""
         folder = self.settings.rules_dir
         fingerprint = tuple(
-            (p.name, p.stat().st_size, p.stat().st_mtime_ns) for p in sorted(folder.glob("*.toml"))
+            (str(p), p.stat().st_size, p.stat().st_mtime_ns)
+            for p in sorted([*folder.glob("*.toml"), *folder.glob("profiles/*.toml")])
         )
         if fingerprint == self.rules_fingerprint and not first:
             return
         self.rules_fingerprint = fingerprint
-        problems = check_rules_dir(folder)
+        problems: list[FormgateError] = [
+            *check_rules_dir(folder),
+            *check_profiles_dir(folder / "profiles"),
+        ]
         if problems:
             text = "\n".join(str(p) for p in problems)
             if first or self.rulebook is None:

@@ -245,34 +245,24 @@ def test_analysed_at_without_time_zone_exits_2(tmp_path: Path, capsys: pytest.Ca
     )
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=AssertionError,
-    reason="an --analysed-at that is not a time at all reaches the bug handler (exit 3); "
-    "_analysis_time should refuse it as a user error",
-)
 def test_analysed_at_that_is_not_a_time_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     path = write_cell(tmp_path, 0)
     assert main(["check", str(path), "--rules", RULES, "--analysed-at", "yesterday"]) == 2
+    assert capsys.readouterr().err == (
+        "--analysed-at 'yesterday' is not a date and time.\n"
+        "  Write it in ISO 8601 with a time zone, e.g. 2026-12-01T08:00:00+00:00.\n"
+    )
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=AssertionError,
-    reason="a missing --profile file reaches the bug handler (exit 3); cmd_check should refuse it "
-    "as a user error naming the file",
-)
 def test_missing_profile_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     path = write_cell(tmp_path, 0)
     argv = ["check", str(path), "--rules", RULES, "--profile", str(tmp_path / "none.toml")]
     assert main([*argv, "--analysed-at", ANALYSED_AT]) == 2
+    assert capsys.readouterr().err == (
+        f"{tmp_path / 'none.toml'}: No such file or directory.\n  Check the path and its permissions.\n"
+    )
 
 
-@pytest.mark.xfail(
-    strict=True,
-    raises=AssertionError,
-    reason="--out naming a file reaches the bug handler (exit 3); it is a user error",
-)
 def test_out_that_is_a_file_exits_2(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     path = write_cell(tmp_path / "inbox", 0)
     (tmp_path / "out").write_text("not a folder", encoding="utf-8")
