@@ -370,7 +370,14 @@ def _report_bug(exc: BaseException) -> int:
     return EXIT_BUG
 
 
+# formgate's arrays are small and its parallelism is by process: one BLAS thread each
+# avoids thread hand-over costs that dominate small products on a busy machine.
+SINGLE_THREADED_MATH = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+
+
 def main(argv: Sequence[str] | None = None) -> int:
+    for key, value in SINGLE_THREADED_MATH.items():
+        os.environ.setdefault(key, value)  # before numpy is imported; a user's choice stands
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
