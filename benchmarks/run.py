@@ -1,0 +1,1027 @@
+"""Measures how fast formgate judges and certifies cells, and writes the table to docs/performance.md.
+
+Run it with `make bench` (about 8 minutes on 2 cores), or for a short look with
+``.venv/bin/python benchmarks/run.py --quick`` (about 3 minutes, not written to the
+docs). It invents its own cycle files of realistic size in a
+temporary folder, times every stage of the pipeline with several repeats, runs a
+real station on pre-filled inboxes, and watches the memory of a long-lived worker.
+Ratios are taken from measurements interleaved in the same run, so a busy machine
+slows both sides alike. benchmarks/README.md says what each row means.
+
+Only the standard library is imported at module level: the station's worker
+processes import this file as their main module when they start, and must not
+pay for anything the station itself would not import.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import datetime
+import gc
+import hashlib
+import json
+import math
+import os
+import platform
+import shutil
+import sqlite3
+import statistics
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+REPO = Path(__file__).resolve().parent.parent
+if str(REPO) not in sys.path:
+    sys.path.insert(0, str(REPO))
+
+DOC = REPO / "docs" / "performance.md"
+BEGIN = "<!-- benchmark table: begin (written by benchmarks/run.py; do not edit by hand) -->"
+END = "<!-- benchmark table: end -->"
+MIB = 2**20
+DASH = "\N{EN DASH}"
+ANALYSED_AT = datetime.datetime(2026, 3, 2, 12, 0, tzinfo=datetime.UTC)
+
+# Targets (the speed requirements this table is read against).
+TARGET_JUDGE_RATIO = 2.0  # judge path / pandas.read_csv of the same bytes
+TARGET_CERT_RATIO = 0.35  # certificate cost per cell in the station / naive render
+TARGET_ALL_RATE = 5.0  # cells/s on 2 workers, a certificate for every cell
+TARGET_FAILED_RATE = 40.0  # cells/s on 2 workers, certificates for failed cells only
+TARGET_PEAK_MIB = 350.0  # peak RSS per worker
+FLAT_GROWTH = 0.05  # RSS may grow by this fraction from cell 100 to the last cell (our own bound)
+FAIL_EVERY = 20  # one cell in 20 fails (95 % yield: our own choice for a line in production)
+STATION_SECONDS = 25.0  # pre-filled work per station run, aimed at (each must last >= 20 s)
+
+
+@dataclass(frozen=True, slots=True)
+class Mode:
+    """How much to measure: the full run, or a short one for trying things out."""
+
+    name: str
+    repeats: int  # expensive stages (rendering)
+    cheap_repeats: int  # stages of a few ms or less
+    batch_certificates: int
+    batch_repeats: int
+    import_repeats: int
+    station_seconds: float
+    rss_cells: int
+    rss_render_every: int = 10
+    pass_records: int = 3
+
+
+FULL = Mode("full", 7, 21, 8, 3, 5, STATION_SECONDS, 1000)
+QUICK = Mode("quick", 3, 7, 3, 2, 2, 6.0, 200, pass_records=1)
+
+
+# ---------------------------------------------------------------- invented input files
+
+
+@dataclass(frozen=True, slots=True)
+class Record:
+    """One simulated cell's cycle file without its metadata lines, and what it is."""
+
+    body: bytes  # header row and data rows
+    rows: int
+    hours: float
+    defect: str
+    metadata: dict[str, str]
+
+    def file_bytes(self, cell_id: str | None = None, lot: str | None = None) -> bytes:
+        meta = dict(self.metadata)
+        if cell_id is not None:
+            meta["cell_id"] = cell_id
+        if lot is not None:
+            meta["lot"] = lot
+        head = "".join(f"# {k}: {v}\n" for k, v in meta.items())
+        return head.encode("utf-8") + self.body
+
+
+def make_records(mode: Mode) -> tuple[list[Record], list[Record]]:
+    """Passing and failing invented DEMO-LFP-20A cells, about 72,000 rows (20 h at 1 Hz) each."""
+    import dataclasses
+
+    import numpy as np
+
+    from pipeline import demo, synth
+
+    # A shorter formation program than the demo's, so that 1 Hz sampling gives about
+    # 72,000 rows; every rate stays inside the ranges of synth.FormationProgram's notes.
+    program = synth.FormationProgram(
+        pre_charge_rate_c=0.1,
+        charge_rate_c=0.3,
+        discharge_rate_c=0.25,
+        rest_before_grading_s=1800.0,
+        final_rest_s=7200.0,
+    )
+    normal = [c for c in demo.DEMO_CELLS if not c.defect][: mode.pass_records]
+    defective = [c for c in demo.DEMO_CELLS if c.defect]
+    if mode.name == "quick":
+        defective = defective[:2]
+    out: tuple[list[Record], list[Record]] = ([], [])
+    for k, cell in enumerate(normal + defective):
+        cell = dataclasses.replace(cell, compressed=False)
+        rng = np.random.default_rng([2026, k])
+        recipe = dataclasses.replace(demo.demo_recipe(cell, rng), sample_interval_s=1.0, program=program)
+        record = synth.simulate_formation(recipe, rng)
+        body = synth.to_cycle_file(record, {}).encode("utf-8")
+        meta = demo.demo_metadata(cell)
+        meta["station"] = "bench-line-1"
+        rec = Record(body, len(record), float(record.time_s[-1]) / 3600.0, cell.defect, meta)
+        out[1 if cell.defect else 0].append(rec)
+    return out
+
+
+def pool_entry(n: int, passing: list[Record], failing: list[Record]) -> tuple[str, bytes, bool]:
+    """File ``n`` of a station's inbox: unique bytes (its own cell id), one in FAIL_EVERY failing."""
+    fails = n % FAIL_EVERY == FAIL_EVERY // 2
+    record = failing[(n // FAIL_EVERY) % len(failing)] if fails else passing[n % len(passing)]
+    lot = f"BENCH-LOT-{n // 200 + 1:02d}"
+    cell_id = f"B{n:05d}"
+    return f"{lot}_{cell_id}.csv", record.file_bytes(cell_id, lot), fails
+
+
+class Pool:
+    """Input files written once into a folder; each station run hard-links the ones it needs."""
+
+    def __init__(self, folder: Path, passing: list[Record], failing: list[Record]) -> None:
+        folder.mkdir()
+        self.folder, self.passing, self.failing = folder, passing, failing
+        self.entries: list[tuple[Path, bool]] = []
+
+    def ensure(self, n: int) -> None:
+        if n > len(self.entries):
+            print(f"  writing input files {len(self.entries) + 1}-{n} ...", flush=True)
+        for k in range(len(self.entries), n):
+            name, data, fails = pool_entry(k, self.passing, self.failing)
+            (self.folder / name).write_bytes(data)
+            self.entries.append((self.folder / name, fails))
+
+
+# ---------------------------------------------------------------- timing
+
+
+@dataclass(slots=True)
+class Timing:
+    """Seconds of each repeat of one measured thing."""
+
+    label: str
+    values: list[float] = field(default_factory=list)
+    note: str = ""
+
+    @property
+    def median(self) -> float:
+        return statistics.median(self.values)
+
+    def quartiles(self) -> tuple[float, float]:
+        if len(self.values) < 2:
+            return self.values[0], self.values[0]
+        q = statistics.quantiles(self.values, n=4, method="inclusive")
+        return q[0], q[2]
+
+
+def interleave(things: dict[str, Callable[[], object]], repeats: int) -> dict[str, Timing]:
+    """Time each callable ``repeats`` times, taking turns (order reversed every other round).
+
+    One untimed call of each first: the station's workers are warm too.
+    """
+    for fn in things.values():
+        fn()
+    timings = {name: Timing(name) for name in things}
+    names = list(things)
+    for r in range(repeats):
+        gc.collect()
+        for name in names if r % 2 == 0 else reversed(names):
+            t0 = time.perf_counter()
+            things[name]()
+            timings[name].values.append(time.perf_counter() - t0)
+    return timings
+
+
+def fmt_s(seconds: float) -> str:
+    if seconds < 0.01:
+        return f"{seconds * 1000:.2f} ms"
+    if seconds < 1.0:
+        return f"{seconds * 1000:.1f} ms"
+    return f"{seconds:.2f} s"
+
+
+def fmt_range(low: float, high: float) -> str:
+    a, b = fmt_s(low), fmt_s(high)
+    unit_a, unit_b = a.split()[1], b.split()[1]
+    return f"{a.split()[0]}{DASH}{b}" if unit_a == unit_b else f"{a}{DASH}{b}"
+
+
+# ---------------------------------------------------------------- stages in one process
+
+
+@dataclass(slots=True)
+class Micro:
+    """Everything measured inside this process."""
+
+    stages: list[Timing]
+    references: list[Timing]
+    judge_ratio: list[float]
+    cert_ratio: list[float]
+    cert_per_cell: Timing
+    naive: Timing
+    judge_path: Timing
+    pandas: Timing
+    pages: int
+    font_share: float
+    pdf_bytes: int
+
+
+def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp: Path) -> Micro:
+    import io
+
+    import pandas as pd
+    import weasyprint
+
+    from pipeline import plots
+    from pipeline.certificate import PLOT_HEIGHT_MM, PLOT_WIDTH_MM, TEMPLATES_DIR, render_html
+    from pipeline.evaluate import evaluate
+    from pipeline.ledger import CheckRowData, Ledger
+    from pipeline.mail import build_message, failure_letter
+    from pipeline.mailer import outgoing
+    from pipeline.metrics import measure
+    from pipeline.pdf import render_pdf
+    from pipeline.readers.cyclefile import read_cycle_file
+    from pipeline.result import to_json
+    from pipeline.rulebook import load_rules_dir
+    from pipeline.runner import judge
+    from pipeline.segmentation import split_steps
+    from pipeline.validate import drop_invalid_rows, validate_trace
+    from pipeline.worker import Task, run_task
+
+    rulebook = load_rules_dir(REPO / "rules")
+    data = passing[0].file_bytes()
+    name = "DEMO-LOT-01_L01-001.csv"
+    trace = read_cycle_file(data, name, None)
+    rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
+
+    def vsm() -> object:
+        notes = validate_trace(trace, cell_type)
+        kept = drop_invalid_rows(trace)
+        seg = split_steps(kept, rule_set.rest_current_fraction * cell_type.nominal_capacity_ah)
+        return measure(
+            kept, seg, rule_set.plateau, dcir_pulse_s=rule_set.dcir_pulse_s, relax_s=rule_set.relax_s
+        ), notes
+
+    result = judge(data, name, rulebook, analysed_at=ANALYSED_AT)
+    metrics = result.metrics
+    fail_data = failing[0].file_bytes()
+    failed = judge(fail_data, "DEMO-LOT-01_fail.csv", rulebook, analysed_at=ANALYSED_AT)
+    assert result.verdict.kind.value == "pass" and failed.verdict.kind.value == "fail"
+    json_text = to_json(result)
+    html = render_html(result)
+    failed_html = render_html(failed)
+    base_url = TEMPLATES_DIR.as_uri() + "/"
+
+    def plot() -> object:
+        return (
+            plots.discharge_svg(
+                metrics.grading_curve, metrics.plateaus, width_mm=PLOT_WIDTH_MM, height_mm=PLOT_HEIGHT_MM
+            ),
+            plots.ica_svg(
+                metrics.ica_curve, metrics.ica_peaks_v, width_mm=PLOT_WIDTH_MM, height_mm=PLOT_HEIGHT_MM
+            ),
+        )
+
+    # The ledger on the same disk a station would use, fsync and all.
+    ledger = Ledger(tmp / "bench-ledger.sqlite", now=ANALYSED_AT)
+    checks = [CheckRowData.from_check(c) for c in result.verdict.checks]
+    counter = iter(range(10**9))
+
+    def ledger_cycle() -> None:
+        n = next(counter)
+        sha = hashlib.sha256(f"input {n}".encode()).hexdigest()
+        row, _ = ledger.claim_input(
+            sha256=sha,
+            name=f"cell-{n}.csv",
+            size=len(data),
+            arrived_at=ANALYSED_AT,
+            work_path=f"work/cell-{n}.csv",
+        )
+        ledger.record_result(
+            row.id,
+            cell_id=result.cell_id,
+            lot=result.lot,
+            verdict=result.verdict.kind.value,
+            hazards=[],
+            result_json=json_text,
+            checks=checks,
+            rule_set_name=result.rule_set.name,
+            rule_set_revision=result.rule_set.revision,
+            rule_set_sha256=result.rule_set.sha256,
+            analysed_at=ANALYSED_AT,
+            json_path=f"results/cell-{n}.json",
+            pdf_path=f"certificates/cell-{n}.pdf",
+            mails=[],
+        )
+        ledger.mark_published(row.id)
+        ledger.mark_final(row.id, "archived", f"archive/cell-{n}.csv", now=ANALYSED_AT)
+
+    import dataclasses
+
+    failed_pdf = tmp / "failed.pdf"
+    failed_pdf.write_bytes(render_pdf(failed_html))
+    mail_counter = iter(range(10**9))
+
+    def mail_queue() -> None:
+        n = next(mail_counter)
+        cell = dataclasses.replace(failed, input_sha256=hashlib.sha256(f"mail {n}".encode()).hexdigest())
+        letter = failure_letter(cell, str(failed_pdf), ("quality@example.com",), station="bench-line-1")
+        build_message(letter, sender="formgate@localhost", date=ANALYSED_AT)
+        ledger.queue_mail(outgoing(letter), now=ANALYSED_AT)
+
+    print(f"  cheap stages, {mode.cheap_repeats} repeats each, interleaved ...", flush=True)
+    cheap = interleave(
+        {
+            "pandas": lambda: pd.read_csv(io.BytesIO(data), comment="#"),
+            "judge path": lambda: judge(data, name, rulebook, analysed_at=ANALYSED_AT),
+            "read": lambda: read_cycle_file(data, name, None),
+            "vsm": vsm,
+            "evaluate": lambda: evaluate(rule_set, cell_type, metrics, result.notes),
+            "json": lambda: to_json(result),
+            "plot": plot,
+            "html": lambda: render_html(result),
+            "ledger": ledger_cycle,
+            "mail": mail_queue,
+        },
+        mode.cheap_repeats,
+    )
+    ledger.close()
+
+    # The worker's own task, with and without its certificate, on a file in a work folder.
+    work_file = tmp / name
+    work_file.write_bytes(data)
+    sha = hashlib.sha256(data).hexdigest()
+
+    def task(certify: str) -> Callable[[], object]:
+        t = Task(1, str(work_file), name, sha, rulebook, ANALYSED_AT, certify=certify)
+
+        def run() -> object:
+            out = run_task(t)
+            assert out.error is None and (out.pdf is not None) == (certify == "all"), out.error
+            return out
+
+        return run
+
+    print(f"  rendering, {mode.repeats} repeats each, interleaved ...", flush=True)
+    renders = interleave(
+        {
+            "naive": lambda: weasyprint.HTML(string=html, base_url=base_url).write_pdf(),
+            "task all": task("all"),
+            "task none": task("none"),
+            "render": lambda: render_pdf(render_html(result)),
+            "render pdf": lambda: render_pdf(html),
+        },
+        mode.repeats,
+    )
+    failed_render = interleave({"render failed": lambda: render_pdf(render_html(failed))}, mode.repeats)
+
+    # Where the naive render's time goes: layout, then PDF writing, of which font embedding.
+    import weasyprint.pdf as wpdf
+
+    original = wpdf.build_fonts_dictionary
+    font_times: list[float] = []
+
+    def timed_fonts(*args: Any, **kwargs: Any) -> Any:
+        t0 = time.perf_counter()
+        try:
+            return original(*args, **kwargs)
+        finally:
+            font_times.append(time.perf_counter() - t0)
+
+    layout, writing = Timing("layout"), Timing("write")
+    wpdf.build_fonts_dictionary = timed_fonts
+    try:
+        for _ in range(mode.repeats):
+            gc.collect()
+            t0 = time.perf_counter()
+            document = weasyprint.HTML(string=html, base_url=base_url).render()
+            t1 = time.perf_counter()
+            pdf = document.write_pdf()
+            t2 = time.perf_counter()
+            layout.values.append(t1 - t0)
+            writing.values.append(t2 - t1)
+    finally:
+        wpdf.build_fonts_dictionary = original
+    fonts = Timing("fonts", font_times)
+    pages = len(document.pages)
+
+    # One document holding several certificates: the font is embedded once for all of them.
+    htmls = [
+        render_html(judge(r.file_bytes(), f"c{i}.csv", rulebook, analysed_at=ANALYSED_AT))
+        for i, r in enumerate((passing + failing)[: mode.batch_certificates])
+    ]
+    while len(htmls) < mode.batch_certificates:
+        htmls.append(html)
+    batch = Timing("batch")
+    for _ in range(mode.batch_repeats):
+        gc.collect()
+        t0 = time.perf_counter()
+        docs = [weasyprint.HTML(string=h, base_url=base_url).render() for h in htmls]
+        docs[0].copy([p for d in docs for p in d.pages]).write_pdf()
+        batch.values.append((time.perf_counter() - t0) / len(htmls))
+
+    cert = Timing(
+        "cert", [a - b for a, b in zip(renders["task all"].values, renders["task none"].values, strict=True)]
+    )
+    naive = renders["naive"]
+    judge_ratio = [a / b for a, b in zip(cheap["judge path"].values, cheap["pandas"].values, strict=True)]
+    cert_ratio = [a / b for a, b in zip(cert.values, naive.values, strict=True)]
+
+    def row(t: Timing, label: str, note: str = "") -> Timing:
+        return Timing(label, t.values, note)
+
+    k = mode.batch_certificates
+    stages = [
+        row(cheap["read"], "read (read_cycle_file)"),
+        row(cheap["vsm"], "validate+segment+measure"),
+        row(cheap["evaluate"], "judge (evaluate)"),
+        row(cheap["judge path"], "judge path (runner.judge, all of the above)"),
+        row(cheap["json"], "result JSON (to_json)"),
+        row(cheap["plot"], "plot (discharge_svg + ica_svg)"),
+        row(cheap["html"], "render: certificate HTML (render_html)", "plots included"),
+        row(renders["render pdf"], "render: PDF (pdf.render_pdf)"),
+        row(renders["render"], "render (render_html + render_pdf)", f"{pages} pages, passed cell"),
+        row(failed_render["render failed"], "render, failed cell's certificate"),
+        row(cert, "certificate per cell in a worker", "run_task with, less without"),
+        row(cheap["ledger"], "ledger (claim+record+published+final)", "4 commits, fsync"),
+        row(cheap["mail"], "mail queue (letter+message+queue_mail)", "failed cell"),
+    ]
+    references = [
+        row(cheap["pandas"], "pandas.read_csv, same bytes"),
+        row(naive, "naive WeasyPrint render, same HTML", "nothing shared"),
+        row(layout, "  naive: layout (HTML.render)"),
+        row(writing, "  naive: PDF writing (Document.write_pdf)"),
+        row(fonts, "    of which font embedding", "subset + embed"),
+        row(batch, f"naive: one document of {k} certificates", "per certificate"),
+    ]
+    return Micro(
+        stages,
+        references,
+        judge_ratio,
+        cert_ratio,
+        cert,
+        naive,
+        cheap["judge path"],
+        cheap["pandas"],
+        pages,
+        fonts.median / writing.median if writing.values else math.nan,
+        len(pdf),
+    )
+
+
+def measure_import(mode: Mode) -> Timing:
+    """Seconds to import the whole stack in a fresh process, as a worker does at start-up."""
+    code = (
+        "import time; t = time.perf_counter(); import pipeline.runner, pipeline.certificate, pipeline.pdf; "
+        "print(time.perf_counter() - t)"
+    )
+    timing = Timing("import of the stack, fresh process", note="runner + certificate + pdf")
+    for _ in range(mode.import_repeats):
+        out = subprocess.run(
+            [sys.executable, "-c", code], cwd=REPO, capture_output=True, text=True, check=True
+        )
+        timing.values.append(float(out.stdout.strip().splitlines()[-1]))
+    return timing
+
+
+# ---------------------------------------------------------------- a real station
+
+
+STATION_TOML = """\
+[station]
+name = "bench-line-1"
+workers = {workers}
+certify = "{certify}"
+
+[inbox.main]
+folder = "inbox"
+handover = "rename"
+
+[mail]                     # no [smtp] host: mails are written into mail/ as .eml files
+failures_to = ["quality@example.com"]
+holds_to = ["quality@example.com"]
+digests_to = ["production@example.com"]
+alerts_to = ["maintenance@example.com"]
+"""
+
+
+@dataclass(slots=True)
+class StationRun:
+    workers: int
+    certify: str
+    files: int
+    failed_files: int
+    mean_mb: float
+    wall_s: float
+    sustained: float
+    span_s: float
+    peak_worker_mib: float
+    pdfs: int
+    quarantined: int
+    worker_cpu_s: float  # CPU seconds of all workers per cell, after the first input was final
+    station_cpu_s: float  # CPU seconds of the station's own process per cell, likewise
+
+
+def _proc_kib(pid: int, key: str) -> float:
+    try:
+        for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+            if line.startswith(key + ":"):
+                return float(line.split()[1])
+    except OSError:
+        pass
+    return math.nan
+
+
+def _cpu_s(pid: int) -> float:
+    """User + system CPU seconds of a process so far (0 if it is gone)."""
+    try:
+        fields = Path(f"/proc/{pid}/stat").read_text().rpartition(")")[2].split()
+    except OSError:
+        return 0.0
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
+def _own_cpu_s() -> float:
+    t = os.times()
+    return t.user + t.system
+
+
+def _final_count(ledger: Path) -> int:
+    if not ledger.exists():
+        return 0
+    try:
+        with sqlite3.connect(f"file:{ledger}?mode=ro", uri=True, timeout=1.0) as conn:
+            return int(conn.execute("SELECT count(*) FROM inputs WHERE final_path IS NOT NULL").fetchone()[0])
+    except sqlite3.Error:
+        return 0
+
+
+def run_station(tmp: Path, pool: list[tuple[Path, bool]], n: int, workers: int, certify: str) -> StationRun:
+    """Pre-fill an inbox with ``n`` files, start a station, time it until every input is final."""
+    from pipeline.settings import load_settings, smtp_settings
+    from pipeline.station import Station
+
+    root = tmp / f"station-{workers}-{certify}"
+    root.mkdir()
+    shutil.copytree(REPO / "rules", root / "rules")
+    text = STATION_TOML.format(workers=workers, certify=certify)
+    (root / "station.toml").write_text(text, encoding="utf-8")
+    settings = load_settings(text, "station.toml", root)
+    for folder in settings.all_folders():
+        folder.mkdir(parents=True, exist_ok=True)
+    inbox = settings.inboxes[0].folder
+    chosen = pool[:n]
+    for path, _ in chosen:
+        os.link(path, inbox / path.name)  # same filesystem: a new name for the same bytes, no copying
+    size = sum(p.stat().st_size for p, _ in chosen) / n / 1e6
+    station = Station(settings, smtp_settings(settings, {}))
+    stop = threading.Event()
+    errors: list[BaseException] = []
+
+    def target() -> None:
+        try:
+            station.run(stop)
+        except BaseException as exc:  # reported below
+            errors.append(exc)
+
+    thread = threading.Thread(target=target, name="bench-station")
+    deadline = time.monotonic() + 120.0 + 5.0 * n
+    t0 = time.perf_counter()
+    thread.start()
+    first: tuple[int, float, float] | None = None  # finals, worker CPU, own CPU at the first final
+
+    def worker_cpu() -> float:
+        return sum(_cpu_s(pid) for pid in dict(getattr(station.pool, "_processes", {}) or {}))
+
+    try:
+        while (done := _final_count(settings.ledger)) < n:
+            if done and first is None:
+                first = (done, worker_cpu(), _own_cpu_s())
+            if errors or not thread.is_alive():
+                raise RuntimeError(f"the station stopped early: {errors[0] if errors else 'no error'}")
+            if time.monotonic() > deadline:
+                raise RuntimeError(f"the station did not finish {n} files in time")
+            time.sleep(0.05)
+        wall = time.perf_counter() - t0
+        pool_procs = dict(getattr(station.pool, "_processes", {}) or {})
+        peak_kib = max((_proc_kib(pid, "VmHWM") for pid in pool_procs), default=math.nan)
+        first = first or (0, 0.0, 0.0)
+        cells = max(1, n - first[0])
+        worker_cpu_s = (worker_cpu() - first[1]) / cells
+        station_cpu_s = (_own_cpu_s() - first[2]) / cells
+    finally:
+        stop.set()
+        thread.join(300)
+    with sqlite3.connect(f"file:{settings.ledger}?mode=ro", uri=True) as conn:
+        finals = sorted(
+            datetime.datetime.fromisoformat(r[0])
+            for r in conn.execute("SELECT final_at FROM inputs WHERE final_path IS NOT NULL")
+        )
+        quarantined = conn.execute("SELECT count(*) FROM inputs WHERE state = 'quarantined'").fetchone()[0]
+    span = (finals[-1] - finals[0]).total_seconds()
+    pdfs = sum(1 for _ in settings.certificates.rglob("*.pdf"))
+    shutil.rmtree(root, ignore_errors=True)
+    return StationRun(
+        workers,
+        certify,
+        n,
+        sum(1 for _, f in chosen if f),
+        size,
+        wall,
+        (n - 1) / span if span > 0 else math.nan,
+        span,
+        peak_kib / 1024,
+        pdfs,
+        quarantined,
+        worker_cpu_s,
+        station_cpu_s,
+    )
+
+
+# ---------------------------------------------------------------- memory of a long-lived worker
+
+
+def rss_child(spec_path: str) -> None:
+    """Runs in a fresh process: be a worker for many cells, report RSS as it goes (JSON on stdout)."""
+    spec = json.loads(Path(spec_path).read_text())
+    t0 = time.perf_counter()
+    from pipeline.worker import Task, init_worker, run_task
+
+    init_worker()
+    import pipeline.runner  # noqa: F401 - otherwise imported by the first task
+
+    import_s = time.perf_counter() - t0
+    from pipeline.rulebook import load_rules_dir
+
+    rulebook = load_rules_dir(REPO / "rules")
+    rss_after_import = _proc_kib(os.getpid(), "VmRSS") / 1024
+    files = spec["files"]
+    samples: list[tuple[int, float]] = []
+    first_peak = math.nan
+    for i in range(spec["cells"]):
+        path, sha = files[i % len(files)]
+        certify = "all" if i % spec["render_every"] == 0 else "none"
+        out = run_task(Task(i + 1, path, Path(path).name, sha, rulebook, ANALYSED_AT, certify=certify))
+        if out.error is not None:
+            raise SystemExit(out.error)
+        if i == 0:
+            first_peak = _proc_kib(os.getpid(), "VmHWM") / 1024
+        if (i + 1) % 100 == 0:
+            samples.append((i + 1, _proc_kib(os.getpid(), "VmRSS") / 1024))
+    print(
+        json.dumps(
+            {
+                "import_s": import_s,
+                "rss_after_import": rss_after_import,
+                "first_cell_peak": first_peak,
+                "samples": samples,
+                "peak": _proc_kib(os.getpid(), "VmHWM") / 1024,
+            }
+        )
+    )
+
+
+def measure_rss(mode: Mode, tmp: Path, pool: list[tuple[Path, bool]]) -> dict[str, Any]:
+    files = [(str(p), hashlib.sha256(p.read_bytes()).hexdigest()) for p, _ in pool[: FAIL_EVERY * 2]]
+    spec = tmp / "rss.json"
+    spec.write_text(
+        json.dumps({"files": files, "cells": mode.rss_cells, "render_every": mode.rss_render_every})
+    )
+    out = subprocess.run(
+        [sys.executable, str(Path(__file__).resolve()), "--rss-child", str(spec)],
+        cwd=REPO,
+        capture_output=True,
+        text=True,
+        check=False,
+    )
+    if out.returncode != 0:
+        raise RuntimeError(f"the memory run failed:\n{out.stderr[-2000:]}")
+    return dict(json.loads(out.stdout.strip().splitlines()[-1]))
+
+
+# ---------------------------------------------------------------- the machine and the table
+
+
+def machine() -> list[tuple[str, str]]:
+    import importlib.metadata as md
+
+    cpu = "unknown"
+    try:
+        for line in Path("/proc/cpuinfo").read_text().splitlines():
+            if line.startswith("model name"):
+                cpu = line.split(":", 1)[1].strip()
+                break
+    except OSError:
+        pass
+    try:
+        mem = next(
+            line.split()[1]
+            for line in Path("/proc/meminfo").read_text().splitlines()
+            if line.startswith("MemTotal")
+        )
+        memory = f"{int(mem) / 2**20:.1f} GiB"
+    except (OSError, StopIteration):
+        memory = "unknown"
+    usable = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
+    versions = []
+    for dist in ("numpy", "scipy", "pandas", "weasyprint", "pydyf", "fonttools", "jinja2", "watchdog"):
+        with contextlib.suppress(md.PackageNotFoundError):
+            versions.append(f"{dist} {md.version(dist)}")
+    try:
+        from weasyprint.text.ffi import harfbuzz_subset  # type: ignore[attr-defined]
+
+        subsetter = "HarfBuzz" if harfbuzz_subset else "fontTools (libharfbuzz-subset not found)"
+    except ImportError:
+        subsetter = "fontTools (libharfbuzz-subset not found)"
+    try:
+        commit = subprocess.run(
+            ["git", "rev-parse", "--short", "HEAD"], cwd=REPO, capture_output=True, text=True, check=True
+        ).stdout.strip()
+    except (OSError, subprocess.CalledProcessError):
+        commit = "unknown"
+    return [
+        ("CPU", cpu),
+        ("cores", f"{os.cpu_count()} ({usable} usable by this process)"),
+        ("memory", memory),
+        ("system", f"{platform.system()} {platform.release()}"),
+        ("Python", platform.python_version()),
+        ("libraries", ", ".join(versions)),
+        ("font subsetting", subsetter),
+        ("formgate", f"commit {commit}"),
+    ]
+
+
+def verdict(ok: bool) -> str:
+    return "meets" if ok else "misses"
+
+
+def build_table(
+    mode: Mode,
+    info: list[tuple[str, str]],
+    load: tuple[str, str],
+    inputs: str,
+    micro: Micro | None,
+    import_t: Timing | None,
+    stations: list[StationRun],
+    rss: dict[str, Any] | None,
+    started: datetime.datetime,
+    took_s: float,
+) -> str:
+    lines: list[str] = []
+    add = lines.append
+    add(f"formgate benchmark, {mode.name} run, {started:%Y-%m-%d %H:%M} UTC, took {took_s / 60:.1f} min")
+    for key, value in info:
+        add(f"{key + ':':<17}{value}")
+    add(f"{'load average:':<17}{load[0]} at start, {load[1]} at end (1, 5, 15 min)")
+    add(f"{'input:':<17}{inputs}")
+    add("")
+    timings = ([*micro.stages, *micro.references] if micro else []) + ([import_t] if import_t else [])
+    if timings:
+        w = max(len(t.label) for t in timings) + 2
+        quartiles, extremes = f"p25{DASH}p75", f"min{DASH}max"
+        add(f"{'stage':<{w}}{'median':>10}  {quartiles:<19}{extremes:<19}{'n':>3}  note")
+        for t in timings:
+            if micro and t is micro.references[0]:
+                add("reference")
+            q1, q3 = t.quartiles()
+            add(
+                f"{t.label:<{w}}{fmt_s(t.median):>10}  {fmt_range(q1, q3):<19}"
+                f"{fmt_range(min(t.values), max(t.values)):<19}{len(t.values):>3}  {t.note}".rstrip()
+            )
+        add("")
+    if micro:
+        add(f"ratio (measured side by side in this run)   median   min{DASH}max      of minima   target")
+        jr, cr = statistics.median(micro.judge_ratio), statistics.median(micro.cert_ratio)
+        jm = min(micro.judge_path.values) / min(micro.pandas.values)
+        cm = min(micro.cert_per_cell.values) / min(micro.naive.values)
+        for label, ratio, values, of_minima, goal in (
+            ("judge path ÷ pandas.read_csv, same bytes", jr, micro.judge_ratio, jm, TARGET_JUDGE_RATIO),
+            ("certificate per cell ÷ naive render", cr, micro.cert_ratio, cm, TARGET_CERT_RATIO),
+        ):
+            spread = f"{min(values):.2f}{DASH}{max(values):.2f}"
+            ok = verdict(ratio <= goal)
+            add(f"{label:<43}{ratio:6.2f}   {spread:<12}{of_minima:>7.2f}     ≤ {goal:.2f}   {ok}")
+        add(
+            f"(font embedding is {micro.font_share:.0%} of the naive render's PDF writing; "
+            f"the certificate has {micro.pages} pages, {micro.pdf_bytes / 1024:.0f} KiB)"
+        )
+        add("")
+    if stations:
+        add("station throughput (real station, inbox pre-filled, mail to .eml files)")
+        add(
+            f"{'workers':<8}{'certify':<17}{'files':>6}{'failed':>7}{'MB/file':>8}{'PDFs':>6}{'wall':>8}"
+            f"{'cells/s':>9}{'sustained':>10}{'CPU/cell':>15}{'peak RSS/worker':>17}   target"
+        )
+        for s in stations:
+            target = ""
+            if s.workers == 2:
+                goal = TARGET_ALL_RATE if s.certify == "all" else TARGET_FAILED_RATE
+                target = f"≥ {goal:g} cells/s {verdict(s.sustained >= goal)}"
+            warn = f"  ({s.quarantined} quarantined!)" if s.quarantined else ""
+            add(
+                f"{s.workers:<8}{s.certify:<17}{s.files:>6}{s.failed_files:>7}{s.mean_mb:>8.2f}{s.pdfs:>6}"
+                f"{s.wall_s:>7.1f}s{s.files / s.wall_s:>9.2f}{s.sustained:>10.2f}"
+                f"{s.worker_cpu_s * 1000:>8.0f} +{s.station_cpu_s * 1000:>3.0f} ms"
+                f"{s.peak_worker_mib:>13.0f} MiB   {target}{warn}".rstrip()
+            )
+        add(
+            "cells/s = files ÷ wall time from start (worker start-up included); sustained = from the "
+            "first input final to the last;"
+        )
+        add(
+            "CPU/cell = CPU time of the workers + of the station's own process per cell, after the first "
+            "input was final"
+        )
+        add("")
+    if stations or rss:
+        add("memory")
+        peaks = [s.peak_worker_mib for s in stations if not math.isnan(s.peak_worker_mib)]
+        if rss:
+            peaks.append(rss["peak"])
+        if peaks:
+            top = max(peaks)
+            add(
+                f"peak RSS per worker (station workers and the long-lived one): {top:.0f} MiB   "
+                f"target ≤ {TARGET_PEAK_MIB:.0f} MiB   {verdict(top <= TARGET_PEAK_MIB)}"
+            )
+        if rss:
+            samples = rss["samples"]
+            first, last = samples[0][1], samples[-1][1]
+            growth = (last - first) / first
+            add(
+                f"fresh worker: import {rss['import_s']:.2f} s, "
+                f"RSS {rss['rss_after_import']:.0f} MiB after import, "
+                f"peak {rss['first_cell_peak']:.0f} MiB after judging and certifying one cell"
+            )
+            add(
+                f"RSS over {samples[-1][0]:,} cells in one worker (judged all, certificate every "
+                f"{mode.rss_render_every}th): " + ", ".join(f"{v:.0f}" for _, v in samples) + " MiB"
+            )
+            renders = (samples[-1][0] - samples[0][0]) / mode.rss_render_every
+            add(
+                f"  growth from cell {samples[0][0]} to cell {samples[-1][0]:,}: {last - first:+.1f} MiB, "
+                f"that is {(last - first) * 1024 / renders:+.0f} KiB per certificate rendered in between "
+                f"({growth:+.1%})   target flat (≤ {FLAT_GROWTH:.0%})   {verdict(growth <= FLAT_GROWTH)}"
+                + ("" if samples[-1][0] >= 1000 else "   (short run: not the 1,000 cells asked for)")
+            )
+    return "\n".join(lines).rstrip() + "\n"
+
+
+def write_doc(table: str) -> None:
+    block = f"{BEGIN}\n\n```text\n{table}```\n\n{END}"
+    text = (
+        DOC.read_text(encoding="utf-8")
+        if DOC.exists()
+        else (
+            "# Performance\n\nThe latest `make bench` table; benchmarks/README.md says what each row "
+            "means.\n\n"
+            f"{BEGIN}\n{END}\n"
+        )
+    )
+    if BEGIN not in text or END not in text:
+        text = text.rstrip() + "\n\n" + BEGIN + "\n" + END + "\n"
+    head, rest = text.split(BEGIN, 1)
+    _, tail = rest.split(END, 1)
+    DOC.write_text(head + block + tail, encoding="utf-8")
+
+
+def profile(what: str, passing: list[Record]) -> None:
+    """Print where one judge path or one certificate render spends its time (cProfile)."""
+    import cProfile
+    import pstats
+
+    from pipeline.certificate import render_html
+    from pipeline.pdf import render_pdf
+    from pipeline.rulebook import load_rules_dir
+    from pipeline.runner import judge
+
+    rulebook = load_rules_dir(REPO / "rules")
+    data = passing[0].file_bytes()
+    result = judge(data, "cell.csv", rulebook, analysed_at=ANALYSED_AT)
+    html = render_html(result)
+    render_pdf(html)  # warm, as a worker is
+    profiler = cProfile.Profile()
+    profiler.enable()
+    if what == "judge":
+        judge(data, "cell.csv", rulebook, analysed_at=ANALYSED_AT)
+    else:
+        render_pdf(render_html(result))
+    profiler.disable()
+    pstats.Stats(profiler).sort_stats("cumulative").print_stats(40)
+
+
+# ---------------------------------------------------------------- main
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(
+        description=__doc__.splitlines()[0], epilog="example: .venv/bin/python benchmarks/run.py --quick"
+    )
+    parser.add_argument(
+        "--quick", action="store_true", help="short run, fewer repeats; not written to the docs"
+    )
+    parser.add_argument(
+        "--write", action="store_true", help="write the table to docs/performance.md even when quick"
+    )
+    parser.add_argument("--no-write", action="store_true", help="print the table only")
+    parser.add_argument(
+        "--skip", default="", help="comma-separated parts to leave out: stages,import,station,rss"
+    )
+    parser.add_argument(
+        "--profile",
+        choices=("judge", "render"),
+        help="print a cProfile of one judge path or one certificate render, and stop",
+    )
+    parser.add_argument("--rss-child", help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.rss_child:
+        rss_child(args.rss_child)
+        return 0
+    import logging
+
+    # The renderer warns on every document that it falls back to fontTools; once is enough.
+    logging.getLogger("weasyprint").setLevel(logging.ERROR)
+    mode = QUICK if args.quick else FULL
+    skip = {s.strip() for s in args.skip.split(",") if s.strip()}
+    started = datetime.datetime.now(datetime.UTC)
+    t_start = time.perf_counter()
+    load_start = ", ".join(f"{v:.2f}" for v in os.getloadavg())
+    info = machine()
+    with tempfile.TemporaryDirectory(prefix="formgate-bench-") as tmp_name:
+        tmp = Path(tmp_name)
+        print(f"{'profile' if args.profile else mode.name} run: inventing cycle files ...", flush=True)
+        passing, failing = make_records(QUICK if args.profile else mode)
+        if args.profile:
+            profile(args.profile, passing)
+            return 0
+        first = passing[0]
+        inputs = (
+            f"invented DEMO-LFP-20A cells, {first.rows:,} rows ({first.hours:.1f} h at 1 Hz), "
+            f"{len(first.file_bytes()) / 1e6:.2f} MB CSV each"
+        )
+        micro = None if "stages" in skip else measure_stages(mode, passing, failing, tmp)
+        print("  import of the stack ...", flush=True)
+        import_t = None if "import" in skip else measure_import(mode)
+
+        # Size each station run for about station_seconds of work: the first from the stage
+        # timings, the 2-worker runs from the 1-worker run; a run that ends too soon is redone.
+        judge_s = micro.judge_path.median if micro else 0.08
+        cert_s = micro.cert_per_cell.median if micro else 0.6
+        pool = Pool(tmp / "pool", passing, failing)
+        pool.ensure(FAIL_EVERY * 2)
+        stations: list[StationRun] = []
+        for certify, share in (
+            [] if "station" in skip else [("all", 1.0), ("failed_and_held", 1.0 / FAIL_EVERY)]
+        ):
+            rate = 1.0 / (judge_s + share * cert_s)
+            for workers in (1, 2):
+                if workers == 2 and stations:
+                    rate = 2.0 * stations[-1].files / stations[-1].wall_s
+                for _attempt in range(3):
+                    n = max(20, min(3000, math.ceil(mode.station_seconds * rate)))
+                    pool.ensure(n)
+                    print(f"  station: {workers} worker(s), certify {certify}, {n} files ...", flush=True)
+                    run = run_station(tmp, pool.entries, n, workers, certify)
+                    if run.wall_s >= 0.8 * mode.station_seconds or n == 3000:
+                        break
+                    print(f"    done in {run.wall_s:.1f} s: too short, again with more files", flush=True)
+                    rate = 1.25 * n / run.wall_s
+                stations.append(run)
+        rss = None
+        if "rss" not in skip:
+            print(f"  one worker over {mode.rss_cells} cells ...", flush=True)
+            rss = measure_rss(mode, tmp, pool.entries)
+    load_end = ", ".join(f"{v:.2f}" for v in os.getloadavg())
+    table = build_table(
+        mode,
+        info,
+        (load_start, load_end),
+        inputs,
+        micro,
+        import_t,
+        stations,
+        rss,
+        started,
+        time.perf_counter() - t_start,
+    )
+    print()
+    print(table, end="")
+    if not args.no_write and (mode is FULL or args.write) and not skip:
+        write_doc(table)
+        print(f"\nwritten to {DOC.relative_to(REPO)}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
