@@ -373,48 +373,56 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
 
         return run
 
-    print(f"  rendering, {mode.repeats} repeats each, interleaved ...", flush=True)
-    renders = interleave(
-        {
-            "naive": lambda: weasyprint.HTML(string=html, base_url=base_url).write_pdf(),
-            "task all": task("all"),
-            "task none": task("none"),
-            "render": lambda: render_pdf(render_html(result)),
-            "render pdf": lambda: render_pdf(html),
-        },
-        mode.repeats,
-    )
-    failed_render = interleave({"render failed": lambda: render_pdf(render_html(failed))}, mode.repeats)
-
-    # Where the naive render's time goes: layout, then PDF writing, of which font embedding.
+    # Where the naive render's time goes: layout, then PDF writing, of which font embedding
+    # (WeasyPrint's build_fonts_dictionary, wrapped with a timer while the renders run).
     import weasyprint.pdf as wpdf
 
     original = wpdf.build_fonts_dictionary
-    font_times: list[float] = []
+    layout, writing, fonts = Timing("layout"), Timing("write"), Timing("fonts")
+    split: dict[str, int] = {"on": 0, "pages": 0, "bytes": 0}
 
     def timed_fonts(*args: Any, **kwargs: Any) -> Any:
         t0 = time.perf_counter()
         try:
             return original(*args, **kwargs)
         finally:
-            font_times.append(time.perf_counter() - t0)
+            if split["on"]:
+                fonts.values.append(time.perf_counter() - t0)
 
-    layout, writing = Timing("layout"), Timing("write")
-    wpdf.build_fonts_dictionary = timed_fonts
-    try:
-        for _ in range(mode.repeats):
-            gc.collect()
+    def naive_split() -> None:
+        split["on"] = 1
+        try:
             t0 = time.perf_counter()
             document = weasyprint.HTML(string=html, base_url=base_url).render()
             t1 = time.perf_counter()
             pdf = document.write_pdf()
             t2 = time.perf_counter()
-            layout.values.append(t1 - t0)
-            writing.values.append(t2 - t1)
+        finally:
+            split["on"] = 0
+        layout.values.append(t1 - t0)
+        writing.values.append(t2 - t1)
+        split["pages"], split["bytes"] = len(document.pages), len(pdf)
+
+    print(f"  rendering, {mode.repeats} repeats each, interleaved ...", flush=True)
+    wpdf.build_fonts_dictionary = timed_fonts
+    try:
+        renders = interleave(
+            {
+                "naive": lambda: weasyprint.HTML(string=html, base_url=base_url).write_pdf(),
+                "task all": task("all"),
+                "task none": task("none"),
+                "render": lambda: render_pdf(render_html(result)),
+                "render pdf": lambda: render_pdf(html),
+                "render failed": lambda: render_pdf(render_html(failed)),
+                "naive split": naive_split,
+            },
+            mode.repeats,
+        )
     finally:
         wpdf.build_fonts_dictionary = original
-    fonts = Timing("fonts", font_times)
-    pages = len(document.pages)
+    for t in (layout, writing, fonts):
+        del t.values[0]  # the untimed warm-up call
+    pages = split["pages"]
 
     # One document holding several certificates: the font is embedded once for all of them.
     htmls = [
@@ -452,7 +460,7 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
         row(cheap["html"], "render: certificate HTML (render_html)", "plots included"),
         row(renders["render pdf"], "render: PDF (pdf.render_pdf)"),
         row(renders["render"], "render (render_html + render_pdf)", f"{pages} pages, passed cell"),
-        row(failed_render["render failed"], "render, failed cell's certificate"),
+        row(renders["render failed"], "render, failed cell's certificate"),
         row(cert, "certificate per cell in a worker", "run_task with, less without"),
         row(cheap["ledger"], "ledger (claim+record+published+final)", "4 commits, fsync"),
         row(cheap["mail"], "mail queue (letter+message+queue_mail)", "failed cell"),
@@ -476,7 +484,7 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
         cheap["pandas"],
         pages,
         fonts.median / writing.median if writing.values else math.nan,
-        len(pdf),
+        split["bytes"],
     )
 
 
@@ -748,6 +756,15 @@ def machine() -> list[tuple[str, str]]:
         commit = subprocess.run(
             ["git", "rev-parse", "--short", "HEAD"], cwd=REPO, capture_output=True, text=True, check=True
         ).stdout.strip()
+        changed = subprocess.run(
+            ["git", "status", "--porcelain", "--", "pipeline", "templates", "rules"],
+            cwd=REPO,
+            capture_output=True,
+            text=True,
+            check=True,
+        ).stdout.strip()
+        if changed:
+            commit += " with uncommitted changes in pipeline/, templates/ or rules/"
     except (OSError, subprocess.CalledProcessError):
         commit = "unknown"
     return [
