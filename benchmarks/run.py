@@ -1,6 +1,6 @@
 """Measures how fast formgate judges and certifies cells, and writes the table to docs/performance.md.
 
-Run it with `make bench` (about 8 minutes on 2 cores), or for a short look with
+Run it with `make bench` (about 5-6 minutes on 2 cores), or for a short look with
 ``.venv/bin/python benchmarks/run.py --quick`` (about 3 minutes, not written to the
 docs). It invents its own cycle files of realistic size in a
 temporary folder, times every stage of the pipeline with several repeats, runs a
