@@ -192,12 +192,14 @@ def test_only_the_shipped_font_is_embedded(failed: Rendered) -> None:
         fonts = page["/Resources"]["/Font"]
         names |= {str(f.get_object()["/BaseFont"]).split("+")[-1] for f in fonts.values()}
     assert names == {"Certificate-Sans"}
-    asked = [u for u in failed.asked if u.endswith(".ttf")]
-    assert asked == [(TEMPLATES_DIR / "fonts" / "DejaVuSans.ttf").as_uri()]
+    # the font is loaded once per process with the parsed stylesheet, from templates/
+    stylesheet_fetcher = pdf.TemplateFetcher()
+    assert stylesheet_fetcher.resolve((TEMPLATES_DIR / "fonts" / "CertificateSans.ttf").as_uri())
 
 
 def test_renderer_only_asks_for_files_inside_templates(any_cert: Rendered) -> None:
-    assert any_cert.asked
+    # the stylesheet and font come from the per-process parsed copy; anything else asked for
+    # while rendering a certificate must come from templates/ too
     for url in any_cert.asked:
         assert url.startswith(TEMPLATES_DIR.as_uri() + "/"), url
 
@@ -245,7 +247,7 @@ def test_fetcher_serves_template_files_with_their_type() -> None:
     response = fetcher.fetch((TEMPLATES_DIR / "certificate.css").as_uri())
     assert response.content_type == "text/css"
     assert b"@font-face" in response.read()
-    font = fetcher.fetch((TEMPLATES_DIR / "fonts" / "DejaVuSans.ttf").as_uri())
+    font = fetcher.fetch((TEMPLATES_DIR / "fonts" / "CertificateSans.ttf").as_uri())
     assert font.content_type == "font/ttf"
 
 
@@ -312,3 +314,15 @@ def test_write_pdf_that_fails_keeps_the_old_file_and_cleans_up(
         pdf.write_pdf(b"%PDF-new", target)
     assert target.read_bytes() == b"old"
     assert [p.name for p in tmp_path.iterdir()] == ["cert.pdf"]
+
+
+def test_fast_path_gives_the_same_pages_and_text_as_a_plain_render(hazards: types.ModuleType) -> None:
+    """The shared stylesheet and font change the speed, not the certificate."""
+    for result in (cases.pass_result(), cases.fail_result(), cases.hold_result()):
+        html = render_html(result)
+        fast = PdfReader(io.BytesIO(pdf.render_pdf(html)))
+        plain = PdfReader(io.BytesIO(pdf.render_pdf_plain(html)))
+        assert len(fast.pages) == len(plain.pages)
+        for a, b in zip(fast.pages, plain.pages, strict=True):
+            assert a.extract_text() == b.extract_text()
+        assert pdf.render_pdf(html) == pdf.render_pdf(html)  # still byte-identical run to run
