@@ -58,6 +58,7 @@ from pipeline.writing import clean_temp_files, move_into, write_atomic
 log = logging.getLogger("formgate.station")
 
 MB = 2**20
+WORKER_TASKS = 2000  # cells a worker process judges before a new one takes over
 
 
 def utc_now() -> datetime.datetime:
@@ -145,7 +146,13 @@ class Station:
     def _new_pool(self) -> ProcessPoolExecutor:
         ctx = multiprocessing.get_context("forkserver")
         ctx.set_forkserver_preload(["pipeline.worker", "pipeline.runner"])
-        return ProcessPoolExecutor(self.settings.workers, mp_context=ctx, initializer=init_worker)
+        # a fresh worker now and then bounds any slow growth of memory in the libraries
+        return ProcessPoolExecutor(
+            self.settings.workers,
+            mp_context=ctx,
+            initializer=init_worker,
+            max_tasks_per_child=WORKER_TASKS,
+        )
 
     def run(self, stop: threading.Event) -> int:
         """Recover, then watch and work until ``stop`` is set; finish the cells in hand; 0."""
