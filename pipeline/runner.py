@@ -35,6 +35,7 @@ def judge(
     analysed_at: datetime.datetime,
     profile: Profile | None = None,
     max_uncompressed_bytes: int = 512 * 2**20,
+    input_sha256: str | None = None,
 ) -> CellResult:
     """Read, validate, segment, measure and judge one cycle file's bytes.
 
@@ -60,7 +61,8 @@ def judge(
     return CellResult(
         # certificates name files, not the folders of the machine that judged them
         source_name=Path(name).name,
-        input_sha256=hashlib.sha256(data).hexdigest(),
+        # a caller that has just hashed the bytes (the station's worker) passes the digest in
+        input_sha256=input_sha256 or hashlib.sha256(data).hexdigest(),
         metadata=trace.metadata,
         cell_type=cell_type,
         rule_set=RuleSetRef(

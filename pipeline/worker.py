@@ -94,7 +94,8 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None]:
     from pipeline.runner import judge
 
     data = Path(task.work_path).read_bytes()
-    if hashlib.sha256(data).hexdigest() != task.sha256:
+    digest = hashlib.sha256(data).hexdigest()
+    if digest != task.sha256:
         raise InputError(
             "the file changed after it was claimed",
             SourceRef(task.name),
@@ -110,6 +111,7 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None]:
         analysed_at=task.analysed_at,
         profile=profile,
         max_uncompressed_bytes=task.max_uncompressed_bytes,
+        input_sha256=digest,
     )
     pdf = None
     wanted = task.certify == "all" or (

@@ -38,6 +38,12 @@ def test_pass_and_fail_cells_are_judged_recorded_published_archived_and_mailed(
         wait_until(lambda: len(list(s.mail.glob("*.eml"))) >= 2, what="failure mail and digest")
     check_invariants(s, {"good.csv", "low.csv"})
     assert (s.certificates / "LOT-A" / "C-1.pdf").exists()
+    import hashlib
+    import json
+
+    archived = next(p for p in s.archive.rglob("*_good.csv"))
+    doc = json.loads((s.results / "LOT-A" / "C-1.json").read_text())
+    assert doc["input"]["sha256"] == hashlib.sha256(archived.read_bytes()).hexdigest()
     assert (s.results / "LOT-A" / "C-2.json").exists()
     subjects = sorted(
         email.message_from_bytes(p.read_bytes(), policy=email.policy.default)["Subject"]
