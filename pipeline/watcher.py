@@ -23,6 +23,20 @@ from watchdog.observers.polling import PollingObserver
 log = logging.getLogger("formgate.watcher")
 
 
+class _QuietStop(logging.Filter):
+    """Drop watchdog's report of an event read while its inotify thread is being stopped.
+
+    It comes from a harmless race inside watchdog at shutdown (the folder listing, not
+    events, is what the station relies on) and would otherwise print an ERROR on stop.
+    """
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        return "called when the thread is inactive" not in record.getMessage()
+
+
+logging.getLogger("watchdog.observers.inotify").addFilter(_QuietStop())
+
+
 def list_folder(folder: Path) -> dict[str, tuple[int, int]]:
     """Regular files directly in ``folder``: name -> (size in bytes, mtime in ns)."""
     out: dict[str, tuple[int, int]] = {}
