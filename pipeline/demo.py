@@ -37,6 +37,8 @@ DEFECTS = (
     "missing_plateau",
     "over_temperature",
 )
+# Cases that a review check (not a reject check) must catch: the cell is held, not failed.
+REVIEW_CASES = ("slow_drift",)
 
 
 @dataclass(frozen=True, slots=True)
@@ -56,8 +58,15 @@ class DemoCell:
         return f"{self.lot}_{self.cell_id}.csv" + (".gz" if self.compressed else "")
 
 
-def _lot(lot: str, cell_type: str, prefix: str, day: str, defects: tuple[str, ...],
-         normal: int, compressed: tuple[int, ...]) -> tuple[DemoCell, ...]:
+def _lot(
+    lot: str,
+    cell_type: str,
+    prefix: str,
+    day: str,
+    defects: tuple[str, ...],
+    normal: int,
+    compressed: tuple[int, ...],
+) -> tuple[DemoCell, ...]:
     kinds = ("",) * normal + defects
     return tuple(
         DemoCell(
@@ -75,32 +84,57 @@ def _lot(lot: str, cell_type: str, prefix: str, day: str, defects: tuple[str, ..
 
 # Lot DEMO-LOT-01: eight normal LFP/graphite cells, one of each defect; cell 3 gzip-compressed.
 DEMO_CELLS: tuple[DemoCell, ...] = _lot(
-    "DEMO-LOT-01", LFP_CELL_TYPE, "L01", "2026-03-02", DEFECTS, normal=8, compressed=(3,)
+    "DEMO-LOT-01",
+    LFP_CELL_TYPE,
+    "L01",
+    "2026-03-02",
+    DEFECTS + REVIEW_CASES,
+    normal=8,
+    compressed=(3,),
 )
 # Optional second lot, NMC811/graphite 5 Ah: five normal cells, an internal short, a high DCIR.
 DEMO_NMC_CELLS: tuple[DemoCell, ...] = _lot(
-    "DEMO-LOT-02", NMC_CELL_TYPE, "N02", "2026-03-03", ("internal_short", "high_dcir"),
-    normal=5, compressed=(2,),
+    "DEMO-LOT-02",
+    NMC_CELL_TYPE,
+    "N02",
+    "2026-03-03",
+    ("internal_short", "high_dcir"),
+    normal=5,
+    compressed=(2,),
 )
 
 # Cell-type baselines (our own invented cells): capacity is set about 2 % above nominal, as
 # rated capacity is usually a few percent below typical (REFERENCE.md 1.7, common practice).
 _BASE = {
     LFP_CELL_TYPE: CellRecipe(
-        chemistry="lfp_graphite", nominal_capacity_ah=20.0, capacity_factor=1.02,
-        resistance_ohm=0.004, polarisation_ohm=0.002, first_cycle_loss_fraction=0.09,
-        self_discharge_a=0.0005, noise_mv=0.5, thermal_resistance_k_per_w=3.0,
+        chemistry="lfp_graphite",
+        nominal_capacity_ah=20.0,
+        capacity_factor=1.02,
+        resistance_ohm=0.004,
+        polarisation_ohm=0.002,
+        first_cycle_loss_fraction=0.09,
+        self_discharge_a=0.0005,
+        noise_mv=0.5,
+        thermal_resistance_k_per_w=3.0,
         thermal_time_constant_s=1800.0,
     ),
     NMC_CELL_TYPE: CellRecipe(
-        chemistry="nmc_graphite", nominal_capacity_ah=5.0, capacity_factor=1.02,
-        resistance_ohm=0.020, polarisation_ohm=0.010, first_cycle_loss_fraction=0.10,
-        self_discharge_a=0.0001, noise_mv=0.5, thermal_resistance_k_per_w=8.0,
+        chemistry="nmc_graphite",
+        nominal_capacity_ah=5.0,
+        capacity_factor=1.02,
+        resistance_ohm=0.020,
+        polarisation_ohm=0.010,
+        first_cycle_loss_fraction=0.10,
+        self_discharge_a=0.0001,
+        noise_mv=0.5,
+        thermal_resistance_k_per_w=8.0,
         thermal_time_constant_s=900.0,
     ),
 }
 # Internal-short drift after relaxation and over-temperature peak of the defect cells.
 SHORT_DRIFT_MV_PER_H = -3.0
+# A drift between the LFP rule set's review (-0.5) and reject (-2) limits: held for review.
+SLOW_DRIFT_MV_PER_H = -1.0
 OVER_TEMPERATURE_C = 62.0
 # DCIR multiple of the high-resistance cell, well beyond the type's usual +-5 % spread.
 _HIGH_DCIR_FACTOR = {LFP_CELL_TYPE: 2.5, NMC_CELL_TYPE: 3.5}
@@ -132,11 +166,15 @@ def demo_recipe(cell: DemoCell, rng: np.random.Generator) -> CellRecipe:
         case "high_dcir":
             factor = _HIGH_DCIR_FACTOR[cell.cell_type]
             return dataclasses.replace(
-                recipe, resistance_ohm=factor * recipe.resistance_ohm,
+                recipe,
+                resistance_ohm=factor * recipe.resistance_ohm,
                 polarisation_ohm=factor * recipe.polarisation_ohm,
             )
         case "internal_short":
             leak_a = self_discharge_for_drift(recipe, SHORT_DRIFT_MV_PER_H)
+            return dataclasses.replace(recipe, self_discharge_a=leak_a)
+        case "slow_drift":
+            leak_a = self_discharge_for_drift(recipe, SLOW_DRIFT_MV_PER_H)
             return dataclasses.replace(recipe, self_discharge_a=leak_a)
         case "missing_plateau":
             return dataclasses.replace(recipe, sloped_fraction=1.0)
@@ -171,8 +209,9 @@ def demo_file_bytes(cell: DemoCell, seed: int = 2026) -> bytes:
     return gzip.compress(data, mtime=0) if cell.compressed else data
 
 
-def write_demo_lot(folder: pathlib.Path, *, seed: int = 2026,
-                   cells: tuple[DemoCell, ...] = DEMO_CELLS) -> list[pathlib.Path]:
+def write_demo_lot(
+    folder: pathlib.Path, *, seed: int = 2026, cells: tuple[DemoCell, ...] = DEMO_CELLS
+) -> list[pathlib.Path]:
     """Write one cycle file per cell into ``folder`` (created if needed); return their paths.
 
     Each file appears atomically: written as ``.<name>.part``, then renamed.

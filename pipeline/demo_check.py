@@ -9,12 +9,19 @@ from __future__ import annotations
 import datetime
 from pathlib import Path
 
-from pipeline.demo import DEMO_CELLS, DEMO_NMC_CELLS, write_demo_lot
+from pipeline.demo import DEMO_CELLS, DEMO_NMC_CELLS, REVIEW_CASES, DemoCell, write_demo_lot
 from pipeline.rulebook import load_rules_dir
 from pipeline.runner import check_file
 from pipeline.summary import summary_table
 
 RULES_DIR = Path(__file__).resolve().parent.parent / "rules"
+
+
+def expected_verdict(cell: DemoCell) -> str:
+    """What the shipped rules must say of an invented cell: its case is built for that."""
+    if not cell.defect:
+        return "pass"
+    return "hold" if cell.defect in REVIEW_CASES else "fail"
 
 
 def run_demo(folder: Path, *, analysed_at: datetime.datetime, rules_dir: Path = RULES_DIR) -> int:
@@ -37,7 +44,7 @@ def run_demo(folder: Path, *, analysed_at: datetime.datetime, rules_dir: Path = 
     (folder / "summary.txt").write_text(table, encoding="utf-8")
     print(table, end="")
     # every invented defect is one a reject check must catch; normal cells must pass
-    expected = {cell.cell_id: ("fail" if cell.defect else "pass") for cell in cells}
+    expected = {cell.cell_id: expected_verdict(cell) for cell in cells}
     surprises = [
         f"{r.cell_id}: expected {expected[r.cell_id]}, got {r.verdict.kind.value}"
         for r in results

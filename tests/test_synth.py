@@ -160,8 +160,14 @@ def test_coulomb_counting_matches_the_true_charge_of_each_step() -> None:
 
 @pytest.mark.parametrize("chemistry", sorted(synth.CHEMISTRIES))
 def test_measured_capacities_come_out_where_the_recipe_says(chemistry: str) -> None:
-    recipe = CellRecipe(chemistry=chemistry, nominal_capacity_ah=5.0, capacity_factor=1.03,
-                        resistance_ohm=0.02, polarisation_ohm=0.01, first_cycle_loss_fraction=0.08)
+    recipe = CellRecipe(
+        chemistry=chemistry,
+        nominal_capacity_ah=5.0,
+        capacity_factor=1.03,
+        resistance_ohm=0.02,
+        polarisation_ohm=0.01,
+        first_cycle_loss_fraction=0.08,
+    )
     record = synth.simulate_formation(recipe, np.random.default_rng(2))
     grading = coulombs_ah(record, record.step_named(synth.GRADING_STEP))
     assert grading == pytest.approx(recipe.capacity_ah, rel=0.005)
@@ -234,8 +240,11 @@ def test_cycle_file_parses_with_the_csv_module() -> None:
     body = rows[1:]
     assert len(body) == len(record)
     columns = np.array(body, dtype=float).T
-    for got, want in zip(columns, (record.time_s, record.voltage_v, record.current_a,
-                                   record.temperature_c, record.step, record.cycle), strict=True):
+    for got, want in zip(
+        columns,
+        (record.time_s, record.voltage_v, record.current_a, record.temperature_c, record.step, record.cycle),
+        strict=True,
+    ):
         assert np.array_equal(got, want)  # the record is already rounded as written
     assert text.endswith("\n") and "-0.00000" not in text
 
@@ -285,9 +294,9 @@ def lot() -> dict[str, SimulatedRecord]:
 def test_demo_lot_description() -> None:
     assert {c.cell_type for c in demo.DEMO_CELLS} == {"DEMO-LFP-20A"}
     assert {c.lot for c in demo.DEMO_CELLS} == {"DEMO-LOT-01"}
-    assert sorted(c.defect for c in demo.DEMO_CELLS if c.defect) == sorted(demo.DEFECTS)
+    assert sorted(c.defect for c in demo.DEMO_CELLS if c.defect) == sorted(demo.DEFECTS + demo.REVIEW_CASES)
     assert sum(1 for c in demo.DEMO_CELLS if not c.defect) == 8
-    assert len({c.cell_id for c in demo.DEMO_CELLS + demo.DEMO_NMC_CELLS}) == 21
+    assert len({c.cell_id for c in demo.DEMO_CELLS + demo.DEMO_NMC_CELLS}) == 22
 
 
 def test_normal_cells_spread_as_a_lot(lot: dict[str, SimulatedRecord]) -> None:
@@ -358,10 +367,12 @@ def test_write_demo_lot(tmp_path: pathlib.Path) -> None:
     text = gzip.decompress(gz[0].read_bytes()).decode("utf-8")
     assert "# cell_type: DEMO-LFP-20A" in text and "# station: demo-line-1" in text
     for path in paths:
-        head = (gzip.decompress(path.read_bytes()) if path.suffix == ".gz"
-                else path.read_bytes()).decode("utf-8").splitlines()[:8]
+        head = (
+            (gzip.decompress(path.read_bytes()) if path.suffix == ".gz" else path.read_bytes())
+            .decode("utf-8")
+            .splitlines()[:8]
+        )
         keys = [line[2:].split(":", 1)[0] for line in head if line.startswith("# ")]
-        assert keys == ["cell_id", "lot", "cell_type", "channel", "station", "program",
-                        "started_at"]
+        assert keys == ["cell_id", "lot", "cell_type", "channel", "station", "program", "started_at"]
     again = demo.write_demo_lot(tmp_path / "again")
     assert [p.read_bytes() for p in again] == [p.read_bytes() for p in paths]
