@@ -32,6 +32,7 @@ from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
 
+from pipeline.mail import Letter
 from pipeline.migrations import MIGRATIONS, SCHEMA_VERSION, LedgerError, migrate
 from pipeline.model import CheckResult, SourceRef
 
@@ -48,7 +49,6 @@ __all__ = [
 
 INPUT_STATES = ("claimed", "judged", "published", "archived", "quarantined", "duplicate")
 FINAL_STATES = ("archived", "quarantined", "duplicate")
-MAIL_KINDS = ("failure", "hold", "digest", "alert")
 # A writer waits this long for another process's write lock before giving up.
 BUSY_TIMEOUT_MS = 30_000
 _SHA256 = re.compile(r"[0-9a-f]{64}")
@@ -139,17 +139,9 @@ class ResultRow:
     digest_mail_id: int | None
 
 
-@dataclass(frozen=True, slots=True)
-class OutgoingMail:
-    """A message the caller asks to queue. ``message_id`` must be unique for all time."""
-
-    kind: str
-    message_id: str
-    recipients: tuple[str, ...]
-    subject: str
-    body_text: str
-    attachment_path: str | None = None
-    lot: str | None = None
+# What the caller asks to queue is a composed letter (kind, Message-ID, recipients, subject,
+# body, attachment, lot); its ``message_id`` must be unique for all time.
+OutgoingMail = Letter
 
 
 @dataclass(frozen=True, slots=True)
@@ -634,8 +626,6 @@ class Ledger:
         self, mail: OutgoingMail, *, created_at: str, result_id: int | None, lot: str | None
     ) -> int:
         """Insert unless the message id is queued already; the row's id either way."""
-        if mail.kind not in MAIL_KINDS:
-            raise ValueError(f"mail kind must be one of {MAIL_KINDS}, got {mail.kind!r}")
         self._conn.execute(
             "INSERT INTO outbox (kind, message_id, recipients, subject, body_text, "
             "attachment_path, cell_result_id, lot, state, next_attempt_at, created_at) "

@@ -61,7 +61,7 @@ class Letter:
 
     def __post_init__(self) -> None:
         if self.kind not in KINDS:
-            raise ValueError(f"unknown letter kind {self.kind!r} (expected one of {KINDS})")
+            raise ValueError(f"mail kind must be one of {KINDS}, got {self.kind!r}")
         object.__setattr__(self, "recipients", check_addresses(self.recipients))
         if not re.fullmatch(r"<[^<>@\s]+@[^<>@\s]+>", self.message_id) or "=?" in self.message_id:
             raise ValueError(f"not a Message-ID: {self.message_id!r}")

@@ -15,7 +15,7 @@ import threading
 from collections.abc import Callable
 
 from pipeline import faults
-from pipeline.ledger import Ledger, MailRow, OutgoingMail
+from pipeline.ledger import Ledger, MailRow
 from pipeline.mail import Letter, MailError, alert_letter, build_message
 from pipeline.smtp import SmtpSettings, next_attempt_delay_s, send
 
@@ -26,19 +26,6 @@ Clock = Callable[[], datetime.datetime]
 
 def utc_now() -> datetime.datetime:
     return datetime.datetime.now(datetime.UTC)
-
-
-def outgoing(letter: Letter) -> OutgoingMail:
-    """The ledger's outbox row for a composed letter."""
-    return OutgoingMail(
-        kind=letter.kind,
-        message_id=letter.message_id,
-        recipients=letter.recipients,
-        subject=letter.subject,
-        body_text=letter.body_text,
-        attachment_path=letter.attachment_path,
-        lot=letter.lot,
-    )
 
 
 def _letter(row: MailRow) -> Letter:
@@ -109,7 +96,7 @@ def deliver_due(
                     key=f"parked:{row.message_id}",
                     domain=domain,
                 )
-                ledger.queue_mail(outgoing(alert), now=now)
+                ledger.queue_mail(alert, now=now)
         counts[outcome] += 1
     return counts
 

@@ -40,7 +40,7 @@ from pipeline.mail import (
     failure_letter,
     hold_letter,
 )
-from pipeline.mailer import MailThread, outgoing
+from pipeline.mailer import MailThread
 from pipeline.model import CellResult, VerdictKind
 from pipeline.names import safe_name
 from pipeline.rulebook import (
@@ -131,7 +131,7 @@ class Station:
                     key=f"rules:{key}",
                     domain=self.settings.routing.domain,
                 )
-                self.ledger.queue_mail(outgoing(letter), now=self.clock())
+                self.ledger.queue_mail(letter, now=self.clock())
             return
         self.rulebook = load_rules_dir(folder)
         for rs in self.rulebook.rule_sets:
@@ -524,7 +524,7 @@ class Station:
             analysed_at=result.analysed_at,
             json_path=str(json_path),
             pdf_path=str(pdf_path) if with_pdf else None,
-            mails=[outgoing(letter) for letter in self.letters(result, pdf_path)],
+            mails=self.letters(result, pdf_path),
         )
         faults.point("after_commit")
 
@@ -549,15 +549,13 @@ class Station:
         letters = []
         if self.settings.routing.alerts_to:
             letters.append(
-                outgoing(
-                    alert_letter(
-                        f"file quarantined: {row.name}",
-                        reason,
-                        self.settings.routing.alerts_to,
-                        station=self.settings.station_name,
-                        key=f"quarantine:{row.sha256}:{row.id}",
-                        domain=self.settings.routing.domain,
-                    )
+                alert_letter(
+                    f"file quarantined: {row.name}",
+                    reason,
+                    self.settings.routing.alerts_to,
+                    station=self.settings.station_name,
+                    key=f"quarantine:{row.sha256}:{row.id}",
+                    domain=self.settings.routing.domain,
                 )
             )
         if not row.reason:
@@ -696,7 +694,7 @@ class Station:
                 digest_no=self.ledger.digest_count(lot) + 1,
                 domain=routing.domain,
             )
-            self.ledger.queue_digest(outgoing(letter), [c.id for c in cells], now=now)
+            self.ledger.queue_digest(letter, [c.id for c in cells], now=now)
             log.info("digest queued for lot %s: %d passed cell(s)", lot, len(cells))
 
     def write_heartbeat(self, state: str = "running") -> None:
