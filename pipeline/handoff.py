@@ -17,9 +17,11 @@ Moving files and reading clocks are the watcher's and station's job.
 
 from __future__ import annotations
 
+import itertools
 import zlib
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
+from typing import BinaryIO
 
 TEMPORARY_SUFFIXES = (".tmp", ".part")
 MODES = ("rename", "marker", "settle")
@@ -110,23 +112,48 @@ def decide(
     return Decision(tuple(ready), tuple(waiting), tuple(orphans), tuple(ignored), seen)
 
 
+GZIP_MAGIC = b"\x1f\x8b"
+
+
+def _gzip_complete(chunks: Iterable[bytes]) -> bool:
+    """True if the gzip stream fed in ``chunks`` reaches its end (output is thrown away)."""
+    d = zlib.decompressobj(wbits=31)
+    try:
+        for chunk in chunks:
+            pending = chunk
+            while pending and not d.eof:
+                d.decompress(pending, 1 << 20)  # bounded output: only reaching the end matters
+                pending = d.unconsumed_tail
+            if d.eof:
+                return True
+        while not d.eof and d.decompress(b"", 1 << 20):  # output still held back
+            pass
+    except zlib.error:
+        return False
+    return d.eof
+
+
 def looks_complete(data: bytes) -> bool:
     """True if the bytes look like a whole file: a complete gzip stream, or text ending in a newline.
 
     A writer that pauses mid-line, or a gzip stream cut short, fails this even
     when its size has not changed for a while.
     """
-    if data[:2] == b"\x1f\x8b":
-        d = zlib.decompressobj(wbits=31)
-        pending = data
-        try:
-            while not d.eof:
-                # output is bounded and thrown away: only reaching the end matters
-                out = d.decompress(pending, 1 << 20)
-                pending = d.unconsumed_tail
-                if not out and not pending:
-                    break
-        except zlib.error:
-            return False
-        return d.eof
+    if data[:2] == GZIP_MAGIC:
+        return _gzip_complete([data])
     return data.endswith(b"\n")
+
+
+def file_looks_complete(fh: BinaryIO) -> bool:
+    """:func:`looks_complete` for an open file, reading only what it needs.
+
+    Text needs only its last byte; a gzip stream is read through once, in blocks.
+    """
+    head = fh.read(2)
+    if head == GZIP_MAGIC:
+        return _gzip_complete(itertools.chain([head], iter(lambda: fh.read(1 << 20), b"")))
+    fh.seek(0, 2)
+    if fh.tell() == 0:
+        return False
+    fh.seek(-1, 2)
+    return fh.read(1) == b"\n"

@@ -84,10 +84,15 @@ class Published:
     certificate: Path | None
 
 
+def result_paths(results: Path, certificates: Path, result: CellResult) -> tuple[Path, Path]:
+    """``<results>/<lot>/<cell_id>.json`` and ``<certificates>/<lot>/<cell_id>.pdf``, safe names."""
+    lot, cell = safe_name(result.lot), safe_name(result.cell_id)
+    return results / lot / f"{cell}.json", certificates / lot / f"{cell}.pdf"
+
+
 def output_paths(out: Path, result: CellResult) -> tuple[Path, Path]:
     """``results/<lot>/<cell_id>.json`` and ``certificates/<lot>/<cell_id>.pdf`` under ``out``."""
-    lot, cell = safe_name(result.lot), safe_name(result.cell_id)
-    return out / "results" / lot / f"{cell}.json", out / "certificates" / lot / f"{cell}.pdf"
+    return result_paths(out / "results", out / "certificates", result)
 
 
 def publish(result: CellResult, out: Path, *, certificate: bool = True) -> Published:

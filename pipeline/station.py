@@ -30,7 +30,7 @@ from pathlib import Path
 
 from pipeline import faults
 from pipeline.errors import FormgateError
-from pipeline.handoff import Seen, decide, is_temporary, looks_complete
+from pipeline.handoff import Seen, decide, file_looks_complete, is_temporary
 from pipeline.ledger import CheckRowData, InputRow, Ledger
 from pipeline.mail import (
     DigestRow,
@@ -42,7 +42,6 @@ from pipeline.mail import (
 )
 from pipeline.mailer import MailThread
 from pipeline.model import CellResult, VerdictKind
-from pipeline.names import safe_name
 from pipeline.rulebook import (
     RuleBook,
     check_profiles_dir,
@@ -50,6 +49,7 @@ from pipeline.rulebook import (
     load_rule_set,
     load_rules_dir,
 )
+from pipeline.runner import result_paths
 from pipeline.settings import InboxSettings, Settings, choose_profile
 from pipeline.smtp import SmtpSettings
 from pipeline.worker import Output, Task, init_worker, run_task
@@ -90,6 +90,7 @@ class Station:
         self.attempts: dict[int, int] = {}
         self.inbox_of: dict[str, str] = {}  # work path -> inbox name, for its import profile
         self.kill_reasons: dict[int, str] = {}  # input id -> why its worker was stopped
+        self.running_since_s: dict[Future[Output], float] = {}  # monotonic start of each task
         self.pool: ProcessPoolExecutor | None = None
         self.started_at = clock()
         self.last_heartbeat = 0.0
@@ -102,10 +103,9 @@ class Station:
     def load_rules(self, *, first: bool = False) -> None:
         """Load the rules folder if it changed; a broken edit keeps the last good rules in force."""
         folder = self.settings.rules_dir
-        fingerprint = tuple(
-            (str(p), p.stat().st_size, p.stat().st_mtime_ns)
-            for p in sorted([*folder.glob("*.toml"), *folder.glob("profiles/*.toml")])
-        )
+        files = sorted([*folder.glob("*.toml"), *folder.glob("profiles/*.toml")])
+        stats = [(str(p), p.stat()) for p in files]
+        fingerprint = tuple((name, st.st_size, st.st_mtime_ns) for name, st in stats)
         if fingerprint == self.rules_fingerprint and not first:
             return
         self.rules_fingerprint = fingerprint
@@ -264,11 +264,12 @@ class Station:
         if inbox.handover == "settle":
             try:
                 with source.open("rb") as fh:
-                    data = fh.read(int(self.settings.max_input_MB * MB) + 1)
+                    # an oversized file is claimed as it is: it goes to quarantine unread
+                    oversized = os.fstat(fh.fileno()).st_size > self.settings.max_input_MB * MB
+                    if not oversized and not file_looks_complete(fh):
+                        return  # quiet but cut short: wait for the writer to finish
             except FileNotFoundError:
                 return
-            if len(data) <= self.settings.max_input_MB * MB and not looks_complete(data):
-                return  # quiet but cut short: wait for the writer to finish
         target = move_into(source, self.settings.work)
         if target is None:
             return
@@ -281,11 +282,9 @@ class Station:
 
     def register(self, path: Path) -> None:
         """Ledger claim for a file in work/; duplicates are archived at once, the rest queued."""
-        size = path.stat().st_size
-        if size > self.settings.max_input_MB * MB:
-            sha = _sha256_file(path)
-        else:
-            sha = hashlib.sha256(path.read_bytes()).hexdigest()
+        with path.open("rb") as fh:  # streamed: the file is not held in memory
+            size = os.fstat(fh.fileno()).st_size
+            sha = hashlib.file_digest(fh, "sha256").hexdigest()
         row, earlier = self.ledger.claim_input(
             sha256=sha,
             name=_original_name(path.name),
@@ -419,8 +418,7 @@ class Station:
         # terminating the pool's processes; BrokenProcessPool then reaches every task.
         limit = self.settings.task_timeout_s
         now = time.monotonic()
-        started = getattr(self, "_started", {})
-        self._started = started
+        started = self.running_since_s
         for future in self.in_flight:
             if future.running():
                 started.setdefault(future, now)
@@ -466,11 +464,7 @@ class Station:
         )
 
     def output_paths(self, result: CellResult) -> tuple[Path, Path]:
-        lot, cell = safe_name(result.lot), safe_name(result.cell_id)
-        return (
-            self.settings.results / lot / f"{cell}.json",
-            self.settings.certificates / lot / f"{cell}.pdf",
-        )
+        return result_paths(self.settings.results, self.settings.certificates, result)
 
     def letters(self, result: CellResult, pdf_path: Path) -> list[Letter]:
         routing, station = self.settings.routing, self.settings.station_name
@@ -579,14 +573,13 @@ class Station:
 
     def _move_final(self, row: InputRow, target: Path) -> None:
         work = Path(row.work_path)
-        faults_after = "after_archive_move"
         if work.exists():
             move_into(work, target.parent, name=target.name, exact=True)
         for inbox in self.settings.inboxes:
             marker = work.with_name(work.name + inbox.marker_suffix)
             if inbox.handover == "marker" and marker.exists():
                 move_into(marker, target.parent, name=target.name + inbox.marker_suffix)
-        faults.point(faults_after)
+        faults.point("after_archive_move")
 
     # ---- recovery ------------------------------------------------------------------------
 
@@ -716,14 +709,6 @@ class Station:
         write_atomic(
             (json.dumps(beat, indent=2) + "\n").encode(), self.settings.heartbeat, sync=False
         )
-
-
-def _sha256_file(path: Path) -> str:
-    digest = hashlib.sha256()
-    with path.open("rb") as fh:
-        for block in iter(lambda: fh.read(MB), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def _original_name(work_name: str) -> str:

@@ -3,11 +3,12 @@
 from __future__ import annotations
 
 import gzip
+import io
 
 from hypothesis import given
 from hypothesis import strategies as st
 
-from pipeline.handoff import decide, looks_complete
+from pipeline.handoff import decide, file_looks_complete, looks_complete
 
 
 def test_rename_mode_claims_final_names_at_once_and_never_temporary_ones() -> None:
@@ -51,3 +52,10 @@ def test_gzip_is_complete_only_when_whole(payload: bytes) -> None:
     packed = gzip.compress(payload, mtime=0)
     assert looks_complete(packed)
     assert not looks_complete(packed[: len(packed) - 9])  # cut inside the trailer or data
+
+
+@given(st.binary(min_size=0, max_size=3000), st.booleans())
+def test_an_open_file_is_judged_like_its_bytes(payload: bytes, packed: bool) -> None:
+    data = gzip.compress(payload, mtime=0) if packed else payload
+    for cut in (data, data[: len(data) // 2]):
+        assert file_looks_complete(io.BytesIO(cut)) == looks_complete(cut)
