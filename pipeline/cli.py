@@ -12,8 +12,9 @@ import os
 import platform
 import sys
 import tempfile
+import time
 import traceback
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -21,13 +22,14 @@ from pipeline import __version__
 from pipeline.errors import FormgateError
 
 if TYPE_CHECKING:
+    from pipeline.runner import FileOutcome
     from pipeline.settings import Settings
 
 EXIT_OK, EXIT_REJECTED, EXIT_USER, EXIT_BUG, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 
 
 def _analysis_time(
-    text: str | None, environ: dict[str, str] | os._Environ[str]
+    text: str | None, environ: Mapping[str, str]
 ) -> datetime.datetime:
     """--analysed-at, else SOURCE_DATE_EPOCH (reproducible output), else now; UTC, whole seconds."""
     if text:
@@ -52,10 +54,7 @@ def _analysis_time(
     return datetime.datetime.now(datetime.UTC).replace(microsecond=0)
 
 
-def _reason(outcome: object) -> str:
-    from pipeline.runner import FileOutcome
-
-    assert isinstance(outcome, FileOutcome)
+def _reason(outcome: FileOutcome) -> str:
     if outcome.error is not None:
         return str(outcome.error).splitlines()[0]
     assert outcome.result is not None
@@ -163,7 +162,7 @@ def setup_logging(logs: Path, max_mb: float, keep: int, *, verbose: bool = True)
 
     logs.mkdir(parents=True, exist_ok=True)
     fmt = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
-    fmt.converter = __import__("time").gmtime
+    fmt.converter = time.gmtime
     handler = logging.handlers.RotatingFileHandler(
         logs / "formgate.log", maxBytes=int(max_mb * 2**20), backupCount=keep, encoding="utf-8"
     )

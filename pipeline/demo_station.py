@@ -151,12 +151,10 @@ def run_station_demo(folder: Path | None = None) -> int:
     finally:
         stop.set()
         feeder.join()
-    return _report(root, settings, len(dropped))
+    return _report(root, len(dropped))
 
 
-def _report(root: Path, settings: object, expected: int) -> int:
-    from pipeline.summary import summary_table  # noqa: F401 - same table as `check`
-
+def _report(root: Path, expected: int) -> int:
     archived = sorted(
         p.name
         for p in (root / "archive").rglob("*")

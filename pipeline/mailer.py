@@ -13,6 +13,7 @@ import datetime
 import logging
 import threading
 from collections.abc import Callable
+from pathlib import Path
 
 from pipeline import faults
 from pipeline.ledger import Ledger, MailRow
@@ -106,7 +107,7 @@ class MailThread(threading.Thread):
 
     def __init__(
         self,
-        ledger_path: object,
+        ledger_path: Path,
         smtp: SmtpSettings,
         *,
         station: str,
@@ -126,9 +127,7 @@ class MailThread(threading.Thread):
         self.error: str | None = None
 
     def run(self) -> None:
-        from pathlib import Path
-
-        with Ledger(Path(str(self.ledger_path))) as ledger:
+        with Ledger(self.ledger_path) as ledger:
             while not self.stop_event.is_set():
                 try:
                     deliver_due(
