@@ -39,8 +39,8 @@ class Rendered:
         return phrase in self.flat or phrase.replace(" ", "") in self.flat.replace(" ", "")
 
 
-def render(result: CellResult) -> Rendered:
-    """Render ``result`` while recording every URL the fetcher is asked for."""
+def render_recording(html: str) -> tuple[bytes, list[str]]:
+    """Render ``html`` while recording every URL the fetcher is asked for."""
     asked: list[str] = []
 
     class Recording(pdf.TemplateFetcher):
@@ -50,7 +50,13 @@ def render(result: CellResult) -> Rendered:
 
     with pytest.MonkeyPatch.context() as patch:
         patch.setattr(pdf, "TemplateFetcher", Recording)
-        data = pdf.render_pdf(render_html(result))
+        data = pdf.render_pdf(html)
+    return data, asked
+
+
+def render(result: CellResult) -> Rendered:
+    """Render ``result`` while recording every URL the fetcher is asked for."""
+    data, asked = render_recording(render_html(result))
     return Rendered(result, asked, data)
 
 
@@ -223,16 +229,7 @@ def test_markup_that_asks_for_outside_files_renders_without_them(
         '<img src="data:image/png;base64,iVBORw0KGgo="><img src="../pyproject.toml">'
         '<link rel="stylesheet" href="/etc/ssl/openssl.cnf"></body>',
     )
-    asked: list[str] = []
-
-    class Recording(pdf.TemplateFetcher):
-        def fetch(self, url: str, headers: object = None):  # type: ignore[no-untyped-def]
-            asked.append(url)
-            return super().fetch(url, headers)
-
-    with pytest.MonkeyPatch.context() as patch:
-        patch.setattr(pdf, "TemplateFetcher", Recording)
-        data = pdf.render_pdf(html)
+    data, asked = render_recording(html)
     assert data.startswith(b"%PDF-")
     refused = [u for u in asked if not u.startswith(TEMPLATES_DIR.as_uri() + "/")]
     assert len(refused) >= 4

@@ -38,6 +38,7 @@ from pipeline.model import (
     VerdictKind,
     Window,
 )
+from pipeline.ocp import lfp_graphite_cell
 
 NOMINAL_AH = 20.0
 GRADING_AH = 20.13
@@ -50,30 +51,10 @@ INPUT_SHA256 = hashlib.sha256(b"invented cycle file DEMO-C0042").hexdigest()
 RULES_SHA256 = hashlib.sha256(b"invented rule set demo-lfp r3").hexdigest()
 
 
-def u_lfp_v(y: np.ndarray) -> np.ndarray:
-    """LFP potential vs Li: Safari & Delacourt, J. Electrochem. Soc. 158 (2011) A562."""
-    return (
-        3.4323
-        - 0.8428 * np.exp(-80.2493 * (1 - y) ** 1.3198)
-        - 3.2474e-6 * np.exp(20.2645 * (1 - y) ** 3.8003)
-        + 3.2482e-6 * np.exp(20.2646 * (1 - y) ** 3.7995)
-    )
-
-
-def u_graphite_v(x: np.ndarray) -> np.ndarray:
-    """Graphite potential vs Li: Chen et al., J. Electrochem. Soc. 167 (2020) 080534."""
-    return (
-        1.9793 * np.exp(-39.3631 * x)
-        + 0.2482
-        - 0.0909 * np.tanh(29.8538 * (x - 0.1234))
-        - 0.04478 * np.tanh(14.9159 * (x - 0.2769))
-        - 0.0205 * np.tanh(30.4444 * (x - 0.6103))
-    )
-
-
 def full_cell_ocv_v(soc: np.ndarray) -> np.ndarray:
-    """Synthetic LFP/graphite full cell, electrode map of REFERENCE.md 5.5 (illustrative)."""
-    return u_lfp_v(0.97 - 0.94 * soc) - u_graphite_v(0.02 + 0.83 * soc)
+    """Synthetic LFP/graphite full cell, electrode map of REFERENCE.md 5.5 (illustrative):
+    the Safari & Delacourt 2011 LFP fit minus the Chen et al. 2020 graphite fit."""
+    return lfp_graphite_cell(soc)
 
 
 def soc_at_cutoff() -> float:
