@@ -103,12 +103,8 @@ TABLES: tuple[Table, ...] = (
         "Bounds outside which a voltage sample means the file is wrong (units, "
         "wiring, channel), not the cell. A cell type may override them.",
         (
-            Key(
-                "min_voltage_V", NUMBER, "lowest plausible terminal voltage", unit="V", default=-0.1
-            ),
-            Key(
-                "max_voltage_V", NUMBER, "highest plausible terminal voltage", unit="V", default=5.0
-            ),
+            Key("min_voltage_V", NUMBER, "lowest plausible terminal voltage", unit="V", default=-0.1),
+            Key("max_voltage_V", NUMBER, "highest plausible terminal voltage", unit="V", default=5.0),
         ),
     ),
     Table(
@@ -287,8 +283,7 @@ TABLES: tuple[Table, ...] = (
             Key(
                 "severity",
                 TEXT,
-                "reject: out of window fails the cell; review: it holds the "
-                "cell for a person to decide",
+                "reject: out of window fails the cell; review: it holds the cell for a person to decide",
                 required=True,
                 allowed=tuple(s.value for s in Severity),
                 example='"reject"',
@@ -348,11 +343,11 @@ message = "Grading capacity below rated capacity."
 """
 
 
-def _cell(text: str) -> str:
+def table_cell(text: str) -> str:
     return text.replace("|", "\\|")
 
 
-def _default_text(key: Key) -> str:
+def default_text(key: Key) -> str:
     if key.required:
         return "required"
     if key.default == ():
@@ -364,7 +359,7 @@ def _default_text(key: Key) -> str:
     return f"`{key.default}`"
 
 
-def _allowed_text(key: Key) -> str:
+def allowed_text(key: Key) -> str:
     parts = []
     if key.allowed:
         parts.append(", ".join(f"`{a}`" for a in key.allowed))
@@ -407,8 +402,8 @@ def render_docs() -> str:
         ]
         for key in table.keys:
             out.append(
-                f"| `{key.name}` | {key.kind} | {_cell(key.unit)} | {_cell(_allowed_text(key))} "
-                f"| {_cell(_default_text(key))} | {_cell(key.meaning)} |"
+                f"| `{key.name}` | {key.kind} | {table_cell(key.unit)} | {table_cell(allowed_text(key))} "
+                f"| {table_cell(default_text(key))} | {table_cell(key.meaning)} |"
             )
         out.append("")
     out += [
@@ -422,8 +417,8 @@ def render_docs() -> str:
     ]
     for m in METRICS:
         out.append(
-            f"| `{m.name}` | {_cell(m.unit)} | {'yes' if m.relative_ok else ''} "
-            f"| {_cell(m.meaning)} |"
+            f"| `{m.name}` | {table_cell(m.unit)} | {'yes' if m.relative_ok else ''} "
+            f"| {table_cell(m.meaning)} |"
         )
     out += ["", "## Renamed keys", "", "| table | old key | new key |", "|---|---|---|"]
     for (table_name, old), new in sorted(RENAMED.items()):

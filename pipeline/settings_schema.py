@@ -25,9 +25,9 @@ from pipeline.rules_schema import (
     TEXT_LIST,
     Key,
     Table,
-    _allowed_text,
-    _cell,
-    _default_text,
+    allowed_text,
+    default_text,
+    table_cell,
 )
 from pipeline.smtp import SECURITY
 
@@ -42,9 +42,7 @@ LOCAL_SENDER = "formgate@localhost"
 
 
 def _positive(name: str, meaning: str, unit: str, default: float) -> Key:
-    return Key(
-        name, NUMBER, meaning, unit=unit, default=default, minimum=0.0, minimum_exclusive=True
-    )
+    return Key(name, NUMBER, meaning, unit=unit, default=default, minimum=0.0, minimum_exclusive=True)
 
 
 def _folder(name: str, meaning: str) -> Key:
@@ -144,8 +142,7 @@ SETTINGS_TABLES: tuple[Table, ...] = (
     ),
     Table(
         "inbox",
-        "One table per folder the cyclers write into; ID names the inbox in logs. At least one "
-        "is required.",
+        "One table per folder the cyclers write into; ID names the inbox in logs. At least one is required.",
         (
             Key(
                 "folder",
@@ -194,9 +191,7 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 default="events",
                 allowed=WATCH_MODES,
             ),
-            _positive(
-                "poll_interval_s", "with watch = polling: how often the folder is listed", "s", 5.0
-            ),
+            _positive("poll_interval_s", "with watch = polling: how often the folder is listed", "s", 5.0),
             Key(
                 "profile",
                 TEXT,
@@ -302,8 +297,7 @@ SETTINGS_TABLES: tuple[Table, ...] = (
     ),
     Table(
         "mail",
-        "Who gets what. An empty list means no letters of that kind. Each address is a plain "
-        "local@domain.",
+        "Who gets what. An empty list means no letters of that kind. Each address is a plain local@domain.",
         (
             _addresses(
                 "failures_to",
@@ -317,13 +311,11 @@ SETTINGS_TABLES: tuple[Table, ...] = (
             ),
             _addresses(
                 "alerts_to",
-                "station problems: a folder that cannot be written, mail that cannot be sent, "
-                "a stuck file",
+                "station problems: a folder that cannot be written, mail that cannot be sent, a stuck file",
             ),
             _positive(
                 "digest_quiet_s",
-                "a lot's digest goes out when no new cell of that lot has been judged for "
-                "this long",
+                "a lot's digest goes out when no new cell of that lot has been judged for this long",
                 "s",
                 1800.0,
             ),
@@ -350,11 +342,9 @@ CROSS_RULES: tuple[str, ...] = (
     "An inbox folder or the work folder may not be the station folder itself, nor hold the "
     "ledger or the heartbeat file: every file in them is taken for an input.",
     "Paths may not be empty or hold control characters.",
-    "`marker_suffix` starts with a dot and is not `.tmp` or `.part` (those names are never "
-    "claimed).",
+    "`marker_suffix` starts with a dot and is not `.tmp` or `.part` (those names are never claimed).",
     "A `glob` may not be empty or hold a `/` or `\\`: it is matched against the file name only.",
-    '`security = "none"` cannot go with a `username`: the password would cross the network '
-    "in clear text.",
+    '`security = "none"` cannot go with a `username`: the password would cross the network in clear text.',
     "A `username` needs exactly one of `password_env` and `password_file`, and those need a "
     "`username`. `password_env` is a variable name (letters, digits, `_`).",
     "With a `host`, `sender` and `failures_to` are required: failed cells must reach someone.",
@@ -399,7 +389,7 @@ def _comment(text: str, indent: str = "") -> list[str]:
 
 def _key_comment(table: Table, key: Key) -> str:
     unit = f" [{key.unit}]" if key.unit else ""
-    allowed = _allowed_text(key).replace("`", "")
+    allowed = allowed_text(key).replace("`", "")
     allowed = f" ({allowed})" if allowed and not key.allowed else ""
     options = f" One of: {', '.join(key.allowed)}." if key.allowed else ""
     if key.default is None and key.allowed_note.startswith("defaults"):
@@ -461,8 +451,8 @@ def _rows(table: Table) -> list[str]:
     ]
     for key in table.keys:
         rows.append(
-            f"| `{key.name}` | {key.kind} | {_cell(key.unit)} | {_cell(_allowed_text(key))} "
-            f"| {_cell(_default_text(key))} | {_cell(key.meaning)} |"
+            f"| `{key.name}` | {key.kind} | {table_cell(key.unit)} | {table_cell(allowed_text(key))} "
+            f"| {table_cell(default_text(key))} | {table_cell(key.meaning)} |"
         )
     return rows
 

@@ -234,6 +234,8 @@ class Station:
     def scan_inboxes(self, now_s: float) -> None:
         from pipeline.watcher import list_folder
 
+        if self.capacity() <= 0:
+            return  # nothing could be claimed: listing a backlog again would only cost time
         for inbox in self.settings.inboxes:
             listing = list_folder(inbox.folder)
             decision = decide(
