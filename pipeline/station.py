@@ -135,6 +135,18 @@ class Station:
             return
         self.rulebook = load_rules_dir(folder)
         for rs in self.rulebook.rule_sets:
+            # keep the exact text in the ledger once per revision, so a restart can re-judge a
+            # recorded cell with the rules that judged it; a file edited again since it was
+            # loaded no longer matches its hash and is kept at the next reload instead
+            data = Path(rs.source).read_bytes()
+            if hashlib.sha256(data).hexdigest() == rs.sha256:
+                self.ledger.remember_text(
+                    kind="rule_set",
+                    sha256=rs.sha256,
+                    name=Path(rs.source).name,
+                    text=data.decode("utf-8"),
+                    now=self.clock(),
+                )
             log.info(
                 "rules in force: %s revision %s (%s, sha256 %s)",
                 rs.name,
@@ -492,20 +504,8 @@ class Station:
     def record(
         self, row: InputRow, result: CellResult, json_text: str, *, with_pdf: bool = True
     ) -> None:
-        """ONE transaction: result, check rows, outbox rows (and the rule text, kept before it)."""
+        """ONE transaction: result, check rows, outbox rows (the rule text was kept at load)."""
         json_path, pdf_path = self.output_paths(result)
-        assert self.rulebook is not None
-        source = next(
-            (rs for rs in self.rulebook.rule_sets if rs.sha256 == result.rule_set.sha256), None
-        )
-        if source is not None:
-            self.ledger.remember_text(
-                kind="rule_set",
-                sha256=source.sha256,
-                name=Path(source.source).name,
-                text=Path(source.source).read_text(encoding="utf-8"),
-                now=self.clock(),
-            )
         self.ledger.record_result(
             row.id,
             cell_id=result.cell_id,
