@@ -102,6 +102,11 @@ def _shared() -> _Shared:
     return _Shared(font_config, css)
 
 
+def prepare() -> None:
+    """Parse the stylesheet and load its font now rather than at the first certificate."""
+    _shared()
+
+
 def _write(document: HTML, **options: object) -> bytes:
     with _RENDER_LOCK:
         before = os.environ.get("SOURCE_DATE_EPOCH")
