@@ -174,32 +174,31 @@ def _text(x: float, y: float, body: str, anchor: str = "middle", extra: str = ""
 
 
 def _axes(frame: _Frame, x_label: str, y_label: str) -> list[str]:
-    """Grid, frame, ticks with labels and the two axis titles."""
-    parts = [f'<g stroke="{GRID}" stroke-width="0.15">']
+    """Grid, frame, ticks with labels and the two axis titles.
+
+    The grid lines are one path and the tick marks another (one subpath per line):
+    the same strokes as a path per line, in a fraction of the renderer's work.
+    """
     bottom = frame.top + frame.height
     right = frame.left + frame.width
-    for t in frame.x_ticks[1:-1]:
-        parts.append(f'<path d="M{_n(frame.px(t))} {_n(frame.top)}V{_n(bottom)}"/>')
-    for t in frame.y_ticks[1:-1]:
-        parts.append(f'<path d="M{_n(frame.left)} {_n(frame.py(t))}H{_n(right)}"/>')
-    parts.append("</g>")
+    grid = [f"M{_n(frame.px(t))} {_n(frame.top)}V{_n(bottom)}" for t in frame.x_ticks[1:-1]]
+    grid += [f"M{_n(frame.left)} {_n(frame.py(t))}H{_n(right)}" for t in frame.y_ticks[1:-1]]
+    parts = [f'<path d="{"".join(grid)}" stroke="{GRID}" stroke-width="0.15"/>'] if grid else []
     parts.append(
         f'<rect x="{_n(frame.left)}" y="{_n(frame.top)}" width="{_n(frame.width)}" '
         f'height="{_n(frame.height)}" fill="none" stroke="{AXIS}" stroke-width="0.25"/>'
     )
+    ticks = [f"M{_n(frame.px(t))} {_n(bottom)}v1" for t in frame.x_ticks]
+    ticks += [f"M{_n(frame.left)} {_n(frame.py(t))}h-1" for t in frame.y_ticks]
+    parts.append(f'<path d="{"".join(ticks)}" stroke="{AXIS}" stroke-width="0.25"/>')
     x_step = frame.x_ticks[1] - frame.x_ticks[0]
     y_step = frame.y_ticks[1] - frame.y_ticks[0]
     parts.append(f'<g fill="{INK}">')
     for t in frame.x_ticks:
-        x = frame.px(t)
-        parts.append(f'<path d="M{_n(x)} {_n(bottom)}v1" stroke="{AXIS}" stroke-width="0.25"/>')
-        parts.append(_text(x, bottom + 1.2 + _FONT_MM, tick_label(t, x_step)))
+        parts.append(_text(frame.px(t), bottom + 1.2 + _FONT_MM, tick_label(t, x_step)))
     for t in frame.y_ticks:
-        y = frame.py(t)
-        parts.append(
-            f'<path d="M{_n(frame.left)} {_n(y)}h-1" stroke="{AXIS}" stroke-width="0.25"/>'
-        )
-        parts.append(_text(frame.left - 1.6, y + _FONT_MM * 0.35, tick_label(t, y_step), "end"))
+        y = frame.py(t) + _FONT_MM * 0.35
+        parts.append(_text(frame.left - 1.6, y, tick_label(t, y_step), "end"))
     label_y = bottom + 2.6 + 2 * _FONT_MM
     parts.append(_text(frame.left + frame.width / 2, label_y, x_label))
     cx, cy = 2.0 + _FONT_MM * 0.5, frame.top + frame.height / 2
