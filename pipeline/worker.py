@@ -72,7 +72,7 @@ def init_worker() -> None:
     faster). Objects made while judging and rendering are collected as before.
     """
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    import pipeline.certificate  # noqa: F401
+    import pipeline.certificate
     import pipeline.pdf
 
     pipeline.pdf.prepare()

@@ -323,3 +323,65 @@ def test_fast_path_gives_the_same_pages_and_text_as_a_plain_render(hazards: type
         for a, b in zip(fast.pages, plain.pages, strict=True):
             assert a.extract_text() == b.extract_text()
         assert pdf.render_pdf(html) == pdf.render_pdf(html)  # still byte-identical run to run
+
+
+# --- the XML parse of the template's XHTML --------------------------------------------------
+
+
+def _html5_only(html: str) -> bytes:
+    """Render with WeasyPrint's own HTML5 parser (the XML parse switched off)."""
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(pdf, "parse_xhtml", lambda *args: None)
+        return pdf.render_pdf(html)
+
+
+@pytest.mark.parametrize(
+    "make",
+    [
+        cases.pass_result,
+        cases.fail_result,
+        cases.hold_result,
+        lambda: cases.fail_result(cell_id=HOSTILE, station='"quoted" & <b>bold</b> \u2264 \u03a9 \u00e9'),
+    ],
+    ids=["pass", "fail", "hold", "markup-and-non-ascii"],
+)
+def test_xml_parse_gives_the_same_pdf_bytes_as_the_html5_parser(
+    hazards: types.ModuleType, make: types.FunctionType
+) -> None:
+    html = render_html(make())
+    assert pdf.parse_xhtml(html, TEMPLATES_DIR.as_uri() + "/", pdf.TemplateFetcher()) is not None
+    assert pdf.render_pdf(html) == _html5_only(html)
+
+
+def test_html_that_is_not_well_formed_xml_is_parsed_as_html5(hazards: types.ModuleType) -> None:
+    html = render_html(cases.pass_result()).replace("</body>", "<p>unclosed<br></body>")
+    assert pdf.parse_xhtml(html, TEMPLATES_DIR.as_uri() + "/", pdf.TemplateFetcher()) is None
+    assert "unclosed" in PdfReader(io.BytesIO(pdf.render_pdf(html))).pages[-1].extract_text()
+
+
+@pytest.mark.parametrize("subsetter", ["harfbuzz", "fonttools"])
+def test_embedded_font_holds_no_clock_time_with_either_subsetter(
+    hazards: types.ModuleType, subsetter: str
+) -> None:
+    """WeasyPrint subsets with HarfBuzz when libharfbuzz-subset is installed, else with fontTools,
+    which stamps the font with the current time unless SOURCE_DATE_EPOCH is set."""
+    fonts = pytest.importorskip("weasyprint.pdf.fonts")
+    if subsetter == "harfbuzz" and not fonts.harfbuzz_subset:
+        pytest.skip("libharfbuzz-subset is not installed here")
+    html = render_html(cases.pass_result())
+    with pytest.MonkeyPatch.context() as patch:
+        if subsetter == "fonttools":
+            patch.setattr(fonts, "harfbuzz_subset", None)
+        data = pdf.render_pdf(html)
+    from fontTools.ttLib import TTFont
+
+    reader = PdfReader(io.BytesIO(data))
+    font = reader.pages[0]["/Resources"]["/Font"]
+    descriptor = next(iter(font.values())).get_object()["/DescendantFonts"][0].get_object()
+    program = descriptor["/FontDescriptor"].get_object()["/FontFile2"].get_object().get_data()
+    head = TTFont(io.BytesIO(program))["head"]
+    # 1970-01-01 counted in seconds from 1904-01-01, the epoch of TrueType's 'head' table
+    # (OpenType specification, 'head' table: created and modified, LONGDATETIME)
+    epoch_1970 = 2_082_844_800
+    shipped = TTFont(TEMPLATES_DIR / "fonts" / "CertificateSans.ttf")["head"]
+    assert head.modified in (epoch_1970, shipped.modified)
