@@ -247,8 +247,8 @@ def test_html_is_deterministic_and_has_metadata() -> None:
     one = render_html(cases.fail_result())
     assert one == render_html(cases.fail_result())
     assert "<title>Certificate for cell DEMO-C0042: FAIL</title>" in one
-    assert '<meta name="dcterms.created" content="2026-03-02T10:15:00Z">' in one
-    assert '<meta name="generator" content="formgate 0.1.0">' in one
+    assert '<meta name="dcterms.created" content="2026-03-02T10:15:00Z"/>' in one
+    assert '<meta name="generator" content="formgate 0.1.0"/>' in one
 
 
 @pytest.mark.parametrize("name", sorted(regenerate.SNAPSHOTS))
