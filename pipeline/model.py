@@ -23,7 +23,20 @@ IntArray = npt.NDArray[np.int64]
 
 
 def frozen_array(values: object, dtype: type = np.float64) -> npt.NDArray[np.generic]:
-    """Return a read-only contiguous copy of ``values`` as ``dtype``."""
+    """Return a read-only contiguous copy of ``values`` as ``dtype``.
+
+    An array that is already read-only, contiguous, of ``dtype`` and owns its data
+    (one made by ``frozen_array``, or a fresh one its maker froze) is returned as it
+    is: copying megabytes of samples again on every Trace gains no safety.
+    """
+    if (
+        isinstance(values, np.ndarray)
+        and values.dtype == dtype
+        and values.flags.owndata
+        and values.flags.c_contiguous
+        and not values.flags.writeable
+    ):
+        return values
     array: npt.NDArray[np.generic] = np.array(values, dtype=dtype, copy=True)
     array.setflags(write=False)
     return array

@@ -667,3 +667,89 @@ def test_any_value_under_any_key_gives_a_profile_error_or_a_profile(
     text = (f"[{table}]\n" if table else "") + f"{name} = {shown}\n"
     with contextlib.suppress(ProfileError):
         load_profile(text, "p.toml")
+
+
+# ---------------------------------------------------------------- the three ways in agree
+# An ASCII file is parsed from its own bytes; a UTF-8 file with other characters from its
+# bytes after the decoded head; a file with CR line ends (or in Latin-1) from re-encoded text.
+
+
+def _three_ways(text: str) -> list[bytes]:
+    """The same cycle file as ASCII, as UTF-8 with a BOM and a non-ASCII line, with CR LF."""
+    ascii_bytes = text.encode("ascii")
+    utf8 = ("\ufeff# operator: Zoë Ørsted\n" + text).encode("utf-8")
+    crlf = text.replace("\n", "\r\n").encode("ascii")
+    return [ascii_bytes, utf8, crlf]
+
+
+def _outcome(data: bytes) -> tuple[object, ...]:
+    try:
+        trace = read_cycle_file(data, "c.csv")
+    except InputError as exc:
+        return ("error", exc.problem, exc.where.line if exc.where else None,
+                exc.where.column if exc.where else None)
+    arrays = tuple(
+        None if getattr(trace, n) is None else getattr(trace, n).tobytes()
+        for n in ("time_s", "voltage_v", "current_a", "temperature_c", "step", "cycle")
+    )
+    return ("trace", trace.cell_id, arrays)
+
+
+@settings(max_examples=150, deadline=None)
+@given(
+    rows=st.lists(
+        st.tuples(
+            st.floats(0, 1e6, allow_nan=False),
+            st.floats(0, 5, allow_nan=False) | st.just(math.nan),
+            st.floats(-50, 50, allow_nan=False),
+            st.integers(1, 40) | st.just(2.5),
+        ),
+        min_size=1,
+        max_size=30,
+    ),
+    damage=st.sampled_from(["", "x", '"', "\n\n", ",,", "1e999"]),
+    where=st.integers(0, 10_000),
+    trailing=st.sampled_from(["", "\n", "\n\n", "\n \n"]),
+)
+def test_ascii_utf8_and_crlf_files_read_alike(
+    rows: list[tuple[float, float, float, float]], damage: str, where: int, trailing: str
+) -> None:
+    text = make_csv([list(r) for r in rows], ("time_s", "voltage_V", "current_A", "step"))
+    head_end = text.index("time_s")
+    body = text[head_end:]
+    at = body.index("\n") + 1 + where % max(1, len(body) - body.index("\n"))
+    text = text[:head_end] + body[:at] + damage + body[at:]
+    text = text.rstrip("\n") + trailing
+    plain, utf8, crlf = (_outcome(data) for data in _three_ways(text))
+    assert crlf == plain
+    if plain[0] == "error":  # the UTF-8 variant has one line more before the data
+        line, column = plain[2], plain[3]
+        assert utf8 == ("error", plain[1], None if line is None else line + 1, column)
+    else:
+        assert utf8 == plain
+
+
+def test_a_head_longer_than_the_first_block_read_is_found() -> None:
+    banner = tuple(f"# note {k}: " + "x" * 90 for k in range(2_000))  # about 200 kB of head
+    text = make_csv(basic_rows(), banner=banner)
+    trace = read_cycle_file(text.encode("ascii"), "c.csv")
+    assert trace.cell_id == "CELL-0012"
+    assert trace.first_data_line == len(banner) + len(META) + 2
+    assert len(trace) == 12
+
+
+def test_step_numbers_beyond_what_a_float_holds_exactly_are_refused() -> None:
+    rows = [[60.0 * k, 3.2, 1.0, 2**53 + 2 if k == 3 else 1] for k in range(6)]
+    text = make_csv(rows, ("time_s", "voltage_V", "current_A", "step"))
+    with pytest.raises(InputError, match="not a whole step number"):
+        read_cycle_file(text.encode(), "c.csv")
+
+
+def test_arrays_of_a_trace_are_read_only() -> None:
+    rows = [[60.0 * k, 3.2, 1.0, 1, 1] for k in range(6)]
+    trace = read_cycle_file(
+        make_csv(rows, ("time_s", "voltage_V", "current_A", "step", "cycle")).encode(), "c.csv"
+    )
+    for name in ("time_s", "voltage_v", "current_a", "step", "cycle"):
+        with pytest.raises(ValueError, match="read-only"):
+            getattr(trace, name)[0] = 0

@@ -19,12 +19,13 @@ import math
 import re
 import zlib
 from dataclasses import dataclass, field
+from typing import TypeVar
 
 import numpy as np
 import pandas as pd
 
 from pipeline.errors import InputError
-from pipeline.model import FloatArray, SourceRef, Trace
+from pipeline.model import FloatArray, IntArray, SourceRef, Trace
 from pipeline.readers.profile import (
     CURRENT_SIGNS,
     CURRENT_UNITS,
@@ -37,6 +38,7 @@ from pipeline.readers.profile import (
 )
 
 GZIP_MAGIC = b"\x1f\x8b"
+_Array = TypeVar("_Array", FloatArray, IntArray)
 REQUIRED_COLUMNS = ("time", "voltage", "current")
 _DELIMITER_NAMES = {",": "comma", ";": "semicolon", "\t": "tab"}
 _CUT_SHORT_HINT = "Copy the file again once the cycler has finished writing it."
@@ -57,14 +59,11 @@ def read_cycle_file(
     """
     profile = profile or DEFAULT_PROFILE
     raw = _decompress(data, name, max_uncompressed_bytes)
-    text = _decode(raw, name, profile.encoding)
-    if "\r" in text:  # old Mac or Windows line ends: count lines the way editors do
-        text = text.replace("\r\n", "\n").replace("\r", "\n")
-    head = _read_head(text, name, profile)
+    head, data_bytes, start = _split_head(raw, name, profile)
     metadata = _collect_metadata(head, name, profile)
     columns = _find_columns(head, name, profile)
-    region = _data_region(text, head, name, profile)
-    frame = _parse(region, head, name, profile)
+    end = _data_end(data_bytes, start, head, name, profile)
+    frame = _parse(data_bytes, start, end, head, name, profile)
     first = head.header_line + 1
     factors = {
         "time": TIME_UNITS[profile.time_unit],
@@ -72,11 +71,15 @@ def read_cycle_file(
         "current": CURRENT_UNITS[profile.current_unit] * CURRENT_SIGNS[profile.current_sign],
     }
     values = {
-        q: _numbers(frame, i, head, name, profile, factors.get(q, 1.0)) for q, i in columns.items()
+        q: _numbers(frame, i, head, name, profile, factors.get(q, 1.0))
+        for q, i in columns.items()
+        if q not in ("step", "cycle")
     }
-    for quantity in ("step", "cycle"):
-        if quantity in values:
-            _refuse_non_integers(values[quantity], columns[quantity], head, name, quantity)
+    whole = {
+        q: _whole_numbers(frame, i, head, name, profile, q)
+        for q, i in columns.items()
+        if q in ("step", "cycle")
+    }
     return Trace(
         source=name,
         metadata=metadata,
@@ -84,8 +87,8 @@ def read_cycle_file(
         voltage_v=values["voltage"],
         current_a=values["current"],
         temperature_c=values.get("temperature"),
-        step=values["step"].astype(np.int64) if "step" in values else None,
-        cycle=values["cycle"].astype(np.int64) if "cycle" in values else None,
+        step=whole.get("step"),
+        cycle=whole.get("cycle"),
         first_data_line=first,
     )
 
@@ -100,6 +103,45 @@ class _Head:
     header_line: int = 0
     fields: list[str] = field(default_factory=list)
     data_start: int = 0
+
+
+def _split_head(raw: bytes, name: str, profile: Profile) -> tuple[_Head, bytes, int]:
+    """The head of the file, and the UTF-8 bytes its data rows start in, with their offset.
+
+    The data part of a cycle file is megabytes of plain ASCII: it is handed to pandas
+    as the file's own bytes (no decoding to text and encoding back, no copies), and
+    only the head is decoded. A file with CR line ends or in Latin-1 goes the long
+    way: decoded whole, line ends normalised, and the data part encoded as UTF-8.
+    """
+    if profile.encoding == "utf-8" and b"\r" not in raw:
+        if raw.isascii():  # characters and bytes count alike
+            head = _ascii_head(raw, name, profile)
+            return head, raw, head.data_start
+        text = _decode(raw, name, profile.encoding)  # checks the whole file is UTF-8
+        head = _read_head(text, name, profile)
+        bom = 3 if raw.startswith(b"\xef\xbb\xbf") else 0
+        return head, raw, bom + len(text[: head.data_start].encode("utf-8"))
+    text = _decode(raw, name, profile.encoding)
+    if "\r" in text:  # old Mac or Windows line ends: count lines the way editors do
+        text = text.replace("\r\n", "\n").replace("\r", "\n")
+    head = _read_head(text, name, profile)
+    return head, text[head.data_start :].encode("utf-8"), 0
+
+
+def _ascii_head(raw: bytes, name: str, profile: Profile) -> _Head:
+    """_read_head on as few whole lines from the start of an ASCII file as hold the header."""
+    limit = 1 << 16
+    while True:
+        whole = limit >= len(raw)
+        chunk = raw if whole else raw[: raw.rfind(b"\n", 0, limit) + 1]
+        try:
+            head = _read_head(chunk.decode("ascii"), name, profile)
+        except InputError:
+            if whole:
+                raise
+        else:
+            return head
+        limit *= 4
 
 
 def _decompress(data: bytes, name: str, cap: int) -> bytes:
@@ -299,22 +341,22 @@ def _missing_column_hint(fields: list[str], header: str, profile: Profile) -> st
     return f"Rename the column, or {where}."
 
 
-def _data_region(text: str, head: _Head, name: str, profile: Profile) -> str:
-    region = text[head.data_start :]
-    end = len(region)
-    while end > 0:  # trailing blank lines are the end of the file, not an error
-        cut = region.rfind("\n", 0, end)
-        if region[cut + 1 : end].strip(_blank(profile)):
+def _data_end(data: bytes, start: int, head: _Head, name: str, profile: Profile) -> int:
+    """Where the data rows in ``data[start:]`` end: trailing blank lines are not rows."""
+    blank = _blank(profile).encode("ascii")
+    end = len(data)
+    while end > start:  # trailing blank lines are the end of the file, not an error
+        cut = data.rfind(b"\n", start, end)
+        if data[max(cut + 1, start) : end].strip(blank):
             break
-        end = max(cut, 0)
-    region = region[:end]
-    if not region:
+        end = max(cut, start)
+    if end == start:
         raise InputError(
             "the header is not followed by any data rows",
             SourceRef(name, head.header_line),
             _CUT_SHORT_HINT,
         )
-    return region  # blank lines inside show up as short rows in _parse
+    return end  # blank lines inside show up as short rows in _parse
 
 
 def _blank(profile: Profile) -> str:
@@ -330,16 +372,21 @@ def _blank_line_error(line: int, name: str) -> InputError:
     )
 
 
-def _parse(region: str, head: _Head, name: str, profile: Profile) -> pd.DataFrame:
-    """Run pandas' C parser; on any failure, find the line at fault with a slow scan.
+def _parse(data: bytes, start: int, end: int, head: _Head, name: str, profile: Profile) -> pd.DataFrame:
+    """Run pandas' C parser on ``data[start:end]``; on any failure, find the line at fault.
 
     Types are left to pandas to infer (asking for float64 would turn 'True' into 1.0);
     a column that is not all numbers comes back as text and ``_numbers`` names the field.
     """
     expected = len(head.fields)
+    if data[end:] in (b"", b"\n"):
+        stream = io.BytesIO(data)  # shares the bytes; pandas reads on from the position
+        stream.seek(start)
+    else:
+        stream = io.BytesIO(data[start:end])
     try:
         frame = pd.read_csv(
-            io.BytesIO(region.encode("utf-8")),  # pandas parses bytes faster than text
+            stream,
             encoding="utf-8",
             sep=profile.delimiter,
             decimal=profile.decimal,
@@ -351,13 +398,16 @@ def _parse(region: str, head: _Head, name: str, profile: Profile) -> pd.DataFram
             engine="c",
         )
     except (ValueError, TypeError, OverflowError) as exc:  # ParserError is a ValueError
-        raise _diagnose(region, head, name, profile, str(exc)) from None
-    rows = region.count("\n") + 1
+        raise _diagnose(_region(data, start, end), head, name, profile, str(exc)) from None
+    # Without quote marks (which may hold line breaks) or NUL bytes, pandas makes one
+    # row per line; only then is counting the lines (a pass over megabytes) skipped.
+    plain = data.find(b'"', start, end) < 0 and data.find(b"\0", start, end) < 0
+    rows = len(frame) if plain else data.count(b"\n", start, end) + 1
     if frame.shape[1] != expected or len(frame) != rows:
-        raise _diagnose(region, head, name, profile, "rows and header disagree")
+        raise _diagnose(_region(data, start, end), head, name, profile, "rows and header disagree")
     short = np.flatnonzero(frame[expected - 1].isna().to_numpy())
     if short.size:
-        lines = region.split("\n")
+        lines = _region(data, start, end).split("\n")
         for row in short.tolist():
             if not lines[row].strip(_blank(profile)):
                 raise _blank_line_error(head.header_line + 1 + row, name)
@@ -365,6 +415,11 @@ def _parse(region: str, head: _Head, name: str, profile: Profile) -> pd.DataFram
             if count < expected:
                 raise _field_count_error(count, row, rows, head, name)
     return frame
+
+
+def _region(data: bytes, start: int, end: int) -> str:
+    """The data rows as text, for finding the line at fault (the bytes are valid UTF-8)."""
+    return data[start:end].decode("utf-8")
 
 
 def _count_fields(line: str, delimiter: str) -> int:
@@ -445,8 +500,12 @@ def _numbers(
             # looks like a number yet pandas kept it as text (e.g. a huge integer)
             parsed.append(float(text.replace(profile.decimal, ".")))
         values = np.array(parsed, dtype=np.float64)
-    with np.errstate(over="ignore"):
-        scaled: FloatArray = values * factor
+    if factor == 1.0:
+        scaled: FloatArray = values
+    else:
+        with np.errstate(over="ignore"):
+            scaled = values * factor
+    scaled = _frozen(scaled)
     infinite = np.flatnonzero(np.isinf(scaled))
     if infinite.size:
         row = int(infinite[0])
@@ -479,6 +538,31 @@ def _not_a_number(
         SourceRef(name, head.header_line + 1 + row, index + 1),
         hint,
     )
+
+
+def _frozen(values: _Array) -> _Array:
+    """``values`` read-only and owning its data, copied only if it is a view (of pandas' frame).
+
+    The Trace then keeps the array without copying it again (model.frozen_array).
+    """
+    if not (values.flags.owndata and values.flags.c_contiguous):
+        values = values.copy()
+    values.setflags(write=False)
+    return values
+
+
+def _whole_numbers(
+    frame: pd.DataFrame, index: int, head: _Head, name: str, profile: Profile, quantity: str
+) -> IntArray:
+    """Column ``index`` as int64: step or cycle numbers, which must be whole numbers."""
+    series = frame[index]
+    if series.dtype == np.int64:  # pandas read every field as a whole number
+        ints: IntArray = series.to_numpy()
+        if len(ints) and ints.min() >= -(2**53) and ints.max() <= 2**53:
+            return _frozen(ints)
+    values = _numbers(frame, index, head, name, profile, 1.0)
+    _refuse_non_integers(values, index, head, name, quantity)
+    return _frozen(values.astype(np.int64))
 
 
 def _refuse_non_integers(
