@@ -74,6 +74,9 @@ def init_worker() -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     import pipeline.certificate
     import pipeline.pdf
+    import pipeline.readers.profile
+    import pipeline.result
+    import pipeline.runner  # imported here so that their objects are frozen too
 
     pipeline.pdf.prepare()
     gc.collect()
