@@ -14,9 +14,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.signal import find_peaks, savgol_filter
+from scipy.signal import find_peaks
 
 from pipeline.model import Curve, FloatArray, Plateau, PlateauSettings
+from pipeline.savgol import savgol
 
 # Savitzky-Golay polynomial order: 2-3 keeps peak shapes (REFERENCE.md 4.1, common practice).
 SG_ORDER = 3
@@ -79,10 +80,8 @@ def find_plateaus(
     )
     step = float(grid[1] - grid[0])
     window = _odd_window(settings.smoothing_pct, step, settings.grid_points)
-    smooth = savgol_filter(v, window, SG_ORDER, mode="interp")
-    slope_mv_per_pct = (
-        savgol_filter(v, window, SG_ORDER, deriv=1, delta=step, mode="interp") * 1000.0
-    )
+    smooth = savgol(v, window, SG_ORDER)
+    slope_mv_per_pct = savgol(v, window, SG_ORDER, deriv=1, delta=step) * 1000.0
     flat = np.abs(slope_mv_per_pct) <= settings.flatness_mv_per_pct
     runs = _flat_runs(flat)
     merged: list[list[int]] = []
@@ -132,7 +131,7 @@ def incremental_capacity(
     dqdv = np.bincount(idx, minlength=nbins) * dq_ah / bin_v
     centres = lo + (np.arange(nbins) + 0.5) * bin_v
     if nbins >= 5:
-        dqdv = savgol_filter(dqdv, 5, 2, mode="interp").clip(min=0.0)
+        dqdv = savgol(dqdv, 5, 2).clip(min=0.0)
     top = float(dqdv.max()) if nbins else 0.0
     prominence = max(settings.ica_min_prominence_ah_per_v, 0.05 * top, total_ah * 1.0)
     found, _ = find_peaks(np.concatenate(([0.0], dqdv, [0.0])), prominence=prominence)
