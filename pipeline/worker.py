@@ -61,17 +61,21 @@ class Output:
 
 
 def init_worker() -> None:
-    """Worker start-up: leave Ctrl-C to the station, import the rendering stack once,
-    parse the certificate stylesheet and font, then take all of it out of the
-    garbage collector's sight.
+    """Worker start-up: leave Ctrl-C to the station, then ``prepare_process``."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    prepare_process()
 
-    After the imports a worker holds a few hundred thousand long-lived objects
+
+def prepare_process() -> None:
+    """Import the judging and rendering stack once, parse the certificate stylesheet and
+    font, then take all of it out of the garbage collector's sight.
+
+    After the imports a process holds a few hundred thousand long-lived objects
     (modules, functions, the parsed stylesheet). Every full collection walked all of
     them again, several times per certificate, for nothing: ``gc.freeze`` moves them
     into a generation the collector never scans (measured: a certificate 10-15 %
     faster). Objects made while judging and rendering are collected as before.
     """
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
     import pipeline.certificate
     import pipeline.pdf
     import pipeline.readers.profile
