@@ -18,6 +18,7 @@ import datetime
 import hashlib
 import json
 import logging
+import math
 import multiprocessing
 import os
 import threading
@@ -59,6 +60,10 @@ log = logging.getLogger("formgate.station")
 
 MB = 2**20
 WORKER_TASKS = 2000  # cells a worker process judges before a new one takes over
+# With a backlog in an inbox, finished files are claimed from the last listing for up to
+# this long before the folder is listed again: listing thousands of files on every turn
+# of the loop cost more than judging them (and newer files wait behind the backlog anyway).
+RELIST_S = 1.0
 
 
 def utc_now() -> datetime.datetime:
@@ -85,6 +90,9 @@ class Station:
         self.rules_fingerprint: tuple[tuple[str, int, int], ...] = ()
         self.rules_alerted: str = ""
         self.seen: dict[str, dict[str, Seen]] = {i.name: {} for i in settings.inboxes}
+        # per inbox: when it was last listed, and the finished files found then but not yet
+        # claimed (a backlog is claimed from this list, not by listing the folder every turn)
+        self.ready: dict[str, tuple[float, deque[str]]] = {}
         self.queue: deque[InputRow] = deque()
         self.in_flight: dict[Future[Output], tuple[InputRow, Task]] = {}
         self.attempts: dict[int, int] = {}
@@ -244,33 +252,40 @@ class Station:
         return 4 * self.settings.workers - len(self.queue) - len(self.in_flight)
 
     def scan_inboxes(self, now_s: float) -> None:
-        from pipeline.watcher import list_folder
-
         if self.capacity() <= 0:
             return  # nothing could be claimed: listing a backlog again would only cost time
         for inbox in self.settings.inboxes:
-            listing = list_folder(inbox.folder)
-            decision = decide(
-                inbox.handover,
-                listing,
-                self.seen[inbox.name],
-                now_s,
-                settle_s=inbox.settle_s,
-                marker_suffix=inbox.marker_suffix,
-                orphan_marker_s=inbox.orphan_marker_s,
+            listed_at, pending = self.ready.get(inbox.name, (-math.inf, deque()))
+            if not pending or now_s - listed_at >= RELIST_S:
+                pending, listed_at = deque(self.list_inbox(inbox, now_s)), now_s
+            while pending and self.capacity() > 0:
+                self.claim(inbox, pending.popleft())
+            self.ready[inbox.name] = (listed_at, pending)
+            if self.capacity() <= 0:
+                return
+
+    def list_inbox(self, inbox: InboxSettings, now_s: float) -> tuple[str, ...]:
+        """List one inbox and decide which files are finished; quarantine orphan markers."""
+        from pipeline.watcher import list_folder
+
+        decision = decide(
+            inbox.handover,
+            list_folder(inbox.folder),
+            self.seen[inbox.name],
+            now_s,
+            settle_s=inbox.settle_s,
+            marker_suffix=inbox.marker_suffix,
+            orphan_marker_s=inbox.orphan_marker_s,
+        )
+        self.seen[inbox.name] = dict(decision.seen)
+        for marker in decision.orphan_markers:
+            self.quarantine_stray(
+                inbox.folder / marker,
+                f"marker file without its data file "
+                f"(waited {inbox.orphan_marker_s:g} s for "
+                f"{marker[: -len(inbox.marker_suffix)]})",
             )
-            self.seen[inbox.name] = dict(decision.seen)
-            for marker in decision.orphan_markers:
-                self.quarantine_stray(
-                    inbox.folder / marker,
-                    f"marker file without its data file "
-                    f"(waited {inbox.orphan_marker_s:g} s for "
-                    f"{marker[: -len(inbox.marker_suffix)]})",
-                )
-            for name in decision.ready:
-                if self.capacity() <= 0:
-                    return
-                self.claim(inbox, name)
+        return decision.ready
 
     def claim(self, inbox: InboxSettings, name: str) -> None:
         """Move a finished file into work/ (atomic rename) and record it in the ledger."""
@@ -278,8 +293,12 @@ class Station:
         if inbox.handover == "settle":
             try:
                 with source.open("rb") as fh:
+                    stat = os.fstat(fh.fileno())
+                    seen = self.seen[inbox.name].get(name)
+                    if seen is None or (seen.size, seen.mtime_ns) != (stat.st_size, stat.st_mtime_ns):
+                        return  # written to since it was found settled: decide again next listing
                     # an oversized file is claimed as it is: it goes to quarantine unread
-                    oversized = os.fstat(fh.fileno()).st_size > self.settings.max_input_MB * MB
+                    oversized = stat.st_size > self.settings.max_input_MB * MB
                     if not oversized and not file_looks_complete(fh):
                         return  # quiet but cut short: wait for the writer to finish
             except FileNotFoundError:

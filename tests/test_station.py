@@ -11,6 +11,8 @@ from pathlib import Path
 import pytest
 
 from pipeline.ledger import Ledger
+from pipeline.settings import smtp_settings
+from pipeline.station import Station
 from tests.station_kit import (
     check_invariants,
     cycle_file,
@@ -284,3 +286,23 @@ def test_polling_inbox_and_status_report(tmp_path: Path) -> None:
     assert "P-9  lot LOT-A  fail  hazard: abnormal_capacity" in report
     assert "ledger integrity: ok" in report
     assert "share (" in report and "0 file(s) waiting" in report
+
+
+def test_a_settled_file_written_to_again_before_its_claim_is_left_for_the_next_listing(
+    tmp_path: Path,
+) -> None:
+    toml = station_toml(
+        inboxes='[inbox.main]\nfolder = "inbox"\nhandover = "settle"\nsettle_s = 1.5\n'
+    )
+    s = make_station(tmp_path / "st", toml)
+    inbox = s.inboxes[0]
+    data = cycle_file("RESUMED-1")
+    path = inbox.folder / "resumed.csv"
+    path.write_bytes(data[: len(data) // 2].rsplit(b"\n", 1)[0] + b"\n")
+    station = Station(s, smtp_settings(s, {}))
+    assert station.list_inbox(inbox, now_s=0.0) == ()
+    assert station.list_inbox(inbox, now_s=10.0) == ("resumed.csv",)  # quiet for 10 s: settled
+    with path.open("ab") as fh:  # the writer resumes before the station claims the file
+        fh.write(data[len(data) // 2 :])
+    station.claim(inbox, "resumed.csv")
+    assert path.exists() and not any(s.work.iterdir())

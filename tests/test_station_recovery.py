@@ -10,6 +10,7 @@ from pathlib import Path
 
 import pytest
 
+from pipeline import watcher
 from pipeline.faults import POINTS
 from pipeline.ledger import Ledger
 from tests.station_kit import (
@@ -110,7 +111,18 @@ def test_outbox_survives_three_restarts_without_duplicates(tmp_path: Path) -> No
     )  # three failure letters
 
 
-def test_a_burst_of_500_files_all_reach_a_final_state_once(tmp_path: Path) -> None:
+def test_a_burst_of_500_files_all_reach_a_final_state_once(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    listings: list[int] = []
+    real_list_folder = watcher.list_folder
+
+    def counted(folder: Path) -> dict[str, tuple[int, int]]:
+        listing = real_list_folder(folder)
+        listings.append(len(listing))
+        return listing
+
+    monkeypatch.setattr(watcher, "list_folder", counted)
     toml = station_toml(certificates='certify = "failed_and_held"\n')
     s = make_station(tmp_path / "st", toml)
     base = cycle_file("BURST", dt_s=300.0)
@@ -127,3 +139,6 @@ def test_a_burst_of_500_files_all_reach_a_final_state_once(tmp_path: Path) -> No
         assert len(results) == len({r.cell_id for r in results}) == 500
         assert {r.verdict for r in results} == {"pass"}
         assert all(r.pdf_path is None for r in results)  # certify = failed_and_held
+    # the backlog is claimed from a listing at most a second old, not by listing the whole
+    # inbox again for every file claimed
+    assert len([n for n in listings if n > 100]) < 100
