@@ -427,6 +427,7 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
                 "render pdf": lambda: render_pdf(html),
                 "render failed": lambda: render_pdf(render_html(failed)),
                 "naive split": naive_split,
+                "fast layout": lambda: pipeline.pdf.lay_out(html),
             },
             mode.repeats,
         )
@@ -481,6 +482,7 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
         row(cheap["pandas"], "pandas.read_csv, same bytes"),
         row(naive, "naive WeasyPrint render, same HTML", "nothing shared"),
         row(layout, "  naive: layout (HTML.render)"),
+        row(renders["fast layout"], "  layout alone, stylesheet and font shared", "pdf.lay_out"),
         row(writing, "  naive: PDF writing (Document.write_pdf)"),
         row(fonts, "    of which font embedding", "subset + embed"),
         row(batch, f"naive: one document of {k} certificates", "per certificate"),
