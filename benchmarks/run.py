@@ -342,15 +342,14 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
         build_message(letter, sender="formgate@localhost", date=ANALYSED_AT)
         ledger.queue_mail(letter, now=ANALYSED_AT)
 
-    # A station worker freezes its start-up objects out of the garbage collector's scans
-    # (pipeline.worker.init_worker); measure in the same state.
+    # Measure in the state of a station worker: stack imported, stylesheet parsed, start-up
+    # objects frozen out of the garbage collector's scans (pipeline.worker.init_worker).
     import gc
 
     import pipeline.pdf
+    from pipeline.worker import prepare_process
 
-    pipeline.pdf.prepare()
-    gc.collect()
-    gc.freeze()
+    prepare_process()
 
     print(f"  cheap stages, {mode.cheap_repeats} repeats each, interleaved ...", flush=True)
     cheap = interleave(
