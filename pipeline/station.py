@@ -171,6 +171,7 @@ class Station:
             self.settings.workers,
             mp_context=ctx,
             initializer=init_worker,
+            initargs=(os.getpid(),),
             max_tasks_per_child=WORKER_TASKS,
         )
 

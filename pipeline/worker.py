@@ -13,7 +13,10 @@ import datetime
 import gc
 import hashlib
 import logging
+import os
+import select
 import signal
+import threading
 import time
 import traceback
 from dataclasses import dataclass
@@ -60,10 +63,43 @@ class Output:
     detail: str = ""
 
 
-def init_worker() -> None:
-    """Worker start-up: leave Ctrl-C to the station, then ``prepare_process``."""
+def init_worker(station_pid: int | None = None) -> None:
+    """Worker start-up: leave Ctrl-C to the station, end with the station, ``prepare_process``."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    if station_pid is not None:
+        exit_with(station_pid)
     prepare_process()
+
+
+def exit_with(pid: int) -> None:
+    """End this process as soon as process ``pid`` (the station) has ended, however it ended.
+
+    A pool worker waits for work on a pipe whose other end it holds itself, so it never
+    learns that a killed station is gone; and it keeps the pool's fork server alive. Without
+    this, every station killed by a signal (a crash, the OOM killer, a power-off test) left
+    its workers behind, some 150 MiB each. The station's files are safe: the next station
+    finds them in work/ and judges them again.
+    """
+    try:
+        handle: int | None = os.pidfd_open(pid)  # Linux 5.3+: readable once the process ends
+    except (AttributeError, OSError):
+        handle = None
+
+    def watch() -> None:
+        if handle is not None:
+            select.select([handle], [], [])
+        else:
+            while True:
+                time.sleep(2.0)
+                try:
+                    os.kill(pid, 0)
+                except ProcessLookupError:
+                    break
+                except PermissionError:
+                    continue
+        os._exit(0)
+
+    threading.Thread(target=watch, name="formgate-exit-with-station", daemon=True).start()
 
 
 def prepare_process() -> None:

@@ -142,3 +142,49 @@ def test_a_burst_of_500_files_all_reach_a_final_state_once(
     # the backlog is claimed from a listing at most a second old, not by listing the whole
     # inbox again for every file claimed
     assert len([n for n in listings if n > 100]) < 100
+
+
+def _descendants(pid: int) -> set[int]:
+    """Every process below ``pid`` (children, their children, ...), from /proc."""
+    parents: dict[int, int] = {}
+    for entry in Path("/proc").iterdir():
+        if entry.name.isdigit():
+            try:
+                stat = (entry / "stat").read_text()
+            except OSError:  # gone while listing
+                continue
+            parents[int(entry.name)] = int(stat.rpartition(")")[2].split()[1])
+    found: set[int] = set()
+    todo = [pid]
+    while todo:
+        parent = todo.pop()
+        children = {p for p, pp in parents.items() if pp == parent}
+        todo.extend(children - found)
+        found |= children
+    return found
+
+
+def _alive(pid: int) -> bool:
+    try:
+        state = (Path("/proc") / str(pid) / "stat").read_text().rpartition(")")[2].split()[0]
+    except OSError:
+        return False
+    return state != "Z"  # a zombie has ended; only its parent's wait is missing
+
+
+@pytest.mark.skipif(not Path("/proc/self/stat").exists(), reason="needs Linux /proc")
+def test_a_killed_station_leaves_no_worker_processes_behind(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    drop(s.inboxes[0].folder, "w.csv", cycle_file("W-1"))
+    proc = start_watch(s.root)
+    try:
+        wait_until(lambda: settled(s, 1), timeout_s=120, what="the file judged")
+        below = _descendants(proc.pid)
+        assert len(below) >= 2  # the pool's fork server and at least one worker
+        proc.kill()  # as a crash or the OOM killer would: no chance to stop the pool
+        proc.wait(30)
+        wait_until(
+            lambda: not any(_alive(p) for p in below), timeout_s=30, what="the workers to end"
+        )
+    finally:
+        stop_watch(proc)
