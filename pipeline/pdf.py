@@ -108,6 +108,7 @@ def _shared() -> _Shared:
 def prepare() -> None:
     """Parse the stylesheet and load its font now rather than at the first certificate."""
     _shared()
+    _xml_parse_fits()
 
 
 def _write(document: HTML, **options: object) -> bytes:
@@ -168,13 +169,20 @@ def parse_xhtml(html: str, base_url: str, url_fetcher: URLFetcher) -> HTML | Non
     parser takes, into the same element tree. Tests check that both parses give
     byte-identical PDFs. Anything that is not well-formed (a control character from a
     data file, say) returns None, and the caller parses it as HTML5 as usual.
-    The attributes set here are the ones ``weasyprint.HTML.__init__`` sets
-    (WeasyPrint is pinned in constraints.txt).
+    The attributes set here are the ones ``weasyprint.HTML.__init__`` sets in the
+    WeasyPrint pinned in constraints.txt; with a WeasyPrint that sets others, this
+    returns None (and says so once in the log) rather than render from half an object.
     """
+    if not _xml_parse_fits():
+        return None
     try:
         root = ElementTree.fromstring(html)
     except ElementTree.ParseError:
         return None
+    return _document_of(root, base_url, url_fetcher)
+
+
+def _document_of(root: ElementTree.Element, base_url: str, url_fetcher: URLFetcher | None) -> HTML:
     document: HTML = HTML.__new__(HTML)
     document.base_url = base_url
     document.url_fetcher = url_fetcher
@@ -182,6 +190,20 @@ def parse_xhtml(html: str, base_url: str, url_fetcher: URLFetcher) -> HTML | Non
     document.wrapper_element = cssselect2.ElementWrapper.from_html_root(root, content_language=None)
     document.etree_element = document.wrapper_element.etree_element
     return document
+
+
+@functools.lru_cache(maxsize=1)
+def _xml_parse_fits() -> bool:
+    """Whether this WeasyPrint's HTML objects hold exactly the attributes ``_document_of`` sets."""
+    reference = set(vars(HTML(string="<p>x</p>", base_url="file:///")))
+    ours = set(vars(_document_of(ElementTree.fromstring("<p>x</p>"), "file:///", None)))
+    if reference != ours:
+        log.warning(
+            "this WeasyPrint builds its documents differently (%s): certificates are parsed "
+            "as HTML5, which is slower but gives the same pages",
+            ", ".join(sorted(reference ^ ours)),
+        )
+    return reference == ours
 
 
 def render_pdf_plain(html: str) -> bytes:

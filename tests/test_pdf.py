@@ -385,3 +385,26 @@ def test_embedded_font_holds_no_clock_time_with_either_subsetter(
     epoch_1970 = 2_082_844_800
     shipped = TTFont(TEMPLATES_DIR / "fonts" / "CertificateSans.ttf")["head"]
     assert head.modified in (epoch_1970, shipped.modified)
+
+
+def test_xml_parse_steps_aside_for_a_weasyprint_that_builds_documents_differently(
+    hazards: types.ModuleType, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    html = render_html(cases.pass_result())
+    assert pdf._xml_parse_fits()  # the pinned WeasyPrint
+    fast = pdf.render_pdf(html)
+
+    class Newer(pdf.HTML):  # type: ignore[misc]
+        def __init__(self, *args: object, **kwargs: object) -> None:
+            super().__init__(*args, **kwargs)
+            self.something_new = True
+
+    monkeypatch.setattr(pdf, "HTML", Newer)
+    pdf._xml_parse_fits.cache_clear()
+    try:
+        assert not pdf._xml_parse_fits()
+        assert pdf.parse_xhtml(html, TEMPLATES_DIR.as_uri() + "/", pdf.TemplateFetcher()) is None
+        assert pdf.render_pdf(html) == fast  # parsed as HTML5: the same pages
+    finally:
+        monkeypatch.undo()
+        pdf._xml_parse_fits.cache_clear()
