@@ -288,6 +288,7 @@ def build_context(result: CellResult) -> dict[str, object]:
         "other_metadata": [(k, v) for k, v in result.metadata.items() if k not in IDENTITY_KEYS],
         "checks": [_check_row(c) for c in result.verdict.checks],
         "cautions": cautions,
+        "handling": hazards.HANDLING if cautions else "",
         "general_caution": hazards.GENERAL_CAUTION if failed else "",
         "data_check_notice": hazards.DATA_CHECK_NOTICE,
         "discharge_svg": Markup(plots.discharge_svg(  # numbers only: see plots.py

@@ -1,4 +1,5 @@
-"""Caution texts for failed cells: one per hazard, a general one, and the data-check notice.
+"""Caution texts for failed cells: one per hazard, the handling of a hazardous cell, a general
+caution, and the data-check notice.
 
 Certificates and mails print these words; this module only holds them. The
 wording follows the trade's usual handling of failed formation cells
@@ -23,9 +24,9 @@ class Caution:
     text: str
 
 
-# Handling words shared by every hazard: treat as possibly unstable, do not reuse, quarantine,
-# label, monitor -- common practice (REFERENCE.md 6.2).
-_QUARANTINE = (
+# Handling words shared by every hazard, printed once after the hazards' own cautions: treat as
+# possibly unstable, do not reuse, quarantine, label, monitor -- common practice (REFERENCE.md 6.2).
+HANDLING = (
     "Treat the cell as possibly unstable: do not recharge, reuse, regrade or ship it as good "
     "product. Move it to the site's designated quarantine area, in a non-combustible container "
     "and apart from other cells and combustible material, label it with its cell ID, this "
@@ -43,7 +44,7 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
             "Possible internal short circuit",
             "The data show signs of an internal short circuit, such as a voltage that falls during "
             "rest or a deep over-discharge. A cell with an internal short can heat up by itself, "
-            "hours or days later, without any charger connected. " + _QUARANTINE,
+            "hours or days later, without any charger connected.",
         ),
         # Over-temperature in formation points to an internal short, a high-resistance weld or
         # tab, or a channel fault -- from memory, low certainty for the usual alarm levels
@@ -52,9 +53,7 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
             "Over-temperature during formation",
             "The cell became hotter during formation than its rule set allows. Heat can come from "
             "an internal short, a poor weld or tab, or a fault of the channel or fixture. "
-            + _QUARANTINE
-            + " Have the channel and its contacts checked before they are used "
-            "again.",
+            "Have the channel and its contacts checked before they are used again.",
         ),
         # Overcharge destabilises the cathode, oxidises the electrolyte, plates lithium and makes
         # gas, with a risk of thermal runaway -- from memory, high certainty (REFERENCE.md 6.1).
@@ -62,8 +61,8 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
             "Charged above its voltage limit",
             "The cell was charged above the voltage its rule set allows. Overcharge can make the "
             "cathode unstable, break down the electrolyte, plate lithium and produce gas, and it "
-            "raises the risk of thermal runaway. " + _QUARANTINE + " Have the channel's voltage "
-            "limit and calibration checked.",
+            "raises the risk of thermal runaway. Have the channel's voltage limit and calibration "
+            "checked.",
         ),
         # Plating comes from charging too fast or too cold, low N/P ratio or misaligned
         # electrodes; plated lithium can grow into dendrites and shorts -- O'Kane et al.,
@@ -72,7 +71,7 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
             "Possible lithium plating",
             "The data suggest that metallic lithium may have plated on the anode, for example "
             "through a low coulombic efficiency. Plated lithium is reactive and can grow into "
-            "dendrites that short the cell later. " + _QUARANTINE,
+            "dendrites that short the cell later.",
         ),
         # A capacity far from nominal has no single cause (wrong cell type, assembly defect,
         # lithium loss, short, measurement fault) -- common practice.
@@ -80,7 +79,7 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
             "Capacity far from its nominal value",
             "The cell's capacity is far outside what its cell type should deliver. The cause is "
             "unknown: a wrong cell type, an assembly defect, an internal short or a measurement "
-            "fault are all possible. " + _QUARANTINE,
+            "fault are all possible.",
         ),
     }
 )

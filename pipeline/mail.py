@@ -25,7 +25,7 @@ from typing import Literal
 
 from pipeline.errors import FormgateError
 from pipeline.evaluate import format_number, format_window
-from pipeline.hazards import CAUTIONS, DATA_CHECK_NOTICE, GENERAL_CAUTION
+from pipeline.hazards import CAUTIONS, DATA_CHECK_NOTICE, GENERAL_CAUTION, HANDLING
 from pipeline.metricdefs import BY_NAME
 from pipeline.model import CellResult, CheckResult, Hazard, Outcome, SourceRef, VerdictKind
 
@@ -223,6 +223,8 @@ def _cell_sections(result: CellResult, hazards: Sequence[Hazard], general: bool)
     for hazard in hazards:
         caution = CAUTIONS[hazard]
         parts.append(f"CAUTION: {caution.title}\n" + _paragraph(caution.text))
+    if hazards:
+        parts.append("HANDLING\n" + _paragraph(HANDLING))
     if general:
         parts.append("GENERAL CAUTION\n" + _paragraph(GENERAL_CAUTION))
     parts.append(_paragraph(DATA_CHECK_NOTICE))

@@ -17,7 +17,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 from pypdf import PdfWriter
 
-from pipeline.hazards import CAUTIONS, DATA_CHECK_NOTICE, GENERAL_CAUTION
+from pipeline.hazards import CAUTIONS, DATA_CHECK_NOTICE, GENERAL_CAUTION, HANDLING
 from pipeline.mail import (
     DigestRow,
     Letter,
@@ -166,6 +166,17 @@ def test_failure_body_has_every_caution_notice_and_traceability(tmp_path: Path) 
     assert "certificate is attached (DEMO-0007.pdf)" in body
     # Cautions come before the notice and the traceability block.
     assert body.index("GENERAL CAUTION") < body.index("Traceability")
+
+
+def test_handling_of_a_hazardous_cell_is_said_once_however_many_hazards(tmp_path: Path) -> None:
+    two = failure_letter(make_result(), str(tmp_path / "c.pdf"), TO, station="s")
+    assert flat(two.body_text).count(flat(HANDLING)) == 1
+    assert two.body_text.index("HANDLING") > two.body_text.rindex("CAUTION: ")
+    held = hold_letter(make_result(VerdictKind.HOLD, (Hazard.OVER_TEMPERATURE,)), "c.pdf", TO,
+                       station="s")
+    assert flat(held.body_text).count(flat(HANDLING)) == 1
+    none = failure_letter(make_result(hazards=()), str(tmp_path / "c.pdf"), TO, station="s")
+    assert "HANDLING" not in none.body_text
 
 
 def test_failure_without_a_hazard_still_carries_the_general_caution(tmp_path: Path) -> None:

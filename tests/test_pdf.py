@@ -128,6 +128,14 @@ def test_failed_cell_carries_each_hazard_caution_and_the_general_caution(
     assert failed.has(hazards.GENERAL_CAUTION)
 
 
+def test_failed_cell_says_how_to_handle_it_once_however_many_hazards(
+    failed: Rendered, hazards: types.ModuleType
+) -> None:
+    assert len(failed.result.verdict.hazards) > 1
+    handling = re.sub(r"\s+", " ", hazards.HANDLING).replace(" ", "")
+    assert failed.flat.replace(" ", "").count(handling) == 1
+
+
 @pytest.mark.parametrize("name", ["passed", "held"])
 def test_cells_that_did_not_fail_carry_no_hazard_caution(
     name: str, request: pytest.FixtureRequest, hazards: types.ModuleType
@@ -136,6 +144,7 @@ def test_cells_that_did_not_fail_carry_no_hazard_caution(
     for caution in hazards.CAUTIONS.values():
         assert not cert.has(caution.title)
     assert not cert.has(hazards.GENERAL_CAUTION)
+    assert not cert.has(hazards.HANDLING)
 
 
 def test_every_page_carries_the_data_check_notice(

@@ -254,10 +254,13 @@ class Caution(NamedTuple):
 
 
 def stand_in_hazards() -> types.ModuleType:
-    """A test-only stand-in with the hazards API (GENERAL_CAUTION, DATA_CHECK_NOTICE, CAUTIONS)."""
+    """A test-only stand-in with the hazards API (GENERAL_CAUTION, HANDLING, DATA_CHECK_NOTICE, CAUTIONS)."""
     module = types.ModuleType("pipeline.hazards")
     module.GENERAL_CAUTION = (  # type: ignore[attr-defined]
         "Test general caution: follow the site's procedures, local codes and qualified personnel."
+    )
+    module.HANDLING = (  # type: ignore[attr-defined]
+        "Test handling: quarantine the cell as the site's procedure says."
     )
     module.DATA_CHECK_NOTICE = (  # type: ignore[attr-defined]
         "Test notice: this certificate is a data check, not a safety assessment."
