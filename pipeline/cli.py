@@ -78,10 +78,10 @@ def cmd_check(args: argparse.Namespace) -> int:
         profile = load_profile(path.read_text(encoding="utf-8"), str(path))
     analysed_at = _analysis_time(args.analysed_at, os.environ)
     out = Path(args.out) if args.out else None
-    if len(args.files) > 1:
+    if len(args.files) > 1 and not args.no_pdf:
         from pipeline.worker import prepare_process
 
-        prepare_process()  # many files: pay the start-up once, then judge and render faster
+        prepare_process()  # many certificates: pay the start-up once, then render faster
     worst = EXIT_OK
     for name in args.files:
         outcome = check_file(
