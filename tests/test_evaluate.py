@@ -261,11 +261,13 @@ def test_verdict_agrees_with_its_check_rows(
 # ---------------------------------------------------------------- cautions
 
 
-def test_every_hazard_has_a_caution_that_defers_to_the_site() -> None:
+def test_every_hazard_has_a_caution_and_the_handling_printed_with_them_defers_to_the_site() -> None:
     assert set(hazards.CAUTIONS) == set(Hazard)
     for caution in hazards.CAUTIONS.values():
         assert caution.title and caution.text.endswith(".")
-        assert "site" in caution.text and "do not" in caution.text.lower()
+    # printed once after the hazards' own cautions (certificate and mail)
+    assert "site" in hazards.HANDLING and "do not" in hazards.HANDLING.lower()
+    assert "quarantine" in hazards.HANDLING
 
 
 def test_general_caution_defers_to_procedures_codes_authority_and_qualified_people() -> None:
