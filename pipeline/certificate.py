@@ -13,12 +13,11 @@ import functools
 import importlib
 import math
 from collections.abc import Callable
-from pathlib import Path
 
 import jinja2
 from markupsafe import Markup
 
-from pipeline import plots
+from pipeline import plots, shipped
 from pipeline.metricdefs import BY_NAME
 from pipeline.model import (
     CellResult,
@@ -33,7 +32,7 @@ from pipeline.model import (
     Window,
 )
 
-TEMPLATES_DIR = Path(__file__).resolve().parent.parent / "templates"
+TEMPLATES_DIR = shipped.TEMPLATES_DIR
 TEMPLATE_NAME = "certificate.html.j2"
 DASH = "\N{EM DASH}"  # shown for a value that was not measured
 MINUS = "\N{MINUS SIGN}"

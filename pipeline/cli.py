@@ -20,6 +20,7 @@ from typing import TYPE_CHECKING
 
 from pipeline import __version__
 from pipeline.errors import FormgateError
+from pipeline.shipped import RULES_DIR
 
 if TYPE_CHECKING:
     from pipeline.runner import FileOutcome
@@ -147,7 +148,7 @@ def cmd_init(args: argparse.Namespace) -> int:
     from pipeline.settings import init_station
 
     folder = Path(args.folder)
-    created = init_station(folder, rules_from=Path(__file__).resolve().parent.parent / "rules")
+    created = init_station(folder, rules_from=RULES_DIR)
     print(f"station created in {folder} ({len(created)} files and folders)")
     print(f"  edit {folder / 'station.toml'}, then run: formgate watch {folder}")
     return EXIT_OK

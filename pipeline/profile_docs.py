@@ -18,8 +18,9 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from pipeline.readers.profile import V1_COLUMNS, V1_METADATA, describe_profile_keys, load_profile
+from pipeline.shipped import RULES_DIR
 
-SHIPPED_PROFILES = Path(__file__).resolve().parent.parent / "rules" / "profiles"
+SHIPPED_PROFILES = RULES_DIR / "profiles"
 
 
 def read_examples(folder: Path) -> list[tuple[str, str]]:

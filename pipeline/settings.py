@@ -42,6 +42,7 @@ from pipeline.settings_schema import (
     render_station_toml,
     toml_value,
 )
+from pipeline.shipped import RULES_DIR
 from pipeline.smtp import Security, SmtpSettings
 from pipeline.toml_lines import KeyPath, show_table, syntax_position
 
@@ -65,7 +66,7 @@ __all__ = [
 ]
 
 # The rule files and import profiles that ship with formgate (copied by `formgate init`).
-SHIPPED_RULES = Path(__file__).resolve().parent.parent / "rules"
+SHIPPED_RULES = RULES_DIR
 FOLDER_KEYS = ("work", "archive", "quarantine", "results", "certificates", "mail", "logs")
 _ENV_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 _PASSWORD_KEY = re.compile(r"passw(or)?d", re.IGNORECASE)
