@@ -78,6 +78,7 @@ class TemplateFetcher(URLFetcher):  # type: ignore[misc]  # WeasyPrint ships no 
 
 
 STYLESHEET_LINK = '<link rel="stylesheet" href="certificate.css"/>'
+BASE_URL = TEMPLATES_DIR.as_uri() + "/"  # relative URLs in certificates resolve in templates/
 
 
 @dataclass(frozen=True)
@@ -98,7 +99,7 @@ def _shared() -> _Shared:
     font_config = FontConfiguration()
     css = CSS(
         filename=str(TEMPLATES_DIR / "certificate.css"),
-        base_url=TEMPLATES_DIR.as_uri() + "/",
+        base_url=BASE_URL,
         url_fetcher=TemplateFetcher(),
         font_config=font_config,
     )
@@ -111,12 +112,12 @@ def prepare() -> None:
     _xml_parse_fits()
 
 
-def _write(document: HTML, **options: object) -> bytes:
+def _write(document: HTML | Document) -> bytes:
     with _RENDER_LOCK:
         before = os.environ.get("SOURCE_DATE_EPOCH")
         os.environ["SOURCE_DATE_EPOCH"] = before or _FONT_EPOCH
         try:
-            pdf: bytes = document.write_pdf(pdf_identifier=False, **options)
+            pdf: bytes = document.write_pdf(pdf_identifier=False)
         finally:
             if before is None:
                 del os.environ["SOURCE_DATE_EPOCH"]
@@ -133,31 +134,24 @@ def render_pdf(html: str) -> bytes:
     The template's stylesheet is applied from the per-process parsed copy (the link
     to it is taken out of the HTML), so its font is loaded once per process.
     """
-    shared = _shared()
-    document = _certificate_document(html)
-    return _write(document, stylesheets=[shared.stylesheet], font_config=shared.font_config)
+    return _write(lay_out(html))
 
 
 def lay_out(html: str) -> Document:
-    """The laid-out pages of a certificate, as ``render_pdf`` makes them before writing the PDF.
+    """The laid-out pages of a certificate: ``render_pdf`` before it writes the PDF.
 
-    For the benchmark: the part of a certificate's cost that no document can share.
+    The benchmark times this alone: the part of a certificate's cost no document can share.
     """
     shared = _shared()
-    document: Document = _certificate_document(html).render(
-        stylesheets=[shared.stylesheet], font_config=shared.font_config
-    )
-    return document
-
-
-def _certificate_document(html: str) -> HTML:
-    """The certificate's HTML parsed, without the link to the stylesheet every render shares."""
     html = html.replace(STYLESHEET_LINK, "", 1)
-    base_url = TEMPLATES_DIR.as_uri() + "/"
-    document: HTML = parse_xhtml(html, base_url, TemplateFetcher()) or HTML(
-        string=html, base_url=base_url, url_fetcher=TemplateFetcher()
-    )
-    return document
+    document = parse_xhtml(html, BASE_URL, TemplateFetcher()) or _html5(html)
+    pages: Document = document.render(stylesheets=[shared.stylesheet], font_config=shared.font_config)
+    return pages
+
+
+def _html5(html: str) -> HTML:
+    """``html`` parsed by WeasyPrint's own HTML5 parser, relative URLs in templates/."""
+    return HTML(string=html, base_url=BASE_URL, url_fetcher=TemplateFetcher())
 
 
 def parse_xhtml(html: str, base_url: str, url_fetcher: URLFetcher) -> HTML | None:
@@ -208,10 +202,7 @@ def _xml_parse_fits() -> bool:
 
 def render_pdf_plain(html: str) -> bytes:
     """The same certificate rendered with nothing shared: the reference the fast path must match."""
-    document = HTML(
-        string=html, base_url=TEMPLATES_DIR.as_uri() + "/", url_fetcher=TemplateFetcher()
-    )
-    return _write(document)
+    return _write(_html5(html))
 
 
 def write_pdf(pdf: bytes, path: pathlib.Path) -> None:
