@@ -17,6 +17,7 @@ Moving files and reading clocks are the watcher's and station's job.
 
 from __future__ import annotations
 
+import io
 import itertools
 import zlib
 from collections.abc import Iterable, Mapping
@@ -139,9 +140,7 @@ def looks_complete(data: bytes) -> bool:
     A writer that pauses mid-line, or a gzip stream cut short, fails this even
     when its size has not changed for a while.
     """
-    if data[:2] == GZIP_MAGIC:
-        return _gzip_complete([data])
-    return data.endswith(b"\n")
+    return file_looks_complete(io.BytesIO(data))
 
 
 def file_looks_complete(fh: BinaryIO) -> bool:
