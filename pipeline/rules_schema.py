@@ -343,11 +343,11 @@ message = "Grading capacity below rated capacity."
 """
 
 
-def table_cell(text: str) -> str:
+def _cell(text: str) -> str:
     return text.replace("|", "\\|")
 
 
-def default_text(key: Key) -> str:
+def _default_text(key: Key) -> str:
     if key.required:
         return "required"
     if key.default == ():
@@ -370,6 +370,20 @@ def allowed_text(key: Key) -> str:
     if key.maximum is not None:
         parts.append(f"<= {key.maximum:g}")
     return "; ".join(parts)
+
+
+def key_table(table: Table) -> list[str]:
+    """The Markdown table of ``table``'s keys (rule files and station settings alike)."""
+    rows = [
+        "| key | type | unit | allowed values | default | meaning |",
+        "|---|---|---|---|---|---|",
+    ]
+    for key in table.keys:
+        rows.append(
+            f"| `{key.name}` | {key.kind} | {_cell(key.unit)} | {_cell(allowed_text(key))} "
+            f"| {_cell(_default_text(key))} | {_cell(key.meaning)} |"
+        )
+    return rows
 
 
 def render_docs() -> str:
@@ -396,16 +410,7 @@ def render_docs() -> str:
     for table in TABLES:
         title = table.header + (" (required)" if table.required else "")
         out += [f"## {title}", "", table.meaning, ""]
-        out += [
-            "| key | type | unit | allowed values | default | meaning |",
-            "|---|---|---|---|---|---|",
-        ]
-        for key in table.keys:
-            out.append(
-                f"| `{key.name}` | {key.kind} | {table_cell(key.unit)} | {table_cell(allowed_text(key))} "
-                f"| {table_cell(default_text(key))} | {table_cell(key.meaning)} |"
-            )
-        out.append("")
+        out += [*key_table(table), ""]
     out += [
         "## Metrics",
         "",
@@ -417,8 +422,8 @@ def render_docs() -> str:
     ]
     for m in METRICS:
         out.append(
-            f"| `{m.name}` | {table_cell(m.unit)} | {'yes' if m.relative_ok else ''} "
-            f"| {table_cell(m.meaning)} |"
+            f"| `{m.name}` | {_cell(m.unit)} | {'yes' if m.relative_ok else ''} "
+            f"| {_cell(m.meaning)} |"
         )
     out += ["", "## Renamed keys", "", "| table | old key | new key |", "|---|---|---|"]
     for (table_name, old), new in sorted(RENAMED.items()):

@@ -26,8 +26,7 @@ from pipeline.rules_schema import (
     Key,
     Table,
     allowed_text,
-    default_text,
-    table_cell,
+    key_table,
 )
 from pipeline.smtp import SECURITY
 
@@ -444,19 +443,6 @@ def render_station_toml(*, station_name: str = "formation-line-1") -> str:
     return "\n".join(out)
 
 
-def _rows(table: Table) -> list[str]:
-    rows = [
-        "| key | type | unit | allowed values | default | meaning |",
-        "|---|---|---|---|---|---|",
-    ]
-    for key in table.keys:
-        rows.append(
-            f"| `{key.name}` | {key.kind} | {table_cell(key.unit)} | {table_cell(allowed_text(key))} "
-            f"| {table_cell(default_text(key))} | {table_cell(key.meaning)} |"
-        )
-    return rows
-
-
 def render_docs() -> str:
     """The whole of docs/station-settings.md, generated from SETTINGS_TABLES and CROSS_RULES."""
     out = [
@@ -486,7 +472,7 @@ def render_docs() -> str:
     ]
     for table in SETTINGS_TABLES:
         title = table.header + (" (required)" if table.required else "")
-        out += [f"## {title}", "", table.meaning, "", *_rows(table), ""]
+        out += [f"## {title}", "", table.meaning, "", *key_table(table), ""]
     out += ["## Rules between keys", ""]
     out += [f"- {rule}" for rule in CROSS_RULES]
     out += ["", "## Renamed keys", ""]
