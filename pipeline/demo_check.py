@@ -9,13 +9,11 @@ from __future__ import annotations
 import datetime
 from pathlib import Path
 
-from pipeline import shipped
 from pipeline.demo import DEMO_CELLS, DEMO_NMC_CELLS, REVIEW_CASES, DemoCell, write_demo_lot
 from pipeline.rulebook import load_rules_dir
 from pipeline.runner import check_file
+from pipeline.shipped import RULES_DIR
 from pipeline.summary import summary_table
-
-RULES_DIR = shipped.RULES_DIR
 
 
 def expected_verdict(cell: DemoCell) -> str:

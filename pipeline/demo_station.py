@@ -17,13 +17,11 @@ import threading
 import time
 from pathlib import Path
 
-from pipeline import shipped
 from pipeline.demo import DEMO_CELLS, DEMO_NMC_CELLS, DemoCell, demo_file_bytes
 from pipeline.ledger import Ledger
 from pipeline.settings import init_station, read_settings, smtp_settings
+from pipeline.shipped import RULES_DIR
 from pipeline.station import Station
-
-RULES_DIR = shipped.RULES_DIR
 
 STATION_TOML = """\
 # Demo station written by `formgate demo`: three inboxes, one per way of handing a

@@ -112,8 +112,7 @@ def prepare_process() -> None:
     into a generation the collector never scans (measured: a certificate 10-15 %
     faster). Objects made while judging and rendering are collected as before.
     """
-    import pipeline.certificate
-    import pipeline.pdf
+    import pipeline.pdf  # with pipeline.certificate
     import pipeline.readers.profile
     import pipeline.result
     import pipeline.runner  # imported here so that their objects are frozen too
