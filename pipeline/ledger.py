@@ -28,6 +28,7 @@ import json
 import pathlib
 import re
 import sqlite3
+import time
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -231,6 +232,28 @@ _INPUT_SELECT = (
 )
 
 
+def _set_wal(conn: sqlite3.Connection) -> str:
+    """Switch ``conn`` to write-ahead logging and return the journal mode now in force.
+
+    Two processes that open a new ledger at once race to change its journal mode, and
+    SQLite answers the loser at once with "database is locked" without waiting through
+    the busy timeout (the change needs an exclusive lock that its busy handler does not
+    wait for). So the switch is tried again for up to the busy timeout.
+    """
+    deadline = time.monotonic() + BUSY_TIMEOUT_MS / 1000
+    pause_s = 0.005
+    while True:
+        try:
+            return str(conn.execute("PRAGMA journal_mode = WAL").fetchone()[0])
+        except sqlite3.OperationalError as exc:
+            if getattr(exc, "sqlite_errorname", "") not in ("SQLITE_BUSY", "SQLITE_LOCKED"):
+                raise
+            if time.monotonic() >= deadline:
+                raise
+            time.sleep(pause_s)
+            pause_s = min(2 * pause_s, 0.2)
+
+
 class Ledger:
     """One connection to ``ledger.sqlite``; open one per process, write from one thread.
 
@@ -256,7 +279,7 @@ class Ledger:
         try:
             conn.row_factory = sqlite3.Row
             conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
-            mode = conn.execute("PRAGMA journal_mode = WAL").fetchone()[0]
+            mode = _set_wal(conn)
             if mode != "wal":
                 raise LedgerError(
                     f"the ledger cannot use write-ahead logging here (journal mode stays {mode!r})",
