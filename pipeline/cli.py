@@ -56,11 +56,13 @@ def _analysis_time(
 
 
 def _reason(outcome: FileOutcome) -> str:
+    from pipeline.evaluate import summarise
+
     if outcome.error is not None:
         return str(outcome.error).splitlines()[0]
     assert outcome.result is not None
     verdict = outcome.result.verdict
-    text = "; ".join(r.rstrip(".") for r in verdict.reasons) if verdict.reasons else "all checks in window"
+    text = summarise(verdict)
     if verdict.hazards:
         text += " [hazard: " + ", ".join(h.value for h in verdict.hazards) + "]"
     return text

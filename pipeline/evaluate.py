@@ -2,7 +2,10 @@
 
 Pure: no I/O. Each rule that applies to the cell type becomes one CheckResult;
 the verdict is fail if a reject check is out of window, else hold if a review
-check is out of window or a check could not be judged, else pass. Loading rules
+check is out of window, a check could not be made, or the record is incomplete or
+not the program the rule set describes, else pass. A check that could not be made
+is never "in window": it holds the cell, or, where its rule says it may be left
+out, is listed as left out. Loading rules
 is rulebook.py's job; wording cautions is hazards.py's.
 """
 
@@ -26,6 +29,7 @@ from pipeline.model import (
     VerdictKind,
     Window,
 )
+from pipeline.program import HOLDING_CODES, INCOMPLETE, MISMATCH
 
 
 def format_number(value: float) -> str:
@@ -80,11 +84,14 @@ def _check(
     unit = BY_NAME[rule.metric].unit if rule.metric in BY_NAME else ""
     blocked = blockers.get(rule.metric)
     if blocked is not None or value is None:
-        why = f"blocked by a data-quality note ({blocked})" if blocked else "not measured"
+        # a value the notes make untrustworthy is not judged; a missing one was not measured
+        what = "not judged" if value is not None else "not measured"
+        message = f"{rule.metric} {what}" + (f": {blocked}" if blocked else "")
         if rule.if_missing == "hold":
-            outcome, message = Outcome.NOT_JUDGED, f"{rule.metric} not judged: {why}."
+            outcome, message = Outcome.NOT_JUDGED, message + "."
         else:
-            outcome, message = Outcome.SKIPPED, f"{rule.metric} skipped: {why}."
+            outcome = Outcome.SKIPPED
+            message += " (the rule set lets this check be left out)."
     elif window.contains(value):
         outcome, message = Outcome.IN_WINDOW, ""
     else:
@@ -101,14 +108,19 @@ def _check(
     )
 
 
+# What a check row says of a program note, whose full text leads the verdict's reasons.
+_PROGRAM_SHORT = {INCOMPLETE: "program incomplete", MISMATCH: "the record is not the program's"}
+
+
 def _blockers(notes: Iterable[Note]) -> dict[str, str]:
-    """Metric name -> codes of the notes that make it untrustworthy."""
+    """Metric name -> what the notes that make it unmeasurable or untrustworthy say."""
     found: dict[str, list[str]] = {}
     for note in notes:
         for metric in note.blocks:
-            if note.code not in found.setdefault(metric, []):
-                found[metric].append(note.code)
-    return {metric: ", ".join(codes) for metric, codes in found.items()}
+            text = _PROGRAM_SHORT.get(note.code, note.text.rstrip("."))
+            if text not in found.setdefault(metric, []):
+                found[metric].append(text)
+    return {metric: "; ".join(texts) for metric, texts in found.items()}
 
 
 def evaluate(
@@ -118,12 +130,15 @@ def evaluate(
 
     ``notes`` are the data-quality notes of reading and segmenting the file; the
     notes in ``metrics.notes`` count as well. A check whose metric a note blocks,
-    or whose value is None or NaN, is not judged (hold) or skipped, as its rule's
-    ``if_missing`` says. ``CheckResult.message`` is empty for a value in window;
-    ``Verdict.reasons`` lists the message of every check out of window or not
-    judged, in rule order.
+    or whose value is None or NaN, is not made: it holds the cell (NOT_JUDGED) or is
+    left out (SKIPPED), as its rule's ``if_missing`` says. A note of the program
+    (incomplete record, another program) holds the cell. ``CheckResult.message`` is
+    empty for a value in window; ``Verdict.reasons`` lists the program notes, then the
+    message of every check out of window or not made and holding, in rule order.
     """
-    blockers = _blockers((*notes, *metrics.notes))
+    all_notes = (*notes, *metrics.notes)
+    blockers = _blockers(all_notes)
+    holding = list(dict.fromkeys(n.text for n in all_notes if n.code in HOLDING_CODES))
     checks = tuple(
         _check(rule, cell_type, metrics, blockers)
         for rule in rule_set.rules
@@ -132,13 +147,37 @@ def evaluate(
     out = [c for c in checks if c.outcome is Outcome.OUT_OF_WINDOW]
     if any(c.severity is Severity.REJECT for c in out):
         kind = VerdictKind.FAIL
-    elif out or any(c.outcome is Outcome.NOT_JUDGED for c in checks):
+    elif out or holding or any(c.outcome is Outcome.NOT_JUDGED for c in checks):
         kind = VerdictKind.HOLD
     else:
         kind = VerdictKind.PASS
     failed_hazards = {c.hazard for c in out if c.severity is Severity.REJECT}
     hazards = tuple(h for h in Hazard if h in failed_hazards)
-    reasons = tuple(
-        c.message for c in checks if c.outcome in (Outcome.OUT_OF_WINDOW, Outcome.NOT_JUDGED)
+    # the record's own problem first: it explains the checks that could not be made
+    # a check that only the program's note kept from being made adds nothing to that note
+    quiet = {m for m, text in blockers.items() if text in _PROGRAM_SHORT.values()}
+    reasons = tuple(f"{text[0].upper()}{text[1:]}." for text in holding) + tuple(
+        dict.fromkeys(  # two checks on one unmeasured metric give one reason
+            c.message
+            for c in checks
+            if c.outcome is Outcome.OUT_OF_WINDOW
+            or (c.outcome is Outcome.NOT_JUDGED and c.metric not in quiet)
+        )
     )
     return Verdict(kind, checks, hazards, reasons)
+
+
+def summarise(verdict: Verdict) -> str:
+    """The verdict's reasons in one line, naming every check that was left out.
+
+    >>> summarise(Verdict(VerdictKind.PASS, (), ()))
+    'all checks in window'
+    """
+    text = "; ".join(r.rstrip(".") for r in verdict.reasons)
+    left_out = verdict.left_out
+    if not text:
+        text = "every check made is in window" if left_out else "all checks in window"
+    if left_out:
+        names = ", ".join(dict.fromkeys(c.metric for c in left_out))
+        text += f"; not made (the rule set allows it): {names}"
+    return text

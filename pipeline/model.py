@@ -228,12 +228,31 @@ class Cycle:
 
 
 @dataclass(frozen=True, slots=True)
+class CurrentBand:
+    """How rest was told from current in one file: rows with |I - offset_a| <= threshold_a are rest.
+
+    ``offset_a`` is the channel's zero offset and ``noise_a`` the robust rms spread of its
+    current at rest (1.4826 x the median absolute deviation), both estimated from the
+    ``rows`` samples near zero current; ``floor_a`` is the rule set's ``rest_current_C``
+    times the nominal capacity. ``threshold_a`` is the larger of the floor and a multiple
+    of the noise, so that noise at rest can never make a step.
+    """
+
+    offset_a: float
+    noise_a: float
+    threshold_a: float
+    floor_a: float
+    rows: int
+
+
+@dataclass(frozen=True, slots=True)
 class Segmentation:
     """The steps and cycles of one trace, plus notes (e.g. disagreement with the file's step column)."""
 
     steps: tuple[Step, ...]
     cycles: tuple[Cycle, ...]
     notes: tuple[Note, ...] = ()
+    band: CurrentBand | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -409,6 +428,26 @@ class Rule:
 
 
 @dataclass(frozen=True, slots=True)
+class Program:
+    """What the rule set knows of the cycler program, to find the grading cycle and a cut record.
+
+    ``cycles``: charge-discharge cycles the program runs, the last being the grading
+    cycle (None: not stated, the last complete cycle is graded). ``grading_step``: the
+    program step number of the grading discharge in files with a step column.
+    ``end_of_discharge_v``: the discharge cut-off; a discharge that is the last step of
+    a record and stopped more than ``end_tolerance_v`` above it was cut short.
+    ``final_rest_s``: how long the program's final rest lasts; a record whose final
+    rest is shorter was cut during it (None: any final rest long enough to measure).
+    """
+
+    cycles: int | None = None
+    grading_step: int | None = None
+    end_of_discharge_v: float | None = None
+    end_tolerance_v: float = 0.1
+    final_rest_s: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
 class RuleSet:
     """One chemistry family's rules, as loaded from one TOML file."""
 
@@ -424,6 +463,7 @@ class RuleSet:
     relax_s: float = 600.0
     rest_current_fraction: float = 0.002  # |I| below this x nominal capacity (A/Ah) is rest
     description: str = ""
+    program: Program = field(default_factory=Program)
 
     def cell_type(self, name: str) -> CellType | None:
         for ct in self.cell_types:
@@ -458,6 +498,11 @@ class Verdict:
     @property
     def passed(self) -> bool:
         return self.kind is VerdictKind.PASS
+
+    @property
+    def left_out(self) -> tuple[CheckResult, ...]:
+        """Checks not made that the rule set lets be left out: never counted as in window."""
+        return tuple(c for c in self.checks if c.outcome is Outcome.SKIPPED)
 
 
 @dataclass(frozen=True, slots=True)

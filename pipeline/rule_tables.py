@@ -88,10 +88,10 @@ def _check_number(out: Collector, path: KeyPath, spec: Key, value: object) -> ob
     ):
         kind = "a number" if spec.kind == NUMBER else "a whole number"
         hint = (
-            f"Write a plain number, e.g. {spec.name} = {EXAMPLES[NUMBER]} "
+            f"Write a plain number, e.g. {spec.name} = {spec.example or EXAMPLES[NUMBER]} "
             "(no quotes, no unit, a dot for decimals)."
             if spec.kind == NUMBER
-            else f"Write a whole number, e.g. {spec.name} = {EXAMPLES[INTEGER]} (no quotes, no "
+            else f"Write a whole number, e.g. {spec.name} = {spec.example or EXAMPLES[INTEGER]} (no quotes, no "
             "decimals)."
         )
         if isinstance(value, str):

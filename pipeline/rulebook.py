@@ -25,6 +25,7 @@ from pipeline.model import (
     CellType,
     Hazard,
     PlateauSettings,
+    Program,
     Rule,
     RuleSet,
     Severity,
@@ -303,6 +304,7 @@ def _assemble(
     rules: tuple[Rule, ...],
 ) -> RuleSet:
     meta, plateau, measure = plain["rule_set"], plain["plateau_detection"], plain["measurement"]
+    program = plain["program"]
 
     def num(values: Values, key: str) -> float:
         found = number(values, key)
@@ -330,7 +332,19 @@ def _assemble(
         relax_s=num(measure, "relax_s"),
         rest_current_fraction=num(measure, "rest_current_C"),
         description=str(meta["description"]),
+        program=Program(
+            cycles=_int_or_none(program, "cycles"),
+            grading_step=_int_or_none(program, "grading_step"),
+            end_of_discharge_v=number(program, "end_of_discharge_V"),
+            end_tolerance_v=num(program, "end_tolerance_V"),
+            final_rest_s=number(program, "final_rest_s"),
+        ),
     )
+
+
+def _int_or_none(values: Values, key: str) -> int | None:
+    found = number(values, key)
+    return None if found is None else int(found)
 
 
 def load_rule_set(text: str, name: str) -> RuleSet:

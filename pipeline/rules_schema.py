@@ -246,6 +246,62 @@ TABLES: tuple[Table, ...] = (
         ),
     ),
     Table(
+        "program",
+        "What the rule set knows of the cycler program, so that the cycle graded is the "
+        "program's grading cycle and a record cut short is held, never judged on its "
+        "formation cycle. A discharge is finished when another step follows it, or when it "
+        "stopped within end_tolerance_V of end_of_discharge_V. A record that ends before its "
+        "grading discharge is finished is held as \"program incomplete\"; one with more "
+        "cycles than the program, or whose grading step is not a discharge, is held too.",
+        (
+            Key(
+                "cycles",
+                INTEGER,
+                "charge-discharge cycles the program runs, formation and grading; the last "
+                "is the grading cycle",
+                minimum=1,
+                allowed_note="not set: the last finished cycle is graded",
+                example="2",
+            ),
+            Key(
+                "grading_step",
+                INTEGER,
+                "the program's step number of the grading discharge, used in files that carry "
+                "a step column (it takes precedence over cycles there)",
+                minimum=0,
+                example="12",
+            ),
+            Key(
+                "end_of_discharge_V",
+                NUMBER,
+                "the program's discharge cut-off voltage",
+                unit="V",
+                example="2.5",
+                allowed_note="not set: a discharge that ends the record counts as cut short",
+            ),
+            Key(
+                "end_tolerance_V",
+                NUMBER,
+                "how far above end_of_discharge_V a discharge that ends the record may stop "
+                "and still count as finished",
+                unit="V",
+                default=0.1,
+                minimum=0.0,
+            ),
+            Key(
+                "final_rest_s",
+                NUMBER,
+                "how long the program's final rest lasts (the rest-drift screen); a record "
+                "whose final rest is shorter than 99 % of it was cut during the rest",
+                unit="s",
+                minimum=0.0,
+                minimum_exclusive=True,
+                allowed_note="not set: any final rest long enough to measure the drift",
+                example="10800",
+            ),
+        ),
+    ),
+    Table(
         "check",
         "One table per acceptance check; ID names the check on the certificate. "
         "At least one of low and high; low may not be above high; every cell type must have "

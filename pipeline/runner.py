@@ -46,13 +46,13 @@ def judge(
     rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
     notes = validate_trace(trace, cell_type)
     trace = drop_invalid_rows(trace)
-    segmentation = split_steps(
-        trace, rule_set.rest_current_fraction * cell_type.nominal_capacity_ah
-    )
+    one_c_a = cell_type.nominal_capacity_ah  # 1 C in A is the nominal capacity in Ah per hour
+    segmentation = split_steps(trace, rule_set.rest_current_fraction * one_c_a, one_c_a)
     metrics = measure(
         trace,
         segmentation,
         rule_set.plateau,
+        program=rule_set.program,
         dcir_pulse_s=rule_set.dcir_pulse_s,
         relax_s=rule_set.relax_s,
     )

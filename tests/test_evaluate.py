@@ -12,7 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipeline import hazards
-from pipeline.evaluate import evaluate, format_number, format_window
+from pipeline.evaluate import evaluate, format_number, format_window, summarise
 from pipeline.metricdefs import METRIC_NAMES
 from pipeline.model import (
     CellMetrics,
@@ -115,7 +115,7 @@ def test_a_note_code_is_named_once_however_often_it_blocks() -> None:
     twice = Note("time_duplicates", "Rows repeat.", blocks=("dcir_mOhm", "dcir_mOhm"))
     verdict = evaluate(_rule_set(rule), CT, _metrics({"dcir_mOhm": 5.0}), (twice, twice))
     assert verdict.reasons == (
-        "dcir_mOhm not judged: blocked by a data-quality note (time_duplicates).",
+        "dcir_mOhm not judged: Rows repeat.",
     )
 
 
@@ -123,7 +123,13 @@ def test_a_skipped_check_alone_still_passes() -> None:
     rule = Rule("t", "max_temperature_C", Window(None, 45.0), Severity.REJECT, if_missing="skip")
     verdict = evaluate(_rule_set(rule), CT, _metrics({}))
     assert verdict.kind is VerdictKind.PASS and verdict.reasons == ()
-    assert verdict.checks[0].message == "max_temperature_C skipped: not measured."
+    assert verdict.checks[0].message == (
+        "max_temperature_C not measured (the rule set lets this check be left out)."
+    )
+    assert verdict.left_out == (verdict.checks[0],)
+    assert summarise(verdict) == (
+        "every check made is in window; not made (the rule set allows it): max_temperature_C"
+    )
 
 
 def test_a_failed_review_check_never_adds_a_hazard() -> None:
@@ -251,8 +257,14 @@ def test_verdict_agrees_with_its_check_rows(
     assert (verdict.kind is VerdictKind.FAIL) == bool(rejected)
     assert set(verdict.hazards) == {c.hazard for c in rejected if c.hazard}
     assert list(verdict.hazards) == sorted(verdict.hazards, key=list(Hazard).index)
-    assert len(verdict.reasons) == len(out) + sum(
-        c.outcome is Outcome.NOT_JUDGED for c in verdict.checks
+    # one reason per distinct message of a check out of window or not made (two checks on
+    # one unmeasured metric say the same thing once)
+    assert verdict.reasons == tuple(
+        dict.fromkeys(
+            c.message
+            for c in verdict.checks
+            if c.outcome in (Outcome.OUT_OF_WINDOW, Outcome.NOT_JUDGED)
+        )
     )
     for check in out:  # a row's value really lies outside its absolute window
         assert check.value is not None and not check.window.contains(check.value)

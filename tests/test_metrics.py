@@ -14,7 +14,7 @@ from tests.factories import build_trace, cc, rest, simple_formation
 
 
 def measured(trace: Trace, **kw):
-    return measure(trace, split_steps(trace, 0.004), PlateauSettings(), **kw)
+    return measure(trace, split_steps(trace, 0.004, 2.0), PlateauSettings(), **kw)
 
 
 def test_constant_current_step_capacity_equals_current_times_time() -> None:
@@ -23,7 +23,7 @@ def test_constant_current_step_capacity_equals_current_times_time() -> None:
     trace = build_trace(
         [rest(600.0, 3.3), cc(duration_s, -i_a, lambda q: 3.3 + 0 * q), rest(600.0, 3.2)], dt_s=1.0
     )
-    seg = split_steps(trace, 0.01)
+    seg = split_steps(trace, 0.01, 5.0)
     discharge = [s for s in seg.steps if s.kind.value == "discharge"]
     assert len(discharge) == 1
     # the step owns its samples plus half an interval on each side: I * (duration) exactly

@@ -13,7 +13,7 @@ from hypothesis import strategies as st
 
 from pipeline.errors import InputError, RulesError
 from pipeline.metricdefs import METRIC_NAMES
-from pipeline.model import Hazard, PlateauSettings, Severity, SourceRef, Window
+from pipeline.model import Hazard, PlateauSettings, Program, Severity, SourceRef, Window
 from pipeline.rulebook import RuleBook, check_rules_dir, load_rule_set, load_rules_dir
 from pipeline.rules_schema import (
     EXAMPLE,
@@ -156,19 +156,21 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_rule_set() -> 
     assert (two.min_voltage_v, two.max_voltage_v) == (0.5, 4.0)  # from [plausible]
     assert rs.plateau == PlateauSettings(4.0, 6.0, 2.0, 2.5, 501, 2.0, 0.5)
     assert (rs.dcir_pulse_s, rs.relax_s, rs.rest_current_fraction) == (5.0, 900.0, 0.01)
+    assert rs.program == Program(3, 14, 2.0, 0.05, 7200.0)
     (rule,) = rs.rules
     assert rule.id == "capacity" and rule.metric == "grading_capacity_Ah"
     assert rule.window == Window(0.98, 1.12, "nominal_capacity")
     assert (rule.severity, rule.hazard) == (Severity.REJECT, Hazard.ABNORMAL_CAPACITY)
     assert (rule.message, rule.if_missing) == ("Grading capacity out of window.", "skip")
     assert rule.cell_types == ("DEMO-ALL-1", "DEMO-ALL-2")
-    assert rule.where == SourceRef("all_keys.toml", 35)
+    assert rule.where == SourceRef("all_keys.toml", 42)
 
 
 def test_defaults_fill_what_a_file_leaves_out() -> None:
     rs = load_rule_set(EXAMPLE, "rules/demo.toml")
     assert rs.plateau == PlateauSettings()
     assert (rs.dcir_pulse_s, rs.relax_s, rs.rest_current_fraction) == (10.0, 600.0, 0.002)
+    assert rs.program == Program()
     assert (rs.cell_types[0].min_voltage_v, rs.cell_types[0].max_voltage_v) == (-0.1, 5.0)
     assert rs.rules[0].if_missing == "hold" and rs.rules[0].cell_types == ()
 

@@ -15,7 +15,7 @@ def kinds_modes(seg):
 
 def test_formation_program_is_cut_into_its_steps() -> None:
     trace = build_trace(simple_formation())
-    seg = split_steps(trace, rest_current_a=0.004)
+    seg = split_steps(trace, rest_current_a=0.004, one_c_a=2.0)
     assert kinds_modes(seg) == [
         ("rest", "none"),
         ("charge", "cc"),
@@ -38,7 +38,7 @@ def test_formation_program_is_cut_into_its_steps() -> None:
 
 def test_steps_tile_the_trace_without_gaps() -> None:
     trace = build_trace(simple_formation(), dt_s=7.0)
-    seg = split_steps(trace, 0.004)
+    seg = split_steps(trace, 0.004, 2.0)
     assert seg.steps[0].start == 0 and seg.steps[-1].stop == len(trace)
     for a, b in zip(seg.steps, seg.steps[1:], strict=False):
         assert a.stop == b.start and a.end_s == b.start_s
@@ -47,7 +47,7 @@ def test_steps_tile_the_trace_without_gaps() -> None:
 def test_capacity_is_additive_over_steps() -> None:
     # the trapezoid integral of |I| over the whole record equals the sum over steps
     trace = build_trace(simple_formation(), dt_s=10.0)
-    seg = split_steps(trace, 0.004)
+    seg = split_steps(trace, 0.004, 2.0)
     total_ah = np.trapezoid(np.abs(trace.current_a), trace.time_s) / 3600.0
     assert sum(s.capacity_ah for s in seg.steps) == pytest_approx(total_ah)
 
@@ -70,7 +70,7 @@ def test_single_sample_blip_does_not_split_a_rest() -> None:
     i = np.zeros(100)
     i[50] = 0.5  # one noisy sample above the rest threshold
     trace = Trace("blip.csv", {}, t, np.full(100, 3.3), i)
-    seg = split_steps(trace, 0.01)
+    seg = split_steps(trace, 0.01, 5.0)
     assert [s.kind for s in seg.steps] == [StepKind.REST]
 
 
@@ -79,7 +79,7 @@ def test_step_column_boundaries_are_used_and_disagreement_is_noted() -> None:
     i = np.concatenate([np.zeros(20), np.full(20, 1.0), np.full(20, -1.0)])
     step = np.concatenate([np.full(20, 1), np.full(40, 2)])  # step 2 holds charge and discharge
     trace = Trace("steps.csv", {}, t, np.full(60, 3.3), i, step=step)
-    seg = split_steps(trace, 0.01)
+    seg = split_steps(trace, 0.01, 5.0)
     assert [s.program_step for s in seg.steps] == [1, 2]
     assert [n.code for n in seg.notes] == ["step_column_disagrees"]
     assert seg.notes[0].where is not None and seg.notes[0].where.line == 2 + 20
@@ -89,7 +89,7 @@ def test_program_cv_step_alone_is_recognised_as_cv() -> None:
     t = np.arange(0, 600.0, 10.0)
     i = 2.0 * np.exp(-t / 100.0)
     trace = Trace("cv.csv", {}, t, np.full(len(t), 3.65), i, step=np.full(len(t), 4))
-    seg = split_steps(trace, 0.001)
+    seg = split_steps(trace, 0.001, 0.5)
     assert kinds_modes(seg) == [("charge", "cv")]
 
 
@@ -119,11 +119,11 @@ def test_discharge_before_any_charge_belongs_to_no_cycle_and_trailing_charge_is_
 def test_cycle_column_that_splits_a_discharge_is_noted() -> None:
     trace = build_trace(simple_formation())
     cycle = np.ones(len(trace), dtype=int)
-    seg0 = split_steps(trace, 0.004)
+    seg0 = split_steps(trace, 0.004, 2.0)
     grading = seg0.steps[9]
     cycle[grading.start + 5 :] = 2
     noted = Trace(
         trace.source, trace.metadata, trace.time_s, trace.voltage_v, trace.current_a, cycle=cycle
     )
-    seg = split_steps(noted, 0.004)
+    seg = split_steps(noted, 0.004, 2.0)
     assert [n.code for n in seg.notes] == ["cycle_column_disagrees"]

@@ -22,7 +22,7 @@ from hypothesis import strategies as st
 from pipeline import demo, ocp, synth
 from pipeline.synth import CellRecipe, SimulatedRecord
 
-NO_NOISE = {"noise_mv": 0.0, "current_noise_a": 0.0, "temperature_noise_c": 0.0}
+NO_NOISE = {"channel": synth.NOISELESS}
 
 
 def simulate(seed: int = 7, **changes: object) -> SimulatedRecord:
@@ -147,7 +147,7 @@ def test_faraday_bookkeeping_of_every_step() -> None:
 
 
 def test_coulomb_counting_matches_the_true_charge_of_each_step() -> None:
-    record = simulate()
+    record = simulate(**NO_NOISE)
     for truth in record.steps:
         if truth.kind == "rest":
             assert coulombs_ah(record, truth) == 0.0
@@ -288,7 +288,13 @@ def demo_cell(defect: str) -> demo.DemoCell:
 
 @pytest.fixture(scope="module")
 def lot() -> dict[str, SimulatedRecord]:
-    return {c.cell_id: demo.demo_record(c) for c in demo.DEMO_CELLS}
+    """The demo lot as the model makes it, before the channel's measurement errors."""
+    records = {}
+    for cell in demo.DEMO_CELLS:
+        rng = demo._seed_for(cell, 2026)
+        recipe = dataclasses.replace(demo.demo_recipe(cell, rng), **NO_NOISE)
+        records[cell.cell_id] = synth.simulate_formation(recipe, rng)
+    return records
 
 
 def test_demo_lot_description() -> None:
@@ -307,6 +313,25 @@ def test_normal_cells_spread_as_a_lot(lot: dict[str, SimulatedRecord]) -> None:
     assert float(np.ptp(dcir) / np.median(dcir)) < 0.15
     assert all(final_rest_drift_mv_per_h(r) > -0.3 for r in normal)
     assert all(float(r.temperature_c.max()) < 30.0 for r in normal)
+
+
+def test_channel_errors_have_the_size_the_channel_declares() -> None:
+    # robust location and scale of the rest rows (median; 1.4826 x MAD, Iglewicz and Hoaglin 1993)
+    channel = synth.Channel(range_a=50.0, current_noise_fraction=5e-4, rest_offset_fraction=1e-4)
+    record = simulate(seed=3, channel=channel)
+    true = simulate(seed=3, **NO_NOISE)
+    rest = true.current_a == 0.0
+    rest[np.flatnonzero(np.diff(true.step) != 0) + 1] = False  # step changes carry their spike
+    at_rest = record.current_a[rest]
+    assert float(np.median(at_rest)) == pytest.approx(0.005, abs=0.001)
+    mad = float(np.median(np.abs(at_rest - np.median(at_rest))))
+    assert 1.4826 * mad == pytest.approx(0.025, rel=0.05)
+    noise_v = record.voltage_v[rest] - true.voltage_v[rest]
+    assert float(np.std(noise_v)) == pytest.approx(0.001, rel=0.05)
+    # the switch shows on the first row of a step only
+    flowing = ~rest & (np.abs(true.current_a) > 0)
+    flowing[np.flatnonzero(np.diff(true.step) != 0) + 1] = False
+    assert float(np.max(np.abs(record.current_a[flowing] - true.current_a[flowing]))) < 6 * 0.025
 
 
 def clean_record(cell: demo.DemoCell) -> SimulatedRecord:

@@ -1,0 +1,250 @@
+"""Which cycle is the program's grading cycle, and whether the record got that far.
+
+Pure: a Trace, its Segmentation and the rule set's Program in, a GradingChoice out.
+Real channels abort programs (power loss, channel fault, operator stop), so the last
+discharge of a record is not always the grading discharge: a record cut during the
+second charge holds only the formation cycle. The grading cycle is the one the
+program names: by its step number when the file has a step column and the rule set
+gives ``grading_step``, else by the program's cycle count, else the last cycle. A
+discharge counts as finished when another step follows it, or when it stopped within
+a tolerance of the program's end-of-discharge voltage. A record that ends before its
+grading discharge is finished is *incomplete*: a note says where it ends, the metrics
+that need the missing part are not measured, and the cell is held.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from pipeline.model import (
+    Cycle,
+    Note,
+    Program,
+    Segmentation,
+    SourceRef,
+    Step,
+    StepKind,
+    StepMode,
+    Trace,
+)
+
+INCOMPLETE = "program_incomplete"
+MISMATCH = "program_mismatch"
+# Notes with these codes hold the cell whatever its checks say (evaluate.py).
+HOLDING_CODES: tuple[str, ...] = (INCOMPLETE, MISMATCH)
+
+# Metrics of the grading cycle and of what follows it in the program.
+GRADING_METRICS: tuple[str, ...] = (
+    "grading_capacity_Ah",
+    "grading_energy_Wh",
+    "grading_mean_voltage_V",
+    "grading_coulombic_efficiency",
+    "grading_cv_duration_s",
+    "dcir_mOhm",
+    "rest_voltage_drift_mV_per_h",
+    "plateau_count",
+    "main_plateau_voltage_V",
+    "main_plateau_length_pct",
+    "total_plateau_length_pct",
+    "cycle_count",
+)
+FIRST_CYCLE_METRICS: tuple[str, ...] = ("first_cycle_efficiency", "irreversible_capacity_Ah")
+
+
+@dataclass(frozen=True, slots=True)
+class GradingChoice:
+    """The grading cycle (None when the record has none) and whether cycle 1 is whole.
+
+    ``notes`` say why there is no grading cycle, or that the record does not match the
+    program; a note with a code in HOLDING_CODES holds the cell.
+    """
+
+    cycle: Cycle | None
+    first_cycle_finished: bool
+    notes: tuple[Note, ...] = ()
+
+
+def discharge_finished(trace: Trace, steps: tuple[Step, ...], cycle: Cycle, program: Program) -> bool:
+    """True when ``cycle`` has a discharge that was not cut off by the end of the record."""
+    if not cycle.discharge_steps:
+        return False
+    last = steps[cycle.discharge_steps[-1]]
+    if last.index < len(steps) - 1:
+        return True
+    if program.end_of_discharge_v is None:
+        return False
+    end_v = float(trace.voltage_v[last.stop - 1])
+    return end_v <= program.end_of_discharge_v + program.end_tolerance_v
+
+
+def describe_end(trace: Trace, segmentation: Segmentation) -> str:
+    """Where a record ends, in words: its last step, that step's cycle, and the time.
+
+    For example "cycle 2's charge (constant voltage, program step 10), 15.3 h after the start".
+    """
+    steps = segmentation.steps
+    if not steps:
+        return "a record with no step"
+    last = steps[-1]
+    details = []
+    if last.kind is StepKind.REST:
+        before = next((s for s in reversed(steps[:-1]) if s.kind is not StepKind.REST), None)
+        what = "a rest" if before is None else f"the rest after a {before.kind.value}"
+    else:
+        owner = next(
+            (c for c in segmentation.cycles if last.index in c.charge_steps + c.discharge_steps),
+            None,
+        )
+        what = f"a {last.kind.value}" if owner is None else f"cycle {owner.index}'s {last.kind.value}"
+        details.append("constant voltage" if last.mode is StepMode.CV else "constant current")
+    if last.program_step is not None:
+        details.append(f"program step {last.program_step}")
+    hours = float(trace.time_s[-1] - trace.time_s[0]) / 3600.0
+    return what + (f" ({', '.join(details)})" if details else "") + f", {hours:.1f} h after the start"
+
+
+def _incomplete(trace: Trace, segmentation: Segmentation, missing: str) -> Note:
+    return Note(
+        INCOMPLETE,
+        f"program incomplete: record ends in {describe_end(trace, segmentation)}, {missing}",
+        SourceRef(trace.source, trace.line_of(len(trace) - 1)),
+        GRADING_METRICS,
+    )
+
+
+def choose_grading(trace: Trace, segmentation: Segmentation, program: Program) -> GradingChoice:
+    """The program's grading cycle in ``segmentation``, or notes saying why there is none."""
+    steps, cycles = segmentation.steps, segmentation.cycles
+    finished = [c for c in cycles if discharge_finished(trace, steps, c, program)]
+    first_ok = bool(cycles) and cycles[0] in finished
+    if program.grading_step is not None and trace.step is not None:
+        return _by_step(trace, segmentation, program, finished, first_ok)
+    if program.cycles is not None:
+        if len(finished) < program.cycles:
+            return GradingChoice(
+                None,
+                first_ok,
+                (
+                    _incomplete(
+                        trace,
+                        segmentation,
+                        f"before the discharge of cycle {program.cycles} (the grading cycle) "
+                        f"was finished",
+                    ),
+                ),
+            )
+        grading = finished[program.cycles - 1]
+        notes: tuple[Note, ...] = ()
+        if len(finished) > program.cycles:
+            notes = (
+                Note(
+                    MISMATCH,
+                    f"the record holds {len(finished)} charge-discharge cycles where the "
+                    f"program has {program.cycles}; cycle {program.cycles} is graded",
+                    SourceRef(trace.source),
+                ),
+            )
+        return GradingChoice(grading, first_ok, notes)
+    complete = [c for c in cycles if c.complete]
+    if not complete:
+        return GradingChoice(None, first_ok, ())
+    if complete[-1] not in finished:
+        return GradingChoice(
+            None,
+            first_ok,
+            (_incomplete(trace, segmentation, "before its last discharge was finished"),),
+        )
+    return GradingChoice(complete[-1], first_ok, ())
+
+
+def _by_step(
+    trace: Trace,
+    segmentation: Segmentation,
+    program: Program,
+    finished: list[Cycle],
+    first_ok: bool,
+) -> GradingChoice:
+    number = program.grading_step
+    steps = segmentation.steps
+    found = [s for s in steps if s.program_step == number]
+    if not found:
+        return GradingChoice(
+            None,
+            first_ok,
+            (
+                _incomplete(
+                    trace,
+                    segmentation,
+                    f"before program step {number} (the grading discharge)",
+                ),
+            ),
+        )
+    if found[0].kind is not StepKind.DISCHARGE:
+        note = Note(
+            MISMATCH,
+            f"program step {number}, which the rule set names as the grading discharge, is "
+            f"{'a rest' if found[0].kind is StepKind.REST else 'a charge'} in this record",
+            SourceRef(trace.source, trace.line_of(found[0].start)),
+            GRADING_METRICS,
+        )
+        return GradingChoice(None, first_ok, (note,))
+    owner = next((c for c in segmentation.cycles if found[0].index in c.discharge_steps), None)
+    if owner is None:  # a discharge before any charge: the program is not this one
+        note = Note(
+            MISMATCH,
+            f"program step {number} (the grading discharge) comes before any charge",
+            SourceRef(trace.source, trace.line_of(found[0].start)),
+            GRADING_METRICS,
+        )
+        return GradingChoice(None, first_ok, (note,))
+    if owner not in finished:
+        return GradingChoice(
+            None,
+            first_ok,
+            (
+                _incomplete(
+                    trace,
+                    segmentation,
+                    f"before program step {number} (the grading discharge) was finished",
+                ),
+            ),
+        )
+    return GradingChoice(owner, first_ok, ())
+
+
+# A final rest counts as finished at this share of the program's final rest (sampling and
+# the cycler's own step timing end it a little early or late: common practice).
+FINAL_REST_SHARE = 0.99
+
+
+def final_rest(
+    trace: Trace, segmentation: Segmentation, program: Program, grading: Cycle
+) -> tuple[Step | None, Note | None]:
+    """The program's final rest (the record's last step, a rest after the grading discharge).
+
+    None with a note when the record does not end in such a rest, or ends before the
+    program's final rest was over; the note holds the cell when the rule set gives the
+    final rest's length, since the record was then cut short.
+    """
+    last = segmentation.steps[-1]
+    where = SourceRef(trace.source, trace.line_of(len(trace) - 1))
+    blocks = ("rest_voltage_drift_mV_per_h",)
+    if last.kind is not StepKind.REST or last.index < grading.discharge_steps[-1]:
+        if program.final_rest_s is None:
+            text = (
+                "the record does not end in a rest after the grading discharge, so the rest "
+                "voltage drift is not measured"
+            )
+            return None, Note("no_final_rest", text, where, blocks)
+        text = (
+            f"program incomplete: record ends in {describe_end(trace, segmentation)}, "
+            f"before the final rest"
+        )
+        return None, Note(INCOMPLETE, text, where, blocks)
+    if program.final_rest_s is not None and last.duration_s < FINAL_REST_SHARE * program.final_rest_s:
+        text = (
+            f"program incomplete: record ends {last.duration_s / 3600.0:.2f} h into the final "
+            f"rest, which the program runs for {program.final_rest_s / 3600.0:.2f} h"
+        )
+        return None, Note(INCOMPLETE, text, where, blocks)
+    return last, None
