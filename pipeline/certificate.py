@@ -22,6 +22,7 @@ from pipeline.metricdefs import BY_NAME
 from pipeline.model import (
     CellResult,
     CheckResult,
+    CurrentBand,
     Curve,
     CycleMetrics,
     Hazard,
@@ -52,7 +53,7 @@ OUTCOME_WORDS = {
     Outcome.IN_WINDOW: "in window",
     Outcome.OUT_OF_WINDOW: "OUT OF WINDOW",
     Outcome.NOT_JUDGED: "not judged",
-    Outcome.SKIPPED: "skipped",
+    Outcome.SKIPPED: "not made (allowed)",
 }
 HAZARD_WORDS = {
     Hazard.INTERNAL_SHORT: "internal short",
@@ -215,6 +216,24 @@ def _note_rows(result: CellResult) -> list[dict[str, str]]:
     ]
 
 
+def _band_text(band: CurrentBand | None) -> str:
+    """How rest was told from current, in one sentence for the data-quality section."""
+    if band is None:
+        return ""
+    def ma(value_a: float) -> str:
+        return f"{_signed(f'{value_a * 1000:.3g}')} mA"
+    source = (
+        f"the channel's zero offset {ma(band.offset_a)} and noise {ma(band.noise_a)} rms, "
+        f"from {band.rows} rows near zero current"
+        if band.rows
+        else "too few rows near zero current to estimate the channel's noise"
+    )
+    return (
+        f"Rest is current within {ma(band.threshold_a)} of the zero offset ({source}; "
+        f"the rule set's rest current is {ma(band.floor_a)})."
+    )
+
+
 def _identity(result: CellResult) -> list[tuple[str, str]]:
     meta = result.metadata
     ct = result.cell_type
@@ -260,6 +279,11 @@ def build_context(result: CellResult) -> dict[str, object]:
     hazards = importlib.import_module("pipeline.hazards")
     kind = result.verdict.kind
     word, headline = VERDICT_WORDS[kind]
+    if kind is VerdictKind.PASS and result.verdict.left_out:
+        headline = (
+            "Every check made is within its acceptance window; the checks below were not "
+            "made, as the rule set allows."
+        )
     cell_id = result.cell_id or DASH
     metrics = result.metrics
     failed = kind is VerdictKind.FAIL
@@ -282,6 +306,7 @@ def build_context(result: CellResult) -> dict[str, object]:
             "word": word,
             "headline": headline,
             "reasons": list(result.verdict.reasons),
+            "not_made": [c.message for c in result.verdict.left_out],
         },
         "identity": _identity(result),
         "other_metadata": [(k, v) for k, v in result.metadata.items() if k not in IDENTITY_KEYS],
@@ -304,6 +329,7 @@ def build_context(result: CellResult) -> dict[str, object]:
         "ica_peaks": ", ".join(f"{v:.3f} V" for v in metrics.ica_peaks_v if math.isfinite(v))
         or DASH,
         "notes": _note_rows(result),
+        "current_band": _band_text(result.current_band),
         "traceability": _traceability(result),
     }
 

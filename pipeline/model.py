@@ -533,6 +533,7 @@ class CellResult:
     notes: tuple[Note, ...]
     analysed_at: datetime.datetime
     software_version: str
+    current_band: CurrentBand | None = None  # how rest was told from current (segmentation)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))

@@ -11,7 +11,7 @@ import math
 from typing import Any
 
 from pipeline.metricdefs import METRICS
-from pipeline.model import CellResult, CheckResult, CycleMetrics, Note, Plateau
+from pipeline.model import CellResult, CheckResult, CurrentBand, CycleMetrics, Note, Outcome, Plateau
 
 SCHEMA_VERSION = 1
 IDENTITY_KEYS = ("cell_id", "lot", "cell_type", "channel", "station", "program", "started_at")
@@ -100,7 +100,26 @@ def to_document(result: CellResult) -> dict[str, Any]:
         "plateaus": [_plateau(p) for p in result.metrics.plateaus],
         "ica_peaks_V": list(result.metrics.ica_peaks_v),
         "checks": [_check(c) for c in result.verdict.checks],
+        "checks_not_made": [
+            c.rule_id
+            for c in result.verdict.checks
+            if c.outcome in (Outcome.NOT_JUDGED, Outcome.SKIPPED)
+        ],
+        "current_band": _band(result.current_band),
         "notes": [_note(n) for n in result.notes],
+    }
+
+
+def _band(band: CurrentBand | None) -> dict[str, Any] | None:
+    """How rest was told from current: the file's offset and noise, the threshold used."""
+    if band is None:
+        return None
+    return {
+        "offset_A": band.offset_a,
+        "noise_A": band.noise_a,
+        "threshold_A": band.threshold_a,
+        "rule_floor_A": band.floor_a,
+        "rows_near_zero": band.rows,
     }
 
 
@@ -139,6 +158,8 @@ def schema() -> dict[str, Any]:
             "plateaus",
             "ica_peaks_V",
             "checks",
+            "checks_not_made",
+            "current_band",
             "notes",
         ],
         "properties": {
@@ -264,6 +285,30 @@ def schema() -> dict[str, Any]:
                         "message": {"type": "string"},
                     },
                 },
+            },
+            "checks_not_made": {"type": "array", "items": {"type": "string"}},
+            "current_band": {
+                "oneOf": [
+                    {"type": "null"},
+                    {
+                        "type": "object",
+                        "additionalProperties": False,
+                        "required": [
+                            "offset_A",
+                            "noise_A",
+                            "threshold_A",
+                            "rule_floor_A",
+                            "rows_near_zero",
+                        ],
+                        "properties": {
+                            "offset_A": {"type": "number"},
+                            "noise_A": {"type": "number", "minimum": 0},
+                            "threshold_A": {"type": "number", "exclusiveMinimum": 0},
+                            "rule_floor_A": {"type": "number", "exclusiveMinimum": 0},
+                            "rows_near_zero": {"type": "integer", "minimum": 0},
+                        },
+                    },
+                ]
             },
             "notes": {
                 "type": "array",

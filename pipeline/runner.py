@@ -73,6 +73,7 @@ def judge(
         notes=all_notes,
         analysed_at=analysed_at,
         software_version=__version__,
+        current_band=segmentation.band,
     )
 
 
