@@ -17,6 +17,7 @@ electrolyte interphase.
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import math
 import types
@@ -547,6 +548,26 @@ def simulate_formation(recipe: CellRecipe, rng: np.random.Generator) -> Simulate
         step=step,
         cycle=cycle,
         steps=tuple(run.truths),
+    )
+
+
+def with_channel(
+    record: SimulatedRecord, channel: Channel, rng: np.random.Generator
+) -> SimulatedRecord:
+    """The same record as ``channel`` would have measured it (a noiseless record in, rounded out).
+
+    Lets one simulated cell be read through channels of different quality; the true
+    steps are kept.
+    """
+    volts, amps, temps = add_channel_errors(
+        record.voltage_v, record.current_a, record.temperature_c, record.step, channel, rng
+    )
+    return dataclasses.replace(
+        record,
+        recipe=dataclasses.replace(record.recipe, channel=channel),
+        voltage_v=np.round(volts, 5) + 0.0,
+        current_a=np.round(amps, 5) + 0.0,
+        temperature_c=np.round(temps, 2) + 0.0,
     )
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -102,3 +103,21 @@ def test_sampling_coarser_than_the_dcir_pulse_gives_no_dcir_and_a_note() -> None
     m = measured(build_trace(simple_formation(), dt_s=120.0))
     assert m.values["dcir_mOhm"] is None
     assert "dcir_sampling_too_coarse" in [n.code for n in m.notes]
+
+
+def test_spikes_and_a_ramp_at_the_grading_switch_do_not_move_dcir() -> None:
+    clean_trace = build_trace(simple_formation(r_ohm=0.05), dt_s=1.0)
+    clean = measured(clean_trace)
+    seg = split_steps(clean_trace, 0.004, 2.0)
+    grading = [s for s in seg.steps if s.kind.value == "discharge"][-1]
+    k = grading.start
+    v, i = np.array(clean_trace.voltage_v), np.array(clean_trace.current_a)
+    v[k - 1] += 0.02  # a voltage spike on the last rest row
+    i[k] *= 0.3  # the current still ramping up on the first discharge row ...
+    i[k + 1] *= 1.4  # ... and overshooting on the next
+    v[k : k + 2] -= 0.01
+    spiky = Trace(clean_trace.source, clean_trace.metadata, clean_trace.time_s, v, i,
+                  clean_trace.temperature_c)
+    got = measured(spiky).values["dcir_mOhm"]
+    assert clean.values["dcir_mOhm"] == pytest.approx(50.0, rel=0.02)  # the trace's own 50 mOhm
+    assert got == pytest.approx(clean.values["dcir_mOhm"], rel=0.01)

@@ -127,3 +127,90 @@ def test_cycle_column_that_splits_a_discharge_is_noted() -> None:
     )
     seg = split_steps(noted, 0.004, 2.0)
     assert [n.code for n in seg.notes] == ["cycle_column_disagrees"]
+
+
+# ---- noisy channels --------------------------------------------------------------------------
+
+
+def _noisy_rest_and_pulse(rng: np.random.Generator, *, pulse_a: float, pulse_s: float) -> Trace:
+    """1 s samples: 30 min rest, a discharge pulse, 30 min rest; rest current noise 25 mA rms
+    around a 4 mA offset (0.05 % and 0.008 % of a 50 A range)."""
+    n_rest = 1800
+    i = np.concatenate(
+        [np.zeros(n_rest), np.full(int(pulse_s), -pulse_a), np.zeros(n_rest)]
+    )
+    rest = i == 0
+    i = i + np.where(rest, 0.004, 0.0) + rng.normal(0.0, 0.025, len(i))
+    t = np.arange(len(i), dtype=float)
+    return Trace("noisy.csv", {}, t, np.full(len(i), 3.3), i)
+
+
+def test_band_finds_the_channels_offset_and_noise() -> None:
+    from scipy import stats
+
+    from pipeline.segmentation import estimate_band
+
+    rng = np.random.default_rng(11)
+    trace = _noisy_rest_and_pulse(rng, pulse_a=20.0, pulse_s=60.0)
+    band = estimate_band(trace.current_a, 0.04, 20.0)
+    near = trace.current_a[np.abs(trace.current_a) < 0.2]
+    # outside reference: scipy's normal-consistent median absolute deviation
+    assert band.noise_a == pytest_approx(float(stats.median_abs_deviation(near, scale="normal")), rel=0.05)
+    assert band.offset_a == pytest_approx(0.004, rel=0.5)
+    assert band.noise_a == pytest_approx(0.025, rel=0.1)
+    assert band.threshold_a == pytest_approx(5 * band.noise_a, rel=1e-12)
+    # five standard deviations: a normal row strays beyond with probability 5.7e-7
+    # (two-sided tail, scipy.stats.norm)
+    assert 2 * stats.norm.sf(5.0) == pytest_approx(5.733e-7, rel=1e-3)
+
+
+def test_noise_at_rest_never_makes_a_step_but_a_real_short_pulse_does() -> None:
+    rng = np.random.default_rng(5)
+    quiet = _noisy_rest_and_pulse(rng, pulse_a=0.0, pulse_s=0.0)
+    seg = split_steps(quiet, 0.04, 20.0)
+    assert [s.kind for s in seg.steps] == [StepKind.REST]
+    pulse = _noisy_rest_and_pulse(rng, pulse_a=20.0, pulse_s=10.0)  # a 10 s DCIR pulse at 1 C
+    seg = split_steps(pulse, 0.04, 20.0)
+    assert [s.kind for s in seg.steps] == [StepKind.REST, StepKind.DISCHARGE, StepKind.REST]
+    assert seg.steps[1].capacity_ah == pytest_approx(20.0 * 10.0 / 3600.0, rel=0.1)
+
+
+def test_spikes_at_step_changes_do_not_make_steps() -> None:
+    rng = np.random.default_rng(8)
+    trace = _noisy_rest_and_pulse(rng, pulse_a=6.0, pulse_s=600.0)
+    i = np.array(trace.current_a)
+    start = 1800
+    stop = start + 600
+    i[start] = -9.0  # overshoot into the discharge
+    i[stop] = 2.0  # the opposite way as the current switches off
+    spiky = Trace("spiky.csv", {}, trace.time_s, trace.voltage_v, i)
+    seg = split_steps(spiky, 0.04, 20.0)
+    assert [s.kind for s in seg.steps] == [StepKind.REST, StepKind.DISCHARGE, StepKind.REST]
+
+
+def test_a_noisy_program_rest_is_a_rest_without_a_note_and_a_rest_carrying_current_gets_one() -> None:
+    rng = np.random.default_rng(2)
+    trace = _noisy_rest_and_pulse(rng, pulse_a=6.0, pulse_s=600.0)
+    step = np.concatenate([np.full(1800, 1), np.full(600, 2), np.full(1800, 3)])
+    seg = split_steps(Trace("s.csv", {}, trace.time_s, trace.voltage_v, trace.current_a, step=step), 0.04, 20.0)
+    assert [s.kind for s in seg.steps] == [StepKind.REST, StepKind.DISCHARGE, StepKind.REST]
+    assert seg.notes == ()
+    # the program says "rest" for a block in which 5 minutes of 2 A flow: that is noted
+    i = np.array(trace.current_a)
+    i[300:600] += 2.0
+    seg = split_steps(Trace("s.csv", {}, trace.time_s, trace.voltage_v, i, step=step), 0.04, 20.0)
+    assert [s.kind for s in seg.steps] == [StepKind.REST, StepKind.DISCHARGE, StepKind.REST]
+    assert [n.code for n in seg.notes] == ["step_column_disagrees"]
+    assert seg.notes[0].text == (
+        "program step 1 is a rest by its median current but carries 0.167 Ah of current in "
+        "300 of its 1800 rows (first on line 302)"
+    )
+
+
+def test_rows_hovering_at_the_threshold_do_not_chatter() -> None:
+    from pipeline.model import CurrentBand
+    from pipeline.segmentation import row_kinds
+
+    band = CurrentBand(0.0, 0.0, 0.1, 0.1, 0)
+    i = np.array([0.0, 0.5, 0.09, 0.11, 0.07, 0.02, 0.07, 0.2])
+    assert row_kinds(i, band).tolist() == [0, 1, 1, 1, 1, 0, 0, 1]
