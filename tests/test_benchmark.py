@@ -34,3 +34,18 @@ def test_smoke_run_of_the_benchmark_prints_every_part_of_its_table(tmp_path: Pat
     ):
         assert part in run.stdout, part
     assert (REPO / "docs" / "performance.md").read_bytes() == before  # a smoke run writes nothing
+
+
+def test_quick_accuracy_trial_prints_its_table_with_no_wrong_verdict(tmp_path: Path) -> None:
+    run = subprocess.run(
+        [sys.executable, str(REPO / "benchmarks" / "accuracy.py"), "--quick"],
+        capture_output=True,
+        text=True,
+        timeout=600,
+        cwd=tmp_path,
+        check=False,
+    )
+    assert run.returncode == 0, run.stderr[-3000:]
+    header, rule, row = run.stdout.splitlines()
+    assert header.split()[:4] == ["interval", "channel", "noise", "/"]
+    assert row.split()[:8] == ["5s", "0.05", "%", "/", "0.01", "%", "yes", "0"]
