@@ -161,8 +161,7 @@ def dcir_mohm(
     # the rows of the switch itself (spike, ramp) are left out of the fit
     near = (np.abs(t - (t0 + pulse_s)) <= half) & (t >= t0 + 0.5 * pulse_s)
     if np.count_nonzero(near) >= 2 and np.ptp(t[near]) > 0:
-        slope, intercept = np.polyfit(t[near] - (t0 + pulse_s), v[near], 1)
-        v1 = float(intercept)
+        v1 = float(np.polyfit(t[near] - (t0 + pulse_s), v[near], 1)[1])  # the line at the pulse time
     else:
         v1 = float(np.interp(t0 + pulse_s, t, v))
     amps = np.abs(trace.current_a[discharge.start : discharge.stop])

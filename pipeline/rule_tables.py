@@ -87,12 +87,12 @@ def _check_number(out: Collector, path: KeyPath, spec: Key, value: object) -> ob
         or (spec.kind == INTEGER and isinstance(value, float))
     ):
         kind = "a number" if spec.kind == NUMBER else "a whole number"
+        example = spec.example or EXAMPLES[spec.kind]
         hint = (
-            f"Write a plain number, e.g. {spec.name} = {spec.example or EXAMPLES[NUMBER]} "
+            f"Write a plain number, e.g. {spec.name} = {example} "
             "(no quotes, no unit, a dot for decimals)."
             if spec.kind == NUMBER
-            else f"Write a whole number, e.g. {spec.name} = {spec.example or EXAMPLES[INTEGER]} (no quotes, no "
-            "decimals)."
+            else f"Write a whole number, e.g. {spec.name} = {example} (no quotes, no decimals)."
         )
         if isinstance(value, str):
             try:

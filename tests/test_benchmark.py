@@ -46,6 +46,6 @@ def test_quick_accuracy_trial_prints_its_table_with_no_wrong_verdict(tmp_path: P
         check=False,
     )
     assert run.returncode == 0, run.stderr[-3000:]
-    header, rule, row = run.stdout.splitlines()
+    header, _rule, row = run.stdout.splitlines()
     assert header.split()[:4] == ["interval", "channel", "noise", "/"]
     assert row.split()[:8] == ["5s", "0.05", "%", "/", "0.01", "%", "yes", "0"]
