@@ -104,7 +104,7 @@ DEMO_NMC_CELLS: tuple[DemoCell, ...] = _lot(
 )
 
 # Cell-type baselines (our own invented cells): capacity is set about 2 % above nominal, as
-# rated capacity is usually a few percent below typical (REFERENCE.md 1.7, common practice).
+# rated capacity is usually a few percent below typical (common practice).
 _BASE = {
     LFP_CELL_TYPE: CellRecipe(
         chemistry="lfp_graphite",

@@ -3,7 +3,7 @@ caution, and the data-check notice.
 
 Certificates and mails print these words; this module only holds them. The
 wording follows the trade's usual handling of failed formation cells
-(REFERENCE.md section 6); every instruction defers to the site's own procedures,
+(common practice); every instruction defers to the site's own procedures,
 local codes, the authority having jurisdiction and qualified personnel.
 """
 
@@ -25,7 +25,7 @@ class Caution:
 
 
 # Handling words shared by every hazard, printed once after the hazards' own cautions: treat as
-# possibly unstable, do not reuse, quarantine, label, monitor -- common practice (REFERENCE.md 6.2).
+# possibly unstable, do not reuse, quarantine, label, monitor -- common practice.
 HANDLING = (
     "Treat the cell as possibly unstable: do not recharge, reuse, regrade or ship it as good "
     "product. Move it to the site's designated quarantine area, in a non-combustible container "
@@ -38,7 +38,7 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
     {
         # Micro-shorts show as falling voltage at rest (high K-value), low or falling OCV, heat
         # during rest or low coulombic efficiency; causes include metal particles, burrs and
-        # separator defects -- from memory, high certainty (REFERENCE.md 6.1). Deep over-discharge
+        # separator defects -- from memory, high certainty. Deep over-discharge
         # of a graphite cell can dissolve copper that later shorts the cell -- from memory, medium.
         Hazard.INTERNAL_SHORT: Caution(
             "Possible internal short circuit",
@@ -47,8 +47,7 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
             "hours or days later, without any charger connected.",
         ),
         # Over-temperature in formation points to an internal short, a high-resistance weld or
-        # tab, or a channel fault -- from memory, low certainty for the usual alarm levels
-        # (REFERENCE.md 6.1).
+        # tab, or a channel fault -- from memory, low certainty for the usual alarm levels.
         Hazard.OVER_TEMPERATURE: Caution(
             "Over-temperature during formation",
             "The cell became hotter during formation than its rule set allows. Heat can come from "
@@ -56,7 +55,7 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
             "Have the channel and its contacts checked before they are used again.",
         ),
         # Overcharge destabilises the cathode, oxidises the electrolyte, plates lithium and makes
-        # gas, with a risk of thermal runaway -- from memory, high certainty (REFERENCE.md 6.1).
+        # gas, with a risk of thermal runaway -- from memory, high certainty.
         Hazard.OVER_VOLTAGE: Caution(
             "Charged above its voltage limit",
             "The cell was charged above the voltage its rule set allows. Overcharge can make the "
@@ -66,7 +65,7 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
         ),
         # Plating comes from charging too fast or too cold, low N/P ratio or misaligned
         # electrodes; plated lithium can grow into dendrites and shorts -- O'Kane et al.,
-        # J. Electrochem. Soc. 167 (2020) 090540, and from memory, medium (REFERENCE.md 6.1).
+        # J. Electrochem. Soc. 167 (2020) 090540, and from memory, medium.
         Hazard.LITHIUM_PLATING: Caution(
             "Possible lithium plating",
             "The data suggest that metallic lithium may have plated on the anode, for example "
@@ -84,7 +83,7 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
     }
 )
 
-# Defers to the site: REFERENCE.md section 6 (general information only) and 6.2 (do not
+# Defers to the site (general information only; do not
 # puncture, crush or open; eye protection and gloves if leaking; fire response per the site
 # plan; special transport rules for damaged or defective cells) -- common practice, and
 # from memory, medium, for the transport rules.
@@ -98,7 +97,7 @@ GENERAL_CAUTION = (
     "ventilated. Damaged or defective lithium-ion cells fall under special transport rules."
 )
 
-# The tool reads recorded data; it does not inspect the cell (REFERENCE.md section 6).
+# The tool reads recorded data; it does not inspect the cell (common practice).
 DATA_CHECK_NOTICE = (
     "This certificate records a check of the cycler data against the acceptance windows of "
     "the named rule set. It is a data check, not a safety assessment of the cell, and it does "

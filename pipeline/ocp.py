@@ -35,7 +35,7 @@ def graphite_chen2020(x: ArrayLike) -> FloatArray:
 
     Source: Chen, Brosa Planella, O'Regan, Gastol, Widanage, Kendrick,
     J. Electrochem. Soc. 167 (2020) 080534, as transcribed in PyBaMM
-    ``input/parameters/lithium_ion/Chen2020.py`` (REFERENCE.md 5.1).
+    ``input/parameters/lithium_ion/Chen2020.py``.
 
     >>> round(float(graphite_chen2020(0.5)), 4)
     0.1331
@@ -54,7 +54,7 @@ def nmc811_chen2020(y: ArrayLike) -> FloatArray:
     """NMC811 OCP vs Li (V) at lithium fraction ``y``.
 
     Source: Chen et al., J. Electrochem. Soc. 167 (2020) 080534, same file as the
-    graphite fit (REFERENCE.md 5.2). The two large tanh terms nearly cancel, so
+    graphite fit (PyBaMM Chen2020.py). The two large tanh terms nearly cancel, so
     the coefficients are copied digit for digit.
 
     >>> round(float(nmc811_chen2020(0.5)), 4)
@@ -74,7 +74,7 @@ def lfp_safari2011(y: ArrayLike) -> FloatArray:
     """LiFePO4 OCP vs Li (V) at lithium fraction ``y``: flat 3.4323 V over the two-phase range.
 
     Source: Safari & Delacourt, "Modeling of a commercial graphite/LiFePO4 cell",
-    J. Electrochem. Soc. 158 (2011) A562, doi 10.1149/1.3567007 (REFERENCE.md 5.3).
+    J. Electrochem. Soc. 158 (2011) A562, doi 10.1149/1.3567007.
 
     >>> round(float(lfp_safari2011(0.5)), 4)
     3.4323
@@ -93,7 +93,7 @@ def lfp_afshar2017(y: ArrayLike) -> FloatArray:
     """LiFePO4 OCP vs Li (V) at lithium fraction ``y``: a slightly sloped plateau near 3.40 V.
 
     Source: Afshar, Morris, Khajepour, arXiv:1709.03970 (2017), the LFP curve of
-    PyBaMM's Prada2013 parameter set (REFERENCE.md 5.4).
+    PyBaMM's Prada2013 parameter set (PyBaMM Prada2013.py).
 
     >>> round(float(lfp_afshar2017(0.5)), 4)
     3.3976
@@ -103,7 +103,7 @@ def lfp_afshar2017(y: ArrayLike) -> FloatArray:
 
 
 def thermal_voltage_v(temperature_k: float = 298.15) -> float:
-    """RT/F in volts (25.6926 mV at 298.15 K, REFERENCE.md check row 1)."""
+    """RT/F in volts (25.6926 mV at 298.15 K, derived from scipy.constants, CODATA 2018)."""
     return float(GAS_CONSTANT * temperature_k / FARADAY)
 
 
@@ -116,7 +116,7 @@ def regular_solution_potential(
     For Omega > 2RT this curve loops between the spinodal points and is not the
     equilibrium curve there (see :func:`regular_solution_equilibrium`).
     Source: standard lattice-gas / regular-solution result, e.g. Huggins,
-    "Advanced Batteries: Materials Science Aspects" (Springer 2009) (REFERENCE.md 4.3).
+    "Advanced Batteries: Materials Science Aspects" (Springer 2009) (formula from memory, high).
 
     >>> float(regular_solution_potential(0.5, 3.0, 1.55))
     1.55
@@ -133,7 +133,7 @@ def binodal(omega_over_rt: float) -> tuple[float, float]:
 
     Solves ln(x/(1-x)) = (Omega/RT)(2x-1) for its root below 1/2 with
     scipy.optimize.brentq (the common-tangent condition of this symmetric model,
-    REFERENCE.md 4.3); the other root is 1 - x by symmetry. The search runs on
+    from memory, high); the other root is 1 - x by symmetry. The search runs on
     u = ln(x/(1-x)) so that very small compositions stay well conditioned.
 
     >>> tuple(round(v, 4) for v in binodal(3.0))
@@ -162,7 +162,7 @@ def regular_solution_equilibrium(
 
     Between the binodal compositions two phases coexist and, by the Gibbs phase
     rule, the potential is fixed; for this symmetric model the common tangent is
-    horizontal, so that potential is E0 (REFERENCE.md 4.3). Outside it equals
+    horizontal, so that potential is E0 (from memory, high). Outside it equals
     :func:`regular_solution_potential`. With Omega <= 2RT there is no gap.
 
     >>> float(regular_solution_equilibrium(0.3, 3.0, 1.55))
@@ -189,7 +189,7 @@ def lto_plateau(x: ArrayLike) -> FloatArray:
     E0 = 1.55 V: flat between the binodal compositions 0.0212 and 0.9788, rising
     as x -> 0 and falling as x -> 1 (logarithmically, as the mean-field model
     does). Plateau voltage: Ohzuku, Ueda, Yamamoto, J. Electrochem. Soc. 142
-    (1995) 1431 (REFERENCE.md 3.1); the interaction value is our own choice.
+    (1995) 1431; the interaction value is our own choice.
 
     >>> float(lto_plateau(0.5))
     1.55
@@ -201,22 +201,22 @@ def _soc_map(soc: ArrayLike, at_empty: float, at_full: float) -> FloatArray:
     return at_empty + (at_full - at_empty) * _as_float(soc)
 
 
-# Stoichiometry windows, REFERENCE.md 5.2 (Chen 2020; 0.9014 from the PyBaMM initial state,
-# the other three from memory, medium certainty there).
+# Stoichiometry windows of Chen et al. 2020 (0.9014 from the PyBaMM Chen2020.py initial state,
+# the other three from memory, medium certainty).
 CHEN_GRAPHITE_WINDOW = (0.0279, 0.9014)
 CHEN_NMC_WINDOW = (0.9084, 0.2661)
-# Illustrative LFP/graphite balance of REFERENCE.md 5.5 (not from a paper).
+# Illustrative LFP/graphite balance, our own choice (not from a paper).
 LFP_WINDOW = (0.97, 0.03)
 LFP_GRAPHITE_WINDOW = (0.02, 0.85)
 # Our own illustrative NMC811/LTO balance: NMC over the Chen window, LTO from nearly empty to
-# nearly full so the full cell spans roughly 1.7-2.8 V (REFERENCE.md 1.3: LMO or NMC / LTO).
+# nearly full so the full cell spans roughly 1.7-2.8 V (as LMO or NMC / LTO cells do, from memory, medium).
 LTO_WINDOW = (0.00001, 0.995)
 
 
 def nmc811_graphite_cell(soc: ArrayLike) -> FloatArray:
     """Full-cell OCV (V) of the Chen 2020 NMC811/graphite cell at state of charge ``soc`` (0-1).
 
-    Linear stoichiometry map between the windows of REFERENCE.md 5.2:
+    Linear stoichiometry map between the Chen et al. 2020 windows above:
     V = U_NMC811(y) - U_graphite(x).
 
     >>> round(float(nmc811_graphite_cell(0.5)), 4)
@@ -230,7 +230,7 @@ def nmc811_graphite_cell(soc: ArrayLike) -> FloatArray:
 def lfp_graphite_cell(soc: ArrayLike) -> FloatArray:
     """Full-cell OCV (V) of an illustrative LFP/graphite cell at state of charge ``soc`` (0-1).
 
-    Map of REFERENCE.md 5.5: y = 0.97 - 0.94 SOC, x = 0.02 + 0.83 SOC,
+    Our own illustrative map (not from a paper): y = 0.97 - 0.94 SOC, x = 0.02 + 0.83 SOC,
     V = U_LFP,Safari-Delacourt(y) - U_graphite,Chen(x).
 
     >>> round(float(lfp_graphite_cell(0.5)), 4)

@@ -19,7 +19,7 @@ from scipy.signal import find_peaks
 from pipeline.model import Curve, FloatArray, Plateau, PlateauSettings
 from pipeline.savgol import savgol
 
-# Savitzky-Golay polynomial order: 2-3 keeps peak shapes (REFERENCE.md 4.1, common practice).
+# Savitzky-Golay polynomial order: 2-3 keeps peak shapes (common practice).
 SG_ORDER = 3
 
 
@@ -113,7 +113,7 @@ def incremental_capacity(
     """dQ/dV (Ah/V) by voltage bins of ``ica_bin_mv`` from a smoothed V on a uniform q grid.
 
     Binning capacity by voltage, never dividing raw differences, is what keeps a
-    flat plateau a finite peak instead of a spike (REFERENCE.md 4.1, common practice).
+    flat plateau a finite peak instead of a spike (common practice).
     Peaks are those with a prominence of at least 5 % of the highest bin, of one
     total capacity per volt (a peak must hold about 1 % of the capacity in 10 mV,
     so sensor noise on a sloped curve makes none), and of the rule set's absolute

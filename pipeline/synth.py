@@ -51,13 +51,14 @@ class Chemistry:
 
 
 CHEMISTRIES: Mapping[str, Chemistry] = types.MappingProxyType({
-    # Limits: REFERENCE.md 1.3 (LFP/graphite 3.65 V / 2.5 V: common practice and a
+    # Limits (LFP/graphite 3.65 V / 2.5 V: common practice and a cell
     # datasheet, low authority). LFP storage state of charge is low because LFP
-    # self-discharge screening needs the slope below about 35 % (REFERENCE.md 1.5).
+    # self-discharge screening needs the slope below about 35 % (industry article, low
+    # authority; from memory, medium).
     "lfp_graphite": Chemistry("lfp_graphite", ocp.lfp_graphite_cell, 2.5, 3.65, 2.0, 0.15, 2.7),
-    # Chen 2020 cell: 2.5 V / 4.2 V (REFERENCE.md 1.3, PyBaMM Chen2020.py); storage 50 %.
+    # Chen 2020 cell: 2.5 V / 4.2 V (Chen et al. 2020 parameter set, PyBaMM Chen2020.py); storage 50 %.
     "nmc_graphite": Chemistry("nmc_graphite", ocp.nmc811_graphite_cell, 2.5, 4.2, 2.0, 0.5, 0.6),
-    # NMC/LTO: REFERENCE.md 1.3 gives 1.5-1.8 V / 2.7-2.8 V (from memory); our mean-field
+    # NMC/LTO: such cells run 1.5-1.8 V / 2.7-2.8 V (from memory); our mean-field
     # LTO curve ends more gently than a real one, so our own cut-off sits at 1.85 V.
     "nmc_lto": Chemistry("nmc_lto", ocp.nmc811_lto_cell, 1.85, 2.8, 1.6, 0.5, 0.4),
 })
@@ -65,7 +66,7 @@ CHEMISTRIES: Mapping[str, Chemistry] = types.MappingProxyType({
 
 @dataclass(frozen=True, slots=True)
 class FormationProgram:
-    """The cycler program: a typical formation + grading sequence (REFERENCE.md 1.2 and 1.7).
+    """The cycler program: a typical formation + grading sequence (common practice).
 
     Rates are C-rates of the nominal capacity; durations in seconds. Steps:
     rest, pre-charge to a partial charge, rest, CC-CV charge, rest, CC discharge
@@ -74,16 +75,16 @@ class FormationProgram:
     """
 
     initial_rest_s: float = 300.0
-    pre_charge_rate_c: float = 0.05  # REFERENCE.md 1.2: 0.02-0.1 C first charge
+    pre_charge_rate_c: float = 0.05  # 0.02-0.1 C first charge (common practice)
     pre_charge_fraction: float = 0.12  # charge passed, fraction of capacity (10-30 %)
     pre_charge_rest_s: float = 600.0
-    charge_rate_c: float = 0.2  # REFERENCE.md 1.2: CC 0.1-0.5 C
-    cv_cutoff_c: float = 0.05  # C/20, the most common CV end (REFERENCE.md 1.2)
+    charge_rate_c: float = 0.2  # CC 0.1-0.5 C (common practice)
+    cv_cutoff_c: float = 0.05  # C/20, the most common CV end (common practice)
     rest_after_charge_s: float = 1800.0
     discharge_rate_c: float = 0.2
     rest_after_discharge_s: float = 1800.0
     rest_before_grading_s: float = 3600.0
-    grading_rate_c: float = 1.0 / 3.0  # REFERENCE.md 1.7: 0.2-1 C; 1/3 C as IEC 62660-1 (memory)
+    grading_rate_c: float = 1.0 / 3.0  # 0.2-1 C (common practice); 1/3 C as IEC 62660-1 (from memory)
     rest_after_grading_s: float = 1800.0
     storage_soc: float | None = None  # None: the chemistry's default
     final_rest_s: float = 10800.0
@@ -175,7 +176,7 @@ class CellRecipe:
     ``fault_heat_w`` is heat released while the cell charges (a local fault).
 
     Defaults describe an invented 20 Ah LFP/graphite cell: resistances of the order
-    REFERENCE.md 1.6 gives (from memory, low), thermal values our own, 1 mV rms
+    of such cells (from memory, low), thermal values our own, 1 mV rms
     voltage noise (common practice for a cycler channel).
     """
 
@@ -331,7 +332,7 @@ class _Cell:
             below = self.v_start + self.slope0 * soc
         else:
             # First charge of a fresh cell: a quick rise, then a slow shoulder while the SEI
-            # forms (shape is our own; first-charge SEI growth: REFERENCE.md 1.2).
+            # forms (shape is our own; first-charge SEI growth: from memory, high).
             u = np.clip((soc + self.sei) / self.sei, 0.0, 1.0)
             shape = 0.8 * (1.0 - np.exp(-u / 0.05)) / (1.0 - math.exp(-20.0)) + 0.2 * u
             below = self.fresh_v + (self.v_start - self.fresh_v) * shape
@@ -665,7 +666,7 @@ def self_discharge_for_drift(recipe: CellRecipe, drift_mv_per_h: float) -> float
     """Leakage current (A) that makes the final rest voltage drift by ``drift_mv_per_h`` (< 0).
 
     I = K / (dV/dQ): the rest-voltage slope divided by the OCV slope per Ah at the
-    storage state of charge (REFERENCE.md 1.5, K-value and self-discharge current).
+    storage state of charge (K-value relation, derived from the definition of K; common practice).
     """
     cell = _Cell(recipe)
     storage = recipe.program.storage_soc

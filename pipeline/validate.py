@@ -29,7 +29,7 @@ Rows = npt.NDArray[np.intp]  # row numbers (0-based) into a Trace
 MIN_ROWS = 10  # common practice: fewer samples cannot show a charge, a rest and a discharge
 MAX_EMPTY_RUN = 5  # rows; common practice: a longer hole hides what the cell did
 MAX_EMPTY_FRACTION = 0.01  # common practice
-# Formation and grading run at 0.02-1 C (REFERENCE.md 1.2 and 1.7, common practice); a
+# Formation and grading run at 0.02-1 C (common practice); a
 # current above 20 C or never above 0.001 C is taken as a unit read wrongly or no program.
 MAX_C_RATE = 20.0
 MIN_C_RATE = 0.001

@@ -1,7 +1,7 @@
 """Published open-circuit-potential fits against the check values of their sources.
 
-Values and tolerances are the "Check values for tests" rows of REFERENCE.md
-(rows 9-21), themselves computed from the published fits; each assertion names
+Values and tolerances are check values computed (derived) from the published
+fits, with physical sanity windows; each assertion names
 the paper it comes from.
 """
 
@@ -18,7 +18,7 @@ MV = 1e-3
 
 
 # Chen, Brosa Planella, O'Regan, Gastol, Widanage, Kendrick, J. Electrochem. Soc. 167 (2020)
-# 080534, graphite fit (REFERENCE.md 5.1 and check rows 9-10).
+# 080534, graphite fit as transcribed in PyBaMM Chen2020.py (values derived from the fit).
 @pytest.mark.parametrize(
     ("x", "expected_v"),
     [(0.0279, 1.0637), (0.05, 0.6786), (0.1, 0.4065), (0.2, 0.2170), (0.3, 0.1630),
@@ -28,7 +28,7 @@ def test_graphite_chen2020_matches_published_fit(x: float, expected_v: float) ->
     assert float(ocp.graphite_chen2020(x)) == pytest.approx(expected_v, abs=0.5 * MV)
 
 
-# Chen et al. 2020, NMC811 fit (REFERENCE.md 5.2 and check row 11).
+# Chen et al., J. Electrochem. Soc. 167 (2020) 080534, NMC811 fit (values derived from the fit).
 @pytest.mark.parametrize(
     ("y", "expected_v"),
     [(0.2661, 4.2849), (0.3, 4.2054), (0.4, 4.1047), (0.5, 3.9720), (0.6, 3.8245),
@@ -39,7 +39,7 @@ def test_nmc811_chen2020_matches_published_fit(y: float, expected_v: float) -> N
 
 
 # Chen et al. 2020 full cell with the stoichiometry windows x 0.0279 -> 0.9014 and
-# y 0.9084 -> 0.2661 (REFERENCE.md 5.2, check row 12; windows partly from memory there).
+# y 0.9084 -> 0.2661 (derived from the Chen 2020 fits; windows partly from memory, medium).
 @pytest.mark.parametrize(
     ("soc", "expected_v"),
     [(0.0, 2.4977), (0.1, 3.2577), (0.2, 3.4493), (0.3, 3.5483), (0.5, 3.7078),
@@ -55,13 +55,13 @@ def test_chen2020_full_cell_ocv(soc: float, expected_v: float) -> None:
 
 
 def test_chen2020_full_cell_mean_ocv_over_soc() -> None:
-    # REFERENCE.md 5.2: SOC-averaged OCV 3.694 V [derived from the Chen 2020 fits].
+    # SOC-averaged OCV 3.694 V [derived from the Chen 2020 fits].
     soc = np.linspace(0.0, 1.0, 100_001)
     assert float(np.mean(ocp.nmc811_graphite_cell(soc))) == pytest.approx(3.694, abs=1 * MV)
 
 
 # Safari & Delacourt, J. Electrochem. Soc. 158 (2011) A562, doi 10.1149/1.3567007
-# (REFERENCE.md 5.3, check rows 13-14; one transcription rounds to 3.4324, hence 0.2 mV).
+# (values derived from the fit; one transcription rounds to 3.4324, hence 0.2 mV).
 @pytest.mark.parametrize("y", [0.2, 0.3, 0.4, 0.5, 0.6, 0.7])
 def test_safari_delacourt_plateau(y: float) -> None:
     assert float(ocp.lfp_safari2011(y)) == pytest.approx(3.4323, abs=0.2 * MV)
@@ -77,7 +77,7 @@ def test_safari_delacourt_ends(y: float, expected_v: float, tol_mv: float) -> No
 
 
 # Afshar, Morris, Khajepour, arXiv:1709.03970 (2017), as used by PyBaMM's Prada2013 set
-# (REFERENCE.md 5.4, check row 15).
+# (PyBaMM Prada2013.py; values derived from the fit).
 @pytest.mark.parametrize(
     ("y", "expected_v"),
     [(0.01, 3.5191), (0.05, 3.4070), (0.1, 3.4057), (0.3, 3.4016), (0.5, 3.3976),
@@ -88,15 +88,15 @@ def test_afshar2017(y: float, expected_v: float) -> None:
 
 
 def test_two_lfp_fits_agree_within_published_spread() -> None:
-    # REFERENCE.md 5.4: the Afshar plateau sits about 30 mV below Safari-Delacourt;
+    # Derived from the two fits: the Afshar plateau sits about 30 mV below Safari-Delacourt;
     # allow the +-30-40 mV spread between published fits.
     y = np.linspace(0.2, 0.7, 51)  # the flat part of both fits
     gap = ocp.lfp_safari2011(y) - ocp.lfp_afshar2017(y)
     assert np.all((gap > 0.0) & (gap < 0.040))
 
 
-# Synthetic LFP/graphite cell, map of REFERENCE.md 5.5 (illustrative, not from a paper),
-# check row 16.
+# Synthetic LFP/graphite cell, our own illustrative map (not from a paper); values derived
+# from the Safari & Delacourt 2011 and Chen et al. 2020 fits.
 @pytest.mark.parametrize(
     ("soc", "expected_v"),
     [(0.1, 3.0305), (0.2, 3.2097), (0.3, 3.2492), (0.5, 3.2985), (0.7, 3.3141), (0.9, 3.3414)],
@@ -106,27 +106,27 @@ def test_synthetic_lfp_graphite_cell(soc: float, expected_v: float) -> None:
 
 
 def test_synthetic_lfp_graphite_mean_ocv() -> None:
-    # REFERENCE.md 5.5: mean over SOC 3.226 V [derived].
+    # Mean over SOC 3.226 V [derived from the two fits].
     soc = np.linspace(0.0, 1.0, 100_001)
     assert float(np.mean(ocp.lfp_graphite_cell(soc))) == pytest.approx(3.226, abs=1 * MV)
 
 
-# Physical sanity windows, REFERENCE.md check rows 17-21.
+# Physical sanity windows; each names its source.
 def test_physical_windows() -> None:
-    # Row 17: LFP two-phase potential 3.43 +- 0.03 V (Padhi 1997; Safari & Delacourt 2011).
+    # LFP two-phase potential 3.43 +- 0.03 V (Padhi 1997; Safari & Delacourt 2011).
     assert float(ocp.lfp_safari2011(0.5)) == pytest.approx(3.43, abs=0.03)
     assert float(ocp.lfp_afshar2017(0.5)) == pytest.approx(3.43, abs=0.035)
-    # Row 19: graphite stage 2 -> 1 plateau 0.09 +- 0.015 V vs Li (Ohzuku 1993 / Dahn 1991,
+    # Graphite stage 2 -> 1 plateau 0.09 +- 0.015 V vs Li (Ohzuku 1993 / Dahn 1991,
     # from memory).
     assert float(ocp.graphite_chen2020(0.8)) == pytest.approx(0.09, abs=0.015)
-    # Row 20: LFP/graphite mid-SOC OCV 3.30 +- 0.05 V (from memory and derived).
+    # LFP/graphite mid-SOC OCV 3.30 +- 0.05 V (from memory and derived).
     assert float(ocp.lfp_graphite_cell(0.5)) == pytest.approx(3.30, abs=0.05)
-    # Row 21: NMC/graphite 50 % SOC OCV 3.70 +- 0.07 V (Chen 2020 derived, from memory).
+    # NMC/graphite 50 % SOC OCV 3.70 +- 0.07 V (Chen 2020 derived, from memory).
     assert float(ocp.nmc811_graphite_cell(0.5)) == pytest.approx(3.70, abs=0.07)
 
 
 # LTO: flat 1.55 V two-phase plateau, Ohzuku, Ueda, Yamamoto, J. Electrochem. Soc. 142 (1995)
-# 1431 (REFERENCE.md 3.1, check row 18: 1.55 +- 0.03 V).
+# 1431 (1.55 +- 0.03 V).
 def test_lto_plateau_voltage_and_flatness() -> None:
     x = np.linspace(0.05, 0.95, 91)
     v = ocp.lto_plateau(x)
@@ -142,7 +142,7 @@ def test_lto_plateau_ends_rise_and_fall() -> None:
 
 
 def test_nmc_lto_cell_spans_its_voltage_range() -> None:
-    # REFERENCE.md 1.3: LMO or NMC / LTO cells run about 1.5-2.8 V, nominal 2.3-2.5 V (from memory).
+    # LMO or NMC / LTO cells run about 1.5-2.8 V, nominal 2.3-2.5 V (from memory).
     soc = np.linspace(0.0, 1.0, 1001)
     v = ocp.nmc811_lto_cell(soc)
     assert 1.5 < v[0] < 1.9 and 2.7 < v[-1] <= 2.8
@@ -159,7 +159,7 @@ def test_fits_are_vectorised_float64() -> None:
         assert np.allclose(out, [float(fit(v)) for v in x], rtol=0, atol=1e-15)
 
 
-# Regular-solution model, REFERENCE.md 4.3 (Huggins 2009; formula from memory, high).
+# Regular-solution model (Huggins, Advanced Batteries, Springer 2009; formula from memory, high).
 def test_regular_solution_is_e0_at_half_filling() -> None:
     assert float(ocp.regular_solution_potential(0.5, 3.0, 3.43)) == pytest.approx(3.43, abs=1e-15)
 
@@ -170,7 +170,7 @@ def test_regular_solution_rejects_compositions_outside_the_lattice() -> None:
 
 
 def test_binodal_needs_a_miscibility_gap() -> None:
-    # A gap exists only when Omega > 2RT (critical temperature Omega / 2R), REFERENCE.md 4.3.
+    # A gap exists only when Omega > 2RT (critical temperature Omega / 2R), from memory, high.
     with pytest.raises(ValueError, match="must exceed 2"):
         ocp.binodal(2.0)
 
@@ -187,7 +187,7 @@ def test_binodal_solves_the_common_tangent_equation(a: float) -> None:
     low, high = ocp.binodal(a)
     assert 0.0 < low < 0.5 < high < 1.0
     assert low + high == pytest.approx(1.0, abs=1e-12)
-    # ln(x/(1-x)) = (Omega/RT)(2x - 1), REFERENCE.md 4.3.
+    # ln(x/(1-x)) = (Omega/RT)(2x - 1), the common-tangent condition (from memory, high).
     assert np.log(low / (1 - low)) == pytest.approx(a * (2 * low - 1), abs=1e-9)
     # Binodal lies outside the spinodal x(1-x) = RT / (2 Omega).
     spinodal_low = 0.5 * (1 - np.sqrt(1 - 2 / a))

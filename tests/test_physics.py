@@ -2,7 +2,7 @@
 
 Each value is recomputed here from first principles (scipy.constants, atomic
 weights, a common-tangent construction written out in the test) and compared
-with REFERENCE.md's check values and with pipeline.ocp.
+with published check values and with pipeline.ocp.
 """
 
 from __future__ import annotations
@@ -38,18 +38,18 @@ def molar_mass(formula: dict[str, float]) -> float:
 
 
 def theoretical_mah_per_g(carriers: float, formula: dict[str, float]) -> float:
-    # Faraday's law: Q = n F / (3.6 M) in mAh/g (REFERENCE.md 3.3).
+    # Faraday's law: Q = n F / (3.6 M) in mAh/g (F exact in the 2019 SI, via scipy.constants).
     return carriers * F / (COULOMB_PER_MAH * molar_mass(formula))
 
 
 def test_faraday_constant_is_the_si_value() -> None:
-    # REFERENCE.md check row 3: 96485.33212 C/mol, exact in the 2019 SI.
+    # 96485.33212 C/mol, exact in the 2019 SI (scipy.constants, CODATA 2018).
     faraday = F
     assert faraday == pytest.approx(96485.33212, abs=1e-5)
     assert faraday == pytest.approx(constants.N_A * constants.e, rel=1e-15)
 
 
-# REFERENCE.md check rows 4-8 (Faraday's law, derived; literature values from memory, high).
+# Theoretical capacities (Faraday's law, derived; literature values from memory, high).
 @pytest.mark.parametrize(
     ("name", "carriers", "formula", "expected", "tol"),
     [
@@ -67,19 +67,19 @@ def test_theoretical_capacity_from_faradays_law(
 
 
 def test_thermal_voltage() -> None:
-    # REFERENCE.md check row 1: RT/F at 298.15 K = 25.6926 mV (scipy.constants, CODATA 2018).
+    # RT/F at 298.15 K = 25.6926 mV (derived from scipy.constants, CODATA 2018).
     rt_over_f_mv = R * 298.15 / F * 1000
     assert rt_over_f_mv == pytest.approx(25.6926, abs=0.0005)
     assert ocp.thermal_voltage_v(298.15) * 1000 == pytest.approx(25.6926, abs=0.0005)
-    # Row 2: (ln 10) RT/F = 59.159 mV per decade.
+    # (ln 10) RT/F = 59.159 mV per decade (derived from scipy.constants).
     assert math.log(10) * R * 298.15 / F * 1000 == pytest.approx(59.159, abs=0.002)
-    # REFERENCE.md 4.3: 25.262 mV at 293.15 K and 26.123 mV at 303.15 K.
+    # Derived from CODATA 2018 via scipy.constants: 25.262 mV at 293.15 K and 26.123 mV at 303.15 K.
     assert ocp.thermal_voltage_v(293.15) * 1000 == pytest.approx(25.262, abs=0.001)
     assert ocp.thermal_voltage_v(303.15) * 1000 == pytest.approx(26.123, abs=0.001)
 
 
 def gibbs(x: float, a: float) -> float:
-    """Regular-solution free energy of mixing per site, in units of RT (REFERENCE.md 4.3)."""
+    """Regular-solution free energy of mixing per site, in units of RT (Huggins 2009; from memory, high)."""
     return a * x * (1 - x) + x * math.log(x) + (1 - x) * math.log(1 - x)
 
 
@@ -108,7 +108,7 @@ def common_tangent(a: float) -> tuple[float, float]:
     return x1, x2
 
 
-# REFERENCE.md 4.3 and check row 22: binodal for Omega = 2.5, 3 and 4 RT (common tangent, derived).
+# Binodal for Omega = 2.5, 3 and 4 RT (common tangent, derived).
 @pytest.mark.parametrize(
     ("a", "low", "high"),
     [(2.5, 0.1448, 0.8552), (3.0, 0.0707, 0.9293), (4.0, 0.0212, 0.9788)],
@@ -121,7 +121,7 @@ def test_binodal_by_common_tangent(a: float, low: float, high: float) -> None:
 
 def test_equilibrium_potential_is_the_common_tangent_slope() -> None:
     # mu = mu0 + RT g'(x): in the two-phase range the potential is set by the common
-    # tangent's slope (Gibbs phase rule, REFERENCE.md 4.3), here 0, so E = E0.
+    # tangent's slope (Gibbs phase rule, from memory, high), here 0, so E = E0.
     a, e0 = 3.0, 3.4
     x1, x2 = common_tangent(a)
     slope = gibbs_slope(x1, a)
@@ -130,7 +130,7 @@ def test_equilibrium_potential_is_the_common_tangent_slope() -> None:
     assert np.allclose(ocp.regular_solution_equilibrium(mid, a, e0), expected, atol=1e-9)
 
 
-# REFERENCE.md 4.3 and check row 23: spinodal x(1-x) = RT / (2 Omega), closed form.
+# Spinodal x(1-x) = RT / (2 Omega), closed form (derived).
 @pytest.mark.parametrize(
     ("a", "low", "high"), [(2.5, 0.2764, 0.7236), (3.0, 0.2113, 0.7887), (4.0, 0.1464, 0.8536)]
 )
@@ -150,7 +150,7 @@ def test_spinodal_closed_form_and_potential_extrema(a: float, low: float, high: 
 
 
 def test_ideal_solution_slope() -> None:
-    # REFERENCE.md check row 24: E(0.1) - E(0.9) = 2 (RT/F) ln 9 = 112.90 mV at 298.15 K.
+    # Derived: E(0.1) - E(0.9) = 2 (RT/F) ln 9 = 112.90 mV at 298.15 K.
     closed_form = 2 * R * 298.15 / F * math.log(9) * 1000
     assert closed_form == pytest.approx(112.90, abs=0.05)
     e = ocp.regular_solution_potential(np.array([0.1, 0.9]), 0.0, 1.0)
@@ -158,7 +158,7 @@ def test_ideal_solution_slope() -> None:
 
 
 def test_self_discharge_current_from_k_value() -> None:
-    # REFERENCE.md 1.5 and check row 29: I = K / (dV/dQ). Chen 2020 5 Ah cell at 50 % SOC:
+    # I = K / (dV/dQ), derived from the Chen et al. 2020 fits. Chen 2020 5 Ah cell at 50 % SOC:
     # dV/dSOC about 0.89 V, dV/dQ about 0.179 V/Ah; K = 1 mV/day gives about 0.233 mA.
     h = 1e-4
     dv_dsoc = float(ocp.nmc811_graphite_cell(0.5 + h) - ocp.nmc811_graphite_cell(0.5 - h)) / (2 * h)

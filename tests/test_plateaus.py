@@ -26,7 +26,7 @@ def _g(x: np.ndarray, omega: float) -> np.ndarray:
     """Regular-solution molar Gibbs energy of mixing, J/mol.
 
     Source: standard lattice-gas / regular-solution model (Huggins, "Advanced
-    Batteries: Materials Science Aspects", Springer 2009; REFERENCE.md 4.3).
+    Batteries: Materials Science Aspects", Springer 2009; formula from memory, high).
     """
     return omega * x * (1 - x) + RT * (x * np.log(x) + (1 - x) * np.log(1 - x))
 
@@ -112,7 +112,7 @@ SETTINGS = PlateauSettings(
 def test_regular_solution_plateau_sits_at_the_common_tangent_and_spans_the_miscibility_gap() -> (
     None
 ):
-    omega = 4 * RT  # REFERENCE.md 4.3: Omega = 4RT gives binodal 0.0212 / 0.9788 [derived]
+    omega = 4 * RT  # Omega = 4RT gives binodal 0.0212 / 0.9788 [derived]
     a, b, mu = common_tangent(omega)
     assert (a, b) == (pytest.approx(0.0212, abs=2e-4), pytest.approx(0.9788, abs=2e-4))
     e0 = 3.43  # an LFP-like E0, vs Li (Padhi 1997; Safari & Delacourt 2011)
@@ -134,12 +134,12 @@ def test_regular_solution_plateau_sits_at_the_common_tangent_and_spans_the_misci
 
 
 def test_ideal_solution_has_no_plateau() -> None:
-    # Omega = 0: E(0.1) - E(0.9) = 2 (RT/F) ln 9 = 112.9 mV, a slope, not a plateau (REFERENCE.md row 24)
+    # Omega = 0: E(0.1) - E(0.9) = 2 (RT/F) ln 9 = 112.9 mV, a slope, not a plateau (derived)
     q, v = discharge_of(lambda x: equilibrium_potential(x, 0.0, 3.4), dt_s=10.0)
     assert find_plateaus(q, v, 10.0, PlateauSettings(flatness_mv_per_pct=1.0)).plateaus == ()
 
 
-# Published fits, transcribed here independently of pipeline.ocp (REFERENCE.md 5.1, 5.3, 5.5).
+# Published fits, transcribed here independently of pipeline.ocp (Chen et al. 2020, Safari & Delacourt 2011).
 def graphite_chen2020(x: np.ndarray) -> np.ndarray:
     # Chen et al., J. Electrochem. Soc. 167 (2020) 080534
     return (
@@ -162,14 +162,14 @@ def lfp_safari2011(y: np.ndarray) -> np.ndarray:
 
 
 def lfp_graphite_ocv(soc: np.ndarray) -> np.ndarray:
-    # REFERENCE.md 5.5 map (illustrative balance): y = 0.97 - 0.94 SOC, x = 0.02 + 0.83 SOC
+    # Our own illustrative map (not from a paper): y = 0.97 - 0.94 SOC, x = 0.02 + 0.83 SOC
     return lfp_safari2011(0.97 - 0.94 * soc) - graphite_chen2020(0.02 + 0.83 * soc)
 
 
 def test_published_fit_lfp_graphite_plateau_matches_the_flat_region_of_the_fit() -> None:
     assert float(lfp_graphite_ocv(np.array(0.5))) == pytest.approx(
         3.2985, abs=1e-3
-    )  # REFERENCE row 16
+    )  # derived from the two fits
     # discharge from SOC 1 to 0 at negligible current
     q, v = discharge_of(lambda x: lfp_graphite_ocv(1 - (x - X0) / (X1 - X0)), dt_s=10.0)
     s = PlateauSettings(
@@ -177,7 +177,7 @@ def test_published_fit_lfp_graphite_plateau_matches_the_flat_region_of_the_fit()
     )
     found = find_plateaus(q, v, 10.0, s)
     main = max(found.plateaus, key=lambda p: p.length_pct)
-    # LFP/graphite full-cell mid-SOC OCV 3.30 +- 0.05 V (REFERENCE row 20, from memory + derived)
+    # LFP/graphite full-cell mid-SOC OCV 3.30 +- 0.05 V (from memory + derived)
     assert main.voltage_v == pytest.approx(3.30, abs=0.05)
     # the flat region computed directly from the fit: |dV/dq| <= 3 mV per % on a fine grid
     fine_q = np.linspace(0, 100, 100_001)
@@ -194,7 +194,7 @@ def test_published_fit_lfp_graphite_plateau_matches_the_flat_region_of_the_fit()
 @given(seed=st.integers(0, 2**32 - 1), dt_s=st.sampled_from([1.0, 2.0, 5.0, 10.0]))
 def test_plateaus_unchanged_by_sensor_noise_and_sampling_rate(seed: int, dt_s: float) -> None:
     """1 mV rms noise and 1-10 s sampling move a plateau by < 1.5 % and < 1 mV."""
-    omega = 3 * RT  # REFERENCE.md row 22: binodal 0.0707 / 0.9293
+    omega = 3 * RT  # binodal 0.0707 / 0.9293 (common tangent, derived)
     clean_q, clean_v = discharge_of(lambda x: equilibrium_potential(x, omega, 3.43), dt_s=1.0)
     reference = find_plateaus(clean_q, clean_v, 10.0, SETTINGS).plateaus
     q, v = discharge_of(

@@ -150,9 +150,9 @@ def test_discharge_plot_reads_back_the_published_curve_at_half_capacity() -> Non
     v = pts[:, 1] * y_slope + y_off
     assert q_pct.min() == pytest.approx(0.0, abs=0.05)
     assert q_pct.max() == pytest.approx(100.0, abs=0.05)
-    # The fixture is the synthetic LFP/graphite full cell of REFERENCE.md 5.5 (Safari &
+    # The fixture is the synthetic LFP/graphite full cell of our illustrative map (Safari &
     # Delacourt 2011 LFP fit, Chen et al. 2020 graphite fit): 3.2985 V at 50 % state of
-    # charge (REFERENCE.md check value 16), less the fixture's invented 20 mV IR drop.
+    # charge (derived from the two fits), less the fixture's invented 20 mV IR drop.
     # The curve runs from SOC 1 down to the cut-off, so SOC 0.5 lies at this q:
     q_half_soc = 50.0 / (1.0 - cases.soc_at_cutoff())
     read_v = float(np.interp(q_half_soc, q_pct, v))

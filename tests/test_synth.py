@@ -186,7 +186,7 @@ def test_charge_is_cc_then_cv_at_the_limit_and_discharge_ends_at_cut_off(chemist
     assert np.all(record.voltage_v[cv.start : cv.stop] == chem.max_v)
     currents = record.current_a[cv.start : cv.stop]
     assert np.all(np.diff(currents) < 0)
-    # CV ends at C/20 (REFERENCE.md 1.2), within one 0.1 s tick.
+    # CV ends at C/20 (common practice), within one 0.1 s tick.
     assert float(currents[-1]) == pytest.approx(0.05 * 20.0, rel=0.002)
     # At rest after the full charge the voltage relaxes below the CV level.
     rest = record.step_named(11)

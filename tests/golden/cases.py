@@ -1,7 +1,7 @@
 """Invented judged cells for the certificate tests and the golden snapshots.
 
 Every name, lot and number here is invented. The grading discharge is built from
-published open-circuit-potential fits (REFERENCE.md 5.5: LFP from Safari &
+published open-circuit-potential fits (LFP from Safari &
 Delacourt 2011, graphite from Chen et al. 2020, with an illustrative electrode
 balance) so the plots look like a real LFP/graphite cell; plateaus, peaks and
 metrics are invented to match that curve roughly.
@@ -52,7 +52,7 @@ RULES_SHA256 = hashlib.sha256(b"invented rule set demo-lfp r3").hexdigest()
 
 
 def full_cell_ocv_v(soc: np.ndarray) -> np.ndarray:
-    """Synthetic LFP/graphite full cell, electrode map of REFERENCE.md 5.5 (illustrative):
+    """Synthetic LFP/graphite full cell, our own electrode map (illustrative):
     the Safari & Delacourt 2011 LFP fit minus the Chen et al. 2020 graphite fit."""
     return lfp_graphite_cell(soc)
 
@@ -73,7 +73,7 @@ def grading_curve(points: int = 1001) -> Curve:
 
 
 def ica_curve(curve: Curve, capacity_ah: float = GRADING_AH, bin_v: float = 0.005) -> Curve:
-    """dQ/dV on a uniform voltage grid, lightly smoothed (REFERENCE.md 4.1, common practice)."""
+    """dQ/dV on a uniform voltage grid, lightly smoothed (common practice)."""
     v_grid = np.arange(2.60, 3.45, bin_v)
     q_ah = curve.x / 100.0 * capacity_ah
     q_grid = np.interp(v_grid, curve.y[::-1], q_ah[::-1])
