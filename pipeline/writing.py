@@ -8,10 +8,13 @@ deleted.
 
 from __future__ import annotations
 
+import errno
 import os
 import tempfile
 from collections.abc import Callable, Iterator
 from pathlib import Path
+
+from pipeline.inputnames import fit
 
 TEMP_PREFIX = "."
 TEMP_SUFFIX = ".tmp"
@@ -31,14 +34,18 @@ def write_atomic(
     *,
     before_rename: Callable[[], None] | None = None,
     sync: bool = True,
+    make_parents: bool = True,
 ) -> None:
     """Write ``data`` to ``path`` so that readers see the old file or the whole new one.
 
     The temporary file is ``.<name>.<random>.tmp`` in the same folder (cleaned up by
     :func:`clean_temp_files` if a crash leaves it). ``sync=False`` skips the fsyncs,
     for files such as the heartbeat whose loss on power failure does not matter.
+    ``make_parents=False`` creates the file's folder only if the folder above it exists:
+    a station folder that has gone (a share unmounted) is an error, not made anew on
+    the disk below.
     """
-    path.parent.mkdir(parents=True, exist_ok=True)
+    path.parent.mkdir(parents=make_parents, exist_ok=True)
     fd, tmp = tempfile.mkstemp(
         prefix=f"{TEMP_PREFIX}{path.name}.", suffix=TEMP_SUFFIX, dir=path.parent
     )
@@ -60,27 +67,35 @@ def write_atomic(
 
 
 def move_into(
-    source: Path, folder: Path, *, name: str | None = None, exact: bool = False
+    source: Path,
+    folder: Path,
+    *,
+    name: str | None = None,
+    exact: bool = False,
+    make_parents: bool = True,
 ) -> Path | None:
     """Rename ``source`` into ``folder`` (same filesystem, atomic); return the new path.
 
-    Never overwrites: on a clash the new name gets ``~2``, ``~3``... appended, or,
-    with ``exact``, FileExistsError is raised. Returns None if ``source`` vanished
-    (another process took it first).
+    Never overwrites: on a clash the new name gets ``~2``, ``~3``... appended (the name
+    shortened with a hash if it would not fit), or, with ``exact``, FileExistsError is
+    raised. Returns None if ``source`` vanished (another process took it first); a
+    missing ``folder`` (with ``make_parents=False``, its parent) raises FileNotFoundError.
     """
-    folder.mkdir(parents=True, exist_ok=True)
+    folder.mkdir(parents=make_parents, exist_ok=True)
     base = name or source.name
     target = folder / base
     n = 1
-    while target.exists():
+    while os.path.lexists(target):  # a dangling link is in the way too
         if exact:
-            raise FileExistsError(f"{target} already exists")
+            raise FileExistsError(errno.EEXIST, "already exists", str(target))
         n += 1
-        target = folder / f"{base}~{n}"
+        target = folder / (fit(base, reserve_bytes=len(f"~{n}")) + f"~{n}")
     try:
         os.rename(source, target)
     except FileNotFoundError:
-        return None
+        if not os.path.lexists(source):
+            return None
+        raise
     _fsync_dir(folder)
     return target
 
