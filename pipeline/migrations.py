@@ -173,7 +173,46 @@ _RULE_TEXTS = sql_migration(
     """,
 )
 
-MIGRATIONS: tuple[Migration, ...] = (_INITIAL, _RULE_TEXTS)
+# Inbox entries the station could not take as inputs (a folder, a link, a pipe, a file it
+# may not read or move, a marker without data): where each went, or why it was left in
+# place. The rule sets in force at each successful load of the rules folder, so a station
+# started while a rule file is broken judges with the last rules that were valid. And a
+# few named values of the running station (whether it is paused, and why), which also
+# serve as its test that the ledger can be written.
+_SET_ASIDE = sql_migration(
+    "0003_set_aside_rule_books_station_state",
+    """
+    CREATE TABLE set_aside (
+        id INTEGER PRIMARY KEY,
+        inbox TEXT NOT NULL,
+        name TEXT NOT NULL CHECK (name <> ''),
+        kind TEXT NOT NULL
+            CHECK (kind IN ('file', 'folder', 'symlink', 'fifo', 'socket', 'device', 'marker')),
+        reason TEXT NOT NULL CHECK (reason <> ''),
+        noticed_at TEXT NOT NULL,
+        state TEXT NOT NULL CHECK (state IN ('quarantined', 'left_in_place')),
+        final_path TEXT,
+        CHECK ((state = 'quarantined') = (final_path IS NOT NULL))
+    ) STRICT
+    """,
+    "CREATE INDEX set_aside_by_noticed_at ON set_aside (noticed_at, id)",
+    """
+    CREATE TABLE rule_books (
+        id INTEGER PRIMARY KEY,
+        rule_sets TEXT NOT NULL CHECK (json_valid(rule_sets) AND json_type(rule_sets) = 'array'),
+        loaded_at TEXT NOT NULL
+    ) STRICT
+    """,
+    """
+    CREATE TABLE station_state (
+        key TEXT PRIMARY KEY CHECK (key <> ''),
+        value TEXT NOT NULL,
+        updated_at TEXT NOT NULL
+    ) STRICT
+    """,
+)
+
+MIGRATIONS: tuple[Migration, ...] = (_INITIAL, _RULE_TEXTS, _SET_ASIDE)
 SCHEMA_VERSION = len(MIGRATIONS)
 
 _BOOTSTRAP = """

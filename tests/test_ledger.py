@@ -203,7 +203,7 @@ def test_a_ledger_claiming_a_future_version_is_refused(tmp_path: Path) -> None:
         Ledger(path, now=T0)
     assert str(caught.value) == (
         f"{path}: the ledger was written by a newer formgate (schema version 7, migrations this "
-        "formgate does not know: none recorded; this formgate knows up to version 2).\n"
+        f"formgate does not know: none recorded; this formgate knows up to version {SCHEMA_VERSION}).\n"
         "  Run the newer formgate, or upgrade this installation; a ledger is never downgraded."
     )
 
@@ -262,7 +262,7 @@ def test_a_folder_that_does_not_exist_is_refused_with_what_to_do(tmp_path: Path)
             lambda lg: lg.claim_input(
                 sha256=sha("a"), name="in/a.csv", size=1, arrived_at=T0, work_path="w"
             ),
-            "name must be a file's base name",
+            "name must be a file's base name as text",
         ),
         (lambda lg: lg.inputs_in_state("done"), "unknown input states"),
         (lambda lg: lg.mark_final(1, "deleted", "x"), "final state must be one of"),
