@@ -14,6 +14,7 @@ import gc
 import hashlib
 import logging
 import os
+import resource
 import select
 import signal
 import threading
@@ -22,7 +23,9 @@ import traceback
 from dataclasses import dataclass
 from pathlib import Path
 
+from pipeline.board import Board
 from pipeline.errors import FormgateError, InputError
+from pipeline.limits import TextLimits, check_text
 from pipeline.model import CellResult, SourceRef, VerdictKind
 from pipeline.rulebook import RuleBook
 
@@ -43,6 +46,8 @@ class Task:
     profile_text: str | None = None
     max_uncompressed_bytes: int = 1024 * 2**20
     certify: str = "all"  # "all", "failed_and_held" (no PDF for a passed cell) or "none"
+    limits: TextLimits | None = None  # longest line and most rows; None: not checked
+    memory_note: str = ""  # names the worker's memory limit in a quarantine reason
 
 
 @dataclass(frozen=True, slots=True)
@@ -63,12 +68,32 @@ class Output:
     detail: str = ""
 
 
-def init_worker(station_pid: int | None = None) -> None:
-    """Worker start-up: leave Ctrl-C to the station, end with the station, ``prepare_process``."""
+# The board this worker notes its current input on, and its row there (judges.py).
+_board: Board | None = None
+_row = -1
+
+
+def init_worker(
+    station_pid: int | None = None,
+    board: Board | None = None,
+    memory_limit_bytes: int | None = None,
+) -> None:
+    """Worker start-up: leave Ctrl-C to the station, end with the station, ``prepare_process``,
+    take a row on the station's ``board``, then limit this process's memory.
+
+    The limit is on the address space (RLIMIT_AS), set after the imports, so that it
+    bounds what judging one file may add; past it an allocation fails with MemoryError
+    (the file is quarantined with the limit named) instead of the machine swapping.
+    """
+    global _board, _row
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     if station_pid is not None:
         exit_with(station_pid)
     prepare_process()
+    if board is not None:
+        _board, _row = board, board.take_row(os.getpid())
+    if memory_limit_bytes is not None:
+        resource.setrlimit(resource.RLIMIT_AS, (memory_limit_bytes, memory_limit_bytes))
 
 
 def exit_with(pid: int) -> None:
@@ -124,13 +149,27 @@ def prepare_process() -> None:
 
 def run_task(task: Task) -> Output:
     """Judge and render one file; never raises (a bug becomes an error Output)."""
+    if _board is not None:
+        _board.note(_row, task.input_id)
+    try:
+        return _run(task)
+    finally:
+        if _board is not None:
+            _board.note(_row, 0)
+
+
+def _run(task: Task) -> Output:
     started = time.perf_counter()
     try:
         result, json_text, pdf = _judge_and_render(task)
     except FormgateError as exc:
         return Output(task.input_id, None, None, None, str(exc), time.perf_counter() - started)
     except MemoryError:
-        reason = f"{task.name}: the file needs more memory than a worker may use; it is quarantined"
+        reason = (
+            f"{task.name}: judging the file needs more memory than a worker may use"
+            f"{task.memory_note}; it was not judged.\n  Check that it is one cell's record; if "
+            "such files are expected, raise worker_memory_MB in station.toml."
+        )
         return Output(task.input_id, None, None, None, reason, time.perf_counter() - started)
     except Exception as exc:
         reason = (
@@ -149,7 +188,14 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None]:
     from pipeline.result import to_json
     from pipeline.runner import judge
 
-    data = Path(task.work_path).read_bytes()
+    try:
+        data = Path(task.work_path).read_bytes()
+    except OSError as exc:
+        raise InputError(
+            f"the file cannot be read ({exc.strerror or exc})",
+            SourceRef(task.name),
+            "Let the station's user read it, then drop it into the inbox again.",
+        ) from None
     digest = hashlib.sha256(data).hexdigest()
     if digest != task.sha256:
         raise InputError(
@@ -157,6 +203,8 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None]:
             SourceRef(task.name),
             "A writer still had it open: make the cycler finish writing before hand-over.",
         )
+    if task.limits is not None:
+        check_text(data, task.name, task.limits)
     profile = None
     if task.profile_text is not None:
         profile = load_profile(task.profile_text, task.profile_name or "import profile")
