@@ -161,6 +161,11 @@ class Settings:
     max_input_MB: float = 200.0
     max_uncompressed_MB: float = 1024.0
     task_timeout_s: float = 300.0
+    max_line_kB: float = 64.0
+    max_rows: int = 2_000_000
+    worker_memory_MB: float = 2048.0
+    waiting_alert_s: float = 3600.0
+    retry_max_s: float = 60.0
     reconcile_s: float = 10.0
     heartbeat_s: float = 10.0
     log_max_MB: float = 10.0
@@ -678,6 +683,11 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
             max_input_MB=cast(float, station["max_input_MB"]),
             max_uncompressed_MB=cast(float, station["max_uncompressed_MB"]),
             task_timeout_s=cast(float, station["task_timeout_s"]),
+            max_line_kB=cast(float, station["max_line_kB"]),
+            max_rows=cast(int, station["max_rows"]),
+            worker_memory_MB=cast(float, station["worker_memory_MB"]),
+            waiting_alert_s=cast(float, station["waiting_alert_s"]),
+            retry_max_s=cast(float, station["retry_max_s"]),
             reconcile_s=cast(float, station["reconcile_s"]),
             heartbeat_s=cast(float, station["heartbeat_s"]),
             log_max_MB=cast(float, station["log_max_MB"]),

@@ -90,6 +90,47 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 "s",
                 300.0,
             ),
+            # What one input may cost. A formation and grading record is sampled every 1 to
+            # 60 s (common practice): three days of a 20 Ah cell at 1 s is about 260,000 rows
+            # of under 100 bytes; the defaults leave several times that.
+            _positive(
+                "max_line_kB",
+                "a file with a longer line is quarantined unjudged (1 kB = 1,024 bytes; a cycle "
+                "file's lines are far shorter)",
+                "kB",
+                64.0,
+            ),
+            Key(
+                "max_rows",
+                INTEGER,
+                "a file with more lines is quarantined unjudged (about eight three-day records "
+                "sampled every second)",
+                default=2_000_000,
+                minimum=1,
+            ),
+            _positive(
+                "worker_memory_MB",
+                "memory (address space) one worker process may use; a file that needs more is "
+                "quarantined. A worker needs about 600 MB to start, about 850 MB for 2,000,000 rows",
+                "MB",
+                2048.0,
+            ),
+            _positive(
+                "waiting_alert_s",
+                "an inbox entry not taken this long after its last change (a temporary name, a "
+                "file without its marker, a file that does not end cleanly) is listed by "
+                "formgate status with its age and raises one alert",
+                "s",
+                3600.0,
+            ),
+            _positive(
+                "retry_max_s",
+                "while a fault of the surroundings (a full disk, a read-only or missing folder, "
+                "an unwritable ledger) pauses the station, it tries again after 1 s, then twice "
+                "as long each time, up to this long",
+                "s",
+                60.0,
+            ),
             _positive(
                 "reconcile_s",
                 "how often the inboxes and the work folder are listed in full; filesystem "
