@@ -23,6 +23,7 @@ import math
 import types
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from typing import Protocol
 
 import numpy as np
 from scipy import optimize
@@ -576,9 +577,26 @@ COLUMNS = ("time_s", "voltage_V", "current_A", "temperature_C")
 STEP_COLUMNS = ("step", "cycle")
 
 
-def to_cycle_file(record: SimulatedRecord, metadata: Mapping[str, str], *,
+class Columns(Protocol):
+    """What a cycle file is written from: a SimulatedRecord, or any record with these arrays."""
+
+    @property
+    def time_s(self) -> FloatArray: ...
+    @property
+    def voltage_v(self) -> FloatArray: ...
+    @property
+    def current_a(self) -> FloatArray: ...
+    @property
+    def temperature_c(self) -> FloatArray: ...
+    @property
+    def step(self) -> IntArray: ...
+    @property
+    def cycle(self) -> IntArray: ...
+
+
+def to_cycle_file(record: Columns, metadata: Mapping[str, str], *,
                   include_step_columns: bool = True) -> str:
-    """Cycle file v1 text (DESIGN.md): ``# key: value`` lines, a header row, one row per sample.
+    """Cycle file version 1 text: ``# key: value`` lines, a header row, one row per sample.
 
     Fixed formats: time %.1f s, voltage %.5f V, current %.5f A, temperature %.2f degC.
 
