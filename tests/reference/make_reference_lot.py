@@ -3,9 +3,9 @@
 Run by hand, never by the tests. PyBaMM is not a dependency of formgate, so run it in a
 throwaway virtual environment with exactly the pinned version, from the repository root::
 
-    python -m venv /tmp/refvenv
-    /tmp/refvenv/bin/pip install pybamm==26.10.1.1
-    /tmp/refvenv/bin/python tests/reference/make_reference_lot.py
+    python -m venv .venv-reference
+    .venv-reference/bin/pip install pybamm==26.10.1.1
+    .venv-reference/bin/python tests/reference/make_reference_lot.py
 
 It writes ``tests/data/reference_lot/<cell>.csv.gz`` (cycle file v1, noiseless) and
 ``tests/data/reference_lot/truth.json``; ``--out DIR`` writes elsewhere. The same PyBaMM
