@@ -123,6 +123,8 @@ class JudgePool:
         """Outputs of the tasks that finished within ``timeout`` s (after a break: all of them)."""
         self._stop_overdue()
         if self.in_flight:
+            # look at the clock often enough to hold a short task_timeout_s to its value
+            timeout = min(timeout, self.timeout_s / 4)
             done, _ = wait(list(self.in_flight), timeout=timeout, return_when=FIRST_COMPLETED)
             broken = False
             for future in done:
@@ -131,6 +133,9 @@ class JudgePool:
                 except BrokenProcessPool:
                     broken = True
                     continue
+                except Exception as exc:  # the task never ran: e.g. no memory left to start it
+                    row = self.in_flight[future][0]
+                    output = _unrun(row, exc)
                 self.finished.append((self.in_flight.pop(future)[0], output))
             if broken:
                 self._restart()
@@ -175,6 +180,12 @@ class JudgePool:
         for future, (row, task) in old.items():
             if future.done() and not future.cancelled() and future.exception() is None:
                 self.finished.append((row, future.result()))  # finished before the break
+            elif (
+                future.done()
+                and not future.cancelled()
+                and not isinstance(future.exception(), BrokenProcessPool)
+            ):
+                self.finished.append((row, _unrun(row, future.exception())))
             elif row.id in killed:
                 self._failed(row, task, self.overdue.pop(row.id), again)
             elif row.id in suspects and not killed and len(suspects) == 1:
@@ -207,3 +218,13 @@ class JudgePool:
             "are expected, raise task_timeout_s or worker_memory_MB in station.toml."
         )
         self.finished.append((row, Output(row.id, None, None, None, reason, 0.0)))
+
+
+def _unrun(row: InputRow, exc: BaseException | None) -> Output:
+    """The Output of a task that could not run in its worker at all (quarantined, as a bug)."""
+    reason = (
+        f"{row.name}: the worker could not judge this file ({type(exc).__name__}: {exc}); it was "
+        "not judged.\n  The station log has the details; if it happens again, raise "
+        "worker_memory_MB in station.toml or report it."
+    )
+    return Output(row.id, None, None, None, reason, 0.0, True, repr(exc))

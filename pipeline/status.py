@@ -12,8 +12,11 @@ import os
 from pathlib import Path
 
 from pipeline.handoff import is_temporary
+from pipeline.inputnames import from_text, to_text
 from pipeline.ledger import Ledger
 from pipeline.settings import Settings
+from pipeline.waiting import overdue_entries
+from pipeline.watcher import list_entries
 
 STALE_FACTOR = 3  # a heartbeat older than this many intervals means the station is not running
 
@@ -29,7 +32,7 @@ def _pid_alive(pid: int) -> bool:
 
 
 def health(settings: Settings, now: datetime.datetime) -> tuple[str, dict[str, object]]:
-    """('running' | 'stopped' | 'not responding' | 'never started', heartbeat contents)."""
+    """('running' | 'paused' | 'stopped' | 'not responding' | 'never started', heartbeat contents)."""
     try:
         beat = json.loads(settings.heartbeat.read_text(encoding="utf-8"))
     except (FileNotFoundError, json.JSONDecodeError):
@@ -40,13 +43,44 @@ def health(settings: Settings, now: datetime.datetime) -> tuple[str, dict[str, o
     age = (now - updated).total_seconds()
     if age > STALE_FACTOR * settings.heartbeat_s + 5 or not _pid_alive(int(beat.get("pid", 0))):
         return "not responding", beat
-    return "running", beat
+    return ("paused" if beat.get("state") == "paused" else "running"), beat
 
 
 def _files(folder: Path) -> list[str]:
-    if not folder.exists():
+    """Regular files with final names, as text (a name may hold any bytes)."""
+    try:
+        names = list_entries(folder).files
+    except OSError:
         return []
-    return sorted(p.name for p in folder.iterdir() if p.is_file() and not is_temporary(p.name))
+    return sorted(to_text(n) for n in names if not is_temporary(n))
+
+
+def _age(seconds: float) -> str:
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    if seconds < 2 * 86400:
+        return f"{seconds / 3600:.1f} h"
+    return f"{seconds / 86400:.1f} days"
+
+
+def _overdue_lines(settings: Settings, now: datetime.datetime, left: dict[str, dict[str, str]]) -> list[str]:
+    """Inbox entries unchanged for longer than waiting_alert_s and not taken, with age and reason."""
+    lines = []
+    for inbox in settings.inboxes:
+        try:
+            listing = list_entries(inbox.folder)
+        except OSError as exc:
+            lines.append(f"  {inbox.name}: the folder cannot be listed ({exc.strerror or exc})")
+            continue
+        for e in overdue_entries(
+            listing,
+            inbox,
+            now_ns=int(now.timestamp() * 1e9),
+            waiting_alert_s=settings.waiting_alert_s,
+            left=left.get(inbox.name, {}),
+        ):
+            lines.append(f"  {inbox.name}: {e.name}: waiting {_age(e.age_s)}; {e.why}")
+    return lines
 
 
 def status_text(settings: Settings, now: datetime.datetime) -> str:
@@ -62,6 +96,9 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
             rules = beat["rules"]
             shown = ", ".join(str(r) for r in rules) if isinstance(rules, list) else str(rules)
             lines.append(f"  rules in force: {shown}")
+        troubles = beat.get("troubles")
+        if isinstance(troubles, list):
+            lines += [f"  {t}" for t in troubles]
         if beat.get("last_error"):
             lines.append(f"  last error: {beat['last_error']}")
     lines.append("")
@@ -75,10 +112,38 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
             lines.append(f"    {name}")
     lines.append(f"  work: {len(_files(settings.work))} file(s) being judged")
     if not settings.ledger.exists():
+        overdue = _overdue_lines(settings, now, {})
+        if overdue:
+            lines += ["", f"waiting too long (unchanged for over {settings.waiting_alert_s:g} s)"]
+            lines += overdue
         lines.append("\nno ledger yet")
         return "\n".join(lines) + "\n"
     midnight = now.astimezone(datetime.UTC).replace(hour=0, minute=0, second=0, microsecond=0)
     with Ledger(settings.ledger, now=now) as ledger:
+        noted = ledger.state("paused")
+        if noted and noted[0] and state not in ("running", "paused"):
+            lines.insert(1, f"  last noted in the ledger: {noted[0]}")
+        left: dict[str, dict[str, str]] = {}
+        still_there = []
+        folders = {i.name: i.folder for i in settings.inboxes}
+        for row in reversed(ledger.set_aside_rows(1000, state="left_in_place")):
+            name = from_text(row.name)
+            left.setdefault(row.inbox, {})[name] = row.reason.splitlines()[0]
+            if row.inbox in folders and os.path.lexists(folders[row.inbox] / name):
+                still_there.append(f"  {row.inbox}: {row.reason.splitlines()[0]}")
+        if still_there:
+            lines += ["", "left in place (the station cannot move them out of the inbox)"]
+            lines += sorted(set(still_there))
+        overdue = _overdue_lines(settings, now, left)
+        if overdue:
+            lines += ["", f"waiting too long (unchanged for over {settings.waiting_alert_s:g} s)"]
+            lines += overdue
+        aside = ledger.set_aside_rows(5, state="quarantined")
+        if aside:
+            lines += ["", "set aside lately (not inputs; in quarantine with a reason)"]
+            for a in aside:
+                lines.append(f"  {a.noticed_at.isoformat(timespec='seconds')}  {a.inbox}: "
+                             f"{a.reason.splitlines()[0]}")
         counts = ledger.counts_since(midnight)
         lines.append("")
         lines.append(

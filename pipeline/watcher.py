@@ -11,8 +11,10 @@ from __future__ import annotations
 
 import logging
 import os
+import stat
 import threading
 from collections.abc import Sequence
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from watchdog.events import FileSystemEvent, FileSystemEventHandler
@@ -37,21 +39,71 @@ class _QuietStop(logging.Filter):
 logging.getLogger("watchdog.observers.inotify").addFilter(_QuietStop())
 
 
-def list_folder(folder: Path) -> dict[str, tuple[int, int]]:
-    """Regular files directly in ``folder``: name -> (size in bytes, mtime in ns)."""
-    out: dict[str, tuple[int, int]] = {}
+@dataclass(frozen=True, slots=True)
+class Other:
+    """An entry that is not a regular file: its kind, its mtime, and for a link what it points to."""
+
+    kind: str  # "folder", "symlink", "fifo", "socket" or "device"
+    mtime_ns: int
+    points_to: str = ""  # for a symlink: "a file", "a folder", "nothing" or "something else"
+
+
+@dataclass(frozen=True, slots=True)
+class Listing:
+    """One listing of a folder: regular files (name -> (size, mtime ns)) and everything else."""
+
+    files: dict[str, tuple[int, int]] = field(default_factory=dict)
+    others: dict[str, Other] = field(default_factory=dict)
+
+
+def _kind(mode: int) -> str:
+    if stat.S_ISDIR(mode):
+        return "folder"
+    if stat.S_ISLNK(mode):
+        return "symlink"
+    if stat.S_ISFIFO(mode):
+        return "fifo"
+    if stat.S_ISSOCK(mode):
+        return "socket"
+    return "device"
+
+
+def _points_to(path: str) -> str:
+    try:
+        mode = os.stat(path).st_mode
+    except OSError:  # dangling, a loop, or a target the station may not see
+        return "nothing"
+    return "a file" if stat.S_ISREG(mode) else "a folder" if stat.S_ISDIR(mode) else "something else"
+
+
+def list_entries(folder: Path) -> Listing:
+    """Every entry directly in ``folder``, sorted into regular files and the rest.
+
+    Links are never followed (a link is listed as one). A missing folder lists empty;
+    any other error listing it (no permission, a share gone) is raised.
+    """
+    listing = Listing()
     try:
         entries = list(os.scandir(folder))
     except FileNotFoundError:
-        return out
+        return listing
     for entry in entries:
         try:
-            if entry.is_file(follow_symlinks=False):
-                st = entry.stat(follow_symlinks=False)
-                out[entry.name] = (st.st_size, st.st_mtime_ns)
+            st = entry.stat(follow_symlinks=False)
         except FileNotFoundError:  # gone between listing and stat: a writer renamed it
             continue
-    return out
+        if stat.S_ISREG(st.st_mode):
+            listing.files[entry.name] = (st.st_size, st.st_mtime_ns)
+            continue
+        kind = _kind(st.st_mode)
+        target = _points_to(entry.path) if kind == "symlink" else ""
+        listing.others[entry.name] = Other(kind, st.st_mtime_ns, target)
+    return listing
+
+
+def list_folder(folder: Path) -> dict[str, tuple[int, int]]:
+    """Regular files directly in ``folder``: name -> (size in bytes, mtime in ns)."""
+    return list_entries(folder).files
 
 
 class _Wake(FileSystemEventHandler):

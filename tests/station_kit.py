@@ -8,6 +8,7 @@ either in a thread of the test (``running``) or as a `formgate watch` child proc
 from __future__ import annotations
 
 import contextlib
+import ctypes
 import json
 import os
 import signal
@@ -154,16 +155,60 @@ def running(settings: Settings, environ: dict[str, str] | None = None) -> Iterat
         raise errors[0]
 
 
-def start_watch(root: Path, env: dict[str, str] | None = None) -> subprocess.Popen[bytes]:
-    """`formgate watch root` as a child process (so a test can kill it)."""
+# Linux capabilities that let root ignore file permissions (capability.h); PR_CAPBSET_DROP
+# is the prctl option that removes one from the bounding set (prctl.h).
+CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH, PR_CAPBSET_DROP = 1, 2, 24
+
+
+def _obey_permissions() -> None:
+    """In the child before exec: a root process gives up ignoring file permissions.
+
+    Tests run as root, and root reads a file of mode 000 and writes into a read-only
+    folder. Without these two capabilities it meets permissions as any user does, so a
+    test can show a station the real errors.
+    """
+    libc = ctypes.CDLL(None, use_errno=True)
+    for cap in (CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH):
+        if libc.prctl(PR_CAPBSET_DROP, cap, 0, 0, 0) != 0:
+            raise OSError(ctypes.get_errno(), "prctl(PR_CAPBSET_DROP) refused")
+
+
+def start_watch(
+    root: Path, env: dict[str, str] | None = None, *, obey_permissions: bool = False
+) -> subprocess.Popen[bytes]:
+    """`formgate watch root` as a child process (so a test can kill it).
+
+    ``obey_permissions``: run as root, the station still meets file permissions.
+    """
     full = {**os.environ, **(env or {})}
+    as_root = obey_permissions and os.geteuid() == 0
     return subprocess.Popen(
         [sys.executable, "-m", "pipeline", "watch", str(root), "--quiet"],
         cwd=REPO,
         env=full,
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
+        preexec_fn=_obey_permissions if as_root else None,
     )
+
+
+def permissions_are_obeyed(folder: Path) -> bool:
+    """True if a station started with ``obey_permissions`` cannot read a file of mode 000."""
+    probe = folder / "mode-000-probe"
+    probe.write_bytes(b"x")
+    probe.chmod(0)
+    try:
+        code = subprocess.run(
+            [sys.executable, "-c", f"open({str(probe)!r}).read()"],
+            stderr=subprocess.DEVNULL,
+            preexec_fn=_obey_permissions if os.geteuid() == 0 else None,
+            check=False,
+        ).returncode
+    except (OSError, subprocess.SubprocessError):
+        code = 0
+    probe.chmod(0o644)
+    probe.unlink()
+    return code != 0
 
 
 def stop_watch(proc: subprocess.Popen[bytes], timeout_s: float = 120.0) -> int:

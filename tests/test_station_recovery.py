@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import watcher
+from pipeline import station, watcher
 from pipeline.faults import POINTS
 from pipeline.ledger import Ledger
 from tests.station_kit import (
@@ -115,14 +115,14 @@ def test_a_burst_of_500_files_all_reach_a_final_state_once(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     listings: list[int] = []
-    real_list_folder = watcher.list_folder
+    real_list_entries = watcher.list_entries
 
-    def counted(folder: Path) -> dict[str, tuple[int, int]]:
-        listing = real_list_folder(folder)
-        listings.append(len(listing))
+    def counted(folder: Path) -> watcher.Listing:
+        listing = real_list_entries(folder)
+        listings.append(len(listing.files))
         return listing
 
-    monkeypatch.setattr(watcher, "list_folder", counted)
+    monkeypatch.setattr(station, "list_entries", counted)
     toml = station_toml(certificates='certify = "failed_and_held"\n')
     s = make_station(tmp_path / "st", toml)
     base = cycle_file("BURST", dt_s=300.0)
@@ -141,7 +141,7 @@ def test_a_burst_of_500_files_all_reach_a_final_state_once(
         assert all(r.pdf_path is None for r in results)  # certify = failed_and_held
     # the backlog is claimed from a listing at most a second old, not by listing the whole
     # inbox again for every file claimed
-    assert len([n for n in listings if n > 100]) < 100
+    assert listings and len([n for n in listings if n > 100]) < 100
 
 
 def _descendants(pid: int) -> set[int]:

@@ -1,0 +1,154 @@
+"""The station's periodic duties besides claiming and judging: lot digests, the heartbeat, and
+entries that wait too long or were left in place.
+
+A heartbeat file shows a monitor (and `formgate status`) that the station runs, and
+whether it is paused and why. A lot's digest of passed cells goes out once the lot
+has been quiet for ``digest_quiet_s``. An inbox entry unchanged for
+``waiting_alert_s`` and not taken raises one alert (waiting.py).
+"""
+
+from __future__ import annotations
+
+import datetime
+import hashlib
+import json
+import logging
+import os
+import time
+from collections import deque
+from pathlib import Path
+
+from pipeline.judges import JudgePool
+from pipeline.ledger import InputRow
+from pipeline.mail import DigestRow, digest_letter
+from pipeline.rulebook import RuleBook
+from pipeline.settings import InboxSettings
+from pipeline.station_guard import Guarded
+from pipeline.troubles import describe
+from pipeline.waiting import overdue_entries
+from pipeline.watcher import Listing
+from pipeline.worker import Task
+from pipeline.writing import write_atomic
+
+log = logging.getLogger("formgate.station")
+
+
+class Duties(Guarded):
+    """Digests, heartbeat, waiting entries; :class:`pipeline.station.Station` sets these attributes."""
+
+    rulebook: RuleBook | None
+    queue: deque[tuple[InputRow, Task | None]]
+    judges: JudgePool
+    judged: int
+    started_at: datetime.datetime
+    left: dict[tuple[str, str], tuple[int, int]]  # left in place, as it was then
+    overdue_alerted: set[tuple[str, str]]
+
+    def queue_digests(self) -> None:
+        routing = self.settings.routing
+        if not routing.digests_to:
+            return
+        now = self.clock()
+        for lot in self.ledger.pending_digest_lots():
+            latest = self.ledger.latest_activity(lot)
+            if latest is not None and (now - latest).total_seconds() < routing.digest_quiet_s:
+                continue
+            cells = self.ledger.passed_cells_for_digest(lot)
+            if not cells:
+                continue
+            rows = [
+                DigestRow(
+                    c.cell_id,
+                    c.verdict,
+                    json.loads(c.result_json)["metrics"].get("grading_capacity_Ah"),
+                    c.pdf_path or "",
+                )
+                for c in cells
+            ]
+            letter = digest_letter(
+                lot,
+                rows,
+                routing.digests_to,
+                station=self.settings.station_name,
+                digest_no=self.ledger.digest_count(lot) + 1,
+                domain=routing.domain,
+            )
+            self.ledger.queue_digest(letter, [c.id for c in cells], now=now)
+            log.info("digest queued for lot %s: %d passed cell(s)", lot, len(cells))
+
+    def write_heartbeat(self, state: str = "running") -> None:
+        """Rewrite the heartbeat file; one that cannot be written is a trouble, not a stop."""
+        if state == "running" and self.troubles.paused:
+            state = "paused"
+        beat = {
+            "state": state,
+            "pid": os.getpid(),
+            "station": self.settings.station_name,
+            "updated_at": self.clock().isoformat(),
+            "started_at": self.started_at.isoformat(),
+            "judged_since_start": self.judged,
+            "queued": len(self.queue),
+            "in_flight": self.judges.busy(),
+            "rules": [
+                f"{rs.name} {rs.revision}"
+                for rs in (self.rulebook.rule_sets if self.rulebook else ())
+            ],
+            "troubles": self.troubles.shown(),
+            "last_error": self.last_error,
+        }
+        try:
+            write_atomic(
+                (json.dumps(beat, indent=2) + "\n").encode(), self.settings.heartbeat, sync=False
+            )
+        except OSError as exc:
+            trouble = self.troubles.report(
+                "heartbeat", f"the heartbeat file cannot be written ({describe(exc)})",
+                now=self.clock(), now_s=time.monotonic(), blocking=False,
+            )
+            if trouble is not None:
+                log.error("%s", trouble.reason)
+            return
+        self.troubles.clear("heartbeat", now=self.clock())
+
+    def note_left(self, inbox: InboxSettings, name: str, path: Path) -> None:
+        """Remember an entry that stayed in the inbox, as it is now: it is tried again once it changes."""
+        try:
+            st = path.lstat()
+        except FileNotFoundError:
+            return
+        self.left[(inbox.name, name)] = (st.st_size, st.st_mtime_ns)
+
+    def still_left(self, inbox: InboxSettings, name: str, stat: tuple[int, int]) -> bool:
+        was = self.left.get((inbox.name, name))
+        if was is not None and was != stat:
+            del self.left[(inbox.name, name)]  # it changed: try again
+            return False
+        return was is not None
+
+    def alert_overdue(self, inbox: InboxSettings, listing: Listing, ready: tuple[str, ...]) -> None:
+        """One alert for the entries of ``inbox`` that have newly waited too long."""
+        entries = [
+            e
+            for e in overdue_entries(
+                listing, inbox, now_ns=time.time_ns(),
+                waiting_alert_s=self.settings.waiting_alert_s, ready=ready,
+            )
+            if (inbox.name, e.name) not in self.overdue_alerted
+            and not any(key == (inbox.name, e.name) for key in self.left)
+        ]
+        if not entries:
+            return
+        self.overdue_alerted |= {(inbox.name, e.name) for e in entries}
+        lines = [f"- {e.name}: waiting {e.age_s / 60:.0f} min; {e.why}" for e in entries[:50]]
+        if len(entries) > 50:
+            lines.append(f"- and {len(entries) - 50} more (formgate status lists them)")
+        for e in entries:
+            log.warning("inbox %s: %s waits (%.0f s unchanged): %s", inbox.name, e.name, e.age_s, e.why)
+        key = hashlib.sha256("\n".join(lines).encode()).hexdigest()[:16]
+        self.alert(
+            f"{len(entries)} file(s) waiting in inbox {inbox.name}",
+            f"These entries of {inbox.folder} have waited more than "
+            f"{self.settings.waiting_alert_s:g} s without being taken:\n\n" + "\n".join(lines)
+            + "\n\nCheck the cycler's hand-over; `formgate status` shows what still waits.",
+            key=f"waiting:{inbox.name}:{key}",
+        )

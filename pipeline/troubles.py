@@ -1,0 +1,115 @@
+"""Faults of the station's surroundings: tell them from faults of one input; pause, retry, resume.
+
+A full disk, a folder made read-only or unmounted, a ledger that cannot be written:
+none of these is the fault of the file in hand, and none may stop the station. The
+station records such a fault here as a *trouble*; a blocking trouble pauses it (no
+new claims; what is in hand waits), and it tries again after 1 s, 2 s, 4 s ... up
+to ``retry_max_s``, until the fault has cleared, then resumes by itself. Each
+trouble is reported once (log and one alert) when it begins and logged when it ends.
+
+Which errors belong to the surroundings is decided by where they happen: the
+station reads an input only in a few places and turns every error there into that
+input's quarantine (station.py, setaside.py); any other OSError, and any SQLite
+error other than a broken constraint, comes from writing the station's own files.
+Pure bookkeeping: times are passed in, nothing is written here.
+"""
+
+from __future__ import annotations
+
+import datetime
+import errno
+import sqlite3
+from dataclasses import dataclass
+
+FIRST_RETRY_S = 1.0
+# A trouble that begins again within this long of its end (a disk on the edge of full) is
+# logged but not alerted again: one alert per episode, not one per flicker.
+REALERT_S = 600.0
+
+
+def is_environmental(exc: BaseException) -> bool:
+    """True for an error of the surroundings met while writing the station's own files or ledger.
+
+    A broken constraint or a misuse of SQLite (IntegrityError, ProgrammingError) is a bug.
+    """
+    if isinstance(exc, sqlite3.IntegrityError | sqlite3.ProgrammingError | sqlite3.InterfaceError):
+        return False
+    return isinstance(exc, OSError | sqlite3.DatabaseError)
+
+
+def describe(exc: BaseException) -> str:
+    """One line naming the path and the error, e.g. 'results/LOT-A: No space left on device'."""
+    if isinstance(exc, OSError):
+        what = exc.strerror or str(exc) or type(exc).__name__
+        if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+            what += " (the disk is full)"
+        where = exc.filename if exc.filename is not None else ""
+        return f"{where}: {what}" if where else what
+    if isinstance(exc, sqlite3.Error):
+        return f"the ledger cannot be written ({exc})"
+    return f"{type(exc).__name__}: {exc}"
+
+
+@dataclass(frozen=True, slots=True)
+class Trouble:
+    """One fault of the surroundings while it lasts; ``blocking`` ones pause the station."""
+
+    key: str
+    reason: str
+    since: datetime.datetime
+    blocking: bool
+    repeated: bool = False  # the same trouble ended moments ago: not alerted again
+
+    def shown(self) -> str:
+        head = "paused" if self.blocking else "trouble"
+        return f"{head}: {self.reason} since {self.since.isoformat(timespec='seconds')}"
+
+
+class Troubles:
+    """The troubles in force, and when to try again while paused."""
+
+    def __init__(self, retry_max_s: float = 60.0) -> None:
+        self.retry_max_s = retry_max_s
+        self.active: dict[str, Trouble] = {}
+        self.ended: dict[str, datetime.datetime] = {}
+        self._wait_s = FIRST_RETRY_S
+        self._next_try_s = 0.0
+
+    @property
+    def paused(self) -> bool:
+        return any(t.blocking for t in self.active.values())
+
+    def report(
+        self, key: str, reason: str, *, now: datetime.datetime, now_s: float, blocking: bool = True
+    ) -> Trouble | None:
+        """Note a trouble; the new Trouble if it has just begun (to log and alert once), else None."""
+        if key in self.active:
+            return None
+        ended = self.ended.get(key)
+        repeated = ended is not None and (now - ended).total_seconds() < REALERT_S
+        trouble = Trouble(key, reason, now, blocking, repeated)
+        if blocking and not self.paused:
+            self._wait_s = FIRST_RETRY_S
+            self._next_try_s = now_s + self._wait_s
+        self.active[key] = trouble
+        return trouble
+
+    def clear(self, key: str, *, now: datetime.datetime) -> Trouble | None:
+        """The trouble ``key`` has ended; it is returned (to log), or None if there was none."""
+        trouble = self.active.pop(key, None)
+        if trouble is not None:
+            self.ended[key] = now
+        return trouble
+
+    def due(self, now_s: float) -> bool:
+        """True when a paused station should try again."""
+        return self.paused and now_s >= self._next_try_s
+
+    def failed_again(self, now_s: float) -> float:
+        """Another try failed: wait twice as long (up to retry_max_s); the wait in seconds."""
+        self._wait_s = min(2 * self._wait_s, self.retry_max_s)
+        self._next_try_s = now_s + self._wait_s
+        return self._wait_s
+
+    def shown(self) -> list[str]:
+        return [t.shown() for t in self.active.values()]

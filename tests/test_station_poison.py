@@ -1,0 +1,179 @@
+"""One bad inbox entry never stops the station: each is judged, set aside or left with a reason.
+
+A real `formgate watch` process (meeting file permissions even when the tests run as
+root) gets, in a rename-mode and a settle-mode inbox: a name that is not UTF-8, a name
+with a line break, a 250-character name, a file it may not read, a folder, a dangling
+symbolic link, a link to a folder, a named pipe, a file it may not move, young and old
+dot-names; then a good file. It must keep running, decide each entry once, and judge
+the good file as usual.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import datetime
+import email
+import email.policy
+import os
+import subprocess
+import time
+from pathlib import Path
+
+import pytest
+
+from pipeline.inputnames import from_text
+from pipeline.ledger import Ledger
+from pipeline.settings import read_settings
+from pipeline.status import status_text
+from tests.station_kit import (
+    cycle_file,
+    make_station,
+    permissions_are_obeyed,
+    start_watch,
+    station_toml,
+    stop_watch,
+    wait_until,
+)
+
+pytestmark = pytest.mark.slow
+
+INBOXES = (
+    '[inbox.quick]\nfolder = "inbox"\nhandover = "rename"\n\n'
+    '[inbox.slow]\nfolder = "settle-inbox"\nhandover = "settle"\nsettle_s = 0.5\n'
+)
+UNDECODABLE = os.fsdecode(b"cell_\xe9.csv")
+LONG = "L" * 246 + ".csv"  # 250 characters: with the ledger id in front, too long for the disk
+
+
+def _immutable(path: Path, on: bool) -> bool:
+    """Set or clear the file's immutable flag (not even root may rename it); False if unsupported."""
+    try:
+        done = subprocess.run(
+            ["chattr", "+i" if on else "-i", str(path)], capture_output=True, check=False
+        )
+    except FileNotFoundError:
+        return False
+    return done.returncode == 0
+
+
+def _mails(folder: Path) -> list[str]:
+    out = []
+    for p in folder.glob("*.eml"):
+        msg = email.message_from_bytes(p.read_bytes(), policy=email.policy.default)
+        out.append(str(msg["Subject"]) + "\n" + msg.get_body().get_content())  # type: ignore[union-attr]
+    return out
+
+
+def test_poison_entries_are_set_aside_and_the_station_goes_on(tmp_path: Path) -> None:
+    if not permissions_are_obeyed(tmp_path):
+        pytest.skip("this machine cannot run a station that meets file permissions")
+    toml = station_toml(inboxes=INBOXES, extra="waiting_alert_s = 60\n")
+    s = make_station(tmp_path / "st", toml)
+    quick, slow = (i.folder for i in s.inboxes)
+    slow.mkdir(exist_ok=True)
+    poison: dict[Path, str] = {}  # entry -> what must become of it
+    for inbox, tag in ((quick, "q"), (slow, "s")):
+        (inbox / UNDECODABLE).write_bytes(cycle_file(f"U-{tag}", seed=1 if tag == "q" else 2))
+        (inbox / f"two\nlines-{tag}.csv").write_bytes(cycle_file(f"N-{tag}", seed=3 if tag == "q" else 4))
+        (inbox / f"{tag}{LONG[1:]}").write_bytes(cycle_file(f"LONG-{tag}", seed=5 if tag == "q" else 6))
+        locked = inbox / f"locked-{tag}.csv"
+        locked.write_bytes(cycle_file(f"P-{tag}", seed=7 if tag == "q" else 8))
+        locked.chmod(0)
+        poison[locked] = "cannot be read (Permission denied)"
+        (inbox / f"dir-{tag}").mkdir()
+        (inbox / f"dir-{tag}" / "inside.csv").write_bytes(b"x\n")
+        poison[inbox / f"dir-{tag}"] = "a folder, not a file"
+        (inbox / f"dangling-{tag}.csv").symlink_to(tmp_path / "nowhere.csv")
+        poison[inbox / f"dangling-{tag}.csv"] = "a symbolic link to nothing"
+        (inbox / f"to-folder-{tag}.csv").symlink_to(tmp_path)
+        poison[inbox / f"to-folder-{tag}.csv"] = "a symbolic link to a folder"
+        os.mkfifo(inbox / f"pipe-{tag}.csv")
+        poison[inbox / f"pipe-{tag}.csv"] = "a named pipe, not a file"
+        (inbox / "..csv").write_bytes(b"old dot-name\n")
+        hour_ago = time.time() - 3600
+        os.utime(inbox / "..csv", (hour_ago, hour_ago))
+        (inbox / ".young.csv").write_bytes(b"a writer's temporary file\n")
+    frozen = quick / "frozen.csv"
+    frozen.write_bytes(cycle_file("F-1", seed=9))
+    can_freeze = _immutable(frozen, True)
+    proc = start_watch(s.root, obey_permissions=True)
+    try:
+        wait_until(lambda: s.heartbeat.exists(), what="station started")
+        for path in poison:
+            wait_until(lambda p=path: not os.path.lexists(p), what=f"{path.name} set aside")
+        wait_until(lambda: not any(s.work.iterdir()), what="the files in work judged")
+        (quick / ".good.csv.part").write_bytes(cycle_file("GOOD-1", seed=10))
+        (quick / ".good.csv.part").rename(quick / "good.csv")
+        wait_until(lambda: not (quick / "good.csv").exists() and not any(s.work.iterdir()),
+                   what="the good file taken after the poison")
+        wait_until(lambda: any("file(s) waiting" in m for m in _mails(s.mail)), what="waiting alert")
+        assert proc.poll() is None, "the station is still running"
+        report = status_text(read_settings(s.root), datetime.datetime.now(datetime.UTC))
+    finally:
+        code = stop_watch(proc)
+        if can_freeze:
+            _immutable(frozen, False)
+    assert code == 0
+    with Ledger(s.ledger) as ledger:
+        finals = ledger.inputs_in_state("archived", "quarantined", "duplicate")
+        aside = ledger.set_aside_rows(100)
+    # names that are not plain text are judged all the same, stored as lossless text
+    expected = ["cell_\\xe9.csv"] * 2 + ["two\\x0alines-q.csv", "two\\x0alines-s.csv"]
+    expected += [f"q{LONG[1:]}", f"s{LONG[1:]}", "good.csv"]
+    assert sorted(r.name for r in finals) == sorted(expected)
+    for row in finals:
+        assert row.state == "archived" and Path(row.final_path or "").exists(), row
+        assert len(Path(row.final_path or "").name.encode()) <= 255
+    assert from_text("cell_\\xe9.csv") == UNDECODABLE
+    assert from_text("two\\x0alines-q.csv") == "two\nlines-q.csv"
+    # each poison entry is in quarantine with its reason beside it, and in the ledger
+    for path, why in poison.items():
+        found = [a for a in aside if a.name == path.name and a.state == "quarantined"]
+        assert found and why in found[0].reason, (path.name, [a.reason for a in aside])
+        target = Path(found[0].final_path or "")
+        assert os.path.lexists(target)
+        assert why in target.with_name(target.name + ".reason.txt").read_text()
+    if can_freeze:
+        left = [a for a in aside if a.name == "frozen.csv"]
+        assert [a.state for a in left] == ["left_in_place"]
+        assert left[0].reason.startswith(
+            "left in place: frozen.csv was not judged; the station cannot move it out of the "
+            "inbox (Operation not permitted)."
+        )
+        assert frozen.exists()
+        assert "  quick: left in place: frozen.csv was not judged;" in report
+    # dot-names: the young one is a writer's and waits unseen; the old one is shown and alerted
+    assert (quick / ".young.csv").exists() and (quick / "..csv").exists()
+    assert "..csv" in report and "waiting 60 min" in report
+    assert ".young.csv" not in report
+    mails = _mails(s.mail)
+    waiting = [m for m in mails if "file(s) waiting in inbox" in m]
+    assert any("..csv: waiting 60 min; a temporary name" in m for m in waiting)
+    set_aside = [m for m in mails if "set aside:" in m.splitlines()[0]]
+    assert len(set_aside) == len(poison)
+
+
+def test_a_station_killed_twice_with_one_input_in_hand_quarantines_it_as_crashing_the_judge(
+    tmp_path: Path,
+) -> None:
+    s = make_station(tmp_path / "st")
+    inbox = s.inboxes[0].folder
+    (inbox / "crash.csv").write_bytes(cycle_file("CR-1", capacity_ah=1.5))
+    for _ in range(2):  # dies while writing the certificate, the first time and on recovery
+        proc = start_watch(s.root, {"FORMGATE_FAULT": "mid_render"})
+        try:
+            proc.wait(120)
+        finally:
+            stop_watch(proc)
+        assert proc.returncode == -9
+    again = start_watch(s.root)
+    try:
+        wait_until(lambda: any(s.quarantine.glob("*crash.csv")), what="the input quarantined")
+        (inbox / "after.csv").write_bytes(cycle_file("CR-2", seed=4))
+        wait_until(lambda: any(s.archive.rglob("*after.csv")), what="the next file judged")
+    finally:
+        assert stop_watch(again) == 0
+    reason = next(s.quarantine.glob("*crash.csv.reason.txt")).read_text()
+    assert "it crashed the judge: the station process ended 2 times while recording this file" in reason
+    with contextlib.suppress(StopIteration):
+        next(s.certificates.rglob("CR-1.pdf"))  # may exist: the render itself was complete
