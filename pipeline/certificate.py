@@ -74,7 +74,7 @@ def _signed(text: str) -> str:
 def significant(value: float, digits: int) -> str:
     """``value`` with ``digits`` significant digits in fixed notation (no exponent).
 
-    >>> significant(20.1349, 4), significant(0.98765, 4), significant(1234.5, 3)
+    >>> significant(20.1349, 4), significant(0.98765, 4), significant(1234.6, 3)
     ('20.13', '0.9877', '1235')
     """
     if value == 0:

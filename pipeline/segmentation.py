@@ -17,10 +17,8 @@ from __future__ import annotations
 import numpy as np
 
 from pipeline.model import (
-    CurrentBand,
     Cycle,
     FloatArray,
-    IntArray,
     Note,
     Segmentation,
     SourceRef,
@@ -28,6 +26,14 @@ from pipeline.model import (
     StepKind,
     StepMode,
     Trace,
+)
+from pipeline.rest_band import (
+    band_notes,
+    clean_kinds,
+    estimate_band,
+    program_step_kinds,
+    row_kinds,
+    runs,
 )
 
 # Voltage band below the step's highest (charge) or above its lowest (discharge)
@@ -38,35 +44,6 @@ CV_BAND_V = 0.010
 CV_CURRENT_FRACTION = 0.95
 # Shortest constant-voltage tail that counts as a CV step (s): shorter is CC ripple.
 MIN_CV_S = 30.0
-
-# Telling rest from current on a real channel (docs/metrics.md, "Rest and current").
-# Rows within NEAR_ZERO_C of zero are where the channel's offset and noise at rest are
-# estimated: below the lowest formation current, 0.02 C (common practice).
-NEAR_ZERO_C = 0.01
-MIN_NOISE_ROWS = 20  # fewer rows near zero give no estimate; the rule set's floor alone is used
-ESTIMATE_ROWS = 8192
-# The rest band is this many robust standard deviations wide on each side: for normal
-# noise a row strays beyond 5 sigma with probability 5.7e-7 (two-sided normal tail,
-# computed with scipy.stats.norm; the multiple itself is common practice).
-NOISE_MULTIPLE = 5.0
-# The band is never wider than this (in C): beyond it the channel is too noisy to tell a
-# CV tail's end from rest, and a note says so (common practice, a proposal).
-MAX_REST_BAND_C = 0.02
-# Hysteresis: a row joins a current step above the threshold and leaves it only below
-# this fraction of it, so rows that hover near the threshold do not chatter.
-RELEASE_FRACTION = 0.5
-# A charge or discharge step needs at least this many rows, this long (s) and this much
-# charge (fraction of nominal capacity): noise at rest and spikes at step changes are one
-# or two rows and hold far less (common practice, a proposal). A real 10 s DCIR pulse at
-# 1 C holds 0.28 % of capacity.
-MIN_STEP_ROWS = 2
-MIN_STEP_S = 5.0
-MIN_STEP_CHARGE_C = 0.0005
-# A rest shorter than this (s), or of a single row, between two rows of the same kind of
-# step is a drop-out inside that step, not a rest.
-MIN_REST_S = 5.0
-MOST = 0.5  # a program step is a rest when its median current lies inside the rest band
-
 
 def sample_weights(time_s: FloatArray) -> FloatArray:
     """Per-row time weights (s) such that sum(w * y) is the trapezoid integral of y dt.
@@ -85,99 +62,6 @@ def sample_weights(time_s: FloatArray) -> FloatArray:
     w[:-1] += 0.5 * dt
     w[1:] += 0.5 * dt
     return w
-
-
-def estimate_band(current_a: FloatArray, floor_a: float, one_c_a: float) -> CurrentBand:
-    """The file's rest band: zero offset and noise of the current at rest, and the threshold.
-
-    ``floor_a`` (A) is the rule set's rest current, ``one_c_a`` (A) the nominal capacity
-    per hour. Offset and noise come from the rows near zero: the median, and 1.4826 times
-    the median absolute deviation (a consistent estimate of the standard deviation for
-    normal noise: Iglewicz and Hoaglin 1993), refined once on the rows inside the first
-    band so that a slow CV tail does not widen it.
-
-    >>> band = estimate_band(np.array([0.003] * 30 + [5.0] * 30), 0.04, 20.0)
-    >>> band.offset_a, band.threshold_a
-    (0.003, 0.04)
-    """
-    cap_a = MAX_REST_BAND_C * one_c_a
-    # at most about 8,000 evenly spaced rows: the same estimate to well within its own
-    # scatter, without sorting hours of samples twice
-    every = current_a[:: max(1, -(-len(current_a) // ESTIMATE_ROWS))]
-    near = every[np.abs(every) <= NEAR_ZERO_C * one_c_a]
-    offset = noise = 0.0
-    used = 0
-    for _ in range(2):
-        if len(near) < MIN_NOISE_ROWS:
-            break
-        used = len(near)
-        offset = float(np.median(near))
-        noise = 1.4826 * float(np.median(np.abs(near - offset)))
-        width = min(max(floor_a, NOISE_MULTIPLE * noise), cap_a)
-        near = every[np.abs(every - offset) <= 2.0 * width]
-    threshold = min(max(floor_a, NOISE_MULTIPLE * noise), max(cap_a, floor_a))
-    return CurrentBand(offset, noise, threshold, floor_a, used)
-
-
-def row_kinds(current_a: FloatArray, band: CurrentBand) -> IntArray:
-    """+1 charge, -1 discharge, 0 rest for each row, with hysteresis around the band.
-
-    A row counts as current when |I - offset| exceeds the threshold; a row between the
-    release level (RELEASE_FRACTION of the threshold) and the threshold keeps the state
-    of the row before it.
-    """
-    moved = current_a - band.offset_a
-    size = np.abs(moved)
-    state = np.where(size > band.threshold_a, 1, np.where(size <= RELEASE_FRACTION * band.threshold_a, 0, -1))
-    # rows in between take the last decided state (forward fill of the decided rows)
-    decided = np.where(state >= 0, np.arange(len(state)), 0)
-    np.maximum.accumulate(decided, out=decided)
-    state = np.where(state >= 0, state, state[decided])
-    state[state < 0] = 0  # a leading undecided row is rest
-    return (np.sign(moved).astype(np.int64) * state).astype(np.int64)
-
-
-def _runs(labels: IntArray) -> list[tuple[int, int]]:
-    """(start, stop) of each maximal run of equal labels."""
-    if len(labels) == 0:
-        return []
-    edges = np.flatnonzero(np.diff(labels)) + 1
-    starts = np.concatenate(([0], edges))
-    stops = np.concatenate((edges, [len(labels)]))
-    return list(zip(starts.tolist(), stops.tolist(), strict=True))
-
-
-def _clean_kinds(kinds: IntArray, w: FloatArray, charge_as: FloatArray, one_c_a: float) -> IntArray:
-    """Row kinds without drop-outs inside steps and without steps made of noise or spikes.
-
-    ``charge_as`` is |I - offset| x w per row (A s). First a short rest between two rows
-    of one kind joins that kind; then a charge or discharge run too short, too brief or
-    holding too little charge to be a step becomes rest, unless it sits inside a step of
-    the other kind, which then takes it over.
-    """
-    out = kinds.copy()
-    runs = _runs(out)
-    for n, (start, stop) in enumerate(runs):
-        if out[start] != 0 or n == 0 or n == len(runs) - 1:
-            continue
-        before, after = out[runs[n - 1][0]], out[runs[n + 1][0]]
-        if before == after and (stop - start == 1 or float(w[start:stop].sum()) < MIN_REST_S):
-            out[start:stop] = before
-    min_as = MIN_STEP_CHARGE_C * one_c_a * 3600.0
-    runs = _runs(out)
-    for n, (start, stop) in enumerate(runs):
-        if out[start] == 0:
-            continue
-        if (
-            stop - start >= MIN_STEP_ROWS
-            and float(w[start:stop].sum()) >= MIN_STEP_S
-            and float(charge_as[start:stop].sum()) >= min_as
-        ):
-            continue
-        before = out[runs[n - 1][0]] if n > 0 else 0
-        after = out[runs[n + 1][0]] if n < len(runs) - 1 else 0
-        out[start:stop] = before if before == after else 0
-    return out
 
 
 def _split_cv(
@@ -253,61 +137,6 @@ def _make_step(
 
 
 _KIND = {1: StepKind.CHARGE, -1: StepKind.DISCHARGE, 0: StepKind.REST}
-_WORD = {1: "a charge", -1: "a discharge", 0: "a rest"}
-
-
-def _program_steps(
-    trace: Trace, band: CurrentBand, w: FloatArray, one_c_a: float
-) -> tuple[list[tuple[int, int, int]], list[Note]]:
-    """(start, stop, kind) of each program step of the file's step column, and notes.
-
-    A step's kind comes from its median current against the rest band, never from
-    single rows; a note names a step that really carries current against its kind
-    (at least MIN_STEP_ROWS rows beyond the band holding MIN_STEP_CHARGE_C), not noise.
-    """
-    assert trace.step is not None
-    moved = trace.current_a - band.offset_a
-    beyond = np.abs(moved) > band.threshold_a
-    min_as = MIN_STEP_CHARGE_C * one_c_a * 3600.0
-    blocks, notes = [], []
-    for a, b in _runs(trace.step):
-        median = float(np.median(moved[a : b : max(1, -(-(b - a) // ESTIMATE_ROWS))]))
-        kind = 0 if abs(median) <= band.threshold_a else (1 if median > 0 else -1)
-        against = beyond[a:b] & (np.sign(moved[a:b]) != kind)
-        rows = int(np.count_nonzero(against))
-        charge_as = float(np.abs(moved[a:b][against]) @ w[a:b][against]) if rows else 0.0
-        if rows >= MIN_STEP_ROWS and charge_as >= min_as:
-            what = "current" if kind == 0 else f"{'discharge' if kind > 0 else 'charge'} current"
-            first = a + int(np.argmax(against))
-            notes.append(
-                Note(
-                    "step_column_disagrees",
-                    f"program step {int(trace.step[a])} is {_WORD[kind]} by its median current "
-                    f"but carries {charge_as / 3600.0:.3g} Ah of {what} in {rows} of its "
-                    f"{b - a} rows (first on line {trace.line_of(first)})",
-                    SourceRef(trace.source, trace.line_of(first)),
-                )
-            )
-        blocks.append((a, b, kind))
-    # Neighbouring program steps of one kind (e.g. a CC step then a CV step) stay
-    # separate steps: the program's own boundaries are kept.
-    return blocks, notes
-
-
-def _band_notes(trace: Trace, band: CurrentBand, one_c_a: float) -> list[Note]:
-    if band.threshold_a >= MAX_REST_BAND_C * one_c_a and NOISE_MULTIPLE * band.noise_a > band.threshold_a:
-        return [
-            Note(
-                "current_noise_high",
-                f"the current at rest scatters by {band.noise_a * 1000:.3g} mA rms, so rest is "
-                f"told at {band.threshold_a * 1000:.3g} mA ({MAX_REST_BAND_C:g} C), less than "
-                f"{NOISE_MULTIPLE:g} times that scatter; check the channel's current range",
-                SourceRef(trace.source),
-            )
-        ]
-    return []
-
-
 def split_steps(trace: Trace, rest_current_a: float, one_c_a: float) -> Segmentation:
     """Segment ``trace`` into steps and cycles.
 
@@ -319,14 +148,14 @@ def split_steps(trace: Trace, rest_current_a: float, one_c_a: float) -> Segmenta
     """
     band = estimate_band(trace.current_a, rest_current_a, one_c_a)
     w = sample_weights(trace.time_s)
-    notes = _band_notes(trace, band, one_c_a)
+    notes = band_notes(trace, band, one_c_a)
     if trace.step is not None:
-        blocks, more = _program_steps(trace, band, w, one_c_a)
+        blocks, more = program_step_kinds(trace, band, w, one_c_a)
         notes += more
     else:
         charge_as = np.abs(trace.current_a - band.offset_a) * w
-        kinds = _clean_kinds(row_kinds(trace.current_a, band), w, charge_as, one_c_a)
-        blocks = [(a, b, int(kinds[a])) for a, b in _runs(kinds)]
+        kinds = clean_kinds(row_kinds(trace.current_a, band), w, charge_as, one_c_a)
+        blocks = [(a, b, int(kinds[a])) for a, b in runs(kinds)]
     steps: list[Step] = []
     for a, b, k in blocks:
         kind = _KIND[k]

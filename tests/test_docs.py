@@ -140,3 +140,30 @@ def test_every_metric_is_in_the_result_schema() -> None:
     assert metrics["required"] == names
     check_metric = schema["properties"]["checks"]["items"]["properties"]["metric"]
     assert check_metric["enum"] == names
+
+
+# The pure core's docstring examples are run, so that none of them goes stale.
+DOCTESTED = (
+    "pipeline.model",
+    "pipeline.rest_band",
+    "pipeline.segmentation",
+    "pipeline.program",
+    "pipeline.metrics",
+    "pipeline.evaluate",
+    "pipeline.plateaus",
+    "pipeline.certificate",
+    "pipeline.result",
+    "pipeline.synth",
+    "pipeline.ocp",
+    "pipeline.savgol",
+    "pipeline.validate",
+)
+
+
+@pytest.mark.parametrize("name", DOCTESTED)
+def test_docstring_examples_hold(name: str) -> None:
+    import doctest
+    import importlib
+
+    failures, _ = doctest.testmod(importlib.import_module(name), optionflags=doctest.ELLIPSIS)
+    assert failures == 0
