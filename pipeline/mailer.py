@@ -19,6 +19,7 @@ from pipeline import faults
 from pipeline.ledger import Ledger, MailRow
 from pipeline.mail import Letter, MailError, alert_letter, build_message
 from pipeline.smtp import SmtpSettings, next_attempt_delay_s, send
+from pipeline.troubles import is_environmental
 
 log = logging.getLogger("formgate.mail")
 
@@ -141,7 +142,10 @@ class MailThread(threading.Thread):
                     self.error = None
                 except Exception as exc:
                     self.error = f"{type(exc).__name__}: {exc}"
-                    log.exception("mail delivery failed; trying again shortly")
+                    if is_environmental(exc):  # a full disk, an unwritable ledger: it passes
+                        log.warning("mail delivery paused (%s); trying again shortly", self.error)
+                    else:
+                        log.exception("mail delivery failed; trying again shortly")
                 self.wake.wait(self.interval_s)
                 self.wake.clear()
 

@@ -614,7 +614,9 @@ class Station(RulesKeeper, Duties):
         elif row.state == "published":
             self.finish(row, "archived")
         elif row.state == "judged":
-            self.queue.append((row, self.judge_again(row)))
+            task = self.judge_again(row)
+            if task is not None:
+                self.queue.append((row, task))
         elif row.reason:
             self.quarantine(row, row.reason)
         elif work.exists():
@@ -637,7 +639,7 @@ class Station(RulesKeeper, Duties):
                     work,
                 )
 
-    def judge_again(self, row: InputRow) -> Task:
+    def judge_again(self, row: InputRow) -> Task | None:
         """A committed result whose files were not written: the same bytes, the recorded rules."""
         result_row = self.ledger.result_for_input(row.id)
         assert result_row is not None
@@ -646,7 +648,10 @@ class Station(RulesKeeper, Duties):
             rulebook = self.rulebook
         else:
             rulebook = RuleBook((load_rule_set(stored[1], stored[0]),))
-        assert rulebook is not None
+        if rulebook is None:  # its rules were never kept and none are valid now: next start
+            log.error("%s: its recorded rules are not in the ledger; it waits for valid rules",
+                      row.name)
+            return None
         return self.task_for(
             row, rulebook, result_row.analysed_at, "all" if result_row.pdf_path else "none"
         )

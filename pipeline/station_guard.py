@@ -21,7 +21,7 @@ from pipeline.inhand import InHand
 from pipeline.ledger import Ledger
 from pipeline.mail import Letter, alert_letter
 from pipeline.settings import InboxSettings, Settings
-from pipeline.troubles import Troubles, describe, is_environmental
+from pipeline.troubles import Troubles, describe, fault_key, is_environmental
 from pipeline.writing import write_atomic
 
 log = logging.getLogger("formgate.station")
@@ -76,10 +76,14 @@ class Guarded:
             self.pause(exc)
 
     def pause(self, exc: BaseException) -> None:
-        reason = describe(exc)
+        reason = describe(exc, ledger=self.settings.ledger)
         self.last_error = reason
         trouble = self.troubles.report(
-            SURROUNDINGS, reason, now=self.clock(), now_s=time.monotonic()
+            SURROUNDINGS,
+            reason,
+            now=self.clock(),
+            now_s=time.monotonic(),
+            kind=fault_key(exc, ledger=self.settings.ledger),
         )
         if trouble is None:
             return
@@ -119,7 +123,8 @@ class Guarded:
             if not is_environmental(exc):
                 raise
             wait_s = self.troubles.failed_again(now_s)
-            log.info("still paused (%s); next try in %g s", describe(exc), wait_s)
+            log.info("still paused (%s); next try in %g s", describe(exc, ledger=self.settings.ledger),
+                     wait_s)
             return
         ended = self.troubles.clear(SURROUNDINGS, now=self.clock())
         if ended is not None:

@@ -18,8 +18,10 @@ from __future__ import annotations
 
 import datetime
 import errno
+import os
 import sqlite3
 from dataclasses import dataclass
+from pathlib import Path
 
 FIRST_RETRY_S = 1.0
 # A trouble that begins again within this long of its end (a disk on the edge of full) is
@@ -37,8 +39,44 @@ def is_environmental(exc: BaseException) -> bool:
     return isinstance(exc, OSError | sqlite3.DatabaseError)
 
 
-def describe(exc: BaseException) -> str:
-    """One line naming the path and the error, e.g. 'results/LOT-A: No space left on device'."""
+def kind_of(exc: BaseException) -> str:
+    """What sort of fault: 'disk full', 'not writable', 'missing', 'ledger' or 'other'."""
+    if isinstance(exc, OSError):
+        if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+            return "disk full"
+        if exc.errno in (errno.EROFS, errno.EACCES, errno.EPERM):
+            return "not writable"
+        if exc.errno in (errno.ENOENT, errno.ENOTDIR):
+            return "missing"
+        return "other"
+    name = getattr(exc, "sqlite_errorname", "")
+    if name == "SQLITE_FULL":
+        return "disk full"
+    if name.startswith("SQLITE_READONLY") or name.startswith("SQLITE_CANTOPEN"):
+        return "not writable"
+    return "ledger" if isinstance(exc, sqlite3.Error) else "other"
+
+
+def fault_key(exc: BaseException, *, ledger: Path) -> str:
+    """The kind of fault and the file system it is on: a fault with another key is alerted anew.
+
+    (So a full disk and, after it, a full disk elsewhere give two alerts; the same disk
+    filling up again moments later gives one.)
+    """
+    where = Path(str(exc.filename)) if isinstance(exc, OSError) and exc.filename else ledger
+    for folder in (where, *where.parents):
+        try:
+            return f"{kind_of(exc)} on device {os.stat(folder).st_dev}"
+        except OSError:
+            continue
+    return kind_of(exc)
+
+
+def describe(exc: BaseException, *, ledger: object = None) -> str:
+    """One line naming the path and the error, e.g. 'results/LOT-A: No space left on device'.
+
+    ``ledger``: the ledger's path, named for an SQLite error.
+    """
     if isinstance(exc, OSError):
         what = exc.strerror or str(exc) or type(exc).__name__
         if exc.errno in (errno.ENOSPC, errno.EDQUOT):
@@ -46,7 +84,8 @@ def describe(exc: BaseException) -> str:
         where = exc.filename if exc.filename is not None else ""
         return f"{where}: {what}" if where else what
     if isinstance(exc, sqlite3.Error):
-        return f"the ledger cannot be written ({exc})"
+        where = f" {ledger}" if ledger is not None else ""
+        return f"the ledger{where} cannot be written ({exc})"
     return f"{type(exc).__name__}: {exc}"
 
 
@@ -58,6 +97,7 @@ class Trouble:
     reason: str
     since: datetime.datetime
     blocking: bool
+    kind: str = "other"  # troubles.kind_of: a fault of another kind is alerted anew
     repeated: bool = False  # the same trouble ended moments ago: not alerted again
 
     def shown(self) -> str:
@@ -71,7 +111,7 @@ class Troubles:
     def __init__(self, retry_max_s: float = 60.0) -> None:
         self.retry_max_s = retry_max_s
         self.active: dict[str, Trouble] = {}
-        self.ended: dict[str, datetime.datetime] = {}
+        self.ended: dict[tuple[str, str], datetime.datetime] = {}
         self._wait_s = FIRST_RETRY_S
         self._next_try_s = 0.0
 
@@ -80,14 +120,21 @@ class Troubles:
         return any(t.blocking for t in self.active.values())
 
     def report(
-        self, key: str, reason: str, *, now: datetime.datetime, now_s: float, blocking: bool = True
+        self,
+        key: str,
+        reason: str,
+        *,
+        now: datetime.datetime,
+        now_s: float,
+        blocking: bool = True,
+        kind: str = "other",
     ) -> Trouble | None:
         """Note a trouble; the new Trouble if it has just begun (to log and alert once), else None."""
         if key in self.active:
             return None
-        ended = self.ended.get(key)
+        ended = self.ended.get((key, kind))
         repeated = ended is not None and (now - ended).total_seconds() < REALERT_S
-        trouble = Trouble(key, reason, now, blocking, repeated)
+        trouble = Trouble(key, reason, now, blocking, kind, repeated)
         if blocking and not self.paused:
             self._wait_s = FIRST_RETRY_S
             self._next_try_s = now_s + self._wait_s
@@ -98,7 +145,7 @@ class Troubles:
         """The trouble ``key`` has ended; it is returned (to log), or None if there was none."""
         trouble = self.active.pop(key, None)
         if trouble is not None:
-            self.ended[key] = now
+            self.ended[(key, trouble.kind)] = now
         return trouble
 
     def due(self, now_s: float) -> bool:

@@ -59,8 +59,10 @@ def write_atomic(
         if before_rename is not None:
             before_rename()
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as exc:
         Path(tmp).unlink(missing_ok=True)
+        if isinstance(exc, OSError) and exc.filename is None:
+            exc.filename = str(path)  # a failed write names no file by itself
         raise
     if sync:
         _fsync_dir(path.parent)
