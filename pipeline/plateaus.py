@@ -21,6 +21,9 @@ from pipeline.savgol import savgol
 
 # Savitzky-Golay polynomial order: 2-3 keeps peak shapes (common practice).
 SG_ORDER = 3
+# A dQ/dV peak's prominence is taken within this many mV on either side: two-phase peaks
+# are a few tens of mV wide (common practice), a sloped curve's hump is hundreds.
+ICA_PEAK_WINDOW_MV = 60.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -107,17 +110,48 @@ def find_plateaus(
     return PlateauAnalysis(tuple(plateaus), Curve(grid, v), ica, peaks)
 
 
+def _capacity_below(edges_v: FloatArray, v: FloatArray, dq_ah: float) -> FloatArray:
+    """Capacity of the curve below each voltage in ``edges_v`` (Ah), spread exactly by voltage.
+
+    Each grid cell of the curve carries ``dq_ah`` spread evenly over the voltages it
+    spans (a cell whose two ends share a voltage puts it all there). Counting whole
+    cells into voltage bins instead would give each bin four or five cells by turns on a
+    sloped curve: a regular ripple of about 20 % that is not in the cell.
+    """
+    low = np.minimum(v[:-1], v[1:])
+    high = np.maximum(v[:-1], v[1:])
+    span = high - low
+    ramp = span > 1e-12
+    slope = dq_ah / span[ramp]
+    # the capacity below e is sum over ramps of slope * (clip(e, low, high) - low): a
+    # piecewise-linear function with slope +s from each low and -s from each high
+    at = np.concatenate((low[ramp], high[ramp]))
+    weight = np.concatenate((slope, -slope))
+    order = np.argsort(at, kind="stable")
+    at, weight = at[order], weight[order]
+    cum_w = np.concatenate(([0.0], np.cumsum(weight)))
+    cum_wp = np.concatenate(([0.0], np.cumsum(weight * at)))
+    k = np.searchsorted(at, edges_v, side="right")
+    below = edges_v * cum_w[k] - cum_wp[k]
+    steps = np.sort(low[~ramp])
+    below += dq_ah * np.searchsorted(steps, edges_v, side="right")
+    return below
+
+
 def incremental_capacity(
     smooth_v: FloatArray, total_ah: float, settings: PlateauSettings
 ) -> tuple[Curve, tuple[float, ...]]:
     """dQ/dV (Ah/V) by voltage bins of ``ica_bin_mv`` from a smoothed V on a uniform q grid.
 
     Binning capacity by voltage, never dividing raw differences, is what keeps a
-    flat plateau a finite peak instead of a spike (common practice).
-    Peaks are those with a prominence of at least 5 % of the highest bin, of one
-    total capacity per volt (a peak must hold about 1 % of the capacity in 10 mV,
-    so sensor noise on a sloped curve makes none), and of the rule set's absolute
-    minimum, whichever is largest; reported high voltage first.
+    flat plateau a finite peak instead of a spike (common practice); each grid cell's
+    capacity is spread over the voltages it spans, so a sloped curve gives a smooth
+    dQ/dV, not a ripple. A peak must stand above its own surroundings, within
+    ICA_PEAK_WINDOW_MV on either side, by at least 5 % of the highest bin, one total
+    capacity per volt (about 1 % of the capacity in 10 mV, so noise on a sloped curve
+    makes none) and the rule set's absolute minimum, whichever is largest: the highest
+    point of a broad hump (a sloped curve, or the bend into the cut-off) is no peak.
+    Peaks are reported high voltage first.
     """
     n = len(smooth_v)
     dq_ah = total_ah / (n - 1)
@@ -125,15 +159,16 @@ def incremental_capacity(
     lo = np.floor(smooth_v.min() / bin_v) * bin_v
     hi = np.ceil(smooth_v.max() / bin_v) * bin_v
     nbins = max(int(round((hi - lo) / bin_v)), 1)
-    # grid cells between q points, each carrying dq at the voltage of its midpoint
-    mid_v = 0.5 * (smooth_v[1:] + smooth_v[:-1])
-    idx = np.clip(((mid_v - lo) / bin_v).astype(np.int64), 0, nbins - 1)
-    dqdv = np.bincount(idx, minlength=nbins) * dq_ah / bin_v
+    edges = lo + np.arange(nbins + 1) * bin_v
+    dqdv = np.diff(_capacity_below(edges, smooth_v, dq_ah)) / bin_v
     centres = lo + (np.arange(nbins) + 0.5) * bin_v
     if nbins >= 5:
         dqdv = savgol(dqdv, 5, 2).clip(min=0.0)
     top = float(dqdv.max()) if nbins else 0.0
     prominence = max(settings.ica_min_prominence_ah_per_v, 0.05 * top, total_ah * 1.0)
-    found, _ = find_peaks(np.concatenate(([0.0], dqdv, [0.0])), prominence=prominence)
+    window = 2 * max(1, int(round(ICA_PEAK_WINDOW_MV / settings.ica_bin_mv))) + 1
+    found, _ = find_peaks(
+        np.concatenate(([0.0], dqdv, [0.0])), prominence=prominence, wlen=window
+    )
     peaks = tuple(sorted((round(float(centres[i - 1]), 4) for i in found), reverse=True))
     return Curve(centres, np.asarray(dqdv, dtype=np.float64)), peaks

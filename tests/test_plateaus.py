@@ -232,3 +232,32 @@ def test_resample_uniform_averages_samples_in_each_cell() -> None:
     )
     assert grid.tolist() == [0.0, 50.0, 100.0]
     assert v.tolist() == [2.0, 5.0, 7.0]
+
+
+# ---- dQ/dV on a curve with no plateau ------------------------------------------------------
+
+
+def _sloped_discharge(noise_v: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """A straight 3.4 -> 2.62 V discharge that bends steeply into a 2.5 V cut-off (the last 1 %)."""
+    rng = np.random.default_rng(seed)
+    q = np.linspace(0.0, 100.0, 20001)
+    v = np.where(q < 99.0, 3.4 - 0.78 * q / 99.0, 2.62 - 0.12 * (q - 99.0))
+    return q, v + (rng.normal(0.0, noise_v, len(q)) if noise_v else 0.0)
+
+
+@pytest.mark.parametrize(("noise_v", "seed"), [(0.0, 0), (0.001, 1), (0.002, 2)])
+def test_a_curve_without_plateau_has_a_smooth_dqdv_and_no_peak(noise_v: float, seed: int) -> None:
+    q, v = _sloped_discharge(noise_v, seed)
+    analysis = find_plateaus(q, v, 20.0, PlateauSettings(flatness_mv_per_pct=5.0))
+    assert analysis.plateaus == ()
+    # no peak, neither a ripple of the voltage bins nor the bend into the cut-off
+    assert analysis.ica_peaks_v == ()
+    x, y = analysis.ica.x, analysis.ica.y
+    middle = (x > 2.8) & (x < 3.3)
+    # dQ/dV of a straight line is its constant inverse slope: 20 Ah over 0.78 V
+    assert np.median(y[middle]) == pytest.approx(20.0 * 0.99 / 0.78, rel=0.02)
+    # counting whole grid cells into 5 mV bins gave a regular ripple of about 20 %; what is
+    # left is the sensor noise that smoothing lets through
+    assert np.ptp(y[middle]) / np.median(y[middle]) < (0.01 if noise_v == 0 else 0.1)
+    # all of the capacity is there, bin by bin
+    assert float(np.sum(y) * 0.005) == pytest.approx(20.0, rel=1e-3)
