@@ -56,13 +56,13 @@ def _analysis_time(
 
 
 def _reason(outcome: FileOutcome) -> str:
-    from pipeline.evaluate import summarise
+    from pipeline.evaluate import decision_line
 
     if outcome.error is not None:
         return str(outcome.error).splitlines()[0]
     assert outcome.result is not None
     verdict = outcome.result.verdict
-    text = summarise(verdict)
+    text = decision_line(verdict, outcome.result.notes)
     if verdict.hazards:
         text += " [hazard: " + ", ".join(h.value for h in verdict.hazards) + "]"
     return text

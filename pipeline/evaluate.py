@@ -167,6 +167,70 @@ def evaluate(
     return Verdict(kind, checks, hazards, reasons)
 
 
+def deciding(verdict: Verdict) -> tuple[CheckResult, ...]:
+    """The checks that decided the verdict, in rule order.
+
+    A fail: its reject checks out of window. A hold: its review checks out of window and
+    its checks not made that hold the cell. A pass: none.
+    """
+    if verdict.kind is VerdictKind.FAIL:
+        return tuple(
+            c for c in verdict.checks
+            if c.outcome is Outcome.OUT_OF_WINDOW and c.severity is Severity.REJECT
+        )
+    if verdict.kind is VerdictKind.HOLD:
+        return tuple(
+            c for c in verdict.checks if c.outcome in (Outcome.OUT_OF_WINDOW, Outcome.NOT_JUDGED)
+        )
+    return ()
+
+
+def phrase(check: CheckResult) -> str:
+    """A check's finding in a few words, with the measured value and the bound it crossed.
+
+    >>> phrase(CheckResult("c", "grading_capacity_Ah", 18.21, Window(19.0, 22.0),
+    ...        Outcome.OUT_OF_WINDOW, Severity.REJECT, None, ""))
+    'grading_capacity_Ah 18.21 Ah < 19 Ah (reject)'
+    """
+    unit = BY_NAME[check.metric].unit if check.metric in BY_NAME else ""
+    suffix = f" {unit}" if unit else ""
+    if check.outcome is Outcome.OUT_OF_WINDOW and check.value is not None:
+        low, high = check.window.low, check.window.high
+        if low is not None and check.value < low:
+            bound, sign = low, "<"
+        else:
+            assert high is not None
+            bound, sign = high, ">"
+        value = format_number(check.value)
+        return f"{check.metric} {value}{suffix} {sign} {format_number(bound)}{suffix} ({check.severity.value})"
+    if check.outcome in (Outcome.NOT_JUDGED, Outcome.SKIPPED):
+        what = "not measured" if check.value is None else "not judged"
+        return f"{check.metric} {what}"
+    return f"{check.metric} in window"
+
+
+def decision_line(verdict: Verdict, notes: Iterable[Note] = ()) -> str:
+    """The deciding findings of a fail or hold in one short line (mail subject, log, status).
+
+    ``notes`` are the cell's notes: a record cut short or not the program's leads.
+    Checks not made because of such a note are not repeated.
+
+    >>> decision_line(Verdict(VerdictKind.PASS, (), ()))
+    'all checks in window'
+    """
+    program = list(dict.fromkeys(n.text for n in notes if n.code in HOLDING_CODES))
+    blocked = {m for n in notes if n.code in HOLDING_CODES for m in n.blocks}
+    findings = [
+        phrase(c)
+        for c in deciding(verdict)
+        if not (c.outcome is Outcome.NOT_JUDGED and c.metric in blocked)
+    ]
+    parts = program + list(dict.fromkeys(findings))
+    if parts:
+        return "; ".join(parts)
+    return summarise(verdict)
+
+
 def summarise(verdict: Verdict) -> str:
     """The verdict's reasons in one line, naming every check that was left out.
 

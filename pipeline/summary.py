@@ -9,7 +9,8 @@ from __future__ import annotations
 from collections import Counter
 from collections.abc import Sequence
 
-from pipeline.model import CellResult
+from pipeline.evaluate import decision_line
+from pipeline.model import CellResult, VerdictKind
 
 COLUMNS = (
     ("cell", 14, None),
@@ -51,14 +52,16 @@ def summary_table(results: Sequence[CellResult], errors: Sequence[tuple[str, str
             cells.append(f"{_fmt(metric, r.metrics.values.get(metric)):>{width}}")
         lines.append("  ".join(cells))
     lines.append("")
-    for r in ordered:
-        if r.verdict.reasons:
-            hazards = ", ".join(h.value for h in r.verdict.hazards)
-            extra = f" [hazard: {hazards}]" if hazards else ""
-            lines.append(
-                f"{r.cell_id} ({r.verdict.kind.value}): "
-                f"{'; '.join(x.rstrip('.') for x in r.verdict.reasons)}{extra}"
-            )
+    # fails first, then holds: what a quality engineer acts on
+    decided = [r for r in ordered if r.verdict.kind is VerdictKind.FAIL] + [
+        r for r in ordered if r.verdict.kind is VerdictKind.HOLD
+    ]
+    for r in decided:
+        hazards = ", ".join(h.value for h in r.verdict.hazards)
+        extra = f" [hazard: {hazards}]" if hazards else ""
+        lines.append(
+            f"{r.cell_id} ({r.verdict.kind.value}): {decision_line(r.verdict, r.notes)}{extra}"
+        )
     for name, reason in errors:
         lines.append(f"{name} (error): {reason}")
     counts = Counter(r.verdict.kind.value for r in results)

@@ -25,15 +25,9 @@ GOOD, HIGH_DCIR, HOT = DEMO_CELLS[0], DEMO_CELLS[10], DEMO_CELLS[13]
 assert (GOOD.defect, HIGH_DCIR.defect, HOT.defect) == ("", "high_dcir", "over_temperature")
 
 GOOD_LINE = "L01-001  pass  all checks in window"
-HIGH_DCIR_LINE = (
-    "L01-011  fail  DC internal resistance too high: check welds, tabs and contacts "
-    "(dcir_mOhm = 11.98 mOhm; window at most 8 mOhm)"
-)
-HOT_LINE = (
-    "L01-014  fail  Cell warmer than 45 °C during formation (max_temperature_C = 62.73 °C; "
-    "window at most 45 °C); Cell hotter than 60 °C during formation "
-    "(max_temperature_C = 62.73 °C; window at most 60 °C) [hazard: over_temperature]"
-)
+# the one-line output names the deciding check with its value and the bound it crossed
+HIGH_DCIR_LINE = "L01-011  fail  dcir_mOhm 11.98 mOhm > 8 mOhm (reject)"
+HOT_LINE = "L01-014  fail  max_temperature_C 62.73 °C > 60 °C (reject) [hazard: over_temperature]"
 
 
 @functools.cache

@@ -12,7 +12,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipeline import hazards
-from pipeline.evaluate import evaluate, format_number, format_window, summarise
+from pipeline.evaluate import decision_line, evaluate, format_number, format_window, summarise
+from pipeline.program import INCOMPLETE
 from pipeline.metricdefs import METRIC_NAMES
 from pipeline.model import (
     CellMetrics,
@@ -308,3 +309,27 @@ def test_case_files_name_existing_rule_files() -> None:
     """Judge cases name their rule file relative to the repository root."""
     for name in CASE_NAMES:
         assert (REPO / _load_case(name)["rules"]).is_file(), name
+
+
+def test_the_decision_line_names_the_deciding_checks_with_value_and_bound() -> None:
+    rules = (
+        Rule("capacity", "grading_capacity_Ah", Window(19.0, 22.0), Severity.REJECT),
+        Rule("dcir", "dcir_mOhm", Window(None, 8.0), Severity.REJECT, Hazard.INTERNAL_SHORT),
+        Rule("drift", "rest_voltage_drift_mV_per_h", Window(-0.5, None), Severity.REVIEW),
+    )
+    rs = _rule_set(*rules)
+    failed = evaluate(rs, CT, _metrics({"grading_capacity_Ah": 18.21, "dcir_mOhm": 9.5,
+                                        "rest_voltage_drift_mV_per_h": -1.0}))
+    # only the reject checks decide a fail; the review finding is on the certificate
+    assert decision_line(failed) == (
+        "grading_capacity_Ah 18.21 Ah < 19 Ah (reject); dcir_mOhm 9.5 mOhm > 8 mOhm (reject)"
+    )
+    held = evaluate(rs, CT, _metrics({"grading_capacity_Ah": 20.0, "rest_voltage_drift_mV_per_h": -1.0}))
+    assert decision_line(held) == (
+        "dcir_mOhm not measured; rest_voltage_drift_mV_per_h -1 mV/h < -0.5 mV/h (review)"
+    )
+    cut = Note(INCOMPLETE, "program incomplete: record ends in cycle 2's charge",
+               blocks=("grading_capacity_Ah", "dcir_mOhm", "rest_voltage_drift_mV_per_h"))
+    held = evaluate(rs, CT, _metrics({}), (cut,))
+    assert held.kind is VerdictKind.HOLD
+    assert decision_line(held, (cut,)) == "program incomplete: record ends in cycle 2's charge"
