@@ -201,8 +201,8 @@ def phrase(check: CheckResult) -> str:
         else:
             assert high is not None
             bound, sign = high, ">"
-        value = format_number(check.value)
-        return f"{check.metric} {value}{suffix} {sign} {format_number(bound)}{suffix} ({check.severity.value})"
+        value, limit = format_number(check.value), format_number(bound)
+        return f"{check.metric} {value}{suffix} {sign} {limit}{suffix} ({check.severity.value})"
     if check.outcome in (Outcome.NOT_JUDGED, Outcome.SKIPPED):
         what = "not measured" if check.value is None else "not judged"
         return f"{check.metric} {what}"

@@ -13,7 +13,6 @@ from hypothesis import strategies as st
 
 from pipeline import hazards
 from pipeline.evaluate import decision_line, evaluate, format_number, format_window, summarise
-from pipeline.program import INCOMPLETE
 from pipeline.metricdefs import METRIC_NAMES
 from pipeline.model import (
     CellMetrics,
@@ -28,6 +27,7 @@ from pipeline.model import (
     VerdictKind,
     Window,
 )
+from pipeline.program import INCOMPLETE
 from pipeline.rulebook import load_rule_set
 from tests.conftest import DATA_DIR, REPO
 
