@@ -18,6 +18,8 @@ import jinja2
 from markupsafe import Markup
 
 from pipeline import plots, shipped
+from pipeline.evaluate import deciding
+from pipeline.program import HOLDING_CODES
 from pipeline.metricdefs import BY_NAME
 from pipeline.model import (
     CellResult,
@@ -29,6 +31,7 @@ from pipeline.model import (
     Note,
     Outcome,
     Plateau,
+    Severity,
     VerdictKind,
     Window,
 )
@@ -160,8 +163,9 @@ def format_time(moment: datetime.datetime) -> str:
     return moment.astimezone(datetime.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
-def _check_row(check: CheckResult) -> dict[str, str]:
+def _check_row(check: CheckResult, decided: bool) -> dict[str, str]:
     definition = BY_NAME.get(check.metric)
+    out = check.outcome is Outcome.OUT_OF_WINDOW
     return {
         "id": check.rule_id,
         "metric": check.metric,
@@ -169,10 +173,53 @@ def _check_row(check: CheckResult) -> dict[str, str]:
         "value": format_value(check.metric, check.value),
         "window": format_window(check.metric, check.window),
         "severity": check.severity.value,
-        "outcome": OUTCOME_WORDS[check.outcome],
-        "outcome_class": check.outcome.value.replace("_", "-"),
-        "hazard": HAZARD_WORDS[check.hazard] if check.hazard else "",
+        "outcome": OUTCOME_WORDS[check.outcome] + (" (deciding)" if decided else ""),
+        "outcome_class": check.outcome.value.replace("_", "-") + (" deciding" if decided else ""),
+        # a hazard word on a row in window would alarm a reader for nothing
+        "hazard": HAZARD_WORDS[check.hazard] if check.hazard and out else "",
     }
+
+
+def _decision(result: CellResult) -> list[dict[str, object]]:
+    """The verdict box's findings, deciding ones first: what a reader must act on, on page 1."""
+    verdict = result.verdict
+    decided = deciding(verdict)
+    program = list(dict.fromkeys(
+        f"{n.text[0].upper()}{n.text[1:]}." for n in (*result.notes, *result.metrics.notes)
+        if n.code in HOLDING_CODES
+    ))
+    out_review = [
+        c for c in verdict.checks
+        if c.outcome is Outcome.OUT_OF_WINDOW and c.severity is Severity.REVIEW and c not in decided
+    ]
+    not_made = [c for c in verdict.checks if c.outcome is Outcome.NOT_JUDGED and c not in decided]
+    quiet = {m for n in (*result.notes, *result.metrics.notes) if n.code in HOLDING_CODES for m in n.blocks}
+
+    def messages(checks: list[CheckResult] | tuple[CheckResult, ...]) -> list[str]:
+        # two checks on one unmeasured metric say the same thing once
+        return list(dict.fromkeys(c.message for c in checks))
+
+    if verdict.kind is VerdictKind.FAIL:
+        deciding_title = "Deciding: reject checks out of their window"
+    else:
+        deciding_title = "Deciding: findings that hold the cell for review"
+    sections: list[dict[str, object]] = []
+    if program:
+        sections.append({"title": "The record", "kind": "deciding", "items": program})
+    shown = [c for c in decided if not (c.outcome is Outcome.NOT_JUDGED and c.metric in quiet)]
+    if shown:
+        sections.append({"title": deciding_title, "kind": "deciding", "items": messages(shown)})
+    if out_review:
+        sections.append({"title": "Also out of window (review)", "kind": "review", "items": messages(out_review)})
+    if not_made:
+        sections.append({"title": "Checks not made", "kind": "not-made", "items": messages(not_made)})
+    if verdict.left_out:
+        sections.append({
+            "title": "Checks not made, which the rule set allows to be left out",
+            "kind": "left-out",
+            "items": messages(verdict.left_out),
+        })
+    return sections
 
 
 def _cycle_row(c: CycleMetrics) -> dict[str, str]:
@@ -279,6 +326,7 @@ def build_context(result: CellResult) -> dict[str, object]:
     hazards = importlib.import_module("pipeline.hazards")
     kind = result.verdict.kind
     word, headline = VERDICT_WORDS[kind]
+    decided = deciding(result.verdict) if kind is VerdictKind.FAIL else ()
     if kind is VerdictKind.PASS and result.verdict.left_out:
         headline = (
             "Every check made is within its acceptance window; the checks below were not "
@@ -305,12 +353,11 @@ def build_context(result: CellResult) -> dict[str, object]:
             "kind": kind.value,
             "word": word,
             "headline": headline,
-            "reasons": list(result.verdict.reasons),
-            "not_made": [c.message for c in result.verdict.left_out],
+            "sections": _decision(result),
         },
         "identity": _identity(result),
         "other_metadata": [(k, v) for k, v in result.metadata.items() if k not in IDENTITY_KEYS],
-        "checks": [_check_row(c) for c in result.verdict.checks],
+        "checks": [_check_row(c, c in decided) for c in result.verdict.checks],
         "cautions": cautions,
         "handling": hazards.HANDLING if cautions else "",
         "general_caution": hazards.GENERAL_CAUTION if failed else "",

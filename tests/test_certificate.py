@@ -21,7 +21,7 @@ from pipeline.certificate import (
     render_html,
     significant,
 )
-from pipeline.model import Hazard, Note, SourceRef, Window
+from pipeline.model import Hazard, Note, Outcome, Severity, SourceRef, Window
 from tests.golden import cases, regenerate
 
 HOSTILE = "<img src=file:///etc/passwd>"
@@ -134,8 +134,20 @@ def test_every_check_becomes_a_row_with_outcome_in_words(hazards: types.ModuleTy
     assert by_id["mean-voltage"]["outcome"] == "OUT OF WINDOW"
     assert by_id["grading-capacity"]["outcome"] == "in window"
     assert by_id["grading-capacity"]["severity"] == "reject"
-    assert by_id["grading-capacity"]["hazard"] == "abnormal capacity"
+    # a hazard shows only on a row out of window: on a row in window it alarms for nothing
+    assert by_id["grading-capacity"]["hazard"] == ""
     assert by_id["dcir"]["hazard"] == ""
+
+
+def test_a_failed_cells_deciding_rows_are_marked_and_carry_their_hazard(hazards: types.ModuleType) -> None:
+    result = cases.fail_result()
+    rows = {r["id"]: r for r in build_context(result)["checks"]}
+    for check in result.verdict.checks:
+        row = rows[check.rule_id]
+        decided = check.outcome is Outcome.OUT_OF_WINDOW and check.severity is Severity.REJECT
+        assert row["outcome"].endswith("(deciding)") == decided, check.rule_id
+        if check.hazard is not None and check.outcome is Outcome.OUT_OF_WINDOW:
+            assert row["hazard"] != "", check.rule_id
 
 
 def test_failed_cell_gets_each_hazard_caution_and_the_general_caution(
@@ -152,7 +164,13 @@ def test_failed_cell_gets_each_hazard_caution_and_the_general_caution(
     ]
     assert context["general_caution"] == hazards.GENERAL_CAUTION
     assert context["verdict"]["word"] == "FAIL"
-    assert context["verdict"]["reasons"] == list(result.verdict.reasons)
+    # page 1 leads with the deciding reject checks, then what else was found
+    sections = context["verdict"]["sections"]
+    assert sections[0]["title"] == "Deciding: reject checks out of their window"
+    assert sections[0]["items"] == list(dict.fromkeys(
+        c.message for c in result.verdict.checks
+        if c.outcome is Outcome.OUT_OF_WINDOW and c.severity is Severity.REJECT
+    ))
 
 
 @pytest.mark.parametrize("make", [cases.pass_result, cases.hold_result])
