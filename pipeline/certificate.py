@@ -19,7 +19,6 @@ from markupsafe import Markup
 
 from pipeline import plots, shipped
 from pipeline.evaluate import deciding
-from pipeline.program import HOLDING_CODES
 from pipeline.metricdefs import BY_NAME
 from pipeline.model import (
     CellResult,
@@ -35,6 +34,7 @@ from pipeline.model import (
     VerdictKind,
     Window,
 )
+from pipeline.program import HOLDING_CODES
 
 TEMPLATES_DIR = shipped.TEMPLATES_DIR
 TEMPLATE_NAME = "certificate.html.j2"
@@ -63,6 +63,7 @@ HAZARD_WORDS = {
     Hazard.OVER_TEMPERATURE: "over-temperature",
     Hazard.OVER_VOLTAGE: "over-voltage",
     Hazard.LITHIUM_PLATING: "lithium plating",
+    Hazard.SODIUM_PLATING: "sodium plating",
     Hazard.ABNORMAL_CAPACITY: "abnormal capacity",
 }
 
@@ -210,7 +211,8 @@ def _decision(result: CellResult) -> list[dict[str, object]]:
     if shown:
         sections.append({"title": deciding_title, "kind": "deciding", "items": messages(shown)})
     if out_review:
-        sections.append({"title": "Also out of window (review)", "kind": "review", "items": messages(out_review)})
+        review = messages(out_review)
+        sections.append({"title": "Also out of window (review)", "kind": "review", "items": review})
     if not_made:
         sections.append({"title": "Checks not made", "kind": "not-made", "items": messages(not_made)})
     if verdict.left_out:
