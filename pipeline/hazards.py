@@ -55,13 +55,14 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
             "Have the channel and its contacts checked before they are used again.",
         ),
         # Overcharge destabilises the cathode, oxidises the electrolyte, plates lithium and makes
-        # gas, with a risk of thermal runaway -- from memory, high certainty.
+        # gas, with a risk of thermal runaway -- from memory, high certainty; in a sodium-ion
+        # cell it plates sodium on the hard carbon -- from memory, medium.
         Hazard.OVER_VOLTAGE: Caution(
             "Charged above its voltage limit",
             "The cell was charged above the voltage its rule set allows. Overcharge can make the "
-            "cathode unstable, break down the electrolyte, plate lithium and produce gas, and it "
-            "raises the risk of thermal runaway. Have the channel's voltage limit and calibration "
-            "checked.",
+            "cathode unstable, break down the electrolyte, plate lithium (sodium, in a sodium-ion "
+            "cell) and produce gas, and it raises the risk of thermal runaway. Have the channel's "
+            "voltage limit and calibration checked.",
         ),
         # Plating comes from charging too fast or too cold, low N/P ratio or misaligned
         # electrodes; plated lithium can grow into dendrites and shorts -- O'Kane et al.,
@@ -71,6 +72,17 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
             "The data suggest that metallic lithium may have plated on the anode, for example "
             "through a low coulombic efficiency. Plated lithium is reactive and can grow into "
             "dendrites that short the cell later.",
+        ),
+        # The sodium counterpart of lithium plating: hard carbon's low plateau lies within
+        # 0.1 V of sodium metal (Stevens & Dahn, J. Electrochem. Soc. 147 (2000) 1271), so
+        # charging too fast, too cold or too far can plate sodium on it, which lowers the
+        # coulombic efficiency and can grow into dendrites -- from memory, medium. Sodium metal
+        # reacts with water and moist air, giving off hydrogen -- from memory, high.
+        Hazard.SODIUM_PLATING: Caution(
+            "Possible sodium plating",
+            "The data suggest that metallic sodium may have plated on the hard-carbon anode, for "
+            "example through a low coulombic efficiency. Plated sodium is highly reactive, also "
+            "with water and moist air, and can grow into dendrites that short the cell later.",
         ),
         # A capacity far from nominal has no single cause (wrong cell type, assembly defect,
         # lithium loss, short, measurement fault) -- common practice.
@@ -86,7 +98,11 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
 # Defers to the site (general information only; do not
 # puncture, crush or open; eye protection and gloves if leaking; fire response per the site
 # plan; special transport rules for damaged or defective cells) -- common practice, and
-# from memory, medium, for the transport rules.
+# from memory, medium, for the transport rules. Sodium-ion batteries have UN numbers of their
+# own, UN 3551 and UN 3552, in the UN Recommendations on the Transport of Dangerous Goods,
+# Model Regulations, since the 22nd revised edition (2021) -- from memory, medium. The text
+# claims no more about them than that, and sends the reader to qualified personnel; it is
+# printed for every chemistry, so a certificate never depends on which family a cell is in.
 GENERAL_CAUTION = (
     "Failed cells can be dangerous. This caution is general information only. Handle, store, "
     "transport and dispose of this cell as your site's procedures, local codes and regulations "
@@ -94,7 +110,10 @@ GENERAL_CAUTION = (
     "happens to it. Do not puncture, crush or open the cell. If it is hot, swelling, leaking, "
     "smoking or smells of solvent, keep clear and follow the site's emergency plan; wear eye "
     "protection and chemical-resistant gloves near a leaking cell and keep the area "
-    "ventilated. Damaged or defective lithium-ion cells fall under special transport rules."
+    "ventilated. Damaged or defective lithium-ion cells fall under special transport rules. "
+    "Sodium-ion cells are classed under UN numbers of their own (UN 3551 and UN 3552), so the "
+    "rules for lithium cells do not simply carry over: ask qualified personnel which transport "
+    "and storage rules apply to a damaged or defective sodium-ion cell."
 )
 
 # The tool reads recorded data; it does not inspect the cell (common practice).

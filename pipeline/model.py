@@ -351,6 +351,7 @@ class Hazard(enum.Enum):
     OVER_TEMPERATURE = "over_temperature"
     OVER_VOLTAGE = "over_voltage"
     LITHIUM_PLATING = "lithium_plating"
+    SODIUM_PLATING = "sodium_plating"
     ABNORMAL_CAPACITY = "abnormal_capacity"
 
 

@@ -216,6 +216,7 @@ def schema() -> dict[str, Any]:
                         "over_temperature",
                         "over_voltage",
                         "lithium_plating",
+                        "sodium_plating",
                         "abnormal_capacity",
                     ]
                 },
