@@ -11,7 +11,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline import plots
+from pipeline import plots, svgplot
 from pipeline.model import Curve, Plateau
 from tests.golden import cases
 
@@ -37,7 +37,7 @@ def axis_map(root: ET.Element, axis: str) -> tuple[float, float]:
     mm = np.array([p for p, _ in pairs])
     values = np.array([float(text.replace("\N{MINUS SIGN}", "-")) for _, text in pairs])
     if axis == "y":
-        mm = mm - plots._FONT_MM * 0.35  # labels sit a little below their tick
+        mm = mm - svgplot.FONT_MM * 0.35  # labels sit a little below their tick
     slope, offset = np.polyfit(mm, values, 1)
     return float(slope), float(offset)
 
@@ -184,7 +184,7 @@ def test_discharge_plot_has_size_labels_and_units() -> None:
     root = parse(svg)
     assert root.get("width") == "86.00mm" and root.get("height") == "54.00mm"
     assert root.get("viewBox") == "0 0 86.00 54.00"
-    assert root.get("font-family") == plots.FONT_FAMILY
+    assert root.get("font-family") == svgplot.FONT_FAMILY
     texts = [t.text for t in root.iter(f"{SVG}text")]
     assert "Discharged capacity (%)" in texts and "Voltage (V)" in texts
 
