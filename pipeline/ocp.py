@@ -1,13 +1,13 @@
 """Published open-circuit-potential fits and the regular-solution insertion model, in volts.
 
-Half-cell potentials are vs Li/Li+; full-cell curves map a state of charge onto
-the two electrodes' stoichiometries. Everything is a pure numpy function
-evaluated in float64. Turning these curves into a cycler record is synth.py's
-job; judging a record never uses them.
+Half-cell potentials are vs Li/Li+ (sodium-ion electrodes: vs Na/Na+); full-cell
+curves map a state of charge onto the two electrodes' stoichiometries. Everything is
+a pure numpy function evaluated in float64. Turning these curves into a cycler
+record is synth.py's job; judging a record never uses them.
 
-Variables: ``x`` is the anode's lithium fraction (graphite: 0 empty to 1 LiC6;
-LTO: 0 = Li4Ti5O12 to 1 = Li7Ti5O12), ``y`` the cathode's lithium fraction
-(1 = fully lithiated, i.e. discharged).
+Variables: ``x`` is the anode's lithium (or sodium) fraction (graphite: 0 empty to 1
+LiC6; LTO: 0 = Li4Ti5O12 to 1 = Li7Ti5O12; hard carbon: 0 empty to 1 full), ``y`` the
+cathode's lithium (or sodium) fraction (1 = fully lithiated or sodiated, i.e. discharged).
 """
 
 from __future__ import annotations
@@ -16,7 +16,7 @@ import math
 
 import numpy as np
 import numpy.typing as npt
-from scipy import constants, optimize
+from scipy import constants, interpolate, optimize
 
 from pipeline.model import FloatArray
 
@@ -249,4 +249,113 @@ def nmc811_lto_cell(soc: ArrayLike) -> FloatArray:
     """
     return nmc811_chen2020(_soc_map(soc, *CHEN_NMC_WINDOW)) - lto_plateau(
         _soc_map(soc, *LTO_WINDOW)
+    )
+
+
+# ---------------------------------------------------------------- sodium-ion: NVPF / hard carbon
+#
+# Source of both tables: Chayambuka, Mulder, Danilov, Notten, "Physics-based modeling of
+# sodium-ion batteries part II. Model and validation", Electrochim. Acta 404 (2022) 139764,
+# doi 10.1016/j.electacta.2021.139764: the open-circuit potentials of its hard-carbon negative
+# and Na3V2(PO4)2F3 (NVPF) positive electrode, as tabulated in PyBaMM's Chayambuka2022
+# parameter set (input/parameters/sodium_ion/data/U_n.csv and U_p.csv), every point copied.
+# Between the points the curve is a monotone cubic (scipy PchipInterpolator: no overshoot);
+# outside the tabulated range the end values hold, nothing is extrapolated.
+
+# Hard carbon vs Na/Na+ (sodium fraction x, volts): slopes from 1.32 V to about 0.1 V up to
+# x = 0.40, then a low-voltage plateau from 0.09 V to 0.035 V, the shape Stevens & Dahn,
+# J. Electrochem. Soc. 147 (2000) 1271, describe for sodium in hard carbon.
+HARD_CARBON_CHAYAMBUKA2022 = (
+    (0.001436794, 1.318963892), (0.001643334, 1.21982507), (0.00811789, 1.112038542),
+    (0.01027308, 1.077546494), (0.035479844, 0.978299913), (0.060758448, 0.844570264),
+    (0.090185795, 0.719443422), (0.127982471, 0.577039126), (0.169900951, 0.456168787),
+    (0.232688871, 0.317967115), (0.320485995, 0.1753473), (0.403954777, 0.110332349),
+    (0.483167055, 0.088439192), (0.574861484, 0.075112923), (0.687380455, 0.066007238),
+    (0.799899424, 0.056901553), (0.891593855, 0.043575284), (0.960353451, 0.038968561),
+    (0.987446008, 0.034541438), (0.995806356, 0.021574368),
+)
+# Na3V2(PO4)2F3 vs Na/Na+ (sodium fraction y, volts): two flat steps, about 4.15-4.17 V and
+# 3.68-3.70 V, with a sharp fall near y = 0.58 between them (same source). The published
+# points rise by 0.27 mV between y = 0.26 and 0.33; they are kept as published.
+NVPF_CHAYAMBUKA2022 = (
+    (0.21, 4.288102031), (0.21004478, 4.210892773), (0.219269532, 4.175283892),
+    (0.261497402, 4.172472367), (0.332354842, 4.172738781), (0.409317336, 4.158176665),
+    (0.474174208, 4.152479924), (0.526985168, 4.143767596), (0.560316674, 4.11121965),
+    (0.575706188, 4.048901275), (0.582273973, 3.941995276), (0.585975815, 3.805375531),
+    (0.590901654, 3.725196032), (0.598588947, 3.695521965), (0.655863013, 3.698707605),
+    (0.696598205, 3.69292017), (0.741871138, 3.684179499), (0.802205196, 3.678465753),
+    (0.864031932, 3.675727917), (0.930500897, 3.649245158), (0.959279735, 3.62262069),
+    (0.979341333, 3.530616911), (0.980053837, 3.450437411), (0.983058101, 3.391026925),
+    (0.992282853, 3.355418044), (0.996268304, 3.162363722), (0.999940293, 3.031684459),
+)
+
+
+def _table_curve(points: tuple[tuple[float, float], ...]) -> interpolate.PchipInterpolator:
+    table = np.asarray(points, dtype=np.float64)
+    return interpolate.PchipInterpolator(table[:, 0], table[:, 1], extrapolate=False)
+
+
+_HARD_CARBON = _table_curve(HARD_CARBON_CHAYAMBUKA2022)
+_NVPF = _table_curve(NVPF_CHAYAMBUKA2022)
+
+
+def _on_table(curve: interpolate.PchipInterpolator, values: ArrayLike) -> FloatArray:
+    x = np.clip(_as_float(values), curve.x[0], curve.x[-1])
+    return np.asarray(curve(x), dtype=np.float64)
+
+
+def hard_carbon_chayambuka2022(x: ArrayLike) -> FloatArray:
+    """Hard-carbon OCP vs Na (V) at sodium fraction ``x``: a slope, then a plateau below 0.1 V.
+
+    Source: Chayambuka et al., Electrochim. Acta 404 (2022) 139764, tabulated in PyBaMM's
+    Chayambuka2022 parameter set; monotone cubic between the published points.
+
+    >>> round(float(hard_carbon_chayambuka2022(0.483167055)), 6)
+    0.088439
+    """
+    return _on_table(_HARD_CARBON, x)
+
+
+def nvpf_chayambuka2022(y: ArrayLike) -> FloatArray:
+    """Na3V2(PO4)2F3 OCP vs Na (V) at sodium fraction ``y``: steps near 4.16 V and 3.69 V.
+
+    Source: Chayambuka et al., Electrochim. Acta 404 (2022) 139764, tabulated in PyBaMM's
+    Chayambuka2022 parameter set; monotone cubic between the published points.
+
+    >>> round(float(nvpf_chayambuka2022(0.696598205)), 6)
+    3.69292
+    """
+    return _on_table(_NVPF, y)
+
+
+# The cell of PyBaMM's Chayambuka2022 parameter set, full at its initial state: hard carbon at
+# 13520 / 14540 mol/m3 and NVPF at 3320 / 15320 mol/m3 (published set). Discharging moves
+# sodium from one to the other in the ratio of the electrodes' capacities, 14540 x 0.489 x 64 um
+# over 15320 x 0.55 x 68 um = 0.7942 (derived from the same set's maximum concentrations,
+# active volume fractions and thicknesses). The empty end is the first tabulated hard-carbon
+# point, rounded up to 0.0015: the full-cell OCV there is 2.35 V.
+NA_HARD_CARBON_FULL = 13520.0 / 14540.0
+NA_NVPF_FULL = 3320.0 / 15320.0
+NA_CAPACITY_RATIO = (14540.0 * 0.489 * 64.0) / (15320.0 * 0.55 * 68.0)
+NA_HARD_CARBON_EMPTY = 0.0015
+NA_HARD_CARBON_WINDOW = (NA_HARD_CARBON_EMPTY, NA_HARD_CARBON_FULL)
+NA_NVPF_WINDOW = (
+    NA_NVPF_FULL + NA_CAPACITY_RATIO * (NA_HARD_CARBON_FULL - NA_HARD_CARBON_EMPTY),
+    NA_NVPF_FULL,
+)
+
+
+def nvpf_hard_carbon_cell(soc: ArrayLike) -> FloatArray:
+    """Full-cell OCV (V) of the Chayambuka 2022 NVPF/hard-carbon cell at state of charge ``soc``.
+
+    V = U_NVPF(y) - U_hard_carbon(x), both from Chayambuka et al. 2022, with x and y linear
+    in ``soc`` over the windows above (hard carbon 0.0015 -> 0.9299, NVPF 0.9540 -> 0.2167).
+    Discharging from full it shows a flat stretch near 4.1 V (both electrodes on a plateau),
+    a sharp step down to about 3.6 V, then a long slope as the hard carbon leaves its plateau.
+
+    >>> round(float(nvpf_hard_carbon_cell(1.0)), 3)
+    4.135
+    """
+    return nvpf_chayambuka2022(_soc_map(soc, *NA_NVPF_WINDOW)) - hard_carbon_chayambuka2022(
+        _soc_map(soc, *NA_HARD_CARBON_WINDOW)
     )

@@ -3,8 +3,9 @@
 Pure: a recipe and a seeded numpy Generator in, arrays and text out (no clock,
 no files, no global random state). The cell model is deliberately small:
 a full-cell open-circuit voltage from published electrode fits (pipeline.ocp),
-an ohmic resistance, one RC element for relaxation, first-cycle lithium loss,
-a leakage current for self-discharge, lumped I^2 R heating and sensor noise.
+an ohmic resistance, one RC element for relaxation, first-cycle lithium (or sodium)
+loss, a side reaction on charge, a leakage current for self-discharge, lumped I^2 R
+heating and sensor noise.
 It exists to give the demo and the tests plausible records whose true values
 are known; formgate never uses it to judge a real cell. Writing files is demo.py's job.
 
@@ -62,6 +63,13 @@ CHEMISTRIES: Mapping[str, Chemistry] = types.MappingProxyType({
     # NMC/LTO: such cells run 1.5-1.8 V / 2.7-2.8 V (from memory); our mean-field
     # LTO curve ends more gently than a real one, so our own cut-off sits at 1.85 V.
     "nmc_lto": Chemistry("nmc_lto", ocp.nmc811_lto_cell, 1.85, 2.8, 1.6, 0.5, 0.4),
+    # NVPF/hard carbon (sodium-ion), the Chayambuka 2022 cell: 4.2 V charge limit as in PyBaMM's
+    # Chayambuka2022 set. Its 2.0 V cut-off lies below the published tables (their full cell
+    # reaches 2.35 V at the last hard-carbon point), so our own cut-off is 2.5 V. Fresh cell
+    # 1.5 V and storage at 30 %, on the slope below the 3.6 V step where a lost charge shows
+    # in the rest voltage (1.6 V per unit of charge there, derived from the Chayambuka tables):
+    # our own choices.
+    "nvpf_hard_carbon": Chemistry("nvpf_hard_carbon", ocp.nvpf_hard_carbon_cell, 2.5, 4.2, 1.5, 0.3, 0.6),
 })
 
 
@@ -173,6 +181,11 @@ class CellRecipe:
     R + R_p (1 - exp(-10 / tau)) plus the OCV change over the pulse.
     ``first_cycle_loss_fraction`` = 1 - first-cycle efficiency. ``self_discharge_a``
     is a leakage current flowing at all times (an internal short is a large one).
+    ``charge_side_fraction`` is the part of every charging current that a side reaction
+    takes and never gives back on discharge, so each cycle's coulombic efficiency is about
+    1 - that fraction (metal plated on the anode that reacts with the electrolyte, for one;
+    plating lowers coulombic efficiency: O'Kane et al., J. Electrochem. Soc. 167 (2020)
+    090540; the lumped model is our own).
     ``sloped_fraction`` 0..1 blends the OCV with a straight line (1: no plateau).
     ``fault_heat_w`` is heat released while the cell charges (a local fault).
 
@@ -189,6 +202,7 @@ class CellRecipe:
     relaxation_time_s: float = 120.0
     first_cycle_loss_fraction: float = 0.09
     self_discharge_a: float = 0.0
+    charge_side_fraction: float = 0.0
     sloped_fraction: float = 0.0
     ambient_c: float = 25.0
     ambient_swing_c: float = 0.0  # amplitude of a 24 h sine on the room temperature
@@ -211,6 +225,8 @@ class CellRecipe:
                 raise ValueError(f"CellRecipe.{name} must be positive")
         if not 0.0 <= self.first_cycle_loss_fraction < 0.9:
             raise ValueError("CellRecipe.first_cycle_loss_fraction must lie in [0, 0.9)")
+        if not 0.0 <= self.charge_side_fraction < 0.5:
+            raise ValueError("CellRecipe.charge_side_fraction must lie in [0, 0.5)")
         if not 0.0 <= self.sloped_fraction <= 1.0:
             raise ValueError("CellRecipe.sloped_fraction must lie in [0, 1]")
         tenths = self.sample_interval_s * 10.0
@@ -416,7 +432,8 @@ def _constant_current(run: _Run, number: int, cycle: int, current_a: float, inte
     """CC step until the state of charge, the voltage limit or a charge amount is reached."""
     r, cell = run.cell.recipe, run.cell
     cap = r.capacity_ah * 3600.0
-    net_a = current_a - r.self_discharge_a
+    stored = 1.0 - r.charge_side_fraction if current_a > 0 else 1.0
+    net_a = stored * current_a - r.self_discharge_a
     soc0, v_rc0, formed = run.soc, run.v_rc, run.formed
     r_p, tau = r.polarisation_ohm, r.relaxation_time_s
 
@@ -450,19 +467,23 @@ def _constant_voltage(run: _Run, number: int, cycle: int, start_a: float, cutoff
     """CV hold at the charge limit: current decays exponentially to the cut-off.
 
     The time constant is chosen so that the step ends exactly full (soc 1) when the
-    current reaches the cut-off, leakage included, which keeps Faraday bookkeeping exact.
+    current reaches the cut-off, leakage and side reaction included, which keeps Faraday
+    bookkeeping exact.
     """
     r, cell = run.cell.recipe, run.cell
     cap = r.capacity_ah * 3600.0
     if run.soc >= 1.0 or start_a <= cutoff_a:
         return
     ratio = start_a / cutoff_a
-    tau = (1.0 - run.soc) * cap / (start_a - cutoff_a - r.self_discharge_a * math.log(ratio))
+    stored = 1.0 - r.charge_side_fraction
+    tau = (1.0 - run.soc) * cap / (
+        stored * (start_a - cutoff_a) - r.self_discharge_a * math.log(ratio)
+    )
     rel = _sample_ds(max(1, math.ceil(tau * math.log(ratio) * 10)), interval_ds)
     t = rel / 10.0
     amps = start_a * np.exp(-t / tau)
     passed_as = start_a * tau * (1.0 - math.exp(-t[-1] / tau))
-    soc_end = run.soc + (passed_as - r.self_discharge_a * t[-1]) / cap
+    soc_end = run.soc + (stored * passed_as - r.self_discharge_a * t[-1]) / cap
     volts = np.full(len(rel), cell.chem.max_v)
     run.add(number, cycle, "cv_charge", rel, volts, amps, soc_end, passed_as / 3600.0)
     # Whatever the cycler held above the OCV and the ohmic drop relaxes in the next rest.

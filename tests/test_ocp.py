@@ -7,12 +7,14 @@ the paper it comes from.
 
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from pipeline import ocp
+from pipeline import ocp, synth
 
 MV = 1e-3
 
@@ -153,7 +155,8 @@ def test_nmc_lto_cell_spans_its_voltage_range() -> None:
 def test_fits_are_vectorised_float64() -> None:
     x = np.linspace(0.1, 0.9, 7)
     for fit in (ocp.graphite_chen2020, ocp.nmc811_chen2020, ocp.lfp_safari2011,
-                ocp.lfp_afshar2017, ocp.lto_plateau):
+                ocp.lfp_afshar2017, ocp.lto_plateau, ocp.hard_carbon_chayambuka2022,
+                ocp.nvpf_chayambuka2022, ocp.nvpf_hard_carbon_cell):
         out = fit(x)
         assert out.dtype == np.float64 and out.shape == x.shape
         assert np.allclose(out, [float(fit(v)) for v in x], rtol=0, atol=1e-15)
@@ -208,3 +211,103 @@ def test_equilibrium_curve_never_rises_with_more_lithium(a: float, e0: float) ->
         assert np.all(v[inside] == e0)
         # Continuous at the binodal: the single-phase curve meets E0 there.
         assert float(ocp.regular_solution_potential(low, a, e0)) == pytest.approx(e0, abs=1e-9)
+
+
+# ---------------------------------------------------------------- sodium-ion: NVPF / hard carbon
+# Chayambuka, Mulder, Danilov, Notten, Electrochim. Acta 404 (2022) 139764: open-circuit
+# potentials of the hard-carbon and Na3V2(PO4)2F3 electrodes as tabulated in PyBaMM's
+# Chayambuka2022 parameter set (data/U_n.csv, data/U_p.csv). The points below are typed in
+# from that table, not read from pipeline/ocp.py.
+@pytest.mark.parametrize(
+    ("x", "expected_v"),
+    [(0.001436794, 1.318963892), (0.060758448, 0.844570264), (0.232688871, 0.317967115),
+     (0.403954777, 0.110332349), (0.574861484, 0.075112923), (0.799899424, 0.056901553),
+     (0.995806356, 0.021574368)],
+)
+def test_hard_carbon_chayambuka2022_goes_through_the_published_points(x: float, expected_v: float) -> None:
+    assert float(ocp.hard_carbon_chayambuka2022(x)) == pytest.approx(expected_v, abs=1e-9)
+
+
+@pytest.mark.parametrize(
+    ("y", "expected_v"),
+    [(0.21, 4.288102031), (0.261497402, 4.172472367), (0.474174208, 4.152479924),
+     (0.582273973, 3.941995276), (0.696598205, 3.69292017), (0.930500897, 3.649245158),
+     (0.999940293, 3.031684459)],
+)
+def test_nvpf_chayambuka2022_goes_through_the_published_points(y: float, expected_v: float) -> None:
+    assert float(ocp.nvpf_chayambuka2022(y)) == pytest.approx(expected_v, abs=1e-9)
+
+
+@pytest.mark.parametrize(
+    ("curve", "table"),
+    [(ocp.hard_carbon_chayambuka2022, ocp.HARD_CARBON_CHAYAMBUKA2022),
+     (ocp.nvpf_chayambuka2022, ocp.NVPF_CHAYAMBUKA2022)],
+)
+def test_sodium_tables_are_joined_without_overshoot(
+    curve: object, table: tuple[tuple[float, float], ...]
+) -> None:
+    # A monotone cubic stays between each pair of published points.
+    for (x0, v0), (x1, v1) in itertools.pairwise(table):
+        x = np.linspace(x0, x1, 41)
+        v = curve(x)  # type: ignore[operator]
+        assert np.all(v >= min(v0, v1) - 1e-12) and np.all(v <= max(v0, v1) + 1e-12)
+    # Outside the published range the end values hold: nothing is extrapolated.
+    assert float(curve(table[0][0] - 0.1)) == pytest.approx(table[0][1], abs=1e-12)  # type: ignore[operator]
+    assert float(curve(table[-1][0] + 0.1)) == pytest.approx(table[-1][1], abs=1e-12)  # type: ignore[operator]
+
+
+def test_hard_carbon_slopes_then_sits_on_a_plateau_below_0_1_volt() -> None:
+    # Stevens & Dahn, J. Electrochem. Soc. 147 (2000) 1271: a sloping region down to about
+    # 0.1 V vs Na, then a low-voltage plateau (values from memory, medium); checked on the
+    # Chayambuka 2022 table.
+    x = np.linspace(0.0015, 0.9958, 4001)
+    v = ocp.hard_carbon_chayambuka2022(x)
+    assert np.all(np.diff(v) < 0)  # more sodium, lower potential
+    plateau = x >= 0.45
+    assert np.all(v[plateau] < 0.1) and np.all(v[plateau] > 0.0)
+    slope_mv = np.abs(np.gradient(v, x)) / 100 * 1000  # mV per 1 % of sodium
+    assert float(slope_mv[(x >= 0.5) & (x <= 0.98)].max()) < 2.5
+    assert float(slope_mv[(x >= 0.01) & (x <= 0.3)].min()) > 10.0
+    assert float(ocp.hard_carbon_chayambuka2022(0.05)) > 0.8  # the sloping region starts near 1 V
+
+
+def test_nvpf_hard_carbon_windows_come_from_the_published_parameter_set() -> None:
+    # PyBaMM Chayambuka2022: initial (full) concentrations 13520 of 14540 mol/m3 (hard carbon)
+    # and 3320 of 15320 mol/m3 (NVPF); capacity ratio from c_max x active fraction x thickness.
+    assert ocp.NA_HARD_CARBON_WINDOW[1] == pytest.approx(0.92985, abs=1e-5)
+    assert ocp.NA_NVPF_WINDOW[1] == pytest.approx(0.21671, abs=1e-5)
+    ratio = ocp.NA_CAPACITY_RATIO
+    assert ratio == pytest.approx(14540 * 0.489 * 64e-6 / (15320 * 0.55 * 68e-6), rel=1e-12)
+    # Sodium conservation: what leaves the hard carbon arrives in the NVPF.
+    moved_n = ocp.NA_HARD_CARBON_WINDOW[1] - ocp.NA_HARD_CARBON_WINDOW[0]
+    moved_p = ocp.NA_NVPF_WINDOW[0] - ocp.NA_NVPF_WINDOW[1]
+    assert moved_p == pytest.approx(ocp.NA_CAPACITY_RATIO * moved_n, rel=1e-12)
+
+
+@pytest.mark.parametrize("soc", [0.0, 0.1, 0.3, 0.5, 0.7, 0.9, 1.0])
+def test_nvpf_hard_carbon_cell_is_positive_minus_negative(soc: float) -> None:
+    # Windows typed in here: hard carbon 0.0015 -> 13520/14540, NVPF from 3320/15320 plus the
+    # sodium the hard carbon gives up times 0.79419 (derived from the PyBaMM Chayambuka2022 set).
+    x = 0.0015 + (13520 / 14540 - 0.0015) * soc
+    y = 3320 / 15320 + 0.79419 * (13520 / 14540 - x)
+    by_hand = ocp.nvpf_chayambuka2022(y) - ocp.hard_carbon_chayambuka2022(x)
+    assert float(ocp.nvpf_hard_carbon_cell(soc)) == pytest.approx(float(by_hand), abs=0.2 * MV)
+
+
+def test_nvpf_hard_carbon_cell_is_monotone_and_spans_the_cut_offs() -> None:
+    soc = np.linspace(0.0, 1.0, 20001)
+    v = ocp.nvpf_hard_carbon_cell(soc)
+    assert np.all(np.diff(v) > 0)
+    chem = synth.CHEMISTRIES["nvpf_hard_carbon"]
+    # Empty below the 2.5 V discharge cut-off, full within 0.1 V below the 4.2 V charge limit.
+    assert float(v[0]) < chem.min_v < float(v[-1])
+    assert chem.max_v - 0.1 < float(v[-1]) < chem.max_v
+    # Open-circuit mean between the cut-off and full charge: 3.685 V (derived from the
+    # Chayambuka 2022 tables); NVPF/hard carbon about 3.6-3.7 V nominal (from memory, low).
+    used = v[v >= chem.min_v]
+    assert float(np.mean(used)) == pytest.approx(3.685, abs=2 * MV)
+    # The upper NVPF step on the hard-carbon plateau: flat near 4.1 V over the top 40 %
+    # (derived); then the sharp step down to about 3.6 V near 50 %.
+    top = soc >= 0.6
+    assert np.all((v[top] > 4.06) & (v[top] < 4.14))
+    assert float(ocp.nvpf_hard_carbon_cell(0.46)) < 3.60 < 3.95 < float(ocp.nvpf_hard_carbon_cell(0.53))

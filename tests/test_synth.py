@@ -146,6 +146,28 @@ def test_faraday_bookkeeping_of_every_step() -> None:
         assert truth.charge_ah - leak_ah == pytest.approx(change, abs=1e-9)
 
 
+def test_faraday_bookkeeping_with_a_side_reaction_on_charge() -> None:
+    # Of each charging current only 1 - f reaches the state of charge; discharge is untouched.
+    recipe = CellRecipe(self_discharge_a=0.01, charge_side_fraction=0.07)
+    record = synth.simulate_formation(recipe, np.random.default_rng(1))
+    for truth in record.steps:
+        stored = 1.0 - 0.07 if truth.charge_ah > 0 else 1.0
+        leak_ah = recipe.self_discharge_a * (truth.end_s - truth.start_s) / 3600.0
+        change = recipe.capacity_ah * (truth.soc_end - truth.soc_start)
+        assert stored * truth.charge_ah - leak_ah == pytest.approx(change, abs=1e-9)
+
+
+def test_a_side_reaction_on_charge_lowers_every_cycle_efficiency() -> None:
+    record = simulate(charge_side_fraction=0.07, **NO_NOISE)
+    charge_2 = sum(coulombs_ah(record, record.step_named(n)) for n in (9, 10))
+    grading = coulombs_ah(record, record.step_named(synth.GRADING_STEP))
+    assert grading / charge_2 == pytest.approx(0.93, abs=0.002)
+    assert grading == pytest.approx(CellRecipe().capacity_ah, rel=0.005)  # the capacity stays
+    charge_1 = sum(coulombs_ah(record, record.step_named(n)) for n in (2, 4, 5))
+    discharge_1 = coulombs_ah(record, record.step_named(7))
+    assert discharge_1 / charge_1 == pytest.approx((1 - 0.09) * 0.93, abs=0.01)
+
+
 def test_coulomb_counting_matches_the_true_charge_of_each_step() -> None:
     record = simulate(**NO_NOISE)
     for truth in record.steps:
@@ -222,6 +244,8 @@ def test_recipe_refuses_nonsense() -> None:
         CellRecipe(capacity_factor=0.0)
     with pytest.raises(ValueError, match="first_cycle_loss_fraction"):
         CellRecipe(first_cycle_loss_fraction=1.0)
+    with pytest.raises(ValueError, match="charge_side_fraction"):
+        CellRecipe(charge_side_fraction=0.5)
 
 
 # ------------------------------------------------------------ the cycle file text
