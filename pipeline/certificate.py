@@ -17,8 +17,8 @@ from collections.abc import Callable
 import jinja2
 from markupsafe import Markup
 
-from pipeline import plots, shipped
-from pipeline.evaluate import deciding
+from pipeline import evidence, plots, shipped
+from pipeline.evaluate import deciding, phrase
 from pipeline.metricdefs import BY_NAME
 from pipeline.model import (
     CellResult,
@@ -41,6 +41,7 @@ TEMPLATE_NAME = "certificate.html.j2"
 DASH = "\N{EM DASH}"  # shown for a value that was not measured
 MINUS = "\N{MINUS SIGN}"
 PLOT_WIDTH_MM, PLOT_HEIGHT_MM = 86.0, 50.0
+RECORD_WIDTH_MM, RECORD_HEIGHT_MM = 178.0, 66.0
 IDENTITY_KEYS = ("cell_id", "lot", "cell_type", "channel", "station", "program", "started_at")
 
 VERDICT_WORDS = {
@@ -283,6 +284,52 @@ def _band_text(band: CurrentBand | None) -> str:
     )
 
 
+# The plot that shows each kind of failed check (evidence.py), by the metric it judges.
+_CYCLE_METRICS = (
+    "grading_capacity_Ah",
+    "first_cycle_efficiency",
+    "irreversible_capacity_Ah",
+    "grading_coulombic_efficiency",
+)
+
+
+def _worst(checks: list[CheckResult]) -> CheckResult:
+    """The check a plot should draw the limit of: a reject check before a review one."""
+    return sorted(checks, key=lambda c: c.severity is not Severity.REJECT)[0]
+
+
+def _evidence(result: CellResult) -> list[dict[str, object]]:
+    """For each kind of check out of window, the plot that shows it, with a caption."""
+    metrics = result.metrics
+    out = [c for c in result.verdict.checks if c.outcome is Outcome.OUT_OF_WINDOW]
+    size = {"width_mm": PLOT_WIDTH_MM, "height_mm": PLOT_HEIGHT_MM}
+    shown: list[dict[str, object]] = []
+    drift = [c for c in out if c.metric == "rest_voltage_drift_mV_per_h"]
+    if drift:
+        check = _worst(drift)
+        svg = evidence.drift_svg(metrics.rest, check.window.low, **size)
+        caption = (
+            f"The final rest: {phrase(check)}. Grey: the relaxation left out of the fit; "
+            "solid: the fit; dashed: a voltage falling at the limit."
+        )
+        shown.append({"svg": Markup(svg), "caption": caption})  # numbers only: see svgplot.py
+    heat = [c for c in out if c.metric == "max_temperature_C"]
+    if heat:
+        check = _worst(heat)
+        svg = evidence.temperature_svg(metrics.record, check.window.high, **size)
+        caption = f"The cell's temperature: {phrase(check)}. Dashed: the limit."
+        shown.append({"svg": Markup(svg), "caption": caption})
+    cycle = [c for c in out if c.metric in _CYCLE_METRICS]
+    if cycle:
+        capacity = [c for c in cycle if c.metric == "grading_capacity_Ah"]
+        window = _worst(capacity).window if capacity else None
+        svg = evidence.cycles_svg(metrics.cycles, window, **size)
+        words = "; ".join(dict.fromkeys(phrase(c) for c in cycle))
+        caption = f"Capacity and efficiency of each cycle: {words}."
+        shown.append({"svg": Markup(svg), "caption": caption})
+    return shown
+
+
 def _identity(result: CellResult) -> list[tuple[str, str]]:
     meta = result.metadata
     ct = result.cell_type
@@ -372,6 +419,10 @@ def build_context(result: CellResult) -> dict[str, object]:
             metrics.ica_curve, metrics.ica_peaks_v,
             width_mm=PLOT_WIDTH_MM, height_mm=PLOT_HEIGHT_MM,
         )),
+        "record_svg": Markup(evidence.record_svg(  # numbers only: see svgplot.py
+            metrics.record, width_mm=RECORD_WIDTH_MM, height_mm=RECORD_HEIGHT_MM,
+        )) if metrics.record is not None else "",
+        "evidence": _evidence(result),
         "cycles": [_cycle_row(c) for c in metrics.cycles],
         "plateaus": [_plateau_row(i, p) for i, p in enumerate(metrics.plateaus, start=1)],
         "ica_caption": _ica_caption(metrics.ica_curve, metrics.ica_peaks_v),

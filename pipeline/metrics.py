@@ -24,11 +24,14 @@ from pipeline.model import (
     Plateau,
     PlateauSettings,
     Program,
+    RecordView,
+    RestView,
     Segmentation,
     SourceRef,
     Step,
     StepKind,
     StepMode,
+    StepSpan,
     Trace,
 )
 from pipeline.plateaus import find_plateaus
@@ -40,6 +43,7 @@ from pipeline.program import (
     final_rest,
 )
 from pipeline.segmentation import sample_weights
+from pipeline.thin import thin_series
 
 # Shortest stretch of final rest, after the relaxation time, that gives a drift
 # slope worth judging (common practice, a proposal: ten minutes and ten samples).
@@ -54,6 +58,8 @@ PLATEAU_METRICS = (
     "main_plateau_length_pct",
     "total_plateau_length_pct",
 )
+# Points per curve kept for the certificate's evidence plots: finer than a page shows.
+VIEW_POINTS = 800
 DCIR_REST_S = 60.0
 DCIR_FIT_S = 5.0
 
@@ -173,6 +179,12 @@ def dcir_mohm(
 
 def rest_drift_mv_per_h(trace: Trace, rest: Step, relax_s: float) -> tuple[float | None, Note | None]:
     """Least-squares slope of V over the final rest step after ``relax_s`` (mV/h); negative = falling."""
+    view, note = rest_view(trace, rest, relax_s)
+    return (None, note) if view is None else (view.slope_mv_per_h, None)
+
+
+def rest_view(trace: Trace, rest: Step, relax_s: float) -> tuple[RestView | None, Note | None]:
+    """The final rest and its drift fit (see rest_drift_mv_per_h), or None with a note."""
     t = trace.time_s[rest.start : rest.stop]
     v = trace.voltage_v[rest.start : rest.stop]
     keep = t >= t[0] + relax_s
@@ -184,8 +196,35 @@ def rest_drift_mv_per_h(trace: Trace, rest: Step, relax_s: float) -> tuple[float
             SourceRef(trace.source, trace.line_of(rest.start)),
             ("rest_voltage_drift_mV_per_h",),
         )
-    slope_v_per_s = np.polyfit(t[keep] - t[keep][0], v[keep], 1)[0]
-    return float(slope_v_per_s * 3600.0 * 1000.0), None
+    t_fit = t[keep] - t[keep][0]
+    slope_v_per_s, intercept_v = np.polyfit(t_fit, v[keep], 1)
+    hours, volts = thin_series((t - t[0]) / 3600.0, v, VIEW_POINTS)
+    view = RestView(
+        Curve(hours, volts),
+        float(t[keep][0] - t[0]) / 3600.0,
+        float(intercept_v),
+        float(slope_v_per_s * 3600.0 * 1000.0),
+    )
+    return view, None
+
+
+def record_view(trace: Trace, steps: tuple[Step, ...]) -> RecordView:
+    """The whole record thinned to about VIEW_POINTS points per curve, and where its steps lie."""
+    hours = (trace.time_s - trace.time_s[0]) / 3600.0
+    start_h = float(trace.time_s[0])
+
+    def curve(values: FloatArray) -> Curve:
+        return Curve(*thin_series(hours, values, VIEW_POINTS))
+
+    return RecordView(
+        curve(trace.voltage_v),
+        curve(trace.current_a),
+        None if trace.temperature_c is None else curve(trace.temperature_c),
+        tuple(
+            StepSpan((s.start_s - start_h) / 3600.0, (s.end_s - start_h) / 3600.0, s.kind)
+            for s in steps
+        ),
+    )
 
 
 def grading_discharge(
@@ -301,6 +340,7 @@ def measure(
     plateaus: tuple[Plateau, ...] = ()
     peaks: tuple[float, ...] = ()
     grading_curve = ica_curve = None
+    rest_drawn: RestView | None = None
     grading = choice.cycle
     if grading is not None:
         gm = cycles[grading.index - 1]
@@ -322,7 +362,9 @@ def measure(
         notes += [note] if note else []
         rest, note = final_rest(trace, segmentation, program, grading)
         if rest is not None:
-            values["rest_voltage_drift_mV_per_h"], note = rest_drift_mv_per_h(trace, rest, relax_s)
+            rest_drawn, note = rest_view(trace, rest, relax_s)
+            if rest_drawn is not None:
+                values["rest_voltage_drift_mV_per_h"] = rest_drawn.slope_mv_per_h
         notes += [note] if note else []
         plateaus, peaks, grading_curve, ica_curve, note = _plateau_values(
             values, trace, steps, grading, plateau_settings
@@ -341,4 +383,14 @@ def measure(
         if value is not None and not math.isfinite(value):
             values[key] = None
     notes = _blame_the_cut(notes, values)
-    return CellMetrics(values, cycles, plateaus, peaks, grading_curve, ica_curve, tuple(notes))
+    return CellMetrics(
+        values,
+        cycles,
+        plateaus,
+        peaks,
+        grading_curve,
+        ica_curve,
+        tuple(notes),
+        record_view(trace, steps),
+        rest_drawn,
+    )

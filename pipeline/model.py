@@ -303,6 +303,39 @@ class Curve:
 
 
 @dataclass(frozen=True, slots=True)
+class StepSpan:
+    """Where one step lies on the record's time axis (hours since the record began)."""
+
+    start_h: float
+    end_h: float
+    kind: StepKind
+
+
+@dataclass(frozen=True, slots=True)
+class RecordView:
+    """The whole record thinned for drawing: V, I and T against hours since it began, and its steps."""
+
+    voltage: Curve
+    current: Curve
+    temperature: Curve | None
+    steps: tuple[StepSpan, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class RestView:
+    """The final rest for drawing: V against hours since the rest began, and its drift fit.
+
+    The fit starts at ``fit_from_h`` (the relaxation left out) at ``fit_v`` volts and
+    falls or rises by ``slope_mv_per_h``; it is the line the drift metric is the slope of.
+    """
+
+    voltage: Curve
+    fit_from_h: float
+    fit_v: float
+    slope_mv_per_h: float
+
+
+@dataclass(frozen=True, slots=True)
 class CycleMetrics:
     """Per-cycle metrics exactly as DESIGN.md defines them (None where not applicable)."""
 
@@ -336,6 +369,8 @@ class CellMetrics:
     grading_curve: Curve | None = None
     ica_curve: Curve | None = None
     notes: tuple[Note, ...] = ()
+    record: RecordView | None = None  # for the certificate's evidence plots
+    rest: RestView | None = None
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "values", frozen_mapping(self.values))

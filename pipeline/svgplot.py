@@ -125,8 +125,11 @@ def text(x: float, y: float, body: str, anchor: str = "middle", extra: str = "")
     return f'<text x="{n(x)}" y="{n(y)}" text-anchor="{anchor}"{extra}>{body}</text>'
 
 
-def axes(frame: Frame, x_label: str, y_label: str) -> list[str]:
+def axes(frame: Frame, x_label: str, y_label: str, *, x_labels: bool = True) -> list[str]:
     """Grid, frame, ticks with labels and the two axis titles.
+
+    ``x_labels`` False leaves out the x tick labels and title, for a panel stacked
+    above another that shares its x axis.
 
     The grid lines are one path and the tick marks another (one subpath per line):
     the same strokes as a path per line, in a fraction of the renderer's work.
@@ -146,13 +149,15 @@ def axes(frame: Frame, x_label: str, y_label: str) -> list[str]:
     x_step = frame.x_ticks[1] - frame.x_ticks[0]
     y_step = frame.y_ticks[1] - frame.y_ticks[0]
     parts.append(f'<g fill="{INK}">')
-    for t in frame.x_ticks:
-        parts.append(text(frame.px(t), bottom + 1.2 + FONT_MM, tick_label(t, x_step)))
+    if x_labels:
+        for t in frame.x_ticks:
+            parts.append(text(frame.px(t), bottom + 1.2 + FONT_MM, tick_label(t, x_step)))
     for t in frame.y_ticks:
         y = frame.py(t) + FONT_MM * 0.35
         parts.append(text(frame.left - 1.6, y, tick_label(t, y_step), "end"))
-    label_y = bottom + 2.6 + 2 * FONT_MM
-    parts.append(text(frame.left + frame.width / 2, label_y, x_label))
+    if x_labels:
+        label_y = bottom + 2.6 + 2 * FONT_MM
+        parts.append(text(frame.left + frame.width / 2, label_y, x_label))
     cx, cy = 2.0 + FONT_MM * 0.5, frame.top + frame.height / 2
     parts.append(text(cx, cy, y_label, extra=f' transform="rotate(-90 {n(cx)} {n(cy)})"'))
     parts.append("</g>")

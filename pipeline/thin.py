@@ -53,3 +53,37 @@ def decimate(x: object, y: object, max_points: int) -> tuple[FloatArray, FloatAr
         keep.append(start + int(np.argmax(part)))
     index = np.unique(np.asarray(keep, dtype=np.int64))
     return xa[index], ya[index]
+
+
+def thin_series(x: FloatArray, y: FloatArray, max_points: int) -> tuple[FloatArray, FloatArray]:
+    """A long series thinned to about ``max_points`` points by columns of equal sample counts.
+
+    Each column keeps its lowest and highest point in sample order, like :func:`decimate`,
+    but in a few array operations: fast enough to keep a drawable view of a whole record
+    (tens of thousands of rows) at measuring time. Columns count samples, not x, which for
+    a record logged at a steady interval is the same thing. Non-finite points are dropped.
+
+    >>> xs, ys = thin_series(np.arange(1000.0), np.r_[np.zeros(999), 5.0], 10)
+    >>> len(xs) <= 12, float(ys.max()), float(xs[0]), float(xs[-1])
+    (True, 5.0, 0.0, 999.0)
+    """
+    xa = np.asarray(x, dtype=np.float64)
+    ya = np.asarray(y, dtype=np.float64)
+    finite = np.isfinite(xa) & np.isfinite(ya)
+    if not finite.all():
+        xa, ya = xa[finite], ya[finite]
+    n = len(xa)
+    columns = max(1, max_points // 2)
+    if n <= max_points:
+        return xa.copy(), ya.copy()
+    per = -(-n // columns)  # ceiling division
+    whole = (n // per) * per
+    blocks = ya[:whole].reshape(-1, per)
+    base = np.arange(0, whole, per)
+    lo = base + np.argmin(blocks, axis=1)
+    hi = base + np.argmax(blocks, axis=1)
+    tail = ya[whole:]
+    ends = [whole + int(np.argmin(tail)), whole + int(np.argmax(tail))] if len(tail) else []
+    keep = np.concatenate(([0], lo, hi, ends, [n - 1]))
+    index = np.unique(keep.astype(np.int64))
+    return xa[index], ya[index]

@@ -1,0 +1,124 @@
+"""Evidence plots: the whole record with its steps, and the plot that shows a failed check."""
+
+from __future__ import annotations
+
+import datetime
+import re
+import xml.etree.ElementTree as ET
+
+import numpy as np
+import pytest
+
+from pipeline import demo, evidence, synth
+from pipeline.certificate import build_context
+from pipeline.model import Curve, CycleMetrics, RecordView, RestView, StepKind, StepSpan, Window
+from pipeline.rulebook import load_rules_dir
+from pipeline.runner import judge
+from pipeline.shipped import RULES_DIR
+
+SVG = "{http://www.w3.org/2000/svg}"
+SIZE = {"width_mm": 86.0, "height_mm": 50.0}
+
+
+def _path_points(path: ET.Element) -> list[tuple[float, float]]:
+    numbers = [float(v) for v in re.findall(r"-?\d+\.\d+", path.get("d", ""))]
+    return list(zip(numbers[::2], numbers[1::2], strict=False))
+
+
+def _view() -> RecordView:
+    t = np.linspace(0.0, 10.0, 501)
+    steps = (
+        StepSpan(0.0, 4.0, StepKind.CHARGE),
+        StepSpan(4.0, 5.0, StepKind.REST),
+        StepSpan(5.0, 9.0, StepKind.DISCHARGE),
+        StepSpan(9.0, 10.0, StepKind.REST),
+    )
+    volts = 3.3 + 0.1 * np.sin(t)
+    amps = np.where(t < 4, 5.0, np.where((t >= 5) & (t < 9), -5.0, 0.0))
+    return RecordView(Curve(t, volts), Curve(t, amps), Curve(t, 25 + t), steps)
+
+
+def test_the_record_plot_has_a_panel_per_measured_quantity_and_shades_the_steps() -> None:
+    root = ET.fromstring(evidence.record_svg(_view(), width_mm=178.0, height_mm=66.0))
+    assert len(root.findall(f".//{SVG}path[@class='curve']")) == 3
+    # each panel shades the charge steps and the discharge steps (one path each)
+    assert len(root.findall(f".//{SVG}path[@class='steps-charge']")) == 3
+    assert len(root.findall(f".//{SVG}path[@class='steps-discharge']")) == 3
+    no_temperature = RecordView(_view().voltage, _view().current, None, _view().steps)
+    root = ET.fromstring(evidence.record_svg(no_temperature, width_mm=178.0, height_mm=66.0))
+    assert len(root.findall(f".//{SVG}path[@class='curve']")) == 2
+
+
+def test_the_drift_plot_draws_the_fit_and_a_limit_the_failed_fit_falls_below() -> None:
+    hours = np.linspace(0.0, 3.0, 300)
+    rest = RestView(Curve(hours, 3.2 - 0.0036 * hours), 0.17, 3.2 - 0.0036 * 0.17, -3.6)
+    root = ET.fromstring(evidence.drift_svg(rest, -2.0, **SIZE))
+    (fit,) = root.findall(f".//{SVG}path[@class='fit']")
+    (limit,) = root.findall(f".//{SVG}path[@class='limit']")
+    fit_start, fit_end = _path_points(fit)
+    limit_start, limit_end = _path_points(limit)
+    assert fit_start == limit_start
+    assert fit_end[1] > limit_end[1]  # SVG y grows downwards: the fit ends lower, it falls faster
+    labels = [t.text for t in root.iter(f"{SVG}text")]
+    assert "limit \N{MINUS SIGN}2.00 mV/h" in labels and "fit \N{MINUS SIGN}3.60 mV/h" in labels
+    root = ET.fromstring(evidence.drift_svg(rest, None, **SIZE))
+    assert root.findall(f".//{SVG}path[@class='limit']") == []
+
+
+def test_the_temperature_plot_draws_its_limit_at_the_limit() -> None:
+    root = ET.fromstring(evidence.temperature_svg(_view(), 30.0, **SIZE))
+    (limit,) = root.findall(f".//{SVG}path[@class='limit']")
+    assert "limit 30.00 °C" in [t.text for t in root.iter(f"{SVG}text")]
+    assert len(_path_points(limit)) == 1  # M x y then H: one horizontal line
+
+
+def test_the_cycle_plot_has_two_bars_per_finished_cycle_and_the_window() -> None:
+    cycles = (
+        CycleMetrics(1, 22.0, 20.0, 0.909, 64.0, 3.2, 3.6, 2.5, 600.0, 26.0),
+        CycleMetrics(2, 20.1, 20.0, 0.995, 64.0, 3.2, 3.6, 2.5, 600.0, 26.0),
+        CycleMetrics(3, 3.0, None, None, None, None, 3.3, None, 0.0, 25.0),
+    )
+    root = ET.fromstring(evidence.cycles_svg(cycles, Window(20.4, 22.4), **SIZE))
+    bars = [r for r in root.findall(f".//{SVG}rect") if r.get("class") is None and r.get("fill") != "none"]
+    assert len(bars) == 5
+    assert len(root.findall(f".//{SVG}rect[@class='window']")) == 1
+    assert {"90.9 %", "99.5 %"} <= {t.text for t in root.iter(f"{SVG}text")}
+
+
+@pytest.fixture(scope="module")
+def judged() -> dict[str, object]:
+    rulebook = load_rules_dir(RULES_DIR)
+    when = datetime.datetime(2026, 3, 4, tzinfo=datetime.UTC)
+    out = {}
+    for cell in demo.DEMO_CELLS:
+        if cell.defect in ("", "internal_short", "over_temperature", "low_capacity") and cell.cell_id not in out:
+            text = synth.to_cycle_file(demo.demo_record(cell), demo.demo_metadata(cell))
+            out[cell.defect or "normal"] = judge(text.encode(), f"{cell.cell_id}.csv", rulebook, analysed_at=when)
+    return out
+
+
+@pytest.mark.parametrize(
+    ("case", "label"),
+    [
+        ("internal_short", "the final rest, its drift fit and the limit"),
+        ("over_temperature", "the temperature and its limit"),
+        ("low_capacity", "charge and discharge capacity of each cycle"),
+    ],
+)
+def test_a_failed_cell_certificate_shows_the_plot_of_its_failure(judged, case: str, label: str) -> None:
+    context = build_context(judged[case])
+    labels = [ET.fromstring(str(plot["svg"])).get("aria-label") for plot in context["evidence"]]
+    assert label in labels
+    assert ET.fromstring(str(context["record_svg"])).get("aria-label") == (
+        "the whole record: voltage, current and temperature"
+    )
+
+
+def test_a_passed_cell_shows_the_record_but_no_failure_plot(judged) -> None:
+    context = build_context(judged["normal"])
+    assert context["evidence"] == []
+    view = judged["normal"].metrics.record
+    assert view is not None and view.voltage.x.size <= 810
+    rest = judged["normal"].metrics.rest
+    assert rest is not None
+    assert rest.slope_mv_per_h == judged["normal"].metrics.values["rest_voltage_drift_mV_per_h"]
