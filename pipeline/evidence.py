@@ -266,9 +266,8 @@ def cycles_svg(
                 )
             )
     if capacity_window is not None and bounds:
-        parts.extend(
-            _limit_label(frame, frame.left + frame.width - 1.0, frame.py(bounds[0]), "grading capacity window")
-        )
+        right = frame.left + frame.width - 1.0
+        parts.extend(_limit_label(frame, right, frame.py(bounds[0]), "grading capacity window"))
     parts.append("</svg>")
     return "\n".join(parts)
 
