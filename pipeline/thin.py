@@ -82,8 +82,13 @@ def thin_series(x: FloatArray, y: FloatArray, max_points: int) -> tuple[FloatArr
     base = np.arange(0, whole, per)
     lo = base + np.argmin(blocks, axis=1)
     hi = base + np.argmax(blocks, axis=1)
+    # each block's two points in sample order, blocks in order: sorted without a sort
+    pairs = np.empty(2 * len(lo), dtype=np.int64)
+    pairs[0::2] = np.minimum(lo, hi)
+    pairs[1::2] = np.maximum(lo, hi)
     tail = ya[whole:]
-    ends = [whole + int(np.argmin(tail)), whole + int(np.argmax(tail))] if len(tail) else []
-    keep = np.concatenate(([0], lo, hi, ends, [n - 1]))
-    index = np.unique(keep.astype(np.int64))
+    ends: list[int] = []
+    if len(tail):
+        ends = sorted((whole + int(np.argmin(tail)), whole + int(np.argmax(tail))))
+    index = np.concatenate(([0], pairs, ends, [n - 1])).astype(np.int64)
     return xa[index], ya[index]
