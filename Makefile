@@ -6,10 +6,12 @@ STAMP := $(VENV)/.installed
 
 .PHONY: demo test lint bench clean
 
+# The project is installed editable with -qq (errors only): setuptools notes on every editable
+# install that folders named like the package may shadow it, which is how a checkout is used.
 $(STAMP): pyproject.toml constraints.txt
 	$(PYTHON) -m venv $(VENV)
 	$(BIN)/python -m pip install --quiet --upgrade pip
-	$(BIN)/python -m pip install --quiet -c constraints.txt -e '.[test]'
+	$(BIN)/python -m pip install -qq -c constraints.txt -e '.[test]'
 	touch $(STAMP)
 
 demo: $(STAMP)
