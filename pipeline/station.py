@@ -57,6 +57,7 @@ from pipeline.settings import InboxSettings, Settings, choose_profile
 from pipeline.smtp import SmtpSettings
 from pipeline.station_duties import Duties
 from pipeline.station_rules import RulesKeeper
+from pipeline.taken import UnreadableSource, take_copy
 from pipeline.troubles import Troubles, describe
 from pipeline.watcher import list_entries
 from pipeline.worker import Output, Task
@@ -112,6 +113,7 @@ class Station(RulesKeeper, Duties):
         self.aside = SetAside(settings)
         self.left: dict[tuple[str, str], tuple[int, int]] = {}  # left in place, as it was then
         self.overdue_alerted: set[tuple[str, str]] = set()
+        self.originals_checked: dict[Path, tuple[int, int]] = {}
         self.started_at = clock()
         self.last_heartbeat = 0.0
         self.last_reconcile = 0.0
@@ -193,6 +195,7 @@ class Station(RulesKeeper, Duties):
             if now_s - self.last_reconcile >= self.settings.reconcile_s:
                 self.last_reconcile = now_s
                 self.duty(self.reconcile_work)
+                self.review_originals()
             self.duty(lambda: self.scan_inboxes(now_s))
             self.duty(self.submit)
         self.collect(timeout=0.2 if self.judges.busy() else 0.0)
@@ -303,10 +306,28 @@ class Station(RulesKeeper, Duties):
                     oversized = stat.st_size > self.settings.max_input_MB * MB
                     if not oversized and not file_looks_complete(fh):
                         return  # quiet but cut short: wait for the writer to finish
-            except FileNotFoundError:
+                    if oversized:
+                        copy = None
+                    else:  # judge a copy of its own; the writer's original is watched
+                        copy = take_copy(fh, source, self.settings.work, inbox=inbox.name,
+                                         name=fit(text, reserve_bytes=NAME_RESERVE_BYTES))
+            except FileNotFoundError as exc:
+                if exc.filename not in (None, str(source)):
+                    raise  # a station folder has gone: the surroundings' fault
+                return  # the file has gone: someone took it
+            except UnreadableSource as exc:  # moved aside, then it could not be read
+                self.aside.entry(self.ledger, exc.path, inbox=inbox.name, kind="file",
+                                 reason=unreadable_reason(text, exc.error), now=self.clock())
                 return
-            except OSError as exc:  # the file's own fault: the station may not read it
-                self.set_aside(inbox, name, "file", unreadable_reason(text, exc))
+            except OSError as exc:
+                if exc.filename is not None and Path(exc.filename) == source:
+                    self.cannot_take(inbox, name, source, exc)  # opening or moving it failed
+                    return
+                raise  # not the file's fault: writing the copy failed
+            if copy is not None:
+                self.inbox_of[str(copy.path)] = inbox.name
+                faults.point("after_claim")
+                self.register(copy.path, text, known=(copy.sha256, copy.size))
                 return
         try:
             target = move_into(
@@ -316,11 +337,7 @@ class Station(RulesKeeper, Duties):
                 make_parents=False,
             )
         except OSError as exc:
-            if not move_failed_by_itself(exc, source, self.settings.work):
-                raise
-            self.aside.left_in_place(self.ledger, source, inbox=inbox.name, kind="file",
-                                     reason=f"{text} was not judged", exc=exc, now=self.clock())
-            self.note_left(inbox, name, source)
+            self.cannot_take(inbox, name, source, exc)
             return
         if target is None:
             return
@@ -335,13 +352,33 @@ class Station(RulesKeeper, Duties):
         faults.point("after_claim")
         self.register(target, text)
 
-    def register(self, path: Path, name: str | None = None) -> None:
-        """Ledger claim for a file in work/; duplicates are archived at once, the rest queued."""
+    def cannot_take(self, inbox: InboxSettings, name: str, source: Path, exc: OSError) -> None:
+        """Opening or moving an inbox file failed: set it aside, leave it in place, or pause."""
+        text = to_text(name)
+        if exc.filename2 is None:  # opening it failed (a rename names both paths)
+            self.set_aside(inbox, name, "file", unreadable_reason(text, exc))
+            return
+        if not move_failed_by_itself(exc, source, self.settings.work):
+            raise exc
+        self.aside.left_in_place(self.ledger, source, inbox=inbox.name, kind="file",
+                                 reason=f"{text} was not judged", exc=exc, now=self.clock())
+        self.note_left(inbox, name, source)
+
+    def register(
+        self, path: Path, name: str | None = None, *, known: tuple[str, int] | None = None
+    ) -> None:
+        """Ledger claim for a file in work/; duplicates are archived at once, the rest queued.
+
+        ``known``: the SHA-256 and size of a copy the station has just made (not read again).
+        """
         name = name or _work_name_text(path.name)
         try:
-            with path.open("rb") as fh:  # streamed: the file is not held in memory
-                size = os.fstat(fh.fileno()).st_size
-                sha = hashlib.file_digest(fh, "sha256").hexdigest()
+            if known is None:
+                with path.open("rb") as fh:  # streamed: the file is not held in memory
+                    size = os.fstat(fh.fileno()).st_size
+                    sha = hashlib.file_digest(fh, "sha256").hexdigest()
+            else:
+                sha, size = known
         except FileNotFoundError:
             return
         except OSError as exc:  # the file's own fault: the station may not read it
@@ -595,6 +632,7 @@ class Station(RulesKeeper, Duties):
             self.settings.archive,
             self.settings.quarantine,
             self.settings.mail,
+            self.settings.work,  # a settle-mode copy cut short
         ):
 
             def clean(folder: Path = folder) -> None:

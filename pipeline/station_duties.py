@@ -9,6 +9,7 @@ has been quiet for ``digest_quiet_s``. An inbox entry unchanged for
 
 from __future__ import annotations
 
+import contextlib
 import datetime
 import hashlib
 import json
@@ -18,12 +19,14 @@ import time
 from collections import deque
 from pathlib import Path
 
+from pipeline.inputnames import to_text
 from pipeline.judges import JudgePool
 from pipeline.ledger import InputRow
 from pipeline.mail import DigestRow, digest_letter
 from pipeline.rulebook import RuleBook
 from pipeline.settings import InboxSettings
 from pipeline.station_guard import Guarded
+from pipeline.taken import Original, give_back, originals, same_bytes
 from pipeline.troubles import describe
 from pipeline.waiting import overdue_entries
 from pipeline.watcher import Listing
@@ -43,6 +46,7 @@ class Duties(Guarded):
     started_at: datetime.datetime
     left: dict[tuple[str, str], tuple[int, int]]  # left in place, as it was then
     overdue_alerted: set[tuple[str, str]]
+    originals_checked: dict[Path, tuple[int, int]]  # (size, mtime) when found unchanged
 
     def queue_digests(self) -> None:
         routing = self.settings.routing
@@ -152,3 +156,58 @@ class Duties(Guarded):
             + "\n\nCheck the cycler's hand-over; `formgate status` shows what still waits.",
             key=f"waiting:{inbox.name}:{key}",
         )
+
+    def review_originals(self) -> None:
+        """Watch the writers' originals that settle mode keeps aside (taken.py).
+
+        One that changed goes back into its inbox, to be taken as a new version, with one
+        alert; one unchanged for waiting_alert_s and equal to its copy is removed. A fault
+        here is logged and tried again at the next review: it never pauses the station.
+        """
+        now_ns = time.time_ns()
+        inboxes = {i.name: i for i in self.settings.inboxes}
+        for original in originals(self.settings.work):
+            inbox = inboxes.get(original.inbox)
+            if inbox is not None and not original.sha256:  # its copy was never completed
+                with contextlib.suppress(OSError):
+                    if give_back(original, inbox.folder) is not None:
+                        log.info("%s: back in inbox %s (its copy was not completed)",
+                                 to_text(original.name), inbox.name)
+                continue
+            quiet_s = (now_ns - original.mtime_ns) / 1e9
+            if inbox is None or quiet_s < inbox.settle_s:
+                continue  # still being written (or its inbox is gone): look again later
+            stat = (original.size, original.mtime_ns)
+            try:
+                if self.originals_checked.get(original.path) != stat:
+                    if not same_bytes(original.path, original.sha256):
+                        self.changed_after_taken(original, inbox)
+                        continue
+                    self.originals_checked[original.path] = stat
+                if quiet_s >= self.settings.waiting_alert_s:
+                    original.path.unlink()  # the archive holds the same bytes
+                    self.originals_checked.pop(original.path, None)
+            except OSError as exc:
+                log.warning("%s: cannot be checked now (%s)", original.path, describe(exc))
+
+    def changed_after_taken(self, original: Original, inbox: InboxSettings) -> None:
+        back = give_back(original, inbox.folder)
+        name = to_text(original.name)
+        if back is None:
+            log.warning("%s changed after it was taken; its name is in use in inbox %s, so it "
+                        "waits in %s", name, inbox.name, original.path.parent)
+            return
+        self.originals_checked.pop(original.path, None)
+        log.warning("%s: file changed after it was taken; back in inbox %s as a new version",
+                    name, inbox.name)
+        self.alert(
+            f"file changed after it was taken: {name}",
+            f"{name} in inbox {inbox.name} was written to again after the station had taken "
+            f"it (it had been unchanged for settle_s = {inbox.settle_s:g} s). The station judged "
+            "and archived the file as it was then; the file as it is now goes back into the "
+            "inbox and is judged as a new version, whose result supersedes the earlier one.\n\n"
+            "A writer that pauses for longer than settle_s is taken too early: hand files over "
+            "by rename or with a marker file instead (docs/station.md), or raise settle_s.",
+            key=f"changed:{inbox.name}:{name}:{original.sha256}",
+        )
+

@@ -20,7 +20,7 @@ TEMP_PREFIX = "."
 TEMP_SUFFIX = ".tmp"
 
 
-def _fsync_dir(folder: Path) -> None:
+def fsync_dir(folder: Path) -> None:
     fd = os.open(folder, os.O_RDONLY)
     try:
         os.fsync(fd)
@@ -65,7 +65,7 @@ def write_atomic(
             exc.filename = str(path)  # a failed write names no file by itself
         raise
     if sync:
-        _fsync_dir(path.parent)
+        fsync_dir(path.parent)
 
 
 def move_into(
@@ -98,7 +98,7 @@ def move_into(
         if not os.path.lexists(source):
             return None
         raise
-    _fsync_dir(folder)
+    fsync_dir(folder)
     return target
 
 

@@ -230,7 +230,9 @@ def settled(settings: Settings, expected: int) -> bool:
     """Every one of ``expected`` inputs is final and nothing is waiting anywhere."""
     if any(p for i in settings.inboxes for p in i.folder.iterdir() if not is_temporary(p.name)):
         return False
-    if any(settings.work.iterdir()) or not settings.ledger.exists():
+    if any(not p.name.startswith(".") for p in settings.work.iterdir()):
+        return False  # (work/.taken holds settle-mode originals being watched)
+    if not settings.ledger.exists():
         return False
     with Ledger(settings.ledger) as ledger:
         if ledger.inputs_in_state("claimed", "judged", "published"):

@@ -56,6 +56,11 @@ def _immutable(path: Path, on: bool) -> bool:
     return done.returncode == 0
 
 
+def _in_work(work: Path) -> list[Path]:
+    """Inputs being judged (work/.taken holds settle-mode originals being watched)."""
+    return [p for p in work.iterdir() if not p.name.startswith(".")]
+
+
 def _mails(folder: Path) -> list[str]:
     out = []
     for p in folder.glob("*.eml"):
@@ -101,10 +106,10 @@ def test_poison_entries_are_set_aside_and_the_station_goes_on(tmp_path: Path) ->
         wait_until(lambda: s.heartbeat.exists(), what="station started")
         for path in poison:
             wait_until(lambda p=path: not os.path.lexists(p), what=f"{path.name} set aside")
-        wait_until(lambda: not any(s.work.iterdir()), what="the files in work judged")
+        wait_until(lambda: not _in_work(s.work), what="the files in work judged")
         (quick / ".good.csv.part").write_bytes(cycle_file("GOOD-1", seed=10))
         (quick / ".good.csv.part").rename(quick / "good.csv")
-        wait_until(lambda: not (quick / "good.csv").exists() and not any(s.work.iterdir()),
+        wait_until(lambda: not (quick / "good.csv").exists() and not _in_work(s.work),
                    what="the good file taken after the poison")
         wait_until(lambda: any("file(s) waiting" in m for m in _mails(s.mail)), what="waiting alert")
         assert proc.poll() is None, "the station is still running"
