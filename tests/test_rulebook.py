@@ -302,7 +302,8 @@ def test_unknown_cell_type_names_the_data_file_and_suggests_a_close_one() -> Non
     assert str(caught.value) == (
         "inbox/DEMO-LOT-01_L01-001.csv: no rule set covers cell type 'DEMO-LFP-2OA'.\n"
         "  Did you mean 'DEMO-LFP-20A'? Known cell types: DEMO-LFP-100P, DEMO-LFP-20A, "
-        "DEMO-LTO-10P, DEMO-LTO-30P, DEMO-NMC-5A, DEMO-NMC-60P. Correct the file's cell_type, "
+        "DEMO-LTO-10P, DEMO-LTO-30P, DEMO-NA-10A, DEMO-NA-40P, DEMO-NMC-5A, DEMO-NMC-60P. "
+        "Correct the file's cell_type, "
         "or declare the type in a rule file."
     )
 
