@@ -109,6 +109,7 @@ class Station(RulesKeeper, Duties):
         self.troubles = Troubles(settings.retry_max_s)
         self.blocked: deque[Callable[[], None]] = deque()  # effects to apply once unpaused
         self.unsent: list[Letter] = []  # alerts the ledger could not take yet
+        self.mail_wake = threading.Event()  # the mail thread's, once it runs: mail is queued
         self.inhand = InHand(settings.ledger.with_name(f".{settings.ledger.name}.in-hand"))
         self.aside = SetAside(settings)
         self.left: dict[tuple[str, str], tuple[int, int]] = {}  # left in place, as it was then
@@ -161,6 +162,7 @@ class Station(RulesKeeper, Duties):
             for w in watchers:
                 w.start()
             mail.start()
+            self.mail_wake = mail.wake
             log.info(
                 "station %s watching %s",
                 self.settings.station_name,
@@ -504,6 +506,7 @@ class Station(RulesKeeper, Duties):
             self.record(row, output.result, output.json_text, with_pdf=pdf is not None)
         self.publish(row, output.result, output.json_text, pdf)
         self.judged += 1
+        self.mail_wake.set()  # a failure or hold letter is due now that its certificate is there
         r = output.result
         hazards = (
             f" hazard: {', '.join(h.value for h in r.verdict.hazards)}" if r.verdict.hazards else ""

@@ -78,6 +78,7 @@ class Duties(Guarded):
                 domain=routing.domain,
             )
             self.ledger.queue_digest(letter, [c.id for c in cells], now=now)
+            self.mail_wake.set()
             log.info("digest queued for lot %s: %d passed cell(s)", lot, len(cells))
 
     def write_heartbeat(self, state: str = "running") -> None:

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import datetime
 import logging
+import threading
 import time
 from collections import deque
 from collections.abc import Callable
@@ -41,6 +42,7 @@ class Guarded:
     unsent: list[Letter]  # alerts the ledger could not take yet
     inhand: InHand
     last_error: str
+    mail_wake: threading.Event
 
     def handle(self, key: str, what: str, effect: Callable[[], None], *, retry: bool = True) -> None:
         """Apply ``effect`` for one input, marked in hand; a fault of the surroundings pauses.
@@ -163,6 +165,7 @@ class Guarded:
                     raise
                 return
             self.unsent.pop(0)
+            self.mail_wake.set()
 
     def inbox_trouble(self, inbox: InboxSettings, exc: OSError | None) -> None:
         key = f"inbox:{inbox.name}"
