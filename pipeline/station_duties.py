@@ -144,7 +144,7 @@ class Duties(Guarded):
         if not entries:
             return
         self.overdue_alerted |= {(inbox.name, e.name) for e in entries}
-        lines = [f"- {e.name}: waiting {e.age_s / 60:.0f} min; {e.why}" for e in entries[:50]]
+        lines = [f"- {e.name}: waiting {e.age}; {e.why}" for e in entries[:50]]
         if len(entries) > 50:
             lines.append(f"- and {len(entries) - 50} more (formgate status lists them)")
         for e in entries:

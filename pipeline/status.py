@@ -55,14 +55,6 @@ def _files(folder: Path) -> list[str]:
     return sorted(to_text(n) for n in names if not is_temporary(n))
 
 
-def _age(seconds: float) -> str:
-    if seconds < 5400:
-        return f"{seconds / 60:.0f} min"
-    if seconds < 2 * 86400:
-        return f"{seconds / 3600:.1f} h"
-    return f"{seconds / 86400:.1f} days"
-
-
 def _overdue_lines(settings: Settings, now: datetime.datetime, left: dict[str, dict[str, str]]) -> list[str]:
     """Inbox entries unchanged for longer than waiting_alert_s and not taken, with age and reason."""
     lines = []
@@ -79,7 +71,7 @@ def _overdue_lines(settings: Settings, now: datetime.datetime, left: dict[str, d
             waiting_alert_s=settings.waiting_alert_s,
             left=left.get(inbox.name, {}),
         ):
-            lines.append(f"  {inbox.name}: {e.name}: waiting {_age(e.age_s)}; {e.why}")
+            lines.append(f"  {inbox.name}: {e.name}: waiting {e.age}; {e.why}")
     return lines
 
 

@@ -28,6 +28,15 @@ class Overdue:
     age_s: float
     why: str
 
+    @property
+    def age(self) -> str:
+        """The age for people: minutes, hours or days."""
+        if self.age_s < 5400:
+            return f"{self.age_s / 60:.0f} min"
+        if self.age_s < 2 * 86400:
+            return f"{self.age_s / 3600:.1f} h"
+        return f"{self.age_s / 86400:.1f} days"
+
 
 def _why(name: str, inbox: InboxSettings, files: Collection[str]) -> str:
     if is_temporary(name):

@@ -98,6 +98,9 @@ def test_poison_entries_are_set_aside_and_the_station_goes_on(tmp_path: Path) ->
         hour_ago = time.time() - 3600
         os.utime(inbox / "..csv", (hour_ago, hour_ago))
         (inbox / ".young.csv").write_bytes(b"a writer's temporary file\n")
+    for name, data in (("empty.csv", b""), ("no-newline.csv", cycle_file("NN-1").rstrip(b"\n"))):
+        (slow / name).write_bytes(data)  # quiet, but never ends cleanly: never taken
+        os.utime(slow / name, (time.time() - 7200, time.time() - 7200))
     frozen = quick / "frozen.csv"
     frozen.write_bytes(cycle_file("F-1", seed=9))
     can_freeze = _immutable(frozen, True)
@@ -151,9 +154,13 @@ def test_poison_entries_are_set_aside_and_the_station_goes_on(tmp_path: Path) ->
     assert (quick / ".young.csv").exists() and (quick / "..csv").exists()
     assert "..csv" in report and "waiting 60 min" in report
     assert ".young.csv" not in report
+    for name in ("empty.csv", "no-newline.csv"):
+        assert (slow / name).exists()
+        assert f"  slow: {name}: waiting 2.0 h; it does not look complete" in report
     mails = _mails(s.mail)
     waiting = [m for m in mails if "file(s) waiting in inbox" in m]
     assert any("..csv: waiting 60 min; a temporary name" in m for m in waiting)
+    assert any("- no-newline.csv: waiting 2.0 h; it does not look complete" in m for m in waiting)
     set_aside = [m for m in mails if "set aside:" in m.splitlines()[0]]
     assert len(set_aside) == len(poison)
 
