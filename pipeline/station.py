@@ -93,7 +93,7 @@ class Station(RulesKeeper, Duties):
         # opened by run(), in the thread that runs the station (SQLite's rule)
         self.ledger: Ledger = None  # type: ignore[assignment]
         self.rulebook: RuleBook | None = None
-        self.rules_fingerprint: tuple[tuple[str, int, int], ...] = ()
+        self.rules_fingerprint: tuple[tuple[str, int, int], ...] | None = None  # None: never read
         self.rules_alerted: str = ""
         self.seen: dict[str, dict[str, Seen]] = {i.name: {} for i in settings.inboxes}
         # per inbox: when it was last listed, and the finished files found then but not yet
@@ -223,8 +223,11 @@ class Station(RulesKeeper, Duties):
                 self.quarantine(row, f"{row.name}: {why}")
         elif death.path is not None and os.path.lexists(death.path):
             name = to_text(death.path.name)
+            inbox = next(
+                (i.name for i in self.settings.inboxes if i.folder == death.path.parent), "work"
+            )
             self.aside.entry(
-                self.ledger, death.path, inbox="?", kind="file", reason=f"{name}: {why}",
+                self.ledger, death.path, inbox=inbox, kind="file", reason=f"{name}: {why}",
                 now=self.clock(),
             )
         self.inhand.done_with(death.key)

@@ -167,7 +167,12 @@ class Duties(Guarded):
         """
         now_ns = time.time_ns()
         inboxes = {i.name: i for i in self.settings.inboxes}
-        for original in originals(self.settings.work):
+        try:
+            found = list(originals(self.settings.work))
+        except OSError as exc:
+            log.warning("the originals kept aside cannot be listed now (%s)", describe(exc))
+            return
+        for original in found:
             inbox = inboxes.get(original.inbox)
             if inbox is not None and not original.sha256:  # its copy was never completed
                 with contextlib.suppress(OSError):

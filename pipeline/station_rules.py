@@ -26,7 +26,7 @@ class RulesKeeper(Guarded):
     """The rules in force; :class:`pipeline.station.Station` sets these attributes."""
 
     rulebook: RuleBook | None
-    rules_fingerprint: tuple[tuple[str, int, int], ...]
+    rules_fingerprint: tuple[tuple[str, int, int], ...] | None
     rules_alerted: str
 
     def load_rules(self, *, first: bool = False) -> None:
@@ -39,9 +39,9 @@ class RulesKeeper(Guarded):
         try:
             files = sorted([*folder.glob("*.toml"), *folder.glob("profiles/*.toml")])
             fingerprint = tuple((str(p), st.st_size, st.st_mtime_ns) for p in files for st in [p.stat()])
-        except OSError:  # a file went while listing: the check below says what is wrong
-            fingerprint = ()
-        if fingerprint == self.rules_fingerprint and fingerprint and not first:
+        except OSError:  # a file went while listing, or the folder cannot be read
+            fingerprint = (("(unreadable)", 0, 0),)  # checked once now, again once it changes
+        if fingerprint == self.rules_fingerprint and not first:
             return
         problems: list[FormgateError] = [
             *check_rules_dir(folder),
