@@ -68,7 +68,7 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--quick", action="store_true", help="one interval and one channel")
     args = parser.parse_args(argv)
     rulebook = load_rules_dir(RULES_DIR)
-    cells = demo.DEMO_CELLS + demo.DEMO_NMC_CELLS
+    cells = demo.ALL_DEMO_CELLS
     intervals = (5.0,) if args.quick else (1.0, 5.0, 10.0)
     channels = dict(list(CHANNELS.items())[:1]) if args.quick else CHANNELS
     header = f"{'interval':>8}  {'channel noise / offset':<22} {'steps':<6} {'wrong':>5}  " + "  ".join(

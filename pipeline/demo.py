@@ -1,6 +1,7 @@
-"""Write the invented demonstration lot: one cycle file per cell, a few of them gzip-compressed.
+"""Write the invented demonstration lots: one cycle file per cell, a few of them gzip-compressed.
 
-The lot, its cells and their defects are our own invention (no real maker, product
+Three lots (LFP/graphite, NMC/graphite, sodium-ion NVPF/hard carbon). The lots, their cells
+and their defects are our own invention (no real maker, product
 or person). Building each cell's recipe and text is pure; only :func:`write_demo_lot`
 touches the disk, writing each file under a hidden ``.part`` name first and renaming
 it, so a watcher never claims half a file. The simulation itself is synth.py's.
@@ -28,6 +29,7 @@ from pipeline.synth import (
 STATION = "demo-line-1"
 LFP_CELL_TYPE = "DEMO-LFP-20A"  # must match rules/lfp_graphite.toml
 NMC_CELL_TYPE = "DEMO-NMC-5A"  # as declared in rules/nmc_graphite.toml
+NA_CELL_TYPE = "DEMO-NA-10A"  # as declared in rules/sodium_hard_carbon.toml
 
 DEFECTS = (
     "low_capacity",
@@ -39,6 +41,8 @@ DEFECTS = (
 )
 # Cases that a review check (not a reject check) must catch: the cell is held, not failed.
 REVIEW_CASES = ("slow_drift",)
+# The sodium-ion lot's defects, each one a reject check of rules/sodium_hard_carbon.toml catches.
+SODIUM_DEFECTS = ("internal_short", "sodium_plating", "high_dcir")
 
 
 @dataclass(frozen=True, slots=True)
@@ -102,6 +106,19 @@ DEMO_NMC_CELLS: tuple[DemoCell, ...] = _lot(
     normal=5,
     compressed=(2,),
 )
+# Third lot, sodium-ion NVPF/hard carbon 10 Ah: five normal cells, an internal short, sodium
+# plating (a low coulombic efficiency), a high DCIR.
+DEMO_NA_CELLS: tuple[DemoCell, ...] = _lot(
+    "DEMO-LOT-03",
+    NA_CELL_TYPE,
+    "NA3",
+    "2026-03-04",
+    SODIUM_DEFECTS,
+    normal=5,
+    compressed=(4,),
+)
+# Every demo lot, in the order the demo hands them over.
+ALL_DEMO_CELLS: tuple[DemoCell, ...] = DEMO_CELLS + DEMO_NMC_CELLS + DEMO_NA_CELLS
 
 # Cell-type baselines (our own invented cells): capacity is set about 2 % above nominal, as
 # rated capacity is usually a few percent below typical (common practice).
@@ -128,6 +145,19 @@ _BASE = {
         thermal_resistance_k_per_w=8.0,
         thermal_time_constant_s=900.0,
     ),
+    # First-cycle loss 13 %: hard carbon in sodium-ion cells reaches 80-90 % first-cycle
+    # efficiency (from memory, medium). Resistances of our own, between the two types above.
+    NA_CELL_TYPE: CellRecipe(
+        chemistry="nvpf_hard_carbon",
+        nominal_capacity_ah=10.0,
+        capacity_factor=1.02,
+        resistance_ohm=0.008,
+        polarisation_ohm=0.004,
+        first_cycle_loss_fraction=0.13,
+        self_discharge_a=0.0002,
+        thermal_resistance_k_per_w=5.0,
+        thermal_time_constant_s=1200.0,
+    ),
 }
 # Internal-short drift after relaxation and over-temperature peak of the defect cells.
 SHORT_DRIFT_MV_PER_H = -3.0
@@ -135,7 +165,10 @@ SHORT_DRIFT_MV_PER_H = -3.0
 SLOW_DRIFT_MV_PER_H = -1.0
 OVER_TEMPERATURE_C = 62.0
 # DCIR multiple of the high-resistance cell, well beyond the type's usual +-5 % spread.
-_HIGH_DCIR_FACTOR = {LFP_CELL_TYPE: 2.5, NMC_CELL_TYPE: 3.5}
+_HIGH_DCIR_FACTOR = {LFP_CELL_TYPE: 2.5, NMC_CELL_TYPE: 3.5, NA_CELL_TYPE: 2.5}
+# Part of each charge lost to sodium plated on the hard carbon: the grading cycle returns about
+# 93 % of its charge, below the sodium rule set's 95 % (our own size).
+PLATING_SIDE_FRACTION = 0.07
 
 
 def _seed_for(cell: DemoCell, seed: int) -> np.random.Generator:
@@ -174,6 +207,8 @@ def demo_recipe(cell: DemoCell, rng: np.random.Generator) -> CellRecipe:
         case "slow_drift":
             leak_a = self_discharge_for_drift(recipe, SLOW_DRIFT_MV_PER_H)
             return dataclasses.replace(recipe, self_discharge_a=leak_a)
+        case "sodium_plating":
+            return dataclasses.replace(recipe, charge_side_fraction=PLATING_SIDE_FRACTION)
         case "missing_plateau":
             return dataclasses.replace(recipe, sloped_fraction=1.0)
         case "over_temperature":

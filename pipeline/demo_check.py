@@ -9,7 +9,7 @@ from __future__ import annotations
 import datetime
 from pathlib import Path
 
-from pipeline.demo import DEMO_CELLS, DEMO_NMC_CELLS, REVIEW_CASES, DemoCell, write_demo_lot
+from pipeline.demo import ALL_DEMO_CELLS, REVIEW_CASES, DemoCell, write_demo_lot
 from pipeline.rulebook import load_rules_dir
 from pipeline.runner import check_file
 from pipeline.shipped import RULES_DIR
@@ -29,7 +29,7 @@ def run_demo(folder: Path, *, analysed_at: datetime.datetime, rules_dir: Path = 
     Returns 0 if every cell got the verdict its invented defect (or lack of one) calls for.
     """
     inbox = folder / "inbox"
-    cells = DEMO_CELLS + DEMO_NMC_CELLS
+    cells = ALL_DEMO_CELLS
     paths = write_demo_lot(inbox, cells=cells)
     rulebook = load_rules_dir(rules_dir)
     results, errors = [], []

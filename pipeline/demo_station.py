@@ -17,7 +17,7 @@ import threading
 import time
 from pathlib import Path
 
-from pipeline.demo import DEMO_CELLS, DEMO_NMC_CELLS, DemoCell, demo_file_bytes
+from pipeline.demo import ALL_DEMO_CELLS, DemoCell, demo_file_bytes
 from pipeline.ledger import Ledger
 from pipeline.settings import init_station, read_settings, smtp_settings
 from pipeline.shipped import RULES_DIR
@@ -127,7 +127,7 @@ def run_station_demo(folder: Path | None = None) -> int:
 
     setup_logging(settings.logs, settings.log_max_MB, settings.log_keep, verbose=True)
     log = logging.getLogger("formgate.demo")
-    cells = DEMO_CELLS + DEMO_NMC_CELLS
+    cells = ALL_DEMO_CELLS
     stop = threading.Event()
     dropped: list[str] = []
 

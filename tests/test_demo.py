@@ -22,9 +22,9 @@ def test_station_demo_accounts_for_every_file(tmp_path: Path) -> None:
         timeout=900,
     )
     assert out.returncode == 0, out.stdout[-3000:] + out.stderr[-3000:]
-    assert "every file accounted for: 24 of 24" in out.stdout
+    assert "every file accounted for: 32 of 32" in out.stdout
     root = tmp_path / "demo"
-    assert len(list((root / "certificates").rglob("*.pdf"))) == 22
+    assert len(list((root / "certificates").rglob("*.pdf"))) == 30
     assert len(list((root / "quarantine").glob("*.reason.txt"))) == 1
     assert list((root / "mail").glob("*.eml"))
 
@@ -40,5 +40,5 @@ def test_batch_demo_gives_every_invented_defect_a_fail_and_every_normal_cell_a_p
         timeout=900,
     )
     assert out.returncode == 0, out.stdout[-3000:] + out.stderr[-3000:]
-    assert "22 file(s): 13 pass, 8 fail, 1 hold, 0 error" in out.stdout
+    assert "30 file(s): 18 pass, 11 fail, 1 hold, 0 error" in out.stdout
     assert "unexpected" not in out.stdout

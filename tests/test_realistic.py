@@ -32,13 +32,14 @@ from pipeline.shipped import RULES_DIR
 
 RULEBOOK = load_rules_dir(RULES_DIR)
 ANALYSED_AT = datetime.datetime(2026, 3, 4, 8, 0, tzinfo=datetime.UTC)
-CELLS = demo.DEMO_CELLS + demo.DEMO_NMC_CELLS
+CELLS = demo.ALL_DEMO_CELLS
 BY_ID = {c.cell_id: c for c in CELLS}
 
 # What each invented defect must give under the shipped rules.
 EXPECTED_HAZARDS = {
     "internal_short": (Hazard.INTERNAL_SHORT,),
     "over_temperature": (Hazard.OVER_TEMPERATURE,),
+    "sodium_plating": (Hazard.SODIUM_PLATING,),
 }
 
 
@@ -165,7 +166,9 @@ def test_noise_at_rest_never_makes_a_step_or_a_cycle() -> None:
 
 @settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
-    which=st.sampled_from([demo.DEMO_CELLS[0], demo.DEMO_NMC_CELLS[0], demo.DEMO_CELLS[9]]),
+    which=st.sampled_from(
+        [demo.DEMO_CELLS[0], demo.DEMO_NMC_CELLS[0], demo.DEMO_NA_CELLS[0], demo.DEMO_CELLS[9]]
+    ),
     share=st.floats(min_value=0.0, max_value=0.985),
     steps=st.booleans(),
 )

@@ -326,7 +326,14 @@ def test_demo_lot_description() -> None:
     assert {c.lot for c in demo.DEMO_CELLS} == {"DEMO-LOT-01"}
     assert sorted(c.defect for c in demo.DEMO_CELLS if c.defect) == sorted(demo.DEFECTS + demo.REVIEW_CASES)
     assert sum(1 for c in demo.DEMO_CELLS if not c.defect) == 8
-    assert len({c.cell_id for c in demo.DEMO_CELLS + demo.DEMO_NMC_CELLS}) == 22
+    assert {c.cell_type for c in demo.DEMO_NA_CELLS} == {"DEMO-NA-10A"}
+    assert {c.lot for c in demo.DEMO_NA_CELLS} == {"DEMO-LOT-03"}
+    assert all(c.cell_id.startswith("NA3-") for c in demo.DEMO_NA_CELLS)
+    assert sorted(c.defect for c in demo.DEMO_NA_CELLS if c.defect) == sorted(demo.SODIUM_DEFECTS)
+    assert sum(1 for c in demo.DEMO_NA_CELLS if not c.defect) == 5
+    assert demo.ALL_DEMO_CELLS == demo.DEMO_CELLS + demo.DEMO_NMC_CELLS + demo.DEMO_NA_CELLS
+    assert len({c.cell_id for c in demo.ALL_DEMO_CELLS}) == 30
+    assert len({c.file_name for c in demo.ALL_DEMO_CELLS}) == 30
 
 
 def test_normal_cells_spread_as_a_lot(lot: dict[str, SimulatedRecord]) -> None:
@@ -404,6 +411,50 @@ def test_over_temperature_cell(lot: dict[str, SimulatedRecord]) -> None:
     charging = record.current_a > 0
     assert float(record.temperature_c[charging].max()) >= 60.0
     assert float(record.temperature_c[~charging][-1]) < 30.0  # it cools at the final rest
+
+
+@pytest.fixture(scope="module")
+def sodium_lot() -> dict[str, SimulatedRecord]:
+    """The sodium-ion demo lot as the model makes it, before the channel's measurement errors."""
+    records = {}
+    for cell in demo.DEMO_NA_CELLS:
+        rng = demo._seed_for(cell, 2026)
+        recipe = dataclasses.replace(demo.demo_recipe(cell, rng), **NO_NOISE)
+        records[cell.cell_id] = synth.simulate_formation(recipe, rng)
+    return records
+
+
+def sodium_cell(defect: str) -> demo.DemoCell:
+    return next(c for c in demo.DEMO_NA_CELLS if c.defect == defect)
+
+
+def test_normal_sodium_cells(sodium_lot: dict[str, SimulatedRecord]) -> None:
+    normal = [sodium_lot[c.cell_id] for c in demo.DEMO_NA_CELLS if not c.defect]
+    caps = np.array([coulombs_ah(r, r.step_named(synth.GRADING_STEP)) for r in normal])
+    assert np.all((caps > 10.0) & (caps < 10.0 * 1.04))  # about 2 % above nominal, +-1 %
+    for r in normal:
+        charge = sum(coulombs_ah(r, r.step_named(n)) for n in (2, 4, 5))
+        # 80-90 % first-cycle efficiency of hard carbon in sodium-ion cells (from memory, medium)
+        assert 0.80 < coulombs_ah(r, r.step_named(7)) / charge < 0.90
+        assert final_rest_drift_mv_per_h(r) > -0.3
+        # The upper NVPF step on the hard-carbon plateau: flat over about 43 % of the
+        # discharge at 6 mV per % (derived, Chayambuka et al. 2022 tables).
+        assert 38.0 < longest_flat_pct(r, 6.0) < 48.0
+
+
+def test_sodium_plating_cell_returns_less_of_its_charge(sodium_lot: dict[str, SimulatedRecord]) -> None:
+    record = sodium_lot[sodium_cell("sodium_plating").cell_id]
+    charge = sum(coulombs_ah(record, record.step_named(n)) for n in (9, 10))
+    grading = coulombs_ah(record, record.step_named(synth.GRADING_STEP))
+    assert grading / charge == pytest.approx(1.0 - demo.PLATING_SIDE_FRACTION, abs=0.003)
+    assert grading / charge < 0.95  # below the sodium rule set's reject limit
+
+
+def test_sodium_short_and_high_dcir_cells(sodium_lot: dict[str, SimulatedRecord]) -> None:
+    drift = final_rest_drift_mv_per_h(sodium_lot[sodium_cell("internal_short").cell_id])
+    assert -5.0 < drift < -2.0
+    normal = np.median([dcir_ohm(sodium_lot[c.cell_id]) for c in demo.DEMO_NA_CELLS if not c.defect])
+    assert dcir_ohm(sodium_lot[sodium_cell("high_dcir").cell_id]) > 2.0 * normal
 
 
 def test_write_demo_lot(tmp_path: pathlib.Path) -> None:
