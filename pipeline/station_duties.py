@@ -26,7 +26,7 @@ from pipeline.mail import DigestRow, digest_letter
 from pipeline.rulebook import RuleBook
 from pipeline.settings import InboxSettings
 from pipeline.station_guard import Guarded
-from pipeline.taken import Original, give_back, originals, same_bytes
+from pipeline.taken import HOLD_SETTLES, Original, give_back, originals, same_bytes, tidy
 from pipeline.troubles import describe
 from pipeline.waiting import overdue_entries
 from pipeline.watcher import Listing
@@ -162,8 +162,8 @@ class Duties(Guarded):
         """Watch the writers' originals that settle mode keeps aside (taken.py).
 
         One that changed goes back into its inbox, to be taken as a new version, with one
-        alert; one unchanged for waiting_alert_s and equal to its copy is removed. A fault
-        here is logged and tried again at the next review: it never pauses the station.
+        alert; one unchanged for HOLD_SETTLES times settle_s and equal to its copy is removed.
+        A fault here is logged and tried again at the next review: it never pauses the station.
         """
         now_ns = time.time_ns()
         inboxes = {i.name: i for i in self.settings.inboxes}
@@ -190,11 +190,13 @@ class Duties(Guarded):
                         self.changed_after_taken(original, inbox)
                         continue
                     self.originals_checked[original.path] = stat
-                if quiet_s >= self.settings.waiting_alert_s:
+                if quiet_s >= HOLD_SETTLES * inbox.settle_s:
                     original.path.unlink()  # the archive holds the same bytes
                     self.originals_checked.pop(original.path, None)
             except OSError as exc:
                 log.warning("%s: cannot be checked now (%s)", original.path, describe(exc))
+        if found:
+            tidy(self.settings.work)
 
     def changed_after_taken(self, original: Original, inbox: InboxSettings) -> None:
         back = give_back(original, inbox.folder)

@@ -11,9 +11,9 @@ while it is copied, flushed to disk) and moves the writer's original aside, into
 ``work/.taken/<inbox>/<sha256>_<name>``. The copy is judged and archived as usual.
 The original is watched: if it changes (the writer came back), it is moved back into
 its inbox, where it is taken again as a new version of the file, and one alert says
-"file changed after it was taken". Once it has stayed unchanged for
-``waiting_alert_s`` and still matches the copy byte for byte, it is removed: the
-archive holds the same bytes.
+"file changed after it was taken". Once it has stayed unchanged for ``HOLD_SETTLES``
+times ``settle_s`` and still matches the copy byte for byte, it is removed (the
+archive holds the same bytes), and so are the folders it leaves empty.
 
 Rename and marker hand-overs need none of this: there the writer says the file is
 complete. docs/station.md recommends them for that reason.
@@ -21,6 +21,7 @@ complete. docs/station.md recommends them for that reason.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import logging
 import os
@@ -37,6 +38,10 @@ from pipeline.writing import fsync_dir, move_into
 log = logging.getLogger("formgate.station")
 
 TAKEN = ".taken"
+# How long an original is watched, in quiet periods: a writer back within four times the
+# pause that made its file look finished is caught; one that pauses longer than that is
+# not, which is why docs/station.md recommends rename or marker hand-over.
+HOLD_SETTLES = 4.0
 BLOCK_BYTES = 1 << 20
 NAME_RESERVE_BYTES = 32
 
@@ -150,3 +155,14 @@ def give_back(original: Original, inbox_folder: Path) -> Path | None:
     os.rename(original.path, target)
     fsync_dir(inbox_folder)
     return target
+
+
+def tidy(work: Path) -> None:
+    """Remove the folders of work/.taken that hold nothing any more."""
+    top = work / TAKEN
+    with contextlib.suppress(OSError):
+        for folder in top.iterdir():
+            with contextlib.suppress(OSError):
+                folder.rmdir()  # only if empty
+        top.rmdir()
+

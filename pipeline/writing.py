@@ -61,8 +61,8 @@ def write_atomic(
         os.replace(tmp, path)
     except BaseException as exc:
         Path(tmp).unlink(missing_ok=True)
-        if isinstance(exc, OSError) and exc.filename is None:
-            exc.filename = str(path)  # a failed write names no file by itself
+        if isinstance(exc, OSError) and exc.errno is not None and exc.filename is None:
+            exc.filename = str(path)  # a failed write (ENOSPC, EIO) names no file by itself
         raise
     if sync:
         fsync_dir(path.parent)
