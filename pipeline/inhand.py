@@ -9,8 +9,9 @@ quarantines that input as "crashed the judge" before anything else, so a restart
 never meets it a third time. (A death inside a worker process is the pool's
 business: judges.py.)
 
-The file is written without fsync: after a power cut it may be missing or stale,
-which costs at most one more try of one input.
+The file is kept open and rewritten in place, without fsync (two system calls per
+input): after a power cut it may be empty or stale, which costs at most one more try
+of one input. An empty file means nothing was in hand.
 """
 
 from __future__ import annotations
@@ -18,12 +19,12 @@ from __future__ import annotations
 import contextlib
 import json
 import logging
+import os
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.troubles import is_environmental
-from pipeline.writing import write_atomic
 
 log = logging.getLogger("formgate.station")
 
@@ -63,11 +64,20 @@ class InHand:
     def __init__(self, path: Path) -> None:
         self.path = path
         self.deaths: dict[str, int] = {}
+        self._fd: int | None = None
+
+    def close(self) -> None:
+        if self._fd is not None:
+            os.close(self._fd)
+            self._fd = None
 
     def found_at_start(self) -> Death | None:
         """The input in hand when the last station process died (one more death), or None."""
         try:
-            data = json.loads(self.path.read_text(encoding="utf-8"))
+            text = self.path.read_text(encoding="utf-8")
+            if not text:
+                return None
+            data = json.loads(text)
             death = Death(str(data["key"]), str(data["what"]), int(data["deaths"]) + 1)
         except FileNotFoundError:
             return None
@@ -83,22 +93,24 @@ class InHand:
 
     def done_with(self, key: str) -> None:
         self.deaths.pop(key, None)
-        with contextlib.suppress(FileNotFoundError):
-            self.path.unlink()
+        self._write(b"")
+
+    def _write(self, data: bytes) -> None:
+        if self._fd is None:
+            self._fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        os.ftruncate(self._fd, 0)
+        if data:
+            os.pwrite(self._fd, data, 0)
 
     @contextlib.contextmanager
     def holding(self, key: str, what: str) -> Iterator[None]:
         """Mark ``key`` in hand while the block runs; a bug leaves the mark for the next start."""
         data = {"key": key, "what": what, "deaths": self.deaths.get(key, 0)}
-        write_atomic(json.dumps(data).encode(), self.path, sync=False)
+        self._write(json.dumps(data).encode())
         try:
             yield
         except BaseException as exc:
             if isinstance(exc, Exception) and is_environmental(exc):
-                self._remove()  # the surroundings failed, not this input: no death counted
+                self._write(b"")  # the surroundings failed, not this input: no death counted
             raise
-        self._remove()
-
-    def _remove(self) -> None:
-        with contextlib.suppress(FileNotFoundError):
-            self.path.unlink()
+        self._write(b"")

@@ -184,6 +184,7 @@ class Station(RulesKeeper, Duties):
                 w.stop()
             mail.stop()
             self.judges.shutdown()
+            self.inhand.close()
             self.ledger.close()
         return 0
 
