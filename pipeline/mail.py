@@ -24,7 +24,7 @@ from email.message import EmailMessage
 from typing import Literal
 
 from pipeline.errors import FormgateError
-from pipeline.evaluate import format_number, format_window
+from pipeline.evaluate import decision_line, format_number, format_window
 from pipeline.hazards import CAUTIONS, DATA_CHECK_NOTICE, GENERAL_CAUTION, HANDLING
 from pipeline.metricdefs import BY_NAME
 from pipeline.model import CellResult, CheckResult, Hazard, Outcome, SourceRef, VerdictKind
@@ -250,7 +250,9 @@ def _identity(result: CellResult, station: str, verdict_line: str) -> str:
         ("Station", station),
         ("Verdict", verdict_line),
     ]
-    return _fields(rows, 11)
+    # what decided it, on the first lines a reader sees, wrapped like the other paragraphs
+    deciding = _paragraph("Deciding: " + decision_line(result.verdict, result.notes))
+    return _fields(rows, 11) + "\n\n" + deciding
 
 
 def _cell_key(result: CellResult) -> str:
@@ -282,7 +284,10 @@ def failure_letter(
         raise ValueError(f"failure_letter needs a failed cell, got {result.verdict.kind.value}")
     cell, lot = _subject_ids(result)
     hazards = result.verdict.hazards
-    words = "; ".join(CAUTIONS[h].title.lower() for h in hazards) or "rejected, no hazard named"
+    # the deciding check first (what failed, by how much), then the hazards to beware of
+    words = decision_line(result.verdict, result.notes)
+    if hazards:
+        words += " [" + "; ".join(CAUTIONS[h].title.lower() for h in hazards) + "]"
     head = [
         _identity(result, station, "FAIL. Do not release this cell; handle it with care."),
         _paragraph(
@@ -338,7 +343,7 @@ def hold_letter(
         recipients=tuple(recipients),
         subject=sanitize_header(
             f"formgate: HOLD cell {cell}, lot {lot} \N{EM DASH} "
-            "must not be released until reviewed",
+            f"{decision_line(result.verdict, result.notes)}",
             300,
         ),
         body_text=_clean_text(body),

@@ -133,11 +133,20 @@ def reparse(message: EmailMessage) -> EmailMessage:
     )
 
 
-def test_failure_subject_names_cell_lot_and_hazards(tmp_path: Path) -> None:
+def test_failure_subject_names_cell_lot_the_deciding_checks_and_hazards(tmp_path: Path) -> None:
     letter = failure_letter(make_result(), str(tmp_path / "DEMO-0007.pdf"), TO, station="line-1")
     assert letter.subject == (
         "formgate: FAIL cell DEMO-0007, lot DEMO-LOT-01 \N{EM DASH} "
-        "possible internal short circuit; over-temperature during formation"
+        "rest_voltage_drift_mV_per_h -4.2 mV/h < -1 mV/h (reject); "
+        "max_temperature_C 58.5 °C > 45 °C (reject) "
+        "[possible internal short circuit; over-temperature during formation]"
+    )
+    # and the body's first lines say it too
+    assert flat(letter.body_text).startswith(
+        "Cell: DEMO-0007 Lot: DEMO-LOT-01 Cell type: DEMO-LFP-20A Station: line-1 "
+        "Verdict: FAIL. Do not release this cell; handle it with care. "
+        "Deciding: rest_voltage_drift_mV_per_h -4.2 mV/h < -1 mV/h (reject); "
+        "max_temperature_C 58.5 °C > 45 °C (reject)"
     )
     assert letter.kind == "failure"
     assert letter.recipients == TO
@@ -181,7 +190,7 @@ def test_handling_of_a_hazardous_cell_is_said_once_however_many_hazards(tmp_path
 
 def test_failure_without_a_hazard_still_carries_the_general_caution(tmp_path: Path) -> None:
     letter = failure_letter(make_result(hazards=()), str(tmp_path / "c.pdf"), TO, station="s")
-    assert letter.subject.endswith("\N{EM DASH} rejected, no hazard named")
+    assert letter.subject.endswith("max_temperature_C 58.5 °C > 45 °C (reject)")
     assert flat(GENERAL_CAUTION) in flat(letter.body_text)
     assert "CAUTION:" not in letter.body_text
 
@@ -208,7 +217,8 @@ def test_hold_letter_says_not_released_until_reviewed(tmp_path: Path) -> None:
     letter = hold_letter(result, str(tmp_path / "DEMO-0007.pdf"), TO, station="line-1")
     assert letter.subject == (
         "formgate: HOLD cell DEMO-0007, lot DEMO-LOT-01 \N{EM DASH} "
-        "must not be released until reviewed"
+        "rest_voltage_drift_mV_per_h -4.2 mV/h < -1 mV/h (review); "
+        "max_temperature_C 58.5 °C > 45 °C (review)"
     )
     body = flat(letter.body_text)
     assert "Verdict: HOLD. This cell must not be released until reviewed." in body
