@@ -71,12 +71,29 @@ class Letter:
 
 @dataclass(frozen=True, slots=True)
 class DigestRow:
-    """One cell in a lot digest: its id, verdict word (``pass``...), capacity and certificate."""
+    """One cell in a lot digest: its id, verdict word (``pass``...), capacity and certificate.
+
+    ``reason`` is the deciding line of a fail or hold (empty for a pass);
+    ``certificate_path`` is a path or a link, as the station builds it.
+    """
 
     cell_id: str
     verdict: str
     grading_capacity_ah: float | None
     certificate_path: str
+    reason: str = ""
+
+
+# Closing words of a digest: what it is, and where the decisions stand (common practice).
+DIGEST_NOTE = (
+    "This digest lists the decisions formgate recorded for the lot: each cell's verdict with "
+    "the check that decided a fail or a hold. Failed and held cells also get a mail of their "
+    "own, with their cautions. The certificates and the station's ledger are the record; "
+    "the verdicts are a check of cycler data against the rule set's windows, not a safety "
+    "assessment."
+)
+# The order a digest lists verdicts in: what needs action first.
+_DIGEST_ORDER = {"fail": 0, "hold": 1, "error": 2, "pass": 3}
 
 
 def sanitize_header(value: str, max_len: int = 200) -> str:
@@ -353,6 +370,7 @@ def hold_letter(
 
 
 def _table(rows: Sequence[DigestRow]) -> str:
+    """Cell, verdict, capacity and certificate in columns; a fail's or hold's reason below it."""
     header = ("cell", "verdict", "grading capacity (Ah)", "certificate")
     cells = [
         (
@@ -371,7 +389,21 @@ def _table(rows: Sequence[DigestRow]) -> str:
         ).rstrip()
 
     rule = "  ".join("-" * w for w in widths) + "  " + "-" * len(header[3])
-    return "\n".join([render(header), rule, *(render(c) for c in cells)])
+    lines = [render(header), rule]
+    for row, cell in zip(rows, cells, strict=True):
+        lines.append(render(cell))
+        if row.reason:
+            lines.append(
+                textwrap.fill(
+                    _line(row.reason),
+                    WIDTH,
+                    initial_indent="    ",
+                    subsequent_indent="    ",
+                    break_long_words=False,
+                    break_on_hyphens=False,
+                )
+            )
+    return "\n".join(lines)
 
 
 def digest_letter(
@@ -383,18 +415,24 @@ def digest_letter(
     digest_no: int,
     domain: str | None = None,
 ) -> Letter:
-    """One mail listing cells of ``lot`` (normally the passed ones) in a plain-text table.
+    """One mail listing the cells of ``lot`` with verdict and reason: fails, then holds, then passes.
 
-    ``digest_no`` counts the digests of this lot (1, 2, ...) and is part of the
-    Message-ID key, so each digest is its own mail and a resend of one keeps its id.
+    The head gives the counts by verdict and the yield (passed / listed). ``digest_no``
+    counts the digests of this lot (1, 2, ...) and is part of the Message-ID key, so each
+    digest is its own mail and a resend of one keeps its id.
     """
     if not rows:
         raise ValueError("a digest needs at least one cell")
+    ordered = sorted(
+        rows, key=lambda r: (_DIGEST_ORDER.get(r.verdict, len(_DIGEST_ORDER)), r.cell_id)
+    )
     counts: dict[str, int] = {}
-    for row in rows:
+    for row in ordered:
         word = sanitize_header(row.verdict, 12)
         counts[word] = counts.get(word, 0) + 1
     tally = ", ".join(f"{n} {word}" for word, n in counts.items())
+    passed = counts.get("pass", 0)
+    yield_text = f"{100.0 * passed / len(rows):.1f} % ({passed} of {len(rows)} passed)"
     shown_lot = sanitize_header(lot, ID_LEN) or "(no lot)"
     plural = "cell" if len(rows) == 1 else "cells"
     body = (
@@ -406,11 +444,12 @@ def digest_letter(
                         ("Digest", str(digest_no)),
                         ("Station", station),
                         ("Cells", f"{len(rows)} ({tally})"),
+                        ("Yield", yield_text),
                     ],
                     11,
                 ),
-                _table(rows),
-                _paragraph(DATA_CHECK_NOTICE),
+                _table(ordered),
+                _paragraph(DIGEST_NOTE),
             ]
         )
         + "\n"
@@ -421,7 +460,7 @@ def digest_letter(
         recipients=tuple(recipients),
         subject=sanitize_header(
             f"formgate: lot {shown_lot}, digest {digest_no} \N{EM DASH} "
-            f"{len(rows)} {plural}: {tally}",
+            f"{len(rows)} {plural}: {tally}; yield {100.0 * passed / len(rows):.1f} %",
             300,
         ),
         body_text=_clean_text(body),

@@ -19,6 +19,7 @@ from pypdf import PdfWriter
 
 from pipeline.hazards import CAUTIONS, DATA_CHECK_NOTICE, GENERAL_CAUTION, HANDLING
 from pipeline.mail import (
+    DIGEST_NOTE,
     DigestRow,
     Letter,
     MailError,
@@ -413,26 +414,48 @@ def test_digest_is_one_plain_text_table() -> None:
         DigestRow("DEMO-0003\x1b", "pass", None, "certificates/DEMO-LOT-01/DEMO-0003.pdf"),
     ]
     letter = digest_letter("DEMO-LOT-01", rows, TO, station="line-1", digest_no=3)
-    assert letter.subject == "formgate: lot DEMO-LOT-01, digest 3 \N{EM DASH} 3 cells: 3 pass"
+    assert letter.subject == (
+        "formgate: lot DEMO-LOT-01, digest 3 \N{EM DASH} 3 cells: 3 pass; yield 100.0 %"
+    )
     assert letter.attachment_path is None
     assert letter.body_text == (
         "Lot:       DEMO-LOT-01\n"
         "Digest:    3\n"
         "Station:   line-1\n"
         "Cells:     3 (3 pass)\n"
+        "Yield:     100.0 % (3 of 3 passed)\n"
         "\n"
         "cell       verdict  grading capacity (Ah)  certificate\n"
         "---------  -------  ---------------------  -----------\n"
         "DEMO-0001  pass                    20.312  certificates/DEMO-LOT-01/DEMO-0001.pdf\n"
         "DEMO-0002  pass                    20.100  certificates/DEMO-LOT-01/DEMO-0002.pdf\n"
         "DEMO-0003  pass                       n/a  certificates/DEMO-LOT-01/DEMO-0003.pdf\n"
-        "\n" + textwrap.fill(DATA_CHECK_NOTICE, 72) + "\n"
+        "\n" + textwrap.fill(DIGEST_NOTE, 72) + "\n"
     )
     again = digest_letter("DEMO-LOT-01", rows[:1], TO, station="line-1", digest_no=3)
     later = digest_letter("DEMO-LOT-01", rows, TO, station="line-1", digest_no=4)
     assert again.message_id == letter.message_id != later.message_id
     with pytest.raises(ValueError, match="at least one cell"):
         digest_letter("DEMO-LOT-01", [], TO, station="line-1", digest_no=5)
+
+
+def test_a_digest_lists_fails_and_holds_first_each_with_its_reason_and_the_yield() -> None:
+    rows = [
+        DigestRow("L-001", "pass", 20.3, "c/L-001.pdf"),
+        DigestRow("L-002", "hold", 20.2, "c/L-002.pdf", "dcir_mOhm not measured"),
+        DigestRow("L-003", "fail", 17.9, "c/L-003.pdf", "grading_capacity_Ah 17.9 Ah < 20 Ah (reject)"),
+        DigestRow("L-004", "pass", 20.4, "c/L-004.pdf"),
+    ]
+    letter = digest_letter("L", rows, TO, station="s", digest_no=1)
+    assert letter.subject == (
+        "formgate: lot L, digest 1 \N{EM DASH} 4 cells: 1 fail, 1 hold, 2 pass; yield 50.0 %"
+    )
+    table = letter.body_text.split("\n\n")[1].splitlines()
+    assert [line.split()[0] for line in table[2:]] == [
+        "L-003", "grading_capacity_Ah", "L-002", "dcir_mOhm", "L-001", "L-004"
+    ]
+    assert "Yield:     50.0 % (2 of 4 passed)" in letter.body_text
+    assert DATA_CHECK_NOTICE not in letter.body_text
 
 
 def test_alert_letter_keeps_lines_and_indents_but_drops_control_characters() -> None:
