@@ -50,7 +50,7 @@ failures_to = ["quality@example.com"]
 holds_to = ["quality@example.com"]
 digests_to = ["production@example.com"]
 alerts_to = ["maintenance@example.com"]
-digest_quiet_s = 8.0
+digest_quiet_s = 20.0
 """
 
 # A file that cannot be judged: a metadata block, then a number with a typo.

@@ -806,6 +806,20 @@ class Ledger:
         )
         return [_result(r) for r in rows]
 
+    def current_cells_of_lot(self, lot: str) -> list[ResultRow]:
+        """Every published, current result of ``lot``, whatever its verdict, by cell id.
+
+        A digest covers the pass cells not yet digested (they get no mail of their own),
+        and lists these: the whole lot as it stands, fails and holds included.
+        """
+        rows = self._conn.execute(
+            "SELECT r.* FROM results r JOIN inputs i ON i.id = r.input_id "
+            f"WHERE r.lot = ? AND r.superseded_by IS NULL AND i.state IN {_PUBLISHED} "
+            "ORDER BY r.cell_id, r.id",
+            (lot,),
+        )
+        return [_result(r) for r in rows]
+
     def mark_digested(self, lot: str, result_ids: Sequence[int], mail_id: int) -> None:
         """Record that digest ``mail_id`` covers ``result_ids``; all or nothing.
 

@@ -10,6 +10,7 @@ import json
 import math
 from typing import Any
 
+from pipeline.evaluate import decision_line
 from pipeline.metricdefs import METRICS
 from pipeline.model import CellResult, CheckResult, CurrentBand, CycleMetrics, Note, Outcome, Plateau
 
@@ -95,6 +96,7 @@ def to_document(result: CellResult) -> dict[str, Any]:
         "verdict": result.verdict.kind.value,
         "hazards": [h.value for h in result.verdict.hazards],
         "reasons": list(result.verdict.reasons),
+        "decision": decision_line(result.verdict, result.notes),
         "metrics": {m.name: _num(result.metrics.values.get(m.name)) for m in METRICS},
         "cycles": [_cycle(c) for c in result.metrics.cycles],
         "plateaus": [_plateau(p) for p in result.metrics.plateaus],
@@ -153,6 +155,7 @@ def schema() -> dict[str, Any]:
             "verdict",
             "hazards",
             "reasons",
+            "decision",
             "metrics",
             "cycles",
             "plateaus",
@@ -222,6 +225,7 @@ def schema() -> dict[str, Any]:
                 },
             },
             "reasons": {"type": "array", "items": {"type": "string"}},
+            "decision": {"type": "string"},
             "metrics": {
                 "type": "object",
                 "additionalProperties": False,

@@ -60,15 +60,19 @@ class Duties(Guarded):
             cells = self.ledger.passed_cells_for_digest(lot)
             if not cells:
                 continue
-            rows = [
-                DigestRow(
-                    c.cell_id,
-                    c.verdict,
-                    json.loads(c.result_json)["metrics"].get("grading_capacity_Ah"),
-                    c.pdf_path or "",
+            # the digest covers the new pass cells and lists the whole lot as it stands
+            rows = []
+            for c in self.ledger.current_cells_of_lot(lot):
+                document = json.loads(c.result_json)
+                rows.append(
+                    DigestRow(
+                        c.cell_id,
+                        c.verdict,
+                        document["metrics"].get("grading_capacity_Ah"),
+                        c.pdf_path or "",
+                        document.get("decision", "") if c.verdict != "pass" else "",
+                    )
                 )
-                for c in cells
-            ]
             letter = digest_letter(
                 lot,
                 rows,
@@ -79,7 +83,9 @@ class Duties(Guarded):
             )
             self.ledger.queue_digest(letter, [c.id for c in cells], now=now)
             self.mail_wake.set()
-            log.info("digest queued for lot %s: %d passed cell(s)", lot, len(cells))
+            log.info(
+                "digest queued for lot %s: %d cell(s), %d newly passed", lot, len(rows), len(cells)
+            )
 
     def write_heartbeat(self, state: str = "running") -> None:
         """Rewrite the heartbeat file; one that cannot be written is a trouble, not a stop."""

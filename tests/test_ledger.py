@@ -621,6 +621,22 @@ def test_a_superseded_pass_is_not_digested(ledger: Ledger) -> None:
     assert [c.id for c in ledger.passed_cells_for_digest(LOT)] == [r2]
 
 
+def test_a_digest_lists_the_whole_lot_as_it_stands(ledger: Ledger) -> None:
+    passed, _ = claim(ledger, "pass", "p.csv")
+    record(ledger, passed.id, cell="DEMO-0002")
+    ledger.mark_published(passed.id)
+    failed, _ = claim(ledger, "fail", "f.csv")
+    record(ledger, failed.id, cell="DEMO-0001", verdict="fail")
+    ledger.mark_published(failed.id)
+    unpublished, _ = claim(ledger, "not yet published", "u.csv")
+    record(ledger, unpublished.id, cell="DEMO-0003")
+    other, _ = claim(ledger, "other lot", "o.csv")
+    record(ledger, other.id, lot="DEMO-LOT-08")
+    ledger.mark_published(other.id)
+    listed = ledger.current_cells_of_lot(LOT)
+    assert [(c.cell_id, c.verdict) for c in listed] == [("DEMO-0001", "fail"), ("DEMO-0002", "pass")]
+
+
 # ---- status ----------------------------------------------------------------------------------
 
 
