@@ -147,8 +147,11 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
         lines.append("")
         lines.append("last cells")
         for r in ledger.recent_results(10):
+            # a fail or hold names what decided it (the result's deciding line)
+            decision = json.loads(r.result_json).get("decision", "") if r.verdict != "pass" else ""
             lines.append(
                 f"  {r.analysed_at.isoformat()}  {r.cell_id}  lot {r.lot}  {r.verdict}"
+                + (f": {decision}" if decision else "")
                 + (f"  hazard: {', '.join(r.hazards)}" if r.hazards else "")
             )
         outbox = ledger.outbox_counts()
