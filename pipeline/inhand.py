@@ -96,11 +96,16 @@ class InHand:
         self._write(b"")
 
     def _write(self, data: bytes) -> None:
-        if self._fd is None:
-            self._fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
-        os.ftruncate(self._fd, 0)
-        if data:
-            os.pwrite(self._fd, data, 0)
+        try:
+            if self._fd is None:
+                self._fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+            os.ftruncate(self._fd, 0)
+            if data:
+                os.pwrite(self._fd, data, 0)
+        except OSError as exc:
+            if exc.filename is None:
+                exc.filename = str(self.path)  # a failed write names no file by itself
+            raise
 
     @contextlib.contextmanager
     def holding(self, key: str, what: str) -> Iterator[None]:

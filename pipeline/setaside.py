@@ -22,7 +22,7 @@ from pipeline.inputnames import fit, to_text
 from pipeline.ledger import Ledger
 from pipeline.mail import Letter, alert_letter
 from pipeline.settings import Settings
-from pipeline.writing import move_into, write_atomic
+from pipeline.writing import move_into, require_folder, write_atomic
 
 log = logging.getLogger("formgate.station")
 
@@ -126,6 +126,7 @@ class SetAside:
         """
         name = to_text(path.name)
         folder = self.settings.quarantine
+        require_folder(folder)
         target = folder / fit(name, reserve_bytes=NAME_RESERVE_BYTES)
         n = 1
         while target.exists() or target.is_symlink():

@@ -61,7 +61,7 @@ from pipeline.taken import UnreadableSource, take_copy
 from pipeline.troubles import Troubles, describe
 from pipeline.watcher import list_entries
 from pipeline.worker import Output, Task
-from pipeline.writing import clean_temp_files, move_into, write_atomic
+from pipeline.writing import clean_temp_files, move_into, require_folder, write_atomic
 
 log = logging.getLogger("formgate.station")
 
@@ -335,6 +335,7 @@ class Station(RulesKeeper, Duties):
                 faults.point("after_claim")
                 self.register(copy.path, text, known=(copy.sha256, copy.size))
                 return
+        require_folder(self.settings.work)
         try:
             target = move_into(
                 source,
@@ -608,6 +609,7 @@ class Station(RulesKeeper, Duties):
                 )
             self.ledger.record_error(row.id, reason, letters, now=self.clock())
         target = self.settings.quarantine / _final_name(row)
+        require_folder(self.settings.quarantine)
         write_atomic(
             _reason_text(row, reason).encode("utf-8"),
             target.with_name(target.name + ".reason.txt"),

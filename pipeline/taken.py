@@ -33,7 +33,7 @@ from typing import BinaryIO
 
 from pipeline.inputnames import fit, from_text
 from pipeline.watcher import list_entries
-from pipeline.writing import fsync_dir, move_into
+from pipeline.writing import fsync_dir, move_into, require_folder
 
 log = logging.getLogger("formgate.station")
 
@@ -79,6 +79,7 @@ def take_copy(fh: BinaryIO, source: Path, work: Path, *, inbox: str, name: str) 
     UnreadableSource when the original cannot be read, OSError for a fault of the
     surroundings.
     """
+    require_folder(work)
     aside = work / TAKEN / inbox
     aside.mkdir(parents=True, exist_ok=True)
     pending = move_into(source, aside, name=fit(PENDING + name, reserve_bytes=NAME_RESERVE_BYTES))

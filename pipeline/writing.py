@@ -68,6 +68,13 @@ def write_atomic(
         fsync_dir(path.parent)
 
 
+def require_folder(folder: Path) -> None:
+    """Raise FileNotFoundError naming ``folder`` unless it is there: a station folder that has
+    gone (a share unmounted) is a fault to pause on, never a folder to make anew on the disk below."""
+    if not folder.is_dir():
+        raise FileNotFoundError(errno.ENOENT, "the station folder is missing", str(folder))
+
+
 def move_into(
     source: Path,
     folder: Path,
