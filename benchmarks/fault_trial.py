@@ -133,7 +133,8 @@ class Dropper:
             data = cycle_file(f"T-{k}", seed=k)
             self.file("250-character name", "archived", "_" + "L" * 241 + ".csv", data)
         elif r < 0.73:
-            self.file("bad content", "quarantined", "_bad.csv", b"# cell_id: B\ntime_s,voltage_V\n0,x\n")
+            bad = f"# cell_id: B-{k}\ntime_s,voltage_V\n0,x\n".encode()  # each its own bytes
+            self.file("bad content", "quarantined", "_bad.csv", bad)
         elif r < 0.76:
             note = b"# note: " + b"x" * 70_000 + b"\n# lot:"
             data = cycle_file(f"T-{k}", seed=k).replace(b"# lot:", note)
