@@ -86,6 +86,7 @@ class InboxSettings:
     folder: Path
     handover: str  # "rename", "marker" or "settle"
     settle_s: float = 30.0
+    cut_wait_factor: float = 10.0
     marker_suffix: str = ".done"
     orphan_marker_s: float = 3600.0
     polling: bool = False
@@ -607,6 +608,7 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
                     folder=folder,
                     handover=str(v["handover"]),
                     settle_s=cast(float, v["settle_s"]),
+                    cut_wait_factor=cast(float, v["cut_wait_factor"]),
                     marker_suffix=str(v.get("marker_suffix", ".done")),
                     orphan_marker_s=cast(float, v["orphan_marker_s"]),
                     polling=v["watch"] == "polling",

@@ -209,6 +209,15 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 "s",
                 30.0,
             ),
+            _positive(
+                "cut_wait_factor",
+                "with handover = settle: a quiet file whose record ends before its program "
+                "does (it ends while current flows, or before the rule set's final_rest_s is "
+                "over) waits this many times settle_s before it is taken; the judge then holds "
+                "it as incomplete, never fails it for what it does not show",
+                "",
+                10.0,
+            ),
             Key(
                 "marker_suffix",
                 TEXT,

@@ -31,6 +31,7 @@ from collections import deque
 from collections.abc import Callable
 from functools import partial
 from pathlib import Path
+from typing import BinaryIO
 
 from pipeline import faults
 from pipeline.errors import FormgateError
@@ -54,6 +55,7 @@ from pipeline.setaside import (
     writable,
 )
 from pipeline.settings import InboxSettings, Settings, choose_profile
+from pipeline.settle_wait import cut_reason
 from pipeline.smtp import SmtpSettings
 from pipeline.station_duties import Duties
 from pipeline.station_rules import RulesKeeper
@@ -106,6 +108,7 @@ class Station(RulesKeeper, Duties):
             memory_limit_bytes=int(settings.worker_memory_MB * MB),
         )
         self.inbox_of: dict[str, str] = {}  # work path -> inbox name, for its import profile
+        self.cut_noted: dict[str, float] = {}  # inbox files said to look cut, and since when
         self.troubles = Troubles(settings.retry_max_s)
         self.blocked: deque[Callable[[], None]] = deque()  # effects to apply once unpaused
         self.unsent: list[Letter] = []  # alerts the ledger could not take yet
@@ -297,6 +300,32 @@ class Station(RulesKeeper, Duties):
 
         self.handle(path_key(path), "setting aside", effect, retry=False)
 
+    def record_waits(self, inbox: InboxSettings, name: str, fh: BinaryIO, seen: Seen) -> bool:
+        """True while a settled file whose record looks cut short still has time to grow.
+
+        A writer that pauses leaves a quiet file ending on a whole line; only its program
+        can tell it is not finished (record_end.py). Such a file waits up to
+        ``cut_wait_factor`` x ``settle_s``, then is taken (and held as incomplete).
+        """
+        if self.rulebook is None:
+            return False
+        text = to_text(name)
+        key = path_key(inbox.folder / name)
+        why = cut_reason(fh, text, self.rulebook, choose_profile(self.settings, inbox, text))
+        if why is None:
+            self.cut_noted.pop(key, None)
+            return False
+        waited_s = time.monotonic() - seen.since_s
+        if waited_s < inbox.settle_s * inbox.cut_wait_factor:
+            if self.cut_noted.get(key) != seen.since_s:  # said once per quiet spell
+                self.cut_noted[key] = seen.since_s
+                log.info("%s: %s; waiting up to %g s for the rest of it", text, why,
+                         inbox.settle_s * inbox.cut_wait_factor)
+            return True
+        self.cut_noted.pop(key, None)
+        log.warning("%s: %s; taken after %.0f s without change", text, why, waited_s)
+        return False
+
     def claim(self, inbox: InboxSettings, name: str) -> None:
         """Move a finished file into work/ (atomic rename) and record it in the ledger."""
         source = inbox.folder / name
@@ -312,6 +341,8 @@ class Station(RulesKeeper, Duties):
                     oversized = stat.st_size > self.settings.max_input_MB * MB
                     if not oversized and not file_looks_complete(fh):
                         return  # quiet but cut short: wait for the writer to finish
+                    if not oversized and self.record_waits(inbox, name, fh, seen):
+                        return  # its record ends before its program does: give it longer
                     if oversized:
                         copy = None
                     else:  # judge a copy of its own; the writer's original is watched

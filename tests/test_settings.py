@@ -183,6 +183,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_settings() -> 
         folder=Path("/srv/share/hall-a"),
         handover="marker",
         settle_s=45.0,
+        cut_wait_factor=4.0,
         marker_suffix=".ready",
         orphan_marker_s=600.0,
         polling=True,
