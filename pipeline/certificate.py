@@ -383,7 +383,8 @@ def build_context(result: CellResult) -> dict[str, object]:
         )
     cell_id = result.cell_id or DASH
     metrics = result.metrics
-    failed = kind is VerdictKind.FAIL
+    # a failed cell, or a held one whose record shows a hazard before it was cut short
+    failed = kind is VerdictKind.FAIL or bool(result.verdict.hazards)
     cautions = [
         {"title": hazards.CAUTIONS[h].title, "text": hazards.CAUTIONS[h].text}
         for h in result.verdict.hazards
@@ -410,6 +411,11 @@ def build_context(result: CellResult) -> dict[str, object]:
         "cautions": cautions,
         "handling": hazards.HANDLING if cautions else "",
         "general_caution": hazards.GENERAL_CAUTION if failed else "",
+        "caution_title": (
+            "Caution: this cell failed and may be hazardous"
+            if kind is VerdictKind.FAIL
+            else "Caution: this cell is held, and its record shows a hazard"
+        ),
         "data_check_notice": hazards.DATA_CHECK_NOTICE,
         "discharge_svg": Markup(plots.discharge_svg(  # numbers only: see plots.py
             metrics.grading_curve, metrics.plateaus,

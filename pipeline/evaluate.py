@@ -3,7 +3,9 @@
 Pure: no I/O. Each rule that applies to the cell type becomes one CheckResult;
 the verdict is fail if a reject check is out of window, else hold if a review
 check is out of window, a check could not be made, or the record is incomplete or
-not the program the rule set describes, else pass. A check that could not be made
+not the program the rule set describes, else pass. A record cut short is held, never
+failed, even where a reject check is out of window on what it shows: the hazards of
+those checks still come with the verdict, so their cautions are shown. A check that could not be made
 is never "in window": it holds the cell, or, where its rule says it may be left
 out, is listed as left out. Loading rules
 is rulebook.py's job; wording cautions is hazards.py's.
@@ -145,7 +147,8 @@ def evaluate(
         if _applies(rule, cell_type)
     )
     out = [c for c in checks if c.outcome is Outcome.OUT_OF_WINDOW]
-    if any(c.severity is Severity.REJECT for c in out):
+    cut = any(n.code == INCOMPLETE for n in all_notes)
+    if any(c.severity is Severity.REJECT for c in out) and not cut:
         kind = VerdictKind.FAIL
     elif out or holding or any(c.outcome is Outcome.NOT_JUDGED for c in checks):
         kind = VerdictKind.HOLD
@@ -179,6 +182,7 @@ def deciding(verdict: Verdict) -> tuple[CheckResult, ...]:
             if c.outcome is Outcome.OUT_OF_WINDOW and c.severity is Severity.REJECT
         )
     if verdict.kind is VerdictKind.HOLD:
+        # a record cut short is held even where a reject check is out of window
         return tuple(
             c for c in verdict.checks if c.outcome in (Outcome.OUT_OF_WINDOW, Outcome.NOT_JUDGED)
         )

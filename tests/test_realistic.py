@@ -295,3 +295,19 @@ def test_current_noise_offset_spikes_or_a_missing_step_column_never_change_a_ver
     assert relative(got["grading_capacity_Ah"], want["grading_capacity_Ah"]) < 0.001
     assert relative(got["dcir_mOhm"], want["dcir_mOhm"]) < 0.05
     assert absolute(got["rest_voltage_drift_mV_per_h"], want["rest_voltage_drift_mV_per_h"]) < 0.3
+
+
+def test_a_record_cut_short_with_a_hazard_in_it_is_held_with_the_hazards_caution() -> None:
+    from pipeline.certificate import build_context
+
+    cell = next(c for c in demo.DEMO_CELLS if c.defect == "over_temperature")
+    record = read_through(cell, "typical")
+    charge = record.step_named(9)  # cut in the grading charge, after the hot formation charge
+    result = judged(record, cell, lines=9 + (charge.start + charge.stop) // 2)
+    verdict = result.verdict
+    assert verdict.kind is VerdictKind.HOLD  # incomplete: held, never failed
+    assert verdict.hazards == (Hazard.OVER_TEMPERATURE,)
+    assert verdict.reasons[0].startswith("Program incomplete: record ends in cycle 2's charge")
+    context = build_context(result)
+    assert context["caution_title"] == "Caution: this cell is held, and its record shows a hazard"
+    assert [c["title"] for c in context["cautions"]] == ["Over-temperature during formation"]
