@@ -35,6 +35,7 @@ from typing import BinaryIO
 
 from pipeline import faults
 from pipeline.errors import FormgateError
+from pipeline.evaluate import decision_line
 from pipeline.handoff import Seen, decide, file_looks_complete, is_temporary
 from pipeline.inhand import DEATHS_TO_QUARANTINE, Death, InHand, input_key, path_key
 from pipeline.inputnames import fit, is_text, to_text
@@ -547,11 +548,14 @@ class Station(RulesKeeper, Duties):
         hazards = (
             f" hazard: {', '.join(h.value for h in r.verdict.hazards)}" if r.verdict.hazards else ""
         )
+        # a fail or hold names what decided it, as its mail and status do
+        decided = "" if r.verdict.passed else f": {decision_line(r.verdict, r.notes)}"
         log.info(
-            "%s lot %s: %s (%.2f s)%s [%s]",
+            "%s lot %s: %s%s (%.2f s)%s [%s]",
             r.cell_id,
             r.lot,
             r.verdict.kind.value,
+            decided,
             output.seconds,
             hazards,
             row.name,
