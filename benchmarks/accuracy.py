@@ -22,9 +22,10 @@ import sys
 
 import numpy as np
 
-from pipeline import demo, synth
+from pipeline.demo import lots as demo
+from pipeline.demo import synth
 from pipeline.model import CellResult
-from pipeline.rulebook import load_rules_dir
+from pipeline.rulebook.book import load_rules_dir
 from pipeline.runner import judge
 from pipeline.shipped import RULES_DIR
 

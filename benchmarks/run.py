@@ -111,7 +111,8 @@ def make_records(mode: Mode) -> tuple[list[Record], list[Record]]:
 
     import numpy as np
 
-    from pipeline import demo, synth
+    from pipeline.demo import lots as demo
+    from pipeline.demo import synth
 
     # A shorter formation program than the demo's, so that 1 Hz sampling gives about
     # 72,000 rows; every rate stays inside the ranges of synth.FormationProgram's notes.
@@ -250,20 +251,20 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
     import pandas as pd
     import weasyprint
 
-    from pipeline import plots
-    from pipeline.certificate import PLOT_HEIGHT_MM, PLOT_WIDTH_MM, TEMPLATES_DIR, render_html
-    from pipeline.evaluate import evaluate
-    from pipeline.ledger import CheckRowData, Ledger
-    from pipeline.mail import build_message, failure_letter
-    from pipeline.metrics import measure
-    from pipeline.pdf import render_pdf
-    from pipeline.readers.cyclefile import read_cycle_file
-    from pipeline.result import to_json
-    from pipeline.rulebook import load_rules_dir
+    from pipeline.judge.evaluate import evaluate
+    from pipeline.judge.metrics import measure
+    from pipeline.judge.segmentation import split_steps
+    from pipeline.mail.letters import build_message, failure_letter
+    from pipeline.read.cyclefile import read_cycle_file
+    from pipeline.read.validate import drop_invalid_rows, validate_trace
+    from pipeline.report import plots
+    from pipeline.report.certificate import PLOT_HEIGHT_MM, PLOT_WIDTH_MM, TEMPLATES_DIR, render_html
+    from pipeline.report.pdf import render_pdf
+    from pipeline.report.result import to_json
+    from pipeline.rulebook.book import load_rules_dir
     from pipeline.runner import judge
-    from pipeline.segmentation import split_steps
-    from pipeline.validate import drop_invalid_rows, validate_trace
-    from pipeline.worker import Task, run_task
+    from pipeline.station.ledger import CheckRowData, Ledger
+    from pipeline.station.worker import Task, run_task
 
     rulebook = load_rules_dir(REPO / "rules")
     data = passing[0].file_bytes()
@@ -353,11 +354,11 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
         ledger.queue_mail(letter, now=ANALYSED_AT)
 
     # Measure in the state of a station worker: stack imported, stylesheet parsed, start-up
-    # objects frozen out of the garbage collector's scans (pipeline.worker.init_worker).
+    # objects frozen out of the garbage collector's scans (pipeline.station.worker.init_worker).
     import gc
 
-    import pipeline.pdf
-    from pipeline.worker import prepare_process
+    import pipeline.report.pdf
+    from pipeline.station.worker import prepare_process
 
     prepare_process()
 
@@ -436,7 +437,7 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
                 "render pdf": lambda: render_pdf(html),
                 "render failed": lambda: render_pdf(render_html(failed)),
                 "naive split": naive_split,
-                "fast layout": lambda: pipeline.pdf.lay_out(html),
+                "fast layout": lambda: pipeline.report.pdf.lay_out(html),
             },
             mode.repeats,
         )
@@ -514,7 +515,8 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
 def measure_import(mode: Mode) -> Timing:
     """Seconds to import the whole stack in a fresh process, as a worker does at start-up."""
     code = (
-        "import time; t = time.perf_counter(); import pipeline.runner, pipeline.certificate, pipeline.pdf; "
+        "import time; t = time.perf_counter(); "
+        "import pipeline.runner, pipeline.report.certificate, pipeline.report.pdf; "
         "print(time.perf_counter() - t)"
     )
     timing = Timing("import of the stack, fresh process", note="runner + certificate + pdf")
@@ -600,8 +602,8 @@ def _final_count(ledger: Path) -> int:
 
 def run_station(tmp: Path, pool: list[tuple[Path, bool]], n: int, workers: int, certify: str) -> StationRun:
     """Pre-fill an inbox with ``n`` files, start a station, time it until every input is final."""
-    from pipeline.settings import load_settings, smtp_settings
-    from pipeline.station import Station
+    from pipeline.station.settings import load_settings, smtp_settings
+    from pipeline.station.station import Station
 
     root = tmp / f"station-{workers}-{certify}"
     root.mkdir()
@@ -687,12 +689,12 @@ def rss_child(spec_path: str) -> None:
     """Runs in a fresh process: be a worker for many cells, report RSS as it goes (JSON on stdout)."""
     spec = json.loads(Path(spec_path).read_text())
     t0 = time.perf_counter()
-    from pipeline.worker import Task, init_worker, run_task
+    from pipeline.station.worker import Task, init_worker, run_task
 
     init_worker()
 
     import_s = time.perf_counter() - t0
-    from pipeline.rulebook import load_rules_dir
+    from pipeline.rulebook.book import load_rules_dir
 
     rulebook = load_rules_dir(REPO / "rules")
     rss_after_import = _proc_kib(os.getpid(), "VmRSS") / 1024
@@ -940,9 +942,9 @@ def profile(what: str, passing: list[Record]) -> None:
     import cProfile
     import pstats
 
-    from pipeline.certificate import render_html
-    from pipeline.pdf import render_pdf
-    from pipeline.rulebook import load_rules_dir
+    from pipeline.report.certificate import render_html
+    from pipeline.report.pdf import render_pdf
+    from pipeline.rulebook.book import load_rules_dir
     from pipeline.runner import judge
 
     rulebook = load_rules_dir(REPO / "rules")

@@ -12,7 +12,6 @@ import os
 import platform
 import sys
 import tempfile
-import time
 import traceback
 from collections.abc import Mapping, Sequence
 from pathlib import Path
@@ -24,7 +23,7 @@ from pipeline.shipped import RULES_DIR
 
 if TYPE_CHECKING:
     from pipeline.runner import FileOutcome
-    from pipeline.settings import Settings
+    from pipeline.station.settings import Settings
 
 EXIT_OK, EXIT_REJECTED, EXIT_USER, EXIT_BUG, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 
@@ -56,7 +55,7 @@ def _analysis_time(
 
 
 def _reason(outcome: FileOutcome) -> str:
-    from pipeline.evaluate import decision_line
+    from pipeline.judge.evaluate import decision_line
 
     if outcome.error is not None:
         return str(outcome.error).splitlines()[0]
@@ -70,8 +69,8 @@ def _reason(outcome: FileOutcome) -> str:
 
 def cmd_check(args: argparse.Namespace) -> int:
     """Judge cycle files given on the command line."""
-    from pipeline.readers.profile import load_profile
-    from pipeline.rulebook import load_rules_dir
+    from pipeline.read.profile import load_profile
+    from pipeline.rulebook.book import load_rules_dir
     from pipeline.runner import check_file
 
     rulebook = load_rules_dir(Path(args.rules))
@@ -82,7 +81,7 @@ def cmd_check(args: argparse.Namespace) -> int:
     analysed_at = _analysis_time(args.analysed_at, os.environ)
     out = Path(args.out) if args.out else None
     if len(args.files) > 1 and not args.no_pdf:
-        from pipeline.worker import prepare_process
+        from pipeline.station.worker import prepare_process
 
         prepare_process()  # many certificates: pay the start-up once, then render faster
     worst = EXIT_OK
@@ -111,7 +110,7 @@ def cmd_check(args: argparse.Namespace) -> int:
 
 def cmd_rules_check(args: argparse.Namespace) -> int:
     """Validate every rule file in a folder and every import profile in its profiles/."""
-    from pipeline.rulebook import check_profiles_dir, check_rules_dir
+    from pipeline.rulebook.book import check_profiles_dir, check_rules_dir
 
     folder = Path(args.folder)
     problems: list[FormgateError] = list(check_rules_dir(folder))
@@ -137,17 +136,17 @@ def cmd_rules_check(args: argparse.Namespace) -> int:
 def cmd_demo(args: argparse.Namespace) -> int:
     """Run a station on the invented demo lots (or, with --batch, just check them)."""
     if args.batch:
-        from pipeline.demo_check import run_demo
+        from pipeline.demo.batch import run_demo
 
         return run_demo(Path(args.folder or "demo-output"), analysed_at=_analysis_time(None, os.environ))
-    from pipeline.demo_station import run_station_demo
+    from pipeline.demo.station_demo import run_station_demo
 
     return run_station_demo(Path(args.folder) if args.folder else None)
 
 
 def cmd_init(args: argparse.Namespace) -> int:
     """Write a commented station.toml and the folder layout."""
-    from pipeline.settings import init_station
+    from pipeline.station.settings import init_station
 
     folder = Path(args.folder)
     created = init_station(folder, rules_from=RULES_DIR)
@@ -157,30 +156,9 @@ def cmd_init(args: argparse.Namespace) -> int:
 
 
 def _station_settings(folder: str) -> Settings:
-    from pipeline.settings import read_settings
+    from pipeline.station.settings import read_settings
 
     return read_settings(Path(folder))
-
-
-def setup_logging(logs: Path, max_mb: float, keep: int, *, verbose: bool = True) -> None:
-    """One line per event to a rotating log file and to standard error."""
-    import logging
-    import logging.handlers
-
-    logs.mkdir(parents=True, exist_ok=True)
-    fmt = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
-    fmt.converter = time.gmtime
-    handler = logging.handlers.RotatingFileHandler(
-        logs / "formgate.log", maxBytes=int(max_mb * 2**20), backupCount=keep, encoding="utf-8"
-    )
-    handler.setFormatter(fmt)
-    root = logging.getLogger("formgate")
-    root.setLevel(logging.INFO)
-    root.handlers[:] = [handler]
-    if verbose:
-        console = logging.StreamHandler(sys.stderr)
-        console.setFormatter(fmt)
-        root.addHandler(console)
 
 
 def cmd_watch(args: argparse.Namespace) -> int:
@@ -188,12 +166,14 @@ def cmd_watch(args: argparse.Namespace) -> int:
     import signal
     import threading
 
-    from pipeline.settings import check_filesystems, smtp_settings
-    from pipeline.station import Station
+    from pipeline.station.settings import check_filesystems, smtp_settings
+    from pipeline.station.station import Station
 
     settings = _station_settings(args.folder)
     check_filesystems(settings)
     smtp = smtp_settings(settings, os.environ)
+    from pipeline.logs import setup_logging
+
     setup_logging(settings.logs, settings.log_max_MB, settings.log_keep, verbose=not args.quiet)
     stop = threading.Event()
     interrupted = []
@@ -210,7 +190,7 @@ def cmd_watch(args: argparse.Namespace) -> int:
 
 def cmd_status(args: argparse.Namespace) -> int:
     """Print the station's queue, last cells, counts, outbox, errors and health."""
-    from pipeline.status import status_text
+    from pipeline.station.status import status_text
 
     settings = _station_settings(args.folder)
     now = datetime.datetime.now(datetime.UTC)
@@ -220,9 +200,9 @@ def cmd_status(args: argparse.Namespace) -> int:
 
 def cmd_mail_retry(args: argparse.Namespace) -> int:
     """Send every pending mail now (and parked ones with --parked)."""
-    from pipeline.ledger import Ledger
-    from pipeline.mailer import deliver_due
-    from pipeline.settings import smtp_settings
+    from pipeline.station.ledger import Ledger
+    from pipeline.station.mailer import deliver_due
+    from pipeline.station.settings import smtp_settings
 
     settings = _station_settings(args.folder)
     smtp = smtp_settings(settings, os.environ)

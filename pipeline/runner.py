@@ -14,16 +14,16 @@ from pathlib import Path
 
 from pipeline import __version__
 from pipeline.errors import FormgateError, InputError
-from pipeline.evaluate import evaluate
-from pipeline.metrics import measure
+from pipeline.judge.evaluate import evaluate
+from pipeline.judge.metrics import measure
+from pipeline.judge.segmentation import split_steps
 from pipeline.model import CellResult, RuleSetRef, SourceRef, VerdictKind
 from pipeline.names import safe_name
-from pipeline.readers.cyclefile import read_cycle_file
-from pipeline.readers.profile import Profile
-from pipeline.result import to_json
-from pipeline.rulebook import RuleBook
-from pipeline.segmentation import split_steps
-from pipeline.validate import drop_invalid_rows, validate_trace
+from pipeline.read.cyclefile import read_cycle_file
+from pipeline.read.profile import Profile
+from pipeline.read.validate import drop_invalid_rows, validate_trace
+from pipeline.report.result import to_json
+from pipeline.rulebook.book import RuleBook
 from pipeline.writing import write_atomic
 
 
@@ -102,8 +102,8 @@ def publish(result: CellResult, out: Path, *, certificate: bool = True) -> Publi
     write_atomic(to_json(result).encode("utf-8"), json_path)
     if not certificate or result.verdict.kind is VerdictKind.ERROR:
         return Published(json_path, None)
-    from pipeline.certificate import render_html  # imported here: WeasyPrint is slow to import
-    from pipeline.pdf import render_pdf
+    from pipeline.report.certificate import render_html  # imported here: WeasyPrint is slow to import
+    from pipeline.report.pdf import render_pdf
 
     write_atomic(render_pdf(render_html(result)), pdf_path)
     return Published(json_path, pdf_path)

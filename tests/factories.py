@@ -1,6 +1,6 @@
 """Small builders for test traces: a formation program as a list of phases, sampled and noised.
 
-Independent of pipeline.synth on purpose: the segmentation and metrics tests must not
+Independent of pipeline.demo.synth on purpose: the segmentation and metrics tests must not
 share their model of a cell with the demo generator they are meant to check.
 """
 

@@ -21,10 +21,10 @@ from pathlib import Path
 
 from pypdf import PdfReader
 
-from pipeline.handoff import is_temporary
-from pipeline.ledger import Ledger
-from pipeline.settings import Settings, read_settings, smtp_settings
-from pipeline.station import Station
+from pipeline.station.handoff import is_temporary
+from pipeline.station.ledger import Ledger
+from pipeline.station.settings import Settings, read_settings, smtp_settings
+from pipeline.station.station import Station
 from tests.factories import build_trace, simple_formation
 
 REPO = Path(__file__).resolve().parent.parent

@@ -11,8 +11,9 @@ from collections.abc import Iterator
 import jinja2
 import pytest
 
-from pipeline import certificate
-from pipeline.certificate import (
+from pipeline.model import Hazard, Note, Outcome, Severity, SourceRef, Window
+from pipeline.report import certificate
+from pipeline.report.certificate import (
     DASH,
     build_context,
     format_time,
@@ -21,7 +22,6 @@ from pipeline.certificate import (
     render_html,
     significant,
 )
-from pipeline.model import Hazard, Note, Outcome, Severity, SourceRef, Window
 from tests.golden import cases, regenerate
 
 HOSTILE = "<img src=file:///etc/passwd>"
@@ -29,7 +29,7 @@ HOSTILE = "<img src=file:///etc/passwd>"
 
 @pytest.fixture(autouse=True)
 def hazards() -> Iterator[types.ModuleType]:
-    """pipeline.hazards when it exists, else the test stand-in with the same API."""
+    """pipeline.report.hazards when it exists, else the test stand-in with the same API."""
     module = cases.real_hazards() or cases.stand_in_hazards()
     with cases.hazards_in_use(module):
         yield module

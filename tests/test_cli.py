@@ -13,10 +13,10 @@ import pytest
 
 from pipeline import __version__
 from pipeline.cli import EXIT_BUG, _report_bug, main
-from pipeline.demo import DEMO_CELLS, demo_file_bytes, demo_metadata, demo_record
+from pipeline.demo.lots import DEMO_CELLS, demo_file_bytes, demo_metadata, demo_record
+from pipeline.demo.synth import to_cycle_file
 from pipeline.names import safe_name
-from pipeline.result import schema_text
-from pipeline.synth import to_cycle_file
+from pipeline.report.result import schema_text
 from tests.conftest import REPO, RULES_DIR
 
 RULES = str(RULES_DIR)
@@ -173,7 +173,7 @@ def test_check_out_twice_gives_identical_files_that_match_the_schema(
 
     schema_file = REPO / "docs" / "result.schema.json"
     assert schema_file.read_text(encoding="utf-8") == schema_text(), (
-        "run: python -m pipeline.result > docs/result.schema.json"
+        "run: python -m pipeline.report.result > docs/result.schema.json"
     )
     validator = jsonschema.Draft202012Validator(json.loads(schema_text()))
     for name in ("L01-001", "L01-014"):

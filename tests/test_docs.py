@@ -14,8 +14,8 @@ from collections.abc import Iterator
 import pytest
 
 from pipeline.cli import build_parser
-from pipeline.metricdefs import METRICS
-from pipeline.profile_docs import SHIPPED_PROFILES, read_examples, render_profiles_doc
+from pipeline.judge.metricdefs import METRICS
+from pipeline.read.profile_docs import SHIPPED_PROFILES, read_examples, render_profiles_doc
 from tests.conftest import REPO
 
 CLI_DOC = (REPO / "docs" / "cli.md").read_text(encoding="utf-8")
@@ -121,7 +121,7 @@ def test_every_top_level_command_is_in_the_readme() -> None:
 def test_profiles_doc_is_generated() -> None:
     docs = (REPO / "docs" / "profiles.md").read_text(encoding="utf-8")
     expected = render_profiles_doc(read_examples(SHIPPED_PROFILES))
-    assert docs == expected, "run: python -m pipeline.profile_docs > docs/profiles.md"
+    assert docs == expected, "run: python -m pipeline.read.profile_docs > docs/profiles.md"
 
 
 def test_profiles_doc_lists_every_shipped_profile() -> None:
@@ -145,18 +145,18 @@ def test_every_metric_is_in_the_result_schema() -> None:
 # The pure core's docstring examples are run, so that none of them goes stale.
 DOCTESTED = (
     "pipeline.model",
-    "pipeline.rest_band",
-    "pipeline.segmentation",
-    "pipeline.program",
-    "pipeline.metrics",
-    "pipeline.evaluate",
-    "pipeline.plateaus",
-    "pipeline.certificate",
-    "pipeline.result",
-    "pipeline.synth",
-    "pipeline.ocp",
-    "pipeline.savgol",
-    "pipeline.validate",
+    "pipeline.judge.rest_band",
+    "pipeline.judge.segmentation",
+    "pipeline.judge.program",
+    "pipeline.judge.metrics",
+    "pipeline.judge.evaluate",
+    "pipeline.judge.plateaus",
+    "pipeline.report.certificate",
+    "pipeline.report.result",
+    "pipeline.demo.synth",
+    "pipeline.demo.ocp",
+    "pipeline.judge.savgol",
+    "pipeline.read.validate",
 )
 
 

@@ -11,9 +11,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline import hazards
-from pipeline.evaluate import decision_line, evaluate, format_number, format_window, summarise
-from pipeline.metricdefs import METRIC_NAMES
+from pipeline.judge.evaluate import decision_line, evaluate, format_number, format_window, summarise
+from pipeline.judge.metricdefs import METRIC_NAMES
+from pipeline.judge.program import INCOMPLETE
 from pipeline.model import (
     CellMetrics,
     CellType,
@@ -27,8 +27,8 @@ from pipeline.model import (
     VerdictKind,
     Window,
 )
-from pipeline.program import INCOMPLETE
-from pipeline.rulebook import load_rule_set
+from pipeline.report import hazards
+from pipeline.rulebook.book import load_rule_set
 from tests.conftest import DATA_DIR, REPO
 
 CASES = DATA_DIR / "judge_cases"

@@ -9,10 +9,12 @@ import xml.etree.ElementTree as ET
 import numpy as np
 import pytest
 
-from pipeline import demo, evidence, synth
-from pipeline.certificate import build_context
+from pipeline.demo import lots as demo
+from pipeline.demo import synth
 from pipeline.model import Curve, CycleMetrics, RecordView, RestView, StepKind, StepSpan, Window
-from pipeline.rulebook import load_rules_dir
+from pipeline.report import evidence
+from pipeline.report.certificate import build_context
+from pipeline.rulebook.book import load_rules_dir
 from pipeline.runner import judge
 from pipeline.shipped import RULES_DIR
 

@@ -8,7 +8,7 @@ import io
 from hypothesis import given
 from hypothesis import strategies as st
 
-from pipeline.handoff import decide, file_looks_complete, looks_complete
+from pipeline.station.handoff import decide, file_looks_complete, looks_complete
 
 
 def test_rename_mode_claims_final_names_at_once_and_never_temporary_ones() -> None:

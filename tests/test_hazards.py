@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from pipeline import hazards
 from pipeline.model import Hazard
+from pipeline.report import hazards
 
 
 def test_sodium_plating_has_its_own_caution() -> None:

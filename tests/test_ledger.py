@@ -17,7 +17,8 @@ from hypothesis import HealthCheck, settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, precondition, rule
 
-from pipeline.ledger import (
+from pipeline.model import CheckResult, Hazard, Outcome, Severity, SourceRef, Window
+from pipeline.station.ledger import (
     SCHEMA_VERSION,
     CheckRowData,
     InputRow,
@@ -25,8 +26,7 @@ from pipeline.ledger import (
     LedgerError,
     OutgoingMail,
 )
-from pipeline.migrations import MIGRATIONS, applied_migrations, migrate, sql_migration
-from pipeline.model import CheckResult, Hazard, Outcome, Severity, SourceRef, Window
+from pipeline.station.migrations import MIGRATIONS, applied_migrations, migrate, sql_migration
 
 T0 = datetime.datetime(2026, 3, 2, 6, 0, tzinfo=datetime.UTC)
 LOT = "DEMO-LOT-07"

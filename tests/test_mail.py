@@ -17,8 +17,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 from pypdf import PdfWriter
 
-from pipeline.hazards import CAUTIONS, DATA_CHECK_NOTICE, GENERAL_CAUTION, HANDLING
-from pipeline.mail import (
+from pipeline.mail.letters import (
     DIGEST_NOTE,
     DigestRow,
     Letter,
@@ -44,6 +43,7 @@ from pipeline.model import (
     VerdictKind,
     Window,
 )
+from pipeline.report.hazards import CAUTIONS, DATA_CHECK_NOTICE, GENERAL_CAUTION, HANDLING
 
 INPUT_SHA = "a" * 64
 RULES_SHA = "b" * 64

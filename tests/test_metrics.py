@@ -7,10 +7,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline.metricdefs import METRIC_NAMES
-from pipeline.metrics import measure
+from pipeline.judge.metricdefs import METRIC_NAMES
+from pipeline.judge.metrics import measure
+from pipeline.judge.segmentation import split_steps
 from pipeline.model import PlateauSettings, Trace
-from pipeline.segmentation import split_steps
 from tests.factories import build_trace, cc, rest, simple_formation
 
 

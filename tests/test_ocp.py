@@ -14,7 +14,7 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from pipeline import ocp, synth
+from pipeline.demo import ocp, synth
 
 MV = 1e-3
 
@@ -217,7 +217,7 @@ def test_equilibrium_curve_never_rises_with_more_lithium(a: float, e0: float) ->
 # Chayambuka, Mulder, Danilov, Notten, Electrochim. Acta 404 (2022) 139764: open-circuit
 # potentials of the hard-carbon and Na3V2(PO4)2F3 electrodes as tabulated in PyBaMM's
 # Chayambuka2022 parameter set (data/U_n.csv, data/U_p.csv). The points below are typed in
-# from that table, not read from pipeline/ocp.py.
+# from that table, not read from pipeline/demo/ocp.py.
 @pytest.mark.parametrize(
     ("x", "expected_v"),
     [(0.001436794, 1.318963892), (0.060758448, 0.844570264), (0.232688871, 0.317967115),

@@ -13,9 +13,9 @@ import pytest
 from pypdf import PdfReader
 from pypdf.generic import DictionaryObject
 
-from pipeline import pdf
-from pipeline.certificate import TEMPLATES_DIR, render_html
 from pipeline.model import CellResult
+from pipeline.report import pdf
+from pipeline.report.certificate import TEMPLATES_DIR, render_html
 from tests.golden import cases
 
 HOSTILE = "<img src=file:///etc/passwd>"
@@ -62,7 +62,7 @@ def render(result: CellResult) -> Rendered:
 
 @pytest.fixture(scope="module")
 def hazards() -> Iterator[types.ModuleType]:
-    """pipeline.hazards when it exists, else the test stand-in with the same API."""
+    """pipeline.report.hazards when it exists, else the test stand-in with the same API."""
     module = cases.real_hazards() or cases.stand_in_hazards()
     with cases.hazards_in_use(module):
         yield module

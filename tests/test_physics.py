@@ -2,7 +2,7 @@
 
 Each value is recomputed here from first principles (scipy.constants, atomic
 weights, a common-tangent construction written out in the test) and compared
-with published check values and with pipeline.ocp.
+with published check values and with pipeline.demo.ocp.
 """
 
 from __future__ import annotations
@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy import constants, optimize
 
-from pipeline import ocp
+from pipeline.demo import ocp
 
 F = constants.physical_constants["Faraday constant"][0]  # C/mol, exact in the 2019 SI
 R = constants.R  # J/(mol K), CODATA 2018 via scipy.constants

@@ -25,10 +25,10 @@ import functools
 import numpy as np
 import pytest
 
-from pipeline import synth
-from pipeline.evaluate import summarise
+from pipeline.demo import synth
+from pipeline.judge.evaluate import summarise
 from pipeline.model import Hazard, VerdictKind
-from pipeline.rulebook import RuleBook, load_rule_set
+from pipeline.rulebook.book import RuleBook, load_rule_set
 from pipeline.runner import judge
 from pipeline.shipped import RULES_DIR
 from tests.reference.lot import REFERENCE_CELLS, ReferenceRecord, load_cell, load_truth

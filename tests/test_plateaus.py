@@ -11,8 +11,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import constants, optimize, special
 
+from pipeline.judge.plateaus import find_plateaus, resample_uniform
 from pipeline.model import PlateauSettings
-from pipeline.plateaus import find_plateaus, resample_uniform
 
 T_K = 298.15
 RT = constants.R * T_K  # J/mol; scipy.constants (CODATA 2018)
@@ -139,7 +139,7 @@ def test_ideal_solution_has_no_plateau() -> None:
     assert find_plateaus(q, v, 10.0, PlateauSettings(flatness_mv_per_pct=1.0)).plateaus == ()
 
 
-# Published fits, transcribed here independently of pipeline.ocp (Chen et al. 2020, Safari & Delacourt 2011).
+# Published fits, transcribed here independently of pipeline.demo.ocp (Chen et al. 2020, Safari & Delacourt 2011).
 def graphite_chen2020(x: np.ndarray) -> np.ndarray:
     # Chen et al., J. Electrochem. Soc. 167 (2020) 080534
     return (

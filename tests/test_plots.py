@@ -11,8 +11,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline import plots, svgplot
 from pipeline.model import Curve, Plateau
+from pipeline.report import plots, svgplot
 from tests.golden import cases
 
 SVG = "{http://www.w3.org/2000/svg}"

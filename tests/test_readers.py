@@ -17,8 +17,8 @@ from hypothesis import strategies as st
 
 from pipeline.errors import InputError, ProfileError
 from pipeline.model import CellType, Trace
-from pipeline.readers.cyclefile import read_cycle_file
-from pipeline.readers.profile import (
+from pipeline.read.cyclefile import read_cycle_file
+from pipeline.read.profile import (
     DEFAULT_PROFILE,
     PROFILE_KEYS,
     V1_COLUMNS,
@@ -26,7 +26,7 @@ from pipeline.readers.profile import (
     describe_profile_keys,
     load_profile,
 )
-from pipeline.validate import validate_trace
+from pipeline.read.validate import validate_trace
 
 HERE = Path(__file__).resolve().parent
 TRACES = HERE / "data" / "traces"

@@ -1,6 +1,6 @@
 """Judging records as real cycler channels write them: noise and offset at rest, spikes, cuts.
 
-The invented demo lots are simulated by pipeline.synth (published open-circuit fits plus
+The invented demo lots are simulated by pipeline.demo.synth (published open-circuit fits plus
 a resistance and RC model) and read through cycler channels of two accuracy classes:
 current noise of 0.05 % and 0.1 % of the channel's range with a zero offset of 0.01 %
 and 0.02 % of range at rest, 1 mV voltage noise, spikes or ramps at every step change,
@@ -22,11 +22,12 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline import demo, synth
+from pipeline.demo import lots as demo
+from pipeline.demo import synth
 from pipeline.errors import FormgateError
-from pipeline.evaluate import summarise
+from pipeline.judge.evaluate import summarise
 from pipeline.model import CellResult, Hazard, VerdictKind
-from pipeline.rulebook import RuleBook, load_rule_set, load_rules_dir
+from pipeline.rulebook.book import RuleBook, load_rule_set, load_rules_dir
 from pipeline.runner import judge
 from pipeline.shipped import RULES_DIR
 
@@ -298,7 +299,7 @@ def test_current_noise_offset_spikes_or_a_missing_step_column_never_change_a_ver
 
 
 def test_a_record_cut_short_with_a_hazard_in_it_is_held_with_the_hazards_caution() -> None:
-    from pipeline.certificate import build_context
+    from pipeline.report.certificate import build_context
 
     cell = next(c for c in demo.DEMO_CELLS if c.defect == "over_temperature")
     record = read_through(cell, "typical")

@@ -13,12 +13,13 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import demo, synth
-from pipeline.ledger import Ledger
-from pipeline.record_end import HEAD_BYTES, TAIL_BYTES, head_and_tail, looks_cut
-from pipeline.rulebook import load_rules_dir
-from pipeline.settings import Settings
+from pipeline.demo import lots as demo
+from pipeline.demo import synth
+from pipeline.judge.record_end import HEAD_BYTES, TAIL_BYTES, head_and_tail, looks_cut
+from pipeline.rulebook.book import load_rules_dir
 from pipeline.shipped import RULES_DIR
+from pipeline.station.ledger import Ledger
+from pipeline.station.settings import Settings
 from tests.station_kit import RULES, cycle_file, make_station, running, settled, station_toml, wait_until
 
 RULEBOOK = load_rules_dir(RULES_DIR)

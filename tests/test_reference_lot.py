@@ -11,9 +11,9 @@ import math
 import numpy as np
 import pytest
 
-from pipeline import ocp
-from pipeline.readers.cyclefile import read_cycle_file
-from pipeline.synth import FormationProgram
+from pipeline.demo import ocp
+from pipeline.demo.synth import FormationProgram
+from pipeline.read.cyclefile import read_cycle_file
 from tests.reference.lot import (
     FIXTURE_DIR,
     REFERENCE_CELLS,

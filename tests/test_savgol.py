@@ -1,4 +1,4 @@
-"""pipeline.savgol against SciPy's own Savitzky-Golay filter, the reference implementation."""
+"""pipeline.judge.savgol against SciPy's own Savitzky-Golay filter, the reference implementation."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 from scipy.signal import savgol_filter
 
-from pipeline.savgol import savgol
+from pipeline.judge.savgol import savgol
 
 
 @settings(max_examples=200, deadline=None)

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from pipeline.judge.segmentation import group_cycles, sample_weights, split_steps
 from pipeline.model import StepKind, StepMode, Trace
-from pipeline.segmentation import group_cycles, sample_weights, split_steps
 from tests.factories import build_trace, simple_formation
 
 
@@ -148,7 +148,7 @@ def _noisy_rest_and_pulse(rng: np.random.Generator, *, pulse_a: float, pulse_s: 
 def test_band_finds_the_channels_offset_and_noise() -> None:
     from scipy import stats
 
-    from pipeline.rest_band import estimate_band
+    from pipeline.judge.rest_band import estimate_band
 
     rng = np.random.default_rng(11)
     trace = _noisy_rest_and_pulse(rng, pulse_a=20.0, pulse_s=60.0)
@@ -208,8 +208,8 @@ def test_a_noisy_program_rest_is_a_rest_without_a_note_and_a_rest_carrying_curre
 
 
 def test_rows_hovering_at_the_threshold_do_not_chatter() -> None:
+    from pipeline.judge.rest_band import row_kinds
     from pipeline.model import CurrentBand
-    from pipeline.rest_band import row_kinds
 
     band = CurrentBand(0.0, 0.0, 0.1, 0.1, 0)
     i = np.array([0.0, 0.5, 0.09, 0.11, 0.07, 0.02, 0.07, 0.2])

@@ -13,8 +13,8 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from pipeline.mail import build_message, failure_letter
-from pipeline.smtp import SmtpSettings, eml_file_name, next_attempt_delay_s, send, write_eml
+from pipeline.mail.letters import build_message, failure_letter
+from pipeline.mail.smtp import SmtpSettings, eml_file_name, next_attempt_delay_s, send, write_eml
 from tests.smtp_server import CA_FILE, HOST, OTHER_CA_FILE, free_port, silent_server, smtp_server
 from tests.test_mail import SENDER, TO, WHEN, make_pdf, make_result
 

@@ -10,9 +10,9 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.ledger import Ledger
-from pipeline.settings import smtp_settings
-from pipeline.station import Station
+from pipeline.station.ledger import Ledger
+from pipeline.station.settings import smtp_settings
+from pipeline.station.station import Station
 from tests.station_kit import (
     check_invariants,
     cycle_file,
@@ -276,7 +276,7 @@ def test_a_cell_that_takes_too_long_is_stopped_and_quarantined(tmp_path: Path) -
 def test_polling_inbox_and_status_report(tmp_path: Path) -> None:
     import datetime
 
-    from pipeline.status import status_text
+    from pipeline.station.status import status_text
 
     inbox = '[inbox.share]\nfolder = "inbox"\nhandover = "rename"\nwatch = "polling"\npoll_interval_s = 0.3\n'
     s = make_station(tmp_path / "st", station_toml(inboxes=inbox))

@@ -21,9 +21,9 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.ledger import Ledger
-from pipeline.settings import Settings, read_settings
-from pipeline.status import status_text
+from pipeline.station.ledger import Ledger
+from pipeline.station.settings import Settings, read_settings
+from pipeline.station.status import status_text
 from tests.station_kit import (
     cycle_file,
     drop,

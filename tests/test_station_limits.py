@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.ledger import Ledger
+from pipeline.station.ledger import Ledger
 from tests.station_kit import (
     REPO,
     cycle_file,
@@ -74,8 +74,8 @@ def test_files_past_a_limit_or_killing_their_worker_are_quarantined_and_others_a
 
 MEMORY_SCRIPT = """
 import datetime, hashlib, sys
-from pipeline.rulebook import RuleBook, load_rule_set
-from pipeline.worker import Task, init_worker, prepare_process, run_task
+from pipeline.rulebook.book import RuleBook, load_rule_set
+from pipeline.station.worker import Task, init_worker, prepare_process, run_task
 from tests.station_kit import RULES, cycle_file
 
 path = sys.argv[1]

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.ledger import Ledger
+from pipeline.station.ledger import Ledger
 from tests.smtp_server import CERTS, free_port, smtp_server
 from tests.station_kit import (
     REPO,

@@ -22,9 +22,9 @@ from pathlib import Path
 import pytest
 
 from pipeline.inputnames import from_text
-from pipeline.ledger import Ledger
-from pipeline.settings import read_settings
-from pipeline.status import status_text
+from pipeline.station.ledger import Ledger
+from pipeline.station.settings import read_settings
+from pipeline.station.status import status_text
 from tests.station_kit import (
     cycle_file,
     make_station,

@@ -17,17 +17,17 @@ from hypothesis import strategies as st
 
 from pipeline.errors import InputError
 from pipeline.inputnames import fit, from_text, is_text, to_text
-from pipeline.limits import TextLimits, check_text
-from pipeline.settings import InboxSettings
-from pipeline.troubles import Troubles, describe, is_environmental, kind_of
-from pipeline.waiting import overdue_entries
-from pipeline.watcher import Listing, Other
+from pipeline.read.limits import TextLimits, check_text
+from pipeline.station.settings import InboxSettings
+from pipeline.station.troubles import Troubles, describe, is_environmental, kind_of
+from pipeline.station.waiting import overdue_entries
+from pipeline.station.watcher import Listing, Other
 
 T0 = datetime.datetime(2026, 3, 1, 8, 0, tzinfo=datetime.UTC)
 
 
 @pytest.mark.parametrize(
-    "name", ["pipeline.inputnames", "pipeline.limits", "pipeline.handoff", "pipeline.names"]
+    "name", ["pipeline.inputnames", "pipeline.read.limits", "pipeline.station.handoff", "pipeline.names"]
 )
 def test_docstring_examples_hold(name: str) -> None:
     failures, _ = doctest.testmod(importlib.import_module(name), optionflags=doctest.ELLIPSIS)

@@ -10,9 +10,9 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import station, watcher
-from pipeline.faults import POINTS
-from pipeline.ledger import Ledger
+from pipeline.station import station, watcher
+from pipeline.station.faults import POINTS
+from pipeline.station.ledger import Ledger
 from tests.station_kit import (
     check_invariants,
     cycle_file,

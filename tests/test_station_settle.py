@@ -15,7 +15,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.ledger import Ledger
+from pipeline.station.ledger import Ledger
 from tests.station_kit import cycle_file, make_station, running, settled, station_toml, wait_until
 
 pytestmark = pytest.mark.slow

@@ -19,8 +19,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline import demo, ocp, synth
-from pipeline.synth import CellRecipe, SimulatedRecord
+from pipeline.demo import lots as demo
+from pipeline.demo import ocp, synth
+from pipeline.demo.synth import CellRecipe, SimulatedRecord
 
 NO_NOISE = {"channel": synth.NOISELESS}
 
@@ -293,7 +294,7 @@ def test_same_seed_same_text_other_seed_other_text() -> None:
 
 
 def test_cycle_file_reads_back_unchanged() -> None:
-    reader = pytest.importorskip("pipeline.readers.cyclefile")
+    reader = pytest.importorskip("pipeline.read.cyclefile")
     record = simulate()
     trace = reader.read_cycle_file(synth.to_cycle_file(record, METADATA).encode(), "t.csv")
     expected = synth.to_trace(record, METADATA, source="t.csv")

@@ -10,9 +10,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipeline.errors import InputError
-from pipeline.metricdefs import METRIC_NAMES
+from pipeline.judge.metricdefs import METRIC_NAMES
 from pipeline.model import CellType, Note, SourceRef, Trace
-from pipeline.validate import CAPACITY_METRICS, drop_invalid_rows, validate_trace
+from pipeline.read.validate import CAPACITY_METRICS, drop_invalid_rows, validate_trace
 
 # Invented cell type; plausibility bounds as a rule set would give them.
 CELL = CellType("DEMO-LFP-20A", 20.0, -0.1, 4.5)

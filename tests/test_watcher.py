@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.watcher import InboxWatcher, list_folder
+from pipeline.station.watcher import InboxWatcher, list_folder
 
 
 @pytest.mark.parametrize("polling", [False, True])

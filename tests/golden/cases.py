@@ -20,6 +20,7 @@ from typing import NamedTuple
 
 import numpy as np
 
+from pipeline.demo.ocp import lfp_graphite_cell
 from pipeline.model import (
     CellMetrics,
     CellResult,
@@ -38,7 +39,6 @@ from pipeline.model import (
     VerdictKind,
     Window,
 )
-from pipeline.ocp import lfp_graphite_cell
 
 NOMINAL_AH = 20.0
 GRADING_AH = 20.13
@@ -255,7 +255,7 @@ class Caution(NamedTuple):
 
 def stand_in_hazards() -> types.ModuleType:
     """A test-only stand-in with the hazards API (GENERAL_CAUTION, HANDLING, DATA_CHECK_NOTICE, CAUTIONS)."""
-    module = types.ModuleType("pipeline.hazards")
+    module = types.ModuleType("pipeline.report.hazards")
     module.GENERAL_CAUTION = (  # type: ignore[attr-defined]
         "Test general caution: follow the site's procedures, local codes and qualified personnel."
     )
@@ -273,23 +273,23 @@ def stand_in_hazards() -> types.ModuleType:
 
 
 def real_hazards() -> types.ModuleType | None:
-    """pipeline.hazards when it exists, else None."""
+    """pipeline.report.hazards when it exists, else None."""
     try:
-        return importlib.import_module("pipeline.hazards")
+        return importlib.import_module("pipeline.report.hazards")
     except ModuleNotFoundError:
         return None
 
 
 @contextlib.contextmanager
 def hazards_in_use(module: types.ModuleType) -> Iterator[types.ModuleType]:
-    """Make ``import pipeline.hazards`` give ``module`` for the duration, then restore."""
+    """Make ``import pipeline.report.hazards`` give ``module`` for the duration, then restore."""
     missing = object()
-    before = sys.modules.get("pipeline.hazards", missing)
-    sys.modules["pipeline.hazards"] = module
+    before = sys.modules.get("pipeline.report.hazards", missing)
+    sys.modules["pipeline.report.hazards"] = module
     try:
         yield module
     finally:
         if before is missing:
-            del sys.modules["pipeline.hazards"]
+            del sys.modules["pipeline.report.hazards"]
         else:
-            sys.modules["pipeline.hazards"] = before  # type: ignore[assignment]
+            sys.modules["pipeline.report.hazards"] = before  # type: ignore[assignment]

@@ -3,7 +3,7 @@
 Run after an intended change to the template or the formatting, then review the
 diff before committing: ``.venv/bin/python tests/golden/regenerate.py``.
 The snapshots use the test stand-in caution texts, so they pin the certificate's
-layout and formatting, not the wording that pipeline/hazards.py owns.
+layout and formatting, not the wording that pipeline/report/hazards.py owns.
 """
 
 from __future__ import annotations
@@ -15,8 +15,8 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent.parent))
 
-from pipeline.certificate import render_html  # noqa: E402
 from pipeline.model import CellResult  # noqa: E402
+from pipeline.report.certificate import render_html  # noqa: E402
 from tests.golden import cases  # noqa: E402
 
 HEADER = (

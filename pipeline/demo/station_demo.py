@@ -1,0 +1,197 @@
+"""`formgate demo`: a station on a temporary folder, fed by a simulated cycler, drained, summarised.
+
+The simulated cycler hands the invented demo lots over the ways real cyclers do:
+slow writes in chunks (settle inbox), write-then-rename (rename inbox), a marker
+file after the data (marker inbox); it also drops a bad file and a second copy of
+one file. The station runs exactly as `formgate watch` does; the demo stops it
+once every file has reached the archive or quarantine and the outbox is empty.
+Demo only: nothing here is used by the station itself.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+from pipeline.demo.lots import ALL_DEMO_CELLS, DemoCell, demo_file_bytes
+from pipeline.shipped import RULES_DIR
+from pipeline.station.ledger import Ledger
+from pipeline.station.settings import init_station, read_settings, smtp_settings
+from pipeline.station.station import Station
+
+STATION_TOML = """\
+# Demo station written by `formgate demo`: three inboxes, one per way of handing a
+# file over, short waits so the demo runs in a minute or two, mail as .eml files.
+[station]
+name = "demo-line-1"
+workers = 2
+reconcile_s = 2.0
+heartbeat_s = 2.0
+
+[inbox.slow-writers]       # cyclers that just write; finished = unchanged for settle_s
+folder = "inbox"
+handover = "settle"
+settle_s = 2.0
+
+[inbox.renamers]           # cyclers that write NAME.part and rename it when done
+folder = "inbox-rename"
+handover = "rename"
+
+[inbox.markers]            # cyclers that write NAME.done after the data
+folder = "inbox-marker"
+handover = "marker"
+
+[mail]                     # no [smtp] host: every mail is written into mail/ as .eml
+failures_to = ["quality@example.com"]
+holds_to = ["quality@example.com"]
+digests_to = ["production@example.com"]
+alerts_to = ["maintenance@example.com"]
+digest_quiet_s = 20.0
+"""
+
+# A file that cannot be judged: a metadata block, then a number with a typo.
+BAD_FILE = (
+    "# cell_id: L01-099\n# lot: DEMO-LOT-01\n# cell_type: DEMO-LFP-20A\n"
+    "time_s,voltage_V,current_A\n0.0,3.301,0.0\n10.0,3.3O2,0.0\n20.0,3.302,0.0\n"
+)
+
+
+def _write_slowly(path: Path, data: bytes, pieces: int = 3, pause_s: float = 0.4) -> None:
+    """Write in pieces with pauses, as a cycler streaming its file would."""
+    with path.open("wb") as fh:
+        step = max(1, len(data) // pieces)
+        for start in range(0, len(data), step):
+            fh.write(data[start : start + step])
+            fh.flush()
+            time.sleep(pause_s)
+
+
+def simulate_cycler(root: Path, cells: tuple[DemoCell, ...], log: logging.Logger) -> list[str]:
+    """Hand every cell's file over to the station's inboxes; return the names dropped."""
+    dropped: list[str] = []
+    for n, cell in enumerate(cells):
+        data = demo_file_bytes(cell)
+        name = cell.file_name
+        if n % 5 == 1:  # write-then-rename
+            part = root / "inbox-rename" / f"{name}.part"
+            part.write_bytes(data)
+            part.rename(part.with_name(name))
+        elif n % 5 == 3:  # data, then a marker
+            (root / "inbox-marker" / name).write_bytes(data)
+            time.sleep(0.3)
+            (root / "inbox-marker" / f"{name}.done").write_bytes(b"")
+        else:  # slow writer
+            _write_slowly(root / "inbox" / name, data)
+        dropped.append(name)
+        log.info("cycler: handed over %s", name)
+    (root / "inbox" / "DEMO-LOT-01_L01-099.csv").write_text(BAD_FILE, encoding="utf-8")
+    dropped.append("DEMO-LOT-01_L01-099.csv")
+    again = cells[0]  # the same bytes once more, under a new name: a duplicate
+    (root / "inbox-rename" / f"copy-of-{again.file_name}").write_bytes(demo_file_bytes(again))
+    dropped.append(f"copy-of-{again.file_name}")
+    return dropped
+
+
+def _drained(root: Path, ledger_path: Path, expected: int) -> bool:
+    for inbox in ("inbox", "inbox-rename", "inbox-marker", "work"):
+        if any(p for p in (root / inbox).iterdir() if not p.name.endswith(".done")):
+            return False
+    if not ledger_path.exists():
+        return False
+    with Ledger(ledger_path) as ledger:
+        open_rows = ledger.inputs_in_state("claimed", "judged", "published")
+        finals = ledger.inputs_in_state("archived", "quarantined", "duplicate")
+        outbox = ledger.outbox_counts()
+        return (
+            not open_rows
+            and len(finals) >= expected
+            and outbox.get("pending", 0) == 0
+            and not ledger.pending_digest_lots()
+        )
+
+
+def run_station_demo(folder: Path | None = None) -> int:
+    """Run the whole demo; 0 when every file ended where it should."""
+    root = folder or Path(tempfile.mkdtemp(prefix="formgate-demo-"))
+    init_station(root, rules_from=RULES_DIR)
+    (root / "station.toml").write_text(STATION_TOML, encoding="utf-8")
+    for extra in ("inbox-rename", "inbox-marker"):
+        (root / extra).mkdir(exist_ok=True)
+    settings = read_settings(root)
+    smtp = smtp_settings(settings, {})
+    from pipeline.logs import setup_logging
+
+    setup_logging(settings.logs, settings.log_max_MB, settings.log_keep, verbose=True)
+    log = logging.getLogger("formgate.demo")
+    cells = ALL_DEMO_CELLS
+    stop = threading.Event()
+    dropped: list[str] = []
+
+    def feed_and_watch() -> None:
+        dropped.extend(simulate_cycler(root, cells, log))
+        deadline = time.monotonic() + 600
+        while not stop.is_set() and time.monotonic() < deadline:
+            if _drained(root, settings.ledger, len(dropped)):
+                break
+            time.sleep(1.0)
+        stop.set()
+
+    feeder = threading.Thread(target=feed_and_watch, name="demo-cycler")
+    print(
+        f"demo station in {root}; the simulated cycler starts handing over {len(cells) + 2} files"
+    )
+    feeder.start()
+    try:
+        Station(settings, smtp).run(stop)
+    finally:
+        stop.set()
+        feeder.join()
+    return _report(root, len(dropped))
+
+
+def _report(root: Path, expected: int) -> int:
+    archived = sorted(
+        p.name
+        for p in (root / "archive").rglob("*")
+        if p.is_file() and not p.name.endswith(".done")
+    )
+    quarantined = sorted(
+        p.name for p in (root / "quarantine").iterdir() if not p.name.endswith(".reason.txt")
+    )
+    results = sorted((root / "results").rglob("*.json"))
+    pdfs = sorted((root / "certificates").rglob("*.pdf"))
+    mails = sorted((root / "mail").glob("*.eml"))
+    print()
+    print(f"{'cell':<10} {'lot':<12} {'verdict':<8} hazards")
+    for path in results:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+        print(
+            f"{doc['cell']['cell_id']:<10} {doc['cell']['lot']:<12} {doc['verdict']:<8} "
+            f"{', '.join(doc['hazards'])}"
+        )
+    print()
+    print(
+        f"inputs handed over: {expected}; archived: {len(archived)}; quarantined: {len(quarantined)}"
+    )
+    for name in quarantined:
+        reason = (
+            (root / "quarantine" / f"{name}.reason.txt").read_text(encoding="utf-8").splitlines()
+        )
+        print(f"  quarantined {name}: {reason[2] if len(reason) > 2 else ''}")
+    print()
+    print(f"certificates (PDF): {root / 'certificates'}  ({len(pdfs)} files)")
+    print(f"results (JSON):     {root / 'results'}  ({len(results)} files)")
+    print(f"mails (.eml):       {root / 'mail'}  ({len(mails)} files)")
+    print(f"ledger (SQLite):    {root / 'ledger.sqlite'}")
+    print(f"log:                {root / 'logs' / 'formgate.log'}")
+    print(f"status:             formgate status {root}")
+    accounted = len(archived) + len(quarantined)
+    if accounted != expected:
+        print(f"NOT ALL FILES ACCOUNTED FOR: {accounted} of {expected}")
+        return 1
+    print(f"every file accounted for: {accounted} of {expected}")
+    return 0

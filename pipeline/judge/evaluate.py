@@ -1,0 +1,251 @@
+"""Judge one cell: RuleSet x CellType x CellMetrics (+ data-quality notes) -> Verdict.
+
+Pure: no I/O. Each rule that applies to the cell type becomes one CheckResult;
+the verdict is fail if a reject check is out of window, else hold if a review
+check is out of window, a check could not be made, or the record is incomplete or
+not the program the rule set describes, else pass. A record cut short is held, never
+failed, even where a reject check is out of window on what it shows: the hazards of
+those checks still come with the verdict, so their cautions are shown. A check that could not be made
+is never "in window": it holds the cell, or, where its rule says it may be left
+out, is listed as left out. Loading rules
+is rulebook.py's job; wording cautions is hazards.py's.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable
+
+from pipeline.judge.metricdefs import BY_NAME
+from pipeline.judge.program import HOLDING_CODES, INCOMPLETE, MISMATCH
+from pipeline.model import (
+    CellMetrics,
+    CellType,
+    CheckResult,
+    Hazard,
+    Note,
+    Outcome,
+    Rule,
+    RuleSet,
+    Severity,
+    Verdict,
+    VerdictKind,
+    Window,
+)
+
+
+def format_number(value: float) -> str:
+    """Four significant digits, no exponent, no trailing zeros.
+
+    >>> format_number(19.599999999999998), format_number(3.25), format_number(0.91234)
+    ('19.6', '3.25', '0.9123')
+    """
+    if value == 0 or not math.isfinite(value):
+        return "0" if value == 0 else str(value)
+    digits = math.floor(math.log10(abs(value))) + 1
+    text = f"{value:.{max(0, 4 - digits)}f}"
+    return text.rstrip("0").rstrip(".") if "." in text else text
+
+
+def format_window(window: Window, unit: str = "") -> str:
+    """An absolute window in words.
+
+    >>> format_window(Window(19.6, None), "Ah"), format_window(Window(3.15, 3.38), "V")
+    ('at least 19.6 Ah', '3.15 to 3.38 V')
+    """
+    suffix = f" {unit}" if unit else ""
+    if window.low is not None and window.high is not None:
+        return f"{format_number(window.low)} to {format_number(window.high)}{suffix}"
+    if window.low is not None:
+        return f"at least {format_number(window.low)}{suffix}"
+    if window.high is not None:
+        return f"at most {format_number(window.high)}{suffix}"
+    return "any value"
+
+
+def _clean(window: Window) -> Window:
+    """Drop float noise from a resolved window (0.98 x 20 Ah is 19.6 Ah, not 19.599999999999998)."""
+    low, high = window.low, window.high
+    return Window(
+        None if low is None else float(f"{low:.12g}"),
+        None if high is None else float(f"{high:.12g}"),
+    )
+
+
+def _applies(rule: Rule, cell_type: CellType) -> bool:
+    return not rule.cell_types or cell_type.name in rule.cell_types
+
+
+def _check(
+    rule: Rule, cell_type: CellType, metrics: CellMetrics, blockers: dict[str, str]
+) -> CheckResult:
+    window = _clean(rule.window.resolve(cell_type)) if rule.window.relative_to else rule.window
+    value = metrics.values.get(rule.metric)
+    if value is not None and math.isnan(value):
+        value = None
+    unit = BY_NAME[rule.metric].unit if rule.metric in BY_NAME else ""
+    blocked = blockers.get(rule.metric)
+    if blocked is not None or value is None:
+        # a value the notes make untrustworthy is not judged; a missing one was not measured
+        what = "not judged" if value is not None else "not measured"
+        message = f"{rule.metric} {what}" + (f": {blocked}" if blocked else "")
+        if rule.if_missing == "hold":
+            outcome, message = Outcome.NOT_JUDGED, message + "."
+        else:
+            outcome = Outcome.SKIPPED
+            message += " (the rule set lets this check be left out)."
+    elif window.contains(value):
+        outcome, message = Outcome.IN_WINDOW, ""
+    else:
+        outcome = Outcome.OUT_OF_WINDOW
+        measured = f"{rule.metric} = {format_number(value)}{' ' + unit if unit else ''}"
+        window_text = format_window(window, unit)
+        if rule.message:
+            message = f"{rule.message.rstrip('.')} ({measured}; window {window_text})."
+        else:
+            side = "below" if window.low is not None and value < window.low else "above"
+            message = f"{measured} is {side} the window ({window_text})."
+    return CheckResult(
+        rule.id, rule.metric, value, window, outcome, rule.severity, rule.hazard, message
+    )
+
+
+# What a check row says of a program note, whose full text leads the verdict's reasons.
+_PROGRAM_SHORT = {INCOMPLETE: "program incomplete", MISMATCH: "the record is not the program's"}
+
+
+def _blockers(notes: Iterable[Note]) -> dict[str, str]:
+    """Metric name -> what the notes that make it unmeasurable or untrustworthy say."""
+    found: dict[str, list[str]] = {}
+    for note in notes:
+        for metric in note.blocks:
+            text = _PROGRAM_SHORT.get(note.code, note.text.rstrip("."))
+            if text not in found.setdefault(metric, []):
+                found[metric].append(text)
+    return {metric: "; ".join(texts) for metric, texts in found.items()}
+
+
+def evaluate(
+    rule_set: RuleSet, cell_type: CellType, metrics: CellMetrics, notes: tuple[Note, ...] = ()
+) -> Verdict:
+    """Judge one cell against the rules of ``rule_set`` that apply to ``cell_type``.
+
+    ``notes`` are the data-quality notes of reading and segmenting the file; the
+    notes in ``metrics.notes`` count as well. A check whose metric a note blocks,
+    or whose value is None or NaN, is not made: it holds the cell (NOT_JUDGED) or is
+    left out (SKIPPED), as its rule's ``if_missing`` says. A note of the program
+    (incomplete record, another program) holds the cell. ``CheckResult.message`` is
+    empty for a value in window; ``Verdict.reasons`` lists the program notes, then the
+    message of every check out of window or not made and holding, in rule order.
+    """
+    all_notes = (*notes, *metrics.notes)
+    blockers = _blockers(all_notes)
+    holding = list(dict.fromkeys(n.text for n in all_notes if n.code in HOLDING_CODES))
+    checks = tuple(
+        _check(rule, cell_type, metrics, blockers)
+        for rule in rule_set.rules
+        if _applies(rule, cell_type)
+    )
+    out = [c for c in checks if c.outcome is Outcome.OUT_OF_WINDOW]
+    cut = any(n.code == INCOMPLETE for n in all_notes)
+    if any(c.severity is Severity.REJECT for c in out) and not cut:
+        kind = VerdictKind.FAIL
+    elif out or holding or any(c.outcome is Outcome.NOT_JUDGED for c in checks):
+        kind = VerdictKind.HOLD
+    else:
+        kind = VerdictKind.PASS
+    failed_hazards = {c.hazard for c in out if c.severity is Severity.REJECT}
+    hazards = tuple(h for h in Hazard if h in failed_hazards)
+    # the record's own problem first: it explains the checks that could not be made
+    # a check that only the program's note kept from being made adds nothing to that note
+    quiet = {m for m, text in blockers.items() if text in _PROGRAM_SHORT.values()}
+    reasons = tuple(f"{text[0].upper()}{text[1:]}." for text in holding) + tuple(
+        dict.fromkeys(  # two checks on one unmeasured metric give one reason
+            c.message
+            for c in checks
+            if c.outcome is Outcome.OUT_OF_WINDOW
+            or (c.outcome is Outcome.NOT_JUDGED and c.metric not in quiet)
+        )
+    )
+    return Verdict(kind, checks, hazards, reasons)
+
+
+def deciding(verdict: Verdict) -> tuple[CheckResult, ...]:
+    """The checks that decided the verdict, in rule order.
+
+    A fail: its reject checks out of window. A hold: its review checks out of window and
+    its checks not made that hold the cell. A pass: none.
+    """
+    if verdict.kind is VerdictKind.FAIL:
+        return tuple(
+            c for c in verdict.checks
+            if c.outcome is Outcome.OUT_OF_WINDOW and c.severity is Severity.REJECT
+        )
+    if verdict.kind is VerdictKind.HOLD:
+        # a record cut short is held even where a reject check is out of window
+        return tuple(
+            c for c in verdict.checks if c.outcome in (Outcome.OUT_OF_WINDOW, Outcome.NOT_JUDGED)
+        )
+    return ()
+
+
+def phrase(check: CheckResult) -> str:
+    """A check's finding in a few words, with the measured value and the bound it crossed.
+
+    >>> phrase(CheckResult("c", "grading_capacity_Ah", 18.21, Window(19.0, 22.0),
+    ...        Outcome.OUT_OF_WINDOW, Severity.REJECT, None, ""))
+    'grading_capacity_Ah 18.21 Ah < 19 Ah (reject)'
+    """
+    unit = BY_NAME[check.metric].unit if check.metric in BY_NAME else ""
+    suffix = f" {unit}" if unit else ""
+    if check.outcome is Outcome.OUT_OF_WINDOW and check.value is not None:
+        low, high = check.window.low, check.window.high
+        if low is not None and check.value < low:
+            bound, sign = low, "<"
+        else:
+            assert high is not None
+            bound, sign = high, ">"
+        value, limit = format_number(check.value), format_number(bound)
+        return f"{check.metric} {value}{suffix} {sign} {limit}{suffix} ({check.severity.value})"
+    if check.outcome in (Outcome.NOT_JUDGED, Outcome.SKIPPED):
+        what = "not measured" if check.value is None else "not judged"
+        return f"{check.metric} {what}"
+    return f"{check.metric} in window"
+
+
+def decision_line(verdict: Verdict, notes: Iterable[Note] = ()) -> str:
+    """The deciding findings of a fail or hold in one short line (mail subject, log, status).
+
+    ``notes`` are the cell's notes: a record cut short or not the program's leads.
+    Checks not made because of such a note are not repeated.
+
+    >>> decision_line(Verdict(VerdictKind.PASS, (), ()))
+    'all checks in window'
+    """
+    program = list(dict.fromkeys(n.text for n in notes if n.code in HOLDING_CODES))
+    blocked = {m for n in notes if n.code in HOLDING_CODES for m in n.blocks}
+    findings = [
+        phrase(c)
+        for c in deciding(verdict)
+        if not (c.outcome is Outcome.NOT_JUDGED and c.metric in blocked)
+    ]
+    parts = program + list(dict.fromkeys(findings))
+    if parts:
+        return "; ".join(parts)
+    return summarise(verdict)
+
+
+def summarise(verdict: Verdict) -> str:
+    """The verdict's reasons in one line, naming every check that was left out.
+
+    >>> summarise(Verdict(VerdictKind.PASS, (), ()))
+    'all checks in window'
+    """
+    text = "; ".join(r.rstrip(".") for r in verdict.reasons)
+    left_out = verdict.left_out
+    if not text:
+        text = "every check made is in window" if left_out else "all checks in window"
+    if left_out:
+        names = ", ".join(dict.fromkeys(c.metric for c in left_out))
+        text += f"; not made (the rule set allows it): {names}"
+    return text

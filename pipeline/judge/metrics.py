@@ -1,0 +1,396 @@
+"""Measure one cell: per-cycle and per-cell metrics and the grading discharge's plateaus.
+
+Pure: a Trace, its Segmentation and the rule set's measurement parameters in,
+CellMetrics out. Every definition is the one docs/metrics.md gives; the names of the
+cell-level values are the keys of pipeline.judge.metricdefs. Which cycle is graded is
+program.py's choice; judging the values is evaluate.py's job.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+
+import numpy as np
+
+from pipeline.judge.metricdefs import METRIC_NAMES
+from pipeline.judge.plateaus import find_plateaus
+from pipeline.judge.program import (
+    FIRST_CYCLE_METRICS,
+    GRADING_METRICS,
+    INCOMPLETE,
+    choose_grading,
+    final_rest,
+)
+from pipeline.judge.segmentation import sample_weights
+from pipeline.judge.thin import thin_series
+from pipeline.model import (
+    CellMetrics,
+    Curve,
+    Cycle,
+    CycleMetrics,
+    FloatArray,
+    Note,
+    Plateau,
+    PlateauSettings,
+    Program,
+    RecordView,
+    RestView,
+    Segmentation,
+    SourceRef,
+    Step,
+    StepKind,
+    StepMode,
+    StepSpan,
+    Trace,
+)
+
+# Shortest stretch of final rest, after the relaxation time, that gives a drift
+# slope worth judging (common practice, a proposal: ten minutes and ten samples).
+MIN_DRIFT_S = 600.0
+MIN_DRIFT_ROWS = 10
+# DCIR: the voltage before the pulse is the median of the rest's last 60 s, and the
+# voltage in the pulse a line fitted within 5 s of the pulse time, so that 1 mV of
+# voltage noise moves a 30 mV step by about 2 %, not 5 % (common practice, a proposal).
+PLATEAU_METRICS = (
+    "plateau_count",
+    "main_plateau_voltage_V",
+    "main_plateau_length_pct",
+    "total_plateau_length_pct",
+)
+# Points per curve kept for the certificate's evidence plots: finer than a page shows.
+VIEW_POINTS = 800
+DCIR_REST_S = 60.0
+DCIR_FIT_S = 5.0
+
+
+def _rows(steps: tuple[Step, ...], indices: tuple[int, ...]) -> np.ndarray:
+    if not indices:
+        return np.zeros(0, dtype=np.int64)
+    return np.concatenate([np.arange(steps[i].start, steps[i].stop) for i in indices])
+
+
+def _max(values: FloatArray) -> float | None:
+    if len(values) == 0 or np.all(np.isnan(values)):
+        return None
+    return float(np.nanmax(values))
+
+
+def _min(values: FloatArray) -> float | None:
+    if len(values) == 0 or np.all(np.isnan(values)):
+        return None
+    return float(np.nanmin(values))
+
+
+def measure_cycle(trace: Trace, steps: tuple[Step, ...], cycle: Cycle) -> CycleMetrics:
+    """DESIGN.md per-cycle metrics: capacities (Ah), efficiency, energy (Wh), voltages, CV time."""
+    charge_ah = sum(steps[i].capacity_ah for i in cycle.charge_steps)
+    discharge_ah = (
+        sum(steps[i].capacity_ah for i in cycle.discharge_steps) if cycle.discharge_steps else None
+    )
+    energy_wh = (
+        sum(steps[i].energy_wh for i in cycle.discharge_steps) if cycle.discharge_steps else None
+    )
+    first = steps[min(cycle.charge_steps + cycle.discharge_steps)]
+    last = steps[max(cycle.charge_steps + cycle.discharge_steps)]
+    temperature = None
+    if trace.temperature_c is not None:
+        temperature = _max(trace.temperature_c[first.start : last.stop])
+    return CycleMetrics(
+        index=cycle.index,
+        charge_capacity_ah=charge_ah,
+        discharge_capacity_ah=discharge_ah,
+        coulombic_efficiency=(discharge_ah / charge_ah)
+        if discharge_ah is not None and charge_ah > 0
+        else None,
+        discharge_energy_wh=energy_wh,
+        mean_discharge_voltage_v=(energy_wh / discharge_ah)
+        if energy_wh is not None and discharge_ah
+        else None,
+        max_charge_voltage_v=_max(trace.voltage_v[_rows(steps, cycle.charge_steps)]),
+        min_discharge_voltage_v=_min(trace.voltage_v[_rows(steps, cycle.discharge_steps)]),
+        cv_duration_s=sum(
+            steps[i].duration_s for i in cycle.charge_steps if steps[i].mode is StepMode.CV
+        ),
+        max_temperature_c=temperature,
+    )
+
+
+def _grading_start(steps: tuple[Step, ...], cycle: Cycle) -> tuple[Step, Step] | None:
+    """The rest before the grading discharge and that discharge's first step, if it starts from rest."""
+    first = steps[cycle.discharge_steps[0]]
+    if first.index == 0 or steps[first.index - 1].kind is not StepKind.REST:
+        return None
+    return steps[first.index - 1], first
+
+
+def dcir_mohm(
+    trace: Trace, rest: Step, discharge: Step, pulse_s: float
+) -> tuple[float | None, Note | None]:
+    """DC resistance at the rest-to-discharge transition from ``rest`` into ``discharge`` (mOhm).
+
+    (V just before the transition - V ``pulse_s`` into the discharge) / |I|. Each of the
+    three is read so that one noisy or spiking sample cannot move it: V before is the
+    median of the rest's last DCIR_REST_S seconds; V in the pulse is a straight line
+    fitted through the discharge samples within DCIR_FIT_S (or one sampling interval) of
+    the pulse time, leaving out its first half where the switch shows, read at that
+    time; |I| is the median over the same rows. None with a
+    note when the discharge is shorter than the pulse or sampled too coarsely for it.
+    10 s is the most common pulse (common practice).
+    """
+    t0 = float(trace.time_s[rest.stop - 1])
+    t = trace.time_s[discharge.start : discharge.stop]
+    v = trace.voltage_v[discharge.start : discharge.stop]
+    where = SourceRef(trace.source, trace.line_of(discharge.start))
+    if t[-1] < t0 + pulse_s:
+        return None, Note(
+            "dcir_pulse_too_short",
+            f"the grading discharge lasts {t[-1] - t0:.0f} s, shorter than the "
+            f"{pulse_s:g} s DCIR pulse; DCIR not measured",
+            where,
+            ("dcir_mOhm",),
+        )
+    in_pulse = t <= t0 + pulse_s
+    if not in_pulse.any():
+        return None, Note(
+            "dcir_sampling_too_coarse",
+            f"the record is sampled every {t[0] - t0:.0f} s at the start of the grading "
+            f"discharge, coarser than the {pulse_s:g} s DCIR pulse; DCIR not measured",
+            where,
+            ("dcir_mOhm",),
+        )
+    rest_t = trace.time_s[rest.start : rest.stop]
+    rest_v = trace.voltage_v[rest.start : rest.stop]
+    v0 = float(np.median(rest_v[rest_t >= t0 - DCIR_REST_S]))
+    interval = float(np.median(np.diff(t))) if len(t) > 1 else 0.0
+    half = max(DCIR_FIT_S, 1.01 * interval)
+    # the rows of the switch itself (spike, ramp) are left out of the fit
+    near = (np.abs(t - (t0 + pulse_s)) <= half) & (t >= t0 + 0.5 * pulse_s)
+    if np.count_nonzero(near) >= 2 and np.ptp(t[near]) > 0:
+        v1 = float(np.polyfit(t[near] - (t0 + pulse_s), v[near], 1)[1])  # the line at the pulse time
+    else:
+        v1 = float(np.interp(t0 + pulse_s, t, v))
+    amps = np.abs(trace.current_a[discharge.start : discharge.stop])
+    # the current of the pulse away from the switch's overshoot or ramp
+    settled = (t >= t0 + 0.5 * pulse_s) & (t <= t0 + pulse_s + half)
+    current = float(np.median(amps[settled] if settled.any() else amps[in_pulse]))
+    return (v0 - v1) / current * 1000.0, None
+
+
+def rest_drift_mv_per_h(trace: Trace, rest: Step, relax_s: float) -> tuple[float | None, Note | None]:
+    """Least-squares slope of V over the final rest step after ``relax_s`` (mV/h); negative = falling."""
+    view, note = rest_view(trace, rest, relax_s)
+    return (None, note) if view is None else (view.slope_mv_per_h, None)
+
+
+def rest_view(trace: Trace, rest: Step, relax_s: float) -> tuple[RestView | None, Note | None]:
+    """The final rest and its drift fit (see rest_drift_mv_per_h), or None with a note."""
+    t = trace.time_s[rest.start : rest.stop]
+    v = trace.voltage_v[rest.start : rest.stop]
+    keep = t >= t[0] + relax_s
+    if np.count_nonzero(keep) < MIN_DRIFT_ROWS or t[-1] - (t[0] + relax_s) < MIN_DRIFT_S:
+        return None, Note(
+            "final_rest_too_short",
+            f"the final rest lasts {t[-1] - t[0]:.0f} s; after the {relax_s:g} s relaxation "
+            f"time too little is left to measure the voltage drift",
+            SourceRef(trace.source, trace.line_of(rest.start)),
+            ("rest_voltage_drift_mV_per_h",),
+        )
+    t_fit = t[keep] - t[keep][0]
+    slope_v_per_s, intercept_v = np.polyfit(t_fit, v[keep], 1)
+    hours, volts = thin_series((t - t[0]) / 3600.0, v, VIEW_POINTS)
+    view = RestView(
+        Curve(hours, volts),
+        float(t[keep][0] - t[0]) / 3600.0,
+        float(intercept_v),
+        float(slope_v_per_s * 3600.0 * 1000.0),
+    )
+    return view, None
+
+
+def record_view(trace: Trace, steps: tuple[Step, ...]) -> RecordView:
+    """The whole record thinned to about VIEW_POINTS points per curve, and where its steps lie."""
+    hours = (trace.time_s - trace.time_s[0]) / 3600.0
+    start_h = float(trace.time_s[0])
+
+    def curve(values: FloatArray) -> Curve:
+        return Curve(*thin_series(hours, values, VIEW_POINTS))
+
+    return RecordView(
+        curve(trace.voltage_v),
+        curve(trace.current_a),
+        None if trace.temperature_c is None else curve(trace.temperature_c),
+        tuple(
+            StepSpan((s.start_s - start_h) / 3600.0, (s.end_s - start_h) / 3600.0, s.kind)
+            for s in steps
+        ),
+    )
+
+
+def grading_discharge(
+    trace: Trace, steps: tuple[Step, ...], cycle: Cycle
+) -> tuple[FloatArray, FloatArray, float]:
+    """q (% of the discharge, rising) and V of a cycle's discharge steps, and its capacity (Ah).
+
+    Capacity accumulates row by row with the trapezoid weights of each step, so
+    rests or pauses between the discharge steps add nothing.
+    """
+    rows = _rows(steps, cycle.discharge_steps)
+    # the same trapezoid weights the steps' capacities were integrated with, so the
+    # curve's total is exactly the cycle's discharge capacity
+    dq = np.abs(trace.current_a[rows]) * sample_weights(trace.time_s)[rows] / 3600.0
+    total = float(dq.sum())
+    q = np.cumsum(dq) - 0.5 * dq  # each row sits mid-way through the charge it owns
+    scale = 100.0 / total if total > 0 else 0.0
+    return q * scale, trace.voltage_v[rows], total
+
+
+def _plateau_values(
+    values: dict[str, float | None],
+    trace: Trace,
+    steps: tuple[Step, ...],
+    grading: Cycle,
+    settings: PlateauSettings,
+) -> tuple[tuple[Plateau, ...], tuple[float, ...], Curve | None, Curve | None, Note | None]:
+    q, v, total = grading_discharge(trace, steps, grading)
+    if total <= 0 or len(q) < 10:
+        note = Note(
+            "grading_discharge_too_short",
+            "the grading discharge has too few samples to look for plateaus",
+            None,
+            PLATEAU_METRICS,
+        )
+        return (), (), None, None, note
+    analysis = find_plateaus(q, v, total, settings)
+    plateaus = analysis.plateaus
+    values["plateau_count"] = float(len(plateaus))
+    values["total_plateau_length_pct"] = float(sum(p.length_pct for p in plateaus))
+    if plateaus:
+        main = max(plateaus, key=lambda p: p.length_pct)
+        values["main_plateau_voltage_V"] = main.voltage_v
+        values["main_plateau_length_pct"] = main.length_pct
+    return plateaus, analysis.ica_peaks_v, analysis.curve, analysis.ica, None
+
+
+def _blame_the_cut(notes: list[Note], values: dict[str, float | None]) -> list[Note]:
+    """A cut record's note also names every metric it left unmeasured that no other note names."""
+    cut = next((n for n in notes if n.code == INCOMPLETE), None)
+    if cut is None:
+        return notes
+    named = {m for n in notes for m in n.blocks}
+    missing = tuple(k for k, v in values.items() if v is None and k not in named)
+    whole = dataclasses.replace(cut, blocks=cut.blocks + missing)
+    return [whole if n is cut else n for n in notes]
+
+
+def measure(
+    trace: Trace,
+    segmentation: Segmentation,
+    plateau_settings: PlateauSettings,
+    *,
+    program: Program | None = None,
+    dcir_pulse_s: float = 10.0,
+    relax_s: float = 600.0,
+) -> CellMetrics:
+    """Every metric of one cell; a value that cannot be measured is None, with a note saying why.
+
+    The grading cycle is the one ``program`` names (program.py); a record cut short
+    before it gets a note that holds the cell, and its grading metrics stay None.
+    """
+    steps = segmentation.steps
+    cycles = tuple(measure_cycle(trace, steps, c) for c in segmentation.cycles)
+    program = program or Program()
+    choice = choose_grading(trace, segmentation, program)
+    notes: list[Note] = list(choice.notes)
+    values: dict[str, float | None] = dict.fromkeys(METRIC_NAMES)
+    values["cycle_count"] = float(sum(1 for c in segmentation.cycles if c.complete))
+    if cycles and choice.first_cycle_finished and cycles[0].coulombic_efficiency is not None:
+        values["first_cycle_efficiency"] = cycles[0].coulombic_efficiency
+        values["irreversible_capacity_Ah"] = cycles[0].charge_capacity_ah - (
+            cycles[0].discharge_capacity_ah or 0.0
+        )
+    elif cycles and not any(n.code == INCOMPLETE for n in notes):
+        notes.append(
+            Note(
+                "first_cycle_unfinished",
+                "the record ends before the first cycle's discharge was finished, so the "
+                "initial coulombic efficiency is not measured",
+                SourceRef(trace.source, trace.line_of(len(trace) - 1)),
+                FIRST_CYCLE_METRICS,
+            )
+        )
+    charge_v = [c.max_charge_voltage_v for c in cycles if c.max_charge_voltage_v is not None]
+    discharge_v = [
+        c.min_discharge_voltage_v for c in cycles if c.min_discharge_voltage_v is not None
+    ]
+    values["max_charge_voltage_V"] = max(charge_v) if charge_v else None
+    values["min_discharge_voltage_V"] = min(discharge_v) if discharge_v else None
+    if trace.temperature_c is not None:
+        values["max_temperature_C"] = _max(trace.temperature_c)
+    else:
+        notes.append(
+            Note(
+                "no_temperature_column",
+                "the file has no temperature column",
+                SourceRef(trace.source),
+                ("max_temperature_C",),
+            )
+        )
+
+    plateaus: tuple[Plateau, ...] = ()
+    peaks: tuple[float, ...] = ()
+    grading_curve = ica_curve = None
+    rest_drawn: RestView | None = None
+    grading = choice.cycle
+    if grading is not None:
+        gm = cycles[grading.index - 1]
+        values["grading_capacity_Ah"] = gm.discharge_capacity_ah
+        values["grading_energy_Wh"] = gm.discharge_energy_wh
+        values["grading_mean_voltage_V"] = gm.mean_discharge_voltage_v
+        values["grading_coulombic_efficiency"] = gm.coulombic_efficiency
+        values["grading_cv_duration_s"] = gm.cv_duration_s
+        start = _grading_start(steps, grading)
+        if start is None:
+            note: Note | None = Note(
+                "no_rest_before_grading",
+                "the grading discharge does not start from a rest, so DCIR is not measured",
+                SourceRef(trace.source, trace.line_of(steps[grading.discharge_steps[0]].start)),
+                ("dcir_mOhm",),
+            )
+        else:
+            values["dcir_mOhm"], note = dcir_mohm(trace, *start, dcir_pulse_s)
+        notes += [note] if note else []
+        rest, note = final_rest(trace, segmentation, program, grading)
+        if rest is not None:
+            rest_drawn, note = rest_view(trace, rest, relax_s)
+            if rest_drawn is not None:
+                values["rest_voltage_drift_mV_per_h"] = rest_drawn.slope_mv_per_h
+        notes += [note] if note else []
+        plateaus, peaks, grading_curve, ica_curve, note = _plateau_values(
+            values, trace, steps, grading, plateau_settings
+        )
+        notes += [note] if note else []
+    elif not choice.notes:
+        notes.append(
+            Note(
+                "no_complete_cycle",
+                "no charge followed by a discharge was found, so there is no grading discharge",
+                SourceRef(trace.source),
+                GRADING_METRICS,
+            )
+        )
+    for key, value in values.items():
+        if value is not None and not math.isfinite(value):
+            values[key] = None
+    notes = _blame_the_cut(notes, values)
+    return CellMetrics(
+        values,
+        cycles,
+        plateaus,
+        peaks,
+        grading_curve,
+        ica_curve,
+        tuple(notes),
+        record_view(trace, steps),
+        rest_drawn,
+    )

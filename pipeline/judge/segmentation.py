@@ -1,0 +1,232 @@
+"""Cut a trace into rest / charge / discharge steps (CC or CV) and group them into cycles.
+
+Pure: a Trace, the rule set's rest current and the cell's 1 C current in, a
+Segmentation out. Real channels show noise and a zero offset at rest and spikes at
+step changes, so rest is current inside the file's own rest band (its offset plus or
+minus a multiple of its noise, at least the rule set's rest current), recorded in the
+result. When the file carries the cycler's own ``step`` column its boundaries are
+kept and each step's kind comes from its median current; otherwise steps come from
+current and voltage alone, with hysteresis and a least duration and charge per step,
+so noise can never make a step. A *cycle* is the charge steps since the previous
+discharge followed by the discharge steps up to the next charge. Measuring is left
+to metrics.py; which cycle is graded, to program.py.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from pipeline.judge.rest_band import (
+    band_notes,
+    clean_kinds,
+    estimate_band,
+    program_step_kinds,
+    row_kinds,
+    runs,
+)
+from pipeline.model import (
+    Cycle,
+    FloatArray,
+    Note,
+    Segmentation,
+    SourceRef,
+    Step,
+    StepKind,
+    StepMode,
+    Trace,
+)
+
+# Voltage band below the step's highest (charge) or above its lowest (discharge)
+# voltage that counts as "held" in constant-voltage control, and the fraction of the
+# constant current under which the current counts as decaying. Common practice:
+# cyclers hold CV within a few mV; 5 % current decay is well clear of CC noise.
+CV_BAND_V = 0.010
+CV_CURRENT_FRACTION = 0.95
+# Shortest constant-voltage tail that counts as a CV step (s): shorter is CC ripple.
+MIN_CV_S = 30.0
+
+def sample_weights(time_s: FloatArray) -> FloatArray:
+    """Per-row time weights (s) such that sum(w * y) is the trapezoid integral of y dt.
+
+    Row i owns half of the interval before it and half of the one after, so
+    integrals over consecutive row ranges add up exactly to the whole.
+
+    >>> sample_weights(np.array([0.0, 10.0, 30.0])).tolist()
+    [5.0, 15.0, 10.0]
+    """
+    n = len(time_s)
+    w = np.zeros(n)
+    if n < 2:
+        return w
+    dt = np.diff(time_s)
+    w[:-1] += 0.5 * dt
+    w[1:] += 0.5 * dt
+    return w
+
+
+def _split_cv(
+    voltage_v: FloatArray,
+    current_a: FloatArray,
+    time_s: FloatArray,
+    start: int,
+    stop: int,
+    sign: int,
+) -> int | None:
+    """Row where a constant-voltage tail begins inside rows [start, stop), or None.
+
+    The tail is the final run of rows whose voltage stays within CV_BAND_V of the
+    step's extreme (highest for charge, lowest for discharge); within it, CV starts
+    where |I| first falls below CV_CURRENT_FRACTION of the constant current.
+    """
+    v = voltage_v[start:stop] * sign
+    i = np.abs(current_a[start:stop])
+    if len(v) < 3:
+        return None
+    held = v >= v.max() - CV_BAND_V
+    # last row that is not held, so the tail after it is held throughout
+    not_held = np.flatnonzero(~held)
+    tail = 0 if len(not_held) == 0 else int(not_held[-1]) + 1
+    if tail >= len(v):
+        return None
+    # the constant current: the median before the held tail (of at most about 2,000 evenly
+    # spaced rows: the same level to within the current's noise, without sorting hours of
+    # samples for every step), or, for a program step that is CV throughout, the current
+    # the step opened with
+    stride = max(1, -(-tail // 2048))  # ceiling division
+    i_cc = float(np.median(i[:tail:stride])) if tail > 0 else float(i[0])
+    decaying = np.flatnonzero(i[tail:] < CV_CURRENT_FRACTION * i_cc)
+    if len(decaying) == 0:
+        return None
+    # a block held at constant voltage from its first row is CV throughout
+    cv_start = start if tail == 0 else start + tail + int(decaying[0])
+    end_t = time_s[stop] if stop < len(time_s) else time_s[stop - 1]
+    if end_t - time_s[cv_start] < MIN_CV_S:
+        return None
+    return cv_start
+
+
+def _make_step(
+    trace: Trace, w: FloatArray, index: int, kind: StepKind, mode: StepMode, start: int, stop: int
+) -> Step:
+    t, v, i = trace.time_s, trace.voltage_v, trace.current_a
+    a = np.abs(i[start:stop])
+    # einsum, not np.dot: a 1-D dot product through a multi-threaded BLAS costs milliseconds
+    # of thread hand-over on a busy machine for microseconds of arithmetic
+    charge_as = float(np.einsum("i,i->", a, w[start:stop])) if kind is not StepKind.REST else 0.0
+    energy_ws = (
+        float(np.einsum("i,i,i->", a, v[start:stop], w[start:stop]))
+        if kind is not StepKind.REST
+        else 0.0
+    )
+    program = None
+    if trace.step is not None:
+        program = int(trace.step[start])
+    return Step(
+        index=index,
+        kind=kind,
+        mode=mode,
+        start=start,
+        stop=stop,
+        start_s=float(t[start]),
+        end_s=float(t[stop] if stop < len(t) else t[stop - 1]),
+        capacity_ah=charge_as / 3600.0,
+        energy_wh=energy_ws / 3600.0,
+        mean_current_a=float(np.mean(i[start:stop])),
+        program_step=program,
+    )
+
+
+_KIND = {1: StepKind.CHARGE, -1: StepKind.DISCHARGE, 0: StepKind.REST}
+def split_steps(trace: Trace, rest_current_a: float, one_c_a: float) -> Segmentation:
+    """Segment ``trace`` into steps and cycles.
+
+    ``rest_current_a`` (A) is the rule set's rest current, the least half-width of the
+    rest band; ``one_c_a`` (A) is the cell's nominal capacity per hour. The band is
+    centred on the file's own zero offset and widened to its noise (estimate_band).
+    Charge and discharge steps are split into a CC part and a CV tail where the
+    voltage is held while the current decays.
+    """
+    band = estimate_band(trace.current_a, rest_current_a, one_c_a)
+    w = sample_weights(trace.time_s)
+    notes = band_notes(trace, band, one_c_a)
+    if trace.step is not None:
+        blocks, more = program_step_kinds(trace, band, w, one_c_a)
+        notes += more
+    else:
+        charge_as = np.abs(trace.current_a - band.offset_a) * w
+        kinds = clean_kinds(row_kinds(trace.current_a, band), w, charge_as, one_c_a)
+        blocks = [(a, b, int(kinds[a])) for a, b in runs(kinds)]
+    steps: list[Step] = []
+    for a, b, k in blocks:
+        kind = _KIND[k]
+        if kind is StepKind.REST:
+            steps.append(_make_step(trace, w, len(steps), kind, StepMode.NONE, a, b))
+            continue
+        cv = _split_cv(trace.voltage_v, trace.current_a, trace.time_s, a, b, k)
+        if cv is None:
+            steps.append(_make_step(trace, w, len(steps), kind, StepMode.CC, a, b))
+        elif cv == a:
+            steps.append(_make_step(trace, w, len(steps), kind, StepMode.CV, a, b))
+        else:
+            steps.append(_make_step(trace, w, len(steps), kind, StepMode.CC, a, cv))
+            steps.append(_make_step(trace, w, len(steps), kind, StepMode.CV, cv, b))
+    cycles = group_cycles(steps, trace)
+    notes.extend(_check_cycle_column(trace, cycles, steps))
+    return Segmentation(tuple(steps), tuple(cycles), tuple(notes), band)
+
+
+def group_cycles(steps: list[Step] | tuple[Step, ...], trace: Trace | None = None) -> list[Cycle]:
+    """Group steps into cycles: charges since the last discharge, then the discharges that follow.
+
+    Discharges before the first charge (a cell delivered partly charged) belong to
+    no cycle; a trailing charge with no discharge forms an incomplete last cycle.
+    """
+    cycles: list[Cycle] = []
+    charges: list[int] = []
+    discharges: list[int] = []
+
+    def close() -> None:
+        if charges:
+            program = None
+            if trace is not None and trace.cycle is not None:
+                last = steps[(discharges or charges)[-1]]
+                program = int(trace.cycle[last.start])
+            cycles.append(Cycle(len(cycles) + 1, tuple(charges), tuple(discharges), program))
+
+    for step in steps:
+        if step.kind is StepKind.CHARGE:
+            if discharges:
+                close()
+                charges, discharges = [], []
+            charges.append(step.index)
+        elif step.kind is StepKind.DISCHARGE and charges:
+            discharges.append(step.index)
+    close()
+    return cycles
+
+
+def _check_cycle_column(trace: Trace, cycles: list[Cycle], steps: list[Step]) -> list[Note]:
+    """A note when the file's cycle numbers split one of our cycles' discharge in two."""
+    if trace.cycle is None:
+        return []
+    notes = []
+    for cycle in cycles:
+        numbers: set[int] = set()
+        for s in cycle.discharge_steps:
+            column = trace.cycle[steps[s].start : steps[s].stop]
+            if column.size and column.min() == column.max():  # the usual case: one number
+                numbers.add(int(column[0]))
+            else:
+                numbers.update(np.unique(column).tolist())
+        if len(numbers) > 1:
+            first = steps[cycle.discharge_steps[0]]
+            notes.append(
+                Note(
+                    "cycle_column_disagrees",
+                    f"the file's cycle column changes ({sorted(numbers)}) inside the discharge "
+                    f"of cycle {cycle.index} as formgate counts it (a charge followed by a "
+                    f"discharge); formgate's count is used",
+                    SourceRef(trace.source, trace.line_of(first.start)),
+                )
+            )
+    return notes

@@ -1,0 +1,459 @@
+"""Turns one judged cell into the certificate's HTML: every shown value formatted, then Jinja2.
+
+Pure: a CellResult in, text out; no clock (the only time shown is the result's
+``analysed_at``). Every value from the data file reaches the page through
+autoescaping; only the plots, which plots.py builds from numbers alone, go in as
+markup. Turning the HTML into a PDF is pdf.py's job.
+"""
+
+from __future__ import annotations
+
+import datetime
+import functools
+import importlib
+import math
+from collections.abc import Callable
+
+import jinja2
+from markupsafe import Markup
+
+from pipeline import shipped
+from pipeline.judge.evaluate import deciding, phrase
+from pipeline.judge.metricdefs import BY_NAME
+from pipeline.judge.program import HOLDING_CODES
+from pipeline.model import (
+    CellResult,
+    CheckResult,
+    CurrentBand,
+    Curve,
+    CycleMetrics,
+    Hazard,
+    Note,
+    Outcome,
+    Plateau,
+    Severity,
+    VerdictKind,
+    Window,
+)
+from pipeline.report import evidence, plots
+
+TEMPLATES_DIR = shipped.TEMPLATES_DIR
+TEMPLATE_NAME = "certificate.html.j2"
+DASH = "\N{EM DASH}"  # shown for a value that was not measured
+MINUS = "\N{MINUS SIGN}"
+PLOT_WIDTH_MM, PLOT_HEIGHT_MM = 86.0, 50.0
+RECORD_WIDTH_MM, RECORD_HEIGHT_MM = 178.0, 66.0
+IDENTITY_KEYS = ("cell_id", "lot", "cell_type", "channel", "station", "program", "started_at")
+
+VERDICT_WORDS = {
+    VerdictKind.PASS: ("PASS", "Every check is within its acceptance window."),
+    VerdictKind.FAIL: ("FAIL", "Rejected: at least one reject check is out of its window."),
+    VerdictKind.HOLD: (
+        "HOLD",
+        "Held for review: this cell must not be released until it has been reviewed.",
+    ),
+    VerdictKind.ERROR: ("ERROR", "Not judged: the file could not be judged."),
+}
+OUTCOME_WORDS = {
+    Outcome.IN_WINDOW: "in window",
+    Outcome.OUT_OF_WINDOW: "OUT OF WINDOW",
+    Outcome.NOT_JUDGED: "not judged",
+    Outcome.SKIPPED: "not made (allowed)",
+}
+HAZARD_WORDS = {
+    Hazard.INTERNAL_SHORT: "internal short",
+    Hazard.OVER_TEMPERATURE: "over-temperature",
+    Hazard.OVER_VOLTAGE: "over-voltage",
+    Hazard.LITHIUM_PLATING: "lithium plating",
+    Hazard.SODIUM_PLATING: "sodium plating",
+    Hazard.ABNORMAL_CAPACITY: "abnormal capacity",
+}
+
+
+def _signed(text: str) -> str:
+    """Use a true minus sign, and never show minus zero."""
+    if not text.startswith("-"):
+        return text
+    return text[1:] if float(text) == 0 else MINUS + text[1:]
+
+
+def significant(value: float, digits: int) -> str:
+    """``value`` with ``digits`` significant digits in fixed notation (no exponent).
+
+    >>> significant(20.1349, 4), significant(0.98765, 4), significant(1234.6, 3)
+    ('20.13', '0.9877', '1235')
+    """
+    if value == 0:
+        return f"{0:.{digits - 1}f}"
+    decimals = min(6, max(0, digits - 1 - math.floor(math.log10(abs(value)))))
+    return _signed(f"{value:.{decimals}f}")
+
+
+def _fixed(decimals: int) -> Callable[[float], str]:
+    return lambda v: _signed(f"{v:.{decimals}f}")
+
+
+# How each unit's numbers print: capacity and energy to 4 significant digits,
+# voltage to the mV, resistance to 3 significant digits (common practice).
+_BY_UNIT: dict[str, Callable[[float], str]] = {
+    "Ah": lambda v: significant(v, 4),
+    "Wh": lambda v: significant(v, 4),
+    "V": _fixed(3),
+    "mOhm": lambda v: significant(v, 3),
+    "mV/h": _fixed(2),
+    "°C": _fixed(1),
+    "s": _fixed(0),
+    "%": _fixed(1),
+}
+
+
+def _percent(v: float) -> str:
+    return _signed(f"{v * 100:.2f}")
+
+
+def _integer(v: float) -> str:
+    return _signed(f"{v:.0f}")
+
+
+def metric_format(metric: str) -> tuple[Callable[[float], str], str]:
+    """The number formatter and the unit shown for a metric (fractions show as %)."""
+    definition = BY_NAME.get(metric)
+    unit = definition.unit if definition else ""
+    if unit == "" and metric.endswith("efficiency"):
+        return _percent, "%"
+    if unit == "" and metric.endswith("_count"):
+        return _integer, ""
+    return _BY_UNIT.get(unit, lambda v: significant(v, 4)), unit
+
+
+def _with_unit(number: str, unit: str) -> str:
+    return f"{number} {unit}" if unit else number
+
+
+def format_value(metric: str, value: float | None) -> str:
+    """A measured value with its unit, or an em dash when it was not measured.
+
+    >>> format_value("grading_capacity_Ah", 20.1349), format_value("dcir_mOhm", None)
+    ('20.13 Ah', '—')
+    """
+    if value is None or not math.isfinite(value):
+        return DASH
+    number, unit = metric_format(metric)
+    return _with_unit(number(value), unit)
+
+
+def format_window(metric: str, window: Window) -> str:
+    """The window as "low to high", "≥ low", "≤ high" (with unit) or "any value"."""
+    number, unit = metric_format(metric)
+    low, high = window.low, window.high
+    if low is not None and high is not None:
+        return _with_unit(f"{number(low)} \N{EN DASH} {number(high)}", unit)
+    if low is not None:
+        return _with_unit(f"\N{GREATER-THAN OR EQUAL TO} {number(low)}", unit)
+    if high is not None:
+        return _with_unit(f"\N{LESS-THAN OR EQUAL TO} {number(high)}", unit)
+    return "any value"
+
+
+def _num(value: float | None, fmt: Callable[[float], str], unit: str = "") -> str:
+    if value is None or not math.isfinite(value):
+        return DASH
+    return _with_unit(fmt(value), unit)
+
+
+def format_time(moment: datetime.datetime) -> str:
+    """ISO 8601 in UTC to the second, e.g. ``2026-03-02T10:15:00Z``."""
+    return moment.astimezone(datetime.UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _check_row(check: CheckResult, decided: bool) -> dict[str, str]:
+    definition = BY_NAME.get(check.metric)
+    out = check.outcome is Outcome.OUT_OF_WINDOW
+    return {
+        "id": check.rule_id,
+        "metric": check.metric,
+        "meaning": definition.meaning if definition else "",
+        "value": format_value(check.metric, check.value),
+        "window": format_window(check.metric, check.window),
+        "severity": check.severity.value,
+        "outcome": OUTCOME_WORDS[check.outcome] + (" (deciding)" if decided else ""),
+        "outcome_class": check.outcome.value.replace("_", "-") + (" deciding" if decided else ""),
+        # a hazard word on a row in window would alarm a reader for nothing
+        "hazard": HAZARD_WORDS[check.hazard] if check.hazard and out else "",
+    }
+
+
+def _decision(result: CellResult) -> list[dict[str, object]]:
+    """The verdict box's findings, deciding ones first: what a reader must act on, on page 1."""
+    verdict = result.verdict
+    decided = deciding(verdict)
+    program = list(dict.fromkeys(
+        f"{n.text[0].upper()}{n.text[1:]}." for n in (*result.notes, *result.metrics.notes)
+        if n.code in HOLDING_CODES
+    ))
+    out_review = [
+        c for c in verdict.checks
+        if c.outcome is Outcome.OUT_OF_WINDOW and c.severity is Severity.REVIEW and c not in decided
+    ]
+    not_made = [c for c in verdict.checks if c.outcome is Outcome.NOT_JUDGED and c not in decided]
+    quiet = {m for n in (*result.notes, *result.metrics.notes) if n.code in HOLDING_CODES for m in n.blocks}
+
+    def messages(checks: list[CheckResult] | tuple[CheckResult, ...]) -> list[str]:
+        # two checks on one unmeasured metric say the same thing once
+        return list(dict.fromkeys(c.message for c in checks))
+
+    if verdict.kind is VerdictKind.FAIL:
+        deciding_title = "Deciding: reject checks out of their window"
+    else:
+        deciding_title = "Deciding: findings that hold the cell for review"
+    sections: list[dict[str, object]] = []
+    if program:
+        sections.append({"title": "The record", "kind": "deciding", "items": program})
+    shown = [c for c in decided if not (c.outcome is Outcome.NOT_JUDGED and c.metric in quiet)]
+    if shown:
+        sections.append({"title": deciding_title, "kind": "deciding", "items": messages(shown)})
+    if out_review:
+        review = messages(out_review)
+        sections.append({"title": "Also out of window (review)", "kind": "review", "items": review})
+    if not_made:
+        sections.append({"title": "Checks not made", "kind": "not-made", "items": messages(not_made)})
+    if verdict.left_out:
+        sections.append({
+            "title": "Checks not made, which the rule set allows to be left out",
+            "kind": "left-out",
+            "items": messages(verdict.left_out),
+        })
+    return sections
+
+
+def _cycle_row(c: CycleMetrics) -> dict[str, str]:
+    ah, wh = _BY_UNIT["Ah"], _BY_UNIT["Wh"]
+    return {
+        "index": str(c.index),
+        "charge_ah": _num(c.charge_capacity_ah, ah),
+        "discharge_ah": _num(c.discharge_capacity_ah, ah),
+        "ce_pct": _num(c.coulombic_efficiency, _percent),
+        "energy_wh": _num(c.discharge_energy_wh, wh),
+        "mean_v": _num(c.mean_discharge_voltage_v, _BY_UNIT["V"]),
+        "cv_s": _num(c.cv_duration_s, _BY_UNIT["s"]),
+        "max_t_c": _num(c.max_temperature_c, _BY_UNIT["°C"]),
+    }
+
+
+def _plateau_row(number: int, p: Plateau) -> dict[str, str]:
+    pct = _BY_UNIT["%"]
+    return {
+        "label": f"P{number}",
+        "start_pct": _num(p.start_pct, pct),
+        "end_pct": _num(p.end_pct, pct),
+        "length_pct": _num(p.length_pct, pct),
+        "length_ah": _num(p.length_ah, _BY_UNIT["Ah"]),
+        "voltage_v": _num(p.voltage_v, _BY_UNIT["V"]),
+    }
+
+
+def _note_rows(result: CellResult) -> list[dict[str, str]]:
+    seen: list[Note] = []
+    for note in (*result.notes, *result.metrics.notes):
+        if note not in seen:
+            seen.append(note)
+    return [
+        {
+            "text": n.text,
+            "where": str(n.where) if n.where else "",
+            "blocks": ", ".join(n.blocks),
+        }
+        for n in seen
+    ]
+
+
+def _band_text(band: CurrentBand | None) -> str:
+    """How rest was told from current, in one sentence for the data-quality section."""
+    if band is None:
+        return ""
+    def ma(value_a: float) -> str:
+        return f"{_signed(f'{value_a * 1000:.3g}')} mA"
+    source = (
+        f"the channel's zero offset {ma(band.offset_a)} and noise {ma(band.noise_a)} rms, "
+        f"from {band.rows} rows near zero current"
+        if band.rows
+        else "too few rows near zero current to estimate the channel's noise"
+    )
+    return (
+        f"Rest is current within {ma(band.threshold_a)} of the zero offset ({source}; "
+        f"the rule set's rest current is {ma(band.floor_a)})."
+    )
+
+
+# The plot that shows each kind of failed check (evidence.py), by the metric it judges.
+_CYCLE_METRICS = (
+    "grading_capacity_Ah",
+    "first_cycle_efficiency",
+    "irreversible_capacity_Ah",
+    "grading_coulombic_efficiency",
+)
+
+
+def _worst(checks: list[CheckResult]) -> CheckResult:
+    """The check a plot should draw the limit of: a reject check before a review one."""
+    return sorted(checks, key=lambda c: c.severity is not Severity.REJECT)[0]
+
+
+def _evidence(result: CellResult) -> list[dict[str, object]]:
+    """For each kind of check out of window, the plot that shows it, with a caption."""
+    metrics = result.metrics
+    out = [c for c in result.verdict.checks if c.outcome is Outcome.OUT_OF_WINDOW]
+    size = {"width_mm": PLOT_WIDTH_MM, "height_mm": PLOT_HEIGHT_MM}
+    shown: list[dict[str, object]] = []
+    drift = [c for c in out if c.metric == "rest_voltage_drift_mV_per_h"]
+    if drift:
+        check = _worst(drift)
+        svg = evidence.drift_svg(metrics.rest, check.window.low, **size)
+        caption = (
+            f"The final rest: {phrase(check)}. Grey: the relaxation left out of the fit; "
+            "solid: the fit; dashed: a voltage falling at the limit."
+        )
+        shown.append({"svg": Markup(svg), "caption": caption})  # numbers only: see svgplot.py
+    heat = [c for c in out if c.metric == "max_temperature_C"]
+    if heat:
+        check = _worst(heat)
+        svg = evidence.temperature_svg(metrics.record, check.window.high, **size)
+        caption = f"The cell's temperature: {phrase(check)}. Dashed: the limit."
+        shown.append({"svg": Markup(svg), "caption": caption})
+    cycle = [c for c in out if c.metric in _CYCLE_METRICS]
+    if cycle:
+        capacity = [c for c in cycle if c.metric == "grading_capacity_Ah"]
+        window = _worst(capacity).window if capacity else None
+        svg = evidence.cycles_svg(metrics.cycles, window, **size)
+        words = "; ".join(dict.fromkeys(phrase(c) for c in cycle))
+        caption = f"Capacity and efficiency of each cycle: {words}."
+        shown.append({"svg": Markup(svg), "caption": caption})
+    return shown
+
+
+def _identity(result: CellResult) -> list[tuple[str, str]]:
+    meta = result.metadata
+    ct = result.cell_type
+    rows = [
+        ("Cell ID", meta.get("cell_id") or DASH),
+        ("Lot", meta.get("lot") or DASH),
+        ("Cell type", f"{ct.name} (nominal {significant(ct.nominal_capacity_ah, 4)} Ah)"),
+        ("Channel", meta.get("channel") or DASH),
+        ("Station", meta.get("station") or DASH),
+        ("Program", meta.get("program") or DASH),
+    ]
+    if meta.get("started_at"):
+        rows.append(("Started at", meta["started_at"]))
+    return rows
+
+
+def _traceability(result: CellResult) -> list[list[tuple[str, str]]]:
+    """Rows of one or two (label, value) pairs: hashes and the file name get a row each."""
+    rs = result.rule_set
+    return [
+        [("Input file", result.source_name)],
+        [("Input SHA-256", result.input_sha256)],
+        [("Rule set", f"{rs.name}, revision {rs.revision}"), ("Rule set file", rs.source)],
+        [("Rule set SHA-256", rs.sha256)],
+        [("Software", f"formgate {result.software_version}"),
+         ("Analysed at", format_time(result.analysed_at))],
+    ]
+
+
+def _ica_caption(curve: Curve | None, peaks_v: tuple[float, ...]) -> str:
+    shown = len(plots.marked_peaks(curve, peaks_v))
+    found = sum(1 for p in peaks_v if math.isfinite(p))
+    if shown < found:
+        return (
+            f"Incremental capacity dQ/dV; dashed lines mark the {shown} highest of the "
+            f"{found} peaks found."
+        )
+    return "Incremental capacity dQ/dV; dashed lines mark the peaks found."
+
+
+def build_context(result: CellResult) -> dict[str, object]:
+    """Everything the certificate template shows, already formatted as strings."""
+    hazards = importlib.import_module("pipeline.report.hazards")
+    kind = result.verdict.kind
+    word, headline = VERDICT_WORDS[kind]
+    decided = deciding(result.verdict) if kind is VerdictKind.FAIL else ()
+    if kind is VerdictKind.PASS and result.verdict.left_out:
+        headline = (
+            "Every check made is within its acceptance window; the checks below were not "
+            "made, as the rule set allows."
+        )
+    cell_id = result.cell_id or DASH
+    metrics = result.metrics
+    # a failed cell, or a held one whose record shows a hazard before it was cut short
+    failed = kind is VerdictKind.FAIL or bool(result.verdict.hazards)
+    cautions = [
+        {"title": hazards.CAUTIONS[h].title, "text": hazards.CAUTIONS[h].text}
+        for h in result.verdict.hazards
+    ] if failed else []
+    return {
+        "title": f"Certificate for cell {cell_id}: {word}",
+        "description": (
+            f"Formation and grading certificate, cell {cell_id}, lot {result.lot or DASH}, "
+            f"cell type {result.cell_type.name}: {word}"
+        ),
+        "keywords": f"formation, grading, certificate, {word}",
+        "generator": f"formgate {result.software_version}",
+        "created": format_time(result.analysed_at),
+        "cell_id": cell_id,
+        "verdict": {
+            "kind": kind.value,
+            "word": word,
+            "headline": headline,
+            "sections": _decision(result),
+        },
+        "identity": _identity(result),
+        "other_metadata": [(k, v) for k, v in result.metadata.items() if k not in IDENTITY_KEYS],
+        "checks": [_check_row(c, c in decided) for c in result.verdict.checks],
+        "cautions": cautions,
+        "handling": hazards.HANDLING if cautions else "",
+        "general_caution": hazards.GENERAL_CAUTION if failed else "",
+        "caution_title": (
+            "Caution: this cell failed and may be hazardous"
+            if kind is VerdictKind.FAIL
+            else "Caution: this cell is held, and its record shows a hazard"
+        ),
+        "data_check_notice": hazards.DATA_CHECK_NOTICE,
+        "discharge_svg": Markup(plots.discharge_svg(  # numbers only: see plots.py
+            metrics.grading_curve, metrics.plateaus,
+            width_mm=PLOT_WIDTH_MM, height_mm=PLOT_HEIGHT_MM,
+        )),
+        "ica_svg": Markup(plots.ica_svg(  # numbers only: see plots.py
+            metrics.ica_curve, metrics.ica_peaks_v,
+            width_mm=PLOT_WIDTH_MM, height_mm=PLOT_HEIGHT_MM,
+        )),
+        "record_svg": Markup(evidence.record_svg(  # numbers only: see svgplot.py
+            metrics.record, width_mm=RECORD_WIDTH_MM, height_mm=RECORD_HEIGHT_MM,
+        )) if metrics.record is not None else "",
+        "evidence": _evidence(result),
+        "cycles": [_cycle_row(c) for c in metrics.cycles],
+        "plateaus": [_plateau_row(i, p) for i, p in enumerate(metrics.plateaus, start=1)],
+        "ica_caption": _ica_caption(metrics.ica_curve, metrics.ica_peaks_v),
+        "ica_peaks": ", ".join(f"{v:.3f} V" for v in metrics.ica_peaks_v if math.isfinite(v))
+        or DASH,
+        "notes": _note_rows(result),
+        "current_band": _band_text(result.current_band),
+        "traceability": _traceability(result),
+    }
+
+
+@functools.lru_cache(maxsize=1)
+def environment() -> jinja2.Environment:
+    """The one Jinja2 environment: autoescaping on, undefined names fail loudly."""
+    return jinja2.Environment(
+        loader=jinja2.FileSystemLoader(TEMPLATES_DIR),
+        autoescape=True,
+        undefined=jinja2.StrictUndefined,
+        keep_trailing_newline=True,
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+
+
+def render_html(result: CellResult) -> str:
+    """The certificate of one judged cell as an HTML document (a str)."""
+    return environment().get_template(TEMPLATE_NAME).render(build_context(result))

@@ -1,0 +1,185 @@
+"""How the station stays up: one input at a time, marked in hand; faults of the surroundings pause it.
+
+The station's main loop applies every effect through :meth:`Guarded.handle` (one
+input's effects, with the input marked in hand: inhand.py) or :meth:`Guarded.duty`
+(the station's own work). A fault of the surroundings there (troubles.py) pauses the
+station, raises one alert and keeps the interrupted effect; :meth:`Guarded.retry`
+tests the folders and the ledger with real writes, applies what waited, and resumes.
+Alerts are queued in the ledger's outbox, and held in memory while the ledger itself
+cannot be written. Any other exception is a bug and ends the process (exit 3).
+"""
+
+from __future__ import annotations
+
+import datetime
+import logging
+import threading
+import time
+from collections import deque
+from collections.abc import Callable
+
+from pipeline.mail.letters import Letter, alert_letter
+from pipeline.station.inhand import InHand
+from pipeline.station.ledger import Ledger
+from pipeline.station.settings import InboxSettings, Settings
+from pipeline.station.troubles import Troubles, describe, fault_key, is_environmental
+from pipeline.writing import write_atomic
+
+log = logging.getLogger("formgate.station")
+
+SURROUNDINGS = "surroundings"  # the key of the trouble that pauses the station
+PROBE_BYTES = 65536  # real bytes, flushed: an empty file can be created even on a full disk
+
+
+class Guarded:
+    """The station's guard rails; :class:`pipeline.station.station.Station` sets these attributes."""
+
+    settings: Settings
+    ledger: Ledger
+    clock: Callable[[], datetime.datetime]
+    troubles: Troubles
+    blocked: deque[Callable[[], None]]  # effects to apply once unpaused
+    unsent: list[Letter]  # alerts the ledger could not take yet
+    inhand: InHand
+    last_error: str
+    mail_wake: threading.Event
+
+    def handle(self, key: str, what: str, effect: Callable[[], None], *, retry: bool = True) -> None:
+        """Apply ``effect`` for one input, marked in hand; a fault of the surroundings pauses.
+
+        With ``retry`` the effect is applied again once the fault clears; without, the input
+        stays where it is and the next listing finds it again.
+        """
+
+        def run() -> None:
+            with self.inhand.holding(key, what):
+                effect()
+
+        if self.troubles.paused:
+            if retry:
+                self.blocked.append(run)
+            return
+        try:
+            run()
+        except Exception as exc:
+            if not is_environmental(exc):
+                raise
+            if retry:
+                self.blocked.append(run)
+            self.pause(exc)
+
+    def duty(self, effect: Callable[[], None]) -> None:
+        """Run one of the station's own duties; a fault of the surroundings pauses the station."""
+        try:
+            effect()
+        except Exception as exc:
+            if not is_environmental(exc):
+                raise
+            self.pause(exc)
+
+    def pause(self, exc: BaseException) -> None:
+        reason = describe(exc, ledger=self.settings.ledger)
+        self.last_error = reason
+        trouble = self.troubles.report(
+            SURROUNDINGS,
+            reason,
+            now=self.clock(),
+            now_s=time.monotonic(),
+            kind=fault_key(exc, ledger=self.settings.ledger),
+        )
+        if trouble is None:
+            return
+        log.error("paused: %s; the station tries again by itself and resumes when it can", reason)
+        if not trouble.repeated:
+            self.alert(
+                f"station paused: {reason}",
+                f"The station has paused: {reason}.\n\nIt claims no new files until this is "
+                "fixed, tries again by itself (after 1 s, then twice as long each time, up to "
+                f"{self.settings.retry_max_s:g} s) and resumes on its own; nothing is lost. "
+                "Free the disk, make the folder writable again, or bring back the folder or "
+                "share that went away.",
+                key=f"paused:{trouble.since.isoformat()}",
+            )
+        self.note_pause(trouble.shown())
+
+    def retry(self, now_s: float) -> None:
+        """While paused: test the folders and the ledger, apply what is waiting, and resume."""
+        if SURROUNDINGS not in self.troubles.active:
+            return
+        try:
+            for folder in (
+                self.settings.work,
+                self.settings.archive,
+                self.settings.quarantine,
+                self.settings.results,
+                self.settings.certificates,
+            ):
+                probe = folder / ".formgate-probe"
+                write_atomic(b"\0" * PROBE_BYTES, probe, make_parents=False)
+                probe.unlink()
+            self.ledger.note_state("paused", "", now=self.clock())
+            while self.blocked:
+                self.blocked[0]()
+                self.blocked.popleft()
+        except Exception as exc:
+            if not is_environmental(exc):
+                raise
+            wait_s = self.troubles.failed_again(now_s)
+            log.info("still paused (%s); next try in %g s", describe(exc, ledger=self.settings.ledger),
+                     wait_s)
+            return
+        ended = self.troubles.clear(SURROUNDINGS, now=self.clock())
+        if ended is not None:
+            log.warning("resumed: the fault has cleared (%s)", ended.shown())
+        self.flush_unsent()
+
+    def note_pause(self, shown: str) -> None:
+        try:
+            self.ledger.note_state("paused", shown, now=self.clock())
+        except Exception as exc:  # the ledger may be the fault: the heartbeat shows it too
+            if not is_environmental(exc):
+                raise
+
+    def alert(self, subject: str, text: str, *, key: str) -> None:
+        """Queue one alert (sent when mail works); kept in memory while the ledger cannot take it."""
+        routing = self.settings.routing
+        if not routing.alerts_to:
+            return
+        letter = alert_letter(
+            subject,
+            text,
+            routing.alerts_to,
+            station=self.settings.station_name,
+            key=key,
+            domain=routing.domain,
+        )
+        self.unsent.append(letter)
+        self.flush_unsent()
+
+    def flush_unsent(self) -> None:
+        while self.unsent:
+            try:
+                self.ledger.queue_mail(self.unsent[0], now=self.clock())
+            except Exception as exc:
+                if not is_environmental(exc):
+                    raise
+                return
+            self.unsent.pop(0)
+            self.mail_wake.set()
+
+    def inbox_trouble(self, inbox: InboxSettings, exc: OSError | None) -> None:
+        key = f"inbox:{inbox.name}"
+        if exc is None:
+            if self.troubles.clear(key, now=self.clock()) is not None:
+                log.warning("inbox %s can be listed again", inbox.name)
+            return
+        reason = f"inbox {inbox.name} cannot be listed ({describe(exc)})"
+        trouble = self.troubles.report(
+            key, reason, now=self.clock(), now_s=time.monotonic(), blocking=False
+        )
+        if trouble is not None:
+            log.error("%s; the other inboxes go on", reason)
+            if not trouble.repeated:
+                self.alert(reason, f"The station cannot list {inbox.folder}: {describe(exc)}. "
+                           "Files in it wait until it can; the other inboxes go on.",
+                           key=f"inbox:{inbox.name}:{trouble.since.isoformat()}")

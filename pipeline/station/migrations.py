@@ -1,0 +1,309 @@
+"""The ledger's schema as an ordered list of named migrations, and the code that applies them.
+
+Each migration runs in its own ``BEGIN IMMEDIATE`` transaction together with the
+row that records it (name, applied_at) in the ``migrations`` table, so a database
+is always exactly at one migration boundary. ``PRAGMA user_version`` mirrors the
+number of migrations applied; a database that is ahead of this code is refused.
+Opening connections and everything else about the ledger's rows is left to
+``pipeline.station.ledger``.
+"""
+
+from __future__ import annotations
+
+import sqlite3
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+
+from pipeline.errors import FormgateError
+from pipeline.model import SourceRef
+
+# Marks the file as a formgate ledger in the SQLite header ("FGLG"), so another
+# program's database is not mistaken for an empty ledger.
+APPLICATION_ID = 0x46474C47
+
+
+class LedgerError(FormgateError):
+    """A ledger that cannot be used as it is: written by a newer formgate, damaged, or foreign."""
+
+
+@dataclass(frozen=True, slots=True)
+class Migration:
+    """One named, ordered step of the schema. ``run`` executes inside an open transaction."""
+
+    name: str
+    run: Callable[[sqlite3.Connection], None]
+
+
+def sql_migration(name: str, *statements: str) -> Migration:
+    """A migration made of SQL statements, run one by one.
+
+    (``executescript`` is not used: it commits any open transaction first.)
+    """
+
+    def run(conn: sqlite3.Connection) -> None:
+        for statement in statements:
+            conn.execute(statement)
+
+    return Migration(name, run)
+
+
+_STATES = "'claimed', 'judged', 'published', 'archived', 'quarantined', 'duplicate'"
+
+# Times are ISO 8601 text in UTC with microseconds and "+00:00", one fixed width,
+# so text order is time order. Tables are STRICT (SQLite 3.37 or later).
+_INITIAL = sql_migration(
+    "0001_initial",
+    f"""
+    CREATE TABLE inputs (
+        id INTEGER PRIMARY KEY,
+        sha256 TEXT NOT NULL CHECK (length(sha256) = 64 AND sha256 NOT GLOB '*[^0-9a-f]*'),
+        name TEXT NOT NULL CHECK (name <> ''),
+        size INTEGER NOT NULL CHECK (size >= 0),
+        arrived_at TEXT NOT NULL,
+        work_path TEXT NOT NULL,
+        state TEXT NOT NULL CHECK (state IN ({_STATES})),
+        final_path TEXT,
+        final_at TEXT,
+        reason TEXT,
+        version INTEGER NOT NULL CHECK (version >= 1),
+        supersedes INTEGER REFERENCES inputs (id),
+        duplicate_of INTEGER REFERENCES inputs (id),
+        CHECK (CASE state
+            WHEN 'archived' THEN final_path IS NOT NULL
+            WHEN 'quarantined' THEN final_path IS NOT NULL
+            WHEN 'duplicate' THEN 1
+            ELSE final_path IS NULL END),
+        CHECK ((final_path IS NULL) = (final_at IS NULL)),
+        CHECK ((state = 'duplicate') = (duplicate_of IS NOT NULL)),
+        CHECK (supersedes IS NULL OR supersedes < id),
+        CHECK (duplicate_of IS NULL OR duplicate_of < id)
+    ) STRICT
+    """,
+    "CREATE INDEX inputs_by_sha256 ON inputs (sha256, id)",
+    "CREATE INDEX inputs_by_state ON inputs (state)",
+    "CREATE INDEX inputs_by_final_at ON inputs (final_at) WHERE final_at IS NOT NULL",
+    "CREATE INDEX inputs_by_work_path ON inputs (work_path)",
+    # versions count distinct contents under one name; duplicates take no part
+    """CREATE UNIQUE INDEX inputs_by_name_version ON inputs (name, version)
+       WHERE state <> 'duplicate'""",
+    # one in-flight row per file in work/: what makes claiming again after a restart idempotent
+    "CREATE UNIQUE INDEX inputs_in_flight ON inputs (work_path, sha256) WHERE final_path IS NULL",
+    """
+    CREATE TABLE results (
+        id INTEGER PRIMARY KEY,
+        input_id INTEGER NOT NULL UNIQUE REFERENCES inputs (id),
+        cell_id TEXT NOT NULL,
+        lot TEXT NOT NULL,
+        verdict TEXT NOT NULL CHECK (verdict IN ('pass', 'fail', 'hold', 'error')),
+        hazards TEXT NOT NULL CHECK (json_valid(hazards) AND json_type(hazards) = 'array'),
+        result_json TEXT NOT NULL CHECK (json_valid(result_json)),
+        rule_set_name TEXT NOT NULL,
+        rule_set_revision TEXT NOT NULL,
+        rule_set_sha256 TEXT NOT NULL,
+        analysed_at TEXT NOT NULL,
+        json_path TEXT NOT NULL,
+        pdf_path TEXT,
+        superseded_by INTEGER REFERENCES results (id),
+        digest_mail_id INTEGER REFERENCES outbox (id),
+        CHECK (superseded_by IS NULL OR superseded_by <> id),
+        CHECK (digest_mail_id IS NULL OR verdict = 'pass')
+    ) STRICT
+    """,
+    "CREATE INDEX results_by_analysed_at ON results (analysed_at, id)",
+    "CREATE INDEX results_by_superseded_by ON results (superseded_by)",
+    "CREATE INDEX results_by_digest_mail ON results (digest_mail_id)",
+    """CREATE INDEX results_awaiting_digest ON results (lot)
+       WHERE verdict = 'pass' AND digest_mail_id IS NULL""",
+    """
+    CREATE TABLE checks (
+        id INTEGER PRIMARY KEY,
+        result_id INTEGER NOT NULL REFERENCES results (id),
+        position INTEGER NOT NULL,
+        rule_id TEXT NOT NULL CHECK (rule_id <> ''),
+        metric TEXT NOT NULL CHECK (metric <> ''),
+        value REAL,
+        low REAL,
+        high REAL,
+        outcome TEXT NOT NULL
+            CHECK (outcome IN ('in_window', 'out_of_window', 'not_judged', 'skipped')),
+        severity TEXT NOT NULL CHECK (severity IN ('reject', 'review')),
+        hazard TEXT CHECK (hazard IS NULL OR hazard <> ''),
+        UNIQUE (result_id, position)
+    ) STRICT
+    """,
+    """
+    CREATE TABLE outbox (
+        id INTEGER PRIMARY KEY,
+        kind TEXT NOT NULL CHECK (kind IN ('failure', 'hold', 'digest', 'alert')),
+        message_id TEXT NOT NULL UNIQUE CHECK (message_id <> ''),
+        recipients TEXT NOT NULL CHECK (json_valid(recipients) AND json_type(recipients) = 'array'),
+        subject TEXT NOT NULL,
+        body_text TEXT NOT NULL,
+        attachment_path TEXT,
+        cell_result_id INTEGER REFERENCES results (id),
+        lot TEXT,
+        state TEXT NOT NULL CHECK (state IN ('pending', 'sent', 'parked')),
+        attempts INTEGER NOT NULL DEFAULT 0 CHECK (attempts >= 0),
+        next_attempt_at TEXT NOT NULL,
+        last_error TEXT,
+        reply TEXT,
+        created_at TEXT NOT NULL,
+        sent_at TEXT,
+        CHECK ((state = 'sent') = (sent_at IS NOT NULL))
+    ) STRICT
+    """,
+    "CREATE INDEX outbox_due ON outbox (created_at, id) WHERE state = 'pending'",
+    "CREATE INDEX outbox_by_result ON outbox (cell_result_id)",
+    "CREATE INDEX outbox_by_state ON outbox (state)",
+)
+
+# The exact text of every rule set (and import profile) a result was judged with, by
+# SHA-256: a restart that must re-render a committed result judges the same bytes
+# with the same rules again, and auditors can read the rules behind any certificate.
+_RULE_TEXTS = sql_migration(
+    "0002_rule_texts",
+    """
+    CREATE TABLE rule_texts (
+        sha256 TEXT PRIMARY KEY CHECK (length(sha256) = 64 AND sha256 NOT GLOB '*[^0-9a-f]*'),
+        kind TEXT NOT NULL CHECK (kind IN ('rule_set', 'profile')),
+        name TEXT NOT NULL,
+        text TEXT NOT NULL,
+        first_used_at TEXT NOT NULL
+    ) STRICT
+    """,
+)
+
+# Inbox entries the station could not take as inputs (a folder, a link, a pipe, a file it
+# may not read or move, a marker without data): where each went, or why it was left in
+# place. The rule sets in force at each successful load of the rules folder, so a station
+# started while a rule file is broken judges with the last rules that were valid. And a
+# few named values of the running station (whether it is paused, and why), which also
+# serve as its test that the ledger can be written.
+_SET_ASIDE = sql_migration(
+    "0003_set_aside_rule_books_station_state",
+    """
+    CREATE TABLE set_aside (
+        id INTEGER PRIMARY KEY,
+        inbox TEXT NOT NULL,
+        name TEXT NOT NULL CHECK (name <> ''),
+        kind TEXT NOT NULL
+            CHECK (kind IN ('file', 'folder', 'symlink', 'fifo', 'socket', 'device', 'marker')),
+        reason TEXT NOT NULL CHECK (reason <> ''),
+        noticed_at TEXT NOT NULL,
+        state TEXT NOT NULL CHECK (state IN ('quarantined', 'left_in_place')),
+        final_path TEXT,
+        CHECK ((state = 'quarantined') = (final_path IS NOT NULL))
+    ) STRICT
+    """,
+    "CREATE INDEX set_aside_by_noticed_at ON set_aside (noticed_at, id)",
+    """
+    CREATE TABLE rule_books (
+        id INTEGER PRIMARY KEY,
+        rule_sets TEXT NOT NULL CHECK (json_valid(rule_sets) AND json_type(rule_sets) = 'array'),
+        loaded_at TEXT NOT NULL
+    ) STRICT
+    """,
+    """
+    CREATE TABLE station_state (
+        key TEXT PRIMARY KEY CHECK (key <> ''),
+        value TEXT NOT NULL,
+        updated_at TEXT NOT NULL
+    ) STRICT
+    """,
+)
+
+MIGRATIONS: tuple[Migration, ...] = (_INITIAL, _RULE_TEXTS, _SET_ASIDE)
+SCHEMA_VERSION = len(MIGRATIONS)
+
+_BOOTSTRAP = """
+CREATE TABLE IF NOT EXISTS migrations (
+    id INTEGER PRIMARY KEY,
+    name TEXT NOT NULL UNIQUE,
+    applied_at TEXT NOT NULL
+) STRICT
+"""
+
+
+def _applied(conn: sqlite3.Connection) -> list[str]:
+    return [row[0] for row in conn.execute("SELECT name FROM migrations ORDER BY id")]
+
+
+def _check_known(conn: sqlite3.Connection, known: Sequence[str], where: SourceRef) -> list[str]:
+    """The names applied so far, after refusing a database this code does not understand."""
+    app_id = conn.execute("PRAGMA application_id").fetchone()[0]
+    user_version = conn.execute("PRAGMA user_version").fetchone()[0]
+    has_log = conn.execute(
+        "SELECT count(*) FROM sqlite_schema WHERE type = 'table' AND name = 'migrations'"
+    ).fetchone()[0]
+    tables = conn.execute(
+        "SELECT count(*) FROM sqlite_schema WHERE type = 'table' AND name NOT LIKE 'sqlite_%'"
+    ).fetchone()[0]
+    if app_id not in (0, APPLICATION_ID) or (not has_log and (tables or user_version)):
+        raise LedgerError(
+            "this file is an SQLite database but not a formgate ledger",
+            where,
+            "Point the station at a new file name; formgate creates its ledger itself.",
+        )
+    applied = _applied(conn) if has_log else []
+    newer = [name for name in applied if name not in known]
+    if newer or user_version > len(known):
+        raise LedgerError(
+            f"the ledger was written by a newer formgate (schema version {user_version}, "
+            f"migrations this formgate does not know: {', '.join(newer) or 'none recorded'}; "
+            f"this formgate knows up to version {len(known)})",
+            where,
+            "Run the newer formgate, or upgrade this installation; a ledger is never downgraded.",
+        )
+    if applied != list(known[: len(applied)]) or user_version != len(applied):
+        raise LedgerError(
+            f"the ledger's migration record is inconsistent (applied: {', '.join(applied)}; "
+            f"user_version {user_version})",
+            where,
+            "Restore the ledger from a backup, or move it aside so a new one is created.",
+        )
+    return applied
+
+
+def migrate(
+    conn: sqlite3.Connection,
+    migrations: Sequence[Migration] = MIGRATIONS,
+    *,
+    applied_at: str,
+    where: SourceRef,
+) -> list[str]:
+    """Apply the pending ``migrations`` in order, one transaction each; return the names applied.
+
+    ``conn`` must be in autocommit mode (``isolation_level=None``). Safe when two
+    processes open the same new file at once: each step re-reads the record after
+    taking the write lock, so a migration another process applied is skipped.
+    Raises LedgerError for a database that is foreign or ahead of ``migrations``.
+    """
+    known = [m.name for m in migrations]
+    done: list[str] = []
+    while True:
+        conn.execute("BEGIN IMMEDIATE")
+        try:
+            applied = _check_known(conn, known, where)
+            if len(applied) == len(migrations):
+                conn.execute("COMMIT")
+                return done
+            step = migrations[len(applied)]
+            conn.execute(_BOOTSTRAP)
+            conn.execute(f"PRAGMA application_id = {APPLICATION_ID}")
+            step.run(conn)
+            conn.execute(
+                "INSERT INTO migrations (name, applied_at) VALUES (?, ?)", (step.name, applied_at)
+            )
+            conn.execute(f"PRAGMA user_version = {len(applied) + 1}")
+            conn.execute("COMMIT")
+            done.append(step.name)
+        except BaseException:
+            if conn.in_transaction:
+                conn.execute("ROLLBACK")
+            raise
+
+
+def applied_migrations(conn: sqlite3.Connection) -> list[tuple[str, str]]:
+    """(name, applied_at) of every migration recorded, oldest first."""
+    rows = conn.execute("SELECT name, applied_at FROM migrations ORDER BY id").fetchall()
+    return [(str(name), str(at)) for name, at in rows]

@@ -1,0 +1,146 @@
+"""Which rules the station judges with: reload the rules folder when it changes, never crash on it.
+
+A broken edit keeps the last good rules in force and raises one alert naming file and
+line. A station *started* while a rule file is broken judges with the last rules that
+were valid, kept in the ledger (each good load records its rule sets there), and
+alerts; with none kept, it pauses with the files waiting in the inboxes until the
+rules are fixed. It never refuses to start over a rule file, so a service manager
+that restarts it cannot loop.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import logging
+import time
+from pathlib import Path
+
+from pipeline.errors import FormgateError
+from pipeline.rulebook.book import (
+    RuleBook,
+    check_profiles_dir,
+    check_rules_dir,
+    load_rule_set,
+    load_rules_dir,
+)
+from pipeline.station.guard import Guarded
+
+log = logging.getLogger("formgate.station")
+
+
+class RulesKeeper(Guarded):
+    """The rules in force; :class:`pipeline.station.station.Station` sets these attributes."""
+
+    rulebook: RuleBook | None
+    rules_fingerprint: tuple[tuple[str, int, int], ...] | None
+    rules_alerted: str
+
+    def load_rules(self, *, first: bool = False) -> None:
+        """Load the rules folder if it changed; a broken edit keeps the last good rules in force.
+
+        Started while a rule file is broken, the station judges with the last rules that
+        were valid (kept in the ledger); with none, it is paused until the rules are fixed.
+        """
+        folder = self.settings.rules_dir
+        try:
+            files = sorted([*folder.glob("*.toml"), *folder.glob("profiles/*.toml")])
+            fingerprint = tuple((str(p), st.st_size, st.st_mtime_ns) for p in files for st in [p.stat()])
+        except OSError:  # a file went while listing, or the folder cannot be read
+            fingerprint = (("(unreadable)", 0, 0),)  # checked once now, again once it changes
+        if fingerprint == self.rules_fingerprint and not first:
+            return
+        problems: list[FormgateError] = [
+            *check_rules_dir(folder),
+            *check_profiles_dir(folder / "profiles"),
+        ]
+        rulebook = None
+        if not problems:
+            try:
+                rulebook = load_rules_dir(folder)
+            except FormgateError as exc:  # edited again between the check and the load
+                problems = [exc]
+        if rulebook is None:
+            self.refuse_rules("\n".join(str(p) for p in problems), first=first)
+            self.rules_fingerprint = fingerprint
+            return
+        self.keep_rule_texts(rulebook)
+        self.rulebook = rulebook
+        self.rules_fingerprint = fingerprint
+        if self.troubles.clear("rules", now=self.clock()) is not None:
+            log.warning("rules valid again: the station resumes")
+
+    def keep_rule_texts(self, rulebook: RuleBook) -> None:
+        kept = []
+        for rs in rulebook.rule_sets:
+            # keep the exact text in the ledger once per revision, so a restart can re-judge a
+            # recorded cell with the rules that judged it; a file edited again since it was
+            # loaded no longer matches its hash and is kept at the next reload instead
+            data = Path(rs.source).read_bytes()
+            if hashlib.sha256(data).hexdigest() == rs.sha256:
+                self.ledger.remember_text(
+                    kind="rule_set",
+                    sha256=rs.sha256,
+                    name=Path(rs.source).name,
+                    text=data.decode("utf-8"),
+                    now=self.clock(),
+                )
+                kept.append(rs.sha256)
+            log.info(
+                "rules in force: %s revision %s (%s, sha256 %s)",
+                rs.name,
+                rs.revision,
+                Path(rs.source).name,
+                rs.sha256[:12],
+            )
+        self.ledger.remember_rule_book(kept, now=self.clock())
+
+    def refuse_rules(self, text: str, *, first: bool) -> None:
+        key = hashlib.sha256(text.encode()).hexdigest()
+        if self.rulebook is None and first:
+            self.rulebook = self.last_valid_rules()
+            if self.rulebook is not None:
+                names = ", ".join(f"{rs.name} {rs.revision}" for rs in self.rulebook.rule_sets)
+                log.error("a rule file is not valid; starting with the last valid rules (%s):\n%s",
+                          names, text)
+                self.alert(
+                    "started with the last valid rules",
+                    f"The station started while a rule file is not valid. It judges with the last "
+                    f"rules that were valid, kept in its ledger ({names}), until it is fixed.\n\n"
+                    f"{text}\n\nFix the file, then check it with `formgate rules check`.",
+                    key=f"rules-start:{key}",
+                )
+                self.rules_alerted = key
+                return
+        if self.rulebook is None:
+            trouble = self.troubles.report(
+                "rules", "no valid rules to judge with", now=self.clock(), now_s=time.monotonic()
+            )
+            if trouble is not None:
+                log.error("paused: no valid rules to judge with; files wait in the inboxes:\n%s",
+                          text)
+                self.alert(
+                    "station paused: no valid rules",
+                    "The station has no valid rules to judge with, so it claims nothing; files "
+                    f"wait in the inboxes and are judged once the rules are fixed.\n\n{text}\n\n"
+                    "Fix the file, then check it with `formgate rules check`.",
+                    key=f"rules-none:{key}",
+                )
+            return
+        log.error("rules edit refused; the last good rules stay in force:\n%s", text)
+        if key != self.rules_alerted:
+            self.rules_alerted = key
+            self.alert(
+                "rules edit refused, last good rules still in force",
+                "A rule file was edited and is not valid. The station keeps judging with the "
+                f"last good rules until it is fixed.\n\n{text}\n\nFix the file, then check it "
+                "with `formgate rules check` before saving it into the rules folder.",
+                key=f"rules:{key}",
+            )
+
+    def last_valid_rules(self) -> RuleBook | None:
+        try:
+            kept = self.ledger.last_rule_book()
+            return RuleBook(tuple(load_rule_set(text, name) for name, text in kept)) if kept else None
+        except FormgateError as exc:  # kept by an older formgate and no longer valid
+            log.error("the last valid rules in the ledger cannot be used: %s", exc)
+            return None

@@ -1,0 +1,173 @@
+"""`formgate status`: what the station is doing, read from its ledger, heartbeat and folders.
+
+Read-only: it never claims, moves or writes anything, so it is safe to run beside
+a running station (SQLite WAL lets a reader in while the station writes).
+"""
+
+from __future__ import annotations
+
+import datetime
+import json
+import os
+from pathlib import Path
+
+from pipeline.inputnames import from_text, to_text
+from pipeline.station.handoff import is_temporary
+from pipeline.station.ledger import Ledger
+from pipeline.station.settings import Settings
+from pipeline.station.waiting import overdue_entries
+from pipeline.station.watcher import list_entries
+
+STALE_FACTOR = 3  # a heartbeat older than this many intervals means the station is not running
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def health(settings: Settings, now: datetime.datetime) -> tuple[str, dict[str, object]]:
+    """('running' | 'paused' | 'stopped' | 'not responding' | 'never started', heartbeat contents)."""
+    try:
+        beat = json.loads(settings.heartbeat.read_text(encoding="utf-8"))
+    except (FileNotFoundError, json.JSONDecodeError):
+        return "never started", {}
+    if beat.get("state") == "stopped":
+        return "stopped", beat
+    updated = datetime.datetime.fromisoformat(str(beat.get("updated_at")))
+    age = (now - updated).total_seconds()
+    if age > STALE_FACTOR * settings.heartbeat_s + 5 or not _pid_alive(int(beat.get("pid", 0))):
+        return "not responding", beat
+    return ("paused" if beat.get("state") == "paused" else "running"), beat
+
+
+def _files(folder: Path) -> list[str]:
+    """Regular files with final names, as text (a name may hold any bytes)."""
+    try:
+        names = list_entries(folder).files
+    except OSError:
+        return []
+    return sorted(to_text(n) for n in names if not is_temporary(n))
+
+
+def _overdue_lines(settings: Settings, now: datetime.datetime, left: dict[str, dict[str, str]]) -> list[str]:
+    """Inbox entries unchanged for longer than waiting_alert_s and not taken, with age and reason."""
+    lines = []
+    for inbox in settings.inboxes:
+        try:
+            listing = list_entries(inbox.folder)
+        except OSError as exc:
+            lines.append(f"  {inbox.name}: the folder cannot be listed ({exc.strerror or exc})")
+            continue
+        for e in overdue_entries(
+            listing,
+            inbox,
+            now_ns=int(now.timestamp() * 1e9),
+            waiting_alert_s=settings.waiting_alert_s,
+            left=left.get(inbox.name, {}),
+        ):
+            lines.append(f"  {inbox.name}: {e.name}: waiting {e.age}; {e.why}")
+    return lines
+
+
+def status_text(settings: Settings, now: datetime.datetime) -> str:
+    """The whole status report as text."""
+    state, beat = health(settings, now)
+    lines = [f"station {settings.station_name}: {state}"]
+    if beat:
+        lines.append(
+            f"  last heartbeat {beat.get('updated_at')}, pid {beat.get('pid')}, "
+            f"judged since start {beat.get('judged_since_start')}"
+        )
+        if beat.get("rules"):
+            rules = beat["rules"]
+            shown = ", ".join(str(r) for r in rules) if isinstance(rules, list) else str(rules)
+            lines.append(f"  rules in force: {shown}")
+        troubles = beat.get("troubles")
+        if isinstance(troubles, list):
+            lines += [f"  {t}" for t in troubles]
+        if beat.get("last_error"):
+            lines.append(f"  last error: {beat['last_error']}")
+    lines.append("")
+    lines.append("queue")
+    for inbox in settings.inboxes:
+        waiting = _files(inbox.folder)
+        lines.append(
+            f"  {inbox.name} ({inbox.folder}, {inbox.handover}): {len(waiting)} file(s) waiting"
+        )
+        for name in waiting[:5]:
+            lines.append(f"    {name}")
+    lines.append(f"  work: {len(_files(settings.work))} file(s) being judged")
+    if not settings.ledger.exists():
+        overdue = _overdue_lines(settings, now, {})
+        if overdue:
+            lines += ["", f"waiting too long (unchanged for over {settings.waiting_alert_s:g} s)"]
+            lines += overdue
+        lines.append("\nno ledger yet")
+        return "\n".join(lines) + "\n"
+    midnight = now.astimezone(datetime.UTC).replace(hour=0, minute=0, second=0, microsecond=0)
+    with Ledger(settings.ledger, now=now) as ledger:
+        noted = ledger.state("paused")
+        if noted and noted[0] and state not in ("running", "paused"):
+            lines.insert(1, f"  last noted in the ledger: {noted[0]}")
+        left: dict[str, dict[str, str]] = {}
+        still_there = []
+        folders = {i.name: i.folder for i in settings.inboxes}
+        for row in reversed(ledger.set_aside_rows(1000, state="left_in_place")):
+            name = from_text(row.name)
+            left.setdefault(row.inbox, {})[name] = row.reason.splitlines()[0]
+            if row.inbox in folders and os.path.lexists(folders[row.inbox] / name):
+                still_there.append(f"  {row.inbox}: {row.reason.splitlines()[0]}")
+        if still_there:
+            lines += ["", "left in place (the station cannot move them out of the inbox)"]
+            lines += sorted(set(still_there))
+        overdue = _overdue_lines(settings, now, left)
+        if overdue:
+            lines += ["", f"waiting too long (unchanged for over {settings.waiting_alert_s:g} s)"]
+            lines += overdue
+        aside = ledger.set_aside_rows(5, state="quarantined")
+        if aside:
+            lines += ["", "set aside lately (not inputs; in quarantine with a reason)"]
+            for a in aside:
+                lines.append(f"  {a.noticed_at.isoformat(timespec='seconds')}  {a.inbox}: "
+                             f"{a.reason.splitlines()[0]}")
+        counts = ledger.counts_since(midnight)
+        lines.append("")
+        lines.append(
+            "today (UTC): "
+            + ", ".join(
+                f"{counts.get(k, 0)} {k}" for k in ("pass", "fail", "hold", "error", "duplicate")
+            )
+        )
+        lines.append("")
+        lines.append("last cells")
+        for r in ledger.recent_results(10):
+            # a fail or hold names what decided it (the result's deciding line)
+            decision = json.loads(r.result_json).get("decision", "") if r.verdict != "pass" else ""
+            lines.append(
+                f"  {r.analysed_at.isoformat()}  {r.cell_id}  lot {r.lot}  {r.verdict}"
+                + (f": {decision}" if decision else "")
+                + (f"  hazard: {', '.join(r.hazards)}" if r.hazards else "")
+            )
+        outbox = ledger.outbox_counts()
+        lines.append("")
+        lines.append(
+            "outbox: " + ", ".join(f"{outbox.get(k, 0)} {k}" for k in ("pending", "sent", "parked"))
+        )
+        errors = ledger.recent_errors(5)
+        if errors:
+            lines.append("")
+            lines.append("recent errors")
+            for e in errors:
+                first = (e.reason or "").splitlines()[0] if e.reason else ""
+                lines.append(f"  {e.name}: {first}")
+        lines.append("")
+        lines.append(
+            f"ledger integrity: {'ok' if ledger.integrity_ok() else 'DAMAGED - see docs/station.md'}"
+        )
+    return "\n".join(lines) + "\n"

@@ -1,0 +1,185 @@
+"""The package's layering holds: the judging core imports nothing from the edges, no circles.
+
+The import graph is read from the source with the standard library's ``ast`` (every
+``import`` and ``from ... import``, at module level or inside a function), so a lazy import
+counts as much as one at the top.
+"""
+
+from __future__ import annotations
+
+import ast
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+
+import pytest
+
+from tests.conftest import REPO
+
+PACKAGE = REPO / "pipeline"
+
+# Which parts each part may not import. The core (read, judge, rulebook) is pure: no edge,
+# no demo. Report and mail sit on the core; the station on all of those; only the command
+# line (and the tests) may import the demo.
+FORBIDDEN: Mapping[str, tuple[str, ...]] = {
+    "read": ("judge", "report", "mail", "station", "demo", "cli", "runner"),
+    "judge": ("report", "mail", "station", "demo", "cli", "runner"),
+    "rulebook": ("report", "mail", "station", "demo", "cli", "runner"),
+    "report": ("mail", "station", "demo", "cli", "runner"),
+    "mail": ("station", "demo", "cli", "runner"),
+    "station": ("demo", "cli"),
+    "runner": ("station", "mail", "demo", "cli"),
+    # the records everyone shares import nothing of the package above them
+    "model": ("read", "judge", "rulebook", "report", "mail", "station", "demo", "cli", "runner"),
+    "errors": ("read", "judge", "rulebook", "report", "mail", "station", "demo", "cli", "runner"),
+}
+
+
+def module_name(path: Path) -> str:
+    parts = path.relative_to(REPO).with_suffix("").parts
+    if parts[-1] == "__init__":
+        parts = parts[:-1]
+    return ".".join(parts)
+
+
+def imports_of(source: str, name: str) -> set[str]:
+    """The pipeline modules ``source`` (module ``name``) imports, anywhere in it."""
+    found: set[str] = set()
+    package = name.rsplit(".", 1)[0]  # the package relative imports start from
+    for node in ast.walk(ast.parse(source)):
+        if isinstance(node, ast.Import):
+            found.update(a.name for a in node.names if a.name.startswith("pipeline"))
+        elif isinstance(node, ast.ImportFrom):
+            if node.level:
+                base = package.rsplit(".", node.level - 1)[0] if node.level > 1 else package
+                module = f"{base}.{node.module}" if node.module else base
+            else:
+                module = node.module or ""
+            if not module.startswith("pipeline"):
+                continue
+            found.add(module)
+            # "from pipeline.x import y" may import the module pipeline.x.y
+            found.update(f"{module}.{a.name}" for a in node.names)
+    return found
+
+
+def graph(sources: Mapping[str, str]) -> dict[str, set[str]]:
+    """Module -> the modules of ``sources`` it imports (names that are not modules dropped)."""
+    known = set(sources)
+    edges = {}
+    for name, source in sources.items():
+        targets = set()
+        for imported in imports_of(source, name):
+            # a name imported from a module counts as that module
+            while imported and imported not in known:
+                imported = imported.rpartition(".")[0]
+            # a part's __init__ holds only its docstring (test below): importing it is
+            # no dependency; the modules imported from it are
+            if (imported and imported != name and imported.count(".") > 1) or imported in TOP:
+                targets.add(imported)
+        edges[name] = targets
+    return edges
+
+
+def package_sources() -> dict[str, str]:
+    return {
+        module_name(path): path.read_text(encoding="utf-8")
+        for path in sorted(PACKAGE.rglob("*.py"))
+    }
+
+
+TOP = {name for name in package_sources() if name.count(".") == 1 and not (
+    PACKAGE / name.split(".")[1] / "__init__.py"
+).exists()}
+
+
+def part(module: str) -> str:
+    """The part a module belongs to: pipeline.judge.metrics -> judge, pipeline.cli -> cli."""
+    pieces = module.split(".")
+    return pieces[1] if len(pieces) > 1 else ""
+
+
+def violations(edges: Mapping[str, Iterable[str]]) -> list[str]:
+    found = []
+    for module, targets in sorted(edges.items()):
+        banned = FORBIDDEN.get(part(module), ())
+        for target in sorted(targets):
+            if part(target) in banned:
+                found.append(f"{module} imports {target}")
+    return found
+
+
+def circles(edges: Mapping[str, Iterable[str]]) -> list[list[str]]:
+    """Every strongly connected set of more than one module (Tarjan's algorithm)."""
+    index: dict[str, int] = {}
+    low: dict[str, int] = {}
+    stack: list[str] = []
+    on_stack: set[str] = set()
+    found: list[list[str]] = []
+
+    def visit(v: str) -> None:
+        index[v] = low[v] = len(index)
+        stack.append(v)
+        on_stack.add(v)
+        for w in edges.get(v, ()):
+            if w not in index:
+                visit(w)
+                low[v] = min(low[v], low[w])
+            elif w in on_stack:
+                low[v] = min(low[v], index[w])
+        if low[v] == index[v]:
+            component = []
+            while True:
+                w = stack.pop()
+                on_stack.discard(w)
+                component.append(w)
+                if w == v:
+                    break
+            if len(component) > 1:
+                found.append(sorted(component))
+
+    for v in sorted(edges):
+        if v not in index:
+            visit(v)
+    return found
+
+
+def test_the_core_imports_nothing_from_the_edges_and_nothing_imports_the_demo() -> None:
+    assert violations(graph(package_sources())) == []
+
+
+def test_no_module_imports_itself_back_through_others() -> None:
+    assert circles(graph(package_sources())) == []
+
+
+def test_every_part_of_the_package_says_what_it_may_import_and_holds_nothing_else() -> None:
+    for init in sorted(PACKAGE.glob("*/__init__.py")):
+        tree = ast.parse(init.read_text(encoding="utf-8"))
+        doc = ast.get_docstring(tree)
+        assert doc and "import" in doc, init
+        assert len(tree.body) == 1, f"{init} holds code besides its docstring"
+
+
+@pytest.mark.parametrize(
+    ("module", "line", "expected"),
+    [
+        ("pipeline.judge.metrics", "from pipeline.station.ledger import Ledger",
+         ["pipeline.judge.metrics imports pipeline.station.ledger"]),
+        ("pipeline.read.cyclefile", "import pipeline.demo.synth",
+         ["pipeline.read.cyclefile imports pipeline.demo.synth"]),
+        ("pipeline.judge.metrics", "def f():\n    from pipeline.mail import letters",
+         ["pipeline.judge.metrics imports pipeline.mail.letters"]),
+        ("pipeline.station.station", "from pipeline.judge import metrics", []),
+    ],
+)
+def test_the_check_catches_a_core_module_that_imports_an_edge(
+    module: str, line: str, expected: list[str]
+) -> None:
+    sources = package_sources()
+    sources[module] = sources[module] + "\n" + line + "\n"
+    assert violations(graph(sources)) == expected
+
+
+def test_the_check_catches_a_circle() -> None:
+    sources = package_sources()
+    sources["pipeline.judge.thin"] += "\ndef f():\n    from pipeline.judge import metrics\n"
+    assert ["pipeline.judge.metrics", "pipeline.judge.thin"] in circles(graph(sources))
