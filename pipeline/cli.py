@@ -219,7 +219,13 @@ def cmd_mail_retry(args: argparse.Namespace) -> int:
         left = ledger.outbox_counts()
     print(f"sent {counts['sent']}, delayed {counts['retry']}, parked {counts['park']}; "
           f"outbox now {left.get('pending', 0)} pending, {left.get('parked', 0)} parked")
-    return EXIT_OK if counts["retry"] == 0 and counts["park"] == 0 else EXIT_USER
+    parked = left.get("parked", 0)
+    if parked and not args.parked:
+        # parked mail was refused for good by the server: only a deliberate retry sends it
+        print(f"  {parked} parked mail(s) were not retried: fix what the server refused "
+              f"(see formgate status), then run: formgate mail retry {args.folder} --parked")
+    unsent = counts["retry"] or counts["park"] or (parked and not args.parked)
+    return EXIT_USER if unsent else EXIT_OK
 
 
 def build_parser() -> argparse.ArgumentParser:

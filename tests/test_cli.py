@@ -450,3 +450,27 @@ def test_unknown_option_is_a_usage_error(capsys: pytest.CaptureFixture[str]) -> 
         main(["check", "--colour", "x.csv"])
     assert exit_info.value.code == 2
     assert capsys.readouterr().err.splitlines()[-1] == ("formgate: error: unrecognized arguments: --colour")
+
+
+def test_mail_retry_says_how_to_send_parked_mail(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    import datetime
+
+    from pipeline.mail.letters import Letter
+    from pipeline.station.ledger import Ledger
+    from tests.station_kit import make_station
+
+    s = make_station(tmp_path / "st")
+    when = datetime.datetime(2026, 3, 2, tzinfo=datetime.UTC)
+    with Ledger(s.ledger, now=when) as ledger:
+        letter = Letter("alert", "<p-1@demo.example>", ("maintenance@example.com",), "alert", "text")
+        mail_id = ledger.queue_mail(letter, now=when)
+        ledger.park(mail_id, now=when, reply="550 no such mailbox")
+    assert main(["mail", "retry", str(s.root)]) == 2
+    out = capsys.readouterr().out
+    assert out.splitlines() == [
+        "sent 0, delayed 0, parked 0; outbox now 0 pending, 1 parked",
+        "  1 parked mail(s) were not retried: fix what the server refused (see formgate status), "
+        f"then run: formgate mail retry {s.root} --parked",
+    ]
