@@ -1,0 +1,186 @@
+"""Publishing what the workers judged: record, write JSON and PDF, archive, quarantine, letters.
+
+One finished output becomes, in this order: ONE ledger transaction (result, check rows,
+outbox rows with the failure or hold letter), the JSON and PDF written atomically, the
+input marked published and moved to archive/YYYY-MM-DD/. An input that cannot be judged
+goes to quarantine/ with a .reason.txt beside it. Claiming inputs is claiming.py's job,
+handing them to the workers tasks.py's; the mail thread sends the letters (mailer.py).
+"""
+
+from __future__ import annotations
+
+import datetime
+import logging
+from pathlib import Path
+
+from pipeline.inputnames import fit
+from pipeline.judge.evaluate import decision_line
+from pipeline.mail.letters import Letter, alert_letter, failure_letter, hold_letter
+from pipeline.model import CellResult, VerdictKind
+from pipeline.runner import result_paths
+from pipeline.station import faults
+from pipeline.station.guard import Guarded
+from pipeline.station.ledger import CheckRowData, InputRow
+from pipeline.station.setaside import NAME_RESERVE_BYTES
+from pipeline.station.worker import Output
+from pipeline.writing import move_into, require_folder, write_atomic
+
+log = logging.getLogger("formgate.station")
+
+
+class Publishing(Guarded):
+    """Record, publish, archive; :class:`pipeline.station.station.Station` sets these attributes."""
+
+    judged: int
+
+    def apply(self, row: InputRow, output: Output) -> None:
+        row = self.ledger.input(row.id) or row  # applied again after a pause: where it stands now
+        if row.final_path is not None:
+            return
+        if output.error is not None:
+            if output.bug:
+                log.error("%s: internal error\n%s", row.name, output.detail)
+            self.quarantine(row, output.error)
+            return
+        assert output.result is not None and output.json_text is not None
+        pdf = output.pdf
+        if row.state == "claimed":
+            self.record(row, output.result, output.json_text, with_pdf=pdf is not None)
+        self.publish(row, output.result, output.json_text, pdf)
+        self.judged += 1
+        self.mail_wake.set()  # a failure or hold letter is due now that its certificate is there
+        r = output.result
+        hazards = (
+            f" hazard: {', '.join(h.value for h in r.verdict.hazards)}" if r.verdict.hazards else ""
+        )
+        # a fail or hold names what decided it, as its mail and status do
+        decided = "" if r.verdict.passed else f": {decision_line(r.verdict, r.notes)}"
+        log.info(
+            "%s lot %s: %s%s (%.2f s)%s [%s]",
+            r.cell_id,
+            r.lot,
+            r.verdict.kind.value,
+            decided,
+            output.seconds,
+            hazards,
+            row.name,
+        )
+
+    def output_paths(self, result: CellResult) -> tuple[Path, Path]:
+        return result_paths(self.settings.results, self.settings.certificates, result)
+
+    def letters(self, result: CellResult, pdf_path: Path) -> list[Letter]:
+        routing, station = self.settings.routing, self.settings.station_name
+        kind = result.verdict.kind
+        if kind is VerdictKind.FAIL and routing.failures_to:
+            return [
+                failure_letter(
+                    result,
+                    str(pdf_path),
+                    routing.failures_to,
+                    station=station,
+                    domain=routing.domain,
+                )
+            ]
+        if kind is VerdictKind.HOLD and routing.holds_to:
+            return [
+                hold_letter(
+                    result, str(pdf_path), routing.holds_to, station=station, domain=routing.domain
+                )
+            ]
+        return []
+
+    def record(
+        self, row: InputRow, result: CellResult, json_text: str, *, with_pdf: bool = True
+    ) -> None:
+        """ONE transaction: result, check rows, outbox rows (the rule text was kept at load)."""
+        json_path, pdf_path = self.output_paths(result)
+        self.ledger.record_result(
+            row.id,
+            cell_id=result.cell_id,
+            lot=result.lot,
+            verdict=result.verdict.kind.value,
+            hazards=[h.value for h in result.verdict.hazards],
+            result_json=json_text,
+            checks=[CheckRowData.from_check(c) for c in result.verdict.checks],
+            rule_set_name=result.rule_set.name,
+            rule_set_revision=result.rule_set.revision,
+            rule_set_sha256=result.rule_set.sha256,
+            analysed_at=result.analysed_at,
+            json_path=str(json_path),
+            pdf_path=str(pdf_path) if with_pdf else None,
+            mails=self.letters(result, pdf_path),
+        )
+        faults.point("after_commit")
+
+    def publish(self, row: InputRow, result: CellResult, json_text: str, pdf: bytes | None) -> None:
+        json_path, pdf_path = self.output_paths(result)
+        # the results and certificates folders must be there; a lot's folder is made in them
+        write_atomic(json_text.encode("utf-8"), json_path, make_parents=False)
+        if pdf is not None:
+            write_atomic(
+                pdf, pdf_path, before_rename=lambda: faults.point("mid_render"), make_parents=False
+            )
+        self.ledger.mark_published(row.id)
+        faults.point("after_publish")
+        self.finish(self.ledger.input(row.id) or row, "archived")
+
+    def finish(self, row: InputRow, state: str) -> None:
+        """Move the input (and its marker) from work/ to archive/YYYY-MM-DD/ and record it."""
+        day = row.arrived_at.astimezone(datetime.UTC).strftime("%Y-%m-%d")
+        target = self.settings.archive / day / final_name(row)
+        self._move_final(row, target)
+        self.ledger.mark_final(row.id, state, str(target), now=self.clock())
+
+    def quarantine(self, row: InputRow, reason: str) -> None:
+        """Record why, move the input to quarantine/ with a .reason.txt beside it, record where."""
+        if not row.reason:
+            letters = []
+            if self.settings.routing.alerts_to:
+                letters.append(
+                    alert_letter(
+                        f"file quarantined: {row.name}",
+                        reason,
+                        self.settings.routing.alerts_to,
+                        station=self.settings.station_name,
+                        key=f"quarantine:{row.sha256}:{row.id}",
+                        domain=self.settings.routing.domain,
+                    )
+                )
+            self.ledger.record_error(row.id, reason, letters, now=self.clock())
+        target = self.settings.quarantine / final_name(row)
+        require_folder(self.settings.quarantine)
+        write_atomic(
+            _reason_text(row, reason).encode("utf-8"),
+            target.with_name(target.name + ".reason.txt"),
+            make_parents=False,
+        )
+        self._move_final(row, target)
+        self.ledger.mark_final(row.id, "quarantined", str(target), reason, now=self.clock())
+        self.last_error = reason.splitlines()[0]
+        log.warning("%s: quarantined: %s", row.name, self.last_error)
+
+    def _move_final(self, row: InputRow, target: Path) -> None:
+        work = Path(row.work_path)
+        if work.exists():
+            move_into(work, target.parent, name=target.name, exact=True, make_parents=False)
+        for inbox in self.settings.inboxes:
+            marker = work.with_name(work.name + inbox.marker_suffix)
+            if inbox.handover == "marker" and marker.exists():
+                move_into(marker, target.parent, name=target.name + inbox.marker_suffix,
+                          make_parents=False)
+        faults.point("after_archive_move")
+
+
+def final_name(row: InputRow) -> str:
+    """Ledger id first, so names never clash and each file leads to its ledger row."""
+    return fit(f"{row.id:06d}_{row.name}", reserve_bytes=NAME_RESERVE_BYTES)
+
+
+def _reason_text(row: InputRow, reason: str) -> str:
+    return (
+        f"{row.name} was quarantined by formgate.\n\n{reason}\n\n"
+        f"ledger input id: {row.id}\nsha256: {row.sha256}\narrived: {row.arrived_at.isoformat()}\n\n"
+        "Fix the cause, then drop a corrected file into the inbox (the station judges new bytes;\n"
+        "the same bytes again are judged again only if they were quarantined before).\n"
+    )

@@ -1,0 +1,105 @@
+"""The worker side of the station: tasks for the judge pool, handed over and collected.
+
+A claimed input waits in the queue until the pool has room; its task names the rules,
+import profile and limits it is judged under. A finished task's output is applied in
+the main thread (publishing.py); a result committed but not written is judged again
+under the rules it was recorded with. The pool itself, its processes, timeouts and
+deaths, is judges.py's; what a worker does with a task is worker.py's.
+"""
+
+from __future__ import annotations
+
+import datetime
+import logging
+from collections import deque
+from functools import partial
+
+from pipeline.read.limits import TextLimits
+from pipeline.rulebook.book import RuleBook, load_rule_set
+from pipeline.station.inhand import input_key
+from pipeline.station.judges import JudgePool
+from pipeline.station.ledger import InputRow
+from pipeline.station.publishing import Publishing
+from pipeline.station.settings import choose_profile
+from pipeline.station.worker import Task
+
+log = logging.getLogger("formgate.station")
+
+MB = 2**20
+
+
+class Tasks(Publishing):
+    """Queue, submit, collect; :class:`pipeline.station.station.Station` sets these attributes."""
+
+    rulebook: RuleBook | None
+    queue: deque[tuple[InputRow, Task | None]]  # a task given: judge again
+    judges: JudgePool
+    inbox_of: dict[str, str]  # work path -> inbox name, for its import profile
+
+    def profile_for(self, row: InputRow) -> tuple[str | None, str | None]:
+        """The import profile (name, text) for an input, by file-name glob or its inbox's default."""
+        inbox_name = self.inbox_of.get(row.work_path)
+        inbox = next(
+            (i for i in self.settings.inboxes if i.name == inbox_name), self.settings.inboxes[0]
+        )
+        path = choose_profile(self.settings, inbox, row.name)
+        if path is None:
+            return None, None
+        return path.name, path.read_text(encoding="utf-8")
+
+    def task_for(
+        self,
+        row: InputRow,
+        rulebook: RuleBook,
+        analysed_at: datetime.datetime,
+        certify: str,
+    ) -> Task:
+        profile_name, profile_text = self.profile_for(row)
+        s = self.settings
+        return Task(
+            input_id=row.id,
+            work_path=row.work_path,
+            name=row.name,
+            sha256=row.sha256,
+            rulebook=rulebook,
+            analysed_at=analysed_at,
+            profile_name=profile_name,
+            profile_text=profile_text,
+            max_uncompressed_bytes=int(s.max_uncompressed_MB * MB),
+            certify=certify,
+            limits=TextLimits(
+                int(s.max_line_kB * 1024), s.max_rows, int(s.max_uncompressed_MB * MB)
+            ),
+            memory_note=f" (worker_memory_MB = {s.worker_memory_MB:g})",
+        )
+
+    def submit(self) -> None:
+        while self.queue and self.judges.room() > 0 and self.rulebook is not None:
+            row, task = self.queue[0]
+            if task is None:
+                now = self.clock().replace(microsecond=0)
+                task = self.task_for(row, self.rulebook, now, self.settings.certify)
+            self.queue.popleft()
+            self.judges.submit(row, task)
+
+    def collect(self, timeout: float) -> None:
+        """Apply the effects of the tasks that finished (the pool replaces dead workers)."""
+        for row, output in self.judges.collect(timeout):
+            self.handle(input_key(row.id), "recording", partial(self.apply, row, output))
+
+    def judge_again(self, row: InputRow) -> Task | None:
+        """A committed result whose files were not written: the same bytes, the recorded rules."""
+        result_row = self.ledger.result_for_input(row.id)
+        assert result_row is not None
+        stored = self.ledger.text_by_sha(result_row.rule_set_sha256)
+        if stored is None:
+            rulebook = self.rulebook
+        else:
+            rulebook = RuleBook((load_rule_set(stored[1], stored[0]),))
+        if rulebook is None:  # its rules were never kept and none are valid now: next start
+            log.error("%s: its recorded rules are not in the ledger; it waits for valid rules",
+                      row.name)
+            return None
+        return self.task_for(
+            row, rulebook, result_row.analysed_at, "all" if result_row.pdf_path else "none"
+        )
