@@ -4,6 +4,9 @@ Only data lives here: no parsing, no computation beyond trivial derived
 properties. Units are suffixes of field names (``_s``, ``_v``, ``_a``, ``_ah``,
 ``_wh``, ``_c``, ``_pct``, ``_mohm``). Numpy arrays are made read-only on
 construction so that a frozen record really cannot change.
+
+Longer than one job's module should be, on purpose: every record the data flow passes
+from part to part is declared here, so the types of the whole flow read in one file.
 """
 
 from __future__ import annotations

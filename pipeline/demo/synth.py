@@ -5,11 +5,13 @@ no files, no global random state). The cell model is deliberately small:
 a full-cell open-circuit voltage from published electrode fits (pipeline.demo.ocp),
 an ohmic resistance, one RC element for relaxation, first-cycle lithium (or sodium)
 loss, a side reaction on charge, a leakage current for self-discharge, lumped I^2 R
-heating and sensor noise.
+heating; what a cycler channel records of it (noise, offset, spikes) is channel.py's.
 It exists to give the demo and the tests plausible records whose true values
-are known; formgate never uses it to judge a real cell. Writing files is demo.py's job.
+are known; formgate never uses it to judge a real cell. Writing files is lots.py's job.
+Longer than most modules because the cell model, the program that drives it and the
+cycle-file text are one simulation, each step feeding the next.
 
-Current sign: positive = charge (DESIGN.md, cycle file v1). State of charge ``soc``
+Current sign: positive = charge (cycle file version 1). State of charge ``soc``
 is the fraction of the cell's reversible capacity: 0 where the open-circuit voltage
 meets the discharge cut-off, 1 at the full end of the curve. Before the first
 discharge it starts below 0, by the lithium the first charge loses to the solid
@@ -30,6 +32,9 @@ import numpy as np
 from scipy import optimize
 
 from pipeline.demo import ocp
+from pipeline.demo.channel import NOISELESS as NOISELESS
+from pipeline.demo.channel import Channel as Channel
+from pipeline.demo.channel import add_channel_errors as add_channel_errors
 from pipeline.model import FloatArray, IntArray, Trace, frozen_array
 
 OcvFunction = Callable[[FloatArray], FloatArray]
@@ -97,79 +102,6 @@ class FormationProgram:
     rest_after_grading_s: float = 1800.0
     storage_soc: float | None = None  # None: the chemistry's default
     final_rest_s: float = 10800.0
-
-
-@dataclass(frozen=True, slots=True)
-class Channel:
-    """The measurement errors of one cycler channel, as a real record carries them.
-
-    ``range_a`` is the channel's full-scale current range. Current noise (rms) and the
-    zero offset are fractions of it: a channel of a 0.05 % accuracy class shows noise of
-    about 0.01-0.1 % of full scale and an offset of a few mA at rest (from memory,
-    medium; no single published source). The offset shows at rest only: while current
-    flows the channel regulates what it measures, so the record shows the set current.
-    Voltage noise of 0.5-2 mV rms (from memory, medium). At each step change the first
-    row shows the switch under way: the current overshoots the new level or is still
-    ramping towards it, by up to ``step_change_fraction`` of the change, and the voltage
-    spikes by up to ``step_change_v`` (common practice to expect; sizes our own).
-    """
-
-    range_a: float
-    current_noise_fraction: float = 5e-4
-    rest_offset_fraction: float = 1e-4
-    voltage_noise_v: float = 1e-3
-    temperature_noise_c: float = 0.05
-    step_change_fraction: float = 0.3
-    step_change_v: float = 0.005
-
-    def __post_init__(self) -> None:
-        if not self.range_a > 0:
-            raise ValueError("Channel.range_a must be positive")
-        noises = (self.current_noise_fraction, self.voltage_noise_v, self.temperature_noise_c,
-                  self.step_change_fraction, self.step_change_v)
-        if min(noises) < 0:
-            raise ValueError("Channel noise levels cannot be negative")
-
-    @classmethod
-    def for_cell(cls, nominal_capacity_ah: float) -> Channel:
-        """A channel with a range of 2.5 C for the cell (a 20 Ah cell on a 50 A channel)."""
-        return cls(range_a=2.5 * nominal_capacity_ah)
-
-
-# A channel that measures perfectly: for tests that need the model's own values.
-NOISELESS = Channel(1.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0)
-
-
-def add_channel_errors(
-    voltage_v: FloatArray,
-    current_a: FloatArray,
-    temperature_c: FloatArray,
-    step: IntArray,
-    channel: Channel,
-    rng: np.random.Generator,
-) -> tuple[FloatArray, FloatArray, FloatArray]:
-    """What ``channel`` records of the true voltage, current and temperature (new arrays).
-
-    ``step`` numbers the program steps row by row: the first row of each step after the
-    first shows the switch under way (Channel). Rows where the true current is exactly
-    zero are rest: there the record shows the zero offset plus noise.
-    """
-    n = len(voltage_v)
-    volts = voltage_v + rng.normal(0.0, channel.voltage_noise_v, n)
-    rest = current_a == 0.0
-    offset = channel.rest_offset_fraction * channel.range_a
-    amps = current_a + np.where(rest, offset, 0.0)
-    amps = amps + rng.normal(0.0, channel.current_noise_fraction * channel.range_a, n)
-    firsts = np.flatnonzero(np.diff(step) != 0) + 1
-    if len(firsts) and (channel.step_change_fraction > 0 or channel.step_change_v > 0):
-        change = current_a[firsts] - current_a[firsts - 1]
-        # half the switches overshoot the new level, half are still on their way to it
-        overshoot = rng.random(len(firsts)) < 0.5
-        size = channel.step_change_fraction * rng.random(len(firsts))
-        amps[firsts] += np.where(overshoot, size, -size) * change
-        volts[firsts] += np.sign(change) * channel.step_change_v * rng.random(len(firsts))
-    temps = temperature_c + rng.normal(0.0, channel.temperature_noise_c, n)
-    return volts, amps, temps
 
 
 @dataclass(frozen=True, slots=True)

@@ -6,6 +6,8 @@ network. ``build_message`` is the one function that reads a file, the certificat
 it attaches. Every header value built from data-file text goes through
 :func:`sanitize_header`, so a cell id cannot add a header or a recipient. Talking
 SMTP and writing ``.eml`` files is smtp.py's job; the outbox is the ledger's.
+Longer than most modules because every letter is here, so that all of them share one
+header cleaning and one wording of verdicts, cautions and traceability.
 """
 
 from __future__ import annotations

@@ -4,6 +4,8 @@ Handles gzip, the text encoding, the ``# key: value`` metadata block, the header
 the numbers (parsed by pandas' C engine, then converted to s, V, A with positive =
 charge). Anything it cannot read becomes an InputError naming the file, line and column.
 Whether the numbers make sense for the cell type is left to ``pipeline.read.validate``.
+Longer than most modules because one reader's located error messages (file, line, column,
+what to do) are most of it; they belong beside the parsing they describe.
 
 >>> text = "# cell_id: C1\\n# lot: L1\\n# cell_type: T\\ntime_s,voltage_V,current_A\\n0,3.1,0.5\\n"
 >>> trace = read_cycle_file(text.encode(), "c1.csv")

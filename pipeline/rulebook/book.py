@@ -4,7 +4,8 @@
 ``load_rules_dir`` and ``check_rules_dir`` read files. Keys and values are checked
 against the schema by rule_tables.py; this module checks the rules between keys
 (low below high, relative windows, declared cell types, every cell type judged)
-and builds the records. Judging a cell is evaluate.py's job.
+and builds the records. Judging a cell is evaluate.py's job. A little over 500 lines:
+the cross-key checks each carry their located message and hint.
 
 >>> from pipeline.rulebook.schema import EXAMPLE
 >>> load_rule_set(EXAMPLE, "rules/demo.toml").cell_types[0].name

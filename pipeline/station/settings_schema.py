@@ -7,6 +7,8 @@ the station accepts cannot go undocumented. The rules between keys (folders that
 must differ, SMTP log-in consistency, ...) live in settings.py; their wording is
 listed here in ``CROSS_RULES`` for the docs.
 
+Long because it is a table: every key of station.toml with its meaning, unit and bounds.
+
 Regenerate the documentation with
 ``python -m pipeline.station.settings_schema > docs/station-settings.md``.
 """
