@@ -38,7 +38,10 @@ def test_files_past_a_limit_or_killing_their_worker_are_quarantined_and_others_a
     inbox = s.inboxes[0].folder
     long_line = cycle_file("LL-1").replace(b"# lot: LOT-A\n", b"# lot: LOT-A\n# note: " + b"x" * 1100 + b"\n")
     with running(s) as station:
-        drop(inbox, "victim.csv", cycle_file("V-1", dt_s=2.0, seed=1))  # input 1: a big one
+        # input 1, within every limit, so that it is still being judged (and its certificate
+        # drawn, a few hundred ms) when the test kills its worker; a file past max_rows would
+        # be refused in a millisecond, before the kill, and the test would race the worker
+        drop(inbox, "victim.csv", cycle_file("V-1", seed=1))
         wait_until(lambda: not (inbox / "victim.csv").exists(), what="victim claimed")
         drop(inbox, "beside.csv", cycle_file("B-1", seed=2))
         drop(inbox, "long-line.csv", long_line)

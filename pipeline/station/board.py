@@ -16,6 +16,7 @@ from multiprocessing.context import BaseContext
 from typing import Any
 
 _FIELDS = 3
+TAKE_WAIT_S = 1.0
 
 
 def _alive(pid: int) -> bool:
@@ -33,35 +34,53 @@ class Board:
 
     def __init__(self, ctx: BaseContext, rows: int) -> None:
         self.rows = rows
-        # handed to each worker when it is started (the only way to share it)
-        self._cells: Any = ctx.Array(ctypes.c_longlong, _FIELDS * rows)
+        # Handed to each worker when it is started (the only way to share it). No lock on
+        # the cells: a worker killed while holding one would stop the station for good
+        # (the lock would stay taken). Each worker writes only its own row, in an order
+        # that never shows a reader a new input with an old start time (note()).
+        self._cells: Any = ctx.Array(ctypes.c_longlong, _FIELDS * rows, lock=False)
+        # only for taking a row, which two workers starting at once could do together
+        self._take: Any = ctx.Lock()
 
     def take_row(self, pid: int) -> int:
-        """A row for process ``pid``: a free one, or one whose process has ended; -1 if none."""
+        """A row for process ``pid``: a free one, or one whose process has ended; -1 if none.
+
+        The lock is waited for at most TAKE_WAIT_S: one held by a worker that was killed
+        while taking its row is then passed by (a clash with another starting worker costs
+        at most a wrongly attributed row, never a stopped station).
+        """
         cells = self._cells
-        with cells.get_lock():
+        locked = self._take.acquire(timeout=TAKE_WAIT_S)
+        try:
             for row in range(self.rows):
                 owner = cells[_FIELDS * row]
                 if owner == 0 or not _alive(owner):
-                    cells[_FIELDS * row : _FIELDS * row + _FIELDS] = [pid, 0, 0]
+                    cells[_FIELDS * row + 1] = 0
+                    cells[_FIELDS * row] = pid
                     return row
+        finally:
+            if locked:
+                self._take.release()
         return -1
 
     def note(self, row: int, input_id: int) -> None:
-        """Row ``row`` is now judging ``input_id`` (0: nothing), from now on."""
+        """Row ``row`` is now judging ``input_id`` (0: nothing), from now on.
+
+        The input is cleared first and written last, so a reader sees either no input or
+        the new input with its own start time (aligned 8-byte stores are not torn).
+        """
         if row < 0:
             return
         cells = self._cells
-        with cells.get_lock():
-            cells[_FIELDS * row + 1] = input_id
+        cells[_FIELDS * row + 1] = 0
+        if input_id:
             cells[_FIELDS * row + 2] = time.monotonic_ns()
+            cells[_FIELDS * row + 1] = input_id
 
     def judging(self) -> dict[int, tuple[int, float]]:
         """input id -> (process id, seconds since it started) for every input being judged."""
         now = time.monotonic_ns()
-        cells = self._cells
-        with cells.get_lock():
-            values = list(cells[:])
+        values = list(self._cells[:])
         out: dict[int, tuple[int, float]] = {}
         for row in range(self.rows):
             pid, input_id, started = values[_FIELDS * row : _FIELDS * row + _FIELDS]
