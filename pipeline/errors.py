@@ -46,3 +46,28 @@ class RulesError(FormgateError):
 
 class SettingsError(FormgateError):
     """A station settings file that is not valid."""
+
+
+class SettingsProblems(SettingsError):
+    """Every problem of one station settings file at once, as ``rules check`` lists a rule file's.
+
+    Behaves as its first problem (``where``, ``hint``); ``str()`` lists them all and counts.
+
+    >>> first = SettingsError("unknown key 'x'", SourceRef("station.toml", 3))
+    >>> second = SettingsError("workers = 0 is out of range", SourceRef("station.toml", 7))
+    >>> print(SettingsProblems([first, second]))
+    station.toml, line 3: unknown key 'x'.
+    station.toml, line 7: workers = 0 is out of range.
+    2 problems found in station.toml
+    """
+
+    def __init__(self, problems: list[SettingsError]) -> None:
+        first = problems[0]
+        self.problems = tuple(problems)
+        super().__init__(first.problem, first.where, first.hint)
+
+    @property
+    def message(self) -> str:
+        place = self.problems[0].where.path if self.problems[0].where else "the station file"
+        lines = [str(p) for p in self.problems]
+        return "\n".join([*lines, f"{len(lines)} problems found in {place}"])

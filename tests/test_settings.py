@@ -660,3 +660,26 @@ def test_any_mix_of_keys_and_values_loads_or_names_a_line(text: str) -> None:
 def test_the_kinds_the_schema_uses_are_the_checked_ones() -> None:
     kinds = {key.kind for table in SETTINGS_TABLES for key in table.keys}
     assert kinds <= {TEXT, NUMBER, INTEGER, TEXT_LIST}
+
+
+def test_a_station_file_with_three_mistakes_reports_all_three_at_once(tmp_path: Path) -> None:
+    from pipeline.errors import SettingsProblems
+
+    (tmp_path / "station.toml").write_text(
+        '[station]\nname = "line-1"\nworkerz = 2\nworkers = 0\nheartbeat_s = "fast"\n'
+        '[inbox.main]\nfolder = "inbox"\nhandover = "rename"\n',
+        encoding="utf-8",
+    )
+    with pytest.raises(SettingsProblems) as caught:
+        read_settings(tmp_path)
+    where = tmp_path / "station.toml"
+    assert str(caught.value).splitlines() == [
+        f"{where}, line 3: unknown key 'workerz' in [station].",
+        "  Did you mean 'workers'?",
+        f"{where}, line 4: [station] workers = 0 is out of range.",
+        "  It must be at least 1.",
+        f"{where}, line 5: [station] heartbeat_s must be a number, found text \"fast\".",
+        "  Write a plain number, e.g. heartbeat_s = 1.5 (no quotes, no unit, a dot for decimals).",
+        f"3 problems found in {where}",
+    ]
+    assert caught.value.exit_code == 2

@@ -12,11 +12,11 @@ import stat as stat_mode
 from collections.abc import Callable, Mapping
 from pathlib import Path
 
-from pipeline.errors import SettingsError
+from pipeline.errors import SettingsError, SettingsProblems
 from pipeline.mail.smtp import SmtpSettings
 from pipeline.model import SourceRef
 from pipeline.shipped import RULES_DIR
-from pipeline.station.settings_check import load_settings
+from pipeline.station.settings_check import check_settings, load_settings
 from pipeline.station.settings_records import Settings, labelled_folders
 from pipeline.station.settings_schema import STATION_FILE, render_station_toml
 
@@ -53,6 +53,9 @@ def read_settings(folder_or_file: Path) -> Settings:
             SourceRef(str(file), line, column),
             hint="Save the file with UTF-8 encoding.",
         ) from None
+    problems = check_settings(text, str(file), file.parent)
+    if len(problems) > 1:  # all of them at once, as `formgate rules check` lists a rule file's
+        raise SettingsProblems(problems)
     return load_settings(text, str(file), file.parent)
 
 
