@@ -112,28 +112,22 @@ def _incomplete(trace: Trace, segmentation: Segmentation, missing: str) -> Note:
     )
 
 
+def _none(first_ok: bool, note: Note) -> GradingChoice:
+    """No grading cycle, and the note that says why."""
+    return GradingChoice(None, first_ok, (note,))
+
+
 def choose_grading(trace: Trace, segmentation: Segmentation, program: Program) -> GradingChoice:
     """The program's grading cycle in ``segmentation``, or notes saying why there is none."""
     steps, cycles = segmentation.steps, segmentation.cycles
     finished = [c for c in cycles if discharge_finished(trace, steps, c, program)]
     first_ok = bool(cycles) and cycles[0] in finished
     if program.grading_step is not None and trace.step is not None:
-        return _by_step(trace, segmentation, program, finished, first_ok)
+        return _by_step(trace, segmentation, program.grading_step, finished, first_ok)
     if program.cycles is not None:
         if len(finished) < program.cycles:
-            return GradingChoice(
-                None,
-                first_ok,
-                (
-                    _incomplete(
-                        trace,
-                        segmentation,
-                        f"before the discharge of cycle {program.cycles} (the grading cycle) "
-                        f"was finished",
-                    ),
-                ),
-            )
-        grading = finished[program.cycles - 1]
+            missing = f"before the discharge of cycle {program.cycles} (the grading cycle) was finished"
+            return _none(first_ok, _incomplete(trace, segmentation, missing))
         notes: tuple[Note, ...] = ()
         if len(finished) > program.cycles:
             notes = (
@@ -144,71 +138,42 @@ def choose_grading(trace: Trace, segmentation: Segmentation, program: Program) -
                     SourceRef(trace.source),
                 ),
             )
-        return GradingChoice(grading, first_ok, notes)
+        return GradingChoice(finished[program.cycles - 1], first_ok, notes)
     complete = [c for c in cycles if c.complete]
     if not complete:
         return GradingChoice(None, first_ok, ())
     if complete[-1] not in finished:
-        return GradingChoice(
-            None,
-            first_ok,
-            (_incomplete(trace, segmentation, "before its last discharge was finished"),),
-        )
+        return _none(first_ok, _incomplete(trace, segmentation, "before its last discharge was finished"))
     return GradingChoice(complete[-1], first_ok, ())
 
 
 def _by_step(
-    trace: Trace,
-    segmentation: Segmentation,
-    program: Program,
-    finished: list[Cycle],
-    first_ok: bool,
+    trace: Trace, segmentation: Segmentation, number: int, finished: list[Cycle], first_ok: bool
 ) -> GradingChoice:
-    number = program.grading_step
-    steps = segmentation.steps
-    found = [s for s in steps if s.program_step == number]
+    found = [s for s in segmentation.steps if s.program_step == number]
     if not found:
-        return GradingChoice(
-            None,
+        missing = f"before program step {number} (the grading discharge)"
+        return _none(first_ok, _incomplete(trace, segmentation, missing))
+    step = found[0]
+    owner = next((c for c in segmentation.cycles if step.index in c.discharge_steps), None)
+    if step.kind is not StepKind.DISCHARGE or owner is None:
+        what = (
+            "comes before any charge"  # a discharge that no charge precedes: another program
+            if step.kind is StepKind.DISCHARGE
+            else f"is {'a rest' if step.kind is StepKind.REST else 'a charge'} in this record"
+        )
+        return _none(
             first_ok,
-            (
-                _incomplete(
-                    trace,
-                    segmentation,
-                    f"before program step {number} (the grading discharge)",
-                ),
+            Note(
+                MISMATCH,
+                f"program step {number}, which the rule set names as the grading discharge, {what}",
+                SourceRef(trace.source, trace.line_of(step.start)),
+                GRADING_METRICS,
             ),
         )
-    if found[0].kind is not StepKind.DISCHARGE:
-        note = Note(
-            MISMATCH,
-            f"program step {number}, which the rule set names as the grading discharge, is "
-            f"{'a rest' if found[0].kind is StepKind.REST else 'a charge'} in this record",
-            SourceRef(trace.source, trace.line_of(found[0].start)),
-            GRADING_METRICS,
-        )
-        return GradingChoice(None, first_ok, (note,))
-    owner = next((c for c in segmentation.cycles if found[0].index in c.discharge_steps), None)
-    if owner is None:  # a discharge before any charge: the program is not this one
-        note = Note(
-            MISMATCH,
-            f"program step {number} (the grading discharge) comes before any charge",
-            SourceRef(trace.source, trace.line_of(found[0].start)),
-            GRADING_METRICS,
-        )
-        return GradingChoice(None, first_ok, (note,))
     if owner not in finished:
-        return GradingChoice(
-            None,
-            first_ok,
-            (
-                _incomplete(
-                    trace,
-                    segmentation,
-                    f"before program step {number} (the grading discharge) was finished",
-                ),
-            ),
-        )
+        missing = f"before program step {number} (the grading discharge) was finished"
+        return _none(first_ok, _incomplete(trace, segmentation, missing))
     return GradingChoice(owner, first_ok, ())
 
 
