@@ -114,6 +114,20 @@ def _check(
 _PROGRAM_SHORT = {INCOMPLETE: "program incomplete", MISMATCH: "the record is not the program's"}
 
 
+def program_findings(notes: Iterable[Note]) -> tuple[tuple[str, ...], frozenset[str]]:
+    """The texts of the notes that hold a cell for its program (a cut record, another program),
+    once each, and the metrics that only those notes kept from being measured.
+
+    The reasons, the decision line and the certificate lead with the texts and leave those
+    metrics' checks out: they would only repeat the note.
+    """
+    notes = tuple(notes)
+    texts = tuple(dict.fromkeys(n.text for n in notes if n.code in HOLDING_CODES))
+    by_program = {m for n in notes if n.code in HOLDING_CODES for m in n.blocks}
+    by_other = {m for n in notes if n.code not in HOLDING_CODES for m in n.blocks}
+    return texts, frozenset(by_program - by_other)
+
+
 def _blockers(notes: Iterable[Note]) -> dict[str, str]:
     """Metric name -> what the notes that make it unmeasurable or untrustworthy say."""
     found: dict[str, list[str]] = {}
@@ -140,7 +154,7 @@ def evaluate(
     """
     all_notes = (*notes, *metrics.notes)
     blockers = _blockers(all_notes)
-    holding = list(dict.fromkeys(n.text for n in all_notes if n.code in HOLDING_CODES))
+    holding, quiet = program_findings(all_notes)
     checks = tuple(
         _check(rule, cell_type, metrics, blockers)
         for rule in rule_set.rules
@@ -157,8 +171,6 @@ def evaluate(
     failed_hazards = {c.hazard for c in out if c.severity is Severity.REJECT}
     hazards = tuple(h for h in Hazard if h in failed_hazards)
     # the record's own problem first: it explains the checks that could not be made
-    # a check that only the program's note kept from being made adds nothing to that note
-    quiet = {m for m, text in blockers.items() if text in _PROGRAM_SHORT.values()}
     reasons = tuple(f"{text[0].upper()}{text[1:]}." for text in holding) + tuple(
         dict.fromkeys(  # two checks on one unmeasured metric give one reason
             c.message
@@ -222,14 +234,13 @@ def decision_line(verdict: Verdict, notes: Iterable[Note] = ()) -> str:
     >>> decision_line(Verdict(VerdictKind.PASS, (), ()))
     'all checks in window'
     """
-    program = list(dict.fromkeys(n.text for n in notes if n.code in HOLDING_CODES))
-    blocked = {m for n in notes if n.code in HOLDING_CODES for m in n.blocks}
+    program, quiet = program_findings(notes)
     findings = [
         phrase(c)
         for c in deciding(verdict)
-        if not (c.outcome is Outcome.NOT_JUDGED and c.metric in blocked)
+        if not (c.outcome is Outcome.NOT_JUDGED and c.metric in quiet)
     ]
-    parts = program + list(dict.fromkeys(findings))
+    parts = list(program) + list(dict.fromkeys(findings))
     if parts:
         return "; ".join(parts)
     return summarise(verdict)

@@ -13,6 +13,7 @@ that is cut short, whatever the station did.
 from __future__ import annotations
 
 from pipeline.errors import FormgateError
+from pipeline.judge.program import FINAL_REST_SHARE
 from pipeline.judge.rest_band import estimate_band
 from pipeline.read.cyclefile import read_cycle_file
 from pipeline.read.profile import Profile
@@ -23,22 +24,22 @@ from pipeline.rulebook.book import RuleBook
 # rest that fills the whole tail counts as long enough only if the tail spans it).
 HEAD_BYTES = 64 * 1024
 TAIL_BYTES = 1024 * 1024
-FINISHED_SHARE = 0.99  # as the judge's own test of a final rest (program.FINAL_REST_SHARE)
+
+
+def join_head_and_tail(head: bytes, tail: bytes) -> bytes:
+    """A file's head to its last whole line and its tail from its first whole line, joined.
+
+    The rows in between are left out: the reader then sees a record with a gap, which is
+    all this check needs.
+    """
+    return head[: head.rfind(b"\n") + 1] + tail[tail.find(b"\n") + 1 :]
 
 
 def head_and_tail(data: bytes) -> bytes:
-    """The file's head (to its last whole line) and tail (from its first whole line), joined.
-
-    Short files come back whole. The rows in between are left out: the reader then sees a
-    record with a gap, which is all this check needs.
-    """
+    """:func:`join_head_and_tail` of a whole file's bytes; short files come back whole."""
     if len(data) <= HEAD_BYTES + TAIL_BYTES:
         return data
-    head = data[:HEAD_BYTES]
-    head = head[: head.rfind(b"\n") + 1]
-    tail = data[-TAIL_BYTES:]
-    tail = tail[tail.find(b"\n") + 1 :]
-    return head + tail
+    return join_head_and_tail(data[:HEAD_BYTES], data[-TAIL_BYTES:])
 
 
 def looks_cut(data: bytes, name: str, rulebook: RuleBook, profile: Profile | None) -> str | None:
@@ -65,7 +66,7 @@ def looks_cut(data: bytes, name: str, rulebook: RuleBook, profile: Profile | Non
     # the rest starts at its first row, as the judge measures a step's duration
     rest_from = float(trace.time_s[moving[-1] + 1]) if len(moving) else float(trace.time_s[0])
     rest_s = float(trace.time_s[-1]) - rest_from
-    if rest_s >= FINISHED_SHARE * final_rest_s:
+    if rest_s >= FINAL_REST_SHARE * final_rest_s:  # as the judge tests a final rest
         return None
     return (
         f"the record ends {rest_s / 3600.0:.2f} h into a rest; the program's final rest "

@@ -18,9 +18,8 @@ import jinja2
 from markupsafe import Markup
 
 from pipeline import shipped
-from pipeline.judge.evaluate import deciding, phrase
+from pipeline.judge.evaluate import deciding, phrase, program_findings
 from pipeline.judge.metricdefs import BY_NAME
-from pipeline.judge.program import HOLDING_CODES
 from pipeline.model import (
     CellResult,
     CheckResult,
@@ -187,16 +186,13 @@ def _decision(result: CellResult) -> list[dict[str, object]]:
     """The verdict box's findings, deciding ones first: what a reader must act on, on page 1."""
     verdict = result.verdict
     decided = deciding(verdict)
-    program = list(dict.fromkeys(
-        f"{n.text[0].upper()}{n.text[1:]}." for n in (*result.notes, *result.metrics.notes)
-        if n.code in HOLDING_CODES
-    ))
+    texts, quiet = program_findings((*result.notes, *result.metrics.notes))
+    program = [f"{text[0].upper()}{text[1:]}." for text in texts]
     out_review = [
         c for c in verdict.checks
         if c.outcome is Outcome.OUT_OF_WINDOW and c.severity is Severity.REVIEW and c not in decided
     ]
     not_made = [c for c in verdict.checks if c.outcome is Outcome.NOT_JUDGED and c not in decided]
-    quiet = {m for n in (*result.notes, *result.metrics.notes) if n.code in HOLDING_CODES for m in n.blocks}
 
     def messages(checks: list[CheckResult] | tuple[CheckResult, ...]) -> list[str]:
         # two checks on one unmeasured metric say the same thing once

@@ -13,7 +13,7 @@ from pathlib import Path
 from typing import BinaryIO
 
 from pipeline.errors import FormgateError
-from pipeline.judge.record_end import HEAD_BYTES, TAIL_BYTES, looks_cut
+from pipeline.judge.record_end import HEAD_BYTES, TAIL_BYTES, join_head_and_tail, looks_cut
 from pipeline.read.profile import Profile, load_profile
 from pipeline.rulebook.book import RuleBook
 
@@ -26,8 +26,7 @@ def read_head_and_tail(fh: BinaryIO) -> bytes:
         return fh.read()
     head = fh.read(HEAD_BYTES)
     fh.seek(size - TAIL_BYTES)
-    tail = fh.read(TAIL_BYTES)
-    return head[: head.rfind(b"\n") + 1] + tail[tail.find(b"\n") + 1 :]
+    return join_head_and_tail(head, fh.read(TAIL_BYTES))
 
 
 def cut_reason(fh: BinaryIO, name: str, rulebook: RuleBook, profile_path: Path | None) -> str | None:
