@@ -177,14 +177,13 @@ def dcir_mohm(
     return (v0 - v1) / current * 1000.0, None
 
 
-def rest_drift_mv_per_h(trace: Trace, rest: Step, relax_s: float) -> tuple[float | None, Note | None]:
-    """Least-squares slope of V over the final rest step after ``relax_s`` (mV/h); negative = falling."""
-    view, note = rest_view(trace, rest, relax_s)
-    return (None, note) if view is None else (view.slope_mv_per_h, None)
-
-
 def rest_view(trace: Trace, rest: Step, relax_s: float) -> tuple[RestView | None, Note | None]:
-    """The final rest and its drift fit (see rest_drift_mv_per_h), or None with a note."""
+    """The final rest and its drift fit, or None with a note.
+
+    The drift is the least-squares slope of V over the rest after ``relax_s`` (mV/h;
+    negative = falling): ``slope_mv_per_h`` of the view, the metric
+    ``rest_voltage_drift_mV_per_h``.
+    """
     t = trace.time_s[rest.start : rest.stop]
     v = trace.voltage_v[rest.start : rest.stop]
     keep = t >= t[0] + relax_s
