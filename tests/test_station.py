@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime
 import email
 import email.policy
 import threading
@@ -13,6 +14,7 @@ import pytest
 from pipeline.station.ledger import Ledger
 from pipeline.station.settings import smtp_settings
 from pipeline.station.station import Station
+from pipeline.station.status import status_text
 from tests.station_kit import (
     check_invariants,
     cycle_file,
@@ -178,6 +180,19 @@ def test_broken_rules_edit_keeps_the_last_good_rules_and_alerts_with_file_and_li
                 "rules edit refused" in p.read_text(errors="replace") for p in s.mail.glob("*.eml")
             ),
             what="alert mail",
+        )
+        # status names the refused file, its line, the error and since when, until it is fixed
+        refused = f"trouble: a rule file is not valid, the last good rules judge: {rules}, line 16: "
+        wait_until(
+            lambda: refused in status_text(s, datetime.datetime.now(datetime.UTC)),
+            what="the refusal in status",
+        )
+        shown = status_text(s, datetime.datetime.now(datetime.UTC))
+        assert "unknown key 'lowe' in [check.capacity]. since 20" in shown, shown
+        rules.write_text(rules.read_text().replace("lowe = 0.9 ", "low = 0.9 "), encoding="utf-8")
+        wait_until(
+            lambda: "not valid" not in status_text(s, datetime.datetime.now(datetime.UTC)),
+            what="the refusal gone from status once the file is fixed",
         )
     alert = next(
         p for p in s.mail.glob("*.eml") if "rules edit refused" in p.read_text(errors="replace")

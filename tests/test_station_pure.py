@@ -27,7 +27,14 @@ T0 = datetime.datetime(2026, 3, 1, 8, 0, tzinfo=datetime.UTC)
 
 
 @pytest.mark.parametrize(
-    "name", ["pipeline.inputnames", "pipeline.read.limits", "pipeline.station.handoff", "pipeline.names"]
+    "name",
+    [
+        "pipeline.inputnames",
+        "pipeline.read.limits",
+        "pipeline.station.handoff",
+        "pipeline.names",
+        "pipeline.station.rules_in_force",
+    ],
 )
 def test_docstring_examples_hold(name: str) -> None:
     failures, _ = doctest.testmod(importlib.import_module(name), optionflags=doctest.ELLIPSIS)

@@ -27,6 +27,23 @@ from pipeline.station.guard import Guarded
 
 log = logging.getLogger("formgate.station")
 
+REFUSED = "rules-refused"  # the trouble shown while an edit is refused and older rules judge
+
+
+def refusal_summary(problems: list[FormgateError]) -> str:
+    """One line for `status`: the first problem's file, line and words, and how many there are.
+
+    >>> from pipeline.model import SourceRef
+    >>> refusal_summary([FormgateError("unknown key 'lowe'", SourceRef("a.toml", 16)),
+    ...                  FormgateError("x", SourceRef("b.toml"))])
+    "a.toml, line 16: unknown key 'lowe'. (and 1 more problem: formgate rules check lists them)"
+    """
+    first = str(problems[0]).splitlines()[0] if problems else "the rules folder cannot be read"
+    more = len(problems) - 1
+    if more > 0:
+        first += f" (and {more} more problem{'s' if more > 1 else ''}: formgate rules check lists them)"
+    return first
+
 
 class RulesKeeper(Guarded):
     """The rules in force; :class:`pipeline.station.station.Station` sets these attributes."""
@@ -61,6 +78,7 @@ class RulesKeeper(Guarded):
                 problems = [exc]
         if rulebook is None:
             self.refuse_rules("\n".join(str(p) for p in problems), first=first)
+            self.show_refusal(refusal_summary(problems))
             self.rules_fingerprint = fingerprint
             return
         self.keep_rule_texts(rulebook)
@@ -68,6 +86,8 @@ class RulesKeeper(Guarded):
         self.rules_fingerprint = fingerprint
         if self.troubles.clear("rules", now=self.clock()) is not None:
             log.warning("rules valid again: the station resumes")
+        if self.troubles.clear(REFUSED, now=self.clock()) is not None:
+            log.warning("rules valid again: the edited rules are in force")
 
     def keep_rule_texts(self, rulebook: RuleBook) -> None:
         kept = []
@@ -93,6 +113,19 @@ class RulesKeeper(Guarded):
                 rs.sha256[:12],
             )
         self.ledger.remember_rule_book(kept, now=self.clock())
+
+    def show_refusal(self, summary: str) -> None:
+        """While older rules judge in place of a refused edit, `status` shows why and since when.
+
+        A paused station (no valid rules at all) shows its pause instead. The time is that
+        of the first refusal: a second broken save changes the words, not the time.
+        """
+        if self.rulebook is None:
+            return
+        reason = f"a rule file is not valid, the last good rules judge: {summary}"
+        if self.troubles.report(REFUSED, reason, now=self.clock(), now_s=time.monotonic(),
+                                blocking=False, kind="rules") is None:
+            self.troubles.reword(REFUSED, reason)
 
     def refuse_rules(self, text: str, *, first: bool) -> None:
         key = hashlib.sha256(text.encode()).hexdigest()

@@ -16,6 +16,8 @@ Pure bookkeeping: times are passed in, nothing is written here.
 
 from __future__ import annotations
 
+import dataclasses
+
 import datetime
 import errno
 import os
@@ -140,6 +142,12 @@ class Troubles:
             self._next_try_s = now_s + self._wait_s
         self.active[key] = trouble
         return trouble
+
+    def reword(self, key: str, reason: str) -> None:
+        """Say a trouble in force in new words (it changed, but has not ended): its time stays."""
+        trouble = self.active.get(key)
+        if trouble is not None:
+            self.active[key] = dataclasses.replace(trouble, reason=reason)
 
     def clear(self, key: str, *, now: datetime.datetime) -> Trouble | None:
         """The trouble ``key`` has ended; it is returned (to log), or None if there was none."""
