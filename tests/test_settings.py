@@ -216,6 +216,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_settings() -> 
         alerts_to=("maintenance@example.com",),
         digest_quiet_s=900.0,
         domain="line-2.example.com",
+        certificates_url="https://quality.example.com/formgate/certificates/",
     )
     assert s.all_folders() == (
         Path("/srv/share/hall-a"),

@@ -34,7 +34,9 @@ pytestmark = pytest.mark.slow
 def test_pass_and_fail_cells_are_judged_recorded_published_archived_and_mailed(
     tmp_path: Path,
 ) -> None:
-    s = make_station(tmp_path / "st")
+    # [mail] is the file's last table: the certificates' address joins it
+    toml = station_toml() + 'certificates_url = "https://quality.example.com/certs/"\n'
+    s = make_station(tmp_path / "st", toml)
     with running(s):
         drop(s.inboxes[0].folder, "good.csv", cycle_file("C-1"))
         drop(s.inboxes[0].folder, "low.csv", cycle_file("C-2", capacity_ah=1.5))
@@ -55,6 +57,18 @@ def test_pass_and_fail_cells_are_judged_recorded_published_archived_and_mailed(
     )
     assert any(x.startswith("formgate: FAIL cell C-2, lot LOT-A") for x in subjects)
     assert any("lot LOT-A, digest 1" in x for x in subjects)
+    digests = [
+        m.get_body().get_content()
+        for m in (email.message_from_bytes(p.read_bytes(), policy=email.policy.default)
+                  for p in s.mail.glob("*.eml"))
+        if m["X-Formgate-Kind"] == "digest"
+    ]
+    # the cells are linked under the configured address, never by a path on the station
+    # (the failed cell is in the digest only if it was judged before the lot fell quiet)
+    assert "https://quality.example.com/certs/LOT-A/C-1.pdf" in digests[0]
+    for body in digests:
+        assert str(s.certificates) not in body
+        assert ("C-2" not in body) == ("/certs/LOT-A/C-2.pdf" not in body)
 
 
 def test_slow_writer_is_judged_once_after_it_is_complete(tmp_path: Path) -> None:

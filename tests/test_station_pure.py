@@ -34,6 +34,7 @@ T0 = datetime.datetime(2026, 3, 1, 8, 0, tzinfo=datetime.UTC)
         "pipeline.station.handoff",
         "pipeline.names",
         "pipeline.station.rules_in_force",
+        "pipeline.station.duties",
     ],
 )
 def test_docstring_examples_hold(name: str) -> None:

@@ -16,6 +16,7 @@ import json
 import logging
 import os
 import time
+import urllib.parse
 from collections import deque
 from pathlib import Path
 
@@ -34,6 +35,31 @@ from pipeline.station.worker import Task
 from pipeline.writing import write_atomic
 
 log = logging.getLogger("formgate.station")
+
+
+def certificate_link(pdf_path: str, certificates: Path, base_url: str | None) -> str:
+    """How a digest names a certificate: a link under ``base_url``, else its full path.
+
+    The link is the base address followed by the certificate's path under the
+    certificates folder, each part percent-encoded (RFC 3986), so any cell id stays one
+    working link.
+
+    >>> certificate_link("out/certificates/L 1/C#1.pdf", Path("out/certificates"),
+    ...                  "https://qa.example.com/certs")
+    'https://qa.example.com/certs/L%201/C%231.pdf'
+    >>> certificate_link("", Path("c"), "https://qa.example.com/")
+    ''
+    """
+    if not pdf_path:
+        return ""
+    path = Path(os.path.abspath(pdf_path))
+    if base_url is None:
+        return str(path)
+    try:
+        under = path.relative_to(os.path.abspath(certificates))
+    except ValueError:  # written elsewhere by an older configuration: the path says where
+        return str(path)
+    return base_url.rstrip("/") + "/" + "/".join(urllib.parse.quote(part) for part in under.parts)
 
 
 class Duties(Guarded):
@@ -69,7 +95,11 @@ class Duties(Guarded):
                         c.cell_id,
                         c.verdict,
                         document["metrics"].get("grading_capacity_Ah"),
-                        c.pdf_path or "",
+                        certificate_link(
+                            c.pdf_path or "",
+                            self.settings.certificates,
+                            routing.certificates_url,
+                        ),
                         document.get("decision", "") if c.verdict != "pass" else "",
                     )
                 )

@@ -23,6 +23,8 @@ from pipeline.station.settings_records import MailRouting, SmtpConfig
 from pipeline.station.settings_schema import DEFAULT_PORTS, LOCAL_SENDER
 
 _ENV_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
+# A base address for certificate links: a web server with a host, or a file URL.
+_LINK_BASE = re.compile(r"(?:https?://[^/\s]+|file://)[^\s\x00-\x1f\x7f]*")
 
 
 def _host_problem(host: str) -> str | None:
@@ -146,6 +148,16 @@ def check_routing(out: Collector, routing: Values) -> None:
                     else 'Write it as local@domain, e.g. "quality@example.com", without a name '
                     "or angle brackets.",
                 )
+    url = routing.get("certificates_url")
+    if isinstance(url, str) and not _LINK_BASE.fullmatch(url):
+        out.add(
+            f"[mail] certificates_url = {shown(url)} is not a web or file address",
+            path,
+            "certificates_url",
+            'Give the address the certificates folder is shared at, starting with https://, '
+            'http:// or file://, e.g. "https://quality.example.com/formgate/certificates/", '
+            "or remove the line to show paths on the station.",
+        )
     domain = routing.get("message_id_domain")
     if isinstance(domain, str):
         try:
@@ -184,12 +196,14 @@ def mail_routing(routing: Values, sender: str) -> MailRouting:
         return tuple(a.strip() for a in cast(tuple[str, ...], routing[key]))
 
     domain = routing.get("message_id_domain")
+    url = routing.get("certificates_url")
     return MailRouting(
         failures_to=addresses("failures_to"),
         holds_to=addresses("holds_to"),
         digests_to=addresses("digests_to"),
         alerts_to=addresses("alerts_to"),
         digest_quiet_s=cast(float, routing["digest_quiet_s"]),
+        certificates_url=str(url) if url is not None else None,
         domain=str(domain)
         if domain is not None
         else email.utils.parseaddr(sender)[1].rsplit("@", 1)[1],

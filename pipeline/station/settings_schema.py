@@ -371,6 +371,16 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 1800.0,
             ),
             Key(
+                "certificates_url",
+                TEXT,
+                "where quality staff open the certificates (a web or file share address); a "
+                "digest's link to a certificate is this address followed by the certificate's "
+                "path under the certificates folder",
+                allowed_note="an http://, https:// or file:// address; unset, a digest shows "
+                "each certificate's full path on the station",
+                example='"https://quality.example.com/formgate/certificates/"',
+            ),
+            Key(
                 "message_id_domain",
                 TEXT,
                 "domain of the Message-IDs of the station's mails",
