@@ -109,8 +109,9 @@ def read_readings(data: bytes, name: str) -> ReadingFile:
     metadata, meta_lines, header_line = _read_head(lines, name)
     fields = _header_fields(lines[header_line - 1])
     columns = _find_columns(fields, header_line, name)
+    layout = _layout(name, fields, columns, metadata, meta_lines)
     readings = tuple(
-        _reading(_split(lines[n - 1]), n, fields, columns, metadata, meta_lines, name)
+        _reading(_split(lines[n - 1]), n, layout)
         for n in range(header_line + 1, len(lines) + 1)
         if lines[n - 1].strip()
     )
@@ -273,142 +274,153 @@ def _find_columns(fields: list[str], header_line: int, name: str) -> dict[str, i
     return columns
 
 
-def _reading(
-    row: list[str],
-    line: int,
-    fields: list[str],
-    columns: dict[str, int],
-    metadata: dict[str, str],
+@dataclass(frozen=True, slots=True)
+class _Layout:
+    """What every row is read by: the file's name, its columns and the metadata fallbacks."""
+
+    name: str
+    fields: tuple[str, ...]
+    columns: Mapping[str, int]  # column name -> 0-based field index
+    extra: tuple[int, ...]  # indexes of the columns this format does not know
+    lot: str  # the ``# lot`` metadata ("" when absent or empty)
+    lot_line: int | None  # the line of ``# lot``, when there is one
+    cell_type: str | None
+
+    def where(self, line: int, column: str | None = None) -> SourceRef:
+        """A row's place, with the column's 1-based number when the file has that column."""
+        index = self.columns.get(column) if column else None
+        return SourceRef(self.name, line, None if index is None else index + 1)
+
+
+def _layout(
+    name: str, fields: list[str], columns: dict[str, int], metadata: dict[str, str],
     meta_lines: dict[str, int],
-    name: str,
-) -> Reading:
-    """One data row as a Reading, every field checked where it stands."""
-    if len(row) != len(fields):
+) -> _Layout:
+    known = set(REQUIRED_COLUMNS) | set(OPTIONAL_COLUMNS)
+    return _Layout(
+        name=name,
+        fields=tuple(fields),
+        columns=columns,
+        extra=tuple(i for i, f in enumerate(fields) if f not in known),
+        lot=metadata.get("lot", ""),
+        lot_line=meta_lines.get("lot"),
+        cell_type=metadata.get("cell_type") or None,
+    )
+
+
+def _reading(row: list[str], line: int, layout: _Layout) -> Reading:
+    """One data row as a Reading, every field checked where it stands.
+
+    Places (SourceRef) are built only for an error: a tester file has thousands of rows.
+    """
+    if len(row) != len(layout.fields):
         raise InputError(
-            f"{len(row)} fields where the header has {len(fields)}",
-            SourceRef(name, line),
+            f"{len(row)} fields where the header has {len(layout.fields)}",
+            SourceRef(layout.name, line),
             _ROW_HINT,
         )
+    columns = layout.columns
 
     def text(column: str) -> str:
         index = columns.get(column)
         return "" if index is None else row[index].strip()
 
-    def ref(column: str) -> SourceRef:
-        return SourceRef(name, line, columns[column] + 1)
-
     cell_id = text("cell_id")
     if not cell_id:
-        raise InputError("cell_id is empty", ref("cell_id"), "Every reading needs its cell's id.")
-    ocv = _number(text("ocv_V"), "ocv_V", ref("ocv_V"), required=True)
-    assert ocv is not None
-    _plausible(ocv, "ocv_V", "V", OCV_PLAUSIBLE_V, ref("ocv_V"))
-    acir = _number(text("acir_mOhm"), "acir_mOhm", _maybe(columns, "acir_mOhm", name, line))
+        raise InputError(
+            "cell_id is empty", layout.where(line, "cell_id"), "Every reading needs its cell's id."
+        )
+    ocv = _number(text("ocv_V"), "ocv_V", layout, line)
+    if ocv is None:
+        raise InputError("ocv_V is empty", layout.where(line, "ocv_V"), "Every reading needs its OCV.")
+    _plausible(ocv, "ocv_V", "V", OCV_PLAUSIBLE_V, layout, line)
+    acir = _number(text("acir_mOhm"), "acir_mOhm", layout, line)
     if acir is not None and acir < 0:
         raise InputError(
             f"acir_mOhm is {acir:g} mOhm, negative: not a plausible resistance",
-            ref("acir_mOhm"),
+            layout.where(line, "acir_mOhm"),
             "Check the tester's resistance range and wiring; a resistance is never negative.",
         )
-    temperature = _number(
-        text("temperature_C"), "temperature_C", _maybe(columns, "temperature_C", name, line)
-    )
+    temperature = _number(text("temperature_C"), "temperature_C", layout, line)
     if temperature is not None:
-        _plausible(temperature, "temperature_C", "degC", TEMPERATURE_PLAUSIBLE_C, ref("temperature_C"))
+        _plausible(temperature, "temperature_C", "degC", TEMPERATURE_PLAUSIBLE_C, layout, line)
     return Reading(
         cell_id=cell_id,
-        lot=_lot(text("lot"), metadata, meta_lines, columns, name, line),
-        cell_type=text("cell_type") or metadata.get("cell_type") or None,
-        at=_time(text("time"), ref("time")),
+        lot=_lot(text("lot"), layout, line),
+        cell_type=text("cell_type") or layout.cell_type,
+        at=_time(text("time"), layout, line),
         ocv_v=ocv,
         acir_mohm=acir,
         temperature_c=temperature,
         line=line,
-        extra=tuple(
-            (f, row[i].strip())
-            for i, f in enumerate(fields)
-            if f not in REQUIRED_COLUMNS and f not in OPTIONAL_COLUMNS
-        ),
+        extra=tuple((layout.fields[i], row[i].strip()) for i in layout.extra),
     )
 
 
-def _maybe(columns: dict[str, int], column: str, name: str, line: int) -> SourceRef:
-    return SourceRef(name, line, columns[column] + 1 if column in columns else None)
-
-
-def _number(cell: str, column: str, where: SourceRef, *, required: bool = False) -> float | None:
-    """The field as a finite float; None when empty and optional."""
+def _number(cell: str, column: str, layout: _Layout, line: int) -> float | None:
+    """The field as a finite float; None when it is empty (or the file has no such column)."""
     if not cell:
-        if required:
-            raise InputError(f"{column} is empty", where, "Every reading needs its value.")
         return None
     if not _NUMBER.fullmatch(cell):
         shown = cell if len(cell) <= 40 else cell[:37] + "..."
         hint = "Write the value with a decimal point, or leave it empty if it is missing."
         if re.fullmatch(r"[+-]?[0-9]+,[0-9]+", cell):
             hint = "The value has a decimal comma: a reading file uses a decimal point."
-        raise InputError(f"{column} is {shown!r}, not a number", where, hint)
+        raise InputError(f"{column} is {shown!r}, not a number", layout.where(line, column), hint)
     value = float(cell)
     if not math.isfinite(value):
-        raise InputError(f"{column} is {cell}, too large", where, "Fix the value.")
+        raise InputError(f"{column} is {cell}, too large", layout.where(line, column), "Fix the value.")
     return value
 
 
 def _plausible(
-    value: float, column: str, unit: str, bounds: tuple[float, float], where: SourceRef
+    value: float, column: str, unit: str, bounds: tuple[float, float], layout: _Layout, line: int
 ) -> None:
     low, high = bounds
     if not low <= value <= high:
         raise InputError(
             f"{column} is {value:g} {unit}, outside the plausible range {low:g} to {high:g} {unit} "
             "(a plausibility bound, not an acceptance limit)",
-            where,
+            layout.where(line, column),
             "Check the tester's units and the column; no cell at rest reads this.",
         )
 
 
-def _time(cell: str, where: SourceRef) -> datetime.datetime:
+def _time(cell: str, layout: _Layout, line: int) -> datetime.datetime:
     """The field as a timezone-aware time; a time without a UTC offset is refused."""
-    example = "2026-03-02T08:00:00+01:00 or 2026-03-02T07:00:00Z"
     try:
         at = datetime.datetime.fromisoformat(cell) if cell else None
     except ValueError:
         at = None
+    example = "2026-03-02T08:00:00+01:00 or 2026-03-02T07:00:00Z"
     if at is None:
         shown = cell if len(cell) <= 40 else cell[:37] + "..."
         raise InputError(
             f"time is {shown!r}, not an ISO 8601 time" if cell else "time is empty",
-            where,
+            layout.where(line, "time"),
             f"Write the time as ISO 8601 with its UTC offset, e.g. {example}.",
         )
-    if at.tzinfo is None or at.utcoffset() is None:
+    if at.utcoffset() is None:
         raise InputError(
             f"time {cell!r} has no UTC offset",
-            where,
+            layout.where(line, "time"),
             f"Add the offset the tester's clock keeps, e.g. {example}: readings days apart, "
             "from several testers, can only be compared on one time line.",
         )
     return at
 
 
-def _lot(
-    cell: str,
-    metadata: dict[str, str],
-    meta_lines: dict[str, int],
-    columns: dict[str, int],
-    name: str,
-    line: int,
-) -> str:
+def _lot(cell: str, layout: _Layout, line: int) -> str:
     """The row's lot, else the file's ``# lot``; a reading without either is refused."""
-    lot = cell or metadata.get("lot", "")
+    lot = cell or layout.lot
     if lot:
         return lot
-    if "lot" in meta_lines:
-        where = SourceRef(name, meta_lines["lot"])
+    if layout.lot_line is not None:
+        where = SourceRef(layout.name, layout.lot_line)
         raise InputError("metadata lot is empty", where, "Give it a value: '# lot: ...'.")
     raise InputError(
         "this reading has no lot, and the file has no '# lot' line",
-        _maybe(columns, "lot", name, line),
+        layout.where(line, "lot"),
         "Fill in the row's lot column, or add a line '# lot: ...' before the header.",
     )
 
