@@ -486,6 +486,10 @@ class Program:
     final_rest_s: float | None = None
 
 
+# Families of cells a rule set may declare: their transport and storage rules differ.
+FAMILIES: tuple[str, ...] = ("lithium-ion", "sodium-ion")
+
+
 @dataclass(frozen=True, slots=True)
 class RuleSet:
     """One chemistry family's rules, as loaded from one TOML file."""
@@ -503,6 +507,7 @@ class RuleSet:
     rest_current_fraction: float = 0.002  # |I| below this x nominal capacity (A/Ah) is rest
     description: str = ""
     program: Program = field(default_factory=Program)
+    family: str | None = None  # one of FAMILIES; None: not declared
 
     def cell_type(self, name: str) -> CellType | None:
         for ct in self.cell_types:
@@ -552,6 +557,7 @@ class RuleSetRef:
     revision: str
     sha256: str
     source: str
+    family: str | None = None  # the rule set's family of cells, when it declares one
 
 
 @dataclass(frozen=True, slots=True)

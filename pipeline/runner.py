@@ -66,7 +66,11 @@ def judge(
         metadata=trace.metadata,
         cell_type=cell_type,
         rule_set=RuleSetRef(
-            rule_set.name, rule_set.revision, rule_set.sha256, Path(rule_set.source).name
+            rule_set.name,
+            rule_set.revision,
+            rule_set.sha256,
+            Path(rule_set.source).name,
+            rule_set.family,
         ),
         metrics=metrics,
         verdict=verdict,

@@ -28,3 +28,29 @@ def test_general_caution_keeps_the_lithium_rule_and_names_sodium_ion_numbers() -
 def test_overcharge_caution_names_sodium_plating_too() -> None:
     text = hazards.CAUTIONS[Hazard.OVER_VOLTAGE].text
     assert "plate lithium" in text and "sodium" in text
+
+
+def test_the_general_caution_speaks_of_the_rule_sets_family_only() -> None:
+    lithium = hazards.general_caution("lithium-ion")
+    sodium = hazards.general_caution("sodium-ion")
+    both = hazards.general_caution(None)
+    assert "lithium-ion cells fall under special transport rules" in lithium
+    assert "sodium" not in lithium.lower() and "UN 3551" not in lithium
+    # UN 3551 and UN 3552: sodium-ion batteries in the UN Recommendations on the Transport of
+    # Dangerous Goods, Model Regulations, 22nd revised edition, 2021 (from memory, medium)
+    assert "UN 3551" in sodium and "UN 3552" in sodium
+    assert "lithium-ion cells fall" not in sodium
+    assert both == hazards.GENERAL_CAUTION
+    for text in (lithium, sodium, both):  # each still defers to the site and its people
+        assert text.startswith("Failed cells can be dangerous.")
+        for words in ("site's procedures", "local codes", "qualified personnel"):
+            assert words in text
+
+
+def test_every_shipped_rule_set_declares_its_family() -> None:
+    from pipeline.rulebook.book import load_rules_dir
+    from pipeline.shipped import RULES_DIR
+
+    families = {rs.name: rs.family for rs in load_rules_dir(RULES_DIR).rule_sets}
+    assert families["sodium-hard-carbon"] == "sodium-ion"
+    assert {f for name, f in families.items() if name != "sodium-hard-carbon"} == {"lithium-ion"}

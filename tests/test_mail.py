@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import datetime
 import email
 import email.policy
@@ -476,3 +477,18 @@ def test_alert_letter_keeps_lines_and_indents_but_drops_control_characters() -> 
         "looks after the station.\n"
     )
     assert letter.kind == "alert" and letter.lot is None
+
+
+@pytest.mark.parametrize("family", ["lithium-ion", "sodium-ion"])
+def test_a_failure_mail_gives_the_general_caution_of_the_rule_sets_family(
+    tmp_path: Path, family: str
+) -> None:
+    from pipeline.report.hazards import general_caution
+
+    base = make_result()
+    result = dataclasses.replace(
+        base, rule_set=dataclasses.replace(base.rule_set, family=family)
+    )
+    body = flat(failure_letter(result, str(tmp_path / "c.pdf"), TO, station="line-1").body_text)
+    assert flat(general_caution(family)) in body
+    assert ("UN 3551" in body) == (family == "sodium-ion")

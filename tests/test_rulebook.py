@@ -145,6 +145,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_rule_set() -> 
     rs = load_rule_set(text, "all_keys.toml")
     assert (rs.name, rs.revision, rs.chemistry) == ("all-keys", "2026-12-01.7", "LFP/graphite")
     assert rs.description == "Every key of the rule-file schema."
+    assert rs.family == "sodium-ion"
     one, two = rs.cell_types
     assert (one.name, one.nominal_capacity_ah, one.min_voltage_v, one.max_voltage_v) == (
         "DEMO-ALL-1",
@@ -163,7 +164,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_rule_set() -> 
     assert (rule.severity, rule.hazard) == (Severity.REJECT, Hazard.ABNORMAL_CAPACITY)
     assert (rule.message, rule.if_missing) == ("Grading capacity out of window.", "skip")
     assert rule.cell_types == ("DEMO-ALL-1", "DEMO-ALL-2")
-    assert rule.where == SourceRef("all_keys.toml", 42)
+    assert rule.where == SourceRef("all_keys.toml", 43)
 
 
 def test_defaults_fill_what_a_file_leaves_out() -> None:

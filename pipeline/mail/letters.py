@@ -29,7 +29,7 @@ from pipeline.errors import FormgateError
 from pipeline.judge.evaluate import decision_line, format_number, format_window
 from pipeline.judge.metricdefs import BY_NAME
 from pipeline.model import CellResult, CheckResult, Hazard, Outcome, SourceRef, VerdictKind
-from pipeline.report.hazards import CAUTIONS, DATA_CHECK_NOTICE, GENERAL_CAUTION, HANDLING
+from pipeline.report.hazards import CAUTIONS, DATA_CHECK_NOTICE, HANDLING, general_caution
 
 LetterKind = Literal["failure", "hold", "digest", "alert"]
 KINDS: tuple[str, ...] = ("failure", "hold", "digest", "alert")
@@ -245,7 +245,7 @@ def _cell_sections(result: CellResult, hazards: Sequence[Hazard], general: bool)
     if hazards:
         parts.append("HANDLING\n" + _paragraph(HANDLING))
     if general:
-        parts.append("GENERAL CAUTION\n" + _paragraph(GENERAL_CAUTION))
+        parts.append("GENERAL CAUTION\n" + _paragraph(general_caution(result.rule_set.family)))
     parts.append(_paragraph(DATA_CHECK_NOTICE))
     rule_set = result.rule_set
     trace = [

@@ -407,7 +407,7 @@ def build_context(result: CellResult) -> dict[str, object]:
         "checks": [_check_row(c, c in decided) for c in result.verdict.checks],
         "cautions": cautions,
         "handling": hazards.HANDLING if cautions else "",
-        "general_caution": hazards.GENERAL_CAUTION if failed else "",
+        "general_caution": hazards.general_caution(result.rule_set.family) if failed else "",
         "caution_title": (
             "Caution: this cell failed and may be hazardous"
             if kind is VerdictKind.FAIL

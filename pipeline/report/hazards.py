@@ -101,20 +101,43 @@ CAUTIONS: Mapping[Hazard, Caution] = MappingProxyType(
 # from memory, medium, for the transport rules. Sodium-ion batteries have UN numbers of their
 # own, UN 3551 and UN 3552, in the UN Recommendations on the Transport of Dangerous Goods,
 # Model Regulations, since the 22nd revised edition (2021) -- from memory, medium. The text
-# claims no more about them than that, and sends the reader to qualified personnel; it is
-# printed for every chemistry, so a certificate never depends on which family a cell is in.
-GENERAL_CAUTION = (
+# claims no more about them than that, and sends the reader to qualified personnel. The
+# transport words follow the rule set's declared family; a rule set that declares none gets
+# both, so a sodium-ion cell is never told only the lithium rules.
+_CAUTION_HEAD = (
     "Failed cells can be dangerous. This caution is general information only. Handle, store, "
     "transport and dispose of this cell as your site's procedures, local codes and regulations "
     "and the authority having jurisdiction require, and let qualified personnel decide what "
     "happens to it. Do not puncture, crush or open the cell. If it is hot, swelling, leaking, "
     "smoking or smells of solvent, keep clear and follow the site's emergency plan; wear eye "
     "protection and chemical-resistant gloves near a leaking cell and keep the area "
-    "ventilated. Damaged or defective lithium-ion cells fall under special transport rules. "
+    "ventilated."
+)
+_TRANSPORT = {
+    "lithium-ion": " Damaged or defective lithium-ion cells fall under special transport rules: "
+    "ask qualified personnel which transport and storage rules apply.",
+    "sodium-ion": " Sodium-ion cells are classed under UN numbers of their own (UN 3551 and "
+    "UN 3552), and damaged or defective ones fall under special transport rules: the rules for "
+    "lithium cells do not simply carry over, so ask qualified personnel which transport and "
+    "storage rules apply.",
+    None: " Damaged or defective lithium-ion cells fall under special transport rules. "
     "Sodium-ion cells are classed under UN numbers of their own (UN 3551 and UN 3552), so the "
     "rules for lithium cells do not simply carry over: ask qualified personnel which transport "
-    "and storage rules apply to a damaged or defective sodium-ion cell."
-)
+    "and storage rules apply to a damaged or defective sodium-ion cell.",
+}
+
+
+def general_caution(family: str | None) -> str:
+    """The general caution for a failed (or hazardous held) cell of ``family``.
+
+    ``family`` is the rule set's declared family (``lithium-ion``, ``sodium-ion``) or
+    None when it declares none: then the caution speaks of both.
+    """
+    return _CAUTION_HEAD + _TRANSPORT.get(family, _TRANSPORT[None])
+
+
+# Both families' words: for a text that is not about one cell (docs, tests of the wording).
+GENERAL_CAUTION = general_caution(None)
 
 # The tool reads recorded data; it does not inspect the cell (common practice).
 DATA_CHECK_NOTICE = (

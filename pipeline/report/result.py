@@ -12,7 +12,16 @@ from typing import Any
 
 from pipeline.judge.evaluate import decision_line
 from pipeline.judge.metricdefs import METRICS
-from pipeline.model import CellResult, CheckResult, CurrentBand, CycleMetrics, Note, Outcome, Plateau
+from pipeline.model import (
+    FAMILIES,
+    CellResult,
+    CheckResult,
+    CurrentBand,
+    CycleMetrics,
+    Note,
+    Outcome,
+    Plateau,
+)
 
 SCHEMA_VERSION = 1
 IDENTITY_KEYS = ("cell_id", "lot", "cell_type", "channel", "station", "program", "started_at")
@@ -86,6 +95,7 @@ def to_document(result: CellResult) -> dict[str, Any]:
             "revision": result.rule_set.revision,
             "sha256": result.rule_set.sha256,
             "source": result.rule_set.source,
+            "family": result.rule_set.family,
         },
         "cell_type": {
             "name": result.cell_type.name,
@@ -192,6 +202,7 @@ def schema() -> dict[str, Any]:
                     "revision": {"type": "string"},
                     "sha256": {"type": "string", "pattern": "^[0-9a-f]{64}$"},
                     "source": {"type": "string"},
+                    "family": {"enum": [*FAMILIES, None]},
                 },
             },
             "cell_type": {

@@ -316,6 +316,7 @@ def _assemble(
         name=str(meta["name"]),
         revision=str(meta["revision"]),
         chemistry=str(meta["chemistry"]),
+        family=None if meta.get("family") is None else str(meta["family"]),
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
         source=name,
         cell_types=cell_types,

@@ -14,7 +14,7 @@ import sys
 from dataclasses import dataclass
 
 from pipeline.judge.metricdefs import METRICS
-from pipeline.model import Hazard, PlateauSettings, Severity
+from pipeline.model import FAMILIES, Hazard, PlateauSettings, Severity
 
 TEXT = "text"
 NUMBER = "number"
@@ -93,6 +93,14 @@ TABLES: tuple[Table, ...] = (
                 'cathode/anode chemistry in words, e.g. "LFP/graphite"',
                 required=True,
                 example='"LFP/graphite"',
+            ),
+            Key(
+                "family",
+                TEXT,
+                "the cells' family, which chooses the transport and storage words of the "
+                "general caution on failed cells; unset, the caution speaks of both families",
+                allowed=FAMILIES,
+                example='"lithium-ion"',
             ),
             Key("description", TEXT, "free text for people", default=""),
         ),

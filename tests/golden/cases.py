@@ -254,11 +254,12 @@ class Caution(NamedTuple):
 
 
 def stand_in_hazards() -> types.ModuleType:
-    """A test-only stand-in with the hazards API (GENERAL_CAUTION, HANDLING, DATA_CHECK_NOTICE, CAUTIONS)."""
+    """A test-only stand-in with the hazards API (general_caution, HANDLING, DATA_CHECK_NOTICE, ...)."""
     module = types.ModuleType("pipeline.report.hazards")
     module.GENERAL_CAUTION = (  # type: ignore[attr-defined]
         "Test general caution: follow the site's procedures, local codes and qualified personnel."
     )
+    module.general_caution = lambda family: module.GENERAL_CAUTION  # type: ignore[attr-defined]
     module.HANDLING = (  # type: ignore[attr-defined]
         "Test handling: quarantine the cell as the site's procedure says."
     )
