@@ -118,7 +118,11 @@ def run_station_demo(folder: Path | None = None) -> int:
     """Run the whole demo; 0 when every file ended where it should."""
     root = folder or Path(tempfile.mkdtemp(prefix="formgate-demo-"))
     init_station(root, rules_from=RULES_DIR)
-    (root / "station.toml").write_text(STATION_TOML, encoding="utf-8")
+    # the digests link the certificates where this machine opens them ([mail] is the last table)
+    link_base = (root / "certificates").resolve().as_uri()
+    (root / "station.toml").write_text(
+        STATION_TOML + f'certificates_url = "{link_base}/"\n', encoding="utf-8"
+    )
     for extra in ("inbox-rename", "inbox-marker"):
         (root / extra).mkdir(exist_ok=True)
     settings = read_settings(root)
