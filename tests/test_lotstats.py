@@ -433,11 +433,15 @@ def test_a_metric_no_cell_has_is_described_as_nothing_and_its_capability_says_wh
     assert empty.tally.n == 0 and empty.grades == {} and empty.outliers == ()
 
 
-def test_lot_statistics_refuses_two_checks_of_one_name_and_a_bad_screen() -> None:
+def test_lot_statistics_refuses_two_checks_of_one_name_a_bad_screen_and_a_value_not_a_number() -> None:
     with pytest.raises(ValueError, match="more than one window check is named 'cap'"):
         lot_statistics([], [WindowSpec("cap", 1.0, 2.0), WindowSpec("cap", None, 3.0)], [], [])
     with pytest.raises(ValueError, match="k must be a positive number"):
         lot_statistics([], [], [ScreenSpec("cap", -1.0, 5)], [])
+    text: dict[str, object] = {"cap": "5,1", "ocv": 3.3}
+    cells = [CellRow("x1", "pass", {"cap": 5.0, "ocv": 3.3}), CellRow("x2", "pass", text)]  # type: ignore[arg-type]
+    with pytest.raises(ValueError, match=r"cell x2: cap = '5,1' is not a number"):
+        lot_statistics(cells, [], [], [])
 
 
 values_row = st.fixed_dictionaries({}, optional={"a": maybe, "b": maybe})

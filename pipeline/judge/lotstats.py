@@ -559,9 +559,24 @@ def _columns(cells: Sequence[CellRow], metrics: Sequence[str]) -> dict[str, Floa
                 rows.append(every(cell.values))
             except KeyError:
                 rows.append(tuple(cell.values.get(m) for m in metrics))
-    table = np.array(rows, dtype=np.float64).reshape(len(cells), len(metrics))  # None -> NaN
+    try:
+        table = np.array(rows, dtype=np.float64).reshape(len(cells), len(metrics))  # None -> NaN
+    except (TypeError, ValueError):
+        raise ValueError(_first_bad_value(cells, metrics)) from None
     table[~np.isfinite(table)] = np.nan
     return {m: np.ascontiguousarray(table[:, j]) for j, m in enumerate(metrics)}
+
+
+def _first_bad_value(cells: Sequence[CellRow], metrics: Sequence[str]) -> str:
+    """Name the first cell and metric whose value is not a number (for the error message)."""
+    for cell in cells:
+        for metric in metrics:
+            value = cell.values.get(metric)
+            try:
+                float(value if value is not None else math.nan)
+            except (TypeError, ValueError):
+                return f"cell {cell.cell_id}: {metric} = {value!r} is not a number"
+    return "a value is not a number"  # pragma: no cover - numpy refused something float() takes
 
 
 def _spec_window(metric: str, checks: Sequence[WindowSpec]) -> tuple[float | None, float | None]:
@@ -581,8 +596,9 @@ def lot_statistics(
 
     A screen's spec window is the intersection of the windows of every check on its
     metric (what a passing cell met); with no check its limits are not clipped. Raises
-    ValueError for two checks with the same key or a screen with a bad k, min_cells or
-    sides (the rule loader refuses those first).
+    ValueError for two checks with the same key, a screen with a bad k, min_cells or sides
+    (the rule loader refuses those first), or a value that is not a number (naming the
+    cell and metric).
 
     >>> cells = [CellRow(f"c{i}", "pass", {"cap": 5.0 + i / 100}) for i in range(5)]
     >>> stats = lot_statistics(cells, [WindowSpec("cap", 4.9, 5.2, name="capacity")], [], [])
