@@ -488,6 +488,40 @@ class Program:
 
 # Families of cells a rule set may declare: their transport and storage rules differ.
 FAMILIES: tuple[str, ...] = ("lithium-ion", "sodium-ion")
+# The stages of a cell's making that formgate judges: a cycle file holds formation and
+# grading; the aging stage is the open-circuit-voltage readings between them.
+STAGES: tuple[str, ...] = ("formation", "aging", "grading")
+SCREEN_SIDES: tuple[str, ...] = ("both", "low", "high")
+
+
+@dataclass(frozen=True, slots=True)
+class AgingSettings:
+    """How a cell's aging readings become its K-value (the [aging] table of a rule file)."""
+
+    min_days: float = 3.0  # readings closer together than this give no K-value
+    temperature_coefficient_mv_per_k: float | None = None  # None: no temperature correction
+    reference_c: float = 25.0
+
+
+@dataclass(frozen=True, slots=True)
+class Screen:
+    """A robust lot screen: median ± k·1.4826·MAD of the lot's passing cells ([screen.ID])."""
+
+    id: str
+    metric: str
+    k: float
+    min_cells: int
+    sides: str = "both"  # one of SCREEN_SIDES
+    where: SourceRef | None = field(default=None, compare=False)
+
+
+@dataclass(frozen=True, slots=True)
+class Grade:
+    """A named class of passing cells by metric ranges ([grade.NAME]): low inclusive, high not."""
+
+    name: str
+    bounds: tuple[tuple[str, float | None, float | None], ...]  # (metric, low, high)
+    where: SourceRef | None = field(default=None, compare=False)
 
 
 @dataclass(frozen=True, slots=True)
@@ -508,6 +542,12 @@ class RuleSet:
     description: str = ""
     program: Program = field(default_factory=Program)
     family: str | None = None  # one of FAMILIES; None: not declared
+    stages: tuple[str, ...] = ("formation", "grading")  # what a final verdict needs
+    stage_overdue_h: float | None = None  # a needed stage later than this is alerted
+    aging: AgingSettings = field(default_factory=AgingSettings)
+    screens: tuple[Screen, ...] = ()
+    grades: tuple[Grade, ...] = ()
+    lot_quiet_h: float | None = None  # a lot closes by itself after this long without a cell
 
     def cell_type(self, name: str) -> CellType | None:
         for ct in self.cell_types:

@@ -13,7 +13,17 @@ from hypothesis import strategies as st
 
 from pipeline.errors import InputError, RulesError
 from pipeline.judge.metricdefs import METRIC_NAMES
-from pipeline.model import Hazard, PlateauSettings, Program, Severity, SourceRef, Window
+from pipeline.model import (
+    AgingSettings,
+    Grade,
+    Hazard,
+    PlateauSettings,
+    Program,
+    Screen,
+    Severity,
+    SourceRef,
+    Window,
+)
 from pipeline.rulebook.book import RuleBook, check_rules_dir, load_rule_set, load_rules_dir
 from pipeline.rulebook.schema import (
     EXAMPLE,
@@ -141,6 +151,8 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_rule_set() -> 
     for table in TABLES:
         body = data[table.name]
         used = {k for entry in body.values() for k in entry} if table.named else set(body)
+        if table.name == "grade":  # a grade's keys are metrics, each with a low-high range
+            used = {k for entry in body.values() for bound in entry.values() for k in bound}
         assert used == {k.name for k in table.keys}, table.name
     rs = load_rule_set(text, "all_keys.toml")
     assert (rs.name, rs.revision, rs.chemistry) == ("all-keys", "2026-12-01.7", "LFP/graphite")
@@ -165,6 +177,11 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_rule_set() -> 
     assert (rule.message, rule.if_missing) == ("Grading capacity out of window.", "skip")
     assert rule.cell_types == ("DEMO-ALL-1", "DEMO-ALL-2")
     assert rule.where == SourceRef("all_keys.toml", 43)
+    assert (rs.stages, rs.stage_overdue_h) == (("formation", "aging", "grading"), 240.0)
+    assert rs.aging == AgingSettings(5.0, -0.25, 23.0)
+    assert rs.screens == (Screen("self_discharge", "k_value_mV_per_day", 4.5, 40, "high"),)
+    assert rs.grades == (Grade("A", (("grading_capacity_Ah", 12.5, 13.0),)),)
+    assert rs.lot_quiet_h == 12.0
 
 
 def test_defaults_fill_what_a_file_leaves_out() -> None:
@@ -415,6 +432,9 @@ def test_the_loader_accepts_no_key_the_schema_lacks(table: Table) -> None:
         text = EXAMPLE.replace("[rule_set]\n", "[rule_set]\nnot_a_key = 1\n")
     else:
         text = EXAMPLE + f"\n[{table.name}{'.Y' if table.named else ''}]\nnot_a_key = 1\n"
+    if table.name == "grade":  # a grade's keys are metric names
+        assert "names 'not_a_key', which is not a metric" in _first_error(text, "r.toml")
+        return
     assert "unknown key 'not_a_key'" in _first_error(text, "r.toml")
 
 

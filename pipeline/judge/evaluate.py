@@ -16,7 +16,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable
 
-from pipeline.judge.metricdefs import BY_NAME
+from pipeline.judge.metricdefs import AGING_METRIC_NAMES, METRIC_NAMES, RULE_BY_NAME
 from pipeline.judge.program import HOLDING_CODES, INCOMPLETE, MISMATCH
 from pipeline.model import (
     CellMetrics,
@@ -83,7 +83,7 @@ def _check(
     value = metrics.values.get(rule.metric)
     if value is not None and math.isnan(value):
         value = None
-    unit = BY_NAME[rule.metric].unit if rule.metric in BY_NAME else ""
+    unit = RULE_BY_NAME[rule.metric].unit if rule.metric in RULE_BY_NAME else ""
     blocked = blockers.get(rule.metric)
     if blocked is not None or value is None:
         # a value the notes make untrustworthy is not judged; a missing one was not measured
@@ -140,9 +140,18 @@ def _blockers(notes: Iterable[Note]) -> dict[str, str]:
 
 
 def evaluate(
-    rule_set: RuleSet, cell_type: CellType, metrics: CellMetrics, notes: tuple[Note, ...] = ()
+    rule_set: RuleSet,
+    cell_type: CellType,
+    metrics: CellMetrics,
+    notes: tuple[Note, ...] = (),
+    *,
+    aging: bool = False,
 ) -> Verdict:
     """Judge one cell against the rules of ``rule_set`` that apply to ``cell_type``.
+
+    A cycle file is judged on the checks of the cycle metrics; with ``aging`` the
+    cell's aging readings are judged on the checks of the aging metrics
+    (metricdefs.AGING_METRICS). Neither ever judges the other's checks.
 
     ``notes`` are the data-quality notes of reading and segmenting the file; the
     notes in ``metrics.notes`` count as well. A check whose metric a note blocks,
@@ -155,10 +164,11 @@ def evaluate(
     all_notes = (*notes, *metrics.notes)
     blockers = _blockers(all_notes)
     holding, quiet = program_findings(all_notes)
+    stage_metrics = AGING_METRIC_NAMES if aging else METRIC_NAMES
     checks = tuple(
         _check(rule, cell_type, metrics, blockers)
         for rule in rule_set.rules
-        if _applies(rule, cell_type)
+        if _applies(rule, cell_type) and rule.metric in stage_metrics
     )
     out = [c for c in checks if c.outcome is Outcome.OUT_OF_WINDOW]
     cut = any(n.code == INCOMPLETE for n in all_notes)
@@ -208,7 +218,7 @@ def phrase(check: CheckResult) -> str:
     ...        Outcome.OUT_OF_WINDOW, Severity.REJECT, None, ""))
     'grading_capacity_Ah 18.21 Ah < 19 Ah (reject)'
     """
-    unit = BY_NAME[check.metric].unit if check.metric in BY_NAME else ""
+    unit = RULE_BY_NAME[check.metric].unit if check.metric in RULE_BY_NAME else ""
     suffix = f" {unit}" if unit else ""
     if check.outcome is Outcome.OUT_OF_WINDOW and check.value is not None:
         low, high = check.window.low, check.window.high

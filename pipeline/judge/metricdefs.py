@@ -71,3 +71,21 @@ METRICS: tuple[MetricDef, ...] = (
 
 METRIC_NAMES: tuple[str, ...] = tuple(m.name for m in METRICS)
 BY_NAME: dict[str, MetricDef] = {m.name: m for m in METRICS}
+
+# Measured on the cell's open-circuit-voltage readings during aging, not in a cycle file: a
+# check on one of these is judged when the cell's readings are in, never on a cycle file.
+AGING_METRICS: tuple[MetricDef, ...] = (
+    MetricDef(
+        "k_value_mV_per_day", "mV/day",
+        "open-circuit voltage drop per day between the first and the last aging reading "
+        "(K-value); positive = falling",
+    ),
+    MetricDef("aging_ocv_V", "V", "open-circuit voltage at the last aging reading"),
+    MetricDef("aging_acir_mOhm", "mOhm", "AC resistance at the last aging reading"),
+)
+AGING_METRIC_NAMES: tuple[str, ...] = tuple(m.name for m in AGING_METRICS)
+
+# Every metric a rule file may name: a cycle file's, then the aging readings'.
+RULE_METRICS: tuple[MetricDef, ...] = (*METRICS, *AGING_METRICS)
+RULE_METRIC_NAMES: tuple[str, ...] = tuple(m.name for m in RULE_METRICS)
+RULE_BY_NAME: dict[str, MetricDef] = {m.name: m for m in RULE_METRICS}

@@ -19,10 +19,13 @@ import pathlib
 import tomllib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from typing import cast
 
 from pipeline.errors import FormgateError, InputError, RulesError
-from pipeline.judge.metricdefs import BY_NAME, METRIC_NAMES
+from pipeline.judge.metricdefs import RULE_BY_NAME as BY_NAME
+from pipeline.judge.metricdefs import RULE_METRIC_NAMES as METRIC_NAMES
 from pipeline.model import (
+    AgingSettings,
     CellType,
     Hazard,
     PlateauSettings,
@@ -42,6 +45,7 @@ from pipeline.rulebook.tables import (
     close_match,
     number,
 )
+from pipeline.rulebook.lotrules import LotRules, lot_rules
 from pipeline.rulebook.toml_lines import KeyPath, show_table, syntax_position
 
 _UNIT_WORDS = {
@@ -250,6 +254,8 @@ def _parse(text: str, name: str) -> tuple[RuleSet | None, list[RulesError]]:
         present = table.name in data and data[table.name] != {}
         if table.required and not present:
             out.add(f"no {table.header} table", (table.name,), hint=_MISSING_HINTS[table.name])
+        if table.name == "grade":  # its keys are metric names: checked by lotrules
+            continue
         if table.named:
             families[table.name] = check_family(out, table, data.get(table.name, {}))
         elif present or not table.required:
@@ -281,6 +287,7 @@ def _parse(text: str, name: str) -> tuple[RuleSet | None, list[RulesError]]:
         for ident, v in check_values.items()
         if (r := _build_rule(out, ident, v, declared, ident in broken_checks)) is not None
     ]
+    lot = lot_rules(out, data, plain["stages"], families["screen"], rules)
     if not out.errors:
         for ct in cell_types:
             if not any(not r.cell_types or ct.name in r.cell_types for r in rules):
@@ -294,7 +301,7 @@ def _parse(text: str, name: str) -> tuple[RuleSet | None, list[RulesError]]:
         # Problems with a line first, in line order; whole-file problems (often consequences) last.
         problems = [e for e in out.errors if isinstance(e, RulesError)]
         return None, sorted(problems, key=_line_order)
-    return _assemble(text, name, plain, tuple(cell_types), tuple(rules)), []
+    return _assemble(text, name, plain, tuple(cell_types), tuple(rules), lot), []
 
 
 def _assemble(
@@ -303,9 +310,10 @@ def _assemble(
     plain: Mapping[str, Values],
     cell_types: tuple[CellType, ...],
     rules: tuple[Rule, ...],
+    lot: LotRules,
 ) -> RuleSet:
     meta, plateau, measure = plain["rule_set"], plain["plateau_detection"], plain["measurement"]
-    program = plain["program"]
+    program, stages, aging = plain["program"], plain["stages"], plain["aging"]
 
     def num(values: Values, key: str) -> float:
         found = number(values, key)
@@ -341,6 +349,16 @@ def _assemble(
             end_tolerance_v=num(program, "end_tolerance_V"),
             final_rest_s=number(program, "final_rest_s"),
         ),
+        stages=tuple(str(s) for s in cast(Sequence[str], stages["needed"])),
+        stage_overdue_h=number(stages, "overdue_h"),
+        aging=AgingSettings(
+            min_days=num(aging, "min_days"),
+            temperature_coefficient_mv_per_k=number(aging, "temperature_coefficient_mV_per_K"),
+            reference_c=num(aging, "reference_C"),
+        ),
+        screens=lot.screens,
+        grades=lot.grades,
+        lot_quiet_h=number(plain["lot"], "quiet_h"),
     )
 
 

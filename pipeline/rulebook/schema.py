@@ -13,8 +13,8 @@ from __future__ import annotations
 import sys
 from dataclasses import dataclass
 
-from pipeline.judge.metricdefs import METRICS
-from pipeline.model import FAMILIES, Hazard, PlateauSettings, Severity
+from pipeline.judge.metricdefs import AGING_METRICS, METRICS
+from pipeline.model import FAMILIES, SCREEN_SIDES, Hazard, PlateauSettings, Severity
 
 TEXT = "text"
 NUMBER = "number"
@@ -378,6 +378,124 @@ TABLES: tuple[Table, ...] = (
         named=True,
         required=True,
     ),
+    Table(
+        "stages",
+        "The stages a cell must pass before its verdict is final. A cycle file holds "
+        "formation and grading; the aging stage is two or more open-circuit-voltage readings "
+        "(an OCV reading file, docs/readings.md). Until every needed stage is in, a cell is "
+        "held: waiting for the stage.",
+        (
+            Key(
+                "needed",
+                TEXT_LIST,
+                "the stages a final verdict needs",
+                default=("formation", "grading"),
+                allowed_note="formation, aging, grading; a check on an aging metric needs aging",
+            ),
+            Key(
+                "overdue_h",
+                NUMBER,
+                "a needed stage still missing this long after the cell's first record raises an "
+                "alert",
+                unit="h",
+                minimum=0.0,
+                minimum_exclusive=True,
+            ),
+        ),
+    ),
+    Table(
+        "aging",
+        "How a cell's aging readings become its K-value (k_value_mV_per_day): the open-circuit "
+        "voltage drop per day from its first to its last reading.",
+        (
+            Key(
+                "min_days",
+                NUMBER,
+                "readings closer together than this give no K-value (the check is not made)",
+                unit="days",
+                default=3.0,
+                minimum=0.0,
+                minimum_exclusive=True,
+            ),
+            Key(
+                "temperature_coefficient_mV_per_K",
+                NUMBER,
+                "open-circuit voltage change per kelvin; when set, each reading is corrected to "
+                "reference_C before the drop is taken, and every reading needs its temperature",
+                unit="mV/K",
+            ),
+            Key("reference_C", NUMBER, "temperature the readings are corrected to", unit="°C",
+                default=25.0),
+        ),
+    ),
+    Table(
+        "screen",
+        "One table per robust lot screen: limits median ± k × 1.4826 × MAD of the lot's "
+        "passing cells, which only ever tighten the checks' windows. A passing cell outside "
+        "them is held as an outlier in its lot. Screens are applied when the lot is closed.",
+        (
+            Key(
+                "metric",
+                TEXT,
+                "the metric screened",
+                required=True,
+                allowed_note="a metric name from the table below",
+                example='"k_value_mV_per_day"',
+            ),
+            Key(
+                "k",
+                NUMBER,
+                "half-width of the limits in robust standard deviations",
+                required=True,
+                minimum=0.0,
+                minimum_exclusive=True,
+                example="5.0",
+            ),
+            Key(
+                "min_cells",
+                INTEGER,
+                "passing cells with a value the lot needs before the screen applies",
+                default=30,
+                minimum=2,
+            ),
+            Key(
+                "sides",
+                TEXT,
+                "which side the screen guards",
+                default="both",
+                allowed=SCREEN_SIDES,
+            ),
+        ),
+        named=True,
+    ),
+    Table(
+        "grade",
+        "One table per grade, a named class of passing cells for matching them into packs. "
+        "Each line names a metric and its range as an inline table: "
+        "`grading_capacity_Ah = { low = 20.2, high = 20.6 }` (low inclusive, high exclusive, "
+        "either may be left out). A passing cell gets the first grade, in file order, whose "
+        "every range holds.",
+        (
+            Key("low", NUMBER, "lowest value of the range (inclusive)", unit="metric's unit"),
+            Key("high", NUMBER, "the range ends below this value", unit="metric's unit"),
+        ),
+        named=True,
+    ),
+    Table(
+        "lot",
+        "When a lot is closed, so that its screens apply and its report is made.",
+        (
+            Key(
+                "quiet_h",
+                NUMBER,
+                "a lot with no new cell for this long is closed by the station; not set: only "
+                "`formgate lot close` closes it",
+                unit="h",
+                minimum=0.0,
+                minimum_exclusive=True,
+            ),
+        ),
+    ),
 )
 
 BY_TABLE: dict[str, Table] = {t.name: t for t in TABLES}
@@ -489,6 +607,16 @@ def render_docs() -> str:
             f"| `{m.name}` | {_cell(m.unit)} | {'yes' if m.relative_ok else ''} "
             f"| {_cell(m.meaning)} |"
         )
+    out += [
+        "",
+        "Measured on a cell's open-circuit-voltage readings during aging (an OCV reading file), "
+        "not in a cycle file; a check on one of these needs `aging` under `[stages] needed`:",
+        "",
+        "| metric | unit | relative to nominal capacity | meaning |",
+        "|---|---|---|---|",
+    ]
+    for m in AGING_METRICS:
+        out.append(f"| `{m.name}` | {_cell(m.unit)} | | {_cell(m.meaning)} |")
     out += ["", "## Renamed keys", "", "| table | old key | new key |", "|---|---|---|"]
     for (table_name, old), new in sorted(RENAMED.items()):
         out.append(f"| `{BY_TABLE[table_name].header}` | `{old}` | `{new}` |")

@@ -12,7 +12,7 @@ import math
 from collections.abc import Mapping, Sequence
 
 from pipeline.errors import FormgateError, RulesError
-from pipeline.judge.metricdefs import METRIC_NAMES
+from pipeline.judge.metricdefs import RULE_METRIC_NAMES as METRIC_NAMES
 from pipeline.model import SourceRef
 from pipeline.rulebook.schema import INTEGER, NUMBER, RENAMED, TABLES, TEXT, TEXT_LIST, Key, Table
 from pipeline.rulebook.toml_lines import KeyPath, Locator, show_table
@@ -20,7 +20,10 @@ from pipeline.rulebook.toml_lines import KeyPath, Locator, show_table
 Values = dict[str, object]
 
 # Allowed values that come from another table than the schema's own.
-_DYNAMIC_ALLOWED: dict[tuple[str, str], tuple[str, ...]] = {("check", "metric"): METRIC_NAMES}
+_DYNAMIC_ALLOWED: dict[tuple[str, str], tuple[str, ...]] = {
+    ("check", "metric"): METRIC_NAMES,
+    ("screen", "metric"): METRIC_NAMES,
+}
 EXAMPLES = {NUMBER: "1.5", INTEGER: "1001", TEXT: '"text"', TEXT_LIST: '["text"]'}
 
 

@@ -1,0 +1,158 @@
+"""The lot and stage tables of a rule file: [stages], [screen.ID] and [grade.NAME].
+
+Their keys and values pass the schema first (tables.py), except a grade's: its keys
+are metric names, each with an inline table ``{ low = ..., high = ... }``, checked here.
+The cross-key rules live here too: a stage named twice or unknown, a check on an aging
+metric without the aging stage, a grade with no range or a range that ends before it
+begins. Every problem is reported with its line, like the rest of the file's.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import cast
+
+from pipeline.judge.metricdefs import AGING_METRIC_NAMES, RULE_BY_NAME, RULE_METRIC_NAMES
+from pipeline.model import STAGES, Grade, Rule, Screen
+from pipeline.rulebook.schema import BY_TABLE
+from pipeline.rulebook.tables import Collector, Values, check_table, close_match, describe, number
+
+
+@dataclass(frozen=True, slots=True)
+class LotRules:
+    """The screens and grades of a rule file, in file order."""
+
+    screens: tuple[Screen, ...] = ()
+    grades: tuple[Grade, ...] = ()
+
+
+def lot_rules(
+    out: Collector,
+    data: Mapping[str, object],
+    stages: Values,
+    screens: tuple[dict[str, Values], set[str]],
+    rules: Sequence[Rule],
+) -> LotRules:
+    """Check the stage rules, build the screens and the grades; problems go to ``out``."""
+    _check_stages(out, stages, rules)
+    values, broken = screens
+    built = tuple(
+        Screen(
+            ident,
+            str(v["metric"]),
+            cast(float, number(v, "k")),
+            int(cast(float, number(v, "min_cells"))),
+            str(v["sides"]),
+            out.where(("screen", ident)),
+        )
+        for ident, v in values.items()
+        if ident not in broken and "metric" in v and "k" in v
+    )
+    return LotRules(built, _grades(out, data.get("grade", {})))
+
+
+def _check_stages(out: Collector, stages: Values, rules: Sequence[Rule]) -> None:
+    needed = cast(Sequence[str], stages.get("needed", ()))
+    path = ("stages",)
+    for stage in needed:
+        if stage not in STAGES:
+            guess = close_match(stage, STAGES)
+            out.add(
+                f'[stages] needed holds "{stage}", which is not a stage',
+                path,
+                "needed",
+                (f"Did you mean '{guess}'? " if guess else "") + f"Stages: {', '.join(STAGES)}.",
+            )
+    if len(set(needed)) != len(needed):
+        out.add("[stages] needed names a stage twice", path, "needed", "Name each stage once.")
+    if not needed:
+        out.add(
+            "[stages] needed is empty",
+            path,
+            "needed",
+            'Name the stages a cell must pass, e.g. needed = ["formation", "grading"].',
+        )
+    aging_checks = [r for r in rules if r.metric in AGING_METRIC_NAMES]
+    if aging_checks and "aging" not in needed:
+        first = aging_checks[0]
+        out.add(
+            f"check '{first.id}' judges {first.metric}, an aging metric, but [stages] needed "
+            "does not name aging",
+            ("check", first.id),
+            "metric",
+            'Add "aging" to needed under [stages] (e.g. needed = ["formation", "aging", '
+            '"grading"]), or the check could never be made.',
+        )
+
+
+def _grades(out: Collector, data: object) -> tuple[Grade, ...]:
+    if not isinstance(data, Mapping):
+        out.add(
+            f"grade must be written as [grade.NAME] tables, found {describe(data)}",
+            ("grade",),
+            hint="Give each grade its own table, e.g. [grade.A], with one line per metric.",
+        )
+        return ()
+    grades = []
+    for name, body in data.items():
+        path = ("grade", name)
+        if not isinstance(body, Mapping) or not body:
+            out.add(
+                f"[grade.{name}] has no range",
+                path if isinstance(body, Mapping) else ("grade",),
+                None if isinstance(body, Mapping) else name,
+                "Give at least one line such as grading_capacity_Ah = { low = 20.2, high = 20.6 }.",
+            )
+            continue
+        bounds = [b for metric, bound in body.items() if (b := _bound(out, name, metric, bound))]
+        if len(bounds) == len(body):
+            grades.append(Grade(str(name), tuple(bounds), out.where(path)))
+    return tuple(grades)
+
+
+def _bound(
+    out: Collector, grade: str, metric: str, bound: object
+) -> tuple[str, float | None, float | None] | None:
+    path = ("grade", grade)
+    if metric not in RULE_BY_NAME:
+        guess = close_match(metric, RULE_METRIC_NAMES)
+        out.add(
+            f"[grade.{grade}] names '{metric}', which is not a metric",
+            path,
+            metric,
+            (f"Did you mean '{guess}'? " if guess else "") + "docs/rules.md lists every metric.",
+        )
+        return None
+    if not isinstance(bound, Mapping):
+        out.add(
+            f"[grade.{grade}] {metric} must be a range, found {describe(bound)}",
+            path,
+            metric,
+            f"Write it as {metric} = {{ low = 1.0, high = 2.0 }}, leaving out a side that is "
+            "open.",
+        )
+        return None
+    before = len(out.errors)
+    values = check_table(out, (*path, metric), BY_TABLE["grade"], bound)
+    if len(out.errors) > before:
+        return None
+    low, high = number(values, "low"), number(values, "high")
+    if low is None and high is None:
+        out.add(
+            f"[grade.{grade}] {metric} has neither low nor high",
+            path,
+            metric,
+            "Give low, high or both.",
+        )
+        return None
+    if low is not None and high is not None and low >= high:
+        out.add(
+            f"[grade.{grade}] {metric} = {{ low = {low:g}, high = {high:g} }} ends before it "
+            "begins",
+            path,
+            metric,
+            "low must be below high (low is in the grade, high is not).",
+        )
+        return None
+    return (metric, low, high)
