@@ -430,7 +430,7 @@ TABLES: tuple[Table, ...] = (
     ),
     Table(
         "screen",
-        "One table per robust lot screen: limits median ± k × 1.4826 × MAD of the lot's "
+        "One table per robust lot screen: limits median ± k * 1.4826 * MAD of the lot's "
         "passing cells, which only ever tighten the checks' windows. A passing cell outside "
         "them is held as an outlier in its lot. Screens are applied when the lot is closed.",
         (

@@ -1,0 +1,88 @@
+"""A cell's verdict over its stages and its lot: the worst of its stages, held while one is missing.
+
+Pure. Each stage result (a cycle file covers formation and grading; the aging readings
+cover aging) brings its verdict and deciding line. The cell's verdict is:
+
+- ``fail`` when any stage failed: a failure is final even while other stages are missing;
+- else ``hold`` when a needed stage is missing ("waiting for stage aging"), a stage is
+  held, or the closed lot's screens found the cell an outlier ("outlier in lot: ...");
+- else ``pass``.
+
+Every reason that holds or fails the cell is kept, the deciding ones first, so a
+reader sees all of them in one line.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+from pipeline.judge.lotstats import Outlier
+from pipeline.model import STAGES
+
+# What each kind of record covers.
+CYCLE_FILE: tuple[str, ...] = ("formation", "grading")
+AGING: tuple[str, ...] = ("aging",)
+_ORDER = {"fail": 0, "error": 1, "hold": 2, "pass": 3}
+
+
+@dataclass(frozen=True, slots=True)
+class StageRecord:
+    """One judged record of a cell: the stages it covers, its verdict and deciding line."""
+
+    stages: tuple[str, ...]
+    verdict: str  # pass, fail, hold
+    reason: str = ""  # the deciding line of a fail or hold
+    hazards: tuple[str, ...] = ()
+    source: str = ""  # the file it came from
+    sha256: str = ""
+
+
+@dataclass(frozen=True, slots=True)
+class CellDecision:
+    """The verdict of a cell over its stages and lot, with every reason in deciding order."""
+
+    verdict: str
+    reasons: tuple[str, ...]
+    hazards: tuple[str, ...]
+    missing: tuple[str, ...]  # needed stages with no record yet
+
+    @property
+    def reason(self) -> str:
+        return "; ".join(self.reasons)
+
+
+def outlier_phrase(outlier: Outlier, unit: str = "") -> str:
+    """'outlier in lot: k_value_mV_per_day 2.41 mV/day > lot limit 1.30 mV/day'."""
+    sign, bound = (">", outlier.high) if outlier.side == "high" else ("<", outlier.low)
+    u = f" {unit}" if unit else ""
+    return (
+        f"outlier in lot: {outlier.metric} {outlier.value:.4g}{u} {sign} lot limit "
+        f"{bound:.4g}{u}"
+    )
+
+
+def decide(
+    needed: Sequence[str],
+    records: Sequence[StageRecord],
+    outlier_reasons: Sequence[str] = (),
+) -> CellDecision:
+    """The cell's verdict from its stage records (one per stage: the one that counts)."""
+    unknown = [s for r in records for s in r.stages if s not in STAGES]
+    if unknown:
+        raise ValueError(f"unknown stage {unknown[0]!r}; stages are {', '.join(STAGES)}")
+    covered = {s for r in records for s in r.stages}
+    missing = tuple(s for s in STAGES if s in needed and s not in covered)
+    ranked = sorted(records, key=lambda r: _ORDER.get(r.verdict, 0))
+    hazards = tuple(dict.fromkeys(h for r in records if r.verdict == "fail" for h in r.hazards))
+    failing = [r.reason for r in ranked if r.verdict in ("fail", "error")]
+    holding = [r.reason for r in ranked if r.verdict == "hold"]
+    waiting = [f"waiting for stage {s}" for s in missing]
+    if failing:
+        verdict = "fail"
+    elif holding or waiting or outlier_reasons:
+        verdict = "hold"
+    else:
+        verdict = "pass"
+    reasons = tuple(dict.fromkeys(r for r in [*failing, *holding, *outlier_reasons, *waiting] if r))
+    return CellDecision(verdict, reasons, hazards, missing)

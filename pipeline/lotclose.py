@@ -1,0 +1,236 @@
+"""Closing a lot: every cell's verdict over its stages, the lot's screens, grades and statistics.
+
+Pure given its inputs: the lot's cycle-file results (the result JSON documents the
+judge wrote), the aging readings of its cells, and the rule book. For each cell the
+record that counts is its latest cycle-file result (by analysis time) and all its
+readings; its verdict is the worst of its stages, held while a needed stage is missing
+(judge/cellverdict.py). The lot's robust screens are then evaluated once, on the cells
+that pass at that moment: a passing cell outside them becomes ``hold`` ("outlier in
+lot: ..."), and the close records both decisions, never only the second. Grades go to
+the cells that still pass.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from pipeline.errors import FormgateError
+from pipeline.judge.aging import judge_aging
+from pipeline.judge.cellverdict import (
+    AGING,
+    CYCLE_FILE,
+    CellDecision,
+    StageRecord,
+    decide,
+    outlier_phrase,
+)
+from pipeline.judge.evaluate import decision_line
+from pipeline.judge.kvalue import group_by_cell
+from pipeline.judge.lotstats import (
+    CellRow,
+    GradeClass,
+    LotStatistics,
+    ScreenSpec,
+    WindowSpec,
+    lot_statistics,
+)
+from pipeline.judge.metricdefs import RULE_BY_NAME
+from pipeline.model import CellType, RuleSet
+from pipeline.read.readings import Reading, ReadingFile
+from pipeline.rulebook.book import RuleBook
+
+
+@dataclass(frozen=True, slots=True)
+class ClosedCell:
+    """One cell at the lot's close: its decision before and after the screens, grade, values."""
+
+    cell_id: str
+    cell_type: str
+    before_screens: CellDecision
+    decision: CellDecision
+    grade: str | None
+    values: Mapping[str, float | None]
+    records: tuple[tuple[str, str, str], ...]  # (stage, file name, sha256)
+    decided_at: datetime.datetime | None
+
+    @property
+    def changed(self) -> bool:
+        """True when the screens turned a pass into a hold at the close."""
+        return self.decision.verdict != self.before_screens.verdict
+
+
+@dataclass(frozen=True, slots=True)
+class ClosedLot:
+    """A closed lot: its cells, the rule set it was judged by and the lot statistics."""
+
+    lot: str
+    rule_set: RuleSet
+    cell_types: tuple[str, ...]
+    cells: tuple[ClosedCell, ...]
+    checks: tuple[WindowSpec, ...]
+    screens: tuple[ScreenSpec, ...]
+    grades: tuple[GradeClass, ...]
+    statistics: LotStatistics  # as screened: limits from the cells passing before the screens
+    notes: tuple[str, ...] = ()
+
+
+def specs(rule_set: RuleSet, cell_type: CellType) -> tuple[WindowSpec, ...]:
+    """The rule set's checks as windows for Cpk, relative windows resolved for ``cell_type``."""
+    out = []
+    for rule in rule_set.rules:
+        if rule.cell_types and cell_type.name not in rule.cell_types:
+            continue
+        window = rule.window.resolve(cell_type)
+        out.append(WindowSpec(rule.metric, window.low, window.high, rule.severity.value, rule.id))
+    return tuple(out)
+
+
+def _lot_specs(
+    rule_set: RuleSet, cell_type: CellType
+) -> tuple[tuple[WindowSpec, ...], tuple[ScreenSpec, ...], tuple[GradeClass, ...]]:
+    screens = tuple(
+        ScreenSpec(s.metric, s.k, s.min_cells, s.sides)  # type: ignore[arg-type]
+        for s in rule_set.screens
+    )
+    grades = tuple(
+        GradeClass(g.name, {m: (lo, hi) for m, lo, hi in g.bounds}, g.where)
+        for g in rule_set.grades
+    )
+    return specs(rule_set, cell_type), screens, grades
+
+
+def _cycle_record(doc: Mapping[str, Any]) -> StageRecord:
+    verdict = str(doc["verdict"])
+    reason = "" if verdict == "pass" else str(doc.get("decision") or "; ".join(doc["reasons"]))
+    return StageRecord(
+        CYCLE_FILE,
+        verdict,
+        reason,
+        tuple(str(h) for h in doc.get("hazards", ())),
+        str(doc["input"]["name"]),
+        str(doc["input"]["sha256"]),
+    )
+
+
+def close_lot(
+    lot: str,
+    documents: Sequence[Mapping[str, Any]],
+    reading_files: Sequence[ReadingFile],
+    rulebook: RuleBook,
+    *,
+    sha256: Mapping[str, str] | None = None,
+) -> ClosedLot:
+    """Decide every cell of ``lot`` and evaluate its screens and grades.
+
+    ``documents``: result JSON documents (any lots; only ``lot``'s are used; a cell's
+    latest by analysis time counts). ``readings``: aging readings (only ``lot``'s are
+    used). ``sha256``: reading file's source name -> its SHA-256, for the records.
+    Raises FormgateError when the lot has no cell, or its cells need several rule sets.
+    """
+    latest: dict[str, Mapping[str, Any]] = {}
+    for doc in documents:
+        if doc["cell"]["lot"] != lot:
+            continue
+        cell = str(doc["cell"]["cell_id"])
+        if cell not in latest or str(doc["analysed_at"]) >= str(latest[cell]["analysed_at"]):
+            latest[cell] = doc
+    source_of: dict[int, str] = {}
+    readings: list[Reading] = []
+    for f in reading_files:
+        for r in f.readings:
+            if r.lot == lot:
+                readings.append(r)
+                source_of[id(r)] = f.source
+    by_cell = group_by_cell(readings)
+    cell_ids = sorted(set(latest) | set(by_cell))
+    if not cell_ids:
+        raise FormgateError(f"lot {lot} has no judged cell and no reading")
+    types = {
+        c: str(latest[c]["cell_type"]["name"]) if c in latest else (by_cell[c][0].cell_type or "")
+        for c in cell_ids
+    }
+    known = sorted({t for t in types.values() if t})
+    if not known:
+        raise FormgateError(f"lot {lot}: no cell names its cell type")
+    rule_set, cell_type = rulebook.for_cell_type(known[0])
+    notes = []
+    if len(known) > 1:
+        others = {rulebook.for_cell_type(t)[0].name for t in known[1:]}
+        if others != {rule_set.name}:
+            raise FormgateError(
+                f"lot {lot} holds cells of types judged by different rule sets "
+                f"({', '.join(known)}); a lot's screens need one rule set"
+            )
+        notes.append(f"the lot holds {len(known)} cell types: {', '.join(known)}")
+    checks, screens, grades = _lot_specs(rule_set, cell_type)
+    first: dict[str, tuple[list[StageRecord], dict[str, float | None], tuple[tuple[str, str, str], ...]]]
+    first = {}
+    files = sha256 or {}
+    for cell in cell_ids:
+        records: list[StageRecord] = []
+        values: dict[str, float | None] = {}
+        shown: list[tuple[str, str, str]] = []
+        if cell in latest:
+            doc = latest[cell]
+            records.append(_cycle_record(doc))
+            values.update({k: v for k, v in doc["metrics"].items()})
+            shown.append(("formation+grading", str(doc["input"]["name"]), str(doc["input"]["sha256"])))
+        if cell in by_cell:
+            ct = rule_set.cell_type(types[cell]) or cell_type
+            aging = judge_aging(by_cell[cell], rule_set, ct)
+            verdict = aging.verdict.kind.value
+            reason = "" if verdict == "pass" else decision_line(aging.verdict, aging.notes)
+            hazards = tuple(h.value for h in aging.verdict.hazards)
+            sources = sorted({source_of[id(r)] for r in by_cell[cell]})
+            records.append(StageRecord(AGING, verdict, reason, hazards, ", ".join(sources)))
+            values.update(aging.values)
+            for name in sources:
+                shown.append(("aging", name, files.get(name, "")))
+        first[cell] = (records, values, tuple(shown))
+    before = {c: decide(rule_set.stages, recs) for c, (recs, _, _) in first.items()}
+    rows = [CellRow(c, before[c].verdict, v) for c, (_, v, _) in first.items()]
+    screened = lot_statistics(rows, checks, screens, grades)
+    flagged: dict[str, list[str]] = {}
+    for o in screened.outliers:
+        unit = RULE_BY_NAME[o.metric].unit if o.metric in RULE_BY_NAME else ""
+        flagged.setdefault(o.cell_id, []).append(outlier_phrase(o, unit))
+    cells = []
+    for cell, (records, values, files_of_cell) in first.items():
+        decision = before[cell]
+        final = decision
+        if cell in flagged:
+            final = decide(rule_set.stages, records, flagged[cell])
+        grade = screened.grades.get(cell) if final.verdict == "pass" else None
+        when = latest[cell]["analysed_at"] if cell in latest else None
+        cells.append(
+            ClosedCell(
+                cell,
+                types[cell],
+                decision,
+                final,
+                grade,
+                values,
+                files_of_cell,
+                datetime.datetime.fromisoformat(str(when)) if when else None,
+            )
+        )
+    # the counts, the yield and the grades as decided at the close (outliers held, ungraded);
+    # the limits, outliers, spreads and Cpk as the screens were evaluated
+    as_closed = lot_statistics(
+        [CellRow(c.cell_id, c.decision.verdict, c.values) for c in cells], checks, (), grades
+    )
+    statistics = dataclasses.replace(
+        screened,
+        tally=as_closed.tally,
+        grades=as_closed.grades,
+        grade_counts=as_closed.grade_counts,
+        ungraded=as_closed.ungraded,
+    )
+    return ClosedLot(
+        lot, rule_set, tuple(known), tuple(cells), checks, screens, grades, statistics, tuple(notes)
+    )
+
