@@ -1,0 +1,619 @@
+"""The lot report: a PDF per lot for quality staff, and a one-row-per-cell CSV for plant systems.
+
+Both are pure functions of a :class:`LotReportInput`: no ledger, no clock, no files (the
+only times shown are the ones the input carries). The statistics come from
+:func:`pipeline.judge.lotstats.lot_statistics`, worked out once per report. The PDF goes
+through the same renderer as the certificates (pdf.py), so it gets the same shipped font,
+the same refusal of any URL outside templates/ and the same byte-for-byte repeatability.
+
+Every identifier from data (lot, cell ids, reasons, metric names) reaches the page through
+Jinja2's autoescaping; the histograms are SVG built here from numbers, with every text in
+them escaped before it is marked safe.
+
+A lot can hold 10,000 cells: the tables of failed cells and of outliers are capped
+(:data:`MAX_FAILED_ROWS`, :data:`MAX_OUTLIER_ROWS`) and say how many more the export holds,
+so the PDF stays a few pages long whatever the lot's size.
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime
+import functools
+import html
+import io
+import math
+from collections import Counter
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Final
+
+import jinja2
+import numpy as np
+from markupsafe import Markup
+
+from pipeline.judge.lotstats import (
+    Capability,
+    CellRow,
+    GradeClass,
+    LotStatistics,
+    Outlier,
+    RobustLimits,
+    ScreenSpec,
+    WindowSpec,
+    lot_statistics,
+)
+from pipeline.model import FloatArray, Hazard, frozen_mapping
+from pipeline.report import hazards, pdf
+from pipeline.report.certificate import (
+    DASH,
+    HAZARD_WORDS,
+    TEMPLATES_DIR,
+    format_time,
+    significant,
+)
+from pipeline.report.svgplot import (
+    CURVE,
+    FONT_MM,
+    Frame,
+    axes,
+    frame_for,
+    n,
+    no_data,
+    open_svg,
+    span,
+    text,
+)
+
+TEMPLATE_NAME: Final = "lot.html.j2"
+MAX_FAILED_ROWS: Final = 200  # rows of the failed/held table before "and N more: see the export"
+MAX_OUTLIER_ROWS: Final = 50  # outlier rows per screen, likewise
+# Histogram bins: the Freedman-Diaconis rule, kept within these bounds so that a tiny lot
+# still shows a shape and a huge one does not turn into a comb.
+MIN_BINS: Final = 5
+MAX_BINS: Final = 40
+# Cpk below 1.33 is the usual minimum for an established process (common practice).
+CPK_MINIMUM: Final = 1.33
+PLOT_WIDTH_MM: Final = 86.0
+PLOT_HEIGHT_MM: Final = 55.0
+OPEN_LOT_WORDS: Final = "lot open: figures may change"
+# Verdicts that keep a cell from release, in the order the report lists them.
+ATTENTION: Final = ("fail", "hold", "error")
+VERDICT_LABELS: Final = {"fail": "Failed", "hold": "Held for review", "error": "Not judged (error)",
+                         "pass": "Passed"}
+BAR = "#b9cadb"
+WINDOW_LINE = "#8b2e2a"
+LIMIT_LINE = CURVE
+# A CSV field starting with one of these can be run as a formula by a spreadsheet
+# (OWASP, "CSV Injection"): such a field from data is written with a leading single quote.
+FORMULA_STARTS: Final = ("=", "+", "-", "@", "\t", "\r")
+
+
+# -- the input ------------------------------------------------------------------------------
+
+
+def _aware(moment: datetime.datetime, what: str) -> None:
+    if moment.tzinfo is None or moment.utcoffset() is None:
+        raise ValueError(f"{what} must carry a time zone, not {moment.isoformat()}")
+
+
+@dataclass(frozen=True, slots=True)
+class LotCell:
+    """One cell of the lot as the ledger holds it.
+
+    ``verdict`` is pass, fail, hold or error; ``reason`` the deciding line of a fail or a
+    hold ("" for a pass); ``hazards`` the hazards of its failed checks (values of
+    :class:`pipeline.model.Hazard`); ``records`` the files its decision rests on, as
+    (stage or file kind, file name, SHA-256); ``decided_at`` when it was decided (aware).
+    """
+
+    cell_id: str
+    verdict: str
+    reason: str
+    grade: str | None
+    hazards: tuple[str, ...]
+    values: Mapping[str, float | None]
+    records: tuple[tuple[str, str, str], ...]
+    decided_at: datetime.datetime
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "values", frozen_mapping(dict(self.values)))
+        _aware(self.decided_at, f"cell {self.cell_id}: decided_at")
+
+
+@dataclass(frozen=True, slots=True)
+class RuleSetRef:
+    """The rule set a lot was judged by: name, revision, SHA-256 of its file, family."""
+
+    name: str
+    revision: str
+    sha256: str
+    family: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class LotReportInput:
+    """Everything a lot report shows. ``closed_at`` None means the lot is still open.
+
+    ``units``: metric -> unit text as printed ("" or missing for a plain number), for
+    example from :data:`pipeline.judge.metricdefs.BY_NAME`.
+    """
+
+    lot: str
+    cell_types: tuple[str, ...]
+    rule_set: RuleSetRef
+    station: str
+    generated_at: datetime.datetime
+    closed_at: datetime.datetime | None
+    cells: tuple[LotCell, ...]
+    checks: tuple[WindowSpec, ...]
+    screens: tuple[ScreenSpec, ...]
+    grades: tuple[GradeClass, ...]
+    units: Mapping[str, str]
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "units", frozen_mapping(dict(self.units)))
+        _aware(self.generated_at, "generated_at")
+        if self.closed_at is not None:
+            _aware(self.closed_at, "closed_at")
+
+
+# -- numbers in words -------------------------------------------------------------------------
+
+
+def _finite(value: float | None) -> bool:
+    return value is not None and math.isfinite(value)
+
+
+def _number(value: float | None, unit: str = "", digits: int = 4) -> str:
+    """``value`` to ``digits`` significant digits with its unit; an em dash when missing."""
+    if value is None or not math.isfinite(value):
+        return DASH
+    shown = significant(value, digits)
+    return f"{shown} {unit}" if unit else shown
+
+
+def _window_text(low: float | None, high: float | None, unit: str) -> str:
+    """A window as "low to high" (en dash), "≥ low", "≤ high" (with unit) or "any value"."""
+    tail = f" {unit}" if unit else ""
+    if low is not None and high is not None:
+        return f"{significant(low, 4)} \N{EN DASH} {significant(high, 4)}{tail}"
+    if low is not None:
+        return f"\N{GREATER-THAN OR EQUAL TO} {significant(low, 4)}{tail}"
+    if high is not None:
+        return f"\N{LESS-THAN OR EQUAL TO} {significant(high, 4)}{tail}"
+    return "any value"
+
+
+def yield_text(passed: int, total: int) -> str:
+    """The yield as a percentage to one decimal, e.g. "91.7 %"; an em dash for an empty lot.
+
+    >>> yield_text(55, 60), yield_text(0, 0)
+    ('91.7 %', '—')
+    """
+    return f"{100.0 * passed / total:.1f} %" if total else DASH
+
+
+def cpk_text(capability: Capability) -> tuple[str, str]:
+    """Cpk to two decimals and a note: "below 1.33", or why no Cpk could be worked out.
+
+    >>> from pipeline.judge.lotstats import capability
+    >>> cpk_text(capability([9.0, 10.0, 11.0], 7.0, 16.0))
+    ('1.00', 'below 1.33')
+    >>> cpk_text(capability([5.0], 0.0, 10.0))
+    ('—', 'fewer than 2 values')
+    """
+    if capability.cpk is None:
+        return DASH, capability.why
+    shown = f"{capability.cpk:.2f}".replace("-", "\N{MINUS SIGN}")
+    return shown, "below 1.33" if capability.cpk < CPK_MINIMUM else ""
+
+
+# -- histograms ---------------------------------------------------------------------------------
+
+
+def histogram_edges(values: FloatArray) -> FloatArray:
+    """Bin edges for the measured ``values``: Freedman-Diaconis, clipped to 5..40 bins.
+
+    The Freedman-Diaconis rule (Freedman & Diaconis 1981, "On the histogram as a density
+    estimator: L2 theory") sets the bin width to 2·IQR·n^(-1/3), robust to the few wild
+    values a lot of cells always has. numpy implements it; a count outside
+    [MIN_BINS, MAX_BINS] (one bin when the IQR is zero, thousands when a few outliers
+    stretch the range) is replaced by the nearest bound, with equal-width bins.
+
+    >>> len(histogram_edges(np.arange(100.0))) - 1
+    5
+    """
+    x = values[np.isfinite(values)]
+    if x.size == 0:
+        return np.linspace(0.0, 1.0, MIN_BINS + 1)
+    edges: FloatArray = np.histogram_bin_edges(x, bins="fd")
+    bins = len(edges) - 1
+    if MIN_BINS <= bins <= MAX_BINS:
+        return edges
+    clipped: FloatArray = np.histogram_bin_edges(x, bins=min(max(bins, MIN_BINS), MAX_BINS))
+    return clipped
+
+
+@dataclass(frozen=True, slots=True)
+class Marks:
+    """The vertical lines a histogram draws: the window (solid) and the lot limits (dashed)."""
+
+    window: tuple[float | None, float | None]
+    limits: tuple[float | None, float | None]
+
+
+def _vline(frame: Frame, x: float, colour: str, dashed: bool) -> str:
+    dash = ' stroke-dasharray="1.4 0.9"' if dashed else ""
+    return (
+        f'<path class="{"limit" if dashed else "window"}" d="M{n(frame.px(x))} {n(frame.top)}'
+        f'V{n(frame.top + frame.height)}" stroke="{colour}" stroke-width="0.4"{dash}/>'
+    )
+
+
+def _line_label(frame: Frame, x: float, word: str, colour: str, right_side: bool) -> list[str]:
+    """``word`` written upwards along the line at ``x``, from the top, on one side of it.
+
+    A white outline under the text keeps it readable where it crosses a bar.
+    """
+    xp = frame.px(x)
+    lx = xp + 0.5 + FONT_MM * 0.8 if right_side else xp - 0.6
+    ly = frame.top + 0.8
+    rotate = f' transform="rotate(-90 {n(lx)} {n(ly)})"'
+    return [
+        text(lx, ly, word, "end", extra=f' fill="#ffffff" stroke="#ffffff" stroke-width="0.6"{rotate}'),
+        text(lx, ly, word, "end", extra=f' fill="{colour}"{rotate}'),
+    ]
+
+
+def histogram_svg(
+    values: FloatArray, edges: FloatArray, marks: Marks, *, x_label: str,
+    width_mm: float = PLOT_WIDTH_MM, height_mm: float = PLOT_HEIGHT_MM,
+) -> str:
+    """Bars of the cells per bin, the window as solid lines, the lot limits as dashed ones.
+
+    Each line is labelled "window" or "lot limits" along its top, on the side facing the
+    middle of the window, so the meaning never rests on colour or dash alone. ``x_label``
+    is escaped here.
+    """
+    x = values[np.isfinite(values)]
+    counts = np.histogram(x, bins=edges)[0] if x.size else np.zeros(len(edges) - 1, dtype=np.int64)
+    lines = [v for v in (*marks.window, *marks.limits) if _finite(v)]
+    x_range = span(np.concatenate((edges, np.asarray(lines, dtype=np.float64))), (0.0, 1.0), 0.03)
+    top = max(8.0, float(counts.max(initial=0)) * 1.5)  # headroom for the line labels
+    frame = frame_for(width_mm, height_mm, x_range, (0.0, top))
+    parts = [open_svg(width_mm, height_mm, html.escape(f"histogram of {x_label}", quote=True))]
+    parts.extend(axes(frame, html.escape(x_label), "Cells"))
+    base = frame.py(0.0)
+    bars = []
+    for count, left, right in zip(counts.tolist(), edges[:-1].tolist(), edges[1:].tolist(), strict=True):
+        x0, x1, y = frame.px(left), frame.px(right), frame.py(float(count))
+        bars.append(
+            f'<rect class="bar" x="{n(x0)}" y="{n(y)}" width="{n(x1 - x0)}" height="{n(base - y)}" '
+            f'fill="{BAR}" stroke="#ffffff" stroke-width="0.15"/>'
+        )
+    parts.extend(bars)
+    if not x.size:
+        parts.append(no_data(frame, "no cell has a value"))
+    for pair, colour, dashed, word in (
+        (marks.window, WINDOW_LINE, False, "window"),
+        (marks.limits, LIMIT_LINE, True, "lot limits"),
+    ):
+        low, high = pair
+        for bound, right_side in ((low, True), (high, False)):
+            if bound is not None and math.isfinite(bound):
+                parts.append(_vline(frame, bound, colour, dashed))
+                parts.extend(_line_label(frame, bound, word, colour, right_side))
+    parts.append("</svg>")
+    return "\n".join(parts)
+
+
+# -- the report's context ----------------------------------------------------------------------
+
+
+def _rows(cells: Sequence[LotCell]) -> list[CellRow]:
+    return [CellRow(c.cell_id, c.verdict, c.values) for c in cells]
+
+
+def _hazard_title(name: str) -> str:
+    try:
+        return hazards.CAUTIONS[Hazard(name)].title
+    except ValueError:
+        return name.replace("_", " ")
+
+
+def _hazard_words(names: Iterable[str]) -> str:
+    words = []
+    for name in names:
+        try:
+            words.append(HAZARD_WORDS[Hazard(name)])
+        except ValueError:
+            words.append(name.replace("_", " "))
+    return ", ".join(words)
+
+
+def _caution(data: LotReportInput) -> dict[str, object] | None:
+    """The caution box: for a lot with a failed cell, or a held one whose record shows a hazard."""
+    failed = [c for c in data.cells if c.verdict == "fail"]
+    hazardous = [c for c in data.cells if c.verdict != "pass" and c.hazards]
+    if not failed and not hazardous:
+        return None
+    counts = Counter(h for c in data.cells if c.verdict != "pass" for h in dict.fromkeys(c.hazards))
+    order = [h.value for h in Hazard] + sorted(set(counts) - {h.value for h in Hazard})
+    items = []
+    for name in order:
+        if counts.get(name):
+            known = Hazard(name) if name in {h.value for h in Hazard} else None
+            items.append({
+                "title": _hazard_title(name),
+                "cells": f"{counts[name]} cell{'s' if counts[name] != 1 else ''}",
+                "text": hazards.CAUTIONS[known].text if known else "",
+            })
+    title = (
+        f"Caution: {len(failed)} cell{'s' if len(failed) != 1 else ''} of this lot failed "
+        "and may be hazardous" if failed else "Caution: held cells of this lot show a hazard"
+    )
+    return {
+        "title": title,
+        "items": items,
+        "handling": hazards.HANDLING if items else "",
+        "general": hazards.general_caution(data.rule_set.family),
+    }
+
+
+def _attention(cells: Sequence[LotCell]) -> tuple[list[dict[str, str]], int]:
+    """The failed, held and unjudged cells, fails first then by cell id, capped; and how many more."""
+    rank = {v: i for i, v in enumerate(ATTENTION)}
+    chosen = sorted((c for c in cells if c.verdict != "pass"),
+                    key=lambda c: (rank.get(c.verdict, len(rank)), c.cell_id))
+    rows = [
+        {"cell_id": c.cell_id, "verdict": c.verdict.upper(), "kind": c.verdict,
+         "reason": c.reason or DASH, "hazards": _hazard_words(c.hazards)}
+        for c in chosen[:MAX_FAILED_ROWS]
+    ]
+    return rows, max(0, len(chosen) - MAX_FAILED_ROWS)
+
+
+def _screen(limits: RobustLimits, found: Sequence[Outlier], unit: str) -> dict[str, object]:
+    sides = {"both": "both sides", "low": "low side", "high": "high side"}[limits.sides]
+    rows = [
+        {"cell_id": o.cell_id, "value": _number(o.value, unit), "side": o.side,
+         "limit": _number(o.low if o.side == "low" else o.high, unit)}
+        for o in found[:MAX_OUTLIER_ROWS]
+    ]
+    return {
+        "metric": limits.metric,
+        "k": f"{limits.k:g}",
+        "sides": sides,
+        "n": str(limits.n),
+        "median": _number(limits.median, unit),
+        "robust_sd": _number(limits.robust_sd, unit, 3),
+        "low": _number(limits.low, unit) if limits.low is not None else "open",
+        "high": _number(limits.high, unit) if limits.high is not None else "open",
+        "applied": "applied" if limits.applied else f"not applied: {limits.why}",
+        "outliers": rows,
+        "found": len(found),
+        "more": max(0, len(found) - MAX_OUTLIER_ROWS),
+    }
+
+
+def _capability_row(check: WindowSpec, cap: Capability, unit: str) -> dict[str, str]:
+    cpk, note = cpk_text(cap)
+    return {
+        "check": check.key,
+        "metric": check.metric,
+        "severity": check.severity,
+        "window": _window_text(check.low, check.high, unit),
+        "n": str(cap.n),
+        "mean": _number(cap.mean, unit),
+        "sd": _number(cap.sd, unit, 3),
+        "cpk": cpk,
+        "note": note,
+        "below": "below" if note == "below 1.33" else "",
+    }
+
+
+def _axis_label(metric: str, unit: str) -> str:
+    return f"{metric} ({unit})" if unit else metric
+
+
+def _histograms(
+    data: LotReportInput, stats: LotStatistics
+) -> list[dict[str, object]]:
+    """One histogram per checked metric, in the checks' order, over every cell with a value."""
+    screens = {limits.metric: limits for limits in stats.limits}
+    shown = []
+    for metric in dict.fromkeys(c.metric for c in data.checks):
+        x = np.array([c.values.get(metric) for c in data.cells], dtype=np.float64)
+        x = x[np.isfinite(x)]
+        edges = histogram_edges(x)
+        on = [c for c in data.checks if c.metric == metric]
+        lows = [c.low for c in on if c.low is not None]
+        highs = [c.high for c in on if c.high is not None]
+        window = (max(lows) if lows else None, min(highs) if highs else None)
+        limits = screens.get(metric)
+        lot_limits: tuple[float | None, float | None] = (None, None)
+        if limits is not None and limits.applied:
+            # a side the screen left to the window draws no second line on the window's own
+            lot_limits = (limits.low if limits.low != window[0] else None,
+                          limits.high if limits.high != window[1] else None)
+        unit = data.units.get(metric, "")
+        svg = histogram_svg(x, edges, Marks(window, lot_limits), x_label=_axis_label(metric, unit))
+        words = [f"{x.size} cell{'s' if x.size != 1 else ''} with a value", f"{len(edges) - 1} bins"]
+        lines = "solid lines: the window" if any(_finite(v) for v in window) else "no window"
+        if any(_finite(v) for v in lot_limits):
+            lines += "; dashed lines: the lot limits (robust screen)"
+        shown.append({
+            "metric": metric,
+            "bins": len(edges) - 1,
+            "svg": Markup(svg),  # numbers and escaped text only: see histogram_svg
+            "caption": f"{metric}: {', '.join(words)}; {lines}.",
+        })
+    return shown
+
+
+def _grades(data: LotReportInput, stats: LotStatistics) -> dict[str, object]:
+    passed = stats.tally.passed
+    rows = [(name, str(count)) for name, count in stats.grade_counts.items()]
+    differ = sum(
+        1 for c in data.cells if c.verdict == "pass" and c.grade != stats.grades.get(c.cell_id)
+    ) if data.grades else 0
+    return {
+        "rows": rows,
+        "ungraded": str(stats.ungraded),
+        "passed": str(passed),
+        "differ": differ,
+    }
+
+
+def lot_report_context(data: LotReportInput) -> dict[str, object]:
+    """Everything the lot template shows, formatted as strings (statistics worked out once)."""
+    stats = lot_statistics(_rows(data.cells), data.checks, data.screens, data.grades)
+    t = stats.tally
+    failed_rows, failed_more = _attention(data.cells)
+    by_metric: dict[str, list[Outlier]] = {}
+    for o in stats.outliers:
+        by_metric.setdefault(o.metric, []).append(o)
+    rs = data.rule_set
+    status = (f"closed at {format_time(data.closed_at)}" if data.closed_at is not None
+              else OPEN_LOT_WORDS)
+    return {
+        "title": f"Lot report {data.lot}",
+        "lot": data.lot,
+        "created": format_time(data.generated_at),
+        "open": data.closed_at is None,
+        "open_words": OPEN_LOT_WORDS,
+        "identity": [
+            ("Lot", data.lot),
+            ("Cell types", ", ".join(data.cell_types) or DASH),
+            ("Rule set", f"{rs.name}, revision {rs.revision}"),
+            ("Rule set SHA-256", rs.sha256),
+            ("Family", rs.family or "not declared"),
+            ("Station", data.station or DASH),
+            ("Generated at", format_time(data.generated_at)),
+            ("Status", status),
+        ],
+        "total": t.n,
+        "passed": t.passed,
+        "yield": yield_text(t.passed, t.n),
+        "verdicts": [
+            (VERDICT_LABELS.get(v, v), str(count),
+             f"{100.0 * count / t.n:.1f} %" if t.n else DASH)
+            for v, count in t.by_verdict.items()
+        ],
+        "grades": _grades(data, stats),
+        "has_grades": bool(data.grades),
+        "caution": _caution(data),
+        "data_check_notice": hazards.DATA_CHECK_NOTICE.replace("This certificate", "This report"),
+        "failed": failed_rows,
+        "failed_more": failed_more,
+        "screens": [
+            _screen(limits, by_metric.get(limits.metric, ()), data.units.get(limits.metric, ""))
+            for limits in stats.limits
+        ],
+        "capabilities": [
+            _capability_row(c, stats.capabilities[c.key], data.units.get(c.metric, ""))
+            for c in data.checks
+        ],
+        "cpk_minimum": f"{CPK_MINIMUM:.2f}",
+        "histograms": _histograms(data, stats),
+        "max_failed": MAX_FAILED_ROWS,
+        "max_outliers": MAX_OUTLIER_ROWS,
+    }
+
+
+@functools.lru_cache(maxsize=1)
+def _environment() -> jinja2.Environment:
+    return jinja2.Environment(
+        loader=jinja2.FileSystemLoader(str(TEMPLATES_DIR)),
+        autoescape=True,
+        undefined=jinja2.StrictUndefined,
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+
+
+def render_lot_report_html(data: LotReportInput) -> str:
+    """The lot report as HTML (well-formed XHTML, every value from data escaped)."""
+    return _environment().get_template(TEMPLATE_NAME).render(**lot_report_context(data))
+
+
+def render_lot_report_pdf(data: LotReportInput) -> bytes:
+    """The lot report as PDF bytes: same input, same bytes (the certificates' renderer)."""
+    return pdf.render_pdf(render_lot_report_html(data))
+
+
+# -- the export --------------------------------------------------------------------------------
+
+
+def guard_formula(field: str) -> str:
+    """``field`` with a leading single quote when a spreadsheet could take it for a formula.
+
+    OWASP's "CSV Injection" guidance: a cell starting with =, +, -, @ (or a tab or carriage
+    return) can be run as a formula when the file is opened in a spreadsheet, so a text
+    field from data that starts with one is written with a leading ' (the quote shows; a
+    reader stripping it gets the original back). Numbers written by the export itself are
+    never guarded: a negative value stays a number.
+
+    >>> guard_formula("=1+1"), guard_formula("C-0001")
+    ("'=1+1", 'C-0001')
+    """
+    return "'" + field if field.startswith(FORMULA_STARTS) else field
+
+
+def export_metrics(data: LotReportInput) -> list[str]:
+    """The metric columns: the checks' metrics in order, then every other metric sorted."""
+    first = list(dict.fromkeys(c.metric for c in data.checks))
+    rest = {m for c in data.cells for m in c.values} - set(first)
+    return first + sorted(rest)
+
+
+def _value_field(value: float | None) -> str:
+    """repr of a float (it reads back to the same float); empty when not measured."""
+    return repr(float(value)) if value is not None and math.isfinite(value) else ""
+
+
+def lot_export_csv(data: LotReportInput) -> bytes:
+    """The lot as UTF-8 CSV: one header row, then one row per cell sorted by cell id.
+
+    Columns: lot, cell_id, verdict, grade, reason, hazards (";"-joined), one per metric
+    (:func:`export_metrics`), records ("stage:file:sha256", ";"-joined), decided_at (ISO
+    8601). A value not measured (None, NaN or infinite, as the lot statistics treat it) is
+    an empty field, never 0; others are written as Python's repr, which reads back to the
+    same float. Text fields from data go through :func:`guard_formula`.
+    """
+    metrics = export_metrics(data)
+    out = io.StringIO(newline="")
+    writer = csv.writer(out, lineterminator="\r\n")
+    writer.writerow(["lot", "cell_id", "verdict", "grade", "reason", "hazards",
+                     *metrics, "records", "decided_at"])
+    for cell in sorted(data.cells, key=lambda c: c.cell_id):
+        records = ";".join(f"{stage}:{name}:{sha}" for stage, name, sha in cell.records)
+        writer.writerow([
+            guard_formula(data.lot),
+            guard_formula(cell.cell_id),
+            guard_formula(cell.verdict),
+            guard_formula(cell.grade or ""),
+            guard_formula(cell.reason),
+            guard_formula(";".join(cell.hazards)),
+            *(_value_field(cell.values.get(m)) for m in metrics),
+            guard_formula(records),
+            cell.decided_at.isoformat(),
+        ])
+    return out.getvalue().encode("utf-8")
+
+
+__all__ = [
+    "LotCell",
+    "LotReportInput",
+    "RuleSetRef",
+    "export_metrics",
+    "guard_formula",
+    "histogram_edges",
+    "histogram_svg",
+    "lot_export_csv",
+    "lot_report_context",
+    "render_lot_report_html",
+    "render_lot_report_pdf",
+    "yield_text",
+]
