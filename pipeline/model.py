@@ -491,6 +491,16 @@ FAMILIES: tuple[str, ...] = ("lithium-ion", "sodium-ion")
 # The stages of a cell's making that formgate judges: a cycle file holds formation and
 # grading; the aging stage is the open-circuit-voltage readings between them.
 STAGES: tuple[str, ...] = ("formation", "aging", "grading")
+# What a cycle file's ``stage`` metadata may say, and the stages each value covers. A file
+# without it holds the whole program, formation and grading.
+WHOLE_PROGRAM: tuple[str, ...] = ("formation", "grading")
+CYCLE_FILE_STAGES: Mapping[str, tuple[str, ...]] = frozen_mapping(
+    {
+        "formation": ("formation",),
+        "grading": ("grading",),
+        "formation+grading": WHOLE_PROGRAM,
+    }
+)
 SCREEN_SIDES: tuple[str, ...] = ("both", "low", "high")
 
 
@@ -619,6 +629,7 @@ class CellResult:
     analysed_at: datetime.datetime
     software_version: str
     current_band: CurrentBand | None = None  # how rest was told from current (segmentation)
+    stages: tuple[str, ...] = WHOLE_PROGRAM  # the stages the cycle file covers (its metadata)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
