@@ -8,6 +8,7 @@ pauses half way (never judged half) and one that never comes back (held as incom
 from __future__ import annotations
 
 import dataclasses
+import functools
 import time
 from pathlib import Path
 
@@ -26,7 +27,9 @@ RULEBOOK = load_rules_dir(RULES_DIR)
 CELL = demo.DEMO_CELLS[0]
 
 
+@functools.cache
 def _text(interval_s: float = 10.0) -> str:
+    """The demo cell's file at ``interval_s``, simulated once per interval (a str: nothing can alter it)."""
     rng = demo._seed_for(CELL, 2026)
     recipe = dataclasses.replace(demo.demo_recipe(CELL, rng), sample_interval_s=interval_s)
     return synth.to_cycle_file(synth.simulate_formation(recipe, rng), demo.demo_metadata(CELL))
