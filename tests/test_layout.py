@@ -8,6 +8,7 @@ counts as much as one at the top.
 from __future__ import annotations
 
 import ast
+import functools
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 
@@ -41,7 +42,8 @@ def module_name(path: Path) -> str:
     return ".".join(parts)
 
 
-def imports_of(source: str, name: str) -> set[str]:
+@functools.cache  # a function of the text alone: each test parses only what it changed
+def imports_of(source: str, name: str) -> frozenset[str]:
     """The pipeline modules ``source`` (module ``name``) imports, anywhere in it."""
     found: set[str] = set()
     package = name.rsplit(".", 1)[0]  # the package relative imports start from
@@ -59,7 +61,7 @@ def imports_of(source: str, name: str) -> set[str]:
             found.add(module)
             # "from pipeline.x import y" may import the module pipeline.x.y
             found.update(f"{module}.{a.name}" for a in node.names)
-    return found
+    return frozenset(found)
 
 
 def graph(sources: Mapping[str, str]) -> dict[str, set[str]]:
