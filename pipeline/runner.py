@@ -19,7 +19,7 @@ from pipeline.judge.metrics import measure
 from pipeline.judge.segmentation import split_steps
 from pipeline.model import CellResult, RuleSetRef, SourceRef, VerdictKind
 from pipeline.names import safe_name
-from pipeline.read.cyclefile import read_cycle_file
+from pipeline.read.cyclefile import file_stages, read_cycle_file
 from pipeline.read.profile import Profile
 from pipeline.read.validate import drop_invalid_rows, validate_trace
 from pipeline.report.result import to_json
@@ -43,6 +43,7 @@ def judge(
     rule set, or is implausible; that is the ``error`` verdict, with its reason.
     """
     trace = read_cycle_file(data, name, profile, max_uncompressed_bytes=max_uncompressed_bytes)
+    stages = file_stages(trace.metadata)  # a file of one stage is judged on that stage's checks
     rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
     notes = validate_trace(trace, cell_type)
     trace = drop_invalid_rows(trace)
@@ -55,9 +56,10 @@ def judge(
         program=rule_set.program,
         dcir_pulse_s=rule_set.dcir_pulse_s,
         relax_s=rule_set.relax_s,
+        stages=stages,
     )
     all_notes = trace.notes + notes + segmentation.notes + metrics.notes
-    verdict = evaluate(rule_set, cell_type, metrics, all_notes)
+    verdict = evaluate(rule_set, cell_type, metrics, all_notes, stages=stages)
     return CellResult(
         # certificates name files, not the folders of the machine that judged them
         source_name=Path(name).name,
@@ -78,6 +80,7 @@ def judge(
         analysed_at=analysed_at,
         software_version=__version__,
         current_band=segmentation.band,
+        stages=stages,
     )
 
 

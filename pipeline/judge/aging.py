@@ -62,5 +62,5 @@ def judge_aging(readings: Sequence[Reading], rule_set: RuleSet, cell_type: CellT
         raise ValueError("a cell's aging stage needs at least one reading")
     values, k, notes = aging_values(readings, rule_set)
     metrics = CellMetrics(values, (), (), ())
-    verdict = evaluate(rule_set, cell_type, metrics, notes, aging=True)
+    verdict = evaluate(rule_set, cell_type, metrics, notes, stages=("aging",))
     return AgingResult(readings[0].cell_id, values, k, verdict, notes)

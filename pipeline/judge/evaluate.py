@@ -13,10 +13,11 @@ is rulebook.py's job; wording cautions is hazards.py's.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Iterable
 
-from pipeline.judge.metricdefs import AGING_METRIC_NAMES, METRIC_NAMES, RULE_BY_NAME
+from pipeline.judge.metricdefs import FORMATION, GRADING, RULE_BY_NAME, judged_on
 from pipeline.judge.program import HOLDING_CODES, INCOMPLETE, MISMATCH
 from pipeline.model import (
     CellMetrics,
@@ -25,6 +26,7 @@ from pipeline.model import (
     Hazard,
     Note,
     Outcome,
+    Program,
     Rule,
     RuleSet,
     Severity,
@@ -32,6 +34,8 @@ from pipeline.model import (
     VerdictKind,
     Window,
 )
+
+WHOLE: tuple[str, ...] = (FORMATION, GRADING)
 
 
 def format_number(value: float) -> str:
@@ -139,19 +143,48 @@ def _blockers(notes: Iterable[Note]) -> dict[str, str]:
     return {metric: "; ".join(texts) for metric, texts in found.items()}
 
 
+def cycles_lacking(stages: tuple[str, ...], program: Program) -> int | None:
+    """How many of the program's cycles a record of ``stages`` does not hold (None: unknown).
+
+    A formation record lacks the grading cycle; a grading record lacks the formation
+    cycles, which only the program's ``cycles`` tells; a record of both lacks none.
+    """
+    if FORMATION in stages and GRADING in stages:
+        return 0
+    if FORMATION in stages:
+        return 1
+    return None if program.cycles is None else program.cycles - 1
+
+
+def _for_stage(rule: Rule, lacking: int) -> Rule:
+    """``rule`` as it applies to a record of one stage: a cycle count window moved down by
+    the cycles that stage does not hold (a window on the whole program's count)."""
+    if rule.metric != "cycle_count" or lacking == 0:
+        return rule
+    low, high = rule.window.low, rule.window.high
+    window = Window(
+        None if low is None else max(0.0, low - lacking),
+        None if high is None else max(0.0, high - lacking),
+    )
+    return dataclasses.replace(rule, window=window)
+
+
 def evaluate(
     rule_set: RuleSet,
     cell_type: CellType,
     metrics: CellMetrics,
     notes: tuple[Note, ...] = (),
     *,
-    aging: bool = False,
+    stages: tuple[str, ...] = WHOLE,
 ) -> Verdict:
-    """Judge one cell against the rules of ``rule_set`` that apply to ``cell_type``.
+    """Judge one cell's record of ``stages`` against the rules of ``rule_set`` for ``cell_type``.
 
-    A cycle file is judged on the checks of the cycle metrics; with ``aging`` the
-    cell's aging readings are judged on the checks of the aging metrics
-    (metricdefs.AGING_METRICS). Neither ever judges the other's checks.
+    A record is judged on the checks of its stages' metrics only (metricdefs.MetricDef
+    ``stages``): a cycle file of the whole program on every cycle-file metric, one of
+    formation or of grading on that stage's and on those every cycle file has, the
+    aging readings (``stages=("aging",)``) on the aging metrics. A check of another
+    stage is left out: it is judged on that stage's record. ``cycle_count`` is judged
+    against the stage's own share of the program (:func:`cycles_lacking`).
 
     ``notes`` are the data-quality notes of reading and segmenting the file; the
     notes in ``metrics.notes`` count as well. A check whose metric a note blocks,
@@ -164,9 +197,13 @@ def evaluate(
     all_notes = (*notes, *metrics.notes)
     blockers = _blockers(all_notes)
     holding, quiet = program_findings(all_notes)
-    stage_metrics = AGING_METRIC_NAMES if aging else METRIC_NAMES
+    stage_metrics = judged_on(stages)
+    lacking = cycles_lacking(stages, rule_set.program) if GRADING in stages or FORMATION in stages else 0
+    if lacking is None:
+        why = "the rule set's [program] does not give its cycles, so a grading record's share is unknown"
+        blockers["cycle_count"] = "; ".join(filter(None, (blockers.get("cycle_count"), why)))
     checks = tuple(
-        _check(rule, cell_type, metrics, blockers)
+        _check(_for_stage(rule, lacking or 0), cell_type, metrics, blockers)
         for rule in rule_set.rules
         if _applies(rule, cell_type) and rule.metric in stage_metrics
     )

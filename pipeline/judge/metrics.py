@@ -13,14 +13,16 @@ import math
 
 import numpy as np
 
-from pipeline.judge.metricdefs import METRIC_NAMES
+from pipeline.judge.metricdefs import FORMATION, GRADING, METRIC_NAMES, judged_on
 from pipeline.judge.plateaus import find_plateaus
 from pipeline.judge.program import (
     FIRST_CYCLE_METRICS,
     GRADING_METRICS,
     INCOMPLETE,
+    check_formation,
     choose_grading,
     final_rest,
+    stage_program,
 )
 from pipeline.judge.segmentation import sample_weights
 from pipeline.judge.thin import thin_series
@@ -271,13 +273,47 @@ def _plateau_values(
     return plateaus, analysis.ica_peaks_v, analysis.curve, analysis.ica, None
 
 
-def _blame_the_cut(notes: list[Note], values: dict[str, float | None]) -> list[Note]:
-    """A cut record's note also names every metric it left unmeasured that no other note names."""
+def _first_cycle(
+    values: dict[str, float | None],
+    trace: Trace,
+    cycles: tuple[CycleMetrics, ...],
+    finished: bool,
+    notes: list[Note],
+) -> list[Note]:
+    """Fill the first-cycle metrics of ``values`` from cycle 1; a note when it was not finished."""
+    if cycles and finished and cycles[0].coulombic_efficiency is not None:
+        values["first_cycle_efficiency"] = cycles[0].coulombic_efficiency
+        values["irreversible_capacity_Ah"] = cycles[0].charge_capacity_ah - (
+            cycles[0].discharge_capacity_ah or 0.0
+        )
+        return []
+    if cycles and not any(n.code == INCOMPLETE for n in notes):
+        return [
+            Note(
+                "first_cycle_unfinished",
+                "the record ends before the first cycle's discharge was finished, so the "
+                "initial coulombic efficiency is not measured",
+                SourceRef(trace.source, trace.line_of(len(trace) - 1)),
+                FIRST_CYCLE_METRICS,
+            )
+        ]
+    return []
+
+
+def _blame_the_cut(
+    notes: list[Note], values: dict[str, float | None], judged: tuple[str, ...] = METRIC_NAMES
+) -> list[Note]:
+    """A cut record's note also names every metric it left unmeasured that no other note names.
+
+    Only the metrics the record is ``judged`` on: another stage's are not its to measure.
+    """
     cut = next((n for n in notes if n.code == INCOMPLETE), None)
     if cut is None:
         return notes
     named = {m for n in notes for m in n.blocks}
-    missing = tuple(k for k, v in values.items() if v is None and k not in named)
+    missing = tuple(
+        k for k, v in values.items() if v is None and k not in named and k in judged
+    )
     whole = dataclasses.replace(cut, blocks=cut.blocks + missing)
     return [whole if n is cut else n for n in notes]
 
@@ -290,34 +326,29 @@ def measure(
     program: Program | None = None,
     dcir_pulse_s: float = 10.0,
     relax_s: float = 600.0,
+    stages: tuple[str, ...] = (FORMATION, GRADING),
 ) -> CellMetrics:
     """Every metric of one cell; a value that cannot be measured is None, with a note saying why.
 
     The grading cycle is the one ``program`` names (program.py); a record cut short
     before it gets a note that holds the cell, and its grading metrics stay None.
+    A record of one stage (``stages``) holds that stage's part of the program
+    (program.stage_program) and is measured on its stage's metrics only: a formation
+    record has no grading cycle, a grading record's cycle 1 is its grading cycle and
+    never a formation cycle; the other stage's metrics stay None, with no note.
     """
     steps = segmentation.steps
     cycles = tuple(measure_cycle(trace, steps, c) for c in segmentation.cycles)
-    program = program or Program()
-    choice = choose_grading(trace, segmentation, program)
+    program = stage_program(program or Program(), stages)
+    if GRADING in stages:
+        choice = choose_grading(trace, segmentation, program)
+    else:
+        choice = check_formation(trace, segmentation, program)
     notes: list[Note] = list(choice.notes)
     values: dict[str, float | None] = dict.fromkeys(METRIC_NAMES)
     values["cycle_count"] = float(sum(1 for c in segmentation.cycles if c.complete))
-    if cycles and choice.first_cycle_finished and cycles[0].coulombic_efficiency is not None:
-        values["first_cycle_efficiency"] = cycles[0].coulombic_efficiency
-        values["irreversible_capacity_Ah"] = cycles[0].charge_capacity_ah - (
-            cycles[0].discharge_capacity_ah or 0.0
-        )
-    elif cycles and not any(n.code == INCOMPLETE for n in notes):
-        notes.append(
-            Note(
-                "first_cycle_unfinished",
-                "the record ends before the first cycle's discharge was finished, so the "
-                "initial coulombic efficiency is not measured",
-                SourceRef(trace.source, trace.line_of(len(trace) - 1)),
-                FIRST_CYCLE_METRICS,
-            )
-        )
+    if FORMATION in stages:  # a grading record's cycle 1 is its grading cycle
+        notes += _first_cycle(values, trace, cycles, choice.first_cycle_finished, notes)
     charge_v = [c.max_charge_voltage_v for c in cycles if c.max_charge_voltage_v is not None]
     discharge_v = [
         c.min_discharge_voltage_v for c in cycles if c.min_discharge_voltage_v is not None
@@ -369,7 +400,7 @@ def measure(
             values, trace, steps, grading, plateau_settings
         )
         notes += [note] if note else []
-    elif not choice.notes:
+    elif not choice.notes and GRADING in stages:
         notes.append(
             Note(
                 "no_complete_cycle",
@@ -381,7 +412,7 @@ def measure(
     for key, value in values.items():
         if value is not None and not math.isfinite(value):
             values[key] = None
-    notes = _blame_the_cut(notes, values)
+    notes = _blame_the_cut(notes, values, judged_on(stages))
     return CellMetrics(
         values,
         cycles,

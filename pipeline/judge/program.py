@@ -14,8 +14,10 @@ that need the missing part are not measured, and the cell is held.
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
+from pipeline.judge.metricdefs import FORMATION, GRADING
 from pipeline.model import (
     Cycle,
     Note,
@@ -103,13 +105,57 @@ def describe_end(trace: Trace, segmentation: Segmentation) -> str:
     return what + (f" ({', '.join(details)})" if details else "") + f", {hours:.1f} h after the start"
 
 
-def _incomplete(trace: Trace, segmentation: Segmentation, missing: str) -> Note:
+def _incomplete(
+    trace: Trace, segmentation: Segmentation, missing: str, blocks: tuple[str, ...] = GRADING_METRICS
+) -> Note:
     return Note(
         INCOMPLETE,
         f"program incomplete: record ends in {describe_end(trace, segmentation)}, {missing}",
         SourceRef(trace.source, trace.line_of(len(trace) - 1)),
-        GRADING_METRICS,
+        blocks,
     )
+
+
+def stage_program(program: Program, stages: tuple[str, ...]) -> Program:
+    """The part of ``program`` that a record of ``stages`` holds.
+
+    The whole program for a record of formation and grading. A formation record holds
+    the formation cycles (the program's cycles but the last, at least one), perhaps
+    followed by a charge to a storage level and a rest, so no final rest is asked of
+    it. A grading record holds one cycle, the grading cycle, and the final rest; the
+    program's ``grading_step`` numbers a step of the whole program, so it is not looked
+    for in a grading record, whose steps its own program numbers.
+    """
+    if FORMATION in stages and GRADING in stages:
+        return program
+    if GRADING in stages:
+        return dataclasses.replace(program, cycles=1, grading_step=None)
+    cycles = None if program.cycles is None else max(1, program.cycles - 1)
+    return dataclasses.replace(program, cycles=cycles, grading_step=None, final_rest_s=None)
+
+
+def check_formation(trace: Trace, segmentation: Segmentation, program: Program) -> GradingChoice:
+    """A formation record's cycles against its program (:func:`stage_program` of formation).
+
+    No grading cycle is looked for. A record that ends before the discharge of its last
+    formation cycle (or of cycle 1, when the program does not say how many) was
+    finished is incomplete; more finished cycles than the program runs is another program.
+    """
+    steps, cycles = segmentation.steps, segmentation.cycles
+    finished = [c for c in cycles if discharge_finished(trace, steps, c, program)]
+    first_ok = bool(cycles) and cycles[0] in finished
+    expected = program.cycles or 1
+    blocks = (*FIRST_CYCLE_METRICS, "cycle_count")
+    if len(finished) < expected:
+        missing = f"before the discharge of cycle {expected} (the last formation cycle) was finished"
+        return _none(first_ok, _incomplete(trace, segmentation, missing, blocks))
+    if program.cycles is not None and len(finished) > expected:
+        text = (
+            f"the formation record holds {len(finished)} charge-discharge cycles where the "
+            f"program's formation has {expected}"
+        )
+        return _none(first_ok, Note(MISMATCH, text, SourceRef(trace.source)))
+    return GradingChoice(None, first_ok, ())
 
 
 def _none(first_ok: bool, note: Note) -> GradingChoice:

@@ -5,17 +5,19 @@ nothing can tell) or the reason it looks cut short out. A writer that pauses lea
 file that is quiet and ends on a whole line, yet holds only part of a record: size,
 time and a final newline cannot tell. The rule set's program can: a record whose program
 ends with a final rest of ``final_rest_s`` is finished only when it ends in a rest that
-long. The station asks this before it takes a file in settle hand-over, and waits a
-while longer for one that looks cut (docs/station.md); the judge still holds a record
-that is cut short, whatever the station did.
+long; a formation file (``# stage: formation``) has no such rest, so nothing here can
+tell it is cut (the judge holds one that ends before its formation cycles are done).
+The station asks this before it takes a file in settle hand-over, and waits a while
+longer for one that looks cut (docs/station.md); the judge still holds a record that is
+cut short, whatever the station did.
 """
 
 from __future__ import annotations
 
 from pipeline.errors import FormgateError
-from pipeline.judge.program import FINAL_REST_SHARE
+from pipeline.judge.program import FINAL_REST_SHARE, stage_program
 from pipeline.judge.rest_band import estimate_band
-from pipeline.read.cyclefile import read_cycle_file
+from pipeline.read.cyclefile import file_stages, read_cycle_file
 from pipeline.read.profile import Profile
 from pipeline.rulebook.book import RuleBook
 
@@ -54,7 +56,9 @@ def looks_cut(data: bytes, name: str, rulebook: RuleBook, profile: Profile | Non
         rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
     except FormgateError:
         return None
-    final_rest_s = rule_set.program.final_rest_s
+    # a formation file's program ends with its last formation cycle, perhaps a charge to a
+    # storage level and a rest of no set length: only the judge can tell it was cut short
+    final_rest_s = stage_program(rule_set.program, file_stages(trace.metadata)).final_rest_s
     if final_rest_s is None or len(trace) < 2:
         return None
     one_c_a = cell_type.nominal_capacity_ah

@@ -20,6 +20,7 @@ import io
 import math
 import re
 import zlib
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import TypeVar
 
@@ -27,7 +28,14 @@ import numpy as np
 import pandas as pd
 
 from pipeline.errors import InputError
-from pipeline.model import FloatArray, IntArray, SourceRef, Trace
+from pipeline.model import (
+    CYCLE_FILE_STAGES,
+    WHOLE_PROGRAM,
+    FloatArray,
+    IntArray,
+    SourceRef,
+    Trace,
+)
 from pipeline.read.profile import (
     CURRENT_SIGNS,
     CURRENT_UNITS,
@@ -283,6 +291,7 @@ def _collect_metadata(head: _Head, name: str, profile: Profile) -> dict[str, str
             metadata[key] = value.strip()
     for key, value in profile.metadata.items():
         metadata.setdefault(key, value)
+    _check_stage(metadata, head, name, profile)
     for key in REQUIRED_METADATA:
         if key in head.metadata_lines and not metadata[key]:
             raise InputError(
@@ -303,6 +312,37 @@ def _collect_metadata(head: _Head, name: str, profile: Profile) -> dict[str, str
                 ),
             )
     return metadata
+
+
+def _check_stage(metadata: dict[str, str], head: _Head, name: str, profile: Profile) -> None:
+    """Refuse a ``stage`` that is not one a cycle file may hold, naming its line."""
+    stage = metadata.get("stage")
+    if stage is None or stage in CYCLE_FILE_STAGES:
+        return
+    allowed = ", ".join(CYCLE_FILE_STAGES)
+    if "stage" in head.metadata_lines:
+        where, origin = SourceRef(name, head.metadata_lines["stage"]), "the file"
+    elif "stage" in profile.metadata and profile.metadata["stage"] == stage:
+        where, origin = SourceRef(name), f"the import profile {profile.name}"
+    else:
+        where, origin = SourceRef(name), "the file name"
+    raise InputError(
+        f"metadata stage is '{stage}' in {origin}, not a stage a cycle file may hold",
+        where,
+        f"Give one of: {allowed}; or leave the stage out for a file of the whole program.",
+    )
+
+
+def file_stages(metadata: Mapping[str, str]) -> tuple[str, ...]:
+    """The stages of a cell's making a read file covers: its ``stage``, else the whole program.
+
+    ``metadata`` is a Trace's, so its stage has been checked.
+
+    >>> file_stages({"stage": "grading"}), file_stages({})
+    (('grading',), ('formation', 'grading'))
+    """
+    stage = metadata.get("stage")
+    return WHOLE_PROGRAM if stage is None else CYCLE_FILE_STAGES[stage]
 
 
 def _find_columns(head: _Head, name: str, profile: Profile) -> dict[str, int]:

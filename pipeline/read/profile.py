@@ -38,7 +38,11 @@ V1_COLUMNS: Mapping[str, str] = frozen_mapping(
     }
 )
 REQUIRED_METADATA: tuple[str, ...] = ("cell_id", "lot", "cell_type")
-V1_METADATA: tuple[str, ...] = (*REQUIRED_METADATA, "channel", "station", "program", "started_at")
+# ``stage``: the stage of the cell's making the file holds (model.CYCLE_FILE_STAGES); left
+# out, the file holds the whole program.
+V1_METADATA: tuple[str, ...] = (
+    *REQUIRED_METADATA, "channel", "station", "program", "started_at", "stage"
+)
 
 # Factors that turn file units into the v1 units (s, V, A).
 TIME_UNITS: Mapping[str, float] = frozen_mapping({"s": 1.0, "ms": 1e-3, "min": 60.0, "h": 3600.0})
@@ -88,7 +92,8 @@ PROFILE_KEYS: tuple[ProfileKey, ...] = (
         "regular expression with named groups",
         "none",
         "searched in the file's name; each named group becomes a metadata value "
-        "(e.g. `(?P<lot>[^_]+)_(?P<cell_id>[^_.]+)`); a file whose name does not match is refused",
+        "(e.g. `(?P<lot>[^_]+)_(?P<cell_id>[^_.]+)`, or `_(?P<stage>formation|grading)[.]` for "
+        "a file of one stage); a file whose name does not match is refused",
     ),
     *(
         ProfileKey(
@@ -115,8 +120,9 @@ PROFILE_KEYS: tuple[ProfileKey, ...] = (
         "*",
         "text",
         "none",
-        'fixed metadata for every file read with the profile, e.g. cell_type = "DEMO-LFP-20A"; '
-        "a value in the file or its name wins over it",
+        'fixed metadata for every file read with the profile, e.g. cell_type = "DEMO-LFP-20A" '
+        'or stage = "grading" (formation, grading or formation+grading; left out, a file holds '
+        "the whole program); a value in the file or its name wins over it",
     ),
 )
 _KEYS_BY_TABLE: dict[str, tuple[str, ...]] = {}

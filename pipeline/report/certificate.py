@@ -21,6 +21,7 @@ from pipeline import shipped
 from pipeline.judge.evaluate import deciding, phrase, program_findings
 from pipeline.judge.metricdefs import BY_NAME
 from pipeline.model import (
+    WHOLE_PROGRAM,
     CellResult,
     CheckResult,
     CurrentBand,
@@ -327,6 +328,30 @@ def _evidence(result: CellResult) -> list[dict[str, object]]:
     return shown
 
 
+def stage_words(stages: tuple[str, ...]) -> str:
+    """The stages a record covers, in words.
+
+    >>> stage_words(("formation",)), stage_words(("formation", "grading"))
+    ('formation', 'formation and grading')
+    """
+    return " and ".join(stages)
+
+
+def stage_scope(stages: tuple[str, ...]) -> str:
+    """What a record of one stage is judged on, and where the other stage's checks are judged.
+
+    Empty for a record of the whole program: it is judged on every cycle-file check.
+    """
+    others = [s for s in WHOLE_PROGRAM if s not in stages]
+    if not others:
+        return ""
+    return (
+        f"This record holds the {stage_words(stages)} stage only: it is judged on that "
+        f"stage's checks and on those every cycle file has. The {stage_words(tuple(others))} "
+        f"checks are judged on the cell's {stage_words(tuple(others))} record."
+    )
+
+
 def _identity(result: CellResult) -> list[tuple[str, str]]:
     meta = result.metadata
     ct = result.cell_type
@@ -337,6 +362,7 @@ def _identity(result: CellResult) -> list[tuple[str, str]]:
         ("Channel", meta.get("channel") or DASH),
         ("Station", meta.get("station") or DASH),
         ("Program", meta.get("program") or DASH),
+        ("Stage", stage_words(result.stages)),
     ]
     if meta.get("started_at"):
         rows.append(("Started at", meta["started_at"]))
@@ -403,7 +429,10 @@ def build_context(result: CellResult) -> dict[str, object]:
             "sections": _decision(result),
         },
         "identity": _identity(result),
-        "other_metadata": [(k, v) for k, v in result.metadata.items() if k not in IDENTITY_KEYS],
+        "other_metadata": [
+            (k, v) for k, v in result.metadata.items() if k not in IDENTITY_KEYS and k != "stage"
+        ],
+        "stage_scope": stage_scope(result.stages),
         "checks": [_check_row(c, c in decided) for c in result.verdict.checks],
         "cautions": cautions,
         "handling": hazards.HANDLING if cautions else "",

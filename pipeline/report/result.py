@@ -14,6 +14,7 @@ from pipeline.judge.evaluate import decision_line
 from pipeline.judge.metricdefs import METRICS
 from pipeline.model import (
     FAMILIES,
+    WHOLE_PROGRAM,
     CellResult,
     CheckResult,
     CurrentBand,
@@ -88,7 +89,11 @@ def to_document(result: CellResult) -> dict[str, Any]:
     return {
         "schema_version": SCHEMA_VERSION,
         "cell": {key: meta.get(key) for key in IDENTITY_KEYS},
-        "other_metadata": {k: v for k, v in meta.items() if k not in IDENTITY_KEYS},
+        # the stages of the cell's making the file covers: its ``stage`` metadata, in words
+        "stages": list(result.stages),
+        "other_metadata": {
+            k: v for k, v in meta.items() if k not in IDENTITY_KEYS and k != "stage"
+        },
         "input": {"name": result.source_name, "sha256": result.input_sha256},
         "rule_set": {
             "name": result.rule_set.name,
@@ -156,6 +161,7 @@ def schema() -> dict[str, Any]:
         "required": [
             "schema_version",
             "cell",
+            "stages",
             "other_metadata",
             "input",
             "rule_set",
@@ -182,6 +188,14 @@ def schema() -> dict[str, Any]:
                 "additionalProperties": False,
                 "required": list(IDENTITY_KEYS),
                 "properties": {k: _STR for k in IDENTITY_KEYS},
+            },
+            "stages": {
+                "description": "the stages of the cell's making the cycle file covers: one of "
+                "them when its metadata gives a stage, both when it holds the whole program",
+                "type": "array",
+                "items": {"enum": list(WHOLE_PROGRAM)},
+                "minItems": 1,
+                "uniqueItems": True,
             },
             "other_metadata": {"type": "object", "additionalProperties": {"type": "string"}},
             "input": {
