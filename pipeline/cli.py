@@ -317,6 +317,10 @@ def build_parser() -> argparse.ArgumentParser:
     )
     retry.set_defaults(func=cmd_mail_retry)
 
+    from pipeline.cli_lots import add_commands
+
+    add_commands(sub)
+
     demo = sub.add_parser(
         "demo",
         help="run a station on invented demo lots fed by a simulated cycler",

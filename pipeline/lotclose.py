@@ -29,7 +29,6 @@ from pipeline.judge.cellverdict import (
     outlier_phrase,
 )
 from pipeline.judge.evaluate import decision_line
-from pipeline.judge.kvalue import group_by_cell
 from pipeline.judge.lotstats import (
     CellRow,
     GradeClass,
@@ -116,6 +115,63 @@ def _cycle_record(doc: Mapping[str, Any]) -> StageRecord:
     )
 
 
+@dataclass(frozen=True, slots=True)
+class CellStages:
+    """One cell's records that count, one per stage, with its values and the files behind them."""
+
+    records: tuple[StageRecord, ...]
+    values: Mapping[str, float | None]
+    files: tuple[tuple[str, str, str], ...]  # (stage words, file name, sha256)
+    decided_at: datetime.datetime | None
+
+
+def _stages_of(doc: Mapping[str, Any]) -> tuple[str, ...]:
+    """The stages a cycle-file result covers (a result without the key: the whole program)."""
+    return tuple(str(s) for s in doc.get("stages") or CYCLE_FILE)
+
+
+def cell_stages(
+    documents: Sequence[Mapping[str, Any]],
+    readings: Sequence[tuple[str, str, Reading]],
+    rule_set: RuleSet,
+    cell_type: CellType,
+) -> CellStages:
+    """The records that count for one cell: per stage its latest cycle-file result, and the
+    aging stage judged on all its readings ((file name, sha256, reading) triples).
+
+    A later record of a stage supersedes an earlier one (a retest, a copy sent again);
+    the order the records arrived in does not matter, only their analysis times.
+    """
+    chosen: dict[int, tuple[Mapping[str, Any], list[str]]] = {}
+    for stage in (*CYCLE_FILE,):
+        covering = [d for d in documents if stage in _stages_of(d)]
+        if covering:
+            doc = max(covering, key=lambda d: (str(d["analysed_at"]), str(d["input"]["sha256"])))
+            chosen.setdefault(id(doc), (doc, []))[1].append(stage)
+    records: list[StageRecord] = []
+    values: dict[str, float | None] = {}
+    files: list[tuple[str, str, str]] = []
+    times = []
+    for doc, stages in sorted(chosen.values(), key=lambda p: str(p[0]["analysed_at"])):
+        base = _cycle_record(doc)
+        records.append(dataclasses.replace(base, stages=tuple(stages)))
+        values.update({k: v for k, v in doc["metrics"].items() if v is not None or k not in values})
+        files.append((" and ".join(stages), base.source, base.sha256))
+        times.append(datetime.datetime.fromisoformat(str(doc["analysed_at"])))
+    if readings:
+        aging = judge_aging([r for _, _, r in readings], rule_set, cell_type)
+        verdict = aging.verdict.kind.value
+        reason = "" if verdict == "pass" else decision_line(aging.verdict, aging.notes)
+        hazards = tuple(h.value for h in aging.verdict.hazards)
+        sources = dict.fromkeys((name, sha) for name, sha, _ in readings)
+        records.append(
+            StageRecord(AGING, verdict, reason, hazards, ", ".join(n for n, _ in sources))
+        )
+        values.update(aging.values)
+        files += [("aging", name, sha) for name, sha in sources]
+    return CellStages(tuple(records), values, tuple(files), max(times) if times else None)
+
+
 def close_lot(
     lot: str,
     documents: Sequence[Mapping[str, Any]],
@@ -126,31 +182,27 @@ def close_lot(
 ) -> ClosedLot:
     """Decide every cell of ``lot`` and evaluate its screens and grades.
 
-    ``documents``: result JSON documents (any lots; only ``lot``'s are used; a cell's
-    latest by analysis time counts). ``readings``: aging readings (only ``lot``'s are
-    used). ``sha256``: reading file's source name -> its SHA-256, for the records.
+    ``documents``: result JSON documents (any lots; only ``lot``'s are used; per stage a
+    cell's latest by analysis time counts). ``reading_files``: aging readings (only
+    ``lot``'s are used). ``sha256``: reading file's source name -> its SHA-256.
     Raises FormgateError when the lot has no cell, or its cells need several rule sets.
     """
-    latest: dict[str, Mapping[str, Any]] = {}
+    docs_of: dict[str, list[Mapping[str, Any]]] = {}
     for doc in documents:
-        if doc["cell"]["lot"] != lot:
-            continue
-        cell = str(doc["cell"]["cell_id"])
-        if cell not in latest or str(doc["analysed_at"]) >= str(latest[cell]["analysed_at"]):
-            latest[cell] = doc
-    source_of: dict[int, str] = {}
-    readings: list[Reading] = []
+        if doc["cell"]["lot"] == lot:
+            docs_of.setdefault(str(doc["cell"]["cell_id"]), []).append(doc)
+    latest = {c: max(ds, key=lambda d: str(d["analysed_at"])) for c, ds in docs_of.items()}
+    files = sha256 or {}
+    by_cell: dict[str, list[tuple[str, str, Reading]]] = {}
     for f in reading_files:
         for r in f.readings:
             if r.lot == lot:
-                readings.append(r)
-                source_of[id(r)] = f.source
-    by_cell = group_by_cell(readings)
+                by_cell.setdefault(r.cell_id, []).append((f.source, files.get(f.source, ""), r))
     cell_ids = sorted(set(latest) | set(by_cell))
     if not cell_ids:
         raise FormgateError(f"lot {lot} has no judged cell and no reading")
     types = {
-        c: str(latest[c]["cell_type"]["name"]) if c in latest else (by_cell[c][0].cell_type or "")
+        c: str(latest[c]["cell_type"]["name"]) if c in latest else (by_cell[c][0][2].cell_type or "")
         for c in cell_ids
     }
     known = sorted({t for t in types.values() if t})
@@ -167,56 +219,31 @@ def close_lot(
             )
         notes.append(f"the lot holds {len(known)} cell types: {', '.join(known)}")
     checks, screens, grades = _lot_specs(rule_set, cell_type)
-    first: dict[str, tuple[list[StageRecord], dict[str, float | None], tuple[tuple[str, str, str], ...]]]
-    first = {}
-    files = sha256 or {}
-    for cell in cell_ids:
-        records: list[StageRecord] = []
-        values: dict[str, float | None] = {}
-        shown: list[tuple[str, str, str]] = []
-        if cell in latest:
-            doc = latest[cell]
-            records.append(_cycle_record(doc))
-            values.update({k: v for k, v in doc["metrics"].items()})
-            shown.append(("formation+grading", str(doc["input"]["name"]), str(doc["input"]["sha256"])))
-        if cell in by_cell:
-            ct = rule_set.cell_type(types[cell]) or cell_type
-            aging = judge_aging(by_cell[cell], rule_set, ct)
-            verdict = aging.verdict.kind.value
-            reason = "" if verdict == "pass" else decision_line(aging.verdict, aging.notes)
-            hazards = tuple(h.value for h in aging.verdict.hazards)
-            sources = sorted({source_of[id(r)] for r in by_cell[cell]})
-            records.append(StageRecord(AGING, verdict, reason, hazards, ", ".join(sources)))
-            values.update(aging.values)
-            for name in sources:
-                shown.append(("aging", name, files.get(name, "")))
-        first[cell] = (records, values, tuple(shown))
-    before = {c: decide(rule_set.stages, recs) for c, (recs, _, _) in first.items()}
-    rows = [CellRow(c, before[c].verdict, v) for c, (_, v, _) in first.items()]
+    first = {
+        cell: cell_stages(
+            docs_of.get(cell, []),
+            by_cell.get(cell, []),
+            rule_set,
+            rule_set.cell_type(types[cell]) or cell_type,
+        )
+        for cell in cell_ids
+    }
+    before = {c: decide(rule_set.stages, st.records) for c, st in first.items()}
+    rows = [CellRow(c, before[c].verdict, st.values) for c, st in first.items()]
     screened = lot_statistics(rows, checks, screens, grades)
     flagged: dict[str, list[str]] = {}
     for o in screened.outliers:
         unit = RULE_BY_NAME[o.metric].unit if o.metric in RULE_BY_NAME else ""
         flagged.setdefault(o.cell_id, []).append(outlier_phrase(o, unit))
     cells = []
-    for cell, (records, values, files_of_cell) in first.items():
+    for cell, st in first.items():
         decision = before[cell]
         final = decision
         if cell in flagged:
-            final = decide(rule_set.stages, records, flagged[cell])
+            final = decide(rule_set.stages, st.records, flagged[cell])
         grade = screened.grades.get(cell) if final.verdict == "pass" else None
-        when = latest[cell]["analysed_at"] if cell in latest else None
         cells.append(
-            ClosedCell(
-                cell,
-                types[cell],
-                decision,
-                final,
-                grade,
-                values,
-                files_of_cell,
-                datetime.datetime.fromisoformat(str(when)) if when else None,
-            )
+            ClosedCell(cell, types[cell], decision, final, grade, st.values, st.files, st.decided_at)
         )
     # the counts, the yield and the grades as decided at the close (outliers held, ungraded);
     # the limits, outliers, spreads and Cpk as the screens were evaluated

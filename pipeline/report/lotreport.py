@@ -150,6 +150,9 @@ class LotReportInput:
     screens: tuple[ScreenSpec, ...]
     grades: tuple[GradeClass, ...]
     units: Mapping[str, str]
+    # the statistics as the lot was closed (screens evaluated on the cells passing before
+    # them); None: worked out here from the cells as they stand
+    statistics: LotStatistics | None = None
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "units", frozen_mapping(dict(self.units)))
@@ -468,7 +471,9 @@ def _grades(data: LotReportInput, stats: LotStatistics) -> dict[str, object]:
 
 def lot_report_context(data: LotReportInput) -> dict[str, object]:
     """Everything the lot template shows, formatted as strings (statistics worked out once)."""
-    stats = lot_statistics(_rows(data.cells), data.checks, data.screens, data.grades)
+    stats = data.statistics or lot_statistics(
+        _rows(data.cells), data.checks, data.screens, data.grades
+    )
     t = stats.tally
     failed_rows, failed_more = _attention(data.cells)
     by_metric: dict[str, list[Outlier]] = {}

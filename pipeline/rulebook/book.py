@@ -36,6 +36,7 @@ from pipeline.model import (
     SourceRef,
     Window,
 )
+from pipeline.rulebook.lotrules import LotRules, lot_rules
 from pipeline.rulebook.schema import BY_TABLE, FRACTION_LIMIT, FRACTION_METRICS, TABLES
 from pipeline.rulebook.tables import (
     Collector,
@@ -45,7 +46,6 @@ from pipeline.rulebook.tables import (
     close_match,
     number,
 )
-from pipeline.rulebook.lotrules import LotRules, lot_rules
 from pipeline.rulebook.toml_lines import KeyPath, show_table, syntax_position
 
 _UNIT_WORDS = {

@@ -13,7 +13,7 @@ The schema and its migrations live in ``pipeline.station.migrations``. This modu
 only combines the ledger's parts into ``Ledger`` and names what others import: the row
 records (ledger_rows), the connection (ledger_base), inputs and results (ledger_inputs),
 the outbox and lot digests (ledger_outbox), set-aside entries and station values
-(ledger_facts).
+(ledger_facts), aging readings, decisions on whole cells and closed lots (ledger_cells).
 
 >>> import datetime, pathlib, tempfile
 >>> t = datetime.datetime(2026, 1, 5, 8, 0, tzinfo=datetime.UTC)
@@ -27,6 +27,10 @@ the outbox and lot digests (ledger_outbox), set-aside entries and station values
 from __future__ import annotations
 
 from pipeline.station.ledger_base import BUSY_TIMEOUT_MS as BUSY_TIMEOUT_MS
+from pipeline.station.ledger_cells import CellsMixin
+from pipeline.station.ledger_cells import DecisionRow as DecisionRow
+from pipeline.station.ledger_cells import LotRow as LotRow
+from pipeline.station.ledger_cells import StoredReading as StoredReading
 from pipeline.station.ledger_facts import FactsMixin
 from pipeline.station.ledger_inputs import InputsMixin
 from pipeline.station.ledger_outbox import OutboxMixin
@@ -44,17 +48,20 @@ from pipeline.station.migrations import LedgerError as LedgerError
 __all__ = [
     "SCHEMA_VERSION",
     "CheckRowData",
+    "DecisionRow",
     "InputRow",
     "Ledger",
     "LedgerError",
+    "LotRow",
     "MailRow",
     "OutgoingMail",
     "ResultRow",
     "SetAsideRow",
+    "StoredReading",
 ]
 
 
-class Ledger(InputsMixin, OutboxMixin, FactsMixin):
+class Ledger(InputsMixin, OutboxMixin, FactsMixin, CellsMixin):
     """One connection to ``ledger.sqlite``; open one per process, write from one thread.
 
     Durability: WAL with ``synchronous=FULL`` fsyncs the log at every commit. With

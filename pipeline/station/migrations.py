@@ -212,7 +212,58 @@ _SET_ASIDE = sql_migration(
     """,
 )
 
-MIGRATIONS: tuple[Migration, ...] = (_INITIAL, _RULE_TEXTS, _SET_ASIDE)
+# A cell's history beyond its cycle files: the open-circuit-voltage readings of its aging
+# stage (one row per reading, from the input file that brought it), every decision on the
+# cell as a whole (over its stages and its lot; a new decision points at the one it
+# supersedes, none is ever changed), and the lots that were closed, when and by whom.
+_LOTS = sql_migration(
+    "0004_readings_decisions_lots",
+    """
+    CREATE TABLE readings (
+        id INTEGER PRIMARY KEY,
+        input_id INTEGER NOT NULL REFERENCES inputs (id),
+        cell_id TEXT NOT NULL CHECK (cell_id <> ''),
+        lot TEXT NOT NULL,
+        cell_type TEXT,
+        at TEXT NOT NULL,
+        ocv_v REAL NOT NULL,
+        acir_mohm REAL,
+        temperature_c REAL,
+        line INTEGER NOT NULL CHECK (line >= 1),
+        UNIQUE (input_id, line)
+    ) STRICT
+    """,
+    "CREATE INDEX readings_by_cell ON readings (lot, cell_id)",
+    """
+    CREATE TABLE decisions (
+        id INTEGER PRIMARY KEY,
+        cell_id TEXT NOT NULL CHECK (cell_id <> ''),
+        lot TEXT NOT NULL,
+        verdict TEXT NOT NULL CHECK (verdict IN ('pass', 'fail', 'hold')),
+        reason TEXT NOT NULL,
+        hazards TEXT NOT NULL CHECK (json_valid(hazards) AND json_type(hazards) = 'array'),
+        grade TEXT,
+        cause TEXT NOT NULL CHECK (cause IN ('record', 'readings', 'lot closed', 'rules')),
+        basis TEXT NOT NULL CHECK (json_valid(basis) AND json_type(basis) = 'array'),
+        decided_at TEXT NOT NULL,
+        supersedes INTEGER REFERENCES decisions (id),
+        CHECK (supersedes IS NULL OR supersedes < id),
+        CHECK (grade IS NULL OR verdict = 'pass')
+    ) STRICT
+    """,
+    "CREATE INDEX decisions_by_cell ON decisions (lot, cell_id, id)",
+    """
+    CREATE TABLE lots (
+        lot TEXT PRIMARY KEY,
+        closed_at TEXT NOT NULL,
+        closed_by TEXT NOT NULL CHECK (closed_by <> ''),
+        report_path TEXT,
+        export_path TEXT
+    ) STRICT
+    """,
+)
+
+MIGRATIONS: tuple[Migration, ...] = (_INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS)
 SCHEMA_VERSION = len(MIGRATIONS)
 
 _BOOTSTRAP = """

@@ -17,9 +17,10 @@ from pipeline.inputnames import fit
 from pipeline.judge.evaluate import decision_line
 from pipeline.mail.letters import Letter, alert_letter, failure_letter, hold_letter
 from pipeline.model import CellResult, VerdictKind
+from pipeline.read.readings import ReadingFile
 from pipeline.runner import result_paths
 from pipeline.station import faults
-from pipeline.station.guard import Guarded
+from pipeline.station.cells import CellKeeping
 from pipeline.station.ledger import CheckRowData, InputRow
 from pipeline.station.setaside import NAME_RESERVE_BYTES
 from pipeline.station.worker import Output
@@ -28,7 +29,7 @@ from pipeline.writing import move_into, require_folder, write_atomic
 log = logging.getLogger("formgate.station")
 
 
-class Publishing(Guarded):
+class Publishing(CellKeeping):
     """Record, publish, archive; :class:`pipeline.station.station.Station` sets these attributes."""
 
     judged: int
@@ -41,6 +42,9 @@ class Publishing(Guarded):
             if output.bug:
                 log.error("%s: internal error\n%s", row.name, output.detail)
             self.quarantine(row, output.error)
+            return
+        if output.readings is not None:
+            self.keep_readings(row, output.readings)
             return
         assert output.result is not None and output.json_text is not None
         pdf = output.pdf
@@ -65,6 +69,21 @@ class Publishing(Guarded):
             hazards,
             row.name,
         )
+        self.decide_cells([(r.lot, r.cell_id)], "record")
+
+    def keep_readings(self, row: InputRow, readings: ReadingFile | None) -> None:
+        """An OCV reading file: its readings kept (ONE transaction), the file archived, and
+        every cell it reads decided again. ``readings`` None: kept before a restart."""
+        if row.state == "claimed" and readings is not None:
+            self.ledger.record_readings(row.id, readings.readings)
+        row = self.ledger.input(row.id) or row
+        if row.state == "judged":
+            self.ledger.mark_published(row.id)
+        self.finish(self.ledger.input(row.id) or row, "archived")
+        cells = self.ledger.cells_of_input(row.id)
+        lots = sorted({lot for lot, _ in cells})
+        log.info("%s: aging readings of %d cell(s), lot %s", row.name, len(cells), ", ".join(lots))
+        self.decide_cells(cells, "readings")
 
     def output_paths(self, result: CellResult) -> tuple[Path, Path]:
         return result_paths(self.settings.results, self.settings.certificates, result)

@@ -255,6 +255,8 @@ class Station(Claims, RulesKeeper):
             self.finish(row, "duplicate")
         elif row.state == "published":
             self.finish(row, "archived")
+        elif row.state == "judged" and self.ledger.has_readings(row.id):
+            self.keep_readings(row, None)  # its readings are kept: publish them
         elif row.state == "judged":
             task = self.judge_again(row)
             if task is not None:

@@ -17,7 +17,6 @@ Pure bookkeeping: times are passed in, nothing is written here.
 from __future__ import annotations
 
 import dataclasses
-
 import datetime
 import errno
 import os

@@ -2,7 +2,8 @@
 
 Runs in long-lived worker processes (the import of the rendering stack is paid
 once per process, not per file). It reads the claimed file, judges it, and
-renders the JSON and PDF *bytes*; it writes nothing. The station's main process
+renders the JSON and PDF *bytes*; it writes nothing. An OCV reading file (told by its
+header, read.readings.looks_like_readings) is read into its readings instead. The station's main process
 records the result and only then writes the files (order of effects in
 docs/station.md), so a crash can never leave a certificate without its ledger row.
 """
@@ -26,10 +27,13 @@ from pathlib import Path
 from pipeline.errors import FormgateError, InputError
 from pipeline.model import CellResult, SourceRef, VerdictKind
 from pipeline.read.limits import TextLimits, check_text
+from pipeline.read.readings import ReadingFile, looks_like_readings, read_readings
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.board import Board
 
 log = logging.getLogger("formgate.worker")
+
+READINGS_HEAD = 65536  # bytes of a file's head that tell an OCV reading file by its header
 
 
 @dataclass(frozen=True, slots=True)
@@ -66,6 +70,7 @@ class Output:
     seconds: float
     bug: bool = False
     detail: str = ""
+    readings: ReadingFile | None = None  # an OCV reading file: its readings, and no result
 
 
 # The board this worker notes its current input on, and its row there (judges.py).
@@ -161,7 +166,11 @@ def run_task(task: Task) -> Output:
 def _run(task: Task) -> Output:
     started = time.perf_counter()
     try:
-        result, json_text, pdf = _judge_and_render(task)
+        judged = _judge_and_render(task)
+        if isinstance(judged, ReadingFile):
+            return Output(task.input_id, None, None, None, None, time.perf_counter() - started,
+                          readings=judged)
+        result, json_text, pdf = judged
     except FormgateError as exc:
         return Output(task.input_id, None, None, None, str(exc), time.perf_counter() - started)
     except MemoryError:
@@ -183,7 +192,8 @@ def _run(task: Task) -> Output:
     return Output(task.input_id, result, json_text, pdf, None, time.perf_counter() - started)
 
 
-def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None]:
+def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None] | ReadingFile:
+    """Judge a cycle file and render its outputs, or read an OCV reading file's readings."""
     from pipeline.read.profile import load_profile
     from pipeline.report.result import to_json
     from pipeline.runner import judge
@@ -205,6 +215,8 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None]:
         )
     if task.limits is not None:
         check_text(data, task.name, task.limits)
+    if looks_like_readings(data[:READINGS_HEAD]):
+        return read_readings(data, task.name)
     profile = None
     if task.profile_text is not None:
         profile = load_profile(task.profile_text, task.profile_name or "import profile")

@@ -1,0 +1,204 @@
+"""The `formgate lot ...` and `formgate cell show` commands: a station's lots and a cell's history.
+
+Argument parsing and printing only; the ledger (pipeline.station.ledger) holds the
+history and pipeline.station.lots closes and reports a lot. Each command reads the
+station folder's station.toml, ledger and rules folder, and is safe beside a running
+station (SQLite's write-ahead log lets a reader in while the station writes; a close
+waits for the station's write to finish).
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime
+import json
+from pathlib import Path
+from typing import Any
+
+from pipeline.errors import FormgateError
+
+EXIT_OK = 0
+
+
+def _open(folder: str) -> tuple[Any, Any]:
+    from pipeline.station.ledger import Ledger
+    from pipeline.station.settings import read_settings
+
+    settings = read_settings(Path(folder))
+    if not settings.ledger.exists():
+        raise FormgateError(
+            f"{settings.ledger}: the station has no ledger yet",
+            None,
+            "Start the station (formgate watch) and let it judge a file first.",
+        )
+    return settings, Ledger(settings.ledger)
+
+
+def _known_lot(ledger: Any, lot: str) -> None:
+    if lot not in ledger.lot_names():
+        from pipeline.rulebook.tables import close_match
+
+        names = ledger.lot_names()
+        guess = close_match(lot, names)
+        raise FormgateError(
+            f"the ledger has no lot {lot!r}",
+            None,
+            (f"Did you mean '{guess}'? " if guess else "")
+            + ("Lots: " + ", ".join(names[:20]) if names else "It holds no lot yet.")
+            + " (formgate lot list shows them).",
+        )
+
+
+def _counts(counts: dict[str, int]) -> str:
+    return ", ".join(f"{counts.get(k, 0)} {k}" for k in ("pass", "fail", "hold")) or "undecided"
+
+
+def cmd_lot_list(args: argparse.Namespace) -> int:
+    """Every lot: cells, latest decisions counted, last activity, closed or open."""
+    _, ledger = _open(args.folder)
+    with ledger:
+        names = ledger.lot_names()
+        if not names:
+            print("no lots yet")
+            return EXIT_OK
+        for name in names:
+            lot = ledger.lot(name)
+            last = lot.last_activity.isoformat(timespec="seconds") if lot.last_activity else "-"
+            state = (
+                f"closed {lot.closed_at.isoformat(timespec='seconds')} ({lot.closed_by})"
+                if lot.closed_at else "open"
+            )
+            print(f"{name}: {lot.cells} cell(s): {_counts(lot.counts)}; last activity {last}; "
+                  f"{state}")
+    return EXIT_OK
+
+
+def cmd_lot_show(args: argparse.Namespace) -> int:
+    """One lot: every cell with its latest decision, fails and holds first."""
+    _, ledger = _open(args.folder)
+    with ledger:
+        _known_lot(ledger, args.lot)
+        lot = ledger.lot(args.lot)
+        print(f"lot {args.lot}: {lot.cells} cell(s): {_counts(lot.counts)}; "
+              + ("closed " + lot.closed_at.isoformat(timespec="seconds") if lot.closed_at
+                 else "open"))
+        if lot.report_path:
+            print(f"  report {lot.report_path}\n  export {lot.export_path}")
+        cells = sorted(
+            {r.cell_id for r in ledger.current_cells_of_lot(args.lot)}
+            | {s.reading.cell_id for s in ledger.readings_of(args.lot)}
+        )
+        order = {"fail": 0, "hold": 1, "pass": 2}
+        rows = []
+        for cell in cells:
+            d = ledger.latest_decision(args.lot, cell)
+            rows.append((order.get(d.verdict, 3) if d else 3, cell, d))
+        for _, cell, d in sorted(rows, key=lambda r: (r[0], r[1])):
+            if d is None:
+                print(f"  {cell}  undecided")
+                continue
+            grade = f"  grade {d.grade}" if d.grade else ""
+            print(f"  {cell}  {d.verdict}{grade}" + (f": {d.reason}" if d.reason else ""))
+    return EXIT_OK
+
+
+def _close_or_report(args: argparse.Namespace, *, close: bool) -> int:
+    from pipeline.rulebook.book import load_rules_dir
+    from pipeline.station.lots import close_and_report
+
+    settings, ledger = _open(args.folder)
+    rulebook = load_rules_dir(settings.rules_dir)
+    now = datetime.datetime.now(datetime.UTC).replace(microsecond=0)
+    with ledger:
+        _known_lot(ledger, args.lot)
+        outcome = close_and_report(
+            settings, ledger, rulebook, args.lot, by="command", now=now, close=close
+        )
+    if close and not outcome.newly_closed:
+        print(f"lot {args.lot} was closed before; its decisions and report are brought up to date")
+    tally = outcome.closed.statistics.tally
+    shown = f"{100 * tally.yield_fraction:.1f} %" if tally.yield_fraction is not None else "n/a"
+    print(f"lot {args.lot}: {tally.n} cell(s), yield {shown} "
+          f"({', '.join(f'{n} {v}' for v, n in tally.by_verdict.items() if n)})")
+    for cell in outcome.changed:
+        c = next(x for x in outcome.closed.cells if x.cell_id == cell)
+        print(f"  {cell}: {c.before_screens.verdict} -> {c.decision.verdict}: {c.decision.reason}")
+    print(f"  report {outcome.report}\n  export {outcome.export}")
+    return EXIT_OK
+
+
+def cmd_lot_close(args: argparse.Namespace) -> int:
+    """Close a lot: its screens apply, every cell's decision is recorded, report and export."""
+    return _close_or_report(args, close=True)
+
+
+def cmd_lot_report(args: argparse.Namespace) -> int:
+    """Write the lot's report and export as it stands, without closing it."""
+    return _close_or_report(args, close=False)
+
+
+def cmd_cell_show(args: argparse.Namespace) -> int:
+    """A cell's history: every record, every reading file, every decision, oldest first."""
+    _, ledger = _open(args.folder)
+    with ledger:
+        lots = (args.lot and [args.lot]) or [
+            name for name in ledger.lot_names()
+            if ledger.results_of_cell(name, args.cell) or ledger.readings_of(name, args.cell)
+        ]
+        if not lots:
+            raise FormgateError(f"the ledger has no cell {args.cell!r}", None,
+                                "Check the cell id (formgate lot show LOT lists a lot's cells).")
+        for lot in lots:
+            print(f"cell {args.cell}, lot {lot}")
+            results = ledger.results_of_cell(lot, args.cell)
+            print(f"  records ({len(results)})")
+            for n, r in enumerate(results, 1):
+                doc = json.loads(r.result_json)
+                stages = " and ".join(doc.get("stages") or ("formation", "grading"))
+                decided = f": {doc.get('decision')}" if r.verdict != "pass" else ""
+                gone = "  (superseded)" if r.superseded_by else ""
+                print(f"    {n} of {len(results)}  {r.analysed_at.isoformat(timespec='seconds')}  "
+                      f"{doc['input']['name']}  {stages}  {r.verdict}{decided}{gone}")
+            readings = ledger.readings_of(lot, args.cell)
+            if readings:
+                print(f"  aging readings ({len(readings)})")
+                for s in readings:
+                    print(f"    {s.reading.at.isoformat(timespec='seconds')}  "
+                          f"{s.reading.ocv_v:.4f} V  {s.file_name} line {s.reading.line}")
+            decisions = ledger.decisions_of(lot, args.cell)
+            print(f"  decisions ({len(decisions)})")
+            for d in decisions:
+                grade = f" grade {d.grade}" if d.grade else ""
+                print(f"    {d.decided_at.isoformat(timespec='seconds')}  {d.verdict}{grade}  "
+                      f"({d.cause})" + (f": {d.reason}" if d.reason else ""))
+    return EXIT_OK
+
+
+def add_commands(sub: Any) -> None:
+    """Add `lot` and `cell` to the command line's sub-commands."""
+    lot = sub.add_parser("lot", help="a station's lots: list, show, close, report",
+                         epilog="example: formgate lot show station/ DEMO-LOT-01")
+    lot_sub = lot.add_subparsers(dest="lot_command", required=True, metavar="ACTION")
+    listing = lot_sub.add_parser("list", help="every lot with its counts and whether it is closed")
+    listing.add_argument("folder", metavar="FOLDER", help="the station folder")
+    listing.set_defaults(func=cmd_lot_list)
+    for name, func, text in (
+        ("show", cmd_lot_show, "every cell of a lot with its latest decision"),
+        ("close", cmd_lot_close, "close a lot: apply its screens, record its cells' decisions "
+         "and grades, write its report and export"),
+        ("report", cmd_lot_report, "write a lot's report and export as it stands, without "
+         "closing it"),
+    ):
+        p = lot_sub.add_parser(name, help=text, description=text[0].upper() + text[1:] + ".")
+        p.add_argument("folder", metavar="FOLDER", help="the station folder")
+        p.add_argument("lot", metavar="LOT", help="the lot")
+        p.set_defaults(func=func)
+    cell = sub.add_parser("cell", help="a cell's history",
+                          epilog="example: formgate cell show station/ L01-011")
+    cell_sub = cell.add_subparsers(dest="cell_command", required=True, metavar="ACTION")
+    show = cell_sub.add_parser("show", help="every record, reading and decision of a cell",
+                               description="Every record, aging reading and decision of a cell.")
+    show.add_argument("folder", metavar="FOLDER", help="the station folder")
+    show.add_argument("cell", metavar="CELL", help="the cell id")
+    show.add_argument("--lot", help="only in this lot (a cell id may recur in several lots)")
+    show.set_defaults(func=cmd_cell_show)

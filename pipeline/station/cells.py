@@ -1,0 +1,146 @@
+"""A cell's decision over its stages: recomputed whenever a record of it or a reading arrives.
+
+Edge module (ledger and letters); the deciding itself is pure (pipeline.lotclose and
+pipeline.judge.cellverdict). After each cycle file and each OCV reading file the
+station decides every cell it touched, under the rules in force: its latest record
+per stage and all its readings count. A decision that differs from the cell's latest
+is recorded beside it (never over it), with its letters in the same transaction:
+
+- a cell that fails or is held because of its readings (or its lot's screens) gets a
+  letter of its own: its cycle files' letters could not have said so;
+- a fail or hold that was mailed and no longer stands (a retest, a copy sent again, a
+  stage that came in) gets a short follow-up naming what stands now.
+
+A cell held only while it waits for a stage gets no letter: that is the normal course.
+"""
+
+from __future__ import annotations
+
+import datetime
+import json
+import logging
+from collections.abc import Iterable, Sequence
+
+from pipeline.errors import FormgateError
+from pipeline.judge.cellverdict import CellDecision, decide
+from pipeline.lotclose import cell_stages
+from pipeline.mail.cell_letters import decision_letter, superseded_letter
+from pipeline.mail.letters import Letter
+from pipeline.rulebook.book import RuleBook
+from pipeline.station.guard import Guarded
+from pipeline.station.ledger import DecisionRow
+from pipeline.station.settings import Settings
+
+log = logging.getLogger("formgate.station")
+
+WAITING = "waiting for stage"
+
+
+def only_waiting(reason: str) -> bool:
+    """True when a hold's every reason is a stage still to come."""
+    return all(part.startswith(WAITING) for part in reason.split("; ") if part)
+
+
+def mailed(decision: DecisionRow | None) -> bool:
+    """Whether a decision was one people were told of: a fail, or a hold for a real reason."""
+    return decision is not None and (
+        decision.verdict == "fail" or (decision.verdict == "hold" and not only_waiting(decision.reason))
+    )
+
+
+def change_letters(
+    settings: Settings,
+    *,
+    lot: str,
+    cell_id: str,
+    decision: CellDecision,
+    before: DecisionRow | None,
+    cause: str,
+    files: Sequence[tuple[str, str, str]],
+    family: str | None,
+    now: datetime.datetime,
+) -> list[Letter]:
+    """The letters a cell's new decision calls for (see the module docstring)."""
+    routing, station = settings.routing, settings.station_name
+    out: list[Letter] = []
+    key = f"{lot}\n{cell_id}\n{decision.verdict}\n{decision.reason}\n{before.id if before else 0}"
+    same = before is not None and (before.verdict, before.reason) == (
+        decision.verdict, decision.reason
+    )
+    if cause != "record" and not same and decision.verdict in ("fail", "hold") and not only_waiting(
+        decision.reason
+    ):
+        to = routing.failures_to if decision.verdict == "fail" else routing.holds_to
+        if to:
+            out.append(decision_letter(
+                cell_id=cell_id, lot=lot, verdict=decision.verdict, reasons=decision.reasons,
+                hazards=decision.hazards, cause=cause, records=files, family=family,
+                recipients=to, station=station, key=key, decided_at=now, domain=routing.domain,
+            ))
+    if before is not None and mailed(before) and not same:
+        to = routing.failures_to if before.verdict == "fail" else routing.holds_to
+        if to:
+            out.append(superseded_letter(
+                cell_id=cell_id, lot=lot, was=(before.verdict, before.reason, before.decided_at),
+                now=(decision.verdict, decision.reason), cause=cause, records=files,
+                family=family, recipients=to, station=station, key=key, domain=routing.domain,
+            ))
+    return out
+
+
+class CellKeeping(Guarded):
+    """Decide cells after their records; the station's Station class sets these attributes."""
+
+    rulebook: RuleBook | None
+
+    def decide_cells(self, cells: Iterable[tuple[str, str]], cause: str) -> None:
+        """Decide each (lot, cell id) again and record what changed, with its letters."""
+        for lot, cell_id in dict.fromkeys(cells):
+            try:
+                self.decide_cell(lot, cell_id, cause)
+            except FormgateError as exc:  # e.g. its cell type is in no rule set any more
+                log.error("cell %s of lot %s cannot be decided: %s", cell_id, lot, exc)
+
+    def decide_cell(self, lot: str, cell_id: str, cause: str) -> DecisionRow | None:
+        if self.rulebook is None:
+            return None
+        results = self.ledger.results_of_cell(lot, cell_id)
+        docs = [json.loads(r.result_json) for r in results if r.verdict != "error"]
+        readings = [
+            (s.file_name, s.file_sha256, s.reading) for s in self.ledger.readings_of(lot, cell_id)
+        ]
+        types = [str(d["cell_type"]["name"]) for d in docs] + [
+            r.cell_type for _, _, r in readings if r.cell_type
+        ]
+        if not types:
+            log.warning("cell %s of lot %s names no cell type yet; not decided", cell_id, lot)
+            return None
+        rule_set, cell_type = self.rulebook.for_cell_type(types[-1])
+        stages = cell_stages(docs, readings, rule_set, cell_type)
+        decision = decide(rule_set.stages, stages.records)
+        now = self.clock()
+
+        def letters(before: DecisionRow | None) -> list[Letter]:
+            return change_letters(
+                self.settings, lot=lot, cell_id=cell_id, decision=decision, before=before,
+                cause=cause, files=stages.files, family=rule_set.family, now=now,
+            )
+
+        row, before, new = self.ledger.decide_cell(
+            cell_id=cell_id,
+            lot=lot,
+            verdict=decision.verdict,
+            reason=decision.reason,
+            hazards=decision.hazards,
+            grade=None,
+            cause=cause,
+            basis=[f"{stage}:{name}:{sha}" for stage, name, sha in stages.files],
+            now=now,
+            letters=letters,
+        )
+        if new:
+            self.mail_wake.set()
+            was = f" (was {before.verdict})" if before is not None else ""
+            log.info("cell %s lot %s: %s%s%s", cell_id, lot, row.verdict, was,
+                     f": {row.reason}" if row.reason else "")
+        return row

@@ -1,0 +1,166 @@
+"""Lots at a station: close one, record its decisions, write its report and export, list them.
+
+Edge module: it reads the lot's results and readings from the ledger, closes the lot
+with the pure pipeline.lotclose, records each cell's decision at the close (a pass the
+lot's screens turn into a hold is recorded beside the pass, with its letter), and
+writes the report PDF and the one-row-per-cell CSV:
+
+    <certificates>/<lot>/_lot-report.pdf     <results>/<lot>/_lot-cells.csv
+
+(the leading underscore keeps them apart from every cell's files: a cell id never
+makes a file name that starts with one). Used by `formgate lot close` and by the
+station when a lot has been quiet for its rule set's ``[lot] quiet_h``.
+"""
+
+from __future__ import annotations
+
+import datetime
+import json
+import logging
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+from pipeline.judge.metricdefs import RULE_METRICS
+from pipeline.lotclose import ClosedCell, ClosedLot, close_lot
+from pipeline.mail.letters import Letter
+from pipeline.names import safe_name
+from pipeline.read.readings import Reading, ReadingFile
+from pipeline.report.lotreport import (
+    LotCell,
+    LotReportInput,
+    RuleSetRef,
+    lot_export_csv,
+    render_lot_report_pdf,
+)
+from pipeline.rulebook.book import RuleBook
+from pipeline.station.cells import change_letters
+from pipeline.station.ledger import DecisionRow, Ledger
+from pipeline.station.settings import Settings
+from pipeline.writing import write_atomic
+
+log = logging.getLogger("formgate.station")
+UNITS = {m.name: m.unit for m in RULE_METRICS}
+
+
+@dataclass(frozen=True, slots=True)
+class LotOutcome:
+    """What closing (or reporting) a lot did: the lot, the files written, the changed cells."""
+
+    closed: ClosedLot
+    report: Path
+    export: Path
+    changed: tuple[str, ...]  # cells whose decision changed at the close
+    newly_closed: bool
+
+
+def gather(ledger: Ledger, lot: str, rulebook: RuleBook) -> ClosedLot:
+    """The lot as the ledger holds it, closed by the rules (pure once the rows are read)."""
+    docs = [json.loads(r.result_json) for r in ledger.current_cells_of_lot(lot)]
+    docs += [
+        json.loads(r.result_json)
+        for cell in {d["cell"]["cell_id"] for d in docs}
+        for r in ledger.results_of_cell(lot, str(cell))
+        if r.superseded_by is not None
+    ]
+    files: dict[str, list[Reading]] = {}
+    sha: dict[str, str] = {}
+    for stored in ledger.readings_of(lot):
+        files.setdefault(stored.file_name, []).append(stored.reading)
+        sha[stored.file_name] = stored.file_sha256
+    readings = [ReadingFile(name, {}, tuple(rows)) for name, rows in files.items()]
+    return close_lot(lot, [d for d in docs if d["verdict"] != "error"], readings, rulebook, sha256=sha)
+
+
+def report_input(
+    closed: ClosedLot, *, station: str, now: datetime.datetime, closed_at: datetime.datetime | None
+) -> LotReportInput:
+    rs = closed.rule_set
+    return LotReportInput(
+        lot=closed.lot,
+        cell_types=closed.cell_types,
+        rule_set=RuleSetRef(rs.name, rs.revision, rs.sha256, rs.family),
+        station=station,
+        generated_at=now,
+        closed_at=closed_at,
+        cells=tuple(
+            LotCell(
+                c.cell_id,
+                c.decision.verdict,
+                c.decision.reason,
+                c.grade,
+                c.decision.hazards,
+                c.values,
+                c.records,
+                c.decided_at or now,
+            )
+            for c in closed.cells
+        ),
+        checks=closed.checks,
+        screens=closed.screens,
+        grades=closed.grades,
+        units=UNITS,
+        statistics=closed.statistics,
+    )
+
+
+def _letters(
+    settings: Settings, closed: ClosedLot, cell: ClosedCell, now: datetime.datetime
+) -> Callable[[DecisionRow | None], list[Letter]]:
+    def letters(before: DecisionRow | None) -> list[Letter]:
+        return change_letters(
+            settings, lot=closed.lot, cell_id=cell.cell_id, decision=cell.decision,
+            before=before, cause="lot closed", files=cell.records,
+            family=closed.rule_set.family, now=now,
+        )
+
+    return letters
+
+
+def report_paths(settings: Settings, lot: str) -> tuple[Path, Path]:
+    folder = safe_name(lot)
+    return (
+        settings.certificates / folder / "_lot-report.pdf",
+        settings.results / folder / "_lot-cells.csv",
+    )
+
+
+def close_and_report(
+    settings: Settings,
+    ledger: Ledger,
+    rulebook: RuleBook,
+    lot: str,
+    *,
+    by: str,
+    now: datetime.datetime,
+    close: bool = True,
+) -> LotOutcome:
+    """Close ``lot`` (unless ``close`` is False: a report of the lot as it stands) and write
+    its report and export. Closing records every cell's decision at the close, with the
+    letters of the ones that changed; a lot closed before keeps its first close time."""
+    closed = gather(ledger, lot, rulebook)
+    changed: list[str] = []
+    newly = False
+    closed_at = ledger.lot(lot).closed_at
+    if close:
+        for cell in closed.cells:
+            d = cell.decision
+            _, before, new = ledger.decide_cell(
+                cell_id=cell.cell_id, lot=lot, verdict=d.verdict, reason=d.reason,
+                hazards=d.hazards, grade=cell.grade, cause="lot closed",
+                basis=[f"{s}:{n}:{h}" for s, n, h in cell.records], now=now,
+                letters=_letters(settings, closed, cell, now),
+            )
+            if new and before is not None and before.verdict != d.verdict:
+                changed.append(cell.cell_id)
+        newly = ledger.close_lot(lot, by=by, now=now)
+        closed_at = ledger.lot(lot).closed_at
+    report, export = report_paths(settings, lot)
+    data = report_input(closed, station=settings.station_name, now=now, closed_at=closed_at)
+    write_atomic(render_lot_report_pdf(data), report)
+    write_atomic(lot_export_csv(data), export)
+    if close:
+        ledger.note_lot_report(lot, str(report), str(export))
+    log.info("lot %s %s: %d cells, report %s", lot, "closed" if close else "reported",
+             len(closed.cells), report)
+    return LotOutcome(closed, report, export, tuple(changed), newly)

@@ -1,0 +1,183 @@
+"""A real station keeps a cell's history: cycle files and an OCV tester file, decided as one cell.
+
+The rule set here needs the aging stage and judges the K-value (the open-circuit-voltage
+drop per day between the first and the last reading, common practice). Every part is real:
+the inbox, the worker processes, the SQLite ledger, the .eml letters on disk.
+"""
+
+from __future__ import annotations
+
+import email
+import email.policy
+from pathlib import Path
+
+import pytest
+
+from pipeline.station.ledger import Ledger
+from pipeline.station.settings import Settings
+from tests.station_kit import RULES, check_invariants, cycle_file, drop, make_station, running
+from tests.station_kit import settled, wait_until
+
+pytestmark = pytest.mark.slow
+
+AGING_RULES = RULES.replace(
+    "[plausible]",
+    """[stages]
+needed = ["formation", "aging", "grading"]
+
+[aging]
+min_days = 3.0
+
+[check.k_value]
+metric = "k_value_mV_per_day"
+high = 1.0             # test window
+severity = "reject"
+hazard = "internal_short"
+message = "Open-circuit voltage falls too fast during aging."
+
+[plausible]""",
+)
+
+
+def _readings(rows: list[tuple[str, str, float]]) -> bytes:
+    """An OCV reading file of lot LOT-A: (cell, ISO time, OCV in V) per row."""
+    lines = ["# kind: ocv readings", "# lot: LOT-A", "cell_id,time,ocv_V,cell_type"]
+    lines += [f"{c},{t},{v:.4f},TEST-CELL" for c, t, v in rows]
+    return ("\n".join(lines) + "\n").encode()
+
+
+def _letters(s: Settings) -> list[email.message.EmailMessage]:
+    out = []
+    for p in sorted(s.mail.glob("*.eml")):
+        m = email.message_from_bytes(p.read_bytes(), policy=email.policy.default)
+        assert isinstance(m, email.message.EmailMessage)
+        out.append(m)
+    return out
+
+
+def _decisions(s: Settings, cell: str) -> list[tuple[str, str, str]]:
+    with Ledger(s.ledger) as ledger:
+        return [(d.verdict, d.cause, d.reason) for d in ledger.decisions_of("LOT-A", cell)]
+
+
+def test_cycle_files_and_a_tester_file_make_one_decision_per_cell(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    (s.rules_dir / "test_cells.toml").write_text(AGING_RULES, encoding="utf-8")
+    with running(s):
+        drop(s.inboxes[0].folder, "c1.csv", cycle_file("C-1"))
+        drop(s.inboxes[0].folder, "c2.csv", cycle_file("C-2", seed=2))
+        wait_until(lambda: settled(s, 2), what="two cycle files")
+        # K = -(3.6470 - 3.6512) V / 7 d = 0.6 mV/day: in window (the K-value's definition)
+        # K = -(3.6300 - 3.6512) V / 7 d = 3.03 mV/day: a fast self-discharger, rejected
+        drop(s.inboxes[0].folder, "aging.csv", _readings([
+            ("C-1", "2026-11-02T08:00:00Z", 3.6512), ("C-1", "2026-11-09T08:00:00Z", 3.6470),
+            ("C-2", "2026-11-02T08:00:00Z", 3.6512), ("C-2", "2026-11-09T08:00:00Z", 3.6300),
+        ]))
+        wait_until(lambda: settled(s, 3), what="the tester file")
+        wait_until(lambda: any("FAIL cell C-2" in str(m["Subject"]) for m in _letters(s)),
+                   what="the letter for the cell the readings failed")
+    check_invariants(s, {"c1.csv", "c2.csv", "aging.csv"})
+    # each cell waited for its aging stage, then was decided on all its stages
+    assert _decisions(s, "C-1") == [
+        ("hold", "record", "waiting for stage aging"),
+        ("pass", "readings", ""),
+    ]
+    c2 = _decisions(s, "C-2")
+    assert [d[:2] for d in c2] == [("hold", "record"), ("fail", "readings")]
+    assert c2[1][2].startswith("k_value_mV_per_day 3.029 mV/day > 1 mV/day (reject)")
+    letter = next(m for m in _letters(s) if "FAIL cell C-2" in str(m["Subject"]))
+    body = " ".join(letter.get_body().get_content().split())  # type: ignore[union-attr]
+    assert "the cell's aging readings came in" in body
+    assert "Possible internal short circuit" in body or "internal short" in body.lower()
+    assert "qualified personnel" in body and "aging: aging.csv (SHA-256 " in body
+    # a cell held only while it waits for a stage gets no letter
+    assert not any("HOLD cell C-1" in str(m["Subject"]) for m in _letters(s))
+    with Ledger(s.ledger) as ledger:
+        assert len(ledger.readings_of("LOT-A")) == 4
+
+
+def test_a_mailed_failure_that_a_later_record_supersedes_gets_a_follow_up(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    with running(s):
+        drop(s.inboxes[0].folder, "first.csv", cycle_file("C-9", capacity_ah=1.5))
+        wait_until(lambda: settled(s, 1), what="the failed record")
+        drop(s.inboxes[0].folder, "retest.csv", cycle_file("C-9", seed=4))
+        wait_until(lambda: settled(s, 2), what="the retest")
+        wait_until(lambda: any("UPDATE cell C-9" in str(m["Subject"]) for m in _letters(s)),
+                   what="the follow-up")
+    assert [d[0] for d in _decisions(s, "C-9")] == ["fail", "pass"]
+    update = next(m for m in _letters(s) if "UPDATE cell C-9" in str(m["Subject"]))
+    assert "now pass, was fail" in str(update["Subject"])
+    body = " ".join(update.get_body().get_content().split())  # type: ignore[union-attr]
+    assert "is superseded, because a new record of the cell was judged" in body
+    assert "a later record does not by itself make it safe" in body
+    assert "retest.csv" in body
+
+
+LOT_RULES = AGING_RULES.replace(
+    "[plausible]",
+    """[screen.self_discharge]
+metric = "k_value_mV_per_day"
+k = 6.0                # test screen
+min_cells = 5          # test screen: a small lot
+sides = "high"
+
+[grade.A]
+grading_capacity_Ah = { low = 1.9 }
+
+[plausible]""",
+)
+
+
+def test_closing_a_lot_holds_its_outlier_grades_the_rest_and_writes_its_report(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from pypdf import PdfReader
+
+    from pipeline.cli import main
+
+    s = make_station(tmp_path / "st")
+    (s.rules_dir / "test_cells.toml").write_text(LOT_RULES, encoding="utf-8")
+    cells = [f"L-{n}" for n in range(1, 8)]
+    # K-values 0.30..0.36 mV/day, and one cell at 0.80: inside the 1.0 window, far out of its lot
+    drops = [0.0021 + 0.0001 * (n % 3) for n in range(len(cells))]
+    drops[4] = 0.0056
+    rows = []
+    for cell, drop_v in zip(cells, drops, strict=True):
+        rows += [(cell, "2026-11-02T08:00:00Z", 3.6512), (cell, "2026-11-09T08:00:00Z", 3.6512 - drop_v)]
+    with running(s):
+        for n, cell in enumerate(cells):
+            drop(s.inboxes[0].folder, f"{cell}.csv", cycle_file(cell, seed=n))
+        drop(s.inboxes[0].folder, "aging.csv", _readings(rows))
+        wait_until(lambda: settled(s, len(cells) + 1), what="the lot's files")
+        wait_until(lambda: all(_decisions(s, c) and _decisions(s, c)[-1][0] == "pass"
+                               for c in cells), what="every cell decided")
+    assert main(["lot", "list", str(s.root)]) == 0
+    assert "LOT-A: 7 cell(s): 7 pass, 0 fail, 0 hold" in capsys.readouterr().out
+    assert main(["lot", "close", str(s.root), "LOT-A"]) == 0
+    out = capsys.readouterr().out
+    assert "L-5: pass -> hold: outlier in lot: k_value_mV_per_day 0.8 mV/day > lot limit" in out
+    # the pass stays recorded; the hold is recorded beside it, with its letter queued
+    assert [d[:2] for d in _decisions(s, "L-5")][-2:] == [("pass", "readings"), ("hold", "lot closed")]
+    with Ledger(s.ledger) as ledger:
+        letters = [m for m in ledger.mail_in_state("pending") if "HOLD cell L-5" in m.subject]
+        assert len(letters) == 1 and "outlier in lot" in letters[0].subject
+        graded = {c: ledger.latest_decision("LOT-A", c) for c in cells}
+        assert {c: d.grade for c, d in graded.items() if d} == {
+            c: (None if c == "L-5" else "A") for c in cells
+        }
+        assert ledger.lot("LOT-A").closed_by == "command"
+    report = s.certificates / "LOT-A" / "_lot-report.pdf"
+    text = " ".join(" ".join(p.extract_text() for p in PdfReader(report).pages).split())
+    assert "LOT-A" in text and "L-5" in text and "outlier in lot" in text
+    export = (s.results / "LOT-A" / "_lot-cells.csv").read_text(encoding="utf-8").splitlines()
+    assert len(export) == 1 + len(cells)
+    # closing again changes nothing and says so
+    assert main(["lot", "close", str(s.root), "LOT-A"]) == 0
+    assert "was closed before" in capsys.readouterr().out
+    assert main(["cell", "show", str(s.root), "L-5"]) == 0
+    shown = capsys.readouterr().out
+    assert "records (1)" in shown and "aging readings (2)" in shown
+    assert "hold  (lot closed): outlier in lot" in shown
+    assert main(["lot", "show", str(s.root), "NO-SUCH-LOT"]) == 2
+    assert "the ledger has no lot 'NO-SUCH-LOT'" in capsys.readouterr().err
