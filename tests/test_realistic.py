@@ -94,9 +94,21 @@ def judged(
     record: synth.SimulatedRecord, cell: demo.DemoCell, *, steps: bool = True, lines: int | None = None
 ) -> CellResult:
     text = synth.to_cycle_file(record, demo.demo_metadata(cell), include_step_columns=steps)
+    return judged_text(text, cell, lines=lines)
+
+
+def judged_text(text: str, cell: demo.DemoCell, *, lines: int | None = None) -> CellResult:
     if lines is not None:
         text = "".join(text.splitlines(keepends=True)[:lines])
     return judge(text.encode("utf-8"), f"{cell.cell_id}.csv", RULEBOOK, analysed_at=ANALYSED_AT)
+
+
+@functools.cache
+def typical_text(cell_id: str, steps: bool) -> str:
+    """The cycle file of ``read_through(cell, "typical")``, written once for every test that reads it."""
+    cell = BY_ID[cell_id]
+    record = read_through(cell, "typical", steps=steps)
+    return synth.to_cycle_file(record, demo.demo_metadata(cell), include_step_columns=steps)
 
 
 @functools.cache
@@ -182,12 +194,11 @@ def test_a_record_cut_short_is_never_failed_for_what_it_does_not_show(
     failed or passed; the cell with a low first-cycle efficiency (a formation defect)
     may fail, but only on its formation cycle and never with a hazard.
     """
-    record = read_through(which, "typical", steps=steps)
-    full = synth.to_cycle_file(record, demo.demo_metadata(which), include_step_columns=steps)
+    full = typical_text(which.cell_id, steps)
     total = full.count("\n")
     lines = 9 + int(share * (total - 9))
     try:
-        result = judged(record, which, steps=steps, lines=lines)
+        result = judged_text(full, which, lines=lines)
     except FormgateError:
         return  # too little left to judge: the error verdict, quarantined with its reason
     verdict = result.verdict
@@ -205,7 +216,7 @@ def test_a_record_cut_in_the_grading_charge_is_held_saying_where_it_ends() -> No
     record = read_through(cell, "typical")
     charge = record.step_named(9)  # the grading cycle's CC charge
     lines = 9 + (charge.start + charge.stop) // 2  # metadata lines + header, then half the step
-    result = judged(record, cell, lines=lines)
+    result = judged_text(typical_text(cell.cell_id, True), cell, lines=lines)
     assert result.verdict.kind is VerdictKind.HOLD
     assert result.verdict.reasons[0].startswith(
         "Program incomplete: record ends in cycle 2's charge (constant current, program step 9), "
@@ -235,7 +246,7 @@ def _without_temperature(text: str) -> str:
 
 def test_a_file_without_temperature_is_held_not_passed() -> None:
     cell = demo.DEMO_CELLS[0]
-    text = synth.to_cycle_file(read_through(cell, "typical"), demo.demo_metadata(cell))
+    text = typical_text(cell.cell_id, True)
     result = judge(
         _without_temperature(text).encode(), "no-temperature.csv", RULEBOOK, analysed_at=ANALYSED_AT
     )
@@ -258,7 +269,7 @@ def test_a_check_the_rule_set_lets_be_left_out_passes_but_is_named_as_not_made()
     assert text.count('if_missing = "skip"') == source.count('if_missing = "skip"') + 2
     rule_set = load_rule_set(text, "lfp_graphite.toml")
     rulebook = RuleBook(tuple(rule_set if r.name == rule_set.name else r for r in RULEBOOK.rule_sets))
-    data = synth.to_cycle_file(read_through(cell, "typical"), demo.demo_metadata(cell))
+    data = typical_text(cell.cell_id, True)
     result = judge(_without_temperature(data).encode(), "t.csv", rulebook, analysed_at=ANALYSED_AT)
     assert result.verdict.kind is VerdictKind.PASS
     assert summarise(result.verdict) == (
@@ -304,7 +315,7 @@ def test_a_record_cut_short_with_a_hazard_in_it_is_held_with_the_hazards_caution
     cell = next(c for c in demo.DEMO_CELLS if c.defect == "over_temperature")
     record = read_through(cell, "typical")
     charge = record.step_named(9)  # cut in the grading charge, after the hot formation charge
-    result = judged(record, cell, lines=9 + (charge.start + charge.stop) // 2)
+    result = judged_text(typical_text(cell.cell_id, True), cell, lines=9 + (charge.start + charge.stop) // 2)
     verdict = result.verdict
     assert verdict.kind is VerdictKind.HOLD  # incomplete: held, never failed
     assert verdict.hazards == (Hazard.OVER_TEMPERATURE,)
