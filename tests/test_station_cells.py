@@ -181,3 +181,21 @@ def test_closing_a_lot_holds_its_outlier_grades_the_rest_and_writes_its_report(
     assert "hold  (lot closed): outlier in lot" in shown
     assert main(["lot", "show", str(s.root), "NO-SUCH-LOT"]) == 2
     assert "the ledger has no lot 'NO-SUCH-LOT'" in capsys.readouterr().err
+
+
+def test_a_lot_quiet_for_its_rule_sets_time_is_closed_by_the_station(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    rules = LOT_RULES + "\n[lot]\nquiet_h = 0.0005      # test: 1.8 s\n"
+    (s.rules_dir / "test_cells.toml").write_text(rules, encoding="utf-8")
+
+    def closed() -> bool:
+        with Ledger(s.ledger) as ledger:
+            return ledger.lot("LOT-A").closed_by == "station"
+
+    with running(s):
+        drop(s.inboxes[0].folder, "q1.csv", cycle_file("Q-1"))
+        wait_until(lambda: settled(s, 1), what="the lot's one cell")
+        wait_until(closed, what="the station closing the quiet lot")
+    assert (s.certificates / "LOT-A" / "_lot-report.pdf").exists()
+    # the lot still waits for its cell's aging stage: held, never released at the close
+    assert _decisions(s, "Q-1")[-1][:2] == ("hold", "record")

@@ -218,6 +218,21 @@ class CellsMixin(LedgerBase):
         )
         return [r["lot"] for r in rows]
 
+    def lot_cell_type(self, lot: str) -> str | None:
+        """The cell type of the lot's first judged cell (its readings' when it has none)."""
+        row = self._one(
+            "SELECT json_extract(result_json, '$.cell_type.name') AS t FROM results "
+            "WHERE lot = ? AND verdict <> 'error' ORDER BY id LIMIT 1",
+            (lot,),
+        )
+        if row is None or row["t"] is None:
+            row = self._one(
+                "SELECT cell_type AS t FROM readings WHERE lot = ? AND cell_type IS NOT NULL "
+                "LIMIT 1",
+                (lot,),
+            )
+        return None if row is None else str(row["t"])
+
     def lot(self, lot: str) -> LotRow:
         """The lot's cells counted by their latest decision, its last activity and its close."""
         counts: dict[str, int] = {}

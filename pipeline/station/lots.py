@@ -17,10 +17,12 @@ from __future__ import annotations
 import datetime
 import json
 import logging
+import threading
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
+from pipeline.errors import FormgateError
 from pipeline.judge.metricdefs import RULE_METRICS
 from pipeline.lotclose import ClosedCell, ClosedLot, close_lot
 from pipeline.mail.letters import Letter
@@ -164,3 +166,77 @@ def close_and_report(
     log.info("lot %s %s: %d cells, report %s", lot, "closed" if close else "reported",
              len(closed.cells), report)
     return LotOutcome(closed, report, export, tuple(changed), newly)
+
+
+def lots_due(
+    ledger: Ledger, rulebook: RuleBook, now: datetime.datetime
+) -> list[str]:
+    """Open lots quiet for longer than their rule set's ``[lot] quiet_h``."""
+    due = []
+    for name in ledger.lot_names():
+        lot = ledger.lot(name)
+        cell_type = ledger.lot_cell_type(name)
+        if lot.closed_at is not None or lot.last_activity is None or cell_type is None:
+            continue
+        try:
+            quiet_h = rulebook.for_cell_type(cell_type)[0].lot_quiet_h
+        except FormgateError:
+            continue
+        if quiet_h is not None and (now - lot.last_activity).total_seconds() >= quiet_h * 3600:
+            due.append(name)
+    return due
+
+
+class LotCloser(threading.Thread):
+    """Closes the lots that fell quiet, on its own ledger connection, beside the main loop.
+
+    A lot's close (its statistics, decisions and report) takes a while for a large lot;
+    in a thread of its own it never holds up claiming and judging. Whatever goes wrong
+    is logged and tried again next round: a lot close never stops the station.
+    """
+
+    def __init__(
+        self,
+        settings: Settings,
+        rules: Callable[[], RuleBook | None],
+        clock: Callable[[], datetime.datetime],
+        mail_wake: threading.Event,
+        *,
+        interval_s: float = 60.0,
+    ) -> None:
+        super().__init__(name="formgate-lots", daemon=False)
+        self.settings = settings
+        self.rules = rules
+        self.clock = clock
+        self.mail_wake = mail_wake
+        self.interval_s = interval_s
+        self.stop_event = threading.Event()
+
+    def run(self) -> None:
+        with Ledger(self.settings.ledger) as ledger:
+            while not self.stop_event.wait(self.interval_s):
+                self.round(ledger)
+
+    def round(self, ledger: Ledger) -> None:
+        rulebook = self.rules()
+        if rulebook is None:
+            return
+        try:
+            due = lots_due(ledger, rulebook, self.clock())
+        except Exception as exc:  # a busy or failing disk: next round
+            log.error("lots due for closing cannot be listed: %s", exc)
+            return
+        for lot in due:
+            if self.stop_event.is_set():
+                return
+            try:
+                close_and_report(
+                    self.settings, ledger, rulebook, lot, by="station", now=self.clock()
+                )
+                self.mail_wake.set()
+            except Exception as exc:  # logged and tried again; never the end of the station
+                log.error("lot %s could not be closed: %s", lot, exc)
+
+    def stop(self) -> None:
+        self.stop_event.set()
+        self.join()

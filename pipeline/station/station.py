@@ -45,6 +45,7 @@ from pipeline.station.handoff import Seen
 from pipeline.station.inhand import DEATHS_TO_QUARANTINE, Death, InHand, input_key
 from pipeline.station.judges import JudgePool
 from pipeline.station.ledger import InputRow, Ledger
+from pipeline.station.lots import LotCloser
 from pipeline.station.mailer import MailThread
 from pipeline.station.publishing import final_name
 from pipeline.station.rules_in_force import RulesKeeper
@@ -144,6 +145,8 @@ class Station(Claims, RulesKeeper):
             alerts_to=self.settings.routing.alerts_to,
             domain=self.settings.routing.domain,
         )
+        lots = LotCloser(self.settings, lambda: self.rulebook, self.clock, mail.wake,
+                         interval_s=self.settings.reconcile_s * 6)
         try:
             self.duty(lambda: self.after_death(death))
             self.recover()
@@ -151,6 +154,7 @@ class Station(Claims, RulesKeeper):
                 w.start()
             mail.start()
             self.mail_wake = mail.wake
+            lots.start()
             log.info(
                 "station %s watching %s",
                 self.settings.station_name,
@@ -170,6 +174,8 @@ class Station(Claims, RulesKeeper):
         finally:
             for w in watchers:
                 w.stop()
+            if lots.is_alive():
+                lots.stop()
             mail.stop()
             self.judges.shutdown()
             self.inhand.close()
