@@ -228,7 +228,9 @@ def close_lot(
         )
         for cell in cell_ids
     }
-    before = {c: decide(rule_set.stages, st.records) for c, st in first.items()}
+    needed = {c: (rule_set.cell_type(types[c]) or cell_type).stages or rule_set.stages
+              for c in cell_ids}
+    before = {c: decide(needed[c], st.records) for c, st in first.items()}
     rows = [CellRow(c, before[c].verdict, st.values) for c, st in first.items()]
     screened = lot_statistics(rows, checks, screens, grades)
     flagged: dict[str, list[str]] = {}
@@ -240,7 +242,7 @@ def close_lot(
         decision = before[cell]
         final = decision
         if cell in flagged:
-            final = decide(rule_set.stages, st.records, flagged[cell])
+            final = decide(needed[cell], st.records, flagged[cell])
         grade = screened.grades.get(cell) if final.verdict == "pass" else None
         cells.append(
             ClosedCell(cell, types[cell], decision, final, grade, st.values, st.files, st.decided_at)

@@ -417,6 +417,7 @@ class CellType:
     max_voltage_v: float
     description: str = ""
     where: SourceRef | None = None
+    stages: tuple[str, ...] | None = None  # None: the rule set's [stages] needed
 
 
 @dataclass(frozen=True, slots=True)

@@ -221,7 +221,8 @@ def _build_cell_type(out: Collector, ident: str, v: Values, plausible: Values) -
             "Swap the two values, or check [plausible] and this cell type together.",
         )
         return None
-    return CellType(ident, nominal, low, high, str(v["description"]), out.where(path))
+    stages = tuple(str(s) for s in cast(Sequence[str], v["stages"])) if "stages" in v else None
+    return CellType(ident, nominal, low, high, str(v["description"]), out.where(path), stages)
 
 
 def _line_order(error: RulesError) -> tuple[bool, int]:
@@ -287,7 +288,7 @@ def _parse(text: str, name: str) -> tuple[RuleSet | None, list[RulesError]]:
         for ident, v in check_values.items()
         if (r := _build_rule(out, ident, v, declared, ident in broken_checks)) is not None
     ]
-    lot = lot_rules(out, data, plain["stages"], families["screen"], rules)
+    lot = lot_rules(out, data, plain["stages"], families["screen"], rules, cell_types)
     if not out.errors:
         for ct in cell_types:
             if not any(not r.cell_types or ct.name in r.cell_types for r in rules):

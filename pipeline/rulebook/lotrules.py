@@ -14,7 +14,7 @@ from dataclasses import dataclass
 from typing import cast
 
 from pipeline.judge.metricdefs import AGING_METRIC_NAMES, RULE_BY_NAME, RULE_METRIC_NAMES
-from pipeline.model import STAGES, Grade, Rule, Screen
+from pipeline.model import STAGES, CellType, Grade, Rule, Screen
 from pipeline.rulebook.schema import BY_TABLE
 from pipeline.rulebook.tables import Collector, Values, check_table, close_match, describe, number
 
@@ -33,9 +33,10 @@ def lot_rules(
     stages: Values,
     screens: tuple[dict[str, Values], set[str]],
     rules: Sequence[Rule],
+    cell_types: Sequence[CellType] = (),
 ) -> LotRules:
     """Check the stage rules, build the screens and the grades; problems go to ``out``."""
-    _check_stages(out, stages, rules)
+    _check_stages(out, stages, rules, cell_types)
     values, broken = screens
     built = tuple(
         Screen(
@@ -52,38 +53,51 @@ def lot_rules(
     return LotRules(built, _grades(out, data.get("grade", {})))
 
 
-def _check_stages(out: Collector, stages: Values, rules: Sequence[Rule]) -> None:
-    needed = cast(Sequence[str], stages.get("needed", ()))
-    path = ("stages",)
+def _check_stage_list(out: Collector, needed: Sequence[str], path: tuple[str, ...], key: str) -> None:
+    where = "[stages] needed" if path == ("stages",) else f"[cell_type.{path[-1]}] stages"
     for stage in needed:
         if stage not in STAGES:
             guess = close_match(stage, STAGES)
             out.add(
-                f'[stages] needed holds "{stage}", which is not a stage',
+                f'{where} holds "{stage}", which is not a stage',
                 path,
-                "needed",
+                key,
                 (f"Did you mean '{guess}'? " if guess else "") + f"Stages: {', '.join(STAGES)}.",
             )
     if len(set(needed)) != len(needed):
-        out.add("[stages] needed names a stage twice", path, "needed", "Name each stage once.")
+        out.add(f"{where} names a stage twice", path, key, "Name each stage once.")
     if not needed:
         out.add(
-            "[stages] needed is empty",
+            f"{where} is empty",
             path,
-            "needed",
-            'Name the stages a cell must pass, e.g. needed = ["formation", "grading"].',
+            key,
+            'Name the stages a cell must pass, e.g. ["formation", "grading"].',
         )
-    aging_checks = [r for r in rules if r.metric in AGING_METRIC_NAMES]
-    if aging_checks and "aging" not in needed:
-        first = aging_checks[0]
-        out.add(
-            f"check '{first.id}' judges {first.metric}, an aging metric, but [stages] needed "
-            "does not name aging",
-            ("check", first.id),
-            "metric",
-            'Add "aging" to needed under [stages] (e.g. needed = ["formation", "aging", '
-            '"grading"]), or the check could never be made.',
-        )
+
+
+def _check_stages(
+    out: Collector, stages: Values, rules: Sequence[Rule], cell_types: Sequence[CellType]
+) -> None:
+    needed = tuple(cast(Sequence[str], stages.get("needed", ())))
+    _check_stage_list(out, needed, ("stages",), "needed")
+    for ct in cell_types:
+        if ct.stages is not None:
+            _check_stage_list(out, ct.stages, ("cell_type", ct.name), "stages")
+    for rule in rules:
+        if rule.metric not in AGING_METRIC_NAMES:
+            continue
+        types = [ct for ct in cell_types if not rule.cell_types or ct.name in rule.cell_types]
+        lacking = [ct.name for ct in types if "aging" not in (ct.stages or needed)]
+        if lacking or (not cell_types and "aging" not in needed):
+            out.add(
+                f"check '{rule.id}' judges {rule.metric}, an aging metric, but the stages "
+                f"needed by {', '.join(lacking) or 'this rule set'} do not name aging",
+                ("check", rule.id),
+                "metric",
+                'Add "aging" to needed under [stages] (e.g. needed = ["formation", "aging", '
+                '"grading"]) or to the cell type\'s stages, or the check could never be made.',
+            )
+            return
 
 
 def _grades(out: Collector, data: object) -> tuple[Grade, ...]:

@@ -146,6 +146,13 @@ TABLES: tuple[Table, ...] = (
                 unit="V",
                 allowed_note="defaults to [plausible]",
             ),
+            Key(
+                "stages",
+                TEXT_LIST,
+                "the stages a final verdict of this cell type needs (its line may differ from "
+                "the others')",
+                allowed_note="formation, aging, grading; defaults to [stages] needed",
+            ),
         ),
         named=True,
         required=True,

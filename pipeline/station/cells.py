@@ -117,7 +117,7 @@ class CellKeeping(Guarded):
             return None
         rule_set, cell_type = self.rulebook.for_cell_type(types[-1])
         stages = cell_stages(docs, readings, rule_set, cell_type)
-        decision = decide(rule_set.stages, stages.records)
+        decision = decide(cell_type.stages or rule_set.stages, stages.records)
         now = self.clock()
 
         def letters(before: DecisionRow | None) -> list[Letter]:
