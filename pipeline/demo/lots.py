@@ -21,8 +21,11 @@ import numpy as np
 from pipeline.demo.synth import (
     CellRecipe,
     SimulatedRecord,
+    StageRecords,
     self_discharge_for_drift,
     simulate_formation,
+    split_stages,
+    stage_metadata,
     to_cycle_file,
 )
 
@@ -259,3 +262,33 @@ def write_demo_lot(
         os.replace(part, target)
         paths.append(target)
     return paths
+
+
+# The two stages a demo cell's record may be written as, one file each.
+FILE_STAGES = ("formation", "grading")
+
+
+def demo_stage_records(cell: DemoCell, seed: int = 2026) -> StageRecords:
+    """The cell's record (:func:`demo_record`) as a formation and a grading record.
+
+    The formation record's storage charge reads the channel with its own generator, so
+    the whole record stays what :func:`demo_record` gives.
+    """
+    rng = np.random.default_rng([seed, zlib.crc32(f"{cell.cell_id} formation".encode())])
+    return split_stages(demo_record(cell, seed), rng)
+
+
+def stage_file_name(cell: DemoCell, stage: str) -> str:
+    """The file name of one stage of the cell: ``<lot>_<cell_id>_<stage>.csv`` (no gzip)."""
+    return f"{cell.lot}_{cell.cell_id}_{stage}.csv"
+
+
+def demo_stage_files(cell: DemoCell, seed: int = 2026) -> dict[str, bytes]:
+    """The cell's formation file and grading file, stage -> bytes, each saying its stage."""
+    records = demo_stage_records(cell, seed)
+    chemistry = _BASE[cell.cell_type].chemistry.split("_")[0]
+    out = {}
+    for stage, record in zip(FILE_STAGES, (records.formation, records.grading), strict=True):
+        metadata = {**demo_metadata(cell), "program": f"{chemistry}-{stage}-v1"}
+        out[stage] = to_cycle_file(record, stage_metadata(metadata, stage)).encode("utf-8")
+    return out

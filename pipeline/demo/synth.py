@@ -8,6 +8,8 @@ loss, a side reaction on charge, a leakage current for self-discharge, lumped I^
 heating; what a cycler channel records of it (noise, offset, spikes) is channel.py's.
 It exists to give the demo and the tests plausible records whose true values
 are known; formgate never uses it to judge a real cell. Writing files is lots.py's job.
+A record may also be written as two, its formation and its grading (:func:`split_stages`),
+as when a cell's stages run on different channels or days.
 Longer than most modules because the cell model, the program that drives it and the
 cycle-file text are one simulation, each step feeding the next.
 
@@ -646,3 +648,158 @@ def self_discharge_for_drift(recipe: CellRecipe, drift_mv_per_h: float) -> float
     volts = cell.base(np.array([soc - h, soc + h]))
     dv_dsoc = float(volts[1] - volts[0]) / (2 * h)
     return -drift_mv_per_h / 1000.0 * recipe.capacity_ah / dv_dsoc
+
+
+# The rest after cycle 1's discharge: a record written as two files is split inside it.
+SPLIT_REST_STEP = 8
+# The formation file's own program after cycle 1's discharge: that rest, a charge to the
+# storage level and a rest (numbered as a formation program on its own would number them).
+STORAGE_CHARGE_STEP = 9
+STORAGE_REST_STEP = 10
+# Rest after the formation file's storage charge: our own choice, a typical half hour.
+STORAGE_REST_S = 1800.0
+
+
+@dataclass(frozen=True, slots=True)
+class StageRecords:
+    """One simulated cell written as two records: its formation and its grading.
+
+    ``cut`` is the row of the whole record where the grading record starts: the
+    formation record holds the whole record's rows before it, then a charge to the
+    storage level and a rest of its own; the grading record holds the rows from it on,
+    its time counted from 0, its steps and cycles numbered from 1.
+    """
+
+    formation: SimulatedRecord
+    grading: SimulatedRecord
+    cut: int
+
+
+def _replay_formation(recipe: CellRecipe, rest_s: float, storage_rest_s: float) -> _Run:
+    """The noiseless run of cycle 1, ``rest_s`` of the rest after it, a storage charge and a rest.
+
+    Steps 1-7 are the ones :func:`simulate_formation` runs, on the same sample grid, so
+    their rows are the whole record's before channel errors (the cell model draws no
+    random numbers).
+    """
+    cell = _Cell(recipe)
+    p, nominal = recipe.program, recipe.nominal_capacity_ah
+    dt = round(recipe.sample_interval_s * 10)
+    run = _Run(cell, soc=-cell.sei)
+    _rest(run, 1, 1, p.initial_rest_s, dt)
+    _constant_current(run, 2, 1, p.pre_charge_rate_c * nominal, dt, soc_limit=1.0,
+                      v_limit=cell.chem.max_v, charge_limit_ah=p.pre_charge_fraction * nominal)
+    _rest(run, 3, 1, p.pre_charge_rest_s, dt)
+    _charge_cc_cv(run, 4, 1, dt)
+    _rest(run, 6, 1, p.rest_after_charge_s, dt)
+    _constant_current(run, 7, 1, -p.discharge_rate_c * nominal, dt, soc_limit=0.0,
+                      v_limit=cell.chem.min_v)
+    run.formed = True
+    _rest(run, SPLIT_REST_STEP, 2, rest_s, dt)
+    storage = cell.chem.storage_soc if p.storage_soc is None else p.storage_soc
+    _constant_current(run, STORAGE_CHARGE_STEP, 2, p.charge_rate_c * nominal, dt,
+                      soc_limit=storage, v_limit=cell.chem.max_v)
+    _rest(run, STORAGE_REST_STEP, 2, storage_rest_s, dt)
+    return run
+
+
+def split_stages(
+    record: SimulatedRecord,
+    rng: np.random.Generator,
+    *,
+    at_s: float | None = None,
+    storage_rest_s: float = STORAGE_REST_S,
+) -> StageRecords:
+    """``record`` (of :func:`simulate_formation`) as a formation record and a grading record.
+
+    The split falls at ``at_s`` (s from the start; default the middle) inside the rest
+    after cycle 1's discharge, as when a cell leaves its formation channel for another
+    channel or day. Both keep the whole record's rows, so the channel errors those carry
+    stay; the formation record's storage charge and rest are simulated on the cell model
+    from the state at the split and read through the record's channel (noise, offset, the
+    switch spike) with ``rng``. What the cell went through between the two records is not
+    in either (it holds no charge or discharge of any cycle).
+    """
+    rest = record.step_named(SPLIT_REST_STEP)
+    at = 0.5 * (rest.start_s + rest.end_s) if at_s is None else at_s
+    cut = int(np.searchsorted(record.time_s, at))
+    if not rest.start < cut < rest.stop:
+        raise ValueError(
+            f"the split at {at:g} s must leave rows of the rest after cycle 1 "
+            f"({rest.start_s:g}-{rest.end_s:g} s) on both sides"
+        )
+    recipe = record.recipe
+    run = _replay_formation(recipe, float(record.time_s[cut - 1]) - rest.start_s, storage_rest_s)
+    if sum(t.stop - t.start for t in run.truths[:SPLIT_REST_STEP]) != cut:
+        raise ValueError("the record is not simulate_formation's for its recipe")
+    return StageRecords(
+        _formation_part(record, run, cut, rng), _grading_part(record, cut), cut
+    )
+
+
+def _formation_part(
+    record: SimulatedRecord, run: _Run, cut: int, rng: np.random.Generator
+) -> SimulatedRecord:
+    """The whole record's rows before ``cut``, then the run's storage charge and rest."""
+    recipe = record.recipe
+    time_s = np.concatenate(run.times) / 10.0
+    volts, amps = np.concatenate(run.volts), np.concatenate(run.amps)
+    counts = [t.stop - t.start for t in run.truths]
+    step = np.repeat([t.number for t in run.truths], counts)
+    temps = _temperatures(recipe, time_s, amps)
+    # the last kept row goes in with the new ones, so the storage charge's first row shows the switch
+    tail = slice(cut - 1, None)
+    channel = recipe.channel or Channel.for_cell(recipe.nominal_capacity_ah)
+    volts, amps, temps = add_channel_errors(
+        volts[tail], amps[tail], temps[tail], step[tail], channel, rng
+    )
+    return SimulatedRecord(
+        recipe=recipe,
+        time_s=np.concatenate((record.time_s[:cut], time_s[cut:])),
+        voltage_v=np.concatenate((record.voltage_v[:cut], np.round(volts[1:], 5) + 0.0)),
+        current_a=np.concatenate((record.current_a[:cut], np.round(amps[1:], 5) + 0.0)),
+        temperature_c=np.concatenate((record.temperature_c[:cut], np.round(temps[1:], 2) + 0.0)),
+        step=step,
+        cycle=np.repeat([t.cycle for t in run.truths], counts),
+        steps=tuple(run.truths),
+    )
+
+
+def _grading_part(record: SimulatedRecord, cut: int) -> SimulatedRecord:
+    """The whole record's rows from ``cut`` on: time from 0, steps and cycles from 1."""
+    t0 = float(record.time_s[cut])
+    first = record.step_named(SPLIT_REST_STEP)
+    shift_step, shift_cycle = first.number - 1, first.cycle - 1
+    # the rest loses only leakage: its state of charge at the cut, on a straight line
+    share = (t0 - first.start_s) / (first.end_s - first.start_s)
+    truths = [
+        StepTruth(
+            t.number - shift_step,
+            t.cycle - shift_cycle,
+            t.kind,
+            max(t.start, cut) - cut,
+            t.stop - cut,
+            max(t.start_s, t0) - t0,
+            t.end_s - t0,
+            t.soc_start + share * (t.soc_end - t.soc_start) if t is first else t.soc_start,
+            t.soc_end,
+            t.charge_ah,
+        )
+        for t in record.steps
+        if t.stop > cut
+    ]
+    return SimulatedRecord(
+        recipe=record.recipe,
+        time_s=np.round((record.time_s[cut:] - t0) * 10.0) / 10.0,
+        voltage_v=record.voltage_v[cut:],
+        current_a=record.current_a[cut:],
+        temperature_c=record.temperature_c[cut:],
+        step=record.step[cut:] - shift_step,
+        cycle=record.cycle[cut:] - shift_cycle,
+        steps=tuple(truths),
+    )
+
+
+def stage_metadata(metadata: Mapping[str, str], stage: str) -> dict[str, str]:
+    """``metadata`` with the ``stage`` a record of one stage says it holds (after the rest)."""
+    return {**{k: v for k, v in metadata.items() if k != "stage"}, "stage": stage}
