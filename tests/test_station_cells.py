@@ -7,6 +7,7 @@ the inbox, the worker processes, the SQLite ledger, the .eml letters on disk.
 
 from __future__ import annotations
 
+import datetime
 import email
 import email.policy
 from pathlib import Path
@@ -15,6 +16,7 @@ import pytest
 
 from pipeline.station.ledger import Ledger
 from pipeline.station.settings import Settings
+from pipeline.station.status import status_text
 from tests.station_kit import RULES, check_invariants, cycle_file, drop, make_station, running
 from tests.station_kit import settled, wait_until
 
@@ -94,6 +96,10 @@ def test_cycle_files_and_a_tester_file_make_one_decision_per_cell(tmp_path: Path
     assert not any("HOLD cell C-1" in str(m["Subject"]) for m in _letters(s))
     with Ledger(s.ledger) as ledger:
         assert len(ledger.readings_of("LOT-A")) == 4
+    # status shows each cell once, and what stands for the cell when its records say less
+    report = status_text(s, datetime.datetime.now(datetime.UTC))
+    assert report.count("  C-2  lot LOT-A  pass") == 1
+    assert "      the cell: fail: k_value_mV_per_day 3.029 mV/day > 1 mV/day (reject)" in report
 
 
 def test_a_mailed_failure_that_a_later_record_supersedes_gets_a_follow_up(tmp_path: Path) -> None:
@@ -106,6 +112,8 @@ def test_a_mailed_failure_that_a_later_record_supersedes_gets_a_follow_up(tmp_pa
         wait_until(lambda: any("UPDATE cell C-9" in str(m["Subject"]) for m in _letters(s)),
                    what="the follow-up")
     assert [d[0] for d in _decisions(s, "C-9")] == ["fail", "pass"]
+    report = status_text(s, datetime.datetime.now(datetime.UTC))
+    assert report.count("  C-9  lot LOT-A") == 1 and "(record 2 of 2)" in report
     update = next(m for m in _letters(s) if "UPDATE cell C-9" in str(m["Subject"]))
     assert "now pass, was fail" in str(update["Subject"])
     body = " ".join(update.get_body().get_content().split())  # type: ignore[union-attr]

@@ -88,7 +88,8 @@ class Duties(Guarded):
                 continue
             # the digest covers the new pass cells and lists the whole lot as it stands
             rows = []
-            for c in self.ledger.current_cells_of_lot(lot):
+            latest = {c.cell_id: c for c in self.ledger.current_cells_of_lot(lot)}  # one per cell
+            for c in latest.values():
                 document = json.loads(c.result_json)
                 rows.append(
                     DigestRow(

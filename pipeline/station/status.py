@@ -146,14 +146,24 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
         )
         lines.append("")
         lines.append("last cells")
-        for r in ledger.recent_results(10):
+        seen: set[tuple[str, str]] = set()
+        for r in ledger.recent_results(50):
+            if (r.lot, r.cell_id) in seen or len(seen) == 10:
+                continue  # one line per cell: its latest record, and which of how many it is
+            seen.add((r.lot, r.cell_id))
             # a fail or hold names what decided it (the result's deciding line)
             decision = json.loads(r.result_json).get("decision", "") if r.verdict != "pass" else ""
+            records = ledger.results_of_cell(r.lot, r.cell_id)
+            number = next((n for n, x in enumerate(records, 1) if x.id == r.id), len(records))
+            cell = ledger.latest_decision(r.lot, r.cell_id)
             lines.append(
                 f"  {r.analysed_at.isoformat()}  {r.cell_id}  lot {r.lot}  {r.verdict}"
                 + (f": {decision}" if decision else "")
                 + (f"  hazard: {', '.join(r.hazards)}" if r.hazards else "")
+                + (f"  (record {number} of {len(records)})" if len(records) > 1 else "")
             )
+            if cell is not None and (cell.verdict != r.verdict or cell.reason != decision):
+                lines.append(f"      the cell: {cell.verdict}" + (f": {cell.reason}" if cell.reason else ""))
         outbox = ledger.outbox_counts()
         lines.append("")
         lines.append(
