@@ -17,8 +17,16 @@ import pytest
 from pipeline.station.ledger import Ledger
 from pipeline.station.settings import Settings
 from pipeline.station.status import status_text
-from tests.station_kit import RULES, check_invariants, cycle_file, drop, make_station, running
-from tests.station_kit import settled, wait_until
+from tests.station_kit import (
+    RULES,
+    check_invariants,
+    cycle_file,
+    drop,
+    make_station,
+    running,
+    settled,
+    wait_until,
+)
 
 pytestmark = pytest.mark.slow
 

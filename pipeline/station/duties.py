@@ -88,8 +88,8 @@ class Duties(Guarded):
                 continue
             # the digest covers the new pass cells and lists the whole lot as it stands
             rows = []
-            latest = {c.cell_id: c for c in self.ledger.current_cells_of_lot(lot)}  # one per cell
-            for c in latest.values():
+            by_cell = {c.cell_id: c for c in self.ledger.current_cells_of_lot(lot)}  # one per cell
+            for c in by_cell.values():
                 document = json.loads(c.result_json)
                 rows.append(
                     DigestRow(
