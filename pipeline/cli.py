@@ -85,6 +85,7 @@ def cmd_check(args: argparse.Namespace) -> int:
 
         prepare_process()  # many certificates: pay the start-up once, then render faster
     worst = EXIT_OK
+    seen: dict[tuple[str, str], str] = {}  # (lot, cell) -> the file that judged it first
     for name in args.files:
         outcome = check_file(
             Path(name),
@@ -102,7 +103,12 @@ def cmd_check(args: argparse.Namespace) -> int:
             continue
         assert outcome.result is not None
         kind = outcome.result.verdict.kind.value
-        print(f"{outcome.result.cell_id}  {kind}  {_reason(outcome)}")
+        print(f"{Path(name).name}  {outcome.result.cell_id}  {kind}  {_reason(outcome)}")
+        key = (outcome.result.lot, outcome.result.cell_id)
+        if key in seen and out is not None:
+            print(f"    note: {Path(seen[key]).name} holds the same cell; this file's result and "
+                  "certificate replaced that one's in the output folder")
+        seen.setdefault(key, name)
         if kind != "pass":
             worst = max(worst, EXIT_REJECTED)
     return worst

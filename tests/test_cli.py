@@ -24,10 +24,14 @@ ANALYSED_AT = "2026-12-01T08:00:00+00:00"
 GOOD, HIGH_DCIR, HOT = DEMO_CELLS[0], DEMO_CELLS[10], DEMO_CELLS[13]
 assert (GOOD.defect, HIGH_DCIR.defect, HOT.defect) == ("", "high_dcir", "over_temperature")
 
-GOOD_LINE = "L01-001  pass  all checks in window"
+# the file's name, the cell it holds, the verdict and what decided it
+GOOD_LINE = f"{GOOD.file_name}  L01-001  pass  all checks in window"
 # the one-line output names the deciding check with its value and the bound it crossed
-HIGH_DCIR_LINE = "L01-011  fail  dcir_mOhm 11.98 mOhm > 8 mOhm (reject)"
-HOT_LINE = "L01-014  fail  max_temperature_C 62.73 °C > 60 °C (reject) [hazard: over_temperature]"
+HIGH_DCIR_LINE = f"{HIGH_DCIR.file_name}  L01-011  fail  dcir_mOhm 11.98 mOhm > 8 mOhm (reject)"
+HOT_LINE = (
+    f"{HOT.file_name}  L01-014  fail  max_temperature_C 62.73 °C > 60 °C (reject) "
+    "[hazard: over_temperature]"
+)
 
 
 @functools.cache
@@ -132,8 +136,25 @@ def test_check_worst_outcome_wins(
     argv = ["check", *map(str, paths), "--rules", RULES, "--analysed-at", ANALYSED_AT, "--no-pdf"]
     assert main(argv) == expected
     lines = capsys.readouterr().out.splitlines()
-    verdicts = [line.split("  ")[1] for line in lines if not line.startswith(" ")]
+    words = ("pass", "fail", "hold", "error")
+    verdicts = [
+        next(w for w in line.split("  ") if w in words) for line in lines if not line.startswith(" ")
+    ]
     assert verdicts == list(kinds)  # one line per file, in the order given
+
+
+def test_check_names_each_file_and_notes_a_cell_given_twice(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    first, again = write_cell(tmp_path / "in", 0), write_cell(tmp_path / "in", 0, "copy.csv")
+    argv = ["check", str(first), str(again), "--rules", RULES, "--out", str(tmp_path / "out")]
+    assert main([*argv, "--analysed-at", ANALYSED_AT, "--no-pdf"]) == 0
+    out = capsys.readouterr().out.splitlines()
+    assert out[0] == GOOD_LINE and out[1] == GOOD_LINE.replace(GOOD.file_name, "copy.csv")
+    assert out[2] == (
+        f"    note: {GOOD.file_name} holds the same cell; this file's result and certificate "
+        "replaced that one's in the output folder"
+    )
 
 
 def test_check_with_import_profile(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
@@ -150,7 +171,7 @@ def test_check_with_import_profile(tmp_path: Path, capsys: pytest.CaptureFixture
     profile = RULES_DIR / "profiles" / "tab_separated_ms.toml"
     argv = ["check", str(path), "--rules", RULES, "--profile", str(profile), "--analysed-at", ANALYSED_AT]
     assert main(argv) == 0
-    assert capsys.readouterr() == (GOOD_LINE + "\n", "")
+    assert capsys.readouterr() == (GOOD_LINE.replace(GOOD.file_name, "tab-log.txt") + "\n", "")
 
 
 def test_check_out_twice_gives_identical_files_that_match_the_schema(
@@ -204,7 +225,8 @@ def test_hostile_cell_ids_stay_literal_and_inside_out(
     argv = ["check", str(inbox / "html.csv"), str(inbox / "climb.csv"), "--rules", RULES]
     assert main([*argv, "--out", str(out), "--analysed-at", ANALYSED_AT]) == 0
     assert capsys.readouterr() == (
-        f"{html_id}  pass  all checks in window\n{climbing_id}  pass  all checks in window\n",
+        f"html.csv  {html_id}  pass  all checks in window\n"
+        f"climb.csv  {climbing_id}  pass  all checks in window\n",
         "",
     )
 
