@@ -17,7 +17,7 @@ from pipeline.errors import FormgateError, InputError
 from pipeline.judge.evaluate import evaluate
 from pipeline.judge.metrics import measure
 from pipeline.judge.segmentation import split_steps
-from pipeline.model import CellResult, RuleSetRef, SourceRef, VerdictKind
+from pipeline.model import WHOLE_PROGRAM, CellResult, RuleSetRef, SourceRef, VerdictKind
 from pipeline.names import safe_name
 from pipeline.read.cyclefile import file_stages, read_cycle_file
 from pipeline.read.profile import Profile
@@ -93,8 +93,15 @@ class Published:
 
 
 def result_paths(results: Path, certificates: Path, result: CellResult) -> tuple[Path, Path]:
-    """``<results>/<lot>/<cell_id>.json`` and ``<certificates>/<lot>/<cell_id>.pdf``, safe names."""
+    """``<results>/<lot>/<cell_id>.json`` and ``<certificates>/<lot>/<cell_id>.pdf``, safe names.
+
+    A file of one stage gets its stage after a ``~`` (``<cell_id>~formation.json``), so a
+    cell's formation and grading files never replace each other's outputs; no safe cell
+    id holds a ``~``, so no other cell's name can meet it.
+    """
     lot, cell = safe_name(result.lot), safe_name(result.cell_id)
+    if tuple(result.stages) != WHOLE_PROGRAM:
+        cell += "~" + "+".join(result.stages)
     return results / lot / f"{cell}.json", certificates / lot / f"{cell}.pdf"
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 import datetime
 import email
 import email.policy
+import re
 from pathlib import Path
 
 import pytest
@@ -183,6 +184,11 @@ def test_closing_a_lot_holds_its_outlier_grades_the_rest_and_writes_its_report(
             c: (None if c == "L-5" else "A") for c in cells
         }
         assert ledger.lot("LOT-A").closed_by == "command"
+        # the lot's last digest: every cell as closed, graded, with the report attached
+        (closing,) = [m for m in ledger.mail_in_state("pending") if "lot LOT-A, closed" in m.subject]
+        assert closing.attachment_path and closing.attachment_path.endswith("_lot-report.pdf")
+        assert re.search(r"^L-1 +pass A ", closing.body_text, re.M), closing.body_text
+        assert "outlier in lot" in closing.body_text
     report = s.certificates / "LOT-A" / "_lot-report.pdf"
     text = " ".join(" ".join(p.extract_text() for p in PdfReader(report).pages).split())
     assert "LOT-A" in text and "L-5" in text and "outlier in lot" in text

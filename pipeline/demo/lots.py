@@ -10,6 +10,7 @@ it, so a watcher never claims half a file. The simulation itself is synth.py's.
 from __future__ import annotations
 
 import dataclasses
+import datetime
 import gzip
 import os
 import pathlib
@@ -18,6 +19,12 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from pipeline.demo.aging import (
+    NORMAL_SELF_DISCHARGE_MA,
+    SLOW_SELF_DISCHARGE_FACTOR,
+    AgingCell,
+    aging_readings,
+)
 from pipeline.demo.synth import (
     CellRecipe,
     SimulatedRecord,
@@ -33,6 +40,9 @@ STATION = "demo-line-1"
 LFP_CELL_TYPE = "DEMO-LFP-20A"  # must match rules/lfp_graphite.toml
 NMC_CELL_TYPE = "DEMO-NMC-5A"  # as declared in rules/nmc_graphite.toml
 NA_CELL_TYPE = "DEMO-NA-10A"  # as declared in rules/sodium_hard_carbon.toml
+# The same invented cell made on a line with an aging stage (rules/nmc_graphite.toml): its
+# formation and grading come as two files, its aging readings in the lot's tester file.
+STAGED_CELL_TYPE = "DEMO-NMC-5S"
 
 DEFECTS = (
     "low_capacity",
@@ -122,6 +132,22 @@ DEMO_NA_CELLS: tuple[DemoCell, ...] = _lot(
 )
 # Every demo lot, in the order the demo hands them over.
 ALL_DEMO_CELLS: tuple[DemoCell, ...] = DEMO_CELLS + DEMO_NMC_CELLS + DEMO_NA_CELLS
+# Lot DEMO-LOT-04, on a line with an aging stage: 22 normal NMC cells, one of low capacity, and
+# one that loses charge five times faster on the shelf: its K-value stays inside the window,
+# but far out of its lot. Each cell comes as a formation file and a grading file, the lot's
+# aging readings as one tester file.
+SLOW_SELF_DISCHARGE = "slow_self_discharge"
+DEMO_STAGED_CELLS: tuple[DemoCell, ...] = _lot(
+    "DEMO-LOT-04",
+    STAGED_CELL_TYPE,
+    "S04",
+    "2026-03-05",
+    ("low_capacity", SLOW_SELF_DISCHARGE),
+    normal=22,
+    compressed=(),
+)
+AGING_START = "2026-03-09T08:00:00+00:00"  # the first reading, after formation
+AGING_DAYS = 7.0
 
 # Cell-type baselines (our own invented cells): capacity is set about 2 % above nominal, as
 # rated capacity is usually a few percent below typical (common practice).
@@ -162,13 +188,16 @@ _BASE = {
         thermal_time_constant_s=1200.0,
     ),
 }
+_BASE[STAGED_CELL_TYPE] = _BASE[NMC_CELL_TYPE]
 # Internal-short drift after relaxation and over-temperature peak of the defect cells.
 SHORT_DRIFT_MV_PER_H = -3.0
 # A drift between the LFP rule set's review (-0.5) and reject (-2) limits: held for review.
 SLOW_DRIFT_MV_PER_H = -1.0
 OVER_TEMPERATURE_C = 62.0
 # DCIR multiple of the high-resistance cell, well beyond the type's usual +-5 % spread.
-_HIGH_DCIR_FACTOR = {LFP_CELL_TYPE: 2.5, NMC_CELL_TYPE: 3.5, NA_CELL_TYPE: 2.5}
+_HIGH_DCIR_FACTOR = {
+    LFP_CELL_TYPE: 2.5, NMC_CELL_TYPE: 3.5, STAGED_CELL_TYPE: 3.5, NA_CELL_TYPE: 2.5
+}
 # Part of each charge lost to sodium plated on the hard carbon: the grading cycle returns about
 # 93 % of its charge, below the sodium rule set's 95 % (our own size).
 PLATING_SIDE_FRACTION = 0.07
@@ -191,7 +220,7 @@ def demo_recipe(cell: DemoCell, rng: np.random.Generator) -> CellRecipe:
         ambient_swing_c=0.3,  # a formation room held within a few tenths of a degree (our own)
     )
     match cell.defect:
-        case "":
+        case "" | "slow_self_discharge":  # the latter leaks on the shelf (demo_aging_file)
             return recipe
         case "low_capacity":
             return dataclasses.replace(recipe, capacity_factor=0.90)
@@ -292,3 +321,30 @@ def demo_stage_files(cell: DemoCell, seed: int = 2026) -> dict[str, bytes]:
         metadata = {**demo_metadata(cell), "program": f"{chemistry}-{stage}-v1"}
         out[stage] = to_cycle_file(record, stage_metadata(metadata, stage)).encode("utf-8")
     return out
+
+
+def demo_aging_file(cells: tuple[DemoCell, ...] = DEMO_STAGED_CELLS, seed: int = 2026) -> bytes:
+    """The lot's tester file: two open-circuit readings of every cell, AGING_DAYS apart.
+
+    Each cell rests at a storage charge of 38-42 % and loses charge through its own small
+    leak (pipeline.demo.aging); the slow self-discharger's leak is five times the usual.
+    """
+    rng = np.random.default_rng([seed, zlib.crc32(b"aging")])
+    shelf = []
+    for cell in cells:
+        leak = NORMAL_SELF_DISCHARGE_MA * float(rng.normal(1.0, 0.1))
+        if cell.defect == SLOW_SELF_DISCHARGE:
+            leak = NORMAL_SELF_DISCHARGE_MA * SLOW_SELF_DISCHARGE_FACTOR
+        shelf.append(
+            AgingCell(
+                cell_id=cell.cell_id,
+                lot=cell.lot,
+                cell_type=cell.cell_type,
+                curve="nmc811_graphite",
+                storage_soc=float(rng.uniform(0.38, 0.42)),
+                self_discharge_ma=max(leak, 0.0),
+                capacity_ah=_BASE[cell.cell_type].nominal_capacity_ah,
+            )
+        )
+    start = datetime.datetime.fromisoformat(AGING_START)
+    return aging_readings(shelf, start=start, days=AGING_DAYS, seed=seed)

@@ -10,6 +10,7 @@ Demo only: nothing here is used by the station itself.
 
 from __future__ import annotations
 
+import datetime
 import json
 import logging
 import tempfile
@@ -17,10 +18,19 @@ import threading
 import time
 from pathlib import Path
 
-from pipeline.demo.lots import ALL_DEMO_CELLS, DemoCell, demo_file_bytes
+from pipeline.demo.lots import (
+    ALL_DEMO_CELLS,
+    DEMO_STAGED_CELLS,
+    DemoCell,
+    demo_aging_file,
+    demo_file_bytes,
+    demo_stage_files,
+    stage_file_name,
+)
 from pipeline.shipped import RULES_DIR
 from pipeline.station.ledger import Ledger
-from pipeline.station.settings import init_station, read_settings, smtp_settings
+from pipeline.station.lots import LotOutcome
+from pipeline.station.settings import Settings, init_station, read_settings, smtp_settings
 from pipeline.station.station import Station
 
 STATION_TOML = """\
@@ -96,6 +106,27 @@ def simulate_cycler(root: Path, cells: tuple[DemoCell, ...], log: logging.Logger
     return dropped
 
 
+def simulate_staged_line(root: Path, log: logging.Logger) -> list[str]:
+    """Hand over lot DEMO-LOT-04 as a line with an aging stage makes it: every cell's formation
+    file, then the aging tester's file for the whole lot, then every cell's grading file."""
+    dropped: list[str] = []
+    files = {cell: demo_stage_files(cell) for cell in DEMO_STAGED_CELLS}
+
+    def hand_over(name: str, data: bytes) -> None:
+        part = root / "inbox-rename" / f"{name}.part"
+        part.write_bytes(data)
+        part.rename(part.with_name(name))
+        dropped.append(name)
+        log.info("line: handed over %s", name)
+
+    for cell in DEMO_STAGED_CELLS:
+        hand_over(stage_file_name(cell, "formation"), files[cell]["formation"])
+    hand_over("DEMO-LOT-04_aging-readings.csv", demo_aging_file())
+    for cell in DEMO_STAGED_CELLS:
+        hand_over(stage_file_name(cell, "grading"), files[cell]["grading"])
+    return dropped
+
+
 def _drained(root: Path, ledger_path: Path, expected: int) -> bool:
     for inbox in ("inbox", "inbox-rename", "inbox-marker", "work"):
         if any(p for p in (root / inbox).iterdir() if not p.name.endswith(".done")):
@@ -134,19 +165,32 @@ def run_station_demo(folder: Path | None = None) -> int:
     cells = ALL_DEMO_CELLS
     stop = threading.Event()
     dropped: list[str] = []
+    closed: list[LotOutcome] = []
 
-    def feed_and_watch() -> None:
-        dropped.extend(simulate_cycler(root, cells, log))
-        deadline = time.monotonic() + 600
+    def drain(deadline: float) -> None:
         while not stop.is_set() and time.monotonic() < deadline:
             if _drained(root, settings.ledger, len(dropped)):
-                break
+                return
             time.sleep(1.0)
-        stop.set()
+
+    def feed_and_watch() -> None:
+        try:
+            dropped.extend(simulate_cycler(root, cells, log))
+            dropped.extend(simulate_staged_line(root, log))
+            deadline = time.monotonic() + 600
+            drain(deadline)
+            # quality staff close the staged lot while the station runs: its letters go out
+            if not stop.is_set():
+                closed.append(_close_staged_lot(settings))
+                drain(deadline)
+        finally:
+            stop.set()
 
     feeder = threading.Thread(target=feed_and_watch, name="demo-cycler")
+    staged = 2 * len(DEMO_STAGED_CELLS) + 1
     print(
-        f"demo station in {root}; the simulated cycler starts handing over {len(cells) + 2} files"
+        f"demo station in {root}; the simulated cycler starts handing over {len(cells) + 2} "
+        f"files, and a line with an aging stage {staged} more (lot DEMO-LOT-04)"
     )
     feeder.start()
     try:
@@ -154,7 +198,45 @@ def run_station_demo(folder: Path | None = None) -> int:
     finally:
         stop.set()
         feeder.join()
-    return _report(root, len(dropped))
+    code = _report(root, len(dropped))
+    if not closed:
+        print("LOT DEMO-LOT-04 WAS NOT CLOSED")
+        return 1
+    return max(code, _show_staged_lot(closed[0]))
+
+
+def _close_staged_lot(settings: Settings) -> LotOutcome:
+    """Close lot DEMO-LOT-04 as quality staff would with `formgate lot close`."""
+    from pipeline.rulebook.book import load_rules_dir
+    from pipeline.station.lots import close_and_report
+
+    now = datetime.datetime.now(datetime.UTC).replace(microsecond=0)
+    with Ledger(settings.ledger) as ledger:
+        return close_and_report(
+            settings, ledger, load_rules_dir(settings.rules_dir), "DEMO-LOT-04",
+            by="command", now=now,
+        )
+
+
+def _show_staged_lot(outcome: LotOutcome) -> int:
+    """What closing lot DEMO-LOT-04 gave: yield, grades, the cells that did not pass."""
+    closed = outcome.closed
+    tally = closed.statistics.tally
+    print()
+    print("lot DEMO-LOT-04 (formation and grading files, one aging tester file), closed:")
+    print(f"  {tally.n} cells, yield {100 * (tally.yield_fraction or 0):.1f} %; grades: "
+          + ", ".join(f"{g} {n}" for g, n in closed.statistics.grade_counts.items()))
+    for cell in sorted(closed.cells, key=lambda c: (c.decision.verdict == "pass", c.cell_id)):
+        if cell.decision.verdict != "pass":
+            was = f" (was {cell.before_screens.verdict})" if cell.changed else ""
+            print(f"  {cell.cell_id}  {cell.decision.verdict}{was}: {cell.decision.reason}")
+    print(f"  lot report (PDF): {outcome.report}")
+    print(f"  export (CSV):     {outcome.export}")
+    undecided = [c.cell_id for c in closed.cells if c.decision.missing]
+    if undecided:
+        print(f"CELLS STILL WAITING FOR A STAGE: {', '.join(undecided)}")
+        return 1
+    return 0
 
 
 def _report(root: Path, expected: int) -> int:
@@ -172,6 +254,8 @@ def _report(root: Path, expected: int) -> int:
     print()
     print(f"{'cell':<10} {'lot':<12} {'verdict':<8} hazards")
     for path in results:
+        if "~" in path.name:  # a file of one stage: its lot is summed up at its close, below
+            continue
         doc = json.loads(path.read_text(encoding="utf-8"))
         print(
             f"{doc['cell']['cell_id']:<10} {doc['cell']['lot']:<12} {doc['verdict']:<8} "

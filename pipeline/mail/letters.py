@@ -84,6 +84,7 @@ class DigestRow:
     grading_capacity_ah: float | None
     certificate_path: str
     reason: str = ""
+    grade: str | None = None  # a passing cell's grade, once its lot is closed
 
 
 # Closing words of a digest: what it is, and where the decisions stand (common practice).
@@ -377,7 +378,7 @@ def _table(rows: Sequence[DigestRow]) -> str:
     cells = [
         (
             sanitize_header(r.cell_id, ID_LEN),
-            sanitize_header(r.verdict, 12),
+            sanitize_header(r.verdict + (f" {r.grade}" if r.grade else ""), 24),
             "n/a" if r.grading_capacity_ah is None else f"{r.grading_capacity_ah:.3f}",
             sanitize_header(r.certificate_path, 300),
         )
@@ -416,12 +417,14 @@ def digest_letter(
     station: str,
     digest_no: int,
     domain: str | None = None,
+    report_path: str | None = None,
 ) -> Letter:
     """One mail listing the cells of ``lot`` with verdict and reason: fails, then holds, then passes.
 
     The head gives the counts by verdict and the yield (passed / listed). ``digest_no``
     counts the digests of this lot (1, 2, ...) and is part of the Message-ID key, so each
-    digest is its own mail and a resend of one keeps its id.
+    digest is its own mail and a resend of one keeps its id. ``report_path``: the lot is
+    closed, and this is its report (PDF), attached; its digest is the lot's last, one per lot.
     """
     if not rows:
         raise ValueError("a digest needs at least one cell")
@@ -437,19 +440,30 @@ def digest_letter(
     yield_text = f"{100.0 * passed / len(rows):.1f} % ({passed} of {len(rows)} passed)"
     shown_lot = sanitize_header(lot, ID_LEN) or "(no lot)"
     plural = "cell" if len(rows) == 1 else "cells"
+    closing = (
+        [_paragraph(
+            "The lot is closed: its screens were applied, its passing cells graded, and its "
+            f"report is attached ({pathlib.PurePath(report_path).name}), with the spread of "
+            "every checked metric, the capability of each check and the lot's outliers."
+        )]
+        if report_path is not None
+        else []
+    )
+    which = "closed" if report_path is not None else f"digest {digest_no}"
     body = (
         "\n\n".join(
             [
                 _fields(
                     [
                         ("Lot", lot),
-                        ("Digest", str(digest_no)),
+                        ("Digest", "lot closed" if report_path is not None else str(digest_no)),
                         ("Station", station),
                         ("Cells", f"{len(rows)} ({tally})"),
                         ("Yield", yield_text),
                     ],
                     11,
                 ),
+                *closing,
                 _table(ordered),
                 _paragraph(DIGEST_NOTE),
             ]
@@ -458,14 +472,19 @@ def digest_letter(
     )
     return Letter(
         kind="digest",
-        message_id=message_id_for("digest", f"{lot}\n{digest_no}", domain=_domain(station, domain)),
+        message_id=message_id_for(
+            "digest",
+            f"{lot}\n{'closed' if report_path is not None else digest_no}",
+            domain=_domain(station, domain),
+        ),
         recipients=tuple(recipients),
         subject=sanitize_header(
-            f"formgate: lot {shown_lot}, digest {digest_no} \N{EM DASH} "
+            f"formgate: lot {shown_lot}, {which} \N{EM DASH} "
             f"{len(rows)} {plural}: {tally}; yield {100.0 * passed / len(rows):.1f} %",
             300,
         ),
         body_text=_clean_text(body),
+        attachment_path=report_path,
         lot=lot,
     )
 

@@ -25,8 +25,8 @@ from pipeline.mail.letters import DigestRow, digest_letter
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.guard import Guarded
 from pipeline.station.judges import JudgePool
-from pipeline.station.ledger import InputRow
-from pipeline.station.settings import InboxSettings
+from pipeline.station.ledger import InputRow, Ledger, ResultRow
+from pipeline.station.settings import InboxSettings, Settings
 from pipeline.station.taken import HOLD_SETTLES, Original, give_back, originals, same_bytes, tidy
 from pipeline.station.troubles import describe
 from pipeline.station.waiting import overdue_entries
@@ -62,6 +62,46 @@ def certificate_link(pdf_path: str, certificates: Path, base_url: str | None) ->
     return base_url.rstrip("/") + "/" + "/".join(urllib.parse.quote(part) for part in under.parts)
 
 
+def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
+    """Every cell of ``lot`` once, as it stands: its decision over all its stages where it has
+    one (else its latest record's verdict), its grade, the grading capacity and certificate of
+    its latest record that covers grading (else of its latest record)."""
+    routing = settings.routing
+    latest: dict[str, ResultRow] = {}
+    grading: dict[str, ResultRow] = {}
+    for r in ledger.current_cells_of_lot(lot):  # by cell, oldest first
+        latest[r.cell_id] = r
+        if "grading" in json.loads(r.result_json).get("stages", ("grading",)):
+            grading[r.cell_id] = r
+    cells = sorted(set(latest) | {s.reading.cell_id for s in ledger.readings_of(lot)})
+    rows = []
+    for cell in cells:
+        record = grading.get(cell) or latest.get(cell)
+        document = json.loads(record.result_json) if record is not None else {}
+        decision = ledger.latest_decision(lot, cell)
+        if decision is not None:
+            verdict, reason, grade = decision.verdict, decision.reason, decision.grade
+        else:
+            verdict = record.verdict if record is not None else "hold"
+            reason = document.get("decision", "") if verdict != "pass" else ""
+            grade = None
+        rows.append(
+            DigestRow(
+                cell,
+                verdict,
+                document.get("metrics", {}).get("grading_capacity_Ah"),
+                certificate_link(
+                    (record.pdf_path or "") if record is not None else "",
+                    settings.certificates,
+                    routing.certificates_url,
+                ),
+                reason,
+                grade,
+            )
+        )
+    return rows
+
+
 class Duties(Guarded):
     """Digests, heartbeat, waiting entries; the station's Station class sets these attributes."""
 
@@ -87,23 +127,7 @@ class Duties(Guarded):
             if not cells:
                 continue
             # the digest covers the new pass cells and lists the whole lot as it stands
-            rows = []
-            by_cell = {c.cell_id: c for c in self.ledger.current_cells_of_lot(lot)}  # one per cell
-            for c in by_cell.values():
-                document = json.loads(c.result_json)
-                rows.append(
-                    DigestRow(
-                        c.cell_id,
-                        c.verdict,
-                        document["metrics"].get("grading_capacity_Ah"),
-                        certificate_link(
-                            c.pdf_path or "",
-                            self.settings.certificates,
-                            routing.certificates_url,
-                        ),
-                        document.get("decision", "") if c.verdict != "pass" else "",
-                    )
-                )
+            rows = lot_rows(self.ledger, lot, self.settings)
             letter = digest_letter(
                 lot,
                 rows,

@@ -25,7 +25,7 @@ from pathlib import Path
 from pipeline.errors import FormgateError
 from pipeline.judge.metricdefs import RULE_METRICS
 from pipeline.lotclose import ClosedCell, ClosedLot, close_lot
-from pipeline.mail.letters import Letter
+from pipeline.mail.letters import Letter, digest_letter
 from pipeline.names import safe_name
 from pipeline.read.readings import Reading, ReadingFile
 from pipeline.report.lotreport import (
@@ -37,6 +37,7 @@ from pipeline.report.lotreport import (
 )
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.cells import change_letters
+from pipeline.station.duties import lot_rows
 from pipeline.station.ledger import DecisionRow, Ledger
 from pipeline.station.settings import Settings
 from pipeline.writing import write_atomic
@@ -163,6 +164,22 @@ def close_and_report(
     write_atomic(lot_export_csv(data), export)
     if close:
         ledger.note_lot_report(lot, str(report), str(export))
+        routing = settings.routing
+        if routing.digests_to:
+            # the lot's last digest: every cell as closed, with the report attached; closing
+            # again gives the same Message-ID, so the outbox never holds it twice
+            ledger.queue_mail(
+                digest_letter(
+                    lot,
+                    lot_rows(ledger, lot, settings),
+                    routing.digests_to,
+                    station=settings.station_name,
+                    digest_no=ledger.digest_count(lot) + 1,
+                    domain=routing.domain,
+                    report_path=str(report),
+                ),
+                now=now,
+            )
     log.info("lot %s %s: %d cells, report %s", lot, "closed" if close else "reported",
              len(closed.cells), report)
     return LotOutcome(closed, report, export, tuple(changed), newly)
