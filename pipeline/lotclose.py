@@ -152,12 +152,16 @@ def cell_stages(
     values: dict[str, float | None] = {}
     files: list[tuple[str, str, str]] = []
     times = []
-    for doc, stages in sorted(chosen.values(), key=lambda p: str(p[0]["analysed_at"])):
+    ordered = sorted(chosen.values(), key=lambda p: str(p[0]["analysed_at"]))
+    for doc, stages in ordered:
         base = _cycle_record(doc)
         records.append(dataclasses.replace(base, stages=tuple(stages)))
         values.update({k: v for k, v in doc["metrics"].items() if v is not None or k not in values})
         files.append((" and ".join(stages), base.source, base.sha256))
         times.append(datetime.datetime.fromisoformat(str(doc["analysed_at"])))
+    counts = [doc["metrics"].get("cycle_count") for doc, _ in ordered]
+    if len(counts) > 1:  # a cell's cycles are those of its formation and its grading files
+        values["cycle_count"] = None if None in counts else float(sum(counts))
     if readings:
         aging = judge_aging([r for _, _, r in readings], rule_set, cell_type)
         verdict = aging.verdict.kind.value

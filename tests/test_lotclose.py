@@ -219,3 +219,36 @@ def test_a_real_result_document_closes_as_a_lot() -> None:
     (cell,) = closed.cells
     assert cell.decision.verdict == result.verdict.kind.value
     assert cell.records[0][1:] == ("one.csv", result.input_sha256)
+
+
+def test_a_cell_of_a_formation_and_a_grading_file_is_one_cell_of_both_stages() -> None:
+    """The demo's staged cell judged as its two files: each stage's record counts once."""
+    import json
+
+    from pipeline.demo.lots import DEMO_STAGED_CELLS, demo_stage_files
+    from pipeline.lotclose import cell_stages
+    from pipeline.report.result import to_document
+    from pipeline.rulebook.book import load_rules_dir
+    from pipeline.runner import judge
+    from pipeline.shipped import RULES_DIR
+
+    book = load_rules_dir(RULES_DIR)
+    cell = DEMO_STAGED_CELLS[0]
+    docs = []
+    for day, (stage, data) in enumerate(demo_stage_files(cell).items(), start=1):
+        result = judge(data, f"{stage}.csv", book,
+                       analysed_at=datetime.datetime(2026, 11, day, tzinfo=datetime.UTC))
+        docs.append(json.loads(json.dumps(to_document(result))))
+    rule_set, cell_type = book.for_cell_type(cell.cell_type)
+    stages = cell_stages(docs, [], rule_set, cell_type)
+    assert [r.stages for r in stages.records] == [("formation",), ("grading",)]
+    assert stages.values["cycle_count"] == 2.0  # one formation cycle and the grading cycle
+    assert stages.values["first_cycle_efficiency"] is not None
+    assert stages.values["grading_capacity_Ah"] is not None
+    decision = decide(cell_type.stages or rule_set.stages, stages.records)
+    assert (decision.verdict, decision.reason) == ("hold", "waiting for stage aging")
+    # a later grading record (a retest) supersedes the grading one only
+    retest = {**docs[1], "analysed_at": "2026-11-09T00:00:00+00:00",
+              "input": {"name": "retest.csv", "sha256": "f" * 64}}
+    again = cell_stages([*docs, retest], [], rule_set, cell_type)
+    assert [f[1] for f in again.files] == ["formation.csv", "retest.csv"]
