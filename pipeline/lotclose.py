@@ -38,6 +38,7 @@ from pipeline.judge.lotstats import (
     lot_statistics,
 )
 from pipeline.judge.metricdefs import RULE_BY_NAME
+from pipeline.judge.program import INCOMPLETE
 from pipeline.model import CellType, RuleSet
 from pipeline.read.readings import Reading, ReadingFile
 from pipeline.rulebook.book import RuleBook
@@ -125,6 +126,16 @@ class CellStages:
     decided_at: datetime.datetime | None
 
 
+_WORST_FIRST = {"fail": 3, "error": 3, "hold": 2, "pass": 1}
+
+
+def _rank(doc: Mapping[str, Any], counts: str) -> tuple[bool, int, str, str]:
+    """Sort key of a stage's records: the largest counts. Complete records before cut ones."""
+    complete = not any(n.get("code") == INCOMPLETE for n in doc.get("notes", ()))
+    severity = _WORST_FIRST.get(str(doc["verdict"]), 3) if counts == "worst" else 0
+    return (complete, severity, str(doc["analysed_at"]), str(doc["input"]["sha256"]))
+
+
 def _stages_of(doc: Mapping[str, Any]) -> tuple[str, ...]:
     """The stages a cycle-file result covers (a result without the key: the whole program)."""
     return tuple(str(s) for s in doc.get("stages") or CYCLE_FILE)
@@ -139,15 +150,24 @@ def cell_stages(
     """The records that count for one cell: per stage its latest cycle-file result, and the
     aging stage judged on all its readings ((file name, sha256, reading) triples).
 
-    A later record of a stage supersedes an earlier one (a retest, a copy sent again);
-    the order the records arrived in does not matter, only their analysis times.
+    Of a stage's records the rule set's ``[records] counts`` chooses: the latest complete
+    one (a retest, a copy sent again supersedes an earlier one) or the worst complete one;
+    a record cut short counts only while the stage has no complete record. The order the
+    records arrived in does not matter, only their analysis times. More records of a stage
+    than ``[records] retests`` allows hold the cell.
     """
     chosen: dict[int, tuple[Mapping[str, Any], list[str]]] = {}
+    too_many: list[str] = []
     for stage in (*CYCLE_FILE,):
         covering = [d for d in documents if stage in _stages_of(d)]
         if covering:
-            doc = max(covering, key=lambda d: (str(d["analysed_at"]), str(d["input"]["sha256"])))
+            doc = max(covering, key=lambda d: _rank(d, rule_set.record_counts))
             chosen.setdefault(id(doc), (doc, []))[1].append(stage)
+            if rule_set.retests is not None and len(covering) > 1 + rule_set.retests:
+                too_many.append(
+                    f"{len(covering)} records of stage {stage}, more than the first and "
+                    f"{rule_set.retests} retest{'s' if rule_set.retests != 1 else ''}"
+                )
     records: list[StageRecord] = []
     values: dict[str, float | None] = {}
     files: list[tuple[str, str, str]] = []
@@ -159,6 +179,8 @@ def cell_stages(
         values.update({k: v for k, v in doc["metrics"].items() if v is not None or k not in values})
         files.append((" and ".join(stages), base.source, base.sha256))
         times.append(datetime.datetime.fromisoformat(str(doc["analysed_at"])))
+    if too_many:
+        records.append(StageRecord((), "hold", "; ".join(too_many)))
     counts = [doc["metrics"].get("cycle_count") for doc, _ in ordered]
     if len(counts) > 1:  # a cell's cycles are those of its formation and its grading files
         values["cycle_count"] = None if None in counts else float(sum(counts))

@@ -503,6 +503,7 @@ CYCLE_FILE_STAGES: Mapping[str, tuple[str, ...]] = frozen_mapping(
     }
 )
 SCREEN_SIDES: tuple[str, ...] = ("both", "low", "high")
+RECORD_CHOICES: tuple[str, ...] = ("latest", "worst")
 
 
 @dataclass(frozen=True, slots=True)
@@ -559,6 +560,8 @@ class RuleSet:
     screens: tuple[Screen, ...] = ()
     grades: tuple[Grade, ...] = ()
     lot_quiet_h: float | None = None  # a lot closes by itself after this long without a cell
+    record_counts: str = "latest"  # which record of a stage counts: "latest" or "worst"
+    retests: int | None = None  # most records of one stage after its first; None: no limit
 
     def cell_type(self, name: str) -> CellType | None:
         for ct in self.cell_types:

@@ -252,3 +252,34 @@ def test_a_cell_of_a_formation_and_a_grading_file_is_one_cell_of_both_stages() -
               "input": {"name": "retest.csv", "sha256": "f" * 64}}
     again = cell_stages([*docs, retest], [], rule_set, cell_type)
     assert [f[1] for f in again.files] == ["formation.csv", "retest.csv"]
+
+
+def _records_rule_set(extra: str) -> tuple[object, object]:
+    rule_set = load_rule_set(RULES + extra, "lot_test.toml")
+    return rule_set, rule_set.cell_types[0]
+
+
+def test_which_record_of_a_stage_counts_follows_the_rule_set() -> None:
+    from pipeline.lotclose import cell_stages
+
+    good = _document("C1", "L", 5.1, day=1)
+    failed = _document("C1", "L", 4.5, day=2)
+    cut = {**_document("C1", "L", 4.6, day=3), "verdict": "hold",
+           "notes": [{"code": "program_incomplete", "text": "record ends in cycle 2"}]}
+    latest, ct = _records_rule_set("")
+    # the latest complete record counts; a record cut short never hides a complete one
+    chosen = cell_stages([good, failed, cut], [], latest, ct)  # type: ignore[arg-type]
+    assert [r.verdict for r in chosen.records] == ["fail"]
+    retest = _document("C1", "L", 5.1, day=4)
+    chosen = cell_stages([good, failed, cut, retest], [], latest, ct)  # type: ignore[arg-type]
+    assert [r.verdict for r in chosen.records] == ["pass"]
+    # worst: a failure stands whatever passes after it
+    worst, ct = _records_rule_set('\n[records]\ncounts = "worst"\n')
+    chosen = cell_stages([good, failed, retest], [], worst, ct)  # type: ignore[arg-type]
+    assert [r.verdict for r in chosen.records] == ["fail"]
+    # one retest allowed: a third record of a stage holds the cell
+    limited, ct = _records_rule_set("\n[records]\nretests = 1\n")
+    chosen = cell_stages([good, failed, retest], [], limited, ct)  # type: ignore[arg-type]
+    decision = decide(["formation", "grading"], chosen.records)
+    assert decision.verdict == "hold"
+    assert "3 records of stage formation, more than the first and 1 retest" in decision.reason

@@ -183,6 +183,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_rule_set() -> 
     assert rs.screens == (Screen("self_discharge", "k_value_mV_per_day", 4.5, 40, "high"),)
     assert rs.grades == (Grade("A", (("grading_capacity_Ah", 12.5, 13.0),)),)
     assert rs.lot_quiet_h == 12.0
+    assert (rs.record_counts, rs.retests) == ("worst", 2)
 
 
 def test_defaults_fill_what_a_file_leaves_out() -> None:
@@ -321,7 +322,7 @@ def test_unknown_cell_type_names_the_data_file_and_suggests_a_close_one() -> Non
     assert str(caught.value) == (
         "inbox/DEMO-LOT-01_L01-001.csv: no rule set covers cell type 'DEMO-LFP-2OA'.\n"
         "  Did you mean 'DEMO-LFP-20A'? Known cell types: DEMO-LFP-100P, DEMO-LFP-20A, "
-        "DEMO-LTO-10P, DEMO-LTO-30P, DEMO-NA-10A, DEMO-NA-40P, DEMO-NMC-5A, DEMO-NMC-60P. "
+        "DEMO-LTO-10P, DEMO-LTO-30P, DEMO-NA-10A, DEMO-NA-40P, DEMO-NMC-5A, DEMO-NMC-5S, DEMO-NMC-60P. "
         "Correct the file's cell_type, "
         "or declare the type in a rule file."
     )

@@ -360,6 +360,8 @@ def _assemble(
         screens=lot.screens,
         grades=lot.grades,
         lot_quiet_h=number(plain["lot"], "quiet_h"),
+        record_counts=str(plain["records"]["counts"]),
+        retests=_int_or_none(plain["records"], "retests"),
     )
 
 

@@ -14,7 +14,14 @@ import sys
 from dataclasses import dataclass
 
 from pipeline.judge.metricdefs import AGING_METRICS, METRICS
-from pipeline.model import FAMILIES, SCREEN_SIDES, Hazard, PlateauSettings, Severity
+from pipeline.model import (
+    FAMILIES,
+    RECORD_CHOICES,
+    SCREEN_SIDES,
+    Hazard,
+    PlateauSettings,
+    Severity,
+)
 
 TEXT = "text"
 NUMBER = "number"
@@ -407,6 +414,30 @@ TABLES: tuple[Table, ...] = (
                 unit="h",
                 minimum=0.0,
                 minimum_exclusive=True,
+            ),
+        ),
+    ),
+    Table(
+        "records",
+        "Which record of a stage counts when a cell has several (a retest, a copy sent again, a "
+        "record cut short and sent again). A record cut short counts only while the stage has "
+        "no complete one.",
+        (
+            Key(
+                "counts",
+                TEXT,
+                "latest: the stage's latest complete record by analysis time; worst: its worst "
+                "complete record (fail before hold before pass)",
+                default="latest",
+                allowed=RECORD_CHOICES,
+            ),
+            Key(
+                "retests",
+                INTEGER,
+                "records of one stage after its first that a cell may have; one more holds the "
+                "cell (too many retests)",
+                minimum=0,
+                allowed_note="not set: no limit",
             ),
         ),
     ),
