@@ -11,6 +11,7 @@ import datetime
 import email
 import email.policy
 import re
+import time
 from pathlib import Path
 
 import pytest
@@ -221,3 +222,25 @@ def test_a_lot_quiet_for_its_rule_sets_time_is_closed_by_the_station(tmp_path: P
     assert (s.certificates / "LOT-A" / "_lot-report.pdf").exists()
     # the lot still waits for its cell's aging stage: held, never released at the close
     assert _decisions(s, "Q-1")[-1][:2] == ("hold", "record")
+
+
+def test_a_stage_later_than_its_rule_set_allows_raises_one_alert(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    rules = AGING_RULES.replace(
+        'needed = ["formation", "aging", "grading"]\n',
+        'needed = ["formation", "aging", "grading"]\noverdue_h = 0.0005   # test: 1.8 s\n',
+    )
+    (s.rules_dir / "test_cells.toml").write_text(rules, encoding="utf-8")
+
+    def overdue() -> list[email.message.EmailMessage]:
+        return [m for m in _letters(s) if "a stage is overdue" in str(m["Subject"])]
+
+    with running(s):
+        drop(s.inboxes[0].folder, "late.csv", cycle_file("W-1"))
+        wait_until(lambda: settled(s, 1), what="the cell's cycle file")
+        wait_until(lambda: bool(overdue()), what="the overdue alert")
+        time.sleep(4.0)  # two more rounds of the lot thread: no second alert
+    (alert,) = overdue()
+    body = " ".join(alert.get_body().get_content().split())  # type: ignore[union-attr]
+    assert "Cell W-1 of lot LOT-A has been waiting for stage aging since" in body
+    assert "[stages] overdue_h" in body

@@ -218,6 +218,18 @@ class CellsMixin(LedgerBase):
         )
         return [r["lot"] for r in rows]
 
+    def waiting_cells(self) -> list[tuple[str, str, str, datetime.datetime]]:
+        """(lot, cell, reason, first decided) of every cell of an open lot whose latest
+        decision holds it while it waits for a stage."""
+        rows = self._conn.execute(
+            "SELECT d.lot, d.cell_id, d.reason, (SELECT min(decided_at) FROM decisions f "
+            "WHERE f.lot = d.lot AND f.cell_id = d.cell_id) AS first_at FROM decisions d "
+            "WHERE d.verdict = 'hold' AND d.reason LIKE '%waiting for stage%' "
+            "AND d.lot NOT IN (SELECT lot FROM lots) AND d.id = (SELECT max(id) FROM decisions e "
+            "WHERE e.lot = d.lot AND e.cell_id = d.cell_id) ORDER BY d.lot, d.cell_id"
+        )
+        return [(r["lot"], r["cell_id"], r["reason"], _time(r["first_at"])) for r in rows]
+
     def lot_cell_type(self, lot: str) -> str | None:
         """The cell type of the lot's first judged cell (its readings' when it has none)."""
         row = self._one(

@@ -34,6 +34,10 @@ class OutboxMixin(LedgerBase):
         with self._write():
             return self._insert_mail(mail, created_at=at, result_id=None, lot=mail.lot)
 
+    def mail_by_message_id(self, message_id: str) -> MailRow | None:
+        row = self._one("SELECT * FROM outbox WHERE message_id = ?", (message_id,))
+        return None if row is None else _mail(row)
+
     def mail(self, mail_id: int) -> MailRow | None:
         row = self._one("SELECT * FROM outbox WHERE id = ?", (mail_id,))
         return None if row is None else _mail(row)

@@ -25,7 +25,7 @@ from pathlib import Path
 from pipeline.errors import FormgateError
 from pipeline.judge.metricdefs import RULE_METRICS
 from pipeline.lotclose import ClosedCell, ClosedLot, close_lot
-from pipeline.mail.letters import Letter, digest_letter
+from pipeline.mail.letters import Letter, alert_letter, digest_letter
 from pipeline.names import safe_name
 from pipeline.read.readings import Reading, ReadingFile
 from pipeline.report.lotreport import (
@@ -239,6 +239,10 @@ class LotCloser(threading.Thread):
         if rulebook is None:
             return
         try:
+            self.alert_overdue(ledger, rulebook)
+        except Exception as exc:  # a busy or failing disk: next round
+            log.error("cells waiting for a stage cannot be checked: %s", exc)
+        try:
             due = lots_due(ledger, rulebook, self.clock())
         except Exception as exc:  # a busy or failing disk: next round
             log.error("lots due for closing cannot be listed: %s", exc)
@@ -253,6 +257,36 @@ class LotCloser(threading.Thread):
                 self.mail_wake.set()
             except Exception as exc:  # logged and tried again; never the end of the station
                 log.error("lot %s could not be closed: %s", lot, exc)
+
+    def alert_overdue(self, ledger: Ledger, rulebook: RuleBook) -> None:
+        """One alert per cell whose needed stage is later than its rule set's overdue_h."""
+        routing = self.settings.routing
+        if not routing.alerts_to:
+            return
+        now = self.clock()
+        for lot, cell, reason, first in ledger.waiting_cells():
+            cell_type = ledger.lot_cell_type(lot)
+            try:
+                hours = rulebook.for_cell_type(cell_type)[0].stage_overdue_h if cell_type else None
+            except FormgateError:
+                continue
+            if hours is None or (now - first).total_seconds() < hours * 3600:
+                continue
+            letter = alert_letter(
+                f"cell {cell} of lot {lot}: a stage is overdue",
+                f"Cell {cell} of lot {lot} has been {reason} since "
+                f"{first.isoformat(timespec='seconds')}, longer than the {hours:g} h its rule "
+                "set allows ([stages] overdue_h). It stays held until the stage's record "
+                "arrives: check that its file reached the station's inbox.",
+                routing.alerts_to,
+                station=self.settings.station_name,
+                key=f"overdue\n{lot}\n{cell}\n{reason}",
+                domain=routing.domain,
+            )
+            if ledger.mail_by_message_id(letter.message_id) is None:
+                ledger.queue_mail(letter, now=now)
+                self.mail_wake.set()
+                log.warning("cell %s of lot %s: %s for over %g h", cell, lot, reason, hours)
 
     def stop(self) -> None:
         self.stop_event.set()
