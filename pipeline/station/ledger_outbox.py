@@ -46,7 +46,8 @@ class OutboxMixin(LedgerBase):
         """Pending mail whose time has come, oldest first.
 
         A failure/hold mail waits until its cell is published (its PDF exists); a
-        digest waits until the cells it covers are recorded against it.
+        digest waits until the cells it covers are recorded against it, except the
+        digest of a closed lot, which covers the lot as closed.
         """
         rows = self._conn.execute(
             "SELECT o.* FROM outbox o LEFT JOIN results r ON r.id = o.cell_result_id "
@@ -55,7 +56,8 @@ class OutboxMixin(LedgerBase):
             "AND (o.kind NOT IN ('failure', 'hold') OR o.cell_result_id IS NULL "
             f"     OR i.state IN {_PUBLISHED}) "
             "AND (o.kind <> 'digest' "
-            "     OR EXISTS (SELECT 1 FROM results d WHERE d.digest_mail_id = o.id)) "
+            "     OR EXISTS (SELECT 1 FROM results d WHERE d.digest_mail_id = o.id) "
+            "     OR EXISTS (SELECT 1 FROM lots l WHERE l.lot = o.lot)) "
             "ORDER BY o.created_at, o.id LIMIT ?",
             (_utc(now, "now"), limit),
         )
