@@ -159,6 +159,16 @@ def _decompress(data: bytes, name: str, cap: int) -> bytes:
         if len(data) > cap:
             raise _too_large(name, cap)
         return data
+    return inflate(data, name, cap, _too_large(name, cap), _CUT_SHORT_HINT)
+
+
+def inflate(data: bytes, name: str, cap: int, too_large: InputError, cut_hint: str) -> bytes:
+    """A gzip file's bytes inflated, one member after another, never more than ``cap`` bytes.
+
+    Bad gzip data and data that ends early are InputErrors located at the line the text
+    had reached; more than ``cap`` bytes raises ``too_large``. Shared by every reader of
+    files that may come compressed (cycle files, OCV reading files).
+    """
     parts: list[bytes] = []
     total = 0
     rest = data
@@ -176,12 +186,12 @@ def _decompress(data: bytes, name: str, cap: int) -> bytes:
         parts.append(chunk)
         total += len(chunk)
         if total > cap:
-            raise _too_large(name, cap)
+            raise too_large
         if not inflater.eof:
             raise InputError(
                 "the compressed data ends early: the file is cut short",
                 SourceRef(name, b"".join(parts).count(b"\n") + 1),
-                _CUT_SHORT_HINT,
+                cut_hint,
             )
         rest = inflater.unused_data.lstrip(b"\0")  # zero padding may follow a member
     return b"".join(parts)

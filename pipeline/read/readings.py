@@ -51,6 +51,7 @@ from dataclasses import dataclass
 
 from pipeline.errors import InputError
 from pipeline.model import SourceRef, frozen_mapping
+from pipeline.read.cyclefile import inflate
 
 KIND = "ocv readings"  # what ``# kind:`` says in a file of this format
 REQUIRED_COLUMNS = ("cell_id", "time", "ocv_V")
@@ -152,34 +153,12 @@ def _decompress(data: bytes, name: str) -> bytes:
     """The file's bytes, inflated when they are gzip (one member after another)."""
     if not (data[:2] == GZIP_MAGIC or name.lower().endswith(".gz")):
         return data
-    parts: list[bytes] = []
-    total, rest = 0, data
-    while rest:
-        inflater = zlib.decompressobj(wbits=31)  # 31 = gzip header and trailer
-        try:
-            chunk = inflater.decompress(rest, MAX_UNCOMPRESSED_BYTES - total + 1)
-        except zlib.error as exc:
-            raise InputError(
-                f"the file is not valid gzip data ({str(exc).rpartition(': ')[2]})",
-                SourceRef(name, b"".join(parts).count(b"\n") + 1),
-                "Copy the file again; if it is not compressed, its name must not end in .gz.",
-            ) from None
-        parts.append(chunk)
-        total += len(chunk)
-        if total > MAX_UNCOMPRESSED_BYTES:
-            raise InputError(
-                f"the file holds more than {MAX_UNCOMPRESSED_BYTES // 2**20} MiB of text",
-                SourceRef(name),
-                "Split the tester's readings into several files.",
-            )
-        if not inflater.eof:
-            raise InputError(
-                "the compressed data ends early: the file is cut short",
-                SourceRef(name, b"".join(parts).count(b"\n") + 1),
-                _CUT_SHORT_HINT,
-            )
-        rest = inflater.unused_data.lstrip(b"\0")
-    return b"".join(parts)
+    too_large = InputError(
+        f"the file holds more than {MAX_UNCOMPRESSED_BYTES // 2**20} MiB of text",
+        SourceRef(name),
+        "Split the tester's readings into several files.",
+    )
+    return inflate(data, name, MAX_UNCOMPRESSED_BYTES, too_large, _CUT_SHORT_HINT)
 
 
 def _decode(raw: bytes, name: str) -> str:
