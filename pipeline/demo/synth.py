@@ -453,6 +453,20 @@ def _charge_cc_cv(run: _Run, cc_number: int, cycle: int, interval_ds: int) -> No
                       p.cv_cutoff_c * r.nominal_capacity_ah, interval_ds)
 
 
+def _formation_cycle(run: _Run, recipe: CellRecipe, dt: int) -> None:
+    """Steps 1-7, the formation cycle: rest, pre-charge, rest, CC-CV charge, rest, discharge."""
+    cell, p, nominal = run.cell, recipe.program, recipe.nominal_capacity_ah
+    _rest(run, 1, 1, p.initial_rest_s, dt)
+    _constant_current(run, 2, 1, p.pre_charge_rate_c * nominal, dt, soc_limit=1.0,
+                      v_limit=cell.chem.max_v, charge_limit_ah=p.pre_charge_fraction * nominal)
+    _rest(run, 3, 1, p.pre_charge_rest_s, dt)
+    _charge_cc_cv(run, 4, 1, dt)
+    _rest(run, 6, 1, p.rest_after_charge_s, dt)
+    _constant_current(run, 7, 1, -p.discharge_rate_c * nominal, dt, soc_limit=0.0,
+                      v_limit=cell.chem.min_v)
+    run.formed = True
+
+
 def simulate_formation(recipe: CellRecipe, rng: np.random.Generator) -> SimulatedRecord:
     """Run the formation + grading program of ``recipe.program`` on the recipe's cell.
 
@@ -467,15 +481,7 @@ def simulate_formation(recipe: CellRecipe, rng: np.random.Generator) -> Simulate
     p, nominal = recipe.program, recipe.nominal_capacity_ah
     dt = round(recipe.sample_interval_s * 10)
     run = _Run(cell, soc=-cell.sei)
-    _rest(run, 1, 1, p.initial_rest_s, dt)
-    _constant_current(run, 2, 1, p.pre_charge_rate_c * nominal, dt, soc_limit=1.0,
-                      v_limit=cell.chem.max_v, charge_limit_ah=p.pre_charge_fraction * nominal)
-    _rest(run, 3, 1, p.pre_charge_rest_s, dt)
-    _charge_cc_cv(run, 4, 1, dt)
-    _rest(run, 6, 1, p.rest_after_charge_s, dt)
-    _constant_current(run, 7, 1, -p.discharge_rate_c * nominal, dt, soc_limit=0.0,
-                      v_limit=cell.chem.min_v)
-    run.formed = True
+    _formation_cycle(run, recipe, dt)
     _rest(run, 8, 2, p.rest_after_discharge_s, dt)
     _charge_cc_cv(run, 9, 2, dt)
     _rest(run, 11, 2, p.rest_before_grading_s, dt)
@@ -686,15 +692,7 @@ def _replay_formation(recipe: CellRecipe, rest_s: float, storage_rest_s: float) 
     p, nominal = recipe.program, recipe.nominal_capacity_ah
     dt = round(recipe.sample_interval_s * 10)
     run = _Run(cell, soc=-cell.sei)
-    _rest(run, 1, 1, p.initial_rest_s, dt)
-    _constant_current(run, 2, 1, p.pre_charge_rate_c * nominal, dt, soc_limit=1.0,
-                      v_limit=cell.chem.max_v, charge_limit_ah=p.pre_charge_fraction * nominal)
-    _rest(run, 3, 1, p.pre_charge_rest_s, dt)
-    _charge_cc_cv(run, 4, 1, dt)
-    _rest(run, 6, 1, p.rest_after_charge_s, dt)
-    _constant_current(run, 7, 1, -p.discharge_rate_c * nominal, dt, soc_limit=0.0,
-                      v_limit=cell.chem.min_v)
-    run.formed = True
+    _formation_cycle(run, recipe, dt)
     _rest(run, SPLIT_REST_STEP, 2, rest_s, dt)
     storage = cell.chem.storage_soc if p.storage_soc is None else p.storage_soc
     _constant_current(run, STORAGE_CHARGE_STEP, 2, p.charge_rate_c * nominal, dt,
