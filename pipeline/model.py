@@ -615,6 +615,29 @@ class RuleSetRef:
 
 
 @dataclass(frozen=True, slots=True)
+class RecordPlace:
+    """Which record of its cell and stage a file is, when the cell has more than one.
+
+    ``supersedes``: the file name, verdict and analysis time of the record it replaces
+    (the one before it), so a reader of a retest sees what no longer stands.
+    """
+
+    number: int
+    of: int
+    supersedes_file: str
+    supersedes_verdict: str
+    supersedes_at: datetime.datetime
+
+    def words(self) -> str:
+        """'2 of 2 for this cell and stage; supersedes c.csv (fail, judged 2026-...)'."""
+        at = self.supersedes_at.astimezone(datetime.UTC).isoformat(timespec="seconds")
+        return (
+            f"{self.number} of {self.of} for this cell and stage; supersedes "
+            f"{self.supersedes_file} ({self.supersedes_verdict}, judged {at})"
+        )
+
+
+@dataclass(frozen=True, slots=True)
 class CellResult:
     """Everything known about one judged cell: what the JSON result and the certificate show.
 
@@ -634,6 +657,7 @@ class CellResult:
     software_version: str
     current_band: CurrentBand | None = None  # how rest was told from current (segmentation)
     stages: tuple[str, ...] = WHOLE_PROGRAM  # the stages the cycle file covers (its metadata)
+    record: RecordPlace | None = None  # set by a station when the cell has an earlier record
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))

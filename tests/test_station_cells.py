@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import datetime
 import email
+import json
 import email.policy
 import re
 import time
@@ -122,6 +123,23 @@ def test_a_mailed_failure_that_a_later_record_supersedes_gets_a_follow_up(tmp_pa
         wait_until(lambda: any("UPDATE cell C-9" in str(m["Subject"]) for m in _letters(s)),
                    what="the follow-up")
     assert [d[0] for d in _decisions(s, "C-9")] == ["fail", "pass"]
+    check_invariants(s, {"first.csv", "retest.csv"})
+    # the retest says which record it is and what it supersedes; the first record's files
+    # are kept beside it under names of their own, and the ledger points at them
+    doc = json.loads((s.results / "LOT-A" / "C-9.json").read_text(encoding="utf-8"))
+    assert doc["record"]["number"] == 2 and doc["record"]["of"] == 2
+    assert doc["record"]["supersedes"]["name"] == "first.csv"
+    assert doc["record"]["supersedes"]["verdict"] == "fail"
+    kept = json.loads((s.results / "LOT-A" / "C-9~record-1.json").read_text(encoding="utf-8"))
+    assert (kept["input"]["name"], kept["verdict"]) == ("first.csv", "fail")
+    from pypdf import PdfReader
+
+    text = " ".join(
+        " ".join(p.extract_text() for p in PdfReader(s.certificates / "LOT-A" / "C-9.pdf").pages)
+        .split()
+    )
+    assert "2 of 2 for this cell and stage; supersedes first.csv (fail, judged" in text
+    assert (s.certificates / "LOT-A" / "C-9~record-1.pdf").exists()
     report = status_text(s, datetime.datetime.now(datetime.UTC))
     assert report.count("  C-9  lot LOT-A") == 1 and "(record 2 of 2)" in report
     update = next(m for m in _letters(s) if "UPDATE cell C-9" in str(m["Subject"]))

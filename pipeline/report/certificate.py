@@ -364,6 +364,8 @@ def _identity(result: CellResult) -> list[tuple[str, str]]:
         ("Program", meta.get("program") or DASH),
         ("Stage", stage_words(result.stages)),
     ]
+    if result.record is not None:
+        rows.append(("Record", result.record.words()))
     if meta.get("started_at"):
         rows.append(("Started at", meta["started_at"]))
     return rows

@@ -91,6 +91,17 @@ def to_document(result: CellResult) -> dict[str, Any]:
         "cell": {key: meta.get(key) for key in IDENTITY_KEYS},
         # the stages of the cell's making the file covers: its ``stage`` metadata, in words
         "stages": list(result.stages),
+        "record": None
+        if result.record is None
+        else {
+            "number": result.record.number,
+            "of": result.record.of,
+            "supersedes": {
+                "name": result.record.supersedes_file,
+                "verdict": result.record.supersedes_verdict,
+                "analysed_at": result.record.supersedes_at.isoformat(),
+            },
+        },
         "other_metadata": {
             k: v for k, v in meta.items() if k not in IDENTITY_KEYS and k != "stage"
         },
@@ -196,6 +207,27 @@ def schema() -> dict[str, Any]:
                 "items": {"enum": list(WHOLE_PROGRAM)},
                 "minItems": 1,
                 "uniqueItems": True,
+            },
+            "record": {
+                "description": "which record of its cell and stage this file is, and the one it "
+                "supersedes; null when the station knew no earlier record of them",
+                "type": ["object", "null"],
+                "additionalProperties": False,
+                "required": ["number", "of", "supersedes"],
+                "properties": {
+                    "number": {"type": "integer", "minimum": 2},
+                    "of": {"type": "integer", "minimum": 2},
+                    "supersedes": {
+                        "type": "object",
+                        "additionalProperties": False,
+                        "required": ["name", "verdict", "analysed_at"],
+                        "properties": {
+                            "name": {"type": "string"},
+                            "verdict": {"enum": ["pass", "fail", "hold"]},
+                            "analysed_at": {"type": "string", "format": "date-time"},
+                        },
+                    },
+                },
             },
             "other_metadata": {"type": "object", "additionalProperties": {"type": "string"}},
             "input": {

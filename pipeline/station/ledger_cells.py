@@ -151,6 +151,14 @@ class CellsMixin(LedgerBase):
         )
         return [_result(r) for r in rows]
 
+    def move_outputs(self, result_id: int, json_path: str, pdf_path: str | None) -> None:
+        """Record where an earlier record's published files were moved to (kept, not replaced)."""
+        with self._write() as conn:
+            conn.execute(
+                "UPDATE results SET json_path = ?, pdf_path = ? WHERE id = ?",
+                (json_path, pdf_path, result_id),
+            )
+
     # ---- decisions on whole cells ---------------------------------------------------------------
 
     def latest_decision(self, lot: str, cell_id: str) -> DecisionRow | None:

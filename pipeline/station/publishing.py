@@ -9,19 +9,22 @@ handing them to the workers tasks.py's; the mail thread sends the letters (maile
 
 from __future__ import annotations
 
+import dataclasses
 import datetime
+import json
 import logging
 from pathlib import Path
 
 from pipeline.inputnames import fit
 from pipeline.judge.evaluate import decision_line
 from pipeline.mail.letters import Letter, alert_letter, failure_letter, hold_letter
-from pipeline.model import CellResult, VerdictKind
+from pipeline.model import WHOLE_PROGRAM, CellResult, RecordPlace, VerdictKind
 from pipeline.read.readings import ReadingFile
+from pipeline.report.result import to_json
 from pipeline.runner import result_paths
 from pipeline.station import faults
 from pipeline.station.cells import CellKeeping
-from pipeline.station.ledger import CheckRowData, InputRow
+from pipeline.station.ledger import CheckRowData, InputRow, ResultRow
 from pipeline.station.setaside import NAME_RESERVE_BYTES
 from pipeline.station.worker import Output
 from pipeline.writing import move_into, require_folder, write_atomic
@@ -47,13 +50,14 @@ class Publishing(CellKeeping):
             self.keep_readings(row, output.readings)
             return
         assert output.result is not None and output.json_text is not None
-        pdf = output.pdf
+        result, json_text, pdf = self.placed(row, output.result, output.json_text, output.pdf)
         if row.state == "claimed":
-            self.record(row, output.result, output.json_text, with_pdf=pdf is not None)
-        self.publish(row, output.result, output.json_text, pdf)
+            self.record(row, result, json_text, with_pdf=pdf is not None)
+        self.keep_earlier_outputs(row, result)
+        self.publish(row, result, json_text, pdf)
         self.judged += 1
         self.mail_wake.set()  # a failure or hold letter is due now that its certificate is there
-        r = output.result
+        r = result
         hazards = (
             f" hazard: {', '.join(h.value for h in r.verdict.hazards)}" if r.verdict.hazards else ""
         )
@@ -70,6 +74,63 @@ class Publishing(CellKeeping):
             row.name,
         )
         self.decide_cells([(r.lot, r.cell_id)], "record")
+
+    def earlier_records(self, row: InputRow, result: CellResult) -> list[ResultRow]:
+        """The cell's earlier records of the same stages from other inputs, oldest first."""
+        own = self.ledger.result_for_input(row.id)
+        return [
+            r
+            for r in self.ledger.results_of_cell(result.lot, result.cell_id)
+            if r.input_id != row.id
+            and (own is None or r.id < own.id)
+            and tuple(json.loads(r.result_json).get("stages") or WHOLE_PROGRAM) == result.stages
+        ]
+
+    def placed(
+        self, row: InputRow, result: CellResult, json_text: str, pdf: bytes | None
+    ) -> tuple[CellResult, str, bytes | None]:
+        """The result told which record of its cell and stage it is, when it is not the first.
+
+        The worker cannot know (it sees one file); the certificate and JSON of a retest
+        are made again here, with "record 2 of 2 ...; supersedes ...". Retests are rare.
+        """
+        earlier = self.earlier_records(row, result)
+        if not earlier:
+            return result, json_text, pdf
+        last = earlier[-1]
+        place = RecordPlace(
+            len(earlier) + 1,
+            len(earlier) + 1,
+            json.loads(last.result_json)["input"]["name"],
+            last.verdict,
+            last.analysed_at,
+        )
+        result = dataclasses.replace(result, record=place)
+        if pdf is not None:
+            from pipeline.report.certificate import render_html
+            from pipeline.report.pdf import render_pdf
+
+            pdf = render_pdf(render_html(result))
+        return result, to_json(result), pdf
+
+    def keep_earlier_outputs(self, row: InputRow, result: CellResult) -> None:
+        """Before a retest's outputs take the cell's file names, the earlier record's files
+        move to names of their own (``<cell>~record-1.json``), and the ledger follows them:
+        no published file is ever replaced without a trace."""
+        json_path, pdf_path = self.output_paths(result)
+        for n, earlier in enumerate(self.earlier_records(row, result), start=1):
+            if earlier.json_path != str(json_path):
+                continue  # moved before
+            kept_json = json_path.with_name(f"{json_path.stem}~record-{n}.json")
+            kept_pdf = pdf_path.with_name(f"{pdf_path.stem}~record-{n}.pdf")
+            if json_path.exists():
+                write_atomic(json_path.read_bytes(), kept_json, make_parents=False)
+            has_pdf = earlier.pdf_path is not None and pdf_path.exists()
+            if has_pdf:
+                write_atomic(pdf_path.read_bytes(), kept_pdf, make_parents=False)
+            self.ledger.move_outputs(
+                earlier.id, str(kept_json), str(kept_pdf) if has_pdf else earlier.pdf_path
+            )
 
     def keep_readings(self, row: InputRow, readings: ReadingFile | None) -> None:
         """An OCV reading file: its readings kept (ONE transaction), the file archived, and
