@@ -658,6 +658,7 @@ class CellResult:
     current_band: CurrentBand | None = None  # how rest was told from current (segmentation)
     stages: tuple[str, ...] = WHOLE_PROGRAM  # the stages the cycle file covers (its metadata)
     record: RecordPlace | None = None  # set by a station when the cell has an earlier record
+    needed_stages: tuple[str, ...] = WHOLE_PROGRAM  # what the cell's final verdict needs
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))

@@ -74,6 +74,7 @@ def judge(
             Path(rule_set.source).name,
             rule_set.family,
         ),
+        needed_stages=cell_type.stages or rule_set.stages,
         metrics=metrics,
         verdict=verdict,
         notes=all_notes,

@@ -295,3 +295,26 @@ def test_caption_says_when_only_the_highest_peaks_are_marked() -> None:
     assert build_context(result)["ica_caption"] == (
         "Incremental capacity dQ/dV; dashed lines mark the peaks found."
     )
+
+
+def test_a_pass_of_one_stage_is_never_shown_as_the_cells_release() -> None:
+    """A passing grading file of a cell that also needs aging says the cell is not released yet."""
+    import datetime
+
+    from pipeline.demo.lots import DEMO_CELLS, DEMO_STAGED_CELLS, demo_file_bytes, demo_stage_files
+    from pipeline.rulebook.book import load_rules_dir
+    from pipeline.runner import judge
+    from pipeline.shipped import RULES_DIR
+
+    book = load_rules_dir(RULES_DIR)
+    when = datetime.datetime(2026, 11, 1, tzinfo=datetime.UTC)
+    staged = judge(demo_stage_files(DEMO_STAGED_CELLS[0])["grading"], "g.csv", book,
+                   analysed_at=when)
+    assert staged.verdict.passed
+    assert staged.needed_stages == ("formation", "aging", "grading")
+    headline = build_context(staged)["verdict"]["headline"]  # type: ignore[index]
+    assert "This certificate covers the grading stage only." in headline
+    assert "once every stage it needs (formation, aging and grading) has passed" in headline
+    whole = judge(demo_file_bytes(DEMO_CELLS[0]), "w.csv", book, analysed_at=when)
+    assert whole.verdict.passed
+    assert "covers" not in build_context(whole)["verdict"]["headline"]  # type: ignore[index]

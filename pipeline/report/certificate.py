@@ -333,7 +333,11 @@ def stage_words(stages: tuple[str, ...]) -> str:
 
     >>> stage_words(("formation",)), stage_words(("formation", "grading"))
     ('formation', 'formation and grading')
+    >>> stage_words(("formation", "aging", "grading"))
+    'formation, aging and grading'
     """
+    if len(stages) > 2:
+        return ", ".join(stages[:-1]) + " and " + stages[-1]
     return " and ".join(stages)
 
 
@@ -405,6 +409,15 @@ def build_context(result: CellResult) -> dict[str, object]:
         headline = (
             "Every check made is within its acceptance window; the checks below were not "
             "made, as the rule set allows."
+        )
+    missing = [s for s in result.needed_stages if s not in result.stages]
+    if kind is VerdictKind.PASS and missing:
+        # a pass of one record is not the cell's release: its other stages are still to pass
+        headline += (
+            f" This certificate covers the {stage_words(result.stages)} stage"
+            f"{'s' if len(result.stages) > 1 else ''} only. The cell may be released only once "
+            f"every stage it needs ({stage_words(result.needed_stages)}) has passed; its "
+            "decision over all of them is in the station's ledger and its lot's report."
         )
     cell_id = result.cell_id or DASH
     metrics = result.metrics
