@@ -9,8 +9,8 @@ from __future__ import annotations
 
 import datetime
 import email
-import json
 import email.policy
+import json
 import re
 import time
 from pathlib import Path
