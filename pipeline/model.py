@@ -638,6 +638,17 @@ class RecordPlace:
 
 
 @dataclass(frozen=True, slots=True)
+class OtherRecord:
+    """Another record of the same cell: the stages it covers, its file, SHA-256 and verdict
+    (empty for a file of aging readings, which is judged with the cell, not alone)."""
+
+    stages: tuple[str, ...]
+    name: str
+    sha256: str
+    verdict: str
+
+
+@dataclass(frozen=True, slots=True)
 class CellResult:
     """Everything known about one judged cell: what the JSON result and the certificate show.
 
@@ -659,6 +670,7 @@ class CellResult:
     stages: tuple[str, ...] = WHOLE_PROGRAM  # the stages the cycle file covers (its metadata)
     record: RecordPlace | None = None  # set by a station when the cell has an earlier record
     needed_stages: tuple[str, ...] = WHOLE_PROGRAM  # what the cell's final verdict needs
+    other_records: tuple[OtherRecord, ...] = ()  # the cell's other stages, as a station knew them
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))

@@ -262,3 +262,36 @@ def test_a_stage_later_than_its_rule_set_allows_raises_one_alert(tmp_path: Path)
     body = " ".join(alert.get_body().get_content().split())  # type: ignore[union-attr]
     assert "Cell W-1 of lot LOT-A has been waiting for stage aging since" in body
     assert "[stages] overdue_h" in body
+
+
+def test_a_cells_last_certificate_lists_its_other_records_with_their_sha256(
+    tmp_path: Path,
+) -> None:
+    import hashlib
+    import shutil
+
+    from pypdf import PdfReader
+
+    from pipeline.demo.lots import DEMO_STAGED_CELLS, demo_aging_file, demo_stage_files
+    from pipeline.shipped import RULES_DIR
+
+    s = make_station(tmp_path / "st")
+    shutil.copy(RULES_DIR / "nmc_graphite.toml", s.rules_dir / "nmc_graphite.toml")
+    cell = DEMO_STAGED_CELLS[0]
+    files = demo_stage_files(cell)
+    aging = demo_aging_file(DEMO_STAGED_CELLS[:3])
+    with running(s):
+        drop(s.inboxes[0].folder, "formation.csv", files["formation"])
+        wait_until(lambda: settled(s, 1), what="the formation file")
+        drop(s.inboxes[0].folder, "aging.csv", aging)
+        wait_until(lambda: settled(s, 2), what="the tester file")
+        drop(s.inboxes[0].folder, "grading.csv", files["grading"])
+        wait_until(lambda: settled(s, 3), what="the grading file")
+    pdf = s.certificates / cell.lot / f"{cell.cell_id}~grading.pdf"
+    text = " ".join(" ".join(p.extract_text() for p in PdfReader(pdf).pages).split())
+    formation_sha = hashlib.sha256(files["formation"]).hexdigest()
+    assert f"Record of formation formation.csv (pass), SHA-256 {formation_sha}" in text
+    assert f"Record of aging aging.csv, SHA-256 {hashlib.sha256(aging).hexdigest()}" in text
+    with Ledger(s.ledger) as ledger:
+        decision = ledger.latest_decision(cell.lot, cell.cell_id)
+    assert decision is not None and (decision.verdict, decision.reason) == ("pass", "")

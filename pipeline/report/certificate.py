@@ -378,9 +378,17 @@ def _identity(result: CellResult) -> list[tuple[str, str]]:
 def _traceability(result: CellResult) -> list[list[tuple[str, str]]]:
     """Rows of one or two (label, value) pairs: hashes and the file name get a row each."""
     rs = result.rule_set
+    others = [
+        [(
+            f"Record of {stage_words(o.stages)}",
+            f"{o.name}" + (f" ({o.verdict})" if o.verdict else "") + f", SHA-256 {o.sha256}",
+        )]
+        for o in result.other_records
+    ]
     return [
         [("Input file", result.source_name)],
         [("Input SHA-256", result.input_sha256)],
+        *others,
         [("Rule set", f"{rs.name}, revision {rs.revision}"), ("Rule set file", rs.source)],
         [("Rule set SHA-256", rs.sha256)],
         [("Software", f"formgate {result.software_version}"),

@@ -9,7 +9,6 @@ handing them to the workers tasks.py's; the mail thread sends the letters (maile
 
 from __future__ import annotations
 
-import dataclasses
 import datetime
 import json
 import logging
@@ -18,9 +17,8 @@ from pathlib import Path
 from pipeline.inputnames import fit
 from pipeline.judge.evaluate import decision_line
 from pipeline.mail.letters import Letter, alert_letter, failure_letter, hold_letter
-from pipeline.model import WHOLE_PROGRAM, CellResult, RecordPlace, VerdictKind
+from pipeline.model import WHOLE_PROGRAM, CellResult, VerdictKind
 from pipeline.read.readings import ReadingFile
-from pipeline.report.result import to_json
 from pipeline.runner import result_paths
 from pipeline.station import faults
 from pipeline.station.cells import CellKeeping
@@ -50,7 +48,8 @@ class Publishing(CellKeeping):
             self.keep_readings(row, output.readings)
             return
         assert output.result is not None and output.json_text is not None
-        result, json_text, pdf = self.placed(row, output.result, output.json_text, output.pdf)
+        # the worker told the result which record of its cell it is (station/history.py)
+        result, json_text, pdf = output.result, output.json_text, output.pdf
         if row.state == "claimed":
             self.record(row, result, json_text, with_pdf=pdf is not None)
         self.keep_earlier_outputs(row, result)
@@ -85,33 +84,6 @@ class Publishing(CellKeeping):
             and (own is None or r.id < own.id)
             and tuple(json.loads(r.result_json).get("stages") or WHOLE_PROGRAM) == result.stages
         ]
-
-    def placed(
-        self, row: InputRow, result: CellResult, json_text: str, pdf: bytes | None
-    ) -> tuple[CellResult, str, bytes | None]:
-        """The result told which record of its cell and stage it is, when it is not the first.
-
-        The worker cannot know (it sees one file); the certificate and JSON of a retest
-        are made again here, with "record 2 of 2 ...; supersedes ...". Retests are rare.
-        """
-        earlier = self.earlier_records(row, result)
-        if not earlier:
-            return result, json_text, pdf
-        last = earlier[-1]
-        place = RecordPlace(
-            len(earlier) + 1,
-            len(earlier) + 1,
-            json.loads(last.result_json)["input"]["name"],
-            last.verdict,
-            last.analysed_at,
-        )
-        result = dataclasses.replace(result, record=place)
-        if pdf is not None:
-            from pipeline.report.certificate import render_html
-            from pipeline.report.pdf import render_pdf
-
-            pdf = render_pdf(render_html(result))
-        return result, to_json(result), pdf
 
     def keep_earlier_outputs(self, row: InputRow, result: CellResult) -> None:
         """Before a retest's outputs take the cell's file names, the earlier record's files

@@ -71,6 +71,7 @@ class Tasks(Publishing):
                 int(s.max_line_kB * 1024), s.max_rows, int(s.max_uncompressed_MB * MB)
             ),
             memory_note=f" (worker_memory_MB = {s.worker_memory_MB:g})",
+            ledger_path=str(s.ledger),
         )
 
     def submit(self) -> None:

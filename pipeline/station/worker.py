@@ -52,6 +52,7 @@ class Task:
     certify: str = "all"  # "all", "failed_and_held" (no PDF for a passed cell) or "none"
     limits: TextLimits | None = None  # longest line and most rows; None: not checked
     memory_note: str = ""  # names the worker's memory limit in a quarantine reason
+    ledger_path: str | None = None  # read-only: the cell's other records for its certificate
 
 
 @dataclass(frozen=True, slots=True)
@@ -229,6 +230,10 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None] | Read
         max_uncompressed_bytes=task.max_uncompressed_bytes,
         input_sha256=digest,
     )
+    if task.ledger_path is not None:
+        from pipeline.station.history import with_history
+
+        result = with_history(result, Path(task.ledger_path), task.input_id)
     pdf = None
     wanted = task.certify == "all" or (
         task.certify == "failed_and_held" and result.verdict.kind is not VerdictKind.PASS
