@@ -153,7 +153,11 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
             seen.add((r.lot, r.cell_id))
             # a fail or hold names what decided it (the result's deciding line)
             decision = json.loads(r.result_json).get("decision", "") if r.verdict != "pass" else ""
-            records = ledger.results_of_cell(r.lot, r.cell_id)
+            stages = json.loads(r.result_json).get("stages")
+            records = [  # of the same stages: a cell's formation and grading files are one each
+                x for x in ledger.results_of_cell(r.lot, r.cell_id)
+                if json.loads(x.result_json).get("stages") == stages
+            ]
             number = next((n for n, x in enumerate(records, 1) if x.id == r.id), len(records))
             cell = ledger.latest_decision(r.lot, r.cell_id)
             lines.append(
