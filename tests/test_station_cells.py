@@ -295,3 +295,27 @@ def test_a_cells_last_certificate_lists_its_other_records_with_their_sha256(
     with Ledger(s.ledger) as ledger:
         decision = ledger.latest_decision(cell.lot, cell.cell_id)
     assert decision is not None and (decision.verdict, decision.reason) == ("pass", "")
+
+
+def test_a_cell_whose_decision_a_crash_cut_off_is_decided_at_the_next_start(
+    tmp_path: Path,
+) -> None:
+    import sqlite3
+
+    s = make_station(tmp_path / "st")
+    (s.rules_dir / "test_cells.toml").write_text(AGING_RULES, encoding="utf-8")
+    with running(s):
+        drop(s.inboxes[0].folder, "c1.csv", cycle_file("R-1"))
+        wait_until(lambda: settled(s, 1), what="the cycle file")
+        drop(s.inboxes[0].folder, "aging.csv", _readings([
+            ("R-1", "2026-11-02T08:00:00Z", 3.6512), ("R-1", "2026-11-09T08:00:00Z", 3.6470),
+        ]))
+        wait_until(lambda: settled(s, 2), what="the tester file")
+        wait_until(lambda: len(_decisions(s, "R-1")) == 2, what="both decisions")
+    # as if the station died after archiving the readings, before deciding the cell
+    with sqlite3.connect(s.ledger) as conn:
+        conn.execute("DELETE FROM decisions WHERE cause = 'readings'")
+    assert _decisions(s, "R-1") == [("hold", "record", "waiting for stage aging")]
+    with running(s):
+        wait_until(lambda: len(_decisions(s, "R-1")) == 2, what="the decision made at start")
+    assert _decisions(s, "R-1")[-1][:2] == ("pass", "record")

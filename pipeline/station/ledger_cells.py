@@ -226,6 +226,25 @@ class CellsMixin(LedgerBase):
         )
         return [r["lot"] for r in rows]
 
+    def cells_behind(self, since: datetime.datetime, limit: int = 5000) -> list[tuple[str, str]]:
+        """(lot, cell) of cells with a record or reading since ``since`` newer than their
+        latest decision (or with none): a crash came between the two."""
+        rows = self._conn.execute(
+            "SELECT e.lot, e.cell_id FROM ("
+            "  SELECT r.lot, r.cell_id, max(r.analysed_at) AS t FROM results r "
+            "  JOIN inputs i ON i.id = r.input_id WHERE i.state IN ('published', 'archived') "
+            "  AND r.verdict <> 'error' AND r.analysed_at >= ? GROUP BY r.lot, r.cell_id "
+            "  UNION ALL "
+            "  SELECT g.lot, g.cell_id, max(i.arrived_at) FROM readings g "
+            "  JOIN inputs i ON i.id = g.input_id WHERE i.state IN ('published', 'archived') "
+            "  AND i.arrived_at >= ? GROUP BY g.lot, g.cell_id"
+            ") e GROUP BY e.lot, e.cell_id HAVING max(e.t) > coalesce((SELECT max(d.decided_at) "
+            "FROM decisions d WHERE d.lot = e.lot AND d.cell_id = e.cell_id), '') "
+            "ORDER BY e.lot, e.cell_id LIMIT ?",
+            (_utc(since, "since"), _utc(since, "since"), limit),
+        )
+        return [(r["lot"], r["cell_id"]) for r in rows]
+
     def waiting_cells(self) -> list[tuple[str, str, str, datetime.datetime]]:
         """(lot, cell, reason, first decided) of every cell of an open lot whose latest
         decision holds it while it waits for a stage."""

@@ -254,6 +254,17 @@ class Station(Claims, RulesKeeper):
             if row.final_path is None:
                 self.handle(input_key(row.id), "recovering", partial(self.recover_row, row))
         self.duty(self.reconcile_work)
+        self.duty(self.decide_behind)
+
+    def decide_behind(self) -> None:
+        """Decide the cells whose last record or reading of the past day came in just before a
+        crash, before their decision was recorded (a day back: older ones are decided at
+        their next record, or when their lot closes)."""
+        since = self.clock() - datetime.timedelta(days=1)
+        behind = self.ledger.cells_behind(since)
+        if behind:
+            log.info("deciding %d cell(s) whose records came in before a restart", len(behind))
+            self.decide_cells(behind, "record")
 
     def recover_row(self, row: InputRow) -> None:
         work = Path(row.work_path)
