@@ -21,11 +21,11 @@ from pipeline.mail.letters import (
     _fields,
     _item,
     _paragraph,
+    caution_sections,
     message_id_for,
     sanitize_header,
 )
 from pipeline.model import Hazard
-from pipeline.report.hazards import CAUTIONS, DATA_CHECK_NOTICE, HANDLING, general_caution
 
 _WORDS = {
     "fail": "FAIL. Do not release this cell; handle it with care.",
@@ -45,14 +45,11 @@ def _hazards(names: Sequence[str]) -> list[Hazard]:
     return [known[n] for n in names if n in known]
 
 
-def _cautions(hazards: Sequence[Hazard], family: str | None, failed: bool) -> list[str]:
-    parts = [f"CAUTION: {CAUTIONS[h].title}\n" + _paragraph(CAUTIONS[h].text) for h in hazards]
-    if hazards:
-        parts.append("HANDLING\n" + _paragraph(HANDLING))
-    if failed or hazards:
-        parts.append("GENERAL CAUTION\n" + _paragraph(general_caution(family)))
-    parts.append(_paragraph(DATA_CHECK_NOTICE))
-    return parts
+def _records(records: Sequence[tuple[str, str, str]]) -> str:
+    """The files a decision rests on, each with its stage and SHA-256."""
+    return "Records the decision rests on\n" + "\n".join(
+        _item(f"{stage}: {name} (SHA-256 {sha or 'not recorded'})") for stage, name, sha in records
+    )
 
 
 def decision_letter(
@@ -100,10 +97,8 @@ def decision_letter(
             "apart from released cells and follow your site's procedures."
         ),
         "Reasons\n" + "\n".join(_item(r) for r in reasons),
-        *_cautions(named, family, verdict == "fail"),
-        "Records the decision rests on\n"
-        + "\n".join(_item(f"{stage}: {name} (SHA-256 {sha or 'not recorded'})")
-                    for stage, name, sha in records),
+        *caution_sections(named, family, general=verdict == "fail" or bool(named)),
+        _records(records),
     ]
     word = "FAIL" if verdict == "fail" else "HOLD"
     return Letter(
@@ -163,10 +158,8 @@ def superseded_letter(
             if old_verdict == "fail"
             else "Review the cell against the decision that stands now."
         ),
-        *([] if new_verdict != "fail" else _cautions([], family, True)),
-        "Records the decision rests on\n"
-        + "\n".join(_item(f"{stage}: {name} (SHA-256 {sha or 'not recorded'})")
-                    for stage, name, sha in records),
+        *([] if new_verdict != "fail" else caution_sections([], family, general=True)),
+        _records(records),
     ]
     return Letter(
         kind="failure" if old_verdict == "fail" else "hold",

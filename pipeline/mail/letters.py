@@ -228,6 +228,20 @@ def _check_line(check: CheckResult) -> str:
     )
 
 
+def caution_sections(hazards: Sequence[Hazard], family: str | None, *, general: bool) -> list[str]:
+    """Each hazard's caution, the handling words, the family's general caution, the notice.
+
+    Every letter about a cell ends its decision with these, in this order.
+    """
+    parts = [f"CAUTION: {CAUTIONS[h].title}\n" + _paragraph(CAUTIONS[h].text) for h in hazards]
+    if hazards:
+        parts.append("HANDLING\n" + _paragraph(HANDLING))
+    if general:
+        parts.append("GENERAL CAUTION\n" + _paragraph(general_caution(family)))
+    parts.append(_paragraph(DATA_CHECK_NOTICE))
+    return parts
+
+
 def _cell_sections(result: CellResult, hazards: Sequence[Hazard], general: bool) -> list[str]:
     """Reasons, checks, cautions, notice and traceability: the body shared by cell letters."""
     parts: list[str] = []
@@ -240,14 +254,7 @@ def _cell_sections(result: CellResult, hazards: Sequence[Hazard], general: bool)
     ]
     if rows:
         parts.append("Checks out of window or not judged\n" + "\n".join(rows))
-    for hazard in hazards:
-        caution = CAUTIONS[hazard]
-        parts.append(f"CAUTION: {caution.title}\n" + _paragraph(caution.text))
-    if hazards:
-        parts.append("HANDLING\n" + _paragraph(HANDLING))
-    if general:
-        parts.append("GENERAL CAUTION\n" + _paragraph(general_caution(result.rule_set.family)))
-    parts.append(_paragraph(DATA_CHECK_NOTICE))
+    parts += caution_sections(hazards, result.rule_set.family, general=general)
     rule_set = result.rule_set
     trace = [
         ("Input file", result.source_name),
