@@ -89,9 +89,10 @@ def cmd_lot_show(args: argparse.Namespace) -> int:
             | {s.reading.cell_id for s in ledger.readings_of(args.lot)}
         )
         order = {"fail": 0, "hold": 1, "pass": 2}
+        decisions = ledger.latest_decisions(args.lot)
         rows = []
         for cell in cells:
-            d = ledger.latest_decision(args.lot, cell)
+            d = decisions.get(cell)
             rows.append((order.get(d.verdict, 3) if d else 3, cell, d))
         for _, cell, d in sorted(rows, key=lambda r: (r[0], r[1])):
             if d is None:

@@ -73,12 +73,13 @@ def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
         latest[r.cell_id] = r
         if "grading" in json.loads(r.result_json).get("stages", ("grading",)):
             grading[r.cell_id] = r
-    cells = sorted(set(latest) | {s.reading.cell_id for s in ledger.readings_of(lot)})
+    decisions = ledger.latest_decisions(lot)
+    cells = sorted(set(latest) | set(decisions))
     rows = []
     for cell in cells:
         record = grading.get(cell) or latest.get(cell)
         document = json.loads(record.result_json) if record is not None else {}
-        decision = ledger.latest_decision(lot, cell)
+        decision = decisions.get(cell)
         if decision is not None:
             verdict, reason, grade = decision.verdict, decision.reason, decision.grade
         else:

@@ -143,12 +143,19 @@ class CellsMixin(LedgerBase):
 
     def results_of_cell(self, lot: str, cell_id: str) -> list[ResultRow]:
         """Every published result of the cell's cycle files, oldest first (all records of it)."""
-        rows = self._conn.execute(
+        return self.results_of_lot(lot, cell_id)
+
+    def results_of_lot(self, lot: str, cell_id: str | None = None) -> list[ResultRow]:
+        """Every published result of the lot's (or one cell's) cycle files, in one query,
+        oldest first: every record, superseded ones included."""
+        sql = (
             "SELECT r.* FROM results r JOIN inputs i ON i.id = r.input_id "
-            "WHERE r.lot = ? AND r.cell_id = ? AND i.state IN ('published', 'archived') "
-            "ORDER BY r.analysed_at, r.id",
-            (lot, cell_id),
+            "WHERE r.lot = ? AND i.state IN ('published', 'archived')"
         )
+        params: tuple[str, ...] = (lot,)
+        if cell_id is not None:
+            sql, params = sql + " AND r.cell_id = ?", (lot, cell_id)
+        rows = self._conn.execute(sql + " ORDER BY r.analysed_at, r.id", params)
         return [_result(r) for r in rows]
 
     def move_outputs(self, result_id: int, json_path: str, pdf_path: str | None) -> None:
@@ -167,6 +174,15 @@ class CellsMixin(LedgerBase):
             (lot, cell_id),
         )
         return None if row is None else _decision(row)
+
+    def latest_decisions(self, lot: str) -> dict[str, DecisionRow]:
+        """Each cell of the lot -> its latest decision, in one query."""
+        rows = self._conn.execute(
+            "SELECT d.* FROM decisions d WHERE d.lot = ? AND d.id = (SELECT max(id) FROM "
+            "decisions e WHERE e.lot = d.lot AND e.cell_id = d.cell_id)",
+            (lot,),
+        )
+        return {r["cell_id"]: _decision(r) for r in rows}
 
     def decisions_of(self, lot: str, cell_id: str) -> list[DecisionRow]:
         """Every decision on the cell, oldest first."""

@@ -59,13 +59,8 @@ class LotOutcome:
 
 def gather(ledger: Ledger, lot: str, rulebook: RuleBook) -> ClosedLot:
     """The lot as the ledger holds it, closed by the rules (pure once the rows are read)."""
-    docs = [json.loads(r.result_json) for r in ledger.current_cells_of_lot(lot)]
-    docs += [
-        json.loads(r.result_json)
-        for cell in {d["cell"]["cell_id"] for d in docs}
-        for r in ledger.results_of_cell(lot, str(cell))
-        if r.superseded_by is not None
-    ]
+    # every record, as the station decides a cell (station/cells.py): one query for the lot
+    docs = [json.loads(r.result_json) for r in ledger.results_of_lot(lot)]
     files: dict[str, list[Reading]] = {}
     sha: dict[str, str] = {}
     for stored in ledger.readings_of(lot):
