@@ -36,14 +36,13 @@ def _open(folder: str) -> tuple[Any, Any]:
 
 def _known_lot(ledger: Any, lot: str) -> None:
     if lot not in ledger.lot_names():
-        from pipeline.rulebook.tables import close_match
+        from pipeline.rulebook.tables import did_you_mean
 
         names = ledger.lot_names()
-        guess = close_match(lot, names)
         raise FormgateError(
             f"the ledger has no lot {lot!r}",
             None,
-            (f"Did you mean '{guess}'? " if guess else "")
+            did_you_mean(lot, names)
             + ("Lots: " + ", ".join(names[:20]) if names else "It holds no lot yet.")
             + " (formgate lot list shows them).",
         )

@@ -44,6 +44,7 @@ from pipeline.rulebook.tables import (
     check_family,
     check_table,
     close_match,
+    did_you_mean,
     number,
 )
 from pipeline.rulebook.toml_lines import KeyPath, show_table, syntax_position
@@ -178,12 +179,11 @@ def _build_rule(
     cell_types = tuple(str(c) for c in listed) if isinstance(listed, tuple) else ()
     for name in cell_types:
         if name not in declared:
-            guess = close_match(name, declared)
             out.add(
                 f"{show_table(path)} cell_types names '{name}', which this file does not declare",
                 path,
                 "cell_types",
-                (f"Did you mean '{guess}'? " if guess else "")
+                did_you_mean(name, declared)
                 + f"Declared cell types: {', '.join(declared)}.",
             )
     if broken or len(out.errors) > before:
@@ -428,8 +428,7 @@ class RuleBook:
             if found is not None:
                 return rule_set, found
         known = self.cell_types
-        guess = close_match(cell_type, known)
-        hint = (f"Did you mean '{guess}'? " if guess else "") + (
+        hint = did_you_mean(cell_type, known) + (
             f"Known cell types: {', '.join(known)}. " if known else "No rule file declares any. "
         )
         raise InputError(

@@ -16,7 +16,7 @@ from typing import cast
 from pipeline.judge.metricdefs import AGING_METRIC_NAMES, RULE_BY_NAME, RULE_METRIC_NAMES
 from pipeline.model import STAGES, CellType, Grade, Rule, Screen
 from pipeline.rulebook.schema import BY_TABLE
-from pipeline.rulebook.tables import Collector, Values, check_table, close_match, describe, number
+from pipeline.rulebook.tables import Collector, Values, check_table, describe, did_you_mean, number
 
 
 @dataclass(frozen=True, slots=True)
@@ -57,12 +57,11 @@ def _check_stage_list(out: Collector, needed: Sequence[str], path: tuple[str, ..
     where = "[stages] needed" if path == ("stages",) else f"[cell_type.{path[-1]}] stages"
     for stage in needed:
         if stage not in STAGES:
-            guess = close_match(stage, STAGES)
             out.add(
                 f'{where} holds "{stage}", which is not a stage',
                 path,
                 key,
-                (f"Did you mean '{guess}'? " if guess else "") + f"Stages: {', '.join(STAGES)}.",
+                did_you_mean(stage, STAGES) + f"Stages: {', '.join(STAGES)}.",
             )
     if len(set(needed)) != len(needed):
         out.add(f"{where} names a stage twice", path, key, "Name each stage once.")
@@ -130,12 +129,11 @@ def _bound(
 ) -> tuple[str, float | None, float | None] | None:
     path = ("grade", grade)
     if metric not in RULE_BY_NAME:
-        guess = close_match(metric, RULE_METRIC_NAMES)
         out.add(
             f"[grade.{grade}] names '{metric}', which is not a metric",
             path,
             metric,
-            (f"Did you mean '{guess}'? " if guess else "") + "docs/rules.md lists every metric.",
+            did_you_mean(metric, RULE_METRIC_NAMES) + "docs/rules.md lists every metric.",
         )
         return None
     if not isinstance(bound, Mapping):

@@ -34,6 +34,16 @@ def close_match(word: str, choices: Sequence[str]) -> str | None:
     return lowered[match[0]] if match else None
 
 
+def did_you_mean(word: str, choices: Sequence[str]) -> str:
+    """The start of a hint: "Did you mean 'x'? " for the closest choice, or "" when none is close.
+
+    >>> did_you_mean("ageing", ("formation", "aging", "grading")), did_you_mean("zz", ("a",))
+    ("Did you mean 'aging'? ", '')
+    """
+    guess = close_match(word, choices)
+    return f"Did you mean '{guess}'? " if guess else ""
+
+
 def describe(value: object) -> str:
     """A found value in words, for "must be X, found Y"."""
     if isinstance(value, bool):
