@@ -16,7 +16,7 @@ import dataclasses
 import datetime
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, cast
 
 from pipeline.errors import FormgateError
 from pipeline.judge.aging import judge_aging
@@ -34,6 +34,7 @@ from pipeline.judge.lotstats import (
     GradeClass,
     LotStatistics,
     ScreenSpec,
+    Sides,
     WindowSpec,
     lot_statistics,
 )
@@ -93,7 +94,7 @@ def _lot_specs(
     rule_set: RuleSet, cell_type: CellType
 ) -> tuple[tuple[WindowSpec, ...], tuple[ScreenSpec, ...], tuple[GradeClass, ...]]:
     screens = tuple(
-        ScreenSpec(s.metric, s.k, s.min_cells, s.sides)  # type: ignore[arg-type]
+        ScreenSpec(s.metric, s.k, s.min_cells, cast(Sides, s.sides))  # the loader checked it
         for s in rule_set.screens
     )
     grades = tuple(
