@@ -254,6 +254,8 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
     from pipeline.judge.evaluate import evaluate
     from pipeline.judge.metrics import measure
     from pipeline.judge.segmentation import split_steps
+    from pipeline.ledger.ledger import Ledger
+    from pipeline.ledger.rows import CheckRowData
     from pipeline.mail.letters import build_message, failure_letter
     from pipeline.read.cyclefile import read_cycle_file
     from pipeline.read.validate import drop_invalid_rows, validate_trace
@@ -263,7 +265,6 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
     from pipeline.report.result import to_json
     from pipeline.rulebook.book import load_rules_dir
     from pipeline.runner import judge
-    from pipeline.station.ledger import CheckRowData, Ledger
     from pipeline.station.worker import Task, run_task
 
     rulebook = load_rules_dir(REPO / "rules")
@@ -314,14 +315,14 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
     def ledger_cycle() -> None:
         n = next(counter)
         sha = hashlib.sha256(f"input {n}".encode()).hexdigest()
-        row, _ = ledger.claim_input(
+        row, _ = ledger.inputs.claim(
             sha256=sha,
             name=f"cell-{n}.csv",
             size=len(data),
             arrived_at=ANALYSED_AT,
             work_path=f"work/cell-{n}.csv",
         )
-        ledger.record_result(
+        ledger.results.record(
             row.id,
             cell_id=result.cell_id,
             lot=result.lot,
@@ -337,8 +338,8 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
             pdf_path=f"certificates/cell-{n}.pdf",
             mails=[],
         )
-        ledger.mark_published(row.id)
-        ledger.mark_final(row.id, "archived", f"archive/cell-{n}.csv", now=ANALYSED_AT)
+        ledger.inputs.mark_published(row.id)
+        ledger.inputs.mark_final(row.id, "archived", f"archive/cell-{n}.csv", now=ANALYSED_AT)
 
     import dataclasses
 
@@ -351,7 +352,7 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
         cell = dataclasses.replace(failed, input_sha256=hashlib.sha256(f"mail {n}".encode()).hexdigest())
         letter = failure_letter(cell, str(failed_pdf), ("quality@example.com",), station="bench-line-1")
         build_message(letter, sender="formgate@localhost", date=ANALYSED_AT)
-        ledger.queue_mail(letter, now=ANALYSED_AT)
+        ledger.outbox.queue(letter, now=ANALYSED_AT)
 
     # Measure in the state of a station worker: stack imported, stylesheet parsed, start-up
     # objects frozen out of the garbage collector's scans (pipeline.station.worker.init_worker).

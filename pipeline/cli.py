@@ -206,7 +206,7 @@ def cmd_status(args: argparse.Namespace) -> int:
 
 def cmd_mail_retry(args: argparse.Namespace) -> int:
     """Send every pending mail now (and parked ones with --parked)."""
-    from pipeline.station.ledger import Ledger
+    from pipeline.ledger.ledger import Ledger
     from pipeline.station.mailer import deliver_due
     from pipeline.station.settings import smtp_settings
 
@@ -215,14 +215,14 @@ def cmd_mail_retry(args: argparse.Namespace) -> int:
     now = datetime.datetime.now(datetime.UTC)
     with Ledger(settings.ledger, now=now) as ledger:
         if args.parked:
-            for mail in ledger.mail_in_state("parked"):
-                ledger.requeue_mail(mail.id, now=now)
-        ledger.hurry_pending(now=now)
+            for mail in ledger.outbox.in_state("parked"):
+                ledger.outbox.requeue(mail.id, now=now)
+        ledger.outbox.hurry_pending(now=now)
         counts = deliver_due(
             ledger, smtp, station=settings.station_name, alerts_to=settings.routing.alerts_to,
             domain=settings.routing.domain,
         )
-        left = ledger.outbox_counts()
+        left = ledger.outbox.counts()
     print(f"sent {counts['sent']}, delayed {counts['retry']}, parked {counts['park']}; "
           f"outbox now {left.get('pending', 0)} pending, {left.get('parked', 0)} parked")
     parked = left.get("parked", 0)

@@ -1,6 +1,6 @@
 """The `formgate lot ...` and `formgate cell show` commands: a station's lots and a cell's history.
 
-Argument parsing and printing only; the ledger (pipeline.station.ledger) holds the
+Argument parsing and printing only; the ledger (pipeline.ledger) holds the
 history and pipeline.station.lots closes and reports a lot. Each command reads the
 station folder's station.toml, ledger and rules folder, and is safe beside a running
 station (SQLite's write-ahead log lets a reader in while the station writes; a close
@@ -21,7 +21,7 @@ EXIT_OK = 0
 
 
 def _open(folder: str) -> tuple[Any, Any]:
-    from pipeline.station.ledger import Ledger
+    from pipeline.ledger.ledger import Ledger
     from pipeline.station.settings import read_settings
 
     settings = read_settings(Path(folder))
@@ -35,10 +35,10 @@ def _open(folder: str) -> tuple[Any, Any]:
 
 
 def _known_lot(ledger: Any, lot: str) -> None:
-    if lot not in ledger.lot_names():
+    if lot not in ledger.lots.names():
         from pipeline.rulebook.tables import did_you_mean
 
-        names = ledger.lot_names()
+        names = ledger.lots.names()
         raise FormgateError(
             f"the ledger has no lot {lot!r}",
             None,
@@ -56,12 +56,12 @@ def cmd_lot_list(args: argparse.Namespace) -> int:
     """Every lot: cells, latest decisions counted, last activity, closed or open."""
     _, ledger = _open(args.folder)
     with ledger:
-        names = ledger.lot_names()
+        names = ledger.lots.names()
         if not names:
             print("no lots yet")
             return EXIT_OK
         for name in names:
-            lot = ledger.lot(name)
+            lot = ledger.lots.get(name)
             last = lot.last_activity.isoformat(timespec="seconds") if lot.last_activity else "-"
             state = (
                 f"closed {lot.closed_at.isoformat(timespec='seconds')} ({lot.closed_by})"
@@ -77,18 +77,18 @@ def cmd_lot_show(args: argparse.Namespace) -> int:
     _, ledger = _open(args.folder)
     with ledger:
         _known_lot(ledger, args.lot)
-        lot = ledger.lot(args.lot)
+        lot = ledger.lots.get(args.lot)
         print(f"lot {args.lot}: {lot.cells} cell(s): {_counts(lot.counts)}; "
               + ("closed " + lot.closed_at.isoformat(timespec="seconds") if lot.closed_at
                  else "open"))
         if lot.report_path:
             print(f"  report {lot.report_path}\n  export {lot.export_path}")
         cells = sorted(
-            {r.cell_id for r in ledger.current_cells_of_lot(args.lot)}
-            | {s.reading.cell_id for s in ledger.readings_of(args.lot)}
+            {r.cell_id for r in ledger.results.current_of_lot(args.lot)}
+            | {s.reading.cell_id for s in ledger.readings.of(args.lot)}
         )
         order = {"fail": 0, "hold": 1, "pass": 2}
-        decisions = ledger.latest_decisions(args.lot)
+        decisions = ledger.decisions.latest_of_lot(args.lot)
         rows = []
         for cell in cells:
             d = decisions.get(cell)
@@ -142,15 +142,15 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
     _, ledger = _open(args.folder)
     with ledger:
         lots = (args.lot and [args.lot]) or [
-            name for name in ledger.lot_names()
-            if ledger.results_of_cell(name, args.cell) or ledger.readings_of(name, args.cell)
+            name for name in ledger.lots.names()
+            if ledger.results.of_cell(name, args.cell) or ledger.readings.of(name, args.cell)
         ]
         if not lots:
             raise FormgateError(f"the ledger has no cell {args.cell!r}", None,
                                 "Check the cell id (formgate lot show LOT lists a lot's cells).")
         for lot in lots:
             print(f"cell {args.cell}, lot {lot}")
-            results = ledger.results_of_cell(lot, args.cell)
+            results = ledger.results.of_cell(lot, args.cell)
             print(f"  records ({len(results)})")
             for n, r in enumerate(results, 1):
                 doc = json.loads(r.result_json)
@@ -159,13 +159,13 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
                 gone = "  (superseded)" if r.superseded_by else ""
                 print(f"    {n} of {len(results)}  {r.analysed_at.isoformat(timespec='seconds')}  "
                       f"{doc['input']['name']}  {stages}  {r.verdict}{decided}{gone}")
-            readings = ledger.readings_of(lot, args.cell)
+            readings = ledger.readings.of(lot, args.cell)
             if readings:
                 print(f"  aging readings ({len(readings)})")
                 for s in readings:
                     print(f"    {s.reading.at.isoformat(timespec='seconds')}  "
                           f"{s.reading.ocv_v:.4f} V  {s.file_name} line {s.reading.line}")
-            decisions = ledger.decisions_of(lot, args.cell)
+            decisions = ledger.decisions.of_cell(lot, args.cell)
             print(f"  decisions ({len(decisions)})")
             for d in decisions:
                 grade = f" grade {d.grade}" if d.grade else ""

@@ -21,8 +21,8 @@ from pathlib import Path
 
 from pypdf import PdfReader
 
+from pipeline.ledger.ledger import Ledger
 from pipeline.station.handoff import is_temporary
-from pipeline.station.ledger import Ledger
 from pipeline.station.settings import Settings, read_settings, smtp_settings
 from pipeline.station.station import Station
 from tests.factories import build_trace, simple_formation
@@ -235,9 +235,9 @@ def settled(settings: Settings, expected: int) -> bool:
     if not settings.ledger.exists():
         return False
     with Ledger(settings.ledger) as ledger:
-        if ledger.inputs_in_state("claimed", "judged", "published"):
+        if ledger.inputs.in_state("claimed", "judged", "published"):
             return False
-        finals = ledger.inputs_in_state("archived", "quarantined", "duplicate")
+        finals = ledger.inputs.in_state("archived", "quarantined", "duplicate")
         return len([r for r in finals if r.final_path]) >= expected
 
 
@@ -259,15 +259,15 @@ def check_invariants(settings: Settings, dropped: set[str]) -> None:
         assert p.with_name(p.name + ".reason.txt").exists()
     with Ledger(settings.ledger) as ledger:
         assert ledger.integrity_ok()
-        rows = ledger.inputs_in_state("archived", "quarantined", "duplicate")
+        rows = ledger.inputs.in_state("archived", "quarantined", "duplicate")
         assert sorted(Path(r.final_path).name for r in rows if r.final_path) == sorted(
             p.name for p in finals
         )
-        assert not ledger.inputs_in_state("claimed", "judged", "published")
-        for mail in ledger.mail_in_state("sent"):
+        assert not ledger.inputs.in_state("claimed", "judged", "published")
+        for mail in ledger.outbox.in_state("sent"):
             if mail.attachment_path:
                 PdfReader(mail.attachment_path)  # every PDF ever mailed parses
-        for r in ledger.recent_results(10_000):
+        for r in ledger.results.recent(10_000):
             assert Path(r.json_path).exists()
             json.loads(Path(r.json_path).read_text(encoding="utf-8"))
     for folder in (settings.results, settings.certificates, settings.archive, settings.quarantine):

@@ -479,16 +479,16 @@ def test_mail_retry_says_how_to_send_parked_mail(
 ) -> None:
     import datetime
 
+    from pipeline.ledger.ledger import Ledger
     from pipeline.mail.letters import Letter
-    from pipeline.station.ledger import Ledger
     from tests.station_kit import make_station
 
     s = make_station(tmp_path / "st")
     when = datetime.datetime(2026, 3, 2, tzinfo=datetime.UTC)
     with Ledger(s.ledger, now=when) as ledger:
         letter = Letter("alert", "<p-1@demo.example>", ("maintenance@example.com",), "alert", "text")
-        mail_id = ledger.queue_mail(letter, now=when)
-        ledger.park(mail_id, now=when, reply="550 no such mailbox")
+        mail_id = ledger.outbox.queue(letter, now=when)
+        ledger.outbox.park(mail_id, now=when, reply="550 no such mailbox")
     assert main(["mail", "retry", str(s.root)]) == 2
     out = capsys.readouterr().out
     assert out.splitlines() == [

@@ -22,16 +22,20 @@ PACKAGE = REPO / "pipeline"
 # no demo. Report and mail sit on the core; the station on all of those; only the command
 # line (and the tests) may import the demo.
 FORBIDDEN: Mapping[str, tuple[str, ...]] = {
-    "read": ("judge", "report", "mail", "station", "demo", "cli", "runner"),
-    "judge": ("report", "mail", "station", "demo", "cli", "runner"),
-    "rulebook": ("report", "mail", "station", "demo", "cli", "runner"),
-    "report": ("mail", "station", "demo", "cli", "runner"),
-    "mail": ("station", "demo", "cli", "runner"),
+    "read": ("judge", "report", "mail", "ledger", "station", "demo", "cli", "runner"),
+    "judge": ("report", "mail", "ledger", "station", "demo", "cli", "runner"),
+    "rulebook": ("report", "mail", "ledger", "station", "demo", "cli", "runner"),
+    "report": ("mail", "ledger", "station", "demo", "cli", "runner"),
+    "mail": ("ledger", "station", "demo", "cli", "runner"),
+    # the ledger stores what others decide: the model's and the readers' records only
+    "ledger": ("judge", "rulebook", "report", "mail", "station", "demo", "cli", "runner"),
     "station": ("demo", "cli"),
-    "runner": ("station", "mail", "demo", "cli"),
+    "runner": ("ledger", "station", "mail", "demo", "cli"),
     # the records everyone shares import nothing of the package above them
-    "model": ("read", "judge", "rulebook", "report", "mail", "station", "demo", "cli", "runner"),
-    "errors": ("read", "judge", "rulebook", "report", "mail", "station", "demo", "cli", "runner"),
+    "model": ("read", "judge", "rulebook", "report", "mail", "ledger", "station", "demo", "cli",
+              "runner"),
+    "errors": ("read", "judge", "rulebook", "report", "mail", "ledger", "station", "demo", "cli",
+               "runner"),
 }
 
 
@@ -164,8 +168,8 @@ def test_every_part_of_the_package_says_what_it_may_import_and_holds_nothing_els
 @pytest.mark.parametrize(
     ("module", "line", "expected"),
     [
-        ("pipeline.judge.metrics", "from pipeline.station.ledger import Ledger",
-         ["pipeline.judge.metrics imports pipeline.station.ledger"]),
+        ("pipeline.judge.metrics", "from pipeline.ledger.ledger import Ledger",
+         ["pipeline.judge.metrics imports pipeline.ledger.ledger"]),
         ("pipeline.read.cyclefile", "import pipeline.demo.synth",
          ["pipeline.read.cyclefile imports pipeline.demo.synth"]),
         ("pipeline.judge.metrics", "def f():\n    from pipeline.mail import letters",
@@ -185,3 +189,17 @@ def test_the_check_catches_a_circle() -> None:
     sources = package_sources()
     sources["pipeline.judge.thin"] += "\ndef f():\n    from pipeline.judge import metrics\n"
     assert ["pipeline.judge.metrics", "pipeline.judge.thin"] in circles(graph(sources))
+
+
+def test_the_ledger_imports_only_the_records_it_stores() -> None:
+    """The ledger keeps what the others decide: it may use the model, the errors and the
+    readers' records (aging readings), and nothing that composes, judges or sends."""
+    allowed_parts = {"ledger", "model", "errors"}
+    found = [
+        f"{module} imports {target}"
+        for module, targets in sorted(graph(package_sources()).items())
+        if part(module) == "ledger"
+        for target in sorted(targets)
+        if part(target) not in allowed_parts and target != "pipeline.read.readings"
+    ]
+    assert found == []

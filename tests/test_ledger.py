@@ -17,16 +17,18 @@ from hypothesis import HealthCheck, settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, precondition, rule
 
-from pipeline.model import CheckResult, Hazard, Outcome, Severity, SourceRef, Window
-from pipeline.station.ledger import (
+from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.migrations import (
+    MIGRATIONS,
     SCHEMA_VERSION,
-    CheckRowData,
-    InputRow,
-    Ledger,
     LedgerError,
-    OutgoingMail,
+    applied_migrations,
+    migrate,
+    sql_migration,
 )
-from pipeline.station.migrations import MIGRATIONS, applied_migrations, migrate, sql_migration
+from pipeline.ledger.rows import CheckRowData, InputRow
+from pipeline.mail.letters import Letter
+from pipeline.model import CheckResult, Hazard, Outcome, Severity, SourceRef, Window
 
 T0 = datetime.datetime(2026, 3, 2, 6, 0, tzinfo=datetime.UTC)
 LOT = "DEMO-LOT-07"
@@ -58,7 +60,7 @@ def sha(content: str) -> str:
 def claim(
     ledger: Ledger, content: str, name: str, *, work: str | None = None, at: datetime.datetime = T0
 ) -> tuple[InputRow, InputRow | None]:
-    return ledger.claim_input(
+    return ledger.inputs.claim(
         sha256=sha(content),
         name=name,
         size=len(content),
@@ -67,8 +69,8 @@ def claim(
     )
 
 
-def mail(message_id: str, kind: str = "failure", lot: str | None = None) -> OutgoingMail:
-    return OutgoingMail(kind, message_id, QUALITY, f"{kind} {message_id}", "text", None, lot)
+def mail(message_id: str, kind: str = "failure", lot: str | None = None) -> Letter:
+    return Letter(kind, message_id, QUALITY, f"{kind} {message_id}", "text", None, lot)
 
 
 def record(
@@ -78,11 +80,11 @@ def record(
     verdict: str = "pass",
     lot: str = LOT,
     cell: str = "DEMO-0001",
-    mails: Sequence[OutgoingMail] = (),
+    mails: Sequence[Letter] = (),
     checks: Sequence[CheckRowData] = CHECKS,
     at: datetime.datetime = T0,
 ) -> int:
-    return ledger.record_result(
+    return ledger.results.record(
         input_id,
         cell_id=cell,
         lot=lot,
@@ -102,8 +104,8 @@ def record(
 
 def finish(ledger: Ledger, input_id: int, at: datetime.datetime = T0) -> None:
     """Publish and archive a judged input, as the station does after writing its outputs."""
-    ledger.mark_published(input_id)
-    ledger.mark_final(input_id, "archived", f"archive/2026-03-02/{input_id}.csv", now=at)
+    ledger.inputs.mark_published(input_id)
+    ledger.inputs.mark_final(input_id, "archived", f"archive/2026-03-02/{input_id}.csv", now=at)
 
 
 @pytest.fixture
@@ -128,7 +130,7 @@ def test_new_ledger_uses_wal_full_sync_foreign_keys_and_records_its_migration(
 ) -> None:
     path = tmp_path / "ledger.sqlite"
     with Ledger(path, now=T0) as ledger:
-        conn = ledger._conn
+        conn = ledger.db.conn
         assert conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
         assert conn.execute("PRAGMA synchronous").fetchone()[0] == 2  # FULL
         assert conn.execute("PRAGMA foreign_keys").fetchone()[0] == 1
@@ -137,7 +139,7 @@ def test_new_ledger_uses_wal_full_sync_foreign_keys_and_records_its_migration(
         assert applied_migrations(conn) == [(m.name, "2026-03-02T06:00:00.000000+00:00") for m in MIGRATIONS]
     # opening again applies nothing and keeps the record as it was
     with Ledger(path, now=minutes(60)) as again:
-        assert applied_migrations(again._conn) == [
+        assert applied_migrations(again.db.conn) == [
             (m.name, "2026-03-02T06:00:00.000000+00:00") for m in MIGRATIONS
         ]
 
@@ -253,24 +255,24 @@ def test_a_folder_that_does_not_exist_is_refused_with_what_to_do(tmp_path: Path)
     ("call", "message"),
     [
         (
-            lambda lg: lg.claim_input(
+            lambda lg: lg.inputs.claim(
                 sha256="ABC", name="a.csv", size=1, arrived_at=T0, work_path="w"
             ),
             "sha256 must be 64 lowercase hex digits",
         ),
         (
-            lambda lg: lg.claim_input(
+            lambda lg: lg.inputs.claim(
                 sha256=sha("a"), name="in/a.csv", size=1, arrived_at=T0, work_path="w"
             ),
             "name must be a file's base name as text",
         ),
-        (lambda lg: lg.inputs_in_state("done"), "unknown input states"),
-        (lambda lg: lg.mark_final(1, "deleted", "x"), "final state must be one of"),
-        (lambda lg: lg.mark_published(99), "no input with id 99"),
-        (lambda lg: lg.record_error(1, ""), "record_error needs a reason"),
-        (lambda lg: lg.mark_sent(99, now=T0, reply="250"), "no mail with id 99"),
-        (lambda lg: lg.requeue_mail(99, now=T0), "mail 99 is not parked"),
-        (lambda lg: lg.mark_digested(LOT, [], 99), "mail 99 is not a digest"),
+        (lambda lg: lg.inputs.in_state("done"), "unknown input states"),
+        (lambda lg: lg.inputs.mark_final(1, "deleted", "x"), "final state must be one of"),
+        (lambda lg: lg.inputs.mark_published(99), "no input with id 99"),
+        (lambda lg: lg.inputs.record_error(1, ""), "record_error needs a reason"),
+        (lambda lg: lg.outbox.mark_sent(99, now=T0, reply="250"), "no mail with id 99"),
+        (lambda lg: lg.outbox.requeue(99, now=T0), "mail 99 is not parked"),
+        (lambda lg: lg.digests.mark(LOT, [], 99), "mail 99 is not a digest"),
     ],
 )
 def test_wrong_arguments_are_refused(ledger: Ledger, call: object, message: str) -> None:
@@ -296,11 +298,11 @@ def test_same_bytes_again_are_a_duplicate_pointing_to_the_first(ledger: Ledger) 
         assert pointed is not None and pointed.id == first.id
         assert row.result_id is None and row.supersedes is None
     assert again.version == 1 and copy.version == 1
-    ledger.mark_final(again.id, "duplicate", "archive/2026-03-02/a.csv.dup1", now=minutes(5))
-    final = ledger.input(again.id)
+    ledger.inputs.mark_final(again.id, "duplicate", "archive/2026-03-02/a.csv.dup1", now=minutes(5))
+    final = ledger.inputs.get(again.id)
     assert final is not None
     assert (final.state, final.final_path) == ("duplicate", "archive/2026-03-02/a.csv.dup1")
-    assert ledger.due_mail(minutes(10)) == []  # nothing mailed for a duplicate
+    assert ledger.outbox.due(minutes(10)) == []  # nothing mailed for a duplicate
 
 
 def test_same_name_new_bytes_is_a_new_version_superseding_the_old_result(ledger: Ledger) -> None:
@@ -311,7 +313,7 @@ def test_same_name_new_bytes_is_a_new_version_superseding_the_old_result(ledger:
     assert earlier is None
     assert (v2.state, v2.version, v2.supersedes) == ("claimed", 2, v1.id)
     r2 = record(ledger, v2.id, verdict="pass", at=minutes(30))
-    old, new = ledger.result(r1), ledger.result(r2)
+    old, new = ledger.results.get(r1), ledger.results.get(r2)
     assert old is not None and new is not None
     assert old.superseded_by == r2
     assert new.superseded_by is None
@@ -326,14 +328,14 @@ def test_a_superseding_result_recorded_first_still_leaves_one_current_result(
     v2, _ = claim(ledger, "v2 bytes", "b.csv")
     r2 = record(ledger, v2.id)
     r1 = record(ledger, v1.id)  # a slow worker finishes the older version last
-    assert ledger.result(r1).superseded_by == r2  # type: ignore[union-attr]
-    assert ledger.result(r2).superseded_by is None  # type: ignore[union-attr]
+    assert ledger.results.get(r1).superseded_by == r2  # type: ignore[union-attr]
+    assert ledger.results.get(r2).superseded_by is None  # type: ignore[union-attr]
 
 
 def test_bytes_seen_only_in_quarantine_are_judged_again_as_a_new_version(ledger: Ledger) -> None:
     bad, _ = claim(ledger, "cell C bytes", "c.csv")
-    ledger.record_error(bad.id, "c.csv: no rule set covers cell type 'DEMO-X9'")
-    ledger.mark_final(bad.id, "quarantined", "quarantine/c.csv", now=minutes(1))
+    ledger.inputs.record_error(bad.id, "c.csv: no rule set covers cell type 'DEMO-X9'")
+    ledger.inputs.mark_final(bad.id, "quarantined", "quarantine/c.csv", now=minutes(1))
     retry, earlier = claim(ledger, "cell C bytes", "c.csv", at=minutes(60))
     assert earlier is None
     assert (retry.state, retry.version, retry.supersedes) == ("claimed", 2, bad.id)
@@ -346,32 +348,32 @@ def test_claiming_the_same_file_again_after_a_restart_returns_the_same_row(ledge
     row, _ = claim(ledger, "cell D", "d.csv")
     again, earlier = claim(ledger, "cell D", "d.csv")
     assert again == row and earlier is None
-    assert ledger.input_by_work_path("work/d.csv") == row
+    assert ledger.inputs.by_work_path("work/d.csv") == row
     dup, first = claim(ledger, "cell D", "d.csv", work="work/d-copy.csv")
     dup_again, first_again = claim(ledger, "cell D", "d.csv", work="work/d-copy.csv")
     assert dup_again == dup and first_again == first
-    assert [r.id for r in ledger.inputs_in_state("claimed", "duplicate")] == [row.id, dup.id]
+    assert [r.id for r in ledger.inputs.in_state("claimed", "duplicate")] == [row.id, dup.id]
 
 
 def test_states_only_move_forward(ledger: Ledger) -> None:
     row, _ = claim(ledger, "cell E", "e.csv")
     with pytest.raises(ValueError, match="only a judged input can be published"):
-        ledger.mark_published(row.id)
+        ledger.inputs.mark_published(row.id)
     with pytest.raises(ValueError, match="cannot become 'archived'"):
-        ledger.mark_final(row.id, "archived", "archive/e.csv")
+        ledger.inputs.mark_final(row.id, "archived", "archive/e.csv")
     with pytest.raises(ValueError, match="without a reason"):
-        ledger.mark_final(row.id, "quarantined", "quarantine/e.csv")
+        ledger.inputs.mark_final(row.id, "quarantined", "quarantine/e.csv")
     record(ledger, row.id)
-    ledger.mark_published(row.id)
-    ledger.mark_published(row.id)  # again after a restart: no-op
-    ledger.mark_final(row.id, "archived", "archive/e.csv", now=minutes(2))
-    ledger.mark_final(row.id, "archived", "archive/e.csv", now=minutes(3))  # no-op
+    ledger.inputs.mark_published(row.id)
+    ledger.inputs.mark_published(row.id)  # again after a restart: no-op
+    ledger.inputs.mark_final(row.id, "archived", "archive/e.csv", now=minutes(2))
+    ledger.inputs.mark_final(row.id, "archived", "archive/e.csv", now=minutes(3))  # no-op
     with pytest.raises(ValueError, match="already final"):
-        ledger.mark_final(row.id, "archived", "archive/elsewhere.csv")
+        ledger.inputs.mark_final(row.id, "archived", "archive/elsewhere.csv")
     dup, _ = claim(ledger, "cell E", "e.csv")
     with pytest.raises(ValueError, match="only a claimed input can be judged"):
         record(ledger, dup.id)
-    assert ledger.input(row.id).final_at == minutes(2)  # type: ignore[union-attr]
+    assert ledger.inputs.get(row.id).final_at == minutes(2)  # type: ignore[union-attr]
 
 
 # ---- results ---------------------------------------------------------------------------------
@@ -384,9 +386,9 @@ def test_record_result_is_all_or_nothing(ledger: Ledger) -> None:
         record(ledger, row.id, verdict="fail", mails=[mail("<f-1@demo.example>")], checks=broken)
     path = ledger.path
     assert [count(path, t) for t in ("results", "checks", "outbox")] == [0, 0, 0]
-    assert ledger.input(row.id).state == "claimed"  # type: ignore[union-attr]
+    assert ledger.inputs.get(row.id).state == "claimed"  # type: ignore[union-attr]
     result_id = record(ledger, row.id, verdict="fail", mails=[mail("<f-1@demo.example>")])
-    assert ledger.checks_for_result(result_id) == list(CHECKS)
+    assert ledger.results.checks(result_id) == list(CHECKS)
     assert [count(path, t) for t in ("results", "checks", "outbox")] == [1, 3, 1]
 
 
@@ -419,11 +421,11 @@ def test_a_process_killed_inside_record_result_leaves_no_trace_of_it(tmp_path: P
     assert child.exitcode == 9
     with Ledger(path, now=T0) as ledger:
         assert ledger.integrity_ok()
-        (row,) = ledger.inputs_in_state("claimed")  # the claim had committed; the result had not
+        (row,) = ledger.inputs.in_state("claimed")  # the claim had committed; the result had not
         assert row.result_id is None
         assert [count(path, t) for t in ("results", "checks", "outbox")] == [0, 0, 0]
         result_id = record(ledger, row.id, verdict="fail", mails=[mail("<killed@demo.example>")])
-        assert ledger.input(row.id).result_id == result_id  # type: ignore[union-attr]
+        assert ledger.inputs.get(row.id).result_id == result_id  # type: ignore[union-attr]
 
 
 def test_check_rows_are_taken_from_the_judge_s_check_results() -> None:
@@ -455,7 +457,7 @@ def test_record_result_twice_keeps_one_result(ledger: Ledger) -> None:
     second = record(ledger, row.id, verdict="hold", mails=[mail("<g-1@demo.example>", "hold")])
     assert first == second
     assert [count(ledger.path, t) for t in ("results", "checks", "outbox")] == [1, 3, 1]
-    stored = ledger.result_for_input(row.id)
+    stored = ledger.results.of_input(row.id)
     assert stored is not None
     assert (stored.verdict, stored.cell_id, stored.lot, stored.analysed_at) == (
         "hold",
@@ -465,7 +467,7 @@ def test_record_result_twice_keeps_one_result(ledger: Ledger) -> None:
     )
     assert stored.pdf_path == f"certificates/{LOT}/DEMO-0001.pdf"
     assert json.loads(stored.result_json) == {"verdict": "hold", "cell": "DEMO-0001"}
-    assert ledger.input(row.id).result_id == first  # type: ignore[union-attr]
+    assert ledger.inputs.get(row.id).result_id == first  # type: ignore[union-attr]
 
 
 def test_a_message_id_used_by_another_result_is_refused(ledger: Ledger) -> None:
@@ -474,39 +476,39 @@ def test_a_message_id_used_by_another_result_is_refused(ledger: Ledger) -> None:
     record(ledger, a.id, verdict="fail", mails=[mail("<same@demo.example>")])
     with pytest.raises(ValueError, match="already in the outbox"):
         record(ledger, b.id, verdict="fail", mails=[mail("<same@demo.example>")])
-    assert ledger.input(b.id).state == "claimed"  # type: ignore[union-attr]
+    assert ledger.inputs.get(b.id).state == "claimed"  # type: ignore[union-attr]
 
 
 def test_errors_queue_alerts_once_and_quarantine_parks_unsent_mail(ledger: Ledger) -> None:
     row, _ = claim(ledger, "cell J", "j.csv")
     alert = mail("<j-alert@demo.example>", "alert")
-    ledger.record_error(row.id, "j.csv, line 3: no column for voltage", [alert], now=minutes(1))
-    ledger.record_error(row.id, "j.csv, line 3: no column for voltage", [alert], now=minutes(2))
-    assert ledger.outbox_counts() == {"pending": 1, "sent": 0, "parked": 0}
-    assert [r.id for r in ledger.recent_errors()] == [row.id]
-    ledger.mark_final(row.id, "quarantined", "quarantine/j.csv", now=minutes(3))
-    assert ledger.input(row.id).reason == "j.csv, line 3: no column for voltage"  # type: ignore[union-attr]
+    ledger.inputs.record_error(row.id, "j.csv, line 3: no column for voltage", [alert], now=minutes(1))
+    ledger.inputs.record_error(row.id, "j.csv, line 3: no column for voltage", [alert], now=minutes(2))
+    assert ledger.outbox.counts() == {"pending": 1, "sent": 0, "parked": 0}
+    assert [r.id for r in ledger.inputs.recent_errors()] == [row.id]
+    ledger.inputs.mark_final(row.id, "quarantined", "quarantine/j.csv", now=minutes(3))
+    assert ledger.inputs.get(row.id).reason == "j.csv, line 3: no column for voltage"  # type: ignore[union-attr]
     # a judged cell whose certificate cannot be written goes to quarantine; its mail is not sent
     judged, _ = claim(ledger, "cell K", "k.csv")
     record(ledger, judged.id, verdict="fail", mails=[mail("<k-1@demo.example>")])
-    ledger.mark_final(
+    ledger.inputs.mark_final(
         judged.id, "quarantined", "quarantine/k.csv", "certificate could not be written"
     )
-    parked = ledger.mail(2)
+    parked = ledger.outbox.get(2)
     assert parked is not None and parked.state == "parked"
-    assert [m.message_id for m in ledger.due_mail(minutes(60))] == ["<j-alert@demo.example>"]
+    assert [m.message_id for m in ledger.outbox.due(minutes(60))] == ["<j-alert@demo.example>"]
 
 
 # ---- outbox ----------------------------------------------------------------------------------
 
 
 def test_queue_mail_is_idempotent_on_message_id(ledger: Ledger) -> None:
-    first = ledger.queue_mail(mail("<alert-1@demo.example>", "alert"), now=T0)
-    again = ledger.queue_mail(mail("<alert-1@demo.example>", "alert"), now=minutes(5))
+    first = ledger.outbox.queue(mail("<alert-1@demo.example>", "alert"), now=T0)
+    again = ledger.outbox.queue(mail("<alert-1@demo.example>", "alert"), now=minutes(5))
     assert first == again
-    assert ledger.outbox_counts() == {"pending": 1, "sent": 0, "parked": 0}
+    assert ledger.outbox.counts() == {"pending": 1, "sent": 0, "parked": 0}
     with pytest.raises(ValueError, match="mail kind"):
-        ledger.queue_mail(mail("<x@demo.example>", "newsletter"), now=T0)
+        ledger.outbox.queue(mail("<x@demo.example>", "newsletter"), now=T0)
 
 
 def test_due_mail_is_oldest_first_and_waits_for_the_certificate(ledger: Ledger) -> None:
@@ -514,12 +516,12 @@ def test_due_mail_is_oldest_first_and_waits_for_the_certificate(ledger: Ledger) 
     b, _ = claim(ledger, "cell L2", "l2.csv")
     record(ledger, a.id, verdict="fail", mails=[mail("<l1@demo.example>")], at=minutes(1))
     record(ledger, b.id, verdict="hold", mails=[mail("<l2@demo.example>", "hold")], at=minutes(2))
-    ledger.queue_mail(mail("<alert@demo.example>", "alert"), now=minutes(3))
-    ledger.queue_mail(mail("<later@demo.example>", "alert"), now=minutes(90))
-    assert [m.message_id for m in ledger.due_mail(minutes(10))] == ["<alert@demo.example>"]
-    ledger.mark_published(b.id)
-    ledger.mark_published(a.id)
-    due = ledger.due_mail(minutes(10))
+    ledger.outbox.queue(mail("<alert@demo.example>", "alert"), now=minutes(3))
+    ledger.outbox.queue(mail("<later@demo.example>", "alert"), now=minutes(90))
+    assert [m.message_id for m in ledger.outbox.due(minutes(10))] == ["<alert@demo.example>"]
+    ledger.inputs.mark_published(b.id)
+    ledger.inputs.mark_published(a.id)
+    due = ledger.outbox.due(minutes(10))
     assert [m.message_id for m in due] == [
         "<l1@demo.example>",
         "<l2@demo.example>",
@@ -527,17 +529,17 @@ def test_due_mail_is_oldest_first_and_waits_for_the_certificate(ledger: Ledger) 
     ]
     assert [m.cell_result_id for m in due] == [1, 2, None]
     assert due[0].lot == LOT and due[0].recipients == QUALITY
-    assert len(ledger.due_mail(minutes(10), limit=2)) == 2
-    ledger.mark_final(a.id, "archived", "archive/l1.csv")
-    assert len(ledger.due_mail(minutes(100))) == 4
+    assert len(ledger.outbox.due(minutes(10), limit=2)) == 2
+    ledger.inputs.mark_final(a.id, "archived", "archive/l1.csv")
+    assert len(ledger.outbox.due(minutes(100))) == 4
 
 
 def test_retry_and_park_bookkeeping(ledger: Ledger) -> None:
-    first = ledger.queue_mail(mail("<m1@demo.example>", "alert"), now=T0)
-    second = ledger.queue_mail(mail("<m2@demo.example>", "alert"), now=T0)
-    ledger.mark_retry(first, now=minutes(1), next_attempt_at=minutes(6), error="421 try later")
-    assert [m.id for m in ledger.due_mail(minutes(2))] == [second]
-    row = ledger.mail(first)
+    first = ledger.outbox.queue(mail("<m1@demo.example>", "alert"), now=T0)
+    second = ledger.outbox.queue(mail("<m2@demo.example>", "alert"), now=T0)
+    ledger.outbox.mark_retry(first, now=minutes(1), next_attempt_at=minutes(6), error="421 try later")
+    assert [m.id for m in ledger.outbox.due(minutes(2))] == [second]
+    row = ledger.outbox.get(first)
     assert row is not None
     assert (row.state, row.attempts, row.next_attempt_at, row.last_error) == (
         "pending",
@@ -545,11 +547,11 @@ def test_retry_and_park_bookkeeping(ledger: Ledger) -> None:
         minutes(6),
         "421 try later",
     )
-    assert [m.id for m in ledger.due_mail(minutes(6))] == [first, second]
-    ledger.mark_sent(first, now=minutes(7), reply="250 queued as 4F2A")
-    ledger.mark_sent(first, now=minutes(8), reply="250 queued as 4F2A")  # again: no-op
-    ledger.park(second, now=minutes(7), reply="550 no such user")
-    sent, parked = ledger.mail(first), ledger.mail(second)
+    assert [m.id for m in ledger.outbox.due(minutes(6))] == [first, second]
+    ledger.outbox.mark_sent(first, now=minutes(7), reply="250 queued as 4F2A")
+    ledger.outbox.mark_sent(first, now=minutes(8), reply="250 queued as 4F2A")  # again: no-op
+    ledger.outbox.park(second, now=minutes(7), reply="550 no such user")
+    sent, parked = ledger.outbox.get(first), ledger.outbox.get(second)
     assert sent is not None and parked is not None
     assert (sent.state, sent.attempts, sent.sent_at, sent.reply) == (
         "sent",
@@ -558,12 +560,12 @@ def test_retry_and_park_bookkeeping(ledger: Ledger) -> None:
         "250 queued as 4F2A",
     )
     assert (parked.state, parked.attempts, parked.last_error) == ("parked", 1, "550 no such user")
-    assert ledger.due_mail(minutes(60)) == []
-    assert ledger.outbox_counts() == {"pending": 0, "sent": 1, "parked": 1}
+    assert ledger.outbox.due(minutes(60)) == []
+    assert ledger.outbox.counts() == {"pending": 0, "sent": 1, "parked": 1}
     with pytest.raises(ValueError, match="not pending"):
-        ledger.mark_retry(second, now=minutes(9), next_attempt_at=minutes(10), error="x")
-    ledger.requeue_mail(second, now=minutes(20))
-    assert [m.id for m in ledger.due_mail(minutes(20))] == [second]
+        ledger.outbox.mark_retry(second, now=minutes(9), next_attempt_at=minutes(10), error="x")
+    ledger.outbox.requeue(second, now=minutes(20))
+    assert [m.id for m in ledger.outbox.due(minutes(20))] == [second]
 
 
 # ---- lot digests -----------------------------------------------------------------------------
@@ -575,40 +577,40 @@ def test_each_passed_cell_is_in_exactly_one_digest(ledger: Ledger) -> None:
         row, _ = claim(ledger, f"pass cell {n}", f"p{n}.csv")
         ids.append(record(ledger, row.id, cell=f"DEMO-{n:04d}", at=minutes(n)))
         if n < 3:
-            ledger.mark_published(row.id)  # the fourth has no certificate yet
+            ledger.inputs.mark_published(row.id)  # the fourth has no certificate yet
     failed, _ = claim(ledger, "failed cell", "x.csv")
     record(ledger, failed.id, verdict="fail")
-    ledger.mark_published(failed.id)
+    ledger.inputs.mark_published(failed.id)
     other, _ = claim(ledger, "other lot", "o.csv")
     record(ledger, other.id, lot="DEMO-LOT-08")
-    ledger.mark_published(other.id)
+    ledger.inputs.mark_published(other.id)
 
-    assert ledger.pending_digest_lots() == [LOT, "DEMO-LOT-08"]
-    cells = ledger.passed_cells_for_digest(LOT)
+    assert ledger.digests.pending_lots() == [LOT, "DEMO-LOT-08"]
+    cells = ledger.digests.passed_cells(LOT)
     assert [c.id for c in cells] == ids[:3]
     # crash between queuing and marking: the digest is queued but covers nothing, so not due
-    digest = ledger.queue_mail(mail("<digest-1@demo.example>", "digest", LOT), now=minutes(10))
-    assert ledger.due_mail(minutes(11)) == []
-    ledger.mark_digested(LOT, [c.id for c in cells], digest)
-    ledger.mark_digested(LOT, [c.id for c in cells], digest)  # again after a restart: no-op
-    assert [m.id for m in ledger.due_mail(minutes(11))] == [digest]
-    assert ledger.passed_cells_for_digest(LOT) == []
+    digest = ledger.outbox.queue(mail("<digest-1@demo.example>", "digest", LOT), now=minutes(10))
+    assert ledger.outbox.due(minutes(11)) == []
+    ledger.digests.mark(LOT, [c.id for c in cells], digest)
+    ledger.digests.mark(LOT, [c.id for c in cells], digest)  # again after a restart: no-op
+    assert [m.id for m in ledger.outbox.due(minutes(11))] == [digest]
+    assert ledger.digests.passed_cells(LOT) == []
     with pytest.raises(ValueError, match=f"already in digest mail {digest}"):
-        ledger.queue_digest(
+        ledger.digests.queue(
             mail("<digest-2@demo.example>", "digest", LOT), [ids[0]], now=minutes(12)
         )
-    assert ledger.mail(digest + 1) is None  # refused as a whole: the second digest was not queued
+    assert ledger.outbox.get(digest + 1) is None  # refused as a whole: the second digest was not queued
 
-    ledger.mark_published(ledger.result(ids[3]).input_id)  # type: ignore[union-attr]
-    assert [c.id for c in ledger.passed_cells_for_digest(LOT)] == [ids[3]]
-    second = ledger.queue_digest(
+    ledger.inputs.mark_published(ledger.results.get(ids[3]).input_id)  # type: ignore[union-attr]
+    assert [c.id for c in ledger.digests.passed_cells(LOT)] == [ids[3]]
+    second = ledger.digests.queue(
         mail("<digest-2@demo.example>", "digest", LOT), [ids[3]], now=minutes(13)
     )
-    assert ledger.pending_digest_lots() == ["DEMO-LOT-08"]
-    covered = {i: ledger.result(i).digest_mail_id for i in ids}  # type: ignore[union-attr]
+    assert ledger.digests.pending_lots() == ["DEMO-LOT-08"]
+    covered = {i: ledger.results.get(i).digest_mail_id for i in ids}  # type: ignore[union-attr]
     assert covered == {ids[0]: digest, ids[1]: digest, ids[2]: digest, ids[3]: second}
     with pytest.raises(ValueError, match="not a passed cell"):
-        ledger.mark_digested(LOT, [ledger.result_for_input(failed.id).id], second)  # type: ignore[union-attr]
+        ledger.digests.mark(LOT, [ledger.results.of_input(failed.id).id], second)  # type: ignore[union-attr]
 
 
 def test_a_superseded_pass_is_not_digested(ledger: Ledger) -> None:
@@ -617,23 +619,23 @@ def test_a_superseded_pass_is_not_digested(ledger: Ledger) -> None:
     finish(ledger, v1.id)
     v2, _ = claim(ledger, "second", "s.csv")
     r2 = record(ledger, v2.id)
-    ledger.mark_published(v2.id)
-    assert [c.id for c in ledger.passed_cells_for_digest(LOT)] == [r2]
+    ledger.inputs.mark_published(v2.id)
+    assert [c.id for c in ledger.digests.passed_cells(LOT)] == [r2]
 
 
 def test_a_digest_lists_the_whole_lot_as_it_stands(ledger: Ledger) -> None:
     passed, _ = claim(ledger, "pass", "p.csv")
     record(ledger, passed.id, cell="DEMO-0002")
-    ledger.mark_published(passed.id)
+    ledger.inputs.mark_published(passed.id)
     failed, _ = claim(ledger, "fail", "f.csv")
     record(ledger, failed.id, cell="DEMO-0001", verdict="fail")
-    ledger.mark_published(failed.id)
+    ledger.inputs.mark_published(failed.id)
     unpublished, _ = claim(ledger, "not yet published", "u.csv")
     record(ledger, unpublished.id, cell="DEMO-0003")
     other, _ = claim(ledger, "other lot", "o.csv")
     record(ledger, other.id, lot="DEMO-LOT-08")
-    ledger.mark_published(other.id)
-    listed = ledger.current_cells_of_lot(LOT)
+    ledger.inputs.mark_published(other.id)
+    listed = ledger.results.current_of_lot(LOT)
     assert [(c.cell_id, c.verdict) for c in listed] == [("DEMO-0001", "fail"), ("DEMO-0002", "pass")]
 
 
@@ -647,20 +649,20 @@ def test_counts_since_counts_inputs_that_became_final_in_the_window(ledger: Ledg
         record(ledger, row.id, verdict=verdict)
         finish(ledger, row.id, at=minutes(10 * n))  # finals at 0, 10, 20, 30 min
     bad, _ = claim(ledger, "unreadable", "bad.csv")
-    ledger.record_error(bad.id, "bad.csv, line 1: not a cycle file")
-    ledger.mark_final(bad.id, "quarantined", "quarantine/bad.csv", now=minutes(40))
+    ledger.inputs.record_error(bad.id, "bad.csv, line 1: not a cycle file")
+    ledger.inputs.mark_final(bad.id, "quarantined", "quarantine/bad.csv", now=minutes(40))
     dup, _ = claim(ledger, "cell 0", "n0.csv")
-    ledger.mark_final(dup.id, "duplicate", "archive/n0.csv.dup", now=minutes(50))
+    ledger.inputs.mark_final(dup.id, "duplicate", "archive/n0.csv.dup", now=minutes(50))
     claim(ledger, "still in work", "w.csv")  # not final: not counted
-    assert ledger.counts_since(T0) == {"pass": 2, "fail": 1, "hold": 1, "error": 1, "duplicate": 1}
-    assert ledger.counts_since(minutes(15)) == {
+    assert ledger.inputs.counts_since(T0) == {"pass": 2, "fail": 1, "hold": 1, "error": 1, "duplicate": 1}
+    assert ledger.inputs.counts_since(minutes(15)) == {
         "pass": 0,
         "fail": 1,
         "hold": 1,
         "error": 1,
         "duplicate": 1,
     }
-    assert ledger.counts_since(minutes(60)) == {
+    assert ledger.inputs.counts_since(minutes(60)) == {
         "pass": 0,
         "fail": 0,
         "hold": 0,
@@ -673,7 +675,7 @@ def test_recent_results_are_newest_first(ledger: Ledger) -> None:
     for n in range(3):
         row, _ = claim(ledger, f"r{n}", f"r{n}.csv")
         record(ledger, row.id, cell=f"DEMO-{n}", at=minutes(n))
-    assert [r.cell_id for r in ledger.recent_results(limit=2)] == ["DEMO-2", "DEMO-1"]
+    assert [r.cell_id for r in ledger.results.recent(limit=2)] == ["DEMO-2", "DEMO-1"]
 
 
 def test_integrity_check_passes_on_a_good_ledger_and_fails_on_a_damaged_index(
@@ -713,7 +715,7 @@ def _claim_many(path: str, prefix: str, start: object, report: str) -> None:
                     mails=[mail(f"<{prefix}-{n}@demo.example>")],
                     verdict="fail",
                 )
-                ledger.mark_published(row.id)
+                ledger.inputs.mark_published(row.id)
     except BaseException as exc:  # reported to the parent, which fails the test
         Path(report).write_text(f"{type(exc).__name__}: {exc}")
         raise
@@ -736,9 +738,9 @@ def test_two_processes_open_and_write_the_same_new_ledger_at_once(tmp_path: Path
     assert errors == []
     assert [c.exitcode for c in children] == [0, 0]
     with Ledger(path, now=T0) as ledger:
-        assert len(ledger.inputs_in_state("published")) == 80
-        assert ledger.outbox_counts()["pending"] == 80
-        assert applied_migrations(ledger._conn) == [
+        assert len(ledger.inputs.in_state("published")) == 80
+        assert ledger.outbox.counts()["pending"] == 80
+        assert applied_migrations(ledger.db.conn) == [
             (m.name, "2026-03-02T06:00:00.000000+00:00") for m in MIGRATIONS
         ]
         assert ledger.integrity_ok()
@@ -808,51 +810,51 @@ class LedgerMachine(RuleBasedStateMachine):
     @rule(data=st.data())
     def publish(self, data: st.DataObject) -> None:
         input_id = data.draw(st.sampled_from(self._ids("judged")))
-        self.ledger.mark_published(input_id)
+        self.ledger.inputs.mark_published(input_id)
         self.expected[input_id] = "published"
 
     @precondition(lambda self: self._ids("published"))
     @rule(data=st.data())
     def archive(self, data: st.DataObject) -> None:
         input_id = data.draw(st.sampled_from(self._ids("published")))
-        self.ledger.mark_final(input_id, "archived", f"archive/{input_id}", now=self._tick())
+        self.ledger.inputs.mark_final(input_id, "archived", f"archive/{input_id}", now=self._tick())
         self.expected[input_id] = "archived"
 
     @precondition(lambda self: self._ids("claimed") + self._ids("judged"))
     @rule(data=st.data())
     def quarantine(self, data: st.DataObject) -> None:
         input_id = data.draw(st.sampled_from(self._ids("claimed") + self._ids("judged")))
-        self.ledger.record_error(
+        self.ledger.inputs.record_error(
             input_id, "cannot be read", [mail(f"<{input_id}-alert@demo.example>", "alert")]
         )
-        self.ledger.mark_final(input_id, "quarantined", f"quarantine/{input_id}", now=self._tick())
+        self.ledger.inputs.mark_final(input_id, "quarantined", f"quarantine/{input_id}", now=self._tick())
         self.expected[input_id] = "quarantined"
 
     @precondition(lambda self: self._ids("duplicate"))
     @rule(data=st.data())
     def set_duplicate_aside(self, data: st.DataObject) -> None:
         input_id = data.draw(st.sampled_from(self._ids("duplicate")))
-        self.ledger.mark_final(input_id, "duplicate", f"archive/{input_id}.dup", now=self._tick())
+        self.ledger.inputs.mark_final(input_id, "duplicate", f"archive/{input_id}.dup", now=self._tick())
 
     @rule(lot=st.sampled_from(["LOT-0", "LOT-1"]))
     def digest(self, lot: str) -> None:
-        cells = [c.id for c in self.ledger.passed_cells_for_digest(lot)]
+        cells = [c.id for c in self.ledger.digests.passed_cells(lot)]
         if cells:
             message = mail(f"<digest-{lot}-{min(cells)}@demo.example>", "digest", lot)
-            self.ledger.queue_digest(message, cells, now=self._tick())
+            self.ledger.digests.queue(message, cells, now=self._tick())
 
     @rule(outcome=st.sampled_from(["sent", "retry", "park"]))
     def deliver(self, outcome: str) -> None:
         now = self._tick()
-        for due in self.ledger.due_mail(now, limit=2):
+        for due in self.ledger.outbox.due(now, limit=2):
             if outcome == "sent":
-                self.ledger.mark_sent(due.id, now=now, reply="250 ok")
+                self.ledger.outbox.mark_sent(due.id, now=now, reply="250 ok")
             elif outcome == "retry":
-                self.ledger.mark_retry(
+                self.ledger.outbox.mark_retry(
                     due.id, now=now, next_attempt_at=minutes(self.clock + 2), error="421"
                 )
             else:
-                self.ledger.park(due.id, now=now, reply="550 no")
+                self.ledger.outbox.park(due.id, now=now, reply="550 no")
 
     @rule()
     def restart(self) -> None:
@@ -861,10 +863,10 @@ class LedgerMachine(RuleBasedStateMachine):
 
     @invariant()
     def states_match_and_relations_hold(self) -> None:
-        conn = self.ledger._conn
+        conn = self.ledger.db.conn
         rows = {
             r.id: r
-            for r in self.ledger.inputs_in_state(
+            for r in self.ledger.inputs.in_state(
                 "claimed", "judged", "published", "archived", "quarantined", "duplicate"
             )
         }
@@ -908,7 +910,7 @@ class LedgerMachine(RuleBasedStateMachine):
             ).fetchone()[0]
             == 0
         )
-        for due in self.ledger.due_mail(minutes(10_000), limit=1000):
+        for due in self.ledger.outbox.due(minutes(10_000), limit=1000):
             if due.kind in ("failure", "hold"):
                 owner = conn.execute(
                     "SELECT input_id FROM results WHERE id = ?", (due.cell_result_id,)
@@ -935,10 +937,10 @@ def test_a_version_1_ledger_is_upgraded_in_place_and_keeps_its_rows(tmp_path: Pa
     finally:
         conn.close()
     with Ledger(path, now=T0) as ledger:
-        assert [name for name, _ in applied_migrations(ledger._conn)] == [m.name for m in MIGRATIONS]
+        assert [name for name, _ in applied_migrations(ledger.db.conn)] == [m.name for m in MIGRATIONS]
         claim(ledger, "cell one", "c1.csv")
         sha = "a" * 64
-        ledger.remember_text(kind="rule_set", sha256=sha, name="x.toml", text="[rule_set]", now=T0)
-        ledger.remember_text(kind="rule_set", sha256=sha, name="x.toml", text="[rule_set]", now=T0)
-        assert ledger.text_by_sha(sha) == ("x.toml", "[rule_set]")
+        ledger.facts.remember_text(kind="rule_set", sha256=sha, name="x.toml", text="[rule_set]", now=T0)
+        ledger.facts.remember_text(kind="rule_set", sha256=sha, name="x.toml", text="[rule_set]", now=T0)
+        assert ledger.facts.text_by_sha(sha) == ("x.toml", "[rule_set]")
         assert ledger.integrity_ok()

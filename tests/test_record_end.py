@@ -17,9 +17,9 @@ import pytest
 from pipeline.demo import lots as demo
 from pipeline.demo import synth
 from pipeline.judge.record_end import HEAD_BYTES, TAIL_BYTES, head_and_tail, looks_cut
+from pipeline.ledger.ledger import Ledger
 from pipeline.rulebook.book import load_rules_dir
 from pipeline.shipped import RULES_DIR
-from pipeline.station.ledger import Ledger
 from pipeline.station.settings import Settings
 from tests.station_kit import RULES, cycle_file, make_station, running, settled, station_toml, wait_until
 
@@ -104,9 +104,9 @@ def test_a_paused_writers_first_half_is_never_judged(tmp_path: Path) -> None:
             writer.write(data[cut:])
         wait_until(lambda: settled(s, 1), what="the whole file judged")
     with Ledger(s.ledger) as ledger:
-        rows = ledger.inputs_in_state("archived", "quarantined")
+        rows = ledger.inputs.in_state("archived", "quarantined")
         assert [(r.name, r.version, r.size) for r in rows] == [("paused.csv", 1, len(data))]
-        result = ledger.result_for_input(rows[0].id)
+        result = ledger.results.of_input(rows[0].id)
         assert result is not None and result.verdict == "pass"
 
 
@@ -119,7 +119,7 @@ def test_a_record_whose_writer_never_comes_back_is_held_as_incomplete(tmp_path: 
     with running(s):
         wait_until(lambda: settled(s, 1), what="the cut file taken after 2 x settle_s")
     with Ledger(s.ledger) as ledger:
-        (row,) = ledger.inputs_in_state("archived", "quarantined")
-        result = ledger.result_for_input(row.id)
+        (row,) = ledger.inputs.in_state("archived", "quarantined")
+        result = ledger.results.of_input(row.id)
         assert result is not None and result.verdict == "hold"
         assert "program incomplete" in result.result_json

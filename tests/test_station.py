@@ -11,7 +11,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.station.ledger import Ledger
+from pipeline.ledger.ledger import Ledger
 from pipeline.station.settings import smtp_settings
 from pipeline.station.station import Station
 from pipeline.station.status import status_text
@@ -86,7 +86,7 @@ def test_slow_writer_is_judged_once_after_it_is_complete(tmp_path: Path) -> None
                 time.sleep(0.9)
         wait_until(lambda: settled(s, 1), what="the slow file judged")
     with Ledger(s.ledger) as ledger:
-        rows = ledger.inputs_in_state("archived", "quarantined", "duplicate")
+        rows = ledger.inputs.in_state("archived", "quarantined", "duplicate")
         assert [(r.name, r.state, r.size) for r in rows] == [("slow.csv", "archived", len(data))]
     check_invariants(s, {"slow.csv"})
 
@@ -156,13 +156,13 @@ def test_same_bytes_again_are_a_duplicate_and_new_bytes_under_an_old_name_a_new_
         drop(s.inboxes[0].folder, "d.csv", cycle_file("D-1", seed=2))
         wait_until(lambda: settled(s, 3), what="second version")
     with Ledger(s.ledger) as ledger:
-        rows = sorted(ledger.inputs_in_state("archived", "duplicate"), key=lambda r: r.id)
+        rows = sorted(ledger.inputs.in_state("archived", "duplicate"), key=lambda r: r.id)
         assert [(r.name, r.state, r.version) for r in rows] == [
             ("d.csv", "archived", 1),
             ("copy.csv", "duplicate", 1),
             ("d.csv", "archived", 2),
         ]
-        results = ledger.recent_results(10)
+        results = ledger.results.recent(10)
         assert len(results) == 2  # the duplicate was not judged
         old = min(results, key=lambda r: r.id)
         assert old.superseded_by == max(results, key=lambda r: r.id).id
@@ -221,7 +221,7 @@ def test_broken_rules_edit_keeps_the_last_good_rules_and_alerts_with_file_and_li
         in body.replace("\r\n", "\n")
     )
     with Ledger(s.ledger) as ledger:
-        verdicts = sorted(r.verdict for r in ledger.recent_results(10))
+        verdicts = sorted(r.verdict for r in ledger.results.recent(10))
     assert verdicts == ["pass", "pass"]
 
 

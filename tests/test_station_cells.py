@@ -17,7 +17,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.station.ledger import Ledger
+from pipeline.ledger.ledger import Ledger
 from pipeline.station.settings import Settings
 from pipeline.station.status import status_text
 from tests.station_kit import (
@@ -70,7 +70,7 @@ def _letters(s: Settings) -> list[email.message.EmailMessage]:
 
 def _decisions(s: Settings, cell: str) -> list[tuple[str, str, str]]:
     with Ledger(s.ledger) as ledger:
-        return [(d.verdict, d.cause, d.reason) for d in ledger.decisions_of("LOT-A", cell)]
+        return [(d.verdict, d.cause, d.reason) for d in ledger.decisions.of_cell("LOT-A", cell)]
 
 
 def test_cycle_files_and_a_tester_file_make_one_decision_per_cell(tmp_path: Path) -> None:
@@ -106,7 +106,7 @@ def test_cycle_files_and_a_tester_file_make_one_decision_per_cell(tmp_path: Path
     # a cell held only while it waits for a stage gets no letter
     assert not any("HOLD cell C-1" in str(m["Subject"]) for m in _letters(s))
     with Ledger(s.ledger) as ledger:
-        assert len(ledger.readings_of("LOT-A")) == 4
+        assert len(ledger.readings.of("LOT-A")) == 4
     # status shows each cell once, and what stands for the cell when its records say less
     report = status_text(s, datetime.datetime.now(datetime.UTC))
     assert report.count("  C-2  lot LOT-A  pass") == 1
@@ -196,15 +196,15 @@ def test_closing_a_lot_holds_its_outlier_grades_the_rest_and_writes_its_report(
     # the pass stays recorded; the hold is recorded beside it, with its letter queued
     assert [d[:2] for d in _decisions(s, "L-5")][-2:] == [("pass", "readings"), ("hold", "lot closed")]
     with Ledger(s.ledger) as ledger:
-        letters = [m for m in ledger.mail_in_state("pending") if "HOLD cell L-5" in m.subject]
+        letters = [m for m in ledger.outbox.in_state("pending") if "HOLD cell L-5" in m.subject]
         assert len(letters) == 1 and "outlier in lot" in letters[0].subject
-        graded = {c: ledger.latest_decision("LOT-A", c) for c in cells}
+        graded = {c: ledger.decisions.latest("LOT-A", c) for c in cells}
         assert {c: d.grade for c, d in graded.items() if d} == {
             c: (None if c == "L-5" else "A") for c in cells
         }
-        assert ledger.lot("LOT-A").closed_by == "command"
+        assert ledger.lots.get("LOT-A").closed_by == "command"
         # the lot's last digest: every cell as closed, graded, with the report attached
-        (closing,) = [m for m in ledger.mail_in_state("pending") if "lot LOT-A, closed" in m.subject]
+        (closing,) = [m for m in ledger.outbox.in_state("pending") if "lot LOT-A, closed" in m.subject]
         assert closing.attachment_path and closing.attachment_path.endswith("_lot-report.pdf")
         assert re.search(r"^L-1 +pass A ", closing.body_text, re.M), closing.body_text
         assert "outlier in lot" in closing.body_text
@@ -231,7 +231,7 @@ def test_a_lot_quiet_for_its_rule_sets_time_is_closed_by_the_station(tmp_path: P
 
     def closed() -> bool:
         with Ledger(s.ledger) as ledger:
-            return ledger.lot("LOT-A").closed_by == "station"
+            return ledger.lots.get("LOT-A").closed_by == "station"
 
     with running(s):
         drop(s.inboxes[0].folder, "q1.csv", cycle_file("Q-1"))
@@ -293,7 +293,7 @@ def test_a_cells_last_certificate_lists_its_other_records_with_their_sha256(
     assert f"Record of formation formation.csv (pass), SHA-256 {formation_sha}" in text
     assert f"Record of aging aging.csv, SHA-256 {hashlib.sha256(aging).hexdigest()}" in text
     with Ledger(s.ledger) as ledger:
-        decision = ledger.latest_decision(cell.lot, cell.cell_id)
+        decision = ledger.decisions.latest(cell.lot, cell.cell_id)
     assert decision is not None and (decision.verdict, decision.reason) == ("pass", "")
 
 

@@ -21,7 +21,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.station.ledger import Ledger
+from pipeline.ledger.ledger import Ledger
 from pipeline.station.settings import Settings, read_settings
 from pipeline.station.status import status_text
 from tests.station_kit import (
@@ -189,7 +189,7 @@ def test_a_full_disk_and_a_full_ledger_pause_the_station_until_there_is_room(tmp
         assert any("No space left on device (the disk is full)" in a for a in alerts), alerts
         with Ledger(s.ledger) as ledger:
             assert ledger.integrity_ok()
-            assert sorted(r.cell_id for r in ledger.recent_results(10)) == ["FULL-1", "FULL-2", "FULL-3"]
+            assert sorted(r.cell_id for r in ledger.results.recent(10)) == ["FULL-1", "FULL-2", "FULL-3"]
 
 
 def test_started_with_a_broken_rule_file_it_judges_with_the_last_valid_rules(tmp_path: Path) -> None:
@@ -207,7 +207,7 @@ def test_started_with_a_broken_rule_file_it_judges_with_the_last_valid_rules(tmp
     assert "It judges with the last rules that were valid, kept in its ledger (test-cells 1)" in alert
     assert f"{rules}, line 16: unknown key 'lowe' in [check.capacity]." in alert.replace("\r\n", "\n")
     with Ledger(s.ledger) as ledger:
-        assert [r.verdict for r in ledger.recent_results(10)] == ["pass", "pass"]
+        assert [r.verdict for r in ledger.results.recent(10)] == ["pass", "pass"]
 
 
 def test_started_with_no_valid_rules_ever_it_waits_paused_and_judges_once_they_are_fixed(

@@ -16,7 +16,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.station.ledger import Ledger
+from pipeline.ledger.ledger import Ledger
 from tests.station_kit import (
     REPO,
     cycle_file,
@@ -72,7 +72,7 @@ def test_files_past_a_limit_or_killing_their_worker_are_quarantined_and_others_a
         in reasons["many-rows.csv.reason.txt"]
     )
     with Ledger(s.ledger) as ledger:
-        assert [(r.cell_id, r.verdict) for r in ledger.recent_results(10)] == [("B-1", "pass")]
+        assert [(r.cell_id, r.verdict) for r in ledger.results.recent(10)] == [("B-1", "pass")]
 
 
 MEMORY_SCRIPT = """

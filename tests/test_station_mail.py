@@ -8,7 +8,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.station.ledger import Ledger
+from pipeline.ledger.ledger import Ledger
 from tests.smtp_server import CERTS, free_port, smtp_server
 from tests.station_kit import (
     REPO,
@@ -33,7 +33,7 @@ def smtp_table(port: int) -> str:
 
 def counts(s) -> dict[str, int]:
     with Ledger(s.ledger) as ledger:
-        return ledger.outbox_counts()
+        return ledger.outbox.counts()
 
 
 def test_mail_server_down_then_up_delivers_once_with_the_certificate(tmp_path: Path) -> None:
@@ -67,7 +67,7 @@ def test_mail_server_down_then_up_delivers_once_with_the_certificate(tmp_path: P
 
 def _attempts(s) -> int:
     with Ledger(s.ledger) as ledger:
-        return sum(m.attempts for m in ledger.mail_in_state("pending"))
+        return sum(m.attempts for m in ledger.outbox.in_state("pending"))
 
 
 def test_permanent_refusal_parks_the_mail_and_raises_an_alert(tmp_path: Path) -> None:
@@ -85,6 +85,6 @@ def test_permanent_refusal_parks_the_mail_and_raises_an_alert(tmp_path: Path) ->
                 what="alert delivered",
             )
     with Ledger(s.ledger) as ledger:
-        parked = ledger.mail_in_state("parked")
+        parked = ledger.outbox.in_state("parked")
     assert [m.kind for m in parked] == ["failure"]
     assert "550" in (parked[0].reply or parked[0].last_error or "")

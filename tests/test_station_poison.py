@@ -22,7 +22,7 @@ from pathlib import Path
 import pytest
 
 from pipeline.inputnames import from_text
-from pipeline.station.ledger import Ledger
+from pipeline.ledger.ledger import Ledger
 from pipeline.station.settings import read_settings
 from pipeline.station.status import status_text
 from tests.station_kit import (
@@ -123,8 +123,8 @@ def test_poison_entries_are_set_aside_and_the_station_goes_on(tmp_path: Path) ->
             _immutable(frozen, False)
     assert code == 0
     with Ledger(s.ledger) as ledger:
-        finals = ledger.inputs_in_state("archived", "quarantined", "duplicate")
-        aside = ledger.set_aside_rows(100)
+        finals = ledger.inputs.in_state("archived", "quarantined", "duplicate")
+        aside = ledger.facts.set_aside_rows(100)
     # names that are not plain text are judged all the same, stored as lossless text
     expected = ["cell_\\xe9.csv"] * 2 + ["two\\x0alines-q.csv", "two\\x0alines-s.csv"]
     expected += [f"q{LONG[1:]}", f"s{LONG[1:]}", "good.csv"]

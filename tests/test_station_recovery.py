@@ -10,9 +10,9 @@ from pathlib import Path
 
 import pytest
 
+from pipeline.ledger.ledger import Ledger
 from pipeline.station import station, watcher
 from pipeline.station.faults import POINTS
-from pipeline.station.ledger import Ledger
 from tests.station_kit import (
     check_invariants,
     cycle_file,
@@ -49,15 +49,15 @@ def test_killed_at_a_fault_point_a_restart_completes_the_work(tmp_path: Path, po
         assert stop_watch(again) == 0
     check_invariants(s, set(files))
     with Ledger(s.ledger) as ledger:
-        results = ledger.recent_results(100)
+        results = ledger.results.recent(100)
         assert sorted(r.cell_id for r in results) == ["K-1", "K-2"]  # each judged exactly once
-        ids = [m.message_id for m in ledger.mail_in_state("sent")]
+        ids = [m.message_id for m in ledger.outbox.in_state("sent")]
         assert len(ids) == len(set(ids))
 
 
 def _outbox_empty(s) -> bool:
     with Ledger(s.ledger) as ledger:
-        return ledger.outbox_counts().get("pending", 0) == 0 and not ledger.pending_digest_lots()
+        return ledger.outbox.counts().get("pending", 0) == 0 and not ledger.digests.pending_lots()
 
 
 def test_random_kills_never_lose_or_double_judge_a_file(tmp_path: Path) -> None:
@@ -89,7 +89,7 @@ def test_random_kills_never_lose_or_double_judge_a_file(tmp_path: Path) -> None:
         assert stop_watch(final) == 0
     check_invariants(s, dropped)
     with Ledger(s.ledger) as ledger:
-        cells = [r.cell_id for r in ledger.recent_results(1000)]
+        cells = [r.cell_id for r in ledger.results.recent(1000)]
         assert len(cells) == len(set(cells)) == len(dropped)
 
 
@@ -105,7 +105,7 @@ def test_outbox_survives_three_restarts_without_duplicates(tmp_path: Path) -> No
         wait_until(lambda: settled(s, 3) and _outbox_empty(s), timeout_s=120, what="all mail out")
     mails = sorted(p.name for p in s.mail.glob("*.eml"))
     with Ledger(s.ledger) as ledger:
-        sent = ledger.mail_in_state("sent")
+        sent = ledger.outbox.in_state("sent")
     assert (
         len(sent) == len({m.message_id for m in sent}) == len(mails) == 3
     )  # three failure letters
@@ -135,7 +135,7 @@ def test_a_burst_of_500_files_all_reach_a_final_state_once(
         wait_until(lambda: settled(s, 500), timeout_s=900, what="500 files")
     check_invariants(s, names)
     with Ledger(s.ledger) as ledger:
-        results = ledger.recent_results(1000)
+        results = ledger.results.recent(1000)
         assert len(results) == len({r.cell_id for r in results}) == 500
         assert {r.verdict for r in results} == {"pass"}
         assert all(r.pdf_path is None for r in results)  # certify = failed_and_held

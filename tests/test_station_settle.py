@@ -15,7 +15,7 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.station.ledger import Ledger
+from pipeline.ledger.ledger import Ledger
 from tests.station_kit import cycle_file, make_station, running, settled, station_toml, wait_until
 
 pytestmark = pytest.mark.slow
@@ -42,7 +42,7 @@ def test_a_writer_that_pauses_then_appends_gives_a_new_version_and_never_alters_
                    what="originals removed once unchanged (4 x settle_s) and equal to their copies")
         wait_until(lambda: bool(_alerts(s)), what="alert")
     with Ledger(s.ledger) as ledger:
-        rows = sorted(ledger.inputs_in_state("archived", "quarantined"), key=lambda r: r.id)
+        rows = sorted(ledger.inputs.in_state("archived", "quarantined"), key=lambda r: r.id)
         assert [(r.name, r.version, r.size) for r in rows] == [
             ("paused.csv", 1, cut),
             ("paused.csv", 2, len(data)),
@@ -50,9 +50,9 @@ def test_a_writer_that_pauses_then_appends_gives_a_new_version_and_never_alters_
         for row in rows:  # the archive (or quarantine) holds exactly the bytes the ledger hashed
             kept = Path(row.final_path or "").read_bytes()
             assert hashlib.sha256(kept).hexdigest() == row.sha256
-        latest = ledger.result_for_input(rows[1].id)
+        latest = ledger.results.of_input(rows[1].id)
         assert latest is not None and latest.verdict == "pass"
-        first = ledger.result_for_input(rows[0].id)
+        first = ledger.results.of_input(rows[0].id)
         assert first is None or first.superseded_by == latest.id
     alert = _alerts(s)[0]
     assert "paused.csv in inbox main was written to again after the station had taken it" in alert

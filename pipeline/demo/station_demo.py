@@ -27,8 +27,8 @@ from pipeline.demo.lots import (
     demo_stage_files,
     stage_file_name,
 )
+from pipeline.ledger.ledger import Ledger
 from pipeline.shipped import RULES_DIR
-from pipeline.station.ledger import Ledger
 from pipeline.station.lots import LotOutcome
 from pipeline.station.settings import Settings, init_station, read_settings, smtp_settings
 from pipeline.station.station import Station
@@ -134,14 +134,14 @@ def _drained(root: Path, ledger_path: Path, expected: int) -> bool:
     if not ledger_path.exists():
         return False
     with Ledger(ledger_path) as ledger:
-        open_rows = ledger.inputs_in_state("claimed", "judged", "published")
-        finals = ledger.inputs_in_state("archived", "quarantined", "duplicate")
-        outbox = ledger.outbox_counts()
+        open_rows = ledger.inputs.in_state("claimed", "judged", "published")
+        finals = ledger.inputs.in_state("archived", "quarantined", "duplicate")
+        outbox = ledger.outbox.counts()
         return (
             not open_rows
             and len(finals) >= expected
             and outbox.get("pending", 0) == 0
-            and not ledger.pending_digest_lots()
+            and not ledger.digests.pending_lots()
         )
 
 

@@ -23,12 +23,12 @@ from collections.abc import Iterable, Sequence
 
 from pipeline.errors import FormgateError
 from pipeline.judge.cellverdict import CellDecision, decide
+from pipeline.ledger.rows import DecisionRow
 from pipeline.lotclose import cell_stages
 from pipeline.mail.cell_letters import decision_letter, superseded_letter
 from pipeline.mail.letters import Letter
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.guard import Guarded
-from pipeline.station.ledger import DecisionRow
 from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
@@ -104,10 +104,10 @@ class CellKeeping(Guarded):
     def decide_cell(self, lot: str, cell_id: str, cause: str) -> DecisionRow | None:
         if self.rulebook is None:
             return None
-        results = self.ledger.results_of_cell(lot, cell_id)
+        results = self.ledger.results.of_cell(lot, cell_id)
         docs = [json.loads(r.result_json) for r in results if r.verdict != "error"]
         readings = [
-            (s.file_name, s.file_sha256, s.reading) for s in self.ledger.readings_of(lot, cell_id)
+            (s.file_name, s.file_sha256, s.reading) for s in self.ledger.readings.of(lot, cell_id)
         ]
         types = [str(d["cell_type"]["name"]) for d in docs] + [
             r.cell_type for _, _, r in readings if r.cell_type
@@ -126,7 +126,7 @@ class CellKeeping(Guarded):
                 cause=cause, files=stages.files, family=rule_set.family, now=now,
             )
 
-        row, before, new = self.ledger.decide_cell(
+        row, before, new = self.ledger.decisions.decide(
             cell_id=cell_id,
             lot=lot,
             verdict=decision.verdict,

@@ -246,7 +246,7 @@ class Claims(Tasks, Duties):
             self.aside.entry(self.ledger, path, inbox=inbox, kind="file",
                              reason=unreadable_reason(name, exc), now=self.clock())
             return
-        row, earlier = self.ledger.claim_input(
+        row, earlier = self.ledger.inputs.claim(
             sha256=sha,
             name=name,
             size=size,
@@ -289,7 +289,7 @@ class Claims(Tasks, Duties):
                 if i.handover == "marker"
             ):
                 continue
-            row = self.ledger.input_by_work_path(str(path))
+            row = self.ledger.inputs.by_work_path(str(path))
             if row is None or row.final_path is not None:
                 self.handle(path_key(path), "registering", partial(self.register, path),
                             retry=False)

@@ -21,11 +21,12 @@ from collections import deque
 from pathlib import Path
 
 from pipeline.inputnames import to_text
+from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.rows import InputRow, ResultRow
 from pipeline.mail.letters import DigestRow, digest_letter
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.guard import Guarded
 from pipeline.station.judges import JudgePool
-from pipeline.station.ledger import InputRow, Ledger, ResultRow
 from pipeline.station.settings import InboxSettings, Settings
 from pipeline.station.taken import HOLD_SETTLES, Original, give_back, originals, same_bytes, tidy
 from pipeline.station.troubles import describe
@@ -69,11 +70,11 @@ def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
     routing = settings.routing
     latest: dict[str, ResultRow] = {}
     grading: dict[str, ResultRow] = {}
-    for r in ledger.current_cells_of_lot(lot):  # by cell, oldest first
+    for r in ledger.results.current_of_lot(lot):  # by cell, oldest first
         latest[r.cell_id] = r
         if "grading" in json.loads(r.result_json).get("stages", ("grading",)):
             grading[r.cell_id] = r
-    decisions = ledger.latest_decisions(lot)
+    decisions = ledger.decisions.latest_of_lot(lot)
     cells = sorted(set(latest) | set(decisions))
     rows = []
     for cell in cells:
@@ -120,11 +121,11 @@ class Duties(Guarded):
         if not routing.digests_to:
             return
         now = self.clock()
-        for lot in self.ledger.pending_digest_lots():
-            latest = self.ledger.latest_activity(lot)
+        for lot in self.ledger.digests.pending_lots():
+            latest = self.ledger.digests.latest_activity(lot)
             if latest is not None and (now - latest).total_seconds() < routing.digest_quiet_s:
                 continue
-            cells = self.ledger.passed_cells_for_digest(lot)
+            cells = self.ledger.digests.passed_cells(lot)
             if not cells:
                 continue
             # the digest covers the new pass cells and lists the whole lot as it stands
@@ -134,10 +135,10 @@ class Duties(Guarded):
                 rows,
                 routing.digests_to,
                 station=self.settings.station_name,
-                digest_no=self.ledger.digest_count(lot) + 1,
+                digest_no=self.ledger.digests.count(lot) + 1,
                 domain=routing.domain,
             )
-            self.ledger.queue_digest(letter, [c.id for c in cells], now=now)
+            self.ledger.digests.queue(letter, [c.id for c in cells], now=now)
             self.mail_wake.set()
             log.info(
                 "digest queued for lot %s: %d cell(s), %d newly passed", lot, len(rows), len(cells)

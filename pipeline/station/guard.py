@@ -18,9 +18,9 @@ import time
 from collections import deque
 from collections.abc import Callable
 
+from pipeline.ledger.ledger import Ledger
 from pipeline.mail.letters import Letter, alert_letter
 from pipeline.station.inhand import InHand
-from pipeline.station.ledger import Ledger
 from pipeline.station.settings import InboxSettings, Settings
 from pipeline.station.troubles import Troubles, describe, fault_key, is_environmental
 from pipeline.writing import write_atomic
@@ -117,7 +117,7 @@ class Guarded:
                 probe = folder / ".formgate-probe"
                 write_atomic(b"\0" * PROBE_BYTES, probe, make_parents=False)
                 probe.unlink()
-            self.ledger.note_state("paused", "", now=self.clock())
+            self.ledger.facts.note_state("paused", "", now=self.clock())
             while self.blocked:
                 self.blocked[0]()
                 self.blocked.popleft()
@@ -135,7 +135,7 @@ class Guarded:
 
     def note_pause(self, shown: str) -> None:
         try:
-            self.ledger.note_state("paused", shown, now=self.clock())
+            self.ledger.facts.note_state("paused", shown, now=self.clock())
         except Exception as exc:  # the ledger may be the fault: the heartbeat shows it too
             if not is_environmental(exc):
                 raise
@@ -159,7 +159,7 @@ class Guarded:
     def flush_unsent(self) -> None:
         while self.unsent:
             try:
-                self.ledger.queue_mail(self.unsent[0], now=self.clock())
+                self.ledger.outbox.queue(self.unsent[0], now=self.clock())
             except Exception as exc:
                 if not is_environmental(exc):
                     raise

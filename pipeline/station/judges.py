@@ -29,8 +29,8 @@ from collections import deque
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 
+from pipeline.ledger.rows import InputRow
 from pipeline.station.board import Board
-from pipeline.station.ledger import InputRow
 from pipeline.station.worker import Output, Task, init_worker, run_task
 
 log = logging.getLogger("formgate.station")

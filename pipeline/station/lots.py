@@ -24,6 +24,8 @@ from pathlib import Path
 
 from pipeline.errors import FormgateError
 from pipeline.judge.metricdefs import RULE_METRICS
+from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.rows import DecisionRow
 from pipeline.lotclose import ClosedCell, ClosedLot, close_lot
 from pipeline.mail.letters import Letter, alert_letter, digest_letter
 from pipeline.names import safe_name
@@ -38,7 +40,6 @@ from pipeline.report.lotreport import (
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.cells import change_letters
 from pipeline.station.duties import lot_rows
-from pipeline.station.ledger import DecisionRow, Ledger
 from pipeline.station.settings import Settings
 from pipeline.writing import write_atomic
 
@@ -60,10 +61,10 @@ class LotOutcome:
 def gather(ledger: Ledger, lot: str, rulebook: RuleBook) -> ClosedLot:
     """The lot as the ledger holds it, closed by the rules (pure once the rows are read)."""
     # every record, as the station decides a cell (station/cells.py): one query for the lot
-    docs = [json.loads(r.result_json) for r in ledger.results_of_lot(lot)]
+    docs = [json.loads(r.result_json) for r in ledger.results.of_lot(lot)]
     files: dict[str, list[Reading]] = {}
     sha: dict[str, str] = {}
-    for stored in ledger.readings_of(lot):
+    for stored in ledger.readings.of(lot):
         files.setdefault(stored.file_name, []).append(stored.reading)
         sha[stored.file_name] = stored.file_sha256
     readings = [ReadingFile(name, {}, tuple(rows)) for name, rows in files.items()]
@@ -139,11 +140,11 @@ def close_and_report(
     closed = gather(ledger, lot, rulebook)
     changed: list[str] = []
     newly = False
-    closed_at = ledger.lot(lot).closed_at
+    closed_at = ledger.lots.get(lot).closed_at
     if close:
         for cell in closed.cells:
             d = cell.decision
-            _, before, new = ledger.decide_cell(
+            _, before, new = ledger.decisions.decide(
                 cell_id=cell.cell_id, lot=lot, verdict=d.verdict, reason=d.reason,
                 hazards=d.hazards, grade=cell.grade, cause="lot closed",
                 basis=[f"{s}:{n}:{h}" for s, n, h in cell.records], now=now,
@@ -151,25 +152,25 @@ def close_and_report(
             )
             if new and before is not None and before.verdict != d.verdict:
                 changed.append(cell.cell_id)
-        newly = ledger.close_lot(lot, by=by, now=now)
-        closed_at = ledger.lot(lot).closed_at
+        newly = ledger.lots.close(lot, by=by, now=now)
+        closed_at = ledger.lots.get(lot).closed_at
     report, export = report_paths(settings, lot)
     data = report_input(closed, station=settings.station_name, now=now, closed_at=closed_at)
     write_atomic(render_lot_report_pdf(data), report)
     write_atomic(lot_export_csv(data), export)
     if close:
-        ledger.note_lot_report(lot, str(report), str(export))
+        ledger.lots.note_report(lot, str(report), str(export))
         routing = settings.routing
         if routing.digests_to:
             # the lot's last digest: every cell as closed, with the report attached; closing
             # again gives the same Message-ID, so the outbox never holds it twice
-            ledger.queue_mail(
+            ledger.outbox.queue(
                 digest_letter(
                     lot,
                     lot_rows(ledger, lot, settings),
                     routing.digests_to,
                     station=settings.station_name,
-                    digest_no=ledger.digest_count(lot) + 1,
+                    digest_no=ledger.digests.count(lot) + 1,
                     domain=routing.domain,
                     report_path=str(report),
                 ),
@@ -185,9 +186,9 @@ def lots_due(
 ) -> list[str]:
     """Open lots quiet for longer than their rule set's ``[lot] quiet_h``."""
     due = []
-    for name in ledger.lot_names():
-        lot = ledger.lot(name)
-        cell_type = ledger.lot_cell_type(name)
+    for name in ledger.lots.names():
+        lot = ledger.lots.get(name)
+        cell_type = ledger.lots.cell_type(name)
         if lot.closed_at is not None or lot.last_activity is None or cell_type is None:
             continue
         try:
@@ -259,8 +260,8 @@ class LotCloser(threading.Thread):
         if not routing.alerts_to:
             return
         now = self.clock()
-        for lot, cell, reason, first in ledger.waiting_cells():
-            cell_type = ledger.lot_cell_type(lot)
+        for lot, cell, reason, first in ledger.decisions.waiting_cells():
+            cell_type = ledger.lots.cell_type(lot)
             try:
                 hours = rulebook.for_cell_type(cell_type)[0].stage_overdue_h if cell_type else None
             except FormgateError:
@@ -278,8 +279,8 @@ class LotCloser(threading.Thread):
                 key=f"overdue\n{lot}\n{cell}\n{reason}",
                 domain=routing.domain,
             )
-            if ledger.mail_by_message_id(letter.message_id) is None:
-                ledger.queue_mail(letter, now=now)
+            if ledger.outbox.by_message_id(letter.message_id) is None:
+                ledger.outbox.queue(letter, now=now)
                 self.mail_wake.set()
                 log.warning("cell %s of lot %s: %s for over %g h", cell, lot, reason, hours)
 

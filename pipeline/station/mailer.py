@@ -15,10 +15,11 @@ import threading
 from collections.abc import Callable
 from pathlib import Path
 
+from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.rows import MailRow
 from pipeline.mail.letters import Letter, MailError, alert_letter, build_message
 from pipeline.mail.smtp import SmtpSettings, next_attempt_delay_s, send
 from pipeline.station import faults
-from pipeline.station.ledger import Ledger, MailRow
 from pipeline.station.troubles import is_environmental
 
 log = logging.getLogger("formgate.mail")
@@ -59,7 +60,7 @@ def deliver_due(
     an alert, so a broken alert address cannot feed itself).
     """
     counts = {"sent": 0, "retry": 0, "park": 0}
-    for row in ledger.due_mail(clock()):
+    for row in ledger.outbox.due(clock()):
         if stop is not None and stop.is_set():
             break
         try:
@@ -72,11 +73,11 @@ def deliver_due(
         now = clock()
         if outcome == "sent":
             faults.point("after_send")
-            ledger.mark_sent(row.id, now=now, reply=reply)
+            ledger.outbox.mark_sent(row.id, now=now, reply=reply)
             log.info("mail sent: %s to %s", row.subject, ", ".join(row.recipients))
         elif outcome == "retry":
             delay = next_attempt_delay_s(row.attempts + 1)
-            ledger.mark_retry(
+            ledger.outbox.mark_retry(
                 row.id,
                 now=now,
                 next_attempt_at=now + datetime.timedelta(seconds=delay),
@@ -84,7 +85,7 @@ def deliver_due(
             )
             log.warning("mail delayed (%s); next try in %.0f s: %s", reply, delay, row.subject)
         else:
-            ledger.park(row.id, now=now, reply=reply)
+            ledger.outbox.park(row.id, now=now, reply=reply)
             log.error("mail parked (%s): %s", reply, row.subject)
             if row.kind != "alert" and alerts_to:
                 alert = alert_letter(
@@ -98,7 +99,7 @@ def deliver_due(
                     key=f"parked:{row.message_id}",
                     domain=domain,
                 )
-                ledger.queue_mail(alert, now=now)
+                ledger.outbox.queue(alert, now=now)
         counts[outcome] += 1
     return counts
 

@@ -16,13 +16,13 @@ from pathlib import Path
 
 from pipeline.inputnames import fit
 from pipeline.judge.evaluate import decision_line
+from pipeline.ledger.rows import CheckRowData, InputRow, ResultRow
 from pipeline.mail.letters import Letter, alert_letter, failure_letter, hold_letter
 from pipeline.model import WHOLE_PROGRAM, CellResult, VerdictKind
 from pipeline.read.readings import ReadingFile
 from pipeline.runner import result_paths
 from pipeline.station import faults
 from pipeline.station.cells import CellKeeping
-from pipeline.station.ledger import CheckRowData, InputRow, ResultRow
 from pipeline.station.setaside import NAME_RESERVE_BYTES
 from pipeline.station.worker import Output
 from pipeline.writing import move_into, require_folder, write_atomic
@@ -36,7 +36,7 @@ class Publishing(CellKeeping):
     judged: int
 
     def apply(self, row: InputRow, output: Output) -> None:
-        row = self.ledger.input(row.id) or row  # applied again after a pause: where it stands now
+        row = self.ledger.inputs.get(row.id) or row  # applied again after a pause: where it stands now
         if row.final_path is not None:
             return
         if output.error is not None:
@@ -48,7 +48,7 @@ class Publishing(CellKeeping):
             self.keep_readings(row, output.readings)
             return
         assert output.result is not None and output.json_text is not None
-        # the worker told the result which record of its cell it is (station/history.py)
+        # the worker told the result which record of its cell it is (ledger/history.py)
         result, json_text, pdf = output.result, output.json_text, output.pdf
         if row.state == "claimed":
             self.record(row, result, json_text, with_pdf=pdf is not None)
@@ -76,10 +76,10 @@ class Publishing(CellKeeping):
 
     def earlier_records(self, row: InputRow, result: CellResult) -> list[ResultRow]:
         """The cell's earlier records of the same stages from other inputs, oldest first."""
-        own = self.ledger.result_for_input(row.id)
+        own = self.ledger.results.of_input(row.id)
         return [
             r
-            for r in self.ledger.results_of_cell(result.lot, result.cell_id)
+            for r in self.ledger.results.of_cell(result.lot, result.cell_id)
             if r.input_id != row.id
             and (own is None or r.id < own.id)
             and tuple(json.loads(r.result_json).get("stages") or WHOLE_PROGRAM) == result.stages
@@ -100,7 +100,7 @@ class Publishing(CellKeeping):
             has_pdf = earlier.pdf_path is not None and pdf_path.exists()
             if has_pdf:
                 write_atomic(pdf_path.read_bytes(), kept_pdf, make_parents=False)
-            self.ledger.move_outputs(
+            self.ledger.results.move_outputs(
                 earlier.id, str(kept_json), str(kept_pdf) if has_pdf else earlier.pdf_path
             )
 
@@ -108,12 +108,12 @@ class Publishing(CellKeeping):
         """An OCV reading file: its readings kept (ONE transaction), the file archived, and
         every cell it reads decided again. ``readings`` None: kept before a restart."""
         if row.state == "claimed" and readings is not None:
-            self.ledger.record_readings(row.id, readings.readings)
-        row = self.ledger.input(row.id) or row
+            self.ledger.readings.record(row.id, readings.readings)
+        row = self.ledger.inputs.get(row.id) or row
         if row.state == "judged":
-            self.ledger.mark_published(row.id)
-        self.finish(self.ledger.input(row.id) or row, "archived")
-        cells = self.ledger.cells_of_input(row.id)
+            self.ledger.inputs.mark_published(row.id)
+        self.finish(self.ledger.inputs.get(row.id) or row, "archived")
+        cells = self.ledger.readings.cells_of_input(row.id)
         lots = sorted({lot for lot, _ in cells})
         log.info("%s: aging readings of %d cell(s), lot %s", row.name, len(cells), ", ".join(lots))
         self.decide_cells(cells, "readings")
@@ -147,7 +147,7 @@ class Publishing(CellKeeping):
     ) -> None:
         """ONE transaction: result, check rows, outbox rows (the rule text was kept at load)."""
         json_path, pdf_path = self.output_paths(result)
-        self.ledger.record_result(
+        self.ledger.results.record(
             row.id,
             cell_id=result.cell_id,
             lot=result.lot,
@@ -173,16 +173,16 @@ class Publishing(CellKeeping):
             write_atomic(
                 pdf, pdf_path, before_rename=lambda: faults.point("mid_render"), make_parents=False
             )
-        self.ledger.mark_published(row.id)
+        self.ledger.inputs.mark_published(row.id)
         faults.point("after_publish")
-        self.finish(self.ledger.input(row.id) or row, "archived")
+        self.finish(self.ledger.inputs.get(row.id) or row, "archived")
 
     def finish(self, row: InputRow, state: str) -> None:
         """Move the input (and its marker) from work/ to archive/YYYY-MM-DD/ and record it."""
         day = row.arrived_at.astimezone(datetime.UTC).strftime("%Y-%m-%d")
         target = self.settings.archive / day / final_name(row)
         self._move_final(row, target)
-        self.ledger.mark_final(row.id, state, str(target), now=self.clock())
+        self.ledger.inputs.mark_final(row.id, state, str(target), now=self.clock())
 
     def quarantine(self, row: InputRow, reason: str) -> None:
         """Record why, move the input to quarantine/ with a .reason.txt beside it, record where."""
@@ -199,7 +199,7 @@ class Publishing(CellKeeping):
                         domain=self.settings.routing.domain,
                     )
                 )
-            self.ledger.record_error(row.id, reason, letters, now=self.clock())
+            self.ledger.inputs.record_error(row.id, reason, letters, now=self.clock())
         target = self.settings.quarantine / final_name(row)
         require_folder(self.settings.quarantine)
         write_atomic(
@@ -208,7 +208,7 @@ class Publishing(CellKeeping):
             make_parents=False,
         )
         self._move_final(row, target)
-        self.ledger.mark_final(row.id, "quarantined", str(target), reason, now=self.clock())
+        self.ledger.inputs.mark_final(row.id, "quarantined", str(target), reason, now=self.clock())
         self.last_error = reason.splitlines()[0]
         log.warning("%s: quarantined: %s", row.name, self.last_error)
 

@@ -97,7 +97,7 @@ class RulesKeeper(Guarded):
             # loaded no longer matches its hash and is kept at the next reload instead
             data = Path(rs.source).read_bytes()
             if hashlib.sha256(data).hexdigest() == rs.sha256:
-                self.ledger.remember_text(
+                self.ledger.facts.remember_text(
                     kind="rule_set",
                     sha256=rs.sha256,
                     name=Path(rs.source).name,
@@ -112,7 +112,7 @@ class RulesKeeper(Guarded):
                 Path(rs.source).name,
                 rs.sha256[:12],
             )
-        self.ledger.remember_rule_book(kept, now=self.clock())
+        self.ledger.facts.remember_rule_book(kept, now=self.clock())
 
     def show_refusal(self, summary: str) -> None:
         """While older rules judge in place of a refused edit, `status` shows why and since when.
@@ -172,7 +172,7 @@ class RulesKeeper(Guarded):
 
     def last_valid_rules(self) -> RuleBook | None:
         try:
-            kept = self.ledger.last_rule_book()
+            kept = self.ledger.facts.last_rule_book()
             return RuleBook(tuple(load_rule_set(text, name) for name, text in kept)) if kept else None
         except FormgateError as exc:  # kept by an older formgate and no longer valid
             log.error("the last valid rules in the ledger cannot be used: %s", exc)

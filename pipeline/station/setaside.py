@@ -19,8 +19,8 @@ import tempfile
 from pathlib import Path
 
 from pipeline.inputnames import fit, to_text
+from pipeline.ledger.ledger import Ledger
 from pipeline.mail.letters import Letter, alert_letter
-from pipeline.station.ledger import Ledger
 from pipeline.station.settings import Settings
 from pipeline.writing import move_into, require_folder, write_atomic
 
@@ -150,7 +150,7 @@ class SetAside:
             reason_file.unlink(missing_ok=True)
             return None
         mails = self._alert(f"set aside: {name}", reason, f"set-aside:{inbox}:{name}:{now.isoformat()}")
-        ledger.set_aside(
+        ledger.facts.set_aside(
             inbox=inbox, name=name, kind=kind, reason=reason, now=now, final_path=str(moved),
             mails=mails,
         )
@@ -176,5 +176,5 @@ class SetAside:
             "changes. Move it away by hand, or let the station's user rename it."
         )
         mails = self._alert(f"left in place: {name}", text, f"left:{inbox}:{name}")
-        ledger.set_aside(inbox=inbox, name=name, kind=kind, reason=text, now=now, mails=mails)
+        ledger.facts.set_aside(inbox=inbox, name=name, kind=kind, reason=text, now=now, mails=mails)
         log.error("%s: %s", name, text.replace("\n  ", " "))

@@ -37,6 +37,8 @@ from pathlib import Path
 
 from pipeline.errors import FormgateError
 from pipeline.inputnames import to_text
+from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.rows import InputRow
 from pipeline.mail.letters import Letter
 from pipeline.mail.smtp import SmtpSettings
 from pipeline.rulebook.book import RuleBook
@@ -44,7 +46,6 @@ from pipeline.station.claiming import Claims
 from pipeline.station.handoff import Seen
 from pipeline.station.inhand import DEATHS_TO_QUARANTINE, Death, InHand, input_key
 from pipeline.station.judges import JudgePool
-from pipeline.station.ledger import InputRow, Ledger
 from pipeline.station.lots import LotCloser
 from pipeline.station.mailer import MailThread
 from pipeline.station.publishing import final_name
@@ -213,7 +214,7 @@ class Station(Claims, RulesKeeper):
             "it by hand with `formgate check` and report it: no input should stop formgate."
         )
         if death.input_id is not None:
-            row = self.ledger.input(death.input_id)
+            row = self.ledger.inputs.get(death.input_id)
             if row is not None and row.final_path is None and row.state in ("claimed", "judged"):
                 self.quarantine(row, f"{row.name}: {why}")
         elif death.path is not None and os.path.lexists(death.path):
@@ -250,7 +251,7 @@ class Station(Claims, RulesKeeper):
                     log.info("removed an unfinished temporary file: %s", path)
 
             self.duty(clean)
-        for row in self.ledger.inputs_in_state("claimed", "judged", "published", "duplicate"):
+        for row in self.ledger.inputs.in_state("claimed", "judged", "published", "duplicate"):
             if row.final_path is None:
                 self.handle(input_key(row.id), "recovering", partial(self.recover_row, row))
         self.duty(self.reconcile_work)
@@ -261,7 +262,7 @@ class Station(Claims, RulesKeeper):
         crash, before their decision was recorded (a day back: older ones are decided at
         their next record, or when their lot closes)."""
         since = self.clock() - datetime.timedelta(days=1)
-        behind = self.ledger.cells_behind(since)
+        behind = self.ledger.decisions.cells_behind(since)
         if behind:
             log.info("deciding %d cell(s) whose records came in before a restart", len(behind))
             self.decide_cells(behind, "record")
@@ -272,7 +273,7 @@ class Station(Claims, RulesKeeper):
             self.finish(row, "duplicate")
         elif row.state == "published":
             self.finish(row, "archived")
-        elif row.state == "judged" and self.ledger.has_readings(row.id):
+        elif row.state == "judged" and self.ledger.readings.exist_for(row.id):
             self.keep_readings(row, None)  # its readings are kept: publish them
         elif row.state == "judged":
             task = self.judge_again(row)
@@ -285,7 +286,7 @@ class Station(Claims, RulesKeeper):
         else:
             quarantined = self.settings.quarantine / final_name(row)
             if quarantined.exists():
-                self.ledger.mark_final(
+                self.ledger.inputs.mark_final(
                     row.id,
                     "quarantined",
                     str(quarantined),

@@ -12,8 +12,8 @@ import os
 from pathlib import Path
 
 from pipeline.inputnames import from_text, to_text
+from pipeline.ledger.ledger import Ledger
 from pipeline.station.handoff import is_temporary
-from pipeline.station.ledger import Ledger
 from pipeline.station.settings import Settings
 from pipeline.station.waiting import overdue_entries
 from pipeline.station.watcher import list_entries
@@ -112,13 +112,13 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
         return "\n".join(lines) + "\n"
     midnight = now.astimezone(datetime.UTC).replace(hour=0, minute=0, second=0, microsecond=0)
     with Ledger(settings.ledger, now=now) as ledger:
-        noted = ledger.state("paused")
+        noted = ledger.facts.state("paused")
         if noted and noted[0] and state not in ("running", "paused"):
             lines.insert(1, f"  last noted in the ledger: {noted[0]}")
         left: dict[str, dict[str, str]] = {}
         still_there = []
         folders = {i.name: i.folder for i in settings.inboxes}
-        for row in reversed(ledger.set_aside_rows(1000, state="left_in_place")):
+        for row in reversed(ledger.facts.set_aside_rows(1000, state="left_in_place")):
             name = from_text(row.name)
             left.setdefault(row.inbox, {})[name] = row.reason.splitlines()[0]
             if row.inbox in folders and os.path.lexists(folders[row.inbox] / name):
@@ -130,13 +130,13 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
         if overdue:
             lines += ["", f"waiting too long (unchanged for over {settings.waiting_alert_s:g} s)"]
             lines += overdue
-        aside = ledger.set_aside_rows(5, state="quarantined")
+        aside = ledger.facts.set_aside_rows(5, state="quarantined")
         if aside:
             lines += ["", "set aside lately (not inputs; in quarantine with a reason)"]
             for a in aside:
                 lines.append(f"  {a.noticed_at.isoformat(timespec='seconds')}  {a.inbox}: "
                              f"{a.reason.splitlines()[0]}")
-        counts = ledger.counts_since(midnight)
+        counts = ledger.inputs.counts_since(midnight)
         lines.append("")
         lines.append(
             "today (UTC): "
@@ -147,7 +147,7 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
         lines.append("")
         lines.append("last cells")
         seen: set[tuple[str, str]] = set()
-        for r in ledger.recent_results(50):
+        for r in ledger.results.recent(50):
             if (r.lot, r.cell_id) in seen or len(seen) == 10:
                 continue  # one line per cell: its latest record, and which of how many it is
             seen.add((r.lot, r.cell_id))
@@ -155,11 +155,11 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
             decision = json.loads(r.result_json).get("decision", "") if r.verdict != "pass" else ""
             stages = json.loads(r.result_json).get("stages")
             records = [  # of the same stages: a cell's formation and grading files are one each
-                x for x in ledger.results_of_cell(r.lot, r.cell_id)
+                x for x in ledger.results.of_cell(r.lot, r.cell_id)
                 if json.loads(x.result_json).get("stages") == stages
             ]
             number = next((n for n, x in enumerate(records, 1) if x.id == r.id), len(records))
-            cell = ledger.latest_decision(r.lot, r.cell_id)
+            cell = ledger.decisions.latest(r.lot, r.cell_id)
             lines.append(
                 f"  {r.analysed_at.isoformat()}  {r.cell_id}  lot {r.lot}  {r.verdict}"
                 + (f": {decision}" if decision else "")
@@ -168,12 +168,12 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
             )
             if cell is not None and (cell.verdict != r.verdict or cell.reason != decision):
                 lines.append(f"      the cell: {cell.verdict}" + (f": {cell.reason}" if cell.reason else ""))
-        outbox = ledger.outbox_counts()
+        outbox = ledger.outbox.counts()
         lines.append("")
         lines.append(
             "outbox: " + ", ".join(f"{outbox.get(k, 0)} {k}" for k in ("pending", "sent", "parked"))
         )
-        errors = ledger.recent_errors(5)
+        errors = ledger.inputs.recent_errors(5)
         if errors:
             lines.append("")
             lines.append("recent errors")

@@ -14,11 +14,11 @@ import logging
 from collections import deque
 from functools import partial
 
+from pipeline.ledger.rows import InputRow
 from pipeline.read.limits import TextLimits
 from pipeline.rulebook.book import RuleBook, load_rule_set
 from pipeline.station.inhand import input_key
 from pipeline.station.judges import JudgePool
-from pipeline.station.ledger import InputRow
 from pipeline.station.publishing import Publishing
 from pipeline.station.settings import choose_profile
 from pipeline.station.worker import Task
@@ -90,9 +90,9 @@ class Tasks(Publishing):
 
     def judge_again(self, row: InputRow) -> Task | None:
         """A committed result whose files were not written: the same bytes, the recorded rules."""
-        result_row = self.ledger.result_for_input(row.id)
+        result_row = self.ledger.results.of_input(row.id)
         assert result_row is not None
-        stored = self.ledger.text_by_sha(result_row.rule_set_sha256)
+        stored = self.ledger.facts.text_by_sha(result_row.rule_set_sha256)
         if stored is None:
             rulebook = self.rulebook
         else:

@@ -231,7 +231,7 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None] | Read
         input_sha256=digest,
     )
     if task.ledger_path is not None:
-        from pipeline.station.history import with_history
+        from pipeline.ledger.history import with_history
 
         result = with_history(result, Path(task.ledger_path), task.input_id)
     pdf = None

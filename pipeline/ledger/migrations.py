@@ -5,7 +5,7 @@ row that records it (name, applied_at) in the ``migrations`` table, so a databas
 is always exactly at one migration boundary. ``PRAGMA user_version`` mirrors the
 number of migrations applied; a database that is ahead of this code is refused.
 Opening connections and everything else about the ledger's rows is left to
-``pipeline.station.ledger``.
+``pipeline.ledger.ledger`` (the connection is connection.py's).
 """
 
 from __future__ import annotations

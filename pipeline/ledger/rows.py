@@ -1,9 +1,10 @@
 """The ledger's row records and their converters: what a row of each table reads as in Python.
 
-Records (InputRow, SetAsideRow, CheckRowData, ResultRow, MailRow), the converters from
-``sqlite3.Row`` to them, the UTC time helpers every stored time passes through, and the
-few SQL fragments more than one part of the ledger shares. Opening the database and
-every query are left to the Ledger (pipeline.station.ledger and its parts).
+Records (InputRow, SetAsideRow, CheckRowData, ResultRow, MailRow, DecisionRow, LotRow,
+StoredReading), the converters from ``sqlite3.Row`` to them, the UTC time helpers every
+stored time passes through, what a mail to queue must offer (OutgoingMail), and the few
+SQL fragments more than one table family shares. Opening the database is connection.py's;
+every query is its table family's module's.
 """
 
 from __future__ import annotations
@@ -12,30 +13,32 @@ import datetime
 import json
 import re
 import sqlite3
+from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Protocol
 
-from pipeline.mail.letters import Letter
 from pipeline.model import CheckResult
+from pipeline.read.readings import Reading
 
 INPUT_STATES = ("claimed", "judged", "published", "archived", "quarantined", "duplicate")
 FINAL_STATES = ("archived", "quarantined", "duplicate")
-_SHA256 = re.compile(r"[0-9a-f]{64}")
-_PUBLISHED = "('published', 'archived')"
+SHA256_HEX = re.compile(r"[0-9a-f]{64}")
+PUBLISHED = "('published', 'archived')"
 
 
-def _utc(value: datetime.datetime, what: str) -> str:
+def utc_text(value: datetime.datetime, what: str) -> str:
     """Fixed-width ISO 8601 text in UTC, so that text order in SQL is time order."""
     if value.tzinfo is None or value.utcoffset() is None:
         raise ValueError(f"{what} must be a timezone-aware datetime, got {value!r}")
     return value.astimezone(datetime.UTC).isoformat(timespec="microseconds")
 
 
-def _time(text: str) -> datetime.datetime:
+def parse_time(text: str) -> datetime.datetime:
     return datetime.datetime.fromisoformat(text)
 
 
-def _maybe_time(text: str | None) -> datetime.datetime | None:
-    return None if text is None else _time(text)
+def maybe_time(text: str | None) -> datetime.datetime | None:
+    return None if text is None else parse_time(text)
 
 
 @dataclass(frozen=True, slots=True)
@@ -121,9 +124,24 @@ class ResultRow:
     digest_mail_id: int | None
 
 
-# What the caller asks to queue is a composed letter (kind, Message-ID, recipients, subject,
-# body, attachment, lot); its ``message_id`` must be unique for all time.
-OutgoingMail = Letter
+class OutgoingMail(Protocol):
+    """A composed letter to queue (the mail part's ``Letter`` is one); ``message_id`` must be
+    unique for all time. The ledger stores letters; it never composes or sends them."""
+
+    @property
+    def kind(self) -> str: ...
+    @property
+    def message_id(self) -> str: ...
+    @property
+    def recipients(self) -> Sequence[str]: ...
+    @property
+    def subject(self) -> str: ...
+    @property
+    def body_text(self) -> str: ...
+    @property
+    def attachment_path(self) -> str | None: ...
+    @property
+    def lot(self) -> str | None: ...
 
 
 @dataclass(frozen=True, slots=True)
@@ -148,13 +166,54 @@ class MailRow:
     reply: str | None = None
 
 
-def _input(row: sqlite3.Row) -> InputRow:
+@dataclass(frozen=True, slots=True)
+class DecisionRow:
+    """One decision on a whole cell. ``basis``: the ledger ids (result or input) it rests on."""
+
+    id: int
+    cell_id: str
+    lot: str
+    verdict: str
+    reason: str
+    hazards: tuple[str, ...]
+    grade: str | None
+    cause: str
+    basis: tuple[str, ...]
+    decided_at: datetime.datetime
+    supersedes: int | None
+
+
+@dataclass(frozen=True, slots=True)
+class LotRow:
+    """A lot as the ledger knows it: its cells' latest decisions counted, and its close."""
+
+    lot: str
+    cells: int
+    counts: dict[str, int]
+    last_activity: datetime.datetime | None
+    closed_at: datetime.datetime | None
+    closed_by: str | None
+    report_path: str | None
+    export_path: str | None
+
+
+@dataclass(frozen=True, slots=True)
+class StoredReading:
+    """A reading as kept: the reading, and the input file (name, SHA-256) that brought it."""
+
+    input_id: int
+    file_name: str
+    file_sha256: str
+    reading: Reading
+
+
+def input_row(row: sqlite3.Row) -> InputRow:
     return InputRow(
         row["id"],
         row["sha256"],
         row["name"],
         row["size"],
-        _time(row["arrived_at"]),
+        parse_time(row["arrived_at"]),
         row["state"],
         row["final_path"],
         row["reason"],
@@ -163,11 +222,11 @@ def _input(row: sqlite3.Row) -> InputRow:
         row["result_id"],
         row["duplicate_of"],
         row["work_path"],
-        _maybe_time(row["final_at"]),
+        maybe_time(row["final_at"]),
     )
 
 
-def _result(row: sqlite3.Row) -> ResultRow:
+def result_row(row: sqlite3.Row) -> ResultRow:
     return ResultRow(
         row["id"],
         row["input_id"],
@@ -179,7 +238,7 @@ def _result(row: sqlite3.Row) -> ResultRow:
         row["rule_set_name"],
         row["rule_set_revision"],
         row["rule_set_sha256"],
-        _time(row["analysed_at"]),
+        parse_time(row["analysed_at"]),
         row["json_path"],
         row["pdf_path"],
         row["superseded_by"],
@@ -187,7 +246,7 @@ def _result(row: sqlite3.Row) -> ResultRow:
     )
 
 
-def _mail(row: sqlite3.Row) -> MailRow:
+def mail_row(row: sqlite3.Row) -> MailRow:
     return MailRow(
         row["id"],
         row["kind"],
@@ -200,14 +259,37 @@ def _mail(row: sqlite3.Row) -> MailRow:
         row["lot"],
         row["state"],
         row["attempts"],
-        _time(row["next_attempt_at"]),
+        parse_time(row["next_attempt_at"]),
         row["last_error"],
-        _time(row["created_at"]),
-        _maybe_time(row["sent_at"]),
+        parse_time(row["created_at"]),
+        maybe_time(row["sent_at"]),
         row["reply"],
     )
 
 
-_INPUT_SELECT = (
+INPUT_SELECT = (
     "SELECT i.*, r.id AS result_id FROM inputs i LEFT JOIN results r ON r.input_id = i.id"
 )
+
+
+def decision_row(r: sqlite3.Row) -> DecisionRow:
+    return DecisionRow(
+        r["id"],
+        r["cell_id"],
+        r["lot"],
+        r["verdict"],
+        r["reason"],
+        tuple(json.loads(r["hazards"])),
+        r["grade"],
+        r["cause"],
+        tuple(str(b) for b in json.loads(r["basis"])),
+        parse_time(r["decided_at"]),
+        r["supersedes"],
+    )
+
+
+def set_aside_row(r: sqlite3.Row) -> SetAsideRow:
+    return SetAsideRow(
+        r["id"], r["inbox"], r["name"], r["kind"], r["reason"], parse_time(r["noticed_at"]),
+        r["state"], r["final_path"],
+    )

@@ -1,27 +1,26 @@
 """The ledger's connection: opening ``ledger.sqlite`` with WAL, migrating it, and writing safely.
 
-LedgerBase owns the one SQLite connection: it opens it (busy timeout, write-ahead log,
-``synchronous=FULL``, foreign keys), applies pending migrations, turns open failures
-into a LedgerError that says what to do, and gives the parts of the ledger their write
-transaction (``_write``), one-row query (``_one``), the outbox insert every writer that
-queues alerts shares (``_insert_mail``) and the integrity check. What is stored and
-asked for is left to the mixins combined into ``Ledger`` (pipeline.station.ledger).
+Connection owns the one SQLite connection of a Ledger: it opens it (busy timeout,
+write-ahead log, ``synchronous=FULL``, foreign keys), applies pending migrations, turns
+open failures into a LedgerError that says what to do, and gives every table family its
+write transaction (``write``), its queries (``one``, ``rows``) and the integrity check.
+What is stored and asked for is left to the table families (inputs.py, results.py,
+outbox.py, ...), which share one Connection (ledger.py wires them).
 """
 
 from __future__ import annotations
 
 import contextlib
 import datetime
-import json
 import pathlib
 import sqlite3
 import time
 from collections.abc import Iterator, Sequence
 from typing import Any, Self
 
+from pipeline.ledger.migrations import MIGRATIONS, LedgerError, migrate
+from pipeline.ledger.rows import utc_text
 from pipeline.model import SourceRef
-from pipeline.station.ledger_rows import OutgoingMail, _utc
-from pipeline.station.migrations import MIGRATIONS, LedgerError, migrate
 
 # A writer waits this long for another process's write lock before giving up.
 BUSY_TIMEOUT_MS = 30_000
@@ -49,8 +48,8 @@ def _set_wal(conn: sqlite3.Connection) -> str:
             pause_s = min(2 * pause_s, 0.2)
 
 
-class LedgerBase:
-    """The connection and its write discipline; the ledger's mixins build on it."""
+class Connection:
+    """One open ``ledger.sqlite`` and its write discipline, shared by the table families."""
 
     def __init__(self, path: pathlib.Path, *, now: datetime.datetime | None = None) -> None:
         """Open or create the ledger and apply pending migrations.
@@ -60,12 +59,12 @@ class LedgerBase:
         """
         self.path = pathlib.Path(path)
         self._where = SourceRef(str(self.path))
-        applied_at = _utc(now or datetime.datetime.now(datetime.UTC), "now")
+        applied_at = utc_text(now or datetime.datetime.now(datetime.UTC), "now")
         try:
             conn = sqlite3.connect(self.path, isolation_level=None, timeout=BUSY_TIMEOUT_MS / 1000)
         except sqlite3.Error as exc:
             raise self._open_error(exc) from exc
-        self._conn = conn
+        self.conn = conn
         try:
             conn.row_factory = sqlite3.Row
             conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
@@ -109,8 +108,8 @@ class LedgerBase:
 
     def close(self) -> None:
         with contextlib.suppress(sqlite3.Error):
-            self._conn.execute("PRAGMA optimize")
-        self._conn.close()
+            self.conn.execute("PRAGMA optimize")
+        self.conn.close()
 
     def __enter__(self) -> Self:
         return self
@@ -119,9 +118,9 @@ class LedgerBase:
         self.close()
 
     @contextlib.contextmanager
-    def _write(self) -> Iterator[sqlite3.Connection]:
+    def write(self) -> Iterator[sqlite3.Connection]:
         """One explicit write transaction: all of it commits, or none of it."""
-        conn = self._conn
+        conn = self.conn
         conn.execute("BEGIN IMMEDIATE")
         try:
             yield conn
@@ -131,38 +130,18 @@ class LedgerBase:
                 conn.execute("ROLLBACK")
             raise
 
-    def _one(self, sql: str, params: Sequence[Any] = ()) -> sqlite3.Row | None:
-        row: sqlite3.Row | None = self._conn.execute(sql, params).fetchone()
+    def one(self, sql: str, params: Sequence[Any] = ()) -> sqlite3.Row | None:
+        """The first row ``sql`` gives, or None."""
+        row: sqlite3.Row | None = self.conn.execute(sql, params).fetchone()
         return row
 
-    def _insert_mail(
-        self, mail: OutgoingMail, *, created_at: str, result_id: int | None, lot: str | None
-    ) -> int:
-        """Insert unless the message id is queued already; the row's id either way."""
-        self._conn.execute(
-            "INSERT INTO outbox (kind, message_id, recipients, subject, body_text, "
-            "attachment_path, cell_result_id, lot, state, next_attempt_at, created_at) "
-            "VALUES (?, ?, ?, ?, ?, ?, ?, ?, 'pending', ?, ?) ON CONFLICT (message_id) DO NOTHING",
-            (
-                mail.kind,
-                mail.message_id,
-                json.dumps(list(mail.recipients)),
-                mail.subject,
-                mail.body_text,
-                mail.attachment_path,
-                result_id,
-                lot,
-                created_at,
-                created_at,
-            ),
-        )
-        row = self._one("SELECT id FROM outbox WHERE message_id = ?", (mail.message_id,))
-        assert row is not None
-        return int(row["id"])
+    def rows(self, sql: str, params: Sequence[Any] = ()) -> sqlite3.Cursor:
+        """Every row ``sql`` gives, as a cursor to iterate once."""
+        return self.conn.execute(sql, params)
 
     def integrity_ok(self) -> bool:
         """``PRAGMA integrity_check`` says 'ok' and no foreign key points nowhere."""
-        rows = self._conn.execute("PRAGMA integrity_check").fetchall()
+        rows = self.conn.execute("PRAGMA integrity_check").fetchall()
         if [tuple(r) for r in rows] != [("ok",)]:
             return False
-        return not self._conn.execute("PRAGMA foreign_key_check").fetchall()
+        return not self.conn.execute("PRAGMA foreign_key_check").fetchall()

@@ -2,8 +2,8 @@
 
 Entries that are not inputs (quarantined or left in place), the running station's
 named values (e.g. 'paused'), the rule sets in force after each good load and the
-exact texts of rule sets and profiles results were judged with. The connection is
-LedgerBase's; inputs, results and mail are other mixins'.
+exact texts of rule sets and profiles results were judged with. Inputs, results and
+mail are other table families'.
 """
 
 from __future__ import annotations
@@ -12,12 +12,16 @@ import datetime
 import json
 from collections.abc import Sequence
 
-from pipeline.station.ledger_base import LedgerBase
-from pipeline.station.ledger_rows import OutgoingMail, SetAsideRow, _time, _utc
+from pipeline.ledger.connection import Connection
+from pipeline.ledger.outbox import insert_mail
+from pipeline.ledger.rows import OutgoingMail, SetAsideRow, parse_time, set_aside_row, utc_text
 
 
-class FactsMixin(LedgerBase):
-    """Set-aside entries and named station values of the Ledger."""
+class Facts:
+    """Set-aside entries, station values and kept rule texts over the ledger's one connection."""
+
+    def __init__(self, db: Connection) -> None:
+        self.db = db
 
     def set_aside(
         self,
@@ -35,10 +39,10 @@ class FactsMixin(LedgerBase):
         With ``final_path`` it was moved to quarantine; without, it was left in place (and
         recording the same entry left in place for the same reason again adds nothing).
         """
-        at = _utc(now, "now")
+        at = utc_text(now, "now")
         state = "left_in_place" if final_path is None else "quarantined"
-        with self._write() as conn:
-            same = self._one(
+        with self.db.write() as conn:
+            same = self.db.one(
                 "SELECT id FROM set_aside WHERE state = 'left_in_place' AND ? IS NULL "
                 "AND inbox = ? AND name = ? AND reason = ?",
                 (final_path, inbox, name, reason),
@@ -51,56 +55,50 @@ class FactsMixin(LedgerBase):
                 (inbox, name, kind, reason, at, state, final_path),
             )
             for mail in mails:
-                self._insert_mail(mail, created_at=at, result_id=None, lot=mail.lot)
+                insert_mail(self.db, mail, created_at=at, result_id=None, lot=mail.lot)
             assert cur.lastrowid is not None
             return cur.lastrowid
 
     def set_aside_rows(self, limit: int = 10, *, state: str | None = None) -> list[SetAsideRow]:
         """Entries set aside, newest first; ``state`` 'quarantined' or 'left_in_place' filters."""
-        rows = self._conn.execute(
+        rows = self.db.rows(
             "SELECT * FROM set_aside WHERE ? IS NULL OR state = ? ORDER BY noticed_at DESC, id DESC "
             "LIMIT ?",
             (state, state, limit),
         )
-        return [
-            SetAsideRow(
-                r["id"], r["inbox"], r["name"], r["kind"], r["reason"], _time(r["noticed_at"]),
-                r["state"], r["final_path"],
-            )
-            for r in rows
-        ]
+        return [set_aside_row(r) for r in rows]
 
     def note_state(self, key: str, value: str, *, now: datetime.datetime) -> None:
         """Set a named value of the running station (e.g. 'paused'); a real write every time."""
-        with self._write() as conn:
+        with self.db.write() as conn:
             conn.execute(
                 "INSERT INTO station_state (key, value, updated_at) VALUES (?, ?, ?) "
                 "ON CONFLICT (key) DO UPDATE SET value = excluded.value, "
                 "updated_at = excluded.updated_at",
-                (key, value, _utc(now, "now")),
+                (key, value, utc_text(now, "now")),
             )
 
     def state(self, key: str) -> tuple[str, datetime.datetime] | None:
         """(value, when it was set) of a named value, or None."""
-        row = self._one("SELECT value, updated_at FROM station_state WHERE key = ?", (key,))
-        return None if row is None else (row["value"], _time(row["updated_at"]))
+        row = self.db.one("SELECT value, updated_at FROM station_state WHERE key = ?", (key,))
+        return None if row is None else (row["value"], parse_time(row["updated_at"]))
 
     # ---- texts of the rules results were judged with ------------------------------------------
 
     def remember_rule_book(self, sha256s: Sequence[str], *, now: datetime.datetime) -> None:
         """Note the rule sets in force after a good load (nothing new if the same as the last)."""
         listed = json.dumps(sorted(sha256s))
-        with self._write() as conn:
-            last = self._one("SELECT rule_sets FROM rule_books ORDER BY id DESC LIMIT 1")
+        with self.db.write() as conn:
+            last = self.db.one("SELECT rule_sets FROM rule_books ORDER BY id DESC LIMIT 1")
             if last is None or last["rule_sets"] != listed:
                 conn.execute(
                     "INSERT INTO rule_books (rule_sets, loaded_at) VALUES (?, ?)",
-                    (listed, _utc(now, "now")),
+                    (listed, utc_text(now, "now")),
                 )
 
     def last_rule_book(self) -> list[tuple[str, str]]:
         """(name, text) of each rule set of the last good load; empty if there was none."""
-        last = self._one("SELECT rule_sets FROM rule_books ORDER BY id DESC LIMIT 1")
+        last = self.db.one("SELECT rule_sets FROM rule_books ORDER BY id DESC LIMIT 1")
         if last is None:
             return []
         texts = [self.text_by_sha(sha) for sha in json.loads(last["rule_sets"])]
@@ -110,14 +108,14 @@ class FactsMixin(LedgerBase):
         self, *, kind: str, sha256: str, name: str, text: str, now: datetime.datetime
     ) -> None:
         """Keep a rule set's (or profile's) exact text under its SHA-256; again is a no-op."""
-        with self._write() as conn:
+        with self.db.write() as conn:
             conn.execute(
                 "INSERT OR IGNORE INTO rule_texts (sha256, kind, name, text, first_used_at) "
                 "VALUES (?, ?, ?, ?, ?)",
-                (sha256, kind, name, text, _utc(now, "now")),
+                (sha256, kind, name, text, utc_text(now, "now")),
             )
 
     def text_by_sha(self, sha256: str) -> tuple[str, str] | None:
         """(name, text) of a remembered rule set or profile, or None."""
-        row = self._one("SELECT name, text FROM rule_texts WHERE sha256 = ?", (sha256,))
+        row = self.db.one("SELECT name, text FROM rule_texts WHERE sha256 = ?", (sha256,))
         return None if row is None else (row["name"], row["text"])

@@ -1,0 +1,123 @@
+"""The ledger's decisions on whole cells: each change recorded beside the last, never over it.
+
+A cell is more than one file. Its decision over every stage, its readings and its lot
+is recorded each time it changes: a new row that names the one it supersedes, with the
+letters the change calls for in the same transaction, so the history is never
+rewritten. Which cells are behind their records (a crash came between) and which wait
+for a stage are asked here too. The records themselves are results.py's and readings.py's.
+"""
+
+from __future__ import annotations
+
+import datetime
+import json
+from collections.abc import Callable, Sequence
+
+from pipeline.ledger.connection import Connection
+from pipeline.ledger.outbox import insert_mail
+from pipeline.ledger.rows import DecisionRow, OutgoingMail, decision_row, parse_time, utc_text
+
+CAUSES = ("record", "readings", "lot closed", "rules")
+
+
+class Decisions:
+    """The decisions table over the ledger's one connection."""
+
+    def __init__(self, db: Connection) -> None:
+        self.db = db
+
+    def latest(self, lot: str, cell_id: str) -> DecisionRow | None:
+        row = self.db.one(
+            "SELECT * FROM decisions WHERE lot = ? AND cell_id = ? ORDER BY id DESC LIMIT 1",
+            (lot, cell_id),
+        )
+        return None if row is None else decision_row(row)
+
+    def latest_of_lot(self, lot: str) -> dict[str, DecisionRow]:
+        """Each cell of the lot -> its latest decision, in one query."""
+        rows = self.db.rows(
+            "SELECT d.* FROM decisions d WHERE d.lot = ? AND d.id = (SELECT max(id) FROM "
+            "decisions e WHERE e.lot = d.lot AND e.cell_id = d.cell_id)",
+            (lot,),
+        )
+        return {r["cell_id"]: decision_row(r) for r in rows}
+
+    def of_cell(self, lot: str, cell_id: str) -> list[DecisionRow]:
+        """Every decision on the cell, oldest first."""
+        rows = self.db.rows(
+            "SELECT * FROM decisions WHERE lot = ? AND cell_id = ? ORDER BY id", (lot, cell_id)
+        )
+        return [decision_row(r) for r in rows]
+
+    def decide(
+        self,
+        *,
+        cell_id: str,
+        lot: str,
+        verdict: str,
+        reason: str,
+        hazards: Sequence[str],
+        grade: str | None,
+        cause: str,
+        basis: Sequence[str],
+        now: datetime.datetime,
+        letters: Callable[[DecisionRow | None], Sequence[OutgoingMail]] | None = None,
+    ) -> tuple[DecisionRow, DecisionRow | None, bool]:
+        """Record the cell's decision if it differs from its latest, with its letters: ONE
+        transaction. Returns (the decision in force, the one before it, whether it is new).
+
+        The same verdict, reason, hazards and grade again records nothing, so
+        recomputing is always safe. ``letters`` is given the decision before (or None)
+        and returns the mails this change calls for; they are queued with it.
+        """
+        if cause not in CAUSES:
+            raise ValueError(f"cause must be one of {CAUSES}, got {cause!r}")
+        with self.db.write() as conn:
+            last = self.latest(lot, cell_id)
+            same = last is not None and (last.verdict, last.reason, last.hazards, last.grade) == (
+                verdict, reason, tuple(hazards), grade
+            )
+            if last is not None and same:
+                return last, None, False
+            cur = conn.execute(
+                "INSERT INTO decisions (cell_id, lot, verdict, reason, hazards, grade, cause, "
+                "basis, decided_at, supersedes) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (cell_id, lot, verdict, reason, json.dumps(list(hazards)), grade, cause,
+                 json.dumps(list(basis)), utc_text(now, "now"), None if last is None else last.id),
+            )
+            new = self.db.one("SELECT * FROM decisions WHERE id = ?", (cur.lastrowid,))
+            assert new is not None
+            for mail in letters(last) if letters is not None else ():
+                insert_mail(self.db, mail, created_at=utc_text(now, "now"), result_id=None, lot=lot)
+            return decision_row(new), last, True
+
+    def cells_behind(self, since: datetime.datetime, limit: int = 5000) -> list[tuple[str, str]]:
+        """(lot, cell) of cells with a record or reading since ``since`` newer than their
+        latest decision (or with none): a crash came between the two."""
+        rows = self.db.rows(
+            "SELECT e.lot, e.cell_id FROM ("
+            "  SELECT r.lot, r.cell_id, max(r.analysed_at) AS t FROM results r "
+            "  JOIN inputs i ON i.id = r.input_id WHERE i.state IN ('published', 'archived') "
+            "  AND r.verdict <> 'error' AND r.analysed_at >= ? GROUP BY r.lot, r.cell_id "
+            "  UNION ALL "
+            "  SELECT g.lot, g.cell_id, max(i.arrived_at) FROM readings g "
+            "  JOIN inputs i ON i.id = g.input_id WHERE i.state IN ('published', 'archived') "
+            "  AND i.arrived_at >= ? GROUP BY g.lot, g.cell_id"
+            ") e GROUP BY e.lot, e.cell_id HAVING max(e.t) > coalesce((SELECT max(d.decided_at) "
+            "FROM decisions d WHERE d.lot = e.lot AND d.cell_id = e.cell_id), '') "
+            "ORDER BY e.lot, e.cell_id LIMIT ?",
+            (utc_text(since, "since"), utc_text(since, "since"), limit),
+        )
+        return [(r["lot"], r["cell_id"]) for r in rows]
+
+    def waiting_cells(self) -> list[tuple[str, str, str, datetime.datetime]]:
+        """(lot, cell, reason, first decided) of every cell of an open lot whose latest
+        decision holds it while it waits for a stage."""
+        rows = self.db.rows(
+            "SELECT d.lot, d.cell_id, d.reason, (SELECT min(decided_at) FROM decisions f "
+            "WHERE f.lot = d.lot AND f.cell_id = d.cell_id) AS first_at FROM decisions d "
+            "WHERE d.verdict = 'hold' AND d.reason LIKE '%waiting for stage%' "
+            "AND d.lot NOT IN (SELECT lot FROM lots) AND d.id = (SELECT max(id) FROM decisions e "
+            "WHERE e.lot = d.lot AND e.cell_id = d.cell_id) ORDER BY d.lot, d.cell_id"
+        )
+        return [(r["lot"], r["cell_id"], r["reason"], parse_time(r["first_at"])) for r in rows]

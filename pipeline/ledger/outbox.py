@@ -1,0 +1,167 @@
+"""The ledger's outbox: every letter queued once per Message-ID, and its delivery steps.
+
+A message is queued once per Message-ID, becomes due (a cell's mail once the cell is
+published, a digest once its cells are recorded against it), and is sent, retried or
+parked. Every table family that queues letters with its own rows (a result's mails, an
+error's alerts, a decision's letters) inserts them with :func:`insert_mail` inside its
+own transaction. Which digest covers which cell is digests.py's.
+"""
+
+from __future__ import annotations
+
+import datetime
+import json
+from collections.abc import Sequence
+from typing import Any
+
+from pipeline.ledger.connection import Connection
+from pipeline.ledger.rows import PUBLISHED, MailRow, OutgoingMail, mail_row, utc_text
+
+
+def insert_mail(
+    db: Connection, mail: OutgoingMail, *, created_at: str, result_id: int | None, lot: str | None
+) -> int:
+    """Insert unless the message id is queued already; the row's id either way.
+
+    Runs inside the caller's write transaction (``db.write()``), so a letter is queued
+    with the rows that call for it, or not at all.
+    """
+    db.conn.execute(
+        "INSERT INTO outbox (kind, message_id, recipients, subject, body_text, "
+        "attachment_path, cell_result_id, lot, state, next_attempt_at, created_at) "
+        "VALUES (?, ?, ?, ?, ?, ?, ?, ?, 'pending', ?, ?) ON CONFLICT (message_id) DO NOTHING",
+        (
+            mail.kind,
+            mail.message_id,
+            json.dumps(list(mail.recipients)),
+            mail.subject,
+            mail.body_text,
+            mail.attachment_path,
+            result_id,
+            lot,
+            created_at,
+            created_at,
+        ),
+    )
+    row = db.one("SELECT id FROM outbox WHERE message_id = ?", (mail.message_id,))
+    assert row is not None
+    return int(row["id"])
+
+
+class Outbox:
+    """The outbox table over the ledger's one connection."""
+
+    def __init__(self, db: Connection) -> None:
+        self.db = db
+
+    def queue(self, mail: OutgoingMail, *, now: datetime.datetime) -> int:
+        """Queue a message due at ``now``; queuing the same message id again returns its id."""
+        at = utc_text(now, "now")
+        with self.db.write():
+            return insert_mail(self.db, mail, created_at=at, result_id=None, lot=mail.lot)
+
+    def by_message_id(self, message_id: str) -> MailRow | None:
+        row = self.db.one("SELECT * FROM outbox WHERE message_id = ?", (message_id,))
+        return None if row is None else mail_row(row)
+
+    def get(self, mail_id: int) -> MailRow | None:
+        row = self.db.one("SELECT * FROM outbox WHERE id = ?", (mail_id,))
+        return None if row is None else mail_row(row)
+
+    def due(self, now: datetime.datetime, limit: int = 50) -> list[MailRow]:
+        """Pending mail whose time has come, oldest first.
+
+        A failure/hold mail waits until its cell is published (its PDF exists); a
+        digest waits until the cells it covers are recorded against it, except the
+        digest of a closed lot, which covers the lot as closed.
+        """
+        rows = self.db.rows(
+            "SELECT o.* FROM outbox o LEFT JOIN results r ON r.id = o.cell_result_id "
+            "LEFT JOIN inputs i ON i.id = r.input_id "
+            "WHERE o.state = 'pending' AND o.next_attempt_at <= ? "
+            "AND (o.kind NOT IN ('failure', 'hold') OR o.cell_result_id IS NULL "
+            f"     OR i.state IN {PUBLISHED}) "
+            "AND (o.kind <> 'digest' "
+            "     OR EXISTS (SELECT 1 FROM results d WHERE d.digest_mail_id = o.id) "
+            "     OR EXISTS (SELECT 1 FROM lots l WHERE l.lot = o.lot)) "
+            "ORDER BY o.created_at, o.id LIMIT ?",
+            (utc_text(now, "now"), limit),
+        )
+        return [mail_row(r) for r in rows]
+
+    def _mail_step(self, mail_id: int, done: str, sql: str, params: Sequence[Any]) -> None:
+        """Apply one delivery outcome to a pending mail; repeating the outcome is a no-op."""
+        with self.db.write() as conn:
+            row = self.get(mail_id)
+            if row is None:
+                raise ValueError(f"no mail with id {mail_id} in {self.db.path}")
+            if row.state == done:
+                return
+            if row.state != "pending":
+                raise ValueError(f"mail {mail_id} is {row.state!r}, not pending")
+            conn.execute(
+                f"UPDATE outbox SET attempts = attempts + 1, {sql} WHERE id = ?", (*params, mail_id)
+            )
+
+    def mark_sent(self, mail_id: int, *, now: datetime.datetime, reply: str) -> None:
+        """The server accepted the message (attempts += 1)."""
+        self._mail_step(
+            mail_id, "sent", "state = 'sent', sent_at = ?, reply = ?", (utc_text(now, "now"), reply)
+        )
+
+    def mark_retry(
+        self,
+        mail_id: int,
+        *,
+        now: datetime.datetime,
+        next_attempt_at: datetime.datetime,
+        error: str,
+    ) -> None:
+        """A temporary failure: try again at ``next_attempt_at`` (attempts += 1)."""
+        utc_text(now, "now")
+        self._mail_step(
+            mail_id,
+            "-",
+            "next_attempt_at = ?, last_error = ?",
+            (utc_text(next_attempt_at, "next_attempt_at"), error),
+        )
+
+    def park(self, mail_id: int, *, now: datetime.datetime, reply: str) -> None:
+        """A permanent failure (5xx): stop trying until someone requeues it (attempts += 1)."""
+        utc_text(now, "now")
+        self._mail_step(
+            mail_id, "parked", "state = 'parked', last_error = ?, reply = ?", (reply, reply)
+        )
+
+    def requeue(self, mail_id: int, *, now: datetime.datetime) -> None:
+        """Make a parked message due again at ``now`` (after the address or server is fixed)."""
+        with self.db.write() as conn:
+            row = self.get(mail_id)
+            if row is None or row.state != "parked":
+                raise ValueError(f"mail {mail_id} is not parked")
+            conn.execute(
+                "UPDATE outbox SET state = 'pending', next_attempt_at = ? WHERE id = ?",
+                (utc_text(now, "now"), mail_id),
+            )
+
+    def in_state(self, state: str) -> list[MailRow]:
+        """Every message in ``state`` ('pending', 'sent' or 'parked'), oldest first."""
+        rows = self.db.rows(
+            "SELECT * FROM outbox WHERE state = ? ORDER BY created_at, id", (state,)
+        )
+        return [mail_row(r) for r in rows]
+
+    def hurry_pending(self, *, now: datetime.datetime) -> int:
+        """Make every pending message due at ``now`` (skip its backoff); return how many."""
+        with self.db.write() as conn:
+            cur = conn.execute(
+                "UPDATE outbox SET next_attempt_at = ? WHERE state = 'pending' AND next_attempt_at > ?",
+                (utc_text(now, "now"), utc_text(now, "now")),
+            )
+            return cur.rowcount
+
+    def counts(self) -> dict[str, int]:
+        counts = dict.fromkeys(("pending", "sent", "parked"), 0)
+        for state, n in self.db.rows("SELECT state, count(*) FROM outbox GROUP BY state"):
+            counts[state] = n
+        return counts

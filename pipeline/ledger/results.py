@@ -1,0 +1,194 @@
+"""The ledger's results: a judgement of one input, its check rows, and the records of a cell or lot.
+
+A judgement is recorded in ONE transaction with its check rows and its letters, and
+moves its input to 'judged'; an earlier version of the same file is superseded, never
+overwritten. The input's other steps are inputs.py's, the letters' delivery outbox.py's.
+"""
+
+from __future__ import annotations
+
+import datetime
+import json
+from collections.abc import Sequence
+
+from pipeline.ledger.connection import Connection
+from pipeline.ledger.inputs import input_or_fail
+from pipeline.ledger.outbox import insert_mail
+from pipeline.ledger.rows import (
+    PUBLISHED,
+    CheckRowData,
+    OutgoingMail,
+    ResultRow,
+    result_row,
+    utc_text,
+)
+
+
+class Results:
+    """The results and checks tables over the ledger's one connection."""
+
+    def __init__(self, db: Connection) -> None:
+        self.db = db
+
+    def record(
+        self,
+        input_id: int,
+        *,
+        cell_id: str,
+        lot: str,
+        verdict: str,
+        hazards: Sequence[str],
+        result_json: str,
+        checks: Sequence[CheckRowData],
+        rule_set_name: str,
+        rule_set_revision: str,
+        rule_set_sha256: str,
+        analysed_at: datetime.datetime,
+        json_path: str,
+        pdf_path: str | None,
+        mails: Sequence[OutgoingMail],
+    ) -> int:
+        """Record a judgement in ONE transaction: result, check rows, outbox rows, input -> judged.
+
+        Returns the result id. A second call for the same input returns the first id
+        and writes nothing. Earlier versions' results (same name) become superseded.
+        Mails are queued at ``analysed_at`` with this result's id, and are not due until
+        the input is published. Any failure (e.g. a check row that breaks a constraint:
+        ``sqlite3.IntegrityError``) rolls all of it back.
+        """
+        analysed = utc_text(analysed_at, "analysed_at")
+        with self.db.write() as conn:
+            row = input_or_fail(self.db, input_id)
+            if row.result_id is not None:
+                return row.result_id
+            if row.state != "claimed":
+                raise ValueError(
+                    f"input {input_id} is {row.state!r}; only a claimed input can be judged"
+                )
+            cur = conn.execute(
+                "INSERT INTO results (input_id, cell_id, lot, verdict, hazards, result_json, "
+                "rule_set_name, rule_set_revision, rule_set_sha256, analysed_at, json_path, "
+                "pdf_path) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (
+                    input_id,
+                    cell_id,
+                    lot,
+                    verdict,
+                    json.dumps(list(hazards)),
+                    result_json,
+                    rule_set_name,
+                    rule_set_revision,
+                    rule_set_sha256,
+                    analysed,
+                    json_path,
+                    pdf_path,
+                ),
+            )
+            result_id = cur.lastrowid
+            assert result_id is not None
+            conn.executemany(
+                "INSERT INTO checks (result_id, position, rule_id, metric, value, low, high, "
+                "outcome, severity, hazard) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                [
+                    (
+                        result_id,
+                        n,
+                        c.rule_id,
+                        c.metric,
+                        c.value,
+                        c.low,
+                        c.high,
+                        c.outcome,
+                        c.severity,
+                        c.hazard,
+                    )
+                    for n, c in enumerate(checks)
+                ],
+            )
+            for mail in mails:
+                if self.db.one("SELECT 1 FROM outbox WHERE message_id = ?", (mail.message_id,)):
+                    raise ValueError(
+                        f"message id {mail.message_id!r} is already in the outbox; "
+                        "give each result's mails their own ids"
+                    )
+                insert_mail(self.db, mail, created_at=analysed, result_id=result_id, lot=mail.lot or lot
+                )
+            conn.execute("UPDATE inputs SET state = 'judged' WHERE id = ?", (input_id,))
+            self._supersede(row.name)
+            return result_id
+
+    def _supersede(self, name: str) -> None:
+        """Point every other current result under ``name`` at the latest version's result."""
+        latest = self.db.one(
+            "SELECT r.id FROM results r JOIN inputs i ON i.id = r.input_id WHERE i.name = ? "
+            "ORDER BY i.version DESC LIMIT 1",
+            (name,),
+        )
+        if latest is not None:
+            self.db.rows(
+                "UPDATE results SET superseded_by = ? WHERE superseded_by IS NULL AND id <> ? "
+                "AND input_id IN (SELECT id FROM inputs WHERE name = ?)",
+                (latest["id"], latest["id"], name),
+            )
+
+    def of_input(self, input_id: int) -> ResultRow | None:
+        row = self.db.one("SELECT * FROM results WHERE input_id = ?", (input_id,))
+        return None if row is None else result_row(row)
+
+    def get(self, result_id: int) -> ResultRow | None:
+        row = self.db.one("SELECT * FROM results WHERE id = ?", (result_id,))
+        return None if row is None else result_row(row)
+
+    def checks(self, result_id: int) -> list[CheckRowData]:
+        rows = self.db.rows(
+            "SELECT rule_id, metric, value, low, high, outcome, severity, hazard FROM checks "
+            "WHERE result_id = ? ORDER BY position",
+            (result_id,),
+        )
+        return [CheckRowData(*r) for r in rows]
+
+    def recent(self, limit: int = 10) -> list[ResultRow]:
+        rows = self.db.rows(
+            "SELECT * FROM results ORDER BY analysed_at DESC, id DESC LIMIT ?", (limit,)
+        )
+        return [result_row(r) for r in rows]
+
+    def of_cell(self, lot: str, cell_id: str) -> list[ResultRow]:
+        """Every published result of the cell's cycle files, oldest first (all records of it)."""
+        return self.of_lot(lot, cell_id)
+
+    def of_lot(self, lot: str, cell_id: str | None = None) -> list[ResultRow]:
+        """Every published result of the lot's (or one cell's) cycle files, in one query,
+        oldest first: every record, superseded ones included."""
+        sql = (
+            "SELECT r.* FROM results r JOIN inputs i ON i.id = r.input_id "
+            "WHERE r.lot = ? AND i.state IN ('published', 'archived')"
+        )
+        params: tuple[str, ...] = (lot,)
+        if cell_id is not None:
+            sql, params = sql + " AND r.cell_id = ?", (lot, cell_id)
+        rows = self.db.rows(sql + " ORDER BY r.analysed_at, r.id", params)
+        return [result_row(r) for r in rows]
+
+    def move_outputs(self, result_id: int, json_path: str, pdf_path: str | None) -> None:
+        """Record where an earlier record's published files were moved to (kept, not replaced)."""
+        with self.db.write() as conn:
+            conn.execute(
+                "UPDATE results SET json_path = ?, pdf_path = ? WHERE id = ?",
+                (json_path, pdf_path, result_id),
+            )
+
+    def current_of_lot(self, lot: str) -> list[ResultRow]:
+        """Every published, current result of ``lot``, whatever its verdict, by cell id.
+
+        A digest covers the pass cells not yet digested (they get no mail of their own),
+        and lists these: the whole lot as it stands, fails and holds included.
+        """
+        rows = self.db.rows(
+            "SELECT r.* FROM results r JOIN inputs i ON i.id = r.input_id "
+            f"WHERE r.lot = ? AND r.superseded_by IS NULL AND i.state IN {PUBLISHED} "
+            "ORDER BY r.cell_id, r.id",
+            (lot,),
+        )
+        return [result_row(r) for r in rows]
