@@ -13,6 +13,7 @@ import importlib.util
 import math
 import random
 import statistics
+import types
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -22,22 +23,17 @@ import scipy.stats
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline.judge import lotstats
+from pipeline.judge import lotscreens, lotspread, lotstats
+from pipeline.judge.lotscreens import RobustLimits, outliers, robust_limits
+from pipeline.judge.lotspread import NORMAL_MAD_SCALE, PERCENTILES, capability, distribution
 from pipeline.judge.lotstats import (
-    NORMAL_MAD_SCALE,
-    PERCENTILES,
     CellRow,
     GradeClass,
-    RobustLimits,
     ScreenSpec,
     WindowSpec,
-    capability,
     check_grade_classes,
-    distribution,
     grade_of,
     lot_statistics,
-    outliers,
-    robust_limits,
     tally,
 )
 from pipeline.model import SourceRef, VerdictKind
@@ -186,7 +182,7 @@ def test_robust_limits_never_widen_the_spec_window(
     values: list[float | None], spec_low: float | None, spec_high: float | None, k: float, sides: str
 ) -> None:
     r = robust_limits("m", values, k=k, min_cells=3, spec_low=spec_low, spec_high=spec_high,
-                      sides=sides)  # type: ignore[arg-type]
+                      sides=sides)
     if spec_low is not None:
         assert r.low is not None and r.low >= spec_low
     if spec_high is not None:
@@ -233,7 +229,7 @@ def test_a_small_lot_or_one_with_no_spread_is_not_screened_and_says_why() -> Non
 def test_a_screen_that_makes_no_sense_is_refused(k: float, min_cells: int, sides: str, message: str) -> None:
     with pytest.raises(ValueError, match=message):
         robust_limits("m", [1.0, 2.0], k=k, min_cells=min_cells, spec_low=None, spec_high=None,
-                      sides=sides)  # type: ignore[arg-type]
+                      sides=sides)
 
 
 def limits_of(values: Sequence[float | None], k: float) -> RobustLimits:
@@ -470,9 +466,10 @@ def test_the_whole_lot_agrees_with_the_functions_for_one_metric(
     assert stats.capabilities["a"] == capability([c.values.get("a") for c in cells], low, high)
 
 
-def test_the_docstring_examples_hold() -> None:
-    failures, tried = doctest.testmod(lotstats, optionflags=doctest.ELLIPSIS)
-    assert tried > 10 and failures == 0
+@pytest.mark.parametrize("module", [lotspread, lotscreens, lotstats], ids=lambda m: m.__name__)
+def test_the_docstring_examples_hold(module: types.ModuleType) -> None:
+    failures, tried = doctest.testmod(module, optionflags=doctest.ELLIPSIS)
+    assert tried > 3 and failures == 0
 
 
 def test_the_benchmark_runs_on_a_tiny_lot(capsys: pytest.CaptureFixture[str]) -> None:

@@ -17,7 +17,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from pipeline.judge.lotstats import Outlier
+from pipeline.judge.lotscreens import Outlier
 from pipeline.model import STAGES
 
 # What each kind of record covers.

@@ -1,25 +1,21 @@
-"""Lot statistics: counts and yield, the spread of every metric, capability, outlier screens, grades.
+"""A whole lot at once: counts and yield, and every metric's spread, capability, screens and grades.
 
 A cell's verdict comes from fixed windows in a rule file. Quality staff also look at the
 lot as a whole: how many cells passed, how every checked metric is spread, how much room
 the process leaves inside each window (Cpk), which passing cells sit far from their lot
-even though they are inside the window (a robust screen, ``median ± k·1.4826·MAD`` of the
-lot's passing cells, the part-average-testing idea of the semiconductor trade), and which
-grade each passing cell belongs to, so that cells of one grade can be matched into packs.
+even though they are inside the window (a robust screen), and which grade each passing cell
+belongs to, so that cells of one grade can be matched into packs.
 
-Everything here is a pure function of values and specifications: no files, no ledger, no
-clock. The whole-lot entry point :func:`lot_statistics` builds one float array per metric
-once (NaN for a value not measured) and works on those arrays, so a lot of 10,000 cells
-takes milliseconds (benchmarks/lot_statistics.py measures it).
+This module holds what a lot is judged against (window checks, screens, grade classes),
+the grades and the verdict tally, and the whole-lot entry point :func:`lot_statistics`.
+The statistics of one metric are left to :mod:`pipeline.judge.lotspread`, the robust
+screens to :mod:`pipeline.judge.lotscreens`. Everything here is a pure function of values
+and specifications: no files, no ledger, no clock. :func:`lot_statistics` builds one float
+array per metric once (NaN for a value not measured) and works on those arrays, so a lot
+of 10,000 cells takes milliseconds (benchmarks/lot_statistics.py measures it).
 
 A value that is None, NaN or infinite is a check not made: it is dropped, never counted as
 a value, never an outlier and never graded.
-
->>> d = distribution([1.0, 2.0, None, 3.0, float("nan")])
->>> (d.n, d.mean, d.median, d.sd)
-(3, 2.0, 2.0, 1.0)
->>> capability([9.0, 10.0, 11.0], 7.0, 16.0).cpk
-1.0
 """
 
 from __future__ import annotations
@@ -29,17 +25,25 @@ import operator
 from collections import Counter
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
-from statistics import NormalDist
 from typing import Final, Literal
 
 import numpy as np
 
+from pipeline.judge.lotscreens import (
+    Outlier,
+    RobustLimits,
+    check_screen,
+    flag_outliers,
+    robust_limits_of_measured,
+)
+from pipeline.judge.lotspread import (
+    Capability,
+    Distribution,
+    capability_of_measured,
+    distribution_of_measured,
+)
 from pipeline.model import FloatArray, SourceRef, VerdictKind, frozen_mapping
 
-# 1 / Φ⁻¹(3/4) ≈ 1.4826: the factor that makes the median absolute deviation of normal data
-# an estimate of its standard deviation.
-NORMAL_MAD_SCALE: Final = 1.0 / NormalDist().inv_cdf(0.75)
-PERCENTILES: Final = (1, 5, 25, 75, 95, 99)
 # How verdicts are listed in a tally: the ones that need someone's attention first.
 VERDICT_ORDER: Final = (
     VerdictKind.FAIL.value,
@@ -47,287 +51,8 @@ VERDICT_ORDER: Final = (
     VerdictKind.ERROR.value,
     VerdictKind.PASS.value,
 )
+# The sides a screen may flag (pipeline.judge.lotscreens.SIDES checks them at run time).
 Sides = Literal["both", "low", "high"]
-SIDES: Final = ("both", "low", "high")
-
-Values = Iterable[float | None] | FloatArray
-
-
-def _measured(values: Values) -> FloatArray:
-    """The values that were measured, as a float array: None, NaN and ±inf dropped."""
-    if isinstance(values, np.ndarray):
-        x = np.asarray(values, dtype=np.float64)
-    else:
-        x = np.array(list(values), dtype=np.float64)  # numpy turns None into NaN
-    kept: FloatArray = x[np.isfinite(x)]
-    return kept
-
-
-# -- one metric ---------------------------------------------------------------------------
-
-
-@dataclass(frozen=True, slots=True)
-class Distribution:
-    """How one metric is spread over the cells that have a value for it.
-
-    ``sd`` is the sample standard deviation (ddof = 1), None for a single value. ``mad``
-    is the raw median absolute deviation; ``robust_sd`` = 1.4826·MAD estimates the
-    standard deviation of normal data, yet a few wild values barely move it.
-    ``percentile_values`` hold the percentiles named in :data:`PERCENTILES`, linearly
-    interpolated (numpy's default); :attr:`percentiles` gives them as a mapping.
-    """
-
-    n: int
-    mean: float
-    median: float
-    sd: float | None
-    mad: float
-    robust_sd: float
-    minimum: float
-    maximum: float
-    percentile_values: tuple[float, ...]
-
-    @property
-    def percentiles(self) -> Mapping[int, float]:
-        """Percentile (1, 5, 25, 75, 95, 99) -> value."""
-        return dict(zip(PERCENTILES, self.percentile_values, strict=True))
-
-
-def _distribution(x: FloatArray) -> Distribution | None:
-    """:func:`distribution` of values already cleaned by :func:`_measured`."""
-    n = int(x.size)
-    if n == 0:
-        return None
-    median = float(np.median(x))
-    mad = float(np.median(np.abs(x - median)))
-    return Distribution(
-        n=n,
-        mean=float(np.mean(x)),
-        median=median,
-        sd=float(np.std(x, ddof=1)) if n >= 2 else None,
-        mad=mad,
-        robust_sd=NORMAL_MAD_SCALE * mad,
-        minimum=float(np.min(x)),
-        maximum=float(np.max(x)),
-        percentile_values=tuple(float(p) for p in np.percentile(x, PERCENTILES)),
-    )
-
-
-def distribution(values: Values) -> Distribution | None:
-    """Describe the measured values; None when no value was measured.
-
-    >>> distribution([None, float("nan")]) is None
-    True
-    >>> distribution([4.0]).sd is None
-    True
-    """
-    return _distribution(_measured(values))
-
-
-@dataclass(frozen=True, slots=True)
-class Capability:
-    """How well one metric's spread fits its window: Cp, Cpl, Cpu and Cpk.
-
-    Cp = (high - low)/(6 s), Cpu = (high - mean)/(3 s), Cpl = (mean - low)/(3 s), Cpk = the
-    smaller of the sides present. s is the sample standard deviation of the whole lot (not a
-    within-subgroup estimate), so on a lot these are what SPC texts call Pp and Ppk. A
-    missing side leaves its index None (and Cp, which needs both). When nothing can be
-    computed, ``cpk`` is None and ``why`` says why; else ``why`` is empty.
-    """
-
-    n: int
-    mean: float | None
-    sd: float | None
-    low: float | None
-    high: float | None
-    cp: float | None = None
-    cpl: float | None = None
-    cpu: float | None = None
-    cpk: float | None = None
-    why: str = ""
-
-
-def _capability(x: FloatArray, low: float | None, high: float | None) -> Capability:
-    """:func:`capability` of values already cleaned by :func:`_measured`."""
-    n = int(x.size)
-    mean = float(np.mean(x)) if n else None
-    sd = float(np.std(x, ddof=1)) if n >= 2 else None
-    base = Capability(n=n, mean=mean, sd=sd, low=low, high=high)
-    if low is None and high is None:
-        return _replace_why(base, "no limits")
-    if n < 2 or mean is None or sd is None:
-        return _replace_why(base, "fewer than 2 values")
-    # all values equal: the rounding of the mean could leave a tiny sd and a huge Cpk
-    if float(np.max(x)) == float(np.min(x)) or not sd > 0.0:
-        return _replace_why(base, "no spread")
-    cpl = (mean - low) / (3.0 * sd) if low is not None else None
-    cpu = (high - mean) / (3.0 * sd) if high is not None else None
-    cp = (high - low) / (6.0 * sd) if low is not None and high is not None else None
-    cpk = min(v for v in (cpl, cpu) if v is not None)
-    return Capability(n=n, mean=mean, sd=sd, low=low, high=high, cp=cp, cpl=cpl, cpu=cpu, cpk=cpk)
-
-
-def _replace_why(capability: Capability, why: str) -> Capability:
-    return Capability(
-        n=capability.n, mean=capability.mean, sd=capability.sd,
-        low=capability.low, high=capability.high, why=why,
-    )
-
-
-def capability(values: Values, low: float | None, high: float | None) -> Capability:
-    """Capability of the measured values against the window [low, high] (either side may be open).
-
-    >>> c = capability([9.0, 10.0, 11.0], 7.0, None)
-    >>> (c.cp, c.cpl, c.cpu, c.cpk)
-    (None, 1.0, None, 1.0)
-    >>> capability([5.0, 5.0, 5.0], 0.0, 10.0).why
-    'no spread'
-    """
-    return _capability(_measured(values), low, high)
-
-
-# -- robust screens -------------------------------------------------------------------------
-
-
-@dataclass(frozen=True, slots=True)
-class RobustLimits:
-    """A robust outlier screen for one metric, worked out from the lot's passing cells.
-
-    When ``applied``, ``low``/``high`` are ``median ∓ k·robust_sd`` on the screened sides,
-    clipped into the spec window so the screen can only tighten it; a side not screened
-    keeps the spec's bound (None = open). When not applied, ``low``/``high`` are the spec's
-    own bounds, nothing is flagged and ``why`` says why. ``median``/``robust_sd`` are None
-    when there was no passing value at all.
-    """
-
-    metric: str
-    k: float
-    min_cells: int
-    sides: str
-    n: int
-    median: float | None
-    robust_sd: float | None
-    low: float | None
-    high: float | None
-    applied: bool
-    why: str = ""
-
-
-def _check_screen(k: float, min_cells: int, sides: str) -> None:
-    """Refuse a screen no rule loader should have let through (a programming error)."""
-    if not (math.isfinite(k) and k > 0):
-        raise ValueError(f"k must be a positive number, not {k!r}")
-    if min_cells < 1:
-        raise ValueError(f"min_cells must be at least 1, not {min_cells!r}")
-    if sides not in SIDES:
-        raise ValueError(f"sides must be one of {', '.join(SIDES)}, not {sides!r}")
-
-
-def _cells(n: int) -> str:
-    return "1 passing cell" if n == 1 else f"{n} passing cells"
-
-
-def _robust_limits(
-    metric: str, x: FloatArray, k: float, min_cells: int,
-    spec_low: float | None, spec_high: float | None, sides: str,
-) -> RobustLimits:
-    """:func:`robust_limits` of values already cleaned by :func:`_measured`."""
-    _check_screen(k, min_cells, sides)
-    n = int(x.size)
-    median = float(np.median(x)) if n else None
-    scale = NORMAL_MAD_SCALE * float(np.median(np.abs(x - median))) if median is not None else None
-
-    def not_applied(why: str) -> RobustLimits:
-        return RobustLimits(metric, k, min_cells, sides, n, median, scale, spec_low, spec_high, False, why)
-
-    if n < min_cells:
-        return not_applied(f"lot has {_cells(n)}, the screen needs {min_cells}")
-    if median is None or scale is None or scale == 0.0:
-        # a screen of zero width would flag every value that differs from the median
-        return not_applied("no spread among passing cells")
-    low, high = spec_low, spec_high
-    if sides in ("both", "low"):
-        low = median - k * scale if spec_low is None else max(spec_low, median - k * scale)
-    if sides in ("both", "high"):
-        high = median + k * scale if spec_high is None else min(spec_high, median + k * scale)
-    return RobustLimits(metric, k, min_cells, sides, n, median, scale, low, high, True)
-
-
-def robust_limits(
-    metric: str,
-    passing_values: Values,
-    *,
-    k: float,
-    min_cells: int,
-    spec_low: float | None,
-    spec_high: float | None,
-    sides: Sides = "both",
-) -> RobustLimits:
-    """Robust limits ``median ± k·1.4826·MAD`` of the passing cells, never wider than the spec.
-
-    Why the median and MAD: the mean and standard deviation of a lot are pulled towards the
-    very cells the screen is looking for, so one bad cell could hide itself; half the lot
-    would have to be off to move the median. Why only passing cells: failed cells are
-    already out and would widen the limits. ``sides`` screens only one side ("low" for a
-    screen that only catches low capacity, say). Raises ValueError for k <= 0, min_cells
-    < 1 or unknown sides (the rule loader refuses those first).
-
-    >>> r = robust_limits("cap", [1.0, 2.0, 3.0], k=2, min_cells=3, spec_low=0.0, spec_high=3.5)
-    >>> (r.applied, r.median, round(r.robust_sd, 4), round(r.low, 4), r.high)
-    (True, 2.0, 1.4826, 0.0, 3.5)
-    >>> robust_limits("cap", [1.0, 2.0], k=2, min_cells=30, spec_low=None, spec_high=None).why
-    'lot has 2 passing cells, the screen needs 30'
-    """
-    return _robust_limits(metric, _measured(passing_values), k, min_cells, spec_low, spec_high, sides)
-
-
-@dataclass(frozen=True, slots=True)
-class Outlier:
-    """A cell whose value lies outside a robust screen's limits, on side "low" or "high"."""
-
-    cell_id: str
-    metric: str
-    value: float
-    low: float | None
-    high: float | None
-    side: str
-
-
-def _flag(cell_ids: Sequence[str], x: FloatArray, limits: RobustLimits) -> tuple[Outlier, ...]:
-    """The cells of ``x`` (NaN = not measured) outside ``limits``, furthest beyond first.
-
-    Ties are ordered by cell id, so the result does not depend on the order of the cells.
-    """
-    if not limits.applied:
-        return ()
-    found: list[tuple[float, str, Outlier]] = []
-    with np.errstate(invalid="ignore"):  # NaN compares False: never an outlier
-        for bound, side, below in ((limits.low, "low", True), (limits.high, "high", False)):
-            if bound is None:
-                continue
-            beyond = x < bound if below else x > bound
-            for i in np.flatnonzero(beyond).tolist():
-                value = float(x[i])
-                outlier = Outlier(cell_ids[i], limits.metric, value, limits.low, limits.high, side)
-                found.append((abs(value - bound), cell_ids[i], outlier))
-    found.sort(key=lambda item: (-item[0], item[1]))
-    return tuple(item[2] for item in found)
-
-
-def outliers(values_by_cell: Mapping[str, float | None], limits: RobustLimits) -> tuple[Outlier, ...]:
-    """The cells outside the screen's limits, furthest beyond the limit first.
-
-    Nothing is flagged when the screen was not applied. A value not measured (None, NaN)
-    is never an outlier: a missing value is the rule engine's business (it holds the cell).
-
-    >>> r = robust_limits("cap", [1.0, 2.0, 3.0], k=0.5, min_cells=3, spec_low=None, spec_high=None)
-    >>> [(o.cell_id, o.side) for o in outliers({"a": 1.0, "b": 2.0, "c": 3.5, "d": None}, r)]
-    [('c', 'high'), ('a', 'low')]
-    """
-    ids = list(values_by_cell)
-    x = np.array([values_by_cell[i] for i in ids], dtype=np.float64)
-    x[~np.isfinite(x)] = np.nan
-    return _flag(ids, x, limits)
 
 
 # -- grades ---------------------------------------------------------------------------------
@@ -610,7 +335,7 @@ def lot_statistics(
     if twice:
         raise ValueError(f"more than one window check is named {', '.join(map(repr, twice))}")
     for screen in screens:
-        _check_screen(screen.k, screen.min_cells, screen.sides)
+        check_screen(screen.k, screen.min_cells, screen.sides)
 
     metrics = _metric_names(cells, checks, screens, grades)
     columns = _columns(cells, metrics)
@@ -619,22 +344,22 @@ def lot_statistics(
     passing = np.fromiter((v == VerdictKind.PASS.value for v in verdicts), dtype=bool, count=len(verdicts))
     passing_ids = [i for i, p in zip(ids, passing.tolist(), strict=True) if p]
 
-    distributions = {m: _distribution(x[np.isfinite(x)]) for m, x in columns.items()}
+    distributions = {m: distribution_of_measured(x[np.isfinite(x)]) for m, x in columns.items()}
     capabilities = {}
     for check in checks:
         x = columns[check.metric]
-        capabilities[check.key] = _capability(x[np.isfinite(x)], check.low, check.high)
+        capabilities[check.key] = capability_of_measured(x[np.isfinite(x)], check.low, check.high)
 
     limits: list[RobustLimits] = []
     flagged: list[Outlier] = []
     for screen in screens:
         x = columns[screen.metric][passing]
         spec_low, spec_high = _spec_window(screen.metric, checks)
-        found = _robust_limits(
+        found = robust_limits_of_measured(
             screen.metric, x[np.isfinite(x)], screen.k, screen.min_cells, spec_low, spec_high, screen.sides
         )
         limits.append(found)
-        flagged.extend(_flag(passing_ids, x, found))
+        flagged.extend(flag_outliers(passing_ids, x, found))
 
     passing_columns = {m: x[passing] for m, x in columns.items()}
     graded = _grade_column(passing_columns, len(passing_ids), grades)
@@ -652,24 +377,15 @@ def lot_statistics(
 
 
 __all__ = [
-    "NORMAL_MAD_SCALE",
-    "PERCENTILES",
-    "Capability",
     "CellRow",
-    "Distribution",
     "GradeClass",
     "LotStatistics",
-    "Outlier",
-    "RobustLimits",
     "ScreenSpec",
+    "Sides",
     "Tally",
     "WindowSpec",
-    "capability",
     "check_grade_classes",
-    "distribution",
     "grade_of",
     "lot_statistics",
-    "outliers",
-    "robust_limits",
     "tally",
 ]

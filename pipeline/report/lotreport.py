@@ -32,13 +32,12 @@ import jinja2
 import numpy as np
 from markupsafe import Markup
 
+from pipeline.judge.lotscreens import Outlier, RobustLimits
+from pipeline.judge.lotspread import Capability
 from pipeline.judge.lotstats import (
-    Capability,
     CellRow,
     GradeClass,
     LotStatistics,
-    Outlier,
-    RobustLimits,
     ScreenSpec,
     WindowSpec,
     lot_statistics,
@@ -200,7 +199,7 @@ def yield_text(passed: int, total: int) -> str:
 def cpk_text(capability: Capability) -> tuple[str, str]:
     """Cpk to two decimals and a note: "below 1.33", or why no Cpk could be worked out.
 
-    >>> from pipeline.judge.lotstats import capability
+    >>> from pipeline.judge.lotspread import capability
     >>> cpk_text(capability([9.0, 10.0, 11.0], 7.0, 16.0))
     ('1.00', 'below 1.33')
     >>> cpk_text(capability([5.0], 0.0, 10.0))
