@@ -2,7 +2,7 @@
 
 Checks values that already passed the schema, reports into a Collector, and builds
 SmtpConfig and MailRouting once the whole file is clean. Looking the password up is
-settings_files.py's job; sending is pipeline.mail's.
+files.py's job; sending is pipeline.mail's.
 """
 
 from __future__ import annotations
@@ -18,9 +18,9 @@ from pipeline.mail.letters import check_addresses, message_id_for, sanitize_head
 from pipeline.mail.smtp import Security
 from pipeline.rulebook.tables import Collector, Values
 from pipeline.rulebook.toml_lines import KeyPath
-from pipeline.station.settings_folders import shown
-from pipeline.station.settings_records import MailRouting, SmtpConfig
-from pipeline.station.settings_schema import DEFAULT_PORTS, LOCAL_SENDER
+from pipeline.station.settings.folders import shown
+from pipeline.station.settings.records import MailRouting, SmtpConfig
+from pipeline.station.settings.schema import DEFAULT_PORTS, LOCAL_SENDER
 
 _ENV_NAME = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 # A base address for certificate links: a web server with a host, or a file URL.

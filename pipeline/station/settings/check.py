@@ -1,11 +1,11 @@
 """station.toml's text -> a Settings, or every problem located by line (pure: reads nothing).
 
-Keys and values are checked against settings_schema.py by rulebook/tables.py; the
-rules between keys are settings_folders.py's (paths) and settings_mail.py's ([smtp],
+Keys and values are checked against schema.py by rulebook/tables.py; the
+rules between keys are folders.py's (paths) and mail.py's ([smtp],
 [mail]); this module refuses passwords, names unknown tables, and puts it together.
-Reading the file is settings_files.py's job.
+Reading the file is files.py's job.
 
->>> from pipeline.station.settings_schema import render_station_toml
+>>> from pipeline.station.settings.schema import render_station_toml
 >>> s = load_settings(render_station_toml(), "station.toml", Path("st"))
 >>> s.inboxes[0].folder, s.work, s.smtp.host
 (PosixPath('st/inbox'), PosixPath('st/work'), None)
@@ -21,10 +21,10 @@ from typing import cast
 from pipeline.errors import SettingsError
 from pipeline.rulebook.tables import Collector, Values, check_family, check_table, close_match
 from pipeline.rulebook.toml_lines import KeyPath, show_table, syntax_position
-from pipeline.station.settings_folders import Checker, Place
-from pipeline.station.settings_mail import check_routing, check_smtp, mail_routing, smtp_config
-from pipeline.station.settings_records import FOLDER_KEYS, InboxSettings, ProfileRule, Settings
-from pipeline.station.settings_schema import (
+from pipeline.station.settings.folders import Checker, Place
+from pipeline.station.settings.mail import check_routing, check_smtp, mail_routing, smtp_config
+from pipeline.station.settings.records import FOLDER_KEYS, InboxSettings, ProfileRule, Settings
+from pipeline.station.settings.schema import (
     SETTINGS_BY_TABLE,
     SETTINGS_RENAMED,
     SETTINGS_TABLES,

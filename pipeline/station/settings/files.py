@@ -1,7 +1,7 @@
 """The settings' edges: reading station.toml, the SMTP password, the disks; creating a station.
 
 Each reads or writes the filesystem or environment, and leaves the parsing to
-settings_check.py (load_settings) and the records to settings_records.py.
+check.py (load_settings) and the records to records.py.
 """
 
 from __future__ import annotations
@@ -16,9 +16,9 @@ from pipeline.errors import SettingsError, SettingsProblems
 from pipeline.mail.smtp import SmtpSettings
 from pipeline.model import SourceRef
 from pipeline.shipped import RULES_DIR
-from pipeline.station.settings_check import check_settings, load_settings
-from pipeline.station.settings_records import Settings, labelled_folders
-from pipeline.station.settings_schema import STATION_FILE, render_station_toml
+from pipeline.station.settings.check import check_settings, load_settings
+from pipeline.station.settings.records import Settings, labelled_folders
+from pipeline.station.settings.schema import STATION_FILE, render_station_toml
 
 # The rule files and import profiles that ship with formgate (copied by `formgate init`).
 SHIPPED_RULES = RULES_DIR

@@ -1,8 +1,8 @@
 """The rules between station.toml's path keys: folders apart, the station's state kept out.
 
 Checks values that already passed the schema and reports into a Collector; it reads
-no disk (settings_files.py checks the folders that exist). The mail keys are
-settings_mail.py's, putting the whole file together settings_check.py's.
+no disk (files.py checks the folders that exist). The mail keys are
+mail.py's, putting the whole file together check.py's.
 """
 
 from __future__ import annotations
@@ -15,7 +15,7 @@ from pathlib import Path
 from pipeline.rulebook.tables import Collector, Values
 from pipeline.rulebook.toml_lines import KeyPath, show_table
 from pipeline.station.handoff import is_temporary
-from pipeline.station.settings_schema import SETTINGS_BY_TABLE, STATION_FILE, toml_value
+from pipeline.station.settings.schema import SETTINGS_BY_TABLE, STATION_FILE, toml_value
 
 
 def shown(text: object) -> str:

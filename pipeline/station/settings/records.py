@@ -1,7 +1,7 @@
 """The Settings records a station runs on, and choosing an import profile for a file.
 
 Nothing here reads or checks anything. Turning station.toml's text into these records
-is settings_check.py's job; reading files, credentials and disks is settings_files.py's.
+is check.py's job; reading files, credentials and disks is files.py's.
 """
 
 from __future__ import annotations
