@@ -51,7 +51,7 @@ from dataclasses import dataclass
 
 from pipeline.errors import InputError
 from pipeline.model import SourceRef, frozen_mapping
-from pipeline.read.cyclefile import inflate
+from pipeline.read.cyclehead import inflate
 
 KIND = "ocv readings"  # what ``# kind:`` says in a file of this format
 REQUIRED_COLUMNS = ("cell_id", "time", "ocv_V")

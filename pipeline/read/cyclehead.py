@@ -1,0 +1,270 @@
+"""A cycle file's head: its bytes inflated and decoded, the ``# key: value`` metadata and the header row.
+
+Handles gzip (one member after another, never more than a cap), the text encoding (UTF-8
+with or without a byte-order mark, or Latin-1 through an import profile), the metadata
+block with the profile's defaults and file-name pattern, the stage a file says it holds,
+and the header row's fields. The data part of a large file is left as bytes: the columns
+and the numbers under the header are left to :mod:`pipeline.read.cyclenumbers`, putting
+both into a Trace to :mod:`pipeline.read.cyclefile`. Anything it cannot read becomes an
+InputError naming the file and line.
+"""
+
+from __future__ import annotations
+
+import csv
+import zlib
+from dataclasses import dataclass, field
+
+from pipeline.errors import InputError
+from pipeline.model import CYCLE_FILE_STAGES, SourceRef
+from pipeline.read.profile import REQUIRED_METADATA, V1_METADATA, Profile
+
+GZIP_MAGIC = b"\x1f\x8b"
+CUT_SHORT_HINT = "Copy the file again once the cycler has finished writing it."
+
+
+@dataclass
+class Head:
+    """What comes before the data: metadata lines, the header row and where the data starts."""
+
+    metadata: dict[str, str] = field(default_factory=dict)
+    metadata_lines: dict[str, int] = field(default_factory=dict)
+    block_line: int = 1  # first line of the metadata block (or of the file)
+    header_line: int = 0
+    fields: list[str] = field(default_factory=list)
+    data_start: int = 0
+
+
+def split_head(raw: bytes, name: str, profile: Profile) -> tuple[Head, bytes, int]:
+    """The head of the file, and the UTF-8 bytes its data rows start in, with their offset.
+
+    The data part of a cycle file is megabytes of plain ASCII: it is handed to pandas
+    as the file's own bytes (no decoding to text and encoding back, no copies), and
+    only the head is decoded. A file with CR line ends or in Latin-1 goes the long
+    way: decoded whole, line ends normalised, and the data part encoded as UTF-8.
+    """
+    if profile.encoding == "utf-8" and b"\r" not in raw:
+        if raw.isascii():  # characters and bytes count alike
+            head = _ascii_head(raw, name, profile)
+            return head, raw, head.data_start
+        text = _decode(raw, name, profile.encoding)  # checks the whole file is UTF-8
+        head = _read_head(text, name, profile)
+        bom = 3 if raw.startswith(b"\xef\xbb\xbf") else 0
+        return head, raw, bom + len(text[: head.data_start].encode("utf-8"))
+    text = _decode(raw, name, profile.encoding)
+    if "\r" in text:  # old Mac or Windows line ends: count lines the way editors do
+        text = text.replace("\r\n", "\n").replace("\r", "\n")
+    head = _read_head(text, name, profile)
+    return head, text[head.data_start :].encode("utf-8"), 0
+
+
+def _ascii_head(raw: bytes, name: str, profile: Profile) -> Head:
+    """_read_head on as few whole lines from the start of an ASCII file as hold the header."""
+    limit = 1 << 16
+    while True:
+        whole = limit >= len(raw)
+        chunk = raw if whole else raw[: raw.rfind(b"\n", 0, limit) + 1]
+        try:
+            head = _read_head(chunk.decode("ascii"), name, profile)
+        except InputError:
+            if whole:
+                raise
+        else:
+            return head
+        limit *= 4
+
+
+def decompress(data: bytes, name: str, cap: int) -> bytes:
+    if not (data[:2] == GZIP_MAGIC or name.lower().endswith(".gz")):
+        if len(data) > cap:
+            raise _too_large(name, cap)
+        return data
+    return inflate(data, name, cap, _too_large(name, cap), CUT_SHORT_HINT)
+
+
+def inflate(data: bytes, name: str, cap: int, too_large: InputError, cut_hint: str) -> bytes:
+    """A gzip file's bytes inflated, one member after another, never more than ``cap`` bytes.
+
+    Bad gzip data and data that ends early are InputErrors located at the line the text
+    had reached; more than ``cap`` bytes raises ``too_large``. Shared by every reader of
+    files that may come compressed (cycle files, OCV reading files).
+    """
+    parts: list[bytes] = []
+    total = 0
+    rest = data
+    while rest:  # one gzip member after another
+        inflater = zlib.decompressobj(wbits=31)  # 31 = gzip header and trailer
+        try:
+            # Asking for one byte more than the cap: output stops short only at the cap.
+            chunk = inflater.decompress(rest, cap - total + 1)
+        except zlib.error as exc:
+            raise InputError(
+                f"the file is not valid gzip data ({str(exc).rpartition(': ')[2]})",
+                SourceRef(name, b"".join(parts).count(b"\n") + 1),
+                "Copy the file again; if it is not compressed, its name must not end in .gz.",
+            ) from None
+        parts.append(chunk)
+        total += len(chunk)
+        if total > cap:
+            raise too_large
+        if not inflater.eof:
+            raise InputError(
+                "the compressed data ends early: the file is cut short",
+                SourceRef(name, b"".join(parts).count(b"\n") + 1),
+                cut_hint,
+            )
+        rest = inflater.unused_data.lstrip(b"\0")  # zero padding may follow a member
+    return b"".join(parts)
+
+
+def _too_large(name: str, cap: int) -> InputError:
+    size = f"{cap // 2**20} MiB" if cap % 2**20 == 0 else f"{cap} bytes"
+    return InputError(
+        f"the file holds more than {size} of text, the most formgate reads",
+        SourceRef(name),
+        "Check that the file is one cell's record.",
+    )
+
+
+def _decode(raw: bytes, name: str, encoding: str) -> str:
+    if encoding == "latin-1":
+        return raw.decode("latin-1")
+    bom = 3 if raw.startswith(b"\xef\xbb\xbf") else 0
+    try:
+        return raw[bom:].decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw.count(b"\n", 0, bom + exc.start) + 1
+        byte = raw[bom + exc.start]
+        hint = (
+            "If the file is Latin-1 text, read it through an import profile "
+            'with encoding = "latin-1".'
+        )
+        if raw.startswith((b"\xff\xfe", b"\xfe\xff")):
+            hint = "The file looks like UTF-16 text: have it written as UTF-8."
+        raise InputError(
+            f"byte 0x{byte:02X} (offset {bom + exc.start} in the file) is not UTF-8 text",
+            SourceRef(name, line),
+            hint,
+        ) from None
+
+
+def _read_head(text: str, name: str, profile: Profile) -> Head:
+    head = Head(block_line=profile.skip_lines + 1)
+    prefix = profile.metadata_prefix
+    pos, number = 0, 0
+    seen_metadata = False
+    while pos < len(text):
+        end = text.find("\n", pos)
+        end = len(text) if end < 0 else end
+        line, pos = text[pos:end], end + 1
+        number += 1
+        stripped = line.strip()
+        if number <= profile.skip_lines or not stripped:
+            continue
+        if stripped.startswith(prefix):
+            if not seen_metadata:
+                head.block_line, seen_metadata = number, True
+            _add_metadata(head, stripped[len(prefix) :], number, name)
+            continue
+        head.header_line = number
+        head.fields = [f.strip() for f in split_fields(line, profile.delimiter)]
+        head.data_start = min(pos, len(text))
+        return head
+    if not text.strip():
+        raise InputError("the file is empty", SourceRef(name), CUT_SHORT_HINT)
+    raise InputError(
+        "no header row: the file ends before any line of column names",
+        SourceRef(name, number),
+        "A cycle file needs a header row (e.g. time_s,voltage_V,current_A) and data rows.",
+    )
+
+
+def _add_metadata(head: Head, body: str, number: int, name: str) -> None:
+    key, colon, value = body.partition(":")
+    key, value = key.strip(), value.strip()
+    if not colon or not key:
+        return  # a plain comment line
+    if key in head.metadata_lines and key in V1_METADATA:
+        raise InputError(
+            f"metadata {key} is given twice (lines {head.metadata_lines[key]} and {number})",
+            SourceRef(name, number),
+            "Keep one of the two lines.",
+        )
+    if key not in head.metadata_lines:
+        head.metadata[key] = value
+        head.metadata_lines[key] = number
+
+
+def collect_metadata(head: Head, name: str, profile: Profile) -> dict[str, str]:
+    metadata = dict(head.metadata)
+    if profile.file_name_pattern is not None:
+        base = name.replace("\\", "/").rpartition("/")[2]
+        found = profile.file_name_pattern.search(base)
+        if found is None:
+            raise InputError(
+                f"the file name does not match the import profile's file_name_pattern "
+                f"'{profile.file_name_pattern.pattern}'",
+                SourceRef(name),
+                "Rename the file, or change file_name_pattern in the import profile "
+                f"{profile.name}.",
+            )
+        for key, value in found.groupdict().items():
+            if value is None or not value.strip():
+                continue
+            if metadata.get(key, value.strip()) != value.strip():
+                raise InputError(
+                    f"metadata {key} is '{metadata[key]}' in the file but '{value.strip()}' "
+                    "in the file name",
+                    SourceRef(name, head.metadata_lines[key]),
+                    "Correct whichever is wrong before the cell is judged.",
+                )
+            metadata[key] = value.strip()
+    for key, value in profile.metadata.items():
+        metadata.setdefault(key, value)
+    _check_stage(metadata, head, name, profile)
+    for key in REQUIRED_METADATA:
+        if key in head.metadata_lines and not metadata[key]:
+            raise InputError(
+                f"metadata {key} is empty",
+                SourceRef(name, head.metadata_lines[key]),
+                f"Give it a value: '# {key}: ...'.",
+            )
+        if not metadata.get(key):
+            found_keys = ", ".join(metadata) or "none"
+            raise InputError(
+                f"no {key} in the metadata (found: {found_keys})",
+                SourceRef(name, head.block_line),
+                f"Add a line '{profile.metadata_prefix} {key}: ...' before the header, or "
+                + (
+                    "set it under [metadata] in an import profile."
+                    if key == "cell_type"
+                    else "take it from the file name with an import profile's file_name_pattern."
+                ),
+            )
+    return metadata
+
+
+def _check_stage(metadata: dict[str, str], head: Head, name: str, profile: Profile) -> None:
+    """Refuse a ``stage`` that is not one a cycle file may hold, naming its line."""
+    stage = metadata.get("stage")
+    if stage is None or stage in CYCLE_FILE_STAGES:
+        return
+    allowed = ", ".join(CYCLE_FILE_STAGES)
+    if "stage" in head.metadata_lines:
+        where, origin = SourceRef(name, head.metadata_lines["stage"]), "the file"
+    elif "stage" in profile.metadata and profile.metadata["stage"] == stage:
+        where, origin = SourceRef(name), f"the import profile {profile.name}"
+    else:
+        where, origin = SourceRef(name), "the file name"
+    raise InputError(
+        f"metadata stage is '{stage}' in {origin}, not a stage a cycle file may hold",
+        where,
+        f"Give one of: {allowed}; or leave the stage out for a file of the whole program.",
+    )
+
+
+def split_fields(line: str, delimiter: str) -> list[str]:
+    try:
+        return next(csv.reader([line], delimiter=delimiter), [""])
+    except csv.Error:  # e.g. a field longer than the csv module allows
+        return line.split(delimiter)

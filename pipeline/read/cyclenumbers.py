@@ -1,0 +1,300 @@
+"""A cycle file's numbers: the profile's columns in the header, the data rows parsed, each value checked.
+
+The rows are parsed by pandas' C engine straight from the file's bytes; the numbers are
+converted to s, V, A (positive = charge) by the caller's factors, and step and cycle
+numbers must be whole. When pandas fails, or a field is not a number, the line (and column)
+at fault is found and named, with what to do: those located messages are most of this
+module and belong beside the parsing they describe. The head (decoding, metadata, header
+row) is left to :mod:`pipeline.read.cyclehead`; whether the numbers make sense for the cell
+type to :mod:`pipeline.read.validate`.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import re
+from typing import TypeVar
+
+import numpy as np
+import pandas as pd
+
+from pipeline.errors import InputError
+from pipeline.model import FloatArray, IntArray, SourceRef
+from pipeline.read.cyclehead import CUT_SHORT_HINT, Head, split_fields
+from pipeline.read.profile import Profile
+
+_Array = TypeVar("_Array", FloatArray, IntArray)
+REQUIRED_COLUMNS = ("time", "voltage", "current")
+_DELIMITER_NAMES = {",": "comma", ";": "semicolon", "\t": "tab"}
+_ROW_HINT = "Each row needs one field per header column; leave a missing value empty."
+
+
+def find_columns(head: Head, name: str, profile: Profile) -> dict[str, int]:
+    columns: dict[str, int] = {}
+    for quantity, header in profile.columns.items():
+        places = [i for i, f in enumerate(head.fields) if f == header]
+        if len(places) > 1:
+            raise InputError(
+                f"the column {header} appears twice (columns {places[0] + 1} and {places[1] + 1})",
+                SourceRef(name, head.header_line, places[1] + 1),
+                "Rename or remove one of them.",
+            )
+        if places:
+            columns[quantity] = places[0]
+        elif quantity in REQUIRED_COLUMNS:
+            raise InputError(
+                f"no column for {quantity} (found: {', '.join(head.fields)})",
+                SourceRef(name, head.header_line),
+                _missing_column_hint(head.fields, header, profile),
+            )
+    return columns
+
+
+def _missing_column_hint(fields: list[str], header: str, profile: Profile) -> str:
+    if len(fields) == 1:
+        for mark, word in _DELIMITER_NAMES.items():
+            if mark != profile.delimiter and mark in fields[0]:
+                return (
+                    f"The header looks {word}-separated: read the file through an import "
+                    f'profile with delimiter = "{word}".'
+                )
+    where = "map it in an import profile"
+    if not profile.is_v1:
+        where = f"map it under [columns] in the import profile {profile.name}"
+    for f in fields:
+        if f.lower() == header.lower():
+            return f"Rename the column {f} to {header}, or {where}."
+    return f"Rename the column, or {where}."
+
+
+def data_end(data: bytes, start: int, head: Head, name: str, profile: Profile) -> int:
+    """Where the data rows in ``data[start:]`` end: trailing blank lines are not rows."""
+    blank = _blank(profile).encode("ascii")
+    end = len(data)
+    while end > start:  # trailing blank lines are the end of the file, not an error
+        cut = data.rfind(b"\n", start, end)
+        if data[max(cut + 1, start) : end].strip(blank):
+            break
+        end = max(cut, start)
+    if end == start:
+        raise InputError(
+            "the header is not followed by any data rows",
+            SourceRef(name, head.header_line),
+            CUT_SHORT_HINT,
+        )
+    return end  # blank lines inside show up as short rows in parse_rows
+
+
+def _blank(profile: Profile) -> str:
+    """Characters a blank line may hold (a tab is an empty field in a tab-separated file)."""
+    return " " if profile.delimiter == "\t" else " \t"
+
+
+def _blank_line_error(line: int, name: str) -> InputError:
+    return InputError(
+        "blank line inside the data",
+        SourceRef(name, line),
+        "Remove the blank line; every line after the header must be a data row.",
+    )
+
+
+def parse_rows(data: bytes, start: int, end: int, head: Head, name: str, profile: Profile) -> pd.DataFrame:
+    """Run pandas' C parser on ``data[start:end]``; on any failure, find the line at fault.
+
+    Types are left to pandas to infer (asking for float64 would turn 'True' into 1.0);
+    a column that is not all numbers comes back as text and :func:`numbers` names the field.
+    """
+    expected = len(head.fields)
+    if data[end:] in (b"", b"\n"):
+        stream = io.BytesIO(data)  # shares the bytes; pandas reads on from the position
+        stream.seek(start)
+    else:
+        stream = io.BytesIO(data[start:end])
+    try:
+        frame = pd.read_csv(
+            stream,
+            encoding="utf-8",
+            sep=profile.delimiter,
+            decimal=profile.decimal,
+            header=None,
+            keep_default_na=False,
+            na_values=[""],
+            skip_blank_lines=False,
+            low_memory=False,
+            engine="c",
+        )
+    except (ValueError, TypeError, OverflowError) as exc:  # ParserError is a ValueError
+        raise _diagnose(_region(data, start, end), head, name, profile, str(exc)) from None
+    # Without quote marks (which may hold line breaks) or NUL bytes, pandas makes one
+    # row per line; only then is counting the lines (a pass over megabytes) skipped.
+    plain = data.find(b'"', start, end) < 0 and data.find(b"\0", start, end) < 0
+    rows = len(frame) if plain else data.count(b"\n", start, end) + 1
+    if frame.shape[1] != expected or len(frame) != rows:
+        raise _diagnose(_region(data, start, end), head, name, profile, "rows and header disagree")
+    short = np.flatnonzero(frame[expected - 1].isna().to_numpy())
+    if short.size:
+        lines = _region(data, start, end).split("\n")
+        for row in short.tolist():
+            if not lines[row].strip(_blank(profile)):
+                raise _blank_line_error(head.header_line + 1 + row, name)
+            count = _count_fields(lines[row], profile.delimiter)
+            if count < expected:
+                raise _field_count_error(count, row, rows, head, name)
+    return frame
+
+
+def _region(data: bytes, start: int, end: int) -> str:
+    """The data rows as text, for finding the line at fault (the bytes are valid UTF-8)."""
+    return data[start:end].decode("utf-8")
+
+
+def _count_fields(line: str, delimiter: str) -> int:
+    if '"' not in line:
+        return line.count(delimiter) + 1
+    return len(split_fields(line, delimiter))
+
+
+def _field_count_error(count: int, row: int, rows: int, head: Head, name: str) -> InputError:
+    expected = len(head.fields)
+    last = row == rows - 1 and count < expected
+    problem = f"{count} fields where the header has {expected}"
+    return InputError(
+        problem + (": the file looks cut short" if last else ""),
+        SourceRef(name, head.header_line + 1 + row),
+        CUT_SHORT_HINT if last else _ROW_HINT,
+    )
+
+
+def _diagnose(region: str, head: Head, name: str, profile: Profile, why: str) -> InputError:
+    lines = region.split("\n")
+    for row, line in enumerate(lines):
+        if not line.strip(_blank(profile)):
+            return _blank_line_error(head.header_line + 1 + row, name)
+        if line.count('"') % 2:
+            return InputError(
+                "a quote opens a field but does not close it on this line",
+                SourceRef(name, head.header_line + 1 + row),
+                "Remove the stray quote mark.",
+            )
+        count = _count_fields(line, profile.delimiter)
+        if count != len(head.fields):
+            return _field_count_error(count, row, len(lines), head, name)
+    return InputError(  # pragma: no cover - pandas failed, yet every line looks right
+        f"the data cannot be read as {_DELIMITER_NAMES[profile.delimiter]}-separated text "
+        f"({(why.strip().splitlines() or ['no reason given'])[-1]})",
+        SourceRef(name, head.header_line + 1),
+        _ROW_HINT,
+    )
+
+
+def _number_pattern(decimal: str) -> re.Pattern[str]:
+    d = re.escape(decimal)
+    return re.compile(rf"[ \t]*[+-]?(?:[0-9]+(?:{d}[0-9]*)?|{d}[0-9]+)(?:[eE][+-]?[0-9]+)?[ \t]*")
+
+
+def numbers(
+    frame: pd.DataFrame, index: int, head: Head, name: str, profile: Profile, factor: float
+) -> FloatArray:
+    """Column ``index`` as float64 times ``factor`` (file unit -> v1 unit); empty fields NaN."""
+    series = frame[index]
+    header = head.fields[index]
+    if series.dtype.kind in "iuf":
+        values: FloatArray = series.to_numpy(dtype=np.float64)
+    else:  # pandas kept text: some field is not a number under this profile
+        number = _number_pattern(profile.decimal)
+        parsed: list[float] = []
+        for row, cell in enumerate(series.tolist()):
+            if cell is None or cell == "" or (isinstance(cell, float) and math.isnan(cell)):
+                parsed.append(math.nan)
+                continue
+            if isinstance(cell, int | float) and not isinstance(cell, bool):
+                try:  # e.g. a whole number too large for int64
+                    parsed.append(float(cell))
+                except OverflowError:  # too large even for a float: refused as infinite below
+                    parsed.append(math.inf if cell > 0 else -math.inf)
+                continue
+            text = str(cell)
+            if isinstance(cell, bool) or not number.fullmatch(text):
+                raise _not_a_number(text, row, index, head, name, profile)
+            # looks like a number yet pandas kept it as text (e.g. a huge integer)
+            parsed.append(float(text.replace(profile.decimal, ".")))
+        values = np.array(parsed, dtype=np.float64)
+    if factor == 1.0:
+        scaled: FloatArray = values
+    else:
+        with np.errstate(over="ignore"):
+            scaled = values * factor
+    scaled = _frozen(scaled)
+    infinite = np.flatnonzero(np.isinf(scaled))
+    if infinite.size:
+        row = int(infinite[0])
+        what = "not a finite number" if np.isinf(values[row]) else "too large to convert"
+        raise InputError(
+            f"{header} is {values[row]:g}, {what}",
+            SourceRef(name, head.header_line + 1 + row, index + 1),
+            "Fix the value, or leave it empty if it is missing.",
+        )
+    return scaled
+
+
+def _not_a_number(
+    cell: str, row: int, index: int, head: Head, name: str, profile: Profile
+) -> InputError:
+    shown = cell if len(cell) <= 40 else cell[:37] + "..."
+    shown = shown if shown.isprintable() else shown.encode("unicode_escape").decode("ascii")
+    hint = "Fix the value, or leave it empty if it is missing."
+    other = "." if profile.decimal == "," else ","
+    if _number_pattern(other).fullmatch(cell):
+        word, current = ("comma", "point") if other == "," else ("point", "comma")
+        hint = f'The value has a decimal {word}, but the file is read with decimal = "{current}"'
+        hint += (
+            ": read it through an import profile that says otherwise."
+            if profile.is_v1
+            else f" (import profile {profile.name})."
+        )
+    return InputError(
+        f"{head.fields[index]} is '{shown}', not a number",
+        SourceRef(name, head.header_line + 1 + row, index + 1),
+        hint,
+    )
+
+
+def _frozen(values: _Array) -> _Array:
+    """``values`` read-only and owning its data, copied only if it is a view (of pandas' frame).
+
+    The Trace then keeps the array without copying it again (model.frozen_array).
+    """
+    if not (values.flags.owndata and values.flags.c_contiguous):
+        values = values.copy()
+    values.setflags(write=False)
+    return values
+
+
+def whole_numbers(
+    frame: pd.DataFrame, index: int, head: Head, name: str, profile: Profile, quantity: str
+) -> IntArray:
+    """Column ``index`` as int64: step or cycle numbers, which must be whole numbers."""
+    series = frame[index]
+    if series.dtype == np.int64:  # pandas read every field as a whole number
+        ints: IntArray = series.to_numpy()
+        if len(ints) and ints.min() >= -(2**53) and ints.max() <= 2**53:
+            return _frozen(ints)
+    values = numbers(frame, index, head, name, profile, 1.0)
+    _refuse_non_integers(values, index, head, name, quantity)
+    return _frozen(values.astype(np.int64))
+
+
+def _refuse_non_integers(
+    values: FloatArray, index: int, head: Head, name: str, quantity: str
+) -> None:
+    too_big = np.abs(values) > 2**53  # beyond this a float no longer holds every whole number
+    bad = np.flatnonzero(~np.isfinite(values) | too_big | (values != np.round(values)))
+    if bad.size:
+        row = int(bad[0])
+        found = "empty" if np.isnan(values[row]) else f"{values[row]:g}"
+        raise InputError(
+            f"{head.fields[index]} is {found}, not a whole {quantity} number",
+            SourceRef(name, head.header_line + 1 + row, index + 1),
+            f"Fix the value, or remove the {quantity} column and let formgate find the steps.",
+        )
