@@ -47,7 +47,7 @@ from pathlib import Path
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from pipeline.inputnames import to_text  # noqa: E402
+from pipeline.names import to_text  # noqa: E402
 from tests.smtp_server import HOST, free_port, smtp_server  # noqa: E402
 from tests.station_kit import (  # noqa: E402
     cycle_file,

@@ -2,6 +2,6 @@
 
 import sys
 
-from pipeline.cli import main
+from pipeline.cli.main import main
 
 sys.exit(main())

@@ -1,9 +1,18 @@
-"""formgate's error types: each user-fixable error knows where (file, line, column) and what to do.
+"""formgate's error types (each user-fixable error knows where and what to do), and its log.
 
-Printing and exit codes are the CLI's business; this module only shapes the message.
+An error knows its file, line and column and what to do; printing it and the exit codes
+are the command line's business, this module only shapes the message. The log set-up
+(one line per event, to a rotating file and standard error) lives here too, so that the
+command line and the demo share it without importing each other.
 """
 
 from __future__ import annotations
+
+import logging
+import logging.handlers
+import sys
+import time
+from pathlib import Path
 
 from pipeline.model import SourceRef
 
@@ -71,3 +80,21 @@ class SettingsProblems(SettingsError):
         place = self.problems[0].where.path if self.problems[0].where else "the station file"
         lines = [str(p) for p in self.problems]
         return "\n".join([*lines, f"{len(lines)} problems found in {place}"])
+
+
+def setup_logging(logs: Path, max_mb: float, keep: int, *, verbose: bool = True) -> None:
+    """One line per event to a rotating log file and to standard error."""
+    logs.mkdir(parents=True, exist_ok=True)
+    fmt = logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s")
+    fmt.converter = time.gmtime
+    handler = logging.handlers.RotatingFileHandler(
+        logs / "formgate.log", maxBytes=int(max_mb * 2**20), backupCount=keep, encoding="utf-8"
+    )
+    handler.setFormatter(fmt)
+    root = logging.getLogger("formgate")
+    root.setLevel(logging.INFO)
+    root.handlers[:] = [handler]
+    if verbose:
+        console = logging.StreamHandler(sys.stderr)
+        console.setFormatter(fmt)
+        root.addHandler(console)

@@ -14,7 +14,7 @@ import tempfile
 from collections.abc import Callable, Iterator
 from pathlib import Path
 
-from pipeline.inputnames import fit
+from pipeline.names import fit
 
 TEMP_PREFIX = "."
 TEMP_SUFFIX = ".tmp"

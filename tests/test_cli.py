@@ -12,7 +12,8 @@ import pypdf
 import pytest
 
 from pipeline import __version__
-from pipeline.cli import EXIT_BUG, _report_bug, main
+from pipeline.cli.exits import EXIT_BUG
+from pipeline.cli.main import main, report_bug
 from pipeline.demo.lots import DEMO_CELLS, demo_file_bytes, demo_metadata, demo_record
 from pipeline.demo.synth import to_cycle_file
 from pipeline.names import safe_name
@@ -308,7 +309,7 @@ def test_bug_report_is_one_line_and_a_log(
     try:
         raise KeyError("missing")
     except KeyError as exc:
-        assert _report_bug(exc) == EXIT_BUG
+        assert report_bug(exc) == EXIT_BUG
     log = tmp_path / "home" / "formgate-crash.log"
     assert capsys.readouterr() == (
         "",

@@ -13,7 +13,7 @@ from collections.abc import Iterator
 
 import pytest
 
-from pipeline.cli import build_parser
+from pipeline.cli.main import build_parser
 from pipeline.judge.metricdefs import METRICS
 from pipeline.read.profile_docs import SHIPPED_PROFILES, read_examples, render_profiles_doc
 from tests.conftest import REPO

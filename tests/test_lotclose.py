@@ -17,7 +17,7 @@ from pipeline.demo.aging import aging_readings, demo_aging_lot
 from pipeline.errors import FormgateError
 from pipeline.judge.aging import judge_aging
 from pipeline.judge.cellverdict import AGING, CYCLE_FILE, StageRecord, decide
-from pipeline.lotclose import close_lot
+from pipeline.judge.lotclose import close_lot
 from pipeline.model import VerdictKind
 from pipeline.read.readings import ReadingFile, read_readings
 from pipeline.rulebook.book import RuleBook, load_rule_set
@@ -226,7 +226,7 @@ def test_a_cell_of_a_formation_and_a_grading_file_is_one_cell_of_both_stages() -
     import json
 
     from pipeline.demo.lots import DEMO_STAGED_CELLS, demo_stage_files
-    from pipeline.lotclose import cell_stages
+    from pipeline.judge.lotclose import cell_stages
     from pipeline.report.result import to_document
     from pipeline.rulebook.book import load_rules_dir
     from pipeline.runner import judge
@@ -260,7 +260,7 @@ def _records_rule_set(extra: str) -> tuple[object, object]:
 
 
 def test_which_record_of_a_stage_counts_follows_the_rule_set() -> None:
-    from pipeline.lotclose import cell_stages
+    from pipeline.judge.lotclose import cell_stages
 
     good = _document("C1", "L", 5.1, day=1)
     failed = _document("C1", "L", 4.5, day=2)

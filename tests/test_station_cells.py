@@ -170,7 +170,7 @@ def test_closing_a_lot_holds_its_outlier_grades_the_rest_and_writes_its_report(
 ) -> None:
     from pypdf import PdfReader
 
-    from pipeline.cli import main
+    from pipeline.cli.main import main
 
     s = make_station(tmp_path / "st")
     (s.rules_dir / "test_cells.toml").write_text(LOT_RULES, encoding="utf-8")

@@ -21,8 +21,8 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.inputnames import from_text
 from pipeline.ledger.ledger import Ledger
+from pipeline.names import from_text
 from pipeline.station.settings import read_settings
 from pipeline.station.status import status_text
 from tests.station_kit import (

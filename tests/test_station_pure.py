@@ -16,7 +16,7 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from pipeline.errors import InputError
-from pipeline.inputnames import fit, from_text, is_text, to_text
+from pipeline.names import fit, from_text, is_text, to_text
 from pipeline.read.limits import TextLimits, check_text
 from pipeline.station.settings import InboxSettings
 from pipeline.station.troubles import Troubles, describe, is_environmental, kind_of
@@ -29,10 +29,9 @@ T0 = datetime.datetime(2026, 3, 1, 8, 0, tzinfo=datetime.UTC)
 @pytest.mark.parametrize(
     "name",
     [
-        "pipeline.inputnames",
+        "pipeline.names",
         "pipeline.read.limits",
         "pipeline.station.handoff",
-        "pipeline.names",
         "pipeline.station.rules_in_force",
         "pipeline.station.duties",
     ],

@@ -158,7 +158,7 @@ def run_station_demo(folder: Path | None = None) -> int:
         (root / extra).mkdir(exist_ok=True)
     settings = read_settings(root)
     smtp = smtp_settings(settings, {})
-    from pipeline.logs import setup_logging
+    from pipeline.errors import setup_logging
 
     setup_logging(settings.logs, settings.log_max_MB, settings.log_keep, verbose=True)
     log = logging.getLogger("formgate.demo")

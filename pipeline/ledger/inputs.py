@@ -58,7 +58,7 @@ class Inputs:
         """
         if not SHA256_HEX.fullmatch(sha256):
             raise ValueError(f"sha256 must be 64 lowercase hex digits, got {sha256!r}")
-        # a backslash is allowed: it is how pipeline.inputnames escapes a name into text
+        # a backslash is allowed: it is how pipeline.names escapes a name into text
         if not name or "/" in name or not name.isprintable():
             raise ValueError(f"name must be a file's base name as text, got {name!r}")
         arrived = utc_text(arrived_at, "arrived_at")

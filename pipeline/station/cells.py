@@ -1,6 +1,6 @@
 """A cell's decision over its stages: recomputed whenever a record of it or a reading arrives.
 
-Edge module (ledger and letters); the deciding itself is pure (pipeline.lotclose and
+Edge module (ledger and letters); the deciding itself is pure (pipeline.judge.lotclose and
 pipeline.judge.cellverdict). After each cycle file and each OCV reading file the
 station decides every cell it touched, under the rules in force: its latest record
 per stage and all its readings count. A decision that differs from the cell's latest
@@ -23,8 +23,8 @@ from collections.abc import Iterable, Sequence
 
 from pipeline.errors import FormgateError
 from pipeline.judge.cellverdict import CellDecision, decide
+from pipeline.judge.lotclose import cell_stages
 from pipeline.ledger.rows import DecisionRow
-from pipeline.lotclose import cell_stages
 from pipeline.mail.cell_letters import decision_letter, superseded_letter
 from pipeline.mail.letters import Letter
 from pipeline.rulebook.book import RuleBook

@@ -21,7 +21,7 @@ from functools import partial
 from pathlib import Path
 from typing import BinaryIO
 
-from pipeline.inputnames import fit, is_text, to_text
+from pipeline.names import fit, is_text, to_text
 from pipeline.station import faults
 from pipeline.station.duties import Duties
 from pipeline.station.handoff import Seen, decide, file_looks_complete, is_temporary

@@ -20,10 +20,10 @@ import urllib.parse
 from collections import deque
 from pathlib import Path
 
-from pipeline.inputnames import to_text
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import InputRow, ResultRow
 from pipeline.mail.letters import DigestRow, digest_letter
+from pipeline.names import to_text
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.guard import Guarded
 from pipeline.station.judges import JudgePool

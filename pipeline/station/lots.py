@@ -1,7 +1,7 @@
 """Lots at a station: close one, record its decisions, write its report and export, list them.
 
 Edge module: it reads the lot's results and readings from the ledger, closes the lot
-with the pure pipeline.lotclose, records each cell's decision at the close (a pass the
+with the pure pipeline.judge.lotclose, records each cell's decision at the close (a pass the
 lot's screens turn into a hold is recorded beside the pass, with its letter), and
 writes the report PDF and the one-row-per-cell CSV:
 
@@ -23,10 +23,10 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.errors import FormgateError
+from pipeline.judge.lotclose import ClosedCell, ClosedLot, close_lot
 from pipeline.judge.metricdefs import RULE_METRICS
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow
-from pipeline.lotclose import ClosedCell, ClosedLot, close_lot
 from pipeline.mail.letters import Letter, alert_letter, digest_letter
 from pipeline.names import safe_name
 from pipeline.read.readings import Reading, ReadingFile

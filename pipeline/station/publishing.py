@@ -14,11 +14,11 @@ import json
 import logging
 from pathlib import Path
 
-from pipeline.inputnames import fit
 from pipeline.judge.evaluate import decision_line
 from pipeline.ledger.rows import CheckRowData, InputRow, ResultRow
 from pipeline.mail.letters import Letter, alert_letter, failure_letter, hold_letter
 from pipeline.model import WHOLE_PROGRAM, CellResult, VerdictKind
+from pipeline.names import fit
 from pipeline.read.readings import ReadingFile
 from pipeline.runner import result_paths
 from pipeline.station import faults

@@ -18,9 +18,9 @@ import os
 import tempfile
 from pathlib import Path
 
-from pipeline.inputnames import fit, to_text
 from pipeline.ledger.ledger import Ledger
 from pipeline.mail.letters import Letter, alert_letter
+from pipeline.names import fit, to_text
 from pipeline.station.settings import Settings
 from pipeline.writing import move_into, require_folder, write_atomic
 

@@ -36,11 +36,11 @@ from functools import partial
 from pathlib import Path
 
 from pipeline.errors import FormgateError
-from pipeline.inputnames import to_text
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import InputRow
 from pipeline.mail.letters import Letter
 from pipeline.mail.smtp import SmtpSettings
+from pipeline.names import to_text
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.claiming import Claims
 from pipeline.station.handoff import Seen

@@ -11,8 +11,8 @@ import json
 import os
 from pathlib import Path
 
-from pipeline.inputnames import from_text, to_text
 from pipeline.ledger.ledger import Ledger
+from pipeline.names import from_text, to_text
 from pipeline.station.handoff import is_temporary
 from pipeline.station.settings import Settings
 from pipeline.station.waiting import overdue_entries

@@ -31,7 +31,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import BinaryIO
 
-from pipeline.inputnames import fit, from_text
+from pipeline.names import fit, from_text
 from pipeline.station.watcher import list_entries
 from pipeline.writing import fsync_dir, move_into, require_folder
 

@@ -14,7 +14,7 @@ from __future__ import annotations
 from collections.abc import Collection, Mapping
 from dataclasses import dataclass
 
-from pipeline.inputnames import to_text
+from pipeline.names import to_text
 from pipeline.station.handoff import is_temporary
 from pipeline.station.settings import InboxSettings
 from pipeline.station.watcher import Listing
@@ -24,7 +24,7 @@ from pipeline.station.watcher import Listing
 class Overdue:
     """An inbox entry unchanged for ``age_s`` seconds and not taken; ``why`` says what it waits for."""
 
-    name: str  # as text (inputnames.to_text)
+    name: str  # as text (names.to_text)
     age_s: float
     why: str
 

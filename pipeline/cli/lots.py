@@ -15,9 +15,8 @@ import json
 from pathlib import Path
 from typing import Any
 
+from pipeline.cli.exits import EXIT_OK
 from pipeline.errors import FormgateError
-
-EXIT_OK = 0
 
 
 def _open(folder: str) -> tuple[Any, Any]:
