@@ -12,6 +12,7 @@ import doctest
 import io
 import math
 import re
+import types
 from collections.abc import Sequence
 from typing import Any
 
@@ -22,12 +23,12 @@ from pypdf import PdfReader
 
 from pipeline.judge.lotstats import GradeClass, ScreenSpec, WindowSpec, grade_of
 from pipeline.model import Hazard
-from pipeline.report import hazards, lotreport
+from pipeline.report import hazards, lothistogram, lotreport, lotwords
+from pipeline.report.lothistogram import histogram_edges
 from pipeline.report.lotreport import (
     LotCell,
     LotReportInput,
     RuleSetRef,
-    histogram_edges,
     lot_export_csv,
     lot_report_context,
     render_lot_report_html,
@@ -304,8 +305,9 @@ def test_export_guards_formula_like_text_and_keeps_extra_metrics_sorted() -> Non
     assert by_id["'=1+1"]["alpha_metric"] == ""
 
 
-def test_the_doctests_hold() -> None:
-    failures, tried = doctest.testmod(lotreport)
+@pytest.mark.parametrize("module", [lotreport, lotwords, lothistogram], ids=lambda m: m.__name__)
+def test_the_doctests_hold(module: types.ModuleType) -> None:
+    failures, tried = doctest.testmod(module)
     assert tried > 0 and failures == 0
 
 

@@ -6,9 +6,14 @@ only times shown are the ones the input carries). The statistics come from
 through the same renderer as the certificates (pdf.py), so it gets the same shipped font,
 the same refusal of any URL outside templates/ and the same byte-for-byte repeatability.
 
+This module holds the report's input, the page's context (identity, counts, caution,
+failed cells, screens, grades), the two renderings and the export. The histograms are left
+to :mod:`pipeline.report.lothistogram`, the wording of numbers, windows, yield and Cpk to
+:mod:`pipeline.report.lotwords`.
+
 Every identifier from data (lot, cell ids, reasons, metric names) reaches the page through
-Jinja2's autoescaping; the histograms are SVG built here from numbers, with every text in
-them escaped before it is marked safe.
+Jinja2's autoescaping; the histograms are SVG built from numbers, with every text in them
+escaped before it is marked safe.
 
 A lot can hold 10,000 cells: the tables of failed cells and of outliers are capped
 (:data:`MAX_FAILED_ROWS`, :data:`MAX_OUTLIER_ROWS`) and say how many more the export holds,
@@ -20,7 +25,6 @@ from __future__ import annotations
 import csv
 import datetime
 import functools
-import html
 import io
 import math
 from collections import Counter
@@ -29,11 +33,8 @@ from dataclasses import dataclass
 from typing import Final
 
 import jinja2
-import numpy as np
-from markupsafe import Markup
 
 from pipeline.judge.lotscreens import Outlier, RobustLimits
-from pipeline.judge.lotspread import Capability
 from pipeline.judge.lotstats import (
     CellRow,
     GradeClass,
@@ -42,47 +43,20 @@ from pipeline.judge.lotstats import (
     WindowSpec,
     lot_statistics,
 )
-from pipeline.model import FloatArray, Hazard, frozen_mapping
+from pipeline.model import Hazard, frozen_mapping
 from pipeline.report import hazards, pdf
-from pipeline.report.certificate import (
-    DASH,
-    HAZARD_WORDS,
-    TEMPLATES_DIR,
-    format_time,
-    significant,
-)
-from pipeline.report.svgplot import (
-    CURVE,
-    FONT_MM,
-    Frame,
-    axes,
-    frame_for,
-    n,
-    no_data,
-    open_svg,
-    span,
-    text,
-)
+from pipeline.report.certificate import DASH, HAZARD_WORDS, TEMPLATES_DIR, format_time
+from pipeline.report.lothistogram import metric_histograms
+from pipeline.report.lotwords import CPK_MINIMUM, capability_row, number_text, yield_text
 
 TEMPLATE_NAME: Final = "lot.html.j2"
 MAX_FAILED_ROWS: Final = 200  # rows of the failed/held table before "and N more: see the export"
 MAX_OUTLIER_ROWS: Final = 50  # outlier rows per screen, likewise
-# Histogram bins: the Freedman-Diaconis rule, kept within these bounds so that a tiny lot
-# still shows a shape and a huge one does not turn into a comb.
-MIN_BINS: Final = 5
-MAX_BINS: Final = 40
-# Cpk below 1.33 is the usual minimum for an established process (common practice).
-CPK_MINIMUM: Final = 1.33
-PLOT_WIDTH_MM: Final = 86.0
-PLOT_HEIGHT_MM: Final = 55.0
 OPEN_LOT_WORDS: Final = "lot open: figures may change"
 # Verdicts that keep a cell from release, in the order the report lists them.
 ATTENTION: Final = ("fail", "hold", "error")
 VERDICT_LABELS: Final = {"fail": "Failed", "hold": "Held for review", "error": "Not judged (error)",
                          "pass": "Passed"}
-BAR = "#9fb6cc"  # no outline: on a lot of 10,000 cells a bar can be narrower than one
-WINDOW_LINE = "#8b2e2a"
-LIMIT_LINE = CURVE
 # A CSV field starting with one of these can be run as a formula by a spreadsheet
 # (OWASP, "CSV Injection"): such a field from data is written with a leading single quote.
 FORMULA_STARTS: Final = ("=", "+", "-", "@", "\t", "\r")
@@ -160,156 +134,6 @@ class LotReportInput:
             _aware(self.closed_at, "closed_at")
 
 
-# -- numbers in words -------------------------------------------------------------------------
-
-
-def _finite(value: float | None) -> bool:
-    return value is not None and math.isfinite(value)
-
-
-def _number(value: float | None, unit: str = "", digits: int = 4) -> str:
-    """``value`` to ``digits`` significant digits with its unit; an em dash when missing."""
-    if value is None or not math.isfinite(value):
-        return DASH
-    shown = significant(value, digits)
-    return f"{shown} {unit}" if unit else shown
-
-
-def _window_text(low: float | None, high: float | None, unit: str) -> str:
-    """A window as "low to high" (en dash), "≥ low", "≤ high" (with unit) or "any value"."""
-    tail = f" {unit}" if unit else ""
-    if low is not None and high is not None:
-        return f"{significant(low, 4)} \N{EN DASH} {significant(high, 4)}{tail}"
-    if low is not None:
-        return f"\N{GREATER-THAN OR EQUAL TO} {significant(low, 4)}{tail}"
-    if high is not None:
-        return f"\N{LESS-THAN OR EQUAL TO} {significant(high, 4)}{tail}"
-    return "any value"
-
-
-def yield_text(passed: int, total: int) -> str:
-    """The yield as a percentage to one decimal, e.g. "91.7 %"; an em dash for an empty lot.
-
-    >>> yield_text(55, 60), yield_text(0, 0)
-    ('91.7 %', '—')
-    """
-    return f"{100.0 * passed / total:.1f} %" if total else DASH
-
-
-def cpk_text(capability: Capability) -> tuple[str, str]:
-    """Cpk to two decimals and a note: "below 1.33", or why no Cpk could be worked out.
-
-    >>> from pipeline.judge.lotspread import capability
-    >>> cpk_text(capability([9.0, 10.0, 11.0], 7.0, 16.0))
-    ('1.00', 'below 1.33')
-    >>> cpk_text(capability([5.0], 0.0, 10.0))
-    ('—', 'fewer than 2 values')
-    """
-    if capability.cpk is None:
-        return DASH, capability.why
-    shown = f"{capability.cpk:.2f}".replace("-", "\N{MINUS SIGN}")
-    return shown, "below 1.33" if capability.cpk < CPK_MINIMUM else ""
-
-
-# -- histograms ---------------------------------------------------------------------------------
-
-
-def histogram_edges(values: FloatArray) -> FloatArray:
-    """Bin edges for the measured ``values``: Freedman-Diaconis, clipped to 5..40 bins.
-
-    The Freedman-Diaconis rule (Freedman & Diaconis 1981, "On the histogram as a density
-    estimator: L2 theory") sets the bin width to 2·IQR·n^(-1/3), robust to the few wild
-    values a lot of cells always has. numpy implements it; a count outside
-    [MIN_BINS, MAX_BINS] (one bin when the IQR is zero, thousands when a few outliers
-    stretch the range) is replaced by the nearest bound, with equal-width bins.
-
-    >>> len(histogram_edges(np.arange(100.0))) - 1
-    5
-    """
-    x = values[np.isfinite(values)]
-    if x.size == 0:
-        return np.linspace(0.0, 1.0, MIN_BINS + 1)
-    edges: FloatArray = np.histogram_bin_edges(x, bins="fd")
-    bins = len(edges) - 1
-    if MIN_BINS <= bins <= MAX_BINS:
-        return edges
-    clipped: FloatArray = np.histogram_bin_edges(x, bins=min(max(bins, MIN_BINS), MAX_BINS))
-    return clipped
-
-
-@dataclass(frozen=True, slots=True)
-class Marks:
-    """The vertical lines a histogram draws: the window (solid) and the lot limits (dashed)."""
-
-    window: tuple[float | None, float | None]
-    limits: tuple[float | None, float | None]
-
-
-def _vline(frame: Frame, x: float, colour: str, dashed: bool) -> str:
-    dash = ' stroke-dasharray="1.4 0.9"' if dashed else ""
-    return (
-        f'<path class="{"limit" if dashed else "window"}" d="M{n(frame.px(x))} {n(frame.top)}'
-        f'V{n(frame.top + frame.height)}" stroke="{colour}" stroke-width="0.4"{dash}/>'
-    )
-
-
-def _line_label(frame: Frame, x: float, word: str, colour: str, right_side: bool) -> list[str]:
-    """``word`` written upwards along the line at ``x``, from the top, on one side of it.
-
-    A white outline under the text keeps it readable where it crosses a bar.
-    """
-    xp = frame.px(x)
-    lx = xp + 0.5 + FONT_MM * 0.8 if right_side else xp - 0.6
-    ly = frame.top + 0.8
-    rotate = f' transform="rotate(-90 {n(lx)} {n(ly)})"'
-    return [
-        text(lx, ly, word, "end", extra=f' fill="#ffffff" stroke="#ffffff" stroke-width="0.6"{rotate}'),
-        text(lx, ly, word, "end", extra=f' fill="{colour}"{rotate}'),
-    ]
-
-
-def histogram_svg(
-    values: FloatArray, edges: FloatArray, marks: Marks, *, x_label: str,
-    width_mm: float = PLOT_WIDTH_MM, height_mm: float = PLOT_HEIGHT_MM,
-) -> str:
-    """Bars of the cells per bin, the window as solid lines, the lot limits as dashed ones.
-
-    Each line is labelled "window" or "lot limits" along its top, on the side facing the
-    middle of the window, so the meaning never rests on colour or dash alone. ``x_label``
-    is escaped here.
-    """
-    x = values[np.isfinite(values)]
-    counts = np.histogram(x, bins=edges)[0] if x.size else np.zeros(len(edges) - 1, dtype=np.int64)
-    lines = [v for v in (*marks.window, *marks.limits) if _finite(v)]
-    x_range = span(np.concatenate((edges, np.asarray(lines, dtype=np.float64))), (0.0, 1.0), 0.03)
-    top = max(8.0, float(counts.max(initial=0)) * 1.5)  # headroom for the line labels
-    frame = frame_for(width_mm, height_mm, x_range, (0.0, top))
-    parts = [open_svg(width_mm, height_mm, html.escape(f"histogram of {x_label}", quote=True))]
-    parts.extend(axes(frame, html.escape(x_label), "Cells"))
-    base = frame.py(0.0)
-    bars = []
-    for count, left, right in zip(counts.tolist(), edges[:-1].tolist(), edges[1:].tolist(), strict=True):
-        x0, x1, y = frame.px(left), frame.px(right), frame.py(float(count))
-        bars.append(
-            f'<rect class="bar" x="{n(x0)}" y="{n(y)}" width="{n(x1 - x0)}" height="{n(base - y)}" '
-            f'fill="{BAR}"/>'
-        )
-    parts.extend(bars)
-    if not x.size:
-        parts.append(no_data(frame, "no cell has a value"))
-    for pair, colour, dashed, word in (
-        (marks.window, WINDOW_LINE, False, "window"),
-        (marks.limits, LIMIT_LINE, True, "lot limits"),
-    ):
-        low, high = pair
-        for bound, right_side in ((low, True), (high, False)):
-            if bound is not None and math.isfinite(bound):
-                parts.append(_vline(frame, bound, colour, dashed))
-                parts.extend(_line_label(frame, bound, word, colour, right_side))
-    parts.append("</svg>")
-    return "\n".join(parts)
-
-
 # -- the report's context ----------------------------------------------------------------------
 
 
@@ -379,8 +203,8 @@ def _attention(cells: Sequence[LotCell]) -> tuple[list[dict[str, str]], int]:
 def _screen(limits: RobustLimits, found: Sequence[Outlier], unit: str) -> dict[str, object]:
     sides = {"both": "both sides", "low": "low side", "high": "high side"}[limits.sides]
     rows = [
-        {"cell_id": o.cell_id, "value": _number(o.value, unit), "side": o.side,
-         "limit": _number(o.low if o.side == "low" else o.high, unit)}
+        {"cell_id": o.cell_id, "value": number_text(o.value, unit), "side": o.side,
+         "limit": number_text(o.low if o.side == "low" else o.high, unit)}
         for o in found[:MAX_OUTLIER_ROWS]
     ]
     return {
@@ -388,70 +212,15 @@ def _screen(limits: RobustLimits, found: Sequence[Outlier], unit: str) -> dict[s
         "k": f"{limits.k:g}",
         "sides": sides,
         "n": str(limits.n),
-        "median": _number(limits.median, unit),
-        "robust_sd": _number(limits.robust_sd, unit, 3),
-        "low": _number(limits.low, unit) if limits.low is not None else "open",
-        "high": _number(limits.high, unit) if limits.high is not None else "open",
+        "median": number_text(limits.median, unit),
+        "robust_sd": number_text(limits.robust_sd, unit, 3),
+        "low": number_text(limits.low, unit) if limits.low is not None else "open",
+        "high": number_text(limits.high, unit) if limits.high is not None else "open",
         "applied": "applied" if limits.applied else f"not applied: {limits.why}",
         "outliers": rows,
         "found": len(found),
         "more": max(0, len(found) - MAX_OUTLIER_ROWS),
     }
-
-
-def _capability_row(check: WindowSpec, cap: Capability, unit: str) -> dict[str, str]:
-    cpk, note = cpk_text(cap)
-    return {
-        "check": check.key,
-        "metric": check.metric,
-        "severity": check.severity,
-        "window": _window_text(check.low, check.high, unit),
-        "n": str(cap.n),
-        "mean": _number(cap.mean, unit),
-        "sd": _number(cap.sd, unit, 3),
-        "cpk": cpk,
-        "note": note,
-        "below": "below" if note == "below 1.33" else "",
-    }
-
-
-def _axis_label(metric: str, unit: str) -> str:
-    return f"{metric} ({unit})" if unit else metric
-
-
-def _histograms(
-    data: LotReportInput, stats: LotStatistics
-) -> list[dict[str, object]]:
-    """One histogram per checked metric, in the checks' order, over every cell with a value."""
-    screens = {limits.metric: limits for limits in stats.limits}
-    shown = []
-    for metric in dict.fromkeys(c.metric for c in data.checks):
-        x = np.array([c.values.get(metric) for c in data.cells], dtype=np.float64)
-        x = x[np.isfinite(x)]
-        edges = histogram_edges(x)
-        on = [c for c in data.checks if c.metric == metric]
-        lows = [c.low for c in on if c.low is not None]
-        highs = [c.high for c in on if c.high is not None]
-        window = (max(lows) if lows else None, min(highs) if highs else None)
-        limits = screens.get(metric)
-        lot_limits: tuple[float | None, float | None] = (None, None)
-        if limits is not None and limits.applied:
-            # a side the screen left to the window draws no second line on the window's own
-            lot_limits = (limits.low if limits.low != window[0] else None,
-                          limits.high if limits.high != window[1] else None)
-        unit = data.units.get(metric, "")
-        svg = histogram_svg(x, edges, Marks(window, lot_limits), x_label=_axis_label(metric, unit))
-        words = [f"{x.size} cell{'s' if x.size != 1 else ''} with a value", f"{len(edges) - 1} bins"]
-        lines = "solid lines: the window" if any(_finite(v) for v in window) else "no window"
-        if any(_finite(v) for v in lot_limits):
-            lines += "; dashed lines: the lot limits (robust screen)"
-        shown.append({
-            "metric": metric,
-            "bins": len(edges) - 1,
-            "svg": Markup(svg),  # numbers and escaped text only: see histogram_svg
-            "caption": f"{metric}: {', '.join(words)}; {lines}.",
-        })
-    return shown
 
 
 def _grades(data: LotReportInput, stats: LotStatistics) -> dict[str, object]:
@@ -516,11 +285,13 @@ def lot_report_context(data: LotReportInput) -> dict[str, object]:
             for limits in stats.limits
         ],
         "capabilities": [
-            _capability_row(c, stats.capabilities[c.key], data.units.get(c.metric, ""))
+            capability_row(c, stats.capabilities[c.key], data.units.get(c.metric, ""))
             for c in data.checks
         ],
         "cpk_minimum": f"{CPK_MINIMUM:.2f}",
-        "histograms": _histograms(data, stats),
+        "histograms": metric_histograms(
+            data.checks, [c.values for c in data.cells], stats.limits, data.units
+        ),
         "max_failed": MAX_FAILED_ROWS,
         "max_outliers": MAX_OUTLIER_ROWS,
     }
@@ -613,11 +384,8 @@ __all__ = [
     "RuleSetRef",
     "export_metrics",
     "guard_formula",
-    "histogram_edges",
-    "histogram_svg",
     "lot_export_csv",
     "lot_report_context",
     "render_lot_report_html",
     "render_lot_report_pdf",
-    "yield_text",
 ]

@@ -1,0 +1,84 @@
+"""The lot report's figures in words: numbers with their units, windows, yield, Cpk and its note.
+
+Pure formatting of what :mod:`pipeline.judge.lotspread` and :mod:`pipeline.judge.lotstats`
+work out: a value not measured is an em dash, a window reads as its bounds with the unit
+(or "any value"), a Cpk below the usual minimum says so, and one check's capability becomes
+one row of the report's table. Which of these the page shows, and where, is left to
+:mod:`pipeline.report.lotreport`.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Final
+
+from pipeline.judge.lotspread import Capability
+from pipeline.judge.lotstats import WindowSpec
+from pipeline.report.certificate import DASH, significant
+
+# Cpk below 1.33 is the usual minimum for an established process (common practice).
+CPK_MINIMUM: Final = 1.33
+
+
+def number_text(value: float | None, unit: str = "", digits: int = 4) -> str:
+    """``value`` to ``digits`` significant digits with its unit; an em dash when missing."""
+    if value is None or not math.isfinite(value):
+        return DASH
+    shown = significant(value, digits)
+    return f"{shown} {unit}" if unit else shown
+
+
+def window_text(low: float | None, high: float | None, unit: str) -> str:
+    """A window as "low to high" (en dash), "≥ low", "≤ high" (with unit) or "any value"."""
+    tail = f" {unit}" if unit else ""
+    if low is not None and high is not None:
+        return f"{significant(low, 4)} \N{EN DASH} {significant(high, 4)}{tail}"
+    if low is not None:
+        return f"\N{GREATER-THAN OR EQUAL TO} {significant(low, 4)}{tail}"
+    if high is not None:
+        return f"\N{LESS-THAN OR EQUAL TO} {significant(high, 4)}{tail}"
+    return "any value"
+
+
+def yield_text(passed: int, total: int) -> str:
+    """The yield as a percentage to one decimal, e.g. "91.7 %"; an em dash for an empty lot.
+
+    >>> yield_text(55, 60), yield_text(0, 0)
+    ('91.7 %', '—')
+    """
+    return f"{100.0 * passed / total:.1f} %" if total else DASH
+
+
+def cpk_text(capability: Capability) -> tuple[str, str]:
+    """Cpk to two decimals and a note: "below 1.33", or why no Cpk could be worked out.
+
+    >>> from pipeline.judge.lotspread import capability
+    >>> cpk_text(capability([9.0, 10.0, 11.0], 7.0, 16.0))
+    ('1.00', 'below 1.33')
+    >>> cpk_text(capability([5.0], 0.0, 10.0))
+    ('—', 'fewer than 2 values')
+    """
+    if capability.cpk is None:
+        return DASH, capability.why
+    shown = f"{capability.cpk:.2f}".replace("-", "\N{MINUS SIGN}")
+    return shown, "below 1.33" if capability.cpk < CPK_MINIMUM else ""
+
+
+def capability_row(check: WindowSpec, cap: Capability, unit: str) -> dict[str, str]:
+    """One check's row of the capability table: its window, n, mean, sd, Cpk and note, in words."""
+    cpk, note = cpk_text(cap)
+    return {
+        "check": check.key,
+        "metric": check.metric,
+        "severity": check.severity,
+        "window": window_text(check.low, check.high, unit),
+        "n": str(cap.n),
+        "mean": number_text(cap.mean, unit),
+        "sd": number_text(cap.sd, unit, 3),
+        "cpk": cpk,
+        "note": note,
+        "below": "below" if note == "below 1.33" else "",
+    }
+
+
+__all__ = ["CPK_MINIMUM", "capability_row", "cpk_text", "number_text", "window_text", "yield_text"]
