@@ -22,8 +22,9 @@ import sys
 
 import numpy as np
 
+from pipeline.demo import cycletext, synth
 from pipeline.demo import lots as demo
-from pipeline.demo import synth
+from pipeline.demo.channel import NOISELESS, Channel
 from pipeline.model import CellResult
 from pipeline.rulebook.book import load_rules_dir
 from pipeline.runner import judge
@@ -54,13 +55,13 @@ def expected(cell: demo.DemoCell) -> str:
 def record(cell: demo.DemoCell, interval_s: float) -> synth.SimulatedRecord:
     rng = demo._seed_for(cell, 2026)
     recipe = dataclasses.replace(
-        demo.demo_recipe(cell, rng), channel=synth.NOISELESS, sample_interval_s=interval_s
+        demo.demo_recipe(cell, rng), channel=NOISELESS, sample_interval_s=interval_s
     )
     return synth.simulate_formation(recipe, rng)
 
 
 def judged(rec: synth.SimulatedRecord, cell: demo.DemoCell, steps: bool, rulebook: object) -> CellResult:
-    text = synth.to_cycle_file(rec, demo.demo_metadata(cell), include_step_columns=steps)
+    text = cycletext.to_cycle_file(rec, demo.demo_metadata(cell), include_step_columns=steps)
     return judge(text.encode(), f"{cell.cell_id}.csv", rulebook, analysed_at=ANALYSED_AT)  # type: ignore[arg-type]
 
 
@@ -85,7 +86,7 @@ def main(argv: list[str] | None = None) -> int:
                 wrong = 0
                 for n, cell in enumerate(cells):
                     truth = truths[cell.cell_id]
-                    channel = synth.Channel(2.5 * truth.recipe.nominal_capacity_ah, noise, offset)
+                    channel = Channel(2.5 * truth.recipe.nominal_capacity_ah, noise, offset)
                     noisy = synth.with_channel(truth, channel, np.random.default_rng([7, n]))
                     got = judged(noisy, cell, steps, rulebook)
                     clean = judged(truth, cell, steps, rulebook)

@@ -111,14 +111,14 @@ def make_records(mode: Mode) -> tuple[list[Record], list[Record]]:
 
     import numpy as np
 
+    from pipeline.demo import cellmodel, cycletext, synth
     from pipeline.demo import lots as demo
-    from pipeline.demo import synth
 
     # A shorter formation program than the demo's, so that 1 Hz sampling gives about
-    # 72,000 rows; every rate stays inside the ranges of synth.FormationProgram's notes.
+    # 72,000 rows; every rate stays inside the ranges of cellmodel.FormationProgram's notes.
     # The final rest is the 3 h the shipped rule sets' [program] asks for; the rests
     # between steps are shorter instead.
-    program = synth.FormationProgram(
+    program = cellmodel.FormationProgram(
         pre_charge_rate_c=0.1,
         charge_rate_c=0.3,
         rest_after_charge_s=600.0,
@@ -137,7 +137,7 @@ def make_records(mode: Mode) -> tuple[list[Record], list[Record]]:
         rng = np.random.default_rng([2026, k])
         recipe = dataclasses.replace(demo.demo_recipe(cell, rng), sample_interval_s=1.0, program=program)
         record = synth.simulate_formation(recipe, rng)
-        body = synth.to_cycle_file(record, {}).encode("utf-8")
+        body = cycletext.to_cycle_file(record, {}).encode("utf-8")
         meta = demo.demo_metadata(cell)
         meta["station"] = "bench-line-1"
         rec = Record(body, len(record), float(record.time_s[-1]) / 3600.0, cell.defect, meta)

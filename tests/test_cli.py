@@ -14,8 +14,8 @@ import pytest
 from pipeline import __version__
 from pipeline.cli.exits import EXIT_BUG
 from pipeline.cli.main import main, report_bug
+from pipeline.demo.cycletext import to_cycle_file
 from pipeline.demo.lots import DEMO_CELLS, demo_file_bytes, demo_metadata, demo_record
-from pipeline.demo.synth import to_cycle_file
 from pipeline.names import safe_name
 from pipeline.report.result import schema_text
 from tests.conftest import REPO, RULES_DIR

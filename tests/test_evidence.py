@@ -9,8 +9,8 @@ import xml.etree.ElementTree as ET
 import numpy as np
 import pytest
 
+from pipeline.demo import cycletext
 from pipeline.demo import lots as demo
-from pipeline.demo import synth
 from pipeline.model import Curve, CycleMetrics, RecordView, RestView, StepKind, StepSpan, Window
 from pipeline.report import evidence
 from pipeline.report.certificate import build_context
@@ -94,7 +94,7 @@ def judged() -> dict[str, object]:
     out = {}
     for cell in demo.DEMO_CELLS:
         if cell.defect in ("", "internal_short", "over_temperature", "low_capacity") and cell.cell_id not in out:
-            text = synth.to_cycle_file(demo.demo_record(cell), demo.demo_metadata(cell))
+            text = cycletext.to_cycle_file(demo.demo_record(cell), demo.demo_metadata(cell))
             out[cell.defect or "normal"] = judge(text.encode(), f"{cell.cell_id}.csv", rulebook, analysed_at=when)
     return out
 

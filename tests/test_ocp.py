@@ -14,7 +14,7 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from pipeline.demo import ocp, synth
+from pipeline.demo import cellmodel, ocp
 
 MV = 1e-3
 
@@ -298,7 +298,7 @@ def test_nvpf_hard_carbon_cell_is_monotone_and_spans_the_cut_offs() -> None:
     soc = np.linspace(0.0, 1.0, 20001)
     v = ocp.nvpf_hard_carbon_cell(soc)
     assert np.all(np.diff(v) > 0)
-    chem = synth.CHEMISTRIES["nvpf_hard_carbon"]
+    chem = cellmodel.CHEMISTRIES["nvpf_hard_carbon"]
     # Empty below the 2.5 V discharge cut-off, full within 0.1 V below the 4.2 V charge limit.
     assert float(v[0]) < chem.min_v < float(v[-1])
     assert chem.max_v - 0.1 < float(v[-1]) < chem.max_v

@@ -25,7 +25,8 @@ import functools
 import numpy as np
 import pytest
 
-from pipeline.demo import synth
+from pipeline.demo import cycletext
+from pipeline.demo.channel import Channel, add_channel_errors
 from pipeline.judge.evaluate import summarise
 from pipeline.model import Hazard, VerdictKind
 from pipeline.rulebook.book import RuleBook, load_rule_set
@@ -101,8 +102,8 @@ def interval_of(name: str) -> float:
 
 def read_through(name: str, noise: float, offset: float, seed: int) -> ReferenceRecord:
     true = resampled(name, interval_of(name))
-    channel = synth.Channel(2.5 * float(true.truth["nominal_capacity_Ah"]), noise, offset)
-    volts, amps, temps = synth.add_channel_errors(
+    channel = Channel(2.5 * float(true.truth["nominal_capacity_Ah"]), noise, offset)
+    volts, amps, temps = add_channel_errors(
         true.voltage_v, true.current_a, true.temperature_c, true.step, channel,
         np.random.default_rng([seed, REFERENCE_CELLS.index(name)]),
     )
@@ -110,7 +111,7 @@ def read_through(name: str, noise: float, offset: float, seed: int) -> Reference
 
 
 def judged(record: ReferenceRecord, steps: bool):  # -> CellResult
-    text = synth.to_cycle_file(record, record.metadata, include_step_columns=steps)
+    text = cycletext.to_cycle_file(record, record.metadata, include_step_columns=steps)
     return judge(text.encode("utf-8"), f"{record.name}.csv", rulebook(), analysed_at=ANALYSED_AT)
 
 

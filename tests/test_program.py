@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import functools
 
-from pipeline.demo import lots, synth
+from pipeline.demo import cycletext, lots
 from pipeline.judge.program import INCOMPLETE, MISMATCH, choose_grading
 from pipeline.judge.segmentation import split_steps
 from pipeline.model import Program, Segmentation, Trace
@@ -14,7 +14,7 @@ CELL = lots.DEMO_CELLS[0]  # program steps: 7 the formation discharge, 12 the gr
 
 @functools.cache
 def _trace() -> Trace:
-    return synth.to_trace(lots.demo_record(CELL), lots.demo_metadata(CELL), "c.csv")
+    return cycletext.to_trace(lots.demo_record(CELL), lots.demo_metadata(CELL), "c.csv")
 
 
 def _cut(rows: int) -> Trace:

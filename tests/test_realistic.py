@@ -22,8 +22,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from pipeline.demo import cycletext, synth
 from pipeline.demo import lots as demo
-from pipeline.demo import synth
+from pipeline.demo.channel import NOISELESS, Channel
 from pipeline.errors import FormgateError
 from pipeline.judge.evaluate import summarise
 from pipeline.model import CellResult, Hazard, VerdictKind
@@ -44,14 +45,14 @@ EXPECTED_HAZARDS = {
 }
 
 
-def typical_channel(nominal_ah: float) -> synth.Channel:
+def typical_channel(nominal_ah: float) -> Channel:
     """A channel of 2.5 C range: 0.05 % of range noise, 0.01 % offset at rest, 1 mV."""
-    return synth.Channel(2.5 * nominal_ah, 5e-4, 1e-4, 1e-3, 0.05, 0.3, 0.005)
+    return Channel(2.5 * nominal_ah, 5e-4, 1e-4, 1e-3, 0.05, 0.3, 0.005)
 
 
-def noisy_channel(nominal_ah: float) -> synth.Channel:
+def noisy_channel(nominal_ah: float) -> Channel:
     """Current noise doubled (0.1 % of range) and a 0.02 %-of-range offset at rest."""
-    return synth.Channel(2.5 * nominal_ah, 1e-3, 2e-4, 1e-3, 0.05, 0.3, 0.005)
+    return Channel(2.5 * nominal_ah, 1e-3, 2e-4, 1e-3, 0.05, 0.3, 0.005)
 
 
 CHANNELS = {"typical": typical_channel, "noisy": noisy_channel}
@@ -75,7 +76,7 @@ def true_record(cell_id: str, interval_s: float) -> synth.SimulatedRecord:
     cell = BY_ID[cell_id]
     rng = demo._seed_for(cell, 2026)
     recipe = dataclasses.replace(
-        demo.demo_recipe(cell, rng), channel=synth.NOISELESS, sample_interval_s=interval_s
+        demo.demo_recipe(cell, rng), channel=NOISELESS, sample_interval_s=interval_s
     )
     return synth.simulate_formation(recipe, rng)
 
@@ -93,7 +94,7 @@ def read_through(
 def judged(
     record: synth.SimulatedRecord, cell: demo.DemoCell, *, steps: bool = True, lines: int | None = None
 ) -> CellResult:
-    text = synth.to_cycle_file(record, demo.demo_metadata(cell), include_step_columns=steps)
+    text = cycletext.to_cycle_file(record, demo.demo_metadata(cell), include_step_columns=steps)
     return judged_text(text, cell, lines=lines)
 
 
@@ -108,7 +109,7 @@ def typical_text(cell_id: str, steps: bool) -> str:
     """The cycle file of ``read_through(cell, "typical")``, written once for every test that reads it."""
     cell = BY_ID[cell_id]
     record = read_through(cell, "typical", steps=steps)
-    return synth.to_cycle_file(record, demo.demo_metadata(cell), include_step_columns=steps)
+    return cycletext.to_cycle_file(record, demo.demo_metadata(cell), include_step_columns=steps)
 
 
 @functools.cache
@@ -297,7 +298,7 @@ def test_current_noise_offset_spikes_or_a_missing_step_column_never_change_a_ver
     DCIR by less than 5 %, the rest drift by less than 0.3 mV/h."""
     clean = clean_result(cell.cell_id, True)
     cell_nominal = read_through(cell, None).recipe.nominal_capacity_ah
-    channel = synth.Channel(
+    channel = Channel(
         2.5 * cell_nominal, noise, offset, 0.0, 0.0, 0.3 if spikes else 0.0, 0.005 if spikes else 0.0
     )
     record = synth.with_channel(read_through(cell, None), channel, np.random.default_rng(seed))

@@ -14,8 +14,8 @@ from pathlib import Path
 
 import pytest
 
+from pipeline.demo import cycletext, synth
 from pipeline.demo import lots as demo
-from pipeline.demo import synth
 from pipeline.judge.record_end import HEAD_BYTES, TAIL_BYTES, head_and_tail, looks_cut
 from pipeline.ledger.ledger import Ledger
 from pipeline.rulebook.book import load_rules_dir
@@ -32,7 +32,7 @@ def _text(interval_s: float = 10.0) -> str:
     """The demo cell's file at ``interval_s``, simulated once per interval (a str: nothing can alter it)."""
     rng = demo._seed_for(CELL, 2026)
     recipe = dataclasses.replace(demo.demo_recipe(CELL, rng), sample_interval_s=interval_s)
-    return synth.to_cycle_file(synth.simulate_formation(recipe, rng), demo.demo_metadata(CELL))
+    return cycletext.to_cycle_file(synth.simulate_formation(recipe, rng), demo.demo_metadata(CELL))
 
 
 def _cut(text: str, step: int, share: float) -> bytes:

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from pipeline.demo import ocp
-from pipeline.demo.synth import FormationProgram
+from pipeline.demo.cellmodel import FormationProgram
 from pipeline.read.cyclefile import read_cycle_file
 from tests.reference.lot import (
     FIXTURE_DIR,

@@ -2,7 +2,7 @@
 
 Invented demo cells are simulated once (pipeline.demo.synth), read through noisy cycler
 channels sampled every 1 to 10 s, and written both as one file of the whole program and
-as a formation file and a grading file (synth.split_stages). The two stage files must
+as a formation file and a grading file (pipeline.demo.stages). The two stage files must
 give the whole file's metrics, and the worst of their two verdicts must be the whole
 file's; a defect fails the stage whose record shows it; the program's end is judged per
 stage.
@@ -21,8 +21,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from pipeline.demo import cycletext, synth
 from pipeline.demo import lots as demo
-from pipeline.demo import synth
+from pipeline.demo.channel import NOISELESS, Channel
+from pipeline.demo.stages import StageRecords, split_stages, stage_metadata
 from pipeline.errors import InputError
 from pipeline.judge.evaluate import evaluate
 from pipeline.judge.metricdefs import judged_on
@@ -42,12 +44,12 @@ BY_ID = {c.cell_id: c for c in demo.ALL_DEMO_CELLS}
 ORDER = {VerdictKind.PASS: 0, VerdictKind.HOLD: 1, VerdictKind.FAIL: 2}
 
 
-def channel(nominal_ah: float, noisy: bool) -> synth.Channel:
+def channel(nominal_ah: float, noisy: bool) -> Channel:
     """A channel of 2.5 C range: 0.05 % (noisy: 0.1 %) of range current noise, 0.01 % (0.02 %)
     offset at rest, 1 mV voltage noise, a spike at each step change, as tests/test_realistic.py
     reads the demo lots (typical cycler accuracy classes: from memory, medium)."""
     noise, offset = (1e-3, 2e-4) if noisy else (5e-4, 1e-4)
-    return synth.Channel(2.5 * nominal_ah, noise, offset, 1e-3, 0.05, 0.3, 0.005)
+    return Channel(2.5 * nominal_ah, noise, offset, 1e-3, 0.05, 0.3, 0.005)
 
 
 @functools.cache
@@ -56,7 +58,7 @@ def recorded(cell_id: str, interval_s: float, noisy: bool) -> synth.SimulatedRec
     cell = BY_ID[cell_id]
     rng = demo._seed_for(cell, 2026)
     recipe = dataclasses.replace(
-        demo.demo_recipe(cell, rng), channel=synth.NOISELESS, sample_interval_s=interval_s
+        demo.demo_recipe(cell, rng), channel=NOISELESS, sample_interval_s=interval_s
     )
     clean = synth.simulate_formation(recipe, rng)
     return synth.with_channel(clean, channel(recipe.nominal_capacity_ah, noisy), rng)
@@ -65,8 +67,8 @@ def recorded(cell_id: str, interval_s: float, noisy: bool) -> synth.SimulatedRec
 def file_bytes(record: synth.SimulatedRecord, cell_id: str, stage: str | None = None) -> bytes:
     metadata = demo.demo_metadata(BY_ID[cell_id])
     if stage is not None:
-        metadata = synth.stage_metadata(metadata, stage)
-    return synth.to_cycle_file(record, metadata).encode("utf-8")
+        metadata = stage_metadata(metadata, stage)
+    return cycletext.to_cycle_file(record, metadata).encode("utf-8")
 
 
 def judged(data: bytes, name: str = "c.csv", **kwargs: object) -> CellResult:
@@ -78,13 +80,13 @@ class Judged:
     whole: CellResult
     formation: CellResult
     grading: CellResult
-    split: synth.StageRecords
+    split: StageRecords
 
 
 @functools.cache
 def judged_three_ways(cell_id: str, interval_s: float, noisy: bool) -> Judged:
     record = recorded(cell_id, interval_s, noisy)
-    split = synth.split_stages(record, np.random.default_rng(7))
+    split = split_stages(record, np.random.default_rng(7))
     return Judged(
         judged(file_bytes(record, cell_id)),
         judged(file_bytes(split.formation, cell_id, "formation"), "f.csv"),
@@ -295,7 +297,7 @@ def test_an_unknown_stage_is_a_located_input_error() -> None:
 
 def test_an_import_profile_gives_the_stage_from_the_name_or_as_a_fixed_value() -> None:
     split = judged_three_ways("N02-001", 5.0, True).split
-    data = synth.to_cycle_file(split.grading, demo.demo_metadata(BY_ID["N02-001"])).encode()
+    data = cycletext.to_cycle_file(split.grading, demo.demo_metadata(BY_ID["N02-001"])).encode()
     by_name = load_profile(
         '[file]\nfile_name_pattern = "_(?P<stage>formation|grading)[.]"\n', "stage.toml"
     )
@@ -335,7 +337,7 @@ def test_where_the_split_falls_does_not_change_the_grading_metrics(share: float)
     record = recorded("L01-012", 10.0, True)
     rest = record.step_named(synth.SPLIT_REST_STEP)
     at = rest.start_s + share * (rest.end_s - rest.start_s)
-    split = synth.split_stages(record, np.random.default_rng(3), at_s=at)
+    split = split_stages(record, np.random.default_rng(3), at_s=at)
     got = judged(file_bytes(split.grading, "L01-012", "grading"), "g.csv")
     want = _reference_grading()
     for metric in judged_on(("grading",)):

@@ -19,11 +19,13 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.demo import cellmodel, cycletext, ocp, synth
 from pipeline.demo import lots as demo
-from pipeline.demo import ocp, synth
-from pipeline.demo.synth import CellRecipe, SimulatedRecord
+from pipeline.demo.cellmodel import CellRecipe
+from pipeline.demo.channel import NOISELESS, Channel
+from pipeline.demo.synth import SimulatedRecord
 
-NO_NOISE = {"channel": synth.NOISELESS}
+NO_NOISE = {"channel": NOISELESS}
 
 
 def simulate(seed: int = 7, **changes: object) -> SimulatedRecord:
@@ -84,7 +86,7 @@ def test_constant_current_capacity_equals_current_times_time(
     capacity_ah: float, rate_c: float, dt_s: float
 ) -> None:
     current_a = rate_c * capacity_ah
-    t, _, i = synth.constant_current_curve(
+    t, _, i = cellmodel.constant_current_curve(
         ocp.lfp_graphite_cell, capacity_ah, current_a, 0.01, dt_s, 0.0, None
     )
     assert np.all(np.diff(t) > 0) and t[0] == 0.0
@@ -95,23 +97,23 @@ def test_constant_current_capacity_equals_current_times_time(
 
 def test_constant_current_voltage_is_ocv_minus_ir() -> None:
     cell = ocp.nmc811_graphite_cell
-    t, v, _ = synth.constant_current_curve(cell, 5.0, 1.0, 0.03, 10.0, 0.0, None)
+    t, v, _ = cellmodel.constant_current_curve(cell, 5.0, 1.0, 0.03, 10.0, 0.0, None)
     soc = 1.0 - t / 18000.0
     assert np.allclose(v, ocp.nmc811_graphite_cell(soc) - 0.03, atol=1e-12)
 
 
 def test_constant_current_noise_has_the_requested_rms() -> None:
     rng = np.random.default_rng(3)
-    t, v, _ = synth.constant_current_curve(ocp.lfp_graphite_cell, 20.0, 4.0, 0.0, 1.0, 1e-3, rng)
+    t, v, _ = cellmodel.constant_current_curve(ocp.lfp_graphite_cell, 20.0, 4.0, 0.0, 1.0, 1e-3, rng)
     clean = ocp.lfp_graphite_cell(1.0 - 4.0 * t / 72000.0)
     assert float(np.std(v - clean)) == pytest.approx(1e-3, rel=0.05)
 
 
 def test_constant_current_refuses_nonsense() -> None:
     with pytest.raises(ValueError, match="must be positive"):
-        synth.constant_current_curve(ocp.lfp_graphite_cell, 1.0, -1.0, 0.0, 1.0, 0.0, None)
+        cellmodel.constant_current_curve(ocp.lfp_graphite_cell, 1.0, -1.0, 0.0, 1.0, 0.0, None)
     with pytest.raises(ValueError, match="random generator"):
-        synth.constant_current_curve(ocp.lfp_graphite_cell, 1.0, 1.0, 0.0, 1.0, 1e-3, None)
+        cellmodel.constant_current_curve(ocp.lfp_graphite_cell, 1.0, 1.0, 0.0, 1.0, 1e-3, None)
 
 
 # ------------------------------------------------------------ the formation record
@@ -181,7 +183,7 @@ def test_coulomb_counting_matches_the_true_charge_of_each_step() -> None:
             assert counted == pytest.approx(abs(truth.charge_ah), rel=1e-4, abs=1.5 * missed_ah)
 
 
-@pytest.mark.parametrize("chemistry", sorted(synth.CHEMISTRIES))
+@pytest.mark.parametrize("chemistry", sorted(cellmodel.CHEMISTRIES))
 def test_measured_capacities_come_out_where_the_recipe_says(chemistry: str) -> None:
     recipe = CellRecipe(
         chemistry=chemistry,
@@ -199,9 +201,9 @@ def test_measured_capacities_come_out_where_the_recipe_says(chemistry: str) -> N
     assert discharge_1 / charge_1 == pytest.approx(1 - recipe.first_cycle_loss_fraction, abs=0.01)
 
 
-@pytest.mark.parametrize("chemistry", sorted(synth.CHEMISTRIES))
+@pytest.mark.parametrize("chemistry", sorted(cellmodel.CHEMISTRIES))
 def test_charge_is_cc_then_cv_at_the_limit_and_discharge_ends_at_cut_off(chemistry: str) -> None:
-    chem = synth.CHEMISTRIES[chemistry]
+    chem = cellmodel.CHEMISTRIES[chemistry]
     record = simulate(chemistry=chemistry, **NO_NOISE)
     cc, cv = record.step_named(9), record.step_named(10)
     # CC reaches the limit without a jump, then the cycler holds it.
@@ -257,7 +259,7 @@ METADATA = {"cell_id": "T-001", "lot": "TEST-LOT", "cell_type": "DEMO-LFP-20A", 
 
 def test_cycle_file_parses_with_the_csv_module() -> None:
     record = simulate()
-    text = synth.to_cycle_file(record, METADATA)
+    text = cycletext.to_cycle_file(record, METADATA)
     lines = text.splitlines()
     assert lines[:4] == [f"# {k}: {v}" for k, v in METADATA.items()]
     rows = list(csv.reader(io.StringIO("\n".join(lines[4:]))))
@@ -275,7 +277,7 @@ def test_cycle_file_parses_with_the_csv_module() -> None:
 
 
 def test_cycle_file_without_step_columns() -> None:
-    text = synth.to_cycle_file(simulate(), {"cell_id": "T-002"}, include_step_columns=False)
+    text = cycletext.to_cycle_file(simulate(), {"cell_id": "T-002"}, include_step_columns=False)
     header = text.splitlines()[1]
     assert header == "time_s,voltage_V,current_A,temperature_C"
     assert all(row.count(",") == 3 for row in text.splitlines()[1:])
@@ -284,20 +286,20 @@ def test_cycle_file_without_step_columns() -> None:
 @pytest.mark.parametrize("metadata", [{"cell_id": "a\nb"}, {"bad:key": "x"}, {"": "x"}])
 def test_cycle_file_refuses_metadata_it_cannot_write(metadata: dict[str, str]) -> None:
     with pytest.raises(ValueError):
-        synth.to_cycle_file(simulate(), metadata)
+        cycletext.to_cycle_file(simulate(), metadata)
 
 
 def test_same_seed_same_text_other_seed_other_text() -> None:
-    one = synth.to_cycle_file(simulate(seed=11), METADATA)
-    assert synth.to_cycle_file(simulate(seed=11), METADATA) == one
-    assert synth.to_cycle_file(simulate(seed=12), METADATA) != one
+    one = cycletext.to_cycle_file(simulate(seed=11), METADATA)
+    assert cycletext.to_cycle_file(simulate(seed=11), METADATA) == one
+    assert cycletext.to_cycle_file(simulate(seed=12), METADATA) != one
 
 
 def test_cycle_file_reads_back_unchanged() -> None:
     reader = pytest.importorskip("pipeline.read.cyclefile")
     record = simulate()
-    trace = reader.read_cycle_file(synth.to_cycle_file(record, METADATA).encode(), "t.csv")
-    expected = synth.to_trace(record, METADATA, source="t.csv")
+    trace = reader.read_cycle_file(cycletext.to_cycle_file(record, METADATA).encode(), "t.csv")
+    expected = cycletext.to_trace(record, METADATA, source="t.csv")
     for name in ("time_s", "voltage_v", "current_a", "temperature_c", "step", "cycle"):
         assert np.array_equal(getattr(trace, name), getattr(expected, name)), name
     assert dict(trace.metadata) == METADATA
@@ -349,7 +351,7 @@ def test_normal_cells_spread_as_a_lot(lot: dict[str, SimulatedRecord]) -> None:
 
 def test_channel_errors_have_the_size_the_channel_declares() -> None:
     # robust location and scale of the rest rows (median; 1.4826 x MAD, Iglewicz and Hoaglin 1993)
-    channel = synth.Channel(range_a=50.0, current_noise_fraction=5e-4, rest_offset_fraction=1e-4)
+    channel = Channel(range_a=50.0, current_noise_fraction=5e-4, rest_offset_fraction=1e-4)
     record = simulate(seed=3, channel=channel)
     true = simulate(seed=3, **NO_NOISE)
     rest = true.current_a == 0.0

@@ -4,7 +4,7 @@ Pure: true arrays, a Channel and a seeded numpy Generator in, recorded arrays ou
 channels show current noise and a zero offset at rest, voltage and temperature noise, and a
 spike or a ramp at every step change; the demo lots and the tests read simulated cells
 through a Channel so that formgate is judged on records like a line's. The cell model is
-synth.py's.
+cellmodel.py's, the program that drives it synth.py's.
 """
 
 from __future__ import annotations

@@ -4,7 +4,8 @@ Three lots (LFP/graphite, NMC/graphite, sodium-ion NVPF/hard carbon). The lots, 
 and their defects are our own invention (no real maker, product
 or person). Building each cell's recipe and text is pure; only :func:`write_demo_lot`
 touches the disk, writing each file under a hidden ``.part`` name first and renaming
-it, so a watcher never claims half a file. The simulation itself is synth.py's.
+it, so a watcher never claims half a file. The simulation itself is synth.py's (its cell
+model cellmodel.py's, the split into stage records stages.py's, the text cycletext.py's).
 """
 
 from __future__ import annotations
@@ -25,16 +26,10 @@ from pipeline.demo.aging import (
     AgingCell,
     aging_readings,
 )
-from pipeline.demo.synth import (
-    CellRecipe,
-    SimulatedRecord,
-    StageRecords,
-    self_discharge_for_drift,
-    simulate_formation,
-    split_stages,
-    stage_metadata,
-    to_cycle_file,
-)
+from pipeline.demo.cellmodel import CellRecipe, self_discharge_for_drift
+from pipeline.demo.cycletext import to_cycle_file
+from pipeline.demo.stages import StageRecords, split_stages, stage_metadata
+from pipeline.demo.synth import SimulatedRecord, simulate_formation
 
 STATION = "demo-line-1"
 LFP_CELL_TYPE = "DEMO-LFP-20A"  # must match rules/lfp_graphite.toml

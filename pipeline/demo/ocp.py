@@ -3,7 +3,7 @@
 Half-cell potentials are vs Li/Li+ (sodium-ion electrodes: vs Na/Na+); full-cell
 curves map a state of charge onto the two electrodes' stoichiometries. Everything is
 a pure numpy function evaluated in float64. Turning these curves into a cycler
-record is synth.py's job; judging a record never uses them.
+record is the job of cellmodel.py and synth.py; judging a record never uses them.
 
 Variables: ``x`` is the anode's lithium (or sodium) fraction (graphite: 0 empty to 1
 LiC6; LTO: 0 = Li4Ti5O12 to 1 = Li7Ti5O12; hard carbon: 0 empty to 1 full), ``y`` the

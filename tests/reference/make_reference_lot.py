@@ -69,7 +69,7 @@ current the SPMe receives; "charge current" is positive.
 
 The program
 -----------
-The formation and grading program of ``pipeline.demo.synth`` (``FormationProgram`` defaults,
+The formation and grading program of ``pipeline.demo.synth`` (``cellmodel.FormationProgram`` defaults,
 ``simulate_formation``), with its step and cycle numbers: 1 rest 300 s; 2 pre-charge 0.05 C
 to 12 % of nominal (by charge); 3 rest 600 s; 4 CC 0.2 C to the upper limit; 5 CV to C/20;
 6 rest 1800 s; 7 CC discharge 0.2 C to the cut-off; 8 rest 1800 s; 9 CC 0.2 C; 10 CV to
