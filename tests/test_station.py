@@ -332,9 +332,13 @@ def test_a_settled_file_written_to_again_before_its_claim_is_left_for_the_next_l
     path = inbox.folder / "resumed.csv"
     path.write_bytes(data[: len(data) // 2].rsplit(b"\n", 1)[0] + b"\n")
     station = Station(s, smtp_settings(s, {}))
-    assert station.list_inbox(inbox, now_s=0.0) == ()
-    assert station.list_inbox(inbox, now_s=10.0) == ("resumed.csv",)  # quiet for 10 s: settled
-    with path.open("ab") as fh:  # the writer resumes before the station claims the file
-        fh.write(data[len(data) // 2 :])
-    station.claim(inbox, "resumed.csv")
+    with Ledger(s.ledger) as ledger:
+        station.wire(ledger, threading.Event())
+        station.rules.load(first=True)
+        claims = station.claims
+        assert claims.list_inbox(inbox, now_s=0.0) == ()
+        assert claims.list_inbox(inbox, now_s=10.0) == ("resumed.csv",)  # quiet 10 s: settled
+        with path.open("ab") as fh:  # the writer resumes before the station claims the file
+            fh.write(data[len(data) // 2 :])
+        claims.claim(inbox, "resumed.csv")
     assert path.exists() and not any(s.work.iterdir())

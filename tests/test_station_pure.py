@@ -33,7 +33,7 @@ T0 = datetime.datetime(2026, 3, 1, 8, 0, tzinfo=datetime.UTC)
         "pipeline.read.limits",
         "pipeline.station.handoff",
         "pipeline.station.rules_in_force",
-        "pipeline.station.duties",
+        "pipeline.station.digests",
     ],
 )
 def test_docstring_examples_hold(name: str) -> None:

@@ -19,16 +19,17 @@ from __future__ import annotations
 import datetime
 import json
 import logging
-from collections.abc import Iterable, Sequence
+import threading
+from collections.abc import Callable, Iterable, Sequence
 
 from pipeline.errors import FormgateError
 from pipeline.judge.cellverdict import CellDecision, decide
 from pipeline.judge.lotclose import cell_stages
+from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow
 from pipeline.mail.cell_letters import decision_letter, superseded_letter
 from pipeline.mail.letters import Letter
-from pipeline.rulebook.book import RuleBook
-from pipeline.station.guard import Guarded
+from pipeline.station.rules_in_force import RulesInForce
 from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
@@ -88,10 +89,22 @@ def change_letters(
     return out
 
 
-class CellKeeping(Guarded):
-    """Decide cells after their records; the station's Station class sets these attributes."""
+class CellDecisions:
+    """Decide cells after their records, under the rules in force, and record what changed."""
 
-    rulebook: RuleBook | None
+    def __init__(
+        self,
+        settings: Settings,
+        ledger: Ledger,
+        clock: Callable[[], datetime.datetime],
+        rules: RulesInForce,
+        mail_wake: threading.Event,
+    ) -> None:
+        self.settings = settings
+        self.ledger = ledger
+        self.clock = clock
+        self.rules = rules
+        self.mail_wake = mail_wake
 
     def decide_cells(self, cells: Iterable[tuple[str, str]], cause: str) -> None:
         """Decide each (lot, cell id) again and record what changed, with its letters."""
@@ -102,7 +115,8 @@ class CellKeeping(Guarded):
                 log.error("cell %s of lot %s cannot be decided: %s", cell_id, lot, exc)
 
     def decide_cell(self, lot: str, cell_id: str, cause: str) -> DecisionRow | None:
-        if self.rulebook is None:
+        rulebook = self.rules.rulebook
+        if rulebook is None:
             return None
         results = self.ledger.results.of_cell(lot, cell_id)
         docs = [json.loads(r.result_json) for r in results if r.verdict != "error"]
@@ -115,7 +129,7 @@ class CellKeeping(Guarded):
         if not types:
             log.warning("cell %s of lot %s names no cell type yet; not decided", cell_id, lot)
             return None
-        rule_set, cell_type = self.rulebook.for_cell_type(types[-1])
+        rule_set, cell_type = rulebook.for_cell_type(types[-1])
         stages = cell_stages(docs, readings, rule_set, cell_type)
         decision = decide(cell_type.stages or rule_set.stages, stages.records)
         now = self.clock()

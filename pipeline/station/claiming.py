@@ -10,6 +10,7 @@ and archiving them publishing.py's.
 
 from __future__ import annotations
 
+import datetime
 import hashlib
 import logging
 import math
@@ -21,11 +22,15 @@ from functools import partial
 from pathlib import Path
 from typing import BinaryIO
 
+from pipeline.ledger.ledger import Ledger
 from pipeline.names import fit, is_text, to_text
 from pipeline.station import faults
-from pipeline.station.duties import Duties
+from pipeline.station.guard import Guard
 from pipeline.station.handoff import Seen, decide, file_looks_complete, is_temporary
 from pipeline.station.inhand import path_key
+from pipeline.station.lingering import Lingering
+from pipeline.station.publishing import Publisher
+from pipeline.station.rules_in_force import RulesInForce
 from pipeline.station.setaside import (
     NAME_RESERVE_BYTES,
     SetAside,
@@ -33,7 +38,7 @@ from pipeline.station.setaside import (
     move_failed_by_itself,
     unreadable_reason,
 )
-from pipeline.station.settings import InboxSettings, choose_profile
+from pipeline.station.settings import InboxSettings, Settings, choose_profile
 from pipeline.station.settle_wait import cut_reason
 from pipeline.station.taken import UnreadableSource, take_copy
 from pipeline.station.tasks import MB, Tasks
@@ -49,33 +54,55 @@ log = logging.getLogger("formgate.station")
 RELIST_S = 1.0
 
 
-class Claims(Tasks, Duties):
-    """The claim loop; :class:`pipeline.station.station.Station` sets these attributes."""
+class Claims:
+    """Claims finished files from the inboxes; remembers what it saw of each inbox."""
 
-    seen: dict[str, dict[str, Seen]]
-    # per inbox: when it was last listed, and the finished files found then but not yet
-    # claimed (a backlog is claimed from this list, not by listing the folder every turn)
-    ready: dict[str, tuple[float, deque[str]]]
-    cut_noted: dict[str, float]  # inbox files said to look cut, and since when
-    aside: SetAside
-    listing: Callable[[Path], Listing]  # lists a folder (inbox or work/): Station's
+    def __init__(
+        self,
+        settings: Settings,
+        ledger: Ledger,
+        clock: Callable[[], datetime.datetime],
+        *,
+        guard: Guard,
+        rules: RulesInForce,
+        tasks: Tasks,
+        publisher: Publisher,
+        lingering: Lingering,
+        aside: SetAside,
+        listing: Callable[[Path], Listing],
+    ) -> None:
+        self.settings = settings
+        self.ledger = ledger
+        self.clock = clock
+        self.guard = guard
+        self.rules = rules
+        self.tasks = tasks
+        self.publisher = publisher
+        self.lingering = lingering
+        self.aside = aside
+        self.listing = listing  # lists a folder (an inbox or work/): the station's
+        self.seen: dict[str, dict[str, Seen]] = {i.name: {} for i in settings.inboxes}
+        # per inbox: when it was last listed, and the finished files found then but not yet
+        # claimed (a backlog is claimed from this list, not by listing the folder every turn)
+        self.ready: dict[str, tuple[float, deque[str]]] = {}
+        self.cut_noted: dict[str, float] = {}  # inbox files said to look cut, and since when
 
     def capacity(self) -> int:
-        return 4 * self.settings.workers - len(self.queue) - self.judges.busy()
+        return self.tasks.room()
 
     def scan_inboxes(self, now_s: float) -> None:
-        if self.capacity() <= 0 or self.rulebook is None:
+        if self.capacity() <= 0 or self.rules.rulebook is None:
             return  # nothing could be claimed: listing a backlog again would only cost time
         for inbox in self.settings.inboxes:
             listed_at, pending = self.ready.get(inbox.name, (-math.inf, deque()))
             if not pending or now_s - listed_at >= RELIST_S:
                 pending, listed_at = deque(self.list_inbox(inbox, now_s)), now_s
-            while pending and self.capacity() > 0 and not self.troubles.paused:
+            while pending and self.capacity() > 0 and not self.guard.paused:
                 name = pending.popleft()
-                self.handle(path_key(inbox.folder / name), "claiming",
+                self.guard.handle(path_key(inbox.folder / name), "claiming",
                             partial(self.claim, inbox, name), retry=False)
             self.ready[inbox.name] = (listed_at, pending)
-            if self.capacity() <= 0 or self.troubles.paused:
+            if self.capacity() <= 0 or self.guard.paused:
                 return
 
     def list_inbox(self, inbox: InboxSettings, now_s: float) -> tuple[str, ...]:
@@ -83,9 +110,9 @@ class Claims(Tasks, Duties):
         try:
             listing = self.listing(inbox.folder)
         except OSError as exc:  # the folder itself: a share gone, no permission
-            self.inbox_trouble(inbox, exc)
+            self.guard.inbox_trouble(inbox, exc)
             return ()
-        self.inbox_trouble(inbox, None)
+        self.guard.inbox_trouble(inbox, None)
         decision = decide(
             inbox.handover,
             listing.files,
@@ -108,8 +135,8 @@ class Claims(Tasks, Duties):
             if not is_temporary(name):
                 self.set_aside(inbox, name, other.kind,
                                entry_reason(to_text(name), other.kind, other.points_to))
-        ready = tuple(n for n in decision.ready if not self.still_left(inbox, n, listing.files[n]))
-        self.alert_overdue(inbox, listing, ready)
+        ready = tuple(n for n in decision.ready if not self.lingering.still_left(inbox, n, listing.files[n]))
+        self.lingering.alert_overdue(inbox, listing, ready)
         return ready
 
     def set_aside(self, inbox: InboxSettings, name: str, kind: str, reason: str) -> None:
@@ -118,9 +145,9 @@ class Claims(Tasks, Duties):
         def effect() -> None:
             self.aside.entry(self.ledger, path, inbox=inbox.name, kind=kind, reason=reason,
                              now=self.clock())
-            self.note_left(inbox, name, path)
+            self.lingering.note_left(inbox, name, path)
 
-        self.handle(path_key(path), "setting aside", effect, retry=False)
+        self.guard.handle(path_key(path), "setting aside", effect, retry=False)
 
     def record_waits(self, inbox: InboxSettings, name: str, fh: BinaryIO, seen: Seen) -> bool:
         """True while a settled file whose record looks cut short still has time to grow.
@@ -129,11 +156,12 @@ class Claims(Tasks, Duties):
         can tell it is not finished (record_end.py). Such a file waits up to
         ``cut_wait_factor`` x ``settle_s``, then is taken (and held as incomplete).
         """
-        if self.rulebook is None:
+        rulebook = self.rules.rulebook
+        if rulebook is None:
             return False
         text = to_text(name)
         key = path_key(inbox.folder / name)
-        why = cut_reason(fh, text, self.rulebook, choose_profile(self.settings, inbox, text))
+        why = cut_reason(fh, text, rulebook, choose_profile(self.settings, inbox, text))
         if why is None:
             self.cut_noted.pop(key, None)
             return False
@@ -184,7 +212,7 @@ class Claims(Tasks, Duties):
                     return
                 raise  # not the file's fault: writing the copy failed
             if copy is not None:
-                self.inbox_of[str(copy.path)] = inbox.name
+                self.tasks.inbox_of[str(copy.path)] = inbox.name
                 faults.point("after_claim")
                 self.register(copy.path, text, known=(copy.sha256, copy.size))
                 return
@@ -208,7 +236,7 @@ class Claims(Tasks, Duties):
                           make_parents=False)
             except OSError as exc:  # the marker is not the input: it is set aside later
                 log.warning("%s: its marker stays in the inbox (%s)", text, describe(exc))
-        self.inbox_of[str(target)] = inbox.name
+        self.tasks.inbox_of[str(target)] = inbox.name
         faults.point("after_claim")
         self.register(target, text)
 
@@ -222,7 +250,7 @@ class Claims(Tasks, Duties):
             raise exc
         self.aside.left_in_place(self.ledger, source, inbox=inbox.name, kind="file",
                                  reason=f"{text} was not judged", exc=exc, now=self.clock())
-        self.note_left(inbox, name, source)
+        self.lingering.note_left(inbox, name, source)
 
     def register(
         self, path: Path, name: str | None = None, *, known: tuple[str, int] | None = None
@@ -242,7 +270,7 @@ class Claims(Tasks, Duties):
         except FileNotFoundError:
             return
         except OSError as exc:  # the file's own fault: the station may not read it
-            inbox = self.inbox_of.get(str(path), "work")
+            inbox = self.tasks.inbox_of.get(str(path), "work")
             self.aside.entry(self.ledger, path, inbox=inbox, kind="file",
                              reason=unreadable_reason(name, exc), now=self.clock())
             return
@@ -262,23 +290,21 @@ class Claims(Tasks, Duties):
                 earlier.id,
                 earlier.name,
             )
-            self.finish(row, "duplicate")
+            self.publisher.finish(row, "duplicate")
             return
         if size > self.settings.max_input_MB * MB:
-            self.quarantine(
+            self.publisher.quarantine(
                 row,
                 f"{row.name}: the file is {size / MB:.1f} MB, above the station's "
                 f"limit of {self.settings.max_input_MB:g} MB.\n  If such files are "
                 "expected, raise max_input_MB in station.toml.",
             )
             return
-        self.queue.append((row, None))
+        self.tasks.add(row)
 
     def reconcile_work(self) -> None:
         """Files in work/ the ledger does not know (a crash right after the claim) are registered."""
-        known = {task.work_path for _, task in self.judges.tasks()} | {
-            r.work_path for r, _ in self.queue
-        }
+        known = self.tasks.in_hand()
         for name in sorted(self.listing(self.settings.work).files):
             path = self.settings.work / name
             if is_temporary(name) or str(path) in known:
@@ -291,7 +317,7 @@ class Claims(Tasks, Duties):
                 continue
             row = self.ledger.inputs.by_work_path(str(path))
             if row is None or row.final_path is not None:
-                self.handle(path_key(path), "registering", partial(self.register, path),
+                self.guard.handle(path_key(path), "registering", partial(self.register, path),
                             retry=False)
 
 

@@ -1,12 +1,16 @@
 """How the station stays up: one input at a time, marked in hand; faults of the surroundings pause it.
 
-The station's main loop applies every effect through :meth:`Guarded.handle` (one
-input's effects, with the input marked in hand: inhand.py) or :meth:`Guarded.duty`
+The station's main loop applies every effect through :meth:`Guard.handle` (one
+input's effects, with the input marked in hand: inhand.py) or :meth:`Guard.duty`
 (the station's own work). A fault of the surroundings there (troubles.py) pauses the
-station, raises one alert and keeps the interrupted effect; :meth:`Guarded.retry`
+station, raises one alert and keeps the interrupted effect; :meth:`Guard.retry`
 tests the folders and the ledger with real writes, applies what waited, and resumes.
 Alerts are queued in the ledger's outbox, and held in memory while the ledger itself
 cannot be written. Any other exception is a bug and ends the process (exit 3).
+
+The Guard owns the troubles in force, the effects that wait for a pause to end, the
+alerts not yet queued and the last error shown in the heartbeat; every other job of the
+station is handed the Guard and goes through it.
 """
 
 from __future__ import annotations
@@ -31,18 +35,30 @@ SURROUNDINGS = "surroundings"  # the key of the trouble that pauses the station
 PROBE_BYTES = 65536  # real bytes, flushed: an empty file can be created even on a full disk
 
 
-class Guarded:
-    """The station's guard rails; :class:`pipeline.station.station.Station` sets these attributes."""
+class Guard:
+    """The station's guard rails over one open ledger."""
 
-    settings: Settings
-    ledger: Ledger
-    clock: Callable[[], datetime.datetime]
-    troubles: Troubles
-    blocked: deque[Callable[[], None]]  # effects to apply once unpaused
-    unsent: list[Letter]  # alerts the ledger could not take yet
-    inhand: InHand
-    last_error: str
-    mail_wake: threading.Event
+    def __init__(
+        self,
+        settings: Settings,
+        ledger: Ledger,
+        clock: Callable[[], datetime.datetime],
+        inhand: InHand,
+        mail_wake: threading.Event,
+    ) -> None:
+        self.settings = settings
+        self.ledger = ledger
+        self.clock = clock
+        self.inhand = inhand
+        self.mail_wake = mail_wake  # set when a letter is queued: the mail thread sends it
+        self.troubles = Troubles(settings.retry_max_s)
+        self.blocked: deque[Callable[[], None]] = deque()  # effects to apply once unpaused
+        self.unsent: list[Letter] = []  # alerts the ledger could not take yet
+        self.last_error = ""  # shown in the heartbeat and status
+
+    @property
+    def paused(self) -> bool:
+        return self.troubles.paused
 
     def handle(self, key: str, what: str, effect: Callable[[], None], *, retry: bool = True) -> None:
         """Apply ``effect`` for one input, marked in hand; a fault of the surroundings pauses.
@@ -76,6 +92,10 @@ class Guarded:
             if not is_environmental(exc):
                 raise
             self.pause(exc)
+
+    def note_error(self, text: str) -> None:
+        """Remember ``text`` as the station's last error (the heartbeat and status show it)."""
+        self.last_error = text
 
     def pause(self, exc: BaseException) -> None:
         reason = describe(exc, ledger=self.settings.ledger)

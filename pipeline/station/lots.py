@@ -39,7 +39,7 @@ from pipeline.report.lotreport import (
 )
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.cells import change_letters
-from pipeline.station.duties import lot_rows
+from pipeline.station.digests import lot_rows
 from pipeline.station.settings import Settings
 from pipeline.writing import write_atomic
 

@@ -12,9 +12,11 @@ from __future__ import annotations
 import datetime
 import json
 import logging
+from collections.abc import Callable
 from pathlib import Path
 
 from pipeline.judge.evaluate import decision_line
+from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import CheckRowData, InputRow, ResultRow
 from pipeline.mail.letters import Letter, alert_letter, failure_letter, hold_letter
 from pipeline.model import WHOLE_PROGRAM, CellResult, VerdictKind
@@ -22,18 +24,33 @@ from pipeline.names import fit
 from pipeline.read.readings import ReadingFile
 from pipeline.runner import result_paths
 from pipeline.station import faults
-from pipeline.station.cells import CellKeeping
+from pipeline.station.cells import CellDecisions
+from pipeline.station.guard import Guard
 from pipeline.station.setaside import NAME_RESERVE_BYTES
+from pipeline.station.settings import Settings
 from pipeline.station.worker import Output
 from pipeline.writing import move_into, require_folder, write_atomic
 
 log = logging.getLogger("formgate.station")
 
 
-class Publishing(CellKeeping):
-    """Record, publish, archive; :class:`pipeline.station.station.Station` sets these attributes."""
+class Publisher:
+    """Record, publish, archive and quarantine what the workers finished."""
 
-    judged: int
+    def __init__(
+        self,
+        settings: Settings,
+        ledger: Ledger,
+        clock: Callable[[], datetime.datetime],
+        cells: CellDecisions,
+        guard: Guard,
+    ) -> None:
+        self.settings = settings
+        self.ledger = ledger
+        self.clock = clock
+        self.cells = cells
+        self.guard = guard
+        self.judged = 0  # files judged since the station started (the heartbeat shows it)
 
     def apply(self, row: InputRow, output: Output) -> None:
         row = self.ledger.inputs.get(row.id) or row  # applied again after a pause: where it stands now
@@ -55,7 +72,7 @@ class Publishing(CellKeeping):
         self.keep_earlier_outputs(row, result)
         self.publish(row, result, json_text, pdf)
         self.judged += 1
-        self.mail_wake.set()  # a failure or hold letter is due now that its certificate is there
+        self.guard.mail_wake.set()  # a failure or hold letter is due now that its certificate is there
         r = result
         hazards = (
             f" hazard: {', '.join(h.value for h in r.verdict.hazards)}" if r.verdict.hazards else ""
@@ -72,7 +89,7 @@ class Publishing(CellKeeping):
             hazards,
             row.name,
         )
-        self.decide_cells([(r.lot, r.cell_id)], "record")
+        self.cells.decide_cells([(r.lot, r.cell_id)], "record")
 
     def earlier_records(self, row: InputRow, result: CellResult) -> list[ResultRow]:
         """The cell's earlier records of the same stages from other inputs, oldest first."""
@@ -116,7 +133,7 @@ class Publishing(CellKeeping):
         cells = self.ledger.readings.cells_of_input(row.id)
         lots = sorted({lot for lot, _ in cells})
         log.info("%s: aging readings of %d cell(s), lot %s", row.name, len(cells), ", ".join(lots))
-        self.decide_cells(cells, "readings")
+        self.cells.decide_cells(cells, "readings")
 
     def output_paths(self, result: CellResult) -> tuple[Path, Path]:
         return result_paths(self.settings.results, self.settings.certificates, result)
@@ -209,8 +226,8 @@ class Publishing(CellKeeping):
         )
         self._move_final(row, target)
         self.ledger.inputs.mark_final(row.id, "quarantined", str(target), reason, now=self.clock())
-        self.last_error = reason.splitlines()[0]
-        log.warning("%s: quarantined: %s", row.name, self.last_error)
+        self.guard.note_error(reason.splitlines()[0])
+        log.warning("%s: quarantined: %s", row.name, reason.splitlines()[0])
 
     def _move_final(self, row: InputRow, target: Path) -> None:
         work = Path(row.work_path)

@@ -10,12 +10,15 @@ that restarts it cannot loop.
 
 from __future__ import annotations
 
+import datetime
 import hashlib
 import logging
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 from pipeline.errors import FormgateError
+from pipeline.ledger.ledger import Ledger
 from pipeline.rulebook.book import (
     RuleBook,
     check_profiles_dir,
@@ -23,7 +26,8 @@ from pipeline.rulebook.book import (
     load_rule_set,
     load_rules_dir,
 )
-from pipeline.station.guard import Guarded
+from pipeline.station.guard import Guard
+from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
 
@@ -45,14 +49,25 @@ def refusal_summary(problems: list[FormgateError]) -> str:
     return first
 
 
-class RulesKeeper(Guarded):
-    """The rules in force; :class:`pipeline.station.station.Station` sets these attributes."""
+class RulesInForce:
+    """The rule book the station judges with (None while there is no valid one)."""
 
-    rulebook: RuleBook | None
-    rules_fingerprint: tuple[tuple[str, int, int], ...] | None
-    rules_alerted: str
+    def __init__(
+        self,
+        settings: Settings,
+        ledger: Ledger,
+        clock: Callable[[], datetime.datetime],
+        guard: Guard,
+    ) -> None:
+        self.settings = settings
+        self.ledger = ledger
+        self.clock = clock
+        self.guard = guard
+        self.rulebook: RuleBook | None = None
+        self.fingerprint: tuple[tuple[str, int, int], ...] | None = None  # None: never read
+        self.alerted = ""  # the refusal last alerted, by the hash of its text
 
-    def load_rules(self, *, first: bool = False) -> None:
+    def load(self, *, first: bool = False) -> None:
         """Load the rules folder if it changed; a broken edit keeps the last good rules in force.
 
         Started while a rule file is broken, the station judges with the last rules that
@@ -64,7 +79,7 @@ class RulesKeeper(Guarded):
             fingerprint = tuple((str(p), st.st_size, st.st_mtime_ns) for p in files for st in [p.stat()])
         except OSError:  # a file went while listing, or the folder cannot be read
             fingerprint = (("(unreadable)", 0, 0),)  # checked once now, again once it changes
-        if fingerprint == self.rules_fingerprint and not first:
+        if fingerprint == self.fingerprint and not first:
             return
         problems: list[FormgateError] = [
             *check_rules_dir(folder),
@@ -79,14 +94,14 @@ class RulesKeeper(Guarded):
         if rulebook is None:
             self.refuse_rules("\n".join(str(p) for p in problems), first=first)
             self.show_refusal(refusal_summary(problems))
-            self.rules_fingerprint = fingerprint
+            self.fingerprint = fingerprint
             return
         self.keep_rule_texts(rulebook)
         self.rulebook = rulebook
-        self.rules_fingerprint = fingerprint
-        if self.troubles.clear("rules", now=self.clock()) is not None:
+        self.fingerprint = fingerprint
+        if self.guard.troubles.clear("rules", now=self.clock()) is not None:
             log.warning("rules valid again: the station resumes")
-        if self.troubles.clear(REFUSED, now=self.clock()) is not None:
+        if self.guard.troubles.clear(REFUSED, now=self.clock()) is not None:
             log.warning("rules valid again: the edited rules are in force")
 
     def keep_rule_texts(self, rulebook: RuleBook) -> None:
@@ -123,9 +138,9 @@ class RulesKeeper(Guarded):
         if self.rulebook is None:
             return
         reason = f"a rule file is not valid, the last good rules judge: {summary}"
-        if self.troubles.report(REFUSED, reason, now=self.clock(), now_s=time.monotonic(),
+        if self.guard.troubles.report(REFUSED, reason, now=self.clock(), now_s=time.monotonic(),
                                 blocking=False, kind="rules") is None:
-            self.troubles.reword(REFUSED, reason)
+            self.guard.troubles.reword(REFUSED, reason)
 
     def refuse_rules(self, text: str, *, first: bool) -> None:
         key = hashlib.sha256(text.encode()).hexdigest()
@@ -135,23 +150,23 @@ class RulesKeeper(Guarded):
                 names = ", ".join(f"{rs.name} {rs.revision}" for rs in self.rulebook.rule_sets)
                 log.error("a rule file is not valid; starting with the last valid rules (%s):\n%s",
                           names, text)
-                self.alert(
+                self.guard.alert(
                     "started with the last valid rules",
                     f"The station started while a rule file is not valid. It judges with the last "
                     f"rules that were valid, kept in its ledger ({names}), until it is fixed.\n\n"
                     f"{text}\n\nFix the file, then check it with `formgate rules check`.",
                     key=f"rules-start:{key}",
                 )
-                self.rules_alerted = key
+                self.alerted = key
                 return
         if self.rulebook is None:
-            trouble = self.troubles.report(
+            trouble = self.guard.troubles.report(
                 "rules", "no valid rules to judge with", now=self.clock(), now_s=time.monotonic()
             )
             if trouble is not None:
                 log.error("paused: no valid rules to judge with; files wait in the inboxes:\n%s",
                           text)
-                self.alert(
+                self.guard.alert(
                     "station paused: no valid rules",
                     "The station has no valid rules to judge with, so it claims nothing; files "
                     f"wait in the inboxes and are judged once the rules are fixed.\n\n{text}\n\n"
@@ -160,9 +175,9 @@ class RulesKeeper(Guarded):
                 )
             return
         log.error("rules edit refused; the last good rules stay in force:\n%s", text)
-        if key != self.rules_alerted:
-            self.rules_alerted = key
-            self.alert(
+        if key != self.alerted:
+            self.alerted = key
+            self.guard.alert(
                 "rules edit refused, last good rules still in force",
                 "A rule file was edited and is not valid. The station keeps judging with the "
                 f"last good rules until it is fixed.\n\n{text}\n\nFix the file, then check it "

@@ -9,54 +9,57 @@ effect in a fixed order (docs/station.md):
 
 A crash anywhere leaves a state that :meth:`Station.recover` completes on the next
 start. Events from the folder watcher only wake the loop; a scan of the folders is
-the truth. Mail goes out from its own thread (mailer.py).
+the truth. Mail goes out from its own thread (mailer.py), lots close in another
+(lots.py).
 
 Nothing one input does stops the station: an entry that is not an input is set aside
 (setaside.py), a file past a limit or that kills its worker is quarantined
 (judges.py, limits.py), and an input in hand when the process died twice is
 quarantined at the next start (inhand.py). Faults of the surroundings pause it until
-they clear (troubles.py).
+they clear (guard.py, troubles.py).
 
-This module holds the loop and its start, stop and recovery; the class's other work
-comes from its mixins: claiming (claiming.py), tasks for the workers (tasks.py),
-recording and publishing (publishing.py), the rules in force (rules_in_force.py),
-periodic duties (duties.py) and the guard rails (guard.py).
+This module holds the loop and its start, stop and recovery. Each other job is an
+object of its own that owns its state and is handed what it needs when :meth:`Station.wire`
+puts them together over the open ledger: the guard rails (guard.py), the rules in force
+(rules_in_force.py), deciding cells (cells.py), recording and publishing (publishing.py),
+tasks for the workers (tasks.py), claiming (claiming.py), entries that stay in an inbox
+(lingering.py), lot digests (digests.py) and settle mode's originals (originals.py).
 """
 
 from __future__ import annotations
 
 import datetime
+import json
 import logging
 import os
 import threading
 import time
-from collections import deque
 from collections.abc import Callable
 from functools import partial
 from pathlib import Path
 
-from pipeline.errors import FormgateError
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import InputRow
-from pipeline.mail.letters import Letter
 from pipeline.mail.smtp import SmtpSettings
 from pipeline.names import to_text
-from pipeline.rulebook.book import RuleBook
+from pipeline.station.cells import CellDecisions
 from pipeline.station.claiming import Claims
-from pipeline.station.handoff import Seen
+from pipeline.station.digests import DigestDuty
+from pipeline.station.guard import Guard
 from pipeline.station.inhand import DEATHS_TO_QUARANTINE, Death, InHand, input_key
 from pipeline.station.judges import JudgePool
+from pipeline.station.lingering import Lingering
 from pipeline.station.lots import LotCloser
 from pipeline.station.mailer import MailThread
-from pipeline.station.publishing import final_name
-from pipeline.station.rules_in_force import RulesKeeper
-from pipeline.station.setaside import SetAside, writable
+from pipeline.station.originals import Originals
+from pipeline.station.publishing import Publisher, final_name
+from pipeline.station.rules_in_force import RulesInForce
+from pipeline.station.setaside import SetAside
 from pipeline.station.settings import Settings
-from pipeline.station.tasks import MB
-from pipeline.station.troubles import Troubles
+from pipeline.station.tasks import MB, Tasks
+from pipeline.station.troubles import describe
 from pipeline.station.watcher import Listing, list_entries
-from pipeline.station.worker import Task
-from pipeline.writing import clean_temp_files
+from pipeline.writing import clean_temp_files, write_atomic
 
 log = logging.getLogger("formgate.station")
 
@@ -65,8 +68,26 @@ def utc_now() -> datetime.datetime:
     return datetime.datetime.now(datetime.UTC)
 
 
-class Station(Claims, RulesKeeper):
-    """A running station over one settings file. ``run(stop)`` returns when ``stop`` is set."""
+class Station:
+    """A running station over one settings file. ``run(stop)`` returns when ``stop`` is set.
+
+    The station itself holds only what outlives one run's ledger connection (settings,
+    clock, the judge pool, the in-hand marker) and the loop's own timers; its jobs are
+    wired in :meth:`wire`, in the thread that runs the station (SQLite's rule).
+    """
+
+    # the station's jobs, each owning its state; wired by wire() over the open ledger
+    ledger: Ledger
+    guard: Guard
+    rules: RulesInForce
+    cells: CellDecisions
+    publisher: Publisher
+    tasks: Tasks
+    lingering: Lingering
+    claims: Claims
+    digests: DigestDuty
+    originals: Originals
+    aside: SetAside
 
     def __init__(
         self,
@@ -79,37 +100,34 @@ class Station(Claims, RulesKeeper):
         self.smtp = smtp
         self.clock = clock
         self.wake = threading.Event()
-        # opened by run(), in the thread that runs the station (SQLite's rule)
-        self.ledger: Ledger = None  # type: ignore[assignment]
-        self.rulebook: RuleBook | None = None
-        self.rules_fingerprint: tuple[tuple[str, int, int], ...] | None = None  # None: never read
-        self.rules_alerted: str = ""
-        self.seen: dict[str, dict[str, Seen]] = {i.name: {} for i in settings.inboxes}
-        # per inbox: when it was last listed, and the finished files found then but not yet
-        # claimed (a backlog is claimed from this list, not by listing the folder every turn)
-        self.ready: dict[str, tuple[float, deque[str]]] = {}
-        self.queue: deque[tuple[InputRow, Task | None]] = deque()  # a task given: judge again
         self.judges = JudgePool(
             settings.workers,
             timeout_s=settings.task_timeout_s,
             memory_limit_bytes=int(settings.worker_memory_MB * MB),
         )
-        self.inbox_of: dict[str, str] = {}  # work path -> inbox name, for its import profile
-        self.cut_noted: dict[str, float] = {}  # inbox files said to look cut, and since when
-        self.troubles = Troubles(settings.retry_max_s)
-        self.blocked: deque[Callable[[], None]] = deque()  # effects to apply once unpaused
-        self.unsent: list[Letter] = []  # alerts the ledger could not take yet
-        self.mail_wake = threading.Event()  # the mail thread's, once it runs: mail is queued
         self.inhand = InHand(settings.ledger.with_name(f".{settings.ledger.name}.in-hand"))
-        self.aside = SetAside(settings)
-        self.left: dict[tuple[str, str], tuple[int, int]] = {}  # left in place, as it was then
-        self.overdue_alerted: set[tuple[str, str]] = set()
-        self.originals_checked: dict[Path, tuple[int, int]] = {}
         self.started_at = clock()
         self.last_heartbeat = 0.0
         self.last_reconcile = 0.0
-        self.judged = 0
-        self.last_error: str = ""
+
+    def wire(self, ledger: Ledger, mail_wake: threading.Event) -> None:
+        """Put the station's jobs together over ``ledger``; ``mail_wake`` wakes the mail thread."""
+        s, clock = self.settings, self.clock
+        self.ledger = ledger
+        self.guard = Guard(s, ledger, clock, self.inhand, mail_wake)
+        self.rules = RulesInForce(s, ledger, clock, self.guard)
+        self.cells = CellDecisions(s, ledger, clock, self.rules, mail_wake)
+        self.publisher = Publisher(s, ledger, clock, self.cells, self.guard)
+        self.tasks = Tasks(s, ledger, clock, self.judges, self.rules, self.publisher, self.guard)
+        self.lingering = Lingering(s, self.guard)
+        self.aside = SetAside(s)
+        self.claims = Claims(
+            s, ledger, clock, guard=self.guard, rules=self.rules, tasks=self.tasks,
+            publisher=self.publisher, lingering=self.lingering, aside=self.aside,
+            listing=self.listing,
+        )
+        self.digests = DigestDuty(s, ledger, clock, mail_wake)
+        self.originals = Originals(s, self.guard)
 
     @property
     def pool(self) -> object:
@@ -123,22 +141,7 @@ class Station(Claims, RulesKeeper):
         from pipeline.station.watcher import InboxWatcher
 
         # SQLite connections belong to the thread that opened them: open it here
-        self.ledger = Ledger(self.settings.ledger, now=self.clock())
-        try:
-            death = self.inhand.found_at_start()
-            self.duty(lambda: self.load_rules(first=True))
-            for inbox in self.settings.inboxes:
-                inbox.folder.mkdir(parents=True, exist_ok=True)
-            self.judges.start()
-        except BaseException:
-            self.ledger.close()
-            raise
-        watchers = [
-            InboxWatcher(
-                [i.folder], self.wake, polling=i.polling, poll_interval_s=i.poll_interval_s
-            )
-            for i in self.settings.inboxes
-        ]
+        ledger = Ledger(self.settings.ledger, now=self.clock())
         mail = MailThread(
             self.settings.ledger,
             self.smtp,
@@ -146,15 +149,31 @@ class Station(Claims, RulesKeeper):
             alerts_to=self.settings.routing.alerts_to,
             domain=self.settings.routing.domain,
         )
-        lots = LotCloser(self.settings, lambda: self.rulebook, self.clock, mail.wake,
+        self.wire(ledger, mail.wake)
+        guard = self.guard
+        try:
+            death = self.inhand.found_at_start()
+            guard.duty(lambda: self.rules.load(first=True))
+            for inbox in self.settings.inboxes:
+                inbox.folder.mkdir(parents=True, exist_ok=True)
+            self.judges.start()
+        except BaseException:
+            ledger.close()
+            raise
+        watchers = [
+            InboxWatcher(
+                [i.folder], self.wake, polling=i.polling, poll_interval_s=i.poll_interval_s
+            )
+            for i in self.settings.inboxes
+        ]
+        lots = LotCloser(self.settings, lambda: self.rules.rulebook, self.clock, mail.wake,
                          interval_s=self.settings.reconcile_s * 6)
         try:
-            self.duty(lambda: self.after_death(death))
+            guard.duty(lambda: self.after_death(death))
             self.recover()
             for w in watchers:
                 w.start()
             mail.start()
-            self.mail_wake = mail.wake
             lots.start()
             log.info(
                 "station %s watching %s",
@@ -165,12 +184,12 @@ class Station(Claims, RulesKeeper):
                 self.step()
                 for w in watchers:
                     w.supervise()
-                if self.troubles.paused or (not self.judges.busy() and not self.queue):
+                if guard.paused or (not self.judges.busy() and not self.tasks.queue):
                     self.wake.wait(min(self.settings.reconcile_s, 1.0))
                     self.wake.clear()
             log.info("stopping: finishing %d cell(s) in hand", self.judges.busy())
             while self.judges.busy():
-                self.collect(timeout=1.0)
+                self.tasks.collect(timeout=1.0)
             self.write_heartbeat(state="stopped")
         finally:
             for w in watchers:
@@ -180,26 +199,27 @@ class Station(Claims, RulesKeeper):
             mail.stop()
             self.judges.shutdown()
             self.inhand.close()
-            self.ledger.close()
+            ledger.close()
         return 0
 
     def step(self) -> None:
         """One turn of the loop: rules, inboxes, submissions, finished work, digests, heartbeat."""
-        self.duty(self.load_rules)
+        guard = self.guard
+        guard.duty(self.rules.load)
         now_s = time.monotonic()
-        if self.troubles.due(now_s):
-            self.retry(now_s)
-        if not self.troubles.paused:
+        if guard.troubles.due(now_s):
+            guard.retry(now_s)
+        if not guard.paused:
             if now_s - self.last_reconcile >= self.settings.reconcile_s:
                 self.last_reconcile = now_s
-                self.duty(self.reconcile_work)
-                self.review_originals()
-            self.duty(lambda: self.scan_inboxes(now_s))
-            self.duty(self.submit)
-        self.collect(timeout=0.2 if self.judges.busy() else 0.0)
-        if not self.troubles.paused:
-            self.duty(self.queue_digests)
-            self.duty(self.flush_unsent)
+                guard.duty(self.claims.reconcile_work)
+                self.originals.review()
+            guard.duty(lambda: self.claims.scan_inboxes(now_s))
+            guard.duty(self.tasks.submit)
+        self.tasks.collect(timeout=0.2 if self.judges.busy() else 0.0)
+        if not guard.paused:
+            guard.duty(self.digests.queue)
+            guard.duty(guard.flush_unsent)
         if now_s - self.last_heartbeat >= self.settings.heartbeat_s:
             self.last_heartbeat = now_s
             self.write_heartbeat()
@@ -216,7 +236,7 @@ class Station(Claims, RulesKeeper):
         if death.input_id is not None:
             row = self.ledger.inputs.get(death.input_id)
             if row is not None and row.final_path is None and row.state in ("claimed", "judged"):
-                self.quarantine(row, f"{row.name}: {why}")
+                self.publisher.quarantine(row, f"{row.name}: {why}")
         elif death.path is not None and os.path.lexists(death.path):
             name = to_text(death.path.name)
             inbox = next(
@@ -227,6 +247,40 @@ class Station(Claims, RulesKeeper):
                 now=self.clock(),
             )
         self.inhand.done_with(death.key)
+
+    def write_heartbeat(self, state: str = "running") -> None:
+        """Rewrite the heartbeat file; one that cannot be written is a trouble, not a stop."""
+        if state == "running" and self.guard.paused:
+            state = "paused"
+        beat = {
+            "state": state,
+            "pid": os.getpid(),
+            "station": self.settings.station_name,
+            "updated_at": self.clock().isoformat(),
+            "started_at": self.started_at.isoformat(),
+            "judged_since_start": self.publisher.judged,
+            "queued": len(self.tasks.queue),
+            "in_flight": self.judges.busy(),
+            "rules": [
+                f"{rs.name} {rs.revision}"
+                for rs in (self.rules.rulebook.rule_sets if self.rules.rulebook else ())
+            ],
+            "troubles": self.guard.troubles.shown(),
+            "last_error": self.guard.last_error,
+        }
+        try:
+            write_atomic(
+                (json.dumps(beat, indent=2) + "\n").encode(), self.settings.heartbeat, sync=False
+            )
+        except OSError as exc:
+            trouble = self.guard.troubles.report(
+                "heartbeat", f"the heartbeat file cannot be written ({describe(exc)})",
+                now=self.clock(), now_s=time.monotonic(), blocking=False,
+            )
+            if trouble is not None:
+                log.error("%s", trouble.reason)
+            return
+        self.guard.troubles.clear("heartbeat", now=self.clock())
 
     def listing(self, folder: Path) -> Listing:
         """List a folder, an inbox or work/: every listing of the station goes through this
@@ -250,12 +304,12 @@ class Station(Claims, RulesKeeper):
                 for path in clean_temp_files(folder):
                     log.info("removed an unfinished temporary file: %s", path)
 
-            self.duty(clean)
+            self.guard.duty(clean)
         for row in self.ledger.inputs.in_state("claimed", "judged", "published", "duplicate"):
             if row.final_path is None:
-                self.handle(input_key(row.id), "recovering", partial(self.recover_row, row))
-        self.duty(self.reconcile_work)
-        self.duty(self.decide_behind)
+                self.guard.handle(input_key(row.id), "recovering", partial(self.recover_row, row))
+        self.guard.duty(self.claims.reconcile_work)
+        self.guard.duty(self.decide_behind)
 
     def decide_behind(self) -> None:
         """Decide the cells whose last record or reading of the past day came in just before a
@@ -265,24 +319,25 @@ class Station(Claims, RulesKeeper):
         behind = self.ledger.decisions.cells_behind(since)
         if behind:
             log.info("deciding %d cell(s) whose records came in before a restart", len(behind))
-            self.decide_cells(behind, "record")
+            self.cells.decide_cells(behind, "record")
 
     def recover_row(self, row: InputRow) -> None:
         work = Path(row.work_path)
+        publisher = self.publisher
         if row.state == "duplicate":
-            self.finish(row, "duplicate")
+            publisher.finish(row, "duplicate")
         elif row.state == "published":
-            self.finish(row, "archived")
+            publisher.finish(row, "archived")
         elif row.state == "judged" and self.ledger.readings.exist_for(row.id):
-            self.keep_readings(row, None)  # its readings are kept: publish them
+            publisher.keep_readings(row, None)  # its readings are kept: publish them
         elif row.state == "judged":
-            task = self.judge_again(row)
+            task = self.tasks.judge_again(row)
             if task is not None:
-                self.queue.append((row, task))
+                self.tasks.add(row, task)
         elif row.reason:
-            self.quarantine(row, row.reason)
+            publisher.quarantine(row, row.reason)
         elif work.exists():
-            self.queue.append((row, None))
+            self.tasks.add(row)
         else:
             quarantined = self.settings.quarantine / final_name(row)
             if quarantined.exists():
@@ -300,6 +355,3 @@ class Station(Claims, RulesKeeper):
                     row.id,
                     work,
                 )
-
-
-__all__ = ["FormgateError", "Station", "writable"]

@@ -12,15 +12,19 @@ from __future__ import annotations
 import datetime
 import logging
 from collections import deque
+from collections.abc import Callable
 from functools import partial
 
+from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import InputRow
 from pipeline.read.limits import TextLimits
 from pipeline.rulebook.book import RuleBook, load_rule_set
+from pipeline.station.guard import Guard
 from pipeline.station.inhand import input_key
 from pipeline.station.judges import JudgePool
-from pipeline.station.publishing import Publishing
-from pipeline.station.settings import choose_profile
+from pipeline.station.publishing import Publisher
+from pipeline.station.rules_in_force import RulesInForce
+from pipeline.station.settings import Settings, choose_profile
 from pipeline.station.worker import Task
 
 log = logging.getLogger("formgate.station")
@@ -28,13 +32,42 @@ log = logging.getLogger("formgate.station")
 MB = 2**20
 
 
-class Tasks(Publishing):
-    """Queue, submit, collect; :class:`pipeline.station.station.Station` sets these attributes."""
+class Tasks:
+    """The claimed inputs waiting for a worker, handed to the judge pool and collected."""
 
-    rulebook: RuleBook | None
-    queue: deque[tuple[InputRow, Task | None]]  # a task given: judge again
-    judges: JudgePool
-    inbox_of: dict[str, str]  # work path -> inbox name, for its import profile
+    def __init__(
+        self,
+        settings: Settings,
+        ledger: Ledger,
+        clock: Callable[[], datetime.datetime],
+        judges: JudgePool,
+        rules: RulesInForce,
+        publisher: Publisher,
+        guard: Guard,
+    ) -> None:
+        self.settings = settings
+        self.ledger = ledger
+        self.clock = clock
+        self.judges = judges
+        self.rules = rules
+        self.publisher = publisher
+        self.guard = guard
+        self.queue: deque[tuple[InputRow, Task | None]] = deque()  # a task given: judge again
+        self.inbox_of: dict[str, str] = {}  # work path -> inbox name, for its import profile
+
+    def add(self, row: InputRow, task: Task | None = None) -> None:
+        """Queue a claimed input (with ``task``: judge it again under that task's rules)."""
+        self.queue.append((row, task))
+
+    def room(self) -> int:
+        """How many more inputs the station should claim now: four per worker in all."""
+        return 4 * self.settings.workers - len(self.queue) - self.judges.busy()
+
+    def in_hand(self) -> set[str]:
+        """The work paths queued or being judged."""
+        return {task.work_path for _, task in self.judges.tasks()} | {
+            r.work_path for r, _ in self.queue
+        }
 
     def profile_for(self, row: InputRow) -> tuple[str | None, str | None]:
         """The import profile (name, text) for an input, by file-name glob or its inbox's default."""
@@ -75,18 +108,18 @@ class Tasks(Publishing):
         )
 
     def submit(self) -> None:
-        while self.queue and self.judges.room() > 0 and self.rulebook is not None:
+        while self.queue and self.judges.room() > 0 and self.rules.rulebook is not None:
             row, task = self.queue[0]
             if task is None:
                 now = self.clock().replace(microsecond=0)
-                task = self.task_for(row, self.rulebook, now, self.settings.certify)
+                task = self.task_for(row, self.rules.rulebook, now, self.settings.certify)
             self.queue.popleft()
             self.judges.submit(row, task)
 
     def collect(self, timeout: float) -> None:
         """Apply the effects of the tasks that finished (the pool replaces dead workers)."""
         for row, output in self.judges.collect(timeout):
-            self.handle(input_key(row.id), "recording", partial(self.apply, row, output))
+            self.guard.handle(input_key(row.id), "recording", partial(self.publisher.apply, row, output))
 
     def judge_again(self, row: InputRow) -> Task | None:
         """A committed result whose files were not written: the same bytes, the recorded rules."""
@@ -94,7 +127,7 @@ class Tasks(Publishing):
         assert result_row is not None
         stored = self.ledger.facts.text_by_sha(result_row.rule_set_sha256)
         if stored is None:
-            rulebook = self.rulebook
+            rulebook = self.rules.rulebook
         else:
             rulebook = RuleBook((load_rule_set(stored[1], stored[0]),))
         if rulebook is None:  # its rules were never kept and none are valid now: next start

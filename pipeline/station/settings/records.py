@@ -48,7 +48,7 @@ class MailRouting:
 
     ``digest_quiet_s``: a lot's digest goes out when no new cell of that lot has been
     judged for this long. ``certificates_url``: see
-    :func:`pipeline.station.duties.certificate_link`. ``domain``: of the
+    :func:`pipeline.station.digests.certificate_link`. ``domain``: of the
     Message-IDs; load_settings fills in the
     sender's domain when the file gives none.
     """
