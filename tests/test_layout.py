@@ -30,6 +30,7 @@ FORBIDDEN: Mapping[str, tuple[str, ...]] = {
     # the ledger stores what others decide: the model's and the readers' records only
     "ledger": ("judge", "rulebook", "report", "mail", "station", "demo", "cli", "runner"),
     "station": ("demo", "cli"),
+    "demo": ("cli",),
     "runner": ("ledger", "station", "mail", "demo", "cli"),
     # the records everyone shares import nothing of the package above them
     "model": ("read", "judge", "rulebook", "report", "mail", "ledger", "station", "demo", "cli",
