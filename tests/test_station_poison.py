@@ -189,3 +189,56 @@ def test_a_station_killed_twice_with_one_input_in_hand_quarantines_it_as_crashin
     assert "it crashed the judge: the station process ended 2 times while recording this file" in reason
     with contextlib.suppress(StopIteration):
         next(s.certificates.rglob("CR-1.pdf"))  # may exist: the render itself was complete
+
+
+def test_an_entry_that_cannot_be_moved_is_tried_once_until_it_changes(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
+) -> None:
+    """A folder no one may move (immutable) is tried once, logged once, alerted once: the
+    probe each try writes into the inbox must not wake the station into trying again at
+    once (it did: about 500 tries, and log lines, a second). Once it changes, and its
+    back-off has passed, it is tried again."""
+    from pipeline.station import lingering, watcher
+    from pipeline.station import station as station_module
+    from tests.station_kit import running
+
+    monkeypatch.setattr(lingering, "LEFT_FIRST_WAIT_S", 1.0)
+    listings: list[Path] = []
+    real_list_entries = watcher.list_entries
+
+    def counted(folder: Path) -> watcher.Listing:
+        listings.append(folder)
+        return real_list_entries(folder)
+
+    monkeypatch.setattr(station_module, "list_entries", counted)
+    s = make_station(tmp_path / "st")
+    inbox = s.inboxes[0].folder
+    stuck = inbox / "stuck"
+    stuck.mkdir()
+    (stuck / "inside.csv").write_bytes(b"x\n")
+    if not _immutable(stuck, True):
+        pytest.skip("this filesystem has no immutable flag (chattr)")
+    try:
+        with running(s):
+            wait_until(lambda: _left_rows(s) == 1, what="the folder recorded as left in place")
+            before = len([p for p in listings if p == inbox])
+            time.sleep(3.0)  # the station idles: it lists on its reconcile turns (0.5 s)
+            inbox_listings = len([p for p in listings if p == inbox]) - before
+            tries = [r for r in caplog.records if "left in place" in r.getMessage()]
+            assert len(tries) == 1, [r.getMessage() for r in tries]
+            assert inbox_listings <= 20, f"{inbox_listings} listings of the inbox in 3 s"
+            _immutable(stuck, False)  # the fault is fixed: the folder's change time moves
+            wait_until(lambda: not stuck.exists(), what="the folder set aside once movable")
+    finally:
+        with contextlib.suppress(FileNotFoundError):
+            _immutable(stuck, False)
+    with Ledger(s.ledger) as ledger:
+        rows = ledger.facts.set_aside_rows(10)
+    assert sorted(r.state for r in rows) == ["left_in_place", "quarantined"]
+    alerts = [m for m in _mails(s.mail) if "left in place: stuck" in m.splitlines()[0]]
+    assert len(alerts) == 1
+
+
+def _left_rows(s: object) -> int:
+    with Ledger(s.ledger) as ledger:  # type: ignore[attr-defined]
+        return len(ledger.facts.set_aside_rows(10, state="left_in_place"))

@@ -100,7 +100,7 @@ class Claims:
             while pending and self.capacity() > 0 and not self.guard.paused:
                 name = pending.popleft()
                 self.guard.handle(path_key(inbox.folder / name), "claiming",
-                            partial(self.claim, inbox, name), retry=False)
+                                  partial(self.claim, inbox, name), retry=False)
             self.ready[inbox.name] = (listed_at, pending)
             if self.capacity() <= 0 or self.guard.paused:
                 return
@@ -123,7 +123,11 @@ class Claims:
             orphan_marker_s=inbox.orphan_marker_s,
         )
         self.seen[inbox.name] = dict(decision.seen)
+        lingering = self.lingering
+        lingering.forget_gone(inbox, (*listing.files, *listing.others))
         for marker in decision.orphan_markers:
+            if lingering.still_left(inbox, marker, now_s=now_s):
+                continue
             data = to_text(marker[: -len(inbox.marker_suffix)])
             self.set_aside(
                 inbox, marker, "marker",
@@ -132,11 +136,11 @@ class Claims:
                 "the data file never arrived.",
             )
         for name, other in listing.others.items():
-            if not is_temporary(name):
+            if not is_temporary(name) and not lingering.still_left(inbox, name, now_s=now_s):
                 self.set_aside(inbox, name, other.kind,
                                entry_reason(to_text(name), other.kind, other.points_to))
-        ready = tuple(n for n in decision.ready if not self.lingering.still_left(inbox, n, listing.files[n]))
-        self.lingering.alert_overdue(inbox, listing, ready)
+        ready = tuple(n for n in decision.ready if not lingering.still_left(inbox, n, now_s=now_s))
+        lingering.alert_overdue(inbox, listing, ready)
         return ready
 
     def set_aside(self, inbox: InboxSettings, name: str, kind: str, reason: str) -> None:
@@ -145,7 +149,7 @@ class Claims:
         def effect() -> None:
             self.aside.entry(self.ledger, path, inbox=inbox.name, kind=kind, reason=reason,
                              now=self.clock())
-            self.lingering.note_left(inbox, name, path)
+            self.lingering.note_left(inbox, name, path, now_s=time.monotonic())
 
         self.guard.handle(path_key(path), "setting aside", effect, retry=False)
 
@@ -250,7 +254,7 @@ class Claims:
             raise exc
         self.aside.left_in_place(self.ledger, source, inbox=inbox.name, kind="file",
                                  reason=f"{text} was not judged", exc=exc, now=self.clock())
-        self.lingering.note_left(inbox, name, source)
+        self.lingering.note_left(inbox, name, source, now_s=time.monotonic())
 
     def register(
         self, path: Path, name: str | None = None, *, known: tuple[str, int] | None = None

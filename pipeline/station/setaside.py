@@ -16,6 +16,7 @@ import errno
 import logging
 import os
 import tempfile
+import threading
 from pathlib import Path
 
 from pipeline.ledger.ledger import Ledger
@@ -92,8 +93,9 @@ def move_failed_by_itself(exc: OSError, source: Path, target_folder: Path) -> bo
 class SetAside:
     """Moves entries that are not inputs into quarantine (or leaves them) and records them."""
 
-    def __init__(self, settings: Settings) -> None:
+    def __init__(self, settings: Settings, mail_wake: threading.Event) -> None:
         self.settings = settings
+        self.mail_wake = mail_wake  # set once an alert is queued: the mail thread sends it
 
     def _alert(self, subject: str, text: str, key: str) -> list[Letter]:
         routing = self.settings.routing
@@ -154,6 +156,7 @@ class SetAside:
             inbox=inbox, name=name, kind=kind, reason=reason, now=now, final_path=str(moved),
             mails=mails,
         )
+        self.mail_wake.set()
         log.warning("%s: set aside in %s: %s", name, folder, reason.splitlines()[0])
         return moved
 
@@ -171,10 +174,11 @@ class SetAside:
         """Record (once) and alert an entry that cannot be moved out of the inbox."""
         name = to_text(path.name)
         text = (
-            f"left in place: {reason.splitlines()[0]}; the station cannot move it out of the "
+            f"left in place: {reason.splitlines()[0].rstrip('.')}; the station cannot move it out of the "
             f"inbox ({exc.strerror or exc}).\n  It leaves it there and tries again only when it "
             "changes. Move it away by hand, or let the station's user rename it."
         )
         mails = self._alert(f"left in place: {name}", text, f"left:{inbox}:{name}")
         ledger.facts.set_aside(inbox=inbox, name=name, kind=kind, reason=text, now=now, mails=mails)
+        self.mail_wake.set()
         log.error("%s: %s", name, text.replace("\n  ", " "))

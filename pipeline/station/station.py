@@ -120,7 +120,7 @@ class Station:
         self.publisher = Publisher(s, ledger, clock, self.cells, self.guard)
         self.tasks = Tasks(s, ledger, clock, self.judges, self.rules, self.publisher, self.guard)
         self.lingering = Lingering(s, self.guard)
-        self.aside = SetAside(s)
+        self.aside = SetAside(s, mail_wake)
         self.claims = Claims(
             s, ledger, clock, guard=self.guard, rules=self.rules, tasks=self.tasks,
             publisher=self.publisher, lingering=self.lingering, aside=self.aside,
