@@ -489,7 +489,9 @@ def test_mail_retry_says_how_to_send_parked_mail(
     with Ledger(s.ledger, now=when) as ledger:
         letter = Letter("alert", "<p-1@demo.example>", ("maintenance@example.com",), "alert", "text")
         mail_id = ledger.outbox.queue(letter, now=when)
-        ledger.outbox.park(mail_id, now=when, reply="550 no such mailbox")
+        lease = when + datetime.timedelta(minutes=10)
+        assert ledger.outbox.claim(mail_id, owner="test", now=when, until=lease) is not None
+        ledger.outbox.park(mail_id, owner="test", now=when, reply="550 no such mailbox")
     assert main(["mail", "retry", str(s.root)]) == 2
     out = capsys.readouterr().out
     assert out.splitlines() == [

@@ -49,6 +49,10 @@ CHECKS = (
 )
 
 
+ME = "sender-1"  # the owner id of the claims these tests make
+LEASE = datetime.timedelta(minutes=10)
+
+
 def minutes(n: float) -> datetime.datetime:
     return T0 + datetime.timedelta(minutes=n)
 
@@ -270,7 +274,7 @@ def test_a_folder_that_does_not_exist_is_refused_with_what_to_do(tmp_path: Path)
         (lambda lg: lg.inputs.mark_final(1, "deleted", "x"), "final state must be one of"),
         (lambda lg: lg.inputs.mark_published(99), "no input with id 99"),
         (lambda lg: lg.inputs.record_error(1, ""), "record_error needs a reason"),
-        (lambda lg: lg.outbox.mark_sent(99, now=T0, reply="250"), "no mail with id 99"),
+        (lambda lg: lg.outbox.mark_sent(99, owner=ME, now=T0, reply="250"), "no mail with id 99"),
         (lambda lg: lg.outbox.requeue(99, now=T0), "mail 99 is not parked"),
         (lambda lg: lg.digests.mark(LOT, [], 99), "mail 99 is not a digest"),
     ],
@@ -534,10 +538,19 @@ def test_due_mail_is_oldest_first_and_waits_for_the_certificate(ledger: Ledger) 
     assert len(ledger.outbox.due(minutes(100))) == 4
 
 
+def take(ledger: Ledger, mail_id: int, at: datetime.datetime, owner: str = ME) -> None:
+    """Claim a mail for ``owner`` for ten minutes, as a sender does before it speaks to the server."""
+    claimed = ledger.outbox.claim(mail_id, owner=owner, now=at, until=at + LEASE)
+    assert claimed is not None and claimed.claimed_by == owner
+
+
 def test_retry_and_park_bookkeeping(ledger: Ledger) -> None:
     first = ledger.outbox.queue(mail("<m1@demo.example>", "alert"), now=T0)
     second = ledger.outbox.queue(mail("<m2@demo.example>", "alert"), now=T0)
-    ledger.outbox.mark_retry(first, now=minutes(1), next_attempt_at=minutes(6), error="421 try later")
+    take(ledger, first, minutes(1))
+    ledger.outbox.mark_retry(
+        first, owner=ME, now=minutes(1), next_attempt_at=minutes(6), error="421 try later"
+    )
     assert [m.id for m in ledger.outbox.due(minutes(2))] == [second]
     row = ledger.outbox.get(first)
     assert row is not None
@@ -548,9 +561,12 @@ def test_retry_and_park_bookkeeping(ledger: Ledger) -> None:
         "421 try later",
     )
     assert [m.id for m in ledger.outbox.due(minutes(6))] == [first, second]
-    ledger.outbox.mark_sent(first, now=minutes(7), reply="250 queued as 4F2A")
-    ledger.outbox.mark_sent(first, now=minutes(8), reply="250 queued as 4F2A")  # again: no-op
-    ledger.outbox.park(second, now=minutes(7), reply="550 no such user")
+    take(ledger, first, minutes(7))
+    take(ledger, second, minutes(7))
+    ledger.outbox.mark_sent(first, owner=ME, now=minutes(7), reply="250 queued as 4F2A")
+    # again: a no-op
+    ledger.outbox.mark_sent(first, owner=ME, now=minutes(8), reply="250 queued as 4F2A")
+    ledger.outbox.park(second, owner=ME, now=minutes(7), reply="550 no such user")
     sent, parked = ledger.outbox.get(first), ledger.outbox.get(second)
     assert sent is not None and parked is not None
     assert (sent.state, sent.attempts, sent.sent_at, sent.reply) == (
@@ -563,7 +579,9 @@ def test_retry_and_park_bookkeeping(ledger: Ledger) -> None:
     assert ledger.outbox.due(minutes(60)) == []
     assert ledger.outbox.counts() == {"pending": 0, "sent": 1, "parked": 1}
     with pytest.raises(ValueError, match="not pending"):
-        ledger.outbox.mark_retry(second, now=minutes(9), next_attempt_at=minutes(10), error="x")
+        ledger.outbox.mark_retry(
+            second, owner=ME, now=minutes(9), next_attempt_at=minutes(10), error="x"
+        )
     ledger.outbox.requeue(second, now=minutes(20))
     assert [m.id for m in ledger.outbox.due(minutes(20))] == [second]
 
@@ -847,14 +865,15 @@ class LedgerMachine(RuleBasedStateMachine):
     def deliver(self, outcome: str) -> None:
         now = self._tick()
         for due in self.ledger.outbox.due(now, limit=2):
+            assert self.ledger.outbox.claim(due.id, owner=ME, now=now, until=now + LEASE)
             if outcome == "sent":
-                self.ledger.outbox.mark_sent(due.id, now=now, reply="250 ok")
+                self.ledger.outbox.mark_sent(due.id, owner=ME, now=now, reply="250 ok")
             elif outcome == "retry":
                 self.ledger.outbox.mark_retry(
-                    due.id, now=now, next_attempt_at=minutes(self.clock + 2), error="421"
+                    due.id, owner=ME, now=now, next_attempt_at=minutes(self.clock + 2), error="421"
                 )
             else:
-                self.ledger.outbox.park(due.id, now=now, reply="550 no")
+                self.ledger.outbox.park(due.id, owner=ME, now=now, reply="550 no")
 
     @rule()
     def restart(self) -> None:

@@ -26,7 +26,8 @@ SETTLE = '[inbox.main]\nfolder = "inbox"\nhandover = "settle"\nsettle_s = 1.0\n'
 def test_a_writer_that_pauses_then_appends_gives_a_new_version_and_never_alters_the_archive(
     tmp_path: Path,
 ) -> None:
-    s = make_station(tmp_path / "st", station_toml(inboxes=SETTLE))
+    # originals kept 7.2 s here (a day by default): longer than the writer's pause below
+    s = make_station(tmp_path / "st", station_toml(inboxes=SETTLE, extra="keep_originals_h = 0.002\n"))
     data = cycle_file("PW-1")
     cut = data.rindex(b"\n", 0, len(data) // 2) + 1  # half of it, ending on a whole line
     path = s.inboxes[0].folder / "paused.csv"
@@ -35,11 +36,13 @@ def test_a_writer_that_pauses_then_appends_gives_a_new_version_and_never_alters_
             writer.write(data[:cut])
             writer.flush()
             wait_until(lambda: not path.exists(), what="the first half taken")
-            time.sleep(0.5)
-            writer.write(data[cut:])  # the writer comes back: its handle follows its file
+            # the writer comes back after 5 x settle_s (its handle follows its file): past the
+            # four settles an original used to be kept, which lost the rest without an alert
+            time.sleep(5.0)
+            writer.write(data[cut:])
         wait_until(lambda: settled(s, 2), what="the whole file taken as a new version")
         wait_until(lambda: not (s.work / ".taken").exists(), timeout_s=30,
-                   what="originals removed once unchanged (4 x settle_s) and equal to their copies")
+                   what="originals removed once unchanged for keep_originals_h and equal to their copies")
         wait_until(lambda: bool(_alerts(s)), what="alert")
     with Ledger(s.ledger) as ledger:
         rows = sorted(ledger.inputs.in_state("archived", "quarantined"), key=lambda r: r.id)

@@ -41,15 +41,10 @@ def cmd_watch(args: argparse.Namespace) -> int:
     import signal
     import threading
 
-    from pipeline.station.settings import check_filesystems, smtp_settings
+    from pipeline.errors import setup_logging
+    from pipeline.station.startup import wait_for_settings
     from pipeline.station.station import Station
 
-    settings = _station_settings(args.folder)
-    check_filesystems(settings)
-    smtp = smtp_settings(settings, os.environ)
-    from pipeline.errors import setup_logging
-
-    setup_logging(settings.logs, settings.log_max_MB, settings.log_keep, verbose=not args.quiet)
     stop = threading.Event()
     interrupted = []
 
@@ -59,15 +54,31 @@ def cmd_watch(args: argparse.Namespace) -> int:
 
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
-    code = Station(settings, smtp).run(stop)
+    # a broken station.toml (or a folder, a password file) makes the station wait, not exit:
+    # a service manager would restart it every few seconds for as long as the mistake stands
+    ready = wait_for_settings(Path(args.folder), stop, os.environ)
+    if ready is not None:
+        settings, smtp = ready
+        setup_logging(settings.logs, settings.log_max_MB, settings.log_keep, verbose=not args.quiet)
+        code = Station(settings, smtp).run(stop)
+    else:
+        code = EXIT_OK
     return EXIT_INTERRUPTED if signal.SIGINT in interrupted else code
 
 
 def cmd_status(args: argparse.Namespace) -> int:
     """Print the station's queue, last cells, counts, outbox, errors and health."""
-    from pipeline.station.status import status_text
+    from pipeline.errors import SettingsError
+    from pipeline.station.status import status_text, waiting_lines
 
-    settings = _station_settings(args.folder)
+    try:
+        settings = _station_settings(args.folder)
+    except SettingsError:
+        # a station started on these settings waits for them to be fixed: say so first
+        waiting = waiting_lines(Path(args.folder))
+        if waiting:
+            print(f"station in {args.folder}: waiting to start", *waiting, sep="\n")
+        raise
     now = datetime.datetime.now(datetime.UTC)
     print(status_text(settings, now), end="")
     return EXIT_OK
@@ -92,8 +103,12 @@ def cmd_mail_retry(args: argparse.Namespace) -> int:
             domain=settings.routing.domain,
         )
         left = ledger.outbox.counts()
+    # the counts are this command's own: mail another sender held is neither sent nor failed here
     print(f"sent {counts['sent']}, delayed {counts['retry']}, parked {counts['park']}; "
           f"outbox now {left.get('pending', 0)} pending, {left.get('parked', 0)} parked")
+    if counts["elsewhere"]:
+        print(f"  {counts['elsewhere']} mail(s) were being sent by another sender at the time "
+              "(the station, or another formgate mail retry): left to it, not counted here")
     parked = left.get("parked", 0)
     if parked and not args.parked:
         # parked mail was refused for good by the server: only a deliberate retry sends it

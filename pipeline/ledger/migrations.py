@@ -263,7 +263,21 @@ _LOTS = sql_migration(
     """,
 )
 
-MIGRATIONS: tuple[Migration, ...] = (_INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS)
+# Who is sending an outbox row right now. The station's mail thread and any number of
+# `formgate mail retry` processes share one outbox: a sender claims a row (its owner id
+# and the end of its lease) in one write transaction before it speaks to the server, and
+# only that owner records the outcome, which clears the claim. A claim whose owner died
+# is taken over once its lease has run out. Both columns are set together or not at all.
+_OUTBOX_CLAIMS = sql_migration(
+    "0005_outbox_claims",
+    # only a pending row is ever claimed: an outcome clears the claim in the same UPDATE
+    """ALTER TABLE outbox ADD COLUMN claimed_by TEXT
+       CHECK (claimed_by IS NULL OR (claimed_by <> '' AND state = 'pending'))""",
+    """ALTER TABLE outbox ADD COLUMN claimed_until TEXT
+       CHECK ((claimed_until IS NULL) = (claimed_by IS NULL))""",
+)
+
+MIGRATIONS: tuple[Migration, ...] = (_INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS, _OUTBOX_CLAIMS)
 SCHEMA_VERSION = len(MIGRATIONS)
 
 _BOOTSTRAP = """

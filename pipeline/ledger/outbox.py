@@ -1,10 +1,19 @@
 """The ledger's outbox: every letter queued once per Message-ID, and its delivery steps.
 
 A message is queued once per Message-ID, becomes due (a cell's mail once the cell is
-published, a digest once its cells are recorded against it), and is sent, retried or
-parked. Every table family that queues letters with its own rows (a result's mails, an
-error's alerts, a decision's letters) inserts them with :func:`insert_mail` inside its
-own transaction. Which digest covers which cell is digests.py's.
+published, a digest once its cells are recorded against it), is claimed by one sender,
+and is sent, retried or parked by that sender. Every table family that queues letters
+with its own rows (a result's mails, an error's alerts, a decision's letters) inserts
+them with :func:`insert_mail` inside its own transaction. Which digest covers which
+cell is digests.py's.
+
+Why claims: the station's mail thread and any number of `formgate mail retry`
+processes read the same outbox, and without a claim each of them sends every due row
+it read. A claim is one UPDATE in a write transaction that succeeds only for a
+pending, due row that no other sender holds (or whose holder's lease has run out), so
+one row has one live claim at a time; the outcome is recorded only by the claim's
+owner and clears the claim. Choosing the lease is the sender's job (it knows its
+server's timeouts); the ledger only compares times.
 """
 
 from __future__ import annotations
@@ -16,6 +25,10 @@ from typing import Any
 
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.rows import PUBLISHED, MailRow, OutgoingMail, mail_row, utc_text
+
+
+class NotClaimed(ValueError):
+    """An outcome (sent, retry, park) or a release by a sender that does not hold the mail's claim."""
 
 
 def insert_mail(
@@ -69,7 +82,7 @@ class Outbox:
         return None if row is None else mail_row(row)
 
     def due(self, now: datetime.datetime, limit: int = 50) -> list[MailRow]:
-        """Pending mail whose time has come, oldest first.
+        """Pending mail whose time has come, oldest first, claimed or not (see :meth:`claim`).
 
         A failure/hold mail waits until its cell is published (its PDF exists); a
         digest waits until the cells it covers are recorded against it, except the
@@ -89,8 +102,65 @@ class Outbox:
         )
         return [mail_row(r) for r in rows]
 
-    def _mail_step(self, mail_id: int, done: str, sql: str, params: Sequence[Any]) -> None:
-        """Apply one delivery outcome to a pending mail; repeating the outcome is a no-op."""
+    def claim(
+        self,
+        mail_id: int,
+        *,
+        owner: str,
+        now: datetime.datetime,
+        until: datetime.datetime,
+        take_from: str | None = None,
+    ) -> MailRow | None:
+        """Claim a pending, due mail for ``owner`` until ``until``; the row as claimed, or None.
+
+        One UPDATE in a write transaction: it succeeds only while the mail is pending and
+        due at ``now`` and nobody else holds a live claim on it (a claim whose lease has
+        run out is taken over). ``take_from`` also takes it from that owner before its
+        lease is over: the caller knows that owner has died. A sender that already
+        holds the claim gets it again with the new lease.
+        """
+        if not owner:
+            raise ValueError("a claim needs an owner: the id of the sending process and thread")
+        at, end = utc_text(now, "now"), utc_text(until, "until")
+        if end <= at:
+            raise ValueError(f"a claim's lease must end after now ({end} is not after {at})")
+        with self.db.write() as conn:
+            cur = conn.execute(
+                "UPDATE outbox SET claimed_by = ?, claimed_until = ? "
+                "WHERE id = ? AND state = 'pending' AND next_attempt_at <= ? "
+                "AND (claimed_by IS NULL OR claimed_until <= ? OR claimed_by IN (?, ?))",
+                (owner, end, mail_id, at, at, owner, take_from or owner),
+            )
+            return self.get(mail_id) if cur.rowcount == 1 else None
+
+    def being_sent(self, now: datetime.datetime) -> list[MailRow]:
+        """Pending mail that a sender holds a live claim on at ``now``, oldest first."""
+        rows = self.db.rows(
+            "SELECT * FROM outbox WHERE state = 'pending' AND claimed_by IS NOT NULL "
+            "AND claimed_until > ? ORDER BY created_at, id",
+            (utc_text(now, "now"),),
+        )
+        return [mail_row(r) for r in rows]
+
+    def release(self, mail_id: int, *, owner: str) -> bool:
+        """Give up ``owner``'s claim without an outcome (nothing was sent); False if not held."""
+        with self.db.write() as conn:
+            cur = conn.execute(
+                "UPDATE outbox SET claimed_by = NULL, claimed_until = NULL "
+                "WHERE id = ? AND claimed_by = ?",
+                (mail_id, owner),
+            )
+            return cur.rowcount == 1
+
+    def _mail_step(
+        self, mail_id: int, owner: str, done: str, sql: str, params: Sequence[Any]
+    ) -> None:
+        """Apply one delivery outcome to a mail ``owner`` has claimed, and clear the claim.
+
+        Repeating an outcome that is final already (sent, parked) is a no-op. Raises
+        NotClaimed when ``owner`` does not hold the claim: another sender took the mail
+        over after this one's lease ran out, and only the holder records its outcome.
+        """
         with self.db.write() as conn:
             row = self.get(mail_id)
             if row is None:
@@ -99,20 +169,34 @@ class Outbox:
                 return
             if row.state != "pending":
                 raise ValueError(f"mail {mail_id} is {row.state!r}, not pending")
+            if row.claimed_by != owner:
+                raise NotClaimed(
+                    f"mail {mail_id} in {self.db.path} is claimed by "
+                    f"{row.claimed_by or 'no sender'}, not by {owner}: only the sender that "
+                    "holds its claim records what became of it. Claim it first "
+                    "(outbox.claim); a claim lost after its lease ran out stays lost"
+                )
             conn.execute(
-                f"UPDATE outbox SET attempts = attempts + 1, {sql} WHERE id = ?", (*params, mail_id)
+                f"UPDATE outbox SET attempts = attempts + 1, {sql}, "
+                "claimed_by = NULL, claimed_until = NULL WHERE id = ? AND claimed_by = ?",
+                (*params, mail_id, owner),
             )
 
-    def mark_sent(self, mail_id: int, *, now: datetime.datetime, reply: str) -> None:
-        """The server accepted the message (attempts += 1)."""
+    def mark_sent(self, mail_id: int, *, owner: str, now: datetime.datetime, reply: str) -> None:
+        """The server accepted the message (attempts += 1); ``owner`` holds its claim."""
         self._mail_step(
-            mail_id, "sent", "state = 'sent', sent_at = ?, reply = ?", (utc_text(now, "now"), reply)
+            mail_id,
+            owner,
+            "sent",
+            "state = 'sent', sent_at = ?, reply = ?",
+            (utc_text(now, "now"), reply),
         )
 
     def mark_retry(
         self,
         mail_id: int,
         *,
+        owner: str,
         now: datetime.datetime,
         next_attempt_at: datetime.datetime,
         error: str,
@@ -121,16 +205,17 @@ class Outbox:
         utc_text(now, "now")
         self._mail_step(
             mail_id,
+            owner,
             "-",
             "next_attempt_at = ?, last_error = ?",
             (utc_text(next_attempt_at, "next_attempt_at"), error),
         )
 
-    def park(self, mail_id: int, *, now: datetime.datetime, reply: str) -> None:
+    def park(self, mail_id: int, *, owner: str, now: datetime.datetime, reply: str) -> None:
         """A permanent failure (5xx): stop trying until someone requeues it (attempts += 1)."""
         utc_text(now, "now")
         self._mail_step(
-            mail_id, "parked", "state = 'parked', last_error = ?, reply = ?", (reply, reply)
+            mail_id, owner, "parked", "state = 'parked', last_error = ?, reply = ?", (reply, reply)
         )
 
     def requeue(self, mail_id: int, *, now: datetime.datetime) -> None:

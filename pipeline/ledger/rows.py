@@ -164,6 +164,8 @@ class MailRow:
     created_at: datetime.datetime
     sent_at: datetime.datetime | None
     reply: str | None = None
+    claimed_by: str | None = None  # the sender that holds the mail now (outbox.claim)
+    claimed_until: datetime.datetime | None = None  # its lease: after this, it may be taken over
 
 
 @dataclass(frozen=True, slots=True)
@@ -264,6 +266,8 @@ def mail_row(row: sqlite3.Row) -> MailRow:
         parse_time(row["created_at"]),
         maybe_time(row["sent_at"]),
         row["reply"],
+        row["claimed_by"],
+        maybe_time(row["claimed_until"]),
     )
 
 

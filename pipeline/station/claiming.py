@@ -11,6 +11,7 @@ and archiving them publishing.py's.
 from __future__ import annotations
 
 import datetime
+import errno
 import hashlib
 import logging
 import math
@@ -109,6 +110,9 @@ class Claims:
         """List one inbox and decide which files are finished; set aside what is no input."""
         try:
             listing = self.listing(inbox.folder)
+            if not listing.files and not listing.others and not inbox.folder.is_dir():
+                # a folder that is not there lists empty: an unmounted share, a removed folder
+                raise FileNotFoundError(errno.ENOENT, os.strerror(errno.ENOENT), str(inbox.folder))
         except OSError as exc:  # the folder itself: a share gone, no permission
             self.guard.inbox_trouble(inbox, exc)
             return ()

@@ -191,15 +191,24 @@ class Guard:
         key = f"inbox:{inbox.name}"
         if exc is None:
             if self.troubles.clear(key, now=self.clock()) is not None:
-                log.warning("inbox %s can be listed again", inbox.name)
+                log.warning("inbox %s is back: the station takes its files again", inbox.name)
             return
-        reason = f"inbox {inbox.name} cannot be listed ({describe(exc)})"
+        if isinstance(exc, FileNotFoundError):
+            reason = f"inbox {inbox.name} is missing (its folder {inbox.folder} is not there)"
+            what = (f"The folder of inbox {inbox.name}, {inbox.folder}, is not there: a share "
+                    "that is not mounted, or a folder removed or renamed.")
+        else:
+            reason = f"inbox {inbox.name} cannot be listed ({describe(exc)})"
+            what = f"The station cannot list {inbox.folder}: {describe(exc)}."
         trouble = self.troubles.report(
             key, reason, now=self.clock(), now_s=time.monotonic(), blocking=False
         )
-        if trouble is not None:
-            log.error("%s; the other inboxes go on", reason)
-            if not trouble.repeated:
-                self.alert(reason, f"The station cannot list {inbox.folder}: {describe(exc)}. "
-                           "Files in it wait until it can; the other inboxes go on.",
-                           key=f"inbox:{inbox.name}:{trouble.since.isoformat()}")
+        if trouble is None:
+            self.troubles.reword(key, reason)  # e.g. missing, then there but unreadable
+            return
+        log.error("%s; the other inboxes go on", reason)
+        if not trouble.repeated:
+            self.alert(reason, f"{what} Files handed over there wait until the station can "
+                       "take them; the other inboxes go on, and this one resumes by itself "
+                       "once the folder is back.",
+                       key=f"inbox:{inbox.name}:{trouble.since.isoformat()}")

@@ -1,21 +1,29 @@
 """Deliver the station's outbox: due mails from the ledger go out by SMTP, or into .eml files.
 
-Runs as one thread of the station (and once, in the foreground, for
-`formgate mail retry`). The outbox itself lives in the ledger, so a mail queued
-before a crash goes out after it; each message keeps its Message-ID across
-retries, so a rare resend is recognisable. Composing letters is mail.py's job,
-speaking SMTP smtp.py's.
+Runs as one thread of the station (and in the foreground for `formgate mail retry`,
+as often and as many at once as people start it). The outbox itself lives in the
+ledger, so a mail queued before a crash goes out after it; each message keeps its
+Message-ID across retries, so a rare resend is recognisable. Every sender claims a
+row in the ledger before it speaks to the server and records the outcome as the
+claim's owner (ledger/outbox.py), so two senders never send one row. Composing
+letters is mail.letters' job, speaking SMTP mail.smtp's.
 """
 
 from __future__ import annotations
 
+import contextlib
 import datetime
 import logging
+import os
+import secrets
+import socket
 import threading
 from collections.abc import Callable
 from pathlib import Path
 
+from pipeline.ledger.connection import BUSY_TIMEOUT_MS
 from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.outbox import NotClaimed
 from pipeline.ledger.rows import MailRow
 from pipeline.mail.letters import Letter, MailError, alert_letter, build_message
 from pipeline.mail.smtp import SmtpSettings, next_attempt_delay_s, send
@@ -26,9 +34,85 @@ log = logging.getLogger("formgate.mail")
 
 Clock = Callable[[], datetime.datetime]
 
+# The lease of a claim must outlast the slowest conversation that is still alive, or a
+# second sender would take the mail over and send it again. Each step of a conversation
+# waits at most [smtp] timeout_s for the server (smtplib's socket timeout): connecting,
+# the greeting, EHLO, STARTTLS and its TLS handshake, EHLO again, AUTH (up to three
+# exchanges), MAIL FROM, DATA, sending the message, the final reply and QUIT: 14 steps,
+# and one RCPT per recipient. Besides the conversation, a sender looks up the server's
+# name (not bounded by timeout_s; a resolver gives up within about 30 s), reads the PDF it
+# attaches, and writes the outcome, which may wait for the ledger's write lock for up to
+# its busy timeout: LEASE_MARGIN_S covers those. With the default timeout_s of 30 s a
+# claim on a one-recipient letter lasts 15 x 30 + 90 = 540 s. (A server that trickles a
+# reply a byte at a time just inside timeout_s could stretch one step past its share; no
+# mail server does that.)
+CONVERSATION_STEPS = 14
+LEASE_MARGIN_S = BUSY_TIMEOUT_MS / 1000 + 60.0
+
 
 def utc_now() -> datetime.datetime:
     return datetime.datetime.now(datetime.UTC)
+
+
+def lease_s(smtp: SmtpSettings, recipients: int) -> float:
+    """Seconds a claim on a mail to ``recipients`` addresses lasts (see CONVERSATION_STEPS).
+
+    >>> lease_s(SmtpSettings(host="mail.example.com", sender="a@example.com"), 1)
+    540.0
+    """
+    return (CONVERSATION_STEPS + max(recipients, 1)) * smtp.timeout_s + LEASE_MARGIN_S
+
+
+def _pid_namespace() -> str:
+    """The process's pid namespace on Linux ('-' elsewhere): pids are compared only within one."""
+    try:
+        return os.readlink("/proc/self/ns/pid")
+    except OSError:
+        return "-"
+
+
+def new_owner() -> str:
+    """An owner id for claims, unique per process and thread: host/pid namespace/pid/thread/token.
+
+    The random token keeps two senders apart even if a pid or thread id is used again.
+    """
+    return "/".join(
+        (
+            socket.gethostname() or "-",
+            _pid_namespace(),
+            str(os.getpid()),
+            str(threading.get_native_id()),
+            secrets.token_hex(6),
+        )
+    )
+
+
+def _process_gone(pid: int) -> bool:
+    """True if no process ``pid`` runs here (a zombie, killed but not yet reaped, counts as gone)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except PermissionError:
+        return False
+    try:
+        stat = Path(f"/proc/{pid}/stat").read_text(encoding="ascii", errors="replace")
+    except OSError:
+        return False
+    return stat.rsplit(")", 1)[-1].split()[:1] == ["Z"]
+
+
+def owner_is_gone(owner: str) -> bool:
+    """True only when ``owner`` is certainly dead: a process of this host and pid namespace
+    that no longer runs. Anything else (another host, this very process, an id that cannot
+    be read) is left to its lease."""
+    parts = owner.split("/")
+    if len(parts) != 5 or not parts[2].isdigit():
+        return False
+    host, namespace, pid = parts[0], parts[1], int(parts[2])
+    if host != (socket.gethostname() or "-") or namespace != _pid_namespace():
+        return False
+    return pid != os.getpid() and _process_gone(pid)
 
 
 def _letter(row: MailRow) -> Letter:
@@ -43,6 +127,28 @@ def _letter(row: MailRow) -> Letter:
     )
 
 
+def _claim(
+    ledger: Ledger, seen: MailRow, smtp: SmtpSettings, *, owner: str, now: datetime.datetime
+) -> MailRow | None:
+    """Claim ``seen`` for ``owner``; None while another sender holds it (or has just done it)."""
+    holder = seen.claimed_by
+    live = holder is not None and holder != owner and seen.claimed_until is not None and (
+        seen.claimed_until > now
+    )
+    gone = live and owner_is_gone(str(holder))
+    if live and not gone:
+        return None
+    until = now + datetime.timedelta(seconds=lease_s(smtp, len(seen.recipients)))
+    row = ledger.outbox.claim(
+        seen.id, owner=owner, now=now, until=until, take_from=holder if gone else None
+    )
+    if row is not None and holder is not None and holder != owner:
+        why = "its process is gone" if gone else f"its lease ran out at {seen.claimed_until}"
+        log.warning("taking over mail %s from sender %s (%s): %s", seen.id, holder, why,
+                    seen.subject)
+    return row
+
+
 def deliver_due(
     ledger: Ledger,
     smtp: SmtpSettings,
@@ -50,58 +156,98 @@ def deliver_due(
     station: str,
     alerts_to: tuple[str, ...],
     domain: str | None = None,
+    owner: str | None = None,
     clock: Clock = utc_now,
     stop: threading.Event | None = None,
 ) -> dict[str, int]:
-    """Send every mail that is due now; return how many were sent, retried and parked.
+    """Send every mail that is due now; return how many this sender sent, retried and parked,
+    and how many it left to another sender that held them ('elsewhere').
 
-    4xx replies and connection errors retry with capped exponential backoff; 5xx
-    replies park the mail with the server's answer and queue an alert (never for
-    an alert, so a broken alert address cannot feed itself).
+    Each row is claimed for ``owner`` (default: a new owner id) before it is sent, and
+    its outcome is recorded by that owner. 4xx replies and connection errors retry with
+    capped exponential backoff; 5xx replies park the mail with the server's answer and
+    queue an alert (never for an alert, so a broken alert address cannot feed itself).
     """
-    counts = {"sent": 0, "retry": 0, "park": 0}
-    for row in ledger.outbox.due(clock()):
+    owner = owner or new_owner()
+    counts = {"sent": 0, "retry": 0, "park": 0, "elsewhere": 0}
+    for seen in ledger.outbox.due(clock()):
         if stop is not None and stop.is_set():
             break
+        row = _claim(ledger, seen, smtp, owner=owner, now=clock())
+        if row is None:
+            counts["elsewhere"] += 1
+            continue
         try:
-            message = build_message(_letter(row), sender=smtp.sender, date=clock())
-        except (MailError, OSError, ValueError) as exc:
-            outcome, reply = "park", f"message could not be built: {exc}"
-        else:
-            result = send(message, smtp)
-            outcome, reply = result.outcome, result.reply
-        now = clock()
+            outcome = _send_claimed(
+                ledger, row, smtp, owner=owner, station=station, alerts_to=alerts_to,
+                domain=domain, clock=clock,
+            )
+        except BaseException:
+            # nothing recorded: let another sender have it at once rather than after the lease
+            with contextlib.suppress(Exception):
+                ledger.outbox.release(row.id, owner=owner)
+            raise
+        counts[outcome] += 1
+    return counts
+
+
+def _send_claimed(
+    ledger: Ledger,
+    row: MailRow,
+    smtp: SmtpSettings,
+    *,
+    owner: str,
+    station: str,
+    alerts_to: tuple[str, ...],
+    domain: str | None,
+    clock: Clock,
+) -> str:
+    """Send one claimed mail and record its outcome as ``owner``; the outcome, or 'elsewhere'
+    when another sender took the claim over meanwhile (its lease had run out)."""
+    try:
+        message = build_message(_letter(row), sender=smtp.sender, date=clock())
+    except (MailError, OSError, ValueError) as exc:
+        outcome, reply = "park", f"message could not be built: {exc}"
+    else:
+        result = send(message, smtp)
+        outcome, reply = result.outcome, result.reply
+    now = clock()
+    try:
         if outcome == "sent":
             faults.point("after_send")
-            ledger.outbox.mark_sent(row.id, now=now, reply=reply)
+            ledger.outbox.mark_sent(row.id, owner=owner, now=now, reply=reply)
             log.info("mail sent: %s to %s", row.subject, ", ".join(row.recipients))
         elif outcome == "retry":
             delay = next_attempt_delay_s(row.attempts + 1)
             ledger.outbox.mark_retry(
                 row.id,
+                owner=owner,
                 now=now,
                 next_attempt_at=now + datetime.timedelta(seconds=delay),
                 error=reply,
             )
             log.warning("mail delayed (%s); next try in %.0f s: %s", reply, delay, row.subject)
         else:
-            ledger.outbox.park(row.id, now=now, reply=reply)
+            ledger.outbox.park(row.id, owner=owner, now=now, reply=reply)
             log.error("mail parked (%s): %s", reply, row.subject)
-            if row.kind != "alert" and alerts_to:
-                alert = alert_letter(
-                    f"mail could not be delivered: {row.subject}",
-                    f"The mail server refused a message for good.\n\nSubject: {row.subject}\n"
-                    f"To: {', '.join(row.recipients)}\nServer reply: {reply}\n\n"
-                    "Fix the cause (address, server settings), then run "
-                    "`formgate mail retry STATION --parked` to send it again.",
-                    alerts_to,
-                    station=station,
-                    key=f"parked:{row.message_id}",
-                    domain=domain,
-                )
-                ledger.outbox.queue(alert, now=now)
-        counts[outcome] += 1
-    return counts
+    except NotClaimed as exc:
+        log.warning("%s (this attempt: %s, %s)", exc, outcome, reply)
+        if outcome != "sent":
+            return "elsewhere"
+    if outcome == "park" and row.kind != "alert" and alerts_to:
+        alert = alert_letter(
+            f"mail could not be delivered: {row.subject}",
+            f"The mail server refused a message for good.\n\nSubject: {row.subject}\n"
+            f"To: {', '.join(row.recipients)}\nServer reply: {reply}\n\n"
+            "Fix the cause (address, server settings), then run "
+            "`formgate mail retry STATION --parked` to send it again.",
+            alerts_to,
+            station=station,
+            key=f"parked:{row.message_id}",
+            domain=domain,
+        )
+        ledger.outbox.queue(alert, now=now)
+    return outcome
 
 
 class MailThread(threading.Thread):
@@ -129,6 +275,7 @@ class MailThread(threading.Thread):
         self.error: str | None = None
 
     def run(self) -> None:
+        owner = new_owner()  # made here, in the thread whose claims it names
         with Ledger(self.ledger_path) as ledger:
             while not self.stop_event.is_set():
                 try:
@@ -138,6 +285,7 @@ class MailThread(threading.Thread):
                         station=self.station,
                         alerts_to=self.alerts_to,
                         domain=self.domain,
+                        owner=owner,
                         stop=self.stop_event,
                     )
                     self.error = None

@@ -2,8 +2,11 @@
 
 Settle mode judges the station's own copy of a file and keeps the writer's original in
 ``work/.taken/`` (taken.py). At each review, an original that changed goes back into its
-inbox, to be taken as a new version, with one alert; one unchanged for HOLD_SETTLES
-times ``settle_s`` and equal to its copy is removed. A fault here is logged and tried
+inbox, to be taken as a new version, with one alert; one unchanged for ``keep_originals_h``
+(and at least HOLD_SETTLES times ``settle_s``) and equal to its copy is removed. A writer
+that pauses for longer than ``settle_s`` and comes back within that time is seen; one that
+comes back later still writes into a file that is no longer anywhere, so the default keeps
+an original for a day. A fault here is logged and tried
 again at the next review: it never pauses the station.
 """
 
@@ -35,7 +38,8 @@ class Originals:
         """Watch the writers' originals that settle mode keeps aside (taken.py).
 
         One that changed goes back into its inbox, to be taken as a new version, with one
-        alert; one unchanged for HOLD_SETTLES times settle_s and equal to its copy is removed.
+        alert; one unchanged for keep_originals_h (at least HOLD_SETTLES times settle_s) and
+        equal to its copy is removed.
         A fault here is logged and tried again at the next review: it never pauses the station.
         """
         now_ns = time.time_ns()
@@ -63,7 +67,8 @@ class Originals:
                         self.changed_after_taken(original, inbox)
                         continue
                     self.checked[original.path] = stat
-                if quiet_s >= HOLD_SETTLES * inbox.settle_s:
+                keep_s = max(HOLD_SETTLES * inbox.settle_s, self.settings.keep_originals_h * 3600)
+                if quiet_s >= keep_s:
                     original.path.unlink()  # the archive holds the same bytes
                     self.checked.pop(original.path, None)
             except OSError as exc:

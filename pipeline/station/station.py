@@ -154,8 +154,8 @@ class Station:
         try:
             death = self.inhand.found_at_start()
             guard.duty(lambda: self.rules.load(first=True))
-            for inbox in self.settings.inboxes:
-                inbox.folder.mkdir(parents=True, exist_ok=True)
+            # an inbox that is not there is not made here (it may be a share not mounted
+            # yet): it is a trouble of that inbox alone, and is watched once it is back
             self.judges.start()
         except BaseException:
             ledger.close()

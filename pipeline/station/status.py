@@ -16,6 +16,7 @@ from pipeline.names import from_text, to_text
 from pipeline.station.handoff import is_temporary
 from pipeline.station.settings import Settings
 from pipeline.station.waiting import overdue_entries
+from pipeline.station.startup import read_waiting
 from pipeline.station.watcher import list_entries
 
 STALE_FACTOR = 3  # a heartbeat older than this many intervals means the station is not running
@@ -32,7 +33,12 @@ def _pid_alive(pid: int) -> bool:
 
 
 def health(settings: Settings, now: datetime.datetime) -> tuple[str, dict[str, object]]:
-    """('running' | 'paused' | 'stopped' | 'not responding' | 'never started', heartbeat contents)."""
+    """('running' | 'paused' | 'waiting to start' | 'stopped' | 'not responding' | 'never
+    started', heartbeat contents); a station that waits to start shows its reason, never the
+    heartbeat its predecessor left."""
+    waiting = read_waiting(settings.root)
+    if waiting is not None and _pid_alive(waiting.pid):
+        return "waiting to start", {}
     try:
         beat = json.loads(settings.heartbeat.read_text(encoding="utf-8"))
     except (FileNotFoundError, json.JSONDecodeError):
@@ -47,6 +53,16 @@ def health(settings: Settings, now: datetime.datetime) -> tuple[str, dict[str, o
 
 
 def _files(folder: Path) -> list[str]:
+def waiting_lines(folder: Path) -> list[str]:
+    """What a station waiting to start in ``folder`` says: why, since when, its process."""
+    waiting = read_waiting(folder)
+    if waiting is None or not _pid_alive(waiting.pid):
+        return []
+    first, *rest = waiting.reason.splitlines() or [""]
+    return [f"  since {waiting.since.isoformat(timespec='seconds')} (pid {waiting.pid}): {first}",
+            *(f"  {line.strip()}" for line in rest)]
+
+
     """Regular files with final names, as text (a name may hold any bytes)."""
     try:
         names = list_entries(folder).files
@@ -80,6 +96,8 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
     state, beat = health(settings, now)
     lines = [f"station {settings.station_name}: {state}"]
     if beat:
+    if state == "waiting to start":
+        lines += waiting_lines(settings.root)
         lines.append(
             f"  last heartbeat {beat.get('updated_at')}, pid {beat.get('pid')}, "
             f"judged since start {beat.get('judged_since_start')}"
@@ -97,6 +115,10 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
     lines.append("queue")
     for inbox in settings.inboxes:
         waiting = _files(inbox.folder)
+        if not inbox.folder.is_dir():
+            lines.append(f"  {inbox.name} ({inbox.folder}, {inbox.handover}): the folder is "
+                         "not there (a share not mounted, or removed)")
+            continue
         lines.append(
             f"  {inbox.name} ({inbox.folder}, {inbox.handover}): {len(waiting)} file(s) waiting"
         )

@@ -13,6 +13,7 @@ import logging
 import os
 import stat
 import threading
+import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -23,6 +24,8 @@ from watchdog.observers.api import BaseObserver
 from watchdog.observers.polling import PollingObserver
 
 log = logging.getLogger("formgate.watcher")
+
+RESTART_WAIT_S = 60.0  # between tries to restart an observer that cannot start (inotify limits)
 
 
 class _QuietStop(logging.Filter):
@@ -134,6 +137,8 @@ class InboxWatcher:
         self.polling = polling
         self.poll_interval_s = poll_interval_s
         self._observer: BaseObserver | None = None
+        self._missing = False  # its folder was not there: say so when it is watched again
+        self._next_try_s = 0.0  # a failed restart is tried again no sooner than this
         self.restarts = 0
 
     def _new_observer(self) -> BaseObserver:
@@ -149,23 +154,41 @@ class InboxWatcher:
         return observer
 
     def start(self) -> None:
+        """Start watching; a folder that is not there (an unmounted share) is watched once it
+        is back (``supervise``), and meanwhile the periodic scan reports it."""
+        if not all(os.path.isdir(f) for f in self.folders):
+            self._missing = True
+            return
         self._observer = self._new_observer()
         self._observer.start()
 
     def alive(self) -> bool:
         return self._observer is not None and self._observer.is_alive()
 
-    def supervise(self) -> bool:
-        """Restart the observer if its thread has died; True if a restart happened."""
-        if self.alive():
+    def supervise(self, now_s: float | None = None) -> bool:
+        """Restart the observer if its thread has died or its folder came back; True if a
+        restart happened. A folder that went stops its observer (which sees nothing there)."""
+        now_s = time.monotonic() if now_s is None else now_s
+        if not all(os.path.isdir(f) for f in self.folders):
+            if self._observer is not None:
+                self.stop()
+            self._missing = True
             return False
-        log.warning("folder observer stopped; restarting it (the periodic scan covered the gap)")
+        if self.alive() or now_s < self._next_try_s:
+            return False
+        if self._missing:
+            log.info("watching %s again", ", ".join(str(f) for f in self.folders))
+        else:
+            log.warning("folder observer stopped; restarting it (the periodic scan covered the gap)")
+        self._missing = False
         self.stop()
         try:
             self.start()
         except OSError as exc:  # e.g. inotify watch limit: the periodic scan still works
-            log.error("cannot restart the folder observer: %s; relying on periodic scans", exc)
+            log.error("cannot restart the folder observer: %s; relying on periodic scans (tried "
+                      "again in %g s)", exc, RESTART_WAIT_S)
             self._observer = None
+            self._next_try_s = now_s + RESTART_WAIT_S
             return False
         self.restarts += 1
         self.wake.set()

@@ -228,6 +228,7 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
             max_rows=cast(int, station["max_rows"]),
             worker_memory_MB=cast(float, station["worker_memory_MB"]),
             waiting_alert_s=cast(float, station["waiting_alert_s"]),
+            keep_originals_h=cast(float, station["keep_originals_h"]),
             retry_max_s=cast(float, station["retry_max_s"]),
             reconcile_s=cast(float, station["reconcile_s"]),
             heartbeat_s=cast(float, station["heartbeat_s"]),

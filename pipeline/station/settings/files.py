@@ -152,23 +152,34 @@ def smtp_settings(
     )
 
 
-def check_filesystems(settings: Settings, stat: Callable[[Path], os.stat_result] = os.stat) -> None:
+def check_filesystems(
+    settings: Settings,
+    stat: Callable[[Path], os.stat_result] = os.stat,
+    *,
+    inboxes_may_be_missing: bool = False,
+) -> None:
     """Refuse to start unless every folder of ``all_folders()`` exists and all share one filesystem.
 
     Claiming a file renames it from folder to folder; only a rename within one
-    filesystem is atomic.
+    filesystem is atomic. With ``inboxes_may_be_missing`` an inbox that is not there or
+    cannot be reached (an unmounted share) is left out: the running station shows it as
+    a trouble of that inbox and judges the others (its filesystem is checked when it is
+    there).
     """
     first: tuple[str, Path, int] | None = None
+    inboxes = {i.folder for i in settings.inboxes}
     for label, folder in labelled_folders(settings):
         try:
             found = stat(folder)
-        except FileNotFoundError:
-            raise SettingsError(
-                f"{label}: the folder {folder} does not exist",
-                SourceRef(settings.source),
-                hint="Create it (formgate init creates the whole layout), or correct the path.",
-            ) from None
         except OSError as exc:
+            if inboxes_may_be_missing and folder in inboxes:
+                continue
+            if isinstance(exc, FileNotFoundError):
+                raise SettingsError(
+                    f"{label}: the folder {folder} does not exist",
+                    SourceRef(settings.source),
+                    hint="Create it (formgate init creates the whole layout), or correct the path.",
+                ) from None
             raise SettingsError(
                 f"{label}: the folder {folder} cannot be reached ({exc.strerror or exc})",
                 SourceRef(settings.source),

@@ -108,6 +108,7 @@ class Settings:
     waiting_alert_s: float = 3600.0
     retry_max_s: float = 60.0
     reconcile_s: float = 10.0
+    keep_originals_h: float = 24.0
     heartbeat_s: float = 10.0
     log_max_MB: float = 10.0
     log_keep: int = 5

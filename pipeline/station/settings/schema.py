@@ -125,6 +125,15 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 3600.0,
             ),
             _positive(
+                "keep_originals_h",
+                "a settle-mode writer's original is kept aside and watched this long after its "
+                "copy was taken (and at least four times settle_s); a writer that comes back "
+                "within it is seen, and its file is judged again as a new version with one "
+                "alert. Past it the original is removed (the archive holds the same bytes)",
+                "h",
+                24.0,
+            ),
+            _positive(
                 "retry_max_s",
                 "while a fault of the surroundings (a full disk, a read-only or missing folder, "
                 "an unwritable ledger) pauses the station, it tries again after 1 s, then twice "
