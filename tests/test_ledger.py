@@ -336,6 +336,28 @@ def test_a_superseding_result_recorded_first_still_leaves_one_current_result(
     assert ledger.results.get(r2).superseded_by is None  # type: ignore[union-attr]
 
 
+def _staged(ledger: Ledger, input_id: int, cell: str, stage: str | None) -> int:
+    doc = {"cell": cell} | ({"stages": [stage]} if stage else {})
+    return ledger.results.record(
+        input_id, cell_id=cell, lot=LOT, verdict="pass", hazards=(), result_json=json.dumps(doc),
+        checks=CHECKS, rule_set_name="demo_lfp", rule_set_revision="3",
+        rule_set_sha256=sha("rules"), analysed_at=T0, json_path="r.json", pdf_path=None, mails=(),
+    )
+
+
+def test_a_retest_under_another_file_name_supersedes_the_record_of_its_stage_only(
+    ledger: Ledger,
+) -> None:
+    formation = _staged(ledger, claim(ledger, "f", "S-1_formation.csv")[0].id, "S-1", "formation")
+    grading = _staged(ledger, claim(ledger, "g", "S-1_grading.csv")[0].id, "S-1", "grading")
+    retest_in = claim(ledger, "g2", "S-1_grading_retest.csv")[0]
+    other_in = claim(ledger, "w", "S-2.csv")[0]  # another cell, whole program
+    retest = _staged(ledger, retest_in.id, "S-1", "grading")
+    whole = _staged(ledger, other_in.id, "S-2", None)
+    superseded = {r: ledger.results.get(r).superseded_by for r in (formation, grading, retest, whole)}  # type: ignore[union-attr]
+    assert superseded == {formation: None, grading: retest, retest: None, whole: None}
+
+
 def test_bytes_seen_only_in_quarantine_are_judged_again_as_a_new_version(ledger: Ledger) -> None:
     bad, _ = claim(ledger, "cell C bytes", "c.csv")
     ledger.inputs.record_error(bad.id, "c.csv: no rule set covers cell type 'DEMO-X9'")
@@ -597,7 +619,7 @@ def test_each_passed_cell_is_in_exactly_one_digest(ledger: Ledger) -> None:
         if n < 3:
             ledger.inputs.mark_published(row.id)  # the fourth has no certificate yet
     failed, _ = claim(ledger, "failed cell", "x.csv")
-    record(ledger, failed.id, verdict="fail")
+    record(ledger, failed.id, verdict="fail", cell="DEMO-0099")
     ledger.inputs.mark_published(failed.id)
     other, _ = claim(ledger, "other lot", "o.csv")
     record(ledger, other.id, lot="DEMO-LOT-08")

@@ -116,6 +116,7 @@ class Results:
                 )
             conn.execute("UPDATE inputs SET state = 'judged' WHERE id = ?", (input_id,))
             self._supersede(row.name)
+            self._supersede_record(result_id, lot, cell_id)
             return result_id
 
     def _supersede(self, name: str) -> None:
@@ -130,6 +131,32 @@ class Results:
                 "UPDATE results SET superseded_by = ? WHERE superseded_by IS NULL AND id <> ? "
                 "AND input_id IN (SELECT id FROM inputs WHERE name = ?)",
                 (latest["id"], latest["id"], name),
+            )
+
+    def _supersede_record(self, result_id: int, lot: str, cell_id: str) -> None:
+        """A retest: the cell's other current records of the same stages point at the latest
+        one, by analysis time (then arrival), as the cell's decision counts them, whatever
+        order the workers finished in.
+
+        A cell's formation and grading records are records of different stages and never
+        supersede each other; a file with no stage holds the whole program. Which record
+        *counts* for the cell's decision is the rule set's (``[records] counts``); this only
+        says which record came after which.
+        """
+        same = (
+            "FROM results WHERE lot = ? AND cell_id = ? AND verdict <> 'error' "
+            "AND coalesce(json_extract(result_json, '$.stages'), '') = "
+            "coalesce((SELECT json_extract(result_json, '$.stages') FROM results WHERE id = ?), '')"
+        )
+        latest = self.db.one(
+            f"SELECT id {same} ORDER BY analysed_at DESC, input_id DESC LIMIT 1",
+            (lot, cell_id, result_id),
+        )
+        if latest is not None:
+            self.db.rows(
+                f"UPDATE results SET superseded_by = ? WHERE superseded_by IS NULL AND id <> ? "
+                f"AND id IN (SELECT id {same})",
+                (latest["id"], latest["id"], lot, cell_id, result_id),
             )
 
     def of_input(self, input_id: int) -> ResultRow | None:

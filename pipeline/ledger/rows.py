@@ -105,7 +105,8 @@ class CheckRowData:
 
 @dataclass(frozen=True, slots=True)
 class ResultRow:
-    """A recorded judgement. ``superseded_by`` is the result of a later version of the same file."""
+    """A recorded judgement. ``superseded_by``: the result that came after it, of a later version
+    of the same file or a retest of the same cell and stages."""
 
     id: int
     input_id: int
