@@ -16,7 +16,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipeline.errors import InputError, ProfileError
-from pipeline.model import CellType, Trace
+from pipeline.model import CellType, SourceRef, Trace
 from pipeline.read.cyclefile import read_cycle_file
 from pipeline.read.profile import (
     DEFAULT_PROFILE,
@@ -341,10 +341,14 @@ def test_an_optional_group_of_the_file_name_pattern_may_be_absent() -> None:
     )
 
 
-def test_a_header_field_too_long_for_the_csv_module_is_still_split() -> None:
+def test_a_header_field_too_long_for_the_csv_module_is_still_split_and_refused() -> None:
     columns = ("time_s", "voltage_V", "current_A", '"' + "x" * 200_000 + '"')
     rows = [[*row, "1"] for row in basic_rows()]
-    assert len(read_cycle_file(make_csv(rows, columns).encode(), "c.csv")) == 12
+    with pytest.raises(InputError) as caught:
+        read_cycle_file(make_csv(rows, columns).encode(), "c.csv")
+    assert caught.value.where == SourceRef("c.csv", 4, 4)
+    assert "the name of column 4" in caught.value.problem
+    assert "200,002 bytes long" in caught.value.problem
 
 
 def test_a_text_column_of_numbers_with_empty_fields_and_huge_integers() -> None:
@@ -730,7 +734,9 @@ def test_ascii_utf8_and_crlf_files_read_alike(
 
 
 def test_a_head_longer_than_the_first_block_read_is_found() -> None:
-    banner = tuple(f"# note {k}: " + "x" * 90 for k in range(2_000))  # about 200 kB of head
+    # about 200 kB of comment lines (no colon: comments, not metadata entries, of which a
+    # head may hold only bounds.MAX_METADATA_ENTRIES)
+    banner = tuple(f"# note {k} " + "x" * 90 for k in range(2_000))
     text = make_csv(basic_rows(), banner=banner)
     trace = read_cycle_file(text.encode("ascii"), "c.csv")
     assert trace.cell_id == "CELL-0012"

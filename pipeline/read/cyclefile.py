@@ -18,7 +18,12 @@ from __future__ import annotations
 from collections.abc import Mapping
 
 from pipeline.model import CYCLE_FILE_STAGES, WHOLE_PROGRAM, Trace
-from pipeline.read.cyclehead import collect_metadata, decompress, split_head
+from pipeline.read.cyclehead import (
+    MAX_UNCOMPRESSED_BYTES,
+    collect_metadata,
+    decompress,
+    split_head,
+)
 from pipeline.read.cyclenumbers import data_end, find_columns, numbers, parse_rows, whole_numbers
 from pipeline.read.profile import (
     CURRENT_SIGNS,
@@ -35,7 +40,7 @@ def read_cycle_file(
     name: str,
     profile: Profile | None = None,
     *,
-    max_uncompressed_bytes: int = 512 * 2**20,
+    max_uncompressed_bytes: int = MAX_UNCOMPRESSED_BYTES,
 ) -> Trace:
     """Read one cycle file's bytes into a Trace in v1 units (s, V, A; positive = charge).
 

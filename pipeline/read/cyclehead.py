@@ -1,9 +1,11 @@
 """A cycle file's head: its bytes inflated and decoded, the ``# key: value`` metadata and the header row.
 
-Handles gzip (one member after another, never more than a cap), the text encoding (UTF-8
-with or without a byte-order mark, or Latin-1 through an import profile), the metadata
-block with the profile's defaults and file-name pattern, the stage a file says it holds,
-and the header row's fields. The data part of a large file is left as bytes: the columns
+Handles gzip (one member after another, counted while it is unpacked and never more
+than a cap), the text encoding (UTF-8 with or without a byte-order mark, or Latin-1
+through an import profile), the metadata block with the profile's defaults and file-name
+pattern, the stage a file says it holds, and the header row's fields. Every metadata key
+and value and every column name is measured as soon as it is cut out of its line and
+refused past :mod:`pipeline.read.bounds`' limit. The data part of a large file is left as bytes: the columns
 and the numbers under the header are left to :mod:`pipeline.read.cyclenumbers`, putting
 both into a Trace to :mod:`pipeline.read.cyclefile`. Anything it cannot read becomes an
 InputError naming the file and line.
@@ -17,10 +19,20 @@ from dataclasses import dataclass, field
 
 from pipeline.errors import InputError
 from pipeline.model import CYCLE_FILE_STAGES, SourceRef
+from pipeline.read.bounds import MAX_METADATA_ENTRIES, check_length, fits, shown, too_long
+from pipeline.read.gunzip import CutShort, PastCap, inflated
 from pipeline.read.profile import REQUIRED_METADATA, V1_METADATA, Profile
 
 GZIP_MAGIC = b"\x1f\x8b"
 CUT_SHORT_HINT = "Copy the file again once the cycler has finished writing it."
+# The most text formgate reads of one cycle file (unpacked, for a .csv.gz), where no
+# station setting says otherwise: 2,000,000 rows (a station's max_rows) of 128 bytes,
+# about three times a real record's rows (docs/station.md, "Sizing").
+MAX_UNCOMPRESSED_BYTES = 256 * 2**20
+
+
+class _NoHeader(InputError):
+    """The text ends before a header row: in the first block of a file, read on."""
 
 
 @dataclass
@@ -66,7 +78,7 @@ def _ascii_head(raw: bytes, name: str, profile: Profile) -> Head:
         chunk = raw if whole else raw[: raw.rfind(b"\n", 0, limit) + 1]
         try:
             head = _read_head(chunk.decode("ascii"), name, profile)
-        except InputError:
+        except _NoHeader:  # any other error stands whatever follows
             if whole:
                 raise
         else:
@@ -85,36 +97,36 @@ def decompress(data: bytes, name: str, cap: int) -> bytes:
 def inflate(data: bytes, name: str, cap: int, too_large: InputError, cut_hint: str) -> bytes:
     """A gzip file's bytes inflated, one member after another, never more than ``cap`` bytes.
 
-    Bad gzip data and data that ends early are InputErrors located at the line the text
-    had reached; more than ``cap`` bytes raises ``too_large``. Shared by every reader of
-    files that may come compressed (cycle files, OCV reading files).
+    Unpacked block by block and counted as it goes (:mod:`pipeline.read.gunzip`): past
+    ``cap`` it raises ``too_large`` having held at most ``cap`` bytes and one block. Bad
+    gzip data and data that ends early are InputErrors located at the line the text had
+    reached. Shared by every reader of files that may come compressed (cycle files, OCV
+    reading files).
     """
     parts: list[bytes] = []
-    total = 0
-    rest = data
-    while rest:  # one gzip member after another
-        inflater = zlib.decompressobj(wbits=31)  # 31 = gzip header and trailer
-        try:
-            # Asking for one byte more than the cap: output stops short only at the cap.
-            chunk = inflater.decompress(rest, cap - total + 1)
-        except zlib.error as exc:
-            raise InputError(
-                f"the file is not valid gzip data ({str(exc).rpartition(': ')[2]})",
-                SourceRef(name, b"".join(parts).count(b"\n") + 1),
-                "Copy the file again; if it is not compressed, its name must not end in .gz.",
-            ) from None
-        parts.append(chunk)
-        total += len(chunk)
-        if total > cap:
-            raise too_large
-        if not inflater.eof:
-            raise InputError(
-                "the compressed data ends early: the file is cut short",
-                SourceRef(name, b"".join(parts).count(b"\n") + 1),
-                cut_hint,
-            )
-        rest = inflater.unused_data.lstrip(b"\0")  # zero padding may follow a member
-    return b"".join(parts)
+    try:
+        for block in inflated(data, cap):
+            parts.append(block)
+    except PastCap:
+        parts.clear()
+        raise too_large from None
+    except zlib.error as exc:
+        raise InputError(
+            f"the file is not valid gzip data ({str(exc).rpartition(': ')[2]})",
+            SourceRef(name, _lines_in(parts) + 1),
+            "Copy the file again; if it is not compressed, its name must not end in .gz.",
+        ) from None
+    except CutShort:
+        raise InputError(
+            "the compressed data ends early: the file is cut short",
+            SourceRef(name, _lines_in(parts) + 1),
+            cut_hint,
+        ) from None
+    return parts[0] if len(parts) == 1 else b"".join(parts)
+
+
+def _lines_in(parts: list[bytes]) -> int:
+    return sum(part.count(b"\n") for part in parts)
 
 
 def _too_large(name: str, cap: int) -> InputError:
@@ -168,22 +180,40 @@ def _read_head(text: str, name: str, profile: Profile) -> Head:
             continue
         head.header_line = number
         head.fields = [f.strip() for f in split_fields(line, profile.delimiter)]
+        _check_column_names(head.fields, number, name)
         head.data_start = min(pos, len(text))
         return head
     if not text.strip():
-        raise InputError("the file is empty", SourceRef(name), CUT_SHORT_HINT)
-    raise InputError(
+        raise _NoHeader("the file is empty", SourceRef(name), CUT_SHORT_HINT)
+    raise _NoHeader(
         "no header row: the file ends before any line of column names",
         SourceRef(name, number),
         "A cycle file needs a header row (e.g. time_s,voltage_V,current_A) and data rows.",
     )
 
 
+def _check_column_names(fields: list[str], line: int, name: str) -> None:
+    for index, field_name in enumerate(fields):
+        if not fits(field_name):
+            raise too_long(
+                f"the name of column {index + 1} ({shown(field_name)})",
+                field_name,
+                SourceRef(name, line, index + 1),
+                "Check the header row: a column name needs a few dozen bytes at most.",
+            )
+
+
 def _add_metadata(head: Head, body: str, number: int, name: str) -> None:
     key, colon, value = body.partition(":")
-    key, value = key.strip(), value.strip()
-    if not colon or not key:
+    if not colon:
         return  # a plain comment line
+    key, value = key.strip(), value.strip()
+    if not key:
+        return
+    where = SourceRef(name, number)
+    if not fits(key):
+        raise too_long(f"the metadata key {shown(key)}", key, where)
+    check_length(value, f"metadata {key}", where)
     if key in head.metadata_lines and key in V1_METADATA:
         raise InputError(
             f"metadata {key} is given twice (lines {head.metadata_lines[key]} and {number})",
@@ -191,6 +221,13 @@ def _add_metadata(head: Head, body: str, number: int, name: str) -> None:
             "Keep one of the two lines.",
         )
     if key not in head.metadata_lines:
+        if len(head.metadata) >= MAX_METADATA_ENTRIES:
+            raise InputError(
+                f"metadata {key} is one entry more than the {MAX_METADATA_ENTRIES} formgate reads",
+                where,
+                "Check that the lines before the header are the cycler's metadata: a cycle "
+                "file needs a handful (cell_id, lot, cell_type, ...).",
+            )
         head.metadata[key] = value
         head.metadata_lines[key] = number
 
@@ -211,6 +248,7 @@ def collect_metadata(head: Head, name: str, profile: Profile) -> dict[str, str]:
         for key, value in found.groupdict().items():
             if value is None or not value.strip():
                 continue
+            check_length(value.strip(), f"metadata {key} in the file name", SourceRef(name))
             if metadata.get(key, value.strip()) != value.strip():
                 raise InputError(
                     f"metadata {key} is '{metadata[key]}' in the file but '{value.strip()}' "

@@ -5,8 +5,10 @@ line, or hundreds of millions of rows, would hold a worker for minutes and gigab
 before any reader could complain. The station's worker checks the text against the
 limits in station.toml first and stops at the first line past them, with an error
 naming the file, the line and the limit. A ``.csv.gz`` file is checked on its
-unpacked text, unpacked in blocks and thrown away (the reader unpacks it again, and
-reports a damaged stream itself). Pure: bytes and limits in, an InputError raised.
+unpacked text, unpacked in blocks, counted as it comes and thrown away: a gzip bomb is
+refused at ``max_uncompressed_MB`` having held one block, long before the worker's memory
+runs out (the reader unpacks a file within the limit again, and reports a damaged stream
+itself). Pure: bytes and limits in, an InputError raised.
 
 >>> check_text(b"a,b\\n1,2\\n", "x.csv", TextLimits(max_line_bytes=10, max_rows=5))
 >>> try:
@@ -26,46 +28,46 @@ import numpy as np
 
 from pipeline.errors import InputError
 from pipeline.model import SourceRef
+from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
+from pipeline.read.gunzip import CutShort, PastCap, inflated
 
 GZIP_MAGIC = b"\x1f\x8b"
-BLOCK_BYTES = 4 * 2**20
 _NEWLINE, _RETURN = 10, 13
 
 
 @dataclass(frozen=True, slots=True)
 class TextLimits:
-    """Longest line (bytes, without its line break) and most lines a file's text may have."""
+    """Longest line (bytes, without its line break), most lines, and most text a file may have."""
 
     max_line_bytes: int
     max_rows: int
-    max_uncompressed_bytes: int = 1024 * 2**20
+    max_uncompressed_bytes: int = MAX_UNCOMPRESSED_BYTES
 
 
-def _blocks(data: bytes, name: str, cap: int) -> Iterator[bytes]:
-    """The file's text in blocks: as it is, or unpacked from gzip members (stops at ``cap``)."""
-    if not (data[:2] == GZIP_MAGIC or name.lower().endswith(".gz")):
-        for start in range(0, len(data), BLOCK_BYTES):
-            yield data[start : start + BLOCK_BYTES]
-        return
-    rest, total = data, 0
+def _blocks(data: bytes, name: str, limits: TextLimits) -> Iterator[bytes]:
+    """The text of a gzip file in blocks, refused once it goes past ``max_uncompressed_bytes``."""
     try:
-        while rest and total <= cap:
-            inflater = zlib.decompressobj(wbits=31)
-            pending = rest
-            while pending and not inflater.eof and total <= cap:
-                block = inflater.decompress(pending, BLOCK_BYTES)
-                pending = inflater.unconsumed_tail
-                total += len(block)
-                yield block
-            if not inflater.eof:
-                return  # cut short or past the cap: the reader says which
-            rest = inflater.unused_data.lstrip(b"\0")
-    except zlib.error:
-        return  # not gzip after all: the reader reports it
+        yield from inflated(data, limits.max_uncompressed_bytes)
+    except PastCap:
+        raise _too_large(name, limits) from None
+    except (CutShort, zlib.error):
+        return  # cut short or not gzip after all: the reader says which
 
 
 def _kb(limit: int) -> str:
     return f"{limit / 1024:.3g}"
+
+
+def _too_large(name: str, limits: TextLimits) -> InputError:
+    cap = limits.max_uncompressed_bytes
+    return InputError(
+        f"the file holds more than {cap / 2**20:.6g} MB of text (unpacked), the station's limit "
+        f"max_uncompressed_MB = {cap / 2**20:.6g}",
+        SourceRef(name),
+        "The file was not judged. Check that it is one cell's record (a .gz file that unpacks "
+        "to far more than it is written by a fault); if such files are expected, raise "
+        "max_uncompressed_MB in station.toml, and worker_memory_MB with it (docs/station.md).",
+    )
 
 
 def _too_long(name: str, line: int, limits: TextLimits) -> InputError:
@@ -124,6 +126,8 @@ def check_text(data: bytes, name: str, limits: TextLimits) -> None:
     a file that has no line feed).
     """
     if not (data[:2] == GZIP_MAGIC or name.lower().endswith(".gz")):
+        if len(data) > limits.max_uncompressed_bytes:
+            raise _too_large(name, limits)
         begin = _long_line_plain(data, limits.max_line_bytes)
         if begin is not None:
             raise _too_long(name, data.count(b"\n", 0, begin) + 1, limits)
@@ -132,7 +136,7 @@ def check_text(data: bytes, name: str, limits: TextLimits) -> None:
         return
     line_feeds = returns = 0
     carried = 0  # length of the line that runs on from the previous block
-    for block in _blocks(data, name, limits.max_uncompressed_bytes):
+    for block in _blocks(data, name, limits):
         codes = np.frombuffer(block, dtype=np.uint8)
         ends = np.flatnonzero((codes == _NEWLINE) | (codes == _RETURN))
         # where each line seen in this block starts, and how long it is

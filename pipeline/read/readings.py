@@ -22,7 +22,10 @@ The format, our own:
   metadata; a reading with no lot at all is refused, a cell type may be unknown (None).
 
 Every problem is an InputError naming the file, the line and, for a field, its column
-(the 1-based field number, as the cycle-file reader counts). The bounds checked here are
+(the 1-based field number, as the cycle-file reader counts). Every text a reading keeps (its
+cell_id, lot, cell_type and other columns), every metadata key and value and every column
+name is refused past :mod:`pipeline.read.bounds`' limit in bytes, as is a head of more
+metadata entries than it allows. The bounds checked here are
 plausibility bounds (values no cell can show: a misread field, a wrong unit), never
 acceptance limits; those belong to the rule files.
 
@@ -51,6 +54,7 @@ from dataclasses import dataclass
 
 from pipeline.errors import InputError
 from pipeline.model import SourceRef, frozen_mapping
+from pipeline.read.bounds import MAX_METADATA_ENTRIES, check_length, fits, shown, too_long
 from pipeline.read.cyclehead import inflate
 
 KIND = "ocv readings"  # what ``# kind:`` says in a file of this format
@@ -109,6 +113,7 @@ def read_readings(data: bytes, name: str) -> ReadingFile:
     lines = _lines(_decode(_decompress(data, name), name))
     metadata, meta_lines, header_line = _read_head(lines, name)
     fields = _header_fields(lines[header_line - 1])
+    _check_column_names(fields, header_line, name)
     columns = _find_columns(fields, header_line, name)
     layout = _layout(name, fields, columns, metadata, meta_lines)
     readings = tuple(
@@ -202,11 +207,21 @@ def _read_head(lines: list[str], name: str) -> tuple[dict[str, str], dict[str, i
         key, value = key.strip(), value.strip()
         if not colon or not key:
             continue  # a plain comment
+        if not fits(key):
+            raise too_long(f"the metadata key {shown(key)}", key, SourceRef(name, number))
+        check_length(value, f"metadata {key}", SourceRef(name, number))
         if key in where:
             raise InputError(
                 f"metadata {key} is given twice (lines {where[key]} and {number})",
                 SourceRef(name, number),
                 "Keep one of the two lines.",
+            )
+        if len(metadata) >= MAX_METADATA_ENTRIES:
+            raise InputError(
+                f"metadata {key} is one entry more than the {MAX_METADATA_ENTRIES} formgate reads",
+                SourceRef(name, number),
+                "Check that the lines before the header are the tester's metadata: a reading "
+                "file needs a handful (kind, lot, tester, ...).",
             )
         metadata[key], where[key] = value, number
     if not any(line.strip() for line in lines):
@@ -230,6 +245,17 @@ def _split(line: str) -> list[str]:
 
 def _header_fields(line: str) -> list[str]:
     return [f.strip() for f in _split(line)]
+
+
+def _check_column_names(fields: list[str], header_line: int, name: str) -> None:
+    for index, field in enumerate(fields):
+        if not fits(field):
+            raise too_long(
+                f"the name of column {index + 1} ({shown(field)})",
+                field,
+                SourceRef(name, header_line, index + 1),
+                "Check the header row: a column name needs a few dozen bytes at most.",
+            )
 
 
 def _find_columns(fields: list[str], header_line: int, name: str) -> dict[str, int]:
@@ -261,6 +287,7 @@ class _Layout:
     fields: tuple[str, ...]
     columns: Mapping[str, int]  # column name -> 0-based field index
     extra: tuple[int, ...]  # indexes of the columns this format does not know
+    kept: tuple[int, ...]  # indexes of the columns a reading keeps as text, bounded in bytes
     lot: str  # the ``# lot`` metadata ("" when absent or empty)
     lot_line: int | None  # the line of ``# lot``, when there is one
     cell_type: str | None
@@ -276,11 +303,14 @@ def _layout(
     meta_lines: dict[str, int],
 ) -> _Layout:
     known = set(REQUIRED_COLUMNS) | set(OPTIONAL_COLUMNS)
+    extra = tuple(i for i, f in enumerate(fields) if f not in known)
+    named = tuple(columns[c] for c in ("cell_id", "lot", "cell_type") if c in columns)
     return _Layout(
         name=name,
         fields=tuple(fields),
         columns=columns,
-        extra=tuple(i for i, f in enumerate(fields) if f not in known),
+        extra=extra,
+        kept=tuple(sorted(named + extra)),
         lot=metadata.get("lot", ""),
         lot_line=meta_lines.get("lot"),
         cell_type=metadata.get("cell_type") or None,
@@ -298,6 +328,10 @@ def _reading(row: list[str], line: int, layout: _Layout) -> Reading:
             SourceRef(layout.name, line),
             _ROW_HINT,
         )
+    for index in layout.kept:
+        if not fits(row[index]):
+            value = row[index].strip()
+            check_length(value, layout.fields[index], SourceRef(layout.name, line, index + 1))
     columns = layout.columns
 
     def text(column: str) -> str:
