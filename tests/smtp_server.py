@@ -6,6 +6,7 @@ thread or socket outlives its test. The TLS files are the test-only ones in cert
 
 from __future__ import annotations
 
+import asyncio
 import email
 import email.policy
 import socket
@@ -43,13 +44,19 @@ class RecordingHandler:
     """Accepts and records mail, or answers RCPT / DATA with a fixed reply such as 451 or 550.
 
     ``rcpt_reply`` may map single addresses to a reply; the others are accepted.
+    ``data_delay_s``: a slow server, that takes this long over each message before it
+    answers DATA (other conversations go on meanwhile).
     """
 
     def __init__(
-        self, rcpt_reply: str | Mapping[str, str] | None = None, data_reply: str | None = None
+        self,
+        rcpt_reply: str | Mapping[str, str] | None = None,
+        data_reply: str | None = None,
+        data_delay_s: float = 0.0,
     ) -> None:
         self.rcpt_reply = rcpt_reply
         self.data_reply = data_reply
+        self.data_delay_s = data_delay_s
         self.received: list[Received] = []
 
     async def handle_RCPT(
@@ -64,6 +71,8 @@ class RecordingHandler:
         return "250 2.1.5 OK"
 
     async def handle_DATA(self, server: Any, session: Any, envelope: Any) -> str:
+        if self.data_delay_s:
+            await asyncio.sleep(self.data_delay_s)
         if self.data_reply:
             return self.data_reply
         self.received.append(
@@ -106,14 +115,16 @@ def smtp_server(
     starttls: bool = False,
     implicit_tls: bool = False,
     login: tuple[str, str] | None = None,
+    data_delay_s: float = 0.0,
 ) -> Iterator[Server]:
     """An aiosmtpd server on 127.0.0.1 that records what it accepts.
 
     ``starttls`` offers STARTTLS with the test server certificate and refuses mail
     before it; ``implicit_tls`` speaks TLS from the first byte; ``login`` requires
-    AUTH with that user name and password (offered only after TLS).
+    AUTH with that user name and password (offered only after TLS); ``data_delay_s``
+    makes it slow (see RecordingHandler).
     """
-    handler = RecordingHandler(rcpt_reply, data_reply)
+    handler = RecordingHandler(rcpt_reply, data_reply, data_delay_s)
     server = Server(HOST, port or free_port(), handler)
     options: dict[str, Any] = {}
     if starttls:

@@ -216,6 +216,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_settings() -> 
         digests_to=("production@example.com",),
         alerts_to=("maintenance@example.com",),
         digest_quiet_s=900.0,
+        outage_alert_s=600.0,
         domain="line-2.example.com",
         certificates_url="https://quality.example.com/formgate/certificates/",
     )
@@ -251,6 +252,8 @@ def test_defaults_of_the_schema_and_of_the_records_agree() -> None:
         if field.default is not dataclasses.MISSING:
             assert field.default == _schema_default("station", field.name) == getattr(s, field.name)
     assert MailRouting((), (), (), ()).digest_quiet_s == _schema_default("mail", "digest_quiet_s")
+    assert MailRouting((), (), (), ()).outage_alert_s == _schema_default("mail", "outage_alert_s")
+    assert s.routing.outage_alert_s == 900.0
     assert s.routing.digest_quiet_s == 1800.0
     assert (s.ledger, s.heartbeat, s.rules_dir) == (
         ROOT / "ledger.sqlite",

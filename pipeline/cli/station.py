@@ -100,7 +100,7 @@ def cmd_mail_retry(args: argparse.Namespace) -> int:
         ledger.outbox.hurry_pending(now=now)
         counts = deliver_due(
             ledger, smtp, station=settings.station_name, alerts_to=settings.routing.alerts_to,
-            domain=settings.routing.domain,
+            domain=settings.routing.domain, outage_alert_s=settings.routing.outage_alert_s,
         )
         left = ledger.outbox.counts()
     # the counts are this command's own: mail another sender held is neither sent nor failed here

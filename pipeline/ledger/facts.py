@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import datetime
 import json
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.outbox import insert_mail
@@ -77,6 +77,40 @@ class Facts:
                 "updated_at = excluded.updated_at",
                 (key, value, utc_text(now, "now")),
             )
+
+    def change_state(
+        self,
+        key: str,
+        change: Callable[[str | None], tuple[str, Sequence[OutgoingMail]] | None],
+        *,
+        now: datetime.datetime,
+    ) -> bool:
+        """Set a named value to what ``change`` makes of it, and queue its letters, in one
+        write transaction; True if ``change`` changed anything.
+
+        ``change`` gets the value in force (None if it was never set) and returns the new
+        value with the letters it calls for, or None to leave everything as it is. The
+        write lock is taken before the value is read, so two processes changing one value
+        at once take turns: neither acts on a value the other has just replaced (and a
+        letter meant to go once is queued once). ``change`` runs inside the transaction:
+        it must be quick and touch nothing else.
+        """
+        at = utc_text(now, "now")
+        with self.db.write() as conn:
+            row = self.db.one("SELECT value FROM station_state WHERE key = ?", (key,))
+            changed = change(None if row is None else str(row["value"]))
+            if changed is None:
+                return False
+            value, mails = changed
+            conn.execute(
+                "INSERT INTO station_state (key, value, updated_at) VALUES (?, ?, ?) "
+                "ON CONFLICT (key) DO UPDATE SET value = excluded.value, "
+                "updated_at = excluded.updated_at",
+                (key, value, at),
+            )
+            for mail in mails:
+                insert_mail(self.db, mail, created_at=at, result_id=None, lot=mail.lot)
+            return True
 
     def state(self, key: str) -> tuple[str, datetime.datetime] | None:
         """(value, when it was set) of a named value, or None."""

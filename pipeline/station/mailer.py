@@ -5,8 +5,9 @@ as often and as many at once as people start it). The outbox itself lives in the
 ledger, so a mail queued before a crash goes out after it; each message keeps its
 Message-ID across retries, so a rare resend is recognisable. Every sender claims a
 row in the ledger before it speaks to the server and records the outcome as the
-claim's owner (ledger/outbox.py), so two senders never send one row. Composing
-letters is mail.letters' job, speaking SMTP mail.smtp's.
+claim's owner (ledger/outbox.py), so two senders never send one row. How a delivery
+went is noted as the station's mail trouble (mailtrouble.py). Composing letters is
+mail.letters' job, speaking SMTP mail.smtp's.
 """
 
 from __future__ import annotations
@@ -27,7 +28,7 @@ from pipeline.ledger.outbox import NotClaimed
 from pipeline.ledger.rows import MailRow
 from pipeline.mail.letters import Letter, MailError, alert_letter, build_message
 from pipeline.mail.smtp import SmtpSettings, next_attempt_delay_s, send
-from pipeline.station import faults
+from pipeline.station import faults, mailtrouble
 from pipeline.station.troubles import is_environmental
 
 log = logging.getLogger("formgate.mail")
@@ -156,6 +157,7 @@ def deliver_due(
     station: str,
     alerts_to: tuple[str, ...],
     domain: str | None = None,
+    outage_alert_s: float = 900.0,
     owner: str | None = None,
     clock: Clock = utc_now,
     stop: threading.Event | None = None,
@@ -165,8 +167,10 @@ def deliver_due(
 
     Each row is claimed for ``owner`` (default: a new owner id) before it is sent, and
     its outcome is recorded by that owner. 4xx replies and connection errors retry with
-    capped exponential backoff; 5xx replies park the mail with the server's answer and
-    queue an alert (never for an alert, so a broken alert address cannot feed itself).
+    capped exponential backoff and carry on the mail trouble; a mail that goes out ends
+    it; ``outage_alert_s`` into a trouble, one alert is queued. 5xx replies park the
+    mail with the server's answer and queue an alert (never for an alert, so a broken
+    alert address cannot feed itself).
     """
     owner = owner or new_owner()
     counts = {"sent": 0, "retry": 0, "park": 0, "elsewhere": 0}
@@ -188,6 +192,19 @@ def deliver_due(
                 ledger.outbox.release(row.id, owner=owner)
             raise
         counts[outcome] += 1
+    mailtrouble.alert_if_due(
+        ledger,
+        mailtrouble.OutageAlert(
+            alerts_to=alerts_to,
+            station=station,
+            domain=domain,
+            after_s=outage_alert_s,
+            server=f"{smtp.host}:{smtp.port}",
+            sender=smtp.sender,
+            eml_folder=smtp.eml_folder if smtp.host is not None else None,
+        ),
+        now=clock(),
+    )
     return counts
 
 
@@ -234,7 +251,13 @@ def _send_claimed(
         log.warning("%s (this attempt: %s, %s)", exc, outcome, reply)
         if outcome != "sent":
             return "elsewhere"
-    if outcome == "park" and row.kind != "alert" and alerts_to:
+    if outcome == "sent":
+        ended = mailtrouble.note_success(ledger, now=now)
+        if ended is not None:
+            log.warning("mail goes out again (it could not be delivered since %s)", ended.since)
+    elif outcome == "retry":
+        mailtrouble.note_failure(ledger, reply, now=now)
+    elif row.kind != "alert" and alerts_to:
         alert = alert_letter(
             f"mail could not be delivered: {row.subject}",
             f"The mail server refused a message for good.\n\nSubject: {row.subject}\n"
@@ -261,6 +284,7 @@ class MailThread(threading.Thread):
         station: str,
         alerts_to: tuple[str, ...],
         domain: str | None,
+        outage_alert_s: float = 900.0,
         interval_s: float = 5.0,
     ) -> None:
         super().__init__(name="formgate-mail", daemon=False)
@@ -269,6 +293,7 @@ class MailThread(threading.Thread):
         self.station = station
         self.alerts_to = alerts_to
         self.domain = domain
+        self.outage_alert_s = outage_alert_s
         self.interval_s = interval_s
         self.stop_event = threading.Event()
         self.wake = threading.Event()
@@ -285,6 +310,7 @@ class MailThread(threading.Thread):
                         station=self.station,
                         alerts_to=self.alerts_to,
                         domain=self.domain,
+                        outage_alert_s=self.outage_alert_s,
                         owner=owner,
                         stop=self.stop_event,
                     )

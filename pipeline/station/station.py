@@ -148,6 +148,7 @@ class Station:
             station=self.settings.station_name,
             alerts_to=self.settings.routing.alerts_to,
             domain=self.settings.routing.domain,
+            outage_alert_s=self.settings.routing.outage_alert_s,
         )
         self.wire(ledger, mail.wake)
         guard = self.guard

@@ -14,9 +14,10 @@ from pathlib import Path
 from pipeline.ledger.ledger import Ledger
 from pipeline.names import from_text, to_text
 from pipeline.station.handoff import is_temporary
+from pipeline.station.mailtrouble import current as mail_trouble
 from pipeline.station.settings import Settings
-from pipeline.station.waiting import overdue_entries
 from pipeline.station.startup import read_waiting
+from pipeline.station.waiting import overdue_entries
 from pipeline.station.watcher import list_entries
 
 STALE_FACTOR = 3  # a heartbeat older than this many intervals means the station is not running
@@ -52,7 +53,6 @@ def health(settings: Settings, now: datetime.datetime) -> tuple[str, dict[str, o
     return ("paused" if beat.get("state") == "paused" else "running"), beat
 
 
-def _files(folder: Path) -> list[str]:
 def waiting_lines(folder: Path) -> list[str]:
     """What a station waiting to start in ``folder`` says: why, since when, its process."""
     waiting = read_waiting(folder)
@@ -63,6 +63,7 @@ def waiting_lines(folder: Path) -> list[str]:
             *(f"  {line.strip()}" for line in rest)]
 
 
+def _files(folder: Path) -> list[str]:
     """Regular files with final names, as text (a name may hold any bytes)."""
     try:
         names = list_entries(folder).files
@@ -95,9 +96,9 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
     """The whole status report as text."""
     state, beat = health(settings, now)
     lines = [f"station {settings.station_name}: {state}"]
-    if beat:
     if state == "waiting to start":
         lines += waiting_lines(settings.root)
+    if beat:
         lines.append(
             f"  last heartbeat {beat.get('updated_at')}, pid {beat.get('pid')}, "
             f"judged since start {beat.get('judged_since_start')}"
@@ -114,11 +115,11 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
     lines.append("")
     lines.append("queue")
     for inbox in settings.inboxes:
-        waiting = _files(inbox.folder)
         if not inbox.folder.is_dir():
             lines.append(f"  {inbox.name} ({inbox.folder}, {inbox.handover}): the folder is "
                          "not there (a share not mounted, or removed)")
             continue
+        waiting = _files(inbox.folder)
         lines.append(
             f"  {inbox.name} ({inbox.folder}, {inbox.handover}): {len(waiting)} file(s) waiting"
         )
@@ -137,6 +138,9 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
         noted = ledger.facts.state("paused")
         if noted and noted[0] and state not in ("running", "paused"):
             lines.insert(1, f"  last noted in the ledger: {noted[0]}")
+        mail = mail_trouble(ledger)  # noted by whichever sender tried last: the ledger knows
+        if mail is not None:
+            lines.insert(lines.index("queue") - 1, f"  {mail.shown()}")
         left: dict[str, dict[str, str]] = {}
         still_there = []
         folders = {i.name: i.folder for i in settings.inboxes}

@@ -203,6 +203,7 @@ def mail_routing(routing: Values, sender: str) -> MailRouting:
         digests_to=addresses("digests_to"),
         alerts_to=addresses("alerts_to"),
         digest_quiet_s=cast(float, routing["digest_quiet_s"]),
+        outage_alert_s=cast(float, routing["outage_alert_s"]),
         certificates_url=str(url) if url is not None else None,
         domain=str(domain)
         if domain is not None

@@ -47,7 +47,8 @@ class MailRouting:
     """Who gets which letters; an empty tuple means no letters of that kind.
 
     ``digest_quiet_s``: a lot's digest goes out when no new cell of that lot has been
-    judged for this long. ``certificates_url``: see
+    judged for this long. ``outage_alert_s``: one alert once no mail could be
+    delivered for this long (station.mailtrouble). ``certificates_url``: see
     :func:`pipeline.station.digests.certificate_link`. ``domain``: of the
     Message-IDs; load_settings fills in the
     sender's domain when the file gives none.
@@ -60,6 +61,7 @@ class MailRouting:
     digest_quiet_s: float = 1800.0
     domain: str | None = None
     certificates_url: str | None = None  # a digest links certificates under this address
+    outage_alert_s: float = 900.0
 
 
 @dataclass(frozen=True, slots=True)

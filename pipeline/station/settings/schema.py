@@ -378,6 +378,16 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 "s",
                 1800.0,
             ),
+            _positive(
+                "outage_alert_s",
+                "while no mail can be delivered for a reason that may pass (no connection, no "
+                "answer in time, a 4xx reply), formgate status shows it at once; after this "
+                "long, one alert is queued (it goes out with the waiting mail once the server "
+                "takes mail again, and a copy is written at once as an .eml file into the mail "
+                "folder)",
+                "s",
+                900.0,
+            ),
             Key(
                 "certificates_url",
                 TEXT,
