@@ -53,7 +53,7 @@ def read_cycle_file(
     metadata = collect_metadata(head, name, profile)
     columns = find_columns(head, name, profile)
     end = data_end(data_bytes, start, head, name, profile)
-    frame = parse_rows(data_bytes, start, end, head, name, profile)
+    frame = parse_rows(data_bytes, start, end, head, name, profile, keep=columns.values())
     first = head.header_line + 1
     factors = {
         "time": TIME_UNITS[profile.time_unit],

@@ -1,8 +1,10 @@
 """A cycle file's numbers: the profile's columns in the header, the data rows parsed, each value checked.
 
-The rows are parsed by pandas' C engine straight from the file's bytes; the numbers are
-converted to s, V, A (positive = charge) by the caller's factors, and step and cycle
-numbers must be whole. When pandas fails, or a field is not a number, the line (and column)
+The rows are parsed by pandas' C engine straight from the file's bytes, in chunks of
+rows, keeping only the columns the profile reads (so what parsing holds grows with the
+rows and the columns read, not with the columns a file has); the numbers are converted
+to s, V, A (positive = charge) by the caller's factors, and step and cycle numbers must be
+whole. When pandas fails, or a field is not a number, the line (and column)
 at fault is found and named, with what to do: those located messages are most of this
 module and belong beside the parsing they describe. The head (decoding, metadata, header
 row) is left to :mod:`pipeline.read.cyclehead`; whether the numbers make sense for the cell
@@ -14,6 +16,7 @@ from __future__ import annotations
 import io
 import math
 import re
+from collections.abc import Collection
 from typing import TypeVar
 
 import numpy as np
@@ -28,6 +31,9 @@ _Array = TypeVar("_Array", FloatArray, IntArray)
 REQUIRED_COLUMNS = ("time", "voltage", "current")
 _DELIMITER_NAMES = {",": "comma", ";": "semicolon", "\t": "tab"}
 _ROW_HINT = "Each row needs one field per header column; leave a missing value empty."
+# Fields pandas tokenizes and converts at once (its own low-memory reading takes about as
+# many): some tens of MB whatever the file's width, and a typical record in one chunk.
+CHUNK_FIELDS = 2**20
 
 
 def find_columns(head: Head, name: str, profile: Profile) -> dict[str, int]:
@@ -99,20 +105,36 @@ def _blank_line_error(line: int, name: str) -> InputError:
     )
 
 
-def parse_rows(data: bytes, start: int, end: int, head: Head, name: str, profile: Profile) -> pd.DataFrame:
+def parse_rows(
+    data: bytes,
+    start: int,
+    end: int,
+    head: Head,
+    name: str,
+    profile: Profile,
+    keep: Collection[int] | None = None,
+) -> pd.DataFrame:
     """Run pandas' C parser on ``data[start:end]``; on any failure, find the line at fault.
 
     Types are left to pandas to infer (asking for float64 would turn 'True' into 1.0);
     a column that is not all numbers comes back as text and :func:`numbers` names the field.
+    Only the columns in ``keep`` (0-based, all when None) and the last one (an empty last
+    field shows a short row) are in the frame, under their own numbers. The rows are
+    parsed in chunks of about CHUNK_FIELDS fields, each checked whole (the tokenizer
+    counts every row's fields) before its other columns are let go.
     """
     expected = len(head.fields)
+    wanted = None if keep is None else sorted({*keep, expected - 1})
+    if wanted is not None and len(wanted) == expected:
+        wanted = None
     if data[end:] in (b"", b"\n"):
         stream = io.BytesIO(data)  # shares the bytes; pandas reads on from the position
         stream.seek(start)
     else:
         stream = io.BytesIO(data[start:end])
+    chunks: list[pd.DataFrame] = []
     try:
-        frame = pd.read_csv(
+        with pd.read_csv(
             stream,
             encoding="utf-8",
             sep=profile.delimiter,
@@ -123,14 +145,23 @@ def parse_rows(data: bytes, start: int, end: int, head: Head, name: str, profile
             skip_blank_lines=False,
             low_memory=False,
             engine="c",
-        )
+            chunksize=max(1, CHUNK_FIELDS // expected),
+        ) as reader:
+            for chunk in reader:
+                if chunk.shape[1] != expected:  # the first row's fields are not the header's
+                    chunks.clear()
+                    break
+                chunks.append(chunk if wanted is None else chunk[wanted])
     except (ValueError, TypeError, OverflowError) as exc:  # ParserError is a ValueError
         raise _diagnose(_region(data, start, end), head, name, profile, str(exc)) from None
+    if not chunks:
+        raise _diagnose(_region(data, start, end), head, name, profile, "rows and header disagree")
+    frame = _joined(chunks)
     # Without quote marks (which may hold line breaks) or NUL bytes, pandas makes one
     # row per line; only then is counting the lines (a pass over megabytes) skipped.
     plain = data.find(b'"', start, end) < 0 and data.find(b"\0", start, end) < 0
     rows = len(frame) if plain else data.count(b"\n", start, end) + 1
-    if frame.shape[1] != expected or len(frame) != rows:
+    if len(frame) != rows:
         raise _diagnose(_region(data, start, end), head, name, profile, "rows and header disagree")
     short = np.flatnonzero(frame[expected - 1].isna().to_numpy())
     if short.size:
@@ -142,6 +173,27 @@ def parse_rows(data: bytes, start: int, end: int, head: Head, name: str, profile
             if count < expected:
                 raise _field_count_error(count, row, rows, head, name)
     return frame
+
+
+def _joined(chunks: list[pd.DataFrame]) -> pd.DataFrame:
+    """The chunks as one frame, each column of the type the whole file would have had.
+
+    Chunks of whole numbers and decimals join as decimals, as one parse would give them;
+    a column whose chunks differ otherwise (text or True/False in one, numbers or nothing
+    in another) is joined as Python objects, so that :func:`numbers` names the field that
+    is not a number instead of pandas turning True into 1.0.
+    """
+    if len(chunks) == 1:
+        return chunks[0]
+    mixed = [
+        column
+        for column in chunks[0].columns
+        if len({c[column].dtype for c in chunks}) > 1
+        and any(c[column].dtype.kind not in "iuf" for c in chunks)
+    ]
+    if mixed:
+        chunks = [c.astype(dict.fromkeys(mixed, object)) for c in chunks]
+    return pd.concat(chunks, ignore_index=True)
 
 
 def _region(data: bytes, start: int, end: int) -> str:
