@@ -192,19 +192,20 @@ def deliver_due(
                 ledger.outbox.release(row.id, owner=owner)
             raise
         counts[outcome] += 1
-    mailtrouble.alert_if_due(
-        ledger,
-        mailtrouble.OutageAlert(
-            alerts_to=alerts_to,
-            station=station,
-            domain=domain,
-            after_s=outage_alert_s,
-            server=f"{smtp.host}:{smtp.port}",
-            sender=smtp.sender,
-            eml_folder=smtp.eml_folder if smtp.host is not None else None,
-        ),
-        now=clock(),
-    )
+    if smtp.host is not None:  # .eml files have no server to be down (a full disk pauses instead)
+        mailtrouble.alert_if_due(
+            ledger,
+            mailtrouble.OutageAlert(
+                alerts_to=alerts_to,
+                station=station,
+                domain=domain,
+                after_s=outage_alert_s,
+                server=f"{smtp.host}:{smtp.port}",
+                sender=smtp.sender,
+                eml_folder=smtp.eml_folder,
+            ),
+            now=clock(),
+        )
     return counts
 
 
