@@ -20,6 +20,7 @@ from pipeline.judge.segmentation import split_steps
 from pipeline.model import WHOLE_PROGRAM, CellResult, RuleSetRef, SourceRef, VerdictKind
 from pipeline.names import safe_name
 from pipeline.read.cyclefile import file_stages, read_cycle_file
+from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.profile import Profile
 from pipeline.read.validate import drop_invalid_rows, validate_trace
 from pipeline.report.result import to_json
@@ -34,7 +35,7 @@ def judge(
     *,
     analysed_at: datetime.datetime,
     profile: Profile | None = None,
-    max_uncompressed_bytes: int = 512 * 2**20,
+    max_uncompressed_bytes: int = MAX_UNCOMPRESSED_BYTES,
     input_sha256: str | None = None,
 ) -> CellResult:
     """Read, validate, segment, measure and judge one cycle file's bytes.

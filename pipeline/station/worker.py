@@ -26,6 +26,7 @@ from pathlib import Path
 
 from pipeline.errors import FormgateError, InputError
 from pipeline.model import CellResult, SourceRef, VerdictKind
+from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.limits import TextLimits, check_text
 from pipeline.read.readings import ReadingFile, looks_like_readings, read_readings
 from pipeline.rulebook.book import RuleBook
@@ -48,7 +49,7 @@ class Task:
     analysed_at: datetime.datetime
     profile_name: str | None = None
     profile_text: str | None = None
-    max_uncompressed_bytes: int = 1024 * 2**20
+    max_uncompressed_bytes: int = MAX_UNCOMPRESSED_BYTES
     certify: str = "all"  # "all", "failed_and_held" (no PDF for a passed cell) or "none"
     limits: TextLimits | None = None  # longest line and most rows; None: not checked
     memory_note: str = ""  # names the worker's memory limit in a quarantine reason

@@ -102,7 +102,7 @@ class Settings:
     routing: MailRouting
     workers: int = 2
     max_input_MB: float = 200.0
-    max_uncompressed_MB: float = 1024.0
+    max_uncompressed_MB: float = 256.0
     task_timeout_s: float = 300.0
     max_line_kB: float = 64.0
     max_rows: int = 2_000_000

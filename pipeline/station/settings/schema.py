@@ -79,11 +79,18 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 "MB",
                 200.0,
             ),
+            # Reading holds a file's text twice for a moment (its blocks as unpacked, then
+            # joined) and the columns it reads once: measured (benchmarks/hostile_inputs.py),
+            # a worker's address space peaks at about 560 MB + 2 x the text + 180 MB per
+            # 2,000,000 rows. 256 MB of text (four times a 2,000,000-row record) peaks near
+            # 1,050 MB, half of the default worker_memory_MB; 1,024 would need about 2,800.
             _positive(
                 "max_uncompressed_MB",
-                "a .csv.gz file that unpacks to more than this is quarantined",
+                "the most text one input may hold (unpacked, for a .csv.gz); a file with more is "
+                "quarantined, a .csv.gz as soon as unpacking it passes this, so a gzip bomb costs "
+                "no more. Keep worker_memory_MB at least 800 + 2 x this",
                 "MB",
-                1024.0,
+                256.0,
             ),
             _positive(
                 "task_timeout_s",
@@ -112,7 +119,8 @@ SETTINGS_TABLES: tuple[Table, ...] = (
             _positive(
                 "worker_memory_MB",
                 "memory (address space) one worker process may use; a file that needs more is "
-                "quarantined. A worker needs about 600 MB to start, about 850 MB for 2,000,000 rows",
+                "quarantined. A worker needs about 600 MB to start, about 850 MB for 2,000,000 rows, "
+                "and 2 MB more for each MB of text it reads: at least 800 + 2 x max_uncompressed_MB",
                 "MB",
                 2048.0,
             ),
