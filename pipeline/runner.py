@@ -14,9 +14,6 @@ from pathlib import Path
 
 from pipeline import __version__
 from pipeline.errors import FormgateError, InputError
-from pipeline.judge.evaluate import evaluate
-from pipeline.judge.metrics import measure
-from pipeline.judge.segmentation import split_steps
 from pipeline.model import WHOLE_PROGRAM, CellResult, RuleSetRef, SourceRef, VerdictKind
 from pipeline.names import safe_name
 from pipeline.read.cyclefile import file_stages, read_cycle_file
@@ -44,6 +41,13 @@ def judge(
     rule set, or is implausible; that is the ``error`` verdict, with its reason.
     """
     trace = read_cycle_file(data, name, profile, max_uncompressed_bytes=max_uncompressed_bytes)
+    # The judging stack (scipy's signal processing among it) is imported once a file has
+    # been read: a file refused by hand costs a fraction of a second, not the stack's import.
+    # A station's worker imports it before its first cell (worker.prepare_process).
+    from pipeline.judge.evaluate import evaluate
+    from pipeline.judge.metrics import measure
+    from pipeline.judge.segmentation import split_steps
+
     stages = file_stages(trace.metadata)  # a file of one stage is judged on that stage's checks
     rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
     notes = validate_trace(trace, cell_type)

@@ -144,6 +144,8 @@ def prepare_process() -> None:
     into a generation the collector never scans (measured: a certificate 10-15 %
     faster). Objects made while judging and rendering are collected as before.
     """
+    import pipeline.judge.metrics  # the runner imports the judging stack only when it judges
+    import pipeline.judge.segmentation
     import pipeline.read.profile
     import pipeline.report.pdf  # with pipeline.report.certificate
     import pipeline.report.result
