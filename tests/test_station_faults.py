@@ -110,6 +110,7 @@ def test_read_only_and_missing_output_folders_pause_and_the_station_resumes(tmp_
     assert "Permission denied" in alerts[1] and "No such file or directory" in alerts[0]
     assert (s.certificates / "LOT-A" / "RO-3.pdf").exists()
     assert _beat(s)["state"] == "stopped"
+    assert _beat(s)["last_error"] == ""  # the pause's reason went with the pause
 
 
 @contextlib.contextmanager

@@ -151,6 +151,8 @@ class Guard:
         ended = self.troubles.clear(SURROUNDINGS, now=self.clock())
         if ended is not None:
             log.warning("resumed: the fault has cleared (%s)", ended.shown())
+            if self.last_error == ended.reason:
+                self.last_error = ""  # the pause is over: status no longer shows it as an error
         self.flush_unsent()
 
     def note_pause(self, shown: str) -> None:

@@ -108,9 +108,9 @@ class Settings:
     max_rows: int = 2_000_000
     worker_memory_MB: float = 2048.0
     waiting_alert_s: float = 3600.0
+    keep_originals_h: float = 24.0
     retry_max_s: float = 60.0
     reconcile_s: float = 10.0
-    keep_originals_h: float = 24.0
     heartbeat_s: float = 10.0
     log_max_MB: float = 10.0
     log_keep: int = 5
