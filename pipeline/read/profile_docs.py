@@ -1,8 +1,9 @@
 """Print docs/profiles.md: the import-profile keys (from the reader's own table) and the examples.
 
-The key table comes from ``pipeline.read.profile.describe_profile_keys`` and the
-cycle file v1 columns from ``V1_COLUMNS``, so the page cannot drift from what the
-reader accepts; the examples are the profiles that ship in rules/profiles/. Loading
+The key table comes from ``pipeline.read.profile.describe_profile_keys``, the
+cycle file v1 columns from ``V1_COLUMNS`` and the limits on names and text from
+``pipeline.read.bounds`` and ``pipeline.read.cyclehead``, so the page cannot drift from
+what the reader accepts; the examples are the profiles that ship in rules/profiles/. Loading
 and checking a profile is left to the reader; choosing one for a file, to the
 station settings.
 
@@ -17,6 +18,8 @@ from __future__ import annotations
 from collections.abc import Sequence
 from pathlib import Path
 
+from pipeline.read.bounds import MAX_METADATA_ENTRIES, MAX_TEXT_BYTES
+from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.profile import V1_COLUMNS, V1_METADATA, describe_profile_keys, load_profile
 from pipeline.shipped import RULES_DIR
 
@@ -52,6 +55,14 @@ def render_profiles_doc(examples: Sequence[tuple[str, str]]) -> str:
         "can rename columns, convert mV, mA, ms, minutes or hours, flip the current sign, read "
         "semicolons, tabs and decimal commas, skip banner lines, decode Latin-1, and take "
         "metadata from the file name or give fixed values.",
+        "",
+        f"Whatever the layout, a metadata key or value (from the file or its name) and a column "
+        f"name may take at most {MAX_TEXT_BYTES} bytes in UTF-8 (a label's cell id holds about "
+        "64 characters; a character outside ASCII takes 2 to 4 bytes), and the metadata at most "
+        f"{MAX_METADATA_ENTRIES} entries: past either the file is refused at the line (and column) "
+        f"that holds the name. `formgate check` reads at most {MAX_UNCOMPRESSED_BYTES // 2**20} "
+        "MiB of text from one file (unpacked, for a `.csv.gz`; counted while it unpacks); a "
+        "station, at most its `max_uncompressed_MB`.",
         "",
         "Every key is optional; a key left out keeps its cycle file version 1 meaning. Unknown "
         "tables and keys are errors with a suggestion, so a misspelt key never goes unnoticed. "
