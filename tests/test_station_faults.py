@@ -175,8 +175,11 @@ def test_a_full_disk_and_a_full_ledger_pause_the_station_until_there_is_room(tmp
             (inbox / ".c.csv.part").rename(inbox / "c.csv")
             wait_until(lambda: not (inbox / "c.csv").exists(), what="c.csv claimed")
             wait_until(lambda: any((s.root / "logs").glob("*")) and not settled(s, 3), what="c in hand")
-            with contextlib.suppress(AssertionError):  # the heartbeat may not fit on the disk either
-                wait_until(lambda: _paused(s, "No space left on device"), timeout_s=5, what="pause")
+            # the heartbeat is rewritten in place on a full disk: status shows why it pauses
+            wait_until(lambda: _paused(s, "No space left on device"), what="paused on a full disk")
+            report = status_text(read_settings(s.root), datetime.datetime.now(datetime.UTC))
+            assert report.splitlines()[0] == "station test-station: paused", report
+            assert "No space left on device (the disk is full) since" in report
             assert proc.poll() is None
             assert not settled(s, 3)
             filler.unlink()
@@ -230,3 +233,18 @@ def test_started_with_no_valid_rules_ever_it_waits_paused_and_judges_once_they_a
     assert "files wait in the inboxes and are judged once the rules are fixed" in _alerts(
         s, "no valid rules"
     )[0]
+
+
+def test_the_heartbeat_is_rewritten_in_place_when_the_disk_is_full(tmp_path: Path) -> None:
+    from pipeline.station.heartbeat import SIZE, read_heartbeat, write_heartbeat
+
+    with _small_filesystem(tmp_path / "disk", "1m") as disk:
+        path = disk / "heartbeat.json"
+        write_heartbeat(path, {"state": "running", "troubles": []})
+        filler = _fill(disk)
+        beat = {"state": "paused", "troubles": ["paused: No space left on device since now"]}
+        write_heartbeat(path, beat)
+        assert read_heartbeat(path) == beat
+        assert path.stat().st_size == SIZE
+        assert not list(disk.glob(".heartbeat.json*")), "no temporary file left behind"
+        filler.unlink()

@@ -29,7 +29,6 @@ tasks for the workers (tasks.py), claiming (claiming.py), entries that stay in a
 from __future__ import annotations
 
 import datetime
-import json
 import logging
 import os
 import threading
@@ -46,6 +45,7 @@ from pipeline.station.cells import CellDecisions
 from pipeline.station.claiming import Claims
 from pipeline.station.digests import DigestDuty
 from pipeline.station.guard import Guard
+from pipeline.station.heartbeat import write_heartbeat
 from pipeline.station.inhand import DEATHS_TO_QUARANTINE, Death, InHand, input_key
 from pipeline.station.judges import JudgePool
 from pipeline.station.lingering import Lingering
@@ -59,7 +59,7 @@ from pipeline.station.settings import Settings
 from pipeline.station.tasks import MB, Tasks
 from pipeline.station.troubles import describe
 from pipeline.station.watcher import Listing, list_entries
-from pipeline.writing import clean_temp_files, write_atomic
+from pipeline.writing import clean_temp_files
 
 log = logging.getLogger("formgate.station")
 
@@ -270,9 +270,7 @@ class Station:
             "last_error": self.guard.last_error,
         }
         try:
-            write_atomic(
-                (json.dumps(beat, indent=2) + "\n").encode(), self.settings.heartbeat, sync=False
-            )
+            write_heartbeat(self.settings.heartbeat, beat)  # in place when the disk is full
         except OSError as exc:
             trouble = self.guard.troubles.report(
                 "heartbeat", f"the heartbeat file cannot be written ({describe(exc)})",

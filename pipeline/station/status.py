@@ -14,6 +14,7 @@ from pathlib import Path
 from pipeline.ledger.ledger import Ledger
 from pipeline.names import from_text, to_text
 from pipeline.station.handoff import is_temporary
+from pipeline.station.heartbeat import read_heartbeat
 from pipeline.station.mailtrouble import current as mail_trouble
 from pipeline.station.settings import Settings
 from pipeline.station.startup import read_waiting
@@ -41,14 +42,14 @@ def health(settings: Settings, now: datetime.datetime) -> tuple[str, dict[str, o
     if waiting is not None and _pid_alive(waiting.pid):
         return "waiting to start", {}
     try:
-        beat = json.loads(settings.heartbeat.read_text(encoding="utf-8"))
-    except (FileNotFoundError, json.JSONDecodeError):
+        beat = read_heartbeat(settings.heartbeat)
+    except (FileNotFoundError, ValueError):
         return "never started", {}
     if beat.get("state") == "stopped":
         return "stopped", beat
     updated = datetime.datetime.fromisoformat(str(beat.get("updated_at")))
     age = (now - updated).total_seconds()
-    if age > STALE_FACTOR * settings.heartbeat_s + 5 or not _pid_alive(int(beat.get("pid", 0))):
+    if age > STALE_FACTOR * settings.heartbeat_s + 5 or not _pid_alive(int(str(beat.get("pid", 0)))):
         return "not responding", beat
     return ("paused" if beat.get("state") == "paused" else "running"), beat
 
