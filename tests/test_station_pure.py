@@ -143,6 +143,26 @@ def test_faults_of_the_surroundings_are_told_from_bugs_and_described_with_their_
     assert kind_of(OSError(errno.EROFS, "Read-only file system")) == "not writable"
 
 
+def test_a_ledger_another_process_keeps_locked_is_described_as_locked(tmp_path: Path) -> None:
+    """A real lock: a second connection holds the write lock while the first tries to write."""
+    path = tmp_path / "ledger.sqlite"
+    holder = sqlite3.connect(path, isolation_level=None)
+    holder.execute("CREATE TABLE t (x)")
+    holder.execute("BEGIN IMMEDIATE")
+    writer = sqlite3.connect(path, isolation_level=None, timeout=0.05)
+    try:
+        with pytest.raises(sqlite3.OperationalError) as locked:
+            writer.execute("INSERT INTO t VALUES (1)")
+    finally:
+        holder.execute("ROLLBACK")
+        holder.close()
+        writer.close()
+    assert is_environmental(locked.value)
+    assert describe(locked.value, ledger=path) == (
+        f"the ledger {path} is locked by another process (database is locked)"
+    )
+
+
 def test_a_trouble_pauses_backs_off_to_its_limit_and_is_alerted_once_per_episode() -> None:
     troubles = Troubles(retry_max_s=8.0)
     first = troubles.report("surroundings", "disk full", now=T0, now_s=100.0, kind="disk full")

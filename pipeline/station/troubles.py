@@ -86,6 +86,10 @@ def describe(exc: BaseException, *, ledger: object = None) -> str:
         return f"{where}: {what}" if where else what
     if isinstance(exc, sqlite3.Error):
         where = f" {ledger}" if ledger is not None else ""
+        if getattr(exc, "sqlite_errorname", "") in ("SQLITE_BUSY", "SQLITE_LOCKED"):
+            # another process held its write lock past the busy timeout (a backup, a manual
+            # sqlite3 session left open in a transaction)
+            return f"the ledger{where} is locked by another process ({exc})"
         return f"the ledger{where} cannot be written ({exc})"
     return f"{type(exc).__name__}: {exc}"
 
