@@ -140,6 +140,7 @@ def test_poison_entries_are_set_aside_and_the_station_goes_on(tmp_path: Path) ->
         assert found and why in found[0].reason, (path.name, [a.reason for a in aside])
         target = Path(found[0].final_path or "")
         assert os.path.lexists(target)
+        assert target.name.startswith(f"aside-{found[0].id:06d}_"), target.name  # leads to its row
         assert why in target.with_name(target.name + ".reason.txt").read_text()
     if can_freeze:
         left = [a for a in aside if a.name == "frozen.csv"]

@@ -33,11 +33,13 @@ class Facts:
         now: datetime.datetime,
         final_path: str | None = None,
         mails: Sequence[OutgoingMail] = (),
+        entry_id: int | None = None,
     ) -> int:
         """Record an entry that is not an input, and queue its alerts, in one transaction.
 
         With ``final_path`` it was moved to quarantine; without, it was left in place (and
         recording the same entry left in place for the same reason again adds nothing).
+        ``entry_id``: the id its quarantined name carries (:meth:`next_set_aside_id`).
         """
         at = utc_text(now, "now")
         state = "left_in_place" if final_path is None else "quarantined"
@@ -50,14 +52,20 @@ class Facts:
             if same is not None:
                 return int(same["id"])
             cur = conn.execute(
-                "INSERT INTO set_aside (inbox, name, kind, reason, noticed_at, state, final_path) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?)",
-                (inbox, name, kind, reason, at, state, final_path),
+                "INSERT INTO set_aside (id, inbox, name, kind, reason, noticed_at, state, "
+                "final_path) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                (entry_id, inbox, name, kind, reason, at, state, final_path),
             )
             for mail in mails:
                 insert_mail(self.db, mail, created_at=at, result_id=None, lot=mail.lot)
             assert cur.lastrowid is not None
             return cur.lastrowid
+
+    def next_set_aside_id(self) -> int:
+        """The id the next set-aside entry will get (one writer, the station, records them),
+        so that its quarantined name can lead to its row before the row exists."""
+        row = self.db.one("SELECT coalesce(max(id), 0) + 1 AS n FROM set_aside")
+        return 1 if row is None else int(row["n"])
 
     def set_aside_rows(self, limit: int = 10, *, state: str | None = None) -> list[SetAsideRow]:
         """Entries set aside, newest first; ``state`` 'quarantined' or 'left_in_place' filters."""

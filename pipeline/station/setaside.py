@@ -27,6 +27,8 @@ from pipeline.writing import move_into, require_folder, write_atomic
 
 log = logging.getLogger("formgate.station")
 
+ASIDE_PREFIX = "aside-"  # quarantine/aside-<set-aside id>_NAME; inputs are <input id>_NAME
+
 REASON_SUFFIX = ".reason.txt"
 # room kept after a name in quarantine for the reason file's suffix or a marker suffix
 NAME_RESERVE_BYTES = 32
@@ -129,11 +131,15 @@ class SetAside:
         name = to_text(path.name)
         folder = self.settings.quarantine
         require_folder(folder)
-        target = folder / fit(name, reserve_bytes=NAME_RESERVE_BYTES)
+        # its ledger row's id first, as inputs' quarantined names have theirs: each name leads
+        # to its row, and two entries of one name never clash
+        entry_id = ledger.facts.next_set_aside_id()
+        base = f"{ASIDE_PREFIX}{entry_id:06d}_{name}"
+        target = folder / fit(base, reserve_bytes=NAME_RESERVE_BYTES)
         n = 1
-        while target.exists() or target.is_symlink():
+        while target.exists() or target.is_symlink():  # left by a crash before its row
             n += 1
-            target = folder / fit(f"{name}~{n}", reserve_bytes=NAME_RESERVE_BYTES)
+            target = folder / fit(f"{base}~{n}", reserve_bytes=NAME_RESERVE_BYTES)
         reason_file = target.with_name(target.name + REASON_SUFFIX)
         text = (
             f"{name} was set aside by formgate (found in inbox {inbox}).\n\n{reason}\n\n"
@@ -154,7 +160,7 @@ class SetAside:
         mails = self._alert(f"set aside: {name}", reason, f"set-aside:{inbox}:{name}:{now.isoformat()}")
         ledger.facts.set_aside(
             inbox=inbox, name=name, kind=kind, reason=reason, now=now, final_path=str(moved),
-            mails=mails,
+            mails=mails, entry_id=entry_id,
         )
         self.mail_wake.set()
         log.warning("%s: set aside in %s: %s", name, folder, reason.splitlines()[0])
