@@ -15,6 +15,8 @@ from __future__ import annotations
 import datetime
 import gzip
 import math
+import subprocess
+import sys
 import time
 import zlib
 from collections.abc import Callable
@@ -380,6 +382,36 @@ def test_refusing_a_3000_emoji_cell_id_costs_less_than_reading_a_good_file() -> 
         f"reading a good file {read * 1e3:.2f} ms, refusing a 3,000-emoji cell id "
         f"{emoji_s * 1e3:.2f} ms, a 6,000-letter one {ascii_s * 1e3:.2f} ms"
     )
+
+
+def test_formgate_check_refuses_a_3000_emoji_cell_id_with_its_place_faster_than_it_judges_a_good_file(
+    tmp_path: Path,
+) -> None:
+    """The whole command, Python's start included, in real processes on real files."""
+    (tmp_path / "rules").mkdir()
+    (tmp_path / "rules" / "test.toml").write_text(RULES, encoding="utf-8")
+    (tmp_path / "good.csv").write_bytes(cycle_file("X-1"))
+    (tmp_path / "emoji.csv").write_bytes(with_cell_id(BATTERY * 3000))
+
+    def command(name: str) -> Callable[[], None]:
+        def run() -> None:
+            done = subprocess.run(
+                [sys.executable, "-m", "pipeline", "check", name, "--rules", "rules", "--no-pdf"],
+                cwd=tmp_path, capture_output=True, text=True, timeout=120, check=False,
+            )
+            results[name] = done
+
+        return run
+
+    results: dict[str, subprocess.CompletedProcess[str]] = {}
+    good_s, emoji_s = best_of(2, command("good.csv"), command("emoji.csv"))
+    refused_run = results["emoji.csv"]
+    assert refused_run.returncode == 2
+    assert refused_run.stdout.startswith(
+        "emoji.csv  error  emoji.csv, line 1: metadata cell_id is 12,000 bytes long (3,000 "
+        "characters), more than the 256 bytes formgate reads.\n    An identifier needs far fewer"
+    ), refused_run.stdout
+    assert emoji_s < good_s, f"refused in {emoji_s:.2f} s, a good file judged in {good_s:.2f} s"
 
 
 @pytest.mark.slow
