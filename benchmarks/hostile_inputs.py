@@ -281,7 +281,7 @@ def _print(rows: list[tuple[str, str, dict[str, Any]]]) -> None:
             print(f"\n{name}" + (f" ({limits})" if limits else ""))
             print(f"  {'input':<58} {'command':>8} {'work':>9} {'peak RSS':>9} {'VmPeak':>9}  outcome")
         print(
-            f"  {label:<58} {found['command_s']:>7.2f}s {found['work_s']:>8.4f}s"
+            f"  {label:<58} {found['command_s']:>7.2f}s {found['work_s']:>8.4f}s "
             f"{found['maxrss_mib']:>6.0f} MiB {found['vmpeak_mib']:>5.0f} MiB  {found['outcome'][:110]}"
         )
 
