@@ -165,7 +165,7 @@ def test_a_ledger_of_schema_4_gains_the_claim_columns_and_keeps_its_mail(tmp_pat
     finally:
         conn.close()
     with Ledger(path, now=T0) as ledger:
-        assert [name for name, _ in applied_migrations(ledger.db.conn)][-1] == "0005_outbox_claims"
+        assert "0005_outbox_claims" in [name for name, _ in applied_migrations(ledger.db.conn)]
         (row,) = ledger.outbox.due(minutes(1))
         assert (row.message_id, row.claimed_by, row.claimed_until) == ("<old@demo.example>", None,
                                                                        None)

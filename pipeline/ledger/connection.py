@@ -65,6 +65,7 @@ class Connection:
         except sqlite3.Error as exc:
             raise self._open_error(exc) from exc
         self.conn = conn
+        self._depth = 0  # write transactions open (a write inside a write joins it)
         try:
             conn.row_factory = sqlite3.Row
             conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
@@ -119,9 +120,21 @@ class Connection:
 
     @contextlib.contextmanager
     def write(self) -> Iterator[sqlite3.Connection]:
-        """One explicit write transaction: all of it commits, or none of it."""
+        """One explicit write transaction: all of it commits, or none of it.
+
+        A write inside a write joins the outer one (a review and the decision it gives are
+        written by two table families, in one transaction).
+        """
         conn = self.conn
+        if self._depth:
+            self._depth += 1
+            try:
+                yield conn
+            finally:
+                self._depth -= 1
+            return
         conn.execute("BEGIN IMMEDIATE")
+        self._depth = 1
         try:
             yield conn
             conn.execute("COMMIT")
@@ -129,6 +142,8 @@ class Connection:
             if conn.in_transaction:
                 conn.execute("ROLLBACK")
             raise
+        finally:
+            self._depth = 0
 
     def one(self, sql: str, params: Sequence[Any] = ()) -> sqlite3.Row | None:
         """The first row ``sql`` gives, or None."""

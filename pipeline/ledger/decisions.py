@@ -13,11 +13,12 @@ import datetime
 import json
 from collections.abc import Callable, Sequence
 
+from pipeline.ledger.chain import link
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.outbox import insert_mail
 from pipeline.ledger.rows import DecisionRow, OutgoingMail, decision_row, parse_time, utc_text
 
-CAUSES = ("record", "readings", "lot closed", "rules")
+CAUSES = ("record", "readings", "lot closed", "rules", "review")
 
 
 class Decisions:
@@ -62,13 +63,16 @@ class Decisions:
         basis: Sequence[str],
         now: datetime.datetime,
         letters: Callable[[DecisionRow | None], Sequence[OutgoingMail]] | None = None,
+        review_id: int | None = None,
     ) -> tuple[DecisionRow, DecisionRow | None, bool]:
         """Record the cell's decision if it differs from its latest, with its letters: ONE
         transaction. Returns (the decision in force, the one before it, whether it is new).
 
         The same verdict, reason, hazards and grade again records nothing, so
         recomputing is always safe. ``letters`` is given the decision before (or None)
-        and returns the mails this change calls for; they are queued with it.
+        and returns the mails this change calls for; they are queued with it. A decision
+        resting on a person's review names it (``review_id``, cause 'review'). Each new row
+        is chained by hash to the one before it (chain.py).
         """
         if cause not in CAUSES:
             raise ValueError(f"cause must be one of {CAUSES}, got {cause!r}")
@@ -77,14 +81,17 @@ class Decisions:
             same = last is not None and (last.verdict, last.reason, last.hazards, last.grade) == (
                 verdict, reason, tuple(hazards), grade
             )
-            if last is not None and same:
+            if last is not None and same and review_id is None:
                 return last, None, False
             cur = conn.execute(
                 "INSERT INTO decisions (cell_id, lot, verdict, reason, hazards, grade, cause, "
-                "basis, decided_at, supersedes) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                "basis, decided_at, supersedes, review_id) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (cell_id, lot, verdict, reason, json.dumps(list(hazards)), grade, cause,
-                 json.dumps(list(basis)), utc_text(now, "now"), None if last is None else last.id),
+                 json.dumps(list(basis)), utc_text(now, "now"), None if last is None else last.id,
+                 review_id),
             )
+            assert cur.lastrowid is not None
+            link(conn, "decisions", cur.lastrowid)
             new = self.db.one("SELECT * FROM decisions WHERE id = ?", (cur.lastrowid,))
             assert new is not None
             for mail in letters(last) if letters is not None else ():

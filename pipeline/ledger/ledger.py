@@ -11,13 +11,15 @@ killed at any point and, on restart, find each input at a single state boundary:
 
 Why small objects over one connection, and not one class: each table family's queries
 live in a module of their own (inputs.py, results.py, outbox.py, digests.py,
-readings.py, decisions.py, lots.py, facts.py), and a family is an object that holds
-only the shared :class:`~pipeline.ledger.connection.Connection`. A caller names the
+readings.py, decisions.py, reviews.py, lots.py, published.py, facts.py), and a family is an
+object that holds only the shared :class:`~pipeline.ledger.connection.Connection` (reviews
+also the decisions family: a review and the decision it gives are one transaction). A caller names the
 family it uses (``ledger.inputs.claim(...)``, ``ledger.outbox.due(...)``), so a reader
 finds every query where its table is, and no family can reach another's state: a write
 that spans tables (a result with its letters) is one method that opens one transaction
 and inserts the letters with :func:`pipeline.ledger.outbox.insert_mail`. The schema and
-its migrations are migrations.py's; the records a row reads as are rows.py's.
+its migrations are migrations.py's; the records a row reads as are rows.py's; the hash
+chain over decisions and reviews is chain.py's.
 
 >>> import datetime, pathlib, tempfile
 >>> t = datetime.datetime(2026, 1, 5, 8, 0, tzinfo=datetime.UTC)
@@ -41,8 +43,10 @@ from pipeline.ledger.facts import Facts
 from pipeline.ledger.inputs import Inputs
 from pipeline.ledger.lots import Lots
 from pipeline.ledger.outbox import Outbox
+from pipeline.ledger.published import Published
 from pipeline.ledger.readings import Readings
 from pipeline.ledger.results import Results
+from pipeline.ledger.reviews import Reviews
 
 
 class Ledger:
@@ -65,6 +69,8 @@ class Ledger:
         self.decisions = Decisions(self.db)
         self.lots = Lots(self.db)
         self.facts = Facts(self.db)
+        self.reviews = Reviews(self.db, self.decisions)
+        self.published = Published(self.db)
 
     @property
     def path(self) -> pathlib.Path:

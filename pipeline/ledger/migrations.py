@@ -15,6 +15,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 from pipeline.errors import FormgateError
+from pipeline.ledger.chain import rehash
 from pipeline.model import SourceRef
 
 # Marks the file as a formgate ledger in the SQLite header ("FGLG"), so another
@@ -277,7 +278,94 @@ _OUTBOX_CLAIMS = sql_migration(
        CHECK ((claimed_until IS NULL) = (claimed_by IS NULL))""",
 )
 
-MIGRATIONS: tuple[Migration, ...] = (_INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS, _OUTBOX_CLAIMS)
+# Acting on decisions. A person's review of a held or failed cell (release, reject, or a
+# retest of one stage) is a row of its own, and a decision may rest on it (cause 'review',
+# review_id); a release of a failed cell names the failed checks it accepts. Every file
+# the station publishes is recorded with its SHA-256, so that `formgate verify` can tell a
+# certificate or result from an edited one. Decisions and reviews are chained by hash
+# (chain.py): the decisions table is rebuilt for its wider cause and its new columns, and
+# the rows already there are chained in id order.
+_REVIEWS_SQL = (
+    "ALTER TABLE decisions RENAME TO decisions_before_reviews",
+    # made after the rename (a table made before it would follow the old table to its new
+    # name) and before the new decisions table (whose rows name their review)
+    """
+    CREATE TABLE reviews (
+        id INTEGER PRIMARY KEY,
+        cell_id TEXT NOT NULL CHECK (cell_id <> ''),
+        lot TEXT NOT NULL,
+        action TEXT NOT NULL CHECK (action IN ('release', 'reject', 'retest')),
+        stage TEXT CHECK ((stage IS NULL) = (action <> 'retest')),
+        accepts TEXT NOT NULL CHECK (json_valid(accepts) AND json_type(accepts) = 'array'),
+        reviewer TEXT NOT NULL CHECK (reviewer <> ''),
+        reason TEXT NOT NULL CHECK (trim(reason) <> ''),
+        reviewed_at TEXT NOT NULL,
+        decision_id INTEGER NOT NULL REFERENCES decisions (id),
+        prev_hash TEXT,
+        row_hash TEXT UNIQUE
+    ) STRICT
+    """,
+    "CREATE INDEX reviews_by_cell ON reviews (lot, cell_id, id)",
+    """
+    CREATE TABLE decisions (
+        id INTEGER PRIMARY KEY,
+        cell_id TEXT NOT NULL CHECK (cell_id <> ''),
+        lot TEXT NOT NULL,
+        verdict TEXT NOT NULL CHECK (verdict IN ('pass', 'fail', 'hold')),
+        reason TEXT NOT NULL,
+        hazards TEXT NOT NULL CHECK (json_valid(hazards) AND json_type(hazards) = 'array'),
+        grade TEXT,
+        cause TEXT NOT NULL
+            CHECK (cause IN ('record', 'readings', 'lot closed', 'rules', 'review')),
+        basis TEXT NOT NULL CHECK (json_valid(basis) AND json_type(basis) = 'array'),
+        decided_at TEXT NOT NULL,
+        supersedes INTEGER REFERENCES decisions (id),
+        review_id INTEGER REFERENCES reviews (id),
+        prev_hash TEXT,
+        row_hash TEXT UNIQUE,
+        CHECK (supersedes IS NULL OR supersedes < id),
+        CHECK (grade IS NULL OR verdict = 'pass'),
+        CHECK ((review_id IS NULL) = (cause <> 'review'))
+    ) STRICT
+    """,
+    """
+    INSERT INTO decisions (id, cell_id, lot, verdict, reason, hazards, grade, cause, basis,
+                           decided_at, supersedes)
+    SELECT id, cell_id, lot, verdict, reason, hazards, grade, cause, basis, decided_at, supersedes
+    FROM decisions_before_reviews ORDER BY id
+    """,
+    "DROP TABLE decisions_before_reviews",
+    "CREATE INDEX decisions_by_cell ON decisions (lot, cell_id, id)",
+    """
+    CREATE TABLE published (
+        id INTEGER PRIMARY KEY,
+        path TEXT NOT NULL CHECK (path <> ''),
+        sha256 TEXT NOT NULL CHECK (length(sha256) = 64 AND sha256 NOT GLOB '*[^0-9a-f]*'),
+        kind TEXT NOT NULL CHECK (kind IN ('result', 'certificate', 'cell result',
+            'cell certificate', 'lot report', 'lot export')),
+        lot TEXT,
+        cell_id TEXT,
+        result_id INTEGER REFERENCES results (id),
+        decision_id INTEGER REFERENCES decisions (id),
+        published_at TEXT NOT NULL
+    ) STRICT
+    """,
+    "CREATE INDEX published_by_sha ON published (sha256)",
+    "CREATE INDEX published_by_path ON published (path, id)",
+)
+
+
+def _reviews_and_chain(conn: sqlite3.Connection) -> None:
+    for statement in _REVIEWS_SQL:
+        conn.execute(statement)
+    rehash(conn, "decisions")
+
+
+_REVIEWS = Migration("0006_reviews_published_files_chain", _reviews_and_chain)
+
+MIGRATIONS: tuple[Migration, ...] = (
+    _INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS, _OUTBOX_CLAIMS, _REVIEWS
+)
 SCHEMA_VERSION = len(MIGRATIONS)
 
 _BOOTSTRAP = """

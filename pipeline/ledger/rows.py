@@ -184,6 +184,42 @@ class DecisionRow:
     basis: tuple[str, ...]
     decided_at: datetime.datetime
     supersedes: int | None
+    review_id: int | None = None  # the review it rests on (cause 'review')
+
+
+@dataclass(frozen=True, slots=True)
+class ReviewRow:
+    """A person's review of a held or failed cell: release, reject, or retest of one stage.
+
+    ``accepts``: for a release of a failed cell, the failed checks (rule ids) it accepts as a
+    concession; ``decision_id``: the decision it answered.
+    """
+
+    id: int
+    cell_id: str
+    lot: str
+    action: str  # 'release', 'reject' or 'retest'
+    stage: str | None  # the stage to test again (retest only)
+    accepts: tuple[str, ...]
+    reviewer: str
+    reason: str
+    reviewed_at: datetime.datetime
+    decision_id: int
+
+
+@dataclass(frozen=True, slots=True)
+class PublishedRow:
+    """A file the station published, with its SHA-256 as written, and what it shows."""
+
+    id: int
+    path: str
+    sha256: str
+    kind: str  # 'result', 'certificate', 'cell result', 'cell certificate', 'lot report', ...
+    lot: str | None
+    cell_id: str | None
+    result_id: int | None
+    decision_id: int | None
+    published_at: datetime.datetime
 
 
 @dataclass(frozen=True, slots=True)
@@ -290,6 +326,22 @@ def decision_row(r: sqlite3.Row) -> DecisionRow:
         tuple(str(b) for b in json.loads(r["basis"])),
         parse_time(r["decided_at"]),
         r["supersedes"],
+        r["review_id"],
+    )
+
+
+def review_row(r: sqlite3.Row) -> ReviewRow:
+    return ReviewRow(
+        r["id"], r["cell_id"], r["lot"], r["action"], r["stage"],
+        tuple(str(a) for a in json.loads(r["accepts"])), r["reviewer"], r["reason"],
+        parse_time(r["reviewed_at"]), r["decision_id"],
+    )
+
+
+def published_row(r: sqlite3.Row) -> PublishedRow:
+    return PublishedRow(
+        r["id"], r["path"], r["sha256"], r["kind"], r["lot"], r["cell_id"], r["result_id"],
+        r["decision_id"], parse_time(r["published_at"]),
     )
 
 
