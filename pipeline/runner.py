@@ -119,13 +119,16 @@ def output_paths(out: Path, result: CellResult) -> tuple[Path, Path]:
 def publish(result: CellResult, out: Path, *, certificate: bool = True) -> Published:
     """Write the JSON result and (for pass/fail/hold) the PDF certificate, atomically."""
     json_path, pdf_path = output_paths(out, result)
-    write_atomic(to_json(result).encode("utf-8"), json_path)
+    json_text = to_json(result)
+    write_atomic(json_text.encode("utf-8"), json_path)
     if not certificate or result.verdict.kind is VerdictKind.ERROR:
         return Published(json_path, None)
     from pipeline.report.certificate import render_html  # imported here: WeasyPrint is slow to import
     from pipeline.report.pdf import render_pdf
+    from pipeline.report.verification import verification_code
 
-    write_atomic(render_pdf(render_html(result)), pdf_path)
+    # the same verification code as a station's certificate: the JSON's, written above
+    write_atomic(render_pdf(render_html(result, verification_code(json_text))), pdf_path)
     return Published(json_path, pdf_path)
 
 

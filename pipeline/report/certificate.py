@@ -35,7 +35,8 @@ from pipeline.model import (
     VerdictKind,
     Window,
 )
-from pipeline.report import evidence, plots
+from pipeline.report import evidence, plots, verification
+from pipeline.report.result import to_json
 
 TEMPLATES_DIR = shipped.TEMPLATES_DIR
 TEMPLATE_NAME = "certificate.html.j2"
@@ -407,8 +408,15 @@ def _ica_caption(curve: Curve | None, peaks_v: tuple[float, ...]) -> str:
     return "Incremental capacity dQ/dV; dashed lines mark the peaks found."
 
 
-def build_context(result: CellResult) -> dict[str, object]:
-    """Everything the certificate template shows, already formatted as strings."""
+def build_context(result: CellResult, verification_code: str | None = None) -> dict[str, object]:
+    """Everything the certificate template shows, already formatted as strings.
+
+    ``verification_code``: the code of the result JSON published with the certificate
+    (report/verification.py); a caller that has the JSON text passes it, else it is
+    computed from the result's JSON, which is the same text.
+    """
+    if verification_code is None:
+        verification_code = verification.verification_code(to_json(result))
     hazards = importlib.import_module("pipeline.report.hazards")
     kind = result.verdict.kind
     word, headline = VERDICT_WORDS[kind]
@@ -441,7 +449,10 @@ def build_context(result: CellResult) -> dict[str, object]:
             f"Formation and grading certificate, cell {cell_id}, lot {result.lot or DASH}, "
             f"cell type {result.cell_type.name}: {word}"
         ),
-        "keywords": f"formation, grading, certificate, {word}",
+        # the code in the PDF's metadata too: `formgate verify` reads it from a copy of the
+        # certificate that was changed, and names the published certificate it claims to be
+        "keywords": f"formation, grading, certificate, {word}, "
+        f"verification code {verification_code}",
         "generator": f"formgate {result.software_version}",
         "created": format_time(result.analysed_at),
         "cell_id": cell_id,
@@ -486,6 +497,7 @@ def build_context(result: CellResult) -> dict[str, object]:
         "notes": _note_rows(result),
         "current_band": _band_text(result.current_band),
         "traceability": _traceability(result),
+        "verification": {"code": verification_code, "spaced": verification.spaced(verification_code)},
     }
 
 
@@ -502,6 +514,8 @@ def environment() -> jinja2.Environment:
     )
 
 
-def render_html(result: CellResult) -> str:
+def render_html(result: CellResult, verification_code: str | None = None) -> str:
     """The certificate of one judged cell as an HTML document (a str)."""
-    return environment().get_template(TEMPLATE_NAME).render(build_context(result))
+    return environment().get_template(TEMPLATE_NAME).render(
+        build_context(result, verification_code)
+    )

@@ -237,6 +237,7 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None] | Read
         from pipeline.ledger.history import with_history
 
         result = with_history(result, Path(task.ledger_path), task.input_id)
+    json_text = to_json(result)
     pdf = None
     wanted = task.certify == "all" or (
         task.certify == "failed_and_held" and result.verdict.kind is not VerdictKind.PASS
@@ -244,6 +245,8 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None] | Read
     if wanted:
         from pipeline.report.certificate import render_html
         from pipeline.report.pdf import render_pdf
+        from pipeline.report.verification import verification_code
 
-        pdf = render_pdf(render_html(result))
-    return result, to_json(result), pdf
+        # the certificate carries the code of the very JSON text published with it
+        pdf = render_pdf(render_html(result, verification_code(json_text)))
+    return result, json_text, pdf
