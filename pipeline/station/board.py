@@ -77,6 +77,11 @@ class Board:
             cells[_FIELDS * row + 2] = time.monotonic_ns()
             cells[_FIELDS * row + 1] = input_id
 
+    def pids(self) -> set[int]:
+        """The process ids of every worker that took a row (ended ones among them)."""
+        values = list(self._cells[:])
+        return {int(values[_FIELDS * row]) for row in range(self.rows) if values[_FIELDS * row]}
+
     def judging(self) -> dict[int, tuple[int, float]]:
         """input id -> (process id, seconds since it started) for every input being judged."""
         now = time.monotonic_ns()

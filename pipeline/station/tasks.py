@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import datetime
 import logging
+import time
 from collections import deque
 from collections.abc import Callable
 from functools import partial
@@ -30,6 +31,7 @@ from pipeline.station.worker import Task
 log = logging.getLogger("formgate.station")
 
 MB = 2**20
+WORKERS_TROUBLE = "workers"  # the key of the trouble a failing worker launcher shows
 
 
 class Tasks:
@@ -120,6 +122,30 @@ class Tasks:
         """Apply the effects of the tasks that finished (the pool replaces dead workers)."""
         for row, output in self.judges.collect(timeout):
             self.guard.handle(input_key(row.id), "recording", partial(self.publisher.apply, row, output))
+        self.show_workers_trouble()
+
+    def show_workers_trouble(self) -> None:
+        """A worker launcher that keeps dying, or workers that cannot be started, is a trouble
+        shown in status (it pauses nothing) and alerted once, until it has been quiet."""
+        guard, now_s = self.guard, time.monotonic()
+        trouble = self.judges.trouble(now_s)
+        if trouble is None:
+            ended = guard.troubles.clear(WORKERS_TROUBLE, now=self.clock())
+            if ended is not None:
+                log.warning("the worker processes are well again (%s)", ended.shown())
+            return
+        begun = guard.troubles.report(
+            WORKERS_TROUBLE, trouble.reason, now=self.clock(), now_s=now_s, blocking=False
+        )
+        if begun is None:
+            guard.troubles.reword(WORKERS_TROUBLE, trouble.reason)  # (a count that went up)
+            return
+        log.error("%s", trouble.reason)
+        if not begun.repeated:
+            guard.alert(
+                trouble.subject, f"{trouble.reason[0].upper()}{trouble.reason[1:]}.\n\n{trouble.advice}",
+                key=f"workers:{begun.since.isoformat()}",
+            )
 
     def judge_again(self, row: InputRow) -> Task | None:
         """A committed result whose files were not written: the same bytes, the recorded rules."""
