@@ -9,7 +9,9 @@ is recorded beside it (never over it), with its letters in the same transaction:
 - a cell that fails or is held because of its readings (or its lot's screens) gets a
   letter of its own: its cycle files' letters could not have said so;
 - a fail or hold that was mailed and no longer stands (a retest, a copy sent again, a
-  stage that came in) gets a short follow-up naming what stands now.
+  stage that came in) gets a short follow-up naming what stands now;
+- a fail or hold that stands as it was, only worded anew (the same hazards; for a hold,
+  the same reasons apart from the stages it waits for), is recorded but not mailed again.
 
 A cell held only while it waits for a stage gets no letter: that is the normal course.
 """
@@ -49,6 +51,19 @@ def mailed(decision: DecisionRow | None) -> bool:
     )
 
 
+def stands(before: DecisionRow, decision: CellDecision) -> bool:
+    """Whether ``decision`` is what ``before`` said, only worded anew: a fail with the same
+    hazards (a stage it waited for came in, a retest failed alike), or a hold for the same
+    reasons apart from the stages it waits for. What was mailed for ``before`` still holds."""
+    if (before.verdict, set(before.hazards)) != (decision.verdict, set(decision.hazards)):
+        return False
+
+    def real(reason: str) -> list[str]:
+        return [part for part in reason.split("; ") if part and not part.startswith(WAITING)]
+
+    return decision.verdict == "fail" or real(before.reason) == real(decision.reason)
+
+
 def change_letters(
     settings: Settings,
     *,
@@ -65,9 +80,8 @@ def change_letters(
     routing, station = settings.routing, settings.station_name
     out: list[Letter] = []
     key = f"{lot}\n{cell_id}\n{decision.verdict}\n{decision.reason}\n{before.id if before else 0}"
-    same = before is not None and (before.verdict, before.reason) == (
-        decision.verdict, decision.reason
-    )
+    # a decision that stands as it was is no news: neither a new letter nor an update
+    same = before is not None and stands(before, decision)
     if cause != "record" and not same and decision.verdict in ("fail", "hold") and not only_waiting(
         decision.reason
     ):
