@@ -131,6 +131,8 @@ class DigestDuty:
             )
             self.ledger.digests.queue(letter, [c.id for c in cells], now=now)
             self.mail_wake.set()
-            log.info(
-                "digest queued for lot %s: %d cell(s), %d newly passed", lot, len(rows), len(cells)
-            )
+            # ``cells`` are passed records (a cell's formation and grading files are two): the
+            # log counts cells, those of the new records that pass as the digest lists them
+            passing = {row.cell_id for row in rows if row.verdict == "pass"}
+            newly = len({c.cell_id for c in cells} & passing)
+            log.info("digest queued for lot %s: %d cell(s), %d newly passed", lot, len(rows), newly)
