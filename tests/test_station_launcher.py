@@ -42,6 +42,8 @@ from tests.station_kit import (
     make_station,
     running,
     settled,
+    start_watch,
+    stop_watch,
     wait_until,
 )
 
@@ -353,3 +355,59 @@ def test_the_station_outlives_its_launcher_killed_ten_times_among_worker_kills(t
     assert worker_deaths == 3
     assert len(_alerts(s, "worker launcher keeps dying")) == 1
     assert len(_alerts(s, "ALERT")) == 1, _alerts(s, "ALERT")
+
+
+def _launcher_of(station_pid: int) -> int | None:
+    """The worker launcher of process ``station_pid``: its child running the fork server."""
+    for entry in Path("/proc").iterdir():
+        if not entry.name.isdigit():
+            continue
+        try:
+            stat = (entry / "stat").read_bytes()
+            cmdline = (entry / "cmdline").read_bytes()
+        except OSError:
+            continue
+        fields = stat[stat.rindex(b")") + 2 :].split()
+        if int(fields[1]) == station_pid and fields[0] not in (b"Z", b"X") and (
+            b"multiprocessing.forkserver" in cmdline
+        ):
+            return int(entry.name)
+    return None
+
+
+def _running(proc: subprocess.Popen[bytes]) -> bool:
+    code = proc.poll()
+    assert code is None, f"the station ended with exit code {code}"
+    return True
+
+
+@pytest.mark.slow
+def test_formgate_watch_keeps_running_when_its_launcher_is_killed_twice_in_a_row(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    inbox = s.inboxes[0].folder
+    names = [f"w-{i}.csv" for i in range(1, 9)]
+    proc = start_watch(s.root)
+    killed: list[int] = []
+    try:
+        for pair_ in range(3):
+            for name in names[pair_ * 2 : pair_ * 2 + 2]:
+                drop(inbox, name, cycle_file(name[:-4].upper(), seed=len(name) + pair_))
+            for _ in range(2):  # the launcher, then the one started in its place, at once
+                wait_until(lambda: _running(proc) and _launcher_of(proc.pid) not in (None, *killed), 90,
+                           "a launcher")
+                pid = _launcher_of(proc.pid)
+                assert pid is not None
+                os.kill(pid, signal.SIGKILL)
+                killed.append(pid)
+                assert proc.poll() is None, "the station is still running"
+        for name in names[6:]:
+            drop(inbox, name, cycle_file(name[:-4].upper(), seed=9))
+        wait_until(lambda: settled(s, len(names)), 120, "every file final")
+        assert proc.poll() is None, "the station is still running"
+    finally:
+        code = stop_watch(proc)
+    assert code == 0
+    check_invariants(s, set(names))
+    assert not list(s.quarantine.iterdir())
+    with Ledger(s.ledger) as ledger:
+        assert sorted(r.cell_id for r in ledger.results.recent(100)) == sorted(n[:-4].upper() for n in names)
