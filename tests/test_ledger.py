@@ -694,13 +694,16 @@ def test_counts_since_counts_inputs_that_became_final_in_the_window(ledger: Ledg
     dup, _ = claim(ledger, "cell 0", "n0.csv")
     ledger.inputs.mark_final(dup.id, "duplicate", "archive/n0.csv.dup", now=minutes(50))
     claim(ledger, "still in work", "w.csv")  # not final: not counted
-    assert ledger.inputs.counts_since(T0) == {"pass": 2, "fail": 1, "hold": 1, "error": 1, "duplicate": 1}
+    assert ledger.inputs.counts_since(T0) == {
+        "pass": 2, "fail": 1, "hold": 1, "error": 1, "duplicate": 1, "readings": 0
+    }
     assert ledger.inputs.counts_since(minutes(15)) == {
         "pass": 0,
         "fail": 1,
         "hold": 1,
         "error": 1,
         "duplicate": 1,
+        "readings": 0,
     }
     assert ledger.inputs.counts_since(minutes(60)) == {
         "pass": 0,
@@ -708,6 +711,7 @@ def test_counts_since_counts_inputs_that_became_final_in_the_window(ledger: Ledg
         "hold": 0,
         "error": 0,
         "duplicate": 0,
+        "readings": 0,
     }
 
 

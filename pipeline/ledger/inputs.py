@@ -213,12 +213,15 @@ class Inputs:
     def counts_since(self, since: datetime.datetime) -> dict[str, int]:
         """How many inputs reached a final state at or after ``since``, by verdict.
 
-        Keys: pass, fail, hold, error (quarantined), duplicate.
+        Keys: pass, fail, hold, error (quarantined), duplicate, readings (an OCV reading
+        file whose readings were kept: it has no result, and no verdict of its own).
         """
-        counts = dict.fromkeys(("pass", "fail", "hold", "error", "duplicate"), 0)
+        counts = dict.fromkeys(("pass", "fail", "hold", "error", "duplicate", "readings"), 0)
         rows = self.db.rows(
             "SELECT CASE WHEN i.state = 'duplicate' THEN 'duplicate' "
             "WHEN i.state = 'quarantined' THEN 'error' "
+            "WHEN r.verdict IS NULL AND EXISTS (SELECT 1 FROM readings g WHERE g.input_id = i.id) "
+            "THEN 'readings' "
             "ELSE coalesce(r.verdict, 'error') END, count(*) "
             "FROM inputs i LEFT JOIN results r ON r.input_id = i.id "
             "WHERE i.final_at IS NOT NULL AND i.final_at >= ? GROUP BY 1",
