@@ -152,10 +152,56 @@ def test_check_names_each_file_and_notes_a_cell_given_twice(
     assert main([*argv, "--analysed-at", ANALYSED_AT, "--no-pdf"]) == 0
     out = capsys.readouterr().out.splitlines()
     assert out[0] == GOOD_LINE and out[1] == GOOD_LINE.replace(GOOD.file_name, "copy.csv")
+    # with --no-pdf only the result was written, and only it is named
     assert out[2] == (
+        f"    note: {GOOD.file_name} holds the same cell; this file's result replaced that "
+        "one's in the output folder"
+    )
+    assert len(out) == 3
+
+
+def test_check_notes_a_certificate_replaced_only_when_one_was_written(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    first, again = write_cell(tmp_path / "in", 0), write_cell(tmp_path / "in", 0, "copy.csv")
+    argv = ["check", str(first), str(again), "--rules", RULES, "--out", str(tmp_path / "out")]
+    assert main([*argv, "--analysed-at", ANALYSED_AT]) == 0
+    assert capsys.readouterr().out.splitlines()[2] == (
         f"    note: {GOOD.file_name} holds the same cell; this file's result and certificate "
         "replaced that one's in the output folder"
     )
+
+
+def test_check_keeps_a_cells_formation_and_grading_files_apart_without_a_note(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from pipeline.demo.lots import DEMO_STAGED_CELLS, demo_stage_files, stage_file_name
+
+    cell = DEMO_STAGED_CELLS[0]
+    (tmp_path / "in").mkdir()
+    paths = []
+    for stage, data in demo_stage_files(cell).items():
+        paths.append(tmp_path / "in" / stage_file_name(cell, stage))
+        paths[-1].write_bytes(data)
+    again = tmp_path / "in" / "grading-again.csv"
+    again.write_bytes(paths[1].read_bytes())
+    out = tmp_path / "out"
+    argv = ["check", *map(str, paths), str(again), "--rules", RULES, "--out", str(out)]
+    assert main([*argv, "--analysed-at", ANALYSED_AT, "--no-pdf"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    # two stages of one cell are two outputs: neither replaced the other
+    assert [line.split("  ")[:3] for line in lines[:3]] == [
+        [paths[0].name, cell.cell_id, "pass"],
+        [paths[1].name, cell.cell_id, "pass"],
+        ["grading-again.csv", cell.cell_id, "pass"],
+    ]
+    assert lines[3:] == [
+        f"    note: {paths[1].name} holds the same cell and stage (grading); this file's result "
+        "replaced that one's in the output folder"
+    ]
+    assert sorted(p.name for p in (out / "results" / cell.lot).iterdir()) == [
+        f"{cell.cell_id}~formation.json", f"{cell.cell_id}~grading.json"
+    ]
 
 
 def test_check_with_import_profile(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

@@ -18,6 +18,7 @@ from pipeline.cli.exits import EXIT_OK, EXIT_REJECTED, EXIT_USER
 from pipeline.errors import FormgateError
 
 if TYPE_CHECKING:
+    from pipeline.model import CellResult
     from pipeline.runner import FileOutcome
 
 
@@ -60,6 +61,15 @@ def _reason(outcome: FileOutcome) -> str:
     return text
 
 
+def _stage_words(result: CellResult) -> str:
+    """' and stage (grading)' for a file of one stage; '' for a file of the whole program."""
+    from pipeline.model import WHOLE_PROGRAM
+
+    if tuple(result.stages) == WHOLE_PROGRAM:
+        return ""
+    return f" and stage ({' and '.join(result.stages)})"
+
+
 def cmd_check(args: argparse.Namespace) -> int:
     """Judge cycle files given on the command line."""
     from pipeline.read.profile import load_profile
@@ -78,7 +88,7 @@ def cmd_check(args: argparse.Namespace) -> int:
 
         prepare_process()  # many certificates: pay the start-up once, then render faster
     worst = EXIT_OK
-    seen: dict[tuple[str, str], str] = {}  # (lot, cell) -> the file that judged it first
+    seen: dict[Path, str] = {}  # an output file -> the file that wrote it first
     for name in args.files:
         outcome = check_file(
             Path(name),
@@ -97,11 +107,16 @@ def cmd_check(args: argparse.Namespace) -> int:
         assert outcome.result is not None
         kind = outcome.result.verdict.kind.value
         print(f"{Path(name).name}  {outcome.result.cell_id}  {kind}  {_reason(outcome)}")
-        key = (outcome.result.lot, outcome.result.cell_id)
-        if key in seen and out is not None:
-            print(f"    note: {Path(seen[key]).name} holds the same cell; this file's result and "
-                  "certificate replaced that one's in the output folder")
-        seen.setdefault(key, name)
+        written = outcome.published
+        if written is not None:
+            # a cell's files of different stages have outputs of their own: only one that
+            # wrote the same output file as an earlier one replaced it
+            if written.result_json in seen:
+                print(f"    note: {Path(seen[written.result_json]).name} holds the same cell"
+                      f"{_stage_words(outcome.result)}; this file's "
+                      f"{'result and certificate' if written.certificate else 'result'} "
+                      "replaced that one's in the output folder")
+            seen.setdefault(written.result_json, name)
         if kind != "pass":
             worst = max(worst, EXIT_REJECTED)
     return worst
