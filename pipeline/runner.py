@@ -19,10 +19,14 @@ from pipeline.names import safe_name
 from pipeline.read.cyclefile import file_stages, read_cycle_file
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.profile import Profile
+from pipeline.read.readings import looks_like_readings, read_readings
 from pipeline.read.validate import drop_invalid_rows, validate_trace
 from pipeline.report.result import to_json
 from pipeline.rulebook.book import RuleBook
 from pipeline.writing import write_atomic
+
+# The bytes of a file's head that tell an OCV reading file by its header (as a station does).
+READINGS_HEAD = 65536
 
 
 def judge(
@@ -132,6 +136,30 @@ def publish(result: CellResult, out: Path, *, certificate: bool = True) -> Publi
     return Published(json_path, pdf_path)
 
 
+def _readings_error(data: bytes, name: str) -> InputError:
+    """Why an OCV reading file is not judged by hand: its readings are a whole lot's aging
+    stage, which only means something beside each cell's own records, as a station keeps them."""
+    what = "an OCV reading file"
+    try:
+        found = read_readings(data, name)
+    except FormgateError:
+        pass  # a station would quarantine it with the reader's own words; here it is enough
+    else:
+        cells = {(r.lot, r.cell_id) for r in found.readings}
+        lots = sorted({lot for lot, _ in cells})
+        what += (
+            f" ({len(found.readings)} reading{'s' if len(found.readings) != 1 else ''} of "
+            f"{len(cells)} cell{'s' if len(cells) != 1 else ''} of lot{'s' if len(lots) != 1 else ''} "
+            f"{', '.join(lots)})"
+        )
+    return InputError(
+        f"{what}, not a cycle file: formgate check judges one cell's cycle file at a time",
+        SourceRef(name),
+        "Drop it into a station's inbox (formgate watch): the station keeps the readings and "
+        "decides each cell's aging stage with the cell's other records.",
+    )
+
+
 @dataclass(frozen=True, slots=True)
 class FileOutcome:
     """What happened to one input: a judged result or the error that stopped it."""
@@ -159,6 +187,8 @@ def check_file(
         problem = f"cannot read the file ({exc.strerror})"
         error = InputError(problem, SourceRef(name), "Check the path and its permissions.")
         return FileOutcome(name, None, error)
+    if looks_like_readings(data[:READINGS_HEAD]):
+        return FileOutcome(name, None, _readings_error(data, name))
     try:
         result = judge(data, name, rulebook, analysed_at=analysed_at, profile=profile)
     except FormgateError as exc:

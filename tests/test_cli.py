@@ -105,6 +105,27 @@ def test_check_bad_file_exits_2_with_located_error(
     assert err == ""
 
 
+def test_check_says_an_ocv_reading_file_goes_to_a_station(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from pipeline.demo.lots import DEMO_STAGED_CELLS, demo_aging_file
+
+    path = tmp_path / "DEMO-LOT-04_aging-readings.csv"
+    path.write_bytes(demo_aging_file(DEMO_STAGED_CELLS[:3]))
+    good = write_cell(tmp_path, 0)
+    argv = ["check", str(path), str(good), "--rules", RULES, "--analysed-at", ANALYSED_AT]
+    assert main(argv) == 2
+    out, err = capsys.readouterr()
+    assert out.splitlines() == [
+        f"{path}  error  {path}: an OCV reading file (6 readings of 3 cells of lot DEMO-LOT-04), "
+        "not a cycle file: formgate check judges one cell's cycle file at a time.",
+        "    Drop it into a station's inbox (formgate watch): the station keeps the readings "
+        "and decides each cell's aging stage with the cell's other records.",
+        GOOD_LINE.replace(GOOD.file_name, good.name),
+    ]
+    assert err == ""
+
+
 def test_check_missing_file_exits_2_naming_it(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     path = tmp_path / "not-there.csv"
     assert main(["check", str(path), "--rules", RULES, "--analysed-at", ANALYSED_AT]) == 2
