@@ -49,16 +49,12 @@ def analysis_time(
 
 
 def _reason(outcome: FileOutcome) -> str:
-    from pipeline.judge.evaluate import decision_line
+    from pipeline.report.summary import reason_line
 
     if outcome.error is not None:
         return str(outcome.error).splitlines()[0]
     assert outcome.result is not None
-    verdict = outcome.result.verdict
-    text = decision_line(verdict, outcome.result.notes)
-    if verdict.hazards:
-        text += " [hazard: " + ", ".join(h.value for h in verdict.hazards) + "]"
-    return text
+    return reason_line(outcome.result)
 
 
 def _stage_words(result: CellResult) -> str:

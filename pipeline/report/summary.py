@@ -1,7 +1,8 @@
 """A plain-text table of a lot's judged cells and its yield, for the terminal and summary.txt.
 
-Pure: results in, text out. Lot statistics with outlier screening belong to a later
-module; this one only lists what was decided.
+Pure: results in, text out. Each row ends with the cell's reason in one line, as `formgate
+check` prints it (:func:`reason_line`). Lot statistics with outlier screening belong to
+a later module; this one only lists what was decided.
 """
 
 from __future__ import annotations
@@ -10,7 +11,7 @@ from collections import Counter
 from collections.abc import Sequence
 
 from pipeline.judge.evaluate import decision_line
-from pipeline.model import CellResult, VerdictKind
+from pipeline.model import CellResult
 
 COLUMNS = (
     ("cell", 14, None),
@@ -37,12 +38,23 @@ def _fmt(metric: str, value: float | None) -> str:
     return f"{value:.1f}"
 
 
+def reason_line(result: CellResult) -> str:
+    """Why a cell got its verdict, in one line: the deciding findings, hazards in brackets.
+
+    The same words in `formgate check`'s line and the summary table's reason column.
+    """
+    text = decision_line(result.verdict, result.notes)
+    if result.verdict.hazards:
+        text += " [hazard: " + ", ".join(h.value for h in result.verdict.hazards) + "]"
+    return text
+
+
 def summary_table(results: Sequence[CellResult], errors: Sequence[tuple[str, str]] = ()) -> str:
-    """One row per cell (sorted by lot and cell id), then failed/held reasons, errors and yield.
+    """One row per cell (sorted by lot and cell id) ending with its reason, then errors and yield.
 
     ``errors`` are (file name, one-line reason) pairs for inputs that could not be judged.
     """
-    header = "  ".join(f"{title:<{width}}" for title, width, _ in COLUMNS)
+    header = "  ".join(f"{title:<{width}}" for title, width, _ in COLUMNS) + "  reason"
     lines = [header, "-" * len(header)]
     ordered = sorted(results, key=lambda r: (r.lot, r.cell_id))
     for r in ordered:
@@ -50,18 +62,11 @@ def summary_table(results: Sequence[CellResult], errors: Sequence[tuple[str, str
         for _, width, metric in COLUMNS[2:]:
             assert metric is not None
             cells.append(f"{_fmt(metric, r.metrics.values.get(metric)):>{width}}")
+        # a fail or hold says why on its own row, as formgate check's line does
+        cells.append(reason_line(r))
         lines.append("  ".join(cells))
-    lines.append("")
-    # fails first, then holds: what a quality engineer acts on
-    decided = [r for r in ordered if r.verdict.kind is VerdictKind.FAIL] + [
-        r for r in ordered if r.verdict.kind is VerdictKind.HOLD
-    ]
-    for r in decided:
-        hazards = ", ".join(h.value for h in r.verdict.hazards)
-        extra = f" [hazard: {hazards}]" if hazards else ""
-        lines.append(
-            f"{r.cell_id} ({r.verdict.kind.value}): {decision_line(r.verdict, r.notes)}{extra}"
-        )
+    if errors:
+        lines.append("")
     for name, reason in errors:
         lines.append(f"{name} (error): {reason}")
     counts = Counter(r.verdict.kind.value for r in results)
