@@ -393,6 +393,14 @@ class Hazard(enum.Enum):
     ABNORMAL_CAPACITY = "abnormal_capacity"
 
 
+# The hazards that can make a cell dangerous to handle (an abnormal capacity by itself is
+# not one): a person's release of a failed cell carrying one of them is refused unless its
+# rule set's [review] release_hazards names it (pipeline/judge/review.py).
+SAFETY_HAZARDS: tuple[str, ...] = tuple(
+    h.value for h in Hazard if h is not Hazard.ABNORMAL_CAPACITY
+)
+
+
 class Outcome(enum.Enum):
     IN_WINDOW = "in_window"
     OUT_OF_WINDOW = "out_of_window"
@@ -562,6 +570,8 @@ class RuleSet:
     lot_quiet_h: float | None = None  # a lot closes by itself after this long without a cell
     record_counts: str = "latest"  # which record of a stage counts: "latest" or "worst"
     retests: int | None = None  # most records of one stage after its first; None: no limit
+    release_hazards: tuple[str, ...] = ()  # safety hazards a concession may release ([review])
+    review_wait_h: float | None = None  # a cell waiting for a person longer than this is alerted
 
     def cell_type(self, name: str) -> CellType | None:
         for ct in self.cell_types:

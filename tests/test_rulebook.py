@@ -184,6 +184,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_rule_set() -> 
     assert rs.grades == (Grade("A", (("grading_capacity_Ah", 12.5, 13.0),)),)
     assert rs.lot_quiet_h == 12.0
     assert (rs.record_counts, rs.retests) == ("worst", 2)
+    assert (rs.release_hazards, rs.review_wait_h) == (("lithium_plating", "sodium_plating"), 8.0)
 
 
 def test_defaults_fill_what_a_file_leaves_out() -> None:

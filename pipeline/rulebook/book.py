@@ -37,6 +37,7 @@ from pipeline.model import (
     Window,
 )
 from pipeline.rulebook.lotrules import LotRules, lot_rules
+from pipeline.rulebook.reviewrules import release_hazards
 from pipeline.rulebook.schema import BY_TABLE, FRACTION_LIMIT, FRACTION_METRICS, TABLES
 from pipeline.rulebook.tables import (
     Collector,
@@ -59,6 +60,7 @@ _UNIT_WORDS = {
     "°C": "degrees Celsius",
     "%": "percent",
 }
+_RELEASE = "release_hazards"
 _MISSING_HINTS = {
     "rule_set": "Add a [rule_set] table with name, revision and chemistry at the top of the file.",
     "cell_type": "Add one table per cell type, e.g. [cell_type.DEMO-1] with a line "
@@ -289,6 +291,7 @@ def _parse(text: str, name: str) -> tuple[RuleSet | None, list[RulesError]]:
         if (r := _build_rule(out, ident, v, declared, ident in broken_checks)) is not None
     ]
     lot = lot_rules(out, data, plain["stages"], families["screen"], rules, cell_types)
+    release_hazards(out, plain["review"])  # checked here; _assemble takes the checked names
     if not out.errors:
         for ct in cell_types:
             if not any(not r.cell_types or ct.name in r.cell_types for r in rules):
@@ -362,6 +365,8 @@ def _assemble(
         lot_quiet_h=number(plain["lot"], "quiet_h"),
         record_counts=str(plain["records"]["counts"]),
         retests=_int_or_none(plain["records"], "retests"),
+        release_hazards=tuple(str(h) for h in cast(Sequence[str], plain["review"][_RELEASE])),
+        review_wait_h=number(plain["review"], "wait_h"),
     )
 
 

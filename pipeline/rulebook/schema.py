@@ -21,6 +21,7 @@ from pipeline.judge.metricdefs import AGING_METRICS, METRICS
 from pipeline.model import (
     FAMILIES,
     RECORD_CHOICES,
+    SAFETY_HAZARDS,
     SCREEN_SIDES,
     Hazard,
     PlateauSettings,
@@ -532,6 +533,33 @@ TABLES: tuple[Table, ...] = (
                 NUMBER,
                 "a lot with no new cell for this long is closed by the station; not set: only "
                 "`formgate lot close` closes it",
+                unit="h",
+                minimum=0.0,
+                minimum_exclusive=True,
+            ),
+        ),
+    ),
+    Table(
+        "review",
+        "A person's review of a held or failed cell (`formgate review`; ISO 9001:2015 clause "
+        "8.7, control of nonconforming outputs): release, reject, or retest of one stage. A "
+        "failed cell is released only as a concession that names every failed check, and "
+        "one whose decision carries a safety hazard only when this table names the hazard; "
+        "the hazard and its cautions stay on the released cell's record.",
+        (
+            Key(
+                "release_hazards",
+                TEXT_LIST,
+                "the safety hazards a concession may release a failed cell over; a cell with "
+                "any other safety hazard can only be rejected or retested",
+                allowed_note=", ".join(SAFETY_HAZARDS),
+                default=(),
+            ),
+            Key(
+                "wait_h",
+                NUMBER,
+                "a cell waiting this long for a person (a fail, or a hold for a reason other "
+                "than a stage still to come, with no review since) raises one alert",
                 unit="h",
                 minimum=0.0,
                 minimum_exclusive=True,
