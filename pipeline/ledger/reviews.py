@@ -23,6 +23,7 @@ from pipeline.ledger.rows import (
     DecisionRow,
     OutgoingMail,
     ReviewRow,
+    decision_row,
     parse_time,
     review_row,
     utc_text,
@@ -52,12 +53,15 @@ class Reviews:
         answers: int,
         decision: Callable[[ReviewRow], tuple[str, str, Sequence[str], str | None]],
         letters: Callable[[ReviewRow, DecisionRow], Sequence[OutgoingMail]] = lambda r, d: (),
+        basis: Sequence[str] = (),
     ) -> tuple[ReviewRow, DecisionRow]:
         """Record a review and the decision it gives, with its letters: ONE transaction.
 
         ``answers``: the id of the decision the reviewer saw; if the cell's decision changed
         since (a record arrived, another review), nothing is written and ValueError says
         so. ``decision`` turns the review into (verdict, reason, hazards, grade).
+        ``basis``: the records the reviewer's decision rests on besides the review (the
+        cell's files as "stage:name:sha256"), so that what came after it can be told.
         """
         if action not in ACTIONS:
             raise ValueError(f"action must be one of {ACTIONS}, got {action!r}")
@@ -85,7 +89,7 @@ class Reviews:
             verdict, why, hazards, grade = decision(review)
             given, _, _ = self.decisions.decide(
                 cell_id=cell_id, lot=lot, verdict=verdict, reason=why, hazards=hazards,
-                grade=grade, cause="review", basis=[f"review:{review.id}"], now=now,
+                grade=grade, cause="review", basis=[f"review:{review.id}", *basis], now=now,
                 review_id=review.id,
             )
             for mail in letters(review, given):
@@ -98,6 +102,19 @@ class Reviews:
             "SELECT * FROM reviews WHERE lot = ? AND cell_id = ? ORDER BY id", (lot, cell_id)
         )
         return [review_row(r) for r in rows]
+
+    def of_lot(self, lot: str) -> list[ReviewRow]:
+        """Every review of the lot's cells, oldest first."""
+        rows = self.db.rows("SELECT * FROM reviews WHERE lot = ? ORDER BY id", (lot,))
+        return [review_row(r) for r in rows]
+
+    def given(self, review: ReviewRow) -> DecisionRow | None:
+        """The decision ``review`` gave (recorded with it)."""
+        row = self.db.one(
+            "SELECT * FROM decisions WHERE lot = ? AND cell_id = ? AND review_id = ?",
+            (review.lot, review.cell_id, review.id),
+        )
+        return None if row is None else decision_row(row)
 
     def get(self, review_id: int) -> ReviewRow | None:
         row = self.db.one("SELECT * FROM reviews WHERE id = ?", (review_id,))
