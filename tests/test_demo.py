@@ -32,7 +32,7 @@ def test_station_demo_accounts_for_every_file(tmp_path: Path) -> None:
     mails = [p.read_text(errors="replace") for p in (root / "mail").glob("*.eml")]
     # the staged lot: its low-capacity cell fails at grading; its slow self-discharger passes
     # every check but is held by the lot's screen on the K-value at the close, with a letter
-    assert "S04-023  fail: grading_capacity_Ah 4.491 Ah < 5 Ah (reject)" in out.stdout
+    assert "S04-023  fail: grading_capacity_Ah 4.491 Ah < 5.000 Ah (reject)" in out.stdout
     assert "S04-024  hold (was pass): outlier in lot: k_value_mV_per_day" in out.stdout
     assert "grades: A " in out.stdout and "lot report (PDF)" in out.stdout
     assert (root / "certificates" / "DEMO-LOT-04" / "_lot-report.pdf").exists()

@@ -11,7 +11,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline.judge.evaluate import decision_line, evaluate, format_number, format_window, summarise
+from pipeline.judge.evaluate import decision_line, evaluate, summarise
 from pipeline.judge.metricdefs import METRIC_NAMES
 from pipeline.judge.program import INCOMPLETE
 from pipeline.model import (
@@ -149,31 +149,6 @@ def test_infinity_is_judged_as_a_value() -> None:
     rule = Rule("v", "max_charge_voltage_V", Window(None, 3.7), Severity.REJECT)
     verdict = evaluate(_rule_set(rule), CT, _metrics({"max_charge_voltage_V": math.inf}))
     assert verdict.kind is VerdictKind.FAIL
-
-
-@pytest.mark.parametrize(
-    ("value", "text"),
-    [
-        (0.0, "0"),
-        (19.599999999999998, "19.6"),
-        (3.25, "3.25"),
-        (0.91234, "0.9123"),
-        (-0.35, "-0.35"),
-        (1234.5, "1234"),
-        (12345.0, "12345"),
-        (0.000123, "0.000123"),
-        (math.inf, "inf"),
-    ],
-)
-def test_format_number(value: float, text: str) -> None:
-    assert format_number(value) == text
-
-
-def test_format_window() -> None:
-    assert format_window(Window(19.6, None), "Ah") == "at least 19.6 Ah"
-    assert format_window(Window(None, 3.7), "V") == "at most 3.7 V"
-    assert format_window(Window(0.98, 1.01)) == "0.98 to 1.01"
-    assert format_window(Window(None, None)) == "any value"
 
 
 # ---------------------------------------------------------------- invariants
@@ -322,11 +297,11 @@ def test_the_decision_line_names_the_deciding_checks_with_value_and_bound() -> N
                                         "rest_voltage_drift_mV_per_h": -1.0}))
     # only the reject checks decide a fail; the review finding is on the certificate
     assert decision_line(failed) == (
-        "grading_capacity_Ah 18.21 Ah < 19 Ah (reject); dcir_mOhm 9.5 mOhm > 8 mOhm (reject)"
+        "grading_capacity_Ah 18.21 Ah < 19.00 Ah (reject); dcir_mOhm 9.50 mOhm > 8.00 mOhm (reject)"
     )
     held = evaluate(rs, CT, _metrics({"grading_capacity_Ah": 20.0, "rest_voltage_drift_mV_per_h": -1.0}))
     assert decision_line(held) == (
-        "dcir_mOhm not measured; rest_voltage_drift_mV_per_h -1 mV/h < -0.5 mV/h (review)"
+        "dcir_mOhm not measured; rest_voltage_drift_mV_per_h \N{MINUS SIGN}1.00 mV/h < \N{MINUS SIGN}0.50 mV/h (review)"
     )
     cut = Note(INCOMPLETE, "program incomplete: record ends in cycle 2's charge",
                blocks=("grading_capacity_Ah", "dcir_mOhm", "rest_voltage_drift_mV_per_h"))

@@ -139,16 +139,16 @@ def test_failure_subject_names_cell_lot_the_deciding_checks_and_hazards(tmp_path
     letter = failure_letter(make_result(), str(tmp_path / "DEMO-0007.pdf"), TO, station="line-1")
     assert letter.subject == (
         "formgate: FAIL cell DEMO-0007, lot DEMO-LOT-01 \N{EM DASH} "
-        "rest_voltage_drift_mV_per_h -4.2 mV/h < -1 mV/h (reject); "
-        "max_temperature_C 58.5 °C > 45 °C (reject) "
+        "rest_voltage_drift_mV_per_h \N{MINUS SIGN}4.20 mV/h < \N{MINUS SIGN}1.00 mV/h (reject); "
+        "max_temperature_C 58.5 °C > 45.0 °C (reject) "
         "[possible internal short circuit; over-temperature during formation]"
     )
     # and the body's first lines say it too
     assert flat(letter.body_text).startswith(
         "Cell: DEMO-0007 Lot: DEMO-LOT-01 Cell type: DEMO-LFP-20A Station: line-1 "
         "Verdict: FAIL. Do not release this cell; handle it with care. "
-        "Deciding: rest_voltage_drift_mV_per_h -4.2 mV/h < -1 mV/h (reject); "
-        "max_temperature_C 58.5 °C > 45 °C (reject)"
+        "Deciding: rest_voltage_drift_mV_per_h \N{MINUS SIGN}4.20 mV/h < \N{MINUS SIGN}1.00 mV/h (reject); "
+        "max_temperature_C 58.5 °C > 45.0 °C (reject)"
     )
     assert letter.kind == "failure"
     assert letter.recipients == TO
@@ -167,7 +167,7 @@ def test_failure_body_has_every_caution_notice_and_traceability(tmp_path: Path) 
     assert "- voltage falls during the final rest" in body
     deg = "\N{DEGREE SIGN}C"
     assert (
-        f"- temp_max: max_temperature_C = 58.5 {deg}, window at most 45 {deg}"
+        f"- temp_max: max_temperature_C = 58.5 {deg}, window \N{LESS-THAN OR EQUAL TO} 45.0 {deg}"
         " (out of window, reject, hazard: over-temperature during formation)"
     ) in body
     assert f"Input SHA-256: {INPUT_SHA}" in body
@@ -192,7 +192,7 @@ def test_handling_of_a_hazardous_cell_is_said_once_however_many_hazards(tmp_path
 
 def test_failure_without_a_hazard_still_carries_the_general_caution(tmp_path: Path) -> None:
     letter = failure_letter(make_result(hazards=()), str(tmp_path / "c.pdf"), TO, station="s")
-    assert letter.subject.endswith("max_temperature_C 58.5 °C > 45 °C (reject)")
+    assert letter.subject.endswith("max_temperature_C 58.5 °C > 45.0 °C (reject)")
     assert flat(GENERAL_CAUTION) in flat(letter.body_text)
     assert "CAUTION:" not in letter.body_text
 
@@ -219,8 +219,8 @@ def test_hold_letter_says_not_released_until_reviewed(tmp_path: Path) -> None:
     letter = hold_letter(result, str(tmp_path / "DEMO-0007.pdf"), TO, station="line-1")
     assert letter.subject == (
         "formgate: HOLD cell DEMO-0007, lot DEMO-LOT-01 \N{EM DASH} "
-        "rest_voltage_drift_mV_per_h -4.2 mV/h < -1 mV/h (review); "
-        "max_temperature_C 58.5 °C > 45 °C (review)"
+        "rest_voltage_drift_mV_per_h \N{MINUS SIGN}4.20 mV/h < \N{MINUS SIGN}1.00 mV/h (review); "
+        "max_temperature_C 58.5 °C > 45.0 °C (review)"
     )
     body = flat(letter.body_text)
     assert "Verdict: HOLD. This cell must not be released until reviewed." in body
@@ -428,9 +428,9 @@ def test_digest_is_one_plain_text_table() -> None:
         "\n"
         "cell       verdict  grading capacity (Ah)  certificate\n"
         "---------  -------  ---------------------  -----------\n"
-        "DEMO-0001  pass                    20.312  certificates/DEMO-LOT-01/DEMO-0001.pdf\n"
-        "DEMO-0002  pass                    20.100  certificates/DEMO-LOT-01/DEMO-0002.pdf\n"
-        "DEMO-0003  pass                       n/a  certificates/DEMO-LOT-01/DEMO-0003.pdf\n"
+        "DEMO-0001  pass                     20.31  certificates/DEMO-LOT-01/DEMO-0001.pdf\n"
+        "DEMO-0002  pass                     20.10  certificates/DEMO-LOT-01/DEMO-0002.pdf\n"
+        "DEMO-0003  pass                         \N{EM DASH}  certificates/DEMO-LOT-01/DEMO-0003.pdf\n"
         "\n" + textwrap.fill(DIGEST_NOTE, 72) + "\n"
     )
     again = digest_letter("DEMO-LOT-01", rows[:1], TO, station="line-1", digest_no=3)

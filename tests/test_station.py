@@ -315,7 +315,7 @@ def test_polling_inbox_and_status_report(tmp_path: Path) -> None:
         report = status_text(s, datetime.datetime.now(datetime.UTC))
         assert report.startswith("station test-station: running")
     assert "today (UTC): 0 pass, 1 fail, 0 hold, 0 error, 0 duplicate" in report
-    assert "P-9  lot LOT-A  fail: grading_capacity_Ah 1.5 Ah < 1.8 Ah (reject)  hazard: abnormal_capacity" in report
+    assert "P-9  lot LOT-A  fail: grading_capacity_Ah 1.500 Ah < 1.800 Ah (reject)  hazard: abnormal_capacity" in report
     assert "ledger integrity: ok" in report
     assert "share (" in report and "0 file(s) waiting" in report
 

@@ -17,8 +17,9 @@ import dataclasses
 import math
 from collections.abc import Iterable
 
-from pipeline.judge.metricdefs import FORMATION, GRADING, RULE_BY_NAME, judged_on
+from pipeline.judge.metricdefs import FORMATION, GRADING, judged_on
 from pipeline.judge.program import HOLDING_CODES, INCOMPLETE, MISMATCH
+from pipeline.judge.quantities import format_value, format_window, precision
 from pipeline.model import (
     CellMetrics,
     CellType,
@@ -36,35 +37,6 @@ from pipeline.model import (
 )
 
 WHOLE: tuple[str, ...] = (FORMATION, GRADING)
-
-
-def format_number(value: float) -> str:
-    """Four significant digits, no exponent, no trailing zeros.
-
-    >>> format_number(19.599999999999998), format_number(3.25), format_number(0.91234)
-    ('19.6', '3.25', '0.9123')
-    """
-    if value == 0 or not math.isfinite(value):
-        return "0" if value == 0 else str(value)
-    digits = math.floor(math.log10(abs(value))) + 1
-    text = f"{value:.{max(0, 4 - digits)}f}"
-    return text.rstrip("0").rstrip(".") if "." in text else text
-
-
-def format_window(window: Window, unit: str = "") -> str:
-    """An absolute window in words.
-
-    >>> format_window(Window(19.6, None), "Ah"), format_window(Window(3.15, 3.38), "V")
-    ('at least 19.6 Ah', '3.15 to 3.38 V')
-    """
-    suffix = f" {unit}" if unit else ""
-    if window.low is not None and window.high is not None:
-        return f"{format_number(window.low)} to {format_number(window.high)}{suffix}"
-    if window.low is not None:
-        return f"at least {format_number(window.low)}{suffix}"
-    if window.high is not None:
-        return f"at most {format_number(window.high)}{suffix}"
-    return "any value"
 
 
 def _clean(window: Window) -> Window:
@@ -87,7 +59,6 @@ def _check(
     value = metrics.values.get(rule.metric)
     if value is not None and math.isnan(value):
         value = None
-    unit = RULE_BY_NAME[rule.metric].unit if rule.metric in RULE_BY_NAME else ""
     blocked = blockers.get(rule.metric)
     if blocked is not None or value is None:
         # a value the notes make untrustworthy is not judged; a missing one was not measured
@@ -102,8 +73,10 @@ def _check(
         outcome, message = Outcome.IN_WINDOW, ""
     else:
         outcome = Outcome.OUT_OF_WINDOW
-        measured = f"{rule.metric} = {format_number(value)}{' ' + unit if unit else ''}"
-        window_text = format_window(window, unit)
+        # written as the certificate, the letters and the lot report write it (quantities.py)
+        extra = precision(rule.metric, value, window)
+        measured = f"{rule.metric} = {format_value(rule.metric, value, extra)}"
+        window_text = format_window(rule.metric, window, extra)
         if rule.message:
             message = f"{rule.message.rstrip('.')} ({measured}; window {window_text})."
         else:
@@ -253,10 +226,8 @@ def phrase(check: CheckResult) -> str:
 
     >>> phrase(CheckResult("c", "grading_capacity_Ah", 18.21, Window(19.0, 22.0),
     ...        Outcome.OUT_OF_WINDOW, Severity.REJECT, None, ""))
-    'grading_capacity_Ah 18.21 Ah < 19 Ah (reject)'
+    'grading_capacity_Ah 18.21 Ah < 19.00 Ah (reject)'
     """
-    unit = RULE_BY_NAME[check.metric].unit if check.metric in RULE_BY_NAME else ""
-    suffix = f" {unit}" if unit else ""
     if check.outcome is Outcome.OUT_OF_WINDOW and check.value is not None:
         low, high = check.window.low, check.window.high
         if low is not None and check.value < low:
@@ -264,8 +235,10 @@ def phrase(check: CheckResult) -> str:
         else:
             assert high is not None
             bound, sign = high, ">"
-        value, limit = format_number(check.value), format_number(bound)
-        return f"{check.metric} {value}{suffix} {sign} {limit}{suffix} ({check.severity.value})"
+        extra = precision(check.metric, check.value, check.window)
+        value = format_value(check.metric, check.value, extra)
+        limit = format_value(check.metric, bound, extra)
+        return f"{check.metric} {value} {sign} {limit} ({check.severity.value})"
     if check.outcome in (Outcome.NOT_JUDGED, Outcome.SKIPPED):
         what = "not measured" if check.value is None else "not judged"
         return f"{check.metric} {what}"

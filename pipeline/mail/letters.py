@@ -26,8 +26,8 @@ from email.message import EmailMessage
 from typing import Literal
 
 from pipeline.errors import FormgateError
-from pipeline.judge.evaluate import decision_line, format_number, format_window
-from pipeline.judge.metricdefs import BY_NAME
+from pipeline.judge.evaluate import decision_line
+from pipeline.judge.quantities import format_value, format_window, precision
 from pipeline.model import CellResult, CheckResult, Hazard, Outcome, SourceRef, VerdictKind
 from pipeline.report.hazards import CAUTIONS, DATA_CHECK_NOTICE, HANDLING, general_caution
 
@@ -215,15 +215,14 @@ def _fields(rows: Sequence[tuple[str, str]], width: int) -> str:
 
 
 def _check_line(check: CheckResult) -> str:
-    metric = BY_NAME.get(check.metric)
-    unit = metric.unit if metric else ""
-    value = "not measured" if check.value is None else format_number(check.value)
-    if check.value is not None and unit:
-        value += f" {unit}"
+    # value and window written as the certificate and the reasons write them (quantities.py)
+    extra = precision(check.metric, check.value, check.window)
+    value = "not measured" if check.value is None else format_value(check.metric, check.value, extra)
+    window = format_window(check.metric, check.window, extra)
     words = "out of window" if check.outcome is Outcome.OUT_OF_WINDOW else "not judged"
     hazard = f", hazard: {CAUTIONS[check.hazard].title.lower()}" if check.hazard else ""
     return _item(
-        f"{check.rule_id}: {check.metric} = {value}, window {format_window(check.window, unit)}"
+        f"{check.rule_id}: {check.metric} = {value}, window {window}"
         f" ({words}, {check.severity.value}{hazard})"
     )
 
@@ -386,7 +385,8 @@ def _table(rows: Sequence[DigestRow]) -> str:
         (
             sanitize_header(r.cell_id, ID_LEN),
             sanitize_header(r.verdict + (f" {r.grade}" if r.grade else ""), 24),
-            "n/a" if r.grading_capacity_ah is None else f"{r.grading_capacity_ah:.3f}",
+            # as the certificate writes it; the column's header names the unit
+            format_value("grading_capacity_Ah", r.grading_capacity_ah).removesuffix(" Ah"),
             sanitize_header(r.certificate_path, 300),
         )
         for r in rows

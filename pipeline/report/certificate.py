@@ -20,6 +20,15 @@ from markupsafe import Markup
 from pipeline import shipped
 from pipeline.judge.evaluate import deciding, phrase, program_findings
 from pipeline.judge.metricdefs import BY_NAME
+
+# Every value and window is written as the judge's reasons, the letters and the lot report
+# write it: quantities.py is the one source of those words (names kept for the importers).
+from pipeline.judge.quantities import BY_UNIT as _BY_UNIT
+from pipeline.judge.quantities import DASH as DASH  # the lot report imports it from here
+from pipeline.judge.quantities import format_value, format_window, precision, significant
+from pipeline.judge.quantities import percent as _percent
+from pipeline.judge.quantities import signed as _signed
+from pipeline.judge.quantities import with_unit as _with_unit
 from pipeline.model import (
     WHOLE_PROGRAM,
     CellResult,
@@ -33,15 +42,12 @@ from pipeline.model import (
     Plateau,
     Severity,
     VerdictKind,
-    Window,
 )
 from pipeline.report import evidence, plots, verification
 from pipeline.report.result import to_json
 
 TEMPLATES_DIR = shipped.TEMPLATES_DIR
 TEMPLATE_NAME = "certificate.html.j2"
-DASH = "\N{EM DASH}"  # shown for a value that was not measured
-MINUS = "\N{MINUS SIGN}"
 PLOT_WIDTH_MM, PLOT_HEIGHT_MM = 86.0, 50.0
 RECORD_WIDTH_MM, RECORD_HEIGHT_MM = 178.0, 66.0
 IDENTITY_KEYS = ("cell_id", "lot", "cell_type", "channel", "station", "program", "started_at")
@@ -71,91 +77,6 @@ HAZARD_WORDS = {
 }
 
 
-def _signed(text: str) -> str:
-    """Use a true minus sign, and never show minus zero."""
-    if not text.startswith("-"):
-        return text
-    return text[1:] if float(text) == 0 else MINUS + text[1:]
-
-
-def significant(value: float, digits: int) -> str:
-    """``value`` with ``digits`` significant digits in fixed notation (no exponent).
-
-    >>> significant(20.1349, 4), significant(0.98765, 4), significant(1234.6, 3)
-    ('20.13', '0.9877', '1235')
-    """
-    if value == 0:
-        return f"{0:.{digits - 1}f}"
-    decimals = min(6, max(0, digits - 1 - math.floor(math.log10(abs(value)))))
-    return _signed(f"{value:.{decimals}f}")
-
-
-def _fixed(decimals: int) -> Callable[[float], str]:
-    return lambda v: _signed(f"{v:.{decimals}f}")
-
-
-# How each unit's numbers print: capacity and energy to 4 significant digits,
-# voltage to the mV, resistance to 3 significant digits (common practice).
-_BY_UNIT: dict[str, Callable[[float], str]] = {
-    "Ah": lambda v: significant(v, 4),
-    "Wh": lambda v: significant(v, 4),
-    "V": _fixed(3),
-    "mOhm": lambda v: significant(v, 3),
-    "mV/h": _fixed(2),
-    "°C": _fixed(1),
-    "s": _fixed(0),
-    "%": _fixed(1),
-}
-
-
-def _percent(v: float) -> str:
-    return _signed(f"{v * 100:.2f}")
-
-
-def _integer(v: float) -> str:
-    return _signed(f"{v:.0f}")
-
-
-def metric_format(metric: str) -> tuple[Callable[[float], str], str]:
-    """The number formatter and the unit shown for a metric (fractions show as %)."""
-    definition = BY_NAME.get(metric)
-    unit = definition.unit if definition else ""
-    if unit == "" and metric.endswith("efficiency"):
-        return _percent, "%"
-    if unit == "" and metric.endswith("_count"):
-        return _integer, ""
-    return _BY_UNIT.get(unit, lambda v: significant(v, 4)), unit
-
-
-def _with_unit(number: str, unit: str) -> str:
-    return f"{number} {unit}" if unit else number
-
-
-def format_value(metric: str, value: float | None) -> str:
-    """A measured value with its unit, or an em dash when it was not measured.
-
-    >>> format_value("grading_capacity_Ah", 20.1349), format_value("dcir_mOhm", None)
-    ('20.13 Ah', '—')
-    """
-    if value is None or not math.isfinite(value):
-        return DASH
-    number, unit = metric_format(metric)
-    return _with_unit(number(value), unit)
-
-
-def format_window(metric: str, window: Window) -> str:
-    """The window as "low to high", "≥ low", "≤ high" (with unit) or "any value"."""
-    number, unit = metric_format(metric)
-    low, high = window.low, window.high
-    if low is not None and high is not None:
-        return _with_unit(f"{number(low)} \N{EN DASH} {number(high)}", unit)
-    if low is not None:
-        return _with_unit(f"\N{GREATER-THAN OR EQUAL TO} {number(low)}", unit)
-    if high is not None:
-        return _with_unit(f"\N{LESS-THAN OR EQUAL TO} {number(high)}", unit)
-    return "any value"
-
-
 def _num(value: float | None, fmt: Callable[[float], str], unit: str = "") -> str:
     if value is None or not math.isfinite(value):
         return DASH
@@ -170,12 +91,13 @@ def format_time(moment: datetime.datetime) -> str:
 def _check_row(check: CheckResult, decided: bool) -> dict[str, str]:
     definition = BY_NAME.get(check.metric)
     out = check.outcome is Outcome.OUT_OF_WINDOW
+    extra = precision(check.metric, check.value, check.window)  # as the reasons write it
     return {
         "id": check.rule_id,
         "metric": check.metric,
         "meaning": definition.meaning if definition else "",
-        "value": format_value(check.metric, check.value),
-        "window": format_window(check.metric, check.window),
+        "value": format_value(check.metric, check.value, extra),
+        "window": format_window(check.metric, check.window, extra),
         "severity": check.severity.value,
         "outcome": OUTCOME_WORDS[check.outcome] + (" (deciding)" if decided else ""),
         "outcome_class": check.outcome.value.replace("_", "-") + (" deciding" if decided else ""),

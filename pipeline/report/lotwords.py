@@ -1,9 +1,10 @@
 """The lot report's figures in words: numbers with their units, windows, yield, Cpk and its note.
 
 Pure formatting of what :mod:`pipeline.judge.lotspread` and :mod:`pipeline.judge.lotstats`
-work out: a value not measured is an em dash, a window reads as its bounds with the unit
-(or "any value"), a Cpk below the usual minimum says so, and one check's capability becomes
-one row of the report's table. Which of these the page shows, and where, is left to
+work out: a value, a spread and a window are written as the certificates and letters write
+them (:mod:`pipeline.judge.quantities`: a fraction as %, a value not measured as an em
+dash), a Cpk below the usual minimum says so, and one check's capability becomes one row
+of the report's table. Which of these the page shows, and where, is left to
 :mod:`pipeline.report.lotreport`.
 """
 
@@ -14,7 +15,8 @@ from typing import Final
 
 from pipeline.judge.lotspread import Capability
 from pipeline.judge.lotstats import WindowSpec
-from pipeline.report.certificate import DASH, significant
+from pipeline.judge.quantities import DASH, format_spread, format_value, format_window, significant
+from pipeline.model import Window
 
 # Cpk below 1.33 is the usual minimum for an established process (common practice).
 CPK_MINIMUM: Final = 1.33
@@ -28,16 +30,10 @@ def number_text(value: float | None, unit: str = "", digits: int = 4) -> str:
     return f"{shown} {unit}" if unit else shown
 
 
-def window_text(low: float | None, high: float | None, unit: str) -> str:
-    """A window as "low to high" (en dash), "≥ low", "≤ high" (with unit) or "any value"."""
-    tail = f" {unit}" if unit else ""
-    if low is not None and high is not None:
-        return f"{significant(low, 4)} \N{EN DASH} {significant(high, 4)}{tail}"
-    if low is not None:
-        return f"\N{GREATER-THAN OR EQUAL TO} {significant(low, 4)}{tail}"
-    if high is not None:
-        return f"\N{LESS-THAN OR EQUAL TO} {significant(high, 4)}{tail}"
-    return "any value"
+def window_text(metric: str, low: float | None, high: float | None) -> str:
+    """A metric's window as a certificate writes it: "low to high" (en dash), "≥ low",
+    "≤ high" (with unit, a fraction as %) or "any value"."""
+    return format_window(metric, Window(low, high))
 
 
 def yield_text(passed: int, total: int) -> str:
@@ -64,17 +60,21 @@ def cpk_text(capability: Capability) -> tuple[str, str]:
     return shown, "below 1.33" if capability.cpk < CPK_MINIMUM else ""
 
 
-def capability_row(check: WindowSpec, cap: Capability, unit: str) -> dict[str, str]:
-    """One check's row of the capability table: its window, n, mean, sd, Cpk and note, in words."""
+def capability_row(check: WindowSpec, cap: Capability, unit: str = "") -> dict[str, str]:
+    """One check's row of the capability table: its window, n, mean, sd, Cpk and note, in words.
+
+    The unit is the metric's own (quantities.py): ``unit`` is kept for the callers that pass it.
+    """
+    del unit
     cpk, note = cpk_text(cap)
     return {
         "check": check.key,
         "metric": check.metric,
         "severity": check.severity,
-        "window": window_text(check.low, check.high, unit),
+        "window": window_text(check.metric, check.low, check.high),
         "n": str(cap.n),
-        "mean": number_text(cap.mean, unit),
-        "sd": number_text(cap.sd, unit, 3),
+        "mean": format_value(check.metric, cap.mean),
+        "sd": format_spread(check.metric, cap.sd),
         "cpk": cpk,
         "note": note,
         "below": "below" if note == "below 1.33" else "",

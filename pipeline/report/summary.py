@@ -7,10 +7,12 @@ a later module; this one only lists what was decided.
 
 from __future__ import annotations
 
+import math
 from collections import Counter
 from collections.abc import Sequence
 
 from pipeline.judge.evaluate import decision_line
+from pipeline.judge.quantities import DASH, metric_format
 from pipeline.model import CellResult
 
 COLUMNS = (
@@ -27,15 +29,10 @@ COLUMNS = (
 
 
 def _fmt(metric: str, value: float | None) -> str:
-    if value is None:
-        return "—"
-    if metric == "first_cycle_efficiency":
-        return f"{value * 100:.1f}"
-    if metric in ("grading_capacity_Ah", "main_plateau_voltage_V"):
-        return f"{value:.3f}"
-    if metric == "rest_voltage_drift_mV_per_h":
-        return f"{value:+.2f}"
-    return f"{value:.1f}"
+    """The number as the certificate writes it (the column's title names the unit)."""
+    if value is None or not math.isfinite(value):
+        return DASH
+    return metric_format(metric)[0](value)
 
 
 def reason_line(result: CellResult) -> str:

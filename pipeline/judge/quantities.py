@@ -1,0 +1,189 @@
+"""How a metric's value, window and bounds are written: the one source of those words.
+
+Pure. The judge's reasons and decision line, the certificate's table, the letters and the
+lot report all write a quantity through this module, so one quantity reads the same
+everywhere: a fraction as a percentage (0.9658 is "96.58 %"), capacity and energy to four
+significant digits, voltage to the millivolt, resistance to three significant digits; a
+window as "98.00 to 101.00 %" (with an en dash), "≥ 80.00 %", "≤ 60.0 °C" or "any value";
+a value not measured as an em dash; a negative number with a true minus sign.
+
+A value out of its window that would print as the bound it crossed ("8.00 mOhm > 8.00
+mOhm") is written, with its window, to as many more digits as tell the two apart
+(:func:`precision`); every renderer asks for the same digits, so they still agree.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+
+from pipeline.judge.metricdefs import RULE_BY_NAME
+from pipeline.model import Window
+
+DASH = "\N{EM DASH}"  # shown for a value that was not measured
+MINUS = "\N{MINUS SIGN}"
+MAX_EXTRA_DIGITS = 6  # more digits than a cycler's numbers hold tell nothing apart
+Formatter = Callable[[float], str]
+
+
+def signed(text: str) -> str:
+    """Use a true minus sign, and never show minus zero."""
+    if not text.startswith("-"):
+        return text
+    return text[1:] if float(text) == 0 else MINUS + text[1:]
+
+
+def significant(value: float, digits: int) -> str:
+    """``value`` with ``digits`` significant digits in fixed notation (no exponent).
+
+    >>> significant(20.1349, 4), significant(0.98765, 4), significant(1234.6, 3)
+    ('20.13', '0.9877', '1235')
+    """
+    if value == 0:
+        return f"{0:.{digits - 1}f}"
+    decimals = min(6, max(0, digits - 1 - math.floor(math.log10(abs(value)))))
+    return signed(f"{value:.{decimals}f}")
+
+
+def _significant(digits: int) -> Callable[[int], Formatter]:
+    return lambda extra: lambda v: significant(v, digits + extra)
+
+
+def _fixed(decimals: int) -> Callable[[int], Formatter]:
+    return lambda extra: lambda v: signed(f"{v:.{decimals + extra}f}")
+
+
+# How each unit's numbers print, given the extra digits a close call needs: capacity and
+# energy to 4 significant digits, voltage to the mV, resistance to 3 significant digits
+# (common practice).
+_BY_UNIT: dict[str, Callable[[int], Formatter]] = {
+    "Ah": _significant(4),
+    "Wh": _significant(4),
+    "V": _fixed(3),
+    "mOhm": _significant(3),
+    "mV/h": _fixed(2),
+    "°C": _fixed(1),
+    "s": _fixed(0),
+    "%": _fixed(1),
+}
+# The plain formatters of some units, for tables that show them outside any check.
+BY_UNIT: dict[str, Formatter] = {unit: make(0) for unit, make in _BY_UNIT.items()}
+
+
+def percent(value: float, extra: int = 0) -> str:
+    """A fraction as a percentage to two decimals (without the sign): 0.9658 -> '96.58'."""
+    return signed(f"{value * 100:.{2 + extra}f}")
+
+
+def _scale(metric: str) -> tuple[float, str]:
+    """The factor a metric's value is shown at, and its unit (a fraction shows as %)."""
+    definition = RULE_BY_NAME.get(metric)
+    unit = definition.unit if definition else ""
+    if unit == "" and metric.endswith("efficiency"):
+        return 100.0, "%"
+    return 1.0, unit
+
+
+def metric_format(metric: str, extra: int = 0) -> tuple[Formatter, str]:
+    """The number formatter and the unit shown for a metric (fractions show as %)."""
+    scale, unit = _scale(metric)
+    if scale != 1.0:
+        return (lambda v: percent(v, extra)), unit
+    if unit == "" and metric.endswith("_count"):
+        return (lambda v: signed(f"{v:.{extra}f}")), ""
+    make = _BY_UNIT.get(unit, _significant(4))
+    return make(extra), unit
+
+
+def with_unit(number: str, unit: str) -> str:
+    return f"{number} {unit}" if unit else number
+
+
+def format_value(metric: str, value: float | None, extra: int = 0) -> str:
+    """A measured value with its unit, or an em dash when it was not measured.
+
+    >>> format_value("grading_capacity_Ah", 20.1349), format_value("dcir_mOhm", None)
+    ('20.13 Ah', '—')
+    >>> format_value("grading_coulombic_efficiency", 0.9658)
+    '96.58 %'
+    """
+    if value is None or not math.isfinite(value):
+        return DASH
+    number, unit = metric_format(metric, extra)
+    return with_unit(number(value), unit)
+
+
+def format_window(metric: str, window: Window, extra: int = 0) -> str:
+    """The window as "low to high" (an en dash), "≥ low", "≤ high" (with unit) or "any value".
+
+    >>> format_window("first_cycle_efficiency", Window(0.8, None))
+    '≥ 80.00 %'
+    """
+    number, unit = metric_format(metric, extra)
+    low, high = window.low, window.high
+    if low is not None and high is not None:
+        return with_unit(f"{number(low)} \N{EN DASH} {number(high)}", unit)
+    if low is not None:
+        return with_unit(f"\N{GREATER-THAN OR EQUAL TO} {number(low)}", unit)
+    if high is not None:
+        return with_unit(f"\N{LESS-THAN OR EQUAL TO} {number(high)}", unit)
+    return "any value"
+
+
+def format_spread(metric: str, value: float | None, digits: int = 3) -> str:
+    """A spread (a standard deviation) in the metric's shown unit, to ``digits`` significant
+    digits: a small spread keeps its digits where the value's fixed decimals would not.
+
+    >>> format_spread("grading_mean_voltage_V", 0.000412), format_spread("first_cycle_efficiency", 0.0012)
+    ('0.000412 V', '0.120 %')
+    """
+    if value is None or not math.isfinite(value):
+        return DASH
+    scale, unit = _scale(metric)
+    return with_unit(significant(value * scale, digits), unit)
+
+
+def crossed(value: float | None, window: Window) -> float | None:
+    """The bound an out-of-window value crossed; None for a value in window or not measured."""
+    if value is None or not math.isfinite(value):
+        return None
+    if window.low is not None and value < window.low:
+        return window.low
+    if window.high is not None and value > window.high:
+        return window.high
+    return None
+
+
+def precision(metric: str, value: float | None, window: Window) -> int:
+    """The extra digits that tell an out-of-window value from the bound it crossed (0 mostly).
+
+    >>> precision("dcir_mOhm", 8.004, Window(None, 8.0)), precision("dcir_mOhm", 9.1, Window(None, 8.0))
+    (1, 0)
+    >>> format_value("dcir_mOhm", 8.004, 1), format_window("dcir_mOhm", Window(None, 8.0), 1)
+    ('8.004 mOhm', '≤ 8.000 mOhm')
+    """
+    bound = crossed(value, window)
+    if bound is None or value is None:
+        return 0
+    for extra in range(MAX_EXTRA_DIGITS + 1):
+        number, _ = metric_format(metric, extra)
+        if number(value) != number(bound):
+            return extra
+    return MAX_EXTRA_DIGITS
+
+
+__all__ = [
+    "BY_UNIT",
+    "DASH",
+    "MINUS",
+    "crossed",
+    "format_spread",
+    "format_value",
+    "format_window",
+    "metric_format",
+    "percent",
+    "precision",
+    "signed",
+    "significant",
+    "with_unit",
+]
