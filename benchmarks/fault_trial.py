@@ -11,18 +11,24 @@ A short run is part of `make test` (tests/test_station_trial.py). The station ru
 and a settle-mode inbox. Into them go good and failing cells, duplicates, names that
 are not UTF-8 or hold a line break or 250 characters, bad content, a line past
 max_line_kB, rows past max_rows, folders, dangling links, links to folders, named
-pipes, unreadable files, dot-names and a writer that pauses half way. Meanwhile the
-station is killed with SIGKILL at random moments (some while it recovers) and started
-again at once, as a service manager would; its mail server first refuses connections,
-then takes them and never answers, then works; and, where this machine lets the trial
-mount a small file system, the station's disk is filled for a while.
+pipes, unreadable files, dot-names, folders no one may move (immutable, where the
+filesystem has the flag) and a writer that pauses half way. Meanwhile the station is
+killed with SIGKILL at random moments (some while it recovers) and started again at
+once, as a service manager would; its worker launcher (Python's forkserver) and its
+workers are killed at other moments; its settle-mode inbox goes away for a few seconds
+(an unmounted share) and comes back; its mail server first refuses connections, then
+takes them and never answers, then works slowly while `formgate mail retry` loops run
+beside the station; and, where this machine lets the trial mount a small file system,
+the station's disk is filled for a while.
 
 At the end the station is stopped, the outbox is sent with `formgate mail retry`, and a
-table shows for each kind of input what became of it. The trial passes (exit 0) when
-every input was decided exactly once (archived, quarantined, set aside, a duplicate,
-or, for a dot-name, left waiting and shown), none is lost, none was judged twice, every
-archived file matches the ledger's hash, every queued mail was delivered, and the
-station never ended by itself (no crash loop); else it exits 1.
+table shows for each kind of input what became of it, and one for the mail: the letters
+in the ledger and the Message-IDs the server received. The trial passes (exit 0) when
+every input was decided exactly once (archived, quarantined, set aside, a duplicate, or,
+for a dot-name or a folder no one may move, left in the inbox and shown), none is lost,
+none was judged twice, every archived file matches the ledger's hash, every queued mail
+was delivered, no Message-ID arrived twice but for one interrupted by a SIGKILL of its
+sender, and the station never ended by itself (no crash loop); else it exits 1.
 """
 
 from __future__ import annotations
@@ -30,9 +36,11 @@ from __future__ import annotations
 import argparse
 import collections
 import contextlib
+import glob
 import hashlib
 import os
 import random
+import signal
 import socket
 import sqlite3
 import subprocess
@@ -74,12 +82,17 @@ class Entry:
 class Dropper:
     """Writes the trial's inputs; every name is new (a running number in front)."""
 
-    def __init__(self, quick: Path, slow: Path, rng: random.Random, can_lock: bool) -> None:
+    def __init__(
+        self, quick: Path, slow: Path, rng: random.Random, can_lock: bool, can_freeze: bool
+    ) -> None:
         self.quick, self.slow, self.rng, self.can_lock = quick, slow, rng, can_lock
+        self.can_freeze = can_freeze
+        self.slow_gone = False  # the settle inbox is away (a share unmounted): nobody writes there
         self.entries: list[Entry] = []
         self.good: list[bytes] = []
         self.n = 0
         self.writers: list[threading.Thread] = []
+        self.frozen: list[Path] = []
 
     def _name(self, tail: str) -> str:
         self.n += 1
@@ -103,7 +116,7 @@ class Dropper:
         settle: bool = False,
         same: bool = False,
     ) -> None:
-        folder = self.slow if settle else self.quick
+        folder = self.slow if settle and not self.slow_gone else self.quick
         name = self._name(tail)
         self._hand_over(folder, name, data)
         group = hashlib.sha256(data).hexdigest() if same else ""
@@ -152,15 +165,24 @@ class Dropper:
             self._other("named pipe", os.mkfifo)
         elif r < 0.93 and self.can_lock:
             self._other("unreadable file", _unreadable)
+        elif r < 0.945 and self.can_freeze:
+            path = self.quick / self._name("_frozen")
+            _folder(path)
+            _immutable(path, True)
+            self.frozen.append(path)
+            self.entries.append(Entry("folder no one may move", self.quick, path.name, "left in place"))
         elif r < 0.96:
             name = "." + self._name("_dot.csv")
             (self.quick / name).write_bytes(b"a temporary name nobody renames\n")
             self.entries.append(Entry("dot-name", self.quick, name, "waiting"))
-        else:
+        elif not self.slow_gone:
             self._paused_writer(cycle_file(f"T-{k}", seed=k))
+        else:
+            self.file("good cell", "archived", "_good.csv", cycle_file(f"T-{k}", seed=k), same=True)
 
     def _other(self, case: str, make: Callable[[Path], object]) -> None:
-        path = (self.slow if self.rng.random() < 0.3 else self.quick) / self._name("_odd.csv")
+        slow = self.rng.random() < 0.3 and not self.slow_gone
+        path = (self.slow if slow else self.quick) / self._name("_odd.csv")
         make(path)
         self.entries.append(Entry(case, path.parent, path.name, "set aside"))
 
@@ -192,6 +214,41 @@ def _unreadable(path: Path) -> None:
     path.chmod(0)
 
 
+def _immutable(path: Path, on: bool) -> bool:
+    """Set or clear the immutable flag (not even root may rename it); False if unsupported."""
+    try:
+        done = subprocess.run(["chattr", "+i" if on else "-i", str(path)], capture_output=True,
+                              check=False)
+    except FileNotFoundError:
+        return False
+    return done.returncode == 0
+
+
+def _can_freeze(folder: Path) -> bool:
+    probe = folder / "immutable-probe"
+    probe.mkdir()
+    frozen = _immutable(probe, True)
+    _immutable(probe, False)
+    probe.rmdir()
+    return frozen
+
+
+def _children(pid: int) -> list[tuple[int, bytes]]:
+    """(pid, command line) of the processes whose parent is ``pid`` (Linux /proc)."""
+    found = []
+    for entry in os.listdir("/proc"):
+        if not entry.isdigit():
+            continue
+        try:
+            stat = Path(f"/proc/{entry}/stat").read_text()
+            cmdline = Path(f"/proc/{entry}/cmdline").read_bytes()
+        except OSError:
+            continue
+        if int(stat.rsplit(")", 1)[1].split()[1]) == pid:
+            found.append((int(entry), cmdline))
+    return found
+
+
 class Supervisor:
     """Runs `formgate watch`, restarting it at once after each end, as a service manager would."""
 
@@ -200,6 +257,7 @@ class Supervisor:
         self.proc = start_watch(root, obey_permissions=True)
         self.started = time.monotonic()
         self.starts, self.kills, self.kills_in_recovery = 1, 0, 0
+        self.launcher_kills = self.worker_kills = 0
         self.own_exits: list[int] = []
         self.stopped = False
 
@@ -218,6 +276,30 @@ class Supervisor:
         self.proc.kill()
         stop_watch(self.proc)
         self._start()
+
+    def launcher(self) -> int | None:
+        """The pid of the station's worker launcher (the forkserver), if it runs now."""
+        return next((p for p, cmd in _children(self.proc.pid) if b"forkserver" in cmd), None)
+
+    def kill_launcher(self) -> None:
+        """Kill the launcher, waiting up to 2 s for one to run (it starts with the first worker)."""
+        deadline = time.monotonic() + 2.0
+        pid = self.launcher()
+        while pid is None and time.monotonic() < deadline:
+            time.sleep(0.05)
+            pid = self.launcher()
+        if pid is not None:
+            with contextlib.suppress(ProcessLookupError):
+                os.kill(pid, signal.SIGKILL)
+                self.launcher_kills += 1
+
+    def kill_worker(self, rng: random.Random) -> None:
+        launcher = self.launcher()
+        workers = [p for p, _ in _children(launcher)] if launcher is not None else []
+        if workers:
+            with contextlib.suppress(ProcessLookupError):
+                os.kill(rng.choice(workers), signal.SIGKILL)
+                self.worker_kills += 1
 
     def _start(self) -> None:
         self.proc = start_watch(self.root, obey_permissions=True)
@@ -289,7 +371,7 @@ def station_toml(port: int) -> str:
 
 def quiet(root: Path, entries: list[Entry]) -> bool:
     """Nothing left to decide: inboxes hold only what must wait, work holds no input."""
-    waiting = {(e.inbox, e.name) for e in entries if e.expect == "waiting"}
+    waiting = {(e.inbox, e.name) for e in entries if e.expect in ("waiting", "left in place")}
     for inbox in {e.inbox for e in entries}:
         if any((inbox, n) not in waiting for n in os.listdir(inbox) if not n.endswith(".part")):
             return False
@@ -326,7 +408,8 @@ def reconcile(root: Path, entries: list[Entry]) -> tuple[list[list[str]], dict[s
         states = collections.Counter(s for s, _, _ in got)
         states.update("set aside" for s in aside.get(text, []) if s == "quarantined")
         states.update("left in place" for s in aside.get(text, []) if s == "left_in_place")
-        if not got and not aside.get(text) and (root / "quarantine" / text).exists():
+        quarantined = any((root / "quarantine").glob(f"aside-*_{glob.escape(text)}"))
+        if not got and not aside.get(text) and quarantined:
             states["set aside"] += 1  # killed between the move and its ledger row
             totals["set aside without a ledger row"] += 1
         for state, path, sha in got:
@@ -342,6 +425,8 @@ def reconcile(root: Path, entries: list[Entry]) -> tuple[list[list[str]], dict[s
         if e.expect == "waiting":
             ok = present and not decided
             row["waiting"] += present
+        elif e.expect == "left in place":  # shown in status, tried again only once it changes
+            ok = present and not decided and states["left in place"] == 1
         elif e.expect == "versions":  # one version, or two when the writer came back in time
             ok = 1 <= states["archived"] <= 2 and decided == states["archived"]
         elif groups[e.same_as] > 1:  # equal bytes: which one is judged depends on who came first
@@ -385,6 +470,50 @@ def show(table: list[list[str]]) -> str:
     return "\n".join(lines)
 
 
+class RetryLoops:
+    """`formgate mail retry` run again and again beside the station, as impatient staff might."""
+
+    def __init__(self, root: Path, loops: int) -> None:
+        self.root, self.stop = root, threading.Event()
+        self.runs = 0
+        self.threads = [threading.Thread(target=self._loop, daemon=True) for _ in range(loops)]
+
+    def _loop(self) -> None:
+        while not self.stop.is_set():
+            subprocess.run([sys.executable, "-m", "pipeline", "mail", "retry", str(self.root)],
+                           cwd=REPO, capture_output=True, check=False)
+            self.runs += 1
+            self.stop.wait(0.2)
+
+    def start(self) -> None:
+        for thread in self.threads:
+            thread.start()
+
+    def join(self) -> None:
+        self.stop.set()
+        for thread in self.threads:
+            thread.join()
+
+
+def mail_table(root: Path, received: list[str]) -> tuple[list[list[str]], int, int]:
+    """Letters in the ledger against Message-IDs at the sink: (table, received twice, never)."""
+    db = sqlite3.connect(f"file:{root / 'ledger.sqlite'}?mode=ro", uri=True)
+    queued = dict(db.execute("SELECT kind, count(*) FROM outbox GROUP BY kind").fetchall())
+    ids = {m: k for m, k in db.execute("SELECT message_id, kind FROM outbox")}
+    db.close()
+    got = collections.Counter(received)
+    table = [["letter", "queued", "received", "received twice", "never received"]]
+    for kind in sorted(queued):
+        mine = [m for m, k in ids.items() if k == kind]
+        table.append([kind, str(queued[kind]), str(sum(1 for m in mine if got[m])),
+                      str(sum(1 for m in mine if got[m] > 1)), str(sum(1 for m in mine if not got[m]))])
+    strangers = sum(1 for m in got if m not in ids)
+    twice = sum(1 for m in got.values() if m > 1)
+    never = sum(1 for m in ids if not got[m])
+    table.append(["total", str(len(ids)), str(len(got) - strangers), str(twice), str(never)])
+    return table, twice, never
+
+
 def run(args: argparse.Namespace, folder: Path) -> int:
     rng = random.Random(args.seed)
     port = free_port()
@@ -392,19 +521,32 @@ def run(args: argparse.Namespace, folder: Path) -> int:
         s = make_station(folder / "disk" / "st", station_toml(port))
         quick, slow = (i.folder for i in s.inboxes)
         slow.mkdir(exist_ok=True)
-        dropper = Dropper(quick, slow, rng, permissions_are_obeyed(folder))
+        # the immutable flag is the inbox's file system's to give (tmpfs has none)
+        dropper = Dropper(quick, slow, rng, permissions_are_obeyed(folder), _can_freeze(quick))
         supervisor = Supervisor(s.root)
         received: list[str] = []
-        kill_at = sorted(rng.uniform(0.5, args.files * args.gap_s) for _ in range(args.kills))
+        span_s = args.files * args.gap_s
+        kill_at = sorted(rng.uniform(0.5, span_s) for _ in range(args.kills))
+        # the launcher is killed in a row of quick kills, workers now and then between
+        launcher_at = [span_s * 0.2 + k * 0.4 for k in range(args.launcher_kills)]
+        worker_at = sorted(rng.uniform(0.5, span_s) for _ in range(args.worker_kills))
         fill_planned = mounted and not args.no_disk_full
-        fill_at = args.files * args.gap_s * 0.6 if fill_planned else None
+        fill_at = span_s * 0.6 if fill_planned else None
+        away_at = None if args.no_inbox_removal else span_s * 0.4
+        away = slow.with_name(slow.name + "-unmounted")
         t0 = time.monotonic()
-        silent_port = contextlib.ExitStack()
+        mail = contextlib.ExitStack()
+        loops = RetryLoops(s.root, args.retry_loops)
+        server = None
         filled: Path | None = None
         try:
-            for k in range(args.files):  # mail server: refusing, then silent, then working
+            for k in range(args.files):  # mail server: refusing, silent, then slow with retry loops
                 if k == args.files // 3:
-                    silent_port.enter_context(silent(port))
+                    mail.enter_context(silent(port))
+                if k == 2 * args.files // 3:
+                    mail.close()
+                    server = mail.enter_context(smtp_server(port=port, data_delay_s=0.2))
+                    loops.start()
                 if filled is None:  # a cycler cannot write to a full disk either
                     dropper.one()
                 time.sleep(args.gap_s)
@@ -412,8 +554,22 @@ def run(args: argparse.Namespace, folder: Path) -> int:
                 while kill_at and kill_at[0] <= now:
                     kill_at.pop(0)
                     supervisor.kill()
-                if fill_at is not None and filled is None and now >= fill_at:
+                while launcher_at and launcher_at[0] <= now:
+                    launcher_at.pop(0)
+                    supervisor.kill_launcher()
+                while worker_at and worker_at[0] <= now:
+                    worker_at.pop(0)
+                    supervisor.kill_worker(rng)
+                if away_at is not None and not dropper.slow_gone and away_at <= now < away_at + 3.0:
                     for thread in dropper.writers:  # no writer half way through its file
+                        thread.join()
+                    dropper.slow_gone = True
+                    slow.rename(away)
+                if dropper.slow_gone and now >= away_at + 3.0:  # type: ignore[operator]
+                    away.rename(slow)
+                    dropper.slow_gone, away_at = False, None
+                if fill_at is not None and filled is None and now >= fill_at:
+                    for thread in dropper.writers:
                         thread.join()
                     filled = fill(folder / "disk")
                 if filled is not None and now >= fill_at + 3.0:  # type: ignore[operator]
@@ -422,39 +578,52 @@ def run(args: argparse.Namespace, folder: Path) -> int:
                 supervisor.poll()
             for thread in dropper.writers:
                 thread.join()
+            if dropper.slow_gone:
+                away.rename(slow)
             if filled is not None:
                 filled.unlink()
-            silent_port.close()
-            with smtp_server(port=port) as server:
-                deadline = time.monotonic() + args.settle_timeout_s
-                while not quiet(s.root, dropper.entries) and time.monotonic() < deadline:
-                    supervisor.poll()
-                    time.sleep(0.3)
-                code = supervisor.stop()
-                subprocess.run([sys.executable, "-m", "pipeline", "mail", "retry", str(s.root)],
-                               cwd=REPO, capture_output=True, check=False)
-                received = [str(m.parsed()["Message-ID"]) for m in server.received]
+            if server is None:
+                mail.close()
+                server = mail.enter_context(smtp_server(port=port, data_delay_s=0.2))
+                loops.start()
+            deadline = time.monotonic() + args.settle_timeout_s
+            while not quiet(s.root, dropper.entries) and time.monotonic() < deadline:
+                supervisor.poll()
+                time.sleep(0.3)
+            loops.join()
+            code = supervisor.stop()
+            subprocess.run([sys.executable, "-m", "pipeline", "mail", "retry", str(s.root)],
+                           cwd=REPO, capture_output=True, check=False)
+            received = [str(m.parsed()["Message-ID"]) for m in server.received]
         finally:
-            silent_port.close()
+            loops.stop.set()
+            mail.close()
             with contextlib.suppress(Exception):
                 supervisor.stop()
+            for path in dropper.frozen:
+                _immutable(path, False)
             for e in dropper.entries:  # give the trial's own files back their permissions
                 with contextlib.suppress(OSError):
                     if e.case == "unreadable file":
-                        for p in (e.inbox / e.name, *s.quarantine.glob(f"{to_text(e.name)}*")):
+                        for p in (e.inbox / e.name, *s.quarantine.glob(f"*{to_text(e.name)}*")):
                             p.chmod(0o644)
         table, totals = reconcile(s.root, dropper.entries)
-        twice = sum(n - 1 for n in collections.Counter(received).values() if n > 1)
+        letters, twice, never = mail_table(s.root, received)
         print(show(table))
         print()
+        print(show(letters))
+        print()
         print(f"station: {supervisor.starts} starts, {supervisor.kills} SIGKILLs by the trial "
-              f"({supervisor.kills_in_recovery} within 2 s of a start), ended by itself "
+              f"({supervisor.kills_in_recovery} within 2 s of a start), {supervisor.launcher_kills} "
+              f"of its worker launcher, {supervisor.worker_kills} of a worker; ended by itself "
               f"{len(supervisor.own_exits)} times {supervisor.own_exits or ''}, last stop exit {code}")
         print(f"mail: {totals['mail sent']} sent, {totals['mail pending']} pending, "
-              f"{totals['mail parked']} parked; the server took {len(received)} "
-              f"({len(set(received))} distinct Message-IDs, {twice} again after a kill)")
+              f"{totals['mail parked']} parked; the server took {len(received)} messages "
+              f"({len(set(received))} distinct Message-IDs, {twice} twice, {never} letters never); "
+              f"{loops.runs} runs of formgate mail retry beside the station")
         filled_note = "filled for 3 s" if fill_planned else "not filled (no tmpfs here, or --no-disk-full)"
-        print(f"disk: {filled_note}")
+        print(f"disk: {filled_note}; settle inbox: "
+              + ("away for 3 s" if not args.no_inbox_removal else "not removed (--no-inbox-removal)"))
         lost = totals.get("lost", 0)
         failed = totals.get("not decided once", 0)
         print(f"reconciliation: {lost} lost, {failed} not decided exactly once, "
@@ -464,6 +633,9 @@ def run(args: argparse.Namespace, folder: Path) -> int:
             not lost and not failed and not totals["judged_twice"]
             and not totals.get("archive differs from ledger") and not supervisor.own_exits
             and code == 0 and not totals["mail pending"] and not totals["mail parked"]
+            # a SIGKILL between the server's answer and the ledger's note may send one
+            # letter again; nothing else may
+            and twice <= supervisor.kills and not never
         )
         if args.keep:
             subprocess.run(["cp", "-a", str(s.root), str(args.keep)], check=False)
@@ -474,6 +646,14 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--files", type=int, default=200, help="inputs to drop (default 200)")
     parser.add_argument("--kills", type=int, default=20, help="random SIGKILLs (default 20)")
+    parser.add_argument("--launcher-kills", type=int, default=10,
+                        help="SIGKILLs of the worker launcher, in a row (default 10)")
+    parser.add_argument("--worker-kills", type=int, default=10,
+                        help="SIGKILLs of a worker at random moments (default 10)")
+    parser.add_argument("--retry-loops", type=int, default=2,
+                        help="formgate mail retry loops beside the station (default 2)")
+    parser.add_argument("--no-inbox-removal", action="store_true",
+                        help="keep the settle inbox in place")
     parser.add_argument("--seed", type=int, default=1)
     parser.add_argument("--gap-s", type=float, default=0.15, help="pause between drops")
     parser.add_argument("--settle-timeout-s", type=float, default=300.0)
