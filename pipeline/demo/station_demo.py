@@ -128,9 +128,13 @@ def simulate_staged_line(root: Path, log: logging.Logger) -> list[str]:
 
 
 def _drained(root: Path, ledger_path: Path, expected: int) -> bool:
-    for inbox in ("inbox", "inbox-rename", "inbox-marker", "work"):
+    for inbox in ("inbox", "inbox-rename", "inbox-marker"):
         if any(p for p in (root / inbox).iterdir() if not p.name.endswith(".done")):
             return False
+    # work/.taken keeps settle-mode originals for keep_originals_h after their copy was
+    # archived: the station keeps them, it does not have them in hand
+    if any(p for p in (root / "work").iterdir() if not p.name.startswith(".")):
+        return False
     if not ledger_path.exists():
         return False
     with Ledger(ledger_path) as ledger:
