@@ -53,6 +53,21 @@ def safe_name(identifier: str) -> str:
     return f"{cleaned or 'unnamed'}-{digest}"
 
 
+# A cell's own certificate and JSON (its standing decision over every stage) are named
+# ``<cell>~cell``: a record of stages is ``<cell>`` or ``<cell>~<stages>``, and no stage is
+# called "cell", so the names never meet.
+CELL_SUFFIX = "~cell"
+
+
+def cell_file_stem(cell_id: str) -> str:
+    """The name, without extension, of a cell's own certificate and JSON.
+
+    >>> cell_file_stem("S04-024"), cell_file_stem("../x")
+    ('S04-024~cell', 'x-d6b96a97~cell')
+    """
+    return safe_name(cell_id) + CELL_SUFFIX
+
+
 NAME_MAX_BYTES = 255  # longest file name on Linux filesystems (ext4, xfs, tmpfs, NFS, CIFS)
 # Categories shown escaped: controls, format characters (bidirectional overrides can make a
 # name read backwards), spaces other than the plain one (they look like it), line and

@@ -279,6 +279,40 @@ def stage_scope(stages: tuple[str, ...]) -> str:
     )
 
 
+def record_heading(stages: tuple[str, ...]) -> str:
+    """The certificate's title: a stage record says which stage it is.
+
+    >>> record_heading(("formation", "grading")), record_heading(("grading",))
+    ('Formation and grading certificate', 'Stage certificate: grading')
+    """
+    if tuple(stages) == WHOLE_PROGRAM:
+        return "Formation and grading certificate"
+    return f"Stage certificate: {stage_words(stages)}"
+
+
+def record_scope(cell_id: str, stages: tuple[str, ...], cell_certificate: str | None) -> str:
+    """What a record's certificate covers, said on page 1 before its verdict: one stage of
+    the cell, or its whole program in one file; and where the cell's standing decision is."""
+    if tuple(stages) == WHOLE_PROGRAM:
+        covers = (
+            f"This certificate covers the whole program of cell {cell_id} ("
+            f"{stage_words(stages)}) in one record, judged on that record alone."
+        )
+    else:
+        covers = (
+            f"This certificate covers one stage of cell {cell_id}: its {stage_words(stages)} "
+            "record, judged on that stage alone."
+        )
+    if cell_certificate is None:  # judged outside a station: no cell certificate to name
+        if tuple(stages) == WHOLE_PROGRAM:
+            return covers
+        return covers + " The cell may be released only on its decision over every stage."
+    return covers + (
+        f" The cell's standing decision over all its stages, its lot's screens and any review "
+        f"is on its cell certificate, {cell_certificate}."
+    )
+
+
 def _identity(result: CellResult) -> list[tuple[str, str]]:
     meta = result.metadata
     ct = result.cell_type
@@ -330,8 +364,13 @@ def _ica_caption(curve: Curve | None, peaks_v: tuple[float, ...]) -> str:
     return "Incremental capacity dQ/dV; dashed lines mark the peaks found."
 
 
-def build_context(result: CellResult, verification_code: str | None = None) -> dict[str, object]:
+def build_context(
+    result: CellResult, verification_code: str | None = None, *, cell_certificate: str | None = None
+) -> dict[str, object]:
     """Everything the certificate template shows, already formatted as strings.
+
+    ``cell_certificate``: the file name of the cell's own certificate, which a station
+    publishes beside its records (None: no station, no cell certificate to name).
 
     ``verification_code``: the code of the result JSON published with the certificate
     (report/verification.py); a caller that has the JSON text passes it, else it is
@@ -368,7 +407,7 @@ def build_context(result: CellResult, verification_code: str | None = None) -> d
     return {
         "title": f"Certificate for cell {cell_id}: {word}",
         "description": (
-            f"Formation and grading certificate, cell {cell_id}, lot {result.lot or DASH}, "
+            f"{record_heading(result.stages)}, cell {cell_id}, lot {result.lot or DASH}, "
             f"cell type {result.cell_type.name}: {word}"
         ),
         # the code in the PDF's metadata too: `formgate verify` reads it from a copy of the
@@ -378,6 +417,9 @@ def build_context(result: CellResult, verification_code: str | None = None) -> d
         "generator": f"formgate {result.software_version}",
         "created": format_time(result.analysed_at),
         "cell_id": cell_id,
+        "heading": record_heading(result.stages),
+        "scope": record_scope(cell_id, result.stages, cell_certificate),
+        "verdict_label": "Verdict" if tuple(result.stages) == WHOLE_PROGRAM else "Stage verdict",
         "verdict": {
             "kind": kind.value,
             "word": word,
@@ -436,8 +478,10 @@ def environment() -> jinja2.Environment:
     )
 
 
-def render_html(result: CellResult, verification_code: str | None = None) -> str:
+def render_html(
+    result: CellResult, verification_code: str | None = None, *, cell_certificate: str | None = None
+) -> str:
     """The certificate of one judged cell as an HTML document (a str)."""
     return environment().get_template(TEMPLATE_NAME).render(
-        build_context(result, verification_code)
+        build_context(result, verification_code, cell_certificate=cell_certificate)
     )

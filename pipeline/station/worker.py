@@ -26,6 +26,7 @@ from pathlib import Path
 
 from pipeline.errors import FormgateError, InputError
 from pipeline.model import CellResult, SourceRef, VerdictKind
+from pipeline.names import cell_file_stem
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.limits import TextLimits, check_text
 from pipeline.read.readings import ReadingFile, looks_like_readings, read_readings
@@ -248,5 +249,7 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None] | Read
         from pipeline.report.verification import verification_code
 
         # the certificate carries the code of the very JSON text published with it
-        pdf = render_pdf(render_html(result, verification_code(json_text)))
+        # a station publishes the cell's own certificate beside its records: name it
+        cell = None if task.ledger_path is None else f"{cell_file_stem(result.cell_id)}.pdf"
+        pdf = render_pdf(render_html(result, verification_code(json_text), cell_certificate=cell))
     return result, json_text, pdf
