@@ -27,6 +27,21 @@ _ORDER = {"fail": 0, "error": 1, "hold": 2, "pass": 3}
 
 
 @dataclass(frozen=True, slots=True)
+class CheckOut:
+    """A check of a record that was out of its window or could not be judged."""
+
+    rule_id: str  # the check's id, as in the result JSON
+    metric: str
+    severity: str  # reject or review
+    outcome: str  # out_of_window or not_judged
+
+    @property
+    def failed(self) -> bool:
+        """A reject check out of its window: what fails a cell."""
+        return self.severity == "reject" and self.outcome == "out_of_window"
+
+
+@dataclass(frozen=True, slots=True)
 class StageRecord:
     """One judged record of a cell: the stages it covers, its verdict and deciding line."""
 
@@ -36,6 +51,7 @@ class StageRecord:
     hazards: tuple[str, ...] = ()
     source: str = ""  # the file it came from
     sha256: str = ""
+    checks_out: tuple[CheckOut, ...] = ()  # what a person reviewing the cell looks at
 
 
 @dataclass(frozen=True, slots=True)

@@ -7,7 +7,8 @@ readings; its verdict is the worst of its stages, held while a needed stage is m
 (judge/cellverdict.py). The lot's robust screens are then evaluated once, on the cells
 that pass at that moment: a passing cell outside them becomes ``hold`` ("outlier in
 lot: ..."), and the close records both decisions, never only the second. Grades go to
-the cells that still pass.
+the cells that still pass. A person's review that still stands decides its cell instead
+of its records (judge/review.py; how it meets the screens: :func:`close_lot`).
 """
 
 from __future__ import annotations
@@ -24,11 +25,13 @@ from pipeline.judge.cellverdict import (
     AGING,
     CYCLE_FILE,
     CellDecision,
+    CheckOut,
     StageRecord,
     decide,
     outlier_phrase,
 )
 from pipeline.judge.evaluate import decision_line
+from pipeline.judge.lotscreens import Outlier
 from pipeline.judge.lotstats import (
     CellRow,
     GradeClass,
@@ -36,10 +39,12 @@ from pipeline.judge.lotstats import (
     ScreenSpec,
     Sides,
     WindowSpec,
+    grade_of,
     lot_statistics,
 )
 from pipeline.judge.metricdefs import RULE_BY_NAME
 from pipeline.judge.program import INCOMPLETE
+from pipeline.judge.review import Reviewed, held_after_release, screens_after_release, stands
 from pipeline.model import CellType, RuleSet
 from pipeline.read.readings import Reading, ReadingFile
 from pipeline.rulebook.book import RuleBook
@@ -104,6 +109,9 @@ def _lot_specs(
     return specs(rule_set, cell_type), screens, grades
 
 
+_OUT = ("out_of_window", "not_judged")
+
+
 def _cycle_record(doc: Mapping[str, Any]) -> StageRecord:
     verdict = str(doc["verdict"])
     reason = "" if verdict == "pass" else str(doc.get("decision") or "; ".join(doc["reasons"]))
@@ -114,6 +122,11 @@ def _cycle_record(doc: Mapping[str, Any]) -> StageRecord:
         tuple(str(h) for h in doc.get("hazards", ())),
         str(doc["input"]["name"]),
         str(doc["input"]["sha256"]),
+        tuple(
+            CheckOut(str(c["id"]), str(c["metric"]), str(c["severity"]), str(c["outcome"]))
+            for c in doc.get("checks", ())
+            if c.get("outcome") in _OUT
+        ),
     )
 
 
@@ -191,8 +204,14 @@ def cell_stages(
         reason = "" if verdict == "pass" else decision_line(aging.verdict, aging.notes)
         hazards = tuple(h.value for h in aging.verdict.hazards)
         sources = dict.fromkeys((name, sha) for name, sha, _ in readings)
+        out = tuple(
+            CheckOut(c.rule_id, c.metric, c.severity.value, c.outcome.value)
+            for c in aging.verdict.checks
+            if c.outcome.value in _OUT
+        )
         records.append(
-            StageRecord(AGING, verdict, reason, hazards, ", ".join(n for n, _ in sources))
+            StageRecord(AGING, verdict, reason, hazards, ", ".join(n for n, _ in sources),
+                        checks_out=out)
         )
         values.update(aging.values)
         files += [("aging", name, sha) for name, sha in sources]
@@ -206,12 +225,18 @@ def close_lot(
     rulebook: RuleBook,
     *,
     sha256: Mapping[str, str] | None = None,
+    reviews: Mapping[str, Reviewed] | None = None,
 ) -> ClosedLot:
     """Decide every cell of ``lot`` and evaluate its screens and grades.
 
     ``documents``: result JSON documents (any lots; only ``lot``'s are used; per stage a
     cell's latest by analysis time counts). ``reading_files``: aging readings (only
     ``lot``'s are used). ``sha256``: reading file's source name -> its SHA-256.
+    ``reviews``: each reviewed cell's latest review. One that still stands
+    (judge/review.py) decides its cell: the screens' limits come from the cells that pass
+    on their own (a concession never widens them), a cell released before the close is
+    held again only by a screen on a metric its release did not answer, and a released
+    cell is graded by its values like any passing cell.
     Raises FormgateError when the lot has no cell, or its cells need several rule sets.
     """
     docs_of: dict[str, list[Mapping[str, Any]]] = {}
@@ -264,13 +289,30 @@ def close_lot(
     for o in screened.outliers:
         unit = RULE_BY_NAME[o.metric].unit if o.metric in RULE_BY_NAME else ""
         flagged.setdefault(o.cell_id, []).append(outlier_phrase(o, unit))
+    standing = {
+        c: r for c, r in (reviews or {}).items()
+        if c in first and stands(r, first[c].records, first[c].files)
+    }
     cells = []
+    late: tuple[Outlier, ...] = ()  # released cells the screens hold again
     for cell, st in first.items():
         decision = before[cell]
         final = decision
-        if cell in flagged:
-            final = decide(needed[cell], st.records, flagged[cell])
-        grade = screened.grades.get(cell) if final.verdict == "pass" else None
+        if cell in standing:  # a person's review decides the cell (ISO 9001:2015, 8.7)
+            given = standing[cell].given
+            decision = final = CellDecision(given.verdict, (given.reason,), given.hazards, ())
+            found = screens_after_release(standing[cell], st.records, st.values,
+                                          screened.limits, cell)
+            if found:
+                late += found
+                final = CellDecision(
+                    "hold", held_after_release(found, standing[cell]), given.hazards, ()
+                )
+            grade = grade_of(st.values, grades) if final.verdict == "pass" else None
+        else:
+            if cell in flagged:
+                final = decide(needed[cell], st.records, flagged[cell])
+            grade = screened.grades.get(cell) if final.verdict == "pass" else None
         cells.append(
             ClosedCell(cell, types[cell], decision, final, grade, st.values, st.files, st.decided_at)
         )
@@ -281,6 +323,7 @@ def close_lot(
     )
     statistics = dataclasses.replace(
         screened,
+        outliers=screened.outliers + late,
         tally=as_closed.tally,
         grades=as_closed.grades,
         grade_counts=as_closed.grade_counts,
