@@ -117,12 +117,39 @@ class Decisions:
         )
         return [(r["lot"], r["cell_id"]) for r in rows]
 
+    def decided_after(
+        self, decision_id: int, since: datetime.datetime | None = None
+    ) -> list[tuple[str, str, int]]:
+        """(lot, cell, latest decision id) of each cell decided after ``decision_id`` (and
+        since ``since``): the cells whose cell certificate may be behind (station/cellcerts.py)."""
+        sql = "SELECT lot, cell_id, max(id) AS id FROM decisions WHERE id > ?"
+        params: tuple[object, ...] = (decision_id,)
+        if since is not None:
+            sql += " AND decided_at >= ?"
+            params += (utc_text(since, "since"),)
+        rows = self.db.rows(sql + " GROUP BY lot, cell_id ORDER BY max(id)", params)
+        return [(r["lot"], r["cell_id"], r["id"]) for r in rows]
+
+    def cells_recorded_since(self, since: datetime.datetime) -> list[tuple[str, str]]:
+        """(lot, cell) of each cell with a cycle-file record or a reading since ``since``."""
+        rows = self.db.rows(
+            "SELECT lot, cell_id FROM results WHERE analysed_at >= ? AND verdict <> 'error' "
+            "UNION SELECT g.lot, g.cell_id FROM readings g JOIN inputs i ON i.id = g.input_id "
+            "WHERE i.arrived_at >= ? ORDER BY 1, 2",
+            (utc_text(since, "since"), utc_text(since, "since")),
+        )
+        return [(r["lot"], r["cell_id"]) for r in rows]
+
     def waiting_cells(self) -> list[tuple[str, str, str, datetime.datetime]]:
-        """(lot, cell, reason, first decided) of every cell of an open lot whose latest
-        decision holds it while it waits for a stage."""
+        """(lot, cell, reason, since) of every cell of an open lot whose latest decision holds
+        it while it waits for a stage; ``since``: when it began to wait (its first decision,
+        or a retest asked after a fail or a hold for another reason)."""
         rows = self.db.rows(
             "SELECT d.lot, d.cell_id, d.reason, (SELECT min(decided_at) FROM decisions f "
-            "WHERE f.lot = d.lot AND f.cell_id = d.cell_id) AS first_at FROM decisions d "
+            "WHERE f.lot = d.lot AND f.cell_id = d.cell_id AND f.id > coalesce((SELECT "
+            "max(g.id) FROM decisions g WHERE g.lot = d.lot AND g.cell_id = d.cell_id AND "
+            "(g.verdict <> 'hold' OR g.reason NOT LIKE '%waiting for stage%')), 0)) "
+            "AS first_at FROM decisions d "
             "WHERE d.verdict = 'hold' AND d.reason LIKE '%waiting for stage%' "
             "AND d.lot NOT IN (SELECT lot FROM lots) AND d.id = (SELECT max(id) FROM decisions e "
             "WHERE e.lot = d.lot AND e.cell_id = d.cell_id) ORDER BY d.lot, d.cell_id"

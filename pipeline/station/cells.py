@@ -31,6 +31,7 @@ from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow
 from pipeline.mail.cell_letters import decision_letter, superseded_letter
 from pipeline.mail.letters import Letter
+from pipeline.station.reviewing import review_stands
 from pipeline.station.rules_in_force import RulesInForce
 from pipeline.station.settings import Settings
 
@@ -154,18 +155,22 @@ class CellDecisions:
                 cause=cause, files=stages.files, family=rule_set.family, now=now,
             )
 
-        row, before, new = self.ledger.decisions.decide(
-            cell_id=cell_id,
-            lot=lot,
-            verdict=decision.verdict,
-            reason=decision.reason,
-            hazards=decision.hazards,
-            grade=None,
-            cause=cause,
-            basis=[f"{stage}:{name}:{sha}" for stage, name, sha in stages.files],
-            now=now,
-            letters=letters,
-        )
+        with self.ledger.db.write():  # one transaction: a review recorded meanwhile is seen
+            if review_stands(self.ledger, lot, cell_id, stages):
+                # a person's review decides the cell until something new about it arrives
+                return self.ledger.decisions.latest(lot, cell_id)
+            row, before, new = self.ledger.decisions.decide(
+                cell_id=cell_id,
+                lot=lot,
+                verdict=decision.verdict,
+                reason=decision.reason,
+                hazards=decision.hazards,
+                grade=None,
+                cause=cause,
+                basis=[f"{stage}:{name}:{sha}" for stage, name, sha in stages.files],
+                now=now,
+                letters=letters,
+            )
         if new:
             self.mail_wake.set()
             was = f" (was {before.verdict})" if before is not None else ""
