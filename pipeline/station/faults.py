@@ -15,6 +15,7 @@ POINTS = (
     "after_record_claim",  # ledger knows the input, not yet judged
     "after_commit",  # result and outbox committed, no files written
     "mid_render",  # certificate temp file written, not renamed into place
+    "after_write",  # JSON and PDF in place, not yet recorded as published files
     "after_publish",  # outputs in place and recorded, input still in work/
     "after_archive_move",  # input moved to archive/quarantine, not yet recorded
     "after_send",  # mail accepted by the server, not yet marked sent

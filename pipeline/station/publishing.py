@@ -1,8 +1,9 @@
 """Publishing what the workers judged: record, write JSON and PDF, archive, quarantine, letters.
 
 One finished output becomes, in this order: ONE ledger transaction (result, check rows,
-outbox rows with the failure or hold letter), the JSON and PDF written atomically, the
-input marked published and moved to archive/YYYY-MM-DD/. An input that cannot be judged
+outbox rows with the failure or hold letter), the JSON and PDF written atomically and
+recorded as published files with their SHA-256 (published_files.py), the input marked
+published and moved to archive/YYYY-MM-DD/. An input that cannot be judged
 goes to quarantine/ with a .reason.txt beside it. Claiming inputs is claiming.py's job,
 handing them to the workers tasks.py's; the mail thread sends the letters (mailer.py).
 """
@@ -26,6 +27,7 @@ from pipeline.runner import result_paths
 from pipeline.station import faults
 from pipeline.station.cells import CellDecisions
 from pipeline.station.guard import Guard
+from pipeline.station.published_files import Written, note_kept, note_written
 from pipeline.station.setaside import NAME_RESERVE_BYTES
 from pipeline.station.settings import Settings
 from pipeline.station.worker import Output
@@ -112,11 +114,17 @@ class Publisher:
                 continue  # moved before
             kept_json = json_path.with_name(f"{json_path.stem}~record-{n}.json")
             kept_pdf = pdf_path.with_name(f"{pdf_path.stem}~record-{n}.pdf")
+            moved: list[Written] = []
             if json_path.exists():
-                write_atomic(json_path.read_bytes(), kept_json, make_parents=False)
+                moved.append(Written(kept_json, json_path.read_bytes(), "result"))
+                write_atomic(moved[-1].data, kept_json, make_parents=False)
             has_pdf = earlier.pdf_path is not None and pdf_path.exists()
             if has_pdf:
-                write_atomic(pdf_path.read_bytes(), kept_pdf, make_parents=False)
+                moved.append(Written(kept_pdf, pdf_path.read_bytes(), "certificate"))
+                write_atomic(moved[-1].data, kept_pdf, make_parents=False)
+            # recorded again under their new names before the ledger follows them there
+            for problem in note_kept(self.ledger, earlier, moved, now=self.clock()):
+                log.warning("%s", problem)
             self.ledger.results.move_outputs(
                 earlier.id, str(kept_json), str(kept_pdf) if has_pdf else earlier.pdf_path
             )
@@ -185,11 +193,20 @@ class Publisher:
     def publish(self, row: InputRow, result: CellResult, json_text: str, pdf: bytes | None) -> None:
         json_path, pdf_path = self.output_paths(result)
         # the results and certificates folders must be there; a lot's folder is made in them
-        write_atomic(json_text.encode("utf-8"), json_path, make_parents=False)
+        written = [Written(json_path, json_text.encode("utf-8"), "result")]
+        write_atomic(written[0].data, json_path, make_parents=False)
         if pdf is not None:
+            written.append(Written(pdf_path, pdf, "certificate"))
             write_atomic(
                 pdf, pdf_path, before_rename=lambda: faults.point("mid_render"), make_parents=False
             )
+        faults.point("after_write")
+        # the hashes of the bytes written, before the input counts as published: after a crash
+        # here the input is still 'judged', and the restart writes and records the same bytes
+        note_written(
+            self.ledger, written, now=self.clock(), lot=result.lot, cell_id=result.cell_id,
+            result_id=(self.ledger.inputs.get(row.id) or row).result_id,
+        )
         self.ledger.inputs.mark_published(row.id)
         faults.point("after_publish")
         self.finish(self.ledger.inputs.get(row.id) or row, "archived")
