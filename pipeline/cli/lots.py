@@ -137,7 +137,7 @@ def cmd_lot_report(args: argparse.Namespace) -> int:
 
 
 def cmd_cell_show(args: argparse.Namespace) -> int:
-    """A cell's history: every record, every reading file, every decision, oldest first."""
+    """A cell's history: every record, reading file, decision and review, oldest first."""
     _, ledger = _open(args.folder)
     with ledger:
         lots = (args.lot and [args.lot]) or [
@@ -170,6 +170,14 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
                 grade = f" grade {d.grade}" if d.grade else ""
                 print(f"    {d.decided_at.isoformat(timespec='seconds')}  {d.verdict}{grade}  "
                       f"({d.cause})" + (f": {d.reason}" if d.reason else ""))
+            reviews = ledger.reviews.of_cell(lot, args.cell)  # who decided what, and why
+            if reviews:
+                print(f"  reviews ({len(reviews)})")
+            for v in reviews:
+                what = f"retest of {v.stage}" if v.action == "retest" else v.action
+                accepts = f"; accepts {', '.join(v.accepts)}" if v.accepts else ""
+                print(f"    {v.reviewed_at.isoformat(timespec='seconds')}  {what} by {v.reviewer}"
+                      f"{accepts}: {v.reason}")
     return EXIT_OK
 
 
@@ -195,8 +203,9 @@ def add_commands(sub: Any) -> None:
     cell = sub.add_parser("cell", help="a cell's history",
                           epilog="example: formgate cell show station/ L01-011")
     cell_sub = cell.add_subparsers(dest="cell_command", required=True, metavar="ACTION")
-    show = cell_sub.add_parser("show", help="every record, reading and decision of a cell",
-                               description="Every record, aging reading and decision of a cell.")
+    show = cell_sub.add_parser("show", help="every record, reading, decision and review of a cell",
+                               description="Every record, aging reading, decision and review of "
+                                           "a cell.")
     show.add_argument("folder", metavar="FOLDER", help="the station folder")
     show.add_argument("cell", metavar="CELL", help="the cell id")
     show.add_argument("--lot", help="only in this lot (a cell id may recur in several lots)")

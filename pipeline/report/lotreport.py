@@ -188,13 +188,14 @@ def _caution(data: LotReportInput) -> dict[str, object] | None:
 
 
 def _attention(cells: Sequence[LotCell]) -> tuple[list[dict[str, str]], int]:
-    """The failed, held and unjudged cells, fails first then by cell id, capped; and how many more."""
+    """The failed, held and unjudged cells, fails first then by cell id, then the cells a person
+    released (a pass with a reason: who and why), capped; and how many more."""
     rank = {v: i for i, v in enumerate(ATTENTION)}
-    chosen = sorted((c for c in cells if c.verdict != "pass"),
+    chosen = sorted((c for c in cells if c.verdict != "pass" or c.reason),
                     key=lambda c: (rank.get(c.verdict, len(rank)), c.cell_id))
     rows = [
-        {"cell_id": c.cell_id, "verdict": c.verdict.upper(), "kind": c.verdict,
-         "reason": c.reason or DASH, "hazards": _hazard_words(c.hazards)}
+        {"cell_id": c.cell_id, "verdict": "RELEASED" if c.verdict == "pass" else c.verdict.upper(),
+         "kind": c.verdict, "reason": c.reason or DASH, "hazards": _hazard_words(c.hazards)}
         for c in chosen[:MAX_FAILED_ROWS]
     ]
     return rows, max(0, len(chosen) - MAX_FAILED_ROWS)
