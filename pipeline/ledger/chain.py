@@ -103,6 +103,14 @@ def broken_links(
     return problems, prev
 
 
+def chained_rows(conn: sqlite3.Connection, table: str) -> list[dict[str, object]]:
+    """Every row of ``table`` in id order, as :func:`broken_links` walks them."""
+    assert table in FIELDS
+    cur = conn.execute(f"SELECT * FROM {table} ORDER BY id")
+    names = [d[0] for d in cur.description]
+    return [dict(zip(names, values, strict=True)) for values in cur.fetchall()]
+
+
 def rehash(conn: sqlite3.Connection, table: str) -> None:
     """Give every row of ``table`` its chain, in id order (a migration's step)."""
     names: Sequence[str] = [

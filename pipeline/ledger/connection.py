@@ -160,3 +160,11 @@ class Connection:
         if [tuple(r) for r in rows] != [("ok",)]:
             return False
         return not self.conn.execute("PRAGMA foreign_key_check").fetchall()
+
+    def dangling_references(self) -> list[tuple[str, int, str]]:
+        """(table, row id, table it names) of each row that names a row no longer there: a row
+        removed by hand, with foreign keys off, leaves these behind."""
+        return [
+            (str(r[0]), int(r[1]), str(r[2]))
+            for r in self.conn.execute("PRAGMA foreign_key_check").fetchall()
+        ]

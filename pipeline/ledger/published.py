@@ -64,6 +64,10 @@ class Published:
         row = self.db.one("SELECT * FROM published WHERE path = ? ORDER BY id DESC LIMIT 1", (path,))
         return None if row is None else published_row(row)
 
+    def every(self) -> list[PublishedRow]:
+        """Every row, oldest first (`formgate verify --ledger` checks each path's latest)."""
+        return [published_row(r) for r in self.db.rows("SELECT * FROM published ORDER BY id")]
+
     def of_cell(self, lot: str, cell_id: str) -> list[PublishedRow]:
         rows = self.db.rows(
             "SELECT * FROM published WHERE lot = ? AND cell_id = ? ORDER BY id", (lot, cell_id)

@@ -198,6 +198,14 @@ class Results:
         rows = self.db.rows(sql + " ORDER BY r.analysed_at, r.id", params)
         return [result_row(r) for r in rows]
 
+    def rule_sets(self) -> list[tuple[str, str, str]]:
+        """(name, revision, SHA-256) of every rule set a recorded result names, by name."""
+        rows = self.db.rows(
+            "SELECT DISTINCT rule_set_name, rule_set_revision, rule_set_sha256 FROM results "
+            "ORDER BY rule_set_name, rule_set_revision, rule_set_sha256"
+        )
+        return [(str(r[0]), str(r[1]), str(r[2])) for r in rows]
+
     def move_outputs(self, result_id: int, json_path: str, pdf_path: str | None) -> None:
         """Record where an earlier record's published files were moved to (kept, not replaced)."""
         with self.db.write() as conn:
