@@ -29,7 +29,7 @@ from pipeline.report.cellsummary import (
 SCHEMA_VERSION = 1
 VERDICTS = ("pass", "fail", "hold")
 CAUSES = ("record", "readings", "lot closed", "rules", "review")
-SCREEN_OUTCOMES = ("outlier", "within", "not applied", "at close")
+SCREEN_OUTCOMES = ("outlier", "not held", "not applied")
 OUTCOMES = ("in_window", "out_of_window", "not_judged", "skipped")
 
 

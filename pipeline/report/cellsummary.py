@@ -129,9 +129,10 @@ class AgingEntry:
 class ScreenEntry:
     """One of the lot's screens as it applies to this cell.
 
-    ``outcome``: ``outlier`` (the screen holds the cell: ``detail`` says by how much),
-    ``within`` (screened at the lot's close and inside its limits), ``not applied`` (the
-    screens judge the cells that pass at the close) or ``at close`` (not yet: the lot is open).
+    ``outcome``: ``outlier`` (the screen held the cell at its lot's close: ``detail`` says by
+    how much), ``not held`` (a passing cell: inside the lot's limits at the close, or its lot
+    not closed yet; a cell outside them would be held) or ``not applied`` (the screens judge
+    only the cells that pass when the lot closes).
     """
 
     id: str

@@ -7,10 +7,11 @@ renders the cell JSON and the cell certificate from it (pure, in pipeline.report
 both atomically and records each in ``ledger.published`` with the decision it shows:
 
     JSON written -> certificate written (its verification code: the JSON's SHA-256)
-    -> 'cell certificate' row -> 'cell result' row (last: it marks the cell published)
+    -> ONE transaction: the 'cell certificate' and 'cell result' rows
 
-A crash anywhere leaves the cell's latest decision without its 'cell result' row, so the
-cell is still *pending* and is published again (same rows, same bytes).
+A crash anywhere before that transaction leaves the cell's latest decision without its
+'cell result' row, so the cell is still *pending* and is published again (same rows, same
+bytes). Paths are recorded absolute, as every published file's (published_files.py).
 
 Two callers: the station renders its pending cells in its worker processes
 (cellcerts.py), and :func:`publish_cell_now` does all of it in the calling process, for
@@ -23,6 +24,7 @@ import datetime
 import hashlib
 import json
 import logging
+import os
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -51,6 +53,7 @@ from pipeline.report.cellsummary import (
     key_metrics,
 )
 from pipeline.rulebook.book import RuleBook
+from pipeline.station import faults
 from pipeline.station.settings import Settings
 from pipeline.writing import write_atomic
 
@@ -264,7 +267,7 @@ def wants_certificate(settings: Settings, verdict: str, earlier: PublishedRow | 
 
 def published_json(settings: Settings, ledger: Ledger, lot: str, cell_id: str) -> PublishedRow | None:
     """The latest 'cell result' row of the cell (looked up by its path: the ledger's index)."""
-    row = ledger.published.by_path(str(cell_paths(settings, lot, cell_id)[0]))
+    row = ledger.published.by_path(os.path.abspath(cell_paths(settings, lot, cell_id)[0]))
     return row if row is not None and row.kind == RESULT_KIND else None
 
 
@@ -272,7 +275,7 @@ def published_certificate(
     settings: Settings, ledger: Ledger, lot: str, cell_id: str
 ) -> PublishedRow | None:
     """The latest 'cell certificate' row of the cell."""
-    row = ledger.published.by_path(str(cell_paths(settings, lot, cell_id)[1]))
+    row = ledger.published.by_path(os.path.abspath(cell_paths(settings, lot, cell_id)[1]))
     return row if row is not None and row.kind == CERTIFICATE_KIND else None
 
 
@@ -347,16 +350,20 @@ def write_and_record(
     data = job.json_text.encode("utf-8")
     # the results and certificates folders must be there; a lot's folder is made in them
     write_atomic(data, json_path, make_parents=False)
+    faults.point("after_cell_json")
     if pdf is not None:
         write_atomic(pdf, pdf_path, make_parents=False)
+    with ledger.db.write():  # both rows or neither: the 'cell result' row marks it published
+        if pdf is not None:
+            ledger.published.record(
+                path=os.path.abspath(pdf_path), sha256=hashlib.sha256(pdf).hexdigest(),
+                kind=CERTIFICATE_KIND, now=now, lot=s.lot, cell_id=s.cell_id,
+                decision_id=s.decision.id,
+            )
         ledger.published.record(
-            path=str(pdf_path), sha256=hashlib.sha256(pdf).hexdigest(), kind=CERTIFICATE_KIND,
-            now=now, lot=s.lot, cell_id=s.cell_id, decision_id=s.decision.id,
+            path=os.path.abspath(json_path), sha256=hashlib.sha256(data).hexdigest(),
+            kind=RESULT_KIND, now=now, lot=s.lot, cell_id=s.cell_id, decision_id=s.decision.id,
         )
-    ledger.published.record(
-        path=str(json_path), sha256=hashlib.sha256(data).hexdigest(), kind=RESULT_KIND, now=now,
-        lot=s.lot, cell_id=s.cell_id, decision_id=s.decision.id,
-    )
     return CellPublished(json_path, pdf_path if pdf is not None else None, s.decision.id)
 
 
@@ -390,3 +397,19 @@ def publish_cell_now(
         shown = pdf_path if cert is not None and cert.decision_id == latest.id else None
         return CellPublished(json_path, shown, latest.id)
     return write_and_record(settings, ledger, job, render_certificate(job), now)
+
+
+@dataclass(frozen=True, slots=True)
+class CellRendered:
+    """What a worker made of a :class:`CellJob`: the certificate's bytes, or why not."""
+
+    pdf: bytes | None
+    error: str = ""
+
+
+def render_job(job: CellJob) -> CellRendered:
+    """Render one cell's certificate in a worker process; never raises (a bug is an error)."""
+    try:
+        return CellRendered(render_certificate(job))
+    except Exception as exc:
+        return CellRendered(None, f"{type(exc).__name__}: {exc}")

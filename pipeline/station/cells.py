@@ -114,12 +114,16 @@ class CellDecisions:
         clock: Callable[[], datetime.datetime],
         rules: RulesInForce,
         mail_wake: threading.Event,
+        touched: Callable[[str, str], None] | None = None,
     ) -> None:
         self.settings = settings
         self.ledger = ledger
         self.clock = clock
         self.rules = rules
         self.mail_wake = mail_wake
+        # told of each (lot, cell) decided again: its certificate may change with its records
+        # even when its decision does not (cellcerts.py)
+        self.touched = touched
 
     def decide_cells(self, cells: Iterable[tuple[str, str]], cause: str) -> None:
         """Decide each (lot, cell id) again and record what changed, with its letters."""
@@ -128,6 +132,8 @@ class CellDecisions:
                 self.decide_cell(lot, cell_id, cause)
             except FormgateError as exc:  # e.g. its cell type is in no rule set any more
                 log.error("cell %s of lot %s cannot be decided: %s", cell_id, lot, exc)
+            if self.touched is not None:
+                self.touched(lot, cell_id)
 
     def decide_cell(self, lot: str, cell_id: str, cause: str) -> DecisionRow | None:
         rulebook = self.rules.rulebook

@@ -19,6 +19,8 @@ POINTS = (
     "after_publish",  # outputs in place and recorded, input still in work/
     "after_archive_move",  # input moved to archive/quarantine, not yet recorded
     "after_send",  # mail accepted by the server, not yet marked sent
+    "before_cell_publish",  # a cell certificate rendered, nothing of it written yet
+    "after_cell_json",  # the cell JSON in place, its certificate not yet, nothing recorded
 )
 
 _armed = os.environ.get("FORMGATE_FAULT", "")

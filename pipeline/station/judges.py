@@ -39,9 +39,11 @@ import signal
 import threading
 import time
 from collections import deque
+from collections.abc import Callable
 from concurrent.futures import FIRST_COMPLETED, Future, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import dataclass
+from typing import TypeVar
 
 from pipeline.ledger.rows import InputRow
 from pipeline.station.board import Board
@@ -55,6 +57,8 @@ from pipeline.station.launcher import (
 from pipeline.station.worker import Output, Task, init_worker, run_task
 
 log = logging.getLogger("formgate.station")
+A = TypeVar("A")
+R = TypeVar("R")
 
 WORKER_TASKS = 2000  # cells a worker process judges before a new one takes over
 FAILURES_TO_QUARANTINE = 2
@@ -200,6 +204,20 @@ class JudgePool:
     def submit(self, row: InputRow, task: Task) -> None:
         self.pending.append((row, task))
         self._dispatch()
+
+    def run_aside(self, fn: Callable[[A], R], arg: A) -> Future[R] | None:
+        """Run ``fn(arg)`` in a worker beside the judging (a cell certificate's render), or
+        None when no pool is in service. Such work is no input's: nothing here times it,
+        blames or retries it; a pool retired takes its future with it (cancelled, failed,
+        or never done: the caller gives up on it and asks again, see cellcerts.py)."""
+        if self.pool is None:
+            return None
+        try:
+            return self.pool.submit(fn, arg)
+        except BrokenProcessPool:
+            return None  # the judging side finds the pool broken and retires it
+        except SPAWN_FAILURES:
+            return None  # (as it finds a worker that cannot be started)
 
     def _dispatch(self) -> None:
         while self.pending and self.pool is not None:

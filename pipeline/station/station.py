@@ -41,6 +41,7 @@ from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import InputRow
 from pipeline.mail.smtp import SmtpSettings
 from pipeline.names import to_text
+from pipeline.station.cellcerts import CellCertificates
 from pipeline.station.cells import CellDecisions
 from pipeline.station.claiming import Claims
 from pipeline.station.digests import DigestDuty
@@ -81,6 +82,7 @@ class Station:
     guard: Guard
     rules: RulesInForce
     cells: CellDecisions
+    cellcerts: CellCertificates
     publisher: Publisher
     tasks: Tasks
     lingering: Lingering
@@ -116,7 +118,8 @@ class Station:
         self.ledger = ledger
         self.guard = Guard(s, ledger, clock, self.inhand, mail_wake)
         self.rules = RulesInForce(s, ledger, clock, self.guard)
-        self.cells = CellDecisions(s, ledger, clock, self.rules, mail_wake)
+        self.cellcerts = CellCertificates(s, ledger, clock, self.rules, self.judges, self.wake)
+        self.cells = CellDecisions(s, ledger, clock, self.rules, mail_wake, self.cellcerts.note)
         self.publisher = Publisher(s, ledger, clock, self.cells, self.guard)
         self.tasks = Tasks(s, ledger, clock, self.judges, self.rules, self.publisher, self.guard)
         self.lingering = Lingering(s, self.guard)
@@ -219,6 +222,7 @@ class Station:
             guard.duty(self.tasks.submit)
         self.tasks.collect(timeout=0.2 if self.judges.busy() else 0.0)
         if not guard.paused:
+            guard.duty(self.cellcerts.step)  # rendered in the workers, written here
             guard.duty(self.digests.queue)
             guard.duty(guard.flush_unsent)
         if now_s - self.last_heartbeat >= self.settings.heartbeat_s:
