@@ -2,9 +2,9 @@
 
 For every metric a rule may name and any value and window, the judge's reason and
 decision line, the certificate's check row and decision box, a letter's check line and
-the lot report's window write the value, the window and the bound it crossed in the very
-same words (pipeline.judge.quantities). A fraction is a percentage everywhere; a value out
-of window never reads as the bound it crossed.
+the lot report's window, outlier row and hold reason write the value, the window and the
+bound it crossed in the very same words (pipeline.judge.quantities). A fraction is a
+percentage everywhere; a value out of window never reads as the bound it crossed.
 """
 
 from __future__ import annotations
@@ -15,7 +15,9 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
+from pipeline.judge.cellverdict import outlier_phrase
 from pipeline.judge.evaluate import decision_line, evaluate, phrase
+from pipeline.judge.lotscreens import Outlier
 from pipeline.judge.lotspread import capability
 from pipeline.judge.lotstats import WindowSpec
 from pipeline.judge.metricdefs import RULE_METRICS
@@ -33,7 +35,7 @@ from pipeline.model import (
     VerdictKind,
     Window,
 )
-from pipeline.report import certificate, lotwords
+from pipeline.report import certificate, lotreport, lotwords
 
 CT = CellType("DEMO-T", 20.0, -0.1, 5.0)
 NAMES = [m.name for m in RULE_METRICS]
@@ -102,6 +104,24 @@ def test_every_renderer_writes_a_checks_value_and_window_alike(
     one_sided = "\N{GREATER-THAN OR EQUAL TO} " if low_side else "\N{LESS-THAN OR EQUAL TO} "
     if (window.low is None) != (window.high is None):
         assert window_text == one_sided + bound_text
+
+
+@given(st.sampled_from(NAMES), numbers, numbers, st.sampled_from(["low", "high"]))
+def test_an_outliers_hold_reason_and_the_lot_reports_row_write_it_alike(
+    metric: str, value: float, limit: float, side: str
+) -> None:
+    if (side == "high") != (value > limit) or value == limit:
+        value, limit = limit, value
+    if not _apart(value, limit):
+        return
+    low, high = (limit, None) if side == "low" else (None, limit)
+    outlier = Outlier("C-1", metric, value, low, high, side)
+    row = lotreport._outlier_row(outlier)
+    sign = "<" if side == "low" else ">"
+    assert outlier_phrase(outlier) == (
+        f"outlier in lot: {metric} {row['value']} {sign} lot limit {row['limit']}"
+    )
+    assert row["value"] != row["limit"]
 
 
 @pytest.mark.parametrize(

@@ -192,7 +192,7 @@ def test_closing_a_lot_holds_its_outlier_grades_the_rest_and_writes_its_report(
     assert "LOT-A: 7 cell(s): 7 pass, 0 fail, 0 hold" in capsys.readouterr().out
     assert main(["lot", "close", str(s.root), "LOT-A"]) == 0
     out = capsys.readouterr().out
-    assert "L-5: pass -> hold: outlier in lot: k_value_mV_per_day 0.8 mV/day > lot limit" in out
+    assert "L-5: pass -> hold: outlier in lot: k_value_mV_per_day 0.8000 mV/day > lot limit" in out
     # the pass stays recorded; the hold is recorded beside it, with its letter queued
     assert [d[:2] for d in _decisions(s, "L-5")][-2:] == [("pass", "readings"), ("hold", "lot closed")]
     with Ledger(s.ledger) as ledger:

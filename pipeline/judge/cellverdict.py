@@ -18,7 +18,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 from pipeline.judge.lotscreens import Outlier
-from pipeline.model import STAGES
+from pipeline.judge.quantities import format_value, precision
+from pipeline.model import STAGES, Window
 
 # What each kind of record covers.
 CYCLE_FILE: tuple[str, ...] = ("formation", "grading")
@@ -69,12 +70,18 @@ class CellDecision:
 
 
 def outlier_phrase(outlier: Outlier, unit: str = "") -> str:
-    """'outlier in lot: k_value_mV_per_day 2.41 mV/day > lot limit 1.30 mV/day'."""
+    """'outlier in lot: k_value_mV_per_day 2.410 mV/day > lot limit 1.300 mV/day'.
+
+    The value and the limit are written as everywhere else (quantities.py), in the metric's
+    own unit; ``unit`` is no longer needed and kept for the callers that pass it.
+    """
+    del unit  # the metric names its unit
     sign, bound = (">", outlier.high) if outlier.side == "high" else ("<", outlier.low)
-    u = f" {unit}" if unit else ""
+    extra = precision(outlier.metric, outlier.value, Window(outlier.low, outlier.high))
+    value = format_value(outlier.metric, outlier.value, extra)
     return (
-        f"outlier in lot: {outlier.metric} {outlier.value:.4g}{u} {sign} lot limit "
-        f"{bound:.4g}{u}"
+        f"outlier in lot: {outlier.metric} {value} {sign} lot limit "
+        f"{format_value(outlier.metric, bound, extra)}"
     )
 
 

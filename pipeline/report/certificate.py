@@ -24,7 +24,7 @@ from pipeline.judge.metricdefs import BY_NAME
 # Every value and window is written as the judge's reasons, the letters and the lot report
 # write it: quantities.py is the one source of those words (names kept for the importers).
 from pipeline.judge.quantities import BY_UNIT as _BY_UNIT
-from pipeline.judge.quantities import DASH as DASH  # the lot report imports it from here
+from pipeline.judge.quantities import DASH as DASH  # as before: importers take it from here
 from pipeline.judge.quantities import format_value, format_window, precision, significant
 from pipeline.judge.quantities import percent as _percent
 from pipeline.judge.quantities import signed as _signed

@@ -43,11 +43,12 @@ from pipeline.judge.lotstats import (
     WindowSpec,
     lot_statistics,
 )
-from pipeline.model import Hazard, frozen_mapping
+from pipeline.judge.quantities import DASH, format_spread, format_value, precision
+from pipeline.model import Hazard, Window, frozen_mapping
 from pipeline.report import hazards, pdf
-from pipeline.report.certificate import DASH, HAZARD_WORDS, TEMPLATES_DIR, format_time
+from pipeline.report.certificate import HAZARD_WORDS, TEMPLATES_DIR, format_time
 from pipeline.report.lothistogram import metric_histograms
-from pipeline.report.lotwords import CPK_MINIMUM, capability_row, number_text, yield_text
+from pipeline.report.lotwords import CPK_MINIMUM, capability_row, yield_text
 
 TEMPLATE_NAME: Final = "lot.html.j2"
 MAX_FAILED_ROWS: Final = 200  # rows of the failed/held table before "and N more: see the export"
@@ -201,22 +202,26 @@ def _attention(cells: Sequence[LotCell]) -> tuple[list[dict[str, str]], int]:
     return rows, max(0, len(chosen) - MAX_FAILED_ROWS)
 
 
-def _screen(limits: RobustLimits, found: Sequence[Outlier], unit: str) -> dict[str, object]:
+def _outlier_row(o: Outlier) -> dict[str, str]:
+    # the value and the lot limit it crossed, as the cell's hold reason writes them
+    extra = precision(o.metric, o.value, Window(o.low, o.high))
+    return {"cell_id": o.cell_id, "value": format_value(o.metric, o.value, extra), "side": o.side,
+            "limit": format_value(o.metric, o.low if o.side == "low" else o.high, extra)}
+
+
+def _screen(limits: RobustLimits, found: Sequence[Outlier]) -> dict[str, object]:
     sides = {"both": "both sides", "low": "low side", "high": "high side"}[limits.sides]
-    rows = [
-        {"cell_id": o.cell_id, "value": number_text(o.value, unit), "side": o.side,
-         "limit": number_text(o.low if o.side == "low" else o.high, unit)}
-        for o in found[:MAX_OUTLIER_ROWS]
-    ]
+    rows = [_outlier_row(o) for o in found[:MAX_OUTLIER_ROWS]]
+    metric = limits.metric  # its values written as the certificates write them
     return {
-        "metric": limits.metric,
+        "metric": metric,
         "k": f"{limits.k:g}",
         "sides": sides,
         "n": str(limits.n),
-        "median": number_text(limits.median, unit),
-        "robust_sd": number_text(limits.robust_sd, unit, 3),
-        "low": number_text(limits.low, unit) if limits.low is not None else "open",
-        "high": number_text(limits.high, unit) if limits.high is not None else "open",
+        "median": format_value(metric, limits.median),
+        "robust_sd": format_spread(metric, limits.robust_sd),
+        "low": format_value(metric, limits.low) if limits.low is not None else "open",
+        "high": format_value(metric, limits.high) if limits.high is not None else "open",
         "applied": "applied" if limits.applied else f"not applied: {limits.why}",
         "outliers": rows,
         "found": len(found),
@@ -281,14 +286,8 @@ def lot_report_context(data: LotReportInput) -> dict[str, object]:
         "data_check_notice": hazards.DATA_CHECK_NOTICE.replace("This certificate", "This report"),
         "failed": failed_rows,
         "failed_more": failed_more,
-        "screens": [
-            _screen(limits, by_metric.get(limits.metric, ()), data.units.get(limits.metric, ""))
-            for limits in stats.limits
-        ],
-        "capabilities": [
-            capability_row(c, stats.capabilities[c.key], data.units.get(c.metric, ""))
-            for c in data.checks
-        ],
+        "screens": [_screen(limits, by_metric.get(limits.metric, ())) for limits in stats.limits],
+        "capabilities": [capability_row(c, stats.capabilities[c.key]) for c in data.checks],
         "cpk_minimum": f"{CPK_MINIMUM:.2f}",
         "histograms": metric_histograms(
             data.checks, [c.values for c in data.cells], stats.limits, data.units

@@ -10,24 +10,15 @@ of the report's table. Which of these the page shows, and where, is left to
 
 from __future__ import annotations
 
-import math
 from typing import Final
 
 from pipeline.judge.lotspread import Capability
 from pipeline.judge.lotstats import WindowSpec
-from pipeline.judge.quantities import DASH, format_spread, format_value, format_window, significant
+from pipeline.judge.quantities import DASH, format_spread, format_value, format_window
 from pipeline.model import Window
 
 # Cpk below 1.33 is the usual minimum for an established process (common practice).
 CPK_MINIMUM: Final = 1.33
-
-
-def number_text(value: float | None, unit: str = "", digits: int = 4) -> str:
-    """``value`` to ``digits`` significant digits with its unit; an em dash when missing."""
-    if value is None or not math.isfinite(value):
-        return DASH
-    shown = significant(value, digits)
-    return f"{shown} {unit}" if unit else shown
 
 
 def window_text(metric: str, low: float | None, high: float | None) -> str:
@@ -60,12 +51,9 @@ def cpk_text(capability: Capability) -> tuple[str, str]:
     return shown, "below 1.33" if capability.cpk < CPK_MINIMUM else ""
 
 
-def capability_row(check: WindowSpec, cap: Capability, unit: str = "") -> dict[str, str]:
-    """One check's row of the capability table: its window, n, mean, sd, Cpk and note, in words.
-
-    The unit is the metric's own (quantities.py): ``unit`` is kept for the callers that pass it.
-    """
-    del unit
+def capability_row(check: WindowSpec, cap: Capability) -> dict[str, str]:
+    """One check's row of the capability table: its window, n, mean, sd, Cpk and note, in words
+    (each in the metric's own unit, as quantities.py writes it)."""
     cpk, note = cpk_text(cap)
     return {
         "check": check.key,
@@ -81,4 +69,4 @@ def capability_row(check: WindowSpec, cap: Capability, unit: str = "") -> dict[s
     }
 
 
-__all__ = ["CPK_MINIMUM", "capability_row", "cpk_text", "number_text", "window_text", "yield_text"]
+__all__ = ["CPK_MINIMUM", "capability_row", "cpk_text", "window_text", "yield_text"]
