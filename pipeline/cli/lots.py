@@ -33,11 +33,11 @@ def _open(folder: str) -> tuple[Any, Any]:
     return settings, Ledger(settings.ledger)
 
 
-def _known_lot(ledger: Any, lot: str) -> None:
-    if lot not in ledger.lots.names():
+def _known_lot(ledger: Any, lot: str, refused: dict[str, list[Any]]) -> None:
+    names = sorted(set(ledger.lots.names()) | set(refused))
+    if lot not in names:
         from pipeline.rulebook.tables import did_you_mean
 
-        names = ledger.lots.names()
         raise FormgateError(
             f"the ledger has no lot {lot!r}",
             None,
@@ -47,37 +47,55 @@ def _known_lot(ledger: Any, lot: str) -> None:
         )
 
 
-def _counts(counts: dict[str, int]) -> str:
-    return ", ".join(f"{counts.get(k, 0)} {k}" for k in ("pass", "fail", "hold")) or "undecided"
+def _counts(counts: dict[str, int], refused: int = 0) -> str:
+    text = ", ".join(f"{counts.get(k, 0)} {k}" for k in ("pass", "fail", "hold"))
+    # a cell whose file could not be judged has no decision: it is counted as what it is
+    return text + (f", {refused} not judged" if refused else "")
+
+
+def _refused(settings: Any, ledger: Any, lot: str | None = None) -> dict[str, list[Any]]:
+    """Lot -> the cells named by files that could not be judged (station/unjudged.py)."""
+    from pipeline.station.unjudged import unjudged_cells
+
+    out: dict[str, list[Any]] = {}
+    for cell in unjudged_cells(settings, ledger, lot):
+        out.setdefault(cell.lot, []).append(cell)
+    return out
 
 
 def cmd_lot_list(args: argparse.Namespace) -> int:
     """Every lot: cells, latest decisions counted, last activity, closed or open."""
-    _, ledger = _open(args.folder)
+    settings, ledger = _open(args.folder)
     with ledger:
-        names = ledger.lots.names()
+        refused = _refused(settings, ledger)
+        names = sorted(set(ledger.lots.names()) | set(refused))
         if not names:
             print("no lots yet")
             return EXIT_OK
         for name in names:
             lot = ledger.lots.get(name)
-            last = lot.last_activity.isoformat(timespec="seconds") if lot.last_activity else "-"
+            mine = refused.get(name, [])
+            times = [t for t in (lot.last_activity, *(c.quarantined_at for c in mine)) if t]
+            last = max(times).isoformat(timespec="seconds") if times else "-"
             state = (
                 f"closed {lot.closed_at.isoformat(timespec='seconds')} ({lot.closed_by})"
                 if lot.closed_at else "open"
             )
-            print(f"{name}: {lot.cells} cell(s): {_counts(lot.counts)}; last activity {last}; "
-                  f"{state}")
+            print(f"{name}: {lot.cells + len(mine)} cell(s): {_counts(lot.counts, len(mine))}; "
+                  f"last activity {last}; {state}")
     return EXIT_OK
 
 
 def cmd_lot_show(args: argparse.Namespace) -> int:
-    """One lot: every cell with its latest decision, fails and holds first."""
-    _, ledger = _open(args.folder)
+    """One lot: every cell with its latest decision, fails and holds first, then the cells
+    whose file could not be judged."""
+    settings, ledger = _open(args.folder)
     with ledger:
-        _known_lot(ledger, args.lot)
+        refused = _refused(settings, ledger, args.lot)
+        _known_lot(ledger, args.lot, refused)
         lot = ledger.lots.get(args.lot)
-        print(f"lot {args.lot}: {lot.cells} cell(s): {_counts(lot.counts)}; "
+        mine = refused.get(args.lot, [])
+        print(f"lot {args.lot}: {lot.cells + len(mine)} cell(s): {_counts(lot.counts, len(mine))}; "
               + ("closed " + lot.closed_at.isoformat(timespec="seconds") if lot.closed_at
                  else "open"))
         if lot.report_path:
@@ -86,18 +104,23 @@ def cmd_lot_show(args: argparse.Namespace) -> int:
             {r.cell_id for r in ledger.results.current_of_lot(args.lot)}
             | {s.reading.cell_id for s in ledger.readings.of(args.lot)}
         )
-        order = {"fail": 0, "hold": 1, "pass": 2}
+        order = {"fail": 0, "hold": 1, "pass": 3}  # a cell not judged comes before the passes
         decisions = ledger.decisions.latest_of_lot(args.lot)
-        rows = []
+        rows: list[tuple[int, str, str]] = []  # (rank, cell, its line)
         for cell in cells:
             d = decisions.get(cell)
-            rows.append((order.get(d.verdict, 3) if d else 3, cell, d))
-        for _, cell, d in sorted(rows, key=lambda r: (r[0], r[1])):
             if d is None:
-                print(f"  {cell}  undecided")
+                rows.append((4, cell, f"  {cell}  undecided"))
                 continue
             grade = f"  grade {d.grade}" if d.grade else ""
-            print(f"  {cell}  {d.verdict}{grade}" + (f": {d.reason}" if d.reason else ""))
+            rows.append((order.get(d.verdict, 4), cell, f"  {cell}  {d.verdict}{grade}"
+                         + (f": {d.reason}" if d.reason else "")))
+        rows += [
+            (2, u.cell_id, f"  {u.cell_id}  not judged: {u.reason} (in quarantine: {u.path})")
+            for u in mine
+        ]
+        for _, _, line in sorted(rows):
+            print(line)
     return EXIT_OK
 
 
@@ -109,7 +132,7 @@ def _close_or_report(args: argparse.Namespace, *, close: bool) -> int:
     rulebook = load_rules_dir(settings.rules_dir)
     now = datetime.datetime.now(datetime.UTC).replace(microsecond=0)
     with ledger:
-        _known_lot(ledger, args.lot)
+        _known_lot(ledger, args.lot, _refused(settings, ledger, args.lot))
         outcome = close_and_report(
             settings, ledger, rulebook, args.lot, by="command", now=now, close=close
         )
