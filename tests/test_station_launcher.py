@@ -377,7 +377,9 @@ def _launcher_of(station_pid: int) -> int | None:
 
 def _running(proc: subprocess.Popen[bytes]) -> bool:
     code = proc.poll()
-    assert code is None, f"the station ended with exit code {code}"
+    if code is not None:
+        tail = proc.stderr.read().decode(errors="replace")[-3000:] if proc.stderr is not None else ""
+        raise AssertionError(f"the station ended with exit code {code}:\n{tail}")
     return True
 
 

@@ -44,11 +44,11 @@ def _stat(pid: int) -> tuple[str, int, int] | None:
     """(state, flags, start time in clock ticks since boot) of process ``pid``; None if gone."""
     try:
         raw = (PROC / str(pid) / "stat").read_bytes()
-    except OSError:
+        # fields after the command name, which may itself hold spaces and parentheses (proc(5))
+        fields = raw[raw.rindex(b")") + 2 :].split()
+        return fields[0].decode("ascii"), int(fields[6]), int(fields[19])
+    except (OSError, ValueError, IndexError):  # gone, or read as it went
         return None
-    # fields after the command name, which may itself hold spaces and parentheses (proc(5))
-    fields = raw[raw.rindex(b")") + 2 :].split()
-    return fields[0].decode("ascii"), int(fields[6]), int(fields[19])
 
 
 def _signal_reaches(pid: int) -> bool:
