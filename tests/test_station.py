@@ -63,12 +63,13 @@ def test_pass_and_fail_cells_are_judged_recorded_published_archived_and_mailed(
                   for p in s.mail.glob("*.eml"))
         if m["X-Formgate-Kind"] == "digest"
     ]
-    # the cells are linked under the configured address, never by a path on the station
-    # (the failed cell is in the digest only if it was judged before the lot fell quiet)
-    assert "https://quality.example.com/certs/LOT-A/C-1.pdf" in digests[0]
+    # the cells' own certificates are linked under the configured address, never by a path
+    # on the station (the failed cell is in the digest only if it was judged before the lot
+    # fell quiet)
+    assert "https://quality.example.com/certs/LOT-A/C-1~cell.pdf" in digests[0]
     for body in digests:
         assert str(s.certificates) not in body
-        assert ("C-2" not in body) == ("/certs/LOT-A/C-2.pdf" not in body)
+        assert ("C-2" not in body) == ("/certs/LOT-A/C-2~cell.pdf" not in body)
 
 
 def test_slow_writer_is_judged_once_after_it_is_complete(tmp_path: Path) -> None:

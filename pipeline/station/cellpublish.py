@@ -25,6 +25,7 @@ import hashlib
 import json
 import logging
 import os
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -413,3 +414,33 @@ def render_job(job: CellJob) -> CellRendered:
         return CellRendered(render_certificate(job))
     except Exception as exc:
         return CellRendered(None, f"{type(exc).__name__}: {exc}")
+
+
+def publish_cells_now(
+    settings: Settings,
+    ledger: Ledger,
+    rulebook: RuleBook,
+    lot: str,
+    cells: Sequence[str],
+    now: datetime.datetime,
+) -> None:
+    """:func:`publish_cell_now` for each cell of ``cells`` in this process (a lot closed by
+    command); a cell that cannot be decided under ``rulebook`` is logged and left."""
+    for cell_id in cells:
+        try:
+            publish_cell_now(settings, ledger, rulebook, lot, cell_id, now)
+        except FormgateError as exc:
+            log.error("cell %s of lot %s: no cell certificate: %s", cell_id, lot, exc)
+
+
+def all_current(settings: Settings, ledger: Ledger, lot: str, cells: Sequence[str]) -> bool:
+    """True when each of ``cells`` has its cell JSON (and certificate) for its latest decision."""
+    latest = ledger.decisions.latest_of_lot(lot)
+    for cell_id in cells:
+        decision = latest.get(cell_id)
+        if decision is None:
+            continue
+        row = published_json(settings, ledger, lot, cell_id)
+        if row is None or row.decision_id != decision.id:
+            return False
+    return True

@@ -21,9 +21,11 @@ from pathlib import Path
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import ResultRow
 from pipeline.mail.letters import DigestRow, digest_letter
+from pipeline.station.cellpublish import all_current, published_certificate
 from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
+CELLS_WAIT_S = 300.0  # longest a quiet lot's digest waits for its cells' certificates
 
 
 def certificate_link(pdf_path: str, certificates: Path, base_url: str | None) -> str:
@@ -53,8 +55,10 @@ def certificate_link(pdf_path: str, certificates: Path, base_url: str | None) ->
 
 def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
     """Every cell of ``lot`` once, as it stands: its decision over all its stages where it has
-    one (else its latest record's verdict), its grade, the grading capacity and certificate of
-    its latest record that covers grading (else of its latest record)."""
+    one (else its latest record's verdict), its grade, the grading capacity of its latest
+    record that covers grading (else of its latest record), and its cell certificate (the
+    one name that shows its standing decision) once that is published: never a stage
+    record's certificate, whose verdict is one stage's."""
     routing = settings.routing
     latest: dict[str, ResultRow] = {}
     grading: dict[str, ResultRow] = {}
@@ -81,7 +85,7 @@ def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
                 verdict,
                 document.get("metrics", {}).get("grading_capacity_Ah"),
                 certificate_link(
-                    (record.pdf_path or "") if record is not None else "",
+                    cell_certificate(ledger, lot, cell, settings),
                     settings.certificates,
                     routing.certificates_url,
                 ),
@@ -90,6 +94,12 @@ def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
             )
         )
     return rows
+
+
+def cell_certificate(ledger: Ledger, lot: str, cell_id: str, settings: Settings) -> str:
+    """The path of the cell's certificate if one is published (and so on disk), else ''."""
+    row = published_certificate(settings, ledger, lot, cell_id)
+    return row.path if row is not None else ""
 
 
 class DigestDuty:
@@ -118,6 +128,12 @@ class DigestDuty:
                 continue
             cells = self.ledger.digests.passed_cells(lot)
             if not cells:
+                continue
+            # the digest links each cell's certificate as it stands: it waits for the ones
+            # being published, up to CELLS_WAIT_S past the quiet time, then links what is there
+            waited = 0.0 if latest is None else (now - latest).total_seconds() - routing.digest_quiet_s
+            cell_ids = list(self.ledger.decisions.latest_of_lot(lot))
+            if waited < CELLS_WAIT_S and not all_current(self.settings, self.ledger, lot, cell_ids):
                 continue
             # the digest covers the new pass cells and lists the whole lot as it stands
             rows = lot_rows(self.ledger, lot, self.settings)
