@@ -19,6 +19,7 @@ import multiprocessing.forkserver
 import os
 import signal
 import subprocess
+import threading
 import time
 from collections.abc import Callable
 from pathlib import Path
@@ -147,6 +148,36 @@ def test_a_launcher_that_runs_but_cannot_start_workers_is_replaced_and_each_task
         assert "a worker could not be started (FileNotFoundError" in caplog.text
         assert f"the worker launcher (pid {first}) cannot start workers; stopping it" in caplog.text
         assert pool.failures == {} and pool.alone == set()
+    finally:
+        pool.shutdown()
+
+
+@pytest.mark.slow
+def test_a_launcher_killed_while_it_starts_a_worker_fails_the_submit_and_the_task_is_judged_once(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    caplog.set_level(logging.WARNING, "formgate.station")
+    pool = JudgePool(1, timeout_s=60)
+    pool.start()
+    try:
+        launcher = _launcher_pid()
+        assert launcher is not None
+        # stopped, it takes the request for a worker and never answers; killed a moment later,
+        # the submit waiting for its answer meets the end of the pipe (EOFError)
+        os.kill(launcher, signal.SIGSTOP)
+        killer = threading.Timer(0.5, os.kill, (launcher, signal.SIGKILL))
+        killer.start()
+        tasks = _tasks(tmp_path, 1, 2)
+        pool.submit(*tasks[0])  # a fresh pool has no worker: this one must be started
+        killer.join()
+        assert "a worker could not be started (EOFError" in caplog.text
+        assert pool.pool is None and pool.restarts == 1 and pool.spawn_failures == 1
+        pool.submit(*tasks[1])
+        got: list[tuple[InputRow, Output]] = []
+        _drain(pool, got)
+        _judged_once(got, range(1, 3))
+        assert _launcher_pid() not in (None, launcher)
+        assert pool.failures == {} and pool.alone == set() and pool.spawn_failures == 0
     finally:
         pool.shutdown()
 
