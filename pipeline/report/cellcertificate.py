@@ -14,7 +14,7 @@ import math
 
 from pipeline.judge.quantities import DASH, format_value, significant
 from pipeline.model import Hazard
-from pipeline.report import hazards
+from pipeline.report import hazards, verification
 from pipeline.report.cellsummary import (
     WAITING,
     AgingEntry,
@@ -174,9 +174,9 @@ def _cautions(summary: CellSummary) -> dict[str, object]:
     }
 
 
-def build_context(summary: CellSummary, *, verification: str) -> dict[str, object]:
-    """Everything the cell certificate shows, formatted. ``verification``: the first 16 hex
-    digits of the SHA-256 of the cell JSON published with it."""
+def build_context(summary: CellSummary, *, code: str) -> dict[str, object]:
+    """Everything the cell certificate shows, formatted. ``code``: the verification code of
+    the cell JSON published with it (report/verification.py)."""
     s, d = summary, summary.decision
     word = VERDICT_WORDS[d.verdict]
     waiting = d.verdict == "hold" and all(r.startswith(WAITING) for r in d.reasons)
@@ -192,7 +192,9 @@ def build_context(summary: CellSummary, *, verification: str) -> dict[str, objec
         "description": (
             f"Cell certificate, cell {s.cell_id}, lot {s.lot}, cell type {s.cell_type}: {word}"
         ),
-        "keywords": f"cell certificate, formation, aging, grading, {word}",
+        # the code in the PDF's metadata too, as a stage certificate's (`formgate verify`)
+        "keywords": f"cell certificate, formation, aging, grading, {word}, "
+        f"verification code {code}",
         "generator": f"formgate {s.software_version}",
         "created": d.decided_at.astimezone(datetime.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "cell_id": s.cell_id,
@@ -268,16 +270,15 @@ def build_context(summary: CellSummary, *, verification: str) -> dict[str, objec
         "data_check_notice": hazards.DATA_CHECK_NOTICE,
         "traceability": [
             [("Cell JSON", s.json_name)],
-            [("Verification code", verification)],
             [("Rule set", f"{rs.name}, revision {rs.revision}"), ("Rule set file", rs.source)],
             [("Rule set SHA-256", rs.sha256)],
             [("Software", f"formgate {s.software_version}"), ("Decided at", _time(d.decided_at))],
         ],
-        "verification": verification,
+        "verification": {"code": code, "spaced": verification.spaced(code)},
     }
 
 
-def render_html(summary: CellSummary, *, verification: str) -> str:
-    """The cell certificate as an HTML document (a str)."""
-    context = build_context(summary, verification=verification)
+def render_html(summary: CellSummary, *, code: str) -> str:
+    """The cell certificate as an HTML document (a str); ``code``: its verification code."""
+    context = build_context(summary, code=code)
     return environment().get_template(TEMPLATE_NAME).render(context)

@@ -394,7 +394,11 @@ def build_context(
             f" This certificate covers the {stage_words(result.stages)} stage"
             f"{'s' if len(result.stages) > 1 else ''} only. The cell may be released only once "
             f"every stage it needs ({stage_words(result.needed_stages)}) has passed; its "
-            "decision over all of them is in the station's ledger and its lot's report."
+            + (
+                "decision over all of them is in the station's ledger and its lot's report."
+                if cell_certificate is None
+                else f"decision over all of them is on its cell certificate, {cell_certificate}."
+            )
         )
     cell_id = result.cell_id or DASH
     metrics = result.metrics

@@ -83,11 +83,6 @@ def cell_paths(settings: Settings, lot: str, cell_id: str) -> tuple[Path, Path]:
     )
 
 
-def verification_code(json_bytes: bytes) -> str:
-    """The short code a certificate carries: the first 16 hex digits of its JSON's SHA-256."""
-    return hashlib.sha256(json_bytes).hexdigest()[:16]
-
-
 # ---- the summary, from the ledger's rows ------------------------------------------------------
 
 
@@ -337,9 +332,10 @@ def render_certificate(job: CellJob) -> bytes | None:
         return None
     from pipeline.report.cellcertificate import render_html  # WeasyPrint is slow to import
     from pipeline.report.pdf import render_pdf
+    from pipeline.report.verification import verification_code
 
-    code = verification_code(job.json_text.encode("utf-8"))
-    return render_pdf(render_html(job.summary, verification=code))
+    # the certificate carries the code of the very JSON text published with it
+    return render_pdf(render_html(job.summary, code=verification_code(job.json_text)))
 
 
 def write_and_record(

@@ -194,6 +194,7 @@ class Station:
             log.info("stopping: finishing %d cell(s) in hand", self.judges.busy())
             while self.judges.busy():
                 self.tasks.collect(timeout=1.0)
+            self.guard.duty(self.cellcerts.finish)
             self.write_heartbeat(state="stopped")
         finally:
             for w in watchers:
