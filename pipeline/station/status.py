@@ -16,6 +16,7 @@ from pipeline.names import from_text, to_text
 from pipeline.station.handoff import is_temporary
 from pipeline.station.heartbeat import read_heartbeat
 from pipeline.station.mailtrouble import current as mail_trouble
+from pipeline.station.reviewing import age_words
 from pipeline.station.settings import Settings
 from pipeline.station.startup import read_waiting
 from pipeline.station.waiting import overdue_entries
@@ -170,6 +171,16 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
             + ", ".join(
                 f"{counts.get(k, 0)} {k}" for k in ("pass", "fail", "hold", "error", "duplicate")
             )
+            # an OCV reading file has no verdict of its own: it is counted as what it is
+            + f", {counts.get('readings', 0)} reading file"
+            + ("" if counts.get("readings", 0) == 1 else "s")
+        )
+        people = ledger.reviews.waiting()  # fails and holds no person has reviewed, oldest first
+        lines.append(
+            f"waiting for a person: {len(people)} cell(s), the oldest for "
+            f"{age_words((now - people[0][4]).total_seconds())} (cell {people[0][1]} of lot "
+            f"{people[0][0]}, {people[0][2]}); formgate review list shows them"
+            if people else "waiting for a person: none"
         )
         lines.append("")
         lines.append("last cells")
