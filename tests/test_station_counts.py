@@ -83,7 +83,6 @@ def test_status_counts_a_reading_file_as_a_reading_file_not_an_error(tmp_path: P
         drop(s.inboxes[0].folder, "bad.csv", b"# cell_id: C-2\nnot a cycle file\n")
         wait_until(lambda: settled(s, 3), what="the three files")
     report = status_text(s, datetime.datetime.now(datetime.UTC))
-    print(report)
     assert "today (UTC): 1 pass, 0 fail, 0 hold, 1 error, 0 duplicate, 1 reading file\n" in report
     with Ledger(s.ledger) as ledger:
         midnight = datetime.datetime.now(datetime.UTC).replace(hour=0, minute=0, second=0)
