@@ -2,11 +2,16 @@
 
 from __future__ import annotations
 
+import email
+import email.policy
+import re
 import subprocess
 import sys
+import urllib.parse
 from pathlib import Path
 
 import pytest
+from pypdf import PdfReader
 
 from tests.station_kit import REPO
 
@@ -26,8 +31,10 @@ def test_station_demo_accounts_for_every_file(tmp_path: Path) -> None:
     # files and the lot's aging tester file
     assert "every file accounted for: 81 of 81" in out.stdout
     root = tmp_path / "demo"
-    # one certificate per cycle file, and the lot report of the closed lot
-    assert len(list((root / "certificates").rglob("*.pdf"))) == 30 + 48 + 1
+    # one certificate per cycle file, one per cell (30 whole-program cells, 24 in stages), and
+    # the lot report of the closed lot
+    assert len(list((root / "certificates").rglob("*.pdf"))) == 30 + 48 + 54 + 1
+    assert len(list((root / "certificates").rglob("*~cell.pdf"))) == 54
     assert len(list((root / "quarantine").glob("*.reason.txt"))) == 1
     mails = [p.read_text(errors="replace") for p in (root / "mail").glob("*.eml")]
     # the staged lot: its low-capacity cell fails at grading; its slow self-discharger passes
@@ -38,6 +45,43 @@ def test_station_demo_accounts_for_every_file(tmp_path: Path) -> None:
     assert (root / "certificates" / "DEMO-LOT-04" / "_lot-report.pdf").exists()
     assert any("HOLD cell S04-024" in m for m in mails)
     assert any("lot DEMO-LOT-04, closed" in m for m in mails)
+    _check_cell_certificates(root)
+
+
+def _page1(pdf: Path) -> str:
+    return " ".join(PdfReader(pdf).pages[0].extract_text().split())
+
+
+def _check_cell_certificates(root: Path) -> None:
+    """S04-024's cell certificate shows the lot's hold over both its stages and its readings,
+    its grading certificate says first that it covers one stage, and every digest links only
+    cell certificates, each there."""
+    lot = root / "certificates" / "DEMO-LOT-04"
+    cell = " ".join(" ".join(p.extract_text() for p in PdfReader(lot / "S04-024~cell.pdf").pages).split())
+    page1 = _page1(lot / "S04-024~cell.pdf")
+    assert "Cell certificate" in page1 and "HOLD" in page1
+    assert "lot screen: k_value_mV_per_day" in page1 and "outlier" in cell.lower()
+    assert "Caution: this cell is held" in page1 and "qualified personnel" in page1
+    for name in ("DEMO-LOT-04_S04-024_formation.csv", "DEMO-LOT-04_S04-024_grading.csv",
+                 "DEMO-LOT-04_aging-readings.csv"):
+        assert name in cell.replace("- ", "-"), name
+    assert "K-value 1.80 mV/day" in cell
+    grading = _page1(lot / "S04-024~grading.pdf")
+    assert "This certificate covers one stage of cell S04-024" in grading
+    assert grading.index("one stage of cell S04-024") < grading.upper().index("STAGE VERDICT")
+    assert "S04-024~cell.pdf" in grading
+    links = []
+    for path in (root / "mail").glob("*.eml"):
+        message = email.message_from_bytes(path.read_bytes(), policy=email.policy.default)
+        if message["X-Formgate-Kind"] == "digest":
+            body = message.get_body(("plain",))
+            assert body is not None
+            links += re.findall(r"file://\S+?\.pdf", body.get_content())
+    cells = [link for link in links if not link.endswith("_lot-report.pdf")]
+    assert cells and all(link.endswith("~cell.pdf") for link in cells), cells
+    for link in cells:
+        assert Path(urllib.parse.unquote(urllib.parse.urlsplit(link).path)).exists(), link
+    assert any(link.endswith("/DEMO-LOT-04/S04-024~cell.pdf") for link in cells)
 
 
 def test_batch_demo_gives_every_invented_defect_a_fail_and_every_normal_cell_a_pass(

@@ -169,3 +169,133 @@ def test_a_crash_after_the_cell_json_leaves_the_cell_pending_and_the_restart_fin
     with Ledger(s.ledger) as ledger:
         rows = [r for r in ledger.published.of_cell("LOT-A", "G-1") if r.kind.startswith("cell ")]
     assert sorted(r.kind for r in rows) == ["cell certificate", "cell result"]
+
+
+def _lot(s: Settings, quiet_h: float | None = None) -> list[str]:
+    """Seven cells of LOT-A with their aging readings; L-5 an outlier of its lot's K-values."""
+    from tests.test_station_cells import LOT_RULES, _readings
+
+    rules = LOT_RULES + (f"\n[lot]\nquiet_h = {quiet_h}      # test\n" if quiet_h else "")
+    (s.rules_dir / "test_cells.toml").write_text(rules, encoding="utf-8")
+    cells = [f"L-{n}" for n in range(1, 8)]
+    drops = [0.0021 + 0.0001 * (n % 3) for n in range(len(cells))]
+    drops[4] = 0.0056
+    rows = []
+    for cell, drop_v in zip(cells, drops, strict=True):
+        rows += [(cell, "2026-11-02T08:00:00Z", 3.6512), (cell, "2026-11-09T08:00:00Z", 3.6512 - drop_v)]
+    for n, cell in enumerate(cells):
+        drop(s.inboxes[0].folder, f"{cell}.csv", cycle_file(cell, seed=n))
+    drop(s.inboxes[0].folder, "aging.csv", _readings(rows))
+    return cells
+
+
+def _closing_digests(s: Settings) -> list[str]:
+    with Ledger(s.ledger) as ledger:
+        mails = [*ledger.outbox.in_state("pending"), *ledger.outbox.in_state("sent")]
+    return [m.body_text for m in mails if "lot LOT-A, closed" in m.subject]
+
+
+def _closing_digest(s: Settings) -> str:
+    (body,) = _closing_digests(s)
+    return body
+
+
+def _check_closed_lot(s: Settings, cells: list[str]) -> None:
+    """Each cell's certificate shows the close: L-5 held as an outlier (with the cautions of a
+    held cell), the others graded; the closing digest links them, each on disk and current."""
+    verdict, document = _standing(s, "LOT-A", "L-5")
+    assert verdict == "hold"
+    assert [x["outcome"] for x in document["screens"]] == ["outlier"]  # type: ignore[index]
+    page1 = _page1(cell_paths(s, "LOT-A", "L-5")[1])
+    assert "HOLD" in page1 and "lot screen: k_value_mV_per_day" in page1
+    assert "Caution: this cell is held and must not be released until reviewed" in page1
+    assert "qualified personnel" in page1
+    verdict, document = _standing(s, "LOT-A", "L-1")
+    assert verdict == "pass" and document["standing"]["grade"] == "A"  # type: ignore[index]
+    assert "Grade A" in _page1(cell_paths(s, "LOT-A", "L-1")[1])
+    body = _closing_digest(s)
+    for cell in cells:
+        pdf = cell_paths(s, "LOT-A", cell)[1]
+        assert str(pdf.resolve()) in body or pdf.resolve().as_uri() in body or f"{cell}~cell.pdf" in body
+        assert _current(s, "LOT-A", cell), cell
+
+
+def test_a_lot_closed_by_command_publishes_its_cells_certificates_before_its_digest(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from pipeline.cli.main import main
+
+    s = make_station(tmp_path / "st")
+    with running(s):
+        cells = _lot(s)
+        wait_until(lambda: settled(s, len(cells) + 1), what="the lot's files")
+        wait_until(lambda: all(_current(s, "LOT-A", c) for c in cells), what="every cell published")
+    assert all(_standing(s, "LOT-A", c)[0] == "pass" for c in cells)
+    assert main(["lot", "close", str(s.root), "LOT-A"]) == 0  # no station runs: published here
+    capsys.readouterr()
+    _check_closed_lot(s, cells)
+
+
+def test_a_lot_the_station_closes_waits_for_its_cells_certificates(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+
+    def closed() -> bool:
+        with Ledger(s.ledger) as ledger:
+            return ledger.lots.get("LOT-A").closed_by == "station"
+
+    with running(s):
+        cells = _lot(s, quiet_h=0.002)  # 7.2 s
+        wait_until(lambda: settled(s, len(cells) + 1), what="the lot's files")
+        wait_until(closed, timeout_s=120, what="the station closing the quiet lot")
+        wait_until(lambda: bool(_closing_digests(s)), what="the lot's closing digest")
+        _check_closed_lot(s, cells)
+
+
+def test_a_digest_waits_for_the_cell_certificates_of_its_lot_then_links_them(
+    tmp_path: Path,
+) -> None:
+    import datetime
+    import threading
+
+    from pipeline.rulebook.book import load_rules_dir
+    from pipeline.station.cellpublish import is_current, publish_cell_now
+    from pipeline.station.digests import CELLS_WAIT_S, DigestDuty
+    from pipeline.station.settings import read_settings
+    from tests.station_kit import station_toml
+
+    toml = station_toml()
+    s = make_station(tmp_path / "st", toml.replace('digests_to = ["production@example.com"]\n', ""))
+    with running(s):
+        drop(s.inboxes[0].folder, "d1.csv", cycle_file("D-1"))
+        wait_until(lambda: settled(s, 1) and _current(s, "LOT-A", "D-1"), what="the cell")
+    (s.root / "station.toml").write_text(toml, encoding="utf-8")
+    s = read_settings(s.root)  # digests go out from now on
+    start = datetime.datetime.now(datetime.UTC)
+    later = start + datetime.timedelta(seconds=s.routing.digest_quiet_s + 1)
+    with Ledger(s.ledger) as ledger:
+        # a decision the station has not published yet (as between a decision and its render)
+        ledger.decisions.decide(cell_id="D-1", lot="LOT-A", verdict="hold", reason="held by test",
+                                hazards=(), grade=None, cause="rules", basis=[], now=start)
+        assert not is_current(s, ledger, "LOT-A", "D-1")
+        DigestDuty(s, ledger, lambda: later, threading.Event()).queue()
+        assert ledger.outbox.counts().get("pending", 0) == 0  # waits for the cell certificate
+        published = publish_cell_now(s, ledger, load_rules_dir(s.rules_dir), "LOT-A", "D-1", later)
+        assert published.pdf_path is not None and is_current(s, ledger, "LOT-A", "D-1")
+        assert "HOLD" in _page1(published.pdf_path)
+        DigestDuty(s, ledger, lambda: later, threading.Event()).queue()
+        (digest,) = ledger.outbox.in_state("pending")
+    assert "D-1~cell.pdf" in digest.body_text and "D-1.pdf" not in digest.body_text
+    # past its wait, a digest goes with the certificates there are
+    s2 = make_station(tmp_path / "st2", toml.replace('digests_to = ["production@example.com"]\n', ""))
+    with running(s2):
+        drop(s2.inboxes[0].folder, "e1.csv", cycle_file("E-1"))
+        wait_until(lambda: settled(s2, 1) and _current(s2, "LOT-A", "E-1"), what="the cell")
+    (s2.root / "station.toml").write_text(toml, encoding="utf-8")
+    s2 = read_settings(s2.root)
+    much_later = later + datetime.timedelta(seconds=CELLS_WAIT_S + 1)
+    with Ledger(s2.ledger) as ledger:
+        ledger.decisions.decide(cell_id="E-1", lot="LOT-A", verdict="hold", reason="held by test",
+                                hazards=(), grade=None, cause="rules", basis=[], now=start)
+        DigestDuty(s2, ledger, lambda: much_later, threading.Event()).queue()
+        (digest,) = ledger.outbox.in_state("pending")
+    assert "E-1~cell.pdf" in digest.body_text  # the one published before, on disk

@@ -18,8 +18,10 @@ import datetime
 import json
 import logging
 import threading
-from collections.abc import Callable
+import time
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from functools import partial
 from pathlib import Path
 
 from pipeline.errors import FormgateError
@@ -38,13 +40,22 @@ from pipeline.report.lotreport import (
     render_lot_report_pdf,
 )
 from pipeline.rulebook.book import RuleBook
+from pipeline.station.cellpublish import all_current, publish_cells_now
 from pipeline.station.cells import change_letters
 from pipeline.station.digests import lot_rows
+from pipeline.station.published_files import Written, note_written
+from pipeline.station.reviewing import (
+    alert_waiting,
+    last_review_id,
+    reviewed_cells,
+    reviewed_since,
+)
 from pipeline.station.settings import Settings
 from pipeline.writing import write_atomic
 
 log = logging.getLogger("formgate.station")
 UNITS = {m.name: m.unit for m in RULE_METRICS}
+CELLS_WAIT_S = 300.0  # longest a lot's close waits for its cells' certificates
 
 
 @dataclass(frozen=True, slots=True)
@@ -68,7 +79,8 @@ def gather(ledger: Ledger, lot: str, rulebook: RuleBook) -> ClosedLot:
         files.setdefault(stored.file_name, []).append(stored.reading)
         sha[stored.file_name] = stored.file_sha256
     readings = [ReadingFile(name, {}, tuple(rows)) for name, rows in files.items()]
-    return close_lot(lot, [d for d in docs if d["verdict"] != "error"], readings, rulebook, sha256=sha)
+    return close_lot(lot, [d for d in docs if d["verdict"] != "error"], readings, rulebook, sha256=sha,
+                     reviews=reviewed_cells(ledger, lot))  # a review that stands decides its cell
 
 
 def report_input(
@@ -133,10 +145,16 @@ def close_and_report(
     by: str,
     now: datetime.datetime,
     close: bool = True,
+    cells_ready: Callable[[str, Sequence[str]], None] | None = None,
 ) -> LotOutcome:
     """Close ``lot`` (unless ``close`` is False: a report of the lot as it stands) and write
     its report and export. Closing records every cell's decision at the close, with the
-    letters of the ones that changed; a lot closed before keeps its first close time."""
+    letters of the ones that changed; a lot closed before keeps its first close time.
+
+    Before the lot counts as closed, its cells' own certificates show the close (grades,
+    screens): ``cells_ready(lot, cells)`` sees to it (the station waits for its workers);
+    without it they are published here. A crash before leaves the lot open, closed again."""
+    seen = last_review_id(ledger, lot)  # read before the lot: a later review is newer than it
     closed = gather(ledger, lot, rulebook)
     changed: list[str] = []
     newly = False
@@ -144,20 +162,31 @@ def close_and_report(
     if close:
         for cell in closed.cells:
             d = cell.decision
-            _, before, new = ledger.decisions.decide(
-                cell_id=cell.cell_id, lot=lot, verdict=d.verdict, reason=d.reason,
-                hazards=d.hazards, grade=cell.grade, cause="lot closed",
-                basis=[f"{s}:{n}:{h}" for s, n, h in cell.records], now=now,
-                letters=_letters(settings, closed, cell, now),
-            )
+            with ledger.db.write():  # a review recorded while the lot closed decides its cell
+                if reviewed_since(ledger, lot, cell.cell_id, seen):
+                    continue
+                _, before, new = ledger.decisions.decide(
+                    cell_id=cell.cell_id, lot=lot, verdict=d.verdict, reason=d.reason,
+                    hazards=d.hazards, grade=cell.grade, cause="lot closed",
+                    basis=[f"{s}:{n}:{h}" for s, n, h in cell.records], now=now,
+                    letters=_letters(settings, closed, cell, now),
+                )
             if new and before is not None and before.verdict != d.verdict:
                 changed.append(cell.cell_id)
+        ids = [c.cell_id for c in closed.cells]
+        if cells_ready is not None:
+            cells_ready(lot, ids)
+        else:
+            publish_cells_now(settings, ledger, rulebook, lot, ids, now)
         newly = ledger.lots.close(lot, by=by, now=now)
         closed_at = ledger.lots.get(lot).closed_at
     report, export = report_paths(settings, lot)
     data = report_input(closed, station=settings.station_name, now=now, closed_at=closed_at)
-    write_atomic(render_lot_report_pdf(data), report)
-    write_atomic(lot_export_csv(data), export)
+    written = [Written(report, render_lot_report_pdf(data), "lot report"),
+               Written(export, lot_export_csv(data), "lot export")]
+    for file in written:
+        write_atomic(file.data, file.path)
+    note_written(ledger, written, now=now, lot=lot)  # their hashes, for formgate verify
     if close:
         ledger.lots.note_report(lot, str(report), str(export))
         routing = settings.routing
@@ -239,6 +268,11 @@ class LotCloser(threading.Thread):
         except Exception as exc:  # a busy or failing disk: next round
             log.error("cells waiting for a stage cannot be checked: %s", exc)
         try:
+            if alert_waiting(self.settings, ledger, rulebook, self.clock()):
+                self.mail_wake.set()
+        except Exception as exc:  # a busy or failing disk: next round
+            log.error("cells waiting for a person cannot be checked: %s", exc)
+        try:
             due = lots_due(ledger, rulebook, self.clock())
         except Exception as exc:  # a busy or failing disk: next round
             log.error("lots due for closing cannot be listed: %s", exc)
@@ -248,11 +282,28 @@ class LotCloser(threading.Thread):
                 return
             try:
                 close_and_report(
-                    self.settings, ledger, rulebook, lot, by="station", now=self.clock()
+                    self.settings, ledger, rulebook, lot, by="station", now=self.clock(),
+                    cells_ready=partial(self.wait_for_cells, ledger),
                 )
                 self.mail_wake.set()
+            except InterruptedError:  # stopping while it waited for its cells: next start
+                return
             except Exception as exc:  # logged and tried again; never the end of the station
                 log.error("lot %s could not be closed: %s", lot, exc)
+
+    def wait_for_cells(self, ledger: Ledger, lot: str, cells: Sequence[str]) -> None:
+        """Wait until the station's workers have published the cells' certificates as the
+        close decided them (the main loop sees the new decisions), at most CELLS_WAIT_S: the
+        lot's digest links them. Past that the lot closes all the same, and a digest links
+        the certificates as they are (each is rewritten once its render is done)."""
+        deadline = time.monotonic() + CELLS_WAIT_S
+        while not all_current(self.settings, ledger, lot, cells):
+            if time.monotonic() > deadline:
+                log.warning("lot %s: its cells' certificates are not all published after %g s; "
+                            "closing it all the same", lot, CELLS_WAIT_S)
+                return
+            if self.stop_event.wait(0.5):
+                raise InterruptedError("the station is stopping")  # the lot closes next start
 
     def alert_overdue(self, ledger: Ledger, rulebook: RuleBook) -> None:
         """One alert per cell whose needed stage is later than its rule set's overdue_h."""
