@@ -149,6 +149,13 @@ def test_a_crash_between_a_decision_and_its_cell_certificate_is_published_at_res
     assert "FAIL" in page1 and "Caution: this cell failed and may be hazardous" in page1
     assert "qualified personnel" in page1 and "local codes" in page1
     check_invariants(s, {"f1.csv"})
+    # the failure letter names the cell's own certificate beside the record's it attaches
+    with Ledger(s.ledger) as ledger:
+        mails = [*ledger.outbox.in_state("pending"), *ledger.outbox.in_state("sent")]
+    (letter,) = [m for m in mails if "FAIL cell F-1" in m.subject]
+    assert "F-1.pdf" in str(letter.attachment_path)
+    assert "The cell's own certificate shows its standing decision" in " ".join(letter.body_text.split())
+    assert os.path.abspath(pdf_path) in letter.body_text  # a link stays whole: never wrapped
 
 
 def test_a_crash_after_the_cell_json_leaves_the_cell_pending_and_the_restart_finishes_it(
@@ -213,6 +220,10 @@ def _check_closed_lot(s: Settings, cells: list[str]) -> None:
     verdict, document = _standing(s, "LOT-A", "L-1")
     assert verdict == "pass" and document["standing"]["grade"] == "A"  # type: ignore[index]
     assert "Grade A" in _page1(cell_paths(s, "LOT-A", "L-1")[1])
+    with Ledger(s.ledger) as ledger:
+        mails = [*ledger.outbox.in_state("pending"), *ledger.outbox.in_state("sent")]
+    (hold,) = [m for m in mails if "HOLD cell L-5" in m.subject]
+    assert "L-5~cell.pdf" in hold.body_text  # the hold's letter names the cell certificate
     body = _closing_digest(s)
     for cell in cells:
         pdf = cell_paths(s, "LOT-A", cell)[1]

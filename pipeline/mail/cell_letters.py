@@ -22,6 +22,7 @@ from pipeline.mail.letters import (
     _item,
     _paragraph,
     caution_sections,
+    cell_certificate_paragraph,
     message_id_for,
     sanitize_header,
 )
@@ -67,11 +68,13 @@ def decision_letter(
     key: str,
     decided_at: datetime.datetime,
     domain: str | None = None,
+    certificate: str = "",
 ) -> Letter:
     """The letter for a cell whose decision over its stages or lot became ``fail`` or ``hold``.
 
     ``records``: (stage, file name, SHA-256) of every record the decision rests on;
-    ``key`` makes the Message-ID (one letter per decision).
+    ``key`` makes the Message-ID (one letter per decision); ``certificate``: the link of the
+    cell's own certificate.
     """
     if verdict not in ("fail", "hold"):
         raise ValueError(f"a decision letter is for a fail or a hold, got {verdict!r}")
@@ -99,6 +102,7 @@ def decision_letter(
         "Reasons\n" + "\n".join(_item(r) for r in reasons),
         *caution_sections(named, family, general=verdict == "fail" or bool(named)),
         _records(records),
+        *([cell_certificate_paragraph(certificate)] if certificate else []),
     ]
     word = "FAIL" if verdict == "fail" else "HOLD"
     return Letter(
@@ -126,10 +130,12 @@ def superseded_letter(
     station: str,
     key: str,
     domain: str | None = None,
+    certificate: str = "",
 ) -> Letter:
     """A short follow-up: the fail or hold mailed earlier no longer stands; what stands now.
 
-    ``was``: (verdict, reason, when decided); ``now``: (verdict, reason).
+    ``was``: (verdict, reason, when decided); ``now``: (verdict, reason); ``certificate``:
+    the link of the cell's own certificate.
     """
     cell = sanitize_header(cell_id, ID_LEN) or "(no cell id)"
     shown_lot = sanitize_header(lot, ID_LEN) or "(no lot)"
@@ -160,6 +166,7 @@ def superseded_letter(
         ),
         *([] if new_verdict != "fail" else caution_sections([], family, general=True)),
         _records(records),
+        *([cell_certificate_paragraph(certificate)] if certificate else []),
     ]
     return Letter(
         kind="failure" if old_verdict == "fail" else "hold",

@@ -292,6 +292,16 @@ def _subject_ids(result: CellResult) -> tuple[str, str]:
     )
 
 
+def cell_certificate_paragraph(link: str) -> str:
+    """Where the cell's own certificate is (a station's ``<cell>~cell.pdf``): '' for no link."""
+    if not link:
+        return ""
+    return _paragraph(
+        f"The cell's own certificate shows its standing decision over all its stages, its "
+        f"lot's screens and any review, and is rewritten moments after each decision: {link}"
+    )
+
+
 def failure_letter(
     result: CellResult,
     pdf_path: str,
@@ -299,12 +309,14 @@ def failure_letter(
     *,
     station: str,
     domain: str | None = None,
+    cell_certificate: str = "",
 ) -> Letter:
     """The mail for a failed cell: subject names cell, lot and hazards; PDF attached.
 
     The body gives the verdict, the reasons, the caution for each hazard and the
     general caution, the data-check notice and the traceability of the decision.
     ``domain`` is the Message-ID's right-hand side (default: made from ``station``).
+    ``cell_certificate``: the link of the cell's own certificate, named in the body.
     """
     if result.verdict.kind is not VerdictKind.FAIL:
         raise ValueError(f"failure_letter needs a failed cell, got {result.verdict.kind.value}")
@@ -321,6 +333,7 @@ def failure_letter(
             "anyone handles it, and follow your site's procedures for failed cells. The "
             f"certificate is attached ({pathlib.PurePath(pdf_path).name})."
         ),
+        *([cell_certificate_paragraph(cell_certificate)] if cell_certificate else []),
     ]
     body = "\n\n".join(head + _cell_sections(result, hazards, general=True)) + "\n"
     return Letter(
@@ -341,10 +354,12 @@ def hold_letter(
     *,
     station: str,
     domain: str | None = None,
+    cell_certificate: str = "",
 ) -> Letter:
     """The mail for a held cell: it must not be released until reviewed; PDF attached.
 
     Cautions are added for any hazard named by a check that is out of its window.
+    ``cell_certificate``: the link of the cell's own certificate, named in the body.
     """
     if result.verdict.kind is not VerdictKind.HOLD:
         raise ValueError(f"hold_letter needs a held cell, got {result.verdict.kind.value}")
@@ -361,6 +376,7 @@ def hold_letter(
             "qualified personnel have reviewed it. The certificate is attached "
             f"({pathlib.PurePath(pdf_path).name})."
         ),
+        *([cell_certificate_paragraph(cell_certificate)] if cell_certificate else []),
     ]
     body = "\n\n".join(head + _cell_sections(result, hazards, general=bool(hazards))) + "\n"
     return Letter(

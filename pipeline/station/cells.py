@@ -31,6 +31,7 @@ from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow
 from pipeline.mail.cell_letters import decision_letter, superseded_letter
 from pipeline.mail.letters import Letter
+from pipeline.station.digests import cell_certificate_link
 from pipeline.station.reviewing import review_stands
 from pipeline.station.rules_in_force import RulesInForce
 from pipeline.station.settings import Settings
@@ -92,6 +93,7 @@ def change_letters(
                 cell_id=cell_id, lot=lot, verdict=decision.verdict, reasons=decision.reasons,
                 hazards=decision.hazards, cause=cause, records=files, family=family,
                 recipients=to, station=station, key=key, decided_at=now, domain=routing.domain,
+                certificate=cell_certificate_link(settings, lot, cell_id),
             ))
     if before is not None and mailed(before) and not same:
         to = routing.failures_to if before.verdict == "fail" else routing.holds_to
@@ -100,6 +102,7 @@ def change_letters(
                 cell_id=cell_id, lot=lot, was=(before.verdict, before.reason, before.decided_at),
                 now=(decision.verdict, decision.reason), cause=cause, records=files,
                 family=family, recipients=to, station=station, key=key, domain=routing.domain,
+                certificate=cell_certificate_link(settings, lot, cell_id),
             ))
     return out
 

@@ -21,7 +21,7 @@ from pathlib import Path
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import ResultRow
 from pipeline.mail.letters import DigestRow, digest_letter
-from pipeline.station.cellpublish import all_current, published_certificate
+from pipeline.station.cellpublish import all_current, cell_paths, published_certificate
 from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
@@ -94,6 +94,15 @@ def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
             )
         )
     return rows
+
+
+def cell_certificate_link(settings: Settings, lot: str, cell_id: str) -> str:
+    """How a letter names the cell's own certificate (``<cell>~cell.pdf``), by the one name that
+    always shows its standing decision; '' when the station writes none (``certify = "none"``)."""
+    if settings.certify == "none":
+        return ""
+    path = str(cell_paths(settings, lot, cell_id)[1])
+    return certificate_link(path, settings.certificates, settings.routing.certificates_url)
 
 
 def cell_certificate(ledger: Ledger, lot: str, cell_id: str, settings: Settings) -> str:

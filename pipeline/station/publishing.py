@@ -26,6 +26,7 @@ from pipeline.read.readings import ReadingFile
 from pipeline.runner import result_paths
 from pipeline.station import faults
 from pipeline.station.cells import CellDecisions
+from pipeline.station.digests import cell_certificate_link
 from pipeline.station.guard import Guard
 from pipeline.station.published_files import Written, note_kept, note_written
 from pipeline.station.setaside import NAME_RESERVE_BYTES
@@ -157,12 +158,14 @@ class Publisher:
                     routing.failures_to,
                     station=station,
                     domain=routing.domain,
+                    cell_certificate=cell_certificate_link(self.settings, result.lot, result.cell_id),
                 )
             ]
         if kind is VerdictKind.HOLD and routing.holds_to:
             return [
                 hold_letter(
-                    result, str(pdf_path), routing.holds_to, station=station, domain=routing.domain
+                    result, str(pdf_path), routing.holds_to, station=station, domain=routing.domain,
+                    cell_certificate=cell_certificate_link(self.settings, result.lot, result.cell_id),
                 )
             ]
         return []
