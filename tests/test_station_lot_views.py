@@ -21,6 +21,7 @@ from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import InputRow
 from pipeline.station.settings import Settings
 from tests.station_kit import cycle_file, drop, make_station, running, settled, wait_until
+from tests.test_station_cells import AGING_RULES, _readings
 
 pytestmark = pytest.mark.slow
 
@@ -36,6 +37,51 @@ def _export(s: Settings) -> list[dict[str, str]]:
 
 def _pdf_text(path: Path) -> str:
     return " ".join(" ".join(p.extract_text() for p in PdfReader(path).pages).split())
+
+
+def test_the_lot_export_gives_each_cell_the_time_of_its_decision(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    s = make_station(tmp_path / "st")
+    (s.rules_dir / "test_cells.toml").write_text(AGING_RULES, encoding="utf-8")
+    with running(s):
+        drop(s.inboxes[0].folder, "c1.csv", cycle_file("C-1"))
+        drop(s.inboxes[0].folder, "c3.csv", cycle_file("C-3", capacity_ah=1.5, seed=3))
+        wait_until(lambda: settled(s, 2), what="the cycle files")
+        drop(s.inboxes[0].folder, "aging.csv", _readings([
+            ("C-1", "2026-11-02T08:00:00Z", 3.6512), ("C-1", "2026-11-09T08:00:00Z", 3.6470),
+            ("C-3", "2026-11-02T08:00:00Z", 3.6512), ("C-3", "2026-11-09T08:00:00Z", 3.6470),
+        ]))
+        wait_until(lambda: settled(s, 3), what="the tester file")
+
+        def decided() -> bool:
+            with Ledger(s.ledger) as ledger:
+                return all(len(ledger.decisions.of_cell("LOT-A", c)) == 2 for c in ("C-1", "C-3"))
+
+        wait_until(decided, what="both cells decided on their readings")
+
+    def times() -> tuple[dict[str, str], dict[str, str]]:
+        with Ledger(s.ledger) as ledger:
+            decisions = {c: d.decided_at for c, d in ledger.decisions.latest_of_lot("LOT-A").items()}
+            analysed = {r.cell_id: r.analysed_at for r in ledger.results.of_lot("LOT-A")}
+        return (
+            {c: t.isoformat() for c, t in decisions.items()},
+            {c: t.isoformat() for c, t in analysed.items()},
+        )
+
+    # a report of the open lot: each cell as the ledger decided it, when it decided it
+    assert main(["lot", "report", str(s.root), "LOT-A"]) == 0
+    decisions, analysed = times()
+    rows = {r["cell_id"]: r for r in _export(s)}
+    assert {c: r["decided_at"] for c, r in rows.items()} == decisions
+    assert all(decisions[c] != analysed[c] for c in rows)  # the readings decided later
+    # closing records each cell's decision at the close (the pass gets its grade): its time
+    assert main(["lot", "close", str(s.root), "LOT-A"]) == 0
+    decisions, _ = times()
+    rows = {r["cell_id"]: r for r in _export(s)}
+    assert {c: r["decided_at"] for c, r in rows.items()} == decisions
+    assert (rows["C-1"]["verdict"], rows["C-3"]["verdict"]) == ("pass", "fail")
+    capsys.readouterr()
 
 
 def _refused_station(tmp_path: Path) -> tuple[Settings, InputRow]:
@@ -79,3 +125,23 @@ def test_a_refused_file_that_names_its_cell_shows_in_lot_list_and_lot_show(
     assert capsys.readouterr().out.splitlines() == [
         "lot LOT-A: 2 cell(s): 2 pass, 0 fail, 0 hold; open", "  C-1  pass", "  C-2  pass"
     ]
+
+
+def test_a_refused_file_that_names_its_cell_is_in_the_lot_report_and_export(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    s, c2 = _refused_station(tmp_path)
+    capsys.readouterr()
+    assert main(["lot", "report", str(s.root), "LOT-A"]) == 0
+    assert capsys.readouterr().out.splitlines()[0] == (
+        "lot LOT-A: 2 cell(s), yield 50.0 % (1 error, 1 pass)"
+    )
+    text = _pdf_text(s.certificates / "LOT-A" / "_lot-report.pdf")
+    assert "Not judged (error) 1 50.0 %" in text
+    assert f"C-2 ERROR {BAD_REASON}" in text
+    rows = {r["cell_id"]: r for r in _export(s)}
+    assert (rows["C-1"]["verdict"], rows["C-2"]["verdict"]) == ("pass", "error")
+    assert rows["C-2"]["reason"] == BAD_REASON
+    assert rows["C-2"]["records"] == f"quarantined:c2.csv:{c2.sha256}"
+    assert c2.final_at is not None
+    assert rows["C-2"]["decided_at"] == c2.final_at.isoformat()

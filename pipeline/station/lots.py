@@ -14,18 +14,20 @@ station when a lot has been quiet for its rule set's ``[lot] quiet_h``.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime
 import json
 import logging
 import threading
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from functools import partial
 from pathlib import Path
 
 from pipeline.errors import FormgateError
 from pipeline.judge.lotclose import ClosedCell, ClosedLot, close_lot
+from pipeline.judge.lotstats import tally
 from pipeline.judge.metricdefs import RULE_METRICS
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow
@@ -51,6 +53,7 @@ from pipeline.station.reviewing import (
     reviewed_since,
 )
 from pipeline.station.settings import Settings
+from pipeline.station.unjudged import UnjudgedCell, unjudged_cells
 from pipeline.writing import write_atomic
 
 log = logging.getLogger("formgate.station")
@@ -84,9 +87,35 @@ def gather(ledger: Ledger, lot: str, rulebook: RuleBook) -> ClosedLot:
 
 
 def report_input(
-    closed: ClosedLot, *, station: str, now: datetime.datetime, closed_at: datetime.datetime | None
+    closed: ClosedLot,
+    *,
+    station: str,
+    now: datetime.datetime,
+    closed_at: datetime.datetime | None,
+    decisions: Mapping[str, DecisionRow] | None = None,
+    refused: Sequence[UnjudgedCell] = (),
 ) -> LotReportInput:
+    """The lot report's input. ``decisions``: each cell's latest decision in the ledger, whose
+    time a cell shows when it is the decision the report shows (else the report's own time:
+    an open lot's screens, as they would apply); ``refused``: the cells a quarantined file
+    names (station/unjudged.py), shown not judged, counted in the tally and the yield."""
     rs = closed.rule_set
+    recorded = decisions or {}
+
+    def decided_at(c: ClosedCell) -> datetime.datetime:
+        d = recorded.get(c.cell_id)
+        shown = (c.decision.verdict, c.decision.reason)
+        return d.decided_at if d is not None and (d.verdict, d.reason) == shown else now
+
+    not_judged = tuple(
+        LotCell(u.cell_id, "error", u.reason, None, (), {}, (("quarantined", u.name, u.sha256),),
+                u.quarantined_at)
+        for u in refused
+    )
+    verdicts = [c.decision.verdict for c in closed.cells] + [u.verdict for u in not_judged]
+    statistics = dataclasses.replace(closed.statistics, tally=tally(verdicts)) if refused else (
+        closed.statistics
+    )
     return LotReportInput(
         lot=closed.lot,
         cell_types=closed.cell_types,
@@ -103,15 +132,15 @@ def report_input(
                 c.decision.hazards,
                 c.values,
                 c.records,
-                c.decided_at or now,
+                decided_at(c),
             )
             for c in closed.cells
-        ),
+        ) + not_judged,
         checks=closed.checks,
         screens=closed.screens,
         grades=closed.grades,
         units=UNITS,
-        statistics=closed.statistics,
+        statistics=statistics,
     )
 
 
@@ -181,7 +210,12 @@ def close_and_report(
         newly = ledger.lots.close(lot, by=by, now=now)
         closed_at = ledger.lots.get(lot).closed_at
     report, export = report_paths(settings, lot)
-    data = report_input(closed, station=settings.station_name, now=now, closed_at=closed_at)
+    data = report_input(
+        closed, station=settings.station_name, now=now, closed_at=closed_at,
+        decisions=ledger.decisions.latest_of_lot(lot), refused=unjudged_cells(settings, ledger, lot),
+    )
+    if data.statistics is not None:  # what the report counts, the caller shows (not judged too)
+        closed = dataclasses.replace(closed, statistics=data.statistics)
     written = [Written(report, render_lot_report_pdf(data), "lot report"),
                Written(export, lot_export_csv(data), "lot export")]
     for file in written:
