@@ -70,9 +70,9 @@ def test_the_digest_log_line_counts_cells_as_the_digest_does(
 
 def _readings() -> bytes:
     return (
-        "# kind: ocv readings\n# lot: LOT-A\ncell_id,time,ocv_V,cell_type\n"
-        "C-1,2026-11-02T08:00:00Z,3.6512,TEST-CELL\nC-1,2026-11-09T08:00:00Z,3.6470,TEST-CELL\n"
-    ).encode()
+        b"# kind: ocv readings\n# lot: LOT-A\ncell_id,time,ocv_V,cell_type\n"
+        b"C-1,2026-11-02T08:00:00Z,3.6512,TEST-CELL\nC-1,2026-11-09T08:00:00Z,3.6470,TEST-CELL\n"
+    )
 
 
 def test_status_counts_a_reading_file_as_a_reading_file_not_an_error(tmp_path: Path) -> None:
