@@ -33,8 +33,9 @@ def _open(folder: str) -> tuple[Any, Any]:
     return settings, Ledger(settings.ledger)
 
 
-def _known_lot(ledger: Any, lot: str, refused: dict[str, list[Any]]) -> None:
-    names = sorted(set(ledger.lots.names()) | set(refused))
+def _known_lot(ledger: Any, lot: str, refused: dict[str, list[Any]] | None = None) -> None:
+    """Refuse a lot the ledger does not know (nor a quarantined file names, in ``refused``)."""
+    names = sorted(set(ledger.lots.names()) | set(refused or {}))
     if lot not in names:
         from pipeline.rulebook.tables import did_you_mean
 
