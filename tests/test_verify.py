@@ -374,3 +374,22 @@ def test_a_crash_between_writing_and_recording_is_recorded_by_the_restart(tmp_pa
         assert {r.result_id for r in record} == {ledger.results.of_cell("LOT-A", "CR-1")[0].id}
     code = main(["verify", str(s.root), str(pdf_path), str(json_path), "--ledger"])
     assert code == 0
+
+
+def test_a_cell_certificate_is_verified_with_the_decision_it_shows(
+    judged: Judged, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    cell_pdf = next(judged.settings.certificates.rglob("K-2~cell.pdf"))
+    with Ledger(judged.settings.ledger) as ledger:
+        row = ledger.published.by_path(str(cell_pdf.resolve()))
+    assert row is not None and row.kind == "cell certificate" and row.decision_id is not None
+    status, out = verify(str(judged.settings.root), str(cell_pdf), capsys=capsys)
+    assert status == 0, out
+    assert f"it shows decision {row.decision_id}: fail" in out
+    assert f"ok  decisions row {row.decision_id} holds its place in the ledger's hash chain" in out
+    s = copy_of(judged, tmp_path)
+    with sqlite3.connect(s.ledger) as db:
+        db.execute("UPDATE decisions SET reason = 'released' WHERE id = ?", (row.decision_id,))
+    status, out = verify(str(s.root), str(s.certificates / "LOT-A" / "K-2~cell.pdf"), capsys=capsys)
+    assert status == 1
+    assert f"!!  decisions row {row.decision_id}: its content does not match its hash" in out

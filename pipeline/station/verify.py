@@ -85,6 +85,17 @@ class Verifier:
         self.settings = settings
         self.ledger = ledger
         self.root = Path(recorded_path(settings.root))
+        self._chain_problems: dict[str, list[str]] = {}  # per table, walked once
+
+    def _chained(self, table: str, row_id: int) -> Finding:
+        """Whether one row still holds its place in its table's hash chain."""
+        if table not in self._chain_problems:
+            rows = chained_rows(self.ledger.db.conn, table)
+            self._chain_problems[table] = broken_links(table, rows)[0]
+        named = [p for p in self._chain_problems[table] if p.startswith(f"{table} row {row_id}:")]
+        if named:
+            return Finding(False, "; ".join(named))
+        return Finding(True, f"{table} row {row_id} holds its place in the ledger's hash chain")
 
     # ---- one file ---------------------------------------------------------------------------
 
@@ -237,9 +248,13 @@ class Verifier:
         elif row.decision_id is not None and row.lot is not None and row.cell_id is not None:
             decision = next((d for d in self.ledger.decisions.of_cell(row.lot, row.cell_id)
                              if d.id == row.decision_id), None)
-            if decision is not None:
+            if decision is None:
+                findings.append(Finding(False, f"the decision it shows (decisions row "
+                                               f"{row.decision_id}) is not in the ledger"))
+            else:
                 findings.append(Finding(None, f"it shows decision {decision.id}: "
                                               f"{_decision_words(decision)}"))
+                findings.append(self._chained("decisions", decision.id))
         files: dict[str, PublishedRow] = {}
         if row.lot is not None and row.cell_id is not None:
             files = self._files_of(row.lot, row.cell_id, result_id=row.result_id,
@@ -264,8 +279,10 @@ class Verifier:
         if row.lot is not None and row.cell_id is not None:
             standing = self.ledger.decisions.latest(row.lot, row.cell_id)
             if standing is not None:
+                later = (f" (decision {standing.id}, later than the one it shows)"
+                         if row.decision_id is not None and standing.id != row.decision_id else "")
                 findings.append(Finding(None, "the cell's standing decision: "
-                                              f"{_decision_words(standing)}"))
+                                              f"{_decision_words(standing)}{later}"))
         return findings
 
     def _files_of(
