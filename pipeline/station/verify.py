@@ -190,7 +190,7 @@ class Verifier:
                                    decision_id=json_row.decision_id)
             for kind, row in files.items():
                 if kind not in _JSON_KINDS:
-                    found.append(Finding(False, f"the {_KIND_WORDS[kind]} published with it is "
+                    found.append(Finding(False, f"the {_KIND_WORDS.get(kind, kind)} published with it is "
                                                 f"{self._shown(self._locate(row.path))} (SHA-256 "
                                                 f"{row.sha256}), and this file differs from it"))
         return found
@@ -319,7 +319,7 @@ class Verifier:
 
     def _on_disk(self, row: PublishedRow) -> Finding:
         """Is the file a published row names still at its path, with its recorded bytes?"""
-        return self._rehash(self._locate(row.path), row.sha256, f"its {_KIND_WORDS[row.kind]}")
+        return self._rehash(self._locate(row.path), row.sha256, f"its {_KIND_WORDS.get(row.kind, row.kind)}")
 
     def _rehash(self, path: Path, sha: str, what: str) -> Finding:
         try:
