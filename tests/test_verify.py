@@ -34,7 +34,7 @@ from pipeline.report.verification import parse_code, spaced, verification_code
 from pipeline.rulebook.book import load_rules_dir
 from pipeline.station.lots import close_and_report
 from pipeline.station.settings import Settings, read_settings
-from pipeline.station.verify import Verifier, codes_in_pdf
+from pipeline.audit.verify import Verifier, codes_in_pdf
 from tests.golden import cases
 from tests.station_kit import (
     REPO,

@@ -1,7 +1,7 @@
 """`formgate verify`: is a certificate, result or verification code what the station published;
 does the whole ledger still hold together.
 
-Argument parsing and printing only; the checks are pipeline.station.verify's. Reads the
+Argument parsing and printing only; the checks are pipeline.audit.verify's. Reads the
 station folder's station.toml and ledger, and is safe beside a running station.
 """
 
@@ -16,7 +16,7 @@ from pipeline.cli.exits import EXIT_OK, EXIT_REJECTED, EXIT_USER
 from pipeline.errors import FormgateError
 
 if TYPE_CHECKING:
-    from pipeline.station.verify import Verification
+    from pipeline.audit.verify import Verification
 
 MARKS = {True: "ok", False: "!!", None: ""}
 
@@ -39,7 +39,7 @@ def cmd_verify(args: argparse.Namespace) -> int:
     from pipeline.ledger.ledger import Ledger
     from pipeline.report.verification import parse_code
     from pipeline.station.settings import read_settings
-    from pipeline.station.verify import Verifier
+    from pipeline.audit.verify import Verifier
 
     if not args.items and not args.ledger:
         raise FormgateError(
