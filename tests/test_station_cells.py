@@ -184,6 +184,8 @@ def test_closing_a_lot_holds_its_outlier_grades_the_rest_and_writes_its_report(
     with running(s):
         for n, cell in enumerate(cells):
             drop(s.inboxes[0].folder, f"{cell}.csv", cycle_file(cell, seed=n))
+        # the readings come last, as on a line (and the test counts on their decision being last)
+        wait_until(lambda: settled(s, len(cells)), what="the lot's cycle files")
         drop(s.inboxes[0].folder, "aging.csv", _readings(rows))
         wait_until(lambda: settled(s, len(cells) + 1), what="the lot's files")
         wait_until(lambda: all(_decisions(s, c) and _decisions(s, c)[-1][0] == "pass"
