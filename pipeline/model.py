@@ -503,6 +503,24 @@ STAGES: tuple[str, ...] = ("formation", "aging", "grading")
 # What a cycle file's ``stage`` metadata may say, and the stages each value covers. A file
 # without it holds the whole program, formation and grading.
 WHOLE_PROGRAM: tuple[str, ...] = ("formation", "grading")
+# A cell held only while a stage it needs is still to come says so in each part of its
+# reason ("waiting for stage aging; waiting for stage grading"): no person is needed then,
+# its record decides it. The deciding, the ledger's list of cells waiting for a person,
+# the letters and the cell certificate all read a reason by these two names.
+WAITING_FOR_STAGE = "waiting for stage"
+
+
+def only_waiting(reason: str) -> bool:
+    """True when a hold's every reason is a stage still to come.
+
+    >>> only_waiting("waiting for stage aging; waiting for stage grading (retest asked by A)")
+    True
+    >>> only_waiting("waiting for stage aging; outlier in lot: dcir_mOhm 31 > lot limit 25")
+    False
+    """
+    return all(part.startswith(WAITING_FOR_STAGE) for part in reason.split("; ") if part)
+
+
 CYCLE_FILE_STAGES: Mapping[str, tuple[str, ...]] = frozen_mapping(
     {
         "formation": ("formation",),

@@ -25,9 +25,6 @@ from pipeline.report.result import to_json
 from pipeline.rulebook.book import RuleBook
 from pipeline.writing import write_atomic
 
-# The bytes of a file's head that tell an OCV reading file by its header (as a station does).
-READINGS_HEAD = 65536
-
 
 def judge(
     data: bytes,
@@ -187,7 +184,7 @@ def check_file(
         problem = f"cannot read the file ({exc.strerror})"
         error = InputError(problem, SourceRef(name), "Check the path and its permissions.")
         return FileOutcome(name, None, error)
-    if looks_like_readings(data[:READINGS_HEAD]):
+    if looks_like_readings(data):
         return FileOutcome(name, None, _readings_error(data, name))
     try:
         result = judge(data, name, rulebook, analysed_at=analysed_at, profile=profile)

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 
 from pipeline.judge.lotscreens import Outlier
 from pipeline.judge.quantities import format_value, precision
-from pipeline.model import STAGES, Window
+from pipeline.model import STAGES, WAITING_FOR_STAGE, Window
 
 # What each kind of record covers.
 CYCLE_FILE: tuple[str, ...] = ("formation", "grading")
@@ -100,7 +100,7 @@ def decide(
     hazards = tuple(dict.fromkeys(h for r in records if r.verdict == "fail" for h in r.hazards))
     failing = [r.reason for r in ranked if r.verdict in ("fail", "error")]
     holding = [r.reason for r in ranked if r.verdict == "hold"]
-    waiting = [f"waiting for stage {s}" for s in missing]
+    waiting = [f"{WAITING_FOR_STAGE} {s}" for s in missing]
     if failing:
         verdict = "fail"
     elif holding or waiting or outlier_reasons:

@@ -27,10 +27,9 @@ from pipeline.errors import FormgateError
 from pipeline.judge.cellverdict import StageRecord, outlier_phrase
 from pipeline.judge.lotscreens import Outlier, RobustLimits, outliers
 from pipeline.judge.metricdefs import RULE_BY_NAME
-from pipeline.model import SAFETY_HAZARDS
+from pipeline.model import SAFETY_HAZARDS, WAITING_FOR_STAGE, only_waiting
 
 ACTIONS = ("release", "reject", "retest")
-WAITING = "waiting for stage"
 
 
 class ReviewRefused(FormgateError):
@@ -71,17 +70,6 @@ class Reviewed:
     given: Decided
     seen: frozenset[tuple[str, str]]
     after_close: bool = False
-
-
-def only_waiting(reason: str) -> bool:
-    """True when a hold's every reason is a stage still to come (its record decides it).
-
-    >>> only_waiting("waiting for stage grading (retest asked by quality engineer A: noisy)")
-    True
-    >>> only_waiting("waiting for stage aging; outlier in lot: dcir_mOhm 31 > lot limit 25")
-    False
-    """
-    return all(part.startswith(WAITING) for part in reason.split("; ") if part)
 
 
 def failed_checks(records: Iterable[StageRecord]) -> tuple[str, ...]:
@@ -233,7 +221,7 @@ def given(asked: Asked, decision: Decided, *, grade: str | None = None) -> Decid
     # "; " separates a decision's reasons: the person's own would read as a reason of its own
     why = why.replace("; ", ", ")
     return Decided(
-        "hold", f"{WAITING} {asked.stage} (retest asked by {who}: {why})", decision.hazards
+        "hold", f"{WAITING_FOR_STAGE} {asked.stage} (retest asked by {who}: {why})", decision.hazards
     )
 
 

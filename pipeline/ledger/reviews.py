@@ -28,6 +28,7 @@ from pipeline.ledger.rows import (
     review_row,
     utc_text,
 )
+from pipeline.model import only_waiting
 
 ACTIONS = ("release", "reject", "retest")
 
@@ -141,16 +142,3 @@ class Reviews:
         ]
         return sorted(found, key=lambda w: (w[4], w[0], w[1]))
 
-
-WAITING = "waiting for stage"
-
-
-def only_waiting(reason: str) -> bool:
-    """True when a hold's every reason is a stage still to come (no person is needed).
-
-    >>> only_waiting("waiting for stage aging; waiting for stage grading")
-    True
-    >>> only_waiting("waiting for stage aging; outlier in lot: k_value_mV_per_day 1.8")
-    False
-    """
-    return all(part.startswith(WAITING) for part in reason.split("; ") if part)

@@ -131,14 +131,21 @@ def read_readings(data: bytes, name: str) -> ReadingFile:
     return ReadingFile(name, frozen_mapping(metadata), readings, tuple(fields))
 
 
+# The bytes of a file's head that tell an OCV reading file by its header.
+READINGS_HEAD = 65536
+
+
 def looks_like_readings(head: bytes) -> bool:
-    """True when ``head`` (a file's first bytes) is the start of an OCV reading file.
+    """True when ``head`` (a file, or its first bytes) is the start of an OCV reading file.
+
+    Only the first READINGS_HEAD bytes are looked at, so a caller may pass a whole file.
 
     Skips a byte-order mark, blank lines and ``#`` metadata lines, and asks whether the
     first other line (the header) names both ``cell_id`` and ``ocv_V``, which a cycle
     file's header never does together. Gzip is handled: a compressed head is inflated
     as far as its bytes go (a head cut mid-stream is fine). Never raises.
     """
+    head = head[:READINGS_HEAD]
     if head[:2] == GZIP_MAGIC:
         try:
             head = zlib.decompressobj(wbits=31).decompress(head, 1 << 20)

@@ -13,10 +13,9 @@ import datetime
 import math
 
 from pipeline.judge.quantities import DASH, format_value, significant
-from pipeline.model import Hazard
+from pipeline.model import Hazard, only_waiting
 from pipeline.report import hazards, verification
 from pipeline.report.cellsummary import (
-    WAITING,
     AgingEntry,
     CellSummary,
     CheckEntry,
@@ -150,11 +149,17 @@ def _aging(a: AgingEntry | None) -> dict[str, object] | None:
     }
 
 
+def _only_waiting(summary: CellSummary) -> bool:
+    """Held only while a stage it needs is still to come: no caution, no person needed."""
+    d = summary.decision
+    return d.verdict == "hold" and only_waiting("; ".join(d.reasons))
+
+
 def _cautions(summary: CellSummary) -> dict[str, object]:
     """The caution box: a failed cell's (and a hazardous held cell's) hazard cautions and
     handling, and for every fail or hold for a real reason the general caution."""
     d = summary.decision
-    waiting_only = d.verdict == "hold" and all(r.startswith(WAITING) for r in d.reasons)
+    waiting_only = _only_waiting(summary)
     named = [h for h in (_hazard(n) for n in d.hazards) if h is not None]
     if d.verdict == "pass" or waiting_only:
         return {"general_caution": "", "cautions": [], "handling": "", "caution_title": ""}
@@ -179,7 +184,7 @@ def build_context(summary: CellSummary, *, code: str) -> dict[str, object]:
     the cell JSON published with it (report/verification.py)."""
     s, d = summary, summary.decision
     word = VERDICT_WORDS[d.verdict]
-    waiting = d.verdict == "hold" and all(r.startswith(WAITING) for r in d.reasons)
+    waiting = _only_waiting(summary)
     headline = WAITING_HEADLINE if waiting else HEADLINES[d.verdict]
     nominal = (
         f" (nominal {significant(s.nominal_capacity_ah, 4)} Ah)"

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import datetime
 import json
-import math
 from typing import Any
 
 from pipeline.model import FAMILIES, STAGES
@@ -25,18 +24,13 @@ from pipeline.report.cellsummary import (
     StageEntry,
     standing_why,
 )
+from pipeline.report.result import json_number
 
 SCHEMA_VERSION = 1
 VERDICTS = ("pass", "fail", "hold")
 CAUSES = ("record", "readings", "lot closed", "rules", "review")
 SCREEN_OUTCOMES = ("outlier", "not held", "not applied")
 OUTCOMES = ("in_window", "out_of_window", "not_judged", "skipped")
-
-
-def _num(value: float | None) -> float | None:
-    if value is None or not math.isfinite(value):
-        return None
-    return float(value)
 
 
 def _time(moment: datetime.datetime) -> str:
@@ -66,7 +60,7 @@ def _record(r: StageEntry) -> dict[str, Any]:
         "hazards": list(r.hazards),
         "analysed_at": _time(r.analysed_at),
         "rule_set": r.rule_set,
-        "metrics": {name: _num(value) for name, value in r.metrics},
+        "metrics": {name: json_number(value) for name, value in r.metrics},
         "result_file": r.json_name,
         "certificate_file": r.certificate_name,
     }
@@ -76,9 +70,9 @@ def _check(c: CheckEntry) -> dict[str, Any]:
     return {
         "rule_id": c.rule_id,
         "metric": c.metric,
-        "value": _num(c.value),
-        "low": _num(c.low),
-        "high": _num(c.high),
+        "value": json_number(c.value),
+        "low": json_number(c.low),
+        "high": json_number(c.high),
         "severity": c.severity,
         "outcome": c.outcome,
     }
@@ -90,15 +84,15 @@ def _aging(a: AgingEntry | None) -> dict[str, Any] | None:
     return {
         "verdict": a.verdict,
         "decision": a.decision,
-        "k_value_mV_per_day": _num(a.k_value_mV_per_day),
-        "days": _num(a.days),
+        "k_value_mV_per_day": json_number(a.k_value_mV_per_day),
+        "days": json_number(a.days),
         "note": a.k_note,
         "readings": [
             {
                 "at": _time(r.at),
                 "ocv_V": r.ocv_v,
-                "acir_mOhm": _num(r.acir_mohm),
-                "temperature_C": _num(r.temperature_c),
+                "acir_mOhm": json_number(r.acir_mohm),
+                "temperature_C": json_number(r.temperature_c),
                 "input": {"name": r.file, "sha256": r.sha256},
             }
             for r in a.readings
@@ -113,7 +107,7 @@ def _screen(s: ScreenEntry) -> dict[str, Any]:
         "metric": s.metric,
         "k": s.k,
         "sides": s.sides,
-        "value": _num(s.value),
+        "value": json_number(s.value),
         "outcome": s.outcome,
         "detail": s.detail,
     }
@@ -143,7 +137,7 @@ def to_document(summary: CellSummary) -> dict[str, Any]:
             "cell_id": s.cell_id,
             "lot": s.lot,
             "cell_type": s.cell_type,
-            "nominal_capacity_Ah": _num(s.nominal_capacity_ah),
+            "nominal_capacity_Ah": json_number(s.nominal_capacity_ah),
         },
         "rule_set": {"name": rs.name, "revision": rs.revision, "sha256": rs.sha256,
                      "source": rs.source, "family": rs.family},

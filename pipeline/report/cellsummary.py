@@ -13,7 +13,7 @@ from __future__ import annotations
 import datetime
 from dataclasses import dataclass
 
-from pipeline.model import RuleSetRef
+from pipeline.model import WAITING_FOR_STAGE, RuleSetRef
 
 # What a stage record shows of its metrics on the cell certificate: the values a quality
 # engineer reads first for each stage (common practice), in this order.
@@ -28,7 +28,6 @@ KEY_METRICS: dict[str, tuple[str, ...]] = {
     "any": ("max_temperature_C",),
 }
 OUTLIER = "outlier in lot: "
-WAITING = "waiting for stage "
 
 
 def key_metrics(stages: tuple[str, ...]) -> tuple[str, ...]:
@@ -215,8 +214,9 @@ def standing_why(summary: CellSummary) -> tuple[str, ...]:
             lines.append(f"aging readings: {reason}")
         elif reason.startswith(OUTLIER):
             lines.append(f"lot screen: {reason[len(OUTLIER):]}")
-        elif reason.startswith(WAITING):
-            lines.append(f"waiting: no record yet of stage {reason[len(WAITING):]}")
+        elif reason.startswith(WAITING_FOR_STAGE):
+            stage = reason[len(WAITING_FOR_STAGE):].strip()
+            lines.append(f"waiting: no record yet of stage {stage}")
         else:
             lines.append(reason)
     if not lines and d.verdict == "pass":

@@ -28,7 +28,8 @@ SCHEMA_VERSION = 1
 IDENTITY_KEYS = ("cell_id", "lot", "cell_type", "channel", "station", "program", "started_at")
 
 
-def _num(value: float | None) -> float | None:
+def json_number(value: float | None) -> float | None:
+    """A value for a JSON document: a float, or None (null) for a value not measured or not finite."""
     if value is None or not math.isfinite(value):
         return None
     return float(value)
@@ -37,15 +38,15 @@ def _num(value: float | None) -> float | None:
 def _cycle(c: CycleMetrics) -> dict[str, Any]:
     return {
         "cycle": c.index,
-        "charge_capacity_Ah": _num(c.charge_capacity_ah),
-        "discharge_capacity_Ah": _num(c.discharge_capacity_ah),
-        "coulombic_efficiency": _num(c.coulombic_efficiency),
-        "discharge_energy_Wh": _num(c.discharge_energy_wh),
-        "mean_discharge_voltage_V": _num(c.mean_discharge_voltage_v),
-        "max_charge_voltage_V": _num(c.max_charge_voltage_v),
-        "min_discharge_voltage_V": _num(c.min_discharge_voltage_v),
-        "cv_duration_s": _num(c.cv_duration_s),
-        "max_temperature_C": _num(c.max_temperature_c),
+        "charge_capacity_Ah": json_number(c.charge_capacity_ah),
+        "discharge_capacity_Ah": json_number(c.discharge_capacity_ah),
+        "coulombic_efficiency": json_number(c.coulombic_efficiency),
+        "discharge_energy_Wh": json_number(c.discharge_energy_wh),
+        "mean_discharge_voltage_V": json_number(c.mean_discharge_voltage_v),
+        "max_charge_voltage_V": json_number(c.max_charge_voltage_v),
+        "min_discharge_voltage_V": json_number(c.min_discharge_voltage_v),
+        "cv_duration_s": json_number(c.cv_duration_s),
+        "max_temperature_C": json_number(c.max_temperature_c),
     }
 
 
@@ -63,7 +64,7 @@ def _check(c: CheckResult) -> dict[str, Any]:
     return {
         "id": c.rule_id,
         "metric": c.metric,
-        "value": _num(c.value),
+        "value": json_number(c.value),
         "low": c.window.low,
         "high": c.window.high,
         "outcome": c.outcome.value,
@@ -123,7 +124,7 @@ def to_document(result: CellResult) -> dict[str, Any]:
         "hazards": [h.value for h in result.verdict.hazards],
         "reasons": list(result.verdict.reasons),
         "decision": decision_line(result.verdict, result.notes),
-        "metrics": {m.name: _num(result.metrics.values.get(m.name)) for m in METRICS},
+        "metrics": {m.name: json_number(result.metrics.values.get(m.name)) for m in METRICS},
         "cycles": [_cycle(c) for c in result.metrics.cycles],
         "plateaus": [_plateau(p) for p in result.metrics.plateaus],
         "ica_peaks_V": list(result.metrics.ica_peaks_v),

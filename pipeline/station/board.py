@@ -19,7 +19,8 @@ _FIELDS = 3
 TAKE_WAIT_S = 1.0
 
 
-def _alive(pid: int) -> bool:
+def process_exists(pid: int) -> bool:
+    """Whether a process ``pid`` exists (a zombie counts; one we may not signal exists)."""
     try:
         os.kill(pid, 0)
     except ProcessLookupError:
@@ -54,7 +55,7 @@ class Board:
         try:
             for row in range(self.rows):
                 owner = cells[_FIELDS * row]
-                if owner == 0 or not _alive(owner):
+                if owner == 0 or not process_exists(owner):
                     cells[_FIELDS * row + 1] = 0
                     cells[_FIELDS * row] = pid
                     return row

@@ -31,20 +31,13 @@ from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow
 from pipeline.mail.cell_letters import decision_letter, superseded_letter
 from pipeline.mail.letters import Letter
+from pipeline.model import WAITING_FOR_STAGE, only_waiting
 from pipeline.station.digests import cell_certificate_link
 from pipeline.station.reviewing import review_stands
 from pipeline.station.rules_in_force import RulesInForce
 from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
-
-WAITING = "waiting for stage"
-
-
-def only_waiting(reason: str) -> bool:
-    """True when a hold's every reason is a stage still to come."""
-    return all(part.startswith(WAITING) for part in reason.split("; ") if part)
-
 
 def mailed(decision: DecisionRow | None) -> bool:
     """Whether a decision was one people were told of: a fail, or a hold for a real reason."""
@@ -61,7 +54,7 @@ def stands(before: DecisionRow, decision: CellDecision) -> bool:
         return False
 
     def real(reason: str) -> list[str]:
-        return [part for part in reason.split("; ") if part and not part.startswith(WAITING)]
+        return [part for part in reason.split("; ") if part and not part.startswith(WAITING_FOR_STAGE)]
 
     return decision.verdict == "fail" or real(before.reason) == real(decision.reason)
 

@@ -220,7 +220,7 @@ class Claims:
                     return
                 raise  # not the file's fault: writing the copy failed
             if copy is not None:
-                self.tasks.inbox_of[str(copy.path)] = inbox.name
+                self.tasks.note_inbox(str(copy.path), inbox.name)
                 faults.point("after_claim")
                 self.register(copy.path, text, known=(copy.sha256, copy.size))
                 return
@@ -244,7 +244,7 @@ class Claims:
                           make_parents=False)
             except OSError as exc:  # the marker is not the input: it is set aside later
                 log.warning("%s: its marker stays in the inbox (%s)", text, describe(exc))
-        self.tasks.inbox_of[str(target)] = inbox.name
+        self.tasks.note_inbox(str(target), inbox.name)
         faults.point("after_claim")
         self.register(target, text)
 
@@ -278,7 +278,7 @@ class Claims:
         except FileNotFoundError:
             return
         except OSError as exc:  # the file's own fault: the station may not read it
-            inbox = self.tasks.inbox_of.get(str(path), "work")
+            inbox = self.tasks.inbox_for(str(path))
             self.aside.entry(self.ledger, path, inbox=inbox, kind="file",
                              reason=unreadable_reason(name, exc), now=self.clock())
             return

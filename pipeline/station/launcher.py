@@ -24,6 +24,8 @@ from dataclasses import dataclass
 from multiprocessing import forkserver
 from pathlib import Path
 
+from pipeline.station.board import process_exists
+
 PROC = Path("/proc")
 # Linux's task flag "getting shut down" (include/linux/sched.h): a killed process closes its
 # files before it becomes a zombie, so the pool can see its workers' links break while the
@@ -51,17 +53,6 @@ def _stat(pid: int) -> tuple[str, int, int] | None:
         return None
 
 
-def _signal_reaches(pid: int) -> bool:
-    """Without /proc: whether ``pid`` exists at all (a zombie counts as existing)."""
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
 @dataclass(frozen=True, slots=True)
 class Launcher:
     """One launcher process; its start time tells it from a later process given the same pid."""
@@ -73,7 +64,7 @@ class Launcher:
         """True while this very process runs: not ended, not a zombie, not exiting."""
         stat = _stat(self.pid)
         if stat is None:
-            return not PROC.joinpath("self").exists() and _signal_reaches(self.pid)
+            return not PROC.joinpath("self").exists() and process_exists(self.pid)
         state, flags, started = stat
         if self.started is not None and started != self.started:
             return False  # the pid was given to another process
@@ -85,7 +76,7 @@ class Launcher:
         it closes its files."""
         stat = _stat(self.pid)
         if stat is None:
-            return not PROC.joinpath("self").exists() and not _signal_reaches(self.pid)
+            return not PROC.joinpath("self").exists() and not process_exists(self.pid)
         return stat[0] in ("Z", "X", "x") or (self.started is not None and stat[2] != self.started)
 
     def await_end(self) -> None:

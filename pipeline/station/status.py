@@ -13,6 +13,7 @@ from pathlib import Path
 
 from pipeline.ledger.ledger import Ledger
 from pipeline.names import from_text, to_text
+from pipeline.station.board import process_exists
 from pipeline.station.handoff import is_temporary
 from pipeline.station.heartbeat import read_heartbeat
 from pipeline.station.mailtrouble import current as mail_trouble
@@ -25,22 +26,12 @@ from pipeline.station.watcher import list_entries
 STALE_FACTOR = 3  # a heartbeat older than this many intervals means the station is not running
 
 
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
 def health(settings: Settings, now: datetime.datetime) -> tuple[str, dict[str, object]]:
     """('running' | 'paused' | 'waiting to start' | 'stopped' | 'not responding' | 'never
     started', heartbeat contents); a station that waits to start shows its reason, never the
     heartbeat its predecessor left."""
     waiting = read_waiting(settings.root)
-    if waiting is not None and _pid_alive(waiting.pid):
+    if waiting is not None and process_exists(waiting.pid):
         return "waiting to start", {}
     try:
         beat = read_heartbeat(settings.heartbeat)
@@ -50,7 +41,7 @@ def health(settings: Settings, now: datetime.datetime) -> tuple[str, dict[str, o
         return "stopped", beat
     updated = datetime.datetime.fromisoformat(str(beat.get("updated_at")))
     age = (now - updated).total_seconds()
-    if age > STALE_FACTOR * settings.heartbeat_s + 5 or not _pid_alive(int(str(beat.get("pid", 0)))):
+    if age > STALE_FACTOR * settings.heartbeat_s + 5 or not process_exists(int(str(beat.get("pid", 0)))):
         return "not responding", beat
     return ("paused" if beat.get("state") == "paused" else "running"), beat
 
@@ -58,7 +49,7 @@ def health(settings: Settings, now: datetime.datetime) -> tuple[str, dict[str, o
 def waiting_lines(folder: Path) -> list[str]:
     """What a station waiting to start in ``folder`` says: why, since when, its process."""
     waiting = read_waiting(folder)
-    if waiting is None or not _pid_alive(waiting.pid):
+    if waiting is None or not process_exists(waiting.pid):
         return []
     first, *rest = waiting.reason.splitlines() or [""]
     return [f"  since {waiting.since.isoformat(timespec='seconds')} (pid {waiting.pid}): {first}",

@@ -57,6 +57,14 @@ class Tasks:
         self.queue: deque[tuple[InputRow, Task | None]] = deque()  # a task given: judge again
         self.inbox_of: dict[str, str] = {}  # work path -> inbox name, for its import profile
 
+    def note_inbox(self, work_path: str, inbox: str) -> None:
+        """Remember which inbox a file taken into work/ came from (its import profile)."""
+        self.inbox_of[work_path] = inbox
+
+    def inbox_for(self, work_path: str) -> str:
+        """The inbox a file in work/ came from; 'work' for one found there after a restart."""
+        return self.inbox_of.get(work_path, "work")
+
     def add(self, row: InputRow, task: Task | None = None) -> None:
         """Queue a claimed input (with ``task``: judge it again under that task's rules)."""
         self.queue.append((row, task))

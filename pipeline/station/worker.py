@@ -35,7 +35,6 @@ from pipeline.station.board import Board
 
 log = logging.getLogger("formgate.worker")
 
-READINGS_HEAD = 65536  # bytes of a file's head that tell an OCV reading file by its header
 
 
 @dataclass(frozen=True, slots=True)
@@ -220,7 +219,7 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None] | Read
         )
     if task.limits is not None:
         check_text(data, task.name, task.limits)
-    if looks_like_readings(data[:READINGS_HEAD]):
+    if looks_like_readings(data):
         return read_readings(data, task.name)
     profile = None
     if task.profile_text is not None:
