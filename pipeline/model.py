@@ -80,19 +80,73 @@ def frozen_mapping(values: Mapping[str, V] | None = None) -> FrozenMap[V]:
 
 @dataclass(frozen=True, slots=True)
 class SourceRef:
-    """Where something came from: a file name and, where it applies, a line and column (1-based)."""
+    """Where something came from: a file name and, where it applies, a line and column (1-based).
+
+    In a workbook ``sheet`` names the sheet and ``line`` is the row its program shows
+    (``unit`` "row", the column shown as its letter); in a Parquet file ``line`` is the
+    1-based row of the table.
+
+    >>> str(SourceRef("b.xlsx", 12, 3, sheet="Record_2", unit="row"))
+    "b.xlsx, sheet 'Record_2', row 12, column C"
+    """
 
     path: str
     line: int | None = None
     column: int | None = None
+    sheet: str | None = None
+    unit: str = "line"
 
     def __str__(self) -> str:
         text = self.path
+        if self.sheet is not None:
+            text += f", sheet '{self.sheet}'"
         if self.line is not None:
-            text += f", line {self.line}"
-            if self.column is not None:
-                text += f", column {self.column}"
+            text += f", {self.unit} {self.line}"
+        if self.column is not None and (self.line is not None or self.sheet is not None):
+            text += f", column {column_letters(self.column) if self.sheet else self.column}"
         return text
+
+
+def column_letters(column: int) -> str:
+    """A 1-based column number as a spreadsheet writes it: 1 -> A, 27 -> AA.
+
+    >>> column_letters(1), column_letters(26), column_letters(27), column_letters(703)
+    ('A', 'Z', 'AA', 'AAA')
+    """
+    letters = ""
+    while column > 0:
+        column, rest = divmod(column - 1, 26)
+        letters = chr(ord("A") + rest) + letters
+    return letters
+
+
+@dataclass(frozen=True, slots=True)
+class RowPlaces:
+    """Where each data row of a record stands in its file, when that is not one line each.
+
+    ``spans`` holds, for each stretch of rows that sit together (one sheet of a workbook, or
+    the whole of a Parquet table), the index of its first record row, the sheet's name (None
+    outside workbooks) and the row number its first record row has there.
+
+    >>> places = RowPlaces("b.xlsx", ((0, "Record", 3), (100, "Record_2", 2)))
+    >>> str(places.at(101, 2)), places.label(5)
+    ("b.xlsx, sheet 'Record_2', row 3, column B", "row 8 of sheet 'Record'")
+    """
+
+    path: str
+    spans: tuple[tuple[int, str | None, int], ...]
+
+    def at(self, row: int, column: int | None = None) -> SourceRef:
+        first, sheet, number = self.spans[0]
+        for span in self.spans:
+            if span[0] > row:
+                break
+            first, sheet, number = span
+        return SourceRef(self.path, number + row - first, column, sheet=sheet, unit="row")
+
+    def label(self, row: int) -> str:
+        where = self.at(row)
+        return f"row {where.line}" + (f" of sheet '{where.sheet}'" if where.sheet else "")
 
 
 @dataclass(frozen=True, slots=True)
@@ -131,6 +185,8 @@ class Trace:
     cycle: IntArray | None = None
     first_data_line: int = 2
     notes: tuple[Note, ...] = ()
+    # where rows stand in a workbook or Parquet file; None for text, one line per row
+    places: RowPlaces | None = None
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
@@ -152,8 +208,31 @@ class Trace:
         return len(self.time_s)
 
     def line_of(self, row: int) -> int:
-        """1-based line number in the source file of data row ``row`` (0-based)."""
+        """1-based line number in the source file of data row ``row`` (0-based).
+
+        For a workbook or a Parquet file, the row's number where it stands (see ``where``).
+        """
+        if self.places is not None:
+            return self.places.at(row).line or 0
         return self.first_data_line + row
+
+    def where(self, row: int, column: int | None = None) -> SourceRef:
+        """Where data row ``row`` (0-based) stands in the source file, for messages."""
+        if self.places is not None:
+            return self.places.at(row, column)
+        return SourceRef(self.source, self.first_data_line + row, column)
+
+    def place(self, row: int) -> str:
+        """Data row ``row`` as a reader finds it: 'line 12', or 'row 12 of sheet ...'."""
+        if self.places is not None:
+            return self.places.label(row)
+        return f"line {self.line_of(row)}"
+
+    def span(self, first: int, last: int) -> str:
+        """Data rows ``first`` to ``last``: 'lines 5 to 9', or their rows in a workbook."""
+        if self.places is None:
+            return f"lines {self.line_of(first)} to {self.line_of(last)}"
+        return f"{self.place(first)} to {self.place(last)}"
 
     @property
     def cell_id(self) -> str:

@@ -450,7 +450,19 @@ def test_every_documented_key_is_accepted() -> None:
         ("units", "time"): '"h"',
         ("units", "voltage"): '"mV"',
         ("units", "current"): '"mA"',
-        ("units", "current_sign"): '"discharge positive"',
+        ("units", "current_sign"): '"from mode"',
+        ("units", "capacity"): '"mAh"',
+        ("units", "energy"): '"J"',
+        ("file", "format"): '"workbook"',
+        ("time", "stamps"): '"date-time"',
+        ("time", "date_format"): '"%d.%m.%Y %H:%M:%S"',
+        ("time", "zone"): '"Europe/Berlin"',
+        ("time", "zone_metadata"): '"clock zone"',
+        ("mode", "charge"): '["C", "CV"]',
+        ("mode", "discharge"): '["D"]',
+        ("mode", "rest"): '["R"]',
+        ("counters", "compare"): "false",
+        ("counters", "tolerance_percent"): "2.5",
         ("metadata", "*"): '"F-1"',
     }
     tables: dict[str, list[str]] = {}
@@ -468,7 +480,18 @@ def test_every_documented_key_is_accepted() -> None:
     assert (profile.delimiter, profile.decimal, profile.skip_lines) == ("\t", ",", 1)
     assert profile.columns["cycle"] == "col cycle"
     assert profile.metadata["fixture"] == "F-1"
-    assert profile.current_sign == "discharge positive"
+    assert profile.current_sign == "from mode"
+    assert profile.modes == {"C": "charge", "CV": "charge", "D": "discharge", "R": "rest"}
+    assert (profile.time_stamps, profile.zone, profile.zone_metadata) == (
+        "date-time", "Europe/Berlin", "clock zone"
+    )
+    assert (profile.file_format, profile.data_sheets, profile.metadata_sheet) == (
+        "workbook", "col data_sheets", "col metadata_sheet"
+    )
+    assert (profile.compare_counters, profile.counter_tolerance_percent) == (False, 2.5)
+    assert (profile.columns["capacity"], profile.capacity_unit, profile.energy_unit) == (
+        "col capacity", "mAh", "J"
+    )
 
 
 def test_profile_key_table_documents_every_key() -> None:
@@ -476,7 +499,7 @@ def test_profile_key_table_documents_every_key() -> None:
     assert table.count("\n") == len(PROFILE_KEYS) + 2
     for key in PROFILE_KEYS:
         assert (f"`{key.key}`" if key.key != "*" else "any metadata name") in table
-    assert "| [units] | `current_sign` | charge positive, discharge positive |" in table
+    assert "| [units] | `current_sign` | charge positive, discharge positive, from mode |" in table
 
 
 # ---------------------------------------------------------------- properties

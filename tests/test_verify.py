@@ -26,6 +26,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from pypdf import PdfReader
 
+from pipeline.audit.verify import Verifier, codes_in_pdf
 from pipeline.cli.main import main
 from pipeline.ledger.ledger import Ledger
 from pipeline.report.certificate import build_context
@@ -34,7 +35,6 @@ from pipeline.report.verification import parse_code, spaced, verification_code
 from pipeline.rulebook.book import load_rules_dir
 from pipeline.station.lots import close_and_report
 from pipeline.station.settings import Settings, read_settings
-from pipeline.audit.verify import Verifier, codes_in_pdf
 from tests.golden import cases
 from tests.station_kit import (
     REPO,

@@ -36,10 +36,10 @@ def show(found: Verification) -> None:
 
 def cmd_verify(args: argparse.Namespace) -> int:
     """Verify files, verification codes and, with --ledger, the whole ledger."""
+    from pipeline.audit.verify import Verifier
     from pipeline.ledger.ledger import Ledger
     from pipeline.report.verification import parse_code
     from pipeline.station.settings import read_settings
-    from pipeline.audit.verify import Verifier
 
     if not args.items and not args.ledger:
         raise FormgateError(

@@ -143,7 +143,7 @@ def dcir_mohm(
     t0 = float(trace.time_s[rest.stop - 1])
     t = trace.time_s[discharge.start : discharge.stop]
     v = trace.voltage_v[discharge.start : discharge.stop]
-    where = SourceRef(trace.source, trace.line_of(discharge.start))
+    where = trace.where(discharge.start)
     if t[-1] < t0 + pulse_s:
         return None, Note(
             "dcir_pulse_too_short",
@@ -194,7 +194,7 @@ def rest_view(trace: Trace, rest: Step, relax_s: float) -> tuple[RestView | None
             "final_rest_too_short",
             f"the final rest lasts {t[-1] - t[0]:.0f} s; after the {relax_s:g} s relaxation "
             f"time too little is left to measure the voltage drift",
-            SourceRef(trace.source, trace.line_of(rest.start)),
+            trace.where(rest.start),
             ("rest_voltage_drift_mV_per_h",),
         )
     t_fit = t[keep] - t[keep][0]
@@ -293,7 +293,7 @@ def _first_cycle(
                 "first_cycle_unfinished",
                 "the record ends before the first cycle's discharge was finished, so the "
                 "initial coulombic efficiency is not measured",
-                SourceRef(trace.source, trace.line_of(len(trace) - 1)),
+                trace.where(len(trace) - 1),
                 FIRST_CYCLE_METRICS,
             )
         ]
@@ -384,7 +384,7 @@ def measure(
             note: Note | None = Note(
                 "no_rest_before_grading",
                 "the grading discharge does not start from a rest, so DCIR is not measured",
-                SourceRef(trace.source, trace.line_of(steps[grading.discharge_steps[0]].start)),
+                trace.where(steps[grading.discharge_steps[0]].start),
                 ("dcir_mOhm",),
             )
         else:

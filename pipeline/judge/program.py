@@ -111,7 +111,7 @@ def _incomplete(
     return Note(
         INCOMPLETE,
         f"program incomplete: record ends in {describe_end(trace, segmentation)}, {missing}",
-        SourceRef(trace.source, trace.line_of(len(trace) - 1)),
+        trace.where(len(trace) - 1),
         blocks,
     )
 
@@ -213,7 +213,7 @@ def _by_step(
             Note(
                 MISMATCH,
                 f"program step {number}, which the rule set names as the grading discharge, {what}",
-                SourceRef(trace.source, trace.line_of(step.start)),
+                trace.where(step.start),
                 GRADING_METRICS,
             ),
         )
@@ -238,7 +238,7 @@ def final_rest(
     final rest's length, since the record was then cut short.
     """
     last = segmentation.steps[-1]
-    where = SourceRef(trace.source, trace.line_of(len(trace) - 1))
+    where = trace.where(len(trace) - 1)
     blocks = ("rest_voltage_drift_mV_per_h",)
     if last.kind is not StepKind.REST or last.index < grading.discharge_steps[-1]:
         if program.final_rest_s is None:

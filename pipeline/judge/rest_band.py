@@ -168,8 +168,8 @@ def program_step_kinds(
                     "step_column_disagrees",
                     f"program step {int(trace.step[a])} is {_WORD[kind]} by its median current "
                     f"but carries {charge_as / 3600.0:.3g} Ah of {what} in {rows} of its "
-                    f"{b - a} rows (first on line {trace.line_of(first)})",
-                    SourceRef(trace.source, trace.line_of(first)),
+                    f"{b - a} rows (first on {trace.place(first)})",
+                    trace.where(first),
                 )
             )
         blocks.append((a, b, kind))

@@ -29,7 +29,6 @@ from pipeline.model import (
     FloatArray,
     Note,
     Segmentation,
-    SourceRef,
     Step,
     StepKind,
     StepMode,
@@ -226,7 +225,7 @@ def _check_cycle_column(trace: Trace, cycles: list[Cycle], steps: list[Step]) ->
                     f"the file's cycle column changes ({sorted(numbers)}) inside the discharge "
                     f"of cycle {cycle.index} as formgate counts it (a charge followed by a "
                     f"discharge); formgate's count is used",
-                    SourceRef(trace.source, trace.line_of(first.start)),
+                    trace.where(first.start),
                 )
             )
     return notes

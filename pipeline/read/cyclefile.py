@@ -18,21 +18,17 @@ from __future__ import annotations
 from collections.abc import Mapping
 
 from pipeline.model import CYCLE_FILE_STAGES, WHOLE_PROGRAM, Trace
+from pipeline.read.convert import to_trace
 from pipeline.read.cyclehead import (
     MAX_UNCOMPRESSED_BYTES,
     collect_metadata,
     decompress,
     split_head,
 )
-from pipeline.read.cyclenumbers import data_end, find_columns, numbers, parse_rows, whole_numbers
-from pipeline.read.profile import (
-    CURRENT_SIGNS,
-    CURRENT_UNITS,
-    DEFAULT_PROFILE,
-    TIME_UNITS,
-    VOLTAGE_UNITS,
-    Profile,
-)
+from pipeline.read.cyclenumbers import data_end, find_columns, parse_rows
+from pipeline.read.profile import DEFAULT_PROFILE, Profile
+from pipeline.read.sniff import binary_kind, not_text_error
+from pipeline.read.table import RawTable
 
 
 def read_cycle_file(
@@ -45,42 +41,40 @@ def read_cycle_file(
     """Read one cycle file's bytes into a Trace in v1 units (s, V, A; positive = charge).
 
     ``name`` is the file's name: it appears in messages, marks gzip when the bytes are
-    too short to tell, and feeds the profile's file_name_pattern. Raises InputError.
+    too short to tell, and feeds the profile's file_name_pattern. The profile's ``[file]
+    format`` says whether the bytes are text, a workbook or a Parquet file. Raises InputError.
     """
+    return to_trace(read_table(data, name, profile, max_uncompressed_bytes), profile or DEFAULT_PROFILE)
+
+
+def read_table(
+    data: bytes,
+    name: str,
+    profile: Profile | None = None,
+    max_uncompressed_bytes: int = MAX_UNCOMPRESSED_BYTES,
+) -> RawTable:
+    """The file's raw columns, read by the reader of its layout (before units and signs)."""
     profile = profile or DEFAULT_PROFILE
+    kind = binary_kind(data)
+    if profile.file_format == "workbook":
+        from pipeline.read.workbook import read_workbook_table
+
+        return read_workbook_table(data, name, profile, max_uncompressed_bytes)
+    if profile.file_format == "parquet":
+        from pipeline.read.parquet import read_parquet_table
+
+        return read_parquet_table(data, name, profile, max_uncompressed_bytes)
+    if kind is not None:
+        raise not_text_error(kind, name, profile)
     raw = decompress(data, name, max_uncompressed_bytes)
+    if raw is not data and binary_kind(raw) is not None:
+        raise not_text_error(binary_kind(raw) or "", name, profile)
     head, data_bytes, start = split_head(raw, name, profile)
     metadata = collect_metadata(head, name, profile)
     columns = find_columns(head, name, profile)
     end = data_end(data_bytes, start, head, name, profile)
     frame = parse_rows(data_bytes, start, end, head, name, profile, keep=columns.values())
-    first = head.header_line + 1
-    factors = {
-        "time": TIME_UNITS[profile.time_unit],
-        "voltage": VOLTAGE_UNITS[profile.voltage_unit],
-        "current": CURRENT_UNITS[profile.current_unit] * CURRENT_SIGNS[profile.current_sign],
-    }
-    values = {
-        q: numbers(frame, i, head, name, profile, factors.get(q, 1.0))
-        for q, i in columns.items()
-        if q not in ("step", "cycle")
-    }
-    whole = {
-        q: whole_numbers(frame, i, head, name, profile, q)
-        for q, i in columns.items()
-        if q in ("step", "cycle")
-    }
-    return Trace(
-        source=name,
-        metadata=metadata,
-        time_s=values["time"],
-        voltage_v=values["voltage"],
-        current_a=values["current"],
-        temperature_c=values.get("temperature"),
-        step=whole.get("step"),
-        cycle=whole.get("cycle"),
-        first_data_line=first,
-    )
+    return RawTable(name, head, metadata, columns, frame)
 
 
 def file_stages(metadata: Mapping[str, str]) -> tuple[str, ...]:

@@ -45,6 +45,16 @@ class Head:
     header_line: int = 0
     fields: list[str] = field(default_factory=list)
     data_start: int = 0
+    # Where the head's numbers point: "line" (text), "row" (a sheet of a workbook, named by
+    # ``sheet``) or "" (no place to point at, e.g. a Parquet file's key/value metadata).
+    unit: str = "line"
+    sheet: str | None = None
+
+    def ref(self, name: str, line: int | None, column: int | None = None) -> SourceRef:
+        """Where ``line`` of the head stands in file ``name``, for messages."""
+        if not self.unit or line is None:
+            return SourceRef(name, sheet=self.sheet)
+        return SourceRef(name, line, column, sheet=self.sheet, unit=self.unit)
 
 
 def split_head(raw: bytes, name: str, profile: Profile) -> tuple[Head, bytes, int]:
@@ -253,7 +263,7 @@ def collect_metadata(head: Head, name: str, profile: Profile) -> dict[str, str]:
                 raise InputError(
                     f"metadata {key} is '{metadata[key]}' in the file but '{value.strip()}' "
                     "in the file name",
-                    SourceRef(name, head.metadata_lines[key]),
+                    head.ref(name, head.metadata_lines[key]),
                     "Correct whichever is wrong before the cell is judged.",
                 )
             metadata[key] = value.strip()
@@ -264,14 +274,14 @@ def collect_metadata(head: Head, name: str, profile: Profile) -> dict[str, str]:
         if key in head.metadata_lines and not metadata[key]:
             raise InputError(
                 f"metadata {key} is empty",
-                SourceRef(name, head.metadata_lines[key]),
+                head.ref(name, head.metadata_lines[key]),
                 f"Give it a value: '# {key}: ...'.",
             )
         if not metadata.get(key):
             found_keys = ", ".join(metadata) or "none"
             raise InputError(
                 f"no {key} in the metadata (found: {found_keys})",
-                SourceRef(name, head.block_line),
+                head.ref(name, head.block_line),
                 f"Add a line '{profile.metadata_prefix} {key}: ...' before the header, or "
                 + (
                     "set it under [metadata] in an import profile."
@@ -289,7 +299,7 @@ def _check_stage(metadata: dict[str, str], head: Head, name: str, profile: Profi
         return
     allowed = ", ".join(CYCLE_FILE_STAGES)
     if "stage" in head.metadata_lines:
-        where, origin = SourceRef(name, head.metadata_lines["stage"]), "the file"
+        where, origin = head.ref(name, head.metadata_lines["stage"]), "the file"
     elif "stage" in profile.metadata and profile.metadata["stage"] == stage:
         where, origin = SourceRef(name), f"the import profile {profile.name}"
     else:

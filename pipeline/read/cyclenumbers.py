@@ -26,9 +26,12 @@ from pipeline.errors import InputError
 from pipeline.model import FloatArray, IntArray, SourceRef
 from pipeline.read.cyclehead import CUT_SHORT_HINT, Head, split_fields
 from pipeline.read.profile import Profile
+from pipeline.read.table import RawTable
 
 _Array = TypeVar("_Array", FloatArray, IntArray)
 REQUIRED_COLUMNS = ("time", "voltage", "current")
+# Beyond v1 a column is read only when the profile names it, so it must then be there.
+NEEDED_WHEN_NAMED = ("mode", "capacity", "energy")
 _DELIMITER_NAMES = {",": "comma", ";": "semicolon", "\t": "tab"}
 _ROW_HINT = "Each row needs one field per header column; leave a missing value empty."
 # Fields pandas tokenizes and converts at once (its own low-memory reading takes about as
@@ -37,23 +40,32 @@ CHUNK_FIELDS = 2**20
 
 
 def find_columns(head: Head, name: str, profile: Profile) -> dict[str, int]:
+    """Each quantity the profile reads -> its 0-based column number in the header."""
     columns: dict[str, int] = {}
     for quantity, header in profile.columns.items():
         places = [i for i, f in enumerate(head.fields) if f == header]
         if len(places) > 1:
             raise InputError(
                 f"the column {header} appears twice (columns {places[0] + 1} and {places[1] + 1})",
-                SourceRef(name, head.header_line, places[1] + 1),
+                head.ref(name, head.header_line, places[1] + 1),
                 "Rename or remove one of them.",
             )
         if places:
             columns[quantity] = places[0]
-        elif quantity in REQUIRED_COLUMNS:
+        elif quantity in REQUIRED_COLUMNS or quantity in NEEDED_WHEN_NAMED:
             raise InputError(
                 f"no column for {quantity} (found: {', '.join(head.fields)})",
-                SourceRef(name, head.header_line),
+                head.ref(name, head.header_line),
                 _missing_column_hint(head.fields, header, profile),
             )
+    if profile.time_stamps == "step elapsed" and "step" not in columns:
+        raise InputError(
+            f"no step column ({profile.columns['step']}), which time since the step began needs "
+            f"(found: {', '.join(head.fields)})",
+            head.ref(name, head.header_line),
+            "Name the step column under [columns] step in the import profile "
+            f"{profile.name}.",
+        )
     return columns
 
 
@@ -245,12 +257,10 @@ def _number_pattern(decimal: str) -> re.Pattern[str]:
     return re.compile(rf"[ \t]*[+-]?(?:[0-9]+(?:{d}[0-9]*)?|{d}[0-9]+)(?:[eE][+-]?[0-9]+)?[ \t]*")
 
 
-def numbers(
-    frame: pd.DataFrame, index: int, head: Head, name: str, profile: Profile, factor: float
-) -> FloatArray:
+def numbers(table: RawTable, index: int, profile: Profile, factor: float) -> FloatArray:
     """Column ``index`` as float64 times ``factor`` (file unit -> v1 unit); empty fields NaN."""
-    series = frame[index]
-    header = head.fields[index]
+    series = table.frame[index]
+    header = table.header(index)
     if series.dtype.kind in "iuf":
         values: FloatArray = series.to_numpy(dtype=np.float64)
     else:  # pandas kept text: some field is not a number under this profile
@@ -268,7 +278,7 @@ def numbers(
                 continue
             text = str(cell)
             if isinstance(cell, bool) or not number.fullmatch(text):
-                raise _not_a_number(text, row, index, head, name, profile)
+                raise _not_a_number(text, row, index, table, profile)
             # looks like a number yet pandas kept it as text (e.g. a huge integer)
             parsed.append(float(text.replace(profile.decimal, ".")))
         values = np.array(parsed, dtype=np.float64)
@@ -284,14 +294,14 @@ def numbers(
         what = "not a finite number" if np.isinf(values[row]) else "too large to convert"
         raise InputError(
             f"{header} is {values[row]:g}, {what}",
-            SourceRef(name, head.header_line + 1 + row, index + 1),
+            table.at(row, index),
             "Fix the value, or leave it empty if it is missing.",
         )
     return scaled
 
 
 def _not_a_number(
-    cell: str, row: int, index: int, head: Head, name: str, profile: Profile
+    cell: str, row: int, index: int, table: RawTable, profile: Profile
 ) -> InputError:
     shown = cell if len(cell) <= 40 else cell[:37] + "..."
     shown = shown if shown.isprintable() else shown.encode("unicode_escape").decode("ascii")
@@ -306,8 +316,8 @@ def _not_a_number(
             else f" (import profile {profile.name})."
         )
     return InputError(
-        f"{head.fields[index]} is '{shown}', not a number",
-        SourceRef(name, head.header_line + 1 + row, index + 1),
+        f"{table.header(index)} is '{shown}', not a number",
+        table.at(row, index),
         hint,
     )
 
@@ -323,30 +333,26 @@ def _frozen(values: _Array) -> _Array:
     return values
 
 
-def whole_numbers(
-    frame: pd.DataFrame, index: int, head: Head, name: str, profile: Profile, quantity: str
-) -> IntArray:
+def whole_numbers(table: RawTable, index: int, profile: Profile, quantity: str) -> IntArray:
     """Column ``index`` as int64: step or cycle numbers, which must be whole numbers."""
-    series = frame[index]
+    series = table.frame[index]
     if series.dtype == np.int64:  # pandas read every field as a whole number
         ints: IntArray = series.to_numpy()
         if len(ints) and ints.min() >= -(2**53) and ints.max() <= 2**53:
             return _frozen(ints)
-    values = numbers(frame, index, head, name, profile, 1.0)
-    _refuse_non_integers(values, index, head, name, quantity)
+    values = numbers(table, index, profile, 1.0)
+    _refuse_non_integers(values, index, table, quantity)
     return _frozen(values.astype(np.int64))
 
 
-def _refuse_non_integers(
-    values: FloatArray, index: int, head: Head, name: str, quantity: str
-) -> None:
+def _refuse_non_integers(values: FloatArray, index: int, table: RawTable, quantity: str) -> None:
     too_big = np.abs(values) > 2**53  # beyond this a float no longer holds every whole number
     bad = np.flatnonzero(~np.isfinite(values) | too_big | (values != np.round(values)))
     if bad.size:
         row = int(bad[0])
         found = "empty" if np.isnan(values[row]) else f"{values[row]:g}"
         raise InputError(
-            f"{head.fields[index]} is {found}, not a whole {quantity} number",
-            SourceRef(name, head.header_line + 1 + row, index + 1),
+            f"{table.header(index)} is {found}, not a whole {quantity} number",
+            table.at(row, index),
             f"Fix the value, or remove the {quantity} column and let formgate find the steps.",
         )

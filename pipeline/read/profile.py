@@ -16,9 +16,11 @@ against that table and the documentation is generated from it.
 
 from __future__ import annotations
 
+import datetime as dt
 import difflib
 import re
 import tomllib
+import zoneinfo
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
@@ -27,6 +29,10 @@ from pipeline.errors import ProfileError
 from pipeline.model import SourceRef, frozen_mapping
 
 QUANTITIES: tuple[str, ...] = ("time", "voltage", "current", "temperature", "step", "cycle")
+# Columns a layout may have beyond cycle file v1, read only when the profile names them:
+# the row's mode (charge, discharge or rest) when the current is written as a magnitude, and
+# the cycler's own charge and energy counters (cross-checked against formgate's integral).
+EXTRA_QUANTITIES: tuple[str, ...] = ("mode", "capacity", "energy")
 V1_COLUMNS: Mapping[str, str] = frozen_mapping(
     {
         "time": "time_s",
@@ -40,17 +46,25 @@ V1_COLUMNS: Mapping[str, str] = frozen_mapping(
 REQUIRED_METADATA: tuple[str, ...] = ("cell_id", "lot", "cell_type")
 # ``stage``: the stage of the cell's making the file holds (model.CYCLE_FILE_STAGES); left
 # out, the file holds the whole program.
-V1_METADATA: tuple[str, ...] = (
-    *REQUIRED_METADATA, "channel", "station", "program", "started_at", "stage"
-)
+V1_METADATA: tuple[str, ...] = (*REQUIRED_METADATA, "channel", "station", "program", "started_at", "stage")
 
 # Factors that turn file units into the v1 units (s, V, A).
 TIME_UNITS: Mapping[str, float] = frozen_mapping({"s": 1.0, "ms": 1e-3, "min": 60.0, "h": 3600.0})
 VOLTAGE_UNITS: Mapping[str, float] = frozen_mapping({"V": 1.0, "mV": 1e-3})
 CURRENT_UNITS: Mapping[str, float] = frozen_mapping({"A": 1.0, "mA": 1e-3})
-CURRENT_SIGNS: Mapping[str, float] = frozen_mapping(
-    {"charge positive": 1.0, "discharge positive": -1.0}
-)
+CURRENT_SIGNS: Mapping[str, float] = frozen_mapping({"charge positive": 1.0, "discharge positive": -1.0})
+FROM_MODE = "from mode"
+SIGN_CHOICES: tuple[str, ...] = (*CURRENT_SIGNS, FROM_MODE)
+# Factors that turn the cycler's counters into A·s and W·s.
+CAPACITY_UNITS: Mapping[str, float] = frozen_mapping({"Ah": 3600.0, "mAh": 3.6, "As": 1.0})
+ENERGY_UNITS: Mapping[str, float] = frozen_mapping({"Wh": 3600.0, "mWh": 3.6, "J": 1.0})
+MODES: tuple[str, ...] = ("charge", "discharge", "rest")
+FORMATS: tuple[str, ...] = ("text", "workbook", "parquet")
+# How the time column counts: seconds (or the [units] time) since the record began, a
+# date and time of day, or time since the current step began (restarting with each step).
+TIME_KINDS: tuple[str, ...] = ("elapsed", "date-time", "step elapsed")
+ISO_8601 = "ISO 8601"
+DEFAULT_COUNTER_TOLERANCE_PERCENT = 1.0
 DELIMITERS: Mapping[str, str] = frozen_mapping({"comma": ",", "semicolon": ";", "tab": "\t"})
 DECIMALS: Mapping[str, str] = frozen_mapping({"point": ".", "comma": ","})
 ENCODINGS: tuple[str, ...] = ("utf-8", "utf-8-sig", "latin-1")
@@ -78,7 +92,22 @@ PROFILE_KEYS: tuple[ProfileKey, ...] = (
         "utf-8",
         "text encoding; utf-8 also accepts a leading byte-order mark, utf-8-sig is the same",
     ),
-    ProfileKey("file", "skip_lines", "whole number, 0 or more", "0", "lines ignored at the top"),
+    ProfileKey(
+        "file",
+        "format",
+        ", ".join(FORMATS),
+        "text",
+        "text: delimited text (optionally gzip-compressed); workbook: an .xlsx, .xlsm, .xls or "
+        ".ods file (see [workbook]); parquet: an Apache Parquet file, its metadata in the "
+        "file's key/value metadata",
+    ),
+    ProfileKey(
+        "file",
+        "skip_lines",
+        "whole number, 0 or more",
+        "0",
+        "lines ignored at the top (rows of the first data sheet, for a workbook)",
+    ),
     ProfileKey(
         "file",
         "metadata_prefix",
@@ -105,15 +134,133 @@ PROFILE_KEYS: tuple[ProfileKey, ...] = (
         )
         for quantity in QUANTITIES
     ),
+    ProfileKey(
+        "columns",
+        "mode",
+        "header text",
+        "none",
+        "the header of a column that says, on each row, whether the cell charges, discharges "
+        'or rests (read with current_sign = "from mode" and the [mode] table)',
+    ),
+    ProfileKey(
+        "columns",
+        "capacity",
+        "header text",
+        "none",
+        "the header of the cycler's own charge counter, cross-checked against formgate's "
+        "integral of the current (see [counters])",
+    ),
+    ProfileKey(
+        "columns",
+        "energy",
+        "header text",
+        "none",
+        "the header of the cycler's own energy counter, cross-checked against formgate's "
+        "integral of voltage times current (see [counters])",
+    ),
     ProfileKey("units", "time", ", ".join(TIME_UNITS), "s", "unit of the time column"),
     ProfileKey("units", "voltage", ", ".join(VOLTAGE_UNITS), "V", "unit of the voltage column"),
     ProfileKey("units", "current", ", ".join(CURRENT_UNITS), "A", "unit of the current column"),
     ProfileKey(
         "units",
         "current_sign",
-        ", ".join(CURRENT_SIGNS),
+        ", ".join(SIGN_CHOICES),
         "charge positive",
-        "which direction of current the file writes as positive",
+        "which direction of current the file writes as positive; from mode: the current is a "
+        "magnitude and the [columns] mode column gives its direction (rest rows keep their "
+        "value as written)",
+    ),
+    ProfileKey("units", "capacity", ", ".join(CAPACITY_UNITS), "Ah", "unit of the capacity counter"),
+    ProfileKey("units", "energy", ", ".join(ENERGY_UNITS), "Wh", "unit of the energy counter"),
+    ProfileKey(
+        "time",
+        "stamps",
+        ", ".join(TIME_KINDS),
+        "elapsed",
+        "elapsed: time since the record began, in [units] time; date-time: a date and time of "
+        "day on each row (see date_format and zone); step elapsed: time since the current step "
+        "began, restarting with each step (needs [columns] step), in [units] time",
+    ),
+    ProfileKey(
+        "time",
+        "date_format",
+        f"{ISO_8601}, or a strftime pattern",
+        ISO_8601,
+        "how a date-time stamp is written: ISO 8601 (2024-06-02 08:26:00.00, a T or a space "
+        "between date and time, an offset such as +02:00 or Z allowed) or a pattern such as "
+        '"%d.%m.%Y %H:%M:%S" (%f for fractions of a second, %z for an offset)',
+    ),
+    ProfileKey(
+        "time",
+        "zone",
+        'UTC, a zone name such as "Europe/Berlin", or an offset such as "+02:00"',
+        "none",
+        "the zone of the cycler's clock, for stamps written without an offset; a zone name "
+        "follows its daylight-saving changes (the repeated hour in autumn is told apart by "
+        "the order of the rows)",
+    ),
+    ProfileKey(
+        "time",
+        "zone_metadata",
+        "a metadata key",
+        "none",
+        "the metadata entry that gives the zone (as zone does), for a cycler that writes its "
+        "clock's zone into each file; wins over zone",
+    ),
+    ProfileKey(
+        "mode",
+        "charge",
+        "list of texts",
+        "none",
+        'the values of the mode column that mean charging, e.g. ["C", "CCCV"]',
+    ),
+    ProfileKey(
+        "mode",
+        "discharge",
+        "list of texts",
+        "none",
+        'the values of the mode column that mean discharging, e.g. ["D"]',
+    ),
+    ProfileKey(
+        "mode",
+        "rest",
+        "list of texts",
+        "none",
+        'the values of the mode column that mean resting, e.g. ["R", "OCV"]; a value in no '
+        "list is an error naming its line",
+    ),
+    ProfileKey(
+        "counters",
+        "compare",
+        "true, false",
+        "true",
+        "compare the cycler's capacity and energy counters with formgate's integrals, step "
+        "by step; false reads the file without looking at them",
+    ),
+    ProfileKey(
+        "counters",
+        "tolerance_percent",
+        "number above 0",
+        f"{DEFAULT_COUNTER_TOLERANCE_PERCENT:g}",
+        "how far (in % of the larger) the counters' total may differ from formgate's integral "
+        "before the certificate carries a data-quality note",
+    ),
+    ProfileKey(
+        "workbook",
+        "data_sheets",
+        "a sheet name, or a pattern with * and ?",
+        "the first sheet",
+        "the sheets that hold the rows, read in the workbook's order and joined (a cycler that "
+        "writes more rows than one sheet holds continues on the next); each repeats the header "
+        "row",
+    ),
+    ProfileKey(
+        "workbook",
+        "metadata_sheet",
+        "a sheet name",
+        "none",
+        "a sheet of metadata: a key in its first column, the value in the second; without it "
+        "the rows above the first data sheet's header hold metadata in the same way",
     ),
     ProfileKey(
         "metadata",
@@ -168,10 +315,29 @@ class Profile:
     current_unit: str = "A"
     current_sign: str = "charge positive"
     metadata: Mapping[str, str] = field(default_factory=frozen_mapping)
+    file_format: str = "text"
+    time_stamps: str = "elapsed"
+    date_format: str = ISO_8601
+    zone: str | None = None
+    zone_metadata: str | None = None
+    # mode column value -> "charge" | "discharge" | "rest"
+    modes: Mapping[str, str] = field(default_factory=frozen_mapping)
+    capacity_unit: str = "Ah"
+    energy_unit: str = "Wh"
+    compare_counters: bool = True
+    counter_tolerance_percent: float = DEFAULT_COUNTER_TOLERANCE_PERCENT
+    data_sheets: str | None = None
+    metadata_sheet: str | None = None
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "columns", frozen_mapping({**V1_COLUMNS, **self.columns}))
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))
+        object.__setattr__(self, "modes", frozen_mapping(self.modes))
+
+    @property
+    def signed_by_mode(self) -> bool:
+        """True when the current column is a magnitude and the mode column gives its sign."""
+        return self.current_sign == FROM_MODE
 
     @property
     def is_v1(self) -> bool:
@@ -221,9 +387,7 @@ def _build(doc: dict[str, Any], text: str, name: str) -> Profile:
             hint = (
                 "It belongs under " + " or ".join(f"[{t}]" for t in homes) + "."
                 if homes
-                else _suggest(
-                    key, _KEYS_BY_TABLE[""] + tuple(f"[{t}]" for t in _TABLES), known=True
-                )
+                else _suggest(key, _KEYS_BY_TABLE[""] + tuple(f"[{t}]" for t in _TABLES), known=True)
             )
             raise fail(f"unknown key '{key}'", "", key, hint)
     for table in _TABLES:
@@ -264,6 +428,9 @@ def _build(doc: dict[str, Any], text: str, name: str) -> Profile:
         raise fail("[file] metadata_prefix must not be empty", "file", "metadata_prefix")
 
     columns = {q: text_value("columns", q, V1_COLUMNS[q]).strip() for q in QUANTITIES}
+    for extra in EXTRA_QUANTITIES:
+        if extra in doc.get("columns", {}):
+            columns[extra] = text_value("columns", extra, "").strip()
     seen: dict[str, str] = {}
     for quantity, header in columns.items():
         if not header:
@@ -282,6 +449,7 @@ def _build(doc: dict[str, Any], text: str, name: str) -> Profile:
         if hint:
             raise fail(f"unknown metadata key '{key}'", "metadata", key, hint)
         metadata[key] = text_value("metadata", key, "").strip()
+    layout = _layout(doc, fail, text_value, choice, columns)
     return Profile(
         name=name,
         description=text_value("", "description", ""),
@@ -295,9 +463,217 @@ def _build(doc: dict[str, Any], text: str, name: str) -> Profile:
         time_unit=choice("units", "time", "s", tuple(TIME_UNITS)),
         voltage_unit=choice("units", "voltage", "V", tuple(VOLTAGE_UNITS)),
         current_unit=choice("units", "current", "A", tuple(CURRENT_UNITS)),
-        current_sign=choice("units", "current_sign", "charge positive", tuple(CURRENT_SIGNS)),
+        current_sign=choice("units", "current_sign", "charge positive", SIGN_CHOICES),
         metadata=metadata,
+        **layout,
     )
+
+
+def _layout(
+    doc: dict[str, Any],
+    fail: _Fail,
+    text_value: Callable[[str, str, str], str],
+    choice: Callable[[str, str, str, tuple[str, ...]], str],
+    columns: Mapping[str, str],
+) -> dict[str, Any]:
+    """The keys of the layouts beyond delimited text with elapsed seconds, checked together."""
+    file_format = choice("file", "format", "text", FORMATS)
+    time_doc = doc.get("time", {})
+    stamps = choice("time", "stamps", "elapsed", TIME_KINDS)
+    for key in ("date_format", "zone", "zone_metadata"):
+        if key in time_doc and stamps != "date-time":
+            raise fail(
+                f'[time] {key} is read only with stamps = "date-time"',
+                "time",
+                key,
+                'Set [time] stamps = "date-time", or remove the key.',
+            )
+    date_format = text_value("time", "date_format", ISO_8601).strip()
+    if date_format != ISO_8601:
+        _check_date_format(date_format, fail)
+    zone = time_doc.get("zone")
+    if zone is not None:
+        zone = text_value("time", "zone", "").strip()
+        problem = zone_problem(zone)
+        if problem:
+            raise fail(f'[time] zone = "{zone}" {problem}', "time", "zone", ZONE_HINT)
+    zone_key = time_doc.get("zone_metadata")
+    if zone_key is not None:
+        zone_key = text_value("time", "zone_metadata", "").strip()
+        if not zone_key:
+            raise fail("[time] zone_metadata must not be empty", "time", "zone_metadata")
+
+    signed_by_mode = choice("units", "current_sign", "charge positive", SIGN_CHOICES) == FROM_MODE
+    modes: dict[str, str] = {}
+    mode_doc = doc.get("mode", {})
+    if signed_by_mode and "mode" not in columns:
+        raise fail(
+            'current_sign = "from mode" needs the mode column: set [columns] mode',
+            "units",
+            "current_sign",
+            'e.g. [columns] mode = "State", and list its values under [mode].',
+        )
+    if not signed_by_mode and ("mode" in columns or mode_doc):
+        raise fail(
+            'a mode column is read only with [units] current_sign = "from mode"',
+            "columns" if "mode" in columns else "mode",
+            "mode" if "mode" in columns else None,
+            'Set current_sign = "from mode", or remove the mode column and [mode].',
+        )
+    for kind in MODES:
+        values = mode_doc.get(kind)
+        if values is None:
+            if signed_by_mode and kind != "rest":
+                raise fail(
+                    f"[mode] {kind} is missing: list the mode values that mean {kind}",
+                    "mode",
+                    None,
+                    f'e.g. {kind} = ["{kind[0].upper()}"]',
+                )
+            continue
+        if (
+            not isinstance(values, list)
+            or not values
+            or not all(isinstance(v, str) and v.strip() for v in values)
+        ):
+            raise fail(
+                f"[mode] {kind} must be a list of texts, none of them empty",
+                "mode",
+                kind,
+                f'e.g. {kind} = ["{kind[0].upper()}"]',
+            )
+        for value in values:
+            value = value.strip()
+            if value in modes and modes[value] != kind:
+                raise fail(
+                    f"[mode] the value '{value}' means both {modes[value]} and {kind}",
+                    "mode",
+                    kind,
+                    "Keep it in one list.",
+                )
+            modes[value] = kind
+
+    for counter in ("capacity", "energy"):
+        if counter in doc.get("units", {}) and counter not in columns:
+            raise fail(
+                f"[units] {counter} is read only with a [columns] {counter} column",
+                "units",
+                counter,
+                f"Name the counter's column under [columns] {counter}, or remove the unit.",
+            )
+    counters = doc.get("counters", {})
+    compare = counters.get("compare", True)
+    if not isinstance(compare, bool):
+        raise fail("[counters] compare must be true or false", "counters", "compare")
+    tolerance = counters.get("tolerance_percent", DEFAULT_COUNTER_TOLERANCE_PERCENT)
+    if isinstance(tolerance, bool) or not isinstance(tolerance, int | float) or not 0 < tolerance < 100:
+        raise fail(
+            "[counters] tolerance_percent must be a number above 0 and below 100",
+            "counters",
+            "tolerance_percent",
+        )
+
+    book = doc.get("workbook", {})
+    if book and file_format != "workbook":
+        raise fail(
+            '[workbook] is read only with [file] format = "workbook"',
+            "workbook",
+            None,
+            'Set [file] format = "workbook", or remove the table.',
+        )
+    sheets: dict[str, str | None] = {}
+    for key in ("data_sheets", "metadata_sheet"):
+        if key in book:
+            value = text_value("workbook", key, "").strip()
+            if not value:
+                raise fail(f"[workbook] {key} must not be empty", "workbook", key)
+            sheets[key] = value
+    return {
+        "file_format": file_format,
+        "time_stamps": stamps,
+        "date_format": date_format,
+        "zone": zone,
+        "zone_metadata": zone_key,
+        "modes": modes,
+        "capacity_unit": choice("units", "capacity", "Ah", tuple(CAPACITY_UNITS)),
+        "energy_unit": choice("units", "energy", "Wh", tuple(ENERGY_UNITS)),
+        "compare_counters": compare,
+        "counter_tolerance_percent": float(tolerance),
+        "data_sheets": sheets.get("data_sheets"),
+        "metadata_sheet": sheets.get("metadata_sheet"),
+    }
+
+
+ZONE_HINT = 'Give "UTC", a zone name such as "Europe/Berlin", or an offset such as "+02:00".'
+_OFFSET = re.compile(r"^(?:UTC)?([+-])(\d{2}):?(\d{2})$")
+
+
+def zone_problem(zone: str) -> str:
+    """Why ``zone`` is not a zone formgate can use ('' when it is one)."""
+    try:
+        parse_zone(zone)
+    except ValueError as exc:
+        return str(exc)
+    return ""
+
+
+def parse_zone(zone: str) -> dt.tzinfo:
+    """A zone as written in a profile or a file's metadata -> tzinfo; ValueError if not one.
+
+    >>> parse_zone("+02:00"), parse_zone("UTC"), str(parse_zone("Europe/Berlin"))
+    (datetime.timezone(datetime.timedelta(seconds=7200)), datetime.timezone.utc, 'Europe/Berlin')
+    """
+    text = zone.strip()
+    if text.upper() in ("UTC", "Z", "GMT"):
+        return dt.UTC
+    found = _OFFSET.match(text)
+    if found:
+        hours, minutes = int(found[2]), int(found[3])
+        if hours > 14 or minutes > 59:
+            raise ValueError("is not a UTC offset (at most +14:00 and -14:00)")
+        offset = dt.timedelta(hours=hours, minutes=minutes)
+        return dt.timezone(-offset if found[1] == "-" else offset)
+    if not text or len(text) > 64 or ".." in text or text.startswith("/"):
+        raise ValueError("is not a time zone")
+    try:
+        return zoneinfo.ZoneInfo(text)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise ValueError("is not a time zone this machine knows") from None
+
+
+def _check_date_format(pattern: str, fail: _Fail) -> None:
+    """Refuse a strftime pattern that cannot write and read back a date and a time."""
+    hint = (
+        'Write it with strftime codes, e.g. "%d.%m.%Y %H:%M:%S" or "%Y/%m/%d %I:%M:%S %p", '
+        f'or use "{ISO_8601}".'
+    )
+    if "%" not in pattern:
+        raise fail(f'[time] date_format "{pattern}" holds no % codes', "time", "date_format", hint)
+    missing = [code for code in ("%d", "%H|%I", "%M") if not any(c in pattern for c in code.split("|"))]
+    if not any(c in pattern for c in ("%Y", "%y")) or missing:
+        raise fail(
+            f'[time] date_format "{pattern}" does not give the year, day, hour and minute',
+            "time",
+            "date_format",
+            hint,
+        )
+    sample = dt.datetime(2024, 10, 27, 14, 26, 7, 250000, tzinfo=dt.UTC)
+    try:
+        back = dt.datetime.strptime(sample.strftime(pattern), pattern)
+    except ValueError as exc:
+        raise fail(
+            f'[time] date_format "{pattern}" cannot be read back ({exc})',
+            "time",
+            "date_format",
+            hint,
+        ) from None
+    if (back.year, back.day, back.minute) != (2024, 27, 26):
+        raise fail(
+            f'[time] date_format "{pattern}" does not give the year, day, hour and minute',
+            "time",
+            "date_format",
+            hint,
+        )
 
 
 def _compile_pattern(doc: dict[str, Any], fail: _Fail) -> re.Pattern[str] | None:
@@ -314,8 +690,7 @@ def _compile_pattern(doc: dict[str, Any], fail: _Fail) -> re.Pattern[str] | None
             f"at character {(exc.pos or 0) + 1}",
             "file",
             "file_name_pattern",
-            "Check its brackets; write it in single quotes ('...') so that backslashes stay "
-            "as they are.",
+            "Check its brackets; write it in single quotes ('...') so that backslashes stay as they are.",
         ) from None
     if not compiled.groupindex:
         raise fail(

@@ -119,8 +119,8 @@ def _check_empty_rows(trace: Trace, empty: Mask) -> list[Note]:
     if length > MAX_EMPTY_RUN:
         raise InputError(
             f"{length} rows in a row have an empty {what} field "
-            f"(lines {trace.line_of(start)} to {trace.line_of(start + length - 1)})",
-            SourceRef(trace.source, trace.line_of(start)),
+            f"({trace.span(start, start + length - 1)})",
+            trace.where(start),
             f"formgate leaves out at most {MAX_EMPTY_RUN} rows in a row; check the channel's "
             "logging, or cut the damaged part out of the file.",
         )
@@ -128,7 +128,7 @@ def _check_empty_rows(trace: Trace, empty: Mask) -> list[Note]:
         raise InputError(
             f"{count} of {len(trace)} rows ({100 * count / len(trace):.1f} %) have an empty "
             f"{what} field, the first on this line",
-            SourceRef(trace.source, trace.line_of(first)),
+            trace.where(first),
             f"formgate leaves out at most {100 * MAX_EMPTY_FRACTION:g} % of the rows; "
             "check the channel's logging.",
         )
@@ -137,8 +137,8 @@ def _check_empty_rows(trace: Trace, empty: Mask) -> list[Note]:
         Note(
             "nan_rows",
             f"{count} {rows} with an empty {what} field left out "
-            f"(first on line {trace.line_of(first)})",
-            SourceRef(trace.source, trace.line_of(first)),
+            f"(first on {trace.place(first)})",
+            trace.where(first),
         )
     ]
 
@@ -158,9 +158,9 @@ def _check_time_order(trace: Trace, rows: Rows, time_s: FloatArray) -> None:
         k = int(back[0])
         before, after = int(rows[k]), int(rows[k + 1])
         raise InputError(
-            f"time goes backwards, from {_fmt(time_s[k], 3)} s on line {trace.line_of(before)} "
+            f"time goes backwards, from {_fmt(time_s[k], 3)} s on {trace.place(before)} "
             f"to {_fmt(time_s[k + 1], 3)} s",
-            SourceRef(trace.source, trace.line_of(after)),
+            trace.where(after),
             "Time must never decrease; check that the file is one run of one channel, "
             "not two records joined together.",
         )
@@ -186,7 +186,7 @@ def _check_voltage(trace: Trace, rows: Rows, volts: FloatArray, ct: CellType) ->
     raise InputError(
         f"voltage {_fmt(volts[k], 4)} V is outside what a {ct.name} cell can show "
         f"({_fmt(ct.min_voltage_v, 3)} to {_fmt(ct.max_voltage_v, 3)} V)",
-        SourceRef(trace.source, trace.line_of(int(rows[k]))),
+        trace.where(int(rows[k])),
         hint,
     )
 
@@ -211,7 +211,7 @@ def _check_current(trace: Trace, rows: Rows, amps: FloatArray, ct: CellType) -> 
             f"current {_fmt(amps[k], 4, significant=True)} A is "
             f"{_fmt(size[k] / one_c_a, 3, significant=True)} C for {rating}, "
             f"above the {MAX_C_RATE:g} C that is plausible",
-            SourceRef(trace.source, trace.line_of(int(rows[k]))),
+            trace.where(int(rows[k])),
             hint,
         )
     if largest < MIN_C_RATE * one_c_a:
@@ -236,13 +236,14 @@ def _note_repeated_times(trace: Trace, rows: Rows, time_s: FloatArray) -> list[N
     same = np.flatnonzero(np.diff(time_s) == 0)
     if not same.size:
         return []
-    line = trace.line_of(int(rows[same[0] + 1]))
+    row = int(rows[same[0] + 1])
     rows_word = "row repeats" if same.size == 1 else "rows repeat"
     return [
         Note(
             "time_duplicates",
-            f"{same.size} {rows_word} the time stamp of the row before (first on line {line})",
-            SourceRef(trace.source, line),
+            f"{same.size} {rows_word} the time stamp of the row before "
+            f"(first on {trace.place(row)})",
+            trace.where(row),
         )
     ]
 
@@ -259,18 +260,18 @@ def _note_gaps(
     if not gaps.size:
         return []
     k = int(gaps[np.argmax(steps[gaps])])
-    line = trace.line_of(int(rows[k + 1]))
+    row = int(rows[k + 1])
     flowing = FLOWING_C_RATE * ct.nominal_capacity_ah
     during_flow = np.minimum(np.abs(amps[gaps]), np.abs(amps[gaps + 1])) > flowing
     text = (
         f"{gaps.size} {'gap' if gaps.size == 1 else 'gaps'} in the record longer than "
-        f"{_fmt(limit, 1)} s; the longest is {_fmt(steps[k], 1)} s, before line {line}"
+        f"{_fmt(limit, 1)} s; the longest is {_fmt(steps[k], 1)} s, before {trace.place(row)}"
     )
     blocks: tuple[str, ...] = ()
     if during_flow.any():
         text += "; current flowed across a gap, so capacities there are interpolated"
         blocks = CAPACITY_METRICS
-    return [Note("time_gaps", text, SourceRef(trace.source, line), blocks)]
+    return [Note("time_gaps", text, trace.where(row), blocks)]
 
 
 def _note_temperature(trace: Trace) -> list[Note]:
@@ -288,15 +289,15 @@ def _note_temperature(trace: Trace) -> list[Note]:
                 ("max_temperature_C",),
             )
         ]
-    line = trace.line_of(int(np.argmax(missing)))
+    row = int(np.argmax(missing))
     count = int(missing.sum())
     rows_word = "row has" if count == 1 else "rows have"
     return [
         Note(
             "temperature_gaps",
-            f"{count} {rows_word} no temperature (first on line {line}); "
+            f"{count} {rows_word} no temperature (first on {trace.place(row)}); "
             "the highest temperature is taken over the others",
-            SourceRef(trace.source, line),
+            trace.where(row),
         )
     ]
 
