@@ -173,8 +173,7 @@ def _local_time_fault(naive: pd.Series, zone: dt.tzinfo) -> tuple[int, str]:
         early = plain.replace(tzinfo=zone, fold=0)
         late = plain.replace(tzinfo=zone, fold=1)
         if early.utcoffset() != late.utcoffset():
-            back = early.astimezone(dt.UTC).replace(tzinfo=None) + (early.utcoffset() or dt.timedelta())
-            if back != plain:
+            if early.astimezone(dt.UTC).astimezone(zone).replace(tzinfo=None) != plain:
                 return row, "a time the clock skips when daylight-saving time begins"
             return row, (
                 "in the hour the clock repeats when daylight-saving time ends, and the order "
