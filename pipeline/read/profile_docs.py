@@ -54,7 +54,19 @@ def render_profiles_doc(examples: Sequence[tuple[str, str]]) -> str:
         "an **import profile**: a small TOML file that maps its layout onto those columns. It "
         "can rename columns, convert mV, mA, ms, minutes or hours, flip the current sign, read "
         "semicolons, tabs and decimal commas, skip banner lines, decode Latin-1, and take "
-        "metadata from the file name or give fixed values.",
+        "metadata from the file name or give fixed values. It also reads what cyclers write "
+        "instead of elapsed seconds and a signed current: date-time stamps (ISO 8601 or a "
+        "strftime pattern; with their UTC offset, or in a named zone across daylight-saving "
+        "changes), time that restarts with every step, a current written as a magnitude beside "
+        "a mode column, and the cycler's own capacity and energy counters (compared with "
+        "formgate's integrals); and files that are not text at all: workbooks (`.xlsx`, `.xlsm`, "
+        "`.xls`, `.ods`; rows continued over several sheets, metadata on a sheet of its own) and "
+        "Apache Parquet files.",
+        "",
+        "Not sure how to describe a file? `formgate profile guess FILE` writes a commented "
+        "profile for it, and `formgate profile show PROFILE FILE` prints what formgate reads "
+        "with a profile (the columns and their units, the first and last rows in seconds, volts "
+        "and signed amperes, the metadata, the steps it would cut) before a station uses it.",
         "",
         f"Whatever the layout, a metadata key or value (from the file or its name) and a column "
         f"name may take at most {MAX_TEXT_BYTES} bytes in UTF-8 (a label's cell id holds about "

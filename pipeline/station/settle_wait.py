@@ -32,7 +32,8 @@ def read_head_and_tail(fh: BinaryIO) -> bytes:
 def cut_reason(fh: BinaryIO, name: str, rulebook: RuleBook, profile_path: Path | None) -> str | None:
     """Why the open file's record looks cut short of its program's end, or None.
 
-    A compressed file is read whole (its tail alone cannot be unpacked). A profile that
+    A compressed file, a workbook or a Parquet file is read whole (its tail alone cannot
+    be read). A profile that
     cannot be read gives None: the judge reports it.
     """
     profile: Profile | None = None
@@ -41,8 +42,8 @@ def cut_reason(fh: BinaryIO, name: str, rulebook: RuleBook, profile_path: Path |
             profile = load_profile(profile_path.read_text(encoding="utf-8"), profile_path.name)
         except (OSError, UnicodeDecodeError, FormgateError):
             return None
-    if name.endswith(".gz"):
-        fh.seek(0)
+    if name.endswith(".gz") or (profile is not None and profile.file_format != "text"):
+        fh.seek(0)  # a compressed file, a workbook or a Parquet file is read whole
         data = fh.read()
     else:
         data = read_head_and_tail(fh)
