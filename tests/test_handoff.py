@@ -59,3 +59,42 @@ def test_an_open_file_is_judged_like_its_bytes(payload: bytes, packed: bool) -> 
     data = gzip.compress(payload, mtime=0) if packed else payload
     for cut in (data, data[: len(data) // 2]):
         assert file_looks_complete(io.BytesIO(cut)) == looks_complete(cut)
+
+
+def test_an_office_lock_file_beside_an_open_workbook_is_never_claimed() -> None:
+    decision = decide("rename", {"~$Record.xlsx": (165, 1), "Record.xlsx": (9000, 1)}, {}, 0.0)
+    assert decision.ready == ("Record.xlsx",)
+    assert decision.ignored == ("~$Record.xlsx",)
+
+
+def _zip(comment: bytes = b"") -> bytes:
+    import zipfile
+
+    buffer = io.BytesIO()
+    with zipfile.ZipFile(buffer, "w") as archive:
+        archive.writestr("xl/workbook.xml", "<workbook/>" * 200)
+        archive.comment = comment
+    return buffer.getvalue()
+
+
+@given(cut=st.integers(min_value=1, max_value=400), comment=st.binary(max_size=300))
+def test_a_workbook_is_complete_only_once_its_zip_end_record_is_written(cut: int, comment: bytes) -> None:
+    # PKWARE APPNOTE.TXT 4.3.16: a zip archive ends with its end-of-central-directory record
+    # (22 bytes and the archive comment)
+    whole = _zip(comment)
+    assert looks_complete(whole)
+    assert not looks_complete(whole[: len(whole) - min(cut, len(whole) - 1)])
+
+
+def test_a_compound_file_workbook_is_complete_in_whole_sectors() -> None:
+    # MS-CFB (Compound File Binary Format) 2.2: the file is a header and whole 512-byte sectors
+    head = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"
+    assert looks_complete(head + bytes(512 * 4 - 8))
+    assert not looks_complete(head + bytes(512 * 4 - 100))
+
+
+def test_a_parquet_file_is_complete_once_its_footer_magic_is_written() -> None:
+    # Apache Parquet file format: "PAR1", the column chunks, the footer, its length, "PAR1"
+    whole = b"PAR1" + bytes(100) + (100).to_bytes(4, "little") + b"PAR1"
+    assert looks_complete(whole)
+    assert not looks_complete(whole[:-3])

@@ -11,20 +11,27 @@ a decision out. Three ways a cycler can hand a file over (DESIGN.md, "claim"):
   not changed for ``settle_s`` seconds and its content looks complete (a final
   newline, or a whole gzip stream).
 
-Names starting with ``.`` or ending in ``.tmp`` / ``.part`` are never claimed.
+Names starting with ``.`` or ``~$`` (an office program's lock file beside an open
+workbook) or ending in ``.tmp`` / ``.part`` are never claimed.
 Moving files and reading clocks are the watcher's and station's job.
 """
 
 from __future__ import annotations
 
 import io
-import itertools
 import zlib
 from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import BinaryIO
 
 TEMPORARY_SUFFIXES = (".tmp", ".part")
+# an office program's lock file beside a workbook it has open (~$book.xlsx)
+LOCK_FILE_PREFIX = "~$"
+_ZIP_MAGIC = b"PK\x03\x04"
+_ZIP_END = b"PK\x05\x06"
+_ZIP_TAIL = 22 + 65535  # the end record and the longest archive comment
+_COMPOUND_MAGIC = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"
+_PARQUET_MAGIC = b"PAR1"
 MODES = ("rename", "marker", "settle")
 
 
@@ -49,8 +56,8 @@ class Decision:
 
 
 def is_temporary(name: str) -> bool:
-    """True for names a writer is still using: hidden, ``.tmp`` or ``.part``."""
-    return name.startswith(".") or name.endswith(TEMPORARY_SUFFIXES)
+    """True for names a writer is still using: hidden, ``.tmp``, ``.part``, or a lock file ``~$...``."""
+    return name.startswith((".", LOCK_FILE_PREFIX)) or name.endswith(TEMPORARY_SUFFIXES)
 
 
 def observe(
@@ -135,7 +142,8 @@ def _gzip_complete(chunks: Iterable[bytes]) -> bool:
 
 
 def looks_complete(data: bytes) -> bool:
-    """True if the bytes look like a whole file: a complete gzip stream, or text ending in a newline.
+    """True if the bytes look like a whole file: a complete gzip stream, text ending in a newline,
+    or a workbook or Parquet file whose end is written.
 
     A writer that pauses mid-line, or a gzip stream cut short, fails this even
     when its size has not changed for a while.
@@ -146,13 +154,32 @@ def looks_complete(data: bytes) -> bool:
 def file_looks_complete(fh: BinaryIO) -> bool:
     """:func:`looks_complete` for an open file, reading only what it needs.
 
-    Text needs only its last byte; a gzip stream is read through once, in blocks.
+    Text needs only its last byte; a gzip stream is read through once, in blocks. A
+    workbook is a zip archive (.xlsx, .ods), finished once its end-of-central-directory
+    record is written (PKWARE's APPNOTE.TXT, section 4.3.16), or a compound file (.xls), whose
+    size is a whole number of 512-byte sectors (MS-CFB, section 2.2); a Parquet file
+    ends with its footer and the magic ``PAR1`` again (Apache Parquet file format).
     """
-    head = fh.read(2)
-    if head == GZIP_MAGIC:
-        return _gzip_complete(itertools.chain([head], iter(lambda: fh.read(1 << 20), b"")))
-    fh.seek(0, 2)
-    if fh.tell() == 0:
+    head = fh.read(8)
+    if head[:2] == GZIP_MAGIC:
+        fh.seek(0)
+        return _gzip_complete(iter(lambda: fh.read(1 << 20), b""))
+    size = fh.seek(0, 2)
+    if size == 0:
         return False
+    if head.startswith(_ZIP_MAGIC):
+        fh.seek(max(0, size - _ZIP_TAIL))
+        tail = fh.read(_ZIP_TAIL)
+        end = tail.rfind(_ZIP_END)
+        while end >= 0:  # the record whose comment reaches the file's end exactly
+            if len(tail) - end == 22 + int.from_bytes(tail[end + 20 : end + 22], "little"):
+                return True
+            end = tail.rfind(_ZIP_END, 0, end)
+        return False
+    if head.startswith(_COMPOUND_MAGIC):
+        return size % 512 == 0
+    if head.startswith(_PARQUET_MAGIC):
+        fh.seek(size - 4)
+        return size >= 12 and fh.read(4) == _PARQUET_MAGIC
     fh.seek(-1, 2)
     return fh.read(1) == b"\n"

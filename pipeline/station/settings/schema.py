@@ -215,8 +215,8 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 "how the station knows a file is finished: rename: the writer renames it "
                 "into place, so a file is finished when it appears; marker: the writer adds "
                 "NAME + marker_suffix when the file is complete; settle: size and modification "
-                "time unchanged for settle_s and the content ends cleanly (a final newline, or "
-                "a whole gzip stream)",
+                "time unchanged for settle_s and the content ends cleanly (a final newline, a "
+                "whole gzip stream, a workbook or Parquet file whose end is written)",
                 required=True,
                 allowed=MODES,
                 example='"settle"',
