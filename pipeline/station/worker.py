@@ -217,13 +217,14 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None] | Read
             SourceRef(task.name),
             "A writer still had it open: make the cycler finish writing before hand-over.",
         )
-    if task.limits is not None:
-        check_text(data, task.name, task.limits)
-    if looks_like_readings(data):
-        return read_readings(data, task.name)
     profile = None
     if task.profile_text is not None:
         profile = load_profile(task.profile_text, task.profile_name or "import profile")
+    # a workbook's or Parquet file's lines mean nothing: its reader bounds what it unpacks
+    if task.limits is not None and (profile is None or profile.file_format == "text"):
+        check_text(data, task.name, task.limits)
+    if looks_like_readings(data):
+        return read_readings(data, task.name)
     result = judge(
         data,
         task.name,
