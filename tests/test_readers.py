@@ -408,7 +408,7 @@ def test_a_unit_value_far_from_any_is_not_guessed() -> None:
 
 def test_shipped_example_profiles_load() -> None:
     names = sorted(p.name for p in PROFILES.glob("*.toml"))
-    assert names == ["semicolon_decimal_comma.toml", "tab_separated_ms.toml"]
+    assert names == ["datetime_mode_column.toml", "iso_offsets.toml", "parquet_columns.toml", "semicolon_decimal_comma.toml", "step_time.toml", "tab_separated_ms.toml", "workbook_sheets.toml"]
     first = read_profile(PROFILES / "semicolon_decimal_comma.toml")
     assert (first.delimiter, first.decimal, first.encoding) == (";", ",", "latin-1")
     assert (first.time_unit, first.voltage_unit, first.current_unit) == ("h", "mV", "mA")
