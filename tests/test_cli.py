@@ -429,7 +429,7 @@ def broken_profile_message(path: Path) -> str:
 def test_rules_check_shipped_rules(capsys: pytest.CaptureFixture[str]) -> None:
     rule_files = len(list(RULES_DIR.glob("*.toml")))
     profiles = len(list((RULES_DIR / "profiles").glob("*.toml")))
-    assert profiles == 2
+    assert profiles == 7
     assert main(["rules", "check", RULES]) == 0
     assert capsys.readouterr() == (
         f"{RULES}: {rule_files} rule files and {profiles} import profiles, all valid\n",
