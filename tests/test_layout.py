@@ -29,9 +29,11 @@ FORBIDDEN: Mapping[str, tuple[str, ...]] = {
     "mail": ("ledger", "station", "demo", "cli", "runner"),
     # the ledger stores what others decide: the model's and the readers' records only
     "ledger": ("judge", "rulebook", "report", "mail", "station", "demo", "cli", "runner"),
-    "station": ("audit", "demo", "cli"),
+    "station": ("audit", "regrade", "demo", "cli"),
+    # a regrade judges again what the station judged; only the command line uses it
+    "regrade": ("audit", "demo", "cli"),
     # an audit reads what the station wrote; only the command line uses it
-    "audit": ("demo", "cli"),
+    "audit": ("regrade", "demo", "cli"),
     "demo": ("cli",),
     "runner": ("ledger", "station", "mail", "demo", "cli"),
     # the records everyone shares import nothing of the package above them

@@ -203,12 +203,12 @@ def test_a_ledger_claiming_a_future_version_is_refused(tmp_path: Path) -> None:
     path = tmp_path / "ledger.sqlite"
     Ledger(path, now=T0).close()
     conn = sqlite3.connect(path, isolation_level=None)
-    conn.execute("PRAGMA user_version = 7")
+    conn.execute(f"PRAGMA user_version = {SCHEMA_VERSION + 1}")
     conn.close()
     with pytest.raises(LedgerError) as caught:
         Ledger(path, now=T0)
     assert str(caught.value) == (
-        f"{path}: the ledger was written by a newer formgate (schema version 7, migrations this "
+        f"{path}: the ledger was written by a newer formgate (schema version {SCHEMA_VERSION + 1}, migrations this "
         f"formgate does not know: none recorded; this formgate knows up to version {SCHEMA_VERSION}).\n"
         "  Run the newer formgate, or upgrade this installation; a ledger is never downgraded."
     )

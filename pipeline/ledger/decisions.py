@@ -18,7 +18,7 @@ from pipeline.ledger.connection import Connection
 from pipeline.ledger.outbox import insert_mail
 from pipeline.ledger.rows import DecisionRow, OutgoingMail, decision_row, parse_time, utc_text
 
-CAUSES = ("record", "readings", "lot closed", "rules", "review")
+CAUSES = ("record", "readings", "lot closed", "rules", "review", "regrade")
 
 
 class Decisions:

@@ -20,7 +20,8 @@ class Digests:
 
     _DIGESTIBLE = (
         "FROM results r JOIN inputs i ON i.id = r.input_id WHERE r.verdict = 'pass' "
-        f"AND r.digest_mail_id IS NULL AND r.superseded_by IS NULL AND i.state IN {PUBLISHED}"
+        f"AND r.digest_mail_id IS NULL AND r.superseded_by IS NULL AND r.regrade_id IS NULL "
+        f"AND i.state IN {PUBLISHED}"
     )
 
     def __init__(self, db: Connection) -> None:

@@ -46,9 +46,14 @@ def with_history(result: CellResult, ledger: Path, input_id: int) -> CellResult:
                 "JOIN inputs i ON i.id = r.input_id WHERE r.lot = ? AND r.cell_id = ? "
                 "AND r.input_id <> ? AND i.state IN ('judged', 'published', 'archived') "
                 # judged again after a crash: only the records from before its own
-                "AND r.id < coalesce((SELECT id FROM results WHERE input_id = ?), 9e18) "
+                "AND r.id < coalesce((SELECT id FROM results WHERE input_id = ? "
+                "AND regrade_id IS NULL), 9e18) "
+                # of an input a regrade judged again, its latest judgement only
+                "AND NOT EXISTS (SELECT 1 FROM results n WHERE n.input_id = r.input_id "
+                "AND n.id > r.id AND n.id < coalesce((SELECT id FROM results WHERE input_id = ? "
+                "AND regrade_id IS NULL), 9e18)) "
                 "ORDER BY r.analysed_at, r.id",
-                (result.lot, result.cell_id, input_id, input_id),
+                (result.lot, result.cell_id, input_id, input_id, input_id),
             ).fetchall()
             readings = conn.execute(
                 "SELECT DISTINCT i.name, i.sha256 FROM readings g JOIN inputs i "

@@ -169,7 +169,10 @@ class Inputs:
             if now is not None:
                 final_at = utc_text(now, "now")
             else:
-                res = self.db.one("SELECT analysed_at FROM results WHERE input_id = ?", (input_id,))
+                res = self.db.one(
+                    "SELECT analysed_at FROM results WHERE input_id = ? AND regrade_id IS NULL",
+                    (input_id,),
+                )
                 final_at = utc_text(parse_time(res["analysed_at"]) if res else row.arrived_at, "final time")
             conn.execute(
                 "UPDATE inputs SET state = ?, final_path = ?, final_at = ?, reason = ? "
@@ -223,7 +226,7 @@ class Inputs:
             "WHEN r.verdict IS NULL AND EXISTS (SELECT 1 FROM readings g WHERE g.input_id = i.id) "
             "THEN 'readings' "
             "ELSE coalesce(r.verdict, 'error') END, count(*) "
-            "FROM inputs i LEFT JOIN results r ON r.input_id = i.id "
+            "FROM inputs i LEFT JOIN results r ON r.input_id = i.id AND r.regrade_id IS NULL "
             "WHERE i.final_at IS NOT NULL AND i.final_at >= ? GROUP BY 1",
             (utc_text(since, "since"),),
         )

@@ -11,10 +11,10 @@ killed at any point and, on restart, find each input at a single state boundary:
 
 Why small objects over one connection, and not one class: each table family's queries
 live in a module of their own (inputs.py, results.py, outbox.py, digests.py,
-readings.py, decisions.py, reviews.py, lots.py, published.py, facts.py), and a family is an
+readings.py, decisions.py, reviews.py, regrades.py, lots.py, published.py, facts.py), and a family is an
 object that holds only the shared :class:`~pipeline.ledger.connection.Connection` (reviews
-also the decisions family: a review and the decision it gives are one transaction). A caller names the
-family it uses (``ledger.inputs.claim(...)``, ``ledger.outbox.due(...)``), so a reader
+and regrades also the decisions family: a review, or a regrade of a cell, and the decision
+it gives are one transaction). A caller names the family it uses (``ledger.inputs.claim(...)``, ``ledger.outbox.due(...)``), so a reader
 finds every query where its table is, and no family can reach another's state: a write
 that spans tables (a result with its letters) is one method that opens one transaction
 and inserts the letters with :func:`pipeline.ledger.outbox.insert_mail`. The schema and
@@ -45,6 +45,7 @@ from pipeline.ledger.lots import Lots
 from pipeline.ledger.outbox import Outbox
 from pipeline.ledger.published import Published
 from pipeline.ledger.readings import Readings
+from pipeline.ledger.regrades import Regrades
 from pipeline.ledger.results import Results
 from pipeline.ledger.reviews import Reviews
 
@@ -71,6 +72,7 @@ class Ledger:
         self.facts = Facts(self.db)
         self.reviews = Reviews(self.db, self.decisions)
         self.published = Published(self.db)
+        self.regrades = Regrades(self.db, self.decisions)
 
     @property
     def path(self) -> pathlib.Path:

@@ -29,10 +29,17 @@ class LedgerError(FormgateError):
 
 @dataclass(frozen=True, slots=True)
 class Migration:
-    """One named, ordered step of the schema. ``run`` executes inside an open transaction."""
+    """One named, ordered step of the schema. ``run`` executes inside an open transaction.
+
+    ``rebuilds``: the step makes a table anew under its old name, which SQLite's procedure
+    for schema changes does with foreign keys off (they cannot be switched inside a
+    transaction, so :func:`migrate` switches them around it and checks every reference
+    before the step commits).
+    """
 
     name: str
     run: Callable[[sqlite3.Connection], None]
+    rebuilds: bool = False
 
 
 def sql_migration(name: str, *statements: str) -> Migration:
@@ -363,8 +370,112 @@ def _reviews_and_chain(conn: sqlite3.Connection) -> None:
 
 _REVIEWS = Migration("0006_reviews_published_files_chain", _reviews_and_chain)
 
+# Regrades. A regrade judges archived inputs again under other rules; what it applies is
+# recorded beside what was there (nothing overwritten): a regrade row (who, why, under which
+# rule sets; finished_at once every change is applied, so that a run cut short and started
+# again carries on under the same row), a new result of each input it judged again
+# (regrade_id; the input's earlier result points at it through superseded_by), and a decision with cause 'regrade' whose
+# basis names the regrade. The results table is rebuilt so that an input may have one
+# result of its own and one per regrade (and gains the index by cell it lacked); the
+# decisions table is rebuilt for its wider cause, its rows and hashes copied as they are.
+# Both follow SQLite's procedure for other kinds of table schema changes (a new table, the
+# rows copied with their ids, the old one dropped, the new one renamed, with foreign keys
+# off), so that the tables that refer to them keep referring to them; nothing then points
+# nowhere (checked before the step commits).
+_REGRADES_SQL = (
+    """
+    CREATE TABLE regrades (
+        id INTEGER PRIMARY KEY,
+        started_at TEXT NOT NULL,
+        finished_at TEXT,
+        run_by TEXT NOT NULL CHECK (run_by <> ''),
+        reason TEXT NOT NULL CHECK (trim(reason) <> ''),
+        rules_digest TEXT NOT NULL CHECK (length(rules_digest) = 64),
+        rule_sets TEXT NOT NULL CHECK (json_valid(rule_sets) AND json_type(rule_sets) = 'array'),
+        selection TEXT NOT NULL,
+        summary TEXT NOT NULL CHECK (json_valid(summary) AND json_type(summary) = 'object')
+    ) STRICT
+    """,
+    """
+    CREATE TABLE results_new (
+        id INTEGER PRIMARY KEY,
+        input_id INTEGER NOT NULL REFERENCES inputs (id),
+        cell_id TEXT NOT NULL,
+        lot TEXT NOT NULL,
+        verdict TEXT NOT NULL CHECK (verdict IN ('pass', 'fail', 'hold', 'error')),
+        hazards TEXT NOT NULL CHECK (json_valid(hazards) AND json_type(hazards) = 'array'),
+        result_json TEXT NOT NULL CHECK (json_valid(result_json)),
+        rule_set_name TEXT NOT NULL,
+        rule_set_revision TEXT NOT NULL,
+        rule_set_sha256 TEXT NOT NULL,
+        analysed_at TEXT NOT NULL,
+        json_path TEXT NOT NULL,
+        pdf_path TEXT,
+        superseded_by INTEGER REFERENCES results (id),
+        digest_mail_id INTEGER REFERENCES outbox (id),
+        regrade_id INTEGER REFERENCES regrades (id),
+        CHECK (superseded_by IS NULL OR superseded_by <> id),
+        CHECK (digest_mail_id IS NULL OR verdict = 'pass')
+    ) STRICT
+    """,
+    """
+    INSERT INTO results_new (id, input_id, cell_id, lot, verdict, hazards, result_json,
+        rule_set_name, rule_set_revision, rule_set_sha256, analysed_at, json_path, pdf_path,
+        superseded_by, digest_mail_id)
+    SELECT id, input_id, cell_id, lot, verdict, hazards, result_json, rule_set_name,
+        rule_set_revision, rule_set_sha256, analysed_at, json_path, pdf_path, superseded_by,
+        digest_mail_id
+    FROM results ORDER BY id
+    """,
+    "DROP TABLE results",
+    "ALTER TABLE results_new RENAME TO results",
+    "CREATE UNIQUE INDEX results_own_of_input ON results (input_id) WHERE regrade_id IS NULL",
+    """CREATE UNIQUE INDEX results_regraded_of_input ON results (input_id, regrade_id)
+       WHERE regrade_id IS NOT NULL""",
+    "CREATE INDEX results_by_cell ON results (lot, cell_id, id)",
+    "CREATE INDEX results_by_analysed_at ON results (analysed_at, id)",
+    "CREATE INDEX results_by_superseded_by ON results (superseded_by)",
+    "CREATE INDEX results_by_digest_mail ON results (digest_mail_id)",
+    """CREATE INDEX results_awaiting_digest ON results (lot)
+       WHERE verdict = 'pass' AND digest_mail_id IS NULL""",
+    """
+    CREATE TABLE decisions_new (
+        id INTEGER PRIMARY KEY,
+        cell_id TEXT NOT NULL CHECK (cell_id <> ''),
+        lot TEXT NOT NULL,
+        verdict TEXT NOT NULL CHECK (verdict IN ('pass', 'fail', 'hold')),
+        reason TEXT NOT NULL,
+        hazards TEXT NOT NULL CHECK (json_valid(hazards) AND json_type(hazards) = 'array'),
+        grade TEXT,
+        cause TEXT NOT NULL
+            CHECK (cause IN ('record', 'readings', 'lot closed', 'rules', 'review', 'regrade')),
+        basis TEXT NOT NULL CHECK (json_valid(basis) AND json_type(basis) = 'array'),
+        decided_at TEXT NOT NULL,
+        supersedes INTEGER REFERENCES decisions (id),
+        review_id INTEGER REFERENCES reviews (id),
+        prev_hash TEXT,
+        row_hash TEXT UNIQUE,
+        CHECK (supersedes IS NULL OR supersedes < id),
+        CHECK (grade IS NULL OR verdict = 'pass'),
+        CHECK ((review_id IS NULL) = (cause <> 'review'))
+    ) STRICT
+    """,
+    "INSERT INTO decisions_new SELECT * FROM decisions ORDER BY id",
+    "DROP TABLE decisions",
+    "ALTER TABLE decisions_new RENAME TO decisions",
+    "CREATE INDEX decisions_by_cell ON decisions (lot, cell_id, id)",
+)
+
+
+def _regrades(conn: sqlite3.Connection) -> None:
+    for statement in _REGRADES_SQL:
+        conn.execute(statement)
+
+
+_REGRADE_TABLES = Migration("0007_regrades", _regrades, rebuilds=True)
+
 MIGRATIONS: tuple[Migration, ...] = (
-    _INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS, _OUTBOX_CLAIMS, _REVIEWS
+    _INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS, _OUTBOX_CLAIMS, _REVIEWS, _REGRADE_TABLES
 )
 SCHEMA_VERSION = len(MIGRATIONS)
 
@@ -434,26 +545,47 @@ def migrate(
     known = [m.name for m in migrations]
     done: list[str] = []
     while True:
-        conn.execute("BEGIN IMMEDIATE")
+        # a peek without the lock: the step that rebuilds a table needs foreign keys off,
+        # which only holds when set outside a transaction (rechecked under the lock below)
+        peek = conn.execute("PRAGMA user_version").fetchone()[0]
+        rebuilding = peek < len(migrations) and migrations[peek].rebuilds
+        enforced = conn.execute("PRAGMA foreign_keys").fetchone()[0]
+        if rebuilding and enforced:
+            conn.execute("PRAGMA foreign_keys = OFF")
         try:
-            applied = _check_known(conn, known, where)
-            if len(applied) == len(migrations):
+            conn.execute("BEGIN IMMEDIATE")
+            try:
+                applied = _check_known(conn, known, where)
+                if len(applied) == len(migrations):
+                    conn.execute("COMMIT")
+                    return done
+                step = migrations[len(applied)]
+                if step.rebuilds and not rebuilding:
+                    conn.execute("ROLLBACK")  # another process moved on meanwhile: peek again
+                    continue
+                conn.execute(_BOOTSTRAP)
+                conn.execute(f"PRAGMA application_id = {APPLICATION_ID}")
+                step.run(conn)
+                if step.rebuilds:
+                    broken = conn.execute("PRAGMA foreign_key_check").fetchall()
+                    if broken:
+                        raise sqlite3.IntegrityError(
+                            f"migration {step.name} would leave references pointing nowhere: "
+                            f"{broken[:5]}"
+                        )
+                conn.execute(
+                    "INSERT INTO migrations (name, applied_at) VALUES (?, ?)", (step.name, applied_at)
+                )
+                conn.execute(f"PRAGMA user_version = {len(applied) + 1}")
                 conn.execute("COMMIT")
-                return done
-            step = migrations[len(applied)]
-            conn.execute(_BOOTSTRAP)
-            conn.execute(f"PRAGMA application_id = {APPLICATION_ID}")
-            step.run(conn)
-            conn.execute(
-                "INSERT INTO migrations (name, applied_at) VALUES (?, ?)", (step.name, applied_at)
-            )
-            conn.execute(f"PRAGMA user_version = {len(applied) + 1}")
-            conn.execute("COMMIT")
-            done.append(step.name)
-        except BaseException:
-            if conn.in_transaction:
-                conn.execute("ROLLBACK")
-            raise
+                done.append(step.name)
+            except BaseException:
+                if conn.in_transaction:
+                    conn.execute("ROLLBACK")
+                raise
+        finally:
+            if rebuilding and enforced:
+                conn.execute("PRAGMA foreign_keys = ON")
 
 
 def applied_migrations(conn: sqlite3.Connection) -> list[tuple[str, str]]:

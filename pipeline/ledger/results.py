@@ -123,7 +123,7 @@ class Results:
         """Point every other current result under ``name`` at the latest version's result."""
         latest = self.db.one(
             "SELECT r.id FROM results r JOIN inputs i ON i.id = r.input_id WHERE i.name = ? "
-            "ORDER BY i.version DESC LIMIT 1",
+            "ORDER BY i.version DESC, r.id DESC LIMIT 1",
             (name,),
         )
         if latest is not None:
@@ -160,7 +160,9 @@ class Results:
             )
 
     def of_input(self, input_id: int) -> ResultRow | None:
-        row = self.db.one("SELECT * FROM results WHERE input_id = ?", (input_id,))
+        row = self.db.one(
+            "SELECT * FROM results WHERE input_id = ? AND regrade_id IS NULL", (input_id,)
+        )
         return None if row is None else result_row(row)
 
     def get(self, result_id: int) -> ResultRow | None:
@@ -187,10 +189,12 @@ class Results:
 
     def of_lot(self, lot: str, cell_id: str | None = None) -> list[ResultRow]:
         """Every published result of the lot's (or one cell's) cycle files, in one query,
-        oldest first: every record, superseded ones included."""
+        oldest first: every record, superseded ones included; of an input judged again by a
+        regrade, only its latest judgement."""
         sql = (
             "SELECT r.* FROM results r JOIN inputs i ON i.id = r.input_id "
-            "WHERE r.lot = ? AND i.state IN ('published', 'archived')"
+            "WHERE r.lot = ? AND i.state IN ('published', 'archived') "
+            "AND NOT EXISTS (SELECT 1 FROM results n WHERE n.input_id = r.input_id AND n.id > r.id)"
         )
         params: tuple[str, ...] = (lot,)
         if cell_id is not None:

@@ -106,7 +106,7 @@ class CheckRowData:
 @dataclass(frozen=True, slots=True)
 class ResultRow:
     """A recorded judgement. ``superseded_by``: the result that came after it, of a later version
-    of the same file or a retest of the same cell and stages."""
+    of the same file, a retest of the same cell and stages, or a regrade of the same input."""
 
     id: int
     input_id: int
@@ -123,6 +123,7 @@ class ResultRow:
     pdf_path: str | None
     superseded_by: int | None
     digest_mail_id: int | None
+    regrade_id: int | None = None  # a regrade's judgement of the input, not the station's own
 
 
 class OutgoingMail(Protocol):
@@ -282,6 +283,7 @@ def result_row(row: sqlite3.Row) -> ResultRow:
         row["pdf_path"],
         row["superseded_by"],
         row["digest_mail_id"],
+        row["regrade_id"],
     )
 
 
@@ -309,7 +311,8 @@ def mail_row(row: sqlite3.Row) -> MailRow:
 
 
 INPUT_SELECT = (
-    "SELECT i.*, r.id AS result_id FROM inputs i LEFT JOIN results r ON r.input_id = i.id"
+    "SELECT i.*, r.id AS result_id FROM inputs i "
+    "LEFT JOIN results r ON r.input_id = i.id AND r.regrade_id IS NULL"
 )
 
 

@@ -1,0 +1,242 @@
+"""What a regrade would change: each cell decided again from its records judged under new rules.
+
+Pure: the lot's records as judged before (result documents), the same inputs judged
+again (by input SHA-256), the cell's readings, its standing decision and the new rule
+book in; the cells whose verdict, grade, hazards or reasons would change out, each with
+the checks behind it (value, old window and outcome, new window and outcome). A cell is
+decided again exactly as the station decides it: from its records that count
+(judge/lotclose.cell_stages) and its stages (judge/cellverdict.decide); in a closed lot,
+with the lot's screens and grades (judge/lotclose.close_lot). A cell whose latest
+decision rests on a person's review that still stands is never changed: it is listed
+for a new review. An input the new rules refuse (its cell type in no rule set, say) is
+listed with the reason and leaves its cell as it was.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from pipeline.errors import FormgateError
+from pipeline.judge.cellverdict import decide
+from pipeline.judge.lotclose import cell_stages, close_lot
+from pipeline.judge.review import Reviewed
+from pipeline.read.readings import Reading, ReadingFile
+from pipeline.rulebook.book import RuleBook
+
+Doc = Mapping[str, Any]
+
+
+@dataclass(frozen=True, slots=True)
+class Standing:
+    """A cell's decision in force, as the ledger holds it."""
+
+    verdict: str
+    reason: str
+    hazards: tuple[str, ...]
+    grade: str | None
+    cause: str
+
+
+@dataclass(frozen=True, slots=True)
+class CheckChange:
+    """One check of one record whose window or outcome the new rules change."""
+
+    file_name: str
+    rule_id: str
+    metric: str
+    old_value: float | None
+    new_value: float | None
+    old_low: float | None
+    old_high: float | None
+    new_low: float | None
+    new_high: float | None
+    old_outcome: str
+    new_outcome: str
+
+
+@dataclass(frozen=True, slots=True)
+class CellChange:
+    """A cell whose decision the regrade changes (or would, but for a person's review)."""
+
+    lot: str
+    cell_id: str
+    old: Standing
+    new: Standing
+    checks: tuple[CheckChange, ...]
+    reviewed: bool  # a person's review stands: listed for a new review, not applied
+    inputs: tuple[str, ...]  # SHA-256 of the cell's inputs judged again
+
+    @property
+    def kind(self) -> str:
+        """'pass → fail', or 'fail → fail' where only hazards, reasons or grade change."""
+        return f"{self.old.verdict} \N{RIGHTWARDS ARROW} {self.new.verdict}"
+
+
+@dataclass(frozen=True, slots=True)
+class Refused:
+    """An input the new rules cannot judge: it leaves its cell as it was."""
+
+    lot: str
+    cell_id: str
+    file_name: str
+    sha256: str
+    reason: str
+
+
+@dataclass(frozen=True, slots=True)
+class LotChanges:
+    lot: str
+    closed: bool
+    cells: int  # cells decided again
+    changes: tuple[CellChange, ...]
+    refused: tuple[Refused, ...]
+    problem: str = ""  # why the lot could not be decided again (e.g. rule sets mixed)
+
+
+def _sha(doc: Doc) -> str:
+    return str(doc["input"]["sha256"])
+
+
+def check_changes(old: Doc, new: Doc) -> list[CheckChange]:
+    """The checks of one record whose value, window or outcome differ between two judgements.
+
+    >>> c = {"id": "cap", "metric": "grading_capacity_Ah", "value": 19.0, "low": 18.9,
+    ...      "high": 21.0, "outcome": "in_window"}
+    >>> old = {"input": {"name": "a.csv"}, "checks": [c]}
+    >>> new = {"input": {"name": "a.csv"}, "checks": [c | {"low": 19.1, "outcome": "out_of_window"}]}
+    >>> [(x.rule_id, x.old_outcome, x.new_outcome, x.new_low) for x in check_changes(old, new)]
+    [('cap', 'in_window', 'out_of_window', 19.1)]
+    """
+    before = {str(c["id"]): c for c in old.get("checks", ())}
+    out = []
+    for c in new.get("checks", ()):
+        b = before.pop(str(c["id"]), None)
+        keys = ("value", "low", "high", "outcome")
+        if b is not None and all(b.get(k) == c.get(k) for k in keys):
+            continue
+        out.append(CheckChange(
+            str(new["input"]["name"]), str(c["id"]), str(c["metric"]),
+            None if b is None else b.get("value"), c.get("value"),
+            None if b is None else b.get("low"), None if b is None else b.get("high"),
+            c.get("low"), c.get("high"),
+            "absent" if b is None else str(b["outcome"]), str(c["outcome"]),
+        ))
+    for b in before.values():  # a check the new rules no longer make
+        out.append(CheckChange(
+            str(old["input"]["name"]), str(b["id"]), str(b["metric"]), b.get("value"), None,
+            b.get("low"), b.get("high"), None, None, str(b["outcome"]), "absent",
+        ))
+    return out
+
+
+def lot_changes(
+    lot: str,
+    old_docs: Sequence[Doc],
+    new_docs: Mapping[str, Doc],
+    refused: Mapping[str, str],
+    readings: Sequence[tuple[str, str, Reading]],
+    standing: Mapping[str, Standing],
+    reviews: Mapping[str, Reviewed],
+    rulebook: RuleBook,
+    *,
+    closed: bool,
+) -> LotChanges:
+    """Every cell of ``lot`` decided again with ``new_docs`` (by input SHA-256) in place of its
+    old records; the cells that change. ``refused``: input SHA-256 -> why the new rules
+    refuse it (the old record stays). ``readings``: (file name, SHA-256, reading)."""
+    docs: list[Doc] = []
+    out_refused: list[Refused] = []
+    for doc in old_docs:
+        sha = _sha(doc)
+        if sha in refused:
+            out_refused.append(Refused(lot, str(doc["cell"]["cell_id"]), str(doc["input"]["name"]),
+                                       sha, refused[sha]))
+        docs.append(new_docs.get(sha, doc))
+    old_by_sha = {_sha(d): d for d in old_docs}
+    try:
+        decided = _decide(lot, docs, readings, reviews, rulebook, closed=closed)
+    except FormgateError as exc:
+        return LotChanges(lot, closed, 0, (), tuple(out_refused), str(exc).splitlines()[0])
+    changes = []
+    for cell_id, (new, files) in sorted(decided.items()):
+        old = standing.get(cell_id)
+        if old is None or _same(old, new):
+            continue
+        shas = tuple(sha for _, _, sha in files if sha in new_docs)
+        checks = [ch for sha in shas if sha in old_by_sha
+                  for ch in check_changes(old_by_sha[sha], new_docs[sha])]
+        review = reviews.get(cell_id)
+        held_by_review = old.cause == "review" and review is not None
+        changes.append(CellChange(lot, cell_id, old, new, tuple(checks), held_by_review, shas))
+    return LotChanges(lot, closed, len(decided), tuple(changes), tuple(out_refused))
+
+
+def _same(old: Standing, new: Standing) -> bool:
+    return (old.verdict, old.reason, tuple(old.hazards), old.grade) == (
+        new.verdict, new.reason, tuple(new.hazards), new.grade
+    )
+
+
+def _decide(
+    lot: str,
+    docs: Sequence[Doc],
+    readings: Sequence[tuple[str, str, Reading]],
+    reviews: Mapping[str, Reviewed],
+    rulebook: RuleBook,
+    *,
+    closed: bool,
+) -> dict[str, tuple[Standing, tuple[tuple[str, str, str], ...]]]:
+    """cell id -> (its decision under the new rules, the records behind it)."""
+    judged = [d for d in docs if d["verdict"] != "error"]
+    if closed:
+        files: dict[str, list[Reading]] = {}
+        sha: dict[str, str] = {}
+        for name, digest, reading in readings:
+            files.setdefault(name, []).append(reading)
+            sha[name] = digest
+        closed_lot = close_lot(
+            lot, judged, [ReadingFile(n, {}, tuple(rs)) for n, rs in files.items()], rulebook,
+            sha256=sha, reviews=reviews,
+        )
+        return {
+            c.cell_id: (
+                Standing(c.decision.verdict, c.decision.reason, c.decision.hazards, c.grade,
+                         "regrade"),
+                c.records,
+            )
+            for c in closed_lot.cells
+        }
+    by_cell: dict[str, list[Doc]] = {}
+    for d in judged:
+        by_cell.setdefault(str(d["cell"]["cell_id"]), []).append(d)
+    read_by_cell: dict[str, list[tuple[str, str, Reading]]] = {}
+    for item in readings:
+        read_by_cell.setdefault(item[2].cell_id, []).append(item)
+    out = {}
+    for cell_id in sorted(set(by_cell) | set(read_by_cell)):
+        cell_docs = by_cell.get(cell_id, [])
+        cell_readings = read_by_cell.get(cell_id, [])
+        types = [str(d["cell_type"]["name"]) for d in cell_docs] + [
+            r.cell_type for _, _, r in cell_readings if r.cell_type
+        ]
+        if not types:
+            continue
+        rule_set, cell_type = rulebook.for_cell_type(types[-1])
+        stages = cell_stages(cell_docs, cell_readings, rule_set, cell_type)
+        decision = decide(cell_type.stages or rule_set.stages, stages.records)
+        out[cell_id] = (
+            Standing(decision.verdict, decision.reason, decision.hazards, None, "regrade"),
+            stages.files,
+        )
+    return out
+
+
+def counts(changes: Iterable[CellChange]) -> dict[str, int]:
+    """How many cells change in each way ('pass → fail': 3, ...), reviewed ones apart."""
+    out: dict[str, int] = {}
+    for c in changes:
+        key = c.kind + (" (left for a new review)" if c.reviewed else "")
+        out[key] = out.get(key, 0) + 1
+    return dict(sorted(out.items()))
