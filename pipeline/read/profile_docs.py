@@ -103,7 +103,10 @@ def render_profiles_doc(examples: Sequence[tuple[str, str]]) -> str:
             "## Shipped examples",
             "",
             "Invented layouts, one per file in `rules/profiles/`; `formgate init` copies them "
-            "into a new station's rules folder. Each file explains its keys in comments.",
+            "into a new station's rules folder. Each file explains its keys in comments. A file "
+            "of each layout, made from one demo cell, is in [layouts/](layouts/) (written by "
+            "`python -m pipeline.demo.layouts docs/layouts`): try `formgate profile show` or "
+            "`formgate check --profile` on them.",
             "",
         ]
         for name, text in examples:
