@@ -77,14 +77,25 @@ def read_twin(data: bytes, name: str) -> Trace:
 # --- what the cycler would have known: start, modes, steps, counters -------------------------
 
 
-def record_start(record: Trace, start: dt.datetime | None = None) -> dt.datetime:
+def record_start(metadata: Mapping[str, str], start: dt.datetime | None = None) -> dt.datetime:
     """When the record's time zero was: ``start``, else its started_at, else DEFAULT_START."""
     if start is None:
-        written = record.metadata.get("started_at")
+        written = metadata.get("started_at")
         start = dt.datetime.fromisoformat(written) if written else DEFAULT_START
     if start.tzinfo is None:
         raise ValueError("the start of a record must carry its zone or UTC offset")
     return start.astimezone(dt.UTC)
+
+
+def _dated(
+    record: Trace, metadata: Mapping[str, str] | None, start: dt.datetime | None
+) -> tuple[dict[str, str], list[dt.datetime]]:
+    """The metadata to write (its started_at the record's start) and each row's instant (UTC)."""
+    written = dict(record.metadata if metadata is None else metadata)
+    origin = record_start(written, start)
+    if start is not None or "started_at" not in written:
+        written["started_at"] = origin.isoformat()
+    return written, stamps_utc(record, origin)
 
 
 def _micros(record: Trace) -> IntArray:
@@ -97,7 +108,7 @@ def _micros(record: Trace) -> IntArray:
 
 def stamps_utc(record: Trace, start: dt.datetime | None = None) -> list[dt.datetime]:
     """Each row's instant (UTC), truncated to the hundredth of a second as the exports write it."""
-    origin = record_start(record, start)
+    origin = record_start(record.metadata, start)
     centis = _micros(record) // 10_000
     return [origin + dt.timedelta(microseconds=10_000 * int(c)) for c in centis.tolist()]
 
@@ -221,13 +232,10 @@ def date_time_text(
     not), which a metadata line ``clock_zone`` names. ``counter_scale`` multiplies both
     counters, as a channel whose own integration is off calibration would write them.
     """
-    metadata = dict(record.metadata if metadata is None else metadata)
     tz = parse_zone(zone)
+    metadata, instants = _dated(record, metadata, start)
     metadata[ZONE_KEY] = zone
-    metadata.setdefault("started_at", record_start(record, start).isoformat())
-    if start is not None:
-        metadata["started_at"] = record_start(record, start).isoformat()
-    stamps = [_local_stamp(s, tz, date_format) for s in stamps_utc(record, start)]
+    stamps = [_local_stamp(s, tz, date_format) for s in instants]
     modes = row_modes(record)
     current = np.asarray(record.current_a, dtype=np.float64)
     shown = np.where(modes == "rest", current, np.abs(current))
@@ -276,11 +284,9 @@ def iso_offset_text(
     zone: str = DEFAULT_ZONE,
 ) -> bytes:
     """ISO 8601 stamps each with its UTC offset; current in mA, discharge counted positive."""
-    metadata = dict(record.metadata if metadata is None else metadata)
-    if start is not None:
-        metadata["started_at"] = record_start(record, start).isoformat()
     tz = parse_zone(zone)
-    stamps = [iso_offset_stamp(s, tz) for s in stamps_utc(record, start)]
+    metadata, instants = _dated(record, metadata, start)
+    stamps = [iso_offset_stamp(s, tz) for s in instants]
     milliamps = -1000.0 * np.asarray(record.current_a, dtype=np.float64) + 0.0
     header = ["Timestamp"]
     columns = [stamps]
@@ -365,7 +371,7 @@ def workbook(
         raise ValueError(f"time must be one of {WORKBOOK_TIMES}, not {time!r}")
     if rows_per_sheet < 1:
         raise ValueError("rows_per_sheet must be 1 or more")
-    metadata = dict(record.metadata if metadata is None else metadata)
+    written = dict(record.metadata if metadata is None else metadata)
     book = Workbook(write_only=True)
     book.properties.creator = "formgate demo"
     # fixed document times, so that the same record gives the same workbook content
@@ -373,10 +379,9 @@ def workbook(
     columns: list[list[Any]]
     if time == "date-time":
         tz = parse_zone(zone)
-        metadata[ZONE_KEY] = zone
-        if start is not None:
-            metadata["started_at"] = record_start(record, start).isoformat()
-        local = [s.astimezone(tz).replace(tzinfo=None) for s in stamps_utc(record, start)]
+        written, instants = _dated(record, written, start)
+        written[ZONE_KEY] = zone
+        local = [s.astimezone(tz).replace(tzinfo=None) for s in instants]
         header = ["Date and time"]
         columns = [local]
     else:
@@ -389,7 +394,7 @@ def workbook(
             header.append(title)
             columns.append(values.tolist())
     info = book.create_sheet(INFO_SHEET)
-    for key, value in metadata.items():
+    for key, value in written.items():
         info.append([key, value])
     rows = list(zip(*columns, strict=True))
     for part, first in enumerate(range(0, max(len(rows), 1), rows_per_sheet)):
@@ -426,12 +431,11 @@ def parquet(
 
     if time not in PARQUET_TIMES:
         raise ValueError(f"time must be one of {PARQUET_TIMES}, not {time!r}")
-    metadata = dict(record.metadata if metadata is None else metadata)
+    written = dict(record.metadata if metadata is None else metadata)
     arrays: dict[str, Any] = {}
     if time == "date-time":
-        if start is not None:
-            metadata["started_at"] = record_start(record, start).isoformat()
-        arrays["timestamp_utc"] = pa.array(stamps_utc(record, start), type=pa.timestamp("ms", tz="UTC"))
+        written, instants = _dated(record, written, start)
+        arrays["timestamp_utc"] = pa.array(instants, type=pa.timestamp("ms", tz="UTC"))
     else:
         arrays["test_time_ms"] = pa.array(_micros(record) // 1000, type=pa.int64())
     arrays["voltage"] = pa.array(np.asarray(record.voltage_v, dtype=np.float64))
@@ -441,7 +445,7 @@ def parquet(
         if values is not None:
             arrays[title] = pa.array(np.asarray(values, dtype=np.int64))
     table = pa.table(arrays).replace_schema_metadata(
-        {key.encode("utf-8"): value.encode("utf-8") for key, value in metadata.items()}
+        {key.encode("utf-8"): value.encode("utf-8") for key, value in written.items()}
     )
     sink = pa.BufferOutputStream()
     pq.write_table(table, sink, compression="zstd")
