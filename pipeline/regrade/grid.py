@@ -1,0 +1,889 @@
+"""Judge many archived cycle files under one rules folder on a Dask cluster: in batches,
+resumable, with a progress bar.
+
+``judge_many(items, rules, analysed_at=...)`` yields one :class:`Judged` per item, in the
+order the cluster finishes them. Dask does all the scheduling: a ``LocalCluster`` of
+processes on this machine by default, or the cluster behind a scheduler address.
+
+The rules travel once. :class:`Rules` is a rules folder read into memory (rule files and
+``profiles/``) with a digest; it is scattered to every worker once per run, and each
+worker process parses it once per digest and keeps the rule book (``_rule_book``).
+
+A task is a batch of files (:func:`batch_size`): judging takes about 15-20 ms a file, and
+Dask spends a few milliseconds on each task (scheduling, messages, results), so a task of
+one file would spend a fifth of its time on Dask. A task aims at 50 files, about a second
+of judging, where that overhead is well under one percent; but a run of few files is cut
+into at least four tasks per worker thread, so that every thread has work and none waits
+long for the last one.
+
+Where the bytes come from: by default each worker reads ``item.path`` itself (the
+archive is mounted where the workers run). With ``ship_bytes`` (or an item that carries
+``data``) the caller's process reads the bytes and ships them with the task, a batch
+scattered to the cluster as one piece of data. In both cases the worker checks the
+SHA-256 of the bytes against ``item.sha256``: an archived copy that changed is an error
+for that item, never judged as if it were the recorded input. The caller keeps a bounded
+number of tasks in flight (two per worker thread, and at most 256 MiB of shipped bytes),
+submitting the next batch as one finishes, so memory stays bounded however long the run.
+
+With a :class:`~pipeline.regrade.cache.RegradeCache`, every judgement is kept as it
+arrives (one short transaction per batch), and an item already kept under the same rules
+and setting is yielded from the cache without being sent. Items of one run with the same
+input and setting are judged once and the result given to each of them.
+
+Stopping: when the consumer closes the iterator early, or Ctrl-C interrupts it, the tasks
+in flight (two per worker thread at most, a second or two of judging) are let finish, for
+``DRAIN_S`` seconds at most, and their judgements kept in the cache; nothing more is
+submitted, the cluster (if this run started it) is closed, and a KeyboardInterrupt is
+raised again. A second Ctrl-C cancels the tasks in flight at once. So a run stopped and
+started again judges no file twice, unless it was stopped twice or a task outlived DRAIN_S.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import datetime
+import gc
+import hashlib
+import logging
+import math
+import os
+import signal
+import sys
+import threading
+import time
+from collections import OrderedDict, deque
+from collections.abc import Iterable, Iterator, Mapping, Sized
+from dataclasses import dataclass, field
+from pathlib import Path, PurePath
+from typing import TYPE_CHECKING, Any
+
+from pipeline import __version__
+from pipeline.errors import FormgateError, InputError, ProfileError, RulesError
+from pipeline.model import SourceRef
+from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
+from pipeline.read.limits import TextLimits
+from pipeline.regrade.cache import CachedResult, CacheKey, RegradeCache
+
+if TYPE_CHECKING:
+    from distributed import Client
+
+    from pipeline.read.profile import Profile
+    from pipeline.rulebook.book import RuleBook
+
+log = logging.getLogger("formgate.regrade")
+
+# Much of distributed's Client and Future is untyped: inside a run they are held as Any.
+_Client = Any
+_Future = Any
+
+
+def _distributed() -> Any:
+    """The distributed package, imported when a run starts (its import takes a while)."""
+    import distributed
+
+    return distributed
+
+TARGET_FILES_PER_TASK = 50  # about 1 s of judging at ~20 ms a file: Dask's few ms a task are < 1 %
+TASKS_PER_THREAD = 4  # a short run is cut finer, so that every worker thread stays busy to the end
+IN_FLIGHT_PER_THREAD = 2  # tasks submitted and not yet collected, per worker thread
+SHIP_BYTES_IN_FLIGHT = 256 * 2**20  # shipped bytes submitted and not yet collected, at most
+READY_MAX = 1024  # answers (from the cache) held before they are yielded
+WORKER_WAIT_S = 60.0  # how long a run on a scheduler waits for its first workers
+DRAIN_S = 30.0  # how long a stopped run lets its running tasks finish, to keep their results
+
+
+@dataclass(frozen=True, slots=True)
+class RegradeItem:
+    """One archived input to judge again.
+
+    ``sha256`` is the recorded SHA-256 of its bytes and ``name`` the file name it was judged
+    under (the result document names it; its ending says how to read it). ``path`` is where
+    the archived bytes are, as the workers see it; ``data`` the bytes themselves (shipped to
+    the workers whatever ``ship_bytes`` says). The import profile is ``profile_text`` (with
+    ``profile_name`` for messages), or, with ``profile_name`` alone, the profile of that file
+    name in the rules bundle's ``profiles/``. ``key`` is the caller's own id, given back in
+    :attr:`Judged.item_key`.
+    """
+
+    sha256: str
+    name: str
+    path: str | None = None
+    data: bytes | None = field(default=None, repr=False)
+    profile_text: str | None = field(default=None, repr=False)
+    profile_name: str | None = None
+    key: Any = None
+
+    def __post_init__(self) -> None:
+        if self.path is None and self.data is None:
+            raise ValueError(f"{self.name}: a regrade item needs its archive path or its bytes")
+
+
+@dataclass(frozen=True, slots=True)
+class Judged:
+    """What one item came to under the rules with digest ``rules_digest``.
+
+    Exactly one of ``result_json`` (the result document's text, as ``report.result.to_json``
+    writes it) and ``error`` (the located message of an "error" verdict, as a station
+    records it) is set. ``judged`` is False when ``error`` says why the file was *not*
+    judged (its archived copy cannot be read or has changed, its import profile is missing,
+    or formgate failed on it): such an answer is not kept in the cache, and a later run
+    tries again. ``from_cache`` is True for a judgement kept by an earlier run.
+    """
+
+    item_key: Any
+    sha256: str
+    rules_digest: str
+    result_json: str | None
+    error: str | None
+    judged: bool = True
+    from_cache: bool = False
+
+
+@dataclass
+class RunStats:
+    """Counts of one run, filled in as it goes (pass one to ``judge_many`` to read them).
+
+    ``files_judged`` counts the files whose answers came back from the workers, and
+    ``judging_s`` the seconds the workers spent on them (reading, checking and judging);
+    ``task_s`` sums each collected task's time on its worker, the batch's overhead
+    inside the worker included.
+    """
+
+    workers: int = 0  # worker threads when the run began
+    batch_files: int = 0  # files per task
+    items: int = 0  # items taken from the caller
+    from_cache: int = 0  # answered from the cache
+    shared: int = 0  # given the answer of an item of this run with the same input and setting
+    not_sent: int = 0  # answered without a worker (unreadable for shipping, profile missing)
+    tasks: int = 0  # tasks submitted
+    tasks_done: int = 0  # tasks collected
+    files_sent: int = 0  # files in the tasks submitted
+    files_judged: int = 0
+    judging_s: float = 0.0
+    task_s: float = 0.0
+    cancelled_tasks: int = 0  # tasks cancelled when the run stopped early
+
+
+# ---------------------------------------------------------------------------------------------
+# The rules bundle
+
+
+@dataclass(frozen=True, slots=True)
+class Rules:
+    """A rules folder read into memory: ``files`` holds (name, text) of every rule file
+    (``*.toml``) and import profile (``profiles/*.toml``), sorted by name; ``digest`` is the
+    SHA-256 over the names and texts. ``folder`` is the folder's name as given, for messages.
+
+    A judgement depends on the whole bundle (the rule book picks a rule set by cell type,
+    a profile reads the file), so the digest covers all of it: an edit to any file is a
+    new regrade key.
+    """
+
+    folder: str
+    files: tuple[tuple[str, str], ...]
+    digest: str
+
+    @classmethod
+    def read(cls, folder: str | os.PathLike[str]) -> Rules:
+        """Read and check a rules folder. Raises RulesError or ProfileError for a file that is
+        not valid (the first problem, located), as loading the folder for a station would."""
+        root = Path(folder)
+        if not root.is_dir():
+            raise RulesError(
+                "rule folder not found",
+                SourceRef(str(root)),
+                hint="Create it, or give the folder that holds the rule files.",
+            )
+        paths = sorted(p for p in root.glob("*.toml") if p.is_file())
+        paths += sorted(p for p in root.glob("profiles/*.toml") if p.is_file())
+        texts = {}
+        for path in paths:
+            relative = path.relative_to(root).as_posix()
+            texts[relative] = _utf8(path, relative)
+        return cls.from_texts(texts, folder=str(root))
+
+    @classmethod
+    def from_texts(cls, texts: Mapping[str, str], *, folder: str = "rules") -> Rules:
+        """A bundle of texts already in hand (for instance the rule files a ledger keeps):
+        rule files by bare file name, import profiles as ``profiles/<name>``. Checked as
+        :meth:`read` checks a folder."""
+        for name in texts:
+            parts = PurePath(name).parts
+            if not name.endswith(".toml") or not (
+                len(parts) == 1 or (len(parts) == 2 and parts[0] == "profiles")
+            ):
+                raise ValueError(f"{name}: a rules bundle holds *.toml and profiles/*.toml only")
+        files = tuple(sorted(texts.items()))
+        digest = hashlib.sha256()
+        for name, text in files:
+            for part in (name.encode("utf-8"), text.encode("utf-8")):
+                digest.update(len(part).to_bytes(8, "big"))
+                digest.update(part)
+        bundle = cls(folder, files, digest.hexdigest())
+        if not bundle.rule_files:
+            raise RulesError(
+                "no rule files (*.toml) in this folder",
+                SourceRef(folder),
+                hint="Add at least one rule file; docs/rules.md describes them.",
+            )
+        bundle.rulebook()  # raises the first problem
+        from pipeline.read.profile import load_profile
+
+        for name, text in bundle.profile_files.items():
+            load_profile(text, bundle.source(name))
+        return bundle
+
+    @property
+    def rule_files(self) -> dict[str, str]:
+        """The rule files, name -> text, in name order."""
+        return {name: text for name, text in self.files if "/" not in name}
+
+    @property
+    def profile_files(self) -> dict[str, str]:
+        """The import profiles, ``profiles/<name>`` -> text."""
+        return {name: text for name, text in self.files if name.startswith("profiles/")}
+
+    def source(self, name: str) -> str:
+        """How a file of the bundle is named in messages: as loading the folder names it."""
+        return str(PurePath(self.folder) / name)
+
+    def rulebook(self) -> RuleBook:
+        """Parse the rule files into a RuleBook, as ``load_rules_dir`` loads the folder."""
+        from pipeline.rulebook.book import RuleBook, load_rule_set
+
+        return RuleBook(
+            tuple(load_rule_set(text, self.source(name)) for name, text in self.rule_files.items())
+        )
+
+    def profile_text(self, profile_name: str) -> str | None:
+        """The text of the bundle's import profile of that file name, or None."""
+        return dict(self.files).get(f"profiles/{PurePath(profile_name).name}")
+
+
+def _utf8(path: Path, relative: str) -> str:
+    data = path.read_bytes()
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = data[: exc.start].count(b"\n") + 1
+        column = exc.start - data.rfind(b"\n", 0, exc.start)  # in bytes, 1-based
+        kind = ProfileError if relative.startswith("profiles/") else RulesError
+        raise kind(
+            "not UTF-8 text", SourceRef(str(path), line, column), "Save the file with UTF-8 encoding."
+        ) from None
+
+
+def setting_digest(
+    name: str,
+    profile_name: str | None,
+    profile_text: str | None,
+    max_uncompressed_bytes: int,
+    limits: TextLimits | None,
+) -> str:
+    """SHA-256 of what decides a result besides the bytes and the rules: the name the file is
+    judged under, its import profile, the size limits and the formgate version."""
+    parts = [
+        name,
+        profile_name or "",
+        profile_text if profile_text is not None else "\0none",
+        str(max_uncompressed_bytes),
+        repr(limits),
+        __version__,
+    ]
+    digest = hashlib.sha256()
+    for part in parts:
+        data = part.encode("utf-8")
+        digest.update(len(data).to_bytes(8, "big"))
+        digest.update(data)
+    return digest.hexdigest()
+
+
+def batch_size(files: int | None, threads: int) -> int:
+    """Files per task: TARGET_FILES_PER_TASK, or fewer so that a run of ``files`` makes at
+    least TASKS_PER_THREAD tasks per worker thread (never fewer than one file).
+
+    >>> batch_size(10_000_000, 512), batch_size(2000, 2), batch_size(30, 2), batch_size(3, 8)
+    (50, 50, 4, 1)
+    """
+    if files is None:
+        return TARGET_FILES_PER_TASK
+    return max(1, min(TARGET_FILES_PER_TASK, math.ceil(files / (max(threads, 1) * TASKS_PER_THREAD))))
+
+
+# ---------------------------------------------------------------------------------------------
+# The worker side: runs in the Dask worker processes
+
+
+@dataclass(frozen=True, slots=True)
+class _File:
+    """One file of a task; ``data`` None: the worker reads ``path``."""
+
+    index: int
+    sha256: str
+    name: str
+    path: str | None
+    data: bytes | None = field(repr=False)
+    profile_name: str | None
+    profile_text: str | None = field(repr=False)
+
+
+@dataclass(frozen=True, slots=True)
+class _Batch:
+    files: tuple[_File, ...]
+    analysed_at: datetime.datetime
+    max_uncompressed_bytes: int
+    limits: TextLimits | None
+
+
+@dataclass(frozen=True, slots=True)
+class _Answer:
+    index: int
+    result_json: str | None
+    error: str | None
+    judged: bool
+    seconds: float
+
+
+@dataclass(frozen=True, slots=True)
+class _Done:
+    answers: tuple[_Answer, ...]
+    seconds: float  # the whole task on its worker
+    pid: int
+
+
+_lock = threading.Lock()
+_stack_ready = False
+_books: OrderedDict[str, RuleBook] = OrderedDict()  # rules digest -> parsed rule book
+_profiles: OrderedDict[tuple[str, str], Profile] = OrderedDict()
+_counts = {"rules_parsed": 0, "files_judged": 0, "tasks": 0}
+_KEEP_BOOKS, _KEEP_PROFILES = 4, 64
+
+
+def worker_state() -> dict[str, int]:
+    """This worker process's counts (rule books parsed, files judged, tasks run); for
+    ``Client.run``."""
+    with _lock:
+        return {**_counts, "stack_ready": int(_stack_ready), "pid": os.getpid()}
+
+
+def _prepare_stack() -> None:
+    """Import the judging stack once per process, then take its long-lived objects out of the
+    garbage collector's sight (as a station's worker does, pipeline.station.worker)."""
+    global _stack_ready
+    if _stack_ready:
+        return
+    import pipeline.judge.evaluate
+    import pipeline.judge.metrics
+    import pipeline.judge.segmentation
+    import pipeline.read.profile
+    import pipeline.report.result
+    import pipeline.runner  # noqa: F401
+
+    gc.collect()
+    gc.freeze()
+    _stack_ready = True
+
+
+def _rule_book(rules: Rules) -> RuleBook:
+    """The rule book of a bundle, parsed once per worker process and digest."""
+    book = _books.get(rules.digest)
+    if book is None:
+        book = rules.rulebook()
+        _books[rules.digest] = book
+        _counts["rules_parsed"] += 1
+        while len(_books) > _KEEP_BOOKS:
+            _books.popitem(last=False)
+    return book
+
+
+def _profile(name: str | None, text: str) -> Profile:
+    from pipeline.read.profile import load_profile
+
+    key = (name or "", hashlib.sha256(text.encode("utf-8")).hexdigest())
+    with _lock:
+        found = _profiles.get(key)
+    if found is None:
+        found = load_profile(text, name or "import profile")  # raises ProfileError
+        with _lock:
+            _profiles[key] = found
+            while len(_profiles) > _KEEP_PROFILES:
+                _profiles.popitem(last=False)
+    return found
+
+
+def _judge_batch(rules: Rules, batch: _Batch) -> _Done:
+    """A task: judge every file of the batch; never raises for one file's sake."""
+    started = time.perf_counter()
+    with _lock:
+        _prepare_stack()
+        book = _rule_book(rules)
+        _counts["tasks"] += 1
+    answers = []
+    for file in batch.files:
+        begun = time.perf_counter()
+        result_json, error, judged = _judge_file(book, file, batch)
+        answers.append(_Answer(file.index, result_json, error, judged, time.perf_counter() - begun))
+    with _lock:
+        _counts["files_judged"] += len(batch.files)
+    return _Done(tuple(answers), time.perf_counter() - started, os.getpid())
+
+
+def _judge_file(book: RuleBook, file: _File, batch: _Batch) -> tuple[str | None, str | None, bool]:
+    """(result document, None, True), (None, error verdict, True), or (None, why not judged, False)."""
+    from pipeline.read.limits import check_text
+    from pipeline.read.readings import looks_like_readings
+    from pipeline.report.result import to_json
+    from pipeline.runner import judge
+
+    where = SourceRef(file.name)
+    if file.data is not None:
+        data = file.data
+    else:
+        assert file.path is not None
+        try:
+            data = Path(file.path).read_bytes()
+        except OSError as exc:
+            unreadable = InputError(
+                f"the archived copy cannot be read ({exc.strerror or exc}); it was not judged",
+                where,
+                "Let the workers read the archive (or ship the bytes), then regrade it again.",
+            )
+            return None, str(unreadable), False
+    digest = hashlib.sha256(data).hexdigest()
+    if digest != file.sha256:
+        changed = InputError(
+            f"the archived copy has changed: its SHA-256 is {digest[:16]}..., the input recorded "
+            f"had {file.sha256[:16]}...; it was not judged",
+            where,
+            "Restore the archived copy from a backup; a regrade judges only the recorded bytes.",
+        )
+        return None, str(changed), False
+    try:
+        profile = None if file.profile_text is None else _profile(file.profile_name, file.profile_text)
+        # a workbook's or Parquet file's lines mean nothing: its reader bounds what it unpacks
+        if batch.limits is not None and (profile is None or profile.file_format == "text"):
+            check_text(data, file.name, batch.limits)
+        if looks_like_readings(data):
+            raise InputError(
+                "an OCV reading file, not a cycle file: a regrade judges cycle files",
+                where,
+                "Leave reading files out of a regrade; their cells' aging stage is judged with "
+                "the cells' cycle files.",
+            )
+        result = judge(
+            data,
+            file.name,
+            book,
+            analysed_at=batch.analysed_at,
+            profile=profile,
+            max_uncompressed_bytes=batch.max_uncompressed_bytes,
+            input_sha256=digest,
+        )
+        return to_json(result), None, True
+    except FormgateError as exc:
+        return None, str(exc), True
+    except MemoryError:
+        short = f"{file.name}: judging the file needs more memory than the worker has; it was not judged."
+        return None, short, False
+    except Exception as exc:
+        log.exception("%s: internal error while judging", file.name)
+        bug = (
+            f"{file.name}: formgate could not judge this file because of an internal error "
+            f"({type(exc).__name__}: {exc}); it was not judged.\n  Please report it."
+        )
+        return None, bug, False
+
+
+# ---------------------------------------------------------------------------------------------
+# The caller side
+
+
+def judge_many(
+    items: Iterable[RegradeItem],
+    rules: Rules,
+    *,
+    scheduler: str | Client | None = None,
+    workers: int | None = None,
+    ship_bytes: bool = False,
+    batch_files: int | None = None,
+    analysed_at: datetime.datetime,
+    cache: RegradeCache | str | os.PathLike[str] | None = None,
+    progress: bool = True,
+    max_uncompressed_bytes: int = MAX_UNCOMPRESSED_BYTES,
+    limits: TextLimits | None = None,
+    stats: RunStats | None = None,
+) -> Iterator[Judged]:
+    """Judge every item under ``rules`` on a Dask cluster; yield a Judged per item as it comes
+    back (in no set order). Nothing starts before the first item is asked for.
+
+    ``scheduler``: None starts a LocalCluster on this machine (``workers`` processes of one
+    thread each, default one per core, on 127.0.0.1) and closes it at the end; an address
+    (``tcp://host:port``) connects to that cluster's scheduler, waiting for ``workers``
+    workers (default 1) to be there; a Client is used as it is and left open.
+    ``ship_bytes``: the caller's process reads the archived bytes and ships them, for
+    workers that cannot see the archive. ``batch_files``: files per task (default
+    :func:`batch_size`). ``analysed_at``: the analysis time every result document carries.
+    ``cache``: a RegradeCache or the path of its file; ``stats``: a RunStats filled as the
+    run goes. ``max_uncompressed_bytes`` and ``limits`` bound one input as a station's
+    settings do. ``progress``: a bar on standard error (when it is a terminal).
+    """
+    if batch_files is not None and batch_files < 1:
+        raise ValueError("batch_files must be at least 1")
+    if workers is not None and workers < 1:
+        raise ValueError("workers must be at least 1")
+    run = _Run(
+        rules,
+        scheduler=scheduler,
+        workers=workers,
+        ship_bytes=ship_bytes,
+        batch_files=batch_files,
+        analysed_at=analysed_at,
+        cache=cache,
+        progress=progress,
+        max_uncompressed_bytes=max_uncompressed_bytes,
+        limits=limits,
+        stats=stats if stats is not None else RunStats(),
+    )
+    return run.answers(items)
+
+
+@dataclass
+class _Flight:
+    """A submitted task: its items (each with those sharing its answer) and their keys."""
+
+    groups: list[list[RegradeItem]]
+    keys: list[CacheKey]
+    shipment: _Future | None
+    shipped_bytes: int
+
+
+class _Run:
+    def __init__(
+        self,
+        rules: Rules,
+        *,
+        scheduler: str | Client | None,
+        workers: int | None,
+        ship_bytes: bool,
+        batch_files: int | None,
+        analysed_at: datetime.datetime,
+        cache: RegradeCache | str | os.PathLike[str] | None,
+        progress: bool,
+        max_uncompressed_bytes: int,
+        limits: TextLimits | None,
+        stats: RunStats,
+    ) -> None:
+        self.rules = rules
+        self.scheduler = scheduler
+        self.workers = workers
+        self.ship_bytes = ship_bytes
+        self.batch_files = batch_files
+        self.analysed_at = analysed_at
+        self.cache_arg = cache
+        self.progress = progress
+        self.max_uncompressed_bytes = max_uncompressed_bytes
+        self.limits = limits
+        self.stats = stats
+        self.ready: deque[Judged] = deque()
+        self.waiting: dict[CacheKey, list[RegradeItem]] = {}  # keys in flight or in the open batch
+        self.open: list[tuple[CacheKey, RegradeItem]] = []  # the batch being filled
+        self.flights: dict[str, tuple[_Future, _Flight]] = {}
+        self.shipped_in_flight = 0
+        self.exhausted = False
+
+    # -- the run --------------------------------------------------------------------------------
+
+    def answers(self, items: Iterable[RegradeItem]) -> Iterator[Judged]:
+        total = len(items) if isinstance(items, Sized) else None
+        with contextlib.ExitStack() as stack:
+            self.cache = self._open_cache(stack)
+            self.bar = stack.enter_context(self._bar(total))
+            self.client = self._connect(stack)
+            threads = max(1, sum(self.client.nthreads().values()))
+            self.stats.workers = threads
+            self.size = self.batch_files or batch_size(total, threads)
+            self.stats.batch_files = self.size
+            self.most_in_flight = IN_FLIGHT_PER_THREAD * threads
+            self.rules_future = self.client.scatter(self.rules, broadcast=True, hash=False)
+            self.done: Any = _distributed().as_completed()
+            source = iter(items)
+            try:
+                while True:
+                    while not self.exhausted and self._room() and len(self.ready) < READY_MAX:
+                        self._take(source)
+                    while self.ready:
+                        answer = self.ready.popleft()
+                        self._count(answer)
+                        yield answer
+                    if not self.flights:
+                        if self.exhausted:
+                            break
+                        continue
+                    future = next(self.done)
+                    self._collect(future)
+            except BaseException:  # GeneratorExit (closed early), KeyboardInterrupt, a failure
+                self._stop()
+                raise
+            finally:
+                self.rules_future.release()
+
+    def _open_cache(self, stack: contextlib.ExitStack) -> RegradeCache | None:
+        if self.cache_arg is None or isinstance(self.cache_arg, RegradeCache):
+            return self.cache_arg
+        return stack.enter_context(RegradeCache(self.cache_arg))
+
+    def _bar(self, total: int | None) -> Any:
+        from tqdm import tqdm
+
+        shown = self.progress and sys.stderr.isatty()
+        return tqdm(
+            total=total,
+            unit="file",
+            desc="regrade",
+            file=sys.stderr,
+            disable=not shown,
+            dynamic_ncols=True,
+            smoothing=0.05,
+        )
+
+    def _connect(self, stack: contextlib.ExitStack) -> _Client:
+        dd = _distributed()
+        if self.scheduler is None:
+            # Ctrl-C at a terminal goes to every process of its group: the worker processes
+            # ignore it (they inherit an ignored SIGINT), so that this process stops them
+            with _ctrl_c_ignored():
+                cluster = dd.LocalCluster(
+                    n_workers=self.workers or os.cpu_count() or 1,
+                    threads_per_worker=1,
+                    processes=True,
+                    host="127.0.0.1",
+                    dashboard_address=None,
+                    silence_logs=logging.ERROR,
+                )
+            stack.callback(cluster.close)
+            local: _Client = dd.Client(cluster)
+            stack.callback(local.close)
+            return local
+        client: _Client = self.scheduler
+        if isinstance(self.scheduler, str):
+            client = dd.Client(self.scheduler, timeout=WORKER_WAIT_S)
+            stack.callback(client.close)
+        try:
+            client.wait_for_workers(self.workers or 1, timeout=WORKER_WAIT_S)
+        except TimeoutError:
+            raise RuntimeError(
+                f"fewer than {self.workers or 1} Dask worker(s) joined the scheduler at "
+                f"{client.scheduler_info()['address']} within {WORKER_WAIT_S:g} s"
+            ) from None
+        return client
+
+    # -- taking items and submitting batches ------------------------------------------------------
+
+    def _room(self) -> bool:
+        if len(self.flights) >= self.most_in_flight:
+            return False
+        return not self.flights or self.shipped_in_flight < SHIP_BYTES_IN_FLIGHT
+
+    def _take(self, source: Iterator[RegradeItem]) -> None:
+        """Fill the open batch from ``source`` (answering what needs no worker) and submit it
+        once full or once ``source`` is done."""
+        while len(self.open) < self.size and len(self.ready) < READY_MAX:
+            try:
+                item = next(source)
+            except StopIteration:
+                self.exhausted = True
+                break
+            self.stats.items += 1
+            self._place(item)
+        if self.open and (len(self.open) >= self.size or self.exhausted):
+            self._submit()
+
+    def _place(self, item: RegradeItem) -> None:
+        profile_text = item.profile_text
+        if profile_text is None and item.profile_name is not None:
+            profile_text = self.rules.profile_text(item.profile_name)
+            if profile_text is None:
+                missing = InputError(
+                    f"its import profile '{item.profile_name}' is not in the rules folder "
+                    f"{self.rules.folder}; it was not judged",
+                    SourceRef(item.name),
+                    "Put the profile into the rules folder's profiles/, or give its text.",
+                )
+                self._not_sent(item, str(missing))
+                return
+        setting = setting_digest(
+            item.name, item.profile_name, profile_text, self.max_uncompressed_bytes, self.limits
+        )
+        key = CacheKey(item.sha256, self.rules.digest, setting)
+        sharing = self.waiting.get(key)
+        if sharing is not None:
+            sharing.append(item)
+            self.stats.shared += 1
+            return
+        kept = self.cache.get(key) if self.cache is not None else None
+        if kept is not None:
+            self.stats.from_cache += 1
+            self.ready.append(
+                Judged(item.key, item.sha256, self.rules.digest, kept.result_json, kept.error,
+                       judged=True, from_cache=True)
+            )
+            return
+        if profile_text is not item.profile_text:
+            item = dataclasses.replace(item, profile_text=profile_text)
+        self.waiting[key] = [item]
+        self.open.append((key, item))
+
+    def _not_sent(self, item: RegradeItem, error: str) -> None:
+        self.stats.not_sent += 1
+        self.ready.append(Judged(item.key, item.sha256, self.rules.digest, None, error, judged=False))
+
+    def _submit(self) -> None:
+        files: list[_File] = []
+        groups: list[list[RegradeItem]] = []
+        keys: list[CacheKey] = []
+        shipped = 0
+        for key, item in self.open:
+            data = item.data
+            if data is None and self.ship_bytes:
+                assert item.path is not None
+                try:
+                    data = Path(item.path).read_bytes()
+                except OSError as exc:
+                    unreadable = InputError(
+                        f"the archived copy cannot be read ({exc.strerror or exc}); it was not judged",
+                        SourceRef(item.name),
+                        "Let this process read the archive, then regrade it again.",
+                    )
+                    for sharer in self.waiting.pop(key):
+                        self._not_sent(sharer, str(unreadable))
+                    continue
+            shipped += len(data) if data is not None else 0
+            files.append(
+                _File(len(files), item.sha256, item.name, item.path, data, item.profile_name,
+                      item.profile_text)
+            )
+            groups.append(self.waiting[key])
+            keys.append(key)
+        self.open = []
+        if not files:
+            return
+        batch = _Batch(tuple(files), self.analysed_at, self.max_uncompressed_bytes, self.limits)
+        shipment = None
+        if shipped:
+            # scattered as data, not put into the task graph: Dask warns about (and the
+            # scheduler would hold) a graph of many megabytes
+            shipment = self.client.scatter(batch, hash=False)
+            future = self.client.submit(_judge_batch, self.rules_future, shipment, pure=False)
+        else:
+            future = self.client.submit(_judge_batch, self.rules_future, batch, pure=False)
+        self.flights[future.key] = (future, _Flight(groups, keys, shipment, shipped))
+        self.shipped_in_flight += shipped
+        self.done.add(future)
+        self.stats.tasks += 1
+        self.stats.files_sent += len(files)
+
+    # -- collecting --------------------------------------------------------------------------------
+
+    def _land(self, future: _Future) -> _Flight:
+        _, flight = self.flights.pop(future.key)
+        self.shipped_in_flight -= flight.shipped_bytes
+        if flight.shipment is not None:
+            flight.shipment.release()
+        for key in flight.keys:
+            self.waiting.pop(key, None)
+        return flight
+
+    def _collect(self, future: _Future) -> None:
+        """Keep and queue the answers of a finished task."""
+        flight = self._land(future)
+        if future.status == "finished":
+            done: _Done = future.result()
+            self._keep(flight, done)
+            answers = {a.index: a for a in done.answers}
+            for index, group in enumerate(flight.groups):
+                a = answers[index]
+                for item in group:
+                    self.ready.append(
+                        Judged(item.key, item.sha256, self.rules.digest, a.result_json, a.error, a.judged)
+                    )
+        else:
+            # a task that failed as a whole (its worker died again and again, say): every file
+            # of it is answered as not judged, and a later run tries them again
+            try:
+                reason = f"{type(future.exception()).__name__}: {future.exception()}"
+            except Exception as exc:  # cancelled under us (the scheduler went away)
+                reason = f"{type(exc).__name__}: {exc}"
+            for group in flight.groups:
+                for item in group:
+                    failed = f"{item.name}: the cluster could not judge it ({reason}); it was not judged."
+                    self.ready.append(Judged(item.key, item.sha256, self.rules.digest, None, failed, False))
+        future.release()
+
+    def _keep(self, flight: _Flight, done: _Done) -> None:
+        self.stats.tasks_done += 1
+        self.stats.files_judged += len(done.answers)
+        self.stats.judging_s += sum(a.seconds for a in done.answers)
+        self.stats.task_s += done.seconds
+        if self.cache is not None:
+            self.cache.put_many(
+                (flight.keys[a.index], CachedResult(a.result_json, a.error, self.analysed_at))
+                for a in done.answers
+                if a.judged
+            )
+
+    def _count(self, answer: Judged) -> None:
+        """The bar counts the files answered now, so that its rate and time left are theirs."""
+        if not answer.from_cache:
+            self.bar.update(1)
+            return
+        if self.bar.total is not None:
+            self.bar.total -= 1
+        self.bar.set_postfix(cached=self.stats.from_cache)
+
+    # -- stopping early ------------------------------------------------------------------------------
+
+    def _stop(self) -> None:
+        """Let the tasks in flight finish (DRAIN_S at most) and keep their judgements, so that
+        no file is judged again by the next run; a second Ctrl-C cancels them at once."""
+        if not self.flights:
+            return
+        futures = [future for future, _ in self.flights.values()]
+        try:
+            with contextlib.suppress(TimeoutError):
+                _distributed().wait(futures, timeout=DRAIN_S)
+            for future in futures:
+                if future.status == "finished":
+                    self._keep(self._land(future), future.result())
+                    future.release()
+        except KeyboardInterrupt:
+            log.warning("regrade stopped at once: the judgements of the tasks in flight are lost")
+        except Exception as exc:  # the cluster went away: nothing more to keep
+            log.warning("regrade stopped: the tasks in flight are lost (%s)", exc)
+        finally:
+            left = [future for future, _ in self.flights.values()]
+            self.stats.cancelled_tasks += len(left)
+            with contextlib.suppress(Exception):
+                self.client.cancel(left)
+            for future, flight in self.flights.values():
+                if flight.shipment is not None:
+                    flight.shipment.release()
+                future.release()
+            self.flights.clear()
+
+
+@contextlib.contextmanager
+def _ctrl_c_ignored() -> Iterator[None]:
+    """SIGINT ignored while the block runs (from the main thread; elsewhere nothing changes).
+
+    A process started meanwhile inherits the ignored SIGINT, and Python leaves it so. A
+    Ctrl-C pressed during the block (the cluster's start, a second or two) is not seen.
+    """
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    before = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, before)
