@@ -19,7 +19,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from pipeline import __version__
-from pipeline.cli import check, demo, lots, review, station, verify
+from pipeline.cli import check, demo, lots, profile, review, station, verify
 from pipeline.cli.exits import EXIT_BUG, EXIT_INTERRUPTED, EXIT_USER
 from pipeline.errors import FormgateError
 
@@ -31,7 +31,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"formgate {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
-    for family in (check, station, lots, review, verify, demo):
+    for family in (check, profile, station, lots, review, verify, demo):
         family.add_commands(sub)
     return parser
 

@@ -92,7 +92,16 @@ def guess_profile(data: bytes, name: str) -> str:
     return _guess_text(raw, name)
 
 
+_WORKBOOK_NAMES = (".xlsx", ".xlsm", ".xls", ".ods", ".xlsb")
+
+
 def _not_a_table(kind: str, name: str) -> InputError:
+    if kind == "zip archive" and name.lower().endswith(_WORKBOOK_NAMES):
+        return InputError(
+            "the workbook cannot be read: it is damaged or cut short (not a whole zip package)",
+            SourceRef(name),
+            "Copy the file again, or open it in its spreadsheet program and save or export it again.",
+        )
     if kind == "password-protected workbook":
         return InputError(
             "the file is a password-protected workbook, which formgate cannot open",
