@@ -142,8 +142,6 @@ def test_every_file_in_docs_layouts_is_an_example_here() -> None:
 def test_a_guessed_profile_reads_each_layout_example_as_its_shipped_profile(
     file_name: str, profile: str | None
 ) -> None:
-    if file_name.endswith(".parquet"):
-        pytest.importorskip("pipeline.read.parquet")
     data = (LAYOUTS / file_name).read_bytes()
     shipped = None if profile is None else (PROFILES / profile).read_text("utf-8")
     want = read_with(data, file_name, shipped, str(profile))
@@ -175,7 +173,6 @@ def test_a_workbook_of_local_date_time_cells_is_read_in_the_zone_its_info_sheet_
 
 
 def test_a_parquet_file_of_utc_timestamps_needs_no_zone() -> None:
-    pytest.importorskip("pipeline.read.parquet")
     from pipeline.demo.layouts import parquet
 
     twin = _twin()
@@ -599,3 +596,35 @@ def test_profile_guess_with_out_as_docs_cli_md_shows_it(
     out, err = capsys.readouterr()
     assert out + err == shown
     assert Path("rules/profiles/lot_export.toml").is_file()
+
+
+def test_a_date_and_a_time_of_day_in_two_columns_is_named_as_what_the_profile_cannot_read() -> None:
+    data = (
+        b"# cell_id: C1\n# lot: L1\n# cell_type: T\nDate;Time;U (V);I (A)\n"
+        b"02.06.2024;08:26:00;3,2;0\n02.06.2024;08:27:00;3,3;1,5\n02.06.2024;08:28:00;3,4;1,5\n"
+    )
+    text = guess_profile(data, "two.csv")
+    assert "# - the date (Date) and the time of day (Time) stand in two columns" in text
+    assert "[mode]" not in text and "mode =" not in text  # a column of dates is no mode column
+
+
+def test_a_counter_of_one_direction_only_is_left_out_with_its_reason() -> None:
+    # the cycler's "Charge (Ah)" counts only while charging: beside formgate's integral of
+    # every step it would put a data-quality note on every certificate
+    record = _record()
+    lines = ["# cell_id: C1", "# lot: L1", "# cell_type: T", "Time (s),Voltage (V),Current (A),Step,Charge capacity (Ah)"]
+    counted = 0.0
+    for k, (t, v, i, s) in enumerate(zip(record["time"], record["voltage"], record["current"], record["step"], strict=True)):
+        if k and i > 1:
+            counted += i * 60 / 3600
+        lines.append(f"{t},{v},{i},{int(s)},{counted:.6f}")
+    text = guess_profile(("\n".join(lines) + "\n").encode(), "c1.csv")
+    assert "capacity =" not in text
+    assert "# not read: 'Charge capacity (Ah)' (the cycler's capacity counter in Ah, 50 % apart" in text
+
+
+def test_a_v1_column_name_that_holds_something_else_is_not_read_as_that_quantity() -> None:
+    data = b"# cell_id: C1\n# lot: L1\n# cell_type: T\nt (s),U (V),I (A),cycle\n0,3.2,0,a\n60,3.3,5,b\n120,3.4,5,c\n"
+    text, trace = guessed(data, "c1.csv")
+    assert 'cycle = "(no cycle column)"' in text
+    assert trace.cycle is None

@@ -46,7 +46,7 @@ def cmd_profile_guess(args: argparse.Namespace) -> int:
         print(text, end="")
     # say at once when the file cannot be read with the profile as it is (e.g. no cell type)
     try:
-        read_cycle_file(data, str(path), load_profile(text, str(args.out or "the guessed profile")))
+        read_cycle_file(data, str(path), load_profile(text, str(args.out or "(the printed profile)")))
     except FormgateError as exc:
         print(f"note: {path.name} cannot be read with this profile as it is:", file=sys.stderr)
         for line in str(exc).splitlines():

@@ -245,12 +245,12 @@ def guess_parquet(data: bytes, name: str) -> str:
             SourceRef(name),
             "Copy the file again, or write it again as Parquet.",
         ) from None
+    from pipeline.read.parquet import OWN_ENTRIES
+
     metadata: dict[str, str] = {}
     for key, value in (schema.metadata or {}).items():
-        text_key = key.decode("utf-8", "replace")
-        if text_key.startswith("ARROW:") or text_key == "pandas":
-            continue
-        metadata[text_key] = value.decode("utf-8", "replace").strip()
+        if key not in OWN_ENTRIES:
+            metadata[key.decode("utf-8", "replace")] = value.decode("utf-8", "replace").strip()
     fields = [str(n) for n in schema.names]
     columns: list[Column] = [
         make_column(Cells(i, fields[i], [None if c is None else c for c in cells[i]]), ".")

@@ -208,7 +208,13 @@ class ColumnGuess:
     modes: dict[str, list[str]] = field(default_factory=dict)
     mode_reasons: dict[str, str] = field(default_factory=dict)
     unread: list[str] = field(default_factory=list)  # comments on columns left out
+    aside: dict[int, str] = field(default_factory=dict)  # why a column first chosen was left out
     problems: list[str] = field(default_factory=list)  # what the profile cannot express
+
+
+    def set_aside(self, roles: dict[str, Column], role: str, why: str) -> None:
+        """Leave out the column first chosen for ``role``, saying why."""
+        self.aside[roles.pop(role).index] = why
 
 
 # ---------------------------------------------------------------- the header
@@ -280,8 +286,31 @@ def decimal_mark(texts: Sequence[str]) -> tuple[str, int, int]:
     return ("," if commas > points else "."), commas, points
 
 
+def _text_values(cells: list[object], decimal: str) -> tuple[list[str], FloatArray | None]:
+    """Cells that are all text (a delimited file's): the texts, and their numbers when all are numbers."""
+    series = pd.Series(cells, dtype=object).str.strip()
+    texts: list[str] = series.tolist()
+    empty = (series == "").to_numpy()
+    numeric = series.str.fullmatch(_NUMBER[decimal].pattern).to_numpy(dtype=bool) | empty
+    if not numeric.all():
+        return texts, None
+    plain = series.where(~empty, None)
+    if decimal != ".":
+        plain = plain.str.replace(decimal, ".", regex=False)
+    values = pd.to_numeric(plain, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    return texts, values
+
+
 def make_column(cells: Cells, decimal: str) -> Column:
     """A sampled column with its numbers (under ``decimal``), date-times and header evidence."""
+    if all(type(cell) is str for cell in cells.cells):
+        texts, array = _text_values(cells.cells, decimal)
+        column = _with_header(Column(cells.index, cells.header, texts))
+        if array is not None and any(texts):
+            _set_numbers(column, array)
+        elif any(texts):
+            _read_date_texts(column)
+        return column
     texts: list[str] = []
     values: list[float] = []
     numeric = True
@@ -319,25 +348,11 @@ def make_column(cells: Cells, decimal: str) -> Column:
                 values.append(float(text.strip().replace(decimal, ".")))
             else:
                 numeric = False
-    unit_text = header_unit(cells.header)
-    unit, foreign = _unit_of(unit_text)
-    column = Column(
-        cells.index,
-        cells.header,
-        texts,
-        unit_text=unit_text,
-        unit=unit,
-        foreign_unit=foreign,
-        words=_header_words(cells.header, unit_text),
-    )
-    present = [t for t in texts if t]
-    if not present:
+    column = _with_header(Column(cells.index, cells.header, texts))
+    if not any(texts):
         return column
     if numeric and len(values) == len(texts):
-        array = np.array(values, dtype=np.float64)
-        column.numbers = array
-        finite = array[np.isfinite(array)]
-        column.whole = bool(finite.size) and bool(np.all(finite == np.round(finite)))
+        _set_numbers(column, np.array(values, dtype=np.float64))
         column.durations = durations
     elif all_dates and any(d is not None for d in typed_dates):
         zoned = any(getattr(d, "tzinfo", None) is not None for d in typed_dates)
@@ -347,6 +362,20 @@ def make_column(cells: Cells, decimal: str) -> Column:
     else:
         _read_date_texts(column)
     return column
+
+
+def _with_header(column: Column) -> Column:
+    """The column with what its header says: its unit and the quantities its words name."""
+    column.unit_text = header_unit(column.header)
+    column.unit, column.foreign_unit = _unit_of(column.unit_text)
+    column.words = _header_words(column.header, column.unit_text)
+    return column
+
+
+def _set_numbers(column: Column, array: FloatArray) -> None:
+    column.numbers = array
+    finite = array[np.isfinite(array)]
+    column.whole = bool(finite.size) and bool(np.all(finite == np.round(finite)))
 
 
 def _number_text(value: object) -> str:
@@ -492,7 +521,9 @@ def _values_fit(column: Column, role: str) -> bool:
         distinct = column.distinct()
         if numbers is not None:
             return column.whole and len(distinct) <= MAX_MODES and bool({"mode"} & column.words)
-        return column.stamps is None and 1 <= len(distinct) <= MAX_MODES and _runs_long(column.texts)
+        words = all(re.search(r"[^\W\d_]", v) for v in distinct)  # not dates, times or numbers
+        few = 1 <= len(distinct) <= MAX_MODES
+        return column.stamps is None and words and few and _runs_long(column.texts)
     if numbers is None or finite.size == 0:
         return False
     if role == "voltage":
@@ -624,8 +655,10 @@ def guess_columns(
     roles = assign_roles(columns)
     for role in ("time", "voltage", "current"):
         if role not in roles:
+            why = _time_problem(columns) if role == "time" else ""
             guess.problems.append(
-                f"no column was found for {role} (headers: {', '.join(c.header for c in columns)}); "
+                why
+                or f"no column was found for {role} (headers: {', '.join(c.header for c in columns)}); "
                 f"name it under [columns] {role}"
             )
     _time(guess, roles, metadata)
@@ -640,8 +673,31 @@ def guess_columns(
     for column in columns:
         if column.index in chosen:
             continue
-        guess.unread.append(_why_unread(column))
+        guess.unread.append(guess.aside.get(column.index) or _why_unread(column))
     return guess
+
+
+_DATE_ONLY = re.compile(r"\d{1,4}[./-]\d{1,2}[./-]\d{1,4}")
+_CLOCK = re.compile(r"(?:\d+\s*d(?:ays?)?,?\s*)?\d{1,3}:\d{2}(?::\d{2}(?:[.,]\d+)?)?(?:\s*[AaPp][Mm])?")
+
+
+def _time_problem(columns: Sequence[Column]) -> str:
+    """Why no column is the time, when a column shows a time formgate cannot read."""
+    dates = [c for c in columns if c.distinct() and all(_DATE_ONLY.fullmatch(t) for t in c.distinct()[:50])]
+    clocks = [c for c in columns if c.distinct() and all(_CLOCK.fullmatch(t) for t in c.distinct()[:50])]
+    if dates and clocks:
+        return (
+            f"the date ({dates[0].header}) and the time of day ({clocks[0].header}) stand in two "
+            "columns, which formgate does not read as one; have the cycler write them in one "
+            "column (e.g. 2024-06-02 08:26:00), or export the elapsed time in seconds"
+        )
+    if clocks:
+        return (
+            f"the time ({clocks[0].header}) is written as hours:minutes:seconds "
+            f"(e.g. {clocks[0].distinct()[0]!r}), which formgate does not read; have the cycler "
+            "export it in seconds (or minutes, hours), or as a date and time"
+        )
+    return ""
 
 
 def _span(values: FloatArray) -> str:
@@ -873,7 +929,6 @@ def _sign_and_modes(guess: ColumnGuess, roles: dict[str, Column], current: Float
         return
     clear = np.isfinite(current) & (np.abs(current) > threshold)
     negative = bool((current[clear] < 0).any())
-    positive = bool((current[clear] > 0).any())
     mode = roles.get("mode")
     if mode is not None and not negative and _modes(guess, mode, roles, current, threshold):
         guess.sign = Decision(
@@ -882,10 +937,8 @@ def _sign_and_modes(guess: ColumnGuess, roles: dict[str, Column], current: Float
         )
         return
     if mode is not None:
-        guess.unread.append(
-            f"{mode.header!r} (a mode column; the current carries its own sign, so it is not needed)"
-        )
-        del roles["mode"]
+        why = f"{mode.header!r} (a mode column; the current carries its own sign, so it is not needed)"
+        guess.set_aside(roles, "mode", why)
     first = _first_clear(current, clear)
     where = f"the first clear current (row {first + 1} of the data) is "
     if current[first] < 0:
@@ -903,7 +956,6 @@ def _sign_and_modes(guess: ColumnGuess, roles: dict[str, Column], current: Float
             f"{UNSURE} no current is negative: if discharges are written positive too, the "
             "file needs a mode column",
         )
-    del positive
 
 
 def _first_clear(current: FloatArray, clear: np.ndarray) -> int:
@@ -1039,8 +1091,7 @@ def _counters(
             continue
         finite = column.numbers[np.isfinite(column.numbers)]
         if not finite.size or float(finite.min()) == float(finite.max()):
-            guess.unread.append(f"{column.header!r} (a {role} counter that never changes)")
-            del roles[role]
+            guess.set_aside(roles, role, f"{column.header!r} (a {role} counter that never changes)")
             continue
         word = "charge" if role == "capacity" else "energy"
         guess.reasons[role] = f"the cycler's own {word} counter, {_span(column.numbers)}"
@@ -1062,22 +1113,32 @@ def _counters(
             why = _unit_words(column)
             if unit in ratio:
                 apart = abs(ratio[unit] - 1) * 100
+                if apart > 10:
+                    # a counter of one direction only, or of another convention: read, it
+                    # would put a data-quality note on every certificate
+                    guess.set_aside(
+                        roles,
+                        role,
+                        f"{column.header!r} (the cycler's {role} counter in {unit}, "
+                        f"{apart:.3g} % apart from formgate's integral: counting one direction "
+                        "only, or in its own way)",
+                    )
+                    continue
                 why += f"; it agrees with formgate's integral within {apart:.2g} %"
             guess.units[role] = Decision(unit, why)
             continue
         if not ratio:
-            guess.unread.append(
-                f"{column.header!r} (it may be the cycler's {role} counter; no unit in its header)"
-            )
-            del roles[role]
+            why = f"{column.header!r} (it may be the cycler's {role} counter; no unit in its header)"
+            guess.set_aside(roles, role, why)
             continue
         unit, value = min(ratio.items(), key=lambda item: abs(math.log(item[1])) if item[1] > 0 else math.inf)
         if not 0.9 <= value <= 1.1:
-            guess.unread.append(
+            guess.set_aside(
+                roles,
+                role,
                 f"{column.header!r} (it may be the cycler's {role} counter, but in no unit does it "
-                "agree with formgate's integral)"
+                "agree with formgate's integral)",
             )
-            del roles[role]
             continue
         guess.units[role] = Decision(
             unit,
