@@ -301,16 +301,20 @@ def _text_values(cells: list[object], decimal: str) -> tuple[list[str], FloatArr
     return texts, values
 
 
+def _text_column(cells: Cells, decimal: str) -> Column:
+    texts, array = _text_values(cells.cells, decimal)
+    column = _with_header(Column(cells.index, cells.header, texts))
+    if array is not None and any(texts):
+        _set_numbers(column, array)
+    elif any(texts):
+        _read_date_texts(column)
+    return column
+
+
 def make_column(cells: Cells, decimal: str) -> Column:
     """A sampled column with its numbers (under ``decimal``), date-times and header evidence."""
     if all(type(cell) is str for cell in cells.cells):
-        texts, array = _text_values(cells.cells, decimal)
-        column = _with_header(Column(cells.index, cells.header, texts))
-        if array is not None and any(texts):
-            _set_numbers(column, array)
-        elif any(texts):
-            _read_date_texts(column)
-        return column
+        return _text_column(cells, decimal)
     texts: list[str] = []
     values: list[float] = []
     numeric = True
