@@ -60,7 +60,9 @@ def read_parquet_table(data: bytes, name: str, profile: Profile, max_uncompresse
         file = pq.ParquetFile(pa.BufferReader(data))
         footer = file.metadata
         names = list(file.schema_arrow.names)
-        entries: dict[bytes, bytes] = dict(footer.metadata or {})
+        # the schema's metadata keeps the writer's order; the footer's may hold entries beyond it
+        entries: dict[bytes, bytes] = {**(file.schema_arrow.metadata or {})}
+        entries.update((k, v) for k, v in (footer.metadata or {}).items() if k not in entries)
     except (pa.ArrowException, OSError, ValueError, TypeError, KeyError, IndexError) as exc:
         raise _damaged(name, exc) from None
     head = Head(header_line=0, fields=[str(n).strip() for n in names], unit="", block_line=0)

@@ -325,7 +325,7 @@ def _table(book: _Book, name: str, profile: Profile) -> RawTable:
         if len(sheets) == 1:
             raise InputError(
                 f"the workbook is empty: its one sheet, '{first}', holds no cells",
-                SourceRef(name, sheet=first),
+                SourceRef(name),
                 CUT_SHORT_HINT,
             )
         raise InputError(
