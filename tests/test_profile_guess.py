@@ -52,6 +52,11 @@ def guessed(data: bytes, name: str) -> tuple[str, Trace]:
     return text, read_with(data, name, text, "guessed.toml")
 
 
+def comments(text: str) -> str:
+    """The profile's comments as one line (they are wrapped to the page's width)."""
+    return " ".join(line.lstrip("#").strip() for line in text.splitlines() if line.startswith("#"))
+
+
 def assert_same(got: Trace, want: Trace, *, metadata: bool = True) -> None:
     for field in ARRAYS:
         a, b = getattr(got, field), getattr(want, field)
@@ -628,3 +633,14 @@ def test_a_v1_column_name_that_holds_something_else_is_not_read_as_that_quantity
     text, trace = guessed(data, "c1.csv")
     assert 'cycle = "(no cycle column)"' in text
     assert trace.cycle is None
+
+
+def test_key_value_lines_without_a_prefix_are_skipped_and_named() -> None:
+    data = b"Cell ID: X1\nBatch: B7\nModel: DEMO-LFP-20A\n\nTime (s),Voltage (V),Current (A)\n0,3.2,0\n60,3.3,5\n120,3.4,5\n"
+    text = guess_profile(data, "export.csv")
+    assert "skip_lines = 3" in text
+    said = comments(text)
+    assert "Cell ID, Batch, Model stand there as 'key: value' without a prefix" in said
+    assert "the file gives no cell_id, but its line (which is not read as metadata) 'Cell ID' says 'X1'" in said
+    assert '# cell_type = "DEMO-LFP-20A"' in text
+    assert "cell_id =" not in text  # a cell id is never fixed for every file

@@ -131,6 +131,7 @@ class _Head:
     prefix: str
     prefix_why: str
     metadata: dict[str, str]
+    unread: dict[str, str]  # "key: value" on lines that are skipped
     lost: list[str]  # metadata keys on lines that are skipped
 
 
@@ -171,6 +172,7 @@ def _fields(line: str, delimiter: str) -> list[str]:
     return [f.strip() for f in line.split(delimiter)]
 
 
+_KEY_VALUE = re.compile(r"([^\W\d][^:]{0,39}):\s*(\S.*)")
 _ANY_NUMBER = re.compile(r"[+-]?(?:[0-9]+(?:[.,][0-9]*)?|[.,][0-9]+)(?:[eE][+-]?[0-9]+)?")
 
 
@@ -239,19 +241,33 @@ def _head(lines: list[str], name: str) -> _Head:
         if line.strip() and not line.strip().startswith(prefix):
             last_other = number
     metadata: dict[str, str] = {}
+    unread: dict[str, str] = {}  # "key: value" lines that are skipped
     lost: list[str] = []
     for number, line in enumerate(lines[:index], 1):
         stripped = line.strip()
+        if not stripped.startswith(prefix):
+            pair = _KEY_VALUE.fullmatch(stripped)
+            if pair and number <= last_other:
+                unread.setdefault(pair[1].strip(), pair[2].strip())
+            continue
         key, colon, value = stripped[len(prefix) :].partition(":")
-        if not stripped.startswith(prefix) or not colon or not key.strip():
+        if not colon or not key.strip():
             continue
         if number <= last_other:
             lost.append(key.strip())
+            unread.setdefault(key.strip(), value.strip())
         else:
             metadata.setdefault(key.strip(), value.strip())
     if last_other:
         span = "line 1" if last_other == 1 else f"lines 1 to {last_other}"
         skip_why = f"{span}: neither metadata nor the header (e.g. {shown(lines[last_other - 1].strip())})"
+        plain = [k for k in unread if k not in lost]
+        if plain:
+            skip_why = (
+                f"{span}: not the header; {', '.join(plain)} stand there as 'key: value' without "
+                "a prefix, which formgate does not read as metadata (a cycler's metadata lines "
+                "start with one, e.g. '# key: value')"
+            )
     else:
         skip_why = "nothing to skip above the header"
     return _Head(
@@ -264,6 +280,7 @@ def _head(lines: list[str], name: str) -> _Head:
         prefix=prefix,
         prefix_why=prefix_why,
         metadata=metadata,
+        unread=unread,
         lost=lost,
     )
 
@@ -323,7 +340,7 @@ def _guess_text(raw: bytes, name: str) -> str:
         columns.append(make_column(Cells(index, head.fields[index], cells), decimal))
     guess = guess_columns(columns, head.metadata, contiguous)
 
-    layout = Layout(kind="text", metadata=head.metadata, headers=head.fields)
+    layout = Layout(kind="text", metadata=head.metadata, unread_metadata=head.unread, headers=head.fields)
     word = _DELIMITER_WORDS[head.delimiter]
     layout.description.append(f"{word}-separated")
     layout.file.append(Entry("format", toml_string("text"), "delimited text"))

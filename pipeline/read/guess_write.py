@@ -52,6 +52,7 @@ class Layout:
     notes: list[str] = field(default_factory=list)  # comments under [file]
     description: list[str] = field(default_factory=list)
     metadata: dict[str, str] = field(default_factory=dict)  # metadata found in the file
+    unread_metadata: dict[str, str] = field(default_factory=dict)  # "key: value" lines not read
     headers: list[str] = field(default_factory=list)
 
 
@@ -193,7 +194,7 @@ def write_profile(name: str, layout: Layout, guess: ColumnGuess) -> str:
     _units(doc, guess)
     _time(doc, guess)
     _modes_and_counters(doc, guess)
-    _metadata(doc, metadata)
+    _metadata(doc, metadata, layout.unread_metadata)
     return doc.render()
 
 
@@ -358,23 +359,30 @@ def _modes_and_counters(doc: Doc, guess: ColumnGuess) -> None:
         )
 
 
-def _metadata(doc: Doc, metadata: dict[str, str]) -> None:
-    """[metadata]: what the file lacks, named in comments, never invented."""
+def _metadata(doc: Doc, metadata: dict[str, str], unread: dict[str, str]) -> None:
+    """[metadata]: what the file lacks, named in comments, never invented.
+
+    ``unread`` holds "key: value" lines the reader does not take as metadata (no prefix, or
+    above a banner line): a value there that may be what formgate needs is named.
+    """
     missing = [key for key in REQUIRED_METADATA if not metadata.get(key)]
     if not missing:
         return
     doc.note("metadata", "Fixed values for every file read with this profile; a file's own values win.")
     for key in missing:
-        near = _near_key(metadata, key)
-        if near:
+        near, where = _near_key(metadata, key), "its metadata"
+        values = metadata
+        if near is None:
+            near, where, values = _near_key(unread, key), "its line (which is not read as metadata)", unread
+        said = "" if near is None else f"{where} {near!r} says {values[near]!r}"
+        if key == "cell_type" and near is not None:
             doc.commented(
                 "metadata",
                 key,
-                toml_string(metadata[near]),
-                f"{UNSURE} the file gives no {key}, but its metadata {near!r} says "
-                f"{metadata[near]!r}; formgate reads only the key {key}. Set it here only if "
-                "every file read with this profile holds that value; until then formgate check "
-                f"asks for {key}",
+                toml_string(values[near]),
+                f"{UNSURE} the file gives no cell_type, but {said}; formgate reads only a metadata "
+                "line cell_type. Set it here only if every file read with this profile holds "
+                "that cell type; until then formgate check asks for it",
             )
         elif key == "cell_type":
             doc.commented(
@@ -384,6 +392,13 @@ def _metadata(doc: Doc, metadata: dict[str, str]) -> None:
                 "the file does not say which cell type it holds, and formgate check will ask "
                 "for it: give the cell type of every file read with this profile here (it "
                 "chooses the rule set), or have the cycler write it into each file",
+            )
+        elif near is not None:
+            doc.note(
+                "metadata",
+                f"the file gives no {key}, but {said}: formgate reads only a metadata line such "
+                f"as '# {key}: ...'; have the cycler write it so (a value here would give every "
+                f"file the same {key})",
             )
 
 
