@@ -644,3 +644,31 @@ def test_key_value_lines_without_a_prefix_are_skipped_and_named() -> None:
     assert "the file gives no cell_id, but its line (which is not read as metadata) 'Cell ID' says 'X1'" in said
     assert '# cell_type = "DEMO-LFP-20A"' in text
     assert "cell_id =" not in text  # a cell id is never fixed for every file
+
+
+def test_a_workbook_of_local_date_time_cells_without_a_zone_and_prefixed_metadata_cells() -> None:
+    from openpyxl import Workbook
+
+    from pipeline.read.profile import parse_zone
+
+    # a record across the night the clocks go back in Europe/Berlin (02:00 to 03:00 twice),
+    # written as the local wall-clock time in date-time cells, without a zone anywhere
+    berlin = parse_zone("Europe/Berlin")
+    start = dt.datetime(2026, 10, 25, 0, 0, tzinfo=dt.UTC)
+    record = _record()
+    stamps = [start + dt.timedelta(seconds=4 * t) for t in record["time"]]  # one row every 4 min
+    book = Workbook()
+    sheet = book.active
+    assert sheet is not None
+    for line in ("// cell_id: C5", "// lot: L5", "// cell_type: DEMO-LFP-20A"):
+        sheet.append([line])
+    sheet.append(["Date/Time", "Voltage (V)", "Current (A)"])
+    for stamp, v, i in zip(stamps, record["voltage"], record["current"], strict=True):
+        sheet.append([stamp.astimezone(berlin).replace(tzinfo=None), v, i])
+    out = io.BytesIO()
+    book.save(out)
+    text, trace = guessed(out.getvalue(), "c5.xlsx")
+    assert 'metadata_prefix = "//"' in text
+    assert 'zone = "Europe/Berlin"' in text
+    assert (trace.cell_id, trace.cell_type) == ("C5", "DEMO-LFP-20A")
+    np.testing.assert_allclose(trace.time_s, 4 * np.array(record["time"]), atol=1e-3)

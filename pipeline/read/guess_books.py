@@ -78,11 +78,16 @@ def _header_row(rows: Sequence[Sequence[object]]) -> int | None:
     return None
 
 
-def _key_values(rows: Sequence[Sequence[object]], left: int) -> list[tuple[str, str]]:
-    """The (key, value) rows of a sheet of metadata, as the workbook reader takes them."""
+def _key_values(rows: Sequence[Sequence[object]]) -> tuple[list[tuple[str, str]], str | None]:
+    """The (key, value) rows of metadata as the workbook reader takes them, and their prefix if any.
+
+    A key in the first filled cell and its value in the next; or "<prefix> key: value" in one
+    cell ("# cell_id: C1"), whose prefix the profile then names.
+    """
     from pipeline.read.workbook import cell_text
 
     found: list[tuple[str, str]] = []
+    prefixes: list[str] = []
     for row in rows:
         filled = [j for j, cell in enumerate(row) if cell != ""]
         if not filled:
@@ -90,18 +95,19 @@ def _key_values(rows: Sequence[Sequence[object]], left: int) -> list[tuple[str, 
         j = filled[0]
         key = cell_text(row[j])
         value = cell_text(row[j + 1]) if j + 1 < len(row) else ""
-        if ":" in key and not value:
-            key, _, value = key.partition(":")
-            key = key.lstrip("#/%;! ").strip()
-            value = value.strip()
+        lead = re.match(r"[^\w\s]+", key)
+        if lead and ":" in key[lead.end() :] and not value:
+            prefixes.append(lead[0])
+            key, _, value = key[lead.end() :].partition(":")
+            key, value = key.strip(), value.strip()
         elif key.endswith(":"):
             key = key[:-1].rstrip()
         elif not value:
             continue
         if key:
             found.append((key, value))
-    del left
-    return found
+    prefix = max(set(prefixes), key=prefixes.count) if prefixes else None
+    return found, prefix
 
 
 def guess_workbook(data: bytes, name: str) -> str:
@@ -132,18 +138,16 @@ def guess_workbook(data: bytes, name: str) -> str:
     main = max(headers, key=lambda s: (rows_of[s], -sheets.index(s)))
     fields = headers[main][1]
     data_sheets = [s for s in sheets if s in headers and headers[s][1] == fields]
-    # the metadata sheet: the sheet of key/value rows that holds the most of them
-    pairs = {s: _key_values(grids[s].rows, grids[s].left) for s in sheets if s not in headers}
-    info = max(pairs, key=lambda s: (len(pairs[s]), -sheets.index(s)), default=None)
-    if info is not None and not pairs[info]:
+    # the metadata sheet: of the other sheets, the one of key/value rows that holds the most
+    pairs = {s: _key_values(grids[s].rows) for s in sheets if s not in data_sheets}
+    info = max(pairs, key=lambda s: (len(pairs[s][0]), -sheets.index(s)), default=None)
+    if info is not None and not pairs[info][0]:
         info = None
     first = data_sheets[0]
     first_grid = grids[first]
     at = headers[first][0]
-    if info is not None:
-        metadata = dict(pairs[info])
-    else:
-        metadata = dict(_key_values(first_grid.rows[:at], first_grid.left))
+    entries, prefix = pairs[info] if info is not None else _key_values(first_grid.rows[:at])
+    metadata = dict(entries)
     # the record's cells, sheet after sheet
     width = len(fields)
     cells: list[list[object]] = [[] for _ in range(width)]
@@ -180,8 +184,12 @@ def guess_workbook(data: bytes, name: str) -> str:
             + (f": {', '.join(data_sheets)}" if len(data_sheets) > 1 else ""),
         )
     )
+    if prefix is not None:
+        layout.file.append(
+            Entry("metadata_prefix", toml_string(prefix), f'metadata cells hold "{prefix} key: value"')
+        )
     if info is not None:
-        keys = ", ".join(k for k, _ in pairs[info][:6]) + (", ..." if len(pairs[info]) > 6 else "")
+        keys = ", ".join(k for k, _ in entries[:6]) + (", ..." if len(entries) > 6 else "")
         layout.workbook.append(
             Entry("metadata_sheet", toml_string(info), f"a key and its value on each row ({keys})")
         )
