@@ -421,8 +421,8 @@ BROKEN_PROFILE = '[units]\ncurrent = "mA"\ncurrent_sign = "negative"\n'
 def broken_profile_message(path: Path) -> str:
     return (
         f'{path}, line 3: [units] current_sign = "negative" is not one of "charge positive", '
-        '"discharge positive".\n'
-        '  Use one of "charge positive", "discharge positive".'
+        '"discharge positive", "from mode".\n'
+        '  Use one of "charge positive", "discharge positive", "from mode".'
     )
 
 

@@ -180,6 +180,7 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
                 stages = " and ".join(doc.get("stages") or ("formation", "grading"))
                 decided = f": {doc.get('decision')}" if r.verdict != "pass" else ""
                 gone = "  (superseded)" if r.superseded_by else ""
+                gone += f"  (judged again by regrade {r.regrade_id})" if r.regrade_id else ""
                 print(f"    {n} of {len(results)}  {r.analysed_at.isoformat(timespec='seconds')}  "
                       f"{doc['input']['name']}  {stages}  {r.verdict}{decided}{gone}")
             readings = ledger.readings.of(lot, args.cell)
@@ -193,7 +194,7 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
             for d in decisions:
                 grade = f" grade {d.grade}" if d.grade else ""
                 print(f"    {d.decided_at.isoformat(timespec='seconds')}  {d.verdict}{grade}  "
-                      f"({d.cause})" + (f": {d.reason}" if d.reason else ""))
+                      f"({_cause(ledger, d)})" + (f": {d.reason}" if d.reason else ""))
             reviews = ledger.reviews.of_cell(lot, args.cell)  # who decided what, and why
             if reviews:
                 print(f"  reviews ({len(reviews)})")
@@ -203,6 +204,18 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
                 print(f"    {v.reviewed_at.isoformat(timespec='seconds')}  {what} by {v.reviewer}"
                       f"{accepts}: {v.reason}")
     return EXIT_OK
+
+
+def _cause(ledger: Any, decision: Any) -> str:
+    """A decision's cause in words: a regrade names itself, its rule sets and its reason."""
+    if decision.cause != "regrade":
+        return str(decision.cause)
+    ids = [b.partition(":")[2] for b in decision.basis if b.startswith("regrade:")]
+    row = ledger.regrades.get(int(ids[-1])) if ids and ids[-1].isdigit() else None
+    if row is None:
+        return "regrade"
+    rules = ", ".join(f"{name} {revision}" for name, revision, _ in row.rule_sets)
+    return f"regrade {row.id} under {rules}: {row.reason}"
 
 
 def add_commands(sub: Any) -> None:

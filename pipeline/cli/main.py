@@ -1,10 +1,10 @@
 """The command line's entry point: the parser of every command family, exit codes, bugs.
 
 Argument parsing and exit codes only. Each command family has its module (check.py,
-station.py, lots.py, review.py, verify.py, demo.py) with a plain function per command that returns an exit
-code, and adds its sub-commands to the parser here, in the order `formgate --help`
-shows them. A FormgateError or an OSError is the user's to fix (exit 2); any other
-exception is a bug (exit 3, details in a log file).
+profile.py, station.py, lots.py, review.py, regrade.py, verify.py, demo.py) with a plain
+function per command that returns an exit code, and adds its sub-commands to the parser
+here, in the order `formgate --help` shows them. A FormgateError or an OSError is the
+user's to fix (exit 2); any other exception is a bug (exit 3, details in a log file).
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ from collections.abc import Sequence
 from pathlib import Path
 
 from pipeline import __version__
-from pipeline.cli import check, demo, lots, profile, review, station, verify
+from pipeline.cli import check, demo, lots, profile, regrade, review, station, verify
 from pipeline.cli.exits import EXIT_BUG, EXIT_INTERRUPTED, EXIT_USER
 from pipeline.errors import FormgateError
 
@@ -31,7 +31,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"formgate {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
-    for family in (check, profile, station, lots, review, verify, demo):
+    for family in (check, profile, station, lots, review, regrade, verify, demo):
         family.add_commands(sub)
     return parser
 

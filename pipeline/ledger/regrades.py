@@ -130,6 +130,7 @@ class Regrades:
         hazards: Sequence[str],
         basis: Sequence[str],
         now: datetime.datetime,
+        grade: str | None = None,
     ) -> tuple[DecisionRow, bool]:
         """Record the cell's inputs judged again and its new decision: ONE transaction.
 
@@ -177,6 +178,6 @@ class Regrades:
                     )
             row, _, new = self.decisions.decide(
                 cell_id=cell_id, lot=lot, verdict=verdict, reason=reason, hazards=hazards,
-                grade=None, cause="regrade", basis=[*basis, f"regrade:{regrade_id}"], now=now,
+                grade=grade, cause="regrade", basis=[*basis, f"regrade:{regrade_id}"], now=now,
             )
             return row, new

@@ -2,7 +2,7 @@
 
 Pure: the lot's records as judged before (result documents), the same inputs judged
 again (by input SHA-256), the cell's readings, its standing decision and the new rule
-book in; the cells whose verdict, grade, hazards or reasons would change out, each with
+book in; the cells whose verdict, grade, hazards or deciding checks would change out, each with
 the checks behind it (value, old window and outcome, new window and outcome). A cell is
 decided again exactly as the station decides it: from its records that count
 (judge/lotclose.cell_stages) and its stages (judge/cellverdict.decide); in a closed lot,
@@ -14,6 +14,7 @@ listed with the reason and leaves its cell as it was.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -67,6 +68,7 @@ class CellChange:
     checks: tuple[CheckChange, ...]
     reviewed: bool  # a person's review stands: listed for a new review, not applied
     inputs: tuple[str, ...]  # SHA-256 of the cell's inputs judged again
+    files: tuple[tuple[str, str, str], ...] = ()  # (stage, file name, SHA-256) it rests on
 
     @property
     def kind(self) -> str:
@@ -169,13 +171,26 @@ def lot_changes(
                   for ch in check_changes(old_by_sha[sha], new_docs[sha])]
         review = reviews.get(cell_id)
         held_by_review = old.cause == "review" and review is not None
-        changes.append(CellChange(lot, cell_id, old, new, tuple(checks), held_by_review, shas))
+        changes.append(
+            CellChange(lot, cell_id, old, new, tuple(checks), held_by_review, shas, tuple(files))
+        )
     return LotChanges(lot, closed, len(decided), tuple(changes), tuple(out_refused))
 
 
+_NUMBER = re.compile(r"[-+]?\d[\d.,]*(?:[eE][-+]?\d+)?")
+
+
 def _same(old: Standing, new: Standing) -> bool:
-    return (old.verdict, old.reason, tuple(old.hazards), old.grade) == (
-        new.verdict, new.reason, tuple(new.hazards), new.grade
+    """Whether a decision stands as it was: the same verdict, grade and hazards, decided by the
+    same checks for the same reasons. A window moved under a cell that fails (or is held)
+    by the same check anyway changes only the numbers in its reason: that is no change.
+
+    >>> a = Standing("fail", "grading_capacity_Ah 1.50 Ah < 1.80 Ah", (), None, "record")
+    >>> _same(a, Standing("fail", "grading_capacity_Ah 1.50 Ah < 1.88 Ah", (), None, "regrade"))
+    True
+    """
+    return (old.verdict, _NUMBER.sub("#", old.reason), set(old.hazards), old.grade) == (
+        new.verdict, _NUMBER.sub("#", new.reason), set(new.hazards), new.grade
     )
 
 

@@ -1,0 +1,339 @@
+"""A regrade of a station: choose its inputs, judge them again on Dask, list what changes, apply it.
+
+Edge module (ledger, files, the Dask engine). The steps:
+
+1. the inputs the selection takes (archive.py), with the time each was first analysed, so
+   a record keeps its place in its cell's history whatever the regrade's own time;
+2. each judged again under the rules bundle (grid.py, on a LocalCluster or a scheduler;
+   judgements kept in ``<station>/regrades/judged.sqlite`` so that a stopped run resumes);
+3. every touched lot's cells decided again with the new judgements (changes.py, pure);
+4. the change report, CSV and PDF (report/regradereport.py), in ``<station>/regrades/``
+   or ``--out``;
+5. with ``apply``: the regrade recorded (ledger/regrades.py) and, per changed cell in ONE
+   short transaction, its inputs' new results and its new decision, cause 'regrade'; each
+   changed cell's certificate and cell JSON published anew (the old certificate kept under
+   ``<cell>~cell.before-regrade-<N>.pdf``); a closed lot's report written again; a cell
+   whose decision rests on a person's review is listed for a new review and left alone.
+   Applying needs the station's own rules (a station decides its cells by the rules in its
+   folder: a change recorded under other rules would be undone by the next file).
+"""
+
+from __future__ import annotations
+
+import datetime
+import json
+import logging
+import os
+import shutil
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pipeline.errors import FormgateError
+from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.regrades import Rejudged
+from pipeline.ledger.rows import CheckRowData
+from pipeline.names import safe_name
+from pipeline.regrade.archive import Archived, Selection, select_inputs
+from pipeline.regrade.changes import CellChange, LotChanges, Standing, lot_changes
+from pipeline.regrade.grid import Judged, RegradeItem, Rules, RunStats, judge_many
+from pipeline.report.regradereport import (
+    ChangedCell,
+    CheckLine,
+    RegradeReportInput,
+    counts,
+    regrade_csv,
+    render_regrade_pdf,
+)
+from pipeline.station.settings import Settings
+from pipeline.writing import write_atomic
+
+log = logging.getLogger("formgate.regrade")
+
+
+@dataclass(frozen=True, slots=True)
+class Engine:
+    """How the inputs are judged: on which cluster, and how their bytes reach it."""
+
+    scheduler: str | None = None
+    workers: int | None = None
+    ship_bytes: bool = False
+    batch_files: int | None = None
+    progress: bool = True
+
+
+@dataclass(frozen=True, slots=True)
+class Outcome:
+    """What a regrade found (and, applied, recorded)."""
+
+    lots: tuple[LotChanges, ...]
+    inputs: int
+    report_pdf: Path
+    report_csv: Path
+    regrade_id: int | None
+    applied: int  # cells whose change was recorded
+    stats: RunStats = field(default_factory=RunStats)
+
+    @property
+    def changes(self) -> tuple[CellChange, ...]:
+        return tuple(c for lot in self.lots for c in lot.changes)
+
+
+Judge = Callable[[Sequence[RegradeItem]], Iterator[Judged]]
+
+
+def regrades_folder(settings: Settings) -> Path:
+    return settings.ledger.parent / "regrades"
+
+
+def regrade_station(
+    settings: Settings,
+    ledger: Ledger,
+    rules: Rules,
+    selection: Selection,
+    *,
+    engine: Engine,
+    now: datetime.datetime,
+    apply: bool = False,
+    run_by: str = "",
+    reason: str = "",
+    out: Path | None = None,
+    mail: bool = False,
+) -> Outcome:
+    """Regrade the station's selected inputs under ``rules``; apply the changes if asked."""
+    if apply:
+        own = Rules.read(settings.rules_dir)
+        if own.digest != rules.digest:
+            raise FormgateError(
+                f"--apply needs the station's own rules ({settings.rules_dir}); "
+                f"{rules.folder} differs from them",
+                None,
+                "Run a dry run with these rules to see what they change; to apply them, put "
+                "them in the station's rules folder first (the station judges new files by "
+                "them too), then regrade with --apply.",
+            )
+        if not run_by.strip() or not reason.strip():
+            raise FormgateError("--apply needs --by NAME and --reason TEXT", None,
+                                "Say who applies the regrade and why: the ledger keeps both.")
+    items = select_inputs(ledger, settings, selection)
+    stats = RunStats()
+    folder = regrades_folder(settings)
+    folder.mkdir(parents=True, exist_ok=True)
+    new_docs, refused = _judge(items, rules, engine, now, folder / "judged.sqlite", stats)
+    rulebook = rules.rulebook()
+    by_lot: dict[str, list[Archived]] = {}
+    for item in items:
+        by_lot.setdefault(item.lot, []).append(item)
+    lots = []
+    for lot in sorted(by_lot):
+        lots.append(_lot_changes(ledger, lot, new_docs, refused, rulebook))
+    rule_sets = _rule_sets(rulebook)
+    data = _report_input(settings, lots, rules, rule_sets, selection, len(items), now,
+                         applied=False, regrade_id=None, run_by=run_by, reason=reason)
+    regrade_id = None
+    applied = 0
+    if apply and any(c for lot in lots for c in lot.changes):
+        row = ledger.regrades.begin(run_by=run_by, reason=reason, rules_digest=rules.digest,
+                                    rule_sets=rule_sets, selection=selection.words(), now=now)
+        regrade_id = row.id
+        applied = _apply(settings, ledger, rulebook, lots, items, new_docs, row.id, now)
+        data = _report_input(settings, lots, rules, rule_sets, selection, len(items), now,
+                             applied=True, regrade_id=row.id, run_by=run_by, reason=reason)
+    stamp = now.astimezone(datetime.UTC).strftime("%Y%m%dT%H%M%SZ")
+    target = out or folder
+    stem = f"regrade-{regrade_id}" if regrade_id is not None else f"dry-run-{stamp}"
+    pdf_path, csv_path = target / f"{stem}-changes.pdf", target / f"{stem}-changes.csv"
+    write_atomic(regrade_csv(data), csv_path)
+    write_atomic(render_regrade_pdf(data), pdf_path)
+    if regrade_id is not None:
+        ledger.regrades.finish(regrade_id, dict(counts(data.changed)), now)
+        if mail and settings.routing.digests_to:
+            _queue_summary(settings, ledger, data, regrade_id, pdf_path, now)
+    return Outcome(tuple(lots), len(items), pdf_path, csv_path, regrade_id, applied, stats)
+
+
+def _judge(
+    items: Sequence[Archived],
+    rules: Rules,
+    engine: Engine,
+    now: datetime.datetime,
+    cache: Path,
+    stats: RunStats,
+) -> tuple[dict[str, dict[str, Any]], dict[str, str]]:
+    """Input SHA-256 -> the new result document; and -> why the new rules refuse the input."""
+    work = []
+    for item in items:
+        profile_text = item.profile.read_text(encoding="utf-8") if item.profile else None
+        work.append(RegradeItem(
+            sha256=item.sha256, name=item.name, path=str(item.path),
+            profile_text=profile_text, profile_name=item.profile.name if item.profile else None,
+            key=item.sha256, analysed_at=item.analysed_at,
+        ))
+    new_docs: dict[str, dict[str, Any]] = {}
+    refused: dict[str, str] = {}
+    if not work:
+        return new_docs, refused
+    for judged in judge_many(
+        work, rules, scheduler=engine.scheduler, workers=engine.workers,
+        ship_bytes=engine.ship_bytes, batch_files=engine.batch_files, analysed_at=now,
+        cache=cache, progress=engine.progress, stats=stats,
+    ):
+        if judged.result_json is not None:
+            new_docs[judged.sha256] = json.loads(judged.result_json)
+        else:
+            refused[judged.sha256] = str(judged.error or "not judged").splitlines()[0]
+    return new_docs, refused
+
+
+def _lot_changes(
+    ledger: Ledger,
+    lot: str,
+    new_docs: Mapping[str, Mapping[str, Any]],
+    refused: Mapping[str, str],
+    rulebook: Any,
+) -> LotChanges:
+    from pipeline.station.reviewing import reviewed_cells
+
+    old_docs = [json.loads(r.result_json) for r in ledger.results.of_lot(lot) if r.verdict != "error"]
+    readings = [(s.file_name, s.file_sha256, s.reading) for s in ledger.readings.of(lot)]
+    standing = {
+        cell: Standing(d.verdict, d.reason, tuple(d.hazards), d.grade, d.cause)
+        for cell, d in ledger.decisions.latest_of_lot(lot).items()
+    }
+    closed = ledger.lots.get(lot).closed_at is not None
+    return lot_changes(lot, old_docs, new_docs, refused, readings, standing,
+                       reviewed_cells(ledger, lot), rulebook, closed=closed)
+
+
+def _rule_sets(rulebook: Any) -> list[tuple[str, str, str]]:
+    return sorted({(r.name, r.revision, r.sha256) for r in rulebook.rule_sets})
+
+
+def _report_input(
+    settings: Settings,
+    lots: Sequence[LotChanges],
+    rules: Rules,
+    rule_sets: Sequence[tuple[str, str, str]],
+    selection: Selection,
+    inputs: int,
+    now: datetime.datetime,
+    *,
+    applied: bool,
+    regrade_id: int | None,
+    run_by: str,
+    reason: str,
+) -> RegradeReportInput:
+    changed = tuple(
+        ChangedCell(
+            c.lot, c.cell_id, c.old.verdict, c.new.verdict, c.old.reason, c.new.reason,
+            tuple(c.new.hazards), c.old.grade, c.new.grade, c.reviewed,
+            tuple(CheckLine(k.file_name, k.rule_id, k.metric, k.old_value, k.new_value,
+                            (k.old_low, k.old_high), (k.new_low, k.new_high), k.old_outcome,
+                            k.new_outcome) for k in c.checks),
+        )
+        for lot in lots for c in lot.changes
+    )
+    refused = tuple((r.lot, r.file_name, r.reason) for lot in lots for r in lot.refused)
+    refused += tuple((lot.lot, "(the whole lot)", lot.problem) for lot in lots if lot.problem)
+    families = {r.family for r in Rules.rulebook(rules).rule_sets}
+    return RegradeReportInput(
+        station=settings.station_name, run_by=run_by or os.environ.get("USER", "") or "-",
+        reason=reason or "dry run", selection=selection.words(), started_at=now, applied=applied,
+        regrade_id=regrade_id, rule_sets=tuple(rule_sets), rules_digest=rules.digest,
+        inputs=inputs, cells=sum(lot.cells for lot in lots), changed=changed, refused=refused,
+        family=families.pop() if len(families) == 1 else None,
+    )
+
+
+def _checks(doc: Mapping[str, Any]) -> tuple[CheckRowData, ...]:
+    return tuple(
+        CheckRowData(str(c["id"]), str(c["metric"]), c.get("value"), c.get("low"), c.get("high"),
+                     str(c["outcome"]), str(c["severity"]), c.get("hazard"))
+        for c in doc.get("checks", ())
+    )
+
+
+def _apply(
+    settings: Settings,
+    ledger: Ledger,
+    rulebook: Any,
+    lots: Sequence[LotChanges],
+    items: Sequence[Archived],
+    new_docs: Mapping[str, Mapping[str, Any]],
+    regrade_id: int,
+    now: datetime.datetime,
+) -> int:
+    """Record every change not held by a review, one cell per transaction; publish its cell."""
+    from pipeline.station.cellpublish import cell_paths, publish_cell_now
+    from pipeline.station.lots import close_and_report
+
+    input_of = {item.sha256: item for item in items}
+    applied = 0
+    for lot in lots:
+        done = []
+        for change in lot.changes:
+            if change.reviewed:
+                continue
+            rejudged = []
+            for sha in change.inputs:
+                doc, item = new_docs[sha], input_of.get(sha)
+                if item is None or item.input_id is None:
+                    continue
+                stem = Path(str(doc["input"]["name"])).name
+                json_path = (settings.results / safe_name(change.lot)
+                             / f"{safe_name(change.cell_id)}~regrade-{regrade_id}~{stem}.json")
+                text = json.dumps(doc, indent=2, ensure_ascii=False) + "\n"
+                write_atomic(text.encode("utf-8"), json_path)
+                rejudged.append(Rejudged(
+                    item.input_id, str(doc["verdict"]), tuple(doc.get("hazards", ())), text,
+                    _checks(doc), str(doc["rule_set"]["name"]), str(doc["rule_set"]["revision"]),
+                    str(doc["rule_set"]["sha256"]),
+                    datetime.datetime.fromisoformat(str(doc["analysed_at"])), str(json_path),
+                ))
+            ledger.regrades.apply_cell(
+                regrade_id, lot=change.lot, cell_id=change.cell_id, rejudged=rejudged,
+                verdict=change.new.verdict, reason=change.new.reason, hazards=change.new.hazards,
+                grade=change.new.grade, basis=[f"{st}:{n}:{h}" for st, n, h in change.files],
+                now=now,
+            )
+            _keep_old_certificate(cell_paths(settings, change.lot, change.cell_id)[1], regrade_id)
+            try:
+                publish_cell_now(settings, ledger, rulebook, change.lot, change.cell_id, now)
+            except FormgateError as exc:
+                log.error("cell %s of lot %s: no new certificate: %s", change.cell_id,
+                          change.lot, exc)
+            done.append(change.cell_id)
+            applied += 1
+        if done and lot.closed:
+            close_and_report(settings, ledger, rulebook, lot.lot, by="regrade", now=now,
+                             close=False)
+    return applied
+
+
+def _keep_old_certificate(path: Path, regrade_id: int) -> None:
+    """Keep a cell's certificate as it was before the regrade, beside the new one."""
+    kept = path.with_name(path.name.replace("~cell.pdf", f"~cell.before-regrade-{regrade_id}.pdf"))
+    if path.is_file() and not kept.exists():
+        shutil.copy2(path, kept)
+
+
+def _queue_summary(
+    settings: Settings,
+    ledger: Ledger,
+    data: RegradeReportInput,
+    regrade_id: int,
+    pdf_path: Path,
+    now: datetime.datetime,
+) -> None:
+    from pipeline.mail.regrade_letter import regrade_letter
+
+    letter = regrade_letter(
+        regrade_id=regrade_id, station=settings.station_name, run_by=data.run_by,
+        reason=data.reason, rule_sets=data.rule_sets, counts=counts(data.changed),
+        new_fails=sum(1 for c in data.changed
+                      if c.new_verdict == "fail" and c.old_verdict != "fail" and not c.reviewed),
+        family=data.family, recipients=settings.routing.digests_to, report_path=str(pdf_path),
+        domain=settings.routing.domain,
+    )
+    ledger.outbox.queue(letter, now=now)

@@ -1,0 +1,173 @@
+"""A regrade at a real station: a tightened window, the cells it moves, applied once, on Dask.
+
+Every part is real: a station judges invented cycle files in its workers, `formgate regrade`
+judges its archived copies again on a Dask cluster of this machine (processes), writes the
+change report, and with --apply records the changes in the SQLite ledger beside the old
+decisions and publishes the changed cells' certificates anew.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import os
+import shutil
+import signal
+import sqlite3
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+from pipeline.cli.main import main
+from pipeline.ledger.ledger import Ledger
+from pipeline.station.settings import Settings, read_settings
+from tests.station_kit import RULES, cycle_file, drop, make_station, running, settled, wait_until
+
+pytestmark = pytest.mark.slow
+
+# old window: 0.9 x 2.0 Ah = 1.80 Ah; the customer's new one starts at 0.94 x 2.0 = 1.88 Ah
+TIGHTENED = RULES.replace("low = 0.9              # test window",
+                          "low = 0.94             # tightened test window")
+CAPACITIES = {"C-01": 1.83, "C-02": 1.86, "C-03": 1.95, "C-04": 2.0, "C-05": 1.87, "C-06": 1.5,
+              "C-07": 1.99}
+QE = "quality engineer B"
+
+
+@pytest.fixture(scope="module")
+def judged(tmp_path_factory: pytest.TempPathFactory) -> Settings:
+    """A station that has judged every cell, stopped."""
+    s = make_station(tmp_path_factory.mktemp("regrade") / "st")
+    assert TIGHTENED != RULES
+    with running(s):
+        for n, (cell, cap) in enumerate(CAPACITIES.items()):
+            drop(s.inboxes[0].folder, f"{cell}.csv", cycle_file(cell, capacity_ah=cap, seed=n))
+        wait_until(lambda: settled(s, len(CAPACITIES)), what="the files")
+    return s
+
+
+def _copy(s: Settings, to: Path) -> Settings:
+    shutil.copytree(s.root, to)
+    return read_settings(to)
+
+
+def _between(s: Settings, low: float, high: float) -> set[str]:
+    """The passed cells whose measured grading capacity lies in [low, high), from the results."""
+    out = set()
+    with Ledger(s.ledger) as ledger:
+        for r in ledger.results.of_lot("LOT-A"):
+            doc = json.loads(r.result_json)
+            cap = next(c["value"] for c in doc["checks"] if c["metric"] == "grading_capacity_Ah")
+            if doc["verdict"] == "pass" and low <= cap < high:
+                out.add(doc["cell"]["cell_id"])
+    return out
+
+
+def _decisions(s: Settings) -> list[tuple[str, str, str, str]]:
+    with Ledger(s.ledger) as ledger:
+        return [(d.cell_id, d.verdict, d.cause, d.reason)
+                for cell in sorted(CAPACITIES) for d in ledger.decisions.of_cell("LOT-A", cell)]
+
+
+def _csv_cells(path: Path) -> dict[str, str]:
+    rows = csv.DictReader(io.StringIO(path.read_text(encoding="utf-8")))
+    return {r["cell_id"]: r["change"] for r in rows}
+
+
+def test_a_dry_run_lists_exactly_the_cells_between_the_old_and_new_limits(
+    judged: Settings, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    s = _copy(judged, tmp_path / "st")
+    proposed = tmp_path / "proposed"
+    proposed.mkdir()
+    (proposed / "test_cells.toml").write_text(TIGHTENED, encoding="utf-8")
+    before = _decisions(s)
+    assert main(["regrade", str(s.root), "--rules", str(proposed), "--workers", "1",
+                 "--no-progress"]) == 0
+    out = capsys.readouterr().out
+    expected = _between(s, 1.80, 1.88)
+    assert expected and expected != set(CAPACITIES)  # the window really moves some cells
+    reports = sorted((s.root / "regrades").glob("dry-run-*-changes.csv"))
+    assert len(reports) == 1 and reports[0].with_suffix(".pdf").exists()
+    assert _csv_cells(reports[0]) == dict.fromkeys(expected, "pass → fail")
+    assert f"pass → fail: {len(expected)}" in out and "dry run: nothing recorded" in out
+    assert _decisions(s) == before  # a dry run records nothing
+    # applying rules that are not the station's own is refused, with what to do
+    assert main(["regrade", str(s.root), "--rules", str(proposed), "--apply", "--by", QE,
+                 "--reason", "order 12 tightened", "--workers", "1", "--no-progress"]) == 2
+    assert "--apply needs the station's own rules" in capsys.readouterr().err
+
+
+def test_apply_records_the_changed_cells_once_with_their_cause_and_new_certificates(
+    judged: Settings, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    s = _copy(judged, tmp_path / "st")
+    (s.rules_dir / "test_cells.toml").write_text(TIGHTENED, encoding="utf-8")
+    expected = _between(s, 1.80, 1.88)
+    before = _decisions(s)
+    args = ["regrade", str(s.root), "--apply", "--by", QE, "--reason", "order 12 tightened",
+            "--workers", "1", "--no-progress"]
+    assert main(args) == 0
+    assert f"applied as regrade 1: {len(expected)} cell(s) decided anew" in capsys.readouterr().out
+    after = _decisions(s)
+    new = [d for d in after if d not in before]
+    assert sorted(d[0] for d in new) == sorted(expected)
+    assert all(d[1] == "fail" and d[2] == "regrade" for d in new)
+    with Ledger(s.ledger) as ledger:
+        regrade = ledger.regrades.get(1)
+        assert regrade is not None and regrade.run_by == QE and regrade.finished_at is not None
+        assert regrade.rule_sets[0][:2] == ("test-cells", "1")
+        for cell in expected:
+            latest = ledger.decisions.latest("LOT-A", cell)
+            assert latest is not None and latest.basis[-1] == "regrade:1"
+            [record] = ledger.results.of_cell("LOT-A", cell)  # the regrade's judgement counts
+            assert (record.regrade_id, record.verdict) == (1, "fail")
+        assert ledger.integrity_ok()
+    # the cell's history shows both decisions and the cause
+    assert main(["cell", "show", str(s.root), sorted(expected)[0]]) == 0
+    shown = capsys.readouterr().out
+    assert "(record)" in shown and "(regrade 1 under test-cells 1: order 12 tightened)" in shown
+    # a second --apply finds nothing to change and records nothing
+    assert main(args) == 0
+    assert "nothing to apply" in capsys.readouterr().out
+    assert _decisions(s) == after
+
+
+def test_an_apply_killed_half_way_and_run_again_gives_the_ledger_of_one_clean_run(
+    judged: Settings, tmp_path: Path
+) -> None:
+    clean, killed = _copy(judged, tmp_path / "clean"), _copy(judged, tmp_path / "killed")
+    for s in (clean, killed):
+        (s.rules_dir / "test_cells.toml").write_text(TIGHTENED, encoding="utf-8")
+    args = ["--apply", "--by", QE, "--reason", "order 12 tightened", "--workers", "1",
+            "--no-progress"]
+    assert main(["regrade", str(clean.root), *args]) == 0
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
+    proc = subprocess.Popen([sys.executable, "-m", "pipeline", "regrade", str(killed.root), *args],
+                            env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    try:
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline and proc.poll() is None:
+            conn = sqlite3.connect(killed.ledger, timeout=10)
+            try:
+                started = conn.execute("SELECT count(*) FROM regrades").fetchone()[0]
+            except sqlite3.OperationalError:
+                started = 0
+            finally:
+                conn.close()
+            if started:
+                break
+            time.sleep(0.05)
+        proc.send_signal(signal.SIGKILL)
+    finally:
+        proc.wait(timeout=60)
+    assert main(["regrade", str(killed.root), *args]) == 0
+    assert _decisions(killed) == _decisions(clean)
+    with Ledger(killed.ledger) as ledger:
+        assert [r.id for r in ledger.regrades.every()] == [1]
+        regraded = list(ledger.db.rows("SELECT input_id, count(*) FROM results WHERE regrade_id IS NOT NULL "
+                                  "GROUP BY input_id HAVING count(*) > 1"))
+        assert regraded == []
