@@ -9,12 +9,15 @@ The rules travel once. :class:`Rules` is a rules folder read into memory (rule f
 ``profiles/``) with a digest; it is scattered to every worker once per run, and each
 worker process parses it once per digest and keeps the rule book (``_rule_book``).
 
-A task is a batch of files (:func:`batch_size`): judging takes about 15-20 ms a file, and
-Dask spends a few milliseconds on each task (scheduling, messages, results), so a task of
-one file would spend a fifth of its time on Dask. A task aims at 50 files, about a second
-of judging, where that overhead is well under one percent; but a run of few files is cut
-into at least four tasks per worker thread, so that every thread has work and none waits
-long for the last one.
+A task is a batch of files (:func:`batch_size`). Dask costs a few milliseconds of a worker
+thread's time a task (scheduling, messages, results; benchmarks/regrade.py measures it), and
+judging one file takes 5-20 ms for a demo file and more for a long record, so a task of one
+file would spend a large share on Dask. A task aims at TASK_SECONDS (1 s) of judging at the
+time a file has taken so far in this run (20 files before the first task comes back; 200 at
+most, so that a task's answers stay a few MB), where Dask's share is well under one
+percent and a scheduler keeps up with hundreds of workers; and the files left are always cut
+into at least four tasks per worker thread, so that every thread has work to the end and
+the last tasks are short.
 
 Where the bytes come from: by default each worker reads ``item.path`` itself (the
 archive is mounted where the workers run). With ``ship_bytes`` (or an item that carries
@@ -22,8 +25,9 @@ archive is mounted where the workers run). With ``ship_bytes`` (or an item that 
 scattered to the cluster as one piece of data. In both cases the worker checks the
 SHA-256 of the bytes against ``item.sha256``: an archived copy that changed is an error
 for that item, never judged as if it were the recorded input. The caller keeps a bounded
-number of tasks in flight (two per worker thread, and at most 256 MiB of shipped bytes),
-submitting the next batch as one finishes, so memory stays bounded however long the run.
+number of tasks in flight (two per worker thread; shipping, at most 256 MiB of bytes in all
+and 64 MiB in one task), submitting the next batch as one finishes, so that memory stays
+bounded however long the run.
 
 With a :class:`~pipeline.regrade.cache.RegradeCache`, every judgement is kept as it
 arrives (one short transaction per batch), and an item already kept under the same rules
@@ -84,8 +88,11 @@ def _distributed() -> Any:
 
     return distributed
 
-TARGET_FILES_PER_TASK = 50  # about 1 s of judging at ~20 ms a file: Dask's few ms a task are < 1 %
-TASKS_PER_THREAD = 4  # a short run is cut finer, so that every worker thread stays busy to the end
+TASK_SECONDS = 1.0  # the judging a task aims at: Dask's few ms a task are well under 1 % of it
+FIRST_FILES_PER_TASK = 20  # before a task has come back to measure a file by: 0.1-2 s at 5-100 ms
+MAX_FILES_PER_TASK = 200  # a task's answers (20-30 kB of JSON a file) stay a few MB
+TASKS_PER_THREAD = 4  # the files left make this many tasks a worker thread at least: a short tail
+SHIP_BYTES_PER_TASK = 64 * 2**20  # shipped bytes in one task, at most (once a file's size is known)
 IN_FLIGHT_PER_THREAD = 2  # tasks submitted and not yet collected, per worker thread
 SHIP_BYTES_IN_FLIGHT = 256 * 2**20  # shipped bytes submitted and not yet collected, at most
 READY_MAX = 1024  # answers (from the cache) held before they are yielded
@@ -113,6 +120,9 @@ class RegradeItem:
     profile_text: str | None = field(default=None, repr=False)
     profile_name: str | None = None
     key: Any = None
+    # the analysis time its result document carries, when not the run's: a station's record
+    # keeps the time it was first analysed, its place in its cell's history
+    analysed_at: datetime.datetime | None = None
 
     def __post_init__(self) -> None:
         if self.path is None and self.data is None:
@@ -151,7 +161,8 @@ class RunStats:
     """
 
     workers: int = 0  # worker threads when the run began
-    batch_files: int = 0  # files per task
+    batch_files: int = 0  # files in the first task
+    largest_batch: int = 0  # files in the largest task
     items: int = 0  # items taken from the caller
     from_cache: int = 0  # answered from the cache
     shared: int = 0  # given the answer of an item of this run with the same input and setting
@@ -299,16 +310,23 @@ def setting_digest(
     return digest.hexdigest()
 
 
-def batch_size(files: int | None, threads: int) -> int:
-    """Files per task: TARGET_FILES_PER_TASK, or fewer so that a run of ``files`` makes at
-    least TASKS_PER_THREAD tasks per worker thread (never fewer than one file).
+def batch_size(files_left: int | None, threads: int, seconds_per_file: float | None = None) -> int:
+    """Files for the next task: about TASK_SECONDS of judging at the ``seconds_per_file``
+    measured so far (FIRST_FILES_PER_TASK before any), MAX_FILES_PER_TASK at most, and no more
+    than leaves TASKS_PER_THREAD tasks per worker thread for the files left (when known), so
+    that every thread keeps working and the last tasks are short; one at least.
 
-    >>> batch_size(10_000_000, 512), batch_size(2000, 2), batch_size(30, 2), batch_size(3, 8)
-    (50, 50, 4, 1)
+    >>> batch_size(None, 512), batch_size(10_000_000, 512, 0.020), batch_size(10_000_000, 512, 0.002)
+    (20, 50, 200)
+    >>> batch_size(2000, 2, 0.005), batch_size(30, 2), batch_size(400, 2, 0.005), batch_size(3, 8, 0.01)
+    (200, 4, 50, 1)
     """
-    if files is None:
-        return TARGET_FILES_PER_TASK
-    return max(1, min(TARGET_FILES_PER_TASK, math.ceil(files / (max(threads, 1) * TASKS_PER_THREAD))))
+    size = float(FIRST_FILES_PER_TASK)
+    if seconds_per_file is not None:
+        size = min(MAX_FILES_PER_TASK, TASK_SECONDS / max(seconds_per_file, 1e-6))
+    if files_left is not None:
+        size = min(size, math.ceil(files_left / (max(threads, 1) * TASKS_PER_THREAD)))
+    return max(1, int(size))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -326,6 +344,7 @@ class _File:
     data: bytes | None = field(repr=False)
     profile_name: str | None
     profile_text: str | None = field(repr=False)
+    analysed_at: datetime.datetime | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -475,7 +494,7 @@ def _judge_file(book: RuleBook, file: _File, batch: _Batch) -> tuple[str | None,
             data,
             file.name,
             book,
-            analysed_at=batch.analysed_at,
+            analysed_at=file.analysed_at or batch.analysed_at,
             profile=profile,
             max_uncompressed_bytes=batch.max_uncompressed_bytes,
             input_sha256=digest,
@@ -590,6 +609,7 @@ class _Run:
         self.open: list[tuple[CacheKey, RegradeItem]] = []  # the batch being filled
         self.flights: dict[str, tuple[_Future, _Flight]] = {}
         self.shipped_in_flight = 0
+        self.shipped_files = self.shipped_total = 0  # files shipped so far and their bytes
         self.exhausted = False
 
     # -- the run --------------------------------------------------------------------------------
@@ -602,8 +622,7 @@ class _Run:
             self.client = self._connect(stack)
             threads = max(1, sum(self.client.nthreads().values()))
             self.stats.workers = threads
-            self.size = self.batch_files or batch_size(total, threads)
-            self.stats.batch_files = self.size
+            self.total = total
             self.most_in_flight = IN_FLIGHT_PER_THREAD * threads
             self.rules_future = self.client.scatter(self.rules, broadcast=True, hash=False)
             self.done: Any = _distributed().as_completed()
@@ -658,7 +677,10 @@ class _Run:
                     threads_per_worker=1,
                     processes=True,
                     host="127.0.0.1",
-                    dashboard_address=None,
+                    # no dashboard; the scheduler's HTTP routes (health, metrics) on a free
+                    # loopback port, never a fixed one that another cluster may hold
+                    dashboard_address="127.0.0.1:0",
+                    scheduler_kwargs={"dashboard": False},
                     silence_logs=logging.ERROR,
                 )
             stack.callback(cluster.close)
@@ -688,7 +710,8 @@ class _Run:
     def _take(self, source: Iterator[RegradeItem]) -> None:
         """Fill the open batch from ``source`` (answering what needs no worker) and submit it
         once full or once ``source`` is done."""
-        while len(self.open) < self.size and len(self.ready) < READY_MAX:
+        size = self._next_size()
+        while len(self.open) < size and len(self.ready) < READY_MAX:
             try:
                 item = next(source)
             except StopIteration:
@@ -696,8 +719,21 @@ class _Run:
                 break
             self.stats.items += 1
             self._place(item)
-        if self.open and (len(self.open) >= self.size or self.exhausted):
+        if self.open and (len(self.open) >= size or self.exhausted):
             self._submit()
+
+    def _next_size(self) -> int:
+        """Files for the task being filled: ``batch_files``, or batch_size() at the judging time
+        measured so far (and, shipping, no more than SHIP_BYTES_PER_TASK at the sizes seen)."""
+        if self.batch_files is not None:
+            return self.batch_files
+        s = self.stats
+        seconds_per_file = s.judging_s / s.files_judged if s.files_judged else None
+        left = None if self.total is None else self.total - s.items + len(self.open)
+        size = batch_size(left, s.workers, seconds_per_file)
+        if self.shipped_files:
+            size = min(size, max(1, SHIP_BYTES_PER_TASK * self.shipped_files // max(self.shipped_total, 1)))
+        return size
 
     def _place(self, item: RegradeItem) -> None:
         profile_text = item.profile_text
@@ -761,7 +797,7 @@ class _Run:
             shipped += len(data) if data is not None else 0
             files.append(
                 _File(len(files), item.sha256, item.name, item.path, data, item.profile_name,
-                      item.profile_text)
+                      item.profile_text, item.analysed_at)
             )
             groups.append(self.waiting[key])
             keys.append(key)
@@ -782,6 +818,11 @@ class _Run:
         self.done.add(future)
         self.stats.tasks += 1
         self.stats.files_sent += len(files)
+        self.stats.batch_files = self.stats.batch_files or len(files)
+        self.stats.largest_batch = max(self.stats.largest_batch, len(files))
+        if shipped:
+            self.shipped_files += sum(f.data is not None for f in files)
+            self.shipped_total += shipped
 
     # -- collecting --------------------------------------------------------------------------------
 
