@@ -243,6 +243,40 @@ class Micro:
     pages: int
     font_share: float
     pdf_bytes: int
+    # the record read as a workbook and as a Parquet file, each against pandas.read_csv of its
+    # text, per repeat: label -> (ratios, reader's timing)
+    layout_ratios: dict[str, tuple[list[float], Timing]] = field(default_factory=dict)
+
+
+def other_layouts(data: bytes, metadata: dict[str, str]) -> tuple[bytes, bytes]:
+    """The record of cycle file ``data`` as a workbook (.xlsx) and as a Parquet file.
+
+    The workbook holds the metadata on a sheet "Info" (key, value) and the rows on a sheet
+    "Record" under the same header, written by openpyxl; the Parquet file holds the same
+    columns and the metadata as its key/value metadata, written by pyarrow.
+    """
+    import io
+
+    import openpyxl
+    import pandas as pd
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    frame = pd.read_csv(io.BytesIO(data), comment="#")
+    book = openpyxl.Workbook(write_only=True)
+    info = book.create_sheet("Info")
+    for key, value in metadata.items():
+        info.append([key, value])
+    sheet = book.create_sheet("Record")
+    sheet.append(list(frame.columns))
+    for row in zip(*(frame[c].tolist() for c in frame.columns), strict=True):
+        sheet.append(list(row))
+    workbook = io.BytesIO()
+    book.save(workbook)
+    table = pa.Table.from_pandas(frame, preserve_index=False).replace_schema_metadata(metadata)
+    parquet = io.BytesIO()
+    pq.write_table(table, parquet)
+    return workbook.getvalue(), parquet.getvalue()
 
 
 def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp: Path) -> Micro:
@@ -258,6 +292,7 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
     from pipeline.ledger.rows import CheckRowData
     from pipeline.mail.letters import build_message, failure_letter
     from pipeline.read.cyclefile import read_cycle_file
+    from pipeline.read.profile import load_profile
     from pipeline.read.validate import drop_invalid_rows, validate_trace
     from pipeline.report import plots
     from pipeline.report.certificate import PLOT_HEIGHT_MM, PLOT_WIDTH_MM, TEMPLATES_DIR, render_html
@@ -272,6 +307,14 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
     name = "DEMO-LOT-01_L01-001.csv"
     trace = read_cycle_file(data, name, None)
     rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
+    book_bytes, parquet_bytes = other_layouts(data, passing[0].metadata)
+    book_profile = load_profile(
+        '[file]\nformat = "workbook"\n[workbook]\ndata_sheets = "Record"\nmetadata_sheet = "Info"\n',
+        "bench_workbook.toml",
+    )
+    parquet_profile = load_profile('[file]\nformat = "parquet"\n', "bench_parquet.toml")
+    for layout_bytes, layout_profile in ((book_bytes, book_profile), (parquet_bytes, parquet_profile)):
+        assert len(read_cycle_file(layout_bytes, "bench", layout_profile)) == len(trace)
 
     def vsm() -> object:
         notes = validate_trace(trace, cell_type)
@@ -367,6 +410,8 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
     cheap = interleave(
         {
             "pandas": lambda: pd.read_csv(io.BytesIO(data), comment="#"),
+            "workbook": lambda: read_cycle_file(book_bytes, "bench.xlsx", book_profile),
+            "parquet": lambda: read_cycle_file(parquet_bytes, "bench.parquet", parquet_profile),
             "judge path": lambda: judge(data, name, rulebook, analysed_at=ANALYSED_AT),
             "read": lambda: read_cycle_file(data, name, None),
             "vsm": vsm,
@@ -491,6 +536,8 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
     ]
     references = [
         row(cheap["pandas"], "pandas.read_csv, same bytes"),
+        row(cheap["workbook"], "read, workbook of the same record", f".xlsx, {len(book_bytes) / MIB:.1f} MB"),
+        row(cheap["parquet"], "read, Parquet file of the same record", f"{len(parquet_bytes) / MIB:.1f} MB"),
         row(naive, "naive WeasyPrint render, same HTML", "nothing shared"),
         row(layout, "  naive: layout (HTML.render)"),
         row(renders["fast layout"], "  layout alone, stylesheet and font shared", "pdf.lay_out"),
@@ -510,6 +557,13 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
         pages,
         fonts.median / writing.median if writing.values else math.nan,
         split["bytes"],
+        {
+            label: ([a / b for a, b in zip(t.values, cheap["pandas"].values, strict=True)], t)
+            for label, t in (
+                ("workbook read ÷ pandas.read_csv", cheap["workbook"]),
+                ("Parquet read ÷ pandas.read_csv", cheap["parquet"]),
+            )
+        },
     )
 
 
@@ -768,7 +822,18 @@ def machine() -> list[tuple[str, str]]:
         memory = "unknown"
     usable = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else os.cpu_count()
     versions = []
-    for dist in ("numpy", "scipy", "pandas", "weasyprint", "pydyf", "fonttools", "jinja2", "watchdog"):
+    for dist in (
+        "numpy",
+        "scipy",
+        "pandas",
+        "weasyprint",
+        "pydyf",
+        "fonttools",
+        "jinja2",
+        "watchdog",
+        "python-calamine",
+        "pyarrow",
+    ):
         with contextlib.suppress(md.PackageNotFoundError):
             versions.append(f"{dist} {md.version(dist)}")
     try:
@@ -854,6 +919,10 @@ def build_table(
             spread = f"{min(values):.2f}{DASH}{max(values):.2f}"
             ok = verdict(ratio <= goal)
             add(f"{label:<43}{ratio:6.2f}   {spread:<12}{of_minima:>7.2f}     ≤ {goal:.2f}   {ok}")
+        for label, (values, reader) in micro.layout_ratios.items():
+            spread = f"{min(values):.2f}{DASH}{max(values):.2f}"
+            of_minima = min(reader.values) / min(micro.pandas.values)
+            add(f"{label:<43}{statistics.median(values):6.2f}   {spread:<12}{of_minima:>7.2f}     (none)")
         add(
             f"(font embedding is {micro.font_share:.0%} of the naive render's PDF writing; "
             f"the certificate has {micro.pages} pages, {micro.pdf_bytes / 1024:.0f} KiB)"
