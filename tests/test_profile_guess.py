@@ -672,3 +672,18 @@ def test_a_workbook_of_local_date_time_cells_without_a_zone_and_prefixed_metadat
     assert 'zone = "Europe/Berlin"' in text
     assert (trace.cell_id, trace.cell_type) == ("C5", "DEMO-LFP-20A")
     np.testing.assert_allclose(trace.time_s, 4 * np.array(record["time"]), atol=1e-3)
+
+
+def test_profile_show_reads_a_file_that_lacks_its_cell_type_and_names_what_is_missing(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    path = tmp_path / "LOT-A7_CELL-0012.csv"
+    shutil.copy(GOOD / path.name, path)
+    profile = tmp_path / "guessed.toml"
+    profile.write_text(guess_profile(path.read_bytes(), path.name), encoding="utf-8")
+    assert main(["profile", "show", str(profile), str(path), "--rules", str(RULES_DIR)]) == 2
+    out, err = capsys.readouterr()
+    assert "  line 9    120.000    3.30000   10.00000          25.20     2      1" in out
+    assert "  cell_type   (missing)                  not in the file: a check asks for it" in out
+    assert out.endswith("\nsteps: not cut, the file lacks metadata a check needs (below)\n")
+    assert err.startswith(f"{path}, line 3: no cell_type in the metadata")

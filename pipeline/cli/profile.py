@@ -57,18 +57,20 @@ def cmd_profile_guess(args: argparse.Namespace) -> int:
 
 def cmd_profile_show(args: argparse.Namespace) -> int:
     """Print what formgate reads from a file with a profile, and the steps it would cut."""
-    from pipeline.read.convert import to_trace
-    from pipeline.read.cyclefile import read_table
     from pipeline.read.profile import load_profile
 
     profile_path = Path(args.profile)
     profile = load_profile(profile_path.read_text(encoding="utf-8"), str(profile_path))
     path = Path(args.file)
     data = path.read_bytes()
-    table = read_table(data, str(path), profile)
-    trace = to_trace(table, profile)
+    table, trace, lacking = _read(data, str(path), profile)
     for line in read_lines(profile, table, trace):
         print(line)
+    if lacking is not None:
+        # what was read is shown; the steps need the rule set the cell type chooses
+        print()
+        print("steps: not cut, the file lacks metadata a check needs (below)")
+        raise lacking
     segmentation, rule_words, notes = _segment(trace, Path(args.rules))
     print()
     for line in step_lines(segmentation, rule_words):
@@ -79,6 +81,36 @@ def cmd_profile_show(args: argparse.Namespace) -> int:
         for note in notes:
             print(f"  {note}")
     return EXIT_OK
+
+
+MISSING = "(missing)"
+
+
+def _read(
+    data: bytes, name: str, profile: Profile
+) -> tuple[RawTable, Trace, FormgateError | None]:
+    """The file's table and trace, as a check reads them.
+
+    A file that lacks a cell id, lot or cell type is read all the same, those shown as
+    missing, and the error a check gives is returned to be raised once the rest is shown.
+    """
+    from dataclasses import replace
+
+    from pipeline.errors import InputError
+    from pipeline.read.convert import to_trace
+    from pipeline.read.cyclefile import read_table
+    from pipeline.read.profile import REQUIRED_METADATA
+
+    lacking: FormgateError | None = None
+    try:
+        table = read_table(data, name, profile)
+    except InputError as exc:
+        if not any(exc.problem.startswith(f"no {key} in the metadata") for key in REQUIRED_METADATA):
+            raise
+        lacking = exc
+        standing = {key: MISSING for key in REQUIRED_METADATA}
+        table = read_table(data, name, replace(profile, metadata={**standing, **profile.metadata}))
+    return table, to_trace(table, profile), lacking
 
 
 def _segment(trace: Trace, rules: Path) -> tuple[Segmentation, str, list[str]]:
@@ -133,11 +165,13 @@ def _units(profile: Profile, quantity: str) -> str:
         since = "since the step began" if profile.time_stamps == "step elapsed" else "elapsed"
         return f"{profile.time_unit}, {since} -> s since the record began"
     if quantity == "voltage":
-        return f"{profile.voltage_unit} -> V"
+        return "V" if profile.voltage_unit == "V" else f"{profile.voltage_unit} -> V"
     if quantity == "current":
         sign = profile.current_sign
         if sign == "from mode":
             sign = "a magnitude, its sign from the mode"
+        if (profile.current_unit, sign) == ("A", "charge positive"):
+            return "A, charge positive"
         return f"{profile.current_unit}, {sign} -> A, positive = charge"
     if quantity == "temperature":
         return "°C"
@@ -217,6 +251,8 @@ def _origin(key: str, value: str, profile: Profile, table: RawTable) -> str:
         found = pattern.search(table.name.replace("\\", "/").rpartition("/")[2])
         if found is not None and (found.groupdict().get(key) or "").strip() == value:
             return "the file name"
+    if value == MISSING and key not in profile.metadata:
+        return "not in the file: a check asks for it"
     if profile.metadata.get(key) == value:
         return "the profile"
     if key == "started_at":
