@@ -155,6 +155,13 @@ def test_metadata_in_the_rows_above_the_header_in_every_written_form() -> None:
     assert str(trace.places.at(0)) == "book.xlsx, sheet 'Record', row 12"
 
 
+def test_one_sheet_named_for_both_the_data_and_the_metadata_reads_the_rows_above_the_header() -> None:
+    metadata, rows = v1_record()
+    data = xlsx({"Record": [*info_rows(metadata), HEADER, *rows]})
+    prof = profile(PLAIN_BOOK + '[workbook]\ndata_sheets = "Record"\nmetadata_sheet = "Record"\n')
+    assert_twins(read_cycle_file(data, "book.xlsx", prof), twin())
+
+
 def test_data_placed_away_from_the_first_cell_is_named_by_its_own_row_and_column() -> None:
     metadata, rows = v1_record()
     rows[4][1] = "n/a"
