@@ -311,6 +311,20 @@ def test_each_worker_parses_a_rules_bundle_once_for_all_its_tasks_and_runs(
     assert {after[w]["rules_parsed"] - before[w]["rules_parsed"] for w in after if after[w]["tasks"] > before[w]["tasks"]} == {1}
 
 
+def test_a_scheduler_out_of_reach_is_a_located_error(archive: Archive, rules: Rules) -> None:
+    address = f"tcp://127.0.0.1:{_free_port()}"  # nothing listens there
+    with pytest.raises(FormgateError, match=rf"^cannot reach the Dask scheduler at {address} "):
+        next(judge_many(archive.items, rules, scheduler=address, analysed_at=ANALYSED_AT, wait_s=1))
+
+
+@pytest.mark.slow
+def test_a_run_waits_for_the_workers_it_asks_for_and_says_when_they_do_not_come(
+    scheduler: str, archive: Archive, rules: Rules
+) -> None:
+    with pytest.raises(FormgateError, match=rf"^fewer than 3 Dask workers joined the scheduler at {scheduler} within 1 s"):
+        next(judge_many(archive.items, rules, scheduler=scheduler, workers=3, analysed_at=ANALYSED_AT, wait_s=1))
+
+
 class _Terminal(io.StringIO):
     def isatty(self) -> bool:
         return True

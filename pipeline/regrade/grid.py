@@ -96,7 +96,7 @@ SHIP_BYTES_PER_TASK = 64 * 2**20  # shipped bytes in one task, at most (once a f
 IN_FLIGHT_PER_THREAD = 2  # tasks submitted and not yet collected, per worker thread
 SHIP_BYTES_IN_FLIGHT = 256 * 2**20  # shipped bytes submitted and not yet collected, at most
 READY_MAX = 1024  # answers (from the cache) held before they are yielded
-WORKER_WAIT_S = 60.0  # how long a run on a scheduler waits for its first workers
+WORKER_WAIT_S = 60.0  # how long a run waits to reach a scheduler, and then for its workers
 DRAIN_S = 30.0  # how long a stopped run lets its running tasks finish, to keep their results
 
 
@@ -532,6 +532,7 @@ def judge_many(
     max_uncompressed_bytes: int = MAX_UNCOMPRESSED_BYTES,
     limits: TextLimits | None = None,
     stats: RunStats | None = None,
+    wait_s: float = WORKER_WAIT_S,
 ) -> Iterator[Judged]:
     """Judge every item under ``rules`` on a Dask cluster; yield a Judged per item as it comes
     back (in no set order). Nothing starts before the first item is asked for.
@@ -545,7 +546,8 @@ def judge_many(
     :func:`batch_size`). ``analysed_at``: the analysis time every result document carries.
     ``cache``: a RegradeCache or the path of its file; ``stats``: a RunStats filled as the
     run goes. ``max_uncompressed_bytes`` and ``limits`` bound one input as a station's
-    settings do. ``progress``: a bar on standard error (when it is a terminal).
+    settings do. ``progress``: a bar on standard error (when it is a terminal). ``wait_s``:
+    how long to wait to reach the scheduler, and then for the workers (FormgateError past it).
     """
     if batch_files is not None and batch_files < 1:
         raise ValueError("batch_files must be at least 1")
@@ -563,6 +565,7 @@ def judge_many(
         max_uncompressed_bytes=max_uncompressed_bytes,
         limits=limits,
         stats=stats if stats is not None else RunStats(),
+        wait_s=wait_s,
     )
     return run.answers(items)
 
@@ -592,8 +595,10 @@ class _Run:
         max_uncompressed_bytes: int,
         limits: TextLimits | None,
         stats: RunStats,
+        wait_s: float,
     ) -> None:
         self.rules = rules
+        self.wait_s = wait_s
         self.scheduler = scheduler
         self.workers = workers
         self.ship_bytes = ship_bytes
@@ -689,14 +694,22 @@ class _Run:
             return local
         client: _Client = self.scheduler
         if isinstance(self.scheduler, str):
-            client = dd.Client(self.scheduler, timeout=WORKER_WAIT_S)
+            try:
+                client = dd.Client(self.scheduler, timeout=self.wait_s)
+            except OSError as exc:
+                raise FormgateError(
+                    f"cannot reach the Dask scheduler at {self.scheduler} ({exc})",
+                    hint="Start it (dask scheduler) or give the address it prints, tcp://host:port.",
+                ) from None
             stack.callback(client.close)
+        wanted = self.workers or 1
         try:
-            client.wait_for_workers(self.workers or 1, timeout=WORKER_WAIT_S)
+            client.wait_for_workers(wanted, timeout=self.wait_s)
         except TimeoutError:
-            raise RuntimeError(
-                f"fewer than {self.workers or 1} Dask worker(s) joined the scheduler at "
-                f"{client.scheduler_info()['address']} within {WORKER_WAIT_S:g} s"
+            raise FormgateError(
+                f"{'no Dask worker' if wanted == 1 else f'fewer than {wanted} Dask workers'} joined the "
+                f"scheduler at {client.scheduler_info()['address']} within {self.wait_s:g} s",
+                hint="Start workers with: dask worker <scheduler address>",
             ) from None
         return client
 
@@ -880,7 +893,8 @@ class _Run:
             return
         if self.bar.total is not None:
             self.bar.total -= 1
-        self.bar.set_postfix(cached=self.stats.from_cache)
+        self.bar.set_postfix(cached=self.stats.from_cache, refresh=False)
+        self.bar.update(0)  # shown at the bar's own pace, not once a file
 
     # -- stopping early ------------------------------------------------------------------------------
 
