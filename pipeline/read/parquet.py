@@ -72,9 +72,13 @@ def read_parquet_table(data: bytes, name: str, profile: Profile, max_uncompresse
     columns = find_columns(head, name, profile)
     wanted = sorted(set(columns.values()))
     read = [names[i] for i in wanted]
-    if _unpacked_size(footer, read) > max_uncompressed_bytes:
+    try:
+        size, rows = _unpacked_size(footer, read), footer.num_rows
+    except (pa.ArrowException, OSError, ValueError, TypeError, KeyError, IndexError) as exc:
+        raise _damaged(name, exc) from None  # e.g. a column path that is not UTF-8
+    if size > max_uncompressed_bytes:
         raise _too_large(name, max_uncompressed_bytes)
-    if footer.num_rows == 0:
+    if rows == 0:
         raise InputError("the Parquet file holds no rows", SourceRef(name), CUT_SHORT_HINT)
     try:
         table = file.read(columns=read)

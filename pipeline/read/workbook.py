@@ -30,6 +30,7 @@ from __future__ import annotations
 import datetime as dt
 import io
 import re
+import warnings
 import zipfile
 import zlib
 from collections.abc import Sequence
@@ -244,20 +245,25 @@ class _CalamineBook:
 
 
 class _OpenpyxlBook:
+    """openpyxl's read-only reader; its warnings about a file's styles or links are not the record's."""
+
     def __init__(self, data: bytes) -> None:
         import openpyxl
 
         try:
-            self._book = openpyxl.load_workbook(io.BytesIO(data), read_only=True, data_only=True)
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                self._book = openpyxl.load_workbook(io.BytesIO(data), read_only=True, data_only=True)
             self.names = [sheet.title for sheet in self._book.worksheets]
         except Exception as exc:  # a third-party parser on bytes from anywhere
             raise _Unreadable(str(exc) or type(exc).__name__) from None
 
     def grid(self, sheet: str) -> Grid:
         try:
-            rows = [
-                ["" if v is None else v for v in row] for row in self._book[sheet].iter_rows(values_only=True)
-            ]
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                cells = self._book[sheet].iter_rows(values_only=True)
+                rows = [["" if v is None else v for v in row] for row in cells]
         except Exception as exc:
             raise _Unreadable(str(exc) or type(exc).__name__) from None
         width = max((len(r) for r in rows), default=0)
