@@ -98,6 +98,7 @@ SHIP_BYTES_IN_FLIGHT = 256 * 2**20  # shipped bytes submitted and not yet collec
 READY_MAX = 1024  # answers (from the cache) held before they are yielded
 WORKER_WAIT_S = 60.0  # how long a run waits to reach a scheduler, and then for its workers
 DRAIN_S = 30.0  # how long a stopped run lets its running tasks finish, to keep their results
+THREADS_RECOUNT_S = 10.0  # how often a run counts the cluster's worker threads again
 
 
 @dataclass(frozen=True, slots=True)
@@ -625,10 +626,9 @@ class _Run:
             self.cache = self._open_cache(stack)
             self.bar = stack.enter_context(self._bar(total))
             self.client = self._connect(stack)
-            threads = max(1, sum(self.client.nthreads().values()))
-            self.stats.workers = threads
             self.total = total
-            self.most_in_flight = IN_FLIGHT_PER_THREAD * threads
+            self._count_threads()
+            self.stats.workers = self.threads
             self.rules_future = self.client.scatter(self.rules, broadcast=True, hash=False)
             self.done: Any = _distributed().as_completed()
             source = iter(items)
@@ -715,8 +715,16 @@ class _Run:
 
     # -- taking items and submitting batches ------------------------------------------------------
 
+    def _count_threads(self) -> None:
+        """The cluster's worker threads, counted again every THREADS_RECOUNT_S (workers come
+        and go on a cluster that scales)."""
+        self.threads = max(1, sum(self.client.nthreads().values()))
+        self.threads_counted = time.monotonic()
+
     def _room(self) -> bool:
-        if len(self.flights) >= self.most_in_flight:
+        if time.monotonic() - self.threads_counted > THREADS_RECOUNT_S:
+            self._count_threads()
+        if len(self.flights) >= IN_FLIGHT_PER_THREAD * self.threads:
             return False
         return not self.flights or self.shipped_in_flight < SHIP_BYTES_IN_FLIGHT
 
@@ -743,7 +751,7 @@ class _Run:
         s = self.stats
         seconds_per_file = s.judging_s / s.files_judged if s.files_judged else None
         left = None if self.total is None else self.total - s.items + len(self.open)
-        size = batch_size(left, s.workers, seconds_per_file)
+        size = batch_size(left, self.threads, seconds_per_file)
         if self.shipped_files:
             size = min(size, max(1, SHIP_BYTES_PER_TASK * self.shipped_files // max(self.shipped_total, 1)))
         return size
