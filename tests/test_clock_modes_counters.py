@@ -152,9 +152,7 @@ def test_a_clock_that_goes_back_is_a_located_error_that_says_so() -> None:
     assert str(caught.value) == (
         "c.csv, line 7, column 1: the clock goes back 6.5 min, from 2024-06-02T08:26:30+02:00 on "
         "line 6 to 2024-06-02T08:20:00+02:00.\n"
-        "  If the stamps are local time across a daylight-saving change, name the zone ([time] "
-        "zone) or have the cycler write each stamp's UTC offset; otherwise check that the file "
-        "is one run of one channel."
+        "  Time must never go back; check that the file is one run of one channel."
     )
 
 

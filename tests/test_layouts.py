@@ -427,11 +427,6 @@ def test_local_stamps_read_as_a_fixed_offset_across_autumn_go_back_and_say_why(t
     assert error.problem.endswith(f" min, from {before} on line {error.where.line - 1} to {after}")
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="clock._refuse_backwards picks its hint from the profile's [time] zone only: a fixed "
-    "offset named by the file's zone_metadata entry gets the generic hint",
-)
 def test_a_fixed_offset_from_the_files_metadata_that_goes_back_hints_at_a_zone_name(tmp_path: Path) -> None:
     data = date_time_text(short_record(), start=AUTUMN_2026 - dt.timedelta(hours=3))
     data = data.replace(b"# clock_zone: Europe/Berlin\n", b"# clock_zone: +02:00\n")

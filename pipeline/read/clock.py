@@ -71,10 +71,12 @@ def date_time_elapsed(table: RawTable, index: int, profile: Profile) -> tuple[Fl
     """
     raw = table.frame[index]
     header = table.header(index)
+    zone_used: dt.tzinfo | None = None  # the zone stamps without an offset are read in
     if isinstance(raw.dtype, pd.DatetimeTZDtype):
         stamps = raw.dt.tz_convert("UTC")
     elif raw.dtype.kind == "M":
-        stamps = _localised(pd.Series(raw), table, index, profile)
+        zone_used = _zone(table, profile)
+        stamps = _localised(pd.Series(raw), table, index, zone_used)
     else:
         text = raw.astype("string").str.strip()
         empty = text.isna() | text.isin(_EMPTY)
@@ -92,13 +94,17 @@ def date_time_elapsed(table: RawTable, index: int, profile: Profile) -> tuple[Fl
                 table.at(row, index),
                 f"Check the [time] date_format of the import profile {profile.name}, or fix the stamp.",
             )
-        stamps = parsed if with_offset else _localised(parsed, table, index, profile)
+        if with_offset:
+            stamps = parsed
+        else:
+            zone_used = _zone(table, profile)
+            stamps = _localised(parsed, table, index, zone_used)
     nanos = stamps.to_numpy(dtype="datetime64[ns]", na_value=np.datetime64("NaT")).view(np.int64)
     valid = ~np.isnat(nanos.view("datetime64[ns]"))
     if not valid.any():
         return np.full(len(raw), np.nan), ""
     first = int(np.argmax(valid))
-    _refuse_backwards(nanos, valid, table, index, profile)
+    _refuse_backwards(nanos, valid, table, index, zone_used)
     elapsed = np.where(valid, (nanos - nanos[first]) / 1e9, np.nan)
     start = pd.Timestamp(nanos[first], tz="UTC").isoformat().replace("+00:00", "Z")
     return elapsed, start
@@ -147,8 +153,7 @@ def _zone(table: RawTable, profile: Profile) -> dt.tzinfo:
     )
 
 
-def _localised(naive: pd.Series, table: RawTable, index: int, profile: Profile) -> pd.Series:
-    zone = _zone(table, profile)
+def _localised(naive: pd.Series, table: RawTable, index: int, zone: dt.tzinfo) -> pd.Series:
     if isinstance(zone, dt.timezone):  # a fixed offset: nothing is skipped or repeated
         return naive.dt.tz_localize(zone).dt.tz_convert("UTC")
     try:
@@ -183,7 +188,7 @@ def _local_time_fault(naive: pd.Series, zone: dt.tzinfo) -> tuple[int, str]:
 
 
 def _refuse_backwards(
-    nanos: IntArray, valid: np.ndarray, table: RawTable, index: int, profile: Profile
+    nanos: IntArray, valid: np.ndarray, table: RawTable, index: int, zone: dt.tzinfo | None
 ) -> None:
     rows = np.flatnonzero(valid)
     steps = np.diff(nanos[rows])
@@ -194,16 +199,11 @@ def _refuse_backwards(
     before, after = int(rows[k]), int(rows[k + 1])
     raw = table.frame[index]
     hint = "Time must never go back; check that the file is one run of one channel."
-    if profile.zone is None and profile.zone_metadata is None:
+    if isinstance(zone, dt.timezone):  # the zone actually used, from the profile or the file
         hint = (
-            "If the stamps are local time across a daylight-saving change, name the zone "
-            "([time] zone) or have the cycler write each stamp's UTC offset; otherwise "
-            "check that the file is one run of one channel."
-        )
-    elif isinstance(parse_zone(profile.zone or "UTC"), dt.timezone):
-        hint = (
-            "The profile's zone is a fixed offset; if the cycler's clock follows "
-            'daylight-saving time, give its zone name (e.g. "Europe/Berlin").'
+            f"The stamps were read at the fixed offset {zone}; if the cycler's clock follows "
+            'daylight-saving time, give its zone name (e.g. "Europe/Berlin"); otherwise check '
+            "that the file is one run of one channel."
         )
     raise InputError(
         f"the clock goes back {_seconds(-int(steps[k]))}, from {_shown(str(raw.iloc[before]))} "
