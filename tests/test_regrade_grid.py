@@ -30,7 +30,7 @@ from typing import Any
 
 import psutil
 import pytest
-from distributed import Client
+from distributed import Client, default_client
 
 from pipeline.demo.lots import ALL_DEMO_CELLS, DEMO_CELLS, DemoCell, demo_file_bytes
 from pipeline.errors import FormgateError, RulesError
@@ -277,6 +277,8 @@ def test_a_local_cluster_gives_the_results_judged_in_process(
     _assert_in_process_results(answers, archive, rules)
     assert (stats.workers, stats.batch_files) == (2, batch_size(len(archive.items), 2))
     assert stats.files_judged == stats.files_sent == len(archive.items)
+    with pytest.raises(ValueError, match="No clients found"):
+        default_client()  # the run's client was never the process's default, and is closed
 
 
 @pytest.mark.slow

@@ -630,7 +630,7 @@ class _Run:
             self._count_threads()
             self.stats.workers = self.threads
             self.rules_future = self.client.scatter(self.rules, broadcast=True, hash=False)
-            self.done: Any = _distributed().as_completed()
+            self.done: Any = _distributed().as_completed(loop=self.client.loop)
             source = iter(items)
             try:
                 while True:
@@ -689,13 +689,13 @@ class _Run:
                     silence_logs=logging.ERROR,
                 )
             stack.callback(cluster.close)
-            local: _Client = dd.Client(cluster)
+            local: _Client = dd.Client(cluster, set_as_default=False)
             stack.callback(local.close)
             return local
         client: _Client = self.scheduler
         if isinstance(self.scheduler, str):
             try:
-                client = dd.Client(self.scheduler, timeout=self.wait_s)
+                client = dd.Client(self.scheduler, timeout=self.wait_s, set_as_default=False)
             except OSError as exc:
                 raise FormgateError(
                     f"cannot reach the Dask scheduler at {self.scheduler} ({exc})",
@@ -913,8 +913,17 @@ class _Run:
             return
         futures = [future for future, _ in self.flights.values()]
         try:
-            with contextlib.suppress(TimeoutError):
-                _distributed().wait(futures, timeout=DRAIN_S)
+            deadline = time.monotonic() + DRAIN_S
+            for future in futures:
+                wait_s = deadline - time.monotonic()
+                if wait_s <= 0:
+                    break
+                try:
+                    future.result(timeout=wait_s)
+                except TimeoutError:
+                    break
+                except Exception:  # a task that failed: nothing of it to keep
+                    continue
             for future in futures:
                 if future.status == "finished":
                     self._keep(self._land(future), future.result())
