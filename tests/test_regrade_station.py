@@ -126,6 +126,8 @@ def test_apply_records_the_changed_cells_once_with_their_cause_and_new_certifica
             [record] = ledger.results.of_cell("LOT-A", cell)  # the regrade's judgement counts
             assert (record.regrade_id, record.verdict) == (1, "fail")
         assert ledger.integrity_ok()
+    # formgate verify finds every file published and the text of every rule set in the ledger
+    assert main(["verify", str(s.root), "--ledger"]) == 0
     # the cell's history shows both decisions and the cause
     assert main(["cell", "show", str(s.root), sorted(expected)[0]]) == 0
     shown = capsys.readouterr().out

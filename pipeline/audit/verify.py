@@ -383,7 +383,9 @@ class Verifier:
     def _published_files(self) -> list[Finding]:
         latest: dict[str, PublishedRow] = {}
         for row in self.ledger.published.every():
-            latest[row.path] = row  # a path published again (a lot report, a retest) counts last
+            # a path published again (a lot report, a retest) counts last; a station copied or
+            # moved elsewhere recorded its later files under their new paths: the same place
+            latest[str(self._locate(row.path))] = row
         findings = [f for f in map(self._on_disk, latest.values()) if not f.ok]
         for row in latest.values():
             if row.kind != "result" or row.result_id is None:

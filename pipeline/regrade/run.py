@@ -21,6 +21,7 @@ Edge module (ledger, files, the Dask engine). The steps:
 from __future__ import annotations
 
 import datetime
+import hashlib
 import json
 import logging
 import os
@@ -137,6 +138,7 @@ def regrade_station(
         row = ledger.regrades.begin(run_by=run_by, reason=reason, rules_digest=rules.digest,
                                     rule_sets=rule_sets, selection=selection.words(), now=now)
         regrade_id = row.id
+        _keep_rule_texts(ledger, rules, now)
         applied = _apply(settings, ledger, rulebook, lots, items, new_docs, row.id, now)
         data = _report_input(settings, lots, rules, rule_sets, selection, len(items), now,
                              applied=True, regrade_id=row.id, run_by=run_by, reason=reason)
@@ -309,6 +311,17 @@ def _apply(
             close_and_report(settings, ledger, rulebook, lot.lot, by="regrade", now=now,
                              close=False)
     return applied
+
+
+def _keep_rule_texts(ledger: Ledger, rules: Rules, now: datetime.datetime) -> None:
+    """Keep the exact text of every rule set and profile the regrade judged with, by SHA-256,
+    as the station keeps its own: an auditor reads the rules behind any certificate."""
+    for name, text in rules.files:
+        ledger.facts.remember_text(
+            kind="profile" if name.startswith("profiles/") else "rule_set",
+            sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
+            name=Path(name).name, text=text, now=now,
+        )
 
 
 def _keep_old_certificate(path: Path, regrade_id: int) -> None:
