@@ -157,6 +157,44 @@ def test_a_guessed_profile_reads_each_layout_example_as_its_shipped_profile(
 # ---------------------------------------------------------------- layouts the demo can write
 
 
+def _each_layout(record: Trace, stem: str) -> list[tuple[str, bytes, str]]:
+    """(file name, bytes, shipped profile's text) of every layout the demo writes of ``record``."""
+    from pipeline.demo.layouts import LAYOUTS as WRITTEN
+
+    return [
+        (stem + Path(layout.example).suffix, layout.write(record), (PROFILES / layout.profile).read_text("utf-8"))
+        for layout in WRITTEN.values()
+    ]
+
+
+@pytest.mark.parametrize("index", [0, 11, 12, 14], ids=lambda i: DEMO_CELLS[i].defect or "normal")
+def test_a_guessed_profile_reads_every_layout_of_a_demo_cell_as_its_shipped_profile(index: int) -> None:
+    from pipeline.demo.layouts import read_twin
+
+    cell = DEMO_CELLS[index]
+    record = read_twin(demo_file_bytes(cell), cell.file_name)
+    for name, data, shipped in _each_layout(record, cell.cell_id):
+        _, got = guessed(data, name)
+        assert_same(got, read_with(data, name, shipped))
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", ["nmc_normal_2", "lfp_missing_plateau"])
+def test_a_guessed_profile_reads_every_layout_of_a_reference_cell_as_its_shipped_profile(name: str) -> None:
+    # nmc_normal_2's date-time export has one rest row whose current (the channel's reading
+    # at the switch from a discharge) is written negative beside a current of magnitudes
+    from pipeline.demo import cycletext
+    from pipeline.demo.layouts import read_twin
+    from tests.test_physics_lot import read_through
+
+    record = read_through(name, 5e-4, 1e-4, seed=1)  # as tests/test_layouts.py reads it
+    twin = read_twin(cycletext.to_cycle_file(record, record.metadata).encode("utf-8"), f"{name}.csv")
+    for file_name, data, shipped in _each_layout(twin, name):
+        _, got = guessed(data, file_name)
+        assert_same(got, read_with(data, file_name, shipped))
+
+
+
 def _twin() -> Trace:
     from pipeline.demo.layouts import example_twin
 
