@@ -173,3 +173,48 @@ def test_an_apply_killed_half_way_and_run_again_gives_the_ledger_of_one_clean_ru
         regraded = list(ledger.db.rows("SELECT input_id, count(*) FROM results WHERE regrade_id IS NOT NULL "
                                   "GROUP BY input_id HAVING count(*) > 1"))
         assert regraded == []
+
+
+from tests.test_regrade_grid import scheduler  # noqa: E402,F401  (a real `dask scheduler` and two workers)
+
+
+@pytest.mark.parametrize("ship", [False, True], ids=["workers-read-the-archive", "bytes-shipped"])
+def test_a_separately_started_scheduler_and_workers_regrade_alike(
+    judged: Settings, tmp_path: Path, scheduler: str, ship: bool,  # noqa: F811
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    s = _copy(judged, tmp_path / "st")
+    proposed = tmp_path / "proposed"
+    proposed.mkdir()
+    (proposed / "test_cells.toml").write_text(TIGHTENED, encoding="utf-8")
+    args = ["regrade", str(s.root), "--rules", str(proposed), "--scheduler", scheduler,
+            "--workers", "2", "--no-progress", *(["--ship-bytes"] if ship else [])]
+    assert main(args) == 0
+    assert f"{len(CAPACITIES)} on the cluster" in capsys.readouterr().out
+    [report] = sorted((s.root / "regrades").glob("dry-run-*-changes.csv"))
+    assert _csv_cells(report) == dict.fromkeys(_between(s, 1.80, 1.88), "pass → fail")
+
+
+def test_a_closed_lot_is_reported_again_and_one_summary_mail_is_queued(
+    judged: Settings, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    s = _copy(judged, tmp_path / "st")
+    assert main(["lot", "close", str(s.root), "LOT-A"]) in (0, 1)
+    report = s.certificates / "LOT-A" / "_lot-report.pdf"
+    first = report.read_bytes()
+    (s.rules_dir / "test_cells.toml").write_text(TIGHTENED, encoding="utf-8")
+    capsys.readouterr()
+    expected = _between(s, 1.80, 1.88)
+    assert main(["regrade", str(s.root), "--apply", "--by", QE, "--reason", "order 12 tightened",
+                 "--mail", "--workers", "1", "--no-progress"]) == 0
+    assert report.read_bytes() != first  # the closed lot's report shows the new decisions
+    with Ledger(s.ledger) as ledger:
+        assert ledger.lots.get("LOT-A").closed_at is not None
+        latest = ledger.decisions.latest_of_lot("LOT-A")
+        assert {c for c, d in latest.items() if d.cause == "regrade"} == expected
+        mails = [m for m in ledger.outbox.in_state("pending") if "regrade" in m.subject]
+    assert [m.subject for m in mails] == [
+        f"[formgate] regrade 1: {len(expected)} cells changed"
+    ]
+    assert mails[0].attachment_path.endswith("regrade-1-changes.pdf")
+    assert "CAUTION" in mails[0].body_text and "qualified personnel" in mails[0].body_text
