@@ -760,3 +760,61 @@ def test_missing_parquet_metadata_names_the_file() -> None:
         read_cycle_file(v1_parquet({"lot": "L", "cell_type": "T"}), "c.parquet", profile(PARQUET))
     assert str(caught.value.where) == "c.parquet"
     assert caught.value.problem == "no cell_id in the metadata (found: lot, cell_type)"
+
+
+def test_two_cells_far_apart_are_refused_before_the_sheet_is_laid_out() -> None:
+    # calamine lays a sheet out from its first cell to its last: A1 and Z10000 are 260,000
+    # cells (8 MB in memory), past the 65,536 a 1 MiB cap allows; the file is 5 KB
+    _, rows = v1_record()
+    data = xlsx({"Record": [["cell_id", "C-1"], ["lot", "L-1"], ["cell_type", "T"], HEADER, *rows]})
+    book = openpyxl.load_workbook(io.BytesIO(data))
+    book["Record"]["Z10000"] = 1.0
+    out = io.BytesIO()
+    book.save(out)
+    assert read_error(out.getvalue(), "b.xlsx", profile(PLAIN_BOOK), max_uncompressed_bytes=2**20) == (
+        "b.xlsx: the workbook's sheets span 260,000 cells from their first to their last, more than the "
+        "65,536 formgate lays out.\n"
+        "  Check that the file is one cell's record, with no stray cell far below or right of the rows."
+    )
+
+
+def test_a_row_repeated_many_times_in_an_ods_file_is_refused_before_it_is_laid_out() -> None:
+    metadata, rows = v1_record()
+    data = bytearray(ods({"Info": info_rows(metadata), "Record": [HEADER, *rows]}))
+    with zipfile.ZipFile(io.BytesIO(bytes(data))) as package:
+        content = package.read("content.xml")
+    # the last row of the record written once, repeated 100,000 times (OpenDocument 1.2, 9.1.3)
+    content = content.replace(
+        b"<table:table-row>", b'<table:table-row table:number-rows-repeated="100000">', 1
+    )
+    out = io.BytesIO()
+    with zipfile.ZipFile(out, "w") as package:
+        package.writestr("mimetype", "application/vnd.oasis.opendocument.spreadsheet", zipfile.ZIP_STORED)
+        with zipfile.ZipFile(io.BytesIO(bytes(data))) as source:
+            package.writestr(
+                "META-INF/manifest.xml", source.read("META-INF/manifest.xml"), zipfile.ZIP_DEFLATED
+            )
+        package.writestr("content.xml", content, zipfile.ZIP_DEFLATED)
+    message = read_error(out.getvalue(), "b.ods", profile(BOOK), max_uncompressed_bytes=2**20)
+    assert (
+        message.startswith("b.ods: the workbook's sheets span 200,")
+        and "more than the 65,536 formgate" in message
+    )
+
+
+def test_a_sheet_whose_cells_carry_no_reference_is_read_in_order() -> None:
+    import re
+
+    data = book_over_sheets(24)
+    out = io.BytesIO()
+    with (
+        zipfile.ZipFile(io.BytesIO(data)) as source,
+        zipfile.ZipFile(out, "w", zipfile.ZIP_DEFLATED) as target,
+    ):
+        for part in source.infolist():
+            body = source.read(part)
+            if part.filename.startswith("xl/worksheets/"):
+                body = re.sub(rb'<c r="[A-Z]+[0-9]+"', b"<c", body)  # a cell's reference is optional
+            target.writestr(part.filename, body)
+    assert b'<c r="' not in out.getvalue()
+    assert_twins(read_cycle_file(out.getvalue(), "book.xlsx", profile(BOOK)), twin())

@@ -1,7 +1,7 @@
 """Workbooks -> RawTable: a record's rows on one sheet or continued over several, its metadata beside them.
 
-Read through an import profile with ``[file] format = "workbook"``: an .xlsx or .xlsm
-(and an .xls, .ods or .xlsb) file. The data sheets are the profile's ``[workbook]
+Read through an import profile with ``[file] format = "workbook"``: an .xlsx, .xlsm,
+.xls or .ods file. The data sheets are the profile's ``[workbook]
 data_sheets`` (a sheet's name, or a pattern with ``*`` and ``?`` matched against the
 sheets' names in the workbook's order; the first sheet when not given), each starting
 with the same header row: the first row with a cell that holds the voltage column's
@@ -22,7 +22,9 @@ The workbook is read by python-calamine; openpyxl reads what calamine cannot (e.
 .xlsx packed with bzip2). Before either unpacks anything, the parts of a zip package are
 measured (each deflate stream is run through zlib and counted, whatever sizes the
 package declares) against the unpacked-size cap, so a zip bomb is refused holding at most
-one block of it.
+one block of it; and each sheet's span (every cell from A1 to its last row and column, as
+calamine lays it out, repeated rows and cells of an .ods counted) against the cap, so two
+cells far apart or a row repeated a million times are refused before they take gigabytes.
 """
 
 from __future__ import annotations
@@ -53,7 +55,7 @@ from pipeline.read.table import RawTable
 # A cell as the readers give it: float, int, str, bool, a date, time, date-time or duration;
 # "" is an empty cell.
 Cell = Any
-_ZIP_KINDS = ("workbook (.xlsx)", "workbook (.ods)", "zip archive")
+_ZIP_KINDS = ("workbook (.xlsx)", "workbook (.ods)")
 _INFLATE_BLOCK = 1 << 20
 _SHOWN_SHEETS = 12
 AGAIN_HINT = "Copy the file again, or open it in its spreadsheet program and save or export it again."
@@ -142,11 +144,7 @@ def _check_unpacked_size(data: bytes, name: str, kind: str | None, cap: int) -> 
         raise _too_large(name, cap)
     if kind not in _ZIP_KINDS:
         return True
-    try:
-        with zipfile.ZipFile(io.BytesIO(data)) as package:
-            parts = package.infolist()
-    except (zipfile.BadZipFile, OSError, ValueError, EOFError, KeyError, NotImplementedError) as exc:
-        raise _damaged(name, f"not a valid zip package: {exc}") from None
+    parts = _zip_parts(data, name)
     if sum(part.file_size for part in parts) > cap:
         raise _too_large(name, cap)
     if any(part.compress_type not in (zipfile.ZIP_STORED, zipfile.ZIP_DEFLATED) for part in parts):
@@ -157,7 +155,131 @@ def _check_unpacked_size(data: bytes, name: str, kind: str | None, cap: int) -> 
         total += _unpacked_size(view, part, name, cap - total)
         if total > cap:
             raise _too_large(name, cap)
+    _check_spans(data, parts, name, cap)
     return True
+
+
+# A sheet's part: an .xlsx or .xlsm keeps each sheet in a part of its own, an .ods all of them in one.
+_SHEET_PART = re.compile(r"xl/worksheets/[^/]+\.xml|content\.xml")
+# What one cell of a sheet's span may take in the reader's memory, at most: calamine lays a
+# sheet out as every cell between its first and its last (32 bytes each), so two cells far
+# apart, or a row repeated a million times, take gigabytes from a few bytes of XML. A real
+# sheet's cell takes 30 or more bytes of XML, so no sheet within the unpacked-size cap is
+# refused for its span.
+CELL_BYTES = 16
+_REF = rb'r="([A-Z]{0,3})([0-9]{0,12})"'
+
+
+def _check_spans(data: bytes, parts: list[zipfile.ZipInfo], name: str, cap: int) -> None:
+    """Refuse a workbook whose sheets, laid out cell by cell, would take more than ``cap`` bytes."""
+    limit = cap // CELL_BYTES
+    with zipfile.ZipFile(io.BytesIO(data)) as package:
+        for part in parts:
+            if not _SHEET_PART.fullmatch(part.filename):
+                continue
+            try:
+                xml = package.read(part)
+            except (zipfile.BadZipFile, OSError, ValueError, EOFError, zlib.error, RuntimeError) as exc:
+                raise _damaged(name, f"the part {part.filename} cannot be unpacked: {exc}") from None
+            cells = _ods_cells(xml) if part.filename == "content.xml" else _xlsx_cells(xml, limit)
+            if cells > limit:
+                raise InputError(
+                    f"the workbook's sheets span {cells:,} cells from their first to their last, "
+                    f"more than the {limit:,} formgate lays out",
+                    SourceRef(name),
+                    "Check that the file is one cell's record, with no stray cell far below or "
+                    "right of the rows.",
+                )
+
+
+def _xlsx_cells(xml: bytes, limit: int) -> int:
+    """How many cells the sheet spans from A1 to its last row and column (at most; cheap when it is small)."""
+    plain = b":sheetData" not in xml and (
+        xml.count(b"<c ") + xml.count(b"<c>") + xml.count(b"<c/>") == xml.count(b'<c r="')
+    )
+    if not plain:  # a cell without its reference, or prefixed names: place every cell
+        return _xlsx_cells_in_order(xml)
+    digits = len(str(max(xml.count(b"<row"), 1)))
+    if not re.search(rb'<c r="(?:[A-Z]{2}|[A-Z][0-9]{%d})' % (digits + 1), xml):
+        bound = 26 * (int(10**digits) - 1)  # columns A to Z, rows of at most ``digits`` digits
+        if bound <= limit:
+            return bound
+    columns = {_column_number(c) for c in set(re.findall(rb'<c r="([A-Z]{1,3})', xml))}
+    rows: list[bytes] = re.findall(rb'<c r="[A-Z]{1,3}([0-9]{1,12})', xml)
+    return max(columns, default=0) * max(map(int, rows), default=0)
+
+
+def _xlsx_cells_in_order(xml: bytes) -> int:
+    row = column = last_row = last_column = 0
+    for found in re.finditer(rb"<(?:[\w.-]+:)?(row|c)\b([^>]*)>", xml):
+        ref = re.search(rb"\b" + _REF, found[2])
+        if found[1] == b"row":
+            row, column = (int(ref[2]) if ref and ref[2] else row + 1), 0
+            continue
+        if ref and ref[1]:
+            column = _column_number(ref[1])
+        else:
+            column += 1
+        last_row = max(last_row, int(ref[2]) if ref and ref[2] else row)
+        last_column = max(last_column, column)
+    return last_row * last_column
+
+
+def _column_number(letters: bytes) -> int:
+    number = 0
+    for letter in letters:
+        number = number * 26 + letter - 64
+    return number
+
+
+_ODS_TOKEN = re.compile(rb"<(/?)table:(table-row|table-cell|covered-table-cell|table)\b([^>]*?)/?>")
+_ODS_VALUED = re.compile(
+    rb'office:(?:value|string-value|date-value|time-value|boolean-value)=|table:formula=|office:value-type="string"'
+)
+
+
+def _ods_cells(xml: bytes) -> int:
+    """How many cells an .ods file's sheets span, repeated rows and cells counted as laid out."""
+    total = 0
+    rows: list[tuple[int, int]] = []  # (times repeated, cells up to the last with a value)
+    repeats = position = width = 0
+    for found in _ODS_TOKEN.finditer(xml):
+        closing, kind, attributes = found[1], found[2], found[3]
+        if kind == b"table":
+            if closing:
+                total += _table_cells(rows)
+            rows = []
+        elif kind == b"table-row":
+            if closing:
+                rows.append((repeats, width))
+            else:
+                repeats, position, width = _repeated(attributes, b"rows"), 0, 0
+        elif not closing:
+            position += _repeated(attributes, b"columns")
+            if _ODS_VALUED.search(attributes):
+                width = position
+    return total
+
+
+def _repeated(attributes: bytes, what: bytes) -> int:
+    found = re.search(rb"table:number-" + what + rb'-repeated="([0-9]{1,12})"', attributes)
+    return int(found[1]) if found else 1
+
+
+def _table_cells(rows: list[tuple[int, int]]) -> int:
+    filled = [k for k, (_, width) in enumerate(rows) if width]
+    if not filled:
+        return 0
+    span = rows[filled[0] : filled[-1] + 1]
+    return sum(times for times, _ in span) * max(width for _, width in span)
+
+
+def _zip_parts(data: bytes, name: str) -> list[zipfile.ZipInfo]:
+    try:
+        with zipfile.ZipFile(io.BytesIO(data)) as package:
+            return package.infolist()
+    except (zipfile.BadZipFile, OSError, ValueError, EOFError, KeyError, NotImplementedError) as exc:
+        raise _damaged(name, f"not a valid zip package: {exc}") from None
 
 
 def _unpacked_size(view: memoryview, part: zipfile.ZipInfo, name: str, room: int) -> int:
@@ -286,6 +408,14 @@ def read_workbook_table(data: bytes, name: str, profile: Profile, max_uncompress
     if refused is not None:
         raise refused
     kind = binary_kind(data)
+    if kind == "zip archive":  # neither an .xlsx, .xlsm nor an .ods package, or a damaged one
+        _zip_parts(data, name)
+        raise InputError(
+            f"the file is a zip archive, not a workbook; its import profile {profile.name} says "
+            '[file] format = "workbook"',
+            SourceRef(name),
+            "Unpack it and give formgate the files inside.",
+        )
     fast = _check_unpacked_size(data, name, kind, max_uncompressed_bytes)
     why = "its parts are packed in a way the workbook reader does not know"
     if fast:
@@ -298,13 +428,6 @@ def read_workbook_table(data: bytes, name: str, profile: Profile, max_uncompress
             return _read_book(_OpenpyxlBook(data), name, profile)
         except _Unreadable:
             pass
-    if kind == "zip archive":
-        raise InputError(
-            f"the file is a zip archive, not a workbook; its import profile {profile.name} says "
-            '[file] format = "workbook"',
-            SourceRef(name),
-            "Unpack it and give formgate the files inside.",
-        )
     raise _damaged(name, why)
 
 
