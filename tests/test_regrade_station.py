@@ -218,3 +218,23 @@ def test_a_closed_lot_is_reported_again_and_one_summary_mail_is_queued(
     ]
     assert mails[0].attachment_path.endswith("regrade-1-changes.pdf")
     assert "CAUTION" in mails[0].body_text and "qualified personnel" in mails[0].body_text
+
+
+def test_a_regrade_applied_beside_a_running_station_stands_and_the_station_goes_on(
+    judged: Settings, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    s = _copy(judged, tmp_path / "st")
+    expected = _between(s, 1.80, 1.88)
+    with running(s):
+        (s.rules_dir / "test_cells.toml").write_text(TIGHTENED, encoding="utf-8")
+        assert main(["regrade", str(s.root), "--apply", "--by", QE, "--reason", "order 12",
+                     "--workers", "1", "--no-progress"]) == 0
+        # the station keeps claiming and judging meanwhile, by the rules now in its folder
+        drop(s.inboxes[0].folder, "C-08.csv", cycle_file("C-08", capacity_ah=1.84, seed=8))
+        wait_until(lambda: settled(s, len(CAPACITIES) + 1), what="the new file")
+        time.sleep(2 * s.reconcile_s)  # a round of the station's own decisions after the regrade
+    with Ledger(s.ledger) as ledger:
+        latest = ledger.decisions.latest_of_lot("LOT-A")
+        assert {c for c, d in latest.items() if d.cause == "regrade"} == expected
+        assert latest["C-08"].verdict == "fail"  # judged by the tightened window
+        assert ledger.integrity_ok()
