@@ -14,8 +14,8 @@ live in a module of their own (inputs.py, results.py, outbox.py, digests.py,
 readings.py, decisions.py, reviews.py, regrades.py, lots.py, published.py, facts.py), and a family is an
 object that holds only the shared :class:`~pipeline.ledger.connection.Connection` (reviews
 and regrades also the decisions family: a review, or a regrade of a cell, and the decision
-it gives are one transaction). A caller names the family it uses (``ledger.inputs.claim(...)``, ``ledger.outbox.due(...)``), so a reader
-finds every query where its table is, and no family can reach another's state: a write
+it gives are one transaction). A caller names the family it uses
+(``ledger.inputs.claim(...)``, ``ledger.outbox.due(...)``), so a reader finds every query where its table is, and no family can reach another's state: a write
 that spans tables (a result with its letters) is one method that opens one transaction
 and inserts the letters with :func:`pipeline.ledger.outbox.insert_mail`. The schema and
 its migrations are migrations.py's; the records a row reads as are rows.py's; the hash
