@@ -374,14 +374,15 @@ _REVIEWS = Migration("0006_reviews_published_files_chain", _reviews_and_chain)
 # recorded beside what was there (nothing overwritten): a regrade row (who, why, under which
 # rule sets; finished_at once every change is applied, so that a run cut short and started
 # again carries on under the same row), a new result of each input it judged again
-# (regrade_id; the input's earlier result points at it through superseded_by), and a
-# decision with cause 'regrade' whose basis names the regrade. The results table is rebuilt so that an input may have one
-# result of its own and one per regrade (and gains the index by cell it lacked); the
-# decisions table is rebuilt for its wider cause, its rows and hashes copied as they are.
-# Both follow SQLite's procedure for other kinds of table schema changes (a new table, the
-# rows copied with their ids, the old one dropped, the new one renamed, with foreign keys
-# off), so that the tables that refer to them keep referring to them; nothing then points
-# nowhere (checked before the step commits).
+# (regrade_id; the input's earlier result points at it through superseded_by), and a decision
+# with cause 'regrade' whose basis names the regrade. The results table is rebuilt so that an
+# input may have one result of its own and one per regrade (and gains the index by cell it
+# lacked); the decisions table is rebuilt for its wider cause, its rows and hashes copied as
+# they are. Both follow SQLite's procedure for other kinds of table schema changes (a new
+# table, the rows copied with their ids, the old one dropped, the new one renamed, with
+# foreign keys off), so that the tables that refer to them keep referring to them; nothing
+# then points nowhere (checked before the step commits).
+
 _REGRADES_SQL = (
     """
     CREATE TABLE regrades (
