@@ -149,7 +149,7 @@ def _free_port() -> int:
 
 def _start(argv: list[str], log: Path) -> subprocess.Popen[bytes]:
     with log.open("wb") as out:  # the child keeps its own copy of the handle
-        return subprocess.Popen(argv, stdout=out, stderr=subprocess.STDOUT, cwd=log.parent, start_new_session=True)
+        return subprocess.Popen(argv, stdout=out, stderr=subprocess.STDOUT, cwd=log.parent, process_group=0)
 
 
 def _stop(process: subprocess.Popen[bytes]) -> None:
@@ -467,7 +467,7 @@ def test_ctrl_c_stops_the_run_and_its_cluster_cleanly_and_a_rerun_resumes(
     cache = tmp_path / "regrade.sqlite"
     argv = [sys.executable, str(script), str(listing), str(RULES_DIR), ANALYSED_AT.isoformat(), str(cache)]
     run = subprocess.Popen(argv, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, cwd=REPO,
-                           start_new_session=True)
+                           process_group=0)
     try:
         assert run.stdout is not None
         seen = [run.stdout.readline() for _ in range(3)]
