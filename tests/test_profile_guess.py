@@ -24,7 +24,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
 from pipeline.cli.main import main
@@ -281,6 +281,81 @@ def test_a_clock_without_offsets_and_no_change_gets_utc_and_a_comment_to_set_its
     text, _ = guessed(data, "dated.csv")
     assert re.search(r'^zone = "UTC"$', text, re.M)
     assert "# unsure: the stamps carry no UTC offset; set the zone of the cycler's clock" in text
+
+
+PATTERNS = (
+    "%d.%m.%Y %H:%M:%S.%f",
+    "%d.%m.%Y %H:%M:%S",
+    "%m/%d/%Y %H:%M:%S.%f",
+    "%m/%d/%Y %I:%M:%S %p",
+    "%d/%m/%Y %H:%M:%S",
+    "%Y-%m-%d %H:%M:%S.%f",
+    "%Y/%m/%d %H:%M:%S",
+    "%d-%m-%Y %H:%M:%S.%f",
+)
+# the zones a guess tries (pipeline/read/guess_columns.py DST_ZONES), fixed offsets and UTC
+ZONES = ("Europe/Berlin", "Europe/London", "America/New_York", "Australia/Sydney", "+05:45", "-03:00", "UTC")
+
+
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    pattern=st.sampled_from(PATTERNS),
+    zone=st.sampled_from(ZONES),
+    # any start in 2026, often the evening before a daylight-saving change somewhere
+    start=st.one_of(
+        st.datetimes(dt.datetime(2026, 1, 1), dt.datetime(2026, 12, 30), timezones=st.just(dt.UTC)),
+        st.sampled_from(
+            [
+                dt.datetime(2026, 3, 28, 18, 0, tzinfo=dt.UTC),  # Europe, forward
+                dt.datetime(2026, 10, 24, 18, 0, tzinfo=dt.UTC),  # Europe, back
+                dt.datetime(2026, 3, 7, 22, 0, tzinfo=dt.UTC),  # America, forward
+                dt.datetime(2026, 10, 31, 22, 0, tzinfo=dt.UTC),  # America, back
+                dt.datetime(2026, 4, 4, 6, 0, tzinfo=dt.UTC),  # Sydney, back
+                dt.datetime(2026, 10, 3, 6, 0, tzinfo=dt.UTC),  # Sydney, forward
+            ]
+        ),
+    ),
+    delimiter=st.sampled_from([(";", ","), (";", "."), ("\t", ","), (",", ".")]),
+    words=st.sampled_from([("C", "D", "R"), ("CHG", "DCHG", "REST"), ("charge", "discharge", "pause")]),
+    keep_zone_line=st.booleans(),
+)
+def test_any_local_clock_and_pattern_of_a_date_time_export_is_read_alike(
+    pattern: str,
+    zone: str,
+    start: dt.datetime,
+    delimiter: tuple[str, str],
+    words: tuple[str, str, str],
+    keep_zone_line: bool,
+) -> None:
+    from pipeline.demo.layouts import date_time_text
+
+    mode_words = dict(zip(("charge", "discharge", "rest"), words, strict=True))
+    data = date_time_text(
+        _twin(), start=start, zone=zone, date_format=pattern,
+        delimiter=delimiter[0], decimal=delimiter[1], mode_words=mode_words,
+    )
+    if not keep_zone_line:
+        data = _without_zone_line(data)
+    # the profile a person who knows the clock would write
+    shipped = (PROFILES / "datetime_mode_column.toml").read_text("utf-8")
+    known = (
+        shipped.replace('date_format = "%d.%m.%Y %H:%M:%S.%f"', f'date_format = "{pattern}"')
+        .replace('zone = "Europe/Berlin"', f'zone = "{zone}"')
+        .replace('delimiter = "semicolon"', f'delimiter = "{ {";": "semicolon", ",": "comma"}.get(delimiter[0], "tab")}"')
+        .replace('decimal = "comma"', f'decimal = "{"comma" if delimiter[1] == "," else "point"}"')
+        .replace('charge = ["charge"]', f'charge = ["{words[0]}"]')
+        .replace('discharge = ["discharge"]', f'discharge = ["{words[1]}"]')
+        .replace('rest = ["pause"]', f'rest = ["{words[2]}"]')
+    )
+    try:
+        want = read_with(data, "dated.csv", known)
+    except InputError as exc:
+        # whole-second stamps that repeat a second in the hour a clock repeats in autumn:
+        # the reader cannot tell the two hours apart, whoever wrote the profile
+        assert "the hour the clock repeats" in str(exc)
+        assume(False)
+    _, got = guessed(data, "dated.csv")
+    assert_same(got, want)
 
 
 # ---------------------------------------------------------------- one small record, written many ways
