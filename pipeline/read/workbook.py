@@ -232,7 +232,7 @@ def _column_number(letters: bytes) -> int:
     return number
 
 
-_ODS_TOKEN = re.compile(rb"<(/?)table:(table-row|table-cell|covered-table-cell|table)\b([^>]*?)/?>")
+_ODS_TOKEN = re.compile(rb"<(/?)table:(table-row|table-cell|covered-table-cell|table)\b([^>]*)>")
 _ODS_VALUED = re.compile(
     rb'office:(?:value|string-value|date-value|time-value|boolean-value)=|table:formula=|office:value-type="string"'
 )
@@ -243,26 +243,32 @@ def _ods_cells(xml: bytes) -> int:
     total = 0
     rows: list[tuple[int, int]] = []  # (times repeated, cells up to the last with a value)
     repeats = position = width = 0
-    for found in _ODS_TOKEN.finditer(xml):
-        closing, kind, attributes = found[1], found[2], found[3]
-        if kind == b"table":
-            if closing:
-                total += _table_cells(rows)
-            rows = []
+    for closing, kind, attributes in _ODS_TOKEN.findall(xml):
+        if kind == b"table-cell" or kind == b"covered-table-cell":
+            if not closing:
+                position += _repeated(attributes, _COLUMNS_REPEATED)
+                if _ODS_VALUED.search(attributes):
+                    width = position
         elif kind == b"table-row":
             if closing:
                 rows.append((repeats, width))
             else:
-                repeats, position, width = _repeated(attributes, b"rows"), 0, 0
-        elif not closing:
-            position += _repeated(attributes, b"columns")
-            if _ODS_VALUED.search(attributes):
-                width = position
+                repeats, position, width = _repeated(attributes, _ROWS_REPEATED), 0, 0
+        else:  # a sheet begins or ends
+            if closing:
+                total += _table_cells(rows)
+            rows = []
     return total
 
 
-def _repeated(attributes: bytes, what: bytes) -> int:
-    found = re.search(rb"table:number-" + what + rb'-repeated="([0-9]{1,12})"', attributes)
+_ROWS_REPEATED = re.compile(rb'table:number-rows-repeated="([0-9]{1,12})"')
+_COLUMNS_REPEATED = re.compile(rb'table:number-columns-repeated="([0-9]{1,12})"')
+
+
+def _repeated(attributes: bytes, pattern: re.Pattern[bytes]) -> int:
+    if b"-repeated=" not in attributes:
+        return 1
+    found = pattern.search(attributes)
     return int(found[1]) if found else 1
 
 
