@@ -233,7 +233,9 @@ def _without_zone_line(data: bytes) -> bytes:
 @pytest.mark.parametrize(
     ("zone", "start"),
     [
-        # the night the clocks go forward (an hour is skipped) and back (an hour repeats)
+        # the night the clocks go forward (an hour is skipped) and back (an hour repeats):
+        # 29 March and 25 October 2026 in the EU (Directive 2000/84/EC, Articles 2 and 3),
+        # 1 November 2026 in the US (Energy Policy Act of 2005, section 110)
         ("Europe/Berlin", dt.datetime(2026, 3, 28, 20, 0, tzinfo=dt.timezone(dt.timedelta(hours=1)))),
         ("Europe/Berlin", dt.datetime(2026, 10, 24, 20, 0, tzinfo=dt.timezone(dt.timedelta(hours=2)))),
         ("America/New_York", dt.datetime(2026, 10, 31, 20, 0, tzinfo=dt.timezone(dt.timedelta(hours=-4)))),
@@ -301,7 +303,12 @@ ZONES = ("Europe/Berlin", "Europe/London", "America/New_York", "Australia/Sydney
 @given(
     pattern=st.sampled_from(PATTERNS),
     zone=st.sampled_from(ZONES),
-    # any start in 2026, often the evening before a daylight-saving change somewhere
+    # any start in 2026, often the evening before a daylight-saving change somewhere. The
+    # dates of the changes: the EU's last Sundays of March and October at 01:00 UTC (Directive
+    # 2000/84/EC, Articles 2 and 3); the US's second Sunday of March and first Sunday of
+    # November (Energy Policy Act of 2005, section 110); New South Wales's first Sundays of
+    # April and October (Standard Time Act 1987 (NSW), section 4); as the IANA tz database
+    # (the zoneinfo the reader uses) has them for 2026.
     start=st.one_of(
         st.datetimes(dt.datetime(2026, 1, 1), dt.datetime(2026, 12, 30), timezones=st.just(dt.UTC)),
         st.sampled_from(
