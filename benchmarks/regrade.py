@@ -15,7 +15,9 @@ that a slow moment of the machine falls on all of them alike; each row gives the
 the range of its rounds. Ratios (parallel efficiency, cluster cost) come from this one run.
 
 Run it on a quiet machine: other processes on the same cores slow the 2-worker runs most.
-The table records the load average at the start and at the end.
+The table records the load average at the start and at the end. Each run's "ms a file" is
+the judging time measured on the workers: when it grows from 1 worker to 2, the two workers
+shared the cores (with the scheduler, this process or other work), which Dask cannot help.
 
 Only the standard library is imported at module level: the clusters' worker processes import
 this file as their main module when they start.
@@ -69,6 +71,7 @@ class Runs:
     tasks: list[int] = field(default_factory=list)
     largest: list[int] = field(default_factory=list)  # files in the largest task
     busy: list[float] = field(default_factory=list)  # worker-thread time spent judging / all of it
+    file_s: list[float] = field(default_factory=list)  # judging seconds a file, on the workers
 
     def rates(self) -> list[float]:
         return [self.files / s for s in self.seconds]
@@ -153,6 +156,7 @@ def timed_run(client: Any, rules: Any, items: list[Any], runs: Runs, **options: 
     runs.tasks.append(stats.tasks)
     runs.largest.append(stats.largest_batch)
     runs.busy.append(stats.judging_s / (stats.workers * seconds))
+    runs.file_s.append(stats.judging_s / stats.files_judged)
 
 
 def noop_round_trip(client: Any, tasks: int) -> float:
@@ -184,6 +188,7 @@ def in_process(items: list[Any], rules: Any) -> Callable[[Runs], None]:
         runs.tasks.append(1)
         runs.largest.append(len(files))
         runs.busy.append(sum(a.seconds for a in done.answers) / seconds)
+        runs.file_s.append(sum(a.seconds for a in done.answers) / len(files))
 
     return run
 
@@ -279,8 +284,8 @@ def measure(tmp: Path, files: int, mode: Mode, rounds: int) -> tuple[list[tuple[
         runs = m[name]
         rows.append((name, f"{runs.rate():.1f} files/s",
                      f"{spread(runs.rates())}; {statistics.median(runs.tasks):.0f} tasks of up to "
-                     f"{max(runs.largest)} files; workers judging "
-                     f"{100 * statistics.median(runs.busy):.0f} % of the time"))
+                     f"{max(runs.largest)} files; workers judging {100 * statistics.median(runs.busy):.0f} %"
+                     f" of the time, {1000 * statistics.median(runs.file_s):.1f} ms a file"))
     rows.append(("parallel efficiency, invented", f"{rate2 / (2 * rate1):.2f}",
                  "2-worker rate / (2 x 1-worker rate)"))
     rows.append(("parallel efficiency, demo", f"{m[DEMO_2].rate() / (2 * m[DEMO_1].rate()):.2f}",
