@@ -537,6 +537,9 @@ def test_missing_metadata_is_placed_on_the_metadata_sheet() -> None:
         read_cycle_file(data, "b.xlsx", profile(BOOK))
     assert str(caught.value.where) == "b.xlsx, sheet 'Info', row 1"
     assert caught.value.problem == "no cell_id in the metadata (found: lot, cell_type)"
+    assert caught.value.hint.startswith(
+        "Add a row 'cell_id' with its value in the next cell to sheet 'Info', or"
+    )
 
 
 def test_a_metadata_value_too_long_is_named_by_its_cell() -> None:
@@ -760,6 +763,7 @@ def test_missing_parquet_metadata_names_the_file() -> None:
         read_cycle_file(v1_parquet({"lot": "L", "cell_type": "T"}), "c.parquet", profile(PARQUET))
     assert str(caught.value.where) == "c.parquet"
     assert caught.value.problem == "no cell_id in the metadata (found: lot, cell_type)"
+    assert caught.value.hint.startswith("Write a key/value entry 'cell_id' into the file's metadata")
 
 
 def test_two_cells_far_apart_are_refused_before_the_sheet_is_laid_out() -> None:
@@ -818,3 +822,17 @@ def test_a_sheet_whose_cells_carry_no_reference_is_read_in_order() -> None:
             target.writestr(part.filename, body)
     assert b'<c r="' not in out.getvalue()
     assert_twins(read_cycle_file(out.getvalue(), "book.xlsx", profile(BOOK)), twin())
+
+
+def test_a_damaged_zip_of_any_kind_is_named_a_zip_archive_never_a_crash() -> None:
+    # a central directory entry that asks for a zip version Python's zipfile does not read
+    # (PKWARE APPNOTE.TXT 4.3.12: "version needed to extract" at offset 6 of the entry)
+    buffer = io.BytesIO()
+    with zipfile.ZipFile(buffer, "w") as archive:
+        archive.writestr("mimetype", "application/vnd.oasis.opendocument.spreadsheet")
+    data = bytearray(buffer.getvalue())
+    entry = data.find(b"PK\x01\x02")
+    data[entry + 6 : entry + 8] = (99).to_bytes(2, "little")
+    with pytest.raises(InputError) as caught:
+        read_cycle_file(bytes(data), "c.csv")
+    assert caught.value.problem == "the file is a zip archive, not a cycle file"

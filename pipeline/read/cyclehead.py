@@ -282,7 +282,7 @@ def collect_metadata(head: Head, name: str, profile: Profile) -> dict[str, str]:
             raise InputError(
                 f"no {key} in the metadata (found: {found_keys})",
                 head.ref(name, head.block_line),
-                f"Add a line '{profile.metadata_prefix} {key}: ...' before the header, or "
+                _where_metadata_goes(head, key, profile)
                 + (
                     "set it under [metadata] in an import profile."
                     if key == "cell_type"
@@ -290,6 +290,17 @@ def collect_metadata(head: Head, name: str, profile: Profile) -> dict[str, str]:
                 ),
             )
     return metadata
+
+
+def _where_metadata_goes(head: Head, key: str, profile: Profile) -> str:
+    """Where a missing metadata entry can be written, in the file's own terms."""
+    if head.unit == "row":
+        where = f"sheet '{profile.metadata_sheet}'" if profile.metadata_sheet else "the data sheet"
+        above = "" if profile.metadata_sheet else ", above the header row"
+        return f"Add a row '{key}' with its value in the next cell to {where}{above}, or "
+    if not head.unit:
+        return f"Write a key/value entry '{key}' into the file's metadata, or "
+    return f"Add a line '{profile.metadata_prefix} {key}: ...' before the header, or "
 
 
 def _check_stage(metadata: dict[str, str], head: Head, name: str, profile: Profile) -> None:

@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import io
 import zipfile
+import zlib
 
 from pipeline.errors import InputError
 from pipeline.model import SourceRef
@@ -37,7 +38,8 @@ def binary_kind(data: bytes) -> str | None:
                     return "workbook (.xlsx)"
                 if "mimetype" in names and b"spreadsheet" in archive.read("mimetype")[:100]:
                     return "workbook (.ods)"
-        except (zipfile.BadZipFile, OSError, KeyError, ValueError, EOFError):
+        except (zipfile.BadZipFile, OSError, KeyError, ValueError, EOFError,
+                NotImplementedError, RuntimeError, zlib.error):  # any damaged zip at all
             return "zip archive"
         return "zip archive"
     return None
