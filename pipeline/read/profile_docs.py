@@ -93,6 +93,34 @@ def render_profiles_doc(examples: Sequence[tuple[str, str]]) -> str:
         "`formgate rules check FOLDER` validates every profile in `FOLDER/profiles/`, "
         "and each problem names the file and line.",
         "",
+        "## Workbooks and Parquet files",
+        "",
+        "With `[file] format = \"workbook\"` formgate reads `.xlsx`, `.xlsm`, `.xls` and `.ods` "
+        "(`.xlsb` and other zip files are refused). The rows are on the sheets `[workbook] "
+        "data_sheets` names: one sheet by its exact name, or a pattern in which only `*` and `?` "
+        "are special, matched in the workbook's order (a cycler that writes more rows than a "
+        "sheet holds continues on `Record_2`, `Record_3` ...); left out, the first sheet. On "
+        "each data sheet the header row is the first row holding the voltage column's header, "
+        "and every continuation sheet repeats it exactly; `skip_lines` skips rows of the first "
+        "data sheet only. Metadata is read from `[workbook] metadata_sheet`, or else from the "
+        "rows above the header: in each row the first filled cell is the key (a trailing colon "
+        "dropped) and the cell to its right the value, or one cell holds `PREFIX key: value`; "
+        "a row of one cell without a colon is a title. Numbers in metadata and header cells "
+        "read as the spreadsheet shows them (12, not 12.0), dates as ISO 8601. Date and "
+        "date-time cells in the time column are date-time stamps (set `[time] stamps = "
+        "\"date-time\"` and a zone: a workbook keeps no zone); duration cells are elapsed "
+        "time in `[units] time`. A formula without a saved value reads as empty. Messages name "
+        "the sheet, row and column letter.",
+        "",
+        "With `[file] format = \"parquet\"` the columns are the file's top-level fields, read "
+        "by the names `[columns]` gives; the metadata is the file's key/value metadata (its "
+        "own `pandas` and `ARROW:schema` entries left out). Timestamp columns are date-time "
+        "stamps, with their zone when they carry one. Messages name the row (counted from 1).",
+        "",
+        "Either is measured before it is unpacked: a workbook whose parts hold more than the "
+        "most formgate reads of one file (or a sheet laid out over more cells than that "
+        "allows), or a Parquet file whose columns would, is refused without being read.",
+        "",
         "## Keys",
         "",
         describe_profile_keys().rstrip("\n"),
