@@ -26,6 +26,8 @@ def test_smoke_run_of_the_benchmark_prints_every_part_of_its_table(tmp_path: Pat
     assert run.returncode == 0, run.stderr[-3000:]
     for part in (
         "judge path ÷ pandas.read_csv",
+        "workbook read ÷ pandas.read_csv",
+        "Parquet read ÷ pandas.read_csv",
         "certificate per cell ÷ naive render",
         "station throughput",
         "failed_and_held",
