@@ -807,3 +807,10 @@ def test_profile_show_reads_a_file_that_lacks_its_cell_type_and_names_what_is_mi
     assert "  cell_type   (missing)                  not in the file: a check asks for it" in out
     assert out.endswith("\nsteps: not cut, the file lacks metadata a check needs (below)\n")
     assert err.startswith(f"{path}, line 3: no cell_type in the metadata")
+
+
+def test_a_header_written_over_two_columns_is_not_mapped() -> None:
+    data = b"# cell_id: C1\n# lot: L1\n# cell_type: T\nt (s),U (V),I (A),T (C),T (C)\n0,3.2,0,25,26\n60,3.3,5,25,26\n120,3.4,5,25,26\n"
+    text, trace = guessed(data, "c1.csv")
+    assert "# not read: 'T (C)' (its header stands over 2 columns)" in text
+    assert trace.temperature_c is None

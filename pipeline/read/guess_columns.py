@@ -16,7 +16,6 @@ current, which in a formation program is a charge.
 
 Pure: a function of the cells.
 
->>> import numpy as np
 >>> header_unit("Cell voltage (mV)"), header_unit("t_ms"), header_unit("Step no")
 ('mV', 'ms', None)
 """
@@ -87,7 +86,6 @@ _UNITS: dict[str, tuple[str, str]] = {
     "°c": ("temperature", "°C"),
     "ºc": ("temperature", "°C"),
     "degc": ("temperature", "°C"),
-    "deg c": ("temperature", "°C"),
     "c": ("temperature", "°C"),
     "celsius": ("temperature", "°C"),
     "ah": ("capacity", "Ah"),
@@ -240,18 +238,17 @@ def _unit_of(text: str | None) -> tuple[tuple[str, str] | None, str | None]:
     """(quantity, unit) for a header's unit text, or the text of a unit no profile converts."""
     if text is None:
         return None, None
-    key = text.strip().lower().replace(" ", "") if text.strip().lower() != "deg c" else "deg c"
-    if key in ("mv",):
-        return ("voltage", "mV"), None
-    if key in _UNITS:
-        return _UNITS[key], None
-    if key in _FOREIGN_UNITS:
-        return None, text.strip()
+    key = text.strip().lower()
+    for candidate in (key, key.replace(" ", "")):  # "deg C" as "degc"
+        if candidate in _UNITS:
+            return _UNITS[candidate], None
+        if candidate in _FOREIGN_UNITS:
+            return None, text.strip()
     return None, None
 
 
 def _header_words(header: str, unit_text: str | None) -> set[str]:
-    """The header's words (lower case), without its unit, and the quantities they point to."""
+    """The quantities the header's words name (its unit left out): "Step time" names step and time."""
     text = header
     if unit_text:
         cut = text.rfind(unit_text)
@@ -657,6 +654,19 @@ def guess_columns(
     """
     guess = ColumnGuess()
     roles = assign_roles(columns)
+    headers = Counter(c.header for c in columns)
+    for role, column in list(roles.items()):
+        if headers[column.header] < 2:
+            continue
+        # the reader finds a column by its header: one written twice cannot be read
+        twice = f"{column.header!r} (its header stands over {headers[column.header]} columns)"
+        if role in ("time", "voltage", "current"):
+            guess.problems.append(
+                f"the header {column.header} stands over {headers[column.header]} columns, so "
+                f"formgate cannot tell which is the {role}; have the export name them apart"
+            )
+        else:
+            guess.set_aside(roles, role, twice)
     for role in ("time", "voltage", "current"):
         if role not in roles:
             why = _time_problem(columns) if role == "time" else ""
