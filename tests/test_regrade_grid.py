@@ -250,9 +250,10 @@ def test_a_broken_rules_folder_is_refused_with_the_file_and_line(tmp_path: Path)
 
 def test_a_task_aims_at_a_second_of_judging_and_the_files_left_at_four_tasks_per_worker_thread() -> None:
     assert batch_size(None, 2) == 20  # before a task has come back
-    assert batch_size(10_000_000, 512, 0.020) == 50
-    assert batch_size(10_000_000, 512, 0.0001) == 200  # a task's answers stay a few MB
-    assert batch_size(10_000_000, 512, 5.0) == 1
+    assert batch_size(10_000_000, 64, 0.020) == 50
+    assert batch_size(10_000_000, 512, 0.020) == 128  # 2.56 s: the scheduler finishes 200 tasks a second
+    assert batch_size(10_000_000, 512, 0.0001) == 500  # a task's answers stay a few MB
+    assert batch_size(10_000_000, 64, 5.0) == 1
     assert batch_size(400, 2, 0.005) == 50  # 8 tasks for 2 threads
     assert batch_size(39, 2) == 5
     assert batch_size(5, 2, 0.005) == 1

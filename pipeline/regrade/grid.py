@@ -13,11 +13,12 @@ A task is a batch of files (:func:`batch_size`). Dask costs a few milliseconds o
 thread's time a task (scheduling, messages, results; benchmarks/regrade.py measures it), and
 judging one file takes 5-20 ms for a demo file and more for a long record, so a task of one
 file would spend a large share on Dask. A task aims at TASK_SECONDS (1 s) of judging at the
-time a file has taken so far in this run (20 files before the first task comes back; 200 at
-most, so that a task's answers stay a few MB), where Dask's share is well under one
-percent and a scheduler keeps up with hundreds of workers; and the files left are always cut
-into at least four tasks per worker thread, so that every thread has work to the end and
-the last tasks are short.
+time a file has taken so far in this run (20 files before the first task comes back), where
+Dask's share is under one percent; on a cluster of more than 200 worker threads, longer, so
+that the scheduler never has more than about TASKS_PER_S (200) tasks a second to finish.
+A task holds 500 files at most (its answers stay a few MB), and the files left are always
+cut into at least four tasks per worker thread, so that every thread has work to the end
+and the last tasks are short.
 
 Where the bytes come from: by default each worker reads ``item.path`` itself (the
 archive is mounted where the workers run). With ``ship_bytes`` (or an item that carries
@@ -89,8 +90,9 @@ def _distributed() -> Any:
     return distributed
 
 TASK_SECONDS = 1.0  # the judging a task aims at: Dask's few ms a task are well under 1 % of it
+TASKS_PER_S = 200  # and longer on a large cluster, so that its scheduler sees at most this many
 FIRST_FILES_PER_TASK = 20  # before a task has come back to measure a file by: 0.1-2 s at 5-100 ms
-MAX_FILES_PER_TASK = 200  # a task's answers (20-30 kB of JSON a file) stay a few MB
+MAX_FILES_PER_TASK = 500  # a task's answers (about 9 kB of JSON a file) stay a few MB
 TASKS_PER_THREAD = 4  # the files left make this many tasks a worker thread at least: a short tail
 SHIP_BYTES_PER_TASK = 64 * 2**20  # shipped bytes in one task, at most (once a file's size is known)
 IN_FLIGHT_PER_THREAD = 2  # tasks submitted and not yet collected, per worker thread
@@ -312,19 +314,21 @@ def setting_digest(
 
 
 def batch_size(files_left: int | None, threads: int, seconds_per_file: float | None = None) -> int:
-    """Files for the next task: about TASK_SECONDS of judging at the ``seconds_per_file``
-    measured so far (FIRST_FILES_PER_TASK before any), MAX_FILES_PER_TASK at most, and no more
-    than leaves TASKS_PER_THREAD tasks per worker thread for the files left (when known), so
-    that every thread keeps working and the last tasks are short; one at least.
+    """Files for the next task: enough judging at the ``seconds_per_file`` measured so far
+    (FIRST_FILES_PER_TASK before any) for TASK_SECONDS, or for ``threads / TASKS_PER_S``
+    seconds when that is longer (a cluster of 512 threads: 2.6 s); MAX_FILES_PER_TASK at most;
+    and no more than leaves TASKS_PER_THREAD tasks per worker thread for the files left (when
+    known), so that every thread keeps working and the last tasks are short; one at least.
 
-    >>> batch_size(None, 512), batch_size(10_000_000, 512, 0.020), batch_size(10_000_000, 512, 0.002)
-    (20, 50, 200)
-    >>> batch_size(2000, 2, 0.005), batch_size(30, 2), batch_size(400, 2, 0.005), batch_size(3, 8, 0.01)
-    (200, 4, 50, 1)
+    >>> batch_size(None, 512), batch_size(10**7, 64, 0.020), batch_size(10**7, 512, 0.020)
+    (20, 50, 128)
+    >>> batch_size(10**7, 512, 0.002), batch_size(2000, 2, 0.005), batch_size(30, 2), batch_size(3, 8, 0.01)
+    (500, 200, 4, 1)
     """
     size = float(FIRST_FILES_PER_TASK)
     if seconds_per_file is not None:
-        size = min(MAX_FILES_PER_TASK, TASK_SECONDS / max(seconds_per_file, 1e-6))
+        task_s = max(TASK_SECONDS, threads / TASKS_PER_S)
+        size = min(MAX_FILES_PER_TASK, task_s / max(seconds_per_file, 1e-6))
     if files_left is not None:
         size = min(size, math.ceil(files_left / (max(threads, 1) * TASKS_PER_THREAD)))
     return max(1, int(size))
