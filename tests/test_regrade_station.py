@@ -238,3 +238,28 @@ def test_a_regrade_applied_beside_a_running_station_stands_and_the_station_goes_
         assert {c for c, d in latest.items() if d.cause == "regrade"} == expected
         assert latest["C-08"].verdict == "fail"  # judged by the tightened window
         assert ledger.integrity_ok()
+
+
+def test_an_archived_copy_changed_since_is_not_judged_and_leaves_its_cell_as_it_was(
+    judged: Settings, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    expected = _between(judged, 1.80, 1.88)
+    victim = sorted(expected)[0]
+    with Ledger(judged.ledger) as ledger:
+        [record] = ledger.results.of_cell("LOT-A", victim)
+        row = ledger.inputs.get(record.input_id)
+    assert row is not None and row.final_path is not None
+    archived = Path(row.final_path)
+    tampered = tmp_path / "tampered"
+    shutil.copytree(judged.root, tampered)
+    (tampered / archived.relative_to(judged.root)).write_bytes(b"# edited\n")
+    t = read_settings(tampered)
+    (t.rules_dir / "test_cells.toml").write_text(TIGHTENED, encoding="utf-8")
+    with Ledger(t.ledger) as ledger:  # point the copy's ledger at its own, edited archive
+        ledger.db.rows("UPDATE inputs SET final_path = replace(final_path, ?, ?)",
+                       (str(judged.root), str(tampered)))
+    assert main(["regrade", str(tampered), "--workers", "1", "--no-progress"]) == 0
+    out = capsys.readouterr().out
+    assert "refused by the new rules: not judged again: " in out and "has changed" in out
+    [report] = sorted((tampered / "regrades").glob("dry-run-*-changes.csv"))
+    assert set(_csv_cells(report)) == expected - {victim}

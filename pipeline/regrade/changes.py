@@ -8,8 +8,9 @@ decided again exactly as the station decides it: from its records that count
 (judge/lotclose.cell_stages) and its stages (judge/cellverdict.decide); in a closed lot,
 with the lot's screens and grades (judge/lotclose.close_lot). A cell whose latest
 decision rests on a person's review that still stands is never changed: it is listed
-for a new review. An input the new rules refuse (its cell type in no rule set, say) is
-listed with the reason and leaves its cell as it was.
+for a new review. An input the new rules refuse (its cell type in no rule set, say), or
+that could not be judged again (its archived copy changed or unreadable), is listed with
+the reason and leaves its cell as it was.
 """
 
 from __future__ import annotations
@@ -157,6 +158,8 @@ def lot_changes(
                                        sha, refused[sha]))
         docs.append(new_docs.get(sha, doc))
     old_by_sha = {_sha(d): d for d in old_docs}
+    # a cell with an input the new rules refuse (or that could not be judged) is left as it was
+    untouched = {r.cell_id for r in out_refused}
     try:
         decided = _decide(lot, docs, readings, reviews, rulebook, closed=closed)
     except FormgateError as exc:
@@ -164,7 +167,7 @@ def lot_changes(
     changes = []
     for cell_id, (new, files) in sorted(decided.items()):
         old = standing.get(cell_id)
-        if old is None or _same(old, new):
+        if old is None or cell_id in untouched or _same(old, new):
             continue
         shas = tuple(sha for _, _, sha in files if sha in new_docs)
         checks = [ch for sha in shas if sha in old_by_sha

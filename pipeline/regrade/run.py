@@ -184,7 +184,9 @@ def _judge(
         if judged.result_json is not None:
             new_docs[judged.sha256] = json.loads(judged.result_json)
         else:
-            refused[judged.sha256] = str(judged.error or "not judged").splitlines()[0]
+            why = str(judged.error or "not judged").splitlines()[0]
+            # not judged at all (a changed or unreadable archived copy): a rerun tries again
+            refused[judged.sha256] = why if judged.judged else f"not judged again: {why}"
     return new_docs, refused
 
 
