@@ -128,6 +128,13 @@ def test_apply_records_the_changed_cells_once_with_their_cause_and_new_certifica
         assert ledger.integrity_ok()
     # formgate verify finds every file published and the text of every rule set in the ledger
     assert main(["verify", str(s.root), "--ledger"]) == 0
+    # each input judged again has its own certificate beside the old one, and it verifies
+    victim = sorted(expected)[0]
+    regraded = s.certificates / "LOT-A" / f"{victim}~regrade-1~{victim}.csv.pdf"
+    assert (s.certificates / "LOT-A" / f"{victim}.pdf").exists() and regraded.exists()
+    capsys.readouterr()
+    assert main(["verify", str(s.root), str(regraded)]) == 0
+    assert "verified" in capsys.readouterr().out
     # the cell's history shows both decisions and the cause
     assert main(["cell", "show", str(s.root), sorted(expected)[0]]) == 0
     shown = capsys.readouterr().out

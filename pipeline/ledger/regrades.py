@@ -51,6 +51,7 @@ class Rejudged:
     rule_set_sha256: str
     analysed_at: datetime.datetime
     json_path: str
+    pdf_path: str | None = None
 
 
 def _row(r: sqlite3.Row) -> RegradeRow:
@@ -152,11 +153,12 @@ class Regrades:
                     "INSERT INTO results (input_id, cell_id, lot, verdict, hazards, result_json, "
                     "rule_set_name, rule_set_revision, rule_set_sha256, analysed_at, json_path, "
                     "pdf_path, superseded_by, regrade_id) "
-                    "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?)",
+                    "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                     (item.input_id, cell_id, lot, item.verdict, json.dumps(list(item.hazards)),
                      item.result_json, item.rule_set_name, item.rule_set_revision,
                      item.rule_set_sha256, utc_text(item.analysed_at, "analysed_at"),
-                     item.json_path, None if before is None else before["superseded_by"],
+                     item.json_path, item.pdf_path,
+                     None if before is None else before["superseded_by"],
                      regrade_id),
                 )
                 new_id = cur.lastrowid

@@ -10,9 +10,10 @@ Edge module (ledger, files, the Dask engine). The steps:
 4. the change report, CSV and PDF (report/regradereport.py), in ``<station>/regrades/``
    or ``--out``;
 5. with ``apply``: the regrade recorded (ledger/regrades.py) and, per changed cell in ONE
-   short transaction, its inputs' new results and its new decision, cause 'regrade'; each
-   changed cell's certificate and cell JSON published anew (the old certificate kept under
-   ``<cell>~cell.before-regrade-<N>.pdf``); a closed lot's report written again; a cell
+   short transaction, its inputs' new results (each with its JSON and certificate of its own,
+   ``<cell>~regrade-<N>~<file>.json`` / ``.pdf``, beside the old ones) and its new decision,
+   cause 'regrade'; each changed cell's certificate and cell JSON published anew (the old
+   certificate kept under ``<cell>~cell.before-regrade-<N>.pdf``); a closed lot's report written again; a cell
    whose decision rests on a person's review is listed for a new review and left alone.
    Applying needs the station's own rules (a station decides its cells by the rules in its
    folder: a change recorded under other rules would be undone by the next file).
@@ -35,7 +36,7 @@ from pipeline.errors import FormgateError
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.regrades import Rejudged
 from pipeline.ledger.rows import CheckRowData
-from pipeline.names import safe_name
+from pipeline.names import cell_file_stem, safe_name
 from pipeline.regrade.archive import Archived, Selection, select_inputs
 from pipeline.regrade.changes import CellChange, LotChanges, Standing, lot_changes
 from pipeline.regrade.grid import Judged, RegradeItem, Rules, RunStats, judge_many
@@ -47,6 +48,7 @@ from pipeline.report.regradereport import (
     regrade_csv,
     render_regrade_pdf,
 )
+from pipeline.station.published_files import Written, note_written
 from pipeline.station.settings import Settings
 from pipeline.writing import write_atomic
 
@@ -121,7 +123,8 @@ def regrade_station(
     stats = RunStats()
     folder = regrades_folder(settings)
     folder.mkdir(parents=True, exist_ok=True)
-    new_docs, refused = _judge(items, rules, engine, now, folder / "judged.sqlite", stats)
+    new_texts, refused = _judge(items, rules, engine, now, folder / "judged.sqlite", stats)
+    new_docs = {sha: json.loads(text) for sha, text in new_texts.items()}
     rulebook = rules.rulebook()
     by_lot: dict[str, list[Archived]] = {}
     for item in items:
@@ -139,7 +142,7 @@ def regrade_station(
                                     rule_sets=rule_sets, selection=selection.words(), now=now)
         regrade_id = row.id
         _keep_rule_texts(ledger, rules, now)
-        applied = _apply(settings, ledger, rulebook, lots, items, new_docs, row.id, now)
+        applied = _apply(settings, ledger, rulebook, lots, items, new_docs, new_texts, row.id, now)
         data = _report_input(settings, lots, rules, rule_sets, selection, len(items), now,
                              applied=True, regrade_id=row.id, run_by=run_by, reason=reason)
     stamp = now.astimezone(datetime.UTC).strftime("%Y%m%dT%H%M%SZ")
@@ -162,8 +165,8 @@ def _judge(
     now: datetime.datetime,
     cache: Path,
     stats: RunStats,
-) -> tuple[dict[str, dict[str, Any]], dict[str, str]]:
-    """Input SHA-256 -> the new result document; and -> why the new rules refuse the input."""
+) -> tuple[dict[str, str], dict[str, str]]:
+    """Input SHA-256 -> the new result document's text; and -> why the new rules refuse it."""
     work = []
     for item in items:
         profile_text = item.profile.read_text(encoding="utf-8") if item.profile else None
@@ -172,22 +175,22 @@ def _judge(
             profile_text=profile_text, profile_name=item.profile.name if item.profile else None,
             key=item.sha256, analysed_at=item.analysed_at,
         ))
-    new_docs: dict[str, dict[str, Any]] = {}
+    new_texts: dict[str, str] = {}
     refused: dict[str, str] = {}
     if not work:
-        return new_docs, refused
+        return new_texts, refused
     for judged in judge_many(
         work, rules, scheduler=engine.scheduler, workers=engine.workers,
         ship_bytes=engine.ship_bytes, batch_files=engine.batch_files, analysed_at=now,
         cache=cache, progress=engine.progress, stats=stats,
     ):
         if judged.result_json is not None:
-            new_docs[judged.sha256] = json.loads(judged.result_json)
+            new_texts[judged.sha256] = judged.result_json
         else:
             why = str(judged.error or "not judged").splitlines()[0]
             # not judged at all (a changed or unreadable archived copy): a rerun tries again
             refused[judged.sha256] = why if judged.judged else f"not judged again: {why}"
-    return new_docs, refused
+    return new_texts, refused
 
 
 def _lot_changes(
@@ -265,6 +268,7 @@ def _apply(
     lots: Sequence[LotChanges],
     items: Sequence[Archived],
     new_docs: Mapping[str, Mapping[str, Any]],
+    new_texts: Mapping[str, str],
     regrade_id: int,
     now: datetime.datetime,
 ) -> int:
@@ -279,28 +283,43 @@ def _apply(
         for change in lot.changes:
             if change.reviewed:
                 continue
-            rejudged = []
+            rejudged, files = [], []
             for sha in change.inputs:
                 doc, item = new_docs[sha], input_of.get(sha)
                 if item is None or item.input_id is None:
                     continue
-                stem = Path(str(doc["input"]["name"])).name
-                json_path = (settings.results / safe_name(change.lot)
-                             / f"{safe_name(change.cell_id)}~regrade-{regrade_id}~{stem}.json")
-                text = json.dumps(doc, indent=2, ensure_ascii=False) + "\n"
+                text = new_texts[sha]
+                stem = f"{safe_name(change.cell_id)}~regrade-{regrade_id}~{safe_name(Path(item.name).name)}"
+                json_path = settings.results / safe_name(change.lot) / f"{stem}.json"
+                pdf_path = settings.certificates / safe_name(change.lot) / f"{stem}.pdf"
+                pdf = _record_certificate(rulebook, item, text, change.cell_id)
                 write_atomic(text.encode("utf-8"), json_path)
+                files.append(Written(json_path, text.encode("utf-8"), "result"))
+                if pdf is not None:
+                    write_atomic(pdf, pdf_path)
+                    files.append(Written(pdf_path, pdf, "certificate"))
                 rejudged.append(Rejudged(
                     item.input_id, str(doc["verdict"]), tuple(doc.get("hazards", ())), text,
                     _checks(doc), str(doc["rule_set"]["name"]), str(doc["rule_set"]["revision"]),
                     str(doc["rule_set"]["sha256"]),
                     datetime.datetime.fromisoformat(str(doc["analysed_at"])), str(json_path),
+                    str(pdf_path) if pdf is not None else None,
                 ))
-            ledger.regrades.apply_cell(
-                regrade_id, lot=change.lot, cell_id=change.cell_id, rejudged=rejudged,
-                verdict=change.new.verdict, reason=change.new.reason, hazards=change.new.hazards,
-                grade=change.new.grade, basis=[f"{st}:{n}:{h}" for st, n, h in change.files],
-                now=now,
-            )
+            with ledger.db.write():  # the cell's change and its published files: one transaction
+                ledger.regrades.apply_cell(
+                    regrade_id, lot=change.lot, cell_id=change.cell_id, rejudged=rejudged,
+                    verdict=change.new.verdict, reason=change.new.reason,
+                    hazards=change.new.hazards, grade=change.new.grade,
+                    basis=[f"{st}:{n}:{h}" for st, n, h in change.files], now=now,
+                )
+                for item_files, r in zip(_per_input(files), rejudged, strict=True):
+                    result = ledger.db.one(
+                        "SELECT id FROM results WHERE input_id = ? AND regrade_id = ?",
+                        (r.input_id, regrade_id),
+                    )
+                    note_written(ledger, item_files, now=now, lot=change.lot,
+                                 cell_id=change.cell_id,
+                                 result_id=None if result is None else int(result["id"]))
             _keep_old_certificate(cell_paths(settings, change.lot, change.cell_id)[1], regrade_id)
             try:
                 publish_cell_now(settings, ledger, rulebook, change.lot, change.cell_id, now)
@@ -313,6 +332,46 @@ def _apply(
             close_and_report(settings, ledger, rulebook, lot.lot, by="regrade", now=now,
                              close=False)
     return applied
+
+
+def _per_input(files: Sequence[Written]) -> list[list[Written]]:
+    """The files written for each input judged again: its result, then its certificate."""
+    out: list[list[Written]] = []
+    for f in files:
+        if f.kind == "result":
+            out.append([f])
+        else:
+            out[-1].append(f)
+    return out
+
+
+def _record_certificate(rulebook: Any, item: Archived, text: str, cell_id: str) -> bytes | None:
+    """The certificate of one input as the regrade judged it: judged again here, from the same
+    bytes, rules and analysis time (so the very document the cluster returned), then rendered
+    with the verification code of that document. None when it cannot be (logged)."""
+    from pipeline.read.profile import load_profile
+    from pipeline.report.certificate import render_html
+    from pipeline.report.pdf import render_pdf
+    from pipeline.report.result import to_json
+    from pipeline.report.verification import verification_code
+    from pipeline.runner import judge
+
+    try:
+        data = item.path.read_bytes()
+        profile = None
+        if item.profile is not None:
+            profile = load_profile(item.profile.read_text(encoding="utf-8"), item.profile.name)
+        assert item.analysed_at is not None
+        result = judge(data, item.name, rulebook, analysed_at=item.analysed_at, profile=profile,
+                       input_sha256=item.sha256)
+    except (OSError, FormgateError) as exc:
+        log.error("%s: no certificate for its regrade: %s", item.name, exc)
+        return None
+    if to_json(result) != text:  # pragma: no cover - judging is a function of its inputs
+        log.error("%s: judged again here, it differs from the cluster's judgement", item.name)
+        return None
+    return render_pdf(render_html(result, verification_code(text),
+                                  cell_certificate=f"{cell_file_stem(cell_id)}.pdf"))
 
 
 def _keep_rule_texts(ledger: Ledger, rules: Rules, now: datetime.datetime) -> None:
