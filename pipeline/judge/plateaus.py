@@ -14,8 +14,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.signal import find_peaks
 
+from pipeline.judge.peaks import find_peaks
 from pipeline.judge.savgol import savgol
 from pipeline.model import Curve, FloatArray, Plateau, PlateauSettings
 
@@ -167,8 +167,6 @@ def incremental_capacity(
     top = float(dqdv.max()) if nbins else 0.0
     prominence = max(settings.ica_min_prominence_ah_per_v, 0.05 * top, total_ah * 1.0)
     window = 2 * max(1, int(round(ICA_PEAK_WINDOW_MV / settings.ica_bin_mv))) + 1
-    found, _ = find_peaks(
-        np.concatenate(([0.0], dqdv, [0.0])), prominence=prominence, wlen=window
-    )
+    found = find_peaks(np.concatenate(([0.0], dqdv, [0.0])), prominence_at_least=prominence, wlen=window)
     peaks = tuple(sorted((round(float(centres[i - 1]), 4) for i in found), reverse=True))
     return Curve(centres, np.asarray(dqdv, dtype=np.float64)), peaks

@@ -6,18 +6,53 @@ last half-windows, the polynomial fitted to the first and last ``window`` sample
 fits those two edge polynomials again on every call, which cost more than the rest of
 the plateau finder; here each edge is one matrix of coefficients per (window, order,
 derivative, spacing), cached, so a call is a convolution and two small matrix products.
-The tests compare it with SciPy's own function.
+The coefficients are SciPy's ``savgol_coeffs``, computed as it computes them (the same
+least-squares problem, solved by the same LAPACK routine through numpy), so that judging
+never imports scipy.signal, which takes longer to import than a one-file check takes to
+judge. The tests compare both with SciPy's own functions.
 """
 
 from __future__ import annotations
 
 import functools
+import math
 
 import numpy as np
 import numpy.typing as npt
-from scipy.signal import savgol_coeffs
 
 from pipeline.model import FloatArray
+
+
+def savgol_coeffs(window: int, order: int, *, deriv: int = 0, delta: float = 1.0,
+                  pos: int | None = None, use: str = "conv") -> FloatArray:
+    """The Savitzky-Golay coefficients ``scipy.signal.savgol_coeffs`` gives for these arguments.
+
+    The least-squares fit of a polynomial of ``order`` to ``window`` samples, evaluated (or
+    its ``deriv``-th derivative, for samples ``delta`` apart) at position ``pos`` of the
+    window (the middle when None); ordered for a convolution (``use="conv"``) or for a dot
+    product with the samples (``use="dot"``).
+    """
+    if order >= window:
+        raise ValueError("order must be less than window")
+    half, rem = divmod(window, 2)
+    at = (half - 0.5 if rem == 0 else half) if pos is None else pos
+    if not 0 <= at < window:
+        raise ValueError("pos must be nonnegative and less than window")
+    if use not in ("conv", "dot"):
+        raise ValueError("use must be 'conv' or 'dot'")
+    if deriv > order:
+        return np.zeros(window, dtype=np.float64)
+    # the design matrix: powers 0..order (rows) of the sample offsets from ``at`` (columns)
+    x = np.arange(-at, window - at, dtype=np.float64)
+    if use == "conv":
+        x = x[::-1]  # reversed, for a convolution
+    design = x ** np.arange(order + 1, dtype=np.float64).reshape(-1, 1)
+    wanted = np.zeros(order + 1, dtype=np.float64)
+    wanted[deriv] = float(math.factorial(deriv)) / (delta**deriv)
+    # SciPy's cut-off for small singular values, and its driver (LAPACK gelsd) in numpy
+    cutoff = np.finfo(np.float64).eps * max(design.shape)
+    coeffs = np.linalg.lstsq(design, wanted, rcond=cutoff)[0]
+    return np.asarray(coeffs, dtype=np.float64)
 
 
 @functools.lru_cache(maxsize=64)
