@@ -6,12 +6,12 @@ import dataclasses
 import datetime
 import math
 import types
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 
 import jinja2
 import pytest
 
-from pipeline.model import Hazard, Note, Outcome, Severity, SourceRef, Window
+from pipeline.model import CellResult, Hazard, Note, Outcome, Severity, SourceRef, VerdictKind, Window
 from pipeline.report import certificate
 from pipeline.report.certificate import (
     DASH,
@@ -221,16 +221,33 @@ def test_notes_from_result_and_metrics_show_once_with_where_and_what_they_block(
     ]
 
 
-def test_a_cell_without_curves_or_cycles_still_renders() -> None:
-    result = cases.pass_result()
+@pytest.mark.parametrize("make", [cases.pass_result, cases.hold_result], ids=["pass", "hold"])
+def test_a_cell_without_curves_or_cycles_still_renders(make: Callable[[], CellResult]) -> None:
+    result = make()
     metrics = dataclasses.replace(
         result.metrics, cycles=(), plateaus=(), ica_peaks_v=(), grading_curve=None,
         ica_curve=None,
     )
     html = render_html(dataclasses.replace(result, metrics=metrics))
     assert "No complete cycle found." in html
-    assert "No plateau found." in html
-    assert "no grading discharge measured" in html
+    if result.verdict.kind is VerdictKind.PASS:  # one page: no plots, no plateau table
+        assert "<svg" not in html and "Plateaus on the grading discharge" not in html
+    else:
+        assert "No plateau found." in html
+        assert "no grading discharge measured" in html
+
+
+def test_a_passed_cell_gets_one_page_without_plots_and_the_others_keep_them() -> None:
+    passed = render_html(cases.pass_result())
+    assert "one-page" in passed and "<svg" not in passed
+    assert "Hazard (if out of window)" not in passed  # no check of a pass is out of window
+    for kept in ("Checks", "Cycles", "Data quality", "Traceability", "Verification code"):
+        assert f"{kept}" in passed
+    for make in (cases.fail_result, cases.hold_result):
+        html = render_html(make())
+        assert "one-page" not in html and "Hazard (if out of window)" in html
+        assert html.count("<svg") >= 2  # the grading discharge and dQ/dV, and what failed
+        assert "Plateaus on the grading discharge" in html and "dQ/dV peaks" in html
 
 
 # --- rendering ------------------------------------------------------------------------------

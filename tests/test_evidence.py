@@ -116,9 +116,11 @@ def test_a_failed_cell_certificate_shows_the_plot_of_its_failure(judged, case: s
     )
 
 
-def test_a_passed_cell_shows_the_record_but_no_failure_plot(judged) -> None:
+def test_a_passed_cell_draws_no_plot_but_a_failed_one_shows_its_whole_record(judged) -> None:
     context = build_context(judged["normal"])
-    assert context["evidence"] == []
+    assert context["evidence"] == [] and context["record_svg"] == ""
+    assert context["discharge_svg"] == context["ica_svg"] == ""
+    assert build_context(judged["low_capacity"])["record_svg"] != ""
     view = judged["normal"].metrics.record
     assert view is not None and view.voltage.x.size <= 810
     rest = judged["normal"].metrics.rest

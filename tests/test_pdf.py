@@ -158,6 +158,17 @@ def test_held_cell_says_it_must_not_be_released(held: Rendered) -> None:
     assert held.has("must not be released until it has been reviewed")
 
 
+def test_a_passed_cells_certificate_is_one_page_with_its_checks_and_verification(
+    passed: Rendered,
+) -> None:
+    assert len(passed.reader.pages) == 1
+    for check in passed.result.verdict.checks:
+        assert passed.has(check.rule_id) and passed.has(check.metric)
+    for kept in ("Cycles", "Data quality", passed.result.input_sha256, "Verification code"):
+        assert passed.has(kept)
+    assert not passed.has("Grading discharge") and not passed.has("Hazard (if out of window)")
+
+
 def test_certificate_fits_three_a4_pages(any_cert: Rendered) -> None:
     # about a dozen checks, three cycles, three plateaus, (failed) three cautions and the
     # plots of what failed

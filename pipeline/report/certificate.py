@@ -402,6 +402,9 @@ def build_context(
         )
     cell_id = result.cell_id or DASH
     metrics = result.metrics
+    # A passed cell's certificate is one page: its plots are evidence for a failed or held
+    # cell, so they are neither drawn nor laid out for a pass.
+    one_page = kind is VerdictKind.PASS
     # a failed cell, or a held one whose record shows a hazard before it was cut short
     failed = kind is VerdictKind.FAIL or bool(result.verdict.hazards)
     cautions = [
@@ -445,17 +448,18 @@ def build_context(
             else "Caution: this cell is held, and its record shows a hazard"
         ),
         "data_check_notice": hazards.DATA_CHECK_NOTICE,
-        "discharge_svg": Markup(plots.discharge_svg(  # numbers only: see plots.py
+        "one_page": one_page,
+        "discharge_svg": "" if one_page else Markup(plots.discharge_svg(  # numbers only: plots.py
             metrics.grading_curve, metrics.plateaus,
             width_mm=PLOT_WIDTH_MM, height_mm=PLOT_HEIGHT_MM,
         )),
-        "ica_svg": Markup(plots.ica_svg(  # numbers only: see plots.py
+        "ica_svg": "" if one_page else Markup(plots.ica_svg(  # numbers only: see plots.py
             metrics.ica_curve, metrics.ica_peaks_v,
             width_mm=PLOT_WIDTH_MM, height_mm=PLOT_HEIGHT_MM,
         )),
         "record_svg": Markup(evidence.record_svg(  # numbers only: see svgplot.py
             metrics.record, width_mm=RECORD_WIDTH_MM, height_mm=RECORD_HEIGHT_MM,
-        )) if metrics.record is not None else "",
+        )) if metrics.record is not None and not one_page else "",
         "evidence": _evidence(result),
         "cycles": [_cycle_row(c) for c in metrics.cycles],
         "plateaus": [_plateau_row(i, p) for i, p in enumerate(metrics.plateaus, start=1)],
