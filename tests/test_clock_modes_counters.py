@@ -331,3 +331,21 @@ def test_counters_are_not_looked_at_when_the_profile_says_so() -> None:
         _profile(COUNTERS + "[counters]\ncompare = false\n"),
     )
     assert trace.notes == ()
+
+
+def test_whole_second_stamps_that_repeat_inside_the_repeated_autumn_hour_keep_their_order() -> None:
+    # a cycler writing whole seconds now and then writes a stamp twice; in the hour the clock
+    # repeats (Directive 2000/84/EC: 01:00 UTC on the last Sunday of October) the rows before
+    # the clock goes back are the summer pass, the rest the winter one
+    instants = _instants(AUTUMN_CHANGE - dt.timedelta(hours=2), 9 * 60, 30.0)
+    rows = []
+    for k, t in enumerate(instants):
+        stamp = t.astimezone(BERLIN).strftime("%d.%m.%Y %H:%M:%S")
+        rows += [f"{stamp},3.3,1.0"] * (2 if k % 7 == 0 else 1)
+    profile = _profile(
+        DATE_TIME + 'date_format = "%d.%m.%Y %H:%M:%S"\nzone = "Europe/Berlin"\n[columns]\ntime = "t"\n'
+    )
+    trace = read_cycle_file(_csv("t,voltage_V,current_A", rows), "c.csv", profile)
+    steps = np.diff(trace.time_s)
+    assert set(steps.tolist()) == {0.0, 30.0}
+    assert trace.time_s[-1] == 30.0 * (len(instants) - 1)

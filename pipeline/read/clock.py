@@ -153,12 +153,28 @@ def _zone(table: RawTable, profile: Profile) -> dt.tzinfo:
     )
 
 
-def _localised(naive: pd.Series, table: RawTable, index: int, zone: dt.tzinfo) -> pd.Series:
+def localise(naive: pd.Series, zone: dt.tzinfo | str) -> pd.Series:
+    """Naive local stamps read in ``zone`` -> stamps that know their zone.
+
+    Raises ValueError (or TypeError) for a local time the zone skips, or one of a repeated
+    hour whose pass the order of the rows cannot tell (pandas' inference, else
+    :func:`_repeated_hour_by_order`, which allows a stamp written twice).
+    """
     if isinstance(zone, dt.timezone):  # a fixed offset: nothing is skipped or repeated
-        return naive.dt.tz_localize(zone).dt.tz_convert("UTC")
+        return naive.dt.tz_localize(zone)
     try:
-        return naive.dt.tz_localize(zone, ambiguous="infer", nonexistent="raise").dt.tz_convert("UTC")
-    except (ValueError, TypeError) as exc:  # pytz-style errors are ValueErrors
+        return naive.dt.tz_localize(zone, ambiguous="infer", nonexistent="raise")
+    except (ValueError, TypeError):  # pytz-style errors are ValueErrors
+        order = _repeated_hour_by_order(naive, zone)
+        if order is None:
+            raise
+        return naive.dt.tz_localize(zone, ambiguous=order, nonexistent="raise")
+
+
+def _localised(naive: pd.Series, table: RawTable, index: int, zone: dt.tzinfo) -> pd.Series:
+    try:
+        return localise(naive, zone).dt.tz_convert("UTC")
+    except (ValueError, TypeError) as exc:
         row, why = _local_time_fault(naive, zone)
         raise InputError(
             f"{table.header(index)} is {naive.iloc[row]}, {why} in the zone {zone}",
@@ -166,6 +182,33 @@ def _localised(naive: pd.Series, table: RawTable, index: int, zone: dt.tzinfo) -
             "Check the zone of the cycler's clock ([time] zone), or have the cycler write "
             "stamps with their UTC offset.",
         ) from exc
+
+
+def _repeated_hour_by_order(naive: pd.Series, zone: dt.tzinfo | str) -> np.ndarray | None:
+    """For each row, True when its local time is the first (summer) of a repeated hour.
+
+    pandas tells the two passes through the repeated hour apart only when the stamps rise
+    strictly; a cycler that writes whole seconds repeats a stamp now and then. Here, in each
+    run of rows whose local time is repeated, the rows before the clock first goes back are
+    its first pass and the rest its second. None when some run never goes back (the order
+    cannot tell which pass it is).
+    """
+    try:
+        marked = naive.dt.tz_localize(zone, ambiguous="NaT", nonexistent="NaT")
+    except (ValueError, TypeError):
+        return None
+    repeated = (marked.isna() & naive.notna()).to_numpy()
+    first_pass = np.zeros(len(naive), dtype=bool)
+    if not repeated.any():
+        return first_pass
+    values = naive.to_numpy(dtype="datetime64[ns]")
+    edges = np.flatnonzero(np.diff(np.concatenate(([0], repeated.astype(np.int8), [0]))))
+    for start, end in zip(edges[::2], edges[1::2], strict=True):
+        back = np.flatnonzero(np.diff(values[start:end]) < np.timedelta64(0, "ns"))
+        if not back.size:
+            return None
+        first_pass[start : start + int(back[0]) + 1] = True
+    return first_pass
 
 
 def _local_time_fault(naive: pd.Series, zone: dt.tzinfo) -> tuple[int, str]:

@@ -34,6 +34,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.model import FloatArray
+from pipeline.read.clock import localise
 from pipeline.read.profile import (
     CAPACITY_UNITS,
     CURRENT_UNITS,
@@ -837,7 +838,7 @@ def _zone_guess(stamps: pd.Series) -> Decision:
     naive = pd.Series(nanos.view("datetime64[ns]"))
     for zone in DST_ZONES:
         try:
-            local = naive.dt.tz_localize(zone, ambiguous="infer", nonexistent="raise")
+            local = localise(naive, zone)  # as the reader will, a stamp written twice allowed
         except (ValueError, TypeError):
             continue
         moved = np.diff(_nanos(local))
