@@ -208,22 +208,9 @@ def _row_words(index: int, top: int) -> str:
 
 def _open_book(data: bytes, name: str) -> Any:
     """The workbook, opened as its reader opens it (the same cap on what is unpacked)."""
-    from pipeline.read import sniff, workbook
+    from pipeline.read.workbook import open_book
 
-    kind = sniff.binary_kind(data)
-    fast = workbook._check_unpacked_size(data, name, kind, MAX_UNCOMPRESSED_BYTES)
-    why = "its parts are packed in a way the workbook reader does not know"
-    if fast:
-        try:
-            return workbook._CalamineBook(data, name)
-        except workbook._Unreadable as exc:
-            why = str(exc)
-    if kind == "workbook (.xlsx)":
-        try:
-            return workbook._OpenpyxlBook(data)
-        except workbook._Unreadable:
-            pass
-    raise workbook._damaged(name, why)
+    return open_book(data, name, MAX_UNCOMPRESSED_BYTES)
 
 
 # ---------------------------------------------------------------- Parquet

@@ -329,7 +329,9 @@ class _Unreadable(Exception):
     """The library at hand cannot read the workbook (the reason is its message)."""
 
 
-class _Book(Protocol):
+class Book(Protocol):
+    """An open workbook: its worksheets' names and each one's cells (see :func:`open_book`)."""
+
     names: list[str]  # the worksheets, in the workbook's order
 
     def grid(self, sheet: str) -> Grid: ...
@@ -437,7 +439,27 @@ def read_workbook_table(data: bytes, name: str, profile: Profile, max_uncompress
     raise _damaged(name, why)
 
 
-def _read_book(book: _Book, name: str, profile: Profile) -> RawTable:
+def open_book(data: bytes, name: str, cap: int) -> Book:
+    """Workbook ``data`` opened as :func:`read_workbook_table` opens it, with the same cap on
+    what is unpacked: python-calamine, else openpyxl for an .xlsx calamine cannot open.
+    Raises InputError. Close it when done (profile guessing reads its sheets' cells)."""
+    kind = binary_kind(data)
+    fast = _check_unpacked_size(data, name, kind, cap)
+    why = "its parts are packed in a way the workbook reader does not know"
+    if fast:
+        try:
+            return _CalamineBook(data, name)
+        except _Unreadable as exc:
+            why = str(exc)
+    if kind == "workbook (.xlsx)":
+        try:
+            return _OpenpyxlBook(data)
+        except _Unreadable:
+            pass
+    raise _damaged(name, why)
+
+
+def _read_book(book: Book, name: str, profile: Profile) -> RawTable:
     try:
         return _table(book, name, profile)
     finally:
@@ -447,7 +469,7 @@ def _read_book(book: _Book, name: str, profile: Profile) -> RawTable:
 # ---------------------------------------------------------------- sheets, metadata, header, rows
 
 
-def _table(book: _Book, name: str, profile: Profile) -> RawTable:
+def _table(book: Book, name: str, profile: Profile) -> RawTable:
     sheets = book.names
     if not sheets:
         raise InputError("the workbook has no sheets", SourceRef(name), AGAIN_HINT)
