@@ -270,3 +270,24 @@ def test_an_archived_copy_changed_since_is_not_judged_and_leaves_its_cell_as_it_
     assert "refused by the new rules: not judged again: " in out and "has changed" in out
     [report] = sorted((tampered / "regrades").glob("dry-run-*-changes.csv"))
     assert set(_csv_cells(report)) == expected - {victim}
+
+
+def test_a_plain_folder_is_judged_on_the_cluster_into_a_new_output_folder(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    folder = tmp_path / "files"
+    folder.mkdir()
+    for n, (cell, cap) in enumerate(list(CAPACITIES.items())[:4]):
+        (folder / f"{cell}.csv").write_bytes(cycle_file(cell, capacity_ah=cap, seed=n))
+    (folder / "notes.csv").write_bytes(b"not a cycle file\n")
+    rules = tmp_path / "rules"
+    rules.mkdir()
+    (rules / "test_cells.toml").write_text(TIGHTENED, encoding="utf-8")
+    out = tmp_path / "new" / "out"  # made as needed
+    assert main(["regrade", "--folder", str(folder), "--out", str(out), "--rules", str(rules),
+                 "--workers", "1", "--no-progress"]) == 0
+    assert "5 file(s) judged under" in capsys.readouterr().out
+    rows = list(csv.DictReader(io.StringIO((out / "regrade-verdicts.csv").read_text("utf-8"))))
+    assert [(r["file"], r["verdict"]) for r in rows][-1] == ("notes.csv", "error")
+    assert {r["cell_id"] for r in rows if r["verdict"] != "error"} == set(list(CAPACITIES)[:4])
+    assert len(list((out / "results" / "LOT-A").glob("*.json"))) == 4

@@ -104,6 +104,7 @@ def _regrade_folder(args: argparse.Namespace, engine: Any, now: datetime.datetim
                             "Give the folder the results and the verdict list go to.")
     out = Path(args.out)
     rules = Rules.read(Path(args.rules or "rules"))
+    out.mkdir(parents=True, exist_ok=True)
     profile = Path(args.profile) if args.profile else None
     items = folder_inputs(Path(args.folder), profile=profile)
     text = profile.read_text(encoding="utf-8") if profile else None
