@@ -13,6 +13,7 @@ import math
 
 import numpy as np
 
+from pipeline.judge.medians import median
 from pipeline.judge.metricdefs import FORMATION, GRADING, METRIC_NAMES, judged_on
 from pipeline.judge.plateaus import find_plateaus
 from pipeline.judge.program import (
@@ -163,8 +164,8 @@ def dcir_mohm(
         )
     rest_t = trace.time_s[rest.start : rest.stop]
     rest_v = trace.voltage_v[rest.start : rest.stop]
-    v0 = float(np.median(rest_v[rest_t >= t0 - DCIR_REST_S]))
-    interval = float(np.median(np.diff(t))) if len(t) > 1 else 0.0
+    v0 = median(rest_v[rest_t >= t0 - DCIR_REST_S])
+    interval = median(np.diff(t)) if len(t) > 1 else 0.0
     half = max(DCIR_FIT_S, 1.01 * interval)
     # the rows of the switch itself (spike, ramp) are left out of the fit
     near = (np.abs(t - (t0 + pulse_s)) <= half) & (t >= t0 + 0.5 * pulse_s)
@@ -175,7 +176,7 @@ def dcir_mohm(
     amps = np.abs(trace.current_a[discharge.start : discharge.stop])
     # the current of the pulse away from the switch's overshoot or ramp
     settled = (t >= t0 + 0.5 * pulse_s) & (t <= t0 + pulse_s + half)
-    current = float(np.median(amps[settled] if settled.any() else amps[in_pulse]))
+    current = median(amps[settled] if settled.any() else amps[in_pulse])
     return (v0 - v1) / current * 1000.0, None
 
 

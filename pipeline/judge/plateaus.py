@@ -15,6 +15,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from pipeline.judge.medians import median
 from pipeline.judge.peaks import find_peaks
 from pipeline.judge.savgol import savgol
 from pipeline.model import Curve, FloatArray, Plateau, PlateauSettings
@@ -102,7 +103,7 @@ def find_plateaus(
             Plateau(
                 start_pct=start,
                 end_pct=end,
-                voltage_v=float(np.median(v[a : b + 1])),
+                voltage_v=median(v[a : b + 1]),
                 length_ah=(end - start) / 100.0 * total_ah,
             )
         )

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from pipeline.judge.medians import median, median_side
 from pipeline.model import CurrentBand, FloatArray, IntArray, Note, SourceRef, Trace
 
 # Telling rest from current on a real channel (docs/metrics.md, "Rest band").
@@ -68,8 +69,8 @@ def estimate_band(current_a: FloatArray, floor_a: float, one_c_a: float) -> Curr
         if len(near) < MIN_NOISE_ROWS:
             break
         used = len(near)
-        offset = float(np.median(near))
-        noise = 1.4826 * float(np.median(np.abs(near - offset)))
+        offset = median(near)
+        noise = 1.4826 * median(np.abs(near - offset))
         width = min(max(floor_a, NOISE_MULTIPLE * noise), cap_a)
         near = every[np.abs(every - offset) <= 2.0 * width]
     threshold = min(max(floor_a, NOISE_MULTIPLE * noise), max(cap_a, floor_a))
@@ -152,11 +153,25 @@ def program_step_kinds(
     assert trace.step is not None
     moved = trace.current_a - band.offset_a
     beyond = np.abs(moved) > band.threshold_a
+    # rows beyond the band above it and below it (for a band at least 0 wide, every row
+    # beyond it is one of them; NaN is neither): counted per step, they spare most steps
+    # the search for rows against their kind
+    counted = band.threshold_a >= 0.0
+    up, down = moved > band.threshold_a, moved < -band.threshold_a
     min_as = MIN_STEP_CHARGE_C * one_c_a * 3600.0
     blocks, notes = [], []
     for a, b in runs(trace.step):
-        median = float(np.median(moved[a : b : max(1, -(-(b - a) // ESTIMATE_ROWS))]))
-        kind = 0 if abs(median) <= band.threshold_a else (1 if median > 0 else -1)
+        # the side of the band the median current falls on (medians.median_side: the one
+        # float(np.median(...)) would give, found by counting)
+        kind = median_side(moved[a : b : max(1, -(-(b - a) // ESTIMATE_ROWS))], band.threshold_a)
+        # rows beyond the band on the other side than the kind: too few to matter?
+        if counted and (
+            (0 if kind == 1 else int(np.count_nonzero(up[a:b])))
+            + (0 if kind == -1 else int(np.count_nonzero(down[a:b])))
+            < MIN_STEP_ROWS
+        ):
+            blocks.append((a, b, kind))
+            continue
         against = beyond[a:b] & (np.sign(moved[a:b]) != kind)
         rows = int(np.count_nonzero(against))
         charge_as = float(np.abs(moved[a:b][against]) @ w[a:b][against]) if rows else 0.0

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from pipeline.judge.medians import median
 from pipeline.judge.rest_band import (
     band_notes,
     clean_kinds,
@@ -92,7 +93,7 @@ def _split_cv(
     # samples for every step), or, for a program step that is CV throughout, the current
     # the step opened with
     stride = max(1, -(-tail // 2048))  # ceiling division
-    i_cc = float(np.median(i[:tail:stride])) if tail > 0 else float(i[0])
+    i_cc = median(i[:tail:stride]) if tail > 0 else float(i[0])
     decaying = np.flatnonzero(i[tail:] < CV_CURRENT_FRACTION * i_cc)
     if len(decaying) == 0:
         return None

@@ -58,14 +58,18 @@ def validate_trace(trace: Trace, cell_type: CellType) -> tuple[Note, ...]:
     notes = list(_check_empty_rows(trace, empty))
     rows = np.flatnonzero(~empty)
     _refuse_short(trace, len(rows))
-    time_s = trace.time_s[rows]
+    if len(rows) == len(trace):  # every row kept: the columns as they are, not copies
+        time_s, volts, amps = trace.time_s, trace.voltage_v, trace.current_a
+    else:
+        time_s, volts, amps = trace.time_s[rows], trace.voltage_v[rows], trace.current_a[rows]
     # Differences of absurdly large times may overflow to inf, which the checks handle.
     with np.errstate(over="ignore", invalid="ignore"):
-        _check_time_order(trace, rows, time_s)
-        _check_voltage(trace, rows, trace.voltage_v[rows], cell_type)
-        _check_current(trace, rows, trace.current_a[rows], cell_type)
-        notes += _note_repeated_times(trace, rows, time_s)
-        notes += _note_gaps(trace, rows, time_s, trace.current_a[rows], cell_type)
+        steps = np.diff(time_s)
+        _check_time_order(trace, rows, time_s, steps)
+        _check_voltage(trace, rows, volts, cell_type)
+        _check_current(trace, rows, amps, cell_type)
+        notes += _note_repeated_times(trace, rows, steps)
+        notes += _note_gaps(trace, rows, steps, amps, cell_type)
     notes += _note_temperature(trace)
     return tuple(notes)
 
@@ -152,8 +156,8 @@ def _longest_run(mask: Mask) -> tuple[int, int]:
     return int(starts[best]), int(lengths[best])
 
 
-def _check_time_order(trace: Trace, rows: Rows, time_s: FloatArray) -> None:
-    back = np.flatnonzero(np.diff(time_s) < 0)
+def _check_time_order(trace: Trace, rows: Rows, time_s: FloatArray, steps: FloatArray) -> None:
+    back = np.flatnonzero(steps < 0)
     if back.size:
         k = int(back[0])
         before, after = int(rows[k]), int(rows[k + 1])
@@ -232,8 +236,8 @@ def _check_current(trace: Trace, rows: Rows, amps: FloatArray, ct: CellType) -> 
         )
 
 
-def _note_repeated_times(trace: Trace, rows: Rows, time_s: FloatArray) -> list[Note]:
-    same = np.flatnonzero(np.diff(time_s) == 0)
+def _note_repeated_times(trace: Trace, rows: Rows, steps: FloatArray) -> list[Note]:
+    same = np.flatnonzero(steps == 0)
     if not same.size:
         return []
     row = int(rows[same[0] + 1])
@@ -249,13 +253,15 @@ def _note_repeated_times(trace: Trace, rows: Rows, time_s: FloatArray) -> list[N
 
 
 def _note_gaps(
-    trace: Trace, rows: Rows, time_s: FloatArray, amps: FloatArray, ct: CellType
+    trace: Trace, rows: Rows, steps: FloatArray, amps: FloatArray, ct: CellType
 ) -> list[Note]:
-    steps = np.diff(time_s)
+    """A note on the gaps in the record (``steps``: the differences of its times)."""
     forward = steps[steps > 0]
     if not forward.size:
         return []
-    limit = max(GAP_FACTOR * float(np.median(forward)), GAP_MIN_S)
+    limit = GAP_MIN_S if _median_under(forward, GAP_MIN_S / GAP_FACTOR) else max(
+        GAP_FACTOR * float(np.median(forward)), GAP_MIN_S
+    )
     gaps = np.flatnonzero(steps > limit)
     if not gaps.size:
         return []
@@ -272,6 +278,16 @@ def _note_gaps(
         text += "; current flowed across a gap, so capacities there are interpolated"
         blocks = CAPACITY_METRICS
     return [Note("time_gaps", text, trace.where(row), blocks)]
+
+
+def _median_under(values: FloatArray, bound: float) -> bool:
+    """Whether GAP_FACTOR times the median of ``values`` (none of them NaN) is sure to be
+    at most GAP_MIN_S, as it is when more than half of them are at most ``bound``: then the
+    middle value or values, and their mean, are at most ``bound`` too, and the median need
+    not be found (a partition of every interval of the record)."""
+    if not GAP_FACTOR * bound <= GAP_MIN_S:
+        return False
+    return int(np.count_nonzero(values <= bound)) > values.size // 2
 
 
 def _note_temperature(trace: Trace) -> list[Note]:
