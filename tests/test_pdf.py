@@ -5,6 +5,8 @@ from __future__ import annotations
 import io
 import os
 import re
+import shutil
+import subprocess
 import types
 from collections.abc import Iterator
 from pathlib import Path
@@ -430,3 +432,109 @@ def test_xml_parse_steps_aside_for_a_weasyprint_that_builds_documents_differentl
     finally:
         monkeypatch.undo()
         pdf._xml_parse_fits.cache_clear()
+
+
+# --- plot labels drawn whole (svgtext.py) ---------------------------------------------------
+
+
+def _page_images(data: bytes, folder: Path, name: str) -> list[Path]:
+    (folder / f"{name}.pdf").write_bytes(data)
+    subprocess.run(
+        ["pdftoppm", "-png", "-r", "100", str(folder / f"{name}.pdf"), str(folder / name)], check=True
+    )
+    return sorted(folder.glob(f"{name}-*.png"))
+
+
+@pytest.mark.skipif(shutil.which("pdftoppm") is None, reason="needs pdftoppm (poppler-utils) to draw pages")
+def test_plot_labels_drawn_whole_look_as_drawn_letter_by_letter(
+    hazards: types.ModuleType, tmp_path: Path
+) -> None:
+    """The same glyphs at the same places: at most a few anti-aliased pixels differ per page."""
+    image = pytest.importorskip("PIL.Image")
+    chops = pytest.importorskip("PIL.ImageChops")
+    html = render_html(cases.fail_result())
+    whole = _page_images(pdf.render_pdf(html), tmp_path, "whole")
+    letters = _page_images(pdf.render_pdf_plain(html), tmp_path, "letters")
+    assert len(whole) == len(letters) == 3
+    for a, b in zip(whole, letters, strict=True):
+        diff = chops.difference(image.open(a).convert("L"), image.open(b).convert("L"))
+        histogram = diff.histogram()
+        differing = sum(histogram[64:])  # pixels a quarter of the scale apart or more
+        assert differing < 0.0005 * diff.width * diff.height, (a.name, differing)
+
+
+def test_plot_labels_drawn_whole_are_fewer_runs_with_the_same_text(failed: Rendered) -> None:
+    html = render_html(failed.result)
+    letters = PdfReader(io.BytesIO(pdf.render_pdf_plain(html)))
+
+    def runs(reader: PdfReader) -> int:
+        """Runs of text drawn: one per label drawn whole, one per letter drawn letter by letter."""
+        count = 0
+        for page in reader.pages:
+            count += len(re.findall(rb"\bTJ\b", page.get_contents().get_data()))
+            for xobject in _xobjects(page["/Resources"]):
+                if xobject.get("/Subtype") == "/Form":
+                    count += len(re.findall(rb"\bTJ\b", xobject.get_data()))
+        return count
+
+    assert runs(failed.reader) < runs(letters) / 2
+    assert [p.extract_text() for p in failed.reader.pages] == [p.extract_text() for p in letters.pages]
+
+
+class _Node:
+    """Just enough of a WeasyPrint SVG node for svgtext.whole to choose who draws it."""
+
+    def __init__(self, tag: str, text: str, **attrib: str) -> None:
+        self.tag, self.text, self.attrib = tag, text, attrib
+
+    def get(self, key: str, default: object = None) -> object:
+        return self.attrib.get(key, default)
+
+    def __iter__(self) -> Iterator[object]:
+        return iter(())
+
+
+@pytest.mark.parametrize(
+    "node",
+    [
+        _Node("text", "3.0", x="1 2 3", y="4"),
+        _Node("text", "3.0", x="1", y="4", dx="0.5"),
+        _Node("text", "3.0", x="1", y="4", rotate="10"),
+        _Node("text", "3.0", x="1", y="4", textLength="9"),
+        _Node("text", "3.0", x="1", y="4", **{"letter-spacing": "1"}),
+        _Node("tspan", "3.0", x="1", y="4"),
+        _Node("text", "", x="1", y="4"),
+    ],
+    ids=["x-list", "dx", "rotate", "textLength", "letter-spacing", "tspan", "empty"],
+)
+def test_labels_that_place_their_letters_are_drawn_by_weasyprint(
+    node: _Node, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from pipeline.report import svgtext
+
+    pieces = svgtext._weasyprint()
+    assert pieces is not None  # the pinned WeasyPrint
+    drawn = []
+    monkeypatch.setitem(pieces, "original", lambda svg, n, size: drawn.append(n))
+    svgtext.whole(object(), node, 10.0)
+    assert drawn == [node]
+
+
+def test_another_weasyprint_draws_every_label_itself(monkeypatch: pytest.MonkeyPatch) -> None:
+    import weasyprint
+    import weasyprint.svg
+
+    from pipeline.report import svgtext
+
+    own = weasyprint.svg.TAGS["text"]
+    monkeypatch.setattr(weasyprint, "__version__", "999.0")
+    svgtext._weasyprint.cache_clear()
+    try:
+        with svgtext.drawing_labels_whole() as whole:
+            assert not whole and weasyprint.svg.TAGS["text"] is own
+    finally:
+        monkeypatch.undo()
+        svgtext._weasyprint.cache_clear()
+    with svgtext.drawing_labels_whole() as whole:
+        assert whole and weasyprint.svg.TAGS["text"] is svgtext.whole
+    assert weasyprint.svg.TAGS["text"] is own and weasyprint.svg.text is own

@@ -9,6 +9,7 @@ certificate.py's job.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import logging
 import mimetypes
@@ -26,6 +27,7 @@ from weasyprint.document import Document
 from weasyprint.text.fonts import FontConfiguration
 from weasyprint.urls import URLFetcherResponse
 
+from pipeline.report import svgtext
 from pipeline.report.certificate import TEMPLATES_DIR
 from pipeline.writing import write_atomic
 
@@ -112,12 +114,14 @@ def prepare() -> None:
     _xml_parse_fits()
 
 
-def _write(document: HTML | Document) -> bytes:
+def _write(document: HTML | Document, *, labels_whole: bool = True) -> bytes:
+    """The PDF bytes of ``document``; its plot labels drawn whole (svgtext.py) unless told not to."""
     with _RENDER_LOCK:
         before = os.environ.get("SOURCE_DATE_EPOCH")
         os.environ["SOURCE_DATE_EPOCH"] = before or _FONT_EPOCH
         try:
-            pdf: bytes = document.write_pdf(pdf_identifier=False)
+            with svgtext.drawing_labels_whole() if labels_whole else contextlib.nullcontext():
+                pdf: bytes = document.write_pdf(pdf_identifier=False)
         finally:
             if before is None:
                 del os.environ["SOURCE_DATE_EPOCH"]
@@ -201,8 +205,9 @@ def _xml_parse_fits() -> bool:
 
 
 def render_pdf_plain(html: str) -> bytes:
-    """The same certificate rendered with nothing shared: the reference the fast path must match."""
-    return _write(_html5(html))
+    """The same certificate rendered with nothing shared, and every plot label drawn by WeasyPrint
+    letter by letter: the reference the fast path must match."""
+    return _write(_html5(html), labels_whole=False)
 
 
 def write_pdf(pdf: bytes, path: pathlib.Path) -> None:
