@@ -21,7 +21,6 @@ from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.profile import Profile
 from pipeline.read.readings import looks_like_readings, read_readings
 from pipeline.read.validate import drop_invalid_rows, validate_trace
-from pipeline.report.result import to_json
 from pipeline.rulebook.book import RuleBook
 from pipeline.writing import write_atomic
 
@@ -119,6 +118,8 @@ def output_paths(out: Path, result: CellResult) -> tuple[Path, Path]:
 
 def publish(result: CellResult, out: Path, *, certificate: bool = True) -> Published:
     """Write the JSON result and (for pass/fail/hold) the PDF certificate, atomically."""
+    from pipeline.report.result import to_json  # imported here: `check` without --out writes nothing
+
     json_path, pdf_path = output_paths(out, result)
     json_text = to_json(result)
     write_atomic(json_text.encode("utf-8"), json_path)

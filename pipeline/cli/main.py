@@ -3,41 +3,65 @@
 Argument parsing and exit codes only. Each command family has its module (check.py,
 profile.py, station.py, lots.py, review.py, regrade.py, verify.py, demo.py) with a plain
 function per command that returns an exit code, and adds its sub-commands to the parser
-here, in the order `formgate --help` shows them. A FormgateError or an OSError is the
-user's to fix (exit 2); any other exception is a bug (exit 3, details in a log file).
+here, in the order `formgate --help` shows them. A command given by name loads only its own
+family's module (a command starts in a fresh process every time: what it does not use, it
+does not import); help, a version or a mistyped command loads them all. A FormgateError or
+an OSError is the user's to fix (exit 2); any other exception is a bug (exit 3, details in
+a log file).
 """
 
 from __future__ import annotations
 
 import argparse
+import importlib
 import os
-import platform
 import sys
-import tempfile
-import traceback
 from collections.abc import Sequence
 from pathlib import Path
 
 from pipeline import __version__
-from pipeline.cli import check, demo, lots, profile, regrade, review, station, verify
 from pipeline.cli.exits import EXIT_BUG, EXIT_INTERRUPTED, EXIT_USER
-from pipeline.errors import FormgateError
+
+# The command families (modules of pipeline.cli), in the order `formgate --help` shows them,
+# and the family of each command.
+FAMILIES = ("check", "profile", "station", "lots", "review", "regrade", "verify", "demo")
+COMMANDS = {
+    "check": "check",
+    "rules": "check",
+    "profile": "profile",
+    "init": "station",
+    "watch": "station",
+    "status": "station",
+    "mail": "station",
+    "lot": "lots",
+    "cell": "lots",
+    "review": "review",
+    "regrade": "regrade",
+    "verify": "verify",
+    "demo": "demo",
+}
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(command: str | None = None) -> argparse.ArgumentParser:
+    """The parser of every command, or only of ``command``'s family when it is one of them."""
     parser = argparse.ArgumentParser(
         prog="formgate",
         description="Judge battery cells after formation and grading, and certify them.",
     )
     parser.add_argument("--version", action="version", version=f"formgate {__version__}")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
-    for family in (check, profile, station, lots, review, regrade, verify, demo):
-        family.add_commands(sub)
+    family = COMMANDS.get(command or "")
+    for name in FAMILIES if family is None else (family,):
+        importlib.import_module(f"pipeline.cli.{name}").add_commands(sub)
     return parser
 
 
 def report_bug(exc: BaseException) -> int:
     """One line for the user, the traceback and versions in a log file (exit 3)."""
+    import platform
+    import tempfile
+    import traceback
+
     home = Path(os.environ.get("FORMGATE_HOME", tempfile.gettempdir()))
     log = home / "formgate-crash.log"
     try:
@@ -64,8 +88,13 @@ SINGLE_THREADED_MATH = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MK
 def main(argv: Sequence[str] | None = None) -> int:
     for key, value in SINGLE_THREADED_MATH.items():
         os.environ.setdefault(key, value)  # before numpy is imported; a user's choice stands
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    words = sys.argv[1:] if argv is None else list(argv)
+    # the command is the first word, as the parser reads it (a word after an option such as
+    # --help is not a command: then every family is loaded, as for a mistyped command)
+    parser = build_parser(words[0] if words else None)
+    args = parser.parse_args(words)
+    from pipeline.errors import FormgateError
+
     try:
         return int(args.func(args))
     except FormgateError as exc:

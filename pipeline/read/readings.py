@@ -55,7 +55,6 @@ from dataclasses import dataclass
 from pipeline.errors import InputError
 from pipeline.model import SourceRef, frozen_mapping
 from pipeline.read.bounds import MAX_METADATA_ENTRIES, check_length, fits, shown, too_long
-from pipeline.read.cyclehead import inflate
 
 KIND = "ocv readings"  # what ``# kind:`` says in a file of this format
 REQUIRED_COLUMNS = ("cell_id", "time", "ocv_V")
@@ -165,6 +164,10 @@ def _decompress(data: bytes, name: str) -> bytes:
     """The file's bytes, inflated when they are gzip (one member after another)."""
     if not (data[:2] == GZIP_MAGIC or name.lower().endswith(".gz")):
         return data
+    # imported here: the ledger keeps Reading records, and `formgate status` reading the ledger
+    # need not import the cycle-file reader
+    from pipeline.read.cyclehead import inflate
+
     too_large = InputError(
         f"the file holds more than {MAX_UNCOMPRESSED_BYTES // 2**20} MiB of text",
         SourceRef(name),

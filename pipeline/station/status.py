@@ -17,7 +17,6 @@ from pipeline.station.board import process_exists
 from pipeline.station.handoff import is_temporary
 from pipeline.station.heartbeat import read_heartbeat
 from pipeline.station.mailtrouble import current as mail_trouble
-from pipeline.station.reviewing import age_words
 from pipeline.station.settings import Settings
 from pipeline.station.startup import read_waiting
 from pipeline.station.waiting import overdue_entries
@@ -167,12 +166,16 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
             + ("" if counts.get("readings", 0) == 1 else "s")
         )
         people = ledger.reviews.waiting()  # fails and holds no person has reviewed, oldest first
-        lines.append(
-            f"waiting for a person: {len(people)} cell(s), the oldest for "
-            f"{age_words((now - people[0][4]).total_seconds())} (cell {people[0][1]} of lot "
-            f"{people[0][0]}, {people[0][2]}); formgate review list shows them"
-            if people else "waiting for a person: none"
-        )
+        if people:
+            from pipeline.station.reviewing import age_words  # imports the lot-judging stack
+
+            lines.append(
+                f"waiting for a person: {len(people)} cell(s), the oldest for "
+                f"{age_words((now - people[0][4]).total_seconds())} (cell {people[0][1]} of lot "
+                f"{people[0][0]}, {people[0][2]}); formgate review list shows them"
+            )
+        else:
+            lines.append("waiting for a person: none")
         lines.append("")
         lines.append("last cells")
         seen: set[tuple[str, str]] = set()
