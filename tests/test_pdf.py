@@ -538,3 +538,14 @@ def test_another_weasyprint_draws_every_label_itself(monkeypatch: pytest.MonkeyP
     with svgtext.drawing_labels_whole() as whole:
         assert whole and weasyprint.svg.TAGS["text"] is svgtext.whole
     assert weasyprint.svg.TAGS["text"] is own and weasyprint.svg.text is own
+
+
+def test_prepare_renders_a_page_in_the_certificate_font_and_its_plot_labels() -> None:
+    """The warm-up page prepare() renders is well-formed, set in the shipped font, with a label."""
+    assert pdf.parse_xhtml(pdf._WARM_UP, pdf.BASE_URL, pdf.TemplateFetcher()) is not None
+    reader = PdfReader(io.BytesIO(pdf.render_pdf(pdf._WARM_UP)))
+    text = reader.pages[0].extract_text()
+    assert "3.218 V" in text and "\N{MINUS SIGN}2.0" in text
+    fonts = reader.pages[0]["/Resources"]["/Font"]
+    assert {str(f.get_object()["/BaseFont"]).split("+")[-1] for f in fonts.values()} == {"Certificate-Sans"}
+    pdf.prepare()  # and it runs again without harm
