@@ -237,6 +237,13 @@ def test_a_cell_without_curves_or_cycles_still_renders(make: Callable[[], CellRe
         assert "no grading discharge measured" in html
 
 
+def test_a_passed_cells_full_certificate_has_every_section_and_plot() -> None:
+    full = render_html(cases.pass_result(), full=True)
+    assert "one-page" not in full and full.count("<svg") == 2  # the grading discharge and dQ/dV
+    assert "Hazard (if out of window)" in full and "Plateaus on the grading discharge" in full
+    assert render_html(cases.fail_result(), full=True) == render_html(cases.fail_result())
+
+
 def test_a_passed_cell_gets_one_page_without_plots_and_the_others_keep_them() -> None:
     passed = render_html(cases.pass_result())
     assert "one-page" in passed and "<svg" not in passed

@@ -365,9 +365,16 @@ def _ica_caption(curve: Curve | None, peaks_v: tuple[float, ...]) -> str:
 
 
 def build_context(
-    result: CellResult, verification_code: str | None = None, *, cell_certificate: str | None = None
+    result: CellResult,
+    verification_code: str | None = None,
+    *,
+    cell_certificate: str | None = None,
+    full: bool = False,
 ) -> dict[str, object]:
     """Everything the certificate template shows, already formatted as strings.
+
+    A passed cell's certificate is one page without plots; ``full`` asks for every section
+    and plot whatever the verdict (the layout a failed or held cell gets).
 
     ``cell_certificate``: the file name of the cell's own certificate, which a station
     publishes beside its records (None: no station, no cell certificate to name).
@@ -404,7 +411,7 @@ def build_context(
     metrics = result.metrics
     # A passed cell's certificate is one page: its plots are evidence for a failed or held
     # cell, so they are neither drawn nor laid out for a pass.
-    one_page = kind is VerdictKind.PASS
+    one_page = kind is VerdictKind.PASS and not full
     # a failed cell, or a held one whose record shows a hazard before it was cut short
     failed = kind is VerdictKind.FAIL or bool(result.verdict.hazards)
     cautions = [
@@ -487,9 +494,13 @@ def environment() -> jinja2.Environment:
 
 
 def render_html(
-    result: CellResult, verification_code: str | None = None, *, cell_certificate: str | None = None
+    result: CellResult,
+    verification_code: str | None = None,
+    *,
+    cell_certificate: str | None = None,
+    full: bool = False,
 ) -> str:
-    """The certificate of one judged cell as an HTML document (a str)."""
+    """The certificate of one judged cell as an HTML document (a str); ``full``: see build_context."""
     return environment().get_template(TEMPLATE_NAME).render(
-        build_context(result, verification_code, cell_certificate=cell_certificate)
+        build_context(result, verification_code, cell_certificate=cell_certificate, full=full)
     )
