@@ -145,4 +145,32 @@ def test_a_command_loads_only_its_own_family_of_commands(tmp_path: Path) -> None
     modules, run = modules_after(tmp_path, "status", "--help")
     assert run.returncode == 0, run.stderr[-3000:]
     families = loaded(modules, ("pipeline.cli",))
-    assert families == ["pipeline.cli", "pipeline.cli.exits", "pipeline.cli.main", "pipeline.cli.station"]
+    assert families == ["pipeline.cli", "pipeline.cli.exits", "pipeline.cli.main", "pipeline.cli.starting", "pipeline.cli.station"]
+
+
+def test_a_command_run_as_the_program_keeps_its_imports_out_of_the_collectors_way(tmp_path: Path) -> None:
+    # formgate's script calls main() without arguments: the process runs that one command
+    code = (
+        "import gc, sys\n"
+        "from pipeline.cli.main import main\n"
+        "code = main()\n"
+        "print('collector on:', gc.isenabled(), 'frozen:', gc.get_freeze_count() > 1000)\n"
+        "sys.exit(code)\n"
+    )
+    run = subprocess.run(
+        [sys.executable, "-c", code, "check", "--no-pdf", "--rules", str(RULES_DIR), str(good_file(tmp_path))],
+        capture_output=True, text=True, cwd=REPO, timeout=300, check=False,
+    )
+    assert run.returncode == 0, run.stderr[-3000:]
+    assert run.stdout.splitlines()[-1] == "collector on: True frozen: True"
+
+
+def test_a_command_called_from_python_leaves_the_collector_alone(tmp_path: Path) -> None:
+    import gc
+
+    from pipeline.cli.main import main
+
+    frozen = gc.get_freeze_count()
+    assert main(["check", "--no-pdf", "--rules", str(RULES_DIR), str(good_file(tmp_path))]) == 0
+    assert gc.isenabled()
+    assert gc.get_freeze_count() == frozen

@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from pipeline.cli.exits import EXIT_OK, EXIT_REJECTED, EXIT_USER
+from pipeline.cli.starting import importing
 from pipeline.errors import FormgateError
 
 if TYPE_CHECKING:
@@ -68,9 +69,10 @@ def _stage_words(result: CellResult) -> str:
 
 def cmd_check(args: argparse.Namespace) -> int:
     """Judge cycle files given on the command line."""
-    from pipeline.read.profile import load_profile
-    from pipeline.rulebook.book import load_rules_dir
-    from pipeline.runner import check_file
+    with importing():
+        from pipeline.read.profile import load_profile
+        from pipeline.rulebook.book import load_rules_dir
+        from pipeline.runner import check_file
 
     rulebook = load_rules_dir(Path(args.rules))
     profile = None

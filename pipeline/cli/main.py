@@ -21,6 +21,7 @@ from pathlib import Path
 
 from pipeline import __version__
 from pipeline.cli.exits import EXIT_BUG, EXIT_INTERRUPTED, EXIT_USER
+from pipeline.cli.starting import as_program, importing
 
 # The command families (modules of pipeline.cli), in the order `formgate --help` shows them,
 # and the family of each command.
@@ -86,14 +87,19 @@ SINGLE_THREADED_MATH = {"OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1", "MK
 
 
 def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command in ``argv``; without ``argv``, the program's own (sys.argv), as the
+    formgate script and ``python -m pipeline`` run it: then this process runs that one command."""
     for key, value in SINGLE_THREADED_MATH.items():
         os.environ.setdefault(key, value)  # before numpy is imported; a user's choice stands
+    if argv is None:
+        as_program()  # its imports may be kept out of the garbage collector's way (starting.py)
     words = sys.argv[1:] if argv is None else list(argv)
-    # the command is the first word, as the parser reads it (a word after an option such as
-    # --help is not a command: then every family is loaded, as for a mistyped command)
-    parser = build_parser(words[0] if words else None)
-    args = parser.parse_args(words)
-    from pipeline.errors import FormgateError
+    with importing():
+        # the command is the first word, as the parser reads it (a word after an option such
+        # as --help is not a command: then every family is loaded, as for a mistyped command)
+        parser = build_parser(words[0] if words else None)
+        args = parser.parse_args(words)
+        from pipeline.errors import FormgateError
 
     try:
         return int(args.func(args))

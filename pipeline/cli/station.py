@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from pipeline.cli.exits import EXIT_INTERRUPTED, EXIT_OK, EXIT_USER
+from pipeline.cli.starting import importing
 from pipeline.shipped import RULES_DIR
 
 if TYPE_CHECKING:
@@ -68,8 +69,9 @@ def cmd_watch(args: argparse.Namespace) -> int:
 
 def cmd_status(args: argparse.Namespace) -> int:
     """Print the station's queue, last cells, counts, outbox, errors and health."""
-    from pipeline.errors import SettingsError
-    from pipeline.station.status import status_text, waiting_lines
+    with importing():
+        from pipeline.errors import SettingsError
+        from pipeline.station.status import status_text, waiting_lines
 
     try:
         settings = _station_settings(args.folder)
