@@ -295,7 +295,7 @@ PATTERNS = (
     "%Y/%m/%d %H:%M:%S",
     "%d-%m-%Y %H:%M:%S.%f",
 )
-# the zones a guess tries (pipeline/read/guess_columns.py DST_ZONES), fixed offsets and UTC
+# the zones a guess tries (pipeline/read/guess_time.py DST_ZONES), fixed offsets and UTC
 ZONES = ("Europe/Berlin", "Europe/London", "America/New_York", "Australia/Sydney", "+05:45", "-03:00", "UTC")
 
 
@@ -763,7 +763,7 @@ def test_key_value_lines_without_a_prefix_are_skipped_and_named() -> None:
 def test_a_workbook_of_local_date_time_cells_without_a_zone_and_prefixed_metadata_cells() -> None:
     from openpyxl import Workbook
 
-    from pipeline.read.profile import parse_zone
+    from pipeline.read.zones import parse_zone
 
     # a record across the night the clocks go back in Europe/Berlin (02:00 to 03:00 twice),
     # written as the local wall-clock time in date-time cells, without a zone anywhere

@@ -18,14 +18,8 @@ from hypothesis import strategies as st
 from pipeline.errors import InputError, ProfileError
 from pipeline.model import CellType, SourceRef, Trace
 from pipeline.read.cyclefile import read_cycle_file
-from pipeline.read.profile import (
-    DEFAULT_PROFILE,
-    PROFILE_KEYS,
-    V1_COLUMNS,
-    Profile,
-    describe_profile_keys,
-    load_profile,
-)
+from pipeline.read.profile import DEFAULT_PROFILE, Profile, load_profile
+from pipeline.read.profile_keys import PROFILE_KEYS, V1_COLUMNS, describe_profile_keys
 from pipeline.read.validate import validate_trace
 
 HERE = Path(__file__).resolve().parent

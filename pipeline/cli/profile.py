@@ -99,7 +99,7 @@ def _read(
     from pipeline.errors import InputError
     from pipeline.read.convert import to_trace
     from pipeline.read.cyclefile import read_table
-    from pipeline.read.profile import REQUIRED_METADATA
+    from pipeline.read.profile_keys import REQUIRED_METADATA
 
     lacking: FormgateError | None = None
     try:
@@ -153,7 +153,7 @@ def _table(rows: Sequence[Sequence[str]], left: int = 1) -> list[str]:
 
 def _units(profile: Profile, quantity: str) -> str:
     """How a mapped column is read, in words."""
-    from pipeline.read.profile import ISO_8601
+    from pipeline.read.profile_keys import ISO_8601
 
     if quantity == "time":
         if profile.time_stamps == "date-time":

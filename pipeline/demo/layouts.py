@@ -42,7 +42,7 @@ from typing import Any
 import numpy as np
 
 from pipeline.model import FloatArray, IntArray, Trace
-from pipeline.read.profile import parse_zone
+from pipeline.read.zones import parse_zone
 
 DEFAULT_ZONE = "Europe/Berlin"
 # The start of a record whose metadata gives none (any instant will do: the elapsed time is

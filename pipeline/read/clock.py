@@ -29,8 +29,10 @@ import pandas as pd
 
 from pipeline.errors import InputError
 from pipeline.model import FloatArray, IntArray
-from pipeline.read.profile import ISO_8601, ZONE_HINT, Profile, parse_zone
+from pipeline.read.profile import Profile
+from pipeline.read.profile_keys import ISO_8601
 from pipeline.read.table import RawTable
+from pipeline.read.zones import ZONE_HINT, parse_zone
 
 _OFFSET_AT_END = re.compile(r"(?:[Zz]|[+-]\d{2}(?::?\d{2})?)\s*$")
 _EMPTY = ("", "nan", "NaN", "NaT", "None")

@@ -20,13 +20,8 @@ from pipeline.model import FloatArray, Note, Trace
 from pipeline.read.clock import date_time_elapsed, step_elapsed
 from pipeline.read.counters import counter_notes
 from pipeline.read.cyclenumbers import numbers, whole_numbers
-from pipeline.read.profile import (
-    CURRENT_SIGNS,
-    CURRENT_UNITS,
-    TIME_UNITS,
-    VOLTAGE_UNITS,
-    Profile,
-)
+from pipeline.read.profile import Profile
+from pipeline.read.profile_keys import CURRENT_SIGNS, CURRENT_UNITS, TIME_UNITS, VOLTAGE_UNITS
 from pipeline.read.table import RawTable
 
 

@@ -18,7 +18,8 @@ import numpy as np
 
 from pipeline.model import FloatArray, IntArray, Note, SourceRef
 from pipeline.read.cyclenumbers import numbers
-from pipeline.read.profile import CAPACITY_UNITS, ENERGY_UNITS, Profile
+from pipeline.read.profile import Profile
+from pipeline.read.profile_keys import CAPACITY_UNITS, ENERGY_UNITS
 from pipeline.read.table import RawTable
 
 # a current below this share of the record's largest counts as no current (rest)

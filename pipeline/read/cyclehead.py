@@ -21,7 +21,8 @@ from pipeline.errors import InputError
 from pipeline.model import CYCLE_FILE_STAGES, SourceRef
 from pipeline.read.bounds import MAX_METADATA_ENTRIES, check_length, fits, shown, too_long
 from pipeline.read.gunzip import CutShort, PastCap, inflated
-from pipeline.read.profile import REQUIRED_METADATA, V1_METADATA, Profile
+from pipeline.read.profile import Profile
+from pipeline.read.profile_keys import REQUIRED_METADATA, V1_METADATA
 
 GZIP_MAGIC = b"\x1f\x8b"
 CUT_SHORT_HINT = "Copy the file again once the cycler has finished writing it."

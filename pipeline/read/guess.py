@@ -39,18 +39,10 @@ from dataclasses import dataclass
 from pipeline.errors import InputError
 from pipeline.model import SourceRef
 from pipeline.read.cyclehead import CUT_SHORT_HINT, MAX_UNCOMPRESSED_BYTES, decompress, split_fields
-from pipeline.read.guess_columns import (
-    UNSURE,
-    Cells,
-    Column,
-    Decision,
-    decimal_mark,
-    guess_columns,
-    make_column,
-    most_common,
-)
+from pipeline.read.guess_cells import UNSURE, Cells, Column, Decision, decimal_mark, make_column
+from pipeline.read.guess_columns import guess_columns, most_common
 from pipeline.read.guess_write import Entry, Layout, shown, toml_string, write_profile
-from pipeline.read.profile import DELIMITERS
+from pipeline.read.profile_keys import DELIMITERS
 from pipeline.read.sniff import binary_kind
 
 # Rows looked at: all of a file up to this many, else the first half of them in a row and

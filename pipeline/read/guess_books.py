@@ -25,13 +25,8 @@ from typing import Any
 from pipeline.errors import InputError
 from pipeline.model import SourceRef
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
-from pipeline.read.guess_columns import (
-    Cells,
-    Column,
-    decimal_mark,
-    guess_columns,
-    make_column,
-)
+from pipeline.read.guess_cells import Cells, Column, decimal_mark, make_column
+from pipeline.read.guess_columns import guess_columns
 from pipeline.read.guess_write import (
     Entry,
     Layout,

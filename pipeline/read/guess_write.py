@@ -20,8 +20,8 @@ import textwrap
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
-from pipeline.read.guess_columns import UNSURE, ColumnGuess
-from pipeline.read.profile import QUANTITIES, REQUIRED_METADATA, V1_COLUMNS
+from pipeline.read.guess_cells import UNSURE, ColumnGuess
+from pipeline.read.profile_keys import QUANTITIES, REQUIRED_METADATA, V1_COLUMNS
 
 # Words of metadata keys that name what formgate needs under another name.
 _NEAR_KEYS = {

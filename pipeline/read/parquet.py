@@ -25,7 +25,8 @@ from pipeline.model import RowPlaces, SourceRef
 from pipeline.read.bounds import MAX_METADATA_ENTRIES, check_length, fits, shown, too_long
 from pipeline.read.cyclehead import CUT_SHORT_HINT, Head, collect_metadata
 from pipeline.read.cyclenumbers import find_columns
-from pipeline.read.profile import TIME_UNITS, Profile
+from pipeline.read.profile import Profile
+from pipeline.read.profile_keys import TIME_UNITS
 from pipeline.read.table import RawTable
 from pipeline.read.workbook import size_words, wrong_kind
 

@@ -6,8 +6,12 @@ commas, another text encoding, metadata taken from the file name. Reading the fi
 itself is left to ``cyclefile.read_cycle_file``; choosing a profile for a file (by a
 glob on its name) is left to the station settings.
 
-Every key a profile may hold is listed once in ``PROFILE_KEYS``; loading checks
-against that table and the documentation is generated from it.
+Every key a profile may hold is listed once in ``PROFILE_KEYS``
+(:mod:`pipeline.read.profile_keys`, with the names and units the keys choose among);
+loading checks against that table, and the documentation is generated from it. This
+module holds the Profile, loading and checking a profile's TOML (each problem located
+at its key's line), and finding that line; a zone's text is parsed by
+:mod:`pipeline.read.zones`.
 
 >>> profile = load_profile('[units]\\nvoltage = "mV"\\n', "lab.toml")
 >>> profile.voltage_unit, profile.current_unit
@@ -20,282 +24,42 @@ import datetime as dt
 import difflib
 import re
 import tomllib
-import zoneinfo
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
 from pipeline.errors import ProfileError
 from pipeline.model import SourceRef, frozen_mapping
-
-QUANTITIES: tuple[str, ...] = ("time", "voltage", "current", "temperature", "step", "cycle")
-# Columns a layout may have beyond cycle file v1, read only when the profile names them:
-# the row's mode (charge, discharge or rest) when the current is written as a magnitude, and
-# the cycler's own charge and energy counters (cross-checked against formgate's integral).
-EXTRA_QUANTITIES: tuple[str, ...] = ("mode", "capacity", "energy")
-V1_COLUMNS: Mapping[str, str] = frozen_mapping(
-    {
-        "time": "time_s",
-        "voltage": "voltage_V",
-        "current": "current_A",
-        "temperature": "temperature_C",
-        "step": "step",
-        "cycle": "cycle",
-    }
+from pipeline.read.profile_keys import (
+    CAPACITY_UNITS,
+    CURRENT_UNITS,
+    DECIMALS,
+    DEFAULT_COUNTER_TOLERANCE_PERCENT,
+    DELIMITERS,
+    ENCODINGS,
+    ENERGY_UNITS,
+    EXTRA_QUANTITIES,
+    FORMATS,
+    FROM_MODE,
+    ISO_8601,
+    KEYS_BY_TABLE,
+    MODES,
+    QUANTITIES,
+    SIGN_CHOICES,
+    TABLES,
+    TIME_KINDS,
+    TIME_UNITS,
+    V1_COLUMNS,
+    V1_METADATA,
+    VOLTAGE_UNITS,
 )
-REQUIRED_METADATA: tuple[str, ...] = ("cell_id", "lot", "cell_type")
-# ``stage``: the stage of the cell's making the file holds (model.CYCLE_FILE_STAGES); left
-# out, the file holds the whole program.
-V1_METADATA: tuple[str, ...] = (*REQUIRED_METADATA, "channel", "station", "program", "started_at", "stage")
-
-# Factors that turn file units into the v1 units (s, V, A).
-TIME_UNITS: Mapping[str, float] = frozen_mapping({"s": 1.0, "ms": 1e-3, "min": 60.0, "h": 3600.0})
-VOLTAGE_UNITS: Mapping[str, float] = frozen_mapping({"V": 1.0, "mV": 1e-3})
-CURRENT_UNITS: Mapping[str, float] = frozen_mapping({"A": 1.0, "mA": 1e-3})
-CURRENT_SIGNS: Mapping[str, float] = frozen_mapping({"charge positive": 1.0, "discharge positive": -1.0})
-FROM_MODE = "from mode"
-SIGN_CHOICES: tuple[str, ...] = (*CURRENT_SIGNS, FROM_MODE)
-# Factors that turn the cycler's counters into A·s and W·s.
-CAPACITY_UNITS: Mapping[str, float] = frozen_mapping({"Ah": 3600.0, "mAh": 3.6, "As": 1.0})
-ENERGY_UNITS: Mapping[str, float] = frozen_mapping({"Wh": 3600.0, "mWh": 3.6, "J": 1.0})
-MODES: tuple[str, ...] = ("charge", "discharge", "rest")
-FORMATS: tuple[str, ...] = ("text", "workbook", "parquet")
-# How the time column counts: seconds (or the [units] time) since the record began, a
-# date and time of day, or time since the current step began (restarting with each step).
-TIME_KINDS: tuple[str, ...] = ("elapsed", "date-time", "step elapsed")
-ISO_8601 = "ISO 8601"
-DEFAULT_COUNTER_TOLERANCE_PERCENT = 1.0
-DELIMITERS: Mapping[str, str] = frozen_mapping({"comma": ",", "semicolon": ";", "tab": "\t"})
-DECIMALS: Mapping[str, str] = frozen_mapping({"point": ".", "comma": ","})
-ENCODINGS: tuple[str, ...] = ("utf-8", "utf-8-sig", "latin-1")
-
-
-@dataclass(frozen=True, slots=True)
-class ProfileKey:
-    """One key an import profile may hold: where it goes, what it takes, what it means."""
-
-    table: str  # "" = top level
-    key: str  # "*" = any name (the [metadata] table)
-    allowed: str
-    default: str
-    meaning: str
-
-
-PROFILE_KEYS: tuple[ProfileKey, ...] = (
-    ProfileKey("", "description", "text", '""', "what the profile is for, shown in messages"),
-    ProfileKey("file", "delimiter", "comma, semicolon, tab", "comma", "what separates fields"),
-    ProfileKey("file", "decimal", "point, comma", "point", "the decimal mark in numbers"),
-    ProfileKey(
-        "file",
-        "encoding",
-        ", ".join(ENCODINGS),
-        "utf-8",
-        "text encoding; utf-8 also accepts a leading byte-order mark, utf-8-sig is the same",
-    ),
-    ProfileKey(
-        "file",
-        "format",
-        ", ".join(FORMATS),
-        "text",
-        "text: delimited text (optionally gzip-compressed); workbook: an .xlsx, .xlsm, .xls or "
-        ".ods file (see [workbook]); parquet: an Apache Parquet file, its metadata in the "
-        "file's key/value metadata",
-    ),
-    ProfileKey(
-        "file",
-        "skip_lines",
-        "whole number, 0 or more",
-        "0",
-        "lines ignored at the top (rows of the first data sheet, for a workbook)",
-    ),
-    ProfileKey(
-        "file",
-        "metadata_prefix",
-        "text",
-        '"#"',
-        "lines starting with this, before the header, hold metadata as 'key: value'",
-    ),
-    ProfileKey(
-        "file",
-        "file_name_pattern",
-        "regular expression with named groups",
-        "none",
-        "searched in the file's name; each named group becomes a metadata value "
-        "(e.g. `(?P<lot>[^_]+)_(?P<cell_id>[^_.]+)`, or `_(?P<stage>formation|grading)[.]` for "
-        "a file of one stage); a file whose name does not match is refused",
-    ),
-    *(
-        ProfileKey(
-            "columns",
-            quantity,
-            "header text",
-            f'"{V1_COLUMNS[quantity]}"',
-            f"the header of the {quantity} column",
-        )
-        for quantity in QUANTITIES
-    ),
-    ProfileKey(
-        "columns",
-        "mode",
-        "header text",
-        "none",
-        "the header of a column that says, on each row, whether the cell charges, discharges "
-        'or rests (read with current_sign = "from mode" and the [mode] table)',
-    ),
-    ProfileKey(
-        "columns",
-        "capacity",
-        "header text",
-        "none",
-        "the header of the cycler's own charge counter, cross-checked against formgate's "
-        "integral of the current (see [counters])",
-    ),
-    ProfileKey(
-        "columns",
-        "energy",
-        "header text",
-        "none",
-        "the header of the cycler's own energy counter, cross-checked against formgate's "
-        "integral of voltage times current (see [counters])",
-    ),
-    ProfileKey("units", "time", ", ".join(TIME_UNITS), "s", "unit of the time column"),
-    ProfileKey("units", "voltage", ", ".join(VOLTAGE_UNITS), "V", "unit of the voltage column"),
-    ProfileKey("units", "current", ", ".join(CURRENT_UNITS), "A", "unit of the current column"),
-    ProfileKey(
-        "units",
-        "current_sign",
-        ", ".join(SIGN_CHOICES),
-        "charge positive",
-        "which direction of current the file writes as positive; from mode: the current is a "
-        "magnitude and the [columns] mode column gives its direction (rest rows keep their "
-        "value as written)",
-    ),
-    ProfileKey("units", "capacity", ", ".join(CAPACITY_UNITS), "Ah", "unit of the capacity counter"),
-    ProfileKey("units", "energy", ", ".join(ENERGY_UNITS), "Wh", "unit of the energy counter"),
-    ProfileKey(
-        "time",
-        "stamps",
-        ", ".join(TIME_KINDS),
-        "elapsed",
-        "elapsed: time since the record began, in [units] time; date-time: a date and time of "
-        "day on each row (see date_format and zone); step elapsed: time since the current step "
-        "began, restarting with each step (needs [columns] step), in [units] time",
-    ),
-    ProfileKey(
-        "time",
-        "date_format",
-        f"{ISO_8601}, or a strftime pattern",
-        ISO_8601,
-        "how a date-time stamp is written: ISO 8601 (2024-06-02 08:26:00.00, a T or a space "
-        "between date and time, an offset such as +02:00 or Z allowed) or a pattern such as "
-        '"%d.%m.%Y %H:%M:%S" (%f for fractions of a second, %z for an offset)',
-    ),
-    ProfileKey(
-        "time",
-        "zone",
-        'UTC, a zone name such as "Europe/Berlin", or an offset such as "+02:00"',
-        "none",
-        "the zone of the cycler's clock, for stamps written without an offset; a zone name "
-        "follows its daylight-saving changes (the repeated hour in autumn is told apart by "
-        "the order of the rows)",
-    ),
-    ProfileKey(
-        "time",
-        "zone_metadata",
-        "a metadata key",
-        "none",
-        "the metadata entry that gives the zone (as zone does), for a cycler that writes its "
-        "clock's zone into each file; wins over zone",
-    ),
-    ProfileKey(
-        "mode",
-        "charge",
-        "list of texts",
-        "none",
-        'the values of the mode column that mean charging, e.g. ["C", "CCCV"]',
-    ),
-    ProfileKey(
-        "mode",
-        "discharge",
-        "list of texts",
-        "none",
-        'the values of the mode column that mean discharging, e.g. ["D"]',
-    ),
-    ProfileKey(
-        "mode",
-        "rest",
-        "list of texts",
-        "none",
-        'the values of the mode column that mean resting, e.g. ["R", "OCV"]; a value in no '
-        "list is an error naming its line",
-    ),
-    ProfileKey(
-        "counters",
-        "compare",
-        "true, false",
-        "true",
-        "compare the cycler's capacity and energy counters with formgate's integrals, step "
-        "by step; false reads the file without looking at them",
-    ),
-    ProfileKey(
-        "counters",
-        "tolerance_percent",
-        "number above 0",
-        f"{DEFAULT_COUNTER_TOLERANCE_PERCENT:g}",
-        "how far (in % of the larger) the counters' total may differ from formgate's integral "
-        "before the certificate carries a data-quality note",
-    ),
-    ProfileKey(
-        "workbook",
-        "data_sheets",
-        "a sheet name, or a pattern with * and ?",
-        "the first sheet",
-        "the sheets that hold the rows, read in the workbook's order and joined (a cycler that "
-        "writes more rows than one sheet holds continues on the next); each repeats the header "
-        "row",
-    ),
-    ProfileKey(
-        "workbook",
-        "metadata_sheet",
-        "a sheet name",
-        "none",
-        "a sheet of metadata: a key in its first column, the value in the second; without it "
-        "the rows above the first data sheet's header hold metadata in the same way",
-    ),
-    ProfileKey(
-        "metadata",
-        "*",
-        "text",
-        "none",
-        'fixed metadata for every file read with the profile, e.g. cell_type = "DEMO-LFP-20A" '
-        'or stage = "grading" (formation, grading or formation+grading; left out, a file holds '
-        "the whole program); a value in the file or its name wins over it",
-    ),
-)
-_KEYS_BY_TABLE: dict[str, tuple[str, ...]] = {}
-for _k in PROFILE_KEYS:
-    _KEYS_BY_TABLE[_k.table] = (*_KEYS_BY_TABLE.get(_k.table, ()), _k.key)
-_TABLES = tuple(t for t in _KEYS_BY_TABLE if t)
-
-
-def describe_profile_keys() -> str:
-    """Every profile key as a Markdown table, for the documentation (one row per key)."""
-    rows = ["| table | key | allowed values | default | meaning |", "|---|---|---|---|---|"]
-    for k in PROFILE_KEYS:
-        cells = (
-            f"[{k.table}]" if k.table else "(top level)",
-            "any metadata name" if k.key == "*" else f"`{k.key}`",
-            k.allowed,
-            k.default,
-            k.meaning,
-        )
-        rows.append("| " + " | ".join(c.replace("|", "\\|") for c in cells) + " |")
-    return "\n".join(rows) + "\n"
+from pipeline.read.zones import ZONE_HINT, zone_problem
 
 
 @dataclass(frozen=True, slots=True)
 class Profile:
-    """How to read one cycle-file layout (see ``PROFILE_KEYS`` for each field's meaning).
+    """How to read one cycle-file layout (see ``PROFILE_KEYS`` in :mod:`pipeline.read.profile_keys`
+    for each field's meaning).
 
     ``columns`` maps each quantity (time, voltage, ...) to its header text;
     ``metadata`` holds the fixed metadata values.
@@ -377,23 +141,23 @@ def _build(doc: dict[str, Any], text: str, name: str) -> Profile:
         return ProfileError(problem, SourceRef(name, _line_of(text, table, key)), hint)
 
     for key, value in doc.items():
-        if key in _TABLES and not isinstance(value, dict):
+        if key in TABLES and not isinstance(value, dict):
             raise fail(f"'{key}' must be a table, written [{key}]", "", key)
-        if isinstance(value, dict) and key not in _TABLES:
-            hint = _suggest(key, _TABLES, "[{}]", known=True)
+        if isinstance(value, dict) and key not in TABLES:
+            hint = _suggest(key, TABLES, "[{}]", known=True)
             raise fail(f"unknown table [{key}]", key, None, hint)
-        if not isinstance(value, dict) and key not in _KEYS_BY_TABLE[""]:
-            homes = [t for t in _TABLES if key in _KEYS_BY_TABLE[t]]
+        if not isinstance(value, dict) and key not in KEYS_BY_TABLE[""]:
+            homes = [t for t in TABLES if key in KEYS_BY_TABLE[t]]
             hint = (
                 "It belongs under " + " or ".join(f"[{t}]" for t in homes) + "."
                 if homes
-                else _suggest(key, _KEYS_BY_TABLE[""] + tuple(f"[{t}]" for t in _TABLES), known=True)
+                else _suggest(key, KEYS_BY_TABLE[""] + tuple(f"[{t}]" for t in TABLES), known=True)
             )
             raise fail(f"unknown key '{key}'", "", key, hint)
-    for table in _TABLES:
+    for table in TABLES:
         for key in doc.get(table, {}):
-            if "*" not in _KEYS_BY_TABLE[table] and key not in _KEYS_BY_TABLE[table]:
-                hint = _suggest(key, _KEYS_BY_TABLE[table], known=True)
+            if "*" not in KEYS_BY_TABLE[table] and key not in KEYS_BY_TABLE[table]:
+                hint = _suggest(key, KEYS_BY_TABLE[table], known=True)
                 raise fail(f"unknown key '{key}' in [{table}]", table, key, hint)
 
     def text_value(table: str, key: str, default: str) -> str:
@@ -604,41 +368,6 @@ def _layout(
     }
 
 
-ZONE_HINT = 'Give "UTC", a zone name such as "Europe/Berlin", or an offset such as "+02:00".'
-_OFFSET = re.compile(r"^(?:UTC)?([+-])(\d{2}):?(\d{2})$")
-
-
-def zone_problem(zone: str) -> str:
-    """Why ``zone`` is not a zone formgate can use ('' when it is one)."""
-    try:
-        parse_zone(zone)
-    except ValueError as exc:
-        return str(exc)
-    return ""
-
-
-def parse_zone(zone: str) -> dt.tzinfo:
-    """A zone as written in a profile or a file's metadata -> tzinfo; ValueError if not one.
-
-    >>> parse_zone("+02:00"), parse_zone("UTC"), str(parse_zone("Europe/Berlin"))
-    (datetime.timezone(datetime.timedelta(seconds=7200)), datetime.timezone.utc, 'Europe/Berlin')
-    """
-    text = zone.strip()
-    if text.upper() in ("UTC", "Z", "GMT"):
-        return dt.UTC
-    found = _OFFSET.match(text)
-    if found:
-        hours, minutes = int(found[2]), int(found[3])
-        if hours > 14 or minutes > 59:
-            raise ValueError("is not a UTC offset (at most +14:00 and -14:00)")
-        offset = dt.timedelta(hours=hours, minutes=minutes)
-        return dt.timezone(-offset if found[1] == "-" else offset)
-    if not text or len(text) > 64 or ".." in text or text.startswith("/"):
-        raise ValueError("is not a time zone")
-    try:
-        return zoneinfo.ZoneInfo(text)
-    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
-        raise ValueError("is not a time zone this machine knows") from None
 
 
 def _check_date_format(pattern: str, fail: _Fail) -> None:

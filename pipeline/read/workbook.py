@@ -48,7 +48,8 @@ from pipeline.model import RowPlaces, SourceRef, column_letters
 from pipeline.read.bounds import MAX_METADATA_ENTRIES, check_length, fits, shown, too_long
 from pipeline.read.cyclehead import CUT_SHORT_HINT, GZIP_MAGIC, Head, collect_metadata
 from pipeline.read.cyclenumbers import find_columns
-from pipeline.read.profile import TIME_UNITS, V1_METADATA, Profile
+from pipeline.read.profile import Profile
+from pipeline.read.profile_keys import TIME_UNITS, V1_METADATA
 from pipeline.read.sniff import binary_kind, not_text_error
 from pipeline.read.table import RawTable
 
