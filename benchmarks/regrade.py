@@ -129,7 +129,8 @@ def start_cluster(workers: int) -> tuple[Any, Any, float]:
 
 def warm(client: Any, rules: Any, items: list[Any]) -> float:
     """Judge a few files until every worker has imported the stack and parsed the rules."""
-    from pipeline.regrade.grid import judge_many, worker_state
+    from pipeline.regrade.grid import judge_many
+    from pipeline.regrade.tasks import worker_state
 
     started = time.perf_counter()
     for _ in range(20):
@@ -172,14 +173,14 @@ def noop_round_trip(client: Any, tasks: int) -> float:
 def in_process(items: list[Any], rules: Any) -> Callable[[Runs], None]:
     """A run judging ``items`` in this process, one after the other, as a warm worker does
     (the same code: the worker's task function, here with no Dask around it)."""
-    from pipeline.regrade.grid import _Batch, _File, _judge_batch
+    from pipeline.regrade.tasks import Batch, TaskFile, judge_batch
 
-    files = tuple(_File(n, i.sha256, i.name, i.path, None, None, None) for n, i in enumerate(items))
-    _judge_batch(rules, _Batch(files[:3], ANALYSED_AT, 1 << 30, None))  # stack imported, rules parsed
+    files = tuple(TaskFile(n, i.sha256, i.name, i.path, None, None, None) for n, i in enumerate(items))
+    judge_batch(rules, Batch(files[:3], ANALYSED_AT, 1 << 30, None))  # stack imported, rules parsed
 
     def run(runs: Runs) -> None:
         started = time.perf_counter()
-        done = _judge_batch(rules, _Batch(files, ANALYSED_AT, 1 << 30, None))
+        done = judge_batch(rules, Batch(files, ANALYSED_AT, 1 << 30, None))
         seconds = time.perf_counter() - started
         if not all(a.judged for a in done.answers):
             raise SystemExit("a file was not judged in this process")
@@ -217,7 +218,9 @@ ONE_A_TASK, AS_CUT = "1 file a task, 2 workers", "files cut by judge_many, 2 wor
 def measure(tmp: Path, files: int, mode: Mode, rounds: int) -> tuple[list[tuple[str, str, str]], float]:
     """Every measurement, as table rows (name, value, note); and the seconds it took."""
     from pipeline.regrade.cache import RegradeCache
-    from pipeline.regrade.grid import TASK_SECONDS, Rules, judge_many
+    from pipeline.regrade.grid import judge_many
+    from pipeline.regrade.rules_bundle import Rules
+    from pipeline.regrade.tasks import TASK_SECONDS
     from pipeline.shipped import RULES_DIR
 
     rules = Rules.read(RULES_DIR)

@@ -33,7 +33,7 @@ def _time(text: str | None, flag: str) -> datetime.datetime | None:
 def cmd_regrade(args: argparse.Namespace) -> int:
     """Regrade a station's archive (or a folder) under a rules folder."""
     from pipeline.cli.check import analysis_time
-    from pipeline.regrade.grid import Rules
+    from pipeline.regrade.rules_bundle import Rules
     from pipeline.regrade.run import Engine
 
     now = analysis_time(args.analysed_at, os.environ)
@@ -96,7 +96,8 @@ def _regrade_folder(args: argparse.Namespace, engine: Any, now: datetime.datetim
     import json
 
     from pipeline.regrade.archive import folder_inputs
-    from pipeline.regrade.grid import RegradeItem, Rules, judge_many
+    from pipeline.regrade.grid import RegradeItem, judge_many
+    from pipeline.regrade.rules_bundle import Rules
     from pipeline.writing import write_atomic
 
     if not args.out:

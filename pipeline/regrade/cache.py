@@ -4,8 +4,8 @@ continues where it stopped and never judges an input twice under the same rules.
 One row per judged input, keyed by the input's SHA-256, the rules bundle's digest and a
 *setting* digest: what else decides the result document besides the bytes and the rules
 (the name the file is judged under, its import profile, the size limits, the formgate
-version; grid.setting_digest). A row holds the result document (JSON text) or the located
-message of an "error" verdict, never both, and the time the input was judged at.
+version; rules_bundle.setting_digest). A row holds the result document (JSON text) or the
+located message of an "error" verdict, never both, and the time the input was judged at.
 
 Rows are written as results arrive, a batch in one short transaction, in WAL mode so
 that a reader (a report being built) never waits for the writer. Only judgements are

@@ -5,20 +5,10 @@ resumable, with a progress bar.
 order the cluster finishes them. Dask does all the scheduling: a ``LocalCluster`` of
 processes on this machine by default, or the cluster behind a scheduler address.
 
-The rules travel once. :class:`Rules` is a rules folder read into memory (rule files and
-``profiles/``) with a digest; it is scattered to every worker once per run, and each
-worker process parses it once per digest and keeps the rule book (``_rule_book``).
-
-A task is a batch of files (:func:`batch_size`). Dask costs a few milliseconds of a worker
-thread's time a task (scheduling, messages, results; benchmarks/regrade.py measures it), and
-judging one file takes 5-20 ms for a demo file and more for a long record, so a task of one
-file would spend a large share on Dask. A task aims at TASK_SECONDS (1 s) of judging at the
-time a file has taken so far in this run (20 files before the first task comes back), where
-Dask's share is under one percent; on a cluster of more than 200 worker threads, longer, so
-that the scheduler never has more than about TASKS_PER_S (200) tasks a second to finish.
-A task holds 500 files at most (its answers stay a few MB), and the files left are always
-cut into at least four tasks per worker thread, so that every thread has work to the end
-and the last tasks are short.
+The rules travel once: the rules bundle (:class:`~pipeline.regrade.rules_bundle.Rules`) is
+scattered to every worker once per run. A task is a batch of files, about a second of
+judging, sized and judged on a worker by :mod:`pipeline.regrade.tasks`; this module is the
+caller's side, which fills the batches, submits them and collects their answers.
 
 Where the bytes come from: by default each worker reads ``item.path`` itself (the
 archive is mounted where the workers run). With ``ship_bytes`` (or an item that carries
@@ -48,33 +38,28 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import datetime
-import gc
-import hashlib
 import logging
-import math
 import os
 import signal
 import sys
 import threading
 import time
-from collections import OrderedDict, deque
-from collections.abc import Iterable, Iterator, Mapping, Sized
+from collections import deque
+from collections.abc import Iterable, Iterator, Sized
 from dataclasses import dataclass, field
-from pathlib import Path, PurePath
+from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from pipeline import __version__
-from pipeline.errors import FormgateError, InputError, ProfileError, RulesError
+from pipeline.errors import FormgateError, InputError
 from pipeline.model import SourceRef
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.limits import TextLimits
 from pipeline.regrade.cache import CachedResult, CacheKey, RegradeCache
+from pipeline.regrade.rules_bundle import Rules, setting_digest
+from pipeline.regrade.tasks import Batch, Done, TaskFile, batch_size, judge_batch
 
 if TYPE_CHECKING:
     from distributed import Client
-
-    from pipeline.read.profile import Profile
-    from pipeline.rulebook.book import RuleBook
 
 log = logging.getLogger("formgate.regrade")
 
@@ -89,11 +74,7 @@ def _distributed() -> Any:
 
     return distributed
 
-TASK_SECONDS = 1.0  # the judging a task aims at: Dask's few ms a task are well under 1 % of it
-TASKS_PER_S = 200  # and longer on a large cluster, so that its scheduler sees at most this many
-FIRST_FILES_PER_TASK = 20  # before a task has come back to measure a file by: 0.1-2 s at 5-100 ms
-MAX_FILES_PER_TASK = 500  # a task's answers (about 9 kB of JSON a file) stay a few MB
-TASKS_PER_THREAD = 4  # the files left make this many tasks a worker thread at least: a short tail
+
 SHIP_BYTES_PER_TASK = 64 * 2**20  # shipped bytes in one task, at most (once a file's size is known)
 IN_FLIGHT_PER_THREAD = 2  # tasks submitted and not yet collected, per worker thread
 SHIP_BYTES_IN_FLIGHT = 256 * 2**20  # shipped bytes submitted and not yet collected, at most
@@ -177,346 +158,6 @@ class RunStats:
     judging_s: float = 0.0
     task_s: float = 0.0
     cancelled_tasks: int = 0  # tasks cancelled when the run stopped early
-
-
-# ---------------------------------------------------------------------------------------------
-# The rules bundle
-
-
-@dataclass(frozen=True, slots=True)
-class Rules:
-    """A rules folder read into memory: ``files`` holds (name, text) of every rule file
-    (``*.toml``) and import profile (``profiles/*.toml``), sorted by name; ``digest`` is the
-    SHA-256 over the names and texts. ``folder`` is the folder's name as given, for messages.
-
-    A judgement depends on the whole bundle (the rule book picks a rule set by cell type,
-    a profile reads the file), so the digest covers all of it: an edit to any file is a
-    new regrade key.
-    """
-
-    folder: str
-    files: tuple[tuple[str, str], ...]
-    digest: str
-
-    @classmethod
-    def read(cls, folder: str | os.PathLike[str]) -> Rules:
-        """Read and check a rules folder. Raises RulesError or ProfileError for a file that is
-        not valid (the first problem, located), as loading the folder for a station would."""
-        root = Path(folder)
-        if not root.is_dir():
-            raise RulesError(
-                "rule folder not found",
-                SourceRef(str(root)),
-                hint="Create it, or give the folder that holds the rule files.",
-            )
-        paths = sorted(p for p in root.glob("*.toml") if p.is_file())
-        paths += sorted(p for p in root.glob("profiles/*.toml") if p.is_file())
-        texts = {}
-        for path in paths:
-            relative = path.relative_to(root).as_posix()
-            texts[relative] = _utf8(path, relative)
-        return cls.from_texts(texts, folder=str(root))
-
-    @classmethod
-    def from_texts(cls, texts: Mapping[str, str], *, folder: str = "rules") -> Rules:
-        """A bundle of texts already in hand (for instance the rule files a ledger keeps):
-        rule files by bare file name, import profiles as ``profiles/<name>``. Checked as
-        :meth:`read` checks a folder."""
-        for name in texts:
-            parts = PurePath(name).parts
-            if not name.endswith(".toml") or not (
-                len(parts) == 1 or (len(parts) == 2 and parts[0] == "profiles")
-            ):
-                raise ValueError(f"{name}: a rules bundle holds *.toml and profiles/*.toml only")
-        files = tuple(sorted(texts.items()))
-        digest = hashlib.sha256()
-        for name, text in files:
-            for part in (name.encode("utf-8"), text.encode("utf-8")):
-                digest.update(len(part).to_bytes(8, "big"))
-                digest.update(part)
-        bundle = cls(folder, files, digest.hexdigest())
-        if not bundle.rule_files:
-            raise RulesError(
-                "no rule files (*.toml) in this folder",
-                SourceRef(folder),
-                hint="Add at least one rule file; docs/rules.md describes them.",
-            )
-        bundle.rulebook()  # raises the first problem
-        from pipeline.read.profile import load_profile
-
-        for name, text in bundle.profile_files.items():
-            load_profile(text, bundle.source(name))
-        return bundle
-
-    @property
-    def rule_files(self) -> dict[str, str]:
-        """The rule files, name -> text, in name order."""
-        return {name: text for name, text in self.files if "/" not in name}
-
-    @property
-    def profile_files(self) -> dict[str, str]:
-        """The import profiles, ``profiles/<name>`` -> text."""
-        return {name: text for name, text in self.files if name.startswith("profiles/")}
-
-    def source(self, name: str) -> str:
-        """How a file of the bundle is named in messages: as loading the folder names it."""
-        return str(PurePath(self.folder) / name)
-
-    def rulebook(self) -> RuleBook:
-        """Parse the rule files into a RuleBook, as ``load_rules_dir`` loads the folder."""
-        from pipeline.rulebook.book import RuleBook, load_rule_set
-
-        return RuleBook(
-            tuple(load_rule_set(text, self.source(name)) for name, text in self.rule_files.items())
-        )
-
-    def profile_text(self, profile_name: str) -> str | None:
-        """The text of the bundle's import profile of that file name, or None."""
-        return dict(self.files).get(f"profiles/{PurePath(profile_name).name}")
-
-
-def _utf8(path: Path, relative: str) -> str:
-    data = path.read_bytes()
-    try:
-        return data.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        line = data[: exc.start].count(b"\n") + 1
-        column = exc.start - data.rfind(b"\n", 0, exc.start)  # in bytes, 1-based
-        kind = ProfileError if relative.startswith("profiles/") else RulesError
-        raise kind(
-            "not UTF-8 text", SourceRef(str(path), line, column), "Save the file with UTF-8 encoding."
-        ) from None
-
-
-def setting_digest(
-    name: str,
-    profile_name: str | None,
-    profile_text: str | None,
-    max_uncompressed_bytes: int,
-    limits: TextLimits | None,
-) -> str:
-    """SHA-256 of what decides a result besides the bytes and the rules: the name the file is
-    judged under, its import profile, the size limits and the formgate version."""
-    parts = [
-        name,
-        profile_name or "",
-        profile_text if profile_text is not None else "\0none",
-        str(max_uncompressed_bytes),
-        repr(limits),
-        __version__,
-    ]
-    digest = hashlib.sha256()
-    for part in parts:
-        data = part.encode("utf-8")
-        digest.update(len(data).to_bytes(8, "big"))
-        digest.update(data)
-    return digest.hexdigest()
-
-
-def batch_size(files_left: int | None, threads: int, seconds_per_file: float | None = None) -> int:
-    """Files for the next task: enough judging at the ``seconds_per_file`` measured so far
-    (FIRST_FILES_PER_TASK before any) for TASK_SECONDS, or for ``threads / TASKS_PER_S``
-    seconds when that is longer (a cluster of 512 threads: 2.6 s); MAX_FILES_PER_TASK at most;
-    and no more than leaves TASKS_PER_THREAD tasks per worker thread for the files left (when
-    known), so that every thread keeps working and the last tasks are short; one at least.
-
-    >>> batch_size(None, 512), batch_size(10**7, 64, 0.020), batch_size(10**7, 512, 0.020)
-    (20, 50, 128)
-    >>> batch_size(10**7, 512, 0.002), batch_size(2000, 2, 0.005), batch_size(30, 2), batch_size(3, 8, 0.01)
-    (500, 200, 4, 1)
-    """
-    size = float(FIRST_FILES_PER_TASK)
-    if seconds_per_file is not None:
-        task_s = max(TASK_SECONDS, threads / TASKS_PER_S)
-        size = min(MAX_FILES_PER_TASK, task_s / max(seconds_per_file, 1e-6))
-    if files_left is not None:
-        size = min(size, math.ceil(files_left / (max(threads, 1) * TASKS_PER_THREAD)))
-    return max(1, int(size))
-
-
-# ---------------------------------------------------------------------------------------------
-# The worker side: runs in the Dask worker processes
-
-
-@dataclass(frozen=True, slots=True)
-class _File:
-    """One file of a task; ``data`` None: the worker reads ``path``."""
-
-    index: int
-    sha256: str
-    name: str
-    path: str | None
-    data: bytes | None = field(repr=False)
-    profile_name: str | None
-    profile_text: str | None = field(repr=False)
-    analysed_at: datetime.datetime | None = None
-
-
-@dataclass(frozen=True, slots=True)
-class _Batch:
-    files: tuple[_File, ...]
-    analysed_at: datetime.datetime
-    max_uncompressed_bytes: int
-    limits: TextLimits | None
-
-
-@dataclass(frozen=True, slots=True)
-class _Answer:
-    index: int
-    result_json: str | None
-    error: str | None
-    judged: bool
-    seconds: float
-
-
-@dataclass(frozen=True, slots=True)
-class _Done:
-    answers: tuple[_Answer, ...]
-    seconds: float  # the whole task on its worker
-    pid: int
-
-
-_lock = threading.Lock()
-_stack_ready = False
-_books: OrderedDict[str, RuleBook] = OrderedDict()  # rules digest -> parsed rule book
-_profiles: OrderedDict[tuple[str, str], Profile] = OrderedDict()
-_counts = {"rules_parsed": 0, "files_judged": 0, "tasks": 0}
-_KEEP_BOOKS, _KEEP_PROFILES = 4, 64
-
-
-def worker_state() -> dict[str, int]:
-    """This worker process's counts (rule books parsed, files judged, tasks run); for
-    ``Client.run``."""
-    with _lock:
-        return {**_counts, "stack_ready": int(_stack_ready), "pid": os.getpid()}
-
-
-def _prepare_stack() -> None:
-    """Import the judging stack once per process, then take its long-lived objects out of the
-    garbage collector's sight (as a station's worker does, pipeline.station.worker)."""
-    global _stack_ready
-    if _stack_ready:
-        return
-    import pipeline.judge.evaluate
-    import pipeline.judge.metrics
-    import pipeline.judge.segmentation
-    import pipeline.read.profile
-    import pipeline.report.result
-    import pipeline.runner  # noqa: F401
-
-    gc.collect()
-    gc.freeze()
-    _stack_ready = True
-
-
-def _rule_book(rules: Rules) -> RuleBook:
-    """The rule book of a bundle, parsed once per worker process and digest."""
-    book = _books.get(rules.digest)
-    if book is None:
-        book = rules.rulebook()
-        _books[rules.digest] = book
-        _counts["rules_parsed"] += 1
-        while len(_books) > _KEEP_BOOKS:
-            _books.popitem(last=False)
-    return book
-
-
-def _profile(name: str | None, text: str) -> Profile:
-    from pipeline.read.profile import load_profile
-
-    key = (name or "", hashlib.sha256(text.encode("utf-8")).hexdigest())
-    with _lock:
-        found = _profiles.get(key)
-    if found is None:
-        found = load_profile(text, name or "import profile")  # raises ProfileError
-        with _lock:
-            _profiles[key] = found
-            while len(_profiles) > _KEEP_PROFILES:
-                _profiles.popitem(last=False)
-    return found
-
-
-def _judge_batch(rules: Rules, batch: _Batch) -> _Done:
-    """A task: judge every file of the batch; never raises for one file's sake."""
-    started = time.perf_counter()
-    with _lock:
-        _prepare_stack()
-        book = _rule_book(rules)
-        _counts["tasks"] += 1
-    answers = []
-    for file in batch.files:
-        begun = time.perf_counter()
-        result_json, error, judged = _judge_file(book, file, batch)
-        answers.append(_Answer(file.index, result_json, error, judged, time.perf_counter() - begun))
-    with _lock:
-        _counts["files_judged"] += len(batch.files)
-    return _Done(tuple(answers), time.perf_counter() - started, os.getpid())
-
-
-def _judge_file(book: RuleBook, file: _File, batch: _Batch) -> tuple[str | None, str | None, bool]:
-    """(result document, None, True), (None, error verdict, True), or (None, why not judged, False)."""
-    from pipeline.read.limits import check_text
-    from pipeline.read.readings import looks_like_readings
-    from pipeline.report.result import to_json
-    from pipeline.runner import judge
-
-    where = SourceRef(file.name)
-    if file.data is not None:
-        data = file.data
-    else:
-        assert file.path is not None
-        try:
-            data = Path(file.path).read_bytes()
-        except OSError as exc:
-            unreadable = InputError(
-                f"the archived copy cannot be read ({exc.strerror or exc}); it was not judged",
-                where,
-                "Let the workers read the archive (or ship the bytes), then regrade it again.",
-            )
-            return None, str(unreadable), False
-    digest = hashlib.sha256(data).hexdigest()
-    if digest != file.sha256:
-        changed = InputError(
-            f"the archived copy has changed: its SHA-256 is {digest[:16]}..., the input recorded "
-            f"had {file.sha256[:16]}...; it was not judged",
-            where,
-            "Restore the archived copy from a backup; a regrade judges only the recorded bytes.",
-        )
-        return None, str(changed), False
-    try:
-        profile = None if file.profile_text is None else _profile(file.profile_name, file.profile_text)
-        # a workbook's or Parquet file's lines mean nothing: its reader bounds what it unpacks
-        if batch.limits is not None and (profile is None or profile.file_format == "text"):
-            check_text(data, file.name, batch.limits)
-        if looks_like_readings(data):
-            raise InputError(
-                "an OCV reading file, not a cycle file: a regrade judges cycle files",
-                where,
-                "Leave reading files out of a regrade; their cells' aging stage is judged with "
-                "the cells' cycle files.",
-            )
-        result = judge(
-            data,
-            file.name,
-            book,
-            analysed_at=file.analysed_at or batch.analysed_at,
-            profile=profile,
-            max_uncompressed_bytes=batch.max_uncompressed_bytes,
-            input_sha256=digest,
-        )
-        return to_json(result), None, True
-    except FormgateError as exc:
-        return None, str(exc), True
-    except MemoryError:
-        short = f"{file.name}: judging the file needs more memory than the worker has; it was not judged."
-        return None, short, False
-    except Exception as exc:
-        log.exception("%s: internal error while judging", file.name)
-        bug = (
-            f"{file.name}: formgate could not judge this file because of an internal error "
-            f"({type(exc).__name__}: {exc}); it was not judged.\n  Please report it."
-        )
-        return None, bug, False
 
 
 # ---------------------------------------------------------------------------------------------
@@ -800,7 +441,7 @@ class _Run:
         self.ready.append(Judged(item.key, item.sha256, self.rules.digest, None, error, judged=False))
 
     def _submit(self) -> None:
-        files: list[_File] = []
+        files: list[TaskFile] = []
         groups: list[list[RegradeItem]] = []
         keys: list[CacheKey] = []
         shipped = 0
@@ -821,7 +462,7 @@ class _Run:
                     continue
             shipped += len(data) if data is not None else 0
             files.append(
-                _File(len(files), item.sha256, item.name, item.path, data, item.profile_name,
+                TaskFile(len(files), item.sha256, item.name, item.path, data, item.profile_name,
                       item.profile_text, item.analysed_at)
             )
             groups.append(self.waiting[key])
@@ -829,15 +470,15 @@ class _Run:
         self.open = []
         if not files:
             return
-        batch = _Batch(tuple(files), self.analysed_at, self.max_uncompressed_bytes, self.limits)
+        batch = Batch(tuple(files), self.analysed_at, self.max_uncompressed_bytes, self.limits)
         shipment = None
         if shipped:
             # scattered as data, not put into the task graph: Dask warns about (and the
             # scheduler would hold) a graph of many megabytes
             shipment = self.client.scatter(batch, hash=False)
-            future = self.client.submit(_judge_batch, self.rules_future, shipment, pure=False)
+            future = self.client.submit(judge_batch, self.rules_future, shipment, pure=False)
         else:
-            future = self.client.submit(_judge_batch, self.rules_future, batch, pure=False)
+            future = self.client.submit(judge_batch, self.rules_future, batch, pure=False)
         self.flights[future.key] = (future, _Flight(groups, keys, shipment, shipped))
         self.shipped_in_flight += shipped
         self.done.add(future)
@@ -864,7 +505,7 @@ class _Run:
         """Keep and queue the answers of a finished task."""
         flight = self._land(future)
         if future.status == "finished":
-            done: _Done = future.result()
+            done: Done = future.result()
             self._keep(flight, done)
             answers = {a.index: a for a in done.answers}
             for index, group in enumerate(flight.groups):
@@ -886,7 +527,7 @@ class _Run:
                     self.ready.append(Judged(item.key, item.sha256, self.rules.digest, None, failed, False))
         future.release()
 
-    def _keep(self, flight: _Flight, done: _Done) -> None:
+    def _keep(self, flight: _Flight, done: Done) -> None:
         self.stats.tasks_done += 1
         self.stats.files_judged += len(done.answers)
         self.stats.judging_s += sum(a.seconds for a in done.answers)

@@ -39,7 +39,8 @@ from pipeline.ledger.rows import CheckRowData
 from pipeline.names import cell_file_stem, safe_name
 from pipeline.regrade.archive import Archived, Selection, select_inputs
 from pipeline.regrade.changes import CellChange, LotChanges, Standing, lot_changes
-from pipeline.regrade.grid import Judged, RegradeItem, Rules, RunStats, judge_many
+from pipeline.regrade.grid import Judged, RegradeItem, RunStats, judge_many
+from pipeline.regrade.rules_bundle import Rules
 from pipeline.report.regradereport import (
     ChangedCell,
     CheckLine,
