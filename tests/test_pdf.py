@@ -549,3 +549,22 @@ def test_prepare_renders_a_page_in_the_certificate_font_and_its_plot_labels() ->
     fonts = reader.pages[0]["/Resources"]["/Font"]
     assert {str(f.get_object()["/BaseFont"]).split("+")[-1] for f in fonts.values()} == {"Certificate-Sans"}
     pdf.prepare()  # and it runs again without harm
+
+
+@pytest.mark.parametrize("make", [cases.pass_result, cases.fail_result, cases.hold_result], ids=["pass", "fail", "hold"])
+def test_nothing_on_a_page_reaches_past_its_margins(hazards: types.ModuleType, make: types.FunctionType) -> None:
+    """Every box of the certificate's body lies within the page's content area (A4 less margins)."""
+    document = pdf.lay_out(render_html(make()))
+    for number, page in enumerate(document.pages, start=1):
+        page_box = page._page_box
+        left = page_box.content_box_x()
+        right = left + page_box.width
+        body = page_box.children[0]  # the html element; the other children are margin boxes
+        for box in body.descendants():
+            if box.width is None or not box.element_tag:
+                continue
+            far = box.position_x + box.margin_width()
+            assert left - 0.01 <= box.position_x and far <= right + 0.01, (
+                f"page {number}: <{box.element_tag} class={box.element.get('class')}> "
+                f"runs {far - right:.1f} px past the right margin"
+            )
