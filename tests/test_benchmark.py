@@ -33,6 +33,8 @@ def test_smoke_run_of_the_benchmark_prints_every_part_of_its_table(tmp_path: Pat
         "failed_and_held",
         "peak RSS per worker",
         "RSS over 200 cells",
+        "formgate check --no-pdf, start to exit",
+        "formgate status, imports",
     ):
         assert part in run.stdout, part
     assert (REPO / "docs" / "performance.md").read_bytes() == before  # a smoke run writes nothing
