@@ -175,7 +175,11 @@ def parse_rows(
     rows = len(frame) if plain else data.count(b"\n", start, end) + 1
     if len(frame) != rows:
         raise _diagnose(_region(data, start, end), head, name, profile, "rows and header disagree")
-    short = np.flatnonzero(frame[expected - 1].isna().to_numpy())
+    last = frame[expected - 1]
+    if last.dtype == np.float64:  # numbers: an empty field is NaN (pandas' isna, without its overhead)
+        short = np.flatnonzero(np.isnan(last.to_numpy()))
+    else:
+        short = np.flatnonzero(last.isna().to_numpy())
     if short.size:
         lines = _region(data, start, end).split("\n")
         for row in short.tolist():
