@@ -802,12 +802,12 @@ def measure_rss(mode: Mode, tmp: Path, pool: list[tuple[Path, bool]]) -> dict[st
 # A command starts in a fresh process every time, and pays for every module it imports.
 # Targets: a one-file `formgate check --no-pdf` from start to exit in at most this fraction
 # of what it took before the command line imported only what it uses (BEFORE_CHECK_START_S:
-# the median of 21 runs of that check of the same invented file at commit 492d5e0, taking
+# the median of 15 runs of that check of the same invented file at commit 492d5e0, taking
 # turns with the code that met the target, on the benchmark's machine at a load average of
-# about 2.5; the old code cannot be run in the same benchmark, so this one figure is not
-# from the same run), and `formgate status` importing its modules in at most
+# about 1; the old code cannot be run in the same benchmark, so this one figure is not from
+# the same run), and `formgate status` importing its modules in at most
 # TARGET_STATUS_IMPORT_S.
-BEFORE_CHECK_START_S = 1.05
+BEFORE_CHECK_START_S = 0.99
 TARGET_CHECK_START_FRACTION = 0.4
 TARGET_STATUS_IMPORT_S = 0.3
 STATUS_CELLS = 3  # cells the station of the status rows has judged, the last one failed
