@@ -173,4 +173,6 @@ def test_a_command_called_from_python_leaves_the_collector_alone(tmp_path: Path)
     frozen = gc.get_freeze_count()
     assert main(["check", "--no-pdf", "--rules", str(RULES_DIR), str(good_file(tmp_path))]) == 0
     assert gc.isenabled()
-    assert gc.get_freeze_count() == frozen
+    # nothing frozen by the command (a freeze moves some 100,000 objects); a frozen object
+    # that is freed meanwhile leaves the count, so it may only go down
+    assert gc.get_freeze_count() <= frozen

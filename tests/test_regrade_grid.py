@@ -503,3 +503,19 @@ def _living_in_group(group: int) -> list[int]:
         except (ProcessLookupError, psutil.Error):
             continue
     return living
+
+
+def test_only_the_event_loops_record_of_an_interrupted_wait_is_left_out_of_the_log() -> None:
+    import logging
+
+    from pipeline.regrade.grid import _InterruptedWait
+
+    def record(message: str) -> logging.LogRecord:
+        return logging.LogRecord("tornado.application", logging.ERROR, __file__, 1, message, None, None)
+
+    keep = _InterruptedWait()
+    assert not keep.filter(record(
+        "Exception in callback functools.partial(<function sync.<locals>.cancel at 0x7f>)"
+    ))
+    assert keep.filter(record("Exception in callback functools.partial(<function other at 0x7f>)"))
+    assert keep.filter(record("Uncaught exception GET /status"))

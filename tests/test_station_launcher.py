@@ -141,7 +141,9 @@ def test_a_launcher_that_runs_but_cannot_start_workers_is_replaced_and_each_task
         got: list[tuple[InputRow, Output]] = []
         for row, task in tasks:
             pool.submit(row, task)
-        assert pool.restarts == 1 and pool.pool is None, "retired at once; the next starts at collect"
+        # on a busy machine the first worker may not have started before the launcher's
+        # address went: the first replacement then meets the same fault, and a second one runs
+        assert 1 <= pool.restarts <= 2 and pool.pool is None, "retired at once; the next starts at collect"
         _drain(pool, got)
         _judged_once(got, range(1, 4))
         assert _launcher_pid() not in (None, first), "a new launcher"
@@ -226,7 +228,9 @@ def test_a_pool_whose_manager_thread_ended_is_replaced_and_its_tasks_judged_once
         thread = executor._executor_manager_thread  # type: ignore[attr-defined]
         assert thread is None or not thread.is_alive()
         assert "its manager thread ended (a worker could not be started)" in caplog.text
-        assert pool.restarts == 1
+        # on a busy machine the first worker may not have started before the launcher's
+        # address went: the first replacement then meets the same fault, and a second one runs
+        assert 1 <= pool.restarts <= 2
     finally:
         pool.shutdown()
 

@@ -268,6 +268,7 @@ class _Run:
     def answers(self, items: Iterable[RegradeItem]) -> Iterator[Judged]:
         total = len(items) if isinstance(items, Sized) else None
         with contextlib.ExitStack() as stack:
+            stack.enter_context(_quiet_interrupted_waits())
             self.cache = self._open_cache(stack)
             self.bar = stack.enter_context(self._bar(total))
             self.client = self._connect(stack)
@@ -587,6 +588,27 @@ class _Run:
                     flight.shipment.release()
                 future.release()
             self.flights.clear()
+
+
+class _InterruptedWait(logging.Filter):
+    """Drops the one log record Dask's event loop writes when a Ctrl-C interrupts a call that
+    waits on it: the loop's callback that would cancel the wait finds no future yet, fails
+    with a NameError and logs its traceback, though nothing is wrong (the run stops as it
+    should). Every other record passes."""
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        text = record.getMessage()
+        return not ("Exception in callback" in text and "sync.<locals>.cancel" in text)
+
+
+@contextlib.contextmanager
+def _quiet_interrupted_waits() -> Iterator[None]:
+    """The event loop's log leaves out :class:`_InterruptedWait`'s record from the first run
+    on (the loop's thread may log it a moment after the run has stopped, so it stays)."""
+    logger = logging.getLogger("tornado.application")
+    if not any(isinstance(f, _InterruptedWait) for f in logger.filters):
+        logger.addFilter(_InterruptedWait())
+    yield
 
 
 @contextlib.contextmanager
