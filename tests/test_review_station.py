@@ -307,7 +307,9 @@ def test_a_review_beside_a_running_station_and_a_decision_that_is_behind(
         drop(s.inboxes[0].folder, "f1.csv", cycle_file("F-1", capacity_ah=1.5))
         drop(s.inboxes[0].folder, "h1.csv", cycle_file("H-1", capacity_ah=1.86, seed=1))
         wait_until(lambda: settled(s, 2), what="the files")
-        wait_until(lambda: len(_decisions(s, "H-1")) == 1, what="H-1 decided")
+        # both cells decided (a file is settled a moment before its cell's decision is recorded)
+        wait_until(lambda: len(_decisions(s, "H-1")) == 1 and len(_decisions(s, "F-1")) == 1,
+                   what="F-1 and H-1 decided")
         report = status_text(s, datetime.datetime.now(datetime.UTC))
         assert "waiting for a person: 2 cell(s), the oldest for " in report
         assert "formgate review list shows them" in report
