@@ -123,6 +123,8 @@ def test_any_metadata_key_longer_than_the_limit_is_refused_at_its_line(text: str
 def test_any_column_name_longer_than_the_limit_is_refused_at_its_column(text: str, column: int) -> None:
     name = longer_than_the_limit(text.replace(",", ";").replace('"', "'"))
     assume(name.strip() == name)
+    # a header line that starts with the metadata prefix is a comment line (cycle file v1)
+    assume(not (column == 0 and name.startswith("#")))
     fields = ["time_s", "voltage_V", "current_A"]
     fields.insert(column, name)
     data = cycle_text(base_metadata(), ",".join(fields)).replace(b"\n0,", b"\n1,0,")
