@@ -29,6 +29,7 @@ import pandas as pd
 
 from pipeline.errors import InputError
 from pipeline.model import FloatArray, IntArray
+from pipeline.read.bounds import shown_value
 from pipeline.read.profile import Profile
 from pipeline.read.profile_keys import ISO_8601
 from pipeline.read.table import RawTable
@@ -91,7 +92,7 @@ def date_time_elapsed(table: RawTable, index: int, profile: Profile) -> tuple[Fl
         if bad.size:
             row = int(bad[0])
             raise InputError(
-                f"{header} is '{_shown(str(text.iloc[row]))}', not a date and time "
+                f"{header} is '{shown_value(str(text.iloc[row]))}', not a date and time "
                 f"written as {_format_words(profile)}",
                 table.at(row, index),
                 f"Check the [time] date_format of the import profile {profile.name}, or fix the stamp.",
@@ -136,7 +137,7 @@ def _zone(table: RawTable, profile: Profile) -> dt.tzinfo:
             except ValueError as exc:
                 line = table.head.metadata_lines.get(profile.zone_metadata)
                 raise InputError(
-                    f"metadata {profile.zone_metadata} is '{_shown(written)}', which {exc}",
+                    f"metadata {profile.zone_metadata} is '{shown_value(written)}', which {exc}",
                     table.head.ref(table.name, line),
                     ZONE_HINT,
                 ) from None
@@ -251,17 +252,11 @@ def _refuse_backwards(
             "that the file is one run of one channel."
         )
     raise InputError(
-        f"the clock goes back {_seconds(-int(steps[k]))}, from {_shown(str(raw.iloc[before]))} "
-        f"on {_place(table, before)} to {_shown(str(raw.iloc[after]))}",
+        f"the clock goes back {_seconds(-int(steps[k]))}, from {shown_value(str(raw.iloc[before]))} "
+        f"on {table.place(before)} to {shown_value(str(raw.iloc[after]))}",
         table.at(after, index),
         hint,
     )
-
-
-def _place(table: RawTable, row: int) -> str:
-    if table.places is not None:
-        return table.places.label(row)
-    return f"line {table.first_data_line + row}"
 
 
 def _seconds(nanos: int) -> str:
@@ -273,8 +268,3 @@ def _seconds(nanos: int) -> str:
 
 def _format_words(profile: Profile) -> str:
     return ISO_8601 if profile.date_format == ISO_8601 else f'"{profile.date_format}"'
-
-
-def _shown(text: str) -> str:
-    text = text if len(text) <= 40 else text[:37] + "..."
-    return text if text.isprintable() else text.encode("unicode_escape").decode("ascii")

@@ -17,6 +17,7 @@ import numpy as np
 
 from pipeline.errors import InputError
 from pipeline.model import FloatArray, Note, Trace
+from pipeline.read.bounds import shown_value
 from pipeline.read.clock import date_time_elapsed, step_elapsed
 from pipeline.read.counters import counter_notes
 from pipeline.read.cyclenumbers import numbers, whole_numbers
@@ -98,7 +99,7 @@ def mode_kinds(table: RawTable, profile: Profile) -> np.ndarray:
         if kind is None:
             row = int(np.flatnonzero(values == value)[0])
             listed = ", ".join(f"'{v}' ({k})" for v, k in profile.modes.items())
-            shown = value if len(value) <= 40 else value[:37] + "..."
+            shown = shown_value(value)
             raise InputError(
                 f"{table.header(index)} is '{shown}', not a mode the import profile lists",
                 table.at(row, index),

@@ -39,7 +39,7 @@ def counter_notes(
 
     ``modes`` is each row's mode (charge, discharge, rest) where the file has a mode column.
     """
-    same_step = _same_step(current_a, step, modes)
+    pairs = same_step(current_a, step, modes)
     dt = np.diff(time_s)
     amps = np.abs(current_a)
     watts = np.abs(current_a * voltage_v)
@@ -51,7 +51,7 @@ def counter_notes(
         if counter not in table.columns:
             continue
         values = numbers(table, table.columns[counter], profile, units[unit])
-        theirs, ours = compare_totals(values, integrand, dt, same_step)
+        theirs, ours = compare_totals(values, integrand, dt, pairs)
         if theirs is None or ours is None:
             continue
         larger = max(abs(theirs), abs(ours))
@@ -75,7 +75,7 @@ def counter_notes(
 
 
 def compare_totals(
-    counter: FloatArray, integrand: FloatArray, dt: FloatArray, same_step: np.ndarray
+    counter: FloatArray, integrand: FloatArray, dt: FloatArray, pairs: np.ndarray
 ) -> tuple[float | None, float | None]:
     """(the counter's total change, the trapezoid integral) over the pairs within a step.
 
@@ -83,7 +83,7 @@ def compare_totals(
     >>> compare_totals(np.array([0.0, 2, 4, 6]), i, np.diff(t), np.array([True, True, True]))
     (6.0, 6.0)
     """
-    pair = same_step & np.isfinite(dt) & np.isfinite(counter[1:]) & np.isfinite(counter[:-1])
+    pair = pairs & np.isfinite(dt) & np.isfinite(counter[1:]) & np.isfinite(counter[:-1])
     pair &= np.isfinite(integrand[1:]) & np.isfinite(integrand[:-1])
     if not pair.any():
         return None, None
@@ -92,7 +92,12 @@ def compare_totals(
     return theirs, ours
 
 
-def _same_step(current_a: FloatArray, step: IntArray | None, modes: np.ndarray | None) -> np.ndarray:
+def same_step(
+    current_a: FloatArray, step: IntArray | FloatArray | None, modes: np.ndarray | None = None
+) -> np.ndarray:
+    """For each pair of neighbouring rows, whether both are in one step: by the step numbers,
+    else the modes, else the direction of the current (a hundredth of its largest value
+    counts as none). Profile guessing asks the same of a file it has not read yet."""
     if step is not None:
         return np.asarray(step[1:] == step[:-1])
     if modes is not None:

@@ -24,6 +24,7 @@ import pandas as pd
 
 from pipeline.errors import InputError
 from pipeline.model import FloatArray, IntArray, SourceRef
+from pipeline.read.bounds import shown_value
 from pipeline.read.cyclehead import CUT_SHORT_HINT, Head, split_fields
 from pipeline.read.profile import Profile
 from pipeline.read.table import RawTable
@@ -307,8 +308,7 @@ def numbers(table: RawTable, index: int, profile: Profile, factor: float) -> Flo
 def _not_a_number(
     cell: str, row: int, index: int, table: RawTable, profile: Profile
 ) -> InputError:
-    shown = cell if len(cell) <= 40 else cell[:37] + "..."
-    shown = shown if shown.isprintable() else shown.encode("unicode_escape").decode("ascii")
+    shown = shown_value(cell)
     hint = "Fix the value, or leave it empty if it is missing."
     other = "." if profile.decimal == "," else ","
     if _number_pattern(other).fullmatch(cell):

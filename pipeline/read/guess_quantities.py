@@ -21,6 +21,7 @@ import math
 import numpy as np
 
 from pipeline.model import FloatArray
+from pipeline.read.counters import compare_totals, same_step
 from pipeline.read.guess_cells import (
     NAT,
     UNSURE,
@@ -306,13 +307,13 @@ def decide_counters(
         if time_s is not None and current is not None and (role == "capacity" or volts is not None):
             n = min(contiguous, len(time_s))
             step = roles.get("step")
-            same = _usual_pairs(time_s[:n], _same_step(step, current, n))
+            numbers = None if step is None else step.numbers
+            same = _usual_pairs(time_s[:n], same_step(current[:n], None if numbers is None else numbers[:n]))
             integrand = np.abs(current[:n])
             if role == "energy" and volts is not None:
                 integrand = integrand * np.abs(volts[:n])
-            ours = _integral(integrand, time_s[:n], same)
-            theirs_raw = _total_change(column.numbers[:n], same)
-            if ours > 0 and theirs_raw > 0:
+            theirs_raw, ours = compare_totals(column.numbers[:n], integrand, np.diff(time_s[:n]), same)
+            if ours is not None and theirs_raw is not None and ours > 0 and theirs_raw > 0:
                 ratio = {unit: theirs_raw * factor / ours for unit, factor in units.items()}
         if column.unit and column.unit[0] == role:
             unit = column.unit[1]
@@ -375,17 +376,6 @@ def _volts(guess: ColumnGuess, roles: dict[str, Column]) -> FloatArray | None:
     return column.numbers * VOLTAGE_UNITS[guess.units["voltage"].value]
 
 
-def _same_step(step: Column | None, current: FloatArray, n: int) -> np.ndarray:
-    if step is not None and step.numbers is not None:
-        numbers = step.numbers[:n]
-        return np.asarray(numbers[1:] == numbers[:-1])
-    finite = np.abs(current[:n][np.isfinite(current[:n])])
-    band = 0.01 * (float(finite.max()) if finite.size else 0.0)
-    part = current[:n]
-    direction = np.where(part > band, 1, np.where(part < -band, -1, 0))
-    return np.asarray(direction[1:] == direction[:-1])
-
-
 def _usual_pairs(time_s: FloatArray, same: np.ndarray) -> np.ndarray:
     """Pairs of rows within a step and at most ten sampling intervals apart.
 
@@ -397,13 +387,3 @@ def _usual_pairs(time_s: FloatArray, same: np.ndarray) -> np.ndarray:
     positive = dt_s[finite & (dt_s > 0)]
     usual = 10 * float(np.median(positive)) if positive.size else np.inf
     return np.asarray(same & finite & (dt_s <= usual))
-
-
-def _integral(integrand: FloatArray, time_s: FloatArray, pairs: np.ndarray) -> float:
-    pair = pairs & np.isfinite(integrand[1:]) & np.isfinite(integrand[:-1])
-    return float((0.5 * (integrand[1:] + integrand[:-1]) * np.diff(time_s))[pair].sum())
-
-
-def _total_change(counter: FloatArray, pairs: np.ndarray) -> float:
-    pair = pairs & np.isfinite(counter[1:]) & np.isfinite(counter[:-1])
-    return float(np.abs(np.diff(counter))[pair].sum())

@@ -42,6 +42,13 @@ class RawTable:
             return self.places.at(row, column)
         return SourceRef(self.name, self.head.header_line + 1 + row, column)
 
+    def place(self, row: int) -> str:
+        """Data row ``row`` as a reader finds it: 'line 12', or 'row 12 of sheet ...'
+        (as :meth:`pipeline.model.Trace.place` words it once the record is read)."""
+        if self.places is not None:
+            return self.places.label(row)
+        return f"line {self.first_data_line + row}"
+
     def header(self, index: int) -> str:
         return self.head.fields[index]
 
