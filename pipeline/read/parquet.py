@@ -27,6 +27,7 @@ from pipeline.read.cyclehead import CUT_SHORT_HINT, Head, collect_metadata
 from pipeline.read.cyclenumbers import find_columns
 from pipeline.read.profile import Profile
 from pipeline.read.profile_keys import TIME_UNITS
+from pipeline.read.sniff import PARQUET_MAGIC
 from pipeline.read.table import RawTable
 from pipeline.read.workbook import size_words, wrong_kind
 
@@ -49,7 +50,7 @@ def read_parquet_table(data: bytes, name: str, profile: Profile, max_uncompresse
     refused = wrong_kind(data, name, profile, "Parquet file")
     if refused is not None:
         raise refused
-    if not data.endswith(b"PAR1") or len(data) < 12:
+    if not data.endswith(PARQUET_MAGIC) or len(data) < 12:
         raise InputError(
             "the Parquet file is cut short: it does not end with its footer",
             SourceRef(name),

@@ -18,19 +18,21 @@ from pipeline.errors import InputError
 from pipeline.model import SourceRef
 from pipeline.read.profile import Profile
 
-_OLE = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"  # a compound file: .xls, or any encrypted workbook
-_ZIP = b"PK\x03\x04"
+# The signatures a file starts with (the station's settle hand-over looks for them too)
+COMPOUND_MAGIC = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"  # a compound file: .xls, or an encrypted workbook
+ZIP_MAGIC = b"PK\x03\x04"  # a zip archive's first local file header: .xlsx, .xlsm, .ods
+PARQUET_MAGIC = b"PAR1"  # an Apache Parquet file starts and ends with it
 
 
 def binary_kind(data: bytes) -> str | None:
     """'workbook (.xlsx)' and the like for a workbook, 'Parquet file', or None for anything else."""
-    if data.startswith(b"PAR1"):
+    if data.startswith(PARQUET_MAGIC):
         return "Parquet file"
-    if data.startswith(_OLE):
+    if data.startswith(COMPOUND_MAGIC):
         if b"E\x00n\x00c\x00r\x00y\x00p\x00t\x00e\x00d\x00P\x00a\x00c\x00k\x00a\x00g\x00e" in data:
             return "password-protected workbook"
         return "workbook (.xls)"
-    if data.startswith(_ZIP):
+    if data.startswith(ZIP_MAGIC):
         try:
             with zipfile.ZipFile(io.BytesIO(data)) as archive:
                 names = set(archive.namelist())

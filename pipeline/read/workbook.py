@@ -50,7 +50,7 @@ from pipeline.read.cyclehead import CUT_SHORT_HINT, GZIP_MAGIC, Head, collect_me
 from pipeline.read.cyclenumbers import find_columns
 from pipeline.read.profile import Profile
 from pipeline.read.profile_keys import TIME_UNITS, V1_METADATA
-from pipeline.read.sniff import binary_kind, not_text_error
+from pipeline.read.sniff import PARQUET_MAGIC, ZIP_MAGIC, binary_kind, not_text_error
 from pipeline.read.table import RawTable
 
 # A cell as the readers give it: float, int, str, bool, a date, time, date-time or duration;
@@ -85,7 +85,7 @@ def wrong_kind(data: bytes, name: str, profile: Profile, wanted: str) -> InputEr
         return not_text_error(kind, name, profile)
     if wanted == "workbook" and kind is not None and kind != "Parquet file":
         return None
-    if wanted == "Parquet file" and data.startswith(b"PAR1"):
+    if wanted == "Parquet file" and data.startswith(PARQUET_MAGIC):
         return None
     if kind is not None:
         other = "parquet" if kind == "Parquet file" else "workbook"
@@ -293,7 +293,7 @@ def _unpacked_size(view: memoryview, part: zipfile.ZipInfo, name: str, room: int
     """What the part unpacks to, counted block by block and given up past ``room`` bytes."""
     start = part.header_offset
     header = bytes(view[start : start + 30])
-    if len(header) < 30 or header[:4] != b"PK\x03\x04":
+    if len(header) < 30 or header[:4] != ZIP_MAGIC:
         raise _damaged(name, f"the part {part.filename} is not where the package says")
     start += 30 + int.from_bytes(header[26:28], "little") + int.from_bytes(header[28:30], "little")
     if part.compress_type == zipfile.ZIP_STORED:

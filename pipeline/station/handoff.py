@@ -24,14 +24,14 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from typing import BinaryIO
 
+from pipeline.read.cyclehead import GZIP_MAGIC
+from pipeline.read.sniff import COMPOUND_MAGIC, PARQUET_MAGIC, ZIP_MAGIC
+
 TEMPORARY_SUFFIXES = (".tmp", ".part")
 # an office program's lock file beside a workbook it has open (~$book.xlsx)
 LOCK_FILE_PREFIX = "~$"
-_ZIP_MAGIC = b"PK\x03\x04"
 _ZIP_END = b"PK\x05\x06"
 _ZIP_TAIL = 22 + 65535  # the end record and the longest archive comment
-_COMPOUND_MAGIC = b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"
-_PARQUET_MAGIC = b"PAR1"
 MODES = ("rename", "marker", "settle")
 
 
@@ -120,9 +120,6 @@ def decide(
     return Decision(tuple(ready), tuple(waiting), tuple(orphans), tuple(ignored), seen)
 
 
-GZIP_MAGIC = b"\x1f\x8b"
-
-
 def _gzip_complete(chunks: Iterable[bytes]) -> bool:
     """True if the gzip stream fed in ``chunks`` reaches its end (output is thrown away)."""
     d = zlib.decompressobj(wbits=31)
@@ -167,7 +164,7 @@ def file_looks_complete(fh: BinaryIO) -> bool:
     size = fh.seek(0, 2)
     if size == 0:
         return False
-    if head.startswith(_ZIP_MAGIC):
+    if head.startswith(ZIP_MAGIC):
         fh.seek(max(0, size - _ZIP_TAIL))
         tail = fh.read(_ZIP_TAIL)
         end = tail.rfind(_ZIP_END)
@@ -176,10 +173,10 @@ def file_looks_complete(fh: BinaryIO) -> bool:
                 return True
             end = tail.rfind(_ZIP_END, 0, end)
         return False
-    if head.startswith(_COMPOUND_MAGIC):
+    if head.startswith(COMPOUND_MAGIC):
         return size % 512 == 0
-    if head.startswith(_PARQUET_MAGIC):
+    if head.startswith(PARQUET_MAGIC):
         fh.seek(size - 4)
-        return size >= 12 and fh.read(4) == _PARQUET_MAGIC
+        return size >= 12 and fh.read(4) == PARQUET_MAGIC
     fh.seek(-1, 2)
     return fh.read(1) == b"\n"
