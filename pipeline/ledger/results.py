@@ -10,6 +10,7 @@ from __future__ import annotations
 import datetime
 import json
 from collections.abc import Sequence
+from dataclasses import dataclass
 
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.inputs import input_or_fail
@@ -22,6 +23,21 @@ from pipeline.ledger.rows import (
     result_row,
     utc_text,
 )
+
+# Of an input judged again by a regrade, only its latest judgement counts.
+_LATEST_OF_INPUT = (
+    "NOT EXISTS (SELECT 1 FROM results n WHERE n.input_id = r.input_id AND n.id > r.id)"
+)
+
+
+@dataclass(frozen=True, slots=True)
+class Counting:
+    """A record that counts today, with where its input's bytes are kept."""
+
+    result: ResultRow
+    name: str
+    sha256: str
+    final_path: str
 
 
 class Results:
@@ -193,14 +209,36 @@ class Results:
         regrade, only its latest judgement."""
         sql = (
             "SELECT r.* FROM results r JOIN inputs i ON i.id = r.input_id "
-            "WHERE r.lot = ? AND i.state IN ('published', 'archived') "
-            "AND NOT EXISTS (SELECT 1 FROM results n WHERE n.input_id = r.input_id AND n.id > r.id)"
+            f"WHERE r.lot = ? AND i.state IN ('published', 'archived') AND {_LATEST_OF_INPUT}"
         )
         params: tuple[str, ...] = (lot,)
         if cell_id is not None:
             sql, params = sql + " AND r.cell_id = ?", (lot, cell_id)
         rows = self.db.rows(sql + " ORDER BY r.analysed_at, r.id", params)
         return [result_row(r) for r in rows]
+
+    def counting(
+        self, *, lots: Sequence[str] = (), cells: Sequence[str] = (), verdicts: Sequence[str] = ()
+    ) -> list[Counting]:
+        """Every record that counts today (the latest judgement of each published or archived
+        input that was not refused), of these lots, cells and verdicts (all when empty), by
+        analysis time: what a regrade judges again."""
+        sql = (
+            "SELECT r.*, i.name AS input_name, i.sha256 AS input_sha256, i.final_path "
+            "FROM results r JOIN inputs i ON i.id = r.input_id "
+            f"WHERE i.state IN {PUBLISHED} AND r.verdict <> 'error' AND i.final_path IS NOT NULL "
+            f"AND {_LATEST_OF_INPUT}"
+        )
+        params: list[str] = []
+        for column, values in (("r.lot", lots), ("r.cell_id", cells), ("r.verdict", verdicts)):
+            if values:
+                sql += f" AND {column} IN ({', '.join('?' * len(values))})"
+                params += list(values)
+        rows = self.db.rows(sql + " ORDER BY r.analysed_at, r.id", tuple(params))
+        return [
+            Counting(result_row(r), str(r["input_name"]), str(r["input_sha256"]), str(r["final_path"]))
+            for r in rows
+        ]
 
     def rule_sets(self) -> list[tuple[str, str, str]]:
         """(name, revision, SHA-256) of every rule set a recorded result names, by name."""

@@ -16,7 +16,6 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.ledger.ledger import Ledger
-from pipeline.ledger.rows import PUBLISHED, parse_time, result_row
 from pipeline.station.settings import Settings
 
 
@@ -69,48 +68,30 @@ class Archived:
 
 
 def select_inputs(ledger: Ledger, settings: Settings, selection: Selection) -> list[Archived]:
-    """The station's current records that the selection takes, oldest first."""
-    sql = (
-        "SELECT r.*, i.name AS input_name, i.sha256 AS input_sha256, i.final_path "
-        "FROM results r JOIN inputs i ON i.id = r.input_id "
-        f"WHERE i.state IN {PUBLISHED} AND r.verdict <> 'error' "
-        "AND NOT EXISTS (SELECT 1 FROM results n WHERE n.input_id = r.input_id AND n.id > r.id)"
-    )
-    params: list[object] = []
-    for column, values in (("r.lot", selection.lots), ("r.cell_id", selection.cells),
-                           ("r.verdict", selection.verdicts)):
-        if values:
-            sql += f" AND {column} IN ({', '.join('?' * len(values))})"
-            params += list(values)
-    rows = ledger.db.rows(sql + " ORDER BY r.analysed_at, r.id", tuple(params))
+    """The station's records that count today and that the selection takes, oldest first.
+
+    A record judged again by a regrade keeps the time its input was first analysed, so
+    ``since`` and ``until`` read the same times whatever was regraded.
+    """
     out = []
-    for row in rows:
-        result = result_row(row)
-        first = _first_analysed(ledger, result.input_id) or result.analysed_at
-        if selection.since and first < selection.since:
+    for c in ledger.results.counting(
+        lots=selection.lots, cells=selection.cells, verdicts=selection.verdicts
+    ):
+        result = c.result
+        if selection.since and result.analysed_at < selection.since:
             continue
-        if selection.until and first >= selection.until:
+        if selection.until and result.analysed_at >= selection.until:
             continue
         if selection.rule_sets and not any(
             _names_rule_set(want, result.rule_set_name, result.rule_set_revision)
             for want in selection.rule_sets
         ):
             continue
-        if not row["final_path"]:
-            continue
         out.append(Archived(
-            result.input_id, result.lot, result.cell_id, str(row["input_name"]),
-            str(row["input_sha256"]), Path(str(row["final_path"])), first,
-            profile_for(settings, str(row["input_name"])), result.result_json,
+            result.input_id, result.lot, result.cell_id, c.name, c.sha256, Path(c.final_path),
+            result.analysed_at, profile_for(settings, c.name), result.result_json,
         ))
     return out
-
-
-def _first_analysed(ledger: Ledger, input_id: int) -> datetime.datetime | None:
-    row = ledger.db.one(
-        "SELECT analysed_at FROM results WHERE input_id = ? AND regrade_id IS NULL", (input_id,)
-    )
-    return None if row is None else parse_time(row["analysed_at"])
 
 
 def _names_rule_set(want: str, name: str, revision: str) -> bool:
