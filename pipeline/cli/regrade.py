@@ -65,14 +65,9 @@ def cmd_regrade(args: argparse.Namespace) -> int:
     print(f"{outcome.inputs} input(s) judged again under {rules.folder} "
           f"(SHA-256 {rules.digest[:12]}...): {stats.files_judged} on the cluster, "
           f"{stats.from_cache} kept from an earlier run")
-    changes = outcome.changes
-    from pipeline.report.regradereport import ChangedCell, counts
-
-    tally = counts([ChangedCell(c.lot, c.cell_id, c.old.verdict, c.new.verdict, "", "", (),
-                                None, None, c.reviewed, ()) for c in changes])
-    if not changes:
+    if not outcome.changes:
         print("no cell changes")
-    for change, n in tally:
+    for change, n in outcome.counts:
         print(f"  {change}: {n}")
     for lot in outcome.lots:
         if lot.problem:

@@ -55,7 +55,6 @@ def read_table(
 ) -> RawTable:
     """The file's raw columns, read by the reader of its layout (before units and signs)."""
     profile = profile or DEFAULT_PROFILE
-    kind = binary_kind(data)
     if profile.file_format == "workbook":
         from pipeline.read.workbook import read_workbook_table
 
@@ -64,11 +63,13 @@ def read_table(
         from pipeline.read.parquet import read_parquet_table
 
         return read_parquet_table(data, name, profile, max_uncompressed_bytes)
+    kind = binary_kind(data)
     if kind is not None:
         raise not_text_error(kind, name, profile)
     raw = decompress(data, name, max_uncompressed_bytes)
-    if raw is not data and binary_kind(raw) is not None:
-        raise not_text_error(binary_kind(raw) or "", name, profile)
+    inner = None if raw is data else binary_kind(raw)  # a workbook inside gzip
+    if inner is not None:
+        raise not_text_error(inner, name, profile)
     head, data_bytes, start = split_head(raw, name, profile)
     metadata = collect_metadata(head, name, profile)
     columns = find_columns(head, name, profile)

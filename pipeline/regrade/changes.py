@@ -16,7 +16,7 @@ the reason and leaves its cell as it was.
 from __future__ import annotations
 
 import re
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -249,12 +249,3 @@ def _decide(
             stages.files,
         )
     return out
-
-
-def counts(changes: Iterable[CellChange]) -> dict[str, int]:
-    """How many cells change in each way ('pass → fail': 3, ...), reviewed ones apart."""
-    out: dict[str, int] = {}
-    for c in changes:
-        key = c.kind + (" (left for a new review)" if c.reviewed else "")
-        out[key] = out.get(key, 0) + 1
-    return dict(sorted(out.items()))

@@ -78,6 +78,7 @@ class Outcome:
     regrade_id: int | None
     applied: int  # cells whose change was recorded
     stats: RunStats = field(default_factory=RunStats)
+    counts: tuple[tuple[str, int], ...] = ()  # (change, cells), as the report counts them
 
     @property
     def changes(self) -> tuple[CellChange, ...]:
@@ -134,7 +135,7 @@ def regrade_station(
     for lot in sorted(by_lot):
         lots.append(_lot_changes(ledger, lot, new_docs, refused, rulebook))
     rule_sets = _rule_sets(rulebook)
-    data = _report_input(settings, lots, rules, rule_sets, selection, len(items), now,
+    data = _report_input(settings, lots, rulebook, rules.digest, selection, len(items), now,
                          applied=False, regrade_id=None, run_by=run_by, reason=reason)
     regrade_id = None
     applied = 0
@@ -144,7 +145,7 @@ def regrade_station(
         regrade_id = row.id
         _keep_rule_texts(ledger, rules, now)
         applied = _apply(settings, ledger, rulebook, lots, items, new_docs, new_texts, row.id, now)
-        data = _report_input(settings, lots, rules, rule_sets, selection, len(items), now,
+        data = _report_input(settings, lots, rulebook, rules.digest, selection, len(items), now,
                              applied=True, regrade_id=row.id, run_by=run_by, reason=reason)
     stamp = now.astimezone(datetime.UTC).strftime("%Y%m%dT%H%M%SZ")
     target = out or folder
@@ -156,7 +157,8 @@ def regrade_station(
         ledger.regrades.finish(regrade_id, dict(counts(data.changed)), now)
         if mail and settings.routing.digests_to:
             _queue_summary(settings, ledger, data, regrade_id, pdf_path, now)
-    return Outcome(tuple(lots), len(items), pdf_path, csv_path, regrade_id, applied, stats)
+    return Outcome(tuple(lots), len(items), pdf_path, csv_path, regrade_id, applied, stats,
+                   tuple(counts(data.changed)))
 
 
 def _judge(
@@ -221,8 +223,8 @@ def _rule_sets(rulebook: Any) -> list[tuple[str, str, str]]:
 def _report_input(
     settings: Settings,
     lots: Sequence[LotChanges],
-    rules: Rules,
-    rule_sets: Sequence[tuple[str, str, str]],
+    rulebook: Any,
+    rules_digest: str,
     selection: Selection,
     inputs: int,
     now: datetime.datetime,
@@ -244,11 +246,11 @@ def _report_input(
     )
     refused = tuple((r.lot, r.file_name, r.reason) for lot in lots for r in lot.refused)
     refused += tuple((lot.lot, "(the whole lot)", lot.problem) for lot in lots if lot.problem)
-    families = {r.family for r in Rules.rulebook(rules).rule_sets}
+    families = {r.family for r in rulebook.rule_sets}
     return RegradeReportInput(
         station=settings.station_name, run_by=run_by or os.environ.get("USER", "") or "-",
         reason=reason or "dry run", selection=selection.words(), started_at=now, applied=applied,
-        regrade_id=regrade_id, rule_sets=tuple(rule_sets), rules_digest=rules.digest,
+        regrade_id=regrade_id, rule_sets=tuple(_rule_sets(rulebook)), rules_digest=rules_digest,
         inputs=inputs, cells=sum(lot.cells for lot in lots), changed=changed, refused=refused,
         family=families.pop() if len(families) == 1 else None,
     )
