@@ -362,7 +362,7 @@ def _noisy_counted_file(rows_kept: int | None = None) -> bytes:
     amps = np.asarray(true.current_a)
     direction = np.sign(np.where(np.abs(amps) < 1e-9, 0.0, amps))
     step = np.concatenate(([1], 1 + np.cumsum(direction[1:] != direction[:-1]))).astype(np.int64)
-    volts, noisy, temps = add_channel_errors(
+    volts, noisy, _ = add_channel_errors(
         np.asarray(true.voltage_v), amps, np.asarray(true.temperature_c), step,
         Channel.for_cell(2.0), np.random.default_rng(7),
     )
