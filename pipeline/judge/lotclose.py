@@ -218,6 +218,34 @@ def cell_stages(
     return CellStages(tuple(records), values, tuple(files), max(times) if times else None)
 
 
+@dataclass(frozen=True, slots=True)
+class CellNow:
+    """A cell as its records stand: its rule set and type, its records that count, its stages."""
+
+    rule_set: RuleSet
+    cell_type: CellType
+    stages: CellStages
+    needed: tuple[str, ...]
+
+
+def cell_now(
+    documents: Sequence[Mapping[str, Any]],
+    readings: Sequence[tuple[str, str, Reading]],
+    rulebook: RuleBook,
+) -> CellNow | None:
+    """One cell's records that count, as a station decides it: its rule set from the cell type
+    its latest record (or reading) names; None when none names one yet. ``documents`` are the
+    cell's result documents (not refused), ``readings`` (file name, SHA-256, reading)."""
+    types = [str(d["cell_type"]["name"]) for d in documents] + [
+        r.cell_type for _, _, r in readings if r.cell_type
+    ]
+    if not types:
+        return None
+    rule_set, cell_type = rulebook.for_cell_type(types[-1])
+    stages = cell_stages(documents, readings, rule_set, cell_type)
+    return CellNow(rule_set, cell_type, stages, tuple(cell_type.stages or rule_set.stages))
+
+
 def close_lot(
     lot: str,
     documents: Sequence[Mapping[str, Any]],

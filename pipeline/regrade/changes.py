@@ -22,7 +22,7 @@ from typing import Any
 
 from pipeline.errors import FormgateError
 from pipeline.judge.cellverdict import decide
-from pipeline.judge.lotclose import cell_stages, close_lot
+from pipeline.judge.lotclose import cell_now, close_lot
 from pipeline.judge.review import Reviewed
 from pipeline.read.readings import Reading, ReadingFile
 from pipeline.rulebook.book import RuleBook
@@ -234,18 +234,12 @@ def _decide(
         read_by_cell.setdefault(item[2].cell_id, []).append(item)
     out = {}
     for cell_id in sorted(set(by_cell) | set(read_by_cell)):
-        cell_docs = by_cell.get(cell_id, [])
-        cell_readings = read_by_cell.get(cell_id, [])
-        types = [str(d["cell_type"]["name"]) for d in cell_docs] + [
-            r.cell_type for _, _, r in cell_readings if r.cell_type
-        ]
-        if not types:
+        cell = cell_now(by_cell.get(cell_id, []), read_by_cell.get(cell_id, []), rulebook)
+        if cell is None:
             continue
-        rule_set, cell_type = rulebook.for_cell_type(types[-1])
-        stages = cell_stages(cell_docs, cell_readings, rule_set, cell_type)
-        decision = decide(cell_type.stages or rule_set.stages, stages.records)
+        decision = decide(cell.needed, cell.stages.records)
         out[cell_id] = (
             Standing(decision.verdict, decision.reason, decision.hazards, None, "regrade"),
-            stages.files,
+            cell.stages.files,
         )
     return out

@@ -19,21 +19,19 @@ A cell held only while it waits for a stage gets no letter: that is the normal c
 from __future__ import annotations
 
 import datetime
-import json
 import logging
 import threading
 from collections.abc import Callable, Iterable, Sequence
 
 from pipeline.errors import FormgateError
 from pipeline.judge.cellverdict import CellDecision, decide
-from pipeline.judge.lotclose import cell_stages
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow
 from pipeline.mail.cell_letters import decision_letter, superseded_letter
 from pipeline.mail.letters import Letter
 from pipeline.model import WAITING_FOR_STAGE, only_waiting
 from pipeline.station.digests import cell_certificate_link
-from pipeline.station.reviewing import review_stands
+from pipeline.station.reviewing import cell_now, review_stands
 from pipeline.station.rules_in_force import RulesInForce
 from pipeline.station.settings import Settings
 
@@ -135,20 +133,12 @@ class CellDecisions:
         rulebook = self.rules.rulebook
         if rulebook is None:
             return None
-        results = self.ledger.results.of_cell(lot, cell_id)
-        docs = [json.loads(r.result_json) for r in results if r.verdict != "error"]
-        readings = [
-            (s.file_name, s.file_sha256, s.reading) for s in self.ledger.readings.of(lot, cell_id)
-        ]
-        types = [str(d["cell_type"]["name"]) for d in docs] + [
-            r.cell_type for _, _, r in readings if r.cell_type
-        ]
-        if not types:
+        cell = cell_now(self.ledger, rulebook, lot, cell_id)
+        if cell is None:
             log.warning("cell %s of lot %s names no cell type yet; not decided", cell_id, lot)
             return None
-        rule_set, cell_type = rulebook.for_cell_type(types[-1])
-        stages = cell_stages(docs, readings, rule_set, cell_type)
-        decision = decide(cell_type.stages or rule_set.stages, stages.records)
+        rule_set, stages = cell.rule_set, cell.stages
+        decision = decide(cell.needed, stages.records)
         now = self.clock()
 
         def letters(before: DecisionRow | None) -> list[Letter]:

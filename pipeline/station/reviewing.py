@@ -19,44 +19,27 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 from pipeline.errors import FormgateError
-from pipeline.judge.lotclose import CellStages, cell_stages
+from pipeline.judge.lotclose import CellNow, CellStages
+from pipeline.judge.lotclose import cell_now as cell_as_it_stands
 from pipeline.judge.lotstats import GradeClass, grade_of
 from pipeline.judge.review import Asked, Decided, Reviewed, ReviewRefused, check, given, stands
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow, ReviewRow
 from pipeline.mail.letters import Letter, alert_letter
 from pipeline.mail.review_letters import ReviewFacts, review_letter
-from pipeline.model import CellType, RuleSet
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
 
 
-@dataclass(frozen=True, slots=True)
-class CellNow:
-    """A cell as its records stand now: its rule set and type, its records that count, its stages."""
-
-    rule_set: RuleSet
-    cell_type: CellType
-    stages: CellStages
-    needed: tuple[str, ...]
-
-
 def cell_now(ledger: Ledger, rulebook: RuleBook, lot: str, cell_id: str) -> CellNow | None:
-    """The cell's records that count, as the station decides it (station/cells.py); None when
-    no record names its cell type yet."""
+    """The cell's records that count, as the station decides it (station/cells.py), from the
+    ledger; None when no record names its cell type yet."""
     docs = [json.loads(r.result_json) for r in ledger.results.of_cell(lot, cell_id)
             if r.verdict != "error"]
     readings = [(s.file_name, s.file_sha256, s.reading) for s in ledger.readings.of(lot, cell_id)]
-    types = [str(d["cell_type"]["name"]) for d in docs] + [
-        r.cell_type for _, _, r in readings if r.cell_type
-    ]
-    if not types:
-        return None
-    rule_set, cell_type = rulebook.for_cell_type(types[-1])
-    stages = cell_stages(docs, readings, rule_set, cell_type)
-    return CellNow(rule_set, cell_type, stages, tuple(cell_type.stages or rule_set.stages))
+    return cell_as_it_stands(docs, readings, rulebook)
 
 
 def basis_of(files: Sequence[tuple[str, str, str]]) -> list[str]:
