@@ -63,8 +63,8 @@ def fits(text: str, limit: int = MAX_TEXT_BYTES) -> bool:
 def shown_value(text: str) -> str:
     """A field's value as a message shows it: at most 40 characters, control characters escaped.
 
-    >>> shown_value("x" * 50), shown_value("a\tb")
-    ('xxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxx...', 'a\\tb')
+    >>> shown_value("x" * 50), shown_value("a\\tb")
+    ('xxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxxx...', 'a\\\\tb')
     """
     text = text if len(text) <= 40 else text[:37] + "..."
     return text if text.isprintable() else text.encode("unicode_escape").decode("ascii")
