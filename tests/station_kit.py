@@ -237,6 +237,8 @@ def settled(settings: Settings, expected: int) -> bool:
     with Ledger(settings.ledger) as ledger:
         if ledger.inputs.in_state("claimed", "judged", "published"):
             return False
+        if ledger.certificates.backlog().waiting:
+            return False  # a verdict is out, its certificate still to render
         finals = ledger.inputs.in_state("archived", "quarantined", "duplicate")
         return len([r for r in finals if r.final_path]) >= expected
 

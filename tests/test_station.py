@@ -298,13 +298,14 @@ def test_oversized_and_decompression_bomb_files_are_quarantined_and_the_station_
 
 
 def test_a_cell_that_takes_too_long_is_stopped_and_quarantined(tmp_path: Path) -> None:
-    s = make_station(tmp_path / "st", station_toml(extra="task_timeout_s = 0.05\n"))
+    s = make_station(tmp_path / "st", station_toml(extra="task_timeout_s = 0.002\n"))
     with running(s):
-        drop(s.inboxes[0].folder, "slow.csv", cycle_file("TO-1", dt_s=5.0))
+        # a fine record (some 40,000 rows): reading and judging it take well over 2 ms
+        drop(s.inboxes[0].folder, "slow.csv", cycle_file("TO-1", dt_s=1.0))
         wait_until(lambda: settled(s, 1), what="timed-out file final")
     reason = next(s.quarantine.glob("*.reason.txt")).read_text()
     assert (
-        "judging took longer than task_timeout_s = 0.05 s, on each of 2 tries; the file was not judged."
+        "judging took longer than task_timeout_s = 0.002 s, on each of 2 tries; the file was not judged."
         in reason
     )
 

@@ -172,8 +172,8 @@ def test_a_station_killed_twice_with_one_input_in_hand_quarantines_it_as_crashin
     s = make_station(tmp_path / "st")
     inbox = s.inboxes[0].folder
     (inbox / "crash.csv").write_bytes(cycle_file("CR-1", capacity_ah=1.5))
-    for _ in range(2):  # dies while writing the certificate, the first time and on recovery
-        proc = start_watch(s.root, {"FORMGATE_FAULT": "mid_render"})
+    for _ in range(2):  # dies while publishing its result, the first time and on recovery
+        proc = start_watch(s.root, {"FORMGATE_FAULT": "after_write"})
         try:
             proc.wait(120)
         finally:
@@ -191,8 +191,13 @@ def test_a_station_killed_twice_with_one_input_in_hand_quarantines_it_as_crashin
         assert stop_watch(again) == 0
     reason = next(s.quarantine.glob("*crash.csv.reason.txt")).read_text()
     assert "it crashed the judge: the station process ended 2 times while recording this file" in reason
-    with contextlib.suppress(StopIteration):
-        next(s.certificates.rglob("CR-1.pdf"))  # may exist: the render itself was complete
+    # its result was recorded before the deaths, its certificate promised: given up, not lost
+    with Ledger(s.ledger) as ledger:
+        (row,) = [r for r in ledger.inputs.in_state("quarantined") if r.name == "crash.csv"]
+        result = ledger.results.of_input(row.id)
+        assert result is not None
+        assert ledger.certificates.outcome(result.id)[0] == "failed"
+    assert not any(s.certificates.rglob("CR-1.pdf"))
 
 
 def test_an_entry_that_cannot_be_moved_is_tried_once_until_it_changes(

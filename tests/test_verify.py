@@ -35,6 +35,7 @@ from pipeline.report.verification import parse_code, spaced, verification_code
 from pipeline.rulebook.book import load_rules_dir
 from pipeline.station.lots import close_and_report
 from pipeline.station.settings import Settings, read_settings
+from pipeline.writing import TEMP_SUFFIX
 from tests.golden import cases
 from tests.station_kit import (
     REPO,
@@ -354,10 +355,11 @@ def test_a_crash_between_writing_and_recording_is_recorded_by_the_restart(tmp_pa
         stop_watch(proc)
     assert proc.returncode == -9, "the station did not reach the fault point"
     json_path, pdf_path = s.results / "LOT-A" / "CR-1.json", s.certificates / "LOT-A" / "CR-1.pdf"
-    assert json_path.exists() and pdf_path.exists()
+    assert json_path.exists() and not pdf_path.exists()  # its certificate is rendered later
     with Ledger(s.ledger) as ledger:
         assert ledger.published.every() == []  # written, not yet recorded
         assert [r.state for r in ledger.inputs.in_state("judged")] == ["judged"]
+        assert ledger.certificates.backlog().waiting == 1  # promised in the same transaction
     again = start_watch(s.root)
     try:
         wait_until(lambda: settled(s, 1), timeout_s=120, what="recovery after the write")
@@ -374,6 +376,37 @@ def test_a_crash_between_writing_and_recording_is_recorded_by_the_restart(tmp_pa
         assert {r.result_id for r in record} == {ledger.results.of_cell("LOT-A", "CR-1")[0].id}
     code = main(["verify", str(s.root), str(pdf_path), str(json_path), "--ledger"])
     assert code == 0
+
+
+@pytest.mark.parametrize("fault", ["mid_render", "after_certificate"])
+def test_a_crash_while_a_queued_certificate_is_written_renders_it_again_at_the_restart(
+    tmp_path: Path, fault: str
+) -> None:
+    s = make_station(tmp_path / "st")
+    drop(s.inboxes[0].folder, "c.csv", cycle_file("CQ-1", capacity_ah=1.5))
+    proc = start_watch(s.root, {"FORMGATE_FAULT": fault})
+    try:
+        proc.wait(120)
+    finally:
+        stop_watch(proc)
+    assert proc.returncode == -9, "the station did not reach the fault point"
+    pdf_path = s.certificates / "LOT-A" / "CQ-1.pdf"
+    with Ledger(s.ledger) as ledger:
+        assert ledger.certificates.backlog().waiting == 1  # the verdict is out, its PDF not done
+        assert [r.state for r in ledger.inputs.in_state("archived")] == ["archived"]
+    again = start_watch(s.root)
+    try:
+        wait_until(lambda: settled(s, 1), timeout_s=120, what="the certificate rendered again")
+    finally:
+        assert stop_watch(again) == 0
+    assert not [p for p in s.certificates.rglob("*") if p.name.endswith(TEMP_SUFFIX)]  # cleaned
+    with Ledger(s.ledger) as ledger:
+        (result,) = ledger.results.of_cell("LOT-A", "CQ-1")
+        assert ledger.certificates.outcome(result.id)[0] == "rendered"
+        latest = ledger.published.by_path(str(pdf_path.resolve()))
+        assert latest is not None and latest.sha256 == sha(pdf_path)
+        assert latest.kind == "certificate" and latest.result_id == result.id
+    assert main(["verify", str(s.root), str(pdf_path), "--ledger"]) == 0
 
 
 def test_a_cell_certificate_is_verified_with_the_decision_it_shows(

@@ -145,6 +145,7 @@ def _drained(root: Path, ledger_path: Path, expected: int) -> bool:
             not open_rows
             and len(finals) >= expected
             and outbox.get("pending", 0) == 0
+            and not ledger.certificates.backlog().waiting
             and not ledger.digests.pending_lots()
         )
 

@@ -11,7 +11,7 @@ killed at any point and, on restart, find each input at a single state boundary:
 
 Why small objects over one connection, and not one class: each table family's queries live
 in a module of their own (inputs.py, results.py, outbox.py, digests.py, readings.py,
-decisions.py, reviews.py, regrades.py, lots.py, published.py, facts.py), and a family is an
+decisions.py, reviews.py, regrades.py, lots.py, published.py, facts.py, certificates.py), and a family is an
 object that holds only the shared :class:`~pipeline.ledger.connection.Connection` (reviews
 and regrades also the decisions family: a review, or a regrade of a cell, and the decision
 it gives are one transaction). A caller names the family it uses
@@ -37,6 +37,7 @@ import datetime
 import pathlib
 from typing import Self
 
+from pipeline.ledger.certificates import Certificates
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.decisions import Decisions
 from pipeline.ledger.digests import Digests
@@ -74,6 +75,7 @@ class Ledger:
         self.reviews = Reviews(self.db, self.decisions)
         self.published = Published(self.db)
         self.regrades = Regrades(self.db, self.decisions)
+        self.certificates = Certificates(self.db)
 
     @property
     def path(self) -> pathlib.Path:

@@ -475,8 +475,35 @@ def _regrades(conn: sqlite3.Connection) -> None:
 
 _REGRADE_TABLES = Migration("0007_regrades", _regrades, rebuilds=True)
 
+# Certificates are rendered after judging, from a queue that outlives the process: a result
+# recorded with a certificate to come has a row here until its PDF is written (outcome
+# 'rendered') or given up (outcome 'failed', with the error); failed cells first (priority 0),
+# then held (1), then passed (2). A letter that attaches the certificate is not due while
+# its row waits. A letter may also name a file it links (``waits_for``, the cell's own
+# certificate): it waits until that path is published after the letter was queued.
+_CERTIFICATE_QUEUE = sql_migration(
+    "0008_certificate_queue",
+    """
+    CREATE TABLE certificate_queue (
+        result_id INTEGER PRIMARY KEY REFERENCES results (id),
+        priority INTEGER NOT NULL CHECK (priority IN (0, 1, 2)),
+        queued_at TEXT NOT NULL,
+        losses INTEGER NOT NULL DEFAULT 0 CHECK (losses >= 0),
+        done_at TEXT,
+        outcome TEXT CHECK (outcome IN ('rendered', 'failed')),
+        error TEXT,
+        CHECK ((done_at IS NULL) = (outcome IS NULL)),
+        CHECK ((outcome = 'failed') = (error IS NOT NULL))
+    ) STRICT
+    """,
+    """CREATE INDEX certificate_queue_waiting ON certificate_queue (priority, queued_at, result_id)
+       WHERE done_at IS NULL""",
+    "ALTER TABLE outbox ADD COLUMN waits_for TEXT CHECK (waits_for IS NULL OR waits_for <> '')",
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
-    _INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS, _OUTBOX_CLAIMS, _REVIEWS, _REGRADE_TABLES
+    _INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS, _OUTBOX_CLAIMS, _REVIEWS, _REGRADE_TABLES,
+    _CERTIFICATE_QUEUE,
 )
 SCHEMA_VERSION = len(MIGRATIONS)
 

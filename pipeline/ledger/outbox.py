@@ -26,6 +26,10 @@ from typing import Any
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.rows import PUBLISHED, MailRow, OutgoingMail, mail_row, utc_text
 
+# Longest a letter waits for a file it links (the cell's own certificate, rendered moments
+# after the decision): a render that keeps failing must not keep a failed cell's letter back.
+LINK_WAIT_S = 300.0
+
 
 class NotClaimed(ValueError):
     """An outcome (sent, retry, park) or a release by a sender that does not hold the mail's claim."""
@@ -41,8 +45,8 @@ def insert_mail(
     """
     db.conn.execute(
         "INSERT INTO outbox (kind, message_id, recipients, subject, body_text, "
-        "attachment_path, cell_result_id, lot, state, next_attempt_at, created_at) "
-        "VALUES (?, ?, ?, ?, ?, ?, ?, ?, 'pending', ?, ?) ON CONFLICT (message_id) DO NOTHING",
+        "attachment_path, cell_result_id, lot, state, next_attempt_at, created_at, waits_for) "
+        "VALUES (?, ?, ?, ?, ?, ?, ?, ?, 'pending', ?, ?, ?) ON CONFLICT (message_id) DO NOTHING",
         (
             mail.kind,
             mail.message_id,
@@ -54,6 +58,7 @@ def insert_mail(
             lot,
             created_at,
             created_at,
+            mail.waits_for,
         ),
     )
     row = db.one("SELECT id FROM outbox WHERE message_id = ?", (mail.message_id,))
@@ -84,21 +89,32 @@ class Outbox:
     def due(self, now: datetime.datetime, limit: int = 50) -> list[MailRow]:
         """Pending mail whose time has come, oldest first, claimed or not (see :meth:`claim`).
 
-        A failure/hold mail waits until its cell is published (its PDF exists); a
-        digest waits until the cells it covers are recorded against it, except the
-        digest of a closed lot, which covers the lot as closed.
+        A failure/hold mail waits until its cell is published and the certificate it
+        attaches is rendered (or given up: certificates.py); a mail that names a file it
+        links (``waits_for``: the cell's own certificate) waits until that file is
+        published after the mail was queued, for at most ``LINK_WAIT_S`` (the sender then
+        says the file is not there yet); a digest waits until the cells it covers are
+        recorded against it, except the digest of a closed lot, which covers the lot as
+        closed.
         """
+        at = utc_text(now, "now")
+        gave_up = utc_text(now - datetime.timedelta(seconds=LINK_WAIT_S), "now")
         rows = self.db.rows(
             "SELECT o.* FROM outbox o LEFT JOIN results r ON r.id = o.cell_result_id "
             "LEFT JOIN inputs i ON i.id = r.input_id "
             "WHERE o.state = 'pending' AND o.next_attempt_at <= ? "
             "AND (o.kind NOT IN ('failure', 'hold') OR o.cell_result_id IS NULL "
             f"     OR i.state IN {PUBLISHED}) "
+            "AND NOT EXISTS (SELECT 1 FROM certificate_queue q "
+            "     WHERE q.result_id = o.cell_result_id AND q.done_at IS NULL) "
+            "AND (o.waits_for IS NULL OR o.created_at <= ? "
+            "     OR EXISTS (SELECT 1 FROM published p WHERE p.path = o.waits_for "
+            "                AND p.published_at >= o.created_at)) "
             "AND (o.kind <> 'digest' "
             "     OR EXISTS (SELECT 1 FROM results d WHERE d.digest_mail_id = o.id) "
             "     OR EXISTS (SELECT 1 FROM lots l WHERE l.lot = o.lot)) "
             "ORDER BY o.created_at, o.id LIMIT ?",
-            (utc_text(now, "now"), limit),
+            (at, gave_up, limit),
         )
         return [mail_row(r) for r in rows]
 

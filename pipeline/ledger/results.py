@@ -12,6 +12,7 @@ import json
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+from pipeline.ledger.certificates import insert_waiting
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.inputs import input_or_fail
 from pipeline.ledger.outbox import insert_mail
@@ -63,14 +64,17 @@ class Results:
         json_path: str,
         pdf_path: str | None,
         mails: Sequence[OutgoingMail],
+        certificate_priority: int | None = None,
     ) -> int:
         """Record a judgement in ONE transaction: result, check rows, outbox rows, input -> judged.
 
         Returns the result id. A second call for the same input returns the first id
         and writes nothing. Earlier versions' results (same name) become superseded.
         Mails are queued at ``analysed_at`` with this result's id, and are not due until
-        the input is published. Any failure (e.g. a check row that breaks a constraint:
-        ``sqlite3.IntegrityError``) rolls all of it back.
+        the input is published. With ``certificate_priority`` (and a ``pdf_path``) the
+        certificate is not rendered yet: it is queued (certificates.py) in the same
+        transaction, and the letters that attach it wait for it. Any failure (e.g. a check
+        row that breaks a constraint: ``sqlite3.IntegrityError``) rolls all of it back.
         """
         analysed = utc_text(analysed_at, "analysed_at")
         with self.db.write() as conn:
@@ -130,6 +134,8 @@ class Results:
                     )
                 insert_mail(self.db, mail, created_at=analysed, result_id=result_id, lot=mail.lot or lot
                 )
+            if certificate_priority is not None and pdf_path is not None:
+                insert_waiting(self.db, result_id, certificate_priority, queued_at=analysed)
             conn.execute("UPDATE inputs SET state = 'judged' WHERE id = ?", (input_id,))
             self._supersede(row.name)
             self._supersede_record(result_id, lot, cell_id)

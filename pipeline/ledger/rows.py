@@ -144,6 +144,8 @@ class OutgoingMail(Protocol):
     def attachment_path(self) -> str | None: ...
     @property
     def lot(self) -> str | None: ...
+    @property
+    def waits_for(self) -> str | None: ...
 
 
 @dataclass(frozen=True, slots=True)
@@ -168,6 +170,7 @@ class MailRow:
     reply: str | None = None
     claimed_by: str | None = None  # the sender that holds the mail now (outbox.claim)
     claimed_until: datetime.datetime | None = None  # its lease: after this, it may be taken over
+    waits_for: str | None = None  # a file the body links: due once it is published (outbox.due)
 
 
 @dataclass(frozen=True, slots=True)
@@ -307,6 +310,7 @@ def mail_row(row: sqlite3.Row) -> MailRow:
         row["reply"],
         row["claimed_by"],
         maybe_time(row["claimed_until"]),
+        row["waits_for"],
     )
 
 

@@ -51,6 +51,8 @@ class Letter:
     ``message_id`` is deterministic (see :func:`message_id_for`), so a resend of the
     same letter carries the same Message-ID. ``attachment_path`` names a PDF read by
     :func:`build_message`. ``lot`` is shown in an ``X-Formgate-Lot`` header.
+    ``waits_for``: the path of a file the body links (a cell's own certificate); the
+    outbox holds the letter until that file is published.
     """
 
     kind: LetterKind
@@ -60,6 +62,7 @@ class Letter:
     body_text: str
     attachment_path: str | None = None
     lot: str | None = None
+    waits_for: str | None = None
 
     def __post_init__(self) -> None:
         if self.kind not in KINDS:

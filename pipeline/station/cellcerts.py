@@ -9,8 +9,11 @@ in the past day: a crash or a stop may have come between its decision and its
 certificate). For each candidate, in the main thread, the cell's summary and JSON are
 built from the ledger (about a millisecond); a cell whose published JSON is that very
 text is done. The others' certificates are rendered in the judge pool's worker processes
-(cellpublish.render_job, about 0.2 s each), beside the judging, a few at a time; the main
-thread then writes JSON and certificate atomically and records both (cellpublish.py).
+(cellpublish.render_job, about 0.2 s each) when a worker has nothing to judge: the
+station's loop hands out its free workers, failed and held cells' certificates (these and
+the records' of certqueue.py) before passed ones; the main thread then writes JSON and
+certificate atomically and records both (cellpublish.py), and wakes the mail thread (a
+letter that names the cell's certificate waits for it).
 
 A render the pool lost (a worker died, the pool was replaced) is asked for again; one that
 failed is logged and left until the cell changes again, or the next start.
@@ -54,6 +57,7 @@ class CellCertificates:
         rules: RulesInForce,
         judges: JudgePool,
         wake: threading.Event,
+        mail_wake: threading.Event | None = None,
     ) -> None:
         self.settings = settings
         self.ledger = ledger
@@ -61,7 +65,9 @@ class CellCertificates:
         self.rules = rules
         self.judges = judges
         self.wake = wake
+        self.mail_wake = mail_wake
         self.candidates: dict[Key, None] = {}  # in the order they came
+        self.ready: dict[Key, CellJob] = {}  # looked at, waiting for a free worker
         self.in_flight: dict[Key, tuple[Future[CellRendered], CellJob, object, float]] = {}
         self.failed: dict[Key, str] = {}  # cell -> the JSON text whose render failed
         self.seen = 0  # the last decision id read
@@ -72,6 +78,7 @@ class CellCertificates:
     def note(self, lot: str, cell_id: str) -> None:
         """A record or reading of the cell came in: check its certificate (CellDecisions calls this)."""
         self.candidates[(lot, cell_id)] = None
+        self.ready.pop((lot, cell_id), None)  # looked at again
 
     def start(self) -> None:
         """The cells a stop or crash may have left behind: decided in the past week, or
@@ -94,33 +101,37 @@ class CellCertificates:
         """Every decision recorded since the last turn makes its cell a candidate."""
         for lot, cell, decision_id in self.ledger.decisions.decided_after(self.seen):
             self.candidates[(lot, cell)] = None
+            self.ready.pop((lot, cell), None)
             self.seen = max(self.seen, decision_id)
 
     # ---- the loop's turn ----------------------------------------------------------------------
 
-    def step(self) -> None:
-        """Publish what the workers rendered, then hand over the next candidates."""
+    def prepare(self) -> None:
+        """Publish what the workers rendered, then look at the next candidates (the station's
+        loop then hands out free workers: :meth:`submit`)."""
         if not self.started:
             self.start()
         self.collect()
         self.poll()
-        self.submit()
+        self.look()
 
     def pending(self) -> int:
-        """Cells waiting for their certificate: candidates and renders in hand."""
-        return len(self.candidates) + len(self.in_flight)
+        """Cells waiting for their certificate: candidates, looked at, and renders in hand."""
+        return len(self.candidates) + len(self.ready) + len(self.in_flight)
 
-    def room(self) -> int:
-        # at most one render per worker at a time: judging keeps most of the pool
-        return max(1, self.settings.workers) - len(self.in_flight)
+    def in_hand(self) -> int:
+        """Renders handed to the workers and not yet back."""
+        return len(self.in_flight)
 
-    def submit(self) -> None:
+    def look(self) -> None:
+        """Build the jobs of up to CHECKS_PER_TURN candidates: a cell whose published JSON is
+        what its rows give now is done, one with no certificate is published at once."""
         rulebook = self.rules.rulebook
         if rulebook is None:
             return
         checked = 0
         for key in list(self.candidates):
-            if self.room() <= 0 or checked >= CHECKS_PER_TURN:
+            if checked >= CHECKS_PER_TURN:
                 return
             if key in self.in_flight:
                 continue  # checked again once its render is back
@@ -136,13 +147,26 @@ class CellCertificates:
             if not job.certificate:
                 self.publish(job, CellRendered(None))  # the JSON alone: no render to wait for
                 continue
+            self.ready[key] = job
+
+    def submit(self, slots: int, *, urgent: bool) -> int:
+        """Hand up to ``slots`` looked-at cells to the workers (``urgent``: failed and held
+        cells' only); how many were handed."""
+        used = 0
+        for key, job in list(self.ready.items()):
+            if used >= slots:
+                break
+            if key in self.in_flight or (urgent and job.summary.decision.verdict == "pass"):
+                continue
             pool = self.judges.pool
             future = self.judges.run_aside(render_job, job)
             if future is None:  # no pool in service now: next turn
-                self.candidates[key] = None
-                return
+                break
+            del self.ready[key]
             future.add_done_callback(lambda _: self.wake.set())
             self.in_flight[key] = (future, job, pool, time.monotonic())
+            used += 1
+        return used
 
     def collect(self) -> None:
         now_s = time.monotonic()
@@ -187,6 +211,8 @@ class CellCertificates:
             self.candidates[key] = None  # still to publish once the fault has passed
             raise
         self.failed.pop(key, None)
+        if self.mail_wake is not None:
+            self.mail_wake.set()  # a letter that names this certificate may be due now
         s = job.summary
         log.info("cell %s lot %s: cell certificate %s (decision %d, %s)", s.cell_id, s.lot,
                  s.certificate_name or s.json_name, s.decision.id, s.decision.verdict)

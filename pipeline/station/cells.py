@@ -18,6 +18,7 @@ A cell held only while it waits for a stage gets no letter: that is the normal c
 
 from __future__ import annotations
 
+import dataclasses
 import datetime
 import logging
 import threading
@@ -30,7 +31,7 @@ from pipeline.ledger.rows import DecisionRow
 from pipeline.mail.cell_letters import decision_letter, superseded_letter
 from pipeline.mail.letters import Letter
 from pipeline.model import WAITING_FOR_STAGE, only_waiting
-from pipeline.station.digests import cell_certificate_link
+from pipeline.station.digests import cell_certificate_link, cell_certificate_path
 from pipeline.station.reviewing import cell_now, review_stands
 from pipeline.station.rules_in_force import RulesInForce
 from pipeline.station.settings import Settings
@@ -95,7 +96,9 @@ def change_letters(
                 family=family, recipients=to, station=station, key=key, domain=routing.domain,
                 certificate=cell_certificate_link(settings, lot, cell_id),
             ))
-    return out
+    # each letter names the cell's own certificate: the outbox holds it until that is published
+    waits_for = cell_certificate_path(settings, lot, cell_id)
+    return [dataclasses.replace(letter, waits_for=waits_for) for letter in out]
 
 
 class CellDecisions:

@@ -22,6 +22,7 @@ from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import ResultRow
 from pipeline.mail.letters import DigestRow, digest_letter
 from pipeline.station.cellpublish import all_current, cell_paths, published_certificate
+from pipeline.station.published_files import recorded_path
 from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
@@ -103,6 +104,14 @@ def cell_certificate_link(settings: Settings, lot: str, cell_id: str) -> str:
         return ""
     path = str(cell_paths(settings, lot, cell_id)[1])
     return certificate_link(path, settings.certificates, settings.routing.certificates_url)
+
+
+def cell_certificate_path(settings: Settings, lot: str, cell_id: str) -> str | None:
+    """The path of the cell's own certificate as the ledger records it when published (a
+    letter that links it waits for it: ``Letter.waits_for``); None when none is written."""
+    if settings.certify == "none":
+        return None
+    return recorded_path(cell_paths(settings, lot, cell_id)[1])
 
 
 def cell_certificate(ledger: Ledger, lot: str, cell_id: str, settings: Settings) -> str:

@@ -14,8 +14,9 @@ POINTS = (
     "after_claim",  # file moved into work/, nothing recorded yet
     "after_record_claim",  # ledger knows the input, not yet judged
     "after_commit",  # result and outbox committed, no files written
-    "mid_render",  # certificate temp file written, not renamed into place
-    "after_write",  # JSON and PDF in place, not yet recorded as published files
+    "mid_render",  # a queued certificate's temp file written, not renamed into place
+    "after_certificate",  # a queued certificate in place and recorded, not yet marked rendered
+    "after_write",  # the result JSON in place, not yet recorded as a published file
     "after_publish",  # outputs in place and recorded, input still in work/
     "after_archive_move",  # input moved to archive/quarantine, not yet recorded
     "after_send",  # mail accepted by the server, not yet marked sent

@@ -117,12 +117,19 @@ def owner_is_gone(owner: str) -> bool:
 
 
 def _letter(row: MailRow) -> Letter:
+    body = row.body_text
+    if row.waits_for is not None and not os.path.exists(row.waits_for):
+        # it waited its longest (outbox.LINK_WAIT_S): the letter goes, and says so
+        body += (
+            "\n\nThe cell's own certificate named above was not yet published when this mail "
+            "was sent; the station publishes it as soon as it can be rendered."
+        )
     return Letter(
         kind=row.kind,  # type: ignore[arg-type]
         message_id=row.message_id,
         recipients=row.recipients,
         subject=row.subject,
-        body_text=row.body_text,
+        body_text=body,
         attachment_path=row.attachment_path,
         lot=row.lot,
     )

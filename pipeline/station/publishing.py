@@ -1,15 +1,18 @@
-"""Publishing what the workers judged: record, write JSON and PDF, archive, quarantine, letters.
+"""Publishing what the workers judged: record, write the JSON, archive, quarantine, letters.
 
 One finished output becomes, in this order: ONE ledger transaction (result, check rows,
-outbox rows with the failure or hold letter), the JSON and PDF written atomically and
-recorded as published files with their SHA-256 (published_files.py), the input marked
-published and moved to archive/YYYY-MM-DD/. An input that cannot be judged
+outbox rows with the failure or hold letter, and the certificate promised in the ledger's
+certificate queue), the JSON written atomically and recorded as a published file with its
+SHA-256 (published_files.py), the input marked published and moved to
+archive/YYYY-MM-DD/. The certificate is rendered after, when a worker is free
+(certqueue.py); the letter that attaches it waits for it. An input that cannot be judged
 goes to quarantine/ with a .reason.txt beside it. Claiming inputs is claiming.py's job,
 handing them to the workers tasks.py's; the mail thread sends the letters (mailer.py).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import datetime
 import json
 import logging
@@ -17,6 +20,7 @@ from collections.abc import Callable
 from pathlib import Path
 
 from pipeline.judge.evaluate import decision_line
+from pipeline.ledger.certificates import PRIORITY
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import CheckRowData, InputRow, ResultRow
 from pipeline.mail.letters import Letter, alert_letter, failure_letter, hold_letter
@@ -26,7 +30,8 @@ from pipeline.read.readings import ReadingFile
 from pipeline.runner import result_paths
 from pipeline.station import faults
 from pipeline.station.cells import CellDecisions
-from pipeline.station.digests import cell_certificate_link
+from pipeline.station.certqueue import RecordCertificates
+from pipeline.station.digests import cell_certificate_link, cell_certificate_path
 from pipeline.station.guard import Guard
 from pipeline.station.published_files import Written, note_kept, note_written
 from pipeline.station.setaside import NAME_RESERVE_BYTES
@@ -47,12 +52,14 @@ class Publisher:
         clock: Callable[[], datetime.datetime],
         cells: CellDecisions,
         guard: Guard,
+        certificates: RecordCertificates,
     ) -> None:
         self.settings = settings
         self.ledger = ledger
         self.clock = clock
         self.cells = cells
         self.guard = guard
+        self.certificates = certificates
         self.judged = 0  # files judged since the station started (the heartbeat shows it)
 
     def apply(self, row: InputRow, output: Output) -> None:
@@ -71,11 +78,15 @@ class Publisher:
         # the worker told the result which record of its cell it is (ledger/history.py)
         result, json_text, pdf = output.result, output.json_text, output.pdf
         if row.state == "claimed":
-            self.record(row, result, json_text, with_pdf=pdf is not None)
+            self.record(row, result, json_text, with_pdf=pdf is not None or self.certify(result),
+                        rendered=pdf is not None)
+        result_id = (self.ledger.inputs.get(row.id) or row).result_id
+        if pdf is None and result_id is not None and self.ledger.certificates.is_waiting(result_id):
+            self.certificates.keep(result_id, result)  # for its render, when a worker is free
         self.keep_earlier_outputs(row, result)
         self.publish(row, result, json_text, pdf)
         self.judged += 1
-        self.guard.mail_wake.set()  # a failure or hold letter is due now that its certificate is there
+        self.guard.mail_wake.set()  # a letter with no certificate to wait for is due now
         r = result
         hazards = (
             f" hazard: {', '.join(h.value for h in r.verdict.hazards)}" if r.verdict.hazards else ""
@@ -105,6 +116,13 @@ class Publisher:
             and tuple(json.loads(r.result_json).get("stages") or WHOLE_PROGRAM) == result.stages
         ]
 
+    def certify(self, result: CellResult) -> bool:
+        """Whether the station renders this record's certificate (``certify`` in station.toml)."""
+        certify = self.settings.certify
+        return certify == "all" or (
+            certify == "failed_and_held" and result.verdict.kind is not VerdictKind.PASS
+        )
+
     def keep_earlier_outputs(self, row: InputRow, result: CellResult) -> None:
         """Before a retest's outputs take the cell's file names, the earlier record's files
         move to names of their own (``<cell>~record-1.json``), and the ledger follows them:
@@ -120,14 +138,17 @@ class Publisher:
                 moved.append(Written(kept_json, json_path.read_bytes(), "result"))
                 write_atomic(moved[-1].data, kept_json, make_parents=False)
             has_pdf = earlier.pdf_path is not None and pdf_path.exists()
-            if has_pdf:
+            # a certificate still to render is rendered under the name it moves to
+            waiting = earlier.pdf_path is not None and self.ledger.certificates.is_waiting(earlier.id)
+            if has_pdf and not waiting:
                 moved.append(Written(kept_pdf, pdf_path.read_bytes(), "certificate"))
                 write_atomic(moved[-1].data, kept_pdf, make_parents=False)
             # recorded again under their new names before the ledger follows them there
             for problem in note_kept(self.ledger, earlier, moved, now=self.clock()):
                 log.warning("%s", problem)
             self.ledger.results.move_outputs(
-                earlier.id, str(kept_json), str(kept_pdf) if has_pdf else earlier.pdf_path
+                earlier.id, str(kept_json),
+                str(kept_pdf) if has_pdf or waiting else earlier.pdf_path,
             )
 
     def keep_readings(self, row: InputRow, readings: ReadingFile | None) -> None:
@@ -148,6 +169,12 @@ class Publisher:
         return result_paths(self.settings.results, self.settings.certificates, result)
 
     def letters(self, result: CellResult, pdf_path: Path) -> list[Letter]:
+        """A fail's or hold's letter: it attaches the record's certificate (the outbox holds
+        it until that is rendered) and names the cell's own (held until that is published)."""
+        waits_for = cell_certificate_path(self.settings, result.lot, result.cell_id)
+        return [dataclasses.replace(x, waits_for=waits_for) for x in self._letters(result, pdf_path)]
+
+    def _letters(self, result: CellResult, pdf_path: Path) -> list[Letter]:
         routing, station = self.settings.routing, self.settings.station_name
         kind = result.verdict.kind
         if kind is VerdictKind.FAIL and routing.failures_to:
@@ -171,9 +198,11 @@ class Publisher:
         return []
 
     def record(
-        self, row: InputRow, result: CellResult, json_text: str, *, with_pdf: bool = True
+        self, row: InputRow, result: CellResult, json_text: str, *, with_pdf: bool = True,
+        rendered: bool = False,
     ) -> None:
-        """ONE transaction: result, check rows, outbox rows (the rule text was kept at load)."""
+        """ONE transaction: result, check rows, outbox rows, and the certificate promised in
+        the queue unless it was ``rendered`` with the result (the rule text was kept at load)."""
         json_path, pdf_path = self.output_paths(result)
         self.ledger.results.record(
             row.id,
@@ -190,6 +219,7 @@ class Publisher:
             json_path=str(json_path),
             pdf_path=str(pdf_path) if with_pdf else None,
             mails=self.letters(result, pdf_path),
+            certificate_priority=None if rendered else PRIORITY.get(result.verdict.kind.value, 0),
         )
         faults.point("after_commit")
 

@@ -43,6 +43,7 @@ from pipeline.mail.smtp import SmtpSettings
 from pipeline.names import to_text
 from pipeline.station.cellcerts import CellCertificates
 from pipeline.station.cells import CellDecisions
+from pipeline.station.certqueue import RecordCertificates
 from pipeline.station.claiming import Claims
 from pipeline.station.digests import DigestDuty
 from pipeline.station.guard import Guard
@@ -83,6 +84,7 @@ class Station:
     rules: RulesInForce
     cells: CellDecisions
     cellcerts: CellCertificates
+    certificates: RecordCertificates
     publisher: Publisher
     tasks: Tasks
     lingering: Lingering
@@ -118,9 +120,14 @@ class Station:
         self.ledger = ledger
         self.guard = Guard(s, ledger, clock, self.inhand, mail_wake)
         self.rules = RulesInForce(s, ledger, clock, self.guard)
-        self.cellcerts = CellCertificates(s, ledger, clock, self.rules, self.judges, self.wake)
+        self.cellcerts = CellCertificates(
+            s, ledger, clock, self.rules, self.judges, self.wake, mail_wake
+        )
         self.cells = CellDecisions(s, ledger, clock, self.rules, mail_wake, self.cellcerts.note)
-        self.publisher = Publisher(s, ledger, clock, self.cells, self.guard)
+        self.certificates = RecordCertificates(
+            ledger, clock, self.judges, self.wake, mail_wake, lambda row: self.tasks.judge_again(row)
+        )
+        self.publisher = Publisher(s, ledger, clock, self.cells, self.guard, self.certificates)
         self.tasks = Tasks(s, ledger, clock, self.judges, self.rules, self.publisher, self.guard)
         self.lingering = Lingering(s, self.guard)
         self.aside = SetAside(s, mail_wake)
@@ -194,6 +201,7 @@ class Station:
             log.info("stopping: finishing %d cell(s) in hand", self.judges.busy())
             while self.judges.busy():
                 self.tasks.collect(timeout=1.0)
+            self.guard.duty(self.certificates.finish)
             self.guard.duty(self.cellcerts.finish)
             self.write_heartbeat(state="stopped")
         finally:
@@ -223,12 +231,30 @@ class Station:
             guard.duty(self.tasks.submit)
         self.tasks.collect(timeout=0.2 if self.judges.busy() else 0.0)
         if not guard.paused:
-            guard.duty(self.cellcerts.step)  # rendered in the workers, written here
+            guard.duty(self.render)  # rendered in the workers, written here
             guard.duty(self.digests.queue)
             guard.duty(guard.flush_unsent)
         if now_s - self.last_heartbeat >= self.settings.heartbeat_s:
             self.last_heartbeat = now_s
             self.write_heartbeat()
+
+    def render(self) -> None:
+        """Write the certificates the workers rendered; hand the free workers the next ones.
+
+        A worker is free when it has nothing to judge: judging never waits for a PDF. The
+        free workers go first to failed and held cells' certificates (the records', whose
+        letters attach them, then the cells' own), then to passed cells'.
+        """
+        self.certificates.collect()
+        self.cellcerts.prepare()
+        free = self.settings.workers - self.judges.busy() - self.certificates.in_hand()
+        free -= self.cellcerts.in_hand()
+        if self.tasks.queue or free <= 0:
+            return
+        free -= self.certificates.submit(free, urgent=True)
+        free -= self.cellcerts.submit(free, urgent=True)
+        free -= self.certificates.submit(free, urgent=False)
+        self.cellcerts.submit(free, urgent=False)
 
     def after_death(self, death: Death | None) -> None:
         """Quarantine the input that was in hand when the station died for the second time."""

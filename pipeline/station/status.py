@@ -11,6 +11,7 @@ import json
 import os
 from pathlib import Path
 
+from pipeline.ledger.certificates import Backlog
 from pipeline.ledger.ledger import Ledger
 from pipeline.names import from_text, to_text
 from pipeline.station.board import process_exists
@@ -82,6 +83,26 @@ def _overdue_lines(settings: Settings, now: datetime.datetime, left: dict[str, d
         ):
             lines.append(f"  {inbox.name}: {e.name}: waiting {e.age}; {e.why}")
     return lines
+
+
+def certificates_line(backlog: Backlog, now: datetime.datetime) -> str:
+    """Certificates promised and not yet rendered (the station renders them when its workers
+    have nothing to judge), and those given up.
+
+    >>> t = datetime.datetime(2026, 1, 5, 8, 0, tzinfo=datetime.UTC)
+    >>> certificates_line(Backlog(212, t, 0), t + datetime.timedelta(seconds=40))
+    'certificates waiting: 212, oldest 40 s'
+    >>> certificates_line(Backlog(0, None, 1), t)
+    'certificates waiting: none (1 could not be rendered: see the station log)'
+    """
+    if backlog.waiting:
+        age = max(0.0, (now - backlog.oldest).total_seconds()) if backlog.oldest else 0.0
+        text = f"certificates waiting: {backlog.waiting:,}, oldest {age:.0f} s"
+    else:
+        text = "certificates waiting: none"
+    if backlog.failed:
+        text += f" ({backlog.failed:,} could not be rendered: see the station log)"
+    return text
 
 
 def status_text(settings: Settings, now: datetime.datetime) -> str:
@@ -176,6 +197,7 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
             )
         else:
             lines.append("waiting for a person: none")
+        lines.append(certificates_line(ledger.certificates.backlog(), now))
         lines.append("")
         lines.append("last cells")
         seen: set[tuple[str, str]] = set()

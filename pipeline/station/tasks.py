@@ -1,7 +1,8 @@
 """The worker side of the station: tasks for the judge pool, handed over and collected.
 
 A claimed input waits in the queue until the pool has room; its task names the rules,
-import profile and limits it is judged under. A finished task's output is applied in
+import profile and limits it is judged under (and renders no certificate: those come
+from the certificate queue, certqueue.py). A finished task's output is applied in
 the main thread (publishing.py); a result committed but not written is judged again
 under the rules it was recorded with. The pool itself, its processes, timeouts and
 deaths, is judges.py's; what a worker does with a task is worker.py's.
@@ -95,8 +96,9 @@ class Tasks:
         row: InputRow,
         rulebook: RuleBook,
         analysed_at: datetime.datetime,
-        certify: str,
+        certify: str = "none",
     ) -> Task:
+        """The task that judges ``row``; a station's renders no certificate (certqueue.py)."""
         profile_name, profile_text = self.profile_for(row)
         s = self.settings
         return Task(
@@ -122,7 +124,7 @@ class Tasks:
             row, task = self.queue[0]
             if task is None:
                 now = self.clock().replace(microsecond=0)
-                task = self.task_for(row, self.rules.rulebook, now, self.settings.certify)
+                task = self.task_for(row, self.rules.rulebook, now)
             self.queue.popleft()
             self.judges.submit(row, task)
 
@@ -156,7 +158,8 @@ class Tasks:
             )
 
     def judge_again(self, row: InputRow) -> Task | None:
-        """A committed result whose files were not written: the same bytes, the recorded rules."""
+        """A committed result whose files were not written, or whose certificate is to be
+        rendered and no longer in memory: the same bytes, the recorded rules and time."""
         result_row = self.ledger.results.of_input(row.id)
         assert result_row is not None
         stored = self.ledger.facts.text_by_sha(result_row.rule_set_sha256)
@@ -168,6 +171,4 @@ class Tasks:
             log.error("%s: its recorded rules are not in the ledger; it waits for valid rules",
                       row.name)
             return None
-        return self.task_for(
-            row, rulebook, result_row.analysed_at, "all" if result_row.pdf_path else "none"
-        )
+        return self.task_for(row, rulebook, result_row.analysed_at)

@@ -2,7 +2,8 @@
 
 Runs in long-lived worker processes (the import of the rendering stack is paid
 once per process, not per file). It reads the claimed file, judges it, and
-renders the JSON and PDF *bytes*; it writes nothing. An OCV reading file (told by its
+renders the JSON *text* (and, when the task asks, the PDF bytes); it writes nothing.
+A station's certificates are rendered later, from its queue (certqueue.py). An OCV reading file (told by its
 header, read.readings.looks_like_readings) is read into its readings instead. The station's main process
 records the result and only then writes the files (order of effects in
 docs/station.md), so a crash can never leave a certificate without its ledger row.
@@ -197,9 +198,46 @@ def _run(task: Task) -> Output:
 
 
 def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None] | ReadingFile:
-    """Judge a cycle file and render its outputs, or read an OCV reading file's readings."""
-    from pipeline.read.profile import load_profile
+    """Judge a cycle file and render its outputs, or read an OCV reading file's readings.
+
+    A station's tasks render no certificate (``certify = "none"``): it queues them and
+    renders them when workers are free (certqueue.py). ``formgate check`` renders at once.
+    """
     from pipeline.report.result import to_json
+
+    result = judge_task(task)
+    if isinstance(result, ReadingFile):
+        return result
+    json_text = to_json(result)
+    pdf = None
+    wanted = task.certify == "all" or (
+        task.certify == "failed_and_held" and result.verdict.kind is not VerdictKind.PASS
+    )
+    if wanted:
+        pdf = render_certificate(result, json_text, cell_certificate_name(task, result))
+    return result, json_text, pdf
+
+
+def cell_certificate_name(task: Task, result: CellResult) -> str | None:
+    """The cell's own certificate's file name, which a station's record certificate names."""
+    return None if task.ledger_path is None else f"{cell_file_stem(result.cell_id)}.pdf"
+
+
+def render_certificate(result: CellResult, json_text: str, cell_certificate: str | None) -> bytes:
+    """The record's certificate: it carries the code of the very JSON text published with it."""
+    from pipeline.report.certificate import render_html
+    from pipeline.report.pdf import render_pdf
+    from pipeline.report.verification import verification_code
+
+    return render_pdf(
+        render_html(result, verification_code(json_text), cell_certificate=cell_certificate)
+    )
+
+
+def judge_task(task: Task) -> CellResult | ReadingFile:
+    """Judge the task's file (with its cell's other records when a ledger is named), or read
+    an OCV reading file's readings. Raises FormgateError for a file that cannot be judged."""
+    from pipeline.read.profile import load_profile
     from pipeline.runner import judge
 
     try:
@@ -238,18 +276,4 @@ def _judge_and_render(task: Task) -> tuple[CellResult, str, bytes | None] | Read
         from pipeline.ledger.history import with_history
 
         result = with_history(result, Path(task.ledger_path), task.input_id)
-    json_text = to_json(result)
-    pdf = None
-    wanted = task.certify == "all" or (
-        task.certify == "failed_and_held" and result.verdict.kind is not VerdictKind.PASS
-    )
-    if wanted:
-        from pipeline.report.certificate import render_html
-        from pipeline.report.pdf import render_pdf
-        from pipeline.report.verification import verification_code
-
-        # the certificate carries the code of the very JSON text published with it
-        # a station publishes the cell's own certificate beside its records: name it
-        cell = None if task.ledger_path is None else f"{cell_file_stem(result.cell_id)}.pdf"
-        pdf = render_pdf(render_html(result, verification_code(json_text), cell_certificate=cell))
-    return result, json_text, pdf
+    return result
