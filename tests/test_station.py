@@ -236,8 +236,30 @@ def test_sigterm_finishes_the_cell_in_hand_and_exits_0(tmp_path: Path) -> None:
     finally:
         code = stop_watch(proc)
     assert code == 0
-    assert settled(s, 1)
+    with Ledger(s.ledger) as ledger:  # the verdict is out; a pass certificate may still wait
+        assert [r.name for r in ledger.inputs.in_state("archived")] == ["t.csv"]
+    again = start_watch(s.root)  # ... and is rendered at the next start
+    try:
+        wait_until(lambda: settled(s, 1), what="the certificate rendered after the restart")
+    finally:
+        assert stop_watch(again) == 0
     check_invariants(s, {"t.csv"})
+
+
+def test_sigterm_renders_a_failed_cells_certificate_before_it_exits(tmp_path: Path) -> None:
+    s = make_station(tmp_path / "st")
+    proc = start_watch(s.root)
+    try:
+        wait_until(lambda: s.heartbeat.exists(), what="station started")
+        drop(s.inboxes[0].folder, "f.csv", cycle_file("S-2", capacity_ah=1.5))
+        wait_until(lambda: any(s.work.iterdir()) or settled(s, 1), what="file claimed")
+    finally:
+        code = stop_watch(proc)
+    assert code == 0
+    # its failure letter attaches the certificate: the stop does not leave it waiting
+    assert (s.certificates / "LOT-A" / "S-2.pdf").read_bytes().startswith(b"%PDF-")
+    with Ledger(s.ledger) as ledger:
+        assert ledger.certificates.backlog().waiting == 0
 
 
 def test_watch_refuses_folders_on_different_filesystems(tmp_path: Path) -> None:

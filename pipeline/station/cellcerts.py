@@ -123,6 +123,10 @@ class CellCertificates:
         """Renders handed to the workers and not yet back."""
         return len(self.in_flight)
 
+    def urgent_ready(self) -> bool:
+        """Whether a failed or held cell's certificate waits for a worker."""
+        return any(job.summary.decision.verdict != "pass" for job in self.ready.values())
+
     def look(self) -> None:
         """Build the jobs of up to CHECKS_PER_TURN candidates: a cell whose published JSON is
         what its rows give now is done, one with no certificate is published at once."""

@@ -37,6 +37,7 @@ from collections.abc import Callable
 from functools import partial
 from pathlib import Path
 
+from pipeline.ledger.certificates import HELD
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import InputRow
 from pipeline.mail.smtp import SmtpSettings
@@ -201,6 +202,7 @@ class Station:
             log.info("stopping: finishing %d cell(s) in hand", self.judges.busy())
             while self.judges.busy():
                 self.tasks.collect(timeout=1.0)
+            self.guard.duty(self.finish_urgent)
             self.guard.duty(self.certificates.finish)
             self.guard.duty(self.cellcerts.finish)
             self.write_heartbeat(state="stopped")
@@ -238,7 +240,23 @@ class Station:
             self.last_heartbeat = now_s
             self.write_heartbeat()
 
-    def render(self) -> None:
+    def finish_urgent(self, timeout_s: float = 60.0) -> None:
+        """At a stop: render the failed and held cells' certificates still waiting (their
+        letters wait for them), for ``timeout_s`` at most; passed cells' wait in the ledger for
+        the next start."""
+        deadline = time.monotonic() + timeout_s
+        while time.monotonic() < deadline:
+            self.render(urgent_only=True)
+            urgent = self.ledger.certificates.waiting(1, most_priority=HELD)
+            if not urgent and not self.certificates.in_hand() and not self.cellcerts.in_hand() \
+                    and not self.cellcerts.urgent_ready():
+                return
+            self.wake.wait(0.05)
+            self.wake.clear()
+        log.warning("stopping with failed or held cells' certificates still to render: "
+                    "they are rendered at the next start")
+
+    def render(self, *, urgent_only: bool = False) -> None:
         """Write the certificates the workers rendered; hand the free workers the next ones.
 
         A worker is free when it has nothing to judge: judging never waits for a PDF. The
@@ -253,6 +271,8 @@ class Station:
             return
         free -= self.certificates.submit(free, urgent=True)
         free -= self.cellcerts.submit(free, urgent=True)
+        if urgent_only:
+            return
         free -= self.certificates.submit(free, urgent=False)
         self.cellcerts.submit(free, urgent=False)
 
