@@ -194,7 +194,10 @@ def _change_windows(rule_set: RuleSet, by: list[float], sign: float) -> RuleSet:
         low = None if w.low is None else w.low - sign * step
         high = None if w.high is None else w.high + sign * step
         if low is not None and high is not None and low > high:  # narrowed past each other
-            low = high = (low + high) / 2
+            # to the middle of the window as it was (the middle of the moved bounds can fall
+            # outside it: 3.4e-252 narrowed by 1 each way is (1.0 + -1.0) / 2 = 0.0)
+            assert w.low is not None and w.high is not None
+            low = high = w.low / 2 + w.high / 2
         rules.append(dataclasses.replace(rule, window=Window(low, high, w.relative_to)))
     return dataclasses.replace(rule_set, rules=tuple(rules))
 
