@@ -776,3 +776,28 @@ def test_arrays_of_a_trace_are_read_only() -> None:
     for name in ("time_s", "voltage_v", "current_a", "step", "cycle"):
         with pytest.raises(ValueError, match="read-only"):
             getattr(trace, name)[0] = 0
+
+
+@pytest.mark.parametrize("chunk_fields", [None, 10])
+def test_each_column_read_is_copied_once_whether_in_one_chunk_or_many(
+    chunk_fields: int | None, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """The Trace holds the very arrays the table's frame holds: the copy that gives a Trace
+    arrays of its own is made once, as the rows are joined, not again on the way to the Trace."""
+    from pipeline.read import cyclenumbers
+    from pipeline.read.convert import to_trace
+    from pipeline.read.cyclefile import read_table
+
+    if chunk_fields is not None:  # a few rows per chunk
+        monkeypatch.setattr(cyclenumbers, "CHUNK_FIELDS", chunk_fields)
+    rows = [[60.0 * k, 3.2 + 0.01 * k, 1.0, 25.0, 1 + k // 4, 1] for k in range(12)]
+    columns = ("time_s", "voltage_V", "current_A", "temperature_C", "step", "cycle")
+    table = read_table(make_csv(rows, columns).encode(), "c.csv")
+    trace = to_trace(table, DEFAULT_PROFILE)
+    for name, column in zip(
+        ("time_s", "voltage_v", "current_a", "temperature_c", "step", "cycle"), range(6), strict=True
+    ):
+        values = getattr(trace, name)
+        assert values.flags.owndata and not values.flags.writeable
+        assert np.shares_memory(values, table.frame[column].to_numpy())
+    assert trace.voltage_v.tolist() == [3.2 + 0.01 * k for k in range(12)]

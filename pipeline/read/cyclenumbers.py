@@ -145,31 +145,13 @@ def parse_rows(
         stream.seek(start)
     else:
         stream = io.BytesIO(data[start:end])
-    chunks: list[pd.DataFrame] = []
     try:
-        with pd.read_csv(
-            stream,
-            encoding="utf-8",
-            sep=profile.delimiter,
-            decimal=profile.decimal,
-            header=None,
-            keep_default_na=False,
-            na_values=[""],
-            skip_blank_lines=False,
-            low_memory=False,
-            engine="c",
-            chunksize=max(1, CHUNK_FIELDS // expected),
-        ) as reader:
-            for chunk in reader:
-                if chunk.shape[1] != expected:  # the first row's fields are not the header's
-                    chunks.clear()
-                    break
-                chunks.append(chunk if wanted is None else chunk[wanted])
+        chunks = _chunks(stream, profile, expected, wanted)
     except (ValueError, TypeError, OverflowError) as exc:  # ParserError is a ValueError
         raise _diagnose(_region(data, start, end), head, name, profile, str(exc)) from None
     if not chunks:
         raise _diagnose(_region(data, start, end), head, name, profile, "rows and header disagree")
-    frame = _joined(chunks)
+    frame = _joined(chunks, None if wanted is None else set(keep or ()))
     # Without quote marks (which may hold line breaks) or NUL bytes, pandas makes one
     # row per line; only then is counting the lines (a pass over megabytes) skipped.
     plain = data.find(b'"', start, end) < 0 and data.find(b"\0", start, end) < 0
@@ -177,7 +159,9 @@ def parse_rows(
     if len(frame) != rows:
         raise _diagnose(_region(data, start, end), head, name, profile, "rows and header disagree")
     last = frame[expected - 1]
-    if last.dtype == np.float64:  # numbers: an empty field is NaN (pandas' isna, without its overhead)
+    if last.dtype.kind in "iub":  # whole numbers or True/False: no field was empty
+        short = np.zeros(0, dtype=np.intp)
+    elif last.dtype == np.float64:  # numbers: an empty field is NaN (pandas' isna, without its overhead)
         short = np.flatnonzero(np.isnan(last.to_numpy()))
     else:
         short = np.flatnonzero(last.isna().to_numpy())
@@ -192,25 +176,69 @@ def parse_rows(
     return frame
 
 
-def _joined(chunks: list[pd.DataFrame]) -> pd.DataFrame:
+def _chunks(
+    stream: io.BytesIO, profile: Profile, expected: int, wanted: list[int] | None
+) -> list[pd.DataFrame]:
+    """The rows in frames of about CHUNK_FIELDS fields, of the ``wanted`` columns (all when
+    None); none when the first row's field count is not the header's.
+
+    A function of its own so that no frame outlives it but the ones returned: _joined
+    lets each column's parser arrays go as soon as it has copied them.
+    """
+    chunks: list[pd.DataFrame] = []
+    with pd.read_csv(
+        stream,
+        encoding="utf-8",
+        sep=profile.delimiter,
+        decimal=profile.decimal,
+        header=None,
+        keep_default_na=False,
+        na_values=[""],
+        skip_blank_lines=False,
+        low_memory=False,
+        engine="c",
+        chunksize=max(1, CHUNK_FIELDS // expected),
+    ) as reader:
+        for chunk in reader:
+            if chunk.shape[1] != expected:  # the first row's fields are not the header's
+                return []
+            chunks.append(chunk if wanted is None else chunk[wanted])
+    return chunks
+
+
+def _joined(chunks: list[pd.DataFrame], own: Collection[int] | None) -> pd.DataFrame:
     """The chunks as one frame, each column of the type the whole file would have had.
 
     Chunks of whole numbers and decimals join as decimals, as one parse would give them;
     a column whose chunks differ otherwise (text or True/False in one, numbers or nothing
     in another) is joined as Python objects, so that :func:`numbers` names the field that
     is not a number instead of pandas turning True into 1.0.
+
+    Each column of numbers in ``own`` (every column when None) is moved into one array of
+    its own, and the parser's arrays for it are let go at once: the next column's copy
+    then reuses their memory instead of fresh pages, and :func:`numbers` hands that array
+    to the Trace as it is (:func:`_frozen`). The Trace needs arrays that own their data,
+    and the parser's do not, so one copy of each column read is made either way; made
+    here, a column at a time, it is the only one, whether the file came in one chunk or
+    many.
     """
-    if len(chunks) == 1:
-        return chunks[0]
-    mixed = [
-        column
-        for column in chunks[0].columns
-        if len({c[column].dtype for c in chunks}) > 1
-        and any(c[column].dtype.kind not in "iuf" for c in chunks)
-    ]
-    if mixed:
-        chunks = [c.astype(dict.fromkeys(mixed, object)) for c in chunks]
-    return pd.concat(chunks, ignore_index=True)
+    names = list(chunks[0].columns)
+    parts = {column: [chunk[column] for chunk in chunks] for column in names}
+    chunks.clear()  # the frames go; each column's parts are all that hold the parser's arrays
+    columns: dict[int, object] = {}
+    for column in names:
+        series = parts.pop(column)
+        kinds = {part.dtype.kind for part in series}
+        if kinds <= set("iuf") and (own is None or column in own):
+            arrays = [part.to_numpy() for part in series]
+            series.clear()
+            columns[column] = arrays[0].copy() if len(arrays) == 1 else np.concatenate(arrays)
+            arrays.clear()
+            continue
+        if len({part.dtype for part in series}) > 1 and not kinds <= set("iuf"):
+            series = [part.astype(object) for part in series]
+        columns[column] = series[0] if len(series) == 1 else pd.concat(series, ignore_index=True)
+    return pd.DataFrame(columns, copy=False)
 
 
 def _region(data: bytes, start: int, end: int) -> str:
@@ -327,14 +355,35 @@ def _not_a_number(
 
 
 def _frozen(values: _Array) -> _Array:
-    """``values`` read-only and owning its data, copied only if it is a view (of pandas' frame).
+    """``values`` read-only and owning its data, copied only if it is a view of part of an array.
 
-    The Trace then keeps the array without copying it again (model.frozen_array).
+    The Trace then keeps the array without copying it again (model.frozen_array). A column
+    of a frame is a view of the array that holds it (the frame keeps a block of one row):
+    when that array owns its data and is the column whole, it is taken instead of a copy
+    (the columns :func:`_joined` made, which nothing but the frame holds).
     """
     if not (values.flags.owndata and values.flags.c_contiguous):
-        values = values.copy()
+        values = _whole_owner(values)
     values.setflags(write=False)
     return values
+
+
+def _whole_owner(values: _Array) -> _Array:
+    """The 1-D array that owns ``values``' memory when ``values`` is all of it, else a copy."""
+    owner = values.base
+    while isinstance(owner, np.ndarray) and not owner.flags.owndata:
+        owner = owner.base
+    if (
+        isinstance(owner, np.ndarray)
+        and owner.ndim == 1
+        and owner.dtype == values.dtype
+        and owner.size == values.size
+        and owner.flags.c_contiguous
+        and values.flags.c_contiguous
+        and owner.ctypes.data == values.ctypes.data
+    ):
+        return owner
+    return values.copy()
 
 
 def whole_numbers(table: RawTable, index: int, profile: Profile, quantity: str) -> IntArray:
