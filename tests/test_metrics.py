@@ -121,3 +121,33 @@ def test_spikes_and_a_ramp_at_the_grading_switch_do_not_move_dcir() -> None:
     got = measured(spiky).values["dcir_mOhm"]
     assert clean.values["dcir_mOhm"] == pytest.approx(50.0, rel=0.02)  # the trace's own 50 mOhm
     assert got == pytest.approx(clean.values["dcir_mOhm"], rel=0.01)
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    n=st.integers(0, 3000),
+    max_points=st.sampled_from([4, 11, 50, 800]),
+    holes=st.lists(
+        st.tuples(st.integers(0, 2999), st.sampled_from([np.nan, np.inf, -np.inf]), st.booleans()),
+        max_size=4,
+    ),
+    seed=st.integers(0, 2**32 - 1),
+)
+def test_thinning_drops_what_is_not_finite_and_thins_the_rest_alike(
+    n: int, max_points: int, holes: list[tuple[int, float, bool]], seed: int
+) -> None:
+    """A series with NaN or infinite points thins as its finite points alone do, wherever they are."""
+    from pipeline.judge.thin import thin_series
+
+    rng = np.random.default_rng(seed)
+    x, y = np.arange(float(n)), rng.normal(size=n)
+    for row, value, in_x in holes:
+        if row < n:
+            (x if in_x else y)[row] = value
+    finite = np.isfinite(x) & np.isfinite(y)
+    xs, ys = thin_series(x, y, max_points)
+    fx, fy = thin_series(x[finite], y[finite], max_points)
+    assert xs.tobytes() == fx.tobytes() and ys.tobytes() == fy.tobytes()
+    assert np.isfinite(xs).all() and np.isfinite(ys).all()
+    if finite.any():  # the lowest and highest finite points are kept
+        assert ys.min() == y[finite].min() and ys.max() == y[finite].max()

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from pipeline.judge.segmentation import group_cycles, sample_weights, split_steps
+from pipeline.judge.segmentation import group_cycles, sample_weights, split_steps, weights_between
 from pipeline.model import StepKind, StepMode, Trace
 from tests.factories import build_trace, simple_formation
 
@@ -63,6 +63,30 @@ def test_sample_weights_integrate_like_the_trapezoid_rule() -> None:
     t = np.cumsum(rng.uniform(0.1, 5.0, 200))
     y = rng.normal(size=200)
     assert float(np.dot(sample_weights(t), y)) == pytest_approx(float(np.trapezoid(y, t)), rel=1e-9)
+
+
+def _summed_weights(t: np.ndarray) -> np.ndarray:
+    """The weights as their definition sums them: half of each interval into an array of zeros."""
+    w = np.zeros(len(t))
+    if len(t) > 1:
+        dt = np.diff(t)
+        w[:-1] += 0.5 * dt
+        w[1:] += 0.5 * dt
+    return w
+
+
+def test_sample_weights_are_the_summed_halves_to_the_bit_and_any_part_is_found_alone() -> None:
+    rng = np.random.default_rng(11)
+    for n in (0, 1, 2, 3, 17, 400):
+        for t in (
+            np.cumsum(rng.uniform(0.0, 5.0, n)),
+            rng.choice([0.0, -0.0, 1.0, 5e-324, -5e-324, 2.5], size=n),  # signed zeros too
+        ):
+            whole = sample_weights(t)
+            assert whole.tobytes() == _summed_weights(t).tobytes()
+            for start in range(0, n + 1, max(1, n // 7)):
+                for stop in range(start, n + 1, max(1, n // 5)):
+                    assert weights_between(t, start, stop).tobytes() == whole[start:stop].tobytes()
 
 
 def test_single_sample_blip_does_not_split_a_rest() -> None:

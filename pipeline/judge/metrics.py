@@ -25,7 +25,7 @@ from pipeline.judge.program import (
     final_rest,
     stage_program,
 )
-from pipeline.judge.segmentation import sample_weights
+from pipeline.judge.segmentation import weights_between
 from pipeline.judge.thin import thin_series
 from pipeline.model import (
     CellMetrics,
@@ -67,22 +67,31 @@ DCIR_REST_S = 60.0
 DCIR_FIT_S = 5.0
 
 
-def _rows(steps: tuple[Step, ...], indices: tuple[int, ...]) -> np.ndarray:
+def _rows(values: FloatArray, steps: tuple[Step, ...], indices: tuple[int, ...]) -> FloatArray:
+    """``values`` on the rows of the steps ``indices``, in that order: the steps' slices
+    joined (what indexing with their row numbers gives, without building those)."""
     if not indices:
-        return np.zeros(0, dtype=np.int64)
-    return np.concatenate([np.arange(steps[i].start, steps[i].stop) for i in indices])
+        return values[:0].copy()
+    return np.concatenate([values[steps[i].start : steps[i].stop] for i in indices])
 
 
 def _max(values: FloatArray) -> float | None:
-    if len(values) == 0 or np.all(np.isnan(values)):
-        return None
-    return float(np.nanmax(values))
+    """The largest value that is not NaN, or None when there is none."""
+    return _ignoring_nan(np.fmax, values)
 
 
 def _min(values: FloatArray) -> float | None:
-    if len(values) == 0 or np.all(np.isnan(values)):
+    """The smallest value that is not NaN, or None when there is none."""
+    return _ignoring_nan(np.fmin, values)
+
+
+def _ignoring_nan(pick: np.ufunc, values: FloatArray) -> float | None:
+    # what np.nanmax (np.nanmin) computes for an array of floats, fmax.reduce, with its
+    # all-NaN case (NaN) as None: one pass, no mask of NaNs the size of the values
+    if len(values) == 0:
         return None
-    return float(np.nanmin(values))
+    found = float(pick.reduce(values))
+    return None if math.isnan(found) else found
 
 
 def measure_cycle(trace: Trace, steps: tuple[Step, ...], cycle: Cycle) -> CycleMetrics:
@@ -110,8 +119,8 @@ def measure_cycle(trace: Trace, steps: tuple[Step, ...], cycle: Cycle) -> CycleM
         mean_discharge_voltage_v=(energy_wh / discharge_ah)
         if energy_wh is not None and discharge_ah
         else None,
-        max_charge_voltage_v=_max(trace.voltage_v[_rows(steps, cycle.charge_steps)]),
-        min_discharge_voltage_v=_min(trace.voltage_v[_rows(steps, cycle.discharge_steps)]),
+        max_charge_voltage_v=_max(_rows(trace.voltage_v, steps, cycle.charge_steps)),
+        min_discharge_voltage_v=_min(_rows(trace.voltage_v, steps, cycle.discharge_steps)),
         cv_duration_s=sum(
             steps[i].duration_s for i in cycle.charge_steps if steps[i].mode is StepMode.CV
         ),
@@ -198,12 +207,13 @@ def rest_view(trace: Trace, rest: Step, relax_s: float) -> tuple[RestView | None
             trace.where(rest.start),
             ("rest_voltage_drift_mV_per_h",),
         )
-    t_fit = t[keep] - t[keep][0]
+    kept = t[keep]
+    t_fit = kept - kept[0]
     slope_v_per_s, intercept_v = np.polyfit(t_fit, v[keep], 1)
     hours, volts = thin_series((t - t[0]) / 3600.0, v, VIEW_POINTS)
     view = RestView(
         Curve(hours, volts),
-        float(t[keep][0] - t[0]) / 3600.0,
+        float(kept[0] - t[0]) / 3600.0,
         float(intercept_v),
         float(slope_v_per_s * 3600.0 * 1000.0),
     )
@@ -212,7 +222,8 @@ def rest_view(trace: Trace, rest: Step, relax_s: float) -> tuple[RestView | None
 
 def record_view(trace: Trace, steps: tuple[Step, ...]) -> RecordView:
     """The whole record thinned to about VIEW_POINTS points per curve, and where its steps lie."""
-    hours = (trace.time_s - trace.time_s[0]) / 3600.0
+    hours = trace.time_s - trace.time_s[0]
+    hours /= 3600.0  # in place: one array the size of the record, not two
     start_h = float(trace.time_s[0])
 
     def curve(values: FloatArray) -> Curve:
@@ -237,14 +248,17 @@ def grading_discharge(
     Capacity accumulates row by row with the trapezoid weights of each step, so
     rests or pauses between the discharge steps add nothing.
     """
-    rows = _rows(steps, cycle.discharge_steps)
     # the same trapezoid weights the steps' capacities were integrated with, so the
-    # curve's total is exactly the cycle's discharge capacity
-    dq = np.abs(trace.current_a[rows]) * sample_weights(trace.time_s)[rows] / 3600.0
+    # curve's total is exactly the cycle's discharge capacity (each step's found from
+    # the rows around it, not from the whole record's)
+    parts = [(steps[i].start, steps[i].stop) for i in cycle.discharge_steps]
+    weights = [weights_between(trace.time_s, a, b) for a, b in parts]
+    w = np.concatenate(weights) if weights else np.zeros(0)
+    dq = np.abs(_rows(trace.current_a, steps, cycle.discharge_steps)) * w / 3600.0
     total = float(dq.sum())
     q = np.cumsum(dq) - 0.5 * dq  # each row sits mid-way through the charge it owns
     scale = 100.0 / total if total > 0 else 0.0
-    return q * scale, trace.voltage_v[rows], total
+    return q * scale, _rows(trace.voltage_v, steps, cycle.discharge_steps), total
 
 
 def _plateau_values(

@@ -99,7 +99,9 @@ def runs(labels: IntArray) -> list[tuple[int, int]]:
     """(start, stop) of each maximal run of equal labels."""
     if len(labels) == 0:
         return []
-    edges = np.flatnonzero(np.diff(labels)) + 1
+    # where a label differs from the one before (whole numbers: what a nonzero difference
+    # says, without an array of differences the size of the record)
+    edges = np.flatnonzero(labels[1:] != labels[:-1]) + 1
     starts = np.concatenate(([0], edges))
     stops = np.concatenate((edges, [len(labels)]))
     return list(zip(starts.tolist(), stops.tolist(), strict=True))
@@ -152,12 +154,13 @@ def program_step_kinds(
     """
     assert trace.step is not None
     moved = trace.current_a - band.offset_a
-    beyond = np.abs(moved) > band.threshold_a
     # rows beyond the band above it and below it (for a band at least 0 wide, every row
     # beyond it is one of them; NaN is neither): counted per step, they spare most steps
     # the search for rows against their kind
     counted = band.threshold_a >= 0.0
     up, down = moved > band.threshold_a, moved < -band.threshold_a
+    # |moved| > threshold, without an array of magnitudes when the band is at least 0 wide
+    beyond = up | down if counted else np.abs(moved) > band.threshold_a
     min_as = MIN_STEP_CHARGE_C * one_c_a * 3600.0
     blocks, notes = [], []
     for a, b in runs(trace.step):

@@ -55,13 +55,32 @@ def sample_weights(time_s: FloatArray) -> FloatArray:
     [5.0, 15.0, 10.0]
     """
     n = len(time_s)
-    w = np.zeros(n)
     if n < 2:
-        return w
-    dt = np.diff(time_s)
-    w[:-1] += 0.5 * dt
-    w[1:] += 0.5 * dt
+        return np.zeros(n)
+    half = np.diff(time_s)
+    half *= 0.5
+    w = np.empty(n)
+    np.add(half[1:], half[:-1], out=w[1:-1])
+    w[0], w[-1] = half[0], half[-1]
+    # Each weight is 0.0 + its halves, as when it was summed into an array of zeros: the
+    # same numbers, -0.0 included (0.0 + -0.0 is 0.0), with two fewer arrays of the size
+    # of the record.
+    w += 0.0
     return w
+
+
+def weights_between(time_s: FloatArray, start: int, stop: int) -> FloatArray:
+    """``sample_weights(time_s)[start:stop]``, from the rows around them alone.
+
+    A row's weight depends only on its neighbours' times, so the weights of a part of a
+    long record are found without those of the whole (the same numbers).
+
+    >>> t = np.array([0.0, 10.0, 30.0, 60.0])
+    >>> weights_between(t, 1, 3).tolist() == sample_weights(t)[1:3].tolist()
+    True
+    """
+    lo = max(start - 1, 0)
+    return sample_weights(time_s[lo : stop + 1])[start - lo : stop - lo]
 
 
 def _split_cv(
@@ -78,23 +97,26 @@ def _split_cv(
     step's extreme (highest for charge, lowest for discharge); within it, CV starts
     where |I| first falls below CV_CURRENT_FRACTION of the constant current.
     """
-    v = voltage_v[start:stop] * sign
-    i = np.abs(current_a[start:stop])
+    v = voltage_v[start:stop]
     if len(v) < 3:
         return None
-    held = v >= v.max() - CV_BAND_V
-    # last row that is not held, so the tail after it is held throughout
-    not_held = np.flatnonzero(~held)
-    tail = 0 if len(not_held) == 0 else int(not_held[-1]) + 1
+    # held: V * sign >= max(V * sign) - CV_BAND_V, compared without copies of the step
+    # (for a discharge, -V >= -min(V) - band is V <= min(V) + band, exactly: negation is)
+    held = v >= v.max() - CV_BAND_V if sign > 0 else v <= v.min() + CV_BAND_V
+    # after the last row that is not held, so the tail is held throughout (the first
+    # False from the end, found without a list of every row not held)
+    tail = 0 if held.all() else len(held) - int(np.argmin(held[::-1]))
     if tail >= len(v):
         return None
     # the constant current: the median before the held tail (of at most about 2,000 evenly
     # spaced rows: the same level to within the current's noise, without sorting hours of
     # samples for every step), or, for a program step that is CV throughout, the current
     # the step opened with
+    # (|I| of those rows and of the tail alone, not of the whole step)
     stride = max(1, -(-tail // 2048))  # ceiling division
-    i_cc = median(i[:tail:stride]) if tail > 0 else float(i[0])
-    decaying = np.flatnonzero(i[tail:] < CV_CURRENT_FRACTION * i_cc)
+    i = current_a[start:stop]
+    i_cc = median(np.abs(i[:tail:stride])) if tail > 0 else abs(float(i[0]))
+    decaying = np.flatnonzero(np.abs(i[tail:]) < CV_CURRENT_FRACTION * i_cc)
     if len(decaying) == 0:
         return None
     # a block held at constant voltage from its first row is CV throughout
@@ -109,15 +131,17 @@ def _make_step(
     trace: Trace, w: FloatArray, index: int, kind: StepKind, mode: StepMode, start: int, stop: int
 ) -> Step:
     t, v, i = trace.time_s, trace.voltage_v, trace.current_a
-    a = np.abs(i[start:stop])
-    # einsum, not np.dot: a 1-D dot product through a multi-threaded BLAS costs milliseconds
-    # of thread hand-over on a busy machine for microseconds of arithmetic
-    charge_as = float(np.einsum("i,i->", a, w[start:stop])) if kind is not StepKind.REST else 0.0
-    energy_ws = (
-        float(np.einsum("i,i,i->", a, v[start:stop], w[start:stop]))
-        if kind is not StepKind.REST
-        else 0.0
-    )
+    charge_as = energy_ws = 0.0
+    if kind is not StepKind.REST:  # a rest carries no charge: no |I| to find
+        a = np.abs(i[start:stop])
+        # einsum, not np.dot: a 1-D dot product through a multi-threaded BLAS costs
+        # milliseconds of thread hand-over on a busy machine for microseconds of arithmetic
+        charge_as = float(np.einsum("i,i->", a, w[start:stop]))
+        energy_ws = float(np.einsum("i,i,i->", a, v[start:stop], w[start:stop]))
+    amps = i[start:stop]
+    # np.mean's own arithmetic (the pairwise sum over the count), without its checks of
+    # axes and types, which cost more than the sum for the short steps
+    mean = float(np.add.reduce(amps)) / len(amps) if len(amps) else float(np.mean(amps))
     program = None
     if trace.step is not None:
         program = int(trace.step[start])
@@ -131,7 +155,7 @@ def _make_step(
         end_s=float(t[stop] if stop < len(t) else t[stop - 1]),
         capacity_ah=charge_as / 3600.0,
         energy_wh=energy_ws / 3600.0,
-        mean_current_a=float(np.mean(i[start:stop])),
+        mean_current_a=mean,
         program_step=program,
     )
 

@@ -69,13 +69,28 @@ def thin_series(x: FloatArray, y: FloatArray, max_points: int) -> tuple[FloatArr
     """
     xa = np.asarray(x, dtype=np.float64)
     ya = np.asarray(y, dtype=np.float64)
+    if len(xa) > max_points and np.isfinite(xa).all():
+        thinned = _thinned(xa, ya, max_points)
+        if np.isfinite(thinned[1]).all():
+            return thinned
+    # a point that is not finite (or a short series): drop them, then thin what is left
     finite = np.isfinite(xa) & np.isfinite(ya)
     if not finite.all():
         xa, ya = xa[finite], ya[finite]
+    if len(xa) <= max_points:
+        return xa.copy(), ya.copy()
+    return _thinned(xa, ya, max_points)
+
+
+def _thinned(xa: FloatArray, ya: FloatArray, max_points: int) -> tuple[FloatArray, FloatArray]:
+    """thin_series of a series longer than ``max_points``, as it stands.
+
+    Where any y is NaN or infinite, so is a y kept: argmin and argmax pick NaN first, -inf
+    is a lowest point and +inf a highest. So keeping only finite points is known from the
+    points kept, and a series of finite numbers needs no mask of them (thin_series).
+    """
     n = len(xa)
     columns = max(1, max_points // 2)
-    if n <= max_points:
-        return xa.copy(), ya.copy()
     per = -(-n // columns)  # ceiling division
     whole = (n // per) * per
     blocks = ya[:whole].reshape(-1, per)

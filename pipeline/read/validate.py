@@ -16,6 +16,7 @@ than ``MAX_EMPTY_FRACTION`` of the file) too low after it.
 from __future__ import annotations
 
 import dataclasses
+import math
 
 import numpy as np
 import numpy.typing as npt
@@ -24,7 +25,8 @@ from pipeline.errors import InputError
 from pipeline.model import CellType, FloatArray, Note, SourceRef, Trace
 
 Mask = npt.NDArray[np.bool_]
-Rows = npt.NDArray[np.intp]  # row numbers (0-based) into a Trace
+# Row numbers (0-based) into a Trace; a range when every row is kept (no array to build).
+Rows = npt.NDArray[np.intp] | range
 
 MIN_ROWS = 10  # common practice: fewer samples cannot show a charge, a rest and a discharge
 MAX_EMPTY_RUN = 5  # rows; common practice: a longer hole hides what the cell did
@@ -54,9 +56,13 @@ def validate_trace(trace: Trace, cell_type: CellType) -> tuple[Note, ...]:
     Raises InputError, naming the line, for anything that prevents judging.
     """
     _refuse_short(trace, len(trace))
-    empty = _empty_rows(trace)
-    notes = list(_check_empty_rows(trace, empty))
-    rows = np.flatnonzero(~empty)
+    notes: list[Note] = []
+    rows: Rows = range(len(trace))
+    if _may_have_empty_rows(trace):
+        empty = _empty_rows(trace)
+        notes += _check_empty_rows(trace, empty)
+        if empty.any():
+            rows = np.flatnonzero(~empty)
     _refuse_short(trace, len(rows))
     if len(rows) == len(trace):  # every row kept: the columns as they are, not copies
         time_s, volts, amps = trace.time_s, trace.voltage_v, trace.current_a
@@ -80,6 +86,8 @@ def drop_invalid_rows(trace: Trace) -> Trace:
     Run it after ``validate_trace`` accepted the trace; see the module docstring for
     what happens to line numbers.
     """
+    if not _may_have_empty_rows(trace):
+        return trace
     keep = ~_empty_rows(trace)
     if keep.all():
         return trace
@@ -89,6 +97,15 @@ def drop_invalid_rows(trace: Trace) -> Trace:
         if getattr(trace, name) is not None
     }
     return dataclasses.replace(trace, **changes)
+
+
+def _may_have_empty_rows(trace: Trace) -> bool:
+    """False when no time, voltage or current is NaN, as the sum of each column shows: a
+    NaN makes its sum NaN. A sum that is not finite for another reason (an overflow) only
+    sends the question on to :func:`_empty_rows`. Sums need no mask the size of the record."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        total = sum(float(np.add.reduce(c)) for c in (trace.time_s, trace.voltage_v, trace.current_a))
+    return not math.isfinite(total)
 
 
 def _empty_rows(trace: Trace) -> Mask:
@@ -171,6 +188,8 @@ def _check_time_order(trace: Trace, rows: Rows, time_s: FloatArray, steps: Float
 
 
 def _check_voltage(trace: Trace, rows: Rows, volts: FloatArray, ct: CellType) -> None:
+    if ct.min_voltage_v <= float(volts.min()) and float(volts.max()) <= ct.max_voltage_v:
+        return  # every voltage inside the range (a NaN would fail these and be looked for)
     outside = np.flatnonzero((volts < ct.min_voltage_v) | (volts > ct.max_voltage_v))
     if not outside.size:
         return
@@ -197,10 +216,12 @@ def _check_voltage(trace: Trace, rows: Rows, volts: FloatArray, ct: CellType) ->
 
 def _check_current(trace: Trace, rows: Rows, amps: FloatArray, ct: CellType) -> None:
     one_c_a = ct.nominal_capacity_ah  # 1 C in A is the nominal capacity in Ah (per hour)
-    size = np.abs(amps)
-    largest = float(size.max())
+    # the largest |I| from the extremes, without an array of magnitudes the size of the
+    # record (the same number: negation is exact, and + 0.0 makes -0.0 the 0.0 abs gives)
+    largest = max(float(amps.max()), -float(amps.min())) + 0.0
     rating = f"a {ct.name} cell ({_fmt(one_c_a, 3)} Ah nominal)"
     if largest > MAX_C_RATE * one_c_a:
+        size = np.abs(amps)
         k = int(np.argmax(size > MAX_C_RATE * one_c_a))
         flowing = size[size > MIN_C_RATE * one_c_a]
         most_too_high = np.mean(flowing > MAX_C_RATE * one_c_a) >= MOST
@@ -256,12 +277,14 @@ def _note_gaps(
     trace: Trace, rows: Rows, steps: FloatArray, amps: FloatArray, ct: CellType
 ) -> list[Note]:
     """A note on the gaps in the record (``steps``: the differences of its times)."""
-    forward = steps[steps > 0]
-    if not forward.size:
+    moving = steps > 0
+    count = int(np.count_nonzero(moving))
+    if not count:
         return []
-    limit = GAP_MIN_S if _median_under(forward, GAP_MIN_S / GAP_FACTOR) else max(
-        GAP_FACTOR * float(np.median(forward)), GAP_MIN_S
-    )
+    if _median_under(steps, moving, count, GAP_MIN_S / GAP_FACTOR):
+        limit = GAP_MIN_S
+    else:
+        limit = max(GAP_FACTOR * float(np.median(steps[moving])), GAP_MIN_S)
     gaps = np.flatnonzero(steps > limit)
     if not gaps.size:
         return []
@@ -280,14 +303,15 @@ def _note_gaps(
     return [Note("time_gaps", text, trace.where(row), blocks)]
 
 
-def _median_under(values: FloatArray, bound: float) -> bool:
-    """Whether GAP_FACTOR times the median of ``values`` (none of them NaN) is sure to be
-    at most GAP_MIN_S, as it is when more than half of them are at most ``bound``: then the
-    middle value or values, and their mean, are at most ``bound`` too, and the median need
-    not be found (a partition of every interval of the record)."""
+def _median_under(steps: FloatArray, moving: Mask, count: int, bound: float) -> bool:
+    """Whether GAP_FACTOR times the median of the ``count`` steps forward (``moving``: the
+    steps above 0, so none of them NaN) is sure to be at most GAP_MIN_S, as it is when more
+    than half of them are at most ``bound``: then the middle value or values, and their
+    mean, are at most ``bound`` too, and the median need not be found (a partition of
+    every interval of the record). Counted in place: no copy of the steps forward."""
     if not GAP_FACTOR * bound <= GAP_MIN_S:
         return False
-    return int(np.count_nonzero(values <= bound)) > values.size // 2
+    return int(np.count_nonzero(moving & (steps <= bound))) > count // 2
 
 
 def _note_temperature(trace: Trace) -> list[Note]:
