@@ -274,3 +274,40 @@ def test_many_peaks_mark_only_the_highest() -> None:
     root = parse(plots.ica_svg(Curve(v, dq_dv), peaks, width_mm=86, height_mm=54))
     assert len(root.findall(f".//{SVG}path[@class='peak']")) == plots.MAX_MARKED_PEAKS
     assert plots.marked_peaks(None, (*peaks[:3], math.nan)) == peaks[:3]
+
+
+# --- curve points the page cannot show -------------------------------------------------------
+
+
+def _distance_to_polyline(points: np.ndarray, line: np.ndarray) -> np.ndarray:
+    """Each of ``points``' distance to the nearest segment of the polyline ``line`` (mm)."""
+    a, b = line[:-1], line[1:]
+    ab = b - a
+    length2 = np.maximum((ab**2).sum(axis=1), 1e-18)
+    offsets = points[:, None, :] - a[None, :, :]
+    t = np.clip((offsets * ab[None]).sum(axis=2) / length2[None], 0.0, 1.0)
+    nearest = a[None] + t[..., None] * ab[None]
+    return np.sqrt(((points[:, None, :] - nearest) ** 2).sum(axis=2)).min(axis=1)
+
+
+def test_curve_leaves_out_only_points_the_page_cannot_show() -> None:
+    """Every point of the thinned curve lies within INVISIBLE_MM of the line drawn, the ends are
+    kept, and a long flat stretch is drawn with far fewer points."""
+    curve = cases.grading_curve()
+    frame = svgplot.frame_for(86, 54, (0.0, 100.0), (2.4, 3.6))
+    x, y = plots.decimate(curve.x, curve.y, int(frame.width * svgplot.POINTS_PER_MM))
+    every = np.column_stack([[frame.px(a) for a in x], [frame.py(b) for b in y]])
+    drawn = svgplot.simplify(every)
+    assert 2 <= len(drawn) < len(every) / 2
+    assert drawn[0].tolist() == every[0].tolist() and drawn[-1].tolist() == every[-1].tolist()
+    assert _distance_to_polyline(every, drawn).max() <= svgplot.INVISIBLE_MM + 1e-12
+    line = np.column_stack([np.linspace(0, 50, 200), np.full(200, 3.0)])
+    assert svgplot.simplify(line).tolist() == [[0.0, 3.0], [50.0, 3.0]]
+
+
+def test_curve_path_holds_its_points_in_order() -> None:
+    """The path written holds the points kept, in the curve's order, no more than before."""
+    root = parse(plots.discharge_svg(cases.grading_curve(), (), width_mm=86, height_mm=54))
+    drawn = curve_points(root)
+    assert np.all(np.diff(drawn[:, 0]) > 0)  # the discharge runs one way along its axis
+    assert 2 <= len(drawn) <= 86 * svgplot.POINTS_PER_MM
