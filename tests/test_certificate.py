@@ -257,6 +257,24 @@ def test_a_passed_cell_gets_one_page_without_plots_and_the_others_keep_them() ->
         assert "Plateaus on the grading discharge" in html and "dQ/dV peaks" in html
 
 
+def test_a_passed_cells_rows_in_window_hold_severity_and_outcome_in_one_cell() -> None:
+    """One cell, the outcome after a tab: a row of a passed cell's page in the renderer's fewest
+    boxes. A row out of its window, or any row of a full certificate, keeps its two cells."""
+    result = cases.pass_result()
+    passed = render_html(result)
+    for check in result.verdict.checks:
+        words = f"{check.severity.value}&#9;{certificate.OUTCOME_WORDS[check.outcome]}"
+        if check.outcome is Outcome.IN_WINDOW:
+            assert f'<td class="c-sev-outcome" colspan="2">{words}</td>' in passed
+    skipped = dataclasses.replace(result.verdict.checks[0], outcome=Outcome.SKIPPED)
+    verdict = dataclasses.replace(result.verdict, checks=(skipped, *result.verdict.checks[1:]))
+    one = render_html(dataclasses.replace(result, verdict=verdict))
+    assert one.count("c-sev-outcome") == len(result.verdict.checks) - 1
+    assert '<td class="c-outcome">not made (allowed)</td>' in one
+    for html in (render_html(result, full=True), render_html(cases.fail_result())):
+        assert "c-sev-outcome" not in html and "&#9;" not in html
+
+
 # --- rendering ------------------------------------------------------------------------------
 
 

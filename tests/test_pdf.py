@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import io
+import itertools
 import os
 import re
 import shutil
@@ -10,6 +11,7 @@ import subprocess
 import types
 from collections.abc import Iterator
 from pathlib import Path
+from xml.etree import ElementTree
 
 import pytest
 from pypdf import PdfReader
@@ -432,6 +434,36 @@ def test_xml_parse_steps_aside_for_a_weasyprint_that_builds_documents_differentl
     finally:
         monkeypatch.undo()
         pdf._xml_parse_fits.cache_clear()
+
+
+def test_whitespace_beside_blocks_is_dropped_and_between_inline_elements_kept() -> None:
+    root = ElementTree.fromstring(
+        "<body>\n <section>\n  <h2>Checks</h2>\n  <table><tbody>\n   <tr><td>a <span>b</span> "
+        "<span>c</span></td></tr>\n  </tbody></table>\n </section>\n <p>x <b>y</b> z</p>\n</body>"
+    )
+    pdf.drop_layout_whitespace(root)
+    assert ElementTree.tostring(root, encoding="unicode") == (
+        "<body><section><h2>Checks</h2><table><tbody><tr><td>a <span>b</span> <span>c</span>"
+        "</td></tr></tbody></table></section><p>x <b>y</b> z</p></body>"
+    )
+
+
+@pytest.mark.skipif(shutil.which("pdftotext") is None, reason="needs pdftotext (poppler-utils)")
+def test_a_passed_cells_outcomes_start_under_their_heading(passed: Rendered, tmp_path: Path) -> None:
+    """The outcome a tab stop places (one cell with the severity) starts where its heading does."""
+    (tmp_path / "passed.pdf").write_bytes(passed.data)
+    words = subprocess.run(
+        ["pdftotext", "-bbox", str(tmp_path / "passed.pdf"), "-"], check=True, capture_output=True,
+        text=True,
+    ).stdout
+    found = re.findall(r'<word xMin="([\d.]+)" yMin="([\d.]+)"[^>]*>([^<]*)</word>', words)
+    heading = next(float(x) for x, _, word in found if word == "Outcome")
+    outcomes = [  # where each "in window" begins
+        float(x) for (x, y, word), (_, y_next, following) in itertools.pairwise(found)
+        if word == "in" and following == "window" and y == y_next
+    ]
+    assert len(outcomes) == len(passed.result.verdict.checks)
+    assert all(abs(x - heading) < 0.2 for x in outcomes), (heading, outcomes)
 
 
 # --- plot labels drawn whole (svgtext.py) ---------------------------------------------------
