@@ -317,7 +317,10 @@ class CurrentBand:
     current at rest (1.4826 x the median absolute deviation), both estimated from the
     ``rows`` samples near zero current; ``floor_a`` is the rule set's ``rest_current_C``
     times the nominal capacity. ``threshold_a`` is the larger of the floor and a multiple
-    of the noise, so that noise at rest can never make a step.
+    of the noise, so that noise at rest can never make a step. ``offset_u_a`` is the
+    standard uncertainty of the offset estimate; ``corrected``: the offset was taken out
+    of every row of the current before steps were told and charge was counted
+    (rest_band.take_out_offset), so the band is centred on zero (``centre_a``).
     """
 
     offset_a: float
@@ -325,6 +328,13 @@ class CurrentBand:
     threshold_a: float
     floor_a: float
     rows: int
+    offset_u_a: float = 0.0
+    corrected: bool = False
+
+    @property
+    def centre_a(self) -> float:
+        """Where rest lies in the current as analysed: zero once the offset is taken out."""
+        return 0.0 if self.corrected else self.offset_a
 
 
 @dataclass(frozen=True, slots=True)
@@ -656,6 +666,7 @@ class RuleSet:
     dcir_pulse_s: float = 10.0
     relax_s: float = 600.0
     rest_current_fraction: float = 0.002  # |I| below this x nominal capacity (A/Ah) is rest
+    zero_offset: str = "corrected"  # or "as recorded": the channel's zero offset left in
     description: str = ""
     program: Program = field(default_factory=Program)
     family: str | None = None  # one of FAMILIES; None: not declared

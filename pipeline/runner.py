@@ -46,6 +46,7 @@ def judge(
     # A station's worker imports it before its first cell (worker.prepare_process).
     from pipeline.judge.evaluate import evaluate
     from pipeline.judge.metrics import measure
+    from pipeline.judge.rest_band import estimate_band, take_out_offset
     from pipeline.judge.segmentation import split_steps
 
     stages = file_stages(trace.metadata)  # a file of one stage is judged on that stage's checks
@@ -53,7 +54,11 @@ def judge(
     notes = validate_trace(trace, cell_type)
     trace = drop_invalid_rows(trace)
     one_c_a = cell_type.nominal_capacity_ah  # 1 C in A is the nominal capacity in Ah per hour
-    segmentation = split_steps(trace, rule_set.rest_current_fraction * one_c_a, one_c_a)
+    rest_a = rule_set.rest_current_fraction * one_c_a
+    band = estimate_band(trace.current_a, rest_a, one_c_a)
+    if rule_set.zero_offset == "corrected":  # the channel's zero offset, out of every row
+        trace, band = take_out_offset(trace, band)
+    segmentation = split_steps(trace, rest_a, one_c_a, band)
     metrics = measure(
         trace,
         segmentation,

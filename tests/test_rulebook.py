@@ -169,6 +169,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_rule_set() -> 
     assert (two.min_voltage_v, two.max_voltage_v) == (0.5, 4.0)  # from [plausible]
     assert rs.plateau == PlateauSettings(4.0, 6.0, 2.0, 2.5, 501, 2.0, 0.5)
     assert (rs.dcir_pulse_s, rs.relax_s, rs.rest_current_fraction) == (5.0, 900.0, 0.01)
+    assert rs.zero_offset == "as recorded"
     assert rs.program == Program(3, 14, 2.0, 0.05, 7200.0)
     (rule,) = rs.rules
     assert rule.id == "capacity" and rule.metric == "grading_capacity_Ah"

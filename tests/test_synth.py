@@ -351,7 +351,7 @@ def test_normal_cells_spread_as_a_lot(lot: dict[str, SimulatedRecord]) -> None:
 
 def test_channel_errors_have_the_size_the_channel_declares() -> None:
     # robust location and scale of the rest rows (median; 1.4826 x MAD, Iglewicz and Hoaglin 1993)
-    channel = Channel(range_a=50.0, current_noise_fraction=5e-4, rest_offset_fraction=1e-4)
+    channel = Channel(range_a=50.0, current_noise_fraction=5e-4, offset_fraction=1e-4)
     record = simulate(seed=3, channel=channel)
     true = simulate(seed=3, **NO_NOISE)
     rest = true.current_a == 0.0

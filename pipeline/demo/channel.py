@@ -20,20 +20,22 @@ from pipeline.model import FloatArray, IntArray
 class Channel:
     """The measurement errors of one cycler channel, as a real record carries them.
 
-    ``range_a`` is the channel's full-scale current range. Current noise (rms) and the
-    zero offset are fractions of it: a channel of a 0.05 % accuracy class shows noise of
-    about 0.01-0.1 % of full scale and an offset of a few mA at rest (from memory,
-    medium; no single published source). The offset shows at rest only: while current
-    flows the channel regulates what it measures, so the record shows the set current.
-    Voltage noise of 0.5-2 mV rms (from memory, medium). At each step change the first
-    row shows the switch under way: the current overshoots the new level or is still
-    ramping towards it, by up to ``step_change_fraction`` of the change, and the voltage
-    spikes by up to ``step_change_v`` (common practice to expect; sizes our own).
+    ``range_a`` is the channel's full-scale current range. Current noise (rms) and the zero
+    offset are fractions of it: a channel of a 0.05 % accuracy class shows noise of about
+    0.01-0.1 % of full scale and an offset of a few mA (from memory, medium; no single
+    published source). The offset is a zero error of the current measurement, so it is in
+    every row, while current flows as at rest: measured = true + offset, and it is counted
+    into every charge and discharge (formgate estimates it at rest and takes it out:
+    rest_band.take_out_offset). Voltage noise of 0.5-2 mV rms (from memory, medium). At each
+    step change the first row shows the switch under way: the current overshoots the new
+    level or is still ramping towards it, by up to ``step_change_fraction`` of the change,
+    and the voltage spikes by up to ``step_change_v`` (common practice to expect; sizes our
+    own).
     """
 
     range_a: float
     current_noise_fraction: float = 5e-4
-    rest_offset_fraction: float = 1e-4
+    offset_fraction: float = 1e-4
     voltage_noise_v: float = 1e-3
     temperature_noise_c: float = 0.05
     step_change_fraction: float = 0.3
@@ -68,15 +70,13 @@ def add_channel_errors(
     """What ``channel`` records of the true voltage, current and temperature (new arrays).
 
     ``step`` numbers the program steps row by row: the first row of each step after the
-    first shows the switch under way (Channel). Rows where the true current is exactly
-    zero are rest: there the record shows the zero offset plus noise.
+    first shows the switch under way (Channel). Every row carries the zero offset and
+    noise: at rest (true current exactly zero) that is all the record shows.
     """
     n = len(voltage_v)
     volts = voltage_v + rng.normal(0.0, channel.voltage_noise_v, n)
-    rest = current_a == 0.0
-    offset = channel.rest_offset_fraction * channel.range_a
-    amps = current_a + np.where(rest, offset, 0.0)
-    amps = amps + rng.normal(0.0, channel.current_noise_fraction * channel.range_a, n)
+    offset = channel.offset_fraction * channel.range_a
+    amps = current_a + rng.normal(offset, channel.current_noise_fraction * channel.range_a, n)
     firsts = np.flatnonzero(np.diff(step) != 0) + 1
     if len(firsts) and (channel.step_change_fraction > 0 or channel.step_change_v > 0):
         change = current_a[firsts] - current_a[firsts - 1]

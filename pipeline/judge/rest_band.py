@@ -12,6 +12,8 @@ Cutting the record into steps and cycles is segmentation.py's job.
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
 
 from pipeline.judge.medians import median, median_side
@@ -30,6 +32,14 @@ NOISE_MULTIPLE = 5.0
 # The band is never wider than this (in C): beyond it the channel is too noisy to tell a
 # CV tail's end from rest, and a note says so (common practice, a proposal).
 MAX_REST_BAND_C = 0.02
+# The offset is taken out of the current when it stands out of its own scatter by more than
+# this many standard uncertainties (z = 3: a two-sided normal tail of 0.27 %, computed with
+# scipy.stats.norm; the multiple itself is common practice for a significance test). Where
+# the offset is a median of n samples, its standard uncertainty is sqrt(pi / 2) = 1.2533
+# times that of a mean, sigma / sqrt(n) (the median's asymptotic variance, Kenney and
+# Keeping 1962).
+SIGNIFICANT_Z = 3.0
+MEDIAN_EFFICIENCY = 1.2533
 # Hysteresis: a row joins a current step above the threshold and leaves it only below
 # this fraction of it, so rows that hover near the threshold do not chatter.
 RELEASE_FRACTION = 0.5
@@ -52,10 +62,11 @@ def estimate_band(current_a: FloatArray, floor_a: float, one_c_a: float) -> Curr
     per hour. Offset and noise come from the rows near zero: the median, and 1.4826 times
     the median absolute deviation (a consistent estimate of the standard deviation for
     normal noise: Iglewicz and Hoaglin 1993), refined once on the rows inside the first
-    band so that a slow CV tail does not widen it.
+    band so that a slow CV tail does not widen it. The offset is then the mean of every row
+    of the record inside the band, with its standard uncertainty (``offset_u_a``).
 
     >>> band = estimate_band(np.array([0.003] * 30 + [5.0] * 30), 0.04, 20.0)
-    >>> band.offset_a, band.threshold_a
+    >>> round(band.offset_a, 9), band.threshold_a
     (0.003, 0.04)
     """
     cap_a = MAX_REST_BAND_C * one_c_a
@@ -63,7 +74,7 @@ def estimate_band(current_a: FloatArray, floor_a: float, one_c_a: float) -> Curr
     # scatter, without sorting hours of samples twice
     every = current_a[:: max(1, -(-len(current_a) // ESTIMATE_ROWS))]
     near = every[np.abs(every) <= NEAR_ZERO_C * one_c_a]
-    offset = noise = 0.0
+    offset = noise = width = 0.0
     used = 0
     for _ in range(2):
         if len(near) < MIN_NOISE_ROWS:
@@ -74,7 +85,44 @@ def estimate_band(current_a: FloatArray, floor_a: float, one_c_a: float) -> Curr
         width = min(max(floor_a, NOISE_MULTIPLE * noise), cap_a)
         near = every[np.abs(every - offset) <= 2.0 * width]
     threshold = min(max(floor_a, NOISE_MULTIPLE * noise), max(cap_a, floor_a))
-    return CurrentBand(offset, noise, threshold, floor_a, used)
+    offset_u = 0.0
+    if used:
+        # the offset itself from every row of the record at rest, not the sample: its
+        # uncertainty falls with the square root of the rows, and it is subtracted from every
+        # row of every charge and discharge (take_out_offset). The mean of the rows inside the
+        # band (outliers are outside it), its standard uncertainty s / sqrt(n) for independent
+        # samples (JCGM 100:2008, 4.2.3).
+        inside = current_a[np.abs(current_a - offset) <= width]
+        if len(inside) >= MIN_NOISE_ROWS:
+            offset, used = float(inside.mean()), len(inside)
+            offset_u = float(inside.std(ddof=1)) / np.sqrt(used)
+        else:
+            offset_u = MEDIAN_EFFICIENCY * noise / np.sqrt(used)
+    return CurrentBand(offset, noise, threshold, floor_a, used, float(offset_u))
+
+
+def take_out_offset(trace: Trace, band: CurrentBand) -> tuple[Trace, CurrentBand]:
+    """The trace with the channel's zero offset taken out of every row of its current, and
+    its band marked so (centred on zero), when the offset stands out of its scatter.
+
+    A channel's zero offset is in every row it records, while current flows as at rest
+    (its accuracy class gives it as a share of the range), so it is counted into every
+    charge and discharge: 5 mA over a 2 h discharge is 0.01 Ah. Where the rest rows tell
+    the offset apart from zero (more than SIGNIFICANT_Z standard uncertainties), it is
+    subtracted; otherwise the current stays as recorded (the offset is then within its own
+    uncertainty of zero). The band's ``offset_u_a`` is what remains uncertain either way.
+
+    >>> t = Trace("c.csv", {}, np.arange(60.0), np.full(60, 3.3),
+    ...           np.array([0.005] * 30 + [5.005] * 30))
+    >>> band = estimate_band(t.current_a, 0.04, 20.0)
+    >>> fixed, marked = take_out_offset(t, dataclasses.replace(band, noise_a=1e-4, offset_u_a=2e-5))
+    >>> marked.corrected, round(float(fixed.current_a[-1]), 9)
+    (True, 5.0)
+    """
+    if not band.rows or abs(band.offset_a) <= SIGNIFICANT_Z * band.offset_u_a:
+        return trace, band
+    corrected = dataclasses.replace(trace, current_a=trace.current_a - band.offset_a)
+    return corrected, dataclasses.replace(band, corrected=True)
 
 
 def row_kinds(current_a: FloatArray, band: CurrentBand) -> IntArray:
@@ -84,7 +132,7 @@ def row_kinds(current_a: FloatArray, band: CurrentBand) -> IntArray:
     release level (RELEASE_FRACTION of the threshold) and the threshold keeps the state
     of the row before it.
     """
-    moved = current_a - band.offset_a
+    moved = current_a - band.centre_a
     size = np.abs(moved)
     state = np.where(size > band.threshold_a, 1, np.where(size <= RELEASE_FRACTION * band.threshold_a, 0, -1))
     # rows in between take the last decided state (forward fill of the decided rows)
@@ -153,7 +201,7 @@ def program_step_kinds(
     (at least MIN_STEP_ROWS rows beyond the band holding MIN_STEP_CHARGE_C), not noise.
     """
     assert trace.step is not None
-    moved = trace.current_a - band.offset_a
+    moved = trace.current_a - band.centre_a
     # rows beyond the band above it and below it (for a band at least 0 wide, every row
     # beyond it is one of them; NaN is neither): counted per step, they spare most steps
     # the search for rows against their kind

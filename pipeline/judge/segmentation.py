@@ -26,6 +26,7 @@ from pipeline.judge.rest_band import (
     runs,
 )
 from pipeline.model import (
+    CurrentBand,
     Cycle,
     FloatArray,
     Note,
@@ -161,23 +162,27 @@ def _make_step(
 
 
 _KIND = {1: StepKind.CHARGE, -1: StepKind.DISCHARGE, 0: StepKind.REST}
-def split_steps(trace: Trace, rest_current_a: float, one_c_a: float) -> Segmentation:
+def split_steps(
+    trace: Trace, rest_current_a: float, one_c_a: float, band: CurrentBand | None = None
+) -> Segmentation:
     """Segment ``trace`` into steps and cycles.
 
     ``rest_current_a`` (A) is the rule set's rest current, the least half-width of the
     rest band; ``one_c_a`` (A) is the cell's nominal capacity per hour. The band is
     centred on the file's own zero offset and widened to its noise (estimate_band).
     Charge and discharge steps are split into a CC part and a CV tail where the
-    voltage is held while the current decays.
+    voltage is held while the current decays. ``band``: the band estimated already (and
+    the offset taken out of ``trace`` when it says so: rest_band.take_out_offset).
     """
-    band = estimate_band(trace.current_a, rest_current_a, one_c_a)
+    if band is None:
+        band = estimate_band(trace.current_a, rest_current_a, one_c_a)
     w = sample_weights(trace.time_s)
     notes = band_notes(trace, band, one_c_a)
     if trace.step is not None:
         blocks, more = program_step_kinds(trace, band, w, one_c_a)
         notes += more
     else:
-        charge_as = np.abs(trace.current_a - band.offset_a) * w
+        charge_as = np.abs(trace.current_a - band.centre_a) * w
         kinds = clean_kinds(row_kinds(trace.current_a, band), w, charge_as, one_c_a)
         blocks = [(a, b, int(kinds[a])) for a, b in runs(kinds)]
     steps: list[Step] = []

@@ -199,10 +199,16 @@ def _band_text(band: CurrentBand | None) -> str:
         if band.rows
         else "too few rows near zero current to estimate the channel's noise"
     )
-    return (
+    text = (
         f"Rest is current within {ma(band.threshold_a)} of the zero offset ({source}; "
         f"the rule set's rest current is {ma(band.floor_a)})."
     )
+    if band.corrected:
+        text += (
+            f" The zero offset was taken out of every row of the current before charge was "
+            f"counted (its standard uncertainty {band.offset_u_a * 1000:.2g} mA)."
+        )
+    return text
 
 
 # The plot that shows each kind of failed check (evidence.py), by the metric it judges.

@@ -149,6 +149,10 @@ def _band(band: CurrentBand | None) -> dict[str, Any] | None:
         "threshold_A": band.threshold_a,
         "rule_floor_A": band.floor_a,
         "rows_near_zero": band.rows,
+        # the offset estimate's standard uncertainty, and whether it was taken out of the
+        # current before charge was counted (rest_band.take_out_offset)
+        "offset_u_A": band.offset_u_a,
+        "offset_corrected": band.corrected,
     }
 
 
@@ -362,6 +366,8 @@ def schema() -> dict[str, Any]:
                             "threshold_A",
                             "rule_floor_A",
                             "rows_near_zero",
+                            "offset_u_A",
+                            "offset_corrected",
                         ],
                         "properties": {
                             "offset_A": {"type": "number"},
@@ -369,6 +375,8 @@ def schema() -> dict[str, Any]:
                             "threshold_A": {"type": "number", "exclusiveMinimum": 0},
                             "rule_floor_A": {"type": "number", "exclusiveMinimum": 0},
                             "rows_near_zero": {"type": "integer", "minimum": 0},
+                            "offset_u_A": {"type": "number", "minimum": 0},
+                            "offset_corrected": {"type": "boolean"},
                         },
                     },
                 ]

@@ -345,6 +345,7 @@ def _assemble(
         dcir_pulse_s=num(measure, "dcir_pulse_s"),
         relax_s=num(measure, "relax_s"),
         rest_current_fraction=num(measure, "rest_current_C"),
+        zero_offset=str(measure.get("zero_offset", "corrected")),
         description=str(meta["description"]),
         program=Program(
             cycles=_int_or_none(program, "cycles"),

@@ -29,6 +29,7 @@ from pipeline.model import (
 )
 
 TEXT = "text"
+ZERO_OFFSET = ("corrected", "as recorded")
 NUMBER = "number"
 INTEGER = "integer"
 TEXT_LIST = "list of text"
@@ -269,6 +270,15 @@ TABLES: tuple[Table, ...] = (
                 minimum=0.0,
                 minimum_exclusive=True,
                 maximum=1.0,
+            ),
+            Key(
+                "zero_offset",
+                TEXT,
+                "the channel's zero offset, estimated from the current at rest: taken out of "
+                "every row before charge is counted when it stands out of its own scatter "
+                "(corrected), or left in the current as the cycler recorded it",
+                default="corrected",
+                allowed=ZERO_OFFSET,
             ),
         ),
     ),
