@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from pipeline.judge.metricdefs import METRIC_NAMES
 from pipeline.judge.metrics import measure
 from pipeline.judge.segmentation import split_steps
-from pipeline.model import PlateauSettings, Trace
+from pipeline.model import PlateauSettings, Program, Trace
 from tests.factories import build_trace, cc, rest, simple_formation
 
 
@@ -61,15 +61,26 @@ def test_energy_over_capacity_is_mean_discharge_voltage() -> None:
 
 
 def test_missing_final_rest_gives_no_drift_and_a_note() -> None:
-    m = measured(build_trace(simple_formation(final_rest_s=300.0)))
+    trace = build_trace(simple_formation(final_rest_s=300.0))
+    m = measured(trace, program=Program(cycles=2))  # the program known: its end is the program's
     assert m.values["rest_voltage_drift_mV_per_h"] is None
     assert [n.code for n in m.notes] == ["final_rest_too_short"]
     assert m.notes[0].blocks == ("rest_voltage_drift_mV_per_h",)
+    # without a program, a last rest of 5 min after rests of 30 min tells that it was cut
+    (note,) = measured(trace).notes
+    assert note.code == "program_incomplete" and "far shorter than the rests" in note.text
 
 
 def test_record_without_discharge_has_no_grading_values() -> None:
     trace = build_trace([rest(600.0, 3.3), cc(3600.0, 1.0, lambda q: 3.3 + q)])
     m = measured(trace)
+    assert m.values["grading_capacity_Ah"] is None
+    # it ends while the charge still flows: cut short, whatever program it ran
+    assert [n.code for n in m.notes] == ["program_incomplete"]
+    assert m.notes[0].text.endswith("while current still flows: the record was cut short")
+    # a record with no discharge that ends at rest has no complete cycle
+    ended = build_trace([rest(600.0, 3.3), cc(3600.0, 1.0, lambda q: 3.3 + q), rest(600.0, 3.5)])
+    m = measured(ended)
     assert m.values["grading_capacity_Ah"] is None and m.values["cycle_count"] == 0
     assert "no_complete_cycle" in [n.code for n in m.notes]
 

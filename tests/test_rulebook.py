@@ -177,7 +177,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_rule_set() -> 
     assert (rule.severity, rule.hazard) == (Severity.REJECT, Hazard.ABNORMAL_CAPACITY)
     assert (rule.message, rule.if_missing) == ("Grading capacity out of window.", "skip")
     assert rule.cell_types == ("DEMO-ALL-1", "DEMO-ALL-2")
-    assert rule.where == SourceRef("all_keys.toml", 44)
+    assert rule.where == SourceRef("all_keys.toml", 45)
     assert (one.stages, two.stages) == (None, ("formation", "grading"))
     assert (rs.stages, rs.stage_overdue_h) == (("formation", "aging", "grading"), 240.0)
     assert rs.aging == AgingSettings(5.0, -0.25, 23.0)

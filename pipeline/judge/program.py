@@ -5,7 +5,8 @@ Real channels abort programs (power loss, channel fault, operator stop), so the 
 discharge of a record is not always the grading discharge: a record cut during the
 second charge holds only the formation cycle. The grading cycle is the one the
 program names: by its step number when the file has a step column and the rule set
-gives ``grading_step``, else by the program's cycle count, else the last cycle. A
+gives ``grading_step``, else by the program's cycle count, else the last cycle, when the
+record's own end shows that it was not cut (:func:`cut_short`). A
 discharge counts as finished when another step follows it, or when it stopped within
 a tolerance of the program's end-of-discharge voltage. A record that ends before its
 grading discharge is finished is *incomplete*: a note says where it ends, the metrics
@@ -185,12 +186,51 @@ def choose_grading(trace: Trace, segmentation: Segmentation, program: Program) -
                 ),
             )
         return GradingChoice(finished[program.cycles - 1], first_ok, notes)
+    # no program to go by: the record's own end tells whether it was cut short, so that a
+    # record cut in its grading charge is never graded on its formation cycle
+    cut = cut_short(segmentation)
+    if cut is not None:
+        return _none(first_ok, _incomplete(trace, segmentation, cut))
     complete = [c for c in cycles if c.complete]
     if not complete:
         return GradingChoice(None, first_ok, ())
     if complete[-1] not in finished:
         return _none(first_ok, _incomplete(trace, segmentation, "before its last discharge was finished"))
     return GradingChoice(complete[-1], first_ok, ())
+
+
+# Without a program, a record that ends in a rest shorter than this share of its earlier rests
+# (the median of the rests between its steps) was cut short: a program's last rest is as long
+# as its others or longer (our own choice of share; a final rest that measures self-discharge
+# is hours long).
+SHORT_REST_SHARE = 0.25
+
+
+def cut_short(segmentation: Segmentation) -> str | None:
+    """Why a record judged without a program looks cut short by its own end, or None.
+
+    A cycler program ends with its current off, so a record whose last step still carries
+    current (beyond the rest band) was cut during that step; one that ends in a rest far
+    shorter than the rests between its steps was cut during that rest.
+    """
+    steps = segmentation.steps
+    if not steps:
+        return None
+    last = steps[-1]
+    if last.kind is not StepKind.REST:
+        return "while current still flows: the record was cut short"
+    earlier = sorted(
+        s.duration_s for s in steps[1:-1] if s.kind is StepKind.REST and s.duration_s > 0
+    )
+    if not earlier:
+        return None
+    typical = earlier[len(earlier) // 2]
+    if last.duration_s < SHORT_REST_SHARE * typical:
+        return (
+            f"{last.duration_s / 60.0:.1f} min into that rest, far shorter than the rests "
+            f"between its steps ({typical / 60.0:.0f} min): the record was cut short"
+        )
+    return None
 
 
 def _by_step(
