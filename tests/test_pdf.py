@@ -600,3 +600,34 @@ def test_nothing_on_a_page_reaches_past_its_margins(hazards: types.ModuleType, m
                 f"page {number}: <{box.element_tag} class={box.element.get('class')}> "
                 f"runs {far - right:.1f} px past the right margin"
             )
+
+
+@pytest.mark.slow
+def test_every_passed_demo_cell_certified_as_a_station_does_is_one_page() -> None:
+    """Read through the demo's channel (its zero offset taken out, which the data-quality
+    section says), with the scope line that names the cell's own certificate: still one page."""
+    import datetime
+
+    from pipeline.demo.lots import ALL_DEMO_CELLS, demo_file_bytes
+    from pipeline.model import VerdictKind
+    from pipeline.names import cell_file_stem
+    from pipeline.report.result import to_json
+    from pipeline.report.verification import verification_code
+    from pipeline.rulebook.book import load_rules_dir
+    from pipeline.runner import judge
+    from pipeline.shipped import RULES_DIR
+
+    rulebook = load_rules_dir(RULES_DIR)
+    at = datetime.datetime(2026, 3, 2, 12, 0, tzinfo=datetime.UTC)
+    checked = corrected = 0
+    for cell in ALL_DEMO_CELLS:
+        result = judge(demo_file_bytes(cell), f"{cell.cell_id}.csv", rulebook, analysed_at=at)
+        if result.verdict.kind is not VerdictKind.PASS:
+            continue
+        html = render_html(result, verification_code(to_json(result)),
+                           cell_certificate=f"{cell_file_stem(result.cell_id)}.pdf")
+        pages = len(PdfReader(io.BytesIO(pdf.render_pdf(html))).pages)
+        assert pages == 1, f"{cell.cell_id}: {pages} pages"
+        checked += 1
+        corrected += bool(result.current_band and result.current_band.corrected)
+    assert checked >= 10 and corrected == checked

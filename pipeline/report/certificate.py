@@ -137,7 +137,7 @@ def _decision(result: CellResult) -> list[dict[str, object]]:
         sections.append({"title": "Also out of window (review)", "kind": "review", "items": review})
     if not_made:
         sections.append({"title": "Checks not made", "kind": "not-made", "items": messages(not_made)})
-    if verdict.left_out:
+    if verdict.left_out and verdict.kind is not VerdictKind.PASS:  # a pass's headline names them
         sections.append({
             "title": "Checks not made, which the rule set allows to be left out",
             "kind": "left-out",
@@ -193,22 +193,23 @@ def _band_text(band: CurrentBand | None) -> str:
         return ""
     def ma(value_a: float) -> str:
         return f"{_signed(f'{value_a * 1000:.3g}')} mA"
+    if band.corrected:  # one sentence, as long as the other: a passed cell's page is one page
+        return (
+            f"The channel's zero offset, {ma(band.offset_a)} (standard uncertainty "
+            f"{band.offset_u_a * 1000:.2g} mA; noise {ma(band.noise_a)} rms, from {band.rows} "
+            f"rows at rest), was taken out of every row; rest is current within "
+            f"{ma(band.threshold_a)} of zero (the rule set's rest current is {ma(band.floor_a)})."
+        )
     source = (
         f"the channel's zero offset {ma(band.offset_a)} and noise {ma(band.noise_a)} rms, "
         f"from {band.rows} rows near zero current"
         if band.rows
         else "too few rows near zero current to estimate the channel's noise"
     )
-    text = (
+    return (
         f"Rest is current within {ma(band.threshold_a)} of the zero offset ({source}; "
         f"the rule set's rest current is {ma(band.floor_a)})."
     )
-    if band.corrected:
-        text += (
-            f" The zero offset was taken out of every row of the current before charge was "
-            f"counted (its standard uncertainty {band.offset_u_a * 1000:.2g} mA)."
-        )
-    return text
 
 
 # The plot that shows each kind of failed check (evidence.py), by the metric it judges.
@@ -396,9 +397,12 @@ def build_context(
     word, headline = VERDICT_WORDS[kind]
     decided = deciding(result.verdict) if kind is VerdictKind.FAIL else ()
     if kind is VerdictKind.PASS and result.verdict.left_out:
+        # named here, and in the checks table ("not made (allowed)"): a passed cell's page is one
+        names = list(dict.fromkeys(c.metric for c in result.verdict.left_out))
+        listed = names[0] if len(names) == 1 else ", ".join(names[:-1]) + " and " + names[-1]
         headline = (
-            "Every check made is within its acceptance window; the checks below were not "
-            "made, as the rule set allows."
+            f"Every check made is within its acceptance window; the checks of {listed} were "
+            "not made, as the rule set allows."
         )
     missing = [s for s in result.needed_stages if s not in result.stages]
     if kind is VerdictKind.PASS and missing:
