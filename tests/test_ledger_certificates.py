@@ -125,3 +125,16 @@ def test_a_letter_waits_for_a_linked_file_at_most_its_longest_wait(ledger: Ledge
     ledger.outbox.queue(letter, now=at(0))
     assert ledger.outbox.due(at(LINK_WAIT_S - 1)) == []
     assert [m.message_id for m in ledger.outbox.due(at(LINK_WAIT_S))] == ["<c2@x.example>"]
+
+
+def test_status_counts_the_letters_that_wait_for_a_certificate(ledger: Ledger) -> None:
+    letter = dataclasses.replace(mail("<f3@x.example>"), attachment_path="certificates/F3.pdf")
+    f3 = judged(ledger, "f3", "fail", letters=(letter,))
+    linked = dataclasses.replace(mail("<c3@x.example>", kind="hold"), waits_for="/nowhere/C3.pdf")
+    ledger.outbox.queue(linked, now=at(0))
+    ledger.outbox.queue(mail("<a1@x.example>", kind="alert"), now=at(0))
+    assert ledger.outbox.counts()["pending"] == 3
+    assert ledger.outbox.waiting_for_files(at(10)) == 2
+    ledger.certificates.rendered(f3, now=at(11))
+    assert ledger.outbox.waiting_for_files(at(12)) == 1
+    assert ledger.outbox.waiting_for_files(at(LINK_WAIT_S + 1)) == 0  # waited its longest

@@ -261,6 +261,21 @@ class Outbox:
             )
             return cur.rowcount
 
+    def waiting_for_files(self, now: datetime.datetime) -> int:
+        """Pending mail held back only by a certificate it attaches or a file it links that is
+        not there yet (see :meth:`due`): `formgate status` says so beside the pending count."""
+        gave_up = utc_text(now - datetime.timedelta(seconds=LINK_WAIT_S), "now")
+        row = self.db.one(
+            "SELECT count(*) AS n FROM outbox o WHERE o.state = 'pending' AND ("
+            " EXISTS (SELECT 1 FROM certificate_queue q "
+            "         WHERE q.result_id = o.cell_result_id AND q.done_at IS NULL)"
+            " OR (o.waits_for IS NOT NULL AND o.created_at > ? AND NOT EXISTS ("
+            "     SELECT 1 FROM published p WHERE p.path = o.waits_for "
+            "     AND p.published_at >= o.created_at)))",
+            (gave_up,),
+        )
+        return 0 if row is None else int(row["n"])
+
     def counts(self) -> dict[str, int]:
         counts = dict.fromkeys(("pending", "sent", "parked"), 0)
         for state, n in self.db.rows("SELECT state, count(*) FROM outbox GROUP BY state"):

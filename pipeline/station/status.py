@@ -223,9 +223,11 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
             if cell is not None and (cell.verdict != r.verdict or cell.reason != decision):
                 lines.append(f"      the cell: {cell.verdict}" + (f": {cell.reason}" if cell.reason else ""))
         outbox = ledger.outbox.counts()
+        held = ledger.outbox.waiting_for_files(now)
         lines.append("")
         lines.append(
             "outbox: " + ", ".join(f"{outbox.get(k, 0)} {k}" for k in ("pending", "sent", "parked"))
+            + (f" ({held} waiting for the certificate they attach or link)" if held else "")
         )
         errors = ledger.inputs.recent_errors(5)
         if errors:
