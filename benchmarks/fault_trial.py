@@ -380,7 +380,42 @@ def quiet(root: Path, entries: list[Entry]) -> bool:
     if [p for p in (root / "work" / ".taken").rglob("*") if p.is_file() and p.name.startswith("_")]:
         return False
     with contextlib.closing(sqlite3.connect(f"file:{root / 'ledger.sqlite'}?mode=ro", uri=True)) as db:
+        if db.execute("SELECT count(*) FROM certificate_queue WHERE done_at IS NULL").fetchone()[0]:
+            return False  # a verdict is out, its certificate still to render
         return not db.execute("SELECT count(*) FROM inputs WHERE final_path IS NULL").fetchone()[0]
+
+
+def certificates(root: Path) -> dict[str, int]:
+    """Every judged file's certificate: rendered and on disk with the bytes the ledger recorded
+    as published, or still waiting, or given up, or missing (promised and not there)."""
+    db = sqlite3.connect(f"file:{root / 'ledger.sqlite'}?mode=ro", uri=True)
+    counts: collections.Counter[str] = collections.Counter()
+    rows = db.execute(
+        "SELECT r.pdf_path, q.result_id IS NOT NULL, q.outcome FROM results r "
+        "LEFT JOIN certificate_queue q ON q.result_id = r.id "
+        "JOIN inputs i ON i.id = r.input_id "
+        "WHERE r.regrade_id IS NULL AND r.pdf_path IS NOT NULL AND i.state <> 'quarantined'"
+    ).fetchall()
+    for pdf_path, queued, outcome in rows:
+        if queued and outcome is None:
+            counts["waiting"] += 1
+            continue
+        if outcome == "failed":
+            counts["given up"] += 1
+            continue
+        path = Path(pdf_path)
+        published = db.execute(
+            "SELECT sha256 FROM published WHERE path = ? ORDER BY id DESC LIMIT 1",
+            (os.path.abspath(path),),
+        ).fetchone()
+        if not path.exists() or published is None:
+            counts["missing"] += 1
+        elif hashlib.sha256(path.read_bytes()).hexdigest() != published[0]:
+            counts["differing"] += 1
+        else:
+            counts["rendered"] += 1
+    db.close()
+    return dict(counts)
 
 
 def reconcile(root: Path, entries: list[Entry]) -> tuple[list[list[str]], dict[str, int]]:
@@ -624,6 +659,11 @@ def run(args: argparse.Namespace, folder: Path) -> int:
         filled_note = "filled for 3 s" if fill_planned else "not filled (no tmpfs here, or --no-disk-full)"
         print(f"disk: {filled_note}; settle inbox: "
               + ("away for 3 s" if not args.no_inbox_removal else "not removed (--no-inbox-removal)"))
+        made = certificates(s.root)
+        print(f"certificates: {made.get('rendered', 0)} rendered and as published, "
+              f"{made.get('missing', 0)} missing, {made.get('waiting', 0)} waiting, "
+              f"{made.get('given up', 0)} given up, {made.get('differing', 0)} differing "
+              "from the ledger")
         lost = totals.get("lost", 0)
         failed = totals.get("not decided once", 0)
         print(f"reconciliation: {lost} lost, {failed} not decided exactly once, "
@@ -636,6 +676,7 @@ def run(args: argparse.Namespace, folder: Path) -> int:
             # a SIGKILL between the server's answer and the ledger's note may send one
             # letter again; nothing else may
             and twice <= supervisor.kills and not never
+            and not made.get("missing") and not made.get("waiting") and not made.get("differing")
         )
         if args.keep:
             subprocess.run(["cp", "-a", str(s.root), str(args.keep)], check=False)

@@ -30,3 +30,5 @@ def test_a_short_fault_trial_decides_every_input_once_with_no_loss_and_no_crash_
     assert done.returncode == 0, done.stdout + done.stderr
     assert "reconciliation: 0 lost, 0 not decided exactly once, 0 judged twice" in done.stdout
     assert "0 crash loops" in done.stdout and "ended by itself 0 times" in done.stdout
+    # every judged file's certificate is on disk as the ledger recorded it, none left waiting
+    assert "0 missing, 0 waiting, 0 given up, 0 differing from the ledger" in done.stdout
