@@ -631,3 +631,31 @@ def test_every_passed_demo_cell_certified_as_a_station_does_is_one_page() -> Non
         checked += 1
         corrected += bool(result.current_band and result.current_band.corrected)
     assert checked >= 10 and corrected == checked
+
+
+@pytest.mark.slow
+def test_a_passed_stage_record_certified_as_a_station_does_is_one_page() -> None:
+    import datetime
+
+    from pipeline.demo.lots import DEMO_STAGED_CELLS, demo_stage_files, stage_file_name
+    from pipeline.model import VerdictKind
+    from pipeline.names import cell_file_stem
+    from pipeline.report.result import to_json
+    from pipeline.report.verification import verification_code
+    from pipeline.rulebook.book import load_rules_dir
+    from pipeline.runner import judge
+    from pipeline.shipped import RULES_DIR
+
+    rulebook = load_rules_dir(RULES_DIR)
+    at = datetime.datetime(2026, 3, 5, 12, 0, tzinfo=datetime.UTC)
+    cell = DEMO_STAGED_CELLS[0]
+    for stage, data in demo_stage_files(cell).items():
+        result = judge(data, stage_file_name(cell, stage), rulebook, analysed_at=at)
+        assert result.verdict.kind is VerdictKind.PASS, stage
+        html = render_html(result, verification_code(to_json(result)),
+                           cell_certificate=f"{cell_file_stem(result.cell_id)}.pdf")
+        rendered = PdfReader(io.BytesIO(pdf.render_pdf(html)))
+        assert len(rendered.pages) == 1, stage
+        text = re.sub(r"\s+", " ", rendered.pages[0].extract_text())
+        # a stage's pass is not the cell's release, and the page says so
+        assert "The cell may be released only once every stage it needs" in text

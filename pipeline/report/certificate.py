@@ -407,16 +407,18 @@ def build_context(
     missing = [s for s in result.needed_stages if s not in result.stages]
     if kind is VerdictKind.PASS and missing:
         # a pass of one record is not the cell's release: its other stages are still to pass
-        headline += (
-            f" This certificate covers the {stage_words(result.stages)} stage"
-            f"{'s' if len(result.stages) > 1 else ''} only. The cell may be released only once "
-            f"every stage it needs ({stage_words(result.needed_stages)}) has passed; its "
-            + (
-                "decision over all of them is in the station's ledger and its lot's report."
-                if cell_certificate is None
-                else f"decision over all of them is on its cell certificate, {cell_certificate}."
-            )
+        release = (
+            f" The cell may be released only once every stage it needs "
+            f"({stage_words(result.needed_stages)}) has passed"
         )
+        if cell_certificate is None:
+            headline += (
+                f" This certificate covers the {stage_words(result.stages)} stage"
+                f"{'s' if len(result.stages) > 1 else ''} only.{release}; its decision over all "
+                "of them is in the station's ledger and its lot's report."
+            )
+        else:  # the scope above says what this covers and names the cell certificate
+            headline += release + "."
     cell_id = result.cell_id or DASH
     metrics = result.metrics
     # A passed cell's certificate is one page: its plots are evidence for a failed or held
