@@ -635,7 +635,9 @@ def test_every_passed_demo_cell_certified_as_a_station_does_is_one_page() -> Non
 
 @pytest.mark.slow
 def test_a_passed_stage_record_certified_as_a_station_does_is_one_page() -> None:
+    import dataclasses
     import datetime
+    import hashlib
 
     from pipeline.demo.lots import DEMO_STAGED_CELLS, demo_stage_files, stage_file_name
     from pipeline.model import VerdictKind
@@ -649,8 +651,14 @@ def test_a_passed_stage_record_certified_as_a_station_does_is_one_page() -> None
     rulebook = load_rules_dir(RULES_DIR)
     at = datetime.datetime(2026, 3, 5, 12, 0, tzinfo=datetime.UTC)
     cell = DEMO_STAGED_CELLS[0]
+    formation = demo_stage_files(cell)["formation"]
     for stage, data in demo_stage_files(cell).items():
         result = judge(data, stage_file_name(cell, stage), rulebook, analysed_at=at)
+        if stage == "grading":  # as a station shows it: with the formation record beside it
+            from pipeline.model import OtherRecord
+            other = OtherRecord(("formation",), stage_file_name(cell, "formation"),
+                                hashlib.sha256(formation).hexdigest(), "pass")
+            result = dataclasses.replace(result, other_records=(other,))
         assert result.verdict.kind is VerdictKind.PASS, stage
         html = render_html(result, verification_code(to_json(result)),
                            cell_certificate=f"{cell_file_stem(result.cell_id)}.pdf")
