@@ -16,7 +16,7 @@ from pathlib import Path
 import pytest
 
 from pipeline.ledger.ledger import Ledger
-from tests.smtp_server import CERTS, free_port, smtp_server
+from tests.smtp_server import free_port, smtp_server
 from tests.station_kit import (
     cycle_file,
     make_station,
@@ -26,17 +26,11 @@ from tests.station_kit import (
     stop_watch,
     wait_until,
 )
+from tests.test_mail_senders import smtp_table
 
 pytestmark = pytest.mark.slow
 
 FILES = 200
-
-
-def smtp_table(port: int) -> str:
-    return (
-        f'[smtp]\nhost = "127.0.0.1"\nport = {port}\nsecurity = "starttls"\n'
-        f'sender = "formgate@example.com"\ntimeout_s = 5.0\nca_file = "{CERTS / "ca.pem"}"\n'
-    )
 
 
 def certificates_rendered(ledger_path: Path) -> tuple[int, int]:
@@ -55,7 +49,7 @@ def test_a_burst_has_every_verdict_and_failure_mail_before_its_last_pass_certifi
     tmp_path: Path,
 ) -> None:
     port = free_port()
-    s = make_station(tmp_path / "st", station_toml(smtp=smtp_table(port)))
+    s = make_station(tmp_path / "st", station_toml(smtp=smtp_table(port, timeout_s=5.0)))
     staging = tmp_path / "rack"
     staging.mkdir()
     failing = {f"B-{n:03d}" for n in range(FILES) if n % 5 == 0}  # capacity 1.5 Ah: fails

@@ -11,21 +11,19 @@ with offsets of ±0.05 % of the channel's range, against the model's noiseless t
 
 from __future__ import annotations
 
-import dataclasses
 import functools
 
 import numpy as np
 import pytest
 
 from pipeline.demo import cycletext
-from pipeline.demo.channel import Channel, add_channel_errors
 from pipeline.judge.rest_band import SIGNIFICANT_Z, estimate_band, take_out_offset
 from pipeline.model import Trace
 from pipeline.rulebook.book import RuleBook, load_rule_set
 from pipeline.runner import judge
 from pipeline.shipped import RULES_DIR
 from tests.reference.lot import REFERENCE_CELLS, ReferenceRecord, load_truth
-from tests.test_physics_lot import ANALYSED_AT, EXPECTED, RULE_CHANGES, interval_of, resampled
+from tests.test_physics_lot import ANALYSED_AT, EXPECTED, RULE_CHANGES, read_through
 
 # An accuracy class of 0.05 % of range is a common one for formation channels (common
 # practice); the offset of such a channel is within it.
@@ -46,15 +44,10 @@ def rulebook(zero_offset: str) -> RuleBook:
     return RuleBook(tuple(sets))
 
 
-def through(name: str, zero: float, seed: int = 1) -> ReferenceRecord:
-    """The reference cell as a channel with a zero error of ``zero`` x its range records it."""
-    true = resampled(name, interval_of(name))
-    channel = Channel(2.5 * float(true.truth["nominal_capacity_Ah"]), 5e-4, zero)
-    volts, amps, temps = add_channel_errors(
-        true.voltage_v, true.current_a, true.temperature_c, true.step, channel,
-        np.random.default_rng([seed, REFERENCE_CELLS.index(name)]),
-    )
-    return dataclasses.replace(true, voltage_v=volts, current_a=amps, temperature_c=temps)
+def through(name: str, zero: float) -> ReferenceRecord:
+    """The reference cell as a channel with noise of 0.05 % and a zero error of ``zero`` x its
+    range records it (the channel model's offset is in every row)."""
+    return read_through(name, 5e-4, zero, seed=1)
 
 
 def judged(record: ReferenceRecord, zero_offset: str):  # -> CellResult

@@ -192,14 +192,6 @@ class CellCertificates:
                 continue
             self.publish(job, rendered)
 
-    def finish(self, timeout_s: float = 30.0) -> None:
-        """At a stop: publish the renders in hand (the rest are found again at the next start)."""
-        deadline = time.monotonic() + timeout_s
-        while self.in_flight and time.monotonic() < deadline:
-            self.collect()
-            if self.in_flight:
-                time.sleep(0.05)
-
     def publish(self, job: CellJob, rendered: CellRendered) -> None:
         """Write and record a rendered cell, unless its rows changed while it was rendered
         (then it is a candidate again, and this render is dropped)."""

@@ -194,14 +194,6 @@ class RecordCertificates:
                 continue
             self.publish(result_id, rendered.pdf)
 
-    def finish(self, timeout_s: float = 30.0) -> None:
-        """At a stop: write the renders in hand (the rest wait in the ledger for the next start)."""
-        deadline = time.monotonic() + timeout_s
-        while self.in_flight and time.monotonic() < deadline:
-            self.collect()
-            if self.in_flight:
-                time.sleep(0.05)
-
     def lose(self, result_id: int) -> None:
         losses = self.ledger.certificates.lost(result_id)
         if losses >= LOSSES_TO_GIVE_UP:

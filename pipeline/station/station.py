@@ -203,8 +203,7 @@ class Station:
             while self.judges.busy():
                 self.tasks.collect(timeout=1.0)
             self.guard.duty(self.finish_urgent)
-            self.guard.duty(self.certificates.finish)
-            self.guard.duty(self.cellcerts.finish)
+            self.guard.duty(self.finish_renders)
             self.write_heartbeat(state="stopped")
         finally:
             for w in watchers:
@@ -255,6 +254,17 @@ class Station:
             self.wake.clear()
         log.warning("stopping with failed or held cells' certificates still to render: "
                     "they are rendered at the next start")
+
+    def finish_renders(self, timeout_s: float = 30.0) -> None:
+        """At a stop: write the renders in hand, the records' and the cells' (the rest wait in
+        the ledger, or are found again, at the next start)."""
+        deadline = time.monotonic() + timeout_s
+        while self.certificates.in_hand() or self.cellcerts.in_hand():
+            self.certificates.collect()
+            self.cellcerts.collect()
+            if time.monotonic() >= deadline:
+                return
+            time.sleep(0.05)
 
     def render(self, *, urgent_only: bool = False) -> None:
         """Write the certificates the workers rendered; hand the free workers the next ones.
