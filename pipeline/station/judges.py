@@ -63,6 +63,7 @@ R = TypeVar("R")
 WORKER_TASKS = 2000  # cells a worker process judges before a new one takes over
 FAILURES_TO_QUARANTINE = 2
 BREAK_WAIT_S = 60.0  # longest wait for the other tasks of a broken pool to be failed
+LAUNCHER_END_WAIT_S = 0.2  # look again this soon for a killed launcher to have ended
 # What starting a worker raises when the launcher is dead, dying or out of reach (Python
 # 3.11's forkserver): EOFError (it ended while answering), ConnectionRefusedError or
 # FileNotFoundError (its socket), another OSError (no process or file left to start one).
@@ -141,6 +142,14 @@ class JudgePool:
     def _start_pool(self, now_s: float) -> None:
         try:
             launcher = start_launcher()  # now, so that the launcher of this pool is known
+            if launcher is not None and not launcher.running():
+                # the last one is still ending (a loaded machine): Python would start the
+                # workers' launcher at their first spawn, and this pool would take a death
+                # of its workers for the death of that old launcher, blaming nobody
+                log.info("the worker launcher (pid %d) is still ending; the pool starts after it",
+                         launcher.pid)
+                self.start_at_s = now_s + LAUNCHER_END_WAIT_S
+                return
             pool, board = self._new_pool()
         except SPAWN_FAILURES as exc:
             self._spawn_failed(exc)
