@@ -501,9 +501,58 @@ _CERTIFICATE_QUEUE = sql_migration(
     "ALTER TABLE outbox ADD COLUMN waits_for TEXT CHECK (waits_for IS NULL OR waits_for <> '')",
 )
 
+# The plant feed (pipeline/plant): every row the station records is forwarded to the plant
+# database. Which rows are still to go is a log of changes kept by triggers: a row inserted,
+# changed (an input archived, a result superseded, and a hand edit too) or deleted adds its
+# table and key to ``plant_changes``; the feed forwards them in that order and deletes what
+# the plant has taken, so what is left is how far it is behind. The triggers log only once
+# ``plant_feed`` has its row, which the feed writes at its first start together with the
+# whole history (a station without a plant database keeps no log). A table rebuilt by a later
+# migration loses its triggers: that migration must make them again (plant_trigger_sql).
+FED_TABLES: tuple[tuple[str, str], ...] = (
+    ("rule_texts", "sha256"), ("inputs", "id"), ("regrades", "id"), ("results", "id"),
+    ("checks", "id"), ("readings", "id"), ("reviews", "id"), ("decisions", "id"),
+    ("lots", "lot"), ("set_aside", "id"), ("published", "id"),
+)
+
+
+def plant_trigger_sql(table: str, key: str) -> tuple[str, ...]:
+    """The three triggers that log ``table``'s changes for the plant feed."""
+    when = "WHEN EXISTS (SELECT 1 FROM plant_feed)"
+    log = "INSERT INTO plant_changes (tbl, row_key)"
+    return (
+        f"CREATE TRIGGER plant_log_{table}_insert AFTER INSERT ON {table} {when} "
+        f"BEGIN {log} VALUES ('{table}', NEW.{key}); END",
+        f"CREATE TRIGGER plant_log_{table}_update AFTER UPDATE ON {table} {when} "
+        f"BEGIN {log} SELECT '{table}', OLD.{key} WHERE OLD.{key} IS NOT NEW.{key}; "
+        f"{log} VALUES ('{table}', NEW.{key}); END",
+        f"CREATE TRIGGER plant_log_{table}_delete AFTER DELETE ON {table} {when} "
+        f"BEGIN {log} VALUES ('{table}', OLD.{key}); END",
+    )
+
+
+_PLANT_FEED = sql_migration(
+    "0009_plant_feed",
+    """
+    CREATE TABLE plant_feed (
+        id INTEGER PRIMARY KEY CHECK (id = 1),
+        ledger_id TEXT NOT NULL CHECK (length(ledger_id) = 36),
+        started_at TEXT NOT NULL
+    ) STRICT
+    """,
+    """
+    CREATE TABLE plant_changes (
+        seq INTEGER PRIMARY KEY,
+        tbl TEXT NOT NULL CHECK (tbl <> ''),
+        row_key ANY NOT NULL
+    ) STRICT
+    """,
+    *(sql for table, key in FED_TABLES for sql in plant_trigger_sql(table, key)),
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
     _INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS, _OUTBOX_CLAIMS, _REVIEWS, _REGRADE_TABLES,
-    _CERTIFICATE_QUEUE,
+    _CERTIFICATE_QUEUE, _PLANT_FEED,
 )
 SCHEMA_VERSION = len(MIGRATIONS)
 

@@ -1,0 +1,51 @@
+"""The ledger's log of changes for the plant feed: kept by triggers once the feed has started."""
+
+from __future__ import annotations
+
+import datetime
+import sqlite3
+from pathlib import Path
+
+from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.migrations import FED_TABLES
+
+T0 = datetime.datetime(2026, 3, 2, 6, 0, tzinfo=datetime.UTC)
+
+
+def _claim(ledger: Ledger, n: int) -> int:
+    row, _ = ledger.inputs.claim(sha256=f"{n:064x}", name=f"c{n}.csv", size=10, arrived_at=T0,
+                                 work_path=f"work/c{n}.csv")
+    return row.id
+
+
+def _log(path: Path) -> list[tuple[str, object]]:
+    with sqlite3.connect(path) as conn:
+        return [(str(t), k) for t, k in conn.execute("SELECT tbl, row_key FROM plant_changes ORDER BY seq")]
+
+
+def test_no_change_is_logged_before_the_feed_starts_and_every_one_after(tmp_path: Path) -> None:
+    path = tmp_path / "ledger.sqlite"
+    with Ledger(path, now=T0) as ledger:
+        _claim(ledger, 1)
+        assert _log(path) == []
+        with ledger.db.write() as conn:
+            conn.execute("INSERT INTO plant_feed (id, ledger_id, started_at) VALUES (1, ?, ?)",
+                         ("0" * 36, T0.isoformat()))
+        second = _claim(ledger, 2)
+        with ledger.db.write() as conn:
+            conn.execute("UPDATE inputs SET reason = 'by hand' WHERE id = 1")
+            conn.execute("DELETE FROM inputs WHERE id = ?", (second,))
+    assert _log(path) == [("inputs", second), ("inputs", 1), ("inputs", second)]
+
+
+def test_every_fed_table_has_its_three_triggers_at_the_latest_schema(tmp_path: Path) -> None:
+    path = tmp_path / "ledger.sqlite"
+    Ledger(path, now=T0).close()
+    with sqlite3.connect(path) as conn:
+        triggers = {
+            (str(t), str(n)) for t, n in conn.execute(
+                "SELECT tbl_name, name FROM sqlite_schema WHERE type = 'trigger'")
+        }
+    for table, _ in FED_TABLES:
+        for what in ("insert", "update", "delete"):
+            assert (table, f"plant_log_{table}_{what}") in triggers
