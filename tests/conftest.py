@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import threading
 from collections.abc import Iterator
 from pathlib import Path
@@ -33,3 +34,23 @@ def _no_leaked_threads() -> Iterator[None]:
 def _isolated_home(tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch) -> None:
     """Point formgate's state folder at a temporary one so no test touches a real station."""
     monkeypatch.setenv("FORMGATE_HOME", str(tmp_path_factory.mktemp("formgate-home")))
+
+
+@pytest.fixture(scope="session")
+def plant_server() -> Iterator[object]:
+    """A PostgreSQL server of the tests' own (tests/plant_server.py); skipped without the
+    server binaries, except under CI=true, where that is a failure."""
+    from tests.plant_server import remove, server_bin, start_server
+
+    if server_bin() is None:
+        reason = ("no PostgreSQL server binaries (initdb, postgres) on PATH or in "
+                  "/usr/lib/postgresql/*/bin: the plant database tests need them "
+                  "(Debian: apt-get install postgresql)")
+        if os.environ.get("CI", "").lower() == "true":
+            pytest.fail(reason + "; CI must run them")
+        pytest.skip(reason)
+    server = start_server()
+    try:
+        yield server
+    finally:
+        remove(server)

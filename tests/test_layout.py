@@ -22,13 +22,16 @@ PACKAGE = REPO / "pipeline"
 # no demo. Report and mail sit on the core; the station on all of those; only the command
 # line (and the tests) may import the demo.
 FORBIDDEN: Mapping[str, tuple[str, ...]] = {
-    "read": ("judge", "report", "mail", "ledger", "station", "demo", "cli", "runner"),
-    "judge": ("report", "mail", "ledger", "station", "demo", "cli", "runner"),
-    "rulebook": ("report", "mail", "ledger", "station", "demo", "cli", "runner"),
-    "report": ("mail", "ledger", "station", "demo", "cli", "runner"),
-    "mail": ("ledger", "station", "demo", "cli", "runner"),
+    "read": ("judge", "report", "mail", "ledger", "station", "plant", "demo", "cli", "runner"),
+    "judge": ("report", "mail", "ledger", "station", "plant", "demo", "cli", "runner"),
+    "rulebook": ("report", "mail", "ledger", "station", "plant", "demo", "cli", "runner"),
+    "report": ("mail", "ledger", "station", "plant", "demo", "cli", "runner"),
+    "mail": ("ledger", "station", "plant", "demo", "cli", "runner"),
     # the ledger stores what others decide: the model's and the readers' records only
-    "ledger": ("judge", "rulebook", "report", "mail", "station", "demo", "cli", "runner"),
+    "ledger": ("judge", "rulebook", "report", "mail", "station", "plant", "demo", "cli", "runner"),
+    # the plant database: the ledger forwarded, and cells of several stations decided with
+    # the core's own logic; the station runs its feed, the command line asks it
+    "plant": ("station", "report", "regrade", "audit", "demo", "cli", "runner"),
     "station": ("audit", "regrade", "demo", "cli"),
     # a regrade judges again what the station judged; only the command line uses it
     "regrade": ("audit", "demo", "cli"),

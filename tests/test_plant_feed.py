@@ -1,0 +1,259 @@
+"""The plant feed against a real PostgreSQL server: whole, once, through outages and hand edits.
+
+The ledger is a real station's (a station run once on invented TEST-CELL files, one of them
+failing), copied for each test; the server is the tests' own (tests/plant_server.py).
+"""
+
+from __future__ import annotations
+
+import datetime
+import sqlite3
+import threading
+from collections.abc import Iterator
+from pathlib import Path
+
+import psycopg
+import pytest
+
+from pipeline.ledger.ledger import Ledger
+from pipeline.plant.connect import PlantTarget
+from pipeline.plant.feed import PlantFeed, read_state, status_line
+from pipeline.plant.forward import behind
+from pipeline.plant.tables import FED
+from tests.plant_server import PlantServer
+from tests.station_kit import cycle_file, drop, make_station, running, settled, wait_until
+
+pytestmark = pytest.mark.slow
+
+
+def utc_now() -> datetime.datetime:
+    return datetime.datetime.now(datetime.UTC)
+
+
+@pytest.fixture(scope="module")
+def judged_ledger(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The ledger of a station that judged six cells (one failed) of lot LOT-A."""
+    s = make_station(tmp_path_factory.mktemp("station") / "st")
+    with running(s):
+        for n in range(6):
+            capacity = 1.5 if n == 3 else 2.0
+            drop(s.inboxes[0].folder, f"c{n}.csv", cycle_file(f"F-{n}", capacity_ah=capacity, seed=n))
+        wait_until(lambda: settled(s, 6), what="six cells judged")
+    return s.ledger
+
+
+def copy_ledger(source: Path, folder: Path) -> Path:
+    folder.mkdir(parents=True, exist_ok=True)
+    target = folder / "ledger.sqlite"
+    with sqlite3.connect(source) as a, sqlite3.connect(target) as b:
+        a.backup(b)
+    return target
+
+
+@pytest.fixture
+def plant_url(plant_server: PlantServer) -> str:
+    return plant_server.new_database()
+
+
+Alerts = list[tuple[str, str]]
+
+
+def queue_alerts(into: Alerts):  # type: ignore[no-untyped-def]
+    def alert(ledger: Ledger, subject: str, text: str, key: str) -> None:
+        into.append((subject, key))
+    return alert
+
+
+@pytest.fixture
+def feeds() -> Iterator[list[tuple[PlantFeed, threading.Event]]]:
+    started: list[tuple[PlantFeed, threading.Event]] = []
+    yield started
+    for feed, stop in started:
+        stop.set()
+        feed.join(60)
+
+
+def start(
+    feeds: list[tuple[PlantFeed, threading.Event]], ledger: Path, url: str, station: str,
+    alerts: Alerts | None = None, **options: float,
+) -> PlantFeed:
+    stop = threading.Event()
+    feed = PlantFeed(ledger, PlantTarget(url, station, connect_timeout_s=2, statement_timeout_s=5),
+                     stop=stop, clock=utc_now, alert=queue_alerts(alerts if alerts is not None else []),
+                     poll_s=0.05, retry_max_s=0.5, alert_after_s=0.0, **options)  # type: ignore[arg-type]
+    feed.start()
+    feeds.append((feed, stop))
+    return feed
+
+
+def caught_up(ledger: Path) -> bool:
+    with Ledger(ledger) as kept:
+        started = kept.db.one("SELECT 1 FROM plant_feed") is not None
+        return started and behind(kept) == 0 and read_state(kept).since is None
+
+
+def ledger_hashes(ledger: Path) -> dict[str, set[str]]:
+    with sqlite3.connect(ledger) as conn:
+        return {
+            fed.table: {fed.row_sha256(tuple(r)) for r in conn.execute(
+                f"SELECT {', '.join(fed.names)} FROM {fed.table}")}
+            for fed in FED
+        }
+
+
+def plant_hashes(url: str, station: str) -> dict[str, list[str]]:
+    """Every row_sha256 the plant holds for ``station`` per table (a list: twice shows)."""
+    with psycopg.connect(url) as conn:
+        out = {}
+        for fed in FED:
+            where = "" if fed.shared else " WHERE station_id = %s"
+            rows = conn.execute(f"SELECT row_sha256 FROM formgate.{fed.table}{where}",  # type: ignore[arg-type]
+                                () if fed.shared else (station,)).fetchall()
+            out[fed.table] = sorted(r[0] for r in rows)
+        return out
+
+
+def assert_whole_and_once(ledger: Path, url: str, station: str) -> None:
+    mine, theirs = ledger_hashes(ledger), plant_hashes(url, station)
+    for table, hashes in mine.items():
+        assert len(theirs[table]) == len(set(theirs[table])), f"{table}: a row stored twice"
+        assert set(theirs[table]) == hashes, f"{table}: the plant's rows are not the ledger's"
+    with sqlite3.connect(ledger) as a, psycopg.connect(url) as b:
+        inputs = {r[0] for r in a.execute("SELECT sha256 FROM inputs")}
+        held = {r[0] for r in b.execute("SELECT sha256 FROM formgate.inputs WHERE station_id = %s",
+                                        (station,))}
+    assert held == inputs
+
+
+def test_a_stations_whole_ledger_is_forwarded_and_status_says_it_is_up_to_date(
+    judged_ledger: Path, plant_url: str, tmp_path: Path, feeds: list[tuple[PlantFeed, threading.Event]]
+) -> None:
+    ledger = copy_ledger(judged_ledger, tmp_path / "a")
+    start(feeds, ledger, plant_url, "line-1", batch_rows=7)
+    wait_until(lambda: caught_up(ledger), what="the feed to catch up")
+    assert_whole_and_once(ledger, plant_url, "line-1")
+    with psycopg.connect(plant_url) as conn:
+        counts = conn.execute(
+            "SELECT verdict, count(*) FROM formgate.results GROUP BY verdict ORDER BY verdict"
+        ).fetchall()
+        kinds = conn.execute(
+            "SELECT pg_typeof(analysed_at)::text, pg_typeof(result_json)::text "
+            "FROM formgate.results LIMIT 1").fetchone()
+    assert counts == [("fail", 1), ("pass", 5)]
+    assert kinds == ("timestamp with time zone", "jsonb")
+    with Ledger(ledger) as kept:
+        assert status_line(kept, "db") == "plant feed: up to date (db)"
+
+
+def test_rows_forwarded_twice_are_stored_once(
+    judged_ledger: Path, plant_url: str, tmp_path: Path, feeds: list[tuple[PlantFeed, threading.Event]]
+) -> None:
+    ledger = copy_ledger(judged_ledger, tmp_path / "a")
+    alerts: Alerts = []
+    feed = start(feeds, ledger, plant_url, "line-1", alerts)
+    wait_until(lambda: caught_up(ledger), what="the feed to catch up")
+    taken = feed.forwarded
+    # every row logged again, as after a crash between the plant's commit and the ledger's
+    with sqlite3.connect(ledger) as conn:
+        for fed in FED:
+            conn.execute(f"INSERT INTO plant_changes (tbl, row_key) SELECT ?, {fed.key} FROM {fed.table}",
+                         (fed.table,))
+    wait_until(lambda: caught_up(ledger) and feed.forwarded == 2 * taken, what="the second round")
+    assert_whole_and_once(ledger, plant_url, "line-1")
+    assert alerts == []
+
+
+def test_a_database_stopped_mid_feed_loses_nothing_and_stores_nothing_twice(
+    judged_ledger: Path, plant_server: PlantServer, plant_url: str, tmp_path: Path,
+    feeds: list[tuple[PlantFeed, threading.Event]],
+) -> None:
+    ledger = copy_ledger(judged_ledger, tmp_path / "a")
+    alerts: Alerts = []
+    feed = start(feeds, ledger, plant_url, "line-1", alerts, batch_rows=3)
+    wait_until(lambda: feed.forwarded > 0, what="the first batches")
+    plant_server.stop(crash=True)
+    try:
+        with Ledger(ledger) as kept:
+            wait_until(lambda: read_state(kept).since is not None, what="the feed to see the outage")
+            line = status_line(kept, "db")
+            rows = behind(kept)
+        assert rows > 0
+        assert line.startswith(f"plant feed: {rows:,} rows behind since ")
+        # the station records on meanwhile: a row added while the database is down
+        with sqlite3.connect(ledger) as conn:
+            conn.execute("UPDATE inputs SET reason = 'noted during the outage' WHERE id = 1")
+    finally:
+        plant_server.start()
+    wait_until(lambda: caught_up(ledger), what="the feed to catch up after the restart")
+    assert_whole_and_once(ledger, plant_url, "line-1")
+    assert [subject.split(":")[0] for subject, _ in alerts] == [
+        "the plant database cannot take this station's rows"
+    ]
+    with psycopg.connect(plant_url) as conn:
+        assert conn.execute("SELECT reason FROM formgate.inputs WHERE id = 1").fetchone() == (
+            "noted during the outage",)
+
+
+def test_a_row_changed_by_hand_after_it_was_forwarded_stops_the_feed_with_one_alert(
+    judged_ledger: Path, plant_url: str, tmp_path: Path, feeds: list[tuple[PlantFeed, threading.Event]]
+) -> None:
+    ledger = copy_ledger(judged_ledger, tmp_path / "a")
+    alerts: Alerts = []
+    feed = start(feeds, ledger, plant_url, "line-1", alerts)
+    wait_until(lambda: caught_up(ledger), what="the feed to catch up")
+    with sqlite3.connect(ledger) as conn:
+        failed = conn.execute("SELECT id FROM decisions WHERE verdict = 'fail'").fetchone()[0]
+        conn.execute("UPDATE decisions SET verdict = 'pass', reason = '' WHERE id = ?", (failed,))
+    feed.join(30)
+    assert not feed.is_alive()
+    assert feed.stopped_for.startswith(f"row {failed} of table decisions differs from the row forwarded")
+    assert [s for s, _ in alerts] == ["the plant feed stopped: a row is not what was forwarded"]
+    with psycopg.connect(plant_url) as conn:
+        assert conn.execute("SELECT verdict FROM formgate.decisions WHERE id = %s",
+                            (failed,)).fetchone() == ("fail",)
+    with Ledger(ledger) as kept:
+        assert status_line(kept, "db").startswith(
+            f"plant feed: stopped, 1 row behind: row {failed} of table decisions differs")
+    # started again while the row is still changed: stopped again, not alerted again
+    again = start(feeds, ledger, plant_url, "line-1", alerts)
+    again.join(30)
+    assert again.stopped_for == feed.stopped_for and len(alerts) == 1
+    # the row put back as it was: the feed goes on
+    with sqlite3.connect(ledger) as conn:
+        conn.execute("UPDATE decisions SET verdict = 'fail', reason = ? WHERE id = ?",
+                      (_reason_of(plant_url, failed), failed))
+    start(feeds, ledger, plant_url, "line-1", alerts)
+    wait_until(lambda: caught_up(ledger), what="the feed to go on")
+    with Ledger(ledger) as kept:
+        assert read_state(kept).stopped == ""
+
+
+def _reason_of(url: str, decision: int) -> str:
+    with psycopg.connect(url) as conn:
+        return str(conn.execute("SELECT reason FROM formgate.decisions WHERE id = %s",
+                                (decision,)).fetchone()[0])  # type: ignore[index]
+
+
+def test_two_stations_feed_one_database_each_under_its_own_id(
+    judged_ledger: Path, plant_url: str, tmp_path: Path, feeds: list[tuple[PlantFeed, threading.Event]]
+) -> None:
+    one, two = copy_ledger(judged_ledger, tmp_path / "a"), copy_ledger(judged_ledger, tmp_path / "b")
+    start(feeds, one, plant_url, "line-1")
+    start(feeds, two, plant_url, "line-2")
+    wait_until(lambda: caught_up(one) and caught_up(two), what="both feeds to catch up")
+    assert_whole_and_once(one, plant_url, "line-1")
+    assert_whole_and_once(two, plant_url, "line-2")
+    with psycopg.connect(plant_url) as conn:
+        assert conn.execute("SELECT count(*) FROM formgate.rule_texts").fetchone() == (1,)
+
+
+def test_a_second_ledger_under_a_station_id_in_use_is_refused(
+    judged_ledger: Path, plant_url: str, tmp_path: Path, feeds: list[tuple[PlantFeed, threading.Event]]
+) -> None:
+    one, two = copy_ledger(judged_ledger, tmp_path / "a"), copy_ledger(judged_ledger, tmp_path / "b")
+    start(feeds, one, plant_url, "line-1")
+    wait_until(lambda: caught_up(one), what="the first feed")
+    start(feeds, two, plant_url, "line-1")
+    with Ledger(two) as kept:
+        wait_until(lambda: read_state(kept).since is not None, what="the refusal")
+        assert "already has a station 'line-1' fed from another ledger" in read_state(kept).error
