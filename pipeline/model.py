@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import datetime
 import enum
+import fnmatch
 from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from typing import TypeVar
@@ -309,6 +310,60 @@ class Cycle:
         return bool(self.charge_steps) and bool(self.discharge_steps)
 
 
+# How a check decides a value near a limit (ILAC-G8:09/2019 "Guidelines on decision rules
+# and statements of conformity"; ISO 14253-1:2017; JCGM 106:2012): simple acceptance
+# judges the value as measured; guarded acceptance accepts only values inside the window
+# by more than their expanded uncertainty U, and holds those within U of a limit; guarded
+# rejection rejects only values outside by more than U.
+SIMPLE, GUARDED_ACCEPTANCE, GUARDED_REJECTION = (
+    "simple acceptance", "guarded acceptance", "guarded rejection",
+)
+DECISION_RULES: tuple[str, ...] = (SIMPLE, GUARDED_ACCEPTANCE, GUARDED_REJECTION)
+
+
+@dataclass(frozen=True, slots=True)
+class AccuracyClass:
+    """The accuracy a cycler channel is specified to: each number the half-width of the error
+    its maker guarantees, taken as a rectangular distribution (JCGM 100:2008 4.3.7).
+
+    Voltage ±(``voltage_pct_of_reading`` % of the reading + ``voltage_mv`` mV); current
+    ±(``current_pct_of_reading`` % of the reading + ``current_pct_of_range`` % of the
+    channel's range ``current_range_a``: None takes the largest current of the record,
+    rounded up to the 1-2-5 series, as the range); temperature ±``temperature_k`` K; the
+    time base ±``time_ppm`` parts per million. ``source`` says where it was declared.
+    The defaults are a usual class of formation channels (common practice).
+    """
+
+    voltage_pct_of_reading: float = 0.02
+    voltage_mv: float = 1.0
+    current_pct_of_reading: float = 0.02
+    current_pct_of_range: float = 0.02
+    current_range_a: float | None = None
+    temperature_k: float = 1.0
+    time_ppm: float = 50.0
+    source: str = "the default class (common practice)"
+
+
+DEFAULT_ACCURACY = AccuracyClass()
+
+
+@dataclass(frozen=True, slots=True)
+class ChannelClasses:
+    """Accuracy classes declared for the channels of one inbox: the first whose channel
+    pattern (shell-style, as ``fnmatch``) matches the record's ``channel`` metadata, else
+    ``default`` (the inbox's own class; None: not declared)."""
+
+    patterns: tuple[tuple[str, AccuracyClass], ...] = ()
+    default: AccuracyClass | None = None
+
+    def choose(self, channel: str | None) -> AccuracyClass | None:
+        if channel:
+            for pattern, accuracy in self.patterns:
+                if fnmatch.fnmatchcase(channel, pattern):
+                    return accuracy
+        return self.default
+
+
 @dataclass(frozen=True, slots=True)
 class CurrentBand:
     """How rest was told from current in one file: rows with |I - offset_a| <= threshold_a are rest.
@@ -425,6 +480,7 @@ class RestView:
     fit_from_h: float
     fit_v: float
     slope_mv_per_h: float
+    slope_u_mv_per_h: float = 0.0  # the slope's standard error from the fit's residuals
 
 
 @dataclass(frozen=True, slots=True)
@@ -463,9 +519,18 @@ class CellMetrics:
     notes: tuple[Note, ...] = ()
     record: RecordView | None = None  # for the certificate's evidence plots
     rest: RestView | None = None
+    grading_cycle: int | None = None  # the index of the cycle graded (CycleMetrics.index)
+    # what the data's own scatter gives a metric's uncertainty (Type A, JCGM 100 4.2), by
+    # name: a metric's standard error, or a "<metric>_per_V_of_noise" sensitivity to the
+    # voltage's row noise, before the channel's accuracy class is added (uncertainty.py)
+    scatter: Mapping[str, float] = field(default_factory=dict)
+    # expanded uncertainty U (k = 2) of each metric that has one, by name (uncertainty.py)
+    uncertainty: Mapping[str, float] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "values", frozen_mapping(self.values))
+        object.__setattr__(self, "scatter", frozen_mapping(self.scatter))
+        object.__setattr__(self, "uncertainty", frozen_mapping(self.uncertainty))
 
 
 class Severity(enum.Enum):
@@ -560,6 +625,7 @@ class Rule:
     hazard: Hazard | None = None
     message: str = ""
     if_missing: str = "hold"  # "hold" (not judged) or "skip"
+    decision: str | None = None  # one of DECISION_RULES; None: the rule set's
     cell_types: tuple[str, ...] = ()  # empty = applies to every cell type of the set
     where: SourceRef | None = None
 
@@ -667,6 +733,7 @@ class RuleSet:
     relax_s: float = 600.0
     rest_current_fraction: float = 0.002  # |I| below this x nominal capacity (A/Ah) is rest
     zero_offset: str = "corrected"  # or "as recorded": the channel's zero offset left in
+    decision: str = SIMPLE  # the decision rule of checks that name none ([measurement])
     description: str = ""
     program: Program = field(default_factory=Program)
     family: str | None = None  # one of FAMILIES; None: not declared
@@ -700,6 +767,10 @@ class CheckResult:
     severity: Severity
     hazard: Hazard | None
     message: str
+    uncertainty: float | None = None  # the value's expanded uncertainty U (k = 2), if known
+    decision: str = SIMPLE  # the decision rule the check was made by (DECISION_RULES)
+    # guarded acceptance: the value lies within U inside a limit, too close to decide (held)
+    too_close: bool = False
 
 
 @dataclass(frozen=True, slots=True)
@@ -789,6 +860,7 @@ class CellResult:
     record: RecordPlace | None = None  # set by a station when the cell has an earlier record
     needed_stages: tuple[str, ...] = WHOLE_PROGRAM  # what the cell's final verdict needs
     other_records: tuple[OtherRecord, ...] = ()  # the cell's other stages, as a station knew them
+    accuracy: AccuracyClass | None = None  # the channel's class the uncertainties came from
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "metadata", frozen_mapping(self.metadata))

@@ -7,6 +7,7 @@ atomically. ``check_file`` does both for a path; the CLI and the station call it
 
 from __future__ import annotations
 
+import dataclasses
 import datetime
 import hashlib
 from dataclasses import dataclass
@@ -14,7 +15,17 @@ from pathlib import Path
 
 from pipeline import __version__
 from pipeline.errors import FormgateError, InputError
-from pipeline.model import WHOLE_PROGRAM, CellResult, RuleSetRef, SourceRef, VerdictKind
+from pipeline.model import (
+    DEFAULT_ACCURACY,
+    WHOLE_PROGRAM,
+    AccuracyClass,
+    CellResult,
+    ChannelClasses,
+    RuleSetRef,
+    SourceRef,
+    Trace,
+    VerdictKind,
+)
 from pipeline.names import safe_name
 from pipeline.read.cyclefile import file_stages, read_cycle_file
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
@@ -34,13 +45,49 @@ def judge(
     profile: Profile | None = None,
     max_uncompressed_bytes: int = MAX_UNCOMPRESSED_BYTES,
     input_sha256: str | None = None,
+    accuracy: ChannelClasses | AccuracyClass | None = None,
 ) -> CellResult:
     """Read, validate, segment, measure and judge one cycle file's bytes.
 
     Raises a FormgateError (InputError) when the file cannot be read, matched to a
     rule set, or is implausible; that is the ``error`` verdict, with its reason.
+
+    The channel's accuracy class, which every metric's uncertainty starts from, is the
+    one ``accuracy`` gives for the record's channel (a station's settings), else the
+    import profile's, else the default class.
     """
     trace = read_cycle_file(data, name, profile, max_uncompressed_bytes=max_uncompressed_bytes)
+    return judge_trace(
+        trace,
+        name,
+        rulebook,
+        analysed_at=analysed_at,
+        # a caller that has just hashed the bytes (the station's worker) passes the digest in
+        input_sha256=input_sha256 or hashlib.sha256(data).hexdigest(),
+        accuracy=choose_accuracy(accuracy, trace.metadata.get("channel"), profile),
+    )
+
+
+def choose_accuracy(
+    accuracy: ChannelClasses | AccuracyClass | None, channel: str | None, profile: Profile | None
+) -> AccuracyClass:
+    """The class of the record's channel: the station's for it, else the profile's, else the default."""
+    chosen = accuracy.choose(channel) if isinstance(accuracy, ChannelClasses) else accuracy
+    if chosen is None and profile is not None:
+        chosen = profile.accuracy
+    return chosen or DEFAULT_ACCURACY
+
+
+def judge_trace(
+    trace: Trace,
+    name: str,
+    rulebook: RuleBook,
+    *,
+    analysed_at: datetime.datetime,
+    input_sha256: str,
+    accuracy: ChannelClasses | AccuracyClass | None = None,
+) -> CellResult:
+    """Validate, segment, measure and judge one record already read (:func:`judge`)."""
     # The judging stack (scipy's signal processing among it) is imported once a file has
     # been read: a file refused by hand costs a fraction of a second, not the stack's import.
     # A station's worker imports it before its first cell (worker.prepare_process).
@@ -48,6 +95,7 @@ def judge(
     from pipeline.judge.metrics import measure
     from pipeline.judge.rest_band import estimate_band, take_out_offset
     from pipeline.judge.segmentation import split_steps
+    from pipeline.judge.uncertainty import budgets, expanded
 
     stages = file_stages(trace.metadata)  # a file of one stage is judged on that stage's checks
     rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
@@ -68,13 +116,16 @@ def judge(
         relax_s=rule_set.relax_s,
         stages=stages,
     )
+    chosen = choose_accuracy(accuracy, trace.metadata.get("channel"), None)
+    found = budgets(trace, segmentation, metrics, chosen, segmentation.band, rule_set.plateau,
+                    offset_estimated=rule_set.zero_offset == "corrected")
+    metrics = dataclasses.replace(metrics, uncertainty=expanded(found))
     all_notes = trace.notes + notes + segmentation.notes + metrics.notes
     verdict = evaluate(rule_set, cell_type, metrics, all_notes, stages=stages)
     return CellResult(
         # certificates name files, not the folders of the machine that judged them
         source_name=Path(name).name,
-        # a caller that has just hashed the bytes (the station's worker) passes the digest in
-        input_sha256=input_sha256 or hashlib.sha256(data).hexdigest(),
+        input_sha256=input_sha256,
         metadata=trace.metadata,
         cell_type=cell_type,
         rule_set=RuleSetRef(
@@ -92,6 +143,7 @@ def judge(
         software_version=__version__,
         current_band=segmentation.band,
         stages=stages,
+        accuracy=chosen,
     )
 
 

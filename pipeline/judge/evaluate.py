@@ -19,8 +19,11 @@ from collections.abc import Iterable
 
 from pipeline.judge.metricdefs import FORMATION, GRADING, judged_on
 from pipeline.judge.program import HOLDING_CODES, INCOMPLETE, MISMATCH
-from pipeline.judge.quantities import format_value, format_window, precision
+from pipeline.judge.quantities import format_uncertain, format_value, format_window, precision
 from pipeline.model import (
+    GUARDED_ACCEPTANCE,
+    GUARDED_REJECTION,
+    SIMPLE,
     CellMetrics,
     CellType,
     CheckResult,
@@ -52,13 +55,39 @@ def _applies(rule: Rule, cell_type: CellType) -> bool:
     return not rule.cell_types or cell_type.name in rule.cell_types
 
 
+def inside_by(value: float, window: Window) -> float:
+    """How far ``value`` lies inside ``window`` (negative: how far outside), to its nearer limit."""
+    margins = []
+    if window.low is not None:
+        margins.append(value - window.low)
+    if window.high is not None:
+        margins.append(window.high - value)
+    return min(margins) if margins else math.inf
+
+
+def against(metric: str, value: float, u: float | None, window: Window) -> str:
+    """A value ± U against the limit it is nearest: '18.98 ± 0.03 Ah against ≥ 19.00 Ah'."""
+    low, high = window.low, window.high
+    nearer_low = low is not None and (high is None or abs(value - low) <= abs(high - value))
+    limit = Window(low, None) if nearer_low else Window(None, high)
+    return f"{format_uncertain(metric, value, u)} against {format_window(metric, limit)}"
+
+
 def _check(
-    rule: Rule, cell_type: CellType, metrics: CellMetrics, blockers: dict[str, str]
+    rule: Rule,
+    cell_type: CellType,
+    metrics: CellMetrics,
+    blockers: dict[str, str],
+    decision: str = SIMPLE,
 ) -> CheckResult:
     window = _clean(rule.window.resolve(cell_type)) if rule.window.relative_to else rule.window
     value = metrics.values.get(rule.metric)
     if value is not None and math.isnan(value):
         value = None
+    u = metrics.uncertainty.get(rule.metric)
+    u = u if u is not None and math.isfinite(u) and u > 0 else None
+    guarded = decision != SIMPLE and u is not None
+    too_close = False
     blocked = blockers.get(rule.metric)
     if blocked is not None or value is None:
         # a value the notes make untrustworthy is not judged; a missing one was not measured
@@ -69,13 +98,27 @@ def _check(
         else:
             outcome = Outcome.SKIPPED
             message += " (the rule set lets this check be left out)."
+    elif u is not None and guarded and decision == GUARDED_ACCEPTANCE and 0 <= inside_by(value, window) <= u:
+        # inside, but by less than its uncertainty: conformity is not shown (ILAC-G8:09/2019)
+        outcome, too_close = Outcome.NOT_JUDGED, True
+        message = (
+            f"{rule.metric} too close to the limit to decide: "
+            f"{against(rule.metric, value, u, window)} ({decision})."
+        )
     elif window.contains(value):
         outcome, message = Outcome.IN_WINDOW, ""
+    elif u is not None and guarded and decision == GUARDED_REJECTION and -inside_by(value, window) <= u:
+        # outside, but by less than its uncertainty: nonconformity is not shown
+        outcome = Outcome.IN_WINDOW
+        message = (
+            f"{rule.metric} outside its window by less than its uncertainty: "
+            f"{against(rule.metric, value, u, window)}, accepted ({decision})."
+        )
     else:
         outcome = Outcome.OUT_OF_WINDOW
         # written as the certificate, the letters and the lot report write it (quantities.py)
         extra = precision(rule.metric, value, window)
-        measured = f"{rule.metric} = {format_value(rule.metric, value, extra)}"
+        measured = f"{rule.metric} = {format_uncertain(rule.metric, value, u, extra)}"
         window_text = format_window(rule.metric, window, extra)
         if rule.message:
             message = f"{rule.message.rstrip('.')} ({measured}; window {window_text})."
@@ -83,7 +126,8 @@ def _check(
             side = "below" if window.low is not None and value < window.low else "above"
             message = f"{measured} is {side} the window ({window_text})."
     return CheckResult(
-        rule.id, rule.metric, value, window, outcome, rule.severity, rule.hazard, message
+        rule.id, rule.metric, value, window, outcome, rule.severity, rule.hazard, message,
+        u, decision, too_close,
     )
 
 
@@ -176,7 +220,10 @@ def evaluate(
         why = "the rule set's [program] does not give its cycles, so a grading record's share is unknown"
         blockers["cycle_count"] = "; ".join(filter(None, (blockers.get("cycle_count"), why)))
     checks = tuple(
-        _check(_for_stage(rule, lacking or 0), cell_type, metrics, blockers)
+        _check(
+            _for_stage(rule, lacking or 0), cell_type, metrics, blockers,
+            rule.decision or rule_set.decision,
+        )
         for rule in rule_set.rules
         if _applies(rule, cell_type) and rule.metric in stage_metrics
     )
@@ -236,9 +283,14 @@ def phrase(check: CheckResult) -> str:
             assert high is not None
             bound, sign = high, ">"
         extra = precision(check.metric, check.value, check.window)
-        value = format_value(check.metric, check.value, extra)
+        value = format_uncertain(check.metric, check.value, check.uncertainty, extra)
         limit = format_value(check.metric, bound, extra)
         return f"{check.metric} {value} {sign} {limit} ({check.severity.value})"
+    if check.too_close and check.value is not None:
+        return (
+            f"{check.metric} too close to the limit: "
+            f"{against(check.metric, check.value, check.uncertainty, check.window)}"
+        )
     if check.outcome in (Outcome.NOT_JUDGED, Outcome.SKIPPED):
         what = "not measured" if check.value is None else "not judged"
         return f"{check.metric} {what}"

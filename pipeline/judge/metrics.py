@@ -65,6 +65,9 @@ PLATEAU_METRICS = (
 VIEW_POINTS = 800
 DCIR_REST_S = 60.0
 DCIR_FIT_S = 5.0
+# Times are compared to within this: finer than any cycler's time stamps (0.1 s at best,
+# common practice), coarser than what a time base within its class moves a sample by.
+TIME_TOLERANCE_S = 0.01
 
 
 def _rows(values: FloatArray, steps: tuple[Step, ...], indices: tuple[int, ...]) -> FloatArray:
@@ -139,6 +142,29 @@ def _grading_start(steps: tuple[Step, ...], cycle: Cycle) -> tuple[Step, Step] |
 def dcir_mohm(
     trace: Trace, rest: Step, discharge: Step, pulse_s: float
 ) -> tuple[float | None, Note | None]:
+    """DC resistance at the rest-to-discharge transition (mOhm), or None with a note
+    (:func:`dcir_reading`)."""
+    value, note, _ = dcir_reading(trace, rest, discharge, pulse_s)
+    return value, note
+
+
+def _median_gain(n: int) -> float:
+    """How much of one row's noise the median of ``n`` rows keeps: 1.2533 / sqrt(n), the
+    median's efficiency for normal noise (Kenney and Keeping 1962)."""
+    return 1.2533 / math.sqrt(n) if n > 0 else 1.0
+
+
+def _intercept_gain(x: FloatArray) -> float:
+    """How much of one row's noise a least-squares line's value at x = 0 keeps:
+    sqrt(1/n + mean(x)^2 / Sxx) (Draper and Smith 1998, 3.1)."""
+    n = len(x)
+    sxx = float(np.sum((x - x.mean()) ** 2))
+    return math.sqrt(1.0 / n + float(x.mean()) ** 2 / sxx) if n >= 2 and sxx > 0 else 1.0
+
+
+def dcir_reading(
+    trace: Trace, rest: Step, discharge: Step, pulse_s: float
+) -> tuple[float | None, Note | None, float]:
     """DC resistance at the rest-to-discharge transition from ``rest`` into ``discharge`` (mOhm).
 
     (V just before the transition - V ``pulse_s`` into the discharge) / |I|. Each of the
@@ -149,6 +175,13 @@ def dcir_mohm(
     time; |I| is the median over the same rows. None with a
     note when the discharge is shorter than the pulse or sampled too coarsely for it.
     10 s is the most common pulse (common practice).
+
+    Also returns how many mOhm of DCIR one volt of the voltage's row-to-row noise makes,
+    through the rest's median and the line's value at the pulse time (0 when not
+    measured): the noise itself is estimated on many more rows than these
+    (uncertainty.py), a pooled estimate (JCGM 100:2008 4.2.4). Times are compared to
+    TIME_TOLERANCE_S, so that a clock within its class never moves a sample across the
+    edge of a window.
     """
     t0 = float(trace.time_s[rest.stop - 1])
     t = trace.time_s[discharge.start : discharge.stop]
@@ -161,7 +194,7 @@ def dcir_mohm(
             f"{pulse_s:g} s DCIR pulse; DCIR not measured",
             where,
             ("dcir_mOhm",),
-        )
+        ), 0.0
     in_pulse = t <= t0 + pulse_s
     if not in_pulse.any():
         return None, Note(
@@ -170,23 +203,28 @@ def dcir_mohm(
             f"discharge, coarser than the {pulse_s:g} s DCIR pulse; DCIR not measured",
             where,
             ("dcir_mOhm",),
-        )
+        ), 0.0
     rest_t = trace.time_s[rest.start : rest.stop]
     rest_v = trace.voltage_v[rest.start : rest.stop]
-    v0 = median(rest_v[rest_t >= t0 - DCIR_REST_S])
+    before = rest_v[rest_t >= t0 - DCIR_REST_S - TIME_TOLERANCE_S]
+    v0 = median(before)
+    gain_v1 = 1.0
     interval = median(np.diff(t)) if len(t) > 1 else 0.0
     half = max(DCIR_FIT_S, 1.01 * interval)
     # the rows of the switch itself (spike, ramp) are left out of the fit
-    near = (np.abs(t - (t0 + pulse_s)) <= half) & (t >= t0 + 0.5 * pulse_s)
+    half += TIME_TOLERANCE_S
+    near = (np.abs(t - (t0 + pulse_s)) <= half) & (t >= t0 + 0.5 * pulse_s - TIME_TOLERANCE_S)
     if np.count_nonzero(near) >= 2 and np.ptp(t[near]) > 0:
         v1 = float(np.polyfit(t[near] - (t0 + pulse_s), v[near], 1)[1])  # the line at the pulse time
+        gain_v1 = _intercept_gain(t[near] - (t0 + pulse_s))
     else:
         v1 = float(np.interp(t0 + pulse_s, t, v))
     amps = np.abs(trace.current_a[discharge.start : discharge.stop])
     # the current of the pulse away from the switch's overshoot or ramp
-    settled = (t >= t0 + 0.5 * pulse_s) & (t <= t0 + pulse_s + half)
+    settled = (t >= t0 + 0.5 * pulse_s - TIME_TOLERANCE_S) & (t <= t0 + pulse_s + half)
     current = median(amps[settled] if settled.any() else amps[in_pulse])
-    return (v0 - v1) / current * 1000.0, None
+    per_volt = math.hypot(_median_gain(len(before)), gain_v1) / current * 1000.0
+    return (v0 - v1) / current * 1000.0, None, per_volt
 
 
 def rest_view(trace: Trace, rest: Step, relax_s: float) -> tuple[RestView | None, Note | None]:
@@ -210,12 +248,17 @@ def rest_view(trace: Trace, rest: Step, relax_s: float) -> tuple[RestView | None
     kept = t[keep]
     t_fit = kept - kept[0]
     slope_v_per_s, intercept_v = np.polyfit(t_fit, v[keep], 1)
+    # the slope's standard error from the residuals (Draper and Smith 1998, 3.1)
+    resid = v[keep] - (slope_v_per_s * t_fit + intercept_v)
+    sxx = float(np.sum((t_fit - t_fit.mean()) ** 2))
+    slope_u = math.sqrt(float(resid @ resid) / (len(t_fit) - 2) / sxx) if sxx > 0 else 0.0
     hours, volts = thin_series((t - t[0]) / 3600.0, v, VIEW_POINTS)
     view = RestView(
         Curve(hours, volts),
         float(kept[0] - t[0]) / 3600.0,
         float(intercept_v),
         float(slope_v_per_s * 3600.0 * 1000.0),
+        slope_u * 3600.0 * 1000.0,
     )
     return view, None
 
@@ -361,6 +404,7 @@ def measure(
         choice = check_formation(trace, segmentation, program)
     notes: list[Note] = list(choice.notes)
     values: dict[str, float | None] = dict.fromkeys(METRIC_NAMES)
+    scatter: dict[str, float] = {}
     values["cycle_count"] = float(sum(1 for c in segmentation.cycles if c.complete))
     if FORMATION in stages:  # a grading record's cycle 1 is its grading cycle
         notes += _first_cycle(values, trace, cycles, choice.first_cycle_finished, notes)
@@ -403,13 +447,16 @@ def measure(
                 ("dcir_mOhm",),
             )
         else:
-            values["dcir_mOhm"], note = dcir_mohm(trace, *start, dcir_pulse_s)
+            values["dcir_mOhm"], note, per_volt = dcir_reading(trace, *start, dcir_pulse_s)
+            if values["dcir_mOhm"] is not None:
+                scatter["dcir_mOhm_per_V_of_noise"] = per_volt
         notes += [note] if note else []
         rest, note = final_rest(trace, segmentation, program, grading)
         if rest is not None:
             rest_drawn, note = rest_view(trace, rest, relax_s)
             if rest_drawn is not None:
                 values["rest_voltage_drift_mV_per_h"] = rest_drawn.slope_mv_per_h
+                scatter["rest_voltage_drift_mV_per_h"] = rest_drawn.slope_u_mv_per_h
         notes += [note] if note else []
         plateaus, peaks, grading_curve, ica_curve, note = _plateau_values(
             values, trace, steps, grading, plateau_settings
@@ -438,4 +485,6 @@ def measure(
         tuple(notes),
         record_view(trace, steps),
         rest_drawn,
+        grading.index if grading is not None else None,
+        scatter,
     )

@@ -113,6 +113,32 @@ def format_value(metric: str, value: float | None, extra: int = 0) -> str:
     return with_unit(number(value), unit)
 
 
+def _decimals(text: str) -> int:
+    return len(text.split(".", 1)[1]) if "." in text else 0
+
+
+def format_uncertain(metric: str, value: float | None, u: float | None, extra: int = 0) -> str:
+    """A measured value ± its expanded uncertainty, U to two significant digits and the value
+    to at least as many decimals (JCGM 100:2008 7.2.6); the plain value when U is unknown.
+
+    >>> format_uncertain("grading_capacity_Ah", 18.9812, 0.0312)
+    '18.981 ± 0.031 Ah'
+    >>> format_uncertain("grading_coulombic_efficiency", 0.99296, 0.00034)
+    '99.296 ± 0.034 %'
+    >>> format_uncertain("dcir_mOhm", 7.412, None)
+    '7.41 mOhm'
+    """
+    if value is None or not math.isfinite(value) or u is None or not math.isfinite(u) or u <= 0:
+        return format_value(metric, value, extra)
+    scale, unit = _scale(metric)
+    u_text = significant(u * scale, 2)
+    number, _ = metric_format(metric, extra)
+    v_text = number(value)
+    if _decimals(u_text) > _decimals(v_text):
+        v_text = signed(f"{value * scale:.{_decimals(u_text)}f}")
+    return with_unit(f"{v_text} \N{PLUS-MINUS SIGN} {u_text}", unit)
+
+
 def format_window(metric: str, window: Window, extra: int = 0) -> str:
     """The window as "low to high" (an en dash), "≥ low", "≤ high" (with unit) or "any value".
 
@@ -178,6 +204,7 @@ __all__ = [
     "MINUS",
     "crossed",
     "format_spread",
+    "format_uncertain",
     "format_value",
     "format_window",
     "metric_format",

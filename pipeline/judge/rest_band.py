@@ -90,12 +90,14 @@ def estimate_band(current_a: FloatArray, floor_a: float, one_c_a: float) -> Curr
         # the offset itself from every row of the record at rest, not the sample: its
         # uncertainty falls with the square root of the rows, and it is subtracted from every
         # row of every charge and discharge (take_out_offset). The mean of the rows inside the
-        # band (outliers are outside it), its standard uncertainty s / sqrt(n) for independent
-        # samples (JCGM 100:2008, 4.2.3).
+        # band (outliers are outside it), its standard uncertainty sigma / sqrt(n) for
+        # independent samples (JCGM 100:2008, 4.2.3), sigma the robust noise: the plain
+        # standard deviation of those rows would also count the last of a constant-voltage
+        # tail, a current that is there, not noise on the offset.
         inside = current_a[np.abs(current_a - offset) <= width]
         if len(inside) >= MIN_NOISE_ROWS:
             offset, used = float(inside.mean()), len(inside)
-            offset_u = float(inside.std(ddof=1)) / np.sqrt(used)
+            offset_u = noise / np.sqrt(used)
         else:
             offset_u = MEDIAN_EFFICIENCY * noise / np.sqrt(used)
     return CurrentBand(offset, noise, threshold, floor_a, used, float(offset_u))

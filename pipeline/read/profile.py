@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from pipeline.errors import ProfileError
-from pipeline.model import SourceRef, frozen_mapping
+from pipeline.model import AccuracyClass, SourceRef, frozen_mapping
 from pipeline.read.profile_keys import (
     CAPACITY_UNITS,
     CURRENT_UNITS,
@@ -92,6 +92,7 @@ class Profile:
     counter_tolerance_percent: float = DEFAULT_COUNTER_TOLERANCE_PERCENT
     data_sheets: str | None = None
     metadata_sheet: str | None = None
+    accuracy: AccuracyClass | None = None  # the channels' accuracy class ([accuracy]), if given
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "columns", frozen_mapping({**V1_COLUMNS, **self.columns}))

@@ -1,0 +1,128 @@
+"""Each metric's uncertainty by the law of propagation (JCGM 100:2008, the GUM) against a
+Monte Carlo propagation of the same channel errors (JCGM 101:2008, "Propagation of
+distributions using a Monte Carlo method").
+
+The Monte Carlo oracle knows nothing of formgate's budgets: it draws a channel of the
+declared accuracy class again and again (a gain and an offset of voltage and current, a
+time-base error and a temperature offset, each uniform within the class, JCGM 101:2008
+6.4.2; row-to-row noise and switch transients from the project's channel model), records
+the same physics-simulated cell through each, and measures every metric. The spread of
+those metrics is what a reader of the certificate should expect; the GUM value formgate
+prints must be within 10 % of it (the issue's bar; with 400 draws the Monte Carlo standard
+deviation is itself known to about 3.5 %, 1/sqrt(2N), JCGM 101:2008 7.9).
+
+The reference cells are PyBaMM SPMe simulations (Marquis et al., J. Electrochem. Soc. 166
+(2019) A3693; parameter sets Chen et al., J. Electrochem. Soc. 167 (2020) 080534, and Prada
+et al., J. Electrochem. Soc. 160 (2013) A616).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime
+import functools
+import math
+
+import numpy as np
+import pytest
+
+from pipeline.demo.channel import Channel, add_channel_errors
+from pipeline.model import AccuracyClass, Trace
+from pipeline.rulebook.book import RuleBook, load_rule_set
+from pipeline.runner import judge_trace
+from pipeline.shipped import RULES_DIR
+from tests.reference.lot import load_cell
+
+ANALYSED_AT = datetime.datetime(2026, 12, 1, tzinfo=datetime.UTC)
+DRAWS = 400
+# The class the oracle draws from: wider than the default so that the class terms, not the
+# noise, dominate most budgets (a 0.05 % class, common practice for formation channels).
+CLASS = AccuracyClass(
+    voltage_pct_of_reading=0.05,
+    voltage_mv=2.0,
+    current_pct_of_reading=0.05,
+    current_pct_of_range=0.05,
+    temperature_k=1.0,
+    time_ppm=100.0,
+)
+# Metrics whose spread is set by the channel's errors: the GUM against Monte Carlo. Counts
+# have no uncertainty.
+COMPARED = (
+    "first_cycle_efficiency",
+    "irreversible_capacity_Ah",
+    "grading_capacity_Ah",
+    "grading_energy_Wh",
+    "grading_mean_voltage_V",
+    "grading_coulombic_efficiency",
+    "dcir_mOhm",
+    "rest_voltage_drift_mV_per_h",
+    "max_charge_voltage_V",
+    "min_discharge_voltage_V",
+    "max_temperature_C",
+    "main_plateau_voltage_V",
+)
+
+
+@functools.cache
+def rulebook(zero_offset: str) -> RuleBook:
+    sets = []
+    for path in sorted(RULES_DIR.glob("*.toml")):
+        text = path.read_text(encoding="utf-8")
+        text = text.replace("[measurement]\n", f'[measurement]\nzero_offset = "{zero_offset}"\n')
+        sets.append(load_rule_set(text, path.name))
+    return RuleBook(tuple(sets))
+
+
+def draw(name: str, rng: np.random.Generator, range_a: float) -> Trace:
+    """One channel of CLASS recording the reference cell: every error drawn anew."""
+    true = load_cell(name, 5.0)
+    noise = Channel(range_a, current_noise_fraction=2e-4, offset_fraction=0.0,
+                    voltage_noise_v=5e-4, temperature_noise_c=0.05)
+    volts, amps, temps = add_channel_errors(
+        true.voltage_v, true.current_a, true.temperature_c, true.step, noise, rng
+    )
+
+    def uniform(half_width: float) -> float:
+        return float(rng.uniform(-half_width, half_width))
+
+    volts = volts * (1 + uniform(CLASS.voltage_pct_of_reading / 100)) + uniform(
+        CLASS.voltage_mv / 1000)
+    amps = amps * (1 + uniform(CLASS.current_pct_of_reading / 100)) + uniform(
+        CLASS.current_pct_of_range / 100 * range_a)
+    time_s = true.time_s * (1 + uniform(CLASS.time_ppm * 1e-6))
+    temps = temps + uniform(CLASS.temperature_k)
+    return Trace(f"{name}.csv", dict(true.metadata), time_s, volts, amps, temps)
+
+
+def gum_and_monte_carlo(name: str, zero_offset: str) -> tuple[dict[str, float], dict[str, float]]:
+    """(mean GUM standard uncertainty, Monte Carlo standard deviation) of each metric."""
+    true = load_cell(name, 5.0)
+    range_a = 2.5 * float(true.truth["nominal_capacity_Ah"])
+    accuracy = dataclasses.replace(CLASS, current_range_a=range_a)
+    rng = np.random.default_rng(2026)
+    values: dict[str, list[float]] = {m: [] for m in COMPARED}
+    us: dict[str, list[float]] = {m: [] for m in COMPARED}
+    for _ in range(DRAWS):
+        result = judge_trace(draw(name, rng, range_a), f"{name}.csv", rulebook(zero_offset),
+                             analysed_at=ANALYSED_AT, input_sha256="0" * 64, accuracy=accuracy)
+        for metric in COMPARED:
+            value = result.metrics.values.get(metric)
+            if value is not None:
+                values[metric].append(value)
+                us[metric].append(result.metrics.uncertainty[metric] / 2)
+    gum = {m: float(np.mean(v)) for m, v in us.items() if len(v) == DRAWS}
+    mc = {m: float(np.std(v, ddof=1)) for m, v in values.items() if len(v) == DRAWS}
+    return gum, mc
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("zero_offset", ["as recorded", "corrected"])
+@pytest.mark.parametrize("name", ["nmc_normal_1", "lfp_normal_1"])
+def test_the_gum_uncertainty_of_each_metric_is_within_10_percent_of_monte_carlo(
+    name: str, zero_offset: str
+) -> None:
+    gum, mc = gum_and_monte_carlo(name, zero_offset)
+    assert set(gum) == set(mc) and set(gum) >= set(COMPARED) - {"main_plateau_voltage_V"}
+    ratios = {m: gum[m] / mc[m] for m in gum if mc[m] > 0}
+    off = {m: round(r, 3) for m, r in ratios.items() if not math.isclose(r, 1.0, rel_tol=0.10)}
+    assert off == {}, f"GUM / Monte Carlo outside 0.9-1.1: {off}"
