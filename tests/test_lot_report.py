@@ -23,7 +23,7 @@ from pypdf import PdfReader
 
 from pipeline.judge.lotstats import GradeClass, ScreenSpec, WindowSpec, grade_of
 from pipeline.model import Hazard
-from pipeline.report import hazards, lothistogram, lotreport, lotwords
+from pipeline.report import exportvalues, hazards, lothistogram, lotreport, lotwords
 from pipeline.report.lothistogram import histogram_edges
 from pipeline.report.lotreport import (
     LotCell,
@@ -259,7 +259,8 @@ def _rows(data: LotReportInput) -> list[dict[str, str]]:
 def test_export_has_one_row_per_cell_with_exact_values(lot: LotReportInput) -> None:
     rows = _rows(lot)
     assert [r["cell_id"] for r in rows] == sorted(c.cell_id for c in lot.cells)
-    assert list(rows[0])[:9] == ["lot", "cell_id", "verdict", "grade", "reason", "hazards", CAP, DCIR, DRIFT]
+    assert list(rows[0])[:13] == ["lot", "cell_id", "cell_type", "stage", "channel", "station", "verdict",
+                                  "grade", "reason", "hazards", CAP, DCIR, DRIFT]
     assert list(rows[0])[-2:] == ["records", "decided_at"]
     by_id = {c.cell_id: c for c in lot.cells}
     for row in rows:
@@ -268,8 +269,8 @@ def test_export_has_one_row_per_cell_with_exact_values(lot: LotReportInput) -> N
         for metric in (CAP, DCIR, DRIFT):
             value = cell.values.get(metric)
             assert row[metric] == ("" if value is None else row[metric])
-            if value is not None:
-                assert float(row[metric]) == value  # repr round-trips a float exactly
+            if value is not None:  # rounded to the metric's resolution, then repr round-trips it
+                assert float(row[metric]) == round(value, exportvalues.export_decimals(metric))
         assert datetime.datetime.fromisoformat(row["decided_at"]) == cell.decided_at
         assert row["records"].split(";")[0] == f"formation:{cell.cell_id}-form.csv:{'1f' * 32}"
     held = next(r for r in rows if r["cell_id"] == "NX-0040")
@@ -281,7 +282,7 @@ def test_export_reads_back_with_pandas(lot: LotReportInput) -> None:
     frame = pd.read_csv(io.BytesIO(lot_export_csv(lot)), dtype={"grade": "string"})
     assert len(frame) == len(lot.cells)
     assert frame[DCIR].isna().sum() == 1
-    expected = np.array([c.values[CAP] for c in sorted(lot.cells, key=lambda c: c.cell_id)])
+    expected = np.array([round(c.values[CAP], 5) for c in sorted(lot.cells, key=lambda c: c.cell_id)])
     np.testing.assert_array_equal(frame[CAP].to_numpy(), expected)
 
 
@@ -296,7 +297,7 @@ def test_export_guards_formula_like_text_and_keeps_extra_metrics_sorted() -> Non
                              "cells": base.cells + odd})
     rows = _rows(data)
     header = list(rows[0])
-    assert header[6:11] == [CAP, DCIR, DRIFT, "alpha_metric", "zeta_metric"]
+    assert header[10:15] == [CAP, DCIR, DRIFT, "alpha_metric", "zeta_metric"]
     by_id = {r["cell_id"]: r for r in rows}
     assert "'=1+1" in by_id and "'@SUM(A1)" in by_id
     assert by_id["'=1+1"]["reason"] == "'-capacity low"
@@ -305,7 +306,7 @@ def test_export_guards_formula_like_text_and_keeps_extra_metrics_sorted() -> Non
     assert by_id["'=1+1"]["alpha_metric"] == ""
 
 
-@pytest.mark.parametrize("module", [lotreport, lotwords, lothistogram], ids=lambda m: m.__name__)
+@pytest.mark.parametrize("module", [lotreport, lotwords, lothistogram, exportvalues], ids=lambda m: m.__name__)
 def test_the_doctests_hold(module: types.ModuleType) -> None:
     failures, tried = doctest.testmod(module)
     assert tried > 0 and failures == 0

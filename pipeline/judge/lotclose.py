@@ -62,6 +62,8 @@ class ClosedCell:
     values: Mapping[str, float | None]
     records: tuple[tuple[str, str, str], ...]  # (stage, file name, sha256)
     decided_at: datetime.datetime | None
+    # (channel, station) of each cycle-file record, as the file's metadata names them ("" if not)
+    places: tuple[tuple[str, str], ...] = ()
 
     @property
     def changed(self) -> bool:
@@ -138,6 +140,7 @@ class CellStages:
     values: Mapping[str, float | None]
     files: tuple[tuple[str, str, str], ...]  # (stage words, file name, sha256)
     decided_at: datetime.datetime | None
+    places: tuple[tuple[str, str], ...] = ()  # (channel, station) per cycle-file record
 
 
 _WORST_FIRST = {"fail": 3, "error": 3, "hold": 2, "pass": 1}
@@ -186,12 +189,15 @@ def cell_stages(
     values: dict[str, float | None] = {}
     files: list[tuple[str, str, str]] = []
     times = []
+    places: list[tuple[str, str]] = []
     ordered = sorted(chosen.values(), key=lambda p: str(p[0]["analysed_at"]))
     for doc, stages in ordered:
         base = _cycle_record(doc)
         records.append(dataclasses.replace(base, stages=tuple(stages)))
         values.update({k: v for k, v in doc["metrics"].items() if v is not None or k not in values})
         files.append((" and ".join(stages), base.source, base.sha256))
+        where = doc.get("cell", {})
+        places.append((str(where.get("channel") or ""), str(where.get("station") or "")))
         times.append(datetime.datetime.fromisoformat(str(doc["analysed_at"])))
     if too_many:
         records.append(StageRecord((), "hold", "; ".join(too_many)))
@@ -215,7 +221,8 @@ def cell_stages(
         )
         values.update(aging.values)
         files += [("aging", name, sha) for name, sha in sources]
-    return CellStages(tuple(records), values, tuple(files), max(times) if times else None)
+    return CellStages(tuple(records), values, tuple(files), max(times) if times else None,
+                      tuple(places))
 
 
 @dataclass(frozen=True, slots=True)
@@ -342,7 +349,8 @@ def close_lot(
                 final = decide(needed[cell], st.records, flagged[cell])
             grade = screened.grades.get(cell) if final.verdict == "pass" else None
         cells.append(
-            ClosedCell(cell, types[cell], decision, final, grade, st.values, st.files, st.decided_at)
+            ClosedCell(cell, types[cell], decision, final, grade, st.values, st.files, st.decided_at,
+                       st.places)
         )
     # the counts, the yield and the grades as decided at the close (outliers held, ungraded);
     # the limits, outliers, spreads and Cpk as the screens were evaluated

@@ -184,6 +184,7 @@ def metric_histograms(
             lines += "; dashed lines: the lot limits (robust screen)"
         shown.append({
             "metric": metric,
+            "n": int(x.size),
             "bins": len(edges) - 1,
             "svg": Markup(svg),  # numbers and escaped text only: see histogram_svg
             "caption": f"{metric}: {', '.join(words)}; {lines}.",

@@ -26,7 +26,6 @@ import csv
 import datetime
 import functools
 import io
-import math
 from collections import Counter
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
@@ -47,6 +46,7 @@ from pipeline.judge.quantities import DASH, format_spread, format_value, precisi
 from pipeline.model import Hazard, Window, frozen_mapping
 from pipeline.report import hazards, pdf
 from pipeline.report.certificate import HAZARD_WORDS, TEMPLATES_DIR, format_time
+from pipeline.report.exportvalues import round_to_resolution
 from pipeline.report.lothistogram import metric_histograms
 from pipeline.report.lotwords import CPK_MINIMUM, capability_row, yield_text
 
@@ -78,7 +78,9 @@ class LotCell:
     ``verdict`` is pass, fail, hold or error; ``reason`` the deciding line of a fail or a
     hold ("" for a pass); ``hazards`` the hazards of its failed checks (values of
     :class:`pipeline.model.Hazard`); ``records`` the files its decision rests on, as
-    (stage or file kind, file name, SHA-256); ``decided_at`` when it was decided (aware).
+    (stage or file kind, file name, SHA-256); ``decided_at`` when it was decided (aware);
+    ``cell_type`` its type; ``places`` the (channel, station) of each cycle-file record, as
+    the files' metadata name them ("" where a file names none).
     """
 
     cell_id: str
@@ -89,6 +91,8 @@ class LotCell:
     values: Mapping[str, float | None]
     records: tuple[tuple[str, str, str], ...]
     decided_at: datetime.datetime
+    cell_type: str = ""
+    places: tuple[tuple[str, str], ...] = ()
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "values", frozen_mapping(dict(self.values)))
@@ -254,6 +258,7 @@ def lot_report_context(data: LotReportInput) -> dict[str, object]:
     for o in stats.outliers:
         by_metric.setdefault(o.metric, []).append(o)
     rs = data.rule_set
+    histograms = metric_histograms(data.checks, [c.values for c in data.cells], stats.limits, data.units)
     status = (f"closed at {format_time(data.closed_at)}" if data.closed_at is not None
               else OPEN_LOT_WORDS)
     return {
@@ -289,9 +294,9 @@ def lot_report_context(data: LotReportInput) -> dict[str, object]:
         "screens": [_screen(limits, by_metric.get(limits.metric, ())) for limits in stats.limits],
         "capabilities": [capability_row(c, stats.capabilities[c.key]) for c in data.checks],
         "cpk_minimum": f"{CPK_MINIMUM:.2f}",
-        "histograms": metric_histograms(
-            data.checks, [c.values for c in data.cells], stats.limits, data.units
-        ),
+        # a metric no cell has a value of gets a sentence, not an empty frame
+        "histograms": [h for h in histograms if h["n"]],
+        "no_values": ", ".join(str(h["metric"]) for h in histograms if not h["n"]),
         "max_failed": MAX_FAILED_ROWS,
         "max_outliers": MAX_OUTLIER_ROWS,
     }
@@ -343,38 +348,70 @@ def export_metrics(data: LotReportInput) -> list[str]:
     return first + sorted(rest)
 
 
-def _value_field(value: float | None) -> str:
-    """repr of a float (it reads back to the same float); empty when not measured."""
-    return repr(float(value)) if value is not None and math.isfinite(value) else ""
+def _joined(parts: Iterable[str]) -> str:
+    """Distinct non-empty parts in order, ";"-joined: one channel for a cell tested on one."""
+    return ";".join(dict.fromkeys(p for p in parts if p))
+
+
+EXPORT_FIRST: Final = ("lot", "cell_id", "cell_type", "stage", "channel", "station", "verdict",
+                       "grade", "reason", "hazards")
+EXPORT_LAST: Final = ("records", "decided_at")
+
+
+def export_table(data: LotReportInput) -> tuple[list[str], list[list[str | float | None]]]:
+    """The export's header and rows, one per cell sorted by cell id, before any file format.
+
+    Text fields are as data gives them (not yet guarded against spreadsheets); a metric is
+    a float rounded to its resolution (:mod:`pipeline.report.exportvalues`) or None when not
+    measured. ``stage``: the stages its records cover, ";"-joined; ``channel`` and
+    ``station``: the distinct ones its cycle-file records name, ";"-joined.
+    """
+    metrics = export_metrics(data)
+    rows: list[list[str | float | None]] = []
+    for cell in sorted(data.cells, key=lambda c: c.cell_id):
+        records = ";".join(f"{stage}:{name}:{sha}" for stage, name, sha in cell.records)
+        rows.append([
+            data.lot,
+            cell.cell_id,
+            cell.cell_type,
+            _joined(stage for stage, _, _ in cell.records),
+            _joined(channel for channel, _ in cell.places),
+            _joined(station for _, station in cell.places),
+            cell.verdict,
+            cell.grade or "",
+            cell.reason,
+            ";".join(cell.hazards),
+            *(round_to_resolution(m, cell.values.get(m)) for m in metrics),
+            records,
+            cell.decided_at.isoformat(),
+        ])
+    return [*EXPORT_FIRST, *metrics, *EXPORT_LAST], rows
+
+
+def _csv_field(value: str | float | None, column: str) -> str:
+    if value is None:
+        return ""
+    if isinstance(value, float):
+        return repr(value)  # already rounded: reads back to the same float
+    return value if column == "decided_at" else guard_formula(value)
 
 
 def lot_export_csv(data: LotReportInput) -> bytes:
     """The lot as UTF-8 CSV: one header row, then one row per cell sorted by cell id.
 
-    Columns: lot, cell_id, verdict, grade, reason, hazards (";"-joined), one per metric
-    (:func:`export_metrics`), records ("stage:file:sha256", ";"-joined), decided_at (ISO
-    8601). A value not measured (None, NaN or infinite, as the lot statistics treat it) is
-    an empty field, never 0; others are written as Python's repr, which reads back to the
-    same float. Text fields from data go through :func:`guard_formula`.
+    Columns (:func:`export_table`): lot, cell_id, cell_type, stage, channel, station,
+    verdict, grade, reason, hazards (";"-joined), one per metric (:func:`export_metrics`),
+    records ("stage:file:sha256", ";"-joined), decided_at (ISO 8601). A value not measured
+    (None, NaN or infinite, as the lot statistics treat it) is an empty field, never 0;
+    others are rounded to their metric's resolution and written as Python's repr, which
+    reads back to the same float. Text fields from data go through :func:`guard_formula`.
     """
-    metrics = export_metrics(data)
+    header, rows = export_table(data)
     out = io.StringIO(newline="")
     writer = csv.writer(out, lineterminator="\r\n")
-    writer.writerow(["lot", "cell_id", "verdict", "grade", "reason", "hazards",
-                     *metrics, "records", "decided_at"])
-    for cell in sorted(data.cells, key=lambda c: c.cell_id):
-        records = ";".join(f"{stage}:{name}:{sha}" for stage, name, sha in cell.records)
-        writer.writerow([
-            guard_formula(data.lot),
-            guard_formula(cell.cell_id),
-            guard_formula(cell.verdict),
-            guard_formula(cell.grade or ""),
-            guard_formula(cell.reason),
-            guard_formula(";".join(cell.hazards)),
-            *(_value_field(cell.values.get(m)) for m in metrics),
-            guard_formula(records),
-            cell.decided_at.isoformat(),
-        ])
+    writer.writerow(header)
+    for row in rows:
+        writer.writerow([_csv_field(v, c) for v, c in zip(row, header, strict=True)])
     return out.getvalue().encode("utf-8")
 
 
@@ -383,6 +420,7 @@ __all__ = [
     "LotReportInput",
     "RuleSetRef",
     "export_metrics",
+    "export_table",
     "guard_formula",
     "lot_export_csv",
     "lot_report_context",

@@ -5,7 +5,7 @@ with the pure pipeline.judge.lotclose, records each cell's decision at the close
 lot's screens turn into a hold is recorded beside the pass, with its letter), and
 writes the report PDF and the one-row-per-cell CSV:
 
-    <certificates>/<lot>/_lot-report.pdf     <results>/<lot>/_lot-cells.csv
+    <certificates>/<lot>/_lot-report.pdf     <results>/<lot>/_lot-cells.csv (and .parquet)
 
 (the leading underscore keeps them apart from every cell's files: a cell id never
 makes a file name that starts with one). Used by `formgate lot close` and by the
@@ -34,6 +34,7 @@ from pipeline.ledger.rows import DecisionRow
 from pipeline.mail.letters import Letter, alert_letter, digest_letter
 from pipeline.names import safe_name
 from pipeline.read.readings import Reading, ReadingFile
+from pipeline.report.lotparquet import lot_export_parquet
 from pipeline.report.lotreport import (
     LotCell,
     LotReportInput,
@@ -133,6 +134,8 @@ def report_input(
                 c.values,
                 c.records,
                 decided_at(c),
+                c.cell_type,
+                c.places,
             )
             for c in closed.cells
         ) + not_judged,
@@ -163,6 +166,11 @@ def report_paths(settings: Settings, lot: str) -> tuple[Path, Path]:
         settings.certificates / folder / "_lot-report.pdf",
         settings.results / folder / "_lot-cells.csv",
     )
+
+
+def parquet_path(export: Path) -> Path:
+    """The Parquet export beside the CSV one: ``_lot-cells.parquet``."""
+    return export.with_suffix(".parquet")
 
 
 def close_and_report(
@@ -217,7 +225,8 @@ def close_and_report(
     if data.statistics is not None:  # what the report counts, the caller shows (not judged too)
         closed = dataclasses.replace(closed, statistics=data.statistics)
     written = [Written(report, render_lot_report_pdf(data), "lot report"),
-               Written(export, lot_export_csv(data), "lot export")]
+               Written(export, lot_export_csv(data), "lot export"),
+               Written(parquet_path(export), lot_export_parquet(data), "lot export")]
     for file in written:
         write_atomic(file.data, file.path)
     note_written(ledger, written, now=now, lot=lot)  # their hashes, for formgate verify
