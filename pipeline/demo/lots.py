@@ -143,6 +143,7 @@ DEMO_STAGED_CELLS: tuple[DemoCell, ...] = _lot(
 )
 AGING_START = "2026-03-09T08:00:00+00:00"  # the first reading, after formation
 AGING_DAYS = 7.0
+GRADING_AFTER_AGING_H = 2.0  # a cell goes from the shelf to its grading channel in this
 
 # Cell-type baselines (our own invented cells): capacity is set about 2 % above nominal, as
 # rated capacity is usually a few percent below typical (common practice).
@@ -307,13 +308,27 @@ def stage_file_name(cell: DemoCell, stage: str) -> str:
     return f"{cell.lot}_{cell.cell_id}_{stage}.csv"
 
 
+def stage_started_at(cell: DemoCell, stage: str) -> str:
+    """When the cell's ``stage`` program started: formation at the cell's own start, grading
+    after the lot's last aging reading (formation, then aging on the shelf, then grading),
+    in the same order of cells."""
+    if stage == "formation":
+        return cell.started_at
+    formed = datetime.datetime.fromisoformat(cell.started_at)
+    shelf_end = datetime.datetime.fromisoformat(AGING_START) + datetime.timedelta(days=AGING_DAYS)
+    at = shelf_end + datetime.timedelta(hours=GRADING_AFTER_AGING_H, minutes=formed.minute)
+    return at.isoformat()
+
+
 def demo_stage_files(cell: DemoCell, seed: int = 2026) -> dict[str, bytes]:
-    """The cell's formation file and grading file, stage -> bytes, each saying its stage."""
+    """The cell's formation file and grading file, stage -> bytes, each saying its stage and
+    when it started (:func:`stage_started_at`)."""
     records = demo_stage_records(cell, seed)
     chemistry = _BASE[cell.cell_type].chemistry.split("_")[0]
     out = {}
     for stage, record in zip(FILE_STAGES, (records.formation, records.grading), strict=True):
-        metadata = {**demo_metadata(cell), "program": f"{chemistry}-{stage}-v1"}
+        metadata = {**demo_metadata(cell), "program": f"{chemistry}-{stage}-v1",
+                    "started_at": stage_started_at(cell, stage)}
         out[stage] = to_cycle_file(record, stage_metadata(metadata, stage)).encode("utf-8")
     return out
 
