@@ -79,6 +79,20 @@ class SmtpConfig:
     ca_file: Path | None
 
 
+@dataclass(frozen=True, slots=True)
+class PlantSettings:
+    """The [plant] table as written: no password, only the file that holds it (settings/plant.py)."""
+
+    database: str
+    station_id: str
+    password_file: Path | None
+    batch_rows: int = 500
+    connect_timeout_s: float = 10.0
+    statement_timeout_s: float = 30.0
+    retry_max_s: float = 300.0
+    alert_after_s: float = 900.0
+
+
 @dataclass(frozen=True, slots=True, kw_only=True)
 class Settings:
     """A station's settings; every path is absolute or relative to the caller's working folder."""
@@ -115,6 +129,7 @@ class Settings:
     log_max_MB: float = 10.0
     log_keep: int = 5
     certify: str = "all"  # or "failed_and_held": which cells get a PDF certificate
+    plant: PlantSettings | None = None  # the plant database the ledger is forwarded to
 
     def all_folders(self) -> tuple[Path, ...]:
         """Every folder the station writes or claims from: the inboxes, then [folders] but rules."""
