@@ -415,6 +415,69 @@ SETTINGS_TABLES: tuple[Table, ...] = (
             ),
         ),
     ),
+    Table(
+        "plant",
+        "The plant database (PostgreSQL) the station forwards every row of its ledger to, "
+        "from a thread of its own (docs/plant.md). Without database, nothing is forwarded. "
+        "The station never waits for it: while it is down or slow, the station judges and "
+        "records as ever, and formgate status shows how far the feed is behind.",
+        (
+            Key(
+                "database",
+                TEXT,
+                "the plant database, as postgresql://ROLE@HOST:PORT/DATABASE (no password in "
+                "it: see password_file)",
+                example='"postgresql://formgate_line1@example.com:5432/formgate"',
+            ),
+            Key(
+                "station_id",
+                TEXT,
+                "the name this station's rows carry in the plant database; unique in the plant, "
+                "and never changed once the station has fed it",
+                allowed_note="defaults to [station] name",
+                example='"formation-line-1"',
+            ),
+            Key(
+                "password_file",
+                TEXT,
+                "file whose first line is the database password; readable by the station's user "
+                "only (chmod 600). Not set: the database needs none (a local socket, or a "
+                "certificate)",
+                example='"plant-password"',
+            ),
+            Key(
+                "batch_rows",
+                INTEGER,
+                "ledger rows forwarded in one plant transaction",
+                default=500,
+                minimum=1,
+                maximum=10_000,
+            ),
+            _positive("connect_timeout_s", "longest wait for a connection to the database", "s",
+                      10.0),
+            _positive(
+                "statement_timeout_s",
+                "the database cancels a statement of the feed that takes longer: a slow "
+                "database pauses the feed like one that is down",
+                "s",
+                30.0,
+            ),
+            _positive(
+                "retry_max_s",
+                "while the database cannot be reached, the feed tries again after 1 s, then "
+                "twice as long each time, up to this long",
+                "s",
+                300.0,
+            ),
+            _positive(
+                "alert_after_s",
+                "once the feed has not been able to forward for this long, one alert goes to "
+                "[mail] alerts_to",
+                "s",
+                900.0,
+            ),
+        ),
+    ),
 )
 
 SETTINGS_BY_TABLE: dict[str, Table] = {t.name: t for t in SETTINGS_TABLES}
@@ -436,6 +499,7 @@ CROSS_RULES: tuple[str, ...] = (
     "`username`. `password_env` is a variable name (letters, digits, `_`).",
     "With a `host`, `sender` and `failures_to` are required: failed cells must reach someone.",
     "`host` is a name or address only; the port goes in `port`.",
+    "`[plant] database` is a `postgresql://` address that names a database and holds no password.",
 )
 
 _ACTIVE_VALUES: dict[tuple[str, str], str] = {
