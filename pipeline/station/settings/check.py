@@ -23,6 +23,7 @@ from pipeline.rulebook.tables import Collector, Values, check_family, check_tabl
 from pipeline.rulebook.toml_lines import KeyPath, show_table, syntax_position
 from pipeline.station.settings.folders import Checker, Place
 from pipeline.station.settings.mail import check_routing, check_smtp, mail_routing, smtp_config
+from pipeline.station.settings.plant import check_plant, plant_settings
 from pipeline.station.settings.records import FOLDER_KEYS, InboxSettings, ProfileRule, Settings
 from pipeline.station.settings.schema import (
     SETTINGS_BY_TABLE,
@@ -193,6 +194,8 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
     smtp_paths = {k: check.path(("smtp",), k, smtp) for k in ("password_file", "ca_file")}
     check_smtp(out, smtp, routing, password_written)
     check_routing(out, routing)
+    check_plant(out, plain["plant"])
+    plant_password = check.path(("plant",), "password_file", plain["plant"])
     if out.errors:
         # Problems with a line first, in line order; whole-file problems (often consequences) last.
         errors = [cast(SettingsError, e) for e in out.errors]
@@ -235,6 +238,7 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
             log_max_MB=cast(float, station["log_max_MB"]),
             log_keep=cast(int, station["log_keep"]),
             certify=cast(str, station["certify"]),
+            plant=plant_settings(plain["plant"], plant_password, str(station["name"])),
         ),
         [],
     )
