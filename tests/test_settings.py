@@ -31,6 +31,7 @@ from pipeline.station.settings import (
     render_station_toml,
     smtp_settings,
 )
+from pipeline.station.settings.records import PlantSettings
 from pipeline.station.settings.schema import SETTINGS_TABLES, render_docs
 from tests.conftest import DATA_DIR, REPO, RULES_DIR
 
@@ -220,6 +221,16 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_settings() -> 
         domain="line-2.example.com",
         certificates_url="https://quality.example.com/formgate/certificates/",
     )
+    assert s.plant == PlantSettings(
+        database="postgresql://formgate_line2@plant-db.example.com:5433/formgate",
+        station_id="hall-b-line-2",
+        password_file=ROOT / "secrets/plant-password",
+        batch_rows=250,
+        connect_timeout_s=5.0,
+        statement_timeout_s=20.0,
+        retry_max_s=120.0,
+        alert_after_s=300.0,
+    )
     assert s.all_folders() == (
         Path("/srv/share/hall-a"),
         ROOT / "hall-b",
@@ -249,8 +260,12 @@ def test_defaults_of_the_schema_and_of_the_records_agree() -> None:
             )
     assert inbox.polling is False and inbox.profile is None
     for field in dataclasses.fields(Settings):
-        if field.default is not dataclasses.MISSING:
+        if field.default is not dataclasses.MISSING and field.name != "plant":
             assert field.default == _schema_default("station", field.name) == getattr(s, field.name)
+    assert s.plant is None  # no [plant] database: nothing is forwarded
+    for field in dataclasses.fields(PlantSettings):
+        if field.default is not dataclasses.MISSING:
+            assert field.default == _schema_default("plant", field.name)
     assert MailRouting((), (), (), ()).digest_quiet_s == _schema_default("mail", "digest_quiet_s")
     assert MailRouting((), (), (), ()).outage_alert_s == _schema_default("mail", "outage_alert_s")
     assert s.routing.outage_alert_s == 900.0
