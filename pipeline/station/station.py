@@ -55,6 +55,7 @@ from pipeline.station.lingering import Lingering
 from pipeline.station.lots import LotCloser
 from pipeline.station.mailer import MailThread
 from pipeline.station.originals import Originals
+from pipeline.station.plantfeed import StationFeed
 from pipeline.station.publishing import Publisher, final_name
 from pipeline.station.rules_in_force import RulesInForce
 from pipeline.station.setaside import SetAside
@@ -180,6 +181,7 @@ class Station:
         ]
         lots = LotCloser(self.settings, lambda: self.rules.rulebook, self.clock, mail.wake,
                          interval_s=self.settings.reconcile_s * 6)
+        plant = StationFeed(self.settings, self.clock)  # forwards the ledger to the plant database
         try:
             guard.duty(lambda: self.after_death(death))
             self.recover()
@@ -187,6 +189,7 @@ class Station:
                 w.start()
             mail.start()
             lots.start()
+            guard.duty(lambda: plant.start(ledger))
             log.info(
                 "station %s watching %s",
                 self.settings.station_name,
@@ -210,6 +213,7 @@ class Station:
                 w.stop()
             if lots.is_alive():
                 lots.stop()
+            plant.stop()
             mail.stop()
             self.judges.shutdown()
             self.inhand.close()
