@@ -14,6 +14,8 @@ from pathlib import Path
 from pipeline.ledger.certificates import Backlog
 from pipeline.ledger.ledger import Ledger
 from pipeline.names import from_text, to_text
+from pipeline.plant.connect import PlantTarget
+from pipeline.plant.feed import status_line as feed_status_line
 from pipeline.station.board import process_exists
 from pipeline.station.handoff import is_temporary
 from pipeline.station.heartbeat import read_heartbeat
@@ -154,6 +156,9 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
         mail = mail_trouble(ledger)  # noted by whichever sender tried last: the ledger knows
         if mail is not None:
             lines.insert(lines.index("queue") - 1, f"  {mail.shown()}")
+        if settings.plant is not None:  # noted by the feed: the ledger knows how far behind it is
+            shown = PlantTarget(settings.plant.database, settings.plant.station_id).shown()
+            lines.insert(lines.index("queue") - 1, f"  {feed_status_line(ledger, shown)}")
         left: dict[str, dict[str, str]] = {}
         still_there = []
         folders = {i.name: i.folder for i in settings.inboxes}
