@@ -14,8 +14,6 @@ from pathlib import Path
 from pipeline.ledger.certificates import Backlog
 from pipeline.ledger.ledger import Ledger
 from pipeline.names import from_text, to_text
-from pipeline.plant.connect import PlantTarget
-from pipeline.plant.feed import status_line as feed_status_line
 from pipeline.station.board import process_exists
 from pipeline.station.handoff import is_temporary
 from pipeline.station.heartbeat import read_heartbeat
@@ -157,6 +155,9 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
         if mail is not None:
             lines.insert(lines.index("queue") - 1, f"  {mail.shown()}")
         if settings.plant is not None:  # noted by the feed: the ledger knows how far behind it is
+            from pipeline.plant.connect import PlantTarget  # the database driver: only then
+            from pipeline.plant.feed import status_line as feed_status_line
+
             shown = PlantTarget(settings.plant.database, settings.plant.station_id).shown()
             lines.insert(lines.index("queue") - 1, f"  {feed_status_line(ledger, shown)}")
         left: dict[str, dict[str, str]] = {}
