@@ -1,0 +1,262 @@
+"""The `formgate plant ...` commands: the plant database that every station forwards its ledger to.
+
+Argument parsing and printing only; pipeline.plant holds the queries and the decisions.
+Each command connects with ``--database URL`` (the password as libpq finds it: a
+``~/.pgpass`` file or PGPASSWORD, as for psql) or with ``--station FOLDER`` (that
+station's [plant] settings and password file). A cell whose records are at several
+stations is decided by the plant here, and the decision recorded in the plant database
+under the name of whoever ran the command; no letter is sent (docs/plant.md).
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime
+import getpass
+import socket
+from pathlib import Path
+from typing import Any
+
+from pipeline.cli.exits import EXIT_OK
+from pipeline.errors import FormgateError
+
+
+def _connect(args: argparse.Namespace) -> Any:
+    import psycopg
+
+    from pipeline.plant.connect import PlantTarget
+
+    if args.station:
+        from pipeline.station.plantfeed import plant_target
+        from pipeline.station.settings import read_settings
+
+        settings = read_settings(Path(args.station))
+        if settings.plant is None:
+            raise FormgateError(f"{settings.source}: the station names no [plant] database", None,
+                                "Add [plant] database = \"postgresql://…\", or give --database.")
+        target = plant_target(settings.plant)
+    elif args.database:
+        from pipeline.plant.connect import url_problem
+
+        problem = url_problem(args.database)
+        if problem is not None:
+            raise FormgateError(f"--database cannot be used: {problem}", None,
+                                "Give postgresql://ROLE@HOST:PORT/DATABASE; keep the password in "
+                                "~/.pgpass or PGPASSWORD.")
+        target = PlantTarget(args.database, "plant command")
+    else:
+        raise FormgateError("no plant database given", None,
+                            "Give --database postgresql://ROLE@HOST:PORT/DATABASE, or --station "
+                            "FOLDER of a station whose station.toml names it under [plant].")
+    try:
+        return psycopg.connect(target.conninfo(), autocommit=True)
+    except psycopg.OperationalError as exc:
+        raise FormgateError(f"cannot connect to the plant database {target.shown()} "
+                            f"({str(exc).strip().splitlines()[0]})", None,
+                            "Check the address, the role and its password, and that the "
+                            "database server runs.") from None
+
+
+def _who() -> str:
+    return f"{getpass.getuser()}@{socket.gethostname()}"
+
+
+def _now() -> datetime.datetime:
+    return datetime.datetime.now(datetime.UTC)
+
+
+def _time(at: datetime.datetime | None) -> str:
+    return "-" if at is None else at.astimezone(datetime.UTC).isoformat(timespec="seconds")
+
+
+def cmd_migrate(args: argparse.Namespace) -> int:
+    """Set up or bring up to date the plant's schema (as the role that owns it)."""
+    from pipeline.plant.schema import PLANT_SCHEMA_VERSION, migrate
+
+    with _connect(args) as conn:
+        conn.autocommit = False
+        done = migrate(conn, where="")
+    print(f"plant schema at version {PLANT_SCHEMA_VERSION}"
+          + (f" (applied: {', '.join(done)})" if done else " (nothing to do)"))
+    return EXIT_OK
+
+
+def cmd_cell_show(args: argparse.Namespace) -> int:
+    """A cell at every station: its records, readings, each station's decision, the plant's."""
+    from pipeline.plant.cells import decide_in_plant, fetch_cell, lots_of_cell
+
+    with _connect(args) as conn:
+        lots = [args.lot] if args.lot else lots_of_cell(conn, args.cell)
+        if not lots:
+            raise FormgateError(f"the plant database has no cell {args.cell!r}", None,
+                                "Check the cell id (formgate plant find CELL looks for it).")
+        for lot in lots:
+            cell = fetch_cell(conn, lot, args.cell)
+            print(f"cell {args.cell}, lot {lot}, at {len(cell.stations)} station(s): "
+                  f"{', '.join(cell.stations)}")
+            print(f"  records ({len(cell.records)})")
+            for r in cell.records:
+                stages = " and ".join(r.document.get("stages") or ("formation", "grading"))
+                why = f": {r.document.get('decision')}" if r.verdict != "pass" else ""
+                print(f"    {_time(r.analysed_at)}  station {r.station_id}  {r.input_name}  "
+                      f"{stages}  {r.verdict}{why}")
+            if cell.readings:
+                print(f"  aging readings ({len(cell.readings)})")
+                for station, name, _, reading in cell.readings:
+                    print(f"    {_time(reading.at)}  {reading.ocv_v:.4f} V  station {station}  "
+                          f"{name} line {reading.line}")
+            print(f"  station decisions ({len(cell.decisions)})")
+            for d in cell.decisions:
+                print(f"    station {d.station_id}  {_time(d.decided_at)}  {d.verdict}  ({d.cause})"
+                      + (f": {d.reason}" if d.reason else ""))
+            made = decide_in_plant(conn, cell, decided_by=_who(), now=_now())
+            if made is None:
+                print("  plant decision: none (every record is at one station, which decides it)")
+                continue
+            decision, new = made
+            print(f"  plant decision{' (new)' if new else ''}: {decision.verdict}"
+                  + (f": {decision.reason}" if decision.reason else "")
+                  + (f"  hazard: {', '.join(decision.hazards)}" if decision.hazards else ""))
+            print(f"    over {', '.join(decision.stations)}, rule set {decision.rule_set_sha256[:16]}, "
+                  f"by {decision.decided_by} at {_time(decision.decided_at)}")
+    return EXIT_OK
+
+
+def cmd_lot_show(args: argparse.Namespace) -> int:
+    """Every station's cells of a lot with their standing decisions, one yield, the screens."""
+    from pipeline.plant.lots import Books, lot_cells, screens_text
+
+    with _connect(args) as conn:
+        cells, held = lot_cells(conn, args.lot, decided_by=_who(), now=_now())
+        stations = sorted({s for c in cells for s in c.stations})
+        counts = {v: sum(c.verdict == v for c in cells) for v in ("pass", "fail", "hold", "")}
+        share = 100.0 * counts["pass"] / len(cells)
+        print(f"lot {args.lot}: {len(cells)} cell(s) at {len(stations)} station(s) "
+              f"({', '.join(stations)}): {counts['pass']} pass, {counts['fail']} fail, "
+              f"{counts['hold']} hold" + (f", {counts['']} not decided" if counts[""] else "")
+              + f"; yield {share:.1f} %")
+        order = {"fail": 0, "hold": 1, "": 2, "pass": 3}
+        for c in sorted(cells, key=lambda c: (order[c.verdict], c.cell_id)):
+            print(f"  {c.cell_id}  {c.verdict or 'not decided'}"
+                  + (f": {c.reason}" if c.reason and c.verdict else "")
+                  + f"  ({c.decided_by or 'no decision'}; {', '.join(c.stations)})")
+        for line in screens_text(args.lot, held, Books(conn)):
+            print(line)
+    return EXIT_OK
+
+
+def cmd_lot_export(args: argparse.Namespace) -> int:
+    """One row per cell of the lot over every station, as CSV or Parquet (by the file's suffix)."""
+    from pipeline.plant.lots import export_csv, export_parquet, lot_cells
+    from pipeline.writing import write_atomic
+
+    out = Path(args.out)
+    if out.suffix.lower() not in (".csv", ".parquet"):
+        raise FormgateError(f"{out}: the export is written as .csv or .parquet", None,
+                            "Name the file LOT.csv or LOT.parquet.")
+    with _connect(args) as conn:
+        cells, _ = lot_cells(conn, args.lot, decided_by=_who(), now=_now())
+    data = export_parquet(cells) if out.suffix.lower() == ".parquet" else export_csv(cells)
+    write_atomic(data, out)
+    print(f"{out}: {len(cells)} cell(s)")
+    return EXIT_OK
+
+
+def cmd_yield(args: argparse.Namespace) -> int:
+    """Cells, passes and yield by station, cell type or day, over every lot."""
+    from pipeline.plant.lots import yield_rows
+
+    since = None
+    if args.since:
+        try:
+            since = datetime.datetime.fromisoformat(args.since).replace(tzinfo=datetime.UTC)
+        except ValueError:
+            raise FormgateError(f"--since {args.since!r} is not a date", None,
+                                "Give a date as YYYY-MM-DD (UTC).") from None
+    with _connect(args) as conn:
+        rows = yield_rows(conn, args.by, decided_by=_who(), now=_now(), since=since)
+    if not rows:
+        print("no cells yet")
+        return EXIT_OK
+    width = max(len(args.by), *(len(r[0]) for r in rows))
+    print(f"{args.by:<{width}}  cells   pass   fail   hold   yield")
+    for group, cells, passed, failed, held in rows:
+        print(f"{group:<{width}}  {cells:5d}  {passed:5d}  {failed:5d}  {held:5d}  "
+              f"{100.0 * passed / cells:5.1f} %")
+    return EXIT_OK
+
+
+def cmd_find(args: argparse.Namespace) -> int:
+    """Every input with this SHA-256, or every record of a cell with this id, at every station."""
+    from pipeline.plant.lots import find
+
+    with _connect(args) as conn:
+        lines = find(conn, args.text)
+    if not lines:
+        raise FormgateError(f"the plant database holds no input or cell {args.text!r}", None,
+                            "Give a cell id or an input file's SHA-256 (64 hex digits).")
+    for line in lines:
+        print(line)
+    return EXIT_OK
+
+
+def _where(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--database", metavar="URL",
+                   help="the plant database, postgresql://ROLE@HOST:PORT/DATABASE (the password "
+                        "from ~/.pgpass or PGPASSWORD)")
+    p.add_argument("--station", metavar="FOLDER",
+                   help="use the [plant] settings and password file of this station instead")
+
+
+def add_commands(sub: Any) -> None:
+    """Add `plant` to the command line's sub-commands."""
+    plant = sub.add_parser("plant", help="the plant database: cells and lots over every station",
+                           epilog="example: formgate plant lot show DEMO-LOT-01 --station station/")
+    plant_sub = plant.add_subparsers(dest="plant_command", required=True, metavar="WHAT")
+    migrate = plant_sub.add_parser("migrate", help="set up or update the plant database's schema",
+                                   description="Set up or update the plant database's schema, as "
+                                               "the role that owns it.")
+    _where(migrate)
+    migrate.set_defaults(func=cmd_migrate)
+    cell = plant_sub.add_parser("cell", help="a cell over every station")
+    cell_sub = cell.add_subparsers(dest="plant_cell_command", required=True, metavar="ACTION")
+    show = cell_sub.add_parser("show", help="a cell's records and decisions at every station, and "
+                                            "the plant's decision",
+                               description="A cell's records, readings and decisions at every "
+                                           "station, and the plant's decision of a cell that ran at "
+                                           "several.")
+    show.add_argument("cell", metavar="CELL", help="the cell id")
+    show.add_argument("--lot", help="only in this lot")
+    _where(show)
+    show.set_defaults(func=cmd_cell_show)
+    lot = plant_sub.add_parser("lot", help="a lot over every station")
+    lot_sub = lot.add_subparsers(dest="plant_lot_command", required=True, metavar="ACTION")
+    lshow = lot_sub.add_parser("show", help="every station's cells of a lot, one yield, the screens",
+                               description="Every station's cells of a lot with their standing "
+                                           "decisions, one yield, and the lot's screens over them.")
+    lshow.add_argument("lot", metavar="LOT", help="the lot")
+    _where(lshow)
+    lshow.set_defaults(func=cmd_lot_show)
+    export = lot_sub.add_parser("export", help="one row per cell of a lot, as CSV or Parquet",
+                                description="One row per cell of a lot over every station, as CSV "
+                                            "or Parquet (by the file's suffix).")
+    export.add_argument("lot", metavar="LOT", help="the lot")
+    export.add_argument("--out", metavar="FILE", required=True,
+                        help="the file to write: .csv or .parquet")
+    _where(export)
+    export.set_defaults(func=cmd_lot_export)
+    yields = plant_sub.add_parser("yield", help="yield by station, cell type or day",
+                                  description="Cells, passes and yield by station, cell type or "
+                                              "day (UTC) of the cell's latest record.")
+    yields.add_argument("--by", choices=("station", "cell-type", "day"), default="station",
+                        help="how to group the cells (default: station)")
+    yields.add_argument("--since", metavar="DATE",
+                        help="only cells whose latest record is of this day (UTC) or later")
+    _where(yields)
+    yields.set_defaults(func=cmd_yield)
+    find = plant_sub.add_parser("find", help="a cell by its id, or an input by its SHA-256",
+                                description="Every record of a cell, or every input with a "
+                                            "SHA-256, at every station.")
+    find.add_argument("text", metavar="CELL_OR_SHA256", help="a cell id or an input's SHA-256")
+    _where(find)
+    find.set_defaults(func=cmd_find)
