@@ -1,7 +1,7 @@
 """The command line's entry point: the parser of every command family, exit codes, bugs.
 
 Argument parsing and exit codes only. Each command family has its module (check.py,
-profile.py, station.py, lots.py, review.py, regrade.py, verify.py, demo.py) with a plain
+profile.py, station.py, lots.py, review.py, regrade.py, verify.py, plant.py, demo.py) with a plain
 function per command that returns an exit code, and adds its sub-commands to the parser
 here, in the order `formgate --help` shows them. A command given by name loads only its own
 family's module (a command starts in a fresh process every time: what it does not use, it
@@ -25,7 +25,7 @@ from pipeline.cli.starting import as_program, importing
 
 # The command families (modules of pipeline.cli), in the order `formgate --help` shows them,
 # and the family of each command.
-FAMILIES = ("check", "profile", "station", "lots", "review", "regrade", "verify", "demo")
+FAMILIES = ("check", "profile", "station", "lots", "review", "regrade", "verify", "plant", "demo")
 COMMANDS = {
     "check": "check",
     "rules": "check",
@@ -39,6 +39,7 @@ COMMANDS = {
     "review": "review",
     "regrade": "regrade",
     "verify": "verify",
+    "plant": "plant",
     "demo": "demo",
 }
 
