@@ -341,7 +341,7 @@ class AccuracyClass:
     current_range_a: float | None = None
     temperature_k: float = 1.0
     time_ppm: float = 50.0
-    source: str = "the default class (common practice)"
+    source: str = "default class, common practice"
 
 
 DEFAULT_ACCURACY = AccuracyClass()

@@ -68,6 +68,22 @@ def judge(
     )
 
 
+def with_range(accuracy: AccuracyClass, trace: Trace) -> AccuracyClass:
+    """The class with its current range: as declared, or the record's largest current rounded
+    up to the 1-2-5 series (the smallest range that could have carried it), said so."""
+    if accuracy.current_range_a is not None:
+        return accuracy
+    import numpy as np
+
+    from pipeline.judge.uncertainty import range_up
+
+    finite = trace.current_a[np.isfinite(trace.current_a)]
+    range_a = range_up(float(np.max(np.abs(finite)))) if len(finite) else 1.0
+    return dataclasses.replace(
+        accuracy, current_range_a=range_a, source=f"{accuracy.source}; range from the record"
+    )
+
+
 def choose_accuracy(
     accuracy: ChannelClasses | AccuracyClass | None, channel: str | None, profile: Profile | None
 ) -> AccuracyClass:
@@ -116,7 +132,7 @@ def judge_trace(
         relax_s=rule_set.relax_s,
         stages=stages,
     )
-    chosen = choose_accuracy(accuracy, trace.metadata.get("channel"), None)
+    chosen = with_range(choose_accuracy(accuracy, trace.metadata.get("channel"), None), trace)
     found = budgets(trace, segmentation, metrics, chosen, segmentation.band, rule_set.plateau,
                     offset_estimated=rule_set.zero_offset == "corrected")
     metrics = dataclasses.replace(metrics, uncertainty=expanded(found))

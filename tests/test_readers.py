@@ -16,7 +16,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipeline.errors import InputError, ProfileError
-from pipeline.model import CellType, SourceRef, Trace
+from pipeline.model import AccuracyClass, CellType, SourceRef, Trace
+from pipeline.read.accuracy import ACCURACY_KEYS
 from pipeline.read.cyclefile import read_cycle_file
 from pipeline.read.profile import DEFAULT_PROFILE, Profile, load_profile
 from pipeline.read.profile_keys import PROFILE_KEYS, V1_COLUMNS, describe_profile_keys
@@ -458,6 +459,7 @@ def test_every_documented_key_is_accepted() -> None:
         ("counters", "compare"): "false",
         ("counters", "tolerance_percent"): "2.5",
         ("metadata", "*"): '"F-1"',
+        **{("accuracy", k.name): f"{i + 1}" for i, k in enumerate(ACCURACY_KEYS)},
     }
     tables: dict[str, list[str]] = {}
     for key in PROFILE_KEYS:
@@ -486,6 +488,7 @@ def test_every_documented_key_is_accepted() -> None:
     assert (profile.columns["capacity"], profile.capacity_unit, profile.energy_unit) == (
         "col capacity", "mAh", "J"
     )
+    assert profile.accuracy == AccuracyClass(1, 2, 3, 4, 5, 6, 7, "import profile all.toml")
 
 
 def test_profile_key_table_documents_every_key() -> None:

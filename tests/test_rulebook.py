@@ -169,15 +169,16 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_rule_set() -> 
     assert (two.min_voltage_v, two.max_voltage_v) == (0.5, 4.0)  # from [plausible]
     assert rs.plateau == PlateauSettings(4.0, 6.0, 2.0, 2.5, 501, 2.0, 0.5)
     assert (rs.dcir_pulse_s, rs.relax_s, rs.rest_current_fraction) == (5.0, 900.0, 0.01)
-    assert rs.zero_offset == "as recorded"
+    assert (rs.zero_offset, rs.decision) == ("as recorded", "guarded rejection")
     assert rs.program == Program(3, 14, 2.0, 0.05, 7200.0)
     (rule,) = rs.rules
     assert rule.id == "capacity" and rule.metric == "grading_capacity_Ah"
     assert rule.window == Window(0.98, 1.12, "nominal_capacity")
     assert (rule.severity, rule.hazard) == (Severity.REJECT, Hazard.ABNORMAL_CAPACITY)
     assert (rule.message, rule.if_missing) == ("Grading capacity out of window.", "skip")
+    assert rule.decision == "guarded acceptance"
     assert rule.cell_types == ("DEMO-ALL-1", "DEMO-ALL-2")
-    assert rule.where == SourceRef("all_keys.toml", 45)
+    assert rule.where == SourceRef("all_keys.toml", 46)
     assert (one.stages, two.stages) == (None, ("formation", "grading"))
     assert (rs.stages, rs.stage_overdue_h) == (("formation", "aging", "grading"), 240.0)
     assert rs.aging == AgingSettings(5.0, -0.25, 23.0)
@@ -195,6 +196,7 @@ def test_defaults_fill_what_a_file_leaves_out() -> None:
     assert rs.program == Program()
     assert (rs.cell_types[0].min_voltage_v, rs.cell_types[0].max_voltage_v) == (-0.1, 5.0)
     assert rs.rules[0].if_missing == "hold" and rs.rules[0].cell_types == ()
+    assert (rs.decision, rs.rules[0].decision) == ("simple acceptance", None)
 
 
 def test_sha256_is_of_the_text_as_given_and_crlf_files_load_with_right_lines() -> None:

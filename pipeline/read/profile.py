@@ -30,6 +30,7 @@ from typing import Any
 
 from pipeline.errors import ProfileError
 from pipeline.model import AccuracyClass, SourceRef, frozen_mapping
+from pipeline.read.accuracy import AccuracyValueError, accuracy_from
 from pipeline.read.profile_keys import (
     CAPACITY_UNITS,
     CURRENT_UNITS,
@@ -215,6 +216,12 @@ def _build(doc: dict[str, Any], text: str, name: str) -> Profile:
             raise fail(f"unknown metadata key '{key}'", "metadata", key, hint)
         metadata[key] = text_value("metadata", key, "").strip()
     layout = _layout(doc, fail, text_value, choice, columns)
+    accuracy = None
+    if "accuracy" in doc:
+        try:
+            accuracy = accuracy_from(doc["accuracy"], f"import profile {name}")
+        except AccuracyValueError as exc:
+            raise fail(f"[accuracy] {exc}", "accuracy", exc.key) from None
     return Profile(
         name=name,
         description=text_value("", "description", ""),
@@ -230,6 +237,7 @@ def _build(doc: dict[str, Any], text: str, name: str) -> Profile:
         current_unit=choice("units", "current", "A", tuple(CURRENT_UNITS)),
         current_sign=choice("units", "current_sign", "charge positive", SIGN_CHOICES),
         metadata=metadata,
+        accuracy=accuracy,
         **layout,
     )
 

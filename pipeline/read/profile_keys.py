@@ -20,6 +20,8 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 
 from pipeline.model import frozen_mapping
+from pipeline.read.accuracy import ACCURACY_KEYS
+from pipeline.read.accuracy import describe as describe_accuracy
 
 QUANTITIES: tuple[str, ...] = ("time", "voltage", "current", "temperature", "step", "cycle")
 # Columns a layout may have beyond cycle file v1, read only when the profile names them:
@@ -254,6 +256,19 @@ PROFILE_KEYS: tuple[ProfileKey, ...] = (
         "none",
         "a sheet of metadata: a key in its first column, the value in the second; without it "
         "the rows above the first data sheet's header hold metadata in the same way",
+    ),
+    *(
+        ProfileKey(
+            "accuracy",
+            k.name,
+            f"number, 0 or more ({k.unit})",
+            describe_accuracy(k),
+            k.meaning + " (the channels' accuracy class, from which every metric's uncertainty "
+            "starts; a station's [accuracy.ID] for the inbox or channel wins over it)"
+            if k is ACCURACY_KEYS[0]
+            else k.meaning,
+        )
+        for k in ACCURACY_KEYS
     ),
     ProfileKey(
         "metadata",

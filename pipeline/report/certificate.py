@@ -25,11 +25,18 @@ from pipeline.judge.metricdefs import BY_NAME
 # write it: quantities.py is the one source of those words (names kept for the importers).
 from pipeline.judge.quantities import BY_UNIT as _BY_UNIT
 from pipeline.judge.quantities import DASH as DASH  # as before: importers take it from here
-from pipeline.judge.quantities import format_value, format_window, precision, significant
+from pipeline.judge.quantities import (
+    format_uncertain,
+    format_window,
+    precision,
+    significant,
+)
+from pipeline.judge.quantities import format_value as format_value  # and this
 from pipeline.judge.quantities import percent as _percent
 from pipeline.judge.quantities import signed as _signed
 from pipeline.judge.quantities import with_unit as _with_unit
 from pipeline.model import (
+    SIMPLE,
     WHOLE_PROGRAM,
     CellResult,
     CheckResult,
@@ -96,10 +103,11 @@ def _check_row(check: CheckResult, decided: bool) -> dict[str, str]:
         "id": check.rule_id,
         "metric": check.metric,
         "meaning": definition.meaning if definition else "",
-        "value": format_value(check.metric, check.value, extra),
+        "value": format_uncertain(check.metric, check.value, check.uncertainty, extra),
         "window": format_window(check.metric, check.window, extra),
         "severity": check.severity.value,
-        "outcome": OUTCOME_WORDS[check.outcome] + (" (deciding)" if decided else ""),
+        "outcome": ("too close to decide" if check.too_close else OUTCOME_WORDS[check.outcome])
+        + (" (deciding)" if decided else ""),
         "outcome_class": check.outcome.value.replace("_", "-") + (" deciding" if decided else ""),
         # a hazard word on a row in window would alarm a reader for nothing
         "hazard": HAZARD_WORDS[check.hazard] if check.hazard and out else "",
@@ -187,28 +195,52 @@ def _note_rows(result: CellResult) -> list[dict[str, str]]:
     ]
 
 
+def measurement_text(result: CellResult) -> str:
+    """One sentence on where the ± values come from and how the checks decide near a limit."""
+    accuracy = result.accuracy
+    if accuracy is None:
+        return ""
+    range_text = (
+        f"{accuracy.current_range_a:g} A" if accuracy.current_range_a is not None
+        else "a range from the record"
+    )
+    by_rule: dict[str, list[str]] = {}
+    for check in result.verdict.checks:
+        by_rule.setdefault(check.decision, []).append(check.rule_id)
+    if len(by_rule) <= 1:
+        decisions = f"every check by {next(iter(by_rule), SIMPLE)}"
+    else:
+        decisions = "; ".join(f"{rule}: {', '.join(ids)}" for rule, ids in by_rule.items())
+    return (
+        f"± U (k = 2): the channel's accuracy class, V ±({accuracy.voltage_pct_of_reading:g} % "
+        f"+ {accuracy.voltage_mv:g} mV), I ±({accuracy.current_pct_of_reading:g} % + "
+        f"{accuracy.current_pct_of_range:g} % of {range_text}), T ±{accuracy.temperature_k:g} K, "
+        f"time ±{accuracy.time_ppm:g} ppm ({accuracy.source}), with the data's own scatter. "
+        f"Decisions: {decisions}."
+    )
+
+
 def _band_text(band: CurrentBand | None) -> str:
     """How rest was told from current, in one sentence for the data-quality section."""
     if band is None:
         return ""
     def ma(value_a: float) -> str:
         return f"{_signed(f'{value_a * 1000:.3g}')} mA"
-    if band.corrected:  # one sentence, as long as the other: a passed cell's page is one page
+    if band.corrected:  # one short sentence, as long as the other: a passed cell's page is one page
         return (
-            f"The channel's zero offset, {ma(band.offset_a)} (standard uncertainty "
-            f"{band.offset_u_a * 1000:.2g} mA; noise {ma(band.noise_a)} rms, from {band.rows} "
-            f"rows at rest), was taken out of every row; rest is current within "
-            f"{ma(band.threshold_a)} of zero (the rule set's rest current is {ma(band.floor_a)})."
+            f"Zero offset {ma(band.offset_a)} ± {2 * band.offset_u_a * 1000:.2g} mA (k = 2; "
+            f"{band.rows} rows at rest, noise {ma(band.noise_a)} rms) taken out of every row; "
+            f"rest is |\u2060I\u2060| ≤ {ma(band.threshold_a)} (rule set: {ma(band.floor_a)})."
         )
     source = (
-        f"the channel's zero offset {ma(band.offset_a)} and noise {ma(band.noise_a)} rms, "
+        f"zero offset {ma(band.offset_a)}, noise {ma(band.noise_a)} rms, "
         f"from {band.rows} rows near zero current"
         if band.rows
         else "too few rows near zero current to estimate the channel's noise"
     )
     return (
         f"Rest is current within {ma(band.threshold_a)} of the zero offset ({source}; "
-        f"the rule set's rest current is {ma(band.floor_a)})."
+        f"rule set: {ma(band.floor_a)})."
     )
 
 
@@ -487,6 +519,7 @@ def build_context(
         or DASH,
         "notes": _note_rows(result),
         "current_band": _band_text(result.current_band),
+        "measurement": measurement_text(result),
         "traceability": _traceability(result),
         "verification": {"code": verification_code, "spaced": verification.spaced(verification_code)},
     }

@@ -13,8 +13,10 @@ from typing import Any
 from pipeline.judge.evaluate import decision_line
 from pipeline.judge.metricdefs import METRICS
 from pipeline.model import (
+    DECISION_RULES,
     FAMILIES,
     WHOLE_PROGRAM,
+    AccuracyClass,
     CellResult,
     CheckResult,
     CurrentBand,
@@ -71,6 +73,25 @@ def _check(c: CheckResult) -> dict[str, Any]:
         "severity": c.severity.value,
         "hazard": c.hazard.value if c.hazard else None,
         "message": c.message,
+        "U": json_number(c.uncertainty),
+        "decision": c.decision,
+        "too_close": c.too_close,
+    }
+
+
+def _accuracy(accuracy: AccuracyClass | None) -> dict[str, Any] | None:
+    """The channel's accuracy class the uncertainties came from, and where it was declared."""
+    if accuracy is None:
+        return None
+    return {
+        "voltage_pct_of_reading": accuracy.voltage_pct_of_reading,
+        "voltage_mV": accuracy.voltage_mv,
+        "current_pct_of_reading": accuracy.current_pct_of_reading,
+        "current_pct_of_range": accuracy.current_pct_of_range,
+        "current_range_A": accuracy.current_range_a,
+        "temperature_K": accuracy.temperature_k,
+        "time_ppm": accuracy.time_ppm,
+        "source": accuracy.source,
     }
 
 
@@ -125,6 +146,11 @@ def to_document(result: CellResult) -> dict[str, Any]:
         "reasons": list(result.verdict.reasons),
         "decision": decision_line(result.verdict, result.notes),
         "metrics": {m.name: json_number(result.metrics.values.get(m.name)) for m in METRICS},
+        # each metric's expanded uncertainty U (k = 2); null: not measured, or none (a count)
+        "metrics_U": {
+            m.name: json_number(result.metrics.uncertainty.get(m.name)) for m in METRICS
+        },
+        "accuracy": _accuracy(result.accuracy),
         "cycles": [_cycle(c) for c in result.metrics.cycles],
         "plateaus": [_plateau(p) for p in result.metrics.plateaus],
         "ica_peaks_V": list(result.metrics.ica_peaks_v),
@@ -163,6 +189,9 @@ def to_json(result: CellResult) -> str:
 
 _NUM = {"type": ["number", "null"]}
 _STR = {"type": ["string", "null"]}
+
+
+ACCURACY_KEYS: tuple[str, ...] = tuple(_accuracy(AccuracyClass()) or {})
 
 
 def schema() -> dict[str, Any]:
@@ -350,10 +379,37 @@ def schema() -> dict[str, Any]:
                         "severity": {"enum": ["reject", "review"]},
                         "hazard": _STR,
                         "message": {"type": "string"},
+                        # not required: absent from results written before uncertainties were recorded
+                        "U": {"type": ["number", "null"], "minimum": 0},
+                        "decision": {"enum": list(DECISION_RULES)},
+                        "too_close": {"type": "boolean"},
                     },
                 },
             },
             "checks_not_made": {"type": "array", "items": {"type": "string"}},
+            # not required: absent from results written before uncertainties were recorded
+            "metrics_U": {
+                "type": "object",
+                "additionalProperties": False,
+                "properties": {
+                    m.name: {"type": ["number", "null"], "minimum": 0} for m in METRICS
+                },
+            },
+            "accuracy": {
+                "oneOf": [
+                    {"type": "null"},
+                    {
+                        "type": "object",
+                        "additionalProperties": False,
+                        "required": list(ACCURACY_KEYS),
+                        "properties": {
+                            **{k: {"type": "number", "minimum": 0} for k in ACCURACY_KEYS},
+                            "current_range_A": {"type": ["number", "null"], "exclusiveMinimum": 0},
+                            "source": {"type": "string"},
+                        },
+                    },
+                ]
+            },
             "current_band": {
                 "oneOf": [
                     {"type": "null"},

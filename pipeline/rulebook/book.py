@@ -25,6 +25,7 @@ from pipeline.errors import FormgateError, InputError, RulesError
 from pipeline.judge.metricdefs import RULE_BY_NAME as BY_NAME
 from pipeline.judge.metricdefs import RULE_METRIC_NAMES as METRIC_NAMES
 from pipeline.model import (
+    SIMPLE,
     AgingSettings,
     CellType,
     Hazard,
@@ -198,6 +199,7 @@ def _build_rule(
         hazard=Hazard(v["hazard"]) if "hazard" in v else None,
         message=str(v["message"]),
         if_missing=str(v["if_missing"]),
+        decision=str(v["decision"]) if "decision" in v else None,
         cell_types=cell_types,
         where=out.where(path),
     )
@@ -346,6 +348,7 @@ def _assemble(
         relax_s=num(measure, "relax_s"),
         rest_current_fraction=num(measure, "rest_current_C"),
         zero_offset=str(measure.get("zero_offset", "corrected")),
+        decision=str(measure.get("decision", SIMPLE)),
         description=str(meta["description"]),
         program=Program(
             cycles=_int_or_none(program, "cycles"),

@@ -14,15 +14,20 @@ Regenerate the documentation with ``python -m pipeline.rulebook.schema > docs/ru
 
 from __future__ import annotations
 
+import math
 import sys
 from dataclasses import dataclass
 
 from pipeline.judge.metricdefs import AGING_METRICS, METRICS
 from pipeline.model import (
+    DECISION_RULES,
     FAMILIES,
+    GUARDED_ACCEPTANCE,
+    GUARDED_REJECTION,
     RECORD_CHOICES,
     SAFETY_HAZARDS,
     SCREEN_SIDES,
+    SIMPLE,
     Hazard,
     PlateauSettings,
     Severity,
@@ -280,6 +285,14 @@ TABLES: tuple[Table, ...] = (
                 default="corrected",
                 allowed=ZERO_OFFSET,
             ),
+            Key(
+                "decision",
+                TEXT,
+                "how a check decides a value near a limit, for the checks that name no "
+                "decision of their own (see Decision rules below)",
+                default=SIMPLE,
+                allowed=DECISION_RULES,
+            ),
         ),
     ),
     Table(
@@ -395,6 +408,13 @@ TABLES: tuple[Table, ...] = (
                 "note holds the cell; skip: the check is left out",
                 default="hold",
                 allowed=IF_MISSING,
+            ),
+            Key(
+                "decision",
+                TEXT,
+                "how this check decides a value near a limit (see Decision rules below)",
+                allowed=DECISION_RULES,
+                allowed_note="not set: [measurement] decision",
             ),
             Key(
                 "cell_types",
@@ -648,6 +668,54 @@ def key_table(table: Table) -> list[str]:
     return rows
 
 
+def normal_cdf(x: float) -> float:
+    """The standard normal distribution function, Phi(x)."""
+    return 0.5 * (1.0 + math.erf(x / math.sqrt(2.0)))
+
+
+# The worst-case probability of false acceptance each decision rule gives: the chance that
+# a value accepted at the edge of the acceptance zone lies truly outside the window, for a
+# normal distribution of standard deviation U / 2 (JCGM 106:2012 9.3, "specific risk").
+def worst_false_acceptance(rule: str) -> float:
+    guard = {SIMPLE: 0.0, GUARDED_ACCEPTANCE: 2.0, GUARDED_REJECTION: -2.0}[rule]  # in units of u
+    return 1.0 - normal_cdf(guard)
+
+
+def decision_docs() -> list[str]:
+    """The "Decision rules" section of docs/rules.md."""
+    pfa = {rule: f"{100 * worst_false_acceptance(rule):.1f} %" for rule in DECISION_RULES}
+    return [
+        "## Decision rules",
+        "",
+        "Every metric is measured with an expanded uncertainty U (k = 2, about 95 % for a "
+        "normal distribution), from the channel's accuracy class and the data's own scatter "
+        "(docs/metrics.md, Uncertainty). How a check decides a value within U of one of its "
+        "limits is its decision rule (`decision` of the check, or of `[measurement]`), as "
+        "ILAC-G8:09/2019 (Guidelines on decision rules and statements of conformity), "
+        "ISO 14253-1:2017 (decision rules for verifying conformity or nonconformity with "
+        "specifications) and JCGM 106:2012 (the role of measurement uncertainty in "
+        "conformity assessment) describe them:",
+        "",
+        "| decision | in window | within U inside a limit | within U outside a limit | "
+        "out by more than U | worst-case false acceptance |",
+        "|---|---|---|---|---|---|",
+        f"| `{SIMPLE}` | accepted | accepted | out of window | out of window | {pfa[SIMPLE]} |",
+        f"| `{GUARDED_ACCEPTANCE}` | accepted | held: too close to the limit to decide "
+        f"| out of window | out of window | {pfa[GUARDED_ACCEPTANCE]} |",
+        f"| `{GUARDED_REJECTION}` | accepted | accepted | accepted | out of window "
+        f"| {pfa[GUARDED_REJECTION]} |",
+        "",
+        "The worst-case false acceptance is the probability that a value accepted at the edge "
+        "of what the rule accepts lies truly outside the window, for a normal distribution of "
+        "standard deviation U / 2 (JCGM 106:2012, 9.3). Guarded acceptance suits a reject "
+        "check that protects the customer or a hazard (a held cell goes to a person, who may "
+        "retest it); guarded rejection suits a check whose fail costs a good cell and whose "
+        "acceptance carries no hazard. A metric without an uncertainty (a count) is always "
+        "judged as measured. A held \"too close\" cell's certificate says "
+        "\"too close to the limit to decide: 18.98 ± 0.03 Ah against ≥ 19.00 Ah\".",
+    ]
+
+
 def render_docs() -> str:
     """Return the whole of docs/rules.md, generated from TABLES, RENAMED and the metrics table."""
     out = [
@@ -697,6 +765,7 @@ def render_docs() -> str:
     ]
     for m in AGING_METRICS:
         out.append(f"| `{m.name}` | {_cell(m.unit)} | | {_cell(m.meaning)} |")
+    out += ["", *decision_docs()]
     out += ["", "## Renamed keys", "", "| table | old key | new key |", "|---|---|---|"]
     for (table_name, old), new in sorted(RENAMED.items()):
         out.append(f"| `{BY_TABLE[table_name].header}` | `{old}` | `{new}` |")
