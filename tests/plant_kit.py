@@ -6,11 +6,25 @@ import sqlite3
 from pathlib import Path
 
 import psycopg
+import pytest
 
 from pipeline.ledger.ledger import Ledger
 from pipeline.plant.feed import read_state
 from pipeline.plant.forward import behind
 from pipeline.plant.tables import FED
+from tests.station_kit import cycle_file, drop, make_station, running, settled, wait_until
+
+
+@pytest.fixture(scope="module")
+def judged_ledger(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The ledger of a station that judged six cells (one failed) of lot LOT-A."""
+    s = make_station(tmp_path_factory.mktemp("station") / "st")
+    with running(s):
+        for n in range(6):
+            capacity = 1.5 if n == 3 else 2.0
+            drop(s.inboxes[0].folder, f"c{n}.csv", cycle_file(f"F-{n}", capacity_ah=capacity, seed=n))
+        wait_until(lambda: settled(s, 6), what="six cells judged")
+    return s.ledger
 
 
 def copy_ledger(source: Path, folder: Path) -> Path:

@@ -21,26 +21,15 @@ from pipeline.plant.feed import PlantFeed, read_state, status_line
 from pipeline.plant.forward import behind
 from pipeline.plant.tables import FED
 from tests.plant_kit import assert_whole_and_once, caught_up, copy_ledger
+from tests.plant_kit import judged_ledger as judged_ledger  # a fixture
 from tests.plant_server import PlantServer
-from tests.station_kit import cycle_file, drop, make_station, running, settled, wait_until
+from tests.station_kit import wait_until
 
 pytestmark = pytest.mark.slow
 
 
 def utc_now() -> datetime.datetime:
     return datetime.datetime.now(datetime.UTC)
-
-
-@pytest.fixture(scope="module")
-def judged_ledger(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    """The ledger of a station that judged six cells (one failed) of lot LOT-A."""
-    s = make_station(tmp_path_factory.mktemp("station") / "st")
-    with running(s):
-        for n in range(6):
-            capacity = 1.5 if n == 3 else 2.0
-            drop(s.inboxes[0].folder, f"c{n}.csv", cycle_file(f"F-{n}", capacity_ah=capacity, seed=n))
-        wait_until(lambda: settled(s, 6), what="six cells judged")
-    return s.ledger
 
 
 @pytest.fixture

@@ -200,6 +200,23 @@ def cmd_find(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_resend(args: argparse.Namespace) -> int:
+    """Log a station's every row to be forwarded again (the plant restored from a backup)."""
+    from pipeline.ledger.ledger import Ledger
+    from pipeline.plant.forward import resend_all
+    from pipeline.station.settings import read_settings
+
+    settings = read_settings(Path(args.folder))
+    if not settings.ledger.exists():
+        raise FormgateError(f"{settings.ledger}: the station has no ledger yet", None,
+                            "Nothing to forward: its first start forwards what it records.")
+    with Ledger(settings.ledger) as ledger:
+        logged = resend_all(ledger)
+    print(f"{logged:,} rows of {settings.station_name} to be forwarded again; the station's feed "
+          "sends them (rows the plant holds are not stored twice)")
+    return EXIT_OK
+
+
 def _where(p: argparse.ArgumentParser) -> None:
     p.add_argument("--database", metavar="URL",
                    help="the plant database, postgresql://ROLE@HOST:PORT/DATABASE (the password "
@@ -260,3 +277,9 @@ def add_commands(sub: Any) -> None:
     find.add_argument("text", metavar="CELL_OR_SHA256", help="a cell id or an input's SHA-256")
     _where(find)
     find.set_defaults(func=cmd_find)
+    resend = plant_sub.add_parser("resend", help="forward a station's whole ledger again",
+                                  description="Log every row of a station's ledger to be "
+                                              "forwarded again, after the plant database was "
+                                              "restored from an older backup.")
+    resend.add_argument("folder", metavar="FOLDER", help="the station folder")
+    resend.set_defaults(func=cmd_resend)

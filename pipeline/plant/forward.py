@@ -55,6 +55,18 @@ class Change:
     key: object
 
 
+def _log_every_row(conn: sqlite3.Connection) -> int:
+    """Log every row of every forwarded table to go (again), parents first; how many."""
+    logged = 0
+    for fed in FED:
+        logged += conn.execute(
+            f"INSERT INTO plant_changes (tbl, row_key) SELECT ?, {fed.key} "
+            f"FROM {fed.table} ORDER BY {fed.key}",
+            (fed.table,),
+        ).rowcount
+    return logged
+
+
 def start_log(ledger: Ledger, *, now: datetime.datetime) -> str:
     """The ledger's id for the plant (a UUID made at the feed's first start, when every row
     the ledger already holds is logged to go, parents first)."""
@@ -64,15 +76,20 @@ def start_log(ledger: Ledger, *, now: datetime.datetime) -> str:
     ledger_id = str(uuid.uuid4())
     with ledger.db.write() as conn:
         if conn.execute("SELECT 1 FROM plant_feed").fetchone() is None:
-            for fed in FED:
-                conn.execute(
-                    f"INSERT INTO plant_changes (tbl, row_key) SELECT ?, {fed.key} "
-                    f"FROM {fed.table} ORDER BY {fed.key}",
-                    (fed.table,),
-                )
+            _log_every_row(conn)
             conn.execute("INSERT INTO plant_feed (id, ledger_id, started_at) VALUES (1, ?, ?)",
                          (ledger_id, utc_text(now, "now")))
     return str(ledger.db.one("SELECT ledger_id FROM plant_feed WHERE id = 1")["ledger_id"])  # type: ignore[index]
+
+
+def resend_all(ledger: Ledger) -> int:
+    """Log every row to go again (the plant restored from an older backup); how many. Rows the
+    plant holds already are not stored twice. Raises PlantError before the feed ever ran."""
+    with ledger.db.write() as conn:
+        if conn.execute("SELECT 1 FROM plant_feed").fetchone() is None:
+            raise PlantError("this station has never fed a plant database", None,
+                             "Its first start with [plant] database forwards its whole history.")
+        return _log_every_row(conn)
 
 
 def behind(ledger: Ledger) -> int:

@@ -1,0 +1,89 @@
+"""docs/plant.md's set-up and grants, run as they stand on a real server: the station's role may
+add its rows and nothing more, quality staff read everything and record plant decisions."""
+
+from __future__ import annotations
+
+import datetime
+import re
+import threading
+from pathlib import Path
+
+import psycopg
+import pytest
+
+from pipeline.cli.main import main
+from pipeline.plant.connect import PlantTarget
+from pipeline.plant.feed import PlantFeed
+from tests.conftest import REPO
+from tests.plant_kit import assert_whole_and_once, caught_up, copy_ledger
+from tests.plant_kit import judged_ledger as judged_ledger  # a fixture
+from tests.plant_server import PlantServer
+from tests.station_kit import make_station, wait_until
+
+pytestmark = pytest.mark.slow
+
+DOC = (REPO / "docs" / "plant.md").read_text(encoding="utf-8")
+
+
+def _statements(block: str) -> list[str]:
+    text = "\n".join(line for line in block.splitlines() if not line.strip().startswith("--"))
+    return [s.strip() for s in text.split(";") if s.strip()]
+
+
+def _run_as(url: str, statements: list[str]) -> None:
+    with psycopg.connect(url, autocommit=True) as conn:
+        for statement in statements:
+            conn.execute(statement)  # type: ignore[arg-type]
+
+
+def _feed(ledger: Path, url: str, station: str) -> None:
+    stop = threading.Event()
+    feed = PlantFeed(ledger, PlantTarget(url, station, connect_timeout_s=2), stop=stop,
+                     clock=lambda: datetime.datetime.now(datetime.UTC), poll_s=0.05)
+    feed.start()
+    try:
+        wait_until(lambda: caught_up(ledger), what="the feed to catch up")
+    finally:
+        stop.set()
+        feed.join(60)
+
+
+def test_the_documented_roles_feed_a_station_and_hold_it_to_its_own_columns(
+    plant_server: PlantServer, judged_ledger: Path, tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    setup, grants = re.findall(r"```sql\n(.*?)```", DOC, re.S)
+    _run_as(plant_server.admin_url(), _statements(setup))
+    owner = f"postgresql://formgate_owner@127.0.0.1:{plant_server.port}/formgate"
+    assert main(["plant", "migrate", "--database", owner]) == 0
+    assert "plant schema at version 1 (applied: 0001_initial)" in capsys.readouterr().out
+    _run_as(plant_server.admin_url("formgate"), _statements(grants))
+    line1 = f"postgresql://formgate_line1@127.0.0.1:{plant_server.port}/formgate"
+    root = tmp_path / "station"
+    make_station(root)
+    ledger = copy_ledger(judged_ledger, root)
+    _feed(ledger, line1, "line-1")
+    assert_whole_and_once(ledger, owner, "line-1")
+    with psycopg.connect(line1, autocommit=True) as conn:
+        for statement in ("UPDATE formgate.decisions SET verdict = 'pass'",
+                          "DELETE FROM formgate.inputs",
+                          "UPDATE formgate.inputs SET sha256 = repeat('0', 64)",
+                          "CREATE TABLE formgate.other (x int)"):
+            with pytest.raises(psycopg.errors.InsufficientPrivilege):
+                conn.execute(statement)  # type: ignore[arg-type]
+    # forwarded again, as after a plant restored from a backup: stored once, as the station may
+    assert main(["plant", "resend", str(root)]) == 0
+    assert "rows of test-station to be forwarded again" in capsys.readouterr().out
+    _feed(ledger, line1, "line-1")
+    assert_whole_and_once(ledger, owner, "line-1")
+    anna = f"postgresql://quality_anna@127.0.0.1:{plant_server.port}/formgate"
+    assert main(["plant", "find", "F-3", "--database", anna]) == 0
+    assert "station line-1  lot LOT-A  cell F-3  fail" in capsys.readouterr().out
+    with psycopg.connect(anna, autocommit=True) as conn:
+        sha = conn.execute("SELECT sha256 FROM formgate.rule_texts").fetchone()[0]  # type: ignore[index]
+        conn.execute(
+            "INSERT INTO formgate.plant_decisions (cell_id, lot, verdict, reason, hazards, stations, "
+            "basis, rule_set_sha256, decided_by, decided_at) VALUES ('F-3', 'LOT-A', 'fail', 'x', "
+            "'[]', '[]', '[]', %s, 'quality_anna', now())", (sha,))
+        with pytest.raises(psycopg.errors.InsufficientPrivilege):
+            conn.execute("UPDATE formgate.decisions SET verdict = 'pass'")
