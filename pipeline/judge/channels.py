@@ -33,7 +33,7 @@ import math
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
-from typing import Final, Literal
+from typing import Any, Final, Literal
 
 import numpy as np
 
@@ -78,6 +78,22 @@ class ChannelRecord:
     @property
     def key(self) -> tuple[str, str]:
         return (self.station, self.channel)
+
+
+def record_of_result(doc: Mapping[str, Any]) -> ChannelRecord:
+    """A result JSON document (docs/result.schema.json) as its channel saw it: the channel
+    and station its file names ("" when it names none), ordered by the program's start (its
+    analysis time when the file gives none), the checks out of window or not judged."""
+    cell = doc.get("cell", {})
+    out = tuple(str(c["id"]) for c in doc.get("checks", ())
+                if c.get("outcome") in ("out_of_window", "not_judged"))
+    metrics = doc.get("metrics", {})
+    return ChannelRecord(
+        str(cell.get("station") or ""), str(cell.get("channel") or ""),
+        str(cell.get("started_at") or doc.get("analysed_at") or ""), str(cell.get("cell_id") or ""),
+        str(cell.get("lot") or ""), str(doc.get("verdict") or ""), out,
+        {k: (float(v) if isinstance(v, int | float) else None) for k, v in metrics.items()},
+    )
 
 
 def channel_label(key: tuple[str, str]) -> str:
@@ -364,5 +380,6 @@ __all__ = [
     "channel_summaries",
     "laplace_rate",
     "metric_bias",
+    "record_of_result",
     "screen_channels",
 ]

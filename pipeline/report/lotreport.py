@@ -32,7 +32,9 @@ from dataclasses import dataclass
 from typing import Final
 
 import jinja2
+from markupsafe import Markup
 
+from pipeline.judge.channels import ChannelRecord, ChannelScreen
 from pipeline.judge.lotscreens import Outlier, RobustLimits
 from pipeline.judge.lotstats import (
     CellRow,
@@ -47,10 +49,18 @@ from pipeline.model import Hazard, Window, frozen_mapping
 from pipeline.report import hazards, pdf
 from pipeline.report.certificate import HAZARD_WORDS, TEMPLATES_DIR, format_time
 from pipeline.report.exportvalues import round_to_resolution
+from pipeline.report.lotcharts import (
+    by_channel_rows,
+    failures_by_channel_svg,
+    failures_by_hour_svg,
+    lot_control_charts,
+    scatter_svg,
+)
 from pipeline.report.lothistogram import metric_histograms
 from pipeline.report.lotwords import CPK_MINIMUM, capability_row, yield_text
 
 TEMPLATE_NAME: Final = "lot.html.j2"
+DEFAULT_SCREEN: Final = ChannelScreen()
 MAX_FAILED_ROWS: Final = 200  # rows of the failed/held table before "and N more: see the export"
 MAX_OUTLIER_ROWS: Final = 50  # outlier rows per screen, likewise
 OPEN_LOT_WORDS: Final = "lot open: figures may change"
@@ -131,6 +141,10 @@ class LotReportInput:
     # the statistics as the lot was closed (screens evaluated on the cells passing before
     # them); None: worked out here from the cells as they stand
     statistics: LotStatistics | None = None
+    # every judged record of the lot with its channel and start: the by-channel page and the
+    # lot over time (none: neither is shown); the suspect-channel screen they are judged by
+    records: tuple[ChannelRecord, ...] = ()
+    channel_screen: ChannelScreen = DEFAULT_SCREEN
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "units", frozen_mapping(dict(self.units)))
@@ -297,9 +311,51 @@ def lot_report_context(data: LotReportInput) -> dict[str, object]:
         # a metric no cell has a value of gets a sentence, not an empty frame
         "histograms": [h for h in histograms if h["n"]],
         "no_values": ", ".join(str(h["metric"]) for h in histograms if not h["n"]),
+        **over_time(data),
         "max_failed": MAX_FAILED_ROWS,
         "max_outliers": MAX_OUTLIER_ROWS,
     }
+
+
+def over_time(data: LotReportInput) -> dict[str, object]:
+    """The by-channel page and the lot over time: the table, the control charts of the key
+    metrics, capacity against DCIR, failures by channel and by hour (SVG marked safe: numbers
+    and text escaped in :mod:`pipeline.report.lotcharts`)."""
+    if not data.records:
+        return {"channels": [], "charts": [], "figures": []}
+    charts = lot_control_charts(data.records, data.units)
+    figures = [
+        {"name": "_chart-capacity-dcir", "svg": scatter_svg(
+            [(c.verdict, c.values.get("grading_capacity_Ah"), c.values.get("dcir_mOhm"))
+             for c in data.cells]),
+         "caption": "Grading capacity against DC resistance, one mark per cell: passed a dot, held "
+                    "a square, failed a cross."},
+        {"name": "_chart-by-channel", "svg": failures_by_channel_svg(data.records),
+         "caption": "Records failed or held, by the channel that tested them."},
+        {"name": "_chart-by-hour", "svg": failures_by_hour_svg(data.records),
+         "caption": "Records failed or held, by the hour their program started."},
+    ]
+    spec = data.channel_screen
+    return {
+        "channels": by_channel_rows(data.records, spec),
+        "channel_screen": (
+            f"A channel is suspect when its last {spec.recent} records fail or are held far more "
+            "often than the other channels' (exact binomial test), its last records fail one check "
+            f"{spec.min_run} or more times in a row, or the median of a key metric over its passed "
+            "cells stands off the other channels'; the three tests together flag a line with no bad "
+            f"channel at most {100.0 * spec.false_alarm:g} % of the time. A channel with fewer than "
+            f"{spec.min_records} records is not screened. Bias: the median of its passed cells' "
+            "capacity and DCIR against the other channels', in standard errors."),
+        "charts": [{**c, "svg": Markup(c["svg"])} for c in charts],
+        "figures": [{**f, "svg": Markup(f["svg"])} for f in figures],
+    }
+
+
+def lot_figures(data: LotReportInput) -> list[tuple[str, str]]:
+    """Every chart of the lot as (file stem, SVG text), to be written next to the report."""
+    shown = over_time(data)
+    return [(str(c["name"]), str(c["svg"])) for key in ("charts", "figures")
+            for c in shown[key]]  # type: ignore[attr-defined]
 
 
 @functools.lru_cache(maxsize=1)
@@ -423,6 +479,7 @@ __all__ = [
     "export_table",
     "guard_formula",
     "lot_export_csv",
+    "lot_figures",
     "lot_report_context",
     "render_lot_report_html",
     "render_lot_report_pdf",

@@ -6,6 +6,7 @@ lot's screens turn into a hold is recorded beside the pass, with its letter), an
 writes the report PDF and the one-row-per-cell CSV:
 
     <certificates>/<lot>/_lot-report.pdf     <results>/<lot>/_lot-cells.csv (and .parquet)
+    <certificates>/<lot>/_chart-*.svg        (the report's charts of the lot over time)
 
 (the leading underscore keeps them apart from every cell's files: a cell id never
 makes a file name that starts with one). Used by `formgate lot close` and by the
@@ -26,6 +27,7 @@ from functools import partial
 from pathlib import Path
 
 from pipeline.errors import FormgateError
+from pipeline.judge.channels import ChannelRecord, ChannelScreen, record_of_result
 from pipeline.judge.lotclose import ClosedCell, ClosedLot, close_lot
 from pipeline.judge.lotstats import tally
 from pipeline.judge.metricdefs import RULE_METRICS
@@ -36,10 +38,12 @@ from pipeline.names import safe_name
 from pipeline.read.readings import Reading, ReadingFile
 from pipeline.report.lotparquet import lot_export_parquet
 from pipeline.report.lotreport import (
+    DEFAULT_SCREEN,
     LotCell,
     LotReportInput,
     RuleSetRef,
     lot_export_csv,
+    lot_figures,
     render_lot_report_pdf,
 )
 from pipeline.rulebook.book import RuleBook
@@ -95,6 +99,8 @@ def report_input(
     closed_at: datetime.datetime | None,
     decisions: Mapping[str, DecisionRow] | None = None,
     refused: Sequence[UnjudgedCell] = (),
+    records: Sequence[ChannelRecord] = (),
+    channel_screen: ChannelScreen = DEFAULT_SCREEN,
 ) -> LotReportInput:
     """The lot report's input. ``decisions``: each cell's latest decision in the ledger, whose
     time a cell shows when it is the decision the report shows (else the report's own time:
@@ -144,6 +150,8 @@ def report_input(
         grades=closed.grades,
         units=UNITS,
         statistics=statistics,
+        records=tuple(records),
+        channel_screen=channel_screen,
     )
 
 
@@ -158,6 +166,11 @@ def _letters(
         )
 
     return letters
+
+
+def channel_records(ledger: Ledger, lot: str) -> list[ChannelRecord]:
+    """Every judged record of the lot (retests too) as the channel that tested it saw it."""
+    return [record_of_result(json.loads(r.result_json)) for r in ledger.results.of_lot(lot)]
 
 
 def report_paths(settings: Settings, lot: str) -> tuple[Path, Path]:
@@ -221,6 +234,7 @@ def close_and_report(
     data = report_input(
         closed, station=settings.station_name, now=now, closed_at=closed_at,
         decisions=ledger.decisions.latest_of_lot(lot), refused=unjudged_cells(settings, ledger, lot),
+        records=channel_records(ledger, lot),
     )
     if data.statistics is not None:  # what the report counts, the caller shows (not judged too)
         closed = dataclasses.replace(closed, statistics=data.statistics)
@@ -230,6 +244,8 @@ def close_and_report(
     for file in written:
         write_atomic(file.data, file.path)
     note_written(ledger, written, now=now, lot=lot)  # their hashes, for formgate verify
+    for stem, svg in lot_figures(data):  # the report's charts, beside it (drawn from it)
+        write_atomic(svg.encode("utf-8"), report.parent / f"{stem}.svg")
     if close:
         ledger.lots.note_report(lot, str(report), str(export))
         routing = settings.routing
