@@ -40,15 +40,9 @@ def _isolated_home(tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest
 def plant_server() -> Iterator[object]:
     """A PostgreSQL server of the tests' own (tests/plant_server.py); skipped without the
     server binaries, except under CI=true, where that is a failure."""
-    from tests.plant_server import remove, server_bin, start_server
+    from tests.plant_server import remove, require_server, start_server
 
-    if server_bin() is None:
-        reason = ("no PostgreSQL server binaries (initdb, postgres) on PATH or in "
-                  "/usr/lib/postgresql/*/bin: the plant database tests need them "
-                  "(Debian: apt-get install postgresql)")
-        if os.environ.get("CI", "").lower() == "true":
-            pytest.fail(reason + "; CI must run them")
-        pytest.skip(reason)
+    require_server(os.environ)
     server = start_server()
     try:
         yield server

@@ -18,10 +18,12 @@ import socket
 import subprocess
 import tempfile
 import time
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import psycopg
+import pytest
 
 ADMIN = "plant_admin"
 
@@ -35,6 +37,22 @@ def server_bin() -> Path | None:
         if (folder / "initdb").exists() and (folder / "postgres").exists():
             return folder
     return None
+
+
+NO_SERVER = ("no PostgreSQL server binaries (initdb, postgres) on PATH or in "
+             "/usr/lib/postgresql/*/bin: the plant database tests need them "
+             "(Debian: apt-get install postgresql)")
+
+
+def require_server(environ: Mapping[str, str]) -> Path:
+    """The server binaries' folder; without them the test is skipped with the reason, or
+    fails under CI=true (CI must run these tests)."""
+    found = server_bin()
+    if found is not None:
+        return found
+    if environ.get("CI", "").lower() == "true":
+        pytest.fail(NO_SERVER + "; CI must run them")
+    pytest.skip(NO_SERVER)
 
 
 def _free_port() -> int:

@@ -1,10 +1,13 @@
-"""The ledger's log of changes for the plant feed: kept by triggers once the feed has started."""
+"""The ledger's log of changes for the plant feed (kept by triggers once the feed has started),
+and what the plant tests do where no PostgreSQL server can be started."""
 
 from __future__ import annotations
 
 import datetime
 import sqlite3
 from pathlib import Path
+
+import pytest
 
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.migrations import FED_TABLES
@@ -49,3 +52,15 @@ def test_every_fed_table_has_its_three_triggers_at_the_latest_schema(tmp_path: P
     for table, _ in FED_TABLES:
         for what in ("insert", "update", "delete"):
             assert (table, f"plant_log_{table}_{what}") in triggers
+
+
+def test_without_server_binaries_the_plant_tests_skip_and_say_why_but_fail_in_ci(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    from tests import plant_server
+
+    monkeypatch.setattr(plant_server, "server_bin", lambda: None)
+    with pytest.raises(pytest.skip.Exception, match=r"no PostgreSQL server binaries .* apt-get install postgresql"):
+        plant_server.require_server({})
+    with pytest.raises(pytest.fail.Exception, match="CI must run them"):
+        plant_server.require_server({"CI": "true"})
