@@ -30,6 +30,15 @@ def test_every_shipped_template_and_rule_file_is_in_the_wheels_package_data() ->
     assert shipped_files <= covered, sorted(str(p.relative_to(REPO)) for p in shipped_files - covered)
 
 
+def test_every_python_package_of_the_checkout_is_in_the_wheel() -> None:
+    packages = tomllib.loads((REPO / "pyproject.toml").read_text(encoding="utf-8"))["tool"][
+        "setuptools"]["packages"]
+    found = {
+        ".".join(init.parent.relative_to(REPO).parts) for init in (REPO / "pipeline").rglob("__init__.py")
+    }
+    assert sorted(found - set(packages)) == []
+
+
 def test_a_checkout_uses_its_own_folders() -> None:
     assert shipped.TEMPLATES_DIR == REPO / "templates"
     assert shipped.RULES_DIR == REPO / "rules"
