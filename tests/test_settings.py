@@ -17,11 +17,13 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from pipeline.errors import SettingsError
+from pipeline.model import AccuracyClass
 from pipeline.rulebook.schema import INTEGER, NUMBER, TEXT, TEXT_LIST, Table
 from pipeline.station.settings import (
     InboxSettings,
     MailRouting,
     Settings,
+    channel_classes,
     check_filesystems,
     check_settings,
     choose_profile,
@@ -193,6 +195,19 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_settings() -> 
         profile=ROOT / "acceptance/profiles/tab_separated_ms.toml",
     )
     assert s.inboxes[1] == InboxSettings("hall-b", ROOT / "hall-b", "settle")
+    old_racks, hall_a = s.accuracy
+    assert (old_racks.inbox, old_racks.channels, hall_a.inbox, hall_a.channels) == (
+        "hall-a", "R1-*", "hall-a", None
+    )
+    assert old_racks.accuracy == AccuracyClass(
+        0.05, 2.0, 0.05, 0.05, 50.0, 1.5, 100.0, "station.toml [accuracy.hall-a-old-racks]"
+    )
+    classes = channel_classes(s, "hall-a")
+    assert classes is not None
+    assert classes.choose("R1-07") == old_racks.accuracy
+    assert classes.choose("R2-01") == classes.choose(None) == hall_a.accuracy
+    assert hall_a.accuracy.current_range_a == 20.0 and hall_a.accuracy.voltage_mv == 1.0
+    assert channel_classes(s, "hall-b") is None  # the default class, or a profile's
     assert [(p.glob, p.file.name) for p in s.profiles] == [
         ("A7-*_sc.csv", "semicolon_decimal_comma.toml"),
         ("*_sc.csv", "tab_separated_ms.toml"),
@@ -260,7 +275,7 @@ def test_defaults_of_the_schema_and_of_the_records_agree() -> None:
             )
     assert inbox.polling is False and inbox.profile is None
     for field in dataclasses.fields(Settings):
-        if field.default is not dataclasses.MISSING and field.name != "plant":
+        if field.default is not dataclasses.MISSING and field.name not in ("plant", "accuracy"):
             assert field.default == _schema_default("station", field.name) == getattr(s, field.name)
     assert s.plant is None  # no [plant] database: nothing is forwarded
     for field in dataclasses.fields(PlantSettings):
@@ -362,7 +377,8 @@ def test_uncommenting_the_defaults_of_the_default_file_changes_nothing() -> None
         if line.removeprefix("# ").startswith("["):
             table = line.removeprefix("# ").strip("[]").split(".")[0]
         match = re.fullmatch(r"# (\w+) = (.+)", line)
-        if match and table != "profile" and _schema_default(table, match[1]) is not None:
+        example_table = table in ("profile", "accuracy")  # shown commented out, header and all
+        if match and not example_table and _schema_default(table, match[1]) is not None:
             line = f"{match[1]} = {match[2]}"
         out.append(line)
     uncommented = "\n".join(out) + "\n"

@@ -26,7 +26,7 @@ from pipeline.station.inhand import input_key
 from pipeline.station.judges import JudgePool
 from pipeline.station.publishing import Publisher
 from pipeline.station.rules_in_force import RulesInForce
-from pipeline.station.settings import Settings, choose_profile
+from pipeline.station.settings import InboxSettings, Settings, channel_classes, choose_profile
 from pipeline.station.worker import Task
 
 log = logging.getLogger("formgate.station")
@@ -80,12 +80,16 @@ class Tasks:
             r.work_path for r, _ in self.queue
         }
 
-    def profile_for(self, row: InputRow) -> tuple[str | None, str | None]:
-        """The import profile (name, text) for an input, by file-name glob or its inbox's default."""
+    def inbox_settings(self, row: InputRow) -> InboxSettings:
+        """The inbox an input came from (the first inbox for one found in work/ at a restart)."""
         inbox_name = self.inbox_of.get(row.work_path)
-        inbox = next(
+        return next(
             (i for i in self.settings.inboxes if i.name == inbox_name), self.settings.inboxes[0]
         )
+
+    def profile_for(self, row: InputRow) -> tuple[str | None, str | None]:
+        """The import profile (name, text) for an input, by file-name glob or its inbox's default."""
+        inbox = self.inbox_settings(row)
         path = choose_profile(self.settings, inbox, row.name)
         if path is None:
             return None, None
@@ -117,6 +121,7 @@ class Tasks:
             ),
             memory_note=f" (worker_memory_MB = {s.worker_memory_MB:g})",
             ledger_path=str(s.ledger),
+            accuracy=channel_classes(s, self.inbox_settings(row).name),
         )
 
     def submit(self) -> None:

@@ -26,7 +26,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.errors import FormgateError, InputError
-from pipeline.model import CellResult, SourceRef, VerdictKind
+from pipeline.model import CellResult, ChannelClasses, SourceRef, VerdictKind
 from pipeline.names import cell_file_stem
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.limits import TextLimits, check_text
@@ -55,6 +55,7 @@ class Task:
     limits: TextLimits | None = None  # longest line and most rows; None: not checked
     memory_note: str = ""  # names the worker's memory limit in a quarantine reason
     ledger_path: str | None = None  # read-only: the cell's other records for its certificate
+    accuracy: ChannelClasses | None = None  # the inbox's channels' classes ([accuracy.ID])
 
 
 @dataclass(frozen=True, slots=True)
@@ -271,6 +272,7 @@ def judge_task(task: Task) -> CellResult | ReadingFile:
         profile=profile,
         max_uncompressed_bytes=task.max_uncompressed_bytes,
         input_sha256=digest,
+        accuracy=task.accuracy,
     )
     if task.ledger_path is not None:
         from pipeline.ledger.history import with_history

@@ -31,6 +31,7 @@ from pipeline.station.settings.records import MailRouting as MailRouting
 from pipeline.station.settings.records import ProfileRule as ProfileRule
 from pipeline.station.settings.records import Settings as Settings
 from pipeline.station.settings.records import SmtpConfig as SmtpConfig
+from pipeline.station.settings.records import channel_classes as channel_classes
 from pipeline.station.settings.records import choose_profile as choose_profile
 from pipeline.station.settings.schema import render_station_toml as render_station_toml
 
@@ -41,6 +42,7 @@ __all__ = [
     "ProfileRule",
     "Settings",
     "SmtpConfig",
+    "channel_classes",
     "check_credential_mode",
     "check_filesystems",
     "check_settings",

@@ -19,12 +19,26 @@ from pathlib import Path
 from typing import cast
 
 from pipeline.errors import SettingsError
-from pipeline.rulebook.tables import Collector, Values, check_family, check_table, close_match
+from pipeline.read.accuracy import AccuracyValueError, accuracy_from
+from pipeline.rulebook.tables import (
+    Collector,
+    Values,
+    check_family,
+    check_table,
+    close_match,
+    did_you_mean,
+)
 from pipeline.rulebook.toml_lines import KeyPath, show_table, syntax_position
 from pipeline.station.settings.folders import Checker, Place
 from pipeline.station.settings.mail import check_routing, check_smtp, mail_routing, smtp_config
 from pipeline.station.settings.plant import check_plant, plant_settings
-from pipeline.station.settings.records import FOLDER_KEYS, InboxSettings, ProfileRule, Settings
+from pipeline.station.settings.records import (
+    FOLDER_KEYS,
+    AccuracyRule,
+    InboxSettings,
+    ProfileRule,
+    Settings,
+)
 from pipeline.station.settings.schema import (
     SETTINGS_BY_TABLE,
     SETTINGS_RENAMED,
@@ -190,6 +204,30 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
             check.glob(("profile", ident), str(v["glob"]))
             if file is not None and ("profile", ident) not in broken:
                 profiles.append(ProfileRule(str(v["glob"]), file))
+    accuracy: list[AccuracyRule] = []
+    inbox_names = set(families["inbox"])
+    for ident, v in families["accuracy"].items():
+        path = ("accuracy", ident)
+        if "inbox" in v and str(v["inbox"]) not in inbox_names:
+            out.add(
+                f"[accuracy.{ident}] inbox names '{v['inbox']}', which is no [inbox.ID] of this file",
+                path, "inbox",
+                hint=did_you_mean(str(v["inbox"]), sorted(inbox_names))
+                + f"Inboxes: {', '.join(sorted(inbox_names)) or 'none'}.",
+            )
+            continue
+        try:
+            declared = accuracy_from(v, f"{name} [accuracy.{ident}]")
+        except AccuracyValueError as exc:
+            out.add(f"[accuracy.{ident}] {exc}", path, exc.key)
+            continue
+        if path not in broken:
+            accuracy.append(AccuracyRule(
+                ident,
+                str(v["inbox"]) if "inbox" in v else None,
+                str(v["channels"]) if "channels" in v else None,
+                declared,
+            ))
     smtp, routing = plain["smtp"], plain["mail"]
     smtp_paths = {k: check.path(("smtp",), k, smtp) for k in ("password_file", "ca_file")}
     check_smtp(out, smtp, routing, password_written)
@@ -239,6 +277,7 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
             log_keep=cast(int, station["log_keep"]),
             certify=cast(str, station["certify"]),
             plant=plant_settings(plain["plant"], plant_password, str(station["name"])),
+            accuracy=tuple(accuracy),
         ),
         [],
     )

@@ -11,6 +11,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.mail.smtp import Security
+from pipeline.model import AccuracyClass, ChannelClasses
 
 FOLDER_KEYS = ("work", "archive", "quarantine", "results", "certificates", "mail", "logs")
 
@@ -40,6 +41,17 @@ class ProfileRule:
 
     def matches(self, file_name: str) -> bool:
         return fnmatch.fnmatchcase(file_name, self.glob)
+
+
+@dataclass(frozen=True, slots=True)
+class AccuracyRule:
+    """``[accuracy.ID]``: the class of the channels of ``inbox`` (None: every inbox) whose
+    channel metadata matches ``channels`` (None: every channel)."""
+
+    ident: str
+    inbox: str | None
+    channels: str | None
+    accuracy: AccuracyClass
 
 
 @dataclass(frozen=True, slots=True)
@@ -130,6 +142,7 @@ class Settings:
     log_keep: int = 5
     certify: str = "all"  # or "failed_and_held": which cells get a PDF certificate
     plant: PlantSettings | None = None  # the plant database the ledger is forwarded to
+    accuracy: tuple[AccuracyRule, ...] = ()  # channels' accuracy classes, in the file's order
 
     def all_folders(self) -> tuple[Path, ...]:
         """Every folder the station writes or claims from: the inboxes, then [folders] but rules."""
@@ -140,6 +153,17 @@ def labelled_folders(settings: Settings) -> list[tuple[str, Path]]:
     """Every folder of ``all_folders()`` with the key that names it, for messages."""
     inboxes = [(f"[inbox.{i.name}] folder", i.folder) for i in settings.inboxes]
     return inboxes + [(f"[folders] {key}", getattr(settings, key)) for key in FOLDER_KEYS]
+
+
+def channel_classes(settings: Settings, inbox: str) -> ChannelClasses | None:
+    """The accuracy classes for the records of ``inbox``, first match first (None: none declared)."""
+    rules = [r for r in settings.accuracy if r.inbox is None or r.inbox == inbox]
+    if not rules:
+        return None
+    return ChannelClasses(
+        tuple((r.channels or "*", r.accuracy) for r in rules),
+        next((r.accuracy for r in rules if r.channels is None), None),
+    )
 
 
 def choose_profile(settings: Settings, inbox: InboxSettings, file_name: str) -> Path | None:

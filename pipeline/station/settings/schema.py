@@ -19,6 +19,8 @@ import json
 import textwrap
 
 from pipeline.mail.smtp import SECURITY
+from pipeline.model import DEFAULT_ACCURACY
+from pipeline.read.accuracy import ACCURACY_KEYS
 from pipeline.rulebook.schema import (
     INTEGER,
     NUMBER,
@@ -291,6 +293,45 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 "the import profile (a TOML file) for matching files",
                 required=True,
                 example='"rules/profiles/semicolon_decimal_comma.toml"',
+            ),
+        ),
+        named=True,
+    ),
+    Table(
+        "accuracy",
+        "The accuracy class of cycler channels, from which every metric's uncertainty (± U on "
+        "certificates) and the guarded decision rules start. Tried in the order they appear "
+        "in the file; the first whose inbox and channels match a record wins, over the class "
+        "an import profile declares; none matching: the default class (common practice: "
+        "voltage ±(0.02 % + 1 mV), current ±(0.02 % + 0.02 % of range), 1 K, 50 ppm).",
+        (
+            Key(
+                "inbox",
+                TEXT,
+                "the inbox (its ID) whose records this class is for; not set: every inbox",
+                allowed_note="the ID of an inbox of this file",
+                example='"cyclers"',
+            ),
+            Key(
+                "channels",
+                TEXT,
+                "pattern matched against the record's channel metadata, case-sensitive: "
+                "* any run of characters, ? one character; not set: every channel",
+                example='"R1-*"',
+            ),
+            *(
+                Key(
+                    k.name,
+                    NUMBER,
+                    k.meaning,
+                    unit=k.unit,
+                    minimum=0.0,
+                    minimum_exclusive=k.name == "current_range_A",
+                    default=None if k.name == "current_range_A"
+                    else getattr(DEFAULT_ACCURACY, k.field),
+                    example="50" if k.name == "current_range_A" else "",
+                )
+                for k in ACCURACY_KEYS
             ),
         ),
         named=True,
@@ -574,12 +615,13 @@ def render_station_toml(*, station_name: str = "formation-line-1") -> str:
     ]
     for table in SETTINGS_TABLES:
         out += _comment(table.meaning)
-        if table.name == "profile":
-            out += [f"# [profile.{EXAMPLE_PROFILE}]"]
+        if table.name in ("profile", "accuracy"):  # examples: none is set by default
+            ident = EXAMPLE_PROFILE if table.name == "profile" else "old-racks"
+            out += [f"# [{table.name}.{ident}]"]
             for key in table.keys:
                 out += [
                     *_comment(_key_comment(table, key)),
-                    f"# {key.name} = {key.example}",
+                    f"# {key.name} = {key.example or toml_value(key.default)}",
                 ]
             out.append("")
             continue

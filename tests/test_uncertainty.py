@@ -1,0 +1,266 @@
+"""Each metric's expanded uncertainty, the accuracy class it starts from, and the decision
+rules that use it near a limit.
+
+Outside checks: the worst-case false acceptance of each decision rule against scipy's
+normal distribution (JCGM 106:2012 9.3, specific risk at the edge of the acceptance
+zone); the correlations of the law of propagation (JCGM 100:2008 5.2: a gain common to
+two charges of one channel cancels in their ratio, an offset does not).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime
+import functools
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from scipy import stats
+
+from pipeline.demo.lots import ALL_DEMO_CELLS, demo_file_bytes
+from pipeline.judge.uncertainty import budgets, channel_u, range_up
+from pipeline.model import (
+    DEFAULT_ACCURACY,
+    GUARDED_ACCEPTANCE,
+    GUARDED_REJECTION,
+    SIMPLE,
+    AccuracyClass,
+    CellResult,
+    Outcome,
+    RuleSet,
+    Trace,
+    VerdictKind,
+    Window,
+)
+from pipeline.read.cyclefile import read_cycle_file
+from pipeline.read.profile import load_profile
+from pipeline.report.result import to_document
+from pipeline.rulebook.book import RuleBook, load_rules_dir
+from pipeline.rulebook.schema import worst_false_acceptance
+from pipeline.runner import judge, judge_trace
+from pipeline.shipped import RULES_DIR
+from pipeline.station.worker import Task, judge_task
+
+AT = datetime.datetime(2026, 3, 2, 12, 0, tzinfo=datetime.UTC)
+
+
+@functools.cache
+def shipped() -> RuleBook:
+    return load_rules_dir(RULES_DIR)
+
+
+@functools.cache
+def first_passed() -> tuple[str, bytes, CellResult]:
+    for cell in ALL_DEMO_CELLS:
+        data = demo_file_bytes(cell)
+        result = judge(data, f"{cell.cell_id}.csv", shipped(), analysed_at=AT)
+        if result.verdict.kind is VerdictKind.PASS:
+            return cell.cell_id, data, result
+    raise AssertionError("the demo has a passed cell")
+
+
+def with_rule(rule_set: RuleSet, rule_id: str, **changes: Any) -> RuleBook:
+    rules = tuple(
+        dataclasses.replace(r, **changes) if r.id == rule_id else r for r in rule_set.rules
+    )
+    return RuleBook((dataclasses.replace(rule_set, rules=rules),))
+
+
+def capacity_rule(result: CellResult) -> str:
+    return next(c.rule_id for c in result.verdict.checks if c.metric == "grading_capacity_Ah"
+                and c.severity.value == "reject")
+
+
+def rule_set_of(result: CellResult) -> RuleSet:
+    return next(rs for rs in shipped().rule_sets if rs.sha256 == result.rule_set.sha256)
+
+
+def test_every_measured_metric_but_the_counts_has_an_uncertainty_in_the_result() -> None:
+    _, _, result = first_passed()
+    doc = to_document(result)
+    measured = {k for k, v in doc["metrics"].items() if v is not None}
+    with_u = {k for k, v in doc["metrics_U"].items() if v is not None}
+    assert with_u == measured - {"cycle_count", "plateau_count"}
+    assert all(v > 0 for v in doc["metrics_U"].values() if v is not None)
+    assert doc["accuracy"]["source"].startswith(DEFAULT_ACCURACY.source)
+    for check in doc["checks"]:
+        assert check["U"] == doc["metrics_U"][check["metric"]]
+        assert check["decision"] == SIMPLE and check["too_close"] is False
+
+
+def test_a_value_just_inside_a_limit_is_held_under_guarded_acceptance_and_passed_under_simple() -> None:
+    cell_id, data, result = first_passed()
+    rule_id = capacity_rule(result)
+    value = result.metrics.values["grading_capacity_Ah"]
+    u = result.metrics.uncertainty["grading_capacity_Ah"]
+    assert value is not None and u > 0
+    rule_set = rule_set_of(result)
+    window = Window(value - u / 2, None)
+    simple = judge(data, f"{cell_id}.csv", with_rule(rule_set, rule_id, window=window),
+                   analysed_at=AT)
+    assert simple.verdict.kind is VerdictKind.PASS
+    guarded = judge(
+        data, f"{cell_id}.csv",
+        with_rule(rule_set, rule_id, window=window, decision=GUARDED_ACCEPTANCE),
+        analysed_at=AT,
+    )
+    assert guarded.verdict.kind is VerdictKind.HOLD
+    (check,) = [c for c in guarded.verdict.checks if c.rule_id == rule_id]
+    assert check.too_close and check.outcome is Outcome.NOT_JUDGED
+    assert check.decision == GUARDED_ACCEPTANCE
+    assert "too close to the limit to decide" in check.message and "±" in check.message
+    assert "against ≥" in check.message
+    assert guarded.verdict.hazards == ()  # held for a person, not failed
+    # the set's own default reaches the checks that name none
+    set_wide = RuleBook((dataclasses.replace(
+        with_rule(rule_set, rule_id, window=window).rule_sets[0], decision=GUARDED_ACCEPTANCE
+    ),))
+    assert judge(data, f"{cell_id}.csv", set_wide, analysed_at=AT).verdict.kind is VerdictKind.HOLD
+
+
+def test_a_value_just_outside_a_limit_fails_simply_and_passes_under_guarded_rejection() -> None:
+    cell_id, data, result = first_passed()
+    rule_id = capacity_rule(result)
+    value = result.metrics.values["grading_capacity_Ah"]
+    u = result.metrics.uncertainty["grading_capacity_Ah"]
+    assert value is not None
+    rule_set = rule_set_of(result)
+    window = Window(value + u / 2, None)
+    simple = judge(data, f"{cell_id}.csv", with_rule(rule_set, rule_id, window=window),
+                   analysed_at=AT)
+    assert simple.verdict.kind is VerdictKind.FAIL
+    assert "±" in simple.verdict.reasons[0]
+    lenient = judge(
+        data, f"{cell_id}.csv",
+        with_rule(rule_set, rule_id, window=window, decision=GUARDED_REJECTION),
+        analysed_at=AT,
+    )
+    assert lenient.verdict.kind is VerdictKind.PASS
+    (check,) = [c for c in lenient.verdict.checks if c.rule_id == rule_id]
+    assert check.outcome is Outcome.IN_WINDOW and "by less than its uncertainty" in check.message
+    # out by more than U: rejected under every rule
+    far = Window(value + 3 * u, None)
+    for decision in (SIMPLE, GUARDED_ACCEPTANCE, GUARDED_REJECTION):
+        book = with_rule(rule_set, rule_id, window=far, decision=decision)
+        assert judge(data, f"{cell_id}.csv", book, analysed_at=AT).verdict.kind is VerdictKind.FAIL
+
+
+def test_the_documented_false_acceptance_of_each_rule_is_the_normal_distributions() -> None:
+    # JCGM 106:2012 9.3: at the edge of the acceptance zone, a value guarded by U = 2u is
+    # outside the window with probability 1 - Phi(2); one accepted at the limit, 1/2.
+    assert worst_false_acceptance(SIMPLE) == pytest.approx(0.5)
+    assert worst_false_acceptance(GUARDED_ACCEPTANCE) == pytest.approx(stats.norm.sf(2.0))
+    assert worst_false_acceptance(GUARDED_REJECTION) == pytest.approx(stats.norm.cdf(2.0))
+    docs = (Path(__file__).resolve().parent.parent / "docs" / "rules.md").read_text("utf-8")
+    assert "| `guarded acceptance` |" in docs and f"{100 * stats.norm.sf(2.0):.1f} %" in docs
+
+
+def test_a_gain_cancels_in_an_efficiency_and_an_offset_does_not() -> None:
+    # JCGM 100:2008 5.2.2: fully correlated inputs (one channel's gain in both charges of a
+    # ratio) cancel; the offset adds to one charge and takes from the other.
+    cell_id, data, result = first_passed()
+    trace = read_cycle_file(data, f"{cell_id}.csv")
+    gains_only = AccuracyClass(current_pct_of_reading=1.0, current_pct_of_range=0.0,
+                               current_range_a=50.0)
+    offset_only = AccuracyClass(current_pct_of_reading=0.0, current_pct_of_range=0.1,
+                                current_range_a=50.0)
+    rule_set = rule_set_of(result)
+    book = RuleBook((dataclasses.replace(rule_set, zero_offset="as recorded"),))
+    by_gain = judge_trace(trace, "x.csv", book, analysed_at=AT, input_sha256="0" * 64,
+                          accuracy=gains_only).metrics.uncertainty
+    by_offset = judge_trace(trace, "x.csv", book, analysed_at=AT, input_sha256="0" * 64,
+                            accuracy=offset_only).metrics.uncertainty
+    capacity = result.metrics.values["grading_capacity_Ah"]
+    assert capacity is not None
+    # a 1 % gain (rectangular, u = 1 % / sqrt 3) moves the capacity by its share ...
+    assert by_gain["grading_capacity_Ah"] > 0.99 * 2 * capacity * 0.01 / math.sqrt(3)
+    # ... and the efficiency only by noise and switches, far less than the gain's share
+    assert by_gain["grading_coulombic_efficiency"] < 0.1 * 2 * 0.01 / math.sqrt(3)
+    assert by_offset["grading_coulombic_efficiency"] > 5 * by_gain["grading_coulombic_efficiency"]
+
+
+def test_the_channel_range_is_the_declared_one_or_the_1_2_5_step_above_the_largest_current() -> None:
+    assert [range_up(a) for a in (0.9, 1.0, 1.3, 4.99, 20.0, 21.0, 60.0)] == [
+        1.0, 1.0, 2.0, 5.0, 20.0, 50.0, 100.0
+    ]
+    cell_id, data, result = first_passed()
+    trace = read_cycle_file(data, f"{cell_id}.csv")
+    largest = float(np.max(np.abs(trace.current_a)))
+    assert result.accuracy is not None
+    assert result.accuracy.current_range_a == range_up(largest) >= largest
+    assert result.accuracy.source.endswith("range from the record")
+    rule_set = rule_set_of(result)
+    from pipeline.judge.segmentation import split_steps
+
+    segmentation = split_steps(trace, 0.04, 20.0)
+    declared = channel_u(trace, segmentation, AccuracyClass(current_range_a=200.0), None)
+    assert declared.range_a == 200.0
+    assert declared.offset_i == pytest.approx(0.0002 * 200.0 / math.sqrt(3))
+    assert budgets(trace, segmentation, result.metrics, DEFAULT_ACCURACY, None, rule_set.plateau)
+
+
+def test_a_profile_and_a_station_task_declare_the_class_of_their_channels(tmp_path: Path) -> None:
+    cell_id, data, _ = first_passed()
+    profile = load_profile("[accuracy]\nvoltage_mV = 0.25\ncurrent_range_A = 100\n", "hall.toml")
+    via_profile = judge(data, f"{cell_id}.csv", shipped(), analysed_at=AT, profile=profile)
+    assert via_profile.accuracy is not None
+    assert (via_profile.accuracy.voltage_mv, via_profile.accuracy.current_range_a) == (0.25, 100.0)
+    assert via_profile.accuracy.source == "import profile hall.toml"
+    # a station's class for the inbox wins over the profile's
+    from pipeline.model import ChannelClasses
+
+    mine = AccuracyClass(voltage_mv=3.0, current_range_a=60.0, source="station.toml [accuracy.a]")
+    work = tmp_path / f"{cell_id}.csv"
+    work.write_bytes(data)
+    import hashlib
+
+    task = Task(1, str(work), work.name, hashlib.sha256(data).hexdigest(), shipped(), AT,
+                accuracy=ChannelClasses((("*", mine),), mine))
+    got = judge_task(task)
+    assert isinstance(got, CellResult) and got.accuracy == mine
+    assert got.metrics.uncertainty["main_plateau_voltage_V"] > via_profile.metrics.uncertainty[
+        "main_plateau_voltage_V"]
+
+
+@functools.cache
+def as_recorded_case() -> tuple[str, Trace, RuleBook, float, CellResult]:
+    cell_id, data, result = first_passed()
+    trace = read_cycle_file(data, f"{cell_id}.csv")
+    book = RuleBook((dataclasses.replace(rule_set_of(result), zero_offset="as recorded"),))
+    base = judge_trace(trace, "x.csv", book, analysed_at=AT, input_sha256="0" * 64)
+    assert base.accuracy is not None and base.accuracy.current_range_a is not None
+    half_width = base.accuracy.current_pct_of_range / 100 * base.accuracy.current_range_a
+    return cell_id, trace, book, half_width, base
+
+
+def _distance(value: float, low: float | None, high: float | None) -> float:
+    return min(abs(value - b) for b in (low, high) if b is not None)
+
+
+@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(fraction=st.floats(-1.0, 1.0))
+def test_an_offset_within_the_class_never_moves_a_verdict_more_than_u_from_its_limits(
+    fraction: float,
+) -> None:
+    """Adding any zero offset within the accuracy class to the current changes a check's
+    outcome only where the value lies within its U of a limit."""
+    _, trace, book, half_width, base = as_recorded_case()
+    shifted = dataclasses.replace(trace, current_a=np.asarray(trace.current_a) + fraction * half_width)
+    moved = judge_trace(shifted, "x.csv", book, analysed_at=AT, input_sha256="0" * 64)
+    for before, after in zip(base.verdict.checks, moved.verdict.checks, strict=True):
+        assert before.rule_id == after.rule_id
+        if before.outcome is after.outcome or before.value is None:
+            continue
+        assert before.uncertainty is not None
+        distance = _distance(before.value, before.window.low, before.window.high)
+        assert distance <= before.uncertainty, (before.rule_id, before.value, distance)
+    for name, value in base.metrics.values.items():
+        other = moved.metrics.values[name]
+        u = base.metrics.uncertainty.get(name)
+        if value is not None and other is not None and u is not None:
+            assert abs(other - value) <= u, name  # the offset's effect is inside U
