@@ -38,6 +38,7 @@ import pathlib
 from typing import Self
 
 from pipeline.ledger.certificates import Certificates
+from pipeline.ledger.channel_alerts import ChannelAlerts
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.decisions import Decisions
 from pipeline.ledger.digests import Digests
@@ -76,6 +77,7 @@ class Ledger:
         self.published = Published(self.db)
         self.regrades = Regrades(self.db, self.decisions)
         self.certificates = Certificates(self.db)
+        self.channels = ChannelAlerts(self.db)
 
     @property
     def path(self) -> pathlib.Path:

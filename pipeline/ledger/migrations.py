@@ -550,9 +550,33 @@ _PLANT_FEED = sql_migration(
     *(sql for table, key in FED_TABLES for sql in plant_trigger_sql(table, key)),
 )
 
+# A channel the suspect-channel screen flagged (judge/channels.py): one open alert per
+# channel at a time, with the evidence that raised it, until a person clears it.
+_CHANNEL_ALERTS = sql_migration(
+    "0010_channel_alerts",
+    """
+    CREATE TABLE channel_alerts (
+        id INTEGER PRIMARY KEY,
+        station TEXT NOT NULL,
+        channel TEXT NOT NULL CHECK (channel <> ''),
+        raised_at TEXT NOT NULL,
+        cell_id TEXT NOT NULL,
+        lot TEXT NOT NULL,
+        evidence TEXT NOT NULL CHECK (evidence <> ''),
+        advice TEXT NOT NULL,
+        mail_id INTEGER REFERENCES outbox (id),
+        cleared_at TEXT,
+        cleared_by TEXT,
+        cleared_why TEXT,
+        CHECK ((cleared_at IS NULL) = (cleared_by IS NULL))
+    ) STRICT
+    """,
+    "CREATE UNIQUE INDEX channel_alerts_open ON channel_alerts (station, channel) WHERE cleared_at IS NULL",
+)
+
 MIGRATIONS: tuple[Migration, ...] = (
     _INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS, _OUTBOX_CLAIMS, _REVIEWS, _REGRADE_TABLES,
-    _CERTIFICATE_QUEUE, _PLANT_FEED,
+    _CERTIFICATE_QUEUE, _PLANT_FEED, _CHANNEL_ALERTS,
 )
 SCHEMA_VERSION = len(MIGRATIONS)
 
