@@ -117,7 +117,10 @@ class PlantFeed(threading.Thread):
         alert_after_s: float = 900.0,
         migrate_schema: bool = True,
     ) -> None:
-        super().__init__(name="plant-feed", daemon=False)
+        # a daemon: a database that hangs without answering (a server process stopped, not
+        # gone) can hold a statement for as long as its connection lasts, and must not keep the
+        # station's process from ending; nothing is lost when it is cut off (at least once)
+        super().__init__(name="plant-feed", daemon=True)
         self.ledger_path = ledger_path
         self.target = target
         self.stop = stop
