@@ -23,15 +23,12 @@ the whole history first, so a station's first connection forwards everything it 
 from __future__ import annotations
 
 import datetime
-import sqlite3
-import uuid
 from collections.abc import Sequence
-from dataclasses import dataclass
 
 import psycopg
 
 from pipeline.ledger.ledger import Ledger
-from pipeline.ledger.rows import utc_text
+from pipeline.ledger.plantlog import PlantLog
 from pipeline.plant.schema import PlantError
 from pipeline.plant.tables import FED, FED_BY_TABLE, SCHEMA, Fed
 
@@ -48,61 +45,24 @@ class ChangedRow(Exception):
         self.table, self.key, self.what = table, key, what
 
 
-@dataclass(frozen=True, slots=True)
-class Change:
-    seq: int
-    table: str
-    key: object
-
-
-def _log_every_row(conn: sqlite3.Connection) -> int:
-    """Log every row of every forwarded table to go (again), parents first; how many."""
-    logged = 0
-    for fed in FED:
-        logged += conn.execute(
-            f"INSERT INTO plant_changes (tbl, row_key) SELECT ?, {fed.key} "
-            f"FROM {fed.table} ORDER BY {fed.key}",
-            (fed.table,),
-        ).rowcount
-    return logged
-
-
 def start_log(ledger: Ledger, *, now: datetime.datetime) -> str:
-    """The ledger's id for the plant (a UUID made at the feed's first start, when every row
-    the ledger already holds is logged to go, parents first)."""
-    row = ledger.db.one("SELECT ledger_id FROM plant_feed WHERE id = 1")
-    if row is not None:
-        return str(row["ledger_id"])
-    ledger_id = str(uuid.uuid4())
-    with ledger.db.write() as conn:
-        if conn.execute("SELECT 1 FROM plant_feed").fetchone() is None:
-            _log_every_row(conn)
-            conn.execute("INSERT INTO plant_feed (id, ledger_id, started_at) VALUES (1, ?, ?)",
-                         (ledger_id, utc_text(now, "now")))
-    return str(ledger.db.one("SELECT ledger_id FROM plant_feed WHERE id = 1")["ledger_id"])  # type: ignore[index]
+    """The ledger's id for the plant; the first call logs every row the ledger holds to go."""
+    return PlantLog(ledger.db).start(now=now)
 
 
 def resend_all(ledger: Ledger) -> int:
     """Log every row to go again (the plant restored from an older backup); how many. Rows the
     plant holds already are not stored twice. Raises PlantError before the feed ever ran."""
-    with ledger.db.write() as conn:
-        if conn.execute("SELECT 1 FROM plant_feed").fetchone() is None:
-            raise PlantError("this station has never fed a plant database", None,
-                             "Its first start with [plant] database forwards its whole history.")
-        return _log_every_row(conn)
+    logged = PlantLog(ledger.db).log_everything()
+    if logged is None:
+        raise PlantError("this station has never fed a plant database", None,
+                         "Its first start with [plant] database forwards its whole history.")
+    return logged
 
 
 def behind(ledger: Ledger) -> int:
     """Changes the plant has still to take (0 also before the feed ever started)."""
-    row = ledger.db.one("SELECT count(*) FROM plant_changes")
-    return int(row[0]) if row is not None else 0
-
-
-def pending(ledger: Ledger, limit: int) -> list[Change]:
-    rows = ledger.db.rows(
-        "SELECT seq, tbl, row_key FROM plant_changes ORDER BY seq LIMIT ?", (limit,)
-    ).fetchall()
-    return [Change(int(r[0]), str(r[1]), r[2]) for r in rows]
+    return PlantLog(ledger.db).behind()
 
 
 def register(
@@ -128,23 +88,15 @@ def register(
         )
 
 
-def _read_rows(ledger: Ledger, fed: Fed, keys: Sequence[object]) -> dict[object, sqlite3.Row]:
-    marks = ", ".join("?" for _ in keys)
-    rows = ledger.db.rows(
-        f"SELECT {', '.join(fed.names)} FROM {fed.table} WHERE {fed.key} IN ({marks})", list(keys)
-    ).fetchall()
-    return {r[fed.key]: r for r in rows}
-
-
 def _store_table(
     conn: psycopg.Connection[tuple[object, ...]],
     fed: Fed,
     station_id: str,
     keys: Sequence[object],
-    rows: dict[object, sqlite3.Row],
+    rows: dict[object, tuple[object, ...]],
 ) -> int:
     """Store one table's share of a batch; the number of rows newly stored."""
-    hashes = {k: fed.row_sha256(tuple(r)) for k, r in rows.items()}
+    hashes = {k: fed.row_sha256(r) for k, r in rows.items()}
     present = [k for k in keys if k in rows]
     stored: set[object] = set()
     per = max(1, min(_MAX_ROWS_PER_INSERT, _MAX_PARAMS // (len(fed.columns) + 2)))
@@ -152,7 +104,7 @@ def _store_table(
         chunk = present[start:start + per]
         params: list[object] = []
         for k in chunk:
-            params += [station_id, *tuple(rows[k]), hashes[k]]
+            params += [station_id, *rows[k], hashes[k]]
         cur = conn.execute(fed.insert_sql(len(chunk)), params)
         stored.update(r[0] for r in cur.fetchall())
     again = [k for k in keys if k not in stored]
@@ -160,6 +112,7 @@ def _store_table(
         return len(stored)
     args: tuple[object, ...] = (again,) if fed.shared else (station_id, again)
     held: dict[object, object] = dict(conn.execute(fed.stored_sql(), args).fetchall())  # type: ignore[arg-type]
+    index = {name: i for i, name in enumerate(fed.names)}
     updates = []
     for k in again:
         if k not in rows:
@@ -174,7 +127,7 @@ def _store_table(
                 "changed after it was forwarded, in the ledger or in the plant database",
             )
         if fed.changing:
-            now = [rows[k][c] for c in fed.changing]
+            now = [rows[k][index[c]] for c in fed.changing]
             updates.append((*now, station_id, k, *now))
     if updates:
         with conn.cursor() as cur:
@@ -191,7 +144,8 @@ def forward_batch(
 ) -> int:
     """Forward the oldest ``limit`` changes in one plant transaction, then drop them from the
     log; the number of changes taken (0: the plant is up to date)."""
-    changes = pending(ledger, limit)
+    log = PlantLog(ledger.db)
+    changes = log.pending(limit)
     if not changes:
         return 0
     by_table: dict[str, list[object]] = {}
@@ -204,13 +158,12 @@ def forward_batch(
         raise PlantError(f"the ledger logs changes of table {unknown[0]!r}, which this formgate "
                          "does not forward", None, "Run the formgate that wrote the ledger.")
     # read the rows before the plant transaction: a row changed in between is logged again
-    read = {t: _read_rows(ledger, FED_BY_TABLE[t], keys) for t, keys in by_table.items()}
+    read = {t: log.rows(t, FED_BY_TABLE[t].names, keys) for t, keys in by_table.items()}
     with conn.transaction():
         for fed in FED:
             if fed.table in by_table:
                 _store_table(conn, fed, station_id, by_table[fed.table], read[fed.table])
         conn.execute(f"UPDATE {SCHEMA}.stations SET last_fed_at = now() WHERE station_id = %s",
                      (station_id,))
-    with ledger.db.write() as lconn:
-        lconn.execute("DELETE FROM plant_changes WHERE seq <= ?", (changes[-1].seq,))
+    log.drop(changes[-1].seq)
     return len(changes)
