@@ -28,9 +28,9 @@ assert (GOOD.defect, HIGH_DCIR.defect, HOT.defect) == ("", "high_dcir", "over_te
 # the file's name, the cell it holds, the verdict and what decided it
 GOOD_LINE = f"{GOOD.file_name}  L01-001  pass  all checks in window"
 # the one-line output names the deciding check with its value and the bound it crossed
-HIGH_DCIR_LINE = f"{HIGH_DCIR.file_name}  L01-011  fail  dcir_mOhm 12.0 mOhm > 8.00 mOhm (reject)"
+HIGH_DCIR_LINE = f"{HIGH_DCIR.file_name}  L01-011  fail  dcir_mOhm 11.98 ± 0.33 mOhm > 8.00 mOhm (reject)"
 HOT_LINE = (
-    f"{HOT.file_name}  L01-014  fail  max_temperature_C 62.7 °C > 60.0 °C (reject) "
+    f"{HOT.file_name}  L01-014  fail  max_temperature_C 62.7 ± 1.2 °C > 60.0 °C (reject) "
     "[hazard: over_temperature]"
 )
 
