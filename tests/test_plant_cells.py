@@ -149,6 +149,26 @@ def test_yield_by_station_and_finding_a_file_by_its_hash(
     assert by_type.splitlines()[1].startswith(f"{CELLS[0].cell_type}  ")
     sha = hashlib.sha256(demo_stage_files(SHARED[1])["grading"]).hexdigest()
     found = _run(capsys, "plant", "find", sha, "--database", url)
-    assert found.startswith(f"station hall-b  input ")
+    assert found.startswith("station hall-b  input ")
     assert f"{SHARED[1].cell_id}-grading.csv  archived" in found
     assert found.rstrip().endswith(f"cell {SHARED[1].cell_id} lot {LOT}: pass")
+
+
+def test_a_review_decides_the_plant_cell_only_while_it_saw_every_file_that_counts(
+    plant: tuple[str, Path, Path],
+) -> None:
+    from pipeline.judge.review import Asked, Decided, Reviewed
+    from pipeline.plant.cells import decide_cell, fetch_cell, latest_rule_set, rule_book
+
+    url, _, _ = plant
+    with psycopg.connect(url) as conn:
+        cell = fetch_cell(conn, LOT, SHARED[0].cell_id)
+        book = rule_book(conn, latest_rule_set(cell) or "")
+    files = {(r.input_name, r.input_sha256) for r in cell.records} | {
+        (name, sha) for _, name, sha, _ in cell.readings}
+    rejected = Decided("fail", "rejected by Anna: dented can")
+    saw_all = Reviewed(Asked("reject", "Anna", "dented can"), rejected, frozenset(files))
+    saw_one_station = Reviewed(Asked("reject", "Anna", "dented can"), rejected,
+                               frozenset(f for f in files if "grading" in f[0]))
+    assert decide_cell(cell, book, saw_all).reason == "rejected by Anna: dented can"  # type: ignore[union-attr]
+    assert decide_cell(cell, book, saw_one_station).verdict == "pass"  # type: ignore[union-attr]

@@ -3,7 +3,8 @@
 Edge module over the plant database; the deciding itself is the station's own pure logic
 (pipeline.judge.lotclose.cell_now and pipeline.judge.cellverdict.decide): per stage the
 record that counts, the aging stage judged on all the cell's readings, the worst of its
-stages, held while a stage its rule set needs is missing. Only the records are gathered
+stages, held while a stage its rule set needs is missing, a person's review deciding the cell
+while it stands (it saw every file that counts now). Only the records are gathered
 from every station instead of one: a cell formed at one station and graded at another is
 "waiting for stage grading" at the first and "waiting for stage formation" at the second,
 and decided once here.
@@ -29,6 +30,7 @@ import psycopg
 from pipeline.errors import FormgateError
 from pipeline.judge.cellverdict import CellDecision, decide
 from pipeline.judge.lotclose import CellNow, cell_now
+from pipeline.judge.review import Asked, Decided, Reviewed, stands
 from pipeline.plant.tables import SCHEMA
 from pipeline.read.readings import Reading
 from pipeline.rulebook.book import RuleBook, load_rule_set
@@ -170,11 +172,52 @@ def cell_as_it_stands(cell: PlantCell, book: RuleBook) -> CellNow | None:
     return cell_now(documents, readings, book)
 
 
-def decide_cell(cell: PlantCell, book: RuleBook) -> CellDecision | None:
+def seen_files(basis: Sequence[str]) -> frozenset[tuple[str, str]]:
+    """(file name, SHA-256) of every file a station decision's basis names ("stage words:file
+    name:SHA-256"; its review left out), as the station reads it (station/reviewing.py).
+
+    >>> sorted(seen_files(["review:3", "formation and grading:c:1.csv:ab12"]))
+    [('c:1.csv', 'ab12')]
+    """
+    found = set()
+    for entry in basis:
+        if entry.startswith("review:"):
+            continue
+        _, _, rest = entry.partition(":")  # stage words never hold a colon; a file name may
+        name, _, sha = rest.rpartition(":")
+        found.add((name, sha))
+    return frozenset(found)
+
+
+def latest_review(conn: Conn, lot: str, cell_id: str) -> Reviewed | None:
+    """The cell's latest review at any station, with the decision it gave, or None."""
+    row = conn.execute(
+        f"SELECT v.action, v.reviewer, v.reason, v.stage, v.accepts, d.verdict, d.reason, "
+        f"d.hazards, d.grade, d.basis FROM {SCHEMA}.reviews v JOIN {SCHEMA}.decisions d "
+        f"ON d.station_id = v.station_id AND d.review_id = v.id "
+        f"WHERE v.lot = %s AND v.cell_id = %s ORDER BY v.reviewed_at DESC, v.id DESC LIMIT 1",
+        (lot, cell_id),
+    ).fetchone()
+    if row is None:
+        return None
+    asked = Asked(row[0], row[1], row[2], row[3], tuple(row[4]))
+    return Reviewed(asked, Decided(row[5], row[6], tuple(row[7]), row[8]), seen_files(row[9]))
+
+
+def decide_cell(
+    cell: PlantCell, book: RuleBook, review: Reviewed | None = None
+) -> CellDecision | None:
     """The cell's decision over every station, as a station decides one (pure); None when no
-    record names its cell type."""
+    record names its cell type. A person's review decides the cell while it stands (it saw
+    every file that counts for the cell now: judge/review.py), as at a station."""
     now = cell_as_it_stands(cell, book)
-    return None if now is None else decide(now.needed, now.stages.records)
+    if now is None:
+        return None
+    if review is not None and stands(review, now.stages.records, now.stages.files):
+        given = review.given
+        return CellDecision(given.verdict, (given.reason,) if given.reason else (),
+                            given.hazards, ())
+    return decide(now.needed, now.stages.records)
 
 
 def latest_rule_set(cell: PlantCell) -> str | None:
@@ -249,7 +292,7 @@ def decide_in_plant(
     sha = latest_rule_set(cell)
     if not across_stations(cell) or sha is None:
         return None
-    decision = decide_cell(cell, rule_book(conn, sha))
+    decision = decide_cell(cell, rule_book(conn, sha), latest_review(conn, cell.lot, cell.cell_id))
     if decision is None:
         return None
     return record_decision(conn, cell, decision, sha, decided_by=decided_by, now=now)
