@@ -1,11 +1,12 @@
 """The command line's entry point: the parser of every command family, exit codes, bugs.
 
 Argument parsing and exit codes only. Each command family has its module (check.py,
-profile.py, station.py, lots.py, review.py, regrade.py, verify.py, plant.py, demo.py) with a plain
-function per command that returns an exit code, and adds its sub-commands to the parser
-here, in the order `formgate --help` shows them. A command given by name loads only its own
-family's module (a command starts in a fresh process every time: what it does not use, it
-does not import); help, a version or a mistyped command loads them all. A FormgateError or
+profile.py, station.py, lots.py, channels.py, review.py, regrade.py, verify.py, plant.py,
+demo.py) with a plain function per command that returns an exit code, and adds its
+sub-commands to the parser here, in the order `formgate --help` shows them. A command given
+by name loads only its own family's module (a command starts in a fresh process every
+time: what it does not use, it does not import); help, a version or a mistyped command
+loads them all. A FormgateError or
 an OSError is the user's to fix (exit 2); any other exception is a bug (exit 3, details in
 a log file).
 """
@@ -25,7 +26,8 @@ from pipeline.cli.starting import as_program, importing
 
 # The command families (modules of pipeline.cli), in the order `formgate --help` shows them,
 # and the family of each command.
-FAMILIES = ("check", "profile", "station", "lots", "review", "regrade", "verify", "plant", "demo")
+FAMILIES = ("check", "profile", "station", "lots", "channels", "review", "regrade", "verify", "plant",
+            "demo")
 COMMANDS = {
     "check": "check",
     "rules": "check",
@@ -36,6 +38,7 @@ COMMANDS = {
     "mail": "station",
     "lot": "lots",
     "cell": "lots",
+    "channel": "channels",
     "review": "review",
     "regrade": "regrade",
     "verify": "verify",

@@ -64,6 +64,7 @@ class DemoCell:
     started_at: str  # fixed ISO 8601 time, never the clock
     defect: str = ""
     compressed: bool = False
+    contact_mohm: float = 0.0  # a worn contact of its channel, in series with the cell
 
     @property
     def file_name(self) -> str:
@@ -141,6 +142,31 @@ DEMO_STAGED_CELLS: tuple[DemoCell, ...] = _lot(
     normal=22,
     compressed=(),
 )
+# Lot DEMO-LOT-05, on a rack of four channels that each test ten LFP cells in turn: from its
+# third cell on, channel 5-03's contact wears and its resistance rises by 2.5 mOhm a cell, so
+# that from its fourth cell on the cells it tests fail the DC resistance check (8 mOhm) though
+# nothing is wrong with them. The station's channel screen flags the channel.
+WORN_CONTACT_CHANNEL = "5-03"
+WORN_FROM_TURN = 3
+CHANNEL_LOT_CHANNELS = 4
+CHANNEL_LOT_TURNS = 10
+CHANNEL_PROGRAM_H = 18  # a channel starts its next cell this long after the last (our own)
+
+
+def _channel_lot() -> tuple[DemoCell, ...]:
+    start = datetime.datetime(2026, 3, 6, 6, 0, tzinfo=datetime.UTC)
+    cells = []
+    for n in range(1, CHANNEL_LOT_CHANNELS * CHANNEL_LOT_TURNS + 1):
+        slot, turn = (n - 1) % CHANNEL_LOT_CHANNELS + 1, (n - 1) // CHANNEL_LOT_CHANNELS + 1
+        channel = f"5-{slot:02d}"
+        worn = channel == WORN_CONTACT_CHANNEL and turn >= WORN_FROM_TURN
+        at = start + datetime.timedelta(hours=CHANNEL_PROGRAM_H * (turn - 1), minutes=5 * slot)
+        cells.append(DemoCell(f"L05-{n:03d}", "DEMO-LOT-05", LFP_CELL_TYPE, channel, at.isoformat(),
+                              contact_mohm=2.5 * (turn - WORN_FROM_TURN + 1) if worn else 0.0))
+    return tuple(cells)
+
+
+DEMO_CHANNEL_CELLS: tuple[DemoCell, ...] = _channel_lot()
 AGING_START = "2026-03-09T08:00:00+00:00"  # the first reading, after formation
 AGING_DAYS = 7.0
 GRADING_AFTER_AGING_H = 2.0  # a cell goes from the shelf to its grading channel in this
@@ -215,6 +241,9 @@ def demo_recipe(cell: DemoCell, rng: np.random.Generator) -> CellRecipe:
         first_cycle_loss_fraction=base.first_cycle_loss_fraction + 0.005 * loss,
         ambient_swing_c=0.3,  # a formation room held within a few tenths of a degree (our own)
     )
+    if cell.contact_mohm:  # the channel's, not the cell's: in series with whatever the cell is
+        worn = recipe.resistance_ohm + cell.contact_mohm / 1000.0
+        recipe = dataclasses.replace(recipe, resistance_ohm=worn)
     match cell.defect:
         case "" | "slow_self_discharge":  # the latter leaks on the shelf (demo_aging_file)
             return recipe

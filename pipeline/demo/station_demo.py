@@ -20,7 +20,9 @@ from pathlib import Path
 
 from pipeline.demo.lots import (
     ALL_DEMO_CELLS,
+    DEMO_CHANNEL_CELLS,
     DEMO_STAGED_CELLS,
+    WORN_CONTACT_CHANNEL,
     DemoCell,
     demo_aging_file,
     demo_file_bytes,
@@ -33,6 +35,7 @@ from pipeline.station.lots import LotOutcome
 from pipeline.station.settings import Settings, init_station, read_settings, smtp_settings
 from pipeline.station.station import Station
 
+CHANNEL_LOT = "DEMO-LOT-05"
 STATION_TOML = """\
 # Demo station written by `formgate demo`: three inboxes, one per way of handing a
 # file over, short waits so the demo runs in a minute or two, mail as .eml files.
@@ -150,6 +153,20 @@ def _drained(root: Path, ledger_path: Path, expected: int) -> bool:
         )
 
 
+def simulate_channel_line(root: Path, log: logging.Logger) -> list[str]:
+    """Hand over lot DEMO-LOT-05 as its rack of four channels finishes its cells, one at a time:
+    channel 5-03's contact wears half-way through (pipeline.demo.lots.DEMO_CHANNEL_CELLS)."""
+    dropped = []
+    for cell in DEMO_CHANNEL_CELLS:
+        part = root / "inbox-rename" / f"{cell.file_name}.part"
+        part.write_bytes(demo_file_bytes(cell))
+        part.rename(part.with_name(cell.file_name))
+        dropped.append(cell.file_name)
+        log.info("cycler: handed over %s (channel %s)", cell.file_name, cell.channel)
+        time.sleep(0.3)  # a rack finishes its cells one after another
+    return dropped
+
+
 def run_station_demo(folder: Path | None = None) -> int:
     """Run the whole demo; 0 when every file ended where it should."""
     root = folder or Path(tempfile.mkdtemp(prefix="formgate-demo-"))
@@ -182,11 +199,13 @@ def run_station_demo(folder: Path | None = None) -> int:
         try:
             dropped.extend(simulate_cycler(root, cells, log))
             dropped.extend(simulate_staged_line(root, log))
+            dropped.extend(simulate_channel_line(root, log))
             deadline = time.monotonic() + 600
             drain(deadline)
             # quality staff close the staged lot while the station runs: its letters go out
             if not stop.is_set():
                 closed.append(_close_staged_lot(settings))
+                closed.append(_close_staged_lot(settings, CHANNEL_LOT))
                 drain(deadline)
         finally:
             stop.set()
@@ -195,7 +214,8 @@ def run_station_demo(folder: Path | None = None) -> int:
     staged = 2 * len(DEMO_STAGED_CELLS) + 1
     print(
         f"demo station in {root}; the simulated cycler starts handing over {len(cells) + 2} "
-        f"files, and a line with an aging stage {staged} more (lot DEMO-LOT-04)"
+        f"files, a line with an aging stage {staged} more (lot DEMO-LOT-04), and a rack whose "
+        f"channel {WORN_CONTACT_CHANNEL} wears {len(DEMO_CHANNEL_CELLS)} more ({CHANNEL_LOT})"
     )
     feeder.start()
     try:
@@ -204,21 +224,42 @@ def run_station_demo(folder: Path | None = None) -> int:
         stop.set()
         feeder.join()
     code = _report(root, len(dropped))
-    if not closed:
-        print("LOT DEMO-LOT-04 WAS NOT CLOSED")
+    if len(closed) < 2:
+        print("LOTS DEMO-LOT-04 AND DEMO-LOT-05 WERE NOT CLOSED")
         return 1
-    return max(code, _show_staged_lot(closed[0]))
+    return max(code, _show_staged_lot(closed[0]), _show_channels(settings, closed[1]))
 
 
-def _close_staged_lot(settings: Settings) -> LotOutcome:
-    """Close lot DEMO-LOT-04 as quality staff would with `formgate lot close`."""
+def _show_channels(settings: Settings, outcome: LotOutcome) -> int:
+    """The channel alerts the station raised, and lot DEMO-LOT-05's report and charts."""
+    with Ledger(settings.ledger) as ledger:
+        alerts = ledger.channels.every()
+    print()
+    print(f"lot {CHANNEL_LOT} (four channels, ten cells each; channel {WORN_CONTACT_CHANNEL} wears), "
+          "closed:")
+    for alert in alerts:
+        print(f"  channel {alert.channel} at {alert.station}: SUSPECT since cell {alert.cell_id}: "
+              f"{alert.evidence}")
+    charts = sorted(outcome.report.parent.glob("_chart-*.svg"))
+    print(f"  lot report (PDF): {outcome.report}  (by-channel page, the lot over time)")
+    print(f"  charts (SVG):     {len(charts)} files beside it, e.g. {charts[0].name if charts else '-'}")
+    print(f"  channels:         formgate channel show {settings.root} {WORN_CONTACT_CHANNEL}")
+    flagged = [(a.station, a.channel) for a in alerts]
+    if flagged != [(settings.station_name, WORN_CONTACT_CHANNEL)]:
+        print(f"EXPECTED ONE ALERT, ON CHANNEL {WORN_CONTACT_CHANNEL}; GOT {flagged}")
+        return 1
+    return 0
+
+
+def _close_staged_lot(settings: Settings, lot: str = "DEMO-LOT-04") -> LotOutcome:
+    """Close a lot (DEMO-LOT-04 by default) as quality staff would with `formgate lot close`."""
     from pipeline.rulebook.book import load_rules_dir
     from pipeline.station.lots import close_and_report
 
     now = datetime.datetime.now(datetime.UTC).replace(microsecond=0)
     with Ledger(settings.ledger) as ledger:
         return close_and_report(
-            settings, ledger, load_rules_dir(settings.rules_dir), "DEMO-LOT-04",
+            settings, ledger, load_rules_dir(settings.rules_dir), lot,
             by="command", now=now,
         )
 

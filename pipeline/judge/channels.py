@@ -13,8 +13,10 @@ it is compared with):
   binomial test (one-sided, greater);
 - **run**: the channel's last records all failed the same check; under the hypothesis the
   chance of the last ``r`` records all being out is at most ``q**r``, ``q`` the others' rate;
-- **bias**: the median of a key metric over the channel's passing cells stands off the
-  others' median by more than the spread of a median allows (robust spread: 1.4826·MAD; the
+- **bias**: the median of a key metric over the channel's passing cells, each taken relative
+  to its own lot (its lot's median and robust SD, so lots of other cells never mix), stands
+  off the others' median by more than the spread of a median allows and by at least
+  ``min_bias_sd`` lot SDs (robust spread: 1.4826·MAD; the
   standard error of a median of normal data is sqrt(pi/2)·sigma/sqrt(n), common practice),
   judged on Student's t with the degrees of freedom the others' MAD is worth.
 
@@ -53,6 +55,7 @@ KEY_METRICS: Final = (
     "max_temperature_C",
 )
 Kind = Literal["rate", "run", "bias"]
+MIN_LOT_CELLS: Final = 10  # a lot's median and robust SD need this many passed cells (common practice)
 
 
 @dataclass(frozen=True, slots=True)
@@ -111,8 +114,10 @@ class ChannelScreen:
     ``min_records``: fewer records and the channel is not screened; ``min_run``: the
     shortest run of one failed check that counts; ``min_cells``: the bias test needs this
     many passing cells on the channel, and ``min_line_cells`` on the other channels (fewer
-    give a noisy robust spread: about 30, REFERENCE section 7.2, common practice);
-    ``metrics``: the key metrics the bias test looks at.
+    give a noisy robust spread: about 30, common practice); ``min_bias_sd``: a bias smaller
+    than this many of its lot's robust SDs is not worth an alert however sure it is;
+    ``metrics``: the key metrics the bias test looks at. Metric values are compared relative
+    to their own lot (median and robust SD of the lot's passed cells).
     """
 
     false_alarm: float = 0.01
@@ -121,6 +126,7 @@ class ChannelScreen:
     min_run: int = 3
     min_cells: int = 8
     min_line_cells: int = 30
+    min_bias_sd: float = 0.5
     metrics: tuple[str, ...] = KEY_METRICS
 
     def __post_init__(self) -> None:
@@ -205,7 +211,7 @@ def binomial_tail(k: int, n: int, p: float) -> float:
     exact to a few ulps for any n a line has.
 
     >>> round(binomial_tail(3, 6, 0.05), 6), binomial_tail(0, 5, 0.3)
-    (0.002234, 1.0)
+    (0.00223, 1.0)
     """
     if k < 0 or n < 0:
         raise ValueError("k and n must not be negative")
@@ -241,14 +247,39 @@ def _by_channel(records: Sequence[ChannelRecord]) -> dict[tuple[str, str], list[
     return grouped
 
 
-def _measured(records: Sequence[ChannelRecord], metric: str) -> np.ndarray:
-    x = np.array([r.values.get(metric) for r in records if r.verdict == "pass"], dtype=np.float64)
-    return x[np.isfinite(x)]
+def _relative(grouped: Mapping[tuple[str, str], Sequence[ChannelRecord]], metric: str,
+              min_lot_cells: int = MIN_LOT_CELLS) -> dict[tuple[str, str], np.ndarray]:
+    """Each channel's passed cells' ``metric`` relative to their own lot: (x - the lot's median)
+    / the lot's robust SD (1.4826·MAD over the lot's passed cells, every channel). Cells of
+    different types and lots are told apart by their lot, so a channel is never compared with
+    cells of another kind; a lot with fewer than ``min_lot_cells`` values, or no spread, is
+    left out."""
+    by_lot: dict[str, list[float]] = {}
+    for rs in grouped.values():
+        for r in rs:
+            v = r.values.get(metric)
+            if r.verdict == "pass" and v is not None and math.isfinite(v):
+                by_lot.setdefault(r.lot, []).append(v)
+    centre: dict[str, tuple[float, float]] = {}
+    for lot, values in by_lot.items():
+        x = np.asarray(values, dtype=np.float64)
+        if x.size >= min_lot_cells:
+            med = float(np.median(x))
+            sd = NORMAL_MAD_SCALE * float(np.median(np.abs(x - med)))
+            if sd > 0.0:
+                centre[lot] = (med, sd)
+    out = {}
+    for key, rs in grouped.items():
+        rel = [(v - centre[r.lot][0]) / centre[r.lot][1] for r in rs
+               if r.verdict == "pass" and r.lot in centre
+               and (v := r.values.get(metric)) is not None and math.isfinite(v)]
+        out[key] = np.asarray(rel, dtype=np.float64)
+    return out
 
 
 def metric_bias(mine: np.ndarray, others: np.ndarray, metric: str) -> MetricBias | None:
     """The channel's median against the others' (None when either side has no value or the
-    others show no spread)."""
+    others show no spread). The screen gives it values relative to their lots (in lot SDs)."""
     if mine.size == 0 or others.size < 2:
         return None
     line_median = float(np.median(others))
@@ -266,14 +297,14 @@ def channel_summaries(
     """Every channel's summary, sorted by station and channel (records without a channel
     are left out: they cannot be told apart)."""
     grouped = _by_channel(records)
+    relative = {m: _relative(grouped, m) for m in metrics}
     out = []
     for key, mine in sorted(grouped.items()):
-        others = [r for k, rs in grouped.items() if k != key for r in rs]
         verdicts = Counter(r.verdict for r in mine)
         by_check = Counter(c for r in mine if r.verdict in OUT for c in dict.fromkeys(r.checks_out))
         biases = tuple(
             b for m in metrics
-            if (b := metric_bias(_measured(mine, m), _measured(others, m), m)) is not None
+            if (b := metric_bias(relative[m][key], _others(relative[m], key), m)) is not None
         )
         out.append(ChannelSummary(
             key, len(mine), verdicts["pass"], verdicts["fail"], verdicts["hold"], verdicts["error"],
@@ -281,6 +312,11 @@ def channel_summaries(
             biases, mine[0].order, mine[-1].order,
         ))
     return tuple(out)
+
+
+def _others(values: Mapping[tuple[str, str], np.ndarray], key: tuple[str, str]) -> np.ndarray:
+    rest = [x for k, x in values.items() if k != key]
+    return np.concatenate(rest) if rest else np.empty(0)
 
 
 # -- the screen -----------------------------------------------------------------------------
@@ -329,7 +365,7 @@ def screen_channels(
     bias_tail = part / (2.0 * len(screened) * max(1, len(spec.metrics)))
     out_by_key = {k: sum(r.verdict in OUT for r in rs) for k, rs in grouped.items()}
     total_out, total = sum(out_by_key.values()), sum(len(rs) for rs in grouped.values())
-    passing = {m: {k: _measured(rs, m) for k, rs in grouped.items()} for m in spec.metrics}
+    passing = {m: _relative(grouped, m) for m in spec.metrics}
     suspects = []
     for key in sorted(screened):
         mine = grouped[key]
@@ -352,16 +388,19 @@ def screen_channels(
             mine_x = passing[metric][key]
             if mine_x.size < spec.min_cells:
                 continue
-            others_x = np.concatenate([x for k2, x in passing[metric].items() if k2 != key] or [np.empty(0)])
+            others_x = _others(passing[metric], key)
             if others_x.size < spec.min_line_cells:
                 continue
             bias = metric_bias(mine_x, others_x, metric)
-            if bias is not None and (p_bias := _t_tail(bias.z, others_x.size)) < 2.0 * bias_tail:
+            if bias is None or abs(bias.median - bias.line_median) < spec.min_bias_sd * bias.robust_sd:
+                continue  # too small a bias to matter, however sure (common practice)
+            if (p_bias := _t_tail(bias.z, others_x.size)) < 2.0 * bias_tail:
                 side = "above" if bias.z > 0 else "below"
+                shift = abs(bias.median - bias.line_median)
                 evidence.append(Evidence(
-                    "bias", f"the median {metric} of its {bias.n} passed cells, {bias.median:.6g}, "
-                    f"stands {abs(bias.z):.1f} standard errors {side} the other channels' "
-                    f"{bias.line_median:.6g}", p_bias, 2.0 * bias_tail))
+                    "bias", f"the median {metric} of its {bias.n} passed cells stands {shift:.1f} lot "
+                    f"SDs {side} the other channels' ({abs(bias.z):.1f} standard errors)",
+                    p_bias, 2.0 * bias_tail))
         if evidence:
             suspects.append(Suspect(key, tuple(evidence), len(mine)))
     return tuple(suspects)

@@ -313,6 +313,7 @@ def failure_letter(
     station: str,
     domain: str | None = None,
     cell_certificate: str = "",
+    channel_note: str = "",
 ) -> Letter:
     """The mail for a failed cell: subject names cell, lot and hazards; PDF attached.
 
@@ -320,6 +321,8 @@ def failure_letter(
     general caution, the data-check notice and the traceability of the decision.
     ``domain`` is the Message-ID's right-hand side (default: made from ``station``).
     ``cell_certificate``: the link of the cell's own certificate, named in the body.
+    ``channel_note``: when the channel that tested the cell is suspect, the words that say so
+    (after the FAIL paragraphs; every caution still follows in full).
     """
     if result.verdict.kind is not VerdictKind.FAIL:
         raise ValueError(f"failure_letter needs a failed cell, got {result.verdict.kind.value}")
@@ -337,6 +340,7 @@ def failure_letter(
             f"certificate is attached ({pathlib.PurePath(pdf_path).name})."
         ),
         *([cell_certificate_paragraph(cell_certificate)] if cell_certificate else []),
+        *([_paragraph(channel_note)] if channel_note else []),
     ]
     body = "\n\n".join(head + _cell_sections(result, hazards, general=True)) + "\n"
     return Letter(

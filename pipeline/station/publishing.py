@@ -31,6 +31,7 @@ from pipeline.runner import result_paths
 from pipeline.station import faults
 from pipeline.station.cells import CellDecisions
 from pipeline.station.certqueue import RecordCertificates
+from pipeline.station.channelwatch import open_alert_for, suspect_note, watch_channels
 from pipeline.station.digests import cell_certificate_link, cell_certificate_path
 from pipeline.station.guard import Guard
 from pipeline.station.published_files import Written, note_kept, note_written
@@ -186,6 +187,7 @@ class Publisher:
                     station=station,
                     domain=routing.domain,
                     cell_certificate=cell_certificate_link(self.settings, result.lot, result.cell_id),
+                    channel_note=suspect_note(open_alert_for(self.ledger, result)),
                 )
             ]
         if kind is VerdictKind.HOLD and routing.holds_to:
@@ -222,6 +224,8 @@ class Publisher:
             certificate_priority=None if rendered else PRIORITY.get(result.verdict.kind.value, 0),
         )
         faults.point("after_commit")
+        # the channel that tested it, screened with the station's others: one alert if suspect
+        watch_channels(self.ledger, self.settings, result, now=self.clock())
 
     def publish(self, row: InputRow, result: CellResult, json_text: str, pdf: bytes | None) -> None:
         json_path, pdf_path = self.output_paths(result)

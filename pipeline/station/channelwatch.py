@@ -1,0 +1,120 @@
+"""The station's watch on its channels: screen them as records arrive, alert once per suspect
+channel, and word a failed cell's note when the channel that tested it is suspect.
+
+Edge module: it reads the station's latest records back from the ledger (channel_alerts.py),
+screens them with the pure :func:`pipeline.judge.channels.screen_channels`, and records an
+alert on each newly suspect channel with its alert mail in one transaction. A channel stays
+suspect until a person clears it (`formgate channel clear`); it is alerted once per episode
+however many of its cells fail meanwhile.
+
+A note that a channel is suspect never softens a failed cell's handling: the letter still
+says FAIL, gives every caution and defers to the site's procedures; the note only adds that
+the cell may be good and should be retested on another channel once a person allows it.
+"""
+
+from __future__ import annotations
+
+import datetime
+import logging
+from dataclasses import dataclass, field
+
+from pipeline.judge.channels import ChannelRecord, ChannelScreen, Suspect, channel_label, screen_channels
+from pipeline.ledger.channel_alerts import ChannelAlert
+from pipeline.ledger.ledger import Ledger
+from pipeline.mail.letters import alert_letter
+from pipeline.model import CellResult
+from pipeline.station.settings import Settings
+
+log = logging.getLogger("formgate.station")
+
+
+@dataclass(frozen=True, slots=True)
+class ChannelWatch:
+    """How a station watches its channels: the screen, and how many of its latest records
+    (over all lots) the screen looks at."""
+
+    screen: ChannelScreen = field(default_factory=ChannelScreen)
+    window: int = 2000
+
+
+DEFAULT_WATCH = ChannelWatch()
+
+
+def place_of(result: CellResult) -> tuple[str, str]:
+    """(station, channel) as the record's file names them ("" where it names none)."""
+    meta = dict(result.metadata)
+    return str(meta.get("station") or ""), str(meta.get("channel") or "")
+
+
+def station_records(ledger: Ledger, window: int) -> list[ChannelRecord]:
+    return [
+        ChannelRecord(r.station, r.channel, r.started_at, r.cell_id, r.lot, r.verdict, r.checks_out,
+                      r.metrics)
+        for r in ledger.channels.recent_records(window)
+    ]
+
+
+def alert_text(suspect: Suspect, cell_id: str, lot: str) -> str:
+    lines = [f"{channel_label(suspect.key).capitalize()} is suspect, as of cell {cell_id} of lot {lot}:"]
+    lines += [f"- {e.text}" for e in suspect.evidence]
+    lines += [
+        "",
+        suspect.advice,
+        "Cells this channel failed may be good: retest them on another channel once a person "
+        "allows it; until then they stay failed and are handled as failed cells. Clear the "
+        "alert with `formgate channel clear` when the channel has been checked.",
+    ]
+    return "\n".join(lines)
+
+
+def watch_channels(
+    ledger: Ledger, settings: Settings, result: CellResult, *, now: datetime.datetime,
+    watch: ChannelWatch = DEFAULT_WATCH,
+) -> list[Suspect]:
+    """Screen the station's channels after ``result`` was recorded; raise one alert (with its
+    mail) on each suspect channel that has none open. Returns the channels newly alerted."""
+    if not place_of(result)[1]:
+        return []
+    raised = []
+    records = station_records(ledger, watch.window)
+    for suspect in screen_channels(records, watch.screen):
+        station, channel = suspect.key
+        if ledger.channels.open_alert(station, channel) is not None:
+            continue
+        last = max((r for r in records if r.key == suspect.key), key=lambda r: (r.order, r.cell_id))
+        text = alert_text(suspect, last.cell_id, last.lot)
+        routing = settings.routing
+        mail = alert_letter(
+            f"{channel_label(suspect.key)} is suspect", text, routing.alerts_to,
+            station=settings.station_name, key=f"channel:{station}:{channel}:{now.isoformat()}",
+            domain=routing.domain,
+        ) if routing.alerts_to else None
+        if ledger.channels.raise_alert(
+            station=station, channel=channel, cell_id=last.cell_id, lot=last.lot,
+            evidence="; ".join(e.text for e in suspect.evidence), advice=suspect.advice,
+            mail=mail, now=now,
+        ):
+            log.warning("%s is suspect: %s", channel_label(suspect.key),
+                        "; ".join(e.text for e in suspect.evidence))
+            raised.append(suspect)
+    return raised
+
+
+def suspect_note(alert: ChannelAlert | None) -> str:
+    """The words a failed cell's letter adds when its channel is suspect ("" when it is not)."""
+    if alert is None:
+        return ""
+    return (
+        f"The {channel_label((alert.station, alert.channel))} that tested this cell is suspect "
+        f"(alert raised {alert.raised_at.isoformat(timespec='minutes')}: {alert.evidence}). The "
+        "cell may be good and can be retested on another channel once a person allows it; until "
+        "then it is a failed cell: the cautions below apply in full."
+    )
+
+
+def open_alert_for(ledger: Ledger, result: CellResult) -> ChannelAlert | None:
+    station, channel = place_of(result)
+    return ledger.channels.open_alert(station, channel) if channel else None
+
+
+__all__ = ["DEFAULT_WATCH", "ChannelWatch", "open_alert_for", "suspect_note", "watch_channels"]
