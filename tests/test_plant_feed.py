@@ -201,3 +201,25 @@ def test_a_second_ledger_under_a_station_id_in_use_is_refused(
     with Ledger(two) as kept:
         wait_until(lambda: read_state(kept).since is not None, what="the refusal")
         assert "already has a station 'line-1' fed from another ledger" in read_state(kept).error
+
+
+def test_a_channel_alert_is_forwarded_and_its_clearing_follows(
+    judged_ledger: Path, plant_url: str, tmp_path: Path, feeds: list[tuple[PlantFeed, threading.Event]]
+) -> None:
+    ledger = copy_ledger(judged_ledger, tmp_path / "a")
+    with Ledger(ledger) as kept:
+        assert kept.channels.raise_alert(
+            station="test-station", channel="CH-07", cell_id="F-3", lot="LOT-A",
+            evidence="3 of the channel's last 10 cells failed", advice="check the channel",
+            mail=None, now=utc_now())
+    start(feeds, ledger, plant_url, "line-1")
+    wait_until(lambda: caught_up(ledger), what="the feed to catch up")
+    with Ledger(ledger) as kept:
+        assert kept.channels.clear("test-station", "CH-07", by="Anna", why="probe replaced",
+                                   now=utc_now())
+    wait_until(lambda: caught_up(ledger), what="the clearing to follow")
+    assert_whole_and_once(ledger, plant_url, "line-1")
+    with psycopg.connect(plant_url) as conn:
+        assert conn.execute("SELECT channel, cleared_by FROM formgate.channel_alerts").fetchall() == [
+            ("CH-07", "Anna")]
+

@@ -64,3 +64,23 @@ def test_without_server_binaries_the_plant_tests_skip_and_say_why_but_fail_in_ci
         plant_server.require_server({})
     with pytest.raises(pytest.fail.Exception, match="CI must run them"):
         plant_server.require_server({"CI": "true"})
+
+
+def test_every_ledger_table_and_column_is_forwarded_to_the_plant_or_kept_at_the_station_for_a_reason(
+    tmp_path: Path,
+) -> None:
+    from pipeline.plant.tables import FED, KEPT_AT_STATION
+
+    path = tmp_path / "ledger.sqlite"
+    Ledger(path, now=T0).close()
+    with sqlite3.connect(path) as conn:
+        tables = {str(r[0]) for r in conn.execute(
+            "SELECT name FROM sqlite_schema WHERE type = 'table' AND name NOT LIKE 'sqlite_%'")}
+        columns = {t: tuple(str(r[1]) for r in conn.execute(f"PRAGMA table_info({t})")) for t in tables}
+    fed = {f.table: f for f in FED}
+    assert sorted(tables - set(fed) - set(KEPT_AT_STATION)) == [], (
+        "a ledger table neither forwarded (pipeline/plant/tables.py FED, a plant migration and "
+        "the ledger's triggers) nor kept at the station (KEPT_AT_STATION, with why)")
+    for table, spec in fed.items():
+        assert spec.names == columns[table], f"{table}: a column is not forwarded to the plant"
+    assert [(t, k) for t, k in FED_TABLES] == [(f.table, f.key) for f in FED]

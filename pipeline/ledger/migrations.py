@@ -509,7 +509,7 @@ _CERTIFICATE_QUEUE = sql_migration(
 # ``plant_feed`` has its row, which the feed writes at its first start together with the
 # whole history (a station without a plant database keeps no log). A table rebuilt by a later
 # migration loses its triggers: that migration must make them again (plant_trigger_sql).
-FED_TABLES: tuple[tuple[str, str], ...] = (
+_FED_AT_0009: tuple[tuple[str, str], ...] = (  # as 0009 made their triggers: never change
     ("rule_texts", "sha256"), ("inputs", "id"), ("regrades", "id"), ("results", "id"),
     ("checks", "id"), ("readings", "id"), ("reviews", "id"), ("decisions", "id"),
     ("lots", "lot"), ("set_aside", "id"), ("published", "id"),
@@ -547,7 +547,7 @@ _PLANT_FEED = sql_migration(
         row_key ANY NOT NULL
     ) STRICT
     """,
-    *(sql for table, key in FED_TABLES for sql in plant_trigger_sql(table, key)),
+    *(sql for table, key in _FED_AT_0009 for sql in plant_trigger_sql(table, key)),
 )
 
 # A channel the suspect-channel screen flagged (judge/channels.py): one open alert per
@@ -574,9 +574,23 @@ _CHANNEL_ALERTS = sql_migration(
     "CREATE UNIQUE INDEX channel_alerts_open ON channel_alerts (station, channel) WHERE cleared_at IS NULL",
 )
 
+# The channel alerts go to the plant too: their triggers, and, on a ledger whose feed has
+# started, the alerts already there logged to go.
+_PLANT_CHANNEL_ALERTS = sql_migration(
+    "0011_plant_feed_channel_alerts",
+    *plant_trigger_sql("channel_alerts", "id"),
+    """INSERT INTO plant_changes (tbl, row_key)
+       SELECT 'channel_alerts', id FROM channel_alerts WHERE EXISTS (SELECT 1 FROM plant_feed)
+       ORDER BY id""",
+)
+
+# Every table the plant feed forwards (its key), parents first: pipeline/ledger/plantlog.py
+# logs them all when a feed starts, and pipeline/plant/tables.py says how each is forwarded.
+FED_TABLES: tuple[tuple[str, str], ...] = (*_FED_AT_0009, ("channel_alerts", "id"))
+
 MIGRATIONS: tuple[Migration, ...] = (
     _INITIAL, _RULE_TEXTS, _SET_ASIDE, _LOTS, _OUTBOX_CLAIMS, _REVIEWS, _REGRADE_TABLES,
-    _CERTIFICATE_QUEUE, _PLANT_FEED, _CHANNEL_ALERTS,
+    _CERTIFICATE_QUEUE, _PLANT_FEED, _CHANNEL_ALERTS, _PLANT_CHANNEL_ALERTS,
 )
 SCHEMA_VERSION = len(MIGRATIONS)
 

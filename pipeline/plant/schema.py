@@ -295,7 +295,33 @@ _INITIAL = PlantMigration("0001_initial", (
     "CREATE INDEX plant_decisions_by_cell ON formgate.plant_decisions (cell_id, lot, id)",
 ))
 
-PLANT_MIGRATIONS: tuple[PlantMigration, ...] = (_INITIAL,)
+# A suspect channel flagged at a station (its ledger's channel_alerts), until a person clears it.
+_CHANNEL_ALERTS = PlantMigration("0002_channel_alerts", (
+    f"""
+    CREATE TABLE formgate.channel_alerts (
+        {_STATION},
+        id bigint NOT NULL,
+        station text NOT NULL,
+        channel text NOT NULL CHECK (channel <> ''),
+        raised_at timestamptz NOT NULL,
+        cell_id text NOT NULL,
+        lot text NOT NULL,
+        evidence text NOT NULL CHECK (evidence <> ''),
+        advice text NOT NULL,
+        mail_id bigint,
+        cleared_at timestamptz,
+        cleared_by text,
+        cleared_why text,
+        {_FED},
+        PRIMARY KEY (station_id, id),
+        CHECK ((cleared_at IS NULL) = (cleared_by IS NULL))
+    )
+    """,
+    "CREATE INDEX channel_alerts_open ON formgate.channel_alerts (station_id, channel) "
+    "WHERE cleared_at IS NULL",
+))
+
+PLANT_MIGRATIONS: tuple[PlantMigration, ...] = (_INITIAL, _CHANNEL_ALERTS)
 PLANT_SCHEMA_VERSION = len(PLANT_MIGRATIONS)
 
 _BOOTSTRAP = (

@@ -131,5 +131,23 @@ FED: tuple[Fed, ...] = (
     Fed("published", "id", _cols(
         "id:int path:text sha256:text kind:text lot:text cell_id:text result_id:int "
         "decision_id:int published_at:time")),
+    Fed("channel_alerts", "id", _cols(
+        "id:int station:text channel:text raised_at:time cell_id:text lot:text evidence:text "
+        "advice:text mail_id:int cleared_at:time cleared_by:text cleared_why:text"),
+        changing=("cleared_at", "cleared_by", "cleared_why")),
 )
 FED_BY_TABLE = {t.table: t for t in FED}
+
+# The ledger's tables a station keeps to itself, and why: its own bookkeeping, not a record
+# of what it judged or decided. Every other table is forwarded (FED); a test holds the two
+# lists to the ledger's schema, so a new table or column is forwarded or listed here.
+KEPT_AT_STATION: dict[str, str] = {
+    "migrations": "the ledger's own schema history",
+    "outbox": "the station's letters while they wait and their delivery",
+    "certificate_queue": "the station's renders still to do",
+    "station_state": "the running station's named values",
+    "rule_books": "which rule sets were in force at each load (their texts are forwarded)",
+    "plant_feed": "the feed's own start",
+    "plant_changes": "the feed's own log",
+}
+
