@@ -13,7 +13,7 @@ import pytest
 
 from pipeline.cli.main import main
 from pipeline.ledger.ledger import Ledger
-from tests.station_kit import cycle_file, drop, make_station, running, settled, wait_until
+from tests.station_kit import cycle_file, drop, make_station, running, settled, station_toml, wait_until
 
 CHANNELS, TURNS, BAD, WORN_FROM = 4, 8, "R1-C03", 5
 
@@ -66,3 +66,27 @@ def test_a_channel_whose_cells_start_failing_is_alerted_once_and_its_later_fails
     with Ledger(settings.ledger) as ledger:
         (alert,) = ledger.channels.every()
         assert alert.cleared_by == "technician C" and alert.cleared_why == "contact block replaced"
+
+
+@pytest.mark.slow
+def test_with_suspect_fails_retest_a_suspect_channels_later_fail_waits_for_a_retest(tmp_path: Path) -> None:
+    """[channels] suspect_fails = "retest": a cell the suspect channel fails after its alert is
+    held for a retest of its stage; its record stays failed, and the earlier fails stay failed."""
+    toml = station_toml(extra='\n[channels]\nsuspect_fails = "retest"\n')
+    settings = make_station(tmp_path / "st", toml)
+    with running(settings):
+        for n in range(1, CHANNELS * TURNS + 1):
+            name, data = _file(n)
+            drop(settings.inboxes[0].folder, name, data)
+            wait_until(lambda n=n: settled(settings, n), timeout_s=60, what=f"file {n} judged")
+    with Ledger(settings.ledger) as ledger:
+        (alert,) = ledger.channels.every()
+        bad = [f"CH-{n:03d}" for n in range(1, CHANNELS * TURNS + 1)
+               if (n - 1) % CHANNELS + 1 == 3 and (n - 1) // CHANNELS + 1 >= WORN_FROM]
+        decided = {c: ledger.decisions.latest("L-CH-05", c) for c in bad}
+        records = {c: ledger.results.of_cell("L-CH-05", c)[-1].verdict for c in bad}
+    assert set(records.values()) == {"fail"}  # every record stays failed
+    waiting = [c for c, d in decided.items() if d is not None and d.verdict == "hold"]
+    assert waiting and all("retest asked by station test-station" in decided[c].reason for c in waiting)
+    assert decided[bad[0]] is not None and decided[bad[0]].verdict == "fail"  # before the alert
+    assert alert.channel == BAD

@@ -154,6 +154,9 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_settings() -> 
         400.0,
     )
     assert s.certify == "failed_and_held"
+    c = s.channels
+    assert (c.false_alarm, c.recent, c.min_records, c.min_run, c.window, c.suspect_fails) == (
+        0.005, 30, 8, 4, 5000, "retest")
     assert s.keep_originals_h == 6.0
     assert (s.max_line_kB, s.max_rows, s.worker_memory_MB, s.waiting_alert_s, s.retry_max_s) == (
         16.0,

@@ -16,10 +16,10 @@ from pipeline.cli.lots import _open
 from pipeline.errors import FormgateError
 
 
-def _records(ledger: Any) -> list[Any]:
-    from pipeline.station.channelwatch import DEFAULT_WATCH, station_records
+def _records(settings: Any, ledger: Any) -> list[Any]:
+    from pipeline.station.channelwatch import station_records, watch_of
 
-    return station_records(ledger, DEFAULT_WATCH.window)
+    return station_records(ledger, watch_of(settings).window)
 
 
 def _key(ledger: Any, records: list[Any], channel: str) -> tuple[str, str]:
@@ -40,14 +40,13 @@ def _key(ledger: Any, records: list[Any], channel: str) -> tuple[str, str]:
 
 def cmd_channel_list(args: argparse.Namespace) -> int:
     """Every channel of the station's latest records: counts, suspect or not."""
-    from pipeline.judge.channels import channel_summaries
-    from pipeline.station.channelwatch import DEFAULT_WATCH
+    from pipeline.judge.channels import KEY_METRICS, channel_summaries
 
-    _, ledger = _open(args.folder)
+    settings, ledger = _open(args.folder)
     with ledger:
-        records = _records(ledger)
+        records = _records(settings, ledger)
         alerts = {(a.station, a.channel): a for a in ledger.channels.every() if a.cleared_at is None}
-        summaries = channel_summaries(records, DEFAULT_WATCH.screen.metrics)
+        summaries = channel_summaries(records, KEY_METRICS)
         if not summaries and not alerts:
             print("no record names its channel yet")
             return EXIT_OK
@@ -61,15 +60,14 @@ def cmd_channel_list(args: argparse.Namespace) -> int:
 
 def cmd_channel_show(args: argparse.Namespace) -> int:
     """One channel: its counts, fails and holds by check, bias, last records and its alerts."""
-    from pipeline.judge.channels import channel_summaries
-    from pipeline.station.channelwatch import DEFAULT_WATCH
+    from pipeline.judge.channels import KEY_METRICS, channel_summaries
 
-    _, ledger = _open(args.folder)
+    settings, ledger = _open(args.folder)
     with ledger:
-        records = _records(ledger)
+        records = _records(settings, ledger)
         key = _key(ledger, records, args.channel)
         mine = [r for r in records if r.key == key]
-        summary = next((s for s in channel_summaries(records, DEFAULT_WATCH.screen.metrics) if s.key == key),
+        summary = next((s for s in channel_summaries(records, KEY_METRICS) if s.key == key),
                        None)
         print(f"channel {key[1]}" + (f" at {key[0]}" if key[0] else ""))
         if summary is not None:
@@ -94,9 +92,9 @@ def cmd_channel_show(args: argparse.Namespace) -> int:
 
 def cmd_channel_clear(args: argparse.Namespace) -> int:
     """A person checked the channel: its open alert is cleared, with who and why."""
-    _, ledger = _open(args.folder)
+    settings, ledger = _open(args.folder)
     with ledger:
-        key = _key(ledger, _records(ledger), args.channel)
+        key = _key(ledger, _records(settings, ledger), args.channel)
         if not ledger.channels.clear(*key, by=args.by, why=args.reason,
                                      now=datetime.datetime.now(datetime.UTC)):
             raise FormgateError(f"channel {args.channel!r} has no open alert", None,

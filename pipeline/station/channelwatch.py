@@ -18,11 +18,13 @@ import datetime
 import logging
 from dataclasses import dataclass, field
 
+from pipeline.errors import FormgateError
 from pipeline.judge.channels import ChannelRecord, ChannelScreen, Suspect, channel_label, screen_channels
 from pipeline.ledger.channel_alerts import ChannelAlert
 from pipeline.ledger.ledger import Ledger
 from pipeline.mail.letters import alert_letter
 from pipeline.model import CellResult
+from pipeline.rulebook.book import RuleBook
 from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
@@ -38,6 +40,14 @@ class ChannelWatch:
 
 
 DEFAULT_WATCH = ChannelWatch()
+
+
+def watch_of(settings: Settings) -> ChannelWatch:
+    """The watch station.toml's [channels] table asks for."""
+    c = settings.channels
+    screen = ChannelScreen(false_alarm=c.false_alarm, recent=c.recent, min_records=c.min_records,
+                           min_run=c.min_run)
+    return ChannelWatch(screen, c.window)
 
 
 def place_of(result: CellResult) -> tuple[str, str]:
@@ -69,12 +79,13 @@ def alert_text(suspect: Suspect, cell_id: str, lot: str) -> str:
 
 def watch_channels(
     ledger: Ledger, settings: Settings, result: CellResult, *, now: datetime.datetime,
-    watch: ChannelWatch = DEFAULT_WATCH,
+    watch: ChannelWatch | None = None,
 ) -> list[Suspect]:
     """Screen the station's channels after ``result`` was recorded; raise one alert (with its
     mail) on each suspect channel that has none open. Returns the channels newly alerted."""
     if not place_of(result)[1]:
         return []
+    watch = watch or watch_of(settings)
     raised = []
     records = station_records(ledger, watch.window)
     for suspect in screen_channels(records, watch.screen):
@@ -112,9 +123,36 @@ def suspect_note(alert: ChannelAlert | None) -> str:
     )
 
 
+def ask_retest(
+    settings: Settings, ledger: Ledger, rulebook: RuleBook | None, result: CellResult,
+    alert: ChannelAlert, *, now: datetime.datetime,
+) -> bool:
+    """``[channels] suspect_fails = "retest"``: ask, as the station, for a retest of the stage a
+    suspect channel failed, so the cell waits for a record from another channel. The failed
+    record keeps its verdict, certificate and cautions; a person may still release or reject
+    the cell. False (and logged) when the review cannot be recorded now."""
+    from pipeline.judge.review import Asked
+    from pipeline.station.reviewing import record_review
+
+    if rulebook is None or not result.stages:
+        return False
+    reason = (f"{channel_label((alert.station, alert.channel))} is suspect: test the cell again on "
+              "another channel")
+    asked = Asked("retest", f"station {settings.station_name}", reason, stage=result.stages[-1])
+    try:
+        record_review(settings, ledger, rulebook, lot=result.lot, cell_id=result.cell_id,
+                      asked=asked, now=now)
+    except FormgateError as exc:
+        log.warning("cell %s lot %s: no retest asked for the suspect channel: %s", result.cell_id,
+                    result.lot, exc)
+        return False
+    return True
+
+
 def open_alert_for(ledger: Ledger, result: CellResult) -> ChannelAlert | None:
     station, channel = place_of(result)
     return ledger.channels.open_alert(station, channel) if channel else None
 
 
-__all__ = ["DEFAULT_WATCH", "ChannelWatch", "open_alert_for", "suspect_note", "watch_channels"]
+__all__ = ["DEFAULT_WATCH", "ChannelWatch", "ask_retest", "open_alert_for", "suspect_note", "watch_channels",
+           "watch_of"]

@@ -49,6 +49,7 @@ from pipeline.report.lotreport import (
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.cellpublish import all_current, publish_cells_now
 from pipeline.station.cells import change_letters
+from pipeline.station.channelwatch import watch_of
 from pipeline.station.digests import lot_rows
 from pipeline.station.published_files import Written, note_written
 from pipeline.station.reviewing import (
@@ -234,7 +235,7 @@ def close_and_report(
     data = report_input(
         closed, station=settings.station_name, now=now, closed_at=closed_at,
         decisions=ledger.decisions.latest_of_lot(lot), refused=unjudged_cells(settings, ledger, lot),
-        records=channel_records(ledger, lot),
+        records=channel_records(ledger, lot), channel_screen=watch_of(settings).screen,
     )
     if data.statistics is not None:  # what the report counts, the caller shows (not judged too)
         closed = dataclasses.replace(closed, statistics=data.statistics)

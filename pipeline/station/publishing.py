@@ -31,7 +31,7 @@ from pipeline.runner import result_paths
 from pipeline.station import faults
 from pipeline.station.cells import CellDecisions
 from pipeline.station.certqueue import RecordCertificates
-from pipeline.station.channelwatch import open_alert_for, suspect_note, watch_channels
+from pipeline.station.channelwatch import ask_retest, open_alert_for, suspect_note, watch_channels
 from pipeline.station.digests import cell_certificate_link, cell_certificate_path
 from pipeline.station.guard import Guard
 from pipeline.station.published_files import Written, note_kept, note_written
@@ -105,6 +105,10 @@ class Publisher:
             row.name,
         )
         self.cells.decide_cells([(r.lot, r.cell_id)], "record")
+        if r.verdict.kind is VerdictKind.FAIL and self.settings.channels.suspect_fails == "retest":
+            alert = open_alert_for(self.ledger, r)
+            if alert is not None and alert.raised_at <= r.analysed_at:  # failed on a suspect channel
+                ask_retest(self.settings, self.ledger, self.cells.rules.rulebook, r, alert, now=self.clock())
 
     def earlier_records(self, row: InputRow, result: CellResult) -> list[ResultRow]:
         """The cell's earlier records of the same stages from other inputs, oldest first."""

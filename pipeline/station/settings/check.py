@@ -35,6 +35,7 @@ from pipeline.station.settings.plant import check_plant, plant_settings
 from pipeline.station.settings.records import (
     FOLDER_KEYS,
     AccuracyRule,
+    ChannelSettings,
     InboxSettings,
     ProfileRule,
     Settings,
@@ -278,6 +279,7 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
             certify=cast(str, station["certify"]),
             plant=plant_settings(plain["plant"], plant_password, str(station["name"])),
             accuracy=tuple(accuracy),
+            channels=ChannelSettings(**{k: v for k, v in plain["channels"].items()}),  # type: ignore[arg-type]
         ),
         [],
     )

@@ -7,13 +7,25 @@ is check.py's job; reading files, credentials and disks is files.py's.
 from __future__ import annotations
 
 import fnmatch
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from pipeline.mail.smtp import Security
 from pipeline.model import AccuracyClass, ChannelClasses
 
 FOLDER_KEYS = ("work", "archive", "quarantine", "results", "certificates", "mail", "logs")
+
+
+@dataclass(frozen=True, slots=True)
+class ChannelSettings:
+    """The [channels] table: the suspect-channel screen, and what a suspect channel's fails do."""
+
+    false_alarm: float = 0.01
+    recent: int = 20
+    min_records: int = 5
+    min_run: int = 3
+    window: int = 2000
+    suspect_fails: str = "fail"  # or "retest"
 
 
 @dataclass(frozen=True, slots=True)
@@ -143,6 +155,7 @@ class Settings:
     certify: str = "all"  # or "failed_and_held": which cells get a PDF certificate
     plant: PlantSettings | None = None  # the plant database the ledger is forwarded to
     accuracy: tuple[AccuracyRule, ...] = ()  # channels' accuracy classes, in the file's order
+    channels: ChannelSettings = field(default_factory=ChannelSettings)  # [channels]
 
     def all_folders(self) -> tuple[Path, ...]:
         """Every folder the station writes or claims from: the inboxes, then [folders] but rules."""

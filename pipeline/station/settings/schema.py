@@ -521,6 +521,47 @@ SETTINGS_TABLES: tuple[Table, ...] = (
     ),
 )
 
+# The station's watch on its cycler channels (docs/station.md, "Suspect channels").
+SUSPECT_FAILS: tuple[str, ...] = ("fail", "retest")
+SETTINGS_TABLES += (
+    Table(
+        "channels",
+        "The watch on the cycler channels: after each record the station screens its channels "
+        "(the channel its file names) against each other, and raises one alert on a channel "
+        "whose cells fail far more often than the others', fail one check in a row, or whose "
+        "passed cells stand off the others' (docs/station.md, Suspect channels).",
+        (
+            Key(
+                "false_alarm",
+                NUMBER,
+                "the chance that one screening of a line with no bad channel flags a channel",
+                default=0.01,
+                minimum=0.0,
+                minimum_exclusive=True,
+                maximum=0.2,
+            ),
+            Key("recent", INTEGER, "the rate test looks at a channel's last this many records",
+                default=20, minimum=5, maximum=1000),
+            Key("min_records", INTEGER, "a channel with fewer records is not screened", default=5,
+                minimum=2),
+            Key("min_run", INTEGER, "the shortest run of one failed check that counts", default=3,
+                minimum=2),
+            Key("window", INTEGER, "the station's latest records (every lot) the screen looks at",
+                default=2000, minimum=10, maximum=100_000),
+            Key(
+                "suspect_fails",
+                TEXT,
+                "what the station does with a cell that a suspect channel fails: `fail` keeps it "
+                "failed (its letter says the channel is suspect); `retest` also asks for a retest "
+                "of its stage, so the cell is held until a new record of that stage (from another "
+                "channel) decides it. Its record stays failed, with every caution",
+                default="fail",
+                allowed=SUSPECT_FAILS,
+            ),
+        ),
+    ),
+)
+
 SETTINGS_BY_TABLE: dict[str, Table] = {t.name: t for t in SETTINGS_TABLES}
 
 # Keys renamed since earlier revisions of this format: (table, old key) -> new key.
