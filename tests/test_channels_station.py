@@ -10,6 +10,7 @@ import datetime
 from pathlib import Path
 
 import pytest
+from pypdf import PdfReader
 
 from pipeline.cli.main import main
 from pipeline.ledger.ledger import Ledger
@@ -53,6 +54,15 @@ def test_a_channel_whose_cells_start_failing_is_alerted_once_and_its_later_fails
     for m in failures:  # the note never takes a caution away
         assert m["subject"].startswith("formgate: FAIL cell") and "Do not release this cell" in m["body_text"]
         assert "qualified personnel" in m["body_text"] or "site" in m["body_text"]
+    # the cell certificates of those cells say so too, beside their FAIL and their cautions
+    for m in failures:
+        cell = m["subject"].split("FAIL cell ")[1].split(",")[0]
+        pdf = settings.certificates / "L-CH-05" / f"{cell}~cell.pdf"
+        text = " ".join(" ".join(p.extract_text() for p in PdfReader(pdf).pages).split())
+        assert "FAIL" in text and "qualified personnel" in text
+        assert ("Suspect channel." in text) == (m in noted), cell
+        if m in noted:
+            assert "which was suspect when it was judged" in text and "applies in full" in text
     # the channel's cells after the alert: their failure letters name it, and keep the cautions
     assert main(["channel", "list", str(settings.root)]) == 0
     listed = capsys.readouterr().out

@@ -214,6 +214,7 @@ def build_context(summary: CellSummary, *, code: str) -> dict[str, object]:
             "word": word,
             "headline": headline,
             "why": list(standing_why(s)),
+            "channel_notes": list(s.channel_notes),
             "grade": d.grade or "",
         },
         **_cautions(s),

@@ -185,6 +185,9 @@ class CellSummary:
     reviews: tuple[ReviewEntry, ...]
     json_name: str
     certificate_name: str | None
+    # a failed record a suspect channel tested, in words (station/channelwatch.py): on the
+    # certificate only, beside the verdict; it never changes the verdict or its cautions
+    channel_notes: tuple[str, ...] = ()
 
     def review(self, review_id: int | None) -> ReviewEntry | None:
         return next((r for r in self.reviews if r.id == review_id), None)

@@ -55,6 +55,7 @@ from pipeline.report.cellsummary import (
 )
 from pipeline.rulebook.book import RuleBook
 from pipeline.station import faults
+from pipeline.station.channelwatch import suspect_notes
 from pipeline.station.settings import Settings
 from pipeline.writing import write_atomic
 
@@ -244,6 +245,7 @@ def summarize(
         ),
         json_name=json_path.name,
         certificate_name=pdf_path.name if certificate else None,
+        channel_notes=suspect_notes(ledger, rows, docs),
     )
 
 

@@ -16,12 +16,15 @@ from __future__ import annotations
 
 import datetime
 import logging
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
+from typing import Any
 
 from pipeline.errors import FormgateError
 from pipeline.judge.channels import ChannelRecord, ChannelScreen, Suspect, channel_label, screen_channels
 from pipeline.ledger.channel_alerts import ChannelAlert
 from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.rows import ResultRow
 from pipeline.mail.letters import alert_letter
 from pipeline.model import CellResult
 from pipeline.rulebook.book import RuleBook
@@ -149,10 +152,37 @@ def ask_retest(
     return True
 
 
+def suspect_notes(
+    ledger: Ledger, rows: Sequence[ResultRow], docs: Sequence[Mapping[str, Any]]
+) -> tuple[str, ...]:
+    """For a cell certificate: one line per failed record of the cell that a channel failed
+    while it was suspect (an alert raised before the record was judged, not cleared by then).
+    The same ledger gives the same lines, whenever the certificate is made again."""
+    notes = []
+    for row, doc in zip(rows, docs, strict=True):
+        where = doc.get("cell", {})
+        channel, station = str(where.get("channel") or ""), str(where.get("station") or "")
+        if row.verdict != "fail" or not channel:
+            continue
+        for alert in ledger.channels.every(station, channel):
+            if alert.raised_at <= row.analysed_at and (alert.cleared_at is None
+                                                       or alert.cleared_at > row.analysed_at):
+                notes.append(
+                    f"Record {doc.get('input', {}).get('name') or row.cell_id} failed on "
+                    f"{channel_label((station, channel))}, which was suspect when it was judged "
+                    f"(alert raised {alert.raised_at.isoformat(timespec='minutes')}: "
+                    f"{alert.evidence}). The cell may be good and can be retested on another "
+                    "channel once a person allows it; until then it is a failed cell and every "
+                    "caution on this certificate applies in full."
+                )
+                break
+    return tuple(notes)
+
+
 def open_alert_for(ledger: Ledger, result: CellResult) -> ChannelAlert | None:
     station, channel = place_of(result)
     return ledger.channels.open_alert(station, channel) if channel else None
 
 
-__all__ = ["DEFAULT_WATCH", "ChannelWatch", "ask_retest", "open_alert_for", "suspect_note", "watch_channels",
-           "watch_of"]
+__all__ = ["DEFAULT_WATCH", "ChannelWatch", "ask_retest", "open_alert_for", "suspect_note", "suspect_notes",
+           "watch_channels", "watch_of"]
