@@ -264,3 +264,19 @@ def test_an_offset_within_the_class_never_moves_a_verdict_more_than_u_from_its_l
         u = base.metrics.uncertainty.get(name)
         if value is not None and other is not None and u is not None:
             assert abs(other - value) <= u, name  # the offset's effect is inside U
+
+
+def test_a_regrade_judges_again_with_the_class_the_record_was_judged_with() -> None:
+    from pipeline.regrade.rules_bundle import setting_digest
+    from pipeline.report.result import accuracy_of, to_json
+
+    cell_id, data, result = first_passed()
+    assert accuracy_of(to_json(result)) == result.accuracy
+    again = judge(data, f"{cell_id}.csv", shipped(), analysed_at=AT,
+                  accuracy=accuracy_of(to_json(result)))
+    assert to_json(again) == to_json(result)  # the same document: only rules may change it
+    assert accuracy_of(None) is None
+    # the regrade's cache tells results of two classes apart
+    digests = {setting_digest("a.csv", None, None, 1, None, a)
+               for a in (None, DEFAULT_ACCURACY, AccuracyClass(voltage_mv=2.0))}
+    assert len(digests) == 3

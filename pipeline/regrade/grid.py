@@ -51,7 +51,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from pipeline.errors import FormgateError, InputError
-from pipeline.model import SourceRef
+from pipeline.model import AccuracyClass, SourceRef
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.limits import TextLimits
 from pipeline.regrade.cache import CachedResult, CacheKey, RegradeCache
@@ -107,6 +107,8 @@ class RegradeItem:
     # the analysis time its result document carries, when not the run's: a station's record
     # keeps the time it was first analysed, its place in its cell's history
     analysed_at: datetime.datetime | None = None
+    # the channel's accuracy class it was judged with (None: the profile's, else the default)
+    accuracy: AccuracyClass | None = None
 
     def __post_init__(self) -> None:
         if self.path is None and self.data is None:
@@ -416,7 +418,8 @@ class _Run:
                 self._not_sent(item, str(missing))
                 return
         setting = setting_digest(
-            item.name, item.profile_name, profile_text, self.max_uncompressed_bytes, self.limits
+            item.name, item.profile_name, profile_text, self.max_uncompressed_bytes, self.limits,
+            item.accuracy,
         )
         key = CacheKey(item.sha256, self.rules.digest, setting)
         sharing = self.waiting.get(key)
@@ -464,7 +467,7 @@ class _Run:
             shipped += len(data) if data is not None else 0
             files.append(
                 TaskFile(len(files), item.sha256, item.name, item.path, data, item.profile_name,
-                      item.profile_text, item.analysed_at)
+                      item.profile_text, item.analysed_at, item.accuracy)
             )
             groups.append(self.waiting[key])
             keys.append(key)

@@ -21,7 +21,7 @@ from typing import TYPE_CHECKING
 
 from pipeline import __version__
 from pipeline.errors import ProfileError, RulesError
-from pipeline.model import SourceRef
+from pipeline.model import AccuracyClass, SourceRef
 from pipeline.read.limits import TextLimits
 
 if TYPE_CHECKING:
@@ -139,9 +139,11 @@ def setting_digest(
     profile_text: str | None,
     max_uncompressed_bytes: int,
     limits: TextLimits | None,
+    accuracy: AccuracyClass | None = None,
 ) -> str:
     """SHA-256 of what decides a result besides the bytes and the rules: the name the file is
-    judged under, its import profile, the size limits and the formgate version."""
+    judged under, its import profile, the size limits, the channel's accuracy class and the
+    formgate version."""
     parts = [
         name,
         profile_name or "",
@@ -149,6 +151,7 @@ def setting_digest(
         str(max_uncompressed_bytes),
         repr(limits),
         __version__,
+        *([] if accuracy is None else [repr(accuracy)]),
     ]
     digest = hashlib.sha256()
     for part in parts:

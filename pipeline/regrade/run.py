@@ -49,6 +49,7 @@ from pipeline.report.regradereport import (
     regrade_csv,
     render_regrade_pdf,
 )
+from pipeline.report.result import accuracy_of
 from pipeline.station.published_files import Written, note_written
 from pipeline.station.settings import Settings
 from pipeline.writing import write_atomic
@@ -176,7 +177,7 @@ def _judge(
         work.append(RegradeItem(
             sha256=item.sha256, name=item.name, path=str(item.path),
             profile_text=profile_text, profile_name=item.profile.name if item.profile else None,
-            key=item.sha256, analysed_at=item.analysed_at,
+            key=item.sha256, analysed_at=item.analysed_at, accuracy=accuracy_of(item.result_json),
         ))
     new_texts: dict[str, str] = {}
     refused: dict[str, str] = {}
@@ -366,7 +367,7 @@ def _record_certificate(rulebook: Any, item: Archived, text: str, cell_id: str) 
             profile = load_profile(item.profile.read_text(encoding="utf-8"), item.profile.name)
         assert item.analysed_at is not None
         result = judge(data, item.name, rulebook, analysed_at=item.analysed_at, profile=profile,
-                       input_sha256=item.sha256)
+                       input_sha256=item.sha256, accuracy=accuracy_of(item.result_json))
     except (OSError, FormgateError) as exc:
         log.error("%s: no certificate for its regrade: %s", item.name, exc)
         return None

@@ -37,7 +37,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from pipeline.errors import FormgateError, InputError
-from pipeline.model import SourceRef
+from pipeline.model import AccuracyClass, SourceRef
 from pipeline.read.limits import TextLimits
 
 if TYPE_CHECKING:
@@ -91,6 +91,7 @@ class TaskFile:
     profile_name: str | None
     profile_text: str | None = field(repr=False)
     analysed_at: datetime.datetime | None = None
+    accuracy: AccuracyClass | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -254,6 +255,7 @@ def _judge_file(book: RuleBook, file: TaskFile, batch: Batch) -> tuple[str | Non
             profile=profile,
             max_uncompressed_bytes=batch.max_uncompressed_bytes,
             input_sha256=digest,
+            accuracy=file.accuracy,
         )
         return to_json(result), None, True
     except FormgateError as exc:

@@ -194,6 +194,26 @@ _STR = {"type": ["string", "null"]}
 ACCURACY_KEYS: tuple[str, ...] = tuple(_accuracy(AccuracyClass()) or {})
 
 
+def accuracy_of(result_json: str | None) -> AccuracyClass | None:
+    """The accuracy class a result document was judged with (None: none recorded), so that a
+    regrade judges the bytes again with the channel's class and only the rules changed."""
+    if result_json is None:
+        return None
+    found = json.loads(result_json).get("accuracy")
+    if not isinstance(found, dict):
+        return None
+    return AccuracyClass(
+        voltage_pct_of_reading=float(found["voltage_pct_of_reading"]),
+        voltage_mv=float(found["voltage_mV"]),
+        current_pct_of_reading=float(found["current_pct_of_reading"]),
+        current_pct_of_range=float(found["current_pct_of_range"]),
+        current_range_a=None if found["current_range_A"] is None else float(found["current_range_A"]),
+        temperature_k=float(found["temperature_K"]),
+        time_ppm=float(found["time_ppm"]),
+        source=str(found["source"]),
+    )
+
+
 def schema() -> dict[str, Any]:
     """JSON Schema (2020-12) of the result document, version 1."""
     cycle_keys = list(_cycle(CycleMetrics(1, 0.0, None, None, None, None, None, None, 0.0, None)))
