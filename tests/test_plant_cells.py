@@ -30,6 +30,8 @@ pytestmark = pytest.mark.slow
 
 CELLS = DEMO_STAGED_CELLS[:4]
 SHARED, OWN = CELLS[:3], CELLS[3]  # formed at hall A, graded at hall B; all at hall A
+LOW = DEMO_STAGED_CELLS[22]  # a low-capacity cell, formed at hall A and failed at grading at hall B
+assert LOW.defect == "low_capacity"
 LOT = CELLS[0].lot
 
 
@@ -53,15 +55,15 @@ def plant(tmp_path_factory: pytest.TempPathFactory, plant_server: PlantServer) -
     root = tmp_path_factory.mktemp("plant")
     a, b = _station(root / "a", "hall-a", url), _station(root / "b", "hall-b", url)
     with running(a):
-        for cell in CELLS:
+        for cell in (*CELLS, LOW):
             drop(a.inboxes[0].folder, f"{cell.cell_id}-formation.csv", demo_stage_files(cell)["formation"])
-        drop(a.inboxes[0].folder, "aging.csv", demo_aging_file(CELLS))
+        drop(a.inboxes[0].folder, "aging.csv", demo_aging_file((*CELLS, LOW)))
         drop(a.inboxes[0].folder, f"{OWN.cell_id}-grading.csv", demo_stage_files(OWN)["grading"])
-        _fed(a, url, "hall-a", 6)
+        _fed(a, url, "hall-a", 7)
     with running(b):
-        for cell in SHARED:
+        for cell in (*SHARED, LOW):
             drop(b.inboxes[0].folder, f"{cell.cell_id}-grading.csv", demo_stage_files(cell)["grading"])
-        _fed(b, url, "hall-b", 3)
+        _fed(b, url, "hall-b", 4)
     return url, a.ledger, b.ledger
 
 
@@ -120,8 +122,9 @@ def test_the_lot_over_both_stations_has_one_yield_and_exports(
     url, _, _ = plant
     out = _run(capsys, "plant", "lot", "show", LOT, "--database", url)
     assert out.splitlines()[0] == (
-        f"lot {LOT}: 4 cell(s) at 2 station(s) (hall-a, hall-b): 4 pass, 0 fail, 0 hold; yield 100.0 %"
+        f"lot {LOT}: 5 cell(s) at 2 station(s) (hall-a, hall-b): 4 pass, 1 fail, 0 hold; yield 80.0 %"
     )
+    assert out.splitlines()[1].startswith(f"  {LOW.cell_id}  fail: grading_capacity_Ah ")
     assert f"  {SHARED[0].cell_id}  pass  (plant; hall-a, hall-b)" in out
     assert f"  {OWN.cell_id}  pass  (station hall-a; hall-a)" in out
     assert "screens over every station's passing cells (" in out
@@ -129,7 +132,7 @@ def test_the_lot_over_both_stations_has_one_yield_and_exports(
     _run(capsys, "plant", "lot", "export", LOT, "--out", str(tmp_path / "lot.parquet"), "--database", url)
     rows = list(csv.DictReader(io.StringIO((tmp_path / "lot.csv").read_text(encoding="utf-8"))))
     table = pq.read_table(tmp_path / "lot.parquet").to_pylist()
-    assert [r["cell_id"] for r in rows] == [c.cell_id for c in CELLS] == [r["cell_id"] for r in table]
+    assert [r["cell_id"] for r in rows] == [c.cell_id for c in (*CELLS, LOW)] == [r["cell_id"] for r in table]
     assert rows[0]["decided_by"] == "plant" and rows[0]["stations"] == "hall-a;hall-b"
     capacity = [float(r["grading_capacity_Ah"]) for r in rows]
     assert capacity == [r["grading_capacity_Ah"] for r in table] and all(c > 0 for c in capacity)
@@ -143,7 +146,7 @@ def test_yield_by_station_and_finding_a_file_by_its_hash(
     assert out.splitlines() == [
         "station          cells   pass   fail   hold   yield",
         "hall-a               1      1      0      0  100.0 %",
-        "hall-a + hall-b      3      3      0      0  100.0 %",
+        "hall-a + hall-b      4      3      1      0   75.0 %",
     ]
     by_type = _run(capsys, "plant", "yield", "--by", "cell-type", "--database", url)
     assert by_type.splitlines()[1].startswith(f"{CELLS[0].cell_type}  ")
@@ -170,5 +173,42 @@ def test_a_review_decides_the_plant_cell_only_while_it_saw_every_file_that_count
     saw_all = Reviewed(Asked("reject", "Anna", "dented can"), rejected, frozenset(files))
     saw_one_station = Reviewed(Asked("reject", "Anna", "dented can"), rejected,
                                frozenset(f for f in files if "grading" in f[0]))
-    assert decide_cell(cell, book, saw_all).reason == "rejected by Anna: dented can"  # type: ignore[union-attr]
-    assert decide_cell(cell, book, saw_one_station).verdict == "pass"  # type: ignore[union-attr]
+    assert decide_cell(cell, book, [saw_all]).reason == "rejected by Anna: dented can"  # type: ignore[union-attr]
+    assert decide_cell(cell, book, [saw_one_station]).verdict == "pass"  # type: ignore[union-attr]
+
+
+def test_a_person_reviews_a_cell_of_two_stations_in_the_plant(
+    plant: tuple[str, Path, Path], capsys: pytest.CaptureFixture[str]
+) -> None:
+    from pipeline.judge.review import failed_checks
+    from pipeline.plant.cells import cell_as_it_stands, fetch_cell, latest_rule_set, rule_book
+
+    url, _, _ = plant
+    with psycopg.connect(url) as conn:
+        cell = fetch_cell(conn, LOT, LOW.cell_id)
+        now = cell_as_it_stands(cell, rule_book(conn, latest_rule_set(cell) or ""))
+    assert now is not None
+    failed = failed_checks(now.stages.records)
+    assert failed  # the low-capacity cell failed its grading at hall B
+    # a concession must name every failed check
+    capsys.readouterr()
+    assert main(["plant", "review", "release", LOW.cell_id, "--by", "Anna", "--reason",
+                 "customer concession 14", "--database", url]) == 2
+    assert f"cell {LOW.cell_id} failed: it is released only as a concession that names every" in (
+        capsys.readouterr().err)
+    accepts = [a for c in failed for a in ("--accept", c)]
+    out = _run(capsys, "plant", "review", "release", LOW.cell_id, *accepts, "--by", "Anna",
+               "--reason", "customer concession 14", "--database", url)
+    assert out.splitlines()[0] == (
+        f"cell {LOW.cell_id}, lot {LOT}: pass: released as a concession by Anna accepting "
+        f"{', '.join(failed)}: customer concession 14")
+    # the review stands: deciding the cell again keeps it, and the lot counts it as passed
+    shown = _run(capsys, "plant", "cell", "show", LOW.cell_id, "--database", url)
+    assert "  plant decision: pass: released as a concession by Anna" in shown
+    lot = _run(capsys, "plant", "lot", "show", LOT, "--database", url)
+    assert ": 5 pass, 0 fail, 0 hold; yield 100.0 %" in lot.splitlines()[0]
+    # a cell of one station is reviewed at its station
+    assert main(["plant", "review", "reject", OWN.cell_id, "--by", "Anna", "--reason", "x",
+                 "--database", url]) == 2
+    assert "is not decided in the plant: its records are at one station (hall-a)" in capsys.readouterr().err
+

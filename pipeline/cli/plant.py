@@ -19,6 +19,7 @@ from typing import Any
 
 from pipeline.cli.exits import EXIT_OK
 from pipeline.errors import FormgateError
+from pipeline.model import STAGES
 
 
 def _connect(args: argparse.Namespace) -> Any:
@@ -200,6 +201,43 @@ def cmd_find(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _review(args: argparse.Namespace, action: str) -> int:
+    from pipeline.judge.review import Asked
+    from pipeline.plant.cells import lots_of_cell
+    from pipeline.plant.reviews import record_plant_review
+
+    asked = Asked(action, args.by or getpass.getuser(), args.reason,
+                  getattr(args, "stage", None), tuple(getattr(args, "accept", None) or ()))
+    with _connect(args) as conn:
+        lots = [args.lot] if args.lot else lots_of_cell(conn, args.cell)
+        if len(lots) != 1:
+            raise FormgateError(
+                f"the plant database has {'no' if not lots else 'several'} cell {args.cell!r}"
+                + (f" (lots {', '.join(lots)})" if lots else ""), None,
+                "Give --lot LOT." if lots else "Check the cell id (formgate plant find CELL).")
+        was, gave = record_plant_review(conn, lots[0], args.cell, asked, recorded_by=_who(),
+                                        now=_now())
+    print(f"cell {args.cell}, lot {lots[0]}: {gave.verdict}" + (f": {gave.reason}" if gave.reason else ""))
+    print(f"  was {was.verdict}" + (f": {was.reason}" if was.reason else "")
+          + f"; over {', '.join(gave.stations)}; recorded in the plant database, no letter sent")
+    return EXIT_OK
+
+
+def cmd_review_release(args: argparse.Namespace) -> int:
+    """Release a held cell of several stations, or a failed one as a concession."""
+    return _review(args, "release")
+
+
+def cmd_review_reject(args: argparse.Namespace) -> int:
+    """Reject a held or failed cell of several stations."""
+    return _review(args, "reject")
+
+
+def cmd_review_retest(args: argparse.Namespace) -> int:
+    """Hold a cell of several stations until a new record of one stage decides it again."""
+    return _review(args, "retest")
+
+
 def cmd_resend(args: argparse.Namespace) -> int:
     """Log a station's every row to be forwarded again (the plant restored from a backup)."""
     from pipeline.ledger.ledger import Ledger
@@ -277,6 +315,29 @@ def add_commands(sub: Any) -> None:
     find.add_argument("text", metavar="CELL_OR_SHA256", help="a cell id or an input's SHA-256")
     _where(find)
     find.set_defaults(func=cmd_find)
+    review = plant_sub.add_parser("review", help="a person's decision on a cell of several stations")
+    review_sub = review.add_subparsers(dest="plant_review_command", required=True, metavar="ACTION")
+    for name, func, text in (
+        ("release", cmd_review_release, "release a held cell of several stations, or a failed "
+         "one as a concession"),
+        ("reject", cmd_review_reject, "reject a held or failed cell of several stations"),
+        ("retest", cmd_review_retest, "hold a cell of several stations until a new record of one "
+         "stage decides it again"),
+    ):
+        p = review_sub.add_parser(name, help=text, description=text[0].upper() + text[1:] + ".")
+        p.add_argument("cell", metavar="CELL", help="the cell id")
+        if name == "release":
+            p.add_argument("--accept", action="append", metavar="CHECK",
+                           help="a failed check the concession accepts (its id in the result "
+                                "JSON); once per failed check")
+        if name == "retest":
+            p.add_argument("stage", metavar="STAGE", choices=STAGES,
+                           help=f"the stage to test again: {', '.join(STAGES)}")
+        p.add_argument("--reason", required=True, help="why: recorded with the review")
+        p.add_argument("--by", metavar="NAME", help="who decides (default: the operating-system user)")
+        p.add_argument("--lot", help="the cell's lot, when its id recurs in several lots")
+        _where(p)
+        p.set_defaults(func=func)
     resend = plant_sub.add_parser("resend", help="forward a station's whole ledger again",
                                   description="Log every row of a station's ledger to be "
                                               "forwarded again, after the plant database was "

@@ -92,6 +92,7 @@ class PlantDecision:
     rule_set_sha256: str
     decided_by: str
     decided_at: datetime.datetime
+    review_id: int | None = None  # the plant review that gave it
 
 
 _RECORDS = f"""
@@ -205,18 +206,20 @@ def latest_review(conn: Conn, lot: str, cell_id: str) -> Reviewed | None:
 
 
 def decide_cell(
-    cell: PlantCell, book: RuleBook, review: Reviewed | None = None
+    cell: PlantCell, book: RuleBook, reviews: Sequence[Reviewed | None] = ()
 ) -> CellDecision | None:
     """The cell's decision over every station, as a station decides one (pure); None when no
     record names its cell type. A person's review decides the cell while it stands (it saw
-    every file that counts for the cell now: judge/review.py), as at a station."""
+    every file that counts for the cell now: judge/review.py), as at a station; of
+    ``reviews`` (the plant's latest, then a station's) the first that stands decides."""
     now = cell_as_it_stands(cell, book)
     if now is None:
         return None
-    if review is not None and stands(review, now.stages.records, now.stages.files):
-        given = review.given
-        return CellDecision(given.verdict, (given.reason,) if given.reason else (),
-                            given.hazards, ())
+    for review in reviews:
+        if review is not None and stands(review, now.stages.records, now.stages.files):
+            given = review.given
+            return CellDecision(given.verdict, (given.reason,) if given.reason else (),
+                                given.hazards, ())
     return decide(now.needed, now.stages.records)
 
 
@@ -234,14 +237,30 @@ def basis_of(cell: PlantCell) -> list[str]:
 
 def latest_plant_decision(conn: Conn, lot: str, cell_id: str) -> PlantDecision | None:
     row = conn.execute(
-        f"SELECT id, verdict, reason, hazards, stations, rule_set_sha256, decided_by, decided_at "
-        f"FROM {SCHEMA}.plant_decisions WHERE lot = %s AND cell_id = %s ORDER BY id DESC LIMIT 1",
+        f"SELECT id, verdict, reason, hazards, stations, rule_set_sha256, decided_by, decided_at, "
+        f"review_id FROM {SCHEMA}.plant_decisions WHERE lot = %s AND cell_id = %s "
+        f"ORDER BY id DESC LIMIT 1",
         (lot, cell_id),
     ).fetchone()
     if row is None:
         return None
     return PlantDecision(int(row[0]), row[1], row[2], tuple(row[3]), tuple(row[4]), row[5],
-                         row[6], row[7])
+                         row[6], row[7], row[8])
+
+
+def latest_plant_review(conn: Conn, lot: str, cell_id: str) -> Reviewed | None:
+    """The cell's latest review made in the plant, with the plant decision it gave, or None."""
+    row = conn.execute(
+        f"SELECT v.action, v.reviewer, v.reason, v.stage, v.accepts, v.seen, d.verdict, d.reason, "
+        f"d.hazards FROM {SCHEMA}.plant_reviews v JOIN {SCHEMA}.plant_decisions d "
+        f"ON d.review_id = v.id WHERE v.lot = %s AND v.cell_id = %s ORDER BY v.id DESC LIMIT 1",
+        (lot, cell_id),
+    ).fetchone()
+    if row is None:
+        return None
+    asked = Asked(row[0], row[1], row[2], row[3], tuple(row[4]))
+    seen = frozenset((str(name), str(sha)) for name, sha in row[5])
+    return Reviewed(asked, Decided(row[6], row[7], tuple(row[8])), seen)
 
 
 def record_decision(
@@ -292,7 +311,9 @@ def decide_in_plant(
     sha = latest_rule_set(cell)
     if not across_stations(cell) or sha is None:
         return None
-    decision = decide_cell(cell, rule_book(conn, sha), latest_review(conn, cell.lot, cell.cell_id))
+    reviews = (latest_plant_review(conn, cell.lot, cell.cell_id),
+               latest_review(conn, cell.lot, cell.cell_id))
+    decision = decide_cell(cell, rule_book(conn, sha), reviews)
     if decision is None:
         return None
     return record_decision(conn, cell, decision, sha, decided_by=decided_by, now=now)

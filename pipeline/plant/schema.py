@@ -321,7 +321,33 @@ _CHANNEL_ALERTS = PlantMigration("0002_channel_alerts", (
     "WHERE cleared_at IS NULL",
 ))
 
-PLANT_MIGRATIONS: tuple[PlantMigration, ...] = (_INITIAL, _CHANNEL_ALERTS)
+# A person's review of a cell the plant decides (release, reject, retest of a stage): the
+# decision it answered and the files that decision rested on (``seen``, [name, SHA-256]
+# pairs: a review stands until a file it did not see counts for the cell), and the plant
+# decision it gives, which names it.
+_PLANT_REVIEWS = PlantMigration("0003_plant_reviews", (
+    """
+    CREATE TABLE formgate.plant_reviews (
+        id bigint GENERATED ALWAYS AS IDENTITY PRIMARY KEY,
+        cell_id text NOT NULL CHECK (cell_id <> ''),
+        lot text NOT NULL,
+        action text NOT NULL CHECK (action IN ('release', 'reject', 'retest')),
+        stage text CHECK ((stage IS NULL) = (action <> 'retest')),
+        accepts jsonb NOT NULL CHECK (jsonb_typeof(accepts) = 'array'),
+        reviewer text NOT NULL CHECK (reviewer <> ''),
+        reason text NOT NULL CHECK (trim(reason) <> ''),
+        reviewed_at timestamptz NOT NULL,
+        answers bigint NOT NULL REFERENCES formgate.plant_decisions (id),
+        seen jsonb NOT NULL CHECK (jsonb_typeof(seen) = 'array'),
+        recorded_by text NOT NULL CHECK (recorded_by <> '')
+    )
+    """,
+    "CREATE INDEX plant_reviews_by_cell ON formgate.plant_reviews (cell_id, lot, id)",
+    "ALTER TABLE formgate.plant_decisions ADD COLUMN review_id bigint "
+    "REFERENCES formgate.plant_reviews (id)",
+))
+
+PLANT_MIGRATIONS: tuple[PlantMigration, ...] = (_INITIAL, _CHANNEL_ALERTS, _PLANT_REVIEWS)
 PLANT_SCHEMA_VERSION = len(PLANT_MIGRATIONS)
 
 _BOOTSTRAP = (
