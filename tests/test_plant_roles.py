@@ -87,3 +87,17 @@ def test_the_documented_roles_feed_a_station_and_hold_it_to_its_own_columns(
             "'[]', '[]', '[]', %s, 'quality_anna', now())", (sha,))
         with pytest.raises(psycopg.errors.InsufficientPrivilege):
             conn.execute("UPDATE formgate.decisions SET verdict = 'pass'")
+
+
+def test_a_role_without_the_grant_gets_a_message_not_a_crash(
+    plant_server: PlantServer, capsys: pytest.CaptureFixture[str]
+) -> None:
+    url = plant_server.new_database()
+    _run_as(url, ["CREATE ROLE plant_reader_only LOGIN"])
+    reader = url.replace("plant_admin@", "plant_reader_only@")
+    assert main(["plant", "migrate", "--database", url]) == 0
+    assert main(["plant", "find", "F-3", "--database", reader]) == 2
+    assert capsys.readouterr().err.splitlines() == [
+        "the plant database refused: permission denied for schema formgate.",
+        "  Ask the plant database's owner for the grants in docs/plant.md (Roles and grants).",
+    ]

@@ -12,8 +12,10 @@ from __future__ import annotations
 
 import argparse
 import datetime
+import functools
 import getpass
 import socket
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -58,6 +60,26 @@ def _connect(args: argparse.Namespace) -> Any:
                             "database server runs.") from None
 
 
+def _database_errors(func: Callable[[argparse.Namespace], int]) -> Callable[[argparse.Namespace], int]:
+    """A database that refuses a statement (a role without the grant, a connection lost) is the
+    user's to fix (exit 2), not a bug."""
+
+    @functools.wraps(func)
+    def run(args: argparse.Namespace) -> int:
+        import psycopg
+
+        try:
+            return func(args)
+        except psycopg.Error as exc:
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            hint = ("Ask the plant database's owner for the grants in docs/plant.md (Roles and "
+                    "grants)." if isinstance(exc, psycopg.errors.InsufficientPrivilege) else
+                    "Check that the database server runs and can be reached, and try again.")
+            raise FormgateError(f"the plant database refused: {first}", None, hint) from None
+
+    return run
+
+
 def _who() -> str:
     return f"{getpass.getuser()}@{socket.gethostname()}"
 
@@ -70,6 +92,7 @@ def _time(at: datetime.datetime | None) -> str:
     return "-" if at is None else at.astimezone(datetime.UTC).isoformat(timespec="seconds")
 
 
+@_database_errors
 def cmd_migrate(args: argparse.Namespace) -> int:
     """Set up or bring up to date the plant's schema (as the role that owns it)."""
     from pipeline.plant.schema import PLANT_SCHEMA_VERSION, migrate
@@ -82,6 +105,7 @@ def cmd_migrate(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+@_database_errors
 def cmd_cell_show(args: argparse.Namespace) -> int:
     """A cell at every station: its records, readings, each station's decision, the plant's."""
     from pipeline.plant.cells import decide_in_plant, fetch_cell, lots_of_cell
@@ -123,6 +147,7 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+@_database_errors
 def cmd_lot_show(args: argparse.Namespace) -> int:
     """Every station's cells of a lot with their standing decisions, one yield, the screens."""
     from pipeline.plant.lots import Books, lot_cells, screens_text
@@ -146,6 +171,7 @@ def cmd_lot_show(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+@_database_errors
 def cmd_lot_export(args: argparse.Namespace) -> int:
     """One row per cell of the lot over every station, as CSV or Parquet (by the file's suffix)."""
     from pipeline.plant.lots import export_csv, export_parquet, lot_cells
@@ -163,6 +189,7 @@ def cmd_lot_export(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+@_database_errors
 def cmd_yield(args: argparse.Namespace) -> int:
     """Cells, passes and yield by station, cell type or day, over every lot."""
     from pipeline.plant.lots import yield_rows
@@ -187,6 +214,7 @@ def cmd_yield(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+@_database_errors
 def cmd_find(args: argparse.Namespace) -> int:
     """Every input with this SHA-256, or every record of a cell with this id, at every station."""
     from pipeline.plant.lots import find
@@ -223,16 +251,19 @@ def _review(args: argparse.Namespace, action: str) -> int:
     return EXIT_OK
 
 
+@_database_errors
 def cmd_review_release(args: argparse.Namespace) -> int:
     """Release a held cell of several stations, or a failed one as a concession."""
     return _review(args, "release")
 
 
+@_database_errors
 def cmd_review_reject(args: argparse.Namespace) -> int:
     """Reject a held or failed cell of several stations."""
     return _review(args, "reject")
 
 
+@_database_errors
 def cmd_review_retest(args: argparse.Namespace) -> int:
     """Hold a cell of several stations until a new record of one stage decides it again."""
     return _review(args, "retest")
