@@ -126,3 +126,23 @@ def test_a_passed_cell_draws_no_plot_but_a_failed_one_shows_its_whole_record(jud
     rest = judged["normal"].metrics.rest
     assert rest is not None
     assert rest.slope_mv_per_h == judged["normal"].metrics.values["rest_voltage_drift_mV_per_h"]
+
+
+def test_the_drift_plots_labels_stay_clear_of_a_noisy_trace() -> None:
+    """A failed drift with noise: the fit's and the limit's labels sit where the trace is not
+    (they sat at the lines' ends, on the trace)."""
+    rng = np.random.default_rng(5)
+    hours = np.linspace(0.0, 3.0, 600)
+    volts = 3.2 - 0.0036 * hours + rng.normal(0.0, 0.0006, hours.size)
+    rest = RestView(Curve(hours, volts), 0.17, 3.2 - 0.0036 * 0.17, -3.6)
+    root = ET.fromstring(evidence.drift_svg(rest, -2.0, **SIZE))
+    trace = [p for p in root.iter(f"{SVG}path") if p.get("class") == "curve"]
+    points = [pt for path in trace for pt in _path_points(path)]
+    assert points
+    for label in root.iter(f"{SVG}text"):
+        if not (label.text or "").startswith(("fit ", "limit ")):
+            continue
+        x_end, y_base = float(label.get("x", "0")), float(label.get("y", "0"))
+        x_start = x_end - 0.55 * 2.5 * len(label.text or "")  # a generous width for the words
+        under = [y for x, y in points if x_start <= x <= x_end + 6.0]
+        assert under and min(under) > y_base + 0.5, f"{label.text!r} lies on the trace"

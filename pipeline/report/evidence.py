@@ -153,17 +153,34 @@ def drift_svg(
         f'<path class="fit" d="M{n(x0)} {n(frame.py(rest.fit_v))}L{n(x1)} {n(frame.py(fit_end_v))}" '
         f'stroke="{FIT}" stroke-width="0.6"/>'
     )
-    fit_text = f"fit {_signed(rest.slope_mv_per_h)} mV/h"
-    parts.extend(_limit_label(frame, x1, frame.py(fit_end_v) + FONT_MM + 1.4, fit_text, FIT))
+    key = [(f"fit {_signed(rest.slope_mv_per_h)} mV/h", FIT, "")]
     if limit_mv_per_h is not None:
         y1 = frame.py(lines[-1])
+        dash = ' stroke-dasharray="1.2 0.8"'
         parts.append(
             f'<path class="limit" d="M{n(x0)} {n(frame.py(rest.fit_v))}L{n(x1)} {n(y1)}" '
-            f'stroke="{LIMIT}" stroke-width="0.35" stroke-dasharray="1.2 0.8"/>'
+            f'stroke="{LIMIT}" stroke-width="0.35"{dash}/>'
         )
-        parts.extend(_limit_label(frame, x1, y1, f"limit {_signed(limit_mv_per_h)} mV/h"))
+        key.append((f"limit {_signed(limit_mv_per_h)} mV/h", LIMIT, dash))
+    # the labels go in a key in the corner the rest's voltage leaves free (a falling voltage
+    # ends low: the top right), not at the lines' ends, where the noisy trace runs
+    parts.extend(_key(frame, key, top=rest.slope_mv_per_h <= 0.0))
     parts.append("</svg>")
     return "\n".join(parts)
+
+
+def _key(frame: Frame, entries: list[tuple[str, str, str]], *, top: bool) -> list[str]:
+    """Each (text, colour, dash) as a short line and its words, right-aligned in a corner."""
+    right = frame.left + frame.width - 1.0
+    step = FONT_MM + 1.0
+    first = frame.top + FONT_MM + 1.0 if top else frame.top + frame.height - 1.2 - (len(entries) - 1) * step
+    parts = []
+    for i, (body, colour, dash) in enumerate(entries):
+        y = first + i * step
+        parts.append(f'<path class="key" d="M{n(right - 5.0)} {n(y - FONT_MM * 0.35)}h5" stroke="{colour}" '
+                     f'stroke-width="0.5"{dash}/>')
+        parts.extend(_limit_label(frame, right - 6.0, y + 0.8, body, colour))
+    return parts
 
 
 def temperature_svg(
