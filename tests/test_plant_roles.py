@@ -76,6 +76,17 @@ def test_the_documented_roles_feed_a_station_and_hold_it_to_its_own_columns(
     assert "rows of test-station to be forwarded again" in capsys.readouterr().out
     _feed(ledger, line1, "line-1")
     assert_whole_and_once(ledger, owner, "line-1")
+    # a station's role reads the plant, but a decision it makes is not recorded
+    from pipeline.judge.cellverdict import CellDecision
+    from pipeline.plant.cells import PlantCell, record_decision
+
+    with psycopg.connect(line1, autocommit=True) as conn:
+        sha = conn.execute("SELECT sha256 FROM formgate.rule_texts").fetchone()[0]  # type: ignore[index]
+        made, new = record_decision(conn, PlantCell("LOT-A", "F-3", (), (), ()),
+                                    CellDecision("fail", ("x",), (), ()), sha, decided_by="line-1",
+                                    now=datetime.datetime.now(datetime.UTC))
+    assert (made.id, made.decided_by, new) == (
+        0, "line-1 (not recorded: this role may not record plant decisions)", True)
     anna = f"postgresql://quality_anna@127.0.0.1:{plant_server.port}/formgate"
     assert main(["plant", "find", "F-3", "--database", anna]) == 0
     assert "station line-1  lot LOT-A  cell F-3  fail" in capsys.readouterr().out

@@ -139,7 +139,7 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
                 print("  plant decision: none (every record is at one station, which decides it)")
                 continue
             decision, new = made
-            print(f"  plant decision{' (new)' if new else ''}: {decision.verdict}"
+            print(f"  plant decision{' (new)' if new and decision.id else ''}: {decision.verdict}"
                   + (f": {decision.reason}" if decision.reason else "")
                   + (f"  hazard: {', '.join(decision.hazards)}" if decision.hazards else ""))
             print(f"    over {', '.join(decision.stations)}, rule set {decision.rule_set_sha256[:16]}, "

@@ -272,7 +272,29 @@ def record_decision(
     decided_by: str,
     now: datetime.datetime,
 ) -> tuple[PlantDecision, bool]:
-    """Record the plant's decision on ``cell`` unless its latest says the same; (it, new)."""
+    """Record the plant's decision on ``cell`` unless its latest says the same; (it, new).
+
+    A role that may read the plant but not record its decisions (a station's own) gets the
+    decision as made now, unrecorded (id 0, and ``decided_by`` says so).
+    """
+    try:
+        return _record_decision(conn, cell, decision, rule_set_sha256, decided_by=decided_by,
+                                now=now)
+    except psycopg.errors.InsufficientPrivilege:
+        return PlantDecision(0, decision.verdict, decision.reason, decision.hazards, cell.stations,
+                             rule_set_sha256, f"{decided_by} (not recorded: this role may not "
+                             "record plant decisions)", now), True
+
+
+def _record_decision(
+    conn: Conn,
+    cell: PlantCell,
+    decision: CellDecision,
+    rule_set_sha256: str,
+    *,
+    decided_by: str,
+    now: datetime.datetime,
+) -> tuple[PlantDecision, bool]:
     with conn.transaction():
         # one decider at a time per cell: two commands at once record one decision
         conn.execute("SELECT pg_advisory_xact_lock(hashtext(%s))", (f"{cell.lot}\n{cell.cell_id}",))
