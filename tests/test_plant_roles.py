@@ -78,13 +78,14 @@ def test_the_documented_roles_feed_a_station_and_hold_it_to_its_own_columns(
     assert_whole_and_once(ledger, owner, "line-1")
     # a station's role reads the plant, but a decision it makes is not recorded
     from pipeline.judge.cellverdict import CellDecision
-    from pipeline.plant.cells import PlantCell, record_decision
+    from pipeline.plant.cells import PlantCell, latest_plant_review, record_decision
 
     with psycopg.connect(line1, autocommit=True) as conn:
         sha = conn.execute("SELECT sha256 FROM formgate.rule_texts").fetchone()[0]  # type: ignore[index]
         made, new = record_decision(conn, PlantCell("LOT-A", "F-3", (), (), ()),
                                     CellDecision("fail", ("x",), (), ()), sha, decided_by="line-1",
                                     now=datetime.datetime.now(datetime.UTC))
+        assert latest_plant_review(conn, "LOT-A", "F-3") is None  # it may not read them
     assert (made.id, made.decided_by, new) == (
         0, "line-1 (not recorded: this role may not record plant decisions)", True)
     anna = f"postgresql://quality_anna@127.0.0.1:{plant_server.port}/formgate"

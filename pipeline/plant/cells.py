@@ -249,18 +249,26 @@ def latest_plant_decision(conn: Conn, lot: str, cell_id: str) -> PlantDecision |
 
 
 def latest_plant_review(conn: Conn, lot: str, cell_id: str) -> Reviewed | None:
-    """The cell's latest review made in the plant, with the plant decision it gave, or None."""
-    row = conn.execute(
-        f"SELECT v.action, v.reviewer, v.reason, v.stage, v.accepts, v.seen, d.verdict, d.reason, "
-        f"d.hazards FROM {SCHEMA}.plant_reviews v JOIN {SCHEMA}.plant_decisions d "
-        f"ON d.review_id = v.id WHERE v.lot = %s AND v.cell_id = %s ORDER BY v.id DESC LIMIT 1",
-        (lot, cell_id),
-    ).fetchone()
+    """The cell's latest review made in the plant, with the plant decision it gave, or None
+    (also for a role that may not read the plant's reviews: a station's own)."""
+    try:
+        row = _latest_plant_review_row(conn, lot, cell_id)
+    except psycopg.errors.InsufficientPrivilege:
+        return None
     if row is None:
         return None
     asked = Asked(row[0], row[1], row[2], row[3], tuple(row[4]))
     seen = frozenset((str(name), str(sha)) for name, sha in row[5])
     return Reviewed(asked, Decided(row[6], row[7], tuple(row[8])), seen)
+
+
+def _latest_plant_review_row(conn: Conn, lot: str, cell_id: str) -> tuple[Any, ...] | None:
+    return conn.execute(
+        f"SELECT v.action, v.reviewer, v.reason, v.stage, v.accepts, v.seen, d.verdict, d.reason, "
+        f"d.hazards FROM {SCHEMA}.plant_reviews v JOIN {SCHEMA}.plant_decisions d "
+        f"ON d.review_id = v.id WHERE v.lot = %s AND v.cell_id = %s ORDER BY v.id DESC LIMIT 1",
+        (lot, cell_id),
+    ).fetchone()
 
 
 def record_decision(
