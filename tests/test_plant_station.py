@@ -110,3 +110,30 @@ def _forwarded(url: str) -> int:
             return int(conn.execute("SELECT count(*) FROM formgate.results").fetchone()[0])  # type: ignore[index]
     except psycopg.Error:
         return 0
+
+
+def test_two_stations_through_a_database_killed_mid_burst_each_end_with_exactly_their_rows(
+    tmp_path: Path, plant_server: PlantServer
+) -> None:
+    url = plant_server.new_database()
+    a = make_station(tmp_path / "a", station_toml() + _plant(url) + "batch_rows = 10\n")
+    b = make_station(tmp_path / "b", station_toml() + _plant(url).replace("hall-a", "hall-b")
+                     + "batch_rows = 10\n")
+    files = 10
+    with running(a), running(b):
+        for n in range(files // 2):
+            drop(a.inboxes[0].folder, f"a{n}.csv", cycle_file(f"A-{n}", seed=n))
+            drop(b.inboxes[0].folder, f"b{n}.csv", cycle_file(f"B-{n}", seed=100 + n))
+        wait_until(lambda: _forwarded(url) > 0, what="the first rows in the plant")
+        plant_server.stop(crash=True)
+        try:
+            for n in range(files // 2, files):
+                drop(a.inboxes[0].folder, f"a{n}.csv", cycle_file(f"A-{n}", seed=n))
+                drop(b.inboxes[0].folder, f"b{n}.csv", cycle_file(f"B-{n}", seed=100 + n))
+            wait_until(lambda: settled(a, files) and settled(b, files),
+                       what="both bursts judged without the plant")
+        finally:
+            plant_server.start()
+        wait_until(lambda: all(caught_up(s.ledger) and same_rows(s.ledger, url, name)
+                               for s, name in ((a, "hall-a"), (b, "hall-b"))),
+                   timeout_s=120, what="both feeds to catch up after the restart")
