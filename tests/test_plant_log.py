@@ -84,3 +84,16 @@ def test_every_ledger_table_and_column_is_forwarded_to_the_plant_or_kept_at_the_
     for table, spec in fed.items():
         assert spec.names == columns[table], f"{table}: a column is not forwarded to the plant"
     assert [(t, k) for t, k in FED_TABLES] == [(f.table, f.key) for f in FED]
+
+
+def test_status_says_a_feed_that_never_ran_has_not_started(tmp_path: Path) -> None:
+    from pipeline.plant.feed import status_line
+    from pipeline.plant.forward import start_log
+
+    with Ledger(tmp_path / "ledger.sqlite", now=T0) as ledger:
+        _claim(ledger, 1)
+        assert status_line(ledger, "db:5432/plant") == (
+            "plant feed: not started yet (db:5432/plant; the running station starts it)")
+        start_log(ledger, now=T0)
+        assert status_line(ledger, "db:5432/plant") == "plant feed: 1 row behind (db:5432/plant)"
+

@@ -32,6 +32,7 @@ from pathlib import Path
 import psycopg
 
 from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.plantlog import PlantLog
 from pipeline.plant.connect import PlantTarget, connect
 from pipeline.plant.forward import ChangedRow, behind, forward_batch, register, start_log
 from pipeline.plant.schema import PlantError, check_schema, migrate
@@ -85,6 +86,8 @@ def status_line(ledger: Ledger, shown_db: str) -> str:
     """The line `formgate status` shows for the feed, e.g.
     'plant feed: 1,204 rows behind since 2026-03-02T08:00:00+00:00 (…)'."""
     state, rows = read_state(ledger), behind(ledger)
+    if PlantLog(ledger.db).started() is None and not state.stopped:
+        return f"plant feed: not started yet ({shown_db}; the running station starts it)"
     lag = f"{rows:,} row{'' if rows == 1 else 's'} behind"
     if state.stopped:
         return f"plant feed: stopped, {lag}: {state.stopped}"
