@@ -280,3 +280,24 @@ def test_a_regrade_judges_again_with_the_class_the_record_was_judged_with() -> N
     digests = {setting_digest("a.csv", None, None, 1, None, a)
                for a in (None, DEFAULT_ACCURACY, AccuracyClass(voltage_mv=2.0))}
     assert len(digests) == 3
+
+
+def test_the_k_value_carries_the_resolution_of_its_two_readings_over_the_days_between() -> None:
+    # JCGM 100:2008 F.2.2.1: a reading written to a resolution delta carries delta / sqrt(12);
+    # the meter's gain and offset cancel in the difference of its two readings (5.2.2).
+    from datetime import timedelta
+
+    from pipeline.judge.aging import K_VALUE, aging_uncertainty, aging_values
+    from pipeline.read.readings import Reading
+
+    start = datetime.datetime(2026, 3, 2, 8, tzinfo=datetime.UTC)
+    readings = [
+        Reading("C1", "L1", None, start, 3.6512, None, None, line=2),
+        Reading("C1", "L1", None, start + timedelta(days=7), 3.6470, None, None, line=3),
+    ]
+    rule_set = shipped().rule_sets[0]
+    values, k, _ = aging_values(readings, rule_set)
+    found = aging_uncertainty(readings, values, k)
+    assert found[K_VALUE] == pytest.approx(2 * math.sqrt(2) * 0.1 / math.sqrt(12) / 7)
+    assert found["aging_ocv_V"] > 2 * 0.001 / math.sqrt(3)  # at least the class's offset
+    assert "aging_acir_mOhm" not in found

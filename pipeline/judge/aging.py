@@ -9,12 +9,13 @@ on it then holds the cell with that reason: it is never counted as in window.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 from pipeline.judge.evaluate import evaluate
 from pipeline.judge.kvalue import KValue, NotMade, k_value
-from pipeline.model import CellMetrics, CellType, Note, RuleSet, Verdict
+from pipeline.model import DEFAULT_ACCURACY, CellMetrics, CellType, Note, RuleSet, Verdict
 from pipeline.read.readings import Reading
 
 K_VALUE = "k_value_mV_per_day"
@@ -56,11 +57,50 @@ def aging_values(
     return values, k, notes
 
 
+def reading_resolution(volts: float) -> float:
+    """The resolution an OCV reading was written to: one unit of its last decimal (V).
+
+    >>> reading_resolution(3.6512), reading_resolution(3.65)
+    (0.0001, 0.01)
+    """
+    text = repr(float(volts))
+    decimals = len(text.split(".", 1)[1]) if "." in text and "e" not in text else 6
+    return 10.0 ** -min(decimals, 6)
+
+
+def aging_uncertainty(
+    readings: Sequence[Reading], values: dict[str, float | None], k: KValue | NotMade
+) -> dict[str, float]:
+    """Expanded uncertainties (k = 2) of the aging metrics (JCGM 100:2008).
+
+    The K-value is a difference of two readings of one meter: its gain and offset cancel
+    (JCGM 100:2008 5.2.2) and what stays is each reading's resolution, a rectangular
+    half-step (JCGM 100:2008 F.2.2.1), over the days between them. The last OCV carries
+    the default voltage class (common practice) and its resolution. The AC resistance has
+    none: the meter's class is not declared anywhere formgate reads.
+    """
+    out: dict[str, float] = {}
+    # one meter wrote them all: its resolution is the finest step any of them shows (a
+    # reading that ends in zeros, 3.6470, reads back as 3.647)
+    step_v = min((reading_resolution(r.ocv_v) for r in readings), default=0.0)
+    if isinstance(k, KValue) and k.days > 0:
+        u_mv = math.sqrt(2.0) * step_v / math.sqrt(12.0) * 1000.0
+        out[K_VALUE] = 2.0 * u_mv / k.days
+    last_ocv = values.get("aging_ocv_V")
+    if last_ocv is not None and readings:
+        cls = DEFAULT_ACCURACY
+        gain = cls.voltage_pct_of_reading / 100.0 / math.sqrt(3.0)
+        offset = cls.voltage_mv / 1000.0 / math.sqrt(3.0)
+        step = step_v / math.sqrt(12.0)
+        out["aging_ocv_V"] = 2.0 * math.sqrt((last_ocv * gain) ** 2 + offset**2 + step**2)
+    return out
+
+
 def judge_aging(readings: Sequence[Reading], rule_set: RuleSet, cell_type: CellType) -> AgingResult:
     """Judge one cell's aging readings against the rule set's checks on aging metrics."""
     if not readings:
         raise ValueError("a cell's aging stage needs at least one reading")
     values, k, notes = aging_values(readings, rule_set)
-    metrics = CellMetrics(values, (), (), ())
+    metrics = CellMetrics(values, (), (), (), uncertainty=aging_uncertainty(readings, values, k))
     verdict = evaluate(rule_set, cell_type, metrics, notes, stages=("aging",))
     return AgingResult(readings[0].cell_id, values, k, verdict, notes)

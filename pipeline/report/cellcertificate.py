@@ -12,7 +12,7 @@ from __future__ import annotations
 import datetime
 import math
 
-from pipeline.judge.quantities import DASH, format_value, significant
+from pipeline.judge.quantities import DASH, format_uncertain, format_value, significant
 from pipeline.model import Hazard, only_waiting
 from pipeline.report import hazards, verification
 from pipeline.report.cellsummary import (
@@ -113,7 +113,7 @@ def _check_row(c: CheckEntry) -> dict[str, str]:
     return {
         "id": c.rule_id,
         "metric": c.metric,
-        "value": format_value(c.metric, c.value),
+        "value": format_uncertain(c.metric, c.value, c.uncertainty),
         "window": _window(c.metric, c.low, c.high),
         "severity": c.severity,
         "outcome": OUTCOME_WORDS.get(c.outcome, c.outcome),

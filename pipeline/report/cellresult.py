@@ -75,6 +75,7 @@ def _check(c: CheckEntry) -> dict[str, Any]:
         "high": json_number(c.high),
         "severity": c.severity,
         "outcome": c.outcome,
+        "U": json_number(c.uncertainty),
     }
 
 
@@ -207,6 +208,7 @@ def schema() -> dict[str, Any]:
         "high": _NUM,
         "severity": {"enum": ["reject", "review"]},
         "outcome": {"enum": list(OUTCOMES)},
+        "U": {"type": ["number", "null"], "minimum": 0},
     })
     document = _obj({
         "schema_version": {"const": SCHEMA_VERSION},

@@ -105,6 +105,7 @@ class CheckEntry:
     high: float | None
     severity: str  # reject, review
     outcome: str  # in_window, out_of_window, not_judged, skipped
+    uncertainty: float | None = None  # the value's expanded uncertainty U (k = 2), if known
 
 
 @dataclass(frozen=True, slots=True)

@@ -159,7 +159,7 @@ def _aging(readings: list[StoredReading], rule_set: RuleSet, cell_type: CellType
         ),
         checks=tuple(
             CheckEntry(c.rule_id, c.metric, c.value, c.window.low, c.window.high,
-                       c.severity.value, c.outcome.value)
+                       c.severity.value, c.outcome.value, c.uncertainty)
             for c in result.verdict.checks
         ),
     )
