@@ -96,10 +96,10 @@ class PlantDecision:
 
 
 _RECORDS = f"""
-SELECT r.station_id, r.id, r.result_json, r.verdict, r.rule_set_sha256, r.analysed_at,
+SELECT r.cell_id, r.station_id, r.id, r.result_json, r.verdict, r.rule_set_sha256, r.analysed_at,
        i.name, i.sha256
 FROM {SCHEMA}.results r JOIN {SCHEMA}.inputs i ON i.station_id = r.station_id AND i.id = r.input_id
-WHERE r.lot = %s AND r.cell_id = %s AND r.verdict <> 'error'
+WHERE r.lot = %s {{cell}} AND r.verdict <> 'error'
   AND i.state IN ('published', 'archived')
   AND NOT EXISTS (SELECT 1 FROM {SCHEMA}.results n
                   WHERE n.station_id = r.station_id AND n.input_id = r.input_id AND n.id > r.id)
@@ -110,35 +110,49 @@ _READINGS = f"""
 SELECT g.station_id, i.name, i.sha256, g.cell_id, g.lot, g.cell_type, g.at, g.ocv_v, g.acir_mohm,
        g.temperature_c, g.line
 FROM {SCHEMA}.readings g JOIN {SCHEMA}.inputs i ON i.station_id = g.station_id AND i.id = g.input_id
-WHERE g.lot = %s AND g.cell_id = %s AND i.state <> 'quarantined'
+WHERE g.lot = %s {{cell}} AND i.state <> 'quarantined'
 ORDER BY g.at, g.station_id, g.id
 """
 
 _DECISIONS = f"""
-SELECT DISTINCT ON (station_id) station_id, verdict, reason, hazards, cause, decided_at
-FROM {SCHEMA}.decisions WHERE lot = %s AND cell_id = %s ORDER BY station_id, id DESC
+SELECT DISTINCT ON (cell_id, station_id) cell_id, station_id, verdict, reason, hazards, cause,
+       decided_at
+FROM {SCHEMA}.decisions WHERE lot = %s {{cell}} ORDER BY cell_id, station_id, id DESC
 """
+
+
+def fetch_cells(conn: Conn, lot: str, cell_id: str | None = None) -> dict[str, PlantCell]:
+    """Every cell of ``lot`` (or the one cell) as the plant holds it, in three queries: its
+    records, readings and station decisions."""
+    args: tuple[str, ...] = (lot,) if cell_id is None else (lot, cell_id)
+
+    def sql(text: str, alias: str) -> str:
+        return text.format(cell="" if cell_id is None else f"AND {alias}cell_id = %s")
+
+    records: dict[str, dict[str, PlantRecord]] = {}
+    for row in conn.execute(sql(_RECORDS, "r."), args):
+        record = PlantRecord(row[1], int(row[2]), row[3], row[4], row[5], row[6], row[7], row[8])
+        records.setdefault(row[0], {})[record.input_sha256] = record  # same bytes count once
+    readings: dict[str, dict[tuple[str, int], tuple[str, str, str, Reading]]] = {}
+    for row in conn.execute(sql(_READINGS, "g."), args):
+        reading = Reading(row[3], row[4], row[5], row[6], float(row[7]), row[8], row[9], int(row[10]))
+        readings.setdefault(row[3], {}).setdefault((row[2], reading.line),
+                                                   (row[0], row[1], row[2], reading))
+    decisions: dict[str, list[StationDecision]] = {}
+    for r in conn.execute(sql(_DECISIONS, ""), args):
+        decisions.setdefault(r[0], []).append(StationDecision(r[1], r[2], r[3], tuple(r[4]), r[5], r[6]))
+    out = {}
+    for cell in sorted(set(records) | set(readings) | set(decisions)):
+        kept = sorted(records.get(cell, {}).values(),
+                      key=lambda r: (r.analysed_at, r.station_id, r.result_id))
+        out[cell] = PlantCell(lot, cell, tuple(kept), tuple(readings.get(cell, {}).values()),
+                              tuple(decisions.get(cell, ())))
+    return out
 
 
 def fetch_cell(conn: Conn, lot: str, cell_id: str) -> PlantCell:
     """The cell's records, readings and station decisions as the plant holds them."""
-    records: dict[str, PlantRecord] = {}
-    for row in conn.execute(_RECORDS, (lot, cell_id)):
-        record = PlantRecord(row[0], int(row[1]), row[2], row[3], row[4], row[5], row[6], row[7])
-        records[record.input_sha256] = record  # the same bytes at two stations count once
-    readings: dict[tuple[str, int], tuple[str, str, str, Reading]] = {}
-    for row in conn.execute(_READINGS, (lot, cell_id)):
-        reading = Reading(row[3], row[4], row[5], row[6], float(row[7]), row[8], row[9], int(row[10]))
-        readings.setdefault((row[2], reading.line), (row[0], row[1], row[2], reading))
-    decisions = tuple(
-        StationDecision(r[0], r[1], r[2], tuple(r[3]), r[4], r[5])
-        for r in conn.execute(_DECISIONS, (lot, cell_id))
-    )
-    return PlantCell(
-        lot, cell_id,
-        tuple(sorted(records.values(), key=lambda r: (r.analysed_at, r.station_id, r.result_id))),
-        tuple(readings.values()), decisions,
-    )
+    return fetch_cells(conn, lot, cell_id).get(cell_id) or PlantCell(lot, cell_id, (), (), ())
 
 
 def lots_of_cell(conn: Conn, cell_id: str) -> list[str]:

@@ -26,7 +26,7 @@ from pipeline.plant.cells import (
     across_stations,
     cell_as_it_stands,
     decide_in_plant,
-    fetch_cell,
+    fetch_cells,
     latest_rule_set,
     rule_book,
 )
@@ -49,16 +49,6 @@ class LotCell:
     decided_by: str  # "station NAME" or "plant"
     last_record_at: datetime.datetime | None
     values: Mapping[str, float | None]
-
-
-def cells_of_lot(conn: Conn, lot: str) -> list[str]:
-    rows = conn.execute(
-        f"SELECT cell_id FROM {SCHEMA}.results WHERE lot = %s UNION "
-        f"SELECT cell_id FROM {SCHEMA}.readings WHERE lot = %s UNION "
-        f"SELECT cell_id FROM {SCHEMA}.decisions WHERE lot = %s ORDER BY 1",
-        (lot, lot, lot),
-    ).fetchall()
-    return [str(r[0]) for r in rows]
 
 
 def lot_names(conn: Conn) -> list[str]:
@@ -112,7 +102,7 @@ def lot_cells(
 ) -> tuple[list[LotCell], list[PlantCell]]:
     """Every cell of ``lot`` at every station, as the plant shows it, and what it holds of each."""
     books = Books(conn)
-    held = [fetch_cell(conn, lot, c) for c in cells_of_lot(conn, lot)]
+    held = list(fetch_cells(conn, lot).values())
     if not held:
         names = lot_names(conn)
         from pipeline.rulebook.tables import did_you_mean
