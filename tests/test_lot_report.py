@@ -7,6 +7,7 @@ Statistics shown on the page are checked against numpy computed here independent
 from __future__ import annotations
 
 import csv
+import dataclasses
 import datetime
 import doctest
 import io
@@ -259,8 +260,9 @@ def _rows(data: LotReportInput) -> list[dict[str, str]]:
 def test_export_has_one_row_per_cell_with_exact_values(lot: LotReportInput) -> None:
     rows = _rows(lot)
     assert [r["cell_id"] for r in rows] == sorted(c.cell_id for c in lot.cells)
-    assert list(rows[0])[:13] == ["lot", "cell_id", "cell_type", "stage", "channel", "station", "verdict",
-                                  "grade", "reason", "hazards", CAP, DCIR, DRIFT]
+    assert list(rows[0])[:16] == ["lot", "cell_id", "cell_type", "stage", "channel", "station", "verdict",
+                                  "grade", "reason", "hazards", CAP, f"{CAP}_U", DCIR, f"{DCIR}_U",
+                                  DRIFT, f"{DRIFT}_U"]
     assert list(rows[0])[-2:] == ["records", "decided_at"]
     by_id = {c.cell_id: c for c in lot.cells}
     for row in rows:
@@ -297,7 +299,8 @@ def test_export_guards_formula_like_text_and_keeps_extra_metrics_sorted() -> Non
                              "cells": base.cells + odd})
     rows = _rows(data)
     header = list(rows[0])
-    assert header[10:15] == [CAP, DCIR, DRIFT, "alpha_metric", "zeta_metric"]
+    assert header[10:20:2] == [CAP, DCIR, DRIFT, "alpha_metric", "zeta_metric"]
+    assert header[11:21:2] == [f"{m}_U" for m in header[10:20:2]]  # each value's U beside it
     by_id = {r["cell_id"]: r for r in rows}
     assert "'=1+1" in by_id and "'@SUM(A1)" in by_id
     assert by_id["'=1+1"]["reason"] == "'-capacity low"
@@ -346,3 +349,14 @@ def test_a_ten_thousand_cell_lot_renders_with_capped_tables() -> None:
     assert "and 200 more: see the export" in text
     assert len(PdfReader(io.BytesIO(pdf)).pages) < 15
     assert len(_rows(data)) == 10_000
+
+
+def test_export_gives_each_value_its_uncertainty_rounded_up_at_the_metrics_resolution(
+    lot: LotReportInput,
+) -> None:
+    cell = lot.cells[0]
+    sure = dataclasses.replace(cell, uncertainty={CAP: 0.0081234})
+    data = dataclasses.replace(lot, cells=(sure,))
+    (row,) = _rows(data)
+    assert row[f"{CAP}_U"] == "0.00813"  # never rounded down: a value is not surer than it is
+    assert row[f"{DCIR}_U"] == ""  # none recorded

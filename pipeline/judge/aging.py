@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 from pipeline.judge.evaluate import evaluate
 from pipeline.judge.kvalue import KValue, NotMade, k_value
@@ -30,6 +30,7 @@ class AgingResult:
     k: KValue | NotMade
     verdict: Verdict
     notes: tuple[Note, ...]
+    uncertainty: dict[str, float] = field(default_factory=dict)  # U (k = 2) by metric
 
 
 def aging_values(
@@ -101,6 +102,7 @@ def judge_aging(readings: Sequence[Reading], rule_set: RuleSet, cell_type: CellT
     if not readings:
         raise ValueError("a cell's aging stage needs at least one reading")
     values, k, notes = aging_values(readings, rule_set)
-    metrics = CellMetrics(values, (), (), (), uncertainty=aging_uncertainty(readings, values, k))
+    uncertainty = aging_uncertainty(readings, values, k)
+    metrics = CellMetrics(values, (), (), (), uncertainty=uncertainty)
     verdict = evaluate(rule_set, cell_type, metrics, notes, stages=("aging",))
-    return AgingResult(readings[0].cell_id, values, k, verdict, notes)
+    return AgingResult(readings[0].cell_id, values, k, verdict, notes, uncertainty)

@@ -64,6 +64,7 @@ class ClosedCell:
     decided_at: datetime.datetime | None
     # (channel, station) of each cycle-file record, as the file's metadata names them ("" if not)
     places: tuple[tuple[str, str], ...] = ()
+    uncertainty: Mapping[str, float] = dataclasses.field(default_factory=dict)  # U by metric
 
     @property
     def changed(self) -> bool:
@@ -141,6 +142,7 @@ class CellStages:
     files: tuple[tuple[str, str, str], ...]  # (stage words, file name, sha256)
     decided_at: datetime.datetime | None
     places: tuple[tuple[str, str], ...] = ()  # (channel, station) per cycle-file record
+    uncertainty: Mapping[str, float] = dataclasses.field(default_factory=dict)  # U by metric
 
 
 _WORST_FIRST = {"fail": 3, "error": 3, "hold": 2, "pass": 1}
@@ -187,6 +189,7 @@ def cell_stages(
                 )
     records: list[StageRecord] = []
     values: dict[str, float | None] = {}
+    uncertainty: dict[str, float] = {}
     files: list[tuple[str, str, str]] = []
     times = []
     places: list[tuple[str, str]] = []
@@ -195,6 +198,12 @@ def cell_stages(
         base = _cycle_record(doc)
         records.append(dataclasses.replace(base, stages=tuple(stages)))
         values.update({k: v for k, v in doc["metrics"].items() if v is not None or k not in values})
+        # each value's expanded uncertainty, from the record it came from (none in results
+        # written before uncertainties were recorded)
+        uncertainty.update({
+            k: float(u) for k, u in (doc.get("metrics_U") or {}).items()
+            if u is not None and doc["metrics"].get(k) is not None
+        })
         files.append((" and ".join(stages), base.source, base.sha256))
         where = doc.get("cell", {})
         places.append((str(where.get("channel") or ""), str(where.get("station") or "")))
@@ -220,9 +229,12 @@ def cell_stages(
                         checks_out=out)
         )
         values.update(aging.values)
+        uncertainty.update(aging.uncertainty)
         files += [("aging", name, sha) for name, sha in sources]
+    if "cycle_count" in values:
+        uncertainty.pop("cycle_count", None)
     return CellStages(tuple(records), values, tuple(files), max(times) if times else None,
-                      tuple(places))
+                      tuple(places), uncertainty)
 
 
 @dataclass(frozen=True, slots=True)
@@ -350,7 +362,7 @@ def close_lot(
             grade = screened.grades.get(cell) if final.verdict == "pass" else None
         cells.append(
             ClosedCell(cell, types[cell], decision, final, grade, st.values, st.files, st.decided_at,
-                       st.places)
+                       st.places, st.uncertainty)
         )
     # the counts, the yield and the grades as decided at the close (outliers held, ungraded);
     # the limits, outliers, spreads and Cpk as the screens were evaluated

@@ -58,4 +58,27 @@ def round_to_resolution(metric: str, value: float | None) -> float | None:
     return rounded + 0.0  # -0.0 + 0.0 is 0.0
 
 
-__all__ = ["DECIMALS_BY_UNIT", "export_decimals", "round_to_resolution"]
+# The column of a metric's expanded uncertainty U (k = 2) beside the metric's own.
+U_SUFFIX: Final = "_U"
+
+
+def round_uncertainty(metric: str, u: float | None) -> float | None:
+    """An expanded uncertainty at the metric's resolution, rounded up, never to zero: a
+    reader must not take a value for surer than it is (JCGM 100:2008 7.2.6). None: none.
+
+    >>> round_uncertainty("grading_capacity_Ah", 0.0081234), round_uncertainty("dcir_mOhm", 1e-9)
+    (0.00813, 0.001)
+    """
+    if u is None or not math.isfinite(u) or u < 0:
+        return None
+    scale = 10.0 ** export_decimals(metric)
+    return max(math.ceil(round(u * scale, 9)), 1) / scale
+
+
+__all__ = [
+    "DECIMALS_BY_UNIT",
+    "U_SUFFIX",
+    "export_decimals",
+    "round_to_resolution",
+    "round_uncertainty",
+]

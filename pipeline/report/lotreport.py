@@ -28,7 +28,7 @@ import functools
 import io
 from collections import Counter
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Final
 
 import jinja2
@@ -48,7 +48,7 @@ from pipeline.judge.quantities import DASH, format_spread, format_value, precisi
 from pipeline.model import Hazard, Window, frozen_mapping
 from pipeline.report import hazards, pdf
 from pipeline.report.certificate import HAZARD_WORDS, TEMPLATES_DIR, format_time
-from pipeline.report.exportvalues import round_to_resolution
+from pipeline.report.exportvalues import U_SUFFIX, round_to_resolution, round_uncertainty
 from pipeline.report.lotcharts import (
     by_channel_rows,
     failures_by_channel_svg,
@@ -103,9 +103,11 @@ class LotCell:
     decided_at: datetime.datetime
     cell_type: str = ""
     places: tuple[tuple[str, str], ...] = ()
+    uncertainty: Mapping[str, float] = field(default_factory=dict)  # U (k = 2) by metric
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "values", frozen_mapping(dict(self.values)))
+        object.__setattr__(self, "uncertainty", frozen_mapping(dict(self.uncertainty)))
         _aware(self.decided_at, f"cell {self.cell_id}: decided_at")
 
 
@@ -437,11 +439,19 @@ def export_table(data: LotReportInput) -> tuple[list[str], list[list[str | float
             cell.grade or "",
             cell.reason,
             ";".join(cell.hazards),
-            *(round_to_resolution(m, cell.values.get(m)) for m in metrics),
+            *(
+                v
+                for m in metrics
+                for v in (
+                    round_to_resolution(m, cell.values.get(m)),
+                    round_uncertainty(m, cell.uncertainty.get(m)),
+                )
+            ),
             records,
             cell.decided_at.isoformat(),
         ])
-    return [*EXPORT_FIRST, *metrics, *EXPORT_LAST], rows
+    columns = [name for m in metrics for name in (m, f"{m}{U_SUFFIX}")]
+    return [*EXPORT_FIRST, *columns, *EXPORT_LAST], rows
 
 
 def _csv_field(value: str | float | None, column: str) -> str:

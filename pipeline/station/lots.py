@@ -143,6 +143,7 @@ def report_input(
                 decided_at(c),
                 c.cell_type,
                 c.places,
+                c.uncertainty,
             )
             for c in closed.cells
         ) + not_judged,
