@@ -223,3 +223,24 @@ def test_a_channel_alert_is_forwarded_and_its_clearing_follows(
         assert conn.execute("SELECT channel, cleared_by FROM formgate.channel_alerts").fetchall() == [
             ("CH-07", "Anna")]
 
+
+
+def test_a_slow_database_pauses_the_feed_like_one_that_is_down(
+    judged_ledger: Path, plant_url: str, tmp_path: Path, feeds: list[tuple[PlantFeed, threading.Event]]
+) -> None:
+    ledger = copy_ledger(judged_ledger, tmp_path / "a")
+    alerts: Alerts = []
+    start(feeds, ledger, plant_url, "line-1", alerts)  # its statements are cancelled after 5 s
+    wait_until(lambda: caught_up(ledger), what="the feed to catch up")
+    with psycopg.connect(plant_url) as blocker:
+        # another session holds the table: the feed's next statement waits until cancelled
+        blocker.execute("LOCK TABLE formgate.inputs IN ACCESS EXCLUSIVE MODE")
+        with sqlite3.connect(ledger) as conn:
+            conn.execute("UPDATE inputs SET reason = 'noted while the database is slow' WHERE id = 1")
+        with Ledger(ledger) as kept:
+            wait_until(lambda: read_state(kept).since is not None, what="the feed to give up waiting")
+            assert "QueryCanceled" in read_state(kept).error
+        blocker.rollback()  # the database answers again
+    wait_until(lambda: caught_up(ledger), what="the feed to catch up")
+    assert_whole_and_once(ledger, plant_url, "line-1")
+    assert [s.split(":")[0] for s, _ in alerts] == ["the plant database cannot take this station's rows"]
