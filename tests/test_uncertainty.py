@@ -116,6 +116,12 @@ def test_a_value_just_inside_a_limit_is_held_under_guarded_acceptance_and_passed
     assert "too close to the limit to decide" in check.message and "±" in check.message
     assert "against ≥" in check.message
     assert guarded.verdict.hazards == ()  # held for a person, not failed
+    # the hold letter names the finding the way the certificate does
+    from pipeline.mail.letters import hold_letter
+
+    letter = hold_letter(guarded, "c.pdf", ("quality@example.com",), station="line-1")
+    assert "too close to the limit" in letter.subject and "±" in letter.subject
+    assert "too close to the limit to decide, guarded acceptance" in " ".join(letter.body_text.split())
     # the set's own default reaches the checks that name none
     set_wide = RuleBook((dataclasses.replace(
         with_rule(rule_set, rule_id, window=window).rule_sets[0], decision=GUARDED_ACCEPTANCE

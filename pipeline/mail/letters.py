@@ -27,7 +27,7 @@ from typing import Literal
 
 from pipeline.errors import FormgateError
 from pipeline.judge.evaluate import decision_line
-from pipeline.judge.quantities import format_value, format_window, precision
+from pipeline.judge.quantities import format_uncertain, format_value, format_window, precision
 from pipeline.model import CellResult, CheckResult, Hazard, Outcome, SourceRef, VerdictKind
 from pipeline.report.hazards import CAUTIONS, DATA_CHECK_NOTICE, HANDLING, general_caution
 
@@ -220,9 +220,15 @@ def _fields(rows: Sequence[tuple[str, str]], width: int) -> str:
 def _check_line(check: CheckResult) -> str:
     # value and window written as the certificate and the reasons write them (quantities.py)
     extra = precision(check.metric, check.value, check.window)
-    value = "not measured" if check.value is None else format_value(check.metric, check.value, extra)
+    value = (
+        "not measured" if check.value is None
+        else format_uncertain(check.metric, check.value, check.uncertainty, extra)
+    )
     window = format_window(check.metric, check.window, extra)
-    words = "out of window" if check.outcome is Outcome.OUT_OF_WINDOW else "not judged"
+    if check.too_close:
+        words = f"too close to the limit to decide, {check.decision}"
+    else:
+        words = "out of window" if check.outcome is Outcome.OUT_OF_WINDOW else "not judged"
     hazard = f", hazard: {CAUTIONS[check.hazard].title.lower()}" if check.hazard else ""
     return _item(
         f"{check.rule_id}: {check.metric} = {value}, window {window}"
