@@ -169,11 +169,11 @@ def test_a_review_decides_the_plant_cell_only_while_it_saw_every_file_that_count
         book = rule_book(conn, latest_rule_set(cell) or "")
     files = {(r.input_name, r.input_sha256) for r in cell.records} | {
         (name, sha) for _, name, sha, _ in cell.readings}
-    rejected = Decided("fail", "rejected by Anna: dented can")
-    saw_all = Reviewed(Asked("reject", "Anna", "dented can"), rejected, frozenset(files))
-    saw_one_station = Reviewed(Asked("reject", "Anna", "dented can"), rejected,
+    rejected = Decided("fail", "rejected by quality engineer A: dented can")
+    saw_all = Reviewed(Asked("reject", "quality engineer A", "dented can"), rejected, frozenset(files))
+    saw_one_station = Reviewed(Asked("reject", "quality engineer A", "dented can"), rejected,
                                frozenset(f for f in files if "grading" in f[0]))
-    assert decide_cell(cell, book, [saw_all]).reason == "rejected by Anna: dented can"  # type: ignore[union-attr]
+    assert decide_cell(cell, book, [saw_all]).reason == "rejected by quality engineer A: dented can"  # type: ignore[union-attr]
     assert decide_cell(cell, book, [saw_one_station]).verdict == "pass"  # type: ignore[union-attr]
 
 
@@ -192,23 +192,23 @@ def test_a_person_reviews_a_cell_of_two_stations_in_the_plant(
     assert failed  # the low-capacity cell failed its grading at hall B
     # a concession must name every failed check
     capsys.readouterr()
-    assert main(["plant", "review", "release", LOW.cell_id, "--by", "Anna", "--reason",
+    assert main(["plant", "review", "release", LOW.cell_id, "--by", "quality engineer A", "--reason",
                  "customer concession 14", "--database", url]) == 2
     assert f"cell {LOW.cell_id} failed: it is released only as a concession that names every" in (
         capsys.readouterr().err)
     accepts = [a for c in failed for a in ("--accept", c)]
-    out = _run(capsys, "plant", "review", "release", LOW.cell_id, *accepts, "--by", "Anna",
+    out = _run(capsys, "plant", "review", "release", LOW.cell_id, *accepts, "--by", "quality engineer A",
                "--reason", "customer concession 14", "--database", url)
     assert out.splitlines()[0] == (
-        f"cell {LOW.cell_id}, lot {LOT}: pass: released as a concession by Anna accepting "
+        f"cell {LOW.cell_id}, lot {LOT}: pass: released as a concession by quality engineer A accepting "
         f"{', '.join(failed)}: customer concession 14")
     # the review stands: deciding the cell again keeps it, and the lot counts it as passed
     shown = _run(capsys, "plant", "cell", "show", LOW.cell_id, "--database", url)
-    assert "  plant decision: pass: released as a concession by Anna" in shown
+    assert "  plant decision: pass: released as a concession by quality engineer A" in shown
     lot = _run(capsys, "plant", "lot", "show", LOT, "--database", url)
     assert ": 5 pass, 0 fail, 0 hold; yield 100.0 %" in lot.splitlines()[0]
     # a cell of one station is reviewed at its station
-    assert main(["plant", "review", "reject", OWN.cell_id, "--by", "Anna", "--reason", "x",
+    assert main(["plant", "review", "reject", OWN.cell_id, "--by", "quality engineer A", "--reason", "x",
                  "--database", url]) == 2
     assert "is not decided in the plant: its records are at one station (hall-a)" in capsys.readouterr().err
 

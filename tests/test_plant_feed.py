@@ -215,13 +215,13 @@ def test_a_channel_alert_is_forwarded_and_its_clearing_follows(
     start(feeds, ledger, plant_url, "line-1")
     wait_until(lambda: caught_up(ledger), what="the feed to catch up")
     with Ledger(ledger) as kept:
-        assert kept.channels.clear("test-station", "CH-07", by="Anna", why="probe replaced",
+        assert kept.channels.clear("test-station", "CH-07", by="quality engineer A", why="probe replaced",
                                    now=utc_now())
     wait_until(lambda: caught_up(ledger), what="the clearing to follow")
     assert_whole_and_once(ledger, plant_url, "line-1")
     with psycopg.connect(plant_url) as conn:
         assert conn.execute("SELECT channel, cleared_by FROM formgate.channel_alerts").fetchall() == [
-            ("CH-07", "Anna")]
+            ("CH-07", "quality engineer A")]
 
 
 

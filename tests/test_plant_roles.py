@@ -88,15 +88,15 @@ def test_the_documented_roles_feed_a_station_and_hold_it_to_its_own_columns(
         assert latest_plant_review(conn, "LOT-A", "F-3") is None  # it may not read them
     assert (made.id, made.decided_by, new) == (
         0, "line-1 (not recorded: this role may not record plant decisions)", True)
-    anna = f"postgresql://quality_anna@127.0.0.1:{plant_server.port}/formgate"
-    assert main(["plant", "find", "F-3", "--database", anna]) == 0
+    engineer = f"postgresql://quality_engineer_a@127.0.0.1:{plant_server.port}/formgate"
+    assert main(["plant", "find", "F-3", "--database", engineer]) == 0
     assert "station line-1  lot LOT-A  cell F-3  fail" in capsys.readouterr().out
-    with psycopg.connect(anna, autocommit=True) as conn:
+    with psycopg.connect(engineer, autocommit=True) as conn:
         sha = conn.execute("SELECT sha256 FROM formgate.rule_texts").fetchone()[0]  # type: ignore[index]
         conn.execute(
             "INSERT INTO formgate.plant_decisions (cell_id, lot, verdict, reason, hazards, stations, "
             "basis, rule_set_sha256, decided_by, decided_at) VALUES ('F-3', 'LOT-A', 'fail', 'x', "
-            "'[]', '[]', '[]', %s, 'quality_anna', now())", (sha,))
+            "'[]', '[]', '[]', %s, 'quality_engineer_a', now())", (sha,))
         with pytest.raises(psycopg.errors.InsufficientPrivilege):
             conn.execute("UPDATE formgate.decisions SET verdict = 'pass'")
 
