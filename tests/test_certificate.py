@@ -197,7 +197,7 @@ def test_tables_are_formatted_strings() -> None:
         "label": "P2", "start_pct": "34.0", "end_pct": "62.0", "length_pct": "28.0",
         "length_ah": "5.636", "voltage_v": "3.279",
     }
-    assert context["ica_peaks"] == "3.200 V, 3.275 V, 3.320 V"
+    assert context["ica_peaks"] == "1: 3.200 V, 2: 3.275 V, 3: 3.320 V"  # numbered as on the plot
     assert dict(pair for row in context["traceability"] for pair in row) == {
         "Input file": cases.SOURCE_NAME,
         "Input SHA-256": cases.INPUT_SHA256,
@@ -332,10 +332,12 @@ def test_caption_says_when_only_the_highest_peaks_are_marked() -> None:
     metrics = dataclasses.replace(result.metrics, ica_peaks_v=many)
     context = build_context(dataclasses.replace(result, metrics=metrics))
     assert context["ica_caption"] == (
-        "Incremental capacity dQ/dV; dashed lines mark the 10 highest of the 25 peaks found."
+        "Incremental capacity dQ/dV; dashed lines mark the 10 highest of the 25 peaks found, "
+        "numbered as listed under dQ/dV peaks."
     )
     assert build_context(result)["ica_caption"] == (
-        "Incremental capacity dQ/dV; dashed lines mark the peaks found."
+        "Incremental capacity dQ/dV; dashed lines mark the peaks found, numbered as listed under "
+        "dQ/dV peaks."
     )
 
 

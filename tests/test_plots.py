@@ -244,16 +244,20 @@ def test_ica_plot_axis_starts_at_zero_despite_smoothing_wiggles() -> None:
     assert y_labels[0] == "0"
 
 
-def test_close_peaks_do_not_get_overlapping_labels() -> None:
+def test_close_peaks_are_each_numbered_and_no_numbers_overlap() -> None:
+    """Four peaks, three of them within 0.2 mm: every one gets its number (the voltages are
+    listed by number on the certificate), and no two numbers overlap (one was left out)."""
     v = np.linspace(3.0, 3.4, 81)
     peaks = (3.30, 3.301, 3.302, 3.25)
     root = parse(plots.ica_svg(Curve(v, np.ones_like(v)), peaks, width_mm=86, height_mm=54))
-    labels = [t for t in root.iter(f"{SVG}text")
-              if t.get("fill") == plots.PEAK and t.text.endswith(" V")]
-    shown = {t.text for t in labels}
-    assert "3.250 V" in shown
-    assert len(shown) < len(peaks)  # three peaks within 0.2 mm: not all can be labelled
+    numbers = [t for t in root.iter(f"{SVG}text") if t.get("fill") == plots.PEAK]
+    assert sorted(t.text for t in numbers) == ["1", "2", "3", "4"]
+    boxes = [(float(t.get("x")) - 1.2, float(t.get("x")) + 1.2, float(t.get("y"))) for t in numbers]
+    for i, (a0, a1, ay) in enumerate(boxes):
+        for b0, b1, by in boxes[i + 1:]:
+            assert ay != by or a1 <= b0 or b1 <= a0, "two numbers overlap"
     assert len(root.findall(f".//{SVG}path[@class='peak']")) == len(peaks)
+    assert plots.peak_numbers((3.3, math.nan, 3.25)) == {3.3: 1, 3.25: 2}
 
 
 def test_ica_plot_without_a_curve_says_so() -> None:

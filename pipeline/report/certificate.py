@@ -398,9 +398,10 @@ def _ica_caption(curve: Curve | None, peaks_v: tuple[float, ...]) -> str:
     if shown < found:
         return (
             f"Incremental capacity dQ/dV; dashed lines mark the {shown} highest of the "
-            f"{found} peaks found."
+            f"{found} peaks found, numbered as listed under dQ/dV peaks."
         )
-    return "Incremental capacity dQ/dV; dashed lines mark the peaks found."
+    return ("Incremental capacity dQ/dV; dashed lines mark the peaks found, numbered as listed "
+            "under dQ/dV peaks.")
 
 
 def build_context(
@@ -515,7 +516,7 @@ def build_context(
         "cycles": [_cycle_row(c) for c in metrics.cycles],
         "plateaus": [_plateau_row(i, p) for i, p in enumerate(metrics.plateaus, start=1)],
         "ica_caption": _ica_caption(metrics.ica_curve, metrics.ica_peaks_v),
-        "ica_peaks": ", ".join(f"{v:.3f} V" for v in metrics.ica_peaks_v if math.isfinite(v))
+        "ica_peaks": ", ".join(f"{i}: {v:.3f} V" for v, i in plots.peak_numbers(metrics.ica_peaks_v).items())
         or DASH,
         "notes": _note_rows(result),
         "current_band": _band_text(result.current_band),

@@ -42,42 +42,11 @@ __all__ = [
     "ica_svg",
     "marked_peaks",
     "nice_ticks",
+    "peak_numbers",
     "tick_label",
 ]
 
 MAX_MARKED_PEAKS = 10
-
-
-def _peak_label(
-    frame: Frame, xp: float, peak_v: float, taken: list[tuple[float, float]]
-) -> list[str]:
-    """A peak's voltage written upwards beside its line, on whichever side is free.
-
-    ``taken`` holds the x intervals already used by lines and labels; a label that
-    fits on neither side is left out (the voltages are listed beside the plot).
-    """
-    width = FONT_MM * 1.05
-    for left_side in (True, False):
-        x0 = xp - 0.5 - width if left_side else xp + 0.5
-        span = (x0, x0 + width)
-        inside = frame.left <= span[0] and span[1] <= frame.left + frame.width
-        if inside and all(span[1] <= a or b <= span[0] for a, b in taken if (a, b) != span):
-            taken.append(span)
-            lx, ly = span[1] - 0.55, frame.top + 2.4
-            rotate = f' transform="rotate(-90 {n(lx)} {n(ly)})"'
-            body = f"{peak_v:.3f} V"
-            return [
-                # a white outline first keeps the label readable over the curve
-                text(
-                    lx,
-                    ly,
-                    body,
-                    "end",
-                    extra=f' fill="#ffffff" stroke="#ffffff" stroke-width="0.6"{rotate}',
-                ),
-                text(lx, ly, body, "end", extra=f' fill="{PEAK}"{rotate}'),
-            ]
-    return []
 
 
 def discharge_svg(
@@ -156,9 +125,10 @@ def ica_svg(
 ) -> str:
     """Incremental capacity dQ/dV (Ah/V, y) against voltage (V, x), its peaks marked.
 
-    A peak is a dashed vertical line at its voltage with a small triangle on top
-    and its voltage written beside it. Only the MAX_MARKED_PEAKS highest peaks are
-    marked (see :func:`marked_peaks`). ``curve`` may be None (nothing measured).
+    A peak is a dashed vertical line at its voltage with a small triangle on top and its
+    number (:func:`peak_numbers`) under it; the certificate lists the voltages by number.
+    Only the MAX_MARKED_PEAKS highest peaks are marked (see :func:`marked_peaks`).
+    ``curve`` may be None (nothing measured).
     """
     x, y = finite(curve)
     if y.size and float(y.max()) > 0:
@@ -179,8 +149,7 @@ def ica_svg(
     else:
         parts.append(no_data(frame, "no dQ/dV curve measured"))
     bottom = frame.top + frame.height
-    marks = sorted(frame.px(p) for p in peaks)
-    taken: list[tuple[float, float]] = [(m - 0.3, m + 0.3) for m in marks]
+    numbers = peak_numbers(peaks_v)
     for peak in peaks:
         xp = frame.px(peak)
         parts.append(
@@ -188,6 +157,39 @@ def ica_svg(
             f'stroke="{PEAK}" stroke-width="0.3" stroke-dasharray="0.8 0.8"/>'
         )
         parts.append(f'<path d="M{n(xp - 1.0)} {n(frame.top)}h2l-1 1.6z" fill="{PEAK}"/>')
-        parts.extend(_peak_label(frame, xp, peak, taken))
+    parts.extend(_numbered(frame, [(frame.px(p), numbers[p]) for p in peaks]))
     parts.append("</svg>")
     return "\n".join(parts)
+
+
+def peak_numbers(peaks_v: Sequence[float]) -> dict[float, int]:
+    """Each measured peak's number: its place (from 1) among the peaks found, in their order,
+    as the certificate lists them under "dQ/dV peaks"."""
+    numbers: dict[float, int] = {}
+    for number, peak in enumerate((p for p in peaks_v if math.isfinite(p)), start=1):
+        numbers.setdefault(peak, number)
+    return numbers
+
+
+def _numbered(frame: Frame, marks: list[tuple[float, int]]) -> list[str]:
+    """Each peak's number under its triangle; a number that would touch the one before it in a
+    row goes a row lower, so every marked peak is numbered and no two numbers overlap (the
+    voltages are listed, numbered, beside the plot)."""
+    row_ends: list[float] = []
+    parts = []
+    for xp, number in sorted(marks):
+        body = str(number)
+        width = FONT_MM * 0.62 * len(body) + 0.6
+        x0 = xp - width / 2
+        row = next((i for i, end in enumerate(row_ends) if x0 >= end), len(row_ends))
+        if row == len(row_ends):
+            row_ends.append(x0)
+        row_ends[row] = x0 + width
+        y = frame.top + 1.8 + FONT_MM * (row + 1)
+        parts += [
+            # a white outline first keeps the number readable over the curve
+            text(xp, y, body,
+                 extra=' class="peak-number" fill="#ffffff" stroke="#ffffff" stroke-width="0.6"'),
+            text(xp, y, body, extra=f' class="peak-number" fill="{PEAK}"'),
+        ]
+    return parts
