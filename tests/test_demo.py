@@ -28,24 +28,44 @@ def test_station_demo_accounts_for_every_file(tmp_path: Path) -> None:
     )
     assert out.returncode == 0, out.stdout[-3000:] + out.stderr[-3000:]
     # 30 whole-program files, a bad file, a duplicate; 24 cells as formation and grading
-    # files and the lot's aging tester file
-    assert "every file accounted for: 81 of 81" in out.stdout
+    # files and the lot's aging tester file; the worn rack's 40 whole-program files
+    assert "every file accounted for: 121 of 121" in out.stdout
     root = tmp_path / "demo"
-    # one certificate per cycle file, one per cell (30 whole-program cells, 24 in stages), and
-    # the lot report of the closed lot
-    assert len(list((root / "certificates").rglob("*.pdf"))) == 30 + 48 + 54 + 1
-    assert len(list((root / "certificates").rglob("*~cell.pdf"))) == 54
+    # one certificate per cycle file, one per cell (70 whole-program cells, 24 in stages), and
+    # the lot reports of the two closed lots
+    assert len(list((root / "certificates").rglob("*.pdf"))) == 70 + 48 + 94 + 2
+    assert len(list((root / "certificates").rglob("*~cell.pdf"))) == 94
     assert len(list((root / "quarantine").glob("*.reason.txt"))) == 1
     mails = [p.read_text(errors="replace") for p in (root / "mail").glob("*.eml")]
     # the staged lot: its low-capacity cell fails at grading; its slow self-discharger passes
     # every check but is held by the lot's screen on the K-value at the close, with a letter
-    assert "S04-023  fail: grading_capacity_Ah 4.491 Ah < 5.000 Ah (reject)" in out.stdout
+    assert re.search(r"S04-023  fail: grading_capacity_Ah 4\.49\S* (\S+ \S+ )?Ah < 5\.000 Ah \(reject\)", out.stdout)
     assert "S04-024  hold (was pass): outlier in lot: k_value_mV_per_day" in out.stdout
     assert "grades: A " in out.stdout and "lot report (PDF)" in out.stdout
     assert (root / "certificates" / "DEMO-LOT-04" / "_lot-report.pdf").exists()
     assert any("HOLD cell S04-024" in m for m in mails)
     assert any("lot DEMO-LOT-04, closed" in m for m in mails)
     _check_cell_certificates(root)
+    _check_worn_channel(root, out.stdout)
+
+
+def _check_worn_channel(root: Path, stdout: str) -> None:
+    """The worn channel 5-03 alone is alerted, once; its later fails' letters say so; lot
+    DEMO-LOT-05's report has the by-channel page and the charts beside it."""
+    assert "channel 5-03 at demo-line-1: SUSPECT since cell L05-" in stdout
+    assert "EXPECTED ONE ALERT" not in stdout
+    letters = [email.message_from_bytes(p.read_bytes(), policy=email.policy.default)
+               for p in (root / "mail").glob("*.eml")]
+    subjects = [str(m["Subject"]) for m in letters]
+    assert sum("is suspect" in s for s in subjects) == 1
+    assert any("channel 5-03 at demo-line-1 is suspect" in s for s in subjects)
+    noted = [m for m in letters if m["X-Formgate-Kind"] == "failure"
+             and "that tested this cell is suspect" in (m.get_body(("plain",)) or m).get_content()]
+    assert noted and all("L05-" in str(m["Subject"]) for m in noted)
+    lot = root / "certificates" / "DEMO-LOT-05"
+    text = " ".join(" ".join(p.extract_text() for p in PdfReader(lot / "_lot-report.pdf").pages).split())
+    assert "By channel" in text and "Suspect channel:" in text and "The lot over time" in text
+    assert (lot / "_chart-dcir_mOhm.svg").exists() and (lot / "_chart-by-channel.svg").exists()
 
 
 def _page1(pdf: Path) -> str:
