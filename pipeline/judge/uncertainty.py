@@ -55,6 +55,7 @@ SQRT12 = math.sqrt(12.0)
 # sigma x pi / sqrt(6) / sqrt(2 ln n) (its Gumbel limit: Gumbel 1958, Statistics of Extremes).
 GUMBEL = math.pi / math.sqrt(6.0)
 NOISE_ROWS = 4000  # differences a noise estimate looks at, at most (its own scatter ~1.5 %)
+RESOLUTION_ROWS = 20000  # rows the smallest step is looked for in: a resolution shows early
 
 
 @dataclass(frozen=True, slots=True)
@@ -130,7 +131,8 @@ def _noise(values: FloatArray) -> float:
 
 def _resolution(values: FloatArray) -> float:
     """The smallest step between readings: the instrument's resolution, or less."""
-    finite = values[np.isfinite(values)]
+    finite = values[:RESOLUTION_ROWS]
+    finite = finite[np.isfinite(finite)]
     if len(finite) < 2:
         return 0.0
     steps = np.abs(np.diff(finite))
@@ -197,7 +199,9 @@ class _Charge:
     switch_ah: float = 0.0  # what the steps' first rows, taken mid-switch, may add or take
 
 
-def _charge(trace: Trace, steps: tuple[Step, ...], indices: tuple[int, ...], u: ChannelU) -> _Charge:
+def _charge(
+    trace: Trace, steps: tuple[Step, ...], indices: tuple[int, ...], u: ChannelU, dt2s: FloatArray
+) -> _Charge:
     ah = sum(steps[i].capacity_ah for i in indices)
     seconds = sum(steps[i].duration_s for i in indices)
     dt2 = switch2 = 0.0
@@ -207,8 +211,8 @@ def _charge(trace: Trace, steps: tuple[Step, ...], indices: tuple[int, ...], u: 
         t = trace.time_s[step.start : step.stop]
         rows += len(t)
         if len(t) > 1:
-            dt = np.diff(t)
-            dt2 += float(dt @ dt)
+            # the squared intervals between the step's rows: a difference of running sums
+            dt2 += float(dt2s[step.stop - 1] - dt2s[step.start])
         switched = step.index == 0 or steps[step.index - 1].kind is not step.kind
         if len(t) >= 5 and switched:  # a constant-voltage part follows its charge smoothly
             # a step's first row shows the switch under way (an overshoot, a ramp): how far
@@ -267,6 +271,9 @@ def budgets(
     """The budget of every metric measured on this record that has an uncertainty
     (``offset_estimated``: the rule set's zero_offset is "corrected", :func:`channel_u`)."""
     u = channel_u(trace, segmentation, accuracy, band, offset_estimated)
+    # running sums of the squared intervals between rows: dt2s[k] = sum of (t[j+1] - t[j])^2, j < k
+    gaps = np.diff(trace.time_s)
+    dt2s = np.concatenate(([0.0], np.cumsum(gaps * gaps)))
     values = metrics.values
     steps = segmentation.steps
     by_index: dict[int, Cycle] = {c.index: c for c in segmentation.cycles}
@@ -278,8 +285,8 @@ def budgets(
 
     first = by_index.get(1)
     if first is not None and first.complete and have("first_cycle_efficiency") is not None:
-        c = _charge(trace, steps, first.charge_steps, u)
-        d = _charge(trace, steps, first.discharge_steps, u)
+        c = _charge(trace, steps, first.charge_steps, u, dt2s)
+        d = _charge(trace, steps, first.discharge_steps, u, dt2s)
         if c.ah > 0 and d.ah > 0:
             out["first_cycle_efficiency"] = _efficiency("first_cycle_efficiency", d, c, u)
             lost = abs(c.ah - d.ah)
@@ -294,8 +301,8 @@ def budgets(
 
     grading = by_index.get(metrics.grading_cycle) if metrics.grading_cycle is not None else None
     if grading is not None and grading.complete:
-        c = _charge(trace, steps, grading.charge_steps, u)
-        d = _charge(trace, steps, grading.discharge_steps, u)
+        c = _charge(trace, steps, grading.charge_steps, u, dt2s)
+        d = _charge(trace, steps, grading.discharge_steps, u, dt2s)
         q = have("grading_capacity_Ah")
         if q is not None:
             out["grading_capacity_Ah"] = Budget("grading_capacity_Ah", (
