@@ -15,7 +15,7 @@ from dataclasses import dataclass
 
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.outbox import insert_mail
-from pipeline.ledger.rows import PUBLISHED, OutgoingMail, parse_time, utc_text
+from pipeline.ledger.rows import OutgoingMail, parse_time, utc_text
 
 
 @dataclass(frozen=True, slots=True)
@@ -111,7 +111,7 @@ class ChannelAlerts:
             return True
 
     def recent_records(self, limit: int, station: str | None = None) -> list[StoredRecord]:
-        """The latest ``limit`` published records that name a channel (of ``station`` when given),
+        """The latest ``limit`` recorded records that name a channel (of ``station`` when given),
         oldest first: read with SQLite's JSON functions, not parsed whole."""
         where = "json_extract(r.result_json, '$.cell.channel') IS NOT NULL"
         params: tuple[object, ...] = ()
@@ -126,7 +126,10 @@ class ChannelAlerts:
             "json_extract(r.result_json, '$.metrics') AS metrics, "
             "(SELECT json_group_array(c.rule_id) FROM checks c WHERE c.result_id = r.id "
             "  AND c.outcome IN ('out_of_window', 'not_judged')) AS out "
-            f"FROM results r JOIN inputs i ON i.id = r.input_id WHERE i.state IN {PUBLISHED} "
+            # a record counts once it is recorded ('judged'), before its files are written: the
+            # station screens right after recording it
+            "FROM results r JOIN inputs i ON i.id = r.input_id "
+            "WHERE i.state IN ('judged', 'published', 'archived') "
             f"AND r.regrade_id IS NULL AND {where} ORDER BY r.id DESC LIMIT ?",
             (*params, limit),
         )

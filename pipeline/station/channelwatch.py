@@ -43,6 +43,10 @@ class ChannelWatch:
 
 
 DEFAULT_WATCH = ChannelWatch()
+# A passed record can only move the bias test, which needs many cells: the station screens
+# after every failed or held record, and after every this many passed ones (a screen of
+# 2,000 records costs tens of milliseconds: benchmarks/channel_screen.py).
+PASSES_PER_SCREEN = 20
 
 
 def watch_of(settings: Settings) -> ChannelWatch:
@@ -184,5 +188,14 @@ def open_alert_for(ledger: Ledger, result: CellResult) -> ChannelAlert | None:
     return ledger.channels.open_alert(station, channel) if channel else None
 
 
-__all__ = ["DEFAULT_WATCH", "ChannelWatch", "ask_retest", "open_alert_for", "suspect_note", "suspect_notes",
-           "watch_channels", "watch_of"]
+__all__ = [
+    "DEFAULT_WATCH",
+    "PASSES_PER_SCREEN",
+    "ChannelWatch",
+    "ask_retest",
+    "open_alert_for",
+    "suspect_note",
+    "suspect_notes",
+    "watch_channels",
+    "watch_of",
+]

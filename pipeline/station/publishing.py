@@ -31,7 +31,13 @@ from pipeline.runner import result_paths
 from pipeline.station import faults
 from pipeline.station.cells import CellDecisions
 from pipeline.station.certqueue import RecordCertificates
-from pipeline.station.channelwatch import ask_retest, open_alert_for, suspect_note, watch_channels
+from pipeline.station.channelwatch import (
+    PASSES_PER_SCREEN,
+    ask_retest,
+    open_alert_for,
+    suspect_note,
+    watch_channels,
+)
 from pipeline.station.digests import cell_certificate_link, cell_certificate_path
 from pipeline.station.guard import Guard
 from pipeline.station.published_files import Written, note_kept, note_written
@@ -62,6 +68,7 @@ class Publisher:
         self.guard = guard
         self.certificates = certificates
         self.judged = 0  # files judged since the station started (the heartbeat shows it)
+        self.unscreened = 0  # passed records recorded since the channels were last screened
 
     def apply(self, row: InputRow, output: Output) -> None:
         row = self.ledger.inputs.get(row.id) or row  # applied again after a pause: where it stands now
@@ -229,7 +236,11 @@ class Publisher:
         )
         faults.point("after_commit")
         # the channel that tested it, screened with the station's others: one alert if suspect
-        watch_channels(self.ledger, self.settings, result, now=self.clock())
+        if result.verdict.kind is not VerdictKind.PASS or self.unscreened >= PASSES_PER_SCREEN:
+            self.unscreened = 0
+            watch_channels(self.ledger, self.settings, result, now=self.clock())
+        else:
+            self.unscreened += 1
 
     def publish(self, row: InputRow, result: CellResult, json_text: str, pdf: bytes | None) -> None:
         json_path, pdf_path = self.output_paths(result)
