@@ -146,3 +146,21 @@ def test_the_drift_plots_labels_stay_clear_of_a_noisy_trace() -> None:
         x_start = x_end - 0.55 * 2.5 * len(label.text or "")  # a generous width for the words
         under = [y for x, y in points if x_start <= x <= x_end + 6.0]
         assert under and min(under) > y_base + 0.5, f"{label.text!r} lies on the trace"
+
+
+def test_the_plot_of_what_failed_follows_the_checks_on_the_first_pages() -> None:
+    """On a failed cell's certificate the failure's plot comes right after the checks table,
+    before the general plots (it was on page 3, behind them and the whole record)."""
+    import io
+
+    from pypdf import PdfReader
+
+    from pipeline.report.certificate import render_html
+    from pipeline.report.pdf import render_pdf
+    from tests.golden import cases
+
+    html = render_html(cases.fail_result())
+    assert html.index("What the failed checks show") < html.index("Grading discharge")
+    pages = [page.extract_text() or "" for page in PdfReader(io.BytesIO(render_pdf(html))).pages]
+    first = next(i for i, text in enumerate(pages, start=1) if "What the failed checks show" in text)
+    assert first <= 2
