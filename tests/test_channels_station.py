@@ -70,12 +70,16 @@ def test_a_channel_whose_cells_start_failing_is_alerted_once_and_its_later_fails
     assert main(["channel", "show", str(settings.root), "R1-C03"]) == 0
     shown = capsys.readouterr().out
     assert "failed check capacity" in shown
+    assert main(["status", str(settings.root)]) == 0
+    assert "suspect channel: R1-C03 at bench-3 since " in capsys.readouterr().out
     assert main(["channel", "clear", str(settings.root), "R1-C03", "--by", "technician C",
                  "--reason", "contact block replaced"]) == 0
     capsys.readouterr()
     with Ledger(settings.ledger) as ledger:
         (alert,) = ledger.channels.every()
         assert alert.cleared_by == "technician C" and alert.cleared_why == "contact block replaced"
+    assert main(["status", str(settings.root)]) == 0
+    assert "suspect channels: none" in capsys.readouterr().out
 
 
 @pytest.mark.slow

@@ -204,6 +204,13 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
         else:
             lines.append("waiting for a person: none")
         lines.append(certificates_line(ledger.certificates.backlog(), now))
+        suspect = [c for c in ledger.channels.every() if c.cleared_at is None]
+        for alert in suspect:  # formgate channel show says why, formgate channel clear ends it
+            where = f" at {alert.station}" if alert.station else ""
+            lines.append(f"suspect channel: {alert.channel}{where} since "
+                         f"{alert.raised_at.isoformat(timespec='seconds')}: {alert.evidence}")
+        if not suspect:
+            lines.append("suspect channels: none")
         lines.append("")
         lines.append("last cells")
         seen: set[tuple[str, str]] = set()
