@@ -119,7 +119,9 @@ def test_every_published_file_is_recorded_with_the_hash_of_its_bytes(judged: Jud
             assert row is not None, f"{path.name} is not recorded as published"
             assert row.sha256 == sha(path), path.name
         kinds = sorted(r.kind for r in ledger.published.every())
-        assert kinds.count("lot report") == 1 and kinds.count("lot export") == 2  # CSV and Parquet
+        charts = [p for p in judged.outputs() if p.name.startswith("_chart-")]
+        assert charts  # the lot report's charts beside it, recorded with it
+        assert kinds.count("lot report") == 1 + len(charts) and kinds.count("lot export") == 2  # CSV, Parquet
         # the earlier record's files are recorded again where they moved, under its own result
         first, retest = ledger.results.of_cell("LOT-A", "K-1")
         kept = ledger.published.by_path(str((s.results / "LOT-A" / "K-1~record-1.json").resolve()))

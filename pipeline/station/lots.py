@@ -243,11 +243,12 @@ def close_and_report(
     written = [Written(report, render_lot_report_pdf(data), "lot report"),
                Written(export, lot_export_csv(data), "lot export"),
                Written(parquet_path(export), lot_export_parquet(data), "lot export")]
+    # the report's charts, beside it (drawn as in it), published as part of the report
+    written += [Written(report.parent / f"{stem}.svg", svg.encode("utf-8"), "lot report")
+                for stem, svg in lot_figures(data)]
     for file in written:
         write_atomic(file.data, file.path)
     note_written(ledger, written, now=now, lot=lot)  # their hashes, for formgate verify
-    for stem, svg in lot_figures(data):  # the report's charts, beside it (drawn from it)
-        write_atomic(svg.encode("utf-8"), report.parent / f"{stem}.svg")
     if close:
         ledger.lots.note_report(lot, str(report), str(export))
         routing = settings.routing
