@@ -63,6 +63,10 @@ def test_a_channel_whose_cells_start_failing_is_alerted_once_and_its_later_fails
         assert ("Suspect channel." in text) == (m in noted), cell
         if m in noted:
             assert "which was suspect when it was judged" in text and "applies in full" in text
+        # and the record's own certificate, under its FAIL verdict
+        record = settings.certificates / "L-CH-05" / f"{cell}.pdf"
+        text = " ".join(" ".join(p.extract_text() for p in PdfReader(record).pages).split())
+        assert "FAIL" in text and ("This record failed on channel R1-C03" in text) == (m in noted), cell
     # the channel's cells after the alert: their failure letters name it, and keep the cautions
     assert main(["channel", "list", str(settings.root)]) == 0
     listed = capsys.readouterr().out

@@ -545,8 +545,12 @@ def render_html(
     *,
     cell_certificate: str | None = None,
     full: bool = False,
+    channel_note: str = "",
 ) -> str:
-    """The certificate of one judged cell as an HTML document (a str); ``full``: see build_context."""
-    return environment().get_template(TEMPLATE_NAME).render(
-        build_context(result, verification_code, cell_certificate=cell_certificate, full=full)
-    )
+    """The certificate of one judged cell as an HTML document (a str); ``full``: see build_context.
+
+    ``channel_note``: when the channel that tested the cell was suspect as it was judged, the
+    words that say so (a station's, pipeline/station/channelwatch.py), shown under the verdict;
+    they change neither the verdict nor its cautions."""
+    context = build_context(result, verification_code, cell_certificate=cell_certificate, full=full)
+    return environment().get_template(TEMPLATE_NAME).render({**context, "channel_note": channel_note})

@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime
+import json
 import logging
 import threading
 import time
@@ -42,6 +43,7 @@ from pipeline.model import CellResult
 from pipeline.names import cell_file_stem
 from pipeline.read.readings import ReadingFile
 from pipeline.station import faults
+from pipeline.station.channelwatch import suspect_notes
 from pipeline.station.judges import JudgePool
 from pipeline.station.published_files import Written, note_written
 from pipeline.station.worker import Task, judge_task, render_certificate
@@ -67,6 +69,7 @@ class RecordJob:
     cell_name: str
     result: CellResult | None = None
     task: Task | None = None
+    channel_note: str = ""  # its channel was suspect as it was judged (channelwatch.py)
 
 
 @dataclass(frozen=True, slots=True)
@@ -87,7 +90,7 @@ def render_record(job: RecordJob) -> Rendered:
             if isinstance(judged, ReadingFile):
                 return Rendered(None, "the archived input now reads as aging readings")
             result = judged
-        return Rendered(render_certificate(result, job.json_text, job.cell_name))
+        return Rendered(render_certificate(result, job.json_text, job.cell_name, job.channel_note))
     except Exception as exc:
         return Rendered(None, f"{type(exc).__name__}: {exc}")
 
@@ -158,9 +161,11 @@ class RecordCertificates:
             self.give_up(result_id, "its result has no certificate path")
             return None
         cell_name = f"{cell_file_stem(record.cell_id)}.pdf"
+        note = next(iter(suspect_notes(self.ledger, [record], [json.loads(record.result_json)],
+                                       record_words=False)), "")
         result = self.kept.get(result_id)
         if result is not None:
-            return RecordJob(result_id, record.result_json, cell_name, result=result)
+            return RecordJob(result_id, record.result_json, cell_name, result=result, channel_note=note)
         row = self.ledger.inputs.get(record.input_id)
         if row is None or row.state == "quarantined":
             self.give_up(result_id, "its input was quarantined after it was judged")
@@ -171,7 +176,7 @@ class RecordCertificates:
         if task is None:  # its rules are not in the ledger and none are valid now: later
             return None
         task = dataclasses.replace(task, work_path=row.final_path)  # archived by now
-        return RecordJob(result_id, record.result_json, cell_name, task=task)
+        return RecordJob(result_id, record.result_json, cell_name, task=task, channel_note=note)
 
     # ---- what came back --------------------------------------------------------------------
 

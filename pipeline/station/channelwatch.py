@@ -157,11 +157,13 @@ def ask_retest(
 
 
 def suspect_notes(
-    ledger: Ledger, rows: Sequence[ResultRow], docs: Sequence[Mapping[str, Any]]
+    ledger: Ledger, rows: Sequence[ResultRow], docs: Sequence[Mapping[str, Any]], *,
+    record_words: bool = True,
 ) -> tuple[str, ...]:
     """For a cell certificate: one line per failed record of the cell that a channel failed
     while it was suspect (an alert raised before the record was judged, not cleared by then).
-    The same ledger gives the same lines, whenever the certificate is made again."""
+    The same ledger gives the same lines, whenever the certificate is made again.
+    ``record_words`` False: for the record's own certificate ("This record failed on ...")."""
     notes = []
     for row, doc in zip(rows, docs, strict=True):
         where = doc.get("cell", {})
@@ -171,8 +173,10 @@ def suspect_notes(
         for alert in ledger.channels.every(station, channel):
             if alert.raised_at <= row.analysed_at and (alert.cleared_at is None
                                                        or alert.cleared_at > row.analysed_at):
+                what = (f"Record {doc.get('input', {}).get('name') or row.cell_id}" if record_words
+                        else "This record")
                 notes.append(
-                    f"Record {doc.get('input', {}).get('name') or row.cell_id} failed on "
+                    f"{what} failed on "
                     f"{channel_label((station, channel))}, which was suspect when it was judged "
                     f"(alert raised {alert.raised_at.isoformat(timespec='minutes')}: "
                     f"{alert.evidence}). The cell may be good and can be retested on another "

@@ -224,14 +224,18 @@ def cell_certificate_name(task: Task, result: CellResult) -> str | None:
     return None if task.ledger_path is None else f"{cell_file_stem(result.cell_id)}.pdf"
 
 
-def render_certificate(result: CellResult, json_text: str, cell_certificate: str | None) -> bytes:
-    """The record's certificate: it carries the code of the very JSON text published with it."""
+def render_certificate(
+    result: CellResult, json_text: str, cell_certificate: str | None, channel_note: str = ""
+) -> bytes:
+    """The record's certificate: it carries the code of the very JSON text published with it
+    (and, from a station, a note when the channel that tested it was suspect)."""
     from pipeline.report.certificate import render_html
     from pipeline.report.pdf import render_pdf
     from pipeline.report.verification import verification_code
 
     return render_pdf(
-        render_html(result, verification_code(json_text), cell_certificate=cell_certificate)
+        render_html(result, verification_code(json_text), cell_certificate=cell_certificate,
+                    channel_note=channel_note)
     )
 
 
