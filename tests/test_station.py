@@ -5,6 +5,7 @@ from __future__ import annotations
 import datetime
 import email
 import email.policy
+import re
 import threading
 import time
 from pathlib import Path
@@ -345,7 +346,10 @@ def test_polling_inbox_and_status_report(tmp_path: Path) -> None:
         report = status_text(s, datetime.datetime.now(datetime.UTC))
         assert report.startswith("station test-station: running")
     assert "today (UTC): 0 pass, 1 fail, 0 hold, 0 error, 0 duplicate" in report
-    assert "P-9  lot LOT-A  fail: grading_capacity_Ah 1.500 Ah < 1.800 Ah (reject)  hazard: abnormal_capacity" in report
+    assert re.search(  # the value with its expanded uncertainty U
+        r"P-9  lot LOT-A  fail: grading_capacity_Ah 1\.500\d* ± [\d.]+ Ah < 1\.800\d* Ah \(reject\)"
+        r"  hazard: abnormal_capacity", report
+    )
     assert "ledger integrity: ok" in report
     assert "share (" in report and "0 file(s) waiting" in report
 

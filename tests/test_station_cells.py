@@ -97,7 +97,7 @@ def test_cycle_files_and_a_tester_file_make_one_decision_per_cell(tmp_path: Path
     ]
     c2 = _decisions(s, "C-2")
     assert [d[:2] for d in c2] == [("hold", "record"), ("fail", "readings")]
-    assert c2[1][2].startswith("k_value_mV_per_day 3.029 mV/day > 1.000 mV/day (reject)")
+    assert re.match(r"k_value_mV_per_day 3\.029 ± 0\.012 mV/day > 1\.000 mV/day \(reject\)", c2[1][2])
     letter = next(m for m in _letters(s) if "FAIL cell C-2" in str(m["Subject"]))
     body = " ".join(letter.get_body().get_content().split())  # type: ignore[union-attr]
     assert "the cell's aging readings came in" in body
@@ -110,7 +110,7 @@ def test_cycle_files_and_a_tester_file_make_one_decision_per_cell(tmp_path: Path
     # status shows each cell once, and what stands for the cell when its records say less
     report = status_text(s, datetime.datetime.now(datetime.UTC))
     assert report.count("  C-2  lot LOT-A  pass") == 1
-    assert "      the cell: fail: k_value_mV_per_day 3.029 mV/day > 1.000 mV/day (reject)" in report
+    assert "      the cell: fail: k_value_mV_per_day 3.029 ± 0.012 mV/day > 1.000 mV/day (reject)" in report
 
 
 def test_a_mailed_failure_that_a_later_record_supersedes_gets_a_follow_up(tmp_path: Path) -> None:
