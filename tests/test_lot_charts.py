@@ -6,6 +6,7 @@ from __future__ import annotations
 import dataclasses
 import xml.etree.ElementTree as ET
 
+import numpy as np
 import pytest
 
 from pipeline.judge.channels import ChannelRecord
@@ -92,3 +93,22 @@ def test_the_by_channel_page_and_charts_stay_inside_the_margins(bad_lot: LotRepo
 def test_no_records_no_channel_page() -> None:
     context = lot_report_context(invented_lot())
     assert context["channels"] == [] and context["charts"] == [] and lot_figures(invented_lot()) == []
+
+
+def test_each_chart_has_a_png_of_its_size_with_the_signals_in_red(bad_lot: LotReportInput) -> None:
+    import io
+
+    from PIL import Image
+
+    from pipeline.report.svgraster import DPI, svg_to_png
+
+    figures = dict(lot_figures(bad_lot))
+    png = svg_to_png(figures["_chart-dcir_mOhm"])
+    assert png.startswith(b"\x89PNG") and png == svg_to_png(figures["_chart-dcir_mOhm"])
+    image = Image.open(io.BytesIO(png)).convert("RGB")
+    root = ET.fromstring(figures["_chart-dcir_mOhm"])
+    width_mm, height_mm = (float(v) for v in root.get("viewBox", "").split()[2:])
+    assert image.size == (round(width_mm * DPI / 25.4), round(height_mm * DPI / 25.4))
+    signal = tuple(int("b3261e"[i:i + 2], 16) for i in (0, 2, 4))  # the circled signals' red
+    pixels = np.asarray(image).reshape(-1, 3)
+    assert int(np.all(pixels == signal, axis=1).sum()) > 50

@@ -6,7 +6,7 @@ lot's screens turn into a hold is recorded beside the pass, with its letter), an
 writes the report PDF and the one-row-per-cell CSV:
 
     <certificates>/<lot>/_lot-report.pdf     <results>/<lot>/_lot-cells.csv (and .parquet)
-    <certificates>/<lot>/_chart-*.svg        (the report's charts of the lot over time)
+    <certificates>/<lot>/_chart-*.svg, .png  (the report's charts, by channel and over time)
 
 (the leading underscore keeps them apart from every cell's files: a cell id never
 makes a file name that starts with one). Used by `formgate lot close` and by the
@@ -46,6 +46,7 @@ from pipeline.report.lotreport import (
     lot_figures,
     render_lot_report_pdf,
 )
+from pipeline.report.svgraster import svg_to_png
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.cellpublish import all_current, publish_cells_now
 from pipeline.station.cells import change_letters
@@ -243,9 +244,10 @@ def close_and_report(
     written = [Written(report, render_lot_report_pdf(data), "lot report"),
                Written(export, lot_export_csv(data), "lot export"),
                Written(parquet_path(export), lot_export_parquet(data), "lot export")]
-    # the report's charts, beside it (drawn as in it), published as part of the report
-    written += [Written(report.parent / f"{stem}.svg", svg.encode("utf-8"), "lot report")
-                for stem, svg in lot_figures(data)]
+    # the report's charts, beside it (drawn as in it) as SVG and PNG, published with the report
+    for stem, svg in lot_figures(data):
+        written += [Written(report.parent / f"{stem}.svg", svg.encode("utf-8"), "lot report"),
+                    Written(report.parent / f"{stem}.png", svg_to_png(svg), "lot report")]
     for file in written:
         write_atomic(file.data, file.path)
     note_written(ledger, written, now=now, lot=lot)  # their hashes, for formgate verify
