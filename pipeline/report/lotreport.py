@@ -443,15 +443,20 @@ def export_table(data: LotReportInput) -> tuple[list[str], list[list[str | float
                 v
                 for m in metrics
                 for v in (
-                    round_to_resolution(m, cell.values.get(m)),
-                    round_uncertainty(m, cell.uncertainty.get(m)),
+                    (round_to_resolution(m, cell.values.get(m)),)
+                    + ((round_uncertainty(m, cell.uncertainty.get(m)),) if _has_u(m) else ())
                 )
             ),
             records,
             cell.decided_at.isoformat(),
         ])
-    columns = [name for m in metrics for name in (m, f"{m}{U_SUFFIX}")]
+    columns = [name for m in metrics for name in ((m, f"{m}{U_SUFFIX}") if _has_u(m) else (m,))]
     return [*EXPORT_FIRST, *columns, *EXPORT_LAST], rows
+
+
+def _has_u(metric: str) -> bool:
+    """Whether the export gives a metric an uncertainty column: a count has none."""
+    return not metric.endswith("_count")
 
 
 def _csv_field(value: str | float | None, column: str) -> str:
