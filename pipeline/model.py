@@ -469,6 +469,25 @@ class RecordView:
 
 
 @dataclass(frozen=True, slots=True)
+class PulseView:
+    """The DCIR pulse for drawing: V against seconds from the rest-to-discharge switch.
+
+    ``before_v`` is the voltage before the switch (the rest's median over its last
+    ``rest_s`` seconds), ``at_v`` the fitted voltage ``pulse_s`` into the discharge (the
+    line fitted from ``fit_from_s`` to ``fit_to_s``), ``current_a`` the pulse's |I|.
+    """
+
+    voltage: Curve
+    before_v: float
+    at_v: float
+    pulse_s: float
+    rest_s: float
+    fit_from_s: float
+    fit_to_s: float
+    current_a: float
+
+
+@dataclass(frozen=True, slots=True)
 class RestView:
     """The final rest for drawing: V against hours since the rest began, and its drift fit.
 
@@ -526,6 +545,7 @@ class CellMetrics:
     scatter: Mapping[str, float] = field(default_factory=dict)
     # expanded uncertainty U (k = 2) of each metric that has one, by name (uncertainty.py)
     uncertainty: Mapping[str, float] = field(default_factory=dict)
+    pulse: PulseView | None = None  # the DCIR pulse, for a failed DCIR check's evidence plot
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "values", frozen_mapping(self.values))

@@ -93,7 +93,7 @@ def judged() -> dict[str, object]:
     when = datetime.datetime(2026, 3, 4, tzinfo=datetime.UTC)
     out = {}
     for cell in demo.DEMO_CELLS:
-        if cell.defect in ("", "internal_short", "over_temperature", "low_capacity") and cell.cell_id not in out:
+        if cell.defect in ("", "internal_short", "over_temperature", "low_capacity", "high_dcir") and cell.cell_id not in out:
             text = cycletext.to_cycle_file(demo.demo_record(cell), demo.demo_metadata(cell))
             out[cell.defect or "normal"] = judge(text.encode(), f"{cell.cell_id}.csv", rulebook, analysed_at=when)
     return out
@@ -105,6 +105,7 @@ def judged() -> dict[str, object]:
         ("internal_short", "the final rest, its drift fit and the limit"),
         ("over_temperature", "the temperature and its limit"),
         ("low_capacity", "charge and discharge capacity of each cycle"),
+        ("high_dcir", "the DCIR pulse, its voltage step and the limit"),
     ],
 )
 def test_a_failed_cell_certificate_shows_the_plot_of_its_failure(judged, case: str, label: str) -> None:
@@ -164,3 +165,22 @@ def test_the_plot_of_what_failed_follows_the_checks_on_the_first_pages() -> None
     pages = [page.extract_text() or "" for page in PdfReader(io.BytesIO(render_pdf(html))).pages]
     first = next(i for i, text in enumerate(pages, start=1) if "What the failed checks show" in text)
     assert first <= 2
+
+
+def test_the_pulse_plot_draws_the_step_the_dcir_is_and_the_limit_it_crossed(judged) -> None:
+    result = judged["high_dcir"]
+    pulse = result.metrics.pulse
+    dcir = result.metrics.values["dcir_mOhm"]
+    assert pulse is not None and dcir is not None
+    # the drawn step is the measured DCIR: (V before - V at the pulse time) / |I|
+    assert (pulse.before_v - pulse.at_v) / pulse.current_a * 1000.0 == pytest.approx(dcir)
+    assert pulse.voltage.x[0] == pytest.approx(-pulse.rest_s, abs=10.0) and pulse.voltage.x[-1] > pulse.pulse_s
+    root = ET.fromstring(evidence.pulse_svg(pulse, 8.0, **SIZE))
+    limit = root.find(f".//{SVG}path[@class='limit']")
+    step = root.find(f".//{SVG}path[@class='step']")
+    fit = root.find(f".//{SVG}path[@class='fit']")
+    assert limit is not None and step is not None and fit is not None
+    limit_y = _path_points(limit)[0][1]
+    # a failed cell's fitted voltage lies below (on the page: further down than) the limit's
+    assert min(y for _, y in _path_points(fit)) > limit_y
+    assert "no DCIR pulse measured" in evidence.pulse_svg(None, 8.0, **SIZE)

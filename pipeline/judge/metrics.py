@@ -37,6 +37,7 @@ from pipeline.model import (
     Plateau,
     PlateauSettings,
     Program,
+    PulseView,
     RecordView,
     RestView,
     Segmentation,
@@ -144,7 +145,7 @@ def dcir_mohm(
 ) -> tuple[float | None, Note | None]:
     """DC resistance at the rest-to-discharge transition (mOhm), or None with a note
     (:func:`dcir_reading`)."""
-    value, note, _ = dcir_reading(trace, rest, discharge, pulse_s)
+    value, note, _, _ = dcir_reading(trace, rest, discharge, pulse_s)
     return value, note
 
 
@@ -164,7 +165,7 @@ def _intercept_gain(x: FloatArray) -> float:
 
 def dcir_reading(
     trace: Trace, rest: Step, discharge: Step, pulse_s: float
-) -> tuple[float | None, Note | None, float]:
+) -> tuple[float | None, Note | None, float, PulseView | None]:
     """DC resistance at the rest-to-discharge transition from ``rest`` into ``discharge`` (mOhm).
 
     (V just before the transition - V ``pulse_s`` into the discharge) / |I|. Each of the
@@ -176,7 +177,8 @@ def dcir_reading(
     note when the discharge is shorter than the pulse or sampled too coarsely for it.
     10 s is the most common pulse (common practice).
 
-    Also returns how many mOhm of DCIR one volt of the voltage's row-to-row noise makes,
+    Also returns the pulse as drawn on a failed cell's certificate (None when not
+    measured), and how many mOhm of DCIR one volt of the voltage's row-to-row noise makes,
     through the rest's median and the line's value at the pulse time (0 when not
     measured): the noise itself is estimated on many more rows than these
     (uncertainty.py), a pooled estimate (JCGM 100:2008 4.2.4). Times are compared to
@@ -194,7 +196,7 @@ def dcir_reading(
             f"{pulse_s:g} s DCIR pulse; DCIR not measured",
             where,
             ("dcir_mOhm",),
-        ), 0.0
+        ), 0.0, None
     in_pulse = t <= t0 + pulse_s
     if not in_pulse.any():
         return None, Note(
@@ -203,7 +205,7 @@ def dcir_reading(
             f"discharge, coarser than the {pulse_s:g} s DCIR pulse; DCIR not measured",
             where,
             ("dcir_mOhm",),
-        ), 0.0
+        ), 0.0, None
     rest_t = trace.time_s[rest.start : rest.stop]
     rest_v = trace.voltage_v[rest.start : rest.stop]
     before = rest_v[rest_t >= t0 - DCIR_REST_S - TIME_TOLERANCE_S]
@@ -224,7 +226,18 @@ def dcir_reading(
     settled = (t >= t0 + 0.5 * pulse_s - TIME_TOLERANCE_S) & (t <= t0 + pulse_s + half)
     current = median(amps[settled] if settled.any() else amps[in_pulse])
     per_volt = math.hypot(_median_gain(len(before)), gain_v1) / current * 1000.0
-    return (v0 - v1) / current * 1000.0, None, per_volt
+    # what the certificate draws: the rest's last minute and the discharge to past the fit
+    shown = slice(
+        rest.start + int(np.searchsorted(rest_t, t0 - DCIR_REST_S - TIME_TOLERANCE_S)),
+        discharge.start + int(np.searchsorted(t, t0 + pulse_s + 2 * half, side="right")),
+    )
+    seconds, volts = thin_series(trace.time_s[shown] - t0, trace.voltage_v[shown], VIEW_POINTS)
+    fitted = t[near] - t0 if np.count_nonzero(near) >= 2 else np.asarray([pulse_s, pulse_s])
+    view = PulseView(
+        Curve(seconds, volts), float(v0), v1, pulse_s, DCIR_REST_S,
+        float(fitted.min()), float(fitted.max()), float(current),
+    )
+    return (v0 - v1) / current * 1000.0, None, per_volt, view
 
 
 def rest_view(trace: Trace, rest: Step, relax_s: float) -> tuple[RestView | None, Note | None]:
@@ -430,6 +443,7 @@ def measure(
     peaks: tuple[float, ...] = ()
     grading_curve = ica_curve = None
     rest_drawn: RestView | None = None
+    pulse: PulseView | None = None
     grading = choice.cycle
     if grading is not None:
         gm = cycles[grading.index - 1]
@@ -447,7 +461,7 @@ def measure(
                 ("dcir_mOhm",),
             )
         else:
-            values["dcir_mOhm"], note, per_volt = dcir_reading(trace, *start, dcir_pulse_s)
+            values["dcir_mOhm"], note, per_volt, pulse = dcir_reading(trace, *start, dcir_pulse_s)
             if values["dcir_mOhm"] is not None:
                 scatter["dcir_mOhm_per_V_of_noise"] = per_volt
         notes += [note] if note else []
@@ -487,4 +501,5 @@ def measure(
         rest_drawn,
         grading.index if grading is not None else None,
         scatter,
+        pulse=pulse,
     )

@@ -273,6 +273,15 @@ def _evidence(result: CellResult) -> list[dict[str, object]]:
             "solid: the fit; dashed: a voltage falling at the limit."
         )
         shown.append({"svg": Markup(svg), "caption": caption})  # numbers only: see svgplot.py
+    resistance = [c for c in out if c.metric == "dcir_mOhm"]
+    if resistance:
+        check = _worst(resistance)
+        svg = evidence.pulse_svg(metrics.pulse, check.window.high, **size)
+        caption = (
+            f"The DCIR pulse: {phrase(check)}. Solid: the voltage before the switch and the line "
+            "fitted at the pulse time; dashed: where a cell at the limit would have dropped to."
+        )
+        shown.append({"svg": Markup(svg), "caption": caption})
     heat = [c for c in out if c.metric == "max_temperature_C"]
     if heat:
         check = _worst(heat)

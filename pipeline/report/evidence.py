@@ -15,7 +15,7 @@ from __future__ import annotations
 import numpy as np
 
 from pipeline.judge.thin import FloatArray, decimate
-from pipeline.model import Curve, CycleMetrics, RecordView, RestView, StepKind, Window
+from pipeline.model import Curve, CycleMetrics, PulseView, RecordView, RestView, StepKind, Window
 from pipeline.report.svgplot import (
     AXIS,
     CURVE,
@@ -165,6 +165,69 @@ def drift_svg(
     # the labels go in a key in the corner the rest's voltage leaves free (a falling voltage
     # ends low: the top right), not at the lines' ends, where the noisy trace runs
     parts.extend(_key(frame, key, top=rest.slope_mv_per_h <= 0.0))
+    parts.append("</svg>")
+    return "\n".join(parts)
+
+
+def pulse_svg(
+    pulse: PulseView | None, limit_mohm: float | None, *, width_mm: float, height_mm: float
+) -> str:
+    """The DCIR pulse: V against seconds from the switch, the voltage before it and the fitted
+    voltage at the pulse time, and the voltage a cell at the limit would have dropped to.
+
+    The drop from ``before_v`` to ``at_v``, over the pulse's current, is the DCIR; a dashed
+    line at ``before_v - limit x current`` shows how far a cell at the limit would drop, so a
+    failed cell's fitted voltage lies below it.
+    """
+    parts = [open_svg(width_mm, height_mm, "the DCIR pulse, its voltage step and the limit")]
+    x, y = finite(pulse.voltage if pulse is not None else None)
+    if pulse is None or x.size < 2:
+        frame = frame_for(width_mm, height_mm, (0.0, 1.0), (0.0, 1.0))
+        parts += axes(frame, "Time from the switch (s)", "Voltage (V)")
+        parts += [no_data(frame, "no DCIR pulse measured"), "</svg>"]
+        return "\n".join(parts)
+    levels = [pulse.before_v, pulse.at_v]
+    limit_v = None
+    if limit_mohm is not None:
+        limit_v = pulse.before_v - limit_mohm / 1000.0 * pulse.current_a
+        levels.append(limit_v)
+    # the range follows the levels and the pulse itself, not a spike at the switch
+    settled = (x <= 0.0) | (x >= 0.5 * pulse.pulse_s)
+    y_range = span(np.concatenate((y[settled], np.asarray(levels))), (0.0, 1.0), 0.1)
+    frame = frame_for(width_mm, height_mm, span(x, (0.0, 1.0), 0.0), y_range)
+    switch = frame.px(0.0)
+    parts.append(
+        f'<rect class="discharge" x="{n(switch)}" y="{n(frame.top)}" '
+        f'width="{n(frame.left + frame.width - switch)}" height="{n(frame.height)}" '
+        f'fill="{DISCHARGE_SHADE}"/>'
+    )
+    parts += axes(frame, "Time from the switch (s)", "Voltage (V)")
+    keep = (y >= frame.y_ticks[0]) & (y <= frame.y_ticks[-1])
+    parts.append(_measured(frame, x[keep], y[keep]))
+    y0, y1 = frame.py(pulse.before_v), frame.py(pulse.at_v)
+    xp = frame.px(pulse.pulse_s)
+    parts.append(
+        f'<path class="before" d="M{n(frame.px(-pulse.rest_s))} {n(y0)}H{n(xp)}" '
+        f'stroke="{FIT}" stroke-width="0.6"/>'
+    )
+    parts.append(
+        f'<path class="fit" d="M{n(frame.px(pulse.fit_from_s))} {n(y1)}H{n(frame.px(pulse.fit_to_s))}" '
+        f'stroke="{FIT}" stroke-width="0.6"/>'
+    )
+    parts.append(
+        f'<path class="step" d="M{n(xp)} {n(y0)}V{n(y1)}" stroke="{FIT}" stroke-width="0.35"/>'
+    )
+    dcir = (pulse.before_v - pulse.at_v) / pulse.current_a * 1000.0
+    key = [(f"step {_signed(dcir)} mOhm at {pulse.pulse_s:g} s", FIT, "")]
+    if limit_v is not None and limit_mohm is not None:
+        dash = ' stroke-dasharray="1.2 0.8"'
+        parts.append(
+            f'<path class="limit" d="M{n(switch)} {n(frame.py(limit_v))}H{n(xp)}" '
+            f'stroke="{LIMIT}" stroke-width="0.35"{dash}/>'
+        )
+        key.append((f"limit {_signed(limit_mohm)} mOhm", LIMIT, dash))
+    # the voltage falls at the switch: the top right is free once it has
+    parts.extend(_key(frame, key, top=True))
     parts.append("</svg>")
     return "\n".join(parts)
 
