@@ -1,4 +1,6 @@
-"""Examples in docs/cli.md that show a command's output are that command's real output.
+"""Examples in docs/cli.md that show a command's output are that command's real output
+(rules check, check, profile show; the station commands' examples name times and folders of
+one run, and are not checked here).
 
 Each example is found in the page by the command line it shows (``$ formgate ...``), the
 folder it names is built in a temporary directory as the page tells it (the shipped rules,
@@ -76,3 +78,43 @@ def test_the_exit_codes_example_is_the_first_problem_rules_check_prints(
     assert block, "docs/cli.md: no example block under 'Exit codes'"
     shown = block.group(1).splitlines()
     assert ["station/" + shown[0], shown[1]] == lines[:2]
+
+
+def _check_inbox(root: Path) -> None:
+    """The example's inbox: three demo cells of lot 1 (a pass, a DCIR fail, a hot fail) and a
+    file without a cell id."""
+    from pipeline.demo.lots import DEMO_CELLS, demo_file_bytes
+
+    inbox = root / "inbox"
+    inbox.mkdir()
+    for index in (0, 10, 13):
+        cell = DEMO_CELLS[index]
+        (inbox / cell.file_name).write_bytes(demo_file_bytes(cell))
+    (inbox / "bad.csv").write_text("time_s,voltage_V,current_A\n0,3.3,0\n", encoding="utf-8")
+    shutil.copytree(RULES_DIR, root / "rules")
+
+
+def test_check_shows_what_the_command_prints_with_its_exit_code(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    _check_inbox(tmp_path)
+    monkeypatch.chdir(tmp_path)
+    files = sorted(str(p.relative_to(tmp_path)) for p in (tmp_path / "inbox").glob("*.csv"))
+    # the shell sorts the glob the same way: bad.csv after the DEMO- files
+    files = sorted(files, key=lambda f: (f.endswith("bad.csv"), f))
+    code, lines = _run(["check", *files, "--rules", "rules/", "--out", "out/"], capsys)
+    assert lines == shown_after("formgate check inbox/*.csv --rules rules/ --out out/")
+    after = CLI_DOC.split("$ formgate check inbox/*.csv", 1)[1].split("```", 1)[0]
+    assert after.rstrip("\n").endswith(f"$ echo $?\n{code}") and code == 2
+
+
+def test_profile_show_shows_what_the_command_prints(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    shutil.copytree(RULES_DIR, tmp_path / "rules")
+    (tmp_path / "inbox").mkdir()
+    shutil.copy(REPO / "tests" / "data" / "traces" / "good" / "LOT-A7_CELL-0012.csv", tmp_path / "inbox")
+    monkeypatch.chdir(tmp_path)
+    command = "profile show rules/profiles/semicolon_decimal_comma.toml inbox/LOT-A7_CELL-0012.csv"
+    code, lines = _run(command.split(), capsys)
+    assert code == 0 and lines == shown_after(f"formgate {command}")
