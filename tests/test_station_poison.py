@@ -27,6 +27,7 @@ from pipeline.station.settings import read_settings
 from pipeline.station.status import status_text
 from tests.station_kit import (
     cycle_file,
+    drop,
     make_station,
     permissions_are_obeyed,
     start_watch,
@@ -182,7 +183,9 @@ def test_a_station_killed_twice_with_one_input_in_hand_quarantines_it_as_crashin
     again = start_watch(s.root)
     try:
         wait_until(lambda: any(s.quarantine.glob("*crash.csv")), what="the input quarantined")
-        (inbox / "after.csv").write_bytes(cycle_file("CR-2", seed=4))
+        # handed over as a cycler must (write, then rename): a file written in place can be
+        # claimed half-written and is rightly quarantined as changed after its claim
+        drop(inbox, "after.csv", cycle_file("CR-2", seed=4))
         # the property is that the station goes on judging, not how soon: a station started
         # after two kills starts its workers afresh, which a busy machine makes slow
         wait_until(lambda: any(s.archive.rglob("*after.csv")), timeout_s=180.0,
