@@ -98,12 +98,14 @@ def record_svg(view: RecordView | None, *, width_mm: float, height_mm: float) ->
     return "\n".join(parts)
 
 
-def _limit_label(frame: Frame, x: float, y: float, body: str, colour: str = LIMIT) -> list[str]:
+def _limit_label(
+    frame: Frame, x: float, y: float, body: str, colour: str = LIMIT, anchor: str = "end"
+) -> list[str]:
     """A label over a line: a white outline first keeps it readable over the curve."""
     halo = ' fill="#ffffff" stroke="#ffffff" stroke-width="0.7"'
     return [
-        text(x, y - 0.8, body, "end", extra=halo),
-        text(x, y - 0.8, body, "end", extra=f' fill="{colour}"'),
+        text(x, y - 0.8, body, anchor, extra=halo),
+        text(x, y - 0.8, body, anchor, extra=f' fill="{colour}"'),
     ]
 
 
@@ -226,23 +228,30 @@ def pulse_svg(
             f'stroke="{LIMIT}" stroke-width="0.35"{dash}/>'
         )
         key.append((f"limit {_signed(limit_mohm)} mOhm", LIMIT, dash))
-    # the voltage falls at the switch: the top right is free once it has
-    parts.extend(_key(frame, key, top=True))
+    # the rest holds the top left and the falling discharge the right: the bottom left is free
+    parts.extend(_key(frame, key, top=False, left=True))
     parts.append("</svg>")
     return "\n".join(parts)
 
 
-def _key(frame: Frame, entries: list[tuple[str, str, str]], *, top: bool) -> list[str]:
-    """Each (text, colour, dash) as a short line and its words, right-aligned in a corner."""
+def _key(
+    frame: Frame, entries: list[tuple[str, str, str]], *, top: bool, left: bool = False
+) -> list[str]:
+    """Each (text, colour, dash) as a short line and its words, in a corner: right-aligned
+    in a right one, the line first in a left one."""
     right = frame.left + frame.width - 1.0
     step = FONT_MM + 1.0
     first = frame.top + FONT_MM + 1.0 if top else frame.top + frame.height - 1.2 - (len(entries) - 1) * step
     parts = []
     for i, (body, colour, dash) in enumerate(entries):
         y = first + i * step
-        parts.append(f'<path class="key" d="M{n(right - 5.0)} {n(y - FONT_MM * 0.35)}h5" stroke="{colour}" '
+        line_x = frame.left + 1.0 if left else right - 5.0
+        parts.append(f'<path class="key" d="M{n(line_x)} {n(y - FONT_MM * 0.35)}h5" stroke="{colour}" '
                      f'stroke-width="0.5"{dash}/>')
-        parts.extend(_limit_label(frame, right - 6.0, y + 0.8, body, colour))
+        if left:
+            parts.extend(_limit_label(frame, frame.left + 7.0, y + 0.8, body, colour, "start"))
+        else:
+            parts.extend(_limit_label(frame, right - 6.0, y + 0.8, body, colour))
     return parts
 
 
