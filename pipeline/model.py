@@ -418,7 +418,7 @@ class Plateau:
 
 @dataclass(frozen=True, slots=True)
 class PlateauSettings:
-    """Plateau detection parameters from the rule set (DESIGN.md, "Plateaus").
+    """Plateau detection parameters from the rule set (docs/metrics.md, "Plateaus").
 
     ``flatness_mv_per_pct``: |dV/dq| threshold in mV per 1 % of capacity.
     ``min_length_pct``: shortest run that counts. ``merge_gap_pct``: runs closer
@@ -504,7 +504,7 @@ class RestView:
 
 @dataclass(frozen=True, slots=True)
 class CycleMetrics:
-    """Per-cycle metrics exactly as DESIGN.md defines them (None where not applicable)."""
+    """Per-cycle metrics exactly as docs/metrics.md defines them (None where not applicable)."""
 
     index: int
     charge_capacity_ah: float

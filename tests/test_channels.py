@@ -135,7 +135,8 @@ def test_summaries_count_verdicts_checks_and_biases() -> None:
     first = summaries["R1-C01"]
     cap_bias = first.biases[0]
     # values relative to the lot: its median and robust SD over every passed cell, outside
-    # check: scipy.stats.median_abs_deviation with scale="normal" (REFERENCE 7.2)
+    # check: scipy.stats.median_abs_deviation with scale="normal" (the MAD's consistency
+    # factor 1.4826 for normal data: Rousseeuw and Croux 1993, J. Am. Stat. Assoc. 88(424))
     lot = np.array([r.values[CAP] for r in line if r.verdict == "pass"])
     centre, spread = np.median(lot), scipy.stats.median_abs_deviation(lot, scale="normal")
     others = np.array([(r.values[CAP] - centre) / spread for r in line if r.channel != "R1-C01" and r.verdict == "pass"])

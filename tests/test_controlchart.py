@@ -100,7 +100,8 @@ def test_an_unknown_rule_is_refused() -> None:
 
 
 def test_rule_1_false_alarms_on_an_in_control_line_are_the_normal_tail() -> None:
-    """In control, WE1 fires on 2,699.8 ppm of points (REFERENCE, check value 28; scipy.stats.norm)."""
+    """In control, WE1 fires on 2,699.8 ppm of points: the two-sided 3-sigma tail of the normal
+    distribution (Western Electric 1956, Statistical Quality Control Handbook; scipy.stats.norm)."""
     rng = np.random.default_rng(1956)
     x = rng.normal(0.0, 1.0, 400_000)
     rate = len(run_rule_signals(x, 0.0, 1.0, ("WE1",))) / x.size

@@ -1,4 +1,4 @@
-"""Metrics exactly as DESIGN.md defines them, checked on traces whose answers are known."""
+"""Metrics exactly as docs/metrics.md defines them, checked on traces whose answers are known."""
 
 from __future__ import annotations
 

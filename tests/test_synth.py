@@ -33,13 +33,13 @@ def simulate(seed: int = 7, **changes: object) -> SimulatedRecord:
 
 
 def coulombs_ah(record: SimulatedRecord, truth: synth.StepTruth) -> float:
-    """Coulomb counting over the step's own rows (trapezoid rule, DESIGN.md metrics)."""
+    """Coulomb counting over the step's own rows (trapezoid rule, docs/metrics.md)."""
     rows = slice(truth.start, truth.stop)
     return float(np.trapezoid(np.abs(record.current_a[rows]), record.time_s[rows])) / 3600.0
 
 
 def dcir_ohm(record: SimulatedRecord, pulse_s: float = 10.0) -> float:
-    """(V before the rest -> grading discharge step - V pulse_s into it) / |I| (DESIGN.md)."""
+    """(V before the rest -> grading discharge step - V pulse_s into it) / |I| (docs/metrics.md)."""
     grading = record.step_named(synth.GRADING_STEP)
     rows = slice(grading.start, grading.stop)
     before = float(record.voltage_v[grading.start - 1])

@@ -16,7 +16,7 @@ EVERY_CYCLE_FILE: tuple[str, ...] = (FORMATION, GRADING)
 
 @dataclass(frozen=True, slots=True)
 class MetricDef:
-    name: str  # JSON key, unit in its proper case (DESIGN.md)
+    name: str  # JSON key, unit in its proper case (docs/metrics.md)
     unit: str  # as printed on the certificate ("" for a plain number or fraction)
     meaning: str
     relative_ok: bool = False  # may a window on it be given relative to nominal capacity?

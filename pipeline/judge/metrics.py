@@ -99,7 +99,7 @@ def _ignoring_nan(pick: np.ufunc, values: FloatArray) -> float | None:
 
 
 def measure_cycle(trace: Trace, steps: tuple[Step, ...], cycle: Cycle) -> CycleMetrics:
-    """DESIGN.md per-cycle metrics: capacities (Ah), efficiency, energy (Wh), voltages, CV time."""
+    """Per-cycle metrics (docs/metrics.md): capacities (Ah), efficiency, energy (Wh), voltages, CV time."""
     charge_ah = sum(steps[i].capacity_ah for i in cycle.charge_steps)
     discharge_ah = (
         sum(steps[i].capacity_ah for i in cycle.discharge_steps) if cycle.discharge_steps else None

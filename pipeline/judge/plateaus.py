@@ -1,7 +1,7 @@
 """Find the flat voltage plateaus of one discharge, and its incremental-capacity (dQ/dV) peaks.
 
 Pure: discharged capacity and voltage samples plus PlateauSettings in, plateaus
-and curves out. The definition is DESIGN.md's ("Plateaus"): V resampled on a
+and curves out. The definition is docs/metrics.md's ("Plateaus"): V resampled on a
 uniform grid of q (discharged capacity as % of the discharge's total), smoothed
 with a Savitzky-Golay filter and differentiated; a plateau is a maximal run with
 |dV/dq| at or below the flatness threshold, at least ``min_length_pct`` long, with

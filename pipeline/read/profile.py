@@ -1,6 +1,6 @@
 """Import profiles: TOML text -> Profile, the description of one cycle-file layout.
 
-A profile says how to read a file that is not laid out as cycle file v1 (DESIGN.md):
+A profile says how to read a file that is not laid out as cycle file v1 (README.md, docs/profiles.md):
 other column names, mV / mA / hours, the opposite current sign, semicolons, decimal
 commas, another text encoding, metadata taken from the file name. Reading the file
 itself is left to ``cyclefile.read_cycle_file``; choosing a profile for a file (by a
@@ -111,7 +111,7 @@ class Profile:
         return self == DEFAULT_PROFILE
 
 
-DEFAULT_PROFILE = Profile(name="cycle file v1", description="cycle file version 1 (DESIGN.md)")
+DEFAULT_PROFILE = Profile(name="cycle file v1", description="cycle file version 1 (README.md)")
 
 
 _Fail = Callable[..., ProfileError]

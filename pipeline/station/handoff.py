@@ -1,7 +1,7 @@
 """Decide which files in an inbox are finished and may be claimed.
 
 Pure: a listing of the inbox (name -> size, mtime) and what was seen before in,
-a decision out. Three ways a cycler can hand a file over (DESIGN.md, "claim"):
+a decision out. Three ways a cycler can hand a file over (docs/station.md):
 
 - ``rename``: it writes under a temporary name and renames into place; a file
   with a final name is finished as soon as it is seen.
