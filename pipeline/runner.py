@@ -68,22 +68,6 @@ def judge(
     )
 
 
-def with_range(accuracy: AccuracyClass, trace: Trace) -> AccuracyClass:
-    """The class with its current range: as declared, or the record's largest current rounded
-    up to the 1-2-5 series (the smallest range that could have carried it), said so."""
-    if accuracy.current_range_a is not None:
-        return accuracy
-    import numpy as np
-
-    from pipeline.judge.uncertainty import range_up
-
-    finite = trace.current_a[np.isfinite(trace.current_a)]
-    range_a = range_up(float(np.max(np.abs(finite)))) if len(finite) else 1.0
-    return dataclasses.replace(
-        accuracy, current_range_a=range_a, source=f"{accuracy.source}; range from the record"
-    )
-
-
 def choose_accuracy(
     accuracy: ChannelClasses | AccuracyClass | None, channel: str | None, profile: Profile | None
 ) -> AccuracyClass:
@@ -111,7 +95,7 @@ def judge_trace(
     from pipeline.judge.metrics import measure
     from pipeline.judge.rest_band import estimate_band, take_out_offset
     from pipeline.judge.segmentation import split_steps
-    from pipeline.judge.uncertainty import budgets, expanded
+    from pipeline.judge.uncertainty import budgets, expanded, with_range
 
     stages = file_stages(trace.metadata)  # a file of one stage is judged on that stage's checks
     rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)

@@ -86,7 +86,6 @@ def _check(
         value = None
     u = metrics.uncertainty.get(rule.metric)
     u = u if u is not None and math.isfinite(u) and u > 0 else None
-    guarded = decision != SIMPLE and u is not None
     too_close = False
     blocked = blockers.get(rule.metric)
     if blocked is not None or value is None:
@@ -98,7 +97,7 @@ def _check(
         else:
             outcome = Outcome.SKIPPED
             message += " (the rule set lets this check be left out)."
-    elif u is not None and guarded and decision == GUARDED_ACCEPTANCE and 0 <= inside_by(value, window) <= u:
+    elif u is not None and decision == GUARDED_ACCEPTANCE and 0 <= inside_by(value, window) <= u:
         # inside, but by less than its uncertainty: conformity is not shown (ILAC-G8:09/2019)
         outcome, too_close = Outcome.NOT_JUDGED, True
         message = (
@@ -107,7 +106,7 @@ def _check(
         )
     elif window.contains(value):
         outcome, message = Outcome.IN_WINDOW, ""
-    elif u is not None and guarded and decision == GUARDED_REJECTION and -inside_by(value, window) <= u:
+    elif u is not None and decision == GUARDED_REJECTION and -inside_by(value, window) <= u:
         # outside, but by less than its uncertainty: nonconformity is not shown
         outcome = Outcome.IN_WINDOW
         message = (

@@ -25,6 +25,7 @@ from pipeline.judge.program import (
     final_rest,
     stage_program,
 )
+from pipeline.judge.rest_band import MEDIAN_EFFICIENCY
 from pipeline.judge.segmentation import weights_between
 from pipeline.judge.thin import thin_series
 from pipeline.model import (
@@ -150,9 +151,9 @@ def dcir_mohm(
 
 
 def _median_gain(n: int) -> float:
-    """How much of one row's noise the median of ``n`` rows keeps: 1.2533 / sqrt(n), the
-    median's efficiency for normal noise (Kenney and Keeping 1962)."""
-    return 1.2533 / math.sqrt(n) if n > 0 else 1.0
+    """How much of one row's noise the median of ``n`` rows keeps: sqrt(pi / 2) / sqrt(n),
+    the median's efficiency for normal noise (rest_band.MEDIAN_EFFICIENCY)."""
+    return MEDIAN_EFFICIENCY / math.sqrt(n) if n > 0 else 1.0
 
 
 def _intercept_gain(x: FloatArray) -> float:

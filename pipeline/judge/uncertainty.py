@@ -29,11 +29,13 @@ what dominates. Counts (cycles, plateaus) have no uncertainty.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from dataclasses import dataclass
 
 import numpy as np
 
+from pipeline.judge.rest_band import MEDIAN_EFFICIENCY
 from pipeline.judge.segmentation import weights_between
 from pipeline.model import (
     AccuracyClass,
@@ -116,6 +118,18 @@ def range_up(amps: float) -> float:
     return 10.0 ** (exponent + 1)  # pragma: no cover - the loop ends at 10
 
 
+def with_range(accuracy: AccuracyClass, trace: Trace) -> AccuracyClass:
+    """The class with its current range: as declared, or the record's largest current rounded
+    up to the 1-2-5 series (the smallest range that could have carried it), said so."""
+    if accuracy.current_range_a is not None:
+        return accuracy
+    finite = trace.current_a[np.isfinite(trace.current_a)]
+    range_a = range_up(float(np.max(np.abs(finite)))) if len(finite) else 1.0
+    return dataclasses.replace(
+        accuracy, current_range_a=range_a, source=f"{accuracy.source}; range from the record"
+    )
+
+
 def _noise(values: FloatArray) -> float:
     """Row-to-row noise (rms) of a slowly varying series: 1.4826 x the median absolute
     deviation of successive differences / sqrt(2), which a slope or a step barely moves
@@ -155,10 +169,8 @@ def channel_u(
     """The channel's standard uncertainties for this record. ``estimated``: the rule set
     has the zero offset estimated at rest (and taken out when it stands out of its scatter),
     so the estimate, not the class, says how well the offset is known."""
-    range_a = accuracy.current_range_a
-    if range_a is None:
-        finite = trace.current_a[np.isfinite(trace.current_a)]
-        range_a = range_up(float(np.max(np.abs(finite)))) if len(finite) else 1.0
+    range_a = with_range(accuracy, trace).current_range_a
+    assert range_a is not None
     class_offset_i = accuracy.current_pct_of_range / 100.0 * range_a / SQRT3
     if band is None or not estimated:
         offset_i = class_offset_i
@@ -361,7 +373,7 @@ def budgets(
             rows = max(1, round(d.rows * longest.length_pct / 100.0))
             out["main_plateau_voltage_V"] = _voltage_reading(
                 "main_plateau_voltage_V", main_v, u,
-                (Component("median's scatter", 1.2533 * u.noise_v / math.sqrt(rows)),),
+                (Component("median's scatter", MEDIAN_EFFICIENCY * u.noise_v / math.sqrt(rows)),),
             )
         grid = (plateau or PlateauSettings()).grid_points
         for name in ("main_plateau_length_pct", "total_plateau_length_pct"):

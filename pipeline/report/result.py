@@ -25,6 +25,8 @@ from pipeline.model import (
     Outcome,
     Plateau,
 )
+from pipeline.read.accuracy import ACCURACY_KEYS as ACCURACY_FILE_KEYS
+from pipeline.read.accuracy import accuracy_from
 
 SCHEMA_VERSION = 1
 IDENTITY_KEYS = ("cell_id", "lot", "cell_type", "channel", "station", "program", "started_at")
@@ -83,14 +85,9 @@ def _accuracy(accuracy: AccuracyClass | None) -> dict[str, Any] | None:
     """The channel's accuracy class the uncertainties came from, and where it was declared."""
     if accuracy is None:
         return None
+    # the keys a profile or station.toml declares a class with (read/accuracy.py)
     return {
-        "voltage_pct_of_reading": accuracy.voltage_pct_of_reading,
-        "voltage_mV": accuracy.voltage_mv,
-        "current_pct_of_reading": accuracy.current_pct_of_reading,
-        "current_pct_of_range": accuracy.current_pct_of_range,
-        "current_range_A": accuracy.current_range_a,
-        "temperature_K": accuracy.temperature_k,
-        "time_ppm": accuracy.time_ppm,
+        **{key.name: getattr(accuracy, key.field) for key in ACCURACY_FILE_KEYS},
         "source": accuracy.source,
     }
 
@@ -202,16 +199,9 @@ def accuracy_of(result_json: str | None) -> AccuracyClass | None:
     found = json.loads(result_json).get("accuracy")
     if not isinstance(found, dict):
         return None
-    return AccuracyClass(
-        voltage_pct_of_reading=float(found["voltage_pct_of_reading"]),
-        voltage_mv=float(found["voltage_mV"]),
-        current_pct_of_reading=float(found["current_pct_of_reading"]),
-        current_pct_of_range=float(found["current_pct_of_range"]),
-        current_range_a=None if found["current_range_A"] is None else float(found["current_range_A"]),
-        temperature_k=float(found["temperature_K"]),
-        time_ppm=float(found["time_ppm"]),
-        source=str(found["source"]),
-    )
+    # read back as a file declares it; a range not known is left out, as in a file
+    declared = {k: v for k, v in found.items() if k != "source" and v is not None}
+    return accuracy_from(declared, str(found["source"]))
 
 
 def schema() -> dict[str, Any]:
