@@ -231,8 +231,6 @@ def cell_stages(
         values.update(aging.values)
         uncertainty.update(aging.uncertainty)
         files += [("aging", name, sha) for name, sha in sources]
-    if "cycle_count" in values:
-        uncertainty.pop("cycle_count", None)
     return CellStages(tuple(records), values, tuple(files), max(times) if times else None,
                       tuple(places), uncertainty)
 
