@@ -56,7 +56,8 @@ def test_the_documented_roles_feed_a_station_and_hold_it_to_its_own_columns(
     _run_as(plant_server.admin_url(), _statements(setup))
     owner = f"postgresql://formgate_owner@127.0.0.1:{plant_server.port}/formgate"
     assert main(["plant", "migrate", "--database", owner]) == 0
-    assert "plant schema at version 3 (applied: 0001_initial, 0002_channel_alerts, 0003_plant_reviews)" in capsys.readouterr().out
+    assert ("plant schema at version 4 (applied: 0001_initial, 0002_channel_alerts, "
+            "0003_plant_reviews, 0004_plant_letters)") in capsys.readouterr().out
     _run_as(plant_server.admin_url("formgate"), _statements(grants))
     line1 = f"postgresql://formgate_line1@127.0.0.1:{plant_server.port}/formgate"
     root = tmp_path / "station"

@@ -5,7 +5,9 @@ Each command connects with ``--database URL`` (the password as libpq finds it: a
 ``~/.pgpass`` file or PGPASSWORD, as for psql) or with ``--station FOLDER`` (that
 station's [plant] settings and password file). A cell whose records are at several
 stations is decided by the plant here, and the decision recorded in the plant database
-under the name of whoever ran the command; no letter is sent (docs/plant.md).
+under the name of whoever ran the command; the command that decides or reviews it sends its
+letters with the [smtp] and [mail] settings of ``--letters FOLDER`` (or of ``--station``),
+and says on stderr which letters are due when it was given none (docs/plant.md).
 """
 
 from __future__ import annotations
@@ -14,12 +16,14 @@ import argparse
 import datetime
 import functools
 import getpass
+import os
 import socket
+import sys
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from pipeline.cli.exits import EXIT_OK
+from pipeline.cli.exits import EXIT_OK, EXIT_USER
 from pipeline.errors import FormgateError
 from pipeline.model import STAGES
 
@@ -58,6 +62,30 @@ def _connect(args: argparse.Namespace) -> Any:
                             f"({str(exc).strip().splitlines()[0]})", None,
                             "Check the address, the role and its password, and that the "
                             "database server runs.") from None
+
+
+def _mail(args: argparse.Namespace) -> Any:
+    """The plant's mail settings (a PlantMail) from ``--letters FOLDER``, else from ``--station``'s
+    station.toml; None when neither is given."""
+    folder = getattr(args, "letters", None) or args.station
+    if not folder:
+        return None
+    from pipeline.plant.letters import mail_settings
+    from pipeline.station.settings import read_settings, smtp_settings
+
+    settings = read_settings(Path(folder))
+    return mail_settings(smtp_settings(settings, os.environ), settings.routing, settings.source)
+
+
+def _letters(conn: Any, scope: list[tuple[str, str | None]] | None, mail: Any) -> int:
+    """Send the letters the plant decisions in ``scope`` call for; tell of them on stderr.
+    EXIT_USER when one could not be sent (it stays due), else EXIT_OK."""
+    from pipeline.plant.letters import report_lines, send_letters
+
+    report = send_letters(conn, scope, mail, sent_by=_who(), now=_now())
+    for line in report_lines(report, mail):
+        print(line, file=sys.stderr)
+    return EXIT_USER if report.failed else EXIT_OK
 
 
 def _database_errors(func: Callable[[argparse.Namespace], int]) -> Callable[[argparse.Namespace], int]:
@@ -110,6 +138,7 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
     """A cell at every station: its records, readings, each station's decision, the plant's."""
     from pipeline.plant.cells import decide_in_plant, fetch_cell, lots_of_cell
 
+    mail = _mail(args)
     with _connect(args) as conn:
         lots = [args.lot] if args.lot else lots_of_cell(conn, args.cell)
         if not lots:
@@ -144,7 +173,7 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
                   + (f"  hazard: {', '.join(decision.hazards)}" if decision.hazards else ""))
             print(f"    over {', '.join(decision.stations)}, rule set {decision.rule_set_sha256[:16]}, "
                   f"by {decision.decided_by} at {_time(decision.decided_at)}")
-    return EXIT_OK
+        return _letters(conn, [(lot, args.cell) for lot in lots], mail)
 
 
 @_database_errors
@@ -152,6 +181,7 @@ def cmd_lot_show(args: argparse.Namespace) -> int:
     """Every station's cells of a lot with their standing decisions, one yield, the screens."""
     from pipeline.plant.lots import Books, lot_cells, screens_text
 
+    mail = _mail(args)
     with _connect(args) as conn:
         cells, held = lot_cells(conn, args.lot, decided_by=_who(), now=_now())
         stations = sorted({s for c in cells for s in c.stations})
@@ -168,7 +198,7 @@ def cmd_lot_show(args: argparse.Namespace) -> int:
                   + f"  ({c.decided_by or 'no decision'}; {', '.join(c.stations)})")
         for line in screens_text(args.lot, held, Books(conn)):
             print(line)
-    return EXIT_OK
+        return _letters(conn, [(args.lot, None)], mail)
 
 
 @_database_errors
@@ -181,12 +211,13 @@ def cmd_lot_export(args: argparse.Namespace) -> int:
     if out.suffix.lower() not in (".csv", ".parquet"):
         raise FormgateError(f"{out}: the export is written as .csv or .parquet", None,
                             "Name the file LOT.csv or LOT.parquet.")
+    mail = _mail(args)
     with _connect(args) as conn:
         cells, _ = lot_cells(conn, args.lot, decided_by=_who(), now=_now())
-    data = export_parquet(cells) if out.suffix.lower() == ".parquet" else export_csv(cells)
-    write_atomic(data, out)
-    print(f"{out}: {len(cells)} cell(s)")
-    return EXIT_OK
+        data = export_parquet(cells) if out.suffix.lower() == ".parquet" else export_csv(cells)
+        write_atomic(data, out)
+        print(f"{out}: {len(cells)} cell(s)")
+        return _letters(conn, [(args.lot, None)], mail)
 
 
 @_database_errors
@@ -201,17 +232,18 @@ def cmd_yield(args: argparse.Namespace) -> int:
         except ValueError:
             raise FormgateError(f"--since {args.since!r} is not a date", None,
                                 "Give a date as YYYY-MM-DD (UTC).") from None
+    mail = _mail(args)
     with _connect(args) as conn:
         rows = yield_rows(conn, args.by, decided_by=_who(), now=_now(), since=since)
-    if not rows:
-        print("no cells yet")
-        return EXIT_OK
-    width = max(len(args.by), *(len(r[0]) for r in rows))
-    print(f"{args.by:<{width}}  cells   pass   fail   hold   yield")
-    for group, cells, passed, failed, held in rows:
-        print(f"{group:<{width}}  {cells:5d}  {passed:5d}  {failed:5d}  {held:5d}  "
-              f"{100.0 * passed / cells:5.1f} %")
-    return EXIT_OK
+        if not rows:
+            print("no cells yet")
+            return EXIT_OK
+        width = max(len(args.by), *(len(r[0]) for r in rows))
+        print(f"{args.by:<{width}}  cells   pass   fail   hold   yield")
+        for group, cells, passed, failed, held in rows:
+            print(f"{group:<{width}}  {cells:5d}  {passed:5d}  {failed:5d}  {held:5d}  "
+                  f"{100.0 * passed / cells:5.1f} %")
+        return _letters(conn, None, mail)
 
 
 @_database_errors
@@ -236,6 +268,7 @@ def _review(args: argparse.Namespace, action: str) -> int:
 
     asked = Asked(action, args.by or getpass.getuser(), args.reason,
                   getattr(args, "stage", None), tuple(getattr(args, "accept", None) or ()))
+    mail = _mail(args)
     with _connect(args) as conn:
         lots = [args.lot] if args.lot else lots_of_cell(conn, args.cell)
         if len(lots) != 1:
@@ -245,10 +278,11 @@ def _review(args: argparse.Namespace, action: str) -> int:
                 "Give --lot LOT." if lots else "Check the cell id (formgate plant find CELL).")
         was, gave = record_plant_review(conn, lots[0], args.cell, asked, recorded_by=_who(),
                                         now=_now())
-    print(f"cell {args.cell}, lot {lots[0]}: {gave.verdict}" + (f": {gave.reason}" if gave.reason else ""))
-    print(f"  was {was.verdict}" + (f": {was.reason}" if was.reason else "")
-          + f"; over {', '.join(gave.stations)}; recorded in the plant database, no letter sent")
-    return EXIT_OK
+        print(f"cell {args.cell}, lot {lots[0]}: {gave.verdict}"
+              + (f": {gave.reason}" if gave.reason else ""))
+        print(f"  was {was.verdict}" + (f": {was.reason}" if was.reason else "")
+              + f"; over {', '.join(gave.stations)}; recorded in the plant database")
+        return _letters(conn, [(lots[0], args.cell)], mail)
 
 
 @_database_errors
@@ -294,6 +328,12 @@ def _where(p: argparse.ArgumentParser) -> None:
                    help="use the [plant] settings and password file of this station instead")
 
 
+def _letters_option(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--letters", metavar="FOLDER",
+                   help="send the letters of the plant's decisions with the [smtp] and [mail] "
+                        "settings of this folder's station.toml (default: --station's)")
+
+
 def add_commands(sub: Any) -> None:
     """Add `plant` to the command line's sub-commands."""
     plant = sub.add_parser("plant", help="the plant database: cells and lots over every station",
@@ -314,6 +354,7 @@ def add_commands(sub: Any) -> None:
     show.add_argument("cell", metavar="CELL", help="the cell id")
     show.add_argument("--lot", help="only in this lot")
     _where(show)
+    _letters_option(show)
     show.set_defaults(func=cmd_cell_show)
     lot = plant_sub.add_parser("lot", help="a lot over every station")
     lot_sub = lot.add_subparsers(dest="plant_lot_command", required=True, metavar="ACTION")
@@ -322,6 +363,7 @@ def add_commands(sub: Any) -> None:
                                            "decisions, one yield, and the lot's screens over them.")
     lshow.add_argument("lot", metavar="LOT", help="the lot")
     _where(lshow)
+    _letters_option(lshow)
     lshow.set_defaults(func=cmd_lot_show)
     export = lot_sub.add_parser("export", help="one row per cell of a lot, as CSV or Parquet",
                                 description="One row per cell of a lot over every station, as CSV "
@@ -330,6 +372,7 @@ def add_commands(sub: Any) -> None:
     export.add_argument("--out", metavar="FILE", required=True,
                         help="the file to write: .csv or .parquet")
     _where(export)
+    _letters_option(export)
     export.set_defaults(func=cmd_lot_export)
     yields = plant_sub.add_parser("yield", help="yield by station, cell type or day",
                                   description="Cells, passes and yield by station, cell type or "
@@ -339,6 +382,7 @@ def add_commands(sub: Any) -> None:
     yields.add_argument("--since", metavar="DATE",
                         help="only cells whose latest record is of this day (UTC) or later")
     _where(yields)
+    _letters_option(yields)
     yields.set_defaults(func=cmd_yield)
     find = plant_sub.add_parser("find", help="a cell by its id, or an input by its SHA-256",
                                 description="Every record of a cell, or every input with a "
@@ -368,6 +412,7 @@ def add_commands(sub: Any) -> None:
         p.add_argument("--by", metavar="NAME", help="who decides (default: the operating-system user)")
         p.add_argument("--lot", help="the cell's lot, when its id recurs in several lots")
         _where(p)
+        _letters_option(p)
         p.set_defaults(func=func)
     resend = plant_sub.add_parser("resend", help="forward a station's whole ledger again",
                                   description="Log every row of a station's ledger to be "

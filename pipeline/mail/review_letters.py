@@ -36,7 +36,8 @@ class ReviewFacts:
 
     ``was``: (verdict, reason, when decided) of the decision the review answered; ``now``:
     (verdict, reason) of the decision it gave; ``hazards``: the cell's hazards (values of
-    :class:`pipeline.model.Hazard`); ``review_id``: its ledger row.
+    :class:`pipeline.model.Hazard`); ``review_id``: its row in ``kept_in`` (a station's ledger,
+    or the plant database for a review made there).
     """
 
     cell_id: str
@@ -52,6 +53,7 @@ class ReviewFacts:
     accepts: tuple[str, ...] = ()
     hazards: tuple[str, ...] = ()
     family: str | None = None
+    kept_in: str = "the station's ledger"  # where the review is recorded
 
 
 def _hazards(names: Sequence[str]) -> list[Hazard]:
@@ -137,7 +139,7 @@ def review_letter(
     failed = old_verdict == "fail" or new_verdict == "fail"
     body += caution_sections(_hazards(facts.hazards), facts.family, general=failed)
     body.append(_paragraph(
-        f"The review is kept in the station's ledger (review {facts.review_id}) with the "
+        f"The review is kept in {facts.kept_in} (review {facts.review_id}) with the "
         "decision it answered and the one it gave, as ISO 9001:2015 clause 8.7 asks of the "
         "control of nonconforming outputs."
     ))

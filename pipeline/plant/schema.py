@@ -347,7 +347,27 @@ _PLANT_REVIEWS = PlantMigration("0003_plant_reviews", (
     "REFERENCES formgate.plant_reviews (id)",
 ))
 
-PLANT_MIGRATIONS: tuple[PlantMigration, ...] = (_INITIAL, _CHANNEL_ALERTS, _PLANT_REVIEWS)
+# Each letter a plant command sent for a plant decision (letters.py): one row per decision and
+# kind of letter, added in the transaction that sent it, so a letter goes out once.
+_PLANT_LETTERS = PlantMigration("0004_plant_letters", (
+    """
+    CREATE TABLE formgate.plant_letters (
+        decision_id bigint NOT NULL REFERENCES formgate.plant_decisions (id),
+        kind text NOT NULL CHECK (kind IN ('decision', 'update', 'review')),
+        message_id text NOT NULL UNIQUE CHECK (message_id ~ '^<[^<>@ ]+@[^<>@ ]+>$'),
+        recipients jsonb NOT NULL CHECK (jsonb_typeof(recipients) = 'array'),
+        subject text NOT NULL,
+        reply text NOT NULL,
+        sent_by text NOT NULL CHECK (sent_by <> ''),
+        sent_at timestamptz NOT NULL,
+        PRIMARY KEY (decision_id, kind)
+    )
+    """,
+))
+
+PLANT_MIGRATIONS: tuple[PlantMigration, ...] = (
+    _INITIAL, _CHANNEL_ALERTS, _PLANT_REVIEWS, _PLANT_LETTERS,
+)
 PLANT_SCHEMA_VERSION = len(PLANT_MIGRATIONS)
 
 _BOOTSTRAP = (
