@@ -13,8 +13,8 @@ The rule set is the one the cell's latest record was judged by, read from the pl
 of its exact text (``rule_texts``, by SHA-256), so the plant decides under the same text the
 station used. A file judged at two stations (the same bytes, by SHA-256) counts once. A
 plant decision is recorded in ``plant_decisions`` when it differs from the cell's latest
-there (never over it), and is sent back to no station's ledger: it is the plant's. The
-plant sends no letters; docs/plant.md says so.
+there (never over it), and is sent back to no station's ledger: it is the plant's; its
+letters go out from the plant command that made it (letters.py).
 """
 
 from __future__ import annotations

@@ -5,8 +5,8 @@ own pure review logic (pipeline.judge.review: ``check``, ``given``, ``stands``).
 records are all at one station is reviewed there (`formgate review`); a cell of several
 stations has no station that sees all of it, so it is reviewed here. The review and the plant
 decision it gives are recorded in one transaction, beside the decision it answered; it
-decides the cell until a file it did not see counts for the cell (cells.py). No letter is
-sent (docs/plant.md).
+decides the cell until a file it did not see counts for the cell (cells.py). Its letter
+goes out from the command that recorded it (letters.py).
 """
 
 from __future__ import annotations
