@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test lint bench clean
+.PHONY: demo plant-demo test lint bench clean
 
 # The project is installed editable with -qq (errors only): setuptools notes on every editable
 # install that folders named like the package may shadow it, which is how a checkout is used.
@@ -16,6 +16,11 @@ $(STAMP): pyproject.toml constraints.txt
 
 demo: $(STAMP)
 	$(BIN)/formgate demo
+
+# two demo stations on one PostgreSQL database of the demo's own (needs the server binaries,
+# Debian package postgresql)
+plant-demo: $(STAMP)
+	$(BIN)/formgate plant demo
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q

@@ -3,7 +3,7 @@
 Run it with ``.venv/bin/python benchmarks/plant.py`` (about 3 minutes on 2 cores; ``--quick``
 about 1 minute, ``--smoke`` about 30 s: checks that it runs, its figures mean nothing). It
 starts a PostgreSQL server of its own in a temporary folder (the server binaries from the
-operating system, as the tests do: tests/plant_server.py), then
+operating system, as the tests do: pipeline/plant/localserver.py), then
 
 1. runs a real 2-worker station on a pre-filled inbox (a burst of invented 72,000-row cycle
    files, one in 20 failing: benchmarks/run.py's files) three ways, taking turns: without a

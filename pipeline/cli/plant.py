@@ -320,6 +320,13 @@ def cmd_resend(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def cmd_demo(args: argparse.Namespace) -> int:
+    """Two demo stations on one PostgreSQL database of the demo's own; the plant's view of them."""
+    from pipeline.demo.plant_demo import run_plant_demo
+
+    return run_plant_demo(Path(args.folder) if args.folder else None)
+
+
 def _where(p: argparse.ArgumentParser) -> None:
     p.add_argument("--database", metavar="URL",
                    help="the plant database, postgresql://ROLE@HOST:PORT/DATABASE (the password "
@@ -420,3 +427,13 @@ def add_commands(sub: Any) -> None:
                                               "restored from an older backup.")
     resend.add_argument("folder", metavar="FOLDER", help="the station folder")
     resend.set_defaults(func=cmd_resend)
+    demo = plant_sub.add_parser(
+        "demo", help="two demo stations on one PostgreSQL database of the demo's own",
+        description="Start a PostgreSQL server in a temporary folder (its binaries from the "
+                    "operating system), run two demo stations on it, one forming and one "
+                    "grading cells of an invented lot, and show the plant's lot and a cell of "
+                    "both stations, with the plant's letters.")
+    demo.add_argument("folder", nargs="?", metavar="FOLDER",
+                      help="folder for the two stations and the quality desk (default: a new "
+                           "temporary folder)")
+    demo.set_defaults(func=cmd_demo)
