@@ -365,8 +365,48 @@ _PLANT_LETTERS = PlantMigration("0004_plant_letters", (
     """,
 ))
 
+# Row-level security: a station's role adds and changes rows only under the station ids it
+# feeds. ``stations.role_name`` names the role that feeds each station (the role that first
+# registered it; the owner sets it for stations registered before this migration, which are
+# refused until then). Every role reads every row; a table's owner (and a superuser) is not
+# held by these policies, so migrations and the owner's repairs work as before. The list of
+# tables is this migration's own: a later table gets its policies in its own migration.
+_STATION_TABLES = ("rule_texts", "inputs", "regrades", "results", "checks", "readings",
+                   "reviews", "decisions", "lots", "set_aside", "published", "channel_alerts")
+
+
+def _own_rows(table: str) -> tuple[str, ...]:
+    return (
+        f"ALTER TABLE formgate.{table} ENABLE ROW LEVEL SECURITY",
+        f"CREATE POLICY read_all ON formgate.{table} FOR SELECT USING (true)",
+        f"CREATE POLICY add_own ON formgate.{table} FOR INSERT "
+        "WITH CHECK (formgate.feeds(station_id))",
+        f"CREATE POLICY change_own ON formgate.{table} FOR UPDATE "
+        "USING (formgate.feeds(station_id)) WITH CHECK (formgate.feeds(station_id))",
+    )
+
+
+_STATION_ROWS = PlantMigration("0005_station_rows", (
+    "ALTER TABLE formgate.stations ADD COLUMN role_name text "
+    "CHECK (role_name IS NULL OR role_name <> '')",
+    "ALTER TABLE formgate.stations ALTER COLUMN role_name SET DEFAULT current_user",
+    """
+    CREATE FUNCTION formgate.feeds(station text) RETURNS boolean
+    LANGUAGE sql STABLE AS $$
+        SELECT EXISTS (SELECT 1 FROM formgate.stations s
+                       WHERE s.station_id = station AND s.role_name = current_user)
+    $$
+    """,
+    "ALTER TABLE formgate.stations ENABLE ROW LEVEL SECURITY",
+    "CREATE POLICY read_all ON formgate.stations FOR SELECT USING (true)",
+    "CREATE POLICY add_own ON formgate.stations FOR INSERT WITH CHECK (role_name = current_user)",
+    "CREATE POLICY change_own ON formgate.stations FOR UPDATE USING (role_name = current_user) "
+    "WITH CHECK (role_name = current_user)",
+    *(statement for table in _STATION_TABLES for statement in _own_rows(table)),
+))
+
 PLANT_MIGRATIONS: tuple[PlantMigration, ...] = (
-    _INITIAL, _CHANNEL_ALERTS, _PLANT_REVIEWS, _PLANT_LETTERS,
+    _INITIAL, _CHANNEL_ALERTS, _PLANT_REVIEWS, _PLANT_LETTERS, _STATION_ROWS,
 )
 PLANT_SCHEMA_VERSION = len(PLANT_MIGRATIONS)
 
