@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import os
+import subprocess
+import sys
 import threading
 from collections.abc import Iterator
 from pathlib import Path
@@ -48,3 +50,17 @@ def plant_server() -> Iterator[object]:
         yield server
     finally:
         remove(server)
+
+
+@pytest.fixture(scope="session")
+def demo_station(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, str]:
+    """The station `formgate demo` leaves (its folder, named ``station``, and what the demo
+    printed), run once for the session: tests that change it work on a copy."""
+    parent = tmp_path_factory.mktemp("demo")
+    env = dict(os.environ, FORMGATE_HOME=str(tmp_path_factory.mktemp("demo-home")))
+    out = subprocess.run(
+        [sys.executable, "-m", "pipeline", "demo", str(parent / "station")],
+        cwd=REPO, env=env, capture_output=True, text=True, timeout=900,
+    )
+    assert out.returncode == 0, out.stdout[-3000:] + out.stderr[-3000:]
+    return parent / "station", out.stdout

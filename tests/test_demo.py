@@ -18,19 +18,11 @@ from tests.station_kit import REPO
 pytestmark = pytest.mark.slow
 
 
-def test_station_demo_accounts_for_every_file(tmp_path: Path) -> None:
-    out = subprocess.run(
-        [sys.executable, "-m", "pipeline", "demo", str(tmp_path / "demo")],
-        cwd=REPO,
-        capture_output=True,
-        text=True,
-        timeout=900,
-    )
-    assert out.returncode == 0, out.stdout[-3000:] + out.stderr[-3000:]
+def test_station_demo_accounts_for_every_file(demo_station: tuple[Path, str]) -> None:
+    root, stdout = demo_station
     # 30 whole-program files, a bad file, a duplicate; 24 cells as formation and grading
     # files and the lot's aging tester file; the worn rack's 40 whole-program files
-    assert "every file accounted for: 121 of 121" in out.stdout
-    root = tmp_path / "demo"
+    assert "every file accounted for: 121 of 121" in stdout
     # one certificate per cycle file, one per cell (70 whole-program cells, 24 in stages), and
     # the lot reports of the two closed lots
     assert len(list((root / "certificates").rglob("*.pdf"))) == 70 + 48 + 94 + 2
@@ -39,14 +31,14 @@ def test_station_demo_accounts_for_every_file(tmp_path: Path) -> None:
     mails = [p.read_text(errors="replace") for p in (root / "mail").glob("*.eml")]
     # the staged lot: its low-capacity cell fails at grading; its slow self-discharger passes
     # every check but is held by the lot's screen on the K-value at the close, with a letter
-    assert re.search(r"S04-023  fail: grading_capacity_Ah 4\.49\S* (\S+ \S+ )?Ah < 5\.000 Ah \(reject\)", out.stdout)
-    assert "S04-024  hold (was pass): outlier in lot: k_value_mV_per_day" in out.stdout
-    assert "grades: A " in out.stdout and "lot report (PDF)" in out.stdout
+    assert re.search(r"S04-023  fail: grading_capacity_Ah 4\.49\S* (\S+ \S+ )?Ah < 5\.000 Ah \(reject\)", stdout)
+    assert "S04-024  hold (was pass): outlier in lot: k_value_mV_per_day" in stdout
+    assert "grades: A " in stdout and "lot report (PDF)" in stdout
     assert (root / "certificates" / "DEMO-LOT-04" / "_lot-report.pdf").exists()
     assert any("HOLD cell S04-024" in m for m in mails)
     assert any("lot DEMO-LOT-04, closed" in m for m in mails)
     _check_cell_certificates(root)
-    _check_worn_channel(root, out.stdout)
+    _check_worn_channel(root, stdout)
 
 
 def _check_worn_channel(root: Path, stdout: str) -> None:

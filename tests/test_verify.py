@@ -186,6 +186,25 @@ def test_verify_accepts_every_published_file(judged: Judged, capsys: pytest.Capt
     assert "rule set test-cells revision 1" in section and "its exact text is in the ledger" in section
 
 
+def test_a_station_copied_elsewhere_verifies_its_files_at_their_place(
+    judged: Judged, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The ledger records where the station published each file; a station folder copied for an
+    audit (or restored to another disk) still verifies its own files as at their place, not as
+    copies of the files at the old paths."""
+    copied = copy_of(judged, tmp_path)
+    pdf = copied.certificates / "LOT-A" / "K-2.pdf"
+    code, out = verify(str(copied.root), str(pdf), capsys=capsys)
+    assert code == 0, out
+    assert "a copy of" not in out
+    # a copy outside the station's folders is still named as one
+    elsewhere = tmp_path / "mailed" / "K-2.pdf"
+    elsewhere.parent.mkdir()
+    shutil.copy(pdf, elsewhere)
+    code, out = verify(str(copied.root), str(elsewhere), capsys=capsys)
+    assert code == 0 and "a copy of certificates/LOT-A/K-2.pdf" in out, out
+
+
 def test_a_verification_code_finds_the_result_and_its_certificate(
     judged: Judged, capsys: pytest.CaptureFixture[str]
 ) -> None:

@@ -109,7 +109,9 @@ class Verifier:
                                        f"published (its SHA-256 is {sha})")]
             findings += self._claims(path, data, here)
             return Verification(str(path), tuple(findings))
-        same_place = [r for r in rows if here is not None and r.path == here.path]
+        # at its place: as recorded, or at the same place of a station copied elsewhere
+        same_place = ([r for r in rows if here is not None and r.path == here.path]
+                      or [r for r in rows if _same_file(self._locate(r.path), path)])
         row = same_place[0] if same_place else rows[0]
         findings = [Finding(True, f"{self._describe(row)}, as published "
                                   f"{_when(row.published_at)} (SHA-256 {sha})")]
@@ -530,3 +532,10 @@ def _row_words(table: str, problem: str, by_id: dict[int, dict[str, object]]) ->
             fields.append(f"{name} {row[name]}")
     return f" [it now says: {', '.join(fields)}]"
 
+
+
+def _same_file(one: Path, other: Path) -> bool:
+    try:
+        return one.exists() and one.samefile(other)
+    except OSError:
+        return False
