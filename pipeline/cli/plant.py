@@ -320,6 +320,28 @@ def cmd_resend(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+@_database_errors
+def cmd_verify(args: argparse.Namespace) -> int:
+    """A station's ledger against what the plant holds for it: rows, their hashes, input SHA-256s."""
+    from pipeline.cli.exits import EXIT_REJECTED
+    from pipeline.ledger.ledger import Ledger
+    from pipeline.plant.verify import compare, report_lines
+    from pipeline.station.settings import read_settings
+
+    settings = read_settings(Path(args.folder))
+    if not settings.ledger.exists():
+        raise FormgateError(f"{settings.ledger}: the station has no ledger yet", None,
+                            "Nothing to compare: a station records its first rows when it runs.")
+    station_id = settings.plant.station_id if settings.plant else settings.station_name
+    if not args.database:
+        args.station = args.folder
+    with _connect(args) as conn, Ledger(settings.ledger) as ledger:
+        comparison = compare(ledger, conn, station_id)
+    for line in report_lines(comparison):
+        print(line)
+    return EXIT_OK if comparison.same else EXIT_REJECTED
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     """Two demo stations on one PostgreSQL database of the demo's own; the plant's view of them."""
     from pipeline.demo.plant_demo import run_plant_demo
@@ -427,6 +449,15 @@ def add_commands(sub: Any) -> None:
                                               "restored from an older backup.")
     resend.add_argument("folder", metavar="FOLDER", help="the station folder")
     resend.set_defaults(func=cmd_resend)
+    verify = plant_sub.add_parser(
+        "verify", help="compare a station's ledger with what the plant holds for it",
+        description="Compare a station's ledger with the plant database's rows for that station: "
+                    "per forwarded table the rows by key and by hash, and the input SHA-256s.")
+    verify.add_argument("folder", metavar="FOLDER", help="the station folder")
+    verify.add_argument("--database", metavar="URL",
+                        help="the plant database, postgresql://ROLE@HOST:PORT/DATABASE (default: "
+                             "the station's [plant] settings and password file)")
+    verify.set_defaults(func=cmd_verify, station=None)
     demo = plant_sub.add_parser(
         "demo", help="two demo stations on one PostgreSQL database of the demo's own",
         description="Start a PostgreSQL server in a temporary folder (its binaries from the "
