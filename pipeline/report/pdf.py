@@ -18,7 +18,7 @@ import pathlib
 import threading
 import urllib.parse
 import urllib.request
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from xml.etree import ElementTree
 
 import cssselect2
@@ -27,7 +27,7 @@ from weasyprint.document import Document
 from weasyprint.text.fonts import FontConfiguration
 from weasyprint.urls import URLFetcherResponse
 
-from pipeline.report import svgtext
+from pipeline.report import stylecache, svgpath, svgtext
 from pipeline.report.certificate import TEMPLATES_DIR
 from pipeline.writing import write_atomic
 
@@ -85,7 +85,8 @@ BASE_URL = TEMPLATES_DIR.as_uri() + "/"  # relative URLs in certificates resolve
 
 @dataclass(frozen=True)
 class _Shared:
-    """What every certificate a process renders shares: the parsed stylesheet and its font.
+    """What every certificate a process renders shares: the parsed stylesheet and its font, and
+    the computed styles worked out with them (stylecache.py).
 
     Parsing the stylesheet and loading the font once per process (not per document)
     saves their cost on every certificate and keeps a worker's memory flat: a new
@@ -94,6 +95,7 @@ class _Shared:
 
     font_config: FontConfiguration
     stylesheet: CSS
+    styles: dict[object, object] = field(default_factory=dict)
 
 
 @functools.lru_cache(maxsize=1)
@@ -127,13 +129,17 @@ def prepare() -> None:
     render_pdf(_WARM_UP)
 
 
-def _write(document: HTML | Document, *, labels_whole: bool = True) -> bytes:
-    """The PDF bytes of ``document``; its plot labels drawn whole (svgtext.py) unless told not to."""
+def _write(document: HTML | Document, *, fast_plots: bool = True) -> bytes:
+    """The PDF bytes of ``document``; its plot labels drawn whole (svgtext.py) and its plot paths
+    read once (svgpath.py) unless told not to."""
     with _RENDER_LOCK:
         before = os.environ.get("SOURCE_DATE_EPOCH")
         os.environ["SOURCE_DATE_EPOCH"] = before or _FONT_EPOCH
         try:
-            with svgtext.drawing_labels_whole() if labels_whole else contextlib.nullcontext():
+            with contextlib.ExitStack() as fast:
+                if fast_plots:
+                    fast.enter_context(svgtext.drawing_labels_whole())
+                    fast.enter_context(svgpath.drawing_paths_fast())
                 pdf: bytes = document.write_pdf(pdf_identifier=False)
         finally:
             if before is None:
@@ -157,12 +163,14 @@ def render_pdf(html: str) -> bytes:
 def lay_out(html: str) -> Document:
     """The laid-out pages of a certificate: ``render_pdf`` before it writes the PDF.
 
-    The benchmark times this alone: the part of a certificate's cost no document can share.
+    The benchmark times this alone: what a certificate costs before its PDF is written, with the
+    stylesheet, the font and the computed styles shared with the process's other certificates.
     """
     shared = _shared()
     html = html.replace(STYLESHEET_LINK, "", 1)
     document = parse_xhtml(html, BASE_URL, TemplateFetcher()) or _html5(html)
-    pages: Document = document.render(stylesheets=[shared.stylesheet], font_config=shared.font_config)
+    with stylecache.sharing_styles(shared.font_config, shared.styles):
+        pages: Document = document.render(stylesheets=[shared.stylesheet], font_config=shared.font_config)
     return pages
 
 
@@ -256,9 +264,9 @@ def _xml_parse_fits() -> bool:
 
 
 def render_pdf_plain(html: str) -> bytes:
-    """The same certificate rendered with nothing shared, and every plot label drawn by WeasyPrint
-    letter by letter: the reference the fast path must match."""
-    return _write(_html5(html), labels_whole=False)
+    """The same certificate rendered with nothing shared, every plot label drawn by WeasyPrint
+    letter by letter and every plot path read by it: the reference the fast path must match."""
+    return _write(_html5(html), fast_plots=False)
 
 
 def write_pdf(pdf: bytes, path: pathlib.Path) -> None:

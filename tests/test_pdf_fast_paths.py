@@ -1,0 +1,164 @@
+"""The certificate's fast paths give the very PDF bytes WeasyPrint gives without them.
+
+svgpath.py reads a plot path's data once; stylecache.py keeps computed styles from one
+certificate to the next in a process. Both are checked here against WeasyPrint doing the same
+work itself, on real certificates rendered in turn (real WeasyPrint, real PDFs).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import types
+from collections.abc import Iterator
+
+import pytest
+import weasyprint
+
+from pipeline.report import pdf, stylecache, svgpath
+from pipeline.report.certificate import render_html
+from tests.golden import cases
+
+
+@pytest.fixture(scope="module")
+def hazards() -> Iterator[types.ModuleType]:
+    """pipeline.report.hazards when it exists, else the test stand-in with the same API."""
+    module = cases.real_hazards() or cases.stand_in_hazards()
+    with cases.hazards_in_use(module):
+        yield module
+
+
+@pytest.fixture(scope="module")
+def htmls(hazards: types.ModuleType) -> list[str]:
+    """Certificates of a passed, a failed and a held cell, and a passed cell's full one."""
+    return [
+        render_html(cases.pass_result()),
+        render_html(cases.fail_result()),
+        render_html(cases.hold_result()),
+        render_html(cases.pass_result(), full=True),
+    ]
+
+
+@contextlib.contextmanager
+def _not_used(*args: object) -> Iterator[bool]:
+    yield False
+
+
+# --- plot paths read once -------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("d", "expected"),
+    [
+        ("M13.00 6.59 13.70 8.92", [("M", (13.0, 6.59)), ("L", (13.7, 8.92))]),
+        ("M1 2H5V-3h2v1l-1 1.6zm1 1 2 2", [("M", (1.0, 2.0)), ("H", (5.0,)), ("V", (-3.0,)), ("h", (2.0,)),
+                                           ("v", (1.0,)), ("l", (-1.0, 1.6)), ("z", ()), ("m", (1.0, 1.0)),
+                                           ("l", (2.0, 2.0))]),
+        ("", []),
+    ],
+)
+def test_path_data_is_read_into_its_commands(d: str, expected: list[tuple[str, tuple[float, ...]]]) -> None:
+    assert svgpath.commands(d) == expected
+
+
+@pytest.mark.parametrize(
+    "d",
+    ["M1 2C1 1 2 2 3 3", "M1 2A1 1 0 0 1 3 3", "M1e2 2", "M1mm 2", "M+1 2", "M1.5.5 2", "M1 2 3", "Z1", "1 2"],
+    ids=["curve", "arc", "exponent", "unit", "plus", "two-points", "short", "close-number", "no-command"],
+)
+def test_path_data_with_anything_else_is_left_to_weasyprint(d: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    assert svgpath.commands(d) is None
+    pieces = svgpath._weasyprint()
+    assert pieces is not None  # the pinned WeasyPrint
+    drawn = []
+    monkeypatch.setitem(pieces, "original", lambda svg, node, size: drawn.append(node))
+    node = {"d": d}
+    svgpath.fast_path(object(), node, 10.0)
+    assert drawn == [node]
+
+
+def test_plot_paths_read_once_give_the_same_pdf_bytes(htmls: list[str], monkeypatch: pytest.MonkeyPatch) -> None:
+    for html in htmls:
+        document = pdf.lay_out(html)
+        fast = pdf._write(document)
+        with monkeypatch.context() as patch:
+            patch.setattr(svgpath, "drawing_paths_fast", _not_used)
+            own = pdf._write(document)
+        assert fast == own
+
+
+def test_another_weasyprint_draws_every_path_itself(monkeypatch: pytest.MonkeyPatch) -> None:
+    import weasyprint.svg
+
+    own = weasyprint.svg.TAGS["path"]
+    monkeypatch.setattr(weasyprint, "__version__", "999.0")
+    svgpath._weasyprint.cache_clear()
+    try:
+        with svgpath.drawing_paths_fast() as fast:
+            assert not fast and weasyprint.svg.TAGS["path"] is own
+    finally:
+        monkeypatch.undo()
+        svgpath._weasyprint.cache_clear()
+    with svgpath.drawing_paths_fast() as fast:
+        assert fast and weasyprint.svg.TAGS["path"] is svgpath.fast_path
+    assert weasyprint.svg.TAGS["path"] is own
+
+
+# --- computed styles kept between certificates ----------------------------------------------
+
+
+def test_certificates_in_turn_with_kept_styles_give_the_same_pdf_bytes(
+    htmls: list[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    kept = pdf._shared().styles
+    kept.clear()
+    for html in [*htmls, *reversed(htmls), *htmls]:  # each meets the styles the others left
+        with_kept = pdf.render_pdf(html)
+        with monkeypatch.context() as patch:
+            patch.setattr(stylecache, "sharing_styles", _not_used)
+            own = pdf.render_pdf(html)
+        assert with_kept == own
+    size = len(kept)
+    assert size > 0
+    for html in htmls:  # nothing new to keep the second time round
+        pdf.render_pdf(html)
+    assert len(kept) == size
+
+
+def test_kept_styles_are_emptied_whole_past_their_bound(htmls: list[str], monkeypatch: pytest.MonkeyPatch) -> None:
+    kept = pdf._shared().styles
+    kept.clear()
+    pdf.render_pdf(htmls[0])
+    pdf.render_pdf(htmls[1])
+    both = len(kept)
+    monkeypatch.setattr(stylecache, "MAX_STYLES", 1)
+    reference = pdf.render_pdf(htmls[1])  # found more than one kept: emptied them, kept its own
+    alone = len(kept)
+    assert 1 < alone < both
+    assert pdf.render_pdf(htmls[1]) == reference and len(kept) == alone
+
+
+def test_documents_with_their_own_font_configuration_keep_nothing(htmls: list[str]) -> None:
+    kept = pdf._shared().styles
+    pdf.render_pdf(htmls[0])
+    size = len(kept)
+    other = weasyprint.HTML(string=htmls[1], base_url=pdf.BASE_URL).render()  # nothing shared
+    with stylecache.sharing_styles(pdf._shared().font_config, kept) as sharing:
+        assert sharing
+        weasyprint.HTML(string=htmls[2], base_url=pdf.BASE_URL).render()  # its own font configuration
+    assert len(kept) == size and len(other.pages) >= 1
+    assert weasyprint.css.StyleFor.__init__ is stylecache._weasyprint()["original"]  # type: ignore[index]
+
+
+def test_another_weasyprint_works_out_every_style_itself(monkeypatch: pytest.MonkeyPatch) -> None:
+    import weasyprint.css
+
+    own = weasyprint.css.StyleFor.__init__
+    monkeypatch.setattr(weasyprint, "__version__", "999.0")
+    stylecache._weasyprint.cache_clear()
+    try:
+        with stylecache.sharing_styles(object(), {}) as sharing:
+            assert not sharing and weasyprint.css.StyleFor.__init__ is own
+    finally:
+        monkeypatch.undo()
+        stylecache._weasyprint.cache_clear()
+    assert weasyprint.css.StyleFor.__init__ is own
