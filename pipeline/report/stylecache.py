@@ -112,31 +112,38 @@ def _style_for_init(
         parent_id = id(computed_styles[parent, None]) if element.parent else None
         element_declarations = elements_declarations.get(etree_element)
         selectors_keys = []
+        matched = []
         for sheet, origin, sheet_specificity in sheets:
-            # Add declarations for matching elements.
             for selector in sheet.matcher.match(element):
                 specificity, order, pseudo_type, (declarations, layer) = selector
                 layer_order = inf if layer is None else sheet.layers.index(layer)
                 selectors_keys.append((sheet, specificity, id(declarations), layer_order))
-                specificity = sheet_specificity or specificity
-                style = cascaded_styles.setdefault((etree_element, pseudo_type), {})
-                for name, values, importance in declarations:
-                    precedence = css.declaration_precedence(origin, importance)
-                    weight = (precedence, layer_order, specificity)
-                    old_weight = style.get(name, (None, None))[1]
-                    if old_weight is None or old_weight <= weight:
-                        style[name] = values, weight
+                matched.append((origin, sheet_specificity or specificity, pseudo_type, declarations, layer_order))
+        key = (parent_id, element_declarations, tuple(selectors_keys))
+        computed = computed_cache.get(key)
+        kept_key = (parent_id, own.get(etree_element), tuple(selectors_keys))
+        if computed is None and kept is not None:
+            computed = kept.get(kept_key)  # the same style in an earlier document of this process
+        # Add declarations for matching elements: an element whose style is found needs its
+        # pseudo-elements' only (their styles are worked out below).
+        for origin, specificity, pseudo_type, declarations, layer_order in matched:
+            if computed is not None and pseudo_type is None:
+                continue
+            style = cascaded_styles.setdefault((etree_element, pseudo_type), {})
+            for name, values, importance in declarations:
+                precedence = css.declaration_precedence(origin, importance)
+                weight = (precedence, layer_order, specificity)
+                old_weight = style.get(name, (None, None))[1]
+                if old_weight is None or old_weight <= weight:
+                    style[name] = values, weight
 
         # Store computed styles.
-        key = (parent_id, element_declarations, tuple(selectors_keys))
         if key in computed_cache:
             # Equivalent computed style already exists, share it.
             computed_styles[etree_element, None] = computed_cache[key]
             continue
-        kept_key = (parent_id, own.get(etree_element), tuple(selectors_keys))
-        if kept is not None and kept_key in kept:
-            # the same style in an earlier document of this process
-            computed = computed_styles[etree_element, None] = computed_cache[key] = kept[kept_key]
+        if computed is not None:
+            computed_styles[etree_element, None] = computed_cache[key] = computed
             if target_collector and computed["anchor"]:
                 target_collector.collect_anchor(computed["anchor"])
             continue
