@@ -156,17 +156,51 @@ def _style_for_init(
             kept[kept_key] = computed_cache[key]
 
     # Then computed styles for pseudo elements, in any order (they inherit from their element).
+    # In a kept document, a pseudo-element's style is worked out when layout first asks for it:
+    # the stylesheet WeasyPrint applies to every document gives every element six of them
+    # (::marker and the footnote and note ones), which a certificate never shows. One that
+    # names an anchor is worked out at once, as WeasyPrint does, so that its anchor is collected.
+    pending = {}
     for element, pseudo_type in cascaded_styles:
         if pseudo_type:
+            cascaded = cascaded_styles[element, pseudo_type]
+            if kept is not None and "anchor" not in cascaded:
+                pending[element, pseudo_type] = cascaded
+                continue
             self.set_computed_styles(
                 element, pseudo_type=pseudo_type,
                 # The pseudo-element inherits from the element.
                 root=html.etree_element, parent=element,
                 base_url=html.base_url, target_collector=target_collector)
+    if pending:
+        self._computed_styles = _PseudoOnDemand(computed_styles, pending, self, html)
 
     # Clear the cascaded styles, we don't need them anymore. Keep the
     # dictionary, it is used later for page margins.
     self._cascaded_styles.clear()
+
+
+class _PseudoOnDemand(dict):  # type: ignore[type-arg]
+    """A StyleFor's computed styles, whose pseudo-elements' styles are made on first asking.
+
+    WeasyPrint asks for a computed style with ``get`` (``StyleFor.__call__``); each one made
+    here is what ``StyleFor.set_computed_styles`` would have made of the same cascaded
+    declarations, with no anchor to collect (none is declared, and an anchor is not inherited).
+    """
+
+    def __init__(self, computed: dict[Any, Any], pending: dict[Any, Any], style_for: Any, html: Any) -> None:
+        super().__init__(computed)
+        self.pending, self.style_for, self.html = pending, style_for, html
+
+    def get(self, key: Any, default: Any = None) -> Any:
+        cascaded = self.pending.pop(key, None)
+        if cascaded is not None:
+            element, pseudo_type = key
+            css = _weasyprint()["css"]  # type: ignore[index]
+            self[key] = css.ComputedStyle(
+                self[element, None], cascaded, pseudo_type, self[self.html.etree_element, None],
+                self.html.base_url, self.style_for.font_config, self.style_for.initial_page_sizes)
+        return super().get(key, default)
 
 
 @contextlib.contextmanager
