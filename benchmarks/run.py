@@ -41,6 +41,16 @@ REPO = Path(__file__).resolve().parent.parent
 if str(REPO) not in sys.path:
     sys.path.insert(0, str(REPO))
 
+from pipeline.cli.main import SINGLE_THREADED_MATH  # noqa: E402  (light: argparse and os)
+
+# One math thread per process, as formgate's command line sets it before numpy is imported
+# (a user's choice stands): the station's workers inherit it from this process. Left at the
+# library's default, the judge path's least-squares fits start a second BLAS thread that keeps
+# spinning on the other core after each fit, slowing whatever is timed next (a certificate
+# measured some 40 % slower) and the station's workers alike.
+for _key, _value in SINGLE_THREADED_MATH.items():
+    os.environ.setdefault(_key, _value)
+
 DOC = REPO / "docs" / "performance.md"
 BEGIN = "<!-- benchmark table: begin (written by benchmarks/run.py; do not edit by hand) -->"
 END = "<!-- benchmark table: end -->"
