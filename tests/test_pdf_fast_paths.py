@@ -162,3 +162,39 @@ def test_another_weasyprint_works_out_every_style_itself(monkeypatch: pytest.Mon
         monkeypatch.undo()
         stylecache._weasyprint.cache_clear()
     assert weasyprint.css.StyleFor.__init__ is own
+
+
+def test_the_certificate_stylesheet_asks_nothing_of_what_lies_below_an_element() -> None:
+    """Kept rules stand for an element's place, which leaves out its descendants: only
+    ``:has()`` looks at them, and the certificate's stylesheet must not use it."""
+    css = (pdf.TEMPLATES_DIR / "certificate.css").read_text(encoding="utf-8")
+    assert ":has(" not in css
+
+
+def test_a_document_with_a_select_gets_no_places() -> None:
+    """WeasyPrint's own stylesheet matches a select by what it holds (``:has(option[...])``)."""
+    from xml.etree import ElementTree
+
+    plain = ElementTree.fromstring("<html><body><p>x</p></body></html>")
+    select = ElementTree.fromstring("<html><body><select><option>x</option></select></body></html>")
+    assert stylecache._Places({}, plain).usable
+    assert not stylecache._Places({}, select).usable
+
+
+def test_kept_rules_stand_for_the_same_place_only(htmls: list[str]) -> None:
+    """The same place in two certificates is one number; another place is another."""
+    import cssselect2
+    from xml.etree import ElementTree
+
+    kept: dict[object, object] = {}
+
+    def places(html: str) -> list[int | None]:
+        root = ElementTree.fromstring(html)
+        found = stylecache._Places(kept, root)
+        return [found.of(e) for e in cssselect2.ElementWrapper.from_html_root(root).iter_subtree()]
+
+    first, again, other = places(htmls[0]), places(htmls[0]), places(htmls[1])
+    assert first == again
+    numbered = [p for p in first if p is not None]
+    assert len(set(numbered)) == len(numbered)  # every element of a document in a place of its own
+    assert set(numbered) != {p for p in other if p is not None}

@@ -9,9 +9,20 @@ certificates are laid out with one parsed stylesheet and one font configuration 
 ``_shared``) and are built from the same templates, so the next certificate's elements meet
 the same keys again, and the styles built for the last one (their properties computed lazily
 as layout asked for them) would serve as they are; WeasyPrint starts from an empty cache each
-time. :func:`sharing_styles` keeps that cache for the process while a certificate's styles
-are worked out: a tenth of a certificate's cost, with the same PDF bytes (tests/test_pdf.py
-renders certificates one after another both ways and compares them).
+time. :func:`sharing_styles` keeps, for the process, while a certificate's styles are worked
+out:
+
+- the computed styles, by WeasyPrint's own key (an element whose style is found skips the
+  cascade of its declarations);
+- the rules that match an element in a given place of a document (:class:`_Places`), so that
+  an element in the same place of the next certificate is not matched against every selector
+  again;
+- and, for the certificate in hand, a pseudo-element's style is made only when layout asks for
+  it (:class:`_PseudoOnDemand`).
+
+Together about a fifth of a passed cell's certificate, with the same PDF bytes
+(tests/test_pdf_fast_paths.py renders certificates one after another both ways and compares
+them).
 
 What a computed style depends on is the key's, or the same for every certificate of the
 process: the parent's style (the key holds the id of the very object, kept alive by the
@@ -44,7 +55,8 @@ from pipeline.report.svgtext import FITS
 
 log = logging.getLogger(__name__)
 
-MAX_STYLES = 20_000  # a certificate needs a few hundred; emptied past this (memory stays flat)
+MAX_STYLES = 50_000  # a certificate needs a few hundred styles and a few thousand places and
+# rules; emptied past this (memory stays flat)
 
 _lock = threading.Lock()
 _active: dict[str, Any] = {}  # while sharing_styles runs: the font configuration and its cache
@@ -105,6 +117,7 @@ def _style_for_init(
     kept = _active.get("cache") if _active.get("font_config") is font_config else None
     if kept is not None and len(kept) > MAX_STYLES:
         kept.clear()
+    places = _Places(kept, html.etree_element) if kept is not None else None
     computed_cache: dict[Any, Any] = {}
     for element in html.wrapper_element.iter_subtree():
         etree_element = element.etree_element
@@ -113,8 +126,9 @@ def _style_for_init(
         element_declarations = elements_declarations.get(etree_element)
         selectors_keys = []
         matched = []
+        place = None if places is None else places.of(element)
         for sheet, origin, sheet_specificity in sheets:
-            for selector in sheet.matcher.match(element):
+            for selector in _match(kept, place, sheet, element):
                 specificity, order, pseudo_type, (declarations, layer) = selector
                 layer_order = inf if layer is None else sheet.layers.index(layer)
                 selectors_keys.append((sheet, specificity, id(declarations), layer_order))
@@ -178,6 +192,72 @@ def _style_for_init(
     # Clear the cascaded styles, we don't need them anymore. Keep the
     # dictionary, it is used later for page margins.
     self._cascaded_styles.clear()
+
+
+def _match(kept: dict[Any, Any] | None, place: int | None, sheet: Any, element: Any) -> Any:
+    """The rules of ``sheet`` that match ``element``: as an element in the same place of an
+    earlier document matched them (``place``, :class:`_Places`), or matched now."""
+    if kept is None or place is None:
+        return sheet.matcher.match(element)
+    key = ("rules", place, sheet)
+    found = kept.get(key)
+    if found is None:
+        found = kept[key] = sheet.matcher.match(element)
+    return found
+
+
+class _Places:
+    """Numbers for an element's place in its document, the same for the same place in any
+    document of the process: everything a selector can test of an element but its
+    descendants (what the rules that match it depend on).
+
+    A place is the element's name and attributes with those of all its siblings, in order,
+    its position among them, whether it holds text or children, and its parent's place (so,
+    up to the root, every ancestor and its siblings). Only what lies below an element is
+    left out, which only ``:has()`` looks at: WeasyPrint's own stylesheet (FITS) has one,
+    for a ``select``, and certificate.css none (a test checks it), so a document that holds
+    a ``select`` gets no places (its rules are matched as WeasyPrint does). Nor do a plot
+    (an SVG element) and what it holds: its points change from one certificate to the next.
+    """
+
+    def __init__(self, kept: dict[Any, Any], root: Any) -> None:
+        self.kept = kept
+        self.places: dict[int, int | None] = {}
+        self.siblings: dict[int | None, int] = {}
+        self.usable = not any(isinstance(e.tag, str) and e.tag.rpartition("}")[2] == "select" for e in root.iter())
+
+    def of(self, element: Any) -> int | None:
+        """The place of a cssselect2 element wrapper, or None when places are not used."""
+        if not self.usable:
+            return None
+        parent = element.parent
+        parent_place = None if parent is None else self.places[id(parent.etree_element)]
+        etree_element = element.etree_element
+        if (parent is not None and parent_place is None) or str(etree_element.tag).startswith(_SVG):
+            # a plot: its points differ from one certificate to the next, so its places would
+            # only be kept to be left unused (the rules are matched as WeasyPrint does)
+            self.places[id(etree_element)] = None
+            return None
+        # by the parent's element, which lives as long as the document (its wrapper may not)
+        family = None if parent is None else id(parent.etree_element)
+        names = self.siblings.get(family)
+        if names is None:
+            names = self.siblings[family] = self._number(
+                ("siblings", tuple((e.tag, tuple(e.items())) for e in element.etree_siblings)))
+        place = self._number(
+            ("place", parent_place, names, element.index, bool(etree_element.text), len(etree_element) > 0))
+        self.places[id(etree_element)] = place
+        return place
+
+    def _number(self, key: tuple[Any, ...]) -> int:
+        number = self.kept.get(key)
+        if number is None:
+            number = self.kept[key] = len(self.kept)
+        return int(number)
+
+
+
+_SVG = "{http://www.w3.org/2000/svg}"
 
 
 class _PseudoOnDemand(dict):  # type: ignore[type-arg]
