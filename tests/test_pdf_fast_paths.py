@@ -198,3 +198,63 @@ def test_kept_rules_stand_for_the_same_place_only(htmls: list[str]) -> None:
     numbered = [p for p in first if p is not None]
     assert len(set(numbered)) == len(numbered)  # every element of a document in a place of its own
     assert set(numbered) != {p for p in other if p is not None}
+
+
+# --- text drawn from the layouts that broke its lines ---------------------------------------
+
+
+def test_text_drawn_from_kept_layouts_gives_the_same_pdf_bytes(
+    htmls: list[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from pipeline.report import keptlayouts
+
+    for html in htmls:
+        kept = pdf.render_pdf(html)
+        with monkeypatch.context() as patch:
+            patch.setattr(keptlayouts, "keeping_layouts", _not_used)
+            patch.setattr(keptlayouts, "drawing_kept_layouts", _not_used)
+            own = pdf.render_pdf(html)
+        assert kept == own
+
+
+def test_a_kept_layout_is_made_again_unless_it_is_what_a_new_one_would_be(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    from weasyprint.text.line_break import Layout
+
+    from pipeline.report import keptlayouts
+
+    pieces = keptlayouts._weasyprint()
+    assert pieces is not None  # the pinned WeasyPrint
+    made = []
+    monkeypatch.setitem(pieces, "reactivate", lambda layout, style: made.append(layout))
+    document = pdf.lay_out(pdf._WARM_UP)
+    box = next(b for b in document.pages[0]._page_box.descendants() if getattr(b, "pango_layout", None))
+    layout, style = box.pango_layout, box.style
+    keptlayouts._reactivate(layout, style)
+    assert made == []  # kept: the same style, no spacing to add, one line
+    keptlayouts._reactivate(layout, style.copy())
+    layout.justification_spacing = 1.5
+    keptlayouts._reactivate(layout, style)
+    layout.justification_spacing = 0
+    two_lines = Layout(style)
+    two_lines.set_text("two\nlines")
+    keptlayouts._reactivate(two_lines, style)
+    assert made == [layout, layout, two_lines]
+
+
+def test_another_weasyprint_shapes_text_again_to_draw_it(monkeypatch: pytest.MonkeyPatch) -> None:
+    from weasyprint.text.line_break import Layout
+
+    from pipeline.report import keptlayouts
+
+    own = Layout.deactivate, Layout.reactivate
+    monkeypatch.setattr(weasyprint, "__version__", "999.0")
+    keptlayouts._weasyprint.cache_clear()
+    try:
+        with keptlayouts.keeping_layouts() as keeping, keptlayouts.drawing_kept_layouts() as drawing:
+            assert not keeping and not drawing and (Layout.deactivate, Layout.reactivate) == own
+    finally:
+        monkeypatch.undo()
+        keptlayouts._weasyprint.cache_clear()
+    assert (Layout.deactivate, Layout.reactivate) == own

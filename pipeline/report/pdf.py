@@ -27,7 +27,7 @@ from weasyprint.document import Document
 from weasyprint.text.fonts import FontConfiguration
 from weasyprint.urls import URLFetcherResponse
 
-from pipeline.report import stylecache, svgpath, svgtext
+from pipeline.report import keptlayouts, stylecache, svgpath, svgtext
 from pipeline.report.certificate import TEMPLATES_DIR
 from pipeline.writing import write_atomic
 
@@ -130,8 +130,9 @@ def prepare() -> None:
 
 
 def _write(document: HTML | Document, *, fast_plots: bool = True) -> bytes:
-    """The PDF bytes of ``document``; its plot labels drawn whole (svgtext.py) and its plot paths
-    read once (svgpath.py) unless told not to."""
+    """The PDF bytes of ``document``; unless told not to, its plot labels drawn whole
+    (svgtext.py), its plot paths read once (svgpath.py) and its text drawn from the layouts
+    that broke its lines (keptlayouts.py)."""
     with _RENDER_LOCK:
         before = os.environ.get("SOURCE_DATE_EPOCH")
         os.environ["SOURCE_DATE_EPOCH"] = before or _FONT_EPOCH
@@ -140,6 +141,8 @@ def _write(document: HTML | Document, *, fast_plots: bool = True) -> bytes:
                 if fast_plots:
                     fast.enter_context(svgtext.drawing_labels_whole())
                     fast.enter_context(svgpath.drawing_paths_fast())
+                    fast.enter_context(keptlayouts.keeping_layouts())  # a label's, till it is drawn
+                    fast.enter_context(keptlayouts.drawing_kept_layouts())
                 pdf: bytes = document.write_pdf(pdf_identifier=False)
         finally:
             if before is None:
@@ -169,7 +172,7 @@ def lay_out(html: str) -> Document:
     shared = _shared()
     html = html.replace(STYLESHEET_LINK, "", 1)
     document = parse_xhtml(html, BASE_URL, TemplateFetcher()) or _html5(html)
-    with stylecache.sharing_styles(shared.font_config, shared.styles):
+    with stylecache.sharing_styles(shared.font_config, shared.styles), keptlayouts.keeping_layouts():
         pages: Document = document.render(stylesheets=[shared.stylesheet], font_config=shared.font_config)
     return pages
 
