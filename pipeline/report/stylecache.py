@@ -118,22 +118,23 @@ def _style_for_init(
     if kept is not None and len(kept) > MAX_STYLES:
         kept.clear()
     places = _Places(kept, html.etree_element) if kept is not None else None
+    sheets_key = tuple((sheet, origin, sheet_specificity) for sheet, origin, sheet_specificity in sheets)
     computed_cache: dict[Any, Any] = {}
     for element in html.wrapper_element.iter_subtree():
         etree_element = element.etree_element
         parent = element.parent.etree_element if element.parent else None
         parent_id = id(computed_styles[parent, None]) if element.parent else None
         element_declarations = elements_declarations.get(etree_element)
-        selectors_keys = []
-        matched = []
         place = None if places is None else places.of(element)
-        for sheet, origin, sheet_specificity in sheets:
-            for selector in _match(kept, place, sheet, element):
-                specificity, order, pseudo_type, (declarations, layer) = selector
-                layer_order = inf if layer is None else sheet.layers.index(layer)
-                selectors_keys.append((sheet, specificity, id(declarations), layer_order))
-                matched.append((origin, sheet_specificity or specificity, pseudo_type, declarations, layer_order))
-        key = (parent_id, element_declarations, tuple(selectors_keys))
+        if place is None:
+            selectors_keys, matched = _rules(sheets, element)
+        else:  # the rules that matched an element in this place before, if any did
+            rules_key = ("rules", place, sheets_key)
+            found = kept.get(rules_key)  # type: ignore[union-attr]
+            if found is None:
+                found = kept[rules_key] = _rules(sheets, element)  # type: ignore[index]
+            selectors_keys, matched = found
+        key = (parent_id, element_declarations, selectors_keys)
         computed = computed_cache.get(key)
         kept_key = (parent_id, own.get(etree_element), tuple(selectors_keys))
         if computed is None and kept is not None:
@@ -194,16 +195,19 @@ def _style_for_init(
     self._cascaded_styles.clear()
 
 
-def _match(kept: dict[Any, Any] | None, place: int | None, sheet: Any, element: Any) -> Any:
-    """The rules of ``sheet`` that match ``element``: as an element in the same place of an
-    earlier document matched them (``place``, :class:`_Places`), or matched now."""
-    if kept is None or place is None:
-        return sheet.matcher.match(element)
-    key = ("rules", place, sheet)
-    found = kept.get(key)
-    if found is None:
-        found = kept[key] = sheet.matcher.match(element)
-    return found
+def _rules(sheets: Any, element: Any) -> tuple[tuple[Any, ...], tuple[Any, ...]]:
+    """The rules of ``sheets`` that match ``element``: WeasyPrint's key of them (each rule's
+    sheet, specificity, declarations and layer) and what the cascade takes of each."""
+    selectors_keys = []
+    matched = []
+    for sheet, origin, sheet_specificity in sheets:
+        # Add declarations for matching elements.
+        for selector in sheet.matcher.match(element):
+            specificity, order, pseudo_type, (declarations, layer) = selector
+            layer_order = inf if layer is None else sheet.layers.index(layer)
+            selectors_keys.append((sheet, specificity, id(declarations), layer_order))
+            matched.append((origin, sheet_specificity or specificity, pseudo_type, declarations, layer_order))
+    return tuple(selectors_keys), tuple(matched)
 
 
 class _Places:
