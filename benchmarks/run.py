@@ -973,6 +973,7 @@ def status_station(tmp: Path, passing: list[Record], failing: list[Record]) -> P
 def before_code(tmp: Path, cell: Path) -> tuple[list[str], Path] | None:
     """``python -m pipeline check --no-pdf`` of the code of BEFORE_CHECK_COMMIT, and the folder
     it runs in, taken out of the repository's history; None when it cannot be had or fails."""
+    import io
     import tarfile
 
     folder = tmp / f"before-{BEFORE_CHECK_COMMIT}"
@@ -982,12 +983,15 @@ def before_code(tmp: Path, cell: Path) -> tuple[list[str], Path] | None:
             capture_output=True, check=True,
         ).stdout
         folder.mkdir()
-        with tarfile.open(fileobj=__import__("io").BytesIO(archive)) as tar:
+        with tarfile.open(fileobj=io.BytesIO(archive)) as tar:
             tar.extractall(folder, filter="data")
     except (OSError, subprocess.CalledProcessError, tarfile.TarError):
         return None
-    argv = [sys.executable, "-m", "pipeline", "check", "--no-pdf", "--rules", str(folder / "rules"), str(cell)]
-    done = subprocess.run(argv, cwd=folder, env=_before_env(folder), capture_output=True, text=True, check=False)
+    argv = [sys.executable, "-m", "pipeline", "check", "--no-pdf", "--rules", str(folder / "rules"),
+            str(cell)]
+    done = subprocess.run(
+        argv, cwd=folder, env=_before_env(folder), capture_output=True, text=True, check=False
+    )
     return (argv, folder) if done.returncode == 0 and " pass " in done.stdout else None
 
 

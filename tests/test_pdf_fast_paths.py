@@ -183,8 +183,9 @@ def test_a_document_with_a_select_gets_no_places() -> None:
 
 def test_kept_rules_stand_for_the_same_place_only(htmls: list[str]) -> None:
     """The same place in two certificates is one number; another place is another."""
-    import cssselect2
     from xml.etree import ElementTree
+
+    import cssselect2
 
     kept: dict[object, object] = {}
 
@@ -258,3 +259,28 @@ def test_another_weasyprint_shapes_text_again_to_draw_it(monkeypatch: pytest.Mon
         monkeypatch.undo()
         keptlayouts._weasyprint.cache_clear()
     assert (Layout.deactivate, Layout.reactivate) == own
+
+
+# --- streams deflated at zlib's default level -----------------------------------------------
+
+
+def test_streams_are_deflated_at_the_default_level_and_read_back(
+    htmls: list[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import io
+    import zlib
+
+    import pydyf
+    from pypdf import PdfReader
+
+    with pdf._deflating_at_default_level() as faster:
+        assert faster and pydyf.zlib is pdf._Deflate
+        data = b"0 0 m 1 1 l S\n" * 500
+        packer = pydyf.zlib.compressobj(level=9)
+        assert zlib.decompress(packer.compress(data) + packer.flush()) == data
+    assert pydyf.zlib is zlib
+    reader = PdfReader(io.BytesIO(pdf.render_pdf(htmls[1])))
+    assert "FAIL" in reader.pages[0].extract_text()
+    monkeypatch.setattr(pydyf, "__version__", "999.0")
+    with pdf._deflating_at_default_level() as faster:
+        assert not faster and pydyf.zlib is zlib

@@ -91,8 +91,9 @@ def _style_for_init(
     w = _weasyprint()
     assert w is not None, "sharing_styles() installs this only for the WeasyPrint it fits"
     css = w["css"]
-    self._cascaded_styles = cascaded_styles = {}
-    self._computed_styles = computed_styles = {}
+    cascaded_styles: dict[Any, Any] = {}
+    computed_styles: dict[Any, Any] = {}
+    self._cascaded_styles, self._computed_styles = cascaded_styles, computed_styles
     self.initial_page_sizes = {"box": None, "area": None}
     self._sheets = sheets
     self.font_config = font_config
@@ -203,7 +204,7 @@ def _rules(sheets: Any, element: Any) -> tuple[tuple[Any, ...], tuple[Any, ...]]
     for sheet, origin, sheet_specificity in sheets:
         # Add declarations for matching elements.
         for selector in sheet.matcher.match(element):
-            specificity, order, pseudo_type, (declarations, layer) = selector
+            specificity, _order, pseudo_type, (declarations, layer) = selector
             layer_order = inf if layer is None else sheet.layers.index(layer)
             selectors_keys.append((sheet, specificity, id(declarations), layer_order))
             matched.append((origin, sheet_specificity or specificity, pseudo_type, declarations, layer_order))
@@ -228,7 +229,9 @@ class _Places:
         self.kept = kept
         self.places: dict[int, int | None] = {}
         self.siblings: dict[int | None, int] = {}
-        self.usable = not any(isinstance(e.tag, str) and e.tag.rpartition("}")[2] == "select" for e in root.iter())
+        self.usable = not any(
+            isinstance(e.tag, str) and e.tag.rpartition("}")[2] == "select" for e in root.iter()
+        )
 
     def of(self, element: Any) -> int | None:
         """The place of a cssselect2 element wrapper, or None when places are not used."""
