@@ -31,7 +31,9 @@ pytestmark = pytest.mark.slow
 
 # old window: 0.9 x 2.0 Ah = 1.80 Ah; the customer's new one starts at 0.94 x 2.0 = 1.88 Ah
 TIGHTENED = RULES.replace("low = 0.9              # test window",
-                          "low = 0.94             # tightened test window")
+                          "low = 0.94             # tightened test window").replace(
+                          'revision = "1"', 'revision = "2"')  # a changed text, a new revision
+assert TIGHTENED.count('revision = "2"') == 1
 CAPACITIES = {"C-01": 1.83, "C-02": 1.86, "C-03": 1.95, "C-04": 2.0, "C-05": 1.87, "C-06": 1.5,
               "C-07": 1.99}
 QE = "quality engineer B"
@@ -99,6 +101,14 @@ def test_a_dry_run_lists_exactly_the_cells_between_the_old_and_new_limits(
     assert main(["regrade", str(s.root), "--rules", str(proposed), "--apply", "--by", QE,
                  "--reason", "order 12 tightened", "--workers", "1", "--no-progress"]) == 2
     assert "--apply needs the station's own rules" in capsys.readouterr().err
+    # the station's own rules edited without a new revision are refused, at the revision's line
+    (s.rules_dir / "test_cells.toml").write_text(TIGHTENED.replace('revision = "2"', 'revision = "1"'),
+                                                 encoding="utf-8")
+    assert main(["regrade", str(s.root), "--apply", "--by", QE, "--reason", "order 12 tightened",
+                 "--workers", "1", "--no-progress"]) == 2
+    err = capsys.readouterr().err
+    assert "test_cells.toml, line 4: rule set 'test-cells' revision '1' judged cells with another text" in err
+    assert _decisions(s) == before
 
 
 def test_apply_records_the_changed_cells_once_with_their_cause_and_new_certificates(
@@ -119,7 +129,7 @@ def test_apply_records_the_changed_cells_once_with_their_cause_and_new_certifica
     with Ledger(s.ledger) as ledger:
         regrade = ledger.regrades.get(1)
         assert regrade is not None and regrade.run_by == QE and regrade.finished_at is not None
-        assert regrade.rule_sets[0][:2] == ("test-cells", "1")
+        assert regrade.rule_sets[0][:2] == ("test-cells", "2")  # the tightened revision
         for cell in expected:
             latest = ledger.decisions.latest("LOT-A", cell)
             assert latest is not None and latest.basis[-1] == "regrade:1"
@@ -138,7 +148,7 @@ def test_apply_records_the_changed_cells_once_with_their_cause_and_new_certifica
     # the cell's history shows both decisions and the cause
     assert main(["cell", "show", str(s.root), sorted(expected)[0]]) == 0
     shown = capsys.readouterr().out
-    assert "(record)" in shown and "(regrade 1 under test-cells 1: order 12 tightened)" in shown
+    assert "(record)" in shown and "(regrade 1 under test-cells 2: order 12 tightened)" in shown
     # a second --apply finds nothing to change and records nothing
     assert main(args) == 0
     assert "nothing to apply" in capsys.readouterr().out

@@ -24,7 +24,13 @@ from pipeline.model import (
     SourceRef,
     Window,
 )
-from pipeline.rulebook.book import RuleBook, check_rules_dir, load_rule_set, load_rules_dir
+from pipeline.rulebook.book import (
+    RuleBook,
+    check_rules_dir,
+    load_rule_set,
+    load_rules_dir,
+    reused_revisions,
+)
 from pipeline.rulebook.schema import (
     EXAMPLE,
     FRACTION_METRICS,
@@ -447,3 +453,25 @@ def test_the_loader_accepts_no_key_the_schema_lacks(table: Table) -> None:
 def test_schema_names_only_real_metrics() -> None:
     assert set(FRACTION_METRICS) <= set(METRIC_NAMES)
     assert all(old != new for (_, old), new in RENAMED.items())
+
+
+def test_a_changed_text_under_a_revision_that_judged_cells_is_a_located_problem(tmp_path: Path) -> None:
+    """One revision stands for one text: results and certificates name rule sets by revision."""
+    shutil.copy(RULES_DIR / "lfp_graphite.toml", tmp_path / "lfp_graphite.toml")
+    [judging] = load_rules_dir(tmp_path).rule_sets
+    judged = [(judging.name, judging.revision, judging.sha256)]
+    assert reused_revisions([judging], judged) == []  # the same text
+    rule_file = tmp_path / "lfp_graphite.toml"
+    text = rule_file.read_text(encoding="utf-8")
+    rule_file.write_text(text.replace("\nlow = 1.00 ", "\nlow = 1.02 ", 1), encoding="utf-8")
+    [edited] = load_rules_dir(tmp_path).rule_sets
+    [problem] = reused_revisions([edited], judged)
+    line = next(n for n, row in enumerate(text.splitlines(), 1) if row.startswith("revision"))
+    assert problem.where is not None and problem.where.line == line
+    assert f"revision '{judging.revision}' judged cells with another text" in str(problem)
+    assert "new revision" in (problem.hint or "")
+    assert reused_revisions([edited], []) == []  # a revision that judged nothing may be edited
+    rule_file.write_text(rule_file.read_text(encoding="utf-8").replace(
+        f'revision = "{judging.revision}"', 'revision = "2099-01-01.1"'), encoding="utf-8")
+    [revised] = load_rules_dir(tmp_path).rule_sets
+    assert reused_revisions([revised], judged) == []  # the changed text under a new revision

@@ -227,6 +227,33 @@ def test_broken_rules_edit_keeps_the_last_good_rules_and_alerts_with_file_and_li
     assert verdicts == ["pass", "pass"]
 
 
+def test_a_changed_rule_text_under_the_same_revision_is_refused_until_it_gets_a_new_one(
+    tmp_path: Path,
+) -> None:
+    """A rule file edited after its revision judged cells keeps its revision's text in force
+    (certificates name the revision) and says so in status, with file and line, until the edit
+    gets a revision of its own."""
+    s = make_station(tmp_path / "st")
+    rules = s.rules_dir / "test_cells.toml"
+    with running(s):
+        drop(s.inboxes[0].folder, "before.csv", cycle_file("V-1"))
+        wait_until(lambda: settled(s, 1), what="first cell")
+        rules.write_text(rules.read_text().replace("low = 0.9 ", "low = 0.91 "), encoding="utf-8")
+        refused = (f"the last good rules judge: {rules}, line 4: rule set 'test-cells' revision '1' "
+                   "judged cells with another text")
+        wait_until(lambda: refused in status_text(s, datetime.datetime.now(datetime.UTC)),
+                   what="the refusal in status")
+        rules.write_text(rules.read_text().replace('revision = "1"', 'revision = "2"'), encoding="utf-8")
+        wait_until(
+            lambda: "not valid" not in status_text(s, datetime.datetime.now(datetime.UTC)),
+            what="the edit in force under its new revision",
+        )
+        drop(s.inboxes[0].folder, "after.csv", cycle_file("V-2", seed=3))
+        wait_until(lambda: settled(s, 2), what="second cell")
+    with Ledger(s.ledger) as ledger:
+        assert sorted(r[1] for r in ledger.results.rule_sets()) == ["1", "2"]
+
+
 def test_sigterm_finishes_the_cell_in_hand_and_exits_0(tmp_path: Path) -> None:
     s = make_station(tmp_path / "st")
     proc = start_watch(s.root)

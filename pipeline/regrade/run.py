@@ -50,6 +50,7 @@ from pipeline.report.regradereport import (
     render_regrade_pdf,
 )
 from pipeline.report.result import accuracy_of
+from pipeline.rulebook.book import reused_revisions
 from pipeline.station.published_files import Written, note_written
 from pipeline.station.settings import Settings
 from pipeline.writing import write_atomic
@@ -119,6 +120,9 @@ def regrade_station(
                 "them in the station's rules folder first (the station judges new files by "
                 "them too), then regrade with --apply.",
             )
+        reused = reused_revisions(rules.rulebook().rule_sets, ledger.results.rule_sets())
+        if reused:
+            raise reused[0]
         if not run_by.strip() or not reason.strip():
             raise FormgateError("--apply needs --by NAME and --reason TEXT", None,
                                 "Say who applies the regrade and why: the ledger keeps both.")

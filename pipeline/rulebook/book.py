@@ -17,7 +17,7 @@ from __future__ import annotations
 import hashlib
 import pathlib
 import tomllib
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import cast
 
@@ -409,6 +409,45 @@ def _duplicates(rule_sets: Sequence[RuleSet]) -> list[RulesError]:
                     )
                 )
     return errors
+
+
+def reused_revisions(
+    rule_sets: Sequence[RuleSet], judged: Iterable[tuple[str, str, str]]
+) -> list[RulesError]:
+    """Rule sets whose text changed while their revision did not.
+
+    ``judged`` is every (name, revision, SHA-256) that judged a recorded cell. Results and
+    certificates name a rule set by its revision, so one revision must stand for one text: a
+    file whose name and revision judged cells with another text is a problem, located at its
+    ``revision`` line. (A revision that judged nothing yet may still be edited.)
+    """
+    known: dict[tuple[str, str], set[str]] = {}
+    for name, revision, sha in judged:
+        known.setdefault((name, revision), set()).add(sha)
+    errors = []
+    for rs in rule_sets:
+        shas = known.get((rs.name, rs.revision))
+        if not shas or rs.sha256 in shas:
+            continue
+        errors.append(RulesError(
+            f"rule set '{rs.name}' revision '{rs.revision}' judged cells with another text "
+            f"(SHA-256 {min(shas)[:12]}...); this text (SHA-256 {rs.sha256[:12]}...) is not that "
+            "revision",
+            SourceRef(rs.source, _revision_line(rs.source)),
+            hint="Results and certificates name a rule set by its revision: give the changed file "
+            "a new revision in [rule_set] (for example today's date and a number), so that each "
+            "revision stands for one text.",
+        ))
+    return errors
+
+
+def _revision_line(source: str) -> int | None:
+    """The line of ``revision = ...`` in a rule file, if it can be read."""
+    try:
+        lines = pathlib.Path(source).read_text(encoding="utf-8").splitlines()
+    except (OSError, UnicodeDecodeError):
+        return None
+    return next((n for n, line in enumerate(lines, 1) if line.strip().startswith("revision")), None)
 
 
 @dataclass(frozen=True, slots=True)

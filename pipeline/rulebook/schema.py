@@ -101,7 +101,8 @@ TABLES: tuple[Table, ...] = (
             Key(
                 "revision",
                 TEXT,
-                "revision of the file; raise it whenever a value changes",
+                "revision of the file; raise it whenever a value changes (a station refuses a changed "
+                "text under a revision that has judged cells, and keeps that revision's text)",
                 required=True,
                 example='"2026-12-01.1"',
             ),

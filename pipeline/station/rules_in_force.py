@@ -25,6 +25,7 @@ from pipeline.rulebook.book import (
     check_rules_dir,
     load_rule_set,
     load_rules_dir,
+    reused_revisions,
 )
 from pipeline.station.guard import Guard
 from pipeline.station.settings import Settings
@@ -91,6 +92,11 @@ class RulesInForce:
                 rulebook = load_rules_dir(folder)
             except FormgateError as exc:  # edited again between the check and the load
                 problems = [exc]
+        if rulebook is not None:
+            # a changed text under a revision that judged cells is refused like a broken file
+            problems = [*reused_revisions(rulebook.rule_sets, self.ledger.results.rule_sets())]
+            if problems:
+                rulebook = None
         if rulebook is None:
             self.refuse_rules("\n".join(str(p) for p in problems), first=first)
             self.show_refusal(refusal_summary(problems))
