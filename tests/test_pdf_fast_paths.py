@@ -284,36 +284,3 @@ def test_streams_are_deflated_at_the_default_level_and_read_back(
     monkeypatch.setattr(pydyf, "__version__", "999.0")
     with pdf._deflating_at_default_level() as faster:
         assert not faster and pydyf.zlib is zlib
-
-
-def test_lines_broken_once_give_the_same_pdf_bytes(htmls: list[str], monkeypatch: pytest.MonkeyPatch) -> None:
-    from pipeline.report import keptlayouts
-
-    pdf._shared().lines.clear()
-    for html in [*htmls, *reversed(htmls)]:  # each meets the lines the others left
-        kept = pdf.render_pdf(html)
-        with monkeypatch.context() as patch:
-            patch.setattr(keptlayouts, "breaking_lines_once", _not_used)
-            own = pdf.render_pdf(html)
-        assert kept == own
-    assert 0 < len(pdf._shared().lines) <= keptlayouts.MAX_LINES
-
-
-def test_kept_lines_are_the_most_recently_used(htmls: list[str], monkeypatch: pytest.MonkeyPatch) -> None:
-    from pipeline.report import keptlayouts
-
-    monkeypatch.setattr(keptlayouts, "MAX_LINES", 50)
-    lines = pdf._shared().lines
-    lines.clear()
-    reference = pdf.render_pdf(htmls[1])
-    assert len(lines) == 50
-    assert pdf.render_pdf(htmls[1]) == reference
-
-
-def test_no_template_cuts_text_with_an_ellipsis() -> None:
-    """A kept layout is shared by the text boxes that use it; drawing one cut with an ellipsis
-    would change it for all (keptlayouts.py)."""
-    for path in [*pdf.TEMPLATES_DIR.glob("*.css"), *pdf.TEMPLATES_DIR.glob("*.j2")]:
-        text = path.read_text(encoding="utf-8")
-        for word in ("text-overflow", "block-ellipsis", "line-clamp"):
-            assert word not in text, (path.name, word)

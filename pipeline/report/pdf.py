@@ -19,7 +19,6 @@ import threading
 import urllib.parse
 import urllib.request
 import zlib
-from collections import OrderedDict
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from xml.etree import ElementTree
@@ -88,9 +87,8 @@ BASE_URL = TEMPLATES_DIR.as_uri() + "/"  # relative URLs in certificates resolve
 
 @dataclass(frozen=True)
 class _Shared:
-    """What every certificate a process renders shares: the parsed stylesheet and its font, the
-    computed styles worked out with them (stylecache.py) and the line breaks of the texts that
-    fit on one line (keptlayouts.py).
+    """What every certificate a process renders shares: the parsed stylesheet and its font, and
+    the computed styles worked out with them (stylecache.py).
 
     Parsing the stylesheet and loading the font once per process (not per document)
     saves their cost on every certificate and keeps a worker's memory flat: a new
@@ -100,7 +98,6 @@ class _Shared:
     font_config: FontConfiguration
     stylesheet: CSS
     styles: dict[object, object] = field(default_factory=dict)
-    lines: OrderedDict[object, object] = field(default_factory=OrderedDict)
 
 
 @functools.lru_cache(maxsize=1)
@@ -212,11 +209,7 @@ def lay_out(html: str) -> Document:
     shared = _shared()
     html = html.replace(STYLESHEET_LINK, "", 1)
     document = parse_xhtml(html, BASE_URL, TemplateFetcher()) or _html5(html)
-    with (
-        stylecache.sharing_styles(shared.font_config, shared.styles),
-        keptlayouts.keeping_layouts(),
-        keptlayouts.breaking_lines_once(shared.lines),
-    ):
+    with stylecache.sharing_styles(shared.font_config, shared.styles), keptlayouts.keeping_layouts():
         pages: Document = document.render(stylesheets=[shared.stylesheet], font_config=shared.font_config)
     return pages
 
