@@ -101,8 +101,7 @@ TABLES: tuple[Table, ...] = (
             Key(
                 "revision",
                 TEXT,
-                "revision of the file; raise it whenever a value changes (a station refuses a changed "
-                "text under a revision that has judged cells, and keeps that revision's text)",
+                "revision of the file; raise it whenever a value changes",
                 required=True,
                 example='"2026-12-01.1"',
             ),
