@@ -38,7 +38,7 @@ from pipeline.ledger.chain import FIELDS, broken_links, chained_rows
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow, PublishedRow, ResultRow
 from pipeline.report.verification import CODE_DIGITS, spaced
-from pipeline.station.published_files import recorded_path
+from pipeline.station.published_files import located, recorded_path
 from pipeline.station.settings import Settings
 
 _CODE_IN_PDF = re.compile(rb"verification code ([0-9a-f]{%d})" % CODE_DIGITS)
@@ -423,17 +423,7 @@ class Verifier:
     # ---- paths ------------------------------------------------------------------------------
 
     def _locate(self, recorded: str) -> Path:
-        """Where a recorded path is in this station's folders: every published or archived file
-        is ``<folder>/<lot or day>/<name>``, so the same place under this station's folder of that
-        name (a station started from another working folder, or copied elsewhere for an audit,
-        recorded other paths to it); else the path as recorded."""
-        path = Path(recorded)
-        parts = path.parts
-        s = self.settings
-        here = [base / parts[-2] / parts[-1] for base in (s.results, s.certificates, s.archive)
-                if len(parts) >= 3 and parts[-3] == base.name]
-        # a file missing here is missing, even where the path as recorded still leads to one
-        return next((h for h in here if h.exists()), here[0] if here else path)
+        return located(self.settings, recorded)
 
     def _shown(self, path: str | Path) -> str:
         """A path relative to the station folder when it is inside it (shorter to read)."""

@@ -87,17 +87,6 @@ def cmd_lot_list(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _here(folder: Path, recorded: str | None) -> str:
-    """Where a lot's report or export recorded at close is in this station's folder now: it is
-    ``<folder>/<lot>/<name>``, wherever the station was (a station started from another working
-    folder, or copied elsewhere, recorded another path); the path as recorded if not there."""
-    if recorded is None:
-        return "-"
-    path = Path(recorded)
-    here = folder / path.parent.name / path.name
-    return str(here) if here.exists() else recorded
-
-
 def cmd_lot_show(args: argparse.Namespace) -> int:
     """One lot: every cell with its latest decision, fails and holds first, then the cells
     whose file could not be judged."""
@@ -111,8 +100,11 @@ def cmd_lot_show(args: argparse.Namespace) -> int:
               + ("closed " + lot.closed_at.isoformat(timespec="seconds") if lot.closed_at
                  else "open"))
         if lot.report_path:
-            print(f"  report {_here(settings.certificates, lot.report_path)}\n"
-                  f"  export {_here(settings.results, lot.export_path)}")
+            from pipeline.station.published_files import located
+
+            # where they are now: the paths recorded at close may be of another working folder
+            print(f"  report {located(settings, lot.report_path)}\n"
+                  f"  export {located(settings, lot.export_path or '-')}")
         cells = sorted(
             {r.cell_id for r in ledger.results.current_of_lot(args.lot)}
             | {s.reading.cell_id for s in ledger.readings.of(args.lot)}

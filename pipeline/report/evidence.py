@@ -73,14 +73,20 @@ def _panel(frame: Frame, view: RecordView, curve: Curve, y_label: str, *, bottom
     return parts
 
 
+def _nothing_to_draw(
+    parts: list[str], width_mm: float, height_mm: float, x_label: str, y_label: str, message: str
+) -> str:
+    """An evidence plot with nothing measured to draw: its axes and the message, closed."""
+    frame = frame_for(width_mm, height_mm, (0.0, 1.0), (0.0, 1.0))
+    return "\n".join([*parts, *axes(frame, x_label, y_label), no_data(frame, message), "</svg>"])
+
+
 def record_svg(view: RecordView | None, *, width_mm: float, height_mm: float) -> str:
     """Voltage, current and (when measured) temperature against time, stacked, steps shaded."""
     parts = [open_svg(width_mm, height_mm, "the whole record: voltage, current and temperature")]
     if view is None or view.voltage.x.size < 2:
-        frame = frame_for(width_mm, height_mm, (0.0, 1.0), (0.0, 1.0))
-        parts += axes(frame, "Time since the record began (h)", "")
-        parts += [no_data(frame, "no record to draw"), "</svg>"]
-        return "\n".join(parts)
+        return _nothing_to_draw(parts, width_mm, height_mm, "Time since the record began (h)",
+                                "", "no record to draw")
     panels = [(view.voltage, "V (V)"), (view.current, "I (A)")]
     if view.temperature is not None and view.temperature.x.size >= 2:
         panels.append((view.temperature, "T (°C)"))
@@ -129,10 +135,8 @@ def drift_svg(
     parts = [open_svg(width_mm, height_mm, "the final rest, its drift fit and the limit")]
     x, y = finite(rest.voltage if rest is not None else None)
     if rest is None or x.size < 2:
-        frame = frame_for(width_mm, height_mm, (0.0, 1.0), (0.0, 1.0))
-        parts += axes(frame, "Time into the final rest (h)", "Voltage (V)")
-        parts += [no_data(frame, "no final rest measured"), "</svg>"]
-        return "\n".join(parts)
+        return _nothing_to_draw(parts, width_mm, height_mm, "Time into the final rest (h)",
+                                "Voltage (V)", "no final rest measured")
     end_h = float(x[-1])
     fit_end_v = rest.fit_v + rest.slope_mv_per_h / 1000.0 * (end_h - rest.fit_from_h)
     lines = [fit_end_v, rest.fit_v]
@@ -184,10 +188,8 @@ def pulse_svg(
     parts = [open_svg(width_mm, height_mm, "the DCIR pulse, its voltage step and the limit")]
     x, y = finite(pulse.voltage if pulse is not None else None)
     if pulse is None or x.size < 2:
-        frame = frame_for(width_mm, height_mm, (0.0, 1.0), (0.0, 1.0))
-        parts += axes(frame, "Time from the switch (s)", "Voltage (V)")
-        parts += [no_data(frame, "no DCIR pulse measured"), "</svg>"]
-        return "\n".join(parts)
+        return _nothing_to_draw(parts, width_mm, height_mm, "Time from the switch (s)",
+                                "Voltage (V)", "no DCIR pulse measured")
     levels = [pulse.before_v, pulse.at_v]
     limit_v = None
     if limit_mohm is not None:
@@ -263,10 +265,8 @@ def temperature_svg(
     curve = view.temperature if view is not None else None
     x, y = finite(curve)
     if view is None or x.size < 2:
-        frame = frame_for(width_mm, height_mm, (0.0, 1.0), (0.0, 1.0))
-        parts += axes(frame, "Time since the record began (h)", "Temperature (°C)")
-        parts += [no_data(frame, "no temperature measured"), "</svg>"]
-        return "\n".join(parts)
+        return _nothing_to_draw(parts, width_mm, height_mm, "Time since the record began (h)",
+                                "Temperature (°C)", "no temperature measured")
     levels = np.asarray([] if limit_c is None else [limit_c])
     frame = frame_for(
         width_mm, height_mm, span(x, (0.0, 1.0), 0.0), span(np.concatenate((y, levels)), (0.0, 1.0), 0.08)

@@ -12,7 +12,7 @@ line only). Any other layout is made again as before. The layouts are let go as 
 drawn, as before. The same PDF bytes (tests/test_pdf_fast_paths.py compares them).
 
 It fits ``weasyprint.text.line_break.Layout`` of the WeasyPrint pinned in constraints.txt
-(FITS, the same pin as svgtext.py's); with any other version every layout is let go and made
+(pinned.py's FITS); with any other version every layout is let go and made
 again (said once in the log), slower but the same pages.
 """
 
@@ -24,7 +24,7 @@ import logging
 from collections.abc import Iterator
 from typing import Any
 
-from pipeline.report.svgtext import FITS
+from pipeline.report.pinned import weasyprint_fits
 
 log = logging.getLogger(__name__)
 
@@ -32,16 +32,10 @@ log = logging.getLogger(__name__)
 @functools.lru_cache(maxsize=1)
 def _weasyprint() -> dict[str, Any] | None:
     """WeasyPrint's Layout class and its two methods, or None if this is not the WeasyPrint FITS."""
-    import weasyprint
     from weasyprint.text.ffi import ffi, pango
     from weasyprint.text.line_break import Layout
 
-    if weasyprint.__version__ != FITS:
-        log.warning(
-            "WeasyPrint %s is not %s: certificate text is shaped again to be drawn (slower, same page)",
-            weasyprint.__version__,
-            FITS,
-        )
+    if not weasyprint_fits("certificate text is shaped again to be drawn"):
         return None
     return {"Layout": Layout, "deactivate": Layout.deactivate, "reactivate": Layout.reactivate,
             "pango": pango, "NULL": ffi.NULL}

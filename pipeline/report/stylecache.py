@@ -35,8 +35,8 @@ benchmark's naive render) keep WeasyPrint's own per-document cache. The cache is
 whole when it grows past MAX_STYLES (nothing is ever dropped from it piecemeal, so no key can
 outlive the object whose id it holds).
 
-It reproduces ``StyleFor.__init__`` of the WeasyPrint pinned in constraints.txt (FITS, the
-same pin as svgtext.py's), with the cache as the only change; with any other version the
+It reproduces ``StyleFor.__init__`` of the WeasyPrint pinned in constraints.txt (pinned.py's
+FITS), with the cache as the only change; with any other version the
 styles are worked out by WeasyPrint for every document (said once in the log), slower but the
 same pages.
 """
@@ -51,7 +51,7 @@ from collections.abc import Iterator
 from math import inf
 from typing import Any
 
-from pipeline.report.svgtext import FITS
+from pipeline.report.pinned import weasyprint_fits
 
 log = logging.getLogger(__name__)
 
@@ -65,15 +65,9 @@ _active: dict[str, Any] = {}  # while sharing_styles runs: the font configuratio
 @functools.lru_cache(maxsize=1)
 def _weasyprint() -> dict[str, Any] | None:
     """WeasyPrint's style machinery, or None if this WeasyPrint is not the one this fits."""
-    import weasyprint
     import weasyprint.css as css
 
-    if weasyprint.__version__ != FITS:
-        log.warning(
-            "WeasyPrint %s is not %s: each certificate's styles are worked out anew (slower, same page)",
-            weasyprint.__version__,
-            FITS,
-        )
+    if not weasyprint_fits("each certificate's styles are worked out anew"):
         return None
     return {"css": css, "original": css.StyleFor.__init__}
 

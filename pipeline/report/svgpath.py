@@ -13,7 +13,7 @@ PDF bytes (tests/test_pdf.py compares them). Any other ``d`` (curves, arcs, expo
 a command short of numbers) is drawn by WeasyPrint's own ``path``.
 
 It reproduces those commands of ``weasyprint.svg.path.path`` of the WeasyPrint pinned in
-constraints.txt (FITS, the same pin as svgtext.py's); with any other version WeasyPrint draws
+constraints.txt (pinned.py's FITS); with any other version WeasyPrint draws
 every path itself (said once in the log), which is slower but the same page.
 """
 
@@ -28,7 +28,7 @@ from collections.abc import Iterator
 from math import atan2, pi
 from typing import Any
 
-from pipeline.report.svgtext import FITS
+from pipeline.report.pinned import weasyprint_fits
 
 log = logging.getLogger(__name__)
 
@@ -43,14 +43,8 @@ _NEXT = {"M": "L", "m": "l"}  # numbers after a move are lines (SVG 1.1, 8.3.2)
 @functools.lru_cache(maxsize=1)
 def _weasyprint() -> dict[str, Any] | None:
     """WeasyPrint's path drawing, or None if this WeasyPrint is not the one fast_path fits."""
-    import weasyprint
 
-    if weasyprint.__version__ != FITS:
-        log.warning(
-            "WeasyPrint %s is not %s: plot paths are drawn by WeasyPrint (slower, same page)",
-            weasyprint.__version__,
-            FITS,
-        )
+    if not weasyprint_fits("plot paths are drawn by WeasyPrint"):
         return None
     svg = importlib.import_module("weasyprint.svg")
     path_module = importlib.import_module("weasyprint.svg.path")

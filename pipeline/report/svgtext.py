@@ -25,9 +25,10 @@ from collections.abc import Iterator
 from math import inf
 from typing import Any
 
+from pipeline.report.pinned import weasyprint_fits
+
 log = logging.getLogger(__name__)
 
-FITS = "70.0"  # the WeasyPrint whose simple-case text drawing text() reproduces
 _PER_LETTER = ("dx", "dy", "rotate", "textLength", "lengthAdjust", "letter-spacing")
 _TEXT_TAGS = ("a", "text", "textPath", "tspan")  # the tags WeasyPrint draws with its text()
 
@@ -35,14 +36,8 @@ _TEXT_TAGS = ("a", "text", "textPath", "tspan")  # the tags WeasyPrint draws wit
 @functools.lru_cache(maxsize=1)
 def _weasyprint() -> dict[str, Any] | None:
     """WeasyPrint's pieces this module uses, or None if this WeasyPrint is not the one it fits."""
-    import weasyprint
 
-    if weasyprint.__version__ != FITS:
-        log.warning(
-            "WeasyPrint %s is not %s: plot labels are drawn letter by letter (slower, same page)",
-            weasyprint.__version__,
-            FITS,
-        )
+    if not weasyprint_fits("plot labels are drawn letter by letter"):
         return None
     svg = importlib.import_module("weasyprint.svg")
     text_module = importlib.import_module("weasyprint.svg.text")

@@ -26,6 +26,7 @@ from pathlib import Path
 
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import ResultRow
+from pipeline.station.settings import Settings
 
 
 @dataclass(frozen=True, slots=True)
@@ -40,6 +41,20 @@ class Written:
 def recorded_path(path: Path) -> str:
     """The path as the ledger records it: absolute, symbolic links left as they are."""
     return os.path.abspath(path)
+
+
+def located(settings: Settings, recorded: str) -> Path:
+    """Where a recorded path is in this station's folders: every published or archived file
+    is ``<folder>/<lot or day>/<name>``, so the same place under this station's folder of that
+    name (a station started from another working folder, or copied elsewhere for an audit,
+    recorded other paths to it); else the path as recorded."""
+    path = Path(recorded)
+    parts = path.parts
+    here = [base / parts[-2] / parts[-1]
+            for base in (settings.results, settings.certificates, settings.archive)
+            if len(parts) >= 3 and parts[-3] == base.name]
+    # a file missing here is missing, even where the path as recorded still leads to one
+    return next((h for h in here if h.exists()), here[0] if here else path)
 
 
 def note_written(
