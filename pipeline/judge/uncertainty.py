@@ -123,8 +123,10 @@ def with_range(accuracy: AccuracyClass, trace: Trace) -> AccuracyClass:
     up to the 1-2-5 series (the smallest range that could have carried it), said so."""
     if accuracy.current_range_a is not None:
         return accuracy
-    finite = trace.current_a[np.isfinite(trace.current_a)]
-    range_a = range_up(float(np.max(np.abs(finite)))) if len(finite) else 1.0
+    amps = trace.current_a
+    finite = amps if np.isfinite(amps).all() else amps[np.isfinite(amps)]
+    # the largest |I| from the extremes (negation is exact): no array of magnitudes
+    range_a = range_up(max(float(finite.max()), -float(finite.min()))) if len(finite) else 1.0
     return dataclasses.replace(
         accuracy, current_range_a=range_a, source=f"{accuracy.source}; range from the record"
     )
@@ -134,12 +136,14 @@ def _noise(values: FloatArray) -> float:
     """Row-to-row noise (rms) of a slowly varying series: 1.4826 x the median absolute
     deviation of successive differences / sqrt(2), which a slope or a step barely moves
     (Iglewicz and Hoaglin 1993 for the MAD's factor)."""
-    finite = values[np.isfinite(values)]
+    # a record without gaps (the usual case) is used as it is, not copied
+    finite = values if np.isfinite(values).all() else values[np.isfinite(values)]
     if len(finite) < 3:
         return 0.0
-    diffs = np.diff(finite)
-    # at most NOISE_ROWS evenly spread differences: the same estimate within its own scatter
-    diffs = diffs[:: max(1, -(-len(diffs) // NOISE_ROWS))]
+    # at most NOISE_ROWS evenly spread differences: the same estimate within its own scatter;
+    # the differences at rows 0, every, 2 every ... only, not every one of the record's
+    every = max(1, -(-(len(finite) - 1) // NOISE_ROWS))
+    diffs = finite[1::every] - finite[:-1:every]
     return float(1.4826 * np.median(np.abs(diffs - np.median(diffs))) / math.sqrt(2.0))
 
 
@@ -211,9 +215,7 @@ class _Charge:
     switch_ah: float = 0.0  # what the steps' first rows, taken mid-switch, may add or take
 
 
-def _charge(
-    trace: Trace, steps: tuple[Step, ...], indices: tuple[int, ...], u: ChannelU, dt2s: FloatArray
-) -> _Charge:
+def _charge(trace: Trace, steps: tuple[Step, ...], indices: tuple[int, ...], u: ChannelU) -> _Charge:
     ah = sum(steps[i].capacity_ah for i in indices)
     seconds = sum(steps[i].duration_s for i in indices)
     dt2 = switch2 = 0.0
@@ -223,8 +225,8 @@ def _charge(
         t = trace.time_s[step.start : step.stop]
         rows += len(t)
         if len(t) > 1:
-            # the squared intervals between the step's rows: a difference of running sums
-            dt2 += float(dt2s[step.stop - 1] - dt2s[step.start])
+            gaps = np.diff(t)  # the squared intervals between the step's rows, summed
+            dt2 += float(gaps @ gaps)
         switched = step.index == 0 or steps[step.index - 1].kind is not step.kind
         if len(t) >= 5 and switched:  # a constant-voltage part follows its charge smoothly
             # a step's first row shows the switch under way (an overshoot, a ramp): how far
@@ -283,9 +285,6 @@ def budgets(
     """The budget of every metric measured on this record that has an uncertainty
     (``offset_estimated``: the rule set's zero_offset is "corrected", :func:`channel_u`)."""
     u = channel_u(trace, segmentation, accuracy, band, offset_estimated)
-    # running sums of the squared intervals between rows: dt2s[k] = sum of (t[j+1] - t[j])^2, j < k
-    gaps = np.diff(trace.time_s)
-    dt2s = np.concatenate(([0.0], np.cumsum(gaps * gaps)))
     values = metrics.values
     steps = segmentation.steps
     by_index: dict[int, Cycle] = {c.index: c for c in segmentation.cycles}
@@ -297,8 +296,8 @@ def budgets(
 
     first = by_index.get(1)
     if first is not None and first.complete and have("first_cycle_efficiency") is not None:
-        c = _charge(trace, steps, first.charge_steps, u, dt2s)
-        d = _charge(trace, steps, first.discharge_steps, u, dt2s)
+        c = _charge(trace, steps, first.charge_steps, u)
+        d = _charge(trace, steps, first.discharge_steps, u)
         if c.ah > 0 and d.ah > 0:
             out["first_cycle_efficiency"] = _efficiency("first_cycle_efficiency", d, c, u)
             lost = abs(c.ah - d.ah)
@@ -313,8 +312,8 @@ def budgets(
 
     grading = by_index.get(metrics.grading_cycle) if metrics.grading_cycle is not None else None
     if grading is not None and grading.complete:
-        c = _charge(trace, steps, grading.charge_steps, u, dt2s)
-        d = _charge(trace, steps, grading.discharge_steps, u, dt2s)
+        c = _charge(trace, steps, grading.charge_steps, u)
+        d = _charge(trace, steps, grading.discharge_steps, u)
         q = have("grading_capacity_Ah")
         if q is not None:
             out["grading_capacity_Ah"] = Budget("grading_capacity_Ah", (
@@ -347,7 +346,8 @@ def budgets(
         cv = have("grading_cv_duration_s")
         if cv is not None:
             t = trace.time_s
-            interval = float(np.median(np.diff(t))) if len(t) > 1 else 0.0
+            # (the differences are an array of its own: the median may reorder it)
+            interval = float(np.median(np.diff(t), overwrite_input=True)) if len(t) > 1 else 0.0
             out["grading_cv_duration_s"] = Budget("grading_cv_duration_s", (
                 Component("time base", cv * u.time),
                 # each end of the constant-voltage step is known to a sampling interval
