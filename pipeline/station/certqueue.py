@@ -11,8 +11,9 @@ station.py), and writes each PDF atomically, records it as published, and marks 
 rendered, which makes the letters that attach it due.
 
 The judged result comes back from the worker with its verdict and is kept in memory for
-its render (``KEEP`` of them); a certificate whose result is not in memory (after a
-restart, or past ``KEEP`` in a long burst) is rendered by judging the archived input
+its render (``KEEP`` failed and held cells' whole, ``KEEP_PASSED`` passed cells' without the
+plots their one-page certificate never draws); a certificate whose result is not in memory
+(after a restart, or past those in a long burst) is rendered by judging the archived input
 again under the rules it was recorded with (the same bytes, checked by their SHA-256),
 so a certificate promised is never lost. Either way the certificate carries the
 verification code of the result JSON that was published.
@@ -46,12 +47,16 @@ from pipeline.station import faults
 from pipeline.station.channelwatch import suspect_notes
 from pipeline.station.judges import JudgePool
 from pipeline.station.published_files import Written, note_written
-from pipeline.station.worker import Task, judge_task, render_certificate
+from pipeline.station.worker import Task, as_drawn, judge_task, render_certificate
 from pipeline.writing import write_atomic
 
 log = logging.getLogger("formgate.station")
 
-KEEP = 256  # judged results kept in memory for their render (about 0.1 MB each)
+KEEP = 256  # failed and held cells' judged results kept for their render (about 0.1 MB each)
+# passed cells' results kept for theirs, without the plots a passed cell's certificate never
+# draws (worker.as_drawn, about 20 kB each in memory): a rack's burst of passes is rendered
+# from memory, not judged again from its archived input
+KEEP_PASSED = 2048
 LOSSES_TO_GIVE_UP = 3  # renders lost with their worker before the certificate is given up
 LOST_AFTER_S = 600.0  # a render not back after this long counts as lost
 
@@ -113,16 +118,24 @@ class RecordCertificates:
         self.wake = wake
         self.mail_wake = mail_wake
         self.task_for = task_for  # the task that judges a recorded input again (tasks.py)
-        self.kept: OrderedDict[int, CellResult] = OrderedDict()
+        self.kept: OrderedDict[int, CellResult] = OrderedDict()  # failed and held: whole
+        self.kept_passed: OrderedDict[int, CellResult] = OrderedDict()  # as their certificate draws them
         self.in_flight: dict[int, tuple[Future[Rendered], object, float]] = {}
         self.rendered = 0  # since the station started
 
     def keep(self, result_id: int, result: CellResult) -> None:
         """A result just judged and recorded: kept for its certificate's render."""
-        self.kept[result_id] = result
-        self.kept.move_to_end(result_id)
-        while len(self.kept) > KEEP:
-            self.kept.popitem(last=False)  # rendered later by judging its input again
+        drawn = as_drawn(result)
+        kept, most = (self.kept, KEEP) if drawn is result else (self.kept_passed, KEEP_PASSED)
+        kept[result_id] = drawn
+        kept.move_to_end(result_id)
+        while len(kept) > most:
+            kept.popitem(last=False)  # rendered later by judging its input again
+
+    def forget(self, result_id: int) -> None:
+        """A certificate rendered or given up: its result is not needed any more."""
+        self.kept.pop(result_id, None)
+        self.kept_passed.pop(result_id, None)
 
     def in_hand(self) -> int:
         """Renders handed to the workers and not yet back."""
@@ -163,7 +176,7 @@ class RecordCertificates:
         cell_name = f"{cell_file_stem(record.cell_id)}.pdf"
         note = next(iter(suspect_notes(self.ledger, [record], [json.loads(record.result_json)],
                                        record_words=False)), "")
-        result = self.kept.get(result_id)
+        result = self.kept.get(result_id) or self.kept_passed.get(result_id)
         if result is not None:
             return RecordJob(result_id, record.result_json, cell_name, result=result, channel_note=note)
         row = self.ledger.inputs.get(record.input_id)
@@ -211,7 +224,7 @@ class RecordCertificates:
     def give_up(self, result_id: int, error: str) -> None:
         log.error("result %d: its certificate could not be rendered: %s", result_id, error)
         self.ledger.certificates.give_up(result_id, error, now=self.clock())
-        self.kept.pop(result_id, None)
+        self.forget(result_id)
         self.mail_wake.set()  # its letters go without it
 
     def publish(self, result_id: int, pdf: bytes) -> None:
@@ -228,7 +241,7 @@ class RecordCertificates:
         )
         faults.point("after_certificate")
         self.ledger.certificates.rendered(result_id, now=self.clock())
-        self.kept.pop(result_id, None)
+        self.forget(result_id)
         self.rendered += 1
         self.mail_wake.set()  # the letters that attach it are due now
         log.info("%s lot %s: certificate %s (%s)", record.cell_id, record.lot, path.name,

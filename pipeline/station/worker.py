@@ -22,6 +22,7 @@ import signal
 import threading
 import time
 import traceback
+import dataclasses
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -237,6 +238,19 @@ def render_certificate(
         render_html(result, verification_code(json_text), cell_certificate=cell_certificate,
                     channel_note=channel_note)
     )
+
+
+def as_drawn(result: CellResult) -> CellResult:
+    """The result with only what its record certificate draws: a passed cell's certificate is
+    one page without plots (report/certificate.py), so its curves and views (some 75 kB of the
+    80) are left out; a failed or held cell's result is the result itself. The same PDF bytes
+    either way (tests/test_certqueue.py), from a result a fifteenth of the size to keep and send."""
+    if result.verdict.kind is not VerdictKind.PASS:
+        return result
+    metrics = dataclasses.replace(
+        result.metrics, grading_curve=None, ica_curve=None, record=None, rest=None, pulse=None
+    )
+    return dataclasses.replace(result, metrics=metrics)
 
 
 def judge_task(task: Task) -> CellResult | ReadingFile:
