@@ -238,6 +238,38 @@ def test_time_since_the_step_began_becomes_elapsed_time() -> None:
     np.testing.assert_allclose(trace.time_s, elapsed, atol=1e-4)
 
 
+def test_time_that_runs_on_across_the_steps_is_not_read_as_time_since_the_step_began() -> None:
+    # a record in the cycle file v1 layout: its time is since the record began, never restarting
+    rows = [f"{10.0 * k + 0.1:.1f},3.3,1.0,{1 + k // 4}" for k in range(12)]
+    with pytest.raises(InputError) as caught:
+        read_cycle_file(
+            _csv("time_s,voltage_V,current_A,step", rows),
+            "c.csv",
+            _profile('[time]\nstamps = "step elapsed"\n'),
+        )
+    assert str(caught.value) == (
+        "c.csv, line 9, column 1: time_s does not restart with the step: it is 40.1 where step 2 "
+        "begins, after 30.1 at the end of step 1 on line 8, and it runs on at 2 of 2 step changes.\n"
+        '  The column reads as time since the record began: set [time] stamps = "elapsed" in the '
+        'import profile layout.toml (stamps = "step elapsed" is for time that starts again with '"
+        "each step)."
+    )
+
+
+def test_time_since_the_step_began_that_runs_on_over_a_short_step_still_reads() -> None:
+    # a step of one row shorter than the next step's first interval: the time goes on there, but
+    # restarts at the other step changes
+    since = [1.0, 2.0, 3.0, 0.5, 2.0, 4.0, 1.0, 2.0]
+    step = [1, 1, 1, 2, 3, 3, 4, 4]
+    rows = [f"{t},3.3,1.0,{s}" for t, s in zip(since, step, strict=True)]
+    trace = read_cycle_file(
+        _csv("t_s,voltage_V,current_A,step", rows),
+        "c.csv",
+        _profile('[time]\nstamps = "step elapsed"\n[columns]\ntime = "t_s"\n'),
+    )
+    np.testing.assert_allclose(trace.time_s, [1.0, 2.0, 3.0, 3.5, 5.5, 7.5, 8.5, 9.5])
+
+
 def test_time_since_the_step_began_without_a_step_column_is_refused() -> None:
     with pytest.raises(InputError) as caught:
         read_cycle_file(

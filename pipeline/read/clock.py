@@ -13,6 +13,9 @@ A cycler writes time in one of three ways (the profile's ``[time] stamps``):
 - step elapsed: time since the current step began. Each step's first row continues from
   the previous step's last row, so a cycler that writes the time since the step's start
   (one sampling interval at its first row) gives back the record's elapsed time exactly.
+  Such time starts again where the step changes; a column that runs on across most step
+  changes is time since the record began, and is refused rather than added up step by step
+  (which would make a record several times as long as it is).
 
 A clock that goes back (after zones and offsets are applied) is an error naming both rows.
 Pure functions of the raw column and the profile; messages come located through the
@@ -63,6 +66,54 @@ def step_elapsed(step_time_s: FloatArray, step: IntArray) -> FloatArray:
     lengths = np.diff(bounds)
     result: FloatArray = step_time_s + np.repeat(offsets, lengths)
     return result
+
+
+def time_since_step_began(
+    table: RawTable, profile: Profile, step_time_s: FloatArray, step: IntArray
+) -> FloatArray:
+    """The time column read as time since the step began -> time since the record began.
+
+    Raises InputError at the first step change where the time runs on, when it runs on at
+    more than half of the step changes (:func:`step_time_runs_on`).
+    """
+    _refuse_running_on(table, profile, step_time_s, step)
+    return step_elapsed(step_time_s, step)
+
+
+def step_time_runs_on(step_time_s: FloatArray, step: IntArray) -> tuple[IntArray, int]:
+    """The rows that begin a step where the time runs on, and the number of step changes.
+
+    The time runs on where a step's first row is later than the previous step's last row;
+    time since the step began starts again there, except after a step shorter than the next
+    step's first interval. Step changes with a time missing on either side are not counted.
+
+    >>> step_time_runs_on(np.array([5.0, 10, 1, 2, 3, 4]), np.array([1, 1, 2, 2, 3, 3]))
+    (array([4]), 2)
+    """
+    starts = np.flatnonzero(np.diff(step) != 0) + 1
+    before, after = step_time_s[starts - 1], step_time_s[starts]
+    counted = np.isfinite(before) & np.isfinite(after)
+    runs_on: IntArray = starts[counted & (after > before)]
+    return runs_on, int(counted.sum())
+
+
+def _refuse_running_on(table: RawTable, profile: Profile, step_time_s: FloatArray, step: IntArray) -> None:
+    runs_on, changes = step_time_runs_on(step_time_s, step)
+    if not changes or 2 * len(runs_on) <= changes:
+        return
+    row = int(runs_on[0])
+    index = table.columns["time"]
+    raw = table.frame[index]
+    raise InputError(
+        f"{table.header(index)} does not restart with the step: it is {shown_value(str(raw.iloc[row]))} "
+        f"where step {step[row]} begins, after {shown_value(str(raw.iloc[row - 1]))} at the end of "
+        f"step {step[row - 1]} on {table.place(row - 1)}, and it runs on at {len(runs_on)} of "
+        f"{changes} step changes",
+        table.at(row, index),
+        'The column reads as time since the record began: set [time] stamps = "elapsed" in '
+        f'the import profile {profile.name} (stamps = "step elapsed" is for time that starts '
+        "again with each step).",
+    )
 
 
 def date_time_elapsed(table: RawTable, index: int, profile: Profile) -> tuple[FloatArray, str]:

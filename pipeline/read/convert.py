@@ -18,7 +18,7 @@ import numpy as np
 from pipeline.errors import InputError
 from pipeline.model import FloatArray, Note, Trace
 from pipeline.read.bounds import shown_value
-from pipeline.read.clock import date_time_elapsed, step_elapsed
+from pipeline.read.clock import date_time_elapsed, time_since_step_began
 from pipeline.read.counters import counter_notes
 from pipeline.read.cyclenumbers import numbers, whole_numbers
 from pipeline.read.profile import Profile
@@ -38,7 +38,7 @@ def to_trace(table: RawTable, profile: Profile) -> Trace:
     else:
         time_s = numbers(table, columns["time"], profile, TIME_UNITS[profile.time_unit])
         if profile.time_stamps == "step elapsed":
-            time_s = step_elapsed(time_s, whole["step"])
+            time_s = time_since_step_began(table, profile, time_s, whole["step"])
     voltage = numbers(table, columns["voltage"], profile, VOLTAGE_UNITS[profile.voltage_unit])
     modes = mode_kinds(table, profile) if profile.signed_by_mode else None
     if modes is not None:
