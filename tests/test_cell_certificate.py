@@ -248,3 +248,23 @@ def test_the_certificate_and_json_always_show_the_latest_decision(
     assert word == history[-1].verdict.upper()
     assert html.count("(standing)") == 1
     assert bool(standing_why(s)) or history[-1].verdict == "pass"
+
+
+def test_a_cell_passed_on_one_record_alone_has_a_one_page_certificate() -> None:
+    """The most common cell of a line: one file holding the whole program, passed, no readings,
+    no lot screen, no review. Its certificate is one page, traceability included, and a rule
+    set without lot screens says so in a line, not in an empty table."""
+    whole = StageEntry(("formation", "grading"), ("formation", "grading"), "INV-0042.csv", SHA_F,
+                       "pass", "", (), _at(0), "invented-rules 7",
+                       (("grading_capacity_Ah", 5.0629), ("dcir_mOhm", 23.09)),
+                       "INV-0042.json", "INV-0042.pdf")
+    s = dataclasses.replace(
+        summary(_decision(1, "pass", cause="record"), records=(whole,)),
+        needed=("formation", "grading"), history=(_decision(1, "pass", cause="record"),),
+        aging=None, screens=(),
+    )
+    pages = _pages(_pdf(s))
+    assert len(pages) == 1, f"{len(pages)} pages"
+    assert "Traceability" in pages[0] and "Verification code" in pages[0]
+    assert "The rule set has no lot screen." in pages[0]
+    assert "Screen / metric" not in pages[0]  # no table header over nothing
