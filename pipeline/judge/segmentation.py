@@ -45,6 +45,16 @@ CV_BAND_V = 0.010
 CV_CURRENT_FRACTION = 0.95
 # Shortest constant-voltage tail that counts as a CV step (s): shorter is CC ripple.
 MIN_CV_S = 30.0
+# Without a step column, the first row after a step change may be taken while the channel
+# switches (an overshoot, or a current still on its way to the new level: common practice to
+# expect). After a CV tail such a row can still carry enough current to join the charge, with
+# its voltage already out of the hold. At most this many trailing rows are looked at as
+# switch rows: a row out of the hold, or whose current falls below SWITCH_DROP of what the
+# tail's own decay from the rows before it gives (a CV current decays smoothly; a switch
+# takes it most of the way to the next step's at once). Our own sizes: the channel model's
+# switch leaves at most 30 % of the change to go in its one row.
+SWITCH_ROWS = 2
+SWITCH_DROP = 0.5
 
 def sample_weights(time_s: FloatArray) -> FloatArray:
     """Per-row time weights (s) such that sum(w * y) is the trapezoid integral of y dt.
@@ -84,6 +94,26 @@ def weights_between(time_s: FloatArray, start: int, stop: int) -> FloatArray:
     return sample_weights(time_s[lo : stop + 1])[start - lo : stop - lo]
 
 
+def _switch_rows(held: np.ndarray, amps: FloatArray) -> int:
+    """How many of the last rows of a step were taken during the switch to the next step.
+
+    ``held`` and ``amps``: whether each of the step's last rows (SWITCH_ROWS + 2 of them,
+    or fewer) has its voltage within the hold, and its |I|. A last row is a switch row when
+    it is out of the hold, or when its current is below SWITCH_DROP times the one the decay
+    of the two rows before it leads to; at most SWITCH_ROWS are, and two rows stay.
+    """
+    count = 0
+    while count < SWITCH_ROWS and len(amps) - count >= 3:
+        last = len(amps) - 1 - count
+        before, before2 = float(amps[last - 1]), float(amps[last - 2])
+        # the decay from row to row before it (at most 1: a current that rises is no decay)
+        decay = min(1.0, before / before2) if before2 > 0 else 1.0
+        if held[last] and float(amps[last]) >= SWITCH_DROP * decay * before:
+            break
+        count += 1
+    return count
+
+
 def _split_cv(
     voltage_v: FloatArray,
     current_a: FloatArray,
@@ -91,19 +121,34 @@ def _split_cv(
     start: int,
     stop: int,
     sign: int,
-) -> int | None:
-    """Row where a constant-voltage tail begins inside rows [start, stop), or None.
+    switch_rows: bool = False,
+) -> tuple[int, int] | None:
+    """(first, stop) rows of the constant-voltage tail inside rows [start, stop), or None.
 
     The tail is the final run of rows whose voltage stays within CV_BAND_V of the
     step's extreme (highest for charge, lowest for discharge); within it, CV starts
-    where |I| first falls below CV_CURRENT_FRACTION of the constant current.
+    where |I| first falls below CV_CURRENT_FRACTION of the constant current. With
+    ``switch_rows`` (the record has no step column) the step's last rows may be taken
+    during the switch to the next step (_switch_rows): the tail is looked for before them,
+    and ends where they begin; otherwise it ends with the step (``stop``).
     """
     v = voltage_v[start:stop]
     if len(v) < 3:
         return None
     # held: V * sign >= max(V * sign) - CV_BAND_V, compared without copies of the step
     # (for a discharge, -V >= -min(V) - band is V <= min(V) + band, exactly: negation is)
-    held = v >= v.max() - CV_BAND_V if sign > 0 else v <= v.min() + CV_BAND_V
+    extreme = int(v.argmax() if sign > 0 else v.argmin())
+    held = v >= v[extreme] - CV_BAND_V if sign > 0 else v <= v[extreme] + CV_BAND_V
+    if switch_rows and len(v) > SWITCH_ROWS + 2:
+        last = SWITCH_ROWS + 2
+        end = len(v) - _switch_rows(held[-last:], np.abs(current_a[stop - last : stop]))
+        if end < len(v):
+            v = v[:end]
+            if extreme >= end:  # the extreme was a switch row's: the hold is the rows' before
+                extreme = int(v.argmax() if sign > 0 else v.argmin())
+                held = v >= v[extreme] - CV_BAND_V if sign > 0 else v <= v[extreme] + CV_BAND_V
+            else:
+                held = held[:end]
     # after the last row that is not held, so the tail is held throughout (the first
     # False from the end, found without a list of every row not held)
     tail = 0 if held.all() else len(held) - int(np.argmin(held[::-1]))
@@ -115,17 +160,18 @@ def _split_cv(
     # the step opened with
     # (|I| of those rows and of the tail alone, not of the whole step)
     stride = max(1, -(-tail // 2048))  # ceiling division
-    i = current_a[start:stop]
+    i = current_a[start : start + len(v)]
     i_cc = median(np.abs(i[:tail:stride])) if tail > 0 else abs(float(i[0]))
     decaying = np.flatnonzero(np.abs(i[tail:]) < CV_CURRENT_FRACTION * i_cc)
     if len(decaying) == 0:
         return None
     # a block held at constant voltage from its first row is CV throughout
     cv_start = start if tail == 0 else start + tail + int(decaying[0])
+    stop = start + len(v)
     end_t = time_s[stop] if stop < len(time_s) else time_s[stop - 1]
     if end_t - time_s[cv_start] < MIN_CV_S:
         return None
-    return cv_start
+    return cv_start, stop
 
 
 def _make_step(
@@ -186,19 +232,31 @@ def split_steps(
         kinds = clean_kinds(row_kinds(trace.current_a, band), w, charge_as, one_c_a)
         blocks = [(a, b, int(kinds[a])) for a, b in runs(kinds)]
     steps: list[Step] = []
-    for a, b, k in blocks:
+    handed = None  # rows a CV tail's switch rows hand on to the rest that follows
+    for n, (a, b, k) in enumerate(blocks):
+        if handed is not None:
+            a, handed = handed, None
         kind = _KIND[k]
         if kind is StepKind.REST:
             steps.append(_make_step(trace, w, len(steps), kind, StepMode.NONE, a, b))
             continue
-        cv = _split_cv(trace.voltage_v, trace.current_a, trace.time_s, a, b, k)
+        cv = _split_cv(
+            trace.voltage_v, trace.current_a, trace.time_s, a, b, k, switch_rows=trace.step is None
+        )
         if cv is None:
             steps.append(_make_step(trace, w, len(steps), kind, StepMode.CC, a, b))
-        elif cv == a:
-            steps.append(_make_step(trace, w, len(steps), kind, StepMode.CV, a, b))
+            continue
+        cv_start, cv_stop = cv
+        # the switch rows after the tail are the next step's first rows, as a step column
+        # has them, when that step is a rest; before a step of current (or the record's
+        # end) they stay where they are
+        if cv_stop < b and n + 1 < len(blocks) and blocks[n + 1][2] == 0:
+            handed = cv_stop
         else:
-            steps.append(_make_step(trace, w, len(steps), kind, StepMode.CC, a, cv))
-            steps.append(_make_step(trace, w, len(steps), kind, StepMode.CV, cv, b))
+            cv_stop = b
+        if cv_start > a:
+            steps.append(_make_step(trace, w, len(steps), kind, StepMode.CC, a, cv_start))
+        steps.append(_make_step(trace, w, len(steps), kind, StepMode.CV, cv_start, cv_stop))
     cycles = group_cycles(steps, trace)
     notes.extend(_check_cycle_column(trace, cycles, steps))
     return Segmentation(tuple(steps), tuple(cycles), tuple(notes), band)
