@@ -107,13 +107,13 @@ def _key_values(rows: Sequence[Sequence[object]]) -> tuple[list[tuple[str, str]]
 
 def guess_workbook(data: bytes, name: str) -> str:
     """The profile for a workbook (.xlsx, .xls, .ods). Raises InputError."""
-    from pipeline.read import workbook
+    from pipeline.read.binaries import AGAIN_HINT
 
     book = _open_book(data, name)
     try:
         sheets = list(book.names)
         if not sheets:
-            raise InputError("the workbook has no sheets", SourceRef(name), workbook.AGAIN_HINT)
+            raise InputError("the workbook has no sheets", SourceRef(name), AGAIN_HINT)
         grids = {sheet: book.grid(sheet) for sheet in sheets}
     finally:
         book.close()

@@ -22,6 +22,7 @@ import pandas as pd
 
 from pipeline.errors import InputError
 from pipeline.model import RowPlaces, SourceRef
+from pipeline.read.binaries import size_words, wrong_kind
 from pipeline.read.bounds import MAX_METADATA_ENTRIES, check_length, fits, shown, too_long
 from pipeline.read.cyclehead import CUT_SHORT_HINT, Head, collect_metadata
 from pipeline.read.cyclenumbers import find_columns
@@ -29,7 +30,6 @@ from pipeline.read.profile import Profile
 from pipeline.read.profile_keys import TIME_UNITS
 from pipeline.read.sniff import PARQUET_MAGIC
 from pipeline.read.table import RawTable
-from pipeline.read.workbook import size_words, wrong_kind
 
 # Key/value entries that pandas and Arrow write to rebuild their own types: not the record's.
 OWN_ENTRIES = (b"pandas", b"ARROW:schema")

@@ -19,12 +19,9 @@ shows them (12, not 12.0; a date in ISO 8601). Every row is placed by its sheet 
 row number the spreadsheet program shows, for messages.
 
 The workbook is read by python-calamine; openpyxl reads what calamine cannot (e.g. an
-.xlsx packed with bzip2). Before either unpacks anything, the parts of a zip package are
-measured (each deflate stream is run through zlib and counted, whatever sizes the
-package declares) against the unpacked-size cap, so a zip bomb is refused holding at most
-one block of it; and each sheet's span (every cell from A1 to its last row and column, as
-calamine lays it out, repeated rows and cells of an .ods counted) against the cap, so two
-cells far apart or a row repeated a million times are refused before they take gigabytes.
+.xlsx packed with bzip2). Before either unpacks anything, the zip package's parts and each
+sheet's span are measured against the unpacked-size cap (:mod:`pipeline.read.binaries`), so
+a zip bomb or a sheet laid out over billions of cells is refused before it takes gigabytes.
 """
 
 from __future__ import annotations
@@ -33,8 +30,6 @@ import datetime as dt
 import io
 import re
 import warnings
-import zipfile
-import zlib
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
 from itertools import repeat
@@ -45,273 +40,19 @@ import pandas as pd
 
 from pipeline.errors import InputError
 from pipeline.model import RowPlaces, SourceRef, column_letters
+from pipeline.read.binaries import AGAIN_HINT, check_unpacked_size, damaged, wrong_kind, zip_parts
 from pipeline.read.bounds import MAX_METADATA_ENTRIES, check_length, fits, shown, too_long
-from pipeline.read.cyclehead import CUT_SHORT_HINT, GZIP_MAGIC, Head, collect_metadata
+from pipeline.read.cyclehead import CUT_SHORT_HINT, Head, collect_metadata
 from pipeline.read.cyclenumbers import find_columns
 from pipeline.read.profile import Profile
 from pipeline.read.profile_keys import TIME_UNITS, V1_METADATA
-from pipeline.read.sniff import PARQUET_MAGIC, ZIP_MAGIC, binary_kind, not_text_error
+from pipeline.read.sniff import binary_kind
 from pipeline.read.table import RawTable
 
 # A cell as the readers give it: float, int, str, bool, a date, time, date-time or duration;
 # "" is an empty cell.
 Cell = Any
-_ZIP_KINDS = ("workbook (.xlsx)", "workbook (.ods)")
-_INFLATE_BLOCK = 1 << 20
 _SHOWN_SHEETS = 12
-AGAIN_HINT = "Copy the file again, or open it in its spreadsheet program and save or export it again."
-
-
-# ---------------------------------------------------------------- what the file is
-
-
-def size_words(cap: int) -> str:
-    """The cap in words: '256 MiB', or bytes when it is no whole number of MiB."""
-    return f"{cap // 2**20} MiB" if cap % 2**20 == 0 else f"{cap:,} bytes"
-
-
-def wrong_kind(data: bytes, name: str, profile: Profile, wanted: str) -> InputError | None:
-    """The error for a file that is not what ``profile`` reads (``wanted``: workbook or Parquet file).
-
-    None when the first bytes are those of a ``wanted`` file (or of a zip package, which
-    may be a workbook the signature test does not know).
-    """
-    fmt = "workbook" if wanted == "workbook" else "parquet"
-    says = f'its import profile {profile.name} says [file] format = "{fmt}"'
-    if not data:
-        return InputError("the file is empty", SourceRef(name), CUT_SHORT_HINT)
-    kind = binary_kind(data)
-    if kind == "password-protected workbook":
-        return not_text_error(kind, name, profile)
-    if wanted == "workbook" and kind is not None and kind != "Parquet file":
-        return None
-    if wanted == "Parquet file" and data.startswith(PARQUET_MAGIC):
-        return None
-    if kind is not None:
-        other = "parquet" if kind == "Parquet file" else "workbook"
-        return InputError(
-            f"the file is a {kind}, not a {wanted}; {says}",
-            SourceRef(name),
-            f'Read it through a profile with [file] format = "{other}".'
-            if kind != "zip archive"
-            else "Unpack it and give formgate the files inside.",
-        )
-    if data.startswith(GZIP_MAGIC):
-        return InputError(
-            f"the file is gzip-compressed data, not a {wanted}; {says}",
-            SourceRef(name),
-            f"Give formgate the {wanted} itself, not compressed.",
-        )
-    if b"\0" not in data[:4096]:
-        return InputError(
-            f"the file is text, not a {wanted}; {says}",
-            SourceRef(name),
-            'Read it through a profile with [file] format = "text", or give the profile '
-            f"the {wanted} the cycler wrote.",
-        )
-    return InputError(
-        f"the file is not a {wanted}: its first bytes are those of no {wanted} formgate reads",
-        SourceRef(name),
-        AGAIN_HINT if wanted == "workbook" else "Copy the file again, or write it again as Parquet.",
-    )
-
-
-def _too_large(name: str, cap: int) -> InputError:
-    return InputError(
-        f"the workbook holds more than {size_words(cap)} once unpacked, the most formgate reads",
-        SourceRef(name),
-        "Check that the file is one cell's record.",
-    )
-
-
-def _damaged(name: str, why: str) -> InputError:
-    why = (why.strip().splitlines() or ["no reason given"])[0]
-    why = why if len(why) <= 160 else why[:157] + "..."
-    return InputError(
-        f"the workbook cannot be read: it is damaged or cut short ({why})", SourceRef(name), AGAIN_HINT
-    )
-
-
-def _check_unpacked_size(data: bytes, name: str, kind: str | None, cap: int) -> bool:
-    """Refuse a workbook that unpacks past ``cap``; True when calamine can read its packing.
-
-    An .xls file is not packed: its size is its bytes. A zip package's parts are each
-    inflated here and counted (never more than ``cap`` bytes and one block), because the
-    sizes a package declares may lie. Parts packed other than stored or deflated (which
-    every spreadsheet program writes) are left to openpyxl, which reads through Python's
-    zipfile and never unpacks more of a part than its declared size, checked here.
-    """
-    if len(data) > cap:
-        raise _too_large(name, cap)
-    if kind not in _ZIP_KINDS:
-        return True
-    parts = _zip_parts(data, name)
-    if sum(part.file_size for part in parts) > cap:
-        raise _too_large(name, cap)
-    if any(part.compress_type not in (zipfile.ZIP_STORED, zipfile.ZIP_DEFLATED) for part in parts):
-        return False
-    view = memoryview(data)
-    total = 0
-    for part in parts:
-        total += _unpacked_size(view, part, name, cap - total)
-        if total > cap:
-            raise _too_large(name, cap)
-    _check_spans(data, parts, name, cap)
-    return True
-
-
-# A sheet's part: an .xlsx or .xlsm keeps each sheet in a part of its own, an .ods all of them in one.
-_SHEET_PART = re.compile(r"xl/worksheets/[^/]+\.xml|content\.xml")
-# What one cell of a sheet's span may take in the reader's memory, at most: calamine lays a
-# sheet out as every cell between its first and its last (32 bytes each), so two cells far
-# apart, or a row repeated a million times, take gigabytes from a few bytes of XML. A real
-# sheet's cell takes 30 or more bytes of XML, so no sheet within the unpacked-size cap is
-# refused for its span.
-CELL_BYTES = 16
-_REF = rb'r="([A-Z]{0,3})([0-9]{0,12})"'
-
-
-def _check_spans(data: bytes, parts: list[zipfile.ZipInfo], name: str, cap: int) -> None:
-    """Refuse a workbook whose sheets, laid out cell by cell, would take more than ``cap`` bytes."""
-    limit = cap // CELL_BYTES
-    with zipfile.ZipFile(io.BytesIO(data)) as package:
-        for part in parts:
-            if not _SHEET_PART.fullmatch(part.filename):
-                continue
-            try:
-                xml = package.read(part)
-            except (zipfile.BadZipFile, OSError, ValueError, EOFError, zlib.error, RuntimeError) as exc:
-                raise _damaged(name, f"the part {part.filename} cannot be unpacked: {exc}") from None
-            cells = _ods_cells(xml) if part.filename == "content.xml" else _xlsx_cells(xml, limit)
-            if cells > limit:
-                raise InputError(
-                    f"the workbook's sheets span {cells:,} cells from their first to their last, "
-                    f"more than the {limit:,} formgate lays out",
-                    SourceRef(name),
-                    "Check that the file is one cell's record, with no stray cell far below or "
-                    "right of the rows.",
-                )
-
-
-def _xlsx_cells(xml: bytes, limit: int) -> int:
-    """How many cells the sheet spans from A1 to its last row and column (at most; cheap when it is small)."""
-    plain = b":sheetData" not in xml and (
-        xml.count(b"<c ") + xml.count(b"<c>") + xml.count(b"<c/>") == xml.count(b'<c r="')
-    )
-    if not plain:  # a cell without its reference, or prefixed names: place every cell
-        return _xlsx_cells_in_order(xml)
-    digits = len(str(max(xml.count(b"<row"), 1)))
-    if not re.search(rb'<c r="(?:[A-Z]{2}|[A-Z][0-9]{%d})' % (digits + 1), xml):
-        bound = 26 * (int(10**digits) - 1)  # columns A to Z, rows of at most ``digits`` digits
-        if bound <= limit:
-            return bound
-    columns = {_column_number(c) for c in set(re.findall(rb'<c r="([A-Z]{1,3})', xml))}
-    rows: list[bytes] = re.findall(rb'<c r="[A-Z]{1,3}([0-9]{1,12})', xml)
-    return max(columns, default=0) * max(map(int, rows), default=0)
-
-
-def _xlsx_cells_in_order(xml: bytes) -> int:
-    row = column = last_row = last_column = 0
-    for found in re.finditer(rb"<(?:[\w.-]+:)?(row|c)\b([^>]*)>", xml):
-        ref = re.search(rb"\b" + _REF, found[2])
-        if found[1] == b"row":
-            row, column = (int(ref[2]) if ref and ref[2] else row + 1), 0
-            continue
-        if ref and ref[1]:
-            column = _column_number(ref[1])
-        else:
-            column += 1
-        last_row = max(last_row, int(ref[2]) if ref and ref[2] else row)
-        last_column = max(last_column, column)
-    return last_row * last_column
-
-
-def _column_number(letters: bytes) -> int:
-    number = 0
-    for letter in letters:
-        number = number * 26 + letter - 64
-    return number
-
-
-_ODS_TOKEN = re.compile(rb"<(/?)table:(table-row|table-cell|covered-table-cell|table)\b([^>]*)>")
-_ODS_VALUED = re.compile(
-    rb'office:(?:value|string-value|date-value|time-value|boolean-value)=|table:formula=|office:value-type="string"'
-)
-
-
-def _ods_cells(xml: bytes) -> int:
-    """How many cells an .ods file's sheets span, repeated rows and cells counted as laid out."""
-    total = 0
-    rows: list[tuple[int, int]] = []  # (times repeated, cells up to the last with a value)
-    repeats = position = width = 0
-    for closing, kind, attributes in _ODS_TOKEN.findall(xml):
-        if kind == b"table-cell" or kind == b"covered-table-cell":
-            if not closing:
-                position += _repeated(attributes, _COLUMNS_REPEATED)
-                if _ODS_VALUED.search(attributes):
-                    width = position
-        elif kind == b"table-row":
-            if closing:
-                rows.append((repeats, width))
-            else:
-                repeats, position, width = _repeated(attributes, _ROWS_REPEATED), 0, 0
-        else:  # a sheet begins or ends
-            if closing:
-                total += _table_cells(rows)
-            rows = []
-    return total
-
-
-_ROWS_REPEATED = re.compile(rb'table:number-rows-repeated="([0-9]{1,12})"')
-_COLUMNS_REPEATED = re.compile(rb'table:number-columns-repeated="([0-9]{1,12})"')
-
-
-def _repeated(attributes: bytes, pattern: re.Pattern[bytes]) -> int:
-    if b"-repeated=" not in attributes:
-        return 1
-    found = pattern.search(attributes)
-    return int(found[1]) if found else 1
-
-
-def _table_cells(rows: list[tuple[int, int]]) -> int:
-    filled = [k for k, (_, width) in enumerate(rows) if width]
-    if not filled:
-        return 0
-    span = rows[filled[0] : filled[-1] + 1]
-    return sum(times for times, _ in span) * max(width for _, width in span)
-
-
-def _zip_parts(data: bytes, name: str) -> list[zipfile.ZipInfo]:
-    try:
-        with zipfile.ZipFile(io.BytesIO(data)) as package:
-            return package.infolist()
-    except (zipfile.BadZipFile, OSError, ValueError, EOFError, KeyError, NotImplementedError) as exc:
-        raise _damaged(name, f"not a valid zip package: {exc}") from None
-
-
-def _unpacked_size(view: memoryview, part: zipfile.ZipInfo, name: str, room: int) -> int:
-    """What the part unpacks to, counted block by block and given up past ``room`` bytes."""
-    start = part.header_offset
-    header = bytes(view[start : start + 30])
-    if len(header) < 30 or header[:4] != ZIP_MAGIC:
-        raise _damaged(name, f"the part {part.filename} is not where the package says")
-    start += 30 + int.from_bytes(header[26:28], "little") + int.from_bytes(header[28:30], "little")
-    if part.compress_type == zipfile.ZIP_STORED:
-        return min(part.compress_size, max(len(view) - start, 0))
-    inflater = zlib.decompressobj(-zlib.MAX_WBITS)
-    total, pos = 0, start
-    try:
-        while not inflater.eof and pos < len(view) and total <= room:
-            block = view[pos : pos + _INFLATE_BLOCK]
-            pos += len(block)
-            total += len(inflater.decompress(block, _INFLATE_BLOCK))
-            while inflater.unconsumed_tail and not inflater.eof and total <= room:
-                total += len(inflater.decompress(inflater.unconsumed_tail, _INFLATE_BLOCK))
-    except zlib.error as exc:
-        raise _damaged(name, f"the part {part.filename} is not valid deflate data: {exc}") from None
-    if total <= room and not inflater.eof:
-        raise _damaged(name, f"the part {part.filename} ends early")
-    return total
 
 
 # ---------------------------------------------------------------- the readers of workbooks
@@ -418,14 +159,14 @@ def read_workbook_table(data: bytes, name: str, profile: Profile, max_uncompress
         raise refused
     kind = binary_kind(data)
     if kind == "zip archive":  # neither an .xlsx, .xlsm nor an .ods package, or a damaged one
-        _zip_parts(data, name)
+        zip_parts(data, name)
         raise InputError(
             f"the file is a zip archive, not a workbook; its import profile {profile.name} says "
             '[file] format = "workbook"',
             SourceRef(name),
             "Unpack it and give formgate the files inside.",
         )
-    fast = _check_unpacked_size(data, name, kind, max_uncompressed_bytes)
+    fast = check_unpacked_size(data, name, kind, max_uncompressed_bytes)
     why = "its parts are packed in a way the workbook reader does not know"
     if fast:
         try:
@@ -437,7 +178,7 @@ def read_workbook_table(data: bytes, name: str, profile: Profile, max_uncompress
             return _read_book(_OpenpyxlBook(data), name, profile)
         except _Unreadable:
             pass
-    raise _damaged(name, why)
+    raise damaged(name, why)
 
 
 def open_book(data: bytes, name: str, cap: int) -> Book:
@@ -445,7 +186,7 @@ def open_book(data: bytes, name: str, cap: int) -> Book:
     what is unpacked: python-calamine, else openpyxl for an .xlsx calamine cannot open.
     Raises InputError. Close it when done (profile guessing reads its sheets' cells)."""
     kind = binary_kind(data)
-    fast = _check_unpacked_size(data, name, kind, cap)
+    fast = check_unpacked_size(data, name, kind, cap)
     why = "its parts are packed in a way the workbook reader does not know"
     if fast:
         try:
@@ -457,7 +198,7 @@ def open_book(data: bytes, name: str, cap: int) -> Book:
             return _OpenpyxlBook(data)
         except _Unreadable:
             pass
-    raise _damaged(name, why)
+    raise damaged(name, why)
 
 
 def _read_book(book: Book, name: str, profile: Profile) -> RawTable:
