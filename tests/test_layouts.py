@@ -547,13 +547,33 @@ def test_the_text_examples_do_not_read_as_cycle_file_v1() -> None:
 # ----------------------------------------------------------------- a station
 
 
+def assert_fields_alike(got: dict[str, object], twin: dict[str, object], where: str) -> None:
+    """The same keys and values, floats within the module's tolerance."""
+    assert set(got) == set(twin), where
+    for name, value in twin.items():
+        if isinstance(value, float):
+            assert got[name] == pytest.approx(value, rel=REL, abs=ABS), f"{where}: {name}"
+        else:
+            assert got[name] == value, f"{where}: {name}"
+
+
+STATION_GLOBS = {  # layout -> the glob a station picks its files up by
+    "date-time text": "*_clock.csv",
+    "ISO 8601 offsets": "*_iso.csv",
+    "step time": "*.tsv",
+    "workbook": "*.xlsx",
+    "Parquet": "*.parquet",
+}
+
+
 @pytest.mark.slow
 def test_a_station_picks_each_layout_by_its_glob_judges_it_as_its_twin_and_keeps_its_bytes(
     tmp_path: Path,
 ) -> None:
+    import shutil
+
     from tests.station_kit import (
         check_invariants,
-        cycle_file,
         drop,
         make_station,
         running,
@@ -562,43 +582,44 @@ def test_a_station_picks_each_layout_by_its_glob_judges_it_as_its_twin_and_keeps
         wait_until,
     )
 
+    assert set(STATION_GLOBS) == set(LAYOUTS)
     globs = "".join(
-        f'[profile.{key}]\nglob = "{glob}"\nfile = "{PROFILES / name}"\n\n'
-        for key, glob, name in (
-            ("clock", "*_clock.csv", "datetime_mode_column.toml"),
-            ("book", "*.xlsx", "workbook_sheets.toml"),
-            ("columns", "*.parquet", "parquet_columns.toml"),
-        )
+        f'[profile.p{k}]\nglob = "{STATION_GLOBS[kind]}"\nfile = "{PROFILES / layout.profile}"\n\n'
+        for k, (kind, layout) in enumerate(LAYOUTS.items())
     )
     s = make_station(tmp_path / "st", station_toml(extra=globs))
-    # the same samples under four cell ids (station_kit's cells depend on their seed only)
-    files = {
-        "twin.csv": cycle_file("CELL-V1"),
-        "cell_clock.csv": date_time_text(read_twin(cycle_file("CELL-DT"), "dt.csv"), start=AUTUMN_2026 - dt.timedelta(hours=2)),
-        "cell.xlsx": workbook(read_twin(cycle_file("CELL-WB"), "wb.csv"), rows_per_sheet=100),
-        "cell.parquet": parquet(read_twin(cycle_file("CELL-PQ"), "pq.csv")),
-    }
+    shutil.copy(RULES_DIR / "lfp_graphite.toml", s.rules_dir / "lfp_graphite.toml")
+    # one demo-lot cell in its version 1 file and in each layout, each under a cell id of its own
+    cell = DEMO_CELLS[0]
+    data = demo_file_bytes(cell)
+    record = read_twin(data, cell.file_name)
+    files = {cell.file_name: data}
+    cells = {cell.cell_id: cell.file_name}
+    for k, (kind, layout) in enumerate(LAYOUTS.items()):
+        cell_id = f"{cell.cell_id}-{k + 1}"
+        name = f"{cell_id}{STATION_GLOBS[kind].removeprefix('*')}"
+        renamed = dataclasses.replace(record, metadata={**record.metadata, "cell_id": cell_id})
+        files[name] = layout.write(renamed)
+        cells[cell_id] = name
     with running(s):
-        for name, data in files.items():
-            drop(s.inboxes[0].folder, name, data)
-        wait_until(lambda: settled(s, len(files)), what="four files judged")
+        for name, written in files.items():
+            drop(s.inboxes[0].folder, name, written)
+        wait_until(lambda: settled(s, len(files)), what="six files judged")
     check_invariants(s, set(files))
     assert not [p for p in s.quarantine.iterdir() if p.is_file()], "nothing quarantined"
     results = {
-        cell: json.loads((s.results / "LOT-A" / f"{cell}.json").read_text(encoding="utf-8"))
-        for cell in ("CELL-V1", "CELL-DT", "CELL-WB", "CELL-PQ")
+        cell_id: json.loads((s.results / cell.lot / f"{cell_id}.json").read_text(encoding="utf-8"))
+        for cell_id in cells
     }
-    twin = results.pop("CELL-V1")
-    for cell, doc in results.items():
-        assert doc["verdict"] == twin["verdict"], cell
-        assert doc["checks"] == [
-            {**check, "value": doc_check["value"]} for check, doc_check in zip(twin["checks"], doc["checks"], strict=True)
-        ], cell
-        for name, value in twin["metrics"].items():
-            if isinstance(value, float):
-                assert doc["metrics"][name] == pytest.approx(value, rel=REL, abs=ABS), f"{cell}: {name}"
-            else:
-                assert doc["metrics"][name] == value, f"{cell}: {name}"
-    for name, data in files.items():
+    twin = results.pop(cell.cell_id)
+    assert twin["verdict"] == expected_verdict(cell)
+    for cell_id, doc in results.items():
+        where = f"{cells[cell_id]} ({cell_id})"
+        assert doc["verdict"] == twin["verdict"], where
+        assert len(doc["checks"]) == len(twin["checks"]), where
+        for check, twin_check in zip(doc["checks"], twin["checks"], strict=True):
+            assert_fields_alike(check, twin_check, f"{where}: check {twin_check['id']}")
+        assert_fields_alike(doc["metrics"], twin["metrics"], f"{where}: metrics")
+    for name, written in files.items():
         (archived,) = [p for p in s.archive.rglob(f"*_{name}") if p.is_file()]
-        assert hashlib.sha256(archived.read_bytes()).hexdigest() == hashlib.sha256(data).hexdigest(), name
+        assert hashlib.sha256(archived.read_bytes()).hexdigest() == hashlib.sha256(written).hexdigest(), name
