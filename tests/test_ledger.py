@@ -18,14 +18,8 @@ from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, precondition, rule
 
 from pipeline.ledger.ledger import Ledger
-from pipeline.ledger.migrations import (
-    MIGRATIONS,
-    SCHEMA_VERSION,
-    LedgerError,
-    applied_migrations,
-    migrate,
-    sql_migration,
-)
+from pipeline.ledger.migrate import LedgerError, applied_migrations, migrate, sql_migration
+from pipeline.ledger.migrations import MIGRATIONS, SCHEMA_VERSION
 from pipeline.ledger.rows import CheckRowData, InputRow
 from pipeline.mail.letters import Letter
 from pipeline.model import CheckResult, Hazard, Outcome, Severity, SourceRef, Window

@@ -12,7 +12,8 @@ import pytest
 
 from pipeline.ledger.chain import broken_links, chained_rows
 from pipeline.ledger.ledger import Ledger
-from pipeline.ledger.migrations import MIGRATIONS, migrate
+from pipeline.ledger.migrate import migrate
+from pipeline.ledger.migrations import MIGRATIONS
 from pipeline.ledger.regrades import Rejudged
 from pipeline.ledger.rows import CheckRowData
 from pipeline.model import SourceRef

@@ -11,7 +11,8 @@ import pytest
 
 from pipeline.ledger.chain import GENESIS, broken_links
 from pipeline.ledger.ledger import Ledger
-from pipeline.ledger.migrations import MIGRATIONS, migrate
+from pipeline.ledger.migrate import migrate
+from pipeline.ledger.migrations import MIGRATIONS
 from pipeline.ledger.rows import ReviewRow
 from pipeline.model import SourceRef
 

@@ -19,7 +19,8 @@ from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, rule
 
 from pipeline.ledger.ledger import Ledger
-from pipeline.ledger.migrations import MIGRATIONS, applied_migrations, migrate
+from pipeline.ledger.migrate import applied_migrations, migrate
+from pipeline.ledger.migrations import MIGRATIONS
 from pipeline.ledger.outbox import NotClaimed
 from pipeline.mail.letters import Letter
 from pipeline.model import SourceRef

@@ -18,7 +18,8 @@ import time
 from collections.abc import Iterator, Sequence
 from typing import Any, Self
 
-from pipeline.ledger.migrations import MIGRATIONS, LedgerError, migrate
+from pipeline.ledger.migrate import LedgerError, migrate
+from pipeline.ledger.migrations import MIGRATIONS
 from pipeline.ledger.rows import utc_text
 from pipeline.model import SourceRef
 

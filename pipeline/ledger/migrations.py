@@ -1,59 +1,18 @@
-"""The ledger's schema as an ordered list of named migrations, and the code that applies them.
+"""The ledger's schema as an ordered list of named migrations, oldest first.
 
-Each migration runs in its own ``BEGIN IMMEDIATE`` transaction together with the
-row that records it (name, applied_at) in the ``migrations`` table, so a database
-is always exactly at one migration boundary. ``PRAGMA user_version`` mirrors the
-number of migrations applied; a database that is ahead of this code is refused.
-Opening connections and everything else about the ledger's rows is left to
-``pipeline.ledger.ledger`` (the connection is connection.py's).
+A ledger written by an older formgate is brought up to date by the steps it lacks, in
+this order, so a change to the schema is a new step at the end of ``MIGRATIONS``. The code
+that applies them (one transaction each, the record of what was applied, the
+refusal of a ledger ahead of this code) is migrate.py's; opening connections and
+everything else about the ledger's rows is left to ``pipeline.ledger.ledger``.
 """
 
 from __future__ import annotations
 
 import sqlite3
-from collections.abc import Callable, Sequence
-from dataclasses import dataclass
 
-from pipeline.errors import FormgateError
 from pipeline.ledger.chain import rehash
-from pipeline.model import SourceRef
-
-# Marks the file as a formgate ledger in the SQLite header ("FGLG"), so another
-# program's database is not mistaken for an empty ledger.
-APPLICATION_ID = 0x46474C47
-
-
-class LedgerError(FormgateError):
-    """A ledger that cannot be used as it is: written by a newer formgate, damaged, or foreign."""
-
-
-@dataclass(frozen=True, slots=True)
-class Migration:
-    """One named, ordered step of the schema. ``run`` executes inside an open transaction.
-
-    ``rebuilds``: the step makes a table anew under its old name, which SQLite's procedure
-    for schema changes does with foreign keys off (they cannot be switched inside a
-    transaction, so :func:`migrate` switches them around it and checks every reference
-    before the step commits).
-    """
-
-    name: str
-    run: Callable[[sqlite3.Connection], None]
-    rebuilds: bool = False
-
-
-def sql_migration(name: str, *statements: str) -> Migration:
-    """A migration made of SQL statements, run one by one.
-
-    (``executescript`` is not used: it commits any open transaction first.)
-    """
-
-    def run(conn: sqlite3.Connection) -> None:
-        for statement in statements:
-            conn.execute(statement)
-
-    return Migration(name, run)
-
+from pipeline.ledger.migrate import Migration, sql_migration
 
 _STATES = "'claimed', 'judged', 'published', 'archived', 'quarantined', 'duplicate'"
 
@@ -593,117 +552,3 @@ MIGRATIONS: tuple[Migration, ...] = (
     _CERTIFICATE_QUEUE, _PLANT_FEED, _CHANNEL_ALERTS, _PLANT_CHANNEL_ALERTS,
 )
 SCHEMA_VERSION = len(MIGRATIONS)
-
-_BOOTSTRAP = """
-CREATE TABLE IF NOT EXISTS migrations (
-    id INTEGER PRIMARY KEY,
-    name TEXT NOT NULL UNIQUE,
-    applied_at TEXT NOT NULL
-) STRICT
-"""
-
-
-def _applied(conn: sqlite3.Connection) -> list[str]:
-    return [row[0] for row in conn.execute("SELECT name FROM migrations ORDER BY id")]
-
-
-def _check_known(conn: sqlite3.Connection, known: Sequence[str], where: SourceRef) -> list[str]:
-    """The names applied so far, after refusing a database this code does not understand."""
-    app_id = conn.execute("PRAGMA application_id").fetchone()[0]
-    user_version = conn.execute("PRAGMA user_version").fetchone()[0]
-    has_log = conn.execute(
-        "SELECT count(*) FROM sqlite_schema WHERE type = 'table' AND name = 'migrations'"
-    ).fetchone()[0]
-    tables = conn.execute(
-        "SELECT count(*) FROM sqlite_schema WHERE type = 'table' AND name NOT LIKE 'sqlite_%'"
-    ).fetchone()[0]
-    if app_id not in (0, APPLICATION_ID) or (not has_log and (tables or user_version)):
-        raise LedgerError(
-            "this file is an SQLite database but not a formgate ledger",
-            where,
-            "Point the station at a new file name; formgate creates its ledger itself.",
-        )
-    applied = _applied(conn) if has_log else []
-    newer = [name for name in applied if name not in known]
-    if newer or user_version > len(known):
-        raise LedgerError(
-            f"the ledger was written by a newer formgate (schema version {user_version}, "
-            f"migrations this formgate does not know: {', '.join(newer) or 'none recorded'}; "
-            f"this formgate knows up to version {len(known)})",
-            where,
-            "Run the newer formgate, or upgrade this installation; a ledger is never downgraded.",
-        )
-    if applied != list(known[: len(applied)]) or user_version != len(applied):
-        raise LedgerError(
-            f"the ledger's migration record is inconsistent (applied: {', '.join(applied)}; "
-            f"user_version {user_version})",
-            where,
-            "Restore the ledger from a backup, or move it aside so a new one is created.",
-        )
-    return applied
-
-
-def migrate(
-    conn: sqlite3.Connection,
-    migrations: Sequence[Migration] = MIGRATIONS,
-    *,
-    applied_at: str,
-    where: SourceRef,
-) -> list[str]:
-    """Apply the pending ``migrations`` in order, one transaction each; return the names applied.
-
-    ``conn`` must be in autocommit mode (``isolation_level=None``). Safe when two
-    processes open the same new file at once: each step re-reads the record after
-    taking the write lock, so a migration another process applied is skipped.
-    Raises LedgerError for a database that is foreign or ahead of ``migrations``.
-    """
-    known = [m.name for m in migrations]
-    done: list[str] = []
-    while True:
-        # a peek without the lock: the step that rebuilds a table needs foreign keys off,
-        # which only holds when set outside a transaction (rechecked under the lock below)
-        peek = conn.execute("PRAGMA user_version").fetchone()[0]
-        rebuilding = peek < len(migrations) and migrations[peek].rebuilds
-        enforced = conn.execute("PRAGMA foreign_keys").fetchone()[0]
-        if rebuilding and enforced:
-            conn.execute("PRAGMA foreign_keys = OFF")
-        try:
-            conn.execute("BEGIN IMMEDIATE")
-            try:
-                applied = _check_known(conn, known, where)
-                if len(applied) == len(migrations):
-                    conn.execute("COMMIT")
-                    return done
-                step = migrations[len(applied)]
-                if step.rebuilds and not rebuilding:
-                    conn.execute("ROLLBACK")  # another process moved on meanwhile: peek again
-                    continue
-                conn.execute(_BOOTSTRAP)
-                conn.execute(f"PRAGMA application_id = {APPLICATION_ID}")
-                step.run(conn)
-                if step.rebuilds:
-                    broken = conn.execute("PRAGMA foreign_key_check").fetchall()
-                    if broken:
-                        raise sqlite3.IntegrityError(
-                            f"migration {step.name} would leave references pointing nowhere: "
-                            f"{broken[:5]}"
-                        )
-                conn.execute(
-                    "INSERT INTO migrations (name, applied_at) VALUES (?, ?)", (step.name, applied_at)
-                )
-                conn.execute(f"PRAGMA user_version = {len(applied) + 1}")
-                conn.execute("COMMIT")
-                done.append(step.name)
-            except BaseException:
-                if conn.in_transaction:
-                    conn.execute("ROLLBACK")
-                raise
-        finally:
-            if rebuilding and enforced:
-                conn.execute("PRAGMA foreign_keys = ON")
-
-
-def applied_migrations(conn: sqlite3.Connection) -> list[tuple[str, str]]:
-    """(name, applied_at) of every migration recorded, oldest first."""
-    rows = conn.execute("SELECT name, applied_at FROM migrations ORDER BY id").fetchall()
-    return [(str(name), str(at)) for name, at in rows]

@@ -1,6 +1,6 @@
 """The plant database's schema as an ordered list of named migrations, and the code that applies them.
 
-Like the ledger's (pipeline/ledger/migrations.py): each migration runs in one transaction
+Like the ledger's (pipeline/ledger/migrate.py): each migration runs in one transaction
 with the row that records it in ``formgate.migrations``, so the database is always at one
 migration boundary; a database that knows migrations this code does not is refused. Two
 stations that start at once against a new database take turns (a transaction-level
