@@ -1,7 +1,8 @@
 """Workbooks and Parquet files: read as their cycle file v1 twin, and bad ones refused with located messages.
 
 Every file here is written for real: .xlsx with openpyxl, .parquet with pyarrow, .ods as
-the OpenDocument package it is (a zip of XML parts). Each is read through
+the OpenDocument package it is (a zip of XML parts); the .xls is a fixture saved once by
+another writer (tests/data/workbooks/v1_basic.xls). Each is read through
 ``read_cycle_file`` with an import profile and compared with the v1 text file it was made
 from (tests/data/traces/good/v1_basic.csv): the same numbers, steps, cycles and metadata.
 """
@@ -27,8 +28,14 @@ from pipeline.errors import InputError
 from pipeline.model import Trace
 from pipeline.read.cyclefile import read_cycle_file
 from pipeline.read.profile import Profile, load_profile
+from pipeline.rulebook.book import load_rules_dir
+from pipeline.runner import check_file
+from tests.conftest import RULES_DIR
 
 V1 = Path(__file__).resolve().parent / "data" / "traces" / "good" / "v1_basic.csv"
+# The twin's metadata on the sheet Info and its rows on Record and Record_2, saved once as a
+# BIFF8 workbook by xlwt 1.3.0 (a writer formgate does not depend on).
+XLS = Path(__file__).resolve().parent / "data" / "workbooks" / "v1_basic.xls"
 HEADER = ["time_s", "voltage_V", "current_A", "temperature_C", "step", "cycle"]
 
 BOOK = """
@@ -248,6 +255,29 @@ def test_an_ods_file_reads_as_the_twin() -> None:
     metadata, rows = v1_record()
     data = ods({"Info": info_rows(metadata), "Record": [HEADER, *rows]})
     assert_twins(read_cycle_file(data, "book.ods", profile(BOOK)), twin())
+
+
+def test_an_xls_workbook_is_judged_as_its_twin() -> None:
+    data = XLS.read_bytes()
+    # the signature of a Compound File Binary file, which holds an .xls workbook ([MS-CFB] 2.2)
+    assert data[:8] == b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1"
+    assert_twins(read_cycle_file(data, XLS.name, profile(BOOK)), twin())
+    rules = load_rules_dir(RULES_DIR)
+    analysed_at = dt.datetime(2026, 12, 1, 8, 0, tzinfo=dt.UTC)
+    reference = check_file(V1, rules, None, analysed_at=analysed_at, certificate=False).result
+    got = check_file(
+        XLS, rules, None, analysed_at=analysed_at, profile=profile(BOOK), certificate=False
+    ).result
+    assert reference is not None and got is not None
+    assert (got.cell_id, got.verdict.kind, got.verdict.reasons) == (
+        reference.cell_id,
+        reference.verdict.kind,
+        reference.verdict.reasons,
+    )
+    assert [(c.rule_id, c.outcome) for c in got.verdict.checks] == [
+        (c.rule_id, c.outcome) for c in reference.verdict.checks
+    ]
+    assert got.metrics.values == reference.metrics.values  # the same float64 values, the same metrics
 
 
 def test_a_workbook_calamine_cannot_read_is_read_by_openpyxl() -> None:
