@@ -268,3 +268,38 @@ def test_a_cell_passed_on_one_record_alone_has_a_one_page_certificate() -> None:
     assert "Traceability" in pages[0] and "Verification code" in pages[0]
     assert "The rule set has no lot screen." in pages[0]
     assert "Screen / metric" not in pages[0]  # no table header over nothing
+
+
+def test_a_cell_released_over_a_hazard_keeps_its_caution_and_says_who_released_it() -> None:
+    """A concession its rule set allows over a safety hazard passes the cell, but the hazard
+    stays: its caution, the handling words and the general caution stay on page 1, and the
+    why names the concession, who made it and the hazard it was made over (the JSON too)."""
+    hot = StageEntry(("formation", "grading"), ("formation", "grading"), "INV-0042.csv", SHA_F,
+                     "fail", "max_temperature_C 62.7 °C > 60 °C (reject)", ("over_temperature",),
+                     _at(0), "invented-rules 7", (("max_temperature_C", 62.7),),
+                     "INV-0042.json", "INV-0042.pdf")
+    review = ReviewEntry(4, "release", None, ("temperature_limit",), "A. Quality-Engineer",
+                         "thermocouple misread, cell measured cold", _at(30), 3)
+    standing = _decision(
+        5, "pass", "released as a concession by A. Quality-Engineer accepting temperature_limit: "
+        "thermocouple misread, cell measured cold",
+        hazards=("over_temperature",), cause="review", review_id=4)
+    s = dataclasses.replace(
+        summary(standing, reviews=(review,), records=(hot,)),
+        needed=("formation", "grading"), aging=None, screens=(),
+        history=(_decision(3, "fail", hot.decision, hazards=("over_temperature",)), standing),
+    )
+    page1 = _pages(_pdf(s))[0]
+    assert "PASS" in page1
+    assert "every stage it needs has passed" not in page1  # it is no clean pass
+    assert "Caution" in page1 and "released" in page1.split("Caution", 1)[1]
+    assert "Over-temperature during formation" in page1
+    assert "Treat the cell as possibly unstable" in page1  # the handling words
+    assert "local codes" in page1 and "qualified personnel" in page1
+    line = ("released as a concession by A. Quality-Engineer over the safety hazard "
+            "over_temperature")
+    assert any(w.startswith(line) for w in standing_why(s)), standing_why(s)
+    assert line in page1
+    document = json.loads(cellresult.to_json(s))
+    assert any(w.startswith(line) for w in document["standing"]["why"])
+    assert document["standing"]["hazards"] == ["over_temperature"]

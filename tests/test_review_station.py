@@ -243,6 +243,12 @@ def test_a_concession_over_a_safety_hazard_needs_its_rule_set_to_allow_it(
         (letter,) = [m for m in ledger.outbox.in_state("pending") if "CONCESSION" in m.subject]
     assert "CAUTION: Possible internal short circuit" in letter.body_text.replace("\n", " ")
     assert "GENERAL CAUTION" in letter.body_text
+    # its cell certificate passes it, but keeps the hazard's caution and says who released it
+    page1 = " ".join(PdfReader(s.certificates / "LOT-A" / "S-1~cell.pdf").pages[0]
+                     .extract_text().split())
+    assert "PASS" in page1 and "no clean pass" in page1
+    assert f"released as a concession by {QE} over the safety hazard internal_short" in page1
+    assert "Possible internal short circuit" in page1 and "qualified personnel" in page1
 
 
 def test_reviews_stand_when_the_cell_is_decided_again_until_something_new_arrives(

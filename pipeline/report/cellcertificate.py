@@ -4,7 +4,8 @@ Pure: a CellSummary and its verification code in, text out; no clock (the only t
 shown are recorded ones). Every value reaches the page formatted and autoescaped, through
 the certificate's own Jinja2 environment, stylesheet and font (certificate.py, pdf.py).
 The cautions of a failed cell, and of a held one, are the stage certificate's words
-(hazards.py).
+(hazards.py); a cell a person released over a hazard keeps that hazard's caution, the
+handling and the general caution.
 """
 
 from __future__ import annotations
@@ -20,6 +21,8 @@ from pipeline.report.cellsummary import (
     CellSummary,
     CheckEntry,
     StageEntry,
+    release_of,
+    released_over,
     standing_why,
 )
 from pipeline.report.certificate import HAZARD_WORDS, environment, stage_words
@@ -31,6 +34,11 @@ HEADLINES = {
     "fail": "Rejected: the cell failed. Do not release it; handle it with care.",
     "hold": "Held: this cell must not be released until a person has reviewed it.",
 }
+# A cell a person released although its record shows a hazard: it passes, but not clean.
+RELEASED_OVER_HAZARD_HEADLINE = (
+    "Released by a person's review although its record shows a hazard: this is no clean "
+    "pass. The hazard stays with the cell, and so does its caution below."
+)
 WAITING_HEADLINE = (
     "Not released yet: the cell waits for a stage it needs. It may be released only once "
     "every stage has passed."
@@ -157,13 +165,26 @@ def _only_waiting(summary: CellSummary) -> bool:
 
 def _cautions(summary: CellSummary) -> dict[str, object]:
     """The caution box: a failed cell's (and a hazardous held cell's) hazard cautions and
-    handling, and for every fail or hold for a real reason the general caution."""
+    handling, and for every fail or hold for a real reason the general caution. A cell
+    released over a hazard keeps them all: a release never clears a hazard."""
     d = summary.decision
     waiting_only = _only_waiting(summary)
     named = [h for h in (_hazard(n) for n in d.hazards) if h is not None]
-    if d.verdict == "pass" or waiting_only:
-        return {"general_caution": "", "cautions": [], "handling": "", "caution_title": ""}
-    if d.verdict == "fail":
+    note = ""
+    if d.verdict == "pass" and released_over(summary):
+        review = release_of(summary)
+        how = "as a concession " if review is not None and review.accepts else ""
+        title = f"Caution: this cell was released {how}over a hazard its record shows"
+        note = (
+            "A person released this cell although its record shows the hazard named here. "
+            "The release allows its use only as your site's procedures for concessions say: "
+            "it does not make the cell good or safe. Where this caution and the release "
+            "disagree, your site's procedures and qualified personnel decide."
+        )
+    elif d.verdict == "pass" or waiting_only:
+        return {"general_caution": "", "cautions": [], "handling": "", "caution_title": "",
+                "caution_note": ""}
+    elif d.verdict == "fail":
         title = "Caution: this cell failed and may be hazardous"
     elif named:
         title = "Caution: this cell is held, and its record shows a hazard"
@@ -176,6 +197,7 @@ def _cautions(summary: CellSummary) -> dict[str, object]:
         ],
         "handling": hazards.HANDLING if named else "",
         "general_caution": hazards.general_caution(summary.rule_set.family),
+        "caution_note": note,
     }
 
 
@@ -186,6 +208,8 @@ def build_context(summary: CellSummary, *, code: str) -> dict[str, object]:
     word = VERDICT_WORDS[d.verdict]
     waiting = _only_waiting(summary)
     headline = WAITING_HEADLINE if waiting else HEADLINES[d.verdict]
+    if released_over(summary):
+        headline = RELEASED_OVER_HAZARD_HEADLINE
     nominal = (
         f" (nominal {significant(s.nominal_capacity_ah, 4)} Ah)"
         if s.nominal_capacity_ah is not None else ""

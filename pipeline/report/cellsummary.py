@@ -13,7 +13,7 @@ from __future__ import annotations
 import datetime
 from dataclasses import dataclass
 
-from pipeline.model import WAITING_FOR_STAGE, RuleSetRef
+from pipeline.model import SAFETY_HAZARDS, WAITING_FOR_STAGE, RuleSetRef
 
 # What a stage record shows of its metrics on the cell certificate: the values a quality
 # engineer reads first for each stage (common practice), in this order.
@@ -194,10 +194,41 @@ class CellSummary:
         return next((r for r in self.reviews if r.id == review_id), None)
 
 
+def released_over(summary: CellSummary) -> tuple[str, ...]:
+    """The hazards a passing cell carries: a person released it although its record shows
+    them (a release keeps every hazard), so their cautions stay with it. Empty otherwise."""
+    d = summary.decision
+    return d.hazards if d.verdict == "pass" else ()
+
+
+def release_of(summary: CellSummary) -> ReviewEntry | None:
+    """The release a passing cell rests on: the review of its standing decision, else (a
+    decision made again since, at its lot's close) its latest release."""
+    review = summary.review(summary.decision.review_id)
+    if review is not None and review.action == "release":
+        return review
+    return next((r for r in reversed(summary.reviews) if r.action == "release"), None)
+
+
+def _released_over_words(summary: CellSummary, hazards: tuple[str, ...]) -> str:
+    safety = [h for h in hazards if h in SAFETY_HAZARDS]
+    kind = "safety hazard" if safety else "hazard"
+    named = f"the {kind}{'s' if len(hazards) > 1 else ''} {', '.join(hazards)}"
+    review = release_of(summary)
+    if review is None:
+        how = f"passes although its record shows {named}"
+    elif review.accepts:
+        how = f"released as a concession by {review.reviewer} over {named}"
+    else:
+        how = f"released by {review.reviewer} over {named}"
+    return f"{how}: the hazard stays on its record and its caution applies"
+
+
 def standing_why(summary: CellSummary) -> tuple[str, ...]:
     """Why the cell stands where it stands, one line per cause, the deciding one first:
-    the review it rests on, the stage records and checks that fail or hold it, the lot
-    screen that holds it, the stages it waits for; for a pass, what it passed."""
+    the review it rests on (and a hazard a release passed it over), the stage records and
+    checks that fail or hold it, the lot screen that holds it, the stages it waits for; for
+    a pass, what it passed."""
     d = summary.decision
     lines: list[str] = []
     review = summary.review(d.review_id) if d.cause == "review" else None
@@ -208,6 +239,9 @@ def standing_why(summary: CellSummary) -> tuple[str, ...]:
             f"review {review.id}: {review.action}{stage}{accepts} by {review.reviewer} "
             f"({review.reviewed_at.astimezone(datetime.UTC):%Y-%m-%d %H:%M} UTC): {review.reason}"
         )
+    hazards = released_over(summary)
+    if hazards:
+        lines.append(_released_over_words(summary, hazards))
     by_reason = {r.decision: r for r in summary.records if r.counts_for and r.decision}
     aging = summary.aging
     for reason in d.reasons:
