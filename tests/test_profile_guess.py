@@ -550,6 +550,26 @@ def test_a_mode_column_of_cc_and_cv_words_lists_each_under_what_it_means() -> No
     assert float(trace.current_a[np.flatnonzero(trace.current_a < 0)[0]]) == -10.0
 
 
+def test_a_magnitude_whose_rest_rows_read_just_below_zero_is_not_called_never_negative() -> None:
+    # the channel's zero offset on rest rows, written as measured beside the magnitude
+    rows = ["Time (s),Mode,U (V),I (A)"]
+    plan = [("R", -0.003, 3), ("C", 10.0, 8), ("R", -0.002, 3), ("D", 10.0, 8), ("R", -0.003, 3)]
+    t, v = 0, 3.2
+    for word, amps, count in plan:
+        for _ in range(count):
+            v += {"C": 0.02, "D": -0.02, "R": 0.0}[word]
+            rows.append(f"{t},{word},{v:.4f},{amps:.4f}")
+            t += 10
+    data = ("# cell_id: C1\n# lot: L1\n# cell_type: T\n" + "\n".join(rows) + "\n").encode()
+    text, trace = guessed(data, "offsets.csv")
+    assert "values -0.003 to 10" in text
+    (sign,) = [line for line in text.splitlines() if line.startswith("current_sign")]
+    assert sign.startswith('current_sign = "from mode"')
+    assert "never negative" not in text
+    assert "the current is negative only near zero, never below -1: a magnitude, its direction in Mode" in text
+    assert trace.current_a.min() == -10.0 and (trace.current_a == -0.003).sum() == 6
+
+
 def test_a_metadata_key_under_another_name_is_named_not_taken() -> None:
     data = b"# Cell ID: C7\n# lot: L1\n# Cell type: DEMO-LFP-20A\ntime_s,voltage_V,current_A\n0,3.2,0\n60,3.3,5\n"
     text = guess_profile(data, "c7.csv")

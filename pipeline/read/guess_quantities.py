@@ -121,6 +121,27 @@ def _threshold(current: FloatArray) -> float:
     return 0.1 * float(np.quantile(finite, 0.99))
 
 
+def _negatives_words(current: FloatArray, clear_negatives: int, threshold: float) -> str:
+    """What the current's negative values are, as the reason for a magnitude says it.
+
+    A magnitude's rest rows may read just below zero (the channel's offset), so where any
+    value is negative the words speak of the values below minus the threshold.
+
+    >>> _negatives_words(np.array([0.0, 5.0, 10.0]), 0, 1.0)
+    'the current is never negative'
+    >>> _negatives_words(np.array([-0.003, 5.0, 10.0]), 0, 1.0)
+    'the current is negative only near zero, never below -1'
+    >>> _negatives_words(np.array([-0.003, -5.0, 10.0]), 1, 1.0)
+    'the current is below -1 on only 1 row'
+    """
+    if not (current[np.isfinite(current)] < 0).any():
+        return "the current is never negative"
+    if not clear_negatives:
+        return f"the current is negative only near zero, never below -{six_figures(threshold)}"
+    rows = f"{clear_negatives} row{'s' if clear_negatives > 1 else ''}"
+    return f"the current is below -{six_figures(threshold)} on only {rows}"
+
+
 def decide_sign_and_modes(guess: ColumnGuess, roles: dict[str, Column], current: FloatArray | None) -> None:
     """The current's sign convention; for a magnitude beside a mode column, what each mode means."""
     if current is None:
@@ -139,8 +160,7 @@ def decide_sign_and_modes(guess: ColumnGuess, roles: dict[str, Column], current:
     if mode is not None and few and _modes(guess, mode, roles, current, threshold):
         guess.sign = Decision(
             "from mode",
-            f"the current is {'almost ' if negative else ''}never negative: a magnitude, its "
-            f"direction in {mode.header}",
+            f"{_negatives_words(current, negatives, threshold)}: a magnitude, its direction in {mode.header}",
         )
         return
     if mode is not None:
