@@ -11,7 +11,7 @@ import email
 import email.policy
 import socket
 import ssl
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from email.message import EmailMessage
@@ -45,7 +45,9 @@ class RecordingHandler:
 
     ``rcpt_reply`` may map single addresses to a reply; the others are accepted.
     ``data_delay_s``: a slow server, that takes this long over each message before it
-    answers DATA (other conversations go on meanwhile).
+    answers DATA (other conversations go on meanwhile). ``on_data`` is called (in the
+    server's thread) as each message arrives, before the server answers it: a test does
+    something while the sender waits for the reply.
     """
 
     def __init__(
@@ -53,10 +55,12 @@ class RecordingHandler:
         rcpt_reply: str | Mapping[str, str] | None = None,
         data_reply: str | None = None,
         data_delay_s: float = 0.0,
+        on_data: Callable[[], None] | None = None,
     ) -> None:
         self.rcpt_reply = rcpt_reply
         self.data_reply = data_reply
         self.data_delay_s = data_delay_s
+        self.on_data = on_data
         self.received: list[Received] = []
 
     async def handle_RCPT(
@@ -71,6 +75,8 @@ class RecordingHandler:
         return "250 2.1.5 OK"
 
     async def handle_DATA(self, server: Any, session: Any, envelope: Any) -> str:
+        if self.on_data is not None:
+            self.on_data()
         if self.data_delay_s:
             await asyncio.sleep(self.data_delay_s)
         if self.data_reply:
@@ -116,15 +122,16 @@ def smtp_server(
     implicit_tls: bool = False,
     login: tuple[str, str] | None = None,
     data_delay_s: float = 0.0,
+    on_data: Callable[[], None] | None = None,
 ) -> Iterator[Server]:
     """An aiosmtpd server on 127.0.0.1 that records what it accepts.
 
     ``starttls`` offers STARTTLS with the test server certificate and refuses mail
     before it; ``implicit_tls`` speaks TLS from the first byte; ``login`` requires
     AUTH with that user name and password (offered only after TLS); ``data_delay_s``
-    makes it slow (see RecordingHandler).
+    makes it slow and ``on_data`` runs as each message arrives (see RecordingHandler).
     """
-    handler = RecordingHandler(rcpt_reply, data_reply, data_delay_s)
+    handler = RecordingHandler(rcpt_reply, data_reply, data_delay_s, on_data)
     server = Server(HOST, port or free_port(), handler)
     options: dict[str, Any] = {}
     if starttls:

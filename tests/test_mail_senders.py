@@ -14,6 +14,7 @@ import multiprocessing
 import os
 import re
 import signal
+import sqlite3
 import threading
 import time
 from pathlib import Path
@@ -203,3 +204,60 @@ def test_a_mail_server_that_is_down_shows_in_status_alerts_once_and_clears_when_
     assert arrived.count(alert_id) == 1 and len(arrived) == len(set(arrived)) == 2
     assert outage_alerts(s) == [alert_id]
     assert outbox_states(s)["pending"] == 0
+
+
+def test_a_ledger_locked_past_its_busy_timeout_during_a_send_does_not_send_a_letter_twice(
+    tmp_path: Path,
+) -> None:
+    """Another connection takes the write lock while the server has the message and keeps it
+    past the sender's busy timeout: the sent letter cannot be recorded at once. The sender
+    keeps it, claims nothing new until it is recorded, and never sends it again."""
+    from pipeline.mail.letters import Letter
+    from pipeline.mail.smtp import SmtpSettings
+    from pipeline.station.mailer import Sender, deliver_due
+
+    path = tmp_path / "ledger.sqlite"
+    now = datetime.datetime.now(datetime.UTC)
+    with Ledger(path, now=now) as ledger:
+        for n in (1, 2):
+            ledger.outbox.queue(
+                Letter("alert", f"<locked-{n}@demo.example>", ("maintenance@example.com",),
+                       f"alert {n}", "text"),
+                now=now,
+            )
+    locker = sqlite3.connect(path, isolation_level=None, check_same_thread=False, timeout=10)
+
+    def lock_once() -> None:  # as the first message arrives, before the server answers it
+        if not locked:
+            locker.execute("BEGIN IMMEDIATE")
+            locked.append(True)
+
+    locked: list[bool] = []
+    try:
+        with smtp_server(on_data=lock_once) as server:
+            smtp = SmtpSettings(host="127.0.0.1", sender="formgate@example.com",
+                                port=server.port, security="none", timeout_s=10.0)
+            sender = Sender()
+            with Ledger(path) as ledger:
+                ledger.db.conn.execute("PRAGMA busy_timeout = 200")
+                for _turn in range(3):  # as the mail thread does: a turn, an error, another turn
+                    with pytest.raises(sqlite3.OperationalError, match="locked"):
+                        deliver_due(ledger, smtp, station="demo", alerts_to=(), sender=sender)
+                # nothing new was claimed while a sent letter was not recorded, and the sent
+                # one keeps its claim (another sender would send it again at once otherwise)
+                assert len(server.received) == 1 and locked
+                (first,) = sender.unrecorded
+                held = ledger.outbox.get(first)
+                assert held is not None and (held.state, held.claimed_by) == ("pending",
+                                                                              sender.owner)
+                locker.execute("ROLLBACK")  # the other process lets go of the ledger
+                for _turn in range(2):
+                    deliver_due(ledger, smtp, station="demo", alerts_to=(), sender=sender)
+                rows = ledger.outbox.in_state("sent")
+            arrived = collections.Counter(str(r.parsed()["Message-ID"]) for r in server.received)
+    finally:
+        locker.close()
+    assert arrived == {"<locked-1@demo.example>": 1, "<locked-2@demo.example>": 1}
+    assert [(m.message_id, m.attempts, m.claimed_by) for m in rows] == [
+        ("<locked-1@demo.example>", 1, None), ("<locked-2@demo.example>", 1, None)
+    ]

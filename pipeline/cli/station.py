@@ -88,22 +88,29 @@ def cmd_status(args: argparse.Namespace) -> int:
 
 def cmd_mail_retry(args: argparse.Namespace) -> int:
     """Send every pending mail now (and parked ones with --parked)."""
+    import sqlite3
+
     from pipeline.ledger.ledger import Ledger
-    from pipeline.station.mailer import deliver_due
+    from pipeline.station.mailer import Sender, deliver_due
     from pipeline.station.settings import smtp_settings
 
     settings = _station_settings(args.folder)
     smtp = smtp_settings(settings, os.environ)
     now = datetime.datetime.now(datetime.UTC)
+    sender = Sender()
     with Ledger(settings.ledger, now=now) as ledger:
         if args.parked:
             for mail in ledger.outbox.in_state("parked"):
                 ledger.outbox.requeue(mail.id, now=now)
         ledger.outbox.hurry_pending(now=now)
-        counts = deliver_due(
-            ledger, smtp, station=settings.station_name, alerts_to=settings.routing.alerts_to,
-            domain=settings.routing.domain, outage_alert_s=settings.routing.outage_alert_s,
-        )
+        try:
+            counts = deliver_due(
+                ledger, smtp, station=settings.station_name,
+                alerts_to=settings.routing.alerts_to, domain=settings.routing.domain,
+                outage_alert_s=settings.routing.outage_alert_s, sender=sender,
+            )
+        except sqlite3.OperationalError as exc:
+            return _ledger_busy(ledger, sender, exc)
         left = ledger.outbox.counts()
     # the counts are this command's own: mail another sender held is neither sent nor failed here
     print(f"sent {counts['sent']}, delayed {counts['retry']}, parked {counts['park']}; "
@@ -118,6 +125,28 @@ def cmd_mail_retry(args: argparse.Namespace) -> int:
               f"(see formgate status), then run: formgate mail retry {args.folder} --parked")
     unsent = counts["retry"] or counts["park"] or (parked and not args.parked)
     return EXIT_USER if unsent else EXIT_OK
+
+
+def _ledger_busy(ledger: Any, sender: Any, exc: Exception) -> int:
+    """`mail retry` met a ledger it could not write (another process held it past the busy
+    timeout): record what went out if it can, before its claims end; say what is left."""
+    import sys
+
+    if sender.unrecorded:
+        print(f"{len(sender.unrecorded)} mail(s) went out but the ledger could not record them "
+              f"({exc}); trying until their claims end", file=sys.stderr)
+        left = sender.settle(ledger)
+        if not left:
+            print("the mail that went out is recorded now; run formgate mail retry again for "
+                  "the rest", file=sys.stderr)
+        for sent in left:
+            # its claim stays until its lease ends: no other sender sends it before then
+            print(f"  went out, not recorded: {sent.row.message_id} {sent.row.subject}",
+                  file=sys.stderr)
+    else:
+        print(f"the ledger {ledger.db.path} could not be written ({exc}); nothing more was "
+              "sent. Try again when the other process has let go of it", file=sys.stderr)
+    return EXIT_USER
 
 
 def add_commands(sub: Any) -> None:

@@ -5,9 +5,12 @@ as often and as many at once as people start it). The outbox itself lives in the
 ledger, so a mail queued before a crash goes out after it; each message keeps its
 Message-ID across retries, so a rare resend is recognisable. Every sender claims a
 row in the ledger before it speaks to the server and records the outcome as the
-claim's owner (ledger/outbox.py), so two senders never send one row. How a delivery
-went is noted as the station's mail trouble (mailtrouble.py). Composing letters is
-mail.letters' job, speaking SMTP mail.smtp's.
+claim's owner (ledger/outbox.py), so two senders never send one row. A letter the
+server took is never released: if the ledger cannot record it (another process holds
+the write lock past the busy timeout), the Sender keeps it and records it before it
+claims anything new, and a sender that stops first leaves the claim to its lease. How
+a delivery went is noted as the station's mail trouble (mailtrouble.py). Composing
+letters is mail.letters' job, speaking SMTP mail.smtp's.
 """
 
 from __future__ import annotations
@@ -18,8 +21,11 @@ import logging
 import os
 import secrets
 import socket
+import sqlite3
 import threading
+import time
 from collections.abc import Callable
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from pipeline.ledger.connection import BUSY_TIMEOUT_MS
@@ -135,6 +141,77 @@ def _letter(row: MailRow) -> Letter:
     )
 
 
+@dataclass(frozen=True)
+class SentNotRecorded:
+    """A letter the server took that the ledger has not recorded as sent yet."""
+
+    row: MailRow  # as claimed: claimed_until is when the claim's lease ends
+    reply: str
+    sent_at: datetime.datetime
+
+
+@dataclass
+class Sender:
+    """One sender on the outbox (the station's mail thread, or one `mail retry`): the owner id
+    its claims carry, and the letters it sent that the ledger could not record yet.
+
+    Those letters keep their claims: the sender records them before it claims anything
+    new (see :func:`deliver_due`), and never releases them, so no sender (this one
+    included) sends them again while their leases last.
+    """
+
+    owner: str = field(default_factory=new_owner)
+    unrecorded: dict[int, SentNotRecorded] = field(default_factory=dict)
+
+    def record_sent(self, ledger: Ledger) -> int:
+        """Record as sent every letter this sender sent and could not record; how many.
+
+        Raises what the ledger raises (``database is locked`` past the busy timeout)
+        and keeps the rest for the next call.
+        """
+        done = 0
+        for mail_id, sent in list(self.unrecorded.items()):
+            _record_sent(ledger, sent, owner=self.owner)
+            del self.unrecorded[mail_id]
+            done += 1
+        return done
+
+    def settle(
+        self, ledger: Ledger, *, clock: Clock = utc_now, stop: threading.Event | None = None
+    ) -> list[SentNotRecorded]:
+        """Before the sender goes away: try to record its sent letters until they are recorded
+        or their claims' leases are over (or ``stop`` is set); the letters left.
+
+        A letter left keeps its claim until the lease ends, so no other sender sends it
+        while its lease lasts.
+        """
+        while self.unrecorded:
+            try:
+                self.record_sent(ledger)
+            except sqlite3.OperationalError as exc:
+                last = max(s.row.claimed_until or s.sent_at for s in self.unrecorded.values())
+                if clock() >= last or (stop is not None and stop.is_set()):
+                    break
+                log.warning("%d sent mail(s) not recorded yet (%s); trying again",
+                            len(self.unrecorded), exc)
+                time.sleep(1.0)
+        return list(self.unrecorded.values())
+
+
+def _record_sent(ledger: Ledger, sent: SentNotRecorded, *, owner: str) -> None:
+    """Mark one sent letter sent as ``owner``; raises only what the ledger raises."""
+    row = sent.row
+    try:
+        ledger.outbox.mark_sent(row.id, owner=owner, now=sent.sent_at, reply=sent.reply)
+    except ValueError as exc:  # NotClaimed: its lease ran out and another sender has it now
+        log.warning("%s (this attempt: sent, %s)", exc, sent.reply)
+    else:
+        log.info("mail sent: %s to %s", row.subject, ", ".join(row.recipients))
+    ended = mailtrouble.note_success(ledger, now=sent.sent_at)
+    if ended is not None:
+        log.warning("mail goes out again (it could not be delivered since %s)", ended.since)
+
+
 def _claim(
     ledger: Ledger, seen: MailRow, smtp: SmtpSettings, *, owner: str, now: datetime.datetime
 ) -> MailRow | None:
@@ -165,37 +242,55 @@ def deliver_due(
     alerts_to: tuple[str, ...],
     domain: str | None = None,
     outage_alert_s: float = 900.0,
-    owner: str | None = None,
+    sender: Sender | None = None,
     clock: Clock = utc_now,
     stop: threading.Event | None = None,
 ) -> dict[str, int]:
     """Send every mail that is due now; return how many this sender sent, retried and parked,
     and how many it left to another sender that held them ('elsewhere').
 
-    Each row is claimed for ``owner`` (default: a new owner id) before it is sent, and
-    its outcome is recorded by that owner. 4xx replies and connection errors retry with
-    capped exponential backoff and carry on the mail trouble; a mail that goes out ends
-    it; ``outage_alert_s`` into a trouble, one alert is queued. 5xx replies park the
-    mail with the server's answer and queue an alert (never for an alert, so a broken
-    alert address cannot feed itself).
+    Each row is claimed for ``sender`` (default: a new one) before it is sent, and its
+    outcome is recorded by that sender. A letter the server took whose record fails
+    stays with the sender, claimed, and the error is raised; the next call records it
+    first and claims nothing new until it is recorded. 4xx replies and connection
+    errors retry with capped exponential backoff and carry on the mail trouble; a mail
+    that goes out ends it; ``outage_alert_s`` into a trouble, one alert is queued. 5xx
+    replies park the mail with the server's answer and queue an alert (never for an
+    alert, so a broken alert address cannot feed itself).
     """
-    owner = owner or new_owner()
+    sender = sender or Sender()
+    owner = sender.owner
     counts = {"sent": 0, "retry": 0, "park": 0, "elsewhere": 0}
+    counts["sent"] += sender.record_sent(ledger)  # first: a locked ledger stops the turn here
     for seen in ledger.outbox.due(clock()):
         if stop is not None and stop.is_set():
             break
+        if seen.id in sender.unrecorded:
+            continue
         row = _claim(ledger, seen, smtp, owner=owner, now=clock())
         if row is None:
             counts["elsewhere"] += 1
             continue
         try:
-            outcome = _send_claimed(
-                ledger, row, smtp, owner=owner, station=station, alerts_to=alerts_to,
-                domain=domain, clock=clock,
+            outcome, reply = _attempt(row, smtp, clock)
+        except BaseException:
+            # nothing went out: let another sender have it at once rather than after the lease
+            with contextlib.suppress(Exception):
+                ledger.outbox.release(row.id, owner=owner)
+            raise
+        if outcome == "sent":
+            # from here on the letter is the sender's until recorded: never released
+            sender.unrecorded[row.id] = SentNotRecorded(row, reply, clock())
+            faults.point("after_send")
+            counts["sent"] += sender.record_sent(ledger)
+            continue
+        try:
+            outcome = _record_unsent(
+                ledger, row, outcome, reply, owner=owner, station=station,
+                alerts_to=alerts_to, domain=domain, now=clock(),
             )
         except BaseException:
-            # nothing recorded: let another sender have it at once rather than after the lease
-            with contextlib.suppress(Exception):
+            with contextlib.suppress(Exception):  # nothing went out (see above)
                 ledger.outbox.release(row.id, owner=owner)
             raise
         counts[outcome] += 1
@@ -216,33 +311,33 @@ def deliver_due(
     return counts
 
 
-def _send_claimed(
+def _attempt(row: MailRow, smtp: SmtpSettings, clock: Clock) -> tuple[str, str]:
+    """Build and send one claimed mail: its outcome ('sent', 'retry' or 'park') and reply."""
+    try:
+        message = build_message(_letter(row), sender=smtp.sender, date=clock())
+    except (MailError, OSError, ValueError) as exc:
+        return "park", f"message could not be built: {exc}"
+    result = send(message, smtp)
+    return result.outcome, result.reply
+
+
+def _record_unsent(
     ledger: Ledger,
     row: MailRow,
-    smtp: SmtpSettings,
+    outcome: str,
+    reply: str,
     *,
     owner: str,
     station: str,
     alerts_to: tuple[str, ...],
     domain: str | None,
-    clock: Clock,
+    now: datetime.datetime,
 ) -> str:
-    """Send one claimed mail and record its outcome as ``owner``; the outcome, or 'elsewhere'
-    when another sender took the claim over meanwhile (its lease had run out)."""
+    """Record a mail that did not go out (``outcome`` 'retry' or 'park') as ``owner``; the
+    outcome, or 'elsewhere' when another sender took the claim over meanwhile (its lease
+    had run out)."""
     try:
-        message = build_message(_letter(row), sender=smtp.sender, date=clock())
-    except (MailError, OSError, ValueError) as exc:
-        outcome, reply = "park", f"message could not be built: {exc}"
-    else:
-        result = send(message, smtp)
-        outcome, reply = result.outcome, result.reply
-    now = clock()
-    try:
-        if outcome == "sent":
-            faults.point("after_send")
-            ledger.outbox.mark_sent(row.id, owner=owner, now=now, reply=reply)
-            log.info("mail sent: %s to %s", row.subject, ", ".join(row.recipients))
-        elif outcome == "retry":
+        if outcome == "retry":
             delay = next_attempt_delay_s(row.attempts + 1)
             ledger.outbox.mark_retry(
                 row.id,
@@ -257,13 +352,8 @@ def _send_claimed(
             log.error("mail parked (%s): %s", reply, row.subject)
     except NotClaimed as exc:
         log.warning("%s (this attempt: %s, %s)", exc, outcome, reply)
-        if outcome != "sent":
-            return "elsewhere"
-    if outcome == "sent":
-        ended = mailtrouble.note_success(ledger, now=now)
-        if ended is not None:
-            log.warning("mail goes out again (it could not be delivered since %s)", ended.since)
-    elif outcome == "retry":
+        return "elsewhere"
+    if outcome == "retry":
         mailtrouble.note_failure(ledger, reply, now=now)
     elif row.kind != "alert" and alerts_to:
         alert = alert_letter(
@@ -308,7 +398,7 @@ class MailThread(threading.Thread):
         self.error: str | None = None
 
     def run(self) -> None:
-        owner = new_owner()  # made here, in the thread whose claims it names
+        sender = Sender()  # made here, in the thread whose claims it names
         with Ledger(self.ledger_path) as ledger:
             while not self.stop_event.is_set():
                 try:
@@ -319,7 +409,7 @@ class MailThread(threading.Thread):
                         alerts_to=self.alerts_to,
                         domain=self.domain,
                         outage_alert_s=self.outage_alert_s,
-                        owner=owner,
+                        sender=sender,
                         stop=self.stop_event,
                     )
                     self.error = None
@@ -331,6 +421,14 @@ class MailThread(threading.Thread):
                         log.exception("mail delivery failed; trying again shortly")
                 self.wake.wait(self.interval_s)
                 self.wake.clear()
+            with contextlib.suppress(Exception):
+                sender.settle(ledger, stop=self.stop_event)  # one more try on the way out
+            for sent in sender.unrecorded.values():
+                log.warning(
+                    "mail %s went out but the ledger could not record it; its claim stays until "
+                    "%s, so no other sender sends it before: %s",
+                    sent.row.message_id, sent.row.claimed_until, sent.row.subject,
+                )
 
     def stop(self) -> None:
         self.stop_event.set()
