@@ -83,7 +83,7 @@ class Runs:
 def write_archives(folder: Path, files: int) -> tuple[list[Any], list[Any]]:
     """The demo archive (30 files) and the invented one (``files`` files), as regrade items."""
     from pipeline.demo.lots import ALL_DEMO_CELLS, demo_file_bytes
-    from pipeline.regrade.grid import RegradeItem
+    from pipeline.regrade.items import RegradeItem
 
     demo_dir, big_dir = folder / "demo", folder / "invented"
     demo_dir.mkdir()
@@ -143,7 +143,8 @@ def warm(client: Any, rules: Any, items: list[Any]) -> float:
 
 
 def timed_run(client: Any, rules: Any, items: list[Any], runs: Runs, **options: Any) -> None:
-    from pipeline.regrade.grid import RunStats, judge_many
+    from pipeline.regrade.grid import judge_many
+    from pipeline.regrade.items import RunStats
 
     stats = RunStats()
     started = time.perf_counter()

@@ -36,7 +36,8 @@ from pipeline.demo.lots import ALL_DEMO_CELLS, DEMO_CELLS, DemoCell, demo_file_b
 from pipeline.errors import FormgateError, RulesError
 from pipeline.read.profile import load_profile
 from pipeline.regrade.cache import RegradeCache
-from pipeline.regrade.grid import Judged, RegradeItem, RunStats, judge_many
+from pipeline.regrade.grid import judge_many
+from pipeline.regrade.items import Judged, RegradeItem, RunStats
 from pipeline.regrade.rules_bundle import Rules
 from pipeline.regrade.tasks import batch_size, worker_state
 from pipeline.report.result import to_json
@@ -429,7 +430,8 @@ def test_a_run_closed_half_way_resumes_and_no_file_is_judged_twice(
 
 _RUN_SCRIPT = """
 import datetime, json, sys
-from pipeline.regrade.grid import RegradeItem, RunStats, judge_many
+from pipeline.regrade.grid import judge_many
+from pipeline.regrade.items import RegradeItem, RunStats
 from pipeline.regrade.rules_bundle import Rules
 
 def main():

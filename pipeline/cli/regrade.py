@@ -91,7 +91,8 @@ def _regrade_folder(args: argparse.Namespace, engine: Any, now: datetime.datetim
     import json
 
     from pipeline.regrade.archive import folder_inputs
-    from pipeline.regrade.grid import RegradeItem, judge_many
+    from pipeline.regrade.grid import judge_many
+    from pipeline.regrade.items import RegradeItem
     from pipeline.regrade.rules_bundle import Rules
     from pipeline.writing import write_atomic
 

@@ -1,9 +1,10 @@
 """Judge many archived cycle files under one rules folder on a Dask cluster: in batches,
 resumable, with a progress bar.
 
-``judge_many(items, rules, analysed_at=...)`` yields one :class:`Judged` per item, in the
-order the cluster finishes them. Dask does all the scheduling: a ``LocalCluster`` of
-processes on this machine by default, or the cluster behind a scheduler address.
+``judge_many(items, rules, analysed_at=...)`` yields one judgement per item (the records it
+takes and gives are items.py's), in the order the cluster finishes them. Dask does all the
+scheduling: a ``LocalCluster`` of processes on this machine by default, or the cluster behind
+a scheduler address.
 
 The rules travel once: the rules bundle (:class:`~pipeline.regrade.rules_bundle.Rules`) is
 scattered to every worker once per run. A task is a batch of files, about a second of
@@ -46,15 +47,16 @@ import threading
 import time
 from collections import deque
 from collections.abc import Iterable, Iterator, Sized
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 from pipeline.errors import FormgateError, InputError
-from pipeline.model import AccuracyClass, SourceRef
+from pipeline.model import SourceRef
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.limits import TextLimits
 from pipeline.regrade.cache import CachedResult, CacheKey, RegradeCache
+from pipeline.regrade.items import Judged, RegradeItem, RunStats
 from pipeline.regrade.rules_bundle import Rules, setting_digest
 from pipeline.regrade.tasks import Batch, Done, TaskFile, batch_size, judge_batch
 
@@ -82,84 +84,6 @@ READY_MAX = 1024  # answers (from the cache) held before they are yielded
 WORKER_WAIT_S = 60.0  # how long a run waits to reach a scheduler, and then for its workers
 DRAIN_S = 30.0  # how long a stopped run lets its running tasks finish, to keep their results
 THREADS_RECOUNT_S = 10.0  # how often a run counts the cluster's worker threads again
-
-
-@dataclass(frozen=True, slots=True)
-class RegradeItem:
-    """One archived input to judge again.
-
-    ``sha256`` is the recorded SHA-256 of its bytes and ``name`` the file name it was judged
-    under (the result document names it; its ending says how to read it). ``path`` is where
-    the archived bytes are, as the workers see it; ``data`` the bytes themselves (shipped to
-    the workers whatever ``ship_bytes`` says). The import profile is ``profile_text`` (with
-    ``profile_name`` for messages), or, with ``profile_name`` alone, the profile of that file
-    name in the rules bundle's ``profiles/``. ``key`` is the caller's own id, given back in
-    :attr:`Judged.item_key`.
-    """
-
-    sha256: str
-    name: str
-    path: str | None = None
-    data: bytes | None = field(default=None, repr=False)
-    profile_text: str | None = field(default=None, repr=False)
-    profile_name: str | None = None
-    key: Any = None
-    # the analysis time its result document carries, when not the run's: a station's record
-    # keeps the time it was first analysed, its place in its cell's history
-    analysed_at: datetime.datetime | None = None
-    # the channel's accuracy class it was judged with (None: the profile's, else the default)
-    accuracy: AccuracyClass | None = None
-
-    def __post_init__(self) -> None:
-        if self.path is None and self.data is None:
-            raise ValueError(f"{self.name}: a regrade item needs its archive path or its bytes")
-
-
-@dataclass(frozen=True, slots=True)
-class Judged:
-    """What one item came to under the rules with digest ``rules_digest``.
-
-    Exactly one of ``result_json`` (the result document's text, as ``report.result.to_json``
-    writes it) and ``error`` (the located message of an "error" verdict, as a station
-    records it) is set. ``judged`` is False when ``error`` says why the file was *not*
-    judged (its archived copy cannot be read or has changed, its import profile is missing,
-    or formgate failed on it): such an answer is not kept in the cache, and a later run
-    tries again. ``from_cache`` is True for a judgement kept by an earlier run.
-    """
-
-    item_key: Any
-    sha256: str
-    rules_digest: str
-    result_json: str | None
-    error: str | None
-    judged: bool = True
-    from_cache: bool = False
-
-
-@dataclass
-class RunStats:
-    """Counts of one run, filled in as it goes (pass one to ``judge_many`` to read them).
-
-    ``files_judged`` counts the files whose answers came back from the workers, and
-    ``judging_s`` the seconds the workers spent on them (reading, checking and judging);
-    ``task_s`` sums each collected task's time on its worker, the batch's overhead
-    inside the worker included.
-    """
-
-    workers: int = 0  # worker threads when the run began
-    batch_files: int = 0  # files in the first task
-    largest_batch: int = 0  # files in the largest task
-    items: int = 0  # items taken from the caller
-    from_cache: int = 0  # answered from the cache
-    shared: int = 0  # given the answer of an item of this run with the same input and setting
-    not_sent: int = 0  # answered without a worker (unreadable for shipping, profile missing)
-    tasks: int = 0  # tasks submitted
-    tasks_done: int = 0  # tasks collected
-    files_sent: int = 0  # files in the tasks submitted
-    files_judged: int = 0
-    judging_s: float = 0.0
-    task_s: float = 0.0
-    cancelled_tasks: int = 0  # tasks cancelled when the run stopped early
 
 
 # ---------------------------------------------------------------------------------------------
