@@ -242,6 +242,16 @@ def test_check_with_import_profile(tmp_path: Path, capsys: pytest.CaptureFixture
     assert capsys.readouterr() == (GOOD_LINE.replace(GOOD.file_name, "tab-log.txt") + "\n", "")
 
 
+def test_check_help_names_what_it_reads(capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit) as done:
+        main(["check", "--help"])
+    assert done.value.code == 0
+    text = " ".join(capsys.readouterr().out.split())
+    assert "FILE cycle files: version 1 text (.csv or .csv.gz) or, through --profile," in text
+    for kind in ("delimited text", ".xlsx", ".xls", ".ods", "Parquet"):
+        assert kind in text, kind
+
+
 def test_check_out_twice_gives_identical_files_that_match_the_schema(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

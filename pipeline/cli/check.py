@@ -154,7 +154,13 @@ def add_commands(sub: Any) -> None:
         epilog="example: formgate check inbox/*.csv --rules rules/ --out out/",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    check.add_argument("files", nargs="+", metavar="FILE", help="cycle files (.csv or .csv.gz)")
+    check.add_argument(
+        "files",
+        nargs="+",
+        metavar="FILE",
+        help="cycle files: version 1 text (.csv or .csv.gz) or, through --profile, other delimited "
+        "text, a workbook (.xlsx, .xlsm, .xls, .ods) or a Parquet file",
+    )
     check.add_argument("--rules", default="rules", help="folder of rule files (default: rules)")
     check.add_argument(
         "--out", help="folder for results/ and certificates/ (default: write nothing)"
