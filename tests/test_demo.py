@@ -39,6 +39,27 @@ def test_station_demo_accounts_for_every_file(demo_station: tuple[Path, str]) ->
     assert any("lot DEMO-LOT-04, closed" in m for m in mails)
     _check_cell_certificates(root)
     _check_worn_channel(root, stdout)
+    _check_summary_table(stdout)
+
+
+def _check_summary_table(stdout: str) -> None:
+    """The summary lists every cell once, the staged lot's too, as its cell JSON stands: its
+    standing verdict, hazards and the reasons that decide it."""
+    lines = stdout.splitlines()
+    start = next(n for n, line in enumerate(lines) if line.startswith("cell "))
+    assert lines[start].split() == ["cell", "lot", "verdict", "hazards", "reason"]
+    rows = {}
+    for line in lines[start + 1:]:
+        if not line.strip():
+            break
+        rows[line.split()[0]] = line
+    assert len(rows) == 94, sorted(rows)  # 70 whole-program cells and 24 in stages
+    assert re.match(r"S04-024 +DEMO-LOT-04 +hold +outlier in lot: k_value_mV_per_day", rows["S04-024"])
+    assert re.match(r"S04-023 +DEMO-LOT-04 +fail +grading_capacity_Ah 4\.49", rows["S04-023"])
+    assert re.match(r"S04-001 +DEMO-LOT-04 +pass *$", rows["S04-001"])
+    assert re.match(r"L01-014 +DEMO-LOT-01 +fail +over_temperature +max_temperature_C 62\.7",
+                    rows["L01-014"])
+    assert re.match(r"L01-015 +DEMO-LOT-01 +hold +\S", rows["L01-015"])  # a hold says why
 
 
 def _check_worn_channel(root: Path, stdout: str) -> None:

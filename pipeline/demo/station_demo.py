@@ -285,6 +285,22 @@ def _show_staged_lot(outcome: LotOutcome) -> int:
     return 0
 
 
+def _cell_table(results: list[Path]) -> None:
+    """Every cell once, as its cell JSON (``<cell>~cell.json``) stands: its standing verdict,
+    hazards and the reasons that decide it (a stage record's JSON is one stage's verdict)."""
+    print(f"{'cell':<10} {'lot':<12} {'verdict':<8} {'hazards':<16} reason")
+    for path in results:
+        if not path.name.endswith("~cell.json"):
+            continue
+        doc = json.loads(path.read_text(encoding="utf-8"))
+        standing = doc["standing"]
+        line = (
+            f"{doc['cell']['cell_id']:<10} {doc['cell']['lot']:<12} {standing['verdict']:<8} "
+            f"{', '.join(standing['hazards']):<16} {'; '.join(standing['reasons'])}"
+        )
+        print(line.rstrip())
+
+
 def _report(root: Path, expected: int) -> int:
     archived = sorted(
         p.name
@@ -298,15 +314,7 @@ def _report(root: Path, expected: int) -> int:
     pdfs = sorted((root / "certificates").rglob("*.pdf"))
     mails = sorted((root / "mail").glob("*.eml"))
     print()
-    print(f"{'cell':<10} {'lot':<12} {'verdict':<8} hazards")
-    for path in results:
-        if "~" in path.name:  # a file of one stage: its lot is summed up at its close, below
-            continue
-        doc = json.loads(path.read_text(encoding="utf-8"))
-        print(
-            f"{doc['cell']['cell_id']:<10} {doc['cell']['lot']:<12} {doc['verdict']:<8} "
-            f"{', '.join(doc['hazards'])}"
-        )
+    _cell_table(results)
     print()
     print(
         f"inputs handed over: {expected}; archived: {len(archived)}; quarantined: {len(quarantined)}"
