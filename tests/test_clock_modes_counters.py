@@ -251,7 +251,7 @@ def test_time_that_runs_on_across_the_steps_is_not_read_as_time_since_the_step_b
         "c.csv, line 9, column 1: time_s does not restart with the step: it is 40.1 where step 2 "
         "begins, after 30.1 at the end of step 1 on line 8, and it runs on at 2 of 2 step changes.\n"
         '  The column reads as time since the record began: set [time] stamps = "elapsed" in the '
-        'import profile layout.toml (stamps = "step elapsed" is for time that starts again with '"
+        'import profile layout.toml (stamps = "step elapsed" is for time that starts again with '
         "each step)."
     )
 
