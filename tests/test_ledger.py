@@ -193,6 +193,45 @@ def test_a_failing_migration_leaves_the_database_at_the_previous_version(tmp_pat
     Ledger(path, now=T0).close()  # still opens with the code it was made by
 
 
+def test_a_current_ledger_opens_and_reads_while_another_process_holds_its_write_lock(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A real lock: a second connection holds ``BEGIN IMMEDIATE`` (a backup, a manual sqlite3
+    session, the station in a long write). With the busy timeout lowered, a wait for the lock
+    shows at once instead of after 30 s."""
+    from pipeline.ledger import connection
+
+    path, older = tmp_path / "ledger.sqlite", tmp_path / "older.sqlite"
+    with Ledger(path, now=T0) as ledger:
+        ledger.outbox.queue(Letter("alert", "<lock-1@demo.example>", QUALITY, "alert", "text"), now=T0)
+    conn = sqlite3.connect(older, isolation_level=None)
+    migrate(conn, MIGRATIONS[:-1], applied_at="x", where=SourceRef(str(older)))
+    conn.close()
+    monkeypatch.setattr(connection, "BUSY_TIMEOUT_MS", 200)
+    holders = [sqlite3.connect(p, isolation_level=None) for p in (path, older)]
+    for holder in holders:
+        holder.execute("BEGIN IMMEDIATE")
+    try:
+        # the schema is current: checking it needs no write lock, and reading goes on
+        with Ledger(path, now=minutes(5)) as ledger:
+            assert ledger.outbox.counts()["pending"] == 1
+            assert [name for name, _ in applied_migrations(ledger.db.conn)] == [
+                m.name for m in MIGRATIONS
+            ]
+            with pytest.raises(sqlite3.OperationalError, match="locked"):  # writing still waits
+                ledger.outbox.queue(Letter("alert", "<lock-2@demo.example>", QUALITY, "a", "t"),
+                                    now=minutes(5))
+        # a ledger a migration behind needs the lock to migrate: refused once the wait is over
+        with pytest.raises(LedgerError, match="another process kept the ledger locked"):
+            Ledger(older, now=minutes(5))
+    finally:
+        for holder in holders:
+            holder.execute("ROLLBACK")
+            holder.close()
+    with Ledger(older, now=minutes(6)) as ledger:  # the lock gone, it migrates
+        assert ledger.db.conn.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
+
+
 def test_a_ledger_claiming_a_future_version_is_refused(tmp_path: Path) -> None:
     path = tmp_path / "ledger.sqlite"
     Ledger(path, now=T0).close()

@@ -98,7 +98,7 @@ class Connection:
             )
         if code in ("SQLITE_BUSY", "SQLITE_LOCKED"):
             return LedgerError(
-                f"another process kept the ledger locked for {BUSY_TIMEOUT_MS // 1000} s",
+                f"another process kept the ledger locked for {BUSY_TIMEOUT_MS / 1000:g} s",
                 self._where,
                 "Check that only one station runs on this folder.",
             )
