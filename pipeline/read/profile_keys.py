@@ -174,7 +174,8 @@ PROFILE_KEYS: tuple[ProfileKey, ...] = (
         "elapsed",
         "elapsed: time since the record began, in [units] time; date-time: a date and time of "
         "day on each row (see date_format and zone); step elapsed: time since the current step "
-        "began, restarting with each step (needs [columns] step), in [units] time",
+        "began, restarting with each step (needs [columns] step; a time that runs on across "
+        "the step changes is refused), in [units] time",
     ),
     ProfileKey(
         "time",
