@@ -18,14 +18,12 @@ from hypothesis import given
 from hypothesis import strategies as st
 from pypdf import PdfWriter
 
+from pipeline.mail.digest import DIGEST_NOTE, DigestRow, digest_letter
 from pipeline.mail.letters import (
-    DIGEST_NOTE,
-    DigestRow,
     Letter,
     MailError,
     alert_letter,
     build_message,
-    digest_letter,
     failure_letter,
     hold_letter,
     message_id_for,

@@ -20,7 +20,7 @@ from pathlib import Path
 
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import ResultRow
-from pipeline.mail.letters import DigestRow, digest_letter
+from pipeline.mail.digest import DigestRow, digest_letter
 from pipeline.station.cellpublish import all_current, cell_paths, published_certificate
 from pipeline.station.published_files import recorded_path
 from pipeline.station.settings import Settings

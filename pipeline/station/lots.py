@@ -33,7 +33,8 @@ from pipeline.judge.lotstats import tally
 from pipeline.judge.metricdefs import RULE_METRICS
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow
-from pipeline.mail.letters import Letter, alert_letter, digest_letter
+from pipeline.mail.digest import digest_letter
+from pipeline.mail.letters import Letter, alert_letter
 from pipeline.names import safe_name
 from pipeline.read.readings import Reading, ReadingFile
 from pipeline.report.lotparquet import lot_export_parquet
