@@ -5,8 +5,8 @@ and ``render_docs`` prints docs/rules.md from the same tables, so an accepted ke
 cannot go undocumented. Cross-key checks (low below high, relative windows,
 known cell types) live in the loader; their wording is documented here.
 
-Longer than one job's module should be, on purpose: it is one table of every key a rule
-file may hold, read top to bottom in the order docs/rules.md prints it; cut in two, a
+One piece, though longer than one job's module should be: it is one table of every key a
+rule file may hold, read top to bottom in the order docs/rules.md prints it; cut in two, a
 reader would look for a key in the wrong half, and the docs' order would live in two files.
 
 Regenerate the documentation with ``python -m pipeline.rulebook.schema > docs/rules.md``.

@@ -1,13 +1,17 @@
 """The schema of station.toml, declared as data, and the texts made from it: default file, docs.
 
-settings.py checks a station file against these tables and nothing else;
-``render_station_toml`` writes the commented file that ``formgate init`` creates and
-``render_docs`` prints docs/station-settings.md, both from the same tables, so a key
-the station accepts cannot go undocumented. The rules between keys (folders that
-must differ, SMTP log-in consistency, ...) live in settings.py; their wording is
-listed here in ``CROSS_RULES`` for the docs.
+check.py checks a station file against these tables (through rulebook/tables.py) and
+nothing else; ``render_station_toml`` writes the commented file that ``formgate init``
+creates and ``render_docs`` prints docs/station-settings.md, both from the same tables, so
+a key the station accepts cannot go undocumented. The rules between keys (folders that
+must differ, SMTP log-in consistency, ...) live in folders.py and mail.py; their wording
+is listed here in ``CROSS_RULES`` for the docs.
 
-Long because it is a table: every key of station.toml with its meaning, unit and bounds.
+One piece, though longer than one job's module should be: it is one table of every key of
+station.toml with its meaning, unit and bounds, read top to bottom in the order the new
+station's file and docs/station-settings.md print it, and the two short renderers that walk
+it; cut in two, a reader would look for a key in the wrong half, and the order of the file
+and the docs would live in two files.
 
 Regenerate the documentation with
 ``python -m pipeline.station.settings > docs/station-settings.md``.
