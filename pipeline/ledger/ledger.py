@@ -11,16 +11,16 @@ killed at any point and, on restart, find each input at a single state boundary:
 
 Why small objects over one connection, and not one class: each table family's queries live
 in a module of their own (inputs.py, results.py, outbox.py, digests.py, readings.py,
-decisions.py, reviews.py, regrades.py, lots.py, published.py, facts.py, certificates.py), and a family is an
-object that holds only the shared :class:`~pipeline.ledger.connection.Connection` (reviews
-and regrades also the decisions family: a review, or a regrade of a cell, and the decision
-it gives are one transaction). A caller names the family it uses
-(``ledger.inputs.claim(...)``, ``ledger.outbox.due(...)``), so a reader finds every query
-where its table is, and no family can reach another's state: a write that spans tables (a
-result with its letters) is one method that opens one transaction and inserts the letters
-with :func:`pipeline.ledger.outbox.insert_mail`. The schema and its migrations are
-migrations.py's; the records a row reads as are rows.py's; the hash chain over decisions and
-reviews is chain.py's.
+decisions.py, reviews.py, regrades.py, lots.py, published.py, facts.py, certificates.py,
+channel_alerts.py), and a family is an object that holds only the shared
+:class:`~pipeline.ledger.connection.Connection` (reviews and regrades also the decisions
+family: a review, or a regrade of a cell, and the decision it gives are one transaction). A
+caller names the family it uses (``ledger.inputs.claim(...)``, ``ledger.outbox.due(...)``),
+so a reader finds every query where its table is, and no family can reach another's state: a
+write that spans tables (a result with its letters) is one method that opens one transaction
+and inserts the letters with :func:`pipeline.ledger.outbox.insert_mail`. The schema's
+migrations are migrations.py's and the code that applies them migrate.py's; the records a
+row reads as are rows.py's; the hash chain over decisions and reviews is chain.py's.
 
 >>> import datetime, pathlib, tempfile
 >>> t = datetime.datetime(2026, 1, 5, 8, 0, tzinfo=datetime.UTC)
