@@ -11,6 +11,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.judge.thin import decimate
 from pipeline.model import Curve, Plateau
 from pipeline.report import plots, svgplot
 from tests.golden import cases
@@ -64,7 +65,7 @@ def test_decimate_keeps_extremes_and_ends_within_the_budget(
         points = sorted(points)
     x = np.array([p[0] for p in points])
     y = np.array([p[1] for p in points])
-    dx, dy = plots.decimate(x, y, max_points)
+    dx, dy = decimate(x, y, max_points)
     assert len(dx) == len(dy) <= max_points
     kept = set(zip(dx.tolist(), dy.tolist(), strict=True))
     assert kept <= set(zip(x.tolist(), y.tolist(), strict=True))
@@ -72,7 +73,7 @@ def test_decimate_keeps_extremes_and_ends_within_the_budget(
     assert (dx[-1], dy[-1]) == (x[-1], y[-1])
     assert dy.max() == y.max()
     assert dy.min() == y.min()
-    again = plots.decimate(x, y, max_points)
+    again = decimate(x, y, max_points)
     assert np.array_equal(again[0], dx) and np.array_equal(again[1], dy)
 
 
@@ -80,27 +81,27 @@ def test_decimate_keeps_sample_order_and_a_single_spike() -> None:
     x = np.linspace(0.0, 100.0, 100_000)
     y = np.zeros_like(x)
     y[54_321] = 7.0
-    dx, dy = plots.decimate(x, y, 300)
+    dx, dy = decimate(x, y, 300)
     assert len(dx) <= 300
     assert np.all(np.diff(dx) > 0)
     assert dy.max() == 7.0 and dx[np.argmax(dy)] == x[54_321]
 
 
 def test_decimate_drops_non_finite_points() -> None:
-    dx, dy = plots.decimate([0, 1, 2, 3], [1.0, math.nan, math.inf, 2.0], 10)
+    dx, dy = decimate([0, 1, 2, 3], [1.0, math.nan, math.inf, 2.0], 10)
     assert dx.tolist() == [0.0, 3.0] and dy.tolist() == [1.0, 2.0]
 
 
 def test_decimate_returns_short_input_whole() -> None:
-    dx, dy = plots.decimate([0.0, 1.0, 2.0], [3.0, 1.0, 2.0], 10)
+    dx, dy = decimate([0.0, 1.0, 2.0], [3.0, 1.0, 2.0], 10)
     assert dx.tolist() == [0.0, 1.0, 2.0] and dy.tolist() == [3.0, 1.0, 2.0]
 
 
 def test_decimate_refuses_a_tiny_budget_and_unequal_lengths() -> None:
     with pytest.raises(ValueError, match="at least 4"):
-        plots.decimate([0.0, 1.0], [0.0, 1.0], 3)
+        decimate([0.0, 1.0], [0.0, 1.0], 3)
     with pytest.raises(ValueError, match="differ in length"):
-        plots.decimate([0.0, 1.0], [0.0], 10)
+        decimate([0.0, 1.0], [0.0], 10)
 
 
 # --- ticks ----------------------------------------------------------------------------------
@@ -112,7 +113,7 @@ def test_ticks_cover_the_range_with_round_even_steps(
     low: float, width: float, max_ticks: int
 ) -> None:
     high = low + width * max(1.0, abs(low))
-    ticks = plots.nice_ticks(low, high, max_ticks)
+    ticks = svgplot.nice_ticks(low, high, max_ticks)
     assert 2 <= len(ticks) <= max_ticks
     steps = np.diff(ticks)
     assert ticks[0] <= low + 1e-8 * steps[0]
@@ -124,17 +125,17 @@ def test_ticks_cover_the_range_with_round_even_steps(
 
 def test_ticks_need_room_for_three() -> None:
     with pytest.raises(ValueError, match="at least 3"):
-        plots.nice_ticks(-1.0, 1.0, 2)
+        svgplot.nice_ticks(-1.0, 1.0, 2)
     with pytest.raises(ValueError, match="cannot place ticks"):
-        plots.nice_ticks(1.0, 1.0)
+        svgplot.nice_ticks(1.0, 1.0)
 
 
 def test_tick_labels_use_the_decimals_of_their_step_and_a_true_minus() -> None:
-    assert plots.tick_label(3.2, 0.2) == "3.2"
-    assert plots.tick_label(40.0, 20.0) == "40"
-    assert plots.tick_label(-50.0, 50.0) == "\N{MINUS SIGN}50"
-    assert plots.tick_label(-0.0, 0.5) == "0.0"
-    assert plots.tick_label(0.05, 0.05) == "0.05"
+    assert svgplot.tick_label(3.2, 0.2) == "3.2"
+    assert svgplot.tick_label(40.0, 20.0) == "40"
+    assert svgplot.tick_label(-50.0, 50.0) == "\N{MINUS SIGN}50"
+    assert svgplot.tick_label(-0.0, 0.5) == "0.0"
+    assert svgplot.tick_label(0.05, 0.05) == "0.05"
 
 
 # --- discharge plot -------------------------------------------------------------------------
@@ -299,7 +300,7 @@ def test_curve_leaves_out_only_points_the_page_cannot_show() -> None:
     kept, and a long flat stretch is drawn with far fewer points."""
     curve = cases.grading_curve()
     frame = svgplot.frame_for(86, 54, (0.0, 100.0), (2.4, 3.6))
-    x, y = plots.decimate(curve.x, curve.y, int(frame.width * svgplot.POINTS_PER_MM))
+    x, y = decimate(curve.x, curve.y, int(frame.width * svgplot.POINTS_PER_MM))
     every = np.column_stack([[frame.px(a) for a in x], [frame.py(b) for b in y]])
     drawn = svgplot.simplify(every)
     assert 2 <= len(drawn) < len(every) / 2

@@ -26,24 +26,18 @@ from pipeline.report.svgplot import (
     finite,
     frame_for,
     n,
-    nice_ticks,
     no_data,
     open_svg,
     polyline,
     span,
     text,
-    tick_label,
 )
 
-# decimate, nice_ticks and tick_label are used by the tests through this module as well
 __all__ = [
-    "decimate",
     "discharge_svg",
     "ica_svg",
     "marked_peaks",
-    "nice_ticks",
     "peak_numbers",
-    "tick_label",
 ]
 
 MAX_MARKED_PEAKS = 10
