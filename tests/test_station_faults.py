@@ -15,6 +15,7 @@ import email.policy
 import errno
 import json
 import os
+import sqlite3
 import subprocess
 from collections.abc import Iterator
 from pathlib import Path
@@ -248,3 +249,50 @@ def test_the_heartbeat_is_rewritten_in_place_when_the_disk_is_full(tmp_path: Pat
         assert path.stat().st_size == SIZE
         assert not list(disk.glob(".heartbeat.json*")), "no temporary file left behind"
         filler.unlink()
+
+
+def test_status_shows_a_station_paused_over_a_locked_ledger_and_what_it_can_when_unreadable(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """Another process holds the ledger's write lock (``BEGIN IMMEDIATE``) past the busy timeout
+    (lowered here, so the station pauses soon): status reads beside it and shows the pause.
+    A lock that keeps readers out too (an exclusive one, once the station has stopped):
+    status still shows the heartbeat and says why the rest is missing."""
+    from pipeline.cli.main import main
+    from pipeline.ledger import connection
+
+    monkeypatch.setattr(connection, "BUSY_TIMEOUT_MS", 500)
+    s = make_station(tmp_path / "st", station_toml(extra=QUICK))
+    inbox = s.inboxes[0].folder
+    with running(s):
+        drop(inbox, "a.csv", cycle_file("LOCK-1"))
+        wait_until(lambda: settled(s, 1), what="first cell")
+        holder = sqlite3.connect(s.ledger, isolation_level=None)
+        try:
+            holder.execute("BEGIN IMMEDIATE")
+            drop(inbox, "b.csv", cycle_file("LOCK-2", seed=2))
+            wait_until(lambda: _paused(s, "is locked by another process"), what="paused on the lock")
+            assert main(["status", str(s.root)]) == 0
+            report = capsys.readouterr().out
+            assert report.splitlines()[0] == "station test-station: paused", report
+            assert f"paused: the ledger {s.ledger} is locked by another process" in report
+            assert "LOCK-1  lot LOT-A  pass" in report  # read from the ledger all the same
+            assert "ledger integrity: ok" in report
+        finally:
+            holder.execute("ROLLBACK")
+        wait_until(lambda: settled(s, 2), what="resumed once the lock is gone")
+    try:
+        holder.execute("PRAGMA locking_mode = EXCLUSIVE")  # readers are kept out too
+        holder.execute("BEGIN EXCLUSIVE")
+        assert main(["status", str(s.root)]) == 0
+    finally:
+        holder.execute("ROLLBACK")
+        holder.close()
+    report = capsys.readouterr().out
+    lines = report.splitlines()
+    assert lines[0] == "station test-station: stopped" and "last heartbeat" in lines[1], report
+    assert "queue" in lines and "  work: 0 file(s) being judged" in lines
+    assert lines[-1] == (
+        f"ledger: cannot be read now: the ledger {s.ledger} is locked by another process "
+        "(database is locked); the rest of the status is in it"
+    ), report

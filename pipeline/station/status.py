@@ -1,7 +1,9 @@
 """`formgate status`: what the station is doing, read from its ledger, heartbeat and folders.
 
 Read-only: it never claims, moves or writes anything, so it is safe to run beside
-a running station (SQLite WAL lets a reader in while the station writes).
+a running station (SQLite WAL lets a reader in while the station writes, and opening
+a current ledger takes no write lock). A ledger that cannot be read at all (another
+process keeps even readers out) leaves the heartbeat and the folders to show.
 """
 
 from __future__ import annotations
@@ -9,10 +11,12 @@ from __future__ import annotations
 import datetime
 import json
 import os
+import sqlite3
 from pathlib import Path
 
 from pipeline.ledger.certificates import Backlog
 from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.migrate import LedgerError
 from pipeline.names import from_text, to_text
 from pipeline.station.board import process_exists
 from pipeline.station.handoff import is_temporary
@@ -20,6 +24,7 @@ from pipeline.station.heartbeat import read_heartbeat
 from pipeline.station.mailtrouble import current as mail_trouble
 from pipeline.station.settings import Settings
 from pipeline.station.startup import read_waiting
+from pipeline.station.troubles import describe
 from pipeline.station.waiting import overdue_entries
 from pipeline.station.watcher import list_entries
 
@@ -146,6 +151,28 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
             lines += overdue
         lines.append("\nno ledger yet")
         return "\n".join(lines) + "\n"
+    try:
+        lines = _with_ledger(settings, now, state, list(lines))
+    except (LedgerError, sqlite3.Error) as exc:
+        # another process keeps even readers out (an exclusive lock), or the file is damaged:
+        # what the heartbeat and the folders say is shown all the same
+        lines += ["", f"ledger: cannot be read now: {_why_unreadable(exc, settings.ledger)}"]
+    return "\n".join(lines) + "\n"
+
+
+def _why_unreadable(exc: LedgerError | sqlite3.Error, ledger: Path) -> str:
+    cause = exc.__cause__ if isinstance(exc, LedgerError) else exc
+    if isinstance(cause, sqlite3.Error) and getattr(cause, "sqlite_errorname", "") in (
+        "SQLITE_BUSY", "SQLITE_LOCKED"
+    ):
+        return f"{describe(cause, ledger=ledger)}; the rest of the status is in it"
+    return str(exc).replace("\n", " ")
+
+
+def _with_ledger(
+    settings: Settings, now: datetime.datetime, state: str, lines: list[str]
+) -> list[str]:
+    """``lines`` (heartbeat and queue) with what the ledger adds: the report's rest."""
     midnight = now.astimezone(datetime.UTC).replace(hour=0, minute=0, second=0, microsecond=0)
     with Ledger(settings.ledger, now=now) as ledger:
         noted = ledger.facts.state("paused")
@@ -253,4 +280,4 @@ def status_text(settings: Settings, now: datetime.datetime) -> str:
         lines.append(
             f"ledger integrity: {'ok' if ledger.integrity_ok() else 'DAMAGED - see docs/station.md'}"
         )
-    return "\n".join(lines) + "\n"
+    return lines
