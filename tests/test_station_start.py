@@ -12,6 +12,7 @@ import datetime
 import email
 import email.policy
 import json
+import re
 import time
 from pathlib import Path
 
@@ -126,6 +127,8 @@ def test_a_missing_inbox_is_a_trouble_of_its_own_and_the_other_inbox_goes_on(tmp
         report = _status(s)
         assert "  trouble: inbox hall-b is missing (its folder " in report
         assert "hall-b (" in report and "the folder is not there" in report
+        since = re.search(r"trouble: inbox hall-b is missing .* since (\S+)$", report, re.M)
+        assert since is not None, report
         away.rename(hall_b)  # mounted: its files are taken
         drop(hall_b, "b1.csv", cycle_file("MB-1", seed=2))
         wait_until(lambda: settled(s, 2), what="hall-b taken once it is back")
@@ -145,6 +148,21 @@ def test_a_missing_inbox_is_a_trouble_of_its_own_and_the_other_inbox_goes_on(tmp
         code = stop_watch(proc)
     assert code == 0
     assert len(_alerts(s, "inbox hall-b is missing")) == 1
+    # the alert says since when, as status does
+    ((subject, body),) = _alert_texts(s, "inbox hall-b is missing")
+    assert subject == f"formgate: ALERT — inbox hall-b is missing (its folder {hall_b} is not " \
+        f"there) since {since[1]}", subject
+    assert f"{hall_b}, is not there since {since[1]}: a share" in " ".join(body.split()), body
+
+
+def _alert_texts(s: Settings, words: str) -> list[tuple[str, str]]:
+    """(subject, body) of each alert whose subject holds ``words``."""
+    out = []
+    for p in s.mail.glob("*.eml"):
+        msg = email.message_from_bytes(p.read_bytes(), policy=email.policy.default)
+        if words in str(msg["Subject"]):
+            out.append((str(msg["Subject"]), msg.get_body().get_content()))  # type: ignore[union-attr]
+    return out
 
 
 def settled_in(s: Settings, inbox: Path, expected: int) -> bool:

@@ -195,22 +195,23 @@ class Guard:
             if self.troubles.clear(key, now=self.clock()) is not None:
                 log.warning("inbox %s is back: the station takes its files again", inbox.name)
             return
+        now = self.clock()
+        since = f"since {now.isoformat(timespec='seconds')}"
         if isinstance(exc, FileNotFoundError):
             reason = f"inbox {inbox.name} is missing (its folder {inbox.folder} is not there)"
-            what = (f"The folder of inbox {inbox.name}, {inbox.folder}, is not there: a share "
-                    "that is not mounted, or a folder removed or renamed.")
+            what = (f"The folder of inbox {inbox.name}, {inbox.folder}, is not there {since}: "
+                    "a share that is not mounted, or a folder removed or renamed.")
         else:
             reason = f"inbox {inbox.name} cannot be listed ({describe(exc)})"
-            what = f"The station cannot list {inbox.folder}: {describe(exc)}."
-        trouble = self.troubles.report(
-            key, reason, now=self.clock(), now_s=time.monotonic(), blocking=False
-        )
+            what = f"The station cannot list {inbox.folder} {since}: {describe(exc)}."
+        trouble = self.troubles.report(key, reason, now=now, now_s=time.monotonic(), blocking=False)
         if trouble is None:
             self.troubles.reword(key, reason)  # e.g. missing, then there but unreadable
             return
         log.error("%s; the other inboxes go on", reason)
         if not trouble.repeated:
-            self.alert(reason, f"{what} Files handed over there wait until the station can "
-                       "take them; the other inboxes go on, and this one resumes by itself "
-                       "once the folder is back.",
+            # said as status says it (Trouble.shown): the reason, and since when
+            self.alert(f"{reason} {since}", f"{what} Files handed over there wait until the "
+                       "station can take them; the other inboxes go on, and this one resumes "
+                       "by itself once the folder is back.",
                        key=f"inbox:{inbox.name}:{trouble.since.isoformat()}")
