@@ -113,7 +113,9 @@ def test_cycle_files_and_a_tester_file_make_one_decision_per_cell(tmp_path: Path
     assert "      the cell: fail: k_value_mV_per_day 3.029 ± 0.012 mV/day > 1.000 mV/day (reject)" in report
 
 
-def test_a_mailed_failure_that_a_later_record_supersedes_gets_a_follow_up(tmp_path: Path) -> None:
+def test_a_mailed_failure_that_a_later_record_supersedes_gets_a_follow_up(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     s = make_station(tmp_path / "st")
     with running(s):
         drop(s.inboxes[0].folder, "first.csv", cycle_file("C-9", capacity_ah=1.5))
@@ -148,6 +150,15 @@ def test_a_mailed_failure_that_a_later_record_supersedes_gets_a_follow_up(tmp_pa
     assert "is superseded, because a new record of the cell was judged" in body
     assert "a later record does not by itself make it safe" in body
     assert "retest.csv" in body
+    # formgate cell show marks the first record, under its own file name, as superseded
+    from pipeline.cli.main import main
+
+    assert main(["cell", "show", str(s.root), "C-9"]) == 0
+    records = [x for x in capsys.readouterr().out.splitlines() if re.match(r"    \d of 2  ", x)]
+    assert len(records) == 2, records
+    assert re.fullmatch(r"    1 of 2  \S+  first\.csv  formation and grading  fail: .+  \(superseded\)",
+                        records[0]), records
+    assert re.fullmatch(r"    2 of 2  \S+  retest\.csv  formation and grading  pass", records[1]), records
 
 
 LOT_RULES = AGING_RULES.replace(
