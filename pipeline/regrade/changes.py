@@ -6,11 +6,15 @@ book in; the cells whose verdict, grade, hazards or deciding checks would change
 the checks behind it (value, old window and outcome, new window and outcome). A cell is
 decided again exactly as the station decides it: from its records that count
 (judge/lotclose.cell_stages) and its stages (judge/cellverdict.decide); in a closed lot,
-with the lot's screens and grades (judge/lotclose.close_lot). A cell whose latest
-decision rests on a person's review that still stands is never changed: it is listed
-for a new review. An input the new rules refuse (its cell type in no rule set, say), or
-that could not be judged again (its archived copy changed or unreadable), is listed with
-the reason and leaves its cell as it was.
+with the lot's screens and grades (judge/lotclose.close_lot). A cell decided by a
+person's review that still stands (judge/review.stands) is never changed: it is listed
+for a new review exactly when the new rules change what the person saw, that is the
+verdict or a check outcome of one of its records, or what its lot's screens make of it,
+each compared without the review (the rules' own decision under the old rules and
+under the new); a window moved under unchanged outcomes leaves it alone. An input the
+new rules refuse (its cell type in no rule set, say), or that could not be judged again
+(its archived copy changed or unreadable), is listed with the reason and leaves its cell
+as it was.
 """
 
 from __future__ import annotations
@@ -23,7 +27,7 @@ from typing import Any
 from pipeline.errors import FormgateError
 from pipeline.judge.cellverdict import decide
 from pipeline.judge.lotclose import cell_now, close_lot
-from pipeline.judge.review import Reviewed
+from pipeline.judge.review import Reviewed, stands
 from pipeline.read.readings import Reading, ReadingFile
 from pipeline.rulebook.book import RuleBook
 
@@ -145,10 +149,13 @@ def lot_changes(
     rulebook: RuleBook,
     *,
     closed: bool,
+    old_rulebook: RuleBook | None = None,
 ) -> LotChanges:
     """Every cell of ``lot`` decided again with ``new_docs`` (by input SHA-256) in place of its
     old records; the cells that change. ``refused``: input SHA-256 -> why the new rules
-    refuse it (the old record stays). ``readings``: (file name, SHA-256, reading)."""
+    refuse it (the old record stays). ``readings``: (file name, SHA-256, reading).
+    ``old_rulebook``: the rules that decided ``old_docs`` (the new ones when not known), for
+    the rules' own decision on a reviewed cell before the change."""
     docs: list[Doc] = []
     out_refused: list[Refused] = []
     for doc in old_docs:
@@ -162,39 +169,84 @@ def lot_changes(
     untouched = {r.cell_id for r in out_refused}
     try:
         decided = _decide(lot, docs, readings, reviews, rulebook, closed=closed)
+        reviewed = _decided_by_review(docs, readings, reviews, rulebook)
+        # the rules' own decisions without any review (an open lot's are so already)
+        rules_new = _decide(lot, docs, readings, {}, rulebook, closed=True) if (
+            reviewed and closed) else decided
     except FormgateError as exc:
         return LotChanges(lot, closed, 0, (), tuple(out_refused), str(exc).splitlines()[0])
+    rules_old = {}
+    if reviewed:
+        try:
+            rules_old = _decide(lot, old_docs, readings, {}, old_rulebook or rulebook,
+                                closed=closed)
+        except FormgateError:  # not known as it was: every reviewed cell is asked again
+            rules_old = {}
     changes = []
     for cell_id, (new, files) in sorted(decided.items()):
         old = standing.get(cell_id)
-        if old is None or cell_id in untouched or _same(old, new):
+        if old is None or cell_id in untouched:
             continue
         shas = tuple(sha for _, _, sha in files if sha in new_docs)
         checks = [ch for sha in shas if sha in old_by_sha
                   for ch in check_changes(old_by_sha[sha], new_docs[sha])]
-        review = reviews.get(cell_id)
-        held_by_review = old.cause == "review" and review is not None
+        if cell_id in reviewed:
+            # a person decided the cell: asked again exactly when the new rules change what
+            # the person saw (never changed here), whatever the review itself gave
+            after = rules_new[cell_id][0]
+            before = rules_old.get(cell_id)
+            moved = any(old_by_sha[sha]["verdict"] != new_docs[sha]["verdict"]
+                        for sha in shas if sha in old_by_sha)
+            moved = moved or any(ch.old_outcome != ch.new_outcome for ch in checks)
+            if not moved and before is not None and _same(before[0], after, grade=False):
+                continue
+            changes.append(
+                CellChange(lot, cell_id, old, after, tuple(checks), True, shas, tuple(files))
+            )
+            continue
+        if _same(old, new):
+            continue
         changes.append(
-            CellChange(lot, cell_id, old, new, tuple(checks), held_by_review, shas, tuple(files))
+            CellChange(lot, cell_id, old, new, tuple(checks), False, shas, tuple(files))
         )
     return LotChanges(lot, closed, len(decided), tuple(changes), tuple(out_refused))
+
+
+def _decided_by_review(
+    docs: Sequence[Doc],
+    readings: Sequence[tuple[str, str, Reading]],
+    reviews: Mapping[str, Reviewed],
+    rulebook: RuleBook,
+) -> set[str]:
+    """The reviewed cells whose review still decides them (nothing new came after it)."""
+    out = set()
+    for cell_id, review in reviews.items():
+        cell = cell_now(
+            [d for d in docs if d["verdict"] != "error" and str(d["cell"]["cell_id"]) == cell_id],
+            [r for r in readings if r[2].cell_id == cell_id],
+            rulebook,
+        )
+        if cell is not None and stands(review, cell.stages.records, cell.stages.files):
+            out.add(cell_id)
+    return out
 
 
 _NUMBER = re.compile(r"[-+]?\d[\d.,]*(?:[eE][-+]?\d+)?")
 
 
-def _same(old: Standing, new: Standing) -> bool:
+def _same(old: Standing, new: Standing, *, grade: bool = True) -> bool:
     """Whether a decision stands as it was: the same verdict, grade and hazards, decided by the
     same checks for the same reasons. A window moved under a cell that fails (or is held)
     by the same check anyway changes only the numbers in its reason: that is no change.
+    ``grade=False``: the grades are not compared.
 
     >>> a = Standing("fail", "grading_capacity_Ah 1.50 Ah < 1.80 Ah", (), None, "record")
     >>> _same(a, Standing("fail", "grading_capacity_Ah 1.50 Ah < 1.88 Ah", (), None, "regrade"))
     True
     """
-    return (old.verdict, _NUMBER.sub("#", old.reason), set(old.hazards), old.grade) == (
-        new.verdict, _NUMBER.sub("#", new.reason), set(new.hazards), new.grade
-    )
+    return (old.verdict, _NUMBER.sub("#", old.reason), set(old.hazards)) == (
+        new.verdict, _NUMBER.sub("#", new.reason), set(new.hazards)
+    ) and (not grade or old.grade == new.grade)
 
 
 def _decide(

@@ -218,8 +218,33 @@ def _lot_changes(
         for cell, d in ledger.decisions.latest_of_lot(lot).items()
     }
     closed = ledger.lots.get(lot).closed_at is not None
-    return lot_changes(lot, old_docs, new_docs, refused, readings, standing,
-                       reviewed_cells(ledger, lot), rulebook, closed=closed)
+    reviews = reviewed_cells(ledger, lot)
+    return lot_changes(lot, old_docs, new_docs, refused, readings, standing, reviews, rulebook,
+                       closed=closed,
+                       old_rulebook=_rules_before(ledger, old_docs, rulebook) if reviews else None)
+
+
+def _rules_before(ledger: Ledger, old_docs: Sequence[Mapping[str, Any]], rulebook: Any) -> Any:
+    """The rule book that decided ``old_docs``: each rule set that judged them, by its text the
+    ledger keeps, in place of the new rules' one of the same name (the latest judgement's when
+    a lot was judged by several revisions). None when not known (a text the ledger lacks)."""
+    from pipeline.rulebook.book import RuleBook, load_rule_set
+
+    latest: dict[str, str] = {}
+    for doc in sorted(old_docs, key=lambda d: str(d["analysed_at"])):
+        latest[str(doc["rule_set"]["name"])] = str(doc["rule_set"]["sha256"])
+    sets = {rs.name: rs for rs in rulebook.rule_sets}
+    try:
+        for name, sha in latest.items():
+            if name in sets and sets[name].sha256 == sha:
+                continue
+            kept = ledger.facts.text_by_sha(sha)
+            if kept is None:
+                return None
+            sets[name] = load_rule_set(kept[1], kept[0])
+        return RuleBook(tuple(sets.values()))
+    except FormgateError:
+        return None
 
 
 def _rule_sets(rulebook: Any) -> list[tuple[str, str, str]]:
