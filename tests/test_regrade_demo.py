@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import csv
 import io
+import json
 import shutil
 import sqlite3
 from pathlib import Path
@@ -105,3 +106,38 @@ def test_a_released_cell_is_asked_again_exactly_when_the_new_rules_change_what_w
     assert _latest(root, "S04-024") == ("pass", "review")
     assert _latest(root, "L01-009") == ("pass", "review")
 
+
+def test_a_raised_capacity_floor_lists_exactly_the_cells_between_the_old_and_new_floor(
+    demo_station: tuple[Path, str], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    root = _copy(demo_station, tmp_path / "station")
+    # what should change, from the ledger's rows alone: every NMC record that counts whose
+    # grading capacity lies between the floor it was judged by and the raised one
+    expected: dict[str, str] = {}
+    with sqlite3.connect(f"file:{root / 'ledger.sqlite'}?mode=ro", uri=True) as db:
+        latest = {cell: verdict for cell, verdict in db.execute(
+            "SELECT cell_id, verdict FROM decisions d WHERE id = "
+            "(SELECT max(id) FROM decisions e WHERE e.cell_id = d.cell_id AND e.lot = d.lot)")}
+        for cell, text in db.execute(
+            "SELECT cell_id, result_json FROM results WHERE superseded_by IS NULL "
+            "AND verdict <> 'error' AND rule_set_name = 'nmc-graphite'"
+        ):
+            doc = json.loads(text)
+            check = next((c for c in doc["checks"] if c["id"] == "grading_capacity"), None)
+            if check is None:  # a formation file: no grading capacity measured
+                continue
+            rated = doc["cell_type"]["nominal_capacity_Ah"]
+            assert check["low"] == pytest.approx(1.00 * rated)
+            if check["low"] <= check["value"] < NEW_FLOOR * rated:
+                expected[cell] = f"{latest[cell]} → fail"
+    assert len(expected) >= 5 and "pass → fail" in expected.values()
+    proposed = _raised_floor(root / "rules", tmp_path / "proposed")
+    out, report = _regrade(root, "--rules", str(proposed), capsys=capsys)
+    rows = _rows(report)
+    assert {r["cell_id"]: r["change"] for r in rows} == expected
+    for cell in expected:  # each with its capacity check: the old floor and outcome, the new
+        [line] = [r for r in rows if r["cell_id"] == cell and r["check"] == "grading_capacity"]
+        assert (line["old_outcome"], line["new_outcome"]) == ("in_window", "out_of_window")
+        assert float(line["new_low"]) == pytest.approx(float(line["old_low"]) * NEW_FLOOR)
+        assert float(line["old_low"]) <= float(line["new_value"]) < float(line["new_low"])
+    assert "dry run: nothing recorded" in out
