@@ -35,8 +35,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from pipeline.judge.medians import median
 from pipeline.judge.rest_band import MEDIAN_EFFICIENCY
-from pipeline.judge.segmentation import weights_between
+from pipeline.judge.segmentation import CV_BAND_V, CV_CURRENT_FRACTION, weights_between
 from pipeline.model import (
     AccuracyClass,
     CellMetrics,
@@ -47,6 +48,7 @@ from pipeline.model import (
     Segmentation,
     Step,
     StepKind,
+    StepMode,
     Trace,
 )
 
@@ -58,6 +60,8 @@ SQRT12 = math.sqrt(12.0)
 GUMBEL = math.pi / math.sqrt(6.0)
 NOISE_ROWS = 4000  # differences a noise estimate looks at, at most (its own scatter ~1.5 %)
 RESOLUTION_ROWS = 20000  # rows the smallest step is looked for in: a resolution shows early
+CV_START_ROWS = 128  # rows either side of a CV tail's start looked at, at most
+CV_FIT_ROWS = 8  # rows either side of a CV tail's start: where noise may move it, a parabola's
 
 
 @dataclass(frozen=True, slots=True)
@@ -243,6 +247,89 @@ def _charge(trace: Trace, steps: tuple[Step, ...], indices: tuple[int, ...], u: 
     )
 
 
+def _cv_start(trace: Trace, steps: tuple[Step, ...], cv: Step, u: ChannelU) -> float:
+    """The standard uncertainty (s) of the row at which a CV tail is seen to begin.
+
+    A tail that follows the constant current of its own step begins at the first row whose
+    |I| falls below CV_CURRENT_FRACTION of that current (segmentation._split_cv): noise on
+    the rows near that level can make an earlier row the first, or a later one. Row r is
+    seen below with probability q_r = Phi((level - I_r) / sigma), so the first row below is
+    row j with probability q_j times (1 - q_r) of every row before it, and the spread of the
+    times of those rows is the start's (the noise propagated through the comparison as it
+    is made, not through a slope: a row's current may change by more than its noise from
+    one row to the next). sigma: the current's noise, and the offset's share of the level
+    (1 - CV_CURRENT_FRACTION of it; the rest, and the current's gain, cancel in the
+    comparison).
+
+    The true currents stand for I_r: the constant current for the rows before the start
+    still at it, a parabola through the decaying rows around the start where they lie on one
+    to within their noise, else the recorded rows. The end, the first row of the next step,
+    and a CV step the record's step column begins, are where the record puts them: the time
+    between rows is the definition's, not an error of the channel (docs/metrics.md).
+    """
+    before = steps[cv.index - 1] if cv.index > 0 else None
+    if before is None or before.kind is not cv.kind or before.mode is not StepMode.CC:
+        return 0.0
+    if cv.program_step is not None and cv.program_step != before.program_step:
+        return 0.0  # the program's own boundary
+    sigma = math.hypot(u.noise_i, (1.0 - CV_CURRENT_FRACTION) * u.offset_i)
+    if sigma <= 0:
+        return 0.0
+    flat = trace.current_a[before.start : before.stop]
+    constant = median(np.abs(flat[:: max(1, -(-len(flat) // 2048))]))
+    level = CV_CURRENT_FRACTION * constant
+    # the rows around the start: CV_FIT_ROWS either side, or as many as lie within 6 sigma of
+    # the level (a slow tail on a noisy channel), of at most CV_START_ROWS either side
+    lo = max(before.start, cv.start - CV_START_ROWS)
+    hi = min(cv.stop, cv.start + CV_START_ROWS + 1)
+    around = np.abs(trace.current_a[lo:hi])
+    rows = max(CV_FIT_ROWS, int(np.count_nonzero(np.abs(around - level) <= 6.0 * sigma)))
+    lo, hi = max(before.start, cv.start - rows), min(cv.stop, cv.start + rows + 1)
+    # only rows of the held tail can be its first (segmentation._split_cv): from the last row
+    # before the start that is out of the hold
+    volts = trace.voltage_v[before.start : cv.stop]
+    if cv.kind is StepKind.CHARGE:
+        out = trace.voltage_v[lo : cv.start] < float(volts.max()) - CV_BAND_V
+    else:
+        out = trace.voltage_v[lo : cv.start] > float(volts.min()) + CV_BAND_V
+    if out.any():
+        lo += len(out) - int(np.argmax(out[::-1]))
+    amps = np.abs(trace.current_a[lo:hi])
+    times = trace.time_s[lo:hi]
+    # The true currents are not known, only the recorded ones, and a recorded row's own noise
+    # would count twice (once in the row, once in q). So a row before the start within 4 sigma
+    # of the constant current is at the constant current (known from the step's median);
+    # where the decaying rows around the start lie on a parabola to within their noise, its
+    # values stand for them (each known to about a third of a row's noise)
+    k0 = cv.start - lo
+    steady = np.flatnonzero(amps[:k0] >= constant - 4.0 * sigma)
+    amps = amps.copy()
+    amps[steady] = constant
+    # decaying already, and near the start or within 6 sigma of the level
+    fit = np.flatnonzero((amps < constant - 4.0 * sigma) & (
+        (np.abs(np.arange(len(amps)) - k0) <= CV_FIT_ROWS) | (np.abs(amps - level) <= 6.0 * sigma)
+    ))
+    if len(fit) >= 7:
+        x = (times[fit] - times[k0]) / max(float(np.ptp(times[fit])), 1e-9)
+        design = np.vander(x, 3, increasing=True)
+        curve = design @ np.linalg.solve(design.T @ design, design.T @ amps[fit])
+        misfit = amps[fit] - curve
+        if float(misfit @ misfit) <= (2.0 * sigma) ** 2 * (len(fit) - 3):
+            amps[fit] = curve
+    first, stays = np.zeros(len(amps)), 1.0
+    for k, gap in enumerate((level - amps).tolist()):
+        q = 0.5 * math.erfc(-gap / sigma / math.sqrt(2.0))  # Phi(gap / sigma): seen below
+        first[k] = stays * q
+        stays *= 1.0 - q
+        if stays < 1e-12:
+            break
+    total = float(first.sum())
+    if total <= 0:
+        return 0.0
+    mean = float(first @ times) / total
+    return math.sqrt(max(0.0, float(first @ (times - mean) ** 2) / total))
+
+
 def _efficiency(name: str, d: _Charge, c: _Charge, u: ChannelU) -> Budget:
     eta = d.ah / c.ah
     return Budget(name, (
@@ -345,13 +432,11 @@ def budgets(
             )
         cv = have("grading_cv_duration_s")
         if cv is not None:
-            t = trace.time_s
-            # (the differences are an array of its own: the median may reorder it)
-            interval = float(np.median(np.diff(t), overwrite_input=True)) if len(t) > 1 else 0.0
+            starts = [_cv_start(trace, steps, steps[i], u) for i in grading.charge_steps
+                      if steps[i].mode is StepMode.CV]
             out["grading_cv_duration_s"] = Budget("grading_cv_duration_s", (
                 Component("time base", cv * u.time),
-                # each end of the constant-voltage step is known to a sampling interval
-                Component("step ends", math.sqrt(2.0) * interval / SQRT12 if cv > 0 else 0.0),
+                Component("start under current noise", math.sqrt(sum(x * x for x in starts))),
             ))
         dcir = have("dcir_mOhm")
         if dcir is not None and d.seconds > 0:
