@@ -351,3 +351,35 @@ def test_a_review_beside_a_running_station_and_a_decision_that_is_behind(
     err = capsys.readouterr().err
     assert "has a record or reading that its decision does not rest on yet" in err
     assert "Look again in a moment" in err
+
+
+def test_a_review_in_a_closed_lot_rewrites_and_records_its_report_and_export(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The lot's report and export show the review at once, as `formgate lot report` would
+    write them, each recorded with its new hash (formgate verify accepts them)."""
+    s = make_station(tmp_path / "st")
+    (s.rules_dir / "test_cells.toml").write_text(REVIEW_RULES, encoding="utf-8")
+    _judged(s, {"h1.csv": cycle_file("H-1", capacity_ah=1.86), "p1.csv": cycle_file("P-1", seed=4)})
+    root = str(s.root)
+    assert main(["lot", "close", root, "LOT-A"]) == 0
+    out = capsys.readouterr().out
+    report = Path(re.findall(r"^  report (.+)$", out, re.M)[0])
+    export = Path(re.findall(r"^  export (.+)$", out, re.M)[0])
+    rows = {r["cell_id"]: r for r in csv.DictReader(io.StringIO(export.read_text("utf-8")))}
+    assert rows["H-1"]["verdict"] == "hold"
+    assert _review("release", root, "H-1", "--by", QE, "--reason", "1.86 Ah meets order 7") == 0
+    out = capsys.readouterr().out
+    assert f"  lot report {report}" in out
+    rows = {r["cell_id"]: r for r in csv.DictReader(io.StringIO(export.read_text("utf-8")))}
+    assert rows["H-1"]["verdict"] == "pass"
+    assert "released by quality engineer A: 1.86 Ah meets order 7" in rows["H-1"]["reason"]
+    text = " ".join(" ".join(p.extract_text() for p in PdfReader(report).pages).split())
+    assert "released by quality engineer A" in text
+    for path in (report, export):
+        assert main(["verify", root, str(path)]) == 0, capsys.readouterr().out
+    capsys.readouterr()
+    # the review's letter goes; the lot's closing digest is not sent again
+    subjects = _pending(s)
+    assert any(x.startswith("formgate: RELEASED cell H-1") for x in subjects), subjects
+    assert sum("closed" in x for x in subjects) <= 1

@@ -98,6 +98,8 @@ def _review(args: argparse.Namespace, action: str) -> int:
         print(f"  hazards kept on its record: {', '.join(given.hazards)}")
     if certificate:
         print(f"  certificate {certificate}")
+    if done.report is not None:
+        print(f"  lot report {done.report} (and its export), written again: the lot is closed")
     return EXIT_OK
 
 

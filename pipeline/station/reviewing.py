@@ -17,6 +17,7 @@ import json
 import logging
 from collections.abc import Sequence
 from dataclasses import dataclass
+from pathlib import Path
 
 from pipeline.errors import FormgateError
 from pipeline.judge.lotclose import CellNow, CellStages
@@ -122,11 +123,14 @@ def review_stands(ledger: Ledger, lot: str, cell_id: str, stages: CellStages) ->
 
 @dataclass(frozen=True, slots=True)
 class Recorded:
-    """A review recorded: its row, the decision it gave and the one it answered."""
+    """A review recorded: its row, the decision it gave and the one it answered; ``report``:
+    its closed lot's report, written again to show it (None: the lot is open, or the report
+    could not be written now)."""
 
     review: ReviewRow
     decision: DecisionRow
     answered: DecisionRow
+    report: Path | None = None
 
 
 def _current(ledger: Ledger, latest: DecisionRow, stages: CellStages) -> bool:
@@ -227,7 +231,28 @@ def record_review(
         ) from exc
     log.info("cell %s lot %s: %s by %s (was %s): %s", cell_id, lot, asked.action,
              review.reviewer, latest.verdict, decision.reason)
-    return Recorded(review, decision, latest)
+    report = report_closed_lot(settings, ledger, rulebook, lot, now) if _closed_at(
+        ledger, lot) is not None else None
+    return Recorded(review, decision, latest, report)
+
+
+def report_closed_lot(
+    settings: Settings, ledger: Ledger, rulebook: RuleBook, lot: str, now: datetime.datetime
+) -> Path | None:
+    """Write a closed lot's report and export again, as `formgate lot report` does (recorded
+    with their new hashes), so that they show a review made after the close; no digest goes
+    again (the review's own letter tells the people who were told of the hold or fail). The
+    review stands whatever happens here: a report that cannot be written now is logged, and
+    `formgate lot report` writes it later. Its path, or None."""
+    from pipeline.station.lots import close_and_report  # lots decides cells with reviews
+
+    try:
+        return close_and_report(settings, ledger, rulebook, lot, by="review", now=now,
+                                close=False).report
+    except (FormgateError, OSError) as exc:
+        log.warning("lot %s: its report and export could not be written again after the "
+                    "review (%s); formgate lot report writes them", lot, exc)
+        return None
 
 
 def age_words(seconds: float) -> str:
