@@ -441,6 +441,22 @@ def test_a_cell_certificate_is_verified_with_the_decision_it_shows(
     assert status == 0, out
     assert f"it shows decision {row.decision_id}: fail" in out
     assert f"ok  decisions row {row.decision_id} holds its place in the ledger's hash chain" in out
+    # the input bytes the decision rests on, re-hashed in the archive, and the rule set's text
+    k2 = sha(next(judged.settings.archive.rglob("*_k2.csv")))
+    assert f"ok  it rests on formation and grading: k2.csv (SHA-256 {k2}), archived as archive/" in out
+    cell_json = json.loads(next(judged.settings.results.rglob("K-2~cell.json")).read_text("utf-8"))
+    rules = cell_json["rule_set"]
+    assert (f"ok  rule set {rules['name']} revision {rules['revision']} (SHA-256 {rules['sha256']}): "
+            "its exact text is in the ledger") in out
+    status, shown = verify(str(judged.settings.root), str(next(
+        judged.settings.results.rglob("K-2~cell.json"))), capsys=capsys)
+    assert status == 0 and f"k2.csv (SHA-256 {k2}), archived as" in shown, shown
+    # an archived input changed since: the cell certificate resting on it is not verified
+    s = copy_of(judged, tmp_path / "input")
+    archived = next(s.archive.rglob("*_k2.csv"))
+    archived.write_bytes(archived.read_bytes() + b"\n")
+    status, out = verify(str(s.root), str(s.certificates / "LOT-A" / "K-2~cell.pdf"), capsys=capsys)
+    assert status == 1 and "k2.csv" in out and ": changed (its SHA-256 is now" in out, out
     s = copy_of(judged, tmp_path)
     with sqlite3.connect(s.ledger) as db:
         db.execute("UPDATE decisions SET reason = 'released' WHERE id = ?", (row.decision_id,))

@@ -257,6 +257,8 @@ class Verifier:
                 findings.append(Finding(None, f"it shows decision {decision.id}: "
                                               f"{_decision_words(decision)}"))
                 findings.append(self._chained("decisions", decision.id))
+                findings += [self._basis_input(entry) for entry in decision.basis
+                             if not entry.startswith("review:")]
         files: dict[str, PublishedRow] = {}
         if row.lot is not None and row.cell_id is not None:
             files = self._files_of(row.lot, row.cell_id, result_id=row.result_id,
@@ -266,6 +268,8 @@ class Verifier:
             if json_row is not None:
                 findings.append(Finding(None, "verification code "
                                               f"{spaced(json_row.sha256[:CODE_DIGITS])}"))
+            if result is None and "cell result" in files:
+                findings.append(self._cell_rule_text(files["cell result"]))
         if result is not None:
             if "result" in files:
                 kept = hashlib.sha256(result.result_json.encode("utf-8")).hexdigest()
@@ -308,6 +312,39 @@ class Verifier:
         if row.final_path is None or row.state not in ("archived", "duplicate"):
             return Finding(None, f"{what}: not archived yet ({row.state})")
         return self._rehash(self._locate(row.final_path), row.sha256, f"{what}, archived as")
+
+    def _basis_input(self, entry: str) -> Finding:
+        """One file a decision rests on ("stage words:file name:SHA-256"), re-hashed in the
+        archive: the bytes the cell was decided from are still those recorded."""
+        stage, _, rest = entry.partition(":")  # stage words never hold a colon; a name may
+        name, _, sha = rest.rpartition(":")
+        what = f"it rests on {stage}: {name} (SHA-256 {sha or 'not recorded'})"
+        rows = self.ledger.inputs.by_sha256(sha) if sha else []
+        if not rows:
+            return Finding(False, f"{what}: no input with these bytes is in the ledger")
+        kept = [r for r in rows if r.state == "archived" and r.final_path]
+        row = next((r for r in kept if r.name == name), kept[0] if kept else None)
+        if row is None or row.final_path is None:
+            return Finding(None, f"{what}: not archived yet ({rows[-1].state})")
+        return self._rehash(self._locate(row.final_path), sha, f"{what}, archived as")
+
+    def _cell_rule_text(self, json_row: PublishedRow) -> Finding:
+        """The rule set a cell JSON names, its text checked in the ledger; read from the JSON
+        as published (a JSON changed since names nothing the ledger vouches for)."""
+        path = self._locate(json_row.path)
+        try:
+            data = path.read_bytes()
+        except OSError:
+            return Finding(None, "the rule set it was decided under cannot be read: its cell "
+                                 "JSON is not at its place")
+        named = (_json_document(data) or {}).get("rule_set")
+        if hashlib.sha256(data).hexdigest() != json_row.sha256 or not isinstance(named, dict):
+            return Finding(None, "the rule set it was decided under cannot be read: its cell "
+                                 "JSON is not the one published")
+        name, revision, sha = (named.get(k) for k in ("name", "revision", "sha256"))
+        if not all(isinstance(v, str) for v in (name, revision, sha)):
+            return Finding(False, "its cell JSON names no rule set")
+        return self._rule_text(str(name), str(revision), str(sha))
 
     def _rule_text(self, name: str, revision: str, sha: str) -> Finding:
         what = f"rule set {name} revision {revision} (SHA-256 {sha})"

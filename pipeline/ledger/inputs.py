@@ -106,6 +106,11 @@ class Inputs:
         )
         return None if row is None else input_row(row)
 
+    def by_sha256(self, sha256: str) -> list[InputRow]:
+        """Every row of a file with these bytes (its copies under other names too), oldest first."""
+        rows = self.db.rows(f"{INPUT_SELECT} WHERE i.sha256 = ? ORDER BY i.id", (sha256,))
+        return [input_row(r) for r in rows]
+
     def in_state(self, *states: str) -> list[InputRow]:
         """Rows in any of ``states``, oldest first (e.g. the unfinished work after a restart)."""
         unknown = set(states) - set(INPUT_STATES)
