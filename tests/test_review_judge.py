@@ -7,6 +7,7 @@ Pure: records in, records out (pipeline/judge/review.py), and a lot closed with 
 from __future__ import annotations
 
 import dataclasses
+import datetime
 from typing import Any
 
 import pytest
@@ -29,6 +30,7 @@ from pipeline.judge.review import (
     stands,
 )
 from pipeline.model import SAFETY_HAZARDS, Hazard
+from pipeline.report.cellsummary import DecisionEntry
 from pipeline.rulebook.book import load_rule_set
 from pipeline.rulebook.schema import EXAMPLE
 from tests.test_lotclose import BOOK, _lot
@@ -73,6 +75,21 @@ def test_each_action_gives_its_decision_and_keeps_the_hazards() -> None:
     # the person's "; " would read as a reason of its own, and so as a hold for a person
     assert retest.reason == "waiting for stage grading (retest asked by quality engineer A: " \
                            "contact fault, rerun)"
+
+
+def test_a_persons_reason_stays_one_reason_whatever_it_holds() -> None:
+    """"; " separates a decision's reasons (the cell JSON's and certificate's list): a reason
+    a person wrote with one in it is still one reason, for every action."""
+    why = "thermocouple on channel misread; cell re-measured cold"
+    for asked, decision in ((Asked("release", QE, why), HOLD),
+                            (Asked("release", QE, why, accepts=("capacity",)), FAIL),
+                            (Asked("reject", QE, why), FAIL),
+                            (Asked("retest", QE, why, stage="grading"), FAIL)):
+        out = given(asked, decision)
+        entry = DecisionEntry(1, out.verdict, out.reason, out.hazards, None, "review",
+                              datetime.datetime(2026, 12, 2, 9, 0, tzinfo=datetime.UTC))
+        assert len(entry.reasons) == 1, entry.reasons
+        assert "thermocouple on channel misread, cell re-measured cold" in entry.reasons[0]
 
 
 # ---------------------------------------------------------------- what a review may do

@@ -11,7 +11,8 @@ this module decides:
   the hazard; a hold that only waits for a stage is left to that stage's record; a retest
   only of a stage the cell needs;
 - the decision a review gives (:func:`given`): release -> pass, reject -> fail, retest ->
-  hold "waiting for stage X (retest asked by ...)"; the hazards are always kept;
+  hold "waiting for stage X (retest asked by ...)"; the hazards are always kept, and the
+  person's reason stays one reason of the decision (its "; " is written ", ");
 - whether it still stands when the cell is decided again (:func:`stands`): a release or a
   reject stands until a record or reading arrives that the review did not see; a retest
   stands until a record of its stage arrives, or a new record fails the cell;
@@ -81,6 +82,13 @@ def failed_checks(records: Iterable[StageRecord]) -> tuple[str, ...]:
 
 def _one_line(text: str) -> str:
     return " ".join(text.split())
+
+
+def _in_reason(text: str) -> str:
+    """A person's words as part of one reason of a decision: "; " separates a decision's
+    reasons, so a person's own would read as reasons of their own (the review row keeps the
+    words as written)."""
+    return _one_line(text).replace("; ", ", ")
 
 
 def _refuse(problem: str, hint: str) -> ReviewRefused:
@@ -208,7 +216,7 @@ def given(asked: Asked, decision: Decided, *, grade: str | None = None) -> Decid
     >>> given(Asked("retest", "B", "channel 12 suspect; rerun", stage="grading"), fail).reason
     'waiting for stage grading (retest asked by B: channel 12 suspect, rerun)'
     """
-    who, why = _one_line(asked.reviewer), _one_line(asked.reason)
+    who, why = _in_reason(asked.reviewer), _in_reason(asked.reason)
     if asked.action == "release":
         if decision.verdict == "fail":
             accepting = ", ".join(asked.accepts)
@@ -218,8 +226,6 @@ def given(asked: Asked, decision: Decided, *, grade: str | None = None) -> Decid
         return Decided("pass", reason, decision.hazards, grade)
     if asked.action == "reject":
         return Decided("fail", f"rejected by {who}: {why}", decision.hazards)
-    # "; " separates a decision's reasons: the person's own would read as a reason of its own
-    why = why.replace("; ", ", ")
     return Decided(
         "hold", f"{WAITING_FOR_STAGE} {asked.stage} (retest asked by {who}: {why})", decision.hazards
     )
@@ -278,6 +284,6 @@ def screens_after_release(
 def held_after_release(found: Sequence[Outlier], review: Reviewed) -> tuple[str, ...]:
     """The reasons of the hold a released cell's outliers (:func:`screens_after_release`) give."""
     units = {o.metric: RULE_BY_NAME[o.metric].unit for o in found if o.metric in RULE_BY_NAME}
-    who = _one_line(review.asked.reviewer)
+    who = _in_reason(review.asked.reviewer)
     return (*(outlier_phrase(o, units.get(o.metric, "")) for o in found),
             f"found at the lot's close, after the release by {who}")
