@@ -57,6 +57,15 @@ def test_a_concession_names_its_accepted_checks_and_keeps_every_caution() -> Non
     assert "ISO 9001:2015 clause 8.7" in body and "(review 3)" in body
 
 
+def test_a_review_letter_links_the_cell_certificate_that_shows_the_review() -> None:
+    link = "https://qa.example.com/certs/DEMO-LOT-04/L04-021~cell.pdf"
+    _, _, body = _text(_facts("release", WAS_HOLD, ("pass", "released by quality engineer A: "
+                                                    "customer concession 14"), certificate=link))
+    assert f"The cell's own certificate shows its standing decision over all its stages, its " \
+           f"lot's screens and any review, and is rewritten moments after each decision: {link}" \
+           in body
+
+
 @pytest.mark.parametrize(
     ("action", "was", "now", "kw", "head", "kind", "general"),
     [

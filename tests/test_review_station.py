@@ -243,6 +243,9 @@ def test_a_concession_over_a_safety_hazard_needs_its_rule_set_to_allow_it(
         (letter,) = [m for m in ledger.outbox.in_state("pending") if "CONCESSION" in m.subject]
     assert "CAUTION: Possible internal short circuit" in letter.body_text.replace("\n", " ")
     assert "GENERAL CAUTION" in letter.body_text
+    # it links the cell certificate that shows the review, and waits for its publication
+    assert letter.waits_for is not None and letter.waits_for.endswith("S-1~cell.pdf")
+    assert "S-1~cell.pdf" in letter.body_text
     # its cell certificate passes it, but keeps the hazard's caution and says who released it
     page1 = " ".join(PdfReader(s.certificates / "LOT-A" / "S-1~cell.pdf").pages[0]
                      .extract_text().split())

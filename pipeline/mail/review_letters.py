@@ -5,8 +5,10 @@ of the cell's hold or fail, with its own subject naming the action, the reviewer
 reason (and a concession's accepted checks), so that nobody acts on a hold or fail a
 person has since closed. A failed cell keeps its cautions whatever was decided: a release
 of one keeps the general caution that defers to the site's procedures, local codes and
-qualified personnel, and a hazard's caution stays with the hazard. Pure: values in, a
-Letter out; every header value from data goes through sanitize_header.
+qualified personnel, and a hazard's caution stays with the hazard. A station's letter links
+the cell's own certificate, rewritten to show the review (the outbox holds the letter until it
+is published). Pure: values in, a Letter out; every header value from data goes through
+sanitize_header.
 """
 
 from __future__ import annotations
@@ -24,6 +26,7 @@ from pipeline.mail.letters import (
     _item,
     _paragraph,
     caution_sections,
+    cell_certificate_paragraph,
     message_id_for,
     sanitize_header,
 )
@@ -37,7 +40,8 @@ class ReviewFacts:
     ``was``: (verdict, reason, when decided) of the decision the review answered; ``now``:
     (verdict, reason) of the decision it gave; ``hazards``: the cell's hazards (values of
     :class:`pipeline.model.Hazard`); ``review_id``: its row in ``kept_in`` (a station's ledger,
-    or the plant database for a review made there).
+    or the plant database for a review made there); ``certificate``: the link of the cell's
+    own certificate, which shows the review ('' for none).
     """
 
     cell_id: str
@@ -54,6 +58,7 @@ class ReviewFacts:
     hazards: tuple[str, ...] = ()
     family: str | None = None
     kept_in: str = "the station's ledger"  # where the review is recorded
+    certificate: str = ""
 
 
 def _hazards(names: Sequence[str]) -> list[Hazard]:
@@ -138,6 +143,8 @@ def review_letter(
                     + "\n".join(_item(c) for c in facts.accepts))
     failed = old_verdict == "fail" or new_verdict == "fail"
     body += caution_sections(_hazards(facts.hazards), facts.family, general=failed)
+    if facts.certificate:
+        body.append(cell_certificate_paragraph(facts.certificate))
     body.append(_paragraph(
         f"The review is kept in {facts.kept_in} (review {facts.review_id}) with the "
         "decision it answered and the one it gave, as ISO 9001:2015 clause 8.7 asks of the "

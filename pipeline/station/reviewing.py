@@ -12,6 +12,7 @@ ISO 9001:2015 clause 8.7 (control of nonconforming outputs) is the review record
 
 from __future__ import annotations
 
+import dataclasses
 import datetime
 import json
 import logging
@@ -29,6 +30,7 @@ from pipeline.ledger.rows import DecisionRow, ReviewRow
 from pipeline.mail.letters import Letter, alert_letter
 from pipeline.mail.review_letters import ReviewFacts, review_letter
 from pipeline.rulebook.book import RuleBook
+from pipeline.station.digests import cell_certificate_link, cell_certificate_path
 from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
@@ -211,9 +213,13 @@ def record_review(
             was=(latest.verdict, latest.reason, latest.decided_at),
             now=(gave.verdict, gave.reason), review_id=review.id, stage=review.stage,
             accepts=review.accepts, hazards=gave.hazards, family=rule_set.family,
+            certificate=cell_certificate_link(settings, lot, cell_id),
         )
-        return [review_letter(facts, to, station=settings.station_name,
-                              domain=settings.routing.domain)]
+        letter = review_letter(facts, to, station=settings.station_name,
+                               domain=settings.routing.domain)
+        # it links the cell's own certificate, rewritten to show the review: the outbox holds
+        # it until that is published, as a fail's or hold's letter
+        return [dataclasses.replace(letter, waits_for=cell_certificate_path(settings, lot, cell_id))]
 
     try:
         review, decision = ledger.reviews.record(
