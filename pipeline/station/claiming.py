@@ -52,6 +52,7 @@ log = logging.getLogger("formgate.station")
 # With a backlog in an inbox, finished files are claimed from the last listing for up to
 # this long before the folder is listed again: listing thousands of files on every turn
 # of the loop cost more than judging them (and newer files wait behind the backlog anyway).
+# Every inbox folder is also looked for at most this often while nothing can be claimed.
 RELIST_S = 1.0
 
 
@@ -87,24 +88,59 @@ class Claims:
         # claimed (a backlog is claimed from this list, not by listing the folder every turn)
         self.ready: dict[str, tuple[float, deque[str]]] = {}
         self.cut_noted: dict[str, float] = {}  # inbox files said to look cut, and since when
+        self.first = 0  # the inbox served first in the next turn: the one after the last served
+        self.looked_at = -math.inf  # when every inbox folder was last looked for
 
     def capacity(self) -> int:
         return self.tasks.room()
 
     def scan_inboxes(self, now_s: float) -> None:
+        """List the inboxes and claim finished files while there is room, a fair share each.
+
+        The inboxes take turns file by file, beginning with the one after the inbox served
+        last, so a backlog in one keeps no other waiting; each is listed before any file is
+        claimed, so one that has gone shows at once.
+        """
         if self.capacity() <= 0 or self.rules.rulebook is None:
-            return  # nothing could be claimed: listing a backlog again would only cost time
-        for inbox in self.settings.inboxes:
+            # nothing could be claimed: listing a backlog again would only cost time
+            self.look_for_inboxes(now_s)
+            return
+        count = len(self.settings.inboxes)
+        turn = [(self.first + k) % count for k in range(count)]  # indexes, in this turn's order
+        for inbox in (self.settings.inboxes[i] for i in turn):
             listed_at, pending = self.ready.get(inbox.name, (-math.inf, deque()))
             if not pending or now_s - listed_at >= RELIST_S:
                 pending, listed_at = deque(self.list_inbox(inbox, now_s)), now_s
-            while pending and self.capacity() > 0 and not self.guard.paused:
+            self.ready[inbox.name] = (listed_at, pending)
+        self.looked_at = now_s
+        while self.capacity() > 0 and not self.guard.paused:
+            served = False
+            for i in turn:
+                inbox = self.settings.inboxes[i]
+                pending = self.ready[inbox.name][1]
+                if not pending or self.capacity() <= 0 or self.guard.paused:
+                    continue
                 name = pending.popleft()
                 self.guard.handle(path_key(inbox.folder / name), "claiming",
                                   partial(self.claim, inbox, name), retry=False)
-            self.ready[inbox.name] = (listed_at, pending)
-            if self.capacity() <= 0 or self.guard.paused:
+                self.first = (i + 1) % count
+                served = True
+            if not served:
                 return
+
+    def look_for_inboxes(self, now_s: float) -> None:
+        """Note an inbox whose folder is not there, in a turn that lists none (the station is
+        full, or paused): it shows at once, not once there is room again. Its trouble ends
+        when the folder is listed again."""
+        if now_s - self.looked_at < RELIST_S:
+            return
+        self.looked_at = now_s
+        for inbox in self.settings.inboxes:
+            if not inbox.folder.is_dir():
+                self.guard.inbox_trouble(
+                    inbox,
+                    FileNotFoundError(errno.ENOENT, os.strerror(errno.ENOENT), str(inbox.folder)),
+                )
 
     def list_inbox(self, inbox: InboxSettings, now_s: float) -> tuple[str, ...]:
         """List one inbox and decide which files are finished; set aside what is no input."""

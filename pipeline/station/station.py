@@ -234,6 +234,8 @@ class Station:
                 self.originals.review()
             guard.duty(lambda: self.claims.scan_inboxes(now_s))
             guard.duty(self.tasks.submit)
+        else:  # nothing is claimed, but an inbox that goes away shows all the same
+            guard.duty(lambda: self.claims.look_for_inboxes(now_s))
         self.tasks.collect(timeout=0.2 if self.judges.busy() else 0.0)
         if not guard.paused:
             guard.duty(self.render)  # rendered in the workers, written here
