@@ -307,3 +307,66 @@ def test_the_k_value_carries_the_resolution_of_its_two_readings_over_the_days_be
     assert found[K_VALUE] == pytest.approx(2 * math.sqrt(2) * 0.1 / math.sqrt(12) / 7)
     assert found["aging_ocv_V"] > 2 * 0.001 / math.sqrt(3)  # at least the class's offset
     assert "aging_acir_mOhm" not in found
+
+
+def _sloped_curve_metrics(slope_mv_per_pct: float):  # -> CellMetrics
+    """A grading discharge of our own: V falls by ``slope_mv_per_pct`` every 1 % of capacity,
+    no plateau found on it."""
+    from pipeline.model import CellMetrics, Curve
+
+    q = np.linspace(0.0, 100.0, 1001)
+    curve = Curve(q, 3.9 - slope_mv_per_pct / 1000.0 * q)
+    return CellMetrics({"total_plateau_length_pct": 0.0, "plateau_count": 0.0}, (), (), (),
+                       grading_curve=curve)
+
+
+def test_a_total_plateau_length_of_0_is_exact_only_where_noise_cannot_make_a_plateau() -> None:
+    from pipeline.judge.uncertainty import _plateau_lengths
+    from pipeline.model import PlateauSettings
+
+    settings = PlateauSettings(flatness_mv_per_pct=2.0)
+
+    def total_u(slope: float, noise_v: float) -> float:
+        found = _plateau_lengths(_sloped_curve_metrics(slope), settings, noise_v, 2160,
+                                 lambda name: 0.0)
+        return found["total_plateau_length_pct"].expanded
+
+    # 3 mV/% against a 2 mV/% threshold: 1 mV/% is some 6 standard deviations of the slope
+    # under 0.5 mV of noise at two rows per grid cell, so no plateau can appear: exact
+    assert total_u(3.0, 5e-4) == 0.0
+    # 2.1 mV/% lies within two standard deviations of it over the whole discharge: a plateau
+    # of any length up to 100 % may appear, a rectangular distribution (JCGM 100:2008 4.3.7)
+    assert total_u(2.1, 5e-4) == pytest.approx(2 * 100.0 / math.sqrt(12), rel=0.01)
+    # and a noisier channel makes the same 3 mV/% doubtful
+    assert total_u(3.0, 5e-3) > 0
+
+
+def test_the_plateau_length_counts_where_voltage_noise_moves_its_ends() -> None:
+    """The LFP reference cell (PyBaMM SPMe, tests/reference/README.md) through the project's
+    channel model: the ends' term grows with the voltage noise, the grid's does not; and the
+    NMC cell's total of 0 (its curve slopes throughout) is exact in the result."""
+    import tests.test_uncertainty_mc as mc
+    from pipeline.demo.channel import Channel, add_channel_errors
+    from tests.reference.lot import load_cell
+
+    def judged(name: str, noise_v: float) -> CellResult:
+        true = load_cell(name, 5.0)
+        channel = Channel(2.5 * float(true.truth["nominal_capacity_Ah"]),
+                          current_noise_fraction=2e-4, offset_fraction=0.0, voltage_noise_v=noise_v)
+        volts, amps, temps = add_channel_errors(true.voltage_v, true.current_a,
+                                                true.temperature_c, true.step, channel,
+                                                np.random.default_rng(4))
+        trace = Trace(f"{name}.csv", dict(true.metadata), true.time_s, volts, amps, temps)
+        return judge_trace(trace, f"{name}.csv", mc.rulebook("corrected"), analysed_at=AT,
+                           input_sha256="0" * 64)
+
+    quiet, noisy = judged("lfp_normal_1", 5e-4), judged("lfp_normal_1", 2e-3)
+    for result in (quiet, noisy):
+        assert result.metrics.values["main_plateau_length_pct"] > 70
+    u_quiet = quiet.metrics.uncertainty["main_plateau_length_pct"]
+    u_noisy = noisy.metrics.uncertainty["main_plateau_length_pct"]
+    grid_only = 2 * math.sqrt(2) * 0.1 / math.sqrt(12)  # two ends on a 0.1 % grid
+    assert grid_only < u_quiet < u_noisy
+    nmc = to_document(judged("nmc_normal_1", 5e-4))
+    assert nmc["metrics"]["total_plateau_length_pct"] == 0
+    assert nmc["metrics_U"]["total_plateau_length_pct"] == 0  # exact, not unknown (null)

@@ -31,12 +31,17 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 
 from pipeline.judge.medians import median
+from pipeline.judge.plateaus import SG_ORDER
+from pipeline.judge.plateaus import _flat_runs as flat_runs
+from pipeline.judge.plateaus import _odd_window as plateau_window
 from pipeline.judge.rest_band import MEDIAN_EFFICIENCY
+from pipeline.judge.savgol import savgol, savgol_coeffs
 from pipeline.judge.segmentation import CV_BAND_V, CV_CURRENT_FRACTION, weights_between
 from pipeline.model import (
     AccuracyClass,
@@ -44,6 +49,7 @@ from pipeline.model import (
     CurrentBand,
     Cycle,
     FloatArray,
+    Plateau,
     PlateauSettings,
     Segmentation,
     Step,
@@ -330,6 +336,80 @@ def _cv_start(trace: Trace, steps: tuple[Step, ...], cv: Step, u: ChannelU) -> f
     return math.sqrt(max(0.0, float(first @ (times - mean) ** 2) / total))
 
 
+def _plateau_lengths(
+    metrics: CellMetrics,
+    settings: PlateauSettings,
+    noise_v: float,
+    rows: int,
+    have: Callable[[str], float | None],
+) -> dict[str, Budget]:
+    """The budgets of the plateau lengths: where each end falls on the capacity grid, and
+    where voltage noise moves it.
+
+    A plateau ends where the smoothed |dV/dq| crosses the flatness threshold
+    (plateaus.find_plateaus). Noise of sigma_V per row, averaged into grid cells of m rows
+    each, gives the Savitzky-Golay slope a standard deviation sigma_s = sigma_V ||h|| / sqrt(m)
+    (h the filter's derivative coefficients: a linear filter of independent values, JCGM
+    100:2008 5.1.2), and an end moves by sigma_s over the rate at which the slope changes
+    there (the filter's second derivative; at most the plateau's length). An end on the
+    grid's first or last point stays there. A total of 0 (no plateau) is exact when no run of
+    the curve, merged as the finder merges them, is within 2 sigma_s of the threshold for
+    min_length_pct: then noise cannot make one; otherwise a plateau as long as that run may
+    appear, a rectangular distribution from 0 to its length (JCGM 100:2008 4.3.7).
+    """
+    curve = metrics.grading_curve
+    assert curve is not None
+    points = len(curve.y)
+    step = float(curve.x[1] - curve.x[0])
+    window = plateau_window(settings.smoothing_pct, step, points)
+    gain = float(np.linalg.norm(savgol_coeffs(window, SG_ORDER, deriv=1, delta=step)))
+    # mV per %: the slope's standard deviation (at least one row per cell counts as one)
+    sigma_s = 1000.0 * noise_v * gain / math.sqrt(max(rows, 1) / (points - 1))
+    slope = savgol(curve.y, window, SG_ORDER, deriv=1, delta=step) * 1000.0
+    bend = savgol(curve.y, window, SG_ORDER, deriv=2, delta=step) * 1000.0
+    grid = Component("grid", 100.0 / (points - 1) / SQRT12)  # one end: a half-step, F.2.2.1
+
+    def ends(p: Plateau) -> list[float]:
+        moved = []
+        for at in (p.start_pct, p.end_pct):
+            k = int(round(at / step))
+            if 0 < k < points - 1 and sigma_s > 0:
+                rate = abs(float(bend[k]))
+                moved.append(min(sigma_s / rate, p.length_pct) if rate > 0 else p.length_pct)
+        return moved
+
+    def budget(name: str, plateaus: tuple[Plateau, ...]) -> Budget:
+        moved = [x for p in plateaus for x in ends(p)]
+        return Budget(name, (
+            Component("grid", grid.u * math.sqrt(2 * len(plateaus))),
+            Component("ends under voltage noise", math.sqrt(sum(x * x for x in moved))),
+        ))
+
+    out: dict[str, Budget] = {}
+    if metrics.plateaus:
+        main = max(metrics.plateaus, key=lambda p: p.length_pct)
+        if have("main_plateau_length_pct") is not None:
+            out["main_plateau_length_pct"] = budget("main_plateau_length_pct", (main,))
+        if have("total_plateau_length_pct") is not None:
+            out["total_plateau_length_pct"] = budget("total_plateau_length_pct", metrics.plateaus)
+    elif have("total_plateau_length_pct") is not None:
+        near = np.abs(slope) <= settings.flatness_mv_per_pct + 2.0 * sigma_s
+        longest = 0.0
+        merged: list[list[int]] = []
+        for a, b in flat_runs(near):
+            if merged and (a - merged[-1][1]) * step < settings.merge_gap_pct:
+                merged[-1][1] = b
+            else:
+                merged.append([a, b])
+        for a, b in merged:
+            longest = max(longest, (b - a) * step)
+        may = longest if longest >= settings.min_length_pct else 0.0
+        out["total_plateau_length_pct"] = Budget("total_plateau_length_pct", (
+            Component("a plateau noise may make", may / SQRT12),
+        ))
+    return out
+
+
 def _efficiency(name: str, d: _Charge, c: _Charge, u: ChannelU) -> Budget:
     eta = d.ah / c.ah
     return Budget(name, (
@@ -460,15 +540,9 @@ def budgets(
                 "main_plateau_voltage_V", main_v, u,
                 (Component("median's scatter", MEDIAN_EFFICIENCY * u.noise_v / math.sqrt(rows)),),
             )
-        grid = (plateau or PlateauSettings()).grid_points
-        for name in ("main_plateau_length_pct", "total_plateau_length_pct"):
-            length = have(name)
-            if length is not None and metrics.plateaus:
-                ends = 2 * (len(metrics.plateaus) if name.startswith("total") else 1)
-                out[name] = Budget(name, (
-                    # each end lies on the capacity grid: a rectangular half-step (JCGM 100 F.2.2.1)
-                    Component("grid", math.sqrt(ends) * 100.0 / (grid - 1) / SQRT12),
-                ))
+        settings = plateau or PlateauSettings()
+        if metrics.grading_curve is not None and len(metrics.grading_curve.y) >= 5:
+            out.update(_plateau_lengths(metrics, settings, u.noise_v, d.rows, have))
 
     drift = have("rest_voltage_drift_mV_per_h")
     if drift is not None:
