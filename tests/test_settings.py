@@ -151,7 +151,7 @@ def test_all_keys_file_uses_every_schema_key_and_each_reaches_the_settings() -> 
         "formation-line-2",
         8,
         50.5,
-        400.0,
+        300.0,
     )
     assert s.certify == "failed_and_held"
     c = s.channels

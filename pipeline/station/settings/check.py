@@ -103,6 +103,40 @@ def _refuse_passwords(out: Collector, data: dict[str, object], path: KeyPath) ->
     return found
 
 
+# A worker's address space peaks at about 560 MB + 2 x the text it reads + 180 MB per
+# 2,000,000 rows (benchmarks/hostile_inputs.py; docs/station.md): 800 MB + 2 x
+# max_uncompressed_MB lets max_uncompressed_MB, not the worker's memory, stop a large file.
+WORKER_BASE_MB = 800.0
+
+
+def _check_worker_memory(out: Collector, station: Values, written: Checker) -> None:
+    """worker_memory_MB holds the text max_uncompressed_MB lets in (located where it is written)."""
+    memory, text = station.get("worker_memory_MB"), station.get("max_uncompressed_MB")
+    if isinstance(memory, bool) or not isinstance(memory, int | float):
+        return
+    if isinstance(text, bool) or not isinstance(text, int | float):
+        return
+    need = WORKER_BASE_MB + 2 * text
+    if memory >= need:
+        return
+    path = ("station",)
+    own = written.written(path, "worker_memory_MB")
+    key = "worker_memory_MB" if own else "max_uncompressed_MB"
+    shown = out.raw(path, "worker_memory_MB", memory) if own else f"{memory:g} (the default)"
+    lower = (memory - WORKER_BASE_MB) / 2
+    out.add(
+        f"[station] worker_memory_MB = {shown} is too little for max_uncompressed_MB = "
+        f"{out.raw(path, 'max_uncompressed_MB', text)}: a worker "
+        f"reading that much text needs {WORKER_BASE_MB:g} + 2 x {text:g} = {need:g} MB",
+        path,
+        key,
+        hint=f"Raise worker_memory_MB to {need:g} or more"
+        + (f", or lower max_uncompressed_MB to {lower:g} or less" if lower > 0 else "")
+        + ". Otherwise a large file is stopped by the worker's memory instead of by "
+        "max_uncompressed_MB.",
+    )
+
+
 def _line_order(error: SettingsError) -> tuple[bool, int]:
     line = error.where.line if error.where else None
     return line is None, line or 0
@@ -234,6 +268,7 @@ def _parse(text: str, name: str, root: Path) -> tuple[Settings | None, list[Sett
     check_smtp(out, smtp, routing, password_written)
     check_routing(out, routing)
     check_plant(out, plain["plant"])
+    _check_worker_memory(out, station, check)
     plant_password = check.path(("plant",), "password_file", plain["plant"])
     if out.errors:
         # Problems with a line first, in line order; whole-file problems (often consequences) last.

@@ -94,7 +94,7 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 "max_uncompressed_MB",
                 "the most text one input may hold (unpacked, for a .csv.gz); a file with more is "
                 "quarantined, a .csv.gz as soon as unpacking it passes this, so a gzip bomb costs "
-                "no more. Keep worker_memory_MB at least 800 + 2 x this",
+                "no more. worker_memory_MB must be at least 800 + 2 x this",
                 "MB",
                 256.0,
             ),
@@ -126,7 +126,8 @@ SETTINGS_TABLES: tuple[Table, ...] = (
                 "worker_memory_MB",
                 "memory (address space) one worker process may use; a file that needs more is "
                 "quarantined. A worker needs about 600 MB to start, about 850 MB for 2,000,000 rows, "
-                "and 2 MB more for each MB of text it reads: at least 800 + 2 x max_uncompressed_MB",
+                "and 2 MB more for each MB of text it reads: at least 800 + 2 x max_uncompressed_MB "
+                "(a smaller value is refused)",
                 "MB",
                 2048.0,
             ),
@@ -586,6 +587,9 @@ CROSS_RULES: tuple[str, ...] = (
     "With a `host`, `sender` and `failures_to` are required: failed cells must reach someone.",
     "`host` is a name or address only; the port goes in `port`.",
     "`[plant] database` is a `postgresql://` address that names a database and holds no password.",
+    "`worker_memory_MB` is at least 800 + 2 × `max_uncompressed_MB` (either may be left at its "
+    "default): a worker must hold the most text an input may have, so that "
+    "`max_uncompressed_MB`, not the worker's memory, is what stops a large file.",
 )
 
 _ACTIVE_VALUES: dict[tuple[str, str], str] = {
