@@ -105,6 +105,11 @@ def test_a_released_cell_is_asked_again_exactly_when_the_new_rules_change_what_w
         "S04-024"}
     assert _latest(root, "S04-024") == ("pass", "review")
     assert _latest(root, "L01-009") == ("pass", "review")
+    # a cell it decided anew names the rule set and revision that judged that cell again
+    assert main(["cell", "show", str(root), "S04-001"]) == 0
+    shown = capsys.readouterr().out
+    assert f"(regrade 1 under nmc-graphite {NEW_REVISION}: floor raised)" in shown
+    assert "lfp-graphite" not in shown
 
 
 def test_a_raised_capacity_floor_lists_exactly_the_cells_between_the_old_and_new_floor(

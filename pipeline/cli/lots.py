@@ -211,14 +211,18 @@ def cmd_cell_show(args: argparse.Namespace) -> int:
 
 
 def _cause(ledger: Any, decision: Any) -> str:
-    """A decision's cause in words: a regrade names itself, its rule sets and its reason."""
+    """A decision's cause in words: a regrade names itself, the rule set and revision that
+    judged this cell again (not every rule set of the run), and its reason."""
     if decision.cause != "regrade":
         return str(decision.cause)
     ids = [b.partition(":")[2] for b in decision.basis if b.startswith("regrade:")]
     row = ledger.regrades.get(int(ids[-1])) if ids and ids[-1].isdigit() else None
     if row is None:
         return "regrade"
-    rules = ", ".join(f"{name} {revision}" for name, revision, _ in row.rule_sets)
+    # the rule sets of the cell's own judgements in the regrade; the run's if it has none
+    judged = ledger.regrades.rule_sets_of_cell(row.id, decision.lot, decision.cell_id) or [
+        (name, revision) for name, revision, _ in row.rule_sets]
+    rules = ", ".join(f"{name} {revision}" for name, revision in judged)
     return f"regrade {row.id} under {rules}: {row.reason}"
 
 

@@ -112,6 +112,15 @@ class Regrades:
     def every(self) -> list[RegradeRow]:
         return [_row(r) for r in self.db.rows("SELECT * FROM regrades ORDER BY id")]
 
+    def rule_sets_of_cell(self, regrade_id: int, lot: str, cell_id: str) -> list[tuple[str, str]]:
+        """(name, revision) of the rule sets that judged the cell's inputs in this regrade."""
+        rows = self.db.rows(
+            "SELECT DISTINCT rule_set_name, rule_set_revision FROM results WHERE regrade_id = ? "
+            "AND lot = ? AND cell_id = ? ORDER BY rule_set_name, rule_set_revision",
+            (regrade_id, lot, cell_id),
+        )
+        return [(str(r[0]), str(r[1])) for r in rows]
+
     def finish(self, regrade_id: int, summary: Mapping[str, int], now: datetime.datetime) -> None:
         with self.db.write() as conn:
             conn.execute(
