@@ -261,3 +261,32 @@ def test_a_ledger_locked_past_its_busy_timeout_during_a_send_does_not_send_a_let
     assert [(m.message_id, m.attempts, m.claimed_by) for m in rows] == [
         ("<locked-1@demo.example>", 1, None), ("<locked-2@demo.example>", 1, None)
     ]
+
+
+def test_mail_retry_beside_a_ledger_another_process_keeps_locked_says_so_and_sends_nothing(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from pipeline.ledger import connection
+    from pipeline.mail.letters import Letter
+
+    with smtp_server() as server:
+        s = make_station(tmp_path / "st", station_toml(smtp=smtp_table(server.port, security="none")
+                                                        .replace(f'ca_file = "{CERTS / "ca.pem"}"\n', "")))
+        now = datetime.datetime.now(datetime.UTC)
+        with Ledger(s.ledger, now=now) as ledger:
+            ledger.outbox.queue(Letter("alert", "<held@demo.example>", ("maintenance@example.com",),
+                                       "alert", "text"), now=now)
+        monkeypatch.setattr(connection, "BUSY_TIMEOUT_MS", 200)
+        holder = sqlite3.connect(s.ledger, isolation_level=None)
+        holder.execute("BEGIN IMMEDIATE")
+        try:
+            assert main(["mail", "retry", str(s.root)]) == 2
+        finally:
+            holder.execute("ROLLBACK")
+            holder.close()
+        out, err = capsys.readouterr()
+        assert server.received == [] and out == ""
+        assert err == (f"the ledger {s.ledger} could not be written (database is locked); nothing "
+                       "more was sent. Try again when the other process has let go of it\n")
+        assert main(["mail", "retry", str(s.root)]) == 0  # the lock gone, it goes once
+        assert [str(r.parsed()["Message-ID"]) for r in server.received] == ["<held@demo.example>"]

@@ -99,17 +99,17 @@ def cmd_mail_retry(args: argparse.Namespace) -> int:
     now = datetime.datetime.now(datetime.UTC)
     sender = Sender()
     with Ledger(settings.ledger, now=now) as ledger:
-        if args.parked:
-            for mail in ledger.outbox.in_state("parked"):
-                ledger.outbox.requeue(mail.id, now=now)
-        ledger.outbox.hurry_pending(now=now)
         try:
+            if args.parked:
+                for mail in ledger.outbox.in_state("parked"):
+                    ledger.outbox.requeue(mail.id, now=now)
+            ledger.outbox.hurry_pending(now=now)
             counts = deliver_due(
                 ledger, smtp, station=settings.station_name,
                 alerts_to=settings.routing.alerts_to, domain=settings.routing.domain,
                 outage_alert_s=settings.routing.outage_alert_s, sender=sender,
             )
-        except sqlite3.OperationalError as exc:
+        except sqlite3.OperationalError as exc:  # another process held the write lock too long
             return _ledger_busy(ledger, sender, exc)
         left = ledger.outbox.counts()
     # the counts are this command's own: mail another sender held is neither sent nor failed here
