@@ -145,3 +145,22 @@ def test_a_refused_file_that_names_its_cell_is_in_the_lot_report_and_export(
     assert rows["C-2"]["records"] == f"quarantined:c2.csv:{c2.sha256}"
     assert c2.final_at is not None
     assert rows["C-2"]["decided_at"] == c2.final_at.isoformat()
+
+
+def test_a_refused_file_that_names_its_cell_is_counted_in_the_lots_digest(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """The closing digest counts the lot as its report and `lot close` do: the cell whose file
+    was refused is one of its cells, not judged, and the yield is over every cell."""
+    s, _ = _refused_station(tmp_path)
+    capsys.readouterr()
+    assert main(["lot", "close", str(s.root), "LOT-A"]) == 0
+    assert capsys.readouterr().out.splitlines()[0] == (
+        "lot LOT-A: 2 cell(s), yield 50.0 % (1 error, 1 pass)"
+    )
+    with Ledger(s.ledger) as ledger:
+        (digest,) = [m for m in ledger.outbox.in_state("pending") if m.kind == "digest"]
+    assert digest.subject.endswith("2 cells: 1 not judged, 1 pass; yield 50.0 %"), digest.subject
+    body = " ".join(digest.body_text.split())
+    assert "Cells: 2 (1 not judged, 1 pass)" in body and "Yield: 50.0 % (1 of 2 passed)" in body
+    assert f"C-2 not judged \N{EM DASH} its file was not judged (in quarantine): {BAD_REASON}" in body

@@ -55,6 +55,13 @@ DIGEST_NOTE = (
 )
 # The order a digest lists verdicts in: what needs action first.
 _DIGEST_ORDER = {"fail": 0, "hold": 1, "error": 2, "pass": 3}
+# A verdict as the digest writes it: a cell whose file could not be judged is "not judged",
+# as `formgate lot list` and `lot show` say (the lot report: "Not judged (error)").
+_VERDICT_WORDS = {"error": "not judged"}
+
+
+def _word(verdict: str) -> str:
+    return _VERDICT_WORDS.get(verdict, verdict)
 
 
 def _table(rows: Sequence[DigestRow]) -> str:
@@ -63,7 +70,7 @@ def _table(rows: Sequence[DigestRow]) -> str:
     cells = [
         (
             sanitize_header(r.cell_id, ID_LEN),
-            sanitize_header(r.verdict + (f" {r.grade}" if r.grade else ""), 24),
+            sanitize_header(_word(r.verdict) + (f" {r.grade}" if r.grade else ""), 24),
             # as the certificate writes it; the column's header names the unit
             format_value("grading_capacity_Ah", r.grading_capacity_ah).removesuffix(" Ah"),
             sanitize_header(r.certificate_path, 300),
@@ -107,7 +114,9 @@ def digest_letter(
 ) -> Letter:
     """One mail listing the cells of ``lot`` with verdict and reason: fails, then holds, then passes.
 
-    The head gives the counts by verdict and the yield (passed / listed). ``digest_no``
+    The head gives the counts by verdict (a cell whose file could not be judged, verdict
+    ``error``, counts as "not judged") and the yield (passed / listed, as the lot report
+    counts it). ``digest_no``
     counts the digests of this lot (1, 2, ...) and is part of the Message-ID key, so each
     digest is its own mail and a resend of one keeps its id. ``report_path``: the lot is
     closed, and this is its report (PDF), attached; its digest is the lot's last, one per lot.
@@ -119,7 +128,7 @@ def digest_letter(
     )
     counts: dict[str, int] = {}
     for row in ordered:
-        word = sanitize_header(row.verdict, 12)
+        word = sanitize_header(_word(row.verdict), 12)
         counts[word] = counts.get(word, 0) + 1
     tally = ", ".join(f"{n} {word}" for word, n in counts.items())
     passed = counts.get("pass", 0)

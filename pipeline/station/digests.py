@@ -24,6 +24,7 @@ from pipeline.mail.digest import DigestRow, digest_letter
 from pipeline.station.cellpublish import all_current, cell_paths, published_certificate
 from pipeline.station.published_files import recorded_path
 from pipeline.station.settings import Settings
+from pipeline.station.unjudged import unjudged_cells
 
 log = logging.getLogger("formgate.station")
 CELLS_WAIT_S = 300.0  # longest a quiet lot's digest waits for its cells' certificates
@@ -59,7 +60,9 @@ def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
     one (else its latest record's verdict), its grade, the grading capacity of its latest
     record that covers grading (else of its latest record), and its cell certificate (the
     one name that shows its standing decision) once that is published: never a stage
-    record's certificate, whose verdict is one stage's."""
+    record's certificate, whose verdict is one stage's. A cell whose only file could not be
+    judged (a quarantined file that names it: station/unjudged.py) is listed too, verdict
+    ``error`` with the file's reason, as the lot report and `lot close` count it."""
     routing = settings.routing
     latest: dict[str, ResultRow] = {}
     grading: dict[str, ResultRow] = {}
@@ -94,6 +97,10 @@ def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
                 grade,
             )
         )
+    for refused in unjudged_cells(settings, ledger, lot):
+        if refused.cell_id not in decisions and refused.cell_id not in latest:
+            rows.append(DigestRow(refused.cell_id, "error", None, "",
+                                  f"its file was not judged (in quarantine): {refused.reason}"))
     return rows
 
 
