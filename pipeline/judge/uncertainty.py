@@ -41,7 +41,8 @@ from pipeline.judge.plateaus import SG_ORDER
 from pipeline.judge.plateaus import _flat_runs as flat_runs
 from pipeline.judge.plateaus import _odd_window as plateau_window
 from pipeline.judge.rest_band import MEDIAN_EFFICIENCY
-from pipeline.judge.savgol import savgol, savgol_coeffs
+from pipeline.judge.savgol import _plan as savgol_plan
+from pipeline.judge.savgol import savgol
 from pipeline.judge.segmentation import CV_BAND_V, CV_CURRENT_FRACTION, weights_between
 from pipeline.model import (
     AccuracyClass,
@@ -362,11 +363,10 @@ def _plateau_lengths(
     points = len(curve.y)
     step = float(curve.x[1] - curve.x[0])
     window = plateau_window(settings.smoothing_pct, step, points)
-    gain = float(np.linalg.norm(savgol_coeffs(window, SG_ORDER, deriv=1, delta=step)))
-    # mV per %: the slope's standard deviation (at least one row per cell counts as one)
+    # the derivative filter's coefficients (kept: the ones the plateau finder's filter uses)
+    gain = float(np.linalg.norm(savgol_plan(window, SG_ORDER, 1, step)[0]))
+    # mV per %: the slope's standard deviation
     sigma_s = 1000.0 * noise_v * gain / math.sqrt(max(rows, 1) / (points - 1))
-    slope = savgol(curve.y, window, SG_ORDER, deriv=1, delta=step) * 1000.0
-    bend = savgol(curve.y, window, SG_ORDER, deriv=2, delta=step) * 1000.0
     grid = Component("grid", 100.0 / (points - 1) / SQRT12)  # one end: a half-step, F.2.2.1
 
     def ends(p: Plateau) -> list[float]:
@@ -387,12 +387,14 @@ def _plateau_lengths(
 
     out: dict[str, Budget] = {}
     if metrics.plateaus:
+        bend = savgol(curve.y, window, SG_ORDER, deriv=2, delta=step) * 1000.0
         main = max(metrics.plateaus, key=lambda p: p.length_pct)
         if have("main_plateau_length_pct") is not None:
             out["main_plateau_length_pct"] = budget("main_plateau_length_pct", (main,))
         if have("total_plateau_length_pct") is not None:
             out["total_plateau_length_pct"] = budget("total_plateau_length_pct", metrics.plateaus)
     elif have("total_plateau_length_pct") is not None:
+        slope = savgol(curve.y, window, SG_ORDER, deriv=1, delta=step) * 1000.0
         near = np.abs(slope) <= settings.flatness_mv_per_pct + 2.0 * sigma_s
         longest = 0.0
         merged: list[list[int]] = []
