@@ -126,3 +126,35 @@ def test_applying_a_cell_records_beside_the_old_and_a_second_time_records_nothin
         later = ledger.regrades.begin(run_by="qa", reason="again", rules_digest=_sha("bundle"),
                                       rule_sets=[], selection="lots L1", now=T0)
         assert later.id != regrade.id
+
+
+def test_a_regrade_cut_short_shows_what_it_recorded_and_what_that_superseded(tmp_path: Path) -> None:
+    with Ledger(tmp_path / "ledger.sqlite", now=T0) as ledger:
+        first = _judged(ledger, "C1")
+        _judged(ledger, "C2")
+        for cell in ("C1", "C2"):
+            ledger.decisions.decide(cell_id=cell, lot="L1", verdict="pass", reason="", hazards=(),
+                                    grade=None, cause="record", basis=[f"record:{cell}.csv:x"],
+                                    now=T0)
+        assert ledger.regrades.unfinished(_sha("bundle"), "lots L1") is None
+        regrade = ledger.regrades.begin(run_by="qa", reason="capacity window tightened",
+                                        rules_digest=_sha("bundle"), rule_sets=[("demo", "2", _sha("r2"))],
+                                        selection="lots L1", now=T0)
+        assert ledger.regrades.unfinished(_sha("bundle"), "lots L1") == regrade
+        assert ledger.regrades.unfinished(_sha("bundle"), "lots L2") is None
+        assert ledger.regrades.judged_before(regrade.id) == {}
+        assert ledger.regrades.decided(regrade.id) == {}
+        own = ledger.results.of_input(first)
+        standing = ledger.decisions.latest("L1", "C1")
+        decision, _ = ledger.regrades.apply_cell(
+            regrade.id, lot="L1", cell_id="C1", rejudged=[_rejudged(first, "fail")],
+            verdict="fail", reason="grading capacity out of window", hazards=(),
+            basis=["record:C1.csv:x"], now=T0 + datetime.timedelta(hours=1),
+        )
+        # the cell's judgement and decision before the regrade, beside the regrade's own
+        [(input_id, before)] = ledger.regrades.judged_before(regrade.id).items()
+        assert input_id == first and before.id == own.id and before.verdict == "pass"  # type: ignore[union-attr]
+        assert ledger.regrades.decided(regrade.id) == {("L1", "C1"): (standing, decision)}
+        assert ledger.regrades.decided(regrade.id + 1) == {}
+        ledger.regrades.finish(regrade.id, {"pass → fail": 1}, T0)
+        assert ledger.regrades.unfinished(_sha("bundle"), "lots L1") is None

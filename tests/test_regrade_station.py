@@ -9,6 +9,7 @@ decisions and publishes the changed cells' certificates anew.
 from __future__ import annotations
 
 import csv
+import hashlib
 import io
 import json
 import os
@@ -155,36 +156,93 @@ def test_apply_records_the_changed_cells_once_with_their_cause_and_new_certifica
     assert _decisions(s) == after
 
 
+def _published(s: Settings, since: int) -> set[tuple[str | None, ...]]:
+    """The station's published rows after row ``since``, paths relative to its folder."""
+    with Ledger(s.ledger) as ledger:
+        rows = ledger.db.rows("SELECT path, sha256, kind, lot, cell_id, result_id, decision_id, "
+                              "published_at FROM published WHERE id > ?", (since,))
+        return {(str(Path(r[0]).resolve().relative_to(s.root.resolve())), *r[1:]) for r in rows}
+
+
+def _stale_cell_files(s: Settings, cells: set[str]) -> list[str]:
+    """Those of ``cells`` whose latest published cell certificate or cell JSON is not for their
+    latest decision, or not on disk with the bytes recorded."""
+    stale = []
+    with Ledger(s.ledger) as ledger:
+        for cell in sorted(cells):
+            latest = ledger.decisions.latest("LOT-A", cell)
+            for kind in ("cell certificate", "cell result"):
+                row = ledger.db.one(
+                    "SELECT path, sha256, decision_id FROM published WHERE lot = 'LOT-A' AND "
+                    "cell_id = ? AND kind = ? ORDER BY id DESC LIMIT 1", (cell, kind))
+                if (latest is None or row is None or row[2] != latest.id or not Path(row[0]).is_file()
+                        or hashlib.sha256(Path(row[0]).read_bytes()).hexdigest() != row[1]):
+                    stale.append(f"{cell} ({kind})")
+    return stale
+
+
 def test_an_apply_killed_half_way_and_run_again_gives_the_ledger_of_one_clean_run(
-    judged: Settings, tmp_path: Path
+    judged: Settings, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     clean, killed = _copy(judged, tmp_path / "clean"), _copy(judged, tmp_path / "killed")
     for s in (clean, killed):
         (s.rules_dir / "test_cells.toml").write_text(TIGHTENED, encoding="utf-8")
-    args = ["--apply", "--by", QE, "--reason", "order 12 tightened", "--workers", "1",
-            "--no-progress"]
+    expected = _between(judged, 1.80, 1.88)
+    assert len(expected) >= 2  # one cell recorded before the kill, another after
+    with Ledger(judged.ledger) as ledger:
+        first_row = int(ledger.db.one("SELECT coalesce(max(id), 0) FROM published")[0])
+    args = ["--apply", "--by", QE, "--reason", "order 12 tightened", "--mail", "--workers", "1",
+            "--no-progress", "--analysed-at", "2026-12-06T08:00:00+00:00"]
     assert main(["regrade", str(clean.root), *args]) == 0
+    clean_out = capsys.readouterr().out
     env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
     proc = subprocess.Popen([sys.executable, "-m", "pipeline", "regrade", str(killed.root), *args],
                             env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-    try:
-        deadline = time.monotonic() + 120
-        while time.monotonic() < deadline and proc.poll() is None:
+    recorded = 0
+    try:  # killed once the regrade has recorded the decision of at least one cell
+        deadline = time.monotonic() + 300
+        while time.monotonic() < deadline and proc.poll() is None and not recorded:
             conn = sqlite3.connect(killed.ledger, timeout=10)
             try:
-                started = conn.execute("SELECT count(*) FROM regrades").fetchone()[0]
+                recorded = conn.execute(
+                    "SELECT count(*) FROM decisions WHERE cause = 'regrade'").fetchone()[0]
             except sqlite3.OperationalError:
-                started = 0
+                recorded = 0
             finally:
                 conn.close()
-            if started:
-                break
-            time.sleep(0.05)
+            if not recorded:
+                time.sleep(0.01)
         proc.send_signal(signal.SIGKILL)
     finally:
         proc.wait(timeout=60)
+    with Ledger(killed.ledger) as ledger:
+        cut = ledger.regrades.get(1)
+        cells_before = int(ledger.db.one(
+            "SELECT count(DISTINCT cell_id) FROM decisions WHERE cause = 'regrade'")[0])
+    assert cut is not None and cut.finished_at is None  # cut short, half-way
+    assert 1 <= cells_before < len(expected)
     assert main(["regrade", str(killed.root), *args]) == 0
+    killed_out = capsys.readouterr().out
+    # the same decisions, summary, report, mail and published files as one clean run
     assert _decisions(killed) == _decisions(clean)
+    assert f"applied as regrade 1: {len(expected)} cell(s) decided anew" in clean_out
+    assert f"applied as regrade 1: {len(expected)} cell(s) decided anew ({cells_before} of them " in (
+        killed_out)
+    assert killed_out.splitlines()[1:-3] == clean_out.splitlines()[1:-3]  # the counts by change
+    reports = [s.root / "regrades" / "regrade-1-changes.csv" for s in (clean, killed)]
+    assert reports[0].read_bytes() == reports[1].read_bytes()
+    assert _csv_cells(reports[1]) == dict.fromkeys(expected, "pass → fail")
+    summaries = []
+    for s in (clean, killed):
+        with Ledger(s.ledger) as ledger:
+            row = ledger.regrades.get(1)
+            assert row is not None and row.finished_at is not None
+            summaries.append(row.summary)
+            mails = [m.subject for m in ledger.outbox.in_state("pending") if "regrade" in m.subject]
+            assert mails == [f"[formgate] regrade 1: {len(expected)} cells changed"]
+    assert summaries[0] == summaries[1] == {"pass → fail": len(expected)}
+    assert _published(killed, first_row) == _published(clean, first_row)
+    assert _stale_cell_files(killed, expected) == []
     with Ledger(killed.ledger) as ledger:
         assert [r.id for r in ledger.regrades.every()] == [1]
         regraded = list(ledger.db.rows("SELECT input_id, count(*) FROM results WHERE regrade_id IS NOT NULL "

@@ -75,7 +75,10 @@ def cmd_regrade(args: argparse.Namespace) -> int:
         for r in lot.refused:
             print(f"  {r.file_name} (lot {r.lot}) refused by the new rules: {r.reason}")
     if outcome.regrade_id is not None:
-        print(f"applied as regrade {outcome.regrade_id}: {outcome.applied} cell(s) decided anew")
+        earlier = (f" ({outcome.resumed} of them by a run of it that was cut short)"
+                   if outcome.resumed else "")
+        print(f"applied as regrade {outcome.regrade_id}: {outcome.applied} cell(s) decided anew"
+              f"{earlier}")
     elif args.apply:
         print("nothing to apply")
     else:

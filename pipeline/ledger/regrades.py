@@ -9,6 +9,9 @@ any), and the cell's new decision, cause 'regrade', whose basis names the regrad
 cut short and started again finds its unfinished row by the same rules and selection and
 carries on: an input already judged by this regrade is not recorded twice, and a decision
 that already stands is not recorded again (decisions.py), so a second run applies nothing.
+What the cut-short run already recorded is asked here (:meth:`Regrades.judged_before`,
+:meth:`Regrades.decided`), so that the run that carries on reports the whole regrade, each
+cell against the decision the regrade superseded, as one clean run would.
 """
 
 from __future__ import annotations
@@ -21,7 +24,15 @@ from dataclasses import dataclass
 
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.decisions import Decisions
-from pipeline.ledger.rows import CheckRowData, DecisionRow, parse_time, utc_text
+from pipeline.ledger.rows import (
+    CheckRowData,
+    DecisionRow,
+    ResultRow,
+    decision_row,
+    parse_time,
+    result_row,
+    utc_text,
+)
 
 
 @dataclass(frozen=True, slots=True)
@@ -104,6 +115,46 @@ class Regrades:
             row = self.get(cur.lastrowid)
             assert row is not None
             return row
+
+    def unfinished(self, rules_digest: str, selection: str) -> RegradeRow | None:
+        """The unfinished regrade of these rules and this selection (one cut short), if any:
+        the row :meth:`begin` carries on."""
+        found = self.db.one(
+            "SELECT * FROM regrades WHERE finished_at IS NULL AND rules_digest = ? "
+            "AND selection = ? ORDER BY id DESC LIMIT 1",
+            (rules_digest, selection),
+        )
+        return None if found is None else _row(found)
+
+    def judged_before(self, regrade_id: int) -> dict[int, ResultRow]:
+        """Input id -> its judgement before this regrade's, for each input whose latest
+        judgement is this regrade's (the judgement that regrade superseded)."""
+        rows = self.db.rows(
+            "SELECT p.* FROM results r JOIN results p ON p.input_id = r.input_id "
+            "AND p.id = (SELECT max(q.id) FROM results q WHERE q.input_id = r.input_id "
+            "AND q.id < r.id) "
+            "WHERE r.regrade_id = ? AND NOT EXISTS "
+            "(SELECT 1 FROM results n WHERE n.input_id = r.input_id AND n.id > r.id)",
+            (regrade_id,),
+        )
+        return {int(r["input_id"]): result_row(r) for r in rows}
+
+    def decided(self, regrade_id: int) -> dict[tuple[str, str], tuple[DecisionRow | None, DecisionRow]]:
+        """(lot, cell) -> (the decision this regrade's first decision on the cell superseded,
+        that decision), for every cell that carries a decision of this regrade."""
+        rows = self.db.rows(
+            "SELECT * FROM decisions WHERE cause = 'regrade' AND basis LIKE ? ORDER BY id",
+            (f'%"regrade:{int(regrade_id)}"%',),
+        )
+        out: dict[tuple[str, str], tuple[DecisionRow | None, DecisionRow]] = {}
+        for r in rows:
+            row = decision_row(r)
+            if (row.lot, row.cell_id) in out or f"regrade:{regrade_id}" not in row.basis:
+                continue
+            before = self.db.one("SELECT * FROM decisions WHERE id = ?", (row.supersedes,)) if (
+                row.supersedes is not None) else None
+            out[(row.lot, row.cell_id)] = (None if before is None else decision_row(before), row)
+        return out
 
     def get(self, regrade_id: int) -> RegradeRow | None:
         found = self.db.one("SELECT * FROM regrades WHERE id = ?", (regrade_id,))

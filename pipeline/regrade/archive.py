@@ -11,11 +11,12 @@ from __future__ import annotations
 
 import datetime
 import fnmatch
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline.ledger.ledger import Ledger
+from pipeline.ledger.rows import ResultRow
 from pipeline.station.settings import Settings
 
 
@@ -67,17 +68,27 @@ class Archived:
     result_json: str | None  # its judgement in force (None from a folder)
 
 
-def select_inputs(ledger: Ledger, settings: Settings, selection: Selection) -> list[Archived]:
+def select_inputs(
+    ledger: Ledger,
+    settings: Settings,
+    selection: Selection,
+    *,
+    before: Mapping[int, ResultRow] | None = None,
+) -> list[Archived]:
     """The station's records that count today and that the selection takes, oldest first.
 
     A record judged again by a regrade keeps the time its input was first analysed, so
-    ``since`` and ``until`` read the same times whatever was regraded.
+    ``since`` and ``until`` read the same times whatever was regraded. ``before``: input id
+    -> the judgement to take in place of the one that counts (a regrade that carries on
+    selects as it did before it recorded anything: Regrades.judged_before).
     """
     out = []
     for c in ledger.results.counting(
-        lots=selection.lots, cells=selection.cells, verdicts=selection.verdicts
+        lots=selection.lots, cells=selection.cells, verdicts=() if before else selection.verdicts
     ):
-        result = c.result
+        result = (before or {}).get(c.result.input_id, c.result)
+        if before and selection.verdicts and result.verdict not in selection.verdicts:
+            continue
         if selection.since and result.analysed_at < selection.since:
             continue
         if selection.until and result.analysed_at >= selection.until:

@@ -35,7 +35,7 @@ from typing import Any
 from pipeline.errors import FormgateError
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.regrades import Rejudged
-from pipeline.ledger.rows import CheckRowData
+from pipeline.ledger.rows import CheckRowData, DecisionRow, ResultRow
 from pipeline.names import cell_file_stem, safe_name
 from pipeline.regrade.archive import Archived, Selection, select_inputs
 from pipeline.regrade.changes import CellChange, LotChanges, Standing, lot_changes
@@ -79,9 +79,10 @@ class Outcome:
     report_pdf: Path
     report_csv: Path
     regrade_id: int | None
-    applied: int  # cells whose change was recorded
+    applied: int  # cells that carry the regrade's decision (a resumed run's included)
     stats: RunStats = field(default_factory=RunStats)
     counts: tuple[tuple[str, int], ...] = ()  # (change, cells), as the report counts them
+    resumed: int = 0  # of the cells applied, those a run cut short had recorded already
 
     @property
     def changes(self) -> tuple[CellChange, ...]:
@@ -127,7 +128,12 @@ def regrade_station(
         if not run_by.strip() or not reason.strip():
             raise FormgateError("--apply needs --by NAME and --reason TEXT", None,
                                 "Say who applies the regrade and why: the ledger keeps both.")
-    items = select_inputs(ledger, settings, selection)
+    # a regrade cut short carries on: what it chose, judged and changed is taken as it was
+    # before it recorded anything, so that it reports (and mails) the whole regrade
+    resumed = ledger.regrades.unfinished(rules.digest, selection.words()) if apply else None
+    before = ledger.regrades.judged_before(resumed.id) if resumed is not None else {}
+    decided = ledger.regrades.decided(resumed.id) if resumed is not None else {}
+    items = select_inputs(ledger, settings, selection, before=before)
     stats = RunStats()
     folder = regrades_folder(settings)
     folder.mkdir(parents=True, exist_ok=True)
@@ -139,20 +145,22 @@ def regrade_station(
         by_lot.setdefault(item.lot, []).append(item)
     lots = []
     for lot in sorted(by_lot):
-        lots.append(_lot_changes(ledger, lot, new_docs, refused, rulebook))
+        lots.append(_lot_changes(ledger, lot, new_docs, refused, rulebook, before, decided))
     rule_sets = _rule_sets(rulebook)
     data = _report_input(settings, lots, rulebook, rules.digest, selection, len(items), now,
                          applied=False, regrade_id=None, run_by=run_by, reason=reason)
     regrade_id = None
     applied = 0
-    if apply and any(c for lot in lots for c in lot.changes):
+    if apply and (resumed is not None or any(c for lot in lots for c in lot.changes)):
         row = ledger.regrades.begin(run_by=run_by, reason=reason, rules_digest=rules.digest,
                                     rule_sets=rule_sets, selection=selection.words(), now=now)
         regrade_id = row.id
         _keep_rule_texts(ledger, rules, now)
-        applied = _apply(settings, ledger, rulebook, lots, items, new_docs, new_texts, row.id, now)
-        data = _report_input(settings, lots, rulebook, rules.digest, selection, len(items), now,
-                             applied=True, regrade_id=row.id, run_by=run_by, reason=reason)
+        applied = _apply(settings, ledger, rulebook, lots, items, new_docs, new_texts, row.id, now,
+                         decided=set(decided))
+        data = _report_input(settings, lots, rulebook, rules.digest, selection, len(items),
+                             row.started_at, applied=True, regrade_id=row.id,
+                             run_by=row.run_by, reason=row.reason)
     stamp = now.astimezone(datetime.UTC).strftime("%Y%m%dT%H%M%SZ")
     target = out or folder
     stem = f"regrade-{regrade_id}" if regrade_id is not None else f"dry-run-{stamp}"
@@ -164,7 +172,7 @@ def regrade_station(
         if mail and settings.routing.digests_to:
             _queue_summary(settings, ledger, data, regrade_id, pdf_path, now)
     return Outcome(tuple(lots), len(items), pdf_path, csv_path, regrade_id, applied, stats,
-                   tuple(counts(data.changed)))
+                   tuple(counts(data.changed)), len(decided))
 
 
 def _judge(
@@ -208,14 +216,23 @@ def _lot_changes(
     new_docs: Mapping[str, Mapping[str, Any]],
     refused: Mapping[str, str],
     rulebook: Any,
+    before: Mapping[int, ResultRow],
+    decided: Mapping[tuple[str, str], tuple[DecisionRow | None, DecisionRow]],
 ) -> LotChanges:
+    """The lot's cells decided again; ``before`` and ``decided`` (a regrade that carries on:
+    Regrades.judged_before and .decided) put back the judgements and decisions it superseded."""
     from pipeline.station.reviewing import reviewed_cells
 
-    old_docs = [json.loads(r.result_json) for r in ledger.results.of_lot(lot) if r.verdict != "error"]
+    results = [before.get(r.input_id, r) for r in ledger.results.of_lot(lot)]
+    old_docs = [json.loads(r.result_json) for r in results if r.verdict != "error"]
     readings = [(s.file_name, s.file_sha256, s.reading) for s in ledger.readings.of(lot)]
+    latest = ledger.decisions.latest_of_lot(lot)
+    for (of_lot, cell), (superseded, _) in decided.items():
+        if of_lot == lot and superseded is not None:
+            latest[cell] = superseded
     standing = {
         cell: Standing(d.verdict, d.reason, tuple(d.hazards), d.grade, d.cause)
-        for cell, d in ledger.decisions.latest_of_lot(lot).items()
+        for cell, d in latest.items()
     }
     closed = ledger.lots.get(lot).closed_at is not None
     reviews = reviewed_cells(ledger, lot)
@@ -305,17 +322,39 @@ def _apply(
     new_texts: Mapping[str, str],
     regrade_id: int,
     now: datetime.datetime,
+    *,
+    decided: set[tuple[str, str]] | None = None,
 ) -> int:
-    """Record every change not held by a review, one cell per transaction; publish its cell."""
+    """Record every change not held by a review, one cell per transaction; publish its cell.
+
+    ``decided``: the cells that already carry this regrade's decision (a run cut short
+    recorded them): not recorded again, but their certificate and cell JSON are published
+    for their latest decision, and a closed lot of theirs is reported again, in case the
+    run stopped before it. Returns the cells that carry the regrade's decision."""
     from pipeline.station.cellpublish import cell_paths, publish_cell_now
     from pipeline.station.lots import close_and_report
 
     input_of = {item.sha256: item for item in items}
+    earlier = set(decided or ())
     applied = 0
+
+    def publish(lot: str, cell_id: str) -> None:
+        _keep_old_certificate(cell_paths(settings, lot, cell_id)[1], regrade_id)
+        try:
+            publish_cell_now(settings, ledger, rulebook, lot, cell_id, now)
+        except FormgateError as exc:
+            log.error("cell %s of lot %s: no new certificate: %s", cell_id, lot, exc)
+
     for lot in lots:
         done = []
         for change in lot.changes:
             if change.reviewed:
+                continue
+            if (change.lot, change.cell_id) in earlier:
+                earlier.discard((change.lot, change.cell_id))
+                publish(change.lot, change.cell_id)
+                done.append(change.cell_id)
+                applied += 1
                 continue
             rejudged, files = [], []
             for sha in change.inputs:
@@ -354,17 +393,15 @@ def _apply(
                     note_written(ledger, item_files, now=now, lot=change.lot,
                                  cell_id=change.cell_id,
                                  result_id=None if result is None else int(result["id"]))
-            _keep_old_certificate(cell_paths(settings, change.lot, change.cell_id)[1], regrade_id)
-            try:
-                publish_cell_now(settings, ledger, rulebook, change.lot, change.cell_id, now)
-            except FormgateError as exc:
-                log.error("cell %s of lot %s: no new certificate: %s", change.cell_id,
-                          change.lot, exc)
+            publish(change.lot, change.cell_id)
             done.append(change.cell_id)
             applied += 1
         if done and lot.closed:
             close_and_report(settings, ledger, rulebook, lot.lot, by="regrade", now=now,
                              close=False)
+    for lot_id, cell_id in sorted(earlier):  # decided by this regrade, not listed now
+        publish(lot_id, cell_id)
+        applied += 1
     return applied
 
 
