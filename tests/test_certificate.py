@@ -362,3 +362,37 @@ def test_a_pass_of_one_stage_is_never_shown_as_the_cells_release() -> None:
     whole = judge(demo_file_bytes(DEMO_CELLS[0]), "w.csv", book, analysed_at=when)
     assert whole.verdict.passed
     assert "covers" not in build_context(whole)["verdict"]["headline"]  # type: ignore[index]
+
+
+@pytest.mark.parametrize("make", [cases.pass_result, cases.fail_result], ids=["pass", "fail"])
+def test_every_measured_metric_is_on_the_certificate_with_its_u(
+    make: Callable[[], CellResult],
+) -> None:
+    """A checked metric in its row, every other one in the line under the checks: each
+    measured value with ± U (the counts, which have none, plain; a U of 0 as exact)."""
+    from pipeline.judge.metricdefs import METRICS
+    from pipeline.judge.quantities import format_uncertain
+
+    result = make()
+    zero = dataclasses.replace(
+        result.metrics, values={**result.metrics.values, "total_plateau_length_pct": 0.0},
+        uncertainty={**result.metrics.uncertainty, "total_plateau_length_pct": 0.0},
+    )
+    result = dataclasses.replace(result, metrics=zero)
+    html = render_html(result)
+    for definition in METRICS:
+        value = result.metrics.values.get(definition.name)
+        if value is None:
+            continue
+        u = result.metrics.uncertainty.get(definition.name)
+        text = format_uncertain(definition.name, value, u)
+        assert ("±" in text) == bool(u) and (u is None) == definition.name.endswith("_count")
+        if u == 0:
+            text += " (exact)"
+        assert f"{definition.name} {text}" in html or (
+            f'class="metric">{definition.name}</span></td>\n        <td class="c-num">{text}</td>'
+            in html
+        ), definition.name
+    other = certificate.other_values(result)
+    assert other.startswith("Other measured values: grading_cv_duration_s 1288.0 ± 3.6 s")
+    assert "total_plateau_length_pct 0.0 % (exact)" in other

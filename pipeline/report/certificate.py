@@ -19,7 +19,7 @@ from markupsafe import Markup
 
 from pipeline import shipped
 from pipeline.judge.evaluate import deciding, phrase, program_findings
-from pipeline.judge.metricdefs import BY_NAME
+from pipeline.judge.metricdefs import BY_NAME, METRICS
 
 # Every value and window is written as the judge's reasons, the letters and the lot report
 # write it: quantities.py is the one source of those words (names kept for the importers).
@@ -103,7 +103,8 @@ def _check_row(check: CheckResult, decided: bool) -> dict[str, str]:
         "id": check.rule_id,
         "metric": check.metric,
         "meaning": definition.meaning if definition else "",
-        "value": format_uncertain(check.metric, check.value, check.uncertainty, extra),
+        "value": format_uncertain(check.metric, check.value, check.uncertainty, extra)
+        + (" (exact)" if check.uncertainty == 0 and check.value is not None else ""),
         "window": format_window(check.metric, check.window, extra),
         "severity": check.severity.value,
         "outcome": ("too close to decide" if check.too_close else OUTCOME_WORDS[check.outcome])
@@ -112,6 +113,26 @@ def _check_row(check: CheckResult, decided: bool) -> dict[str, str]:
         # a hazard word on a row in window would alarm a reader for nothing
         "hazard": HAZARD_WORDS[check.hazard] if check.hazard and out else "",
     }
+
+
+def other_values(result: CellResult) -> str:
+    """Every measured metric the checks table does not show, each with its ± U, in one line.
+
+    A count has no uncertainty; a U of 0 says the value is exact (a total plateau length of
+    0 where noise cannot make a plateau: docs/metrics.md, Uncertainty).
+    """
+    metrics = result.metrics
+    shown = {c.metric for c in result.verdict.checks if c.value is not None}
+    words = []
+    for definition in METRICS:
+        name = definition.name
+        value = metrics.values.get(name)
+        if name in shown or value is None or not math.isfinite(value):
+            continue
+        u = metrics.uncertainty.get(name)
+        text = format_uncertain(name, value, u)
+        words.append(f"{name} {text}{' (exact)' if u == 0 else ''}")
+    return f"Other measured values: {'; '.join(words)}." if words else ""
 
 
 def _decision(result: CellResult) -> list[dict[str, object]]:
@@ -530,6 +551,7 @@ def build_context(
         "notes": _note_rows(result),
         "current_band": _band_text(result.current_band),
         "measurement": measurement_text(result),
+        "other_values": other_values(result),
         "traceability": _traceability(result),
         "verification": {"code": verification_code, "spaced": verification.spaced(verification_code)},
     }

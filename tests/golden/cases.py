@@ -22,6 +22,7 @@ import numpy as np
 
 from pipeline.demo.ocp import lfp_graphite_cell
 from pipeline.model import (
+    AccuracyClass,
     CellMetrics,
     CellResult,
     CellType,
@@ -152,6 +153,28 @@ GOOD_VALUES: dict[str, float | None] = {
     "total_plateau_length_pct": 60.9,
 }
 
+# Expanded uncertainties U (k = 2) of the invented metrics, of the sizes the LFP reference cell
+# shows through a channel of the default class (the counts have none).
+GOOD_U: dict[str, float] = {
+    "first_cycle_efficiency": 0.0013,
+    "irreversible_capacity_Ah": 0.0062,
+    "grading_capacity_Ah": 0.012,
+    "grading_energy_Wh": 0.071,
+    "grading_mean_voltage_V": 0.0030,
+    "grading_coulombic_efficiency": 0.0014,
+    "grading_cv_duration_s": 3.6,
+    "dcir_mOhm": 0.11,
+    "rest_voltage_drift_mV_per_h": 0.13,
+    "max_charge_voltage_V": 0.0034,
+    "min_discharge_voltage_V": 0.0030,
+    "max_temperature_C": 1.2,
+    "main_plateau_voltage_V": 0.0030,
+    "main_plateau_length_pct": 0.19,
+    "total_plateau_length_pct": 0.31,
+}
+# The invented channel's class: the default, on a declared 50 A range.
+ACCURACY = AccuracyClass(current_range_a=50.0, source="invented channel class")
+
 
 def _checks(
     values: dict[str, float | None], not_judged: tuple[str, ...] = ()
@@ -165,7 +188,7 @@ def _checks(
         else:
             outcome = Outcome.IN_WINDOW if window.contains(value) else Outcome.OUT_OF_WINDOW
         rows.append(CheckResult(rule.id, rule.metric, value, window, outcome, rule.severity,
-                                rule.hazard, rule.message))
+                                rule.hazard, rule.message, GOOD_U.get(rule.metric)))
     return tuple(rows)
 
 
@@ -207,11 +230,13 @@ def make_result(
             ica_peaks_v=ICA_PEAKS_V,
             grading_curve=curve,
             ica_curve=ica_curve(curve),
+            uncertainty={k: u for k, u in GOOD_U.items() if values.get(k) is not None},
         ),
         verdict=Verdict(kind, checks, hazards, reasons),
         notes=notes,
         analysed_at=ANALYSED_AT,
         software_version=SOFTWARE_VERSION,
+        accuracy=ACCURACY,
     )
 
 
