@@ -457,6 +457,21 @@ def test_a_digest_lists_fails_and_holds_first_each_with_its_reason_and_the_yield
     assert DATA_CHECK_NOTICE not in letter.body_text
 
 
+def test_a_digest_says_a_passed_cell_released_over_a_hazard_keeps_its_caution() -> None:
+    rows = [
+        DigestRow("L-001", "pass", 20.3, "c/L-001~cell.pdf"),
+        DigestRow("L-005", "pass", 20.1, "c/L-005~cell.pdf",
+                  "released as a concession by quality engineer A accepting temperature_limit: "
+                  "thermocouple misread", hazards=("over_temperature",)),
+    ]
+    body = " ".join(digest_letter("L", rows, TO, station="s", digest_no=1).body_text.split())
+    assert ("L-005 pass 20.10 c/L-005~cell.pdf released as a concession by quality engineer A "
+            "accepting temperature_limit: thermocouple misread CAUTION: its record shows the "
+            "hazard over_temperature (Over-temperature during formation)") in body
+    assert "qualified personnel" in body and "cell certificate" in body
+    assert body.count("CAUTION") == 1  # the clean pass has none
+
+
 def test_alert_letter_keeps_lines_and_indents_but_drops_control_characters() -> None:
     text = "rules/demo_lfp.toml, line 14: high is below low.\r\n  Swap the two values.\x07"
     letter = alert_letter(

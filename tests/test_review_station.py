@@ -24,6 +24,7 @@ from pypdf import PdfReader
 
 from pipeline.cli.main import main
 from pipeline.ledger.ledger import Ledger
+from pipeline.station.digests import lot_rows
 from pipeline.station.settings import Settings, smtp_settings
 from pipeline.station.station import Station
 from pipeline.station.status import status_text
@@ -252,6 +253,10 @@ def test_a_concession_over_a_safety_hazard_needs_its_rule_set_to_allow_it(
     assert "PASS" in page1 and "no clean pass" in page1
     assert f"released as a concession by {QE} over the safety hazard internal_short" in page1
     assert "Possible internal short circuit" in page1 and "qualified personnel" in page1
+    # the lot's digest lists it as passed, with the hazard it keeps and where its caution is
+    with Ledger(s.ledger) as ledger:
+        (row,) = [r for r in lot_rows(ledger, "LOT-A", s) if r.cell_id == "S-1"]
+    assert (row.verdict, row.hazards) == ("pass", ("internal_short",))
 
 
 def test_reviews_stand_when_the_cell_is_decided_again_until_something_new_arrives(

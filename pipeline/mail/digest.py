@@ -27,6 +27,8 @@ from pipeline.mail.letters import (
     message_id_for,
     sanitize_header,
 )
+from pipeline.model import Hazard
+from pipeline.report.hazards import CAUTIONS
 
 
 @dataclass(frozen=True, slots=True)
@@ -34,7 +36,9 @@ class DigestRow:
     """One cell in a lot digest: its id, verdict word (``pass``...), capacity and certificate.
 
     ``reason`` is the deciding line of a fail or hold (empty for a pass);
-    ``certificate_path`` is a path or a link, as the station builds it.
+    ``certificate_path`` is a path or a link, as the station builds it; ``hazards``: the
+    hazards its decision carries (values of :class:`pipeline.model.Hazard`), which a cell a
+    person released keeps, and with them their cautions.
     """
 
     cell_id: str
@@ -43,6 +47,7 @@ class DigestRow:
     certificate_path: str
     reason: str = ""
     grade: str | None = None  # a passing cell's grade, once its lot is closed
+    hazards: tuple[str, ...] = ()
 
 
 # Closing words of a digest: what it is, and where the decisions stand (common practice).
@@ -62,6 +67,32 @@ _VERDICT_WORDS = {"error": "not judged"}
 
 def _word(verdict: str) -> str:
     return _VERDICT_WORDS.get(verdict, verdict)
+
+
+def _kept_caution(hazards: Sequence[str]) -> str:
+    """What a passing cell released over a hazard keeps: the hazard named, and where its
+    caution is (the cell certificate), deferring to the site and qualified personnel."""
+    known = {h.value: h for h in Hazard}
+    named = ", ".join(
+        f"{h} ({CAUTIONS[known[h]].title})" if h in known else h for h in hazards
+    )
+    return (
+        f"CAUTION: its record shows the hazard{'s' if len(hazards) > 1 else ''} {named}. A "
+        "release does not clear a hazard: its caution stays with the cell (on its cell "
+        "certificate), and the site's procedures and qualified personnel decide how it is "
+        "handled."
+    )
+
+
+def _wrapped(text: str) -> str:
+    return textwrap.fill(
+        _line(text),
+        WIDTH,
+        initial_indent="    ",
+        subsequent_indent="    ",
+        break_long_words=False,
+        break_on_hyphens=False,
+    )
 
 
 def _table(rows: Sequence[DigestRow]) -> str:
@@ -89,16 +120,9 @@ def _table(rows: Sequence[DigestRow]) -> str:
     for row, cell in zip(rows, cells, strict=True):
         lines.append(render(cell))
         if row.reason:
-            lines.append(
-                textwrap.fill(
-                    _line(row.reason),
-                    WIDTH,
-                    initial_indent="    ",
-                    subsequent_indent="    ",
-                    break_long_words=False,
-                    break_on_hyphens=False,
-                )
-            )
+            lines.append(_wrapped(row.reason))
+        if row.verdict == "pass" and row.hazards:
+            lines.append(_wrapped(_kept_caution(row.hazards)))
     return "\n".join(lines)
 
 

@@ -77,8 +77,10 @@ def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
         record = grading.get(cell) or latest.get(cell)
         document = json.loads(record.result_json) if record is not None else {}
         decision = decisions.get(cell)
+        hazards: tuple[str, ...] = ()
         if decision is not None:
             verdict, reason, grade = decision.verdict, decision.reason, decision.grade
+            hazards = decision.hazards  # a released cell keeps them, and their cautions
         else:
             verdict = record.verdict if record is not None else "hold"
             reason = document.get("decision", "") if verdict != "pass" else ""
@@ -95,6 +97,7 @@ def lot_rows(ledger: Ledger, lot: str, settings: Settings) -> list[DigestRow]:
                 ),
                 reason,
                 grade,
+                hazards,
             )
         )
     for refused in unjudged_cells(settings, ledger, lot):
