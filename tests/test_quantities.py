@@ -21,9 +21,20 @@ from pipeline.judge.lotscreens import Outlier
 from pipeline.judge.lotspread import capability
 from pipeline.judge.lotstats import WindowSpec
 from pipeline.judge.metricdefs import RULE_METRICS
-from pipeline.judge.quantities import DASH, format_value, format_window, precision
+from pipeline.judge.quantities import (
+    DASH,
+    MINUS,
+    format_uncertain,
+    format_value,
+    format_window,
+    metric_format,
+    near_limit,
+    precision,
+)
 from pipeline.mail import letters
 from pipeline.model import (
+    GUARDED_ACCEPTANCE,
+    GUARDED_REJECTION,
     CellMetrics,
     CellType,
     Outcome,
@@ -161,3 +172,80 @@ def test_a_value_not_measured_is_an_em_dash_wherever_it_is_written() -> None:
     assert (row["window"], row["mean"], row["sd"]) == (
         "\N{GREATER-THAN OR EQUAL TO} 80.00 %", DASH, DASH
     )
+
+
+def _judge_with_u(metric: str, value: float, u: float, window: Window, decision: str) -> Verdict:
+    rule = Rule("r1", metric, window, Severity.REJECT, decision=decision)
+    rule_set = RuleSet("t", "1", "LFP/graphite", "0" * 64, "t.toml", (CT,), PlateauSettings(), (rule,))
+    metrics = CellMetrics({metric: value}, (), (), (), uncertainty={metric: u})
+    return evaluate(rule_set, CT, metrics, stages=STAGES[metric])
+
+
+# limits as rule files and relative windows give them: up to five decimals
+limits = st.builds(round, st.floats(-1e3, 1e3, allow_nan=False), st.integers(0, 5))
+
+
+@given(st.sampled_from(NAMES), limits, st.floats(1e-6, 10.0), st.floats(0.0, 0.99),
+       st.sampled_from(["low", "high"]), st.sampled_from([GUARDED_ACCEPTANCE, GUARDED_REJECTION]))
+def test_a_value_within_u_of_a_limit_is_written_with_the_digits_that_tell_them_apart(
+    metric: str, limit: float, u: float, share: float, side: str, decision: str
+) -> None:
+    """Guarded acceptance holds a value inside its limit by less than U, "too close to the
+    limit to decide"; guarded rejection accepts a value outside it by less than U (the guard
+    bands of ILAC-G8:09/2019, Guidelines on Decision Rules and Statements of Conformity;
+    ISO 14253-1:2017, Decision rules for verifying conformity or nonconformity with
+    specifications; JCGM 106:2012, The role of measurement uncertainty in conformity
+    assessment, clause 8.3). Either way the value ± U is written against the limit to the
+    digits that tell the two apart, the limit as it is, alike in the reason, the decision
+    line and the certificate's row."""
+    inward = 1.0 if side == "low" else -1.0
+    value = limit + (inward if decision == GUARDED_ACCEPTANCE else -inward) * share * u
+    if decision == GUARDED_REJECTION and value == limit:
+        return  # on the limit is in window: nothing to accept by the rule
+    window = Window(limit, None) if side == "low" else Window(None, limit)
+    (check,) = _judge_with_u(metric, value, u, window, decision).checks
+    if decision == GUARDED_ACCEPTANCE:
+        assert check.too_close and check.outcome is Outcome.NOT_JUDGED
+    else:
+        assert not check.too_close and check.outcome is Outcome.IN_WINDOW
+    extra = near_limit(metric, value, window)
+    value_text = format_uncertain(metric, value, u, extra)
+    limit_text = format_window(metric, window, extra)
+    said = f"{value_text} against {limit_text}"
+    assert said in check.message
+    if check.too_close:
+        assert phrase(check).endswith(said)
+        assert decision_line(Verdict(VerdictKind.HOLD, (check,), ())) == phrase(check)
+    row = certificate._check_row(check, decided=True)
+    assert (row["value"], row["window"]) == (value_text, limit_text)
+    number, _ = metric_format(metric, extra)
+    scale = 100.0 if metric.endswith("efficiency") else 1.0
+    # the limit as it is, never rounded onto another number (five decimals fit the digits)
+    assert math.isclose(float(number(limit).replace(MINUS, "-")), limit * scale,
+                        rel_tol=1e-9, abs_tol=1e-12)
+    if _apart(value, limit):
+        assert number(value) != number(limit)
+
+
+@pytest.mark.parametrize(
+    ("metric", "value", "u", "window", "decision", "said"),
+    [
+        # a limit of 20.325 Ah (a relative window of a 20 Ah cell) is not "20.32 Ah"
+        ("grading_capacity_Ah", 20.331, 0.012, Window(20.325, None), GUARDED_ACCEPTANCE,
+         "20.331 ± 0.012 Ah against \N{GREATER-THAN OR EQUAL TO} 20.325 Ah"),
+        # 0.993004 is not "99.300 %" against "99.30 %"
+        ("grading_coulombic_efficiency", 0.993004, 0.00034, Window(0.993, None),
+         GUARDED_ACCEPTANCE,
+         "99.3004 ± 0.0340 % against \N{GREATER-THAN OR EQUAL TO} 99.3000 %"),
+        ("grading_coulombic_efficiency", 0.992996, 0.00034, Window(0.993, None),
+         GUARDED_REJECTION,
+         "99.2996 ± 0.0340 % against \N{GREATER-THAN OR EQUAL TO} 99.3000 %"),
+    ],
+)
+def test_the_near_limit_cases_of_the_issue_are_written_apart(
+    metric: str, value: float, u: float, window: Window, decision: str, said: str
+) -> None:
+    (check,) = _judge_with_u(metric, value, u, window, decision).checks
+    assert said in check.message
+    row = certificate._check_row(check, decided=True)
+    assert f"{row['value']} against {row['window']}" == said

@@ -19,7 +19,14 @@ from collections.abc import Iterable
 
 from pipeline.judge.metricdefs import FORMATION, GRADING, judged_on
 from pipeline.judge.program import HOLDING_CODES, INCOMPLETE, MISMATCH
-from pipeline.judge.quantities import format_uncertain, format_value, format_window, precision
+from pipeline.judge.quantities import (
+    format_uncertain,
+    format_value,
+    format_window,
+    near_limit,
+    nearer_bound,
+    precision,
+)
 from pipeline.model import (
     GUARDED_ACCEPTANCE,
     GUARDED_REJECTION,
@@ -66,11 +73,18 @@ def inside_by(value: float, window: Window) -> float:
 
 
 def against(metric: str, value: float, u: float | None, window: Window) -> str:
-    """A value ± U against the limit it is nearest: '18.98 ± 0.03 Ah against ≥ 19.00 Ah'."""
-    low, high = window.low, window.high
-    nearer_low = low is not None and (high is None or abs(value - low) <= abs(high - value))
-    limit = Window(low, None) if nearer_low else Window(None, high)
-    return f"{format_uncertain(metric, value, u)} against {format_window(metric, limit)}"
+    """A value ± U against the limit it is nearest, to the digits that tell the two apart and
+    write the limit as it is (quantities.near_limit).
+
+    >>> against("grading_capacity_Ah", 18.981, 0.031, Window(19.0, None))
+    '18.981 ± 0.031 Ah against ≥ 19.00 Ah'
+    >>> against("grading_coulombic_efficiency", 0.993004, 0.00034, Window(0.993, None))
+    '99.3004 ± 0.0340 % against ≥ 99.3000 %'
+    """
+    bound = nearer_bound(value, window)
+    limit = Window(bound, None) if bound == window.low else Window(None, bound)
+    extra = near_limit(metric, value, window)
+    return f"{format_uncertain(metric, value, u, extra)} against {format_window(metric, limit, extra)}"
 
 
 def _check(

@@ -9,7 +9,10 @@ a value not measured as an em dash; a negative number with a true minus sign.
 
 A value out of its window that would print as the bound it crossed ("8.00 mOhm > 8.00
 mOhm") is written, with its window, to as many more digits as tell the two apart
-(:func:`precision`); every renderer asks for the same digits, so they still agree.
+(:func:`precision`), and a bound with more digits than its unit shows is written as it is
+(a limit of 20.325 Ah never reads "20.32 Ah"); a value held too close to a limit, or
+accepted outside it by less than its uncertainty, is written against that limit the same
+way (:func:`near_limit`). Every renderer asks for the same digits, so they still agree.
 """
 
 from __future__ import annotations
@@ -136,6 +139,9 @@ def format_uncertain(metric: str, value: float | None, u: float | None, extra: i
     v_text = number(value)
     if _decimals(u_text) > _decimals(v_text):
         v_text = signed(f"{value * scale:.{_decimals(u_text)}f}")
+    elif extra and _decimals(v_text) > _decimals(u_text):
+        # a close call's digits: U written to them too, so the value and U read alike
+        u_text = f"{u * scale:.{_decimals(v_text)}f}"
     return with_unit(f"{v_text} \N{PLUS-MINUS SIGN} {u_text}", unit)
 
 
@@ -180,22 +186,61 @@ def crossed(value: float | None, window: Window) -> float | None:
     return None
 
 
+def nearer_bound(value: float, window: Window) -> float | None:
+    """The limit of ``window`` that ``value`` lies nearer to (None: an open window)."""
+    low, high = window.low, window.high
+    if low is not None and (high is None or abs(value - low) <= abs(high - value)):
+        return low
+    return high
+
+
+def decisive(metric: str, value: float | None, bound: float | None) -> int:
+    """The extra digits that write ``bound`` as it is and tell ``value`` from it.
+
+    The fewest (at most MAX_EXTRA_DIGITS) with which the bound reads back as itself and the
+    value does not read as the bound (unless it is the bound).
+
+    >>> decisive("grading_capacity_Ah", 20.31, 20.325), format_value("grading_capacity_Ah", 20.325, 1)
+    (1, '20.325 Ah')
+    >>> decisive("grading_coulombic_efficiency", 0.993004, 0.993), percent(0.993004, 2)
+    (2, '99.3004')
+    """
+    if value is None or bound is None or not (math.isfinite(value) and math.isfinite(bound)):
+        return 0
+    scale, _ = _scale(metric)
+    for extra in range(MAX_EXTRA_DIGITS + 1):
+        number, _ = metric_format(metric, extra)
+        shown = number(bound)
+        as_is = math.isclose(float(shown.replace(MINUS, "-")), bound * scale,
+                             rel_tol=1e-9, abs_tol=1e-12)
+        if as_is and (number(value) != shown or value == bound):
+            return extra
+    return MAX_EXTRA_DIGITS
+
+
 def precision(metric: str, value: float | None, window: Window) -> int:
-    """The extra digits that tell an out-of-window value from the bound it crossed (0 mostly).
+    """The extra digits that tell an out-of-window value from the bound it crossed, and write
+    that bound as it is (0 mostly; 0 for a value in window).
 
     >>> precision("dcir_mOhm", 8.004, Window(None, 8.0)), precision("dcir_mOhm", 9.1, Window(None, 8.0))
     (1, 0)
     >>> format_value("dcir_mOhm", 8.004, 1), format_window("dcir_mOhm", Window(None, 8.0), 1)
     ('8.004 mOhm', '≤ 8.000 mOhm')
     """
-    bound = crossed(value, window)
-    if bound is None or value is None:
+    return decisive(metric, value, crossed(value, window))
+
+
+def near_limit(metric: str, value: float | None, window: Window) -> int:
+    """The extra digits that write the limit ``value`` lies nearer to as it is, and tell the
+    value from it: for a value held too close to its limit, or accepted outside it by less
+    than its uncertainty, which is then written against that limit (evaluate.against).
+
+    >>> near_limit("grading_coulombic_efficiency", 0.993004, Window(0.993, None))
+    2
+    """
+    if value is None or not math.isfinite(value):
         return 0
-    for extra in range(MAX_EXTRA_DIGITS + 1):
-        number, _ = metric_format(metric, extra)
-        if number(value) != number(bound):
-            return extra
-    return MAX_EXTRA_DIGITS
+    return decisive(metric, value, nearer_bound(value, window))
 
 
 __all__ = [
@@ -203,11 +248,14 @@ __all__ = [
     "DASH",
     "MINUS",
     "crossed",
+    "decisive",
     "format_spread",
     "format_uncertain",
     "format_value",
     "format_window",
     "metric_format",
+    "near_limit",
+    "nearer_bound",
     "percent",
     "precision",
     "signed",

@@ -28,7 +28,7 @@ from pipeline.judge.quantities import DASH as DASH  # as before: importers take 
 from pipeline.judge.quantities import (
     format_uncertain,
     format_window,
-    precision,
+    near_limit,
     significant,
 )
 from pipeline.judge.quantities import format_value as format_value  # and this
@@ -98,7 +98,10 @@ def format_time(moment: datetime.datetime) -> str:
 def _check_row(check: CheckResult, decided: bool) -> dict[str, str]:
     definition = BY_NAME.get(check.metric)
     out = check.outcome is Outcome.OUT_OF_WINDOW
-    extra = precision(check.metric, check.value, check.window)  # as the reasons write it
+    # as the reasons write it: a value out of window, held too close to a limit or accepted
+    # outside it by less than U, to the digits that tell it from that limit
+    outside = check.value is not None and not check.window.contains(check.value)
+    extra = near_limit(check.metric, check.value, check.window) if check.too_close or outside else 0
     return {
         "id": check.rule_id,
         "metric": check.metric,
