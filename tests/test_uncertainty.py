@@ -22,21 +22,11 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
+from pipeline.acceptance.results import CellResult, Outcome, VerdictKind
+from pipeline.acceptance.rules import GUARDED_ACCEPTANCE, GUARDED_REJECTION, SIMPLE, RuleSet, Window
 from pipeline.demo.lots import ALL_DEMO_CELLS, demo_file_bytes
 from pipeline.judge.uncertainty import budgets, channel_u, range_up
-from pipeline.model import (
-    DEFAULT_ACCURACY,
-    GUARDED_ACCEPTANCE,
-    GUARDED_REJECTION,
-    SIMPLE,
-    AccuracyClass,
-    CellResult,
-    Outcome,
-    RuleSet,
-    Trace,
-    VerdictKind,
-    Window,
-)
+from pipeline.model import DEFAULT_ACCURACY, AccuracyClass, Trace
 from pipeline.read.cyclefile import read_cycle_file
 from pipeline.read.profile import load_profile
 from pipeline.report.result import to_document
@@ -104,6 +94,11 @@ def test_a_value_just_inside_a_limit_is_held_under_guarded_acceptance_and_passed
     simple = judge(data, f"{cell_id}.csv", with_rule(rule_set, rule_id, window=window),
                    analysed_at=AT)
     assert simple.verdict.kind is VerdictKind.PASS
+    # guarded acceptance: the acceptance zone is the window shrunk by U, so a value inside the
+    # limit by less than U is not shown to conform (ILAC-G8:09/2019, Guidelines on Decision
+    # Rules and Statements of Conformity; ISO 14253-1:2017, Decision rules for verifying
+    # conformity or nonconformity with specifications; JCGM 106:2012, The role of
+    # measurement uncertainty in conformity assessment, clause 8.3)
     guarded = judge(
         data, f"{cell_id}.csv",
         with_rule(rule_set, rule_id, window=window, decision=GUARDED_ACCEPTANCE),
@@ -141,6 +136,9 @@ def test_a_value_just_outside_a_limit_fails_simply_and_passes_under_guarded_reje
                    analysed_at=AT)
     assert simple.verdict.kind is VerdictKind.FAIL
     assert "±" in simple.verdict.reasons[0]
+    # guarded rejection: the rejection zone is the outside of the window widened by U, so a
+    # value outside the limit by less than U is not shown not to conform, and is accepted
+    # (ILAC-G8:09/2019; ISO 14253-1:2017; JCGM 106:2012 clause 8.3, as above)
     lenient = judge(
         data, f"{cell_id}.csv",
         with_rule(rule_set, rule_id, window=window, decision=GUARDED_REJECTION),

@@ -8,8 +8,11 @@ time-base error and a temperature offset, each uniform within the class, JCGM 10
 6.4.2; row-to-row noise and switch transients from the project's channel model), records
 the same physics-simulated cell through each, and measures every metric. The spread of
 those metrics is what a reader of the certificate should expect; the GUM value formgate
-prints must be within 10 % of it (the issue's bar; with 400 draws the Monte Carlo standard
-deviation is itself known to about 3.5 %, 1/sqrt(2N), JCGM 101:2008 7.9).
+prints must be within 10 % of it (the issue's bar). With N = 400 draws of a normally
+distributed metric the Monte Carlo standard deviation is itself known to about 3.5 %: the
+relative standard deviation of an experimental standard deviation of n normal values is
+about 1 / sqrt(2 (n - 1)) (JCGM 100:2008 E.4.3 and its Table E.1). A metric that moves by
+whole rows, as where a CV tail begins, is known less well (see the CV test below).
 
 The reference cells are PyBaMM SPMe simulations (Marquis et al., J. Electrochem. Soc. 166
 (2019) A3693; parameter sets Chen et al., J. Electrochem. Soc. 167 (2020) 080534, and Prada

@@ -110,8 +110,15 @@ def test_an_offset_standing_out_of_its_scatter_is_taken_out_of_every_row() -> No
     current = np.concatenate([rng.normal(0.006, 0.005, 400), 5.006 + rng.normal(0, 0.005, 400)])
     trace = Trace("c.csv", {}, np.arange(800.0), np.full(800, 3.3), current)
     band = estimate_band(trace.current_a, 0.04, 20.0)
-    # the median's standard uncertainty: sqrt(pi/2) sigma / sqrt(n) (Kenney and Keeping 1962)
-    assert band.offset_u_a == pytest.approx(np.sqrt(np.pi / 2) * 0.005 / np.sqrt(400), rel=0.2)
+    # the offset is the mean of the 400 rows at rest, and its standard uncertainty a mean's,
+    # sigma / sqrt(n) (JCGM 100:2008 4.2.3), sigma the rest band's robust noise estimate
+    assert band.rows == 400
+    assert band.offset_a == pytest.approx(float(np.mean(current[:400])), rel=1e-12)
+    assert band.offset_u_a == pytest.approx(band.noise_a / np.sqrt(400), rel=1e-12)
+    # against the noise drawn, 5 mA: 1.4826 x the median absolute deviation of 400 normal
+    # values scatters by about 6 % (its efficiency is 37 % of the standard deviation's,
+    # Rousseeuw and Croux 1993, J. Am. Stat. Assoc. 88, 1273; from memory), 2.5 of those
+    assert band.offset_u_a == pytest.approx(0.005 / np.sqrt(400), rel=0.15)
     fixed, marked = take_out_offset(trace, band)
     assert marked.corrected and marked.centre_a == 0.0
     np.testing.assert_allclose(fixed.current_a, current - band.offset_a)
