@@ -124,6 +124,23 @@ def test_profiles_doc_is_generated() -> None:
     assert docs == expected, "run: python -m pipeline.read.profile_docs > docs/profiles.md"
 
 
+def test_the_profile_keys_of_an_accuracy_class_allow_what_the_reader_takes() -> None:
+    """Each [accuracy] key's allowed values say whether 0 is one: the reader refuses a range
+    of 0 A (a channel of no range measures nothing) and takes 0 for every other key."""
+    from pipeline.read.accuracy import ACCURACY_KEYS, AccuracyValueError, accuracy_from
+    from pipeline.read.profile_keys import PROFILE_KEYS
+
+    allowed = {k.key: k.allowed for k in PROFILE_KEYS if k.table == "accuracy"}
+    assert set(allowed) == {k.name for k in ACCURACY_KEYS}
+    for key in ACCURACY_KEYS:
+        try:
+            accuracy_from({key.name: 0}, "t")
+        except AccuracyValueError:
+            assert allowed[key.name] == f"number above 0 ({key.unit})", key.name
+        else:
+            assert allowed[key.name] == f"number, 0 or more ({key.unit})", key.name
+
+
 def test_profiles_doc_lists_every_shipped_profile() -> None:
     names = sorted(path.name for path in SHIPPED_PROFILES.glob("*.toml"))
     assert len(names) == 7

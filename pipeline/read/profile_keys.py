@@ -20,7 +20,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 
 from pipeline.model import frozen_mapping
-from pipeline.read.accuracy import ACCURACY_KEYS
+from pipeline.read.accuracy import ACCURACY_KEYS, AccuracyKey, AccuracyValueError, accuracy_from
 from pipeline.read.accuracy import describe as describe_accuracy
 
 QUANTITIES: tuple[str, ...] = ("time", "voltage", "current", "temperature", "step", "cycle")
@@ -74,6 +74,16 @@ class ProfileKey:
     allowed: str
     default: str
     meaning: str
+
+
+def _accuracy_allowed(key: AccuracyKey) -> str:
+    """The values an [accuracy] key takes, as the reader decides them (accuracy.accuracy_from:
+    a current range of 0 is refused, every other key takes 0)."""
+    try:
+        accuracy_from({key.name: 0}, "")
+    except AccuracyValueError:
+        return f"number above 0 ({key.unit})"
+    return f"number, 0 or more ({key.unit})"
 
 
 PROFILE_KEYS: tuple[ProfileKey, ...] = (
@@ -262,7 +272,7 @@ PROFILE_KEYS: tuple[ProfileKey, ...] = (
         ProfileKey(
             "accuracy",
             k.name,
-            f"number, 0 or more ({k.unit})",
+            _accuracy_allowed(k),
             describe_accuracy(k),
             k.meaning + " (the channels' accuracy class, from which every metric's uncertainty "
             "starts; a station's [accuracy.ID] for the inbox or channel wins over it)"
