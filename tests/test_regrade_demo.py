@@ -146,3 +146,36 @@ def test_a_raised_capacity_floor_lists_exactly_the_cells_between_the_old_and_new
         assert float(line["new_low"]) == pytest.approx(float(line["old_low"]) * NEW_FLOOR)
         assert float(line["old_low"]) <= float(line["new_value"]) < float(line["new_low"])
     assert "dry run: nothing recorded" in out
+
+
+def test_one_cell_of_a_closed_lot_regrades_its_whole_lot_and_says_so(
+    demo_station: tuple[Path, str], tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    root = _copy(demo_station, tmp_path / "station")
+    proposed = _raised_floor(root / "rules", tmp_path / "proposed")
+    with sqlite3.connect(f"file:{root / 'ledger.sqlite'}?mode=ro", uri=True) as db:
+        assert db.execute("SELECT closed_at FROM lots WHERE lot = 'DEMO-LOT-04'").fetchone()[0]
+    # the lot as a whole: what the raised floor changes in it
+    _, whole = _regrade(root, "--rules", str(proposed), "--lot", "DEMO-LOT-04", capsys=capsys)
+    lot = {r["cell_id"]: r["change"] for r in _rows(whole)}
+    assert "S04-018" in lot and len(lot) > 1
+    # one cell of the closed lot: its screens need every cell, so the lot is judged whole and
+    # decided as above (no cell held or released by old and new records mixed), and it says so
+    out, one = _regrade(root, "--rules", str(proposed), "--cell", "S04-018", capsys=capsys)
+    assert "lot DEMO-LOT-04 is closed: its screens compare every cell, so all " in out
+    assert "of its inputs were judged again (the selection took 2)" in out
+    assert {r["cell_id"]: r["change"] for r in _rows(one)} == lot
+    assert "pass → hold" not in out
+    # a cell of an open lot is regraded alone
+    out, alone = _regrade(root, "--rules", str(proposed), "--cell", "N02-001", capsys=capsys)
+    assert "is closed" not in out
+    assert {r["cell_id"]: r["change"] for r in _rows(alone)} == {"N02-001": "pass → fail"}
+    # applied, the cells of the lot decided anew are those the lot's own regrade lists
+    shutil.copy(proposed / "nmc_graphite.toml", root / "rules" / "nmc_graphite.toml")
+    out, applied = _regrade(root, "--cell", "S04-018", "--apply", "--by", QE, "--reason",
+                            "floor raised", capsys=capsys)
+    assert {r["cell_id"]: r["change"] for r in _rows(applied)} == lot
+    with sqlite3.connect(f"file:{root / 'ledger.sqlite'}?mode=ro", uri=True) as db:
+        regraded = {cell for (cell,) in db.execute(
+            "SELECT DISTINCT cell_id FROM decisions WHERE cause = 'regrade'")}
+    assert regraded == set(lot)  # no review in this lot: every change recorded

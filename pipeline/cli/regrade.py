@@ -65,6 +65,9 @@ def cmd_regrade(args: argparse.Namespace) -> int:
     print(f"{outcome.inputs} input(s) judged again under {rules.folder} "
           f"(SHA-256 {rules.digest[:12]}...): {stats.files_judged} on the cluster, "
           f"{stats.from_cache} kept from an earlier run")
+    for closed, chosen, whole in outcome.widened:
+        print(f"lot {closed} is closed: its screens compare every cell, so all {whole} of its "
+              f"inputs were judged again (the selection took {chosen})")
     if not outcome.changes:
         print("no cell changes")
     for change, n in outcome.counts:
@@ -151,7 +154,8 @@ def add_commands(sub: Any) -> None:
     p.add_argument("station", nargs="?", metavar="STATION", help="the station folder")
     p.add_argument("--rules", help="rules folder (default: the station's own)")
     p.add_argument("--lot", action="append", metavar="LOT", help="only this lot (repeatable)")
-    p.add_argument("--cell", action="append", metavar="CELL", help="only this cell (repeatable)")
+    p.add_argument("--cell", action="append", metavar="CELL",
+                   help="only this cell (repeatable); a closed lot is taken whole")
     p.add_argument("--since", metavar="TIME", help="only records first analysed at or after TIME")
     p.add_argument("--until", metavar="TIME", help="only records first analysed before TIME")
     p.add_argument("--rule-set", action="append", metavar="NAME[@REVISION]",

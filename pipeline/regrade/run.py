@@ -83,6 +83,8 @@ class Outcome:
     stats: RunStats = field(default_factory=RunStats)
     counts: tuple[tuple[str, int], ...] = ()  # (change, cells), as the report counts them
     resumed: int = 0  # of the cells applied, those a run cut short had recorded already
+    # closed lots the selection took in part, taken whole: (lot, inputs selected, inputs)
+    widened: tuple[tuple[str, int, int], ...] = ()
 
     @property
     def changes(self) -> tuple[CellChange, ...]:
@@ -134,6 +136,7 @@ def regrade_station(
     before = ledger.regrades.judged_before(resumed.id) if resumed is not None else {}
     decided = ledger.regrades.decided(resumed.id) if resumed is not None else {}
     items = select_inputs(ledger, settings, selection, before=before)
+    items, widened = _closed_lots_whole(ledger, settings, items, before)
     stats = RunStats()
     folder = regrades_folder(settings)
     folder.mkdir(parents=True, exist_ok=True)
@@ -148,7 +151,8 @@ def regrade_station(
         lots.append(_lot_changes(ledger, lot, new_docs, refused, rulebook, before, decided))
     rule_sets = _rule_sets(rulebook)
     data = _report_input(settings, lots, rulebook, rules.digest, selection, len(items), now,
-                         applied=False, regrade_id=None, run_by=run_by, reason=reason)
+                         applied=False, regrade_id=None, run_by=run_by, reason=reason,
+                         widened=widened)
     regrade_id = None
     applied = 0
     if apply and (resumed is not None or any(c for lot in lots for c in lot.changes)):
@@ -160,7 +164,7 @@ def regrade_station(
                          decided=set(decided))
         data = _report_input(settings, lots, rulebook, rules.digest, selection, len(items),
                              row.started_at, applied=True, regrade_id=row.id,
-                             run_by=row.run_by, reason=row.reason)
+                             run_by=row.run_by, reason=row.reason, widened=widened)
     stamp = now.astimezone(datetime.UTC).strftime("%Y%m%dT%H%M%SZ")
     target = out or folder
     stem = f"regrade-{regrade_id}" if regrade_id is not None else f"dry-run-{stamp}"
@@ -172,7 +176,40 @@ def regrade_station(
         if mail and settings.routing.digests_to:
             _queue_summary(settings, ledger, data, regrade_id, pdf_path, now)
     return Outcome(tuple(lots), len(items), pdf_path, csv_path, regrade_id, applied, stats,
-                   tuple(counts(data.changed)), len(decided))
+                   tuple(counts(data.changed)), len(decided), tuple(widened))
+
+
+def _closed_lots_whole(
+    ledger: Ledger,
+    settings: Settings,
+    items: Sequence[Archived],
+    before: Mapping[int, ResultRow],
+) -> tuple[list[Archived], list[tuple[str, int, int]]]:
+    """The selected inputs with every input that counts in each closed lot they touch.
+
+    A closed lot's screens compare each of its cells with the others (their limits come
+    from the cells that pass), so a cell of it is decided again only with the whole lot
+    judged under the same rules: a part of the lot under the new rules and the rest under
+    the old would hold or release cells nobody selected, for no change of their own.
+    Returns the inputs, oldest first, and (lot, inputs selected, inputs) of each lot widened.
+    """
+    selected: dict[str, list[Archived]] = {}
+    for item in items:
+        selected.setdefault(item.lot, []).append(item)
+    out = list(items)
+    widened = []
+    for lot, chosen in sorted(selected.items()):
+        if ledger.lots.get(lot).closed_at is None:
+            continue
+        whole = select_inputs(ledger, settings, Selection(lots=(lot,)), before=before)
+        have = {item.sha256 for item in chosen}
+        more = [item for item in whole if item.sha256 not in have]
+        if more:
+            out += more
+            widened.append((lot, len(chosen), len(chosen) + len(more)))
+    if widened:
+        out.sort(key=lambda item: item.analysed_at or datetime.datetime.min.replace(tzinfo=datetime.UTC))
+    return out, widened
 
 
 def _judge(
@@ -281,6 +318,7 @@ def _report_input(
     regrade_id: int | None,
     run_by: str,
     reason: str,
+    widened: Sequence[tuple[str, int, int]] = (),
 ) -> RegradeReportInput:
     changed = tuple(
         ChangedCell(
@@ -297,11 +335,20 @@ def _report_input(
     families = {r.family for r in rulebook.rule_sets}
     return RegradeReportInput(
         station=settings.station_name, run_by=run_by or os.environ.get("USER", "") or "-",
-        reason=reason or "dry run", selection=selection.words(), started_at=now, applied=applied,
+        reason=reason or "dry run", selection=_selection_words(selection, widened),
+        started_at=now, applied=applied,
         regrade_id=regrade_id, rule_sets=tuple(_rule_sets(rulebook)), rules_digest=rules_digest,
         inputs=inputs, cells=sum(lot.cells for lot in lots), changed=changed, refused=refused,
         family=families.pop() if len(families) == 1 else None,
     )
+
+
+def _selection_words(selection: Selection, widened: Sequence[tuple[str, int, int]]) -> str:
+    """The selection as the report states it: with the closed lots it took whole, if any."""
+    if not widened:
+        return selection.words()
+    lots = ", ".join(lot for lot, _, _ in widened)
+    return f"{selection.words()}; closed lots taken whole (their screens need every cell): {lots}"
 
 
 def _checks(doc: Mapping[str, Any]) -> tuple[CheckRowData, ...]:
