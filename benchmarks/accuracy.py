@@ -22,10 +22,10 @@ import sys
 
 import numpy as np
 
+from pipeline.acceptance.results import CellResult
 from pipeline.demo import cycletext, synth
 from pipeline.demo import lots as demo
 from pipeline.demo.channel import NOISELESS, Channel
-from pipeline.model import CellResult
 from pipeline.rulebook.book import load_rules_dir
 from pipeline.runner import judge
 from pipeline.shipped import RULES_DIR

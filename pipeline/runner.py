@@ -14,18 +14,10 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from pipeline import __version__
+from pipeline.acceptance.results import CellResult, RuleSetRef, VerdictKind
+from pipeline.acceptance.rules import WHOLE_PROGRAM
 from pipeline.errors import FormgateError, InputError
-from pipeline.model import (
-    DEFAULT_ACCURACY,
-    WHOLE_PROGRAM,
-    AccuracyClass,
-    CellResult,
-    ChannelClasses,
-    RuleSetRef,
-    SourceRef,
-    Trace,
-    VerdictKind,
-)
+from pipeline.model import DEFAULT_ACCURACY, AccuracyClass, ChannelClasses, SourceRef, Trace
 from pipeline.names import safe_name
 from pipeline.read.cyclefile import file_stages, read_cycle_file
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES

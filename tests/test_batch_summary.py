@@ -11,9 +11,9 @@ from pathlib import Path
 
 import pytest
 
+from pipeline.acceptance.results import CellResult
 from pipeline.cli.main import main
 from pipeline.demo.lots import DEMO_CELLS, demo_file_bytes
-from pipeline.model import CellResult
 from pipeline.report.summary import summary_table
 from pipeline.rulebook.book import load_rules_dir
 from pipeline.runner import judge

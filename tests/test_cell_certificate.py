@@ -20,7 +20,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from pypdf import PdfReader
 
-from pipeline.model import RuleSetRef
+from pipeline.acceptance.results import RuleSetRef
 from pipeline.report import cellcertificate, cellresult, pdf
 from pipeline.report.cellsummary import (
     AgingEntry,

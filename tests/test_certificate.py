@@ -11,7 +11,9 @@ from collections.abc import Callable, Iterator
 import jinja2
 import pytest
 
-from pipeline.model import CellResult, Hazard, Note, Outcome, Severity, SourceRef, VerdictKind, Window
+from pipeline.acceptance.results import CellResult, Outcome, VerdictKind
+from pipeline.acceptance.rules import Hazard, Severity, Window
+from pipeline.model import Note, SourceRef
 from pipeline.report import certificate
 from pipeline.report.certificate import (
     DASH,

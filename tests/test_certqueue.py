@@ -15,9 +15,9 @@ from pathlib import Path
 
 import pytest
 
+from pipeline.acceptance.results import CellResult, VerdictKind
 from pipeline.demo.lots import ALL_DEMO_CELLS, demo_file_bytes
 from pipeline.ledger.ledger import Ledger
-from pipeline.model import CellResult, VerdictKind
 from pipeline.report.result import to_json
 from pipeline.rulebook.book import load_rules_dir
 from pipeline.runner import judge

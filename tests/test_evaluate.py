@@ -11,22 +11,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.results import Outcome, VerdictKind
+from pipeline.acceptance.rules import CellType, Hazard, Rule, RuleSet, Severity, Window
 from pipeline.judge.evaluate import decision_line, evaluate, summarise
 from pipeline.judge.metricdefs import METRIC_NAMES
 from pipeline.judge.program import INCOMPLETE
-from pipeline.model import (
-    CellMetrics,
-    CellType,
-    Hazard,
-    Note,
-    Outcome,
-    PlateauSettings,
-    Rule,
-    RuleSet,
-    Severity,
-    VerdictKind,
-    Window,
-)
+from pipeline.model import CellMetrics, Note, PlateauSettings
 from pipeline.report import hazards
 from pipeline.rulebook.book import load_rule_set
 from tests.conftest import DATA_DIR, REPO

@@ -9,9 +9,10 @@ import xml.etree.ElementTree as ET
 import numpy as np
 import pytest
 
+from pipeline.acceptance.rules import Window
 from pipeline.demo import cycletext
 from pipeline.demo import lots as demo
-from pipeline.model import Curve, CycleMetrics, RecordView, RestView, StepKind, StepSpan, Window
+from pipeline.model import Curve, CycleMetrics, RecordView, RestView, StepKind, StepSpan
 from pipeline.report import evidence
 from pipeline.report.certificate import build_context
 from pipeline.rulebook.book import load_rules_dir

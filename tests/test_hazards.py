@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from pipeline.model import Hazard
+from pipeline.acceptance.rules import Hazard
 from pipeline.report import hazards
 
 

@@ -30,7 +30,7 @@ FORBIDDEN: Mapping[str, tuple[str, ...]] = {
     "rulebook": ("report", "mail", "ledger", "station", "plant", "demo", "cli", "runner"),
     "report": ("mail", "ledger", "station", "plant", "demo", "cli", "runner"),
     "mail": ("ledger", "station", "plant", "demo", "cli", "runner"),
-    # the ledger stores what others decide: the model's and the readers' records only
+    # the ledger stores what others decide: the model's, acceptance's and the readers' records only
     "ledger": ("judge", "rulebook", "report", "mail", "station", "plant", "demo", "cli", "runner"),
     # the plant database: the ledger forwarded, and cells of several stations decided with
     # the core's own logic; the station runs its feed, the command line asks it
@@ -43,8 +43,10 @@ FORBIDDEN: Mapping[str, tuple[str, ...]] = {
     "demo": ("cli",),
     "runner": ("ledger", "station", "mail", "demo", "cli"),
     # the records everyone shares, and the small helpers at the top of the package (names,
-    # careful writing, where the shipped files are), import nothing of the package above them
-    "model": SHARED_BARS,
+    # careful writing, where the shipped files are), import nothing of the package above them;
+    # the rules' and results' records build on the model's, never the other way round
+    "model": (*SHARED_BARS, "acceptance"),
+    "acceptance": SHARED_BARS,
     "errors": SHARED_BARS,
     "names": SHARED_BARS,
     "writing": SHARED_BARS,
@@ -207,9 +209,10 @@ def test_the_check_catches_a_circle() -> None:
 
 
 def test_the_ledger_imports_only_the_records_it_stores() -> None:
-    """The ledger keeps what the others decide: it may use the model, the errors and the
-    readers' records (aging readings), and nothing that composes, judges or sends."""
-    allowed_parts = {"ledger", "model", "errors"}
+    """The ledger keeps what the others decide: it may use the model, the rules' and results'
+    records (acceptance), the errors and the readers' records (aging readings), and nothing
+    that composes, judges or sends."""
+    allowed_parts = {"ledger", "model", "acceptance", "errors"}
     found = [
         f"{module} imports {target}"
         for module, targets in sorted(graph(package_sources()).items())
@@ -218,3 +221,37 @@ def test_the_ledger_imports_only_the_records_it_stores() -> None:
         if part(target) not in allowed_parts and target != "pipeline.read.readings"
     ]
     assert found == []
+
+
+# The package's size limits: few modules loose at the top, few long modules and none too
+# long, and the station (its settings included) no more than its share of the package.
+MOST_LOOSE = 8  # modules directly in pipeline/, __init__ and __main__ counted
+LONG, MOST_LONG, TOO_LONG = 600, 2, 800  # lines
+STATION_SHARE = 0.28
+
+
+def module_lines() -> dict[Path, int]:
+    """Every module of the package and its number of lines."""
+    return {p: len(p.read_text(encoding="utf-8").splitlines()) for p in sorted(PACKAGE.rglob("*.py"))}
+
+
+def test_at_most_eight_modules_sit_loose_at_the_top_of_the_package() -> None:
+    loose = sorted(p.name for p in PACKAGE.glob("*.py"))
+    assert len(loose) <= MOST_LOOSE, loose
+
+
+def test_few_modules_are_long_none_too_long_and_each_long_one_says_why_it_is_one_piece() -> None:
+    lines = module_lines()
+    long = [p for p, n in lines.items() if n > LONG]
+    assert len(long) <= MOST_LONG, [f"{p.relative_to(REPO)}: {lines[p]}" for p in long]
+    assert [f"{p.relative_to(REPO)}: {n}" for p, n in lines.items() if n > TOO_LONG] == []
+    for path in long:
+        doc = ast.get_docstring(ast.parse(path.read_text(encoding="utf-8"))) or ""
+        assert "one piece" in doc.lower(), f"{path.relative_to(REPO)} does not say why it is one piece"
+
+
+def test_the_station_holds_at_most_its_share_of_the_package() -> None:
+    lines = module_lines()
+    station = sum(n for p, n in lines.items() if PACKAGE / "station" in p.parents)
+    total = sum(lines.values())
+    assert station <= STATION_SHARE * total, f"the station holds {station} of {total} lines"

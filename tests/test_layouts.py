@@ -29,6 +29,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.results import CellResult
 from pipeline.demo import cycletext
 from pipeline.demo.batch import expected_verdict
 from pipeline.demo.layouts import (
@@ -51,7 +52,7 @@ from pipeline.demo.lots import (
     demo_file_bytes,
 )
 from pipeline.errors import InputError
-from pipeline.model import CellResult, Trace
+from pipeline.model import Trace
 from pipeline.read.cyclefile import read_cycle_file
 from pipeline.read.profile import Profile, load_profile
 from pipeline.rulebook.book import RuleBook, load_rules_dir

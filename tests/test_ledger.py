@@ -17,12 +17,14 @@ from hypothesis import HealthCheck, settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, invariant, precondition, rule
 
+from pipeline.acceptance.results import CheckResult, Outcome
+from pipeline.acceptance.rules import Hazard, Severity, Window
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.migrate import LedgerError, applied_migrations, migrate, sql_migration
 from pipeline.ledger.migrations import MIGRATIONS, SCHEMA_VERSION
 from pipeline.ledger.rows import CheckRowData, InputRow
 from pipeline.mail.letters import Letter
-from pipeline.model import CheckResult, Hazard, Outcome, Severity, SourceRef, Window
+from pipeline.model import SourceRef
 
 T0 = datetime.datetime(2026, 3, 2, 6, 0, tzinfo=datetime.UTC)
 LOT = "DEMO-LOT-07"

@@ -22,8 +22,8 @@ import pandas as pd
 import pytest
 from pypdf import PdfReader
 
+from pipeline.acceptance.rules import Hazard
 from pipeline.judge.lotstats import GradeClass, ScreenSpec, WindowSpec, grade_of
-from pipeline.model import Hazard
 from pipeline.report import exportvalues, hazards, lothistogram, lotreport, lotwords
 from pipeline.report.lothistogram import histogram_edges
 from pipeline.report.lotreport import (

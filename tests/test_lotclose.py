@@ -13,12 +13,12 @@ import random
 import numpy as np
 import pytest
 
+from pipeline.acceptance.results import VerdictKind
 from pipeline.demo.aging import aging_readings, demo_aging_lot
 from pipeline.errors import FormgateError
 from pipeline.judge.aging import judge_aging
 from pipeline.judge.cellverdict import AGING, CYCLE_FILE, StageRecord, decide
 from pipeline.judge.lotclose import close_lot
-from pipeline.model import VerdictKind
 from pipeline.read.readings import ReadingFile, read_readings
 from pipeline.rulebook.book import RuleBook, load_rule_set
 

@@ -23,6 +23,7 @@ import scipy.stats
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.results import VerdictKind
 from pipeline.judge import lotscreens, lotspread, lotstats
 from pipeline.judge.lotscreens import RobustLimits, outliers, robust_limits
 from pipeline.judge.lotspread import NORMAL_MAD_SCALE, PERCENTILES, capability, distribution
@@ -36,7 +37,7 @@ from pipeline.judge.lotstats import (
     lot_statistics,
     tally,
 )
-from pipeline.model import SourceRef, VerdictKind
+from pipeline.model import SourceRef
 
 REPO = Path(__file__).resolve().parent.parent
 

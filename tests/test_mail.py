@@ -18,6 +18,8 @@ from hypothesis import given
 from hypothesis import strategies as st
 from pypdf import PdfWriter
 
+from pipeline.acceptance.results import CellResult, CheckResult, Outcome, RuleSetRef, Verdict, VerdictKind
+from pipeline.acceptance.rules import CellType, Hazard, Severity, Window
 from pipeline.mail.digest import DIGEST_NOTE, DigestRow, digest_letter
 from pipeline.mail.letters import (
     Letter,
@@ -29,19 +31,7 @@ from pipeline.mail.letters import (
     message_id_for,
     sanitize_header,
 )
-from pipeline.model import (
-    CellMetrics,
-    CellResult,
-    CellType,
-    CheckResult,
-    Hazard,
-    Outcome,
-    RuleSetRef,
-    Severity,
-    Verdict,
-    VerdictKind,
-    Window,
-)
+from pipeline.model import CellMetrics
 from pipeline.report.hazards import CAUTIONS, DATA_CHECK_NOTICE, GENERAL_CAUTION, HANDLING
 
 INPUT_SHA = "a" * 64

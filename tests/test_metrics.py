@@ -7,10 +7,11 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.rules import Program
 from pipeline.judge.metricdefs import METRIC_NAMES
 from pipeline.judge.metrics import measure
 from pipeline.judge.segmentation import split_steps
-from pipeline.model import PlateauSettings, Program, Trace
+from pipeline.model import PlateauSettings, Trace
 from tests.factories import build_trace, cc, rest, simple_formation
 
 

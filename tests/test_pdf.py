@@ -17,7 +17,7 @@ import pytest
 from pypdf import PdfReader
 from pypdf.generic import DictionaryObject
 
-from pipeline.model import CellResult
+from pipeline.acceptance.results import CellResult
 from pipeline.report import pdf
 from pipeline.report.certificate import TEMPLATES_DIR, render_html
 from tests.golden import cases
@@ -608,8 +608,8 @@ def test_every_passed_demo_cell_certified_as_a_station_does_is_one_page() -> Non
     section says), with the scope line that names the cell's own certificate: still one page."""
     import datetime
 
+    from pipeline.acceptance.results import VerdictKind
     from pipeline.demo.lots import ALL_DEMO_CELLS, demo_file_bytes
-    from pipeline.model import VerdictKind
     from pipeline.names import cell_file_stem
     from pipeline.report.result import to_json
     from pipeline.report.verification import verification_code
@@ -639,8 +639,8 @@ def test_a_passed_stage_record_certified_as_a_station_does_is_one_page() -> None
     import datetime
     import hashlib
 
+    from pipeline.acceptance.results import VerdictKind
     from pipeline.demo.lots import DEMO_STAGED_CELLS, demo_stage_files, stage_file_name
-    from pipeline.model import VerdictKind
     from pipeline.names import cell_file_stem
     from pipeline.report.result import to_json
     from pipeline.report.verification import verification_code
@@ -655,7 +655,7 @@ def test_a_passed_stage_record_certified_as_a_station_does_is_one_page() -> None
     for stage, data in demo_stage_files(cell).items():
         result = judge(data, stage_file_name(cell, stage), rulebook, analysed_at=at)
         if stage == "grading":  # as a station shows it: with the formation record beside it
-            from pipeline.model import OtherRecord
+            from pipeline.acceptance.results import OtherRecord
             other = OtherRecord(("formation",), stage_file_name(cell, "formation"),
                                 hashlib.sha256(formation).hexdigest(), "pass")
             result = dataclasses.replace(result, other_records=(other,))

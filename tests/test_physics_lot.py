@@ -25,10 +25,11 @@ import functools
 import numpy as np
 import pytest
 
+from pipeline.acceptance.results import VerdictKind
+from pipeline.acceptance.rules import Hazard
 from pipeline.demo import cycletext
 from pipeline.demo.channel import Channel, add_channel_errors
 from pipeline.judge.evaluate import summarise
-from pipeline.model import Hazard, VerdictKind
 from pipeline.rulebook.book import RuleBook, load_rule_set
 from pipeline.runner import judge
 from pipeline.shipped import RULES_DIR

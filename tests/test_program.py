@@ -4,10 +4,11 @@ from __future__ import annotations
 
 import functools
 
+from pipeline.acceptance.rules import Program
 from pipeline.demo import cycletext, lots
 from pipeline.judge.program import INCOMPLETE, MISMATCH, choose_grading
 from pipeline.judge.segmentation import split_steps
-from pipeline.model import Program, Segmentation, Trace
+from pipeline.model import Segmentation, Trace
 
 CELL = lots.DEMO_CELLS[0]  # program steps: 7 the formation discharge, 12 the grading discharge
 
@@ -110,7 +111,7 @@ def test_a_rule_set_without_a_program_holds_a_record_cut_in_its_grading_charge()
     import dataclasses
     import datetime
 
-    from pipeline.model import VerdictKind
+    from pipeline.acceptance.results import VerdictKind
     from pipeline.rulebook.book import RuleBook, load_rules_dir
     from pipeline.runner import judge
     from pipeline.shipped import RULES_DIR

@@ -15,6 +15,16 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
+from pipeline.acceptance.results import Outcome, Verdict, VerdictKind
+from pipeline.acceptance.rules import (
+    GUARDED_ACCEPTANCE,
+    GUARDED_REJECTION,
+    CellType,
+    Rule,
+    RuleSet,
+    Severity,
+    Window,
+)
 from pipeline.judge.cellverdict import outlier_phrase
 from pipeline.judge.evaluate import decision_line, evaluate, phrase
 from pipeline.judge.lotscreens import Outlier
@@ -32,20 +42,7 @@ from pipeline.judge.quantities import (
     precision,
 )
 from pipeline.mail import letters
-from pipeline.model import (
-    GUARDED_ACCEPTANCE,
-    GUARDED_REJECTION,
-    CellMetrics,
-    CellType,
-    Outcome,
-    PlateauSettings,
-    Rule,
-    RuleSet,
-    Severity,
-    Verdict,
-    VerdictKind,
-    Window,
-)
+from pipeline.model import CellMetrics, PlateauSettings
 from pipeline.report import certificate, lotreport, lotwords
 
 CT = CellType("DEMO-T", 20.0, -0.1, 5.0)

@@ -15,8 +15,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.rules import CellType
 from pipeline.errors import InputError, ProfileError
-from pipeline.model import AccuracyClass, CellType, SourceRef, Trace
+from pipeline.model import AccuracyClass, SourceRef, Trace
 from pipeline.read.accuracy import ACCURACY_KEYS
 from pipeline.read.cyclefile import read_cycle_file
 from pipeline.read.profile import DEFAULT_PROFILE, Profile, load_profile

@@ -22,12 +22,13 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.results import CellResult, VerdictKind
+from pipeline.acceptance.rules import Hazard
 from pipeline.demo import cycletext, synth
 from pipeline.demo import lots as demo
 from pipeline.demo.channel import NOISELESS, Channel
 from pipeline.errors import FormgateError
 from pipeline.judge.evaluate import summarise
-from pipeline.model import CellResult, Hazard, VerdictKind
 from pipeline.rulebook.book import RuleBook, load_rule_set, load_rules_dir
 from pipeline.runner import judge
 from pipeline.shipped import RULES_DIR

@@ -15,6 +15,7 @@ from hypothesis import given as for_all
 from hypothesis import settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.rules import SAFETY_HAZARDS, Hazard
 from pipeline.errors import RulesError
 from pipeline.judge.cellverdict import CYCLE_FILE, CheckOut, StageRecord
 from pipeline.judge.lotclose import close_lot
@@ -29,7 +30,6 @@ from pipeline.judge.review import (
     given,
     stands,
 )
-from pipeline.model import SAFETY_HAZARDS, Hazard
 from pipeline.report.cellsummary import DecisionEntry
 from pipeline.rulebook.book import load_rule_set
 from pipeline.rulebook.schema import EXAMPLE

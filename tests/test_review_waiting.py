@@ -14,8 +14,8 @@ from pathlib import Path
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.rules import only_waiting
 from pipeline.ledger.ledger import Ledger
-from pipeline.model import only_waiting
 
 T0 = datetime.datetime(2026, 6, 1, 8, 0, tzinfo=datetime.UTC)
 REASONS = {

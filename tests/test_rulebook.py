@@ -11,19 +11,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.rules import AgingSettings, Grade, Hazard, Program, Screen, Severity, Window
 from pipeline.errors import InputError, RulesError
 from pipeline.judge.metricdefs import METRIC_NAMES
-from pipeline.model import (
-    AgingSettings,
-    Grade,
-    Hazard,
-    PlateauSettings,
-    Program,
-    Screen,
-    Severity,
-    SourceRef,
-    Window,
-)
+from pipeline.model import PlateauSettings, SourceRef
 from pipeline.rulebook.book import (
     RuleBook,
     check_rules_dir,

@@ -21,6 +21,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.results import CellResult, Outcome, VerdictKind
+from pipeline.acceptance.rules import Program
 from pipeline.demo import cycletext, synth
 from pipeline.demo import lots as demo
 from pipeline.demo.channel import NOISELESS, Channel
@@ -30,7 +32,6 @@ from pipeline.judge.evaluate import evaluate
 from pipeline.judge.metricdefs import judged_on
 from pipeline.judge.program import INCOMPLETE
 from pipeline.judge.record_end import looks_cut
-from pipeline.model import CellResult, Outcome, Program, VerdictKind
 from pipeline.read.profile import load_profile
 from pipeline.report.certificate import build_context
 from pipeline.report.result import schema_text, to_document

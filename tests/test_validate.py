@@ -9,9 +9,10 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from pipeline.acceptance.rules import CellType
 from pipeline.errors import InputError
 from pipeline.judge.metricdefs import METRIC_NAMES
-from pipeline.model import CellType, Note, SourceRef, Trace
+from pipeline.model import Note, SourceRef, Trace
 from pipeline.read.validate import CAPACITY_METRICS, drop_invalid_rows, validate_trace
 
 # Invented cell type; plausibility bounds as a rule set would give them.

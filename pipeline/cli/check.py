@@ -19,7 +19,7 @@ from pipeline.cli.starting import importing
 from pipeline.errors import FormgateError
 
 if TYPE_CHECKING:
-    from pipeline.model import CellResult
+    from pipeline.acceptance.results import CellResult
     from pipeline.runner import FileOutcome
 
 
@@ -60,7 +60,7 @@ def _reason(outcome: FileOutcome) -> str:
 
 def _stage_words(result: CellResult) -> str:
     """' and stage (grading)' for a file of one stage; '' for a file of the whole program."""
-    from pipeline.model import WHOLE_PROGRAM
+    from pipeline.acceptance.rules import WHOLE_PROGRAM
 
     if tuple(result.stages) == WHOLE_PROGRAM:
         return ""

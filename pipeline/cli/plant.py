@@ -23,9 +23,9 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from pipeline.acceptance.rules import STAGES
 from pipeline.cli.exits import EXIT_OK, EXIT_USER
 from pipeline.errors import FormgateError
-from pipeline.model import STAGES
 
 
 def _connect(args: argparse.Namespace) -> Any:

@@ -17,10 +17,10 @@ import getpass
 import sys
 from typing import Any
 
+from pipeline.acceptance.rules import STAGES
 from pipeline.cli.exits import EXIT_OK
 from pipeline.cli.lots import _known_lot, _open
 from pipeline.errors import FormgateError
-from pipeline.model import STAGES
 
 
 def cmd_review_list(args: argparse.Namespace) -> int:

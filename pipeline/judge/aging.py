@@ -13,9 +13,11 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
+from pipeline.acceptance.results import Verdict
+from pipeline.acceptance.rules import CellType, RuleSet
 from pipeline.judge.evaluate import evaluate
 from pipeline.judge.kvalue import KValue, NotMade, k_value
-from pipeline.model import DEFAULT_ACCURACY, CellMetrics, CellType, Note, RuleSet, Verdict
+from pipeline.model import DEFAULT_ACCURACY, CellMetrics, Note
 from pipeline.read.readings import Reading
 
 K_VALUE = "k_value_mV_per_day"

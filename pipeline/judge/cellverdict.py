@@ -17,9 +17,9 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+from pipeline.acceptance.rules import STAGES, WAITING_FOR_STAGE, Window
 from pipeline.judge.lotscreens import Outlier
 from pipeline.judge.quantities import format_value, precision
-from pipeline.model import STAGES, WAITING_FOR_STAGE, Window
 
 # What each kind of record covers.
 CYCLE_FILE: tuple[str, ...] = ("formation", "grading")

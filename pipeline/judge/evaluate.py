@@ -17,6 +17,19 @@ import dataclasses
 import math
 from collections.abc import Iterable
 
+from pipeline.acceptance.results import CheckResult, Outcome, Verdict, VerdictKind
+from pipeline.acceptance.rules import (
+    GUARDED_ACCEPTANCE,
+    GUARDED_REJECTION,
+    SIMPLE,
+    CellType,
+    Hazard,
+    Program,
+    Rule,
+    RuleSet,
+    Severity,
+    Window,
+)
 from pipeline.judge.metricdefs import FORMATION, GRADING, judged_on
 from pipeline.judge.program import HOLDING_CODES, INCOMPLETE, MISMATCH
 from pipeline.judge.quantities import (
@@ -27,24 +40,7 @@ from pipeline.judge.quantities import (
     nearer_bound,
     precision,
 )
-from pipeline.model import (
-    GUARDED_ACCEPTANCE,
-    GUARDED_REJECTION,
-    SIMPLE,
-    CellMetrics,
-    CellType,
-    CheckResult,
-    Hazard,
-    Note,
-    Outcome,
-    Program,
-    Rule,
-    RuleSet,
-    Severity,
-    Verdict,
-    VerdictKind,
-    Window,
-)
+from pipeline.model import CellMetrics, Note
 
 WHOLE: tuple[str, ...] = (FORMATION, GRADING)
 

@@ -19,6 +19,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, cast
 
+from pipeline.acceptance.rules import CellType, RuleSet
 from pipeline.errors import FormgateError
 from pipeline.judge.aging import judge_aging
 from pipeline.judge.cellverdict import (
@@ -45,7 +46,6 @@ from pipeline.judge.lotstats import (
 from pipeline.judge.metricdefs import RULE_BY_NAME
 from pipeline.judge.program import INCOMPLETE
 from pipeline.judge.review import Reviewed, held_after_release, screens_after_release, stands
-from pipeline.model import CellType, RuleSet
 from pipeline.read.readings import Reading, ReadingFile
 from pipeline.rulebook.book import RuleBook
 

@@ -29,6 +29,7 @@ from typing import Final, Literal
 
 import numpy as np
 
+from pipeline.acceptance.results import VerdictKind
 from pipeline.judge.lotscreens import (
     Outlier,
     RobustLimits,
@@ -42,7 +43,7 @@ from pipeline.judge.lotspread import (
     capability_of_measured,
     distribution_of_measured,
 )
-from pipeline.model import FloatArray, SourceRef, VerdictKind, frozen_mapping
+from pipeline.model import FloatArray, SourceRef, frozen_mapping
 
 # How verdicts are listed in a tally: the ones that need someone's attention first.
 VERDICT_ORDER: Final = (

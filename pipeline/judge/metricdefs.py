@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-# The stages of a cell's making (as model.STAGES): which record a metric is measured on.
+# The stages of a cell's making (as acceptance.rules.STAGES): which record a metric is measured on.
 FORMATION, AGING, GRADING = "formation", "aging", "grading"
 EVERY_CYCLE_FILE: tuple[str, ...] = (FORMATION, GRADING)
 

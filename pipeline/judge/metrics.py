@@ -13,6 +13,7 @@ import math
 
 import numpy as np
 
+from pipeline.acceptance.rules import Program
 from pipeline.judge.medians import median
 from pipeline.judge.metricdefs import FORMATION, GRADING, METRIC_NAMES, judged_on
 from pipeline.judge.plateaus import find_plateaus
@@ -37,7 +38,6 @@ from pipeline.model import (
     Note,
     Plateau,
     PlateauSettings,
-    Program,
     PulseView,
     RecordView,
     RestView,

@@ -18,18 +18,9 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass
 
+from pipeline.acceptance.rules import Program
 from pipeline.judge.metricdefs import FORMATION, GRADING
-from pipeline.model import (
-    Cycle,
-    Note,
-    Program,
-    Segmentation,
-    SourceRef,
-    Step,
-    StepKind,
-    StepMode,
-    Trace,
-)
+from pipeline.model import Cycle, Note, Segmentation, SourceRef, Step, StepKind, StepMode, Trace
 
 INCOMPLETE = "program_incomplete"
 MISMATCH = "program_mismatch"

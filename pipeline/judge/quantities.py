@@ -20,8 +20,8 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 
+from pipeline.acceptance.rules import Window
 from pipeline.judge.metricdefs import RULE_BY_NAME
-from pipeline.model import Window
 
 DASH = "\N{EM DASH}"  # shown for a value that was not measured
 MINUS = "\N{MINUS SIGN}"

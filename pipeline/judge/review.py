@@ -24,11 +24,11 @@ from __future__ import annotations
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 
+from pipeline.acceptance.rules import SAFETY_HAZARDS, WAITING_FOR_STAGE, only_waiting
 from pipeline.errors import FormgateError
 from pipeline.judge.cellverdict import StageRecord, outlier_phrase
 from pipeline.judge.lotscreens import Outlier, RobustLimits, outliers
 from pipeline.judge.metricdefs import RULE_BY_NAME
-from pipeline.model import SAFETY_HAZARDS, WAITING_FOR_STAGE, only_waiting
 
 ACTIONS = ("release", "reject", "retest")
 

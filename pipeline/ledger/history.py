@@ -17,7 +17,8 @@ import json
 import sqlite3
 from pathlib import Path
 
-from pipeline.model import WHOLE_PROGRAM, CellResult, OtherRecord, RecordPlace
+from pipeline.acceptance.results import CellResult, OtherRecord, RecordPlace
+from pipeline.acceptance.rules import WHOLE_PROGRAM
 
 
 def _connect(ledger: Path) -> sqlite3.Connection | None:

@@ -15,6 +15,7 @@ import datetime
 import json
 from collections.abc import Callable, Sequence
 
+from pipeline.acceptance.rules import only_waiting
 from pipeline.ledger.chain import link
 from pipeline.ledger.connection import Connection
 from pipeline.ledger.decisions import Decisions
@@ -28,7 +29,6 @@ from pipeline.ledger.rows import (
     review_row,
     utc_text,
 )
-from pipeline.model import only_waiting
 
 ACTIONS = ("release", "reject", "retest")
 

@@ -17,7 +17,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Protocol
 
-from pipeline.model import CheckResult
+from pipeline.acceptance.results import CheckResult
 from pipeline.read.readings import Reading
 
 INPUT_STATES = ("claimed", "judged", "published", "archived", "quarantined", "duplicate")

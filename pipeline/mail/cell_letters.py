@@ -13,6 +13,7 @@ from __future__ import annotations
 import datetime
 from collections.abc import Sequence
 
+from pipeline.acceptance.rules import Hazard
 from pipeline.mail.letters import (
     ID_LEN,
     Letter,
@@ -26,7 +27,6 @@ from pipeline.mail.letters import (
     message_id_for,
     sanitize_header,
 )
-from pipeline.model import Hazard
 
 _WORDS = {
     "fail": "FAIL. Do not release this cell; handle it with care.",

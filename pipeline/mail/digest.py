@@ -14,6 +14,7 @@ import textwrap
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+from pipeline.acceptance.rules import Hazard
 from pipeline.judge.quantities import format_value
 from pipeline.mail.letters import (
     ID_LEN,
@@ -27,7 +28,6 @@ from pipeline.mail.letters import (
     message_id_for,
     sanitize_header,
 )
-from pipeline.model import Hazard
 from pipeline.report.hazards import CAUTIONS
 
 
@@ -37,7 +37,7 @@ class DigestRow:
 
     ``reason`` is the deciding line of a fail or hold (empty for a pass);
     ``certificate_path`` is a path or a link, as the station builds it; ``hazards``: the
-    hazards its decision carries (values of :class:`pipeline.model.Hazard`), which a cell a
+    hazards its decision carries (values of :class:`pipeline.acceptance.rules.Hazard`), which a cell a
     person released keeps, and with them their cautions.
     """
 

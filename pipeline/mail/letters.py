@@ -28,10 +28,12 @@ from dataclasses import dataclass
 from email.message import EmailMessage
 from typing import Literal
 
+from pipeline.acceptance.results import CellResult, CheckResult, Outcome, VerdictKind
+from pipeline.acceptance.rules import Hazard
 from pipeline.errors import FormgateError
 from pipeline.judge.evaluate import decision_line
 from pipeline.judge.quantities import format_uncertain, format_window, precision
-from pipeline.model import CellResult, CheckResult, Hazard, Outcome, SourceRef, VerdictKind
+from pipeline.model import SourceRef
 from pipeline.report.hazards import CAUTIONS, DATA_CHECK_NOTICE, HANDLING, general_caution
 
 LetterKind = Literal["failure", "hold", "digest", "alert"]

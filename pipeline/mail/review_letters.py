@@ -17,6 +17,7 @@ import datetime
 from collections.abc import Sequence
 from dataclasses import dataclass
 
+from pipeline.acceptance.rules import Hazard
 from pipeline.mail.letters import (
     ID_LEN,
     Letter,
@@ -30,7 +31,6 @@ from pipeline.mail.letters import (
     message_id_for,
     sanitize_header,
 )
-from pipeline.model import Hazard
 
 
 @dataclass(frozen=True, slots=True)
@@ -39,7 +39,7 @@ class ReviewFacts:
 
     ``was``: (verdict, reason, when decided) of the decision the review answered; ``now``:
     (verdict, reason) of the decision it gave; ``hazards``: the cell's hazards (values of
-    :class:`pipeline.model.Hazard`); ``review_id``: its row in ``kept_in`` (a station's ledger,
+    :class:`pipeline.acceptance.rules.Hazard`); ``review_id``: its row in ``kept_in`` (a station's ledger,
     or the plant database for a review made there); ``certificate``: the link of the cell's
     own certificate, which shows the review ('' for none).
     """

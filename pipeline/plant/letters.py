@@ -32,12 +32,12 @@ from typing import Any
 
 import psycopg
 
+from pipeline.acceptance.rules import WAITING_FOR_STAGE
 from pipeline.errors import FormgateError
 from pipeline.mail.cell_letters import decision_letter, superseded_letter
 from pipeline.mail.letters import Letter, build_message
 from pipeline.mail.review_letters import ReviewFacts, review_letter
 from pipeline.mail.smtp import SmtpSettings, send
-from pipeline.model import WAITING_FOR_STAGE
 from pipeline.plant.cells import Conn, rule_book
 from pipeline.plant.tables import SCHEMA
 

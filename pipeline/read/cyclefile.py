@@ -17,7 +17,8 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 
-from pipeline.model import CYCLE_FILE_STAGES, WHOLE_PROGRAM, Trace
+from pipeline.acceptance.rules import CYCLE_FILE_STAGES, WHOLE_PROGRAM
+from pipeline.model import Trace
 from pipeline.read.convert import to_trace
 from pipeline.read.cyclehead import (
     MAX_UNCOMPRESSED_BYTES,

@@ -17,8 +17,9 @@ import csv
 import zlib
 from dataclasses import dataclass, field
 
+from pipeline.acceptance.rules import CYCLE_FILE_STAGES
 from pipeline.errors import InputError
-from pipeline.model import CYCLE_FILE_STAGES, SourceRef
+from pipeline.model import SourceRef
 from pipeline.read.bounds import MAX_METADATA_ENTRIES, check_length, fits, shown, too_long
 from pipeline.read.gunzip import CutShort, PastCap, inflated
 from pipeline.read.profile import Profile

@@ -39,7 +39,7 @@ V1_COLUMNS: Mapping[str, str] = frozen_mapping(
     }
 )
 REQUIRED_METADATA: tuple[str, ...] = ("cell_id", "lot", "cell_type")
-# ``stage``: the stage of the cell's making the file holds (model.CYCLE_FILE_STAGES); left
+# ``stage``: the stage of the cell's making the file holds (acceptance.rules.CYCLE_FILE_STAGES); left
 # out, the file holds the whole program.
 V1_METADATA: tuple[str, ...] = (*REQUIRED_METADATA, "channel", "station", "program", "started_at", "stage")
 

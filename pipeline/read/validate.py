@@ -21,8 +21,9 @@ import math
 import numpy as np
 import numpy.typing as npt
 
+from pipeline.acceptance.rules import CellType
 from pipeline.errors import InputError
-from pipeline.model import CellType, FloatArray, Note, SourceRef, Trace
+from pipeline.model import FloatArray, Note, SourceRef, Trace
 
 Mask = npt.NDArray[np.bool_]
 # Row numbers (0-based) into a Trace; a range when every row is kept (no array to build).

@@ -13,8 +13,8 @@ from __future__ import annotations
 import datetime
 import math
 
+from pipeline.acceptance.rules import Hazard, only_waiting
 from pipeline.judge.quantities import DASH, format_uncertain, format_value, significant
-from pipeline.model import Hazard, only_waiting
 from pipeline.report import hazards, verification
 from pipeline.report.cellsummary import (
     AgingEntry,

@@ -13,7 +13,7 @@ import datetime
 import json
 from typing import Any
 
-from pipeline.model import FAMILIES, STAGES
+from pipeline.acceptance.rules import FAMILIES, STAGES
 from pipeline.report.cellsummary import (
     AgingEntry,
     CellSummary,

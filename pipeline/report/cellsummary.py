@@ -13,7 +13,8 @@ from __future__ import annotations
 import datetime
 from dataclasses import dataclass
 
-from pipeline.model import SAFETY_HAZARDS, WAITING_FOR_STAGE, RuleSetRef
+from pipeline.acceptance.results import RuleSetRef
+from pipeline.acceptance.rules import SAFETY_HAZARDS, WAITING_FOR_STAGE
 
 # What a stage record shows of its metrics on the cell certificate: the values a quality
 # engineer reads first for each stage (common practice), in this order.

@@ -18,6 +18,8 @@ import jinja2
 from markupsafe import Markup
 
 from pipeline import shipped
+from pipeline.acceptance.results import CellResult, CheckResult, Outcome, VerdictKind
+from pipeline.acceptance.rules import SIMPLE, WHOLE_PROGRAM, Hazard, Severity
 from pipeline.judge.evaluate import deciding, phrase, program_findings
 from pipeline.judge.metricdefs import BY_NAME, METRICS
 
@@ -35,21 +37,7 @@ from pipeline.judge.quantities import format_value as format_value  # and this
 from pipeline.judge.quantities import percent as _percent
 from pipeline.judge.quantities import signed as _signed
 from pipeline.judge.quantities import with_unit as _with_unit
-from pipeline.model import (
-    SIMPLE,
-    WHOLE_PROGRAM,
-    CellResult,
-    CheckResult,
-    CurrentBand,
-    Curve,
-    CycleMetrics,
-    Hazard,
-    Note,
-    Outcome,
-    Plateau,
-    Severity,
-    VerdictKind,
-)
+from pipeline.model import CurrentBand, Curve, CycleMetrics, Note, Plateau
 from pipeline.report import evidence, plots, verification
 from pipeline.report.result import to_json
 

@@ -14,8 +14,9 @@ from __future__ import annotations
 
 import numpy as np
 
+from pipeline.acceptance.rules import Window
 from pipeline.judge.thin import FloatArray, decimate
-from pipeline.model import Curve, CycleMetrics, PulseView, RecordView, RestView, StepKind, Window
+from pipeline.model import Curve, CycleMetrics, PulseView, RecordView, RestView, StepKind
 from pipeline.report.svgplot import (
     AXIS,
     CURVE,

@@ -13,7 +13,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 from types import MappingProxyType
 
-from pipeline.model import Hazard
+from pipeline.acceptance.rules import Hazard
 
 
 @dataclass(frozen=True, slots=True)

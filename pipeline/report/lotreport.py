@@ -34,6 +34,7 @@ from typing import Final
 import jinja2
 from markupsafe import Markup
 
+from pipeline.acceptance.rules import Hazard, Window
 from pipeline.judge.channels import ChannelRecord, ChannelScreen
 from pipeline.judge.lotscreens import Outlier, RobustLimits
 from pipeline.judge.lotstats import (
@@ -45,7 +46,7 @@ from pipeline.judge.lotstats import (
     lot_statistics,
 )
 from pipeline.judge.quantities import DASH, format_spread, format_value, precision
-from pipeline.model import Hazard, Window, frozen_mapping
+from pipeline.model import frozen_mapping
 from pipeline.report import hazards, pdf
 from pipeline.report.certificate import HAZARD_WORDS, TEMPLATES_DIR, format_time
 from pipeline.report.exportvalues import U_SUFFIX, round_to_resolution, round_uncertainty
@@ -87,7 +88,7 @@ class LotCell:
 
     ``verdict`` is pass, fail, hold or error; ``reason`` the deciding line of a fail or a
     hold ("" for a pass); ``hazards`` the hazards of its failed checks (values of
-    :class:`pipeline.model.Hazard`); ``records`` the files its decision rests on, as
+    :class:`pipeline.acceptance.rules.Hazard`); ``records`` the files its decision rests on, as
     (stage or file kind, file name, SHA-256); ``decided_at`` when it was decided (aware);
     ``cell_type`` its type; ``places`` the (channel, station) of each cycle-file record, as
     the files' metadata name them ("" where a file names none).

@@ -12,10 +12,10 @@ from __future__ import annotations
 
 from typing import Final
 
+from pipeline.acceptance.rules import Window
 from pipeline.judge.lotspread import Capability
 from pipeline.judge.lotstats import WindowSpec
 from pipeline.judge.quantities import DASH, format_spread, format_value, format_window
-from pipeline.model import Window
 
 # Cpk below 1.33 is the usual minimum for an established process (common practice).
 CPK_MINIMUM: Final = 1.33

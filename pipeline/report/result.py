@@ -10,21 +10,11 @@ import json
 import math
 from typing import Any
 
+from pipeline.acceptance.results import CellResult, CheckResult, Outcome
+from pipeline.acceptance.rules import DECISION_RULES, FAMILIES, WHOLE_PROGRAM
 from pipeline.judge.evaluate import decision_line
 from pipeline.judge.metricdefs import METRICS
-from pipeline.model import (
-    DECISION_RULES,
-    FAMILIES,
-    WHOLE_PROGRAM,
-    AccuracyClass,
-    CellResult,
-    CheckResult,
-    CurrentBand,
-    CycleMetrics,
-    Note,
-    Outcome,
-    Plateau,
-)
+from pipeline.model import AccuracyClass, CurrentBand, CycleMetrics, Note, Plateau
 from pipeline.read.accuracy import ACCURACY_KEYS as ACCURACY_FILE_KEYS
 from pipeline.read.accuracy import accuracy_from
 

@@ -11,9 +11,9 @@ import math
 from collections import Counter
 from collections.abc import Sequence
 
+from pipeline.acceptance.results import CellResult
 from pipeline.judge.evaluate import decision_line
 from pipeline.judge.quantities import DASH, metric_format
-from pipeline.model import CellResult
 
 COLUMNS = (
     ("cell", 14, None),

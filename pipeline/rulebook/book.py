@@ -21,22 +21,21 @@ from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import cast
 
-from pipeline.errors import FormgateError, InputError, RulesError
-from pipeline.judge.metricdefs import RULE_BY_NAME as BY_NAME
-from pipeline.judge.metricdefs import RULE_METRIC_NAMES as METRIC_NAMES
-from pipeline.model import (
+from pipeline.acceptance.rules import (
     SIMPLE,
     AgingSettings,
     CellType,
     Hazard,
-    PlateauSettings,
     Program,
     Rule,
     RuleSet,
     Severity,
-    SourceRef,
     Window,
 )
+from pipeline.errors import FormgateError, InputError, RulesError
+from pipeline.judge.metricdefs import RULE_BY_NAME as BY_NAME
+from pipeline.judge.metricdefs import RULE_METRIC_NAMES as METRIC_NAMES
+from pipeline.model import PlateauSettings, SourceRef
 from pipeline.rulebook.lotrules import LotRules, lot_rules
 from pipeline.rulebook.reviewrules import release_hazards
 from pipeline.rulebook.schema import BY_TABLE, FRACTION_LIMIT, FRACTION_METRICS, TABLES

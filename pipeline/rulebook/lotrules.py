@@ -13,8 +13,8 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import cast
 
+from pipeline.acceptance.rules import STAGES, CellType, Grade, Rule, Screen
 from pipeline.judge.metricdefs import AGING_METRIC_NAMES, RULE_BY_NAME, RULE_METRIC_NAMES
-from pipeline.model import STAGES, CellType, Grade, Rule, Screen
 from pipeline.rulebook.schema import BY_TABLE
 from pipeline.rulebook.tables import Collector, Values, check_table, describe, did_you_mean, number
 

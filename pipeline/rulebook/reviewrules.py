@@ -2,7 +2,7 @@
 
 Its keys and value types pass the schema first (tables.py); here each name in
 ``release_hazards`` is checked: a safety hazard, named once. An abnormal capacity is not
-a safety hazard (pipeline.model.SAFETY_HAZARDS): a concession releases it without being
+a safety hazard (pipeline.acceptance.rules.SAFETY_HAZARDS): a concession releases it without being
 named, so naming it is refused as a sign of a misunderstanding.
 """
 
@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-from pipeline.model import SAFETY_HAZARDS, Hazard
+from pipeline.acceptance.rules import SAFETY_HAZARDS, Hazard
 from pipeline.rulebook.tables import Collector, Values, did_you_mean
 
 _PATH = ("review",)

@@ -18,8 +18,7 @@ import math
 import sys
 from dataclasses import dataclass
 
-from pipeline.judge.metricdefs import AGING_METRICS, METRICS
-from pipeline.model import (
+from pipeline.acceptance.rules import (
     DECISION_RULES,
     FAMILIES,
     GUARDED_ACCEPTANCE,
@@ -29,9 +28,10 @@ from pipeline.model import (
     SCREEN_SIDES,
     SIMPLE,
     Hazard,
-    PlateauSettings,
     Severity,
 )
+from pipeline.judge.metricdefs import AGING_METRICS, METRICS
+from pipeline.model import PlateauSettings
 
 TEXT = "text"
 ZERO_OFFSET = ("corrected", "as recorded")

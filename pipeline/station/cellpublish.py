@@ -31,6 +31,8 @@ from pathlib import Path
 from typing import Any
 
 from pipeline import __version__
+from pipeline.acceptance.results import RuleSetRef
+from pipeline.acceptance.rules import CellType, RuleSet
 from pipeline.errors import FormgateError
 from pipeline.judge.aging import K_VALUE, judge_aging
 from pipeline.judge.cellverdict import CYCLE_FILE, decide
@@ -39,7 +41,6 @@ from pipeline.judge.kvalue import KValue
 from pipeline.judge.lotclose import cell_stages
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow, PublishedRow, ResultRow, StoredReading
-from pipeline.model import CellType, RuleSet, RuleSetRef
 from pipeline.names import cell_file_stem, safe_name
 from pipeline.report.cellsummary import (
     OUTLIER,

@@ -24,13 +24,13 @@ import logging
 import threading
 from collections.abc import Callable, Iterable, Sequence
 
+from pipeline.acceptance.rules import WAITING_FOR_STAGE, only_waiting
 from pipeline.errors import FormgateError
 from pipeline.judge.cellverdict import CellDecision, decide
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import DecisionRow
 from pipeline.mail.cell_letters import decision_letter, superseded_letter
 from pipeline.mail.letters import Letter
-from pipeline.model import WAITING_FOR_STAGE, only_waiting
 from pipeline.station.digests import cell_certificate_link, cell_certificate_path
 from pipeline.station.reviewing import cell_now, review_stands
 from pipeline.station.rules_in_force import RulesInForce

@@ -37,10 +37,10 @@ from concurrent.futures import Future
 from dataclasses import dataclass
 from pathlib import Path
 
+from pipeline.acceptance.results import CellResult
 from pipeline.ledger.certificates import HELD, PASSED
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import InputRow
-from pipeline.model import CellResult
 from pipeline.names import cell_file_stem
 from pipeline.read.readings import ReadingFile
 from pipeline.station import faults

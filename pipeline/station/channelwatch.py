@@ -20,13 +20,13 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+from pipeline.acceptance.results import CellResult
 from pipeline.errors import FormgateError
 from pipeline.judge.channels import ChannelRecord, ChannelScreen, Suspect, channel_label, screen_channels
 from pipeline.ledger.channel_alerts import ChannelAlert
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import ResultRow
 from pipeline.mail.letters import alert_letter
-from pipeline.model import CellResult
 from pipeline.rulebook.book import RuleBook
 from pipeline.station.settings import Settings
 

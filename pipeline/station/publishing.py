@@ -19,12 +19,13 @@ import logging
 from collections.abc import Callable
 from pathlib import Path
 
+from pipeline.acceptance.results import CellResult, VerdictKind
+from pipeline.acceptance.rules import WHOLE_PROGRAM
 from pipeline.judge.evaluate import decision_line
 from pipeline.ledger.certificates import PRIORITY
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import CheckRowData, InputRow, ResultRow
 from pipeline.mail.letters import Letter, alert_letter, failure_letter, hold_letter
-from pipeline.model import WHOLE_PROGRAM, CellResult, VerdictKind
 from pipeline.names import fit
 from pipeline.read.readings import ReadingFile
 from pipeline.runner import result_paths

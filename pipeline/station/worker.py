@@ -11,6 +11,7 @@ docs/station.md), so a crash can never leave a certificate without its ledger ro
 
 from __future__ import annotations
 
+import dataclasses
 import datetime
 import gc
 import hashlib
@@ -22,12 +23,12 @@ import signal
 import threading
 import time
 import traceback
-import dataclasses
 from dataclasses import dataclass
 from pathlib import Path
 
+from pipeline.acceptance.results import CellResult, VerdictKind
 from pipeline.errors import FormgateError, InputError
-from pipeline.model import CellResult, ChannelClasses, SourceRef, VerdictKind
+from pipeline.model import ChannelClasses, SourceRef
 from pipeline.names import cell_file_stem
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.limits import TextLimits, check_text

@@ -20,26 +20,10 @@ from typing import NamedTuple
 
 import numpy as np
 
+from pipeline.acceptance.results import CellResult, CheckResult, Outcome, RuleSetRef, Verdict, VerdictKind
+from pipeline.acceptance.rules import CellType, Hazard, Severity, Window
 from pipeline.demo.ocp import lfp_graphite_cell
-from pipeline.model import (
-    AccuracyClass,
-    CellMetrics,
-    CellResult,
-    CellType,
-    CheckResult,
-    Curve,
-    CycleMetrics,
-    Hazard,
-    Note,
-    Outcome,
-    Plateau,
-    RuleSetRef,
-    Severity,
-    SourceRef,
-    Verdict,
-    VerdictKind,
-    Window,
-)
+from pipeline.model import AccuracyClass, CellMetrics, Curve, CycleMetrics, Note, Plateau, SourceRef
 
 NOMINAL_AH = 20.0
 GRADING_AH = 20.13

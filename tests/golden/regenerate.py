@@ -15,7 +15,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent.parent))
 
-from pipeline.model import CellResult  # noqa: E402
+from pipeline.acceptance.results import CellResult  # noqa: E402
 from pipeline.report.certificate import render_html  # noqa: E402
 from tests.golden import cases  # noqa: E402
 
