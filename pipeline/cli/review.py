@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import argparse
 import datetime
+import functools
 import getpass
 import sys
 from typing import Any
@@ -74,6 +75,7 @@ def _lot_of(ledger: Any, cell: str, lot: str | None) -> str:
 def _review(args: argparse.Namespace, action: str) -> int:
     from pipeline.judge.review import Asked
     from pipeline.rulebook.book import load_rules_dir
+    from pipeline.station.lots import report_closed_lot
     from pipeline.station.reviewing import record_review
 
     settings, ledger = _open(args.folder)
@@ -86,7 +88,8 @@ def _review(args: argparse.Namespace, action: str) -> int:
     with ledger:
         lot = _lot_of(ledger, args.cell, args.lot)
         done = record_review(settings, ledger, rulebook, lot=lot, cell_id=args.cell,
-                             asked=asked, now=now)
+                             asked=asked, now=now,
+                             report_lot=functools.partial(report_closed_lot, settings, ledger))
         certificate = _certificate(settings, ledger, rulebook, lot, args.cell, now)
     was, given = done.answered, done.decision
     print(f"cell {args.cell} of lot {lot}: review {done.review.id} by {done.review.reviewer} "

@@ -21,13 +21,11 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from pipeline.acceptance.results import CellResult
-from pipeline.errors import FormgateError
 from pipeline.judge.channels import ChannelRecord, ChannelScreen, Suspect, channel_label, screen_channels
 from pipeline.ledger.channel_alerts import ChannelAlert
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import ResultRow
 from pipeline.mail.letters import alert_letter
-from pipeline.rulebook.book import RuleBook
 from pipeline.station.settings import Settings
 
 log = logging.getLogger("formgate.station")
@@ -130,32 +128,6 @@ def suspect_note(alert: ChannelAlert | None) -> str:
     )
 
 
-def ask_retest(
-    settings: Settings, ledger: Ledger, rulebook: RuleBook | None, result: CellResult,
-    alert: ChannelAlert, *, now: datetime.datetime,
-) -> bool:
-    """``[channels] suspect_fails = "retest"``: ask, as the station, for a retest of the stage a
-    suspect channel failed, so the cell waits for a record from another channel. The failed
-    record keeps its verdict, certificate and cautions; a person may still release or reject
-    the cell. False (and logged) when the review cannot be recorded now."""
-    from pipeline.judge.review import Asked
-    from pipeline.station.reviewing import record_review
-
-    if rulebook is None or not result.stages:
-        return False
-    reason = (f"{channel_label((alert.station, alert.channel))} is suspect: test the cell again on "
-              "another channel")
-    asked = Asked("retest", f"station {settings.station_name}", reason, stage=result.stages[-1])
-    try:
-        record_review(settings, ledger, rulebook, lot=result.lot, cell_id=result.cell_id,
-                      asked=asked, now=now)
-    except FormgateError as exc:
-        log.warning("cell %s lot %s: no retest asked for the suspect channel: %s", result.cell_id,
-                    result.lot, exc)
-        return False
-    return True
-
-
 def suspect_notes(
     ledger: Ledger, rows: Sequence[ResultRow], docs: Sequence[Mapping[str, Any]], *,
     record_words: bool = True,
@@ -196,7 +168,6 @@ __all__ = [
     "DEFAULT_WATCH",
     "PASSES_PER_SCREEN",
     "ChannelWatch",
-    "ask_retest",
     "open_alert_for",
     "suspect_note",
     "suspect_notes",

@@ -275,6 +275,24 @@ def close_and_report(
     return LotOutcome(closed, report, export, tuple(changed), newly)
 
 
+def report_closed_lot(
+    settings: Settings, ledger: Ledger, rulebook: RuleBook, lot: str, now: datetime.datetime
+) -> Path | None:
+    """Write a closed lot's report and export again, as `formgate lot report` does (recorded
+    with their new hashes), so that they show a review made after the close; no digest goes
+    again (the review's own letter tells the people who were told of the hold or fail). The
+    review stands whatever happens here: a report that cannot be written now is logged, and
+    `formgate lot report` writes it later. Its path, or None. Handed to
+    reviewing.record_review as its ``report_lot``."""
+    try:
+        return close_and_report(settings, ledger, rulebook, lot, by="review", now=now,
+                                close=False).report
+    except (FormgateError, OSError) as exc:
+        log.warning("lot %s: its report and export could not be written again after the "
+                    "review (%s); formgate lot report writes them", lot, exc)
+        return None
+
+
 def lots_due(
     ledger: Ledger, rulebook: RuleBook, now: datetime.datetime
 ) -> list[str]:

@@ -21,20 +21,24 @@ from pathlib import Path
 
 from pipeline.acceptance.results import CellResult, VerdictKind
 from pipeline.acceptance.rules import WHOLE_PROGRAM
+from pipeline.errors import FormgateError
+from pipeline.judge.channels import channel_label
 from pipeline.judge.evaluate import decision_line
+from pipeline.judge.review import Asked
 from pipeline.ledger.certificates import PRIORITY
+from pipeline.ledger.channel_alerts import ChannelAlert
 from pipeline.ledger.ledger import Ledger
 from pipeline.ledger.rows import CheckRowData, InputRow, ResultRow
 from pipeline.mail.letters import Letter, alert_letter, failure_letter, hold_letter
 from pipeline.names import fit
 from pipeline.read.readings import ReadingFile
+from pipeline.rulebook.book import RuleBook
 from pipeline.runner import result_paths
 from pipeline.station import faults
 from pipeline.station.cells import CellDecisions
 from pipeline.station.certqueue import RecordCertificates
 from pipeline.station.channelwatch import (
     PASSES_PER_SCREEN,
-    ask_retest,
     open_alert_for,
     suspect_note,
     watch_channels,
@@ -42,6 +46,7 @@ from pipeline.station.channelwatch import (
 from pipeline.station.digests import cell_certificate_link, cell_certificate_path
 from pipeline.station.guard import Guard
 from pipeline.station.published_files import Written, note_kept, note_written
+from pipeline.station.reviewing import ReportLot, record_review
 from pipeline.station.setaside import NAME_RESERVE_BYTES
 from pipeline.station.settings import Settings
 from pipeline.station.worker import Output
@@ -61,8 +66,10 @@ class Publisher:
         cells: CellDecisions,
         guard: Guard,
         certificates: RecordCertificates,
+        report_lot: ReportLot | None = None,
     ) -> None:
         self.settings = settings
+        self.report_lot = report_lot  # a closed lot's report written again (lots.report_closed_lot)
         self.ledger = ledger
         self.clock = clock
         self.cells = cells
@@ -116,7 +123,8 @@ class Publisher:
         if r.verdict.kind is VerdictKind.FAIL and self.settings.channels.suspect_fails == "retest":
             alert = open_alert_for(self.ledger, r)
             if alert is not None and alert.raised_at <= r.analysed_at:  # failed on a suspect channel
-                ask_retest(self.settings, self.ledger, self.cells.rules.rulebook, r, alert, now=self.clock())
+                ask_retest(self.settings, self.ledger, self.cells.rules.rulebook, r, alert,
+                           now=self.clock(), report_lot=self.report_lot)
 
     def earlier_records(self, row: InputRow, result: CellResult) -> list[ResultRow]:
         """The cell's earlier records of the same stages from other inputs, oldest first."""
@@ -323,3 +331,27 @@ def _reason_text(row: InputRow, reason: str) -> str:
         "Fix the cause, then drop a corrected file into the inbox (the station judges new bytes;\n"
         "the same bytes again are judged again only if they were quarantined before).\n"
     )
+
+
+def ask_retest(
+    settings: Settings, ledger: Ledger, rulebook: RuleBook | None, result: CellResult,
+    alert: ChannelAlert, *, now: datetime.datetime, report_lot: ReportLot | None = None,
+) -> bool:
+    """``[channels] suspect_fails = "retest"``: ask, as the station, for a retest of the stage a
+    suspect channel failed, so the cell waits for a record from another channel. The failed
+    record keeps its verdict, certificate and cautions; a person may still release or reject
+    the cell. False (and logged) when the review cannot be recorded now. ``report_lot``: see
+    reviewing.record_review (a retest in a closed lot writes its report again)."""
+    if rulebook is None or not result.stages:
+        return False
+    reason = (f"{channel_label((alert.station, alert.channel))} is suspect: test the cell again on "
+              "another channel")
+    asked = Asked("retest", f"station {settings.station_name}", reason, stage=result.stages[-1])
+    try:
+        record_review(settings, ledger, rulebook, lot=result.lot, cell_id=result.cell_id,
+                      asked=asked, now=now, report_lot=report_lot)
+    except FormgateError as exc:
+        log.warning("cell %s lot %s: no retest asked for the suspect channel: %s", result.cell_id,
+                    result.lot, exc)
+        return False
+    return True

@@ -16,7 +16,7 @@ import dataclasses
 import datetime
 import json
 import logging
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -123,6 +123,10 @@ def review_stands(ledger: Ledger, lot: str, cell_id: str, stages: CellStages) ->
     return review is not None and stands(review, stages.records, stages.files)
 
 
+# writes a closed lot's report and export again: (rulebook, lot, now) -> the report's path or None
+ReportLot = Callable[[RuleBook, str, datetime.datetime], Path | None]
+
+
 @dataclass(frozen=True, slots=True)
 class Recorded:
     """A review recorded: its row, the decision it gave and the one it answered; ``report``:
@@ -171,9 +175,13 @@ def record_review(
     cell_id: str,
     asked: Asked,
     now: datetime.datetime,
+    report_lot: ReportLot | None = None,
 ) -> Recorded:
     """Check ``asked`` against the cell's standing decision and record it with the decision it
-    gives and its letter: ONE transaction. Raises ReviewRefused (exit 2) with what to do."""
+    gives and its letter: ONE transaction. Raises ReviewRefused (exit 2) with what to do.
+
+    ``report_lot`` writes a closed lot's report and export again after the review
+    (lots.report_closed_lot, handed in by the caller: the lot part sits above this one)."""
     latest = ledger.decisions.latest(lot, cell_id)
     if latest is None:
         raise ReviewRefused(
@@ -237,28 +245,9 @@ def record_review(
         ) from exc
     log.info("cell %s lot %s: %s by %s (was %s): %s", cell_id, lot, asked.action,
              review.reviewer, latest.verdict, decision.reason)
-    report = report_closed_lot(settings, ledger, rulebook, lot, now) if _closed_at(
-        ledger, lot) is not None else None
+    report = (report_lot(rulebook, lot, now)
+              if report_lot is not None and _closed_at(ledger, lot) is not None else None)
     return Recorded(review, decision, latest, report)
-
-
-def report_closed_lot(
-    settings: Settings, ledger: Ledger, rulebook: RuleBook, lot: str, now: datetime.datetime
-) -> Path | None:
-    """Write a closed lot's report and export again, as `formgate lot report` does (recorded
-    with their new hashes), so that they show a review made after the close; no digest goes
-    again (the review's own letter tells the people who were told of the hold or fail). The
-    review stands whatever happens here: a report that cannot be written now is logged, and
-    `formgate lot report` writes it later. Its path, or None."""
-    from pipeline.station.lots import close_and_report  # lots decides cells with reviews
-
-    try:
-        return close_and_report(settings, ledger, rulebook, lot, by="review", now=now,
-                                close=False).report
-    except (FormgateError, OSError) as exc:
-        log.warning("lot %s: its report and export could not be written again after the "
-                    "review (%s); formgate lot report writes them", lot, exc)
-        return None
 
 
 def age_words(seconds: float) -> str:

@@ -29,6 +29,7 @@ tasks for the workers (tasks.py), claiming (claiming.py), entries that stay in a
 from __future__ import annotations
 
 import datetime
+import functools
 import logging
 import os
 import threading
@@ -52,7 +53,7 @@ from pipeline.station.heartbeat import write_heartbeat
 from pipeline.station.inhand import DEATHS_TO_QUARANTINE, Death, InHand, input_key
 from pipeline.station.judges import JudgePool
 from pipeline.station.lingering import Lingering
-from pipeline.station.lots import LotCloser
+from pipeline.station.lots import LotCloser, report_closed_lot
 from pipeline.station.mailer import MailThread
 from pipeline.station.originals import Originals
 from pipeline.station.plantfeed import StationFeed
@@ -129,7 +130,8 @@ class Station:
         self.certificates = RecordCertificates(
             ledger, clock, self.judges, self.wake, mail_wake, lambda row: self.tasks.judge_again(row)
         )
-        self.publisher = Publisher(s, ledger, clock, self.cells, self.guard, self.certificates)
+        self.publisher = Publisher(s, ledger, clock, self.cells, self.guard, self.certificates,
+                                   functools.partial(report_closed_lot, s, ledger))
         self.tasks = Tasks(s, ledger, clock, self.judges, self.rules, self.publisher, self.guard)
         self.lingering = Lingering(s, self.guard)
         self.aside = SetAside(s, mail_wake)

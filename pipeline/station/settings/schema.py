@@ -587,7 +587,7 @@ CROSS_RULES: tuple[str, ...] = (
     "With a `host`, `sender` and `failures_to` are required: failed cells must reach someone.",
     "`host` is a name or address only; the port goes in `port`.",
     "`[plant] database` is a `postgresql://` address that names a database and holds no password.",
-    "`worker_memory_MB` is at least 800 + 2 × `max_uncompressed_MB` (either may be left at its "
+    "`worker_memory_MB` is at least 800 + 2 x `max_uncompressed_MB` (either may be left at its "
     "default): a worker must hold the most text an input may have, so that "
     "`max_uncompressed_MB`, not the worker's memory, is what stops a large file.",
 )
