@@ -198,24 +198,32 @@ def decisive(metric: str, value: float | None, bound: float | None) -> int:
     """The extra digits that write ``bound`` as it is and tell ``value`` from it.
 
     The fewest (at most MAX_EXTRA_DIGITS) with which the bound reads back as itself and the
-    value does not read as the bound (unless it is the bound).
+    value does not read as the bound (unless it is the bound). A bound that no such number of
+    digits writes as it is (a limit computed from a lot, 0.5970183... mV/day) is written to
+    the digits that tell the value from it alone, not to the most digits there are.
 
     >>> decisive("grading_capacity_Ah", 20.31, 20.325), format_value("grading_capacity_Ah", 20.325, 1)
     (1, '20.325 Ah')
     >>> decisive("grading_coulombic_efficiency", 0.993004, 0.993), percent(0.993004, 2)
     (2, '99.3004')
+    >>> decisive("k_value_mV_per_day", 1.8, 0.5970183), decisive("k_value_mV_per_day", 0.59705, 0.5970183)
+    (0, 1)
     """
     if value is None or bound is None or not (math.isfinite(value) and math.isfinite(bound)):
         return 0
     scale, _ = _scale(metric)
+    apart = None  # the fewest digits that tell the value from the bound
     for extra in range(MAX_EXTRA_DIGITS + 1):
         number, _ = metric_format(metric, extra)
         shown = number(bound)
         as_is = math.isclose(float(shown.replace(MINUS, "-")), bound * scale,
                              rel_tol=1e-9, abs_tol=1e-12)
-        if as_is and (number(value) != shown or value == bound):
+        told = number(value) != shown or value == bound
+        if as_is and told:
             return extra
-    return MAX_EXTRA_DIGITS
+        if told and apart is None:
+            apart = extra
+    return MAX_EXTRA_DIGITS if apart is None else apart
 
 
 def precision(metric: str, value: float | None, window: Window) -> int:
