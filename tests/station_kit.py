@@ -226,6 +226,15 @@ def stop_watch(proc: subprocess.Popen[bytes], timeout_s: float = 120.0) -> int:
     return proc.returncode
 
 
+def heartbeat_troubles(settings: Settings) -> list[str]:
+    """The troubles the station's heartbeat shows now (none while it cannot be read)."""
+    try:
+        beat = json.loads(settings.heartbeat.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return []
+    return [str(t) for t in beat.get("troubles", [])]
+
+
 def settled(settings: Settings, expected: int) -> bool:
     """Every one of ``expected`` inputs is final and nothing is waiting anywhere."""
     if any(p for i in settings.inboxes for p in i.folder.iterdir() if not is_temporary(p.name)):

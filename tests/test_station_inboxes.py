@@ -7,14 +7,22 @@ of the claims is read from the ledger, whose input ids are given as the files ar
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
 
 import pytest
 
 from pipeline.ledger.ledger import Ledger
 from pipeline.station.settings import Settings
-from tests.station_kit import cycle_file, drop, make_station, running, settled, station_toml, wait_until
+from tests.station_kit import (
+    cycle_file,
+    drop,
+    heartbeat_troubles,
+    make_station,
+    running,
+    settled,
+    station_toml,
+    wait_until,
+)
 
 pytestmark = pytest.mark.slow
 
@@ -23,14 +31,6 @@ THREE_INBOXES = (
     '[inbox.hall-b]\nfolder = "inbox-b"\nhandover = "rename"\n\n'
     '[inbox.hall-c]\nfolder = "inbox-c"\nhandover = "rename"\n'
 )
-
-
-def _troubles(s: Settings) -> list[str]:
-    try:
-        beat = json.loads(s.heartbeat.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return []
-    return [str(t) for t in beat.get("troubles", [])]
 
 
 def _final(s: Settings, expected: int) -> bool:
@@ -75,13 +75,13 @@ def test_an_inbox_that_goes_while_nothing_can_be_claimed_shows_at_once(tmp_path:
     hall_a, hall_b, hall_c = (i.folder for i in s.inboxes)
     drop(hall_a, "waits.csv", cycle_file("W-1"))
     with running(s):
-        wait_until(lambda: any("no valid rules" in t for t in _troubles(s)), what="paused")
+        wait_until(lambda: any("no valid rules" in t for t in heartbeat_troubles(s)), what="paused")
         hall_b.rename(s.root / "inbox-b-unmounted")
-        wait_until(lambda: any("inbox hall-b is missing" in t for t in _troubles(s)),
+        wait_until(lambda: any("inbox hall-b is missing" in t for t in heartbeat_troubles(s)),
                    what="the missing inbox shown while nothing is claimed")
         assert (hall_a / "waits.csv").exists()
         (s.root / "inbox-b-unmounted").rename(hall_b)
         rules.write_text(good, encoding="utf-8")
         wait_until(lambda: settled(s, 1), what="judged once the rules are fixed")
-        wait_until(lambda: not _troubles(s), what="every trouble cleared")
+        wait_until(lambda: not heartbeat_troubles(s), what="every trouble cleared")
     assert hall_c.is_dir()

@@ -13,7 +13,6 @@ import datetime
 import email
 import email.policy
 import hashlib
-import json
 import logging
 import multiprocessing.forkserver
 import os
@@ -40,6 +39,7 @@ from tests.station_kit import (
     check_invariants,
     cycle_file,
     drop,
+    heartbeat_troubles,
     make_station,
     running,
     settled,
@@ -291,13 +291,6 @@ def _alerts(s: Settings, words: str) -> list[str]:
     return out
 
 
-def _troubles(s: Settings) -> list[str]:
-    try:
-        return list(json.loads(s.heartbeat.read_text(encoding="utf-8")).get("troubles", []))
-    except (OSError, ValueError):
-        return []
-
-
 @pytest.mark.slow
 def test_the_station_outlives_its_launcher_killed_ten_times_among_worker_kills(tmp_path: Path) -> None:
     s = make_station(tmp_path / "st")
@@ -372,7 +365,7 @@ def test_the_station_outlives_its_launcher_killed_ten_times_among_worker_kills(t
                 involved.update(station.judges.failures)
                 worker_deaths += 1
             if round_ == 4:
-                wait_until(lambda: any("worker launcher keeps dying" in t for t in _troubles(s)), 30,
+                wait_until(lambda: any("worker launcher keeps dying" in t for t in heartbeat_troubles(s)), 30,
                            "the trouble in the heartbeat")
                 report = status_text(s, datetime.datetime.now(datetime.UTC))
                 assert "  trouble: the worker launcher keeps dying (" in report, report

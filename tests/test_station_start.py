@@ -25,6 +25,7 @@ from pipeline.station.status import status_text
 from tests.station_kit import (
     cycle_file,
     drop,
+    heartbeat_troubles,
     make_station,
     settled,
     start_watch,
@@ -48,14 +49,6 @@ def _alerts(s: Settings, words: str) -> list[str]:
         if words in str(msg["Subject"]):
             out.append(str(msg["Subject"]))
     return out
-
-
-def _troubles(s: Settings) -> list[str]:
-    try:
-        beat = json.loads(s.heartbeat.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return []
-    return [str(t) for t in beat.get("troubles", [])]
 
 
 def _status(s: Settings) -> str:
@@ -122,7 +115,7 @@ def test_a_missing_inbox_is_a_trouble_of_its_own_and_the_other_inbox_goes_on(tmp
     try:
         drop(hall_a, "a1.csv", cycle_file("MA-1"))
         wait_until(lambda: settled_in(s, hall_a, 1), what="hall-a judges while hall-b is missing")
-        wait_until(lambda: any("inbox hall-b is missing" in t for t in _troubles(s)),
+        wait_until(lambda: any("inbox hall-b is missing" in t for t in heartbeat_troubles(s)),
                    what="the missing inbox shown")
         report = _status(s)
         assert "  trouble: inbox hall-b is missing (its folder " in report
@@ -132,11 +125,11 @@ def test_a_missing_inbox_is_a_trouble_of_its_own_and_the_other_inbox_goes_on(tmp
         away.rename(hall_b)  # mounted: its files are taken
         drop(hall_b, "b1.csv", cycle_file("MB-1", seed=2))
         wait_until(lambda: settled(s, 2), what="hall-b taken once it is back")
-        wait_until(lambda: not _troubles(s), what="the trouble cleared")
+        wait_until(lambda: not heartbeat_troubles(s), what="the trouble cleared")
         hall_b.rename(away)  # gone while running
         drop(hall_a, "a2.csv", cycle_file("MA-2", seed=3))
         wait_until(lambda: settled_in(s, hall_a, 3), what="hall-a goes on")
-        wait_until(lambda: any("inbox hall-b is missing" in t for t in _troubles(s)),
+        wait_until(lambda: any("inbox hall-b is missing" in t for t in heartbeat_troubles(s)),
                    what="the missing inbox shown again")
         away.rename(hall_b)
         drop(hall_b, "b2.csv", cycle_file("MB-2", seed=4))

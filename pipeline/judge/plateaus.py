@@ -58,17 +58,28 @@ def resample_uniform(
     return grid, v
 
 
-def _odd_window(length_pct: float, step_pct: float, points: int) -> int:
+def odd_window(length_pct: float, step_pct: float, points: int) -> int:
     n = max(SG_ORDER + 2, int(round(length_pct / step_pct)))
     n = min(n, points if points % 2 == 1 else points - 1)
     return n if n % 2 == 1 else n + 1 if n + 1 <= points else n - 1
 
 
-def _flat_runs(flat: np.ndarray) -> list[tuple[int, int]]:
+def flat_runs(flat: np.ndarray) -> list[tuple[int, int]]:
     """(first, last) grid indices of each run of True."""
     padded = np.concatenate(([False], flat, [False]))
     edges = np.flatnonzero(np.diff(padded.astype(np.int8)))
     return [(int(a), int(b) - 1) for a, b in zip(edges[::2], edges[1::2], strict=True)]
+
+
+def merged_runs(flat: np.ndarray, grid: FloatArray, gap_pct: float) -> list[tuple[int, int]]:
+    """(first, last) grid indices of each run of True, runs closer than ``gap_pct`` merged."""
+    merged: list[list[int]] = []
+    for a, b in flat_runs(flat):
+        if merged and (grid[a] - grid[merged[-1][1]]) < gap_pct:
+            merged[-1][1] = b
+        else:
+            merged.append([a, b])
+    return [(a, b) for a, b in merged]
 
 
 def find_plateaus(
@@ -83,17 +94,11 @@ def find_plateaus(
         np.asarray(q_pct, float), np.asarray(voltage_v, float), settings.grid_points
     )
     step = float(grid[1] - grid[0])
-    window = _odd_window(settings.smoothing_pct, step, settings.grid_points)
+    window = odd_window(settings.smoothing_pct, step, settings.grid_points)
     smooth = savgol(v, window, SG_ORDER)
     slope_mv_per_pct = savgol(v, window, SG_ORDER, deriv=1, delta=step) * 1000.0
     flat = np.abs(slope_mv_per_pct) <= settings.flatness_mv_per_pct
-    runs = _flat_runs(flat)
-    merged: list[list[int]] = []
-    for a, b in runs:
-        if merged and (grid[a] - grid[merged[-1][1]]) < settings.merge_gap_pct:
-            merged[-1][1] = b
-        else:
-            merged.append([a, b])
+    merged = merged_runs(flat, grid, settings.merge_gap_pct)
     plateaus = []
     for a, b in merged:
         start, end = float(grid[a]), float(grid[b])

@@ -56,7 +56,7 @@ def savgol_coeffs(window: int, order: int, *, deriv: int = 0, delta: float = 1.0
 
 
 @functools.lru_cache(maxsize=64)
-def _plan(window: int, order: int, deriv: int, delta: float) -> tuple[FloatArray, FloatArray, FloatArray]:
+def plan(window: int, order: int, deriv: int, delta: float) -> tuple[FloatArray, FloatArray, FloatArray]:
     """Convolution coefficients, and the edge matrices for the first and last half-window."""
     if window % 2 != 1 or window <= order:
         raise ValueError(f"window must be odd and longer than the polynomial order ({window}, {order})")
@@ -80,7 +80,7 @@ def savgol(x: npt.ArrayLike, window: int, order: int, *, deriv: int = 0, delta: 
     samples: FloatArray = np.asarray(x, dtype=np.float64)
     if window > samples.size:
         raise ValueError(f"window ({window}) is longer than the data ({samples.size} samples)")
-    inside, left, right = _plan(window, order, deriv, float(delta))
+    inside, left, right = plan(window, order, deriv, float(delta))
     out: FloatArray = np.convolve(samples, inside, mode="same")
     half = window // 2
     if half:

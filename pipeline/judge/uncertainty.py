@@ -37,11 +37,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from pipeline.judge.medians import median
-from pipeline.judge.plateaus import SG_ORDER
-from pipeline.judge.plateaus import _flat_runs as flat_runs
-from pipeline.judge.plateaus import _odd_window as plateau_window
+from pipeline.judge.plateaus import SG_ORDER, merged_runs, odd_window
 from pipeline.judge.rest_band import MEDIAN_EFFICIENCY
-from pipeline.judge.savgol import _plan as savgol_plan
+from pipeline.judge.savgol import plan as savgol_plan
 from pipeline.judge.savgol import savgol
 from pipeline.judge.segmentation import CV_BAND_V, CV_CURRENT_FRACTION, weights_between
 from pipeline.model import (
@@ -362,7 +360,7 @@ def _plateau_lengths(
     assert curve is not None
     points = len(curve.y)
     step = float(curve.x[1] - curve.x[0])
-    window = plateau_window(settings.smoothing_pct, step, points)
+    window = odd_window(settings.smoothing_pct, step, points)
     # the derivative filter's coefficients (kept: the ones the plateau finder's filter uses)
     gain = float(np.linalg.norm(savgol_plan(window, SG_ORDER, 1, step)[0]))
     # mV per %: the slope's standard deviation
@@ -396,15 +394,9 @@ def _plateau_lengths(
     elif have("total_plateau_length_pct") is not None:
         slope = savgol(curve.y, window, SG_ORDER, deriv=1, delta=step) * 1000.0
         near = np.abs(slope) <= settings.flatness_mv_per_pct + 2.0 * sigma_s
-        longest = 0.0
-        merged: list[list[int]] = []
-        for a, b in flat_runs(near):
-            if merged and (a - merged[-1][1]) * step < settings.merge_gap_pct:
-                merged[-1][1] = b
-            else:
-                merged.append([a, b])
-        for a, b in merged:
-            longest = max(longest, (b - a) * step)
+        # the runs merged as the plateau finder merges them
+        longest = max(((b - a) * step for a, b in merged_runs(near, curve.x, settings.merge_gap_pct)),
+                      default=0.0)
         may = longest if longest >= settings.min_length_pct else 0.0
         out["total_plateau_length_pct"] = Budget("total_plateau_length_pct", (
             Component("a plateau noise may make", may / SQRT12),

@@ -87,11 +87,12 @@ def _too_large(name: str, cap: int) -> InputError:
     )
 
 
-def damaged(name: str, why: str) -> InputError:
+def damaged(name: str, why: str, what: str = "workbook", hint: str = AGAIN_HINT) -> InputError:
+    """A ``what`` (a workbook, a Parquet file) that its library could not read, and why."""
     why = (why.strip().splitlines() or ["no reason given"])[0]
     why = why if len(why) <= 160 else why[:157] + "..."
     return InputError(
-        f"the workbook cannot be read: it is damaged or cut short ({why})", SourceRef(name), AGAIN_HINT
+        f"the {what} cannot be read: it is damaged or cut short ({why})", SourceRef(name), hint
     )
 
 

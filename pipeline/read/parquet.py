@@ -22,7 +22,7 @@ import pandas as pd
 
 from pipeline.errors import InputError
 from pipeline.model import RowPlaces, SourceRef
-from pipeline.read.binaries import size_words, wrong_kind
+from pipeline.read.binaries import damaged, size_words, wrong_kind
 from pipeline.read.bounds import MAX_METADATA_ENTRIES, check_length, fits, shown, too_long
 from pipeline.read.cyclehead import CUT_SHORT_HINT, Head, collect_metadata
 from pipeline.read.cyclenumbers import find_columns
@@ -100,11 +100,7 @@ def _too_large(name: str, cap: int) -> InputError:
 
 
 def _damaged(name: str, exc: BaseException) -> InputError:
-    why = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
-    why = why if len(why) <= 160 else why[:157] + "..."
-    return InputError(
-        f"the Parquet file cannot be read: it is damaged or cut short ({why})", SourceRef(name), AGAIN_HINT
-    )
+    return damaged(name, str(exc).strip() or type(exc).__name__, "Parquet file", AGAIN_HINT)
 
 
 def _check_column_names(fields: list[str], name: str) -> None:
