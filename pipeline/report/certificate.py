@@ -425,6 +425,12 @@ def _ica_caption(curve: Curve | None, peaks_v: tuple[float, ...]) -> str:
             "under dQ/dV peaks.")
 
 
+def is_one_page(result: CellResult, *, full: bool = False) -> bool:
+    """Whether the record's certificate is one page without plots: a passed cell's (the plots,
+    plateau table and dQ/dV peaks are a failed or held cell's evidence), unless ``full``."""
+    return result.verdict.kind is VerdictKind.PASS and not full
+
+
 def build_context(
     result: CellResult,
     verification_code: str | None = None,
@@ -477,7 +483,7 @@ def build_context(
     metrics = result.metrics
     # A passed cell's certificate is one page: its plots are evidence for a failed or held
     # cell, so they are neither drawn nor laid out for a pass.
-    one_page = kind is VerdictKind.PASS and not full
+    one_page = is_one_page(result, full=full)
     # a failed cell, or a held one whose record shows a hazard before it was cut short
     failed = kind is VerdictKind.FAIL or bool(result.verdict.hazards)
     cautions = [

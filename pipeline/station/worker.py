@@ -246,7 +246,9 @@ def as_drawn(result: CellResult) -> CellResult:
     one page without plots (report/certificate.py), so its curves and views (some 75 kB of the
     80) are left out; a failed or held cell's result is the result itself. The same PDF bytes
     either way (tests/test_certqueue.py), from a result a fifteenth of the size to keep and send."""
-    if result.verdict.kind is not VerdictKind.PASS:
+    from pipeline.report.certificate import is_one_page
+
+    if not is_one_page(result):
         return result
     metrics = dataclasses.replace(
         result.metrics, grading_curve=None, ica_curve=None, record=None, rest=None, pulse=None
