@@ -6,6 +6,7 @@ import math
 import warnings
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
@@ -54,3 +55,20 @@ def test_a_strided_view_is_measured_as_its_values() -> None:
     view = values[::3]
     assert median(view) == float(np.median(view))
     assert median_side(view, 5.0) == -1 and median_side(view + 70.0, 5.0) == 1
+
+
+@pytest.mark.parametrize("n", [2047, 2048, 4001, 8192])
+def test_long_runs_are_measured_as_numpy_measures_them(n: int) -> None:
+    # as long as the samples a record's medians take: numpy partitions these another way
+    # than the short arrays above (with vector instructions, where the machine has them)
+    rng = np.random.default_rng(n)
+    with_nan = rng.normal(size=n)
+    with_nan[rng.integers(0, n, 3)] = np.nan
+    for values in (
+        rng.normal(size=n),
+        rng.integers(-3, 4, n) * 0.5,  # few distinct values: ties at the middle
+        np.where(rng.random(n) < 0.5, 0.0, -0.0),
+        with_nan,
+    ):
+        assert same(median(values), numpy_median(values))
+        assert same(median(values[::3]), numpy_median(values[::3]))

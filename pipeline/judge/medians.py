@@ -1,10 +1,10 @@
 """Medians of samples, and which side of a band a median falls on, as numpy's median gives them.
 
 ``median`` is ``float(np.median(values))`` for a 1-D float64 array, the same number: the
-same partition of the same values, the same middle element or mean of the two middle
-elements, NaN when a value is NaN. It spares the general function's handling of axes and
-output arrays, which costs more than the partition itself for the short runs a record is
-cut into.
+same middle element or mean of the two middle elements, NaN when a value is NaN. It spares
+the general function's handling of axes and output arrays, which costs more than the
+partition itself for the short runs a record is cut into, and partitions at one point
+instead of numpy's two or three, which for thousands of values is several times faster.
 
 ``median_side`` answers what segmentation asks of a step's median current (above the
 rest band, below it, or inside it) by counting the values beyond the band's edges,
@@ -32,15 +32,19 @@ def median(values: FloatArray) -> float:
     if n == 0 or values.ndim != 1 or values.dtype != np.float64:
         return float(np.median(values))  # the general function's warnings and results
     half = n // 2
-    # numpy's own partition points: the middle one or two, and the last (where NaN sorts)
-    part = np.partition(values, [half - 1, half, -1] if n % 2 == 0 else [half, -1])
-    last = float(part[-1])
-    if math.isnan(last):
-        return last
+    # One partition point, not numpy's own two or three: a partition at a single point is
+    # several times faster (numpy sorts about it with vector instructions), and the values
+    # that matter follow from it. NaN sorts last, so a NaN anywhere is in the upper part,
+    # whose largest value (max propagates NaN) then is NaN; the middle value below is the
+    # largest of the lower part.
+    part = np.partition(values, half)
+    top = float(part[half:].max())
+    if math.isnan(top):
+        return top
     # numpy's mean of the middle value(s): a sum that starts from +0.0, divided by the count
     if n % 2:
         return 0.0 + float(part[half])
-    return (0.0 + float(part[half - 1]) + float(part[half])) / 2
+    return (0.0 + float(part[:half].max()) + float(part[half])) / 2
 
 
 def median_side(values: FloatArray, threshold: float) -> int:
