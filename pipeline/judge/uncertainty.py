@@ -153,18 +153,24 @@ def _noise(values: FloatArray) -> float:
     # the differences at rows 0, every, 2 every ... only, not every one of the record's
     every = max(1, -(-(len(finite) - 1) // NOISE_ROWS))
     diffs = finite[1::every] - finite[:-1:every]
-    return float(1.4826 * np.median(np.abs(diffs - np.median(diffs))) / math.sqrt(2.0))
+    # medians.median: np.median's numbers, without its overhead
+    return 1.4826 * median(np.abs(diffs - median(diffs))) / math.sqrt(2.0)
 
 
 def _resolution(values: FloatArray) -> float:
     """The smallest step between readings: the instrument's resolution, or less."""
-    finite = values[:RESOLUTION_ROWS]
-    finite = finite[np.isfinite(finite)]
+    first = values[:RESOLUTION_ROWS]
+    # the first rows as they are when every one is finite (the usual case), not a copy
+    finite = first if np.isfinite(first).all() else first[np.isfinite(first)]
     if len(finite) < 2:
         return 0.0
-    steps = np.abs(np.diff(finite))
-    steps = steps[steps > 1e-12]
-    return float(steps.min()) if len(steps) else 0.0
+    steps = finite[1:] - finite[:-1]
+    np.abs(steps, out=steps)
+    # the steps of no size are NaN, which fmin passes over: the smallest of the others
+    # without a copy of them (NaN when there are none)
+    steps[steps <= 1e-12] = np.nan
+    smallest = float(np.fmin.reduce(steps))
+    return 0.0 if math.isnan(smallest) else smallest
 
 
 def _rest_rows(trace: Trace, steps: tuple[Step, ...]) -> FloatArray:
@@ -242,7 +248,7 @@ def _charge(trace: Trace, steps: tuple[Step, ...], indices: tuple[int, ...], u: 
             # it lies from the rows that follow, over the time it stands for, is what it may
             # have added or taken; one such reading per switch (Type A, JCGM 100:2008 4.2)
             amps = trace.current_a[step.start : step.start + 4]
-            jump = float(amps[0] - np.median(amps[1:]))
+            jump = float(amps[0]) - median(amps[1:])
             weight = float(weights_between(trace.time_s, step.start, step.start + 1)[0])
             # less what noise alone gives that difference: the row's own and the median
             # of three's (0.449 of a row's variance: Kenney and Keeping 1962)
