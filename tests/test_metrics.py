@@ -9,7 +9,7 @@ from hypothesis import strategies as st
 
 from pipeline.acceptance.rules import Program
 from pipeline.judge.metricdefs import METRIC_NAMES
-from pipeline.judge.metrics import measure
+from pipeline.judge.metrics import fit_line, measure
 from pipeline.judge.segmentation import split_steps
 from pipeline.model import PlateauSettings, Trace
 from tests.factories import build_trace, cc, rest, simple_formation
@@ -163,3 +163,20 @@ def test_thinning_drops_what_is_not_finite_and_thins_the_rest_alike(
     assert np.isfinite(xs).all() and np.isfinite(ys).all()
     if finite.any():  # the lowest and highest finite points are kept
         assert ys.min() == y[finite].min() and ys.max() == y[finite].max()
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    rows=st.integers(2, 3000),
+    span_s=st.floats(1e-3, 1e6),
+    noise_v=st.floats(0.0, 0.01),
+    seed=st.integers(0, 2**32 - 1),
+)
+def test_the_line_fit_is_numpys_polyfit(rows: int, span_s: float, noise_v: float, seed: int) -> None:
+    # the drift and the DCIR pulse's line are fitted without np.polyfit: the same numbers
+    rng = np.random.default_rng(seed)
+    t = np.sort(rng.random(rows)) * span_s
+    t[0] = 0.0
+    v = 3.3 - 2e-7 * t + rng.normal(0.0, noise_v, rows)
+    slope, intercept = np.polyfit(t, v, 1)
+    assert fit_line(t, v) == (float(slope), float(intercept))
