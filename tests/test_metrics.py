@@ -148,8 +148,9 @@ def test_spikes_and_a_ramp_at_the_grading_switch_do_not_move_dcir() -> None:
 def test_thinning_drops_what_is_not_finite_and_thins_the_rest_alike(
     n: int, max_points: int, holes: list[tuple[int, float, bool]], seed: int
 ) -> None:
-    """A series with NaN or infinite points thins as its finite points alone do, wherever they are."""
-    from pipeline.judge.thin import thin_series
+    """A series with NaN or infinite points thins as its finite points alone do, wherever they are;
+    several series against one x thin as each does alone."""
+    from pipeline.judge.thin import thin_series, thin_series_over
 
     rng = np.random.default_rng(seed)
     x, y = np.arange(float(n)), rng.normal(size=n)
@@ -163,6 +164,9 @@ def test_thinning_drops_what_is_not_finite_and_thins_the_rest_alike(
     assert np.isfinite(xs).all() and np.isfinite(ys).all()
     if finite.any():  # the lowest and highest finite points are kept
         assert ys.min() == y[finite].min() and ys.max() == y[finite].max()
+    for alone, (ox, oy) in zip((y, -y), thin_series_over(x, [y, -y], max_points), strict=True):
+        tx, ty = thin_series(x, alone, max_points)
+        assert ox.tobytes() == tx.tobytes() and oy.tobytes() == ty.tobytes()
 
 
 @settings(max_examples=200, deadline=None)

@@ -29,7 +29,7 @@ from pipeline.judge.program import (
 )
 from pipeline.judge.rest_band import MEDIAN_EFFICIENCY
 from pipeline.judge.segmentation import weights_between
-from pipeline.judge.thin import thin_series
+from pipeline.judge.thin import thin_series, thin_series_over
 from pipeline.model import (
     CellMetrics,
     Curve,
@@ -308,14 +308,14 @@ def record_view(trace: Trace, steps: tuple[Step, ...]) -> RecordView:
     hours = trace.time_s - trace.time_s[0]
     hours /= 3600.0  # in place: one array the size of the record, not two
     start_h = float(trace.time_s[0])
-
-    def curve(values: FloatArray) -> Curve:
-        return Curve(*thin_series(hours, values, VIEW_POINTS))
-
+    series = [trace.voltage_v, trace.current_a]
+    if trace.temperature_c is not None:
+        series.append(trace.temperature_c)
+    curves = [Curve(x, y) for x, y in thin_series_over(hours, series, VIEW_POINTS)]
     return RecordView(
-        curve(trace.voltage_v),
-        curve(trace.current_a),
-        None if trace.temperature_c is None else curve(trace.temperature_c),
+        curves[0],
+        curves[1],
+        curves[2] if trace.temperature_c is not None else None,
         tuple(
             StepSpan((s.start_s - start_h) / 3600.0, (s.end_s - start_h) / 3600.0, s.kind)
             for s in steps
