@@ -310,6 +310,67 @@ def test_curve_leaves_out_only_points_the_page_cannot_show() -> None:
     assert svgplot.simplify(line).tolist() == [[0.0, 3.0], [50.0, 3.0]]
 
 
+def _simplify_one_span_at_a_time(points: np.ndarray, tolerance: float) -> np.ndarray:
+    """Ramer-Douglas-Peucker as it is usually written: one span at a time, from a stack."""
+    keep = np.zeros(len(points), dtype=bool)
+    keep[0] = keep[-1] = True
+    spans = [(0, len(points) - 1)]
+    while spans:
+        first, last = spans.pop()
+        if last - first < 2:
+            continue
+        chord = points[last] - points[first]
+        offsets = points[first + 1 : last] - points[first]
+        length = math.hypot(float(chord[0]), float(chord[1]))
+        if length > 0:
+            distance = np.abs(chord[0] * offsets[:, 1] - chord[1] * offsets[:, 0]) / length
+        else:
+            distance = np.hypot(offsets[:, 0], offsets[:, 1])
+        worst = int(np.argmax(distance))
+        if distance[worst] > tolerance:
+            keep[first + 1 + worst] = True
+            spans += [(first, first + 1 + worst), (first + 1 + worst, last)]
+    return points[keep]
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    st.lists(
+        st.tuples(
+            st.floats(-200, 200, allow_nan=False, width=32),
+            st.floats(-200, 200, allow_nan=False, width=32),
+        ),
+        min_size=0,
+        max_size=300,
+    ),
+    st.sampled_from([0.0, svgplot.INVISIBLE_MM, 0.5, 5.0]),
+    st.booleans(),
+)
+def test_curve_simplified_all_spans_at_once_keeps_the_same_points(
+    pairs: list[tuple[float, float]], tolerance: float, closed: bool
+) -> None:
+    """Looking at every span of a generation at once keeps exactly the points (to the bit) that
+    looking at one span at a time keeps, ties and spans that come back to their start too."""
+    points = np.array(pairs, dtype=np.float64).reshape(-1, 2)
+    if closed and len(points) > 2:
+        points[-1] = points[0]
+    if len(points) < 3:
+        assert svgplot.simplify(points, tolerance) is points
+        return
+    expected = _simplify_one_span_at_a_time(points, tolerance)
+    assert svgplot.simplify(points, tolerance).tolist() == expected.tolist()
+
+
+def test_curve_simplified_on_a_certificates_curves_as_one_span_at_a_time() -> None:
+    """A noisy record's curves as a certificate draws them (most points kept, deep splits)."""
+    rng = np.random.default_rng(7)
+    x = np.linspace(13.0, 175.0, 485)
+    for y in (20 + rng.normal(0, 0.4, 485), np.repeat(rng.uniform(5, 25, 5), 97), 3 + np.sin(x / 9)):
+        points = np.column_stack([x, y])
+        expected = _simplify_one_span_at_a_time(points, svgplot.INVISIBLE_MM)
+        assert svgplot.simplify(points).tolist() == expected.tolist()
+
+
 def test_curve_path_holds_its_points_in_order() -> None:
     """The path written holds the points kept, in the curve's order, no more than before."""
     root = parse(plots.discharge_svg(cases.grading_curve(), (), width_mm=86, height_mm=54))

@@ -174,6 +174,12 @@ def simplify(points: FloatArray, tolerance: float = INVISIBLE_MM) -> FloatArray:
     """The (n, 2) polyline ``points`` without the points that lie within ``tolerance`` of the
     chord between the points kept around them (Ramer-Douglas-Peucker); ends always kept.
 
+    Which points a span keeps depends only on its two ends, never on the order spans are
+    looked at, so every span of one generation is looked at in one pass of array arithmetic
+    (a noisy curve of a thousand points splits into hundreds of spans, each a Python loop
+    round with its own small arrays before). Each distance is the same arithmetic as one span
+    at a time: the chord's length by ``math.hypot``, the cross product, then the division.
+
     >>> simplify(np.array([[0.0, 0.0], [1.0, 0.01], [2.0, 0.0], [3.0, 1.0]])).tolist()
     [[0.0, 0.0], [2.0, 0.0], [3.0, 1.0]]
     """
@@ -182,24 +188,32 @@ def simplify(points: FloatArray, tolerance: float = INVISIBLE_MM) -> FloatArray:
         return points
     keep = np.zeros(count, dtype=bool)
     keep[0] = keep[-1] = True
-    spans = [(0, count - 1)]
-    while spans:
-        first, last = spans.pop()
-        if last - first < 2:
-            continue
-        chord = points[last] - points[first]
-        offsets = points[first + 1 : last] - points[first]
-        length = math.hypot(float(chord[0]), float(chord[1]))
-        if length > 0:
-            distance = np.abs(chord[0] * offsets[:, 1] - chord[1] * offsets[:, 0]) / length
-        else:  # the span comes back to its start: distance from that point
-            distance = np.hypot(offsets[:, 0], offsets[:, 1])
-        worst = int(np.argmax(distance))
-        if distance[worst] > tolerance:
-            middle = first + 1 + worst
-            keep[middle] = True
-            spans += [(first, middle), (middle, last)]
-    return points[keep]
+    firsts, lasts = np.array([0]), np.array([count - 1])
+    while True:
+        inner = lasts - firsts - 1  # points strictly inside each span
+        split = inner > 0
+        firsts, lasts, inner = firsts[split], lasts[split], inner[split]
+        if firsts.size == 0:
+            return points[keep]
+        starts = np.cumsum(inner) - inner  # where each span's points begin in the pass
+        span = np.repeat(np.arange(firsts.size), inner)  # the span of each point in the pass
+        index = np.arange(span.size) - starts[span] + firsts[span] + 1
+        chords = points[lasts] - points[firsts]
+        offsets = points[index] - points[firsts][span]
+        lengths = np.array([math.hypot(x, y) for x, y in chords.tolist()])
+        cx, cy = chords[span, 0], chords[span, 1]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            distance = np.abs(cx * offsets[:, 1] - cy * offsets[:, 0]) / lengths[span]
+        closed = lengths[span] == 0  # a span that comes back to its start: distance from it
+        distance[closed] = np.hypot(offsets[closed, 0], offsets[closed, 1])
+        worst = np.maximum.reduceat(distance, starts)
+        # the first point at its span's largest distance, as np.argmax picks it
+        at_worst = np.where(distance == worst[span], np.arange(span.size), span.size)
+        middle = index[np.minimum.reduceat(at_worst, starts)]
+        far = worst > tolerance
+        middle, firsts, lasts = middle[far], firsts[far], lasts[far]
+        keep[middle] = True
+        firsts, lasts = np.concatenate((firsts, middle)), np.concatenate((middle, lasts))
 
 
 def polyline(frame: Frame, x: FloatArray, y: FloatArray) -> str:
