@@ -281,6 +281,20 @@ def test_empty_fields_become_nan_for_validation_to_judge() -> None:
     assert trace.temperature_c is not None and np.isnan(trace.temperature_c).sum() == 10
 
 
+def test_an_empty_field_leaves_every_other_number_as_read_without_it() -> None:
+    # rows are parsed without pandas' NA filter first, and again with it when a field is empty
+    rows = [[0.1 * k, 3.2 + 1e-5 * k, 10.0 / 3.0 * (1 if k < 40 else -1), 25.0 + 0.01 * k] for k in range(80)]
+    columns = ("time_s", "voltage_V", "current_A", "temperature_C")
+    whole = read_cycle_file(make_csv(rows, columns).encode(), "c.csv")
+    rows[7][2] = float("nan")
+    holed = read_cycle_file(make_csv(rows, columns).encode(), "c.csv")
+    assert math.isnan(holed.current_a[7])
+    others = np.arange(80) != 7
+    assert holed.current_a[others].tobytes() == whole.current_a[others].tobytes()
+    for name in ("time_s", "voltage_v", "temperature_c"):
+        assert getattr(holed, name).tobytes() == getattr(whole, name).tobytes()
+
+
 def test_optional_columns_are_none_when_absent() -> None:
     trace = read_cycle_file(make_csv(basic_rows()).encode(), "c.csv")
     assert (trace.temperature_c, trace.step, trace.cycle) == (None, None, None)
