@@ -23,7 +23,7 @@ from pipeline.read.cyclefile import file_stages, read_cycle_file
 from pipeline.read.cyclehead import MAX_UNCOMPRESSED_BYTES
 from pipeline.read.profile import Profile
 from pipeline.read.readings import looks_like_readings, read_readings
-from pipeline.read.validate import drop_invalid_rows, validate_trace
+from pipeline.read.validate import validated
 from pipeline.rulebook.book import RuleBook
 from pipeline.writing import write_atomic
 
@@ -91,8 +91,7 @@ def judge_trace(
 
     stages = file_stages(trace.metadata)  # a file of one stage is judged on that stage's checks
     rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=name)
-    notes = validate_trace(trace, cell_type)
-    trace = drop_invalid_rows(trace)
+    trace, notes = validated(trace, cell_type)  # checked, then without its empty rows
     one_c_a = cell_type.nominal_capacity_ah  # 1 C in A is the nominal capacity in Ah per hour
     rest_a = rule_set.rest_current_fraction * one_c_a
     band = estimate_band(trace.current_a, rest_a, one_c_a)

@@ -13,7 +13,7 @@ from pipeline.acceptance.rules import CellType
 from pipeline.errors import InputError
 from pipeline.judge.metricdefs import METRIC_NAMES
 from pipeline.model import Note, SourceRef, Trace
-from pipeline.read.validate import CAPACITY_METRICS, drop_invalid_rows, validate_trace
+from pipeline.read.validate import CAPACITY_METRICS, drop_invalid_rows, validate_trace, validated
 
 # Invented cell type; plausibility bounds as a rule set would give them.
 CELL = CellType("DEMO-LFP-20A", 20.0, -0.1, 4.5)
@@ -130,6 +130,26 @@ def test_drop_invalid_rows_removes_them_and_keeps_the_first_line() -> None:
 def test_drop_invalid_rows_returns_a_clean_trace_unchanged() -> None:
     trace = make_trace()
     assert drop_invalid_rows(trace) is trace
+
+
+@pytest.mark.parametrize(
+    "changes",
+    [
+        {},
+        {"v": {3: NAN}, "i": {7: NAN}, "T": {9: NAN}},
+        {"t": {50: 490.0, 51: 490.0}},  # a repeated time stamp
+        {"t": {k: 10.0 * k + 600.0 for k in range(120, 200)}},  # a gap
+        {"T": {k: NAN for k in range(200)}},
+    ],
+)
+def test_validated_is_validate_then_drop(changes: dict[str, dict[int, float]]) -> None:
+    trace = make_trace(temperature=True, changes=changes)
+    kept, notes = validated(trace, CELL)
+    assert notes == validate_trace(trace, CELL)
+    expected = drop_invalid_rows(trace)
+    assert (kept is trace) == (expected is trace)
+    for name in ("time_s", "voltage_v", "current_a", "temperature_c"):
+        assert getattr(kept, name).tobytes() == getattr(expected, name).tobytes()
 
 
 def test_drop_invalid_rows_keeps_step_and_cycle_aligned() -> None:

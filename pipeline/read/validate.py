@@ -56,11 +56,23 @@ def validate_trace(trace: Trace, cell_type: CellType) -> tuple[Note, ...]:
 
     Raises InputError, naming the line, for anything that prevents judging.
     """
+    return _validate(trace, cell_type, _empty_rows(trace) if _may_have_empty_rows(trace) else None)
+
+
+def validated(trace: Trace, cell_type: CellType) -> tuple[Trace, tuple[Note, ...]]:
+    """``drop_invalid_rows(trace)`` and ``validate_trace(trace, cell_type)``, looking for
+    empty rows once (a pass over three columns of the record that both would make)."""
+    empty = _empty_rows(trace) if _may_have_empty_rows(trace) else None
+    notes = _validate(trace, cell_type, empty)
+    return _without(trace, empty), notes
+
+
+def _validate(trace: Trace, cell_type: CellType, empty: Mask | None) -> tuple[Note, ...]:
+    """validate_trace, ``empty`` its rows with an empty time, voltage or current (None: none)."""
     _refuse_short(trace, len(trace))
     notes: list[Note] = []
     rows: Rows = range(len(trace))
-    if _may_have_empty_rows(trace):
-        empty = _empty_rows(trace)
+    if empty is not None:
         notes += _check_empty_rows(trace, empty)
         if empty.any():
             rows = np.flatnonzero(~empty)
@@ -72,11 +84,16 @@ def validate_trace(trace: Trace, cell_type: CellType) -> tuple[Note, ...]:
     # Differences of absurdly large times may overflow to inf, which the checks handle.
     with np.errstate(over="ignore", invalid="ignore"):
         steps = np.diff(time_s)
-        _check_time_order(trace, rows, time_s, steps)
+        # The smallest step, in one pass: a record whose every step is forward (most are)
+        # has neither a step back nor a repeated time to look for, and its gaps need no mask
+        # of the steps forward. A NaN step (times beyond any clock) makes it NaN, and then
+        # every check looks at every step.
+        smallest = float(steps.min())
+        _check_time_order(trace, rows, time_s, steps, smallest)
         _check_voltage(trace, rows, volts, cell_type)
         _check_current(trace, rows, amps, cell_type)
-        notes += _note_repeated_times(trace, rows, steps)
-        notes += _note_gaps(trace, rows, steps, amps, cell_type)
+        notes += _note_repeated_times(trace, rows, steps, smallest)
+        notes += _note_gaps(trace, rows, steps, amps, cell_type, forward=smallest > 0)
     notes += _note_temperature(trace)
     return tuple(notes)
 
@@ -87,9 +104,14 @@ def drop_invalid_rows(trace: Trace) -> Trace:
     Run it after ``validate_trace`` accepted the trace; see the module docstring for
     what happens to line numbers.
     """
-    if not _may_have_empty_rows(trace):
+    return _without(trace, _empty_rows(trace) if _may_have_empty_rows(trace) else None)
+
+
+def _without(trace: Trace, empty: Mask | None) -> Trace:
+    """``trace`` without the rows ``empty`` marks (None: none)."""
+    if empty is None:
         return trace
-    keep = ~_empty_rows(trace)
+    keep = ~empty
     if keep.all():
         return trace
     changes = {
@@ -174,7 +196,11 @@ def _longest_run(mask: Mask) -> tuple[int, int]:
     return int(starts[best]), int(lengths[best])
 
 
-def _check_time_order(trace: Trace, rows: Rows, time_s: FloatArray, steps: FloatArray) -> None:
+def _check_time_order(
+    trace: Trace, rows: Rows, time_s: FloatArray, steps: FloatArray, smallest: float
+) -> None:
+    if smallest >= 0:  # ``smallest``: steps.min(), NaN when a step is
+        return
     back = np.flatnonzero(steps < 0)
     if back.size:
         k = int(back[0])
@@ -258,7 +284,9 @@ def _check_current(trace: Trace, rows: Rows, amps: FloatArray, ct: CellType) -> 
         )
 
 
-def _note_repeated_times(trace: Trace, rows: Rows, steps: FloatArray) -> list[Note]:
+def _note_repeated_times(trace: Trace, rows: Rows, steps: FloatArray, smallest: float) -> list[Note]:
+    if smallest > 0:  # ``smallest``: steps.min(), NaN when a step is
+        return []
     same = np.flatnonzero(steps == 0)
     if not same.size:
         return []
@@ -275,17 +303,20 @@ def _note_repeated_times(trace: Trace, rows: Rows, steps: FloatArray) -> list[No
 
 
 def _note_gaps(
-    trace: Trace, rows: Rows, steps: FloatArray, amps: FloatArray, ct: CellType
+    trace: Trace, rows: Rows, steps: FloatArray, amps: FloatArray, ct: CellType, *, forward: bool
 ) -> list[Note]:
-    """A note on the gaps in the record (``steps``: the differences of its times)."""
-    moving = steps > 0
-    count = int(np.count_nonzero(moving))
+    """A note on the gaps in the record (``steps``: the differences of its times; ``forward``:
+    every step is above 0, so no mask of those that are is made)."""
+    moving = None if forward else steps > 0
+    count = len(steps) if moving is None else int(np.count_nonzero(moving))
     if not count:
         return []
     if _median_under(steps, moving, count, GAP_MIN_S / GAP_FACTOR):
         limit = GAP_MIN_S
     else:
-        limit = max(GAP_FACTOR * float(np.median(steps[moving])), GAP_MIN_S)
+        limit = max(GAP_FACTOR * float(np.median(steps if moving is None else steps[moving])), GAP_MIN_S)
+    if forward and float(steps.max()) <= limit:
+        return []  # no step longer than the limit, found in one pass without a mask
     gaps = np.flatnonzero(steps > limit)
     if not gaps.size:
         return []
@@ -304,20 +335,27 @@ def _note_gaps(
     return [Note("time_gaps", text, trace.where(row), blocks)]
 
 
-def _median_under(steps: FloatArray, moving: Mask, count: int, bound: float) -> bool:
+def _median_under(steps: FloatArray, moving: Mask | None, count: int, bound: float) -> bool:
     """Whether GAP_FACTOR times the median of the ``count`` steps forward (``moving``: the
-    steps above 0, so none of them NaN) is sure to be at most GAP_MIN_S, as it is when more
-    than half of them are at most ``bound``: then the middle value or values, and their
-    mean, are at most ``bound`` too, and the median need not be found (a partition of
-    every interval of the record). Counted in place: no copy of the steps forward."""
+    steps above 0, so none of them NaN; None when every step is) is sure to be at most
+    GAP_MIN_S, as it is when more than half of them are at most ``bound``: then the middle
+    value or values, and their mean, are at most ``bound`` too, and the median need not be
+    found (a partition of every interval of the record). Counted in place: no copy of the
+    steps forward."""
     if not GAP_FACTOR * bound <= GAP_MIN_S:
         return False
-    return int(np.count_nonzero(moving & (steps <= bound))) > count // 2
+    at_most = steps <= bound
+    if moving is not None:
+        at_most &= moving
+    return int(np.count_nonzero(at_most)) > count // 2
 
 
 def _note_temperature(trace: Trace) -> list[Note]:
     if trace.temperature_c is None:
         return []
+    with np.errstate(over="ignore", invalid="ignore"):  # a NaN makes the sum NaN (_may_have_empty_rows)
+        if math.isfinite(float(np.add.reduce(trace.temperature_c))):
+            return []
     missing = np.isnan(trace.temperature_c)
     if not missing.any():
         return []
