@@ -123,7 +123,9 @@ def take_out_offset(trace: Trace, band: CurrentBand) -> tuple[Trace, CurrentBand
     """
     if not band.rows or abs(band.offset_a) <= SIGNIFICANT_Z * band.offset_u_a:
         return trace, band
-    corrected = dataclasses.replace(trace, current_a=trace.current_a - band.offset_a)
+    current = trace.current_a - band.offset_a
+    current.setflags(write=False)  # frozen now: the Trace keeps it, not a copy (model.frozen_array)
+    corrected = dataclasses.replace(trace, current_a=current)
     return corrected, dataclasses.replace(band, corrected=True)
 
 
