@@ -284,3 +284,47 @@ def test_streams_are_deflated_at_the_default_level_and_read_back(
     monkeypatch.setattr(pydyf, "__version__", "999.0")
     with pdf._deflating_at_default_level() as faster:
         assert not faster and pydyf.zlib is zlib
+
+
+# --- plot labels written from where they start ----------------------------------------------
+
+
+def test_a_label_is_as_wide_as_the_renderer_sets_it(htmls: list[str], monkeypatch: pytest.MonkeyPatch) -> None:
+    """Every plot label of the certificates, measured by the renderer as it draws it, is exactly
+    as wide as svgplot.label_width says: a label written from its start lands where the renderer
+    would have moved a middle- or end-anchored one."""
+    from pipeline.report import svgplot, svgtext
+
+    pieces = svgtext._weasyprint()
+    assert pieces is not None  # the pinned WeasyPrint
+    measure = pieces["split_first_line"]
+    measured: list[tuple[str, float, float]] = []
+
+    def measuring(text: str, style: object, *args: object) -> object:
+        found = measure(text, style, *args)
+        measured.append((text, style["font_size"], found[3]))  # type: ignore[index]
+        return found
+
+    monkeypatch.setitem(pieces, "split_first_line", measuring)
+    extra = svgplot.open_svg(120, 20, "every character") + "".join(
+        svgplot.text(10, 5 + k, chunk, "start")
+        for k, chunk in enumerate(["0123456789 −+.,:;%()/", "°CAhVWmsVI PQTdNa", "cycle window light dark"])
+    ) + "</svg>"
+    for html in [*htmls, htmls[0].replace("</body>", extra + "</body>")]:
+        pdf.render_pdf(html)
+    labels = [(text, width) for text, size, width in measured if size == svgplot.FONT_MM]
+    assert len(labels) > 60
+    for text, width in labels:
+        assert svgplot.label_width(text) == width, text
+
+
+def test_a_label_the_font_cannot_set_keeps_its_anchor() -> None:
+    from pipeline.report import svgplot
+
+    assert svgplot.label_width("\u6f22") is None
+    assert 'text-anchor="middle"' in svgplot.text(10, 5, "\u6f22")
+    assert 'text-anchor="end"' in svgplot.text(10, 5, "2.5", "end", extra=' font-size="1.8"')
+    written = svgplot.text(10, 5, "2.5", "end")
+    assert "text-anchor" not in written
+    width = svgplot.label_width("2.5")
+    assert width is not None and f'x="{10 - width:.6f}"' in written

@@ -29,7 +29,7 @@ from weasyprint.document import Document
 from weasyprint.text.fonts import FontConfiguration
 from weasyprint.urls import URLFetcherResponse
 
-from pipeline.report import keptlayouts, stylecache, svgpath, svgtext
+from pipeline.report import keptlayouts, stylecache, svgpath, svgplot, svgtext
 from pipeline.report.certificate import TEMPLATES_DIR
 from pipeline.writing import write_atomic
 
@@ -124,10 +124,12 @@ _WARM_UP = (
 
 
 def prepare() -> None:
-    """Parse the stylesheet, load its font and render a small page now rather than at the first
-    certificate (the first render of a process opens the font and is about 30 ms slower)."""
+    """Parse the stylesheet, load its font, read its advances for the plot labels and render a
+    small page now rather than at the first certificate (the first render of a process opens
+    the font and is about 30 ms slower)."""
     _shared()
     _xml_parse_fits()
+    svgplot.label_width("0")  # the font's advances, read once for every plot label
     render_pdf(_WARM_UP)
 
 
