@@ -148,19 +148,21 @@ def parse_rows(
     wanted = None if keep is None else sorted({*keep, expected - 1})
     if wanted is not None and len(wanted) == expected:
         wanted = None
+    own = None if wanted is None else set(keep or ())
     try:
         chunks = _chunks(_stream(data, start, end), profile, expected, wanted, empty_is_nan=False)
     except (ValueError, TypeError, OverflowError):  # ParserError is a ValueError
         chunks = []  # parsed again below, for pandas' own error
-    if not chunks or any(_holds_empty_text(chunk) for chunk in chunks):
-        chunks.clear()  # let the first parse go before the second
+    frame = _joined(chunks, own, empty_is_nan=False) if chunks else None
+    if frame is None:
         try:
             chunks = _chunks(_stream(data, start, end), profile, expected, wanted, empty_is_nan=True)
         except (ValueError, TypeError, OverflowError) as exc:
             raise _diagnose(_region(data, start, end), head, name, profile, str(exc)) from None
-    if not chunks:
-        raise _diagnose(_region(data, start, end), head, name, profile, "rows and header disagree")
-    frame = _joined(chunks, None if wanted is None else set(keep or ()))
+        if not chunks:
+            raise _diagnose(_region(data, start, end), head, name, profile, "rows and header disagree")
+        frame = _joined(chunks, own, empty_is_nan=True)
+        assert frame is not None
     # Without quote marks (which may hold line breaks) or NUL bytes, pandas makes one
     # row per line; only then is counting the lines (a pass over megabytes) skipped.
     plain = data.find(b'"', start, end) < 0 and data.find(b"\0", start, end) < 0
@@ -192,15 +194,6 @@ def _stream(data: bytes, start: int, end: int) -> io.BytesIO:
         stream.seek(start)
         return stream
     return io.BytesIO(data[start:end])
-
-
-def _holds_empty_text(chunk: pd.DataFrame) -> bool:
-    """Whether a column of ``chunk``, parsed without the NA filter, holds an empty field:
-    then it is text (no number or True/False is empty), with "" for that field."""
-    return any(
-        chunk[column].dtype.kind not in "iufb" and bool(chunk[column].eq("").any())
-        for column in chunk.columns
-    )
 
 
 def _chunks(
@@ -240,8 +233,12 @@ def _chunks(
     return chunks
 
 
-def _joined(chunks: list[pd.DataFrame], own: Collection[int] | None) -> pd.DataFrame:
-    """The chunks as one frame, each column of the type the whole file would have had.
+def _joined(
+    chunks: list[pd.DataFrame], own: Collection[int] | None, *, empty_is_nan: bool
+) -> pd.DataFrame | None:
+    """The chunks as one frame, each column of the type the whole file would have had;
+    None when they were parsed without the NA filter (``empty_is_nan`` False) and a column
+    holds an empty field (it is then text holding ""): the rows are parsed again with it.
 
     Chunks of whole numbers and decimals join as decimals, as one parse would give them;
     a column whose chunks differ otherwise (text or True/False in one, numbers or nothing
@@ -269,6 +266,10 @@ def _joined(chunks: list[pd.DataFrame], own: Collection[int] | None) -> pd.DataF
             columns[column] = arrays[0].copy() if len(arrays) == 1 else np.concatenate(arrays)
             arrays.clear()
             continue
+        if not empty_is_nan and any(
+            part.dtype.kind not in "iufb" and bool(part.eq("").any()) for part in series
+        ):
+            return None  # no number or True/False is empty: only text can hold ""
         if len({part.dtype for part in series}) > 1 and not kinds <= set("iuf"):
             series = [part.astype(object) for part in series]
         columns[column] = series[0] if len(series) == 1 else pd.concat(series, ignore_index=True)
