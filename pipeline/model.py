@@ -13,6 +13,7 @@ of what judging found are pipeline.acceptance's (rules.py and results.py).
 
 from __future__ import annotations
 
+import datetime
 import enum
 import fnmatch
 from collections.abc import Iterator, Mapping
@@ -27,17 +28,33 @@ FloatArray = npt.NDArray[np.float64]
 IntArray = npt.NDArray[np.int64]
 
 
+# The type of a capsule, the object through which a C library hands memory it allocated
+# over to an array (the standard library's datetime C API is one, always there to ask).
+_CAPSULE = type(datetime.datetime_CAPI)
+
+
+def owns_memory(values: npt.NDArray[np.generic]) -> bool:
+    """Whether ``values`` holds its memory alone, as an array that owns its data does.
+
+    An array may instead be made over memory a C library allocated for it alone and hands
+    over with it, held by a capsule that frees it with the array: pandas' CSV parser makes
+    each column it parses so. No other object reaches that memory but views of the array.
+    """
+    return bool(values.flags.owndata) or isinstance(values.base, _CAPSULE)
+
+
 def frozen_array(values: object, dtype: type = np.float64) -> npt.NDArray[np.generic]:
     """Return a read-only contiguous copy of ``values`` as ``dtype``.
 
-    An array that is already read-only, contiguous, of ``dtype`` and owns its data
-    (one made by ``frozen_array``, or a fresh one its maker froze) is returned as it
-    is: copying megabytes of samples again on every Trace gains no safety.
+    An array that is already read-only, contiguous, of ``dtype`` and holds its memory
+    alone (:func:`owns_memory`: one made by ``frozen_array``, or a fresh one its maker
+    froze) is returned as it is: copying megabytes of samples again on every Trace gains
+    no safety.
     """
     if (
         isinstance(values, np.ndarray)
         and values.dtype == dtype
-        and values.flags.owndata
+        and owns_memory(values)
         and values.flags.c_contiguous
         and not values.flags.writeable
     ):

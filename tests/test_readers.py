@@ -797,11 +797,13 @@ def test_arrays_of_a_trace_are_read_only() -> None:
 
 
 @pytest.mark.parametrize("chunk_fields", [None, 10])
-def test_each_column_read_is_copied_once_whether_in_one_chunk_or_many(
+def test_each_column_read_is_the_parsers_own_or_copied_once_when_joined(
     chunk_fields: int | None, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    """The Trace holds the very arrays the table's frame holds: the copy that gives a Trace
-    arrays of its own is made once, as the rows are joined, not again on the way to the Trace."""
+    """The Trace holds the very arrays the table's frame holds, each holding its memory alone:
+    the parser's own when the rows came in one chunk (no copy at all), the chunks' joined into
+    one when they came in many; no copy is made again on the way to the Trace."""
+    from pipeline.model import owns_memory
     from pipeline.read import cyclenumbers
     from pipeline.read.convert import to_trace
     from pipeline.read.cyclefile import read_table
@@ -816,6 +818,19 @@ def test_each_column_read_is_copied_once_whether_in_one_chunk_or_many(
         ("time_s", "voltage_v", "current_a", "temperature_c", "step", "cycle"), range(6), strict=True
     ):
         values = getattr(trace, name)
-        assert values.flags.owndata and not values.flags.writeable
+        assert owns_memory(values) and not values.flags.writeable
         assert np.shares_memory(values, table.frame[column].to_numpy())
     assert trace.voltage_v.tolist() == [3.2 + 0.01 * k for k in range(12)]
+
+
+def test_an_array_over_memory_others_can_reach_is_copied_into_a_trace() -> None:
+    from pipeline.model import frozen_array, owns_memory
+
+    whole = np.arange(6.0)
+    assert owns_memory(whole) and not owns_memory(whole[1:])
+    shared = bytearray(np.arange(6.0).tobytes())  # memory the bytearray still writes to
+    over = np.frombuffer(shared, dtype=np.float64)
+    over.setflags(write=False)
+    assert not owns_memory(over)
+    kept = frozen_array(over)
+    assert kept is not over and not np.shares_memory(kept, over)

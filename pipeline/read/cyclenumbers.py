@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.errors import InputError
-from pipeline.model import FloatArray, IntArray, SourceRef
+from pipeline.model import FloatArray, IntArray, SourceRef, owns_memory
 from pipeline.read.bounds import shown_value
 from pipeline.read.cyclehead import CUT_SHORT_HINT, Head, split_fields
 from pipeline.read.profile import Profile
@@ -245,13 +245,11 @@ def _joined(
     in another) is joined as Python objects, so that :func:`numbers` names the field that
     is not a number instead of pandas turning True into 1.0.
 
-    Each column of numbers in ``own`` (every column when None) is moved into one array of
-    its own, and the parser's arrays for it are let go at once: the next column's copy
-    then reuses their memory instead of fresh pages, and :func:`numbers` hands that array
-    to the Trace as it is (:func:`_frozen`). The Trace needs arrays that own their data,
-    and the parser's do not, so one copy of each column read is made either way; made
-    here, a column at a time, it is the only one, whether the file came in one chunk or
-    many.
+    Each column of numbers in ``own`` (every column when None) is one array that holds its
+    memory alone, which :func:`numbers` hands to the Trace as it is (:func:`_frozen`):
+    the parser's own array when the rows came in one chunk (pandas' parser allocates each
+    column's memory for it alone: model.owns_memory), with no copy at all; the chunks'
+    arrays joined into one, each chunk's let go at once, when they came in many.
     """
     names = list(chunks[0].columns)
     parts = {column: [chunk[column] for chunk in chunks] for column in names}
@@ -263,7 +261,7 @@ def _joined(
         if kinds <= set("iuf") and (own is None or column in own):
             arrays = [part.to_numpy() for part in series]
             series.clear()
-            columns[column] = arrays[0].copy() if len(arrays) == 1 else np.concatenate(arrays)
+            columns[column] = _whole_owner(arrays[0]) if len(arrays) == 1 else np.concatenate(arrays)
             arrays.clear()
             continue
         if not empty_is_nan and any(
@@ -390,23 +388,24 @@ def _not_a_number(
 
 
 def _frozen(values: _Array) -> _Array:
-    """``values`` read-only and owning its data, copied only if it is a view of part of an array.
+    """``values`` read-only and holding its memory alone, copied only if it is a view of part
+    of an array.
 
     The Trace then keeps the array without copying it again (model.frozen_array). A column
-    of a frame is a view of the array that holds it (the frame keeps a block of one row):
-    when that array owns its data and is the column whole, it is taken instead of a copy
-    (the columns :func:`_joined` made, which nothing but the frame holds).
+    of a frame is a view of the array that holds it: when that array holds its memory
+    alone (model.owns_memory) and is the column whole, it is taken instead of a copy (the
+    columns :func:`_joined` hands on, which nothing but the reader's frames holds).
     """
-    if not (values.flags.owndata and values.flags.c_contiguous):
+    if not (owns_memory(values) and values.flags.c_contiguous):
         values = _whole_owner(values)
     values.setflags(write=False)
     return values
 
 
 def _whole_owner(values: _Array) -> _Array:
-    """The 1-D array that owns ``values``' memory when ``values`` is all of it, else a copy."""
+    """The 1-D array that holds ``values``' memory alone when ``values`` is all of it, else a copy."""
     owner = values.base
-    while isinstance(owner, np.ndarray) and not owner.flags.owndata:
+    while isinstance(owner, np.ndarray) and not owns_memory(owner):
         owner = owner.base
     if (
         isinstance(owner, np.ndarray)
