@@ -205,14 +205,16 @@ def program_step_kinds(
     (at least MIN_STEP_ROWS rows beyond the band holding MIN_STEP_CHARGE_C), not noise.
     """
     assert trace.step is not None
-    moved = trace.current_a - band.centre_a
+    # the current as it is when the band is centred on zero (the offset taken out of it):
+    # x - 0.0 is x, so no copy of the record's current is made for nothing
+    centre = band.centre_a
+    moved = trace.current_a if centre == 0.0 else trace.current_a - centre
     # rows beyond the band above it and below it (for a band at least 0 wide, every row
     # beyond it is one of them; NaN is neither): counted per step, they spare most steps
     # the search for rows against their kind
     counted = band.threshold_a >= 0.0
     up, down = moved > band.threshold_a, moved < -band.threshold_a
-    # |moved| > threshold, without an array of magnitudes when the band is at least 0 wide
-    beyond = up | down if counted else np.abs(moved) > band.threshold_a
+    beyond = None  # |moved| > threshold, made when a step needs it
     min_as = MIN_STEP_CHARGE_C * one_c_a * 3600.0
     blocks, notes = [], []
     for a, b in runs(trace.step):
@@ -227,6 +229,8 @@ def program_step_kinds(
         ):
             blocks.append((a, b, kind))
             continue
+        if beyond is None:  # without an array of magnitudes when the band is at least 0 wide
+            beyond = up | down if counted else np.abs(moved) > band.threshold_a
         against = beyond[a:b] & (np.sign(moved[a:b]) != kind)
         rows = int(np.count_nonzero(against))
         charge_as = float(np.abs(moved[a:b][against]) @ w[a:b][against]) if rows else 0.0
