@@ -75,9 +75,12 @@ TIME_TOLERANCE_S = 0.01
 
 def _rows(values: FloatArray, steps: tuple[Step, ...], indices: tuple[int, ...]) -> FloatArray:
     """``values`` on the rows of the steps ``indices``, in that order: the steps' slices
-    joined (what indexing with their row numbers gives, without building those)."""
+    joined (what indexing with their row numbers gives, without building those); one
+    step's rows are its slice of ``values``, read-only as a Trace's arrays are, not a copy."""
     if not indices:
         return values[:0].copy()
+    if len(indices) == 1:
+        return values[steps[indices[0]].start : steps[indices[0]].stop]
     return np.concatenate([values[steps[i].start : steps[i].stop] for i in indices])
 
 
@@ -186,8 +189,9 @@ def _intercept_gain(x: FloatArray) -> float:
     """How much of one row's noise a least-squares line's value at x = 0 keeps:
     sqrt(1/n + mean(x)^2 / Sxx) (Draper and Smith 1998, 3.1)."""
     n = len(x)
-    sxx = float(np.sum((x - x.mean()) ** 2))
-    return math.sqrt(1.0 / n + float(x.mean()) ** 2 / sxx) if n >= 2 and sxx > 0 else 1.0
+    mean = x.mean()
+    sxx = float(np.sum((x - mean) ** 2))
+    return math.sqrt(1.0 / n + float(mean) ** 2 / sxx) if n >= 2 and sxx > 0 else 1.0
 
 
 def dcir_reading(
@@ -285,11 +289,11 @@ def rest_view(trace: Trace, rest: Step, relax_s: float) -> tuple[RestView | None
             trace.where(rest.start),
             ("rest_voltage_drift_mV_per_h",),
         )
-    kept = t[keep]
+    kept, v_fit = t[keep], v[keep]
     t_fit = kept - kept[0]
-    slope_v_per_s, intercept_v = fit_line(t_fit, v[keep])
+    slope_v_per_s, intercept_v = fit_line(t_fit, v_fit)
     # the slope's standard error from the residuals (Draper and Smith 1998, 3.1)
-    resid = v[keep] - (slope_v_per_s * t_fit + intercept_v)
+    resid = v_fit - (slope_v_per_s * t_fit + intercept_v)
     sxx = float(np.sum((t_fit - t_fit.mean()) ** 2))
     slope_u = math.sqrt(float(resid @ resid) / (len(t_fit) - 2) / sxx) if sxx > 0 else 0.0
     hours, volts = thin_series((t - t[0]) / 3600.0, v, VIEW_POINTS)
@@ -336,12 +340,17 @@ def grading_discharge(
     # the rows around it, not from the whole record's)
     parts = [(steps[i].start, steps[i].stop) for i in cycle.discharge_steps]
     weights = [weights_between(trace.time_s, a, b) for a, b in parts]
-    w = np.concatenate(weights) if weights else np.zeros(0)
-    dq = np.abs(_rows(trace.current_a, steps, cycle.discharge_steps)) * w / 3600.0
+    w = weights[0] if len(weights) == 1 else np.concatenate(weights) if weights else np.zeros(0)
+    # |I| w / 3600 and the rest below, in place: the same arithmetic, without a new array
+    # the size of the discharge for every step of it
+    dq = np.abs(_rows(trace.current_a, steps, cycle.discharge_steps))
+    dq *= w
+    dq /= 3600.0
     total = float(dq.sum())
-    q = np.cumsum(dq) - 0.5 * dq  # each row sits mid-way through the charge it owns
-    scale = 100.0 / total if total > 0 else 0.0
-    return q * scale, _rows(trace.voltage_v, steps, cycle.discharge_steps), total
+    q = np.cumsum(dq)
+    q -= 0.5 * dq  # each row sits mid-way through the charge it owns
+    q *= 100.0 / total if total > 0 else 0.0
+    return q, _rows(trace.voltage_v, steps, cycle.discharge_steps), total
 
 
 def _plateau_values(
