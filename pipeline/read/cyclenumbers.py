@@ -209,7 +209,7 @@ def _chunks(
     an empty field is NaN (else it is "", and its column text).
 
     A function of its own so that no frame outlives it but the ones returned: _joined
-    lets each column's parser arrays go as soon as it has copied them.
+    lets the frames go as soon as it has taken their columns out.
     """
     chunks: list[pd.DataFrame] = []
     with pd.read_csv(
