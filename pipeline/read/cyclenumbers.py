@@ -142,18 +142,26 @@ def parse_rows(
     an empty field leaves its column as text holding "", and parsed again with it only
     when a column read holds such a field (or the first parse fails, for the error the
     second one finds). Without an empty field the two parses give the same frame: the
-    filter changes nothing but the fields it finds.
+    filter changes nothing but the fields it finds. A layout (header and separators) found
+    with an empty field is parsed with the filter first from then on in this process, so a
+    cycler that leaves a column empty as a rule pays for one parse, not two.
     """
     expected = len(head.fields)
     wanted = None if keep is None else sorted({*keep, expected - 1})
     if wanted is not None and len(wanted) == expected:
         wanted = None
     own = None if wanted is None else set(keep or ())
-    try:
-        chunks = _chunks(_stream(data, start, end), profile, expected, wanted, empty_is_nan=False)
-    except (ValueError, TypeError, OverflowError):  # ParserError is a ValueError
-        chunks = []  # parsed again below, for pandas' own error
-    frame = _joined(chunks, own, empty_is_nan=False) if chunks else None
+    layout = (profile.delimiter, profile.decimal, *head.fields)
+    frame = None
+    if layout not in _LAYOUTS_WITH_EMPTY_FIELDS:
+        try:
+            chunks = _chunks(_stream(data, start, end), profile, expected, wanted, empty_is_nan=False)
+        except (ValueError, TypeError, OverflowError):  # ParserError is a ValueError
+            chunks = []  # parsed again below, for pandas' own error
+        parsed = bool(chunks)
+        frame = _joined(chunks, own, empty_is_nan=False) if parsed else None  # empties chunks
+        if frame is None and parsed:
+            _remember_empty_fields(layout)
     if frame is None:
         try:
             chunks = _chunks(_stream(data, start, end), profile, expected, wanted, empty_is_nan=True)
@@ -185,6 +193,18 @@ def parse_rows(
             if count < expected:
                 raise _field_count_error(count, row, rows, head, name)
     return frame
+
+
+# Layouts (separators and header fields) whose records were found holding an empty field:
+# only which of two parses giving the same frame goes first depends on it, never a result.
+_LAYOUTS_WITH_EMPTY_FIELDS: set[tuple[str, ...]] = set()
+_LAYOUTS_REMEMBERED = 256
+
+
+def _remember_empty_fields(layout: tuple[str, ...]) -> None:
+    if len(_LAYOUTS_WITH_EMPTY_FIELDS) >= _LAYOUTS_REMEMBERED:
+        _LAYOUTS_WITH_EMPTY_FIELDS.clear()
+    _LAYOUTS_WITH_EMPTY_FIELDS.add(layout)
 
 
 def _stream(data: bytes, start: int, end: int) -> io.BytesIO:
