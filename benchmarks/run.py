@@ -311,7 +311,7 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
     from pipeline.mail.letters import build_message, failure_letter
     from pipeline.read.cyclefile import read_cycle_file
     from pipeline.read.profile import load_profile
-    from pipeline.read.validate import drop_invalid_rows, validate_trace
+    from pipeline.read.validate import validated
     from pipeline.report import plots
     from pipeline.report.certificate import PLOT_HEIGHT_MM, PLOT_WIDTH_MM, TEMPLATES_DIR, render_html
     from pipeline.report.pdf import render_pdf
@@ -335,8 +335,7 @@ def measure_stages(mode: Mode, passing: list[Record], failing: list[Record], tmp
         assert len(read_cycle_file(layout_bytes, "bench", layout_profile)) == len(trace)
 
     def vsm() -> object:
-        notes = validate_trace(trace, cell_type)
-        kept = drop_invalid_rows(trace)
+        kept, notes = validated(trace, cell_type)  # as the judge path validates
         one_c_a = cell_type.nominal_capacity_ah
         seg = split_steps(kept, rule_set.rest_current_fraction * one_c_a, one_c_a)
         return measure(
