@@ -121,14 +121,16 @@ def _style_for_init(
         parent_id = id(computed_styles[parent, None]) if element.parent else None
         element_declarations = elements_declarations.get(etree_element)
         place = None if places is None else places.of(element)
+        pseudos: tuple[tuple[Any, dict[str, Any]], ...] | None = None
         if place is None:
             selectors_keys, matched = _rules(sheets, element)
         else:  # the rules that matched an element in this place before, if any did
             rules_key = ("rules", place, sheets_key)
             found = kept.get(rules_key)  # type: ignore[union-attr]
             if found is None:
-                found = kept[rules_key] = _rules(sheets, element)  # type: ignore[index]
-            selectors_keys, matched = found
+                keys, rules = _rules(sheets, element)
+                found = kept[rules_key] = (keys, rules, _pseudo_cascade(css, rules))  # type: ignore[index]
+            selectors_keys, matched, pseudos = found
         key = (parent_id, element_declarations, selectors_keys)
         computed = computed_cache.get(key)
         kept_key = (parent_id, own.get(etree_element), tuple(selectors_keys))
@@ -137,7 +139,7 @@ def _style_for_init(
         # Add declarations for matching elements: an element whose style is found needs its
         # pseudo-elements' only (their styles are worked out below).
         for origin, specificity, pseudo_type, declarations, layer_order in matched:
-            if computed is not None and pseudo_type is None:
+            if (computed is not None and pseudo_type is None) or (pseudos is not None and pseudo_type):
                 continue
             style = cascaded_styles.setdefault((etree_element, pseudo_type), {})
             for name, values, importance in declarations:
@@ -146,6 +148,9 @@ def _style_for_init(
                 old_weight = style.get(name, (None, None))[1]
                 if old_weight is None or old_weight <= weight:
                     style[name] = values, weight
+        if pseudos is not None:  # the pseudo-elements' cascade of these rules, worked out once
+            for pseudo_type, cascaded in pseudos:
+                cascaded_styles[etree_element, pseudo_type] = cascaded
 
         # Store computed styles.
         if key in computed_cache:
@@ -188,6 +193,28 @@ def _style_for_init(
     # Clear the cascaded styles, we don't need them anymore. Keep the
     # dictionary, it is used later for page margins.
     self._cascaded_styles.clear()
+
+
+def _pseudo_cascade(css: Any, matched: tuple[Any, ...]) -> tuple[tuple[Any, dict[str, Any]], ...]:
+    """The cascaded declarations of each pseudo-element that ``matched`` (``_rules``) gives an
+    element, as the cascade in ``_style_for_init`` builds them, in the order they first appear.
+
+    They depend on the rules alone, so the elements in a kept place share them (WeasyPrint's
+    stylesheet gives every element six pseudo-elements, a cascade of their own each): nothing
+    changes a cascaded style once it is made; a computed style reads it.
+    """
+    styles: dict[Any, dict[str, Any]] = {}
+    for origin, specificity, pseudo_type, declarations, layer_order in matched:
+        if not pseudo_type:
+            continue
+        style = styles.setdefault(pseudo_type, {})
+        for name, values, importance in declarations:
+            precedence = css.declaration_precedence(origin, importance)
+            weight = (precedence, layer_order, specificity)
+            old_weight = style.get(name, (None, None))[1]
+            if old_weight is None or old_weight <= weight:
+                style[name] = values, weight
+    return tuple(styles.items())
 
 
 def _rules(sheets: Any, element: Any) -> tuple[tuple[Any, ...], tuple[Any, ...]]:
