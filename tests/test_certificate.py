@@ -13,17 +13,10 @@ import pytest
 
 from pipeline.acceptance.results import CellResult, Outcome, VerdictKind
 from pipeline.acceptance.rules import Hazard, Severity, Window
+from pipeline.judge.quantities import DASH, format_value, format_window, significant
 from pipeline.model import Note, SourceRef
 from pipeline.report import certificate
-from pipeline.report.certificate import (
-    DASH,
-    build_context,
-    format_time,
-    format_value,
-    format_window,
-    render_html,
-    significant,
-)
+from pipeline.report.certificate import build_context, format_time, render_html
 from tests.golden import cases, regenerate
 
 HOSTILE = "<img src=file:///etc/passwd>"

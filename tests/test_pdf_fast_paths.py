@@ -308,7 +308,7 @@ def test_a_label_is_as_wide_as_the_renderer_sets_it(htmls: list[str], monkeypatc
     monkeypatch.setitem(pieces, "split_first_line", measuring)
     extra = svgplot.open_svg(120, 20, "every character") + "".join(
         svgplot.text(10, 5 + k, chunk, "start")
-        for k, chunk in enumerate(["0123456789 −+.,:;%()/", "°CAhVWmsVI PQTdNa", "cycle window light dark"])
+        for k, chunk in enumerate(["0123456789 \N{MINUS SIGN}+.,:;%()/", "°CAhVWmsVI PQTdNa", "cycle window light dark"])
     ) + "</svg>"
     for html in [*htmls, htmls[0].replace("</body>", extra + "</body>")]:
         pdf.render_pdf(html)

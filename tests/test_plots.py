@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import math
 import re
-from collections import Counter
 import xml.etree.ElementTree as ET
+from collections import Counter
 
 import numpy as np
 import pytest

@@ -24,16 +24,15 @@ from pipeline.judge.evaluate import deciding, phrase, program_findings
 from pipeline.judge.metricdefs import BY_NAME, METRICS
 
 # Every value and window is written as the judge's reasons, the letters and the lot report
-# write it: quantities.py is the one source of those words (names kept for the importers).
+# write it: quantities.py is the one source of those words.
 from pipeline.judge.quantities import BY_UNIT as _BY_UNIT
-from pipeline.judge.quantities import DASH as DASH  # as before: importers take it from here
 from pipeline.judge.quantities import (
+    DASH,
     format_uncertain,
     format_window,
     near_limit,
     significant,
 )
-from pipeline.judge.quantities import format_value as format_value  # and this
 from pipeline.judge.quantities import percent as _percent
 from pipeline.judge.quantities import signed as _signed
 from pipeline.judge.quantities import with_unit as _with_unit
