@@ -250,6 +250,14 @@ def test_a_ledger_locked_past_its_busy_timeout_during_a_send_does_not_send_a_let
                 held = ledger.outbox.get(first)
                 assert held is not None and (held.state, held.claimed_by) == ("pending",
                                                                               sender.owner)
+                # the station's log and `mail retry` say it in the same words
+                sent = sender.unrecorded[first]
+                assert sent.row.claimed_until is not None
+                assert sent.words() == (
+                    "mail <locked-1@demo.example> went out but the ledger could not record it; "
+                    f"its claim stays until {sent.row.claimed_until}, so no other sender sends it "
+                    "before: alert 1"
+                )
                 locker.execute("ROLLBACK")  # the other process lets go of the ledger
                 for _turn in range(2):
                     deliver_due(ledger, smtp, station="demo", alerts_to=(), sender=sender)

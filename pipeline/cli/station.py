@@ -139,10 +139,8 @@ def _ledger_busy(ledger: Any, sender: Any, exc: Exception) -> int:
         if not left:
             print("the mail that went out is recorded now; run formgate mail retry again for "
                   "the rest", file=sys.stderr)
-        for sent in left:
-            # its claim stays until its lease ends: no other sender sends it before then
-            print(f"  went out, not recorded: {sent.row.message_id} {sent.row.subject}",
-                  file=sys.stderr)
+        for sent in left:  # its claim stays until its lease ends: nobody sends it before then
+            print(f"  {sent.words()}", file=sys.stderr)
     else:
         print(f"the ledger {ledger.db.path} could not be written ({exc}); nothing more was "
               "sent. Try again when the other process has let go of it", file=sys.stderr)

@@ -149,6 +149,14 @@ class SentNotRecorded:
     reply: str
     sent_at: datetime.datetime
 
+    def words(self) -> str:
+        """What the station's log and `mail retry` say of it: the same words in both."""
+        return (
+            f"mail {self.row.message_id} went out but the ledger could not record it; its claim "
+            f"stays until {self.row.claimed_until}, so no other sender sends it before: "
+            f"{self.row.subject}"
+        )
+
 
 @dataclass
 class Sender:
@@ -424,11 +432,7 @@ class MailThread(threading.Thread):
             with contextlib.suppress(Exception):
                 sender.settle(ledger, stop=self.stop_event)  # one more try on the way out
             for sent in sender.unrecorded.values():
-                log.warning(
-                    "mail %s went out but the ledger could not record it; its claim stays until "
-                    "%s, so no other sender sends it before: %s",
-                    sent.row.message_id, sent.row.claimed_until, sent.row.subject,
-                )
+                log.warning("%s", sent.words())
 
     def stop(self) -> None:
         self.stop_event.set()
