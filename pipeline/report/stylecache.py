@@ -102,12 +102,8 @@ def _style_for_init(
         style = cascaded_styles.setdefault((element, None), {})
         elements_declarations[element] = tuple(declarations)
         own[element] = own.get(element, ()) + _own_declarations(elements_declarations[element])
-        for name, values, importance in css.preprocess_declarations(base_url, declarations):
-            precedence = css.declaration_precedence("author", importance)
-            weight = (precedence, layer_order, specificity)
-            old_weight = style.get(name, (None, None))[1]
-            if old_weight is None or old_weight <= weight:
-                style[name] = values, weight
+        _cascade(css, style, css.preprocess_declarations(base_url, declarations), "author",
+                 specificity, layer_order)
 
     kept = _active.get("cache") if _active.get("font_config") is font_config else None
     if kept is not None and len(kept) > MAX_STYLES:
@@ -142,12 +138,7 @@ def _style_for_init(
             if (computed is not None and pseudo_type is None) or (pseudos is not None and pseudo_type):
                 continue
             style = cascaded_styles.setdefault((etree_element, pseudo_type), {})
-            for name, values, importance in declarations:
-                precedence = css.declaration_precedence(origin, importance)
-                weight = (precedence, layer_order, specificity)
-                old_weight = style.get(name, (None, None))[1]
-                if old_weight is None or old_weight <= weight:
-                    style[name] = values, weight
+            _cascade(css, style, declarations, origin, specificity, layer_order)
         if pseudos is not None:  # the pseudo-elements' cascade of these rules, worked out once
             for pseudo_type, cascaded in pseudos:
                 cascaded_styles[etree_element, pseudo_type] = cascaded
@@ -207,14 +198,21 @@ def _pseudo_cascade(css: Any, matched: tuple[Any, ...]) -> tuple[tuple[Any, dict
     for origin, specificity, pseudo_type, declarations, layer_order in matched:
         if not pseudo_type:
             continue
-        style = styles.setdefault(pseudo_type, {})
-        for name, values, importance in declarations:
-            precedence = css.declaration_precedence(origin, importance)
-            weight = (precedence, layer_order, specificity)
-            old_weight = style.get(name, (None, None))[1]
-            if old_weight is None or old_weight <= weight:
-                style[name] = values, weight
+        _cascade(css, styles.setdefault(pseudo_type, {}), declarations, origin, specificity, layer_order)
     return tuple(styles.items())
+
+
+def _cascade(
+    css: Any, style: dict[str, Any], declarations: Any, origin: str, specificity: Any, layer_order: Any
+) -> None:
+    """Add ``declarations`` (name, values, importance) to a cascaded ``style``, each where its
+    weight (precedence, layer, specificity) is at least that of what the style holds, as
+    WeasyPrint's cascade adds them."""
+    for name, values, importance in declarations:
+        weight = (css.declaration_precedence(origin, importance), layer_order, specificity)
+        old_weight = style.get(name, (None, None))[1]
+        if old_weight is None or old_weight <= weight:
+            style[name] = values, weight
 
 
 def _rules(sheets: Any, element: Any) -> tuple[tuple[Any, ...], tuple[Any, ...]]:
