@@ -116,13 +116,12 @@ def _read(
 def _segment(trace: Trace, rules: Path) -> tuple[Segmentation, str, list[str]]:
     """The steps the judge would cut, with the rule set of the trace's cell type, and the notes."""
     from pipeline.judge.segmentation import split_steps
-    from pipeline.read.validate import drop_invalid_rows, validate_trace
+    from pipeline.read.validate import validated
     from pipeline.rulebook.book import load_rules_dir
 
     rulebook = load_rules_dir(rules)
     rule_set, cell_type = rulebook.for_cell_type(trace.cell_type, source=trace.source)
-    notes = validate_trace(trace, cell_type)
-    valid = drop_invalid_rows(trace)
+    valid, notes = validated(trace, cell_type)  # as the judge validates
     one_c_a = cell_type.nominal_capacity_ah
     segmentation = split_steps(valid, rule_set.rest_current_fraction * one_c_a, one_c_a)
     words = f"rule set {rule_set.name} for cell type {cell_type.name}, 1 C = {one_c_a:g} A"

@@ -56,13 +56,13 @@ def validate_trace(trace: Trace, cell_type: CellType) -> tuple[Note, ...]:
 
     Raises InputError, naming the line, for anything that prevents judging.
     """
-    return _validate(trace, cell_type, _empty_rows(trace) if _may_have_empty_rows(trace) else None)
+    return _validate(trace, cell_type, _empty_rows(trace))
 
 
 def validated(trace: Trace, cell_type: CellType) -> tuple[Trace, tuple[Note, ...]]:
     """``drop_invalid_rows(trace)`` and ``validate_trace(trace, cell_type)``, looking for
     empty rows once (a pass over three columns of the record that both would make)."""
-    empty = _empty_rows(trace) if _may_have_empty_rows(trace) else None
+    empty = _empty_rows(trace)
     notes = _validate(trace, cell_type, empty)
     return _without(trace, empty), notes
 
@@ -104,7 +104,7 @@ def drop_invalid_rows(trace: Trace) -> Trace:
     Run it after ``validate_trace`` accepted the trace; see the module docstring for
     what happens to line numbers.
     """
-    return _without(trace, _empty_rows(trace) if _may_have_empty_rows(trace) else None)
+    return _without(trace, _empty_rows(trace))
 
 
 def _without(trace: Trace, empty: Mask | None) -> Trace:
@@ -131,7 +131,10 @@ def _may_have_empty_rows(trace: Trace) -> bool:
     return not math.isfinite(total)
 
 
-def _empty_rows(trace: Trace) -> Mask:
+def _empty_rows(trace: Trace) -> Mask | None:
+    """The rows whose time, voltage or current is empty (NaN); None when no row can be."""
+    if not _may_have_empty_rows(trace):
+        return None
     return np.isnan(trace.time_s) | np.isnan(trace.voltage_v) | np.isnan(trace.current_a)
 
 
