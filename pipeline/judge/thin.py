@@ -67,13 +67,12 @@ def thin_series(x: FloatArray, y: FloatArray, max_points: int) -> tuple[FloatArr
     >>> len(xs) <= 12, float(ys.max()), float(xs[0]), float(xs[-1])
     (True, 5.0, 0.0, 999.0)
     """
-    xa = np.asarray(x, dtype=np.float64)
-    ya = np.asarray(y, dtype=np.float64)
-    if len(xa) > max_points and np.isfinite(xa).all():
-        thinned = _thinned(xa, ya, max_points)
-        if np.isfinite(thinned[1]).all():
-            return thinned
-    # a point that is not finite (or a short series): drop them, then thin what is left
+    return thin_series_over(x, [y], max_points)[0]
+
+
+def _thinned_finite(xa: FloatArray, ya: FloatArray, max_points: int) -> tuple[FloatArray, FloatArray]:
+    """thin_series where a point may not be finite (or the series is short): those points
+    dropped, then what is left thinned."""
     finite = np.isfinite(xa) & np.isfinite(ya)
     if not finite.all():
         xa, ya = xa[finite], ya[finite]
@@ -114,16 +113,17 @@ def thin_series_over(
 ) -> list[tuple[FloatArray, FloatArray]]:
     """Each of ``ys`` against one ``x``, thinned as :func:`thin_series` thins it.
 
-    The same points, with x looked at once for points that are not finite rather than once
-    per series: the record's view draws its voltage, current and temperature against one
-    time axis of tens of thousands of rows.
+    x is looked at once for points that are not finite, not once per series: the record's
+    view draws its voltage, current and temperature against one time axis of tens of
+    thousands of rows. A series of finite numbers against a finite x needs no mask of them:
+    whether any y kept is not finite tells it (:func:`_thinned`).
     """
     xa = np.asarray(x, dtype=np.float64)
+    yas = [np.asarray(y, dtype=np.float64) for y in ys]
     if not (len(xa) > max_points and np.isfinite(xa).all()):
-        return [thin_series(xa, y, max_points) for y in ys]
+        return [_thinned_finite(xa, ya, max_points) for ya in yas]
     out = []
-    for y in ys:
-        ya = np.asarray(y, dtype=np.float64)
+    for ya in yas:
         thinned = _thinned(xa, ya, max_points)
-        out.append(thinned if np.isfinite(thinned[1]).all() else thin_series(xa, ya, max_points))
+        out.append(thinned if np.isfinite(thinned[1]).all() else _thinned_finite(xa, ya, max_points))
     return out
